@@ -1,0 +1,174 @@
+//! Command-line interface: argument types (clap) and the `run` entry point the binary calls.
+
+use std::io::Write;
+use std::path::PathBuf;
+
+use anyhow::{Context, Result, bail};
+use chrono::{DateTime, Utc};
+use clap::{Parser, Subcommand};
+
+use crate::clearsky::{ClearSkyModel, clear_sky};
+use crate::config::{DEFAULT_LINKE_TURBIDITY, Site};
+use crate::io::parse_time;
+use crate::sun::{Observer, position, relative_airmass};
+
+/// nephocast: sky-camera nowcasting of irradiance for solar plants (advisory, not a protection system).
+#[derive(Debug, Parser)]
+#[command(name = "nephocast", version, about, long_about = None)]
+pub struct Cli {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// The subcommands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Print a CSV table of solar position and clear-sky irradiance.
+    Sun(SunArgs),
+}
+
+/// Arguments of `nephocast sun`.
+#[derive(Debug, clap::Args)]
+pub struct SunArgs {
+    /// A site file to take the location from.
+    #[arg(long, conflicts_with_all = ["lat", "lon"])]
+    pub site: Option<PathBuf>,
+    /// Latitude [°], north positive.
+    #[arg(long, allow_hyphen_values = true)]
+    pub lat: Option<f64>,
+    /// Longitude [°], east positive.
+    #[arg(long, allow_hyphen_values = true)]
+    pub lon: Option<f64>,
+    /// Height above sea level [m].
+    #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
+    pub elevation_m: f64,
+    /// Pressure [hPa] for refraction; default: standard atmosphere at the height.
+    #[arg(long)]
+    pub pressure_hpa: Option<f64>,
+    /// Temperature [°C] for refraction.
+    #[arg(long, default_value_t = 12.0, allow_hyphen_values = true)]
+    pub temperature_c: f64,
+    /// First time (UTC, RFC 3339), e.g. 2026-06-14T04:00:00Z.
+    #[arg(long)]
+    pub start: String,
+    /// Last time (UTC, RFC 3339).
+    #[arg(long)]
+    pub end: String,
+    /// Step, e.g. 60s, 10m, 1h.
+    #[arg(long, default_value = "10m")]
+    pub step: String,
+    /// Linke turbidity for the Ineichen–Perez clear sky (default 3.0; from the site file with --site).
+    #[arg(long)]
+    pub linke: Option<f64>,
+}
+
+/// Parse a duration such as `30s`, `10m`, `1h` or a bare number of seconds.
+///
+/// # Errors
+/// A message naming the expected form.
+pub fn parse_duration_s(s: &str) -> Result<f64> {
+    let s = s.trim();
+    let (num, mult) = if let Some(n) = s.strip_suffix("ms") {
+        (n, 0.001)
+    } else if let Some(n) = s.strip_suffix('s') {
+        (n, 1.0)
+    } else if let Some(n) = s.strip_suffix("min") {
+        (n, 60.0)
+    } else if let Some(n) = s.strip_suffix('m') {
+        (n, 60.0)
+    } else if let Some(n) = s.strip_suffix('h') {
+        (n, 3600.0)
+    } else {
+        (s, 1.0)
+    };
+    let v: f64 = num.trim().parse().with_context(|| format!("expected a duration such as 30s, 10m or 1h, got {s:?}"))?;
+    if !(v.is_finite() && v > 0.0) {
+        bail!("expected a positive duration, got {s:?}");
+    }
+    Ok(v * mult)
+}
+
+/// Run a parsed command line.
+///
+/// # Errors
+/// Any failure, with context naming the file or argument.
+pub fn run(cli: Cli) -> Result<()> {
+    match cli.command {
+        Command::Sun(a) => cmd_sun(a),
+    }
+}
+
+fn cmd_sun(a: SunArgs) -> Result<()> {
+    let (observer, model, altitude_m) = if let Some(p) = &a.site {
+        let site = Site::load(p)?;
+        let mut model = site.clear_sky_model();
+        if let (Some(l), ClearSkyModel::IneichenPerez { .. }) = (a.linke, model) {
+            model = ClearSkyModel::IneichenPerez { linke_turbidity: l };
+        }
+        (site.observer(), model, site.file.site.elevation_m)
+    } else {
+        let (Some(lat), Some(lon)) = (a.lat, a.lon) else {
+            bail!("give --site FILE, or both --lat and --lon");
+        };
+        if !(-90.0..=90.0).contains(&lat) {
+            bail!("--lat: expected a number from -90 to 90, got {lat}");
+        }
+        if !(-180.0..=180.0).contains(&lon) {
+            bail!("--lon: expected a number from -180 to 180, got {lon}");
+        }
+        let mut o = Observer::new(lat, lon, a.elevation_m);
+        if let Some(p) = a.pressure_hpa {
+            o.pressure_hpa = p;
+        }
+        o.temperature_c = a.temperature_c;
+        let tl = a.linke.unwrap_or(DEFAULT_LINKE_TURBIDITY);
+        if !(1.0..=10.0).contains(&tl) {
+            bail!("--linke: expected a number from 1 to 10, got {tl}");
+        }
+        (o, ClearSkyModel::IneichenPerez { linke_turbidity: tl }, a.elevation_m)
+    };
+    let start = parse_time("--start", &a.start).map_err(anyhow::Error::msg)?;
+    let end = parse_time("--end", &a.end).map_err(anyhow::Error::msg)?;
+    let step_s = parse_duration_s(&a.step).context("--step")?;
+    if end < start {
+        bail!("--end is before --start");
+    }
+    let n = ((end - start).num_milliseconds() as f64 / 1000.0 / step_s).floor() as u64 + 1;
+    if n > 10_000_000 {
+        bail!("--start/--end/--step give {n} rows; at most 10 000 000");
+    }
+    let stdout = std::io::stdout();
+    let mut out = std::io::BufWriter::new(stdout.lock());
+    writeln!(
+        out,
+        "time_utc,zenith_deg,azimuth_deg,elevation_deg,true_zenith_deg,airmass_relative,dni_extra_wm2,ghi_clear_wm2,dni_clear_wm2,dhi_clear_wm2"
+    )?;
+    for i in 0..n {
+        let t: DateTime<Utc> = start + chrono::Duration::milliseconds((i as f64 * step_s * 1000.0).round() as i64);
+        let sp = position(&t, &observer)?;
+        let cs = clear_sky(&sp, altitude_m, model);
+        let am = relative_airmass(sp.apparent_zenith_rad).map(|m| format!("{m:.5}")).unwrap_or_default();
+        writeln!(
+            out,
+            "{},{:.6},{:.6},{:.6},{:.6},{},{:.3},{:.3},{:.3},{:.3}",
+            crate::io::fmt_time(&t),
+            sp.apparent_zenith_rad.to_degrees(),
+            sp.azimuth_rad.to_degrees(),
+            90.0 - sp.apparent_zenith_rad.to_degrees(),
+            sp.zenith_rad.to_degrees(),
+            am,
+            sp.dni_extra_wm2(),
+            cs.ghi_wm2,
+            cs.dni_wm2,
+            cs.dhi_wm2
+        )?;
+    }
+    out.flush()?;
+    Ok(())
+}
+
+/// Exit status for an error: 2 for bad input (files, arguments, data), 1 for anything else.
+pub fn exit_status(e: &anyhow::Error) -> u8 {
+    if e.downcast_ref::<std::io::Error>().is_some() { 1 } else { 2 }
+}

@@ -1,0 +1,675 @@
+//! Site and calibration files: types, loading and validation.
+//!
+//! Both are TOML. Every error names the file, the field path and what was expected, e.g.
+//! `site.toml: field site.latitude_deg: expected a number from -90 to 90, got 123`.
+//! Relative paths inside a file are resolved against the file's own folder.
+
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::camera::{Camera, Orientation, Projection};
+use crate::clearsky::ClearSkyModel;
+use crate::sun::Observer;
+
+/// An error in a site or calibration file.
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    /// The file could not be read.
+    #[error("{file}: cannot read: {source}")]
+    Read {
+        /// The file.
+        file: PathBuf,
+        /// Why.
+        source: std::io::Error,
+    },
+    /// The file is not valid TOML or a field has the wrong type.
+    #[error("{file}: field {path}: {message}")]
+    Parse {
+        /// The file.
+        file: PathBuf,
+        /// Dotted field path.
+        path: String,
+        /// What the parser said.
+        message: String,
+    },
+    /// A field has a value outside its allowed range.
+    #[error("{file}: field {field}: expected {expected}, got {got}")]
+    Invalid {
+        /// The file.
+        file: PathBuf,
+        /// Dotted field path.
+        field: String,
+        /// What was expected.
+        expected: String,
+        /// What was found.
+        got: String,
+    },
+}
+
+/// Read and deserialize a TOML file, reporting the field path of any error.
+pub fn read_toml<T: for<'de> Deserialize<'de>>(path: &Path) -> Result<T, ConfigError> {
+    let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read { file: path.into(), source })?;
+    parse_toml(&text, path)
+}
+
+/// Deserialize TOML text that came from `path` (used in messages only).
+pub fn parse_toml<T: for<'de> Deserialize<'de>>(text: &str, path: &Path) -> Result<T, ConfigError> {
+    let de = toml::Deserializer::new(text);
+    serde_path_to_error::deserialize(de).map_err(|e| {
+        let field = e.path().to_string();
+        let message = e.inner().message().to_string();
+        let loc = e
+            .inner()
+            .span()
+            .map(|s| {
+                let line = text[..s.start.min(text.len())].matches('\n').count() + 1;
+                format!(" (line {line})")
+            })
+            .unwrap_or_default();
+        ConfigError::Parse {
+            file: path.into(),
+            path: if field == "." { "(top level)".into() } else { field },
+            message: format!("{}{loc}", message.trim_end()),
+        }
+    })
+}
+
+struct Check<'a> {
+    file: &'a Path,
+}
+
+impl Check<'_> {
+    fn range(&self, field: &str, v: f64, lo: f64, hi: f64) -> Result<(), ConfigError> {
+        if v.is_finite() && v >= lo && v <= hi {
+            Ok(())
+        } else {
+            Err(self.invalid(field, format!("a number from {lo} to {hi}"), v.to_string()))
+        }
+    }
+    fn invalid(&self, field: &str, expected: impl Into<String>, got: impl Into<String>) -> ConfigError {
+        ConfigError::Invalid { file: self.file.into(), field: field.into(), expected: expected.into(), got: got.into() }
+    }
+}
+
+fn resolve(base: &Path, p: &Path) -> PathBuf {
+    if p.is_absolute() { p.to_path_buf() } else { base.parent().unwrap_or(Path::new(".")).join(p) }
+}
+
+// ---------------------------------------------------------------------------------------------
+// site.toml
+
+/// The whole `site.toml`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SiteFile {
+    /// Where the site is.
+    pub site: SiteSection,
+    /// Which camera, and where it stands.
+    pub camera: CameraSection,
+    /// Cloud base height.
+    #[serde(default)]
+    pub clouds: CloudSection,
+    /// The plant footprint and its blocks.
+    #[serde(default)]
+    pub plant: PlantSection,
+    /// Forecast horizons.
+    #[serde(default)]
+    pub forecast: ForecastSection,
+    /// Cloud segmentation thresholds.
+    #[serde(default)]
+    pub segment: crate::qc::QcParams,
+    /// Frame quality control.
+    #[serde(default)]
+    pub qc: crate::qc::QcParams,
+    /// Cloud motion estimation.
+    #[serde(default)]
+    pub motion: crate::qc::QcParams,
+}
+
+/// `[site]`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SiteSection {
+    /// A name for display.
+    pub name: String,
+    /// Latitude \[°\], north positive.
+    pub latitude_deg: f64,
+    /// Longitude \[°\], east positive.
+    pub longitude_deg: f64,
+    /// Height above sea level \[m\].
+    pub elevation_m: f64,
+    /// Mean pressure \[hPa\]; default from the standard atmosphere at `elevation_m`.
+    #[serde(default)]
+    pub pressure_hpa: Option<f64>,
+    /// Mean temperature \[°C\] for refraction; default 12.
+    #[serde(default)]
+    pub temperature_c: Option<f64>,
+    /// `"ineichen-perez"` (default) or `"haurwitz"`.
+    #[serde(default = "default_clear_sky_model")]
+    pub clear_sky_model: String,
+    /// Linke turbidity for Ineichen–Perez; default 3.0.
+    #[serde(default = "default_linke")]
+    pub linke_turbidity: f64,
+}
+
+fn default_clear_sky_model() -> String {
+    "ineichen-perez".into()
+}
+/// Default Linke turbidity: 3.0, a typical clean rural mid-latitude value (common practice, no source).
+pub const DEFAULT_LINKE_TURBIDITY: f64 = 3.0;
+fn default_linke() -> f64 {
+    DEFAULT_LINKE_TURBIDITY
+}
+
+/// `[camera]`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CameraSection {
+    /// The camera's calibration file (relative to the site file).
+    pub calibration: PathBuf,
+    /// Camera position relative to the site origin, (east, north, up) \[m\].
+    #[serde(default)]
+    pub position_m: [f64; 3],
+}
+
+/// `[clouds]`: a fixed cloud base height or a series.
+#[derive(Debug, Clone, Default, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CloudSection {
+    /// Fixed cloud base height above the camera \[m\].
+    #[serde(default)]
+    pub base_height_m: Option<f64>,
+    /// A CSV series `time_utc,cbh_m` (e.g. from a ceilometer), relative to the site file.
+    #[serde(default)]
+    pub base_height_csv: Option<PathBuf>,
+}
+
+/// `[plant]`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PlantSection {
+    /// Spacing of the forecast points inside each block's footprint \[m\].
+    #[serde(default = "default_spacing")]
+    pub point_spacing_m: f64,
+    /// The plant's blocks.
+    #[serde(default)]
+    pub blocks: Vec<BlockSpec>,
+}
+
+impl Default for PlantSection {
+    fn default() -> Self {
+        Self { point_spacing_m: default_spacing(), blocks: vec![] }
+    }
+}
+
+fn default_spacing() -> f64 {
+    25.0
+}
+
+/// Mounting of a block's modules.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum MountKind {
+    /// Fixed tilt and azimuth.
+    Fixed,
+    /// Horizontal single-axis tracker.
+    SingleAxis,
+}
+
+/// `[[plant.blocks]]`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BlockSpec {
+    /// Block name.
+    pub name: String,
+    /// Footprint polygon vertices (east, north) \[m\] from the site origin.
+    pub polygon_m: Vec<[f64; 2]>,
+    /// DC capacity \[kW\].
+    pub capacity_kw: f64,
+    /// `"fixed"` or `"single-axis"`.
+    pub mount: MountKind,
+    /// Fixed: module tilt from horizontal \[°\].
+    #[serde(default)]
+    pub tilt_deg: Option<f64>,
+    /// Fixed: module azimuth, clockwise from north \[°\].
+    #[serde(default)]
+    pub azimuth_deg: Option<f64>,
+    /// Tracker: axis azimuth \[°\] (e.g. 0 for a north–south axis).
+    #[serde(default)]
+    pub axis_azimuth_deg: Option<f64>,
+    /// Tracker: largest rotation \[°\]; default 60.
+    #[serde(default)]
+    pub max_angle_deg: Option<f64>,
+}
+
+/// `[forecast]`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ForecastSection {
+    /// Longest horizon \[min\]; default 20.
+    #[serde(default = "default_horizon")]
+    pub horizon_min: u32,
+    /// Horizon step \[s\]; default 60 (30 allowed).
+    #[serde(default = "default_step")]
+    pub step_s: u32,
+}
+
+impl Default for ForecastSection {
+    fn default() -> Self {
+        Self { horizon_min: default_horizon(), step_s: default_step() }
+    }
+}
+fn default_horizon() -> u32 {
+    20
+}
+fn default_step() -> u32 {
+    60
+}
+
+/// A loaded, validated site with its camera.
+#[derive(Debug, Clone)]
+pub struct Site {
+    /// The file as read.
+    pub file: SiteFile,
+    /// Where it was read from.
+    pub path: PathBuf,
+    /// The camera from its calibration file.
+    pub camera: Camera,
+    /// The calibration file as read.
+    pub calibration: CalibrationFile,
+    /// Path of the calibration file.
+    pub calibration_path: PathBuf,
+    /// The obstruction mask, if the calibration names one.
+    pub obstruction: Option<image::GrayImage>,
+    /// The cloud base height series path, resolved.
+    pub cbh_csv: Option<PathBuf>,
+}
+
+impl Site {
+    /// Load and validate a site file, its calibration file and obstruction mask.
+    ///
+    /// # Errors
+    /// A [`ConfigError`] naming the file and field.
+    pub fn load(path: &Path) -> Result<Site, ConfigError> {
+        let file: SiteFile = read_toml(path)?;
+        file.validate(path)?;
+        let calibration_path = resolve(path, &file.camera.calibration);
+        let calibration: CalibrationFile = read_toml(&calibration_path)?;
+        let camera = calibration.camera(&calibration_path)?;
+        let obstruction = match &calibration.camera.obstruction_mask {
+            Some(p) => {
+                let mp = resolve(&calibration_path, p);
+                let img = image::open(&mp).map_err(|e| ConfigError::Invalid {
+                    file: calibration_path.clone(),
+                    field: "camera.obstruction_mask".into(),
+                    expected: "a readable greyscale PNG".into(),
+                    got: format!("{}: {e}", mp.display()),
+                })?;
+                let g = img.to_luma8();
+                if g.dimensions() != (camera.width_px, camera.height_px) {
+                    return Err(ConfigError::Invalid {
+                        file: calibration_path.clone(),
+                        field: "camera.obstruction_mask".into(),
+                        expected: format!("an image of {}x{} px", camera.width_px, camera.height_px),
+                        got: format!("{}x{} px", g.width(), g.height()),
+                    });
+                }
+                Some(g)
+            }
+            None => None,
+        };
+        let cbh_csv = file.clouds.base_height_csv.as_ref().map(|p| resolve(path, p));
+        Ok(Site { file, path: path.into(), camera, calibration, calibration_path, obstruction, cbh_csv })
+    }
+
+    /// The observer for solar position.
+    pub fn observer(&self) -> Observer {
+        self.file.site.observer()
+    }
+
+    /// The clear-sky model.
+    pub fn clear_sky_model(&self) -> ClearSkyModel {
+        self.file.site.clear_sky()
+    }
+}
+
+impl SiteSection {
+    /// The observer for solar position.
+    pub fn observer(&self) -> Observer {
+        let mut o = Observer::new(self.latitude_deg, self.longitude_deg, self.elevation_m);
+        if let Some(p) = self.pressure_hpa {
+            o.pressure_hpa = p;
+        }
+        if let Some(t) = self.temperature_c {
+            o.temperature_c = t;
+        }
+        o
+    }
+
+    /// The clear-sky model.
+    pub fn clear_sky(&self) -> ClearSkyModel {
+        if self.clear_sky_model == "haurwitz" {
+            ClearSkyModel::Haurwitz
+        } else {
+            ClearSkyModel::IneichenPerez { linke_turbidity: self.linke_turbidity }
+        }
+    }
+}
+
+impl SiteFile {
+    /// Check every value's range.
+    ///
+    /// # Errors
+    /// The first field out of range.
+    pub fn validate(&self, path: &Path) -> Result<(), ConfigError> {
+        let c = Check { file: path };
+        let s = &self.site;
+        c.range("site.latitude_deg", s.latitude_deg, -90.0, 90.0)?;
+        c.range("site.longitude_deg", s.longitude_deg, -180.0, 180.0)?;
+        c.range("site.elevation_m", s.elevation_m, -500.0, 9000.0)?;
+        if let Some(p) = s.pressure_hpa {
+            c.range("site.pressure_hpa", p, 300.0, 1100.0)?;
+        }
+        if let Some(t) = s.temperature_c {
+            c.range("site.temperature_c", t, -80.0, 60.0)?;
+        }
+        c.range("site.linke_turbidity", s.linke_turbidity, 1.0, 10.0)?;
+        if !["ineichen-perez", "haurwitz"].contains(&s.clear_sky_model.as_str()) {
+            return Err(c.invalid("site.clear_sky_model", "\"ineichen-perez\" or \"haurwitz\"", format!("{:?}", s.clear_sky_model)));
+        }
+        for (i, v) in self.camera.position_m.iter().enumerate() {
+            c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
+        }
+        match (&self.clouds.base_height_m, &self.clouds.base_height_csv) {
+            (Some(h), None) => c.range("clouds.base_height_m", *h, 50.0, 15_000.0)?,
+            (None, Some(_)) => {}
+            (Some(_), Some(_)) => {
+                return Err(c.invalid("clouds", "one of base_height_m or base_height_csv", "both"));
+            }
+            (None, None) => return Err(c.invalid("clouds", "base_height_m or base_height_csv", "neither")),
+        }
+        let p = &self.plant;
+        c.range("plant.point_spacing_m", p.point_spacing_m, 1.0, 1000.0)?;
+        for (i, b) in p.blocks.iter().enumerate() {
+            let f = |n: &str| format!("plant.blocks[{i}].{n}");
+            if b.polygon_m.len() < 3 {
+                return Err(c.invalid(&f("polygon_m"), "at least 3 vertices", format!("{}", b.polygon_m.len())));
+            }
+            for (j, v) in b.polygon_m.iter().enumerate() {
+                for (k, x) in v.iter().enumerate() {
+                    c.range(&format!("plant.blocks[{i}].polygon_m[{j}][{k}]"), *x, -50_000.0, 50_000.0)?;
+                }
+            }
+            if polygon_area_m2(&b.polygon_m) < 1.0 {
+                return Err(c.invalid(&f("polygon_m"), "a polygon of non-zero area", "an area below 1 m²"));
+            }
+            c.range(&f("capacity_kw"), b.capacity_kw, 0.001, 1e7)?;
+            match b.mount {
+                MountKind::Fixed => {
+                    let t = b.tilt_deg.ok_or_else(|| c.invalid(&f("tilt_deg"), "a tilt for a fixed block", "nothing"))?;
+                    c.range(&f("tilt_deg"), t, 0.0, 90.0)?;
+                    let a = b.azimuth_deg.ok_or_else(|| c.invalid(&f("azimuth_deg"), "an azimuth for a fixed block", "nothing"))?;
+                    c.range(&f("azimuth_deg"), a, 0.0, 360.0)?;
+                }
+                MountKind::SingleAxis => {
+                    let a = b.axis_azimuth_deg.unwrap_or(0.0);
+                    c.range(&f("axis_azimuth_deg"), a, 0.0, 360.0)?;
+                    c.range(&f("max_angle_deg"), b.max_angle_deg.unwrap_or(60.0), 0.0, 90.0)?;
+                }
+            }
+        }
+        let fc = &self.forecast;
+        if !(1..=60).contains(&fc.horizon_min) {
+            return Err(c.invalid("forecast.horizon_min", "a whole number from 1 to 60", fc.horizon_min.to_string()));
+        }
+        if ![15, 30, 60, 120].contains(&fc.step_s) {
+            return Err(c.invalid("forecast.step_s", "15, 30, 60 or 120", fc.step_s.to_string()));
+        }
+        self.segment.validate(path)?;
+        self.qc.validate(path)?;
+        self.motion.validate(path)?;
+        Ok(())
+    }
+}
+
+/// Area of a simple polygon \[m²\] (shoelace formula).
+pub fn polygon_area_m2(poly: &[[f64; 2]]) -> f64 {
+    let n = poly.len();
+    let mut s = 0.0;
+    for i in 0..n {
+        let (a, b) = (poly[i], poly[(i + 1) % n]);
+        s += a[0] * b[1] - b[0] * a[1];
+    }
+    (s / 2.0).abs()
+}
+
+/// Range check shared by stage parameter sections.
+pub(crate) fn check_range(file: &Path, field: &str, v: f64, lo: f64, hi: f64) -> Result<(), ConfigError> {
+    Check { file }.range(field, v, lo, hi)
+}
+
+// ---------------------------------------------------------------------------------------------
+// calibration/<camera>.toml
+
+/// The whole calibration file.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CalibrationFile {
+    /// The camera model and orientation.
+    pub camera: CameraCalibration,
+    /// How the calibration was obtained, when fitted.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub fit: Option<FitRecord>,
+}
+
+/// `[camera]` in a calibration file.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CameraCalibration {
+    /// A name for the camera.
+    pub name: String,
+    /// Image width \[px\].
+    pub width_px: u32,
+    /// Image height \[px\].
+    pub height_px: u32,
+    /// `"equidistant"`, `"equisolid"`, `"stereographic"` or `"polynomial"`.
+    pub model: String,
+    /// Focal length \[px per rad\].
+    pub f_px_per_rad: f64,
+    /// Principal point column \[px\] (pixel centres at integers).
+    pub cx_px: f64,
+    /// Principal point row \[px\].
+    pub cy_px: f64,
+    /// Polynomial coefficients k1…k4 (polynomial model only; missing ones are zero).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub k: Vec<f64>,
+    /// Largest field angle the lens images \[°\]; default 90.
+    #[serde(default = "default_fov")]
+    pub max_field_angle_deg: f64,
+    /// Yaw \[°\].
+    #[serde(default)]
+    pub yaw_deg: f64,
+    /// Pitch \[°\].
+    #[serde(default)]
+    pub pitch_deg: f64,
+    /// Roll \[°\].
+    #[serde(default)]
+    pub roll_deg: f64,
+    /// An obstruction mask image (white = sky, black = blocked), relative to this file.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub obstruction_mask: Option<PathBuf>,
+}
+
+fn default_fov() -> f64 {
+    90.0
+}
+
+/// `[fit]`: how a calibration was fitted.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FitRecord {
+    /// When the fit was made (UTC, RFC 3339).
+    pub fitted_utc: String,
+    /// First frame used.
+    pub span_start_utc: String,
+    /// Last frame used.
+    pub span_end_utc: String,
+    /// Sun detections used.
+    pub detections: usize,
+    /// RMS direction residual \[°\].
+    pub rms_deg: f64,
+    /// Largest direction residual \[°\].
+    pub max_deg: f64,
+    /// RMS image residual \[px\].
+    pub rms_px: f64,
+    /// Largest image residual \[px\].
+    pub max_px: f64,
+    /// Standard error of each fitted parameter, by name.
+    #[serde(default)]
+    pub std_errors: std::collections::BTreeMap<String, f64>,
+}
+
+impl CalibrationFile {
+    /// Build from a camera.
+    pub fn from_camera(name: &str, cam: &Camera) -> Self {
+        let k = match cam.projection {
+            Projection::Polynomial { k } => k.to_vec(),
+            _ => vec![],
+        };
+        CalibrationFile {
+            camera: CameraCalibration {
+                name: name.into(),
+                width_px: cam.width_px,
+                height_px: cam.height_px,
+                model: cam.projection.name().into(),
+                f_px_per_rad: cam.f_px,
+                cx_px: cam.cx_px,
+                cy_px: cam.cy_px,
+                k,
+                max_field_angle_deg: cam.max_field_angle_rad.to_degrees(),
+                yaw_deg: cam.orientation.yaw_rad.to_degrees(),
+                pitch_deg: cam.orientation.pitch_rad.to_degrees(),
+                roll_deg: cam.orientation.roll_rad.to_degrees(),
+                obstruction_mask: None,
+            },
+            fit: None,
+        }
+    }
+
+    /// Validate and build the camera.
+    ///
+    /// # Errors
+    /// A field out of range, naming `file`.
+    pub fn camera(&self, file: &Path) -> Result<Camera, ConfigError> {
+        let c = Check { file };
+        let k = &self.camera;
+        c.range("camera.width_px", k.width_px as f64, 16.0, 16384.0)?;
+        c.range("camera.height_px", k.height_px as f64, 16.0, 16384.0)?;
+        c.range("camera.f_px_per_rad", k.f_px_per_rad, 1.0, 20_000.0)?;
+        c.range("camera.cx_px", k.cx_px, 0.0, k.width_px as f64)?;
+        c.range("camera.cy_px", k.cy_px, 0.0, k.height_px as f64)?;
+        c.range("camera.max_field_angle_deg", k.max_field_angle_deg, 10.0, 120.0)?;
+        c.range("camera.yaw_deg", k.yaw_deg, -360.0, 360.0)?;
+        c.range("camera.pitch_deg", k.pitch_deg, -45.0, 45.0)?;
+        c.range("camera.roll_deg", k.roll_deg, -45.0, 45.0)?;
+        let projection = match k.model.as_str() {
+            "equidistant" => Projection::Equidistant,
+            "equisolid" => Projection::Equisolid,
+            "stereographic" => Projection::Stereographic,
+            "polynomial" => {
+                if k.k.len() > 4 {
+                    return Err(c.invalid("camera.k", "at most 4 coefficients", k.k.len().to_string()));
+                }
+                let mut kk = [0.0; 4];
+                for (i, v) in k.k.iter().enumerate() {
+                    c.range(&format!("camera.k[{i}]"), *v, -10.0, 10.0)?;
+                    kk[i] = *v;
+                }
+                Projection::Polynomial { k: kk }
+            }
+            other => {
+                return Err(c.invalid(
+                    "camera.model",
+                    "\"equidistant\", \"equisolid\", \"stereographic\" or \"polynomial\"",
+                    format!("{other:?}"),
+                ));
+            }
+        };
+        if !matches!(projection, Projection::Polynomial { .. }) && !k.k.is_empty() {
+            return Err(c.invalid("camera.k", "no coefficients for this model", format!("{} coefficients", k.k.len())));
+        }
+        let cam = Camera::new(
+            k.width_px,
+            k.height_px,
+            k.cx_px,
+            k.cy_px,
+            k.f_px_per_rad,
+            projection,
+            k.max_field_angle_deg.to_radians(),
+            Orientation {
+                yaw_rad: k.yaw_deg.to_radians(),
+                pitch_rad: k.pitch_deg.to_radians(),
+                roll_rad: k.roll_deg.to_radians(),
+            },
+        );
+        // The model must be invertible over its whole field.
+        let g_max = projection.radial(cam.max_field_angle_rad);
+        if projection.inverse_radial(g_max).is_none() || projection.radial_derivative(cam.max_field_angle_rad) <= 0.0 {
+            return Err(c.invalid("camera.k", "a projection that grows monotonically over the lens field", "a folding polynomial"));
+        }
+        Ok(cam)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const SITE: &str = r#"
+[site]
+name = "t"
+latitude_deg = 45.0
+longitude_deg = 7.0
+elevation_m = 300.0
+[camera]
+calibration = "cam.toml"
+[clouds]
+base_height_m = 1500.0
+"#;
+
+    #[test]
+    fn good_site_parses() {
+        let s: SiteFile = parse_toml(SITE, Path::new("site.toml")).unwrap();
+        s.validate(Path::new("site.toml")).unwrap();
+        assert_eq!(s.forecast.horizon_min, 20);
+    }
+
+    #[test]
+    fn out_of_range_latitude_names_field() {
+        let t = SITE.replace("latitude_deg = 45.0", "latitude_deg = 123.0");
+        let s: SiteFile = parse_toml(&t, Path::new("site.toml")).unwrap();
+        let e = s.validate(Path::new("site.toml")).unwrap_err().to_string();
+        assert_eq!(e, "site.toml: field site.latitude_deg: expected a number from -90 to 90, got 123");
+    }
+
+    #[test]
+    fn wrong_type_names_field_and_line() {
+        let t = SITE.replace("elevation_m = 300.0", "elevation_m = \"high\"");
+        let e = parse_toml::<SiteFile>(&t, Path::new("site.toml")).unwrap_err().to_string();
+        assert!(e.starts_with("site.toml: field site.elevation_m:"), "{e}");
+        assert!(e.contains("line 6"), "{e}");
+    }
+
+    #[test]
+    fn unknown_field_is_refused() {
+        let t = SITE.replace("[clouds]", "[clouds]\nbase_hieght_m = 3");
+        let e = parse_toml::<SiteFile>(&t, Path::new("site.toml")).unwrap_err().to_string();
+        assert!(e.contains("base_hieght_m"), "{e}");
+    }
+
+    #[test]
+    fn polygon_area() {
+        assert_eq!(polygon_area_m2(&[[0.0, 0.0], [10.0, 0.0], [10.0, 5.0], [0.0, 5.0]]), 50.0);
+    }
+}
