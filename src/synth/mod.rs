@@ -1,0 +1,525 @@
+//! Synthetic sky-camera sequences with ground truth.
+//!
+//! No open data set gives sky frames, cloud truth, wind, cloud base height and plant irradiance
+//! together, so the project renders its own: a [`world::World`] of cloud layers over the fictional
+//! Larkspur Flats plant, seen through the same [`Camera`] model the engine uses.
+//!
+//! A written sequence (the layout `replay` reads):
+//!
+//! ```text
+//! <out>/site.toml                      site, camera reference, cloud base height, plant
+//! <out>/calibration/<camera>.toml      the camera as rendered
+//! <out>/frames/frame_<UTC>.jpg         frames, UTC time in the name
+//! <out>/measurements.csv               simulated pyranometers, 1-minute means
+//! <out>/truth/scene.toml               the scene spec and seed (the world can be rebuilt from it)
+//! <out>/truth/layers.csv               base height and wind of each layer
+//! <out>/truth/frames.csv               per frame: cloud fraction (zenith < 70°), mask file
+//! <out>/truth/masks/<frame>.png        per-pixel class: 0 unknown, 1 clear, 2 thin, 3 thick
+//! <out>/truth/irradiance.csv           GHI/DNI/DHI per block and plant, to 20 min past the last frame
+//! ```
+
+pub mod noise;
+pub mod render;
+pub mod world;
+
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, Duration, Utc};
+use serde::{Deserialize, Serialize};
+
+use crate::camera::{Camera, Orientation, Projection};
+use crate::config::{BlockSpec, CalibrationFile, CameraSection, CloudSection, ForecastSection, MountKind, PlantSection, SiteFile, SiteSection};
+use crate::io::{fmt_time, frame_name, write_atomic};
+use crate::plant::Plant;
+use render::{Mast, PixelRays, render};
+use world::{LayerSpec, World};
+
+/// The camera of a scene.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CameraSpec {
+    /// Camera name (calibration file name).
+    pub name: String,
+    /// `"equidistant"`, `"equisolid"`, `"stereographic"` or `"polynomial"`.
+    pub model: String,
+    /// Polynomial coefficients (polynomial model).
+    #[serde(default)]
+    pub k: Vec<f64>,
+    /// Radius of the 90° field angle as a share of half the image size.
+    pub rim_fraction: f64,
+    /// Principal point offset from the image centre \[px at 512²; scaled with size\].
+    pub offset_px: [f64; 2],
+    /// Yaw \[°\].
+    pub yaw_deg: f64,
+    /// Pitch \[°\].
+    pub pitch_deg: f64,
+    /// Roll \[°\].
+    pub roll_deg: f64,
+}
+
+impl CameraSpec {
+    /// The camera at a square image size.
+    pub fn camera(&self, size_px: u32) -> Camera {
+        let projection = match self.model.as_str() {
+            "equisolid" => Projection::Equisolid,
+            "stereographic" => Projection::Stereographic,
+            "polynomial" => {
+                let mut k = [0.0; 4];
+                for (i, v) in self.k.iter().take(4).enumerate() {
+                    k[i] = *v;
+                }
+                Projection::Polynomial { k }
+            }
+            _ => Projection::Equidistant,
+        };
+        let half = size_px as f64 / 2.0;
+        let rim = self.rim_fraction * half;
+        let f = rim / projection.radial(std::f64::consts::FRAC_PI_2);
+        let scale = size_px as f64 / 512.0;
+        Camera::new(
+            size_px,
+            size_px,
+            half - 0.5 + self.offset_px[0] * scale,
+            half - 0.5 + self.offset_px[1] * scale,
+            f,
+            projection,
+            std::f64::consts::FRAC_PI_2,
+            Orientation {
+                yaw_rad: self.yaw_deg.to_radians(),
+                pitch_rad: self.pitch_deg.to_radians(),
+                roll_rad: self.roll_deg.to_radians(),
+            },
+        )
+    }
+}
+
+/// A scene: what the sky does, when, and how it is filmed.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SceneSpec {
+    /// Name used on the command line.
+    pub name: String,
+    /// One line saying what the scene shows.
+    pub description: String,
+    /// First frame (UTC, RFC 3339).
+    pub start_utc: String,
+    /// Length of the frame sequence \[min\].
+    pub duration_min: f64,
+    /// Time between frames \[s\].
+    pub frame_step_s: f64,
+    /// Square image size \[px\].
+    pub size_px: u32,
+    /// Cloud layers.
+    pub layers: Vec<LayerSpec>,
+    /// The camera.
+    pub camera: CameraSpec,
+    /// Whether a mast stands in the view.
+    pub mast: bool,
+    /// JPEG quality (1–100).
+    pub jpeg_quality: u8,
+    /// Write a truth mask for every n-th frame.
+    pub truth_mask_every: usize,
+}
+
+/// The fictional site of all scenes: Larkspur Flats.
+pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
+    let block = |name: &str, poly: [[f64; 2]; 4], mount: MountKind| BlockSpec {
+        name: name.into(),
+        polygon_m: poly.to_vec(),
+        capacity_kw: 6000.0,
+        mount,
+        tilt_deg: (mount == MountKind::Fixed).then_some(25.0),
+        azimuth_deg: (mount == MountKind::Fixed).then_some(180.0),
+        axis_azimuth_deg: (mount == MountKind::SingleAxis).then_some(0.0),
+        max_angle_deg: (mount == MountKind::SingleAxis).then_some(60.0),
+    };
+    SiteFile {
+        site: SiteSection {
+            name: "Larkspur Flats (fictional)".into(),
+            latitude_deg: 37.412,
+            longitude_deg: -3.21,
+            elevation_m: 640.0,
+            pressure_hpa: None,
+            temperature_c: Some(22.0),
+            clear_sky_model: "ineichen-perez".into(),
+            linke_turbidity: 3.0,
+        },
+        camera: CameraSection { calibration: PathBuf::from(format!("calibration/{camera_file}.toml")), position_m: [0.0, 0.0, 3.0] },
+        clouds: CloudSection { base_height_m: Some(cbh_m), base_height_csv: None },
+        plant: PlantSection {
+            point_spacing_m: 25.0,
+            blocks: vec![
+                block("north-fixed", [[-350.0, 150.0], [-50.0, 150.0], [-50.0, 350.0], [-350.0, 350.0]], MountKind::Fixed),
+                block("east-tracker", [[100.0, -100.0], [400.0, -100.0], [400.0, 100.0], [100.0, 100.0]], MountKind::SingleAxis),
+                block("south-tracker", [[-250.0, -400.0], [50.0, -400.0], [50.0, -200.0], [-250.0, -200.0]], MountKind::SingleAxis),
+                block("west-fixed", [[-500.0, -150.0], [-300.0, -150.0], [-300.0, 100.0], [-500.0, 100.0]], MountKind::Fixed),
+            ],
+        },
+        forecast: ForecastSection::default(),
+        segment: Default::default(),
+        qc: Default::default(),
+        motion: Default::default(),
+    }
+}
+
+fn cam(yaw: f64) -> CameraSpec {
+    CameraSpec {
+        name: "larkspur-sky1".into(),
+        model: "equidistant".into(),
+        k: vec![],
+        rim_fraction: 0.97,
+        offset_px: [2.9, -3.4],
+        yaw_deg: yaw,
+        pitch_deg: 1.2,
+        roll_deg: -0.8,
+    }
+}
+
+fn layer(h: f64, speed: f64, toward: f64, c0: f64, c1: f64, tau: f64, wl: f64) -> LayerSpec {
+    LayerSpec {
+        base_height_m: h,
+        wind_speed_mps: speed,
+        wind_toward_deg: toward,
+        cover_start: c0,
+        cover_end: c1,
+        tau_max: tau,
+        wavelength_m: wl,
+        evolution_min: 45.0,
+    }
+}
+
+/// The scene catalogue.
+pub fn scenes() -> Vec<SceneSpec> {
+    let base = |name: &str, desc: &str, layers: Vec<LayerSpec>| SceneSpec {
+        name: name.into(),
+        description: desc.into(),
+        start_utc: "2026-06-14T08:30:00Z".into(),
+        duration_min: 50.0,
+        frame_step_s: 20.0,
+        size_px: 512,
+        layers,
+        camera: cam(23.0),
+        mast: true,
+        jpeg_quality: 85,
+        truth_mask_every: 3,
+    };
+    let mut v = vec![
+        base("broken-cumulus-fast", "broken cumulus at 1200 m moving at 12 m/s toward the east-north-east",
+             vec![layer(1200.0, 12.0, 70.0, 0.45, 0.45, 35.0, 1400.0)]),
+        base("scattered-slow", "scattered small cumulus at 1800 m drifting at 4 m/s toward the south-east",
+             vec![layer(1800.0, 4.0, 135.0, 0.22, 0.22, 25.0, 1100.0)]),
+        base("overcast-breaking", "low overcast at 900 m breaking up (cover 95 % to 45 %), 7 m/s toward the north-east",
+             vec![layer(900.0, 7.0, 40.0, 0.95, 0.45, 30.0, 1800.0)]),
+        base("two-layers", "cumulus at 1000 m toward the north-east at 9 m/s under thin altocumulus at 3800 m toward the south-east at 16 m/s",
+             vec![layer(1000.0, 9.0, 45.0, 0.30, 0.30, 30.0, 1300.0), layer(3800.0, 16.0, 150.0, 0.45, 0.45, 2.2, 3000.0)]),
+        SceneSpec {
+            start_utc: "2026-06-14T05:30:00Z".into(),
+            duration_min: 420.0,
+            frame_step_s: 600.0,
+            truth_mask_every: 1,
+            ..base("clear-day", "a clear day, frames every 10 minutes for 7 hours (camera calibration from the sun's track)", vec![])
+        },
+    ];
+    v.push(SceneSpec {
+        duration_min: 45.0,
+        frame_step_s: 30.0,
+        jpeg_quality: 80,
+        truth_mask_every: 3,
+        ..base("larkspur-demo", "the shipped demo: broken cumulus at 1400 m moving at 9 m/s toward the east over the plant",
+               vec![layer(1400.0, 9.0, 85.0, 0.40, 0.40, 35.0, 1500.0)])
+    });
+    v
+}
+
+/// Look up a scene by name.
+pub fn scene(name: &str) -> Option<SceneSpec> {
+    scenes().into_iter().find(|s| s.name == name)
+}
+
+/// The scene's world and camera.
+pub struct Scene {
+    /// The spec.
+    pub spec: SceneSpec,
+    /// The seed.
+    pub seed: u64,
+    /// The world.
+    pub world: World,
+    /// The camera.
+    pub camera: Camera,
+    /// The site file written beside the frames.
+    pub site: SiteFile,
+    /// The plant of the site.
+    pub plant: Plant,
+    /// Camera position (east, north, up) \[m\].
+    pub cam_pos_m: [f64; 3],
+    /// First frame time.
+    pub start: DateTime<Utc>,
+}
+
+/// An error building or writing a scene.
+#[derive(Debug, thiserror::Error)]
+pub enum SynthError {
+    /// No such scene.
+    #[error("no scene named {0:?}; `nephocast synth --list` lists them")]
+    UnknownScene(String),
+    /// The spec is invalid.
+    #[error("scene {name}: {message}")]
+    Invalid {
+        /// Scene.
+        name: String,
+        /// What is wrong.
+        message: String,
+    },
+    /// Writing failed.
+    #[error("{path}: {source}")]
+    Write {
+        /// File.
+        path: PathBuf,
+        /// Why.
+        source: std::io::Error,
+    },
+}
+
+impl Scene {
+    /// Build a scene from its spec and seed.
+    ///
+    /// # Errors
+    /// An invalid spec (time, sizes, layer values).
+    pub fn new(spec: SceneSpec, seed: u64) -> Result<Scene, SynthError> {
+        let bad = |m: &str| SynthError::Invalid { name: spec.name.clone(), message: m.into() };
+        let start = crate::io::parse_time("start_utc", &spec.start_utc).map_err(|e| bad(&e))?;
+        if !(64..=4096).contains(&spec.size_px) {
+            return Err(bad("size_px must be from 64 to 4096"));
+        }
+        if !(spec.frame_step_s >= 1.0 && spec.duration_min > 0.0) {
+            return Err(bad("frame_step_s must be ≥ 1 and duration_min > 0"));
+        }
+        for l in &spec.layers {
+            if !(50.0..=15000.0).contains(&l.base_height_m) || !(0.0..=60.0).contains(&l.wind_speed_mps) {
+                return Err(bad("layer base height must be 50–15000 m and wind 0–60 m/s"));
+            }
+        }
+        let cbh = spec.layers.iter().map(|l| l.base_height_m).fold(f64::INFINITY, f64::min);
+        let site = larkspur_site(if cbh.is_finite() { cbh } else { 1500.0 }, &spec.camera.name);
+        let plant = Plant::from_section(&site.plant);
+        let camera = spec.camera.camera(spec.size_px);
+        let mut world = World::new(
+            &spec.layers,
+            seed,
+            site.site.observer(),
+            site.site.clear_sky(),
+            start,
+            spec.duration_min * 60.0,
+        );
+        world.diffuse_centre_m = plant.centre_m();
+        let cam_pos_m = site.camera.position_m;
+        Ok(Scene { spec, seed, world, camera, site, plant, cam_pos_m, start })
+    }
+
+    /// Frame times.
+    pub fn frame_times(&self) -> Vec<DateTime<Utc>> {
+        let n = (self.spec.duration_min * 60.0 / self.spec.frame_step_s).round() as usize;
+        World::times(self.start, self.spec.frame_step_s, n)
+    }
+
+    /// The mast, if the scene has one.
+    pub fn mast(&self) -> Option<Mast> {
+        self.spec.mast.then_some(Mast {
+            azimuth_rad: 200f64.to_radians(),
+            top_zenith_rad: 62f64.to_radians(),
+            half_width_rad: 0.9f64.to_radians(),
+        })
+    }
+
+    /// Render frame `i` at time `t`.
+    pub fn render_frame(&self, rays: &PixelRays, i: usize, t: &DateTime<Utc>) -> render::Rendered {
+        let inst = self.world.instant(t);
+        render(&self.world, &inst, &self.camera, rays, self.cam_pos_m, self.mast(), noise::hash64(self.seed ^ (i as u64 + 1).wrapping_mul(0x9E37)))
+    }
+}
+
+/// Encode a frame as JPEG.
+pub fn encode_jpeg(rgb: &image::RgbImage, quality: u8) -> Vec<u8> {
+    let mut buf = Vec::new();
+    let enc = image::codecs::jpeg::JpegEncoder::new_with_quality(&mut buf, quality);
+    enc.write_image(rgb.as_raw(), rgb.width(), rgb.height(), image::ExtendedColorType::Rgb8).expect("in-memory JPEG encoding of a valid RGB buffer");
+    buf
+}
+
+use image::ImageEncoder;
+
+/// Encode a grey image as PNG.
+pub fn encode_png_gray(g: &image::GrayImage) -> Vec<u8> {
+    let mut buf = Vec::new();
+    image::codecs::png::PngEncoder::new(&mut buf)
+        .write_image(g.as_raw(), g.width(), g.height(), image::ExtendedColorType::L8)
+        .expect("in-memory PNG encoding of a valid grey buffer");
+    buf
+}
+
+/// Encode an RGB image as PNG.
+pub fn encode_png_rgb(g: &image::RgbImage) -> Vec<u8> {
+    let mut buf = Vec::new();
+    image::codecs::png::PngEncoder::new(&mut buf)
+        .write_image(g.as_raw(), g.width(), g.height(), image::ExtendedColorType::Rgb8)
+        .expect("in-memory PNG encoding of a valid RGB buffer");
+    buf
+}
+
+/// What writing a sequence produced.
+#[derive(Debug, Clone)]
+pub struct WriteSummary {
+    /// Frames written.
+    pub frames: usize,
+    /// Bytes written.
+    pub bytes: u64,
+    /// Rendering time per frame \[s\] (mean).
+    pub render_s_per_frame: f64,
+}
+
+/// Simulated pyranometer points: the centres of the first three blocks.
+pub fn pyranometers(plant: &Plant) -> Vec<(String, [f64; 2])> {
+    plant
+        .blocks
+        .iter()
+        .take(3)
+        .map(|b| {
+            let n = b.points_m.len() as f64;
+            let c = b.points_m.iter().fold([0.0, 0.0], |a, p| [a[0] + p[0] / n, a[1] + p[1] / n]);
+            (format!("pyr_{}", b.name), c)
+        })
+        .collect()
+}
+
+/// Render and write a whole sequence (layout in the module docs).
+///
+/// # Errors
+/// Any write failure, with its path.
+pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<WriteSummary, SynthError> {
+    let w = |path: PathBuf, bytes: &[u8]| write_atomic(&path, bytes).map_err(|source| SynthError::Write { path, source });
+    let spec = &scene.spec;
+    let mut bytes = 0u64;
+    // Site and calibration.
+    let site_text = format!(
+        "# Site of the synthetic scene {:?} (fictional plant). Written by `nephocast synth`.\n{}",
+        spec.name,
+        toml::to_string(&scene.site).map_err(|e| SynthError::Invalid { name: spec.name.clone(), message: e.to_string() })?
+    );
+    w(out.join("site.toml"), site_text.as_bytes())?;
+    let cal = CalibrationFile::from_camera(&spec.camera.name, &scene.camera);
+    let cal_text = format!("# Camera of the synthetic scene {:?}: the true camera it was rendered with.\n{}", spec.name, toml::to_string(&cal).unwrap_or_default());
+    w(out.join("calibration").join(format!("{}.toml", spec.camera.name)), cal_text.as_bytes())?;
+    // Truth: scene and layers.
+    #[derive(Serialize)]
+    struct SceneFile<'a> {
+        seed: u64,
+        scene: &'a SceneSpec,
+    }
+    let scene_text = toml::to_string(&SceneFile { seed: scene.seed, scene: spec }).unwrap_or_default();
+    w(out.join("truth").join("scene.toml"), scene_text.as_bytes())?;
+    let mut layers = String::from("layer,base_height_m,wind_speed_mps,wind_toward_deg,wind_east_mps,wind_north_mps,cover_start,cover_end,tau_max\n");
+    for (i, l) in scene.world.layers.iter().enumerate() {
+        let s = &l.spec;
+        let v = s.wind_enu();
+        layers += &format!("{i},{},{},{},{:.4},{:.4},{},{},{}\n", s.base_height_m, s.wind_speed_mps, s.wind_toward_deg, v[0], v[1], s.cover_start, s.cover_end, s.tau_max);
+    }
+    w(out.join("truth").join("layers.csv"), layers.as_bytes())?;
+    // Frames.
+    let times = scene.frame_times();
+    let rays = PixelRays::new(&scene.camera);
+    let bar = progress_bar(times.len() as u64, progress, "rendering");
+    let t0 = std::time::Instant::now();
+    let mut frames_csv = String::from("time_utc,frame,cloud_fraction,truth_mask\n");
+    for (i, t) in times.iter().enumerate() {
+        let r = scene.render_frame(&rays, i, t);
+        let name = frame_name(t, "jpg");
+        let jpg = encode_jpeg(&r.rgb, spec.jpeg_quality);
+        bytes += jpg.len() as u64;
+        w(out.join("frames").join(&name), &jpg)?;
+        let mask_name = if i % spec.truth_mask_every.max(1) == 0 {
+            let m = format!("{}.png", name.trim_end_matches(".jpg"));
+            let png = encode_png_gray(&r.truth);
+            bytes += png.len() as u64;
+            w(out.join("truth").join("masks").join(&m), &png)?;
+            m
+        } else {
+            String::new()
+        };
+        frames_csv += &format!("{},{name},{:.5},{mask_name}\n", fmt_time(t), r.cloud_fraction);
+        bar.inc(1);
+    }
+    bar.finish_and_clear();
+    let render_s = t0.elapsed().as_secs_f64() / times.len().max(1) as f64;
+    w(out.join("truth").join("frames.csv"), frames_csv.as_bytes())?;
+    // Irradiance truth to 20 minutes past the last frame, per block and plant.
+    let extra = (20.0 * 60.0 / spec.frame_step_s).ceil() as usize;
+    let all_times = World::times(scene.start, spec.frame_step_s, times.len() + extra);
+    let mut pts = vec![];
+    let mut owner = vec![];
+    for (bi, b) in scene.plant.blocks.iter().enumerate() {
+        for p in &b.points_m {
+            pts.push(*p);
+            owner.push(bi);
+        }
+    }
+    let series = scene.world.irradiance_series(&all_times, &pts);
+    let mut irr = String::from("time_utc,target,ghi_wm2,dni_wm2,dhi_wm2,ghi_clear_wm2\n");
+    for (t, row) in all_times.iter().zip(&series) {
+        let inst_clear = scene.world.instant(t).clear;
+        let nb = scene.plant.blocks.len();
+        let mut sums = vec![[0.0f64; 4]; nb + 1];
+        for (p, v) in row.iter().enumerate() {
+            for k in [owner[p], nb] {
+                sums[k][0] += v.ghi_wm2;
+                sums[k][1] += v.dni_wm2;
+                sums[k][2] += v.dhi_wm2;
+                sums[k][3] += 1.0;
+            }
+        }
+        for (k, s) in sums.iter().enumerate() {
+            let name = if k == nb { "plant" } else { scene.plant.blocks[k].name.as_str() };
+            irr += &format!("{},{name},{:.2},{:.2},{:.2},{:.2}\n", fmt_time(t), s[0] / s[3], s[1] / s[3], s[2] / s[3], inst_clear.ghi_wm2);
+        }
+    }
+    w(out.join("truth").join("irradiance.csv"), irr.as_bytes())?;
+    // Pyranometers: 1-minute means of 1-second samples with 2 % gain error and 3 W/m² noise.
+    let pyr = pyranometers(&scene.plant);
+    let pts: Vec<[f64; 2]> = pyr.iter().map(|p| p.1).collect();
+    let total_s = (times.len() + extra) as f64 * spec.frame_step_s;
+    let minutes = (total_s / 60.0).floor() as usize;
+    let secs = World::times(scene.start, 1.0, minutes * 60);
+    let samples = scene.world.irradiance_series(&secs, &pts);
+    let mut meas = String::from("# Simulated pyranometers (1-minute means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the minute\ntime_utc");
+    for (n, _) in &pyr {
+        meas += &format!(",ghi_{n}_wm2");
+    }
+    meas += ",temp_air_c,wind_speed_mps\n";
+    for m in 0..minutes {
+        meas += &fmt_time(&secs[m * 60]);
+        for (k, _) in pyr.iter().enumerate() {
+            let mean = (0..60).map(|s| samples[m * 60 + s][k].ghi_wm2).sum::<f64>() / 60.0;
+            let gain = 1.0 + 0.02 * noise::gaussian(noise::hash64(scene.seed ^ (k as u64 + 77)), noise::hash64(scene.seed ^ (k as u64 + 78))).clamp(-1.5, 1.5);
+            let n = 3.0 * noise::gaussian(noise::hash64(scene.seed ^ ((m * 16 + k) as u64 + 1000)), noise::hash64(scene.seed ^ ((m * 16 + k) as u64 + 99_999)));
+            meas += &format!(",{:.1}", (mean * gain + n).max(0.0));
+        }
+        meas += &format!(",{:.1},{:.1}\n", 22.0 + 4.0 * m as f64 / minutes.max(1) as f64, 3.0);
+    }
+    w(out.join("measurements.csv"), meas.as_bytes())?;
+    let _ = Duration::zero();
+    Ok(WriteSummary { frames: times.len(), bytes, render_s_per_frame: render_s })
+}
+
+/// A progress bar on standard error (hidden when `show` is false).
+pub fn progress_bar(len: u64, show: bool, what: &str) -> indicatif::ProgressBar {
+    if !show {
+        return indicatif::ProgressBar::hidden();
+    }
+    let b = indicatif::ProgressBar::new(len);
+    b.set_style(
+        indicatif::ProgressStyle::with_template("{msg:>10} [{bar:40}] {pos}/{len} frames, {per_sec}, eta {eta}")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
+            .progress_chars("=> "),
+    );
+    b.set_message(what.to_string());
+    b
+}

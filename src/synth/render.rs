@@ -1,0 +1,226 @@
+//! Rendering of fisheye sky frames from the synthetic world, with the per-pixel truth.
+//!
+//! Per pixel ray (direction from the same [`Camera`] the engine uses):
+//! * clear sky: luminance from the CIE standard clear sky (ISO 15469 / CIE S 011, type 12:
+//!   a = −1, b = −0.32, c = 10, d = −3, e = 0.45), colour from deep blue at the zenith toward white near
+//!   the horizon and around the sun;
+//! * cloud layers, highest first, composited where the ray meets each layer's plane: opacity
+//!   `1 − exp(−0.7 τ_slant)`; brightness falling with optical depth (a thick base is grey, a thin edge
+//!   white) and rising toward the sun (forward scattering, bright sunlit edges);
+//! * the sun disk and glare, dimmed by the cloud in front of the sun, with a blooming streak;
+//! * an optional mast, black outside the image circle, sensor noise.
+
+use rayon::prelude::*;
+
+use super::noise::{gaussian, hash64};
+use super::world::{Instant, TAU_CLEAR_MAX, TAU_THIN_MAX, World};
+use crate::camera::Camera;
+
+/// Truth class of a pixel, as written in truth masks.
+#[repr(u8)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum TruthClass {
+    /// Outside the image circle, below the horizon or obstructed.
+    Unknown = 0,
+    /// Clear sky.
+    Clear = 1,
+    /// Thin cloud (slant optical depth below 4).
+    Thin = 2,
+    /// Thick cloud.
+    Thick = 3,
+}
+
+/// A mast standing in the camera's view.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Mast {
+    /// Azimuth of the mast seen from the camera \[rad\].
+    pub azimuth_rad: f64,
+    /// The mast reaches up to this zenith angle \[rad\].
+    pub top_zenith_rad: f64,
+    /// Half width \[rad\] of azimuth at the horizon.
+    pub half_width_rad: f64,
+}
+
+/// Precomputed per-pixel geometry of a camera.
+#[derive(Debug, Clone)]
+pub struct PixelRays {
+    /// Unit ENU direction per pixel; `None` outside the lens field.
+    pub dirs: Vec<Option<[f32; 3]>>,
+    /// Width \[px\].
+    pub width: usize,
+    /// Height \[px\].
+    pub height: usize,
+}
+
+impl PixelRays {
+    /// Compute for a camera.
+    pub fn new(cam: &Camera) -> PixelRays {
+        let (w, h) = (cam.width_px as usize, cam.height_px as usize);
+        let dirs = (0..w * h)
+            .into_par_iter()
+            .map(|i| cam.unproject_enu((i % w) as f64, (i / w) as f64).map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]))
+            .collect();
+        PixelRays { dirs, width: w, height: h }
+    }
+}
+
+/// One rendered frame with its truth.
+#[derive(Debug, Clone)]
+pub struct Rendered {
+    /// The RGB frame.
+    pub rgb: image::RgbImage,
+    /// Truth class per pixel ([`TruthClass`] as u8).
+    pub truth: image::GrayImage,
+    /// Share of cloudy (thin or thick) sky pixels with zenith < 70°.
+    pub cloud_fraction: f64,
+}
+
+fn cie_clear_sky(z: f64, gamma: f64) -> f64 {
+    // ISO 15469 type 12 (CIE standard clear sky, low illuminance turbidity).
+    let (a, b, c, d, e) = (-1.0, -0.32, 10.0, -3.0, 0.45);
+    let phi = 1.0 + a * (b / z.cos().max(0.02)).exp();
+    let f = 1.0 + c * ((d * gamma).exp() - (d * std::f64::consts::FRAC_PI_2).exp()) + e * gamma.cos().powi(2);
+    phi * f
+}
+
+/// Render one frame.
+///
+/// * `cam_pos_m`: camera position (east, north, up) \[m\].
+/// * `noise_seed`: seeds the sensor noise (differs per frame).
+pub fn render(
+    world: &World,
+    inst: &Instant,
+    cam: &Camera,
+    rays: &PixelRays,
+    cam_pos_m: [f64; 3],
+    mast: Option<Mast>,
+    noise_seed: u64,
+) -> Rendered {
+    let (w, h) = (rays.width, rays.height);
+    let sun_d = inst.sun.direction_enu();
+    let sun_z = inst.sun.apparent_zenith_rad;
+    // Normalise the CIE distribution by its zenith value, then set exposure so the zenith sky
+    // reads about 150 in blue.
+    let norm = cie_clear_sky(0.0, sun_z);
+    // How much the cloud in front of the sun dims the disk and glare.
+    let sun_tau = world.tau_along(inst, cam_pos_m, sun_d);
+    let sun_vis = (-sun_tau / sun_d[2].max(0.05)).exp();
+    let sun_px = cam.project_enu(sun_d);
+    let sun_up = sun_d[2] > 0.0;
+    let n_layers = world.layers.len();
+    // Angular size of a pixel near the image centre.
+    let pixel_rad = 1.0 / (cam.f_px * cam.projection.radial_derivative(0.0));
+    let rows: Vec<(Vec<u8>, Vec<u8>, usize, usize)> = (0..h)
+        .into_par_iter()
+        .map(|y| {
+            let mut rgb = vec![0u8; w * 3];
+            let mut tr = vec![0u8; w];
+            let mut taus = Vec::with_capacity(n_layers);
+            let (mut cloudy, mut sky70) = (0usize, 0usize);
+            for x in 0..w {
+                let Some(df) = rays.dirs[y * w + x] else { continue };
+                let d = [df[0] as f64, df[1] as f64, df[2] as f64];
+                let mut col;
+                let mut class = TruthClass::Unknown;
+                let z = d[2].clamp(-1.0, 1.0).acos();
+                if d[2] <= 0.0 {
+                    // Ground and horizon objects.
+                    col = [62.0, 58.0, 50.0];
+                } else {
+                    let cos_g = (d[0] * sun_d[0] + d[1] * sun_d[1] + d[2] * sun_d[2]).clamp(-1.0, 1.0);
+                    let gamma = cos_g.acos();
+                    let lum = if sun_up { cie_clear_sky(z, gamma) / norm } else { 0.05 };
+                    let white = (0.06 + 0.5 * (-gamma / 0.3).exp() + 0.5 * (z / std::f64::consts::FRAC_PI_2).powi(5)).min(0.92);
+                    let blue = [0.30, 0.52, 1.0];
+                    col = [0.0; 3];
+                    for c in 0..3 {
+                        col[c] = 150.0 * lum.min(3.0) * (blue[c] * (1.0 - white) + white);
+                    }
+                    // Clouds, highest first.
+                    world.taus_along(inst, cam_pos_m, d, pixel_rad, &mut taus);
+                    let mut slant_total = 0.0;
+                    for li in (0..n_layers).rev() {
+                        let tau = taus[li];
+                        if tau <= 0.0 {
+                            continue;
+                        }
+                        let slant = tau / d[2].max(0.02);
+                        slant_total += slant;
+                        let alpha = 1.0 - (-0.7 * slant).exp();
+                        let base = 0.42 + 0.58 / (1.0 + 0.09 * tau);
+                        let fwd = 1.0 + 0.9 * (-gamma / 0.3).exp();
+                        let level = (205.0 * base * fwd).min(255.0);
+                        let tint = [0.94, 0.96, 1.0];
+                        for c in 0..3 {
+                            col[c] = alpha * level * tint[c] + (1.0 - alpha) * col[c];
+                        }
+                    }
+                    // Sun disk and glare, dimmed by cloud in front of the sun.
+                    if sun_up {
+                        let g_deg = gamma.to_degrees();
+                        let glare = sun_vis * (4000.0 * (-g_deg / 0.6).exp() + 140.0 * (-g_deg / 4.0).exp())
+                            + (1.0 - sun_vis).powi(2) * 0.0;
+                        for c in col.iter_mut() {
+                            *c += glare;
+                        }
+                        if g_deg < 0.6 && sun_vis > 0.2 {
+                            col = [255.0; 3];
+                        }
+                    }
+                    let vertical_total: f64 = taus.iter().sum();
+                    class = if vertical_total < TAU_CLEAR_MAX {
+                        TruthClass::Clear
+                    } else if slant_total < TAU_THIN_MAX {
+                        TruthClass::Thin
+                    } else {
+                        TruthClass::Thick
+                    };
+                    if let Some(m) = mast {
+                        let mut da = (crate::sun::zenith_azimuth_of(d).1 - m.azimuth_rad).abs();
+                        da = da.min(std::f64::consts::TAU - da);
+                        if z > m.top_zenith_rad && da * z.sin() < m.half_width_rad {
+                            col = [38.0, 38.0, 40.0];
+                            class = TruthClass::Unknown;
+                        }
+                    }
+                    if z < 70f64.to_radians() && class != TruthClass::Unknown {
+                        sky70 += 1;
+                        if class != TruthClass::Clear {
+                            cloudy += 1;
+                        }
+                    }
+                }
+                // Blooming streak along the sensor column through the sun.
+                if let Some((sx, sy)) = sun_px {
+                    if (x as f64 - sx).abs() < 1.0 && sun_vis > 0.3 {
+                        let add = 160.0 * sun_vis * (-(y as f64 - sy).abs() / (0.15 * h as f64)).exp();
+                        for c in col.iter_mut() {
+                            *c += add;
+                        }
+                    }
+                }
+                let i = (y * w + x) as u64;
+                for c in 0..3 {
+                    let n = 1.2 * gaussian(hash64(noise_seed ^ (i * 3 + c as u64)), hash64(noise_seed.rotate_left(17) ^ (i * 3 + c as u64)));
+                    rgb[x * 3 + c] = (col[c] + n).round().clamp(0.0, 255.0) as u8;
+                }
+                tr[x] = class as u8;
+            }
+            (rgb, tr, cloudy, sky70)
+        })
+        .collect();
+    let mut rgb = Vec::with_capacity(w * h * 3);
+    let mut truth = Vec::with_capacity(w * h);
+    let (mut cloudy, mut sky70) = (0, 0);
+    for (r, t, c, s) in rows {
+        rgb.extend_from_slice(&r);
+        truth.extend_from_slice(&t);
+        cloudy += c;
+        sky70 += s;
+    }
+    Rendered {
+        rgb: image::RgbImage::from_raw(w as u32, h as u32, rgb).expect("buffer sized w*h*3"),
+        truth: image::GrayImage::from_raw(w as u32, h as u32, truth).expect("buffer sized w*h"),
+        cloud_fraction: if sky70 > 0 { cloudy as f64 / sky70 as f64 } else { 0.0 },
+    }
+}
