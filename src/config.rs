@@ -118,7 +118,7 @@ pub struct SiteFile {
     pub forecast: ForecastSection,
     /// Cloud segmentation thresholds.
     #[serde(default)]
-    pub segment: crate::qc::QcParams,
+    pub segment: crate::segment::SegmentParams,
     /// Frame quality control.
     #[serde(default)]
     pub qc: crate::qc::QcParams,

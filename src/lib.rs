@@ -45,7 +45,7 @@ pub mod io;
 pub mod plant;
 pub mod qc;
 // pub mod replay;
-// pub mod segment;
+pub mod segment;
 pub mod sun;
 pub mod synth;
 // pub mod verify;

@@ -24,7 +24,7 @@ pub enum TruthClass {
     Unknown = 0,
     /// Clear sky.
     Clear = 1,
-    /// Thin cloud (slant optical depth below 4).
+    /// Thin cloud (slant optical depth below 2).
     Thin = 2,
     /// Thick cloud.
     Thick = 3,
@@ -131,7 +131,7 @@ pub fn render(
                     let gamma = cos_g.acos();
                     let lum = if sun_up { cie_clear_sky(z, gamma) / norm } else { 0.05 };
                     let white = (0.06 + 0.5 * (-gamma / 0.3).exp() + 0.5 * (z / std::f64::consts::FRAC_PI_2).powi(5)).min(0.92);
-                    let blue = [0.30, 0.52, 1.0];
+                    let blue = [0.46, 0.63, 1.0];
                     col = [0.0; 3];
                     for c in 0..3 {
                         col[c] = 150.0 * lum.min(3.0) * (blue[c] * (1.0 - white) + white);
@@ -198,6 +198,11 @@ pub fn render(
                             *c += add;
                         }
                     }
+                }
+                // Camera response: a soft shoulder so bright sky whitens instead of clipping
+                // (channels compress toward 255 at different rates, as in real sky images).
+                for c in col.iter_mut() {
+                    *c = 262.0 * (1.0 - (-*c / 190.0).exp());
                 }
                 let i = (y * w + x) as u64;
                 for c in 0..3 {

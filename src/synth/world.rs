@@ -63,8 +63,9 @@ impl LayerSpec {
 
 /// Vertical optical depth below which a column counts as clear.
 pub const TAU_CLEAR_MAX: f64 = 0.4;
-/// Slant optical depth from which cloud counts as thick (below: thin).
-pub const TAU_THIN_MAX: f64 = 4.0;
+/// Slant optical depth from which cloud counts as thick (below: thin, the sky still shows through:
+/// opacity `1 − exp(−0.7 τ)` below 75 %).
+pub const TAU_THIN_MAX: f64 = 2.0;
 
 /// A layer ready to evaluate.
 #[derive(Debug, Clone)]

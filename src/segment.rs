@@ -1,0 +1,566 @@
+//! Cloud segmentation: a class per sky pixel (clear, thin, thick, unknown) and the cloud fraction.
+//!
+//! # Method
+//! The feature is the red/blue ratio `R/B` (Long et al. 2006), compared not with one fixed threshold
+//! but with the ratio the *clear* sky has in the same place: a clear-sky reference indexed by the
+//! pixel's zenith angle `z` and its angle to the sun `γ` (Chow et al. 2011; Ghonima et al. 2012), so the
+//! white circumsolar sky and horizon haze are not called cloud. The reference is, in order of
+//! preference,
+//! 1. a **library learned from clear frames** of this camera (bins of 2° in `z` and `γ`, updated with
+//!    an exponential mean from frames whose cloud fraction is small), where a bin has data;
+//! 2. else a **parametric default** `c0 + c1 exp(−γ / γs) + c2 (z / 90°)⁴` shifted by a per-frame
+//!    offset: the `offset_quantile` of `R/B − default` over the pixels that sit at most
+//!    `offset_band` above the default (the frame's own clear sky), when at least `offset_min_share` of
+//!    the sky qualifies. The default constants were fitted to the clear pixels of the WSISEG
+//!    sample (Xie et al. 2020) and are configurable.
+//!
+//! A pixel's cloudiness score is `s = (R/B − ref) / (cloud_rb − ref)`: 0 on the clear-sky reference,
+//! 1 at the ratio of white cloud. Thin cloud from `s ≥ thin_score`, thick from `s ≥ thick_score`
+//! (thin cloud lets the sky's blue through, so its ratio lies between the two). The saturated sun disk
+//! (all channels ≥ `saturation_level` within `sun_exclusion_deg`... of the sun) is *unknown*.
+//! The continuous score also feeds cloud motion.
+//!
+//! # References
+//! * C. N. Long, J. M. Sabburg, J. Calbó, D. Pagès, "Retrieving cloud characteristics from
+//!   ground-based daytime color all-sky images", *J. Atmos. Oceanic Technol.* 23:633–652, 2006.
+//! * C. W. Chow et al., "Intra-hour forecasting with a total sky imager at the UC San Diego solar
+//!   energy testbed", *Solar Energy* 85(11):2881–2893, 2011.
+//! * M. S. Ghonima et al., "A method for cloud detection and opacity classification based on ground
+//!   based sky imagery", *Atmos. Meas. Tech.* 5:2881–2892, 2012.
+//! * W. Xie et al., "SegCloud: a novel cloud image segmentation model using a deep convolutional
+//!   neural network for ground-based all-sky-view camera observation", *Atmos. Meas. Tech.*
+//!   13:1953–1961, 2020 (the WSISEG data).
+
+use std::path::Path;
+
+use serde::{Deserialize, Serialize};
+
+use crate::camera::{Camera, Orientation, Projection};
+use crate::config::{ConfigError, check_range};
+
+/// Pixel class as written in class masks.
+#[repr(u8)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Class {
+    /// Outside the sky, obstructed, or not judged (sun disk).
+    Unknown = 0,
+    /// Clear sky.
+    Clear = 1,
+    /// Thin cloud.
+    Thin = 2,
+    /// Thick cloud.
+    Thick = 3,
+}
+
+impl Class {
+    /// From the mask value.
+    pub fn from_u8(v: u8) -> Class {
+        match v {
+            1 => Class::Clear,
+            2 => Class::Thin,
+            3 => Class::Thick,
+            _ => Class::Unknown,
+        }
+    }
+}
+
+/// `[segment]` in `site.toml`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct SegmentParams {
+    /// Default reference: constant term.
+    pub reference_c0: f64,
+    /// Default reference: circumsolar term.
+    pub reference_c1: f64,
+    /// Default reference: angular scale of the circumsolar term \[°\].
+    pub reference_gamma_scale_deg: f64,
+    /// Default reference: horizon term.
+    pub reference_c2: f64,
+    /// R/B of white cloud.
+    pub cloud_rb: f64,
+    /// Score from which a pixel is thin cloud.
+    pub thin_score: f64,
+    /// Score from which a pixel is thick cloud.
+    pub thick_score: f64,
+    /// Per-frame offset: pixels at most this far above the default count as the frame's clear sky.
+    pub offset_band: f64,
+    /// Per-frame offset: quantile of their departure from the default.
+    pub offset_quantile: f64,
+    /// Per-frame offset: least share of the sky that must qualify.
+    pub offset_min_share: f64,
+    /// Per-frame offset: lower limit.
+    pub offset_min: f64,
+    /// Per-frame offset: upper limit.
+    pub offset_max: f64,
+    /// Saturated pixels within this angle of the sun are unknown \[°\].
+    pub sun_exclusion_deg: f64,
+    /// A channel at or above this level is saturated.
+    pub saturation_level: u8,
+    /// Pixels beyond this zenith angle are not classified \[°\].
+    pub max_zenith_deg: f64,
+    /// Cloud fraction is counted within this zenith angle \[°\].
+    pub cloud_fraction_zenith_deg: f64,
+    /// Frames with a cloud fraction at most this update the learned clear-sky library.
+    pub library_max_cloud_fraction: f64,
+    /// Weight of a new frame in the library's exponential mean.
+    pub library_rate: f64,
+}
+
+impl Default for SegmentParams {
+    fn default() -> Self {
+        Self {
+            reference_c0: 0.45,
+            reference_c1: 0.38,
+            reference_gamma_scale_deg: 40.0,
+            reference_c2: 0.0,
+            cloud_rb: 0.93,
+            thin_score: 0.50,
+            thick_score: 0.80,
+            offset_band: 0.05,
+            offset_quantile: 0.70,
+            offset_min_share: 0.10,
+            offset_min: -0.15,
+            offset_max: 0.08,
+            sun_exclusion_deg: 4.0,
+            saturation_level: 250,
+            max_zenith_deg: 90.0,
+            cloud_fraction_zenith_deg: 70.0,
+            library_max_cloud_fraction: 0.02,
+            library_rate: 0.2,
+        }
+    }
+}
+
+impl SegmentParams {
+    /// Check ranges.
+    ///
+    /// # Errors
+    /// The first field out of range.
+    pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
+        let f = |n: &str| format!("segment.{n}");
+        check_range(file, &f("reference_c0"), self.reference_c0, 0.0, 2.0)?;
+        check_range(file, &f("reference_c1"), self.reference_c1, 0.0, 2.0)?;
+        check_range(file, &f("reference_gamma_scale_deg"), self.reference_gamma_scale_deg, 1.0, 180.0)?;
+        check_range(file, &f("reference_c2"), self.reference_c2, -1.0, 2.0)?;
+        check_range(file, &f("cloud_rb"), self.cloud_rb, 0.3, 2.0)?;
+        check_range(file, &f("thin_score"), self.thin_score, 0.01, 2.0)?;
+        check_range(file, &f("thick_score"), self.thick_score, self.thin_score, 3.0)?;
+        check_range(file, &f("offset_band"), self.offset_band, -1.0, 1.0)?;
+        check_range(file, &f("offset_quantile"), self.offset_quantile, 0.0, 1.0)?;
+        check_range(file, &f("offset_min_share"), self.offset_min_share, 0.0, 1.0)?;
+        check_range(file, &f("offset_min"), self.offset_min, -1.0, 0.0)?;
+        check_range(file, &f("offset_max"), self.offset_max, 0.0, 1.0)?;
+        check_range(file, &f("sun_exclusion_deg"), self.sun_exclusion_deg, 0.0, 45.0)?;
+        check_range(file, &f("max_zenith_deg"), self.max_zenith_deg, 10.0, 100.0)?;
+        check_range(file, &f("cloud_fraction_zenith_deg"), self.cloud_fraction_zenith_deg, 5.0, 90.0)?;
+        check_range(file, &f("library_max_cloud_fraction"), self.library_max_cloud_fraction, 0.0, 1.0)?;
+        check_range(file, &f("library_rate"), self.library_rate, 0.0, 1.0)
+    }
+
+    /// The parametric default reference R/B at zenith `z_deg` and sun angle `gamma_deg`.
+    #[inline]
+    pub fn default_reference(&self, z_deg: f32, gamma_deg: f32) -> f32 {
+        let zr = z_deg / 90.0;
+        (self.reference_c0 + self.reference_c1 * (-(gamma_deg as f64) / self.reference_gamma_scale_deg).exp()) as f32
+            + self.reference_c2 as f32 * zr * zr * zr * zr
+    }
+}
+
+const LIB_BIN_DEG: f32 = 2.0;
+const LIB_Z_BINS: usize = 50;
+const LIB_G_BINS: usize = 90;
+
+/// The clear-sky reference: learned library plus the parametric default with a per-frame offset.
+#[derive(Debug, Clone)]
+pub struct Reference {
+    /// Library mean R/B per (zenith, sun angle) bin.
+    lib: Vec<f32>,
+    /// Library weight per bin (0 = no data).
+    weight: Vec<f32>,
+    /// Frames that updated the library.
+    pub library_frames: usize,
+}
+
+impl Default for Reference {
+    fn default() -> Self {
+        Self { lib: vec![0.0; LIB_Z_BINS * LIB_G_BINS], weight: vec![0.0; LIB_Z_BINS * LIB_G_BINS], library_frames: 0 }
+    }
+}
+
+#[inline]
+fn lib_index(z_deg: f32, gamma_deg: f32) -> usize {
+    let zi = ((z_deg / LIB_BIN_DEG) as usize).min(LIB_Z_BINS - 1);
+    let gi = ((gamma_deg / LIB_BIN_DEG) as usize).min(LIB_G_BINS - 1);
+    zi * LIB_G_BINS + gi
+}
+
+/// A pixel's geometry for segmentation: zenith and angle to the sun \[°\].
+#[derive(Debug, Clone, Copy)]
+pub struct PixelGeom {
+    /// Zenith angle \[°\].
+    pub z_deg: f32,
+    /// Angle to the sun \[°\] (180 when no sun is known).
+    pub gamma_deg: f32,
+}
+
+/// The reference state for one frame (library + offset).
+#[derive(Debug, Clone, Copy)]
+pub struct FrameReference<'a> {
+    reference: &'a Reference,
+    params: &'a SegmentParams,
+    /// The frame's offset from the default.
+    pub offset: f32,
+}
+
+impl FrameReference<'_> {
+    /// Reference R/B at a pixel.
+    #[inline]
+    pub fn at(&self, g: PixelGeom) -> f32 {
+        let i = lib_index(g.z_deg, g.gamma_deg);
+        if self.reference.weight[i] > 0.5 {
+            self.reference.lib[i]
+        } else {
+            self.params.default_reference(g.z_deg, g.gamma_deg) + self.offset
+        }
+    }
+
+    /// Cloudiness score and class of one pixel.
+    #[inline]
+    pub fn classify(&self, rgb: [u8; 3], g: PixelGeom) -> (f32, Class) {
+        let p = self.params;
+        if g.z_deg > p.max_zenith_deg as f32 {
+            return (f32::NAN, Class::Unknown);
+        }
+        let sat = p.saturation_level;
+        if g.gamma_deg < p.sun_exclusion_deg as f32 && rgb[0] >= sat && rgb[1] >= sat && rgb[2] >= sat {
+            return (f32::NAN, Class::Unknown);
+        }
+        let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+        let r = self.at(g);
+        let denom = (p.cloud_rb as f32 - r).max(0.03);
+        let s = (rb - r) / denom;
+        let c = if s >= p.thick_score as f32 {
+            Class::Thick
+        } else if s >= p.thin_score as f32 {
+            Class::Thin
+        } else {
+            Class::Clear
+        };
+        (s, c)
+    }
+}
+
+impl Reference {
+    /// How many library bins hold data.
+    pub fn library_bins(&self) -> usize {
+        self.weight.iter().filter(|w| **w > 0.5).count()
+    }
+
+    /// The reference for one frame from a sample of its sky pixels.
+    pub fn for_frame<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) -> FrameReference<'a> {
+        let mut d = vec![];
+        let mut n = 0usize;
+        for (rgb, g) in sample {
+            if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
+                continue;
+            }
+            n += 1;
+            let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+            let dd = rb - params.default_reference(g.z_deg, g.gamma_deg);
+            if dd < params.offset_band as f32 {
+                d.push(dd);
+            }
+        }
+        let offset = if n > 0 && d.len() as f64 >= params.offset_min_share * n as f64 && !d.is_empty() {
+            d.sort_by(f32::total_cmp);
+            let q = d[((d.len() - 1) as f64 * params.offset_quantile).round() as usize];
+            q.clamp(params.offset_min as f32, params.offset_max as f32)
+        } else {
+            0.0
+        };
+        FrameReference { reference: self, params, offset }
+    }
+
+    /// Update the library with a frame's clear pixels (call only for frames judged clear).
+    pub fn learn(&mut self, params: &SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) {
+        let mut sum = vec![0f64; LIB_Z_BINS * LIB_G_BINS];
+        let mut cnt = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
+        for (rgb, g) in sample {
+            if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
+                continue;
+            }
+            let i = lib_index(g.z_deg, g.gamma_deg);
+            sum[i] += rgb[0] as f64 / (rgb[2] as f64).max(1.0);
+            cnt[i] += 1;
+        }
+        let rate = params.library_rate as f32;
+        for i in 0..sum.len() {
+            if cnt[i] >= 3 {
+                let m = (sum[i] / cnt[i] as f64) as f32;
+                if self.weight[i] == 0.0 {
+                    self.lib[i] = m;
+                } else {
+                    self.lib[i] += rate * (m - self.lib[i]);
+                }
+                self.weight[i] = (self.weight[i] + 1.0).min(100.0);
+            }
+        }
+        self.library_frames += 1;
+    }
+}
+
+/// A segmented image.
+#[derive(Debug, Clone)]
+pub struct Segmentation {
+    /// Class per pixel ([`Class`] as u8).
+    pub classes: image::GrayImage,
+    /// Cloudy share of classified sky pixels within the cloud-fraction zenith.
+    pub cloud_fraction: f64,
+    /// The frame's reference offset.
+    pub offset: f32,
+}
+
+/// Per-pixel geometry of an image: zenith and unit ENU direction, with the sky mask.
+#[derive(Debug, Clone)]
+pub struct ImageGeometry {
+    /// Width.
+    pub width: u32,
+    /// Height.
+    pub height: u32,
+    /// Zenith \[°\] per pixel; NaN outside the sky.
+    pub z_deg: Vec<f32>,
+    /// Unit ENU direction per pixel.
+    pub dir: Vec<[f32; 3]>,
+}
+
+impl ImageGeometry {
+    /// From a camera and an optional obstruction mask (white = sky).
+    pub fn from_camera(cam: &Camera, obstruction: Option<&image::GrayImage>) -> ImageGeometry {
+        use rayon::prelude::*;
+        let (w, h) = (cam.width_px as usize, cam.height_px as usize);
+        let v: Vec<(f32, [f32; 3])> = (0..w * h)
+            .into_par_iter()
+            .map(|i| {
+                let (x, y) = ((i % w) as u32, (i / w) as u32);
+                let blocked = obstruction.map(|m| m.get_pixel(x, y).0[0] < 128).unwrap_or(false);
+                match cam.unproject_enu(x as f64, y as f64) {
+                    Some(d) if !blocked && d[2] > 0.0 => (d[2].acos().to_degrees() as f32, [d[0] as f32, d[1] as f32, d[2] as f32]),
+                    _ => (f32::NAN, [0.0; 3]),
+                }
+            })
+            .collect();
+        ImageGeometry { width: cam.width_px, height: cam.height_px, z_deg: v.iter().map(|p| p.0).collect(), dir: v.iter().map(|p| p.1).collect() }
+    }
+}
+
+/// Angle \[°\] between a pixel direction and the sun direction; 180 without a sun.
+#[inline]
+pub fn gamma_deg(dir: [f32; 3], sun: Option<[f32; 3]>) -> f32 {
+    match sun {
+        Some(s) => (dir[0] * s[0] + dir[1] * s[1] + dir[2] * s[2]).clamp(-1.0, 1.0).acos().to_degrees(),
+        None => 180.0,
+    }
+}
+
+/// Segment a whole image.
+pub fn segment_image(
+    img: &image::RgbImage,
+    geom: &ImageGeometry,
+    sun_dir: Option<[f32; 3]>,
+    params: &SegmentParams,
+    reference: &Reference,
+) -> Segmentation {
+    let (w, h) = (geom.width as usize, geom.height as usize);
+    let raw = img.as_raw();
+    let px = |i: usize| [raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]];
+    let g = |i: usize| PixelGeom { z_deg: geom.z_deg[i], gamma_deg: gamma_deg(geom.dir[i], sun_dir) };
+    let sample = (0..w * h).step_by(2).filter(|&i| !geom.z_deg[i].is_nan()).map(|i| (px(i), g(i)));
+    let fr = reference.for_frame(params, sample);
+    let mut classes = vec![0u8; w * h];
+    let (mut cloudy, mut counted) = (0usize, 0usize);
+    for i in 0..w * h {
+        if geom.z_deg[i].is_nan() {
+            continue;
+        }
+        let gi = g(i);
+        let (_, c) = fr.classify(px(i), gi);
+        classes[i] = c as u8;
+        if c != Class::Unknown && gi.z_deg < params.cloud_fraction_zenith_deg as f32 {
+            counted += 1;
+            if c != Class::Clear {
+                cloudy += 1;
+            }
+        }
+    }
+    Segmentation {
+        classes: image::GrayImage::from_raw(w as u32, h as u32, classes).expect("w*h buffer"),
+        cloud_fraction: if counted > 0 { cloudy as f64 / counted as f64 } else { f64::NAN },
+        offset: fr.offset,
+    }
+}
+
+/// The image circle found in an image: centre and radius \[px\].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ImageCircle {
+    /// Centre column.
+    pub cx_px: f64,
+    /// Centre row.
+    pub cy_px: f64,
+    /// Radius.
+    pub radius_px: f64,
+}
+
+/// Find the image circle of a fisheye frame: the pixels brighter than a dark level (max channel
+/// above 40) give the centre (their centroid) and the radius (from their area).
+pub fn fit_image_circle(img: &image::RgbImage) -> Option<ImageCircle> {
+    let (mut sx, mut sy, mut n) = (0.0, 0.0, 0.0);
+    for (x, y, p) in img.enumerate_pixels() {
+        if p.0.iter().copied().max().unwrap_or(0) > 40 {
+            sx += x as f64;
+            sy += y as f64;
+            n += 1.0;
+        }
+    }
+    (n > 100.0).then(|| ImageCircle { cx_px: sx / n, cy_px: sy / n, radius_px: (n / std::f64::consts::PI).sqrt() })
+}
+
+/// Find the sun in an image: among the blobs of saturated pixels (all channels ≥ `level`, at least
+/// `min_px` pixels), the one whose neighbourhood (`radius_px`) holds the most saturated pixels — the
+/// sun with its glare, rather than one bright cloud — and the centroid of the saturated pixels in
+/// that neighbourhood. Returns (column, row, saturated pixels counted).
+pub fn find_sun_blob(img: &image::RgbImage, level: u8, min_px: usize, radius_px: f64) -> Option<(f64, f64, usize)> {
+    let (w, h) = img.dimensions();
+    let sat: Vec<bool> = img.pixels().map(|p| p.0.iter().all(|c| *c >= level)).collect();
+    let mut seen = vec![false; sat.len()];
+    let mut seeds: Vec<(f64, f64)> = vec![];
+    let mut stack = vec![];
+    for start in 0..sat.len() {
+        if !sat[start] || seen[start] {
+            continue;
+        }
+        let (mut sx, mut sy, mut n) = (0.0, 0.0, 0usize);
+        stack.push(start);
+        seen[start] = true;
+        while let Some(i) = stack.pop() {
+            let (x, y) = ((i as u32 % w) as i64, (i as u32 / w) as i64);
+            sx += x as f64;
+            sy += y as f64;
+            n += 1;
+            for (dx, dy) in [(1, 0), (-1, 0), (0, 1), (0, -1)] {
+                let (nx, ny) = (x + dx, y + dy);
+                if nx >= 0 && ny >= 0 && nx < w as i64 && ny < h as i64 {
+                    let j = (ny as u32 * w + nx as u32) as usize;
+                    if sat[j] && !seen[j] {
+                        seen[j] = true;
+                        stack.push(j);
+                    }
+                }
+            }
+        }
+        if n >= min_px {
+            seeds.push((sx / n as f64, sy / n as f64));
+        }
+    }
+    if seeds.is_empty() {
+        return None;
+    }
+    let sat_pts: Vec<(f64, f64)> =
+        sat.iter().enumerate().filter(|(_, s)| **s).map(|(i, _)| ((i as u32 % w) as f64, (i as u32 / w) as f64)).collect();
+    let r2 = radius_px * radius_px;
+    let near = |c: (f64, f64)| sat_pts.iter().filter(move |p| (p.0 - c.0).powi(2) + (p.1 - c.1).powi(2) <= r2);
+    let best = seeds.iter().max_by_key(|c| near(**c).count())?;
+    let (mut sx, mut sy, mut n) = (0.0, 0.0, 0usize);
+    for p in near(*best) {
+        sx += p.0;
+        sy += p.1;
+        n += 1;
+    }
+    Some((sx / n as f64, sy / n as f64, n))
+}
+
+/// Geometry for an image without calibration or time: the fitted image circle taken as the 90°
+/// field of a level equidistant lens, and the sun found in the image.
+pub fn geometry_free(img: &image::RgbImage) -> Option<(Camera, Option<[f32; 3]>)> {
+    let c = fit_image_circle(img)?;
+    let cam = Camera::new(
+        img.width(),
+        img.height(),
+        c.cx_px,
+        c.cy_px,
+        c.radius_px / std::f64::consts::FRAC_PI_2,
+        Projection::Equidistant,
+        std::f64::consts::FRAC_PI_2,
+        Orientation::default(),
+    );
+    let sun = find_sun_blob(img, 245, 5, 0.12 * c.radius_px)
+        .and_then(|(x, y, _)| cam.unproject_enu(x, y))
+        .map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]);
+    Some((cam, sun))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn geom(z: f32, g: f32) -> PixelGeom {
+        PixelGeom { z_deg: z, gamma_deg: g }
+    }
+
+    #[test]
+    fn blue_is_clear_white_is_thick_grey_blue_is_thin() {
+        let p = SegmentParams::default();
+        let r = Reference::default();
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        assert_eq!(fr.classify([70, 110, 200], geom(30.0, 90.0)).1, Class::Clear);
+        assert_eq!(fr.classify([230, 232, 240], geom(30.0, 90.0)).1, Class::Thick);
+        assert_eq!(fr.classify([160, 175, 210], geom(30.0, 90.0)).1, Class::Thin);
+    }
+
+    #[test]
+    fn whitish_circumsolar_sky_is_not_cloud() {
+        // R/B 0.80 is cloud far from the sun but clear sky 5° from it (default reference there: 0.81).
+        let p = SegmentParams::default();
+        let r = Reference::default();
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        assert_eq!(fr.classify([200, 220, 250], geom(40.0, 5.0)).1, Class::Clear);
+        assert_ne!(fr.classify([200, 220, 250], geom(40.0, 100.0)).1, Class::Clear);
+    }
+
+    #[test]
+    fn saturated_sun_is_unknown_and_beyond_zenith_limit_too() {
+        let p = SegmentParams::default();
+        let r = Reference::default();
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        assert_eq!(fr.classify([255, 255, 255], geom(30.0, 1.0)).1, Class::Unknown);
+        assert_eq!(fr.classify([70, 110, 200], geom(91.0, 90.0)).1, Class::Unknown);
+    }
+
+    #[test]
+    fn library_overrides_default_once_learned() {
+        let p = SegmentParams::default();
+        let mut r = Reference::default();
+        let sample = (0..50).map(|_| ([150u8, 170, 200], geom(31.0, 91.0)));
+        r.learn(&p, sample);
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        assert!((fr.at(geom(31.0, 91.0)) - 0.75).abs() < 1e-6);
+        assert_eq!(fr.classify([150, 170, 200], geom(31.0, 91.0)).1, Class::Clear);
+    }
+
+    #[test]
+    fn sun_blob_and_circle_found() {
+        let mut img = image::RgbImage::new(100, 100);
+        for (x, y, p) in img.enumerate_pixels_mut() {
+            let r = ((x as f64 - 50.0).powi(2) + (y as f64 - 48.0).powi(2)).sqrt();
+            if r < 40.0 {
+                *p = image::Rgb([80, 120, 200]);
+            }
+            if ((x as f64 - 60.0).powi(2) + (y as f64 - 40.0).powi(2)).sqrt() < 3.0 {
+                *p = image::Rgb([255, 255, 255]);
+            }
+        }
+        let c = fit_image_circle(&img).unwrap();
+        assert!((c.cx_px - 50.0).abs() < 0.5 && (c.cy_px - 48.0).abs() < 0.5 && (c.radius_px - 40.0).abs() < 1.0);
+        let (sx, sy, n) = find_sun_blob(&img, 250, 5, 10.0).unwrap();
+        assert!((sx - 60.0).abs() < 0.01 && (sy - 40.0).abs() < 0.01 && n > 20);
+    }
+}
