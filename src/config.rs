@@ -124,7 +124,10 @@ pub struct SiteFile {
     pub qc: crate::qc::QcParams,
     /// Cloud motion estimation.
     #[serde(default)]
-    pub motion: crate::qc::QcParams,
+    pub motion: crate::motion::MotionParams,
+    /// The cloud-map grid.
+    #[serde(default)]
+    pub map: crate::cloudmap::MapParams,
 }
 
 /// `[site]`.
@@ -429,6 +432,7 @@ impl SiteFile {
         self.segment.validate(path)?;
         self.qc.validate(path)?;
         self.motion.validate(path)?;
+        self.map.validate(path)?;
         Ok(())
     }
 }

@@ -36,11 +36,11 @@
 pub mod camera;
 pub mod cli;
 pub mod clearsky;
-// pub mod cloudmap;
+pub mod cloudmap;
 pub mod config;
 // pub mod forecast;
 pub mod io;
-// pub mod motion;
+pub mod motion;
 // pub mod nowcast;
 pub mod plant;
 pub mod qc;

@@ -159,6 +159,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         segment: Default::default(),
         qc: Default::default(),
         motion: Default::default(),
+        map: Default::default(),
     }
 }
 

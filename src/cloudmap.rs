@@ -1,0 +1,272 @@
+//! The cloud map: a square grid on the cloud plane at the cloud base height, centred above the
+//! camera, holding each cell's cloudiness score and class.
+//!
+//! A ray from the camera in direction `d` meets the plane at height `h` above the camera at
+//! `h · (d_e / d_u, d_n / d_u)` (ray–plane intersection). For each cell the reverse: the direction of
+//! the cell's centre, projected by the camera model to its nearest pixel. This look-up table depends
+//! only on the camera and `h`, so it is built once per base-height bucket and cached; each frame then
+//! reads, converts and classifies only the pixels the map needs, in one pass.
+//!
+//! Grid: `n × n` cells, row-major, cell `(i, j)` centred at east `(i + ½ − n/2)·cell_m`, north
+//! `(j + ½ − n/2)·cell_m` from the camera (rows grow northward). The grid spans
+//! `2 h tan(max_zenith)`, so its angular coverage is the same at every height.
+
+use std::collections::HashMap;
+use std::path::Path;
+use std::sync::Arc;
+
+use serde::{Deserialize, Serialize};
+
+use crate::camera::Camera;
+use crate::config::{ConfigError, check_range};
+use crate::segment::{Class, PixelGeom, Reference, SegmentParams, gamma_deg};
+
+/// `[cloudmap]` settings (held in `[motion]` of `site.toml`, see [`crate::motion::MotionParams`]).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct MapParams {
+    /// Cells along each side.
+    pub cells: usize,
+    /// The grid reaches out to this zenith angle \[°\].
+    pub max_zenith_deg: f64,
+    /// Base heights are bucketed to this step for the look-up table cache \[m\].
+    pub height_bucket_m: f64,
+}
+
+impl Default for MapParams {
+    fn default() -> Self {
+        Self { cells: 256, max_zenith_deg: 77.0, height_bucket_m: 50.0 }
+    }
+}
+
+impl MapParams {
+    /// Check ranges.
+    ///
+    /// # Errors
+    /// The first field out of range.
+    pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
+        check_range(file, "map.cells", self.cells as f64, 32.0, 2048.0)?;
+        check_range(file, "map.max_zenith_deg", self.max_zenith_deg, 30.0, 85.0)?;
+        check_range(file, "map.height_bucket_m", self.height_bucket_m, 1.0, 1000.0)
+    }
+}
+
+/// Geometry of a cloud-map grid.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Grid {
+    /// Cells along each side.
+    pub n: usize,
+    /// Cell size \[m\].
+    pub cell_m: f64,
+    /// Height of the plane above the camera \[m\].
+    pub height_m: f64,
+}
+
+impl Grid {
+    /// The grid for a plane height.
+    pub fn new(params: &MapParams, height_m: f64) -> Grid {
+        let extent = 2.0 * height_m * params.max_zenith_deg.to_radians().tan();
+        Grid { n: params.cells, cell_m: extent / params.cells as f64, height_m }
+    }
+
+    /// Centre of cell (i, j), (east, north) from the camera \[m\].
+    #[inline]
+    pub fn cell_centre_m(&self, i: usize, j: usize) -> [f64; 2] {
+        let h = self.n as f64 / 2.0;
+        [(i as f64 + 0.5 - h) * self.cell_m, (j as f64 + 0.5 - h) * self.cell_m]
+    }
+
+    /// Continuous cell coordinates of a plane point (east, north) from the camera \[m\].
+    #[inline]
+    pub fn to_cell(&self, p: [f64; 2]) -> (f64, f64) {
+        let h = self.n as f64 / 2.0;
+        (p[0] / self.cell_m + h - 0.5, p[1] / self.cell_m + h - 0.5)
+    }
+}
+
+/// Cell → pixel look-up table for one camera and one plane height.
+#[derive(Debug, Clone)]
+pub struct Lut {
+    /// The grid.
+    pub grid: Grid,
+    /// Pixel index (row-major) per cell; `u32::MAX` where the cell is out of view or masked.
+    pub pixel: Vec<u32>,
+    /// Zenith of the cell's direction \[°\].
+    pub z_deg: Vec<f32>,
+    /// Unit ENU direction of the cell's centre.
+    pub dir: Vec<[f32; 3]>,
+}
+
+/// No pixel for this cell.
+pub const NO_PIXEL: u32 = u32::MAX;
+
+impl Lut {
+    /// Build for a camera (with optional obstruction mask, white = sky) and plane height above it.
+    pub fn build(cam: &Camera, obstruction: Option<&image::GrayImage>, grid: Grid) -> Lut {
+        let n = grid.n;
+        let mut pixel = vec![NO_PIXEL; n * n];
+        let mut z_deg = vec![f32::NAN; n * n];
+        let mut dir = vec![[0f32; 3]; n * n];
+        for j in 0..n {
+            for i in 0..n {
+                let c = grid.cell_centre_m(i, j);
+                let v = [c[0], c[1], grid.height_m];
+                let norm = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
+                let d = [v[0] / norm, v[1] / norm, v[2] / norm];
+                let k = j * n + i;
+                dir[k] = [d[0] as f32, d[1] as f32, d[2] as f32];
+                z_deg[k] = d[2].acos().to_degrees() as f32;
+                if let Some((x, y)) = cam.project_enu(d) {
+                    let (xi, yi) = (x.round() as i64, y.round() as i64);
+                    if xi >= 0 && yi >= 0 && xi < cam.width_px as i64 && yi < cam.height_px as i64 {
+                        let free = obstruction.map(|m| m.get_pixel(xi as u32, yi as u32).0[0] >= 128).unwrap_or(true);
+                        if free {
+                            pixel[k] = (yi as u32) * cam.width_px + xi as u32;
+                        }
+                    }
+                }
+            }
+        }
+        Lut { grid, pixel, z_deg, dir }
+    }
+
+    /// Cells with a pixel.
+    pub fn valid_cells(&self) -> usize {
+        self.pixel.iter().filter(|p| **p != NO_PIXEL).count()
+    }
+}
+
+/// Look-up tables cached by base-height bucket.
+#[derive(Debug, Default)]
+pub struct LutCache {
+    tables: HashMap<i64, Arc<Lut>>,
+}
+
+impl LutCache {
+    /// The table for a plane height above the camera (built on first use).
+    pub fn get(&mut self, cam: &Camera, obstruction: Option<&image::GrayImage>, params: &MapParams, height_m: f64) -> Arc<Lut> {
+        let bucket = (height_m / params.height_bucket_m).round() as i64;
+        self.tables
+            .entry(bucket)
+            .or_insert_with(|| Arc::new(Lut::build(cam, obstruction, Grid::new(params, bucket as f64 * params.height_bucket_m))))
+            .clone()
+    }
+
+    /// Tables built so far.
+    pub fn len(&self) -> usize {
+        self.tables.len()
+    }
+
+    /// Whether no table was built yet.
+    pub fn is_empty(&self) -> bool {
+        self.tables.is_empty()
+    }
+}
+
+/// One frame's cloud map.
+#[derive(Debug, Clone)]
+pub struct CloudMap {
+    /// The grid.
+    pub grid: Grid,
+    /// Cloudiness score per cell (NaN unknown); see [`crate::segment`].
+    pub score: Vec<f32>,
+    /// Class per cell ([`Class`] as u8).
+    pub class: Vec<u8>,
+    /// The frame's reference offset.
+    pub offset: f32,
+}
+
+impl CloudMap {
+    /// Class at continuous cell coordinates (nearest cell); `None` outside or unknown.
+    #[inline]
+    pub fn class_at(&self, cx: f64, cy: f64) -> Option<Class> {
+        let (i, j) = (cx.round(), cy.round());
+        if i < 0.0 || j < 0.0 || i >= self.grid.n as f64 || j >= self.grid.n as f64 {
+            return None;
+        }
+        match Class::from_u8(self.class[j as usize * self.grid.n + i as usize]) {
+            Class::Unknown => None,
+            c => Some(c),
+        }
+    }
+
+    /// Share of known cells that are cloudy (thin or thick) within a zenith angle \[°\] of the
+    /// camera.
+    pub fn cloud_fraction(&self, lut: &Lut, max_zenith_deg: f32) -> f64 {
+        let (mut c, mut n) = (0usize, 0usize);
+        for k in 0..self.class.len() {
+            if lut.z_deg[k] <= max_zenith_deg && self.class[k] != Class::Unknown as u8 {
+                n += 1;
+                c += (self.class[k] != Class::Clear as u8) as usize;
+            }
+        }
+        if n == 0 { f64::NAN } else { c as f64 / n as f64 }
+    }
+}
+
+/// Build a frame's cloud map: read each cell's pixel, estimate the frame's reference offset from
+/// them, and classify.
+pub fn build_map(img: &image::RgbImage, lut: &Lut, sun_dir: Option<[f32; 3]>, params: &SegmentParams, reference: &Reference) -> CloudMap {
+    let raw = img.as_raw();
+    let n = lut.pixel.len();
+    let px = |p: u32| {
+        let i = p as usize * 3;
+        [raw[i], raw[i + 1], raw[i + 2]]
+    };
+    let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: gamma_deg(lut.dir[k], sun_dir) };
+    let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (px(lut.pixel[k]), geom(k)));
+    let fr = reference.for_frame(params, sample);
+    let mut score = vec![f32::NAN; n];
+    let mut class = vec![0u8; n];
+    for k in 0..n {
+        let p = lut.pixel[k];
+        if p == NO_PIXEL {
+            continue;
+        }
+        let (s, c) = fr.classify(px(p), geom(k));
+        score[k] = s;
+        class[k] = c as u8;
+    }
+    CloudMap { grid: lut.grid, score, class, offset: fr.offset }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn cell_coordinates_round_trip() {
+        let g = Grid::new(&MapParams::default(), 1500.0);
+        let c = g.cell_centre_m(10, 200);
+        let (x, y) = g.to_cell(c);
+        assert!((x - 10.0).abs() < 1e-9 && (y - 200.0).abs() < 1e-9);
+        // Extent 2 h tan 77° (ray–plane geometry).
+        assert!((g.cell_m * g.n as f64 - 2.0 * 1500.0 * 77f64.to_radians().tan()).abs() < 1e-6);
+    }
+
+    #[test]
+    fn lut_points_cells_at_the_pixels_that_see_them() {
+        let cam = Camera::ideal(256);
+        let g = Grid::new(&MapParams { cells: 64, ..Default::default() }, 1000.0);
+        let lut = Lut::build(&cam, None, g);
+        assert!(lut.valid_cells() > 64 * 64 / 2);
+        // The cell straight above the camera maps to the image centre.
+        let k = 32 * 64 + 32;
+        let p = lut.pixel[k];
+        let (x, y) = ((p % 256) as f64, (p / 256) as f64);
+        let (ex, ey) = cam.project_enu([g.cell_centre_m(32, 32)[0], g.cell_centre_m(32, 32)[1], 1000.0]).unwrap();
+        assert!((x - ex).abs() <= 0.5 && (y - ey).abs() <= 0.5);
+    }
+
+    #[test]
+    fn cache_reuses_tables_per_bucket() {
+        let cam = Camera::ideal(64);
+        let p = MapParams { cells: 32, ..Default::default() };
+        let mut c = LutCache::default();
+        let a = c.get(&cam, None, &p, 1010.0);
+        let b = c.get(&cam, None, &p, 1020.0);
+        assert!(Arc::ptr_eq(&a, &b));
+        c.get(&cam, None, &p, 1500.0);
+        assert_eq!(c.len(), 2);
+    }
+}

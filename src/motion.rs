@@ -1,0 +1,562 @@
+//! Cloud motion: block matching between successive cloud maps.
+//!
+//! # Method
+//! The matched quantity is the continuous cloudiness score of each map cell (not the binary mask),
+//! clipped to [−0.5, 1.5]. The previous map is cut into square blocks; blocks with too few known
+//! cells or too little texture (standard deviation) are skipped. Each block is searched for in the
+//! current map by normalized cross-correlation (NCC), coarse to fine: a full search on maps reduced
+//! 4×, over a window set by the largest plausible speed and the **measured** time step, then a ±2
+//! cell search at full resolution; the peak is refined to a fraction of a cell by fitting a parabola
+//! through the NCC on each axis. A block is rejected when its peak is weak, lies on the window's
+//! edge, or is ambiguous (a second peak away from the first almost as high).
+//!
+//! The block vectors (m/s east and north) give a robust global vector (component median) and, by
+//! 2-means clustering, up to two layers, accepted only when well separated. The layer that carries
+//! the most opaque cloud (highest mean score) drives the forecast. A Kalman filter per component
+//! smooths it over time, with gating of outliers; its standard deviation is the reported uncertainty.
+//!
+//! # References
+//! * C. W. Chow et al., *Solar Energy* 85:2881–2893, 2011 (cross-correlation cloud motion from sky
+//!   images).
+//! * J. P. Lewis, "Fast normalized cross-correlation", *Vision Interface* 1995.
+
+use std::path::Path;
+
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+
+use crate::cloudmap::CloudMap;
+use crate::config::{ConfigError, check_range};
+
+/// `[motion]` in `site.toml`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct MotionParams {
+    /// Largest plausible cloud speed \[m/s\]; sets the search window with the time step.
+    pub max_speed_mps: f64,
+    /// Block side \[cells\].
+    pub block_cells: usize,
+    /// Least standard deviation of the score in a block.
+    pub min_texture: f64,
+    /// Least NCC peak.
+    pub min_peak: f64,
+    /// A second peak above this share of the best makes a block ambiguous.
+    pub ambiguity: f64,
+    /// Least share of known cells in a block.
+    pub min_known: f64,
+    /// Frames further apart than this are not matched \[s\].
+    pub max_gap_s: f64,
+    /// Two layers are reported only when their vectors differ by at least this \[m/s\].
+    pub two_layer_separation_mps: f64,
+    /// Process noise of the temporal filter \[(m/s)² per s\].
+    pub filter_process_noise: f64,
+}
+
+impl Default for MotionParams {
+    fn default() -> Self {
+        Self {
+            max_speed_mps: 30.0,
+            block_cells: 32,
+            min_texture: 0.08,
+            min_peak: 0.5,
+            ambiguity: 0.97,
+            min_known: 0.7,
+            max_gap_s: 180.0,
+            two_layer_separation_mps: 2.0,
+            filter_process_noise: 0.002,
+        }
+    }
+}
+
+impl MotionParams {
+    /// Check ranges.
+    ///
+    /// # Errors
+    /// The first field out of range.
+    pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
+        check_range(file, "motion.max_speed_mps", self.max_speed_mps, 1.0, 100.0)?;
+        check_range(file, "motion.block_cells", self.block_cells as f64, 8.0, 256.0)?;
+        check_range(file, "motion.min_texture", self.min_texture, 0.0, 1.0)?;
+        check_range(file, "motion.min_peak", self.min_peak, 0.0, 1.0)?;
+        check_range(file, "motion.ambiguity", self.ambiguity, 0.5, 1.0)?;
+        check_range(file, "motion.min_known", self.min_known, 0.1, 1.0)?;
+        check_range(file, "motion.max_gap_s", self.max_gap_s, 1.0, 3600.0)?;
+        check_range(file, "motion.two_layer_separation_mps", self.two_layer_separation_mps, 0.1, 50.0)?;
+        check_range(file, "motion.filter_process_noise", self.filter_process_noise, 0.0, 10.0)
+    }
+}
+
+/// One block's displacement.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BlockVector {
+    /// Block centre (east, north) from the camera \[m\].
+    pub centre_m: [f64; 2],
+    /// Velocity (east, north) \[m/s\].
+    pub v_mps: [f64; 2],
+    /// NCC peak.
+    pub peak: f64,
+    /// Mean score of the block (opacity proxy).
+    pub mean_score: f64,
+}
+
+/// A motion layer.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct LayerMotion {
+    /// Velocity (east, north) \[m/s\].
+    pub v_mps: [f64; 2],
+    /// Blocks in this layer.
+    pub blocks: usize,
+    /// Mean block score.
+    pub mean_score: f64,
+}
+
+/// Motion measured between two maps.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Measurement {
+    /// Time step \[s\].
+    pub dt_s: f64,
+    /// Accepted block vectors.
+    pub vectors: Vec<BlockVector>,
+    /// Blocks tried.
+    pub blocks_tried: usize,
+    /// Robust global vector (m/s); `None` without accepted blocks.
+    pub global_mps: Option<[f64; 2]>,
+    /// One or two layers, the forecast's layer first.
+    pub layers: Vec<LayerMotion>,
+    /// Spread of the accepted vectors around their layer \[m/s\].
+    pub spread_mps: f64,
+}
+
+fn downsample4(m: &[f32], n: usize) -> (Vec<f32>, usize) {
+    let nc = n / 4;
+    let mut out = vec![f32::NAN; nc * nc];
+    for j in 0..nc {
+        for i in 0..nc {
+            let (mut s, mut c) = (0.0f32, 0u32);
+            for dj in 0..4 {
+                for di in 0..4 {
+                    let v = m[(j * 4 + dj) * n + i * 4 + di];
+                    if !v.is_nan() {
+                        s += v;
+                        c += 1;
+                    }
+                }
+            }
+            if c >= 8 {
+                out[j * nc + i] = s / c as f32;
+            }
+        }
+    }
+    (out, nc)
+}
+
+/// NCC of block `a` (side `b`, top-left `(ax, ay)` in map `pa`) against map `pb` displaced by
+/// `(dx, dy)`; `None` when too few cells overlap.
+#[allow(clippy::too_many_arguments)]
+fn ncc(pa: &[f32], pb: &[f32], n: usize, ax: usize, ay: usize, b: usize, dx: i64, dy: i64, min_pairs: usize) -> Option<f64> {
+    let (mut sa, mut sb, mut saa, mut sbb, mut sab, mut c) = (0f64, 0f64, 0f64, 0f64, 0f64, 0usize);
+    for j in 0..b {
+        let yb = (ay + j) as i64 + dy;
+        if yb < 0 || yb >= n as i64 {
+            continue;
+        }
+        let ra = (ay + j) * n;
+        let rb = yb as usize * n;
+        for i in 0..b {
+            let xb = (ax + i) as i64 + dx;
+            if xb < 0 || xb >= n as i64 {
+                continue;
+            }
+            let va = pa[ra + ax + i];
+            let vb = pb[rb + xb as usize];
+            if va.is_nan() || vb.is_nan() {
+                continue;
+            }
+            let (va, vb) = (va as f64, vb as f64);
+            sa += va;
+            sb += vb;
+            saa += va * va;
+            sbb += vb * vb;
+            sab += va * vb;
+            c += 1;
+        }
+    }
+    if c < min_pairs {
+        return None;
+    }
+    let cf = c as f64;
+    let cov = sab - sa * sb / cf;
+    let va = saa - sa * sa / cf;
+    let vb = sbb - sb * sb / cf;
+    if va <= 1e-9 || vb <= 1e-9 {
+        return None;
+    }
+    Some(cov / (va * vb).sqrt())
+}
+
+/// Sub-cell peak offset from three samples: a Gaussian fit (parabola through the logarithms) when
+/// all three are positive, else a parabola.
+fn parabola_offset(l: f64, c: f64, r: f64) -> f64 {
+    if l > 0.0 && c > 0.0 && r > 0.0 {
+        let (ll, lc, lr) = (l.ln(), c.ln(), r.ln());
+        let d = ll - 2.0 * lc + lr;
+        if d < -1e-12 {
+            return (0.5 * (ll - lr) / d).clamp(-0.5, 0.5);
+        }
+    }
+    let d = l - 2.0 * c + r;
+    if d.abs() < 1e-12 { 0.0 } else { (0.5 * (l - r) / d).clamp(-0.5, 0.5) }
+}
+
+/// Measure motion from map `a` (earlier) to map `b`, `dt_s` apart. Both maps must share a grid.
+pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams) -> Measurement {
+    let n = a.grid.n;
+    let cell = a.grid.cell_m;
+    let clip = |m: &CloudMap| m.score.iter().map(|v| if v.is_nan() { f32::NAN } else { v.clamp(-0.5, 1.5) }).collect::<Vec<f32>>();
+    let (fa, fb) = (clip(a), clip(b));
+    let (ca, nc) = downsample4(&fa, n);
+    let (cb, _) = downsample4(&fb, n);
+    let bs = params.block_cells.min(n / 2).max(8) / 4 * 4;
+    let reach_cells = params.max_speed_mps * dt_s / cell;
+    let rc = (reach_cells / 4.0).ceil() as i64 + 1;
+    let mut starts = vec![];
+    let mut y = 0;
+    while y + bs <= n {
+        let mut x = 0;
+        while x + bs <= n {
+            starts.push((x, y));
+            x += bs;
+        }
+        y += bs;
+    }
+    let tried = starts.len();
+    let vectors: Vec<BlockVector> = starts
+        .par_iter()
+        .filter_map(|&(ax, ay)| {
+            // Block statistics.
+            let (mut s, mut ss, mut k) = (0f64, 0f64, 0usize);
+            for j in 0..bs {
+                for i in 0..bs {
+                    let v = fa[(ay + j) * n + ax + i];
+                    if !v.is_nan() {
+                        s += v as f64;
+                        ss += (v as f64).powi(2);
+                        k += 1;
+                    }
+                }
+            }
+            if (k as f64) < params.min_known * (bs * bs) as f64 {
+                return None;
+            }
+            let mean = s / k as f64;
+            let sd = (ss / k as f64 - mean * mean).max(0.0).sqrt();
+            if sd < params.min_texture {
+                return None;
+            }
+            // Coarse full search.
+            let (cbx, cby, cbs) = (ax / 4, ay / 4, bs / 4);
+            let min_c = (cbs * cbs) / 2;
+            let mut scores = vec![];
+            let mut best = (f64::MIN, 0i64, 0i64);
+            for dy in -rc..=rc {
+                for dx in -rc..=rc {
+                    if let Some(v) = ncc(&ca, &cb, nc, cbx, cby, cbs, dx, dy, min_c) {
+                        scores.push((v, dx, dy));
+                        if v > best.0 {
+                            best = (v, dx, dy);
+                        }
+                    }
+                }
+            }
+            if best.0 == f64::MIN || best.1.abs() == rc || best.2.abs() == rc {
+                return None;
+            }
+            let second = scores
+                .iter()
+                .filter(|(_, dx, dy)| (dx - best.1).abs() > 2 || (dy - best.2).abs() > 2)
+                .map(|s| s.0)
+                .fold(f64::MIN, f64::max);
+            if second > params.ambiguity * best.0 {
+                return None;
+            }
+            // Fine search at full resolution around the coarse peak.
+            let min_f = (params.min_known * (bs * bs) as f64 * 0.8) as usize;
+            let (bx0, by0) = (best.1 * 4, best.2 * 4);
+            let mut fine = [[f64::NAN; 7]; 7];
+            let mut fb_best = (f64::MIN, 0i64, 0i64);
+            for oy in -3..=3i64 {
+                for ox in -3..=3i64 {
+                    if let Some(v) = ncc(&fa, &fb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f) {
+                        fine[(oy + 3) as usize][(ox + 3) as usize] = v;
+                        if v > fb_best.0 {
+                            fb_best = (v, ox, oy);
+                        }
+                    }
+                }
+            }
+            if fb_best.0 < params.min_peak || fb_best.1.abs() == 3 || fb_best.2.abs() == 3 {
+                return None;
+            }
+            let (fx, fy) = ((fb_best.1 + 3) as usize, (fb_best.2 + 3) as usize);
+            let sub_x = parabola_offset(fine[fy][fx - 1], fine[fy][fx], fine[fy][fx + 1]);
+            let sub_y = parabola_offset(fine[fy - 1][fx], fine[fy][fx], fine[fy + 1][fx]);
+            let sub_x = if sub_x.is_nan() { 0.0 } else { sub_x };
+            let sub_y = if sub_y.is_nan() { 0.0 } else { sub_y };
+            let (dxc, dyc) = refine_lk(&fa, &fb, n, ax, ay, bs, ((bx0 + fb_best.1) as f64 + sub_x, (by0 + fb_best.2) as f64 + sub_y));
+            let c = a.grid.cell_centre_m(ax + bs / 2, ay + bs / 2);
+            Some(BlockVector { centre_m: c, v_mps: [dxc * cell / dt_s, dyc * cell / dt_s], peak: fb_best.0, mean_score: mean })
+        })
+        .collect();
+    summarize(vectors, tried, dt_s, params)
+}
+
+#[inline]
+fn bilinear(m: &[f32], n: usize, x: f64, y: f64) -> f64 {
+    if x < 0.0 || y < 0.0 || x > (n - 1) as f64 || y > (n - 1) as f64 {
+        return f64::NAN;
+    }
+    let (x0, y0) = (x.floor() as usize, y.floor() as usize);
+    let (x1, y1) = ((x0 + 1).min(n - 1), (y0 + 1).min(n - 1));
+    let (fx, fy) = (x - x0 as f64, y - y0 as f64);
+    let v = |i: usize, j: usize| m[j * n + i] as f64;
+    (v(x0, y0) * (1.0 - fx) + v(x1, y0) * fx) * (1.0 - fy) + (v(x0, y1) * (1.0 - fx) + v(x1, y1) * fx) * fy
+}
+
+/// Sub-cell refinement of a block's displacement by Gauss–Newton on the squared difference
+/// (Lucas & Kanade 1981), starting from the NCC peak; kept within one cell of it.
+#[allow(clippy::too_many_arguments)]
+fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, d0: (f64, f64)) -> (f64, f64) {
+    let mut d = d0;
+    for _ in 0..4 {
+        let (mut h11, mut h12, mut h22, mut b1, mut b2) = (0.0, 0.0, 0.0, 0.0, 0.0);
+        for j in 1..bs - 1 {
+            for i in 1..bs - 1 {
+                let a = fa[(ay + j) * n + ax + i] as f64;
+                if a.is_nan() {
+                    continue;
+                }
+                let (x, y) = ((ax + i) as f64 + d.0, (ay + j) as f64 + d.1);
+                let b = bilinear(fb, n, x, y);
+                let gx = 0.5 * (bilinear(fb, n, x + 1.0, y) - bilinear(fb, n, x - 1.0, y));
+                let gy = 0.5 * (bilinear(fb, n, x, y + 1.0) - bilinear(fb, n, x, y - 1.0));
+                if b.is_nan() || gx.is_nan() || gy.is_nan() {
+                    continue;
+                }
+                let e = a - b;
+                h11 += gx * gx;
+                h12 += gx * gy;
+                h22 += gy * gy;
+                b1 += gx * e;
+                b2 += gy * e;
+            }
+        }
+        let det = h11 * h22 - h12 * h12;
+        if det.abs() < 1e-9 {
+            break;
+        }
+        let (sx, sy) = ((h22 * b1 - h12 * b2) / det, (h11 * b2 - h12 * b1) / det);
+        d = (d.0 + sx, d.1 + sy);
+        if (d.0 - d0.0).abs() > 1.0 || (d.1 - d0.1).abs() > 1.0 {
+            return d0;
+        }
+        if sx.abs() < 0.005 && sy.abs() < 0.005 {
+            break;
+        }
+    }
+    d
+}
+
+fn median(v: &mut [f64]) -> f64 {
+    v.sort_by(f64::total_cmp);
+    let n = v.len();
+    if n == 0 {
+        f64::NAN
+    } else if n % 2 == 1 {
+        v[n / 2]
+    } else {
+        0.5 * (v[n / 2 - 1] + v[n / 2])
+    }
+}
+
+fn dist(a: [f64; 2], b: [f64; 2]) -> f64 {
+    ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2)).sqrt()
+}
+
+fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &MotionParams) -> Measurement {
+    if vectors.is_empty() {
+        return Measurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN };
+    }
+    let g = [
+        median(&mut vectors.iter().map(|v| v.v_mps[0]).collect::<Vec<_>>()),
+        median(&mut vectors.iter().map(|v| v.v_mps[1]).collect::<Vec<_>>()),
+    ];
+    // 2-means from the median and the vector farthest from it.
+    let far = vectors.iter().map(|v| v.v_mps).max_by(|a, b| dist(*a, g).total_cmp(&dist(*b, g))).unwrap_or(g);
+    let mut c = [g, far];
+    let mut assign = vec![0usize; vectors.len()];
+    for _ in 0..20 {
+        for (k, v) in vectors.iter().enumerate() {
+            assign[k] = if dist(v.v_mps, c[0]) <= dist(v.v_mps, c[1]) { 0 } else { 1 };
+        }
+        for (ci, cc) in c.iter_mut().enumerate() {
+            let mut xs: Vec<f64> = vectors.iter().zip(&assign).filter(|(_, a)| **a == ci).map(|(v, _)| v.v_mps[0]).collect();
+            let mut ys: Vec<f64> = vectors.iter().zip(&assign).filter(|(_, a)| **a == ci).map(|(v, _)| v.v_mps[1]).collect();
+            if !xs.is_empty() {
+                *cc = [median(&mut xs), median(&mut ys)];
+            }
+        }
+    }
+    let layer = |ci: usize| {
+        let members: Vec<&BlockVector> = vectors.iter().zip(&assign).filter(|(_, a)| **a == ci).map(|(v, _)| v).collect();
+        let ms = members.iter().map(|v| v.mean_score).sum::<f64>() / members.len().max(1) as f64;
+        let spread = (members.iter().map(|v| dist(v.v_mps, c[ci]).powi(2)).sum::<f64>() / members.len().max(1) as f64).sqrt();
+        (LayerMotion { v_mps: c[ci], blocks: members.len(), mean_score: ms }, spread)
+    };
+    let (l0, s0) = layer(0);
+    let (l1, s1) = layer(1);
+    let nmin = 3.max((0.12 * vectors.len() as f64).ceil() as usize);
+    let sep = dist(l0.v_mps, l1.v_mps);
+    let two = l0.blocks >= nmin && l1.blocks >= nmin && sep >= params.two_layer_separation_mps && sep > 2.5 * s0.max(s1);
+    let (layers, spread) = if two {
+        let mut ls = vec![(l0, s0), (l1, s1)];
+        ls.sort_by(|a, b| b.0.mean_score.total_cmp(&a.0.mean_score));
+        let spread = ls[0].1;
+        (ls.into_iter().map(|l| l.0).collect(), spread)
+    } else {
+        // One layer: robust mean of the inliers around the median.
+        let mut devs: Vec<f64> = vectors.iter().map(|v| dist(v.v_mps, g)).collect();
+        let mad = median(&mut devs);
+        let lim = (3.0 * 1.4826 * mad).max(0.5);
+        let inl: Vec<&BlockVector> = vectors.iter().filter(|v| dist(v.v_mps, g) <= lim).collect();
+        let m = inl.len().max(1) as f64;
+        let v = [inl.iter().map(|v| v.v_mps[0]).sum::<f64>() / m, inl.iter().map(|v| v.v_mps[1]).sum::<f64>() / m];
+        let spread = (inl.iter().map(|b| dist(b.v_mps, v).powi(2)).sum::<f64>() / m).sqrt();
+        let ms = inl.iter().map(|v| v.mean_score).sum::<f64>() / m;
+        (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms }], spread)
+    };
+    Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread }
+}
+
+/// Temporal filter of the forecast's motion vector (a Kalman filter per component with gating).
+#[derive(Debug, Clone, Default)]
+pub struct MotionFilter {
+    state: Option<([f64; 2], f64)>,
+    /// Measurements rejected by the gate.
+    pub gated: usize,
+}
+
+/// The filtered motion at one frame.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Motion {
+    /// Velocity (east, north) \[m/s\].
+    pub v_mps: [f64; 2],
+    /// One-sigma uncertainty of each component \[m/s\].
+    pub sigma_mps: f64,
+}
+
+impl MotionFilter {
+    /// Current estimate.
+    pub fn current(&self) -> Option<Motion> {
+        self.state.map(|(v, p)| Motion { v_mps: v, sigma_mps: p.sqrt() })
+    }
+
+    /// Advance by `dt_s` and fold in a measurement (if any).
+    pub fn update(&mut self, m: Option<&Measurement>, dt_s: f64, params: &MotionParams) -> Option<Motion> {
+        let meas = m.and_then(|m| m.layers.first().map(|l| (l.v_mps, m.spread_mps, l.blocks)));
+        match (&mut self.state, meas) {
+            (None, Some((v, spread, nb))) => {
+                let r = spread.powi(2) / nb.max(1) as f64 + 0.05;
+                self.state = Some((v, r.max(0.25)));
+            }
+            (Some((x, p)), Some((v, spread, nb))) => {
+                *p += params.filter_process_noise * dt_s;
+                let r = spread.powi(2) / nb.max(1) as f64 + 0.05;
+                let innov = dist(v, *x);
+                let r_eff = if innov > 3.0 * (*p + r).sqrt() && *p < 1.0 {
+                    self.gated += 1;
+                    r * 25.0
+                } else {
+                    r
+                };
+                let k = *p / (*p + r_eff);
+                x[0] += k * (v[0] - x[0]);
+                x[1] += k * (v[1] - x[1]);
+                *p *= 1.0 - k;
+            }
+            (Some((_, p)), None) => *p += params.filter_process_noise * dt_s,
+            (None, None) => {}
+        }
+        self.current()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::cloudmap::{Grid, MapParams};
+
+    fn map_from(f: impl Fn(f64, f64) -> f64, grid: Grid) -> CloudMap {
+        let n = grid.n;
+        let mut score = vec![0f32; n * n];
+        for j in 0..n {
+            for i in 0..n {
+                let c = grid.cell_centre_m(i, j);
+                score[j * n + i] = f(c[0], c[1]) as f32;
+            }
+        }
+        CloudMap { grid, class: vec![1; n * n], score, offset: 0.0 }
+    }
+
+    fn blobs(x: f64, y: f64) -> f64 {
+        let mut s = 0.0;
+        for k in 0..60 {
+            let cx = ((k * 7919) % 9000) as f64 - 4500.0;
+            let cy = ((k * 104_729) % 9000) as f64 - 4500.0;
+            let r2 = (x - cx).powi(2) + (y - cy).powi(2);
+            s += (-r2 / (2.0 * 300f64.powi(2))).exp();
+        }
+        s.min(1.2)
+    }
+
+    #[test]
+    fn recovers_a_known_shift_to_a_tenth_of_a_metre_per_second() {
+        let g = Grid::new(&MapParams::default(), 1500.0);
+        let v = [7.3, -4.1];
+        let dt = 20.0;
+        let a = map_from(blobs, g);
+        let b = map_from(|x, y| blobs(x - v[0] * dt, y - v[1] * dt), g);
+        let m = measure(&a, &b, dt, &MotionParams::default());
+        let l = m.layers[0];
+        assert!(m.vectors.len() > 10, "{} vectors", m.vectors.len());
+        assert!((l.v_mps[0] - v[0]).abs() < 0.1 && (l.v_mps[1] - v[1]).abs() < 0.1, "{:?}", l.v_mps);
+        assert_eq!(m.layers.len(), 1);
+    }
+
+    #[test]
+    fn featureless_maps_give_no_vectors() {
+        let g = Grid::new(&MapParams { cells: 128, ..Default::default() }, 1500.0);
+        let a = map_from(|_, _| 0.0, g);
+        let m = measure(&a, &a, 20.0, &MotionParams::default());
+        assert!(m.vectors.is_empty() && m.global_mps.is_none());
+    }
+
+    #[test]
+    fn filter_gates_an_outlier() {
+        let p = MotionParams::default();
+        let mk = |v: [f64; 2]| Measurement {
+            dt_s: 20.0,
+            vectors: vec![],
+            blocks_tried: 1,
+            global_mps: Some(v),
+            layers: vec![LayerMotion { v_mps: v, blocks: 30, mean_score: 1.0 }],
+            spread_mps: 0.3,
+        };
+        let mut f = MotionFilter::default();
+        for _ in 0..10 {
+            f.update(Some(&mk([5.0, 0.0])), 20.0, &p);
+        }
+        let m = f.update(Some(&mk([15.0, 0.0])), 20.0, &p).unwrap();
+        assert!(m.v_mps[0] < 6.0, "{:?}", m);
+        assert_eq!(f.gated, 1);
+    }
+}
