@@ -128,6 +128,9 @@ pub struct SiteFile {
     /// The cloud-map grid.
     #[serde(default)]
     pub map: crate::cloudmap::MapParams,
+    /// Beam transmittance and diffuse settings of the forecast.
+    #[serde(default)]
+    pub irradiance: crate::forecast::IrradianceParams,
 }
 
 /// `[site]`.
@@ -433,6 +436,7 @@ impl SiteFile {
         self.qc.validate(path)?;
         self.motion.validate(path)?;
         self.map.validate(path)?;
+        self.irradiance.validate(path)?;
         Ok(())
     }
 }

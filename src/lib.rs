@@ -38,7 +38,7 @@ pub mod cli;
 pub mod clearsky;
 pub mod cloudmap;
 pub mod config;
-// pub mod forecast;
+pub mod forecast;
 pub mod io;
 pub mod motion;
 // pub mod nowcast;

@@ -138,3 +138,42 @@ def cli_sun_table():
 
 if __name__ == "__main__":
     cli_sun_table()
+
+
+def transposition_table(n=200):
+    """Plane-of-array irradiance by Hay & Davies for fixed and single-axis tracked planes."""
+    rows = []
+    for i in range(n):
+        zen = float(rng.uniform(2, 88))
+        az = float(rng.uniform(0, 360))
+        dni = float(rng.uniform(0, 950))
+        dhi = float(rng.uniform(20, 400))
+        ghi = dni * np.cos(np.radians(zen)) + dhi
+        dni_extra = float(rng.uniform(1320, 1412))
+        if i % 2 == 0:
+            kind = "fixed"
+            tilt = float(rng.uniform(0, 60)); surf_az = float(rng.uniform(90, 270))
+            axis_az = 0.0; max_angle = 0.0
+        else:
+            kind = "single-axis"
+            axis_az = float(rng.choice([0.0, 180.0, 10.0, 350.0, 90.0])); max_angle = float(rng.choice([45.0, 60.0]))
+            tr = pvlib.tracking.singleaxis(pd.Series([zen]), pd.Series([az]), axis_tilt=0, axis_azimuth=axis_az,
+                                           max_angle=max_angle, backtrack=False)
+            tilt = float(tr["surface_tilt"].iloc[0]); surf_az = float(tr["surface_azimuth"].iloc[0])
+            if np.isnan(tilt):
+                continue
+        aoi = float(pvlib.irradiance.aoi(tilt, surf_az, zen, az))
+        poa = pvlib.irradiance.get_total_irradiance(tilt, surf_az, zen, az, dni, ghi, dhi, dni_extra=dni_extra,
+                                                    model="haydavies", albedo=0.2)
+        rows.append(dict(kind=kind, solar_zenith_deg=zen, solar_azimuth_deg=az, dni_wm2=dni, dhi_wm2=dhi, ghi_wm2=ghi,
+                         dni_extra_wm2=dni_extra, axis_azimuth_deg=axis_az, max_angle_deg=max_angle,
+                         surface_tilt_deg=tilt, surface_azimuth_deg=surf_az, aoi_deg=aoi,
+                         poa_global_wm2=float(poa["poa_global"]), poa_direct_wm2=float(poa["poa_direct"]),
+                         poa_diffuse_wm2=float(poa["poa_diffuse"])))
+    write("transposition_pvlib.csv", pd.DataFrame(rows),
+          f"pvlib {pvlib.__version__} tracking.singleaxis(axis_tilt=0, backtrack=False), irradiance.aoi, "
+          "irradiance.get_total_irradiance(model='haydavies', albedo=0.2)")
+
+
+if __name__ == "__main__":
+    transposition_table()

@@ -160,6 +160,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         qc: Default::default(),
         motion: Default::default(),
         map: Default::default(),
+        irradiance: Default::default(),
     }
 }
 
