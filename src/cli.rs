@@ -28,6 +28,44 @@ pub enum Command {
     Sun(SunArgs),
     /// Render a synthetic sky-camera sequence with ground truth.
     Synth(SynthArgs),
+    /// Replay a recorded sequence: forecasts, motion and per-frame records.
+    Replay(ReplayArgs),
+    /// Score a replay of a synthetic sequence against its truth.
+    Evaluate(EvaluateArgs),
+}
+
+/// Arguments of `nephocast evaluate`.
+#[derive(Debug, clap::Args)]
+pub struct EvaluateArgs {
+    /// The synthetic sequence (with its truth/ folder).
+    #[arg(long)]
+    pub sequence: PathBuf,
+    /// The replay's output folder.
+    #[arg(long)]
+    pub replay: PathBuf,
+}
+
+/// Arguments of `nephocast replay`.
+#[derive(Debug, clap::Args)]
+pub struct ReplayArgs {
+    /// The site file.
+    #[arg(long)]
+    pub site: PathBuf,
+    /// Folder of frames named with their UTC time.
+    #[arg(long)]
+    pub frames: PathBuf,
+    /// Output folder.
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Measurements CSV (pyranometers) to tune beam transmittances from.
+    #[arg(long)]
+    pub measurements: Option<PathBuf>,
+    /// Write an overlay picture every N frames (0: none).
+    #[arg(long, default_value_t = 0)]
+    pub overlays: usize,
+    /// Hide the progress bar.
+    #[arg(long)]
+    pub quiet: bool,
 }
 
 /// Arguments of `nephocast synth`.
@@ -128,6 +166,15 @@ pub fn run(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Sun(a) => cmd_sun(a),
         Command::Synth(a) => cmd_synth(a),
+        Command::Replay(a) => cmd_replay(a),
+        Command::Evaluate(a) => {
+            let e = crate::verify::evaluate(&a.sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
+            crate::verify::print_evaluation(&e);
+            let p = a.replay.join("evaluation.json");
+            crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
+            println!("wrote {}", p.display());
+            Ok(())
+        }
     }
 }
 
@@ -171,6 +218,35 @@ fn cmd_synth(a: SynthArgs) -> Result<()> {
         sum.render_s_per_frame
     );
     Ok(())
+}
+
+fn cmd_replay(a: ReplayArgs) -> Result<()> {
+    let opts = crate::replay::ReplayOptions {
+        site: a.site,
+        frames: a.frames,
+        out: a.out,
+        measurements: a.measurements,
+        overlays_every: a.overlays,
+        progress: !a.quiet,
+    };
+    let s = crate::replay::replay(&opts)?;
+    print_replay_summary(&s);
+    Ok(())
+}
+
+/// Print what a replay did.
+pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
+    let rejected: usize = s.counters.rejected.values().sum();
+    println!("frames: {} found, {} used, {} rejected {:?}, {} files without a time in their name",
+        s.frames_found, s.counters.used, rejected, s.counters.rejected, s.untimed_files);
+    println!("speed: median {:.2} ms per frame (map + motion + forecast), {:.2} ms decode; {:.1} s in all",
+        s.median_step_ms, s.median_decode_ms, s.wall_s);
+    if let Some(v) = s.last_motion_mps {
+        println!("cloud motion at the end: {:.1} m/s toward {:.0}°", v[0].hypot(v[1]), v[0].atan2(v[1]).to_degrees().rem_euclid(360.0));
+    }
+    for p in &s.outputs {
+        println!("wrote {}", p.display());
+    }
 }
 
 fn cmd_sun(a: SunArgs) -> Result<()> {

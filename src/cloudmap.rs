@@ -35,7 +35,7 @@ pub struct MapParams {
 
 impl Default for MapParams {
     fn default() -> Self {
-        Self { cells: 256, max_zenith_deg: 77.0, height_bucket_m: 50.0 }
+        Self { cells: 256, max_zenith_deg: 84.0, height_bucket_m: 50.0 }
     }
 }
 
@@ -172,6 +172,8 @@ pub struct CloudMap {
     pub score: Vec<f32>,
     /// Class per cell ([`Class`] as u8).
     pub class: Vec<u8>,
+    /// Whether the camera sees the cell (unknown cells in view are e.g. the sun's glare).
+    pub in_view: Vec<bool>,
     /// The frame's reference offset.
     pub offset: f32,
 }
@@ -227,7 +229,8 @@ pub fn build_map(img: &image::RgbImage, lut: &Lut, sun_dir: Option<[f32; 3]>, pa
         score[k] = s;
         class[k] = c as u8;
     }
-    CloudMap { grid: lut.grid, score, class, offset: fr.offset }
+    let in_view = lut.pixel.iter().map(|p| *p != NO_PIXEL).collect();
+    CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset }
 }
 
 #[cfg(test)]
@@ -240,8 +243,8 @@ mod tests {
         let c = g.cell_centre_m(10, 200);
         let (x, y) = g.to_cell(c);
         assert!((x - 10.0).abs() < 1e-9 && (y - 200.0).abs() < 1e-9);
-        // Extent 2 h tan 77° (ray–plane geometry).
-        assert!((g.cell_m * g.n as f64 - 2.0 * 1500.0 * 77f64.to_radians().tan()).abs() < 1e-6);
+        // Extent 2 h tan 84° (ray–plane geometry).
+        assert!((g.cell_m * g.n as f64 - 2.0 * 1500.0 * 84f64.to_radians().tan()).abs() < 1e-6);
     }
 
     #[test]

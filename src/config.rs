@@ -131,6 +131,19 @@ pub struct SiteFile {
     /// Beam transmittance and diffuse settings of the forecast.
     #[serde(default)]
     pub irradiance: crate::forecast::IrradianceParams,
+    /// Pyranometers whose readings a measurements CSV may hold (`ghi_<name>_wm2` columns).
+    #[serde(default)]
+    pub pyranometers: Vec<PyranometerSpec>,
+}
+
+/// `[[pyranometers]]`: a GHI sensor on the plant.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PyranometerSpec {
+    /// Name; its column in a measurements CSV is `ghi_<name>_wm2`.
+    pub name: String,
+    /// Position (east, north) \[m\] from the site origin.
+    pub position_m: [f64; 2],
 }
 
 /// `[site]`.
@@ -437,6 +450,11 @@ impl SiteFile {
         self.motion.validate(path)?;
         self.map.validate(path)?;
         self.irradiance.validate(path)?;
+        for (i, p) in self.pyranometers.iter().enumerate() {
+            for (k, v) in p.position_m.iter().enumerate() {
+                c.range(&format!("pyranometers[{i}].position_m[{k}]"), *v, -50_000.0, 50_000.0)?;
+            }
+        }
         Ok(())
     }
 }

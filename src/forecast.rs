@@ -6,8 +6,8 @@
 //! `q = p + H tan z (sin A, cos A)` (H the cloud base height above ground); the cloud that will be
 //! there at `t + k` is the cloud now at `q − v k` (v the cloud motion). The map's class there gives the
 //! beam transmittance (clear / thin / thick, defaults below, tuned from measurements when given),
-//! averaged over a box that grows with the motion's uncertainty times the horizon, so that long
-//! horizons forecast a probability-weighted beam rather than a sharp shadow. Then
+//! averaged over a box that grows with the motion's uncertainty and a cloud-evolution rate times the
+//! horizon, so that long horizons forecast a probability-weighted beam rather than a sharp shadow. Then
 //!
 //! * `DNI = DNI_clear(t + k) · T`,
 //! * `DHI = DHI_clear(t + k) + c · d · GHI_clear(t + k)` with `c` the current cloud fraction and `d`
@@ -18,8 +18,8 @@
 //!   Marion & Dobos 2013), ground reflection with an albedo.
 //!
 //! Where the look-up leaves the observed map (or lands on unknown cells) the point falls back to
-//! persistence of its current state (the cloud at `q` now), or to the map's mean transmittance, and
-//! is flagged.
+//! a blend of persistence of its current state (the cloud at `q` now) and the map's mean
+//! transmittance, and is flagged.
 //!
 //! # References
 //! * J. E. Hay, J. A. Davies, "Calculation of the solar radiation incident on an inclined surface",
@@ -55,6 +55,12 @@ pub struct IrradianceParams {
     pub albedo: f64,
     /// Smallest half-width of the look-up box \[m\].
     pub blur_min_m: f64,
+    /// Growth of the look-up box with horizon for cloud evolution, on top of the motion uncertainty
+    /// \[m/s\].
+    pub blur_growth_mps: f64,
+    /// Weight of the current state at the sun-ray point in the fallback (the rest is the map's
+    /// mean transmittance).
+    pub fallback_persistence_weight: f64,
     /// Tune the transmittances from measurements when a measurements CSV is given.
     pub tune_from_measurements: bool,
 }
@@ -72,6 +78,8 @@ impl Default for IrradianceParams {
             diffuse_per_cover: 0.25,
             albedo: 0.2,
             blur_min_m: 40.0,
+            blur_growth_mps: 0.5,
+            fallback_persistence_weight: 0.5,
             tune_from_measurements: true,
         }
     }
@@ -88,7 +96,9 @@ impl IrradianceParams {
         check_range(file, "irradiance.beam_thick", self.beam_thick, 0.0, 1.0)?;
         check_range(file, "irradiance.diffuse_per_cover", self.diffuse_per_cover, 0.0, 1.0)?;
         check_range(file, "irradiance.albedo", self.albedo, 0.0, 1.0)?;
-        check_range(file, "irradiance.blur_min_m", self.blur_min_m, 0.0, 5000.0)
+        check_range(file, "irradiance.blur_min_m", self.blur_min_m, 0.0, 5000.0)?;
+        check_range(file, "irradiance.blur_growth_mps", self.blur_growth_mps, 0.0, 20.0)?;
+        check_range(file, "irradiance.fallback_persistence_weight", self.fallback_persistence_weight, 0.0, 1.0)
     }
 
     /// Beam transmittance of a class (NaN for unknown).
@@ -169,16 +179,49 @@ pub struct TransmittanceMap {
 }
 
 impl TransmittanceMap {
-    /// Build from a map and per-class transmittances.
+    /// Build from a map and per-class transmittances. Unknown cells that the camera sees (the sun's
+    /// glare) are filled from their known neighbours, spreading inward a cell per pass.
     pub fn new(map: &CloudMap, p: &IrradianceParams) -> TransmittanceMap {
         let n = map.grid.n;
         let w = n + 1;
+        let mut t: Vec<f64> = map.class.iter().map(|c| p.beam(Class::from_u8(*c))).collect();
+        // Breadth-first fill: each unknown in-view cell takes the mean of its neighbours already
+        // known or filled when the front reaches it.
+        let mut front: std::collections::VecDeque<usize> = (0..n * n).filter(|&k| !t[k].is_nan()).collect();
+        let mut queued: Vec<bool> = t.iter().map(|v| !v.is_nan()).collect();
+        while let Some(k) = front.pop_front() {
+            let (i, j) = ((k % n) as i64, (k / n) as i64);
+            for (di, dj) in [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)] {
+                let (a, b) = (i + di, j + dj);
+                if a < 0 || b < 0 || a >= n as i64 || b >= n as i64 {
+                    continue;
+                }
+                let m = b as usize * n + a as usize;
+                if queued[m] || !map.in_view.get(m).copied().unwrap_or(false) {
+                    continue;
+                }
+                let (mut s, mut c) = (0.0, 0.0);
+                for (ei, ej) in [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)] {
+                    let (x, y) = (a + ei, b + ej);
+                    if x >= 0 && y >= 0 && x < n as i64 && y < n as i64 {
+                        let v = t[y as usize * n + x as usize];
+                        if !v.is_nan() {
+                            s += v;
+                            c += 1.0;
+                        }
+                    }
+                }
+                t[m] = s / c;
+                queued[m] = true;
+                front.push_back(m);
+            }
+        }
         let mut sum = vec![0f64; w * w];
         let mut count = vec![0u32; w * w];
         for j in 0..n {
             let (mut rs, mut rc) = (0f64, 0u32);
             for i in 0..n {
-                let t = p.beam(Class::from_u8(map.class[j * n + i]));
+                let t = t[j * n + i];
                 if !t.is_nan() {
                     rs += t;
                     rc += 1;
@@ -292,7 +335,7 @@ pub fn forecast(map: &CloudMap, input: &ForecastInput) -> Forecast {
         let cz = z.cos();
         let up = cz > 0.0 && clear.ghi_wm2 > 0.0;
         let k = h as f64;
-        let blur_m = (p.blur_min_m.powi(2) + (input.sigma_mps * k).powi(2)).sqrt();
+        let blur_m = (p.blur_min_m.powi(2) + (input.sigma_mps * k).powi(2) + (p.blur_growth_mps * k).powi(2)).sqrt();
         let r_cells = blur_m / grid.cell_m;
         let dhi = clear.dhi_wm2 + input.cloud_fraction.clamp(0.0, 1.0) * p.diffuse_per_cover * clear.ghi_wm2;
         let mut point_ghi = Vec::with_capacity(n_points);
@@ -309,7 +352,10 @@ pub fn forecast(map: &CloudMap, input: &ForecastInput) -> Forecast {
                         Some(v) => (v, false),
                         None => {
                             let (qx, qy) = grid.to_cell(q);
-                            (tm.box_mean(qx, qy, r_cells).unwrap_or(if tm.mean.is_nan() { p.beam_clear } else { tm.mean }), true)
+                            let mean = if tm.mean.is_nan() { p.beam_clear } else { tm.mean };
+                            let now = tm.box_mean(qx, qy, r_cells).unwrap_or(mean);
+                            let wp = p.fallback_persistence_weight;
+                            (wp * now + (1.0 - wp) * mean, true)
                         }
                     };
                     let dni = clear.dni_wm2 * tr;
@@ -358,7 +404,7 @@ mod tests {
         let mut class = vec![Class::Clear as u8; 64];
         class[0] = Class::Thick as u8;
         class[1] = Class::Unknown as u8;
-        let map = CloudMap { grid: g, score: vec![0.0; 64], class, offset: 0.0 };
+        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![false; 64], offset: 0.0 };
         let p = IrradianceParams::default();
         let t = TransmittanceMap::new(&map, &p);
         // Box over cells (0..=1, 0..=1): thick, unknown, clear, clear -> (0.03 + 1 + 1) / 3.

@@ -275,3 +275,99 @@ mod tests {
         assert_eq!(s.at(&late, 60.0), None);
     }
 }
+
+/// A measurements CSV: a `time_utc` column and one column per sensor with its unit in the name
+/// (e.g. `ghi_pyr1_wm2`); empty cells are missing values (NaN).
+#[derive(Debug, Clone)]
+pub struct Measurements {
+    /// Times, strictly increasing.
+    pub times: Vec<DateTime<Utc>>,
+    /// Column names (without `time_utc`).
+    pub names: Vec<String>,
+    /// Values per column.
+    pub columns: Vec<Vec<f64>>,
+    /// Averaging period of each row \[s\] (from the time step), for centring.
+    pub period_s: f64,
+}
+
+impl Measurements {
+    /// Read a measurements CSV.
+    ///
+    /// # Errors
+    /// Malformed rows, unparsable numbers, duplicated or unordered times — with the line number.
+    pub fn read_csv(path: &Path) -> Result<Measurements, InputError> {
+        let mut rdr = csv::ReaderBuilder::new()
+            .comment(Some(b'#'))
+            .from_path(path)
+            .map_err(|e| InputError::Other { file: path.into(), message: e.to_string() })?;
+        let headers = rdr.headers().map_err(|e| InputError::Other { file: path.into(), message: e.to_string() })?.clone();
+        let ti = headers.iter().position(|h| h == "time_utc").ok_or_else(|| InputError::Csv {
+            file: path.into(),
+            line: 1,
+            message: "expected a column named time_utc".into(),
+        })?;
+        let names: Vec<String> = headers.iter().enumerate().filter(|(i, _)| *i != ti).map(|(_, h)| h.to_string()).collect();
+        let mut m = Measurements { times: vec![], names: names.clone(), columns: vec![vec![]; names.len()], period_s: 60.0 };
+        for rec in rdr.records() {
+            let rec = rec.map_err(|e| InputError::Csv {
+                file: path.into(),
+                line: e.position().map(|p| p.line()).unwrap_or(0),
+                message: e.to_string(),
+            })?;
+            let line = rec.position().map(|p| p.line()).unwrap_or(0);
+            let bad = |msg: String| InputError::Csv { file: path.into(), line, message: msg };
+            let t = parse_time("time_utc", rec.get(ti).unwrap_or("")).map_err(bad)?;
+            if let Some(last) = m.times.last() {
+                if t <= *last {
+                    return Err(bad(format!("time_utc {} is not after the previous row: duplicated or out of order", fmt_time(&t))));
+                }
+            }
+            m.times.push(t);
+            let mut k = 0;
+            for (i, v) in rec.iter().enumerate() {
+                if i == ti {
+                    continue;
+                }
+                let v = v.trim();
+                let x = if v.is_empty() || v.eq_ignore_ascii_case("nan") {
+                    f64::NAN
+                } else {
+                    v.parse::<f64>().map_err(|_| bad(format!("{}: expected a number or an empty cell, got {v:?}", m.names[k])))?
+                };
+                if k < m.columns.len() {
+                    m.columns[k].push(x);
+                }
+                k += 1;
+            }
+            if k != m.names.len() {
+                return Err(bad(format!("expected {} values, got {k}", m.names.len())));
+            }
+        }
+        if m.times.len() >= 2 {
+            let mut steps: Vec<i64> = m.times.windows(2).map(|w| (w[1] - w[0]).num_seconds()).collect();
+            steps.sort_unstable();
+            m.period_s = steps[steps.len() / 2] as f64;
+        }
+        Ok(m)
+    }
+
+    /// Column index by name.
+    pub fn column(&self, name: &str) -> Option<usize> {
+        self.names.iter().position(|n| n == name)
+    }
+
+    /// Value of a column at a time: the row whose averaging period (starting at its time stamp)
+    /// contains `t`; NaN when none does.
+    pub fn at(&self, col: usize, t: &DateTime<Utc>) -> f64 {
+        let i = self.times.partition_point(|x| x <= t);
+        if i == 0 {
+            return f64::NAN;
+        }
+        let start = self.times[i - 1];
+        if (*t - start).num_milliseconds() as f64 / 1000.0 < self.period_s {
+            self.columns[col][i - 1]
+        } else {
+            f64::NAN
+        }
+    }
+}

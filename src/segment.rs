@@ -17,7 +17,8 @@
 //! A pixel's cloudiness score is `s = (R/B − ref) / (cloud_rb − ref)`: 0 on the clear-sky reference,
 //! 1 at the ratio of white cloud. Thin cloud from `s ≥ thin_score`, thick from `s ≥ thick_score`
 //! (thin cloud lets the sky's blue through, so its ratio lies between the two). The saturated sun disk
-//! (all channels ≥ `saturation_level` within `sun_exclusion_deg`... of the sun) is *unknown*.
+//! (all channels ≥ `saturation_level` within `sun_exclusion_deg` of the sun) is *unknown*, and so is
+//! any pixel within `glare_zone_deg` of the sun whose blue channel is clipped: its ratio means nothing.
 //! The continuous score also feeds cloud motion.
 //!
 //! # References
@@ -94,6 +95,9 @@ pub struct SegmentParams {
     pub offset_max: f64,
     /// Saturated pixels within this angle of the sun are unknown \[°\].
     pub sun_exclusion_deg: f64,
+    /// Within this angle of the sun, a pixel whose blue channel is clipped is unknown (its ratio
+    /// means nothing) \[°\].
+    pub glare_zone_deg: f64,
     /// A channel at or above this level is saturated.
     pub saturation_level: u8,
     /// Pixels beyond this zenith angle are not classified \[°\].
@@ -122,6 +126,7 @@ impl Default for SegmentParams {
             offset_min: -0.15,
             offset_max: 0.08,
             sun_exclusion_deg: 4.0,
+            glare_zone_deg: 15.0,
             saturation_level: 250,
             max_zenith_deg: 90.0,
             cloud_fraction_zenith_deg: 70.0,
@@ -151,6 +156,7 @@ impl SegmentParams {
         check_range(file, &f("offset_min"), self.offset_min, -1.0, 0.0)?;
         check_range(file, &f("offset_max"), self.offset_max, 0.0, 1.0)?;
         check_range(file, &f("sun_exclusion_deg"), self.sun_exclusion_deg, 0.0, 45.0)?;
+        check_range(file, &f("glare_zone_deg"), self.glare_zone_deg, 0.0, 60.0)?;
         check_range(file, &f("max_zenith_deg"), self.max_zenith_deg, 10.0, 100.0)?;
         check_range(file, &f("cloud_fraction_zenith_deg"), self.cloud_fraction_zenith_deg, 5.0, 90.0)?;
         check_range(file, &f("library_max_cloud_fraction"), self.library_max_cloud_fraction, 0.0, 1.0)?;
@@ -233,6 +239,9 @@ impl FrameReference<'_> {
         }
         let sat = p.saturation_level;
         if g.gamma_deg < p.sun_exclusion_deg as f32 && rgb[0] >= sat && rgb[1] >= sat && rgb[2] >= sat {
+            return (f32::NAN, Class::Unknown);
+        }
+        if g.gamma_deg < p.glare_zone_deg as f32 && rgb[2] >= sat {
             return (f32::NAN, Class::Unknown);
         }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);

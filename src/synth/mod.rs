@@ -161,6 +161,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         motion: Default::default(),
         map: Default::default(),
         irradiance: Default::default(),
+        pyranometers: vec![],
     }
 }
 
@@ -302,8 +303,12 @@ impl Scene {
             }
         }
         let cbh = spec.layers.iter().map(|l| l.base_height_m).fold(f64::INFINITY, f64::min);
-        let site = larkspur_site(if cbh.is_finite() { cbh } else { 1500.0 }, &spec.camera.name);
+        let mut site = larkspur_site(if cbh.is_finite() { cbh } else { 1500.0 }, &spec.camera.name);
         let plant = Plant::from_section(&site.plant);
+        site.pyranometers = pyranometers(&plant)
+            .into_iter()
+            .map(|(name, position_m)| crate::config::PyranometerSpec { name: name.trim_start_matches("pyr_").to_string(), position_m })
+            .collect();
         let camera = spec.camera.camera(spec.size_px);
         let mut world = World::new(
             &spec.layers,
@@ -493,7 +498,7 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
     let samples = scene.world.irradiance_series(&secs, &pts);
     let mut meas = String::from("# Simulated pyranometers (1-minute means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the minute\ntime_utc");
     for (n, _) in &pyr {
-        meas += &format!(",ghi_{n}_wm2");
+        meas += &format!(",ghi_{}_wm2", n.trim_start_matches("pyr_"));
     }
     meas += ",temp_air_c,wind_speed_mps\n";
     for m in 0..minutes {

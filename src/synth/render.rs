@@ -2,8 +2,8 @@
 //!
 //! Per pixel ray (direction from the same [`Camera`] the engine uses):
 //! * clear sky: luminance from the CIE standard clear sky (ISO 15469 / CIE S 011, type 12:
-//!   a = −1, b = −0.32, c = 10, d = −3, e = 0.45), colour from deep blue at the zenith toward white near
-//!   the horizon and around the sun;
+//!   a = −1, b = −0.32, c = 10, d = −3, e = 0.45), colour from the R/B profile of real clear sky by
+//!   sun angle ([`clear_sky_rb`]), whitening toward the horizon and the sun;
 //! * cloud layers, highest first, composited where the ray meets each layer's plane: opacity
 //!   `1 − exp(−0.7 τ_slant)`; brightness falling with optical depth (a thick base is grey, a thin edge
 //!   white) and rising toward the sun (forward scattering, bright sunlit edges);
@@ -83,6 +83,24 @@ fn cie_clear_sky(z: f64, gamma: f64) -> f64 {
     phi * f
 }
 
+/// Red/blue ratio of the clear sky at zenith `z` and sun angle `gamma` \[rad\]: a piecewise-linear
+/// profile in γ through the medians of R/B that hand-labelled clear pixels of the WSISEG images
+/// (Xie et al. 2020) show in 15° bands of sun angle, whitening toward the horizon.
+pub fn clear_sky_rb(z: f64, gamma: f64) -> f64 {
+    const PROFILE: [(f64, f64); 10] =
+        [(0.0, 0.86), (7.5, 0.84), (22.5, 0.73), (37.5, 0.66), (52.5, 0.61), (67.5, 0.55), (82.5, 0.49), (97.5, 0.45), (120.0, 0.43), (180.0, 0.42)];
+    let g = gamma.to_degrees();
+    let mut rb = PROFILE[PROFILE.len() - 1].1;
+    for w in PROFILE.windows(2) {
+        if g <= w[1].0 {
+            let f = (g - w[0].0) / (w[1].0 - w[0].0);
+            rb = w[0].1 + f * (w[1].1 - w[0].1);
+            break;
+        }
+    }
+    rb + 0.12 * (z / std::f64::consts::FRAC_PI_2).powi(6)
+}
+
 /// Render one frame.
 ///
 /// * `cam_pos_m`: camera position (east, north, up) \[m\].
@@ -130,12 +148,11 @@ pub fn render(
                     let cos_g = (d[0] * sun_d[0] + d[1] * sun_d[1] + d[2] * sun_d[2]).clamp(-1.0, 1.0);
                     let gamma = cos_g.acos();
                     let lum = if sun_up { cie_clear_sky(z, gamma) / norm } else { 0.05 };
-                    let white = (0.06 + 0.5 * (-gamma / 0.3).exp() + 0.5 * (z / std::f64::consts::FRAC_PI_2).powi(5)).min(0.92);
-                    let blue = [0.46, 0.63, 1.0];
-                    col = [0.0; 3];
-                    for c in 0..3 {
-                        col[c] = 150.0 * lum.min(3.0) * (blue[c] * (1.0 - white) + white);
-                    }
+                    // Display level of the blue channel: the CIE luminance through a soft camera
+                    // shoulder; red and green from the clear-sky colour ratios.
+                    let level = 262.0 * (1.0 - (-150.0 * lum / 190.0).exp());
+                    let rb = clear_sky_rb(z, gamma);
+                    col = [level * rb, level * (rb + 0.12).min(1.0), level];
                     // Clouds, highest first.
                     world.taus_along(inst, cam_pos_m, d, pixel_rad, &mut taus);
                     let mut slant_total = 0.0;
@@ -198,11 +215,6 @@ pub fn render(
                             *c += add;
                         }
                     }
-                }
-                // Camera response: a soft shoulder so bright sky whitens instead of clipping
-                // (channels compress toward 255 at different rates, as in real sky images).
-                for c in col.iter_mut() {
-                    *c = 262.0 * (1.0 - (-*c / 190.0).exp());
                 }
                 let i = (y * w + x) as u64;
                 for c in 0..3 {

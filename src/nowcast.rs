@@ -1,0 +1,442 @@
+//! The per-frame engine: [`Nowcaster::step`] turns one frame into a [`Nowcast`]. Replay, the demo
+//! and live mode all call it; its state (the previous map, the motion filter, the learned clear-sky
+//! reference, the look-up tables, the transmittance tuning) lives in it.
+
+use std::sync::Arc;
+use std::time::Instant as Clock;
+
+use chrono::{DateTime, Utc};
+
+use crate::cloudmap::{CloudMap, LutCache, build_map};
+use crate::config::Site;
+use crate::forecast::{Forecast, ForecastInput, IrradianceParams, TransmittanceMap, forecast, sun_ray_plane_point};
+use crate::io::{Measurements, Series};
+use crate::motion::{Measurement, Motion, MotionFilter, measure};
+use crate::plant::Plant;
+use crate::segment::{Class, Reference, gamma_deg};
+use crate::sun::{SunPosition, position};
+
+/// A decoded frame.
+#[derive(Debug, Clone)]
+pub struct Frame {
+    /// Capture time (UTC).
+    pub time: DateTime<Utc>,
+    /// Pixels.
+    pub image: image::RgbImage,
+}
+
+/// Why a frame was not used.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum Rejection {
+    /// The file could not be decoded.
+    #[error("unreadable: {0}")]
+    Unreadable(String),
+    /// The image size differs from the calibration's.
+    #[error("wrong size: {got_w}x{got_h} px, calibration says {want_w}x{want_h}")]
+    WrongSize {
+        /// Width found.
+        got_w: u32,
+        /// Height found.
+        got_h: u32,
+        /// Width expected.
+        want_w: u32,
+        /// Height expected.
+        want_h: u32,
+    },
+    /// Same time as the previous frame.
+    #[error("duplicated time")]
+    Duplicate,
+    /// Earlier than the previous frame.
+    #[error("out of order in time")]
+    OutOfOrder,
+    /// The sun is too low.
+    #[error("sun elevation {0:.1}° below the limit")]
+    SunTooLow(f64),
+    /// Too dark.
+    #[error("under-exposed (mean level {0:.0})")]
+    UnderExposed(f64),
+    /// Too bright.
+    #[error("over-exposed (mean level {0:.0}, saturated share {1:.2})")]
+    OverExposed(f64, f64),
+    /// No cloud base height for the frame's time.
+    #[error("no cloud base height for this time (the series does not cover it)")]
+    NoCloudBase,
+}
+
+impl Rejection {
+    /// A short code for CSV files.
+    pub fn code(&self) -> &'static str {
+        match self {
+            Rejection::Unreadable(_) => "unreadable",
+            Rejection::WrongSize { .. } => "wrong_size",
+            Rejection::Duplicate => "duplicate",
+            Rejection::OutOfOrder => "out_of_order",
+            Rejection::SunTooLow(_) => "sun_too_low",
+            Rejection::UnderExposed(_) => "under_exposed",
+            Rejection::OverExposed(..) => "over_exposed",
+            Rejection::NoCloudBase => "no_cloud_base",
+        }
+    }
+}
+
+/// Time spent in each stage of a step \[ms\].
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct StageTimes {
+    /// Quality control.
+    pub qc_ms: f64,
+    /// Cloud map (sampling + segmentation).
+    pub map_ms: f64,
+    /// Motion.
+    pub motion_ms: f64,
+    /// Forecast.
+    pub forecast_ms: f64,
+}
+
+/// The result of one frame.
+#[derive(Debug, Clone)]
+pub struct Nowcast {
+    /// Frame time.
+    pub time: DateTime<Utc>,
+    /// Seconds since the previous used frame.
+    pub dt_s: Option<f64>,
+    /// Sun at the frame time.
+    pub sun: SunPosition,
+    /// Cloud base height used \[m\].
+    pub cbh_m: f64,
+    /// Cloud fraction of the map within the configured zenith.
+    pub cloud_fraction: f64,
+    /// The cloud map.
+    pub map: Arc<CloudMap>,
+    /// Motion measured against the previous map.
+    pub measurement: Option<Measurement>,
+    /// Filtered motion used by the forecast.
+    pub motion: Option<Motion>,
+    /// The forecast.
+    pub forecast: Forecast,
+    /// Transmittance settings used (after tuning).
+    pub irradiance: IrradianceParams,
+    /// Stage timings.
+    pub times: StageTimes,
+}
+
+/// Counters over a run.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Counters {
+    /// Frames used.
+    pub used: usize,
+    /// Frames rejected, by reason code.
+    pub rejected: std::collections::BTreeMap<String, usize>,
+}
+
+/// Tuning of beam transmittances and diffuse gain from pyranometer readings (ridge regression toward
+/// the configured values over a sliding window).
+#[derive(Debug, Clone, Default)]
+struct Tuner {
+    rows: std::collections::VecDeque<([f64; 4], f64)>,
+}
+
+impl Tuner {
+    const WINDOW: usize = 400;
+    const PRIOR_WEIGHT: f64 = 4.0;
+
+    fn push(&mut self, x: [f64; 4], y: f64) {
+        self.rows.push_back((x, y));
+        if self.rows.len() > Self::WINDOW {
+            self.rows.pop_front();
+        }
+    }
+
+    fn solve(&self, prior: &IrradianceParams) -> Option<IrradianceParams> {
+        if self.rows.len() < 20 {
+            return None;
+        }
+        // Unknowns: beam_clear, beam_thin, beam_thick, diffuse_per_cover. Rows are scaled to W/m²
+        // of clear-sky GHI so every frame weighs alike.
+        let p0 = [prior.beam_clear, prior.beam_thin, prior.beam_thick, prior.diffuse_per_cover];
+        let n = self.rows.len() + 4;
+        let mut a = nalgebra::DMatrix::<f64>::zeros(n, 4);
+        let mut b = nalgebra::DVector::<f64>::zeros(n);
+        for (r, (x, y)) in self.rows.iter().enumerate() {
+            for c in 0..4 {
+                a[(r, c)] = x[c];
+            }
+            b[r] = *y;
+        }
+        for c in 0..4 {
+            let r = self.rows.len() + c;
+            a[(r, c)] = Self::PRIOR_WEIGHT;
+            b[r] = Self::PRIOR_WEIGHT * p0[c];
+        }
+        let sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
+        let mut p = *prior;
+        p.beam_clear = sol[0].clamp(0.8, 1.25);
+        p.beam_thin = sol[1].clamp(0.05, 0.95);
+        p.beam_thick = sol[2].clamp(0.0, 0.5);
+        p.diffuse_per_cover = sol[3].clamp(0.0, 0.8);
+        Some(p)
+    }
+}
+
+/// The per-frame engine.
+pub struct Nowcaster {
+    site: Site,
+    plant: Plant,
+    luts: LutCache,
+    reference: Reference,
+    prev: Option<(DateTime<Utc>, Arc<CloudMap>)>,
+    last_time: Option<DateTime<Utc>>,
+    filter: MotionFilter,
+    cbh_series: Option<Series>,
+    measurements: Option<(Measurements, Vec<(usize, [f64; 2])>)>,
+    tuner: Tuner,
+    irradiance: IrradianceParams,
+    /// Counters.
+    pub counters: Counters,
+}
+
+impl Nowcaster {
+    /// Build for a loaded site, with the cloud base height series (if the site names one) and
+    /// optional measurements for transmittance tuning.
+    pub fn new(site: Site, cbh_series: Option<Series>, measurements: Option<Measurements>) -> Nowcaster {
+        let plant = Plant::from_section(&site.file.plant);
+        let irradiance = site.file.irradiance;
+        let measurements = measurements.and_then(|m| {
+            let cols: Vec<(usize, [f64; 2])> = site
+                .file
+                .pyranometers
+                .iter()
+                .filter_map(|p| m.column(&format!("ghi_{}_wm2", p.name)).map(|c| (c, p.position_m)))
+                .collect();
+            (!cols.is_empty()).then_some((m, cols))
+        });
+        Nowcaster {
+            site,
+            plant,
+            luts: LutCache::default(),
+            reference: Reference::default(),
+            prev: None,
+            last_time: None,
+            filter: MotionFilter::default(),
+            cbh_series,
+            measurements,
+            tuner: Tuner::default(),
+            irradiance,
+            counters: Counters::default(),
+        }
+    }
+
+    /// The plant.
+    pub fn plant(&self) -> &Plant {
+        &self.plant
+    }
+
+    /// The site.
+    pub fn site(&self) -> &Site {
+        &self.site
+    }
+
+    /// The learned clear-sky reference.
+    pub fn reference(&self) -> &Reference {
+        &self.reference
+    }
+
+    /// Count a frame that could not even be decoded.
+    pub fn reject_unreadable(&mut self, why: &str) -> Rejection {
+        let r = Rejection::Unreadable(why.to_string());
+        self.count(&r);
+        r
+    }
+
+    fn count(&mut self, r: &Rejection) {
+        *self.counters.rejected.entry(r.code().to_string()).or_default() += 1;
+    }
+
+    /// Cloud base height above ground at a time \[m\].
+    pub fn cbh_at(&self, t: &DateTime<Utc>) -> Option<f64> {
+        match (&self.cbh_series, self.site.file.clouds.base_height_m) {
+            (Some(s), _) => s.at(t, 600.0),
+            (None, Some(h)) => Some(h),
+            (None, None) => None,
+        }
+    }
+
+    /// Horizons \[s\] from the site's forecast settings.
+    pub fn horizons_s(&self) -> Vec<u32> {
+        let f = &self.site.file.forecast;
+        (0..=f.horizon_min * 60).step_by(f.step_s as usize).collect()
+    }
+
+    /// Process one frame.
+    ///
+    /// # Errors
+    /// A [`Rejection`] (counted) when the frame cannot be used.
+    pub fn step(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
+        let r = self.step_inner(frame);
+        match &r {
+            Ok(_) => self.counters.used += 1,
+            Err(e) => self.count(e),
+        }
+        r
+    }
+
+    fn step_inner(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
+        let t0 = Clock::now();
+        let cam = &self.site.camera;
+        let (w, h) = frame.image.dimensions();
+        if (w, h) != (cam.width_px, cam.height_px) {
+            return Err(Rejection::WrongSize { got_w: w, got_h: h, want_w: cam.width_px, want_h: cam.height_px });
+        }
+        if let Some(last) = self.last_time {
+            if frame.time == last {
+                return Err(Rejection::Duplicate);
+            }
+            if frame.time < last {
+                return Err(Rejection::OutOfOrder);
+            }
+        }
+        let sun = position(&frame.time, &self.site.observer()).map_err(|e| Rejection::Unreadable(e.to_string()))?;
+        let elev = sun.elevation_rad().to_degrees();
+        let qc = &self.site.file.qc;
+        if elev < qc.min_sun_elevation_deg {
+            return Err(Rejection::SunTooLow(elev));
+        }
+        let cbh = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
+        let cam_z = self.site.file.camera.position_m[2];
+        let lut = self.luts.get(cam, self.site.obstruction.as_ref(), &self.site.file.map, (cbh - cam_z).max(10.0));
+        // Exposure over the map's pixels.
+        let raw = frame.image.as_raw();
+        let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
+        for &p in lut.pixel.iter().step_by(5) {
+            if p == crate::cloudmap::NO_PIXEL {
+                continue;
+            }
+            let i = p as usize * 3;
+            let (r, g, b) = (raw[i], raw[i + 1], raw[i + 2]);
+            sum += (r as f64 + g as f64 + b as f64) / 3.0;
+            sat += (r >= 250 && g >= 250 && b >= 250) as usize;
+            n += 1;
+        }
+        let mean = if n > 0 { sum / n as f64 } else { 0.0 };
+        let sat_share = if n > 0 { sat as f64 / n as f64 } else { 0.0 };
+        if mean < qc.min_mean_level {
+            return Err(Rejection::UnderExposed(mean));
+        }
+        if mean > qc.max_mean_level || sat_share > qc.max_saturated_fraction {
+            return Err(Rejection::OverExposed(mean, sat_share));
+        }
+        let t_qc = Clock::now();
+        // Cloud map.
+        let sd = sun.direction_enu();
+        let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
+        let sp = &self.site.file.segment;
+        let map = Arc::new(build_map(&frame.image, &lut, sun_dir, sp, &self.reference));
+        let cf = map.cloud_fraction(&lut, sp.cloud_fraction_zenith_deg as f32);
+        if cf <= sp.library_max_cloud_fraction {
+            let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
+                let i = lut.pixel[k] as usize * 3;
+                ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: gamma_deg(lut.dir[k], sun_dir) })
+            });
+            self.reference.learn(sp, sample);
+        }
+        let t_map = Clock::now();
+        // Motion.
+        let mp = &self.site.file.motion;
+        let dt_s = self.last_time.map(|l| (frame.time - l).num_milliseconds() as f64 / 1000.0);
+        let measurement = match (&self.prev, dt_s) {
+            (Some((_, pm)), Some(dt)) if dt <= mp.max_gap_s && pm.grid == map.grid => Some(measure(pm, &map, dt, mp)),
+            _ => None,
+        };
+        let motion = self.filter.update(measurement.as_ref(), dt_s.unwrap_or(0.0), mp);
+        let t_motion = Clock::now();
+        // Tuning from measurements at the frame time.
+        if self.irradiance.tune_from_measurements {
+            self.tune(&frame.time, &sun, &map, cf, cbh);
+        }
+        let input = ForecastInput {
+            issue: frame.time,
+            observer: self.site.observer(),
+            clear_model: self.site.clear_sky_model(),
+            altitude_m: self.site.file.site.elevation_m,
+            camera_m: self.site.file.camera.position_m,
+            cbh_m: cbh,
+            v_mps: motion.map(|m| m.v_mps).unwrap_or([0.0, 0.0]),
+            sigma_mps: motion.map(|m| m.sigma_mps).unwrap_or(3.0),
+            cloud_fraction: if cf.is_nan() { 0.0 } else { cf },
+            horizons_s: self.horizons_s(),
+            plant: &self.plant,
+            params: self.irradiance,
+        };
+        let fc = forecast(&map, &input);
+        let t_fc = Clock::now();
+        self.prev = Some((frame.time, map.clone()));
+        self.last_time = Some(frame.time);
+        let ms = |a: Clock, b: Clock| (b - a).as_secs_f64() * 1000.0;
+        Ok(Nowcast {
+            time: frame.time,
+            dt_s,
+            sun,
+            cbh_m: cbh,
+            cloud_fraction: cf,
+            map,
+            measurement,
+            motion,
+            forecast: fc,
+            irradiance: self.irradiance,
+            times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_fc) },
+        })
+    }
+
+    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, cf: f64, cbh: f64) {
+        let Some((m, cols)) = &self.measurements else { return };
+        let clear = crate::clearsky::clear_sky(sun, self.site.file.site.elevation_m, self.site.clear_sky_model());
+        let cz = sun.apparent_zenith_rad.cos();
+        if clear.ghi_wm2 < 50.0 || cz <= 0.05 {
+            return;
+        }
+        let r = (self.irradiance.blur_min_m / map.grid.cell_m).max(0.5);
+        let mut rows = vec![];
+        for (col, pos) in cols {
+            let y = m.at(*col, t);
+            if !y.is_finite() {
+                continue;
+            }
+            let q = sun_ray_plane_point(*pos, cbh, self.site.file.camera.position_m, sun.apparent_zenith_rad, sun.azimuth_rad);
+            let (cx, cy) = map.grid.to_cell(q);
+            // Class shares in the look-up box.
+            let mut share = [0f64; 3];
+            let mut k = 0.0;
+            let n = map.grid.n as i64;
+            for j in (cy - r).round() as i64..=(cy + r).round() as i64 {
+                for i in (cx - r).round() as i64..=(cx + r).round() as i64 {
+                    if i < 0 || j < 0 || i >= n || j >= n {
+                        continue;
+                    }
+                    match Class::from_u8(map.class[(j * n + i) as usize]) {
+                        Class::Clear => share[0] += 1.0,
+                        Class::Thin => share[1] += 1.0,
+                        Class::Thick => share[2] += 1.0,
+                        Class::Unknown => continue,
+                    }
+                    k += 1.0;
+                }
+            }
+            if k == 0.0 {
+                continue;
+            }
+            let beam = clear.dni_wm2 * cz / clear.ghi_wm2;
+            let x = [beam * share[0] / k, beam * share[1] / k, beam * share[2] / k, cf.max(0.0)];
+            rows.push((x, (y - clear.dhi_wm2) / clear.ghi_wm2));
+        }
+        for (x, y) in rows {
+            self.tuner.push(x, y);
+        }
+        if let Some(p) = self.tuner.solve(&self.site.file.irradiance) {
+            self.irradiance = p;
+        }
+    }
+
+    /// Build a transmittance map of a nowcast's cloud map with the current settings.
+    pub fn transmittance(&self, nc: &Nowcast) -> TransmittanceMap {
+        TransmittanceMap::new(&nc.map, &nc.irradiance)
+    }
+}

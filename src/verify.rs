@@ -1,0 +1,390 @@
+//! Verification: forecast errors and skill per horizon, motion error, segmentation accuracy.
+//!
+//! * RMSE, MAE, MBE of GHI per horizon.
+//! * Skill against smart persistence, `s = 1 − RMSE_forecast / RMSE_persistence` (Coimbra, Kleissl
+//!   & Marquez 2013), where smart persistence keeps the clear-sky index `k* = GHI / GHI_clear` of the
+//!   issue time and applies it to the clear-sky GHI at the target time.
+//! * Motion: speed and direction error of the filtered motion against a scene's truth.
+//! * Segmentation: share of pixels whose class (clear / thin / thick) matches a truth mask, at zenith
+//!   < 70° outside 10° around the sun, and in the circumsolar ring 5–15° from the sun.
+//!
+//! # References
+//! * C. F. M. Coimbra, J. Kleissl, R. Marquez, "Overview of solar-forecasting methods and a metric for
+//!   accuracy evaluation", in J. Kleissl (ed.), *Solar Energy Forecasting and Resource Assessment*,
+//!   Academic Press, 2013, ch. 8.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, Utc};
+use serde::Serialize;
+
+use crate::config::Site;
+use crate::io::{InputError, parse_time};
+use crate::segment::{Class, ImageGeometry, Reference, gamma_deg, segment_image};
+
+/// Root-mean-square error of pairs (forecast, observed).
+pub fn rmse(pairs: &[(f64, f64)]) -> f64 {
+    (pairs.iter().map(|(f, o)| (f - o).powi(2)).sum::<f64>() / pairs.len() as f64).sqrt()
+}
+
+/// Mean absolute error.
+pub fn mae(pairs: &[(f64, f64)]) -> f64 {
+    pairs.iter().map(|(f, o)| (f - o).abs()).sum::<f64>() / pairs.len() as f64
+}
+
+/// Mean bias error (forecast − observed).
+pub fn mbe(pairs: &[(f64, f64)]) -> f64 {
+    pairs.iter().map(|(f, o)| f - o).sum::<f64>() / pairs.len() as f64
+}
+
+/// Skill against a reference: `1 − RMSE_forecast / RMSE_reference`.
+pub fn skill(rmse_forecast: f64, rmse_reference: f64) -> f64 {
+    1.0 - rmse_forecast / rmse_reference
+}
+
+/// Scores at one horizon.
+#[derive(Debug, Clone, Serialize)]
+pub struct HorizonScore {
+    /// Horizon \[s\].
+    pub horizon_s: u32,
+    /// Pairs scored.
+    pub n: usize,
+    /// RMSE \[W m⁻²\].
+    pub rmse_wm2: f64,
+    /// MAE \[W m⁻²\].
+    pub mae_wm2: f64,
+    /// MBE \[W m⁻²\].
+    pub mbe_wm2: f64,
+    /// RMSE normalised by the mean observed GHI.
+    pub nrmse: f64,
+    /// RMSE of smart persistence \[W m⁻²\].
+    pub rmse_persistence_wm2: f64,
+    /// Skill against smart persistence (NaN at horizon 0, where persistence is exact).
+    pub skill: f64,
+}
+
+/// Truth irradiance of a synthetic sequence: (time, target) → (GHI, clear-sky GHI).
+#[derive(Debug, Clone, Default)]
+pub struct Truth {
+    map: HashMap<(DateTime<Utc>, String), (f64, f64)>,
+}
+
+fn csv_err(path: &Path, e: csv::Error) -> InputError {
+    InputError::Csv { file: path.into(), line: e.position().map(|p| p.line()).unwrap_or(0), message: e.to_string() }
+}
+
+/// Read a CSV into rows of name → text.
+pub fn read_rows(path: &Path) -> Result<Vec<HashMap<String, String>>, InputError> {
+    let mut rdr = csv::ReaderBuilder::new().comment(Some(b'#')).from_path(path).map_err(|e| csv_err(path, e))?;
+    let h = rdr.headers().map_err(|e| csv_err(path, e))?.clone();
+    let mut rows = vec![];
+    for r in rdr.records() {
+        let r = r.map_err(|e| csv_err(path, e))?;
+        rows.push(h.iter().zip(r.iter()).map(|(a, b)| (a.to_string(), b.to_string())).collect());
+    }
+    Ok(rows)
+}
+
+fn num(path: &Path, row: &HashMap<String, String>, k: &str) -> Result<f64, InputError> {
+    let v = row.get(k).ok_or_else(|| InputError::Other { file: path.into(), message: format!("missing column {k}") })?;
+    v.parse().map_err(|_| InputError::Other { file: path.into(), message: format!("column {k}: expected a number, got {v:?}") })
+}
+
+fn time(path: &Path, row: &HashMap<String, String>, k: &str) -> Result<DateTime<Utc>, InputError> {
+    parse_time(k, row.get(k).map(String::as_str).unwrap_or("")).map_err(|m| InputError::Other { file: path.into(), message: m })
+}
+
+impl Truth {
+    /// Read `truth/irradiance.csv`.
+    ///
+    /// # Errors
+    /// Unreadable or malformed file.
+    pub fn read(path: &Path) -> Result<Truth, InputError> {
+        let mut t = Truth::default();
+        for r in read_rows(path)? {
+            t.map.insert((time(path, &r, "time_utc")?, r["target"].clone()), (num(path, &r, "ghi_wm2")?, num(path, &r, "ghi_clear_wm2")?));
+        }
+        Ok(t)
+    }
+
+    /// GHI and clear-sky GHI of a target at a time.
+    pub fn at(&self, t: &DateTime<Utc>, target: &str) -> Option<(f64, f64)> {
+        self.map.get(&(*t, target.to_string())).copied()
+    }
+}
+
+/// Score a replay's `forecasts.csv` against truth for one target (a block or `plant`).
+///
+/// # Errors
+/// Unreadable or malformed forecasts.
+pub fn score_forecasts(forecasts: &Path, truth: &Truth, target: &str) -> Result<Vec<HorizonScore>, InputError> {
+    let mut by_h: std::collections::BTreeMap<u32, (Vec<(f64, f64)>, Vec<(f64, f64)>)> = Default::default();
+    for r in read_rows(forecasts)? {
+        if r.get("block").map(String::as_str) != Some(target) {
+            continue;
+        }
+        let issue = time(forecasts, &r, "issue_time_utc")?;
+        let tt = time(forecasts, &r, "target_time_utc")?;
+        let h = num(forecasts, &r, "horizon_s")? as u32;
+        let f = num(forecasts, &r, "ghi_wm2")?;
+        let (Some((obs, clear_t)), Some((obs_i, clear_i))) = (truth.at(&tt, target), truth.at(&issue, target)) else { continue };
+        if clear_t < 50.0 || clear_i < 50.0 {
+            continue;
+        }
+        let p = obs_i / clear_i * clear_t;
+        let e = by_h.entry(h).or_default();
+        e.0.push((f, obs));
+        e.1.push((p, obs));
+    }
+    Ok(by_h
+        .into_iter()
+        .map(|(h, (fc, pe))| {
+            let r = rmse(&fc);
+            let rp = rmse(&pe);
+            let mean_obs = fc.iter().map(|p| p.1).sum::<f64>() / fc.len() as f64;
+            HorizonScore {
+                horizon_s: h,
+                n: fc.len(),
+                rmse_wm2: r,
+                mae_wm2: mae(&fc),
+                mbe_wm2: mbe(&fc),
+                nrmse: r / mean_obs,
+                rmse_persistence_wm2: rp,
+                skill: if rp > 1e-6 { skill(r, rp) } else { f64::NAN },
+            }
+        })
+        .collect())
+}
+
+/// Motion error against a scene's truth.
+#[derive(Debug, Clone, Serialize)]
+pub struct MotionScore {
+    /// Frames with a motion estimate.
+    pub frames: usize,
+    /// Median absolute speed error \[m/s\].
+    pub speed_error_mps: f64,
+    /// Median absolute direction error \[°\].
+    pub direction_error_deg: f64,
+    /// Share of frames (with two truth layers) where a second layer was reported near the second
+    /// truth layer's apparent vector.
+    pub second_layer_found_share: Option<f64>,
+}
+
+fn med(mut v: Vec<f64>) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
+/// Score `motion.csv` against `truth/layers.csv`. The first truth layer (the lowest) is the one the
+/// site's cloud base height describes; a higher layer appears on that plane with its speed scaled by
+/// `h_low / h_high`.
+///
+/// # Errors
+/// Unreadable or malformed files.
+pub fn score_motion(motion: &Path, layers: &Path) -> Result<MotionScore, InputError> {
+    let truth: Vec<([f64; 2], f64)> = read_rows(layers)?
+        .iter()
+        .map(|r| Ok(([num(layers, r, "wind_east_mps")?, num(layers, r, "wind_north_mps")?], num(layers, r, "base_height_m")?)))
+        .collect::<Result<_, InputError>>()?;
+    let Some(&(v0, h0)) = truth.first() else {
+        return Ok(MotionScore { frames: 0, speed_error_mps: f64::NAN, direction_error_deg: f64::NAN, second_layer_found_share: None });
+    };
+    let second = truth.get(1).map(|(v, h)| [v[0] * h0 / h, v[1] * h0 / h]);
+    let (mut se, mut de, mut found, mut two_frames) = (vec![], vec![], 0usize, 0usize);
+    for (k, r) in read_rows(motion)?.iter().enumerate() {
+        let (Ok(e), Ok(n)) = (num(motion, r, "east_mps"), num(motion, r, "north_mps")) else { continue };
+        if k < 3 {
+            continue;
+        }
+        se.push((e.hypot(n) - v0[0].hypot(v0[1])).abs());
+        let mut d = (e.atan2(n) - v0[0].atan2(v0[1])).to_degrees().abs() % 360.0;
+        d = d.min(360.0 - d);
+        de.push(d);
+        if let Some(s2) = second {
+            two_frames += 1;
+            let l2 = (num(motion, r, "layer2_east_mps"), num(motion, r, "layer2_north_mps"));
+            let l1 = (num(motion, r, "layer1_east_mps"), num(motion, r, "layer1_north_mps"));
+            let near = |l: (Result<f64, _>, Result<f64, _>)| match l {
+                (Ok(a), Ok(b)) => (a - s2[0]).hypot(b - s2[1]) < 1.5,
+                _ => false,
+            };
+            if near(l2) || near(l1) {
+                found += 1;
+            }
+        }
+    }
+    Ok(MotionScore {
+        frames: se.len(),
+        speed_error_mps: med(se),
+        direction_error_deg: med(de),
+        second_layer_found_share: second.map(|_| found as f64 / two_frames.max(1) as f64),
+    })
+}
+
+/// Segmentation accuracy against truth masks.
+#[derive(Debug, Clone, Serialize)]
+pub struct SegmentationScore {
+    /// Frames scored.
+    pub frames: usize,
+    /// Share correct at zenith < 70°, more than 10° from the sun (all frames pooled).
+    pub accuracy: f64,
+    /// Lowest per-frame accuracy.
+    pub worst_frame_accuracy: f64,
+    /// Share correct 5–15° from the sun.
+    pub circumsolar_accuracy: f64,
+    /// Share correct when thin and thick are pooled as "cloud".
+    pub binary_accuracy: f64,
+}
+
+/// Segment every frame of a synthetic sequence that has a truth mask and score it.
+///
+/// # Errors
+/// Unreadable site, frames or masks.
+pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, Box<dyn std::error::Error + Send + Sync>> {
+    let site = Site::load(&sequence.join("site.toml"))?;
+    let geom = ImageGeometry::from_camera(&site.camera, site.obstruction.as_ref());
+    let frames_csv = sequence.join("truth").join("frames.csv");
+    let mut reference = Reference::default();
+    let (mut ok, mut n, mut cok, mut cn, mut bok) = (0usize, 0usize, 0usize, 0usize, 0usize);
+    let mut worst = 1.0f64;
+    let mut frames = 0;
+    for r in read_rows(&frames_csv)? {
+        let mask_name = r.get("truth_mask").cloned().unwrap_or_default();
+        if mask_name.is_empty() {
+            continue;
+        }
+        let t = time(&frames_csv, &r, "time_utc")?;
+        let img = image::open(sequence.join("frames").join(&r["frame"]))?.to_rgb8();
+        let mask = image::open(sequence.join("truth").join("masks").join(&mask_name))?.to_luma8();
+        let sun = crate::sun::position(&t, &site.observer())?;
+        let sd = sun.direction_enu();
+        let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
+        let seg = segment_image(&img, &geom, sun_dir, &site.file.segment, &reference);
+        if seg.cloud_fraction <= site.file.segment.library_max_cloud_fraction {
+            let raw = img.as_raw();
+            let sample = (0..geom.z_deg.len()).step_by(3).filter(|&i| !geom.z_deg[i].is_nan()).map(|i| {
+                ([raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]], crate::segment::PixelGeom { z_deg: geom.z_deg[i], gamma_deg: gamma_deg(geom.dir[i], sun_dir) })
+            });
+            reference.learn(&site.file.segment, sample);
+        }
+        let (mut fok, mut fn_) = (0usize, 0usize);
+        for i in 0..geom.z_deg.len() {
+            let tr = mask.as_raw()[i];
+            if tr == Class::Unknown as u8 || geom.z_deg[i].is_nan() || geom.z_deg[i] >= 70.0 {
+                continue;
+            }
+            let ours = seg.classes.as_raw()[i];
+            let g = gamma_deg(geom.dir[i], sun_dir);
+            let same = ours == tr;
+            if (5.0..15.0).contains(&g) {
+                cn += 1;
+                cok += same as usize;
+            }
+            if g > 10.0 {
+                fn_ += 1;
+                fok += same as usize;
+                let cloud = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
+                bok += (cloud(ours) == cloud(tr)) as usize;
+            }
+        }
+        ok += fok;
+        n += fn_;
+        if fn_ > 0 {
+            worst = worst.min(fok as f64 / fn_ as f64);
+        }
+        frames += 1;
+    }
+    Ok(SegmentationScore {
+        frames,
+        accuracy: ok as f64 / n.max(1) as f64,
+        worst_frame_accuracy: worst,
+        circumsolar_accuracy: if cn > 0 { cok as f64 / cn as f64 } else { f64::NAN },
+        binary_accuracy: bok as f64 / n.max(1) as f64,
+    })
+}
+
+/// A whole evaluation of a replay of a synthetic sequence.
+#[derive(Debug, Clone, Serialize)]
+pub struct Evaluation {
+    /// Plant-mean GHI scores per horizon.
+    pub plant: Vec<HorizonScore>,
+    /// Motion scores.
+    pub motion: MotionScore,
+    /// Segmentation scores.
+    pub segmentation: SegmentationScore,
+}
+
+/// Evaluate a replay (`replay_out`) of a synthetic sequence (`sequence`).
+///
+/// # Errors
+/// Missing or malformed files.
+pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, Box<dyn std::error::Error + Send + Sync>> {
+    let truth = Truth::read(&sequence.join("truth").join("irradiance.csv"))?;
+    let plant = score_forecasts(&replay_out.join("forecasts.csv"), &truth, "plant")?;
+    let motion = score_motion(&replay_out.join("motion.csv"), &sequence.join("truth").join("layers.csv"))?;
+    let segmentation = score_segmentation(sequence)?;
+    Ok(Evaluation { plant, motion, segmentation })
+}
+
+/// Print an evaluation as a table.
+pub fn print_evaluation(e: &Evaluation) {
+    println!("horizon  n     RMSE   MAE    MBE   nRMSE  RMSE(pers)  skill");
+    for h in &e.plant {
+        if h.horizon_s % 300 == 0 {
+            println!(
+                "{:>4} min {:<5} {:>6.1} {:>6.1} {:>6.1} {:>6.3} {:>10.1} {:>6.3}",
+                h.horizon_s / 60,
+                h.n,
+                h.rmse_wm2,
+                h.mae_wm2,
+                h.mbe_wm2,
+                h.nrmse,
+                h.rmse_persistence_wm2,
+                h.skill
+            );
+        }
+    }
+    let m = &e.motion;
+    println!(
+        "motion: {} frames, median speed error {:.2} m/s, median direction error {:.1}°{}",
+        m.frames,
+        m.speed_error_mps,
+        m.direction_error_deg,
+        m.second_layer_found_share.map(|s| format!(", second layer found in {:.0} % of frames", 100.0 * s)).unwrap_or_default()
+    );
+    let s = &e.segmentation;
+    println!(
+        "segmentation: {} frames, {:.1} % correct (zenith < 70°, > 10° from the sun; worst frame {:.1} %), {:.1} % in the 5–15° ring, {:.1} % cloud/clear",
+        s.frames,
+        100.0 * s.accuracy,
+        100.0 * s.worst_frame_accuracy,
+        100.0 * s.circumsolar_accuracy,
+        100.0 * s.binary_accuracy
+    );
+}
+
+/// Where a sequence's truth lives.
+pub fn truth_dir(sequence: &Path) -> PathBuf {
+    sequence.join("truth")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn metrics_by_hand() {
+        // Errors +10, −20, +30, 0: RMSE = sqrt((100 + 400 + 900 + 0) / 4) = sqrt(350) = 18.708…,
+        // MAE = 60 / 4 = 15, MBE = 20 / 4 = 5.
+        let p = [(110.0, 100.0), (180.0, 200.0), (330.0, 300.0), (400.0, 400.0)];
+        assert!((rmse(&p) - 350f64.sqrt()).abs() < 1e-12);
+        assert_eq!(mae(&p), 15.0);
+        assert_eq!(mbe(&p), 5.0);
+        // Coimbra, Kleissl & Marquez 2013: s = 1 − RMSE_f / RMSE_ref; 1 − 60 / 80 = 0.25.
+        assert_eq!(skill(60.0, 80.0), 0.25);
+    }
+}
