@@ -172,7 +172,7 @@ pub fn run(cli: Cli) -> Result<()> {
             crate::verify::print_evaluation(&e);
             let p = a.replay.join("evaluation.json");
             crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
-            println!("wrote {}", p.display());
+            crate::say!("wrote {}", p.display());
             Ok(())
         }
     }
@@ -182,13 +182,13 @@ fn cmd_synth(a: SynthArgs) -> Result<()> {
     use crate::synth;
     if a.list {
         for s in synth::scenes() {
-            println!("{:<22} {}", s.name, s.description);
-            println!(
+            crate::say!("{:<22} {}", s.name, s.description);
+            crate::say!(
                 "{:<22} start {}, {} min, a frame every {} s, {}x{} px, {} layer(s)",
                 "", s.start_utc, s.duration_min, s.frame_step_s, s.size_px, s.size_px, s.layers.len()
             );
             for l in &s.layers {
-                println!(
+                crate::say!(
                     "{:<22}   base {} m, wind {} m/s toward {}°, cover {}→{}, tau_max {}",
                     "", l.base_height_m, l.wind_speed_mps, l.wind_toward_deg, l.cover_start, l.cover_end, l.tau_max
                 );
@@ -210,7 +210,7 @@ fn cmd_synth(a: SynthArgs) -> Result<()> {
     }
     let scene = synth::Scene::new(spec, a.seed)?;
     let sum = synth::write_sequence(&scene, &out, !a.quiet)?;
-    println!(
+    crate::say!(
         "wrote {} frames ({:.1} MB) to {} in {:.3} s per frame",
         sum.frames,
         sum.bytes as f64 / 1e6,
@@ -237,15 +237,15 @@ fn cmd_replay(a: ReplayArgs) -> Result<()> {
 /// Print what a replay did.
 pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
     let rejected: usize = s.counters.rejected.values().sum();
-    println!("frames: {} found, {} used, {} rejected {:?}, {} files without a time in their name",
+    crate::say!("frames: {} found, {} used, {} rejected {:?}, {} files without a time in their name",
         s.frames_found, s.counters.used, rejected, s.counters.rejected, s.untimed_files);
-    println!("speed: median {:.2} ms per frame (map + motion + forecast), {:.2} ms decode; {:.1} s in all",
+    crate::say!("speed: median {:.2} ms per frame (map + motion + forecast), {:.2} ms decode; {:.1} s in all",
         s.median_step_ms, s.median_decode_ms, s.wall_s);
     if let Some(v) = s.last_motion_mps {
-        println!("cloud motion at the end: {:.1} m/s toward {:.0}°", v[0].hypot(v[1]), v[0].atan2(v[1]).to_degrees().rem_euclid(360.0));
+        crate::say!("cloud motion at the end: {:.1} m/s toward {:.0}°", v[0].hypot(v[1]), v[0].atan2(v[1]).to_degrees().rem_euclid(360.0));
     }
     for p in &s.outputs {
-        println!("wrote {}", p.display());
+        crate::say!("wrote {}", p.display());
     }
 }
 

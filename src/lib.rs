@@ -33,6 +33,15 @@
 //! Forecasts and alarms are advisory. They are not a protection system.
 #![deny(missing_docs)]
 
+/// Print a line to standard output, ignoring a closed pipe (e.g. `| head`).
+#[macro_export]
+macro_rules! say {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        let _ = writeln!(std::io::stdout(), $($t)*);
+    }};
+}
+
 pub mod camera;
 pub mod cli;
 pub mod clearsky;

@@ -5,8 +5,8 @@
 //! clipped to [−0.5, 1.5]. The previous map is cut into square blocks; blocks with too few known
 //! cells or too little texture (standard deviation) are skipped. Each block is searched for in the
 //! current map by normalized cross-correlation (NCC), coarse to fine: a full search on maps reduced
-//! 4×, over a window set by the largest plausible speed and the **measured** time step, then a ±2
-//! cell search at full resolution; the peak is refined to a fraction of a cell by fitting a parabola
+//! 4×, over a window set by the largest plausible speed and the **measured** time step, then a ±3
+//! cell search at full resolution (edge peaks rejected), then Lucas–Kanade refinement; the peak is refined to a fraction of a cell by fitting a parabola
 //! through the NCC on each axis. A block is rejected when its peak is weak, lies on the window's
 //! edge, or is ambiguous (a second peak away from the first almost as high).
 //!
@@ -282,22 +282,41 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams) -> 
             // Fine search at full resolution around the coarse peak.
             let min_f = (params.min_known * (bs * bs) as f64 * 0.8) as usize;
             let (bx0, by0) = (best.1 * 4, best.2 * 4);
+            // Two-step search within ±3 cells: a coarse 3×3 at step 2, then the 3×3 around its best.
             let mut fine = [[f64::NAN; 7]; 7];
+            let eval = |ox: i64, oy: i64, fine: &mut [[f64; 7]; 7]| -> f64 {
+                let (ix, iy) = ((ox + 3) as usize, (oy + 3) as usize);
+                if fine[iy][ix].is_nan() {
+                    fine[iy][ix] = ncc(&fa, &fb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f).unwrap_or(f64::MIN);
+                }
+                fine[iy][ix]
+            };
             let mut fb_best = (f64::MIN, 0i64, 0i64);
-            for oy in -3..=3i64 {
-                for ox in -3..=3i64 {
-                    if let Some(v) = ncc(&fa, &fb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f) {
-                        fine[(oy + 3) as usize][(ox + 3) as usize] = v;
-                        if v > fb_best.0 {
-                            fb_best = (v, ox, oy);
-                        }
+            for oy in [-2i64, 0, 2] {
+                for ox in [-2i64, 0, 2] {
+                    let v = eval(ox, oy, &mut fine);
+                    if v > fb_best.0 {
+                        fb_best = (v, ox, oy);
+                    }
+                }
+            }
+            let (cx0, cy0) = (fb_best.1, fb_best.2);
+            for oy in cy0 - 1..=cy0 + 1 {
+                for ox in cx0 - 1..=cx0 + 1 {
+                    let v = eval(ox, oy, &mut fine);
+                    if v > fb_best.0 {
+                        fb_best = (v, ox, oy);
                     }
                 }
             }
             if fb_best.0 < params.min_peak || fb_best.1.abs() == 3 || fb_best.2.abs() == 3 {
                 return None;
             }
-            let (fx, fy) = ((fb_best.1 + 3) as usize, (fb_best.2 + 3) as usize);
+            let (bxf, byf) = (fb_best.1, fb_best.2);
+            for (ox, oy) in [(bxf - 1, byf), (bxf + 1, byf), (bxf, byf - 1), (bxf, byf + 1)] {
+                eval(ox, oy, &mut fine);
+            }
+            let (fx, fy) = ((bxf + 3) as usize, (byf + 3) as usize);
             let sub_x = parabola_offset(fine[fy][fx - 1], fine[fy][fx], fine[fy][fx + 1]);
             let sub_y = parabola_offset(fine[fy - 1][fx], fine[fy][fx], fine[fy + 1][fx]);
             let sub_x = if sub_x.is_nan() { 0.0 } else { sub_x };
@@ -520,7 +539,7 @@ mod tests {
 
     #[test]
     fn recovers_a_known_shift_to_a_tenth_of_a_metre_per_second() {
-        let g = Grid::new(&MapParams::default(), 1500.0);
+        let g = Grid::new(&MapParams { max_zenith_deg: 77.0, ..Default::default() }, 1500.0);
         let v = [7.3, -4.1];
         let dt = 20.0;
         let a = map_from(blobs, g);

@@ -531,8 +531,8 @@ mod tests {
         let p = SegmentParams::default();
         let r = Reference::default();
         let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
-        assert_eq!(fr.classify([200, 220, 250], geom(40.0, 5.0)).1, Class::Clear);
-        assert_ne!(fr.classify([200, 220, 250], geom(40.0, 100.0)).1, Class::Clear);
+        assert_eq!(fr.classify([199, 219, 248], geom(40.0, 5.0)).1, Class::Clear);
+        assert_ne!(fr.classify([199, 219, 248], geom(40.0, 100.0)).1, Class::Clear);
     }
 
     #[test]

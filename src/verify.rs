@@ -332,10 +332,10 @@ pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, Box<dy
 
 /// Print an evaluation as a table.
 pub fn print_evaluation(e: &Evaluation) {
-    println!("horizon  n     RMSE   MAE    MBE   nRMSE  RMSE(pers)  skill");
+    crate::say!("horizon  n     RMSE   MAE    MBE   nRMSE  RMSE(pers)  skill");
     for h in &e.plant {
         if h.horizon_s % 300 == 0 {
-            println!(
+            crate::say!(
                 "{:>4} min {:<5} {:>6.1} {:>6.1} {:>6.1} {:>6.3} {:>10.1} {:>6.3}",
                 h.horizon_s / 60,
                 h.n,
@@ -349,7 +349,7 @@ pub fn print_evaluation(e: &Evaluation) {
         }
     }
     let m = &e.motion;
-    println!(
+    crate::say!(
         "motion: {} frames, median speed error {:.2} m/s, median direction error {:.1}°{}",
         m.frames,
         m.speed_error_mps,
@@ -357,7 +357,7 @@ pub fn print_evaluation(e: &Evaluation) {
         m.second_layer_found_share.map(|s| format!(", second layer found in {:.0} % of frames", 100.0 * s)).unwrap_or_default()
     );
     let s = &e.segmentation;
-    println!(
+    crate::say!(
         "segmentation: {} frames, {:.1} % correct (zenith < 70°, > 10° from the sun; worst frame {:.1} %), {:.1} % in the 5–15° ring, {:.1} % cloud/clear",
         s.frames,
         100.0 * s.accuracy,
