@@ -32,6 +32,44 @@ pub enum Command {
     Replay(ReplayArgs),
     /// Score a replay of a synthetic sequence against its truth.
     Evaluate(EvaluateArgs),
+    /// Replay the shipped demo data end to end and score it.
+    Demo(DemoArgs),
+    /// Segment sky images into clear / thin / thick cloud and print their cloud fraction.
+    Segment(SegmentArgs),
+}
+
+/// Arguments of `nephocast demo`.
+#[derive(Debug, clap::Args)]
+pub struct DemoArgs {
+    /// The demo data folder (default: demo-data/ here, else the one in the source tree).
+    #[arg(long)]
+    pub data: Option<PathBuf>,
+    /// Output folder.
+    #[arg(long, default_value = "demo-out")]
+    pub out: PathBuf,
+    /// Hide the progress bar.
+    #[arg(long)]
+    pub quiet: bool,
+}
+
+/// Arguments of `nephocast segment`.
+#[derive(Debug, clap::Args)]
+pub struct SegmentArgs {
+    /// Images (JPEG or PNG).
+    #[arg(required = true)]
+    pub images: Vec<PathBuf>,
+    /// Output folder for the class masks (0 unknown, 1 clear, 2 thin, 3 thick).
+    #[arg(long)]
+    pub out: PathBuf,
+    /// A site file: camera from its calibration, sun from the time.
+    #[arg(long, conflicts_with = "calibration")]
+    pub site: Option<PathBuf>,
+    /// A calibration file (the sun is then found in the image).
+    #[arg(long)]
+    pub calibration: Option<PathBuf>,
+    /// Capture time (UTC, RFC 3339); default: from the file name. Needs --site.
+    #[arg(long, requires = "site")]
+    pub time: Option<String>,
 }
 
 /// Arguments of `nephocast evaluate`.
@@ -167,6 +205,8 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Sun(a) => cmd_sun(a),
         Command::Synth(a) => cmd_synth(a),
         Command::Replay(a) => cmd_replay(a),
+        Command::Demo(a) => cmd_demo(a),
+        Command::Segment(a) => cmd_segment(a),
         Command::Evaluate(a) => {
             let e = crate::verify::evaluate(&a.sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
             crate::verify::print_evaluation(&e);
@@ -247,6 +287,94 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
     for p in &s.outputs {
         crate::say!("wrote {}", p.display());
     }
+}
+
+fn cmd_demo(a: DemoArgs) -> Result<()> {
+    let data = a.data.unwrap_or_else(|| {
+        let here = PathBuf::from("demo-data");
+        if here.join("site.toml").is_file() { here } else { PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("demo-data") }
+    });
+    if !data.join("site.toml").is_file() {
+        bail!("{}: no demo data here (expected site.toml, frames/, measurements.csv, truth/)", data.display());
+    }
+    crate::say!("nephocast demo: the fictional Larkspur Flats plant, data in {}", data.display());
+    crate::say!("Forecasts are advisory, not a protection system.");
+    let opts = crate::replay::ReplayOptions {
+        site: data.join("site.toml"),
+        frames: data.join("frames"),
+        out: a.out.clone(),
+        measurements: Some(data.join("measurements.csv")).filter(|p| p.is_file()),
+        overlays_every: 10,
+        progress: !a.quiet,
+    };
+    let s = crate::replay::replay(&opts)?;
+    print_replay_summary(&s);
+    if data.join("truth").join("irradiance.csv").is_file() {
+        let e = crate::verify::evaluate(&data, &a.out).map_err(|e| anyhow::anyhow!("{e}"))?;
+        let layers = crate::verify::read_rows(&data.join("truth").join("layers.csv"))?;
+        if let Some(l) = layers.first() {
+            crate::say!("true cloud motion: {} m/s toward {}° at {} m", l["wind_speed_mps"], l["wind_toward_deg"], l["base_height_m"]);
+        }
+        crate::say!("");
+        crate::say!("Plant-mean GHI against the scene's truth (skill against smart persistence):");
+        crate::verify::print_evaluation(&e);
+        let p = a.out.join("evaluation.json");
+        crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
+        crate::say!("wrote {}", p.display());
+    }
+    crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
+    Ok(())
+}
+
+fn cmd_segment(a: SegmentArgs) -> Result<()> {
+    use crate::segment::{ImageGeometry, Reference, geometry_free, segment_image};
+    let site = a.site.as_ref().map(|p| crate::config::Site::load(p)).transpose()?;
+    let cal_cam = match &a.calibration {
+        Some(p) => {
+            let c: crate::config::CalibrationFile = crate::config::read_toml(p)?;
+            Some(c.camera(p)?)
+        }
+        None => None,
+    };
+    let fixed_time = a.time.as_deref().map(|t| parse_time("--time", t)).transpose().map_err(anyhow::Error::msg)?;
+    let params = site.as_ref().map(|s| s.file.segment.clone()).unwrap_or_default();
+    let mut geoms: Vec<(crate::camera::Camera, ImageGeometry)> = vec![];
+    for path in &a.images {
+        let img = image::open(path).with_context(|| format!("{}: cannot read the image", path.display()))?.to_rgb8();
+        let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+        let (cam, sun) = if let Some(s) = &site {
+            let t = fixed_time.or_else(|| crate::io::time_from_frame_name(&name)).ok_or_else(|| {
+                anyhow::anyhow!("{}: no time: give --time or name the file with its UTC time ({})", path.display(), crate::io::FRAME_NAME_PATTERN)
+            })?;
+            let sp = position(&t, &s.observer())?;
+            let d = sp.direction_enu();
+            (s.camera.clone(), Some([d[0] as f32, d[1] as f32, d[2] as f32]))
+        } else if let Some(c) = &cal_cam {
+            let sun = crate::segment::find_sun_blob(&img, 245, 5, 0.06 * c.image_circle_radius_px())
+                .and_then(|(x, y, _)| c.unproject_enu(x, y))
+                .map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]);
+            (c.clone(), sun)
+        } else {
+            geometry_free(&img).ok_or_else(|| anyhow::anyhow!("{}: no image circle found (is the frame black?)", path.display()))?
+        };
+        if (cam.width_px, cam.height_px) != img.dimensions() {
+            bail!("{}: image is {}x{} px, the calibration says {}x{}", path.display(), img.width(), img.height(), cam.width_px, cam.height_px);
+        }
+        let geom = match geoms.iter().find(|(c, _)| *c == cam) {
+            Some((_, g)) => g.clone(),
+            None => {
+                let g = ImageGeometry::from_camera(&cam, site.as_ref().and_then(|s| s.obstruction.as_ref()));
+                geoms.push((cam.clone(), g.clone()));
+                g
+            }
+        };
+        let seg = segment_image(&img, &geom, sun, &params, &Reference::default());
+        let stem = path.file_stem().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+        let out = a.out.join(format!("{stem}_classes.png"));
+        crate::io::write_atomic(&out, &crate::synth::encode_png_gray(&seg.classes))?;
+        crate::say!("{},{:.4},{}", path.display(), seg.cloud_fraction, out.display());
+    }
+    Ok(())
 }
 
 fn cmd_sun(a: SunArgs) -> Result<()> {

@@ -90,3 +90,119 @@ fn bad_sun_arguments() {
         assert!(!String::from_utf8_lossy(&out.stderr).contains("panicked"));
     }
 }
+
+fn demo() -> std::path::PathBuf {
+    std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data")
+}
+
+/// Copy the first `n` demo frames into a folder.
+fn demo_frames(dir: &std::path::Path, n: usize) {
+    std::fs::create_dir_all(dir).unwrap();
+    let mut f: Vec<_> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    f.sort();
+    for p in f.iter().take(n) {
+        std::fs::copy(p, dir.join(p.file_name().unwrap())).unwrap();
+    }
+}
+
+#[test]
+fn synth_lists_scenes() {
+    let out = bin().args(["synth", "--list"]).output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    for s in ["broken-cumulus-fast", "scattered-slow", "overcast-breaking", "two-layers", "clear-day", "larkspur-demo"] {
+        assert!(text.contains(s), "{s} missing from --list");
+    }
+    let out = bin().args(["synth", "--scene", "no-such", "--out", "/tmp/x"]).output().unwrap();
+    assert_eq!(out.status.code(), Some(2));
+}
+
+/// A corrupt frame, a wrongly sized one, and a duplicate are counted and skipped; the rest is used.
+#[test]
+fn replay_counts_bad_frames_and_keeps_going() {
+    let d = tempfile::tempdir().unwrap();
+    let frames = d.path().join("frames");
+    demo_frames(&frames, 6);
+    std::fs::write(frames.join("frame_20260614T083010.000Z.jpg"), b"not a jpeg at all").unwrap();
+    image::RgbImage::new(64, 64).save(frames.join("frame_20260614T083015.000Z.png")).unwrap();
+    std::fs::write(frames.join("notes.jpg"), b"x").unwrap();
+    let out = d.path().join("out");
+    let o = bin()
+        .args(["replay", "--site", demo().join("site.toml").to_str().unwrap(), "--frames", frames.to_str().unwrap(), "--out", out.to_str().unwrap(), "--quiet"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(text.contains("8 found, 6 used, 2 rejected"), "{text}");
+    assert!(text.contains("1 files without a time"), "{text}");
+    let frames_csv = std::fs::read_to_string(out.join("frames.csv")).unwrap();
+    assert!(frames_csv.contains(",unreadable,") && frames_csv.contains(",wrong_size,"), "{frames_csv}");
+    let fc = std::fs::read_to_string(out.join("forecasts.csv")).unwrap();
+    assert!(fc.starts_with("issue_time_utc,target_time_utc,horizon_s,block,ghi_wm2,dni_wm2,dhi_wm2,poa_wm2"));
+    // 6 frames x 21 horizons x (4 blocks + plant).
+    assert_eq!(fc.lines().count(), 1 + 6 * 21 * 5);
+}
+
+/// Bad inputs stop a replay with exit status 2, a message naming the file, and no output files.
+#[test]
+fn replay_refuses_bad_inputs_without_partial_outputs() {
+    let d = tempfile::tempdir().unwrap();
+    let frames = d.path().join("frames");
+    demo_frames(&frames, 3);
+    let site = std::fs::read_to_string(demo().join("site.toml")).unwrap();
+    let cal_dir = d.path().join("calibration");
+    std::fs::create_dir_all(&cal_dir).unwrap();
+    for e in std::fs::read_dir(demo().join("calibration")).unwrap().flatten() {
+        std::fs::copy(e.path(), cal_dir.join(e.file_name())).unwrap();
+    }
+    // (site text, what the message must say)
+    let no_blocks = {
+        let i = site.find("[[plant.blocks]]").unwrap();
+        let j = site[i..].find("\n[forecast]").map(|k| i + k).unwrap_or(site.len());
+        format!("{}{}", &site[..i], &site[j..])
+    };
+    let cbh_csv = d.path().join("cbh.csv");
+    std::fs::write(&cbh_csv, "time_utc,cbh_m\n2020-01-01T00:00:00Z,1000\n2020-01-01T01:00:00Z,1100\n").unwrap();
+    let series = site.replace("base_height_m = 1400.0", "base_height_csv = \"cbh.csv\"");
+    let cases = [(no_blocks, "plant.blocks"), (series, "does not cover the frames")];
+    for (i, (text, want)) in cases.iter().enumerate() {
+        let sp = d.path().join(format!("site{i}.toml"));
+        std::fs::write(&sp, text).unwrap();
+        let out = d.path().join(format!("out{i}"));
+        let o = bin()
+            .args(["replay", "--site", sp.to_str().unwrap(), "--frames", frames.to_str().unwrap(), "--out", out.to_str().unwrap(), "--quiet"])
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "case {i}: {err}");
+        assert!(err.contains(want), "case {i}: {err}");
+        assert!(!out.exists(), "case {i}: partial outputs written");
+    }
+    // An empty frames folder.
+    let empty = d.path().join("empty");
+    std::fs::create_dir_all(&empty).unwrap();
+    let o = bin()
+        .args(["replay", "--site", demo().join("site.toml").to_str().unwrap(), "--frames", empty.to_str().unwrap(), "--out", d.path().join("o").to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("no frames"));
+}
+
+/// `segment` writes a class mask of the same size and prints the cloud fraction.
+#[test]
+fn segment_writes_masks() {
+    let d = tempfile::tempdir().unwrap();
+    let mut f: Vec<_> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    f.sort();
+    let o = bin().args(["segment", f[0].to_str().unwrap(), "--out", d.path().to_str().unwrap()]).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let line = String::from_utf8_lossy(&o.stdout).to_string();
+    let cf: f64 = line.split(',').nth(1).unwrap().parse().unwrap();
+    assert!((0.0..=1.0).contains(&cf));
+    let mask_path = line.trim().split(',').nth(2).unwrap().to_string();
+    let m = image::open(mask_path).unwrap().to_luma8();
+    assert_eq!(m.dimensions(), (512, 512));
+    assert!(m.pixels().all(|p| p.0[0] <= 3));
+    let o = bin().args(["segment", "/nonexistent.jpg", "--out", d.path().to_str().unwrap()]).output().unwrap();
+    assert_eq!(o.status.code(), Some(2));
+}

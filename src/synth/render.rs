@@ -150,7 +150,7 @@ pub fn render(
                     let lum = if sun_up { cie_clear_sky(z, gamma) / norm } else { 0.05 };
                     // Display level of the blue channel: the CIE luminance through a soft camera
                     // shoulder; red and green from the clear-sky colour ratios.
-                    let level = 262.0 * (1.0 - (-150.0 * lum / 190.0).exp());
+                    let level = 258.0 * (1.0 - (-lum / 2.5).exp()).powf(0.8);
                     let rb = clear_sky_rb(z, gamma);
                     col = [level * rb, level * (rb + 0.12).min(1.0), level];
                     // Clouds, highest first.
@@ -175,8 +175,7 @@ pub fn render(
                     // Sun disk and glare, dimmed by cloud in front of the sun.
                     if sun_up {
                         let g_deg = gamma.to_degrees();
-                        let glare = sun_vis * (4000.0 * (-g_deg / 0.6).exp() + 140.0 * (-g_deg / 4.0).exp())
-                            + (1.0 - sun_vis).powi(2) * 0.0;
+                        let glare = sun_vis * (4000.0 * (-g_deg / 0.6).exp() + 60.0 * (-g_deg / 3.0).exp());
                         for c in col.iter_mut() {
                             *c += glare;
                         }
