@@ -12,7 +12,7 @@
 //!
 //! The block vectors (m/s east and north) give a robust global vector (component median) and, by
 //! 2-means clustering, up to two layers, accepted only when well separated. The layer that carries
-//! the most opaque cloud (highest mean score) drives the forecast. A Kalman filter per component
+//! the most opaque cloud (largest share of thick cells in its blocks) drives the forecast. A Kalman filter per component
 //! smooths it over time, with gating of outliers; its standard deviation is the reported uncertainty.
 //!
 //! # References
@@ -46,6 +46,9 @@ pub struct MotionParams {
     pub min_known: f64,
     /// Frames further apart than this are not matched \[s\].
     pub max_gap_s: f64,
+    /// Match against the newest earlier map at least this old (longer baselines measure slow
+    /// clouds better) \[s\].
+    pub baseline_s: f64,
     /// Two layers are reported only when their vectors differ by at least this \[m/s\].
     pub two_layer_separation_mps: f64,
     /// Process noise of the temporal filter \[(m/s)² per s\].
@@ -62,6 +65,7 @@ impl Default for MotionParams {
             ambiguity: 0.97,
             min_known: 0.7,
             max_gap_s: 180.0,
+            baseline_s: 100.0,
             two_layer_separation_mps: 2.0,
             filter_process_noise: 0.002,
         }
@@ -81,6 +85,7 @@ impl MotionParams {
         check_range(file, "motion.ambiguity", self.ambiguity, 0.5, 1.0)?;
         check_range(file, "motion.min_known", self.min_known, 0.1, 1.0)?;
         check_range(file, "motion.max_gap_s", self.max_gap_s, 1.0, 3600.0)?;
+        check_range(file, "motion.baseline_s", self.baseline_s, 0.0, self.max_gap_s)?;
         check_range(file, "motion.two_layer_separation_mps", self.two_layer_separation_mps, 0.1, 50.0)?;
         check_range(file, "motion.filter_process_noise", self.filter_process_noise, 0.0, 10.0)
     }
@@ -95,8 +100,10 @@ pub struct BlockVector {
     pub v_mps: [f64; 2],
     /// NCC peak.
     pub peak: f64,
-    /// Mean score of the block (opacity proxy).
+    /// Mean score of the block.
     pub mean_score: f64,
+    /// Share of the block's known cells that are thick cloud (opacity).
+    pub thick_share: f64,
 }
 
 /// A motion layer.
@@ -108,6 +115,8 @@ pub struct LayerMotion {
     pub blocks: usize,
     /// Mean block score.
     pub mean_score: f64,
+    /// Mean thick-cloud share of its blocks: the layer with the most drives the forecast.
+    pub thick_share: f64,
 }
 
 /// Motion measured between two maps.
@@ -208,12 +217,60 @@ fn parabola_offset(l: f64, c: f64, r: f64) -> f64 {
     if d.abs() < 1e-12 { 0.0 } else { (0.5 * (l - r) / d).clamp(-0.5, 0.5) }
 }
 
+/// The feature a block-matching pass works on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Feature {
+    /// The cloudiness score, clipped to [−0.5, 1.5].
+    Score,
+    /// The score with thick cloud masked out: the thin (often higher) layer and the clear sky
+    /// between its clouds.
+    ThinOnly,
+    /// Thick cloud alone: the score where the class is thick, zero elsewhere (thin cloud of another
+    /// layer does not blur the pattern).
+    ThickOnly,
+}
+
+fn feature_map(m: &CloudMap, f: Feature) -> Vec<f32> {
+    m.score
+        .iter()
+        .zip(&m.class)
+        .map(|(v, c)| {
+            let thick = *c == crate::segment::Class::Thick as u8;
+            if v.is_nan() || (f == Feature::ThinOnly && thick) {
+                f32::NAN
+            } else if f == Feature::ThickOnly && !thick {
+                0.0
+            } else {
+                v.clamp(-0.5, 1.5)
+            }
+        })
+        .collect()
+}
+
 /// Measure motion from map `a` (earlier) to map `b`, `dt_s` apart. Both maps must share a grid.
+///
+/// The score is matched; when thin cloud covers at least 5 % of the known cells, two passes match
+/// thick cloud alone and thin cloud alone, so that a thin layer moving differently from the thick
+/// one yields vectors of its own and does not blur the other's. All vectors are then clustered.
 pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams) -> Measurement {
+    let mut vectors = vec![];
+    let mut tried = 0;
+    let known = a.class.iter().filter(|c| **c != 0).count().max(1);
+    let thin = a.class.iter().filter(|c| **c == crate::segment::Class::Thin as u8).count();
+    let passes: &[Feature] =
+        if thin as f64 >= 0.05 * known as f64 { &[Feature::ThickOnly, Feature::ThinOnly] } else { &[Feature::Score] };
+    for f in passes {
+        let (v, t) = block_vectors(a, b, dt_s, params, *f);
+        vectors.extend(v);
+        tried += t;
+    }
+    summarize(vectors, tried, dt_s, params)
+}
+
+fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, feature: Feature) -> (Vec<BlockVector>, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
-    let clip = |m: &CloudMap| m.score.iter().map(|v| if v.is_nan() { f32::NAN } else { v.clamp(-0.5, 1.5) }).collect::<Vec<f32>>();
-    let (fa, fb) = (clip(a), clip(b));
+    let (fa, fb) = (feature_map(a, feature), feature_map(b, feature));
     let (ca, nc) = downsample4(&fa, n);
     let (cb, _) = downsample4(&fb, n);
     let bs = params.block_cells.min(n / 2).max(8) / 4 * 4;
@@ -249,6 +306,11 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams) -> 
                 return None;
             }
             let mean = s / k as f64;
+            let thick = (0..bs)
+                .flat_map(|j| (0..bs).map(move |i| (ay + j) * n + ax + i))
+                .filter(|&c| feature != Feature::ThinOnly && a.class[c] == crate::segment::Class::Thick as u8)
+                .count() as f64
+                / k as f64;
             let sd = (ss / k as f64 - mean * mean).max(0.0).sqrt();
             if sd < params.min_texture {
                 return None;
@@ -323,10 +385,10 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams) -> 
             let sub_y = if sub_y.is_nan() { 0.0 } else { sub_y };
             let (dxc, dyc) = refine_lk(&fa, &fb, n, ax, ay, bs, ((bx0 + fb_best.1) as f64 + sub_x, (by0 + fb_best.2) as f64 + sub_y));
             let c = a.grid.cell_centre_m(ax + bs / 2, ay + bs / 2);
-            Some(BlockVector { centre_m: c, v_mps: [dxc * cell / dt_s, dyc * cell / dt_s], peak: fb_best.0, mean_score: mean })
+            Some(BlockVector { centre_m: c, v_mps: [dxc * cell / dt_s, dyc * cell / dt_s], peak: fb_best.0, mean_score: mean, thick_share: thick })
         })
         .collect();
-    summarize(vectors, tried, dt_s, params)
+    (vectors, tried)
 }
 
 #[inline]
@@ -428,8 +490,9 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
     let layer = |ci: usize| {
         let members: Vec<&BlockVector> = vectors.iter().zip(&assign).filter(|(_, a)| **a == ci).map(|(v, _)| v).collect();
         let ms = members.iter().map(|v| v.mean_score).sum::<f64>() / members.len().max(1) as f64;
+        let ts = members.iter().map(|v| v.thick_share).sum::<f64>() / members.len().max(1) as f64;
         let spread = (members.iter().map(|v| dist(v.v_mps, c[ci]).powi(2)).sum::<f64>() / members.len().max(1) as f64).sqrt();
-        (LayerMotion { v_mps: c[ci], blocks: members.len(), mean_score: ms }, spread)
+        (LayerMotion { v_mps: c[ci], blocks: members.len(), mean_score: ms, thick_share: ts }, spread)
     };
     let (l0, s0) = layer(0);
     let (l1, s1) = layer(1);
@@ -438,7 +501,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
     let two = l0.blocks >= nmin && l1.blocks >= nmin && sep >= params.two_layer_separation_mps && sep > 2.5 * s0.max(s1);
     let (layers, spread) = if two {
         let mut ls = vec![(l0, s0), (l1, s1)];
-        ls.sort_by(|a, b| b.0.mean_score.total_cmp(&a.0.mean_score));
+        ls.sort_by(|a, b| b.0.thick_share.total_cmp(&a.0.thick_share));
         let spread = ls[0].1;
         (ls.into_iter().map(|l| l.0).collect(), spread)
     } else {
@@ -451,7 +514,8 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         let v = [inl.iter().map(|v| v.v_mps[0]).sum::<f64>() / m, inl.iter().map(|v| v.v_mps[1]).sum::<f64>() / m];
         let spread = (inl.iter().map(|b| dist(b.v_mps, v).powi(2)).sum::<f64>() / m).sqrt();
         let ms = inl.iter().map(|v| v.mean_score).sum::<f64>() / m;
-        (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms }], spread)
+        let ts = inl.iter().map(|v| v.thick_share).sum::<f64>() / m;
+        (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms, thick_share: ts }], spread)
     };
     Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread }
 }
@@ -567,7 +631,7 @@ mod tests {
             vectors: vec![],
             blocks_tried: 1,
             global_mps: Some(v),
-            layers: vec![LayerMotion { v_mps: v, blocks: 30, mean_score: 1.0 }],
+            layers: vec![LayerMotion { v_mps: v, blocks: 30, mean_score: 1.0, thick_share: 0.5 }],
             spread_mps: 0.3,
         };
         let mut f = MotionFilter::default();

@@ -99,6 +99,8 @@ pub struct Nowcast {
     pub time: DateTime<Utc>,
     /// Seconds since the previous used frame.
     pub dt_s: Option<f64>,
+    /// Baseline of the motion measurement \[s\] (the earlier map's age).
+    pub baseline_s: Option<f64>,
     /// Sun at the frame time.
     pub sun: SunPosition,
     /// Cloud base height used \[m\].
@@ -183,7 +185,7 @@ pub struct Nowcaster {
     plant: Plant,
     luts: LutCache,
     reference: Reference,
-    prev: Option<(DateTime<Utc>, Arc<CloudMap>)>,
+    history: std::collections::VecDeque<(DateTime<Utc>, Arc<CloudMap>)>,
     last_time: Option<DateTime<Utc>>,
     filter: MotionFilter,
     cbh_series: Option<Series>,
@@ -214,7 +216,7 @@ impl Nowcaster {
             plant,
             luts: LutCache::default(),
             reference: Reference::default(),
-            prev: None,
+            history: Default::default(),
             last_time: None,
             filter: MotionFilter::default(),
             cbh_series,
@@ -342,10 +344,11 @@ impl Nowcaster {
         // Motion.
         let mp = &self.site.file.motion;
         let dt_s = self.last_time.map(|l| (frame.time - l).num_milliseconds() as f64 / 1000.0);
-        let measurement = match (&self.prev, dt_s) {
-            (Some((_, pm)), Some(dt)) if dt <= mp.max_gap_s && pm.grid == map.grid => Some(measure(pm, &map, dt, mp)),
-            _ => None,
-        };
+        // Earlier map: the newest at least `baseline_s` old, else the oldest kept; within the gap limit.
+        let age = |t: &DateTime<Utc>| (frame.time - *t).num_milliseconds() as f64 / 1000.0;
+        self.history.retain(|(t, m)| age(t) <= mp.max_gap_s && m.grid == map.grid);
+        let earlier = self.history.iter().rev().find(|(t, _)| age(t) >= mp.baseline_s).or(self.history.front());
+        let measurement = earlier.map(|(t, pm)| measure(pm, &map, age(t), mp));
         let motion = self.filter.update(measurement.as_ref(), dt_s.unwrap_or(0.0), mp);
         let t_motion = Clock::now();
         // Tuning from measurements at the frame time.
@@ -368,12 +371,13 @@ impl Nowcaster {
         };
         let fc = forecast(&map, &input);
         let t_fc = Clock::now();
-        self.prev = Some((frame.time, map.clone()));
+        self.history.push_back((frame.time, map.clone()));
         self.last_time = Some(frame.time);
         let ms = |a: Clock, b: Clock| (b - a).as_secs_f64() * 1000.0;
         Ok(Nowcast {
             time: frame.time,
             dt_s,
+            baseline_s: measurement.as_ref().map(|m| m.dt_s),
             sun,
             cbh_m: cbh,
             cloud_fraction: cf,

@@ -18,7 +18,8 @@
 //! 1 at the ratio of white cloud. Thin cloud from `s ≥ thin_score`, thick from `s ≥ thick_score`
 //! (thin cloud lets the sky's blue through, so its ratio lies between the two). The saturated sun disk
 //! (all channels ≥ `saturation_level` within `sun_exclusion_deg` of the sun) is *unknown*, and so is
-//! any pixel within `glare_zone_deg` of the sun whose blue channel is clipped: its ratio means nothing.
+//! any pixel within `glare_zone_deg` of the sun whose blue channel is clipped, unless even the upper
+//! bound of its ratio (R / 255) says clear sky.
 //! The continuous score also feeds cloud motion.
 //!
 //! # References
@@ -241,13 +242,15 @@ impl FrameReference<'_> {
         if g.gamma_deg < p.sun_exclusion_deg as f32 && rgb[0] >= sat && rgb[1] >= sat && rgb[2] >= sat {
             return (f32::NAN, Class::Unknown);
         }
-        if g.gamma_deg < p.glare_zone_deg as f32 && rgb[2] >= sat {
-            return (f32::NAN, Class::Unknown);
-        }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
         let r = self.at(g);
         let denom = (p.cloud_rb as f32 - r).max(0.03);
         let s = (rb - r) / denom;
+        if g.gamma_deg < p.glare_zone_deg as f32 && rgb[2] >= sat {
+            // Blue is clipped, so the true ratio is at most R/255: clear when even that bound is
+            // clear, else not judged.
+            return if s < p.thin_score as f32 { (s, Class::Clear) } else { (f32::NAN, Class::Unknown) };
+        }
         let c = if s >= p.thick_score as f32 {
             Class::Thick
         } else if s >= p.thin_score as f32 {

@@ -56,6 +56,8 @@ pub struct HorizonScore {
     pub mae_wm2: f64,
     /// MBE \[W m⁻²\].
     pub mbe_wm2: f64,
+    /// Mean observed GHI \[W m⁻²\].
+    pub mean_observed_wm2: f64,
     /// RMSE normalised by the mean observed GHI.
     pub nrmse: f64,
     /// RMSE of smart persistence \[W m⁻²\].
@@ -149,6 +151,7 @@ pub fn score_forecasts(forecasts: &Path, truth: &Truth, target: &str) -> Result<
                 rmse_wm2: r,
                 mae_wm2: mae(&fc),
                 mbe_wm2: mbe(&fc),
+                mean_observed_wm2: mean_obs,
                 nrmse: r / mean_obs,
                 rmse_persistence_wm2: rp,
                 skill: if rp > 1e-6 { skill(r, rp) } else { f64::NAN },

@@ -1,0 +1,145 @@
+//! End to end on synthetic scenes with known truth: render, replay, score against the truth.
+//!
+//! Targets (the pipeline's acceptance figures): segmentation ≥ 95 % correct (zenith < 70°, outside
+//! 10° around the sun) and ≥ 90 % in the 5–15° circumsolar ring; single-layer motion within 0.5 m/s
+//! and 5°; plant-mean GHI skill against smart persistence ≥ 0.30 at 5, 10 and 15 minutes on
+//! broken-cloud scenes and ≥ 0 (no worse than persistence) on clear and overcast scenes.
+//! Shortfalls that are known are listed in `KNOWN_SHORTFALLS`: the test checks they still fall short
+//! (so the list is kept honest) and prints every figure.
+use std::path::Path;
+
+use nephocast::replay::{ReplayOptions, replay};
+use nephocast::synth::{Scene, scene, write_sequence};
+use nephocast::verify::{Evaluation, evaluate};
+
+/// (scene, metric) pairs that do not yet meet their target.
+const KNOWN_SHORTFALLS: &[(&str, &str)] = &[
+    ("two-layers", "segmentation"),
+    ("two-layers", "circumsolar"),
+    ("two-layers", "motion"),
+    ("two-layers", "skill"),
+];
+
+fn run(name: &str, minutes: f64, spec_edit: impl Fn(&mut nephocast::synth::SceneSpec)) -> Evaluation {
+    let d = tempfile::tempdir().unwrap();
+    let mut spec = scene(name).unwrap();
+    spec.duration_min = minutes;
+    spec_edit(&mut spec);
+    let s = Scene::new(spec, 3).unwrap();
+    write_sequence(&s, d.path(), false).unwrap();
+    let out = d.path().join("out");
+    let opts = ReplayOptions {
+        site: d.path().join("site.toml"),
+        frames: d.path().join("frames"),
+        out: out.clone(),
+        measurements: Some(d.path().join("measurements.csv")),
+        overlays_every: 0,
+        progress: false,
+    };
+    let sum = replay(&opts).unwrap();
+    assert_eq!(sum.counters.rejected.values().sum::<usize>(), 0, "{name}: frames rejected {:?}", sum.counters.rejected);
+    let e = evaluate(d.path(), &out).unwrap();
+    print(name, &e);
+    e
+}
+
+fn print(name: &str, e: &Evaluation) {
+    let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
+    eprintln!(
+        "{name:<20} seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill 5/10/15 min {:.3} {:.3} {:.3}",
+        e.segmentation.accuracy,
+        e.segmentation.circumsolar_accuracy,
+        e.motion.speed_error_mps,
+        e.motion.direction_error_deg,
+        sk(5),
+        sk(10),
+        sk(15)
+    );
+}
+
+fn check(name: &str, metric: &str, ok: bool, figure: String) {
+    let known = KNOWN_SHORTFALLS.contains(&(name, metric));
+    if known {
+        assert!(!ok, "{name} {metric} now meets its target ({figure}): remove it from KNOWN_SHORTFALLS");
+        eprintln!("  known shortfall: {name} {metric}: {figure}");
+    } else {
+        assert!(ok, "{name} {metric} misses its target: {figure}");
+    }
+}
+
+fn check_scene(name: &str, e: &Evaluation, broken: bool) {
+    let s = &e.segmentation;
+    check(name, "segmentation", s.accuracy >= 0.95, format!("{:.3}", s.accuracy));
+    check(name, "circumsolar", s.circumsolar_accuracy >= 0.90 || s.circumsolar_accuracy.is_nan(), format!("{:.3}", s.circumsolar_accuracy));
+    let m = &e.motion;
+    if m.frames > 0 {
+        check(name, "motion", m.speed_error_mps <= 0.5 && m.direction_error_deg <= 5.0, format!("{:.2} m/s, {:.1}°", m.speed_error_mps, m.direction_error_deg));
+    }
+    for min in [5u32, 10, 15] {
+        let h = e.plant.iter().find(|h| h.horizon_s == min * 60).unwrap();
+        let target = if broken { 0.30 } else { 0.0 };
+        check(name, "skill", h.skill >= target, format!("{min} min: {:.3} (target {target})", h.skill));
+    }
+}
+
+#[test]
+fn broken_cumulus_fast() {
+    let e = run("broken-cumulus-fast", 30.0, |_| {});
+    check_scene("broken-cumulus-fast", &e, true);
+}
+
+#[test]
+fn scattered_slow() {
+    let e = run("scattered-slow", 30.0, |_| {});
+    check_scene("scattered-slow", &e, true);
+}
+
+#[test]
+fn overcast_breaking() {
+    let e = run("overcast-breaking", 30.0, |_| {});
+    check_scene("overcast-breaking", &e, false);
+}
+
+#[test]
+fn two_layers() {
+    let e = run("two-layers", 30.0, |_| {});
+    check_scene("two-layers", &e, true);
+    // Both layers are found (the higher one's apparent vector on the lower plane).
+    let share = e.motion.second_layer_found_share.unwrap();
+    assert!(share >= 0.8, "second layer found in {share:.2} of frames");
+}
+
+/// A clear sky: the forecast is no worse than smart persistence (which is exact here, the truth being
+/// the clear-sky model itself) within 2 % of the mean clear-sky GHI, and nothing is called cloud.
+#[test]
+fn clear_sky_no_worse_than_persistence() {
+    let e = run("clear-day", 20.0, |s| {
+        s.start_utc = "2026-06-14T08:30:00Z".into();
+        s.frame_step_s = 20.0;
+        s.truth_mask_every = 5;
+    });
+    for h in &e.plant {
+        let tol = 0.02 * h.mean_observed_wm2;
+        assert!(h.rmse_wm2 <= h.rmse_persistence_wm2 + tol, "horizon {} s: RMSE {} vs persistence {}", h.horizon_s, h.rmse_wm2, h.rmse_persistence_wm2);
+    }
+    assert!(e.segmentation.accuracy >= 0.99, "clear sky accuracy {}", e.segmentation.accuracy);
+}
+
+#[test]
+fn demo_data_replays_with_skill() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
+    let d = tempfile::tempdir().unwrap();
+    let opts = ReplayOptions {
+        site: root.join("site.toml"),
+        frames: root.join("frames"),
+        out: d.path().to_path_buf(),
+        measurements: Some(root.join("measurements.csv")),
+        overlays_every: 30,
+        progress: false,
+    };
+    replay(&opts).unwrap();
+    let e = evaluate(&root, d.path()).unwrap();
+    print("larkspur-demo", &e);
+    check_scene("larkspur-demo", &e, true);
+    assert!(d.path().join("overlays").read_dir().unwrap().count() >= 3);
+}
