@@ -36,6 +36,22 @@ pub enum Command {
     Demo(DemoArgs),
     /// Segment sky images into clear / thin / thick cloud and print their cloud fraction.
     Segment(SegmentArgs),
+    /// Time the engine on synthetic frames (per stage, one core by default).
+    Bench(BenchArgs),
+}
+
+/// Arguments of `nephocast bench`.
+#[derive(Debug, clap::Args)]
+pub struct BenchArgs {
+    /// Square image size [px].
+    #[arg(long, default_value_t = 1024)]
+    pub size: u32,
+    /// Frames.
+    #[arg(long, default_value_t = 60)]
+    pub frames: usize,
+    /// Threads for the engine.
+    #[arg(long, default_value_t = 1)]
+    pub threads: usize,
 }
 
 /// Arguments of `nephocast demo`.
@@ -207,6 +223,19 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Replay(a) => cmd_replay(a),
         Command::Demo(a) => cmd_demo(a),
         Command::Segment(a) => cmd_segment(a),
+        Command::Bench(a) => {
+            if !(64..=4096).contains(&a.size) || a.frames < 2 {
+                bail!("--size must be 64 to 4096 and --frames at least 2");
+            }
+            let r = crate::bench::run(a.size, a.frames, a.threads)?;
+            crate::say!("{}x{} px, {} frames, {} thread(s), {} plant points x {} horizons", r.size_px, r.size_px, r.frames, r.threads, r.plant_points, r.horizons);
+            crate::say!("render (synthetic, all cores): {:.1} ms per frame ({:.1} frames/s)", r.render_ms, 1000.0 / r.render_ms);
+            crate::say!("JPEG decode: median {:.2} ms", r.decode_ms);
+            crate::say!("engine step: median {:.2} ms, 95th percentile {:.2} ms", r.step_ms_median, r.step_ms_p95);
+            crate::say!("  stages (median): QC {:.2} ms, map+segmentation {:.2} ms, motion {:.2} ms, forecast {:.2} ms", r.stage_ms[0], r.stage_ms[1], r.stage_ms[2], r.stage_ms[3]);
+            crate::say!("replay throughput including decode: {:.1} frames/s", r.throughput_fps);
+            Ok(())
+        }
         Command::Evaluate(a) => {
             let e = crate::verify::evaluate(&a.sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
             crate::verify::print_evaluation(&e);

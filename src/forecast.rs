@@ -340,21 +340,29 @@ pub fn forecast(map: &CloudMap, input: &ForecastInput) -> Forecast {
         let dhi = clear.dhi_wm2 + input.cloud_fraction.clamp(0.0, 1.0) * p.diffuse_per_cover * clear.ghi_wm2;
         let mut point_ghi = Vec::with_capacity(n_points);
         let mut plant_acc = [0f64; 6];
+        // Shift from a plant point to the cloud-map point its sun ray comes from (relative to the
+        // camera, advected back by the motion): the same for every point at this horizon.
+        let off = sun_ray_plane_point([0.0, 0.0], input.cbh_m, input.camera_m, z, a);
+        let adv = [off[0] - input.v_mps[0] * k, off[1] - input.v_mps[1] * k];
+        let mean = if tm.mean.is_nan() { p.beam_clear } else { tm.mean };
+        let wp = p.fallback_persistence_weight;
+        let dni_extra = sun.dni_extra_wm2();
         for b in &input.plant.blocks {
             let (tilt, saz) = block_plane(&b.mount, z, a);
+            // Hay & Davies terms that depend only on the plane and the sun (see `poa_hay_davies`).
+            let cos_aoi = aoi_rad(tilt, saz, z, a).cos();
+            let rb = cos_aoi.max(0.0) / cz.max(0.01745);
+            let iso = 0.5 * (1.0 + tilt.cos());
+            let ground = p.albedo * 0.5 * (1.0 - tilt.cos());
             let mut acc = [0f64; 6];
             for pt in &b.points_m {
                 let (irr, fb) = if up {
-                    let q = sun_ray_plane_point(*pt, input.cbh_m, input.camera_m, z, a);
-                    let src = [q[0] - input.v_mps[0] * k, q[1] - input.v_mps[1] * k];
-                    let (sx, sy) = grid.to_cell(src);
+                    let (sx, sy) = grid.to_cell([pt[0] + adv[0], pt[1] + adv[1]]);
                     let (tr, fb) = match tm.box_mean(sx, sy, r_cells) {
                         Some(v) => (v, false),
                         None => {
-                            let (qx, qy) = grid.to_cell(q);
-                            let mean = if tm.mean.is_nan() { p.beam_clear } else { tm.mean };
+                            let (qx, qy) = grid.to_cell([pt[0] + off[0], pt[1] + off[1]]);
                             let now = tm.box_mean(qx, qy, r_cells).unwrap_or(mean);
-                            let wp = p.fallback_persistence_weight;
                             (wp * now + (1.0 - wp) * mean, true)
                         }
                     };
@@ -363,7 +371,15 @@ pub fn forecast(map: &CloudMap, input: &ForecastInput) -> Forecast {
                 } else {
                     (Irradiance::default(), false)
                 };
-                let poa = if up { poa_hay_davies(tilt, saz, z, a, &irr, sun.dni_extra_wm2(), p.albedo) } else { 0.0 };
+                let poa = if up {
+                    let ai = irr.dni_wm2 / dni_extra;
+                    (irr.dni_wm2 * cos_aoi).max(0.0)
+                        + (irr.dhi_wm2 * (1.0 - ai) * iso).max(0.0)
+                        + (irr.dhi_wm2 * ai * rb).max(0.0)
+                        + irr.ghi_wm2 * ground
+                } else {
+                    0.0
+                };
                 point_ghi.push(irr.ghi_wm2 as f32);
                 for (s, v) in acc.iter_mut().zip([irr.ghi_wm2, irr.dni_wm2, irr.dhi_wm2, poa, fb as u8 as f64, 1.0]) {
                     *s += v;

@@ -42,6 +42,7 @@ macro_rules! say {
     }};
 }
 
+pub mod bench;
 pub mod camera;
 pub mod cli;
 pub mod clearsky;

@@ -159,44 +159,63 @@ fn downsample4(m: &[f32], n: usize) -> (Vec<f32>, usize) {
     (out, nc)
 }
 
+/// A feature map split into values (unknown set to zero) and a 0/1 mask, for branch-free sums.
+struct Plane {
+    v: Vec<f32>,
+    m: Vec<f32>,
+}
+
+impl Plane {
+    fn new(f: &[f32]) -> Plane {
+        Plane { v: f.iter().map(|x| if x.is_nan() { 0.0 } else { *x }).collect(), m: f.iter().map(|x| if x.is_nan() { 0.0 } else { 1.0 }).collect() }
+    }
+}
+
 /// NCC of block `a` (side `b`, top-left `(ax, ay)` in map `pa`) against map `pb` displaced by
-/// `(dx, dy)`; `None` when too few cells overlap.
+/// `(dx, dy)`, over cells known in both; `None` when too few overlap.
 #[allow(clippy::too_many_arguments)]
-fn ncc(pa: &[f32], pb: &[f32], n: usize, ax: usize, ay: usize, b: usize, dx: i64, dy: i64, min_pairs: usize) -> Option<f64> {
-    let (mut sa, mut sb, mut saa, mut sbb, mut sab, mut c) = (0f64, 0f64, 0f64, 0f64, 0f64, 0usize);
+fn ncc(pa: &Plane, pb: &Plane, n: usize, ax: usize, ay: usize, b: usize, dx: i64, dy: i64, min_pairs: usize) -> Option<f64> {
+    let (mut sw, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0f64, 0f64, 0f64, 0f64, 0f64, 0f64);
+    // Columns of the block that stay on the map after the shift.
+    let i0 = (-(ax as i64 + dx)).max(0) as usize;
+    let i1 = ((n as i64 - ax as i64 - dx).min(b as i64)).max(0) as usize;
+    if i1 <= i0 {
+        return None;
+    }
     for j in 0..b {
         let yb = (ay + j) as i64 + dy;
         if yb < 0 || yb >= n as i64 {
             continue;
         }
-        let ra = (ay + j) * n;
-        let rb = yb as usize * n;
-        for i in 0..b {
-            let xb = (ax + i) as i64 + dx;
-            if xb < 0 || xb >= n as i64 {
-                continue;
-            }
-            let va = pa[ra + ax + i];
-            let vb = pb[rb + xb as usize];
-            if va.is_nan() || vb.is_nan() {
-                continue;
-            }
-            let (va, vb) = (va as f64, vb as f64);
-            sa += va;
-            sb += vb;
-            saa += va * va;
-            sbb += vb * vb;
-            sab += va * vb;
-            c += 1;
+        let ra = (ay + j) * n + ax;
+        let rb = (yb as usize * n) as i64 + ax as i64 + dx;
+        let (av, am) = (&pa.v[ra + i0..ra + i1], &pa.m[ra + i0..ra + i1]);
+        let rb0 = (rb + i0 as i64) as usize;
+        let (bv, bm) = (&pb.v[rb0..rb0 + (i1 - i0)], &pb.m[rb0..rb0 + (i1 - i0)]);
+        let (mut w_, mut a_, mut b_, mut aa, mut bb, mut ab) = (0f32, 0f32, 0f32, 0f32, 0f32, 0f32);
+        for k in 0..av.len() {
+            let w = am[k] * bm[k];
+            let (x, y) = (av[k] * w, bv[k] * w);
+            w_ += w;
+            a_ += x;
+            b_ += y;
+            aa += x * av[k];
+            bb += y * bv[k];
+            ab += x * bv[k];
         }
+        sw += w_ as f64;
+        sa += a_ as f64;
+        sb += b_ as f64;
+        saa += aa as f64;
+        sbb += bb as f64;
+        sab += ab as f64;
     }
-    if c < min_pairs {
+    if (sw as usize) < min_pairs {
         return None;
     }
-    let cf = c as f64;
-    let cov = sab - sa * sb / cf;
-    let va = saa - sa * sa / cf;
-    let vb = sbb - sb * sb / cf;
+    let cov = sab - sa * sb / sw;
+    let va = saa - sa * sa / sw;
+    let vb = sbb - sb * sb / sw;
     if va <= 1e-9 || vb <= 1e-9 {
         return None;
     }
@@ -252,7 +271,7 @@ fn feature_map(m: &CloudMap, f: Feature) -> Vec<f32> {
 /// The score is matched; when thin cloud covers at least 5 % of the known cells, two passes match
 /// thick cloud alone and thin cloud alone, so that a thin layer moving differently from the thick
 /// one yields vectors of its own and does not blur the other's. All vectors are then clustered.
-pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams) -> Measurement {
+pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> Measurement {
     let mut vectors = vec![];
     let mut tried = 0;
     let known = a.class.iter().filter(|c| **c != 0).count().max(1);
@@ -260,22 +279,32 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams) -> 
     let passes: &[Feature] =
         if thin as f64 >= 0.05 * known as f64 { &[Feature::ThickOnly, Feature::ThinOnly] } else { &[Feature::Score] };
     for f in passes {
-        let (v, t) = block_vectors(a, b, dt_s, params, *f);
+        let (v, t) = block_vectors(a, b, dt_s, params, *f, prior);
         vectors.extend(v);
         tried += t;
     }
     summarize(vectors, tried, dt_s, params)
 }
 
-fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, feature: Feature) -> (Vec<BlockVector>, usize) {
+fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, feature: Feature, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
     let (fa, fb) = (feature_map(a, feature), feature_map(b, feature));
     let (ca, nc) = downsample4(&fa, n);
     let (cb, _) = downsample4(&fb, n);
+    let (ca, cb) = (Plane::new(&ca), Plane::new(&cb));
+    let (pa, pb) = (Plane::new(&fa), Plane::new(&fb));
     let bs = params.block_cells.min(n / 2).max(8) / 4 * 4;
     let reach_cells = params.max_speed_mps * dt_s / cell;
     let rc = (reach_cells / 4.0).ceil() as i64 + 1;
+    // Predictive window: around the filtered motion when it is well known, else the full window.
+    let (pcx, pcy, prc) = match prior {
+        Some(m) if m.sigma_mps < 2.0 => {
+            let r = (((3.0 * m.sigma_mps + 3.0) * dt_s / cell) / 4.0).ceil() as i64 + 1;
+            ((m.v_mps[0] * dt_s / cell / 4.0).round() as i64, (m.v_mps[1] * dt_s / cell / 4.0).round() as i64, r.min(rc))
+        }
+        _ => (0, 0, rc),
+    };
     let mut starts = vec![];
     let mut y = 0;
     while y + bs <= n {
@@ -315,22 +344,30 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
             if sd < params.min_texture {
                 return None;
             }
-            // Coarse full search.
+            // Coarse search on the maps reduced 4×: the predictive window first, the full window
+            // when the peak sits on the predictive window's edge.
             let (cbx, cby, cbs) = (ax / 4, ay / 4, bs / 4);
             let min_c = (cbs * cbs) / 2;
-            let mut scores = vec![];
-            let mut best = (f64::MIN, 0i64, 0i64);
-            for dy in -rc..=rc {
-                for dx in -rc..=rc {
-                    if let Some(v) = ncc(&ca, &cb, nc, cbx, cby, cbs, dx, dy, min_c) {
-                        scores.push((v, dx, dy));
-                        if v > best.0 {
-                            best = (v, dx, dy);
+            let search = |cx: i64, cy: i64, r: i64| {
+                let mut scores = vec![];
+                let mut best = (f64::MIN, 0i64, 0i64);
+                for dy in cy - r..=cy + r {
+                    for dx in cx - r..=cx + r {
+                        if let Some(v) = ncc(&ca, &cb, nc, cbx, cby, cbs, dx, dy, min_c) {
+                            scores.push((v, dx, dy));
+                            if v > best.0 {
+                                best = (v, dx, dy);
+                            }
                         }
                     }
                 }
+                (scores, best)
+            };
+            let (mut scores, mut best) = search(pcx, pcy, prc);
+            if prc < rc && ((best.1 - pcx).abs() == prc || (best.2 - pcy).abs() == prc) {
+                (scores, best) = search(0, 0, rc);
             }
-            if best.0 == f64::MIN || best.1.abs() == rc || best.2.abs() == rc {
+            if best.0 == f64::MIN || best.1.abs() >= rc || best.2.abs() >= rc {
                 return None;
             }
             let second = scores
@@ -349,7 +386,7 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
             let eval = |ox: i64, oy: i64, fine: &mut [[f64; 7]; 7]| -> f64 {
                 let (ix, iy) = ((ox + 3) as usize, (oy + 3) as usize);
                 if fine[iy][ix].is_nan() {
-                    fine[iy][ix] = ncc(&fa, &fb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f).unwrap_or(f64::MIN);
+                    fine[iy][ix] = ncc(&pa, &pb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f).unwrap_or(f64::MIN);
                 }
                 fine[iy][ix]
             };
@@ -403,37 +440,43 @@ fn bilinear(m: &[f32], n: usize, x: f64, y: f64) -> f64 {
     (v(x0, y0) * (1.0 - fx) + v(x1, y0) * fx) * (1.0 - fy) + (v(x0, y1) * (1.0 - fx) + v(x1, y1) * fx) * fy
 }
 
-/// Sub-cell refinement of a block's displacement by Gauss–Newton on the squared difference
-/// (Lucas & Kanade 1981), starting from the NCC peak; kept within one cell of it.
+/// Sub-cell refinement of a block's displacement by Gauss–Newton on the squared difference,
+/// with the template's own gradient (Lucas & Kanade 1981; the inverse-compositional idea of Baker
+/// & Matthews 2004), starting from the NCC peak and kept within one cell of it.
 #[allow(clippy::too_many_arguments)]
 fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, d0: (f64, f64)) -> (f64, f64) {
+    // Template gradient and Hessian, once.
+    let mut cells = Vec::with_capacity(bs * bs);
+    let (mut h11, mut h12, mut h22) = (0.0, 0.0, 0.0);
+    for j in 1..bs - 1 {
+        for i in 1..bs - 1 {
+            let k = (ay + j) * n + ax + i;
+            let (a, l, r, u, d) = (fa[k], fa[k - 1], fa[k + 1], fa[k - n], fa[k + n]);
+            if a.is_nan() || l.is_nan() || r.is_nan() || u.is_nan() || d.is_nan() {
+                continue;
+            }
+            let (gx, gy) = (0.5 * (r - l) as f64, 0.5 * (d - u) as f64);
+            h11 += gx * gx;
+            h12 += gx * gy;
+            h22 += gy * gy;
+            cells.push(((ax + i) as f64, (ay + j) as f64, a as f64, gx, gy));
+        }
+    }
+    let det = h11 * h22 - h12 * h12;
+    if det.abs() < 1e-9 {
+        return d0;
+    }
     let mut d = d0;
     for _ in 0..4 {
-        let (mut h11, mut h12, mut h22, mut b1, mut b2) = (0.0, 0.0, 0.0, 0.0, 0.0);
-        for j in 1..bs - 1 {
-            for i in 1..bs - 1 {
-                let a = fa[(ay + j) * n + ax + i] as f64;
-                if a.is_nan() {
-                    continue;
-                }
-                let (x, y) = ((ax + i) as f64 + d.0, (ay + j) as f64 + d.1);
-                let b = bilinear(fb, n, x, y);
-                let gx = 0.5 * (bilinear(fb, n, x + 1.0, y) - bilinear(fb, n, x - 1.0, y));
-                let gy = 0.5 * (bilinear(fb, n, x, y + 1.0) - bilinear(fb, n, x, y - 1.0));
-                if b.is_nan() || gx.is_nan() || gy.is_nan() {
-                    continue;
-                }
-                let e = a - b;
-                h11 += gx * gx;
-                h12 += gx * gy;
-                h22 += gy * gy;
-                b1 += gx * e;
-                b2 += gy * e;
+        let (mut b1, mut b2) = (0.0, 0.0);
+        for &(x, y, a, gx, gy) in &cells {
+            let b = bilinear(fb, n, x + d.0, y + d.1);
+            if b.is_nan() {
+                continue;
             }
-        }
-        let det = h11 * h22 - h12 * h12;
-        if det.abs() < 1e-9 {
-            break;
+            let e = a - b;
+            b1 += gx * e;
+            b2 += gy * e;
         }
         let (sx, sy) = ((h22 * b1 - h12 * b2) / det, (h11 * b2 - h12 * b1) / det);
         d = (d.0 + sx, d.1 + sy);
@@ -608,7 +651,7 @@ mod tests {
         let dt = 20.0;
         let a = map_from(blobs, g);
         let b = map_from(|x, y| blobs(x - v[0] * dt, y - v[1] * dt), g);
-        let m = measure(&a, &b, dt, &MotionParams::default());
+        let m = measure(&a, &b, dt, &MotionParams::default(), None);
         let l = m.layers[0];
         assert!(m.vectors.len() > 10, "{} vectors", m.vectors.len());
         assert!((l.v_mps[0] - v[0]).abs() < 0.1 && (l.v_mps[1] - v[1]).abs() < 0.1, "{:?}", l.v_mps);
@@ -619,7 +662,7 @@ mod tests {
     fn featureless_maps_give_no_vectors() {
         let g = Grid::new(&MapParams { cells: 128, ..Default::default() }, 1500.0);
         let a = map_from(|_, _| 0.0, g);
-        let m = measure(&a, &a, 20.0, &MotionParams::default());
+        let m = measure(&a, &a, 20.0, &MotionParams::default(), None);
         assert!(m.vectors.is_empty() && m.global_mps.is_none());
     }
 

@@ -348,7 +348,8 @@ impl Nowcaster {
         let age = |t: &DateTime<Utc>| (frame.time - *t).num_milliseconds() as f64 / 1000.0;
         self.history.retain(|(t, m)| age(t) <= mp.max_gap_s && m.grid == map.grid);
         let earlier = self.history.iter().rev().find(|(t, _)| age(t) >= mp.baseline_s).or(self.history.front());
-        let measurement = earlier.map(|(t, pm)| measure(pm, &map, age(t), mp));
+        let prior = self.filter.current();
+        let measurement = earlier.map(|(t, pm)| measure(pm, &map, age(t), mp, prior));
         let motion = self.filter.update(measurement.as_ref(), dt_s.unwrap_or(0.0), mp);
         let t_motion = Clock::now();
         // Tuning from measurements at the frame time.

@@ -284,8 +284,9 @@ impl Reference {
             }
         }
         let offset = if n > 0 && d.len() as f64 >= params.offset_min_share * n as f64 && !d.is_empty() {
-            d.sort_by(f32::total_cmp);
-            let q = d[((d.len() - 1) as f64 * params.offset_quantile).round() as usize];
+            let k = ((d.len() - 1) as f64 * params.offset_quantile).round() as usize;
+            let (_, q, _) = d.select_nth_unstable_by(k, f32::total_cmp);
+            let q = *q;
             q.clamp(params.offset_min as f32, params.offset_max as f32)
         } else {
             0.0

@@ -1,0 +1,109 @@
+//! The command-line benchmark: synthetic frames through the whole engine, timed per stage.
+//!
+//! Frames are rendered and JPEG-encoded in memory first (timed separately), then decoded and
+//! stepped through [`Nowcaster::step`] in a pool of the requested number of threads (one by
+//! default, to measure per-core cost).
+
+use std::time::Instant;
+
+use crate::config::{CalibrationFile, Site};
+use crate::nowcast::{Frame, Nowcaster};
+use crate::synth::render::PixelRays;
+use crate::synth::{Scene, encode_jpeg, scene};
+
+/// Benchmark figures.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct BenchReport {
+    /// Image size \[px\].
+    pub size_px: u32,
+    /// Frames stepped.
+    pub frames: usize,
+    /// Threads used for the engine.
+    pub threads: usize,
+    /// Forecast points.
+    pub plant_points: usize,
+    /// Horizons per forecast.
+    pub horizons: usize,
+    /// Rendering time per frame \[ms\] (all cores).
+    pub render_ms: f64,
+    /// Median JPEG decode time \[ms\].
+    pub decode_ms: f64,
+    /// Median time of map + motion + forecast (and QC) per frame \[ms\].
+    pub step_ms_median: f64,
+    /// 95th percentile of the step time \[ms\].
+    pub step_ms_p95: f64,
+    /// Median per stage \[ms\]: QC, map, motion, forecast.
+    pub stage_ms: [f64; 4],
+    /// Frames per second including decoding.
+    pub throughput_fps: f64,
+}
+
+fn pct(mut v: Vec<f64>, p: f64) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    v.sort_by(f64::total_cmp);
+    v[((v.len() - 1) as f64 * p).round() as usize]
+}
+
+/// Run the benchmark.
+///
+/// # Errors
+/// When the scene cannot be built or a frame fails (which would be a bug).
+pub fn run(size_px: u32, frames: usize, threads: usize) -> anyhow::Result<BenchReport> {
+    let mut spec = scene("broken-cumulus-fast").ok_or_else(|| anyhow::anyhow!("scene missing"))?;
+    spec.size_px = size_px;
+    spec.duration_min = frames as f64 * spec.frame_step_s / 60.0;
+    let mut s = Scene::new(spec, 11)?;
+    // About 1000 forecast points: shrink the spacing.
+    s.site.plant.point_spacing_m = 15.5;
+    let rays = PixelRays::new(&s.camera);
+    let times = s.frame_times();
+    let t0 = Instant::now();
+    let jpegs: Vec<Vec<u8>> = times.iter().enumerate().map(|(i, t)| encode_jpeg(&s.render_frame(&rays, i, t).rgb, 85)).collect();
+    let render_ms = t0.elapsed().as_secs_f64() * 1000.0 / times.len().max(1) as f64;
+    let calibration = CalibrationFile::from_camera(&s.spec.camera.name, &s.camera);
+    let site = Site {
+        file: s.site.clone(),
+        path: "bench/site.toml".into(),
+        camera: s.camera.clone(),
+        calibration,
+        calibration_path: "bench/calibration.toml".into(),
+        obstruction: None,
+        cbh_csv: None,
+    };
+    let mut nc = Nowcaster::new(site, None, None);
+    let plant_points = nc.plant().point_count();
+    let horizons = nc.horizons_s().len();
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads.max(1)).build()?;
+    let (mut dec, mut step, mut st) = (vec![], vec![], [vec![], vec![], vec![], vec![]]);
+    let wall = Instant::now();
+    pool.install(|| -> anyhow::Result<()> {
+        for (t, j) in times.iter().zip(&jpegs) {
+            let td = Instant::now();
+            let img = image::load_from_memory(j)?.to_rgb8();
+            dec.push(td.elapsed().as_secs_f64() * 1000.0);
+            let n = nc.step(&Frame { time: *t, image: img }).map_err(|e| anyhow::anyhow!("{e}"))?;
+            let ts = n.times;
+            step.push(ts.qc_ms + ts.map_ms + ts.motion_ms + ts.forecast_ms);
+            for (k, v) in [ts.qc_ms, ts.map_ms, ts.motion_ms, ts.forecast_ms].into_iter().enumerate() {
+                st[k].push(v);
+            }
+        }
+        Ok(())
+    })?;
+    let wall_s = wall.elapsed().as_secs_f64();
+    Ok(BenchReport {
+        size_px,
+        frames: times.len(),
+        threads: threads.max(1),
+        plant_points,
+        horizons,
+        render_ms,
+        decode_ms: pct(dec, 0.5),
+        step_ms_median: pct(step.clone(), 0.5),
+        step_ms_p95: pct(step, 0.95),
+        stage_ms: [pct(st[0].clone(), 0.5), pct(st[1].clone(), 0.5), pct(st[2].clone(), 0.5), pct(st[3].clone(), 0.5)],
+        throughput_fps: times.len() as f64 / wall_s,
+    })
+}
