@@ -131,6 +131,12 @@ pub struct SiteFile {
     /// Beam transmittance and diffuse settings of the forecast.
     #[serde(default)]
     pub irradiance: crate::forecast::IrradianceParams,
+    /// PV power model.
+    #[serde(default)]
+    pub power: crate::power::PowerParams,
+    /// Ramp definition and alarm states.
+    #[serde(default)]
+    pub ramps: crate::ramp::RampParams,
     /// Pyranometers whose readings a measurements CSV may hold (`ghi_<name>_wm2` columns).
     #[serde(default)]
     pub pyranometers: Vec<PyranometerSpec>,
@@ -246,6 +252,9 @@ pub struct BlockSpec {
     pub polygon_m: Vec<[f64; 2]>,
     /// DC capacity \[kW\].
     pub capacity_kw: f64,
+    /// AC (inverter) rating \[kW\]; default the DC capacity over `power.dc_ac_ratio`.
+    #[serde(default)]
+    pub ac_capacity_kw: Option<f64>,
     /// `"fixed"` or `"single-axis"`.
     pub mount: MountKind,
     /// Fixed: module tilt from horizontal \[°\].
@@ -424,6 +433,9 @@ impl SiteFile {
                 return Err(c.invalid(&f("polygon_m"), "a polygon of non-zero area", "an area below 1 m²"));
             }
             c.range(&f("capacity_kw"), b.capacity_kw, 0.001, 1e7)?;
+            if let Some(ac) = b.ac_capacity_kw {
+                c.range(&f("ac_capacity_kw"), ac, 0.001, 1e7)?;
+            }
             match b.mount {
                 MountKind::Fixed => {
                     let t = b.tilt_deg.ok_or_else(|| c.invalid(&f("tilt_deg"), "a tilt for a fixed block", "nothing"))?;
@@ -450,6 +462,8 @@ impl SiteFile {
         self.motion.validate(path)?;
         self.map.validate(path)?;
         self.irradiance.validate(path)?;
+        self.power.validate(path)?;
+        self.ramps.validate(path)?;
         for (i, p) in self.pyranometers.iter().enumerate() {
             for (k, v) in p.position_m.iter().enumerate() {
                 c.range(&format!("pyranometers[{i}].position_m[{k}]"), *v, -50_000.0, 50_000.0)?;

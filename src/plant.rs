@@ -9,6 +9,8 @@ pub struct Block {
     pub name: String,
     /// DC capacity \[kW\].
     pub capacity_kw: f64,
+    /// AC rating \[kW\], if given.
+    pub ac_capacity_kw: Option<f64>,
     /// Mounting.
     pub mount: Mount,
     /// Footprint (east, north) \[m\].
@@ -102,6 +104,7 @@ impl Block {
         Block {
             name: b.name.clone(),
             capacity_kw: b.capacity_kw,
+            ac_capacity_kw: b.ac_capacity_kw,
             mount,
             polygon_m: b.polygon_m.clone(),
             points_m: grid_points(&b.polygon_m, spacing_m),

@@ -177,3 +177,25 @@ def transposition_table(n=200):
 
 if __name__ == "__main__":
     transposition_table()
+
+
+def power_table(n=120):
+    """Cell temperature (Faiman), DC power (PVWatts linear model) and AC power (PVWatts inverter)."""
+    rows = []
+    for _ in range(n):
+        poa = float(rng.uniform(0, 1300)); temp = float(rng.uniform(-10, 45)); ws = float(rng.uniform(0, 12))
+        u0 = float(rng.choice([25.0, 20.0])); u1 = float(rng.choice([6.84, 4.0]))
+        gamma = float(rng.choice([-0.004, -0.0035, -0.0047])); pdc0 = float(rng.uniform(500, 8000))
+        ac_ratio = float(rng.uniform(1.0, 1.4)); eta = float(rng.choice([0.96, 0.98]))
+        tc = float(pvlib.temperature.faiman(poa, temp, ws, u0=u0, u1=u1))
+        pdc = float(pvlib.pvsystem.pvwatts_dc(poa, tc, pdc0, gamma))
+        pac0 = pdc0 / ac_ratio
+        pac = float(pvlib.inverter.pvwatts(pdc, pac0 / eta, eta_inv_nom=eta))
+        rows.append(dict(poa_wm2=poa, temp_air_c=temp, wind_speed_mps=ws, u0=u0, u1=u1, cell_temp_c=tc,
+                         gamma_pdc=gamma, pdc0_kw=pdc0, pdc_kw=pdc, pac0_kw=pac0, eta_inv_nom=eta, pac_kw=pac))
+    write("power_pvlib.csv", pd.DataFrame(rows),
+          f"pvlib {pvlib.__version__} temperature.faiman, pvsystem.pvwatts_dc, inverter.pvwatts(pdc0 = pac0 / eta_inv_nom)")
+
+
+if __name__ == "__main__":
+    power_table()

@@ -127,6 +127,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         name: name.into(),
         polygon_m: poly.to_vec(),
         capacity_kw: 6000.0,
+        ac_capacity_kw: Some(5000.0),
         mount,
         tilt_deg: (mount == MountKind::Fixed).then_some(25.0),
         azimuth_deg: (mount == MountKind::Fixed).then_some(180.0),
@@ -161,6 +162,8 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         motion: Default::default(),
         map: Default::default(),
         irradiance: Default::default(),
+        power: Default::default(),
+        ramps: Default::default(),
         pyranometers: vec![],
     }
 }
