@@ -9,7 +9,7 @@ use chrono::{DateTime, Utc};
 
 use crate::cloudmap::{CloudMap, LutCache, build_map};
 use crate::config::Site;
-use crate::forecast::{Forecast, ForecastInput, IrradianceParams, TransmittanceMap, forecast, sun_ray_plane_point};
+use crate::forecast::{Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble, forecast, sun_ray_plane_point};
 use crate::io::{Measurements, Series};
 use crate::motion::{Measurement, Motion, MotionFilter, measure};
 use crate::plant::Plant;
@@ -115,6 +115,14 @@ pub struct Nowcast {
     pub motion: Option<Motion>,
     /// The forecast.
     pub forecast: Forecast,
+    /// P10 / P50 / P90 per forecast row (empty without an ensemble).
+    pub bands: Vec<Band>,
+    /// Ramp events of this forecast.
+    pub ramps: Vec<crate::ramp::RampEvent>,
+    /// Alarm state after this frame.
+    pub alarm: crate::ramp::AlarmState,
+    /// The alarm change this frame caused, if any.
+    pub alarm_change: Option<crate::ramp::AlarmChange>,
     /// Transmittance settings used (after tuning).
     pub irradiance: IrradianceParams,
     /// Stage timings.
@@ -192,6 +200,7 @@ pub struct Nowcaster {
     measurements: Option<(Measurements, Vec<(usize, [f64; 2])>)>,
     tuner: Tuner,
     irradiance: IrradianceParams,
+    alarm: crate::ramp::Alarm,
     /// Counters.
     pub counters: Counters,
 }
@@ -223,6 +232,7 @@ impl Nowcaster {
             measurements,
             tuner: Tuner::default(),
             irradiance,
+            alarm: Default::default(),
             counters: Counters::default(),
         }
     }
@@ -251,6 +261,13 @@ impl Nowcaster {
 
     fn count(&mut self, r: &Rejection) {
         *self.counters.rejected.entry(r.code().to_string()).or_default() += 1;
+    }
+
+    /// A weather value from the measurements CSV at a time (column `temp_air_c` or `wind_speed_mps`).
+    fn weather(&self, t: &DateTime<Utc>, column: &str) -> Option<f64> {
+        let (m, _) = self.measurements.as_ref()?;
+        let v = m.at(m.column(column)?, t);
+        v.is_finite().then_some(v)
     }
 
     /// Cloud base height above ground at a time \[m\].
@@ -369,8 +386,22 @@ impl Nowcaster {
             horizons_s: self.horizons_s(),
             plant: &self.plant,
             params: self.irradiance,
+            power: self.site.file.power,
+            temp_air_c: self.weather(&frame.time, "temp_air_c").unwrap_or(self.site.file.power.default_temp_air_c),
+            wind_mps: self.weather(&frame.time, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
+            beam_scale: 1.0,
+            diffuse_scale: 1.0,
         };
         let fc = forecast(&map, &input);
+        let (members, bands) = if self.irradiance.ensemble_members > 0 { ensemble(&map, &input, &fc) } else { (vec![], vec![]) };
+        // Ramp events from the plant's power series, and the alarm.
+        let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
+        let step_min = self.site.file.forecast.step_s as f64 / 60.0;
+        let cap_ac: f64 = self.plant.blocks.iter().map(|b| b.ac_capacity_kw.unwrap_or(b.capacity_kw / self.site.file.power.dc_ac_ratio)).sum();
+        let rp = self.site.file.ramps;
+        let member_series: Vec<Vec<f64>> = members.iter().map(plant_series).collect();
+        let ramps = crate::ramp::ramp_events(&frame.time, &plant_series(&fc), &member_series, step_min, cap_ac, &rp);
+        let alarm_change = self.alarm.update(&frame.time, &ramps, &rp);
         let t_fc = Clock::now();
         self.history.push_back((frame.time, map.clone()));
         self.last_time = Some(frame.time);
@@ -386,6 +417,10 @@ impl Nowcaster {
             measurement,
             motion,
             forecast: fc,
+            bands,
+            ramps,
+            alarm: self.alarm.state,
+            alarm_change,
             irradiance: self.irradiance,
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_fc) },
         })

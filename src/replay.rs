@@ -7,6 +7,9 @@
 //!   plant as block `plant`);
 //! * `motion.csv` — per frame: time step, blocks tried and used, global and per-layer vectors, the
 //!   filtered vector, its uncertainty, speed and direction;
+//! * `ramps.csv` / `ramps.jsonl` — ramp events of every forecast: issue time, expected start, lead
+//!   time, direction, change in kW and % of AC capacity, probability (ensemble agreement);
+//! * `alarms.csv` — every change of alarm state, with the probability and the reason;
 //! * `frames.csv` — per frame: status (`ok` or the rejection code), reason, cloud fraction, cloud base
 //!   height, sun elevation, and the time of each stage;
 //! * `overlays/` (with `--overlays N`): every N-th frame with its cloud classes and the shadow map
@@ -132,16 +135,17 @@ fn median(mut v: Vec<f64>) -> f64 {
 }
 
 /// Header of `forecasts.csv`.
-pub const FORECAST_HEADER: &str =
-    "issue_time_utc,target_time_utc,horizon_s,block,ghi_wm2,dni_wm2,dhi_wm2,poa_wm2,ghi_clear_wm2,fallback_share,fallback\n";
+pub const FORECAST_HEADER: &str = "issue_time_utc,target_time_utc,horizon_s,block,ghi_wm2,dni_wm2,dhi_wm2,poa_wm2,ghi_clear_wm2,fallback_share,fallback,power_kw,ghi_p10_wm2,ghi_p50_wm2,ghi_p90_wm2,power_p10_kw,power_p50_kw,power_p90_kw\n";
 
 /// Append a nowcast's forecast rows.
 pub fn forecast_rows(nc: &Nowcast, out: &mut String) {
     let issue = fmt_time(&nc.time);
-    for r in &nc.forecast.rows {
+    for (k, r) in nc.forecast.rows.iter().enumerate() {
+        let b = nc.bands.get(k);
+        let q = |v: Option<f64>| v.map(|x| format!("{x:.2}")).unwrap_or_default();
         let _ = writeln!(
             out,
-            "{issue},{},{},{},{:.2},{:.2},{:.2},{:.2},{:.2},{:.3},{}",
+            "{issue},{},{},{},{:.2},{:.2},{:.2},{:.2},{:.2},{:.3},{},{:.2},{},{},{},{},{},{}",
             fmt_time(&r.time),
             r.horizon_s,
             r.target,
@@ -151,7 +155,14 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut String) {
             r.poa_wm2,
             r.ghi_clear_wm2,
             r.fallback_share,
-            (r.fallback_share > 0.0) as u8
+            (r.fallback_share > 0.0) as u8,
+            r.power_kw,
+            q(b.map(|b| b.ghi_wm2[0])),
+            q(b.map(|b| b.ghi_wm2[1])),
+            q(b.map(|b| b.ghi_wm2[2])),
+            q(b.map(|b| b.power_kw[0])),
+            q(b.map(|b| b.power_kw[1])),
+            q(b.map(|b| b.power_kw[2]))
         );
     }
 }
@@ -208,6 +219,9 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
     let mut nowcaster = prepare(opts, span)?;
     let mut fc = String::from(FORECAST_HEADER);
     let mut mo = String::from(MOTION_HEADER);
+    let mut ramps = String::from("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability\n");
+    let mut ramps_jsonl = String::new();
+    let mut alarms = String::from("time_utc,from,to,probability,reason\n");
     let mut fr = String::from("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms\n");
     let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
@@ -227,6 +241,26 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                 decode_ms.push(dms);
                 step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.qc_ms);
                 forecast_rows(&nc, &mut fc);
+                for e in &nc.ramps {
+                    let _ = writeln!(
+                        ramps,
+                        "{},{},{:.0},{},{:.1},{:.2},{:.3}",
+                        e.issue_time_utc,
+                        e.expected_start_utc,
+                        e.lead_time_s,
+                        match e.direction { crate::ramp::Direction::Up => "up", crate::ramp::Direction::Down => "down" },
+                        e.change_kw,
+                        e.change_pct,
+                        e.probability
+                    );
+                    if let Ok(j) = serde_json::to_string(e) {
+                        ramps_jsonl += &j;
+                        ramps_jsonl.push('\n');
+                    }
+                }
+                if let Some(c) = &nc.alarm_change {
+                    let _ = writeln!(alarms, "{},{},{},{:.3},\"{}\"", c.time_utc, c.from.name(), c.to.name(), c.probability, c.reason.replace('"', "'"));
+                }
                 motion_row(&nc, &mut mo);
                 let _ = writeln!(
                     fr,
@@ -259,7 +293,14 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
         bar.inc(1);
     }
     bar.finish_and_clear();
-    for (file, text) in [("forecasts.csv", &fc), ("motion.csv", &mo), ("frames.csv", &fr)] {
+    for (file, text) in [
+        ("forecasts.csv", &fc),
+        ("motion.csv", &mo),
+        ("frames.csv", &fr),
+        ("ramps.csv", &ramps),
+        ("ramps.jsonl", &ramps_jsonl),
+        ("alarms.csv", &alarms),
+    ] {
         let p = opts.out.join(file);
         write_atomic(&p, text.as_bytes()).map_err(|source| ReplayError::Write { path: p.clone(), source })?;
         outputs.push(p);

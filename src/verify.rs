@@ -70,6 +70,7 @@ pub struct HorizonScore {
 #[derive(Debug, Clone, Default)]
 pub struct Truth {
     map: HashMap<(DateTime<Utc>, String), (f64, f64)>,
+    beam: HashMap<(DateTime<Utc>, String), (f64, f64)>,
 }
 
 fn csv_err(path: &Path, e: csv::Error) -> InputError {
@@ -105,7 +106,9 @@ impl Truth {
     pub fn read(path: &Path) -> Result<Truth, InputError> {
         let mut t = Truth::default();
         for r in read_rows(path)? {
-            t.map.insert((time(path, &r, "time_utc")?, r["target"].clone()), (num(path, &r, "ghi_wm2")?, num(path, &r, "ghi_clear_wm2")?));
+            let key = (time(path, &r, "time_utc")?, r["target"].clone());
+            t.map.insert(key.clone(), (num(path, &r, "ghi_wm2")?, num(path, &r, "ghi_clear_wm2")?));
+            t.beam.insert(key, (num(path, &r, "dni_wm2")?, num(path, &r, "dhi_wm2")?));
         }
         Ok(t)
     }
@@ -310,11 +313,185 @@ pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, Box<dyn 
     })
 }
 
+/// How often the truth falls inside the P10–P90 band, per horizon.
+#[derive(Debug, Clone, Serialize)]
+pub struct BandScore {
+    /// Horizon \[s\].
+    pub horizon_s: u32,
+    /// Pairs scored.
+    pub n: usize,
+    /// Share of truths inside \[P10, P90\] (ideal 0.8).
+    pub coverage: f64,
+    /// Mean band width \[W m⁻²\].
+    pub mean_width_wm2: f64,
+}
+
+/// Coverage of the plant-mean GHI band.
+///
+/// # Errors
+/// Unreadable or malformed forecasts.
+pub fn score_bands(forecasts: &Path, truth: &Truth, target: &str) -> Result<Vec<BandScore>, InputError> {
+    let mut by_h: std::collections::BTreeMap<u32, (usize, usize, f64)> = Default::default();
+    for r in read_rows(forecasts)? {
+        if r.get("block").map(String::as_str) != Some(target) {
+            continue;
+        }
+        let (Ok(lo), Ok(hi)) = (num(forecasts, &r, "ghi_p10_wm2"), num(forecasts, &r, "ghi_p90_wm2")) else { continue };
+        let tt = time(forecasts, &r, "target_time_utc")?;
+        let Some((obs, clear)) = truth.at(&tt, target) else { continue };
+        if clear < 50.0 {
+            continue;
+        }
+        let e = by_h.entry(num(forecasts, &r, "horizon_s")? as u32).or_default();
+        e.0 += 1;
+        e.1 += (obs >= lo && obs <= hi) as usize;
+        e.2 += hi - lo;
+    }
+    Ok(by_h
+        .into_iter()
+        .map(|(h, (n, inside, w))| BandScore { horizon_s: h, n, coverage: inside as f64 / n.max(1) as f64, mean_width_wm2: w / n.max(1) as f64 })
+        .collect())
+}
+
+/// Ramp detection at a lead time, as a contingency over issue times.
+#[derive(Debug, Clone, Serialize)]
+pub struct RampScore {
+    /// Lead time scored \[s\].
+    pub lead_s: f64,
+    /// Matching window around it \[s\].
+    pub window_s: f64,
+    /// Least probability for a forecast ramp to count.
+    pub min_probability: f64,
+    /// Ramps in the truth's plant power (whole series).
+    pub truth_ramps: usize,
+    /// Hits.
+    pub hits: usize,
+    /// Misses.
+    pub misses: usize,
+    /// False alarms.
+    pub false_alarms: usize,
+    /// Probability of detection, hits / (hits + misses).
+    pub pod: f64,
+    /// False-alarm ratio, false / (hits + false).
+    pub far: f64,
+    /// Critical success index, hits / (hits + misses + false).
+    pub csi: f64,
+}
+
+/// Plant AC power of the truth at 1-minute steps from its block irradiance (the same transposition
+/// and power model as the forecast).
+pub fn truth_power_kw(truth: &Truth, site: &Site, start: DateTime<Utc>, minutes: usize) -> Vec<(DateTime<Utc>, f64)> {
+    let plant = crate::plant::Plant::from_section(&site.file.plant);
+    let pw = site.file.power;
+    let mut out = vec![];
+    for m in 0..minutes {
+        let t = start + chrono::Duration::minutes(m as i64);
+        let Ok(sun) = crate::sun::position(&t, &site.observer()) else { continue };
+        let (z, a) = (sun.apparent_zenith_rad, sun.azimuth_rad);
+        let mut total = 0.0;
+        let mut ok = true;
+        for b in &plant.blocks {
+            let key = (t, b.name.clone());
+            let Some(&(ghi, _)) = truth.map.get(&key) else {
+                ok = false;
+                break;
+            };
+            let (dni, dhi) = truth.beam.get(&key).copied().unwrap_or((0.0, ghi));
+            let irr = crate::clearsky::Irradiance { ghi_wm2: ghi, dni_wm2: dni, dhi_wm2: dhi };
+            let (tilt, saz) = crate::forecast::block_plane(&b.mount, z, a);
+            let poa = crate::forecast::poa_hay_davies(tilt, saz, z, a, &irr, sun.dni_extra_wm2(), site.file.irradiance.albedo);
+            total += crate::power::block_ac_kw(poa, b.capacity_kw, b.ac_capacity_kw, pw.default_temp_air_c, pw.default_wind_speed_mps, &pw);
+        }
+        if ok {
+            out.push((t, total));
+        }
+    }
+    out
+}
+
+/// Score ramp events (`ramps.csv`) against ramps in the truth's plant power: for each issue time, a
+/// forecast ramp is one with lead within `window_s` of `lead_s` and probability ≥ `min_probability`;
+/// an observed ramp is one in the truth starting within the same window of issue + `lead_s`, in the
+/// same direction for a hit.
+///
+/// # Errors
+/// Unreadable files.
+pub fn score_ramps(sequence: &Path, replay_out: &Path, truth: &Truth, lead_s: f64, window_s: f64, min_probability: f64) -> Result<RampScore, Box<dyn std::error::Error + Send + Sync>> {
+    let site = Site::load(&sequence.join("site.toml"))?;
+    let plant = crate::plant::Plant::from_section(&site.file.plant);
+    let cap: f64 = plant.blocks.iter().map(|b| b.ac_capacity_kw.unwrap_or(b.capacity_kw / site.file.power.dc_ac_ratio)).sum();
+    let issues: Vec<DateTime<Utc>> = {
+        let mut v: Vec<DateTime<Utc>> = read_rows(&replay_out.join("frames.csv"))?
+            .iter()
+            .filter(|r| r.get("status").map(String::as_str) == Some("ok"))
+            .filter_map(|r| parse_time("time_utc", &r["time_utc"]).ok())
+            .collect();
+        v.sort();
+        v
+    };
+    let Some(&start) = issues.first() else { return Err("no frames".into()) };
+    let minutes = (truth.map.keys().map(|k| k.0).max().map(|m| (m - start).num_minutes()).unwrap_or(0) + 1).max(0) as usize;
+    let series = truth_power_kw(truth, &site, start, minutes);
+    let values: Vec<f64> = series.iter().map(|x| x.1).collect();
+    let truth_ramps: Vec<(DateTime<Utc>, crate::ramp::Direction)> = crate::ramp::find_ramps(&values, 1.0, cap, &site.file.ramps)
+        .into_iter()
+        .map(|r| (start + chrono::Duration::seconds((r.start_min * 60.0) as i64), r.direction))
+        .collect();
+    let events = read_rows(&replay_out.join("ramps.csv"))?;
+    let (mut hits, mut misses, mut fa) = (0, 0, 0);
+    let last_truth = series.last().map(|x| x.0).unwrap_or(start);
+    for t in &issues {
+        let centre = *t + chrono::Duration::seconds(lead_s as i64);
+        if centre + chrono::Duration::seconds(window_s as i64) > last_truth {
+            continue;
+        }
+        let fc: Vec<crate::ramp::Direction> = events
+            .iter()
+            .filter(|e| e.get("issue_time_utc").and_then(|x| parse_time("t", x).ok()) == Some(*t))
+            .filter(|e| {
+                let lead: f64 = e["lead_time_s"].parse().unwrap_or(f64::NAN);
+                let p: f64 = e["probability"].parse().unwrap_or(0.0);
+                (lead - lead_s).abs() <= window_s && p >= min_probability
+            })
+            .map(|e| if e["direction"] == "up" { crate::ramp::Direction::Up } else { crate::ramp::Direction::Down })
+            .collect();
+        let obs: Vec<crate::ramp::Direction> =
+            truth_ramps.iter().filter(|(s, _)| (*s - centre).num_seconds().abs() as f64 <= window_s).map(|x| x.1).collect();
+        match (fc.is_empty(), obs.is_empty()) {
+            (false, false) if fc.iter().any(|d| obs.contains(d)) => hits += 1,
+            (false, false) => {
+                misses += 1;
+                fa += 1;
+            }
+            (false, true) => fa += 1,
+            (true, false) => misses += 1,
+            (true, true) => {}
+        }
+    }
+    let r = |a: usize, b: usize| if a + b > 0 { a as f64 / (a + b) as f64 } else { f64::NAN };
+    Ok(RampScore {
+        lead_s,
+        window_s,
+        min_probability,
+        truth_ramps: truth_ramps.len(),
+        hits,
+        misses,
+        false_alarms: fa,
+        pod: r(hits, misses),
+        far: r(fa, hits),
+        csi: if hits + misses + fa > 0 { hits as f64 / (hits + misses + fa) as f64 } else { f64::NAN },
+    })
+}
+
 /// A whole evaluation of a replay of a synthetic sequence.
 #[derive(Debug, Clone, Serialize)]
 pub struct Evaluation {
     /// Plant-mean GHI scores per horizon.
     pub plant: Vec<HorizonScore>,
+    /// Plant-mean GHI band coverage per horizon.
+    pub bands: Vec<BandScore>,
+    /// Ramp detection at 5 minutes' lead.
+    pub ramps: Option<RampScore>,
     /// Motion scores.
     pub motion: MotionScore,
     /// Segmentation scores.
@@ -330,7 +507,9 @@ pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, Box<dy
     let plant = score_forecasts(&replay_out.join("forecasts.csv"), &truth, "plant")?;
     let motion = score_motion(&replay_out.join("motion.csv"), &sequence.join("truth").join("layers.csv"))?;
     let segmentation = score_segmentation(sequence)?;
-    Ok(Evaluation { plant, motion, segmentation })
+    let bands = score_bands(&replay_out.join("forecasts.csv"), &truth, "plant")?;
+    let ramps = if replay_out.join("ramps.csv").is_file() { Some(score_ramps(sequence, replay_out, &truth, 300.0, 120.0, 0.5)?) } else { None };
+    Ok(Evaluation { plant, bands, ramps, motion, segmentation })
 }
 
 /// Print an evaluation as a table.
@@ -350,6 +529,17 @@ pub fn print_evaluation(e: &Evaluation) {
                 h.skill
             );
         }
+    }
+    for b in &e.bands {
+        if [300, 600, 900].contains(&b.horizon_s) {
+            crate::say!("P10–P90 band at {:>2} min: covers {:.0} % of the truth, mean width {:.0} W/m²", b.horizon_s / 60, 100.0 * b.coverage, b.mean_width_wm2);
+        }
+    }
+    if let Some(r) = &e.ramps {
+        crate::say!(
+            "ramps at {:.0} min lead (±{:.0} min, probability ≥ {:.1}): {} in the truth; hits {}, misses {}, false alarms {}: POD {:.2}, FAR {:.2}, CSI {:.2}",
+            r.lead_s / 60.0, r.window_s / 60.0, r.min_probability, r.truth_ramps, r.hits, r.misses, r.false_alarms, r.pod, r.far, r.csi
+        );
     }
     let m = &e.motion;
     crate::say!(

@@ -3,7 +3,9 @@
 //! Targets (the pipeline's acceptance figures): segmentation ≥ 95 % correct (zenith < 70°, outside
 //! 10° around the sun) and ≥ 90 % in the 5–15° circumsolar ring; single-layer motion within 0.5 m/s
 //! and 5°; plant-mean GHI skill against smart persistence ≥ 0.30 at 5, 10 and 15 minutes on
-//! broken-cloud scenes and ≥ 0 (no worse than persistence) on clear and overcast scenes.
+//! broken-cloud scenes and ≥ 0 (no worse than persistence) on clear and overcast scenes; on
+//! broken-cloud scenes the P10–P90 band covers 70–90 % of the truth at 5–15 minutes and ramps at
+//! 5 minutes' lead are found with POD ≥ 0.8 and FAR ≤ 0.3.
 //! Shortfalls that are known are listed in `KNOWN_SHORTFALLS`: the test checks they still fall short
 //! (so the list is kept honest) and prints every figure.
 use std::path::Path;
@@ -14,6 +16,12 @@ use nephocast::verify::{Evaluation, evaluate};
 
 /// (scene, metric) pairs that do not yet meet their target.
 const KNOWN_SHORTFALLS: &[(&str, &str)] = &[
+    // The ensemble's fixed spreads over-cover slow scattered cloud (P10–P90 holds ~95 %) and its
+    // few, slow ramps are mostly missed at 5 minutes' lead.
+    ("scattered-slow", "bands"),
+    ("scattered-slow", "ramps"),
+    ("two-layers", "bands"),
+    ("two-layers", "ramps"),
     ("two-layers", "segmentation"),
     ("two-layers", "circumsolar"),
     ("two-layers", "motion"),
@@ -45,6 +53,10 @@ fn run(name: &str, minutes: f64, spec_edit: impl Fn(&mut nephocast::synth::Scene
 
 fn print(name: &str, e: &Evaluation) {
     let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
+    let cov = |m: u32| e.bands.iter().find(|b| b.horizon_s == m * 60).map(|b| b.coverage).unwrap_or(f64::NAN);
+    if let Some(r) = &e.ramps {
+        eprintln!("{name:<20} bands 5/10/15 min {:.2} {:.2} {:.2} | ramps POD {:.2} FAR {:.2} CSI {:.2} ({} in truth)", cov(5), cov(10), cov(15), r.pod, r.far, r.csi, r.truth_ramps);
+    }
     eprintln!(
         "{name:<20} seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill 5/10/15 min {:.3} {:.3} {:.3}",
         e.segmentation.accuracy,
@@ -79,6 +91,15 @@ fn check_scene(name: &str, e: &Evaluation, broken: bool) {
         let h = e.plant.iter().find(|h| h.horizon_s == min * 60).unwrap();
         let target = if broken { 0.30 } else { 0.0 };
         check(name, "skill", h.skill >= target, format!("{min} min: {:.3} (target {target})", h.skill));
+        if broken {
+            let b = e.bands.iter().find(|b| b.horizon_s == min * 60).unwrap();
+            check(name, "bands", (0.70..=0.90).contains(&b.coverage), format!("P10–P90 coverage at {min} min: {:.2}", b.coverage));
+        }
+    }
+    if broken {
+        // Ramps of at least the threshold in the truth, at 5 minutes' lead (±2 min, probability ≥ 0.5).
+        let r = e.ramps.as_ref().unwrap();
+        check(name, "ramps", r.pod >= 0.8 && r.far <= 0.3, format!("POD {:.2} FAR {:.2} ({} truth ramps)", r.pod, r.far, r.truth_ramps));
     }
 }
 
