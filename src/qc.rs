@@ -38,3 +38,186 @@ impl QcParams {
         check_range(file, "qc.max_saturated_fraction", self.max_saturated_fraction, 0.0, 1.0)
     }
 }
+
+// ---------------------------------------------------------------------------------------------
+// Measurement quality control (BSRN tests).
+//
+// C. N. Long, Y. Shi, "An automated quality assessment and control algorithm for surface radiation
+// measurements", *The Open Atmospheric Science Journal* 2:23–37, 2008; C. N. Long, E. G. Dutton,
+// *BSRN Global Network recommended QC tests*, V2.0. With μ0 = cos(zenith) and
+// Sa = 1366.1 W/m² / R² (R the Earth–Sun distance in AU):
+// * physically possible: −4 < GHI < 1.5 Sa μ0^1.2 + 100; −4 < DHI < 0.95 Sa μ0^1.2 + 50;
+//   −4 < DNI < Sa;
+// * extremely rare: −2 < GHI < 1.2 Sa μ0^1.2 + 50; −2 < DHI < 0.75 Sa μ0^1.2 + 30;
+//   −2 < DNI < 0.95 Sa μ0^0.2 + 10;
+// * closure: |GHI / (DNI μ0 + DHI) − 1| ≤ 8 % for zenith < 75° and ≤ 15 % for 75–93°, when the
+//   sum exceeds 50 W/m².
+// Rows are judged while the sun is up (zenith < 90°); night rows carry no flags. Also flagged: a
+// missing value, a value stuck for 10 or more samples above 5 W/m² (common practice, no source), and
+// a row after a time gap longer than 1.5 times the usual step.
+
+/// GHI outside the physically possible range.
+pub const FLAG_GHI_PHYSICAL: u16 = 1;
+/// GHI outside the extremely rare range.
+pub const FLAG_GHI_RARE: u16 = 2;
+/// DNI outside the physically possible range.
+pub const FLAG_DNI_PHYSICAL: u16 = 4;
+/// DNI outside the extremely rare range.
+pub const FLAG_DNI_RARE: u16 = 8;
+/// DHI outside the physically possible range.
+pub const FLAG_DHI_PHYSICAL: u16 = 16;
+/// DHI outside the extremely rare range.
+pub const FLAG_DHI_RARE: u16 = 32;
+/// The three components do not close.
+pub const FLAG_CLOSURE: u16 = 64;
+/// A value is missing.
+pub const FLAG_MISSING: u16 = 128;
+/// A value is stuck.
+pub const FLAG_STUCK: u16 = 256;
+/// A time gap precedes the row.
+pub const FLAG_GAP: u16 = 512;
+
+/// Upper limits of the BSRN tests at a zenith angle \[W m⁻²\].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BsrnLimits {
+    /// GHI, physically possible.
+    pub ghi_physical: f64,
+    /// GHI, extremely rare.
+    pub ghi_rare: f64,
+    /// DHI, physically possible.
+    pub dhi_physical: f64,
+    /// DHI, extremely rare.
+    pub dhi_rare: f64,
+    /// DNI, physically possible.
+    pub dni_physical: f64,
+    /// DNI, extremely rare.
+    pub dni_rare: f64,
+}
+
+/// The BSRN upper limits for a zenith \[rad\] and Earth–Sun distance \[AU\].
+pub fn bsrn_limits(zenith_rad: f64, earth_sun_au: f64) -> BsrnLimits {
+    let sa = crate::sun::SOLAR_CONSTANT_WM2 / (earth_sun_au * earth_sun_au);
+    let mu = zenith_rad.cos().max(0.0);
+    let m12 = mu.powf(1.2);
+    BsrnLimits {
+        ghi_physical: 1.5 * sa * m12 + 100.0,
+        ghi_rare: 1.2 * sa * m12 + 50.0,
+        dhi_physical: 0.95 * sa * m12 + 50.0,
+        dhi_rare: 0.75 * sa * m12 + 30.0,
+        dni_physical: sa,
+        dni_rare: 0.95 * sa * mu.powf(0.2) + 10.0,
+    }
+}
+
+/// Flags of one row of GHI, DNI, DHI (NaN = missing) at a zenith and Earth–Sun distance.
+pub fn bsrn_flags(ghi: f64, dni: f64, dhi: f64, zenith_rad: f64, earth_sun_au: f64) -> u16 {
+    if zenith_rad >= std::f64::consts::FRAC_PI_2 {
+        return 0;
+    }
+    let l = bsrn_limits(zenith_rad, earth_sun_au);
+    let mut f = 0;
+    let mut test = |v: f64, phys: f64, rare: f64, fp: u16, fr: u16| {
+        if v.is_nan() {
+            f |= FLAG_MISSING;
+        } else {
+            if !(v > -4.0 && v < phys) {
+                f |= fp;
+            }
+            if !(v > -2.0 && v < rare) {
+                f |= fr;
+            }
+        }
+    };
+    test(ghi, l.ghi_physical, l.ghi_rare, FLAG_GHI_PHYSICAL, FLAG_GHI_RARE);
+    test(dni, l.dni_physical, l.dni_rare, FLAG_DNI_PHYSICAL, FLAG_DNI_RARE);
+    test(dhi, l.dhi_physical, l.dhi_rare, FLAG_DHI_PHYSICAL, FLAG_DHI_RARE);
+    let mu = zenith_rad.cos();
+    let sum = dni * mu + dhi;
+    if ghi.is_finite() && sum.is_finite() && sum > 50.0 {
+        let z = zenith_rad.to_degrees();
+        let lim = if z < 75.0 { 0.08 } else { 0.15 };
+        if (ghi / sum - 1.0).abs() > lim {
+            f |= FLAG_CLOSURE;
+        }
+    }
+    f
+}
+
+/// Quality control of a series: per row the BSRN flags, stuck values and gaps.
+pub fn qc_series(
+    times: &[chrono::DateTime<chrono::Utc>],
+    ghi: &[f64],
+    dni: &[f64],
+    dhi: &[f64],
+    observer: &crate::sun::Observer,
+) -> Vec<u16> {
+    let n = times.len();
+    let mut flags = vec![0u16; n];
+    let mut day = vec![false; n];
+    for i in 0..n {
+        if let Ok(sp) = crate::sun::position(&times[i], observer) {
+            day[i] = sp.zenith_rad < std::f64::consts::FRAC_PI_2;
+            flags[i] = bsrn_flags(ghi[i], dni[i], dhi[i], sp.zenith_rad, sp.earth_sun_distance_au);
+        }
+    }
+    // Gaps.
+    if n >= 2 {
+        let mut steps: Vec<i64> = times.windows(2).map(|w| (w[1] - w[0]).num_seconds()).collect();
+        steps.sort_unstable();
+        let usual = steps[steps.len() / 2].max(1);
+        for i in 1..n {
+            if ((times[i] - times[i - 1]).num_seconds() as f64) > 1.5 * usual as f64 {
+                flags[i] |= FLAG_GAP;
+            }
+        }
+    }
+    // Stuck values.
+    for series in [ghi, dni, dhi] {
+        let mut start = 0;
+        for i in 1..=n {
+            let same = i < n && series[i] == series[start] && series[i].is_finite();
+            if !same {
+                if i - start >= 10 && series[start] > 5.0 && day[start] {
+                    for f in flags.iter_mut().take(i).skip(start) {
+                        *f |= FLAG_STUCK;
+                    }
+                }
+                start = i;
+            }
+        }
+    }
+    flags
+}
+
+#[cfg(test)]
+mod measurement_tests {
+    use super::*;
+
+    #[test]
+    fn limits_by_hand_at_a_few_zeniths() {
+        // Long & Shi 2008 formulas with Sa = 1366.1 W/m² (R = 1 AU).
+        let l = bsrn_limits(0.0, 1.0);
+        assert!((l.ghi_physical - (1.5 * 1366.1 + 100.0)).abs() < 1e-9);
+        assert!((l.dni_rare - (0.95 * 1366.1 + 10.0)).abs() < 1e-9);
+        // Zenith 60°: μ0 = 0.5, μ0^1.2 = 0.435275…, GHI rare limit = 1.2·1366.1·0.435275 + 50 = 763.56.
+        let l = bsrn_limits(60f64.to_radians(), 1.0);
+        assert!((l.ghi_rare - (1.2 * 1366.1 * 0.5f64.powf(1.2) + 50.0)).abs() < 1e-9);
+        assert!((l.ghi_rare - 763.56).abs() < 0.01);
+        // Zenith 85°: DHI physically possible = 0.95·1366.1·cos(85°)^1.2 + 50.
+        let l = bsrn_limits(85f64.to_radians(), 1.0);
+        assert!((l.dhi_physical - (0.95 * 1366.1 * 85f64.to_radians().cos().powf(1.2) + 50.0)).abs() < 1e-9);
+    }
+
+    #[test]
+    fn flags_by_hand() {
+        let z = 30f64.to_radians();
+        // A consistent row: GHI = DNI cos z + DHI.
+        let (dni, dhi) = (800.0, 100.0);
+        let ghi = dni * z.cos() + dhi;
+        assert_eq!(bsrn_flags(ghi, dni, dhi, z, 1.0), 0);
+        assert_ne!(bsrn_flags(2500.0, dni, dhi, z, 1.0) & FLAG_GHI_PHYSICAL, 0);
+        assert_ne!(bsrn_flags(ghi * 1.2, dni, dhi, z, 1.0) & FLAG_CLOSURE, 0);
+        assert_ne!(bsrn_flags(ghi, f64::NAN, dhi, z, 1.0) & FLAG_MISSING, 0);
+        assert_eq!(bsrn_flags(-50.0, 0.0, 0.0, 100f64.to_radians(), 1.0), 0, "night rows are not judged");
+    }
+}
