@@ -117,6 +117,9 @@ pub struct ReplayArgs {
     /// Write an overlay picture every N frames (0: none).
     #[arg(long, default_value_t = 0)]
     pub overlays: usize,
+    /// Also write report.html (plots; against the sequence's truth/ when it has one).
+    #[arg(long)]
+    pub report: bool,
     /// Hide the progress bar.
     #[arg(long)]
     pub quiet: bool,
@@ -300,6 +303,13 @@ fn cmd_replay(a: ReplayArgs) -> Result<()> {
     };
     let s = crate::replay::replay(&opts)?;
     print_replay_summary(&s);
+    if a.report {
+        let seq = opts.frames.parent().map(|p| p.to_path_buf()).unwrap_or_default();
+        let truth = crate::verify::Truth::read(&seq.join("truth").join("irradiance.csv")).ok();
+        let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, &opts.out).ok());
+        let r = crate::report::write_report(&opts.out, truth.as_ref(), eval.as_ref(), "nephocast replay").map_err(|e| anyhow::anyhow!("{e}"))?;
+        crate::say!("report: {}", r.display());
+    }
     Ok(())
 }
 
@@ -352,6 +362,10 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
         crate::say!("wrote {}", p.display());
     }
     crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
+    let truth = crate::verify::Truth::read(&data.join("truth").join("irradiance.csv")).ok();
+    let eval = crate::verify::evaluate(&data, &a.out).ok();
+    let r = crate::report::write_report(&a.out, truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)").map_err(|e| anyhow::anyhow!("{e}"))?;
+    crate::say!("report: {}", r.display());
     Ok(())
 }
 

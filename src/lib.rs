@@ -58,6 +58,7 @@ pub mod power;
 pub mod qc;
 pub mod ramp;
 pub mod replay;
+pub mod report;
 pub mod segment;
 pub mod sun;
 pub mod synth;
