@@ -38,6 +38,48 @@ pub enum Command {
     Segment(SegmentArgs),
     /// Time the engine on synthetic frames (per stage, one core by default).
     Bench(BenchArgs),
+    /// Calibrate a camera from the sun's track in its frames.
+    Calibrate(CalibrateArgs),
+    /// Where directions land in the image and back (a researcher's check of a calibration).
+    #[command(subcommand)]
+    Camera(CameraCommand),
+}
+
+/// Arguments of `nephocast calibrate`.
+#[derive(Debug, clap::Args)]
+pub struct CalibrateArgs {
+    /// The site file (location for the sun's position).
+    #[arg(long)]
+    pub site: PathBuf,
+    /// Folders of frames named with their UTC time (repeat for several days).
+    #[arg(long, required = true)]
+    pub frames: Vec<PathBuf>,
+    /// The calibration file to write (a residual plot PNG is written beside it).
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Also write an obstruction mask (pixels that stay dark or unchanged) beside it.
+    #[arg(long)]
+    pub obstruction_mask: bool,
+    /// Fewest sun detections to accept.
+    #[arg(long, default_value_t = 20)]
+    pub min_detections: usize,
+}
+
+/// `nephocast camera …`.
+#[derive(Debug, Subcommand)]
+pub enum CameraCommand {
+    /// Read `zenith_deg,azimuth_deg` rows on standard input, print `x_px,y_px` (empty outside the image).
+    Project {
+        /// The calibration file.
+        #[arg(long)]
+        calibration: PathBuf,
+    },
+    /// Read `x_px,y_px` rows on standard input, print `zenith_deg,azimuth_deg` (empty outside the lens field).
+    Unproject {
+        /// The calibration file.
+        #[arg(long)]
+        calibration: PathBuf,
+    },
 }
 
 /// Arguments of `nephocast bench`.
@@ -226,6 +268,8 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Replay(a) => cmd_replay(a),
         Command::Demo(a) => cmd_demo(a),
         Command::Segment(a) => cmd_segment(a),
+        Command::Calibrate(a) => cmd_calibrate(a),
+        Command::Camera(c) => cmd_camera(c),
         Command::Bench(a) => {
             if !(64..=4096).contains(&a.size) || a.frames < 2 {
                 bail!("--size must be 64 to 4096 and --frames at least 2");
@@ -416,6 +460,108 @@ fn cmd_segment(a: SegmentArgs) -> Result<()> {
         let out = a.out.join(format!("{stem}_classes.png"));
         crate::io::write_atomic(&out, &crate::synth::encode_png_gray(&seg.classes))?;
         crate::say!("{},{:.4},{}", path.display(), seg.cloud_fraction, out.display());
+    }
+    Ok(())
+}
+
+fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
+    let site = crate::config::Site::load(&a.site)?;
+    let mut frames = vec![];
+    let mut untimed = 0;
+    for dir in &a.frames {
+        let (list, u) = crate::io::list_frames(dir)?;
+        untimed += u;
+        for f in list {
+            match image::open(&f.path) {
+                Ok(img) => frames.push((f.time, img.to_rgb8())),
+                Err(e) => eprintln!("skipped {}: {e}", f.path.display()),
+            }
+        }
+    }
+    if frames.is_empty() {
+        bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", a.frames, crate::io::FRAME_NAME_PATTERN);
+    }
+    let (fit, dets) = crate::calibrate::calibrate(&frames, &site.observer(), a.min_detections)?;
+    let name = a.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "camera".into());
+    let mut cal = crate::config::CalibrationFile::from_camera(&name, &fit.camera);
+    let (t0, t1) = (dets.first().map(|d| d.time), dets.last().map(|d| d.time));
+    cal.fit = Some(crate::config::FitRecord {
+        fitted_utc: crate::io::fmt_time(&chrono::Utc::now()),
+        span_start_utc: t0.map(|t| crate::io::fmt_time(&t)).unwrap_or_default(),
+        span_end_utc: t1.map(|t| crate::io::fmt_time(&t)).unwrap_or_default(),
+        detections: dets.len(),
+        rms_deg: fit.rms_deg,
+        max_deg: fit.max_deg,
+        rms_px: fit.rms_px,
+        max_px: fit.max_px,
+        std_errors: fit.params.iter().map(|(n, _, se)| (n.clone(), *se)).collect(),
+    });
+    let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
+    if a.obstruction_mask {
+        let circle = crate::segment::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
+        let day: Vec<&image::RgbImage> = frames
+            .iter()
+            .filter(|(t, _)| position(t, &site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
+            .map(|(_, i)| i)
+            .collect();
+        if !day.is_empty() {
+            let mask = crate::calibrate::obstruction_mask(&day, circle);
+            let mp = dir.join(format!("{name}-mask.png"));
+            crate::io::write_atomic(&mp, &crate::synth::encode_png_gray(&mask))?;
+            cal.camera.obstruction_mask = Some(PathBuf::from(format!("{name}-mask.png")));
+            crate::say!("wrote {}", mp.display());
+        }
+    }
+    let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
+    crate::io::write_atomic(&a.out, text.as_bytes())?;
+    let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
+    let pp = dir.join(format!("{name}-residuals.png"));
+    crate::io::write_atomic(&pp, &crate::synth::encode_png_rgb(&plot))?;
+    crate::say!("{} sun detections; model {}; residual RMS {:.2} px ({:.3}°), largest {:.2} px ({:.3}°)", dets.len(), fit.camera.projection.name(), fit.rms_px, fit.rms_deg, fit.max_px, fit.max_deg);
+    for (n, v, se) in &fit.params {
+        crate::say!("  {n:<14} {v:>12.4} ± {se:.4}");
+    }
+    for w in &fit.warnings {
+        crate::say!("warning: {w}");
+    }
+    crate::say!("wrote {} and {}", a.out.display(), pp.display());
+    Ok(())
+}
+
+fn cmd_camera(c: CameraCommand) -> Result<()> {
+    use std::io::BufRead;
+    let (path, forward) = match &c {
+        CameraCommand::Project { calibration } => (calibration, true),
+        CameraCommand::Unproject { calibration } => (calibration, false),
+    };
+    let cal: crate::config::CalibrationFile = crate::config::read_toml(path)?;
+    let cam = cal.camera(path)?;
+    crate::say!("{}", if forward { "x_px,y_px" } else { "zenith_deg,azimuth_deg" });
+    for (i, line) in std::io::stdin().lock().lines().enumerate() {
+        let line = line?;
+        let t = line.trim();
+        if t.is_empty() || (i == 0 && t.chars().next().is_some_and(|c| c.is_alphabetic())) {
+            continue;
+        }
+        let v: Vec<f64> = t
+            .split(',')
+            .map(|x| x.trim().parse::<f64>())
+            .collect::<Result<_, _>>()
+            .map_err(|_| anyhow::anyhow!("standard input line {}: expected two numbers separated by a comma, got {t:?}", i + 1))?;
+        if v.len() != 2 {
+            bail!("standard input line {}: expected two numbers, got {}", i + 1, v.len());
+        }
+        if forward {
+            match cam.project(v[0].to_radians(), v[1].to_radians()) {
+                Some((x, y)) => crate::say!("{x:.4},{y:.4}"),
+                None => crate::say!(","),
+            }
+        } else {
+            match cam.unproject(v[0], v[1]) {
+                Some((z, a)) => crate::say!("{:.6},{:.6}", z.to_degrees(), a.to_degrees()),
+                None => crate::say!(","),
+            }
+        }
     }
     Ok(())
 }

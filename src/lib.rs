@@ -43,6 +43,7 @@ macro_rules! say {
 }
 
 pub mod bench;
+pub mod calibrate;
 pub mod camera;
 pub mod cli;
 pub mod clearsky;

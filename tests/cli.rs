@@ -206,3 +206,38 @@ fn segment_writes_masks() {
     let o = bin().args(["segment", "/nonexistent.jpg", "--out", d.path().to_str().unwrap()]).output().unwrap();
     assert_eq!(o.status.code(), Some(2));
 }
+
+/// `calibrate` on frames without a visible sun (overcast demo frames are cloudy; use night-time
+/// names) says what it found, with exit status 2; `camera project` / `unproject` round-trip.
+#[test]
+fn calibrate_refuses_sunless_frames_and_camera_round_trips() {
+    let d = tempfile::tempdir().unwrap();
+    let frames = d.path().join("night");
+    std::fs::create_dir_all(&frames).unwrap();
+    let mut f: Vec<_> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    f.sort();
+    for (i, p) in f.iter().take(4).enumerate() {
+        std::fs::copy(p, frames.join(format!("frame_20260614T2{i}0000Z.jpg"))).unwrap();
+    }
+    let o = bin()
+        .args(["calibrate", "--site", demo().join("site.toml").to_str().unwrap(), "--frames", frames.to_str().unwrap(), "--out", d.path().join("c.toml").to_str().unwrap()])
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(err.contains("0 sun detections, 20 needed (4 frames read, 4 with the sun below 10°)"), "{err}");
+    let cal = demo().join("calibration/larkspur-sky1.toml");
+    let run = |sub: &str, input: &str| {
+        use std::io::Write;
+        let mut c = bin().args(["camera", sub, "--calibration", cal.to_str().unwrap()]).stdin(std::process::Stdio::piped()).stdout(std::process::Stdio::piped()).spawn().unwrap();
+        c.stdin.take().unwrap().write_all(input.as_bytes()).unwrap();
+        String::from_utf8(c.wait_with_output().unwrap().stdout).unwrap()
+    };
+    let px = run("project", "zenith_deg,azimuth_deg\n40,123\n95,0\n");
+    let lines: Vec<&str> = px.lines().collect();
+    assert_eq!(lines[0], "x_px,y_px");
+    assert_eq!(lines[2], ",", "below the horizon is outside the image");
+    let back = run("unproject", &format!("{}\n", lines[1]));
+    let v: Vec<f64> = back.lines().nth(1).unwrap().split(',').map(|x| x.parse().unwrap()).collect();
+    assert!((v[0] - 40.0).abs() < 1e-3 && (v[1] - 123.0).abs() < 1e-3, "{back}");
+}
