@@ -165,52 +165,18 @@ impl Series {
     /// # Errors
     /// Malformed lines, missing column, duplicated or unordered times, non-finite values.
     pub fn read_csv(path: &Path, column: &str) -> Result<Series, InputError> {
-        let mut rdr = csv::ReaderBuilder::new()
-            .comment(Some(b'#'))
-            .from_path(path)
-            .map_err(|e| InputError::Other { file: path.into(), message: e.to_string() })?;
-        let headers = rdr.headers().map_err(|e| InputError::Other { file: path.into(), message: e.to_string() })?.clone();
-        let ti = headers.iter().position(|h| h == "time_utc").ok_or_else(|| InputError::Csv {
-            file: path.into(),
-            line: 1,
-            message: "expected a column named time_utc".into(),
-        })?;
-        let vi = headers.iter().position(|h| h == column).ok_or_else(|| InputError::Csv {
-            file: path.into(),
-            line: 1,
-            message: format!("expected a column named {column}"),
-        })?;
-        let mut s = Series { times: vec![], values: vec![] };
-        for rec in rdr.records() {
-            let rec = rec.map_err(|e| InputError::Csv {
+        let m = Measurements::read_csv(path)?;
+        let c = m.column(column).ok_or_else(|| InputError::Csv { file: path.into(), line: 1, message: format!("expected a column named {column}") })?;
+        if let Some(i) = m.columns[c].iter().position(|v| !v.is_finite()) {
+            return Err(InputError::Other {
                 file: path.into(),
-                line: e.position().map(|p| p.line()).unwrap_or(0),
-                message: e.to_string(),
-            })?;
-            let line = rec.position().map(|p| p.line()).unwrap_or(0);
-            let bad = |m: String| InputError::Csv { file: path.into(), line, message: m };
-            let t = parse_time("time_utc", rec.get(ti).unwrap_or("")).map_err(bad)?;
-            let v: f64 = rec
-                .get(vi)
-                .unwrap_or("")
-                .trim()
-                .parse()
-                .map_err(|_| bad(format!("{column}: expected a number, got {:?}", rec.get(vi).unwrap_or(""))))?;
-            if !v.is_finite() {
-                return Err(bad(format!("{column}: expected a finite number")));
-            }
-            if let Some(last) = s.times.last() {
-                if t <= *last {
-                    return Err(bad(format!("time_utc {} is not after the previous row ({}): duplicated or out of order", fmt_time(&t), fmt_time(last))));
-                }
-            }
-            s.times.push(t);
-            s.values.push(v);
+                message: format!("{column}: row {} (time {}): expected a finite number", i + 1, fmt_time(&m.times[i])),
+            });
         }
-        if s.times.is_empty() {
+        if m.times.is_empty() {
             return Err(InputError::Other { file: path.into(), message: "no rows".into() });
         }
-        Ok(s)
+        Ok(Series { times: m.times.clone(), values: m.columns[c].clone() })
     }
 
     /// Linear interpolation at `t`; `None` outside the series' span (more than `slack_s` beyond an end).
