@@ -40,9 +40,38 @@ pub enum Command {
     Bench(BenchArgs),
     /// Calibrate a camera from the sun's track in its frames.
     Calibrate(CalibrateArgs),
+    /// Live mode: watch a folder for frames, serve forecasts, alarms and the dashboard.
+    Watch(WatchArgs),
     /// Where directions land in the image and back (a researcher's check of a calibration).
     #[command(subcommand)]
     Camera(CameraCommand),
+}
+
+/// Arguments of `nephocast watch`.
+#[derive(Debug, clap::Args)]
+pub struct WatchArgs {
+    /// The site file.
+    #[arg(long)]
+    pub site: PathBuf,
+    /// The folder the camera writes frames into (by rename), named with their UTC time.
+    #[arg(long)]
+    pub incoming: PathBuf,
+    /// The database (alarm log and history).
+    #[arg(long, default_value = "nephocast-live.sqlite")]
+    pub db: PathBuf,
+    /// Address to serve on.
+    #[arg(long, default_value = crate::serve::DEFAULT_BIND)]
+    pub bind: std::net::SocketAddr,
+    /// Token operators give to acknowledge alarms (also from NEPHOCAST_ACK_TOKEN); without one,
+    /// acknowledging is off.
+    #[arg(long, env = "NEPHOCAST_ACK_TOKEN")]
+    pub ack_token: Option<String>,
+    /// History kept [days].
+    #[arg(long, default_value_t = 30.0)]
+    pub keep_days: f64,
+    /// Poll interval [ms].
+    #[arg(long, default_value_t = 500)]
+    pub poll_ms: u64,
 }
 
 /// Arguments of `nephocast calibrate`.
@@ -269,6 +298,24 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Demo(a) => cmd_demo(a),
         Command::Segment(a) => cmd_segment(a),
         Command::Calibrate(a) => cmd_calibrate(a),
+        Command::Watch(a) => {
+            if !(a.keep_days > 0.0 && a.keep_days <= 3650.0) {
+                bail!("--keep-days: expected a number of days from 0 to 3650, got {}", a.keep_days);
+            }
+            let h = crate::serve::start(crate::serve::LiveOptions {
+                site: a.site,
+                incoming: a.incoming.clone(),
+                db: a.db,
+                bind: a.bind,
+                ack_token: a.ack_token,
+                keep_s: (a.keep_days * 86400.0) as i64,
+                poll_ms: a.poll_ms.max(20),
+                overlay_every: 1,
+            })?;
+            crate::say!("watching {} — dashboard at http://{}/ (advisory only, not a protection system)", a.incoming.display(), h.addr);
+            h.wait();
+            Ok(())
+        }
         Command::Camera(c) => cmd_camera(c),
         Command::Bench(a) => {
             if !(64..=4096).contains(&a.size) || a.frames < 2 {

@@ -61,6 +61,7 @@ pub mod ramp;
 pub mod replay;
 pub mod report;
 pub mod segment;
+pub mod serve;
 pub mod sun;
 pub mod synth;
 pub mod verify;

@@ -237,6 +237,16 @@ impl Nowcaster {
         }
     }
 
+    /// Restore the alarm state (live mode, after a restart).
+    pub fn restore_alarm(&mut self, state: crate::ramp::AlarmState) {
+        self.alarm.state = state;
+    }
+
+    /// Current alarm state.
+    pub fn alarm_state(&self) -> crate::ramp::AlarmState {
+        self.alarm.state
+    }
+
     /// The plant.
     pub fn plant(&self) -> &Plant {
         &self.plant

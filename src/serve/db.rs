@@ -1,0 +1,161 @@
+//! The live mode's embedded database (SQLite, bundled): the alarm log and recent history.
+//!
+//! Every write is its own transaction in WAL mode, so a crash loses at most the frame in flight.
+
+use std::path::Path;
+
+use rusqlite::{Connection, params};
+
+use crate::ramp::{AlarmChange, AlarmState};
+
+/// Open (and create) the database.
+///
+/// # Errors
+/// When the file cannot be opened or its tables created.
+pub fn open(path: &Path) -> rusqlite::Result<Connection> {
+    let c = Connection::open(path)?;
+    c.pragma_update(None, "journal_mode", "WAL")?;
+    c.pragma_update(None, "synchronous", "NORMAL")?;
+    c.busy_timeout(std::time::Duration::from_secs(5))?;
+    c.execute_batch(
+        "CREATE TABLE IF NOT EXISTS alarms (id INTEGER PRIMARY KEY, time_utc TEXT NOT NULL, from_state TEXT NOT NULL, to_state TEXT NOT NULL, probability REAL, reason TEXT, acked_utc TEXT, acked_by TEXT);
+         CREATE TABLE IF NOT EXISTS history (time_utc TEXT PRIMARY KEY, unix_s INTEGER NOT NULL, cloud_fraction REAL, plant_ghi_wm2 REAL, plant_power_kw REAL, speed_mps REAL, toward_deg REAL, alarm TEXT);
+         CREATE INDEX IF NOT EXISTS history_unix ON history(unix_s);",
+    )?;
+    Ok(c)
+}
+
+/// Record an alarm change.
+///
+/// # Errors
+/// A database error.
+pub fn insert_alarm(c: &Connection, a: &AlarmChange) -> rusqlite::Result<i64> {
+    c.execute(
+        "INSERT INTO alarms (time_utc, from_state, to_state, probability, reason) VALUES (?1, ?2, ?3, ?4, ?5)",
+        params![a.time_utc, a.from.name(), a.to.name(), a.probability, a.reason],
+    )?;
+    Ok(c.last_insert_rowid())
+}
+
+/// One row of history.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct HistoryRow {
+    /// Frame time.
+    pub time_utc: String,
+    /// Cloud fraction.
+    pub cloud_fraction: f64,
+    /// Plant-mean GHI nowcast \[W m⁻²\].
+    pub plant_ghi_wm2: f64,
+    /// Plant AC power nowcast \[kW\].
+    pub plant_power_kw: f64,
+    /// Cloud speed \[m/s\].
+    pub speed_mps: f64,
+    /// Cloud direction \[°\].
+    pub toward_deg: f64,
+    /// Alarm state.
+    pub alarm: String,
+}
+
+/// Record a frame's summary and drop history older than `keep_s` before it.
+///
+/// # Errors
+/// A database error.
+pub fn insert_history(c: &Connection, unix_s: i64, r: &HistoryRow, keep_s: i64) -> rusqlite::Result<()> {
+    c.execute(
+        "INSERT OR REPLACE INTO history (time_utc, unix_s, cloud_fraction, plant_ghi_wm2, plant_power_kw, speed_mps, toward_deg, alarm) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+        params![r.time_utc, unix_s, r.cloud_fraction, r.plant_ghi_wm2, r.plant_power_kw, r.speed_mps, r.toward_deg, r.alarm],
+    )?;
+    c.execute("DELETE FROM history WHERE unix_s < ?1", params![unix_s - keep_s])?;
+    Ok(())
+}
+
+/// History rows, oldest first.
+///
+/// # Errors
+/// A database error.
+pub fn history(c: &Connection, limit: usize) -> rusqlite::Result<Vec<HistoryRow>> {
+    let mut st = c.prepare("SELECT time_utc, cloud_fraction, plant_ghi_wm2, plant_power_kw, speed_mps, toward_deg, alarm FROM history ORDER BY unix_s DESC LIMIT ?1")?;
+    let mut rows: Vec<HistoryRow> = st
+        .query_map(params![limit as i64], |r| {
+            Ok(HistoryRow {
+                time_utc: r.get(0)?,
+                cloud_fraction: r.get::<_, Option<f64>>(1)?.unwrap_or(f64::NAN),
+                plant_ghi_wm2: r.get::<_, Option<f64>>(2)?.unwrap_or(f64::NAN),
+                plant_power_kw: r.get::<_, Option<f64>>(3)?.unwrap_or(f64::NAN),
+                speed_mps: r.get::<_, Option<f64>>(4)?.unwrap_or(f64::NAN),
+                toward_deg: r.get::<_, Option<f64>>(5)?.unwrap_or(f64::NAN),
+                alarm: r.get(6)?,
+            })
+        })?
+        .collect::<rusqlite::Result<_>>()?;
+    rows.reverse();
+    Ok(rows)
+}
+
+/// Count of history rows.
+///
+/// # Errors
+/// A database error.
+pub fn history_len(c: &Connection) -> rusqlite::Result<i64> {
+    c.query_row("SELECT COUNT(*) FROM history", [], |r| r.get(0))
+}
+
+/// An alarm log row.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct AlarmRow {
+    /// Row id (for acknowledging).
+    pub id: i64,
+    /// When.
+    pub time_utc: String,
+    /// From state.
+    pub from: String,
+    /// To state.
+    pub to: String,
+    /// Probability.
+    pub probability: f64,
+    /// Why.
+    pub reason: String,
+    /// When acknowledged, if it was.
+    pub acked_utc: Option<String>,
+}
+
+/// The most recent alarm log rows, newest first.
+///
+/// # Errors
+/// A database error.
+pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
+    let mut st = c.prepare("SELECT id, time_utc, from_state, to_state, probability, reason, acked_utc FROM alarms ORDER BY id DESC LIMIT ?1")?;
+    st.query_map(params![limit as i64], |r| {
+        Ok(AlarmRow {
+            id: r.get(0)?,
+            time_utc: r.get(1)?,
+            from: r.get(2)?,
+            to: r.get(3)?,
+            probability: r.get::<_, Option<f64>>(4)?.unwrap_or(f64::NAN),
+            reason: r.get::<_, Option<String>>(5)?.unwrap_or_default(),
+            acked_utc: r.get(6)?,
+        })
+    })?
+    .collect()
+}
+
+/// The state the last logged change left, if any.
+///
+/// # Errors
+/// A database error.
+pub fn last_state(c: &Connection) -> rusqlite::Result<Option<AlarmState>> {
+    let s: Option<String> = c.query_row("SELECT to_state FROM alarms ORDER BY id DESC LIMIT 1", [], |r| r.get(0)).ok();
+    Ok(s.map(|s| match s.as_str() {
+        "alert" => AlarmState::Alert,
+        "watch" => AlarmState::Watch,
+        _ => AlarmState::Calm,
+    }))
+}
+
+/// Acknowledge an alarm row; false when there is no such row.
+///
+/// # Errors
+/// A database error.
+pub fn ack(c: &Connection, id: i64, by: &str, now_utc: &str) -> rusqlite::Result<bool> {
+    Ok(c.execute("UPDATE alarms SET acked_utc = ?1, acked_by = ?2 WHERE id = ?3", params![now_utc, by, id])? == 1)
+}

@@ -1,0 +1,411 @@
+//! Live mode: watch a folder of incoming frames, run each through [`Nowcaster::step`], keep an
+//! alarm log and recent history in SQLite, and serve a JSON API, a server-sent event stream and the
+//! operators' dashboard over HTTP (bound to 127.0.0.1 by default).
+//!
+//! * Frames appear in the incoming folder (ideally by rename). A file is taken only once its size
+//!   has stayed the same over two polls, so a file still being written is left alone until it is
+//!   complete. When several new frames wait, the newest is processed and the others are counted as
+//!   skipped: the engine keeps real time and never queues without bound.
+//! * Bad frames are counted and skipped; with the sun below the limit the engine idles.
+//! * After a restart the alarm state and log come back from the database.
+//!
+//! Forecasts and alarms are advisory, not a protection system.
+
+pub mod db;
+
+use std::collections::{BTreeMap, HashMap, HashSet, VecDeque};
+use std::net::SocketAddr;
+use std::path::PathBuf;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+
+use axum::extract::State;
+use axum::http::{StatusCode, header};
+use axum::response::sse::{Event, KeepAlive, Sse};
+use axum::response::{Html, IntoResponse, Response};
+use axum::routing::{get, post};
+use axum::{Json, Router};
+use chrono::{DateTime, Utc};
+use futures_util::StreamExt;
+use serde::Serialize;
+use tokio::sync::broadcast;
+
+use crate::io::{fmt_time, list_frames};
+use crate::nowcast::{Frame, Nowcast, Nowcaster};
+
+/// What the live mode needs.
+#[derive(Debug, Clone)]
+pub struct LiveOptions {
+    /// The site file.
+    pub site: PathBuf,
+    /// The folder frames arrive in.
+    pub incoming: PathBuf,
+    /// The database file.
+    pub db: PathBuf,
+    /// Where to listen (default 127.0.0.1:8765; port 0 picks a free one).
+    pub bind: SocketAddr,
+    /// Token that acknowledging alarms needs (none: acknowledging is off).
+    pub ack_token: Option<String>,
+    /// History kept \[s\].
+    pub keep_s: i64,
+    /// Poll interval \[ms\].
+    pub poll_ms: u64,
+    /// Latest frames' overlay picture every N processed frames (0: none).
+    pub overlay_every: usize,
+}
+
+/// Health figures.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct Health {
+    /// Frames processed.
+    pub frames_processed: usize,
+    /// Frames skipped because a newer one was waiting.
+    pub frames_skipped: usize,
+    /// Frames rejected, by reason.
+    pub frames_rejected: BTreeMap<String, usize>,
+    /// Time of the last processed frame.
+    pub last_frame_utc: Option<String>,
+    /// Age of the last processed frame when asked \[s\].
+    pub last_frame_age_s: Option<f64>,
+    /// Processing latency (decode + step), median \[ms\].
+    pub latency_ms_median: Option<f64>,
+    /// Processing latency, 95th percentile \[ms\].
+    pub latency_ms_p95: Option<f64>,
+    /// Current alarm state.
+    pub alarm: String,
+    /// Engine running.
+    pub running: bool,
+}
+
+#[derive(Default)]
+struct Shared {
+    latest: Option<serde_json::Value>,
+    overlay_png: Option<Vec<u8>>,
+    health: Health,
+    latencies: VecDeque<f64>,
+    last_time: Option<DateTime<Utc>>,
+}
+
+#[derive(Clone)]
+struct App {
+    shared: Arc<Mutex<Shared>>,
+    tx: broadcast::Sender<String>,
+    db: PathBuf,
+    token: Option<String>,
+}
+
+/// A running live service.
+pub struct LiveHandle {
+    /// Where it listens.
+    pub addr: SocketAddr,
+    stop: Arc<AtomicBool>,
+    engine: Option<std::thread::JoinHandle<()>>,
+    server: Option<std::thread::JoinHandle<()>>,
+    shutdown: Option<tokio::sync::oneshot::Sender<()>>,
+}
+
+impl LiveHandle {
+    /// Stop the engine and the server and wait for both.
+    pub fn stop(mut self) {
+        self.stop.store(true, Ordering::SeqCst);
+        if let Some(s) = self.shutdown.take() {
+            let _ = s.send(());
+        }
+        if let Some(h) = self.engine.take() {
+            let _ = h.join();
+        }
+        if let Some(h) = self.server.take() {
+            let _ = h.join();
+        }
+    }
+
+    /// Block until stopped from elsewhere (the command-line use).
+    pub fn wait(mut self) {
+        if let Some(h) = self.server.take() {
+            let _ = h.join();
+        }
+    }
+}
+
+/// Summary of a nowcast for the API.
+fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
+    let rows: Vec<serde_json::Value> = nc
+        .forecast
+        .rows
+        .iter()
+        .enumerate()
+        .map(|(k, r)| {
+            let b = nc.bands.get(k);
+            serde_json::json!({
+                "block": r.target, "horizon_s": r.horizon_s, "target_time_utc": fmt_time(&r.time),
+                "ghi_wm2": r.irradiance.ghi_wm2, "dni_wm2": r.irradiance.dni_wm2, "dhi_wm2": r.irradiance.dhi_wm2,
+                "poa_wm2": r.poa_wm2, "power_kw": r.power_kw, "fallback_share": r.fallback_share,
+                "ghi_p10_wm2": b.map(|b| b.ghi_wm2[0]), "ghi_p50_wm2": b.map(|b| b.ghi_wm2[1]), "ghi_p90_wm2": b.map(|b| b.ghi_wm2[2]),
+                "power_p10_kw": b.map(|b| b.power_kw[0]), "power_p50_kw": b.map(|b| b.power_kw[1]), "power_p90_kw": b.map(|b| b.power_kw[2]),
+            })
+        })
+        .collect();
+    serde_json::json!({
+        "issue_time_utc": fmt_time(&nc.time),
+        "cloud_fraction": nc.cloud_fraction,
+        "cbh_m": nc.cbh_m,
+        "sun_elevation_deg": nc.sun.elevation_rad().to_degrees(),
+        "motion": nc.motion.map(|m| serde_json::json!({"east_mps": m.v_mps[0], "north_mps": m.v_mps[1], "sigma_mps": m.sigma_mps,
+            "speed_mps": m.v_mps[0].hypot(m.v_mps[1]), "toward_deg": m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)})),
+        "alarm": nc.alarm.name(),
+        "ramps": nc.ramps,
+        "forecast": rows,
+        "advisory": "Forecasts and alarms are advisory, not a protection system.",
+    })
+}
+
+fn pct(v: &VecDeque<f64>, p: f64) -> Option<f64> {
+    if v.is_empty() {
+        return None;
+    }
+    let mut s: Vec<f64> = v.iter().copied().collect();
+    s.sort_by(f64::total_cmp);
+    Some(s[((s.len() - 1) as f64 * p).round() as usize])
+}
+
+/// Start the live service: the engine in a thread, the HTTP server in another.
+///
+/// # Errors
+/// Bad site files, an unusable database, or an address that cannot be bound.
+pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
+    let nowcaster_opts = crate::replay::ReplayOptions {
+        site: opts.site.clone(),
+        frames: opts.incoming.clone(),
+        out: PathBuf::new(),
+        measurements: None,
+        overlays_every: 0,
+        progress: false,
+    };
+    let mut nowcaster = crate::replay::prepare(&nowcaster_opts, None)?;
+    std::fs::create_dir_all(&opts.incoming)?;
+    let conn = db::open(&opts.db).map_err(|e| anyhow::anyhow!("{}: {e}", opts.db.display()))?;
+    if let Some(s) = db::last_state(&conn)? {
+        nowcaster.restore_alarm(s);
+    }
+    let shared = Arc::new(Mutex::new(Shared::default()));
+    shared.lock().map_err(|_| anyhow::anyhow!("state lock"))?.health.alarm = nowcaster.alarm_state().name().into();
+    let (tx, _) = broadcast::channel::<String>(64);
+    let stop = Arc::new(AtomicBool::new(false));
+    // Bind first so the caller learns the port.
+    let std_listener = std::net::TcpListener::bind(opts.bind)?;
+    std_listener.set_nonblocking(true)?;
+    let addr = std_listener.local_addr()?;
+    let app = App { shared: shared.clone(), tx: tx.clone(), db: opts.db.clone(), token: opts.ack_token.clone() };
+    let (sd_tx, sd_rx) = tokio::sync::oneshot::channel::<()>();
+    let server = std::thread::spawn(move || {
+        let Ok(rt) = tokio::runtime::Builder::new_multi_thread().worker_threads(1).enable_all().build() else { return };
+        rt.block_on(async move {
+            let Ok(listener) = tokio::net::TcpListener::from_std(std_listener) else { return };
+            let router = Router::new()
+                .route("/", get(dashboard))
+                .route("/api/nowcast", get(api_nowcast))
+                .route("/api/alarms", get(api_alarms))
+                .route("/api/alarms/ack", post(api_ack))
+                .route("/api/health", get(api_health))
+                .route("/api/history", get(api_history))
+                .route("/api/events", get(api_events))
+                .route("/api/overlay.png", get(api_overlay))
+                .route("/openapi.yaml", get(|| async { ([(header::CONTENT_TYPE, "application/yaml")], include_str!("openapi.yaml")) }))
+                .with_state(app);
+            let _ = axum::serve(listener, router).with_graceful_shutdown(async move {
+                let _ = sd_rx.await;
+            })
+            .await;
+        });
+    });
+    let stop2 = stop.clone();
+    let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2));
+    Ok(LiveHandle { addr, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx) })
+}
+
+fn engine_loop(
+    opts: LiveOptions,
+    mut nc: Nowcaster,
+    conn: rusqlite::Connection,
+    shared: Arc<Mutex<Shared>>,
+    tx: broadcast::Sender<String>,
+    stop: Arc<AtomicBool>,
+) {
+    let mut seen: HashSet<PathBuf> = HashSet::new();
+    let mut sizes: HashMap<PathBuf, u64> = HashMap::new();
+    let mut processed = 0usize;
+    if let Ok(mut s) = shared.lock() {
+        s.health.running = true;
+    }
+    while !stop.load(Ordering::SeqCst) {
+        std::thread::sleep(std::time::Duration::from_millis(opts.poll_ms));
+        let Ok((frames, _)) = list_frames(&opts.incoming) else { continue };
+        let last = shared.lock().ok().and_then(|s| s.last_time);
+        // Complete files: size unchanged since the previous poll.
+        let mut ready = vec![];
+        for f in frames.iter().filter(|f| !seen.contains(&f.path)) {
+            let len = std::fs::metadata(&f.path).map(|m| m.len()).unwrap_or(0);
+            let prev = sizes.insert(f.path.clone(), len);
+            if len > 0 && prev == Some(len) {
+                ready.push(f.clone());
+            }
+        }
+        if ready.is_empty() {
+            continue;
+        }
+        for f in &ready {
+            seen.insert(f.path.clone());
+            sizes.remove(&f.path);
+        }
+        // Older than what was already processed: out of order, counted by the engine's QC.
+        let newest = ready.iter().max_by_key(|f| f.time).cloned();
+        let skipped = ready.len() - 1;
+        let Some(newest) = newest else { continue };
+        let t0 = std::time::Instant::now();
+        let result = match image::open(&newest.path) {
+            Ok(img) => nc.step(&Frame { time: newest.time, image: img.to_rgb8() }),
+            Err(e) => Err(nc.reject_unreadable(&e.to_string())),
+        };
+        let latency = t0.elapsed().as_secs_f64() * 1000.0;
+        let mut events = vec![];
+        let mut overlay = None;
+        let mut latest = None;
+        match &result {
+            Ok(n) => {
+                processed += 1;
+                latest = Some(nowcast_json(n));
+                let plant: Vec<&crate::forecast::TargetForecast> = n.forecast.rows.iter().filter(|r| r.target == "plant").collect();
+                let h = db::HistoryRow {
+                    time_utc: fmt_time(&n.time),
+                    cloud_fraction: n.cloud_fraction,
+                    plant_ghi_wm2: plant.first().map(|r| r.irradiance.ghi_wm2).unwrap_or(f64::NAN),
+                    plant_power_kw: plant.first().map(|r| r.power_kw).unwrap_or(f64::NAN),
+                    speed_mps: n.motion.map(|m| m.v_mps[0].hypot(m.v_mps[1])).unwrap_or(f64::NAN),
+                    toward_deg: n.motion.map(|m| m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)).unwrap_or(f64::NAN),
+                    alarm: n.alarm.name().into(),
+                };
+                let _ = db::insert_history(&conn, n.time.timestamp(), &h, opts.keep_s);
+                if let Some(ch) = &n.alarm_change {
+                    let _ = db::insert_alarm(&conn, ch);
+                    events.push(serde_json::json!({"type": "alarm", "change": ch}).to_string());
+                }
+                events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name()}).to_string());
+                if opts.overlay_every > 0 && (processed - 1) % opts.overlay_every == 0 {
+                    if let Ok(img) = image::open(&newest.path) {
+                        overlay = Some(crate::overlay::overlay_png(&img.to_rgb8(), n, &nc));
+                    }
+                }
+            }
+            Err(r) => events.push(serde_json::json!({"type": "rejected", "file": newest.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string()}).to_string()),
+        }
+        if let Ok(mut s) = shared.lock() {
+            s.health.frames_skipped += skipped;
+            s.health.frames_processed = nc.counters.used;
+            s.health.frames_rejected = nc.counters.rejected.clone();
+            s.health.alarm = nc.alarm_state().name().into();
+            if result.is_ok() {
+                s.latencies.push_back(latency);
+                if s.latencies.len() > 500 {
+                    s.latencies.pop_front();
+                }
+                s.last_time = Some(newest.time);
+                s.health.last_frame_utc = Some(fmt_time(&newest.time));
+            }
+            if latest.is_some() {
+                s.latest = latest;
+            }
+            if overlay.is_some() {
+                s.overlay_png = overlay;
+            }
+        }
+        let _ = last;
+        for e in events {
+            let _ = tx.send(e);
+        }
+    }
+    if let Ok(mut s) = shared.lock() {
+        s.health.running = false;
+    }
+}
+
+async fn dashboard() -> Html<&'static str> {
+    Html(include_str!("dashboard.html"))
+}
+
+async fn api_nowcast(State(app): State<App>) -> Response {
+    match app.shared.lock().ok().and_then(|s| s.latest.clone()) {
+        Some(v) => Json(v).into_response(),
+        None => (StatusCode::SERVICE_UNAVAILABLE, Json(serde_json::json!({"error": "no nowcast yet"}))).into_response(),
+    }
+}
+
+async fn api_health(State(app): State<App>) -> Response {
+    let Ok(s) = app.shared.lock() else { return StatusCode::INTERNAL_SERVER_ERROR.into_response() };
+    let mut h = s.health.clone();
+    h.latency_ms_median = pct(&s.latencies, 0.5);
+    h.latency_ms_p95 = pct(&s.latencies, 0.95);
+    h.last_frame_age_s = s.last_time.map(|t| (Utc::now() - t).num_milliseconds() as f64 / 1000.0);
+    Json(h).into_response()
+}
+
+fn with_db<T>(app: &App, f: impl FnOnce(&rusqlite::Connection) -> rusqlite::Result<T>) -> Result<T, Response> {
+    let c = db::open(&app.db).map_err(|e| (StatusCode::INTERNAL_SERVER_ERROR, e.to_string()).into_response())?;
+    f(&c).map_err(|e| (StatusCode::INTERNAL_SERVER_ERROR, e.to_string()).into_response())
+}
+
+async fn api_alarms(State(app): State<App>) -> Response {
+    let state = app.shared.lock().map(|s| s.health.alarm.clone()).unwrap_or_default();
+    match with_db(&app, |c| db::alarms(c, 200)) {
+        Ok(log) => Json(serde_json::json!({"state": state, "log": log, "ack_enabled": app.token.is_some()})).into_response(),
+        Err(r) => r,
+    }
+}
+
+async fn api_history(State(app): State<App>) -> Response {
+    match with_db(&app, |c| db::history(c, 2000)) {
+        Ok(h) => Json(h).into_response(),
+        Err(r) => r,
+    }
+}
+
+#[derive(serde::Deserialize)]
+struct AckRequest {
+    id: i64,
+    token: String,
+    #[serde(default)]
+    by: String,
+}
+
+async fn api_ack(State(app): State<App>, Json(req): Json<AckRequest>) -> Response {
+    let Some(token) = &app.token else {
+        return (StatusCode::FORBIDDEN, Json(serde_json::json!({"error": "acknowledging is off: start with an acknowledgement token"}))).into_response();
+    };
+    if &req.token != token {
+        return (StatusCode::FORBIDDEN, Json(serde_json::json!({"error": "wrong token"}))).into_response();
+    }
+    let by = if req.by.is_empty() { "operator".to_string() } else { req.by.clone() };
+    match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()))) {
+        Ok(true) => {
+            let _ = app.tx.send(serde_json::json!({"type": "ack", "id": req.id}).to_string());
+            Json(serde_json::json!({"acked": req.id})).into_response()
+        }
+        Ok(false) => (StatusCode::NOT_FOUND, Json(serde_json::json!({"error": "no such alarm"}))).into_response(),
+        Err(r) => r,
+    }
+}
+
+async fn api_events(State(app): State<App>) -> Sse<impl futures_util::Stream<Item = Result<Event, std::convert::Infallible>>> {
+    let rx = app.tx.subscribe();
+    let stream = tokio_stream::wrappers::BroadcastStream::new(rx).filter_map(|m| async move { m.ok().map(|s| Ok(Event::default().data(s))) });
+    Sse::new(stream).keep_alive(KeepAlive::default())
+}
+
+async fn api_overlay(State(app): State<App>) -> Response {
+    match app.shared.lock().ok().and_then(|s| s.overlay_png.clone()) {
+        Some(png) => ([(header::CONTENT_TYPE, "image/png"), (header::CACHE_CONTROL, "no-store")], png).into_response(),
+        None => StatusCode::NOT_FOUND.into_response(),
+    }
+}
+
+/// The default listening address.
+pub const DEFAULT_BIND: &str = "127.0.0.1:8765";

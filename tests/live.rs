@@ -1,0 +1,117 @@
+//! Live mode end to end: the service on an ephemeral loopback port, frames dropped into a temporary
+//! incoming folder, the API asked what happened, and a restart.
+use std::io::{Read, Write};
+use std::net::{SocketAddr, TcpStream};
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use nephocast::serve::{LiveOptions, start};
+
+fn http(addr: SocketAddr, method: &str, path: &str, body: Option<&str>) -> (u16, String) {
+    let mut s = TcpStream::connect(addr).unwrap();
+    s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+    let b = body.unwrap_or("");
+    write!(s, "{method} {path} HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\nContent-Type: application/json\r\nContent-Length: {}\r\n\r\n{b}", b.len()).unwrap();
+    let mut out = Vec::new();
+    let _ = s.read_to_end(&mut out);
+    let text = String::from_utf8_lossy(&out).to_string();
+    let code = text.split_whitespace().nth(1).and_then(|c| c.parse().ok()).unwrap_or(0);
+    let body = text.split("\r\n\r\n").nth(1).unwrap_or("").to_string();
+    (code, body)
+}
+
+fn json(addr: SocketAddr, path: &str) -> serde_json::Value {
+    let (_, b) = http(addr, "GET", path, None);
+    serde_json::from_str(&b).unwrap_or(serde_json::Value::Null)
+}
+
+/// Wait (bounded) until `f` holds; the bound is a safety stop, not a timing assertion.
+fn wait_for(what: &str, mut f: impl FnMut() -> bool) {
+    let t = Instant::now();
+    while !f() {
+        assert!(t.elapsed() < Duration::from_secs(120), "gave up waiting for {what}");
+        std::thread::sleep(Duration::from_millis(50));
+    }
+}
+
+fn demo() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data")
+}
+
+fn drop_by_rename(src: &Path, incoming: &Path, name: &str) {
+    let tmp = incoming.join(format!(".{name}.part"));
+    std::fs::copy(src, &tmp).unwrap();
+    std::fs::rename(&tmp, incoming.join(name)).unwrap();
+}
+
+#[test]
+fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
+    let d = tempfile::tempdir().unwrap();
+    let incoming = d.path().join("incoming");
+    std::fs::create_dir_all(&incoming).unwrap();
+    let opts = LiveOptions {
+        site: demo().join("site.toml"),
+        incoming: incoming.clone(),
+        db: d.path().join("live.sqlite"),
+        bind: "127.0.0.1:0".parse().unwrap(),
+        ack_token: Some("s3cret".into()),
+        keep_s: 86_400,
+        poll_ms: 40,
+        overlay_every: 1,
+    };
+    let h = start(opts.clone()).unwrap();
+    let addr = h.addr;
+    // Dashboard and API are served.
+    let (code, page) = http(addr, "GET", "/", None);
+    assert_eq!(code, 200);
+    assert!(page.contains("not a protection system"));
+    assert_eq!(http(addr, "GET", "/api/nowcast", None).0, 503);
+    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    frames.sort();
+    // Frames by rename, one at a time.
+    for (i, f) in frames.iter().take(6).enumerate() {
+        drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());
+        wait_for("a frame to be processed", || json(addr, "/api/health")["frames_processed"].as_u64() == Some(i as u64 + 1));
+    }
+    let nc = json(addr, "/api/nowcast");
+    assert_eq!(nc["forecast"].as_array().unwrap().len(), 21 * 5);
+    assert!(nc["forecast"][0]["power_p90_kw"].is_number());
+    // A half-written file completed before the next poll is taken whole.
+    let next = &frames[6];
+    let bytes = std::fs::read(next).unwrap();
+    let target = incoming.join(next.file_name().unwrap());
+    std::fs::write(&target, &bytes[..bytes.len() / 2]).unwrap();
+    std::fs::OpenOptions::new().append(true).open(&target).unwrap().write_all(&bytes[bytes.len() / 2..]).unwrap();
+    wait_for("the completed file", || json(addr, "/api/health")["frames_processed"].as_u64() == Some(7));
+    // A corrupt JPEG is counted and skipped.
+    std::fs::write(incoming.join("frame_20260614T084000.000Z.jpg"), b"\xff\xd8 this is not a real jpeg").unwrap();
+    wait_for("the corrupt frame to be counted", || json(addr, "/api/health")["frames_rejected"]["unreadable"].as_u64() == Some(1));
+    // Several frames at once: the newest is processed, the others skipped.
+    for f in &frames[8..11] {
+        drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());
+    }
+    wait_for("the burst", || json(addr, "/api/health")["frames_processed"].as_u64() == Some(8));
+    let health = json(addr, "/api/health");
+    assert_eq!(health["frames_skipped"].as_u64(), Some(2), "{health}");
+    assert!(health["latency_ms_median"].as_f64().unwrap() > 0.0);
+    // Broken cumulus over the plant raises the alarm; the change is logged.
+    let alarms = json(addr, "/api/alarms");
+    assert_ne!(alarms["state"], "calm", "{alarms}");
+    let log = alarms["log"].as_array().unwrap().clone();
+    assert!(!log.is_empty());
+    let id = log[0]["id"].as_i64().unwrap();
+    assert_eq!(http(addr, "POST", "/api/alarms/ack", Some(&format!("{{\"id\":{id},\"token\":\"wrong\"}}"))).0, 403);
+    assert_eq!(http(addr, "POST", "/api/alarms/ack", Some(&format!("{{\"id\":{id},\"token\":\"s3cret\"}}"))).0, 200);
+    let (c, png) = http(addr, "GET", "/api/overlay.png", None);
+    assert_eq!(c, 200);
+    assert!(!png.is_empty());
+    h.stop();
+    // Restart: the log and state survive.
+    let h2 = start(opts).unwrap();
+    let a2 = json(h2.addr, "/api/alarms");
+    assert_eq!(a2["log"].as_array().unwrap().len(), log.len());
+    assert_eq!(a2["state"], alarms["state"]);
+    assert!(a2["log"][0]["acked_utc"].is_string());
+    assert_eq!(json(h2.addr, "/api/history").as_array().unwrap().len(), 8);
+    h2.stop();
+}
