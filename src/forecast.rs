@@ -519,7 +519,9 @@ pub fn ensemble(map: &CloudMap, input: &ForecastInput, central: &Forecast) -> (V
     let tm = TransmittanceMap::new(map, p);
     let seed = input.issue.timestamp_millis() as u64;
     let sigma = input.sigma_mps.max(p.ensemble_motion_sigma_mps);
+    use rayon::prelude::*;
     let members: Vec<Forecast> = (0..p.ensemble_members)
+        .into_par_iter()
         .map(|m| {
             let g = |k: u64| gaussian(hash64(seed ^ (m as u64 * 97 + k)), hash64(seed.rotate_left(13) ^ (m as u64 * 89 + k)));
             let mut inp = input.clone();

@@ -240,6 +240,10 @@ fn engine_loop(
     while !stop.load(Ordering::SeqCst) {
         std::thread::sleep(std::time::Duration::from_millis(opts.poll_ms));
         let Ok((frames, _)) = list_frames(&opts.incoming) else { continue };
+        // Forget files that are gone (the camera's own clean-up), so the watcher's memory stays bounded.
+        let present: HashSet<&PathBuf> = frames.iter().map(|f| &f.path).collect();
+        seen.retain(|p| present.contains(p));
+        sizes.retain(|p, _| present.contains(p));
         let last = shared.lock().ok().and_then(|s| s.last_time);
         // Complete files: size unchanged since the previous poll.
         let mut ready = vec![];

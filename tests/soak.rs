@@ -1,0 +1,78 @@
+//! Soak: three hours of frames (30 s apart) fed to the live service as fast as it takes them.
+//! Resident memory is reported at the start and the end (figures in the test output, not a timed
+//! assertion); the history stays within the configured retention and the watcher forgets removed
+//! files.
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use nephocast::serve::{LiveOptions, start};
+
+fn rss_kb() -> u64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| s.lines().find(|l| l.starts_with("VmRSS:")).and_then(|l| l.split_whitespace().nth(1)?.parse().ok()))
+        .unwrap_or(0)
+}
+
+#[test]
+fn three_hours_of_frames_stay_within_history() {
+    let d = tempfile::tempdir().unwrap();
+    let incoming = d.path().join("incoming");
+    std::fs::create_dir_all(&incoming).unwrap();
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
+    let keep_s = 3600;
+    let h = start(LiveOptions {
+        site: demo.join("site.toml"),
+        incoming: incoming.clone(),
+        db: d.path().join("live.sqlite"),
+        bind: "127.0.0.1:0".parse().unwrap(),
+        ack_token: None,
+        keep_s,
+        poll_ms: 5,
+        overlay_every: 20,
+    })
+    .unwrap();
+    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    frames.sort();
+    let start_t: chrono::DateTime<chrono::Utc> = "2026-06-14T08:30:00Z".parse().unwrap();
+    let n = 360;
+    let db = d.path().join("live.sqlite");
+    let processed = || -> i64 { nephocast::serve::db::open(&db).ok().and_then(|c| nephocast::serve::db::history_len(&c).ok()).unwrap_or(0) };
+    let mut rss0 = 0;
+    let t0 = Instant::now();
+    let mut last_name: Option<PathBuf> = None;
+    for i in 0..n {
+        let t = start_t + chrono::Duration::seconds(30 * i as i64);
+        let name = incoming.join(nephocast::io::frame_name(&t, "jpg"));
+        let tmp = incoming.join(".soak.part");
+        std::fs::copy(&frames[i % frames.len()], &tmp).unwrap();
+        std::fs::rename(&tmp, &name).unwrap();
+        // The camera's clean-up: the previous frame goes once the next one is there.
+        if let Some(p) = last_name.take() {
+            let _ = std::fs::remove_file(p);
+        }
+        last_name = Some(name);
+        let w = Instant::now();
+        // History holds one row per frame until retention starts dropping rows older than keep_s.
+        let want = (i as i64 + 1).min(keep_s / 30 + 1);
+        while processed() < want {
+            assert!(w.elapsed() < Duration::from_secs(60), "frame {i} not processed");
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        if i == 10 {
+            rss0 = rss_kb();
+        }
+    }
+    let rss1 = rss_kb();
+    let rows = processed();
+    eprintln!(
+        "soak: {n} frames (3 h of camera time) in {:.1} s; resident memory {} MB after 10 frames, {} MB at the end; history rows {rows} (retention {} s)",
+        t0.elapsed().as_secs_f64(),
+        rss0 / 1024,
+        rss1 / 1024,
+        keep_s
+    );
+    assert!(rows <= keep_s / 30 + 1, "history grew beyond retention: {rows}");
+    assert!(rss1 < rss0 + 150 * 1024, "resident memory grew from {rss0} kB to {rss1} kB");
+    h.stop();
+}
