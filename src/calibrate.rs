@@ -276,6 +276,11 @@ fn fit_model(start: &Camera, model: Projection, dets: &[Detection]) -> Fit {
     }
 }
 
+/// Fit one lens model to detections from a starting camera (the building block of [`calibrate`]).
+pub fn fit_detections(start: &Camera, model: Projection, dets: &[Detection]) -> Fit {
+    fit_model(start, model, dets)
+}
+
 /// Initial camera from the image circle and the first detections.
 pub fn initial_camera(circle: crate::segment::ImageCircle, size: (u32, u32), dets: &[Detection]) -> Camera {
     let f = circle.radius_px / std::f64::consts::FRAC_PI_2;

@@ -117,6 +117,8 @@ pub struct Nowcast {
     pub forecast: Forecast,
     /// P10 / P50 / P90 per forecast row (empty without an ensemble).
     pub bands: Vec<Band>,
+    /// Plant-mean GHI of every ensemble member, per horizon \[W m⁻²\] (for CRPS).
+    pub plant_members_ghi_wm2: Vec<Vec<f64>>,
     /// Ramp events of this forecast.
     pub ramps: Vec<crate::ramp::RampEvent>,
     /// Alarm state after this frame.
@@ -411,6 +413,10 @@ impl Nowcaster {
         let rp = self.site.file.ramps;
         let member_series: Vec<Vec<f64>> = members.iter().map(plant_series).collect();
         let ramps = crate::ramp::ramp_events(&frame.time, &plant_series(&fc), &member_series, step_min, cap_ac, &rp);
+        let n_h = fc.rows.iter().filter(|r| r.target == "plant").count();
+        let plant_members_ghi_wm2: Vec<Vec<f64>> = (0..n_h)
+            .map(|k| members.iter().filter_map(|m| m.rows.iter().filter(|r| r.target == "plant").nth(k).map(|r| r.irradiance.ghi_wm2)).collect())
+            .collect();
         let alarm_change = self.alarm.update(&frame.time, &ramps, &rp);
         let t_fc = Clock::now();
         self.history.push_back((frame.time, map.clone()));
@@ -428,6 +434,7 @@ impl Nowcaster {
             motion,
             forecast: fc,
             bands,
+            plant_members_ghi_wm2,
             ramps,
             alarm: self.alarm.state,
             alarm_change,

@@ -10,6 +10,7 @@
 //! * `ramps.csv` / `ramps.jsonl` — ramp events of every forecast: issue time, expected start, lead
 //!   time, direction, change in kW and % of AC capacity, probability (ensemble agreement);
 //! * `alarms.csv` — every change of alarm state, with the probability and the reason;
+//! * `ensemble_plant.csv` — the plant-mean GHI of every ensemble member per horizon (for CRPS);
 //! * `frames.csv` — per frame: status (`ok` or the rejection code), reason, cloud fraction, cloud base
 //!   height, sun elevation, and the time of each stage;
 //! * `overlays/` (with `--overlays N`): every N-th frame with its cloud classes and the shadow map
@@ -222,6 +223,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
     let mut ramps = String::from("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability\n");
     let mut ramps_jsonl = String::new();
     let mut alarms = String::from("time_utc,from,to,probability,reason\n");
+    let mut members = String::from("issue_time_utc,horizon_s,member,plant_ghi_wm2\n");
     let mut fr = String::from("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms\n");
     let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
@@ -241,6 +243,12 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                 decode_ms.push(dms);
                 step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.qc_ms);
                 forecast_rows(&nc, &mut fc);
+                let plant_h: Vec<u32> = nc.forecast.rows.iter().filter(|r| r.target == "plant").map(|r| r.horizon_s).collect();
+                for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
+                    for (m, v) in ms.iter().enumerate() {
+                        let _ = writeln!(members, "{},{},{m},{v:.1}", fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0));
+                    }
+                }
                 for e in &nc.ramps {
                     let _ = writeln!(
                         ramps,
@@ -300,6 +308,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
         ("ramps.csv", &ramps),
         ("ramps.jsonl", &ramps_jsonl),
         ("alarms.csv", &alarms),
+        ("ensemble_plant.csv", &members),
     ] {
         let p = opts.out.join(file);
         write_atomic(&p, text.as_bytes()).map_err(|source| ReplayError::Write { path: p.clone(), source })?;

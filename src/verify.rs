@@ -13,7 +13,7 @@
 //!   accuracy evaluation", in J. Kleissl (ed.), *Solar Energy Forecasting and Resource Assessment*,
 //!   Academic Press, 2013, ch. 8.
 
-use std::collections::HashMap;
+use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
 
 use chrono::{DateTime, Utc};
@@ -324,6 +324,25 @@ pub struct BandScore {
     pub coverage: f64,
     /// Mean band width \[W m⁻²\].
     pub mean_width_wm2: f64,
+    /// Mean continuous ranked probability score of the ensemble \[W m⁻²\] (NaN without members).
+    pub crps_wm2: f64,
+}
+
+/// CRPS of an ensemble against an observation: `E|X − y| − ½ E|X − X′|` (Gneiting & Raftery,
+/// *J. Am. Stat. Assoc.* 102:359, 2007, eq. 20).
+pub fn crps_ensemble(members: &[f64], y: f64) -> f64 {
+    let n = members.len() as f64;
+    if n == 0.0 {
+        return f64::NAN;
+    }
+    let a = members.iter().map(|x| (x - y).abs()).sum::<f64>() / n;
+    let mut b = 0.0;
+    for x in members {
+        for z in members {
+            b += (x - z).abs();
+        }
+    }
+    a - 0.5 * b / (n * n)
 }
 
 /// Coverage of the plant-mean GHI band.
@@ -347,9 +366,35 @@ pub fn score_bands(forecasts: &Path, truth: &Truth, target: &str) -> Result<Vec<
         e.1 += (obs >= lo && obs <= hi) as usize;
         e.2 += hi - lo;
     }
+    // CRPS from the members, when the replay wrote them.
+    let mut crps: BTreeMap<u32, (f64, usize)> = BTreeMap::new();
+    let members_csv = forecasts.with_file_name("ensemble_plant.csv");
+    if target == "plant" && members_csv.is_file() {
+        let mut groups: BTreeMap<(DateTime<Utc>, u32), Vec<f64>> = BTreeMap::new();
+        for r in read_rows(&members_csv)? {
+            let t = time(&members_csv, &r, "issue_time_utc")?;
+            groups.entry((t, num(&members_csv, &r, "horizon_s")? as u32)).or_default().push(num(&members_csv, &r, "plant_ghi_wm2")?);
+        }
+        for ((t, h), ms) in groups {
+            let tt = t + chrono::Duration::seconds(h as i64);
+            if let Some((obs, clear)) = truth.at(&tt, target) {
+                if clear >= 50.0 {
+                    let e = crps.entry(h).or_insert((0.0, 0));
+                    e.0 += crps_ensemble(&ms, obs);
+                    e.1 += 1;
+                }
+            }
+        }
+    }
     Ok(by_h
         .into_iter()
-        .map(|(h, (n, inside, w))| BandScore { horizon_s: h, n, coverage: inside as f64 / n.max(1) as f64, mean_width_wm2: w / n.max(1) as f64 })
+        .map(|(h, (n, inside, w))| BandScore {
+            horizon_s: h,
+            n,
+            coverage: inside as f64 / n.max(1) as f64,
+            mean_width_wm2: w / n.max(1) as f64,
+            crps_wm2: crps.get(&h).map(|c| c.0 / c.1.max(1) as f64).unwrap_or(f64::NAN),
+        })
         .collect())
 }
 
@@ -532,7 +577,7 @@ pub fn print_evaluation(e: &Evaluation) {
     }
     for b in &e.bands {
         if [300, 600, 900].contains(&b.horizon_s) {
-            crate::say!("P10–P90 band at {:>2} min: covers {:.0} % of the truth, mean width {:.0} W/m²", b.horizon_s / 60, 100.0 * b.coverage, b.mean_width_wm2);
+            crate::say!("P10–P90 band at {:>2} min: covers {:.0} % of the truth, mean width {:.0} W/m², CRPS {:.1} W/m²", b.horizon_s / 60, 100.0 * b.coverage, b.mean_width_wm2, b.crps_wm2);
         }
     }
     if let Some(r) = &e.ramps {
@@ -579,5 +624,13 @@ mod tests {
         assert_eq!(mbe(&p), 5.0);
         // Coimbra, Kleissl & Marquez 2013: s = 1 − RMSE_f / RMSE_ref; 1 − 60 / 80 = 0.25.
         assert_eq!(skill(60.0, 80.0), 0.25);
+    }
+
+    #[test]
+    fn crps_by_hand() {
+        // Members {0, 10}, observation 0: E|X − y| = 5, E|X − X′| = (0 + 10 + 10 + 0) / 4 = 5,
+        // CRPS = 5 − 2.5 = 2.5. A single member reduces to the absolute error.
+        assert_eq!(crps_ensemble(&[0.0, 10.0], 0.0), 2.5);
+        assert_eq!(crps_ensemble(&[7.0], 3.0), 4.0);
     }
 }
