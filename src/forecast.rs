@@ -97,7 +97,7 @@ impl Default for IrradianceParams {
             ensemble_members: 20,
             ensemble_motion_sigma_mps: 0.6,
             ensemble_cbh_rel_sigma: 0.15,
-            ensemble_beam_rel_sigma: 0.35,
+            ensemble_beam_rel_sigma: 0.5,
             ensemble_diffuse_rel_sigma: 0.3,
         }
     }
@@ -191,27 +191,40 @@ pub fn block_plane(mount: &Mount, sun_zenith_rad: f64, sun_azimuth_rad: f64) -> 
     }
 }
 
-/// Summed-area tables of beam transmittance and of known cells over a cloud map.
+/// Summed-area tables of the clear, thin and thick shares of a cloud map, so that the mean beam
+/// transmittance over any box is `Σ share_k · beam_k` for any per-class transmittances (the ensemble
+/// varies them without rebuilding the tables).
 #[derive(Debug, Clone)]
 pub struct TransmittanceMap {
     n: usize,
-    sum: Vec<f64>,
+    sums: [Vec<f64>; 3],
     count: Vec<u32>,
+    beams: [f64; 3],
     /// Mean transmittance of the known cells.
     pub mean: f64,
+    total_shares: [f64; 3],
 }
 
 impl TransmittanceMap {
     /// Build from a map and per-class transmittances. Unknown cells that the camera sees (the sun's
-    /// glare) are filled from their known neighbours, spreading inward a cell per pass.
+    /// glare) take the class shares of their known neighbours, spreading inward a cell at a time.
     pub fn new(map: &CloudMap, p: &IrradianceParams) -> TransmittanceMap {
         let n = map.grid.n;
         let w = n + 1;
-        let mut t: Vec<f64> = map.class.iter().map(|c| p.beam(Class::from_u8(*c))).collect();
-        // Breadth-first fill: each unknown in-view cell takes the mean of its neighbours already
-        // known or filled when the front reaches it.
-        let mut front: std::collections::VecDeque<usize> = (0..n * n).filter(|&k| !t[k].is_nan()).collect();
-        let mut queued: Vec<bool> = t.iter().map(|v| !v.is_nan()).collect();
+        let mut sh: Vec<[f64; 3]> = map
+            .class
+            .iter()
+            .map(|c| match Class::from_u8(*c) {
+                Class::Clear => [1.0, 0.0, 0.0],
+                Class::Thin => [0.0, 1.0, 0.0],
+                Class::Thick => [0.0, 0.0, 1.0],
+                Class::Unknown => [f64::NAN; 3],
+            })
+            .collect();
+        // Breadth-first fill: each unknown in-view cell takes the mean shares of its neighbours
+        // already known or filled when the front reaches it.
+        let mut front: std::collections::VecDeque<usize> = (0..n * n).filter(|&k| !sh[k][0].is_nan()).collect();
+        let mut queued: Vec<bool> = sh.iter().map(|v| !v[0].is_nan()).collect();
         while let Some(k) = front.pop_front() {
             let (i, j) = ((k % n) as i64, (k / n) as i64);
             for (di, dj) in [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)] {
@@ -223,44 +236,52 @@ impl TransmittanceMap {
                 if queued[m] || !map.in_view.get(m).copied().unwrap_or(false) {
                     continue;
                 }
-                let (mut s, mut c) = (0.0, 0.0);
+                let (mut s, mut c) = ([0.0; 3], 0.0);
                 for (ei, ej) in [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)] {
                     let (x, y) = (a + ei, b + ej);
                     if x >= 0 && y >= 0 && x < n as i64 && y < n as i64 {
-                        let v = t[y as usize * n + x as usize];
-                        if !v.is_nan() {
-                            s += v;
+                        let v = sh[y as usize * n + x as usize];
+                        if !v[0].is_nan() {
+                            for q in 0..3 {
+                                s[q] += v[q];
+                            }
                             c += 1.0;
                         }
                     }
                 }
-                t[m] = s / c;
+                sh[m] = [s[0] / c, s[1] / c, s[2] / c];
                 queued[m] = true;
                 front.push_back(m);
             }
         }
-        let mut sum = vec![0f64; w * w];
+        let mut sums = [vec![0f64; w * w], vec![0f64; w * w], vec![0f64; w * w]];
         let mut count = vec![0u32; w * w];
         for j in 0..n {
-            let (mut rs, mut rc) = (0f64, 0u32);
+            let (mut rs, mut rc) = ([0f64; 3], 0u32);
             for i in 0..n {
-                let t = t[j * n + i];
-                if !t.is_nan() {
-                    rs += t;
+                let v = sh[j * n + i];
+                if !v[0].is_nan() {
+                    for q in 0..3 {
+                        rs[q] += v[q];
+                    }
                     rc += 1;
                 }
-                sum[(j + 1) * w + i + 1] = sum[j * w + i + 1] + rs;
+                for q in 0..3 {
+                    sums[q][(j + 1) * w + i + 1] = sums[q][j * w + i + 1] + rs[q];
+                }
                 count[(j + 1) * w + i + 1] = count[j * w + i + 1] + rc;
             }
         }
         let total = count[w * w - 1];
-        let mean = if total > 0 { sum[w * w - 1] / total as f64 } else { f64::NAN };
-        TransmittanceMap { n, sum, count, mean }
+        let total_shares = if total > 0 { [0, 1, 2].map(|q| sums[q][w * w - 1] / total as f64) } else { [f64::NAN; 3] };
+        let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
+        let mean = total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum();
+        TransmittanceMap { n, sums, count, beams, mean, total_shares }
     }
 
-    /// Mean transmittance over the box of half-width `r` cells around continuous cell coordinates;
-    /// `None` when the box holds no known cell or its centre is off the map.
-    pub fn box_mean(&self, cx: f64, cy: f64, r: f64) -> Option<f64> {
+    /// Class shares (clear, thin, thick) over the box of half-width `r` cells around continuous
+    /// cell coordinates; `None` when the box holds no known cell or its centre is off the map.
+    pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; 3]> {
         let n = self.n as f64;
         if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
             return None;
@@ -272,9 +293,30 @@ impl TransmittanceMap {
             return None;
         }
         let w = self.n + 1;
-        let s = self.sum[y1 * w + x1] - self.sum[y0 * w + x1] - self.sum[y1 * w + x0] + self.sum[y0 * w + x0];
         let c = self.count[y1 * w + x1] as i64 - self.count[y0 * w + x1] as i64 - self.count[y1 * w + x0] as i64 + self.count[y0 * w + x0] as i64;
-        (c > 0).then(|| s / c as f64)
+        if c <= 0 {
+            return None;
+        }
+        let s = |q: usize| {
+            let t = &self.sums[q];
+            (t[y1 * w + x1] - t[y0 * w + x1] - t[y1 * w + x0] + t[y0 * w + x0]) / c as f64
+        };
+        Some([s(0), s(1), s(2)])
+    }
+
+    /// Mean transmittance over a box with the map's own per-class transmittances.
+    pub fn box_mean(&self, cx: f64, cy: f64, r: f64) -> Option<f64> {
+        self.box_mean_with(cx, cy, r, self.beams)
+    }
+
+    /// Mean transmittance over a box for given per-class transmittances (clear, thin, thick).
+    pub fn box_mean_with(&self, cx: f64, cy: f64, r: f64, beams: [f64; 3]) -> Option<f64> {
+        self.box_shares(cx, cy, r).map(|s| s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2])
+    }
+
+    /// Mean transmittance of the whole map for given per-class transmittances.
+    pub fn mean_with(&self, beams: [f64; 3]) -> f64 {
+        self.total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum()
     }
 }
 
@@ -384,7 +426,9 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
         // camera, advected back by the motion): the same for every point at this horizon.
         let off = sun_ray_plane_point([0.0, 0.0], input.cbh_m, input.camera_m, z, a);
         let adv = [off[0] - input.v_mps[0] * k, off[1] - input.v_mps[1] * k];
-        let mean = if tm.mean.is_nan() { p.beam_clear } else { tm.mean };
+        let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
+        let mean = tm.mean_with(beams);
+        let mean = if mean.is_nan() { p.beam_clear } else { mean };
         let wp = p.fallback_persistence_weight;
         let dni_extra = sun.dni_extra_wm2();
         for b in &input.plant.blocks {
@@ -398,11 +442,11 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             for pt in &b.points_m {
                 let (irr, fb) = if up {
                     let (sx, sy) = grid.to_cell([pt[0] + adv[0], pt[1] + adv[1]]);
-                    let (tr, fb) = match tm.box_mean(sx, sy, r_cells) {
+                    let (tr, fb) = match tm.box_mean_with(sx, sy, r_cells, beams) {
                         Some(v) => (v, false),
                         None => {
                             let (qx, qy) = grid.to_cell([pt[0] + off[0], pt[1] + off[1]]);
-                            let now = tm.box_mean(qx, qy, r_cells).unwrap_or(mean);
+                            let now = tm.box_mean_with(qx, qy, r_cells, beams).unwrap_or(mean);
                             (wp * now + (1.0 - wp) * mean, true)
                         }
                     };
@@ -527,7 +571,13 @@ pub fn ensemble(map: &CloudMap, input: &ForecastInput, central: &Forecast) -> (V
             let mut inp = input.clone();
             inp.v_mps = [input.v_mps[0] + sigma * g(1), input.v_mps[1] + sigma * g(2)];
             inp.cbh_m = input.cbh_m * (1.0 + p.ensemble_cbh_rel_sigma * g(3)).max(0.3);
-            inp.beam_scale = (1.0 + p.ensemble_beam_rel_sigma * g(4)).max(0.0);
+            // Per-class transmittances: clear sky varies little, thin and thick cloud a lot.
+            let gb = g(4);
+            inp.params.beam_clear = p.beam_clear * (1.0 + 0.1 * p.ensemble_beam_rel_sigma * gb);
+            inp.params.beam_thin = (p.beam_thin * (1.0 + p.ensemble_beam_rel_sigma * g(6))).clamp(0.0, 1.0);
+            inp.params.beam_thick = (p.beam_thick * (1.0 + 2.0 * p.ensemble_beam_rel_sigma * g(7)).max(0.0)).min(0.6);
+            // And the beam as a whole (aerosol, calibration): half the class spread.
+            inp.beam_scale = (1.0 + 0.5 * p.ensemble_beam_rel_sigma * g(8)).max(0.0);
             inp.diffuse_scale = (1.0 + p.ensemble_diffuse_rel_sigma * g(5)).max(0.0);
             // Members are sharp: their spread, not a blur, carries the uncertainty.
             inp.sigma_mps = 0.0;
