@@ -73,7 +73,9 @@ pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], 
         y1 = y0 + 1.0;
     }
     let pad = 0.05 * (y1 - y0);
-    let (y0, y1) = (y0 - pad, y1 + pad);
+    let nonneg = y0 >= 0.0;
+    let (y0, y1) = (if nonneg { (y0 - pad).max(0.0) } else { y0 - pad }, y1 + pad);
+    let decimals = if y1 - y0 < 2.0 { 2 } else if y1 - y0 < 20.0 { 1 } else { 0 };
     let x1 = if x1 > x0 { x1 } else { x0 + 1.0 };
     let sx = |x: f64| ml + (x - x0) / (x1 - x0) * (w - ml - mr);
     let sy = |y: f64| mt + (1.0 - (y - y0) / (y1 - y0)) * (h - mt - mb);
@@ -81,7 +83,7 @@ pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], 
     let _ = write!(svg, "<rect x='{ml}' y='{mt}' width='{}' height='{}' fill='none' stroke='#888'/>", w - ml - mr, h - mt - mb);
     for k in 0..=5 {
         let yv = y0 + (y1 - y0) * k as f64 / 5.0;
-        let _ = write!(svg, "<line x1='{ml}' x2='{}' y1='{:.1}' y2='{:.1}' stroke='#eee'/><text x='{}' y='{:.1}' text-anchor='end'>{:.0}</text>", w - mr, sy(yv), sy(yv), ml - 4.0, sy(yv) + 4.0, yv);
+        let _ = write!(svg, "<line x1='{ml}' x2='{}' y1='{:.1}' y2='{:.1}' stroke='#eee'/><text x='{}' y='{:.1}' text-anchor='end'>{:.*}</text>", w - mr, sy(yv), sy(yv), ml - 4.0, sy(yv) + 4.0, decimals, yv);
         let xv = x0 + (x1 - x0) * k as f64 / 5.0;
         let lab = if x_is_time_min { format!("{:02}:{:02}", (xv / 60.0).floor() as i64 % 24, (xv % 60.0).floor() as i64) } else { format!("{xv:.0}") };
         let _ = write!(svg, "<text x='{:.1}' y='{}' text-anchor='middle'>{}</text>", sx(xv), h - mb + 14.0, lab);
