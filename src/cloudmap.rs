@@ -206,16 +206,27 @@ impl CloudMap {
     }
 }
 
+/// Angle to the sun \[°\] of every cell of a table (180 without a sun).
+pub fn cell_gamma_deg(lut: &Lut, sun_dir: Option<[f32; 3]>) -> Vec<f32> {
+    lut.dir.iter().map(|d| gamma_deg(*d, sun_dir)).collect()
+}
+
 /// Build a frame's cloud map: read each cell's pixel, estimate the frame's reference offset from
 /// them, and classify.
 pub fn build_map(img: &image::RgbImage, lut: &Lut, sun_dir: Option<[f32; 3]>, params: &SegmentParams, reference: &Reference) -> CloudMap {
+    build_map_with(img, lut, &cell_gamma_deg(lut, sun_dir), params, reference)
+}
+
+/// [`build_map`] with the cells' sun angles given (they change slowly and can be reused for a
+/// few frames).
+pub fn build_map_with(img: &image::RgbImage, lut: &Lut, gamma: &[f32], params: &SegmentParams, reference: &Reference) -> CloudMap {
     let raw = img.as_raw();
     let n = lut.pixel.len();
     let px = |p: u32| {
         let i = p as usize * 3;
         [raw[i], raw[i + 1], raw[i + 2]]
     };
-    let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: gamma_deg(lut.dir[k], sun_dir) };
+    let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: gamma[k] };
     let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (px(lut.pixel[k]), geom(k)));
     let fr = reference.for_frame(params, sample);
     let mut score = vec![f32::NAN; n];

@@ -357,6 +357,9 @@ pub struct ForecastInput<'a> {
     pub beam_scale: f64,
     /// Scale of the cloud-scattered diffuse (1 for the central forecast).
     pub diffuse_scale: f64,
+    /// Use every n-th point of each block (1 for the central forecast; ensemble members thin the
+    /// points, their block means change little).
+    pub point_stride: usize,
 }
 
 /// Forecast for one target (block or plant) and horizon.
@@ -439,7 +442,7 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             let iso = 0.5 * (1.0 + tilt.cos());
             let ground = p.albedo * 0.5 * (1.0 - tilt.cos());
             let mut acc = [0f64; 6];
-            for pt in &b.points_m {
+            for pt in b.points_m.iter().step_by(input.point_stride.max(1)) {
                 let (irr, fb) = if up {
                     let (sx, sy) = grid.to_cell([pt[0] + adv[0], pt[1] + adv[1]]);
                     let (tr, fb) = match tm.box_mean_with(sx, sy, r_cells, beams) {
@@ -558,9 +561,13 @@ pub fn quantile_sorted(v: &[f64], q: f64) -> f64 {
 /// motion (by its uncertainty, at least `ensemble_motion_sigma_mps`), the cloud base height, the
 /// beam transmittance and the cloud-scattered diffuse; deterministic for a given issue time.
 pub fn ensemble(map: &CloudMap, input: &ForecastInput, central: &Forecast) -> (Vec<Forecast>, Vec<Band>) {
+    ensemble_with(&TransmittanceMap::new(map, &input.params), map.grid, input, central)
+}
+
+/// [`ensemble`] from a prebuilt transmittance map (shared with the central forecast).
+pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput, central: &Forecast) -> (Vec<Forecast>, Vec<Band>) {
     use crate::synth::noise::{gaussian, hash64};
     let p = &input.params;
-    let tm = TransmittanceMap::new(map, p);
     let seed = input.issue.timestamp_millis() as u64;
     let sigma = input.sigma_mps.max(p.ensemble_motion_sigma_mps);
     use rayon::prelude::*;
@@ -579,10 +586,11 @@ pub fn ensemble(map: &CloudMap, input: &ForecastInput, central: &Forecast) -> (V
             // And the beam as a whole (aerosol, calibration): half the class spread.
             inp.beam_scale = (1.0 + 0.5 * p.ensemble_beam_rel_sigma * g(8)).max(0.0);
             inp.diffuse_scale = (1.0 + p.ensemble_diffuse_rel_sigma * g(5)).max(0.0);
+            inp.point_stride = 3;
             // Members are sharp: their spread, not a blur, carries the uncertainty.
             inp.sigma_mps = 0.0;
             inp.params.blur_growth_mps = 0.0;
-            forecast_with(&tm, map.grid, &inp)
+            forecast_with(tm, grid, &inp)
         })
         .collect();
     let bands = (0..central.rows.len())

@@ -7,9 +7,9 @@ use std::time::Instant as Clock;
 
 use chrono::{DateTime, Utc};
 
-use crate::cloudmap::{CloudMap, LutCache, build_map};
+use crate::cloudmap::{CloudMap, LutCache, build_map_with};
 use crate::config::Site;
-use crate::forecast::{Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble, forecast, sun_ray_plane_point};
+use crate::forecast::{Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, sun_ray_plane_point};
 use crate::io::{Measurements, Series};
 use crate::motion::{Measurement, Motion, MotionFilter, measure};
 use crate::plant::Plant;
@@ -203,6 +203,7 @@ pub struct Nowcaster {
     tuner: Tuner,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
+    gamma_cache: Option<(usize, [f32; 3], Vec<f32>)>,
     /// Counters.
     pub counters: Counters,
 }
@@ -235,6 +236,7 @@ impl Nowcaster {
             tuner: Tuner::default(),
             irradiance,
             alarm: Default::default(),
+            gamma_cache: None,
             counters: Counters::default(),
         }
     }
@@ -360,7 +362,18 @@ impl Nowcaster {
         let sd = sun.direction_enu();
         let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
         let sp = &self.site.file.segment;
-        let map = Arc::new(build_map(&frame.image, &lut, sun_dir, sp, &self.reference));
+        // The cells' sun angles are reused until the sun has moved 0.1° (about 25 s).
+        let key = Arc::as_ptr(&lut) as usize;
+        let fresh = match &self.gamma_cache {
+            Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > 0.1,
+            None => true,
+        };
+        if fresh {
+            let sd3 = sun_dir.unwrap_or([0.0, 0.0, 1.0]);
+            self.gamma_cache = Some((key, sd3, crate::cloudmap::cell_gamma_deg(&lut, sun_dir)));
+        }
+        let gamma: &[f32] = self.gamma_cache.as_ref().map(|c| c.2.as_slice()).unwrap_or(&[]);
+        let map = Arc::new(build_map_with(&frame.image, &lut, gamma, sp, &self.reference));
         let cf = map.cloud_fraction(&lut, sp.cloud_fraction_zenith_deg as f32);
         if cf <= sp.library_max_cloud_fraction {
             let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
@@ -403,9 +416,11 @@ impl Nowcaster {
             wind_mps: self.weather(&frame.time, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
             beam_scale: 1.0,
             diffuse_scale: 1.0,
+            point_stride: 1,
         };
-        let fc = forecast(&map, &input);
-        let (members, bands) = if self.irradiance.ensemble_members > 0 { ensemble(&map, &input, &fc) } else { (vec![], vec![]) };
+        let tm = TransmittanceMap::new(&map, &input.params);
+        let fc = forecast_with(&tm, map.grid, &input);
+        let (members, bands) = if self.irradiance.ensemble_members > 0 { ensemble_with(&tm, map.grid, &input, &fc) } else { (vec![], vec![]) };
         // Ramp events from the plant's power series, and the alarm.
         let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
         let step_min = self.site.file.forecast.step_s as f64 / 60.0;
