@@ -42,9 +42,25 @@ pub enum Command {
     Calibrate(CalibrateArgs),
     /// Live mode: watch a folder for frames, serve forecasts, alarms and the dashboard.
     Watch(WatchArgs),
+    /// Quality control of a measurements CSV (BSRN limits, closure, stuck values, gaps).
+    Qc(QcArgs),
     /// Where directions land in the image and back (a researcher's check of a calibration).
     #[command(subcommand)]
     Camera(CameraCommand),
+}
+
+/// Arguments of `nephocast qc`.
+#[derive(Debug, clap::Args)]
+pub struct QcArgs {
+    /// The site file (location for the sun).
+    #[arg(long)]
+    pub site: PathBuf,
+    /// The measurements CSV: `ghi`, `dni`, `dhi` columns, or `ghi_<name>_wm2` per pyranometer.
+    #[arg(long)]
+    pub measurements: PathBuf,
+    /// Write per-row flags to this CSV.
+    #[arg(long)]
+    pub out: Option<PathBuf>,
 }
 
 /// Arguments of `nephocast watch`.
@@ -298,6 +314,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Demo(a) => cmd_demo(a),
         Command::Segment(a) => cmd_segment(a),
         Command::Calibrate(a) => cmd_calibrate(a),
+        Command::Qc(a) => cmd_qc(a),
         Command::Watch(a) => {
             if !(a.keep_days > 0.0 && a.keep_days <= 3650.0) {
                 bail!("--keep-days: expected a number of days from 0 to 3650, got {}", a.keep_days);
@@ -507,6 +524,60 @@ fn cmd_segment(a: SegmentArgs) -> Result<()> {
         let out = a.out.join(format!("{stem}_classes.png"));
         crate::io::write_atomic(&out, &crate::synth::encode_png_gray(&seg.classes))?;
         crate::say!("{},{:.4},{}", path.display(), seg.cloud_fraction, out.display());
+    }
+    Ok(())
+}
+
+fn cmd_qc(a: QcArgs) -> Result<()> {
+    use crate::qc::*;
+    let site = crate::config::Site::load(&a.site)?;
+    let m = crate::io::Measurements::read_csv(&a.measurements)?;
+    let col = |n: &str| m.column(n).map(|c| m.columns[c].as_slice());
+    // (label, GHI, DNI, DHI)
+    let mut sets: Vec<(String, &[f64], Option<&[f64]>, Option<&[f64]>)> = vec![];
+    if let Some(g) = col("ghi") {
+        sets.push(("ghi".into(), g, col("dni"), col("dhi")));
+    }
+    for (i, n) in m.names.iter().enumerate() {
+        if n.starts_with("ghi_") && n.ends_with("_wm2") {
+            sets.push((n.clone(), m.columns[i].as_slice(), None, None));
+        }
+    }
+    if sets.is_empty() {
+        bail!("{}: no irradiance columns (expected ghi[, dni, dhi] or ghi_<name>_wm2)", a.measurements.display());
+    }
+    let names = [
+        (FLAG_GHI_PHYSICAL, "ghi_physically_impossible"),
+        (FLAG_GHI_RARE, "ghi_extremely_rare"),
+        (FLAG_DNI_PHYSICAL, "dni_physically_impossible"),
+        (FLAG_DNI_RARE, "dni_extremely_rare"),
+        (FLAG_DHI_PHYSICAL, "dhi_physically_impossible"),
+        (FLAG_DHI_RARE, "dhi_extremely_rare"),
+        (FLAG_CLOSURE, "closure"),
+        (FLAG_MISSING, "missing"),
+        (FLAG_STUCK, "stuck"),
+        (FLAG_GAP, "gap"),
+    ];
+    let mut csv = String::from("time_utc");
+    let mut all = vec![];
+    for (label, g, dn, dh) in &sets {
+        let f = qc_series_opt(&m.times, g, *dn, *dh, &site.observer());
+        let counts: Vec<String> = names.iter().map(|(b, n)| (n, f.iter().filter(|x| **x & b != 0).count())).filter(|(_, c)| *c > 0).map(|(n, c)| format!("{n} {c}")).collect();
+        crate::say!("{label}: {} rows, {} flagged{}{}", f.len(), f.iter().filter(|x| **x != 0).count(), if counts.is_empty() { "" } else { ": " }, counts.join(", "));
+        csv += &format!(",{label}_flags");
+        all.push(f);
+    }
+    if let Some(out) = &a.out {
+        csv.push('\n');
+        for (i, t) in m.times.iter().enumerate() {
+            csv += &crate::io::fmt_time(t);
+            for f in &all {
+                csv += &format!(",{}", f[i]);
+            }
+            csv.push('\n');
+        }
+        crate::io::write_atomic(out, csv.as_bytes())?;
+        crate::say!("wrote {} (flags are bit sets: 1 GHI impossible, 2 GHI rare, 4/8 DNI, 16/32 DHI, 64 closure, 128 missing, 256 stuck, 512 gap)", out.display());
     }
     Ok(())
 }

@@ -111,6 +111,11 @@ pub fn bsrn_limits(zenith_rad: f64, earth_sun_au: f64) -> BsrnLimits {
 
 /// Flags of one row of GHI, DNI, DHI (NaN = missing) at a zenith and Earth–Sun distance.
 pub fn bsrn_flags(ghi: f64, dni: f64, dhi: f64, zenith_rad: f64, earth_sun_au: f64) -> u16 {
+    bsrn_flags_opt(ghi, Some(dni), Some(dhi), zenith_rad, earth_sun_au)
+}
+
+/// [`bsrn_flags`] when DNI and DHI may not be measured at all (`None`: not judged).
+pub fn bsrn_flags_opt(ghi: f64, dni: Option<f64>, dhi: Option<f64>, zenith_rad: f64, earth_sun_au: f64) -> u16 {
     if zenith_rad >= std::f64::consts::FRAC_PI_2 {
         return 0;
     }
@@ -129,10 +134,14 @@ pub fn bsrn_flags(ghi: f64, dni: f64, dhi: f64, zenith_rad: f64, earth_sun_au: f
         }
     };
     test(ghi, l.ghi_physical, l.ghi_rare, FLAG_GHI_PHYSICAL, FLAG_GHI_RARE);
-    test(dni, l.dni_physical, l.dni_rare, FLAG_DNI_PHYSICAL, FLAG_DNI_RARE);
-    test(dhi, l.dhi_physical, l.dhi_rare, FLAG_DHI_PHYSICAL, FLAG_DHI_RARE);
+    if let Some(dni) = dni {
+        test(dni, l.dni_physical, l.dni_rare, FLAG_DNI_PHYSICAL, FLAG_DNI_RARE);
+    }
+    if let Some(dhi) = dhi {
+        test(dhi, l.dhi_physical, l.dhi_rare, FLAG_DHI_PHYSICAL, FLAG_DHI_RARE);
+    }
     let mu = zenith_rad.cos();
-    let sum = dni * mu + dhi;
+    let sum = dni.unwrap_or(f64::NAN) * mu + dhi.unwrap_or(f64::NAN);
     if ghi.is_finite() && sum.is_finite() && sum > 50.0 {
         let z = zenith_rad.to_degrees();
         let lim = if z < 75.0 { 0.08 } else { 0.15 };
@@ -151,13 +160,24 @@ pub fn qc_series(
     dhi: &[f64],
     observer: &crate::sun::Observer,
 ) -> Vec<u16> {
+    qc_series_opt(times, ghi, Some(dni), Some(dhi), observer)
+}
+
+/// [`qc_series`] when DNI and DHI may not be measured (a plant's pyranometers give GHI only).
+pub fn qc_series_opt(
+    times: &[chrono::DateTime<chrono::Utc>],
+    ghi: &[f64],
+    dni: Option<&[f64]>,
+    dhi: Option<&[f64]>,
+    observer: &crate::sun::Observer,
+) -> Vec<u16> {
     let n = times.len();
     let mut flags = vec![0u16; n];
     let mut day = vec![false; n];
     for i in 0..n {
         if let Ok(sp) = crate::sun::position(&times[i], observer) {
             day[i] = sp.zenith_rad < std::f64::consts::FRAC_PI_2;
-            flags[i] = bsrn_flags(ghi[i], dni[i], dhi[i], sp.zenith_rad, sp.earth_sun_distance_au);
+            flags[i] = bsrn_flags_opt(ghi[i], dni.map(|d| d[i]), dhi.map(|d| d[i]), sp.zenith_rad, sp.earth_sun_distance_au);
         }
     }
     // Gaps.
@@ -172,7 +192,7 @@ pub fn qc_series(
         }
     }
     // Stuck values.
-    for series in [ghi, dni, dhi] {
+    for series in [Some(ghi), dni, dhi].into_iter().flatten() {
         let mut start = 0;
         for i in 1..=n {
             let same = i < n && series[i] == series[start] && series[i].is_finite();

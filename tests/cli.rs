@@ -241,3 +241,34 @@ fn calibrate_refuses_sunless_frames_and_camera_round_trips() {
     let v: Vec<f64> = back.lines().nth(1).unwrap().split(',').map(|x| x.parse().unwrap()).collect();
     assert!((v[0] - 40.0).abs() < 1e-3 && (v[1] - 123.0).abs() < 1e-3, "{back}");
 }
+
+/// `qc` flags an impossible pyranometer reading and a stuck run, and writes per-row flags.
+#[test]
+fn qc_flags_bad_measurements() {
+    let d = tempfile::tempdir().unwrap();
+    let text = std::fs::read_to_string(demo().join("measurements.csv")).unwrap();
+    let mut lines: Vec<String> = text.lines().map(String::from).collect();
+    // Row 10 (after the comment and header): an impossible GHI in the first pyranometer column.
+    let mut cells: Vec<String> = lines[12].split(',').map(String::from).collect();
+    cells[1] = "3000.0".into();
+    lines[12] = cells.join(",");
+    // Rows 20–31: the second column stuck.
+    for l in lines.iter_mut().skip(22).take(12) {
+        let mut c: Vec<String> = l.split(',').map(String::from).collect();
+        c[2] = "432.0".into();
+        *l = c.join(",");
+    }
+    let p = d.path().join("m.csv");
+    std::fs::write(&p, lines.join("\n") + "\n").unwrap();
+    let out = d.path().join("flags.csv");
+    let o = bin()
+        .args(["qc", "--site", demo().join("site.toml").to_str().unwrap(), "--measurements", p.to_str().unwrap(), "--out", out.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let s = String::from_utf8_lossy(&o.stdout);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(s.contains("ghi_physically_impossible 1"), "{s}");
+    assert!(s.contains("stuck 12"), "{s}");
+    let flags = std::fs::read_to_string(out).unwrap();
+    assert_eq!(flags.lines().count(), 1 + lines.len() - 2);
+}
