@@ -469,7 +469,10 @@ impl Nowcaster {
         let mut rows = vec![];
         for (col, pos) in cols {
             let y = m.at(*col, t);
-            if !y.is_finite() {
+            // Readings outside the BSRN physically-possible or extremely-rare GHI limits are not
+            // learnt from.
+            let bad = crate::qc::FLAG_GHI_PHYSICAL | crate::qc::FLAG_GHI_RARE;
+            if !y.is_finite() || crate::qc::bsrn_flags_opt(y, None, None, sun.zenith_rad, sun.earth_sun_distance_au) & bad != 0 {
                 continue;
             }
             let q = sun_ray_plane_point(*pos, cbh, self.site.file.camera.position_m, sun.apparent_zenith_rad, sun.azimuth_rad);
