@@ -456,6 +456,7 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
     };
     let s = crate::replay::replay(&opts)?;
     print_replay_summary(&s);
+    let mut eval = None;
     if data.join("truth").join("irradiance.csv").is_file() {
         let e = crate::verify::evaluate(&data, &a.out).map_err(|e| anyhow::anyhow!("{e}"))?;
         let layers = crate::verify::read_rows(&data.join("truth").join("layers.csv"))?;
@@ -468,10 +469,10 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
         let p = a.out.join("evaluation.json");
         crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
         crate::say!("wrote {}", p.display());
+        eval = Some(e);
     }
     crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
     let truth = crate::verify::Truth::read(&data.join("truth").join("irradiance.csv")).ok();
-    let eval = crate::verify::evaluate(&data, &a.out).ok();
     let r = crate::report::write_report(&a.out, truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)").map_err(|e| anyhow::anyhow!("{e}"))?;
     crate::say!("report: {}", r.display());
     Ok(())

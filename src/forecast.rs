@@ -388,8 +388,6 @@ pub struct TargetForecast {
 pub struct Forecast {
     /// Rows, horizon-major then block order, the plant last in each horizon.
     pub rows: Vec<TargetForecast>,
-    /// Per point and horizon GHI \[W m⁻²\] (points in block order), for maps and ensembles.
-    pub point_ghi_wm2: Vec<Vec<f32>>,
 }
 
 /// Cloud-plane point (east, north, relative to the camera) where the ray from ground point `p`
@@ -410,7 +408,6 @@ pub fn forecast(map: &CloudMap, input: &ForecastInput) -> Forecast {
 pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput) -> Forecast {
     let mut out = Forecast::default();
     let p = &input.params;
-    let n_points = input.plant.point_count();
     for &h in &input.horizons_s {
         let t = input.issue + Duration::seconds(h as i64);
         let Ok(sun) = position(&t, &input.observer) else { continue };
@@ -422,7 +419,6 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
         let blur_m = (p.blur_min_m.powi(2) + (input.sigma_mps * k).powi(2) + (p.blur_growth_mps * k).powi(2)).sqrt();
         let r_cells = blur_m / grid.cell_m;
         let dhi = clear.dhi_wm2 + input.diffuse_scale * input.cloud_fraction.clamp(0.0, 1.0) * p.diffuse_per_cover * clear.ghi_wm2;
-        let mut point_ghi = Vec::with_capacity(n_points);
         let mut plant_acc = [0f64; 6];
         let mut plant_power = 0.0;
         // Shift from a plant point to the cloud-map point its sun ray comes from (relative to the
@@ -467,7 +463,6 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
                 } else {
                     0.0
                 };
-                point_ghi.push(irr.ghi_wm2 as f32);
                 for (s, v) in acc.iter_mut().zip([irr.ghi_wm2, irr.dni_wm2, irr.dhi_wm2, poa, fb as u8 as f64, 1.0]) {
                     *s += v;
                 }
@@ -483,7 +478,6 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
         let mut pr = row("plant", h, t, &plant_acc, clear.ghi_wm2);
         pr.power_kw = plant_power;
         out.rows.push(pr);
-        out.point_ghi_wm2.push(point_ghi);
     }
     out
 }

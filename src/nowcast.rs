@@ -204,6 +204,7 @@ pub struct Nowcaster {
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
     gamma_cache: Option<(usize, [f32; 3], Vec<f32>)>,
+    image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
     /// Counters.
     pub counters: Counters,
 }
@@ -237,6 +238,7 @@ impl Nowcaster {
             irradiance,
             alarm: Default::default(),
             gamma_cache: None,
+            image_geometry: std::sync::OnceLock::new(),
             counters: Counters::default(),
         }
     }
@@ -254,6 +256,11 @@ impl Nowcaster {
     /// The plant.
     pub fn plant(&self) -> &Plant {
         &self.plant
+    }
+
+    /// Per-pixel geometry of the camera (for whole-image segmentation), computed on first use.
+    pub fn image_geometry(&self) -> &crate::segment::ImageGeometry {
+        self.image_geometry.get_or_init(|| crate::segment::ImageGeometry::from_camera(&self.site.camera, self.site.obstruction.as_ref()))
     }
 
     /// The site.
@@ -510,8 +517,4 @@ impl Nowcaster {
         }
     }
 
-    /// Build a transmittance map of a nowcast's cloud map with the current settings.
-    pub fn transmittance(&self, nc: &Nowcast) -> TransmittanceMap {
-        TransmittanceMap::new(&nc.map, &nc.irradiance)
-    }
 }

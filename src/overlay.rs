@@ -4,7 +4,7 @@ use image::{Rgb, RgbImage};
 
 use crate::forecast::sun_ray_plane_point;
 use crate::nowcast::{Nowcast, Nowcaster};
-use crate::segment::{Class, ImageGeometry, segment_image};
+use crate::segment::{Class, segment_image};
 
 /// Class tints (own palette): thin cloud amber, thick cloud violet.
 pub const THIN_TINT: [u8; 3] = [255, 196, 40];
@@ -114,9 +114,9 @@ pub fn shadow_map(nc: &Nowcast, nowcaster: &Nowcaster, size_px: u32) -> RgbImage
 /// Frame with classes beside the shadow map, as PNG bytes.
 pub fn overlay_png(frame: &RgbImage, nc: &Nowcast, nowcaster: &Nowcaster) -> Vec<u8> {
     let site = nowcaster.site();
-    let geom = ImageGeometry::from_camera(&site.camera, site.obstruction.as_ref());
+    let geom = nowcaster.image_geometry();
     let sd = nc.sun.direction_enu();
-    let seg = segment_image(frame, &geom, Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]), &site.file.segment, nowcaster.reference());
+    let seg = segment_image(frame, geom, Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]), &site.file.segment, nowcaster.reference());
     let left = class_overlay(frame, &seg.classes);
     let h = left.height();
     let right = shadow_map(nc, nowcaster, h);

@@ -234,8 +234,9 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
         let td = std::time::Instant::now();
         let decoded = image::open(&f.path);
         let dms = td.elapsed().as_secs_f64() * 1000.0;
-        let result = match decoded {
-            Ok(img) => nowcaster.step(&Frame { time: f.time, image: img.to_rgb8() }),
+        let frame = decoded.map(|img| Frame { time: f.time, image: img.to_rgb8() });
+        let result = match &frame {
+            Ok(fr) => nowcaster.step(fr),
             Err(e) => Err(nowcaster.reject_unreadable(&e.to_string())),
         };
         match result {
@@ -286,8 +287,8 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                     last_motion = nc.motion.map(|m| m.v_mps);
                 }
                 if opts.overlays_every > 0 && i % opts.overlays_every == 0 {
-                    if let Ok(img) = image::open(&f.path) {
-                        let png = crate::overlay::overlay_png(&img.to_rgb8(), &nc, &nowcaster);
+                    if let Ok(fr) = &frame {
+                        let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
                         let p = opts.out.join("overlays").join(format!("{}.png", name.rsplit_once('.').map(|x| x.0).unwrap_or(&name)));
                         write_atomic(&p, &png).map_err(|source| ReplayError::Write { path: p.clone(), source })?;
                     }

@@ -14,7 +14,7 @@
 //!   Academic Press, 2013, ch. 8.
 
 use std::collections::{BTreeMap, HashMap};
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
 use chrono::{DateTime, Utc};
 use serde::Serialize;
@@ -603,11 +603,6 @@ pub fn print_evaluation(e: &Evaluation) {
         100.0 * s.circumsolar_accuracy,
         100.0 * s.binary_accuracy
     );
-}
-
-/// Where a sequence's truth lives.
-pub fn truth_dir(sequence: &Path) -> PathBuf {
-    sequence.join("truth")
 }
 
 #[cfg(test)]

@@ -90,7 +90,6 @@ fn night_frames_are_refused_with_a_count() {
     let (s, frames) = clear_day(&cam("equidistant", vec![], [0.0, 0.0], 0.0, 0.0, 0.0), "2026-06-14T21:00:00Z", 3.0);
     let e = calibrate(&frames, &s.world.observer, 20).unwrap_err().to_string();
     assert!(e.starts_with("0 sun detections, 20 needed"), "{e}");
-    let _ = Duration::zero();
 }
 
 /// The reported standard errors are honest: with detections simulated from a known camera plus

@@ -244,7 +244,6 @@ fn engine_loop(
         let present: HashSet<&PathBuf> = frames.iter().map(|f| &f.path).collect();
         seen.retain(|p| present.contains(p));
         sizes.retain(|p, _| present.contains(p));
-        let last = shared.lock().ok().and_then(|s| s.last_time);
         // Complete files: size unchanged since the previous poll.
         let mut ready = vec![];
         for f in frames.iter().filter(|f| !seen.contains(&f.path)) {
@@ -266,8 +265,9 @@ fn engine_loop(
         let skipped = ready.len() - 1;
         let Some(newest) = newest else { continue };
         let t0 = std::time::Instant::now();
-        let result = match image::open(&newest.path) {
-            Ok(img) => nc.step(&Frame { time: newest.time, image: img.to_rgb8() }),
+        let frame = image::open(&newest.path).map(|img| Frame { time: newest.time, image: img.to_rgb8() });
+        let result = match &frame {
+            Ok(fr) => nc.step(fr),
             Err(e) => Err(nc.reject_unreadable(&e.to_string())),
         };
         let latency = t0.elapsed().as_secs_f64() * 1000.0;
@@ -295,8 +295,8 @@ fn engine_loop(
                 }
                 events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name()}).to_string());
                 if opts.overlay_every > 0 && (processed - 1) % opts.overlay_every == 0 {
-                    if let Ok(img) = image::open(&newest.path) {
-                        overlay = Some(crate::overlay::overlay_png(&img.to_rgb8(), n, &nc));
+                    if let Ok(fr) = &frame {
+                        overlay = Some(crate::overlay::overlay_png(&fr.image, n, &nc));
                     }
                 }
             }
@@ -322,7 +322,6 @@ fn engine_loop(
                 s.overlay_png = overlay;
             }
         }
-        let _ = last;
         for e in events {
             let _ = tx.send(e);
         }

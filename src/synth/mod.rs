@@ -24,7 +24,7 @@ pub mod world;
 
 use std::path::{Path, PathBuf};
 
-use chrono::{DateTime, Duration, Utc};
+use chrono::{DateTime, Utc};
 use serde::{Deserialize, Serialize};
 
 use crate::camera::{Camera, Orientation, Projection};
@@ -515,7 +515,6 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         meas += &format!(",{:.1},{:.1}\n", 22.0 + 4.0 * m as f64 / minutes.max(1) as f64, 3.0);
     }
     w(out.join("measurements.csv"), meas.as_bytes())?;
-    let _ = Duration::zero();
     Ok(WriteSummary { frames: times.len(), bytes, render_s_per_frame: render_s })
 }
 
