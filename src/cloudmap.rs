@@ -206,41 +206,76 @@ impl CloudMap {
     }
 }
 
-/// Angle to the sun \[°\] of every cell of a table (180 without a sun).
-pub fn cell_gamma_deg(lut: &Lut, sun_dir: Option<[f32; 3]>) -> Vec<f32> {
-    lut.dir.iter().map(|d| gamma_deg(*d, sun_dir)).collect()
+/// Per-cell segmentation inputs that change only with the sun: each cell's angle to the sun \[°\]
+/// (180 without a sun) and its parametric default reference R/B. They change slowly and are
+/// reused for a few frames.
+#[derive(Debug, Clone)]
+pub struct CellSky {
+    /// Angle to the sun per cell \[°\].
+    pub gamma_deg: Vec<f32>,
+    /// Parametric default reference R/B per cell ([`SegmentParams::default_reference`]).
+    pub default_rb: Vec<f32>,
+    /// Library bin per cell ([`crate::segment::lib_index`]).
+    pub bin: Vec<u16>,
+    /// Whether the cell is judged by its ratio alone ([`SegmentParams::plain_sky`]).
+    pub plain: Vec<bool>,
+}
+
+impl CellSky {
+    /// For a table, a sun direction and the segmentation settings.
+    pub fn new(lut: &Lut, sun_dir: Option<[f32; 3]>, params: &SegmentParams) -> CellSky {
+        // Cells the camera does not see are never classified: they keep placeholders.
+        let n = lut.pixel.len();
+        let mut sky = CellSky { gamma_deg: vec![180.0; n], default_rb: vec![0.0; n], bin: vec![0; n], plain: vec![false; n] };
+        for k in 0..n {
+            if lut.pixel[k] == NO_PIXEL {
+                continue;
+            }
+            let (z, g) = (lut.z_deg[k], gamma_deg(lut.dir[k], sun_dir));
+            sky.gamma_deg[k] = g;
+            sky.default_rb[k] = params.default_reference(z, g);
+            sky.bin[k] = crate::segment::lib_index(z, g) as u16;
+            sky.plain[k] = params.plain_sky(z, g);
+        }
+        sky
+    }
 }
 
 /// Build a frame's cloud map: read each cell's pixel, estimate the frame's reference offset from
 /// them, and classify.
 pub fn build_map(img: &image::RgbImage, lut: &Lut, sun_dir: Option<[f32; 3]>, params: &SegmentParams, reference: &Reference) -> CloudMap {
-    build_map_with(img, lut, &cell_gamma_deg(lut, sun_dir), params, reference)
+    build_map_with(img, lut, &CellSky::new(lut, sun_dir, params), params, reference)
 }
 
-/// [`build_map`] with the cells' sun angles given (they change slowly and can be reused for a
-/// few frames).
-pub fn build_map_with(img: &image::RgbImage, lut: &Lut, gamma: &[f32], params: &SegmentParams, reference: &Reference) -> CloudMap {
+/// [`build_map`] with the cells' sun angles and default references given.
+pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> CloudMap {
     let raw = img.as_raw();
     let n = lut.pixel.len();
     let px = |p: u32| {
         let i = p as usize * 3;
         [raw[i], raw[i + 1], raw[i + 2]]
     };
-    let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: gamma[k] };
-    let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (px(lut.pixel[k]), geom(k)));
-    let fr = reference.for_frame(params, sample);
+    let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] };
+    let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (px(lut.pixel[k]), geom(k), sky.default_rb[k]));
+    let fr = reference.for_frame_with(params, sample);
     let mut score = vec![f32::NAN; n];
     let mut class = vec![0u8; n];
+    let mut in_view = vec![false; n];
     for k in 0..n {
         let p = lut.pixel[k];
         if p == NO_PIXEL {
             continue;
         }
-        let (s, c) = fr.classify(px(p), geom(k));
+        in_view[k] = true;
+        let (s, c) = if sky.plain[k] {
+            fr.classify_plain(px(p), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]))
+        } else {
+            let (s, c) = fr.classify_with(px(p), geom(k), sky.default_rb[k]);
+            (s, c as u8)
+        };
         score[k] = s;
-        class[k] = c as u8;
+        class[k] = c;
     }
-    let in_view = lut.pixel.iter().map(|p| *p != NO_PIXEL).collect();
     CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset }
 }
 

@@ -197,13 +197,17 @@ pub fn block_plane(mount: &Mount, sun_zenith_rad: f64, sun_azimuth_rad: f64) -> 
 #[derive(Debug, Clone)]
 pub struct TransmittanceMap {
     n: usize,
-    sums: [Vec<f64>; 3],
-    count: Vec<u32>,
+    /// Summed-area table, `(n + 1)²` entries of (clear, thin, thick) shares in units of
+    /// 1/[`SHARE_UNIT`] and the known-cell count: one cache line per corner, exact integer sums.
+    sat: Vec<[i32; 4]>,
     beams: [f64; 3],
     /// Mean transmittance of the known cells.
     pub mean: f64,
     total_shares: [f64; 3],
 }
+
+/// Class shares are summed as integers in units of 1/1024 (a 256² map sums to under 2³¹).
+const SHARE_UNIT: f64 = 1024.0;
 
 impl TransmittanceMap {
     /// Build from a map and per-class transmittances. Unknown cells that the camera sees (the sun's
@@ -221,32 +225,34 @@ impl TransmittanceMap {
                 Class::Unknown => [f64::NAN; 3],
             })
             .collect();
-        // Breadth-first fill: each unknown in-view cell takes the mean shares of its neighbours
-        // already known or filled when the front reaches it.
-        let mut front: std::collections::VecDeque<usize> = (0..n * n).filter(|&k| !sh[k][0].is_nan()).collect();
-        let mut queued: Vec<bool> = sh.iter().map(|v| !v[0].is_nan()).collect();
-        while let Some(k) = front.pop_front() {
+        let known = |v: &[f64; 3]| !v[0].is_nan();
+        let in_view = |m: usize| map.in_view.get(m).copied().unwrap_or(false);
+        let neighbours = |k: usize| {
             let (i, j) = ((k % n) as i64, (k / n) as i64);
-            for (di, dj) in [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)] {
+            [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)].into_iter().filter_map(move |(di, dj)| {
                 let (a, b) = (i + di, j + dj);
-                if a < 0 || b < 0 || a >= n as i64 || b >= n as i64 {
-                    continue;
-                }
-                let m = b as usize * n + a as usize;
-                if queued[m] || !map.in_view.get(m).copied().unwrap_or(false) {
+                (a >= 0 && b >= 0 && a < n as i64 && b < n as i64).then_some(b as usize * n + a as usize)
+            })
+        };
+        // Breadth-first fill: each unknown in-view cell takes the mean shares of its neighbours
+        // already known or filled when the front reaches it. The front starts at the known cells
+        // that border an unknown in-view cell.
+        let mut queued: Vec<bool> = sh.iter().map(known).collect();
+        let mut front: std::collections::VecDeque<usize> =
+            (0..n * n).filter(|&k| queued[k] && neighbours(k).any(|m| !queued[m] && in_view(m))).collect();
+        while let Some(k) = front.pop_front() {
+            for m in neighbours(k) {
+                if queued[m] || !in_view(m) {
                     continue;
                 }
                 let (mut s, mut c) = ([0.0; 3], 0.0);
-                for (ei, ej) in [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)] {
-                    let (x, y) = (a + ei, b + ej);
-                    if x >= 0 && y >= 0 && x < n as i64 && y < n as i64 {
-                        let v = sh[y as usize * n + x as usize];
-                        if !v[0].is_nan() {
-                            for q in 0..3 {
-                                s[q] += v[q];
-                            }
-                            c += 1.0;
+                for e in neighbours(m) {
+                    let v = sh[e];
+                    if known(&v) {
+                        for q in 0..3 {
+                            s[q] += v[q];
                         }
+                        c += 1.0;
                     }
                 }
                 sh[m] = [s[0] / c, s[1] / c, s[2] / c];
@@ -254,53 +260,52 @@ impl TransmittanceMap {
                 front.push_back(m);
             }
         }
-        let mut sums = [vec![0f64; w * w], vec![0f64; w * w], vec![0f64; w * w]];
-        let mut count = vec![0u32; w * w];
+        let mut sat = vec![[0i32; 4]; w * w];
         for j in 0..n {
-            let (mut rs, mut rc) = ([0f64; 3], 0u32);
+            let mut rs = [0i32; 4];
             for i in 0..n {
                 let v = sh[j * n + i];
-                if !v[0].is_nan() {
+                if known(&v) {
                     for q in 0..3 {
-                        rs[q] += v[q];
+                        rs[q] += (v[q] * SHARE_UNIT + 0.5) as i32; // shares are non-negative
                     }
-                    rc += 1;
+                    rs[3] += 1;
                 }
-                for q in 0..3 {
-                    sums[q][(j + 1) * w + i + 1] = sums[q][j * w + i + 1] + rs[q];
-                }
-                count[(j + 1) * w + i + 1] = count[j * w + i + 1] + rc;
+                let up = sat[j * w + i + 1];
+                sat[(j + 1) * w + i + 1] = [up[0] + rs[0], up[1] + rs[1], up[2] + rs[2], up[3] + rs[3]];
             }
         }
-        let total = count[w * w - 1];
-        let total_shares = if total > 0 { [0, 1, 2].map(|q| sums[q][w * w - 1] / total as f64) } else { [f64::NAN; 3] };
+        let total = sat[w * w - 1];
+        let total_shares = if total[3] > 0 { [0, 1, 2].map(|q| total[q] as f64 / SHARE_UNIT / total[3] as f64) } else { [f64::NAN; 3] };
         let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
         let mean = total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum();
-        TransmittanceMap { n, sums, count, beams, mean, total_shares }
+        TransmittanceMap { n, sat, beams, mean, total_shares }
     }
 
     /// Class shares (clear, thin, thick) over the box of half-width `r` cells around continuous
     /// cell coordinates; `None` when the box holds no known cell or its centre is off the map.
+    #[inline]
     pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; 3]> {
         let n = self.n as f64;
         if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
             return None;
         }
-        let lo = |c: f64| ((c - r).round().max(0.0) as usize).min(self.n);
-        let hi = |c: f64| (((c + r).round() + 1.0).max(0.0) as usize).min(self.n);
+        // Rounding half up by truncation: every negative bound clamps to 0 either way (and
+        // `f64::round` is a library call on baseline x86-64).
+        let lo = |c: f64| ((c - r + 0.5).max(0.0) as usize).min(self.n);
+        let hi = |c: f64| ((c + r + 1.5).max(0.0) as usize).min(self.n);
         let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
         if x1 <= x0 || y1 <= y0 {
             return None;
         }
         let w = self.n + 1;
-        let c = self.count[y1 * w + x1] as i64 - self.count[y0 * w + x1] as i64 - self.count[y1 * w + x0] as i64 + self.count[y0 * w + x0] as i64;
-        if c <= 0 {
+        let (a, b, c, d) = (self.sat[y1 * w + x1], self.sat[y0 * w + x1], self.sat[y1 * w + x0], self.sat[y0 * w + x0]);
+        let cnt = a[3] - b[3] - c[3] + d[3];
+        if cnt <= 0 {
             return None;
         }
-        let s = |q: usize| {
-            let t = &self.sums[q];
-            (t[y1 * w + x1] - t[y0 * w + x1] - t[y1 * w + x0] + t[y0 * w + x0]) / c as f64
-        };
+        let f = 1.0 / (SHARE_UNIT * cnt as f64);
+        let s = |q: usize| (a[q] - b[q] - c[q] + d[q]) as f64 * f;
         Some([s(0), s(1), s(2)])
     }
 
@@ -310,6 +315,7 @@ impl TransmittanceMap {
     }
 
     /// Mean transmittance over a box for given per-class transmittances (clear, thin, thick).
+    #[inline]
     pub fn box_mean_with(&self, cx: f64, cy: f64, r: f64, beams: [f64; 3]) -> Option<f64> {
         self.box_shares(cx, cy, r).map(|s| s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2])
     }
@@ -318,6 +324,35 @@ impl TransmittanceMap {
     pub fn mean_with(&self, beams: [f64; 3]) -> f64 {
         self.total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum()
     }
+}
+
+/// The sun and the clear sky at one forecast horizon (shared by the central forecast and every
+/// ensemble member).
+#[derive(Debug, Clone, Copy)]
+pub struct HorizonSky {
+    /// Horizon \[s\].
+    pub horizon_s: u32,
+    /// Target time.
+    pub time: DateTime<Utc>,
+    /// Sun position.
+    pub sun: crate::sun::SunPosition,
+    /// Clear-sky irradiance.
+    pub clear: Irradiance,
+}
+
+/// The sun and clear sky at every horizon of a forecast (horizons whose sun cannot be computed are
+/// left out).
+pub fn horizon_skies(input: &ForecastInput) -> Vec<HorizonSky> {
+    input
+        .horizons_s
+        .iter()
+        .filter_map(|&h| {
+            let t = input.issue + Duration::seconds(h as i64);
+            let sun = position(&t, &input.observer).ok()?;
+            let clear = clear_sky(&sun, input.altitude_m, input.clear_model);
+            Some(HorizonSky { horizon_s: h, time: t, sun, clear })
+        })
+        .collect()
 }
 
 /// Everything a forecast needs besides the map.
@@ -406,12 +441,25 @@ pub fn forecast(map: &CloudMap, input: &ForecastInput) -> Forecast {
 
 /// [`forecast`] from a prebuilt transmittance map (ensemble members share one).
 pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput) -> Forecast {
+    forecast_skies(tm, grid, input, &horizon_skies(input))
+}
+
+/// [`forecast_with`] with the horizons' sun and clear sky given.
+///
+/// Per point only the beam transmittance is looked up: the diffuse is the same for every point at a
+/// horizon, and GHI and the Hay–Davies plane-of-array terms are linear in DNI and DHI, so a block's
+/// means follow from its mean transmittance exactly.
+pub fn forecast_skies(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
     let mut out = Forecast::default();
+    out.rows.reserve(skies.len() * (input.plant.blocks.len() + 1));
     let p = &input.params;
-    for &h in &input.horizons_s {
-        let t = input.issue + Duration::seconds(h as i64);
-        let Ok(sun) = position(&t, &input.observer) else { continue };
-        let clear = clear_sky(&sun, input.altitude_m, input.clear_model);
+    let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
+    let mean = tm.mean_with(beams);
+    let mean = if mean.is_nan() { p.beam_clear } else { mean };
+    let wp = p.fallback_persistence_weight;
+    let stride = input.point_stride.max(1);
+    for hs in skies {
+        let (h, t, sun, clear) = (hs.horizon_s, hs.time, &hs.sun, hs.clear);
         let (z, a) = (sun.apparent_zenith_rad, sun.azimuth_rad);
         let cz = z.cos();
         let up = cz > 0.0 && clear.ghi_wm2 > 0.0;
@@ -425,10 +473,6 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
         // camera, advected back by the motion): the same for every point at this horizon.
         let off = sun_ray_plane_point([0.0, 0.0], input.cbh_m, input.camera_m, z, a);
         let adv = [off[0] - input.v_mps[0] * k, off[1] - input.v_mps[1] * k];
-        let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
-        let mean = tm.mean_with(beams);
-        let mean = if mean.is_nan() { p.beam_clear } else { mean };
-        let wp = p.fallback_persistence_weight;
         let dni_extra = sun.dni_extra_wm2();
         for b in &input.plant.blocks {
             let (tilt, saz) = block_plane(&b.mount, z, a);
@@ -437,36 +481,36 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             let rb = cos_aoi.max(0.0) / cz.max(0.01745);
             let iso = 0.5 * (1.0 + tilt.cos());
             let ground = p.albedo * 0.5 * (1.0 - tilt.cos());
-            let mut acc = [0f64; 6];
-            for pt in b.points_m.iter().step_by(input.point_stride.max(1)) {
-                let (irr, fb) = if up {
-                    let (sx, sy) = grid.to_cell([pt[0] + adv[0], pt[1] + adv[1]]);
-                    let (tr, fb) = match tm.box_mean_with(sx, sy, r_cells, beams) {
-                        Some(v) => (v, false),
-                        None => {
-                            let (qx, qy) = grid.to_cell([pt[0] + off[0], pt[1] + off[1]]);
-                            let now = tm.box_mean_with(qx, qy, r_cells, beams).unwrap_or(mean);
-                            (wp * now + (1.0 - wp) * mean, true)
-                        }
-                    };
-                    let dni = clear.dni_wm2 * (tr * input.beam_scale).min(1.3);
-                    (Irradiance { ghi_wm2: dni * cz + dhi, dni_wm2: dni, dhi_wm2: dhi }, fb)
-                } else {
-                    (Irradiance::default(), false)
-                };
-                let poa = if up {
-                    let ai = irr.dni_wm2 / dni_extra;
-                    (irr.dni_wm2 * cos_aoi).max(0.0)
-                        + (irr.dhi_wm2 * (1.0 - ai) * iso).max(0.0)
-                        + (irr.dhi_wm2 * ai * rb).max(0.0)
-                        + irr.ghi_wm2 * ground
-                } else {
-                    0.0
-                };
-                for (s, v) in acc.iter_mut().zip([irr.ghi_wm2, irr.dni_wm2, irr.dhi_wm2, poa, fb as u8 as f64, 1.0]) {
-                    *s += v;
+            // Sum of the points' beam transmittance (as used: scaled and capped), fallbacks, points.
+            let (mut tr_sum, mut fb_sum, mut count) = (0f64, 0usize, 0usize);
+            for pt in b.points_m.iter().step_by(stride) {
+                count += 1;
+                if !up {
+                    continue;
                 }
+                let (sx, sy) = grid.to_cell([pt[0] + adv[0], pt[1] + adv[1]]);
+                let tr = match tm.box_mean_with(sx, sy, r_cells, beams) {
+                    Some(v) => v,
+                    None => {
+                        let (qx, qy) = grid.to_cell([pt[0] + off[0], pt[1] + off[1]]);
+                        let now = tm.box_mean_with(qx, qy, r_cells, beams).unwrap_or(mean);
+                        fb_sum += 1;
+                        wp * now + (1.0 - wp) * mean
+                    }
+                };
+                tr_sum += (tr * input.beam_scale).min(1.3);
             }
+            let nf = count.max(1) as f64;
+            let acc = if up {
+                let dni = clear.dni_wm2 * tr_sum / nf;
+                let ghi = dni * cz + dhi;
+                let ai = dni / dni_extra;
+                // Each point's terms are non-negative, so the mean of the sums is the sum of the means.
+                let poa = (dni * cos_aoi).max(0.0) + (dhi * (1.0 - ai) * iso).max(0.0) + (dhi * ai * rb).max(0.0) + ghi * ground;
+                [ghi * nf, dni * nf, dhi * nf, poa * nf, fb_sum as f64, nf]
+            } else {
+                [0.0, 0.0, 0.0, 0.0, 0.0, nf]
+            };
             for (s, v) in plant_acc.iter_mut().zip(acc) {
                 *s += v;
             }
@@ -565,6 +609,7 @@ pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
     let seed = input.issue.timestamp_millis() as u64;
     let sigma = input.sigma_mps.max(p.ensemble_motion_sigma_mps);
     use rayon::prelude::*;
+    let skies = horizon_skies(input);
     let members: Vec<Forecast> = (0..p.ensemble_members)
         .into_par_iter()
         .map(|m| {
@@ -584,7 +629,7 @@ pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             // Members are sharp: their spread, not a blur, carries the uncertainty.
             inp.sigma_mps = 0.0;
             inp.params.blur_growth_mps = 0.0;
-            forecast_with(tm, grid, &inp)
+            forecast_skies(tm, grid, &inp, &skies)
         })
         .collect();
     let bands = (0..central.rows.len())

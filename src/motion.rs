@@ -159,22 +159,99 @@ fn downsample4(m: &[f32], n: usize) -> (Vec<f32>, usize) {
     (out, nc)
 }
 
-/// A feature map split into values (unknown set to zero) and a 0/1 mask, for branch-free sums.
+/// A feature map split into values (unknown set to zero) and a 0/1 mask, for branch-free sums,
+/// with summed-area tables of the values, their squares and the mask: a window that is fully known
+/// in both maps gets its sums in O(1) and only the cross term is summed cell by cell.
 struct Plane {
+    n: usize,
     v: Vec<f32>,
     m: Vec<f32>,
+    s1: Vec<f64>,
+    s2: Vec<f64>,
+    cnt: Vec<u32>,
 }
 
 impl Plane {
-    fn new(f: &[f32]) -> Plane {
-        Plane { v: f.iter().map(|x| if x.is_nan() { 0.0 } else { *x }).collect(), m: f.iter().map(|x| if x.is_nan() { 0.0 } else { 1.0 }).collect() }
+    fn new(f: &[f32], n: usize) -> Plane {
+        let v: Vec<f32> = f.iter().map(|x| if x.is_nan() { 0.0 } else { *x }).collect();
+        let m: Vec<f32> = f.iter().map(|x| if x.is_nan() { 0.0 } else { 1.0 }).collect();
+        let w = n + 1;
+        let (mut s1, mut s2, mut cnt) = (vec![0f64; w * w], vec![0f64; w * w], vec![0u32; w * w]);
+        for j in 0..n {
+            let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
+            for i in 0..n {
+                let x = v[j * n + i] as f64;
+                r1 += x;
+                r2 += x * x;
+                rc += m[j * n + i] as u32;
+                s1[(j + 1) * w + i + 1] = s1[j * w + i + 1] + r1;
+                s2[(j + 1) * w + i + 1] = s2[j * w + i + 1] + r2;
+                cnt[(j + 1) * w + i + 1] = cnt[j * w + i + 1] + rc;
+            }
+        }
+        Plane { n, v, m, s1, s2, cnt }
     }
+
+    /// Sums of values, squares and known cells over the window of side `b` at `(x, y)`.
+    #[inline]
+    fn window(&self, x: usize, y: usize, b: usize) -> (f64, f64, u32) {
+        let w = self.n + 1;
+        let (a, c, d, e) = (y * w + x, y * w + x + b, (y + b) * w + x, (y + b) * w + x + b);
+        (
+            self.s1[e] - self.s1[c] - self.s1[d] + self.s1[a],
+            self.s2[e] - self.s2[c] - self.s2[d] + self.s2[a],
+            self.cnt[e] + self.cnt[a] - self.cnt[c] - self.cnt[d],
+        )
+    }
+}
+
+/// Dot product in eight lanes (vectorizes).
+#[inline]
+fn dot(a: &[f32], b: &[f32]) -> f32 {
+    let mut acc = [0f32; 8];
+    let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
+        for k in 0..8 {
+            acc[k] += x[k] * y[k];
+        }
+    }
+    let mut s: f32 = acc.iter().sum();
+    for (x, y) in ra.iter().zip(rb) {
+        s += x * y;
+    }
+    s
 }
 
 /// NCC of block `a` (side `b`, top-left `(ax, ay)` in map `pa`) against map `pb` displaced by
 /// `(dx, dy)`, over cells known in both; `None` when too few overlap.
 #[allow(clippy::too_many_arguments)]
 fn ncc(pa: &Plane, pb: &Plane, n: usize, ax: usize, ay: usize, b: usize, dx: i64, dy: i64, min_pairs: usize) -> Option<f64> {
+    // Fast path: the displaced block lies on the map and both windows are fully known.
+    let (bx, by) = (ax as i64 + dx, ay as i64 + dy);
+    if bx >= 0 && by >= 0 && bx as usize + b <= n && by as usize + b <= n {
+        let (bx, by) = (bx as usize, by as usize);
+        let (sa, saa, ka) = pa.window(ax, ay, b);
+        let (sb, sbb, kb) = pb.window(bx, by, b);
+        if ka as usize == b * b && kb as usize == b * b {
+            let sw = (b * b) as f64;
+            if (sw as usize) < min_pairs {
+                return None;
+            }
+            let mut sab = 0f64;
+            for j in 0..b {
+                let (ra, rb) = ((ay + j) * n + ax, (by + j) * n + bx);
+                sab += dot(&pa.v[ra..ra + b], &pb.v[rb..rb + b]) as f64;
+            }
+            let cov = sab - sa * sb / sw;
+            let va = saa - sa * sa / sw;
+            let vb = sbb - sb * sb / sw;
+            if va <= 1e-9 || vb <= 1e-9 {
+                return None;
+            }
+            return Some(cov / (va * vb).sqrt());
+        }
+    }
     let (mut sw, mut sa, mut sb, mut saa, mut sbb, mut sab) = (0f64, 0f64, 0f64, 0f64, 0f64, 0f64);
     // Columns of the block that stay on the map after the shift.
     let i0 = (-(ax as i64 + dx)).max(0) as usize;
@@ -192,23 +269,39 @@ fn ncc(pa: &Plane, pb: &Plane, n: usize, ax: usize, ay: usize, b: usize, dx: i64
         let (av, am) = (&pa.v[ra + i0..ra + i1], &pa.m[ra + i0..ra + i1]);
         let rb0 = (rb + i0 as i64) as usize;
         let (bv, bm) = (&pb.v[rb0..rb0 + (i1 - i0)], &pb.m[rb0..rb0 + (i1 - i0)]);
-        let (mut w_, mut a_, mut b_, mut aa, mut bb, mut ab) = (0f32, 0f32, 0f32, 0f32, 0f32, 0f32);
-        for k in 0..av.len() {
+        // Six sums in eight lanes each, so that they vectorize.
+        let (mut lw, mut la, mut lb, mut laa, mut lbb, mut lab) = ([0f32; 8], [0f32; 8], [0f32; 8], [0f32; 8], [0f32; 8], [0f32; 8]);
+        let lanes = av.chunks_exact(8).zip(am.chunks_exact(8)).zip(bv.chunks_exact(8)).zip(bm.chunks_exact(8));
+        for (((a, am), b), bm) in lanes {
+            for l in 0..8 {
+                let w = am[l] * bm[l];
+                let (x, y) = (a[l] * w, b[l] * w);
+                lw[l] += w;
+                la[l] += x;
+                lb[l] += y;
+                laa[l] += x * a[l];
+                lbb[l] += y * b[l];
+                lab[l] += x * b[l];
+            }
+        }
+        for k in av.len() / 8 * 8..av.len() {
             let w = am[k] * bm[k];
             let (x, y) = (av[k] * w, bv[k] * w);
-            w_ += w;
-            a_ += x;
-            b_ += y;
-            aa += x * av[k];
-            bb += y * bv[k];
-            ab += x * bv[k];
+            lw[0] += w;
+            la[0] += x;
+            lb[0] += y;
+            laa[0] += x * av[k];
+            lbb[0] += y * bv[k];
+            lab[0] += x * bv[k];
         }
-        sw += w_ as f64;
-        sa += a_ as f64;
-        sb += b_ as f64;
-        saa += aa as f64;
-        sbb += bb as f64;
-        sab += ab as f64;
+        let acc = [lw, la, lb, laa, lbb, lab];
+        let t = acc.map(|v| v.iter().sum::<f32>() as f64);
+        sw += t[0];
+        sa += t[1];
+        sb += t[2];
+        saa += t[3];
+        sbb += t[4];
+        sab += t[5];
     }
     if (sw as usize) < min_pairs {
         return None;
@@ -292,8 +385,8 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
     let (fa, fb) = (feature_map(a, feature), feature_map(b, feature));
     let (ca, nc) = downsample4(&fa, n);
     let (cb, _) = downsample4(&fb, n);
-    let (ca, cb) = (Plane::new(&ca), Plane::new(&cb));
-    let (pa, pb) = (Plane::new(&fa), Plane::new(&fb));
+    let (ca, cb) = (Plane::new(&ca, nc), Plane::new(&cb, nc));
+    let (pa, pb) = (Plane::new(&fa, n), Plane::new(&fb, n));
     let bs = params.block_cells.min(n / 2).max(8) / 4 * 4;
     let reach_cells = params.max_speed_mps * dt_s / cell;
     let rc = (reach_cells / 4.0).ceil() as i64 + 1;
@@ -428,25 +521,16 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
     (vectors, tried)
 }
 
-#[inline]
-fn bilinear(m: &[f32], n: usize, x: f64, y: f64) -> f64 {
-    if x < 0.0 || y < 0.0 || x > (n - 1) as f64 || y > (n - 1) as f64 {
-        return f64::NAN;
-    }
-    let (x0, y0) = (x.floor() as usize, y.floor() as usize);
-    let (x1, y1) = ((x0 + 1).min(n - 1), (y0 + 1).min(n - 1));
-    let (fx, fy) = (x - x0 as f64, y - y0 as f64);
-    let v = |i: usize, j: usize| m[j * n + i] as f64;
-    (v(x0, y0) * (1.0 - fx) + v(x1, y0) * fx) * (1.0 - fy) + (v(x0, y1) * (1.0 - fx) + v(x1, y1) * fx) * fy
-}
-
 /// Sub-cell refinement of a block's displacement by Gauss–Newton on the squared difference,
 /// with the template's own gradient (Lucas & Kanade 1981; the inverse-compositional idea of Baker
-/// & Matthews 2004), starting from the NCC peak and kept within one cell of it.
+/// & Matthews 2004), starting from the NCC peak and kept within one cell of it. The displacement is
+/// the same for every cell, so each iteration samples the current map bilinearly with one set of
+/// weights, row by row.
 #[allow(clippy::too_many_arguments)]
 fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, d0: (f64, f64)) -> (f64, f64) {
-    // Template gradient and Hessian, once.
-    let mut cells = Vec::with_capacity(bs * bs);
+    // Template (value, gradient) per interior cell, zero where unknown; Hessian once.
+    let m = bs - 2;
+    let (mut ta, mut tgx, mut tgy) = (vec![0f32; m * m], vec![0f32; m * m], vec![0f32; m * m]);
     let (mut h11, mut h12, mut h22) = (0.0, 0.0, 0.0);
     for j in 1..bs - 1 {
         for i in 1..bs - 1 {
@@ -455,11 +539,12 @@ fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, 
             if a.is_nan() || l.is_nan() || r.is_nan() || u.is_nan() || d.is_nan() {
                 continue;
             }
-            let (gx, gy) = (0.5 * (r - l) as f64, 0.5 * (d - u) as f64);
-            h11 += gx * gx;
-            h12 += gx * gy;
-            h22 += gy * gy;
-            cells.push(((ax + i) as f64, (ay + j) as f64, a as f64, gx, gy));
+            let (gx, gy) = (0.5 * (r - l), 0.5 * (d - u));
+            h11 += (gx * gx) as f64;
+            h12 += (gx * gy) as f64;
+            h22 += (gy * gy) as f64;
+            let t = (j - 1) * m + i - 1;
+            (ta[t], tgx[t], tgy[t]) = (a, gx, gy);
         }
     }
     let det = h11 * h22 - h12 * h12;
@@ -468,15 +553,56 @@ fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, 
     }
     let mut d = d0;
     for _ in 0..4 {
-        let (mut b1, mut b2) = (0.0, 0.0);
-        for &(x, y, a, gx, gy) in &cells {
-            let b = bilinear(fb, n, x + d.0, y + d.1);
-            if b.is_nan() {
-                continue;
+        let (fx0, fy0) = (d.0.floor(), d.1.floor());
+        let (fx, fy) = ((d.0 - fx0) as f32, (d.1 - fy0) as f32);
+        let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
+        let (ox, oy) = (fx0 as i64, fy0 as i64);
+        // Interior columns whose four samples lie on the map.
+        let x_lo = (-(ax as i64 + 1 + ox)).max(0);
+        let x_hi = (n as i64 - 1 - (ax as i64 + 1 + ox)).min(m as i64);
+        let (mut b1, mut b2) = (0f64, 0f64);
+        if x_hi > x_lo {
+            let (x_lo, x_hi) = (x_lo as usize, x_hi as usize);
+            for j in 0..m {
+                let y0 = (ay + 1 + j) as i64 + oy;
+                if y0 < 0 || y0 + 1 >= n as i64 {
+                    continue;
+                }
+                let c0 = (ax as i64 + 1 + ox) as usize;
+                let r0 = &fb[y0 as usize * n + c0..];
+                let r1 = &fb[(y0 as usize + 1) * n + c0..];
+                let t = j * m;
+                let len = x_hi - x_lo;
+                let (p00, p10) = (&r0[x_lo..x_lo + len], &r0[x_lo + 1..x_lo + 1 + len]);
+                let (p01, p11) = (&r1[x_lo..x_lo + len], &r1[x_lo + 1..x_lo + 1 + len]);
+                let (va, vx, vy) = (&ta[t + x_lo..t + x_hi], &tgx[t + x_lo..t + x_hi], &tgy[t + x_lo..t + x_hi]);
+                // Eight lanes so that the sums vectorize; unknown cells give NaN and count zero.
+                let (mut s1, mut s2) = ([0f32; 8], [0f32; 8]);
+                let lanes = p00
+                    .chunks_exact(8)
+                    .zip(p10.chunks_exact(8))
+                    .zip(p01.chunks_exact(8))
+                    .zip(p11.chunks_exact(8))
+                    .zip(va.chunks_exact(8))
+                    .zip(vx.chunks_exact(8))
+                    .zip(vy.chunks_exact(8));
+                for ((((((a, b), c), d), v), gx), gy) in lanes {
+                    for l in 0..8 {
+                        let e = v[l] - (w00 * a[l] + w10 * b[l] + w01 * c[l] + w11 * d[l]);
+                        let e = if e.is_nan() { 0.0 } else { e };
+                        s1[l] += gx[l] * e;
+                        s2[l] += gy[l] * e;
+                    }
+                }
+                for i in len / 8 * 8..len {
+                    let e = va[i] - (w00 * p00[i] + w10 * p10[i] + w01 * p01[i] + w11 * p11[i]);
+                    let e = if e.is_nan() { 0.0 } else { e };
+                    s1[0] += vx[i] * e;
+                    s2[0] += vy[i] * e;
+                }
+                b1 += s1.iter().sum::<f32>() as f64;
+                b2 += s2.iter().sum::<f32>() as f64;
             }
-            let e = a - b;
-            b1 += gx * e;
-            b2 += gy * e;
         }
         let (sx, sy) = ((h22 * b1 - h12 * b2) / det, (h11 * b2 - h12 * b1) / det);
         d = (d.0 + sx, d.1 + sy);

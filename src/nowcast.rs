@@ -13,7 +13,7 @@ use crate::forecast::{Band, Forecast, ForecastInput, IrradianceParams, Transmitt
 use crate::io::{Measurements, Series};
 use crate::motion::{Measurement, Motion, MotionFilter, measure};
 use crate::plant::Plant;
-use crate::segment::{Class, Reference, gamma_deg};
+use crate::segment::{Class, Reference};
 use crate::sun::{SunPosition, position};
 
 /// A decoded frame.
@@ -88,8 +88,10 @@ pub struct StageTimes {
     pub map_ms: f64,
     /// Motion.
     pub motion_ms: f64,
-    /// Forecast.
+    /// Central forecast, ramps and alarm.
     pub forecast_ms: f64,
+    /// Ensemble members, bands and ramp events (their probabilities come from the members).
+    pub ensemble_ms: f64,
 }
 
 /// The result of one frame.
@@ -203,7 +205,7 @@ pub struct Nowcaster {
     tuner: Tuner,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
-    gamma_cache: Option<(usize, [f32; 3], Vec<f32>)>,
+    gamma_cache: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
     /// Counters.
     pub counters: Counters,
@@ -369,23 +371,24 @@ impl Nowcaster {
         let sd = sun.direction_enu();
         let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
         let sp = &self.site.file.segment;
-        // The cells' sun angles are reused until the sun has moved 0.1° (about 25 s).
+        // The cells' sun angles and default references are reused until the sun has moved 0.1°
+        // (about 25 s).
         let key = Arc::as_ptr(&lut) as usize;
-        let fresh = match &self.gamma_cache {
+        let stale = match &self.gamma_cache {
             Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > 0.1,
             None => true,
         };
-        if fresh {
-            let sd3 = sun_dir.unwrap_or([0.0, 0.0, 1.0]);
-            self.gamma_cache = Some((key, sd3, crate::cloudmap::cell_gamma_deg(&lut, sun_dir)));
+        if stale {
+            self.gamma_cache = None;
         }
-        let gamma: &[f32] = self.gamma_cache.as_ref().map(|c| c.2.as_slice()).unwrap_or(&[]);
-        let map = Arc::new(build_map_with(&frame.image, &lut, gamma, sp, &self.reference));
+        let sd3 = sun_dir.unwrap_or([0.0, 0.0, 1.0]);
+        let sky = &self.gamma_cache.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(&lut, sun_dir, sp))).2;
+        let map = Arc::new(build_map_with(&frame.image, &lut, sky, sp, &self.reference));
         let cf = map.cloud_fraction(&lut, sp.cloud_fraction_zenith_deg as f32);
         if cf <= sp.library_max_cloud_fraction {
             let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
                 let i = lut.pixel[k] as usize * 3;
-                ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: gamma_deg(lut.dir[k], sun_dir) })
+                ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] })
             });
             self.reference.learn(sp, sample);
         }
@@ -427,6 +430,7 @@ impl Nowcaster {
         };
         let tm = TransmittanceMap::new(&map, &input.params);
         let fc = forecast_with(&tm, map.grid, &input);
+        let t_central = Clock::now();
         let (members, bands) = if self.irradiance.ensemble_members > 0 { ensemble_with(&tm, map.grid, &input, &fc) } else { (vec![], vec![]) };
         // Ramp events from the plant's power series, and the alarm.
         let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
@@ -439,6 +443,7 @@ impl Nowcaster {
         let plant_members_ghi_wm2: Vec<Vec<f64>> = (0..n_h)
             .map(|k| members.iter().filter_map(|m| m.rows.iter().filter(|r| r.target == "plant").nth(k).map(|r| r.irradiance.ghi_wm2)).collect())
             .collect();
+        let t_ens = Clock::now();
         let alarm_change = self.alarm.update(&frame.time, &ramps, &rp);
         let t_fc = Clock::now();
         self.history.push_back((frame.time, map.clone()));
@@ -461,7 +466,7 @@ impl Nowcaster {
             alarm: self.alarm.state,
             alarm_change,
             irradiance: self.irradiance,
-            times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_fc) },
+            times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
     }
 

@@ -224,7 +224,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
     let mut ramps_jsonl = String::new();
     let mut alarms = String::from("time_utc,from,to,probability,reason\n");
     let mut members = String::from("issue_time_utc,horizon_s,member,plant_ghi_wm2\n");
-    let mut fr = String::from("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms\n");
+    let mut fr = String::from("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms\n");
     let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
@@ -242,7 +242,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
         match result {
             Ok(nc) => {
                 decode_ms.push(dms);
-                step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.qc_ms);
+                step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.ensemble_ms + nc.times.qc_ms);
                 forecast_rows(&nc, &mut fc);
                 let plant_h: Vec<u32> = nc.forecast.rows.iter().filter(|r| r.target == "plant").map(|r| r.horizon_s).collect();
                 for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
@@ -273,7 +273,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                 motion_row(&nc, &mut mo);
                 let _ = writeln!(
                     fr,
-                    "{},{name},ok,,{:.4},{:.0},{:.2},{dms:.2},{:.2},{:.2},{:.2},{:.2}",
+                    "{},{name},ok,,{:.4},{:.0},{:.2},{dms:.2},{:.2},{:.2},{:.2},{:.2},{:.2}",
                     fmt_time(&f.time),
                     nc.cloud_fraction,
                     nc.cbh_m,
@@ -281,7 +281,8 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                     nc.times.qc_ms,
                     nc.times.map_ms,
                     nc.times.motion_ms,
-                    nc.times.forecast_ms
+                    nc.times.forecast_ms,
+                    nc.times.ensemble_ms
                 );
                 if nc.motion.is_some() {
                     last_motion = nc.motion.map(|m| m.v_mps);
@@ -296,7 +297,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
             }
             Err(rej) => {
                 let reason = rej.to_string().replace(',', ";");
-                let _ = writeln!(fr, "{},{name},{},{reason},,,,{dms:.2},,,,", fmt_time(&f.time), rej.code());
+                let _ = writeln!(fr, "{},{name},{},{reason},,,,{dms:.2},,,,,", fmt_time(&f.time), rej.code());
             }
         }
         bar.inc(1);

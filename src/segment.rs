@@ -164,11 +164,19 @@ impl SegmentParams {
         check_range(file, &f("library_rate"), self.library_rate, 0.0, 1.0)
     }
 
+    /// Whether a pixel at this geometry is judged by its ratio alone: within the zenith limit and
+    /// outside the sun-exclusion and glare zones.
+    #[inline]
+    pub fn plain_sky(&self, z_deg: f32, gamma_deg: f32) -> bool {
+        z_deg <= self.max_zenith_deg as f32 && gamma_deg >= self.sun_exclusion_deg.max(self.glare_zone_deg) as f32
+    }
+
     /// The parametric default reference R/B at zenith `z_deg` and sun angle `gamma_deg`.
     #[inline]
     pub fn default_reference(&self, z_deg: f32, gamma_deg: f32) -> f32 {
         let zr = z_deg / 90.0;
-        (self.reference_c0 + self.reference_c1 * (-(gamma_deg as f64) / self.reference_gamma_scale_deg).exp()) as f32
+        self.reference_c0 as f32
+            + self.reference_c1 as f32 * (-gamma_deg / self.reference_gamma_scale_deg as f32).exp()
             + self.reference_c2 as f32 * zr * zr * zr * zr
     }
 }
@@ -194,8 +202,9 @@ impl Default for Reference {
     }
 }
 
+/// The library bin of a pixel geometry.
 #[inline]
-fn lib_index(z_deg: f32, gamma_deg: f32) -> usize {
+pub fn lib_index(z_deg: f32, gamma_deg: f32) -> usize {
     let zi = ((z_deg / LIB_BIN_DEG) as usize).min(LIB_Z_BINS - 1);
     let gi = ((gamma_deg / LIB_BIN_DEG) as usize).min(LIB_G_BINS - 1);
     zi * LIB_G_BINS + gi
@@ -223,17 +232,44 @@ impl FrameReference<'_> {
     /// Reference R/B at a pixel.
     #[inline]
     pub fn at(&self, g: PixelGeom) -> f32 {
+        self.at_with(g, self.params.default_reference(g.z_deg, g.gamma_deg))
+    }
+
+    /// Reference R/B at a pixel whose parametric default is given.
+    #[inline]
+    fn at_with(&self, g: PixelGeom, default_rb: f32) -> f32 {
         let i = lib_index(g.z_deg, g.gamma_deg);
-        if self.reference.weight[i] > 0.5 {
-            self.reference.lib[i]
-        } else {
-            self.params.default_reference(g.z_deg, g.gamma_deg) + self.offset
-        }
+        if self.reference.weight[i] > 0.5 { self.reference.lib[i] } else { default_rb + self.offset }
+    }
+
+    /// Reference R/B of a pixel from its library bin ([`lib_index`]) and parametric default.
+    #[inline]
+    pub fn reference_in_bin(&self, bin: usize, default_rb: f32) -> f32 {
+        if self.reference.weight[bin] > 0.5 { self.reference.lib[bin] } else { default_rb + self.offset }
+    }
+
+    /// Score and class (as u8) of a pixel away from the sun's glare zone and within the zenith limit
+    /// ([`SegmentParams::plain_sky`]), given its reference R/B: the same result as
+    /// [`FrameReference::classify`] there, without branches.
+    #[inline]
+    pub fn classify_plain(&self, rgb: [u8; 3], reference_rb: f32) -> (f32, u8) {
+        let p = self.params;
+        let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+        let denom = (p.cloud_rb as f32 - reference_rb).max(0.03);
+        let s = (rb - reference_rb) / denom;
+        (s, 1 + (s >= p.thin_score as f32) as u8 + (s >= p.thick_score as f32) as u8)
     }
 
     /// Cloudiness score and class of one pixel.
     #[inline]
     pub fn classify(&self, rgb: [u8; 3], g: PixelGeom) -> (f32, Class) {
+        self.classify_with(rgb, g, self.params.default_reference(g.z_deg, g.gamma_deg))
+    }
+
+    /// [`FrameReference::classify`] with the pixel's parametric default reference given
+    /// ([`SegmentParams::default_reference`]; a cloud map computes it once per cell and sun position).
+    #[inline]
+    pub fn classify_with(&self, rgb: [u8; 3], g: PixelGeom, default_rb: f32) -> (f32, Class) {
         let p = self.params;
         if g.z_deg > p.max_zenith_deg as f32 {
             return (f32::NAN, Class::Unknown);
@@ -243,7 +279,7 @@ impl FrameReference<'_> {
             return (f32::NAN, Class::Unknown);
         }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
-        let r = self.at(g);
+        let r = self.at_with(g, default_rb);
         let denom = (p.cloud_rb as f32 - r).max(0.03);
         let s = (rb - r) / denom;
         if g.gamma_deg < p.glare_zone_deg as f32 && rgb[2] >= sat {
@@ -270,15 +306,20 @@ impl Reference {
 
     /// The reference for one frame from a sample of its sky pixels.
     pub fn for_frame<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) -> FrameReference<'a> {
+        self.for_frame_with(params, sample.map(|(rgb, g)| (rgb, g, params.default_reference(g.z_deg, g.gamma_deg))))
+    }
+
+    /// [`Reference::for_frame`] from samples that carry their parametric default reference.
+    pub fn for_frame_with<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom, f32)>) -> FrameReference<'a> {
         let mut d = vec![];
         let mut n = 0usize;
-        for (rgb, g) in sample {
+        for (rgb, g, default_rb) in sample {
             if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
                 continue;
             }
             n += 1;
             let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
-            let dd = rb - params.default_reference(g.z_deg, g.gamma_deg);
+            let dd = rb - default_rb;
             if dd < params.offset_band as f32 {
                 d.push(dd);
             }
@@ -370,9 +411,20 @@ impl ImageGeometry {
 #[inline]
 pub fn gamma_deg(dir: [f32; 3], sun: Option<[f32; 3]>) -> f32 {
     match sun {
-        Some(s) => (dir[0] * s[0] + dir[1] * s[1] + dir[2] * s[2]).clamp(-1.0, 1.0).acos().to_degrees(),
+        Some(s) => acos_approx(dir[0] * s[0] + dir[1] * s[1] + dir[2] * s[2]).to_degrees(),
         None => 180.0,
     }
+}
+
+/// Arc cosine \[rad\] by the polynomial of Abramowitz & Stegun (1964), eq. 4.4.46 (absolute error
+/// ≤ 2·10⁻⁸ rad on [0, 1]; `acos(−x) = π − acos(x)`), inlined where `f32::acos` is a library call.
+#[inline]
+pub fn acos_approx(x: f32) -> f32 {
+    const A: [f32; 8] = [1.570_796_3, -0.214_598_8, 0.088_978_99, -0.050_174_304, 0.030_891_88, -0.017_088_126, 0.006_670_09, -0.001_262_491_1];
+    let a = x.abs().min(1.0);
+    let p = A[0] + a * (A[1] + a * (A[2] + a * (A[3] + a * (A[4] + a * (A[5] + a * (A[6] + a * A[7]))))));
+    let r = (1.0 - a).sqrt() * p;
+    if x < 0.0 { std::f32::consts::PI - r } else { r }
 }
 
 /// Segment a whole image.
@@ -517,6 +569,13 @@ mod tests {
 
     fn geom(z: f32, g: f32) -> PixelGeom {
         PixelGeom { z_deg: z, gamma_deg: g }
+    }
+
+    #[test]
+    fn polynomial_arc_cosine_matches_the_library_one() {
+        // Abramowitz & Stegun 4.4.46 promise 2e-8 rad; f32 rounding allows a few 1e-7.
+        let worst = (-1000..=1000).map(|i| i as f32 / 1000.0).map(|x| (acos_approx(x) - x.acos()).abs()).fold(0f32, f32::max);
+        assert!(worst < 1e-6, "worst error {worst} rad");
     }
 
     #[test]

@@ -133,3 +133,39 @@ fn standard_errors_cover_the_truth() {
     eprintln!("parameters within 2 standard errors of the truth: {inside} of {total} ({:.0} %)", 100.0 * share);
     assert!((0.88..=1.0).contains(&share), "{share}");
 }
+
+/// Sun detections against the true sun: each detected centroid is compared with where the known
+/// camera projects the SPA sun direction; prints the mean radial and tangential offsets (a bias
+/// the fit would absorb into the lens) and the RMS.
+#[test]
+fn sun_detections_sit_on_the_true_sun() {
+    use nephocast::calibrate::detect_sun;
+    let spec = cam("equisolid", vec![], [-19.0, 8.0], -64.0, -1.2, 2.8);
+    let (mut sr, mut st, mut ss, mut n) = (0.0, 0.0, 0.0, 0.0);
+    for (start, hours) in [("2026-06-14T05:00:00Z", 14.0), ("2026-12-14T07:40:00Z", 9.0)] {
+        let (s, frames) = clear_day(&spec, start, hours);
+        let c = &s.camera;
+        let radius_px = nephocast::segment::fit_image_circle(&frames[frames.len() / 2].1).unwrap().radius_px;
+        for (t, img) in &frames {
+            let sp = nephocast::sun::position(t, &s.world.observer).unwrap();
+            if sp.elevation_rad().to_degrees() < 10.0 {
+                continue;
+            }
+            let Some((tx, ty)) = c.project_enu(nephocast::sun::direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad)) else { continue };
+            let Some((x, y, _)) = detect_sun(img, radius_px) else { continue };
+            // Radial unit vector from the principal point through the true sun.
+            let (ux, uy) = (tx - c.cx_px, ty - c.cy_px);
+            let l = (ux * ux + uy * uy).sqrt().max(1e-9);
+            let (dx, dy) = (x - tx, y - ty);
+            let (r, tg) = ((dx * ux + dy * uy) / l, (-dx * uy + dy * ux) / l);
+            sr += r;
+            st += tg;
+            ss += dx * dx + dy * dy;
+            n += 1.0;
+            eprintln!("{t} zenith {:5.1}° offset radial {r:+.3} px, tangential {tg:+.3} px", 90.0 - sp.elevation_rad().to_degrees());
+        }
+    }
+    let rms = (ss / n).sqrt();
+    eprintln!("{n} detections: mean radial {:+.3} px, mean tangential {:+.3} px, RMS {rms:.3} px", sr / n, st / n);
+    assert!(n >= 40.0 && rms < 1.0, "{n} detections, RMS {rms} px");
+}
