@@ -108,6 +108,10 @@ pub struct CalibrateArgs {
     /// Fewest sun detections to accept.
     #[arg(long, default_value_t = 20)]
     pub min_detections: usize,
+    /// Lowest sun elevation for a detection [°] (nearer the horizon the glare leans toward the
+    /// bright horizon sky).
+    #[arg(long, default_value_t = crate::calibrate::DEFAULT_MIN_SUN_ELEVATION_DEG)]
+    pub min_sun_elevation_deg: f64,
 }
 
 /// `nephocast camera …`.
@@ -601,7 +605,7 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     if frames.is_empty() {
         bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", a.frames, crate::io::FRAME_NAME_PATTERN);
     }
-    let (fit, dets) = crate::calibrate::calibrate(&frames, &site.observer(), a.min_detections)?;
+    let (fit, dets) = crate::calibrate::calibrate(&frames, &site.observer(), a.min_detections, a.min_sun_elevation_deg)?;
     let name = a.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "camera".into());
     let mut cal = crate::config::CalibrationFile::from_camera(&name, &fit.camera);
     let (t0, t1) = (dets.first().map(|d| d.time), dets.last().map(|d| d.time));

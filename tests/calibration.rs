@@ -1,6 +1,6 @@
 //! Camera calibration from the sun's track on synthetic clear days with known cameras.
 use chrono::{DateTime, Duration, Utc};
-use nephocast::calibrate::calibrate;
+use nephocast::calibrate::{DEFAULT_MIN_SUN_ELEVATION_DEG, calibrate};
 use nephocast::camera::Camera;
 use nephocast::synth::render::PixelRays;
 use nephocast::synth::{CameraSpec, Scene, scene};
@@ -53,7 +53,7 @@ fn run(spec: &CameraSpec, days: &[(&str, f64)]) -> (f64, nephocast::calibrate::F
         obs = Some(s.world.observer);
         frames.extend(f);
     }
-    let (fit, dets) = calibrate(&frames, &obs.unwrap(), 20).unwrap();
+    let (fit, dets) = calibrate(&frames, &obs.unwrap(), 20, DEFAULT_MIN_SUN_ELEVATION_DEG).unwrap();
     let err = direction_error_deg(&truth.unwrap(), &fit.camera);
     eprintln!(
         "{} yaw {} pitch {} roll {}: {} detections, model {}, residual RMS {:.2} px / {:.3}°, sky direction error {:.3}° RMS; {:?}",
@@ -62,9 +62,7 @@ fn run(spec: &CameraSpec, days: &[(&str, f64)]) -> (f64, nephocast::calibrate::F
     (err, fit)
 }
 
-/// Two days at different seasons: direction error over the sky (zenith < 80°). The aim is 0.1° RMS;
-/// the sun-centroid bias of the saturated glare (it leans toward the brighter sky) holds it near
-/// 0.14° at 512², so this checks 0.2° and prints the figure.
+/// Two days at different seasons: direction error over the sky (zenith < 80°) ≤ 0.1° RMS.
 #[test]
 fn two_seasons_recover_each_model() {
     for spec in [
@@ -73,7 +71,7 @@ fn two_seasons_recover_each_model() {
         cam("polynomial", vec![-0.03, 0.002], [5.0, 15.0], 23.0, 0.8, -2.5),
     ] {
         let (err, _) = run(&spec, &[("2026-06-14T05:00:00Z", 14.0), ("2026-12-14T07:40:00Z", 9.0)]);
-        assert!(err <= 0.2, "{}: {err}°", spec.model);
+        assert!(err <= 0.1, "{}: {err}°", spec.model);
     }
 }
 
@@ -88,7 +86,7 @@ fn single_day_within_a_third_of_a_degree() {
 #[test]
 fn night_frames_are_refused_with_a_count() {
     let (s, frames) = clear_day(&cam("equidistant", vec![], [0.0, 0.0], 0.0, 0.0, 0.0), "2026-06-14T21:00:00Z", 3.0);
-    let e = calibrate(&frames, &s.world.observer, 20).unwrap_err().to_string();
+    let e = calibrate(&frames, &s.world.observer, 20, DEFAULT_MIN_SUN_ELEVATION_DEG).unwrap_err().to_string();
     assert!(e.starts_with("0 sun detections, 20 needed"), "{e}");
 }
 
@@ -134,9 +132,9 @@ fn standard_errors_cover_the_truth() {
     assert!((0.88..=1.0).contains(&share), "{share}");
 }
 
-/// Sun detections against the true sun: each detected centroid is compared with where the known
-/// camera projects the SPA sun direction; prints the mean radial and tangential offsets (a bias
-/// the fit would absorb into the lens) and the RMS.
+/// Sun detections against the true sun (sun at least as high as calibration uses): each detected
+/// centroid is compared with where the known camera projects the SPA sun direction; prints the mean
+/// radial and tangential offsets (a bias the fit would absorb into the lens) and the RMS.
 #[test]
 fn sun_detections_sit_on_the_true_sun() {
     use nephocast::calibrate::detect_sun;
@@ -148,7 +146,7 @@ fn sun_detections_sit_on_the_true_sun() {
         let radius_px = nephocast::segment::fit_image_circle(&frames[frames.len() / 2].1).unwrap().radius_px;
         for (t, img) in &frames {
             let sp = nephocast::sun::position(t, &s.world.observer).unwrap();
-            if sp.elevation_rad().to_degrees() < 10.0 {
+            if sp.elevation_rad().to_degrees() < DEFAULT_MIN_SUN_ELEVATION_DEG {
                 continue;
             }
             let Some((tx, ty)) = c.project_enu(nephocast::sun::direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad)) else { continue };
@@ -167,5 +165,5 @@ fn sun_detections_sit_on_the_true_sun() {
     }
     let rms = (ss / n).sqrt();
     eprintln!("{n} detections: mean radial {:+.3} px, mean tangential {:+.3} px, RMS {rms:.3} px", sr / n, st / n);
-    assert!(n >= 40.0 && rms < 1.0, "{n} detections, RMS {rms} px");
+    assert!(n >= 40.0 && rms < 0.3 && (sr / n).abs() < 0.15, "{n} detections, RMS {rms} px, mean radial {} px", sr / n);
 }
