@@ -74,6 +74,9 @@ pub struct IrradianceParams {
     pub ensemble_beam_rel_sigma: f64,
     /// Relative spread of the cloud-scattered diffuse in the ensemble.
     pub ensemble_diffuse_rel_sigma: f64,
+    /// Cloud fraction at and above which the whole-beam spread is full; below it the spread
+    /// shrinks in proportion (a mostly clear sky's beam is better known).
+    pub ensemble_full_spread_cover: f64,
 }
 
 impl Default for IrradianceParams {
@@ -99,6 +102,7 @@ impl Default for IrradianceParams {
             ensemble_cbh_rel_sigma: 0.15,
             ensemble_beam_rel_sigma: 0.5,
             ensemble_diffuse_rel_sigma: 0.3,
+            ensemble_full_spread_cover: 0.4,
         }
     }
 }
@@ -120,6 +124,7 @@ impl IrradianceParams {
         check_range(file, "irradiance.ensemble_members", self.ensemble_members as f64, 0.0, 200.0)?;
         check_range(file, "irradiance.ensemble_motion_sigma_mps", self.ensemble_motion_sigma_mps, 0.0, 20.0)?;
         check_range(file, "irradiance.ensemble_cbh_rel_sigma", self.ensemble_cbh_rel_sigma, 0.0, 1.0)?;
+        check_range(file, "irradiance.ensemble_full_spread_cover", self.ensemble_full_spread_cover, 0.0, 1.0)?;
         check_range(file, "irradiance.ensemble_beam_rel_sigma", self.ensemble_beam_rel_sigma, 0.0, 1.0)?;
         check_range(file, "irradiance.ensemble_diffuse_rel_sigma", self.ensemble_diffuse_rel_sigma, 0.0, 2.0)
     }
@@ -238,8 +243,16 @@ impl TransmittanceMap {
         // already known or filled when the front reaches it. The front starts at the known cells
         // that border an unknown in-view cell.
         let mut queued: Vec<bool> = sh.iter().map(known).collect();
-        let mut front: std::collections::VecDeque<usize> =
-            (0..n * n).filter(|&k| queued[k] && neighbours(k).any(|m| !queued[m] && in_view(m))).collect();
+        let mut front: std::collections::VecDeque<usize> = Default::default();
+        let mut seeded = vec![false; n * n];
+        for k in (0..n * n).filter(|&k| !queued[k] && in_view(k)) {
+            for m in neighbours(k) {
+                if queued[m] && !seeded[m] {
+                    seeded[m] = true;
+                    front.push_back(m);
+                }
+            }
+        }
         while let Some(k) = front.pop_front() {
             for m in neighbours(k) {
                 if queued[m] || !in_view(m) {
@@ -292,8 +305,9 @@ impl TransmittanceMap {
         }
         // Rounding half up by truncation: every negative bound clamps to 0 either way (and
         // `f64::round` is a library call on baseline x86-64).
-        let lo = |c: f64| ((c - r + 0.5).max(0.0) as usize).min(self.n);
-        let hi = |c: f64| ((c + r + 1.5).max(0.0) as usize).min(self.n);
+        // Through i64: a float-to-usize conversion is a slow instruction sequence on x86-64.
+        let lo = |c: f64| ((c - r + 0.5).max(0.0) as i64 as usize).min(self.n);
+        let hi = |c: f64| ((c + r + 1.5).max(0.0) as i64 as usize).min(self.n);
         let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
         if x1 <= x0 || y1 <= y0 {
             return None;
@@ -622,8 +636,10 @@ pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             inp.params.beam_clear = p.beam_clear * (1.0 + 0.1 * p.ensemble_beam_rel_sigma * gb);
             inp.params.beam_thin = (p.beam_thin * (1.0 + p.ensemble_beam_rel_sigma * g(6))).clamp(0.0, 1.0);
             inp.params.beam_thick = (p.beam_thick * (1.0 + 2.0 * p.ensemble_beam_rel_sigma * g(7)).max(0.0)).min(0.6);
-            // And the beam as a whole (aerosol, calibration): half the class spread.
-            inp.beam_scale = (1.0 + 0.5 * p.ensemble_beam_rel_sigma * g(8)).max(0.0);
+            // And the beam as a whole (aerosol, calibration, cloud optical depth): half the class
+            // spread under cloud cover of `ensemble_full_spread_cover` or more, less under less.
+            let cover_share = if p.ensemble_full_spread_cover > 0.0 { (input.cloud_fraction / p.ensemble_full_spread_cover).clamp(0.0, 1.0) } else { 1.0 };
+            inp.beam_scale = (1.0 + 0.5 * p.ensemble_beam_rel_sigma * cover_share * g(8)).max(0.0);
             inp.diffuse_scale = (1.0 + p.ensemble_diffuse_rel_sigma * g(5)).max(0.0);
             inp.point_stride = 3;
             // Members are sharp: their spread, not a blur, carries the uncertainty.

@@ -160,8 +160,9 @@ fn downsample4(m: &[f32], n: usize) -> (Vec<f32>, usize) {
 }
 
 /// A feature map split into values (unknown set to zero) and a 0/1 mask, for branch-free sums,
-/// with summed-area tables of the values, their squares and the mask: a window that is fully known
-/// in both maps gets its sums in O(1) and only the cross term is summed cell by cell.
+/// optionally with summed-area tables of the values, their squares and the mask: a window that is
+/// fully known in both maps then gets its sums in O(1) and only the cross term is summed cell by
+/// cell. The searched (later) map needs the tables; the template side sums each block once.
 struct Plane {
     n: usize,
     v: Vec<f32>,
@@ -172,9 +173,12 @@ struct Plane {
 }
 
 impl Plane {
-    fn new(f: &[f32], n: usize) -> Plane {
+    fn new(f: &[f32], n: usize, tables: bool) -> Plane {
         let v: Vec<f32> = f.iter().map(|x| if x.is_nan() { 0.0 } else { *x }).collect();
         let m: Vec<f32> = f.iter().map(|x| if x.is_nan() { 0.0 } else { 1.0 }).collect();
+        if !tables {
+            return Plane { n, v, m, s1: vec![], s2: vec![], cnt: vec![] };
+        }
         let w = n + 1;
         let (mut s1, mut s2, mut cnt) = (vec![0f64; w * w], vec![0f64; w * w], vec![0u32; w * w]);
         for j in 0..n {
@@ -192,7 +196,8 @@ impl Plane {
         Plane { n, v, m, s1, s2, cnt }
     }
 
-    /// Sums of values, squares and known cells over the window of side `b` at `(x, y)`.
+    /// Sums of values, squares and known cells over the window of side `b` at `(x, y)` (from the
+    /// tables).
     #[inline]
     fn window(&self, x: usize, y: usize, b: usize) -> (f64, f64, u32) {
         let w = self.n + 1;
@@ -202,6 +207,20 @@ impl Plane {
             self.s2[e] - self.s2[c] - self.s2[d] + self.s2[a],
             self.cnt[e] + self.cnt[a] - self.cnt[c] - self.cnt[d],
         )
+    }
+
+    /// The same sums, cell by cell (for a template block, once).
+    fn block_sums(&self, x: usize, y: usize, b: usize) -> (f64, f64, u32) {
+        let (mut s1, mut s2, mut k) = (0f64, 0f64, 0u32);
+        for j in y..y + b {
+            for i in j * self.n + x..j * self.n + x + b {
+                let v = self.v[i] as f64;
+                s1 += v;
+                s2 += v * v;
+                k += self.m[i] as u32;
+            }
+        }
+        (s1, s2, k)
     }
 }
 
@@ -226,12 +245,13 @@ fn dot(a: &[f32], b: &[f32]) -> f32 {
 /// NCC of block `a` (side `b`, top-left `(ax, ay)` in map `pa`) against map `pb` displaced by
 /// `(dx, dy)`, over cells known in both; `None` when too few overlap.
 #[allow(clippy::too_many_arguments)]
-fn ncc(pa: &Plane, pb: &Plane, n: usize, ax: usize, ay: usize, b: usize, dx: i64, dy: i64, min_pairs: usize) -> Option<f64> {
-    // Fast path: the displaced block lies on the map and both windows are fully known.
+fn ncc(pa: &Plane, tpl: (f64, f64, u32), pb: &Plane, n: usize, ax: usize, ay: usize, b: usize, dx: i64, dy: i64, min_pairs: usize) -> Option<f64> {
+    // Fast path: the displaced block lies on the map and both windows are fully known (`tpl`: the
+    // template block's sums).
     let (bx, by) = (ax as i64 + dx, ay as i64 + dy);
     if bx >= 0 && by >= 0 && bx as usize + b <= n && by as usize + b <= n {
         let (bx, by) = (bx as usize, by as usize);
-        let (sa, saa, ka) = pa.window(ax, ay, b);
+        let (sa, saa, ka) = tpl;
         let (sb, sbb, kb) = pb.window(bx, by, b);
         if ka as usize == b * b && kb as usize == b * b {
             let sw = (b * b) as f64;
@@ -385,8 +405,8 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
     let (fa, fb) = (feature_map(a, feature), feature_map(b, feature));
     let (ca, nc) = downsample4(&fa, n);
     let (cb, _) = downsample4(&fb, n);
-    let (ca, cb) = (Plane::new(&ca, nc), Plane::new(&cb, nc));
-    let (pa, pb) = (Plane::new(&fa, n), Plane::new(&fb, n));
+    let (ca, cb) = (Plane::new(&ca, nc, false), Plane::new(&cb, nc, true));
+    let (pa, pb) = (Plane::new(&fa, n, false), Plane::new(&fb, n, true));
     let bs = params.block_cells.min(n / 2).max(8) / 4 * 4;
     let reach_cells = params.max_speed_mps * dt_s / cell;
     let rc = (reach_cells / 4.0).ceil() as i64 + 1;
@@ -412,27 +432,19 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
     let vectors: Vec<BlockVector> = starts
         .par_iter()
         .filter_map(|&(ax, ay)| {
-            // Block statistics.
-            let (mut s, mut ss, mut k) = (0f64, 0f64, 0usize);
-            for j in 0..bs {
-                for i in 0..bs {
-                    let v = fa[(ay + j) * n + ax + i];
-                    if !v.is_nan() {
-                        s += v as f64;
-                        ss += (v as f64).powi(2);
-                        k += 1;
-                    }
-                }
-            }
+            // Block statistics (the template's sums, reused by every fine NCC).
+            let fine_tpl = pa.block_sums(ax, ay, bs);
+            let (s, ss, k) = (fine_tpl.0, fine_tpl.1, fine_tpl.2 as usize);
             if (k as f64) < params.min_known * (bs * bs) as f64 {
                 return None;
             }
             let mean = s / k as f64;
-            let thick = (0..bs)
-                .flat_map(|j| (0..bs).map(move |i| (ay + j) * n + ax + i))
-                .filter(|&c| feature != Feature::ThinOnly && a.class[c] == crate::segment::Class::Thick as u8)
-                .count() as f64
-                / k as f64;
+            let thick = if feature == Feature::ThinOnly {
+                0.0
+            } else {
+                let thick_u8 = crate::segment::Class::Thick as u8;
+                (ay..ay + bs).map(|j| a.class[j * n + ax..j * n + ax + bs].iter().filter(|c| **c == thick_u8).count()).sum::<usize>() as f64 / k as f64
+            };
             let sd = (ss / k as f64 - mean * mean).max(0.0).sqrt();
             if sd < params.min_texture {
                 return None;
@@ -441,12 +453,13 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
             // when the peak sits on the predictive window's edge.
             let (cbx, cby, cbs) = (ax / 4, ay / 4, bs / 4);
             let min_c = (cbs * cbs) / 2;
+            let coarse_tpl = ca.block_sums(cbx, cby, cbs);
             let search = |cx: i64, cy: i64, r: i64| {
                 let mut scores = vec![];
                 let mut best = (f64::MIN, 0i64, 0i64);
                 for dy in cy - r..=cy + r {
                     for dx in cx - r..=cx + r {
-                        if let Some(v) = ncc(&ca, &cb, nc, cbx, cby, cbs, dx, dy, min_c) {
+                        if let Some(v) = ncc(&ca, coarse_tpl, &cb, nc, cbx, cby, cbs, dx, dy, min_c) {
                             scores.push((v, dx, dy));
                             if v > best.0 {
                                 best = (v, dx, dy);
@@ -474,31 +487,38 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
             // Fine search at full resolution around the coarse peak.
             let min_f = (params.min_known * (bs * bs) as f64 * 0.8) as usize;
             let (bx0, by0) = (best.1 * 4, best.2 * 4);
-            // Two-step search within ±3 cells: a coarse 3×3 at step 2, then the 3×3 around its best.
+            // Hill climb within ±3 cells, starting where a parabola through the coarse peak and its
+            // neighbours puts it: the 3×3 around the current best until the best is its centre.
             let mut fine = [[f64::NAN; 7]; 7];
             let eval = |ox: i64, oy: i64, fine: &mut [[f64; 7]; 7]| -> f64 {
                 let (ix, iy) = ((ox + 3) as usize, (oy + 3) as usize);
                 if fine[iy][ix].is_nan() {
-                    fine[iy][ix] = ncc(&pa, &pb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f).unwrap_or(f64::MIN);
+                    fine[iy][ix] = ncc(&pa, fine_tpl, &pb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f).unwrap_or(f64::MIN);
                 }
                 fine[iy][ix]
             };
-            let mut fb_best = (f64::MIN, 0i64, 0i64);
-            for oy in [-2i64, 0, 2] {
-                for ox in [-2i64, 0, 2] {
-                    let v = eval(ox, oy, &mut fine);
-                    if v > fb_best.0 {
-                        fb_best = (v, ox, oy);
+            let coarse_at = |dx: i64, dy: i64| scores.iter().find(|s| s.1 == dx && s.2 == dy).map(|s| s.0).unwrap_or(f64::NAN);
+            let start = |l: f64, r: f64| {
+                let o = parabola_offset(l, best.0, r);
+                if o.is_nan() { 0 } else { (4.0 * o).round().clamp(-2.0, 2.0) as i64 }
+            };
+            let (sx0, sy0) = (
+                start(coarse_at(best.1 - 1, best.2), coarse_at(best.1 + 1, best.2)),
+                start(coarse_at(best.1, best.2 - 1), coarse_at(best.1, best.2 + 1)),
+            );
+            let mut fb_best = (eval(sx0, sy0, &mut fine), sx0, sy0);
+            loop {
+                let (cx0, cy0) = (fb_best.1, fb_best.2);
+                for oy in (cy0 - 1).max(-3)..=(cy0 + 1).min(3) {
+                    for ox in (cx0 - 1).max(-3)..=(cx0 + 1).min(3) {
+                        let v = eval(ox, oy, &mut fine);
+                        if v > fb_best.0 {
+                            fb_best = (v, ox, oy);
+                        }
                     }
                 }
-            }
-            let (cx0, cy0) = (fb_best.1, fb_best.2);
-            for oy in cy0 - 1..=cy0 + 1 {
-                for ox in cx0 - 1..=cx0 + 1 {
-                    let v = eval(ox, oy, &mut fine);
-                    if v > fb_best.0 {
-                        fb_best = (v, ox, oy);
-                    }
+                if (fb_best.1, fb_best.2) == (cx0, cy0) || fb_best.1.abs() == 3 || fb_best.2.abs() == 3 {
+                    break;
                 }
             }
             if fb_best.0 < params.min_peak || fb_best.1.abs() == 3 || fb_best.2.abs() == 3 {

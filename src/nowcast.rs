@@ -191,6 +191,9 @@ impl Tuner {
     }
 }
 
+/// The cells' sun angles are recomputed when the sun has moved more than this \[°\].
+const SUN_ANGLE_REUSE_DEG: f32 = 0.25;
+
 /// The per-frame engine.
 pub struct Nowcaster {
     site: Site,
@@ -371,11 +374,13 @@ impl Nowcaster {
         let sd = sun.direction_enu();
         let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
         let sp = &self.site.file.segment;
-        // The cells' sun angles and default references are reused until the sun has moved 0.1°
-        // (about 25 s).
+        // The cells' sun angles and default references are reused until the sun has moved
+        // `SUN_ANGLE_REUSE_DEG` (about a minute): that shifts a default reference by at most
+        // c1/γs · 0.25° ≈ 0.0024 in R/B (defaults; the score thresholds sit ~0.1 apart) and the
+        // glare-zone edges by 0.25°.
         let key = Arc::as_ptr(&lut) as usize;
         let stale = match &self.gamma_cache {
-            Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > 0.1,
+            Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > SUN_ANGLE_REUSE_DEG,
             None => true,
         };
         if stale {
