@@ -74,8 +74,8 @@ pub struct IrradianceParams {
     pub ensemble_beam_rel_sigma: f64,
     /// Relative spread of the cloud-scattered diffuse in the ensemble.
     pub ensemble_diffuse_rel_sigma: f64,
-    /// Cloud fraction at and above which the whole-beam spread is full; below it the spread
-    /// shrinks in proportion (a mostly clear sky's beam is better known).
+    /// Cloud fraction at and above which the clear-sky and whole-beam spreads are full; below it
+    /// they shrink in proportion, to a quarter at most (a mostly clear sky's beam is better known).
     pub ensemble_full_spread_cover: f64,
 }
 
@@ -631,14 +631,17 @@ pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             let mut inp = input.clone();
             inp.v_mps = [input.v_mps[0] + sigma * g(1), input.v_mps[1] + sigma * g(2)];
             inp.cbh_m = input.cbh_m * (1.0 + p.ensemble_cbh_rel_sigma * g(3)).max(0.3);
+            // Under little cloud the beam is better known: the clear-sky and whole-beam spreads are
+            // full at cloud cover `ensemble_full_spread_cover` and shrink in proportion below it.
+            // Never below a quarter: the clear-sky model itself is uncertain by a few per cent.
+            let cover_share = if p.ensemble_full_spread_cover > 0.0 { (input.cloud_fraction / p.ensemble_full_spread_cover).clamp(0.25, 1.0) } else { 1.0 };
             // Per-class transmittances: clear sky varies little, thin and thick cloud a lot.
             let gb = g(4);
-            inp.params.beam_clear = p.beam_clear * (1.0 + 0.1 * p.ensemble_beam_rel_sigma * gb);
+            inp.params.beam_clear = p.beam_clear * (1.0 + 0.1 * p.ensemble_beam_rel_sigma * cover_share * gb);
             inp.params.beam_thin = (p.beam_thin * (1.0 + p.ensemble_beam_rel_sigma * g(6))).clamp(0.0, 1.0);
             inp.params.beam_thick = (p.beam_thick * (1.0 + 2.0 * p.ensemble_beam_rel_sigma * g(7)).max(0.0)).min(0.6);
             // And the beam as a whole (aerosol, calibration, cloud optical depth): half the class
-            // spread under cloud cover of `ensemble_full_spread_cover` or more, less under less.
-            let cover_share = if p.ensemble_full_spread_cover > 0.0 { (input.cloud_fraction / p.ensemble_full_spread_cover).clamp(0.0, 1.0) } else { 1.0 };
+            // spread.
             inp.beam_scale = (1.0 + 0.5 * p.ensemble_beam_rel_sigma * cover_share * g(8)).max(0.0);
             inp.diffuse_scale = (1.0 + p.ensemble_diffuse_rel_sigma * g(5)).max(0.0);
             inp.point_stride = 3;
