@@ -272,3 +272,38 @@ fn qc_flags_bad_measurements() {
     let flags = std::fs::read_to_string(out).unwrap();
     assert_eq!(flags.lines().count(), 1 + lines.len() - 2);
 }
+
+/// The calibration workflow end to end: `synth` a clear day, `calibrate` from its frames, point the
+/// site file at the written calibration and `replay` the frames with it; the fitted camera agrees
+/// with the scene's true camera file to a fraction of a degree in yaw.
+#[test]
+fn calibrate_then_replay_with_the_written_file() {
+    let d = tempfile::tempdir().unwrap();
+    let seq = d.path().join("day");
+    let o = bin().args(["synth", "--scene", "clear-day", "--minutes", "420", "--step-s", "900", "--quiet", "--out", seq.to_str().unwrap()]).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let out = seq.join("calibration/fitted.toml");
+    let o = bin()
+        .args(["calibrate", "--site", seq.join("site.toml").to_str().unwrap(), "--frames", seq.join("frames").to_str().unwrap(), "--out", out.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&o.stdout).into_owned() + &String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{text}");
+    assert!(seq.join("calibration/fitted-residuals.png").exists(), "{text}");
+    let yaw = |p: &std::path::Path| -> f64 {
+        let v: toml::Value = toml::from_str(&std::fs::read_to_string(p).unwrap()).unwrap();
+        v.get("camera").and_then(|o| o.get("yaw_deg")).and_then(|y| y.as_float()).unwrap_or_else(|| panic!("no camera.yaw_deg in {}", p.display()))
+    };
+    let site = std::fs::read_to_string(seq.join("site.toml")).unwrap();
+    let truth_file = site.lines().find_map(|l| l.trim().strip_prefix("calibration = ")).unwrap().trim_matches('"').to_string();
+    let dy = (yaw(&out) - yaw(&seq.join(&truth_file))).abs();
+    assert!(dy < 0.2, "fitted yaw differs from the true camera's by {dy}°");
+    std::fs::write(seq.join("site.toml"), site.replace(&format!("calibration = \"{truth_file}\""), "calibration = \"calibration/fitted.toml\"")).unwrap();
+    let o = bin()
+        .args(["replay", "--site", seq.join("site.toml").to_str().unwrap(), "--frames", seq.join("frames").to_str().unwrap(), "--out", d.path().join("out").to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let fc = std::fs::read_to_string(d.path().join("out/forecasts.csv")).unwrap();
+    assert!(fc.lines().count() > 100, "{} forecast rows", fc.lines().count());
+}
