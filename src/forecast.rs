@@ -220,17 +220,18 @@ impl TransmittanceMap {
     pub fn new(map: &CloudMap, p: &IrradianceParams) -> TransmittanceMap {
         let n = map.grid.n;
         let w = n + 1;
-        let mut sh: Vec<[f64; 3]> = map
-            .class
-            .iter()
-            .map(|c| match Class::from_u8(*c) {
+        // Known cells are one class; unknown in-view cells get filled shares. `known` marks both.
+        let class_known = |c: u8| Class::from_u8(c) != Class::Unknown;
+        let mut known: Vec<bool> = map.class.iter().map(|c| class_known(*c)).collect();
+        let mut filled: Vec<[f32; 3]> = vec![[0.0; 3]; n * n];
+        let shares = |k: usize, filled: &[[f32; 3]]| -> [f32; 3] {
+            match Class::from_u8(map.class[k]) {
                 Class::Clear => [1.0, 0.0, 0.0],
                 Class::Thin => [0.0, 1.0, 0.0],
                 Class::Thick => [0.0, 0.0, 1.0],
-                Class::Unknown => [f64::NAN; 3],
-            })
-            .collect();
-        let known = |v: &[f64; 3]| !v[0].is_nan();
+                Class::Unknown => filled[k],
+            }
+        };
         let in_view = |m: usize| map.in_view.get(m).copied().unwrap_or(false);
         let neighbours = |k: usize| {
             let (i, j) = ((k % n) as i64, (k / n) as i64);
@@ -242,12 +243,11 @@ impl TransmittanceMap {
         // Breadth-first fill: each unknown in-view cell takes the mean shares of its neighbours
         // already known or filled when the front reaches it. The front starts at the known cells
         // that border an unknown in-view cell.
-        let mut queued: Vec<bool> = sh.iter().map(known).collect();
         let mut front: std::collections::VecDeque<usize> = Default::default();
         let mut seeded = vec![false; n * n];
-        for k in (0..n * n).filter(|&k| !queued[k] && in_view(k)) {
+        for k in (0..n * n).filter(|&k| !known[k] && in_view(k)) {
             for m in neighbours(k) {
-                if queued[m] && !seeded[m] {
+                if known[m] && !seeded[m] {
                     seeded[m] = true;
                     front.push_back(m);
                 }
@@ -255,21 +255,19 @@ impl TransmittanceMap {
         }
         while let Some(k) = front.pop_front() {
             for m in neighbours(k) {
-                if queued[m] || !in_view(m) {
+                if known[m] || !in_view(m) {
                     continue;
                 }
-                let (mut s, mut c) = ([0.0; 3], 0.0);
-                for e in neighbours(m) {
-                    let v = sh[e];
-                    if known(&v) {
-                        for q in 0..3 {
-                            s[q] += v[q];
-                        }
-                        c += 1.0;
+                let (mut s, mut c) = ([0f32; 3], 0f32);
+                for e in neighbours(m).filter(|e| known[*e]) {
+                    let v = shares(e, &filled);
+                    for q in 0..3 {
+                        s[q] += v[q];
                     }
+                    c += 1.0;
                 }
-                sh[m] = [s[0] / c, s[1] / c, s[2] / c];
-                queued[m] = true;
+                filled[m] = [s[0] / c, s[1] / c, s[2] / c];
+                known[m] = true;
                 front.push_back(m);
             }
         }
@@ -277,10 +275,15 @@ impl TransmittanceMap {
         for j in 0..n {
             let mut rs = [0i32; 4];
             for i in 0..n {
-                let v = sh[j * n + i];
-                if known(&v) {
-                    for q in 0..3 {
-                        rs[q] += (v[q] * SHARE_UNIT + 0.5) as i32; // shares are non-negative
+                let k = j * n + i;
+                if known[k] {
+                    let c = map.class[k];
+                    if class_known(c) {
+                        rs[c as usize - 1] += SHARE_UNIT as i32;
+                    } else {
+                        for (q, v) in filled[k].iter().enumerate() {
+                            rs[q] += (*v as f64 * SHARE_UNIT + 0.5) as i32; // shares are non-negative
+                        }
                     }
                     rs[3] += 1;
                 }

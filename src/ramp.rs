@@ -149,29 +149,67 @@ pub struct RampEvent {
 }
 
 /// Ramp events of a forecast: the ramps of the central series, each with the share of members that
-/// show one in the same direction within the match window.
+/// show one in the same direction within the match window; then the ramps the members agree on
+/// that the central series does not show (its look-up box widens with the horizon, which can smooth
+/// a ramp below the threshold): member ramps grouped by direction and start within the match
+/// window, each group one event with the median start and change of its members.
 pub fn ramp_events(issue: &DateTime<Utc>, central: &[f64], members: &[Vec<f64>], step_min: f64, capacity_kw: f64, p: &RampParams) -> Vec<RampEvent> {
     let member_ramps: Vec<Vec<Ramp>> = members.iter().map(|m| find_ramps(m, step_min, capacity_kw, p)).collect();
-    find_ramps(central, step_min, capacity_kw, p)
-        .into_iter()
+    let event = |r: &Ramp, prob: f64| {
+        let start = *issue + chrono::Duration::milliseconds((r.start_min * 60_000.0) as i64);
+        RampEvent {
+            issue_time_utc: crate::io::fmt_time(issue),
+            expected_start_utc: crate::io::fmt_time(&start),
+            lead_time_s: r.start_min * 60.0,
+            direction: r.direction,
+            change_kw: r.change_kw,
+            change_pct: 100.0 * r.change_kw / capacity_kw,
+            probability: prob,
+        }
+    };
+    let near = |a: &Ramp, b: &Ramp| a.direction == b.direction && (a.start_min - b.start_min).abs() <= p.match_window_min;
+    let central_ramps = find_ramps(central, step_min, capacity_kw, p);
+    let mut out: Vec<RampEvent> = central_ramps
+        .iter()
         .map(|r| {
-            let agree = member_ramps
-                .iter()
-                .filter(|rs| rs.iter().any(|m| m.direction == r.direction && (m.start_min - r.start_min).abs() <= p.match_window_min))
-                .count();
-            let prob = if members.is_empty() { 1.0 } else { agree as f64 / members.len() as f64 };
-            let start = *issue + chrono::Duration::milliseconds((r.start_min * 60_000.0) as i64);
-            RampEvent {
-                issue_time_utc: crate::io::fmt_time(issue),
-                expected_start_utc: crate::io::fmt_time(&start),
-                lead_time_s: r.start_min * 60.0,
-                direction: r.direction,
-                change_kw: r.change_kw,
-                change_pct: 100.0 * r.change_kw / capacity_kw,
-                probability: prob,
-            }
+            let agree = member_ramps.iter().filter(|rs| rs.iter().any(|m| near(m, r))).count();
+            event(r, if members.is_empty() { 1.0 } else { agree as f64 / members.len() as f64 })
         })
-        .collect()
+        .collect();
+    // Member ramps away from every central ramp, earliest first, grouped greedily.
+    let mut rest: Vec<(usize, Ramp)> = member_ramps
+        .iter()
+        .enumerate()
+        .flat_map(|(k, rs)| rs.iter().map(move |r| (k, *r)))
+        .filter(|(_, r)| !central_ramps.iter().any(|c| near(c, r)))
+        .collect();
+    rest.sort_by(|a, b| a.1.start_min.total_cmp(&b.1.start_min));
+    let mut used = vec![false; rest.len()];
+    for i in 0..rest.len() {
+        if used[i] {
+            continue;
+        }
+        let first = rest[i].1;
+        let group: Vec<usize> = (i..rest.len()).filter(|&j| !used[j] && near(&rest[j].1, &first)).collect();
+        let mut who: Vec<usize> = group.iter().map(|&j| rest[j].0).collect();
+        who.sort_unstable();
+        who.dedup();
+        for &j in &group {
+            used[j] = true;
+        }
+        let median = |mut v: Vec<f64>| {
+            v.sort_by(f64::total_cmp);
+            v[v.len() / 2]
+        };
+        let r = Ramp {
+            start_min: median(group.iter().map(|&j| rest[j].1.start_min).collect()),
+            direction: first.direction,
+            change_kw: median(group.iter().map(|&j| rest[j].1.change_kw).collect()),
+        };
+        out.push(event(&r, who.len() as f64 / members.len() as f64));
+    }
+    out.sort_by(|a, b| a.lead_time_s.total_cmp(&b.lead_time_s));
+    out
 }
 
 /// Alarm state.
@@ -286,6 +324,24 @@ mod tests {
         // A slow drift of 50 kW/min is no ramp.
         let drift: Vec<f64> = (0..10).map(|k| 900.0 - 50.0 * k as f64).collect();
         assert!(find_ramps(&drift, 1.0, 1000.0, &p).is_empty());
+    }
+
+    #[test]
+    fn members_agreeing_on_a_ramp_the_smooth_central_series_misses_give_an_event() {
+        // Capacity 1000 kW. The central series drifts 60 kW/min (no ramp); three of four members
+        // drop 300 kW at minutes 3, 4 and 4, the fourth stays flat: one down event, probability 3/4,
+        // median start 4 min, median change −300 kW.
+        let p = RampParams::default();
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let central: Vec<f64> = (0..8).map(|k| 900.0 - 60.0 * k as f64).collect();
+        let drop_at = |m: usize| (0..8).map(|k| if k <= m { 900.0 } else { 600.0 }).collect::<Vec<f64>>();
+        let members = vec![drop_at(3), drop_at(4), drop_at(4), vec![900.0; 8]];
+        let ev = ramp_events(&t0, &central, &members, 1.0, 1000.0, &p);
+        assert_eq!(ev.len(), 1, "{ev:?}");
+        assert_eq!(ev[0].direction, Direction::Down);
+        assert!((ev[0].probability - 0.75).abs() < 1e-12);
+        assert_eq!(ev[0].lead_time_s, 240.0);
+        assert_eq!(ev[0].change_kw, -300.0);
     }
 
     #[test]
