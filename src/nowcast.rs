@@ -372,7 +372,8 @@ impl Nowcaster {
         let t_qc = Clock::now();
         // Cloud map.
         let sd = sun.direction_enu();
-        let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
+        let sd3 = [sd[0] as f32, sd[1] as f32, sd[2] as f32];
+        let sun_dir = Some(sd3);
         let sp = &self.site.file.segment;
         // The cells' sun angles and default references are reused until the sun has moved
         // `SUN_ANGLE_REUSE_DEG` (about a minute): that shifts a default reference by at most
@@ -386,7 +387,6 @@ impl Nowcaster {
         if stale {
             self.gamma_cache = None;
         }
-        let sd3 = sun_dir.unwrap_or([0.0, 0.0, 1.0]);
         let sky = &self.gamma_cache.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(&lut, sun_dir, sp))).2;
         let map = Arc::new(build_map_with(&frame.image, &lut, sky, sp, &self.reference));
         let cf = map.cloud_fraction(&lut, sp.cloud_fraction_zenith_deg as f32);
