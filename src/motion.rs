@@ -583,7 +583,13 @@ fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, f
             let sub_y = if sub_y.is_nan() { 0.0 } else { sub_y };
             let (dxc, dyc) = refine_lk(&fa, &fb, n, ax, ay, bs, ((bx0 + fb_best.1) as f64 + sub_x, (by0 + fb_best.2) as f64 + sub_y));
             let c = a.grid.cell_centre_m(ax + bs / 2, ay + bs / 2);
-            Some(BlockVector { centre_m: c, v_mps: [dxc * cell / dt_s, dyc * cell / dt_s], peak: fb_best.0, mean_score: mean, thick_share: thick })
+            let v_mps = [dxc * cell / dt_s, dyc * cell / dt_s];
+            // The search window has a cell of margin: a match beyond the largest plausible speed
+            // is a false one.
+            if v_mps[0].hypot(v_mps[1]) > params.max_speed_mps {
+                return None;
+            }
+            Some(BlockVector { centre_m: c, v_mps, peak: fb_best.0, mean_score: mean, thick_share: thick })
         })
         .collect();
     for p in [ca, cb, pa, pb] {
