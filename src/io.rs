@@ -227,6 +227,24 @@ mod tests {
     }
 
     #[test]
+    fn stuck_readings_are_recognised_looking_back() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("m.csv");
+        // Minutes 0–3 vary, 4–13 hold 612 (ten equal readings), 14 varies again.
+        let mut text = String::from("time_utc,ghi_a_wm2\n");
+        let vals = [600.0, 605.0, 610.0, 611.0].into_iter().chain([612.0; 10]).chain([640.0]);
+        for (k, v) in vals.enumerate() {
+            text += &format!("2026-06-14T10:{k:02}:00Z,{v}\n");
+        }
+        std::fs::write(&p, text).unwrap();
+        let m = Measurements::read_csv(&p).unwrap();
+        let at = |min: u32| -> DateTime<Utc> { format!("2026-06-14T10:{min:02}:30Z").parse().unwrap() };
+        assert!(!m.stuck_at(0, &at(12), 10), "nine equal so far");
+        assert!(m.stuck_at(0, &at(13), 10), "the tenth equal reading");
+        assert!(!m.stuck_at(0, &at(14), 10), "moving again");
+    }
+
+    #[test]
     fn series_rejects_duplicates_with_line() {
         let d = tempfile::tempdir().unwrap();
         let p = d.path().join("cbh.csv");
@@ -320,6 +338,17 @@ impl Measurements {
     /// Column index by name.
     pub fn column(&self, name: &str) -> Option<usize> {
         self.names.iter().position(|n| n == name)
+    }
+
+    /// Whether the row covering `t` ends a run of `run` equal readings in a column above 5 (the
+    /// stuck-value test of [`crate::qc`], looking back only, so it works in live mode too).
+    pub fn stuck_at(&self, col: usize, t: &DateTime<Utc>, run: usize) -> bool {
+        let i = self.times.partition_point(|x| x <= t);
+        if i < run.max(1) {
+            return false;
+        }
+        let v = &self.columns[col][i - run..i];
+        v[0] > 5.0 && v.iter().all(|x| *x == v[0])
     }
 
     /// Value of a column at a time: the row whose averaging period (starting at its time stamp)

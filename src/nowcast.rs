@@ -492,6 +492,10 @@ impl Nowcaster {
             if !y.is_finite() || crate::qc::bsrn_flags_opt(y, None, None, sun.zenith_rad, sun.earth_sun_distance_au) & bad != 0 {
                 continue;
             }
+            // Nor stuck readings (gaps give NaN above).
+            if m.stuck_at(*col, t, crate::qc::STUCK_RUN) {
+                continue;
+            }
             let q = sun_ray_plane_point(*pos, cbh, self.site.file.camera.position_m, sun.apparent_zenith_rad, sun.azimuth_rad);
             let (cx, cy) = map.grid.to_cell(q);
             // Class shares in the look-up box.

@@ -74,6 +74,9 @@ pub const FLAG_CLOSURE: u16 = 64;
 pub const FLAG_MISSING: u16 = 128;
 /// A value is stuck.
 pub const FLAG_STUCK: u16 = 256;
+
+/// Equal readings in a row (above 5 W/m², sun up) that count as stuck (common practice, no source).
+pub const STUCK_RUN: usize = 10;
 /// A time gap precedes the row.
 pub const FLAG_GAP: u16 = 512;
 
@@ -197,7 +200,7 @@ pub fn qc_series_opt(
         for i in 1..=n {
             let same = i < n && series[i] == series[start] && series[i].is_finite();
             if !same {
-                if i - start >= 10 && series[start] > 5.0 && day[start] {
+                if i - start >= STUCK_RUN && series[start] > 5.0 && day[start] {
                     for f in flags.iter_mut().take(i).skip(start) {
                         *f |= FLAG_STUCK;
                     }
