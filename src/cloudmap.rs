@@ -227,14 +227,13 @@ impl CellSky {
         // Cells the camera does not see are never classified: they keep placeholders.
         let n = lut.pixel.len();
         let mut sky = CellSky { gamma_deg: vec![180.0; n], default_rb: vec![0.0; n], bin: vec![0; n], plain: vec![false; n] };
-        let table = params.default_reference_table();
         for k in 0..n {
             if lut.pixel[k] == NO_PIXEL {
                 continue;
             }
             let (z, g) = (lut.z_deg[k], gamma_deg(lut.dir[k], sun_dir));
             sky.gamma_deg[k] = g;
-            sky.default_rb[k] = table.at(z, g);
+            sky.default_rb[k] = params.default_reference(z, g);
             sky.bin[k] = crate::segment::lib_index(z, g) as u16;
             sky.plain[k] = params.plain_sky(z, g);
         }

@@ -306,9 +306,9 @@ impl TransmittanceMap {
         if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
             return None;
         }
-        // Rounding half up by truncation: every negative bound clamps to 0 either way (and
-        // `f64::round` is a library call on baseline x86-64).
-        // Through i64: a float-to-usize conversion is a slow instruction sequence on x86-64.
+        // Rounding half up by truncation through i64: every negative bound clamps to 0 either way,
+        // and on baseline x86-64 `f64::round` is a library call and a float-to-usize cast a slow
+        // instruction sequence.
         let lo = |c: f64| ((c - r + 0.5).max(0.0) as i64 as usize).min(self.n);
         let hi = |c: f64| ((c + r + 1.5).max(0.0) as i64 as usize).min(self.n);
         let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
@@ -450,23 +450,14 @@ pub fn sun_ray_plane_point(p: [f64; 2], cbh_m: f64, camera_m: [f64; 3], zenith_r
     [p[0] + off * azimuth_rad.sin() - camera_m[0], p[1] + off * azimuth_rad.cos() - camera_m[1]]
 }
 
-/// Forecast irradiance for all plant points and horizons from the current map.
-pub fn forecast(map: &CloudMap, input: &ForecastInput) -> Forecast {
-    let tm = TransmittanceMap::new(map, &input.params);
-    forecast_with(&tm, map.grid, input)
-}
-
-/// [`forecast`] from a prebuilt transmittance map (ensemble members share one).
-pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput) -> Forecast {
-    forecast_skies(tm, grid, input, &horizon_skies(input))
-}
-
-/// [`forecast_with`] with the horizons' sun and clear sky given.
+/// Forecast irradiance for all plant points and horizons from the current map's transmittance
+/// tables (one per frame, shared with the ensemble) and the horizons' sun and clear sky
+/// ([`horizon_skies`], also shared).
 ///
 /// Per point only the beam transmittance is looked up: the diffuse is the same for every point at a
 /// horizon, and GHI and the Hay–Davies plane-of-array terms are linear in DNI and DHI, so a block's
 /// means follow from its mean transmittance exactly.
-pub fn forecast_skies(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
+pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
     let mut out = Forecast::default();
     out.rows.reserve(skies.len() * (input.plant.blocks.len() + 1));
     let p = &input.params;
@@ -614,19 +605,24 @@ pub fn quantile_sorted(v: &[f64], q: f64) -> f64 {
 
 /// An ensemble: sharp members (no horizon blur) drawn around the central forecast by perturbing the
 /// motion (by its uncertainty, at least `ensemble_motion_sigma_mps`), the cloud base height, the
-/// beam transmittance and the cloud-scattered diffuse; deterministic for a given issue time.
-pub fn ensemble(map: &CloudMap, input: &ForecastInput, central: &Forecast) -> (Vec<Forecast>, Vec<Band>) {
-    ensemble_with(&TransmittanceMap::new(map, &input.params), map.grid, input, central)
-}
-
-/// [`ensemble`] from a prebuilt transmittance map (shared with the central forecast).
-pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput, central: &Forecast) -> (Vec<Forecast>, Vec<Band>) {
+/// beam transmittance and the cloud-scattered diffuse; deterministic for a given issue time. The
+/// transmittance tables and horizon skies are the central forecast's.
+pub fn ensemble_with(
+    tm: &TransmittanceMap,
+    grid: crate::cloudmap::Grid,
+    input: &ForecastInput,
+    skies: &[HorizonSky],
+    central: &Forecast,
+) -> (Vec<Forecast>, Vec<Band>) {
     use crate::synth::noise::{gaussian, hash64};
     let p = &input.params;
     let seed = input.issue.timestamp_millis() as u64;
     let sigma = input.sigma_mps.max(p.ensemble_motion_sigma_mps);
     use rayon::prelude::*;
-    let skies = horizon_skies(input);
+    // Under little cloud the beam is better known: the clear-sky and whole-beam spreads are full at
+    // cloud cover `ensemble_full_spread_cover` and shrink in proportion below it, never below a
+    // quarter (the clear-sky model itself is uncertain by a few per cent).
+    let cover_share = if p.ensemble_full_spread_cover > 0.0 { (input.cloud_fraction / p.ensemble_full_spread_cover).clamp(0.25, 1.0) } else { 1.0 };
     let members: Vec<Forecast> = (0..p.ensemble_members)
         .into_par_iter()
         .map(|m| {
@@ -634,10 +630,6 @@ pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             let mut inp = input.clone();
             inp.v_mps = [input.v_mps[0] + sigma * g(1), input.v_mps[1] + sigma * g(2)];
             inp.cbh_m = input.cbh_m * (1.0 + p.ensemble_cbh_rel_sigma * g(3)).max(0.3);
-            // Under little cloud the beam is better known: the clear-sky and whole-beam spreads are
-            // full at cloud cover `ensemble_full_spread_cover` and shrink in proportion below it.
-            // Never below a quarter: the clear-sky model itself is uncertain by a few per cent.
-            let cover_share = if p.ensemble_full_spread_cover > 0.0 { (input.cloud_fraction / p.ensemble_full_spread_cover).clamp(0.25, 1.0) } else { 1.0 };
             // Per-class transmittances: clear sky varies little, thin and thick cloud a lot.
             let gb = g(4);
             inp.params.beam_clear = p.beam_clear * (1.0 + 0.1 * p.ensemble_beam_rel_sigma * cover_share * gb);
@@ -651,7 +643,7 @@ pub fn ensemble_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
             // Members are sharp: their spread, not a blur, carries the uncertainty.
             inp.sigma_mps = 0.0;
             inp.params.blur_growth_mps = 0.0;
-            forecast_skies(tm, grid, &inp, &skies)
+            forecast_with(tm, grid, &inp, skies)
         })
         .collect();
     let bands = (0..central.rows.len())

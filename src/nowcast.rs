@@ -9,7 +9,7 @@ use chrono::{DateTime, Utc};
 
 use crate::cloudmap::{CloudMap, LutCache, build_map_with};
 use crate::config::Site;
-use crate::forecast::{Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, sun_ray_plane_point};
+use crate::forecast::{Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, horizon_skies, sun_ray_plane_point};
 use crate::io::{Measurements, Series};
 use crate::motion::{Measurement, Motion, MotionFilter, measure};
 use crate::plant::Plant;
@@ -208,7 +208,7 @@ pub struct Nowcaster {
     tuner: Tuner,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
-    gamma_cache: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
+    cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
     /// Counters.
     pub counters: Counters,
@@ -242,7 +242,7 @@ impl Nowcaster {
             tuner: Tuner::default(),
             irradiance,
             alarm: Default::default(),
-            gamma_cache: None,
+            cell_sky: None,
             image_geometry: std::sync::OnceLock::new(),
             counters: Counters::default(),
         }
@@ -380,14 +380,14 @@ impl Nowcaster {
         // c1/γs · 0.25° ≈ 0.0024 in R/B (defaults; the score thresholds sit ~0.1 apart) and the
         // glare-zone edges by 0.25°.
         let key = Arc::as_ptr(&lut) as usize;
-        let stale = match &self.gamma_cache {
+        let stale = match &self.cell_sky {
             Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > SUN_ANGLE_REUSE_DEG,
             None => true,
         };
         if stale {
-            self.gamma_cache = None;
+            self.cell_sky = None;
         }
-        let sky = &self.gamma_cache.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(&lut, sun_dir, sp))).2;
+        let sky = &self.cell_sky.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(&lut, sun_dir, sp))).2;
         let map = Arc::new(build_map_with(&frame.image, &lut, sky, sp, &self.reference));
         let cf = map.cloud_fraction(&lut, sp.cloud_fraction_zenith_deg as f32);
         if cf <= sp.library_max_cloud_fraction {
@@ -434,9 +434,11 @@ impl Nowcaster {
             point_stride: 1,
         };
         let tm = TransmittanceMap::new(&map, &input.params);
-        let fc = forecast_with(&tm, map.grid, &input);
+        let skies = horizon_skies(&input);
+        let fc = forecast_with(&tm, map.grid, &input, &skies);
         let t_central = Clock::now();
-        let (members, bands) = if self.irradiance.ensemble_members > 0 { ensemble_with(&tm, map.grid, &input, &fc) } else { (vec![], vec![]) };
+        let (members, bands) =
+            if self.irradiance.ensemble_members > 0 { ensemble_with(&tm, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
         // Ramp events from the plant's power series, and the alarm.
         let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
         let step_min = self.site.file.forecast.step_s as f64 / 60.0;

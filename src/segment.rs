@@ -171,14 +171,6 @@ impl SegmentParams {
         z_deg <= self.max_zenith_deg as f32 && gamma_deg >= self.sun_exclusion_deg.max(self.glare_zone_deg) as f32
     }
 
-    /// [`SegmentParams::default_reference`] tabulated in the sun angle (0.05° steps, linear
-    /// interpolation), for computing it over many pixels at once.
-    pub fn default_reference_table(&self) -> DefaultReferenceTable {
-        let scale = self.reference_gamma_scale_deg as f32;
-        let decay = (0..=(180.0 / DefaultReferenceTable::STEP_DEG) as usize + 1).map(|i| (-(i as f32 * DefaultReferenceTable::STEP_DEG) / scale).exp()).collect();
-        DefaultReferenceTable { c0: self.reference_c0 as f32, c1: self.reference_c1 as f32, c2: self.reference_c2 as f32, decay }
-    }
-
     /// The parametric default reference R/B at zenith `z_deg` and sun angle `gamma_deg`.
     #[inline]
     pub fn default_reference(&self, z_deg: f32, gamma_deg: f32) -> f32 {
@@ -186,29 +178,6 @@ impl SegmentParams {
         self.reference_c0 as f32
             + self.reference_c1 as f32 * (-gamma_deg / self.reference_gamma_scale_deg as f32).exp()
             + self.reference_c2 as f32 * zr * zr * zr * zr
-    }
-}
-
-/// The parametric default reference with its sun-angle term tabulated.
-#[derive(Debug, Clone)]
-pub struct DefaultReferenceTable {
-    c0: f32,
-    c1: f32,
-    c2: f32,
-    decay: Vec<f32>,
-}
-
-impl DefaultReferenceTable {
-    const STEP_DEG: f32 = 0.05;
-
-    /// The default reference R/B at zenith `z_deg` and sun angle `gamma_deg` (0–180°).
-    #[inline]
-    pub fn at(&self, z_deg: f32, gamma_deg: f32) -> f32 {
-        let x = (gamma_deg.clamp(0.0, 180.0)) / Self::STEP_DEG;
-        let i = ((x as i32) as usize).min(self.decay.len() - 2);
-        let f = x - i as f32;
-        let zr = z_deg / 90.0;
-        self.c0 + self.c1 * (self.decay[i] * (1.0 - f) + self.decay[i + 1] * f) + self.c2 * zr * zr * zr * zr
     }
 }
 
@@ -270,8 +239,7 @@ impl FrameReference<'_> {
     /// Reference R/B at a pixel whose parametric default is given.
     #[inline]
     fn at_with(&self, g: PixelGeom, default_rb: f32) -> f32 {
-        let i = lib_index(g.z_deg, g.gamma_deg);
-        if self.reference.weight[i] > 0.5 { self.reference.lib[i] } else { default_rb + self.offset }
+        self.reference_in_bin(lib_index(g.z_deg, g.gamma_deg), default_rb)
     }
 
     /// Reference R/B of a pixel from its library bin ([`lib_index`]) and parametric default.
@@ -601,14 +569,6 @@ mod tests {
 
     fn geom(z: f32, g: f32) -> PixelGeom {
         PixelGeom { z_deg: z, gamma_deg: g }
-    }
-
-    #[test]
-    fn tabulated_default_reference_matches_the_formula() {
-        let p = SegmentParams::default();
-        let t = p.default_reference_table();
-        let worst = (0..=1800).map(|i| i as f32 * 0.1).map(|g| (t.at(40.0, g) - p.default_reference(40.0, g)).abs()).fold(0f32, f32::max);
-        assert!(worst < 1e-4, "{worst}");
     }
 
     #[test]
