@@ -61,8 +61,8 @@ fn run(c: &mut Criterion, pool: &rayon::ThreadPool, s: &Scene, site: &Site, fram
     let sky = CellSky::new(&lut, sun_dir, &s.site.segment);
     g.bench_function("cell sun angles", |b| b.iter(|| pool.install(|| CellSky::new(&lut, sun_dir, &s.site.segment))));
     g.bench_function("segment+map", |b| b.iter(|| pool.install(|| build_map_with(&frames[FRAMES - 1].image, &lut, &sky, &s.site.segment, &reference))));
-    let prior = last.motion;
-    g.bench_function("motion", |b| b.iter(|| pool.install(|| measure(&earlier.map, &last.map, dt_s, &s.site.motion, prior))));
+    let priors: Vec<_> = last.layers.iter().map(|l| l.motion).collect();
+    g.bench_function("motion", |b| b.iter(|| pool.install(|| measure(&earlier.map, &last.map, dt_s, &s.site.motion, &priors))));
     // A whole step (QC, map, motion, forecast, ensemble), on a fresh engine fed the earlier frames.
     g.bench_function("step (with ensemble)", |b| {
         b.iter_batched(

@@ -218,14 +218,25 @@ impl TransmittanceMap {
     /// Build from a map and per-class transmittances. Unknown cells that the camera sees (the sun's
     /// glare) take the class shares of their known neighbours, spreading inward a cell at a time.
     pub fn new(map: &CloudMap, p: &IrradianceParams) -> TransmittanceMap {
+        Self::for_layer(map, p, None)
+    }
+
+    /// [`TransmittanceMap::new`] for one layer of a map whose cloudy cells carry layer labels
+    /// (`labels[k]` = layer index): the other layers' cloud counts as clear sky here.
+    pub fn for_layer(map: &CloudMap, p: &IrradianceParams, layer: Option<(&[u8], u8)>) -> TransmittanceMap {
         let n = map.grid.n;
+        let relabelled: Option<Vec<u8>> = layer.map(|(labels, l)| {
+            let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
+            map.class.iter().zip(labels).map(|(c, lb)| if (*c == thin || *c == thick) && *lb != l { Class::Clear as u8 } else { *c }).collect()
+        });
+        let class: &[u8] = relabelled.as_deref().unwrap_or(&map.class);
         let w = n + 1;
         // Known cells are one class; unknown in-view cells get filled shares. `known` marks both.
         let class_known = |c: u8| Class::from_u8(c) != Class::Unknown;
-        let mut known: Vec<bool> = map.class.iter().map(|c| class_known(*c)).collect();
+        let mut known: Vec<bool> = class.iter().map(|c| class_known(*c)).collect();
         let mut filled: Vec<[f32; 3]> = vec![[0.0; 3]; n * n];
         let shares = |k: usize, filled: &[[f32; 3]]| -> [f32; 3] {
-            match Class::from_u8(map.class[k]) {
+            match Class::from_u8(class[k]) {
                 Class::Clear => [1.0, 0.0, 0.0],
                 Class::Thin => [0.0, 1.0, 0.0],
                 Class::Thick => [0.0, 0.0, 1.0],
@@ -277,7 +288,7 @@ impl TransmittanceMap {
             for i in 0..n {
                 let k = j * n + i;
                 if known[k] {
-                    let c = map.class[k];
+                    let c = class[k];
                     if class_known(c) {
                         rs[c as usize - 1] += SHARE_UNIT as i32;
                     } else {
@@ -387,10 +398,9 @@ pub struct ForecastInput<'a> {
     pub camera_m: [f64; 3],
     /// Cloud base height above ground \[m\].
     pub cbh_m: f64,
-    /// Cloud motion (east, north) \[m/s\].
-    pub v_mps: [f64; 2],
-    /// Its one-sigma uncertainty \[m/s\].
-    pub sigma_mps: f64,
+    /// Motion of each cloud layer, aligned with the transmittance tables given to
+    /// [`forecast_with`] (one layer: the whole map).
+    pub layers: Vec<Advection>,
     /// Current cloud fraction.
     pub cloud_fraction: f64,
     /// Horizons \[s\].
@@ -412,6 +422,15 @@ pub struct ForecastInput<'a> {
     /// Use every n-th point of each block (1 for the central forecast; ensemble members thin the
     /// points, their block means change little).
     pub point_stride: usize,
+}
+
+/// How one cloud layer moves.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Advection {
+    /// Velocity (east, north) on the cloud plane \[m/s\].
+    pub v_mps: [f64; 2],
+    /// Its one-sigma uncertainty per component \[m/s\].
+    pub sigma_mps: f64,
 }
 
 /// Forecast for one target (block or plant) and horizon.
@@ -451,19 +470,29 @@ pub fn sun_ray_plane_point(p: [f64; 2], cbh_m: f64, camera_m: [f64; 3], zenith_r
 }
 
 /// Forecast irradiance for all plant points and horizons from the current map's transmittance
-/// tables (one per frame, shared with the ensemble) and the horizons' sun and clear sky
+/// tables (one per frame and layer, shared with the ensemble) and the horizons' sun and clear sky
 /// ([`horizon_skies`], also shared).
 ///
 /// Per point only the beam transmittance is looked up: the diffuse is the same for every point at a
 /// horizon, and GHI and the Hay–Davies plane-of-array terms are linear in DNI and DHI, so a block's
-/// means follow from its mean transmittance exactly.
-pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
+/// means follow from its mean transmittance exactly. With two layers (`tms[k]` moving by
+/// `input.layers[k]`), a sun ray crosses both: its transmittance is the product of the layers'
+/// transmittances relative to clear sky, times the clear-sky one.
+pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
     let mut out = Forecast::default();
     out.rows.reserve(skies.len() * (input.plant.blocks.len() + 1));
     let p = &input.params;
     let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
-    let mean = tm.mean_with(beams);
-    let mean = if mean.is_nan() { p.beam_clear } else { mean };
+    let n_layers = tms.len().min(input.layers.len()).min(MAX_LAYERS);
+    let mut means = [p.beam_clear; MAX_LAYERS];
+    for (m, tm) in means.iter_mut().zip(tms) {
+        let v = tm.mean_with(beams);
+        if !v.is_nan() {
+            *m = v;
+        }
+    }
+    // Each further layer's transmittance is taken relative to clear sky.
+    let rel = if n_layers > 1 && p.beam_clear > 0.0 { p.beam_clear.powi(1 - n_layers as i32) } else { 1.0 };
     let wp = p.fallback_persistence_weight;
     let stride = input.point_stride.max(1);
     for hs in skies {
@@ -472,15 +501,20 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
         let cz = z.cos();
         let up = cz > 0.0 && clear.ghi_wm2 > 0.0;
         let k = h as f64;
-        let blur_m = (p.blur_min_m.powi(2) + (input.sigma_mps * k).powi(2) + (p.blur_growth_mps * k).powi(2)).sqrt();
-        let r_cells = blur_m / grid.cell_m;
         let dhi = clear.dhi_wm2 + input.diffuse_scale * input.cloud_fraction.clamp(0.0, 1.0) * p.diffuse_per_cover * clear.ghi_wm2;
         let mut plant_acc = [0f64; 6];
         let mut plant_power = 0.0;
         // Shift from a plant point to the cloud-map point its sun ray comes from (relative to the
-        // camera, advected back by the motion): the same for every point at this horizon.
+        // camera, advected back by each layer's motion), and each layer's look-up radius: the same
+        // for every point at this horizon.
         let off = sun_ray_plane_point([0.0, 0.0], input.cbh_m, input.camera_m, z, a);
-        let adv = [off[0] - input.v_mps[0] * k, off[1] - input.v_mps[1] * k];
+        let mut adv = [[0.0; 2]; MAX_LAYERS];
+        let mut r_cells = [0.0; MAX_LAYERS];
+        for (l, ad) in input.layers.iter().take(n_layers).enumerate() {
+            adv[l] = [off[0] - ad.v_mps[0] * k, off[1] - ad.v_mps[1] * k];
+            let blur_m = (p.blur_min_m.powi(2) + (ad.sigma_mps * k).powi(2) + (p.blur_growth_mps * k).powi(2)).sqrt();
+            r_cells[l] = blur_m / grid.cell_m;
+        }
         let dni_extra = sun.dni_extra_wm2();
         for b in &input.plant.blocks {
             let (tilt, saz) = block_plane(&b.mount, z, a);
@@ -496,16 +530,21 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
                 if !up {
                     continue;
                 }
-                let (sx, sy) = grid.to_cell([pt[0] + adv[0], pt[1] + adv[1]]);
-                let tr = match tm.box_mean_with(sx, sy, r_cells, beams) {
-                    Some(v) => v,
-                    None => {
-                        let (qx, qy) = grid.to_cell([pt[0] + off[0], pt[1] + off[1]]);
-                        let now = tm.box_mean_with(qx, qy, r_cells, beams).unwrap_or(mean);
-                        fb_sum += 1;
-                        wp * now + (1.0 - wp) * mean
-                    }
-                };
+                let mut tr = rel;
+                let mut fell_back = false;
+                for l in 0..n_layers {
+                    let (sx, sy) = grid.to_cell([pt[0] + adv[l][0], pt[1] + adv[l][1]]);
+                    tr *= match tms[l].box_mean_with(sx, sy, r_cells[l], beams) {
+                        Some(v) => v,
+                        None => {
+                            let (qx, qy) = grid.to_cell([pt[0] + off[0], pt[1] + off[1]]);
+                            let now = tms[l].box_mean_with(qx, qy, r_cells[l], beams).unwrap_or(means[l]);
+                            fell_back = true;
+                            wp * now + (1.0 - wp) * means[l]
+                        }
+                    };
+                }
+                fb_sum += fell_back as usize;
                 tr_sum += (tr * input.beam_scale).min(1.3);
             }
             let nf = count.max(1) as f64;
@@ -533,6 +572,9 @@ pub fn forecast_with(tm: &TransmittanceMap, grid: crate::cloudmap::Grid, input: 
     }
     out
 }
+
+/// Most cloud layers a forecast advects separately.
+pub const MAX_LAYERS: usize = 2;
 
 fn row(name: &str, h: u32, t: DateTime<Utc>, acc: &[f64; 6], ghi_clear: f64) -> TargetForecast {
     let n = acc[5].max(1.0);
@@ -608,7 +650,7 @@ pub fn quantile_sorted(v: &[f64], q: f64) -> f64 {
 /// beam transmittance and the cloud-scattered diffuse; deterministic for a given issue time. The
 /// transmittance tables and horizon skies are the central forecast's.
 pub fn ensemble_with(
-    tm: &TransmittanceMap,
+    tms: &[TransmittanceMap],
     grid: crate::cloudmap::Grid,
     input: &ForecastInput,
     skies: &[HorizonSky],
@@ -617,7 +659,6 @@ pub fn ensemble_with(
     use crate::synth::noise::{gaussian, hash64};
     let p = &input.params;
     let seed = input.issue.timestamp_millis() as u64;
-    let sigma = input.sigma_mps.max(p.ensemble_motion_sigma_mps);
     use rayon::prelude::*;
     // Under little cloud the beam is better known: the clear-sky and whole-beam spreads are full at
     // cloud cover `ensemble_full_spread_cover` and shrink in proportion below it, never below a
@@ -628,7 +669,13 @@ pub fn ensemble_with(
         .map(|m| {
             let g = |k: u64| gaussian(hash64(seed ^ (m as u64 * 97 + k)), hash64(seed.rotate_left(13) ^ (m as u64 * 89 + k)));
             let mut inp = input.clone();
-            inp.v_mps = [input.v_mps[0] + sigma * g(1), input.v_mps[1] + sigma * g(2)];
+            for (l, ad) in inp.layers.iter_mut().enumerate() {
+                let sigma = ad.sigma_mps.max(p.ensemble_motion_sigma_mps);
+                let o = 10 * l as u64;
+                ad.v_mps = [ad.v_mps[0] + sigma * g(1 + o), ad.v_mps[1] + sigma * g(2 + o)];
+                // Members are sharp: their spread, not a blur, carries the uncertainty.
+                ad.sigma_mps = 0.0;
+            }
             inp.cbh_m = input.cbh_m * (1.0 + p.ensemble_cbh_rel_sigma * g(3)).max(0.3);
             // Per-class transmittances: clear sky varies little, thin and thick cloud a lot.
             let gb = g(4);
@@ -640,10 +687,8 @@ pub fn ensemble_with(
             inp.beam_scale = (1.0 + 0.5 * p.ensemble_beam_rel_sigma * cover_share * g(8)).max(0.0);
             inp.diffuse_scale = (1.0 + p.ensemble_diffuse_rel_sigma * g(5)).max(0.0);
             inp.point_stride = 3;
-            // Members are sharp: their spread, not a blur, carries the uncertainty.
-            inp.sigma_mps = 0.0;
             inp.params.blur_growth_mps = 0.0;
-            forecast_with(tm, grid, &inp, skies)
+            forecast_with(tms, grid, &inp, skies)
         })
         .collect();
     let bands = (0..central.rows.len())

@@ -9,9 +9,9 @@ use chrono::{DateTime, Utc};
 
 use crate::cloudmap::{CloudMap, LutCache, build_map_with};
 use crate::config::Site;
-use crate::forecast::{Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, horizon_skies, sun_ray_plane_point};
+use crate::forecast::{Advection, Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, horizon_skies, sun_ray_plane_point};
 use crate::io::{Measurements, Series};
-use crate::motion::{Measurement, Motion, MotionFilter, measure};
+use crate::motion::{LayerTracker, Measurement, Motion, TrackedLayer, label_layers, measure};
 use crate::plant::Plant;
 use crate::segment::{Class, Reference};
 use crate::sun::{SunPosition, position};
@@ -113,8 +113,10 @@ pub struct Nowcast {
     pub map: Arc<CloudMap>,
     /// Motion measured against the previous map.
     pub measurement: Option<Measurement>,
-    /// Filtered motion used by the forecast.
+    /// Filtered motion of the forecast's first (most opaque) layer.
     pub motion: Option<Motion>,
+    /// Every layer the forecast advected, the most opaque first.
+    pub layers: Vec<TrackedLayer>,
     /// The forecast.
     pub forecast: Forecast,
     /// P10 / P50 / P90 per forecast row (empty without an ensemble).
@@ -202,7 +204,7 @@ pub struct Nowcaster {
     reference: Reference,
     history: std::collections::VecDeque<(DateTime<Utc>, Arc<CloudMap>)>,
     last_time: Option<DateTime<Utc>>,
-    filter: MotionFilter,
+    tracker: LayerTracker,
     cbh_series: Option<Series>,
     measurements: Option<(Measurements, Vec<(usize, [f64; 2])>)>,
     tuner: Tuner,
@@ -236,7 +238,7 @@ impl Nowcaster {
             reference: Reference::default(),
             history: Default::default(),
             last_time: None,
-            filter: MotionFilter::default(),
+            tracker: LayerTracker::default(),
             cbh_series,
             measurements,
             tuner: Tuner::default(),
@@ -404,10 +406,11 @@ impl Nowcaster {
         // Earlier map: the newest at least `baseline_s` old, else the oldest kept; within the gap limit.
         let age = |t: &DateTime<Utc>| (frame.time - *t).num_milliseconds() as f64 / 1000.0;
         self.history.retain(|(t, m)| age(t) <= mp.max_gap_s && m.grid == map.grid);
-        let earlier = self.history.iter().rev().find(|(t, _)| age(t) >= mp.baseline_s).or(self.history.front());
-        let prior = self.filter.current();
-        let measurement = earlier.map(|(t, pm)| measure(pm, &map, age(t), mp, prior));
-        let motion = self.filter.update(measurement.as_ref(), dt_s.unwrap_or(0.0), mp);
+        let earlier = self.history.iter().rev().find(|(t, _)| age(t) >= mp.baseline_s).or(self.history.front()).cloned();
+        let priors = self.tracker.priors();
+        let measurement = earlier.as_ref().map(|(t, pm)| measure(pm, &map, age(t), mp, &priors));
+        let layers = self.tracker.update(measurement.as_ref(), dt_s.unwrap_or(0.0), mp);
+        let motion = layers.first().map(|l| l.motion);
         let t_motion = Clock::now();
         // Tuning from measurements at the frame time.
         if self.irradiance.tune_from_measurements {
@@ -420,8 +423,11 @@ impl Nowcaster {
             altitude_m: self.site.file.site.elevation_m,
             camera_m: self.site.file.camera.position_m,
             cbh_m: cbh,
-            v_mps: motion.map(|m| m.v_mps).unwrap_or([0.0, 0.0]),
-            sigma_mps: motion.map(|m| m.sigma_mps).unwrap_or(3.0),
+            layers: if layers.is_empty() {
+                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0 }]
+            } else {
+                layers.iter().map(|l| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps }).collect()
+            },
             cloud_fraction: if cf.is_nan() { 0.0 } else { cf },
             horizons_s: self.horizons_s(),
             plant: &self.plant,
@@ -433,12 +439,20 @@ impl Nowcaster {
             diffuse_scale: 1.0,
             point_stride: 1,
         };
-        let tm = TransmittanceMap::new(&map, &input.params);
+        // Two layers: each cloudy cell goes with the layer whose motion explains it, and each layer's
+        // cloud is advected by its own motion.
+        let tms = match (&earlier, layers.as_slice()) {
+            (Some((t, pm)), [l0, l1, ..]) => {
+                let labels = label_layers(pm, &map, age(t), &[l0.motion.v_mps, l1.motion.v_mps]);
+                vec![TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 0))), TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 1)))]
+            }
+            _ => vec![TransmittanceMap::new(&map, &input.params)],
+        };
         let skies = horizon_skies(&input);
-        let fc = forecast_with(&tm, map.grid, &input, &skies);
+        let fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
         let (members, bands) =
-            if self.irradiance.ensemble_members > 0 { ensemble_with(&tm, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
+            if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
         // Ramp events from the plant's power series, and the alarm.
         let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
         let step_min = self.site.file.forecast.step_s as f64 / 60.0;
@@ -466,6 +480,7 @@ impl Nowcaster {
             map,
             measurement,
             motion,
+            layers,
             forecast: fc,
             bands,
             plant_members_ghi_wm2,

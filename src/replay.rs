@@ -169,7 +169,7 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut String) {
 }
 
 /// Header of `motion.csv`.
-pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg\n";
+pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps\n";
 
 /// Append a nowcast's motion row.
 pub fn motion_row(nc: &Nowcast, out: &mut String) {
@@ -191,14 +191,18 @@ pub fn motion_row(nc: &Nowcast, out: &mut String) {
         let _ = write!(out, "{},{},{},", f(l(i).map(|x| x.v_mps[0])), f(l(i).map(|x| x.v_mps[1])), l(i).map(|x| x.blocks.to_string()).unwrap_or_default());
     }
     let mo = nc.motion;
+    let second = nc.layers.get(1).map(|l| l.motion);
     let _ = writeln!(
         out,
-        "{},{},{},{},{}",
+        "{},{},{},{},{},{},{},{}",
         f(mo.map(|m| m.v_mps[0])),
         f(mo.map(|m| m.v_mps[1])),
         f(mo.map(|m| m.sigma_mps)),
         f(mo.map(|m| m.v_mps[0].hypot(m.v_mps[1]))),
-        f(mo.map(|m| m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)))
+        f(mo.map(|m| m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0))),
+        f(second.map(|m| m.v_mps[0])),
+        f(second.map(|m| m.v_mps[1])),
+        f(second.map(|m| m.sigma_mps))
     );
 }
 

@@ -172,8 +172,8 @@ pub struct MotionScore {
     pub speed_error_mps: f64,
     /// Median absolute direction error \[°\].
     pub direction_error_deg: f64,
-    /// Share of frames (with two truth layers) where a second layer was reported near the second
-    /// truth layer's apparent vector.
+    /// Share of frames (with two truth layers) where both were found: the forecast's two tracked
+    /// layers lie within 1.5 m/s of the two truth layers' apparent vectors, one each.
     pub second_layer_found_share: Option<f64>,
 }
 
@@ -212,14 +212,12 @@ pub fn score_motion(motion: &Path, layers: &Path) -> Result<MotionScore, InputEr
         de.push(d);
         if let Some(s2) = second {
             two_frames += 1;
-            let l2 = (num(motion, r, "layer2_east_mps"), num(motion, r, "layer2_north_mps"));
-            let l1 = (num(motion, r, "layer1_east_mps"), num(motion, r, "layer1_north_mps"));
-            let near = |l: (Result<f64, _>, Result<f64, _>)| match l {
-                (Ok(a), Ok(b)) => (a - s2[0]).hypot(b - s2[1]) < 1.5,
-                _ => false,
-            };
-            if near(l2) || near(l1) {
-                found += 1;
+            let near = |v: [f64; 2], t: [f64; 2]| (v[0] - t[0]).hypot(v[1] - t[1]) < 1.5;
+            if let (Ok(e2), Ok(n2)) = (num(motion, r, "second_east_mps"), num(motion, r, "second_north_mps")) {
+                let (p, q) = ([e, n], [e2, n2]);
+                if (near(p, v0) && near(q, s2)) || (near(p, s2) && near(q, v0)) {
+                    found += 1;
+                }
             }
         }
     }

@@ -21,11 +21,8 @@ const KNOWN_SHORTFALLS: &[(&str, &str)] = &[
     ("scattered-slow", "bands"),
     ("scattered-slow", "ramps"),
     ("two-layers", "bands"),
-    ("two-layers", "ramps"),
     ("two-layers", "segmentation"),
     ("two-layers", "circumsolar"),
-    ("two-layers", "motion"),
-    ("two-layers", "skill"),
 ];
 
 fn run(name: &str, minutes: f64, spec_edit: impl Fn(&mut nephocast::synth::SceneSpec)) -> Evaluation {

@@ -264,40 +264,129 @@ fn parabola_offset(l: f64, c: f64, r: f64) -> f64 {
     if d.abs() < 1e-12 { 0.0 } else { (0.5 * (l - r) / d).clamp(-0.5, 0.5) }
 }
 
-/// The feature a block-matching pass works on.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Feature {
-    /// The cloudiness score, clipped to [−0.5, 1.5].
-    Score,
-    /// The score with thick cloud masked out: the thin (often higher) layer and the clear sky
-    /// between its clouds.
-    ThinOnly,
-    /// Thick cloud alone: the score where the class is thick, zero elsewhere (thin cloud of another
-    /// layer does not blur the pattern).
-    ThickOnly,
-}
-
-fn feature_map(m: &CloudMap, f: Feature) -> Vec<f32> {
+/// The matched feature of a map: the cloudiness score clipped to [−0.5, 1.5], NaN where unknown.
+pub(super) fn score_feature(m: &CloudMap) -> Vec<f32> {
     let mut out = pool::take_f32();
-    out.extend(m.score.iter()
-        .zip(&m.class)
-        .map(|(v, c)| {
-            let thick = *c == crate::segment::Class::Thick as u8;
-            if v.is_nan() || (f == Feature::ThinOnly && thick) {
-                f32::NAN
-            } else if f == Feature::ThickOnly && !thick {
-                0.0
-            } else {
-                v.clamp(-0.5, 1.5)
-            }
-        }));
+    out.extend(m.score.iter().map(|v| if v.is_nan() { f32::NAN } else { v.clamp(-0.5, 1.5) }));
     out
 }
 
-pub(super) fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, feature: Feature, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+/// Mean absolute difference of the two maps' features around each cell of `b` under a displacement
+/// `d` (cells, from `a` to `b`): `|b(y) − a(y − d)|`, `a` sampled bilinearly, averaged over the
+/// (2r + 1)² box around y, over the pairs both known. NaN where the box holds no such pair.
+pub(super) fn box_mismatch(a: &CloudMap, b: &CloudMap, d: [f64; 2], r: usize) -> Vec<f32> {
+    let n = b.grid.n;
+    let w = n + 1;
+    let feat = |m: &CloudMap, k: usize| m.score[k].clamp(-0.5, 1.5);
+    let mut sat_v = pool::take_f32();
+    let mut sat_c = pool::take_u32();
+    sat_v.resize(w * w, 0.0);
+    sat_c.resize(w * w, 0);
+    // a at y − d: integer part o, fractions (fx, fy) toward the next cell.
+    let (ox, oy) = ((-d[0]).floor() as i64, (-d[1]).floor() as i64);
+    let (fx, fy) = ((-d[0] - ox as f64) as f32, (-d[1] - oy as f64) as f32);
+    let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
+    // Columns i whose samples i + ox and i + ox + 1 are on the map.
+    let (i0, i1) = ((-ox).max(0) as usize, (n as i64 - 1 - ox).clamp(0, n as i64) as usize);
+    for j in 0..n {
+        let ja = j as i64 + oy;
+        let (mut rv, mut rc) = (0f32, 0u32);
+        let rows_ok = ja >= 0 && ja + 1 < n as i64;
+        for i in 0..n {
+            if rows_ok && i >= i0 && i < i1 {
+                let k = ja as usize * n + (i as i64 + ox) as usize;
+                let y = w00 * feat(a, k) + w10 * feat(a, k + 1) + w01 * feat(a, k + n) + w11 * feat(a, k + n + 1);
+                let x = feat(b, j * n + i);
+                if !x.is_nan() && !y.is_nan() {
+                    rv += (x - y).abs();
+                    rc += 1;
+                }
+            }
+            sat_v[(j + 1) * w + i + 1] = sat_v[j * w + i + 1] + rv;
+            sat_c[(j + 1) * w + i + 1] = sat_c[j * w + i + 1] + rc;
+        }
+    }
+    let mut out = pool::take_f32();
+    out.resize(n * n, f32::NAN);
+    for j in 0..n {
+        let (y0, y1) = (j.saturating_sub(r), (j + r + 1).min(n));
+        for i in 0..n {
+            let (x0, x1) = (i.saturating_sub(r), (i + r + 1).min(n));
+            let cnt = sat_c[y1 * w + x1] + sat_c[y0 * w + x0] - sat_c[y0 * w + x1] - sat_c[y1 * w + x0];
+            if cnt > 0 {
+                out[j * n + i] = (sat_v[y1 * w + x1] + sat_v[y0 * w + x0] - sat_v[y0 * w + x1] - sat_v[y1 * w + x0]) / cnt as f32;
+            }
+        }
+    }
+    pool::give_f32(sat_v);
+    pool::give_u32(sat_c);
+    out
+}
+
+/// Residual features of two maps under a displacement `d` (cells, from `a` to `b`): the cloud a
+/// layer moving by `d` does not explain.
+///
+/// A cell's mismatch is the mean absolute difference of the two maps around it under `d`
+/// ([`box_mismatch`], 5 × 5 cells: a single cloud interior may match by chance, a neighbourhood
+/// with its edges does not). Cloudy cells (thin or thick) whose mismatch reaches `tolerance` keep
+/// their feature; every other known cell becomes clear (0), so the second pass matches the
+/// unexplained cloud on an empty background. Returns the two maps and the share of cloudy cells,
+/// in both maps, left unexplained.
+pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], tolerance: f32) -> (Vec<f32>, Vec<f32>, f64) {
+    let n = a.grid.n;
+    let (dx, dy) = (d[0].round() as i64, d[1].round() as i64);
+    // Mismatch on b's grid; cell x of a pairs with (about) x + d of b.
+    let mis = box_mismatch(a, b, d, 2);
+    let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
+    let (mut left, mut total) = (0usize, 0usize);
+    let mut keep = |m: &CloudMap, k: usize, mk: f32| -> f32 {
+        let v = m.score[k];
+        if v.is_nan() {
+            return f32::NAN;
+        }
+        if !cloudy(m.class[k]) {
+            return 0.0;
+        }
+        total += 1;
+        // Where the displacement leaves the overlap it can neither explain nor refute: unknown.
+        if mk.is_nan() {
+            return f32::NAN;
+        }
+        if mk >= tolerance {
+            left += 1;
+            v.clamp(-0.5, 1.5)
+        } else {
+            0.0
+        }
+    };
+    let mut ra = pool::take_f32();
+    for k in 0..n * n {
+        let (i, j) = ((k % n) as i64 + dx, (k / n) as i64 + dy);
+        let mk = if i < 0 || j < 0 || i >= n as i64 || j >= n as i64 { f32::NAN } else { mis[j as usize * n + i as usize] };
+        ra.push(keep(a, k, mk));
+    }
+    let mut rb = pool::take_f32();
+    for k in 0..n * n {
+        rb.push(keep(b, k, mis[k]));
+    }
+    pool::give_f32(mis);
+    (ra, rb, left as f64 / total.max(1) as f64)
+}
+
+/// Block vectors between maps `a` and `b` on their score feature.
+pub(super) fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+    block_vectors_on(score_feature(a), score_feature(b), a, dt_s, params, prior)
+}
+
+/// Give a feature map back to the buffer pool.
+pub(super) fn recycle(v: Vec<f32>) {
+    pool::give_f32(v);
+}
+
+/// Block vectors between two feature maps on `a`'s grid (the features are given back to the pool).
+pub(super) fn block_vectors_on(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
-    let (fa, fb) = (feature_map(a, feature), feature_map(b, feature));
     let (ca_raw, nc) = downsample4(&fa, n);
     let (cb_raw, _) = downsample4(&fb, n);
     let (ca, cb) = (Plane::new(&ca_raw, nc, false), Plane::new(&cb_raw, nc, true));
@@ -336,12 +425,6 @@ pub(super) fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &Moti
                 return None;
             }
             let mean = s / k as f64;
-            let thick = if feature == Feature::ThinOnly {
-                0.0
-            } else {
-                let thick_u8 = crate::segment::Class::Thick as u8;
-                (ay..ay + bs).map(|j| a.class[j * n + ax..j * n + ax + bs].iter().filter(|c| **c == thick_u8).count()).sum::<usize>() as f64 / k as f64
-            };
             let sd = (ss / k as f64 - mean * mean).max(0.0).sqrt();
             if sd < params.min_texture {
                 return None;
@@ -438,6 +521,19 @@ pub(super) fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &Moti
             if v_mps[0].hypot(v_mps[1]) > params.max_speed_mps {
                 return None;
             }
+            // Opacity: the share of the block's matched cloud (cloudy cells whose feature is not
+            // blanked) that is thick.
+            let (thin_u8, thick_u8) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
+            let (mut n_thick, mut n_cloud) = (0usize, 0usize);
+            for j in ay..ay + bs {
+                for (c, f) in a.class[j * n + ax..j * n + ax + bs].iter().zip(&fa[j * n + ax..j * n + ax + bs]) {
+                    if (*c == thin_u8 || *c == thick_u8) && *f != 0.0 && !f.is_nan() {
+                        n_cloud += 1;
+                        n_thick += (*c == thick_u8) as usize;
+                    }
+                }
+            }
+            let thick = n_thick as f64 / n_cloud.max(1) as f64;
             Some(BlockVector { centre_m: c, v_mps, peak: fb_best.0, mean_score: mean, thick_share: thick })
         })
         .collect();
@@ -496,13 +592,15 @@ fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, 
                 if y0 < 0 || y0 + 1 >= n as i64 {
                     continue;
                 }
-                let c0 = (ax as i64 + 1 + ox) as usize;
+                // First sampled column (on the map by the choice of x_lo, even when the block's
+                // own first column plus the offset is not).
+                let c0 = (ax as i64 + 1 + ox + x_lo as i64) as usize;
                 let r0 = &fb[y0 as usize * n + c0..];
                 let r1 = &fb[(y0 as usize + 1) * n + c0..];
                 let t = j * m;
                 let len = x_hi - x_lo;
-                let (p00, p10) = (&r0[x_lo..x_lo + len], &r0[x_lo + 1..x_lo + 1 + len]);
-                let (p01, p11) = (&r1[x_lo..x_lo + len], &r1[x_lo + 1..x_lo + 1 + len]);
+                let (p00, p10) = (&r0[..len], &r0[1..1 + len]);
+                let (p01, p11) = (&r1[..len], &r1[1..1 + len]);
                 let (va, vx, vy) = (&ta[t + x_lo..t + x_hi], &tgx[t + x_lo..t + x_hi], &tgy[t + x_lo..t + x_hi]);
                 // Eight lanes so that the sums vectorize; unknown cells give NaN and count zero.
                 let (mut s1, mut s2) = ([0f32; 8], [0f32; 8]);

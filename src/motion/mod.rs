@@ -30,8 +30,7 @@ use crate::cloudmap::CloudMap;
 use crate::config::{ConfigError, check_range};
 
 mod matching;
-pub use matching::Feature;
-use matching::block_vectors;
+use matching::{block_vectors, block_vectors_on, box_mismatch, residual_features};
 
 /// `[motion]` in `site.toml`.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -58,6 +57,16 @@ pub struct MotionParams {
     pub two_layer_separation_mps: f64,
     /// Process noise of the temporal filter \[(m/s)² per s\].
     pub filter_process_noise: f64,
+    /// A cell's cloud counts as explained by a layer's displacement when the two maps differ there
+    /// by less than this (score units, smallest over the 3 × 3 neighbourhood).
+    pub residual_tolerance: f64,
+    /// The unexplained cloud is matched in a second pass when it is at least this share of the
+    /// cloudy cells.
+    pub residual_min_share: f64,
+    /// A layer's filter is dropped after this long without a measurement \[s\].
+    pub layer_expiry_s: f64,
+    /// A second layer enters the forecast after this many measurements.
+    pub layer_confirm: usize,
 }
 
 impl Default for MotionParams {
@@ -73,6 +82,10 @@ impl Default for MotionParams {
             baseline_s: 100.0,
             two_layer_separation_mps: 2.0,
             filter_process_noise: 0.002,
+            residual_tolerance: 0.25,
+            residual_min_share: 0.08,
+            layer_expiry_s: 300.0,
+            layer_confirm: 3,
         }
     }
 }
@@ -92,7 +105,11 @@ impl MotionParams {
         check_range(file, "motion.max_gap_s", self.max_gap_s, 1.0, 3600.0)?;
         check_range(file, "motion.baseline_s", self.baseline_s, 0.0, self.max_gap_s)?;
         check_range(file, "motion.two_layer_separation_mps", self.two_layer_separation_mps, 0.1, 50.0)?;
-        check_range(file, "motion.filter_process_noise", self.filter_process_noise, 0.0, 10.0)
+        check_range(file, "motion.filter_process_noise", self.filter_process_noise, 0.0, 10.0)?;
+        check_range(file, "motion.residual_tolerance", self.residual_tolerance, 0.01, 2.0)?;
+        check_range(file, "motion.residual_min_share", self.residual_min_share, 0.0, 1.0)?;
+        check_range(file, "motion.layer_expiry_s", self.layer_expiry_s, 1.0, 3600.0)?;
+        check_range(file, "motion.layer_confirm", self.layer_confirm as f64, 1.0, 100.0)
     }
 }
 
@@ -120,8 +137,10 @@ pub struct LayerMotion {
     pub blocks: usize,
     /// Mean block score.
     pub mean_score: f64,
-    /// Mean thick-cloud share of its blocks: the layer with the most drives the forecast.
+    /// Mean thick-cloud share of its blocks' matched cloud (opacity).
     pub thick_share: f64,
+    /// Spread of its block vectors around it \[m/s\].
+    pub spread_mps: f64,
 }
 
 /// Motion measured between two maps.
@@ -142,22 +161,29 @@ pub struct Measurement {
 }
 
 /// Measure motion from map `a` (earlier) to map `b`, `dt_s` apart. Both maps must share a grid.
+/// `priors` are the tracked layers' filtered motions, the one expected to dominate first: the
+/// first pass searches around the first, the residual pass around the second.
 ///
-/// The score is matched; when thin cloud covers at least 5 % of the known cells, two passes match
-/// thick cloud alone and thin cloud alone, so that a thin layer moving differently from the thick
-/// one yields vectors of its own and does not blur the other's. All vectors are then clustered.
-pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> Measurement {
-    let mut vectors = vec![];
-    let mut tried = 0;
-    let known = a.class.iter().filter(|c| **c != 0).count().max(1);
-    let thin = a.class.iter().filter(|c| **c == crate::segment::Class::Thin as u8).count();
-    let passes: &[Feature] =
-        if thin as f64 >= 0.05 * known as f64 { &[Feature::ThickOnly, Feature::ThinOnly] } else { &[Feature::Score] };
-    for f in passes {
-        let (v, t) = block_vectors(a, b, dt_s, params, *f, prior);
-        vectors.extend(v);
-        tried += t;
+/// The first pass matches the score. When its dominant layer's displacement leaves at least
+/// `residual_min_share` of the cloudy cells unexplained (another layer moving otherwise), a second
+/// pass matches that residual cloud alone on a clear background ([`matching::residual_features`]),
+/// so that a layer too sparse or too faint to win blocks in the first pass yields vectors of its
+/// own. All vectors are then clustered.
+pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
+    let (mut vectors, mut tried) = block_vectors(a, b, dt_s, params, priors.first().copied());
+    let first = summarize(vectors.clone(), tried, dt_s, params);
+    let Some(dominant) = first.layers.iter().max_by_key(|l| l.blocks) else { return first };
+    let cell = a.grid.cell_m;
+    let d = [dominant.v_mps[0] * dt_s / cell, dominant.v_mps[1] * dt_s / cell];
+    let (ra, rb, share) = residual_features(a, b, d, params.residual_tolerance as f32);
+    if share < params.residual_min_share {
+        matching::recycle(ra);
+        matching::recycle(rb);
+        return first;
     }
+    let (v2, t2) = block_vectors_on(ra, rb, a, dt_s, params, priors.get(1).copied());
+    vectors.extend(v2);
+    tried += t2;
     summarize(vectors, tried, dt_s, params)
 }
 
@@ -206,7 +232,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         let ms = members.iter().map(|v| v.mean_score).sum::<f64>() / members.len().max(1) as f64;
         let ts = members.iter().map(|v| v.thick_share).sum::<f64>() / members.len().max(1) as f64;
         let spread = (members.iter().map(|v| dist(v.v_mps, c[ci]).powi(2)).sum::<f64>() / members.len().max(1) as f64).sqrt();
-        (LayerMotion { v_mps: c[ci], blocks: members.len(), mean_score: ms, thick_share: ts }, spread)
+        (LayerMotion { v_mps: c[ci], blocks: members.len(), mean_score: ms, thick_share: ts, spread_mps: spread }, spread)
     };
     let (l0, s0) = layer(0);
     let (l1, s1) = layer(1);
@@ -229,9 +255,31 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         let spread = (inl.iter().map(|b| dist(b.v_mps, v).powi(2)).sum::<f64>() / m).sqrt();
         let ms = inl.iter().map(|v| v.mean_score).sum::<f64>() / m;
         let ts = inl.iter().map(|v| v.thick_share).sum::<f64>() / m;
-        (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms, thick_share: ts }], spread)
+        (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms, thick_share: ts, spread_mps: spread }], spread)
     };
     Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread }
+}
+
+/// Which layer each cloudy cell of map `b` belongs to, given the layers' velocities `vs` (m/s,
+/// from the earlier map `a`, `dt_s` before): the one whose displacement makes `a` match `b` best
+/// over the cell's neighbourhood (mean absolute score difference over a 9 × 9 box; broad cloud
+/// interiors match under many displacements, their edges only under the right one). Other cells,
+/// and cells no displacement can judge, get layer 0.
+pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
+    let n = b.grid.n;
+    let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
+    let mut best = vec![(f32::INFINITY, 0u8); n * n];
+    for (l, v) in vs.iter().enumerate().take(u8::MAX as usize) {
+        let d = [v[0] * dt_s / b.grid.cell_m, v[1] * dt_s / b.grid.cell_m];
+        let mis = box_mismatch(a, b, d, 4);
+        for (k, (m, bst)) in mis.iter().zip(best.iter_mut()).enumerate() {
+            if cloudy(b.class[k]) && *m < bst.0 {
+                *bst = (*m, l as u8);
+            }
+        }
+        matching::recycle(mis);
+    }
+    best.into_iter().map(|b| b.1).collect()
 }
 
 /// Temporal filter of the forecast's motion vector (a Kalman filter per component with gating).
@@ -240,7 +288,14 @@ pub struct MotionFilter {
     state: Option<([f64; 2], f64)>,
     /// Measurements rejected by the gate.
     pub gated: usize,
+    /// Measurements rejected in a row.
+    gated_run: usize,
 }
+
+/// After this many measurements in a row rejected by the gate, the filter restarts from the
+/// newest: it had locked onto something else (a blend of layers while the motion was first
+/// being found, or a wind shift).
+const RESTART_AFTER_GATED: usize = 3;
 
 /// The filtered motion at one frame.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -257,9 +312,9 @@ impl MotionFilter {
         self.state.map(|(v, p)| Motion { v_mps: v, sigma_mps: p.sqrt() })
     }
 
-    /// Advance by `dt_s` and fold in a measurement (if any).
-    pub fn update(&mut self, m: Option<&Measurement>, dt_s: f64, params: &MotionParams) -> Option<Motion> {
-        let meas = m.and_then(|m| m.layers.first().map(|l| (l.v_mps, m.spread_mps, l.blocks)));
+    /// Advance by `dt_s` and fold in a measured layer (if any).
+    pub fn update(&mut self, m: Option<&LayerMotion>, dt_s: f64, params: &MotionParams) -> Option<Motion> {
+        let meas = m.map(|l| (l.v_mps, l.spread_mps, l.blocks));
         match (&mut self.state, meas) {
             (None, Some((v, spread, nb))) => {
                 let r = spread.powi(2) / nb.max(1) as f64 + 0.05;
@@ -271,19 +326,141 @@ impl MotionFilter {
                 let innov = dist(v, *x);
                 let r_eff = if innov > 3.0 * (*p + r).sqrt() && *p < 1.0 {
                     self.gated += 1;
+                    self.gated_run += 1;
                     r * 25.0
                 } else {
+                    self.gated_run = 0;
                     r
                 };
-                let k = *p / (*p + r_eff);
-                x[0] += k * (v[0] - x[0]);
-                x[1] += k * (v[1] - x[1]);
-                *p *= 1.0 - k;
+                if self.gated_run >= RESTART_AFTER_GATED {
+                    self.gated_run = 0;
+                    self.state = Some((v, r.max(0.25)));
+                } else {
+                    let k = *p / (*p + r_eff);
+                    x[0] += k * (v[0] - x[0]);
+                    x[1] += k * (v[1] - x[1]);
+                    *p *= 1.0 - k;
+                }
             }
             (Some((_, p)), None) => *p += params.filter_process_noise * dt_s,
             (None, None) => {}
         }
         self.current()
+    }
+}
+
+/// A tracked layer's filtered motion at one frame.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct TrackedLayer {
+    /// Filtered motion.
+    pub motion: Motion,
+    /// Opacity: smoothed thick-cloud share of its blocks' matched cloud.
+    pub thick_share: f64,
+}
+
+#[derive(Debug, Clone, Default)]
+struct Slot {
+    filter: MotionFilter,
+    since_s: f64,
+    hits: usize,
+    blocks: f64,
+    thick_share: f64,
+}
+
+/// Up to two layers tracked over time, each by its own [`MotionFilter`]. Each frame's measured
+/// layers go to the filters nearest them (a layer far from every tracked one starts a new track);
+/// a track without measurements for `layer_expiry_s` is dropped; a second track enters the forecast
+/// once it has `layer_confirm` measurements.
+#[derive(Debug, Clone, Default)]
+pub struct LayerTracker {
+    slots: [Slot; 2],
+    /// The track put first (the forecast's primary layer) last time.
+    primary: usize,
+}
+
+/// The other track becomes the primary layer only when its opacity exceeds the primary's by this.
+const PRIMARY_MARGIN: f64 = 0.1;
+
+impl LayerTracker {
+    fn active(&self, k: usize) -> Option<Motion> {
+        self.slots[k].filter.current()
+    }
+
+    /// Measurements rejected by the filters' gates.
+    pub fn gated(&self) -> usize {
+        self.slots.iter().map(|s| s.filter.gated).sum()
+    }
+
+    /// Filtered motions to search around, the track with the most blocks first.
+    pub fn priors(&self) -> Vec<Motion> {
+        let mut v: Vec<(f64, Motion)> = (0..2).filter_map(|k| self.active(k).map(|m| (self.slots[k].blocks, m))).collect();
+        v.sort_by(|a, b| b.0.total_cmp(&a.0));
+        v.into_iter().map(|x| x.1).collect()
+    }
+
+    /// Advance by `dt_s` and fold in a measurement. Returns the layers for the forecast, the most
+    /// opaque first (empty before any motion is known).
+    pub fn update(&mut self, m: Option<&Measurement>, dt_s: f64, params: &MotionParams) -> Vec<TrackedLayer> {
+        let measured: &[LayerMotion] = m.map(|m| m.layers.as_slice()).unwrap_or(&[]);
+        // Cost of pairing a measured layer with a track: their distance; a new track costs the
+        // two-layer separation.
+        let cost = |l: &LayerMotion, k: usize| self.active(k).map(|c| dist(l.v_mps, c.v_mps)).unwrap_or(params.two_layer_separation_mps);
+        let mut assign: [Option<usize>; 2] = [None, None]; // track -> measured layer
+        match measured {
+            [] => {}
+            [l] => {
+                let k = if cost(l, 0) <= cost(l, 1) { 0 } else { 1 };
+                assign[k] = Some(0);
+            }
+            [l0, l1, ..] => {
+                if cost(l0, 0) + cost(l1, 1) <= cost(l0, 1) + cost(l1, 0) {
+                    assign = [Some(0), Some(1)];
+                } else {
+                    assign = [Some(1), Some(0)];
+                }
+            }
+        }
+        for (k, slot) in self.slots.iter_mut().enumerate() {
+            let l = assign[k].map(|i| &measured[i]);
+            slot.filter.update(l, dt_s, params);
+            match l {
+                Some(l) => {
+                    let first = slot.hits == 0;
+                    slot.hits += 1;
+                    slot.since_s = 0.0;
+                    let w = if first { 1.0 } else { 0.3 };
+                    slot.blocks += w * (l.blocks as f64 - slot.blocks);
+                    slot.thick_share += w * (l.thick_share - slot.thick_share);
+                }
+                None => slot.since_s += dt_s,
+            }
+            if slot.since_s > params.layer_expiry_s {
+                *slot = Slot::default();
+            }
+        }
+        // Two tracks that have converged are one layer: keep the longer.
+        if let (Some(a), Some(b)) = (self.active(0), self.active(1))
+            && dist(a.v_mps, b.v_mps) < 0.5 * params.two_layer_separation_mps
+        {
+            let drop = if self.slots[0].hits >= self.slots[1].hits { 1 } else { 0 };
+            self.slots[drop] = Slot::default();
+        }
+        let n_active = (0..2).filter(|&k| self.active(k).is_some()).count();
+        let used: Vec<usize> = (0..2).filter(|&k| self.active(k).is_some() && (n_active == 1 || self.slots[k].hits >= params.layer_confirm)).collect();
+        if let [one] = used.as_slice() {
+            self.primary = *one;
+        } else if used.len() == 2 {
+            let other = 1 - self.primary;
+            if self.slots[other].thick_share > self.slots[self.primary].thick_share + PRIMARY_MARGIN {
+                self.primary = other;
+            }
+        }
+        let mut out: Vec<TrackedLayer> =
+            used.iter().filter_map(|&k| self.active(k).map(|m| TrackedLayer { motion: m, thick_share: self.slots[k].thick_share })).collect();
+        if used.len() == 2 && used[0] != self.primary {
+            out.swap(0, 1);
+        }
+        out
     }
 }
 
@@ -322,7 +499,7 @@ mod tests {
         let dt = 20.0;
         let a = map_from(blobs, g);
         let b = map_from(|x, y| blobs(x - v[0] * dt, y - v[1] * dt), g);
-        let m = measure(&a, &b, dt, &MotionParams::default(), None);
+        let m = measure(&a, &b, dt, &MotionParams::default(), &[]);
         let l = m.layers[0];
         assert!(m.vectors.len() > 10, "{} vectors", m.vectors.len());
         assert!((l.v_mps[0] - v[0]).abs() < 0.1 && (l.v_mps[1] - v[1]).abs() < 0.1, "{:?}", l.v_mps);
@@ -333,21 +510,14 @@ mod tests {
     fn featureless_maps_give_no_vectors() {
         let g = Grid::new(&MapParams { cells: 128, ..Default::default() }, 1500.0);
         let a = map_from(|_, _| 0.0, g);
-        let m = measure(&a, &a, 20.0, &MotionParams::default(), None);
+        let m = measure(&a, &a, 20.0, &MotionParams::default(), &[]);
         assert!(m.vectors.is_empty() && m.global_mps.is_none());
     }
 
     #[test]
     fn filter_gates_an_outlier() {
         let p = MotionParams::default();
-        let mk = |v: [f64; 2]| Measurement {
-            dt_s: 20.0,
-            vectors: vec![],
-            blocks_tried: 1,
-            global_mps: Some(v),
-            layers: vec![LayerMotion { v_mps: v, blocks: 30, mean_score: 1.0, thick_share: 0.5 }],
-            spread_mps: 0.3,
-        };
+        let mk = |v: [f64; 2]| LayerMotion { v_mps: v, blocks: 30, mean_score: 1.0, thick_share: 0.5, spread_mps: 0.3 };
         let mut f = MotionFilter::default();
         for _ in 0..10 {
             f.update(Some(&mk([5.0, 0.0])), 20.0, &p);
