@@ -610,6 +610,88 @@ mod tests {
         assert!(t.box_mean(-3.0, 0.0, 1.0).is_none());
     }
 
+    /// Two layers: a thick patch in layer 0 and a thin one in layer 1, each moving its own way.
+    /// A point under neither now is shaded at the horizon when the layer whose motion carries a
+    /// patch over it says so, and under both when both do (product of transmittances).
+    #[test]
+    fn each_layer_moves_with_its_own_motion() {
+        use crate::plant::{Block, Mount, Plant};
+        let g = Grid::new(&MapParams { cells: 64, ..Default::default() }, 1000.0);
+        let n = g.n;
+        let mut class = vec![Class::Clear as u8; n * n];
+        let mut labels = vec![0u8; n * n];
+        // Cell centre (east, north) of cell (i, j) is ((i + ½ − n/2)·cell, (j + ½ − n/2)·cell).
+        let patch = |class: &mut Vec<u8>, labels: &mut Vec<u8>, ci: usize, cj: usize, c: Class, l: u8| {
+            for j in cj - 2..=cj + 2 {
+                for i in ci - 2..=ci + 2 {
+                    class[j * n + i] = c as u8;
+                    labels[j * n + i] = l;
+                }
+            }
+        };
+        patch(&mut class, &mut labels, 40, 32, Class::Thick, 0);
+        patch(&mut class, &mut labels, 32, 40, Class::Thin, 1);
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0 };
+        let p = IrradianceParams { blur_min_m: 1.0, blur_growth_mps: 0.0, ..Default::default() };
+        let tms = [TransmittanceMap::for_layer(&map, &p, Some((&labels, 0))), TransmittanceMap::for_layer(&map, &p, Some((&labels, 1)))];
+        // The point sits under the sun ray through cell (32, 32) at every horizon: camera and point
+        // at the origin, sun overhead enough that the offset is small — use the offset itself.
+        let plant = Plant {
+            blocks: vec![Block {
+                name: "b".into(),
+                capacity_kw: 100.0,
+                ac_capacity_kw: None,
+                mount: Mount::Fixed { tilt_rad: 0.0, azimuth_rad: std::f64::consts::PI },
+                polygon_m: vec![],
+                points_m: vec![[0.0, 0.0]],
+            }],
+        };
+        let issue: DateTime<Utc> = "2026-06-21T12:00:00Z".parse().unwrap();
+        let cell = g.cell_m;
+        let mut input = ForecastInput {
+            issue,
+            observer: Observer::new(0.0, 0.0, 0.0),
+            clear_model: ClearSkyModel::IneichenPerez { linke_turbidity: 3.0 },
+            altitude_m: 0.0,
+            camera_m: [0.0; 3],
+            cbh_m: 1000.0,
+            layers: vec![],
+            cloud_fraction: 0.0,
+            horizons_s: vec![0, 100],
+            plant: &plant,
+            params: p,
+            power: Default::default(),
+            temp_air_c: 20.0,
+            wind_mps: 1.0,
+            beam_scale: 1.0,
+            diffuse_scale: 1.0,
+            point_stride: 1,
+        };
+        let skies = horizon_skies(&input);
+        let off = sun_ray_plane_point([0.0, 0.0], 1000.0, [0.0; 3], skies[1].sun.apparent_zenith_rad, skies[1].sun.azimuth_rad);
+        // Velocities that bring each patch centre to the point's sun-ray cell in 100 s.
+        let to_point = |ci: f64, cj: f64| {
+            let c = [(ci + 0.5 - n as f64 / 2.0) * cell, (cj + 0.5 - n as f64 / 2.0) * cell];
+            [(off[0] - c[0]) / 100.0, (off[1] - c[1]) / 100.0]
+        };
+        let away = [0.0, -30.0];
+        let dni_ratio = |input: &ForecastInput| {
+            let f = forecast_with(&tms, g, input, &skies);
+            let r = f.rows.iter().find(|r| r.target == "b" && r.horizon_s == 100).unwrap();
+            r.irradiance.dni_wm2 / skies[1].clear.dni_wm2
+        };
+        let adv = |v: [f64; 2]| Advection { v_mps: v, sigma_mps: 0.0 };
+        input.layers = vec![adv(to_point(40.0, 32.0)), adv(away)];
+        assert!((dni_ratio(&input) - p.beam_thick).abs() < 1e-9, "thick layer over the point: {}", dni_ratio(&input));
+        input.layers = vec![adv(away), adv(to_point(32.0, 40.0))];
+        assert!((dni_ratio(&input) - p.beam_thin).abs() < 1e-9, "thin layer over the point: {}", dni_ratio(&input));
+        input.layers = vec![adv(to_point(40.0, 32.0)), adv(to_point(32.0, 40.0))];
+        let both = p.beam_thick * p.beam_thin / p.beam_clear;
+        assert!((dni_ratio(&input) - both).abs() < 1e-9, "both: {} vs {both}", dni_ratio(&input));
+        input.layers = vec![adv(away), adv(away)];
+        assert!((dni_ratio(&input) - p.beam_clear).abs() < 1e-9, "neither: {}", dni_ratio(&input));
+    }
+
     #[test]
     fn tracker_faces_the_sun_when_unconstrained() {
         // Sun due east at 60° zenith, north-south axis: the tracker tilts 60° toward the east.

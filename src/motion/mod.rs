@@ -211,9 +211,15 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         median(&mut vectors.iter().map(|v| v.v_mps[0]).collect::<Vec<_>>()),
         median(&mut vectors.iter().map(|v| v.v_mps[1]).collect::<Vec<_>>()),
     ];
-    // 2-means from the median and the vector farthest from it.
-    let far = vectors.iter().map(|v| v.v_mps).max_by(|a, b| dist(*a, g).total_cmp(&dist(*b, g))).unwrap_or(g);
-    let mut c = [g, far];
+    // 2-means seeded at the two densest vectors (most neighbours within 1 m/s) at least the
+    // two-layer separation apart: false matches scatter, layers crowd.
+    let density: Vec<usize> = vectors.iter().map(|v| vectors.iter().filter(|w| dist(v.v_mps, w.v_mps) < 1.0).count()).collect();
+    let densest = |ok: &dyn Fn([f64; 2]) -> bool| {
+        vectors.iter().zip(&density).filter(|(v, _)| ok(v.v_mps)).max_by_key(|(_, d)| **d).map(|(v, _)| v.v_mps)
+    };
+    let s0 = densest(&|_| true).unwrap_or(g);
+    let s1 = densest(&|v| dist(v, s0) >= params.two_layer_separation_mps).unwrap_or(g);
+    let mut c = [s0, s1];
     let mut assign = vec![0usize; vectors.len()];
     for _ in 0..20 {
         for (k, v) in vectors.iter().enumerate() {
@@ -227,8 +233,13 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
             }
         }
     }
+    // Each cluster's members without its outliers (farther from the centre than three robust
+    // standard deviations, at least 0.5 m/s): a few false matches must not hide a clear split.
     let layer = |ci: usize| {
-        let members: Vec<&BlockVector> = vectors.iter().zip(&assign).filter(|(_, a)| **a == ci).map(|(v, _)| v).collect();
+        let all: Vec<&BlockVector> = vectors.iter().zip(&assign).filter(|(_, a)| **a == ci).map(|(v, _)| v).collect();
+        let mad = median(&mut all.iter().map(|v| dist(v.v_mps, c[ci])).collect::<Vec<_>>());
+        let lim = (3.0 * 1.4826 * mad).max(0.5);
+        let members: Vec<&BlockVector> = all.into_iter().filter(|v| dist(v.v_mps, c[ci]) <= lim).collect();
         let ms = members.iter().map(|v| v.mean_score).sum::<f64>() / members.len().max(1) as f64;
         let ts = members.iter().map(|v| v.thick_share).sum::<f64>() / members.len().max(1) as f64;
         let spread = (members.iter().map(|v| dist(v.v_mps, c[ci]).powi(2)).sum::<f64>() / members.len().max(1) as f64).sqrt();
@@ -504,6 +515,95 @@ mod tests {
         assert!(m.vectors.len() > 10, "{} vectors", m.vectors.len());
         assert!((l.v_mps[0] - v[0]).abs() < 0.1 && (l.v_mps[1] - v[1]).abs() < 0.1, "{:?}", l.v_mps);
         assert_eq!(m.layers.len(), 1);
+    }
+
+    /// Blobs of a given count and radius, seeded differently.
+    fn blobs_of(x: f64, y: f64, count: usize, radius_m: f64, seed: usize) -> f64 {
+        let mut s = 0.0;
+        for k in 0..count {
+            let h = crate::synth::noise::hash64((k + seed) as u64);
+            let cx = (h % 9000) as f64 - 4500.0;
+            let cy = ((h >> 32) % 9000) as f64 - 4500.0;
+            let r2 = (x - cx).powi(2) + (y - cy).powi(2);
+            s += (-r2 / (2.0 * radius_m.powi(2))).exp();
+        }
+        s.min(1.2)
+    }
+
+    /// A map whose classes follow the score (thin from 0.5, thick from 0.8: the segmenter's
+    /// defaults).
+    fn classed(f: impl Fn(f64, f64) -> f64, grid: Grid) -> CloudMap {
+        let mut m = map_from(f, grid);
+        m.class = m.score.iter().map(|s| 1 + (*s >= 0.5) as u8 + (*s >= 0.8) as u8).collect();
+        m
+    }
+
+    /// Two layers: many small faint clouds moving one way over a few large opaque ones moving
+    /// another. The first pass follows the many; the residual pass finds the few.
+    fn two_layer_maps(v_many: [f64; 2], v_few: [f64; 2], dt: f64) -> (CloudMap, CloudMap) {
+        let g = Grid::new(&MapParams { max_zenith_deg: 77.0, ..Default::default() }, 1500.0);
+        let field = |x: f64, y: f64, t: f64| {
+            let many = 0.7 * blobs_of(x - v_many[0] * t, y - v_many[1] * t, 90, 180.0, 0);
+            let few = 1.2 * blobs_of(x - v_few[0] * t, y - v_few[1] * t, 14, 450.0, 500);
+            many.max(few)
+        };
+        (classed(|x, y| field(x, y, 0.0), g), classed(|x, y| field(x, y, dt), g))
+    }
+
+    #[test]
+    fn residual_pass_finds_a_second_layer_and_cells_go_with_their_layer() {
+        let (v_many, v_few, dt) = ([2.0, -3.5], [6.5, 6.5], 100.0);
+        let (a, b) = two_layer_maps(v_many, v_few, dt);
+        let m = measure(&a, &b, dt, &MotionParams::default(), &[]);
+        assert_eq!(m.layers.len(), 2, "{:?} {:?}", m.layers, m.vectors.iter().map(|v| v.v_mps).collect::<Vec<_>>());
+        let near = |t: [f64; 2]| m.layers.iter().any(|l| dist(l.v_mps, t) < 0.5);
+        assert!(near(v_many) && near(v_few), "{:?}", m.layers);
+        // Each cloudy cell of the newer map is labelled with the layer whose cloud covers it (where
+        // only one does).
+        let labels = label_layers(&a, &b, dt, &[v_many, v_few]);
+        let (mut ok, mut n) = (0, 0);
+        for j in 0..b.grid.n {
+            for i in 0..b.grid.n {
+                let k = j * b.grid.n + i;
+                if b.class[k] < 2 {
+                    continue;
+                }
+                let c = b.grid.cell_centre_m(i, j);
+                let many = 0.7 * blobs_of(c[0] - v_many[0] * dt, c[1] - v_many[1] * dt, 90, 180.0, 0);
+                let few = 1.2 * blobs_of(c[0] - v_few[0] * dt, c[1] - v_few[1] * dt, 14, 450.0, 500);
+                if (many >= 0.5) == (few >= 0.5) {
+                    continue;
+                }
+                n += 1;
+                ok += (labels[k] == (few >= 0.5) as u8) as usize;
+            }
+        }
+        assert!(ok as f64 >= 0.85 * n as f64, "{ok} of {n} cells labelled with their layer");
+    }
+
+    #[test]
+    fn tracker_follows_two_layers_and_confirms_the_second() {
+        let p = MotionParams::default();
+        let layer = |v: [f64; 2], thick: f64| LayerMotion { v_mps: v, blocks: 10, mean_score: 1.0, thick_share: thick, spread_mps: 0.3 };
+        let meas = |ls: Vec<LayerMotion>| Measurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3 };
+        let mut t = LayerTracker::default();
+        // The first measurement is a blend; then both layers, in either order.
+        let out = t.update(Some(&meas(vec![layer([3.0, 1.0], 0.6)])), 20.0, &p);
+        assert_eq!(out.len(), 1);
+        let mut out = vec![];
+        for k in 0..6 {
+            let (a, b) = (layer([6.5, 6.5], 0.95), layer([2.0, -3.5], 0.5));
+            out = t.update(Some(&meas(if k % 2 == 0 { vec![a, b] } else { vec![b, a] })), 20.0, &p);
+        }
+        assert_eq!(out.len(), 2, "{out:?}");
+        // The more opaque layer first; the blend was dropped after three gated measurements.
+        assert!(dist(out[0].motion.v_mps, [6.5, 6.5]) < 0.3, "{out:?}");
+        assert!(dist(out[1].motion.v_mps, [2.0, -3.5]) < 0.3, "{out:?}");
+        // A layer unseen for longer than the expiry is dropped.
+        for _ in 0..20 {
+            out = t.update(Some(&meas(vec![layer([2.0, -3.5], 0.5)])), 20.0, &p);
+        }
+        assert_eq!(out.len(), 1, "{out:?}");
     }
 
     #[test]
