@@ -38,23 +38,23 @@ mod pool {
     typed_pool!(take_u32, give_u32, u32, U32);
 }
 
-fn downsample4(m: &[f32], n: usize) -> (Vec<f32>, usize) {
-    let nc = n / 4;
+/// Mean over `f × f` cells, where at least half of them are known (NaN elsewhere).
+fn downsample(m: &[f32], n: usize, f: usize) -> (Vec<f32>, usize) {
+    let nc = n / f;
     let mut out = pool::take_f32();
     out.resize(nc * nc, f32::NAN);
     for j in 0..nc {
         for i in 0..nc {
-            let (mut s, mut c) = (0.0f32, 0u32);
-            for dj in 0..4 {
-                for di in 0..4 {
-                    let v = m[(j * 4 + dj) * n + i * 4 + di];
+            let (mut s, mut c) = (0.0f32, 0usize);
+            for dj in 0..f {
+                for v in &m[(j * f + dj) * n + i * f..(j * f + dj) * n + i * f + f] {
                     if !v.is_nan() {
                         s += v;
                         c += 1;
                     }
                 }
             }
-            if c >= 8 {
+            if 2 * c >= f * f {
                 out[j * nc + i] = s / c as f32;
             }
         }
@@ -271,13 +271,12 @@ pub(super) fn score_feature(m: &CloudMap) -> Vec<f32> {
     out
 }
 
-/// Mean absolute difference of the two maps' features around each cell of `b` under a displacement
-/// `d` (cells, from `a` to `b`): `|b(y) − a(y − d)|`, `a` sampled bilinearly, averaged over the
-/// (2r + 1)² box around y, over the pairs both known. NaN where the box holds no such pair.
-pub(super) fn box_mismatch(a: &CloudMap, b: &CloudMap, d: [f64; 2], r: usize) -> Vec<f32> {
-    let n = b.grid.n;
+/// Mean absolute difference of two feature maps (`n × n`, NaN unknown) around each cell of `fb`
+/// under a displacement `d` (cells, from `fa` to `fb`): `|fb(y) − fa(y − d)|`, `fa` sampled
+/// bilinearly, averaged over the (2r + 1)² box around y, over the pairs both known. NaN where the
+/// box holds no such pair.
+pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usize) -> Vec<f32> {
     let w = n + 1;
-    let feat = |m: &CloudMap, k: usize| m.score[k].clamp(-0.5, 1.5);
     let mut sat_v = pool::take_f32();
     let mut sat_c = pool::take_u32();
     sat_v.resize(w * w, 0.0);
@@ -295,8 +294,8 @@ pub(super) fn box_mismatch(a: &CloudMap, b: &CloudMap, d: [f64; 2], r: usize) ->
         for i in 0..n {
             if rows_ok && i >= i0 && i < i1 {
                 let k = ja as usize * n + (i as i64 + ox) as usize;
-                let y = w00 * feat(a, k) + w10 * feat(a, k + 1) + w01 * feat(a, k + n) + w11 * feat(a, k + n + 1);
-                let x = feat(b, j * n + i);
+                let y = w00 * fa[k] + w10 * fa[k + 1] + w01 * fa[k + n] + w11 * fa[k + n + 1];
+                let x = fb[j * n + i];
                 if !x.is_nan() && !y.is_nan() {
                     rv += (x - y).abs();
                     rc += 1;
@@ -328,49 +327,71 @@ pub(super) fn box_mismatch(a: &CloudMap, b: &CloudMap, d: [f64; 2], r: usize) ->
 ///
 /// A cell's mismatch is the mean absolute difference of the two maps around it under `d`
 /// ([`box_mismatch`], 5 × 5 cells: a single cloud interior may match by chance, a neighbourhood
-/// with its edges does not). Cloudy cells (thin or thick) whose mismatch reaches `tolerance` keep
-/// their feature; every other known cell becomes clear (0), so the second pass matches the
-/// unexplained cloud on an empty background. Returns the two maps and the share of cloudy cells,
-/// in both maps, left unexplained.
-pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], tolerance: f32) -> (Vec<f32>, Vec<f32>, f64) {
+/// with its edges does not). The share of `b`'s cloudy cells (thin or thick) whose mismatch
+/// reaches `tolerance` is returned; when it is at least `min_share`, so are the two residual
+/// maps: those cells keep their feature, every other known cell becomes clear (0), so that a
+/// second pass matches the unexplained cloud on an empty background.
+pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], tolerance: f32, min_share: f64) -> (Option<(Vec<f32>, Vec<f32>)>, f64) {
     let n = a.grid.n;
-    let (dx, dy) = (d[0].round() as i64, d[1].round() as i64);
-    // Mismatch on b's grid; cell x of a pairs with (about) x + d of b.
-    let mis = box_mismatch(a, b, d, 2);
+    let (fa, fb) = (score_feature(a), score_feature(b));
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
+    // The share is judged at half resolution (a quarter of the work; the 3 × 3 box there spans
+    // the full resolution's 5 × 5 and more): a half cell is cloudy when most of its cells are.
+    let ((ha, nh), (hb, _)) = (downsample(&fa, n, 2), downsample(&fb, n, 2));
+    let mis_h = box_mismatch(&ha, &hb, nh, [d[0] / 2.0, d[1] / 2.0], 1);
     let (mut left, mut total) = (0usize, 0usize);
-    let mut keep = |m: &CloudMap, k: usize, mk: f32| -> f32 {
-        let v = m.score[k];
+    for j in 0..nh {
+        for i in 0..nh {
+            let m = mis_h[j * nh + i];
+            let k = 2 * j * n + 2 * i;
+            let c = cloudy(b.class[k]) as u8 + cloudy(b.class[k + 1]) as u8 + cloudy(b.class[k + n]) as u8 + cloudy(b.class[k + n + 1]) as u8;
+            if c >= 3 && !m.is_nan() {
+                total += 1;
+                left += (m >= tolerance) as usize;
+            }
+        }
+    }
+    for v in [ha, hb, mis_h] {
+        pool::give_f32(v);
+    }
+    let share = left as f64 / total.max(1) as f64;
+    if share < min_share || total == 0 {
+        pool::give_f32(fa);
+        pool::give_f32(fb);
+        return (None, share);
+    }
+    // Mismatch on b's grid; cell x of a pairs with (about) x + d of b.
+    let mis = box_mismatch(&fa, &fb, n, d, 2);
+    let keep = |f: &[f32], m: &CloudMap, k: usize, mk: f32| -> f32 {
+        let v = f[k];
         if v.is_nan() {
-            return f32::NAN;
-        }
-        if !cloudy(m.class[k]) {
-            return 0.0;
-        }
-        total += 1;
-        // Where the displacement leaves the overlap it can neither explain nor refute: unknown.
-        if mk.is_nan() {
-            return f32::NAN;
-        }
-        if mk >= tolerance {
-            left += 1;
-            v.clamp(-0.5, 1.5)
+            f32::NAN
+        } else if !cloudy(m.class[k]) {
+            0.0
+        } else if mk.is_nan() {
+            // Where the displacement leaves the overlap it can neither explain nor refute: unknown.
+            f32::NAN
+        } else if mk >= tolerance {
+            v
         } else {
             0.0
         }
     };
+    let (dx, dy) = (d[0].round() as i64, d[1].round() as i64);
     let mut ra = pool::take_f32();
     for k in 0..n * n {
         let (i, j) = ((k % n) as i64 + dx, (k / n) as i64 + dy);
         let mk = if i < 0 || j < 0 || i >= n as i64 || j >= n as i64 { f32::NAN } else { mis[j as usize * n + i as usize] };
-        ra.push(keep(a, k, mk));
+        ra.push(keep(&fa, a, k, mk));
     }
     let mut rb = pool::take_f32();
     for k in 0..n * n {
-        rb.push(keep(b, k, mis[k]));
+        rb.push(keep(&fb, b, k, mis[k]));
     }
-    pool::give_f32(mis);
-    (ra, rb, left as f64 / total.max(1) as f64)
+    for v in [fa, fb, mis] {
+        pool::give_f32(v);
+    }
+    (Some((ra, rb)), share)
 }
 
 /// Block vectors between maps `a` and `b` on their score feature.
@@ -387,8 +408,8 @@ pub(super) fn recycle(v: Vec<f32>) {
 pub(super) fn block_vectors_on(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
-    let (ca_raw, nc) = downsample4(&fa, n);
-    let (cb_raw, _) = downsample4(&fb, n);
+    let (ca_raw, nc) = downsample(&fa, n, 4);
+    let (cb_raw, _) = downsample(&fb, n, 4);
     let (ca, cb) = (Plane::new(&ca_raw, nc, false), Plane::new(&cb_raw, nc, true));
     pool::give_f32(ca_raw);
     pool::give_f32(cb_raw);

@@ -61,7 +61,9 @@ pub struct MotionParams {
     /// by less than this (score units, smallest over the 3 × 3 neighbourhood).
     pub residual_tolerance: f64,
     /// The unexplained cloud is matched in a second pass when it is at least this share of the
-    /// cloudy cells.
+    /// cloudy cells (judged at half resolution). Cloud evolving and edges leave 0.4–10 %
+    /// unexplained on the single-layer synthetic scenes (10th–90th percentile over frames), the
+    /// other layer 31–38 % on the two-layer scene (three seeds).
     pub residual_min_share: f64,
     /// A layer's filter is dropped after this long without a measurement \[s\].
     pub layer_expiry_s: f64,
@@ -83,7 +85,7 @@ impl Default for MotionParams {
             two_layer_separation_mps: 2.0,
             filter_process_noise: 0.002,
             residual_tolerance: 0.25,
-            residual_min_share: 0.08,
+            residual_min_share: 0.2,
             layer_expiry_s: 300.0,
             layer_confirm: 3,
         }
@@ -175,16 +177,27 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
     let Some(dominant) = first.layers.iter().max_by_key(|l| l.blocks) else { return first };
     let cell = a.grid.cell_m;
     let d = [dominant.v_mps[0] * dt_s / cell, dominant.v_mps[1] * dt_s / cell];
-    let (ra, rb, share) = residual_features(a, b, d, params.residual_tolerance as f32);
-    if share < params.residual_min_share {
-        matching::recycle(ra);
-        matching::recycle(rb);
-        return first;
-    }
+    let (Some((ra, rb)), _share) = residual_features(a, b, d, params.residual_tolerance as f32, params.residual_min_share) else { return first };
     let (v2, t2) = block_vectors_on(ra, rb, a, dt_s, params, priors.get(1).copied());
-    vectors.extend(v2);
+    // Residual vectors near the dominant layer re-measure it from the rims its displacement left
+    // (biased by the blanking): only the other motions are kept.
+    vectors.extend(v2.into_iter().filter(|v| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps));
     tried += t2;
-    summarize(vectors, tried, dt_s, params)
+    let mut m = summarize(vectors, tried, dt_s, params);
+    // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
+    if let [l0, l1] = m.layers.as_slice() {
+        let labels = label_layers(a, b, dt_s, &[l0.v_mps, l1.v_mps]);
+        let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
+        for (k, l) in m.layers.iter_mut().enumerate() {
+            let mine = || b.class.iter().zip(&labels).filter(move |(c, lb)| **lb as usize == k && (**c == thin || **c == thick));
+            let n = mine().count();
+            if n > 0 {
+                l.thick_share = mine().filter(|(c, _)| **c == thick).count() as f64 / n as f64;
+            }
+        }
+        m.layers.sort_by(|a, b| b.thick_share.total_cmp(&a.thick_share));
+    }
+    m
 }
 
 fn median(v: &mut [f64]) -> f64 {
@@ -280,9 +293,10 @@ pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> V
     let n = b.grid.n;
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
     let mut best = vec![(f32::INFINITY, 0u8); n * n];
+    let (fa, fb) = (matching::score_feature(a), matching::score_feature(b));
     for (l, v) in vs.iter().enumerate().take(u8::MAX as usize) {
         let d = [v[0] * dt_s / b.grid.cell_m, v[1] * dt_s / b.grid.cell_m];
-        let mis = box_mismatch(a, b, d, 4);
+        let mis = box_mismatch(&fa, &fb, n, d, 4);
         for (k, (m, bst)) in mis.iter().zip(best.iter_mut()).enumerate() {
             if cloudy(b.class[k]) && *m < bst.0 {
                 *bst = (*m, l as u8);
@@ -290,6 +304,8 @@ pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> V
         }
         matching::recycle(mis);
     }
+    matching::recycle(fa);
+    matching::recycle(fb);
     best.into_iter().map(|b| b.1).collect()
 }
 
@@ -390,7 +406,7 @@ pub struct LayerTracker {
 }
 
 /// The other track becomes the primary layer only when its opacity exceeds the primary's by this.
-const PRIMARY_MARGIN: f64 = 0.1;
+const PRIMARY_MARGIN: f64 = 0.01;
 
 impl LayerTracker {
     fn active(&self, k: usize) -> Option<Motion> {
