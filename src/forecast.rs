@@ -214,6 +214,20 @@ pub struct TransmittanceMap {
     total_shares: [f64; 3],
 }
 
+/// Buffers reused from frame to frame: a 256² map's summed-area table is 1 MB; a fresh one each
+/// frame cost page faults.
+mod pool {
+    crate::pool::typed_pool!(take_sat, give_sat, [i32; 4], SAT);
+    crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
+    crate::pool::typed_pool!(take_shares, give_shares, [f32; 3], SHARES);
+}
+
+impl Drop for TransmittanceMap {
+    fn drop(&mut self) {
+        pool::give_sat(std::mem::take(&mut self.sat));
+    }
+}
+
 /// Class shares are summed as integers in units of 1/1024 (a 256² map sums to under 2³¹).
 const SHARE_UNIT: f64 = 1024.0;
 
@@ -234,18 +248,14 @@ impl TransmittanceMap {
         });
         let class: &[u8] = relabelled.as_deref().unwrap_or(&map.class);
         let w = n + 1;
-        // Known cells are one class; unknown in-view cells get filled shares. `known` marks both.
+        // Known cells are one class; unknown in-view cells (the sun's glare) get filled shares.
+        // `state`: 0 unknown, 1 known class, 3 queued, FILLED + i filled with `filled[i]`; buffers
+        // come from a per-thread pool.
+        const FILLED: u32 = 4;
         let class_known = |c: u8| Class::from_u8(c) != Class::Unknown;
-        let mut known: Vec<bool> = class.iter().map(|c| class_known(*c)).collect();
-        let mut filled: Vec<[f32; 3]> = vec![[0.0; 3]; n * n];
-        let shares = |k: usize, filled: &[[f32; 3]]| -> [f32; 3] {
-            match Class::from_u8(class[k]) {
-                Class::Clear => [1.0, 0.0, 0.0],
-                Class::Thin => [0.0, 1.0, 0.0],
-                Class::Thick => [0.0, 0.0, 1.0],
-                Class::Unknown => filled[k],
-            }
-        };
+        let mut state = pool::take_u32();
+        state.extend(class.iter().map(|c| class_known(*c) as u32));
+        let mut filled = pool::take_shares();
         let in_view = |m: usize| map.in_view.get(m).copied().unwrap_or(false);
         let neighbours = |k: usize| {
             let (i, j) = ((k % n) as i64, (k / n) as i64);
@@ -254,57 +264,77 @@ impl TransmittanceMap {
                 (a >= 0 && b >= 0 && a < n as i64 && b < n as i64).then_some(b as usize * n + a as usize)
             })
         };
+        let shares = |k: usize, state: &[u32], filled: &[[f32; 3]]| -> Option<[f32; 3]> {
+            match (state[k], Class::from_u8(class[k])) {
+                (1, Class::Clear) => Some([1.0, 0.0, 0.0]),
+                (1, Class::Thin) => Some([0.0, 1.0, 0.0]),
+                (1, Class::Thick) => Some([0.0, 0.0, 1.0]),
+                (f, _) if f >= FILLED => Some(filled[(f - FILLED) as usize]),
+                _ => None,
+            }
+        };
         // Breadth-first fill: each unknown in-view cell takes the mean shares of its neighbours
         // already known or filled when the front reaches it. The front starts at the known cells
-        // that border an unknown in-view cell.
+        // that border an unknown in-view cell (marked 3 while queued, then back to 1).
         let mut front: std::collections::VecDeque<usize> = Default::default();
-        let mut seeded = vec![false; n * n];
-        for k in (0..n * n).filter(|&k| !known[k] && in_view(k)) {
+        for k in 0..n * n {
+            if state[k] != 0 || !in_view(k) {
+                continue;
+            }
             for m in neighbours(k) {
-                if known[m] && !seeded[m] {
-                    seeded[m] = true;
+                if state[m] == 1 {
+                    state[m] = 3;
                     front.push_back(m);
                 }
             }
         }
+        for &k in &front {
+            state[k] = 1;
+        }
         while let Some(k) = front.pop_front() {
             for m in neighbours(k) {
-                if known[m] || !in_view(m) {
+                if state[m] != 0 || !in_view(m) {
                     continue;
                 }
                 let (mut s, mut c) = ([0f32; 3], 0f32);
-                for e in neighbours(m).filter(|e| known[*e]) {
-                    let v = shares(e, &filled);
+                for v in neighbours(m).filter_map(|e| shares(e, &state, &filled)) {
                     for q in 0..3 {
                         s[q] += v[q];
                     }
                     c += 1.0;
                 }
-                filled[m] = [s[0] / c, s[1] / c, s[2] / c];
-                known[m] = true;
+                state[m] = FILLED + filled.len() as u32;
+                filled.push([s[0] / c, s[1] / c, s[2] / c]);
                 front.push_back(m);
             }
         }
-        let mut sat = vec![[0i32; 4]; w * w];
+        // Row by row, appended (no zero-fill first): the table is 1 MB, the pass memory-bound.
+        let unit = SHARE_UNIT as i32;
+        let step: [[i32; 4]; 4] = [[0, 0, 0, 0], [unit, 0, 0, 1], [0, unit, 0, 1], [0, 0, unit, 1]];
+        let mut sat = pool::take_sat();
+        sat.reserve(w * w);
+        sat.extend(std::iter::repeat_n([0i32; 4], w));
         for j in 0..n {
             let mut rs = [0i32; 4];
+            sat.push([0; 4]);
             for i in 0..n {
                 let k = j * n + i;
-                if known[k] {
-                    let c = class[k];
-                    if class_known(c) {
-                        rs[c as usize - 1] += SHARE_UNIT as i32;
-                    } else {
-                        for (q, v) in filled[k].iter().enumerate() {
-                            rs[q] += (*v as f64 * SHARE_UNIT + 0.5) as i32; // shares are non-negative
-                        }
-                    }
-                    rs[3] += 1;
+                let add = if state[k] >= FILLED {
+                    // Shares are non-negative.
+                    let f = filled[(state[k] - FILLED) as usize];
+                    [0, 1, 2, 3].map(|q| if q == 3 { 1 } else { (f[q] as f64 * SHARE_UNIT + 0.5) as i32 })
+                } else {
+                    step[(class[k] & 3) as usize]
+                };
+                for q in 0..4 {
+                    rs[q] += add[q];
                 }
                 let up = sat[j * w + i + 1];
-                sat[(j + 1) * w + i + 1] = [up[0] + rs[0], up[1] + rs[1], up[2] + rs[2], up[3] + rs[3]];
+                sat.push([up[0] + rs[0], up[1] + rs[1], up[2] + rs[2], up[3] + rs[3]]);
             }
         }
+        pool::give_u32(state);
+        pool::give_shares(filled);
         let total = sat[w * w - 1];
         let total_shares = if total[3] > 0 { [0, 1, 2].map(|q| total[q] as f64 / SHARE_UNIT / total[3] as f64) } else { [f64::NAN; 3] };
         let beams = [p.beam_clear, p.beam_thin, p.beam_thick];

@@ -55,6 +55,7 @@ pub mod motion;
 pub mod nowcast;
 pub mod overlay;
 pub mod plant;
+mod pool;
 pub mod power;
 pub mod qc;
 pub mod ramp;

@@ -10,32 +10,9 @@ use crate::cloudmap::CloudMap;
 /// frame, and taking fresh ones from the system allocator each time cost page faults (measured on
 /// 512² frames: the first pass's preparation 1.1 ms with fresh buffers).
 mod pool {
-    use std::cell::RefCell;
-
-    macro_rules! typed_pool {
-        ($take:ident, $give:ident, $t:ty, $store:ident) => {
-            thread_local! {
-                static $store: RefCell<Vec<Vec<$t>>> = const { RefCell::new(Vec::new()) };
-            }
-            /// An empty vector, with the capacity of one given back earlier when there is one.
-            pub fn $take() -> Vec<$t> {
-                $store.with(|p| p.borrow_mut().pop()).unwrap_or_default()
-            }
-            /// Give a vector back for reuse (a few are kept per thread).
-            pub fn $give(mut v: Vec<$t>) {
-                v.clear();
-                $store.with(|p| {
-                    let mut p = p.borrow_mut();
-                    if p.len() < 16 {
-                        p.push(v);
-                    }
-                });
-            }
-        };
-    }
-    typed_pool!(take_f32, give_f32, f32, F32);
-    typed_pool!(take_f64, give_f64, f64, F64);
-    typed_pool!(take_u32, give_u32, u32, U32);
+    crate::pool::typed_pool!(take_f32, give_f32, f32, F32);
+    crate::pool::typed_pool!(take_f64, give_f64, f64, F64);
+    crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
 }
 
 /// Mean over `f × f` cells, where at least half of them are known (NaN elsewhere).
@@ -322,6 +299,9 @@ pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usi
     out
 }
 
+/// Feature maps of the earlier and the later map.
+pub(super) type FeaturePair = (Vec<f32>, Vec<f32>);
+
 /// Residual features of two maps under a displacement `d` (cells, from `a` to `b`): the cloud a
 /// layer moving by `d` does not explain.
 ///
@@ -331,7 +311,7 @@ pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usi
 /// reaches `tolerance` is returned; when it is at least `min_share`, so are the two residual
 /// maps: those cells keep their feature, every other known cell becomes clear (0), so that a
 /// second pass matches the unexplained cloud on an empty background.
-pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], tolerance: f32, min_share: f64) -> (Option<(Vec<f32>, Vec<f32>)>, f64) {
+pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], tolerance: f32, min_share: f64) -> (Option<FeaturePair>, f64) {
     let n = a.grid.n;
     let (fa, fb) = (score_feature(a), score_feature(b));
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
@@ -385,9 +365,7 @@ pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], toleran
         ra.push(keep(&fa, a, k, mk));
     }
     let mut rb = pool::take_f32();
-    for k in 0..n * n {
-        rb.push(keep(&fb, b, k, mis[k]));
-    }
+    rb.extend(mis.iter().enumerate().map(|(k, m)| keep(&fb, b, k, *m)));
     for v in [fa, fb, mis] {
         pool::give_f32(v);
     }
