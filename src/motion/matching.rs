@@ -253,49 +253,92 @@ pub(super) fn score_feature(m: &CloudMap) -> Vec<f32> {
 /// bilinearly, averaged over the (2r + 1)² box around y, over the pairs both known. NaN where the
 /// box holds no such pair.
 pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usize) -> Vec<f32> {
-    let w = n + 1;
-    let mut sat_v = pool::take_f32();
-    let mut sat_c = pool::take_u32();
-    sat_v.resize(w * w, 0.0);
-    sat_c.resize(w * w, 0);
+    // Per-cell differences and counts (row slices, so the inner loops vectorize), then the box
+    // sums: a sliding window along each row, then running sums down the columns.
+    let (mut dv, mut dc) = (pool::take_f32(), pool::take_f32());
+    dv.resize(n * n, 0.0);
+    dc.resize(n * n, 0.0);
     // a at y − d: integer part o, fractions (fx, fy) toward the next cell.
     let (ox, oy) = ((-d[0]).floor() as i64, (-d[1]).floor() as i64);
     let (fx, fy) = ((-d[0] - ox as f64) as f32, (-d[1] - oy as f64) as f32);
     let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
     // Columns i whose samples i + ox and i + ox + 1 are on the map.
     let (i0, i1) = ((-ox).max(0) as usize, (n as i64 - 1 - ox).clamp(0, n as i64) as usize);
-    for j in 0..n {
-        let ja = j as i64 + oy;
-        let (mut rv, mut rc) = (0f32, 0u32);
-        let rows_ok = ja >= 0 && ja + 1 < n as i64;
-        for i in 0..n {
-            if rows_ok && i >= i0 && i < i1 {
-                let k = ja as usize * n + (i as i64 + ox) as usize;
-                let y = w00 * fa[k] + w10 * fa[k + 1] + w01 * fa[k + n] + w11 * fa[k + n + 1];
-                let x = fb[j * n + i];
-                if !x.is_nan() && !y.is_nan() {
-                    rv += (x - y).abs();
-                    rc += 1;
-                }
+    if i1 > i0 {
+        let len = i1 - i0;
+        let c0 = (i0 as i64 + ox) as usize;
+        for j in 0..n {
+            let ja = j as i64 + oy;
+            if ja < 0 || ja + 1 >= n as i64 {
+                continue;
             }
-            sat_v[(j + 1) * w + i + 1] = sat_v[j * w + i + 1] + rv;
-            sat_c[(j + 1) * w + i + 1] = sat_c[j * w + i + 1] + rc;
+            let ja = ja as usize;
+            let (r0, r1) = (&fa[ja * n + c0..ja * n + c0 + len + 1], &fa[(ja + 1) * n + c0..(ja + 1) * n + c0 + len + 1]);
+            let rb = &fb[j * n + i0..j * n + i1];
+            let (ov, oc) = (&mut dv[j * n + i0..j * n + i1], &mut dc[j * n + i0..j * n + i1]);
+            for i in 0..len {
+                let y = w00 * r0[i] + w10 * r0[i + 1] + w01 * r1[i] + w11 * r1[i + 1];
+                let e = (rb[i] - y).abs();
+                let ok = !e.is_nan();
+                ov[i] = if ok { e } else { 0.0 };
+                oc[i] = if ok { 1.0 } else { 0.0 };
+            }
         }
     }
+    // Along rows: the window [i − r, i + r] clipped to the map.
+    let (mut hv, mut hc) = (pool::take_f32(), pool::take_f32());
+    hv.resize(n * n, 0.0);
+    hc.resize(n * n, 0.0);
+    for (src, dst) in [(&dv, &mut hv), (&dc, &mut hc)] {
+        for j in 0..n {
+            let (row, out) = (&src[j * n..j * n + n], &mut dst[j * n..j * n + n]);
+            let mut acc: f32 = row[..r.min(n)].iter().sum();
+            for i in 0..n {
+                if i + r < n {
+                    acc += row[i + r];
+                }
+                if i > r {
+                    acc -= row[i - r - 1];
+                }
+                out[i] = acc;
+            }
+        }
+    }
+    // Down the columns, a running sum of rows [j − r, j + r].
     let mut out = pool::take_f32();
     out.resize(n * n, f32::NAN);
-    for j in 0..n {
-        let (y0, y1) = (j.saturating_sub(r), (j + r + 1).min(n));
+    let (mut av, mut ac) = (vec![0f32; n], vec![0f32; n]);
+    for jj in 0..r.min(n) {
         for i in 0..n {
-            let (x0, x1) = (i.saturating_sub(r), (i + r + 1).min(n));
-            let cnt = sat_c[y1 * w + x1] + sat_c[y0 * w + x0] - sat_c[y0 * w + x1] - sat_c[y1 * w + x0];
-            if cnt > 0 {
-                out[j * n + i] = (sat_v[y1 * w + x1] + sat_v[y0 * w + x0] - sat_v[y0 * w + x1] - sat_v[y1 * w + x0]) / cnt as f32;
+            av[i] += hv[jj * n + i];
+            ac[i] += hc[jj * n + i];
+        }
+    }
+    for j in 0..n {
+        if j + r < n {
+            let (rv, rc) = (&hv[(j + r) * n..(j + r) * n + n], &hc[(j + r) * n..(j + r) * n + n]);
+            for i in 0..n {
+                av[i] += rv[i];
+                ac[i] += rc[i];
+            }
+        }
+        if j > r {
+            let (rv, rc) = (&hv[(j - r - 1) * n..(j - r) * n], &hc[(j - r - 1) * n..(j - r) * n]);
+            for i in 0..n {
+                av[i] -= rv[i];
+                ac[i] -= rc[i];
+            }
+        }
+        for (o, (v, c)) in out[j * n..j * n + n].iter_mut().zip(av.iter().zip(&ac)) {
+            // Counts are small whole numbers, exact in f32; a count of zero leaves NaN.
+            if *c > 0.5 {
+                *o = v / c;
             }
         }
     }
-    pool::give_f32(sat_v);
-    pool::give_u32(sat_c);
+    for v in [dv, dc, hv, hc] {
+        pool::give_f32(v);
+    }
     out
 }
 
@@ -639,4 +682,53 @@ fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, 
         }
     }
     d
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The box mismatch against a direct sum over each box.
+    #[test]
+    fn box_mismatch_matches_a_direct_sum() {
+        let n = 24;
+        let val = |k: usize| -> f32 {
+            let h = crate::synth::noise::hash64(k as u64);
+            if h % 11 == 0 { f32::NAN } else { (h % 1000) as f32 / 500.0 - 0.5 }
+        };
+        let fa: Vec<f32> = (0..n * n).map(val).collect();
+        let fb: Vec<f32> = (0..n * n).map(|k| val(k + 7777)).collect();
+        for (d, r) in [([2.3, -1.6], 2usize), ([-4.0, 3.5], 1), ([0.0, 0.0], 4)] {
+            let got = box_mismatch(&fa, &fb, n, d, r);
+            // a at (i − dx, j − dy), bilinear over its four neighbours.
+            let a_at = |x: f64, y: f64| -> f32 {
+                let (x0, y0) = (x.floor(), y.floor());
+                if x0 < 0.0 || y0 < 0.0 || x0 + 1.0 >= n as f64 || y0 + 1.0 >= n as f64 {
+                    return f32::NAN;
+                }
+                let (i, j, fx, fy) = (x0 as usize, y0 as usize, (x - x0) as f32, (y - y0) as f32);
+                (1.0 - fx) * (1.0 - fy) * fa[j * n + i] + fx * (1.0 - fy) * fa[j * n + i + 1] + (1.0 - fx) * fy * fa[(j + 1) * n + i] + fx * fy * fa[(j + 1) * n + i + 1]
+            };
+            for j in 0..n {
+                for i in 0..n {
+                    let (mut s, mut c) = (0f64, 0usize);
+                    for jj in j.saturating_sub(r)..(j + r + 1).min(n) {
+                        for ii in i.saturating_sub(r)..(i + r + 1).min(n) {
+                            let e = (fb[jj * n + ii] - a_at(ii as f64 - d[0], jj as f64 - d[1])).abs();
+                            if !e.is_nan() {
+                                s += e as f64;
+                                c += 1;
+                            }
+                        }
+                    }
+                    let g = got[j * n + i];
+                    if c == 0 {
+                        assert!(g.is_nan(), "({i}, {j}): {g} where no pair is known");
+                    } else {
+                        assert!((g as f64 - s / c as f64).abs() < 1e-4, "({i}, {j}) d {d:?} r {r}: {g} vs {}", s / c as f64);
+                    }
+                }
+            }
+        }
+    }
 }

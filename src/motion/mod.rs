@@ -160,6 +160,9 @@ pub struct Measurement {
     pub layers: Vec<LayerMotion>,
     /// Spread of the accepted vectors around their layer \[m/s\].
     pub spread_mps: f64,
+    /// With two layers: the layer (index into `layers`) of each cloudy cell of the later map
+    /// ([`label_layers`]).
+    pub labels: Option<Vec<u8>>,
 }
 
 /// Measure motion from map `a` (earlier) to map `b`, `dt_s` apart. Both maps must share a grid.
@@ -186,7 +189,7 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
     let mut m = summarize(vectors, tried, dt_s, params);
     // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
     if let [l0, l1] = m.layers.as_slice() {
-        let labels = label_layers(a, b, dt_s, &[l0.v_mps, l1.v_mps]);
+        let mut labels = label_layers(a, b, dt_s, &[l0.v_mps, l1.v_mps]);
         let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
         for (k, l) in m.layers.iter_mut().enumerate() {
             let mine = || b.class.iter().zip(&labels).filter(move |(c, lb)| **lb as usize == k && (**c == thin || **c == thick));
@@ -195,7 +198,13 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
                 l.thick_share = mine().filter(|(c, _)| **c == thick).count() as f64 / n as f64;
             }
         }
-        m.layers.sort_by(|a, b| b.thick_share.total_cmp(&a.thick_share));
+        if m.layers[1].thick_share > m.layers[0].thick_share {
+            m.layers.swap(0, 1);
+            for l in labels.iter_mut() {
+                *l = 1 - *l;
+            }
+        }
+        m.labels = Some(labels);
     }
     m
 }
@@ -218,7 +227,7 @@ fn dist(a: [f64; 2], b: [f64; 2]) -> f64 {
 
 fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &MotionParams) -> Measurement {
     if vectors.is_empty() {
-        return Measurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN };
+        return Measurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN, labels: None };
     }
     let g = [
         median(&mut vectors.iter().map(|v| v.v_mps[0]).collect::<Vec<_>>()),
@@ -281,7 +290,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         let ts = inl.iter().map(|v| v.thick_share).sum::<f64>() / m;
         (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms, thick_share: ts, spread_mps: spread }], spread)
     };
-    Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread }
+    Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread, labels: None }
 }
 
 /// Which layer each cloudy cell of map `b` belongs to, given the layers' velocities `vs` (m/s,
@@ -601,7 +610,7 @@ mod tests {
     fn tracker_follows_two_layers_and_confirms_the_second() {
         let p = MotionParams::default();
         let layer = |v: [f64; 2], thick: f64| LayerMotion { v_mps: v, blocks: 10, mean_score: 1.0, thick_share: thick, spread_mps: 0.3 };
-        let meas = |ls: Vec<LayerMotion>| Measurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3 };
+        let meas = |ls: Vec<LayerMotion>| Measurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3, labels: None };
         let mut t = LayerTracker::default();
         // The first measurement is a blend; then both layers, in either order.
         let out = t.update(Some(&meas(vec![layer([3.0, 1.0], 0.6)])), 20.0, &p);
