@@ -394,30 +394,6 @@ pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]
     img
 }
 
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn streak_does_not_pull_the_centroid() {
-        let mut img = image::RgbImage::from_pixel(200, 200, image::Rgb([60, 90, 160]));
-        for y in 0..200u32 {
-            for x in 0..200u32 {
-                let r = ((x as f64 - 120.0).powi(2) + (y as f64 - 80.0).powi(2)).sqrt();
-                if r < 4.0 {
-                    img.put_pixel(x, y, image::Rgb([255, 255, 255]));
-                }
-            }
-        }
-        // A one-pixel saturated streak downward from the sun.
-        for y in 80..110u32 {
-            img.put_pixel(120, y, image::Rgb([255, 255, 255]));
-        }
-        let (x, y, _) = detect_sun(&img, 100.0).unwrap();
-        assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
-    }
-}
-
 /// Obstruction mask from daylight frames: white = open sky; black where a pixel inside the image
 /// circle stays dark (mean level below 50) or unchanged (standard deviation of its level below 1.5)
 /// across the frames — masts, the horizon line, the housing.
@@ -445,4 +421,28 @@ pub fn obstruction_mask(frames: &[&image::RgbImage], circle: crate::segment::Ima
         }
     }
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn streak_does_not_pull_the_centroid() {
+        let mut img = image::RgbImage::from_pixel(200, 200, image::Rgb([60, 90, 160]));
+        for y in 0..200u32 {
+            for x in 0..200u32 {
+                let r = ((x as f64 - 120.0).powi(2) + (y as f64 - 80.0).powi(2)).sqrt();
+                if r < 4.0 {
+                    img.put_pixel(x, y, image::Rgb([255, 255, 255]));
+                }
+            }
+        }
+        // A one-pixel saturated streak downward from the sun.
+        for y in 80..110u32 {
+            img.put_pixel(120, y, image::Rgb([255, 255, 255]));
+        }
+        let (x, y, _) = detect_sun(&img, 100.0).unwrap();
+        assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
+    }
 }

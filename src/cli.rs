@@ -540,7 +540,8 @@ fn cmd_qc(a: QcArgs) -> Result<()> {
     let m = crate::io::Measurements::read_csv(&a.measurements)?;
     let col = |n: &str| m.column(n).map(|c| m.columns[c].as_slice());
     // (label, GHI, DNI, DHI)
-    let mut sets: Vec<(String, &[f64], Option<&[f64]>, Option<&[f64]>)> = vec![];
+    type Set<'a> = (String, &'a [f64], Option<&'a [f64]>, Option<&'a [f64]>);
+    let mut sets: Vec<Set> = vec![];
     if let Some(g) = col("ghi") {
         sets.push(("ghi".into(), g, col("dni"), col("dhi")));
     }

@@ -301,11 +301,10 @@ impl Measurements {
             let line = rec.position().map(|p| p.line()).unwrap_or(0);
             let bad = |msg: String| InputError::Csv { file: path.into(), line, message: msg };
             let t = parse_time("time_utc", rec.get(ti).unwrap_or("")).map_err(bad)?;
-            if let Some(last) = m.times.last() {
-                if t <= *last {
+            if let Some(last) = m.times.last()
+                && t <= *last {
                     return Err(bad(format!("time_utc {} is not after the previous row: duplicated or out of order", fmt_time(&t))));
                 }
-            }
             m.times.push(t);
             let mut k = 0;
             for (i, v) in rec.iter().enumerate() {

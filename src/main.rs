@@ -9,11 +9,10 @@ fn main() -> ExitCode {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
             // A closed pipe (e.g. `| head`) is not an error.
-            if let Some(io) = e.downcast_ref::<std::io::Error>() {
-                if io.kind() == std::io::ErrorKind::BrokenPipe {
+            if let Some(io) = e.downcast_ref::<std::io::Error>()
+                && io.kind() == std::io::ErrorKind::BrokenPipe {
                     return ExitCode::SUCCESS;
                 }
-            }
             eprintln!("error: {e:#}");
             ExitCode::from(nephocast::cli::exit_status(&e))
         }

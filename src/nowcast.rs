@@ -193,6 +193,9 @@ impl Tuner {
     }
 }
 
+/// A pyranometer's column in the measurements and its position (east, north) \[m\].
+type PyranometerColumn = (usize, [f64; 2]);
+
 /// The cells' sun angles are recomputed when the sun has moved more than this \[°\].
 const SUN_ANGLE_REUSE_DEG: f32 = 0.25;
 
@@ -206,7 +209,7 @@ pub struct Nowcaster {
     last_time: Option<DateTime<Utc>>,
     tracker: LayerTracker,
     cbh_series: Option<Series>,
-    measurements: Option<(Measurements, Vec<(usize, [f64; 2])>)>,
+    measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
     tuner: Tuner,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,

@@ -12,8 +12,8 @@ pub const THIN_TINT: [u8; 3] = [255, 196, 40];
 pub const THICK_TINT: [u8; 3] = [176, 60, 200];
 
 fn blend(p: &mut Rgb<u8>, c: [u8; 3], a: f32) {
-    for k in 0..3 {
-        p.0[k] = (p.0[k] as f32 * (1.0 - a) + c[k] as f32 * a).round() as u8;
+    for (v, ck) in p.0.iter_mut().zip(c) {
+        *v = (*v as f32 * (1.0 - a) + ck as f32 * a).round() as u8;
     }
 }
 

@@ -291,13 +291,12 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                 if nc.motion.is_some() {
                     last_motion = nc.motion.map(|m| m.v_mps);
                 }
-                if opts.overlays_every > 0 && i % opts.overlays_every == 0 {
-                    if let Ok(fr) = &frame {
+                if opts.overlays_every > 0 && i % opts.overlays_every == 0
+                    && let Ok(fr) = &frame {
                         let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
                         let p = opts.out.join("overlays").join(format!("{}.png", name.rsplit_once('.').map(|x| x.0).unwrap_or(&name)));
                         write_atomic(&p, &png).map_err(|source| ReplayError::Write { path: p.clone(), source })?;
                     }
-                }
             }
             Err(rej) => {
                 let reason = rej.to_string().replace(',', ";");

@@ -124,7 +124,9 @@ impl Truth {
 /// # Errors
 /// Unreadable or malformed forecasts.
 pub fn score_forecasts(forecasts: &Path, truth: &Truth, target: &str) -> Result<Vec<HorizonScore>, InputError> {
-    let mut by_h: std::collections::BTreeMap<u32, (Vec<(f64, f64)>, Vec<(f64, f64)>)> = Default::default();
+    // Per horizon: (forecast, truth) pairs and (persistence, truth) pairs.
+    type Pairs = Vec<(f64, f64)>;
+    let mut by_h: std::collections::BTreeMap<u32, (Pairs, Pairs)> = Default::default();
     for r in read_rows(forecasts)? {
         if r.get("block").map(String::as_str) != Some(target) {
             continue;
@@ -375,13 +377,12 @@ pub fn score_bands(forecasts: &Path, truth: &Truth, target: &str) -> Result<Vec<
         }
         for ((t, h), ms) in groups {
             let tt = t + chrono::Duration::seconds(h as i64);
-            if let Some((obs, clear)) = truth.at(&tt, target) {
-                if clear >= 50.0 {
+            if let Some((obs, clear)) = truth.at(&tt, target)
+                && clear >= 50.0 {
                     let e = crps.entry(h).or_insert((0.0, 0));
                     e.0 += crps_ensemble(&ms, obs);
                     e.1 += 1;
                 }
-            }
         }
     }
     Ok(by_h

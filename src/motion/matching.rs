@@ -694,7 +694,7 @@ mod tests {
         let n = 24;
         let val = |k: usize| -> f32 {
             let h = crate::synth::noise::hash64(k as u64);
-            if h % 11 == 0 { f32::NAN } else { (h % 1000) as f32 / 500.0 - 0.5 }
+            if h.is_multiple_of(11) { f32::NAN } else { (h % 1000) as f32 / 500.0 - 0.5 }
         };
         let fa: Vec<f32> = (0..n * n).map(val).collect();
         let fb: Vec<f32> = (0..n * n).map(|k| val(k + 7777)).collect();

@@ -294,11 +294,10 @@ fn engine_loop(
                     events.push(serde_json::json!({"type": "alarm", "change": ch}).to_string());
                 }
                 events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name()}).to_string());
-                if opts.overlay_every > 0 && (processed - 1) % opts.overlay_every == 0 {
-                    if let Ok(fr) = &frame {
+                if opts.overlay_every > 0 && (processed - 1).is_multiple_of(opts.overlay_every)
+                    && let Ok(fr) = &frame {
                         overlay = Some(crate::overlay::overlay_png(&fr.image, n, &nc));
                     }
-                }
             }
             Err(r) => events.push(serde_json::json!({"type": "rejected", "file": newest.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string()}).to_string()),
         }

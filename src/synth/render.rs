@@ -207,14 +207,13 @@ pub fn render(
                     }
                 }
                 // Blooming streak along the sensor column through the sun.
-                if let Some((sx, sy)) = sun_px {
-                    if (x as f64 - sx).abs() < 1.0 && sun_vis > 0.3 {
+                if let Some((sx, sy)) = sun_px
+                    && (x as f64 - sx).abs() < 1.0 && sun_vis > 0.3 {
                         let add = 160.0 * sun_vis * (-(y as f64 - sy).abs() / (0.15 * h as f64)).exp();
                         for c in col.iter_mut() {
                             *c += add;
                         }
                     }
-                }
                 let i = (y * w + x) as u64;
                 for c in 0..3 {
                     let n = 1.2 * gaussian(hash64(noise_seed ^ (i * 3 + c as u64)), hash64(noise_seed.rotate_left(17) ^ (i * 3 + c as u64)));
