@@ -195,17 +195,29 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
     }
     // Motion and cloud fraction.
     let mo = read_rows(&out.join("motion.csv"))?;
-    let mut speed = vec![];
-    let mut dir = vec![];
+    let (mut speed, mut dir, mut speed2, mut dir2) = (vec![], vec![], vec![], vec![]);
+    let val = |r: &std::collections::HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
     for r in &mo {
         let Ok(t) = parse_time("t", &r["time_utc"]) else { continue };
         let x = minute_of_day(&t);
-        speed.push((x, r["speed_mps"].parse().unwrap_or(f64::NAN)));
-        dir.push((x, r["toward_deg"].parse().unwrap_or(f64::NAN)));
+        speed.push((x, val(r, "speed_mps")));
+        dir.push((x, val(r, "toward_deg")));
+        // The second tracked layer, when there is one.
+        let (e, n) = (val(r, "second_east_mps"), val(r, "second_north_mps"));
+        if e.is_finite() && n.is_finite() {
+            speed2.push((x, e.hypot(n)));
+            dir2.push((x, e.atan2(n).to_degrees().rem_euclid(360.0)));
+        }
     }
     html += "<h2>Cloud motion</h2>";
-    html += &line_chart("Speed", "time [UTC]", "speed [m/s]", &[Series { label: "filtered speed".into(), colour: "#c0392b".into(), points: speed, dashed: false }], &[], true);
-    html += &line_chart("Direction (toward, clockwise from north)", "time [UTC]", "direction [°]", &[Series { label: "direction".into(), colour: "#8e44ad".into(), points: dir, dashed: false }], &[], true);
+    let mut sp = vec![Series { label: "filtered speed (first layer)".into(), colour: "#c0392b".into(), points: speed, dashed: false }];
+    let mut dr = vec![Series { label: "direction (first layer)".into(), colour: "#8e44ad".into(), points: dir, dashed: false }];
+    if !speed2.is_empty() {
+        sp.push(Series { label: "second layer".into(), colour: "#e67e22".into(), points: speed2, dashed: true });
+        dr.push(Series { label: "second layer".into(), colour: "#e67e22".into(), points: dir2, dashed: true });
+    }
+    html += &line_chart("Speed", "time [UTC]", "speed [m/s]", &sp, &[], true);
+    html += &line_chart("Direction (toward, clockwise from north)", "time [UTC]", "direction [°]", &dr, &[], true);
     let fr = read_rows(&out.join("frames.csv"))?;
     let cf: Vec<(f64, f64)> = fr
         .iter()

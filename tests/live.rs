@@ -76,6 +76,10 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     let nc = json(addr, "/api/nowcast");
     assert_eq!(nc["forecast"].as_array().unwrap().len(), 21 * 5);
     assert!(nc["forecast"][0]["power_p90_kw"].is_number());
+    // The demo's one cumulus layer (9 m/s toward 85°) is tracked once motion is known.
+    let layers = nc["layers"].as_array().unwrap();
+    assert_eq!(layers.len(), 1, "{layers:?}");
+    assert!((layers[0]["speed_mps"].as_f64().unwrap() - 9.0).abs() < 1.0, "{layers:?}");
     // A half-written file completed before the next poll is taken whole.
     let next = &frames[6];
     let bytes = std::fs::read(next).unwrap();

@@ -152,6 +152,10 @@ fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
         "sun_elevation_deg": nc.sun.elevation_rad().to_degrees(),
         "motion": nc.motion.map(|m| serde_json::json!({"east_mps": m.v_mps[0], "north_mps": m.v_mps[1], "sigma_mps": m.sigma_mps,
             "speed_mps": m.v_mps[0].hypot(m.v_mps[1]), "toward_deg": m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)})),
+        // Every tracked layer the forecast advected, the most opaque first.
+        "layers": nc.layers.iter().map(|l| serde_json::json!({"east_mps": l.motion.v_mps[0], "north_mps": l.motion.v_mps[1], "sigma_mps": l.motion.sigma_mps,
+            "speed_mps": l.motion.v_mps[0].hypot(l.motion.v_mps[1]), "toward_deg": l.motion.v_mps[0].atan2(l.motion.v_mps[1]).to_degrees().rem_euclid(360.0),
+            "thick_share": l.thick_share})).collect::<Vec<_>>(),
         "alarm": nc.alarm.name(),
         "ramps": nc.ramps,
         "forecast": rows,
