@@ -60,6 +60,7 @@ fn malformed_site_file_exits_2_with_field_path() {
         (good.replace("capacity_kw = 6000.0\nmount = \"fixed\"", "capacity_kw = -5.0\nmount = \"fixed\""), "field plant.blocks[0].capacity_kw"),
         (good.replace("[clouds]\nbase_height_m = 1500.0", "[clouds]"), "field clouds"),
         (good.replace("mount = \"fixed\"", "mount = \"floating\""), "field plant.blocks[0].mount"),
+        (good.clone() + "\n[motion]\nresidual_min_share = 1.5\n", "field motion.residual_min_share: expected a number from 0 to 1"),
         (good + "\n[bogus]\nx = 1\n", "bogus"),
     ];
     for (i, (text, want)) in cases.iter().enumerate() {
