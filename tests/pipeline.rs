@@ -21,12 +21,10 @@ const KNOWN_SHORTFALLS: &[(&str, &str)] = &[
     ("scattered-slow", "bands"),
     ("scattered-slow", "ramps"),
     // Two layers: both are tracked and advected separately, but the forecast is biased dark and
-    // its bands too narrow (the higher layer is placed on the lower one's plane); skill at 15
-    // minutes is just under 0.30. The higher layer's thick cores and thin edges are confused.
+    // its bands too narrow; the higher layer's thick cores and thin edges are confused.
     ("two-layers", "bands"),
     ("two-layers", "segmentation"),
     ("two-layers", "circumsolar"),
-    ("two-layers", "skill"),
 ];
 
 fn run(name: &str, minutes: f64, spec_edit: impl Fn(&mut nephocast::synth::SceneSpec)) -> Evaluation {

@@ -87,7 +87,7 @@ impl Default for MotionParams {
             residual_tolerance: 0.25,
             residual_min_share: 0.2,
             layer_expiry_s: 300.0,
-            layer_confirm: 3,
+            layer_confirm: 2,
         }
     }
 }
@@ -173,11 +173,13 @@ pub struct Measurement {
 /// `residual_min_share` of the cloudy cells unexplained (another layer moving otherwise), a second
 /// pass matches that residual cloud alone on a clear background ([`matching::residual_features`]),
 /// so that a layer too sparse or too faint to win blocks in the first pass yields vectors of its
-/// own. All vectors are then clustered.
+/// own. All vectors are then clustered; without a second pass there is one layer.
 pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
     let (mut vectors, mut tried) = block_vectors(a, b, dt_s, params, priors.first().copied());
-    let first = summarize(vectors.clone(), tried, dt_s, params);
-    let Some(dominant) = first.layers.iter().max_by_key(|l| l.blocks) else { return first };
+    // One motion unless the residual pass finds cloud it does not explain: a split of the first
+    // pass's vectors alone is more often cloud evolving than a second layer.
+    let first = summarize(vectors.clone(), tried, dt_s, params, false);
+    let Some(dominant) = first.layers.first() else { return first };
     let cell = a.grid.cell_m;
     let d = [dominant.v_mps[0] * dt_s / cell, dominant.v_mps[1] * dt_s / cell];
     let (Some((ra, rb)), _share) = residual_features(a, b, d, params.residual_tolerance as f32, params.residual_min_share) else { return first };
@@ -186,7 +188,7 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
     // (biased by the blanking): only the other motions are kept.
     vectors.extend(v2.into_iter().filter(|v| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps));
     tried += t2;
-    let mut m = summarize(vectors, tried, dt_s, params);
+    let mut m = summarize(vectors, tried, dt_s, params, true);
     // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
     if let [l0, l1] = m.layers.as_slice() {
         let mut labels = label_layers(a, b, dt_s, &[l0.v_mps, l1.v_mps]);
@@ -225,7 +227,7 @@ fn dist(a: [f64; 2], b: [f64; 2]) -> f64 {
     ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2)).sqrt()
 }
 
-fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &MotionParams) -> Measurement {
+fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &MotionParams, allow_two: bool) -> Measurement {
     if vectors.is_empty() {
         return Measurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN, labels: None };
     }
@@ -271,7 +273,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
     let (l1, s1) = layer(1);
     let nmin = 3.max((0.12 * vectors.len() as f64).ceil() as usize);
     let sep = dist(l0.v_mps, l1.v_mps);
-    let two = l0.blocks >= nmin && l1.blocks >= nmin && sep >= params.two_layer_separation_mps && sep > 2.5 * s0.max(s1);
+    let two = allow_two && l0.blocks >= nmin && l1.blocks >= nmin && sep >= params.two_layer_separation_mps && sep > 2.5 * s0.max(s1);
     let (layers, spread) = if two {
         let mut ls = vec![(l0, s0), (l1, s1)];
         ls.sort_by(|a, b| b.0.thick_share.total_cmp(&a.0.thick_share));
