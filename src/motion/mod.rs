@@ -12,10 +12,16 @@
 //! weak, lies on the window's edge, is ambiguous (a second peak away from the first almost as high)
 //! or implies a speed beyond the plausible one. The matching is in the `matching` submodule.
 //!
-//! The block vectors (m/s east and north) give a robust global vector (component median) and, by
-//! 2-means clustering, up to two layers, accepted only when well separated. The layer that carries
-//! the most opaque cloud (largest share of thick cells in its blocks) drives the forecast. A Kalman
-//! filter per component smooths it over time, with gating of outliers; its standard deviation is the reported uncertainty.
+//! Two layers: when the first pass's motion leaves enough of the cloud unexplained (the maps
+//! still differ around those cells once the earlier map is moved by it), a second pass matches
+//! that residual cloud alone on a clear background ([`measure`]). The block vectors (m/s east and
+//! north) give a robust global vector (component median) and, by 2-means clustering seeded at the
+//! densest vectors, up to two layers, accepted only when well separated and only after a second
+//! pass. Each cloudy cell is labelled with the layer whose motion explains its neighbourhood
+//! ([`label_layers`]); the layer with the larger thick-cloud share of its cells is reported first.
+//! A [`LayerTracker`] smooths each layer over time with its own Kalman filter (gating of
+//! outliers, restart when it has locked onto something else, expiry); the filter's standard
+//! deviation is the reported uncertainty.
 //!
 //! # References
 //! * C. W. Chow et al., *Solar Energy* 85:2881–2893, 2011 (cross-correlation cloud motion from sky
