@@ -449,17 +449,10 @@ impl Nowcaster {
                 // The measurement's own labels when it saw both layers (in the tracked order),
                 // else labels from the tracked motions.
                 let (v0, v1) = (l0.motion.v_mps, l1.motion.v_mps);
-                let d = |a: [f64; 2], b: [f64; 2]| (a[0] - b[0]).hypot(a[1] - b[1]);
-                let labels = match measurement.as_ref().and_then(|m| m.labels.as_ref().map(|lb| (lb, &m.layers))) {
-                    Some((lb, ml)) if ml.len() == 2 => {
-                        if d(v0, ml[0].v_mps) + d(v1, ml[1].v_mps) <= d(v0, ml[1].v_mps) + d(v1, ml[0].v_mps) {
-                            lb.clone()
-                        } else {
-                            lb.iter().map(|l| 1 - l.min(&1)).collect()
-                        }
-                    }
-                    _ => label_layers(pm, &map, age(t), &[v0, v1]),
-                };
+                let labels = measurement
+                    .as_ref()
+                    .and_then(|m| m.labels_for(v0, v1))
+                    .unwrap_or_else(|| label_layers(pm, &map, age(t), &[v0, v1]));
                 vec![TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 0))), TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 1)))]
             }
             _ => vec![TransmittanceMap::new(&map, &input.params)],

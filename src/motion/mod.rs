@@ -199,11 +199,17 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
     if let [l0, l1] = m.layers.as_slice() {
         let mut labels = label_layers(a, b, dt_s, &[l0.v_mps, l1.v_mps]);
         let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
-        for (k, l) in m.layers.iter_mut().enumerate() {
-            let mine = || b.class.iter().zip(&labels).filter(move |(c, lb)| **lb as usize == k && (**c == thin || **c == thick));
-            let n = mine().count();
+        // Per layer: cloudy cells, thick cells.
+        let mut counts = [[0usize; 2]; 2];
+        for (c, lb) in b.class.iter().zip(&labels) {
+            if *c == thin || *c == thick {
+                counts[(*lb as usize).min(1)][0] += 1;
+                counts[(*lb as usize).min(1)][1] += (*c == thick) as usize;
+            }
+        }
+        for (l, [n, nt]) in m.layers.iter_mut().zip(counts) {
             if n > 0 {
-                l.thick_share = mine().filter(|(c, _)| **c == thick).count() as f64 / n as f64;
+                l.thick_share = nt as f64 / n as f64;
             }
         }
         if m.layers[1].thick_share > m.layers[0].thick_share {
@@ -215,6 +221,19 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
         m.labels = Some(labels);
     }
     m
+}
+
+impl Measurement {
+    /// The cell labels ([`Measurement::labels`]) for two tracked layers moving at `v0` and `v1`:
+    /// label 0 for the measured layer nearer `v0`. `None` unless this measurement saw two layers.
+    pub fn labels_for(&self, v0: [f64; 2], v1: [f64; 2]) -> Option<Vec<u8>> {
+        let (lb, [m0, m1]) = (self.labels.as_ref()?, self.layers.as_slice()) else { return None };
+        if dist(v0, m0.v_mps) + dist(v1, m1.v_mps) <= dist(v0, m1.v_mps) + dist(v1, m0.v_mps) {
+            Some(lb.clone())
+        } else {
+            Some(lb.iter().map(|l| 1 - l.min(&1)).collect())
+        }
+    }
 }
 
 fn median(v: &mut [f64]) -> f64 {
@@ -428,11 +447,6 @@ const PRIMARY_MARGIN: f64 = 0.01;
 impl LayerTracker {
     fn active(&self, k: usize) -> Option<Motion> {
         self.slots[k].filter.current()
-    }
-
-    /// Measurements rejected by the filters' gates.
-    pub fn gated(&self) -> usize {
-        self.slots.iter().map(|s| s.filter.gated).sum()
     }
 
     /// Filtered motions to search around, the track with the most blocks first.

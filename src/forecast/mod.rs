@@ -33,11 +33,15 @@ use chrono::{DateTime, Duration, Utc};
 use serde::{Deserialize, Serialize};
 
 use crate::clearsky::{ClearSkyModel, Irradiance, clear_sky};
-use crate::cloudmap::CloudMap;
 use crate::config::{ConfigError, check_range};
 use crate::plant::{Mount, Plant};
 use crate::segment::Class;
 use crate::sun::{Observer, direction_enu, position};
+
+mod ensemble;
+mod tables;
+pub use ensemble::{Band, ensemble_with, quantile_sorted};
+pub use tables::TransmittanceMap;
 
 /// Transmittance and diffuse settings (`[irradiance]` in `site.toml`).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -196,194 +200,6 @@ pub fn block_plane(mount: &Mount, sun_zenith_rad: f64, sun_azimuth_rad: f64) -> 
         Mount::SingleAxis { axis_azimuth_rad, max_angle_rad } => {
             tracker_orientation(axis_azimuth_rad, max_angle_rad, sun_zenith_rad, sun_azimuth_rad)
         }
-    }
-}
-
-/// Summed-area tables of the clear, thin and thick shares of a cloud map, so that the mean beam
-/// transmittance over any box is `Σ share_k · beam_k` for any per-class transmittances (the ensemble
-/// varies them without rebuilding the tables).
-#[derive(Debug, Clone)]
-pub struct TransmittanceMap {
-    n: usize,
-    /// Summed-area table, `(n + 1)²` entries of (clear, thin, thick) shares in units of
-    /// 1/[`SHARE_UNIT`] and the known-cell count: one cache line per corner, exact integer sums.
-    sat: Vec<[i32; 4]>,
-    beams: [f64; 3],
-    /// Mean transmittance of the known cells.
-    pub mean: f64,
-    total_shares: [f64; 3],
-}
-
-/// Buffers reused from frame to frame: a 256² map's summed-area table is 1 MB; a fresh one each
-/// frame cost page faults.
-mod pool {
-    crate::pool::typed_pool!(take_sat, give_sat, [i32; 4], SAT);
-    crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
-    crate::pool::typed_pool!(take_shares, give_shares, [f32; 3], SHARES);
-}
-
-impl Drop for TransmittanceMap {
-    fn drop(&mut self) {
-        pool::give_sat(std::mem::take(&mut self.sat));
-    }
-}
-
-/// Class shares are summed as integers in units of 1/1024 (a 256² map sums to under 2³¹).
-const SHARE_UNIT: f64 = 1024.0;
-
-impl TransmittanceMap {
-    /// Build from a map and per-class transmittances. Unknown cells that the camera sees (the sun's
-    /// glare) take the class shares of their known neighbours, spreading inward a cell at a time.
-    pub fn new(map: &CloudMap, p: &IrradianceParams) -> TransmittanceMap {
-        Self::for_layer(map, p, None)
-    }
-
-    /// [`TransmittanceMap::new`] for one layer of a map whose cloudy cells carry layer labels
-    /// (`labels[k]` = layer index): the other layers' cloud counts as clear sky here.
-    pub fn for_layer(map: &CloudMap, p: &IrradianceParams, layer: Option<(&[u8], u8)>) -> TransmittanceMap {
-        let n = map.grid.n;
-        let relabelled: Option<Vec<u8>> = layer.map(|(labels, l)| {
-            let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
-            map.class.iter().zip(labels).map(|(c, lb)| if (*c == thin || *c == thick) && *lb != l { Class::Clear as u8 } else { *c }).collect()
-        });
-        let class: &[u8] = relabelled.as_deref().unwrap_or(&map.class);
-        let w = n + 1;
-        // Known cells are one class; unknown in-view cells (the sun's glare) get filled shares.
-        // `state`: 0 unknown, 1 known class, 3 queued, FILLED + i filled with `filled[i]`; buffers
-        // come from a per-thread pool.
-        const FILLED: u32 = 4;
-        let class_known = |c: u8| Class::from_u8(c) != Class::Unknown;
-        let mut state = pool::take_u32();
-        state.extend(class.iter().map(|c| class_known(*c) as u32));
-        let mut filled = pool::take_shares();
-        let in_view = |m: usize| map.in_view.get(m).copied().unwrap_or(false);
-        let neighbours = |k: usize| {
-            let (i, j) = ((k % n) as i64, (k / n) as i64);
-            [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)].into_iter().filter_map(move |(di, dj)| {
-                let (a, b) = (i + di, j + dj);
-                (a >= 0 && b >= 0 && a < n as i64 && b < n as i64).then_some(b as usize * n + a as usize)
-            })
-        };
-        let shares = |k: usize, state: &[u32], filled: &[[f32; 3]]| -> Option<[f32; 3]> {
-            match (state[k], Class::from_u8(class[k])) {
-                (1, Class::Clear) => Some([1.0, 0.0, 0.0]),
-                (1, Class::Thin) => Some([0.0, 1.0, 0.0]),
-                (1, Class::Thick) => Some([0.0, 0.0, 1.0]),
-                (f, _) if f >= FILLED => Some(filled[(f - FILLED) as usize]),
-                _ => None,
-            }
-        };
-        // Breadth-first fill: each unknown in-view cell takes the mean shares of its neighbours
-        // already known or filled when the front reaches it. The front starts at the known cells
-        // that border an unknown in-view cell (marked 3 while queued, then back to 1).
-        let mut front: std::collections::VecDeque<usize> = Default::default();
-        for k in 0..n * n {
-            if state[k] != 0 || !in_view(k) {
-                continue;
-            }
-            for m in neighbours(k) {
-                if state[m] == 1 {
-                    state[m] = 3;
-                    front.push_back(m);
-                }
-            }
-        }
-        for &k in &front {
-            state[k] = 1;
-        }
-        while let Some(k) = front.pop_front() {
-            for m in neighbours(k) {
-                if state[m] != 0 || !in_view(m) {
-                    continue;
-                }
-                let (mut s, mut c) = ([0f32; 3], 0f32);
-                for v in neighbours(m).filter_map(|e| shares(e, &state, &filled)) {
-                    for q in 0..3 {
-                        s[q] += v[q];
-                    }
-                    c += 1.0;
-                }
-                state[m] = FILLED + filled.len() as u32;
-                filled.push([s[0] / c, s[1] / c, s[2] / c]);
-                front.push_back(m);
-            }
-        }
-        // Row by row, appended (no zero-fill first): the table is 1 MB, the pass memory-bound.
-        let unit = SHARE_UNIT as i32;
-        let step: [[i32; 4]; 4] = [[0, 0, 0, 0], [unit, 0, 0, 1], [0, unit, 0, 1], [0, 0, unit, 1]];
-        let mut sat = pool::take_sat();
-        sat.reserve(w * w);
-        sat.extend(std::iter::repeat_n([0i32; 4], w));
-        for j in 0..n {
-            let mut rs = [0i32; 4];
-            sat.push([0; 4]);
-            for i in 0..n {
-                let k = j * n + i;
-                let add = if state[k] >= FILLED {
-                    // Shares are non-negative.
-                    let f = filled[(state[k] - FILLED) as usize];
-                    [0, 1, 2, 3].map(|q| if q == 3 { 1 } else { (f[q] as f64 * SHARE_UNIT + 0.5) as i32 })
-                } else {
-                    step[(class[k] & 3) as usize]
-                };
-                for q in 0..4 {
-                    rs[q] += add[q];
-                }
-                let up = sat[j * w + i + 1];
-                sat.push([up[0] + rs[0], up[1] + rs[1], up[2] + rs[2], up[3] + rs[3]]);
-            }
-        }
-        pool::give_u32(state);
-        pool::give_shares(filled);
-        let total = sat[w * w - 1];
-        let total_shares = if total[3] > 0 { [0, 1, 2].map(|q| total[q] as f64 / SHARE_UNIT / total[3] as f64) } else { [f64::NAN; 3] };
-        let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
-        let mean = total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum();
-        TransmittanceMap { n, sat, beams, mean, total_shares }
-    }
-
-    /// Class shares (clear, thin, thick) over the box of half-width `r` cells around continuous
-    /// cell coordinates; `None` when the box holds no known cell or its centre is off the map.
-    #[inline]
-    pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; 3]> {
-        let n = self.n as f64;
-        if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
-            return None;
-        }
-        // Rounding half up by truncation through i64: every negative bound clamps to 0 either way,
-        // and on baseline x86-64 `f64::round` is a library call and a float-to-usize cast a slow
-        // instruction sequence.
-        let lo = |c: f64| ((c - r + 0.5).max(0.0) as i64 as usize).min(self.n);
-        let hi = |c: f64| ((c + r + 1.5).max(0.0) as i64 as usize).min(self.n);
-        let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
-        if x1 <= x0 || y1 <= y0 {
-            return None;
-        }
-        let w = self.n + 1;
-        let (a, b, c, d) = (self.sat[y1 * w + x1], self.sat[y0 * w + x1], self.sat[y1 * w + x0], self.sat[y0 * w + x0]);
-        let cnt = a[3] - b[3] - c[3] + d[3];
-        if cnt <= 0 {
-            return None;
-        }
-        let f = 1.0 / (SHARE_UNIT * cnt as f64);
-        let s = |q: usize| (a[q] - b[q] - c[q] + d[q]) as f64 * f;
-        Some([s(0), s(1), s(2)])
-    }
-
-    /// Mean transmittance over a box with the map's own per-class transmittances.
-    pub fn box_mean(&self, cx: f64, cy: f64, r: f64) -> Option<f64> {
-        self.box_mean_with(cx, cy, r, self.beams)
-    }
-
-    /// Mean transmittance over a box for given per-class transmittances (clear, thin, thick).
-    #[inline]
-    pub fn box_mean_with(&self, cx: f64, cy: f64, r: f64, beams: [f64; 3]) -> Option<f64> {
-        self.box_shares(cx, cy, r).map(|s| s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2])
-    }
-
-    /// Mean transmittance of the whole map for given per-class transmittances.
-    pub fn mean_with(&self, beams: [f64; 3]) -> f64 {
-        self.total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum()
     }
 }
 
@@ -626,22 +442,7 @@ fn row(name: &str, h: u32, t: DateTime<Utc>, acc: &[f64; 6], ghi_clear: f64) -> 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::cloudmap::{Grid, MapParams};
-
-    #[test]
-    fn box_mean_counts_only_known_cells() {
-        let g = Grid::new(&MapParams { cells: 8, ..Default::default() }, 1000.0);
-        let mut class = vec![Class::Clear as u8; 64];
-        class[0] = Class::Thick as u8;
-        class[1] = Class::Unknown as u8;
-        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![false; 64], offset: 0.0 };
-        let p = IrradianceParams::default();
-        let t = TransmittanceMap::new(&map, &p);
-        // Box over cells (0..=1, 0..=1): thick, unknown, clear, clear -> (0.03 + 1 + 1) / 3.
-        let m = t.box_mean(0.5, 0.5, 0.5).unwrap();
-        assert!((m - (0.03 + 2.0) / 3.0).abs() < 1e-12, "{m}");
-        assert!(t.box_mean(-3.0, 0.0, 1.0).is_none());
-    }
+    use crate::cloudmap::{CloudMap, Grid, MapParams};
 
     /// Two layers: a thick patch in layer 0 and a thin one in layer 1, each moving its own way.
     /// A point under neither now is shaded at the horizon when the layer whose motion carries a
@@ -739,82 +540,4 @@ mod tests {
         let q = sun_ray_plane_point([0.0, 0.0], 1000.0, [0.0; 3], 45f64.to_radians(), 180f64.to_radians());
         assert!(q[0].abs() < 1e-9 && (q[1] + 1000.0).abs() < 1e-9);
     }
-}
-
-/// Uncertainty bands of one target and horizon.
-#[derive(Debug, Clone, Copy, PartialEq, Default)]
-pub struct Band {
-    /// GHI P10, P50, P90 \[W m⁻²\].
-    pub ghi_wm2: [f64; 3],
-    /// Power P10, P50, P90 \[kW\].
-    pub power_kw: [f64; 3],
-}
-
-/// Quantile of a sorted slice (linear interpolation).
-pub fn quantile_sorted(v: &[f64], q: f64) -> f64 {
-    if v.is_empty() {
-        return f64::NAN;
-    }
-    let x = q * (v.len() - 1) as f64;
-    let (i, f) = (x.floor() as usize, x - x.floor());
-    if i + 1 < v.len() { v[i] * (1.0 - f) + v[i + 1] * f } else { v[i] }
-}
-
-/// An ensemble: sharp members (no horizon blur) drawn around the central forecast by perturbing the
-/// motion (by its uncertainty, at least `ensemble_motion_sigma_mps`), the cloud base height, the
-/// beam transmittance and the cloud-scattered diffuse; deterministic for a given issue time. The
-/// transmittance tables and horizon skies are the central forecast's.
-pub fn ensemble_with(
-    tms: &[TransmittanceMap],
-    grid: crate::cloudmap::Grid,
-    input: &ForecastInput,
-    skies: &[HorizonSky],
-    central: &Forecast,
-) -> (Vec<Forecast>, Vec<Band>) {
-    use crate::synth::noise::{gaussian, hash64};
-    let p = &input.params;
-    let seed = input.issue.timestamp_millis() as u64;
-    use rayon::prelude::*;
-    // Under little cloud the beam is better known: the clear-sky and whole-beam spreads are full at
-    // cloud cover `ensemble_full_spread_cover` and shrink in proportion below it, never below a
-    // quarter (the clear-sky model itself is uncertain by a few per cent).
-    let cover_share = if p.ensemble_full_spread_cover > 0.0 { (input.cloud_fraction / p.ensemble_full_spread_cover).clamp(0.25, 1.0) } else { 1.0 };
-    let members: Vec<Forecast> = (0..p.ensemble_members)
-        .into_par_iter()
-        .map(|m| {
-            let g = |k: u64| gaussian(hash64(seed ^ (m as u64 * 97 + k)), hash64(seed.rotate_left(13) ^ (m as u64 * 89 + k)));
-            let mut inp = input.clone();
-            for (l, ad) in inp.layers.iter_mut().enumerate() {
-                let sigma = ad.sigma_mps.max(p.ensemble_motion_sigma_mps);
-                let o = 10 * l as u64;
-                ad.v_mps = [ad.v_mps[0] + sigma * g(1 + o), ad.v_mps[1] + sigma * g(2 + o)];
-                // Members are sharp: their spread, not a blur, carries the uncertainty.
-                ad.sigma_mps = 0.0;
-            }
-            inp.cbh_m = input.cbh_m * (1.0 + p.ensemble_cbh_rel_sigma * g(3)).max(0.3);
-            // Per-class transmittances: clear sky varies little, thin and thick cloud a lot.
-            let gb = g(4);
-            inp.params.beam_clear = p.beam_clear * (1.0 + 0.1 * p.ensemble_beam_rel_sigma * cover_share * gb);
-            inp.params.beam_thin = (p.beam_thin * (1.0 + p.ensemble_beam_rel_sigma * g(6))).clamp(0.0, 1.0);
-            inp.params.beam_thick = (p.beam_thick * (1.0 + 2.0 * p.ensemble_beam_rel_sigma * g(7)).max(0.0)).min(0.6);
-            // And the beam as a whole (aerosol, calibration, cloud optical depth): half the class
-            // spread.
-            inp.beam_scale = (1.0 + 0.5 * p.ensemble_beam_rel_sigma * cover_share * g(8)).max(0.0);
-            inp.diffuse_scale = (1.0 + p.ensemble_diffuse_rel_sigma * g(5)).max(0.0);
-            inp.point_stride = 3;
-            inp.params.blur_growth_mps = 0.0;
-            forecast_with(tms, grid, &inp, skies)
-        })
-        .collect();
-    let bands = (0..central.rows.len())
-        .map(|r| {
-            let mut ghi: Vec<f64> = members.iter().filter_map(|m| m.rows.get(r)).map(|x| x.irradiance.ghi_wm2).collect();
-            let mut pw: Vec<f64> = members.iter().filter_map(|m| m.rows.get(r)).map(|x| x.power_kw).collect();
-            ghi.sort_by(f64::total_cmp);
-            pw.sort_by(f64::total_cmp);
-            let q = |v: &[f64]| [quantile_sorted(v, 0.1), quantile_sorted(v, 0.5), quantile_sorted(v, 0.9)];
-            Band { ghi_wm2: q(&ghi), power_kw: q(&pw) }
-        })
-        .collect();
-    (members, bands)
 }

@@ -1,0 +1,215 @@
+//! Transmittance tables of a cloud map: summed-area tables of the clear, thin and thick shares,
+//! with the sun's glare filled from its neighbours.
+
+use super::IrradianceParams;
+use crate::cloudmap::CloudMap;
+use crate::segment::Class;
+
+/// Summed-area tables of the clear, thin and thick shares of a cloud map, so that the mean beam
+/// transmittance over any box is `Σ share_k · beam_k` for any per-class transmittances (the ensemble
+/// varies them without rebuilding the tables).
+#[derive(Debug, Clone)]
+pub struct TransmittanceMap {
+    n: usize,
+    /// Summed-area table, `(n + 1)²` entries of (clear, thin, thick) shares in units of
+    /// 1/[`SHARE_UNIT`] and the known-cell count: one cache line per corner, exact integer sums.
+    sat: Vec<[i32; 4]>,
+    beams: [f64; 3],
+    /// Mean transmittance of the known cells.
+    pub mean: f64,
+    total_shares: [f64; 3],
+}
+
+/// Buffers reused from frame to frame: a 256² map's summed-area table is 1 MB; a fresh one each
+/// frame cost page faults.
+mod pool {
+    crate::pool::typed_pool!(take_sat, give_sat, [i32; 4], SAT);
+    crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
+    crate::pool::typed_pool!(take_shares, give_shares, [f32; 3], SHARES);
+}
+
+impl Drop for TransmittanceMap {
+    fn drop(&mut self) {
+        pool::give_sat(std::mem::take(&mut self.sat));
+    }
+}
+
+/// Class shares are summed as integers in units of 1/1024 (a 256² map sums to under 2³¹).
+const SHARE_UNIT: f64 = 1024.0;
+
+impl TransmittanceMap {
+    /// Build from a map and per-class transmittances. Unknown cells that the camera sees (the sun's
+    /// glare) take the class shares of their known neighbours, spreading inward a cell at a time.
+    pub fn new(map: &CloudMap, p: &IrradianceParams) -> TransmittanceMap {
+        Self::for_layer(map, p, None)
+    }
+
+    /// [`TransmittanceMap::new`] for one layer of a map whose cloudy cells carry layer labels
+    /// (`labels[k]` = layer index): the other layers' cloud counts as clear sky here.
+    pub fn for_layer(map: &CloudMap, p: &IrradianceParams, layer: Option<(&[u8], u8)>) -> TransmittanceMap {
+        let n = map.grid.n;
+        let relabelled: Option<Vec<u8>> = layer.map(|(labels, l)| {
+            let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
+            map.class.iter().zip(labels).map(|(c, lb)| if (*c == thin || *c == thick) && *lb != l { Class::Clear as u8 } else { *c }).collect()
+        });
+        let class: &[u8] = relabelled.as_deref().unwrap_or(&map.class);
+        let w = n + 1;
+        // Known cells are one class; unknown in-view cells (the sun's glare) get filled shares.
+        // `state`: 0 unknown, 1 known class, 3 queued, FILLED + i filled with `filled[i]`; buffers
+        // come from a per-thread pool.
+        const FILLED: u32 = 4;
+        let class_known = |c: u8| Class::from_u8(c) != Class::Unknown;
+        let mut state = pool::take_u32();
+        state.extend(class.iter().map(|c| class_known(*c) as u32));
+        let mut filled = pool::take_shares();
+        let in_view = |m: usize| map.in_view.get(m).copied().unwrap_or(false);
+        let neighbours = |k: usize| {
+            let (i, j) = ((k % n) as i64, (k / n) as i64);
+            [(-1i64, 0i64), (1, 0), (0, -1), (0, 1)].into_iter().filter_map(move |(di, dj)| {
+                let (a, b) = (i + di, j + dj);
+                (a >= 0 && b >= 0 && a < n as i64 && b < n as i64).then_some(b as usize * n + a as usize)
+            })
+        };
+        let shares = |k: usize, state: &[u32], filled: &[[f32; 3]]| -> Option<[f32; 3]> {
+            match (state[k], Class::from_u8(class[k])) {
+                (1, Class::Clear) => Some([1.0, 0.0, 0.0]),
+                (1, Class::Thin) => Some([0.0, 1.0, 0.0]),
+                (1, Class::Thick) => Some([0.0, 0.0, 1.0]),
+                (f, _) if f >= FILLED => Some(filled[(f - FILLED) as usize]),
+                _ => None,
+            }
+        };
+        // Breadth-first fill: each unknown in-view cell takes the mean shares of its neighbours
+        // already known or filled when the front reaches it. The front starts at the known cells
+        // that border an unknown in-view cell (marked 3 while queued, then back to 1).
+        let mut front: std::collections::VecDeque<usize> = Default::default();
+        for k in 0..n * n {
+            if state[k] != 0 || !in_view(k) {
+                continue;
+            }
+            for m in neighbours(k) {
+                if state[m] == 1 {
+                    state[m] = 3;
+                    front.push_back(m);
+                }
+            }
+        }
+        for &k in &front {
+            state[k] = 1;
+        }
+        while let Some(k) = front.pop_front() {
+            for m in neighbours(k) {
+                if state[m] != 0 || !in_view(m) {
+                    continue;
+                }
+                let (mut s, mut c) = ([0f32; 3], 0f32);
+                for v in neighbours(m).filter_map(|e| shares(e, &state, &filled)) {
+                    for q in 0..3 {
+                        s[q] += v[q];
+                    }
+                    c += 1.0;
+                }
+                state[m] = FILLED + filled.len() as u32;
+                filled.push([s[0] / c, s[1] / c, s[2] / c]);
+                front.push_back(m);
+            }
+        }
+        // Row by row, appended (no zero-fill first): the table is 1 MB, the pass memory-bound.
+        let unit = SHARE_UNIT as i32;
+        let step: [[i32; 4]; 4] = [[0, 0, 0, 0], [unit, 0, 0, 1], [0, unit, 0, 1], [0, 0, unit, 1]];
+        let mut sat = pool::take_sat();
+        sat.reserve(w * w);
+        sat.extend(std::iter::repeat_n([0i32; 4], w));
+        for j in 0..n {
+            let mut rs = [0i32; 4];
+            sat.push([0; 4]);
+            for i in 0..n {
+                let k = j * n + i;
+                let add = if state[k] >= FILLED {
+                    // Shares are non-negative.
+                    let f = filled[(state[k] - FILLED) as usize];
+                    [0, 1, 2, 3].map(|q| if q == 3 { 1 } else { (f[q] as f64 * SHARE_UNIT + 0.5) as i32 })
+                } else {
+                    step[(class[k] & 3) as usize]
+                };
+                for q in 0..4 {
+                    rs[q] += add[q];
+                }
+                let up = sat[j * w + i + 1];
+                sat.push([up[0] + rs[0], up[1] + rs[1], up[2] + rs[2], up[3] + rs[3]]);
+            }
+        }
+        pool::give_u32(state);
+        pool::give_shares(filled);
+        let total = sat[w * w - 1];
+        let total_shares = if total[3] > 0 { [0, 1, 2].map(|q| total[q] as f64 / SHARE_UNIT / total[3] as f64) } else { [f64::NAN; 3] };
+        let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
+        let mean = total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum();
+        TransmittanceMap { n, sat, beams, mean, total_shares }
+    }
+
+    /// Class shares (clear, thin, thick) over the box of half-width `r` cells around continuous
+    /// cell coordinates; `None` when the box holds no known cell or its centre is off the map.
+    #[inline]
+    pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; 3]> {
+        let n = self.n as f64;
+        if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
+            return None;
+        }
+        // Rounding half up by truncation through i64: every negative bound clamps to 0 either way,
+        // and on baseline x86-64 `f64::round` is a library call and a float-to-usize cast a slow
+        // instruction sequence.
+        let lo = |c: f64| ((c - r + 0.5).max(0.0) as i64 as usize).min(self.n);
+        let hi = |c: f64| ((c + r + 1.5).max(0.0) as i64 as usize).min(self.n);
+        let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
+        if x1 <= x0 || y1 <= y0 {
+            return None;
+        }
+        let w = self.n + 1;
+        let (a, b, c, d) = (self.sat[y1 * w + x1], self.sat[y0 * w + x1], self.sat[y1 * w + x0], self.sat[y0 * w + x0]);
+        let cnt = a[3] - b[3] - c[3] + d[3];
+        if cnt <= 0 {
+            return None;
+        }
+        let f = 1.0 / (SHARE_UNIT * cnt as f64);
+        let s = |q: usize| (a[q] - b[q] - c[q] + d[q]) as f64 * f;
+        Some([s(0), s(1), s(2)])
+    }
+
+    /// Mean transmittance over a box with the map's own per-class transmittances.
+    pub fn box_mean(&self, cx: f64, cy: f64, r: f64) -> Option<f64> {
+        self.box_mean_with(cx, cy, r, self.beams)
+    }
+
+    /// Mean transmittance over a box for given per-class transmittances (clear, thin, thick).
+    #[inline]
+    pub fn box_mean_with(&self, cx: f64, cy: f64, r: f64, beams: [f64; 3]) -> Option<f64> {
+        self.box_shares(cx, cy, r).map(|s| s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2])
+    }
+
+    /// Mean transmittance of the whole map for given per-class transmittances.
+    pub fn mean_with(&self, beams: [f64; 3]) -> f64 {
+        self.total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::cloudmap::{Grid, MapParams};
+
+    #[test]
+    fn box_mean_counts_only_known_cells() {
+        let g = Grid::new(&MapParams { cells: 8, ..Default::default() }, 1000.0);
+        let mut class = vec![Class::Clear as u8; 64];
+        class[0] = Class::Thick as u8;
+        class[1] = Class::Unknown as u8;
+        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![false; 64], offset: 0.0 };
+        let p = IrradianceParams::default();
+        let t = TransmittanceMap::new(&map, &p);
+        // Box over cells (0..=1, 0..=1): thick, unknown, clear, clear -> (0.03 + 1 + 1) / 3.
+        let m = t.box_mean(0.5, 0.5, 0.5).unwrap();
+        assert!((m - (0.03 + 2.0) / 3.0).abs() < 1e-12, "{m}");
+        assert!(t.box_mean(-3.0, 0.0, 1.0).is_none());
+    }
+}
