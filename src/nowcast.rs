@@ -211,6 +211,7 @@ pub struct Nowcaster {
     cbh_series: Option<Series>,
     measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
     tuner: Tuner,
+    band_calibration: crate::forecast::BandCalibration,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
     cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
@@ -245,6 +246,7 @@ impl Nowcaster {
             cbh_series,
             measurements,
             tuner: Tuner::default(),
+            band_calibration: Default::default(),
             irradiance,
             alarm: Default::default(),
             cell_sky: None,
@@ -460,8 +462,9 @@ impl Nowcaster {
         let skies = horizon_skies(&input);
         let fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
-        let (members, bands) =
+        let (members, mut bands) =
             if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
+        self.calibrate_bands(&frame.time, &fc, &mut bands);
         // Ramp events from the plant's power series, and the alarm.
         let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
         let step_min = self.site.file.forecast.step_s as f64 / 60.0;
@@ -499,6 +502,27 @@ impl Nowcaster {
             irradiance: self.irradiance,
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
+    }
+
+    /// Online band calibration against the pyranometers' mean (when there are pyranometers and
+    /// bands): verify the plant bands whose target minute has been measured, then scale this
+    /// forecast's bands.
+    fn calibrate_bands(&mut self, now: &DateTime<Utc>, fc: &Forecast, bands: &mut [Band]) {
+        let rate = self.irradiance.band_calibration_rate;
+        let Some((m, cols)) = &self.measurements else { return };
+        if rate <= 0.0 || bands.is_empty() {
+            return;
+        }
+        let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
+        self.band_calibration.verify(rate, |t| {
+            // The averaging period holding the target must have ended.
+            if *t + period > *now {
+                return None;
+            }
+            let v: Vec<f64> = cols.iter().map(|(c, _)| m.at(*c, t)).filter(|y| y.is_finite() && *y >= 0.0).collect();
+            Some((v.len() == cols.len()).then(|| v.iter().sum::<f64>() / v.len() as f64))
+        });
+        self.band_calibration.apply(fc, bands);
     }
 
     fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, cf: f64, cbh: f64) {

@@ -19,7 +19,9 @@
 //! (thin cloud lets the sky's blue through, so its ratio lies between the two). The saturated sun disk
 //! (all channels ≥ `saturation_level` within `sun_exclusion_deg` of the sun) is *unknown*, and so is
 //! any pixel within `glare_zone_deg` of the sun whose blue channel is clipped, unless even the upper
-//! bound of its ratio (R / 255) says clear sky.
+//! bound of its ratio (R / 255) says clear sky — or unless its ring of sky at the same angle from the
+//! sun (1° wide) is mostly *not* clipped: glare is a ring around the sun, while a cloud lit from
+//! behind saturates in patches, so a clipped pixel in a mostly unclipped ring is thick cloud.
 //! The continuous score also feeds cloud motion.
 //!
 //! # References
@@ -101,6 +103,10 @@ pub struct SegmentParams {
     pub glare_zone_deg: f64,
     /// A channel at or above this level is saturated.
     pub saturation_level: u8,
+    /// In the glare zone, a clipped pixel is glare (unknown) when at least this share of the sky
+    /// at the same angle from the sun (1° rings) is clipped too, and thick cloud otherwise: the
+    /// sun's glare is a ring around it, a bright cloud lit from behind is a patch.
+    pub glare_ring_share: f64,
     /// Pixels beyond this zenith angle are not classified \[°\].
     pub max_zenith_deg: f64,
     /// Cloud fraction is counted within this zenith angle \[°\].
@@ -120,7 +126,7 @@ impl Default for SegmentParams {
             reference_c2: 0.0,
             cloud_rb: 0.93,
             thin_score: 0.50,
-            thick_score: 0.80,
+            thick_score: 0.875,
             offset_band: 0.05,
             offset_quantile: 0.70,
             offset_min_share: 0.10,
@@ -129,6 +135,7 @@ impl Default for SegmentParams {
             sun_exclusion_deg: 4.0,
             glare_zone_deg: 15.0,
             saturation_level: 250,
+            glare_ring_share: 0.75,
             max_zenith_deg: 90.0,
             cloud_fraction_zenith_deg: 70.0,
             library_max_cloud_fraction: 0.02,
@@ -157,7 +164,8 @@ impl SegmentParams {
         check_range(file, &f("offset_min"), self.offset_min, -1.0, 0.0)?;
         check_range(file, &f("offset_max"), self.offset_max, 0.0, 1.0)?;
         check_range(file, &f("sun_exclusion_deg"), self.sun_exclusion_deg, 0.0, 45.0)?;
-        check_range(file, &f("glare_zone_deg"), self.glare_zone_deg, 0.0, 60.0)?;
+        check_range(file, &f("glare_zone_deg"), self.glare_zone_deg, 0.0, GLARE_RINGS as f64)?;
+        check_range(file, &f("glare_ring_share"), self.glare_ring_share, 0.0, 1.0)?;
         check_range(file, &f("max_zenith_deg"), self.max_zenith_deg, 10.0, 100.0)?;
         check_range(file, &f("cloud_fraction_zenith_deg"), self.cloud_fraction_zenith_deg, 5.0, 90.0)?;
         check_range(file, &f("library_max_cloud_fraction"), self.library_max_cloud_fraction, 0.0, 1.0)?;
@@ -182,6 +190,10 @@ impl SegmentParams {
 }
 
 const LIB_BIN_DEG: f32 = 2.0;
+/// 1° rings around the sun for the glare test (the glare zone's upper limit).
+const GLARE_RINGS: usize = 60;
+/// Fewer sampled pixels than this in a ring: its clipped pixels are taken for glare.
+const GLARE_RING_MIN_SAMPLES: u32 = 8;
 const LIB_Z_BINS: usize = 50;
 const LIB_G_BINS: usize = 90;
 
@@ -227,6 +239,8 @@ pub struct FrameReference<'a> {
     params: &'a SegmentParams,
     /// The frame's offset from the default.
     pub offset: f32,
+    /// Per 1° ring around the sun: whether its clipped pixels are glare ([`SegmentParams::glare_ring_share`]).
+    glare_ring: [bool; GLARE_RINGS],
 }
 
 impl FrameReference<'_> {
@@ -285,7 +299,13 @@ impl FrameReference<'_> {
         if g.gamma_deg < p.glare_zone_deg as f32 && rgb[2] >= sat {
             // Blue is clipped, so the true ratio is at most R/255: clear when even that bound is
             // clear, else not judged.
-            return if s < p.thin_score as f32 { (s, Class::Clear) } else { (f32::NAN, Class::Unknown) };
+            return if s < p.thin_score as f32 {
+                (s, Class::Clear)
+            } else if self.glare_ring[(g.gamma_deg as usize).min(GLARE_RINGS - 1)] {
+                (f32::NAN, Class::Unknown)
+            } else {
+                (s, Class::Thick)
+            };
         }
         let c = if s >= p.thick_score as f32 {
             Class::Thick
@@ -313,12 +333,21 @@ impl Reference {
     pub fn for_frame_with<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom, f32)>) -> FrameReference<'a> {
         let mut d = vec![];
         let mut n = 0usize;
+        let (mut ring_n, mut ring_clipped) = ([0u32; GLARE_RINGS], [0u32; GLARE_RINGS]);
+        let glare_zone = params.glare_zone_deg as f32;
         for (rgb, g, default_rb) in sample {
             if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
                 continue;
             }
             n += 1;
             let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+            if g.gamma_deg < glare_zone {
+                // Clipped and not provably clear (the library is not consulted: a bound suffices).
+                let r = (g.gamma_deg as usize).min(GLARE_RINGS - 1);
+                ring_n[r] += 1;
+                let clear_bound = default_rb + params.thin_score as f32 * (params.cloud_rb as f32 - default_rb).max(0.03);
+                ring_clipped[r] += (rgb[2] >= params.saturation_level && rb >= clear_bound) as u32;
+            }
             let dd = rb - default_rb;
             if dd < params.offset_band as f32 {
                 d.push(dd);
@@ -332,7 +361,13 @@ impl Reference {
         } else {
             0.0
         };
-        FrameReference { reference: self, params, offset }
+        let mut glare_ring = [true; GLARE_RINGS];
+        for r in 0..GLARE_RINGS {
+            if ring_n[r] >= GLARE_RING_MIN_SAMPLES {
+                glare_ring[r] = ring_clipped[r] as f64 >= params.glare_ring_share * ring_n[r] as f64;
+            }
+        }
+        FrameReference { reference: self, params, offset, glare_ring }
     }
 
     /// Update the library with a frame's clear pixels (call only for frames judged clear).
@@ -582,7 +617,7 @@ mod tests {
     fn blue_is_clear_white_is_thick_grey_blue_is_thin() {
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS] };
         assert_eq!(fr.classify([70, 110, 200], geom(30.0, 90.0)).1, Class::Clear);
         assert_eq!(fr.classify([230, 232, 240], geom(30.0, 90.0)).1, Class::Thick);
         assert_eq!(fr.classify([160, 175, 210], geom(30.0, 90.0)).1, Class::Thin);
@@ -593,7 +628,7 @@ mod tests {
         // R/B 0.80 is cloud far from the sun but clear sky 5° from it (default reference there: 0.81).
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS] };
         assert_eq!(fr.classify([199, 219, 248], geom(40.0, 5.0)).1, Class::Clear);
         assert_ne!(fr.classify([199, 219, 248], geom(40.0, 100.0)).1, Class::Clear);
     }
@@ -602,9 +637,33 @@ mod tests {
     fn saturated_sun_is_unknown_and_beyond_zenith_limit_too() {
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS] };
         assert_eq!(fr.classify([255, 255, 255], geom(30.0, 1.0)).1, Class::Unknown);
         assert_eq!(fr.classify([70, 110, 200], geom(91.0, 90.0)).1, Class::Unknown);
+    }
+
+    #[test]
+    fn clipped_patch_near_the_sun_is_cloud_but_a_clipped_ring_is_glare() {
+        // 8° from the sun, a white clipped pixel: thick cloud when most of its 1° ring is unclipped
+        // clear sky (a bright cloud lit from behind), unknown when the whole ring is clipped (glare).
+        let p = SegmentParams::default();
+        let r = Reference::default();
+        let white = [255u8, 255, 255];
+        let ring = |clipped_share: f64| {
+            (0..100).map(move |i| {
+                let rgb = if (i as f64) < clipped_share * 100.0 { white } else { [150u8, 190, 240] };
+                (rgb, geom(40.0, 8.5))
+            })
+        };
+        let patchy = r.for_frame(&p, ring(0.3));
+        assert_eq!(patchy.classify(white, geom(40.0, 8.5)).1, Class::Thick);
+        let glare = r.for_frame(&p, ring(1.0));
+        assert_eq!(glare.classify(white, geom(40.0, 8.5)).1, Class::Unknown);
+        // A ring with too few samples to judge: glare, as before.
+        let sparse = r.for_frame(&p, ring(0.3).take(5));
+        assert_eq!(sparse.classify(white, geom(40.0, 8.5)).1, Class::Unknown);
+        // Beyond the glare zone the ring test does not apply.
+        assert_eq!(glare.classify(white, geom(40.0, 30.0)).1, Class::Thick);
     }
 
     #[test]
@@ -613,7 +672,7 @@ mod tests {
         let mut r = Reference::default();
         let sample = (0..50).map(|_| ([150u8, 170, 200], geom(31.0, 91.0)));
         r.learn(&p, sample);
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS] };
         assert!((fr.at(geom(31.0, 91.0)) - 0.75).abs() < 1e-6);
         assert_eq!(fr.classify([150, 170, 200], geom(31.0, 91.0)).1, Class::Clear);
     }

@@ -79,3 +79,98 @@ pub fn ensemble_with(
         .collect();
     (members, bands)
 }
+
+/// Online calibration of the band widths per horizon against measurements: adaptive conformal
+/// inference (I. Gibbs, E. Candès, "Adaptive conformal inference under distribution shift",
+/// NeurIPS 2021) applied to a width scale. Each issued plant band is kept until its target time has
+/// been measured; a miss (measurement outside P10–P90) widens that horizon's bands, a hit narrows
+/// them, with the steady state at the nominal 20 % misses. The scale multiplies the distances of
+/// P10 and P90 from P50, for every block and the plant, GHI and power alike.
+#[derive(Debug, Clone, Default)]
+pub struct BandCalibration {
+    /// Width scale per horizon \[s\].
+    scale: std::collections::BTreeMap<u32, f64>,
+    /// Issued plant GHI bands awaiting their measurement: (target time, horizon, P10, P90).
+    pending: std::collections::VecDeque<(chrono::DateTime<chrono::Utc>, u32, f64, f64)>,
+    /// Bands verified so far.
+    pub verified: usize,
+}
+
+impl BandCalibration {
+    /// Nominal share of measurements outside P10–P90.
+    const NOMINAL_MISS: f64 = 0.2;
+    /// Limits of the width scale.
+    const SCALE_LIMITS: (f64, f64) = (0.5, 2.0);
+    /// Bands kept awaiting their measurement at most.
+    const MAX_PENDING: usize = 20_000;
+
+    /// The width scale of a horizon (1 until calibrated).
+    pub fn scale(&self, horizon_s: u32) -> f64 {
+        self.scale.get(&horizon_s).copied().unwrap_or(1.0)
+    }
+
+    /// Verify pending bands whose target is measured: `measured(t)` gives `None` while the
+    /// measurement at `t` is not complete yet, `Some(None)` when there will be none (a gap: the
+    /// band is dropped), `Some(Some(ghi))` with the plant-mean GHI measured.
+    pub fn verify(&mut self, rate: f64, mut measured: impl FnMut(&chrono::DateTime<chrono::Utc>) -> Option<Option<f64>>) {
+        let mut keep = std::collections::VecDeque::with_capacity(self.pending.len());
+        while let Some((t, h, lo, hi)) = self.pending.pop_front() {
+            match measured(&t) {
+                Some(None) => {}
+                Some(Some(y)) => {
+                    let miss = if y < lo || y > hi { 1.0 } else { 0.0 };
+                    let k = self.scale.entry(h).or_insert(1.0);
+                    *k = (*k * (rate * (miss - Self::NOMINAL_MISS)).exp()).clamp(Self::SCALE_LIMITS.0, Self::SCALE_LIMITS.1);
+                    self.verified += 1;
+                }
+                None => keep.push_back((t, h, lo, hi)),
+            }
+        }
+        self.pending = keep;
+    }
+
+    /// Scale the bands of a forecast (rows aligned with `bands`) and keep its plant GHI bands for
+    /// verification.
+    pub fn apply(&mut self, forecast: &Forecast, bands: &mut [Band]) {
+        for (r, b) in forecast.rows.iter().zip(bands.iter_mut()) {
+            let k = self.scale(r.horizon_s);
+            for q in [&mut b.ghi_wm2, &mut b.power_kw] {
+                let mid = q[1];
+                q[0] = (mid - k * (mid - q[0])).max(0.0);
+                q[2] = mid + k * (q[2] - mid);
+            }
+            if r.target == "plant" && self.pending.len() < Self::MAX_PENDING {
+                self.pending.push_back((r.time, r.horizon_s, b.ghi_wm2[0], b.ghi_wm2[2]));
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use chrono::{Duration, TimeZone, Utc};
+
+    #[test]
+    fn band_scale_settles_where_a_fifth_of_measurements_fall_outside() {
+        // Measurements spread evenly over ±100 around P50 = 500: a band of ±40 must widen until
+        // it holds 80 % of them, i.e. to ±80 (scale 2), and one of ±160 narrow to ±80 (scale 0.5).
+        for half in [40.0, 160.0] {
+            let mut c = BandCalibration::default();
+            let t0 = Utc.with_ymd_and_hms(2026, 6, 14, 9, 0, 0).unwrap();
+            for i in 0..4000 {
+                let t = t0 + Duration::seconds(i);
+                let fc = Forecast { rows: vec![super::super::row("plant", 300, t, &[0.0; 6], 1000.0)] };
+                let mut bands = [Band { ghi_wm2: [500.0 - half, 500.0, 500.0 + half], power_kw: [0.0; 3] }];
+                c.apply(&fc, &mut bands);
+                // A deterministic, evenly spread sequence in [−100, 100).
+                let y = 500.0 + ((i as f64 * 0.618_034) % 1.0) * 200.0 - 100.0;
+                c.verify(0.05, |tt| (*tt == t).then_some(Some(y)));
+            }
+            assert_eq!(c.verified, 4000);
+            let k = c.scale(300);
+            let expect = (80.0 / half).clamp(0.4, 3.0);
+            assert!((k - expect).abs() < 0.15 * expect, "half-width {half}: scale {k}, expected about {expect}");
+        }
+    }
+}
