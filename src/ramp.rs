@@ -176,21 +176,26 @@ pub fn ramp_events(issue: &DateTime<Utc>, central: &[f64], members: &[Vec<f64>],
             event(r, if members.is_empty() { 1.0 } else { agree as f64 / members.len() as f64 })
         })
         .collect();
-    // Member ramps away from every central ramp, earliest first, grouped greedily.
-    let mut rest: Vec<(usize, Ramp)> = member_ramps
+    // Member ramps away from every central ramp, grouped around the most agreed start first: the
+    // ramp that the most members have a ramp near is the next event's centre, and the member
+    // ramps near it are its group (grouping from the earliest instead split one ramp the members
+    // place a little apart into two events of low probability each).
+    let rest: Vec<(usize, Ramp)> = member_ramps
         .iter()
         .enumerate()
         .flat_map(|(k, rs)| rs.iter().map(move |r| (k, *r)))
         .filter(|(_, r)| !central_ramps.iter().any(|c| near(c, r)))
         .collect();
-    rest.sort_by(|a, b| a.1.start_min.total_cmp(&b.1.start_min));
     let mut used = vec![false; rest.len()];
-    for i in 0..rest.len() {
-        if used[i] {
-            continue;
-        }
+    let members_near = |i: usize, used: &[bool]| {
+        let mut who: Vec<usize> = (0..rest.len()).filter(|&j| !used[j] && near(&rest[j].1, &rest[i].1)).map(|j| rest[j].0).collect();
+        who.sort_unstable();
+        who.dedup();
+        who.len()
+    };
+    while let Some(i) = (0..rest.len()).filter(|&i| !used[i]).max_by(|&a, &b| members_near(a, &used).cmp(&members_near(b, &used)).then(rest[b].1.start_min.total_cmp(&rest[a].1.start_min))) {
         let first = rest[i].1;
-        let group: Vec<usize> = (i..rest.len()).filter(|&j| !used[j] && near(&rest[j].1, &first)).collect();
+        let group: Vec<usize> = (0..rest.len()).filter(|&j| !used[j] && near(&rest[j].1, &first)).collect();
         let mut who: Vec<usize> = group.iter().map(|&j| rest[j].0).collect();
         who.sort_unstable();
         who.dedup();
