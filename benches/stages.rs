@@ -6,7 +6,7 @@
 use criterion::{Criterion, criterion_group, criterion_main};
 use nephocast::cloudmap::{CellSky, LutCache, build_map_with};
 use nephocast::config::{CalibrationFile, Site};
-use nephocast::motion::{MotionParams, measure};
+use nephocast::motion::{MapFeatures, MotionParams, measure_prepared};
 use nephocast::nowcast::{Frame, Nowcaster};
 use nephocast::segment::Reference;
 use nephocast::synth::render::PixelRays;
@@ -62,7 +62,12 @@ fn run(c: &mut Criterion, pool: &rayon::ThreadPool, s: &Scene, site: &Site, fram
     g.bench_function("cell sun angles", |b| b.iter(|| pool.install(|| CellSky::new(&lut, sun_dir, &s.site.segment))));
     g.bench_function("segment+map", |b| b.iter(|| pool.install(|| build_map_with(&frames[FRAMES - 1].image, &lut, &sky, &s.site.segment, &reference))));
     let priors: Vec<_> = last.layers.iter().map(|l| l.motion).collect();
-    g.bench_function("motion", |b| b.iter(|| pool.install(|| measure(&earlier.map, &last.map, dt_s, &s.site.motion, &priors))));
+    // As in the engine: the earlier map's features were computed when it arrived; the new map's
+    // are part of the stage.
+    let earlier_features = MapFeatures::new(&earlier.map);
+    g.bench_function("motion", |b| {
+        b.iter(|| pool.install(|| measure_prepared((&earlier.map, &earlier_features), (&last.map, &MapFeatures::new(&last.map)), dt_s, &s.site.motion, &priors)))
+    });
     // A whole step (QC, map, motion, forecast, ensemble), on a fresh engine fed the earlier frames.
     g.bench_function("step (with ensemble)", |b| {
         b.iter_batched(

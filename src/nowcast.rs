@@ -11,7 +11,7 @@ use crate::cloudmap::{CloudMap, LutCache, build_map_with};
 use crate::config::Site;
 use crate::forecast::{Advection, Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, horizon_skies, sun_ray_plane_point};
 use crate::io::{Measurements, Series};
-use crate::motion::{LayerTracker, Measurement, Motion, TrackedLayer, label_layers, measure};
+use crate::motion::{LayerTracker, MapFeatures, Measurement, Motion, TrackedLayer, label_layers_on, measure_prepared};
 use crate::plant::Plant;
 use crate::segment::{Class, Reference};
 use crate::sun::{SunPosition, position};
@@ -205,7 +205,8 @@ pub struct Nowcaster {
     plant: Plant,
     luts: LutCache,
     reference: Reference,
-    history: std::collections::VecDeque<(DateTime<Utc>, Arc<CloudMap>)>,
+    /// Earlier maps with their motion features (computed once per map).
+    history: std::collections::VecDeque<(DateTime<Utc>, Arc<CloudMap>, Arc<MapFeatures>)>,
     last_time: Option<DateTime<Utc>>,
     tracker: LayerTracker,
     cbh_series: Option<Series>,
@@ -410,10 +411,11 @@ impl Nowcaster {
         let dt_s = self.last_time.map(|l| (frame.time - l).num_milliseconds() as f64 / 1000.0);
         // Earlier map: the newest at least `baseline_s` old, else the oldest kept; within the gap limit.
         let age = |t: &DateTime<Utc>| (frame.time - *t).num_milliseconds() as f64 / 1000.0;
-        self.history.retain(|(t, m)| age(t) <= mp.max_gap_s && m.grid == map.grid);
-        let earlier = self.history.iter().rev().find(|(t, _)| age(t) >= mp.baseline_s).or(self.history.front()).cloned();
+        self.history.retain(|(t, m, _)| age(t) <= mp.max_gap_s && m.grid == map.grid);
+        let earlier = self.history.iter().rev().find(|(t, _, _)| age(t) >= mp.baseline_s).or(self.history.front()).cloned();
         let priors = self.tracker.priors();
-        let measurement = earlier.as_ref().map(|(t, pm)| measure(pm, &map, age(t), mp, &priors));
+        let features = Arc::new(MapFeatures::new(&map));
+        let measurement = earlier.as_ref().map(|(t, pm, pf)| measure_prepared((pm, pf), (&map, &features), age(t), mp, &priors));
         let layers = self.tracker.update(measurement.as_ref(), dt_s.unwrap_or(0.0), mp);
         let motion = layers.first().map(|l| l.motion);
         let t_motion = Clock::now();
@@ -447,14 +449,14 @@ impl Nowcaster {
         // Two layers: each cloudy cell goes with the layer whose motion explains it, and each layer's
         // cloud is advected by its own motion.
         let tms = match (&earlier, layers.as_slice()) {
-            (Some((t, pm)), [l0, l1, ..]) => {
+            (Some((t, _, pf)), [l0, l1, ..]) => {
                 // The measurement's own labels when it saw both layers (in the tracked order),
                 // else labels from the tracked motions.
                 let (v0, v1) = (l0.motion.v_mps, l1.motion.v_mps);
                 let labels = measurement
                     .as_ref()
                     .and_then(|m| m.labels_for(v0, v1))
-                    .unwrap_or_else(|| label_layers(pm, &map, age(t), &[v0, v1]));
+                    .unwrap_or_else(|| label_layers_on(pf.feature(), features.feature(), &map, age(t), &[v0, v1]));
                 vec![TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 0))), TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 1)))]
             }
             _ => vec![TransmittanceMap::new(&map, &input.params)],
@@ -479,7 +481,7 @@ impl Nowcaster {
         let t_ens = Clock::now();
         let alarm_change = self.alarm.update(&frame.time, &ramps, &rp);
         let t_fc = Clock::now();
-        self.history.push_back((frame.time, map.clone()));
+        self.history.push_back((frame.time, map.clone(), features));
         self.last_time = Some(frame.time);
         let ms = |a: Clock, b: Clock| (b - a).as_secs_f64() * 1000.0;
         Ok(Nowcast {

@@ -93,15 +93,6 @@ impl Plane {
         )
     }
 
-    /// Give the buffers back to the pool.
-    fn recycle(self) {
-        pool::give_f32(self.v);
-        pool::give_f32(self.m);
-        pool::give_f64(self.s1);
-        pool::give_f64(self.s2);
-        pool::give_u32(self.cnt);
-    }
-
     /// The same sums, cell by cell (for a template block, once).
     fn block_sums(&self, x: usize, y: usize, b: usize) -> (f64, f64, u32) {
         let (mut s1, mut s2, mut k) = (0f64, 0f64, 0u32);
@@ -114,6 +105,94 @@ impl Plane {
             }
         }
         (s1, s2, k)
+    }
+}
+
+/// Give a feature map back to the buffer pool.
+pub(super) fn recycle(v: Vec<f32>) {
+    pool::give_f32(v);
+}
+
+impl Drop for Plane {
+    /// Give the buffers back to the pool.
+    fn drop(&mut self) {
+        for v in [std::mem::take(&mut self.v), std::mem::take(&mut self.m)] {
+            if v.capacity() > 0 {
+                pool::give_f32(v);
+            }
+        }
+        for v in [std::mem::take(&mut self.s1), std::mem::take(&mut self.s2)] {
+            if v.capacity() > 0 {
+                pool::give_f64(v);
+            }
+        }
+        let c = std::mem::take(&mut self.cnt);
+        if c.capacity() > 0 {
+            pool::give_u32(c);
+        }
+    }
+}
+
+/// A feature map prepared for block matching: the feature, and its planes at full resolution and
+/// reduced 4× (with summed-area tables when the map is searched).
+pub(super) struct Prepared {
+    feature: Vec<f32>,
+    fine: Plane,
+    coarse: Plane,
+    nc: usize,
+}
+
+impl Prepared {
+    fn new(feature: Vec<f32>, n: usize, tables: bool) -> Prepared {
+        let (coarse_raw, nc) = downsample(&feature, n, 4);
+        let coarse = Plane::new(&coarse_raw, nc, tables);
+        pool::give_f32(coarse_raw);
+        let fine = Plane::new(&feature, n, tables);
+        Prepared { feature, fine, coarse, nc }
+    }
+}
+
+impl Drop for Prepared {
+    fn drop(&mut self) {
+        let f = std::mem::take(&mut self.feature);
+        if f.capacity() > 0 {
+            pool::give_f32(f);
+        }
+    }
+}
+
+/// What motion needs of one cloud map, computed once: a map is searched when it is the later of a
+/// pair and serves as the template when a later frame is matched against it, so the engine keeps
+/// these with the map in its history (before, each map's feature, planes and reductions were
+/// computed twice, and the score feature four times).
+pub struct MapFeatures {
+    prepared: Prepared,
+    /// The feature reduced 2× (for the residual share).
+    half: Vec<f32>,
+    nh: usize,
+}
+
+impl MapFeatures {
+    /// Prepare a map.
+    pub fn new(m: &CloudMap) -> MapFeatures {
+        let n = m.grid.n;
+        let feature = score_feature(m);
+        let (half, nh) = downsample(&feature, n, 2);
+        MapFeatures { prepared: Prepared::new(feature, n, true), half, nh }
+    }
+
+    /// The score feature.
+    pub fn feature(&self) -> &[f32] {
+        &self.prepared.feature
+    }
+}
+
+impl Drop for MapFeatures {
+    fn drop(&mut self) {
+        let h = std::mem::take(&mut self.half);
+        if h.capacity() > 0 {
+            pool::give_f32(h);
+        }
     }
 }
 
@@ -354,14 +433,14 @@ pub(super) type FeaturePair = (Vec<f32>, Vec<f32>);
 /// reaches `tolerance` is returned; when it is at least `min_share`, so are the two residual
 /// maps: those cells keep their feature, every other known cell becomes clear (0), so that a
 /// second pass matches the unexplained cloud on an empty background.
-pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], tolerance: f32, min_share: f64) -> (Option<FeaturePair>, f64) {
+pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, xa: &MapFeatures, xb: &MapFeatures, d: [f64; 2], tolerance: f32, min_share: f64) -> (Option<FeaturePair>, f64) {
     let n = a.grid.n;
-    let (fa, fb) = (score_feature(a), score_feature(b));
+    let (fa, fb) = (xa.feature(), xb.feature());
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
     // The share is judged at half resolution (a quarter of the work; the 3 × 3 box there spans
     // the full resolution's 5 × 5 and more): a half cell is cloudy when most of its cells are.
-    let ((ha, nh), (hb, _)) = (downsample(&fa, n, 2), downsample(&fb, n, 2));
-    let mis_h = box_mismatch(&ha, &hb, nh, [d[0] / 2.0, d[1] / 2.0], 1);
+    let nh = xb.nh;
+    let mis_h = box_mismatch(&xa.half, &xb.half, nh, [d[0] / 2.0, d[1] / 2.0], 1);
     let (mut left, mut total) = (0usize, 0usize);
     for j in 0..nh {
         for i in 0..nh {
@@ -374,17 +453,13 @@ pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], toleran
             }
         }
     }
-    for v in [ha, hb, mis_h] {
-        pool::give_f32(v);
-    }
+    pool::give_f32(mis_h);
     let share = left as f64 / total.max(1) as f64;
     if share < min_share || total == 0 {
-        pool::give_f32(fa);
-        pool::give_f32(fb);
         return (None, share);
     }
     // Mismatch on b's grid; cell x of a pairs with (about) x + d of b.
-    let mis = box_mismatch(&fa, &fb, n, d, 2);
+    let mis = box_mismatch(fa, fb, n, d, 2);
     let keep = |f: &[f32], m: &CloudMap, k: usize, mk: f32| -> f32 {
         let v = f[k];
         if v.is_nan() {
@@ -405,36 +480,33 @@ pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, d: [f64; 2], toleran
     for k in 0..n * n {
         let (i, j) = ((k % n) as i64 + dx, (k / n) as i64 + dy);
         let mk = if i < 0 || j < 0 || i >= n as i64 || j >= n as i64 { f32::NAN } else { mis[j as usize * n + i as usize] };
-        ra.push(keep(&fa, a, k, mk));
+        ra.push(keep(fa, a, k, mk));
     }
     let mut rb = pool::take_f32();
-    rb.extend(mis.iter().enumerate().map(|(k, m)| keep(&fb, b, k, *m)));
-    for v in [fa, fb, mis] {
-        pool::give_f32(v);
-    }
+    rb.extend(mis.iter().enumerate().map(|(k, m)| keep(fb, b, k, *m)));
+    pool::give_f32(mis);
     (Some((ra, rb)), share)
 }
 
 /// Block vectors between maps `a` and `b` on their score feature.
-pub(super) fn block_vectors(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
-    block_vectors_on(score_feature(a), score_feature(b), a, dt_s, params, prior)
+pub(super) fn block_vectors(a: &CloudMap, xa: &MapFeatures, xb: &MapFeatures, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+    block_vectors_on(&xa.prepared, &xb.prepared, a, dt_s, params, prior)
 }
 
-/// Give a feature map back to the buffer pool.
-pub(super) fn recycle(v: Vec<f32>) {
-    pool::give_f32(v);
+/// Block vectors between two feature maps (`fa` earlier, `fb` later) on `a`'s grid (the features
+/// are given back to the pool).
+pub(super) fn block_vectors_between(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+    let n = a.grid.n;
+    block_vectors_on(&Prepared::new(fa, n, false), &Prepared::new(fb, n, true), a, dt_s, params, prior)
 }
 
-/// Block vectors between two feature maps on `a`'s grid (the features are given back to the pool).
-pub(super) fn block_vectors_on(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+/// Block vectors between two prepared feature maps on `a`'s grid.
+fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
-    let (ca_raw, nc) = downsample(&fa, n, 4);
-    let (cb_raw, _) = downsample(&fb, n, 4);
-    let (ca, cb) = (Plane::new(&ca_raw, nc, false), Plane::new(&cb_raw, nc, true));
-    pool::give_f32(ca_raw);
-    pool::give_f32(cb_raw);
-    let (pa, pb) = (Plane::new(&fa, n, false), Plane::new(&fb, n, true));
+    let nc = xa.nc;
+    let (ca, cb, pa, pb) = (&xa.coarse, &xb.coarse, &xa.fine, &xb.fine);
+    let (fa, fb) = (&xa.feature, &xb.feature);
     let bs = params.block_cells.min(n / 2).max(8) / 4 * 4;
     let reach_cells = params.max_speed_mps * dt_s / cell;
     let rc = (reach_cells / 4.0).ceil() as i64 + 1;
@@ -481,7 +553,7 @@ pub(super) fn block_vectors_on(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f
                 let mut best = (f64::MIN, 0i64, 0i64);
                 for dy in cy - r..=cy + r {
                     for dx in cx - r..=cx + r {
-                        if let Some(v) = ncc(&ca, coarse_tpl, &cb, nc, cbx, cby, cbs, dx, dy, min_c) {
+                        if let Some(v) = ncc(ca, coarse_tpl, cb, nc, cbx, cby, cbs, dx, dy, min_c) {
                             scores.push((v, dx, dy));
                             if v > best.0 {
                                 best = (v, dx, dy);
@@ -515,7 +587,7 @@ pub(super) fn block_vectors_on(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f
             let eval = |ox: i64, oy: i64, fine: &mut [[f64; 7]; 7]| -> f64 {
                 let (ix, iy) = ((ox + 3) as usize, (oy + 3) as usize);
                 if fine[iy][ix].is_nan() {
-                    fine[iy][ix] = ncc(&pa, fine_tpl, &pb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f).unwrap_or(f64::MIN);
+                    fine[iy][ix] = ncc(pa, fine_tpl, pb, n, ax, ay, bs, bx0 + ox, by0 + oy, min_f).unwrap_or(f64::MIN);
                 }
                 fine[iy][ix]
             };
@@ -555,7 +627,7 @@ pub(super) fn block_vectors_on(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f
             let sub_y = parabola_offset(fine[fy - 1][fx], fine[fy][fx], fine[fy + 1][fx]);
             let sub_x = if sub_x.is_nan() { 0.0 } else { sub_x };
             let sub_y = if sub_y.is_nan() { 0.0 } else { sub_y };
-            let (dxc, dyc) = refine_lk(&fa, &fb, n, ax, ay, bs, ((bx0 + fb_best.1) as f64 + sub_x, (by0 + fb_best.2) as f64 + sub_y));
+            let (dxc, dyc) = refine_lk(fa, fb, n, ax, ay, bs, ((bx0 + fb_best.1) as f64 + sub_x, (by0 + fb_best.2) as f64 + sub_y));
             let c = a.grid.cell_centre_m(ax + bs / 2, ay + bs / 2);
             let v_mps = [dxc * cell / dt_s, dyc * cell / dt_s];
             // The search window has a cell of margin: a match beyond the largest plausible speed
@@ -579,11 +651,6 @@ pub(super) fn block_vectors_on(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f
             Some(BlockVector { centre_m: c, v_mps, peak: fb_best.0, mean_score: mean, thick_share: thick })
         })
         .collect();
-    for p in [ca, cb, pa, pb] {
-        p.recycle();
-    }
-    pool::give_f32(fa);
-    pool::give_f32(fb);
     (vectors, tried)
 }
 

@@ -36,7 +36,8 @@ use crate::cloudmap::CloudMap;
 use crate::config::{ConfigError, check_range};
 
 mod matching;
-use matching::{block_vectors, block_vectors_on, box_mismatch, residual_features};
+pub use matching::MapFeatures;
+use matching::{block_vectors, block_vectors_between, box_mismatch, residual_features};
 
 /// `[motion]` in `site.toml`.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -181,15 +182,20 @@ pub struct Measurement {
 /// so that a layer too sparse or too faint to win blocks in the first pass yields vectors of its
 /// own. All vectors are then clustered; without a second pass there is one layer.
 pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
-    let (mut vectors, mut tried) = block_vectors(a, b, dt_s, params, priors.first().copied());
+    measure_prepared((a, &MapFeatures::new(a)), (b, &MapFeatures::new(b)), dt_s, params, priors)
+}
+
+/// [`measure`] with each map's [`MapFeatures`] given (the engine keeps them with its maps).
+pub fn measure_prepared((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
+    let (mut vectors, mut tried) = block_vectors(a, xa, xb, dt_s, params, priors.first().copied());
     // One motion unless the residual pass finds cloud it does not explain: a split of the first
     // pass's vectors alone is more often cloud evolving than a second layer.
     let first = summarize(vectors.clone(), tried, dt_s, params, false);
     let Some(dominant) = first.layers.first() else { return first };
     let cell = a.grid.cell_m;
     let d = [dominant.v_mps[0] * dt_s / cell, dominant.v_mps[1] * dt_s / cell];
-    let (Some((ra, rb)), _share) = residual_features(a, b, d, params.residual_tolerance as f32, params.residual_min_share) else { return first };
-    let (v2, t2) = block_vectors_on(ra, rb, a, dt_s, params, priors.get(1).copied());
+    let (Some((ra, rb)), _share) = residual_features(a, b, xa, xb, d, params.residual_tolerance as f32, params.residual_min_share) else { return first };
+    let (v2, t2) = block_vectors_between(ra, rb, a, dt_s, params, priors.get(1).copied());
     // Residual vectors near the dominant layer re-measure it from the rims its displacement left
     // (biased by the blanking): only the other motions are kept.
     vectors.extend(v2.into_iter().filter(|v| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps));
@@ -197,7 +203,7 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
     let mut m = summarize(vectors, tried, dt_s, params, true);
     // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
     if let [l0, l1] = m.layers.as_slice() {
-        let mut labels = label_layers(a, b, dt_s, &[l0.v_mps, l1.v_mps]);
+        let mut labels = label_layers_on(xa.feature(), xb.feature(), b, dt_s, &[l0.v_mps, l1.v_mps]);
         let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
         // Per layer: cloudy cells, thick cells.
         let mut counts = [[0usize; 2]; 2];
@@ -326,13 +332,17 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
 /// interiors match under many displacements, their edges only under the right one). Other cells,
 /// and cells no displacement can judge, get layer 0.
 pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
+    label_layers_on(MapFeatures::new(a).feature(), MapFeatures::new(b).feature(), b, dt_s, vs)
+}
+
+/// [`label_layers`] on the maps' score features (`fa` of the earlier map, `fb` of `b`).
+pub fn label_layers_on(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
     let n = b.grid.n;
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
     let mut best = vec![(f32::INFINITY, 0u8); n * n];
-    let (fa, fb) = (matching::score_feature(a), matching::score_feature(b));
     for (l, v) in vs.iter().enumerate().take(u8::MAX as usize) {
         let d = [v[0] * dt_s / b.grid.cell_m, v[1] * dt_s / b.grid.cell_m];
-        let mis = box_mismatch(&fa, &fb, n, d, 4);
+        let mis = box_mismatch(fa, fb, n, d, 4);
         for (k, (m, bst)) in mis.iter().zip(best.iter_mut()).enumerate() {
             if cloudy(b.class[k]) && *m < bst.0 {
                 *bst = (*m, l as u8);
@@ -340,8 +350,6 @@ pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> V
         }
         matching::recycle(mis);
     }
-    matching::recycle(fa);
-    matching::recycle(fb);
     best.into_iter().map(|b| b.1).collect()
 }
 
