@@ -195,14 +195,21 @@ impl CloudMap {
     /// Share of known cells that are cloudy (thin or thick) within a zenith angle \[°\] of the
     /// camera.
     pub fn cloud_fraction(&self, lut: &Lut, max_zenith_deg: f32) -> f64 {
-        let (mut c, mut n) = (0usize, 0usize);
+        self.cover(lut, max_zenith_deg)[0]
+    }
+
+    /// Cloudy (thin or thick) and thin shares of the known cells within a zenith angle (NaN
+    /// when none is known).
+    pub fn cover(&self, lut: &Lut, max_zenith_deg: f32) -> [f64; 2] {
+        let (mut cloudy, mut thin, mut n) = (0usize, 0usize, 0usize);
         for k in 0..self.class.len() {
             if lut.z_deg[k] <= max_zenith_deg && self.class[k] != Class::Unknown as u8 {
                 n += 1;
-                c += (self.class[k] != Class::Clear as u8) as usize;
+                cloudy += (self.class[k] != Class::Clear as u8) as usize;
+                thin += (self.class[k] == Class::Thin as u8) as usize;
             }
         }
-        if n == 0 { f64::NAN } else { c as f64 / n as f64 }
+        if n == 0 { [f64::NAN; 2] } else { [cloudy as f64 / n as f64, thin as f64 / n as f64] }
     }
 }
 

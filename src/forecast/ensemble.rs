@@ -21,6 +21,11 @@ pub fn quantile_sorted(v: &[f64], q: f64) -> f64 {
     if i + 1 < v.len() { v[i] * (1.0 - f) + v[i + 1] * f } else { v[i] }
 }
 
+/// Spread of the natural logarithm of a second cloud layer's base height over the configured one
+/// in the ensemble (own choice: a factor of 0.6–1.65 at one sigma; the camera alone cannot tell
+/// its height).
+const SECOND_LAYER_LOG_CBH_SIGMA: f64 = 0.5;
+
 /// An ensemble: sharp members (no horizon blur) drawn around the central forecast by perturbing the
 /// motion (by its uncertainty, at least `ensemble_motion_sigma_mps`), the cloud base height, the
 /// beam transmittance and the cloud-scattered diffuse; deterministic for a given issue time. The
@@ -45,14 +50,17 @@ pub fn ensemble_with(
         .map(|m| {
             let g = |k: u64| gaussian(hash64(seed ^ (m as u64 * 97 + k)), hash64(seed.rotate_left(13) ^ (m as u64 * 89 + k)));
             let mut inp = input.clone();
+            let cbh_g = g(3);
             for (l, ad) in inp.layers.iter_mut().enumerate() {
                 let sigma = ad.sigma_mps.max(p.ensemble_motion_sigma_mps);
                 let o = 10 * l as u64;
                 ad.v_mps = [ad.v_mps[0] + sigma * g(1 + o), ad.v_mps[1] + sigma * g(2 + o)];
+                // The first layer's base is the configured one; a second layer's is not known at
+                // all (one camera cannot tell its height), so its factor spreads wider.
+                ad.cbh_factor = if l == 0 { (1.0 + p.ensemble_cbh_rel_sigma * cbh_g).max(0.3) } else { (SECOND_LAYER_LOG_CBH_SIGMA * g(9 + o)).exp() };
                 // Members are sharp: their spread, not a blur, carries the uncertainty.
                 ad.sigma_mps = 0.0;
             }
-            inp.cbh_m = input.cbh_m * (1.0 + p.ensemble_cbh_rel_sigma * g(3)).max(0.3);
             // Per-class transmittances: clear sky varies little, thin and thick cloud a lot.
             let gb = g(4);
             inp.params.beam_clear = p.beam_clear * (1.0 + 0.1 * p.ensemble_beam_rel_sigma * cover_share * gb);
@@ -82,15 +90,18 @@ pub fn ensemble_with(
 
 /// Online calibration of the band widths per horizon against measurements: adaptive conformal
 /// inference (I. Gibbs, E. Candès, "Adaptive conformal inference under distribution shift",
-/// NeurIPS 2021) applied to a width scale. Each issued plant band is kept until its target time has
-/// been measured; a miss (measurement outside P10–P90) widens that horizon's bands, a hit narrows
-/// them, with the steady state at the nominal 20 % misses. The scale multiplies the distances of
-/// P10 and P90 from P50, for every block and the plant, GHI and power alike.
+/// NeurIPS 2021) applied to a width scale. The ensemble also forecasts the mean GHI at the
+/// pyranometers (the probes): each issued probe band is kept until its target time has been
+/// measured; a miss (measurement outside P10–P90) widens that horizon's bands, a hit narrows them,
+/// with the steady state at the nominal 20 % misses. The scale multiplies the distances of P10 and
+/// P90 from P50, for every block and the plant, GHI and power alike (the error sources, motion and
+/// transmittance, are shared; verifying the plant band against a few points would judge a mean by
+/// points and widen it).
 #[derive(Debug, Clone, Default)]
 pub struct BandCalibration {
     /// Width scale per horizon \[s\].
     scale: std::collections::BTreeMap<u32, f64>,
-    /// Issued plant GHI bands awaiting their measurement: (target time, horizon, P10, P90).
+    /// Issued probe GHI bands awaiting their measurement: (target time, horizon, P10, P90).
     pending: std::collections::VecDeque<(chrono::DateTime<chrono::Utc>, u32, f64, f64)>,
     /// Bands verified so far.
     pub verified: usize,
@@ -129,18 +140,26 @@ impl BandCalibration {
         self.pending = keep;
     }
 
-    /// Scale the bands of a forecast (rows aligned with `bands`) and keep its plant GHI bands for
+    /// Scale the bands of a forecast (rows aligned with `bands`) and keep the probe bands
+    /// (`probe_bands`: P10, P50, P90 per horizon, in the forecast's horizon order) for
     /// verification.
-    pub fn apply(&mut self, forecast: &Forecast, bands: &mut [Band]) {
+    pub fn apply(&mut self, forecast: &Forecast, bands: &mut [Band], probe_bands: &[[f64; 3]]) {
+        let scaled = |k: f64, q: &mut [f64; 3]| {
+            let mid = q[1];
+            q[0] = (mid - k * (mid - q[0])).max(0.0);
+            q[2] = mid + k * (q[2] - mid);
+        };
         for (r, b) in forecast.rows.iter().zip(bands.iter_mut()) {
             let k = self.scale(r.horizon_s);
-            for q in [&mut b.ghi_wm2, &mut b.power_kw] {
-                let mid = q[1];
-                q[0] = (mid - k * (mid - q[0])).max(0.0);
-                q[2] = mid + k * (q[2] - mid);
-            }
-            if r.target == "plant" && self.pending.len() < Self::MAX_PENDING {
-                self.pending.push_back((r.time, r.horizon_s, b.ghi_wm2[0], b.ghi_wm2[2]));
+            scaled(k, &mut b.ghi_wm2);
+            scaled(k, &mut b.power_kw);
+        }
+        let horizons = forecast.rows.iter().filter(|r| r.target == "plant");
+        for (r, pb) in horizons.zip(probe_bands) {
+            if self.pending.len() < Self::MAX_PENDING {
+                let mut q = *pb;
+                scaled(self.scale(r.horizon_s), &mut q);
+                self.pending.push_back((r.time, r.horizon_s, q[0], q[2]));
             }
         }
     }
@@ -160,9 +179,10 @@ mod tests {
             let t0 = Utc.with_ymd_and_hms(2026, 6, 14, 9, 0, 0).unwrap();
             for i in 0..4000 {
                 let t = t0 + Duration::seconds(i);
-                let fc = Forecast { rows: vec![super::super::row("plant", 300, t, &[0.0; 6], 1000.0)] };
-                let mut bands = [Band { ghi_wm2: [500.0 - half, 500.0, 500.0 + half], power_kw: [0.0; 3] }];
-                c.apply(&fc, &mut bands);
+                let fc = Forecast { rows: vec![super::super::row("plant", 300, t, &[0.0; 6], 1000.0)], probes_ghi_wm2: vec![500.0] };
+                let band = [500.0 - half, 500.0, 500.0 + half];
+                let mut bands = [Band { ghi_wm2: band, power_kw: [0.0; 3] }];
+                c.apply(&fc, &mut bands, &[band]);
                 // A deterministic, evenly spread sequence in [−100, 100).
                 let y = 500.0 + ((i as f64 * 0.618_034) % 1.0) * 200.0 - 100.0;
                 c.verify(0.05, |tt| (*tt == t).then_some(Some(y)));
