@@ -654,6 +654,12 @@ fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, param
     (vectors, tried)
 }
 
+/// Most Gauss–Newton steps of [`refine_lk`], and the step below which it stops \[cells\]: 0.02 of
+/// a ~75 m cell over a 100 s baseline is 0.015 m/s. (4 steps to 0.005 cells gave the same motion
+/// errors and skills on every synthetic scene to within 0.01 m/s and 0.006, at a third more cost.)
+const LK_ITERATIONS: usize = 3;
+const LK_TOLERANCE_CELLS: f64 = 0.02;
+
 /// Sub-cell refinement of a block's displacement by Gauss–Newton on the squared difference,
 /// with the template's own gradient (Lucas & Kanade 1981; the inverse-compositional idea of Baker
 /// & Matthews 2004), starting from the NCC peak and kept within one cell of it. The displacement is
@@ -685,7 +691,7 @@ fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, 
         return d0;
     }
     let mut d = d0;
-    for _ in 0..4 {
+    for _ in 0..LK_ITERATIONS {
         let (fx0, fy0) = (d.0.floor(), d.1.floor());
         let (fx, fy) = ((d.0 - fx0) as f32, (d.1 - fy0) as f32);
         let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
@@ -744,7 +750,7 @@ fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, 
         if (d.0 - d0.0).abs() > 1.0 || (d.1 - d0.1).abs() > 1.0 {
             return d0;
         }
-        if sx.abs() < 0.005 && sy.abs() < 0.005 {
+        if sx.abs() < LK_TOLERANCE_CELLS && sy.abs() < LK_TOLERANCE_CELLS {
             break;
         }
     }
