@@ -478,13 +478,13 @@ pub fn segment_image(
     let fr = reference.for_frame(params, sample);
     let mut classes = vec![0u8; w * h];
     let (mut cloudy, mut counted) = (0usize, 0usize);
-    for i in 0..w * h {
+    for (i, class) in classes.iter_mut().enumerate() {
         if geom.z_deg[i].is_nan() {
             continue;
         }
         let gi = g(i);
         let (_, c) = fr.classify(px(i), gi);
-        classes[i] = c as u8;
+        *class = c as u8;
         if c != Class::Unknown && gi.z_deg < params.cloud_fraction_zenith_deg as f32 {
             counted += 1;
             if c != Class::Clear {

@@ -354,23 +354,29 @@ async fn api_health(State(app): State<App>) -> Response {
     Json(h).into_response()
 }
 
-fn with_db<T>(app: &App, f: impl FnOnce(&rusqlite::Connection) -> rusqlite::Result<T>) -> Result<T, Response> {
-    let c = db::open(&app.db).map_err(|e| (StatusCode::INTERNAL_SERVER_ERROR, e.to_string()).into_response())?;
-    f(&c).map_err(|e| (StatusCode::INTERNAL_SERVER_ERROR, e.to_string()).into_response())
+/// Run `f` on the alarm log; an error is the message for a 500 response ([`db_error`]).
+fn with_db<T>(app: &App, f: impl FnOnce(&rusqlite::Connection) -> rusqlite::Result<T>) -> Result<T, String> {
+    let c = db::open(&app.db).map_err(|e| e.to_string())?;
+    f(&c).map_err(|e| e.to_string())
+}
+
+/// The response to a failed alarm-log access.
+fn db_error(message: String) -> Response {
+    (StatusCode::INTERNAL_SERVER_ERROR, message).into_response()
 }
 
 async fn api_alarms(State(app): State<App>) -> Response {
     let state = app.shared.lock().map(|s| s.health.alarm.clone()).unwrap_or_default();
     match with_db(&app, |c| db::alarms(c, 200)) {
         Ok(log) => Json(serde_json::json!({"state": state, "log": log, "ack_enabled": app.token.is_some()})).into_response(),
-        Err(r) => r,
+        Err(e) => db_error(e),
     }
 }
 
 async fn api_history(State(app): State<App>) -> Response {
     match with_db(&app, |c| db::history(c, 2000)) {
         Ok(h) => Json(h).into_response(),
-        Err(r) => r,
+        Err(e) => db_error(e),
     }
 }
 
@@ -396,7 +402,7 @@ async fn api_ack(State(app): State<App>, Json(req): Json<AckRequest>) -> Respons
             Json(serde_json::json!({"acked": req.id})).into_response()
         }
         Ok(false) => (StatusCode::NOT_FOUND, Json(serde_json::json!({"error": "no such alarm"}))).into_response(),
-        Err(r) => r,
+        Err(e) => db_error(e),
     }
 }
 
