@@ -275,7 +275,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         }
         in_view[k] = true;
         let (s, c) = if sky.plain[k] {
-            fr.classify_plain(px(p), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]))
+            fr.classify_plain(px(p), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), params.thick_at(lut.z_deg[k]))
         } else {
             let (s, c) = fr.classify_with(px(p), geom(k), sky.default_rb[k]);
             (s, c as u8)

@@ -84,8 +84,12 @@ pub struct SegmentParams {
     pub cloud_rb: f64,
     /// Score from which a pixel is thin cloud.
     pub thin_score: f64,
-    /// Score from which a pixel is thick cloud.
+    /// Score from which a pixel is thick cloud (at the zenith; see `thick_horizon_drop`).
     pub thick_score: f64,
+    /// The thick-cloud score falls by this much toward the horizon, as `(z / 90°)⁴`: the sky
+    /// brightens toward the horizon, so the same opacity of cloud mixes more sky light there and
+    /// scores lower.
+    pub thick_horizon_drop: f64,
     /// Per-frame offset: pixels at most this far above the default count as the frame's clear sky.
     pub offset_band: f64,
     /// Per-frame offset: quantile of their departure from the default.
@@ -127,6 +131,11 @@ impl Default for SegmentParams {
             cloud_rb: 0.93,
             thin_score: 0.50,
             thick_score: 0.875,
+            // Off by default: 0.1–0.3 raised every synthetic scene's segmentation by 0.3–1.0
+            // points (more far cloud called thick, as the truth has it), but the forecast, whose
+            // per-class transmittances do not know that far "thick" cells are partly clear at the
+            // sun's slant, lost skill under two layers and over breaking overcast.
+            thick_horizon_drop: 0.0,
             offset_band: 0.05,
             offset_quantile: 0.70,
             offset_min_share: 0.10,
@@ -158,6 +167,7 @@ impl SegmentParams {
         check_range(file, &f("cloud_rb"), self.cloud_rb, 0.3, 2.0)?;
         check_range(file, &f("thin_score"), self.thin_score, 0.01, 2.0)?;
         check_range(file, &f("thick_score"), self.thick_score, self.thin_score, 3.0)?;
+        check_range(file, &f("thick_horizon_drop"), self.thick_horizon_drop, 0.0, self.thick_score - self.thin_score)?;
         check_range(file, &f("offset_band"), self.offset_band, -1.0, 1.0)?;
         check_range(file, &f("offset_quantile"), self.offset_quantile, 0.0, 1.0)?;
         check_range(file, &f("offset_min_share"), self.offset_min_share, 0.0, 1.0)?;
@@ -177,6 +187,13 @@ impl SegmentParams {
     #[inline]
     pub fn plain_sky(&self, z_deg: f32, gamma_deg: f32) -> bool {
         z_deg <= self.max_zenith_deg as f32 && gamma_deg >= self.sun_exclusion_deg.max(self.glare_zone_deg) as f32
+    }
+
+    /// The score from which a pixel at zenith `z_deg` is thick cloud.
+    #[inline]
+    pub fn thick_at(&self, z_deg: f32) -> f32 {
+        let zr = z_deg / 90.0;
+        self.thick_score as f32 - self.thick_horizon_drop as f32 * zr * zr * zr * zr
     }
 
     /// The parametric default reference R/B at zenith `z_deg` and sun angle `gamma_deg`.
@@ -266,12 +283,12 @@ impl FrameReference<'_> {
     /// ([`SegmentParams::plain_sky`]), given its reference R/B: the same result as
     /// [`FrameReference::classify`] there, without branches.
     #[inline]
-    pub fn classify_plain(&self, rgb: [u8; 3], reference_rb: f32) -> (f32, u8) {
+    pub fn classify_plain(&self, rgb: [u8; 3], reference_rb: f32, thick_score: f32) -> (f32, u8) {
         let p = self.params;
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
         let denom = (p.cloud_rb as f32 - reference_rb).max(0.03);
         let s = (rb - reference_rb) / denom;
-        (s, 1 + (s >= p.thin_score as f32) as u8 + (s >= p.thick_score as f32) as u8)
+        (s, 1 + (s >= p.thin_score as f32) as u8 + (s >= thick_score) as u8)
     }
 
     /// Cloudiness score and class of one pixel.
@@ -307,7 +324,7 @@ impl FrameReference<'_> {
                 (s, Class::Thick)
             };
         }
-        let c = if s >= p.thick_score as f32 {
+        let c = if s >= p.thick_at(g.z_deg) {
             Class::Thick
         } else if s >= p.thin_score as f32 {
             Class::Thin
@@ -664,6 +681,23 @@ mod tests {
         assert_eq!(sparse.classify(white, geom(40.0, 8.5)).1, Class::Unknown);
         // Beyond the glare zone the ring test does not apply.
         assert_eq!(glare.classify(white, geom(40.0, 30.0)).1, Class::Thick);
+    }
+
+    #[test]
+    fn thick_threshold_falls_toward_the_horizon() {
+        let p = SegmentParams { thick_horizon_drop: 0.2, ..Default::default() };
+        assert!((p.thick_at(0.0) - p.thick_score as f32).abs() < 1e-6);
+        assert!((p.thick_at(90.0) - (p.thick_score - 0.2) as f32).abs() < 1e-6);
+        // (60/90)⁴ = 0.1975: a score of 0.84 is thick at 60° (threshold 0.835), thin at the zenith.
+        let r = Reference::default();
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS] };
+        let reference_rb = p.default_reference(60.0, 90.0);
+        let rb = reference_rb + 0.84 * (p.cloud_rb as f32 - reference_rb);
+        let rgb = [(rb * 200.0).round() as u8, 200, 200];
+        assert_eq!(fr.classify(rgb, geom(60.0, 90.0)).1, Class::Thick);
+        let reference_rb0 = p.default_reference(0.0, 90.0);
+        let rb0 = reference_rb0 + 0.84 * (p.cloud_rb as f32 - reference_rb0);
+        assert_eq!(fr.classify([(rb0 * 200.0).round() as u8, 200, 200], geom(0.0, 90.0)).1, Class::Thin);
     }
 
     #[test]
