@@ -65,16 +65,56 @@ impl Plane {
         s1.resize(w * w, 0.0);
         s2.resize(w * w, 0.0);
         cnt.resize(w * w, 0);
-        for j in 0..n {
+        // Row prefix sums first (six independent running sums: two rows at a time, so the adds'
+        // latency overlaps), then each table row adds the one above (vectorizes).
+        let prefix = |j: usize, s1: &mut [f64], s2: &mut [f64], cnt: &mut [u32]| {
             let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
             for i in 0..n {
                 let x = v[j * n + i] as f64;
                 r1 += x;
                 r2 += x * x;
                 rc += m[j * n + i] as u32;
-                s1[(j + 1) * w + i + 1] = s1[j * w + i + 1] + r1;
-                s2[(j + 1) * w + i + 1] = s2[j * w + i + 1] + r2;
-                cnt[(j + 1) * w + i + 1] = cnt[j * w + i + 1] + rc;
+                s1[(j + 1) * w + i + 1] = r1;
+                s2[(j + 1) * w + i + 1] = r2;
+                cnt[(j + 1) * w + i + 1] = rc;
+            }
+        };
+        let mut j = 0;
+        while j + 1 < n {
+            let (mut a1, mut a2, mut ac) = (0f64, 0f64, 0u32);
+            let (mut b1, mut b2, mut bc) = (0f64, 0f64, 0u32);
+            for i in 0..n {
+                let (x, y) = (v[j * n + i] as f64, v[(j + 1) * n + i] as f64);
+                a1 += x;
+                a2 += x * x;
+                ac += m[j * n + i] as u32;
+                b1 += y;
+                b2 += y * y;
+                bc += m[(j + 1) * n + i] as u32;
+                s1[(j + 1) * w + i + 1] = a1;
+                s2[(j + 1) * w + i + 1] = a2;
+                cnt[(j + 1) * w + i + 1] = ac;
+                s1[(j + 2) * w + i + 1] = b1;
+                s2[(j + 2) * w + i + 1] = b2;
+                cnt[(j + 2) * w + i + 1] = bc;
+            }
+            j += 2;
+        }
+        if j < n {
+            prefix(j, &mut s1, &mut s2, &mut cnt);
+        }
+        for j in 1..=n {
+            let (above, row) = s1.split_at_mut(j * w);
+            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
+                *r += a;
+            }
+            let (above, row) = s2.split_at_mut(j * w);
+            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
+                *r += a;
+            }
+            let (above, row) = cnt.split_at_mut(j * w);
+            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
+                *r += a;
             }
         }
         Plane { n, v, m, s1, s2, cnt }
