@@ -131,6 +131,9 @@ pub struct Nowcast {
     pub alarm_change: Option<crate::ramp::AlarmChange>,
     /// Transmittance settings used (after tuning).
     pub irradiance: IrradianceParams,
+    /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
+    /// until calibrated; see [`crate::forecast::BandCalibration`]).
+    pub band_scale: [f64; 3],
     /// Stage timings.
     pub times: StageTimes,
 }
@@ -523,6 +526,7 @@ impl Nowcaster {
             alarm: self.alarm.state,
             alarm_change,
             irradiance: self.irradiance,
+            band_scale: [300, 600, 900].map(|h| self.band_calibration.scale(h)),
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
     }

@@ -228,7 +228,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
     let mut ramps_jsonl = String::new();
     let mut alarms = String::from("time_utc,from,to,probability,reason\n");
     let mut members = String::from("issue_time_utc,horizon_s,member,plant_ghi_wm2\n");
-    let mut fr = String::from("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms\n");
+    let mut fr = String::from("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min\n");
     let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
@@ -277,7 +277,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                 motion_row(&nc, &mut mo);
                 let _ = writeln!(
                     fr,
-                    "{},{name},ok,,{:.4},{:.0},{:.2},{dms:.2},{:.2},{:.2},{:.2},{:.2},{:.2}",
+                    "{},{name},ok,,{:.4},{:.0},{:.2},{dms:.2},{:.2},{:.2},{:.2},{:.2},{:.2},{:.3},{:.3},{:.3}",
                     fmt_time(&f.time),
                     nc.cloud_fraction,
                     nc.cbh_m,
@@ -286,7 +286,10 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                     nc.times.map_ms,
                     nc.times.motion_ms,
                     nc.times.forecast_ms,
-                    nc.times.ensemble_ms
+                    nc.times.ensemble_ms,
+                    nc.band_scale[0],
+                    nc.band_scale[1],
+                    nc.band_scale[2]
                 );
                 if nc.motion.is_some() {
                     last_motion = nc.motion.map(|m| m.v_mps);
@@ -300,7 +303,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
             }
             Err(rej) => {
                 let reason = rej.to_string().replace(',', ";");
-                let _ = writeln!(fr, "{},{name},{},{reason},,,,{dms:.2},,,,,", fmt_time(&f.time), rej.code());
+                let _ = writeln!(fr, "{},{name},{},{reason},,,,{dms:.2},,,,,,,,", fmt_time(&f.time), rej.code());
             }
         }
         bar.inc(1);

@@ -224,6 +224,19 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
         .filter_map(|r| Some((minute_of_day(&parse_time("t", &r["time_utc"]).ok()?), r["cloud_fraction"].parse::<f64>().ok()?)))
         .collect();
     html += &line_chart("Cloud fraction (zenith < 70°)", "time [UTC]", "cloud fraction", &[Series { label: "cloud fraction".into(), colour: "#555".into(), points: cf, dashed: false }], &[], true);
+    // The bands' online calibration (only when the replay had pyranometers to verify against).
+    let scale = |k: &str| -> Vec<(f64, f64)> {
+        fr.iter().filter_map(|r| Some((minute_of_day(&parse_time("t", &r["time_utc"]).ok()?), r.get(k)?.parse::<f64>().ok()?))).collect()
+    };
+    let scales: Vec<Series> = [("band_scale_5min", "5 min", "#1f6fd1"), ("band_scale_10min", "10 min", "#16a085"), ("band_scale_15min", "15 min", "#c0392b")]
+        .into_iter()
+        .map(|(k, label, colour)| Series { label: label.into(), colour: colour.into(), points: scale(k), dashed: false })
+        .filter(|s| s.points.iter().any(|p| (p.1 - 1.0).abs() > 1e-9))
+        .collect();
+    if !scales.is_empty() {
+        html += "<p>The P10–P90 bands are widened or narrowed per horizon until they hold 80 % of what the pyranometers measure (1 = the ensemble's own spread).</p>";
+        html += &line_chart("Band width scale from the online calibration", "time [UTC]", "scale", &scales, &[], true);
+    }
     // Ramp timeline.
     let p5: Vec<(f64, f64)> = rows
         .iter()
