@@ -350,6 +350,23 @@ mod tests {
     }
 
     #[test]
+    fn member_ramps_group_around_the_most_agreed_start() {
+        // Ten members drop 300 kW: one at minute 2, five at 4, four at 6 (agreement window ±2 min).
+        // Grouping from the earliest would make two events (minutes 2–4: 0.6; minute 6: 0.4); around
+        // the most agreed start (4, within 2 min of all ten) it is one event of probability 1.
+        let p = RampParams::default();
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let central: Vec<f64> = (0..10).map(|k| 900.0 - 60.0 * k as f64).collect();
+        let drop_at = |m: usize| (0..10).map(|k| if k <= m { 900.0 } else { 600.0 }).collect::<Vec<f64>>();
+        let starts = [2, 4, 4, 4, 4, 4, 6, 6, 6, 6];
+        let members: Vec<Vec<f64>> = starts.iter().map(|&m| drop_at(m)).collect();
+        let ev = ramp_events(&t0, &central, &members, 1.0, 1000.0, &p);
+        assert_eq!(ev.len(), 1, "{ev:?}");
+        assert!((ev[0].probability - 1.0).abs() < 1e-12);
+        assert_eq!(ev[0].lead_time_s, 240.0);
+    }
+
+    #[test]
     fn alarm_rises_at_once_and_falls_after_hold_with_margin() {
         let p = RampParams::default();
         let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
