@@ -226,6 +226,8 @@ pub struct CellSky {
     pub bin: Vec<u16>,
     /// Whether the cell is judged by its ratio alone ([`SegmentParams::plain_sky`]).
     pub plain: Vec<bool>,
+    /// Score from which the cell is thick cloud ([`SegmentParams::thick_at`]).
+    pub thick_score: Vec<f32>,
 }
 
 impl CellSky {
@@ -233,7 +235,7 @@ impl CellSky {
     pub fn new(lut: &Lut, sun_dir: Option<[f32; 3]>, params: &SegmentParams) -> CellSky {
         // Cells the camera does not see are never classified: they keep placeholders.
         let n = lut.pixel.len();
-        let mut sky = CellSky { gamma_deg: vec![180.0; n], default_rb: vec![0.0; n], bin: vec![0; n], plain: vec![false; n] };
+        let mut sky = CellSky { gamma_deg: vec![180.0; n], default_rb: vec![0.0; n], bin: vec![0; n], plain: vec![false; n], thick_score: vec![0.0; n] };
         for k in 0..n {
             if lut.pixel[k] == NO_PIXEL {
                 continue;
@@ -243,6 +245,7 @@ impl CellSky {
             sky.default_rb[k] = params.default_reference(z, g);
             sky.bin[k] = crate::segment::lib_index(z, g) as u16;
             sky.plain[k] = params.plain_sky(z, g);
+            sky.thick_score[k] = params.thick_at(z);
         }
         sky
     }
@@ -275,7 +278,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         }
         in_view[k] = true;
         let (s, c) = if sky.plain[k] {
-            fr.classify_plain(px(p), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), params.thick_at(lut.z_deg[k]))
+            fr.classify_plain(px(p), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), sky.thick_score[k])
         } else {
             let (s, c) = fr.classify_with(px(p), geom(k), sky.default_rb[k]);
             (s, c as u8)

@@ -124,20 +124,18 @@ impl BandCalibration {
     /// measurement at `t` is not complete yet, `Some(None)` when there will be none (a gap: the
     /// band is dropped), `Some(Some(ghi))` with the mean GHI the probes measured.
     pub fn verify(&mut self, rate: f64, mut measured: impl FnMut(&chrono::DateTime<chrono::Utc>) -> Option<Option<f64>>) {
-        let mut keep = std::collections::VecDeque::with_capacity(self.pending.len());
-        while let Some((t, h, lo, hi)) = self.pending.pop_front() {
-            match measured(&t) {
-                Some(None) => {}
-                Some(Some(y)) => {
-                    let miss = if y < lo || y > hi { 1.0 } else { 0.0 };
-                    let k = self.scale.entry(h).or_insert(1.0);
-                    *k = (*k * (rate * (miss - Self::NOMINAL_MISS)).exp()).clamp(Self::SCALE_LIMITS.0, Self::SCALE_LIMITS.1);
-                    self.verified += 1;
-                }
-                None => keep.push_back((t, h, lo, hi)),
+        let (scale, verified) = (&mut self.scale, &mut self.verified);
+        self.pending.retain(|&(t, h, lo, hi)| match measured(&t) {
+            None => true,
+            Some(None) => false,
+            Some(Some(y)) => {
+                let miss = if y < lo || y > hi { 1.0 } else { 0.0 };
+                let k = scale.entry(h).or_insert(1.0);
+                *k = (*k * (rate * (miss - Self::NOMINAL_MISS)).exp()).clamp(Self::SCALE_LIMITS.0, Self::SCALE_LIMITS.1);
+                *verified += 1;
+                false
             }
-        }
-        self.pending = keep;
+        });
     }
 
     /// Scale the bands of a forecast (rows aligned with `bands`) and keep the probe bands

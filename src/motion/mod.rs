@@ -35,9 +35,11 @@ use serde::{Deserialize, Serialize};
 use crate::cloudmap::CloudMap;
 use crate::config::{ConfigError, check_range};
 
+mod features;
 mod matching;
-pub use matching::MapFeatures;
-use matching::{block_vectors, block_vectors_between, box_mismatch, residual_features};
+pub use features::MapFeatures;
+use features::{box_mismatch, residual_features};
+use matching::{block_vectors, block_vectors_between};
 
 /// `[motion]` in `site.toml`.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -178,7 +180,7 @@ pub struct Measurement {
 ///
 /// The first pass matches the score. When its dominant layer's displacement leaves at least
 /// `residual_min_share` of the cloudy cells unexplained (another layer moving otherwise), a second
-/// pass matches that residual cloud alone on a clear background ([`matching::residual_features`]),
+/// pass matches that residual cloud alone on a clear background ([`features::residual_features`]),
 /// so that a layer too sparse or too faint to win blocks in the first pass yields vectors of its
 /// own. All vectors are then clustered; without a second pass there is one layer.
 pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
@@ -332,7 +334,11 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
 /// interiors match under many displacements, their edges only under the right one). Other cells,
 /// and cells no displacement can judge, get layer 0.
 pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
-    label_layers_on(MapFeatures::new(a).feature(), MapFeatures::new(b).feature(), b, dt_s, vs)
+    let (fa, fb) = (features::score_feature(a), features::score_feature(b));
+    let labels = label_layers_on(&fa, &fb, b, dt_s, vs);
+    features::recycle(fa);
+    features::recycle(fb);
+    labels
 }
 
 /// [`label_layers`] on the maps' score features (`fa` of the earlier map, `fb` of `b`).
@@ -348,7 +354,7 @@ pub fn label_layers_on(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f
                 *bst = (*m, l as u8);
             }
         }
-        matching::recycle(mis);
+        features::recycle(mis);
     }
     best.into_iter().map(|b| b.1).collect()
 }

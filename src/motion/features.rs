@@ -1,0 +1,452 @@
+//! What motion prepares of each cloud map: the matched feature, its reductions, value/mask planes
+//! with summed-area tables ([`MapFeatures`], kept with the map in the engine's history), and the
+//! neighbourhood mismatch of two maps under a displacement with the residual cloud it leaves.
+
+use crate::cloudmap::CloudMap;
+
+/// Buffers reused from frame to frame: the feature maps, planes and tables are the same size every
+/// frame, and taking fresh ones from the system allocator each time cost page faults (measured on
+/// 512² frames: the first pass's preparation 1.1 ms with fresh buffers).
+pub(super) mod pool {
+    crate::pool::typed_pool!(take_f32, give_f32, f32, F32);
+    crate::pool::typed_pool!(take_f64, give_f64, f64, F64);
+    crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
+}
+
+/// Mean over `f × f` cells, where at least half of them are known (NaN elsewhere).
+pub(super) fn downsample(m: &[f32], n: usize, f: usize) -> (Vec<f32>, usize) {
+    let nc = n / f;
+    let mut out = pool::take_f32();
+    out.resize(nc * nc, f32::NAN);
+    for j in 0..nc {
+        for i in 0..nc {
+            let (mut s, mut c) = (0.0f32, 0usize);
+            for dj in 0..f {
+                for v in &m[(j * f + dj) * n + i * f..(j * f + dj) * n + i * f + f] {
+                    if !v.is_nan() {
+                        s += v;
+                        c += 1;
+                    }
+                }
+            }
+            if 2 * c >= f * f {
+                out[j * nc + i] = s / c as f32;
+            }
+        }
+    }
+    (out, nc)
+}
+
+/// A feature map split into values (unknown set to zero) and a 0/1 mask, for branch-free sums,
+/// optionally with summed-area tables of the values, their squares and the mask: a window that is
+/// fully known in both maps then gets its sums in O(1) and only the cross term is summed cell by
+/// cell. The searched (later) map needs the tables; the template side sums each block once.
+pub(super) struct Plane {
+    n: usize,
+    pub(super) v: Vec<f32>,
+    pub(super) m: Vec<f32>,
+    s1: Vec<f64>,
+    s2: Vec<f64>,
+    cnt: Vec<u32>,
+}
+
+impl Plane {
+    fn new(f: &[f32], n: usize, tables: bool) -> Plane {
+        let (mut v, mut m) = (pool::take_f32(), pool::take_f32());
+        v.extend(f.iter().map(|x| if x.is_nan() { 0.0 } else { *x }));
+        m.extend(f.iter().map(|x| if x.is_nan() { 0.0 } else { 1.0 }));
+        if !tables {
+            return Plane { n, v, m, s1: vec![], s2: vec![], cnt: vec![] };
+        }
+        let w = n + 1;
+        let (mut s1, mut s2, mut cnt) = (pool::take_f64(), pool::take_f64(), pool::take_u32());
+        s1.resize(w * w, 0.0);
+        s2.resize(w * w, 0.0);
+        cnt.resize(w * w, 0);
+        // Row prefix sums first (six independent running sums: two rows at a time, so the adds'
+        // latency overlaps), then each table row adds the one above (vectorizes).
+        let prefix = |j: usize, s1: &mut [f64], s2: &mut [f64], cnt: &mut [u32]| {
+            let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
+            for i in 0..n {
+                let x = v[j * n + i] as f64;
+                r1 += x;
+                r2 += x * x;
+                rc += m[j * n + i] as u32;
+                s1[(j + 1) * w + i + 1] = r1;
+                s2[(j + 1) * w + i + 1] = r2;
+                cnt[(j + 1) * w + i + 1] = rc;
+            }
+        };
+        let mut j = 0;
+        while j + 1 < n {
+            let (mut a1, mut a2, mut ac) = (0f64, 0f64, 0u32);
+            let (mut b1, mut b2, mut bc) = (0f64, 0f64, 0u32);
+            for i in 0..n {
+                let (x, y) = (v[j * n + i] as f64, v[(j + 1) * n + i] as f64);
+                a1 += x;
+                a2 += x * x;
+                ac += m[j * n + i] as u32;
+                b1 += y;
+                b2 += y * y;
+                bc += m[(j + 1) * n + i] as u32;
+                s1[(j + 1) * w + i + 1] = a1;
+                s2[(j + 1) * w + i + 1] = a2;
+                cnt[(j + 1) * w + i + 1] = ac;
+                s1[(j + 2) * w + i + 1] = b1;
+                s2[(j + 2) * w + i + 1] = b2;
+                cnt[(j + 2) * w + i + 1] = bc;
+            }
+            j += 2;
+        }
+        if j < n {
+            prefix(j, &mut s1, &mut s2, &mut cnt);
+        }
+        for j in 1..=n {
+            let (above, row) = s1.split_at_mut(j * w);
+            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
+                *r += a;
+            }
+            let (above, row) = s2.split_at_mut(j * w);
+            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
+                *r += a;
+            }
+            let (above, row) = cnt.split_at_mut(j * w);
+            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
+                *r += a;
+            }
+        }
+        Plane { n, v, m, s1, s2, cnt }
+    }
+
+    /// Sums of values, squares and known cells over the window of side `b` at `(x, y)` (from the
+    /// tables).
+    #[inline]
+    pub(super) fn window(&self, x: usize, y: usize, b: usize) -> (f64, f64, u32) {
+        let w = self.n + 1;
+        let (a, c, d, e) = (y * w + x, y * w + x + b, (y + b) * w + x, (y + b) * w + x + b);
+        (
+            self.s1[e] - self.s1[c] - self.s1[d] + self.s1[a],
+            self.s2[e] - self.s2[c] - self.s2[d] + self.s2[a],
+            self.cnt[e] + self.cnt[a] - self.cnt[c] - self.cnt[d],
+        )
+    }
+
+    /// The same sums, cell by cell (for a template block, once).
+    pub(super) fn block_sums(&self, x: usize, y: usize, b: usize) -> (f64, f64, u32) {
+        let (mut s1, mut s2, mut k) = (0f64, 0f64, 0u32);
+        for j in y..y + b {
+            for i in j * self.n + x..j * self.n + x + b {
+                let v = self.v[i] as f64;
+                s1 += v;
+                s2 += v * v;
+                k += self.m[i] as u32;
+            }
+        }
+        (s1, s2, k)
+    }
+}
+
+/// Give a feature map back to the buffer pool.
+pub(super) fn recycle(v: Vec<f32>) {
+    pool::give_f32(v);
+}
+
+impl Drop for Plane {
+    /// Give the buffers back to the pool.
+    fn drop(&mut self) {
+        for v in [std::mem::take(&mut self.v), std::mem::take(&mut self.m)] {
+            if v.capacity() > 0 {
+                pool::give_f32(v);
+            }
+        }
+        for v in [std::mem::take(&mut self.s1), std::mem::take(&mut self.s2)] {
+            if v.capacity() > 0 {
+                pool::give_f64(v);
+            }
+        }
+        let c = std::mem::take(&mut self.cnt);
+        if c.capacity() > 0 {
+            pool::give_u32(c);
+        }
+    }
+}
+
+/// A feature map prepared for block matching: the feature, and its planes at full resolution and
+/// reduced 4× (with summed-area tables when the map is searched).
+pub(super) struct Prepared {
+    pub(super) feature: Vec<f32>,
+    pub(super) fine: Plane,
+    pub(super) coarse: Plane,
+    pub(super) nc: usize,
+}
+
+impl Prepared {
+    pub(super) fn new(feature: Vec<f32>, n: usize, tables: bool) -> Prepared {
+        let (coarse_raw, nc) = downsample(&feature, n, 4);
+        let coarse = Plane::new(&coarse_raw, nc, tables);
+        pool::give_f32(coarse_raw);
+        let fine = Plane::new(&feature, n, tables);
+        Prepared { feature, fine, coarse, nc }
+    }
+}
+
+impl Drop for Prepared {
+    fn drop(&mut self) {
+        let f = std::mem::take(&mut self.feature);
+        if f.capacity() > 0 {
+            pool::give_f32(f);
+        }
+    }
+}
+
+/// What motion needs of one cloud map, computed once: a map is searched when it is the later of a
+/// pair and serves as the template when a later frame is matched against it, so the engine keeps
+/// these with the map in its history (before, each map's feature, planes and reductions were
+/// computed twice, and the score feature four times).
+pub struct MapFeatures {
+    pub(super) prepared: Prepared,
+    /// The feature reduced 2× (for the residual share).
+    half: Vec<f32>,
+    nh: usize,
+}
+
+impl MapFeatures {
+    /// Prepare a map.
+    pub fn new(m: &CloudMap) -> MapFeatures {
+        let n = m.grid.n;
+        let feature = score_feature(m);
+        let (half, nh) = downsample(&feature, n, 2);
+        MapFeatures { prepared: Prepared::new(feature, n, true), half, nh }
+    }
+
+    /// The score feature.
+    pub fn feature(&self) -> &[f32] {
+        &self.prepared.feature
+    }
+}
+
+impl Drop for MapFeatures {
+    fn drop(&mut self) {
+        let h = std::mem::take(&mut self.half);
+        if h.capacity() > 0 {
+            pool::give_f32(h);
+        }
+    }
+}
+
+/// The matched feature of a map: the cloudiness score clipped to [−0.5, 1.5], NaN where unknown.
+pub(super) fn score_feature(m: &CloudMap) -> Vec<f32> {
+    let mut out = pool::take_f32();
+    out.extend(m.score.iter().map(|v| if v.is_nan() { f32::NAN } else { v.clamp(-0.5, 1.5) }));
+    out
+}
+
+/// Mean absolute difference of two feature maps (`n × n`, NaN unknown) around each cell of `fb`
+/// under a displacement `d` (cells, from `fa` to `fb`): `|fb(y) − fa(y − d)|`, `fa` sampled
+/// bilinearly, averaged over the (2r + 1)² box around y, over the pairs both known. NaN where the
+/// box holds no such pair.
+pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usize) -> Vec<f32> {
+    // Per-cell differences and counts (row slices, so the inner loops vectorize), then the box
+    // sums: a sliding window along each row, then running sums down the columns.
+    let (mut dv, mut dc) = (pool::take_f32(), pool::take_f32());
+    dv.resize(n * n, 0.0);
+    dc.resize(n * n, 0.0);
+    // a at y − d: integer part o, fractions (fx, fy) toward the next cell.
+    let (ox, oy) = ((-d[0]).floor() as i64, (-d[1]).floor() as i64);
+    let (fx, fy) = ((-d[0] - ox as f64) as f32, (-d[1] - oy as f64) as f32);
+    let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
+    // Columns i whose samples i + ox and i + ox + 1 are on the map.
+    let (i0, i1) = ((-ox).max(0) as usize, (n as i64 - 1 - ox).clamp(0, n as i64) as usize);
+    if i1 > i0 {
+        let len = i1 - i0;
+        let c0 = (i0 as i64 + ox) as usize;
+        for j in 0..n {
+            let ja = j as i64 + oy;
+            if ja < 0 || ja + 1 >= n as i64 {
+                continue;
+            }
+            let ja = ja as usize;
+            let (r0, r1) = (&fa[ja * n + c0..ja * n + c0 + len + 1], &fa[(ja + 1) * n + c0..(ja + 1) * n + c0 + len + 1]);
+            let rb = &fb[j * n + i0..j * n + i1];
+            let (ov, oc) = (&mut dv[j * n + i0..j * n + i1], &mut dc[j * n + i0..j * n + i1]);
+            for i in 0..len {
+                let y = w00 * r0[i] + w10 * r0[i + 1] + w01 * r1[i] + w11 * r1[i + 1];
+                let e = (rb[i] - y).abs();
+                let ok = !e.is_nan();
+                ov[i] = if ok { e } else { 0.0 };
+                oc[i] = if ok { 1.0 } else { 0.0 };
+            }
+        }
+    }
+    // Along rows: the window [i − r, i + r] clipped to the map.
+    let (mut hv, mut hc) = (pool::take_f32(), pool::take_f32());
+    hv.resize(n * n, 0.0);
+    hc.resize(n * n, 0.0);
+    for (src, dst) in [(&dv, &mut hv), (&dc, &mut hc)] {
+        for j in 0..n {
+            let (row, out) = (&src[j * n..j * n + n], &mut dst[j * n..j * n + n]);
+            let mut acc: f32 = row[..r.min(n)].iter().sum();
+            for i in 0..n {
+                if i + r < n {
+                    acc += row[i + r];
+                }
+                if i > r {
+                    acc -= row[i - r - 1];
+                }
+                out[i] = acc;
+            }
+        }
+    }
+    // Down the columns, a running sum of rows [j − r, j + r].
+    let mut out = pool::take_f32();
+    out.resize(n * n, f32::NAN);
+    let (mut av, mut ac) = (vec![0f32; n], vec![0f32; n]);
+    for jj in 0..r.min(n) {
+        for i in 0..n {
+            av[i] += hv[jj * n + i];
+            ac[i] += hc[jj * n + i];
+        }
+    }
+    for j in 0..n {
+        if j + r < n {
+            let (rv, rc) = (&hv[(j + r) * n..(j + r) * n + n], &hc[(j + r) * n..(j + r) * n + n]);
+            for i in 0..n {
+                av[i] += rv[i];
+                ac[i] += rc[i];
+            }
+        }
+        if j > r {
+            let (rv, rc) = (&hv[(j - r - 1) * n..(j - r) * n], &hc[(j - r - 1) * n..(j - r) * n]);
+            for i in 0..n {
+                av[i] -= rv[i];
+                ac[i] -= rc[i];
+            }
+        }
+        for (o, (v, c)) in out[j * n..j * n + n].iter_mut().zip(av.iter().zip(&ac)) {
+            // Counts are small whole numbers, exact in f32; a count of zero leaves NaN.
+            if *c > 0.5 {
+                *o = v / c;
+            }
+        }
+    }
+    for v in [dv, dc, hv, hc] {
+        pool::give_f32(v);
+    }
+    out
+}
+
+/// Feature maps of the earlier and the later map.
+pub(super) type FeaturePair = (Vec<f32>, Vec<f32>);
+
+/// Residual features of two maps under a displacement `d` (cells, from `a` to `b`): the cloud a
+/// layer moving by `d` does not explain.
+///
+/// A cell's mismatch is the mean absolute difference of the two maps around it under `d`
+/// ([`box_mismatch`], 5 × 5 cells: a single cloud interior may match by chance, a neighbourhood
+/// with its edges does not). The share of `b`'s cloudy cells (thin or thick) whose mismatch
+/// reaches `tolerance` is returned; when it is at least `min_share`, so are the two residual
+/// maps: those cells keep their feature, every other known cell becomes clear (0), so that a
+/// second pass matches the unexplained cloud on an empty background.
+pub(super) fn residual_features(a: &CloudMap, b: &CloudMap, xa: &MapFeatures, xb: &MapFeatures, d: [f64; 2], tolerance: f32, min_share: f64) -> (Option<FeaturePair>, f64) {
+    let n = a.grid.n;
+    let (fa, fb) = (xa.feature(), xb.feature());
+    let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
+    // The share is judged at half resolution (a quarter of the work; the 3 × 3 box there spans
+    // the full resolution's 5 × 5 and more): a half cell is cloudy when most of its cells are.
+    let nh = xb.nh;
+    let mis_h = box_mismatch(&xa.half, &xb.half, nh, [d[0] / 2.0, d[1] / 2.0], 1);
+    let (mut left, mut total) = (0usize, 0usize);
+    for j in 0..nh {
+        for i in 0..nh {
+            let m = mis_h[j * nh + i];
+            let k = 2 * j * n + 2 * i;
+            let c = cloudy(b.class[k]) as u8 + cloudy(b.class[k + 1]) as u8 + cloudy(b.class[k + n]) as u8 + cloudy(b.class[k + n + 1]) as u8;
+            if c >= 3 && !m.is_nan() {
+                total += 1;
+                left += (m >= tolerance) as usize;
+            }
+        }
+    }
+    pool::give_f32(mis_h);
+    let share = left as f64 / total.max(1) as f64;
+    if share < min_share || total == 0 {
+        return (None, share);
+    }
+    // Mismatch on b's grid; cell x of a pairs with (about) x + d of b.
+    let mis = box_mismatch(fa, fb, n, d, 2);
+    let keep = |f: &[f32], m: &CloudMap, k: usize, mk: f32| -> f32 {
+        let v = f[k];
+        if v.is_nan() {
+            f32::NAN
+        } else if !cloudy(m.class[k]) {
+            0.0
+        } else if mk.is_nan() {
+            // Where the displacement leaves the overlap it can neither explain nor refute: unknown.
+            f32::NAN
+        } else if mk >= tolerance {
+            v
+        } else {
+            0.0
+        }
+    };
+    let (dx, dy) = (d[0].round() as i64, d[1].round() as i64);
+    let mut ra = pool::take_f32();
+    for k in 0..n * n {
+        let (i, j) = ((k % n) as i64 + dx, (k / n) as i64 + dy);
+        let mk = if i < 0 || j < 0 || i >= n as i64 || j >= n as i64 { f32::NAN } else { mis[j as usize * n + i as usize] };
+        ra.push(keep(fa, a, k, mk));
+    }
+    let mut rb = pool::take_f32();
+    rb.extend(mis.iter().enumerate().map(|(k, m)| keep(fb, b, k, *m)));
+    pool::give_f32(mis);
+    (Some((ra, rb)), share)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The box mismatch against a direct sum over each box.
+    #[test]
+    fn box_mismatch_matches_a_direct_sum() {
+        let n = 24;
+        let val = |k: usize| -> f32 {
+            let h = crate::synth::noise::hash64(k as u64);
+            if h.is_multiple_of(11) { f32::NAN } else { (h % 1000) as f32 / 500.0 - 0.5 }
+        };
+        let fa: Vec<f32> = (0..n * n).map(val).collect();
+        let fb: Vec<f32> = (0..n * n).map(|k| val(k + 7777)).collect();
+        for (d, r) in [([2.3, -1.6], 2usize), ([-4.0, 3.5], 1), ([0.0, 0.0], 4)] {
+            let got = box_mismatch(&fa, &fb, n, d, r);
+            // a at (i − dx, j − dy), bilinear over its four neighbours.
+            let a_at = |x: f64, y: f64| -> f32 {
+                let (x0, y0) = (x.floor(), y.floor());
+                if x0 < 0.0 || y0 < 0.0 || x0 + 1.0 >= n as f64 || y0 + 1.0 >= n as f64 {
+                    return f32::NAN;
+                }
+                let (i, j, fx, fy) = (x0 as usize, y0 as usize, (x - x0) as f32, (y - y0) as f32);
+                (1.0 - fx) * (1.0 - fy) * fa[j * n + i] + fx * (1.0 - fy) * fa[j * n + i + 1] + (1.0 - fx) * fy * fa[(j + 1) * n + i] + fx * fy * fa[(j + 1) * n + i + 1]
+            };
+            for j in 0..n {
+                for i in 0..n {
+                    let (mut s, mut c) = (0f64, 0usize);
+                    for jj in j.saturating_sub(r)..(j + r + 1).min(n) {
+                        for ii in i.saturating_sub(r)..(i + r + 1).min(n) {
+                            let e = (fb[jj * n + ii] - a_at(ii as f64 - d[0], jj as f64 - d[1])).abs();
+                            if !e.is_nan() {
+                                s += e as f64;
+                                c += 1;
+                            }
+                        }
+                    }
+                    let g = got[j * n + i];
+                    if c == 0 {
+                        assert!(g.is_nan(), "({i}, {j}): {g} where no pair is known");
+                    } else {
+                        assert!((g as f64 - s / c as f64).abs() < 1e-4, "({i}, {j}) d {d:?} r {r}: {g} vs {}", s / c as f64);
+                    }
+                }
+            }
+        }
+    }
+}
