@@ -1,0 +1,722 @@
+#!/usr/bin/env python3
+"""Run nephocast on the independent-renderer scenes the way a user would, and score it.
+
+This is a CHECK, not a tuning target. The scenes (see their README.md) come from a renderer that
+nephocast was not built around; other cameras and seeds of that renderer are held back and are
+what the work is judged on. Use the numbers this prints to find out whether the engine holds up,
+never to fit settings to these particular scenes.
+
+For each camera (camera1, camera2) the script:
+
+1. writes site files into the work folder from ``input/site.json`` and ``input/ceilometer.json``:
+   one fixed horizontal block (so POA = GHI) over the plant footprint, a 15-minute forecast at
+   60 s steps, and three pyranometers taken from ``input/points.csv`` (nearest to the centres of
+   the footprint's western third, middle and eastern third);
+2. writes a measurements CSV for the cloudy scene from ``truth/truth_points.csv`` at those three
+   points (1-minute means, ``time_utc`` = start of the minute): synthetic pyranometer readings, the
+   only thing taken from ``truth/`` that the engine sees;
+3. obtains the camera: ``nephocast calibrate`` on the clear day (``--camera-from calibrate``, the
+   user's way) or, as a diagnostic only, ``truth/camera.json`` converted to nephocast's convention
+   (``--camera-from truth``; the conversion is verified with ``nephocast camera project``);
+4. measures the calibration against the true camera on a grid of sky directions (pixel and
+   angular error per zenith band), with ``nephocast camera project`` / ``unproject``;
+5. replays the cloudy scene with the measurements and scores forecasts, motion and ramp warnings
+   with the scene's ``score.py``;
+6. replays the clear day with the same camera and scores its forecasts too;
+7. prints a compact markdown summary and writes everything to ``--json``.
+
+The engine only ever sees ``input/`` plus the synthetic pyranometer readings.
+"""
+import argparse
+import json
+import math
+import os
+import re
+import shutil
+import subprocess
+import sys
+import tomllib
+
+import numpy as np
+import pandas as pd
+
+BANDS = [(0, 40), (40, 50), (50, 60), (60, 70), (70, 80), (80, 88.0001)]
+BAND_NAMES = ["<40", "40-50", "50-60", "60-70", "70-80", "80-88"]
+HORIZONS = list(range(1, 16))
+
+
+# ------------------------------------------------------------------ small helpers
+def run(cmd, stdin=None, log=None):
+    """Run a command; return (exit code, stdout, stderr). Logs the command line."""
+    if log is not None:
+        log.append(" ".join(str(c) for c in cmd))
+    p = subprocess.run([str(c) for c in cmd], input=stdin, capture_output=True, text=True)
+    return p.returncode, p.stdout, p.stderr
+
+
+def toml_value(v):
+    if isinstance(v, str):
+        return json.dumps(v)
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(toml_value(x) for x in v) + "]"
+    return repr(float(v)) if isinstance(v, float) else str(v)
+
+
+def toml_table(name, d, array=False):
+    head = f"[[{name}]]" if array else f"[{name}]"
+    return head + "\n" + "".join(f"{k} = {toml_value(v)}\n" for k, v in d.items()) + "\n"
+
+
+def read_json(p):
+    with open(p) as f:
+        return json.load(f)
+
+
+def fnum(x, fmt="{:.2f}"):
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "—"
+    return fmt.format(x)
+
+
+# ------------------------------------------------------------------ camera models
+def euler_from_matrix(R):
+    """(roll, pitch, yaw) [deg] with R = Rz(yaw) Ry(pitch) Rx(roll) (nalgebra's from_euler_angles)."""
+    R = np.asarray(R, float)
+    pitch = -math.asin(max(-1.0, min(1.0, R[2, 0])))
+    roll = math.atan2(R[2, 1], R[2, 2])
+    yaw = math.atan2(R[1, 0], R[0, 0])
+    return math.degrees(roll), math.degrees(pitch), math.degrees(yaw)
+
+
+def matrix_from_euler(roll, pitch, yaw):
+    r, p, y = (math.radians(a) for a in (roll, pitch, yaw))
+    Rx = np.array([[1, 0, 0], [0, math.cos(r), -math.sin(r)], [0, math.sin(r), math.cos(r)]])
+    Ry = np.array([[math.cos(p), 0, math.sin(p)], [0, 1, 0], [-math.sin(p), 0, math.cos(p)]])
+    Rz = np.array([[math.cos(y), -math.sin(y), 0], [math.sin(y), math.cos(y), 0], [0, 0, 1]])
+    return Rz @ Ry @ Rx
+
+
+def calibration_from_truth(cam):
+    """truth/camera.json -> the [camera] table of a nephocast calibration file."""
+    roll, pitch, yaw = euler_from_matrix(cam["R_cam_to_enu"])
+    return {
+        "name": f"{cam.get('camera_id', 'camera')}-from-truth",
+        "width_px": int(cam["width"]),
+        "height_px": int(cam["height"]),
+        "model": cam["model"],
+        "f_px_per_rad": float(cam["f_px"]),
+        "cx_px": float(cam["cx"]),
+        "cy_px": float(cam["cy"]),
+        "max_field_angle_deg": float(cam["theta_max_deg"]),
+        "yaw_deg": yaw,
+        "pitch_deg": pitch,
+        "roll_deg": roll,
+    }
+
+
+def placeholder_calibration(width, height):
+    """A level, centred equidistant camera: only so that `calibrate` can load its site file."""
+    c = (width - 1) / 2.0
+    return {"name": "placeholder", "width_px": int(width), "height_px": int(height), "model": "equidistant",
+            "f_px_per_rad": (min(width, height) / 2.0 - 1.0) / (math.pi / 2), "cx_px": c, "cy_px": (height - 1) / 2.0,
+            "max_field_angle_deg": 90.0, "yaw_deg": 0.0, "pitch_deg": 0.0, "roll_deg": 0.0}
+
+
+class PyCamera:
+    """The engine's camera model (src/camera.rs) re-implemented, used only to measure a calibration
+    file the binary refuses to load (e.g. a negative focal length written by `calibrate`)."""
+
+    def __init__(self, c):
+        self.c = c
+        self.R = matrix_from_euler(c.get("roll_deg", 0.0), c.get("pitch_deg", 0.0), c.get("yaw_deg", 0.0))
+        self.k = (list(c.get("k") or []) + [0.0] * 4)[:4]
+        self.fmax = math.radians(c.get("max_field_angle_deg", 90.0))
+
+    def g(self, t):
+        m = self.c["model"]
+        if m == "equidistant":
+            return t
+        if m == "equisolid":
+            return 2 * np.sin(t / 2)
+        if m == "stereographic":
+            return 2 * np.tan(t / 2)
+        t2 = t * t
+        k = self.k
+        return t * (1 + t2 * (k[0] + t2 * (k[1] + t2 * (k[2] + t2 * k[3]))))
+
+    def g_inv(self, rho):
+        m = self.c["model"]
+        if m == "equidistant":
+            return rho
+        if m == "equisolid":
+            return np.where(rho <= 2, 2 * np.arcsin(np.clip(rho / 2, -1, 1)), np.nan)
+        if m == "stereographic":
+            return 2 * np.arctan(rho / 2)
+        t = np.array(rho, float)
+        for _ in range(60):  # Newton, as the engine does
+            h = 1e-7
+            d = (self.g(t + h) - self.g(t - h)) / (2 * h)
+            t = t - (self.g(t) - rho) / d
+        return np.where(np.abs(self.g(t) - rho) < 1e-8, t, np.nan)
+
+    def project(self, zen, az):
+        v = enu(zen, az) @ self.R  # R^T d
+        th = np.arccos(np.clip(v[:, 2], -1, 1))
+        rxy = np.hypot(v[:, 0], v[:, 1])
+        r = self.c["f_px_per_rad"] * self.g(th)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x = self.c["cx_px"] + np.where(rxy > 0, r * v[:, 0] / rxy, 0.0)
+            y = self.c["cy_px"] + np.where(rxy > 0, r * v[:, 1] / rxy, 0.0)
+        ok = (th <= self.fmax) & (x >= -0.5) & (y >= -0.5) & (x < self.c["width_px"] - 0.5) & (y < self.c["height_px"] - 0.5)
+        return np.where(ok, x, np.nan), np.where(ok, y, np.nan)
+
+    def unproject(self, x, y):
+        f = self.c["f_px_per_rad"]
+        dx, dy = (np.asarray(x) - self.c["cx_px"]) / f, (np.asarray(y) - self.c["cy_px"]) / f
+        rho = np.hypot(dx, dy)
+        th = self.g_inv(rho)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            v = np.stack([np.sin(th) * np.where(rho > 0, dx / rho, 0), np.sin(th) * np.where(rho > 0, dy / rho, 0), np.cos(th)], -1)
+        w = v @ self.R.T
+        w[~(th <= self.fmax)] = np.nan
+        zen = np.degrees(np.arccos(np.clip(w[:, 2], -1, 1)))
+        az = np.degrees(np.arctan2(w[:, 0], w[:, 1])) % 360
+        return np.where(np.isfinite(w[:, 2]), zen, np.nan), np.where(np.isfinite(w[:, 2]), az, np.nan)
+
+
+def grid_directions():
+    """Sky directions: zenith 0..88 step 2, azimuth 0..358 step 4 (degrees)."""
+    z, a = np.meshgrid(np.arange(0, 89, 2.0), np.arange(0, 360, 4.0), indexing="ij")
+    return z.ravel(), a.ravel()
+
+
+def enu(zen, az):
+    z, a = np.radians(zen), np.radians(az)
+    return np.stack([np.sin(z) * np.sin(a), np.sin(z) * np.cos(a), np.cos(z)], axis=-1)
+
+
+def bin_project(binary, cal, zen, az, log):
+    """`camera project`: zenith/azimuth rows -> (x, y) arrays, NaN where the camera says outside."""
+    text = "zenith_deg,azimuth_deg\n" + "".join(f"{z:.6f},{a:.6f}\n" for z, a in zip(zen, az))
+    return _bin_pairs(binary, ["camera", "project", "--calibration", cal], text, len(zen), log)
+
+
+def bin_unproject(binary, cal, x, y, log):
+    text = "x_px,y_px\n" + "".join(f"{a:.6f},{b:.6f}\n" for a, b in zip(x, y))
+    return _bin_pairs(binary, ["camera", "unproject", "--calibration", cal], text, len(x), log)
+
+
+def _bin_pairs(binary, args, text, n, log):
+    rc, out, err = run([binary, *args], stdin=text, log=log)
+    if rc != 0:
+        raise RuntimeError(f"{' '.join(args[:2])} exited {rc}: {err.strip()}")
+    lines = [ln for ln in out.splitlines() if ln.strip()][1:]  # first line is the header
+    if len(lines) != n:
+        raise RuntimeError(f"{' '.join(args[:2])}: expected {n} rows, got {len(lines)}")
+    a = np.full(n, np.nan)
+    b = np.full(n, np.nan)
+    for i, ln in enumerate(lines):
+        p, q = ln.split(",")
+        if p.strip():
+            a[i], b[i] = float(p), float(q)
+    return a, b
+
+
+def calibration_error(binary, cal, true_cam, sc, log, pycam=None):
+    """Pixel and angular error of calibration `cal` against the true camera, per zenith band
+    (with `nephocast camera project/unproject`, or with `pycam` when the binary refuses the file)."""
+    zen, az = grid_directions()
+    d = enu(zen, az)
+    tx, ty = sc.project_enu(true_cam, d)
+    seen = np.isfinite(tx) & (zen <= 88.0)
+    zen, az, d, tx, ty = zen[seen], az[seen], d[seen], tx[seen], ty[seen]
+    if pycam is None:
+        ox, oy = bin_project(binary, cal, zen, az, log)
+        uz, ua = bin_unproject(binary, cal, tx, ty, log)
+    else:
+        ox, oy = pycam.project(zen, az)
+        uz, ua = pycam.unproject(tx, ty)
+    px_err = np.hypot(ox - tx, oy - ty)
+    ud = enu(uz, ua)
+    ang = np.degrees(np.arccos(np.clip(np.sum(ud * d, axis=1), -1, 1)))
+    rows = []
+    for (lo, hi), name in zip(BANDS, BAND_NAMES):
+        s = (zen >= lo) & (zen < hi)
+        pe, ae = px_err[s], ang[s]
+        rows.append(dict(band=name, n=int(s.sum()),
+                         outside_ours_project=int(np.sum(~np.isfinite(pe))),
+                         outside_ours_unproject=int(np.sum(~np.isfinite(ae))),
+                         px_median=_q(pe, 50), px_p95=_q(pe, 95), deg_median=_q(ae, 50), deg_p95=_q(ae, 95)))
+    s80 = zen < 80
+    return dict(bands=rows, deg_p95_z_lt_80=_q(ang[s80], 95), px_p95_z_lt_80=_q(px_err[s80], 95),
+                n_directions=int(len(zen)), n_outside_ours=int(np.sum(~np.isfinite(ang)) + np.sum(~np.isfinite(px_err))))
+
+
+def _q(v, p):
+    v = v[np.isfinite(v)]
+    return float(np.percentile(v, p)) if v.size else float("nan")
+
+
+def verify_truth_conversion(binary, cal, true_cam, sc, log):
+    """Largest |bin camera project - skycommon.project_enu| [px] over the grid the true camera sees."""
+    zen, az = grid_directions()
+    tx, ty = sc.project_enu(true_cam, enu(zen, az))
+    ok = np.isfinite(tx)
+    ox, oy = bin_project(binary, cal, zen[ok], az[ok], log)
+    e = np.hypot(ox - tx[ok], oy - ty[ok])
+    return dict(max_px=float(np.nanmax(e)), n=int(ok.sum()), n_missing=int(np.sum(~np.isfinite(e))))
+
+
+# ------------------------------------------------------------------ site and measurements
+def pick_pyranometers(points, fp):
+    """Points nearest the centres of the footprint's western third, middle and eastern third."""
+    ce, cn, se = fp["center_e_m"], fp["center_n_m"], fp["size_e_m"]
+    out = []
+    for name, e in (("west", ce - se / 3.0), ("centre", ce), ("east", ce + se / 3.0)):
+        d = np.hypot(points["east_m"] - e, points["north_m"] - cn)
+        r = points.iloc[int(np.argmin(d.to_numpy()))]
+        out.append(dict(name=name, point_id=int(r["point_id"]), position_m=[float(r["east_m"]), float(r["north_m"])]))
+    return out
+
+
+def write_site(path, site_json, ceil_json, calibration, pyranometers):
+    s = site_json["site"]
+    fp = site_json["plant_footprint"]
+    ce, cn, se, sn = fp["center_e_m"], fp["center_n_m"], fp["size_e_m"], fp["size_n_m"]
+    poly = [[ce - se / 2, cn - sn / 2], [ce + se / 2, cn - sn / 2], [ce + se / 2, cn + sn / 2], [ce - se / 2, cn + sn / 2]]
+    cbh = (ceil_json or {}).get("cloud_base_heights_m") or []
+    base = float(cbh[0]) if cbh else 1500.0
+    text = "# Written by tools/independent_scenes.py from input/site.json (a check, not a tuned site).\n"
+    text += toml_table("site", {"name": s["name"], "latitude_deg": s["latitude"], "longitude_deg": s["longitude"],
+                                "elevation_m": s["altitude_m"]})
+    text += toml_table("camera", {"calibration": os.path.abspath(calibration), "position_m": [0.0, 0.0, 0.0]})
+    text += toml_table("clouds", {"base_height_m": base})
+    text += toml_table("plant", {"point_spacing_m": 25.0})
+    # A horizontal fixed block: its POA is GHI. Capacity ~200 W/m2 of footprint.
+    text += toml_table("plant.blocks", {"name": "footprint", "polygon_m": poly, "capacity_kw": round(se * sn * 0.2),
+                                        "mount": "fixed", "tilt_deg": 0.0, "azimuth_deg": 180.0}, array=True)
+    text += toml_table("forecast", {"horizon_min": 15, "step_s": 60})
+    for p in pyranometers:
+        text += toml_table("pyranometers", {"name": p["name"], "position_m": p["position_m"]}, array=True)
+    with open(path, "w") as f:
+        f.write(text)
+    return base
+
+
+def write_measurements(path, truth_points_csv, pyranometers, shift_min=0):
+    """1-minute means (time_utc = start of the minute) at the pyranometer points, frame period only.
+    `shift_min` = 1 stamps each mean at the end of its minute instead, so that the engine, which
+    reads the row whose minute contains the frame time, only ever sees completed minutes."""
+    tp = pd.read_csv(truth_points_csv)
+    if "in_tail" in tp:
+        tp = tp[tp["in_tail"] == 0]
+    t = pd.to_datetime(tp["time"], utc=True)
+    tp = tp.assign(minute=t.dt.floor("min"))
+    cols = {}
+    for p in pyranometers:
+        s = tp[tp["point_id"] == p["point_id"]].groupby("minute")["ghi_wm2"].mean()
+        cols[f"ghi_{p['name']}_wm2"] = s
+    df = pd.DataFrame(cols).sort_index()
+    df.index = (df.index + pd.Timedelta(minutes=shift_min)).strftime("%Y-%m-%dT%H:%M:%SZ")
+    df.index.name = "time_utc"
+    with open(path, "w") as f:
+        f.write("# Synthetic pyranometers: 1-minute means of truth_points.csv at frame times; time = "
+                + ("end" if shift_min else "start") + " of the minute\n")
+        df.to_csv(f, float_format="%.1f")
+    return len(df)
+
+
+# ------------------------------------------------------------------ replay outputs -> score.py inputs
+def convert_replay(out_dir, conv_dir, ramp_min_prob):
+    os.makedirs(conv_dir, exist_ok=True)
+    res = {}
+    fc = pd.read_csv(os.path.join(out_dir, "forecasts.csv"))
+    fc = fc[(fc["block"] == "plant") & (fc["horizon_s"] > 0)].copy()
+    fc["horizon_min"] = fc["horizon_s"] / 60.0
+    fc = fc[fc["horizon_min"].isin(HORIZONS)]
+    f_csv = os.path.join(conv_dir, "forecast.csv")
+    fc.rename(columns={"issue_time_utc": "issue_time", "ghi_wm2": "ghi_plant_mean_wm2"})[
+        ["issue_time", "horizon_min", "ghi_plant_mean_wm2"]].assign(horizon_min=lambda d: d.horizon_min.astype(int)) \
+        .to_csv(f_csv, index=False)
+    res["forecast"] = f_csv
+    res["n_forecast_issues"] = int(fc["issue_time_utc"].nunique())
+    mo = pd.read_csv(os.path.join(out_dir, "motion.csv"))
+    m_csv = os.path.join(conv_dir, "motion.csv")
+    mm = mo[["time_utc", "east_mps", "north_mps"]].dropna()
+    mm.rename(columns={"time_utc": "time", "east_mps": "u_ms", "north_mps": "v_ms"}).to_csv(m_csv, index=False)
+    res["motion"] = m_csv if len(mm) else None
+    res["motion_rows"] = int(len(mm))
+    res["motion_frames"] = int(len(mo))
+    res["frames_with_second_layer"] = int(mo["second_east_mps"].notna().sum())
+    res["frames_measuring_two_layers"] = int((mo["layers"] >= 2).sum())
+    rp = pd.read_csv(os.path.join(out_dir, "ramps.csv"))
+    rp = rp[rp["probability"] >= ramp_min_prob]
+    rows = [dict(issue_time=r.issue_time_utc, ramp_start=r.expected_start_utc, direction=r.direction)
+            for r in rp.itertuples()]
+    warned = set(rp["issue_time_utc"])
+    rows += [dict(issue_time=t, ramp_start="", direction="none") for t in fc["issue_time_utc"].unique() if t not in warned]
+    r_csv = os.path.join(conv_dir, "ramps.csv")
+    pd.DataFrame(rows, columns=["issue_time", "ramp_start", "direction"]).to_csv(r_csv, index=False)
+    res["ramps"] = r_csv
+    res["ramp_events_used"] = int(len(rp))
+    fr = pd.read_csv(os.path.join(out_dir, "frames.csv"))
+    res["frame_status"] = {str(k): int(v) for k, v in fr["status"].value_counts().items()}
+    return res
+
+
+def score(scenes, scene_dir, files, json_out, log):
+    cmd = [sys.executable, os.path.join(scenes, "score.py"), scene_dir, "--json", json_out]
+    for k in ("forecast", "motion", "ramps"):
+        if files.get(k):
+            cmd += [f"--{k}", files[k]]
+    rc, out, err = run(cmd, log=log)
+    if rc != 0:
+        return dict(error=f"score.py exited {rc}: {err.strip()[-2000:]}")
+    return read_json(json_out)
+
+
+def forecast_summary(sj, yard):
+    """Skill at 5/10/15, pooled 5-15, 1-min RMSE vs smart persistence, largest |MBE|."""
+    if "forecast" not in sj:
+        return None
+    ph = pd.DataFrame(sj["forecast"]["per_horizon"])
+    if ph.empty:
+        return None
+    ph = ph.set_index("horizon_min")
+    g = lambda h, k: float(ph.loc[float(h), k]) if float(h) in ph.index else float("nan")  # noqa: E731
+    p = ph[(ph.index >= 5) & (ph.index <= 15)]
+    pooled_rmse = math.sqrt(float((p["rmse"] ** 2 * p["n"]).sum() / p["n"].sum()))
+    pooled_sp = math.sqrt(float((p["rmse_sp"] ** 2 * p["n"]).sum() / p["n"].sum()))
+    mbe_h = ph["mbe"].abs().idxmax()
+    out = dict(skill_5=g(5, "skill"), skill_10=g(10, "skill"), skill_15=g(15, "skill"),
+               skill_pooled_5_15=(1 - pooled_rmse / pooled_sp) if pooled_sp > 0 else float("nan"), rmse_pooled_5_15=pooled_rmse, rmse_sp_pooled_5_15=pooled_sp,
+               rmse_1=g(1, "rmse"), rmse_sp_1=g(1, "rmse_sp"),
+               rmse_5=g(5, "rmse"), rmse_10=g(10, "rmse"), rmse_15=g(15, "rmse"),
+               max_abs_mbe=float(abs(ph.loc[mbe_h, "mbe"])), max_abs_mbe_horizon=float(mbe_h),
+               mbe_at_max=float(ph.loc[mbe_h, "mbe"]), overall=sj["forecast"].get("overall"))
+    if yard:
+        out["yardstick"] = yard
+        out["yardstick_pooled_0_8"] = 0.8 * yard["pooled"] if yard.get("pooled") is not None else None
+    return out
+
+
+def motion_summary(motion_csv, scene_dir):
+    """Mean vector error and speeds against the true layer-1 wind at the nearest frame."""
+    if not motion_csv:
+        return None
+    m = pd.read_csv(motion_csv)
+    tr = pd.read_csv(os.path.join(scene_dir, "truth", "truth.csv"))
+    tt = pd.to_datetime(tr["time"], utc=True)
+    mt = pd.to_datetime(m["time"], utc=True)
+    idx = np.clip(np.searchsorted(tt.to_numpy(), mt.to_numpy()), 0, len(tr) - 1)
+    tu, tv = tr["layer1_u_ms"].to_numpy()[idx], tr["layer1_v_ms"].to_numpy()[idx]
+    e = np.hypot(m["u_ms"] - tu, m["v_ms"] - tv)
+    return dict(n=int(len(m)), mean_vector_error_ms=float(np.mean(e)), median_vector_error_ms=float(np.median(e)),
+                mean_speed_ms=float(np.mean(np.hypot(m["u_ms"], m["v_ms"]))), true_speed_ms=float(np.mean(np.hypot(tu, tv))),
+                mean_u_ms=float(m["u_ms"].mean()), mean_v_ms=float(m["v_ms"].mean()),
+                true_u_ms=float(np.mean(tu)), true_v_ms=float(np.mean(tv)))
+
+
+def yardsticks(scenes):
+    """The 'perfect perception, frozen advection' row per scene from the dataset README (score.py
+    does not compute it)."""
+    out = {}
+    try:
+        with open(os.path.join(scenes, "README.md")) as f:
+            lines = f.read().splitlines()
+    except OSError:
+        return out
+    scene = None
+    for ln in lines:
+        cells = [c.strip() for c in ln.strip().strip("|").split("|")]
+        if len(cells) < 6:
+            continue
+        m = re.search(r"`([^`]+)`", cells[0])
+        if m:
+            scene = m.group(1)
+        if scene and "perfect perception" in cells[1]:
+            def num(c):
+                try:
+                    return float(c.replace("−", "-"))
+                except ValueError:
+                    return None
+            out[scene] = dict(h5=num(cells[2]), h10=num(cells[3]), h15=num(cells[4]), pooled=num(cells[5]))
+    return out
+
+
+# ------------------------------------------------------------------ one camera
+def camera_folders(scenes, camera):
+    ds = sorted(d for d in os.listdir(scenes) if d.startswith(camera + "-") and os.path.isdir(os.path.join(scenes, d)))
+    clear = [d for d in ds if d.endswith("clear-day")]
+    cloudy = [d for d in ds if not d.endswith("clear-day")]
+    if len(clear) != 1 or len(cloudy) != 1:
+        raise RuntimeError(f"{camera}: expected one clear-day and one cloudy folder, found {ds}")
+    return os.path.join(scenes, clear[0]), os.path.join(scenes, cloudy[0])
+
+
+def run_camera(a, camera, sc, yard, log, res):
+    """Fill `res` step by step (so a failure part-way keeps what was done)."""
+    clear, cloudy = camera_folders(a.scenes, camera)
+    res["clear_scene"], res["cloudy_scene"] = os.path.basename(clear), os.path.basename(cloudy)
+    work = os.path.join(a.work, camera)
+    if os.path.isdir(work):
+        shutil.rmtree(work)
+    os.makedirs(work)
+    site_json = read_json(os.path.join(cloudy, "input", "site.json"))
+    points = pd.read_csv(os.path.join(cloudy, "input", "points.csv"))
+    pyr = pick_pyranometers(points, site_json["plant_footprint"])
+    res["pyranometers"] = pyr
+    true_cam = read_json(os.path.join(cloudy, "truth", "camera.json"))  # scoring only
+
+    def ceil(d):
+        p = os.path.join(d, "input", "ceilometer.json")
+        return read_json(p) if os.path.exists(p) else None
+
+    cal = os.path.join(work, "cal.toml")
+    site_clear = os.path.join(work, "site-clear.toml")
+    site_cloudy = os.path.join(work, "site.toml")
+    # 3. camera
+    cal_info = dict()
+    if a.camera_from == "calibrate":
+        ph = os.path.join(work, "placeholder.toml")
+        with open(ph, "w") as f:
+            f.write("# Placeholder: `calibrate` loads the site file, which must name a calibration.\n")
+            f.write(toml_table("camera", placeholder_calibration(site_json["image_width"], site_json["image_height"])))
+        cal_site = os.path.join(work, "site-calibrate.toml")
+        write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr)
+        rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", os.path.join(clear, "input", "frames"),
+                            "--out", cal], log=log)
+        cal_info.update(exit_code=rc, stdout=out, stderr=err,
+                        warnings=[ln.strip() for ln in (out + "\n" + err).splitlines() if "warning" in ln.lower()])
+    else:
+        with open(cal, "w") as f:
+            f.write("# Converted from truth/camera.json by tools/independent_scenes.py (diagnostic only).\n")
+            f.write(toml_table("camera", calibration_from_truth(true_cam)))
+        cal_info.update(exit_code=0, stdout="", stderr="", warnings=[])
+    if os.path.exists(cal):
+        with open(cal, "rb") as f:
+            c = tomllib.load(f)
+        cal_info["fields"] = {k: c["camera"].get(k) for k in ("model", "width_px", "height_px", "f_px_per_rad", "cx_px", "cy_px", "max_field_angle_deg",
+                                                                "yaw_deg", "pitch_deg", "roll_deg", "k")}
+        cal_info["fit"] = c.get("fit")
+    cal_info["true"] = {k: true_cam[k] for k in ("model", "f_px", "cx", "cy", "theta_max_deg", "yaw_deg", "tilt_deg")}
+    cal_info["true_euler_ours"] = dict(zip(("roll_deg", "pitch_deg", "yaw_deg"), euler_from_matrix(true_cam["R_cam_to_enu"])))
+    res["calibration"] = cal_info
+    if not os.path.exists(cal):
+        res["error"] = "no calibration file; nothing replayed"
+        return
+    # 4. calibration error (and the conversion check for the truth camera)
+    try:
+        if a.camera_from == "truth":
+            res["truth_conversion_check"] = verify_truth_conversion(a.bin, cal, true_cam, sc, log)
+        cal_info["error"] = calibration_error(a.bin, cal, true_cam, sc, log)
+        cal_info["error"]["via"] = "nephocast camera project/unproject"
+        # the Python model must agree with the binary wherever the binary loads the file
+        pc = PyCamera(cal_info["fields"])
+        zen, az = grid_directions()
+        bx, by = bin_project(a.bin, cal, zen, az, log)
+        qx, qy = pc.project(zen, az)
+        cal_info["python_model_max_diff_px"] = float(np.nanmax(np.hypot(bx - qx, by - qy)))
+        cal_info["python_model_nan_mismatch"] = int(np.sum(np.isfinite(bx) != np.isfinite(qx)))
+    except RuntimeError as e:
+        cal_info["binary_refused"] = str(e)
+        cal_info["error"] = calibration_error(a.bin, cal, true_cam, sc, log, pycam=PyCamera(cal_info["fields"]))
+        cal_info["error"]["via"] = "Python re-implementation of src/camera.rs (the binary refuses this file)"
+        f = dict(cal_info["fields"])
+        if f.get("f_px_per_rad", 1) < 0:
+            # -f is a half turn about the optical axis: R Rz(180°) = Rz(yaw + 180°) Ry(-pitch) Rx(-roll)
+            f["f_px_per_rad"] = -f["f_px_per_rad"]
+            f["yaw_deg"] = (f["yaw_deg"] + 360.0) % 360.0 - 180.0
+            f["pitch_deg"], f["roll_deg"] = -f["pitch_deg"], -f["roll_deg"]
+            e2 = calibration_error(a.bin, cal, true_cam, sc, log, pycam=PyCamera(f))
+            cal_info["equivalent_positive_f"] = dict(f_px_per_rad=f["f_px_per_rad"], yaw_deg=f["yaw_deg"],
+                                                     pitch_deg=f["pitch_deg"], roll_deg=f["roll_deg"],
+                                                     deg_p95_z_lt_80=e2["deg_p95_z_lt_80"],
+                                                     max_diff_vs_written_px=float(np.nanmax(np.hypot(
+                                                         *(np.subtract(PyCamera(f).project(*grid_directions()),
+                                                                       PyCamera(cal_info["fields"]).project(*grid_directions())))))))
+    # 1./2. site files and measurements
+    res["cbh_m"] = write_site(site_cloudy, site_json, ceil(cloudy), cal, pyr)
+    write_site(site_clear, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), cal, pyr)
+    meas = os.path.join(work, "measurements.csv")
+    tpc = os.path.join(cloudy, "truth", "truth_points.csv")
+    res["measurement_rows"] = write_measurements(meas, tpc, pyr, 1 if a.causal_measurements else 0) if os.path.exists(tpc) else 0
+    # 5./6. replays
+    for key, scene_dir, site, m in (("cloudy", cloudy, site_cloudy, meas if res["measurement_rows"] else None),
+                                    ("clear", clear, site_clear, None)):
+        out = os.path.join(work, f"out-{key}")
+        cmd = [a.bin, "replay", "--site", site, "--frames", os.path.join(scene_dir, "input", "frames"), "--out", out, "--quiet"]
+        if m:
+            cmd += ["--measurements", m]
+        rc, so, se = run(cmd, log=log)
+        r = dict(exit_code=rc, stdout=so[-3000:], stderr=se[-3000:])
+        res[f"replay_{key}"] = r
+        if rc != 0:
+            continue
+        files = convert_replay(out, os.path.join(work, f"scored-{key}"), a.ramp_min_probability)
+        r["converted"] = files
+        sj = score(a.scenes, scene_dir, files if key == "cloudy" else {"forecast": files["forecast"]},
+                   os.path.join(work, f"score-{key}.json"), log)
+        r["score"] = sj
+        r["forecast_summary"] = forecast_summary(sj, yard.get(os.path.basename(scene_dir)))
+        if key == "cloudy":
+            r["motion_summary"] = motion_summary(files.get("motion"), scene_dir)
+
+
+# ------------------------------------------------------------------ report
+def markdown(res):
+    L = []
+    cam = res["camera"]
+    L.append(f"## {cam} — camera from `{res['camera_from']}` ({res.get('clear_scene')} → {res.get('cloudy_scene')})\n")
+    ci = res.get("calibration", {})
+    f = ci.get("fields") or {}
+    t = ci.get("true", {})
+    L.append(f"**Calibration**: exit {ci.get('exit_code')}; model {f.get('model')} (true {t.get('model')}), "
+             f"f {fnum(f.get('f_px_per_rad'))} px/rad (true {fnum(t.get('f_px'))}), "
+             f"max field angle {fnum(f.get('max_field_angle_deg'), '{:.1f}')}° (true {fnum(t.get('theta_max_deg'), '{:.1f}')}), "
+             f"c = ({fnum(f.get('cx_px'), '{:.1f}')}, {fnum(f.get('cy_px'), '{:.1f}')}) "
+             f"(true {fnum(t.get('cx'), '{:.1f}')}, {fnum(t.get('cy'), '{:.1f}')}), "
+             f"yaw/pitch/roll {fnum(f.get('yaw_deg'))}/{fnum(f.get('pitch_deg'))}/{fnum(f.get('roll_deg'))}° "
+             f"(true {fnum(ci.get('true_euler_ours', {}).get('yaw_deg'))}/{fnum(ci.get('true_euler_ours', {}).get('pitch_deg'))}/"
+             f"{fnum(ci.get('true_euler_ours', {}).get('roll_deg'))})")
+    if ci.get("fit"):
+        fit = ci["fit"]
+        L.append(f"fit: {fit.get('detections')} detections, residual RMS {fnum(fit.get('rms_px'))} px ({fnum(fit.get('rms_deg'), '{:.3f}')}°)")
+    for w in ci.get("warnings", []):
+        L.append(f"- calibrate: `{w}`")
+    if ci.get("exit_code") not in (0, None):
+        L.append(f"- calibrate stderr: `{ci.get('stderr', '').strip()[-500:]}`")
+    if "truth_conversion_check" in res:
+        v = res["truth_conversion_check"]
+        L.append(f"- truth conversion check: max |bin − skycommon| = {v['max_px']:.4f} px over {v['n']} directions ({v['n_missing']} missing)")
+    if ci.get("binary_refused"):
+        L.append(f"- the binary refuses the calibration file: `{ci['binary_refused']}`")
+    if "python_model_max_diff_px" in ci:
+        L.append(f"- Python camera model vs binary: max {ci['python_model_max_diff_px']:.4f} px, "
+                 f"{ci['python_model_nan_mismatch']} inside/outside disagreements")
+    eq = ci.get("equivalent_positive_f")
+    if eq:
+        L.append(f"- f < 0 is a half turn about the optical axis, not a mirror: the same camera is f = {eq['f_px_per_rad']:.2f}, "
+                 f"yaw/pitch/roll = {eq['yaw_deg']:.2f}/{eq['pitch_deg']:.2f}/{eq['roll_deg']:.2f}° (max projection difference {eq['max_diff_vs_written_px']:.4f} px; "
+                 f"p95 error zenith < 80° {eq['deg_p95_z_lt_80']:.3f}°). Not used for the replay: a user gets the refusal.")
+    err = ci.get("error")
+    if err and "bands" in err:
+        L.append(f"\nerror against the true camera, via {err.get('via')}:")
+        L.append("\n| zenith | n | px median | px p95 | deg median | deg p95 | outside ours (proj/unproj) |")
+        L.append("|---|---:|---:|---:|---:|---:|---:|")
+        for b in err["bands"]:
+            L.append(f"| {b['band']} | {b['n']} | {fnum(b['px_median'])} | {fnum(b['px_p95'])} | {fnum(b['deg_median'], '{:.3f}')} | "
+                     f"{fnum(b['deg_p95'], '{:.3f}')} | {b['outside_ours_project']}/{b['outside_ours_unproject']} |")
+        L.append(f"\np95 angular error over zenith < 80°: **{fnum(err['deg_p95_z_lt_80'], '{:.3f}')}°** "
+                 f"(p95 pixel {fnum(err['px_p95_z_lt_80'])} px)")
+    elif err:
+        L.append(f"- calibration error not measured: {err.get('failed')}")
+    if res.get("error"):
+        L.append(f"\n**{res['error']}**")
+    for key in ("cloudy", "clear"):
+        r = res.get(f"replay_{key}")
+        if r is None:
+            continue
+        name = res.get(f"{key}_scene")
+        if r["exit_code"] != 0:
+            L.append(f"\n**Replay {name}**: exit {r['exit_code']}: `{r['stderr'].strip()[-500:]}`")
+            continue
+        conv = r.get("converted", {})
+        L.append(f"\n**Replay {name}**: exit 0; frames {conv.get('frame_status')}; forecast issues {conv.get('n_forecast_issues')}")
+        if "error" in r.get("score", {}):
+            L.append(f"- score.py failed: {r['score']['error']}")
+            continue
+        fs = r.get("forecast_summary")
+        if key == "cloudy":
+            ms = r.get("motion_summary")
+            smo = r.get("score", {}).get("motion", {}).get("layer1", {})
+            if ms:
+                L.append(f"- motion: mean vector error **{ms['mean_vector_error_ms']:.2f} m/s** (median {ms['median_vector_error_ms']:.2f}); "
+                         f"mean speed {ms['mean_speed_ms']:.2f} m/s vs true {ms['true_speed_ms']:.2f}; mean vector "
+                         f"({ms['mean_u_ms']:.2f}, {ms['mean_v_ms']:.2f}) vs true ({ms['true_u_ms']:.2f}, {ms['true_v_ms']:.2f}); "
+                         f"score.py vector RMSE {fnum(smo.get('vector_rmse_ms'))}, direction error median "
+                         f"{fnum(smo.get('direction_err_median_deg'), '{:.1f}')}°; {ms['n']} rows; "
+                         f"second layer tracked in {conv.get('frames_with_second_layer')} frames "
+                         f"(two layers measured in {conv.get('frames_measuring_two_layers')})")
+            else:
+                L.append("- motion: no motion rows")
+            if fs:
+                y = fs.get("yardstick") or {}
+                L.append(f"- skill vs smart persistence: 5 min **{fnum(fs['skill_5'])}**, 10 min **{fnum(fs['skill_10'])}**, "
+                         f"15 min **{fnum(fs['skill_15'])}**, pooled 5–15 **{fnum(fs['skill_pooled_5_15'])}** "
+                         f"(yardstick {fnum(y.get('h5'))}/{fnum(y.get('h10'))}/{fnum(y.get('h15'))}/pooled {fnum(y.get('pooled'))}; "
+                         f"0.8×yardstick pooled {fnum(fs.get('yardstick_pooled_0_8'))})")
+                L.append(f"- 1-min RMSE {fnum(fs['rmse_1'], '{:.1f}')} W/m² vs smart persistence {fnum(fs['rmse_sp_1'], '{:.1f}')}; "
+                         f"RMSE 5/10/15 min {fnum(fs['rmse_5'], '{:.1f}')}/{fnum(fs['rmse_10'], '{:.1f}')}/{fnum(fs['rmse_15'], '{:.1f}')} "
+                         f"(pooled 5–15 {fnum(fs['rmse_pooled_5_15'], '{:.1f}')} vs SP {fnum(fs['rmse_sp_pooled_5_15'], '{:.1f}')}); "
+                         f"largest |MBE| {fnum(fs['max_abs_mbe'], '{:.1f}')} W/m² at {fs['max_abs_mbe_horizon']:.0f} min "
+                         f"(signed {fnum(fs['mbe_at_max'], '{:+.1f}')})")
+            rp = r.get("score", {}).get("ramps")
+            if rp:
+                L.append(f"- ramps ({conv.get('ramp_events_used')} warnings): POD {fnum(rp['pod'])}, FAR {fnum(rp['far'])}, "
+                         f"CSI {fnum(rp['csi'])}; truth events in scope {rp['n_truth_events_in_scope']}, "
+                         f"warned ≥5 min ahead {fnum(rp['events_warned_lead_ge_5min'])}")
+        elif fs:
+            L.append(f"- clear-day RMSE 1/5/10/15 min: {fnum(fs['rmse_1'], '{:.1f}')}/{fnum(fs['rmse_5'], '{:.1f}')}/"
+                     f"{fnum(fs['rmse_10'], '{:.1f}')}/{fnum(fs['rmse_15'], '{:.1f}')} W/m², pooled 5–15 "
+                     f"{fnum(fs['rmse_pooled_5_15'], '{:.1f}')} (smart persistence {fnum(fs['rmse_sp_pooled_5_15'], '{:.1f}')}); "
+                     f"largest |MBE| {fnum(fs['max_abs_mbe'], '{:.1f}')} W/m² at {fs['max_abs_mbe_horizon']:.0f} min "
+                     f"(signed {fnum(fs['mbe_at_max'], '{:+.1f}')})")
+    return "\n".join(L) + "\n"
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    here = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    ap.add_argument("--bin", default=os.path.join(here, "target", "release", "nephocast"), help="the nephocast binary")
+    ds = os.environ.get("NEPHOCAST_DATASETS")
+    ap.add_argument("--scenes", default=os.path.join(ds, "independent-scenes") if ds else None,
+                    help="the independent-scenes folder (default $NEPHOCAST_DATASETS/independent-scenes)")
+    ap.add_argument("--work", default="/tmp/indep-work", help="work folder (one subfolder per camera, overwritten)")
+    ap.add_argument("--camera-from", choices=["calibrate", "truth"], default="calibrate",
+                    help="calibrate on the clear day (the user's way) or convert truth/camera.json (diagnostic only)")
+    ap.add_argument("--cameras", default="camera1,camera2")
+    ap.add_argument("--ramp-min-probability", type=float, default=0.3,
+                    help="engine ramp events at least this probable count as warnings (default: the engine's watch level)")
+    ap.add_argument("--causal-measurements", action="store_true",
+                    help="stamp each 1-minute mean at the END of its minute (the engine reads the row whose minute "
+                         "holds the frame time, i.e. up to 60 s of readings after the frame; this removes that look-ahead)")
+    ap.add_argument("--json", help="write every number here")
+    a = ap.parse_args()
+    if not a.scenes or not os.path.isdir(a.scenes):
+        print(f"independent scenes not found ({a.scenes or '$NEPHOCAST_DATASETS is not set'}); nothing to check. "
+              "Pass --scenes DIR or set NEPHOCAST_DATASETS.")
+        return 0
+    if not os.path.isfile(a.bin):
+        print(f"no nephocast binary at {a.bin}; build it (cargo build --release) or pass --bin", file=sys.stderr)
+        return 2
+    a.scenes, a.work, a.bin = os.path.abspath(a.scenes), os.path.abspath(a.work), os.path.abspath(a.bin)
+    sys.path.insert(0, a.scenes)
+    import skycommon as sc  # noqa: E402  (the dataset's own camera model, for scoring only)
+
+    yard = yardsticks(a.scenes)
+    log = []
+    results = []
+    text = (f"# nephocast on the independent scenes (camera from `{a.camera_from}`, binary {a.bin}; measurements "
+            f"stamped at the {'end' if a.causal_measurements else 'start'} of each minute)\n\n")
+    for camera in [c.strip() for c in a.cameras.split(",") if c.strip()]:
+        print(f"[{camera}] running ...", file=sys.stderr, flush=True)
+        r = dict(camera=camera, camera_from=a.camera_from)
+        try:
+            run_camera(a, camera, sc, yard, log, r)
+        except Exception as e:  # keep going with the other camera, say what broke
+            r["error"] = f"{type(e).__name__}: {e}"
+        results.append(r)
+        text += markdown(r) + "\n"
+    print(text)
+    if a.json:
+        with open(a.json, "w") as f:
+            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, bin=a.bin, scenes=a.scenes, yardsticks=yard,
+                           commands=log, cameras=results, summary_markdown=text), f, indent=1, default=str)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
