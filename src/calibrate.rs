@@ -4,17 +4,42 @@
 //!    its centroid over the rows at least three pixels wide (so a one-pixel blooming streak does not
 //!    pull it), rejected when the blob is too small (sun clouded), too large, or when much saturated
 //!    area lies elsewhere (bright cloud: ambiguous). Each detection is paired with the SPA sun
-//!    direction at the frame's time.
-//! 2. **Initial guess** without user input: the image circle (fit to the bright disc) gives the
-//!    centre and, for a 90° rim, the focal length; the yaw is the circular mean of the angle between
-//!    where a level camera would put the sun and where it is.
-//! 3. **Fit** by Levenberg–Marquardt (the `levenberg-marquardt` crate) of principal point, focal
-//!    length, yaw, pitch, roll and, for the polynomial model, k1 and k2, minimizing the reprojection
-//!    error with a Huber loss (iteratively reweighted, δ = 1.5 px). The model — equidistant,
-//!    equisolid or polynomial — is chosen by the Bayesian information criterion, a richer model only
-//!    when it lowers it by more than 10.
-//! 4. **Report**: RMS and largest residual in pixels and degrees, standard errors from the
-//!    covariance `σ² (JᵀJ)⁻¹`, and a warning for parameters the data leave loose.
+//!    direction at the frame's time and keeps the area of its saturated blob.
+//! 2. **Bloom screening.** Glare that spreads around a low or hazy sun is rarely symmetric, so its
+//!    centroid leans away from the sun; the blob then grows beyond the sun's own clipped disc. The
+//!    smallest blobs of the set (the 20th percentile of areas) stand for the bare disc; a detection
+//!    whose blob is more than twice that is dropped, and the others are weighted by
+//!    `1 / (1 + (excess / 0.25)²)`, excess being the relative growth of the area.
+//! 3. **Initial guess** without user input: the image circle (fit to the bright disc) gives the
+//!    principal point and, for a 90° rim, the focal length; the yaw is the circular mean of the
+//!    angle between where a level camera would put the sun and where it is.
+//! 4. **Fit** by Levenberg–Marquardt (the `levenberg-marquardt` crate) of principal point, focal
+//!    length (as its logarithm, so a fit can never reach a mirrored, negative focal length), yaw,
+//!    pitch, roll and, for the polynomial model, k1 and k2, minimizing the weighted reprojection error
+//!    with a Huber loss (iteratively reweighted, δ = 1.5 px). The centre of the image circle enters as
+//!    a prior on the principal point (σ = 1 px): on a fisheye the imaged field is a disc about the
+//!    principal point, and without it a principal-point shift and a tilt trade off along one arc.
+//! 5. **Model choice** by cross-validation over blocks of zenith angle: the detections are cut into
+//!    five contiguous blocks of the sun's zenith angle, each block is predicted by a fit to the other
+//!    four (the outermost by extrapolation, as the map needs beyond the track), and the ideal lens
+//!    families (equidistant, equisolid, stereographic) compete on that held-out error; free
+//!    distortion terms (the polynomial) are admitted only when they lower the held-out error by more
+//!    than 10 %, never because the in-sample residual falls. `--lens` forces a family.
+//!    A family whose fitted lens puts the image circle's rim outside 85–100° from the axis (a sky
+//!    imager sees the whole sky) loses to any family that puts it inside: a centroid bias that
+//!    grows with zenith angle looks like distortion on the detections alone, but bends the rim.
+//! 6. **Field**: the largest field angle is where the fitted lens puts the image circle's rim.
+//! 7. **What the detections constrain**: the parameter covariance `s² (JᵀWJ)⁻¹`, with `s` the
+//!    held-out (not in-sample) error, is carried to each sky direction's image position; twice that
+//!    standard deviation plus the spread between the lens families that predict the held-out blocks
+//!    about as well (within 25 %, plausible rim), plus a scale term for a radial lean of the clipped
+//!    disc common to all detections (which the fit takes for focal length and the held-out error
+//!    cannot see: as large as the held-out error or 5 % of the bare disc's radius), is the stated
+//!    direction-error bound, tabulated by zenith band
+//!    (largest over azimuth). The report names the zenith and azimuth span of the detections and
+//!    warns where the map reaches beyond what they constrain.
+//! 8. **Checks before writing**: a camera the site loader would refuse (or with tilt beyond 20°, or
+//!    detections spanning under 20° of azimuth) is an error, never a file.
 //!
 //! The projection is [`Camera`]'s, the same code the pipeline uses.
 //!
@@ -22,14 +47,16 @@
 //! * B. Urquhart, B. Kurtz, J. Kleissl, "Sky camera geometric calibration using solar observations",
 //!   *Atmos. Meas. Tech.* 9:4279–4294, 2016.
 //! * K. Levenberg 1944; D. W. Marquardt, *J. SIAM* 11(2):431–441, 1963.
+//! * P. J. Huber, "Robust estimation of a location parameter", *Ann. Math. Statist.* 35:73–101, 1964.
+//! * Blocked cross-validation for dependent data: D. R. Roberts et al., *Ecography* 40:913–929, 2017.
 
 use chrono::{DateTime, Utc};
 use levenberg_marquardt::{LeastSquaresProblem, LevenbergMarquardt};
 use nalgebra::{DMatrix, DVector, Dyn, Owned};
 
 use crate::camera::{Camera, Orientation, Projection};
-use crate::segment::fit_image_circle;
-use crate::sun::{Observer, direction_enu, position};
+use crate::segment::{ImageCircle, fit_image_circle};
+use crate::sun::{Observer, direction_enu, position, zenith_azimuth_of};
 
 /// One sun detection paired with the sun's direction.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -40,9 +67,119 @@ pub struct Detection {
     pub px: (f64, f64),
     /// Sun direction (east, north, up), apparent.
     pub dir: [f64; 3],
+    /// Area of the saturated blob \[px\] (0 when unknown).
+    pub blob_px: usize,
+    /// Quality weight in 0..1 from the bloom screening (1: a bare disc).
+    pub weight: f64,
+}
+
+impl Detection {
+    /// A detection of full weight and unknown blob size.
+    pub fn new(time: DateTime<Utc>, px: (f64, f64), dir: [f64; 3]) -> Self {
+        Self { time, px, dir, blob_px: 0, weight: 1.0 }
+    }
+}
+
+/// A lens family to fit.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LensFamily {
+    /// `r = f θ`.
+    Equidistant,
+    /// `r = 2 f sin(θ/2)`.
+    Equisolid,
+    /// `r = 2 f tan(θ/2)`.
+    Stereographic,
+    /// `r = f θ (1 + k1 θ² + k2 θ⁴)`.
+    Polynomial,
+}
+
+impl LensFamily {
+    /// All families, simplest first.
+    pub const ALL: [LensFamily; 4] = [LensFamily::Equidistant, LensFamily::Equisolid, LensFamily::Stereographic, LensFamily::Polynomial];
+
+    fn projection(self) -> Projection {
+        match self {
+            LensFamily::Equidistant => Projection::Equidistant,
+            LensFamily::Equisolid => Projection::Equisolid,
+            LensFamily::Stereographic => Projection::Stereographic,
+            LensFamily::Polynomial => Projection::Polynomial { k: [0.0; 4] },
+        }
+    }
+
+    /// Its name as written in calibration files.
+    pub fn name(self) -> &'static str {
+        self.projection().name()
+    }
+
+    /// Parse a name.
+    pub fn from_name(s: &str) -> Option<Self> {
+        Self::ALL.into_iter().find(|f| f.name() == s)
+    }
+}
+
+/// Settings of [`calibrate`].
+#[derive(Debug, Clone)]
+pub struct CalibrateOptions {
+    /// Fewest usable detections.
+    pub min_detections: usize,
+    /// Lowest sun elevation for a detection \[°\].
+    pub min_sun_elevation_deg: f64,
+    /// A forced lens family; `None` chooses by cross-validation.
+    pub lens: Option<LensFamily>,
+    /// Standard deviation of the image circle's centre as a prior on the principal point \[px\];
+    /// `None` leaves the principal point free.
+    pub centre_prior_px: Option<f64>,
+    /// The largest zenith angle the map uses \[°\], to warn when it reaches beyond the detections.
+    pub map_max_zenith_deg: f64,
+}
+
+impl Default for CalibrateOptions {
+    fn default() -> Self {
+        Self {
+            min_detections: 20,
+            min_sun_elevation_deg: DEFAULT_MIN_SUN_ELEVATION_DEG,
+            lens: None,
+            centre_prior_px: Some(1.0),
+            map_max_zenith_deg: 84.0,
+        }
+    }
+}
+
+/// The stated direction-error bound over one zenith band.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BandBound {
+    /// Lower edge of the band \[°\].
+    pub zenith_from_deg: f64,
+    /// Upper edge of the band \[°\].
+    pub zenith_to_deg: f64,
+    /// Largest bound over the band's azimuths \[°\].
+    pub bound_deg: f64,
+}
+
+/// Which part of the sky the detections cover.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct Coverage {
+    /// Smallest zenith angle of a weighted detection \[°\].
+    pub zenith_min_deg: f64,
+    /// Largest zenith angle of a weighted detection \[°\].
+    pub zenith_max_deg: f64,
+    /// Azimuth span of the weighted detections \[°\] (the smallest arc holding them all).
+    pub azimuth_span_deg: f64,
+}
+
+/// Held-out error of one lens family.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FamilyScore {
+    /// The family.
+    pub family: LensFamily,
+    /// Weighted RMS of the held-out residuals \[px\].
+    pub cv_rms_px: f64,
+    /// Weighted RMS of the in-sample residuals \[px\].
+    pub fit_rms_px: f64,
 }
 
 /// Find the sun disk in a frame. `radius_px` is the image circle's radius.
+/// Returns (column, row, pixels used for the centroid).
 pub fn detect_sun(img: &image::RgbImage, radius_px: f64) -> Option<(f64, f64, usize)> {
     let (cx, cy, n) = crate::segment::find_sun_blob(img, 250, 3, 0.05 * radius_px)?;
     let r = 0.05 * radius_px;
@@ -77,34 +214,103 @@ pub fn detect_sun(img: &image::RgbImage, radius_px: f64) -> Option<(f64, f64, us
     (k >= 3).then(|| (sx / k as f64, sy / k as f64, k))
 }
 
+/// Area \[px\] of the 4-connected saturated blob (all channels ≥ 250) nearest to (x, y), searched
+/// within `reach_px`; 0 when there is none.
+pub fn saturated_blob_area(img: &image::RgbImage, x: f64, y: f64, reach_px: f64) -> usize {
+    let (w, h) = img.dimensions();
+    let sat = |x: i64, y: i64| x >= 0 && y >= 0 && x < w as i64 && y < h as i64 && img.get_pixel(x as u32, y as u32).0.iter().all(|c| *c >= 250);
+    let (xi, yi) = (x.round() as i64, y.round() as i64);
+    let reach = reach_px.ceil() as i64;
+    let mut seed = None;
+    'find: for d in 0..=reach {
+        for dy in -d..=d {
+            for dx in -d..=d {
+                if (dx.abs() == d || dy.abs() == d) && sat(xi + dx, yi + dy) {
+                    seed = Some((xi + dx, yi + dy));
+                    break 'find;
+                }
+            }
+        }
+    }
+    let Some(seed) = seed else { return 0 };
+    let mut seen = std::collections::HashSet::new();
+    let mut stack = vec![seed];
+    seen.insert(seed);
+    while let Some((x, y)) = stack.pop() {
+        for (dx, dy) in [(1, 0), (-1, 0), (0, 1), (0, -1)] {
+            let q = (x + dx, y + dy);
+            if sat(q.0, q.1) && seen.insert(q) {
+                stack.push(q);
+            }
+        }
+    }
+    seen.len()
+}
+
+/// The bloom screening of step 2: sets each detection's weight from its blob area and drops the
+/// ones whose blob is more than twice the bare disc's. Detections of unknown area keep weight 1.
+pub fn screen_bloom(dets: &mut Vec<Detection>) {
+    let mut areas: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| d.blob_px as f64).collect();
+    if areas.len() < 5 {
+        return;
+    }
+    areas.sort_by(f64::total_cmp);
+    let reference = areas[(0.2 * (areas.len() - 1) as f64).round() as usize].max(1.0);
+    dets.retain(|d| d.blob_px == 0 || (d.blob_px as f64) <= 2.0 * reference);
+    for d in dets.iter_mut() {
+        if d.blob_px > 0 {
+            let excess = (d.blob_px as f64 / reference - 1.0).max(0.0);
+            d.weight = 1.0 / (1.0 + (excess / 0.25).powi(2));
+        }
+    }
+}
+
 /// A fitted calibration.
 #[derive(Debug, Clone)]
 pub struct Fit {
     /// The camera.
     pub camera: Camera,
+    /// The lens family.
+    pub family: LensFamily,
     /// Parameter names, values and standard errors (angles in degrees).
     pub params: Vec<(String, f64, f64)>,
-    /// RMS residual \[px\].
+    /// Weighted RMS residual \[px\].
     pub rms_px: f64,
     /// Largest residual \[px\].
     pub max_px: f64,
-    /// RMS residual \[°\].
+    /// Weighted RMS residual \[°\].
     pub rms_deg: f64,
     /// Largest residual \[°\].
     pub max_deg: f64,
     /// Residuals per detection \[px\] (dx, dy).
     pub residuals: Vec<(f64, f64)>,
-    /// Warnings (parameters the data leave loose).
+    /// Warnings (parameters the data leave loose, parts of the sky the data do not constrain).
     pub warnings: Vec<String>,
     /// Bayesian information criterion of the fit.
     pub bic: f64,
+    /// Held-out error of every family tried (empty for a single fit).
+    pub scores: Vec<FamilyScore>,
+    /// The stated direction-error bound by zenith band.
+    pub bounds: Vec<BandBound>,
+    /// The part of the sky the detections cover.
+    pub coverage: Coverage,
+    /// Parameter vector and covariance (internal parametrization), for the bound.
+    cov: Option<(DVector<f64>, DMatrix<f64>)>,
+}
+
+impl Fit {
+    /// The stated direction-error bound \[°\] at a zenith angle (the band's), or `None` beyond the
+    /// tabulated bands.
+    pub fn bound_at_deg(&self, zenith_deg: f64) -> Option<f64> {
+        self.bounds.iter().find(|b| zenith_deg >= b.zenith_from_deg && zenith_deg < b.zenith_to_deg).map(|b| b.bound_deg)
+    }
 }
 
 /// An error of calibration.
 #[derive(Debug, thiserror::Error)]
 pub enum CalibrationError {
     /// Not enough usable detections.
-    #[error("{found} sun detections, {needed} needed ({frames} frames read, {night} with the sun below {min_elevation_deg}°)")]
+    #[error("{found} sun detections, {needed} needed ({frames} frames read, {night} with the sun below {min_elevation_deg}°, {bloom} dropped as bloom)")]
     TooFewDetections {
         /// Detections found.
         found: usize,
@@ -114,62 +320,72 @@ pub enum CalibrationError {
         frames: usize,
         /// Frames with the sun too low.
         night: usize,
+        /// Detections dropped by the bloom screening.
+        bloom: usize,
         /// The lowest sun elevation used \[°\].
         min_elevation_deg: f64,
     },
     /// No image circle.
     #[error("no image circle found in the frames (are they black?)")]
     NoCircle,
+    /// The fit is not a camera the pipeline may use.
+    #[error("the fit is not usable ({0}); no calibration written: add frames from more of the day or another season")]
+    Unusable(String),
 }
 
 #[derive(Clone)]
 struct Problem {
-    model: Projection,
-    poly: bool,
+    family: LensFamily,
     size: (u32, u32),
+    max_field_rad: f64,
     dets: Vec<Detection>,
+    /// Huber weights × quality weights.
     weights: Vec<f64>,
+    prior: Option<(f64, f64, f64)>,
     p: DVector<f64>,
 }
 
 impl Problem {
     fn camera(&self, p: &DVector<f64>) -> Camera {
-        let proj = if self.poly { Projection::Polynomial { k: [p[6], p[7], 0.0, 0.0] } } else { self.model };
+        let proj = if self.family == LensFamily::Polynomial { Projection::Polynomial { k: [p[6], p[7], 0.0, 0.0] } } else { self.family.projection() };
         Camera::new(
             self.size.0,
             self.size.1,
             p[0],
             p[1],
-            p[2],
+            p[2].exp(),
             proj,
-            95f64.to_radians(),
+            self.max_field_rad,
             Orientation { yaw_rad: p[3], pitch_rad: p[4], roll_rad: p[5] },
         )
     }
 
+    fn rows(&self) -> usize {
+        2 * self.dets.len() + if self.prior.is_some() { 2 } else { 0 }
+    }
+
     fn residuals_of(&self, p: &DVector<f64>, weighted: bool) -> DVector<f64> {
         let cam = self.camera(p);
-        let mut r = DVector::zeros(2 * self.dets.len());
+        let mut r = DVector::zeros(self.rows());
         for (i, d) in self.dets.iter().enumerate() {
             let w = if weighted { self.weights[i].sqrt() } else { 1.0 };
-            let (x, y) = match cam.project_enu(d.dir) {
-                Some(v) => v,
-                None => cam.project_camera_frame({
-                    let v = cam.cam_to_enu().inverse_transform_vector(&nalgebra::Vector3::new(d.dir[0], d.dir[1], d.dir[2]));
-                    [v[0], v[1], v[2]]
-                }),
-            };
+            let (x, y) = project_unchecked(&cam, d.dir);
             r[2 * i] = w * (x - d.px.0);
             r[2 * i + 1] = w * (y - d.px.1);
+        }
+        if let Some((cx, cy, w)) = self.prior {
+            let n = 2 * self.dets.len();
+            let w = if weighted { w } else { 0.0 };
+            r[n] = w * (p[0] - cx);
+            r[n + 1] = w * (p[1] - cy);
         }
         r
     }
 
     fn jacobian_of(&self, p: &DVector<f64>, weighted: bool) -> DMatrix<f64> {
-        let m = 2 * self.dets.len();
-        let mut j = DMatrix::zeros(m, p.len());
+        let mut j = DMatrix::zeros(self.rows(), p.len());
         for k in 0..p.len() {
-            let h = if k <= 2 { 1e-4 } else { 1e-7 };
+            let h = if k <= 1 { 1e-4 } else { 1e-7 };
             let mut a = p.clone();
             let mut b = p.clone();
             a[k] += h;
@@ -179,6 +395,12 @@ impl Problem {
         }
         j
     }
+}
+
+/// Where a camera puts a direction, ignoring its field and the image bounds.
+fn project_unchecked(cam: &Camera, dir: [f64; 3]) -> (f64, f64) {
+    let v = cam.cam_to_enu().inverse_transform_vector(&nalgebra::Vector3::new(dir[0], dir[1], dir[2]));
+    cam.project_camera_frame([v[0], v[1], v[2]])
 }
 
 impl LeastSquaresProblem<f64, Dyn, Dyn> for Problem {
@@ -205,86 +427,169 @@ fn angle_deg(a: [f64; 3], b: [f64; 3]) -> f64 {
     (a[0] * b[0] + a[1] * b[1] + a[2] * b[2]).clamp(-1.0, 1.0).acos().to_degrees()
 }
 
-/// Fit one model to detections from a starting camera.
-fn fit_model(start: &Camera, model: Projection, dets: &[Detection]) -> Fit {
-    let poly = matches!(model, Projection::Polynomial { .. });
-    let base = match model {
-        Projection::Equisolid => Projection::Equisolid,
-        Projection::Stereographic => Projection::Stereographic,
-        _ => Projection::Equidistant,
+/// Starting parameters for a family from a camera: the focal length that keeps the camera's
+/// image-circle rim where it is.
+fn start_params(start: &Camera, family: LensFamily) -> DVector<f64> {
+    let base = match family {
+        LensFamily::Polynomial => Projection::Equidistant,
+        f => f.projection(),
     };
-    // The focal length that keeps the image circle's rim at 90°.
     let rim = start.f_px * start.projection.radial(std::f64::consts::FRAC_PI_2);
-    let f0 = rim / base.radial(std::f64::consts::FRAC_PI_2);
+    let f0 = (rim / base.radial(std::f64::consts::FRAC_PI_2)).abs().max(1.0);
     let o = start.orientation;
-    let mut p0 = vec![start.cx_px, start.cy_px, f0, o.yaw_rad, o.pitch_rad, o.roll_rad];
-    if poly {
+    let mut p0 = vec![start.cx_px, start.cy_px, f0.ln(), o.yaw_rad, o.pitch_rad, o.roll_rad];
+    if family == LensFamily::Polynomial {
         p0.extend([0.0, 0.0]);
     }
-    let mut prob = Problem { model: base, poly, size: (start.width_px, start.height_px), dets: dets.to_vec(), weights: vec![1.0; dets.len()], p: DVector::from_vec(p0) };
-    // Huber loss by iterative reweighting.
+    DVector::from_vec(p0)
+}
+
+/// Robust weighted fit of one family from starting parameters; returns the solved problem.
+fn solve(mut prob: Problem) -> Problem {
+    let quality: Vec<f64> = prob.dets.iter().map(|d| d.weight).collect();
+    prob.weights = quality.clone();
     for _ in 0..4 {
         let (solved, _) = LevenbergMarquardt::new().minimize(prob.clone());
         prob = solved;
         let r = prob.residuals_of(&prob.p, false);
-        prob.weights = (0..dets.len())
+        prob.weights = (0..prob.dets.len())
             .map(|i| {
                 let e = (r[2 * i].powi(2) + r[2 * i + 1].powi(2)).sqrt();
-                if e <= 1.5 { 1.0 } else { 1.5 / e }
+                quality[i] * if e <= 1.5 { 1.0 } else { 1.5 / e }
             })
             .collect();
     }
-    let p = prob.p.clone();
-    let cam = prob.camera(&p);
-    let r = prob.residuals_of(&p, false);
+    prob
+}
+
+fn problem(start_p: DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>) -> Problem {
+    Problem { family, size, max_field_rad: 95f64.to_radians(), dets: dets.to_vec(), weights: vec![1.0; dets.len()], prior, p: start_p }
+}
+
+/// Weighted RMS of residual vectors.
+fn weighted_rms(res: &[(f64, f64)], w: &[f64]) -> f64 {
+    let (mut s, mut sw) = (0.0, 0.0);
+    for (e, w) in res.iter().zip(w) {
+        s += w * (e.0 * e.0 + e.1 * e.1);
+        sw += w;
+    }
+    (s / sw.max(1e-12)).sqrt()
+}
+
+/// Held-out residuals of a family: the detections, ordered by the sun's zenith angle, cut into
+/// `folds` contiguous blocks, each predicted by a fit to the others. The outermost blocks are
+/// predicted by extrapolation, which is what a lens model must do beyond the sun's track; blocks
+/// of time would hold out morning detections whose twins at the same zenith angle remain in the
+/// afternoon, and so cannot tell a lens distortion from a bias that grows with zenith angle.
+fn held_out(p_full: &DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>, folds: usize) -> Vec<(f64, f64)> {
     let n = dets.len();
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&i, &j| dets[i].dir[2].total_cmp(&dets[j].dir[2]));
+    let mut out = vec![(f64::NAN, f64::NAN); n];
+    for k in 0..folds {
+        let (a, b) = (k * n / folds, (k + 1) * n / folds);
+        if b <= a {
+            continue;
+        }
+        let train: Vec<Detection> = order[..a].iter().chain(&order[b..]).map(|&i| dets[i]).collect();
+        let prob = solve(problem(p_full.clone(), family, size, &train, prior));
+        let cam = prob.camera(&prob.p);
+        for &i in &order[a..b] {
+            let (x, y) = project_unchecked(&cam, dets[i].dir);
+            out[i] = (x - dets[i].px.0, y - dets[i].px.1);
+        }
+    }
+    out
+}
+
+/// Fit one family to detections from a starting camera, without prior or model choice (the
+/// building block of [`calibrate`]).
+pub fn fit_detections(start: &Camera, model: Projection, dets: &[Detection]) -> Fit {
+    let family = match model {
+        Projection::Equidistant => LensFamily::Equidistant,
+        Projection::Equisolid => LensFamily::Equisolid,
+        Projection::Stereographic => LensFamily::Stereographic,
+        Projection::Polynomial { .. } => LensFamily::Polynomial,
+    };
+    let size = (start.width_px, start.height_px);
+    let prob = solve(problem(start_params(start, family), family, size, dets, None));
+    finish(&prob, None, None)
+}
+
+/// Turn a solved problem into a [`Fit`]: residuals, standard errors (scaled by `sigma_px` when
+/// given, else by the in-sample residual), field from the image circle.
+fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<ImageCircle>) -> Fit {
+    let p = prob.p.clone();
+    let mut cam = prob.camera(&p);
+    if let Some(c) = circle {
+        let g = c.radius_px / cam.f_px;
+        if let Some(t) = cam.projection.inverse_radial(g) {
+            cam = Camera::new(cam.width_px, cam.height_px, cam.cx_px, cam.cy_px, cam.f_px, cam.projection, t.clamp(30f64.to_radians(), 110f64.to_radians()), cam.orientation);
+        }
+    }
+    let r = prob.residuals_of(&p, false);
+    let n = prob.dets.len();
     let resid: Vec<(f64, f64)> = (0..n).map(|i| (r[2 * i], r[2 * i + 1])).collect();
-    let rss: f64 = r.iter().map(|v| v * v).sum();
-    let dof = (2 * n).saturating_sub(p.len()).max(1) as f64;
-    let sigma2 = rss / dof;
-    let j = prob.jacobian_of(&p, false);
+    let wq: Vec<f64> = prob.dets.iter().map(|d| d.weight).collect();
+    let rss: f64 = resid.iter().zip(&wq).map(|(e, w)| w * (e.0 * e.0 + e.1 * e.1)).sum();
+    let neff = wq.iter().sum::<f64>().max(1.0);
+    let dof = (2.0 * neff - p.len() as f64).max(1.0);
+    let s2 = match sigma_px {
+        Some(s) => s * s / 2.0,
+        None => rss / dof,
+    };
+    // Covariance from the weighted Jacobian (quality and Huber weights), prior rows included.
+    let j = prob.jacobian_of(&p, true);
     let jtj = j.transpose() * &j;
-    let cov = jtj.clone().try_inverse().unwrap_or_else(|| DMatrix::from_element(p.len(), p.len(), f64::NAN)) * sigma2;
+    let cov = jtj.try_inverse().map(|m| m * s2);
     let names = ["cx_px", "cy_px", "f_px_per_rad", "yaw_deg", "pitch_deg", "roll_deg", "k1", "k2"];
     let mut params = vec![];
     let mut warnings = vec![];
     for k in 0..p.len() {
         let ang = (3..=5).contains(&k);
-        let (v, se) = (p[k], cov[(k, k)].max(0.0).sqrt());
-        let (v, se) = if ang { (v.to_degrees(), se.to_degrees()) } else { (v, se) };
+        let var = cov.as_ref().map(|c| c[(k, k)].max(0.0)).unwrap_or(f64::NAN);
+        let (v, se) = match k {
+            2 => (p[2].exp(), p[2].exp() * var.sqrt()),
+            _ if ang => (p[k].to_degrees(), var.sqrt().to_degrees()),
+            _ => (p[k], var.sqrt()),
+        };
+        let v = if k == 3 { (v + 180.0).rem_euclid(360.0) - 180.0 } else { v };
         if ang && se > 0.3 || !se.is_finite() {
             warnings.push(format!("{} is poorly constrained by these detections (standard error {se:.2}°): add frames from another season or time of day", names[k]));
         }
         params.push((names[k].to_string(), v, se));
     }
-    let degs: Vec<f64> = dets
+    let degs: Vec<f64> = prob
+        .dets
         .iter()
         .zip(&resid)
         .map(|(d, e)| cam.unproject_enu(d.px.0 + e.0, d.px.1 + e.1).zip(cam.unproject_enu(d.px.0, d.px.1)).map(|(a, b)| angle_deg(a, b)).unwrap_or(f64::NAN))
         .collect();
     let px: Vec<f64> = resid.iter().map(|e| e.0.hypot(e.1)).collect();
-    let rms = |v: &[f64]| (v.iter().map(|x| x * x).sum::<f64>() / v.len().max(1) as f64).sqrt();
-    let m = 2.0 * n as f64;
+    let deg_pairs: Vec<(f64, f64)> = degs.iter().map(|d| (*d, 0.0)).collect();
+    let m = 2.0 * neff;
+    let yaw = (cam.orientation.yaw_rad + std::f64::consts::PI).rem_euclid(std::f64::consts::TAU) - std::f64::consts::PI;
+    let cam = cam.with_orientation(Orientation { yaw_rad: yaw, ..cam.orientation });
     Fit {
         camera: cam,
+        family: prob.family,
         params,
-        rms_px: rms(&px),
+        rms_px: weighted_rms(&resid, &wq),
         max_px: px.iter().cloned().fold(0.0, f64::max),
-        rms_deg: rms(&degs),
-        max_deg: degs.iter().cloned().fold(0.0, f64::max),
+        rms_deg: weighted_rms(&deg_pairs, &wq),
+        max_deg: degs.iter().cloned().filter(|d| d.is_finite()).fold(0.0, f64::max),
         residuals: resid,
         warnings,
         bic: m * (rss / m).max(1e-12).ln() + p.len() as f64 * m.ln(),
+        scores: vec![],
+        bounds: vec![],
+        coverage: Coverage::default(),
+        cov: cov.map(|c| (p, c)),
     }
 }
 
-/// Fit one lens model to detections from a starting camera (the building block of [`calibrate`]).
-pub fn fit_detections(start: &Camera, model: Projection, dets: &[Detection]) -> Fit {
-    fit_model(start, model, dets)
-}
-
 /// Initial camera from the image circle and the first detections.
-pub fn initial_camera(circle: crate::segment::ImageCircle, size: (u32, u32), dets: &[Detection]) -> Camera {
+pub fn initial_camera(circle: ImageCircle, size: (u32, u32), dets: &[Detection]) -> Camera {
     let f = circle.radius_px / std::f64::consts::FRAC_PI_2;
     let level = Camera::new(size.0, size.1, circle.cx_px, circle.cy_px, f, Projection::Equidistant, 95f64.to_radians(), Orientation::default());
     // Yaw: circular mean of (angle where a level, yaw-0 camera puts the sun) − (where it is).
@@ -307,39 +612,133 @@ pub fn initial_camera(circle: crate::segment::ImageCircle, size: (u32, u32), det
 /// bends the lens model to follow them.
 pub const DEFAULT_MIN_SUN_ELEVATION_DEG: f64 = 20.0;
 
-/// Calibrate from frames: detect the sun, start from the image circle, fit each model, keep the best
-/// by BIC. Frames whose sun is below `min_sun_elevation_deg` are skipped.
+/// The zenith bands of the stated bound \[°\].
+pub const BOUND_BANDS_DEG: [(f64, f64); 7] = [(0.0, 40.0), (40.0, 50.0), (50.0, 60.0), (60.0, 70.0), (70.0, 80.0), (80.0, 85.0), (85.0, 90.0)];
+
+/// The field angles \[°\] at which a sky imager's image-circle rim is plausible: all-sky lenses are
+/// built to image the whole sky hemisphere, rim at or a little beyond the horizon (common practice,
+/// no source). A fitted lens whose rim falls outside loses to one whose rim falls inside.
+pub const PLAUSIBLE_RIM_DEG: (f64, f64) = (85.0, 100.0);
+
+/// A bound above this \[°\] is reported as the detections not constraining that part of the sky.
+pub const UNCONSTRAINED_BOUND_DEG: f64 = 1.0;
+
+/// Direction of a pixel of `cam` seen through `other` \[°\]: the angle between where `cam` and `other`
+/// say the pixel looks, for the pixel `cam` puts at `dir`.
+fn direction_gap_deg(cam: &Camera, other: &Camera, dir: [f64; 3]) -> Option<f64> {
+    let (x, y) = project_unchecked(cam, dir);
+    let d2 = other.unproject_enu(x, y)?;
+    Some(angle_deg(dir, d2))
+}
+
+/// The bound of step 7 over the sky, tabulated by band.
+fn bound_table(fit: &Fit, prob: &Problem, competitors: &[Camera], scale_sys: f64) -> Vec<BandBound> {
+    let cam = &fit.camera;
+    let Some((p, cov)) = &fit.cov else {
+        return BOUND_BANDS_DEG.iter().map(|&(a, b)| BandBound { zenith_from_deg: a, zenith_to_deg: b, bound_deg: f64::INFINITY }).collect();
+    };
+    let max_z = cam.max_field_angle_rad.to_degrees();
+    let mut out = vec![];
+    for &(za, zb) in &BOUND_BANDS_DEG {
+        let mut worst: f64 = 0.0;
+        let mut any = false;
+        let steps = ((zb - za) / 2.5).ceil().max(1.0) as usize;
+        for si in 0..=steps {
+            let z = (za + (zb - za) * si as f64 / steps as f64).min(zb - 0.01).max(0.5);
+            for ai in 0..24 {
+                let a = (ai as f64 * 15.0).to_radians();
+                let dir = direction_enu(z.to_radians(), a);
+                // Field angle of this direction in the camera.
+                let v = cam.cam_to_enu().inverse_transform_vector(&nalgebra::Vector3::new(dir[0], dir[1], dir[2]));
+                if v[2].clamp(-1.0, 1.0).acos().to_degrees() > max_z {
+                    continue;
+                }
+                any = true;
+                // Covariance of the image position.
+                let mut jp = DMatrix::zeros(2, p.len());
+                for k in 0..p.len() {
+                    let h = if k <= 1 { 1e-4 } else { 1e-7 };
+                    let mut pa = p.clone();
+                    let mut pb = p.clone();
+                    pa[k] += h;
+                    pb[k] -= h;
+                    let (xa, ya) = project_unchecked(&prob.camera(&pa), dir);
+                    let (xb, yb) = project_unchecked(&prob.camera(&pb), dir);
+                    jp[(0, k)] = (xa - xb) / (2.0 * h);
+                    jp[(1, k)] = (ya - yb) / (2.0 * h);
+                }
+                let c = &jp * cov * jp.transpose();
+                let sigma_px = (c[(0, 0)] + c[(1, 1)]).max(0.0).sqrt();
+                // Local scale: degrees per pixel along the radius (the larger of radial and tangential).
+                let theta = v[2].clamp(-1.0, 1.0).acos();
+                let radial = cam.f_px * cam.projection.radial_derivative(theta);
+                let tangential = cam.f_px * cam.projection.radial(theta) / theta.sin().max(1e-6);
+                let deg_per_px = (1.0 / radial.min(tangential).max(1e-6)).to_degrees();
+                let spread = competitors.iter().filter_map(|o| direction_gap_deg(cam, o, dir)).fold(0.0, f64::max);
+                worst = worst.max(2.0 * sigma_px * deg_per_px + spread + scale_sys * theta.to_degrees());
+            }
+        }
+        if any {
+            out.push(BandBound { zenith_from_deg: za, zenith_to_deg: zb, bound_deg: worst });
+        }
+    }
+    out
+}
+
+fn coverage_of(dets: &[Detection]) -> Coverage {
+    let used: Vec<(f64, f64)> = dets.iter().filter(|d| d.weight >= 0.3).map(|d| zenith_azimuth_of(d.dir)).map(|(z, a)| (z.to_degrees(), a.to_degrees())).collect();
+    if used.is_empty() {
+        return Coverage::default();
+    }
+    let zmin = used.iter().map(|u| u.0).fold(f64::INFINITY, f64::min);
+    let zmax = used.iter().map(|u| u.0).fold(0.0, f64::max);
+    // Smallest arc holding all azimuths: 360° minus the largest gap between sorted azimuths.
+    let mut az: Vec<f64> = used.iter().map(|u| u.1.rem_euclid(360.0)).collect();
+    az.sort_by(f64::total_cmp);
+    let mut gap: f64 = 360.0 - (az[az.len() - 1] - az[0]);
+    for w in az.windows(2) {
+        gap = gap.max(w[1] - w[0]);
+    }
+    Coverage { zenith_min_deg: zmin, zenith_max_deg: zmax, azimuth_span_deg: 360.0 - gap }
+}
+
+/// Calibrate from frames: detect the sun, screen the bloom, start from the image circle, fit each
+/// lens family, choose by held-out error, bound the direction error. Frames whose sun is below
+/// `options.min_sun_elevation_deg` are skipped.
 ///
 /// # Errors
-/// Fewer than `min_detections` usable detections, or no image circle.
-pub fn calibrate(
-    frames: &[(DateTime<Utc>, image::RgbImage)],
-    observer: &Observer,
-    min_detections: usize,
-    min_sun_elevation_deg: f64,
-) -> Result<(Fit, Vec<Detection>), CalibrationError> {
-    let low = |found: usize, frames: usize, night: usize| CalibrationError::TooFewDetections {
+/// Fewer than `min_detections` usable detections, no image circle, or a fit the pipeline could not
+/// use.
+pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observer, options: &CalibrateOptions) -> Result<(Fit, Vec<Detection>), CalibrationError> {
+    let low = |found: usize, frames: usize, night: usize, bloom: usize| CalibrationError::TooFewDetections {
         found,
-        needed: min_detections,
+        needed: options.min_detections,
         frames,
         night,
-        min_elevation_deg: min_sun_elevation_deg,
+        bloom,
+        min_elevation_deg: options.min_sun_elevation_deg,
     };
-    let first = frames.first().ok_or(low(0, 0, 0))?;
-    let day: Vec<bool> =
-        frames.iter().map(|(t, _)| position(t, observer).map(|s| s.elevation_rad().to_degrees() >= min_sun_elevation_deg).unwrap_or(false)).collect();
+    let first = frames.first().ok_or(low(0, 0, 0, 0))?;
+    let day: Vec<bool> = frames
+        .iter()
+        .map(|(t, _)| position(t, observer).map(|s| s.elevation_rad().to_degrees() >= options.min_sun_elevation_deg).unwrap_or(false))
+        .collect();
     let night = day.iter().filter(|d| !**d).count();
     if night == frames.len() {
-        return Err(low(0, frames.len(), night));
+        return Err(low(0, frames.len(), night, 0));
     }
-    // The image circle from the daytime frames (the largest fitted).
-    let circle = frames
-        .iter()
-        .zip(&day)
-        .filter(|(_, d)| **d)
-        .filter_map(|((_, img), _)| fit_image_circle(img))
-        .max_by(|a, b| a.radius_px.total_cmp(&b.radius_px))
-        .ok_or(CalibrationError::NoCircle)?;
+    // The image circle: the median of the daytime frames' fits (robust to a frame with a bright
+    // rim or a dark one).
+    let circles: Vec<ImageCircle> = frames.iter().zip(&day).filter(|(_, d)| **d).filter_map(|((_, img), _)| fit_image_circle(img)).collect();
+    if circles.is_empty() {
+        return Err(CalibrationError::NoCircle);
+    }
+    let median = |f: &dyn Fn(&ImageCircle) -> f64| {
+        let mut v: Vec<f64> = circles.iter().map(f).collect();
+        v.sort_by(f64::total_cmp);
+        v[v.len() / 2]
+    };
+    let circle = ImageCircle { cx_px: median(&|c| c.cx_px), cy_px: median(&|c| c.cy_px), radius_px: median(&|c| c.radius_px) };
     let size = first.1.dimensions();
     let mut dets = vec![];
     for ((t, img), is_day) in frames.iter().zip(&day) {
@@ -348,27 +747,160 @@ pub fn calibrate(
             continue;
         }
         if let Some((x, y, _)) = detect_sun(img, circle.radius_px) {
-            dets.push(Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad) });
+            let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px);
+            dets.push(Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 });
         }
     }
-    if dets.len() < min_detections {
-        return Err(low(dets.len(), frames.len(), night));
+    dets.sort_by_key(|d| d.time);
+    let found = dets.len();
+    screen_bloom(&mut dets);
+    let bloom = found - dets.len();
+    if dets.len() < options.min_detections {
+        return Err(low(dets.len(), frames.len(), night, bloom));
+    }
+    let coverage = coverage_of(&dets);
+    if coverage.azimuth_span_deg < 20.0 {
+        return Err(CalibrationError::Unusable(format!("the detections span only {:.1}° of azimuth, 20° needed", coverage.azimuth_span_deg)));
     }
     let start = initial_camera(circle, size, &dets);
-    let fits = [Projection::Equidistant, Projection::Equisolid, Projection::Polynomial { k: [0.0; 4] }].map(|m| fit_model(&start, m, &dets));
-    // The simplest model unless a richer one lowers the BIC by more than 10 ("very strong"
-    // evidence; Kass & Raftery, J. Am. Stat. Assoc. 90:773, 1995).
-    let mut best = fits[0].clone();
-    for f in fits.iter().skip(1) {
-        if f.bic < best.bic - 10.0 {
-            best = f.clone();
+    let prior = options.centre_prior_px.map(|s| (circle.cx_px, circle.cy_px, 1.0 / s.max(1e-3)));
+    let families: Vec<LensFamily> = match options.lens {
+        Some(f) => vec![f],
+        None => LensFamily::ALL.to_vec(),
+    };
+    let folds = 5.min(dets.len() / 4).max(2);
+    let mut solved = vec![];
+    for fam in &families {
+        // Polynomial from the equidistant solution, the others from the start camera.
+        let p0 = start_params(&start, *fam);
+        let prob = solve(problem(p0, *fam, size, &dets, prior));
+        let cv = held_out(&prob.p, *fam, size, &dets, prior, folds);
+        let wq: Vec<f64> = dets.iter().map(|d| d.weight).collect();
+        let fit_res: Vec<(f64, f64)> = {
+            let r = prob.residuals_of(&prob.p, false);
+            (0..dets.len()).map(|i| (r[2 * i], r[2 * i + 1])).collect()
+        };
+        let score = FamilyScore { family: *fam, cv_rms_px: weighted_rms(&cv, &wq), fit_rms_px: weighted_rms(&fit_res, &wq) };
+        solved.push((prob, score));
+    }
+    // Where each fitted lens puts the image circle's rim: a sky imager is built to see the whole
+    // sky, so a lens that puts the rim far inside the horizon is fitting something other than the
+    // lens (a bias of the detections that grows with zenith angle).
+    let rims: Vec<f64> = solved.iter().map(|(p, _)| finish(p, None, Some(circle)).camera.max_field_angle_rad.to_degrees()).collect();
+    let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
+    let any_plausible = (0..solved.len()).any(plausible);
+    // The ideal family with the lowest held-out error; the polynomial only when it beats that by
+    // more than 10 %; a family with an implausible rim only when no family has a plausible one.
+    let mut best: Option<usize> = None;
+    for (i, (_, s)) in solved.iter().enumerate() {
+        if !s.cv_rms_px.is_finite() || (any_plausible && !plausible(i)) {
+            continue;
+        }
+        let better = match best {
+            None => true,
+            Some(b) => {
+                let b = &solved[b].1;
+                if s.family == LensFamily::Polynomial && b.family != LensFamily::Polynomial { s.cv_rms_px < 0.9 * b.cv_rms_px } else { s.cv_rms_px < b.cv_rms_px }
+            }
+        };
+        if better {
+            best = Some(i);
         }
     }
-    Ok((best, dets))
+    let best = best.ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?;
+    let rim_warning = (!any_plausible).then(|| {
+        format!(
+            "no lens family puts the image circle's rim within {:.0}–{:.0}° of the axis (the chosen one puts it at {:.1}°): check the frames show the whole lens field",
+            PLAUSIBLE_RIM_DEG.0, PLAUSIBLE_RIM_DEG.1, rims[best]
+        )
+    });
+    let scores: Vec<FamilyScore> = solved.iter().map(|s| s.1).collect();
+    let best_cv = scores[best].cv_rms_px;
+    let (prob, _) = &solved[best];
+    let mut fit = finish(prob, Some(best_cv.max(1e-3)), Some(circle));
+    // Families that predict the held-out blocks about as well stand for what the data cannot tell
+    // apart.
+    let competitors: Vec<Camera> = solved
+        .iter()
+        .enumerate()
+        .filter(|(i, s)| *i != best && s.1.cv_rms_px <= 1.25 * best_cv && (!any_plausible || plausible(*i)))
+        .map(|(_, s)| finish(&s.0, None, Some(circle)).camera)
+        .collect();
+    fit.scores = scores;
+    fit.warnings.extend(rim_warning);
+    fit.coverage = coverage;
+    // A radial lean of the clipped disc common to all detections reads as focal length: the
+    // held-out error cannot see it. Allow a lean as large as the held-out error or 5 % of the bare
+    // disc's radius, whichever is larger, over the median image radius of the detections.
+    let scale_sys = {
+        let mut areas: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| d.blob_px as f64).collect();
+        areas.sort_by(f64::total_cmp);
+        let disc_r = areas.get(areas.len() / 5).map(|a| (a / std::f64::consts::PI).sqrt()).unwrap_or(0.0);
+        let mut radii: Vec<f64> = dets.iter().map(|d| (d.px.0 - fit.camera.cx_px).hypot(d.px.1 - fit.camera.cy_px)).collect();
+        radii.sort_by(f64::total_cmp);
+        let r_med = radii[radii.len() / 2].max(1.0);
+        best_cv.max(0.05 * disc_r) / r_med
+    };
+    fit.bounds = bound_table(&fit, prob, &competitors, scale_sys);
+    check_usable(&fit)?;
+    let reach = options.map_max_zenith_deg;
+    if let Some(b) = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach && b.bound_deg > UNCONSTRAINED_BOUND_DEG).map(|b| b.zenith_from_deg).reduce(f64::min) {
+        let worst = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach).map(|b| b.bound_deg).fold(0.0, f64::max);
+        fit.warnings.push(format!(
+            "the detections cover zenith {:.0}–{:.0}° over {:.0}° of azimuth; from zenith {b:.0}° the stated direction-error bound exceeds {UNCONSTRAINED_BOUND_DEG}° (up to {worst:.2}° where the map reaches, zenith {reach:.0}°): add frames from another season, or lower map.max_zenith_deg",
+            fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg, fit.coverage.azimuth_span_deg
+        ));
+    }
+    if fit.camera.max_field_angle_rad.to_degrees() < options.map_max_zenith_deg {
+        fit.warnings.push(format!(
+            "the lens images only {:.1}° from its axis, less than the map's {:.0}°: cells beyond the image circle are unknown",
+            fit.camera.max_field_angle_rad.to_degrees(),
+            options.map_max_zenith_deg
+        ));
+    }
+    Ok((fit, dets))
 }
 
-/// The residual plot: the frame (dimmed), the sun track, detections (green), fitted positions (red)
-/// and error arrows (×20).
+/// Refuse a camera the pipeline could not use or that is not physical.
+fn check_usable(fit: &Fit) -> Result<(), CalibrationError> {
+    let c = &fit.camera;
+    let file = crate::config::CalibrationFile::from_camera("check", c);
+    file.camera(std::path::Path::new("<fitted camera>")).map_err(|e| CalibrationError::Unusable(e.to_string()))?;
+    let tilt = c.orientation.pitch_rad.abs().max(c.orientation.roll_rad.abs()).to_degrees();
+    if tilt > 20.0 {
+        return Err(CalibrationError::Unusable(format!("a tilt of {tilt:.1}°, more than 20°")));
+    }
+    if fit.params.iter().any(|p| !p.1.is_finite()) {
+        return Err(CalibrationError::Unusable("a parameter is not finite".into()));
+    }
+    Ok(())
+}
+
+/// The detections as CSV: time, centroid, sun zenith and azimuth, blob area, weight, residual.
+pub fn detections_csv(fit: &Fit, dets: &[Detection]) -> String {
+    let mut out = String::from("time_utc,x_px,y_px,sun_zenith_deg,sun_azimuth_deg,blob_px,weight,residual_x_px,residual_y_px\n");
+    for (d, e) in dets.iter().zip(&fit.residuals) {
+        let (z, a) = zenith_azimuth_of(d.dir);
+        out.push_str(&format!(
+            "{},{:.3},{:.3},{:.3},{:.3},{},{:.4},{:.3},{:.3}\n",
+            crate::io::fmt_time(&d.time),
+            d.px.0,
+            d.px.1,
+            z.to_degrees(),
+            a.to_degrees(),
+            d.blob_px,
+            d.weight,
+            e.0,
+            e.1
+        ));
+    }
+    out
+}
+
+/// The residual plot: the frame (dimmed); zenith circles every 10° out to the lens field, coloured
+/// by the stated direction-error bound (green ≤ 0.2°, yellow ≤ 0.5°, orange ≤ 2°, red beyond);
+/// the detections (green, or grey when the bloom screening down-weighted them below 0.3), fitted
+/// positions (red) and error arrows (×20).
 pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]) -> image::RgbImage {
     let mut img = background.clone();
     for p in img.pixels_mut() {
@@ -376,18 +908,41 @@ pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]
             *c /= 3;
         }
     }
+    let put = |img: &mut image::RgbImage, x: i64, y: i64, c: [u8; 3]| {
+        if x >= 0 && y >= 0 && (x as u32) < img.width() && (y as u32) < img.height() {
+            img.put_pixel(x as u32, y as u32, image::Rgb(c));
+        }
+    };
+    let cam = &fit.camera;
+    let max_z = cam.max_field_angle_rad.to_degrees().min(90.0);
+    let mut z = 10.0;
+    while z <= max_z + 1e-9 {
+        let colour = match fit.bound_at_deg(z - 0.01) {
+            Some(b) if b <= 0.2 => [40, 200, 60],
+            Some(b) if b <= UNCONSTRAINED_BOUND_DEG => [230, 210, 40],
+            Some(b) if b <= 2.0 => [240, 140, 30],
+            _ => [230, 40, 40],
+        };
+        for ai in 0..1440 {
+            let a = (ai as f64 * 0.25).to_radians();
+            if let Some((x, y)) = cam.project(z.to_radians(), a) {
+                put(&mut img, x.round() as i64, y.round() as i64, colour);
+            }
+        }
+        z += 10.0;
+    }
+    // North marker: a short line from the zenith toward north at 20°.
+    if let (Some(a), Some(b)) = (cam.project(0.0, 0.0), cam.project(20f64.to_radians(), 0.0)) {
+        crate::overlay::line(&mut img, (a.0 as i64, a.1 as i64), (b.0 as i64, b.1 as i64), [200, 200, 255]);
+    }
     for (d, e) in dets.iter().zip(&fit.residuals) {
         let (x, y) = d.px;
         let a = (x as i64, y as i64);
         let b = ((x + 20.0 * e.0) as i64, (y + 20.0 * e.1) as i64);
-        crate::overlay::line(&mut img, a, b, [255, 200, 0]);
+        let used = d.weight >= 0.3;
+        crate::overlay::line(&mut img, a, b, if used { [255, 200, 0] } else { [120, 110, 60] });
         for (dx, dy) in [(0, 0), (1, 0), (0, 1), (-1, 0), (0, -1)] {
-            let put = |img: &mut image::RgbImage, x: i64, y: i64, c: [u8; 3]| {
-                if x >= 0 && y >= 0 && (x as u32) < img.width() && (y as u32) < img.height() {
-                    img.put_pixel(x as u32, y as u32, image::Rgb(c));
-                }
-            };
-            put(&mut img, a.0 + dx, a.1 + dy, [40, 220, 40]);
+            put(&mut img, a.0 + dx, a.1 + dy, if used { [40, 220, 40] } else { [150, 150, 150] });
             put(&mut img, (x + e.0) as i64 + dx, (y + e.1) as i64 + dy, [230, 40, 40]);
         }
     }
@@ -397,7 +952,7 @@ pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]
 /// Obstruction mask from daylight frames: white = open sky; black where a pixel inside the image
 /// circle stays dark (mean level below 50) or unchanged (standard deviation of its level below 1.5)
 /// across the frames — masts, the horizon line, the housing.
-pub fn obstruction_mask(frames: &[&image::RgbImage], circle: crate::segment::ImageCircle) -> image::GrayImage {
+pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> image::GrayImage {
     let (w, h) = frames[0].dimensions();
     let n = frames.len() as f64;
     let mut out = image::GrayImage::new(w, h);
@@ -444,5 +999,31 @@ mod tests {
         }
         let (x, y, _) = detect_sun(&img, 100.0).unwrap();
         assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
+        // The blob: the disc (49 px for r < 4 on the integer grid) and the 26 streak pixels below it.
+        assert_eq!(saturated_blob_area(&img, x, y, 5.0), 49 + 26);
+    }
+
+    fn det(blob: usize) -> Detection {
+        Detection { blob_px: blob, ..Detection::new(Utc::now(), (0.0, 0.0), [0.0, 0.0, 1.0]) }
+    }
+
+    #[test]
+    fn bloom_screening_drops_doubled_blobs_and_weights_growth() {
+        let mut d: Vec<Detection> = [400, 400, 410, 420, 430, 500, 600, 790, 900, 5000].into_iter().map(det).collect();
+        screen_bloom(&mut d);
+        // Reference: the 20th percentile of the areas, 410; twice that is 820.
+        assert_eq!(d.len(), 8);
+        assert!((d[0].weight - 1.0).abs() < 1e-12);
+        let w600 = d.iter().find(|x| x.blob_px == 600).unwrap().weight;
+        let excess: f64 = 600.0 / 410.0 - 1.0;
+        assert!((w600 - 1.0 / (1.0 + (excess / 0.25).powi(2))).abs() < 1e-12);
+    }
+
+    #[test]
+    fn lens_family_names_round_trip() {
+        for f in LensFamily::ALL {
+            assert_eq!(LensFamily::from_name(f.name()), Some(f));
+        }
+        assert_eq!(LensFamily::from_name("fisheye"), None);
     }
 }

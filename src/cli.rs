@@ -112,6 +112,9 @@ pub struct CalibrateArgs {
     /// bright horizon sky).
     #[arg(long, default_value_t = crate::calibrate::DEFAULT_MIN_SUN_ELEVATION_DEG)]
     pub min_sun_elevation_deg: f64,
+    /// Force a lens family instead of choosing by held-out error.
+    #[arg(long, value_parser = ["equidistant", "equisolid", "stereographic", "polynomial"])]
+    pub lens: Option<String>,
 }
 
 /// `nephocast camera …`.
@@ -590,7 +593,8 @@ fn cmd_qc(a: QcArgs) -> Result<()> {
 }
 
 fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
-    let site = crate::config::Site::load(&a.site)?;
+    // The site file only: the calibration it names may not exist yet.
+    let site = crate::config::Site::load_without_camera(&a.site)?;
     let mut frames = vec![];
     let mut untimed = 0;
     for dir in &a.frames {
@@ -606,7 +610,14 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     if frames.is_empty() {
         bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", a.frames, crate::io::FRAME_NAME_PATTERN);
     }
-    let (fit, dets) = crate::calibrate::calibrate(&frames, &site.observer(), a.min_detections, a.min_sun_elevation_deg)?;
+    let options = crate::calibrate::CalibrateOptions {
+        min_detections: a.min_detections,
+        min_sun_elevation_deg: a.min_sun_elevation_deg,
+        lens: a.lens.as_deref().and_then(crate::calibrate::LensFamily::from_name),
+        map_max_zenith_deg: site.map.max_zenith_deg,
+        ..Default::default()
+    };
+    let (fit, dets) = crate::calibrate::calibrate(&frames, &site.site.observer(), &options)?;
     let name = a.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "camera".into());
     let mut cal = crate::config::CalibrationFile::from_camera(&name, &fit.camera);
     let (t0, t1) = (dets.first().map(|d| d.time), dets.last().map(|d| d.time));
@@ -620,13 +631,18 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
         rms_px: fit.rms_px,
         max_px: fit.max_px,
         std_errors: fit.params.iter().map(|(n, _, se)| (n.clone(), *se)).collect(),
+        lens_cv_rms_px: fit.scores.iter().map(|s| (s.family.name().to_string(), s.cv_rms_px)).collect(),
+        detections_zenith_deg: Some([fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg]),
+        detections_azimuth_span_deg: Some(fit.coverage.azimuth_span_deg),
+        direction_bound_deg: fit.bounds.iter().map(|b| [b.zenith_from_deg, b.zenith_to_deg, b.bound_deg]).collect(),
+        warnings: fit.warnings.clone(),
     });
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
     if a.obstruction_mask {
         let circle = crate::segment::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
         let day: Vec<&image::RgbImage> = frames
             .iter()
-            .filter(|(t, _)| position(t, &site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
+            .filter(|(t, _)| position(t, &site.site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
             .map(|(_, i)| i)
             .collect();
         if !day.is_empty() {
@@ -642,14 +658,29 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
     let pp = dir.join(format!("{name}-residuals.png"));
     crate::io::write_atomic(&pp, &crate::synth::encode_png_rgb(&plot))?;
+    let dp = dir.join(format!("{name}-detections.csv"));
+    crate::io::write_atomic(&dp, crate::calibrate::detections_csv(&fit, &dets).as_bytes())?;
     crate::say!("{} sun detections; model {}; residual RMS {:.2} px ({:.3}°), largest {:.2} px ({:.3}°)", dets.len(), fit.camera.projection.name(), fit.rms_px, fit.rms_deg, fit.max_px, fit.max_deg);
+    for s in &fit.scores {
+        crate::say!("  lens {:<14} held-out RMS {:.3} px (in-sample {:.3} px){}", s.family.name(), s.cv_rms_px, s.fit_rms_px, if s.family == fit.family { "  <- chosen" } else { "" });
+    }
     for (n, v, se) in &fit.params {
         crate::say!("  {n:<14} {v:>12.4} ± {se:.4}");
+    }
+    crate::say!("  field          {:>12.2}° from the axis (where the lens puts the image circle's rim)", fit.camera.max_field_angle_rad.to_degrees());
+    crate::say!(
+        "detections cover zenith {:.0}–{:.0}° over {:.0}° of azimuth; stated direction-error bound by zenith band:",
+        fit.coverage.zenith_min_deg,
+        fit.coverage.zenith_max_deg,
+        fit.coverage.azimuth_span_deg
+    );
+    for b in &fit.bounds {
+        crate::say!("  {:>4.0}–{:<4.0}° {:>8.3}°", b.zenith_from_deg, b.zenith_to_deg, b.bound_deg);
     }
     for w in &fit.warnings {
         crate::say!("warning: {w}");
     }
-    crate::say!("wrote {} and {}", a.out.display(), pp.display());
+    crate::say!("wrote {}, {} and {}", a.out.display(), pp.display(), dp.display());
     Ok(())
 }
 

@@ -97,6 +97,10 @@ pub struct Lut {
     pub dir: Vec<[f32; 3]>,
 }
 
+/// Cells within this angle of the lens field's rim \[°\] are unknown: the rim blends the sky with
+/// the housing and carries the strongest vignetting.
+pub const RIM_MARGIN_DEG: f64 = 2.0;
+
 /// No pixel for this cell.
 pub const NO_PIXEL: u32 = u32::MAX;
 
@@ -116,6 +120,13 @@ impl Lut {
                 let k = j * n + i;
                 dir[k] = [d[0] as f32, d[1] as f32, d[2] as f32];
                 z_deg[k] = d[2].acos().to_degrees() as f32;
+                // Cells whose pixel lies on the rim of the imaged field (vignetting, the lens edge's
+                // blur) or beyond it are unknown by construction.
+                let v = cam.cam_to_enu().inverse_transform_vector(&nalgebra::Vector3::new(d[0], d[1], d[2]));
+                let field_rad = v[2].clamp(-1.0, 1.0).acos();
+                if field_rad > cam.max_field_angle_rad - RIM_MARGIN_DEG.to_radians() {
+                    continue;
+                }
                 if let Some((x, y)) = cam.project_enu(d) {
                     let (xi, yi) = (x.round() as i64, y.round() as i64);
                     if xi >= 0 && yi >= 0 && xi < cam.width_px as i64 && yi < cam.height_px as i64 {

@@ -315,6 +315,17 @@ pub struct Site {
 }
 
 impl Site {
+    /// Load and validate a site file alone, without its calibration (for `calibrate`, which writes
+    /// the calibration the site file names).
+    ///
+    /// # Errors
+    /// A [`ConfigError`] naming the file and field.
+    pub fn load_without_camera(path: &Path) -> Result<SiteFile, ConfigError> {
+        let file: SiteFile = read_toml(path)?;
+        file.validate(path)?;
+        Ok(file)
+    }
+
     /// Load and validate a site file, its calibration file and obstruction mask.
     ///
     /// # Errors
@@ -568,6 +579,28 @@ pub struct FitRecord {
     /// Standard error of each fitted parameter, by name.
     #[serde(default)]
     pub std_errors: std::collections::BTreeMap<String, f64>,
+    /// Held-out (cross-validated) RMS error of each lens family tried \[px\], by name.
+    #[serde(default, skip_serializing_if = "std::collections::BTreeMap::is_empty")]
+    pub lens_cv_rms_px: std::collections::BTreeMap<String, f64>,
+    /// Zenith range \[°\] of the detections that carry weight.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub detections_zenith_deg: Option<[f64; 2]>,
+    /// Azimuth span \[°\] of the detections that carry weight.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub detections_azimuth_span_deg: Option<f64>,
+    /// Stated direction-error bound by zenith band: rows of `[from_deg, to_deg, bound_deg]`.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub direction_bound_deg: Vec<[f64; 3]>,
+    /// What the fit could not vouch for (read back and repeated when the file is used).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub warnings: Vec<String>,
+}
+
+impl FitRecord {
+    /// The stated direction-error bound \[°\] at a zenith angle; `None` when the file has none.
+    pub fn bound_at_deg(&self, zenith_deg: f64) -> Option<f64> {
+        self.direction_bound_deg.iter().find(|b| zenith_deg >= b[0] && zenith_deg < b[1]).map(|b| b[2])
+    }
 }
 
 impl CalibrationFile {

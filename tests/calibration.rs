@@ -1,6 +1,6 @@
 //! Camera calibration from the sun's track on synthetic clear days with known cameras.
 use chrono::{DateTime, Duration, Utc};
-use nephocast::calibrate::{DEFAULT_MIN_SUN_ELEVATION_DEG, calibrate};
+use nephocast::calibrate::{CalibrateOptions, DEFAULT_MIN_SUN_ELEVATION_DEG, calibrate};
 use nephocast::camera::Camera;
 use nephocast::synth::render::PixelRays;
 use nephocast::synth::{CameraSpec, Scene, scene};
@@ -53,7 +53,7 @@ fn run(spec: &CameraSpec, days: &[(&str, f64)]) -> (f64, nephocast::calibrate::F
         obs = Some(s.world.observer);
         frames.extend(f);
     }
-    let (fit, dets) = calibrate(&frames, &obs.unwrap(), 20, DEFAULT_MIN_SUN_ELEVATION_DEG).unwrap();
+    let (fit, dets) = calibrate(&frames, &obs.unwrap(), &CalibrateOptions::default()).unwrap();
     let err = direction_error_deg(&truth.unwrap(), &fit.camera);
     eprintln!(
         "{} yaw {} pitch {} roll {}: {} detections, model {}, residual RMS {:.2} px / {:.3}°, sky direction error {:.3}° RMS; {:?}",
@@ -86,7 +86,7 @@ fn single_day_within_a_third_of_a_degree() {
 #[test]
 fn night_frames_are_refused_with_a_count() {
     let (s, frames) = clear_day(&cam("equidistant", vec![], [0.0, 0.0], 0.0, 0.0, 0.0), "2026-06-14T21:00:00Z", 3.0);
-    let e = calibrate(&frames, &s.world.observer, 20, DEFAULT_MIN_SUN_ELEVATION_DEG).unwrap_err().to_string();
+    let e = calibrate(&frames, &s.world.observer, &CalibrateOptions::default()).unwrap_err().to_string();
     assert!(e.starts_with("0 sun detections, 20 needed"), "{e}");
 }
 
@@ -115,7 +115,7 @@ fn standard_errors_cover_the_truth() {
                 let i = seed * 1000 + k as u64 + if day.ends_with("12-14") { 500 } else { 0 };
                 let nx = 0.3 * gaussian(hash64(i * 4 + 1), hash64(i * 4 + 2));
                 let ny = 0.3 * gaussian(hash64(i * 4 + 3), hash64(i * 4 + 4));
-                dets.push(Detection { time: t, px: (x + nx, y + ny), dir });
+                dets.push(Detection::new(t, (x + nx, y + ny), dir));
             }
         }
         let start = truth.with_orientation(Orientation { yaw_rad: 0.85, pitch_rad: 0.0, roll_rad: 0.0 });
