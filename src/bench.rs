@@ -72,6 +72,7 @@ pub fn run(size_px: u32, frames: usize, threads: usize) -> anyhow::Result<BenchR
         calibration,
         calibration_path: "bench/calibration.toml".into(),
         obstruction: None,
+        clear_reference: None,
         cbh_csv: None,
     };
     let mut nc = Nowcaster::new(site, None, None);

@@ -876,6 +876,42 @@ fn check_usable(fit: &Fit) -> Result<(), CalibrationError> {
     Ok(())
 }
 
+/// The clear-sky reference of this camera from its calibration frames: the R/B library
+/// ([`crate::segment::Reference`]) of the frames whose sun was detected (an unclouded sun), binned
+/// by zenith and sun angle through the fitted camera. A bin needs data from at least 3 frames.
+pub fn clear_sky_reference(frames: &[(DateTime<Utc>, image::RgbImage)], fit: &Fit, dets: &[Detection], params: &crate::segment::SegmentParams) -> crate::segment::Reference {
+    let cam = &fit.camera;
+    let mask = cam.sky_mask(std::f64::consts::FRAC_PI_2, None);
+    let (w, h) = (cam.width_px as usize, cam.height_px as usize);
+    // Every second pixel in each direction.
+    let pixels: Vec<(usize, [f32; 3], f32)> = (0..h)
+        .step_by(2)
+        .flat_map(|y| (0..w).step_by(2).map(move |x| (x, y)))
+        .filter_map(|(x, y)| {
+            let i = y * w + x;
+            if !mask.sky[i] {
+                return None;
+            }
+            let d = direction_enu(mask.zenith_rad[i] as f64, mask.azimuth_rad[i] as f64);
+            Some((i, [d[0] as f32, d[1] as f32, d[2] as f32], mask.zenith_rad[i].to_degrees()))
+        })
+        .collect();
+    let times: std::collections::HashSet<DateTime<Utc>> = dets.iter().map(|d| d.time).collect();
+    let used: Vec<(&image::RgbImage, [f32; 3])> = frames
+        .iter()
+        .filter(|(t, _)| times.contains(t))
+        .filter_map(|(t, img)| dets.iter().find(|d| d.time == *t).map(|d| (img, [d.dir[0] as f32, d.dir[1] as f32, d.dir[2] as f32])))
+        .collect();
+    let samples = used.iter().map(|(img, sun)| {
+        let raw = img.as_raw();
+        pixels.iter().map(move |(i, d, z)| {
+            let g = crate::segment::gamma_deg(*d, Some(*sun));
+            ([raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]], crate::segment::PixelGeom { z_deg: *z, gamma_deg: g })
+        })
+    });
+    crate::segment::Reference::from_clear_samples(params, samples, 3)
+}
+
 /// The detections as CSV: time, centroid, sun zenith and azimuth, blob area, weight, residual.
 pub fn detections_csv(fit: &Fit, dets: &[Detection]) -> String {
     let mut out = String::from("time_utc,x_px,y_px,sun_zenith_deg,sun_azimuth_deg,blob_px,weight,residual_x_px,residual_y_px\n");

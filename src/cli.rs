@@ -653,6 +653,12 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
             crate::say!("wrote {}", mp.display());
         }
     }
+    // The clear-sky library of this camera from the same frames.
+    let reference = crate::calibrate::clear_sky_reference(&frames, &fit, &dets, &site.segment);
+    let rp = dir.join(format!("{name}-clear-sky.csv"));
+    crate::io::write_atomic(&rp, reference.to_csv().as_bytes())?;
+    cal.camera.clear_reference = Some(PathBuf::from(format!("{name}-clear-sky.csv")));
+    crate::say!("wrote {} (clear-sky library: {} bins of zenith × sun angle from {} frames)", rp.display(), reference.library_bins(), reference.library_frames);
     let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
     crate::io::write_atomic(&a.out, text.as_bytes())?;
     let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);

@@ -288,7 +288,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
             continue;
         }
         in_view[k] = true;
-        let (s, c) = if sky.plain[k] {
+        let (s, c) = if sky.plain[k] && fr.outside_glare(sky.gamma_deg[k]) {
             fr.classify_plain(px(p), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), sky.thick_score[k])
         } else {
             let (s, c) = fr.classify_with(px(p), geom(k), sky.default_rb[k]);

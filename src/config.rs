@@ -310,6 +310,8 @@ pub struct Site {
     pub calibration_path: PathBuf,
     /// The obstruction mask, if the calibration names one.
     pub obstruction: Option<image::GrayImage>,
+    /// The camera's clear-sky library, if the calibration names one.
+    pub clear_reference: Option<crate::segment::Reference>,
     /// The cloud base height series path, resolved.
     pub cbh_csv: Option<PathBuf>,
 }
@@ -358,8 +360,22 @@ impl Site {
             }
             None => None,
         };
+        let clear_reference = match &calibration.camera.clear_reference {
+            Some(p) => {
+                let rp = resolve(&calibration_path, p);
+                let invalid = |got: String| ConfigError::Invalid {
+                    file: calibration_path.clone(),
+                    field: "camera.clear_reference".into(),
+                    expected: "a clear-sky library CSV written by `nephocast calibrate`".into(),
+                    got,
+                };
+                let text = std::fs::read_to_string(&rp).map_err(|e| invalid(format!("{}: {e}", rp.display())))?;
+                Some(crate::segment::Reference::from_csv(&text).map_err(|e| invalid(format!("{}: {e}", rp.display())))?)
+            }
+            None => None,
+        };
         let cbh_csv = file.clouds.base_height_csv.as_ref().map(|p| resolve(path, p));
-        Ok(Site { file, path: path.into(), camera, calibration, calibration_path, obstruction, cbh_csv })
+        Ok(Site { file, path: path.into(), camera, calibration, calibration_path, obstruction, clear_reference, cbh_csv })
     }
 
     /// The observer for solar position.
@@ -550,6 +566,11 @@ pub struct CameraCalibration {
     /// An obstruction mask image (white = sky, black = blocked), relative to this file.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub obstruction_mask: Option<PathBuf>,
+    /// This camera's clear-sky R/B library (CSV written by `nephocast calibrate` from its clear
+    /// frames), relative to this file; the segmentation starts from it instead of the parametric
+    /// default.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub clear_reference: Option<PathBuf>,
 }
 
 fn default_fov() -> f64 {
@@ -625,6 +646,7 @@ impl CalibrationFile {
                 pitch_deg: cam.orientation.pitch_rad.to_degrees(),
                 roll_deg: cam.orientation.roll_rad.to_degrees(),
                 obstruction_mask: None,
+                clear_reference: None,
             },
             fit: None,
         }

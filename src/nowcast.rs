@@ -254,11 +254,12 @@ impl Nowcaster {
                 .collect();
             (!cols.is_empty()).then_some((m, cols))
         });
+        let reference = site.clear_reference.clone().unwrap_or_default();
         Nowcaster {
             site,
             plant,
             luts: LutCache::default(),
-            reference: Reference::default(),
+            reference,
             history: Default::default(),
             last_time: None,
             tracker: LayerTracker::default(),
@@ -434,7 +435,8 @@ impl Nowcaster {
         let priors = self.tracker.priors();
         let features = Arc::new(MapFeatures::new(&map));
         let measurement = earlier.as_ref().map(|(t, pm, pf)| measure_prepared((pm, pf), (&map, &features), age(t), mp, &priors));
-        let layers = self.tracker.update(measurement.as_ref(), dt_s.unwrap_or(0.0), mp);
+        // A measurement locked at zero while the map changes stays out of the filter.
+        let layers = self.tracker.update(measurement.as_ref().filter(|m| !m.locked_at_zero), dt_s.unwrap_or(0.0), mp);
         let motion = layers.first().map(|l| l.motion);
         let t_motion = Clock::now();
         // Tuning from measurements at the frame time.

@@ -169,7 +169,7 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut String) {
 }
 
 /// Header of `motion.csv`.
-pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps\n";
+pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero\n";
 
 /// Append a nowcast's motion row.
 pub fn motion_row(nc: &Nowcast, out: &mut String) {
@@ -194,7 +194,7 @@ pub fn motion_row(nc: &Nowcast, out: &mut String) {
     let second = nc.layers.get(1).map(|l| l.motion);
     let _ = writeln!(
         out,
-        "{},{},{},{},{},{},{},{}",
+        "{},{},{},{},{},{},{},{},{},{}",
         f(mo.map(|m| m.v_mps[0])),
         f(mo.map(|m| m.v_mps[1])),
         f(mo.map(|m| m.sigma_mps)),
@@ -202,7 +202,9 @@ pub fn motion_row(nc: &Nowcast, out: &mut String) {
         f(mo.map(|m| m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0))),
         f(second.map(|m| m.v_mps[0])),
         f(second.map(|m| m.v_mps[1])),
-        f(second.map(|m| m.sigma_mps))
+        f(second.map(|m| m.sigma_mps)),
+        m.map(|m| m.blocks_static).unwrap_or(0),
+        m.map(|m| m.locked_at_zero as u8).unwrap_or(0)
     );
 }
 

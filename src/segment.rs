@@ -207,6 +207,9 @@ impl SegmentParams {
 }
 
 const LIB_BIN_DEG: f32 = 2.0;
+/// Below this gap between the cloud ratio and the clear-sky reference (R/B) a pixel is unknown: the
+/// clear sky there (bloom, a white horizon) is as white as cloud.
+pub const MIN_CONTRAST: f32 = 0.06;
 /// 1° rings around the sun for the glare test (the glare zone's upper limit).
 const GLARE_RINGS: usize = 60;
 /// Fewer sampled pixels than this in a ring: its clipped pixels are taken for glare.
@@ -258,6 +261,11 @@ pub struct FrameReference<'a> {
     pub offset: f32,
     /// Per 1° ring around the sun: whether its clipped pixels are glare ([`SegmentParams::glare_ring_share`]).
     glare_ring: [bool; GLARE_RINGS],
+    /// The angle from the sun \[°\] out to which every ring is mostly clipped: the bloom, unbroken
+    /// from the sun (a low or hazy sun spreads it far beyond the configured zone).
+    pub glare_extent_deg: f32,
+    /// This frame's glare zone \[°\]: the configured one, or the bloom's extent when wider.
+    pub glare_zone_deg: f32,
 }
 
 impl FrameReference<'_> {
@@ -276,7 +284,13 @@ impl FrameReference<'_> {
     /// Reference R/B of a pixel from its library bin ([`lib_index`]) and parametric default.
     #[inline]
     pub fn reference_in_bin(&self, bin: usize, default_rb: f32) -> f32 {
-        if self.reference.weight[bin] > 0.5 { self.reference.lib[bin] } else { default_rb + self.offset }
+        self.reference.base_in_bin(bin, default_rb) + self.offset
+    }
+
+    /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
+    #[inline]
+    pub fn outside_glare(&self, gamma_deg: f32) -> bool {
+        gamma_deg >= self.glare_zone_deg
     }
 
     /// Score and class (as u8) of a pixel away from the sun's glare zone and within the zenith limit
@@ -286,9 +300,12 @@ impl FrameReference<'_> {
     pub fn classify_plain(&self, rgb: [u8; 3], reference_rb: f32, thick_score: f32) -> (f32, u8) {
         let p = self.params;
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
-        let denom = (p.cloud_rb as f32 - reference_rb).max(0.03);
+        let contrast = p.cloud_rb as f32 - reference_rb;
+        let denom = contrast.max(0.03);
         let s = (rb - reference_rb) / denom;
-        (s, 1 + (s >= p.thin_score as f32) as u8 + (s >= thick_score) as u8)
+        // Where the clear sky is itself as white as cloud the ratio cannot tell them apart: unknown.
+        let judged = (contrast >= MIN_CONTRAST) as u8;
+        (s, judged * (1 + (s >= p.thin_score as f32) as u8 + (s >= thick_score) as u8))
     }
 
     /// Cloudiness score and class of one pixel.
@@ -313,12 +330,15 @@ impl FrameReference<'_> {
         let r = self.at_with(g, default_rb);
         let denom = (p.cloud_rb as f32 - r).max(0.03);
         let s = (rb - r) / denom;
-        if g.gamma_deg < p.glare_zone_deg as f32 && rgb[2] >= sat {
+        if p.cloud_rb as f32 - r < MIN_CONTRAST {
+            return (f32::NAN, Class::Unknown);
+        }
+        if g.gamma_deg < self.glare_zone_deg && rgb[2] >= sat {
             // Blue is clipped, so the true ratio is at most R/255: clear when even that bound is
             // clear, else not judged.
             return if s < p.thin_score as f32 {
                 (s, Class::Clear)
-            } else if self.glare_ring[(g.gamma_deg as usize).min(GLARE_RINGS - 1)] {
+            } else if g.gamma_deg < self.glare_extent_deg || self.glare_ring[(g.gamma_deg as usize).min(GLARE_RINGS - 1)] {
                 (f32::NAN, Class::Unknown)
             } else {
                 (s, Class::Thick)
@@ -336,6 +356,92 @@ impl FrameReference<'_> {
 }
 
 impl Reference {
+    /// The reference before the frame's offset: the library where its bin holds data, else the
+    /// parametric default.
+    #[inline]
+    pub fn base_in_bin(&self, bin: usize, default_rb: f32) -> f32 {
+        if self.weight[bin] > 0.5 { self.lib[bin] } else { default_rb }
+    }
+
+    /// The library as CSV: one row per bin with data (`zenith_from_deg,gamma_from_deg,rb,weight`).
+    pub fn to_csv(&self) -> String {
+        let mut out = String::from("zenith_from_deg,gamma_from_deg,rb,weight\n");
+        for i in 0..self.lib.len() {
+            if self.weight[i] > 0.5 {
+                let (zi, gi) = (i / LIB_G_BINS, i % LIB_G_BINS);
+                out.push_str(&format!("{},{},{:.5},{:.1}\n", zi as f32 * LIB_BIN_DEG, gi as f32 * LIB_BIN_DEG, self.lib[i], self.weight[i]));
+            }
+        }
+        out
+    }
+
+    /// Read a library written by [`Reference::to_csv`].
+    ///
+    /// # Errors
+    /// A message naming the line and what was expected.
+    pub fn from_csv(text: &str) -> Result<Reference, String> {
+        let mut r = Reference::default();
+        for (i, line) in text.lines().enumerate().skip(1) {
+            if line.trim().is_empty() {
+                continue;
+            }
+            let v: Vec<&str> = line.split(',').collect();
+            let num = |k: usize| v.get(k).and_then(|x| x.trim().parse::<f32>().ok()).filter(|x| x.is_finite());
+            let (Some(z), Some(g), Some(rb), Some(w)) = (num(0), num(1), num(2), num(3)) else {
+                return Err(format!("line {}: expected zenith_from_deg,gamma_from_deg,rb,weight as numbers, got {line:?}", i + 1));
+            };
+            if !(0.0..=(LIB_Z_BINS as f32 * LIB_BIN_DEG)).contains(&z) || !(0.0..=(LIB_G_BINS as f32 * LIB_BIN_DEG)).contains(&g) || !(0.05..=3.0).contains(&rb) || w < 0.0 {
+                return Err(format!("line {}: a bin out of range (zenith 0–100°, sun angle 0–180°, R/B 0.05–3, weight ≥ 0), got {line:?}", i + 1));
+            }
+            let k = lib_index(z + 0.5 * LIB_BIN_DEG, g + 0.5 * LIB_BIN_DEG);
+            r.lib[k] = rb;
+            r.weight[k] = w.min(100.0);
+        }
+        r.library_frames = 1;
+        Ok(r)
+    }
+
+    /// A library from clear frames, each bin the plain mean R/B of the unclipped pixels that fell in
+    /// it (at least `min_frames` frames with 3 pixels each), as a clear day for calibration gives.
+    pub fn from_clear_samples<I>(params: &SegmentParams, frames: impl Iterator<Item = I>, min_frames: u32) -> Reference
+    where
+        I: Iterator<Item = ([u8; 3], PixelGeom)>,
+    {
+        let mut sum = vec![0f64; LIB_Z_BINS * LIB_G_BINS];
+        let mut cnt = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
+        let mut frames_in = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
+        let mut n_frames = 0;
+        for sample in frames {
+            n_frames += 1;
+            let mut fsum = vec![0f64; LIB_Z_BINS * LIB_G_BINS];
+            let mut fcnt = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
+            for (rgb, g) in sample {
+                if g.gamma_deg < params.sun_exclusion_deg as f32 || rgb.iter().any(|c| *c >= params.saturation_level) || rgb[2] < 10 {
+                    continue;
+                }
+                let i = lib_index(g.z_deg, g.gamma_deg);
+                fsum[i] += rgb[0] as f64 / rgb[2] as f64;
+                fcnt[i] += 1;
+            }
+            for i in 0..fsum.len() {
+                if fcnt[i] >= 3 {
+                    sum[i] += fsum[i] / fcnt[i] as f64;
+                    cnt[i] += 1;
+                    frames_in[i] += 1;
+                }
+            }
+        }
+        let mut r = Reference::default();
+        for i in 0..sum.len() {
+            if frames_in[i] >= min_frames.max(1) {
+                r.lib[i] = (sum[i] / cnt[i] as f64) as f32;
+                r.weight[i] = (cnt[i] as f32).min(100.0);
+            }
+        }
+        r.library_frames = n_frames;
+        r
+    }
+
     /// How many library bins hold data.
     pub fn library_bins(&self) -> usize {
         self.weight.iter().filter(|w| **w > 0.5).count()
@@ -351,13 +457,14 @@ impl Reference {
         let mut d = vec![];
         let mut n = 0usize;
         let (mut ring_n, mut ring_clipped) = ([0u32; GLARE_RINGS], [0u32; GLARE_RINGS]);
-        let glare_zone = params.glare_zone_deg as f32;
+        let glare_zone = GLARE_RINGS as f32;
         for (rgb, g, default_rb) in sample {
             if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
                 continue;
             }
             n += 1;
             let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+            let base = self.base_in_bin(lib_index(g.z_deg, g.gamma_deg), default_rb);
             if g.gamma_deg < glare_zone {
                 // Clipped and not provably clear (the library is not consulted: a bound suffices).
                 let r = (g.gamma_deg as usize).min(GLARE_RINGS - 1);
@@ -365,7 +472,7 @@ impl Reference {
                 let clear_bound = default_rb + params.thin_score as f32 * (params.cloud_rb as f32 - default_rb).max(0.03);
                 ring_clipped[r] += (rgb[2] >= params.saturation_level && rb >= clear_bound) as u32;
             }
-            let dd = rb - default_rb;
+            let dd = rb - base;
             if dd < params.offset_band as f32 {
                 d.push(dd);
             }
@@ -384,7 +491,12 @@ impl Reference {
                 glare_ring[r] = ring_clipped[r] as f64 >= params.glare_ring_share * ring_n[r] as f64;
             }
         }
-        FrameReference { reference: self, params, offset, glare_ring }
+        // The bloom's extent: the first sampled ring outside the sun's exclusion that is not mostly
+        // clipped. Clipped pixels inside it are glare wherever it reaches.
+        let first = (params.sun_exclusion_deg.ceil() as usize).min(GLARE_RINGS - 1);
+        let glare_extent_deg = (first..GLARE_RINGS).find(|&r| ring_n[r] >= GLARE_RING_MIN_SAMPLES && !glare_ring[r]).unwrap_or(first) as f32;
+        let glare_zone_deg = (params.glare_zone_deg as f32).max(glare_extent_deg);
+        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg }
     }
 
     /// Update the library with a frame's clear pixels (call only for frames judged clear).

@@ -211,10 +211,26 @@ pub struct MapFeatures {
 }
 
 impl MapFeatures {
-    /// Prepare a map.
+    /// Prepare a map, matching cells up to [`MATCH_MAX_ZENITH_DEG`].
     pub fn new(m: &CloudMap) -> MapFeatures {
+        Self::within_zenith(m, MATCH_MAX_ZENITH_DEG)
+    }
+
+    /// Prepare a map, matching only cells whose direction is within `max_zenith_deg` of the
+    /// zenith: nearer the horizon a pixel spans several cells, the map moves in whole-pixel steps
+    /// and a match there is pulled toward zero shift.
+    pub fn within_zenith(m: &CloudMap, max_zenith_deg: f64) -> MapFeatures {
         let n = m.grid.n;
-        let feature = score_feature(m);
+        let mut feature = score_feature(m);
+        let r_max = m.grid.height_m * max_zenith_deg.to_radians().tan();
+        for j in 0..n {
+            for i in 0..n {
+                let c = m.grid.cell_centre_m(i, j);
+                if c[0].hypot(c[1]) > r_max {
+                    feature[j * n + i] = f32::NAN;
+                }
+            }
+        }
         let (half, nh) = downsample(&feature, n, 2);
         MapFeatures { prepared: Prepared::new(feature, n, true), half, nh }
     }
@@ -233,6 +249,11 @@ impl Drop for MapFeatures {
         }
     }
 }
+
+/// Cells beyond this zenith angle \[°\] are not matched. At 70° a 256-cell map at any base height
+/// has about 1.4 cells per pixel of a 512² fisheye radially, at 80° about 3 (cell angle
+/// `cell · cos² z / h` against a pixel of 1/f rad), so the map there moves in whole-pixel steps.
+pub const MATCH_MAX_ZENITH_DEG: f64 = 72.0;
 
 /// The matched feature of a map: the cloudiness score clipped to [−0.5, 1.5], NaN where unknown.
 pub(super) fn score_feature(m: &CloudMap) -> Vec<f32> {

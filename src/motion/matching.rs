@@ -133,19 +133,19 @@ fn parabola_offset(l: f64, c: f64, r: f64) -> f64 {
 
 
 /// Block vectors between maps `a` and `b` on their score feature.
-pub(super) fn block_vectors(a: &CloudMap, xa: &MapFeatures, xb: &MapFeatures, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+pub(super) fn block_vectors(a: &CloudMap, xa: &MapFeatures, xb: &MapFeatures, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
     block_vectors_on(&xa.prepared, &xb.prepared, a, dt_s, params, prior)
 }
 
 /// Block vectors between two feature maps (`fa` earlier, `fb` later) on `a`'s grid (the features
 /// are given back to the pool).
-pub(super) fn block_vectors_between(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+pub(super) fn block_vectors_between(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
     let n = a.grid.n;
     block_vectors_on(&Prepared::new(fa, n, false), &Prepared::new(fb, n, true), a, dt_s, params, prior)
 }
 
 /// Block vectors between two prepared feature maps on `a`'s grid.
-fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize) {
+fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
     let nc = xa.nc;
@@ -173,6 +173,7 @@ fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, param
         y += bs;
     }
     let tried = starts.len();
+    let static_blocks = std::sync::atomic::AtomicUsize::new(0);
     let vectors: Vec<BlockVector> = starts
         .par_iter()
         .filter_map(|&(ax, ay)| {
@@ -272,6 +273,11 @@ fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, param
             let sub_x = if sub_x.is_nan() { 0.0 } else { sub_x };
             let sub_y = if sub_y.is_nan() { 0.0 } else { sub_y };
             let (dxc, dyc) = refine_lk(fa, fb, n, ax, ay, bs, ((bx0 + fb_best.1) as f64 + sub_x, (by0 + fb_best.2) as f64 + sub_y));
+            // Static structure: matched within a cell of zero shift and unchanged there.
+            if dxc.hypot(dyc) < 1.0 && zero_shift_change(fa, fb, n, ax, ay, bs) < params.static_tolerance {
+                static_blocks.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                return None;
+            }
             let c = a.grid.cell_centre_m(ax + bs / 2, ay + bs / 2);
             let v_mps = [dxc * cell / dt_s, dyc * cell / dt_s];
             // The search window has a cell of margin: a match beyond the largest plausible speed
@@ -295,7 +301,21 @@ fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, param
             Some(BlockVector { centre_m: c, v_mps, peak: fb_best.0, mean_score: mean, thick_share: thick })
         })
         .collect();
-    (vectors, tried)
+    (vectors, tried, static_blocks.into_inner())
+}
+
+/// Mean absolute difference of two feature maps over a block at zero shift (cells known in both).
+fn zero_shift_change(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize) -> f64 {
+    let (mut s, mut k) = (0.0f64, 0usize);
+    for j in ay..ay + bs {
+        for (x, y) in fa[j * n + ax..j * n + ax + bs].iter().zip(&fb[j * n + ax..j * n + ax + bs]) {
+            if !x.is_nan() && !y.is_nan() {
+                s += (x - y).abs() as f64;
+                k += 1;
+            }
+        }
+    }
+    if k == 0 { f64::INFINITY } else { s / k as f64 }
 }
 
 /// Most Gauss–Newton steps of [`refine_lk`], and the step below which it stops \[cells\]: 0.02 of

@@ -78,6 +78,11 @@ pub struct MotionParams {
     pub layer_expiry_s: f64,
     /// A second layer enters the forecast after this many measurements.
     pub layer_confirm: usize,
+    /// A block whose best match lies within a cell of zero shift and whose feature changed by less
+    /// than this (mean absolute difference at zero shift, score units) is static structure — glare,
+    /// vignetting, the horizon, a mast, dirt on the dome — and gives no vector. A cloud that
+    /// truly stands still still evolves above it.
+    pub static_tolerance: f64,
 }
 
 impl Default for MotionParams {
@@ -97,6 +102,7 @@ impl Default for MotionParams {
             residual_min_share: 0.2,
             layer_expiry_s: 300.0,
             layer_confirm: 2,
+            static_tolerance: 0.02,
         }
     }
 }
@@ -120,7 +126,8 @@ impl MotionParams {
         check_range(file, "motion.residual_tolerance", self.residual_tolerance, 0.01, 2.0)?;
         check_range(file, "motion.residual_min_share", self.residual_min_share, 0.0, 1.0)?;
         check_range(file, "motion.layer_expiry_s", self.layer_expiry_s, 1.0, 3600.0)?;
-        check_range(file, "motion.layer_confirm", self.layer_confirm as f64, 1.0, 100.0)
+        check_range(file, "motion.layer_confirm", self.layer_confirm as f64, 1.0, 100.0)?;
+        check_range(file, "motion.static_tolerance", self.static_tolerance, 0.0, 1.0)
     }
 }
 
@@ -172,6 +179,32 @@ pub struct Measurement {
     /// With two layers: the layer (index into `layers`) of each cloudy cell of the later map
     /// ([`label_layers`]).
     pub labels: Option<Vec<u8>>,
+    /// Blocks dropped as static structure ([`MotionParams::static_tolerance`]).
+    pub blocks_static: usize,
+    /// The measurement reads (nearly) zero motion while the map changed: locked onto something
+    /// that does not move with the clouds. Such a measurement is reported but kept out of the
+    /// filter.
+    pub locked_at_zero: bool,
+}
+
+impl Measurement {
+    /// Flag a measurement locked at zero: its dominant motion moves less than half a cell over the
+    /// baseline while the two maps differ at zero shift by more than twice the static tolerance.
+    pub fn check_locked(&mut self, a: &CloudMap, b: &CloudMap, params: &MotionParams) {
+        let Some(l) = self.layers.first() else { return };
+        let shift_cells = l.v_mps[0].hypot(l.v_mps[1]) * self.dt_s / a.grid.cell_m;
+        if shift_cells >= 0.5 {
+            return;
+        }
+        let (mut s, mut k) = (0.0f64, 0usize);
+        for (x, y) in a.score.iter().zip(&b.score) {
+            if !x.is_nan() && !y.is_nan() {
+                s += (x.clamp(-0.5, 1.5) - y.clamp(-0.5, 1.5)).abs() as f64;
+                k += 1;
+            }
+        }
+        self.locked_at_zero = k > 0 && s / k as f64 > 2.0 * params.static_tolerance;
+    }
 }
 
 /// Measure motion from map `a` (earlier) to map `b`, `dt_s` apart. Both maps must share a grid.
@@ -189,20 +222,25 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
 
 /// [`measure`] with each map's [`MapFeatures`] given (the engine keeps them with its maps).
 pub fn measure_prepared((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
-    let (mut vectors, mut tried) = block_vectors(a, xa, xb, dt_s, params, priors.first().copied());
+    let (mut vectors, mut tried, mut static_blocks) = block_vectors(a, xa, xb, dt_s, params, priors.first().copied());
     // One motion unless the residual pass finds cloud it does not explain: a split of the first
     // pass's vectors alone is more often cloud evolving than a second layer.
-    let first = summarize(vectors.clone(), tried, dt_s, params, false);
+    let mut first = summarize(vectors.clone(), tried, dt_s, params, false);
+    first.blocks_static = static_blocks;
+    first.check_locked(a, b, params);
     let Some(dominant) = first.layers.first() else { return first };
     let cell = a.grid.cell_m;
     let d = [dominant.v_mps[0] * dt_s / cell, dominant.v_mps[1] * dt_s / cell];
     let (Some((ra, rb)), _share) = residual_features(a, b, xa, xb, d, params.residual_tolerance as f32, params.residual_min_share) else { return first };
-    let (v2, t2) = block_vectors_between(ra, rb, a, dt_s, params, priors.get(1).copied());
+    let (v2, t2, s2) = block_vectors_between(ra, rb, a, dt_s, params, priors.get(1).copied());
+    static_blocks += s2;
     // Residual vectors near the dominant layer re-measure it from the rims its displacement left
     // (biased by the blanking): only the other motions are kept.
     vectors.extend(v2.into_iter().filter(|v| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps));
     tried += t2;
     let mut m = summarize(vectors, tried, dt_s, params, true);
+    m.blocks_static = static_blocks;
+    m.check_locked(a, b, params);
     // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
     if let [l0, l1] = m.layers.as_slice() {
         let mut labels = label_layers_on(xa.feature(), xb.feature(), b, dt_s, &[l0.v_mps, l1.v_mps]);
@@ -262,7 +300,7 @@ fn dist(a: [f64; 2], b: [f64; 2]) -> f64 {
 
 fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &MotionParams, allow_two: bool) -> Measurement {
     if vectors.is_empty() {
-        return Measurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN, labels: None };
+        return Measurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN, labels: None, blocks_static: 0, locked_at_zero: false };
     }
     let g = [
         median(&mut vectors.iter().map(|v| v.v_mps[0]).collect::<Vec<_>>()),
@@ -325,7 +363,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         let ts = inl.iter().map(|v| v.thick_share).sum::<f64>() / m;
         (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms, thick_share: ts, spread_mps: spread }], spread)
     };
-    Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread, labels: None }
+    Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread, labels: None, blocks_static: 0, locked_at_zero: false }
 }
 
 /// Which layer each cloudy cell of map `b` belongs to, given the layers' velocities `vs` (m/s,
@@ -646,7 +684,7 @@ mod tests {
     fn tracker_follows_two_layers_and_confirms_the_second() {
         let p = MotionParams::default();
         let layer = |v: [f64; 2], thick: f64| LayerMotion { v_mps: v, blocks: 10, mean_score: 1.0, thick_share: thick, spread_mps: 0.3 };
-        let meas = |ls: Vec<LayerMotion>| Measurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3, labels: None };
+        let meas = |ls: Vec<LayerMotion>| Measurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3, labels: None, blocks_static: 0, locked_at_zero: false };
         let mut t = LayerTracker::default();
         // The first measurement is a blend; then both layers, in either order.
         let out = t.update(Some(&meas(vec![layer([3.0, 1.0], 0.6)])), 20.0, &p);
