@@ -1035,8 +1035,8 @@ mod tests {
         }
         let (x, y, _) = detect_sun(&img, 100.0).unwrap();
         assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
-        // The blob: the disc (49 px for r < 4 on the integer grid) and the 26 streak pixels below it.
-        assert_eq!(saturated_blob_area(&img, x, y, 5.0), 49 + 26);
+        // The blob: the disc (45 lattice points with x² + y² < 16) and the 26 streak pixels below it.
+        assert_eq!(saturated_blob_area(&img, x, y, 5.0), 45 + 26);
     }
 
     fn det(blob: usize) -> Detection {

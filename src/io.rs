@@ -350,6 +350,24 @@ impl Measurements {
         v[0] > 5.0 && v.iter().all(|x| *x == v[0])
     }
 
+    /// The newest reading of a column whose averaging period had ended by `t` (a live system has
+    /// nothing newer), with the middle of that period; `None` when there is none within two
+    /// periods of `t`.
+    pub fn completed_at(&self, col: usize, t: &DateTime<Utc>) -> Option<(f64, DateTime<Utc>)> {
+        let period = chrono::Duration::milliseconds((self.period_s.max(1.0) * 1000.0) as i64);
+        // Rows whose period ended by t: start + period <= t.
+        let i = self.times.partition_point(|x| *x + period <= *t);
+        if i == 0 {
+            return None;
+        }
+        let start = self.times[i - 1];
+        if *t - start > period * 3 {
+            return None;
+        }
+        let v = self.columns[col][i - 1];
+        v.is_finite().then(|| (v, start + period / 2))
+    }
+
     /// Value of a column at a time: the row whose averaging period (starting at its time stamp)
     /// contains `t`; NaN when none does.
     pub fn at(&self, col: usize, t: &DateTime<Utc>) -> f64 {

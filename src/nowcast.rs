@@ -231,6 +231,7 @@ pub struct Nowcaster {
     measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
     tuner: Tuner,
     band_calibration: crate::forecast::BandCalibration,
+    blend: crate::forecast::PersistenceBlend,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
     cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
@@ -267,6 +268,7 @@ impl Nowcaster {
             measurements,
             tuner: Tuner::default(),
             band_calibration: Default::default(),
+            blend: Default::default(),
             irradiance,
             alarm: Default::default(),
             cell_sky: None,
@@ -441,7 +443,7 @@ impl Nowcaster {
         let t_motion = Clock::now();
         // Tuning from measurements at the frame time.
         if self.irradiance.tune_from_measurements {
-            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh);
+            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh, motion.map(|m| m.v_mps));
         }
         let input = ForecastInput {
             issue: frame.time,
@@ -468,7 +470,9 @@ impl Nowcaster {
             point_stride: 1,
             // The pyranometers, when the bands are calibrated against them.
             probes_m: match &self.measurements {
-                Some((_, cols)) if self.irradiance.band_calibration_rate > 0.0 && self.irradiance.ensemble_members > 0 => cols.iter().map(|c| c.1).collect(),
+                Some((_, cols)) if (self.irradiance.band_calibration_rate > 0.0 && self.irradiance.ensemble_members > 0) || self.irradiance.persistence_blend_rate > 0.0 => {
+                    cols.iter().map(|c| c.1).collect()
+                }
                 _ => vec![],
             },
         };
@@ -493,6 +497,8 @@ impl Nowcaster {
         let (members, mut bands) =
             if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
         self.calibrate_bands(&frame.time, &fc, &members, &mut bands);
+        let mut fc = fc;
+        self.blend_with_persistence(&frame.time, &mut fc, &mut bands);
         // Ramp events from the plant's power series, and the alarm.
         let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
         let step_min = self.site.file.forecast.step_s as f64 / 60.0;
@@ -561,8 +567,49 @@ impl Nowcaster {
         self.band_calibration.apply(fc, bands, &probe_bands);
     }
 
+    /// Combine the forecast with smart persistence of the pyranometers ([`crate::forecast::PersistenceBlend`]):
+    /// verify the pairs whose target has been measured, keep this forecast's pairs, and weigh.
+    fn blend_with_persistence(&mut self, now: &DateTime<Utc>, fc: &mut Forecast, bands: &mut [Band]) {
+        let rate = self.irradiance.persistence_blend_rate;
+        let Some((m, cols)) = &self.measurements else { return };
+        if rate <= 0.0 || fc.probes_ghi_wm2.is_empty() {
+            return;
+        }
+        let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
+        let mean_at = |t: &DateTime<Utc>| {
+            let v: Vec<f64> = cols.iter().map(|(c, _)| m.at(*c, t)).filter(|y| y.is_finite() && *y >= 0.0).collect();
+            (v.len() == cols.len()).then(|| v.iter().sum::<f64>() / v.len() as f64)
+        };
+        self.blend.verify(rate, |t| if *t + period > *now { None } else { Some(mean_at(t)) });
+        // The newest completed reading's clear-sky index at the pyranometers.
+        let newest: Vec<(f64, DateTime<Utc>)> = cols.iter().filter_map(|(c, _)| m.completed_at(*c, now)).collect();
+        if newest.len() != cols.len() {
+            return;
+        }
+        let mid = newest[0].1;
+        let y = newest.iter().map(|v| v.0).sum::<f64>() / newest.len() as f64;
+        let Ok(sun_then) = position(&mid, &self.site.observer()) else { return };
+        let clear_then = crate::clearsky::clear_sky(&sun_then, self.site.file.site.elevation_m, self.site.clear_sky_model()).ghi_wm2;
+        if clear_then < 50.0 {
+            return;
+        }
+        let kstar = (y / clear_then).clamp(0.0, 1.5);
+        let plant_rows: Vec<(DateTime<Utc>, u32, f64)> = fc.rows.iter().filter(|r| r.target == "plant").map(|r| (r.time, r.horizon_s, r.ghi_clear_wm2)).collect();
+        for ((t, h, clear), cam) in plant_rows.into_iter().zip(fc.probes_ghi_wm2.iter()) {
+            self.blend.push(t, h, *cam, kstar * clear);
+        }
+        self.blend.apply(fc, bands, kstar);
+        if std::env::var("NC_DEBUG_BLEND").is_ok() {
+            eprintln!("{now} kstar {kstar:.3} weights {:?}", self.blend.weights().iter().map(|(h, w)| format!("{h}:{w:.2}")).collect::<Vec<_>>());
+        }
+    }
+
     /// `diffuse_cover`: [`IrradianceParams::diffuse_cover`] of the frame.
-    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, cbh: f64) {
+    ///
+    /// Each pyranometer's newest completed reading is paired with the map where the cloud that
+    /// shaded it then has moved to now (its sun-ray point advected by `v_mps` over the time since
+    /// the middle of the reading's period): a reading is never used before its period has ended.
+    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, cbh: f64, v_mps: Option<[f64; 2]>) {
         let Some((m, cols)) = &self.measurements else { return };
         let clear = crate::clearsky::clear_sky(sun, self.site.file.site.elevation_m, self.site.clear_sky_model());
         let cz = sun.apparent_zenith_rad.cos();
@@ -572,7 +619,8 @@ impl Nowcaster {
         let r = (self.irradiance.blur_min_m / map.grid.cell_m).max(0.5);
         let mut rows = vec![];
         for (col, pos) in cols {
-            let y = m.at(*col, t);
+            let Some((y, mid)) = m.completed_at(*col, t) else { continue };
+            let lag_s = (*t - mid).num_milliseconds() as f64 / 1000.0;
             // Readings outside the BSRN physically-possible or extremely-rare GHI limits are not
             // learnt from.
             let bad = crate::qc::FLAG_GHI_PHYSICAL | crate::qc::FLAG_GHI_RARE;
@@ -580,11 +628,12 @@ impl Nowcaster {
                 continue;
             }
             // Nor stuck readings (gaps give NaN above).
-            if m.stuck_at(*col, t, crate::qc::STUCK_RUN) {
+            if m.stuck_at(*col, &mid, crate::qc::STUCK_RUN) {
                 continue;
             }
             let q = sun_ray_plane_point(*pos, cbh, self.site.file.camera.position_m, sun.apparent_zenith_rad, sun.azimuth_rad);
-            let (cx, cy) = map.grid.to_cell(q);
+            let v = v_mps.unwrap_or([0.0, 0.0]);
+            let (cx, cy) = map.grid.to_cell([q[0] + v[0] * lag_s, q[1] + v[1] * lag_s]);
             // Class shares in the look-up box.
             let mut share = [0f64; 3];
             let mut k = 0.0;

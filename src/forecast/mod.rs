@@ -38,8 +38,10 @@ use crate::plant::{Mount, Plant};
 use crate::segment::Class;
 use crate::sun::{Observer, direction_enu, position};
 
+mod blend;
 mod ensemble;
 mod tables;
+pub use blend::PersistenceBlend;
 pub use ensemble::{Band, BandCalibration, ensemble_with, quantile_sorted};
 pub use tables::TransmittanceMap;
 
@@ -92,6 +94,9 @@ pub struct IrradianceParams {
     /// `exp(rate · (miss − 0.2))`, so P10–P90 tends to hold 80 % of the measurements. 0: off.
     /// Needs pyranometers in the measurements.
     pub band_calibration_rate: f64,
+    /// Rate of the per-horizon error averages that weigh the camera against smart persistence of
+    /// the pyranometers ([`PersistenceBlend`]); 0 turns the combination off.
+    pub persistence_blend_rate: f64,
 }
 
 impl Default for IrradianceParams {
@@ -137,6 +142,7 @@ impl Default for IrradianceParams {
             // five synthetic scenes (30 min each, so at 15 min the calibration acts on the last
             // half only).
             band_calibration_rate: 0.15,
+            persistence_blend_rate: 0.05,
         }
     }
 }
@@ -163,7 +169,8 @@ impl IrradianceParams {
         check_range(file, "irradiance.ensemble_full_spread_cover", self.ensemble_full_spread_cover, 0.0, 1.0)?;
         check_range(file, "irradiance.ensemble_beam_rel_sigma", self.ensemble_beam_rel_sigma, 0.0, 1.0)?;
         check_range(file, "irradiance.ensemble_diffuse_rel_sigma", self.ensemble_diffuse_rel_sigma, 0.0, 2.0)?;
-        check_range(file, "irradiance.band_calibration_rate", self.band_calibration_rate, 0.0, 1.0)
+        check_range(file, "irradiance.band_calibration_rate", self.band_calibration_rate, 0.0, 1.0)?;
+        check_range(file, "irradiance.persistence_blend_rate", self.persistence_blend_rate, 0.0, 1.0)
     }
 
     /// The cover that sets the cloud-scattered diffuse: thick cover plus `diffuse_thin_weight` times

@@ -653,7 +653,8 @@ mod tests {
     fn residual_pass_finds_a_second_layer_and_cells_go_with_their_layer() {
         let (v_many, v_few, dt) = ([2.0, -3.5], [6.5, 6.5], 100.0);
         let (a, b) = two_layer_maps(v_many, v_few, dt);
-        let m = measure(&a, &b, dt, &MotionParams::default(), &[]);
+        // Synthetic maps have no pixels to quantize them: match out to their edge.
+        let m = measure_prepared((&a, &MapFeatures::within_zenith(&a, 90.0)), (&b, &MapFeatures::within_zenith(&b, 90.0)), dt, &MotionParams::default(), &[]);
         assert_eq!(m.layers.len(), 2, "{:?} {:?}", m.layers, m.vectors.iter().map(|v| v.v_mps).collect::<Vec<_>>());
         let near = |t: [f64; 2]| m.layers.iter().any(|l| dist(l.v_mps, t) < 0.5);
         assert!(near(v_many) && near(v_few), "{:?}", m.layers);
