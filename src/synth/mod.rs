@@ -17,8 +17,13 @@
 //! <out>/truth/masks/<frame>.png        per-pixel class: 0 unknown, 1 clear, 2 thin, 3 thick
 //! <out>/truth/irradiance.csv           GHI/DNI/DHI per block and plant, to 20 min past the last frame
 //! ```
+//!
+//! A scene may add the imperfections of a real camera ([`nuisance::Nuisances`]: lens field other
+//! than 90°, ground and skyline, bloom and smear, vignetting, exposure drift, haze, dirt), all off
+//! by default; the `nuisance-*` scenes turn them on.
 
 pub mod noise;
+pub mod nuisance;
 pub mod render;
 pub mod world;
 
@@ -31,7 +36,8 @@ use crate::camera::{Camera, Orientation, Projection};
 use crate::config::{BlockSpec, CalibrationFile, CameraSection, CloudSection, ForecastSection, MountKind, PlantSection, SiteFile, SiteSection};
 use crate::io::{fmt_time, frame_name, write_atomic};
 use crate::plant::Plant;
-use render::{Mast, PixelRays, render};
+use nuisance::{Bloom, Dirt, ExposureDrift, Horizon, NuisanceMap, Nuisances, Vignetting};
+use render::{Mast, PixelRays, render_with};
 use world::{LayerSpec, World};
 
 /// The camera of a scene.
@@ -40,9 +46,12 @@ use world::{LayerSpec, World};
 pub struct CameraSpec {
     /// Camera name (calibration file name).
     pub name: String,
-    /// `"equidistant"`, `"equisolid"`, `"stereographic"` or `"polynomial"`.
+    /// `"equidistant"`, `"equisolid"`, `"stereographic"`, `"polynomial"` or `"equisolid-like"`: a
+    /// real lens close to equisolid that fits no ideal model exactly, the polynomial model with the
+    /// coefficients of equisolid's series (`2 sin(θ/2) = θ (1 − θ²/24 + θ⁴/1920 − θ⁶/322560 +
+    /// θ⁸/92897280 − …)`) plus `k`.
     pub model: String,
-    /// Polynomial coefficients (polynomial model).
+    /// Polynomial coefficients (polynomial model; for `"equisolid-like"`, added to equisolid's).
     #[serde(default)]
     pub k: Vec<f64>,
     /// Radius of the 90° field angle as a share of half the image size.
@@ -67,6 +76,13 @@ impl CameraSpec {
                 let mut k = [0.0; 4];
                 for (i, v) in self.k.iter().take(4).enumerate() {
                     k[i] = *v;
+                }
+                Projection::Polynomial { k }
+            }
+            "equisolid-like" => {
+                let mut k = [-1.0 / 24.0, 1.0 / 1920.0, -1.0 / 322_560.0, 1.0 / 92_897_280.0];
+                for (i, v) in self.k.iter().take(4).enumerate() {
+                    k[i] += *v;
                 }
                 Projection::Polynomial { k }
             }
@@ -119,6 +135,9 @@ pub struct SceneSpec {
     pub jpeg_quality: u8,
     /// Write a truth mask for every n-th frame.
     pub truth_mask_every: usize,
+    /// Imperfections of a real camera (all off by default; not written when off).
+    #[serde(default, skip_serializing_if = "Nuisances::is_off")]
+    pub nuisances: Nuisances,
 }
 
 /// The fictional site of all scenes: Larkspur Flats.
@@ -208,6 +227,7 @@ pub fn scenes() -> Vec<SceneSpec> {
         mast: true,
         jpeg_quality: 85,
         truth_mask_every: 3,
+        nuisances: Nuisances::default(),
     };
     let mut v = vec![
         base("broken-cumulus-fast", "broken cumulus at 1200 m moving at 12 m/s toward the east-north-east",
@@ -234,7 +254,78 @@ pub fn scenes() -> Vec<SceneSpec> {
         ..base("larkspur-demo", "the shipped demo: broken cumulus at 1400 m moving at 9 m/s toward the east over the plant",
                vec![layer(1400.0, 9.0, 85.0, 0.40, 0.40, 35.0, 1500.0)])
     });
+    // One imperfect camera (and its wide-lens variant) for the nuisance scenes.
+    let nuisance = |name: &str, desc: &str, layers: Vec<LayerSpec>, wide: bool| {
+        let (camera, nuisances) = nuisance_camera(wide);
+        SceneSpec { camera, nuisances, duration_min: 30.0, ..base(name, desc, layers) }
+    };
+    let clear_day = |name: &str, desc: &str, wide: bool| SceneSpec {
+        start_utc: "2026-06-14T05:00:00Z".into(),
+        duration_min: 840.0,
+        frame_step_s: 600.0,
+        truth_mask_every: 1,
+        ..nuisance(name, desc, vec![], wide)
+    };
+    v.push(clear_day(
+        "nuisance-clear-day",
+        "the imperfect camera (tilted, 88° lens, not quite equisolid, bloom, vignetting, dirt, haze, drifting exposure, skyline) on a clear day, every 10 minutes for 14 hours: the day a user calibrates from",
+        false,
+    ));
+    v.push(nuisance(
+        "nuisance-broken",
+        "the imperfect camera under broken cumulus at 1200 m moving at 10 m/s toward the east-north-east",
+        vec![layer(1200.0, 10.0, 65.0, 0.42, 0.42, 35.0, 1400.0)],
+        false,
+    ));
+    v.push(nuisance(
+        "nuisance-two-layer",
+        "the imperfect camera: cumulus at 1100 m toward the north-east at 8 m/s under thin high cloud at 6500 m toward the east-south-east at 18 m/s",
+        vec![layer(1100.0, 8.0, 40.0, 0.30, 0.30, 30.0, 1300.0), layer(6500.0, 18.0, 110.0, 0.50, 0.50, 1.6, 4000.0)],
+        false,
+    ));
+    v.push(clear_day(
+        "nuisance-wide-clear-day",
+        "the imperfect camera with a 97° lens (ground and skyline inside the image circle) on a clear day, every 10 minutes for 14 hours",
+        true,
+    ));
+    v.push(nuisance(
+        "nuisance-wide-broken",
+        "the imperfect camera with a 97° lens (ground and skyline inside the image circle) under broken cumulus at 1200 m moving at 10 m/s toward the east-north-east",
+        vec![layer(1200.0, 10.0, 65.0, 0.42, 0.42, 35.0, 1400.0)],
+        true,
+    ));
     v
+}
+
+/// The imperfect camera of the `nuisance-*` scenes: tilted by 1.7° (pitch −1.4°, roll 0.9°), a lens
+/// close to equisolid with an extra θ⁷ term (≈ 2.5 px at the 90° rim) that images an 88° field,
+/// or 97° for the wide variant (a shorter focal length, so the ground and skyline fit inside the
+/// image), sun bloom leaning toward the horizon and a smear column, vignetting to 65 % at the rim
+/// from a centre off the principal point, ±3 % exposure drift over 80 minutes, haze, six dirt spots
+/// and a skyline of tree lines and buildings. The dirt and skyline are the same in every scene.
+pub fn nuisance_camera(wide: bool) -> (CameraSpec, Nuisances) {
+    let camera = CameraSpec {
+        name: if wide { "larkspur-sky2-wide" } else { "larkspur-sky2" }.into(),
+        model: "equisolid-like".into(),
+        k: vec![0.0, 0.0, 6e-4, 0.0],
+        rim_fraction: if wide { 0.90 } else { 0.97 },
+        offset_px: [-6.3, 4.1],
+        yaw_deg: 131.0,
+        pitch_deg: -1.4,
+        roll_deg: 0.9,
+    };
+    let nuisances = Nuisances {
+        field_deg: Some(if wide { 97.0 } else { 88.0 }),
+        ground: true,
+        horizon: Some(Horizon { tree_lines: 3, buildings: 4 }),
+        bloom: Some(Bloom { halo_level: 260.0, halo_radius_px: 2.2, lean: 2.0, smear_level: 110.0, smear_width_px: 0.7 }),
+        vignetting: Some(Vignetting { rim_gain: 0.65, centre_offset_px: [9.0, -6.0] }),
+        exposure_drift: Some(ExposureDrift { amplitude: 0.03, period_min: 80.0 }),
+        haze: 0.25,
+        dirt: Some(Dirt { spots: 6, radius_px: [4.0, 11.0], opacity: [0.3, 0.65], unknown_from: 0.2 }),
+        layout_seed: 2026,
+    };
+    (camera, nuisances)
 }
 
 /// Look up a scene by name.
@@ -260,6 +351,8 @@ pub struct Scene {
     pub cam_pos_m: [f64; 3],
     /// First frame time.
     pub start: DateTime<Utc>,
+    /// The static per-pixel parts of the camera's imperfections (`None` when they are all off).
+    pub nuisance_map: Option<NuisanceMap>,
 }
 
 /// An error building or writing a scene.
@@ -300,6 +393,7 @@ impl Scene {
         if !(spec.frame_step_s >= 1.0 && spec.duration_min > 0.0) {
             return Err(bad("frame_step_s must be ≥ 1 and duration_min > 0"));
         }
+        spec.nuisances.check().map_err(|m| bad(&m))?;
         for l in &spec.layers {
             if !(50.0..=15000.0).contains(&l.base_height_m) || !(0.0..=60.0).contains(&l.wind_speed_mps) {
                 return Err(bad("layer base height must be 50–15000 m and wind 0–60 m/s"));
@@ -312,7 +406,11 @@ impl Scene {
             .into_iter()
             .map(|(name, position_m)| crate::config::PyranometerSpec { name: name.trim_start_matches("pyr_").to_string(), position_m })
             .collect();
-        let camera = spec.camera.camera(spec.size_px);
+        let mut camera = spec.camera.camera(spec.size_px);
+        if let Some(f) = spec.nuisances.field_deg {
+            camera = Camera::new(camera.width_px, camera.height_px, camera.cx_px, camera.cy_px, camera.f_px, camera.projection, f.to_radians(), camera.orientation);
+        }
+        let nuisance_map = (!spec.nuisances.is_off()).then(|| spec.nuisances.prepare(&camera, seed));
         let mut world = World::new(
             &spec.layers,
             seed,
@@ -323,7 +421,7 @@ impl Scene {
         );
         world.diffuse_centre_m = plant.centre_m();
         let cam_pos_m = site.camera.position_m;
-        Ok(Scene { spec, seed, world, camera, site, plant, cam_pos_m, start })
+        Ok(Scene { spec, seed, world, camera, site, plant, cam_pos_m, start, nuisance_map })
     }
 
     /// Frame times.
@@ -344,7 +442,8 @@ impl Scene {
     /// Render frame `i` at time `t`.
     pub fn render_frame(&self, rays: &PixelRays, i: usize, t: &DateTime<Utc>) -> render::Rendered {
         let inst = self.world.instant(t);
-        render(&self.world, &inst, &self.camera, rays, self.cam_pos_m, self.mast(), noise::hash64(self.seed ^ (i as u64 + 1).wrapping_mul(0x9E37)))
+        let nuisances = self.nuisance_map.as_ref().map(|m| (&self.spec.nuisances, m));
+        render_with(&self.world, &inst, &self.camera, rays, self.cam_pos_m, self.mast(), noise::hash64(self.seed ^ (i as u64 + 1).wrapping_mul(0x9E37)), nuisances)
     }
 }
 

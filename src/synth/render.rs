@@ -8,11 +8,14 @@
 //!   `1 − exp(−0.7 τ_slant)`; brightness falling with optical depth (a thick base is grey, a thin edge
 //!   white) and rising toward the sun (forward scattering, bright sunlit edges);
 //! * the sun disk and glare, dimmed by the cloud in front of the sun, with a blooming streak;
-//! * an optional mast, black outside the image circle, sensor noise.
+//! * an optional mast, black outside the image circle, sensor noise;
+//! * optionally the imperfections of a real camera ([`super::nuisance`]: ground and skyline, haze,
+//!   dirt, vignetting, exposure drift, bloom and smear), through [`render_with`].
 
 use rayon::prelude::*;
 
 use super::noise::{gaussian, hash64};
+use super::nuisance::{NuisanceMap, Nuisances};
 use super::world::{Instant, TAU_CLEAR_MAX, TAU_THIN_MAX, World};
 use crate::camera::Camera;
 
@@ -114,6 +117,22 @@ pub fn render(
     mast: Option<Mast>,
     noise_seed: u64,
 ) -> Rendered {
+    render_with(world, inst, cam, rays, cam_pos_m, mast, noise_seed, None)
+}
+
+/// [`render`] with a camera's imperfections (`None`: exactly [`render`]). The map must come from
+/// [`Nuisances::prepare`] for the same camera.
+#[allow(clippy::too_many_arguments)]
+pub fn render_with(
+    world: &World,
+    inst: &Instant,
+    cam: &Camera,
+    rays: &PixelRays,
+    cam_pos_m: [f64; 3],
+    mast: Option<Mast>,
+    noise_seed: u64,
+    nuisances: Option<(&Nuisances, &NuisanceMap)>,
+) -> Rendered {
     let (w, h) = (rays.width, rays.height);
     let sun_d = inst.sun.direction_enu();
     let sun_z = inst.sun.apparent_zenith_rad;
@@ -128,6 +147,7 @@ pub fn render(
     let n_layers = world.layers.len();
     // Angular size of a pixel near the image centre.
     let pixel_rad = 1.0 / (cam.f_px * cam.projection.radial_derivative(0.0));
+    let extra = nuisances.map(|(n, map)| FrameNuisances::new(n, map, cam, inst, sun_px, sun_vis, h));
     let rows: Vec<(Vec<u8>, Vec<u8>, usize, usize)> = (0..h)
         .into_par_iter()
         .map(|y| {
@@ -141,9 +161,13 @@ pub fn render(
                 let mut col;
                 let mut class = TruthClass::Unknown;
                 let z = d[2].clamp(-1.0, 1.0).acos();
+                let fixed = extra.as_ref().and_then(|e| e.map.fixed[y * w + x]);
                 if d[2] <= 0.0 {
                     // Ground and horizon objects.
-                    col = [62.0, 58.0, 50.0];
+                    col = match fixed {
+                        Some(c) => [c[0] as f64, c[1] as f64, c[2] as f64],
+                        None => [62.0, 58.0, 50.0],
+                    };
                 } else {
                     let cos_g = (d[0] * sun_d[0] + d[1] * sun_d[1] + d[2] * sun_d[2]).clamp(-1.0, 1.0);
                     let gamma = cos_g.acos();
@@ -170,6 +194,16 @@ pub fn render(
                         let tint = [0.94, 0.96, 1.0];
                         for c in 0..3 {
                             col[c] = alpha * level * tint[c] + (1.0 - alpha) * col[c];
+                        }
+                    }
+                    if let Some(e) = &extra
+                        && e.spec.haze > 0.0
+                    {
+                        // Haze whitens toward a grey a little brighter than the pixel's brightest channel.
+                        let hw = e.spec.haze_weight(z);
+                        let white = (1.05 * col[0].max(col[1]).max(col[2])).min(250.0);
+                        for c in col.iter_mut() {
+                            *c += hw * (white - *c);
                         }
                     }
                     // Sun disk and glare, dimmed by cloud in front of the sun.
@@ -199,6 +233,17 @@ pub fn render(
                             class = TruthClass::Unknown;
                         }
                     }
+                    if let Some(e) = &extra {
+                        if let Some(c) = fixed {
+                            col = [c[0] as f64, c[1] as f64, c[2] as f64];
+                            class = TruthClass::Unknown;
+                        }
+                        if let Some(dirt) = &e.spec.dirt
+                            && e.map.dirt_alpha[y * w + x] as f64 >= dirt.unknown_from
+                        {
+                            class = TruthClass::Unknown;
+                        }
+                    }
                     if z < 70f64.to_radians() && class != TruthClass::Unknown {
                         sky70 += 1;
                         if class != TruthClass::Clear {
@@ -214,6 +259,9 @@ pub fn render(
                             *c += add;
                         }
                     }
+                if let Some(e) = &extra {
+                    e.apply(&mut col, x, y);
+                }
                 let i = (y * w + x) as u64;
                 for c in 0..3 {
                     let n = 1.2 * gaussian(hash64(noise_seed ^ (i * 3 + c as u64)), hash64(noise_seed.rotate_left(17) ^ (i * 3 + c as u64)));
@@ -237,5 +285,70 @@ pub fn render(
         rgb: image::RgbImage::from_raw(w as u32, h as u32, rgb).expect("buffer sized w*h*3"),
         truth: image::GrayImage::from_raw(w as u32, h as u32, truth).expect("buffer sized w*h"),
         cloud_fraction: if sky70 > 0 { cloudy as f64 / sky70 as f64 } else { 0.0 },
+    }
+}
+
+/// Where the sun is in the image, for bloom and smear.
+#[derive(Clone, Copy)]
+struct SunInImage {
+    /// Sun pixel (column, row).
+    px: (f64, f64),
+    /// Unit vector from the principal point outward through the sun (toward the horizon).
+    outward: (f64, f64),
+    /// Visibility of the sun through cloud (0–1).
+    vis: f64,
+    /// `L = (z_sun / 90°)²`.
+    low: f64,
+}
+
+/// The nuisances of one frame: the static map, the exposure gain and where the sun is.
+struct FrameNuisances<'a> {
+    spec: &'a Nuisances,
+    map: &'a NuisanceMap,
+    gain: f64,
+    sun: Option<SunInImage>,
+    width: usize,
+    height: usize,
+}
+
+impl<'a> FrameNuisances<'a> {
+    fn new(spec: &'a Nuisances, map: &'a NuisanceMap, cam: &Camera, inst: &Instant, sun_px: Option<(f64, f64)>, sun_vis: f64, height: usize) -> Self {
+        let sun = sun_px.filter(|_| inst.sun.apparent_zenith_rad < std::f64::consts::FRAC_PI_2).map(|(sx, sy)| {
+            let (ux, uy) = (sx - cam.cx_px, sy - cam.cy_px);
+            let l = ux.hypot(uy);
+            let u = if l > 1e-6 { (ux / l, uy / l) } else { (0.0, 0.0) };
+            let low = (inst.sun.apparent_zenith_rad / std::f64::consts::FRAC_PI_2).powi(2);
+            SunInImage { px: (sx, sy), outward: u, vis: sun_vis, low }
+        });
+        FrameNuisances { spec, map, gain: spec.gain_at(map, inst.t_s), sun, width: cam.width_px as usize, height }
+    }
+
+    /// Dirt, vignetting, exposure gain, then bloom and smear (sensor effects, after the optics).
+    #[inline]
+    fn apply(&self, col: &mut [f64; 3], x: usize, y: usize) {
+        let g = self.map.optics[y * self.width + x];
+        for c in 0..3 {
+            col[c] *= g[c] as f64 * self.gain;
+        }
+        if let (Some(b), Some(SunInImage { px: (sx, sy), outward: (ux, uy), vis, low })) = (&self.spec.bloom, self.sun) {
+            let s = self.map.scale;
+            let (dx, dy) = (x as f64 - sx, y as f64 - sy);
+            let (along, across) = (dx * ux + dy * uy, -dx * uy + dy * ux);
+            let r_across = b.halo_radius_px * s * (1.0 + 0.5 * low);
+            let r_along = if along > 0.0 { r_across * (1.0 + b.lean * low) } else { r_across };
+            let rho = ((along / r_along).powi(2) + (across / r_across).powi(2)).sqrt();
+            let mut add = 0.0;
+            if rho < 12.0 {
+                add += vis * b.halo_level * (0.5 + low) * (-rho).exp();
+            }
+            let w = b.smear_width_px * s;
+            if dx.abs() < 4.0 * w {
+                let fall = 0.3 + 0.7 * (-dy.abs() / (0.2 * self.height as f64)).exp();
+                add += vis * b.smear_level * (0.4 + low) * (-dx * dx / (2.0 * w * w)).exp() * fall;
+            }
+            for c in col.iter_mut() {
+                *c += add;
+            }
+        }
     }
 }

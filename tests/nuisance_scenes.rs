@@ -1,0 +1,236 @@
+//! The imperfect camera of the `nuisance-*` scenes (tilted, 88° lens that is not quite equisolid,
+//! sun bloom and smear, vignetting, dirt, haze, exposure drift, skyline): the camera comes only from
+//! `calibrate` on the rendered clear day, never from the truth.
+//!
+//! * `calibration_direction_error_by_zenith_band`: calibrate on `nuisance-clear-day` (frames through
+//!   JPEG, as written), then the angle
+//!   between true sky directions and where the fitted camera puts them, per zenith band.
+//!   Target: p95 ≤ [`TARGET_P95_DEG`] at zenith < 80°.
+//! * `broken_end_to_end_with_calibrated_camera`: `nuisance-broken` replayed with the calibrated camera
+//!   (and the obstruction mask from the clear day) in place of the true one; skill against smart
+//!   persistence and motion error.
+//!
+//! Shortfalls that are known are listed in [`KNOWN_SHORTFALLS`]: the test checks they still fall
+//! short (so the list is kept honest) and prints every figure (`--nocapture`).
+use std::sync::OnceLock;
+
+use chrono::{DateTime, Utc};
+use nephocast::calibrate::{DEFAULT_MIN_SUN_ELEVATION_DEG, Fit, calibrate, obstruction_mask};
+use nephocast::camera::Camera;
+use nephocast::config::CalibrationFile;
+use nephocast::replay::{ReplayOptions, replay};
+use nephocast::synth::render::{PixelRays, TruthClass};
+use nephocast::synth::{Scene, encode_jpeg, scene, write_sequence};
+use nephocast::verify::evaluate;
+
+/// Target of the calibration: 95th percentile of the direction error in every zenith band below 80°
+/// and over all of them \[°\].
+const TARGET_P95_DEG: f64 = 0.2;
+
+/// Loose bound that the calibration meets today (p95 at zenith < 80°; measured 0.40°) \[°\]: a
+/// regression guard, not a target.
+const LOOSE_P95_DEG: f64 = 1.0;
+
+/// Targets of the end-to-end run (as in `tests/pipeline.rs` for broken cloud).
+const TARGET_SKILL: f64 = 0.30;
+const TARGET_SPEED_ERR_MPS: f64 = 0.5;
+const TARGET_DIR_ERR_DEG: f64 = 5.0;
+
+/// Metrics that do not yet meet their target with this camera (figures with the calibration as of
+/// this test's introduction): the lens's θ⁷ term is beyond the polynomial fit's k1, k2 and the sun
+/// never goes below zenith 70° in the fitted detections, so the 60–80° band is extrapolated (p95
+/// 0.48°, all bands together 0.40°); with the calibrated camera the cloud speed is 0.96 m/s off
+/// (0.02 m/s with the true camera).
+const KNOWN_SHORTFALLS: &[&str] = &["calibration p95 zenith 60–80°", "calibration p95 zenith 0–80°", "motion"];
+
+fn check(metric: &str, ok: bool, figure: String) {
+    if KNOWN_SHORTFALLS.contains(&metric) {
+        assert!(!ok, "{metric} now meets its target ({figure}): remove it from KNOWN_SHORTFALLS");
+        eprintln!("  known shortfall: {metric}: {figure}");
+    } else {
+        assert!(ok, "{metric} misses its target: {figure}");
+    }
+}
+
+struct Calibrated {
+    truth: Camera,
+    fit: Fit,
+    detections: usize,
+    frames: Vec<(DateTime<Utc>, image::RgbImage)>,
+    observer: nephocast::sun::Observer,
+}
+
+/// The nuisance camera's clear day, rendered and calibrated once per test run.
+fn calibrated() -> &'static Calibrated {
+    static CELL: OnceLock<Calibrated> = OnceLock::new();
+    CELL.get_or_init(|| {
+        let t0 = std::time::Instant::now();
+        let s = Scene::new(scene("nuisance-clear-day").unwrap(), 1).unwrap();
+        let rays = PixelRays::new(&s.camera);
+        // Through JPEG at the scene's quality, as a user's frames arrive.
+        let q = s.spec.jpeg_quality;
+        let frames: Vec<_> = s
+            .frame_times()
+            .iter()
+            .enumerate()
+            .map(|(i, t)| (*t, image::load_from_memory(&encode_jpeg(&s.render_frame(&rays, i, t).rgb, q)).unwrap().to_rgb8()))
+            .collect();
+        let t1 = std::time::Instant::now();
+        let (fit, dets) = calibrate(&frames, &s.world.observer, 20, DEFAULT_MIN_SUN_ELEVATION_DEG).expect("calibration of the nuisance clear day");
+        eprintln!(
+            "nuisance-clear-day: {} frames rendered in {:.1} s, calibrated in {:.1} s: {} detections, model {}, residual RMS {:.2} px / {:.3}°; {:?}",
+            frames.len(),
+            (t1 - t0).as_secs_f64(),
+            t1.elapsed().as_secs_f64(),
+            dets.len(),
+            fit.camera.projection.name(),
+            fit.rms_px,
+            fit.rms_deg,
+            fit.warnings
+        );
+        Calibrated { truth: s.camera.clone(), fit, detections: dets.len(), frames, observer: s.world.observer }
+    })
+}
+
+/// Direction errors \[°\] of the fitted camera at sky directions (every 1° of zenith, every 2° of
+/// azimuth) with zenith in `[z0, z1)` that the true camera images.
+fn direction_errors(truth: &Camera, fit: &Camera, z0: f64, z1: f64) -> Vec<f64> {
+    let mut out = vec![];
+    let mut z = z0 + 0.5;
+    while z < z1 {
+        for ai in 0..180 {
+            let d = nephocast::sun::direction_enu(z.to_radians(), (ai as f64 * 2.0).to_radians());
+            let Some((x, y)) = truth.project_enu(d) else { continue };
+            let Some(e) = fit.unproject_enu(x, y) else {
+                out.push(f64::INFINITY);
+                continue;
+            };
+            out.push((d[0] * e[0] + d[1] * e[1] + d[2] * e[2]).clamp(-1.0, 1.0).acos().to_degrees());
+        }
+        z += 1.0;
+    }
+    out
+}
+
+fn stats(v: &mut [f64]) -> (f64, f64, f64) {
+    v.sort_by(f64::total_cmp);
+    let rms = (v.iter().map(|e| e * e).sum::<f64>() / v.len().max(1) as f64).sqrt();
+    let p95 = v[((v.len() as f64 * 0.95).ceil() as usize).clamp(1, v.len()) - 1];
+    (rms, p95, *v.last().unwrap())
+}
+
+#[test]
+fn calibration_direction_error_by_zenith_band() {
+    let c = calibrated();
+    assert!(c.detections >= 20, "{} detections", c.detections);
+    eprintln!("calibration of the nuisance camera (target p95 ≤ {TARGET_P95_DEG}° at zenith < 80°):");
+    let mut figures = vec![];
+    for (z0, z1) in [(0.0, 40.0), (40.0, 60.0), (60.0, 80.0), (0.0, 80.0)] {
+        let mut e = direction_errors(&c.truth, &c.fit.camera, z0, z1);
+        let (rms, p95, max) = stats(&mut e);
+        eprintln!("  zenith {z0:>2}–{z1:<2}°: RMS {rms:.3}°, p95 {p95:.3}°, max {max:.3}° ({} directions)", e.len());
+        figures.push((z0, z1, p95));
+    }
+    let all = figures.last().unwrap().2;
+    assert!(all <= LOOSE_P95_DEG, "p95 {all:.3}° at zenith < 80° is beyond even the loose bound {LOOSE_P95_DEG}°");
+    for (z0, z1, p95) in figures {
+        check(&format!("calibration p95 zenith {z0}–{z1}°"), p95 <= TARGET_P95_DEG, format!("p95 {p95:.3}° (target {TARGET_P95_DEG}°)"));
+    }
+}
+
+/// The nuisances are where the truth says: ground, skyline and dirt unknown; the 88° lens images
+/// no sky below zenith 90°; the scene is deterministic from its seed.
+#[test]
+fn nuisance_truth_marks_hidden_sky_unknown() {
+    for name in ["nuisance-broken", "nuisance-wide-broken"] {
+        let s = Scene::new(scene(name).unwrap(), 4).unwrap();
+        let rays = PixelRays::new(&s.camera);
+        let t = s.frame_times()[0];
+        let a = s.render_frame(&rays, 0, &t);
+        let b = s.render_frame(&rays, 0, &t);
+        assert!(a.rgb == b.rgb && a.truth == b.truth, "{name}: not deterministic");
+        let map = s.nuisance_map.as_ref().unwrap();
+        let (mut fixed, mut ground, mut dirt) = (0, 0, 0);
+        for (i, p) in a.truth.pixels().enumerate() {
+            if map.fixed[i].is_some() {
+                fixed += 1;
+                assert_eq!(p.0[0], TruthClass::Unknown as u8, "{name}: ground or skyline pixel {i} not unknown");
+            }
+            if let Some(d) = rays.dirs[i]
+                && d[2] <= 0.0
+            {
+                ground += 1;
+            }
+            if map.dirt_alpha[i] >= 0.2 {
+                dirt += 1;
+                assert_eq!(p.0[0], TruthClass::Unknown as u8, "{name}: dirty pixel {i} not unknown");
+            }
+        }
+        eprintln!("{name}: {fixed} ground/skyline pixels, {ground} below the horizon, {dirt} under dirt");
+        assert!(fixed > 500 && dirt > 50, "{name}");
+        if name.contains("wide") {
+            assert!(ground > 5000, "{name}: the 97° lens should show the ground ({ground} px)");
+        } else {
+            assert_eq!(ground, 0, "{name}: the 88° lens shows ground");
+        }
+    }
+}
+
+#[test]
+fn broken_end_to_end_with_calibrated_camera() {
+    let c = calibrated();
+    let d = tempfile::tempdir().unwrap();
+    let mut spec = scene("nuisance-broken").unwrap();
+    spec.duration_min = 30.0;
+    let cam_name = spec.camera.name.clone();
+    let s = Scene::new(spec, 3).unwrap();
+    let t0 = std::time::Instant::now();
+    write_sequence(&s, d.path(), false).unwrap();
+    // The calibrated camera and the obstruction mask of its clear day replace the true camera.
+    let circle = nephocast::segment::fit_image_circle(&c.frames[c.frames.len() / 2].1).unwrap();
+    let day: Vec<&image::RgbImage> = c
+        .frames
+        .iter()
+        .filter(|(t, _)| nephocast::sun::position(t, &c.observer).map(|p| p.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
+        .map(|(_, i)| i)
+        .collect();
+    let mask = obstruction_mask(&day, circle);
+    let cal_dir = d.path().join("calibration");
+    std::fs::write(cal_dir.join(format!("{cam_name}-mask.png")), nephocast::synth::encode_png_gray(&mask)).unwrap();
+    let mut cal = CalibrationFile::from_camera(&cam_name, &c.fit.camera);
+    cal.camera.obstruction_mask = Some(format!("{cam_name}-mask.png").into());
+    std::fs::write(cal_dir.join(format!("{cam_name}.toml")), toml::to_string(&cal).unwrap()).unwrap();
+    let out = d.path().join("out");
+    let opts = ReplayOptions {
+        site: d.path().join("site.toml"),
+        frames: d.path().join("frames"),
+        out: out.clone(),
+        measurements: Some(d.path().join("measurements.csv")),
+        overlays_every: 0,
+        progress: false,
+    };
+    let sum = replay(&opts).unwrap();
+    let e = evaluate(d.path(), &out).unwrap();
+    let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
+    let skills = [sk(5), sk(10), sk(15)];
+    eprintln!(
+        "nuisance-broken with the calibrated camera ({:.1} s): frames rejected {:?} | seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill vs smart persistence 5/10/15 min {:.3} {:.3} {:.3}",
+        t0.elapsed().as_secs_f64(),
+        sum.counters.rejected,
+        e.segmentation.accuracy,
+        e.segmentation.circumsolar_accuracy,
+        e.motion.speed_error_mps,
+        e.motion.direction_error_deg,
+        skills[0],
+        skills[1],
+        skills[2]
+    );
+    // Loose guards that hold today.
+    assert!(skills.iter().all(|s| s.is_finite() && *s > -0.5), "skill {skills:?}");
+    check("skill", skills.iter().all(|s| *s >= TARGET_SKILL), format!("5/10/15 min {skills:.3?} (target {TARGET_SKILL})"));
+    check(
+        "motion",
+        e.motion.speed_error_mps <= TARGET_SPEED_ERR_MPS && e.motion.direction_error_deg <= TARGET_DIR_ERR_DEG,
+        format!("{:.2} m/s, {:.1}° (target {TARGET_SPEED_ERR_MPS} m/s, {TARGET_DIR_ERR_DEG}°)", e.motion.speed_error_mps, e.motion.direction_error_deg),
+    );
+}
