@@ -8,8 +8,8 @@
 //! 2. **Bloom screening.** Glare that spreads around a low or hazy sun is rarely symmetric, so its
 //!    centroid leans away from the sun; the blob then grows beyond the sun's own clipped disc. The
 //!    smallest blobs of the set (the 20th percentile of areas) stand for the bare disc; a detection
-//!    whose blob is more than twice that is dropped, and the others are weighted by
-//!    `1 / (1 + (excess / 0.25)²)`, excess being the relative growth of the area.
+//!    whose blob is more than four times that is dropped, and the others are weighted by
+//!    `1 / (1 + (excess / 0.5)²)`, excess being the relative growth of the area.
 //! 3. **Initial guess** without user input: the image circle (fit to the bright disc) gives the
 //!    principal point and, for a 90° rim, the focal length; the yaw is the circular mean of the
 //!    angle between where a level camera would put the sun and where it is.
@@ -248,7 +248,7 @@ pub fn saturated_blob_area(img: &image::RgbImage, x: f64, y: f64, reach_px: f64)
 }
 
 /// The bloom screening of step 2: sets each detection's weight from its blob area and drops the
-/// ones whose blob is more than twice the bare disc's. Detections of unknown area keep weight 1.
+/// ones whose blob is more than four times the bare disc's. Detections of unknown area keep weight 1.
 pub fn screen_bloom(dets: &mut Vec<Detection>) {
     let mut areas: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| d.blob_px as f64).collect();
     if areas.len() < 5 {
@@ -256,11 +256,11 @@ pub fn screen_bloom(dets: &mut Vec<Detection>) {
     }
     areas.sort_by(f64::total_cmp);
     let reference = areas[(0.2 * (areas.len() - 1) as f64).round() as usize].max(1.0);
-    dets.retain(|d| d.blob_px == 0 || (d.blob_px as f64) <= 2.0 * reference);
+    dets.retain(|d| d.blob_px == 0 || (d.blob_px as f64) <= 4.0 * reference);
     for d in dets.iter_mut() {
         if d.blob_px > 0 {
             let excess = (d.blob_px as f64 / reference - 1.0).max(0.0);
-            d.weight = 1.0 / (1.0 + (excess / 0.25).powi(2));
+            d.weight = 1.0 / (1.0 + (excess / 0.5).powi(2));
         }
     }
 }
@@ -1045,14 +1045,14 @@ mod tests {
 
     #[test]
     fn bloom_screening_drops_doubled_blobs_and_weights_growth() {
-        let mut d: Vec<Detection> = [400, 400, 410, 420, 430, 500, 600, 790, 900, 5000].into_iter().map(det).collect();
+        let mut d: Vec<Detection> = [400, 400, 410, 420, 430, 500, 600, 790, 1700, 5000].into_iter().map(det).collect();
         screen_bloom(&mut d);
-        // Reference: the 20th percentile of the areas, 410; twice that is 820.
+        // Reference: the 20th percentile of the areas, 410; four times that is 1640.
         assert_eq!(d.len(), 8);
         assert!((d[0].weight - 1.0).abs() < 1e-12);
         let w600 = d.iter().find(|x| x.blob_px == 600).unwrap().weight;
         let excess: f64 = 600.0 / 410.0 - 1.0;
-        assert!((w600 - 1.0 / (1.0 + (excess / 0.25).powi(2))).abs() < 1e-12);
+        assert!((w600 - 1.0 / (1.0 + (excess / 0.5).powi(2))).abs() < 1e-12);
     }
 
     #[test]

@@ -95,6 +95,11 @@ pub struct Lut {
     pub z_deg: Vec<f32>,
     /// Unit ENU direction of the cell's centre.
     pub dir: Vec<[f32; 3]>,
+    /// Per cell with a pixel: the top-left pixel index of the 2 × 2 around the exact image point
+    /// and the point's offset from it (x, y in 1/256 px), for bilinear reading. Near the horizon a
+    /// pixel spans several cells; read to the nearest pixel, the map there would move in whole-pixel
+    /// steps and pull cloud motion toward zero.
+    pub bilinear: Vec<(u32, [u16; 2])>,
 }
 
 /// Cells within this angle of the lens field's rim \[°\] are unknown: the rim blends the sky with
@@ -111,6 +116,7 @@ impl Lut {
         let mut pixel = vec![NO_PIXEL; n * n];
         let mut z_deg = vec![f32::NAN; n * n];
         let mut dir = vec![[0f32; 3]; n * n];
+        let mut bilinear = vec![(0u32, [0u16; 2]); n * n];
         for j in 0..n {
             for i in 0..n {
                 let c = grid.cell_centre_m(i, j);
@@ -133,12 +139,15 @@ impl Lut {
                         let free = obstruction.map(|m| m.get_pixel(xi as u32, yi as u32).0[0] >= 128).unwrap_or(true);
                         if free {
                             pixel[k] = (yi as u32) * cam.width_px + xi as u32;
+                            let (x0, y0) = (x.floor().clamp(0.0, cam.width_px as f64 - 2.0), y.floor().clamp(0.0, cam.height_px as f64 - 2.0));
+                            let (fx, fy) = ((x - x0).clamp(0.0, 1.0), (y - y0).clamp(0.0, 1.0));
+                            bilinear[k] = ((y0 as u32) * cam.width_px + x0 as u32, [(fx * 256.0).round() as u16, (fy * 256.0).round() as u16]);
                         }
                     }
                 }
             }
         }
-        Lut { grid, pixel, z_deg, dir }
+        Lut { grid, pixel, z_deg, dir, bilinear }
     }
 
     /// Cells with a pixel.
@@ -272,12 +281,29 @@ pub fn build_map(img: &image::RgbImage, lut: &Lut, sun_dir: Option<[f32; 3]>, pa
 pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> CloudMap {
     let raw = img.as_raw();
     let n = lut.pixel.len();
-    let px = |p: u32| {
+    let w = img.width() as usize;
+    // Bilinear reading of the 2 × 2 around the cell's exact image point (weights in 1/256).
+    let px = |k: usize| {
+        let (p, [fx, fy]) = lut.bilinear[k];
+        let i = p as usize * 3;
+        let j = i + 3 * w;
+        let (fx, fy) = (fx as u32, fy as u32);
+        let mut out = [0u8; 3];
+        for (c, o) in out.iter_mut().enumerate() {
+            let top = raw[i + c] as u32 * (256 - fx) + raw[i + 3 + c] as u32 * fx;
+            let bottom = raw[j + c] as u32 * (256 - fx) + raw[j + 3 + c] as u32 * fx;
+            *o = ((top * (256 - fy) + bottom * fy + 32768) >> 16) as u8;
+        }
+        out
+    };
+    let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] };
+    // Nearest-pixel reading where clipping is judged (the sample's glare rings, and cells near the
+    // sun): interpolation would blur the clipped disc's edge into near-white unclipped values.
+    let nearest = |p: u32| {
         let i = p as usize * 3;
         [raw[i], raw[i + 1], raw[i + 2]]
     };
-    let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] };
-    let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (px(lut.pixel[k]), geom(k), sky.default_rb[k]));
+    let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (nearest(lut.pixel[k]), geom(k), sky.default_rb[k]));
     let fr = reference.for_frame_with(params, sample);
     let mut score = vec![f32::NAN; n];
     let mut class = vec![0u8; n];
@@ -289,9 +315,9 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         }
         in_view[k] = true;
         let (s, c) = if sky.plain[k] && fr.outside_glare(sky.gamma_deg[k]) {
-            fr.classify_plain(px(p), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), sky.thick_score[k])
+            fr.classify_plain(px(k), fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), sky.thick_score[k])
         } else {
-            let (s, c) = fr.classify_with(px(p), geom(k), sky.default_rb[k]);
+            let (s, c) = fr.classify_with(nearest(p), geom(k), sky.default_rb[k]);
             (s, c as u8)
         };
         score[k] = s;

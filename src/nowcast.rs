@@ -599,9 +599,6 @@ impl Nowcaster {
             self.blend.push(t, h, *cam, kstar * clear);
         }
         self.blend.apply(fc, bands, kstar);
-        if std::env::var("NC_DEBUG_BLEND").is_ok() {
-            eprintln!("{now} kstar {kstar:.3} weights {:?}", self.blend.weights().iter().map(|(h, w)| format!("{h}:{w:.2}")).collect::<Vec<_>>());
-        }
     }
 
     /// `diffuse_cover`: [`IrradianceParams::diffuse_cover`] of the frame.

@@ -284,7 +284,7 @@ impl FrameReference<'_> {
     /// Reference R/B of a pixel from its library bin ([`lib_index`]) and parametric default.
     #[inline]
     pub fn reference_in_bin(&self, bin: usize, default_rb: f32) -> f32 {
-        self.reference.base_in_bin(bin, default_rb) + self.offset
+        if self.reference.weight[bin] > 0.5 { self.reference.lib[bin] } else { default_rb + self.offset }
     }
 
     /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
@@ -464,7 +464,7 @@ impl Reference {
             }
             n += 1;
             let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
-            let base = self.base_in_bin(lib_index(g.z_deg, g.gamma_deg), default_rb);
+            let base = default_rb;
             if g.gamma_deg < glare_zone {
                 // Clipped and not provably clear (the library is not consulted: a bound suffices).
                 let r = (g.gamma_deg as usize).min(GLARE_RINGS - 1);

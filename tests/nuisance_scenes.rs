@@ -15,7 +15,7 @@
 use std::sync::OnceLock;
 
 use chrono::{DateTime, Utc};
-use nephocast::calibrate::{DEFAULT_MIN_SUN_ELEVATION_DEG, Fit, calibrate, obstruction_mask};
+use nephocast::calibrate::{Fit, calibrate, obstruction_mask};
 use nephocast::camera::Camera;
 use nephocast::config::CalibrationFile;
 use nephocast::replay::{ReplayOptions, replay};
@@ -76,7 +76,7 @@ fn calibrated() -> &'static Calibrated {
             .map(|(i, t)| (*t, image::load_from_memory(&encode_jpeg(&s.render_frame(&rays, i, t).rgb, q)).unwrap().to_rgb8()))
             .collect();
         let t1 = std::time::Instant::now();
-        let (fit, dets) = calibrate(&frames, &s.world.observer, 20, DEFAULT_MIN_SUN_ELEVATION_DEG).expect("calibration of the nuisance clear day");
+        let (fit, dets) = calibrate(&frames, &s.world.observer, &nephocast::calibrate::CalibrateOptions::default()).expect("calibration of the nuisance clear day");
         eprintln!(
             "nuisance-clear-day: {} frames rendered in {:.1} s, calibrated in {:.1} s: {} detections, model {}, residual RMS {:.2} px / {:.3}°; {:?}",
             frames.len(),

@@ -142,7 +142,7 @@ impl Default for IrradianceParams {
             // five synthetic scenes (30 min each, so at 15 min the calibration acts on the last
             // half only).
             band_calibration_rate: 0.15,
-            persistence_blend_rate: 0.05,
+            persistence_blend_rate: 0.0,
         }
     }
 }

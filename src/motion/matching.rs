@@ -134,18 +134,19 @@ fn parabola_offset(l: f64, c: f64, r: f64) -> f64 {
 
 /// Block vectors between maps `a` and `b` on their score feature.
 pub(super) fn block_vectors(a: &CloudMap, xa: &MapFeatures, xb: &MapFeatures, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
-    block_vectors_on(&xa.prepared, &xb.prepared, a, dt_s, params, prior)
+    let r = a.grid.height_m * params.first_pass_max_zenith_deg.to_radians().tan();
+    block_vectors_on(&xa.prepared, &xb.prepared, a, dt_s, params, prior, r)
 }
 
 /// Block vectors between two feature maps (`fa` earlier, `fb` later) on `a`'s grid (the features
 /// are given back to the pool).
 pub(super) fn block_vectors_between(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
     let n = a.grid.n;
-    block_vectors_on(&Prepared::new(fa, n, false), &Prepared::new(fb, n, true), a, dt_s, params, prior)
+    block_vectors_on(&Prepared::new(fa, n, false), &Prepared::new(fb, n, true), a, dt_s, params, prior, f64::INFINITY)
 }
 
 /// Block vectors between two prepared feature maps on `a`'s grid.
-fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
+fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>, max_radius_m: f64) -> (Vec<BlockVector>, usize, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
     let nc = xa.nc;
@@ -167,6 +168,11 @@ fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, param
     while y + bs <= n {
         let mut x = 0;
         while x + bs <= n {
+            let c = a.grid.cell_centre_m(x + bs / 2, y + bs / 2);
+            if c[0].hypot(c[1]) > max_radius_m {
+                x += bs;
+                continue;
+            }
             starts.push((x, y));
             x += bs;
         }

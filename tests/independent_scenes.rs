@@ -1,0 +1,148 @@
+//! The user's path on scenes from an independent renderer (not the project's own): `calibrate` on
+//! a camera's clear day, then `replay` of its cloudy sequence and of the clear day, scored by the
+//! scenes' own `score.py`, through the committed harness `tools/independent_scenes.py`.
+//!
+//! Data: `$NEPHOCAST_DATASETS/independent-scenes` (set by `.ci/run`; see that folder's README: the
+//! scenes come with their truth and scorer and are not the project's to copy). The camera always
+//! comes from `calibrate`; the truth camera is read only by the scorer. These scenes are a check,
+//! not a tuning target: other cameras and scenes of that renderer are held back.
+//!
+//! Targets are the robustness issue's. A target not met yet is listed in [`KNOWN_SHORTFALLS`]
+//! with its figure printed; the test fails when a listed shortfall starts meeting its target (so
+//! the list stays true) and when an unlisted target is missed.
+use std::path::PathBuf;
+use std::process::Command;
+
+use serde_json::Value;
+
+/// Direction error p95 at zenith < 80° \[°\] (calibration from one clear day).
+const TARGET_CAL_P95_DEG: f64 = 0.2;
+/// Beyond this the calibration has regressed, shortfall or not \[°\].
+const LOOSE_CAL_P95_DEG: f64 = 0.6;
+/// Mean vector error of the filtered cloud motion, one layer \[m/s\].
+const TARGET_MOTION_MPS: f64 = 0.5;
+/// Pooled 5–15 min skill against smart persistence, as a share of the perfect-perception yardstick.
+const TARGET_YARDSTICK_SHARE: f64 = 0.8;
+/// Clear-day RMSE at every horizon \[W/m²\].
+const TARGET_CLEAR_RMSE: f64 = 20.0;
+/// Largest |MBE| over the horizons \[W/m²\].
+const TARGET_MAX_MBE: f64 = 50.0;
+
+/// Targets not met yet (metric names as printed).
+const KNOWN_SHORTFALLS: &[&str] = &[
+    "camera1 calibration p95",
+    "camera2 calibration p95",
+    "camera1 largest |MBE|",
+    "camera2 largest |MBE|",
+    "camera2 pooled skill",
+    "camera2 1-min RMSE below smart persistence",
+    "camera1 motion",
+    "camera2 motion",
+];
+
+fn check(metric: &str, ok: bool, figure: String, failures: &mut Vec<String>) {
+    eprintln!("{metric}: {figure} -> {}", if ok { "meets" } else { "misses" });
+    if KNOWN_SHORTFALLS.contains(&metric) {
+        if ok {
+            failures.push(format!("{metric} now meets its target ({figure}): remove it from KNOWN_SHORTFALLS"));
+        }
+    } else if !ok {
+        failures.push(format!("{metric}: {figure}"));
+    }
+}
+
+fn num(v: &Value, path: &[&str]) -> f64 {
+    let mut x = v;
+    for p in path {
+        x = &x[*p];
+    }
+    x.as_f64().unwrap_or(f64::NAN)
+}
+
+#[test]
+fn calibrate_then_replay_on_independent_scenes() {
+    let Some(root) = std::env::var_os("NEPHOCAST_DATASETS").map(PathBuf::from) else {
+        eprintln!("skipped: NEPHOCAST_DATASETS is not set, so the independent scenes are absent (.ci/run sets it)");
+        return;
+    };
+    let scenes = root.join("independent-scenes");
+    if !scenes.join("score.py").exists() {
+        eprintln!("skipped: {} has no independent scenes", scenes.display());
+        return;
+    }
+    let py_ok = Command::new("python3").args(["-c", "import numpy, pandas, cv2, pvlib"]).status().map(|s| s.success()).unwrap_or(false);
+    if !py_ok {
+        eprintln!("skipped: python3 with numpy, pandas, opencv-python-headless and pvlib (the scenes' scorer) is absent (.ci/run installs them)");
+        return;
+    }
+    let work = tempfile::tempdir().unwrap();
+    let json = work.path().join("result.json");
+    let out = Command::new("python3")
+        .arg(concat!(env!("CARGO_MANIFEST_DIR"), "/tools/independent_scenes.py"))
+        .args(["--bin", env!("CARGO_BIN_EXE_nephocast"), "--camera-from", "calibrate"])
+        .arg("--scenes")
+        .arg(&scenes)
+        .arg("--work")
+        .arg(work.path().join("w"))
+        .arg("--json")
+        .arg(&json)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "harness failed:\n{}\n{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    // Python writes NaN and Infinity, which JSON has not: read them as null (NaN below).
+    let text = std::fs::read_to_string(&json).unwrap().replace("-Infinity", "null").replace("Infinity", "null").replace("NaN", "null");
+    let r: Value = serde_json::from_str(&text).unwrap();
+    let mut failures = vec![];
+    for c in r["cameras"].as_array().unwrap() {
+        let cam = c["camera"].as_str().unwrap();
+        let cal = &c["calibration"];
+        assert_eq!(cal["exit_code"].as_i64(), Some(0), "{cam}: calibrate failed: {cal}");
+        let f = num(cal, &["fields", "f_px_per_rad"]);
+        assert!(f > 0.0, "{cam}: calibrate wrote a focal length of {f}");
+        // Calibration against the true camera (the scorer's view).
+        let p95 = num(cal, &["error", "deg_p95_z_lt_80"]);
+        assert!(p95 <= LOOSE_CAL_P95_DEG, "{cam}: calibration p95 {p95:.3}° beyond the loose bound {LOOSE_CAL_P95_DEG}°");
+        check(&format!("{cam} calibration p95"), p95 <= TARGET_CAL_P95_DEG, format!("{p95:.3}° at zenith < 80° (target {TARGET_CAL_P95_DEG}°)"), &mut failures);
+        // The stated bound covers the true error in every band it states.
+        let bounds: Vec<[f64; 3]> = cal["fit"]["direction_bound_deg"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|b| {
+                let v: Vec<f64> = b.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect();
+                [v[0], v[1], v[2]]
+            })
+            .collect();
+        for band in cal["error"]["bands"].as_array().unwrap() {
+            let name = band["band"].as_str().unwrap();
+            let (lo, hi): (f64, f64) = match name.split_once('-') {
+                Some((a, b)) => (a.parse().unwrap(), b.parse().unwrap()),
+                None => (0.0, name.trim_start_matches('<').parse().unwrap()),
+            };
+            let stated = bounds.iter().filter(|b| b[0] < hi && b[1] > lo).map(|b| b[2]).fold(0.0, f64::max);
+            let truth = band["deg_p95"].as_f64().unwrap_or(f64::NAN);
+            check(&format!("{cam} bound covers the error at zenith {name}"), truth <= stated, format!("true p95 {truth:.3}°, stated bound {stated:.3}°"), &mut failures);
+        }
+        let rc = &c["replay_cloudy"];
+        assert_eq!(rc["exit_code"].as_i64(), Some(0), "{cam}: replay failed");
+        let mv = num(rc, &["motion_summary", "mean_vector_error_ms"]);
+        check(&format!("{cam} motion"), mv <= TARGET_MOTION_MPS, format!("mean vector error {mv:.2} m/s (target {TARGET_MOTION_MPS})"), &mut failures);
+        let fs = &rc["forecast_summary"];
+        let pooled = num(fs, &["skill_pooled_5_15"]);
+        let yard = num(&r, &["yardsticks", c["cloudy_scene"].as_str().unwrap(), "pooled"]);
+        check(
+            &format!("{cam} pooled skill"),
+            pooled >= TARGET_YARDSTICK_SHARE * yard,
+            format!("5–15 min {pooled:.3} against {TARGET_YARDSTICK_SHARE} × yardstick {yard:.2} = {:.3}", TARGET_YARDSTICK_SHARE * yard),
+            &mut failures,
+        );
+        let (r1, sp1) = (num(fs, &["rmse_1"]), num(fs, &["rmse_sp_1"]));
+        check(&format!("{cam} 1-min RMSE below smart persistence"), r1 < sp1, format!("{r1:.1} against {sp1:.1} W/m²"), &mut failures);
+        let mbe = num(fs, &["max_abs_mbe"]);
+        check(&format!("{cam} largest |MBE|"), mbe <= TARGET_MAX_MBE, format!("{mbe:.1} W/m² (target {TARGET_MAX_MBE})"), &mut failures);
+        let cs = &c["replay_clear"]["forecast_summary"];
+        let clear = ["rmse_1", "rmse_5", "rmse_10", "rmse_15"].iter().map(|k| num(cs, &[k])).fold(0.0, f64::max);
+        check(&format!("{cam} clear-day RMSE"), clear <= TARGET_CLEAR_RMSE, format!("largest over 1/5/10/15 min {clear:.1} W/m² (target {TARGET_CLEAR_RMSE})"), &mut failures);
+    }
+    assert!(failures.is_empty(), "{failures:#?}");
+}
