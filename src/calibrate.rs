@@ -10,7 +10,8 @@
 //!    smallest blobs of the set (the 20th percentile of areas) stand for the bare disc; a detection
 //!    whose blob is more than four times that is dropped, and the others are weighted by
 //!    `1 / (1 + (excess / 0.5)²)`, excess being the relative growth of the area.
-//! 3. **Initial guess** without user input: the image circle (fit to the bright disc) gives the
+//! 3. **Initial guess** without user input: the image circle (fit to the lens edge, see
+//!    [`refine_image_circle`]) gives the
 //!    principal point and, for a 90° rim, the focal length; the yaw is the circular mean of the
 //!    angle between where a level camera would put the sun and where it is.
 //! 4. **Fit** by Levenberg–Marquardt (the `levenberg-marquardt` crate) of principal point, focal
@@ -588,6 +589,71 @@ fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<ImageCircle>) ->
     }
 }
 
+/// Refine an image circle from the lens edge: along 360 rays from the rough centre, the outermost
+/// radius where any channel is still above a dark level (12), with the next 3 px at or below it; a
+/// least-squares circle (Kåsa 1976) through those edge points, refitted without points more than
+/// 2 px off. The rough circle (the area of pixels above 40) is biased where a dark ground or a
+/// vignetted rim lies inside the lens field; the edge is not. `None` with too few edge points
+/// (a circle cut by the frame on most sides).
+pub fn refine_image_circle(img: &image::RgbImage, rough: ImageCircle) -> Option<ImageCircle> {
+    let (w, h) = img.dimensions();
+    let level = |x: f64, y: f64| -> Option<u8> {
+        let (xi, yi) = (x.round() as i64, y.round() as i64);
+        (xi >= 0 && yi >= 0 && xi < w as i64 && yi < h as i64).then(|| *img.get_pixel(xi as u32, yi as u32).0.iter().max().unwrap_or(&0))
+    };
+    const DARK: u8 = 12;
+    let mut pts = vec![];
+    for k in 0..360 {
+        let a = (k as f64).to_radians();
+        let (dx, dy) = (a.cos(), a.sin());
+        let mut r = 1.4 * rough.radius_px;
+        let mut edge = None;
+        let mut cut = false;
+        while r > 0.6 * rough.radius_px {
+            let (x, y) = (rough.cx_px + r * dx, rough.cy_px + r * dy);
+            match level(x, y) {
+                None => {}
+                Some(v) if v > DARK => {
+                    // The first lit pixel from outside: the edge, unless the frame cuts the circle.
+                    let beyond = (1..=3).all(|d| level(x + d as f64 * dx, y + d as f64 * dy).map(|v| v <= DARK).unwrap_or(false));
+                    if beyond {
+                        edge = Some((x + 0.5 * dx, y + 0.5 * dy));
+                    } else {
+                        cut = true;
+                    }
+                    break;
+                }
+                Some(_) => {}
+            }
+            r -= 0.5;
+        }
+        if let (Some(p), false) = (edge, cut) {
+            pts.push(p);
+        }
+    }
+    let fit = |pts: &[(f64, f64)]| -> Option<ImageCircle> {
+        if pts.len() < 60 {
+            return None;
+        }
+        // Kåsa: x² + y² + D x + E y + F = 0, linear least squares.
+        let mut a = DMatrix::zeros(pts.len(), 3);
+        let mut b = DVector::zeros(pts.len());
+        for (i, (x, y)) in pts.iter().enumerate() {
+            a[(i, 0)] = *x;
+            a[(i, 1)] = *y;
+            a[(i, 2)] = 1.0;
+            b[i] = -(x * x + y * y);
+        }
+        let sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
+        let (cx, cy) = (-sol[0] / 2.0, -sol[1] / 2.0);
+        let r2 = cx * cx + cy * cy - sol[2];
+        (r2 > 0.0).then(|| ImageCircle { cx_px: cx, cy_px: cy, radius_px: r2.sqrt() })
+    };
+    let first = fit(&pts)?;
+    let kept: Vec<(f64, f64)> = pts.into_iter().filter(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() <= 2.0).collect();
+    fit(&kept)
+}
+
 /// Initial camera from the image circle and the first detections.
 pub fn initial_camera(circle: ImageCircle, size: (u32, u32), dets: &[Detection]) -> Camera {
     let f = circle.radius_px / std::f64::consts::FRAC_PI_2;
@@ -729,7 +795,8 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     }
     // The image circle: the median of the daytime frames' fits (robust to a frame with a bright
     // rim or a dark one).
-    let circles: Vec<ImageCircle> = frames.iter().zip(&day).filter(|(_, d)| **d).filter_map(|((_, img), _)| fit_image_circle(img)).collect();
+    let circles: Vec<ImageCircle> =
+        frames.iter().zip(&day).filter(|(_, d)| **d).filter_map(|((_, img), _)| fit_image_circle(img).map(|c| refine_image_circle(img, c).unwrap_or(c))).collect();
     if circles.is_empty() {
         return Err(CalibrationError::NoCircle);
     }
