@@ -29,6 +29,7 @@ fn setup() -> (Scene, Site, Vec<Frame>) {
         calibration: CalibrationFile::from_camera(&s.spec.camera.name, &s.camera),
         calibration_path: "bench/calibration.toml".into(),
         obstruction: None,
+        clear_reference: None,
         cbh_csv: None,
     };
     (s, site, frames)
