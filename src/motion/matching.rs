@@ -304,7 +304,7 @@ fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, param
                 }
             }
             let thick = n_thick as f64 / n_cloud.max(1) as f64;
-            Some(BlockVector { centre_m: c, v_mps, peak: fb_best.0, mean_score: mean, thick_share: thick })
+            Some(BlockVector { centre_m: c, v_mps, peak: fb_best.0, mean_score: mean, thick_share: thick, weight: super::block_weight(c[0].hypot(c[1]), a.grid.height_m) })
         })
         .collect();
     (vectors, tried, static_blocks.into_inner())
