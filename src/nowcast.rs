@@ -152,6 +152,8 @@ pub struct Counters {
 #[derive(Debug, Clone, Default)]
 struct Tuner {
     rows: std::collections::VecDeque<([f64; 4], f64)>,
+    /// Time of each row.
+    times: std::collections::VecDeque<DateTime<Utc>>,
 }
 
 impl Tuner {
@@ -159,10 +161,16 @@ impl Tuner {
     const PRIOR_WEIGHT: f64 = 4.0;
     const IRLS_ITERATIONS: usize = 6;
 
-    fn push(&mut self, x: [f64; 4], y: f64) {
+    fn push(&mut self, t: DateTime<Utc>, x: [f64; 4], y: f64, max_age_s: f64) {
         self.rows.push_back((x, y));
-        if self.rows.len() > Self::WINDOW {
+        self.times.push_back(t);
+        // At most WINDOW rows, none older than `max_age_s` (an overcast that thins must be
+        // followed), but never fewer than the 20 a solve needs.
+        while self.rows.len() > Self::WINDOW
+            || (self.rows.len() > 20 && self.times.front().map(|t0| (t - *t0).num_milliseconds() as f64 / 1000.0 > max_age_s).unwrap_or(false))
+        {
             self.rows.pop_front();
+            self.times.pop_front();
         }
     }
 
@@ -656,8 +664,9 @@ impl Nowcaster {
             let x = [beam * share[0] / k, beam * share[1] / k, beam * share[2] / k, if diffuse_cover.is_nan() { 0.0 } else { diffuse_cover }];
             rows.push((x, (y - clear.dhi_wm2) / clear.ghi_wm2));
         }
+        let max_age_s = self.site.file.irradiance.tune_window_s;
         for (x, y) in rows {
-            self.tuner.push(x, y);
+            self.tuner.push(*t, x, y, max_age_s);
         }
         if let Some(p) = self.tuner.solve(&self.site.file.irradiance) {
             self.irradiance = p;
@@ -693,7 +702,7 @@ mod tests {
             if i % 3 == 2 && i % 4 == 0 {
                 y = beam * truth[0] + cover * truth[3];
             }
-            t.push(x, y);
+            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, y, 1e9);
         }
         let robust = t.solve(&IrradianceParams { tune_robust_scale: 0.05, ..prior }).unwrap();
         let plain = t.solve(&IrradianceParams { tune_robust_scale: 0.0, ..prior }).unwrap();
