@@ -356,13 +356,6 @@ impl FrameReference<'_> {
 }
 
 impl Reference {
-    /// The reference before the frame's offset: the library where its bin holds data, else the
-    /// parametric default.
-    #[inline]
-    pub fn base_in_bin(&self, bin: usize, default_rb: f32) -> f32 {
-        if self.weight[bin] > 0.5 { self.lib[bin] } else { default_rb }
-    }
-
     /// The library as CSV: one row per bin with data (`zenith_from_deg,gamma_from_deg,rb,weight`).
     pub fn to_csv(&self) -> String {
         let mut out = String::from("zenith_from_deg,gamma_from_deg,rb,weight\n");
@@ -464,7 +457,6 @@ impl Reference {
             }
             n += 1;
             let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
-            let base = default_rb;
             if g.gamma_deg < glare_zone {
                 // Clipped and not provably clear (the library is not consulted: a bound suffices).
                 let r = (g.gamma_deg as usize).min(GLARE_RINGS - 1);
@@ -472,7 +464,7 @@ impl Reference {
                 let clear_bound = default_rb + params.thin_score as f32 * (params.cloud_rb as f32 - default_rb).max(0.03);
                 ring_clipped[r] += (rgb[2] >= params.saturation_level && rb >= clear_bound) as u32;
             }
-            let dd = rb - base;
+            let dd = rb - default_rb;
             if dd < params.offset_band as f32 {
                 d.push(dd);
             }

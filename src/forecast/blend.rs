@@ -102,11 +102,6 @@ impl PersistenceBlend {
             }
         }
     }
-
-    /// Camera weights per verified horizon, for reporting.
-    pub fn weights(&self) -> Vec<(u32, f64)> {
-        self.mse.keys().map(|h| (*h, self.camera_weight(*h))).collect()
-    }
 }
 
 #[cfg(test)]

@@ -223,7 +223,9 @@ impl MapFeatures {
         let n = m.grid.n;
         let mut feature = score_feature(m);
         let r_max = m.grid.height_m * max_zenith_deg.to_radians().tan();
-        for j in 0..n {
+        // Nothing to blank when the limit lies beyond the grid's corners.
+        let corner_m = std::f64::consts::SQRT_2 * m.grid.cell_m * n as f64 / 2.0;
+        for j in 0..if r_max >= corner_m { 0 } else { n } {
             for i in 0..n {
                 let c = m.grid.cell_centre_m(i, j);
                 if c[0].hypot(c[1]) > r_max {

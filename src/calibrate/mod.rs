@@ -57,7 +57,14 @@ use nalgebra::{DMatrix, DVector, Dyn, Owned};
 
 use crate::camera::{Camera, Orientation, Projection};
 use crate::segment::{ImageCircle, fit_image_circle};
-use crate::sun::{Observer, direction_enu, position, zenith_azimuth_of};
+use crate::sun::{Observer, direction_enu, position};
+
+mod bound;
+mod detect;
+mod outputs;
+use bound::{bound_table, coverage_of};
+pub use detect::{detect_sun, refine_image_circle, saturated_blob_area, screen_bloom};
+pub use outputs::{clear_sky_reference, detections_csv, obstruction_mask, residual_plot};
 
 /// One sun detection paired with the sun's direction.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -179,92 +186,6 @@ pub struct FamilyScore {
     pub fit_rms_px: f64,
 }
 
-/// Find the sun disk in a frame. `radius_px` is the image circle's radius.
-/// Returns (column, row, pixels used for the centroid).
-pub fn detect_sun(img: &image::RgbImage, radius_px: f64) -> Option<(f64, f64, usize)> {
-    let (cx, cy, n) = crate::segment::find_sun_blob(img, 250, 3, 0.05 * radius_px)?;
-    let r = 0.05 * radius_px;
-    // Saturated pixels far from the sun (other than its blooming column) make the detection
-    // ambiguous.
-    let elsewhere = img
-        .enumerate_pixels()
-        .filter(|(x, y, p)| {
-            p.0.iter().all(|c| *c >= 250) && (*x as f64 - cx).abs() > 2.0 && ((*x as f64 - cx).powi(2) + (*y as f64 - cy).powi(2)) > 4.0 * r * r
-        })
-        .count();
-    if n < 3 || (n as f64) > 0.02 * radius_px * radius_px || elsewhere as f64 > 0.25 * n as f64 {
-        return None;
-    }
-    // Centroid over the rows at least 3 px wide within the neighbourhood (a blooming streak is
-    // one or two pixels wide).
-    let (w, h) = img.dimensions();
-    let rr = 2.0 * r;
-    let (y0, y1) = (((cy - rr).floor().max(0.0)) as u32, ((cy + rr).ceil() as u32).min(h - 1));
-    let (x0, x1) = (((cx - rr).floor().max(0.0)) as u32, ((cx + rr).ceil() as u32).min(w - 1));
-    let (mut sx, mut sy, mut k) = (0.0, 0.0, 0usize);
-    for y in y0..=y1 {
-        let row: Vec<u32> = (x0..=x1).filter(|&x| img.get_pixel(x, y).0.iter().all(|c| *c >= 250)).collect();
-        if row.len() >= 3 {
-            for x in &row {
-                sx += *x as f64;
-                sy += y as f64;
-                k += 1;
-            }
-        }
-    }
-    (k >= 3).then(|| (sx / k as f64, sy / k as f64, k))
-}
-
-/// Area \[px\] of the 4-connected saturated blob (all channels ≥ 250) nearest to (x, y), searched
-/// within `reach_px`; 0 when there is none.
-pub fn saturated_blob_area(img: &image::RgbImage, x: f64, y: f64, reach_px: f64) -> usize {
-    let (w, h) = img.dimensions();
-    let sat = |x: i64, y: i64| x >= 0 && y >= 0 && x < w as i64 && y < h as i64 && img.get_pixel(x as u32, y as u32).0.iter().all(|c| *c >= 250);
-    let (xi, yi) = (x.round() as i64, y.round() as i64);
-    let reach = reach_px.ceil() as i64;
-    let mut seed = None;
-    'find: for d in 0..=reach {
-        for dy in -d..=d {
-            for dx in -d..=d {
-                if (dx.abs() == d || dy.abs() == d) && sat(xi + dx, yi + dy) {
-                    seed = Some((xi + dx, yi + dy));
-                    break 'find;
-                }
-            }
-        }
-    }
-    let Some(seed) = seed else { return 0 };
-    let mut seen = std::collections::HashSet::new();
-    let mut stack = vec![seed];
-    seen.insert(seed);
-    while let Some((x, y)) = stack.pop() {
-        for (dx, dy) in [(1, 0), (-1, 0), (0, 1), (0, -1)] {
-            let q = (x + dx, y + dy);
-            if sat(q.0, q.1) && seen.insert(q) {
-                stack.push(q);
-            }
-        }
-    }
-    seen.len()
-}
-
-/// The bloom screening of step 2: sets each detection's weight from its blob area and drops the
-/// ones whose blob is more than four times the bare disc's. Detections of unknown area keep weight 1.
-pub fn screen_bloom(dets: &mut Vec<Detection>) {
-    let mut areas: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| d.blob_px as f64).collect();
-    if areas.len() < 5 {
-        return;
-    }
-    areas.sort_by(f64::total_cmp);
-    let reference = areas[(0.2 * (areas.len() - 1) as f64).round() as usize].max(1.0);
-    dets.retain(|d| d.blob_px == 0 || (d.blob_px as f64) <= 4.0 * reference);
-    for d in dets.iter_mut() {
-        if d.blob_px > 0 {
-            let excess = (d.blob_px as f64 / reference - 1.0).max(0.0);
-            d.weight = 1.0 / (1.0 + (excess / 0.5).powi(2));
-        }
-    }
-}
 
 /// A fitted calibration.
 #[derive(Debug, Clone)]
@@ -386,16 +307,22 @@ impl Problem {
     fn jacobian_of(&self, p: &DVector<f64>, weighted: bool) -> DMatrix<f64> {
         let mut j = DMatrix::zeros(self.rows(), p.len());
         for k in 0..p.len() {
-            let h = if k <= 1 { 1e-4 } else { 1e-7 };
-            let mut a = p.clone();
-            let mut b = p.clone();
-            a[k] += h;
-            b[k] -= h;
+            let (a, b, h) = perturbed(p, k);
             let d = (self.residuals_of(&a, weighted) - self.residuals_of(&b, weighted)) / (2.0 * h);
             j.set_column(k, &d);
         }
         j
     }
+}
+
+/// Parameters `p` moved up and down in component `k` for a central difference, and the step: 1e-4
+/// for the principal point \[px\], 1e-7 for the rest (log focal length, angles \[rad\], k1, k2).
+fn perturbed(p: &DVector<f64>, k: usize) -> (DVector<f64>, DVector<f64>, f64) {
+    let h = if k <= 1 { 1e-4 } else { 1e-7 };
+    let (mut a, mut b) = (p.clone(), p.clone());
+    a[k] += h;
+    b[k] -= h;
+    (a, b, h)
 }
 
 /// Where a camera puts a direction, ignoring its field and the image bounds.
@@ -589,70 +516,6 @@ fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<ImageCircle>) ->
     }
 }
 
-/// Refine an image circle from the lens edge: along 360 rays from the rough centre, the outermost
-/// radius where any channel is still above a dark level (12), with the next 3 px at or below it; a
-/// least-squares circle (Kåsa 1976) through those edge points, refitted without points more than
-/// 2 px off. The rough circle (the area of pixels above 40) is biased where a dark ground or a
-/// vignetted rim lies inside the lens field; the edge is not. `None` with too few edge points
-/// (a circle cut by the frame on most sides).
-pub fn refine_image_circle(img: &image::RgbImage, rough: ImageCircle) -> Option<ImageCircle> {
-    let (w, h) = img.dimensions();
-    let level = |x: f64, y: f64| -> Option<u8> {
-        let (xi, yi) = (x.round() as i64, y.round() as i64);
-        (xi >= 0 && yi >= 0 && xi < w as i64 && yi < h as i64).then(|| *img.get_pixel(xi as u32, yi as u32).0.iter().max().unwrap_or(&0))
-    };
-    const DARK: u8 = 12;
-    let mut pts = vec![];
-    for k in 0..360 {
-        let a = (k as f64).to_radians();
-        let (dx, dy) = (a.cos(), a.sin());
-        let mut r = 1.4 * rough.radius_px;
-        let mut edge = None;
-        let mut cut = false;
-        while r > 0.6 * rough.radius_px {
-            let (x, y) = (rough.cx_px + r * dx, rough.cy_px + r * dy);
-            match level(x, y) {
-                None => {}
-                Some(v) if v > DARK => {
-                    // The first lit pixel from outside: the edge, unless the frame cuts the circle.
-                    let beyond = (1..=3).all(|d| level(x + d as f64 * dx, y + d as f64 * dy).map(|v| v <= DARK).unwrap_or(false));
-                    if beyond {
-                        edge = Some((x + 0.5 * dx, y + 0.5 * dy));
-                    } else {
-                        cut = true;
-                    }
-                    break;
-                }
-                Some(_) => {}
-            }
-            r -= 0.5;
-        }
-        if let (Some(p), false) = (edge, cut) {
-            pts.push(p);
-        }
-    }
-    let fit = |pts: &[(f64, f64)]| -> Option<ImageCircle> {
-        if pts.len() < 60 {
-            return None;
-        }
-        // Kåsa: x² + y² + D x + E y + F = 0, linear least squares.
-        let mut a = DMatrix::zeros(pts.len(), 3);
-        let mut b = DVector::zeros(pts.len());
-        for (i, (x, y)) in pts.iter().enumerate() {
-            a[(i, 0)] = *x;
-            a[(i, 1)] = *y;
-            a[(i, 2)] = 1.0;
-            b[i] = -(x * x + y * y);
-        }
-        let sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
-        let (cx, cy) = (-sol[0] / 2.0, -sol[1] / 2.0);
-        let r2 = cx * cx + cy * cy - sol[2];
-        (r2 > 0.0).then(|| ImageCircle { cx_px: cx, cy_px: cy, radius_px: r2.sqrt() })
-    };
-    let first = fit(&pts)?;
-    let kept: Vec<(f64, f64)> = pts.into_iter().filter(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() <= 2.0).collect();
-    fit(&kept)
-}
 
 /// Initial camera from the image circle and the first detections.
 pub fn initial_camera(circle: ImageCircle, size: (u32, u32), dets: &[Detection]) -> Camera {
@@ -688,85 +551,6 @@ pub const PLAUSIBLE_RIM_DEG: (f64, f64) = (85.0, 100.0);
 
 /// A bound above this \[°\] is reported as the detections not constraining that part of the sky.
 pub const UNCONSTRAINED_BOUND_DEG: f64 = 1.0;
-
-/// Direction of a pixel of `cam` seen through `other` \[°\]: the angle between where `cam` and `other`
-/// say the pixel looks, for the pixel `cam` puts at `dir`.
-fn direction_gap_deg(cam: &Camera, other: &Camera, dir: [f64; 3]) -> Option<f64> {
-    let (x, y) = project_unchecked(cam, dir);
-    let d2 = other.unproject_enu(x, y)?;
-    Some(angle_deg(dir, d2))
-}
-
-/// The bound of step 7 over the sky, tabulated by band.
-fn bound_table(fit: &Fit, prob: &Problem, competitors: &[Camera], scale_sys: f64) -> Vec<BandBound> {
-    let cam = &fit.camera;
-    let Some((p, cov)) = &fit.cov else {
-        return BOUND_BANDS_DEG.iter().map(|&(a, b)| BandBound { zenith_from_deg: a, zenith_to_deg: b, bound_deg: f64::INFINITY }).collect();
-    };
-    let max_z = cam.max_field_angle_rad.to_degrees();
-    let mut out = vec![];
-    for &(za, zb) in &BOUND_BANDS_DEG {
-        let mut worst: f64 = 0.0;
-        let mut any = false;
-        let steps = ((zb - za) / 2.5).ceil().max(1.0) as usize;
-        for si in 0..=steps {
-            let z = (za + (zb - za) * si as f64 / steps as f64).min(zb - 0.01).max(0.5);
-            for ai in 0..24 {
-                let a = (ai as f64 * 15.0).to_radians();
-                let dir = direction_enu(z.to_radians(), a);
-                // Field angle of this direction in the camera.
-                let v = cam.cam_to_enu().inverse_transform_vector(&nalgebra::Vector3::new(dir[0], dir[1], dir[2]));
-                if v[2].clamp(-1.0, 1.0).acos().to_degrees() > max_z {
-                    continue;
-                }
-                any = true;
-                // Covariance of the image position.
-                let mut jp = DMatrix::zeros(2, p.len());
-                for k in 0..p.len() {
-                    let h = if k <= 1 { 1e-4 } else { 1e-7 };
-                    let mut pa = p.clone();
-                    let mut pb = p.clone();
-                    pa[k] += h;
-                    pb[k] -= h;
-                    let (xa, ya) = project_unchecked(&prob.camera(&pa), dir);
-                    let (xb, yb) = project_unchecked(&prob.camera(&pb), dir);
-                    jp[(0, k)] = (xa - xb) / (2.0 * h);
-                    jp[(1, k)] = (ya - yb) / (2.0 * h);
-                }
-                let c = &jp * cov * jp.transpose();
-                let sigma_px = (c[(0, 0)] + c[(1, 1)]).max(0.0).sqrt();
-                // Local scale: degrees per pixel along the radius (the larger of radial and tangential).
-                let theta = v[2].clamp(-1.0, 1.0).acos();
-                let radial = cam.f_px * cam.projection.radial_derivative(theta);
-                let tangential = cam.f_px * cam.projection.radial(theta) / theta.sin().max(1e-6);
-                let deg_per_px = (1.0 / radial.min(tangential).max(1e-6)).to_degrees();
-                let spread = competitors.iter().filter_map(|o| direction_gap_deg(cam, o, dir)).fold(0.0, f64::max);
-                worst = worst.max(2.0 * sigma_px * deg_per_px + spread + scale_sys * theta.to_degrees());
-            }
-        }
-        if any {
-            out.push(BandBound { zenith_from_deg: za, zenith_to_deg: zb, bound_deg: worst });
-        }
-    }
-    out
-}
-
-fn coverage_of(dets: &[Detection]) -> Coverage {
-    let used: Vec<(f64, f64)> = dets.iter().filter(|d| d.weight >= 0.3).map(|d| zenith_azimuth_of(d.dir)).map(|(z, a)| (z.to_degrees(), a.to_degrees())).collect();
-    if used.is_empty() {
-        return Coverage::default();
-    }
-    let zmin = used.iter().map(|u| u.0).fold(f64::INFINITY, f64::min);
-    let zmax = used.iter().map(|u| u.0).fold(0.0, f64::max);
-    // Smallest arc holding all azimuths: 360° minus the largest gap between sorted azimuths.
-    let mut az: Vec<f64> = used.iter().map(|u| u.1.rem_euclid(360.0)).collect();
-    az.sort_by(f64::total_cmp);
-    let mut gap: f64 = 360.0 - (az[az.len() - 1] - az[0]);
-    for w in az.windows(2) {
-        gap = gap.max(w[1] - w[0]);
-    }
-    Coverage { zenith_min_deg: zmin, zenith_max_deg: zmax, azimuth_span_deg: 360.0 - gap }
-}
 
 /// Calibrate from frames: detect the sun, screen the bloom, start from the image circle, fit each
 /// lens family, choose by held-out error, bound the direction error. Frames whose sun is below
@@ -943,184 +727,9 @@ fn check_usable(fit: &Fit) -> Result<(), CalibrationError> {
     Ok(())
 }
 
-/// The clear-sky reference of this camera from its calibration frames: the R/B library
-/// ([`crate::segment::Reference`]) of the frames whose sun was detected (an unclouded sun), binned
-/// by zenith and sun angle through the fitted camera. A bin needs data from at least 3 frames.
-pub fn clear_sky_reference(frames: &[(DateTime<Utc>, image::RgbImage)], fit: &Fit, dets: &[Detection], params: &crate::segment::SegmentParams) -> crate::segment::Reference {
-    let cam = &fit.camera;
-    let mask = cam.sky_mask(std::f64::consts::FRAC_PI_2, None);
-    let (w, h) = (cam.width_px as usize, cam.height_px as usize);
-    // Every second pixel in each direction.
-    let pixels: Vec<(usize, [f32; 3], f32)> = (0..h)
-        .step_by(2)
-        .flat_map(|y| (0..w).step_by(2).map(move |x| (x, y)))
-        .filter_map(|(x, y)| {
-            let i = y * w + x;
-            if !mask.sky[i] {
-                return None;
-            }
-            let d = direction_enu(mask.zenith_rad[i] as f64, mask.azimuth_rad[i] as f64);
-            Some((i, [d[0] as f32, d[1] as f32, d[2] as f32], mask.zenith_rad[i].to_degrees()))
-        })
-        .collect();
-    let times: std::collections::HashSet<DateTime<Utc>> = dets.iter().map(|d| d.time).collect();
-    let used: Vec<(&image::RgbImage, [f32; 3])> = frames
-        .iter()
-        .filter(|(t, _)| times.contains(t))
-        .filter_map(|(t, img)| dets.iter().find(|d| d.time == *t).map(|d| (img, [d.dir[0] as f32, d.dir[1] as f32, d.dir[2] as f32])))
-        .collect();
-    let samples = used.iter().map(|(img, sun)| {
-        let raw = img.as_raw();
-        pixels.iter().map(move |(i, d, z)| {
-            let g = crate::segment::gamma_deg(*d, Some(*sun));
-            ([raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]], crate::segment::PixelGeom { z_deg: *z, gamma_deg: g })
-        })
-    });
-    crate::segment::Reference::from_clear_samples(params, samples, 3)
-}
-
-/// The detections as CSV: time, centroid, sun zenith and azimuth, blob area, weight, residual.
-pub fn detections_csv(fit: &Fit, dets: &[Detection]) -> String {
-    let mut out = String::from("time_utc,x_px,y_px,sun_zenith_deg,sun_azimuth_deg,blob_px,weight,residual_x_px,residual_y_px\n");
-    for (d, e) in dets.iter().zip(&fit.residuals) {
-        let (z, a) = zenith_azimuth_of(d.dir);
-        out.push_str(&format!(
-            "{},{:.3},{:.3},{:.3},{:.3},{},{:.4},{:.3},{:.3}\n",
-            crate::io::fmt_time(&d.time),
-            d.px.0,
-            d.px.1,
-            z.to_degrees(),
-            a.to_degrees(),
-            d.blob_px,
-            d.weight,
-            e.0,
-            e.1
-        ));
-    }
-    out
-}
-
-/// The residual plot: the frame (dimmed); zenith circles every 10° out to the lens field, coloured
-/// by the stated direction-error bound (green ≤ 0.2°, yellow ≤ 0.5°, orange ≤ 2°, red beyond);
-/// the detections (green, or grey when the bloom screening down-weighted them below 0.3), fitted
-/// positions (red) and error arrows (×20).
-pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]) -> image::RgbImage {
-    let mut img = background.clone();
-    for p in img.pixels_mut() {
-        for c in p.0.iter_mut() {
-            *c /= 3;
-        }
-    }
-    let put = |img: &mut image::RgbImage, x: i64, y: i64, c: [u8; 3]| {
-        if x >= 0 && y >= 0 && (x as u32) < img.width() && (y as u32) < img.height() {
-            img.put_pixel(x as u32, y as u32, image::Rgb(c));
-        }
-    };
-    let cam = &fit.camera;
-    let max_z = cam.max_field_angle_rad.to_degrees().min(90.0);
-    let mut z = 10.0;
-    while z <= max_z + 1e-9 {
-        let colour = match fit.bound_at_deg(z - 0.01) {
-            Some(b) if b <= 0.2 => [40, 200, 60],
-            Some(b) if b <= UNCONSTRAINED_BOUND_DEG => [230, 210, 40],
-            Some(b) if b <= 2.0 => [240, 140, 30],
-            _ => [230, 40, 40],
-        };
-        for ai in 0..1440 {
-            let a = (ai as f64 * 0.25).to_radians();
-            if let Some((x, y)) = cam.project(z.to_radians(), a) {
-                put(&mut img, x.round() as i64, y.round() as i64, colour);
-            }
-        }
-        z += 10.0;
-    }
-    // North marker: a short line from the zenith toward north at 20°.
-    if let (Some(a), Some(b)) = (cam.project(0.0, 0.0), cam.project(20f64.to_radians(), 0.0)) {
-        crate::overlay::line(&mut img, (a.0 as i64, a.1 as i64), (b.0 as i64, b.1 as i64), [200, 200, 255]);
-    }
-    for (d, e) in dets.iter().zip(&fit.residuals) {
-        let (x, y) = d.px;
-        let a = (x as i64, y as i64);
-        let b = ((x + 20.0 * e.0) as i64, (y + 20.0 * e.1) as i64);
-        let used = d.weight >= 0.3;
-        crate::overlay::line(&mut img, a, b, if used { [255, 200, 0] } else { [120, 110, 60] });
-        for (dx, dy) in [(0, 0), (1, 0), (0, 1), (-1, 0), (0, -1)] {
-            put(&mut img, a.0 + dx, a.1 + dy, if used { [40, 220, 40] } else { [150, 150, 150] });
-            put(&mut img, (x + e.0) as i64 + dx, (y + e.1) as i64 + dy, [230, 40, 40]);
-        }
-    }
-    img
-}
-
-/// Obstruction mask from daylight frames: white = open sky; black where a pixel inside the image
-/// circle stays dark (mean level below 50) or unchanged (standard deviation of its level below 1.5)
-/// across the frames — masts, the horizon line, the housing.
-pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> image::GrayImage {
-    let (w, h) = frames[0].dimensions();
-    let n = frames.len() as f64;
-    let mut out = image::GrayImage::new(w, h);
-    for y in 0..h {
-        for x in 0..w {
-            let inside = ((x as f64 - circle.cx_px).powi(2) + (y as f64 - circle.cy_px).powi(2)).sqrt() <= circle.radius_px;
-            if !inside {
-                continue;
-            }
-            let (mut s, mut ss) = (0.0, 0.0);
-            for f in frames {
-                let p = f.get_pixel(x, y).0;
-                let v = (p[0] as f64 + p[1] as f64 + p[2] as f64) / 3.0;
-                s += v;
-                ss += v * v;
-            }
-            let mean = s / n;
-            let sd = (ss / n - mean * mean).max(0.0).sqrt();
-            let open = mean >= 50.0 && sd >= 1.5;
-            out.put_pixel(x, y, image::Luma([if open { 255 } else { 0 }]));
-        }
-    }
-    out
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn streak_does_not_pull_the_centroid() {
-        let mut img = image::RgbImage::from_pixel(200, 200, image::Rgb([60, 90, 160]));
-        for y in 0..200u32 {
-            for x in 0..200u32 {
-                let r = ((x as f64 - 120.0).powi(2) + (y as f64 - 80.0).powi(2)).sqrt();
-                if r < 4.0 {
-                    img.put_pixel(x, y, image::Rgb([255, 255, 255]));
-                }
-            }
-        }
-        // A one-pixel saturated streak downward from the sun.
-        for y in 80..110u32 {
-            img.put_pixel(120, y, image::Rgb([255, 255, 255]));
-        }
-        let (x, y, _) = detect_sun(&img, 100.0).unwrap();
-        assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
-        // The blob: the disc (45 lattice points with x² + y² < 16) and the 26 streak pixels below it.
-        assert_eq!(saturated_blob_area(&img, x, y, 5.0), 45 + 26);
-    }
-
-    fn det(blob: usize) -> Detection {
-        Detection { blob_px: blob, ..Detection::new(Utc::now(), (0.0, 0.0), [0.0, 0.0, 1.0]) }
-    }
-
-    #[test]
-    fn bloom_screening_drops_doubled_blobs_and_weights_growth() {
-        let mut d: Vec<Detection> = [400, 400, 410, 420, 430, 500, 600, 790, 1700, 5000].into_iter().map(det).collect();
-        screen_bloom(&mut d);
-        // Reference: the 20th percentile of the areas, 410; four times that is 1640.
-        assert_eq!(d.len(), 8);
-        assert!((d[0].weight - 1.0).abs() < 1e-12);
-        let w600 = d.iter().find(|x| x.blob_px == 600).unwrap().weight;
-        let excess: f64 = 600.0 / 410.0 - 1.0;
-        assert!((w600 - 1.0 / (1.0 + (excess / 0.5).powi(2))).abs() < 1e-12);
-    }
 
     #[test]
     fn lens_family_names_round_trip() {

@@ -1,0 +1,203 @@
+//! What calibration reads from the frames: the sun's clipped disc (its centroid and blob area, and
+//! the bloom screening that weighs detections by how far their glare has spread) and the image
+//! circle refined from the lens edge.
+
+use nalgebra::{DMatrix, DVector};
+
+use super::Detection;
+use crate::segment::ImageCircle;
+
+/// Find the sun disk in a frame. `radius_px` is the image circle's radius.
+/// Returns (column, row, pixels used for the centroid).
+pub fn detect_sun(img: &image::RgbImage, radius_px: f64) -> Option<(f64, f64, usize)> {
+    let (cx, cy, n) = crate::segment::find_sun_blob(img, 250, 3, 0.05 * radius_px)?;
+    let r = 0.05 * radius_px;
+    // Saturated pixels far from the sun (other than its blooming column) make the detection
+    // ambiguous.
+    let elsewhere = img
+        .enumerate_pixels()
+        .filter(|(x, y, p)| {
+            p.0.iter().all(|c| *c >= 250) && (*x as f64 - cx).abs() > 2.0 && ((*x as f64 - cx).powi(2) + (*y as f64 - cy).powi(2)) > 4.0 * r * r
+        })
+        .count();
+    if n < 3 || (n as f64) > 0.02 * radius_px * radius_px || elsewhere as f64 > 0.25 * n as f64 {
+        return None;
+    }
+    // Centroid over the rows at least 3 px wide within the neighbourhood (a blooming streak is
+    // one or two pixels wide).
+    let (w, h) = img.dimensions();
+    let rr = 2.0 * r;
+    let (y0, y1) = (((cy - rr).floor().max(0.0)) as u32, ((cy + rr).ceil() as u32).min(h - 1));
+    let (x0, x1) = (((cx - rr).floor().max(0.0)) as u32, ((cx + rr).ceil() as u32).min(w - 1));
+    let (mut sx, mut sy, mut k) = (0.0, 0.0, 0usize);
+    for y in y0..=y1 {
+        let row: Vec<u32> = (x0..=x1).filter(|&x| img.get_pixel(x, y).0.iter().all(|c| *c >= 250)).collect();
+        if row.len() >= 3 {
+            for x in &row {
+                sx += *x as f64;
+                sy += y as f64;
+                k += 1;
+            }
+        }
+    }
+    (k >= 3).then(|| (sx / k as f64, sy / k as f64, k))
+}
+
+/// Area \[px\] of the 4-connected saturated blob (all channels ≥ 250) nearest to (x, y), searched
+/// within `reach_px`; 0 when there is none.
+pub fn saturated_blob_area(img: &image::RgbImage, x: f64, y: f64, reach_px: f64) -> usize {
+    let (w, h) = img.dimensions();
+    let sat = |x: i64, y: i64| x >= 0 && y >= 0 && x < w as i64 && y < h as i64 && img.get_pixel(x as u32, y as u32).0.iter().all(|c| *c >= 250);
+    let (xi, yi) = (x.round() as i64, y.round() as i64);
+    let reach = reach_px.ceil() as i64;
+    let mut seed = None;
+    'find: for d in 0..=reach {
+        for dy in -d..=d {
+            for dx in -d..=d {
+                if (dx.abs() == d || dy.abs() == d) && sat(xi + dx, yi + dy) {
+                    seed = Some((xi + dx, yi + dy));
+                    break 'find;
+                }
+            }
+        }
+    }
+    let Some(seed) = seed else { return 0 };
+    let mut seen = std::collections::HashSet::new();
+    let mut stack = vec![seed];
+    seen.insert(seed);
+    while let Some((x, y)) = stack.pop() {
+        for (dx, dy) in [(1, 0), (-1, 0), (0, 1), (0, -1)] {
+            let q = (x + dx, y + dy);
+            if sat(q.0, q.1) && seen.insert(q) {
+                stack.push(q);
+            }
+        }
+    }
+    seen.len()
+}
+
+/// The bloom screening of step 2: sets each detection's weight from its blob area and drops the
+/// ones whose blob is more than four times the bare disc's. Detections of unknown area keep weight 1.
+pub fn screen_bloom(dets: &mut Vec<Detection>) {
+    let mut areas: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| d.blob_px as f64).collect();
+    if areas.len() < 5 {
+        return;
+    }
+    areas.sort_by(f64::total_cmp);
+    let reference = areas[(0.2 * (areas.len() - 1) as f64).round() as usize].max(1.0);
+    dets.retain(|d| d.blob_px == 0 || (d.blob_px as f64) <= 4.0 * reference);
+    for d in dets.iter_mut() {
+        if d.blob_px > 0 {
+            let excess = (d.blob_px as f64 / reference - 1.0).max(0.0);
+            d.weight = 1.0 / (1.0 + (excess / 0.5).powi(2));
+        }
+    }
+}
+
+/// Refine an image circle from the lens edge: along 360 rays from the rough centre, the outermost
+/// radius where any channel is still above a dark level (12), with the next 3 px at or below it; a
+/// least-squares circle (Kåsa 1976) through those edge points, refitted without points more than
+/// 2 px off. The rough circle (the area of pixels above 40) is biased where a dark ground or a
+/// vignetted rim lies inside the lens field; the edge is not. `None` with too few edge points
+/// (a circle cut by the frame on most sides).
+pub fn refine_image_circle(img: &image::RgbImage, rough: ImageCircle) -> Option<ImageCircle> {
+    let (w, h) = img.dimensions();
+    let level = |x: f64, y: f64| -> Option<u8> {
+        let (xi, yi) = (x.round() as i64, y.round() as i64);
+        (xi >= 0 && yi >= 0 && xi < w as i64 && yi < h as i64).then(|| *img.get_pixel(xi as u32, yi as u32).0.iter().max().unwrap_or(&0))
+    };
+    const DARK: u8 = 12;
+    let mut pts = vec![];
+    for k in 0..360 {
+        let a = (k as f64).to_radians();
+        let (dx, dy) = (a.cos(), a.sin());
+        let mut r = 1.4 * rough.radius_px;
+        let mut edge = None;
+        let mut cut = false;
+        while r > 0.6 * rough.radius_px {
+            let (x, y) = (rough.cx_px + r * dx, rough.cy_px + r * dy);
+            match level(x, y) {
+                None => {}
+                Some(v) if v > DARK => {
+                    // The first lit pixel from outside: the edge, unless the frame cuts the circle.
+                    let beyond = (1..=3).all(|d| level(x + d as f64 * dx, y + d as f64 * dy).map(|v| v <= DARK).unwrap_or(false));
+                    if beyond {
+                        edge = Some((x + 0.5 * dx, y + 0.5 * dy));
+                    } else {
+                        cut = true;
+                    }
+                    break;
+                }
+                Some(_) => {}
+            }
+            r -= 0.5;
+        }
+        if let (Some(p), false) = (edge, cut) {
+            pts.push(p);
+        }
+    }
+    let fit = |pts: &[(f64, f64)]| -> Option<ImageCircle> {
+        if pts.len() < 60 {
+            return None;
+        }
+        // Kåsa: x² + y² + D x + E y + F = 0, linear least squares.
+        let mut a = DMatrix::zeros(pts.len(), 3);
+        let mut b = DVector::zeros(pts.len());
+        for (i, (x, y)) in pts.iter().enumerate() {
+            a[(i, 0)] = *x;
+            a[(i, 1)] = *y;
+            a[(i, 2)] = 1.0;
+            b[i] = -(x * x + y * y);
+        }
+        let sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
+        let (cx, cy) = (-sol[0] / 2.0, -sol[1] / 2.0);
+        let r2 = cx * cx + cy * cy - sol[2];
+        (r2 > 0.0).then(|| ImageCircle { cx_px: cx, cy_px: cy, radius_px: r2.sqrt() })
+    };
+    let first = fit(&pts)?;
+    let kept: Vec<(f64, f64)> = pts.into_iter().filter(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() <= 2.0).collect();
+    fit(&kept)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use chrono::Utc;
+
+    #[test]
+    fn streak_does_not_pull_the_centroid() {
+        let mut img = image::RgbImage::from_pixel(200, 200, image::Rgb([60, 90, 160]));
+        for y in 0..200u32 {
+            for x in 0..200u32 {
+                let r = ((x as f64 - 120.0).powi(2) + (y as f64 - 80.0).powi(2)).sqrt();
+                if r < 4.0 {
+                    img.put_pixel(x, y, image::Rgb([255, 255, 255]));
+                }
+            }
+        }
+        // A one-pixel saturated streak downward from the sun.
+        for y in 80..110u32 {
+            img.put_pixel(120, y, image::Rgb([255, 255, 255]));
+        }
+        let (x, y, _) = detect_sun(&img, 100.0).unwrap();
+        assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
+        // The blob: the disc (45 lattice points with x² + y² < 16) and the 26 streak pixels below it.
+        assert_eq!(saturated_blob_area(&img, x, y, 5.0), 45 + 26);
+    }
+
+    fn det(blob: usize) -> Detection {
+        Detection { blob_px: blob, ..Detection::new(Utc::now(), (0.0, 0.0), [0.0, 0.0, 1.0]) }
+    }
+
+    #[test]
+    fn bloom_screening_drops_doubled_blobs_and_weights_growth() {
+        let mut d: Vec<Detection> = [400, 400, 410, 420, 430, 500, 600, 790, 1700, 5000].into_iter().map(det).collect();
+        screen_bloom(&mut d);
+        // Reference: the 20th percentile of the areas, 410; four times that is 1640.
+        assert_eq!(d.len(), 8);
+        assert!((d[0].weight - 1.0).abs() < 1e-12);
+        let w600 = d.iter().find(|x| x.blob_px == 600).unwrap().weight;
+        let excess: f64 = 600.0 / 410.0 - 1.0;
+        assert!((w600 - 1.0 / (1.0 + (excess / 0.5).powi(2))).abs() < 1e-12);
+    }
+}

@@ -1,0 +1,146 @@
+//! What calibration writes besides the camera: the camera's clear-sky library, the detections
+//! table, the residual plot and the obstruction mask.
+
+use chrono::{DateTime, Utc};
+
+use super::{Detection, Fit, UNCONSTRAINED_BOUND_DEG};
+use crate::segment::ImageCircle;
+use crate::sun::{direction_enu, zenith_azimuth_of};
+
+/// The clear-sky reference of this camera from its calibration frames: the R/B library
+/// ([`crate::segment::Reference`]) of the frames whose sun was detected (an unclouded sun), binned
+/// by zenith and sun angle through the fitted camera. A bin needs data from at least 3 frames.
+pub fn clear_sky_reference(frames: &[(DateTime<Utc>, image::RgbImage)], fit: &Fit, dets: &[Detection], params: &crate::segment::SegmentParams) -> crate::segment::Reference {
+    let cam = &fit.camera;
+    let mask = cam.sky_mask(std::f64::consts::FRAC_PI_2, None);
+    let (w, h) = (cam.width_px as usize, cam.height_px as usize);
+    // Every second pixel in each direction.
+    let pixels: Vec<(usize, [f32; 3], f32)> = (0..h)
+        .step_by(2)
+        .flat_map(|y| (0..w).step_by(2).map(move |x| (x, y)))
+        .filter_map(|(x, y)| {
+            let i = y * w + x;
+            if !mask.sky[i] {
+                return None;
+            }
+            let d = direction_enu(mask.zenith_rad[i] as f64, mask.azimuth_rad[i] as f64);
+            Some((i, [d[0] as f32, d[1] as f32, d[2] as f32], mask.zenith_rad[i].to_degrees()))
+        })
+        .collect();
+    let times: std::collections::HashSet<DateTime<Utc>> = dets.iter().map(|d| d.time).collect();
+    let used: Vec<(&image::RgbImage, [f32; 3])> = frames
+        .iter()
+        .filter(|(t, _)| times.contains(t))
+        .filter_map(|(t, img)| dets.iter().find(|d| d.time == *t).map(|d| (img, [d.dir[0] as f32, d.dir[1] as f32, d.dir[2] as f32])))
+        .collect();
+    let samples = used.iter().map(|(img, sun)| {
+        let raw = img.as_raw();
+        pixels.iter().map(move |(i, d, z)| {
+            let g = crate::segment::gamma_deg(*d, Some(*sun));
+            ([raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]], crate::segment::PixelGeom { z_deg: *z, gamma_deg: g })
+        })
+    });
+    crate::segment::Reference::from_clear_samples(params, samples, 3)
+}
+
+/// The detections as CSV: time, centroid, sun zenith and azimuth, blob area, weight, residual.
+pub fn detections_csv(fit: &Fit, dets: &[Detection]) -> String {
+    let mut out = String::from("time_utc,x_px,y_px,sun_zenith_deg,sun_azimuth_deg,blob_px,weight,residual_x_px,residual_y_px\n");
+    for (d, e) in dets.iter().zip(&fit.residuals) {
+        let (z, a) = zenith_azimuth_of(d.dir);
+        out.push_str(&format!(
+            "{},{:.3},{:.3},{:.3},{:.3},{},{:.4},{:.3},{:.3}\n",
+            crate::io::fmt_time(&d.time),
+            d.px.0,
+            d.px.1,
+            z.to_degrees(),
+            a.to_degrees(),
+            d.blob_px,
+            d.weight,
+            e.0,
+            e.1
+        ));
+    }
+    out
+}
+
+/// The residual plot: the frame (dimmed); zenith circles every 10° out to the lens field, coloured
+/// by the stated direction-error bound (green ≤ 0.2°, yellow ≤ 0.5°, orange ≤ 2°, red beyond);
+/// the detections (green, or grey when the bloom screening down-weighted them below 0.3), fitted
+/// positions (red) and error arrows (×20).
+pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]) -> image::RgbImage {
+    let mut img = background.clone();
+    for p in img.pixels_mut() {
+        for c in p.0.iter_mut() {
+            *c /= 3;
+        }
+    }
+    let put = |img: &mut image::RgbImage, x: i64, y: i64, c: [u8; 3]| {
+        if x >= 0 && y >= 0 && (x as u32) < img.width() && (y as u32) < img.height() {
+            img.put_pixel(x as u32, y as u32, image::Rgb(c));
+        }
+    };
+    let cam = &fit.camera;
+    let max_z = cam.max_field_angle_rad.to_degrees().min(90.0);
+    let mut z = 10.0;
+    while z <= max_z + 1e-9 {
+        let colour = match fit.bound_at_deg(z - 0.01) {
+            Some(b) if b <= 0.2 => [40, 200, 60],
+            Some(b) if b <= UNCONSTRAINED_BOUND_DEG => [230, 210, 40],
+            Some(b) if b <= 2.0 => [240, 140, 30],
+            _ => [230, 40, 40],
+        };
+        for ai in 0..1440 {
+            let a = (ai as f64 * 0.25).to_radians();
+            if let Some((x, y)) = cam.project(z.to_radians(), a) {
+                put(&mut img, x.round() as i64, y.round() as i64, colour);
+            }
+        }
+        z += 10.0;
+    }
+    // North marker: a short line from the zenith toward north at 20°.
+    if let (Some(a), Some(b)) = (cam.project(0.0, 0.0), cam.project(20f64.to_radians(), 0.0)) {
+        crate::overlay::line(&mut img, (a.0 as i64, a.1 as i64), (b.0 as i64, b.1 as i64), [200, 200, 255]);
+    }
+    for (d, e) in dets.iter().zip(&fit.residuals) {
+        let (x, y) = d.px;
+        let a = (x as i64, y as i64);
+        let b = ((x + 20.0 * e.0) as i64, (y + 20.0 * e.1) as i64);
+        let used = d.weight >= 0.3;
+        crate::overlay::line(&mut img, a, b, if used { [255, 200, 0] } else { [120, 110, 60] });
+        for (dx, dy) in [(0, 0), (1, 0), (0, 1), (-1, 0), (0, -1)] {
+            put(&mut img, a.0 + dx, a.1 + dy, if used { [40, 220, 40] } else { [150, 150, 150] });
+            put(&mut img, (x + e.0) as i64 + dx, (y + e.1) as i64 + dy, [230, 40, 40]);
+        }
+    }
+    img
+}
+
+/// Obstruction mask from daylight frames: white = open sky; black where a pixel inside the image
+/// circle stays dark (mean level below 50) or unchanged (standard deviation of its level below 1.5)
+/// across the frames — masts, the horizon line, the housing.
+pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> image::GrayImage {
+    let (w, h) = frames[0].dimensions();
+    let n = frames.len() as f64;
+    let mut out = image::GrayImage::new(w, h);
+    for y in 0..h {
+        for x in 0..w {
+            let inside = ((x as f64 - circle.cx_px).powi(2) + (y as f64 - circle.cy_px).powi(2)).sqrt() <= circle.radius_px;
+            if !inside {
+                continue;
+            }
+            let (mut s, mut ss) = (0.0, 0.0);
+            for f in frames {
+                let p = f.get_pixel(x, y).0;
+                let v = (p[0] as f64 + p[1] as f64 + p[2] as f64) / 3.0;
+                s += v;
+                ss += v * v;
+            }
+            let mean = s / n;
+            let sd = (ss / n - mean * mean).max(0.0).sqrt();
+            let open = mean >= 50.0 && sd >= 1.5;
+            out.put_pixel(x, y, image::Luma([if open { 255 } else { 0 }]));
+        }
+    }
+    out
+}
