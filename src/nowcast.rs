@@ -151,7 +151,7 @@ pub struct Counters {
 /// the configured values over a sliding window).
 #[derive(Debug, Clone, Default)]
 struct Tuner {
-    rows: std::collections::VecDeque<([f64; 4], f64)>,
+    rows: std::collections::VecDeque<([f64; TUNED], f64)>,
     /// Time of each row.
     times: std::collections::VecDeque<DateTime<Utc>>,
 }
@@ -159,9 +159,12 @@ struct Tuner {
 impl Tuner {
     const WINDOW: usize = 400;
     const PRIOR_WEIGHT: f64 = 4.0;
+    /// Each unknown's prior weight relative to `PRIOR_WEIGHT`, in proportion to the usual size of
+    /// its regressor: the brightness feature is a few hundredths where class shares are near 1.
+    const PRIOR_SCALE: [f64; TUNED] = [1.0, 1.0, 1.0, 0.05, 1.0];
     const IRLS_ITERATIONS: usize = 6;
 
-    fn push(&mut self, t: DateTime<Utc>, x: [f64; 4], y: f64, max_age_s: f64) {
+    fn push(&mut self, t: DateTime<Utc>, x: [f64; TUNED], y: f64, max_age_s: f64) {
         self.rows.push_back((x, y));
         self.times.push_back(t);
         // At most WINDOW rows, none older than `max_age_s` (an overcast that thins must be
@@ -178,10 +181,10 @@ impl Tuner {
         if self.rows.len() < 20 {
             return None;
         }
-        // Unknowns: beam_clear, beam_thin, beam_thick, diffuse_per_cover. Rows are scaled to W/m²
-        // of clear-sky GHI so every frame weighs alike.
-        let p0 = [prior.beam_clear, prior.beam_thin, prior.beam_thick, prior.diffuse_per_cover];
-        let n = self.rows.len() + 4;
+        // Unknowns: beam_clear, beam_thin, beam_thick, beam_cloud_brightness, diffuse_per_cover.
+        // Rows are scaled to W/m² of clear-sky GHI so every frame weighs alike.
+        let p0 = [prior.beam_clear, prior.beam_thin, prior.beam_thick, prior.beam_cloud_brightness, prior.diffuse_per_cover];
+        let n = self.rows.len() + TUNED;
         // Huber weights by iteratively reweighted least squares: rows whose reading the look-up
         // misplaces (a cloud edge a few cells off: the map says thick while the pyranometer is in
         // sun) are outliers that, unweighted, pulled the thick transmittance up and the clear one
@@ -190,23 +193,23 @@ impl Tuner {
         let mut w = vec![1.0f64; self.rows.len()];
         let mut sol = nalgebra::DVector::<f64>::from_row_slice(&p0);
         for _ in 0..if huber > 0.0 { Self::IRLS_ITERATIONS } else { 1 } {
-            let mut a = nalgebra::DMatrix::<f64>::zeros(n, 4);
+            let mut a = nalgebra::DMatrix::<f64>::zeros(n, TUNED);
             let mut b = nalgebra::DVector::<f64>::zeros(n);
             for (r, (x, y)) in self.rows.iter().enumerate() {
                 let sw = w[r].sqrt();
-                for c in 0..4 {
+                for c in 0..TUNED {
                     a[(r, c)] = sw * x[c];
                 }
                 b[r] = sw * *y;
             }
-            for c in 0..4 {
+            for c in 0..TUNED {
                 let r = self.rows.len() + c;
-                a[(r, c)] = Self::PRIOR_WEIGHT;
-                b[r] = Self::PRIOR_WEIGHT * p0[c];
+                a[(r, c)] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c];
+                b[r] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c] * p0[c];
             }
             sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
             for (r, (x, y)) in self.rows.iter().enumerate() {
-                let res = (y - (0..4).map(|c| x[c] * sol[c]).sum::<f64>()).abs();
+                let res = (y - (0..TUNED).map(|c| x[c] * sol[c]).sum::<f64>()).abs();
                 w[r] = if res > huber { huber / res } else { 1.0 };
             }
         }
@@ -214,10 +217,14 @@ impl Tuner {
         p.beam_clear = sol[0].clamp(0.8, 1.25);
         p.beam_thin = sol[1].clamp(0.05, 0.95);
         p.beam_thick = sol[2].clamp(0.0, 0.5);
-        p.diffuse_per_cover = sol[3].clamp(0.0, 0.8);
+        p.beam_cloud_brightness = sol[3].clamp(-3.0, 3.0);
+        p.diffuse_per_cover = sol[4].clamp(0.0, 0.8);
         Some(p)
     }
 }
+
+/// Unknowns of the transmittance tuning: the four table coefficients and the diffuse gain.
+const TUNED: usize = 5;
 
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
 type PyranometerColumn = (usize, [f64; 2]);
@@ -451,7 +458,7 @@ impl Nowcaster {
         let t_motion = Clock::now();
         // Tuning from measurements at the frame time.
         if self.irradiance.tune_from_measurements {
-            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh, motion.map(|m| m.v_mps));
+            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh, motion.map(|m| m.v_mps), layers.len() > 1);
         }
         let input = ForecastInput {
             issue: frame.time,
@@ -614,7 +621,11 @@ impl Nowcaster {
     /// Each pyranometer's newest completed reading is paired with the map where the cloud that
     /// shaded it then has moved to now (its sun-ray point advected by `v_mps` over the time since
     /// the middle of the reading's period): a reading is never used before its period has ended.
-    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, cbh: f64, v_mps: Option<[f64; 2]>) {
+    ///
+    /// With two layers tracked the brightness feature is left out (its regressor is 0), as in the
+    /// forecast ([`crate::forecast::forecast_with`]).
+    #[allow(clippy::too_many_arguments)]
+    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, cbh: f64, v_mps: Option<[f64; 2]>, two_layers: bool) {
         let Some((m, cols)) = &self.measurements else { return };
         let clear = crate::clearsky::clear_sky(sun, self.site.file.site.elevation_m, self.site.clear_sky_model());
         let cz = sun.apparent_zenith_rad.cos();
@@ -639,8 +650,8 @@ impl Nowcaster {
             let q = sun_ray_plane_point(*pos, cbh, self.site.file.camera.position_m, sun.apparent_zenith_rad, sun.azimuth_rad);
             let v = v_mps.unwrap_or([0.0, 0.0]);
             let (cx, cy) = map.grid.to_cell([q[0] + v[0] * lag_s, q[1] + v[1] * lag_s]);
-            // Class shares in the look-up box.
-            let mut share = [0f64; 3];
+            // Class shares and the brightness feature in the look-up box.
+            let mut share = [0f64; 4];
             let mut k = 0.0;
             let n = map.grid.n as i64;
             for j in (cy - r).round() as i64..=(cy + r).round() as i64 {
@@ -648,12 +659,14 @@ impl Nowcaster {
                     if i < 0 || j < 0 || i >= n || j >= n {
                         continue;
                     }
-                    match Class::from_u8(map.class[(j * n + i) as usize]) {
+                    let c = (j * n + i) as usize;
+                    match Class::from_u8(map.class[c]) {
                         Class::Clear => share[0] += 1.0,
                         Class::Thin => share[1] += 1.0,
                         Class::Thick => share[2] += 1.0,
                         Class::Unknown => continue,
                     }
+                    share[3] += map.brightness_feature(c) as f64;
                     k += 1.0;
                 }
             }
@@ -661,7 +674,8 @@ impl Nowcaster {
                 continue;
             }
             let beam = clear.dni_wm2 * cz / clear.ghi_wm2;
-            let x = [beam * share[0] / k, beam * share[1] / k, beam * share[2] / k, if diffuse_cover.is_nan() { 0.0 } else { diffuse_cover }];
+            let bright = if two_layers { 0.0 } else { beam * share[3] / k };
+            let x = [beam * share[0] / k, beam * share[1] / k, beam * share[2] / k, bright, if diffuse_cover.is_nan() { 0.0 } else { diffuse_cover }];
             rows.push((x, (y - clear.dhi_wm2) / clear.ghi_wm2));
         }
         let max_age_s = self.site.file.irradiance.tune_window_s;
@@ -684,7 +698,7 @@ mod tests {
     /// weights it stays near the truth, with plain least squares it does not.
     #[test]
     fn robust_tuning_resists_misplaced_readings() {
-        let truth = [0.95, 0.45, 0.05, 0.3];
+        let truth = [0.95, 0.45, 0.05, 0.0, 0.3];
         let prior = IrradianceParams { beam_clear: 1.0, beam_thin: 0.45, beam_thick: 0.03, diffuse_per_cover: 0.25, ..Default::default() };
         let mut t = Tuner::default();
         for i in 0..300 {
@@ -696,11 +710,11 @@ mod tests {
                 1 => [0.0, 1.0, 0.0],
                 _ => [0.0, 0.0, 1.0],
             };
-            let x = [beam * share[0], beam * share[1], beam * share[2], cover];
-            let mut y: f64 = (0..4).map(|c| x[c] * truth[c]).sum();
+            let x = [beam * share[0], beam * share[1], beam * share[2], 0.0, cover];
+            let mut y: f64 = (0..TUNED).map(|c| x[c] * truth[c]).sum();
             // One thick reading in four is misplaced: the sensor is in sun.
             if i % 3 == 2 && i % 4 == 0 {
-                y = beam * truth[0] + cover * truth[3];
+                y = beam * truth[0] + cover * truth[4];
             }
             t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, y, 1e9);
         }
@@ -709,5 +723,24 @@ mod tests {
         assert!((robust.beam_thick - truth[2]).abs() < 0.03, "robust beam_thick {}", robust.beam_thick);
         assert!(plain.beam_thick > truth[2] + 0.1, "plain least squares should be pulled up: {}", plain.beam_thick);
         assert!((robust.beam_clear - truth[0]).abs() < 0.03, "robust beam_clear {}", robust.beam_clear);
+    }
+
+    /// Where darker cloud passes less light, the tuning learns the brightness coefficient from a
+    /// window of readings, despite a prior of 0 (ridge shrinkage keeps it somewhat short).
+    #[test]
+    fn tuning_learns_the_brightness_coefficient() {
+        let truth = [1.0, 0.4, 0.05, 1.5, 0.2];
+        let mut t = Tuner::default();
+        for i in 0..90 {
+            let beam = 0.8;
+            let thin = (i % 2) as f64;
+            let bright = 0.12 * (((i * 5) % 7) as f64 / 3.0 - 1.0);
+            let x = [beam * (1.0 - thin), beam * thin, 0.0, beam * thin * bright, 0.6];
+            let y: f64 = (0..TUNED).map(|c| x[c] * truth[c]).sum();
+            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i * 10), x, y, 1e9);
+        }
+        let p = t.solve(&IrradianceParams::default()).unwrap();
+        assert!((p.beam_cloud_brightness - truth[3]).abs() < 0.4, "beam_cloud_brightness {}", p.beam_cloud_brightness);
+        assert!((p.beam_thin - truth[1]).abs() < 0.03, "beam_thin {}", p.beam_thin);
     }
 }

@@ -1,31 +1,33 @@
-//! Transmittance tables of a cloud map: summed-area tables of the clear, thin and thick shares,
-//! with the sun's glare filled from its neighbours.
+//! Transmittance tables of a cloud map: summed-area tables of the clear, thin and thick shares and
+//! of the cloudy cells' relative brightness, with the sun's glare filled from its neighbours.
 
 use super::IrradianceParams;
 use crate::cloudmap::CloudMap;
 use crate::segment::Class;
 
-/// Summed-area tables of the clear, thin and thick shares of a cloud map, so that the mean beam
-/// transmittance over any box is `Σ share_k · beam_k` for any per-class transmittances (the ensemble
-/// varies them without rebuilding the tables).
+/// Summed-area tables of the clear, thin and thick shares of a cloud map and of its cloudy cells'
+/// relative brightness ([`CloudMap::brightness_feature`]), so that the mean beam transmittance over
+/// any box is `Σ feature_k · beam_k` for any coefficients (the ensemble varies them without
+/// rebuilding the tables). Each cell's transmittance is thus continuous: its class's value plus
+/// `beam_cloud_brightness` times its brightness feature.
 #[derive(Debug, Clone)]
 pub struct TransmittanceMap {
     n: usize,
-    /// Summed-area table, `(n + 1)²` entries of (clear, thin, thick) shares in units of
-    /// 1/[`SHARE_UNIT`] and the known-cell count: one cache line per corner, exact integer sums.
-    sat: Vec<[i32; 4]>,
-    beams: [f64; 3],
+    /// Summed-area table, `(n + 1)²` entries of (clear, thin, thick) shares and the brightness
+    /// feature in units of 1/[`SHARE_UNIT`], and the known-cell count: exact integer sums.
+    sat: Vec<[i32; FEATURES + 1]>,
+    beams: [f64; FEATURES],
     /// Mean transmittance of the known cells.
     pub mean: f64,
-    total_shares: [f64; 3],
+    total_shares: [f64; FEATURES],
 }
 
 /// Buffers reused from frame to frame: a 256² map's summed-area table is 1 MB; a fresh one each
 /// frame cost page faults.
 mod pool {
-    crate::pool::typed_pool!(take_sat, give_sat, [i32; 4], SAT);
+    crate::pool::typed_pool!(take_sat, give_sat, [i32; super::FEATURES + 1], SAT);
     crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
-    crate::pool::typed_pool!(take_shares, give_shares, [f32; 3], SHARES);
+    crate::pool::typed_pool!(take_shares, give_shares, [f32; super::FEATURES], SHARES);
 }
 
 impl Drop for TransmittanceMap {
@@ -36,6 +38,10 @@ impl Drop for TransmittanceMap {
 
 /// Class shares are summed as integers in units of 1/1024 (a 256² map sums to under 2³¹).
 const SHARE_UNIT: f64 = 1024.0;
+
+/// Per-cell features whose box means the tables give: clear, thin and thick shares, and the
+/// brightness feature.
+pub const FEATURES: usize = 4;
 
 impl TransmittanceMap {
     /// Build from a map and per-class transmittances. Unknown cells that the camera sees (the sun's
@@ -70,11 +76,12 @@ impl TransmittanceMap {
                 (a >= 0 && b >= 0 && a < n as i64 && b < n as i64).then_some(b as usize * n + a as usize)
             })
         };
-        let shares = |k: usize, state: &[u32], filled: &[[f32; 3]]| -> Option<[f32; 3]> {
+        let bright = |k: usize| map.brightness_feature(k);
+        let shares = |k: usize, state: &[u32], filled: &[[f32; FEATURES]]| -> Option<[f32; FEATURES]> {
             match (state[k], Class::from_u8(class[k])) {
-                (1, Class::Clear) => Some([1.0, 0.0, 0.0]),
-                (1, Class::Thin) => Some([0.0, 1.0, 0.0]),
-                (1, Class::Thick) => Some([0.0, 0.0, 1.0]),
+                (1, Class::Clear) => Some([1.0, 0.0, 0.0, 0.0]),
+                (1, Class::Thin) => Some([0.0, 1.0, 0.0, bright(k)]),
+                (1, Class::Thick) => Some([0.0, 0.0, 1.0, bright(k)]),
                 (f, _) if f >= FILLED => Some(filled[(f - FILLED) as usize]),
                 _ => None,
             }
@@ -102,56 +109,62 @@ impl TransmittanceMap {
                 if state[m] != 0 || !in_view(m) {
                     continue;
                 }
-                let (mut s, mut c) = ([0f32; 3], 0f32);
+                let (mut s, mut c) = ([0f32; FEATURES], 0f32);
                 for v in neighbours(m).filter_map(|e| shares(e, &state, &filled)) {
-                    for q in 0..3 {
+                    for q in 0..FEATURES {
                         s[q] += v[q];
                     }
                     c += 1.0;
                 }
                 state[m] = FILLED + filled.len() as u32;
-                filled.push([s[0] / c, s[1] / c, s[2] / c]);
+                filled.push(s.map(|v| v / c));
                 front.push_back(m);
             }
         }
         // Row by row, appended (no zero-fill first): the table is 1 MB, the pass memory-bound.
         let unit = SHARE_UNIT as i32;
-        let step: [[i32; 4]; 4] = [[0, 0, 0, 0], [unit, 0, 0, 1], [0, unit, 0, 1], [0, 0, unit, 1]];
+        let step: [[i32; FEATURES + 1]; 4] = [[0, 0, 0, 0, 0], [unit, 0, 0, 0, 1], [0, unit, 0, 0, 1], [0, 0, unit, 0, 1]];
+        let quantise = |v: f32| (v as f64 * SHARE_UNIT).round() as i32;
         let mut sat = pool::take_sat();
         sat.reserve(w * w);
-        sat.extend(std::iter::repeat_n([0i32; 4], w));
+        sat.extend(std::iter::repeat_n([0i32; FEATURES + 1], w));
         for j in 0..n {
-            let mut rs = [0i32; 4];
-            sat.push([0; 4]);
+            let mut rs = [0i32; FEATURES + 1];
+            sat.push([0; FEATURES + 1]);
             for i in 0..n {
                 let k = j * n + i;
                 let add = if state[k] >= FILLED {
-                    // Shares are non-negative.
                     let f = filled[(state[k] - FILLED) as usize];
-                    [0, 1, 2, 3].map(|q| if q == 3 { 1 } else { (f[q] as f64 * SHARE_UNIT + 0.5) as i32 })
+                    [quantise(f[0]), quantise(f[1]), quantise(f[2]), quantise(f[3]), 1]
                 } else {
-                    step[(class[k] & 3) as usize]
+                    let mut a = step[(class[k] & 3) as usize];
+                    if a[1] + a[2] > 0 {
+                        a[3] = quantise(bright(k));
+                    }
+                    a
                 };
-                for q in 0..4 {
+                for q in 0..=FEATURES {
                     rs[q] += add[q];
                 }
                 let up = sat[j * w + i + 1];
-                sat.push([up[0] + rs[0], up[1] + rs[1], up[2] + rs[2], up[3] + rs[3]]);
+                sat.push(std::array::from_fn(|q| up[q] + rs[q]));
             }
         }
         pool::give_u32(state);
         pool::give_shares(filled);
         let total = sat[w * w - 1];
-        let total_shares = if total[3] > 0 { [0, 1, 2].map(|q| total[q] as f64 / SHARE_UNIT / total[3] as f64) } else { [f64::NAN; 3] };
-        let beams = [p.beam_clear, p.beam_thin, p.beam_thick];
+        let total_shares =
+            if total[FEATURES] > 0 { std::array::from_fn(|q| total[q] as f64 / SHARE_UNIT / total[FEATURES] as f64) } else { [f64::NAN; FEATURES] };
+        let beams = p.beams();
         let mean = total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum();
         TransmittanceMap { n, sat, beams, mean, total_shares }
     }
 
-    /// Class shares (clear, thin, thick) over the box of half-width `r` cells around continuous
-    /// cell coordinates; `None` when the box holds no known cell or its centre is off the map.
+    /// Mean features (clear, thin and thick shares, brightness feature) over the box of half-width
+    /// `r` cells around continuous cell coordinates; `None` when the box holds no known cell or its
+    /// centre is off the map.
     #[inline]
-    pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; 3]> {
+    pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; FEATURES]> {
         let n = self.n as f64;
         if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
             return None;
@@ -167,13 +180,12 @@ impl TransmittanceMap {
         }
         let w = self.n + 1;
         let (a, b, c, d) = (self.sat[y1 * w + x1], self.sat[y0 * w + x1], self.sat[y1 * w + x0], self.sat[y0 * w + x0]);
-        let cnt = a[3] - b[3] - c[3] + d[3];
+        let cnt = a[FEATURES] - b[FEATURES] - c[FEATURES] + d[FEATURES];
         if cnt <= 0 {
             return None;
         }
         let f = 1.0 / (SHARE_UNIT * cnt as f64);
-        let s = |q: usize| (a[q] - b[q] - c[q] + d[q]) as f64 * f;
-        Some([s(0), s(1), s(2)])
+        Some(std::array::from_fn(|q| (a[q] - b[q] - c[q] + d[q]) as f64 * f))
     }
 
     /// Mean transmittance over a box with the map's own per-class transmittances.
@@ -181,14 +193,15 @@ impl TransmittanceMap {
         self.box_mean_with(cx, cy, r, self.beams)
     }
 
-    /// Mean transmittance over a box for given per-class transmittances (clear, thin, thick).
+    /// Mean transmittance over a box for given coefficients ([`IrradianceParams::beams`]: clear,
+    /// thin, thick, brightness), never below 0.
     #[inline]
-    pub fn box_mean_with(&self, cx: f64, cy: f64, r: f64, beams: [f64; 3]) -> Option<f64> {
-        self.box_shares(cx, cy, r).map(|s| s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2])
+    pub fn box_mean_with(&self, cx: f64, cy: f64, r: f64, beams: [f64; FEATURES]) -> Option<f64> {
+        self.box_shares(cx, cy, r).map(|s| (s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2] + s[3] * beams[3]).max(0.0))
     }
 
-    /// Mean transmittance of the whole map for given per-class transmittances.
-    pub fn mean_with(&self, beams: [f64; 3]) -> f64 {
+    /// Mean transmittance of the whole map for given coefficients.
+    pub fn mean_with(&self, beams: [f64; FEATURES]) -> f64 {
         self.total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum()
     }
 }
@@ -204,12 +217,36 @@ mod tests {
         let mut class = vec![Class::Clear as u8; 64];
         class[0] = Class::Thick as u8;
         class[1] = Class::Unknown as u8;
-        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![false; 64], offset: 0.0 };
+        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![false; 64], offset: 0.0, brightness: vec![] };
         let p = IrradianceParams::default();
         let t = TransmittanceMap::new(&map, &p);
         // Box over cells (0..=1, 0..=1): thick, unknown, clear, clear -> (0.03 + 1 + 1) / 3.
         let m = t.box_mean(0.5, 0.5, 0.5).unwrap();
         assert!((m - (0.03 + 2.0) / 3.0).abs() < 1e-12, "{m}");
         assert!(t.box_mean(-3.0, 0.0, 1.0).is_none());
+    }
+
+    /// A cloudy cell's transmittance is its class's plus the brightness coefficient times its
+    /// brightness feature; clear cells carry no feature.
+    #[test]
+    fn brightness_feature_moves_cloudy_cells_only() {
+        let g = Grid::new(&MapParams { cells: 8, ..Default::default() }, 1000.0);
+        let mut class = vec![Class::Clear as u8; 64];
+        class[0] = Class::Thick as u8;
+        class[1] = Class::Thick as u8;
+        let mut brightness = vec![0f32; 64];
+        brightness[0] = -0.1;
+        brightness[1] = 0.1;
+        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![true; 64], offset: 0.0, brightness };
+        let p = IrradianceParams { beam_cloud_brightness: 0.5, ..Default::default() };
+        let t = TransmittanceMap::new(&map, &p);
+        let one = |cx: f64| t.box_mean(cx, 0.0, 0.0).unwrap();
+        // (transmittance never falls below 0)
+        assert!((one(0.0) - (p.beam_thick - 0.05).max(0.0)).abs() < 1e-3, "dark thick cell {}", one(0.0));
+        assert!((one(1.0) - (p.beam_thick + 0.05)).abs() < 1e-3, "bright thick cell {}", one(1.0));
+        assert!((one(2.0) - p.beam_clear).abs() < 1e-12, "clear cell {}", one(2.0));
+        // The features have zero mean over the cloud, so the whole-map mean keeps the classes' own.
+        let classes_only = TransmittanceMap::new(&map, &IrradianceParams::default());
+        assert!((t.mean - classes_only.mean).abs() < 1e-4);
     }
 }
