@@ -213,6 +213,25 @@ impl Tuner {
                 w[r] = if res > huber { huber / res } else { 1.0 };
             }
         }
+        // The robust fit follows the typical reading; under broken overcast the misplaced ones are
+        // skewed (a sensor in a gap reads far above the fit, one under cloud a little below), so
+        // the fit runs biased. The diffuse gain, which adds the same to every point, takes up the
+        // window's mean residual, so the current state is unbiased over the window.
+        if huber > 0.0 {
+            let (mut res, mut res2, mut cover) = (0.0, 0.0, 0.0);
+            for (x, y) in &self.rows {
+                let e = y - (0..TUNED).map(|c| x[c] * sol[c]).sum::<f64>();
+                res += e;
+                res2 += e * e;
+                cover += x[TUNED - 1];
+            }
+            // Only a bias the window clearly shows (beyond 2 standard errors of its mean).
+            let n = self.rows.len() as f64;
+            let se = ((res2 / n - (res / n).powi(2)).max(0.0) / n).sqrt();
+            if cover > 0.05 * n && (res / n).abs() > 2.0 * se {
+                sol[TUNED - 1] += res / cover;
+            }
+        }
         let mut p = *prior;
         p.beam_clear = sol[0].clamp(0.8, 1.25);
         p.beam_thin = sol[1].clamp(0.05, 0.95);
