@@ -48,6 +48,7 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
         db: d.path().join("live.sqlite"),
         bind: "127.0.0.1:0".parse().unwrap(),
         ack_token: Some("t".into()),
+        server: Default::default(),
         keep_s: 86_400,
         poll_ms: 40,
         overlay_every: 1,
@@ -58,7 +59,7 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
     let health = || -> serde_json::Value {
         let out = std::net::TcpStream::connect(h.addr).ok().and_then(|mut s| {
             use std::io::{Read, Write};
-            write!(s, "GET /api/health HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n").ok()?;
+            write!(s, "GET /api/health HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").ok()?;
             let mut b = String::new();
             s.read_to_string(&mut b).ok()?;
             b.split("\r\n\r\n").nth(1).map(String::from)
