@@ -80,8 +80,11 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
     // Chromium's virtual time still.
     let url = format!("http://{}/?once", h.addr);
     let profile = d.path().join("profile");
-    let dom = browse(&bin, &url, &["--dump-dom"], &profile);
+    let dom = browse(&bin, &url, &["--dump-dom", "--enable-logging=stderr", "--v=0"], &profile);
     let dom_text = String::from_utf8_lossy(&dom.stdout).to_string();
+    // The page runs under its own Content-Security-Policy: nothing on it may be refused.
+    let console = String::from_utf8_lossy(&dom.stderr);
+    assert!(!console.contains("Content Security Policy"), "the dashboard breaks its CSP:\n{console}");
     assert!(dom_text.contains("id=\"powerchart\""), "chart missing: {}", &dom_text[..dom_text.len().min(2000)]);
     assert!(dom_text.contains("class=\"band\""), "P10–P90 band missing");
     assert!(dom_text.contains("/api/overlay.png?"), "shadow map picture not requested");
