@@ -306,3 +306,58 @@ fn the_event_stream_outlives_the_header_timeout() {
     }
     h.stop();
 }
+
+fn tls_fixture() -> nephocast::serve::TlsFiles {
+    let fx = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests").join("fixtures").join("tls");
+    nephocast::serve::TlsFiles { cert_pem: fx.join("cert.pem"), key_pem: fx.join("key.pem") }
+}
+
+#[cfg(not(feature = "tls"))]
+#[test]
+fn asking_for_tls_without_the_feature_is_a_clear_error() {
+    let d = tempfile::tempdir().unwrap();
+    let server = ServerOptions { tls: Some(tls_fixture()), ..Default::default() };
+    let e = start(options(d.path(), None, server)).err().expect("refused").to_string();
+    assert!(e.contains("--features tls") && e.contains("cert.pem"), "{e}");
+}
+
+#[cfg(feature = "tls")]
+#[test]
+fn https_serves_with_the_given_certificate() {
+    use std::sync::Arc;
+    use tokio_rustls::rustls;
+    use tokio_rustls::rustls::pki_types::pem::PemObject as _;
+    use tokio_rustls::rustls::pki_types::{CertificateDer, ServerName};
+    let d = tempfile::tempdir().unwrap();
+    let files = tls_fixture();
+    let server = ServerOptions { tls: Some(files.clone()), ..Default::default() };
+    let h = start(options(d.path(), None, server)).unwrap();
+    assert!(h.tls);
+    let mut roots = rustls::RootCertStore::empty();
+    for c in CertificateDer::pem_file_iter(&files.cert_pem).unwrap() {
+        roots.add(c.unwrap()).unwrap();
+    }
+    let config = rustls::ClientConfig::builder_with_provider(Arc::new(rustls::crypto::ring::default_provider()))
+        .with_safe_default_protocol_versions()
+        .unwrap()
+        .with_root_certificates(roots)
+        .with_no_client_auth();
+    let conn = rustls::ClientConnection::new(Arc::new(config), ServerName::try_from("localhost").unwrap()).unwrap();
+    let tcp = TcpStream::connect(h.addr).unwrap();
+    tcp.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+    let mut tls = rustls::StreamOwned::new(conn, tcp);
+    tls.write_all(b"GET /api/health HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").unwrap();
+    let mut out = Vec::new();
+    let _ = tls.read_to_end(&mut out);
+    let a = parse(&String::from_utf8_lossy(&out));
+    assert_eq!(a.code, 200, "{}", a.body);
+    assert!(a.head.contains("x-frame-options: deny"));
+    // Plain HTTP on the HTTPS port gets no HTTP answer.
+    assert_eq!(request(h.addr, "GET", "/api/health", Some("localhost"), "", "").code, 0);
+    // A broken key file is named.
+    let mut bad = files.clone();
+    bad.key_pem = files.cert_pem.clone();
+    let e = start(options(d.path(), None, ServerOptions { tls: Some(bad), ..Default::default() })).err().expect("refused").to_string();
+    assert!(e.contains("cert.pem") && e.contains("private key"), "{e}");
+    h.stop();
+}
