@@ -83,7 +83,7 @@ pub fn host_name(host: &str) -> Option<String> {
 
 /// Whether a Host header value names an allowed host (`allowed` holds normalised names).
 pub fn host_allowed(host: &str, allowed: &[String]) -> bool {
-    host_name(host).is_some_and(|n| allowed.iter().any(|a| *a == n))
+    host_name(host).is_some_and(|n| allowed.contains(&n))
 }
 
 /// The dashboard page.

@@ -249,8 +249,10 @@ impl<I: AsyncWrite + Unpin> AsyncWrite for IdleIo<I> {
 
 #[cfg(feature = "tls")]
 type Acceptor = tokio_rustls::TlsAcceptor;
+/// Without the `tls` feature there is no acceptor (this type has no value).
 #[cfg(not(feature = "tls"))]
-type Acceptor = ();
+#[derive(Clone)]
+pub(crate) enum Acceptor {}
 
 /// Load the certificate and key for HTTPS (when asked for).
 ///

@@ -296,7 +296,7 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
     let (tx, _) = broadcast::channel::<String>(64);
     let stop = Arc::new(AtomicBool::new(false));
     // Bind first so the caller learns the port.
-    let std_listener = http::listen(opts.bind).map_err(|e| anyhow::anyhow!("--bind {}: {e}", opts.bind))?;
+    let std_listener = http::listen(opts.bind).map_err(|e| std::io::Error::new(e.kind(), format!("--bind {}: {e}", opts.bind)))?;
     std_listener.set_nonblocking(true)?;
     let addr = std_listener.local_addr()?;
     let app = App {
