@@ -355,6 +355,34 @@ where
 mod tests {
     use super::*;
 
+    /// One read through the idle guard.
+    async fn read_some(io: &mut IdleIo<tokio::net::TcpStream>) -> io::Result<usize> {
+        let mut byte = [0u8; 1];
+        std::future::poll_fn(|cx| {
+            let mut rb = ReadBuf::new(&mut byte);
+            Pin::new(&mut *io).poll_read(cx, &mut rb).map_ok(|()| rb.filled().len())
+        })
+        .await
+    }
+
+    #[tokio::test]
+    async fn a_stream_where_nothing_moves_is_closed_and_traffic_keeps_it_open() {
+        use std::io::Write as _;
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let mut peer = std::net::TcpStream::connect(listener.local_addr().unwrap()).unwrap();
+        let (stream, _) = listener.accept().await.unwrap();
+        let mut io = IdleIo::new(stream, Duration::from_secs(1));
+        // Traffic more often than the idle time: the stream stays open beyond it.
+        for _ in 0..30 {
+            tokio::time::sleep(Duration::from_millis(50)).await;
+            peer.write_all(b"x").unwrap();
+            assert_eq!(read_some(&mut io).await.unwrap(), 1);
+        }
+        // Silence: the next read fails as timed out (the guard turns a hang into a failure).
+        let r = tokio::time::timeout(Duration::from_secs(10), read_some(&mut io)).await.expect("idle stream never closed");
+        assert_eq!(r.unwrap_err().kind(), io::ErrorKind::TimedOut);
+    }
+
     #[test]
     fn defaults_are_valid_and_bad_limits_are_named() {
         assert!(ServerOptions::default().validate().is_ok());
