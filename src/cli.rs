@@ -78,10 +78,36 @@ pub struct WatchArgs {
     /// Address to serve on.
     #[arg(long, default_value = crate::serve::DEFAULT_BIND)]
     pub bind: std::net::SocketAddr,
-    /// Token operators give to acknowledge alarms (also from NEPHOCAST_ACK_TOKEN); without one,
-    /// acknowledging is off.
-    #[arg(long, env = "NEPHOCAST_ACK_TOKEN")]
-    pub ack_token: Option<String>,
+    /// File holding the token operators give to acknowledge alarms (one line; keep it mode 600).
+    /// The token may instead come from the environment variable NEPHOCAST_ACK_TOKEN; it is never
+    /// taken from the command line, where `ps` shows it. Without one, acknowledging is off.
+    #[arg(long, value_name = "PATH")]
+    pub ack_token_file: Option<PathBuf>,
+    /// Also allow this name (or IP literal) in the Host header; repeat for several. Loopback
+    /// names are always allowed.
+    #[arg(long = "allow-host", value_name = "NAME")]
+    pub allow_hosts: Vec<String>,
+    /// Serve on a non-loopback address even without an acknowledgement token.
+    #[arg(long)]
+    pub allow_non_loopback: bool,
+    /// Connections open at once (lowered to fit the open-file limit).
+    #[arg(long, default_value_t = 2048)]
+    pub max_connections: usize,
+    /// Time for a request's headers, also the idle time allowed between requests [s].
+    #[arg(long, default_value_t = 10.0)]
+    pub header_timeout_s: f64,
+    /// Time for a request body [s].
+    #[arg(long, default_value_t = 10.0)]
+    pub body_timeout_s: f64,
+    /// A connection on which nothing moves for this long is closed [s] (more than 15).
+    #[arg(long, default_value_t = 60.0)]
+    pub idle_timeout_s: f64,
+    /// Serve HTTPS with this certificate chain (PEM; needs a build with `--features tls`).
+    #[arg(long, value_name = "PATH", requires = "tls_key")]
+    pub tls_cert: Option<PathBuf>,
+    /// The private key for --tls-cert (PEM).
+    #[arg(long, value_name = "PATH", requires = "tls_cert")]
+    pub tls_key: Option<PathBuf>,
     /// History kept [days].
     #[arg(long, default_value_t = 30.0)]
     pub keep_days: f64,
@@ -326,17 +352,40 @@ pub fn run(cli: Cli) -> Result<()> {
             if !(a.keep_days > 0.0 && a.keep_days <= 3650.0) {
                 bail!("--keep-days: expected a number of days from 0 to 3650, got {}", a.keep_days);
             }
+            let (ack_token, mut warnings) = crate::serve::guard::read_ack_token(a.ack_token_file.as_deref(), std::env::var(crate::serve::guard::ACK_TOKEN_ENV).ok())?;
+            let secs = |name: &str, v: f64| -> Result<std::time::Duration> {
+                if !(0.1..=3600.0).contains(&v) {
+                    bail!("--{name}: expected 0.1 to 3600 s, got {v}");
+                }
+                Ok(std::time::Duration::from_secs_f64(v))
+            };
+            let server = crate::serve::ServerOptions {
+                header_timeout: secs("header-timeout-s", a.header_timeout_s)?,
+                body_timeout: secs("body-timeout-s", a.body_timeout_s)?,
+                idle_timeout: secs("idle-timeout-s", a.idle_timeout_s)?,
+                max_connections: a.max_connections,
+                allowed_hosts: a.allow_hosts,
+                allow_non_loopback: a.allow_non_loopback,
+                tls: a.tls_cert.zip(a.tls_key).map(|(cert_pem, key_pem)| crate::serve::TlsFiles { cert_pem, key_pem }),
+                ..Default::default()
+            };
             let h = crate::serve::start(crate::serve::LiveOptions {
                 site: a.site,
                 incoming: a.incoming.clone(),
                 db: a.db,
                 bind: a.bind,
-                ack_token: a.ack_token,
+                ack_token,
+                server,
                 keep_s: (a.keep_days * 86400.0) as i64,
                 poll_ms: a.poll_ms.max(20),
                 overlay_every: 1,
             })?;
-            crate::say!("watching {} — dashboard at http://{}/ (advisory only, not a protection system)", a.incoming.display(), h.addr);
+            warnings.extend(h.warnings.iter().cloned());
+            for w in &warnings {
+                eprintln!("warning: {w}");
+            }
+            let scheme = if h.tls { "https" } else { "http" };
+            crate::say!("watching {} — dashboard at {scheme}://{}/ (advisory only, not a protection system)", a.incoming.display(), h.addr);
             h.wait();
             Ok(())
         }

@@ -48,6 +48,7 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
         db: d.path().join("live.sqlite"),
         bind: "127.0.0.1:0".parse().unwrap(),
         ack_token: Some("t".into()),
+        server: Default::default(),
         keep_s: 86_400,
         poll_ms: 40,
         overlay_every: 1,
@@ -58,7 +59,7 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
     let health = || -> serde_json::Value {
         let out = std::net::TcpStream::connect(h.addr).ok().and_then(|mut s| {
             use std::io::{Read, Write};
-            write!(s, "GET /api/health HTTP/1.1\r\nHost: x\r\nConnection: close\r\n\r\n").ok()?;
+            write!(s, "GET /api/health HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").ok()?;
             let mut b = String::new();
             s.read_to_string(&mut b).ok()?;
             b.split("\r\n\r\n").nth(1).map(String::from)
@@ -79,8 +80,11 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
     // Chromium's virtual time still.
     let url = format!("http://{}/?once", h.addr);
     let profile = d.path().join("profile");
-    let dom = browse(&bin, &url, &["--dump-dom"], &profile);
+    let dom = browse(&bin, &url, &["--dump-dom", "--enable-logging=stderr", "--v=0"], &profile);
     let dom_text = String::from_utf8_lossy(&dom.stdout).to_string();
+    // The page runs under its own Content-Security-Policy: nothing on it may be refused.
+    let console = String::from_utf8_lossy(&dom.stderr);
+    assert!(!console.contains("Content Security Policy"), "the dashboard breaks its CSP:\n{console}");
     assert!(dom_text.contains("id=\"powerchart\""), "chart missing: {}", &dom_text[..dom_text.len().min(2000)]);
     assert!(dom_text.contains("class=\"band\""), "P10–P90 band missing");
     assert!(dom_text.contains("/api/overlay.png?"), "shadow map picture not requested");

@@ -27,6 +27,7 @@ fn three_hours_of_frames_stay_within_history() {
         db: d.path().join("live.sqlite"),
         bind: "127.0.0.1:0".parse().unwrap(),
         ack_token: None,
+        server: Default::default(),
         keep_s,
         poll_ms: 5,
         overlay_every: 20,

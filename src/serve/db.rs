@@ -20,7 +20,9 @@ pub fn open(path: &Path) -> rusqlite::Result<Connection> {
     c.execute_batch(
         "CREATE TABLE IF NOT EXISTS alarms (id INTEGER PRIMARY KEY, time_utc TEXT NOT NULL, from_state TEXT NOT NULL, to_state TEXT NOT NULL, probability REAL, reason TEXT, acked_utc TEXT, acked_by TEXT);
          CREATE TABLE IF NOT EXISTS history (time_utc TEXT PRIMARY KEY, unix_s INTEGER NOT NULL, cloud_fraction REAL, plant_ghi_wm2 REAL, plant_power_kw REAL, speed_mps REAL, toward_deg REAL, alarm TEXT);
-         CREATE INDEX IF NOT EXISTS history_unix ON history(unix_s);",
+         CREATE INDEX IF NOT EXISTS history_unix ON history(unix_s);
+         CREATE TRIGGER IF NOT EXISTS alarms_ack_once BEFORE UPDATE OF acked_utc, acked_by ON alarms
+           WHEN OLD.acked_utc IS NOT NULL BEGIN SELECT RAISE(ABORT, 'alarm already acknowledged'); END;",
     )?;
     Ok(c)
 }
@@ -117,6 +119,8 @@ pub struct AlarmRow {
     pub reason: String,
     /// When acknowledged, if it was.
     pub acked_utc: Option<String>,
+    /// Who acknowledged it, if anyone did.
+    pub acked_by: Option<String>,
 }
 
 /// The most recent alarm log rows, newest first.
@@ -124,7 +128,7 @@ pub struct AlarmRow {
 /// # Errors
 /// A database error.
 pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
-    let mut st = c.prepare("SELECT id, time_utc, from_state, to_state, probability, reason, acked_utc FROM alarms ORDER BY id DESC LIMIT ?1")?;
+    let mut st = c.prepare("SELECT id, time_utc, from_state, to_state, probability, reason, acked_utc, acked_by FROM alarms ORDER BY id DESC LIMIT ?1")?;
     st.query_map(params![limit as i64], |r| {
         Ok(AlarmRow {
             id: r.get(0)?,
@@ -134,6 +138,7 @@ pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
             probability: r.get::<_, Option<f64>>(4)?.unwrap_or(f64::NAN),
             reason: r.get::<_, Option<String>>(5)?.unwrap_or_default(),
             acked_utc: r.get(6)?,
+            acked_by: r.get(7)?,
         })
     })?
     .collect()
@@ -152,10 +157,61 @@ pub fn last_state(c: &Connection) -> rusqlite::Result<Option<AlarmState>> {
     }))
 }
 
-/// Acknowledge an alarm row; false when there is no such row.
+/// What became of an acknowledgement.
+#[derive(Debug, Clone, PartialEq)]
+pub enum AckOutcome {
+    /// Recorded.
+    Acked,
+    /// The alarm had been acknowledged before; that first acknowledgement is kept.
+    AlreadyAcked {
+        /// When it was first acknowledged.
+        acked_utc: String,
+        /// By whom.
+        acked_by: String,
+    },
+    /// No alarm has this id.
+    NoSuchAlarm,
+}
+
+/// Acknowledge an alarm row. Acknowledgements are append-only: only a row not yet acknowledged is
+/// written (a trigger refuses any later change of the acknowledgement, whoever writes).
 ///
 /// # Errors
 /// A database error.
-pub fn ack(c: &Connection, id: i64, by: &str, now_utc: &str) -> rusqlite::Result<bool> {
-    Ok(c.execute("UPDATE alarms SET acked_utc = ?1, acked_by = ?2 WHERE id = ?3", params![now_utc, by, id])? == 1)
+pub fn ack(c: &Connection, id: i64, by: &str, now_utc: &str) -> rusqlite::Result<AckOutcome> {
+    if c.execute("UPDATE alarms SET acked_utc = ?1, acked_by = ?2 WHERE id = ?3 AND acked_utc IS NULL", params![now_utc, by, id])? == 1 {
+        return Ok(AckOutcome::Acked);
+    }
+    let first: Option<(Option<String>, Option<String>)> = c
+        .query_row("SELECT acked_utc, acked_by FROM alarms WHERE id = ?1", params![id], |r| Ok((r.get(0)?, r.get(1)?)))
+        .map(Some)
+        .or_else(|e| if e == rusqlite::Error::QueryReturnedNoRows { Ok(None) } else { Err(e) })?;
+    Ok(match first {
+        None => AckOutcome::NoSuchAlarm,
+        Some((at, by)) => AckOutcome::AlreadyAcked { acked_utc: at.unwrap_or_default(), acked_by: by.unwrap_or_default() },
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_first_acknowledgement_is_kept() {
+        let d = tempfile::tempdir().unwrap();
+        let c = open(&d.path().join("a.sqlite")).unwrap();
+        let ch = AlarmChange { time_utc: "2026-06-14T09:00:00Z".into(), from: AlarmState::Calm, to: AlarmState::Watch, probability: 0.6, reason: "test".into() };
+        let id = insert_alarm(&c, &ch).unwrap();
+        assert_eq!(ack(&c, id, "Ana", "2026-06-14T09:01:00Z").unwrap(), AckOutcome::Acked);
+        assert_eq!(
+            ack(&c, id, "Bo", "2026-06-14T09:02:00Z").unwrap(),
+            AckOutcome::AlreadyAcked { acked_utc: "2026-06-14T09:01:00Z".into(), acked_by: "Ana".into() }
+        );
+        assert_eq!(ack(&c, id + 1, "Bo", "2026-06-14T09:02:00Z").unwrap(), AckOutcome::NoSuchAlarm);
+        // Even a direct write cannot change it.
+        assert!(c.execute("UPDATE alarms SET acked_by = 'Eve' WHERE id = ?1", params![id]).is_err());
+        let rows = alarms(&c, 10).unwrap();
+        assert_eq!(rows[0].acked_by.as_deref(), Some("Ana"));
+        assert_eq!(rows[0].acked_utc.as_deref(), Some("2026-06-14T09:01:00Z"));
+    }
 }

@@ -12,6 +12,10 @@
 //! Forecasts and alarms are advisory, not a protection system.
 
 pub mod db;
+pub mod guard;
+pub mod http;
+
+pub use http::{ServerOptions, TlsFiles};
 
 use std::collections::{BTreeMap, HashMap, HashSet, VecDeque};
 use std::net::SocketAddr;
@@ -46,6 +50,8 @@ pub struct LiveOptions {
     pub bind: SocketAddr,
     /// Token that acknowledging alarms needs (none: acknowledging is off).
     pub ack_token: Option<String>,
+    /// Timeouts, connection cap, Host allow-list, TLS, acknowledgement rate limit.
+    pub server: ServerOptions,
     /// History kept \[s\].
     pub keep_s: i64,
     /// Poll interval \[ms\].
@@ -91,13 +97,21 @@ struct App {
     shared: Arc<Mutex<Shared>>,
     tx: broadcast::Sender<String>,
     db: PathBuf,
-    token: Option<String>,
+    /// SHA-256 of the acknowledgement token (none: acknowledging is off).
+    token: Option<guard::TokenDigest>,
+    limiter: Arc<guard::AckLimiter>,
+    body_timeout: std::time::Duration,
 }
 
 /// A running live service.
 pub struct LiveHandle {
     /// Where it listens.
     pub addr: SocketAddr,
+    /// What the operator should know about how it was started (non-loopback address, lowered
+    /// connection cap).
+    pub warnings: Vec<String>,
+    /// Serving HTTPS.
+    pub tls: bool,
     stop: Arc<AtomicBool>,
     engine: Option<std::thread::JoinHandle<()>>,
     server: Option<std::thread::JoinHandle<()>>,
@@ -172,11 +186,97 @@ fn pct(v: &VecDeque<f64>, p: f64) -> Option<f64> {
     Some(s[((s.len() - 1) as f64 * p).round() as usize])
 }
 
+/// Check the server options and the address: a non-loopback address needs an acknowledgement
+/// token or `allow_non_loopback`, and is served with a warning. Returns the warnings.
+fn exposure_warnings(opts: &LiveOptions) -> anyhow::Result<Vec<String>> {
+    opts.server.validate().map_err(|e| anyhow::anyhow!("server options: {e}"))?;
+    let mut w = vec![];
+    if !opts.bind.ip().is_loopback() {
+        if opts.ack_token.is_none() && !opts.server.allow_non_loopback {
+            anyhow::bail!(
+                "--bind {}: a non-loopback address is refused without an acknowledgement token (--ack-token-file or NEPHOCAST_ACK_TOKEN); add --allow-non-loopback to serve it anyway",
+                opts.bind
+            );
+        }
+        w.push(format!(
+            "serving on the non-loopback address {}{}: anyone who reaches it sees the forecasts and alarms{}",
+            opts.bind,
+            if opts.ack_token.is_none() { " without an acknowledgement token" } else { "" },
+            if opts.server.tls.is_none() { ", in clear text (no TLS)" } else { "" },
+        ));
+        if opts.server.allowed_hosts.is_empty() && opts.bind.ip().is_unspecified() {
+            w.push("only loopback names are allowed in the Host header: give the names clients use with --allow-host".into());
+        }
+    }
+    Ok(w)
+}
+
+/// The names allowed in the Host header: the loopback names, the bound address when it is a
+/// specific one, and the extra ones asked for.
+fn allowed_hosts(opts: &LiveOptions) -> Vec<String> {
+    let mut v: Vec<String> = guard::LOOPBACK_HOSTS.iter().map(|h| guard::normalise_host_name(h)).collect();
+    if !opts.bind.ip().is_unspecified() {
+        v.push(guard::normalise_host_name(&opts.bind.ip().to_string()));
+    }
+    v.extend(opts.server.allowed_hosts.iter().filter_map(|h| guard::host_name(h)));
+    v.sort();
+    v.dedup();
+    v
+}
+
+/// The routes, behind the Host check and with the security headers on every answer.
+fn router(app: App, allowed: Arc<Vec<String>>) -> Router {
+    Router::new()
+        .route("/", get(dashboard))
+        .route("/api/nowcast", get(api_nowcast))
+        .route("/api/alarms", get(api_alarms))
+        .route("/api/alarms/ack", post(api_ack))
+        .route("/api/health", get(api_health))
+        .route("/api/history", get(api_history))
+        .route("/api/events", get(api_events))
+        .route("/api/overlay.png", get(api_overlay))
+        .route("/openapi.yaml", get(|| async { ([(header::CONTENT_TYPE, "application/yaml")], include_str!("openapi.yaml")) }))
+        .with_state(app)
+        .layer(axum::extract::DefaultBodyLimit::max(ACK_BODY_MAX_BYTES))
+        .layer(axum::middleware::from_fn_with_state(allowed, guard_request))
+}
+
+/// Refuse a Host that is not allowed (421), and put the security headers on every response.
+async fn guard_request(State(allowed): State<Arc<Vec<String>>>, req: axum::extract::Request, next: axum::middleware::Next) -> Response {
+    let host = req.headers().get(header::HOST).and_then(|h| h.to_str().ok()).map(str::to_owned).or_else(|| req.uri().authority().map(|a| a.to_string()));
+    let authority_ok = req.uri().authority().is_none_or(|a| guard::host_allowed(a.as_str(), &allowed));
+    let mut res = match host {
+        Some(h) if authority_ok && guard::host_allowed(&h, &allowed) => next.run(req).await,
+        _ => (
+            StatusCode::MISDIRECTED_REQUEST,
+            Json(serde_json::json!({"error": "Host: not served here (allowed: loopback names and those given with --allow-host)"})),
+        )
+            .into_response(),
+    };
+    let h = res.headers_mut();
+    if let Ok(v) = header::HeaderValue::from_str(&guard::CONTENT_SECURITY_POLICY) {
+        h.insert(header::CONTENT_SECURITY_POLICY, v);
+    }
+    h.insert(header::X_FRAME_OPTIONS, header::HeaderValue::from_static("DENY"));
+    h.insert(header::X_CONTENT_TYPE_OPTIONS, header::HeaderValue::from_static("nosniff"));
+    h.insert(header::REFERRER_POLICY, header::HeaderValue::from_static("no-referrer"));
+    res
+}
+
+/// Largest acknowledgement request body \[bytes\].
+pub const ACK_BODY_MAX_BYTES: usize = 4096;
+
 /// Start the live service: the engine in a thread, the HTTP server in another.
 ///
 /// # Errors
-/// Bad site files, an unusable database, or an address that cannot be bound.
+/// Bad site files, an unusable database, an address that cannot be bound, a non-loopback address
+/// without a token (unless allowed), bad server options or TLS files.
 pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
+    let mut warnings = exposure_warnings(&opts)?;
+    let tls = http::tls_acceptor(opts.server.tls.as_ref())?;
+    let is_tls = tls.is_some();
+    let (max_connections, lowered) = http::effective_max_connections(opts.server.max_connections);
+    warnings.extend(lowered);
     let nowcaster_opts = crate::replay::ReplayOptions {
         site: opts.site.clone(),
         frames: opts.incoming.clone(),
@@ -196,35 +296,32 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
     let (tx, _) = broadcast::channel::<String>(64);
     let stop = Arc::new(AtomicBool::new(false));
     // Bind first so the caller learns the port.
-    let std_listener = std::net::TcpListener::bind(opts.bind)?;
+    let std_listener = http::listen(opts.bind).map_err(|e| std::io::Error::new(e.kind(), format!("--bind {}: {e}", opts.bind)))?;
     std_listener.set_nonblocking(true)?;
     let addr = std_listener.local_addr()?;
-    let app = App { shared: shared.clone(), tx: tx.clone(), db: opts.db.clone(), token: opts.ack_token.clone() };
+    let app = App {
+        shared: shared.clone(),
+        tx: tx.clone(),
+        db: opts.db.clone(),
+        token: opts.ack_token.as_deref().map(guard::token_digest),
+        limiter: Arc::new(guard::AckLimiter::new(opts.server.ack_limits.clone())),
+        body_timeout: opts.server.body_timeout,
+    };
     let (sd_tx, sd_rx) = tokio::sync::oneshot::channel::<()>();
+    let server_opts = opts.server.clone();
+    let allowed = Arc::new(allowed_hosts(&opts));
     let server = std::thread::spawn(move || {
         let Ok(rt) = tokio::runtime::Builder::new_multi_thread().worker_threads(1).enable_all().build() else { return };
         rt.block_on(async move {
             let Ok(listener) = tokio::net::TcpListener::from_std(std_listener) else { return };
-            let router = Router::new()
-                .route("/", get(dashboard))
-                .route("/api/nowcast", get(api_nowcast))
-                .route("/api/alarms", get(api_alarms))
-                .route("/api/alarms/ack", post(api_ack))
-                .route("/api/health", get(api_health))
-                .route("/api/history", get(api_history))
-                .route("/api/events", get(api_events))
-                .route("/api/overlay.png", get(api_overlay))
-                .route("/openapi.yaml", get(|| async { ([(header::CONTENT_TYPE, "application/yaml")], include_str!("openapi.yaml")) }))
-                .with_state(app);
-            let _ = axum::serve(listener, router).with_graceful_shutdown(async move {
-                let _ = sd_rx.await;
-            })
-            .await;
+            let router = router(app, allowed);
+            http::serve(listener, router, server_opts, max_connections, tls, sd_rx).await;
         });
+        rt.shutdown_timeout(std::time::Duration::from_secs(1));
     });
     let stop2 = stop.clone();
     let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2));
-    Ok(LiveHandle { addr, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx) })
+    Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx) })
 }
 
 fn engine_loop(
@@ -335,7 +432,7 @@ fn engine_loop(
 }
 
 async fn dashboard() -> Html<&'static str> {
-    Html(include_str!("dashboard.html"))
+    Html(guard::DASHBOARD_HTML)
 }
 
 async fn api_nowcast(State(app): State<App>) -> Response {
@@ -381,6 +478,7 @@ async fn api_history(State(app): State<App>) -> Response {
 }
 
 #[derive(serde::Deserialize)]
+#[serde(deny_unknown_fields)]
 struct AckRequest {
     id: i64,
     token: String,
@@ -388,20 +486,65 @@ struct AckRequest {
     by: String,
 }
 
-async fn api_ack(State(app): State<App>, Json(req): Json<AckRequest>) -> Response {
-    let Some(token) = &app.token else {
-        return (StatusCode::FORBIDDEN, Json(serde_json::json!({"error": "acknowledging is off: start with an acknowledgement token"}))).into_response();
+fn ack_error(code: StatusCode, message: impl Into<String>) -> Response {
+    (code, Json(serde_json::json!({"error": message.into()}))).into_response()
+}
+
+/// Acknowledge an alarm: rate-limited per client and globally, the body bounded in size and
+/// time, the token compared in constant time, and only the first acknowledgement kept.
+async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::ClientAddr>>, headers: axum::http::HeaderMap, body: axum::body::Body) -> Response {
+    let Some(token) = app.token else {
+        return ack_error(StatusCode::FORBIDDEN, "acknowledging is off: start with an acknowledgement token");
     };
-    if &req.token != token {
-        return (StatusCode::FORBIDDEN, Json(serde_json::json!({"error": "wrong token"}))).into_response();
-    }
-    let by = if req.by.is_empty() { "operator".to_string() } else { req.by.clone() };
-    match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()))) {
-        Ok(true) => {
-            let _ = app.tx.send(serde_json::json!({"type": "ack", "id": req.id}).to_string());
-            Json(serde_json::json!({"acked": req.id})).into_response()
+    let ip = client.map(|c| c.0.0.ip()).unwrap_or(std::net::IpAddr::V4(std::net::Ipv4Addr::UNSPECIFIED));
+    if let Err(wait) = app.limiter.admit(ip, std::time::Instant::now()) {
+        let secs = wait.as_secs_f64().ceil().max(1.0) as u64;
+        let mut r = ack_error(StatusCode::TOO_MANY_REQUESTS, format!("too many wrong tokens: try again in {secs} s"));
+        if let Ok(v) = header::HeaderValue::from_str(&secs.to_string()) {
+            r.headers_mut().insert(header::RETRY_AFTER, v);
         }
-        Ok(false) => (StatusCode::NOT_FOUND, Json(serde_json::json!({"error": "no such alarm"}))).into_response(),
+        return r;
+    }
+    let json_type = headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).is_some_and(|v| v.trim().to_ascii_lowercase().starts_with("application/json"));
+    if !json_type {
+        return ack_error(StatusCode::UNSUPPORTED_MEDIA_TYPE, "Content-Type: expected application/json");
+    }
+    let declared = headers.get(header::CONTENT_LENGTH).and_then(|v| v.to_str().ok()).and_then(|v| v.parse::<u64>().ok());
+    if declared.is_some_and(|n| n > ACK_BODY_MAX_BYTES as u64) {
+        return ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes"));
+    }
+    let bytes = match tokio::time::timeout(app.body_timeout, axum::body::to_bytes(body, ACK_BODY_MAX_BYTES)).await {
+        Err(_) => return ack_error(StatusCode::REQUEST_TIMEOUT, format!("request body: not complete within {:.0} s", app.body_timeout.as_secs_f64())),
+        Ok(Err(_)) => return ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes")),
+        Ok(Ok(b)) => b,
+    };
+    let req: AckRequest = match serde_json::from_slice(&bytes) {
+        Ok(r) => r,
+        Err(e) => return ack_error(StatusCode::BAD_REQUEST, format!("request body: expected {{\"id\": integer, \"token\": string, \"by\": optional string}}: {e}")),
+    };
+    let by = match guard::check_by(&req.by) {
+        Ok(b) => b,
+        Err(e) => return ack_error(StatusCode::UNPROCESSABLE_ENTITY, e),
+    };
+    if !guard::token_matches(&req.token, &token) {
+        app.limiter.failed(ip, std::time::Instant::now());
+        return ack_error(StatusCode::FORBIDDEN, "wrong token");
+    }
+    app.limiter.succeeded(ip);
+    match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()))) {
+        Ok(db::AckOutcome::Acked) => {
+            let _ = app.tx.send(serde_json::json!({"type": "ack", "id": req.id}).to_string());
+            Json(serde_json::json!({"acked": req.id, "by": by})).into_response()
+        }
+        Ok(db::AckOutcome::AlreadyAcked { acked_utc, acked_by }) => (
+            StatusCode::CONFLICT,
+            Json(serde_json::json!({
+                "error": format!("alarm {} was already acknowledged at {acked_utc} by {acked_by}; the first acknowledgement is kept", req.id),
+                "acked_utc": acked_utc, "acked_by": acked_by,
+            })),
+        )
+            .into_response(),
+        Ok(db::AckOutcome::NoSuchAlarm) => ack_error(StatusCode::NOT_FOUND, format!("id: no alarm {}", req.id)),
         Err(e) => db_error(e),
     }
 }
@@ -409,7 +552,7 @@ async fn api_ack(State(app): State<App>, Json(req): Json<AckRequest>) -> Respons
 async fn api_events(State(app): State<App>) -> Sse<impl futures_util::Stream<Item = Result<Event, std::convert::Infallible>>> {
     let rx = app.tx.subscribe();
     let stream = tokio_stream::wrappers::BroadcastStream::new(rx).filter_map(|m| async move { m.ok().map(|s| Ok(Event::default().data(s))) });
-    Sse::new(stream).keep_alive(KeepAlive::default())
+    Sse::new(stream).keep_alive(KeepAlive::new().interval(http::SSE_KEEP_ALIVE))
 }
 
 async fn api_overlay(State(app): State<App>) -> Response {
