@@ -61,6 +61,17 @@ pub enum Rejection {
     /// No cloud base height for the frame's time.
     #[error("no cloud base height for this time (the series does not cover it)")]
     NoCloudBase,
+    /// Refused at intake ([`crate::intake`]): special file, too large, incomplete, corrupt.
+    #[error("{0}")]
+    Intake(crate::intake::IntakeError),
+    /// The frame's time is ahead of the system clock by more than the tolerance.
+    #[error("time {ahead_s:.0} s ahead of the system clock (tolerance {tolerance_s:.0} s)")]
+    AheadOfClock {
+        /// How far ahead \[s\].
+        ahead_s: f64,
+        /// The tolerance `qc.max_ahead_of_clock_s` \[s\].
+        tolerance_s: f64,
+    },
 }
 
 impl Rejection {
@@ -75,6 +86,8 @@ impl Rejection {
             Rejection::UnderExposed(_) => "under_exposed",
             Rejection::OverExposed(..) => "over_exposed",
             Rejection::NoCloudBase => "no_cloud_base",
+            Rejection::Intake(e) => e.code(),
+            Rejection::AheadOfClock { .. } => "ahead_of_clock",
         }
     }
 }
@@ -145,6 +158,9 @@ pub struct Counters {
     pub used: usize,
     /// Frames rejected, by reason code.
     pub rejected: std::collections::BTreeMap<String, usize>,
+    /// Times the newest accepted time was dropped because the system clock fell behind it by more
+    /// than the tolerance ([`Nowcaster::judge_clock`]).
+    pub clock_reanchors: usize,
 }
 
 /// Tuning of beam transmittances and diffuse gain from pyranometer readings (ridge regression toward
@@ -320,6 +336,59 @@ impl Nowcaster {
         let r = Rejection::Unreadable(why.to_string());
         self.count(&r);
         r
+    }
+
+    /// Count a rejection made outside [`Nowcaster::step`] (e.g. at intake) and hand it back.
+    pub fn reject(&mut self, r: Rejection) -> Rejection {
+        self.count(&r);
+        r
+    }
+
+    /// Intake limits for this site's frames: the defaults with the camera's size expected.
+    pub fn intake_options(&self) -> crate::intake::IntakeOptions {
+        crate::intake::IntakeOptions::expecting(self.site.camera.width_px, self.site.camera.height_px)
+    }
+
+    /// The newest accepted frame time.
+    pub fn newest_time(&self) -> Option<DateTime<Utc>> {
+        self.last_time
+    }
+
+    /// The clock policy, judged before a frame is read. With `tol` = `qc.max_ahead_of_clock_s`:
+    /// * a frame more than `tol` ahead of `now` (the system clock) is rejected and counted
+    ///   (`ahead_of_clock`); it never becomes the newest time, so it cannot make later frames
+    ///   out of order;
+    /// * duplicates and out-of-order frames are judged only against accepted frames, which were
+    ///   never more than `tol` ahead when accepted;
+    /// * should the system clock step back so that the newest accepted time is more than `tol`
+    ///   ahead of `now`, the engine re-anchors: it forgets the newest time and its map history (the
+    ///   motion filter restarts from the next frame), counts it in [`Counters::clock_reanchors`] and
+    ///   returns a message to log.
+    ///
+    /// # Errors
+    /// [`Rejection::AheadOfClock`] (counted).
+    pub fn judge_clock(&mut self, time: DateTime<Utc>, now: DateTime<Utc>) -> Result<Option<String>, Rejection> {
+        let tol = self.site.file.qc.max_ahead_of_clock_s;
+        let ahead = |t: DateTime<Utc>| (t - now).num_milliseconds() as f64 / 1000.0;
+        let mut note = None;
+        if let Some(last) = self.last_time
+            && ahead(last) > tol
+        {
+            note = Some(format!(
+                "clock re-anchored: the newest accepted frame ({}) is {:.0} s ahead of the system clock ({}), beyond the tolerance of {tol:.0} s; its time and the map history are dropped",
+                crate::io::fmt_time(&last),
+                ahead(last),
+                crate::io::fmt_time(&now)
+            ));
+            self.last_time = None;
+            self.history.clear();
+            self.counters.clock_reanchors += 1;
+        }
+        let a = ahead(time);
+        if a > tol {
+            return Err(self.reject(Rejection::AheadOfClock { ahead_s: a, tolerance_s: tol }));
+        }
+        Ok(note)
     }
 
     fn count(&mut self, r: &Rejection) {
