@@ -748,6 +748,39 @@ impl Nowcaster {
 mod tests {
     use super::*;
 
+    fn demo_engine() -> Nowcaster {
+        let site = Site::load(&std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/site.toml")).unwrap();
+        Nowcaster::new(site, None, None)
+    }
+
+    /// The clock policy: a frame beyond the tolerance ahead of the clock is rejected and counted
+    /// and never becomes the newest time; when the clock steps back behind the newest accepted time
+    /// by more than the tolerance, the engine re-anchors once and frames at the clock's time are
+    /// taken again.
+    #[test]
+    fn clock_policy_rejects_future_frames_and_reanchors() {
+        let mut nc = demo_engine();
+        let t = |s: &str| s.parse::<DateTime<Utc>>().unwrap();
+        let now = t("2026-06-14T10:00:00Z");
+        assert_eq!(nc.judge_clock(t("2026-06-14T10:01:59Z"), now), Ok(None));
+        let r = nc.judge_clock(t("2026-06-14T10:02:01Z"), now).unwrap_err();
+        assert_eq!(r.code(), "ahead_of_clock");
+        assert_eq!(nc.counters.rejected["ahead_of_clock"], 1);
+        assert_eq!(nc.newest_time(), None);
+        // An accepted frame at 10:00, then the host clock steps back an hour.
+        nc.last_time = Some(now);
+        assert_eq!(nc.judge_clock(t("2026-06-14T09:59:00Z"), now), Ok(None));
+        let back = t("2026-06-14T09:00:00Z");
+        let note = nc.judge_clock(t("2026-06-14T09:00:00Z"), back).unwrap().unwrap();
+        assert!(note.contains("re-anchored"), "{note}");
+        assert_eq!(nc.newest_time(), None);
+        assert_eq!(nc.counters.clock_reanchors, 1);
+        // Within the tolerance nothing happens.
+        nc.last_time = Some(t("2026-06-14T09:01:00Z"));
+        assert_eq!(nc.judge_clock(t("2026-06-14T09:00:30Z"), back), Ok(None));
+        assert_eq!(nc.counters.clock_reanchors, 1);
+    }
+
     /// Readings misplaced by the look-up (the map says thick cloud on the sun ray while the
     /// pyranometer is in sun) must not drag the tuned thick-cloud transmittance up: with Huber
     /// weights it stays near the truth, with plain least squares it does not.

@@ -356,8 +356,23 @@ fn engine_loop(
         {
             s.health.frames_changed = watch.changed;
         }
-        let Some(newest) = poll.ready.iter().max_by_key(|f| f.time).cloned() else { continue };
-        let skipped = poll.ready.len() - 1;
+        // Frames dated ahead of the clock are rejected one by one (they must not hide the newest
+        // good frame, e.g. after a restart with a future-dated file still in the folder).
+        let now = Utc::now();
+        let tol = nc.site().file.qc.max_ahead_of_clock_s;
+        let (future, ready): (Vec<_>, Vec<_>) = poll.ready.into_iter().partition(|f| (f.time - now).num_milliseconds() as f64 / 1000.0 > tol);
+        for f in &future {
+            if let Err(r) = nc.judge_clock(f.time, now) {
+                let _ = tx.send(serde_json::json!({"type": "rejected", "file": f.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string()}).to_string());
+            }
+        }
+        if !future.is_empty()
+            && let Ok(mut s) = shared.lock()
+        {
+            s.health.frames_rejected = nc.counters.rejected.clone();
+        }
+        let Some(newest) = ready.iter().max_by_key(|f| f.time).cloned() else { continue };
+        let skipped = ready.len() - 1;
         let t0 = std::time::Instant::now();
         // The clock policy (from the name alone), intake, then the engine. Older than what was
         // already processed: out of order, counted by the engine.
