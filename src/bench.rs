@@ -84,7 +84,8 @@ pub fn run(size_px: u32, frames: usize, threads: usize) -> anyhow::Result<BenchR
     pool.install(|| -> anyhow::Result<()> {
         for (t, j) in times.iter().zip(&jpegs) {
             let td = Instant::now();
-            let img = image::load_from_memory(j)?.to_rgb8();
+            // The engine's own intake (structure check and decode), as in replay and live mode.
+            let img = crate::intake::from_bytes(j, &nc.intake_options())?;
             dec.push(td.elapsed().as_secs_f64() * 1000.0);
             let n = nc.step(&Frame { time: *t, image: img }).map_err(|e| anyhow::anyhow!("{e}"))?;
             let ts = n.times;

@@ -549,7 +549,7 @@ fn cmd_segment(a: SegmentArgs) -> Result<()> {
     let params = site.as_ref().map(|s| s.file.segment.clone()).unwrap_or_default();
     let mut geoms: Vec<(crate::camera::Camera, ImageGeometry)> = vec![];
     for path in &a.images {
-        let img = image::open(path).with_context(|| format!("{}: cannot read the image", path.display()))?.to_rgb8();
+        let img = crate::intake::read_frame(path, &crate::intake::IntakeOptions::default())?;
         let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
         let (cam, sun) = if let Some(s) = &site {
             let t = fixed_time.or_else(|| crate::io::time_from_frame_name(&name)).ok_or_else(|| {
@@ -650,8 +650,8 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
         let (list, u) = crate::io::list_frames(dir)?;
         untimed += u;
         for f in list {
-            match image::open(&f.path) {
-                Ok(img) => frames.push((f.time, img.to_rgb8())),
+            match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
+                Ok(img) => frames.push((f.time, img)),
                 Err(e) => eprintln!("skipped {}: {e}", f.path.display()),
             }
         }

@@ -12,6 +12,7 @@
 //! | fisheye camera model, pixel ↔ sky direction | [`camera`] |
 //! | site and calibration files | [`config`] |
 //! | synthetic scenes with ground truth | [`synth`] |
+//! | frame intake: complete, bounded frame files only | [`intake`] |
 //! | frame quality control | [`qc`] |
 //! | cloud segmentation | [`segment`] |
 //! | cloud-plane map | [`cloudmap`] |
@@ -50,6 +51,7 @@ pub mod clearsky;
 pub mod cloudmap;
 pub mod config;
 pub mod forecast;
+pub mod intake;
 pub mod io;
 pub mod motion;
 pub mod nowcast;

@@ -61,6 +61,17 @@ pub enum Rejection {
     /// No cloud base height for the frame's time.
     #[error("no cloud base height for this time (the series does not cover it)")]
     NoCloudBase,
+    /// Refused at intake ([`crate::intake`]): special file, too large, incomplete, corrupt.
+    #[error("{0}")]
+    Intake(crate::intake::IntakeError),
+    /// The frame's time is ahead of the system clock by more than the tolerance.
+    #[error("time {ahead_s:.0} s ahead of the system clock (tolerance {tolerance_s:.0} s)")]
+    AheadOfClock {
+        /// How far ahead \[s\].
+        ahead_s: f64,
+        /// The tolerance `qc.max_ahead_of_clock_s` \[s\].
+        tolerance_s: f64,
+    },
 }
 
 impl Rejection {
@@ -75,6 +86,8 @@ impl Rejection {
             Rejection::UnderExposed(_) => "under_exposed",
             Rejection::OverExposed(..) => "over_exposed",
             Rejection::NoCloudBase => "no_cloud_base",
+            Rejection::Intake(e) => e.code(),
+            Rejection::AheadOfClock { .. } => "ahead_of_clock",
         }
     }
 }
@@ -145,6 +158,9 @@ pub struct Counters {
     pub used: usize,
     /// Frames rejected, by reason code.
     pub rejected: std::collections::BTreeMap<String, usize>,
+    /// Times the newest accepted time was dropped because the system clock fell behind it by more
+    /// than the tolerance ([`Nowcaster::judge_clock`]).
+    pub clock_reanchors: usize,
 }
 
 /// Tuning of beam transmittances and diffuse gain from pyranometer readings (ridge regression toward
@@ -346,6 +362,59 @@ impl Nowcaster {
         let r = Rejection::Unreadable(why.to_string());
         self.count(&r);
         r
+    }
+
+    /// Count a rejection made outside [`Nowcaster::step`] (e.g. at intake) and hand it back.
+    pub fn reject(&mut self, r: Rejection) -> Rejection {
+        self.count(&r);
+        r
+    }
+
+    /// Intake limits for this site's frames: the defaults with the camera's size expected.
+    pub fn intake_options(&self) -> crate::intake::IntakeOptions {
+        crate::intake::IntakeOptions::expecting(self.site.camera.width_px, self.site.camera.height_px)
+    }
+
+    /// The newest accepted frame time.
+    pub fn newest_time(&self) -> Option<DateTime<Utc>> {
+        self.last_time
+    }
+
+    /// The clock policy, judged before a frame is read. With `tol` = `qc.max_ahead_of_clock_s`:
+    /// * a frame more than `tol` ahead of `now` (the system clock) is rejected and counted
+    ///   (`ahead_of_clock`); it never becomes the newest time, so it cannot make later frames
+    ///   out of order;
+    /// * duplicates and out-of-order frames are judged only against accepted frames, which were
+    ///   never more than `tol` ahead when accepted;
+    /// * should the system clock step back so that the newest accepted time is more than `tol`
+    ///   ahead of `now`, the engine re-anchors: it forgets the newest time and its map history (the
+    ///   motion filter restarts from the next frame), counts it in [`Counters::clock_reanchors`] and
+    ///   returns a message to log.
+    ///
+    /// # Errors
+    /// [`Rejection::AheadOfClock`] (counted).
+    pub fn judge_clock(&mut self, time: DateTime<Utc>, now: DateTime<Utc>) -> Result<Option<String>, Rejection> {
+        let tol = self.site.file.qc.max_ahead_of_clock_s;
+        let ahead = |t: DateTime<Utc>| (t - now).num_milliseconds() as f64 / 1000.0;
+        let mut note = None;
+        if let Some(last) = self.last_time
+            && ahead(last) > tol
+        {
+            note = Some(format!(
+                "clock re-anchored: the newest accepted frame ({}) is {:.0} s ahead of the system clock ({}), beyond the tolerance of {tol:.0} s; its time and the map history are dropped",
+                crate::io::fmt_time(&last),
+                ahead(last),
+                crate::io::fmt_time(&now)
+            ));
+            self.last_time = None;
+            self.history.clear();
+            self.counters.clock_reanchors += 1;
+        }
+        let a = ahead(time);
+        if a > tol {
+            return Err(self.reject(Rejection::AheadOfClock { ahead_s: a, tolerance_s: tol }));
+        }
+        Ok(note)
     }
 
     fn count(&mut self, r: &Rejection) {
@@ -711,6 +780,39 @@ impl Nowcaster {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn demo_engine() -> Nowcaster {
+        let site = Site::load(&std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/site.toml")).unwrap();
+        Nowcaster::new(site, None, None)
+    }
+
+    /// The clock policy: a frame beyond the tolerance ahead of the clock is rejected and counted
+    /// and never becomes the newest time; when the clock steps back behind the newest accepted time
+    /// by more than the tolerance, the engine re-anchors once and frames at the clock's time are
+    /// taken again.
+    #[test]
+    fn clock_policy_rejects_future_frames_and_reanchors() {
+        let mut nc = demo_engine();
+        let t = |s: &str| s.parse::<DateTime<Utc>>().unwrap();
+        let now = t("2026-06-14T10:00:00Z");
+        assert_eq!(nc.judge_clock(t("2026-06-14T10:01:59Z"), now), Ok(None));
+        let r = nc.judge_clock(t("2026-06-14T10:02:01Z"), now).unwrap_err();
+        assert_eq!(r.code(), "ahead_of_clock");
+        assert_eq!(nc.counters.rejected["ahead_of_clock"], 1);
+        assert_eq!(nc.newest_time(), None);
+        // An accepted frame at 10:00, then the host clock steps back an hour.
+        nc.last_time = Some(now);
+        assert_eq!(nc.judge_clock(t("2026-06-14T09:59:00Z"), now), Ok(None));
+        let back = t("2026-06-14T09:00:00Z");
+        let note = nc.judge_clock(t("2026-06-14T09:00:00Z"), back).unwrap().unwrap();
+        assert!(note.contains("re-anchored"), "{note}");
+        assert_eq!(nc.newest_time(), None);
+        assert_eq!(nc.counters.clock_reanchors, 1);
+        // Within the tolerance nothing happens.
+        nc.last_time = Some(t("2026-06-14T09:01:00Z"));
+        assert_eq!(nc.judge_clock(t("2026-06-14T09:00:30Z"), back), Ok(None));
+        assert_eq!(nc.counters.clock_reanchors, 1);
+    }
 
     /// Readings misplaced by the look-up (the map says thick cloud on the sun ray while the
     /// pyranometer is in sun) must not drag the tuned thick-cloud transmittance up: with Huber

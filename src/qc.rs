@@ -18,11 +18,16 @@ pub struct QcParams {
     pub max_mean_level: f64,
     /// Largest share of sky pixels that may be saturated (all channels ≥ 250); default 0.25.
     pub max_saturated_fraction: f64,
+    /// Frames whose time is further ahead of the system clock than this are rejected
+    /// (`ahead_of_clock`) \[s\]; default 120 (camera and host both NTP-synchronised, a few seconds
+    /// apart at most, plus the frame's exposure and transfer). 0 to 315 360 000 (ten years: a
+    /// synthetic scene dated ahead of the host's clock can be replayed with a large value).
+    pub max_ahead_of_clock_s: f64,
 }
 
 impl Default for QcParams {
     fn default() -> Self {
-        Self { min_sun_elevation_deg: 5.0, min_mean_level: 20.0, max_mean_level: 235.0, max_saturated_fraction: 0.25 }
+        Self { min_sun_elevation_deg: 5.0, min_mean_level: 20.0, max_mean_level: 235.0, max_saturated_fraction: 0.25, max_ahead_of_clock_s: 120.0 }
     }
 }
 
@@ -35,7 +40,8 @@ impl QcParams {
         check_range(file, "qc.min_sun_elevation_deg", self.min_sun_elevation_deg, -10.0, 60.0)?;
         check_range(file, "qc.min_mean_level", self.min_mean_level, 0.0, 255.0)?;
         check_range(file, "qc.max_mean_level", self.max_mean_level, self.min_mean_level, 255.0)?;
-        check_range(file, "qc.max_saturated_fraction", self.max_saturated_fraction, 0.0, 1.0)
+        check_range(file, "qc.max_saturated_fraction", self.max_saturated_fraction, 0.0, 1.0)?;
+        check_range(file, "qc.max_ahead_of_clock_s", self.max_ahead_of_clock_s, 0.0, 315_360_000.0)
     }
 }
 

@@ -12,7 +12,11 @@
 //! * `alarms.csv` — every change of alarm state, with the probability and the reason;
 //! * `ensemble_plant.csv` — the plant-mean GHI of every ensemble member per horizon (for CRPS);
 //! * `frames.csv` — per frame: status (`ok` or the rejection code), reason, cloud fraction, cloud base
-//!   height, sun elevation, and the time of each stage;
+//!   height, sun elevation, and the time of each stage. Frames are read through [`crate::intake`]
+//!   (codes `special_file`, `file_too_large`, `unknown_format`, `truncated`, `corrupt`,
+//!   `too_many_pixels`, `wrong_size`, `unreadable`) after the clock policy
+//!   ([`Nowcaster::judge_clock`], code `ahead_of_clock`, against the system clock: a recorded frame
+//!   cannot come from the future);
 //! * `overlays/` (with `--overlays N`): every N-th frame with its cloud classes and the shadow map
 //!   over the plant.
 
@@ -23,7 +27,7 @@ use chrono::{DateTime, Utc};
 
 use crate::config::Site;
 use crate::io::{InputError, Measurements, Series, fmt_time, list_frames, write_atomic};
-use crate::nowcast::{Counters, Frame, Nowcast, Nowcaster};
+use crate::nowcast::{Counters, Frame, Nowcast, Nowcaster, Rejection};
 
 /// What a replay needs.
 #[derive(Debug, Clone)]
@@ -224,6 +228,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
     }
     let span = Some((frames[0].time, frames[frames.len() - 1].time));
     let mut nowcaster = prepare(opts, span)?;
+    let intake = nowcaster.intake_options();
     let mut fc = String::from(FORECAST_HEADER);
     let mut mo = String::from(MOTION_HEADER);
     let mut ramps = String::from("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability\n");
@@ -238,12 +243,15 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
     for (i, f) in frames.iter().enumerate() {
         let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
         let td = std::time::Instant::now();
-        let decoded = image::open(&f.path);
+        // The clock policy first (from the name alone), then intake, then the engine.
+        let frame = match nowcaster.judge_clock(f.time, Utc::now()) {
+            Err(r) => Err(r),
+            Ok(_) => crate::intake::read_frame(&f.path, &intake).map(|image| Frame { time: f.time, image }).map_err(|e| nowcaster.reject(Rejection::Intake(e))),
+        };
         let dms = td.elapsed().as_secs_f64() * 1000.0;
-        let frame = decoded.map(|img| Frame { time: f.time, image: img.to_rgb8() });
         let result = match &frame {
             Ok(fr) => nowcaster.step(fr),
-            Err(e) => Err(nowcaster.reject_unreadable(&e.to_string())),
+            Err(r) => Err(r.clone()),
         };
         match result {
             Ok(nc) => {
@@ -304,7 +312,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                     }
             }
             Err(rej) => {
-                let reason = rej.to_string().replace(',', ";");
+                let reason = rej.to_string().replace([',', '\n', '\r'], ";");
                 let _ = writeln!(fr, "{},{name},{},{reason},,,,{dms:.2},,,,,,,,", fmt_time(&f.time), rej.code());
             }
         }

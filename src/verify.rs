@@ -264,7 +264,7 @@ pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, Box<dyn 
             continue;
         }
         let t = time(&frames_csv, &r, "time_utc")?;
-        let img = image::open(sequence.join("frames").join(&r["frame"]))?.to_rgb8();
+        let img = crate::intake::read_frame(&sequence.join("frames").join(&r["frame"]), &crate::intake::IntakeOptions::expecting(site.camera.width_px, site.camera.height_px))?;
         let mask = image::open(sequence.join("truth").join("masks").join(&mask_name))?.to_luma8();
         let sun = crate::sun::position(&t, &site.observer())?;
         let sd = sun.direction_enu();

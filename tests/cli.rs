@@ -136,7 +136,7 @@ fn replay_counts_bad_frames_and_keeps_going() {
     assert!(text.contains("8 found, 6 used, 2 rejected"), "{text}");
     assert!(text.contains("1 files without a time"), "{text}");
     let frames_csv = std::fs::read_to_string(out.join("frames.csv")).unwrap();
-    assert!(frames_csv.contains(",unreadable,") && frames_csv.contains(",wrong_size,"), "{frames_csv}");
+    assert!(frames_csv.contains(",unknown_format,") && frames_csv.contains(",wrong_size,"), "{frames_csv}");
     let fc = std::fs::read_to_string(out.join("forecasts.csv")).unwrap();
     assert!(fc.starts_with("issue_time_utc,target_time_utc,horizon_s,block,ghi_wm2,dni_wm2,dhi_wm2,poa_wm2"));
     // 6 frames x 21 horizons x (4 blocks + plant).

@@ -90,7 +90,7 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     wait_for("the completed file", || json(addr, "/api/health")["frames_processed"].as_u64() == Some(7));
     // A corrupt JPEG is counted and skipped.
     std::fs::write(incoming.join("frame_20260614T084000.000Z.jpg"), b"\xff\xd8 this is not a real jpeg").unwrap();
-    wait_for("the corrupt frame to be counted", || json(addr, "/api/health")["frames_rejected"]["unreadable"].as_u64() == Some(1));
+    wait_for("the corrupt frame to be counted", || json(addr, "/api/health")["frames_rejected"]["corrupt"].as_u64() == Some(1));
     // Several frames at once: the newest is processed, the others skipped.
     for f in &frames[8..11] {
         drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());

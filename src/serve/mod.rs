@@ -2,10 +2,23 @@
 //! alarm log and recent history in SQLite, and serve a JSON API, a server-sent event stream and the
 //! operators' dashboard over HTTP (bound to 127.0.0.1 by default).
 //!
-//! * Frames appear in the incoming folder (ideally by rename). A file is taken only once its size
-//!   has stayed the same over two polls, so a file still being written is left alone until it is
-//!   complete. When several new frames wait, the newest is processed and the others are counted as
-//!   skipped: the engine keeps real time and never queues without bound.
+//! * Frames appear in the incoming folder by rename: the writer writes a name live mode ignores (one
+//!   starting with a dot, or ending in `.part` or `.tmp`, i.e. not `.jpg`/`.jpeg`/`.png`) and renames
+//!   it to `frame_<UTC time>.jpg` when done; a rename within one file system is atomic. As a
+//!   fallback for writers that write in place, a file is taken only once its size and modification
+//!   time have stayed the same over two polls, and then only if it is structurally complete
+//!   ([`crate::intake`]: a JPEG's end marker, a PNG's chunks and CRCs up to IEND); an incomplete one is
+//!   rejected as `truncated`. A file that changes after it was taken (size or modification time)
+//!   is counted (`frames_changed` in health) and logged; once stable again it is read again if it
+//!   was not used and no newer frame has been taken since (a frame the engine used stands: the
+//!   engine takes each time once). When several new frames wait, the newest is processed and the
+//!   others are counted as skipped: the engine keeps real time and never queues without bound.
+//! * Clock policy ([`Nowcaster::judge_clock`]): a frame more than `qc.max_ahead_of_clock_s`
+//!   (default 120 s) ahead of the system clock is rejected (`ahead_of_clock`) and never becomes
+//!   the newest time; out-of-order is judged only against accepted frames; if the system clock steps
+//!   back behind the newest accepted time by more than the tolerance, the engine re-anchors and
+//!   logs it. This assumes camera and host are NTP-synchronised (a few seconds apart at most); the
+//!   tolerance bounds the skew accepted.
 //! * Bad frames are counted and skipped; with the sun below the limit the engine idles.
 //! * After a restart the alarm state and log come back from the database.
 //!
@@ -35,7 +48,7 @@ use serde::Serialize;
 use tokio::sync::broadcast;
 
 use crate::io::{fmt_time, list_frames};
-use crate::nowcast::{Frame, Nowcast, Nowcaster};
+use crate::nowcast::{Frame, Nowcast, Nowcaster, Rejection};
 
 /// What the live mode needs.
 #[derive(Debug, Clone)]
@@ -69,6 +82,10 @@ pub struct Health {
     pub frames_skipped: usize,
     /// Frames rejected, by reason.
     pub frames_rejected: BTreeMap<String, usize>,
+    /// Frame files that changed (size or modification time) after they were taken.
+    pub frames_changed: usize,
+    /// Times the engine dropped its newest time because the system clock fell behind it.
+    pub clock_reanchors: usize,
     /// Time of the last processed frame.
     pub last_frame_utc: Option<String>,
     /// Age of the last processed frame when asked \[s\].
@@ -324,6 +341,92 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
     Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx) })
 }
 
+/// A frame file's signature: size and modification time.
+type Signature = (u64, Option<std::time::SystemTime>);
+
+fn signature(p: &std::path::Path) -> Signature {
+    // Of the path itself, not a link's target: a special file is judged (and refused) by intake.
+    std::fs::symlink_metadata(p).map(|m| (m.len(), m.modified().ok())).unwrap_or((0, None))
+}
+
+#[derive(Debug, Clone, Copy)]
+enum Track {
+    /// Not taken yet: its signature at the last poll.
+    Pending(Signature),
+    /// Taken with this signature; whether the engine used it.
+    Taken(Signature, bool),
+}
+
+/// The incoming folder's files over polls.
+#[derive(Default)]
+struct Watcher {
+    tracks: HashMap<PathBuf, (DateTime<Utc>, Track)>,
+    /// Files that changed after they were taken.
+    changed: usize,
+}
+
+/// What one poll found.
+struct Poll {
+    /// Files ready to be read (unchanged over two polls).
+    ready: Vec<crate::io::FrameRef>,
+    /// Lines to log.
+    notes: Vec<String>,
+}
+
+impl Watcher {
+    fn poll(&mut self, frames: &[crate::io::FrameRef]) -> Poll {
+        // Forget files that are gone (the camera's own clean-up), so the memory stays bounded.
+        let present: HashSet<&PathBuf> = frames.iter().map(|f| &f.path).collect();
+        self.tracks.retain(|p, _| present.contains(p));
+        let newest_used = self.tracks.values().filter(|(_, t)| matches!(t, Track::Taken(_, true))).map(|(t, _)| *t).max();
+        let (mut ready, mut notes) = (vec![], vec![]);
+        for f in frames {
+            let sig = signature(&f.path);
+            let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+            match self.tracks.get(&f.path).map(|x| x.1) {
+                None => {
+                    self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig)));
+                }
+                Some(Track::Pending(prev)) => {
+                    // An empty regular file is still being written; anything else that is stable is
+                    // judged (a special file is refused by intake, without being opened).
+                    let empty_file = sig.0 == 0 && std::fs::symlink_metadata(&f.path).is_ok_and(|m| m.is_file());
+                    if prev == sig && !empty_file {
+                        ready.push((f.clone(), sig));
+                    } else {
+                        self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig)));
+                    }
+                }
+                Some(Track::Taken(prev, used)) if prev != sig => {
+                    self.changed += 1;
+                    let newer_used = newest_used.is_some_and(|t| t > f.time);
+                    if used || newer_used {
+                        let why = if used { "its first version was used and stands" } else { "a newer frame was used since" };
+                        notes.push(format!("{name} changed after it was taken ({} → {} bytes); not read again: {why}", prev.0, sig.0));
+                        self.tracks.insert(f.path.clone(), (f.time, Track::Taken(sig, used)));
+                    } else {
+                        notes.push(format!("{name} changed after it was taken ({} → {} bytes); read again once it is stable", prev.0, sig.0));
+                        self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig)));
+                    }
+                }
+                Some(Track::Taken(..)) => {}
+            }
+        }
+        // Every ready file counts as taken (the newest is read, the others skipped).
+        for (f, sig) in &ready {
+            self.tracks.insert(f.path.clone(), (f.time, Track::Taken(*sig, false)));
+        }
+        Poll { ready: ready.into_iter().map(|r| r.0).collect(), notes }
+    }
+
+    /// The file read this poll, and whether the engine used it.
+    fn taken(&mut self, f: &crate::io::FrameRef, used: bool) {
+        if let Some((_, Track::Taken(_, u))) = self.tracks.get_mut(&f.path) {
+            *u = used;
+        }
+    }
+}
+
 fn engine_loop(
     opts: LiveOptions,
     mut nc: Nowcaster,
@@ -332,8 +435,8 @@ fn engine_loop(
     tx: broadcast::Sender<String>,
     stop: Arc<AtomicBool>,
 ) {
-    let mut seen: HashSet<PathBuf> = HashSet::new();
-    let mut sizes: HashMap<PathBuf, u64> = HashMap::new();
+    let mut watch = Watcher::default();
+    let intake = nc.intake_options();
     let mut processed = 0usize;
     if let Ok(mut s) = shared.lock() {
         s.health.running = true;
@@ -341,36 +444,49 @@ fn engine_loop(
     while !stop.load(Ordering::SeqCst) {
         std::thread::sleep(std::time::Duration::from_millis(opts.poll_ms));
         let Ok((frames, _)) = list_frames(&opts.incoming) else { continue };
-        // Forget files that are gone (the camera's own clean-up), so the watcher's memory stays bounded.
-        let present: HashSet<&PathBuf> = frames.iter().map(|f| &f.path).collect();
-        seen.retain(|p| present.contains(p));
-        sizes.retain(|p, _| present.contains(p));
-        // Complete files: size unchanged since the previous poll.
-        let mut ready = vec![];
-        for f in frames.iter().filter(|f| !seen.contains(&f.path)) {
-            let len = std::fs::metadata(&f.path).map(|m| m.len()).unwrap_or(0);
-            let prev = sizes.insert(f.path.clone(), len);
-            if len > 0 && prev == Some(len) {
-                ready.push(f.clone());
+        let poll = watch.poll(&frames);
+        for note in &poll.notes {
+            eprintln!("nephocast live: {note}");
+        }
+        if !poll.notes.is_empty()
+            && let Ok(mut s) = shared.lock()
+        {
+            s.health.frames_changed = watch.changed;
+        }
+        // Frames dated ahead of the clock are rejected one by one (they must not hide the newest
+        // good frame, e.g. after a restart with a future-dated file still in the folder).
+        let now = Utc::now();
+        let tol = nc.site().file.qc.max_ahead_of_clock_s;
+        let (future, ready): (Vec<_>, Vec<_>) = poll.ready.into_iter().partition(|f| (f.time - now).num_milliseconds() as f64 / 1000.0 > tol);
+        for f in &future {
+            if let Err(r) = nc.judge_clock(f.time, now) {
+                let _ = tx.send(serde_json::json!({"type": "rejected", "file": f.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string()}).to_string());
             }
         }
-        if ready.is_empty() {
-            continue;
+        if !future.is_empty()
+            && let Ok(mut s) = shared.lock()
+        {
+            s.health.frames_rejected = nc.counters.rejected.clone();
         }
-        for f in &ready {
-            seen.insert(f.path.clone());
-            sizes.remove(&f.path);
-        }
-        // Older than what was already processed: out of order, counted by the engine's QC.
-        let newest = ready.iter().max_by_key(|f| f.time).cloned();
+        let Some(newest) = ready.iter().max_by_key(|f| f.time).cloned() else { continue };
         let skipped = ready.len() - 1;
-        let Some(newest) = newest else { continue };
         let t0 = std::time::Instant::now();
-        let frame = image::open(&newest.path).map(|img| Frame { time: newest.time, image: img.to_rgb8() });
+        // The clock policy (from the name alone), intake, then the engine. Older than what was
+        // already processed: out of order, counted by the engine.
+        let frame = match nc.judge_clock(newest.time, Utc::now()) {
+            Err(r) => Err(r),
+            Ok(note) => {
+                if let Some(n) = note {
+                    eprintln!("nephocast live: {n}");
+                }
+                crate::intake::read_frame(&newest.path, &intake).map(|image| Frame { time: newest.time, image }).map_err(|e| nc.reject(Rejection::Intake(e)))
+            }
+        };
         let result = match &frame {
             Ok(fr) => nc.step(fr),
-            Err(e) => Err(nc.reject_unreadable(&e.to_string())),
+            Err(r) => Err(r.clone()),
         };
+        watch.taken(&newest, result.is_ok());
         let latency = t0.elapsed().as_secs_f64() * 1000.0;
         let mut events = vec![];
         let mut overlay = None;
@@ -406,6 +522,8 @@ fn engine_loop(
             s.health.frames_skipped += skipped;
             s.health.frames_processed = nc.counters.used;
             s.health.frames_rejected = nc.counters.rejected.clone();
+            s.health.clock_reanchors = nc.counters.clock_reanchors;
+            s.health.frames_changed = watch.changed;
             s.health.alarm = nc.alarm_state().name().into();
             if result.is_ok() {
                 s.latencies.push_back(latency);

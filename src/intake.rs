@@ -1,0 +1,524 @@
+//! Frame intake: one file on disk to one decoded RGB frame, or a typed refusal that names the file.
+//!
+//! [`read_frame`] is the only way the engine's frames are read (replay, live mode, calibration,
+//! segmentation scoring). In order, it
+//! 1. refuses special files (directory, FIFO, socket, device) from their metadata, without opening
+//!    them, and follows a symbolic link only when its target is a regular file;
+//! 2. refuses a file larger than [`IntakeOptions::max_file_bytes`], then reads its bytes once (opened
+//!    non-blocking and checked again on the open handle, so a file swapped for a FIFO in between
+//!    cannot hang the reader);
+//! 3. checks from those bytes that the image is structurally complete ([`check_complete`]): a JPEG's
+//!    marker segments are walked from SOI through the entropy-coded data to an EOI at the end of the
+//!    file (only zero padding may follow); a PNG's chunks are walked with their length bounds and
+//!    CRC-32, IHDR first and IEND last;
+//! 4. refuses header dimensions above [`IntakeOptions::max_pixels`] or different from the expected
+//!    size, before any pixel is decoded;
+//! 5. decodes ([`decode`]) with the decoder's allocation limit set, so that whatever slips past the
+//!    header check cannot allocate more than [`IntakeOptions::max_alloc_bytes`]; any decoder error is a
+//!    refusal.
+//!
+//! Inside JPEG entropy-coded data every 0xFF byte is followed by 0x00 or a restart marker, so a file
+//! cut inside the image data can never end with a false EOI there; a cut just after an EOI inside a
+//! metadata segment (an embedded thumbnail) is caught because the segment walk skips whole segments.
+
+use std::io::Read as _;
+use std::path::{Path, PathBuf};
+
+/// Limits of the intake.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct IntakeOptions {
+    /// Largest file read \[bytes\]; default 64 MiB.
+    pub max_file_bytes: u64,
+    /// Largest image by its header \[pixels\]; default 40 Mpx.
+    pub max_pixels: u64,
+    /// Largest allocation the decoder may make \[bytes\]; default 128 MiB (a 40 Mpx RGB frame is
+    /// 120 MB).
+    pub max_alloc_bytes: u64,
+    /// Width and height the frame must have (the camera's), when known \[px\].
+    pub expected_size: Option<(u32, u32)>,
+}
+
+impl Default for IntakeOptions {
+    fn default() -> Self {
+        Self { max_file_bytes: 64 << 20, max_pixels: 40_000_000, max_alloc_bytes: 128 << 20, expected_size: None }
+    }
+}
+
+impl IntakeOptions {
+    /// The defaults with an expected size.
+    pub fn expecting(width_px: u32, height_px: u32) -> Self {
+        Self { expected_size: Some((width_px, height_px)), ..Self::default() }
+    }
+}
+
+/// Why a frame was refused at intake.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum Refusal {
+    /// Not a regular file (or a link to one).
+    #[error("not a regular file: {0}")]
+    SpecialFile(String),
+    /// The file could not be read.
+    #[error("cannot read: {0}")]
+    Unreadable(String),
+    /// Larger than the cap.
+    #[error("file of {bytes} bytes is larger than the limit of {limit} bytes")]
+    TooLarge {
+        /// Size found \[bytes\].
+        bytes: u64,
+        /// The limit \[bytes\].
+        limit: u64,
+    },
+    /// Neither JPEG nor PNG.
+    #[error("not a JPEG or PNG file ({0})")]
+    UnknownFormat(String),
+    /// The image ends before its end marker.
+    #[error("incomplete: {0}")]
+    Truncated(String),
+    /// The structure is broken (bad CRC, bad segment, decoder error).
+    #[error("corrupt: {0}")]
+    Corrupt(String),
+    /// The header's dimensions exceed the pixel cap, or the decoder its allocation limit.
+    #[error("too large an image: {0}")]
+    TooManyPixels(String),
+    /// The header's dimensions differ from the expected size.
+    #[error("wrong size: {got_w}x{got_h} px, expected {want_w}x{want_h}")]
+    WrongSize {
+        /// Width found.
+        got_w: u32,
+        /// Height found.
+        got_h: u32,
+        /// Width expected.
+        want_w: u32,
+        /// Height expected.
+        want_h: u32,
+    },
+}
+
+impl Refusal {
+    /// A short code for CSV files and counters.
+    pub fn code(&self) -> &'static str {
+        match self {
+            Refusal::SpecialFile(_) => "special_file",
+            Refusal::Unreadable(_) => "unreadable",
+            Refusal::TooLarge { .. } => "file_too_large",
+            Refusal::UnknownFormat(_) => "unknown_format",
+            Refusal::Truncated(_) => "truncated",
+            Refusal::Corrupt(_) => "corrupt",
+            Refusal::TooManyPixels(_) => "too_many_pixels",
+            Refusal::WrongSize { .. } => "wrong_size",
+        }
+    }
+}
+
+/// A refusal with the file it concerns.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{}: {refusal}", file.display())]
+pub struct IntakeError {
+    /// The file.
+    pub file: PathBuf,
+    /// Why.
+    pub refusal: Refusal,
+}
+
+impl IntakeError {
+    /// The refusal's short code.
+    pub fn code(&self) -> &'static str {
+        self.refusal.code()
+    }
+}
+
+/// The two formats taken.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Format {
+    /// JPEG (baseline or progressive).
+    Jpeg,
+    /// PNG.
+    Png,
+}
+
+const PNG_SIGNATURE: [u8; 8] = [0x89, b'P', b'N', b'G', 0x0D, 0x0A, 0x1A, 0x0A];
+
+/// Read one frame file: checks, then [`decode`].
+///
+/// # Errors
+/// An [`IntakeError`] naming the file and saying why.
+pub fn read_frame(path: &Path, opts: &IntakeOptions) -> Result<image::RgbImage, IntakeError> {
+    let err = |refusal| IntakeError { file: path.to_path_buf(), refusal };
+    let bytes = read_bytes(path, opts.max_file_bytes).map_err(err)?;
+    from_bytes(&bytes, opts).map_err(err)
+}
+
+/// Check and decode a frame's bytes (the entry point the fuzz loop drives).
+///
+/// # Errors
+/// Why the bytes are refused.
+pub fn from_bytes(bytes: &[u8], opts: &IntakeOptions) -> Result<image::RgbImage, Refusal> {
+    if bytes.len() as u64 > opts.max_file_bytes {
+        return Err(Refusal::TooLarge { bytes: bytes.len() as u64, limit: opts.max_file_bytes });
+    }
+    let (format, w, h) = check_complete(bytes)?;
+    check_dimensions(w, h, opts)?;
+    decode(bytes, format, opts)
+}
+
+/// What a path is, from its metadata, when it is not a regular file.
+fn special_kind(ft: &std::fs::FileType) -> Option<&'static str> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::FileTypeExt as _;
+        if ft.is_fifo() {
+            return Some("a FIFO");
+        }
+        if ft.is_socket() {
+            return Some("a socket");
+        }
+        if ft.is_block_device() {
+            return Some("a block device");
+        }
+        if ft.is_char_device() {
+            return Some("a character device");
+        }
+    }
+    if ft.is_dir() {
+        return Some("a directory");
+    }
+    if ft.is_symlink() {
+        return Some("a symbolic link");
+    }
+    (!ft.is_file()).then_some("not a regular file")
+}
+
+/// The bytes of a regular file (or a link to one) of at most `max_bytes`.
+fn read_bytes(path: &Path, max_bytes: u64) -> Result<Vec<u8>, Refusal> {
+    let meta = std::fs::symlink_metadata(path).map_err(|e| Refusal::Unreadable(e.to_string()))?;
+    let meta = if meta.file_type().is_symlink() {
+        let target = std::fs::metadata(path).map_err(|e| Refusal::SpecialFile(format!("a symbolic link whose target cannot be read ({e})")))?;
+        if let Some(k) = special_kind(&target.file_type()) {
+            return Err(Refusal::SpecialFile(format!("a symbolic link to {k}")));
+        }
+        target
+    } else {
+        if let Some(k) = special_kind(&meta.file_type()) {
+            return Err(Refusal::SpecialFile(k.into()));
+        }
+        meta
+    };
+    if meta.len() > max_bytes {
+        return Err(Refusal::TooLarge { bytes: meta.len(), limit: max_bytes });
+    }
+    let mut oo = std::fs::OpenOptions::new();
+    oo.read(true);
+    #[cfg(target_os = "linux")]
+    {
+        use std::os::unix::fs::OpenOptionsExt as _;
+        // O_NONBLOCK: should the path have become a FIFO since the check, opening it must not wait
+        // for a writer. It has no effect on reading a regular file.
+        const O_NONBLOCK: i32 = 0o4000;
+        oo.custom_flags(O_NONBLOCK);
+    }
+    let file = oo.open(path).map_err(|e| Refusal::Unreadable(e.to_string()))?;
+    let meta = file.metadata().map_err(|e| Refusal::Unreadable(e.to_string()))?;
+    if let Some(k) = special_kind(&meta.file_type()) {
+        return Err(Refusal::SpecialFile(format!("{k} (changed while opened)")));
+    }
+    let mut bytes = Vec::with_capacity(meta.len().min(max_bytes) as usize);
+    file.take(max_bytes + 1).read_to_end(&mut bytes).map_err(|e| Refusal::Unreadable(e.to_string()))?;
+    if bytes.len() as u64 > max_bytes {
+        return Err(Refusal::TooLarge { bytes: bytes.len() as u64, limit: max_bytes });
+    }
+    Ok(bytes)
+}
+
+/// The format by the file's first bytes.
+///
+/// # Errors
+/// Too short to tell ([`Refusal::Truncated`]) or neither format.
+pub fn sniff(bytes: &[u8]) -> Result<Format, Refusal> {
+    if bytes.is_empty() {
+        return Err(Refusal::Truncated("empty file".into()));
+    }
+    let jpeg = [0xFF, 0xD8];
+    if bytes.len() < jpeg.len() && jpeg.starts_with(bytes) || bytes.len() < PNG_SIGNATURE.len() && PNG_SIGNATURE.starts_with(bytes) {
+        return Err(Refusal::Truncated(format!("{} bytes, shorter than a signature", bytes.len())));
+    }
+    if bytes.starts_with(&jpeg) {
+        return Ok(Format::Jpeg);
+    }
+    if bytes.starts_with(&PNG_SIGNATURE) {
+        return Ok(Format::Png);
+    }
+    let head: Vec<String> = bytes.iter().take(4).map(|b| format!("{b:02X}")).collect();
+    Err(Refusal::UnknownFormat(format!("starts with {}", head.join(" "))))
+}
+
+/// Check that the bytes hold one whole JPEG or PNG; its format and header dimensions.
+///
+/// # Errors
+/// [`Refusal::Truncated`] when the data end before the image does, [`Refusal::Corrupt`] for a
+/// broken structure, [`Refusal::UnknownFormat`].
+pub fn check_complete(bytes: &[u8]) -> Result<(Format, u32, u32), Refusal> {
+    let f = sniff(bytes)?;
+    let (w, h) = match f {
+        Format::Jpeg => jpeg_structure(bytes)?,
+        Format::Png => png_structure(bytes)?,
+    };
+    Ok((f, w, h))
+}
+
+fn check_dimensions(w: u32, h: u32, opts: &IntakeOptions) -> Result<(), Refusal> {
+    if w == 0 || h == 0 {
+        return Err(Refusal::Corrupt(format!("header says {w}x{h} px")));
+    }
+    let px = w as u64 * h as u64;
+    if px > opts.max_pixels {
+        return Err(Refusal::TooManyPixels(format!("header says {w}x{h} px ({px} pixels), the limit is {}", opts.max_pixels)));
+    }
+    if let Some((ew, eh)) = opts.expected_size
+        && (w, h) != (ew, eh)
+    {
+        return Err(Refusal::WrongSize { got_w: w, got_h: h, want_w: ew, want_h: eh });
+    }
+    Ok(())
+}
+
+/// Only zero bytes after the end marker.
+fn trailing_ok(rest: &[u8], what: &str, at: usize) -> Result<(), Refusal> {
+    match rest.iter().position(|&b| b != 0) {
+        None => Ok(()),
+        Some(k) => Err(Refusal::Corrupt(format!("{} bytes of data after {what} (first non-zero at byte {})", rest.len(), at + k))),
+    }
+}
+
+/// Walk a JPEG's markers from SOI to EOI; the frame's (width, height).
+fn jpeg_structure(b: &[u8]) -> Result<(u32, u32), Refusal> {
+    let n = b.len();
+    let trunc = |at: usize, what: &str| Refusal::Truncated(format!("JPEG of {n} bytes ends inside {what} (from byte {at}) before its end marker"));
+    let mut pos = 2; // after SOI
+    let mut dims: Option<(u32, u32)> = None;
+    let mut scans = 0usize;
+    loop {
+        // A marker: 0xFF (fill bytes allowed), then its code.
+        if pos >= n {
+            return Err(trunc(pos, "the marker stream"));
+        }
+        if b[pos] != 0xFF {
+            return Err(Refusal::Corrupt(format!("JPEG: expected a marker at byte {pos}, found {:02X}", b[pos])));
+        }
+        while pos < n && b[pos] == 0xFF {
+            pos += 1;
+        }
+        if pos >= n {
+            return Err(trunc(pos, "a marker"));
+        }
+        let m = b[pos];
+        let at = pos - 1;
+        pos += 1;
+        match m {
+            0xD9 => {
+                if dims.is_none() || scans == 0 {
+                    return Err(Refusal::Corrupt(format!("JPEG: end marker at byte {at} before any frame header and scan")));
+                }
+                trailing_ok(&b[pos..], "the JPEG end marker", pos)?;
+                return dims.ok_or_else(|| Refusal::Corrupt("JPEG without a frame header".into()));
+            }
+            0xD8 => return Err(Refusal::Corrupt(format!("JPEG: a second start marker at byte {at}"))),
+            0x01 | 0xD0..=0xD7 => continue,
+            0x00 => return Err(Refusal::Corrupt(format!("JPEG: stuffed zero where a marker was expected at byte {at}"))),
+            _ => {}
+        }
+        if pos + 2 > n {
+            return Err(trunc(at, "a segment length"));
+        }
+        let len = u16::from_be_bytes([b[pos], b[pos + 1]]) as usize;
+        if len < 2 {
+            return Err(Refusal::Corrupt(format!("JPEG: segment {m:02X} at byte {at} has length {len}")));
+        }
+        let seg = pos + 2..pos + len;
+        if seg.end > n {
+            return Err(trunc(at, &format!("segment {m:02X}")));
+        }
+        let body = &b[seg.clone()];
+        pos = seg.end;
+        match m {
+            // Start of frame (not DHT C4, JPG C8, DAC CC).
+            0xC0..=0xCF if !matches!(m, 0xC4 | 0xC8 | 0xCC) => {
+                if body.len() < 6 {
+                    return Err(Refusal::Corrupt(format!("JPEG: frame header at byte {at} is {} bytes", body.len())));
+                }
+                if dims.is_some() {
+                    return Err(Refusal::Corrupt(format!("JPEG: a second frame header at byte {at}")));
+                }
+                let h = u16::from_be_bytes([body[1], body[2]]) as u32;
+                let w = u16::from_be_bytes([body[3], body[4]]) as u32;
+                dims = Some((w, h));
+            }
+            0xDA => {
+                if dims.is_none() {
+                    return Err(Refusal::Corrupt(format!("JPEG: scan at byte {at} before the frame header")));
+                }
+                scans += 1;
+                // Entropy-coded data up to the next marker that is not a restart.
+                loop {
+                    let Some(k) = b[pos..].iter().position(|&x| x == 0xFF) else {
+                        return Err(trunc(at, "the image data"));
+                    };
+                    let f = pos + k;
+                    if f + 1 >= n {
+                        return Err(trunc(at, "the image data"));
+                    }
+                    match b[f + 1] {
+                        0x00 | 0xD0..=0xD7 => pos = f + 2,
+                        0xFF => pos = f + 1,
+                        _ => {
+                            pos = f;
+                            break;
+                        }
+                    }
+                }
+            }
+            _ => {}
+        }
+    }
+}
+
+/// Walk a PNG's chunks with their CRCs; IHDR's (width, height).
+fn png_structure(b: &[u8]) -> Result<(u32, u32), Refusal> {
+    let n = b.len();
+    let mut pos = PNG_SIGNATURE.len();
+    let mut dims = None;
+    let mut idat = false;
+    loop {
+        if pos + 8 > n {
+            return Err(Refusal::Truncated(format!("PNG of {n} bytes ends at byte {pos} before its IEND chunk")));
+        }
+        let len = u32::from_be_bytes([b[pos], b[pos + 1], b[pos + 2], b[pos + 3]]) as usize;
+        let ty = &b[pos + 4..pos + 8];
+        let name = String::from_utf8_lossy(ty).into_owned();
+        if len > 0x7FFF_FFFF {
+            return Err(Refusal::Corrupt(format!("PNG: chunk {name:?} at byte {pos} has length {len}")));
+        }
+        let end = pos + 12 + len;
+        if end > n {
+            return Err(Refusal::Truncated(format!("PNG of {n} bytes ends inside chunk {name:?} (from byte {pos}, {len} data bytes)")));
+        }
+        let stored = u32::from_be_bytes([b[end - 4], b[end - 3], b[end - 2], b[end - 1]]);
+        let crc = crc32fast::hash(&b[pos + 4..end - 4]);
+        if crc != stored {
+            return Err(Refusal::Corrupt(format!("PNG: chunk {name:?} at byte {pos} fails its CRC (stored {stored:08X}, computed {crc:08X})")));
+        }
+        let data = &b[pos + 8..end - 4];
+        match ty {
+            b"IHDR" => {
+                if dims.is_some() || pos != PNG_SIGNATURE.len() || len != 13 {
+                    return Err(Refusal::Corrupt(format!("PNG: IHDR at byte {pos} must come first, once, with 13 bytes")));
+                }
+                let w = u32::from_be_bytes([data[0], data[1], data[2], data[3]]);
+                let h = u32::from_be_bytes([data[4], data[5], data[6], data[7]]);
+                dims = Some((w, h));
+            }
+            _ if dims.is_none() => return Err(Refusal::Corrupt(format!("PNG: chunk {name:?} at byte {pos} comes before IHDR"))),
+            b"IDAT" => idat = true,
+            b"IEND" => {
+                if !idat {
+                    return Err(Refusal::Corrupt("PNG: no image data before IEND".into()));
+                }
+                trailing_ok(&b[end..], "the PNG IEND chunk", end)?;
+                return dims.ok_or_else(|| Refusal::Corrupt("PNG without IHDR".into()));
+            }
+            _ => {}
+        }
+        pos = end;
+    }
+}
+
+/// Decode checked bytes to RGB with the decoder's limits set. The one place frames are decoded, so
+/// that a cheaper decode (e.g. at reduced scale) has one place to go.
+///
+/// # Errors
+/// Any decoder error, and the allocation limit ([`Refusal::TooManyPixels`]).
+pub fn decode(bytes: &[u8], format: Format, opts: &IntakeOptions) -> Result<image::RgbImage, Refusal> {
+    let fmt = match format {
+        Format::Jpeg => image::ImageFormat::Jpeg,
+        Format::Png => image::ImageFormat::Png,
+    };
+    let mut limits = image::Limits::default();
+    let side = u32::try_from(opts.max_pixels).unwrap_or(u32::MAX);
+    limits.max_image_width = Some(side);
+    limits.max_image_height = Some(side);
+    limits.max_alloc = Some(opts.max_alloc_bytes);
+    let mut reader = image::ImageReader::with_format(std::io::Cursor::new(bytes), fmt);
+    reader.limits(limits);
+    let img = reader.decode().map_err(|e| match e {
+        image::ImageError::Limits(l) => Refusal::TooManyPixels(format!("decoder limit ({} bytes): {l}", opts.max_alloc_bytes)),
+        e => Refusal::Corrupt(format!("decoder: {e}")),
+    })?;
+    let (w, h) = (img.width(), img.height());
+    check_dimensions(w, h, opts)?;
+    // RGB frames pass without a copy.
+    Ok(img.into_rgb8())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn jpeg(w: u32, h: u32) -> Vec<u8> {
+        let img = image::RgbImage::from_fn(w, h, |x, y| image::Rgb([(x * 7 % 256) as u8, (y * 5 % 256) as u8, ((x ^ y) % 256) as u8]));
+        let mut out = vec![];
+        image::codecs::jpeg::JpegEncoder::new_with_quality(&mut out, 90).encode_image(&img).unwrap();
+        out
+    }
+
+    fn png(w: u32, h: u32) -> Vec<u8> {
+        let img = image::RgbImage::from_fn(w, h, |x, y| image::Rgb([(x * 3 % 256) as u8, (y * 11 % 256) as u8, 40]));
+        let mut out = vec![];
+        img.write_to(&mut std::io::Cursor::new(&mut out), image::ImageFormat::Png).unwrap();
+        out
+    }
+
+    #[test]
+    fn whole_frames_pass_and_keep_their_size() {
+        let o = IntakeOptions::expecting(64, 48);
+        assert_eq!(from_bytes(&jpeg(64, 48), &o).unwrap().dimensions(), (64, 48));
+        assert_eq!(from_bytes(&png(64, 48), &o).unwrap().dimensions(), (64, 48));
+        // Zero padding after the end marker is allowed; other trailing data is not.
+        let mut j = jpeg(64, 48);
+        j.extend([0u8; 100]);
+        assert!(from_bytes(&j, &o).is_ok());
+        j.push(1);
+        assert_eq!(from_bytes(&j, &o).unwrap_err().code(), "corrupt");
+    }
+
+    #[test]
+    fn every_cut_is_truncated() {
+        let o = IntakeOptions::default();
+        for (name, b) in [("jpeg", jpeg(40, 30)), ("png", png(40, 30))] {
+            for cut in 0..b.len() {
+                let r = from_bytes(&b[..cut], &o);
+                assert_eq!(r.as_ref().map(|_| ()).unwrap_err().code(), "truncated", "{name} cut at {cut} of {}: {r:?}", b.len());
+            }
+        }
+    }
+
+    #[test]
+    fn wrong_size_and_pixel_cap_before_decoding() {
+        let o = IntakeOptions { max_pixels: 1000, ..IntakeOptions::expecting(64, 48) };
+        assert_eq!(from_bytes(&jpeg(64, 48), &o).unwrap_err().code(), "too_many_pixels");
+        let o = IntakeOptions::expecting(64, 49);
+        assert_eq!(from_bytes(&png(64, 48), &o).unwrap_err(), Refusal::WrongSize { got_w: 64, got_h: 48, want_w: 64, want_h: 49 });
+    }
+
+    #[test]
+    fn decoder_allocation_limit_is_a_refusal() {
+        // Pass the header check with a large pixel cap; the decoder's own limit stops it.
+        let o = IntakeOptions { max_alloc_bytes: 1000, ..IntakeOptions::default() };
+        assert_eq!(from_bytes(&png(64, 48), &o).unwrap_err().code(), "too_many_pixels");
+    }
+
+    #[test]
+    fn unknown_and_empty() {
+        let o = IntakeOptions::default();
+        assert_eq!(from_bytes(b"GIF89a....", &o).unwrap_err().code(), "unknown_format");
+        assert_eq!(from_bytes(b"", &o).unwrap_err().code(), "truncated");
+    }
+}
