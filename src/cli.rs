@@ -356,10 +356,11 @@ pub fn run(cli: Cli) -> Result<()> {
             Ok(())
         }
         Command::Evaluate(a) => {
+            // Keep a replay from swapping the folder while it is read and added to.
+            let _lock = crate::output_set::lock(&a.replay)?;
             let e = crate::verify::evaluate(&a.sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
             crate::verify::print_evaluation(&e);
-            let p = a.replay.join("evaluation.json");
-            crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
+            let p = crate::output_set::update_file(&a.replay, "evaluation.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
             crate::say!("wrote {}", p.display());
             Ok(())
         }
@@ -417,13 +418,20 @@ fn cmd_replay(a: ReplayArgs) -> Result<()> {
         overlays_every: a.overlays,
         progress: !a.quiet,
     };
-    let s = crate::replay::replay(&opts)?;
-    print_replay_summary(&s);
-    if a.report {
+    let (mut s, mut set) = crate::replay::replay_staged(&opts)?;
+    // The report joins the set before it is committed.
+    let report = if a.report {
         let seq = opts.frames.parent().map(|p| p.to_path_buf()).unwrap_or_default();
         let truth = crate::verify::Truth::read(&seq.join("truth").join("irradiance.csv")).ok();
-        let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, &opts.out).ok());
-        let r = crate::report::write_report(&opts.out, truth.as_ref(), eval.as_ref(), "nephocast replay").map_err(|e| anyhow::anyhow!("{e}"))?;
+        let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, set.dir()).ok());
+        crate::report::write_report(set.dir(), truth.as_ref(), eval.as_ref(), "nephocast replay").map_err(|e| anyhow::anyhow!("{e}"))?;
+        Some(set.adopt("report.html")?)
+    } else {
+        None
+    };
+    s.outputs = set.commit()?;
+    print_replay_summary(&s);
+    if let Some(r) = report {
         crate::say!("report: {}", r.display());
     }
     Ok(())
@@ -462,11 +470,12 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
         overlays_every: 10,
         progress: !a.quiet,
     };
-    let s = crate::replay::replay(&opts)?;
+    // Outputs, evaluation and report are committed to `a.out` as one set at the end.
+    let (s, mut set) = crate::replay::replay_staged(&opts)?;
     print_replay_summary(&s);
     let mut eval = None;
     if data.join("truth").join("irradiance.csv").is_file() {
-        let e = crate::verify::evaluate(&data, &a.out).map_err(|e| anyhow::anyhow!("{e}"))?;
+        let e = crate::verify::evaluate(&data, set.dir()).map_err(|e| anyhow::anyhow!("{e}"))?;
         let layers = crate::verify::read_rows(&data.join("truth").join("layers.csv"))?;
         if let Some(l) = layers.first() {
             crate::say!("true cloud motion: {} m/s toward {}° at {} m", l["wind_speed_mps"], l["wind_toward_deg"], l["base_height_m"]);
@@ -474,14 +483,14 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
         crate::say!("");
         crate::say!("Plant-mean GHI against the scene's truth (skill against smart persistence):");
         crate::verify::print_evaluation(&e);
-        let p = a.out.join("evaluation.json");
-        crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
-        crate::say!("wrote {}", p.display());
+        set.write("evaluation.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
         eval = Some(e);
     }
-    crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
     let truth = crate::verify::Truth::read(&data.join("truth").join("irradiance.csv")).ok();
-    let r = crate::report::write_report(&a.out, truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)").map_err(|e| anyhow::anyhow!("{e}"))?;
+    crate::report::write_report(set.dir(), truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)").map_err(|e| anyhow::anyhow!("{e}"))?;
+    let r = set.adopt("report.html")?;
+    set.commit()?;
+    crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
     crate::say!("report: {}", r.display());
     Ok(())
 }

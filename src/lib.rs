@@ -53,6 +53,7 @@ pub mod forecast;
 pub mod io;
 pub mod motion;
 pub mod nowcast;
+pub mod output_set;
 pub mod overlay;
 pub mod plant;
 mod pool;
