@@ -577,25 +577,21 @@ fn cmd_qc(a: QcArgs) -> Result<()> {
         (FLAG_STUCK, "stuck"),
         (FLAG_GAP, "gap"),
     ];
-    let mut csv = String::from("time_utc");
+    let mut header = vec!["time_utc".to_string()];
     let mut all = vec![];
     for (label, g, dn, dh) in &sets {
         let f = qc_series_opt(&m.times, g, *dn, *dh, &site.observer());
         let counts: Vec<String> = names.iter().map(|(b, n)| (n, f.iter().filter(|x| **x & b != 0).count())).filter(|(_, c)| *c > 0).map(|(n, c)| format!("{n} {c}")).collect();
         crate::say!("{label}: {} rows, {} flagged{}{}", f.len(), f.iter().filter(|x| **x != 0).count(), if counts.is_empty() { "" } else { ": " }, counts.join(", "));
-        csv += &format!(",{label}_flags");
+        header.push(format!("{label}_flags"));
         all.push(f);
     }
     if let Some(out) = &a.out {
-        csv.push('\n');
+        let mut csv = crate::io::CsvTable::new(header);
         for (i, t) in m.times.iter().enumerate() {
-            csv += &crate::io::fmt_time(t);
-            for f in &all {
-                csv += &format!(",{}", f[i]);
-            }
-            csv.push('\n');
+            csv.row(std::iter::once(crate::io::fmt_time(t)).chain(all.iter().map(|f| f[i].to_string())));
         }
-        crate::io::write_atomic(out, csv.as_bytes())?;
+        crate::io::write_atomic(out, &csv.into_bytes())?;
         crate::say!("wrote {} (flags are bit sets: 1 GHI impossible, 2 GHI rare, 4/8 DNI, 16/32 DHI, 64 closure, 128 missing, 256 stuck, 512 gap)", out.display());
     }
     Ok(())
