@@ -339,6 +339,28 @@ mod tests {
     }
 
     #[test]
+    fn csv_fields_with_commas_quotes_and_line_breaks_read_back_whole() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("frames.csv");
+        let nasty = ["a,b", "say \"no\"", "line one\nline two", "cr\r\nlf", "", " lead", "#hash", "plain"];
+        let mut t = CsvTable::with_header_line("time_utc,file,status,reason");
+        t.row(["2026-06-14T10:00:00Z", "plain.jpg", "ok", ""]);
+        for (i, n) in nasty.iter().enumerate() {
+            t.row(["2026-06-14T10:00:00Z", &format!("f{i},{n}.jpg"), "unreadable", n]);
+        }
+        write_atomic(&p, &t.into_bytes()).unwrap();
+        let text = std::fs::read_to_string(&p).unwrap();
+        // Plain fields are written as they are.
+        assert!(text.starts_with("time_utc,file,status,reason\n2026-06-14T10:00:00Z,plain.jpg,ok,\n"), "{text}");
+        let rows = crate::verify::read_rows(&p).unwrap();
+        assert_eq!(rows.len(), nasty.len() + 1);
+        for (i, n) in nasty.iter().enumerate() {
+            assert_eq!(rows[i + 1]["reason"], *n);
+            assert_eq!(rows[i + 1]["file"], format!("f{i},{n}.jpg"));
+        }
+    }
+
+    #[test]
     fn atomic_write_leaves_no_temp() {
         let d = tempfile::tempdir().unwrap();
         let p = d.path().join("a.csv");

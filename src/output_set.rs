@@ -9,7 +9,8 @@
 //! A reader therefore sees the old complete set or the new one, never a mix.
 //!
 //! Names beside an output folder `out`:
-//! * `.out.lock` — held (`File::try_lock`) for the whole run; a second run into `out` is refused;
+//! * `.out.lock` — held (`File::try_lock`) for the whole run, removed at its end; a second run
+//!   into `out` is refused;
 //! * `.out.staging<pid>` — the set being written;
 //! * `.out.old<pid>` — the previous set while it is swapped out (portable fallback only).
 //!
@@ -79,10 +80,37 @@ pub fn lock_path(out: &Path) -> Option<PathBuf> {
     split(out).ok().map(|(p, n)| p.join(format!(".{n}.lock")))
 }
 
-/// An exclusive lock on an output folder, released when dropped.
+/// An exclusive lock on an output folder, released when dropped. On Unix the lock file is
+/// removed while still held (a run that opened it meanwhile finds, after locking, that the path no
+/// longer names its file and starts over), so no lock file stays behind.
 #[derive(Debug)]
 pub struct FolderLock {
-    _file: File,
+    file: File,
+    path: PathBuf,
+}
+
+impl Drop for FolderLock {
+    fn drop(&mut self) {
+        if cfg!(unix) {
+            let _ = std::fs::remove_file(&self.path);
+        }
+        let _ = self.file.unlock();
+    }
+}
+
+/// Whether the open file is still the one at `path` (Unix: same device and inode).
+#[cfg(unix)]
+fn still_at(file: &File, path: &Path) -> bool {
+    use std::os::unix::fs::MetadataExt;
+    match (file.metadata(), std::fs::metadata(path)) {
+        (Ok(a), Ok(b)) => a.dev() == b.dev() && a.ino() == b.ino(),
+        _ => false,
+    }
+}
+
+#[cfg(not(unix))]
+fn still_at(_file: &File, _path: &Path) -> bool {
+    true
 }
 
 /// Take the lock of an output folder without waiting.
@@ -93,12 +121,17 @@ pub fn lock(out: &Path) -> Result<FolderLock, OutputSetError> {
     let (parent, name) = split(out)?;
     std::fs::create_dir_all(&parent).map_err(io_err(&parent))?;
     let lp = parent.join(format!(".{name}.lock"));
-    let file = File::options().create(true).truncate(false).write(true).open(&lp).map_err(io_err(&lp))?;
-    match file.try_lock() {
-        Ok(()) => Ok(FolderLock { _file: file }),
-        Err(std::fs::TryLockError::WouldBlock) => Err(OutputSetError::InUse { folder: out.into(), lock: lp }),
-        Err(std::fs::TryLockError::Error(e)) => Err(OutputSetError::Io { path: lp, source: e }),
+    for _ in 0..100 {
+        let file = File::options().create(true).truncate(false).write(true).open(&lp).map_err(io_err(&lp))?;
+        match file.try_lock() {
+            Ok(()) if still_at(&file, &lp) => return Ok(FolderLock { file, path: lp }),
+            // The holder removed the file between our open and lock: open the new one.
+            Ok(()) => continue,
+            Err(std::fs::TryLockError::WouldBlock) => return Err(OutputSetError::InUse { folder: out.into(), lock: lp }),
+            Err(std::fs::TryLockError::Error(e)) => return Err(OutputSetError::Io { path: lp, source: e }),
+        }
     }
+    Err(OutputSetError::InUse { folder: out.into(), lock: lp })
 }
 
 /// One file of a manifest.
@@ -413,6 +446,7 @@ mod tests {
         assert_eq!(listing(&out), ["c.csv", "manifest.json"]);
         check_manifest(&out).unwrap();
         assert_eq!(leftovers(&out), Vec::<String>::new());
+        assert!(!lock_path(&out).unwrap().exists());
         // A changed file is noticed.
         std::fs::write(out.join("c.csv"), b"y\n3\n").unwrap();
         assert!(check_manifest(&out).unwrap_err().to_string().contains("c.csv"));

@@ -215,7 +215,7 @@ fn kill_9_at_random_points_leaves_the_old_complete_set_or_the_new_one() {
     let mut killed: Vec<String> = vec![];
     for trial in 0..TRIALS {
         let next = 1 - current;
-        let delay = rng.next_f64() * run_s[next] * 0.95;
+        let delay = rng.next_f64() * run_s[next] * 0.8;
         let mut child = replay_cmd(&site_seq, &frames, &out, next == 1).env(PAUSE_ENV, PAUSE_MS).stderr(Stdio::null()).spawn().unwrap();
         let pid = child.id();
         std::thread::sleep(Duration::from_secs_f64(delay));
