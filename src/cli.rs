@@ -429,7 +429,8 @@ fn cmd_replay(a: ReplayArgs) -> Result<()> {
     } else {
         None
     };
-    s.outputs = set.commit()?;
+    set.commit()?;
+    s.outputs.extend(report.clone());
     print_replay_summary(&s);
     if let Some(r) = report {
         crate::say!("report: {}", r.display());
@@ -643,6 +644,7 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
         warnings: fit.warnings.clone(),
     });
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
+    crate::io::clean_stale_temps(dir);
     if a.obstruction_mask {
         let circle = crate::segment::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
         let day: Vec<&image::RgbImage> = frames
@@ -664,13 +666,15 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     crate::io::write_atomic(&rp, reference.to_csv().as_bytes())?;
     cal.camera.clear_reference = Some(PathBuf::from(format!("{name}-clear-sky.csv")));
     crate::say!("wrote {} (clear-sky library: {} bins of zenith × sun angle from {} frames)", rp.display(), reference.library_bins(), reference.library_frames);
-    let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
-    crate::io::write_atomic(&a.out, text.as_bytes())?;
     let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
     let pp = dir.join(format!("{name}-residuals.png"));
     crate::io::write_atomic(&pp, &crate::synth::encode_png_rgb(&plot))?;
     let dp = dir.join(format!("{name}-detections.csv"));
     crate::io::write_atomic(&dp, crate::calibrate::detections_csv(&fit, &dets).as_bytes())?;
+    // The calibration file last: a run stopped before this point leaves the old one, which still
+    // names its own (unchanged-name) mask and library files.
+    let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
+    crate::io::write_atomic(&a.out, text.as_bytes())?;
     crate::say!("{} sun detections; model {}; residual RMS {:.2} px ({:.3}°), largest {:.2} px ({:.3}°)", dets.len(), fit.camera.projection.name(), fit.rms_px, fit.rms_deg, fit.max_px, fit.max_deg);
     for s in &fit.scores {
         crate::say!("  lens {:<14} held-out RMS {:.3} px (in-sample {:.3} px){}", s.family.name(), s.cv_rms_px, s.fit_rms_px, if s.family == fit.family { "  <- chosen" } else { "" });

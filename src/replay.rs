@@ -64,7 +64,7 @@ pub struct ReplaySummary {
     pub wall_s: f64,
     /// Last filtered motion (east, north) \[m/s\].
     pub last_motion_mps: Option<[f64; 2]>,
-    /// Output files written.
+    /// Output tables written (final paths; overlays not listed).
     pub outputs: Vec<PathBuf>,
 }
 
@@ -210,14 +210,14 @@ pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
 /// Bad site, calibration, series or measurement files; an empty frames folder; an output folder
 /// in use by another run; write failures.
 pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
-    let (mut summary, set) = replay_staged(opts)?;
-    summary.outputs = set.commit()?;
+    let (summary, set) = replay_staged(opts)?;
+    set.commit()?;
     Ok(summary)
 }
 
 /// Run a replay and leave its outputs in a staging set (holding the output folder's lock) for the
 /// caller to add files to (e.g. a report read from [`OutputSet::dir`]) and then commit.
-/// `ReplaySummary::outputs` lists the files written so far, by their final paths.
+/// `ReplaySummary::outputs` lists the tables written (not the overlays), by their final paths.
 ///
 /// # Errors
 /// As [`replay`].
@@ -310,7 +310,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                     && let Ok(fr) = &frame {
                         let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
                         let stem = name.rsplit_once('.').map(|x| x.0).unwrap_or(&name);
-                        outputs.push(set.write(&format!("overlays/{stem}.png"), &png)?);
+                        set.write(&format!("overlays/{stem}.png"), &png)?;
                     }
             }
             Err(rej) => {

@@ -506,6 +506,10 @@ pub fn pyranometers(plant: &Plant) -> Vec<(String, [f64; 2])> {
 /// Any write failure, with its path.
 pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<WriteSummary, SynthError> {
     let w = |path: PathBuf, bytes: &[u8]| write_atomic(&path, bytes).map_err(|source| SynthError::Write { path, source });
+    // Temporary files of killed earlier runs.
+    for sub in ["", "frames", "truth", "truth/masks", "calibration"] {
+        crate::io::clean_stale_temps(&out.join(sub));
+    }
     let spec = &scene.spec;
     let mut bytes = 0u64;
     // Site and calibration.
