@@ -193,15 +193,20 @@ fn kill_9_at_random_points_leaves_the_old_complete_set_or_the_new_one() {
     let seq = scene();
     let d = tempfile::tempdir().unwrap();
     let (site_seq, frames) = (seq.join("seq"), seq.join("seq/frames"));
-    // Reference sets of the two variants (without and with overlays), and how long each run takes.
+    // Reference sets of the two variants (without and with overlays), and how long a run of each
+    // takes (the shortest of three, so that kills spread over the whole run and a few land after it).
     let mut refs = vec![];
     let mut run_s = vec![];
     for overlays in [false, true] {
         let r = d.path().join(format!("ref-{overlays}"));
-        let t = Instant::now();
-        let o = replay_cmd(&site_seq, &frames, &r, overlays).env(PAUSE_ENV, PAUSE_MS).output().unwrap();
-        run_s.push(t.elapsed().as_secs_f64());
-        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let mut best = f64::INFINITY;
+        for _ in 0..3 {
+            let t = Instant::now();
+            let o = replay_cmd(&site_seq, &frames, &r, overlays).env(PAUSE_ENV, PAUSE_MS).output().unwrap();
+            best = best.min(t.elapsed().as_secs_f64());
+            assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        }
+        run_s.push(best);
         refs.push(files(&r));
     }
     assert_ne!(refs[0].keys().collect::<Vec<_>>(), refs[1].keys().collect::<Vec<_>>());
@@ -215,7 +220,7 @@ fn kill_9_at_random_points_leaves_the_old_complete_set_or_the_new_one() {
     let mut killed: Vec<String> = vec![];
     for trial in 0..TRIALS {
         let next = 1 - current;
-        let delay = rng.next_f64() * run_s[next] * 0.8;
+        let delay = rng.next_f64() * run_s[next] * 1.05;
         let mut child = replay_cmd(&site_seq, &frames, &out, next == 1).env(PAUSE_ENV, PAUSE_MS).stderr(Stdio::null()).spawn().unwrap();
         let pid = child.id();
         std::thread::sleep(Duration::from_secs_f64(delay));
@@ -228,6 +233,8 @@ fn kill_9_at_random_points_leaves_the_old_complete_set_or_the_new_one() {
         let staging = d.path().join(format!(".out.staging{pid}"));
         let phase = if finished {
             "after the run ended"
+        } else if staging.is_dir() && same_set(&out, &refs[next]).is_ok() {
+            "after the swap, before the old set was removed"
         } else if staging.join(MANIFEST).exists() || staging.join("forecasts.csv").exists() {
             "write phase (final files, manifest, swap)"
         } else if staging.is_dir() {
