@@ -352,6 +352,11 @@ fn swap_into_place(staging: &Path, out: &Path, parent: &Path, name: &str) -> Res
             Err(source) => return Err(OutputSetError::Io { path: out.into(), source }),
         }
     }
+    swap_portable(staging, out, parent, name)
+}
+
+/// The portable swap: the old set aside, the new one in, the old one to the staging path.
+fn swap_portable(staging: &Path, out: &Path, parent: &Path, name: &str) -> Result<(), OutputSetError> {
     let old = parent.join(format!(".{name}.old{}", std::process::id()));
     std::fs::rename(out, &old).map_err(io_err(out))?;
     if let Err(source) = std::fs::rename(staging, out) {
@@ -516,6 +521,20 @@ mod tests {
         assert_eq!(std::fs::read(out.join("a.csv")).unwrap(), b"old\n");
         assert!(!aside.exists());
         drop(s);
+    }
+
+    #[test]
+    fn the_portable_swap_leaves_the_new_set_in_place_and_the_old_at_the_staging_path() {
+        let d = tempfile::tempdir().unwrap();
+        let (out, staging) = (d.path().join("out"), d.path().join(".out.staging1"));
+        std::fs::create_dir(&out).unwrap();
+        std::fs::write(out.join("a.csv"), b"old\n").unwrap();
+        std::fs::create_dir(&staging).unwrap();
+        std::fs::write(staging.join("a.csv"), b"new\n").unwrap();
+        swap_portable(&staging, &out, d.path(), "out").unwrap();
+        assert_eq!(std::fs::read(out.join("a.csv")).unwrap(), b"new\n");
+        assert_eq!(std::fs::read(staging.join("a.csv")).unwrap(), b"old\n");
+        assert_eq!(listing(d.path()), [".out.staging1", "out"]);
     }
 
     #[test]
