@@ -405,10 +405,11 @@ pub fn run(cli: Cli) -> Result<()> {
             Ok(())
         }
         Command::Evaluate(a) => {
+            // Keep a replay from swapping the folder while it is read and added to.
+            let _lock = crate::output_set::lock(&a.replay)?;
             let e = crate::verify::evaluate(&a.sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
             crate::verify::print_evaluation(&e);
-            let p = a.replay.join("evaluation.json");
-            crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
+            let p = crate::output_set::update_file(&a.replay, "evaluation.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
             crate::say!("wrote {}", p.display());
             Ok(())
         }
@@ -466,13 +467,21 @@ fn cmd_replay(a: ReplayArgs) -> Result<()> {
         overlays_every: a.overlays,
         progress: !a.quiet,
     };
-    let s = crate::replay::replay(&opts)?;
-    print_replay_summary(&s);
-    if a.report {
+    let (mut s, mut set) = crate::replay::replay_staged(&opts)?;
+    // The report joins the set before it is committed.
+    let report = if a.report {
         let seq = opts.frames.parent().map(|p| p.to_path_buf()).unwrap_or_default();
         let truth = crate::verify::Truth::read(&seq.join("truth").join("irradiance.csv")).ok();
-        let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, &opts.out).ok());
-        let r = crate::report::write_report(&opts.out, truth.as_ref(), eval.as_ref(), "nephocast replay").map_err(|e| anyhow::anyhow!("{e}"))?;
+        let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, set.dir()).ok());
+        crate::report::write_report(set.dir(), truth.as_ref(), eval.as_ref(), "nephocast replay").map_err(|e| anyhow::anyhow!("{e}"))?;
+        Some(set.adopt("report.html")?)
+    } else {
+        None
+    };
+    set.commit()?;
+    s.outputs.extend(report.clone());
+    print_replay_summary(&s);
+    if let Some(r) = report {
         crate::say!("report: {}", r.display());
     }
     Ok(())
@@ -511,11 +520,12 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
         overlays_every: 10,
         progress: !a.quiet,
     };
-    let s = crate::replay::replay(&opts)?;
+    // Outputs, evaluation and report are committed to `a.out` as one set at the end.
+    let (s, mut set) = crate::replay::replay_staged(&opts)?;
     print_replay_summary(&s);
     let mut eval = None;
     if data.join("truth").join("irradiance.csv").is_file() {
-        let e = crate::verify::evaluate(&data, &a.out).map_err(|e| anyhow::anyhow!("{e}"))?;
+        let e = crate::verify::evaluate(&data, set.dir()).map_err(|e| anyhow::anyhow!("{e}"))?;
         let layers = crate::verify::read_rows(&data.join("truth").join("layers.csv"))?;
         if let Some(l) = layers.first() {
             crate::say!("true cloud motion: {} m/s toward {}° at {} m", l["wind_speed_mps"], l["wind_toward_deg"], l["base_height_m"]);
@@ -523,14 +533,14 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
         crate::say!("");
         crate::say!("Plant-mean GHI against the scene's truth (skill against smart persistence):");
         crate::verify::print_evaluation(&e);
-        let p = a.out.join("evaluation.json");
-        crate::io::write_atomic(&p, serde_json::to_string_pretty(&e)?.as_bytes())?;
-        crate::say!("wrote {}", p.display());
+        set.write("evaluation.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
         eval = Some(e);
     }
-    crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
     let truth = crate::verify::Truth::read(&data.join("truth").join("irradiance.csv")).ok();
-    let r = crate::report::write_report(&a.out, truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)").map_err(|e| anyhow::anyhow!("{e}"))?;
+    crate::report::write_report(set.dir(), truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)").map_err(|e| anyhow::anyhow!("{e}"))?;
+    let r = set.adopt("report.html")?;
+    set.commit()?;
+    crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
     crate::say!("report: {}", r.display());
     Ok(())
 }
@@ -617,25 +627,21 @@ fn cmd_qc(a: QcArgs) -> Result<()> {
         (FLAG_STUCK, "stuck"),
         (FLAG_GAP, "gap"),
     ];
-    let mut csv = String::from("time_utc");
+    let mut header = vec!["time_utc".to_string()];
     let mut all = vec![];
     for (label, g, dn, dh) in &sets {
         let f = qc_series_opt(&m.times, g, *dn, *dh, &site.observer());
         let counts: Vec<String> = names.iter().map(|(b, n)| (n, f.iter().filter(|x| **x & b != 0).count())).filter(|(_, c)| *c > 0).map(|(n, c)| format!("{n} {c}")).collect();
         crate::say!("{label}: {} rows, {} flagged{}{}", f.len(), f.iter().filter(|x| **x != 0).count(), if counts.is_empty() { "" } else { ": " }, counts.join(", "));
-        csv += &format!(",{label}_flags");
+        header.push(format!("{label}_flags"));
         all.push(f);
     }
     if let Some(out) = &a.out {
-        csv.push('\n');
+        let mut csv = crate::io::CsvTable::new(header);
         for (i, t) in m.times.iter().enumerate() {
-            csv += &crate::io::fmt_time(t);
-            for f in &all {
-                csv += &format!(",{}", f[i]);
-            }
-            csv.push('\n');
+            csv.row(std::iter::once(crate::io::fmt_time(t)).chain(all.iter().map(|f| f[i].to_string())));
         }
-        crate::io::write_atomic(out, csv.as_bytes())?;
+        crate::io::write_atomic(out, &csv.into_bytes())?;
         crate::say!("wrote {} (flags are bit sets: 1 GHI impossible, 2 GHI rare, 4/8 DNI, 16/32 DHI, 64 closure, 128 missing, 256 stuck, 512 gap)", out.display());
     }
     Ok(())
@@ -687,6 +693,7 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
         warnings: fit.warnings.clone(),
     });
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
+    crate::io::clean_stale_temps(dir);
     if a.obstruction_mask {
         let circle = crate::segment::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
         let day: Vec<&image::RgbImage> = frames
@@ -708,13 +715,15 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     crate::io::write_atomic(&rp, reference.to_csv().as_bytes())?;
     cal.camera.clear_reference = Some(PathBuf::from(format!("{name}-clear-sky.csv")));
     crate::say!("wrote {} (clear-sky library: {} bins of zenith × sun angle from {} frames)", rp.display(), reference.library_bins(), reference.library_frames);
-    let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
-    crate::io::write_atomic(&a.out, text.as_bytes())?;
     let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
     let pp = dir.join(format!("{name}-residuals.png"));
     crate::io::write_atomic(&pp, &crate::synth::encode_png_rgb(&plot))?;
     let dp = dir.join(format!("{name}-detections.csv"));
     crate::io::write_atomic(&dp, crate::calibrate::detections_csv(&fit, &dets).as_bytes())?;
+    // The calibration file last: a run stopped before this point leaves the old one, which still
+    // names its own (unchanged-name) mask and library files.
+    let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
+    crate::io::write_atomic(&a.out, text.as_bytes())?;
     crate::say!("{} sun detections; model {}; residual RMS {:.2} px ({:.3}°), largest {:.2} px ({:.3}°)", dets.len(), fit.camera.projection.name(), fit.rms_px, fit.rms_deg, fit.max_px, fit.max_deg);
     for s in &fit.scores {
         crate::say!("  lens {:<14} held-out RMS {:.3} px (in-sample {:.3} px){}", s.family.name(), s.cv_rms_px, s.fit_rms_px, if s.family == fit.family { "  <- chosen" } else { "" });

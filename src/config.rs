@@ -448,6 +448,9 @@ impl SiteFile {
         c.range("plant.point_spacing_m", p.point_spacing_m, 1.0, 1000.0)?;
         for (i, b) in p.blocks.iter().enumerate() {
             let f = |n: &str| format!("plant.blocks[{i}].{n}");
+            if let Err((expected, got)) = crate::plant::check_block_name(&b.name, &p.blocks[..i]) {
+                return Err(c.invalid(&f("name"), expected, got));
+            }
             if b.polygon_m.len() < 3 {
                 return Err(c.invalid(&f("polygon_m"), "at least 3 vertices", format!("{}", b.polygon_m.len())));
             }

@@ -36,8 +36,9 @@ pub enum InputError {
     },
 }
 
-/// Write a file atomically: write to a temporary name beside it, flush, then rename.
-/// A crash never leaves a half-written file under the final name.
+/// Write a file atomically: write to a temporary name beside it (`.<name>.tmp<pid>`), flush, then
+/// rename. A crash never leaves a half-written file under the final name; the temporary files a
+/// killed run leaves are removed by [`clean_stale_temps`].
 ///
 /// # Errors
 /// Any I/O error, with the path.
@@ -45,16 +46,136 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     let dir = path.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."));
     std::fs::create_dir_all(dir)?;
     let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
-    let tmp = dir.join(format!(".{name}.tmp{}", std::process::id()));
-    {
+    let tmp = dir.join(format!(".{name}{TEMP_MARK}{}", std::process::id()));
+    let written = (|| {
         let mut f = std::fs::File::create(&tmp)?;
         f.write_all(bytes)?;
-        f.sync_all()?;
+        f.sync_all()
+    })();
+    if let Err(e) = written {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(std::io::Error::new(e.kind(), format!("{}: {e}", tmp.display())));
     }
     std::fs::rename(&tmp, path).map_err(|e| {
         let _ = std::fs::remove_file(&tmp);
         std::io::Error::new(e.kind(), format!("{}: {e}", path.display()))
     })
+}
+
+/// What [`write_atomic`] puts between a file's name and the writer's process id in its temporary name.
+const TEMP_MARK: &str = ".tmp";
+
+/// Temporary files and folders older than this are stale whoever owns them \[s\].
+pub const STALE_AFTER_S: u64 = 24 * 3600;
+
+/// Whether a process with this id is running. On Linux from `/proc/<pid>`; elsewhere it cannot be
+/// told, and every process counts as running (stale files then go by age alone).
+pub fn process_alive(pid: u32) -> bool {
+    if pid == std::process::id() {
+        return true;
+    }
+    if cfg!(target_os = "linux") { Path::new("/proc").join(pid.to_string()).exists() } else { true }
+}
+
+/// The owner of a temporary name `<prefix><pid>` or `<prefix><pid><rest>`: the decimal digits
+/// right after `prefix`.
+pub(crate) fn owner_pid(name: &str, prefix: &str) -> Option<u32> {
+    let rest = name.strip_prefix(prefix)?;
+    let digits: String = rest.chars().take_while(char::is_ascii_digit).collect();
+    digits.parse().ok()
+}
+
+/// Whether a leftover owned by `pid` at `path` is stale: its owner is gone or it is older than
+/// [`STALE_AFTER_S`].
+pub(crate) fn is_stale(path: &Path, pid: u32) -> bool {
+    if pid == std::process::id() {
+        return false;
+    }
+    if !process_alive(pid) {
+        return true;
+    }
+    std::fs::symlink_metadata(path)
+        .and_then(|m| m.modified())
+        .ok()
+        .and_then(|t| t.elapsed().ok())
+        .is_some_and(|age| age.as_secs() > STALE_AFTER_S)
+}
+
+/// Remove the temporary files of [`write_atomic`] that killed runs left in `dir`: names
+/// `.<name>.tmp<pid>` whose process is gone (or older than [`STALE_AFTER_S`]). Returns how many
+/// were removed; an unreadable folder removes nothing.
+pub fn clean_stale_temps(dir: &Path) -> usize {
+    let Ok(rd) = std::fs::read_dir(dir) else { return 0 };
+    let mut removed = 0;
+    for e in rd.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        if !name.starts_with('.') {
+            continue;
+        }
+        let Some(at) = name.rfind(TEMP_MARK) else { continue };
+        let tail = &name[at + TEMP_MARK.len()..];
+        if tail.is_empty() || !tail.chars().all(|c| c.is_ascii_digit()) {
+            continue;
+        }
+        let Some(pid) = owner_pid(&name[at..], TEMP_MARK) else { continue };
+        let p = e.path();
+        if e.file_type().is_ok_and(|t| t.is_file()) && is_stale(&p, pid) && std::fs::remove_file(&p).is_ok() {
+            removed += 1;
+        }
+    }
+    removed
+}
+
+/// A CSV table built in memory (the `csv` crate's writer, `QuoteStyle::Necessary`): every field
+/// that holds a comma, a quote, CR or LF is quoted, so any text round-trips through a CSV reader;
+/// plain fields are written as they are. Numbers are formatted by the caller.
+pub struct CsvTable {
+    w: csv::Writer<Vec<u8>>,
+}
+
+impl std::fmt::Debug for CsvTable {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("CsvTable").finish_non_exhaustive()
+    }
+}
+
+impl CsvTable {
+    /// A table with this header row.
+    pub fn new<I, T>(header: I) -> CsvTable
+    where
+        I: IntoIterator<Item = T>,
+        T: AsRef<[u8]>,
+    {
+        let mut t = CsvTable { w: csv::WriterBuilder::new().quote_style(csv::QuoteStyle::Necessary).flexible(false).from_writer(Vec::new()) };
+        t.row(header);
+        t
+    }
+
+    /// A table whose header is one comma-separated line of plain names (e.g. `"time_utc,ghi_wm2"`).
+    pub fn with_header_line(line: &str) -> CsvTable {
+        CsvTable::new(line.trim_end().split(','))
+    }
+
+    /// Append a row. Writing into memory cannot fail; a row of the wrong length is a bug in the
+    /// caller and panics in debug builds only.
+    pub fn row<I, T>(&mut self, fields: I)
+    where
+        I: IntoIterator<Item = T>,
+        T: AsRef<[u8]>,
+    {
+        let r = self.w.write_record(fields);
+        debug_assert!(r.is_ok(), "CSV row: {r:?}");
+    }
+
+    /// The table's bytes.
+    pub fn into_bytes(self) -> Vec<u8> {
+        self.w.into_inner().unwrap_or_default()
+    }
+
+    /// The table as text (every field is UTF-8 text).
+    pub fn into_string(self) -> String {
+        String::from_utf8(self.into_bytes()).unwrap_or_else(|e| String::from_utf8_lossy(e.as_bytes()).into_owned())
+    }
 }
 
 /// Frame file names carry their UTC time as `…YYYYMMDDTHHMMSS[.fff]Z…`, e.g.
@@ -215,6 +336,28 @@ mod tests {
         );
         assert_eq!(time_from_frame_name("image_001.jpg"), None);
         assert_eq!(time_from_frame_name("20261314T101530Z.jpg"), None);
+    }
+
+    #[test]
+    fn csv_fields_with_commas_quotes_and_line_breaks_read_back_whole() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("frames.csv");
+        let nasty = ["a,b", "say \"no\"", "line one\nline two", "cr\r\nlf", "", " lead", "#hash", "plain"];
+        let mut t = CsvTable::with_header_line("time_utc,file,status,reason");
+        t.row(["2026-06-14T10:00:00Z", "plain.jpg", "ok", ""]);
+        for (i, n) in nasty.iter().enumerate() {
+            t.row(["2026-06-14T10:00:00Z", &format!("f{i},{n}.jpg"), "unreadable", n]);
+        }
+        write_atomic(&p, &t.into_bytes()).unwrap();
+        let text = std::fs::read_to_string(&p).unwrap();
+        // Plain fields are written as they are.
+        assert!(text.starts_with("time_utc,file,status,reason\n2026-06-14T10:00:00Z,plain.jpg,ok,\n"), "{text}");
+        let rows = crate::verify::read_rows(&p).unwrap();
+        assert_eq!(rows.len(), nasty.len() + 1);
+        for (i, n) in nasty.iter().enumerate() {
+            assert_eq!(rows[i + 1]["reason"], *n);
+            assert_eq!(rows[i + 1]["file"], format!("f{i},{n}.jpg"));
+        }
     }
 
     #[test]

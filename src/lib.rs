@@ -55,6 +55,7 @@ pub mod intake;
 pub mod io;
 pub mod motion;
 pub mod nowcast;
+pub mod output_set;
 pub mod overlay;
 pub mod plant;
 mod pool;

@@ -2,6 +2,29 @@
 
 use crate::config::{BlockSpec, MountKind, PlantSection};
 
+/// The name of the whole plant in forecast outputs (the `block` column of `forecasts.csv`); no
+/// block may take it.
+pub const PLANT_TARGET: &str = "plant";
+
+/// Check a block's name: not empty (nor only spaces), no control characters (line breaks, tabs…),
+/// not the plant aggregate's name [`PLANT_TARGET`] (in any case), and not the name of an
+/// `earlier` block (in any case). On failure, what was expected and what was found.
+pub fn check_block_name(name: &str, earlier: &[BlockSpec]) -> Result<(), (String, String)> {
+    if name.trim().is_empty() {
+        return Err(("a non-empty name".into(), format!("{name:?}")));
+    }
+    if name.chars().any(char::is_control) {
+        return Err(("a name without control characters (line breaks, tabs)".into(), format!("{name:?}")));
+    }
+    if name.to_lowercase() == PLANT_TARGET {
+        return Err((format!("a name other than {PLANT_TARGET:?}, which names the whole plant in the outputs"), format!("{name:?}")));
+    }
+    if let Some(j) = earlier.iter().position(|b| b.name.to_lowercase() == name.to_lowercase()) {
+        return Err((format!("a name unique among the blocks (ignoring case); plant.blocks[{j}] is {:?}", earlier[j].name), format!("{name:?}")));
+    }
+    Ok(())
+}
+
 /// A block of the plant with its forecast points.
 #[derive(Debug, Clone)]
 pub struct Block {
@@ -161,5 +184,64 @@ mod tests {
         // About half the 100 cells of the bounding square (geometry).
         assert!((40..=55).contains(&n), "{n}");
         assert_eq!(grid_points(&[[0.0, 0.0], [1.0, 0.0], [0.0, 1.0]], 10.0).len(), 1);
+    }
+
+    const SITE: &str = r#"
+[site]
+name = "t"
+latitude_deg = 45.0
+longitude_deg = 7.0
+elevation_m = 300.0
+[camera]
+calibration = "cam.toml"
+[clouds]
+base_height_m = 1500.0
+[plant]
+point_spacing_m = 25.0
+[[plant.blocks]]
+name = "A"
+polygon_m = [[0.0, 0.0], [100.0, 0.0], [100.0, 100.0], [0.0, 100.0]]
+capacity_kw = 100.0
+mount = "fixed"
+tilt_deg = 20.0
+azimuth_deg = 180.0
+[[plant.blocks]]
+name = "B"
+polygon_m = [[0.0, 0.0], [100.0, 0.0], [100.0, 100.0], [0.0, 100.0]]
+capacity_kw = 100.0
+mount = "fixed"
+tilt_deg = 20.0
+azimuth_deg = 180.0
+"#;
+
+    fn site_error(second_name: &str) -> Option<String> {
+        let text = SITE.replace("name = \"B\"", &format!("name = {}", toml::Value::String(second_name.into())));
+        let s: crate::config::SiteFile = crate::config::parse_toml(&text, std::path::Path::new("site.toml")).unwrap();
+        s.validate(std::path::Path::new("site.toml")).err().map(|e| e.to_string())
+    }
+
+    #[test]
+    fn block_names_are_checked_with_the_field_named() {
+        assert_eq!(site_error("B"), None);
+        // Commas, quotes and spaces are fine: the CSV writer quotes them.
+        assert_eq!(site_error("south, \"east\" row"), None);
+        for (name, why) in [
+            ("", "non-empty"),
+            ("   ", "non-empty"),
+            ("row\n2", "control characters"),
+            ("row\t2", "control characters"),
+            ("row\r", "control characters"),
+            ("plant", "whole plant"),
+            ("Plant", "whole plant"),
+            ("PLANT", "whole plant"),
+            ("A", "unique"),
+            ("a", "unique"),
+        ] {
+            let e = site_error(name).unwrap_or_else(|| panic!("{name:?} accepted"));
+            assert!(e.starts_with("site.toml: field plant.blocks[1].name:"), "{name:?}: {e}");
+            assert!(e.contains(why), "{name:?}: {e}");
+        }
+        // Not only `plant` itself: a name that merely contains it is fine.
+        assert_eq!(site_error("plant-east"), None);
     }
 }

@@ -1,5 +1,6 @@
-//! Replay of a recorded sequence: every frame through [`Nowcaster::step`], outputs written
-//! atomically when the run ends.
+//! Replay of a recorded sequence: every frame through [`Nowcaster::step`], outputs committed as
+//! one set when the run ends ([`crate::output_set`]: a staging folder swapped into place, with a
+//! `manifest.json`; a lock keeps a second run out of the folder).
 //!
 //! Outputs (`--out DIR`):
 //! * `forecasts.csv` — `issue_time_utc, target_time_utc, horizon_s, block, ghi_wm2, dni_wm2, dhi_wm2,
@@ -18,16 +19,20 @@
 //!   ([`Nowcaster::judge_clock`], code `ahead_of_clock`, against the system clock: a recorded frame
 //!   cannot come from the future);
 //! * `overlays/` (with `--overlays N`): every N-th frame with its cloud classes and the shadow map
-//!   over the plant.
+//!   over the plant;
+//! * `manifest.json` — every file of the set with its size and digest, and the finish time.
+//!
+//! Every CSV goes through [`crate::io::CsvTable`], so a comma, quote or line break in a reason or a
+//! file name is quoted and reads back whole.
 
-use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
 use chrono::{DateTime, Utc};
 
 use crate::config::Site;
-use crate::io::{InputError, Measurements, Series, fmt_time, list_frames, write_atomic};
+use crate::io::{CsvTable, InputError, Measurements, Series, fmt_time, list_frames};
 use crate::nowcast::{Counters, Frame, Nowcast, Nowcaster, Rejection};
+use crate::output_set::{OutputSet, OutputSetError};
 
 /// What a replay needs.
 #[derive(Debug, Clone)]
@@ -63,7 +68,7 @@ pub struct ReplaySummary {
     pub wall_s: f64,
     /// Last filtered motion (east, north) \[m/s\].
     pub last_motion_mps: Option<[f64; 2]>,
-    /// Output files written.
+    /// Output tables written (final paths; overlays not listed).
     pub outputs: Vec<PathBuf>,
 }
 
@@ -76,14 +81,9 @@ pub enum ReplayError {
     /// An input file is bad.
     #[error(transparent)]
     Input(#[from] InputError),
-    /// Writing an output failed.
-    #[error("{path}: {source}")]
-    Write {
-        /// File.
-        path: PathBuf,
-        /// Why.
-        source: std::io::Error,
-    },
+    /// The output folder is in use or could not be written.
+    #[error(transparent)]
+    Output(#[from] OutputSetError),
 }
 
 /// Load the site, its base-height series and measurements, and check they fit the frames.
@@ -143,32 +143,31 @@ fn median(mut v: Vec<f64>) -> f64 {
 pub const FORECAST_HEADER: &str = "issue_time_utc,target_time_utc,horizon_s,block,ghi_wm2,dni_wm2,dhi_wm2,poa_wm2,ghi_clear_wm2,fallback_share,fallback,power_kw,ghi_p10_wm2,ghi_p50_wm2,ghi_p90_wm2,power_p10_kw,power_p50_kw,power_p90_kw\n";
 
 /// Append a nowcast's forecast rows.
-pub fn forecast_rows(nc: &Nowcast, out: &mut String) {
+pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
     let issue = fmt_time(&nc.time);
     for (k, r) in nc.forecast.rows.iter().enumerate() {
         let b = nc.bands.get(k);
         let q = |v: Option<f64>| v.map(|x| format!("{x:.2}")).unwrap_or_default();
-        let _ = writeln!(
-            out,
-            "{issue},{},{},{},{:.2},{:.2},{:.2},{:.2},{:.2},{:.3},{},{:.2},{},{},{},{},{},{}",
+        out.row([
+            issue.clone(),
             fmt_time(&r.time),
-            r.horizon_s,
-            r.target,
-            r.irradiance.ghi_wm2,
-            r.irradiance.dni_wm2,
-            r.irradiance.dhi_wm2,
-            r.poa_wm2,
-            r.ghi_clear_wm2,
-            r.fallback_share,
-            (r.fallback_share > 0.0) as u8,
-            r.power_kw,
+            r.horizon_s.to_string(),
+            r.target.clone(),
+            format!("{:.2}", r.irradiance.ghi_wm2),
+            format!("{:.2}", r.irradiance.dni_wm2),
+            format!("{:.2}", r.irradiance.dhi_wm2),
+            format!("{:.2}", r.poa_wm2),
+            format!("{:.2}", r.ghi_clear_wm2),
+            format!("{:.3}", r.fallback_share),
+            ((r.fallback_share > 0.0) as u8).to_string(),
+            format!("{:.2}", r.power_kw),
             q(b.map(|b| b.ghi_wm2[0])),
             q(b.map(|b| b.ghi_wm2[1])),
             q(b.map(|b| b.ghi_wm2[2])),
             q(b.map(|b| b.power_kw[0])),
             q(b.map(|b| b.power_kw[1])),
-            q(b.map(|b| b.power_kw[2]))
-        );
+            q(b.map(|b| b.power_kw[2])),
+        ]);
     }
 }
 
@@ -176,29 +175,25 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut String) {
 pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero\n";
 
 /// Append a nowcast's motion row.
-pub fn motion_row(nc: &Nowcast, out: &mut String) {
+pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
     let f = |v: Option<f64>| v.map(|x| format!("{x:.3}")).unwrap_or_default();
     let m = nc.measurement.as_ref();
     let l = |i: usize| m.and_then(|m| m.layers.get(i));
-    let _ = write!(
-        out,
-        "{},{},{},{},{},{},{},",
+    let mut row = vec![
         fmt_time(&nc.time),
         f(nc.dt_s),
-        m.map(|m| m.blocks_tried).unwrap_or(0),
-        m.map(|m| m.vectors.len()).unwrap_or(0),
+        m.map(|m| m.blocks_tried).unwrap_or(0).to_string(),
+        m.map(|m| m.vectors.len()).unwrap_or(0).to_string(),
         f(m.and_then(|m| m.global_mps).map(|g| g[0])),
         f(m.and_then(|m| m.global_mps).map(|g| g[1])),
-        m.map(|m| m.layers.len()).unwrap_or(0)
-    );
+        m.map(|m| m.layers.len()).unwrap_or(0).to_string(),
+    ];
     for i in 0..2 {
-        let _ = write!(out, "{},{},{},", f(l(i).map(|x| x.v_mps[0])), f(l(i).map(|x| x.v_mps[1])), l(i).map(|x| x.blocks.to_string()).unwrap_or_default());
+        row.extend([f(l(i).map(|x| x.v_mps[0])), f(l(i).map(|x| x.v_mps[1])), l(i).map(|x| x.blocks.to_string()).unwrap_or_default()]);
     }
     let mo = nc.motion;
     let second = nc.layers.get(1).map(|l| l.motion);
-    let _ = writeln!(
-        out,
-        "{},{},{},{},{},{},{},{},{},{}",
+    row.extend([
         f(mo.map(|m| m.v_mps[0])),
         f(mo.map(|m| m.v_mps[1])),
         f(mo.map(|m| m.sigma_mps)),
@@ -207,16 +202,30 @@ pub fn motion_row(nc: &Nowcast, out: &mut String) {
         f(second.map(|m| m.v_mps[0])),
         f(second.map(|m| m.v_mps[1])),
         f(second.map(|m| m.sigma_mps)),
-        m.map(|m| m.blocks_static).unwrap_or(0),
-        m.map(|m| m.locked_at_zero as u8).unwrap_or(0)
-    );
+        m.map(|m| m.blocks_static).unwrap_or(0).to_string(),
+        m.map(|m| m.locked_at_zero as u8).unwrap_or(0).to_string(),
+    ]);
+    out.row(row);
 }
 
-/// Run a replay.
+/// Run a replay and commit its outputs as one set into `opts.out`.
 ///
 /// # Errors
-/// Bad site, calibration, series or measurement files; an empty frames folder; write failures.
+/// Bad site, calibration, series or measurement files; an empty frames folder; an output folder
+/// in use by another run; write failures.
 pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
+    let (summary, set) = replay_staged(opts)?;
+    set.commit()?;
+    Ok(summary)
+}
+
+/// Run a replay and leave its outputs in a staging set (holding the output folder's lock) for the
+/// caller to add files to (e.g. a report read from [`OutputSet::dir`]) and then commit.
+/// `ReplaySummary::outputs` lists the tables written (not the overlays), by their final paths.
+///
+/// # Errors
+/// As [`replay`].
+pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet), ReplayError> {
     let wall = std::time::Instant::now();
     let (frames, untimed) = list_frames(&opts.frames)?;
     if frames.is_empty() {
@@ -229,13 +238,14 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
     let span = Some((frames[0].time, frames[frames.len() - 1].time));
     let mut nowcaster = prepare(opts, span)?;
     let intake = nowcaster.intake_options();
-    let mut fc = String::from(FORECAST_HEADER);
-    let mut mo = String::from(MOTION_HEADER);
-    let mut ramps = String::from("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability\n");
+    let mut set = OutputSet::begin(&opts.out, "nephocast replay")?;
+    let mut fc = CsvTable::with_header_line(FORECAST_HEADER);
+    let mut mo = CsvTable::with_header_line(MOTION_HEADER);
+    let mut ramps = CsvTable::with_header_line("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability");
     let mut ramps_jsonl = String::new();
-    let mut alarms = String::from("time_utc,from,to,probability,reason\n");
-    let mut members = String::from("issue_time_utc,horizon_s,member,plant_ghi_wm2\n");
-    let mut fr = String::from("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min\n");
+    let mut alarms = CsvTable::with_header_line("time_utc,from,to,probability,reason");
+    let mut members = CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2");
+    let mut fr = CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min");
     let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
@@ -261,78 +271,77 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
                 let plant_h: Vec<u32> = nc.forecast.rows.iter().filter(|r| r.target == "plant").map(|r| r.horizon_s).collect();
                 for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
                     for (m, v) in ms.iter().enumerate() {
-                        let _ = writeln!(members, "{},{},{m},{v:.1}", fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0));
+                        members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);
                     }
                 }
                 for e in &nc.ramps {
-                    let _ = writeln!(
-                        ramps,
-                        "{},{},{:.0},{},{:.1},{:.2},{:.3}",
-                        e.issue_time_utc,
-                        e.expected_start_utc,
-                        e.lead_time_s,
-                        match e.direction { crate::ramp::Direction::Up => "up", crate::ramp::Direction::Down => "down" },
-                        e.change_kw,
-                        e.change_pct,
-                        e.probability
-                    );
+                    ramps.row([
+                        e.issue_time_utc.to_string(),
+                        e.expected_start_utc.to_string(),
+                        format!("{:.0}", e.lead_time_s),
+                        match e.direction { crate::ramp::Direction::Up => "up", crate::ramp::Direction::Down => "down" }.to_string(),
+                        format!("{:.1}", e.change_kw),
+                        format!("{:.2}", e.change_pct),
+                        format!("{:.3}", e.probability),
+                    ]);
                     if let Ok(j) = serde_json::to_string(e) {
                         ramps_jsonl += &j;
                         ramps_jsonl.push('\n');
                     }
                 }
                 if let Some(c) = &nc.alarm_change {
-                    let _ = writeln!(alarms, "{},{},{},{:.3},\"{}\"", c.time_utc, c.from.name(), c.to.name(), c.probability, c.reason.replace('"', "'"));
+                    alarms.row([c.time_utc.to_string(), c.from.name().to_string(), c.to.name().to_string(), format!("{:.3}", c.probability), c.reason.clone()]);
                 }
                 motion_row(&nc, &mut mo);
-                let _ = writeln!(
-                    fr,
-                    "{},{name},ok,,{:.4},{:.0},{:.2},{dms:.2},{:.2},{:.2},{:.2},{:.2},{:.2},{:.3},{:.3},{:.3}",
+                fr.row([
                     fmt_time(&f.time),
-                    nc.cloud_fraction,
-                    nc.cbh_m,
-                    nc.sun.elevation_rad().to_degrees(),
-                    nc.times.qc_ms,
-                    nc.times.map_ms,
-                    nc.times.motion_ms,
-                    nc.times.forecast_ms,
-                    nc.times.ensemble_ms,
-                    nc.band_scale[0],
-                    nc.band_scale[1],
-                    nc.band_scale[2]
-                );
+                    name.clone(),
+                    "ok".into(),
+                    String::new(),
+                    format!("{:.4}", nc.cloud_fraction),
+                    format!("{:.0}", nc.cbh_m),
+                    format!("{:.2}", nc.sun.elevation_rad().to_degrees()),
+                    format!("{dms:.2}"),
+                    format!("{:.2}", nc.times.qc_ms),
+                    format!("{:.2}", nc.times.map_ms),
+                    format!("{:.2}", nc.times.motion_ms),
+                    format!("{:.2}", nc.times.forecast_ms),
+                    format!("{:.2}", nc.times.ensemble_ms),
+                    format!("{:.3}", nc.band_scale[0]),
+                    format!("{:.3}", nc.band_scale[1]),
+                    format!("{:.3}", nc.band_scale[2]),
+                ]);
                 if nc.motion.is_some() {
                     last_motion = nc.motion.map(|m| m.v_mps);
                 }
                 if opts.overlays_every > 0 && i % opts.overlays_every == 0
                     && let Ok(fr) = &frame {
                         let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
-                        let p = opts.out.join("overlays").join(format!("{}.png", name.rsplit_once('.').map(|x| x.0).unwrap_or(&name)));
-                        write_atomic(&p, &png).map_err(|source| ReplayError::Write { path: p.clone(), source })?;
+                        let stem = name.rsplit_once('.').map(|x| x.0).unwrap_or(&name);
+                        set.write(&format!("overlays/{stem}.png"), &png)?;
                     }
             }
             Err(rej) => {
-                let reason = rej.to_string().replace([',', '\n', '\r'], ";");
-                let _ = writeln!(fr, "{},{name},{},{reason},,,,{dms:.2},,,,,,,,", fmt_time(&f.time), rej.code());
+                let mut row = vec![fmt_time(&f.time), name.clone(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
+                row.resize(16, String::new());
+                fr.row(row);
             }
         }
         bar.inc(1);
     }
     bar.finish_and_clear();
-    for (file, text) in [
-        ("forecasts.csv", &fc),
-        ("motion.csv", &mo),
-        ("frames.csv", &fr),
-        ("ramps.csv", &ramps),
-        ("ramps.jsonl", &ramps_jsonl),
-        ("alarms.csv", &alarms),
-        ("ensemble_plant.csv", &members),
+    for (file, bytes) in [
+        ("forecasts.csv", fc.into_bytes()),
+        ("motion.csv", mo.into_bytes()),
+        ("frames.csv", fr.into_bytes()),
+        ("ramps.csv", ramps.into_bytes()),
+        ("ramps.jsonl", ramps_jsonl.into_bytes()),
+        ("alarms.csv", alarms.into_bytes()),
+        ("ensemble_plant.csv", members.into_bytes()),
     ] {
-        let p = opts.out.join(file);
-        write_atomic(&p, text.as_bytes()).map_err(|source| ReplayError::Write { path: p.clone(), source })?;
-        outputs.push(p);
+        outputs.push(set.write(file, &bytes)?);
     }
-    Ok(ReplaySummary {
+    let summary = ReplaySummary {
         frames_found: frames.len(),
         untimed_files: untimed,
         counters: nowcaster.counters.clone(),
@@ -341,7 +350,8 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
         wall_s: wall.elapsed().as_secs_f64(),
         last_motion_mps: last_motion,
         outputs,
-    })
+    };
+    Ok((summary, set))
 }
 
 /// The default output folder for a replay of `frames`.

@@ -140,6 +140,7 @@ fn minute_of_day(t: &DateTime<Utc>) -> f64 {
 /// # Errors
 /// Unreadable replay outputs or a failed write.
 pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, title: &str) -> Result<std::path::PathBuf, Box<dyn std::error::Error + Send + Sync>> {
+    crate::output_set::check_manifest(out)?;
     let fc = read_rows(&out.join("forecasts.csv"))?;
     let num = |r: &BTreeMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
     let rows: Vec<BTreeMap<String, String>> = fc.into_iter().map(|r| r.into_iter().collect()).collect();

@@ -358,14 +358,14 @@ impl FrameReference<'_> {
 impl Reference {
     /// The library as CSV: one row per bin with data (`zenith_from_deg,gamma_from_deg,rb,weight`).
     pub fn to_csv(&self) -> String {
-        let mut out = String::from("zenith_from_deg,gamma_from_deg,rb,weight\n");
+        let mut out = crate::io::CsvTable::with_header_line("zenith_from_deg,gamma_from_deg,rb,weight");
         for i in 0..self.lib.len() {
             if self.weight[i] > 0.5 {
                 let (zi, gi) = (i / LIB_G_BINS, i % LIB_G_BINS);
-                out.push_str(&format!("{},{},{:.5},{:.1}\n", zi as f32 * LIB_BIN_DEG, gi as f32 * LIB_BIN_DEG, self.lib[i], self.weight[i]));
+                out.row([(zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string(), format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i])]);
             }
         }
-        out
+        out.into_string()
     }
 
     /// Read a library written by [`Reference::to_csv`].
@@ -374,17 +374,20 @@ impl Reference {
     /// A message naming the line and what was expected.
     pub fn from_csv(text: &str) -> Result<Reference, String> {
         let mut r = Reference::default();
-        for (i, line) in text.lines().enumerate().skip(1) {
-            if line.trim().is_empty() {
+        let mut rdr = csv::ReaderBuilder::new().flexible(true).from_reader(text.as_bytes());
+        for rec in rdr.records() {
+            let rec = rec.map_err(|e| format!("line {}: {e}", e.position().map(|p| p.line()).unwrap_or(0)))?;
+            let line_no = rec.position().map(|p| p.line()).unwrap_or(0);
+            if rec.iter().all(|f| f.trim().is_empty()) {
                 continue;
             }
-            let v: Vec<&str> = line.split(',').collect();
-            let num = |k: usize| v.get(k).and_then(|x| x.trim().parse::<f32>().ok()).filter(|x| x.is_finite());
+            let line = rec.iter().collect::<Vec<_>>().join(",");
+            let num = |k: usize| rec.get(k).and_then(|x| x.trim().parse::<f32>().ok()).filter(|x| x.is_finite());
             let (Some(z), Some(g), Some(rb), Some(w)) = (num(0), num(1), num(2), num(3)) else {
-                return Err(format!("line {}: expected zenith_from_deg,gamma_from_deg,rb,weight as numbers, got {line:?}", i + 1));
+                return Err(format!("line {line_no}: expected zenith_from_deg,gamma_from_deg,rb,weight as numbers, got {line:?}"));
             };
             if !(0.0..=(LIB_Z_BINS as f32 * LIB_BIN_DEG)).contains(&z) || !(0.0..=(LIB_G_BINS as f32 * LIB_BIN_DEG)).contains(&g) || !(0.05..=3.0).contains(&rb) || w < 0.0 {
-                return Err(format!("line {}: a bin out of range (zenith 0–100°, sun angle 0–180°, R/B 0.05–3, weight ≥ 0), got {line:?}", i + 1));
+                return Err(format!("line {line_no}: a bin out of range (zenith 0–100°, sun angle 0–180°, R/B 0.05–3, weight ≥ 0), got {line:?}"));
             }
             let k = lib_index(z + 0.5 * LIB_BIN_DEG, g + 0.5 * LIB_BIN_DEG);
             r.lib[k] = rb;

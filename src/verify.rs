@@ -547,6 +547,7 @@ pub struct Evaluation {
 /// # Errors
 /// Missing or malformed files.
 pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, Box<dyn std::error::Error + Send + Sync>> {
+    crate::output_set::check_manifest(replay_out)?;
     let truth = Truth::read(&sequence.join("truth").join("irradiance.csv"))?;
     let plant = score_forecasts(&replay_out.join("forecasts.csv"), &truth, "plant")?;
     let motion = score_motion(&replay_out.join("motion.csv"), &sequence.join("truth").join("layers.csv"))?;

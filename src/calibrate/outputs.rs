@@ -45,23 +45,22 @@ pub fn clear_sky_reference(frames: &[(DateTime<Utc>, image::RgbImage)], fit: &Fi
 
 /// The detections as CSV: time, centroid, sun zenith and azimuth, blob area, weight, residual.
 pub fn detections_csv(fit: &Fit, dets: &[Detection]) -> String {
-    let mut out = String::from("time_utc,x_px,y_px,sun_zenith_deg,sun_azimuth_deg,blob_px,weight,residual_x_px,residual_y_px\n");
+    let mut out = crate::io::CsvTable::with_header_line("time_utc,x_px,y_px,sun_zenith_deg,sun_azimuth_deg,blob_px,weight,residual_x_px,residual_y_px");
     for (d, e) in dets.iter().zip(&fit.residuals) {
         let (z, a) = zenith_azimuth_of(d.dir);
-        out.push_str(&format!(
-            "{},{:.3},{:.3},{:.3},{:.3},{},{:.4},{:.3},{:.3}\n",
+        out.row([
             crate::io::fmt_time(&d.time),
-            d.px.0,
-            d.px.1,
-            z.to_degrees(),
-            a.to_degrees(),
-            d.blob_px,
-            d.weight,
-            e.0,
-            e.1
-        ));
+            format!("{:.3}", d.px.0),
+            format!("{:.3}", d.px.1),
+            format!("{:.3}", z.to_degrees()),
+            format!("{:.3}", a.to_degrees()),
+            d.blob_px.to_string(),
+            format!("{:.4}", d.weight),
+            format!("{:.3}", e.0),
+            format!("{:.3}", e.1),
+        ]);
     }
-    out
+    out.into_string()
 }
 
 /// The residual plot: the frame (dimmed); zenith circles every 10° out to the lens field, coloured

@@ -34,7 +34,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::camera::{Camera, Orientation, Projection};
 use crate::config::{BlockSpec, CalibrationFile, CameraSection, CloudSection, ForecastSection, MountKind, PlantSection, SiteFile, SiteSection};
-use crate::io::{fmt_time, frame_name, write_atomic};
+use crate::io::{CsvTable, fmt_time, frame_name, write_atomic};
 use crate::plant::Plant;
 use nuisance::{Bloom, Dirt, ExposureDrift, Horizon, NuisanceMap, Nuisances, Vignetting};
 use render::{Mast, PixelRays, render_with};
@@ -506,6 +506,10 @@ pub fn pyranometers(plant: &Plant) -> Vec<(String, [f64; 2])> {
 /// Any write failure, with its path.
 pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<WriteSummary, SynthError> {
     let w = |path: PathBuf, bytes: &[u8]| write_atomic(&path, bytes).map_err(|source| SynthError::Write { path, source });
+    // Temporary files of killed earlier runs.
+    for sub in ["", "frames", "truth", "truth/masks", "calibration"] {
+        crate::io::clean_stale_temps(&out.join(sub));
+    }
     let spec = &scene.spec;
     let mut bytes = 0u64;
     // Site and calibration.
@@ -526,19 +530,29 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
     }
     let scene_text = toml::to_string(&SceneFile { seed: scene.seed, scene: spec }).unwrap_or_default();
     w(out.join("truth").join("scene.toml"), scene_text.as_bytes())?;
-    let mut layers = String::from("layer,base_height_m,wind_speed_mps,wind_toward_deg,wind_east_mps,wind_north_mps,cover_start,cover_end,tau_max\n");
+    let mut layers = CsvTable::with_header_line("layer,base_height_m,wind_speed_mps,wind_toward_deg,wind_east_mps,wind_north_mps,cover_start,cover_end,tau_max");
     for (i, l) in scene.world.layers.iter().enumerate() {
         let s = &l.spec;
         let v = s.wind_enu();
-        layers += &format!("{i},{},{},{},{:.4},{:.4},{},{},{}\n", s.base_height_m, s.wind_speed_mps, s.wind_toward_deg, v[0], v[1], s.cover_start, s.cover_end, s.tau_max);
+        layers.row([
+            i.to_string(),
+            s.base_height_m.to_string(),
+            s.wind_speed_mps.to_string(),
+            s.wind_toward_deg.to_string(),
+            format!("{:.4}", v[0]),
+            format!("{:.4}", v[1]),
+            s.cover_start.to_string(),
+            s.cover_end.to_string(),
+            s.tau_max.to_string(),
+        ]);
     }
-    w(out.join("truth").join("layers.csv"), layers.as_bytes())?;
+    w(out.join("truth").join("layers.csv"), &layers.into_bytes())?;
     // Frames.
     let times = scene.frame_times();
     let rays = PixelRays::new(&scene.camera);
     let bar = progress_bar(times.len() as u64, progress, "rendering");
     let t0 = std::time::Instant::now();
-    let mut frames_csv = String::from("time_utc,frame,cloud_fraction,truth_mask\n");
+    let mut frames_csv = CsvTable::with_header_line("time_utc,frame,cloud_fraction,truth_mask");
     for (i, t) in times.iter().enumerate() {
         let r = scene.render_frame(&rays, i, t);
         let name = frame_name(t, "jpg");
@@ -554,12 +568,12 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         } else {
             String::new()
         };
-        frames_csv += &format!("{},{name},{:.5},{mask_name}\n", fmt_time(t), r.cloud_fraction);
+        frames_csv.row([fmt_time(t), name, format!("{:.5}", r.cloud_fraction), mask_name]);
         bar.inc(1);
     }
     bar.finish_and_clear();
     let render_s = t0.elapsed().as_secs_f64() / times.len().max(1) as f64;
-    w(out.join("truth").join("frames.csv"), frames_csv.as_bytes())?;
+    w(out.join("truth").join("frames.csv"), &frames_csv.into_bytes())?;
     // Irradiance truth to 20 minutes past the last frame, per block and plant.
     let extra = (20.0 * 60.0 / spec.frame_step_s).ceil() as usize;
     let all_times = World::times(scene.start, spec.frame_step_s, times.len() + extra);
@@ -572,7 +586,7 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         }
     }
     let series = scene.world.irradiance_series(&all_times, &pts);
-    let mut irr = String::from("time_utc,target,ghi_wm2,dni_wm2,dhi_wm2,ghi_clear_wm2\n");
+    let mut irr = CsvTable::with_header_line("time_utc,target,ghi_wm2,dni_wm2,dhi_wm2,ghi_clear_wm2");
     for (t, row) in all_times.iter().zip(&series) {
         let inst_clear = scene.world.instant(t).clear;
         let nb = scene.plant.blocks.len();
@@ -586,11 +600,18 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
             }
         }
         for (k, s) in sums.iter().enumerate() {
-            let name = if k == nb { "plant" } else { scene.plant.blocks[k].name.as_str() };
-            irr += &format!("{},{name},{:.2},{:.2},{:.2},{:.2}\n", fmt_time(t), s[0] / s[3], s[1] / s[3], s[2] / s[3], inst_clear.ghi_wm2);
+            let name = if k == nb { crate::plant::PLANT_TARGET } else { scene.plant.blocks[k].name.as_str() };
+            irr.row([
+                fmt_time(t),
+                name.to_string(),
+                format!("{:.2}", s[0] / s[3]),
+                format!("{:.2}", s[1] / s[3]),
+                format!("{:.2}", s[2] / s[3]),
+                format!("{:.2}", inst_clear.ghi_wm2),
+            ]);
         }
     }
-    w(out.join("truth").join("irradiance.csv"), irr.as_bytes())?;
+    w(out.join("truth").join("irradiance.csv"), &irr.into_bytes())?;
     // Pyranometers: 1-minute means of 1-second samples with 2 % gain error and 3 W/m² noise.
     let pyr = pyranometers(&scene.plant);
     let pts: Vec<[f64; 2]> = pyr.iter().map(|p| p.1).collect();
@@ -598,22 +619,24 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
     let minutes = (total_s / 60.0).floor() as usize;
     let secs = World::times(scene.start, 1.0, minutes * 60);
     let samples = scene.world.irradiance_series(&secs, &pts);
-    let mut meas = String::from("# Simulated pyranometers (1-minute means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the minute\ntime_utc");
-    for (n, _) in &pyr {
-        meas += &format!(",ghi_{}_wm2", n.trim_start_matches("pyr_"));
-    }
-    meas += ",temp_air_c,wind_speed_mps\n";
+    let mut header = vec!["time_utc".to_string()];
+    header.extend(pyr.iter().map(|(n, _)| format!("ghi_{}_wm2", n.trim_start_matches("pyr_"))));
+    header.extend(["temp_air_c".to_string(), "wind_speed_mps".to_string()]);
+    let mut meas = CsvTable::new(header);
     for m in 0..minutes {
-        meas += &fmt_time(&secs[m * 60]);
+        let mut row = vec![fmt_time(&secs[m * 60])];
         for (k, _) in pyr.iter().enumerate() {
             let mean = (0..60).map(|s| samples[m * 60 + s][k].ghi_wm2).sum::<f64>() / 60.0;
             let gain = 1.0 + 0.02 * noise::gaussian(noise::hash64(scene.seed ^ (k as u64 + 77)), noise::hash64(scene.seed ^ (k as u64 + 78))).clamp(-1.5, 1.5);
             let n = 3.0 * noise::gaussian(noise::hash64(scene.seed ^ ((m * 16 + k) as u64 + 1000)), noise::hash64(scene.seed ^ ((m * 16 + k) as u64 + 99_999)));
-            meas += &format!(",{:.1}", (mean * gain + n).max(0.0));
+            row.push(format!("{:.1}", (mean * gain + n).max(0.0)));
         }
-        meas += &format!(",{:.1},{:.1}\n", 22.0 + 4.0 * m as f64 / minutes.max(1) as f64, 3.0);
+        row.extend([format!("{:.1}", 22.0 + 4.0 * m as f64 / minutes.max(1) as f64), format!("{:.1}", 3.0)]);
+        meas.row(row);
     }
-    w(out.join("measurements.csv"), meas.as_bytes())?;
+    let mut meas_bytes = b"# Simulated pyranometers (1-minute means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the minute\n".to_vec();
+    meas_bytes.extend(meas.into_bytes());
+    w(out.join("measurements.csv"), &meas_bytes)?;
     Ok(WriteSummary { frames: times.len(), bytes, render_s_per_frame: render_s })
 }
 
