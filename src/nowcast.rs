@@ -145,6 +145,9 @@ pub struct Counters {
     pub used: usize,
     /// Frames rejected, by reason code.
     pub rejected: std::collections::BTreeMap<String, usize>,
+    /// Measurement values flagged and left out when the measurements were read, by
+    /// `"<column> <reason>"` ([`crate::io::Measurements::screen`]).
+    pub measurements_flagged: std::collections::BTreeMap<String, usize>,
 }
 
 /// Tuning of beam transmittances and diffuse gain from pyranometer readings (ridge regression toward
