@@ -83,10 +83,10 @@ pub struct WatchArgs {
     #[arg(long, env = "NEPHOCAST_ACK_TOKEN")]
     pub ack_token: Option<String>,
     /// History kept [days].
-    #[arg(long, default_value_t = 30.0)]
+    #[arg(long, default_value_t = 30.0, allow_hyphen_values = true)]
     pub keep_days: f64,
     /// Poll interval [ms].
-    #[arg(long, default_value_t = 500)]
+    #[arg(long, default_value_t = 500, allow_hyphen_values = true)]
     pub poll_ms: u64,
 }
 
@@ -106,11 +106,11 @@ pub struct CalibrateArgs {
     #[arg(long)]
     pub obstruction_mask: bool,
     /// Fewest sun detections to accept.
-    #[arg(long, default_value_t = 20)]
+    #[arg(long, default_value_t = 20, allow_hyphen_values = true)]
     pub min_detections: usize,
     /// Lowest sun elevation for a detection [°] (nearer the horizon the glare leans toward the
     /// bright horizon sky).
-    #[arg(long, default_value_t = crate::calibrate::DEFAULT_MIN_SUN_ELEVATION_DEG)]
+    #[arg(long, default_value_t = crate::calibrate::DEFAULT_MIN_SUN_ELEVATION_DEG, allow_hyphen_values = true)]
     pub min_sun_elevation_deg: f64,
     /// Force a lens family instead of choosing by held-out error.
     #[arg(long, value_parser = ["equidistant", "equisolid", "stereographic", "polynomial"])]
@@ -138,13 +138,13 @@ pub enum CameraCommand {
 #[derive(Debug, clap::Args)]
 pub struct BenchArgs {
     /// Square image size [px].
-    #[arg(long, default_value_t = 1024)]
+    #[arg(long, default_value_t = 1024, allow_hyphen_values = true)]
     pub size: u32,
     /// Frames.
-    #[arg(long, default_value_t = 60)]
+    #[arg(long, default_value_t = 60, allow_hyphen_values = true)]
     pub frames: usize,
     /// Threads for the engine.
-    #[arg(long, default_value_t = 1)]
+    #[arg(long, default_value_t = 1, allow_hyphen_values = true)]
     pub threads: usize,
 }
 
@@ -209,7 +209,7 @@ pub struct ReplayArgs {
     #[arg(long)]
     pub measurements: Option<PathBuf>,
     /// Write an overlay picture every N frames (0: none).
-    #[arg(long, default_value_t = 0)]
+    #[arg(long, default_value_t = 0, allow_hyphen_values = true)]
     pub overlays: usize,
     /// Also write report.html (plots; against the sequence's truth/ when it has one).
     #[arg(long)]
@@ -229,19 +229,19 @@ pub struct SynthArgs {
     #[arg(long, required_unless_present = "list")]
     pub scene: Option<String>,
     /// Seed of the cloud field and sensor noise.
-    #[arg(long, default_value_t = 1)]
+    #[arg(long, default_value_t = 1, allow_hyphen_values = true)]
     pub seed: u64,
     /// Output folder (the recorded-sequence layout).
     #[arg(long, required_unless_present = "list")]
     pub out: Option<PathBuf>,
     /// Square image size [px] (default: the scene's, 512).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub size: Option<u32>,
     /// Length [min] (default: the scene's).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub minutes: Option<f64>,
     /// Frame step [s] (default: the scene's).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub step_s: Option<f64>,
     /// Hide the progress bar.
     #[arg(long)]
@@ -264,7 +264,7 @@ pub struct SunArgs {
     #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
     pub elevation_m: f64,
     /// Pressure [hPa] for refraction; default: standard atmosphere at the height.
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub pressure_hpa: Option<f64>,
     /// Temperature [°C] for refraction.
     #[arg(long, default_value_t = 12.0, allow_hyphen_values = true)]
@@ -276,10 +276,10 @@ pub struct SunArgs {
     #[arg(long)]
     pub end: String,
     /// Step, e.g. 60s, 10m, 1h.
-    #[arg(long, default_value = "10m")]
+    #[arg(long, default_value = "10m", allow_hyphen_values = true)]
     pub step: String,
     /// Linke turbidity for the Ineichen–Perez clear sky (default 3.0; from the site file with --site).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub linke: Option<f64>,
 }
 
@@ -290,7 +290,7 @@ pub const MAX_DURATION_S: f64 = 366.0 * 86_400.0;
 /// Longest synthetic sequence \[min\] (a day).
 pub const MAX_SYNTH_MINUTES: f64 = 1440.0;
 /// Most frames of a synthetic sequence.
-pub const MAX_SYNTH_FRAMES: f64 = 100_000.0;
+pub const MAX_SYNTH_FRAMES: f64 = 20_000.0;
 /// Most rows `sun` prints.
 pub const MAX_SUN_ROWS: f64 = 10_000_000.0;
 /// Most frames `calibrate` reads.

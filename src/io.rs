@@ -168,8 +168,9 @@ impl Series {
         let m = Measurements::read_csv(path)?;
         let c = m.column(column).ok_or_else(|| InputError::Csv { file: path.into(), line: 1, message: format!("expected a column named {column}") })?;
         if let Some(i) = m.columns[c].iter().position(|v| !v.is_finite()) {
-            return Err(InputError::Other {
+            return Err(InputError::Csv {
                 file: path.into(),
+                line: m.lines.get(i).copied().unwrap_or(0),
                 message: format!("{column}: row {} (time {}): expected a finite number", i + 1, fmt_time(&m.times[i])),
             });
         }
