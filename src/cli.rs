@@ -483,7 +483,7 @@ fn cmd_synth(a: SynthArgs) -> Result<()> {
         spec.frame_step_s = s;
     }
     let frames = spec.duration_min * 60.0 / spec.frame_step_s;
-    if !(frames <= MAX_SYNTH_FRAMES) {
+    if !(frames.is_finite() && frames <= MAX_SYNTH_FRAMES) {
         bail!("--minutes/--step-s: {} min at a frame every {} s give {frames:.0} frames; at most {MAX_SYNTH_FRAMES}", spec.duration_min, spec.frame_step_s);
     }
     let scene = synth::Scene::new(spec, a.seed)?;
@@ -872,7 +872,7 @@ fn cmd_sun(a: SunArgs) -> Result<()> {
     }
     // Counted in floating point before any conversion, so no step can wrap the count.
     let rows = ((end - start).num_milliseconds() as f64 / 1000.0 / step_s).floor() + 1.0;
-    if !(rows <= MAX_SUN_ROWS) {
+    if !(rows.is_finite() && rows <= MAX_SUN_ROWS) {
         bail!("--start/--end/--step give {rows:.3e} rows; at most {MAX_SUN_ROWS:.0}");
     }
     let n = rows as u64;

@@ -26,10 +26,13 @@ fn refused(parts: &[&str]) -> Expect {
     Expect::Refused(parts.iter().map(|s| s.to_string()).collect())
 }
 
+/// What a case gives: the measurement flags when it read measurements.
+type Outcome = Result<Option<std::collections::BTreeMap<String, usize>>, anyhow::Error>;
+
 struct Case {
     name: String,
     expect: Expect,
-    run: Box<dyn Fn() -> Result<Option<std::collections::BTreeMap<String, usize>>, anyhow::Error>>,
+    run: Box<dyn Fn() -> Outcome>,
 }
 
 fn check(c: &Case) -> Result<(), String> {
