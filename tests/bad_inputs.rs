@@ -506,3 +506,20 @@ fn bad_inputs_through_the_binary() {
     assert!(!Path::new(&out).join("forecasts.csv").exists(), "no outputs from refused runs");
     println!("bad inputs through the binary: {n} cases");
 }
+
+/// `calibrate` applies the loader's rules before it writes: a fit from too few detections for its
+/// free parameters is refused with the field named, and no file is written.
+#[test]
+fn calibrate_writes_nothing_the_loader_would_refuse() {
+    let d = tempfile::tempdir().unwrap();
+    let seq = d.path().join("seq");
+    let (code, err) = run_bin(&["synth", "--scene", "clear-day", "--minutes", "420", "--step-s", "1500", "--quiet", "--out", seq.to_str().unwrap()]);
+    assert_eq!(code, 0, "{err}");
+    let out = d.path().join("cal").join("c.toml");
+    let (code, err) = run_bin(&[
+        "calibrate", "--site", seq.join("site.toml").to_str().unwrap(), "--frames", seq.join("frames").to_str().unwrap(), "--out", out.to_str().unwrap(), "--min-detections", "10",
+    ]);
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("fit.detections") && err.contains("no calibration written"), "{err}");
+    assert!(!out.parent().unwrap().exists() || std::fs::read_dir(out.parent().unwrap()).unwrap().count() == 0, "files written");
+}
