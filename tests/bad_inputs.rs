@@ -159,6 +159,7 @@ fn site_cases() -> Vec<Case> {
     push(&mut cases, "site: memory over the cap".into(), heavy, refused(&["irradiance.ensemble_members", "MB", "points"]));
     let fine = set(&set(inputs::SITE, "[[plant.blocks]]", "polygon_m", &square(500.0)), "[plant]", "point_spacing_m", "5.0");
     push(&mut cases, "site: 40 000 points within the cap".into(), fine, Expect::Ok);
+    push(&mut cases, "site: the largest map within the cap".into(), set(inputs::SITE, "[map]", "cells", "2048"), Expect::Ok);
     let many_blocks = {
         let mut s = inputs::SITE.to_string();
         for i in 0..10_001 {
