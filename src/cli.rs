@@ -109,10 +109,10 @@ pub struct WatchArgs {
     #[arg(long, value_name = "PATH", requires = "tls_cert")]
     pub tls_key: Option<PathBuf>,
     /// History kept [days].
-    #[arg(long, default_value_t = 30.0)]
+    #[arg(long, default_value_t = 30.0, allow_hyphen_values = true)]
     pub keep_days: f64,
     /// Poll interval [ms].
-    #[arg(long, default_value_t = 500)]
+    #[arg(long, default_value_t = 500, allow_hyphen_values = true)]
     pub poll_ms: u64,
 }
 
@@ -132,11 +132,11 @@ pub struct CalibrateArgs {
     #[arg(long)]
     pub obstruction_mask: bool,
     /// Fewest sun detections to accept.
-    #[arg(long, default_value_t = 20)]
+    #[arg(long, default_value_t = 20, allow_hyphen_values = true)]
     pub min_detections: usize,
     /// Lowest sun elevation for a detection [°] (nearer the horizon the glare leans toward the
     /// bright horizon sky).
-    #[arg(long, default_value_t = crate::calibrate::DEFAULT_MIN_SUN_ELEVATION_DEG)]
+    #[arg(long, default_value_t = crate::calibrate::DEFAULT_MIN_SUN_ELEVATION_DEG, allow_hyphen_values = true)]
     pub min_sun_elevation_deg: f64,
     /// Force a lens family instead of choosing by held-out error.
     #[arg(long, value_parser = ["equidistant", "equisolid", "stereographic", "polynomial"])]
@@ -164,13 +164,13 @@ pub enum CameraCommand {
 #[derive(Debug, clap::Args)]
 pub struct BenchArgs {
     /// Square image size [px].
-    #[arg(long, default_value_t = 1024)]
+    #[arg(long, default_value_t = 1024, allow_hyphen_values = true)]
     pub size: u32,
     /// Frames.
-    #[arg(long, default_value_t = 60)]
+    #[arg(long, default_value_t = 60, allow_hyphen_values = true)]
     pub frames: usize,
     /// Threads for the engine.
-    #[arg(long, default_value_t = 1)]
+    #[arg(long, default_value_t = 1, allow_hyphen_values = true)]
     pub threads: usize,
 }
 
@@ -235,7 +235,7 @@ pub struct ReplayArgs {
     #[arg(long)]
     pub measurements: Option<PathBuf>,
     /// Write an overlay picture every N frames (0: none).
-    #[arg(long, default_value_t = 0)]
+    #[arg(long, default_value_t = 0, allow_hyphen_values = true)]
     pub overlays: usize,
     /// Also write report.html (plots; against the sequence's truth/ when it has one).
     #[arg(long)]
@@ -255,19 +255,19 @@ pub struct SynthArgs {
     #[arg(long, required_unless_present = "list")]
     pub scene: Option<String>,
     /// Seed of the cloud field and sensor noise.
-    #[arg(long, default_value_t = 1)]
+    #[arg(long, default_value_t = 1, allow_hyphen_values = true)]
     pub seed: u64,
     /// Output folder (the recorded-sequence layout).
     #[arg(long, required_unless_present = "list")]
     pub out: Option<PathBuf>,
     /// Square image size [px] (default: the scene's, 512).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub size: Option<u32>,
     /// Length [min] (default: the scene's).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub minutes: Option<f64>,
     /// Frame step [s] (default: the scene's).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub step_s: Option<f64>,
     /// Hide the progress bar.
     #[arg(long)]
@@ -290,7 +290,7 @@ pub struct SunArgs {
     #[arg(long, default_value_t = 0.0, allow_hyphen_values = true)]
     pub elevation_m: f64,
     /// Pressure [hPa] for refraction; default: standard atmosphere at the height.
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub pressure_hpa: Option<f64>,
     /// Temperature [°C] for refraction.
     #[arg(long, default_value_t = 12.0, allow_hyphen_values = true)]
@@ -302,14 +302,101 @@ pub struct SunArgs {
     #[arg(long)]
     pub end: String,
     /// Step, e.g. 60s, 10m, 1h.
-    #[arg(long, default_value = "10m")]
+    #[arg(long, default_value = "10m", allow_hyphen_values = true)]
     pub step: String,
     /// Linke turbidity for the Ineichen–Perez clear sky (default 3.0; from the site file with --site).
-    #[arg(long)]
+    #[arg(long, allow_hyphen_values = true)]
     pub linke: Option<f64>,
 }
 
-/// Parse a duration such as `30s`, `10m`, `1h` or a bare number of seconds.
+/// Shortest duration [`parse_duration_s`] accepts \[s\].
+pub const MIN_DURATION_S: f64 = 0.001;
+/// Longest duration [`parse_duration_s`] accepts \[s\] (a leap year).
+pub const MAX_DURATION_S: f64 = 366.0 * 86_400.0;
+/// Longest synthetic sequence \[min\] (a day).
+pub const MAX_SYNTH_MINUTES: f64 = 1440.0;
+/// Most frames of a synthetic sequence.
+pub const MAX_SYNTH_FRAMES: f64 = 20_000.0;
+/// Most rows `sun` prints.
+pub const MAX_SUN_ROWS: f64 = 10_000_000.0;
+/// Most frames `calibrate` reads.
+pub const MAX_CALIBRATE_FRAMES: usize = 5_000;
+/// Most decoded frame bytes `calibrate` holds.
+pub const MAX_CALIBRATE_BYTES: u64 = 2_000_000_000;
+/// Shortest `sun --step` \[s\].
+pub const MIN_SUN_STEP_S: f64 = 1.0;
+
+/// A numeric argument in a closed range (NaN and infinities refused), naming the argument.
+///
+/// # Errors
+/// A message naming the argument, the range and the value.
+pub fn check_arg(name: &str, v: f64, lo: f64, hi: f64) -> Result<()> {
+    if v.is_finite() && v >= lo && v <= hi {
+        Ok(())
+    } else {
+        bail!("{name}: expected a number from {lo} to {hi}, got {v}")
+    }
+}
+
+/// Check every numeric argument of a parsed command line against its range (before anything is
+/// read or written).
+///
+/// # Errors
+/// The first argument out of range, named.
+pub fn check_args(cli: &Cli) -> Result<()> {
+    match &cli.command {
+        Command::Sun(a) => {
+            if let Some(v) = a.lat {
+                check_arg("--lat", v, -90.0, 90.0)?;
+            }
+            if let Some(v) = a.lon {
+                check_arg("--lon", v, -180.0, 180.0)?;
+            }
+            check_arg("--elevation-m", a.elevation_m, -500.0, 9000.0)?;
+            if let Some(v) = a.pressure_hpa {
+                check_arg("--pressure-hpa", v, 300.0, 1100.0)?;
+            }
+            check_arg("--temperature-c", a.temperature_c, -80.0, 60.0)?;
+            if let Some(v) = a.linke {
+                check_arg("--linke", v, 1.0, 10.0)?;
+            }
+            let step = parse_duration_s(&a.step).context("--step")?;
+            if step < MIN_SUN_STEP_S {
+                bail!("--step: expected at least {MIN_SUN_STEP_S} s, got {step} s");
+            }
+        }
+        Command::Synth(a) => {
+            if let Some(v) = a.size {
+                check_arg("--size", f64::from(v), 64.0, 4096.0)?;
+            }
+            if let Some(v) = a.minutes {
+                check_arg("--minutes", v, 0.1, MAX_SYNTH_MINUTES)?;
+            }
+            if let Some(v) = a.step_s {
+                check_arg("--step-s", v, 1.0, 3600.0)?;
+            }
+        }
+        Command::Replay(a) => check_arg("--overlays", a.overlays as f64, 0.0, 1e6)?,
+        Command::Bench(a) => {
+            check_arg("--size", f64::from(a.size), 64.0, 4096.0)?;
+            check_arg("--frames", a.frames as f64, 2.0, 10_000.0)?;
+            check_arg("--threads", a.threads as f64, 1.0, 256.0)?;
+        }
+        Command::Calibrate(a) => {
+            check_arg("--min-detections", a.min_detections as f64, crate::config::MIN_FIT_DETECTIONS as f64, 1e6)?;
+            check_arg("--min-sun-elevation-deg", a.min_sun_elevation_deg, 0.0, 60.0)?;
+        }
+        Command::Watch(a) => {
+            check_arg("--keep-days", a.keep_days, 0.001, 3650.0)?;
+            check_arg("--poll-ms", a.poll_ms as f64, 20.0, 60_000.0)?;
+        }
+        Command::Evaluate(_) | Command::Demo(_) | Command::Segment(_) | Command::Qc(_) | Command::Camera(_) => {}
+    }
+    Ok(())
+}
+
+/// Parse a duration such as `30s`, `10m`, `1h` or a bare number of seconds, from
+/// [`MIN_DURATION_S`] to [`MAX_DURATION_S`].
 ///
 /// # Errors
 /// A message naming the expected form.
@@ -329,10 +416,11 @@ pub fn parse_duration_s(s: &str) -> Result<f64> {
         (s, 1.0)
     };
     let v: f64 = num.trim().parse().with_context(|| format!("expected a duration such as 30s, 10m or 1h, got {s:?}"))?;
-    if !(v.is_finite() && v > 0.0) {
-        bail!("expected a positive duration, got {s:?}");
+    let secs = v * mult;
+    if !(secs.is_finite() && (MIN_DURATION_S..=MAX_DURATION_S).contains(&secs)) {
+        bail!("expected a duration from {MIN_DURATION_S} s to {MAX_DURATION_S} s (366 days), got {s:?}");
     }
-    Ok(v * mult)
+    Ok(secs)
 }
 
 /// Run a parsed command line.
@@ -340,6 +428,7 @@ pub fn parse_duration_s(s: &str) -> Result<f64> {
 /// # Errors
 /// Any failure, with context naming the file or argument.
 pub fn run(cli: Cli) -> Result<()> {
+    check_args(&cli)?;
     match cli.command {
         Command::Sun(a) => cmd_sun(a),
         Command::Synth(a) => cmd_synth(a),
@@ -349,9 +438,6 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Calibrate(a) => cmd_calibrate(a),
         Command::Qc(a) => cmd_qc(a),
         Command::Watch(a) => {
-            if !(a.keep_days > 0.0 && a.keep_days <= 3650.0) {
-                bail!("--keep-days: expected a number of days from 0 to 3650, got {}", a.keep_days);
-            }
             let (ack_token, mut warnings) = crate::serve::guard::read_ack_token(a.ack_token_file.as_deref(), std::env::var(crate::serve::guard::ACK_TOKEN_ENV).ok())?;
             let secs = |name: &str, v: f64| -> Result<std::time::Duration> {
                 if !(0.1..=3600.0).contains(&v) {
@@ -446,6 +532,10 @@ fn cmd_synth(a: SynthArgs) -> Result<()> {
     if let Some(s) = a.step_s {
         spec.frame_step_s = s;
     }
+    let frames = spec.duration_min * 60.0 / spec.frame_step_s;
+    if !(frames.is_finite() && frames <= MAX_SYNTH_FRAMES) {
+        bail!("--minutes/--step-s: {} min at a frame every {} s give {frames:.0} frames; at most {MAX_SYNTH_FRAMES}", spec.duration_min, spec.frame_step_s);
+    }
     let scene = synth::Scene::new(spec, a.seed)?;
     let sum = synth::write_sequence(&scene, &out, !a.quiet)?;
     crate::say!(
@@ -494,6 +584,10 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
         s.frames_found, s.counters.used, rejected, s.counters.rejected, s.untimed_files);
     crate::say!("speed: median {:.2} ms per frame (map + motion + forecast), {:.2} ms decode; {:.1} s in all",
         s.median_step_ms, s.median_decode_ms, s.wall_s);
+    if !s.counters.measurements_flagged.is_empty() {
+        let n: usize = s.counters.measurements_flagged.values().sum();
+        crate::say!("measurements: {n} values flagged and left out {:?}", s.counters.measurements_flagged);
+    }
     if let Some(v) = s.last_motion_mps {
         crate::say!("cloud motion at the end: {:.1} m/s toward {:.0}°", v[0].hypot(v[1]), v[0].atan2(v[1]).to_degrees().rem_euclid(360.0));
     }
@@ -551,7 +645,7 @@ fn cmd_segment(a: SegmentArgs) -> Result<()> {
     let cal_cam = match &a.calibration {
         Some(p) => {
             let c: crate::config::CalibrationFile = crate::config::read_toml(p)?;
-            Some(c.camera(p)?)
+            Some(c.validate(p)?)
         }
         None => None,
     };
@@ -652,12 +746,22 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     let site = crate::config::Site::load_without_camera(&a.site)?;
     let mut frames = vec![];
     let mut untimed = 0;
+    let mut held_bytes = 0u64;
     for dir in &a.frames {
         let (list, u) = crate::io::list_frames(dir)?;
         untimed += u;
         for f in list {
+            if frames.len() >= MAX_CALIBRATE_FRAMES {
+                bail!("--frames: more than {MAX_CALIBRATE_FRAMES} frames; give fewer folders or thin them (a frame every few minutes is enough)");
+            }
             match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
-                Ok(img) => frames.push((f.time, img)),
+                Ok(img) => {
+                    held_bytes += img.as_raw().len() as u64;
+                    if held_bytes > MAX_CALIBRATE_BYTES {
+                        bail!("--frames: the frames need more than {} MB decoded (at {} frames); give fewer frames", MAX_CALIBRATE_BYTES / 1_000_000, frames.len() + 1);
+                    }
+                    frames.push((f.time, img))
+                }
                 Err(e) => eprintln!("skipped {}: {e}", f.path.display()),
             }
         }
@@ -692,6 +796,8 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
         direction_bound_deg: fit.bounds.iter().map(|b| [b.zenith_from_deg, b.zenith_to_deg, b.bound_deg]).collect(),
         warnings: fit.warnings.clone(),
     });
+    // The loader's own rules, before anything is written: never write a file `replay` refuses.
+    cal.validate(&a.out).map_err(|e| crate::calibrate::CalibrationError::Unusable(e.to_string()))?;
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
     crate::io::clean_stale_temps(dir);
     if a.obstruction_mask {
@@ -755,7 +861,7 @@ fn cmd_camera(c: CameraCommand) -> Result<()> {
         CameraCommand::Unproject { calibration } => (calibration, false),
     };
     let cal: crate::config::CalibrationFile = crate::config::read_toml(path)?;
-    let cam = cal.camera(path)?;
+    let cam = cal.validate(path)?;
     crate::say!("{}", if forward { "x_px,y_px" } else { "zenith_deg,azimuth_deg" });
     for (i, line) in std::io::stdin().lock().lines().enumerate() {
         let line = line?;
@@ -821,10 +927,12 @@ fn cmd_sun(a: SunArgs) -> Result<()> {
     if end < start {
         bail!("--end is before --start");
     }
-    let n = ((end - start).num_milliseconds() as f64 / 1000.0 / step_s).floor() as u64 + 1;
-    if n > 10_000_000 {
-        bail!("--start/--end/--step give {n} rows; at most 10 000 000");
+    // Counted in floating point before any conversion, so no step can wrap the count.
+    let rows = ((end - start).num_milliseconds() as f64 / 1000.0 / step_s).floor() + 1.0;
+    if !(rows.is_finite() && rows <= MAX_SUN_ROWS) {
+        bail!("--start/--end/--step give {rows:.3e} rows; at most {MAX_SUN_ROWS:.0}");
     }
+    let n = rows as u64;
     let stdout = std::io::stdout();
     let mut out = std::io::BufWriter::new(stdout.lock());
     writeln!(

@@ -182,6 +182,12 @@ impl LutCache {
     /// The table for a plane height above the camera (built on first use).
     pub fn get(&mut self, cam: &Camera, obstruction: Option<&image::GrayImage>, params: &MapParams, height_m: f64) -> Arc<Lut> {
         let bucket = (height_m / params.height_bucket_m).round() as i64;
+        // Bounded: a varying cloud base height would otherwise keep a table per bucket it visits.
+        if !self.tables.contains_key(&bucket) && self.tables.len() >= MAX_LUT_TABLES
+            && let Some(far) = self.tables.keys().copied().max_by_key(|b| (b - bucket).abs())
+        {
+            self.tables.remove(&far);
+        }
         self.tables
             .entry(bucket)
             .or_insert_with(|| Arc::new(Lut::build(cam, obstruction, Grid::new(params, bucket as f64 * params.height_bucket_m))))
@@ -198,6 +204,9 @@ impl LutCache {
         self.tables.is_empty()
     }
 }
+
+/// Most cell→pixel tables a [`LutCache`] keeps (the one farthest in height goes first).
+pub const MAX_LUT_TABLES: usize = 8;
 
 /// One frame's cloud map.
 #[derive(Debug, Clone)]

@@ -337,7 +337,7 @@ impl Site {
         file.validate(path)?;
         let calibration_path = resolve(path, &file.camera.calibration);
         let calibration: CalibrationFile = read_toml(&calibration_path)?;
-        let camera = calibration.camera(&calibration_path)?;
+        let camera = calibration.validate(&calibration_path)?;
         let obstruction = match &calibration.camera.obstruction_mask {
             Some(p) => {
                 let mp = resolve(&calibration_path, p);
@@ -437,7 +437,7 @@ impl SiteFile {
             c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
         }
         match (&self.clouds.base_height_m, &self.clouds.base_height_csv) {
-            (Some(h), None) => c.range("clouds.base_height_m", *h, 50.0, 15_000.0)?,
+            (Some(h), None) => c.range("clouds.base_height_m", *h, crate::io::CBH_MIN_M, crate::io::CBH_MAX_M)?,
             (None, Some(_)) => {}
             (Some(_), Some(_)) => {
                 return Err(c.invalid("clouds", "one of base_height_m or base_height_csv", "both"));
@@ -494,13 +494,133 @@ impl SiteFile {
         self.irradiance.validate(path)?;
         self.power.validate(path)?;
         self.ramps.validate(path)?;
+        if self.pyranometers.len() > MAX_PYRANOMETERS {
+            return Err(c.invalid("pyranometers", format!("at most {MAX_PYRANOMETERS} pyranometers"), self.pyranometers.len().to_string()));
+        }
         for (i, p) in self.pyranometers.iter().enumerate() {
             for (k, v) in p.position_m.iter().enumerate() {
                 c.range(&format!("pyranometers[{i}].position_m[{k}]"), *v, -50_000.0, 50_000.0)?;
             }
         }
+        self.check_budget(path)?;
         Ok(())
     }
+
+    /// Check the plant's size and the memory the configuration needs against the caps
+    /// ([`MAX_BLOCKS`], [`MAX_POLYGON_VERTICES`], [`MAX_LAYOUT_CELLS`], [`MAX_PLANT_POINTS`],
+    /// [`MEMORY_CAP_BYTES`]), before anything is allocated.
+    ///
+    /// # Errors
+    /// The first field over its limit, with the figure.
+    pub fn check_budget(&self, path: &Path) -> Result<MemoryEstimate, ConfigError> {
+        let c = Check { file: path };
+        let p = &self.plant;
+        if p.blocks.len() > MAX_BLOCKS {
+            return Err(c.invalid("plant.blocks", format!("at most {MAX_BLOCKS} blocks"), p.blocks.len().to_string()));
+        }
+        let mut layout_cells = 0.0;
+        for (i, b) in p.blocks.iter().enumerate() {
+            if b.polygon_m.len() > MAX_POLYGON_VERTICES {
+                return Err(c.invalid(&format!("plant.blocks[{i}].polygon_m"), format!("at most {MAX_POLYGON_VERTICES} vertices"), b.polygon_m.len().to_string()));
+            }
+            let cells = layout_cells_of(&b.polygon_m, p.point_spacing_m);
+            layout_cells += cells;
+            if layout_cells > MAX_LAYOUT_CELLS as f64 {
+                return Err(c.invalid(
+                    &format!("plant.blocks[{i}].polygon_m"),
+                    format!("footprints whose bounding boxes hold at most {MAX_LAYOUT_CELLS} grid cells of plant.point_spacing_m = {} m in all", p.point_spacing_m),
+                    format!("{layout_cells:.3e} cells up to this block (this one {cells:.3e}): raise plant.point_spacing_m or shrink the footprint"),
+                ));
+            }
+        }
+        let est = self.memory_estimate();
+        if est.points > MAX_PLANT_POINTS {
+            return Err(c.invalid(
+                "plant.point_spacing_m",
+                format!("a spacing that gives at most {MAX_PLANT_POINTS} forecast points"),
+                format!("about {} points at {} m", est.points, p.point_spacing_m),
+            ));
+        }
+        if est.bytes > MEMORY_CAP_BYTES {
+            return Err(c.invalid(
+                "plant.point_spacing_m, forecast.horizon_min/step_s, irradiance.ensemble_members, map.cells",
+                format!("a configuration that needs at most {} MB", MEMORY_CAP_BYTES / 1_000_000),
+                format!("about {} MB ({est})", est.bytes / 1_000_000),
+            ));
+        }
+        Ok(est)
+    }
+
+    /// How much memory the configuration needs (an upper estimate, see [`MemoryEstimate`]).
+    pub fn memory_estimate(&self) -> MemoryEstimate {
+        let p = &self.plant;
+        let points: f64 = p.blocks.iter().map(|b| (polygon_area_m2(&b.polygon_m) / (p.point_spacing_m * p.point_spacing_m)).ceil().max(1.0)).sum();
+        let points = if points.is_finite() { points.min(u64::MAX as f64 / 2.0) as u64 } else { u64::MAX / 2 };
+        let horizons = (u64::from(self.forecast.horizon_min) * 60).div_ceil(u64::from(self.forecast.step_s.max(1)));
+        let members = self.irradiance.ensemble_members as u64;
+        let cells = (self.map.cells as u64).pow(2);
+        let bytes = points
+            .saturating_mul(BYTES_PER_POINT)
+            .saturating_add(points.saturating_mul(horizons).saturating_mul(members + 1).saturating_mul(8))
+            .saturating_add(cells.saturating_mul(BYTES_PER_MAP_CELL));
+        MemoryEstimate { points, horizons, members, cells, bytes }
+    }
+}
+
+/// Most blocks in a plant.
+pub const MAX_BLOCKS: usize = 10_000;
+/// Most vertices of one block's footprint.
+pub const MAX_POLYGON_VERTICES: usize = 10_000;
+/// Most grid cells (of `plant.point_spacing_m`) in the bounding boxes of all footprints: the
+/// work of laying out the forecast points.
+pub const MAX_LAYOUT_CELLS: u64 = 20_000_000;
+/// Most forecast points of the whole plant.
+pub const MAX_PLANT_POINTS: u64 = 1_000_000;
+/// Most pyranometers.
+pub const MAX_PYRANOMETERS: usize = 1_000;
+/// Largest memory a configuration may need, by [`SiteFile::memory_estimate`] \[bytes\].
+pub const MEMORY_CAP_BYTES: u64 = 2_000_000_000;
+/// Bytes per forecast point: its position and block index.
+const BYTES_PER_POINT: u64 = 24;
+/// Bytes per cloud-map cell: the cell→pixel tables (29 B each, up to
+/// [`crate::cloudmap::MAX_LUT_TABLES`] plane heights), the map (6 B) and motion features (about
+/// 16 B) of each of up to 8 maps held for motion.
+const BYTES_PER_MAP_CELL: u64 = 29 * crate::cloudmap::MAX_LUT_TABLES as u64 + 8 * 22;
+
+/// The memory a site configuration needs, estimated from above before anything is allocated:
+/// points × 24 B + points × horizons × (members + 1) × 8 B (one value per point, horizon and
+/// member) + cells × 408 B (cell→pixel tables and the maps held for motion).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct MemoryEstimate {
+    /// Forecast points (footprint area over spacing², per block).
+    pub points: u64,
+    /// Forecast horizons.
+    pub horizons: u64,
+    /// Ensemble members.
+    pub members: u64,
+    /// Cloud-map cells.
+    pub cells: u64,
+    /// The estimate \[bytes\].
+    pub bytes: u64,
+}
+
+impl std::fmt::Display for MemoryEstimate {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "{} points × {} horizons × {} members, {} map cells", self.points, self.horizons, self.members + 1, self.cells)
+    }
+}
+
+/// Grid cells of `spacing_m` in a footprint's bounding box (the work of laying out its points).
+pub fn layout_cells_of(poly: &[[f64; 2]], spacing_m: f64) -> f64 {
+    let (mut x0, mut y0, mut x1, mut y1) = (f64::MAX, f64::MAX, f64::MIN, f64::MIN);
+    for v in poly {
+        x0 = x0.min(v[0]);
+        y0 = y0.min(v[1]);
+        x1 = x1.max(v[0]);
+        y1 = y1.max(v[1]);
+    }
+    let c = ((x1 - x0) / spacing_m).ceil().max(1.0) * ((y1 - y0) / spacing_m).ceil().max(1.0);
+    if c.is_finite() { c } else { f64::INFINITY }
 }
 
 /// Area of a simple polygon \[m²\] (shoelace formula).
@@ -620,7 +740,62 @@ pub struct FitRecord {
     pub warnings: Vec<String>,
 }
 
+/// Fewest sun detections per free parameter of a fit (each gives two residuals; common practice,
+/// no source).
+pub const MIN_DETECTIONS_PER_PARAMETER: usize = 3;
+/// Fewest sun detections of any fit.
+pub const MIN_FIT_DETECTIONS: usize = 10;
+/// Smallest azimuth span \[°\] of a fit's detections (the sun's arc over about 40 minutes; common
+/// practice, no source): a shorter arc cannot separate yaw from the principal point.
+pub const MIN_FIT_AZIMUTH_SPAN_DEG: f64 = 10.0;
+
 impl FitRecord {
+    /// Check the record: enough detections for the free parameters, spread over the sky, and a
+    /// finite, non-zero standard error for each parameter (a zero says the fit had no freedom,
+    /// i.e. too few detections, not a perfect one).
+    ///
+    /// # Errors
+    /// The first field that fails, naming `file`.
+    pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
+        let c = Check { file };
+        let free = self.std_errors.len();
+        let needed = (MIN_DETECTIONS_PER_PARAMETER * free).max(MIN_FIT_DETECTIONS);
+        if self.detections < needed {
+            return Err(c.invalid(
+                "fit.detections",
+                format!("at least {needed} sun detections ({MIN_DETECTIONS_PER_PARAMETER} per free parameter, {free} free, and at least {MIN_FIT_DETECTIONS})"),
+                self.detections.to_string(),
+            ));
+        }
+        for (name, se) in &self.std_errors {
+            if !(se.is_finite() && *se > 0.0) {
+                return Err(c.invalid(&format!("fit.std_errors.{name}"), "a finite standard error above 0 (0 means the fit had no freedom left)", se.to_string()));
+            }
+        }
+        for (field, v) in [("fit.rms_deg", self.rms_deg), ("fit.max_deg", self.max_deg), ("fit.rms_px", self.rms_px), ("fit.max_px", self.max_px)] {
+            c.range(field, v, 0.0, 1e6)?;
+        }
+        if let Some(span) = self.detections_azimuth_span_deg
+            && !(span.is_finite() && span >= MIN_FIT_AZIMUTH_SPAN_DEG)
+        {
+            return Err(c.invalid(
+                "fit.detections_azimuth_span_deg",
+                format!("detections over at least {MIN_FIT_AZIMUTH_SPAN_DEG}° of the sun's azimuth"),
+                span.to_string(),
+            ));
+        }
+        if let Some([z0, z1]) = self.detections_zenith_deg {
+            c.range("fit.detections_zenith_deg[0]", z0, 0.0, 90.0)?;
+            c.range("fit.detections_zenith_deg[1]", z1, z0, 90.0)?;
+        }
+        for (i, b) in self.direction_bound_deg.iter().enumerate() {
+            if !b.iter().all(|x| x.is_finite()) || b[2] < 0.0 {
+                return Err(c.invalid(&format!("fit.direction_bound_deg[{i}]"), "[from_deg, to_deg, bound_deg] with finite values and bound ≥ 0", format!("{b:?}")));
+            }
+        }
+        Ok(())
+    }
+
     /// The stated direction-error bound \[°\] at a zenith angle; `None` when the file has none.
     pub fn bound_at_deg(&self, zenith_deg: f64) -> Option<f64> {
         self.direction_bound_deg.iter().find(|b| zenith_deg >= b[0] && zenith_deg < b[1]).map(|b| b[2])
@@ -655,7 +830,20 @@ impl CalibrationFile {
         }
     }
 
-    /// Validate and build the camera.
+    /// Validate the whole file (camera and fit record) and build the camera: the rules `replay`,
+    /// `watch` and `calibrate` (before it writes) all apply.
+    ///
+    /// # Errors
+    /// A field out of range, naming `file`.
+    pub fn validate(&self, file: &Path) -> Result<Camera, ConfigError> {
+        let cam = self.camera(file)?;
+        if let Some(f) = &self.fit {
+            f.validate(file)?;
+        }
+        Ok(cam)
+    }
+
+    /// Validate and build the camera (the `[camera]` section only; see [`CalibrationFile::validate`]).
     ///
     /// # Errors
     /// A field out of range, naming `file`.

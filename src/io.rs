@@ -289,8 +289,9 @@ impl Series {
         let m = Measurements::read_csv(path)?;
         let c = m.column(column).ok_or_else(|| InputError::Csv { file: path.into(), line: 1, message: format!("expected a column named {column}") })?;
         if let Some(i) = m.columns[c].iter().position(|v| !v.is_finite()) {
-            return Err(InputError::Other {
+            return Err(InputError::Csv {
                 file: path.into(),
+                line: m.lines.get(i).copied().unwrap_or(0),
                 message: format!("{column}: row {} (time {}): expected a finite number", i + 1, fmt_time(&m.times[i])),
             });
         }
@@ -298,6 +299,24 @@ impl Series {
             return Err(InputError::Other { file: path.into(), message: "no rows".into() });
         }
         Ok(Series { times: m.times.clone(), values: m.columns[c].clone() })
+    }
+
+    /// Read a cloud base height series (`time_utc,cbh_m`), every value from [`CBH_MIN_M`] to
+    /// [`CBH_MAX_M`].
+    ///
+    /// # Errors
+    /// As [`Series::read_csv`], and a value out of range with its line.
+    pub fn read_cbh_csv(path: &Path) -> Result<Series, InputError> {
+        let m = Measurements::read_csv(path)?;
+        let s = Series::read_csv(path, "cbh_m")?;
+        if let Some(i) = s.values.iter().position(|v| !(*v >= CBH_MIN_M && *v <= CBH_MAX_M)) {
+            return Err(InputError::Csv {
+                file: path.into(),
+                line: m.lines.get(i).copied().unwrap_or(0),
+                message: format!("cbh_m: expected a cloud base height from {CBH_MIN_M} to {CBH_MAX_M} m, got {}", s.values[i]),
+            });
+        }
+        Ok(s)
     }
 
     /// Linear interpolation at `t`; `None` outside the series' span (more than `slack_s` beyond an end).
@@ -415,6 +434,106 @@ pub struct Measurements {
     pub columns: Vec<Vec<f64>>,
     /// Averaging period of each row \[s\] (from the time step), for centring.
     pub period_s: f64,
+    /// The file line of each row (1-based, the header is line 1).
+    pub lines: Vec<u64>,
+}
+
+/// Most data rows of a measurements or series CSV (about 9.5 years of 1-minute rows).
+pub const MAX_CSV_ROWS: usize = 5_000_000;
+/// Most value columns of a measurements CSV.
+pub const MAX_CSV_COLUMNS: usize = 1_000;
+/// Lowest cloud base height \[m\] accepted anywhere (site default, series): fog and stratus
+/// below it do not form a cloud map (common practice, no source).
+pub const CBH_MIN_M: f64 = 50.0;
+/// Highest cloud base height \[m\]: above the tropopause of mid-latitudes nothing a sky camera
+/// maps forms (common practice, no source).
+pub const CBH_MAX_M: f64 = 15_000.0;
+/// Air temperature range \[°C\] of a `temp_air_c` column: a little beyond the recorded extremes
+/// (−89.2 °C Vostok 1983, 56.7 °C Death Valley 1913; WMO archive, from memory).
+pub const TEMP_AIR_RANGE_C: (f64, f64) = (-90.0, 70.0);
+/// Wind speed range \[m/s\] of a `wind_speed_mps` column: beyond the recorded 113 m/s gust
+/// (Barrow Island 1996; WMO archive, from memory).
+pub const WIND_SPEED_RANGE_MPS: (f64, f64) = (0.0, 120.0);
+/// A GHI column whose largest reading stays below this while the clear-sky model gives at least
+/// [`KW_CHECK_CLEAR_WM2`] is taken to be in kW/m².
+pub const KW_SUSPECT_MAX: f64 = 2.0;
+/// Clear-sky GHI \[W/m²\] from which rows count for the kW/m² check.
+pub const KW_CHECK_CLEAR_WM2: f64 = 300.0;
+
+/// What [`Measurements::screen`] found in one column.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct ColumnScreen {
+    /// Column name.
+    pub name: String,
+    /// Empty (or `nan`) cells.
+    pub missing: usize,
+    /// Infinite values.
+    pub not_finite: usize,
+    /// Outside the BSRN "physically possible" limits (irradiance) or the column's range.
+    pub impossible: usize,
+    /// Inside the physically possible but outside the "extremely rare" limits (irradiance).
+    pub rare: usize,
+}
+
+impl ColumnScreen {
+    /// Values flagged and left out (missing cells are not counted).
+    pub fn flagged(&self) -> usize {
+        self.not_finite + self.impossible + self.rare
+    }
+}
+
+/// What [`Measurements::screen`] found, per column.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct ScreenReport {
+    /// Rows.
+    pub rows: usize,
+    /// Per column.
+    pub columns: Vec<ColumnScreen>,
+    /// Rows with at least one flagged value, with their file lines (first 20).
+    pub first_flagged_lines: Vec<u64>,
+}
+
+impl ScreenReport {
+    /// Values flagged in all.
+    pub fn flagged(&self) -> usize {
+        self.columns.iter().map(ColumnScreen::flagged).sum()
+    }
+
+    /// Counts by `"<column> <reason>"`, non-zero only.
+    pub fn counts(&self) -> std::collections::BTreeMap<String, usize> {
+        let mut m = std::collections::BTreeMap::new();
+        for c in &self.columns {
+            for (what, n) in [("not finite", c.not_finite), ("physically impossible", c.impossible), ("extremely rare", c.rare)] {
+                if n > 0 {
+                    m.insert(format!("{} {what}", c.name), n);
+                }
+            }
+        }
+        m
+    }
+}
+
+impl std::fmt::Display for ScreenReport {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let parts: Vec<String> = self.counts().iter().map(|(k, n)| format!("{k} {n}")).collect();
+        write!(f, "{} values of {} rows flagged and left out", self.flagged(), self.rows)?;
+        if !parts.is_empty() {
+            let lines: Vec<String> = self.first_flagged_lines.iter().map(u64::to_string).collect();
+            write!(f, ": {} (lines {}{})", parts.join(", "), lines.join(", "), if self.first_flagged_lines.len() >= 20 { ", …" } else { "" })?;
+        }
+        Ok(())
+    }
+}
+
+/// Whether a measurements column holds irradiance in W/m² (`ghi`, `dni`, `dhi`, or
+/// `<ghi|dni|dhi>_<name>_wm2`), and which component.
+fn irradiance_kind(name: &str) -> Option<&'static str> {
+    for k in ["ghi", "dni", "dhi"] {
+        if name == k || (name.starts_with(&format!("{k}_")) && name.ends_with("_wm2")) {
+            return Some(k);
+        }
+    }
+    None
 }
 
 impl Measurements {
@@ -434,7 +553,10 @@ impl Measurements {
             message: "expected a column named time_utc".into(),
         })?;
         let names: Vec<String> = headers.iter().enumerate().filter(|(i, _)| *i != ti).map(|(_, h)| h.to_string()).collect();
-        let mut m = Measurements { times: vec![], names: names.clone(), columns: vec![vec![]; names.len()], period_s: 60.0 };
+        if names.len() > MAX_CSV_COLUMNS {
+            return Err(InputError::Csv { file: path.into(), line: 1, message: format!("expected at most {MAX_CSV_COLUMNS} value columns, got {}", names.len()) });
+        }
+        let mut m = Measurements { times: vec![], names: names.clone(), columns: vec![vec![]; names.len()], period_s: 60.0, lines: vec![] };
         for rec in rdr.records() {
             let rec = rec.map_err(|e| InputError::Csv {
                 file: path.into(),
@@ -443,12 +565,16 @@ impl Measurements {
             })?;
             let line = rec.position().map(|p| p.line()).unwrap_or(0);
             let bad = |msg: String| InputError::Csv { file: path.into(), line, message: msg };
+            if m.times.len() >= MAX_CSV_ROWS {
+                return Err(bad(format!("expected at most {MAX_CSV_ROWS} rows")));
+            }
             let t = parse_time("time_utc", rec.get(ti).unwrap_or("")).map_err(bad)?;
             if let Some(last) = m.times.last()
                 && t <= *last {
                     return Err(bad(format!("time_utc {} is not after the previous row: duplicated or out of order", fmt_time(&t))));
                 }
             m.times.push(t);
+            m.lines.push(line);
             let mut k = 0;
             for (i, v) in rec.iter().enumerate() {
                 if i == ti {
@@ -475,6 +601,106 @@ impl Measurements {
             m.period_s = steps[steps.len() / 2] as f64;
         }
         Ok(m)
+    }
+
+    /// Screen the values for plausibility and units before they are used: per row, values that are
+    /// infinite, outside the BSRN "physically possible" or "extremely rare" limits (irradiance
+    /// columns, at the sun's position of the row; C. N. Long, E. G. Dutton, *BSRN Global Network
+    /// recommended QC tests*, V2.0, see [`crate::qc`]) or outside [`TEMP_AIR_RANGE_C`] /
+    /// [`WIND_SPEED_RANGE_MPS`] become missing (NaN), so nothing learns from them, and are
+    /// counted in the report. A GHI column that looks like kW/m² is refused.
+    ///
+    /// # Errors
+    /// A GHI column whose daytime readings stay below [`KW_SUSPECT_MAX`] while the clear-sky
+    /// model gives at least [`KW_CHECK_CLEAR_WM2`]; naming the file and column.
+    pub fn screen(&mut self, file: &Path, observer: &crate::sun::Observer, model: crate::clearsky::ClearSkyModel, altitude_m: f64) -> Result<ScreenReport, InputError> {
+        // Sun position and clear-sky GHI per row, only when an irradiance column needs them.
+        let any_irr = self.names.iter().any(|n| irradiance_kind(n).is_some());
+        let suns: Vec<Option<(f64, f64, f64)>> = if any_irr {
+            self.times
+                .iter()
+                .map(|t| crate::sun::position(t, observer).ok().map(|sp| (sp.zenith_rad, sp.earth_sun_distance_au, crate::clearsky::clear_sky(&sp, altitude_m, model).ghi_wm2)))
+                .collect()
+        } else {
+            vec![]
+        };
+        // Units first, on the raw values.
+        for (c, name) in self.names.iter().enumerate() {
+            if irradiance_kind(name) != Some("ghi") {
+                continue;
+            }
+            let (mut day_rows, mut max_v, mut max_clear) = (0usize, f64::NEG_INFINITY, 0.0f64);
+            for (i, v) in self.columns[c].iter().enumerate() {
+                if let Some((_, _, clear)) = suns[i]
+                    && clear >= KW_CHECK_CLEAR_WM2
+                    && v.is_finite()
+                {
+                    day_rows += 1;
+                    max_v = max_v.max(*v);
+                    max_clear = max_clear.max(clear);
+                }
+            }
+            if day_rows >= 5 && max_v < KW_SUSPECT_MAX && max_v > 0.0 {
+                return Err(InputError::Other {
+                    file: file.into(),
+                    message: format!(
+                        "column {name}: the largest of {day_rows} daytime readings is {max_v} while the clear-sky model gives up to {max_clear:.0} W/m² at those times: the column looks like kW/m²; expected W/m² (multiply by 1000)"
+                    ),
+                });
+            }
+        }
+        let mut report = ScreenReport { rows: self.times.len(), ..Default::default() };
+        let mut flagged_rows = vec![false; self.times.len()];
+        for (c, name) in self.names.iter().enumerate() {
+            let kind = irradiance_kind(name);
+            let range = match name.as_str() {
+                "temp_air_c" => Some(TEMP_AIR_RANGE_C),
+                "wind_speed_mps" => Some(WIND_SPEED_RANGE_MPS),
+                _ => None,
+            };
+            let mut cs = ColumnScreen { name: name.clone(), ..Default::default() };
+            for (i, v) in self.columns[c].iter_mut().enumerate() {
+                if v.is_nan() {
+                    cs.missing += 1;
+                    continue;
+                }
+                let flag = if !v.is_finite() {
+                    cs.not_finite += 1;
+                    true
+                } else if let Some(k) = kind {
+                    // At night the limits at the horizon apply (GHI, DHI up to 100 and 50 W/m²).
+                    let (z, au) = suns[i].map(|s| (s.0.min(std::f64::consts::FRAC_PI_2), s.1)).unwrap_or((std::f64::consts::FRAC_PI_2, 1.0));
+                    let l = crate::qc::bsrn_limits(z, au);
+                    let (phys, rare) = match k {
+                        "ghi" => (l.ghi_physical, l.ghi_rare),
+                        "dni" => (l.dni_physical, l.dni_rare),
+                        _ => (l.dhi_physical, l.dhi_rare),
+                    };
+                    if !(*v > -4.0 && *v < phys) {
+                        cs.impossible += 1;
+                        true
+                    } else if !(*v > -2.0 && *v < rare) {
+                        cs.rare += 1;
+                        true
+                    } else {
+                        false
+                    }
+                } else if let Some((lo, hi)) = range {
+                    let out = !(*v >= lo && *v <= hi);
+                    cs.impossible += usize::from(out);
+                    out
+                } else {
+                    false
+                };
+                if flag {
+                    *v = f64::NAN;
+                    flagged_rows[i] = true;
+                }
+            }
+            report.columns.push(cs);
+        }
+        report.first_flagged_lines = flagged_rows.iter().enumerate().filter(|(_, f)| **f).map(|(i, _)| self.lines.get(i).copied().unwrap_or(0)).take(20).collect();
+        Ok(report)
     }
 
     /// Column index by name.

@@ -161,6 +161,9 @@ pub struct Counters {
     /// Times the newest accepted time was dropped because the system clock fell behind it by more
     /// than the tolerance ([`Nowcaster::judge_clock`]).
     pub clock_reanchors: usize,
+    /// Measurement values flagged and left out when the measurements were read, by
+    /// `"<column> <reason>"` ([`crate::io::Measurements::screen`]).
+    pub measurements_flagged: std::collections::BTreeMap<String, usize>,
 }
 
 /// Tuning of beam transmittances and diffuse gain from pyranometer readings (ridge regression toward

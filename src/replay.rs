@@ -103,7 +103,7 @@ pub fn prepare(opts: &ReplayOptions, frame_span: Option<(DateTime<Utc>, DateTime
     }
     let series = match &site.cbh_csv {
         Some(p) => {
-            let s = Series::read_csv(p, "cbh_m")?;
+            let s = Series::read_cbh_csv(p)?;
             if let Some((a, b)) = frame_span {
                 let (s0, s1) = (s.times[0], *s.times.last().unwrap_or(&s.times[0]));
                 if s1 < a || s0 > b {
@@ -124,11 +124,20 @@ pub fn prepare(opts: &ReplayOptions, frame_span: Option<(DateTime<Utc>, DateTime
         }
         None => None,
     };
+    let mut flagged = std::collections::BTreeMap::new();
     let meas = match &opts.measurements {
-        Some(p) => Some(Measurements::read_csv(p)?),
+        Some(p) => {
+            let mut m = Measurements::read_csv(p)?;
+            let f = &site.file.site;
+            let report = m.screen(p, &f.observer(), f.clear_sky(), f.elevation_m)?;
+            flagged = report.counts();
+            Some(m)
+        }
         None => None,
     };
-    Ok(Nowcaster::new(site, series, meas))
+    let mut nc = Nowcaster::new(site, series, meas);
+    nc.counters.measurements_flagged = flagged;
+    Ok(nc)
 }
 
 fn median(mut v: Vec<f64>) -> f64 {

@@ -724,6 +724,10 @@ fn check_usable(fit: &Fit) -> Result<(), CalibrationError> {
     if fit.params.iter().any(|p| !p.1.is_finite()) {
         return Err(CalibrationError::Unusable("a parameter is not finite".into()));
     }
+    // A standard error of 0 (or none) says the fit had no freedom left, not that it is exact.
+    if let Some((n, _, se)) = fit.params.iter().find(|p| !(p.2.is_finite() && p.2 > 0.0)) {
+        return Err(CalibrationError::Unusable(format!("the standard error of {n} is {se}")));
+    }
     Ok(())
 }
 
