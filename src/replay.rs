@@ -259,85 +259,102 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
     let mut outputs = vec![];
-    for (i, f) in frames.iter().enumerate() {
-        let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
-        let td = std::time::Instant::now();
-        // The clock policy first (from the name alone), then intake, then the engine.
-        let frame = match nowcaster.judge_clock(f.time, Utc::now()) {
-            Err(r) => Err(r),
-            Ok(_) => crate::intake::read_frame(&f.path, &intake).map(|image| Frame { time: f.time, image }).map_err(|e| nowcaster.reject(Rejection::Intake(e))),
-        };
-        let dms = td.elapsed().as_secs_f64() * 1000.0;
-        let result = match &frame {
-            Ok(fr) => nowcaster.step(fr),
-            Err(r) => Err(r.clone()),
-        };
-        match result {
-            Ok(nc) => {
-                decode_ms.push(dms);
-                step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.ensemble_ms + nc.times.qc_ms);
-                forecast_rows(&nc, &mut fc);
-                let plant_h: Vec<u32> = nc.forecast.rows.iter().filter(|r| r.target == "plant").map(|r| r.horizon_s).collect();
-                for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
-                    for (m, v) in ms.iter().enumerate() {
-                        members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);
-                    }
+    // Frames are read and decoded one or two ahead on a thread of their own, so that decoding frame
+    // n + 1 overlaps the engine's step on frame n.
+    let (tx, rx) = std::sync::mpsc::sync_channel::<(Result<image::RgbImage, crate::intake::IntakeError>, f64)>(2);
+    let paths: Vec<PathBuf> = frames.iter().map(|f| f.path.clone()).collect();
+    std::thread::scope(|scope| -> Result<(), ReplayError> {
+        scope.spawn(move || {
+            for p in paths {
+                let td = std::time::Instant::now();
+                let r = crate::intake::read_frame(&p, &intake);
+                if tx.send((r, td.elapsed().as_secs_f64() * 1000.0)).is_err() {
+                    break;
                 }
-                for e in &nc.ramps {
-                    ramps.row([
-                        e.issue_time_utc.to_string(),
-                        e.expected_start_utc.to_string(),
-                        format!("{:.0}", e.lead_time_s),
-                        match e.direction { crate::ramp::Direction::Up => "up", crate::ramp::Direction::Down => "down" }.to_string(),
-                        format!("{:.1}", e.change_kw),
-                        format!("{:.2}", e.change_pct),
-                        format!("{:.3}", e.probability),
+            }
+        });
+        for (i, f) in frames.iter().enumerate() {
+            let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+            let Ok((decoded, dms)) = rx.recv() else {
+                return Err(InputError::Other { file: f.path.clone(), message: "the frame reader stopped before this frame".into() }.into());
+            };
+            // The clock policy first (from the name alone), then intake, then the engine.
+            let frame = match nowcaster.judge_clock(f.time, Utc::now()) {
+                Err(r) => Err(r),
+                Ok(_) => decoded.map(|image| Frame { time: f.time, image }).map_err(|e| nowcaster.reject(Rejection::Intake(e))),
+            };
+            let result = match &frame {
+                Ok(fr) => nowcaster.step(fr),
+                Err(r) => Err(r.clone()),
+            };
+            match result {
+                Ok(nc) => {
+                    decode_ms.push(dms);
+                    step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.ensemble_ms + nc.times.qc_ms);
+                    forecast_rows(&nc, &mut fc);
+                    let plant_h: Vec<u32> = nc.forecast.rows.iter().filter(|r| r.target == "plant").map(|r| r.horizon_s).collect();
+                    for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
+                        for (m, v) in ms.iter().enumerate() {
+                            members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);
+                        }
+                    }
+                    for e in &nc.ramps {
+                        ramps.row([
+                            e.issue_time_utc.to_string(),
+                            e.expected_start_utc.to_string(),
+                            format!("{:.0}", e.lead_time_s),
+                            match e.direction { crate::ramp::Direction::Up => "up", crate::ramp::Direction::Down => "down" }.to_string(),
+                            format!("{:.1}", e.change_kw),
+                            format!("{:.2}", e.change_pct),
+                            format!("{:.3}", e.probability),
+                        ]);
+                        if let Ok(j) = serde_json::to_string(e) {
+                            ramps_jsonl += &j;
+                            ramps_jsonl.push('\n');
+                        }
+                    }
+                    if let Some(c) = &nc.alarm_change {
+                        alarms.row([c.time_utc.to_string(), c.from.name().to_string(), c.to.name().to_string(), format!("{:.3}", c.probability), c.reason.clone()]);
+                    }
+                    motion_row(&nc, &mut mo);
+                    fr.row([
+                        fmt_time(&f.time),
+                        name.clone(),
+                        "ok".into(),
+                        String::new(),
+                        format!("{:.4}", nc.cloud_fraction),
+                        format!("{:.0}", nc.cbh_m),
+                        format!("{:.2}", nc.sun.elevation_rad().to_degrees()),
+                        format!("{dms:.2}"),
+                        format!("{:.2}", nc.times.qc_ms),
+                        format!("{:.2}", nc.times.map_ms),
+                        format!("{:.2}", nc.times.motion_ms),
+                        format!("{:.2}", nc.times.forecast_ms),
+                        format!("{:.2}", nc.times.ensemble_ms),
+                        format!("{:.3}", nc.band_scale[0]),
+                        format!("{:.3}", nc.band_scale[1]),
+                        format!("{:.3}", nc.band_scale[2]),
                     ]);
-                    if let Ok(j) = serde_json::to_string(e) {
-                        ramps_jsonl += &j;
-                        ramps_jsonl.push('\n');
+                    if nc.motion.is_some() {
+                        last_motion = nc.motion.map(|m| m.v_mps);
                     }
+                    if opts.overlays_every > 0 && i % opts.overlays_every == 0
+                        && let Ok(fr) = &frame {
+                            let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
+                            let stem = name.rsplit_once('.').map(|x| x.0).unwrap_or(&name);
+                            set.write(&format!("overlays/{stem}.png"), &png)?;
+                        }
                 }
-                if let Some(c) = &nc.alarm_change {
-                    alarms.row([c.time_utc.to_string(), c.from.name().to_string(), c.to.name().to_string(), format!("{:.3}", c.probability), c.reason.clone()]);
+                Err(rej) => {
+                    let mut row = vec![fmt_time(&f.time), name.clone(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
+                    row.resize(16, String::new());
+                    fr.row(row);
                 }
-                motion_row(&nc, &mut mo);
-                fr.row([
-                    fmt_time(&f.time),
-                    name.clone(),
-                    "ok".into(),
-                    String::new(),
-                    format!("{:.4}", nc.cloud_fraction),
-                    format!("{:.0}", nc.cbh_m),
-                    format!("{:.2}", nc.sun.elevation_rad().to_degrees()),
-                    format!("{dms:.2}"),
-                    format!("{:.2}", nc.times.qc_ms),
-                    format!("{:.2}", nc.times.map_ms),
-                    format!("{:.2}", nc.times.motion_ms),
-                    format!("{:.2}", nc.times.forecast_ms),
-                    format!("{:.2}", nc.times.ensemble_ms),
-                    format!("{:.3}", nc.band_scale[0]),
-                    format!("{:.3}", nc.band_scale[1]),
-                    format!("{:.3}", nc.band_scale[2]),
-                ]);
-                if nc.motion.is_some() {
-                    last_motion = nc.motion.map(|m| m.v_mps);
-                }
-                if opts.overlays_every > 0 && i % opts.overlays_every == 0
-                    && let Ok(fr) = &frame {
-                        let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
-                        let stem = name.rsplit_once('.').map(|x| x.0).unwrap_or(&name);
-                        set.write(&format!("overlays/{stem}.png"), &png)?;
-                    }
             }
-            Err(rej) => {
-                let mut row = vec![fmt_time(&f.time), name.clone(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
-                row.resize(16, String::new());
-                fr.row(row);
-            }
+            bar.inc(1);
         }
-        bar.inc(1);
-    }
+        Ok(())
+    })?;
     bar.finish_and_clear();
     for (file, bytes) in [
         ("forecasts.csv", fc.into_bytes()),
