@@ -211,12 +211,19 @@ pub struct SegmentArgs {
 /// Arguments of `nephocast evaluate`.
 #[derive(Debug, clap::Args)]
 pub struct EvaluateArgs {
-    /// The synthetic sequence (with its truth/ folder).
-    #[arg(long)]
-    pub sequence: PathBuf,
+    /// The synthetic sequence (with its truth/ folder), to score against its truth.
+    #[arg(long, required_unless_present = "measurements")]
+    pub sequence: Option<PathBuf>,
     /// The replay's output folder.
     #[arg(long)]
     pub replay: PathBuf,
+    /// A measurements CSV (`ghi_<name>_wm2` per pyranometer), to score against measurements
+    /// instead of a synthetic truth (needs `--site`).
+    #[arg(long, requires = "site", conflicts_with = "sequence")]
+    pub measurements: Option<PathBuf>,
+    /// The site file the replay ran with (pyranometer positions, blocks).
+    #[arg(long)]
+    pub site: Option<PathBuf>,
 }
 
 /// Arguments of `nephocast replay`.
@@ -493,7 +500,17 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Evaluate(a) => {
             // Keep a replay from swapping the folder while it is read and added to.
             let _lock = crate::output_set::lock(&a.replay)?;
-            let e = crate::verify::evaluate(&a.sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
+            crate::output_set::check_manifest(&a.replay)?;
+            if let (Some(mp), Some(sp)) = (&a.measurements, &a.site) {
+                let site = crate::config::Site::load(sp)?;
+                let e = crate::measured::evaluate_measured(&site, &a.replay, mp)?;
+                crate::measured::print_measured(&e);
+                let p = crate::output_set::update_file(&a.replay, "evaluation-measured.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
+                crate::say!("wrote {}", p.display());
+                return Ok(());
+            }
+            let Some(sequence) = &a.sequence else { bail!("--sequence or --measurements is needed") };
+            let e = crate::verify::evaluate(sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
             crate::verify::print_evaluation(&e);
             let p = crate::output_set::update_file(&a.replay, "evaluation.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
             crate::say!("wrote {}", p.display());

@@ -53,6 +53,7 @@ pub mod config;
 pub mod forecast;
 pub mod intake;
 pub mod io;
+pub mod measured;
 pub mod motion;
 pub mod nowcast;
 pub mod output_set;

@@ -1,0 +1,340 @@
+//! Scores of a replay against measurements: the forecasts in `forecasts.csv` (and the ensemble in
+//! `ensemble_plant.csv`) against pyranometer readings, where no synthetic truth exists.
+//!
+//! # What is compared
+//! * **Plant:** the forecast plant-mean GHI against the mean of the site's pyranometers
+//!   (`ghi_<name>_wm2` columns) valid at the target time.
+//! * **Blocks:** each block's forecast against the pyranometers inside its footprint (blocks
+//!   without one are not scored).
+//! * A reading is the row whose averaging period contains the target time (1-minute means stamped
+//!   at the start of their minute). It is left out, and counted by reason, when it was flagged by the
+//!   screening ([`crate::io::Measurements::screen`]: non-finite, outside the BSRN limits), is stuck
+//!   (the run test of [`crate::qc`]), is missing, or when the clear-sky GHI is under 50 W/m².
+//!
+//! # Metrics
+//! RMSE, MAE and MBE per horizon; skill against smart persistence (the clear-sky index of the
+//! newest completed reading at the issue time, times the clear-sky GHI at the target:
+//! Coimbra, Kleissl & Marquez 2013); CRPS of the plant ensemble (Gneiting & Raftery 2007); the share
+//! of readings inside P10–P90.
+//!
+//! # Sky types
+//! Each issue time is classed from the measured plant-mean clear-sky index `kc = GHI / GHI_clear`
+//! over the 30 minutes before it: its mean and the standard deviation of its 1-minute changes
+//! (`σΔkc`, a variability measure after Perez et al. 2011, *Solar Energy* 85:1343, from memory):
+//! **clear** when mean `kc ≥ 0.8` and `σΔkc ≤ 0.03`, **overcast** when mean `kc ≤ 0.5` and
+//! `σΔkc ≤ 0.03`, **variable** otherwise (thresholds own choice); **unknown** with fewer than 10
+//! readings. Each class is scored on its own (pooled over 5–15 min).
+
+use std::collections::{BTreeMap, HashMap};
+use std::path::Path;
+
+use chrono::{DateTime, Utc};
+use serde::Serialize;
+
+use crate::config::Site;
+use crate::io::{InputError, Measurements};
+use crate::verify::{crps_ensemble, read_rows};
+
+/// Scores of one target at one horizon.
+#[derive(Debug, Clone, Serialize)]
+pub struct MeasuredHorizon {
+    /// Horizon \[s\].
+    pub horizon_s: u32,
+    /// Pairs scored.
+    pub n: usize,
+    /// RMSE \[W/m²\].
+    pub rmse_wm2: f64,
+    /// MAE \[W/m²\].
+    pub mae_wm2: f64,
+    /// MBE (forecast − measured) \[W/m²\].
+    pub mbe_wm2: f64,
+    /// RMSE of smart persistence on the same pairs \[W/m²\].
+    pub rmse_persistence_wm2: f64,
+    /// `1 − RMSE / RMSE_persistence`.
+    pub skill: f64,
+    /// Mean CRPS of the ensemble (plant only; NaN without members) \[W/m²\].
+    pub crps_wm2: f64,
+    /// Share of readings inside P10–P90.
+    pub coverage_p10_p90: f64,
+}
+
+/// Pooled 5–15 min scores of a subset (a sky type or a block).
+#[derive(Debug, Clone, Serialize)]
+pub struct Pooled {
+    /// Pairs.
+    pub n: usize,
+    /// RMSE \[W/m²\].
+    pub rmse_wm2: f64,
+    /// Smart persistence's RMSE \[W/m²\].
+    pub rmse_persistence_wm2: f64,
+    /// Skill.
+    pub skill: f64,
+    /// MBE \[W/m²\].
+    pub mbe_wm2: f64,
+}
+
+/// Everything [`evaluate_measured`] finds.
+#[derive(Debug, Clone, Serialize)]
+pub struct MeasuredEvaluation {
+    /// Plant scores per horizon.
+    pub plant: Vec<MeasuredHorizon>,
+    /// Pooled 5–15 min plant scores per sky type.
+    pub by_sky_type: BTreeMap<String, Pooled>,
+    /// Issue times per sky type.
+    pub issues_by_sky_type: BTreeMap<String, usize>,
+    /// Pooled 5–15 min scores per block that holds a pyranometer.
+    pub by_block: BTreeMap<String, Pooled>,
+    /// Forecast rows left out, by reason.
+    pub excluded: BTreeMap<String, usize>,
+    /// Values the screening flagged, by column and reason.
+    pub screened: BTreeMap<String, usize>,
+}
+
+/// A scored plant pair: forecast, measured, smart persistence, CRPS, inside P10–P90 (1 or 0).
+type Pair = (f64, f64, f64, f64, f64);
+
+/// Smallest clear-sky GHI scored \[W/m²\].
+const MIN_CLEAR_WM2: f64 = 50.0;
+
+/// The sky type of an issue time from the measured clear-sky index before it.
+pub fn sky_type(kc: &[f64]) -> &'static str {
+    let v: Vec<f64> = kc.iter().copied().filter(|x| x.is_finite()).collect();
+    if v.len() < 10 {
+        return "unknown";
+    }
+    let mean = v.iter().sum::<f64>() / v.len() as f64;
+    let d: Vec<f64> = v.windows(2).map(|w| w[1] - w[0]).collect();
+    let md = d.iter().sum::<f64>() / d.len() as f64;
+    let sd = (d.iter().map(|x| (x - md).powi(2)).sum::<f64>() / d.len() as f64).sqrt();
+    if sd <= 0.03 && mean >= 0.8 {
+        "clear"
+    } else if sd <= 0.03 && mean <= 0.5 {
+        "overcast"
+    } else {
+        "variable"
+    }
+}
+
+fn pooled(pairs: &[(f64, f64, f64)]) -> Pooled {
+    let n = pairs.len();
+    let rm = |k: usize| (pairs.iter().map(|p| (if k == 0 { p.0 } else { p.2 } - p.1).powi(2)).sum::<f64>() / n.max(1) as f64).sqrt();
+    let (r, rp) = (rm(0), rm(2));
+    Pooled { n, rmse_wm2: r, rmse_persistence_wm2: rp, skill: 1.0 - r / rp, mbe_wm2: pairs.iter().map(|p| p.0 - p.1).sum::<f64>() / n.max(1) as f64 }
+}
+
+/// Score a replay's forecasts against a measurements CSV for a site.
+///
+/// # Errors
+/// Unreadable or malformed files, a measurements file without any of the site's pyranometers.
+pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) -> Result<MeasuredEvaluation, InputError> {
+    let f = &site.file.site;
+    let mut m = Measurements::read_csv(measurements)?;
+    let screen = m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
+    // Each pyranometer's column and the block it lies in.
+    let cols: Vec<(usize, Option<String>)> = site
+        .file
+        .pyranometers
+        .iter()
+        .filter_map(|p| {
+            let c = m.column(&format!("ghi_{}_wm2", p.name))?;
+            let block = site.file.plant.blocks.iter().find(|b| crate::plant::point_in_polygon(p.position_m, &b.polygon_m)).map(|b| b.name.clone());
+            Some((c, block))
+        })
+        .collect();
+    if cols.is_empty() {
+        return Err(InputError::Other {
+            file: measurements.into(),
+            message: format!(
+                "none of the site's pyranometers has a column here (expected ghi_<name>_wm2 for {})",
+                site.file.pyranometers.iter().map(|p| p.name.as_str()).collect::<Vec<_>>().join(", ")
+            ),
+        });
+    }
+    let mut excluded: BTreeMap<String, usize> = BTreeMap::new();
+    // Mean of the valid readings at t over some columns.
+    let reading = |cs: &[usize], t: &DateTime<Utc>, why: &mut BTreeMap<String, usize>| -> Option<f64> {
+        let (mut s, mut k) = (0.0, 0usize);
+        for &c in cs {
+            let v = m.at(c, t);
+            if !v.is_finite() {
+                *why.entry("reading missing or flagged".into()).or_default() += 1;
+                continue;
+            }
+            if m.stuck_at(c, t, crate::qc::STUCK_RUN) {
+                *why.entry("reading stuck".into()).or_default() += 1;
+                continue;
+            }
+            s += v;
+            k += 1;
+        }
+        (k > 0).then(|| s / k as f64)
+    };
+    let newest = |cs: &[usize], t: &DateTime<Utc>| -> Option<f64> {
+        let v: Vec<f64> = cs.iter().filter_map(|&c| m.completed_at(c, t).map(|x| x.0)).collect();
+        (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64)
+    };
+    let all: Vec<usize> = cols.iter().map(|c| c.0).collect();
+    let fpath = replay_out.join("forecasts.csv");
+    let rows = read_rows(&fpath)?;
+    let num = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
+    let time = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
+    // Clear-sky GHI at each issue time (the horizon-0 plant row).
+    let mut clear_at_issue: HashMap<(String, DateTime<Utc>), f64> = HashMap::new();
+    for r in &rows {
+        if num(r, "horizon_s") == 0.0
+            && let (Some(t), Some(b)) = (time(r, "issue_time_utc"), r.get("block"))
+        {
+            clear_at_issue.insert((b.clone(), t), num(r, "ghi_clear_wm2"));
+        }
+    }
+    // Members of the plant ensemble per (issue, horizon).
+    let mut members: HashMap<(DateTime<Utc>, u32), Vec<f64>> = HashMap::new();
+    let mp = replay_out.join("ensemble_plant.csv");
+    if mp.is_file() {
+        for r in read_rows(&mp)? {
+            if let Some(t) = time(&r, "issue_time_utc") {
+                members.entry((t, num(&r, "horizon_s") as u32)).or_default().push(num(&r, "plant_ghi_wm2"));
+            }
+        }
+    }
+    // Sky type per issue time.
+    let mut sky_of: HashMap<DateTime<Utc>, &'static str> = HashMap::new();
+    let observer = f.observer();
+    let kc_at = |t: DateTime<Utc>| -> f64 {
+        let Ok(sp) = crate::sun::position(&t, &observer) else { return f64::NAN };
+        let clear = crate::clearsky::clear_sky(&sp, f.elevation_m, f.clear_sky()).ghi_wm2;
+        if clear < MIN_CLEAR_WM2 {
+            return f64::NAN;
+        }
+        let mut none = BTreeMap::new();
+        reading(&all, &t, &mut none).map(|v| v / clear).unwrap_or(f64::NAN)
+    };
+    // Per horizon: (forecast, measured, persistence, CRPS, inside P10–P90).
+    let mut per_h: BTreeMap<u32, Vec<Pair>> = BTreeMap::new();
+    let mut by_sky: BTreeMap<String, Vec<(f64, f64, f64)>> = BTreeMap::new();
+    let mut by_block: BTreeMap<String, Vec<(f64, f64, f64)>> = BTreeMap::new();
+    for r in &rows {
+        let (Some(issue), Some(target), Some(block)) = (time(r, "issue_time_utc"), time(r, "target_time_utc"), r.get("block")) else { continue };
+        let h = num(r, "horizon_s");
+        if h.is_nan() || h <= 0.0 {
+            continue;
+        }
+        let h = h as u32;
+        let is_plant = block == crate::plant::PLANT_TARGET;
+        let cs: Vec<usize> = if is_plant { all.clone() } else { cols.iter().filter(|c| c.1.as_deref() == Some(block.as_str())).map(|c| c.0).collect() };
+        if cs.is_empty() {
+            continue;
+        }
+        let clear = num(r, "ghi_clear_wm2");
+        if clear.is_nan() || clear < MIN_CLEAR_WM2 {
+            *excluded.entry("sun low (clear-sky GHI < 50 W/m²)".into()).or_default() += 1;
+            continue;
+        }
+        let Some(obs) = reading(&cs, &target, &mut excluded) else {
+            *excluded.entry("no valid reading at the target time".into()).or_default() += 1;
+            continue;
+        };
+        let clear0 = clear_at_issue.get(&(block.clone(), issue)).copied().unwrap_or(f64::NAN);
+        let Some(sp) = newest(&cs, &issue).filter(|_| clear0 >= MIN_CLEAR_WM2).map(|v| v / clear0 * clear) else {
+            *excluded.entry("no reading for smart persistence at the issue time".into()).or_default() += 1;
+            continue;
+        };
+        let fc = num(r, "ghi_wm2");
+        if is_plant {
+            let crps = members.get(&(issue, h)).map(|v| crps_ensemble(v, obs)).unwrap_or(f64::NAN);
+            let inside = (obs >= num(r, "ghi_p10_wm2") && obs <= num(r, "ghi_p90_wm2")) as u8 as f64;
+            per_h.entry(h).or_default().push((fc, obs, sp, crps, inside));
+            if (300..=900).contains(&h) {
+                let sky = *sky_of.entry(issue).or_insert_with(|| {
+                    let kc: Vec<f64> = (0..30).rev().map(|k| kc_at(issue - chrono::Duration::minutes(k))).collect();
+                    sky_type(&kc)
+                });
+                by_sky.entry(sky.to_string()).or_default().push((fc, obs, sp));
+            }
+        } else if (300..=900).contains(&h) {
+            by_block.entry(block.clone()).or_default().push((fc, obs, sp));
+        }
+    }
+    let plant = per_h
+        .into_iter()
+        .map(|(h, v)| {
+            let n = v.len() as f64;
+            let pairs: Vec<(f64, f64, f64)> = v.iter().map(|x| (x.0, x.1, x.2)).collect();
+            let p = pooled(&pairs);
+            let crps: Vec<f64> = v.iter().map(|x| x.3).filter(|x| x.is_finite()).collect();
+            MeasuredHorizon {
+                horizon_s: h,
+                n: v.len(),
+                rmse_wm2: p.rmse_wm2,
+                mae_wm2: v.iter().map(|x| (x.0 - x.1).abs()).sum::<f64>() / n,
+                mbe_wm2: p.mbe_wm2,
+                rmse_persistence_wm2: p.rmse_persistence_wm2,
+                skill: p.skill,
+                crps_wm2: if crps.is_empty() { f64::NAN } else { crps.iter().sum::<f64>() / crps.len() as f64 },
+                coverage_p10_p90: v.iter().map(|x| x.4).sum::<f64>() / n,
+            }
+        })
+        .collect();
+    let mut issues_by_sky_type: BTreeMap<String, usize> = BTreeMap::new();
+    for s in sky_of.values() {
+        *issues_by_sky_type.entry(s.to_string()).or_default() += 1;
+    }
+    Ok(MeasuredEvaluation {
+        plant,
+        by_sky_type: by_sky.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
+        issues_by_sky_type,
+        by_block: by_block.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
+        excluded,
+        screened: screen.counts(),
+    })
+}
+
+/// Print the scores as tables.
+pub fn print_measured(e: &MeasuredEvaluation) {
+    crate::say!("plant-mean GHI against the mean of the pyranometers");
+    crate::say!("horizon      n   RMSE    MAE    MBE  RMSE(pers)  skill   CRPS  P10–P90");
+    for h in &e.plant {
+        crate::say!(
+            "{:>5} min {:>5} {:>6.1} {:>6.1} {:>6.1} {:>11.1} {:>6.2} {:>6.1} {:>7.2}",
+            h.horizon_s / 60,
+            h.n,
+            h.rmse_wm2,
+            h.mae_wm2,
+            h.mbe_wm2,
+            h.rmse_persistence_wm2,
+            h.skill,
+            h.crps_wm2,
+            h.coverage_p10_p90
+        );
+    }
+    crate::say!("by sky type (issue times; pooled 5–15 min):");
+    for (k, p) in &e.by_sky_type {
+        crate::say!("  {k:<9} {:>4} issues, n {:>5}, RMSE {:.1} vs persistence {:.1}, skill {:.2}, MBE {:.1}", e.issues_by_sky_type.get(k).copied().unwrap_or(0), p.n, p.rmse_wm2, p.rmse_persistence_wm2, p.skill, p.mbe_wm2);
+    }
+    if !e.by_block.is_empty() {
+        crate::say!("by block (its own pyranometers; pooled 5–15 min):");
+        for (k, p) in &e.by_block {
+            crate::say!("  {k:<12} n {:>5}, RMSE {:.1} vs persistence {:.1}, skill {:.2}, MBE {:.1}", p.n, p.rmse_wm2, p.rmse_persistence_wm2, p.skill, p.mbe_wm2);
+        }
+    }
+    let excl: Vec<String> = e.excluded.iter().map(|(k, n)| format!("{k}: {n}")).collect();
+    crate::say!("left out: {}", if excl.is_empty() { "none".to_string() } else { excl.join("; ") });
+    let scr: Vec<String> = e.screened.iter().map(|(k, n)| format!("{k}: {n}")).collect();
+    crate::say!("screened measurements: {}", if scr.is_empty() { "nothing flagged".to_string() } else { scr.join("; ") });
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sky_types_from_the_clear_sky_index() {
+        let clear = vec![0.95; 30];
+        let overcast: Vec<f64> = (0..30).map(|i| 0.3 + 0.005 * (i % 2) as f64).collect();
+        let variable: Vec<f64> = (0..30).map(|i| if i % 4 < 2 { 1.0 } else { 0.3 }).collect();
+        assert_eq!(sky_type(&clear), "clear");
+        assert_eq!(sky_type(&overcast), "overcast");
+        assert_eq!(sky_type(&variable), "variable");
+        assert_eq!(sky_type(&[0.9; 5]), "unknown");
+    }
+}
