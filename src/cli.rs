@@ -40,8 +40,8 @@ pub enum Command {
     Bench(BenchArgs),
     /// Calibrate a camera from the sun's track in its frames.
     Calibrate(CalibrateArgs),
-    /// Live mode: watch a folder for frames, serve forecasts, alarms and the dashboard.
-    Watch(WatchArgs),
+    /// Live mode: take frames from a folder as they arrive, serve forecasts, alarms and the dashboard.
+    Live(LiveArgs),
     /// Quality control of a measurements CSV (BSRN limits, closure, stuck values, gaps).
     Qc(QcArgs),
     /// Where directions land in the image and back (a researcher's check of a calibration).
@@ -63,9 +63,9 @@ pub struct QcArgs {
     pub out: Option<PathBuf>,
 }
 
-/// Arguments of `nephocast watch`.
+/// Arguments of `nephocast live`.
 #[derive(Debug, clap::Args)]
-pub struct WatchArgs {
+pub struct LiveArgs {
     /// The site file.
     #[arg(long)]
     pub site: PathBuf,
@@ -393,7 +393,7 @@ pub fn check_args(cli: &Cli) -> Result<()> {
             check_arg("--min-detections", a.min_detections as f64, crate::config::MIN_FIT_DETECTIONS as f64, 1e6)?;
             check_arg("--min-sun-elevation-deg", a.min_sun_elevation_deg, 0.0, 60.0)?;
         }
-        Command::Watch(a) => {
+        Command::Live(a) => {
             check_arg("--keep-days", a.keep_days, 0.001, 3650.0)?;
             check_arg("--poll-ms", a.poll_ms as f64, 20.0, 60_000.0)?;
         }
@@ -444,7 +444,7 @@ pub fn run(cli: Cli) -> Result<()> {
         Command::Segment(a) => cmd_segment(a),
         Command::Calibrate(a) => cmd_calibrate(a),
         Command::Qc(a) => cmd_qc(a),
-        Command::Watch(a) => {
+        Command::Live(a) => {
             let (ack_token, mut warnings) = crate::serve::guard::read_ack_token(a.ack_token_file.as_deref(), std::env::var(crate::serve::guard::ACK_TOKEN_ENV).ok())?;
             let secs = |name: &str, v: f64| -> Result<std::time::Duration> {
                 if !(0.1..=3600.0).contains(&v) {
@@ -478,7 +478,7 @@ pub fn run(cli: Cli) -> Result<()> {
                 eprintln!("warning: {w}");
             }
             let scheme = if h.tls { "https" } else { "http" };
-            crate::say!("watching {} — dashboard at {scheme}://{}/ (advisory only, not a protection system)", a.incoming.display(), h.addr);
+            crate::say!("live on {} — dashboard at {scheme}://{}/ (advisory only, not a protection system)", a.incoming.display(), h.addr);
             h.wait();
             Ok(())
         }

@@ -176,6 +176,65 @@ pub struct SiteSection {
     /// Linke turbidity for Ineichen–Perez; default 3.0.
     #[serde(default = "default_linke")]
     pub linke_turbidity: f64,
+    /// The site's time zone for displays: an IANA name (`"Europe/Madrid"`) or a fixed offset from
+    /// UTC (`"+02:00"`, `"UTC-5"`); default UTC. Every file and API time stays in UTC.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub timezone: Option<String>,
+}
+
+/// A site's display time zone, checked.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct SiteTimeZone {
+    /// The name as given (`"UTC"` when none was).
+    pub name: String,
+    /// A fixed offset east of UTC \[min\]; none for an IANA name.
+    pub fixed_offset_min: Option<i32>,
+}
+
+/// Where IANA time zone names are checked, when the system has the database.
+const ZONEINFO_DIR: &str = "/usr/share/zoneinfo";
+
+/// Parse a time zone: `UTC`, a fixed offset (`+02:00`, `-0530`, `UTC+2`, `GMT-03:30`, at most
+/// 14 h) or an IANA name (letters, digits, `_`, `+`, `-` in `/`-separated parts; when the system
+/// has its zone database in `/usr/share/zoneinfo`, the name must be in it).
+///
+/// # Errors
+/// What was expected, in words.
+pub fn parse_time_zone(s: &str) -> Result<SiteTimeZone, String> {
+    const EXPECTED: &str = "an IANA time zone name such as \"Europe/Madrid\" or an offset such as \"+02:00\" (at most 14 h)";
+    let t = s.trim();
+    let upper = t.to_ascii_uppercase();
+    if ["UTC", "Z", "GMT"].contains(&upper.as_str()) {
+        return Ok(SiteTimeZone { name: "UTC".into(), fixed_offset_min: Some(0) });
+    }
+    let rest = upper.strip_prefix("UTC").or_else(|| upper.strip_prefix("GMT")).unwrap_or(&upper);
+    if let Some(sign) = rest.chars().next().filter(|c| *c == '+' || *c == '-') {
+        let digits = &rest[1..];
+        let (h, m) = match digits.split_once(':') {
+            Some((h, m)) => (h, m),
+            None if digits.len() == 4 => digits.split_at(2),
+            None => (digits, "0"),
+        };
+        let ok = |x: &str| !x.is_empty() && x.len() <= 2 && x.bytes().all(|b| b.is_ascii_digit());
+        if !(ok(h) && ok(m)) {
+            return Err(EXPECTED.into());
+        }
+        let (h, m): (i32, i32) = (h.parse().map_err(|_| EXPECTED)?, m.parse().map_err(|_| EXPECTED)?);
+        let total = h * 60 + m;
+        if m >= 60 || total > 14 * 60 {
+            return Err(EXPECTED.into());
+        }
+        return Ok(SiteTimeZone { name: t.to_string(), fixed_offset_min: Some(if sign == '-' { -total } else { total }) });
+    }
+    let part_ok = |p: &str| !p.is_empty() && p != "." && p != ".." && p.bytes().all(|b| b.is_ascii_alphanumeric() || b"_+-".contains(&b));
+    if t.is_empty() || t.len() > 64 || !t.split('/').all(part_ok) || !t.as_bytes()[0].is_ascii_alphabetic() {
+        return Err(EXPECTED.into());
+    }
+    let db = Path::new(ZONEINFO_DIR);
+    if db.is_dir() && !db.join(t).is_file() {
+        return Err(format!("{EXPECTED}; {t:?} is not in {ZONEINFO_DIR}"));
+    }
+    Ok(SiteTimeZone { name: t.to_string(), fixed_offset_min: None })
 }
 
 fn default_clear_sky_model() -> String {
@@ -402,6 +461,12 @@ impl SiteSection {
         o
     }
 
+    /// The display time zone (UTC when none is given). A zone that does not parse (a file that
+    /// was not validated) reads as UTC.
+    pub fn time_zone(&self) -> SiteTimeZone {
+        self.timezone.as_deref().and_then(|z| parse_time_zone(z).ok()).unwrap_or(SiteTimeZone { name: "UTC".into(), fixed_offset_min: Some(0) })
+    }
+
     /// The clear-sky model.
     pub fn clear_sky(&self) -> ClearSkyModel {
         if self.clear_sky_model == "haurwitz" {
@@ -432,6 +497,9 @@ impl SiteFile {
         c.range("site.linke_turbidity", s.linke_turbidity, 1.0, 10.0)?;
         if !["ineichen-perez", "haurwitz"].contains(&s.clear_sky_model.as_str()) {
             return Err(c.invalid("site.clear_sky_model", "\"ineichen-perez\" or \"haurwitz\"", format!("{:?}", s.clear_sky_model)));
+        }
+        if let Some(z) = &s.timezone {
+            parse_time_zone(z).map_err(|expected| c.invalid("site.timezone", expected, format!("{z:?}")))?;
         }
         for (i, v) in self.camera.position_m.iter().enumerate() {
             c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
@@ -831,7 +899,7 @@ impl CalibrationFile {
     }
 
     /// Validate the whole file (camera and fit record) and build the camera: the rules `replay`,
-    /// `watch` and `calibrate` (before it writes) all apply.
+    /// `live` and `calibrate` (before it writes) all apply.
     ///
     /// # Errors
     /// A field out of range, naming `file`.
@@ -952,6 +1020,29 @@ base_height_m = 1500.0
         let t = SITE.replace("[clouds]", "[clouds]\nbase_hieght_m = 3");
         let e = parse_toml::<SiteFile>(&t, Path::new("site.toml")).unwrap_err().to_string();
         assert!(e.contains("base_hieght_m"), "{e}");
+    }
+
+    #[test]
+    fn time_zones_parse_as_offsets_or_names() {
+        let off = |z: &str| parse_time_zone(z).map(|t| t.fixed_offset_min);
+        assert_eq!(off("UTC"), Ok(Some(0)));
+        assert_eq!(off("+02:00"), Ok(Some(120)));
+        assert_eq!(off("-0530"), Ok(Some(-330)));
+        assert_eq!(off("UTC+2"), Ok(Some(120)));
+        assert_eq!(off("GMT-03:30"), Ok(Some(-210)));
+        for bad in ["+15:00", "+02:60", "+2:3:4", "", "../etc/passwd", "Europe//Madrid", "/Europe/Madrid", "Europe/Madrid Spain", "+"] {
+            assert!(parse_time_zone(bad).is_err(), "{bad:?} accepted");
+        }
+        if Path::new(ZONEINFO_DIR).join("Europe/Madrid").is_file() {
+            assert_eq!(off("Europe/Madrid"), Ok(None));
+            assert!(parse_time_zone("Europe/Madird").unwrap_err().contains("not in"));
+        }
+        // In a site file: named in the error.
+        let f: SiteFile = toml::from_str(&SITE.replace("elevation_m = 300.0", "elevation_m = 300.0\ntimezone = \"+25:00\"")).unwrap();
+        let e = f.validate(Path::new("s.toml")).unwrap_err().to_string();
+        assert!(e.contains("site.timezone") && e.contains("s.toml"), "{e}");
+        let f: SiteFile = toml::from_str(SITE).unwrap();
+        assert_eq!(f.site.time_zone().name, "UTC");
     }
 
     #[test]

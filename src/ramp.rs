@@ -10,7 +10,7 @@
 //! magnitude, and probability — the share of ensemble members that show a ramp in the same
 //! direction within `match_window_min` of it.
 //!
-//! **Alarm states** (own names): `calm` → `watch` (a ramp is likely within the forecast's reach) →
+//! **Alarm states** (own names): `calm` → `caution` (a ramp is likely within the forecast's reach) →
 //! `alert` (a ramp is likely within `alert_lead_min`). States rise at once; they fall only when the
 //! probability has dropped `release_margin` below the threshold that raised them and the state has
 //! been held `min_hold_s`, so they do not chatter.
@@ -30,8 +30,8 @@ pub struct RampParams {
     pub rate_pct_per_min: f64,
     /// Window over which the change is measured \[min\]; default 1.
     pub window_min: u32,
-    /// Probability from which the state is `watch`; default 0.3.
-    pub watch_probability: f64,
+    /// Probability from which the state is `caution`; default 0.3.
+    pub caution_probability: f64,
     /// Probability from which the state is `alert` (for ramps within `alert_lead_min`); default 0.6.
     pub alert_probability: f64,
     /// Lead time within which a likely ramp raises `alert` \[min\]; default 10.
@@ -49,7 +49,7 @@ impl Default for RampParams {
         Self {
             rate_pct_per_min: 10.0,
             window_min: 1,
-            watch_probability: 0.3,
+            caution_probability: 0.3,
             alert_probability: 0.6,
             alert_lead_min: 10.0,
             release_margin: 0.1,
@@ -67,8 +67,8 @@ impl RampParams {
     pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
         check_range(file, "ramps.rate_pct_per_min", self.rate_pct_per_min, 0.1, 100.0)?;
         check_range(file, "ramps.window_min", self.window_min as f64, 1.0, 15.0)?;
-        check_range(file, "ramps.watch_probability", self.watch_probability, 0.0, 1.0)?;
-        check_range(file, "ramps.alert_probability", self.alert_probability, self.watch_probability, 1.0)?;
+        check_range(file, "ramps.caution_probability", self.caution_probability, 0.0, 1.0)?;
+        check_range(file, "ramps.alert_probability", self.alert_probability, self.caution_probability, 1.0)?;
         check_range(file, "ramps.alert_lead_min", self.alert_lead_min, 0.0, 60.0)?;
         check_range(file, "ramps.release_margin", self.release_margin, 0.0, 0.5)?;
         check_range(file, "ramps.min_hold_s", self.min_hold_s, 0.0, 3600.0)?;
@@ -224,7 +224,7 @@ pub enum AlarmState {
     /// No ramp expected.
     Calm,
     /// A ramp is likely within the forecast's reach.
-    Watch,
+    Caution,
     /// A ramp is likely soon.
     Alert,
 }
@@ -234,7 +234,7 @@ impl AlarmState {
     pub fn name(&self) -> &'static str {
         match self {
             AlarmState::Calm => "calm",
-            AlarmState::Watch => "watch",
+            AlarmState::Caution => "caution",
             AlarmState::Alert => "alert",
         }
     }
@@ -277,8 +277,8 @@ impl Alarm {
         let p_soon = soon.iter().map(|e| e.probability).fold(0.0, f64::max);
         let raise = if p_soon >= p.alert_probability {
             AlarmState::Alert
-        } else if p_any >= p.watch_probability {
-            AlarmState::Watch
+        } else if p_any >= p.caution_probability {
+            AlarmState::Caution
         } else {
             AlarmState::Calm
         };
@@ -289,9 +289,9 @@ impl Alarm {
             // Fall only below the release level of the current state.
             match self.state {
                 AlarmState::Alert if p_soon < p.alert_probability - p.release_margin => {
-                    if p_any >= p.watch_probability { AlarmState::Watch } else { AlarmState::Calm }
+                    if p_any >= p.caution_probability { AlarmState::Caution } else { AlarmState::Calm }
                 }
-                AlarmState::Watch if p_any < p.watch_probability - p.release_margin => AlarmState::Calm,
+                AlarmState::Caution if p_any < p.caution_probability - p.release_margin => AlarmState::Calm,
                 s => s,
             }
         } else {
@@ -387,8 +387,8 @@ mod tests {
         // After the hold, still above the release level (0.5): stays.
         let t2 = t0 + chrono::Duration::seconds(200);
         assert!(a.update(&t2, &ev(0.55, 300.0), &p).is_none());
-        // Below it: falls to watch (0.45 ≥ 0.3).
-        assert_eq!(a.update(&t2, &ev(0.45, 300.0), &p).unwrap().to, AlarmState::Watch);
+        // Below it: falls to caution (0.45 ≥ 0.3).
+        assert_eq!(a.update(&t2, &ev(0.45, 300.0), &p).unwrap().to, AlarmState::Caution);
         let t3 = t2 + chrono::Duration::seconds(300);
         assert_eq!(a.update(&t3, &[], &p).unwrap().to, AlarmState::Calm);
     }

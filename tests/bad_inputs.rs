@@ -388,7 +388,7 @@ fn argument_cases() -> Vec<Case> {
         list.push((other(&v), refused(&[arg])));
     }
     for (extra, arg) in [(&["--keep-days", "0"][..], "--keep-days"), (&["--keep-days", "nan"], "--keep-days"), (&["--keep-days", "1e9"], "--keep-days"), (&["--poll-ms", "1"], "--poll-ms"), (&["--poll-ms", "99999999"], "--poll-ms"), (&["--bind", "999.0.0.1:80"], "--bind")] {
-        let mut v = vec!["watch", "--site", "s.toml", "--incoming", "in"];
+        let mut v = vec!["live", "--site", "s.toml", "--incoming", "in"];
         v.extend_from_slice(extra);
         list.push((other(&v), refused(&[arg])));
     }
@@ -489,7 +489,7 @@ fn bad_inputs_through_the_binary() {
     add(vec!["synth", "--scene", "clear-day", "--out", &out, "--minutes", "1e9"], vec!["--minutes"]);
     add(vec!["synth", "--scene", "clear-day", "--out", &out, "--minutes", "1440", "--step-s", "1"], vec!["--minutes/--step-s", "frames"]);
     add(vec!["calibrate", "--site", &good, "--frames", &fr, "--out", &out, "--min-detections", "2"], vec!["--min-detections"]);
-    add(vec!["watch", "--site", &good, "--incoming", &fr, "--keep-days", "nan"], vec!["--keep-days"]);
+    add(vec!["live", "--site", &good, "--incoming", &fr, "--keep-days", "nan"], vec!["--keep-days"]);
     add(vec!["replay", "--site", &big, "--frames", &fr, "--out", &out, "--quiet"], vec!["big.toml", "plant.blocks[0].polygon_m"]);
     add(vec!["replay", "--site", &cbh_site, "--frames", &fr, "--out", &out, "--quiet"], vec!["cbh.csv", "line 5", "cbh_m"]);
     let kwp = kw_path.to_string_lossy().into_owned();

@@ -1,12 +1,14 @@
-//! The dashboard in headless Chromium (Debian's `chromium`, installed by `.ci/run`): it loads against
-//! a running service, and once a nowcast is there the chart, the shadow map and an alarm row
-//! render. A screenshot is kept as `target/dashboard-screenshot.png`.
+//! The dashboard in headless Chromium (Debian's `chromium`, installed by `.ci/run`), against a
+//! running service, in four states: empty (no frame yet), normal (frames arriving: chart, shadow
+//! map, per-block table, alarm rows), restarted on the same database (no forecast yet, so no alarm
+//! shown) and stale (the last frame is old). Screenshots are kept as
+//! `target/dashboard-<state>.png` (`target/dashboard-screenshot.png` is the normal state).
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use nephocast::serve::{LiveOptions, start};
-
+use chrono::{DateTime, Timelike, Utc};
+use nephocast::serve::{LiveHandle, LiveOptions, start};
 fn chromium() -> Option<PathBuf> {
     ["/usr/bin/chromium", "/usr/bin/chromium-browser"].iter().map(PathBuf::from).find(|p| p.is_file())
 }
@@ -23,7 +25,7 @@ fn browse(bin: &Path, url: &str, extra: &[&str], profile: &Path) -> std::process
             "--disable-component-update",
             "--disable-sync",
             "--virtual-time-budget=8000",
-            "--window-size=1400,1000",
+            "--window-size=1400,1360",
         ])
         .arg(format!("--user-data-dir={}", profile.display()))
         .args(extra)
@@ -32,20 +34,40 @@ fn browse(bin: &Path, url: &str, extra: &[&str], profile: &Path) -> std::process
         .expect("chromium runs")
 }
 
-#[test]
-fn dashboard_renders_chart_shadow_map_and_alarms() {
-    let Some(bin) = chromium() else {
-        eprintln!("chromium is not installed: the browser test is SKIPPED (.ci/run installs Debian's chromium)");
-        return;
-    };
-    let d = tempfile::tempdir().unwrap();
-    let incoming = d.path().join("incoming");
-    std::fs::create_dir_all(&incoming).unwrap();
+/// The demo site moved in longitude so that the sun is high now (the demo frames are replayed
+/// with times near the present, so that their age is that of a live feed).
+fn site_for_now(dir: &Path) -> PathBuf {
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
-    let h = start(LiveOptions {
-        site: demo.join("site.toml"),
-        incoming: incoming.clone(),
-        db: d.path().join("live.sqlite"),
+    let now = Utc::now();
+    let hours = f64::from(now.hour()) + f64::from(now.minute()) / 60.0;
+    let lon = ((12.0 - hours) * 15.0 + 540.0).rem_euclid(360.0) - 180.0;
+    let text = std::fs::read_to_string(demo.join("site.toml")).unwrap();
+    let text = text
+        .lines()
+        .map(|l| {
+            if l.starts_with("longitude_deg") {
+                format!("longitude_deg = {lon:.3}")
+            } else if l.starts_with("latitude_deg") {
+                "latitude_deg = 5.0".to_string()
+            } else if l.starts_with("calibration = ") {
+                format!("calibration = {:?}", demo.join("calibration/larkspur-sky1.toml").display().to_string())
+            } else {
+                l.to_string()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join("\n");
+    let p = dir.join("site.toml");
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+fn live(site: &Path, incoming: &Path, db: &Path) -> LiveHandle {
+    std::fs::create_dir_all(incoming).unwrap();
+    start(LiveOptions {
+        site: site.to_path_buf(),
+        incoming: incoming.to_path_buf(),
+        db: db.to_path_buf(),
         bind: "127.0.0.1:0".parse().unwrap(),
         ack_token: Some("t".into()),
         server: Default::default(),
@@ -53,46 +75,117 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
         poll_ms: 40,
         overlay_every: 1,
     })
-    .unwrap();
-    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();
-    frames.sort();
-    let health = || -> serde_json::Value {
-        let out = std::net::TcpStream::connect(h.addr).ok().and_then(|mut s| {
-            use std::io::{Read, Write};
-            write!(s, "GET /api/health HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").ok()?;
-            let mut b = String::new();
-            s.read_to_string(&mut b).ok()?;
-            b.split("\r\n\r\n").nth(1).map(String::from)
-        });
-        out.and_then(|b| serde_json::from_str(&b).ok()).unwrap_or(serde_json::Value::Null)
-    };
-    for (i, f) in frames.iter().take(4).enumerate() {
+    .unwrap()
+}
+
+fn health(h: &LiveHandle) -> serde_json::Value {
+    let out = std::net::TcpStream::connect(h.addr).ok().and_then(|mut s| {
+        use std::io::{Read, Write};
+        write!(s, "GET /api/health HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n").ok()?;
+        let mut b = String::new();
+        s.read_to_string(&mut b).ok()?;
+        b.split("\r\n\r\n").nth(1).map(String::from)
+    });
+    out.and_then(|b| serde_json::from_str(&b).ok()).unwrap_or(serde_json::Value::Null)
+}
+
+/// Put demo frames into the folder under new times (`first`, then every 30 s), by rename, each
+/// waited for.
+fn feed(h: &LiveHandle, incoming: &Path, frames: &[PathBuf], first: DateTime<Utc>) {
+    let before = health(h)["frames_processed"].as_u64().unwrap_or(0);
+    for (i, f) in frames.iter().enumerate() {
+        let t = first + chrono::Duration::seconds(30 * i as i64);
         let tmp = incoming.join(".incoming.part");
         std::fs::copy(f, &tmp).unwrap();
-        std::fs::rename(&tmp, incoming.join(f.file_name().unwrap())).unwrap();
-        let t = Instant::now();
-        while health()["frames_processed"].as_u64() != Some(i as u64 + 1) {
-            assert!(t.elapsed() < Duration::from_secs(120), "frame not processed");
+        std::fs::rename(&tmp, incoming.join(nephocast::io::frame_name(&t, "jpg"))).unwrap();
+        let t0 = Instant::now();
+        while health(h)["frames_processed"].as_u64() != Some(before + i as u64 + 1) {
+            assert!(t0.elapsed() < Duration::from_secs(120), "frame not processed: {}", health(h));
             std::thread::sleep(Duration::from_millis(50));
         }
     }
+}
+
+/// The page's DOM after its scripts ran, checked against its Content-Security-Policy, and a
+/// screenshot `target/dashboard-<name>.png`.
+fn snapshot(bin: &Path, h: &LiveHandle, profile: &Path, name: &str) -> String {
     // "?once": one snapshot without the event stream, whose open connection would hold headless
     // Chromium's virtual time still.
     let url = format!("http://{}/?once", h.addr);
-    let profile = d.path().join("profile");
-    let dom = browse(&bin, &url, &["--dump-dom", "--enable-logging=stderr", "--v=0"], &profile);
+    let dom = browse(bin, &url, &["--dump-dom", "--enable-logging=stderr", "--v=0"], profile);
     let dom_text = String::from_utf8_lossy(&dom.stdout).to_string();
     // The page runs under its own Content-Security-Policy: nothing on it may be refused.
     let console = String::from_utf8_lossy(&dom.stderr);
-    assert!(!console.contains("Content Security Policy"), "the dashboard breaks its CSP:\n{console}");
-    assert!(dom_text.contains("id=\"powerchart\""), "chart missing: {}", &dom_text[..dom_text.len().min(2000)]);
-    assert!(dom_text.contains("class=\"band\""), "P10–P90 band missing");
-    assert!(dom_text.contains("/api/overlay.png?"), "shadow map picture not requested");
-    assert!(dom_text.contains("class=\"alarmrow\""), "no alarm row");
+    assert!(!console.contains("Content Security Policy"), "{name}: the dashboard breaks its CSP:\n{console}");
+    assert!(!console.contains("Uncaught"), "{name}: script error:\n{console}");
+    assert!(dom_text.contains("nephocast ramp desk"));
     assert!(dom_text.contains("not a protection system"));
-    let shot = Path::new(env!("CARGO_MANIFEST_DIR")).join("target").join("dashboard-screenshot.png");
-    let out = browse(&bin, &url, &[&format!("--screenshot={}", shot.display())], &profile);
+    let shot = Path::new(env!("CARGO_MANIFEST_DIR")).join("target").join(format!("dashboard-{name}.png"));
+    let out = browse(bin, &url, &[&format!("--screenshot={}", shot.display())], profile);
     assert!(shot.is_file(), "no screenshot: {}", String::from_utf8_lossy(&out.stderr));
-    eprintln!("dashboard screenshot: {}", shot.display());
+    eprintln!("dashboard screenshot ({name}): {}", shot.display());
+    dom_text
+}
+
+fn head(dom: &str) -> &str {
+    &dom[..dom.len().min(3000)]
+}
+
+#[test]
+fn dashboard_empty_normal_restarted_and_stale() {
+    let Some(bin) = chromium() else {
+        eprintln!("chromium is not installed: the browser test is SKIPPED (.ci/run installs Debian's chromium)");
+        return;
+    };
+    let d = tempfile::tempdir().unwrap();
+    let site = site_for_now(d.path());
+    let db = d.path().join("live.sqlite");
+    let profile = d.path().join("profile");
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
+    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    frames.sort();
+
+    // Empty: no frame yet. It says so, shows no alarm state and no broken picture.
+    let incoming = d.path().join("incoming");
+    let h = live(&site, &incoming, &db);
+    let dom = snapshot(&bin, &h, &profile, "empty");
+    assert!(dom.contains("class=\"banner wait\">Waiting for the first frame:"), "empty state: {}", head(&dom));
+    assert!(dom.contains(">NO FORECAST</span>") && !dom.contains("CALM"), "empty state shows an alarm state: {}", head(&dom));
+    assert!(dom.contains("<img id=\"overlay\" class=\"hidden\" alt="), "empty state shows a picture: {}", head(&dom));
+    assert!(dom.contains("WAITING"), "health tile: {}", head(&dom));
+
+    // Normal: frames of the last two minutes.
+    feed(&h, &incoming, &frames[..4], Utc::now() - chrono::Duration::seconds(100));
+    let dom = snapshot(&bin, &h, &profile, "normal");
+    std::fs::copy(Path::new(env!("CARGO_MANIFEST_DIR")).join("target/dashboard-normal.png"), Path::new(env!("CARGO_MANIFEST_DIR")).join("target/dashboard-screenshot.png")).unwrap();
+    assert!(dom.contains("id=\"powerchart\""), "chart missing: {}", head(&dom));
+    assert!(dom.contains("class=\"band\""), "P10–P90 band missing");
+    assert!(dom.contains("/api/overlay.png?"), "shadow map picture not requested");
+    assert!(dom.contains("class=\"alarmrow\""), "no alarm row");
+    assert!(dom.matches("class=\"blockrow\"").count() >= 2, "per-block table missing");
+    assert!(dom.contains("Europe/Madrid"), "site time zone not shown");
+    assert!(dom.contains(" UTC</title>"), "no UTC tooltips on the time axis");
+    let ticks = dom.matches("<text class=\"tick\"").count();
+    assert!(ticks >= 3, "{ticks} round ticks");
+    assert!(!dom.contains("+20 min</text>"), "relative axis labels");
+    assert!(dom.contains(">OK<") && dom.contains("class=\"banner hidden\""), "normal state reads as not OK: {}", head(&dom));
+    assert!(dom.contains("change MW") && dom.contains("change %"));
+    h.stop();
+
+    // Restarted on the same database: no forecast yet, so no alarm shown; the log is still there.
+    let incoming2 = d.path().join("incoming2");
+    let h = live(&site, &incoming2, &db);
+    let dom = snapshot(&bin, &h, &profile, "restarted");
+    assert!(dom.contains("class=\"banner wait\">Waiting for the first frame since the service started"), "restarted state: {}", head(&dom));
+    assert!(dom.contains(">NO FORECAST</span>"), "restarted state shows an alarm: {}", head(&dom));
+    assert!(dom.contains("times Europe/Madrid"), "restarted state: site time zone unknown");
+    assert!(dom.contains("class=\"alarmrow\""), "alarm log lost over the restart");
+
+    // Stale: the newest frame is half an hour old.
+    feed(&h, &incoming2, &frames[4..6], Utc::now() - chrono::Duration::minutes(30));
+    let dom = snapshot(&bin, &h, &profile, "stale");
+    assert!(dom.contains("class=\"banner stale\">Frames stopped"), "stale state: {}", head(&dom));
+    assert!(dom.contains(">STALE<") || dom.contains(">NO<"), "stale state: {}", head(&dom));
+    assert!(dom.contains(" old\" title=\"\">"), "the alarm state is not marked old");
     h.stop();
 }

@@ -33,7 +33,7 @@ fn service_with_alarm(d: &Path, server: ServerOptions) -> (LiveHandle, i64) {
     let change = nephocast::ramp::AlarmChange {
         time_utc: "2026-06-14T09:00:00Z".into(),
         from: nephocast::ramp::AlarmState::Calm,
-        to: nephocast::ramp::AlarmState::Watch,
+        to: nephocast::ramp::AlarmState::Caution,
         probability: 0.7,
         reason: "test".into(),
     };
@@ -181,7 +181,7 @@ fn the_token_comes_from_a_file_or_the_environment_never_argv() {
     use clap::Parser;
     use nephocast::cli::Cli;
     use nephocast::serve::guard::read_ack_token;
-    let base = ["nephocast", "watch", "--site", "s.toml", "--incoming", "in"];
+    let base = ["nephocast", "live", "--site", "s.toml", "--incoming", "in"];
     let argv = Cli::try_parse_from(base.iter().copied().chain(["--ack-token", "s3cret"]));
     assert!(argv.is_err(), "--ack-token must not exist");
     assert!(Cli::try_parse_from(base.iter().copied().chain(["--ack-token-file", "/run/t"])).is_ok());

@@ -679,7 +679,7 @@ def main():
                     help="calibrate on the clear day (the user's way) or convert truth/camera.json (diagnostic only)")
     ap.add_argument("--cameras", default="camera1,camera2")
     ap.add_argument("--ramp-min-probability", type=float, default=0.3,
-                    help="engine ramp events at least this probable count as warnings (default: the engine's watch level)")
+                    help="engine ramp events at least this probable count as warnings (default: the engine's caution level)")
     ap.add_argument("--causal-measurements", action="store_true",
                     help="stamp each 1-minute mean at the END of its minute (the engine reads the row whose minute "
                          "holds the frame time, i.e. up to 60 s of readings after the frame; this removes that look-ahead)")

@@ -152,7 +152,9 @@ pub fn last_state(c: &Connection) -> rusqlite::Result<Option<AlarmState>> {
     let s: Option<String> = c.query_row("SELECT to_state FROM alarms ORDER BY id DESC LIMIT 1", [], |r| r.get(0)).ok();
     Ok(s.map(|s| match s.as_str() {
         "alert" => AlarmState::Alert,
-        "watch" => AlarmState::Watch,
+        "caution" => AlarmState::Caution,
+        // The state's name in databases written before it was renamed.
+        "watch" => AlarmState::Caution,
         _ => AlarmState::Calm,
     }))
 }
@@ -200,7 +202,7 @@ mod tests {
     fn the_first_acknowledgement_is_kept() {
         let d = tempfile::tempdir().unwrap();
         let c = open(&d.path().join("a.sqlite")).unwrap();
-        let ch = AlarmChange { time_utc: "2026-06-14T09:00:00Z".into(), from: AlarmState::Calm, to: AlarmState::Watch, probability: 0.6, reason: "test".into() };
+        let ch = AlarmChange { time_utc: "2026-06-14T09:00:00Z".into(), from: AlarmState::Calm, to: AlarmState::Caution, probability: 0.6, reason: "test".into() };
         let id = insert_alarm(&c, &ch).unwrap();
         assert_eq!(ack(&c, id, "Ana", "2026-06-14T09:01:00Z").unwrap(), AckOutcome::Acked);
         assert_eq!(

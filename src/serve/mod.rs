@@ -118,6 +118,8 @@ struct App {
     token: Option<guard::TokenDigest>,
     limiter: Arc<guard::AckLimiter>,
     body_timeout: std::time::Duration,
+    /// The site's display time zone ([`crate::config::SiteTimeZone`]), for times in the alarm log.
+    time_zone: serde_json::Value,
 }
 
 /// A running live service.
@@ -323,6 +325,7 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
         token: opts.ack_token.as_deref().map(guard::token_digest),
         limiter: Arc::new(guard::AckLimiter::new(opts.server.ack_limits.clone())),
         body_timeout: opts.server.body_timeout,
+        time_zone: serde_json::to_value(nowcaster.site().file.site.time_zone()).unwrap_or_default(),
     };
     let (sd_tx, sd_rx) = tokio::sync::oneshot::channel::<()>();
     let server_opts = opts.server.clone();
@@ -437,6 +440,8 @@ fn engine_loop(
 ) {
     let mut watch = Watcher::default();
     let intake = nc.intake_options();
+    // The site's display time zone, given with every nowcast (times stay UTC).
+    let time_zone = serde_json::to_value(nc.site().file.site.time_zone()).unwrap_or_default();
     let mut processed = 0usize;
     if let Ok(mut s) = shared.lock() {
         s.health.running = true;
@@ -494,7 +499,9 @@ fn engine_loop(
         match &result {
             Ok(n) => {
                 processed += 1;
-                latest = Some(nowcast_json(n));
+                let mut j = nowcast_json(n);
+                j["site_time_zone"] = time_zone.clone();
+                latest = Some(j);
                 let plant: Vec<&crate::forecast::TargetForecast> = n.forecast.rows.iter().filter(|r| r.target == "plant").collect();
                 let h = db::HistoryRow {
                     time_utc: fmt_time(&n.time),
@@ -583,7 +590,7 @@ fn db_error(message: String) -> Response {
 async fn api_alarms(State(app): State<App>) -> Response {
     let state = app.shared.lock().map(|s| s.health.alarm.clone()).unwrap_or_default();
     match with_db(&app, |c| db::alarms(c, 200)) {
-        Ok(log) => Json(serde_json::json!({"state": state, "log": log, "ack_enabled": app.token.is_some()})).into_response(),
+        Ok(log) => Json(serde_json::json!({"state": state, "log": log, "ack_enabled": app.token.is_some(), "site_time_zone": app.time_zone})).into_response(),
         Err(e) => db_error(e),
     }
 }

@@ -163,6 +163,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
             temperature_c: Some(22.0),
             clear_sky_model: "ineichen-perez".into(),
             linke_turbidity: 3.0,
+            timezone: Some("Europe/Madrid".into()),
         },
         camera: CameraSection { calibration: PathBuf::from(format!("calibration/{camera_file}.toml")), position_m: [0.0, 0.0, 3.0] },
         clouds: CloudSection { base_height_m: Some(cbh_m), base_height_csv: None },
