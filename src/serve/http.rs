@@ -67,6 +67,8 @@ pub struct ServerOptions {
     pub tls: Option<TlsFiles>,
     /// The acknowledgement rate limiter's limits.
     pub ack_limits: AckLimits,
+    /// The read-only Modbus TCP server for plant controllers (none: not served).
+    pub modbus: Option<super::modbus::ModbusOptions>,
 }
 
 impl Default for ServerOptions {
@@ -80,6 +82,7 @@ impl Default for ServerOptions {
             allow_non_loopback: false,
             tls: None,
             ack_limits: AckLimits::default(),
+            modbus: None,
         }
     }
 }
