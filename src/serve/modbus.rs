@@ -564,8 +564,8 @@ mod tests {
         assert_eq!(w[0], MAP_VERSION);
         assert_eq!(w[1], 0, "data-valid before the first nowcast");
         assert_eq!((w[3], w[4]), (u16::MAX, u16::MAX), "frame age unknown");
-        let Ok(Response::ReadHoldingRegisters(p)) = answer(&feed, 120.0, &Request::ReadHoldingRegisters(TARGET_BASE + TARGET_STRIDE, 3), now) else { panic!() };
-        assert_eq!(p, vec![1, 0x8000, 0], "block 1's index, then a missing power");
+        let Ok(Response::ReadHoldingRegisters(p)) = answer(&feed, 120.0, &Request::ReadHoldingRegisters(TARGET_BASE + TARGET_STRIDE, 4), now) else { panic!() };
+        assert_eq!(p, vec![1, 0, 0x8000, 0], "block 1's index, a spare register, then a missing power");
         assert_eq!(answer(&feed, 120.0, &Request::WriteSingleRegister(0, 1), now), Err(ExceptionCode::IllegalFunction));
         assert_eq!(answer(&feed, 120.0, &Request::WriteMultipleRegisters(0, vec![1, 2].into()), now), Err(ExceptionCode::IllegalFunction));
         assert_eq!(answer(&feed, 120.0, &Request::WriteSingleCoil(0, true), now), Err(ExceptionCode::IllegalFunction));
