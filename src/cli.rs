@@ -482,6 +482,7 @@ pub fn run(cli: Cli) -> Result<()> {
                     allow_non_loopback: a.modbus_allow_non_loopback,
                     max_connections: a.modbus_max_connections,
                     max_frame_age_s: a.modbus_max_frame_age_s,
+                    ..Default::default()
                 }),
                 ..Default::default()
             };

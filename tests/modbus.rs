@@ -84,7 +84,7 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
     std::fs::create_dir_all(&incoming).unwrap();
     // The demo frames are dated months back: data-valid is judged with a wide age here, and
     // against the usual age below.
-    let mb = ModbusOptions { bind: "127.0.0.1:0".parse().unwrap(), max_connections: 3, max_frame_age_s: 1e9, ..Default::default() };
+    let mb = ModbusOptions { bind: "127.0.0.1:0".parse().unwrap(), max_connections: 3, max_frame_age_s: 1e9, idle_timeout: Duration::from_secs(1), ..Default::default() };
     let opts = LiveOptions {
         site: demo().join("site.toml"),
         incoming: incoming.clone(),
@@ -124,8 +124,11 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
     // A second client polls the heartbeat as fast as it can and notes when each nowcast shows.
     let stop = Arc::new(AtomicBool::new(false));
     let (stop2, feed2) = (stop.clone(), feed.clone());
+    let (ready_tx, ready_rx) = std::sync::mpsc::channel();
     let poller = std::thread::spawn(move || {
         let mut p = client(maddr);
+        p.read_input_registers(0, 1).unwrap().unwrap();
+        ready_tx.send(()).unwrap();
         let (mut last, mut delays_ms) = (0u16, vec![]);
         let t0 = Instant::now();
         while !stop2.load(Ordering::SeqCst) && t0.elapsed() < Duration::from_secs(300) {
@@ -141,6 +144,7 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
         delays_ms
     });
 
+    ready_rx.recv_timeout(Duration::from_secs(60)).unwrap();
     // The cap: a third connection is served, a fourth is closed at once.
     let mut third = client(maddr);
     assert!(third.read_input_registers(0, 1).unwrap().is_ok());
@@ -148,6 +152,23 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
     fourth.set_timeout(Duration::from_secs(10));
     assert!(fourth.read_input_registers(0, 1).is_err(), "a connection beyond the cap is closed");
     drop(third);
+    drop(c);
+    // A connection that stays silent past the idle time is closed, and its place freed.
+    // (It is first answered once, which shows it was admitted: the closed ones' places are freed
+    // as the server notices them.)
+    let mut silent = None;
+    wait_for("a place for one more connection", || {
+        let mut t = TcpStream::connect(maddr).unwrap();
+        t.set_read_timeout(Some(Duration::from_secs(30))).unwrap();
+        // Read input register 0, once, as raw Modbus TCP.
+        t.write_all(&[0, 1, 0, 0, 0, 6, 1, 4, 0, 0, 0, 1]).unwrap();
+        let mut answer = [0u8; 11];
+        let ok = t.read_exact(&mut answer).is_ok() && answer[7] == 4;
+        silent = ok.then_some(t);
+        ok
+    });
+    let mut buf = [0u8; 1];
+    assert!(matches!(silent.unwrap().read(&mut buf), Ok(0) | Err(_)), "the idle connection is closed");
 
     let mut frames: Vec<PathBuf> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
     frames.sort();
@@ -161,6 +182,7 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
         std::fs::rename(&tmp, incoming.join(name)).unwrap();
         wait_for("the frame to be processed", || get(http, "/api/health")["frames_processed"].as_u64() == Some(i as u64 + 1));
         let api = get(http, "/api/nowcast");
+        let mut c = client(maddr);
         let w = read_all(&mut c, len);
         let health = get(http, "/api/health");
         // The same nowcast on both sides.

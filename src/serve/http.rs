@@ -163,14 +163,14 @@ pub(crate) fn listen(addr: SocketAddr) -> io::Result<std::net::TcpListener> {
 pub struct ClientAddr(pub SocketAddr);
 
 /// A stream that fails with `TimedOut` once no byte has moved either way for its idle time.
-struct IdleIo<I> {
+pub(crate) struct IdleIo<I> {
     inner: I,
     idle: Duration,
     deadline: Pin<Box<tokio::time::Sleep>>,
 }
 
 impl<I> IdleIo<I> {
-    fn new(inner: I, idle: Duration) -> Self {
+    pub(crate) fn new(inner: I, idle: Duration) -> Self {
         Self { inner, idle, deadline: Box::pin(tokio::time::sleep(idle)) }
     }
 

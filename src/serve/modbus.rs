@@ -8,7 +8,8 @@
 //!   image; every other function, writes included, is answered with exception 1 (illegal
 //!   function); a read outside the image with exception 2 (illegal data address).
 //! * **Exposure.** Loopback by default; another address is refused unless explicitly allowed. At
-//!   most `max_connections` connections at once: beyond that a new connection is closed at once.
+//!   most `max_connections` connections at once: beyond that a new connection is closed at once;
+//!   a connection on which nothing moves for `idle_timeout` is closed.
 //! * **Freshness.** The engine publishes the registers' source ([`Feed::publish`]) as soon as a
 //!   nowcast is computed, before logging and pictures; frame age and data-valid are computed at
 //!   read time from the frame time and the clock. Data-valid is 1 only while a nowcast is present
@@ -403,6 +404,8 @@ pub struct ModbusOptions {
     pub max_connections: usize,
     /// Data-valid only while the latest frame is at most this old \[s\].
     pub max_frame_age_s: f64,
+    /// A connection on which no byte moves for this long is closed (default 60 s).
+    pub idle_timeout: std::time::Duration,
 }
 
 /// The default Modbus address (the standard port needs privileges).
@@ -410,7 +413,7 @@ pub const DEFAULT_MODBUS_BIND: &str = "127.0.0.1:5020";
 
 impl Default for ModbusOptions {
     fn default() -> Self {
-        Self { bind: DEFAULT_MODBUS_BIND.parse().unwrap_or_else(|_| SocketAddr::from(([127, 0, 0, 1], 5020))), allow_non_loopback: false, max_connections: 16, max_frame_age_s: 120.0 }
+        Self { bind: DEFAULT_MODBUS_BIND.parse().unwrap_or_else(|_| SocketAddr::from(([127, 0, 0, 1], 5020))), allow_non_loopback: false, max_connections: 16, max_frame_age_s: 120.0, idle_timeout: std::time::Duration::from_secs(60) }
     }
 }
 
@@ -425,6 +428,9 @@ impl ModbusOptions {
         }
         if !(self.max_frame_age_s.is_finite() && self.max_frame_age_s > 0.0) {
             return Err(format!("--modbus-max-frame-age-s: expected a positive number of seconds, got {}", self.max_frame_age_s));
+        }
+        if !(1.0..=86_400.0).contains(&self.idle_timeout.as_secs_f64()) {
+            return Err(format!("Modbus idle timeout: expected 1 to 86400 s, got {:?}", self.idle_timeout));
         }
         if self.bind.ip().is_loopback() {
             return Ok(vec![]);
@@ -512,12 +518,12 @@ impl Drop for ModbusServer {
 /// Refused options ([`ModbusOptions::check`]) or an address that cannot be bound.
 pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> anyhow::Result<(ModbusServer, Vec<String>)> {
     let warnings = opts.check().map_err(|e| anyhow::anyhow!(e))?;
-    let std_listener = std::net::TcpListener::bind(opts.bind).map_err(|e| anyhow::anyhow!("--modbus-bind {}: {e}", opts.bind))?;
+    let std_listener = super::http::listen(opts.bind).map_err(|e| anyhow::anyhow!("--modbus-bind {}: {e}", opts.bind))?;
     std_listener.set_nonblocking(true)?;
     let addr = std_listener.local_addr()?;
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();
     let slots = Arc::new(tokio::sync::Semaphore::new(opts.max_connections));
-    let max_age = opts.max_frame_age_s;
+    let (max_age, idle) = (opts.max_frame_age_s, opts.idle_timeout);
     let thread = std::thread::spawn(move || {
         let Ok(rt) = tokio::runtime::Builder::new_current_thread().enable_all().build() else { return };
         rt.block_on(async move {
@@ -527,7 +533,7 @@ pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> anyhow::Result<(ModbusSer
                 // At the cap the connection is closed at once (dropped).
                 let conn = slots.clone().try_acquire_owned().ok().map(|permit| {
                     let _ = stream.set_nodelay(true);
-                    (Registers { feed: feed.clone(), max_frame_age_s: max_age, _permit: permit }, stream)
+                    (Registers { feed: feed.clone(), max_frame_age_s: max_age, _permit: permit }, super::http::IdleIo::new(stream, idle))
                 });
                 std::future::ready(Ok(conn))
             };
