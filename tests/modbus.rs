@@ -238,3 +238,15 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
         delays[delays.len() - 1]
     );
 }
+
+#[test]
+fn registers_command_prints_the_committed_table() {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_nephocast")).args(["registers", "--site"]).arg(demo().join("site.toml")).output().unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let committed = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("docs/modbus-registers.md")).unwrap();
+    assert!(String::from_utf8_lossy(&out.stdout) == committed, "`nephocast registers` differs from docs/modbus-registers.md");
+    // A missing site file is named.
+    let bad = std::process::Command::new(env!("CARGO_BIN_EXE_nephocast")).args(["registers", "--site", "no/such/site.toml"]).output().unwrap();
+    assert!(!bad.status.success());
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("no/such/site.toml"), "{}", String::from_utf8_lossy(&bad.stderr));
+}
