@@ -44,6 +44,8 @@ pub enum Command {
     Live(LiveArgs),
     /// Quality control of a measurements CSV (BSRN limits, closure, stuck values, gaps).
     Qc(QcArgs),
+    /// Print the Modbus register map for a site as markdown.
+    Registers(RegistersArgs),
     /// Where directions land in the image and back (a researcher's check of a calibration).
     #[command(subcommand)]
     Camera(CameraCommand),
@@ -114,6 +116,27 @@ pub struct LiveArgs {
     /// Poll interval [ms].
     #[arg(long, default_value_t = 500, allow_hyphen_values = true)]
     pub poll_ms: u64,
+    /// Serve read-only Modbus TCP registers for plant controllers on this address (off unless
+    /// given; e.g. 127.0.0.1:5020). Map: `nephocast registers --site SITE`.
+    #[arg(long, value_name = "ADDR")]
+    pub modbus_bind: Option<std::net::SocketAddr>,
+    /// Serve Modbus on a non-loopback address (Modbus TCP has no authentication).
+    #[arg(long)]
+    pub modbus_allow_non_loopback: bool,
+    /// Modbus connections open at once.
+    #[arg(long, default_value_t = 16)]
+    pub modbus_max_connections: usize,
+    /// The Modbus data-valid register reads 1 only while the latest frame is at most this old [s].
+    #[arg(long, default_value_t = 120.0, allow_hyphen_values = true)]
+    pub modbus_max_frame_age_s: f64,
+}
+
+/// Arguments of `nephocast registers`.
+#[derive(Debug, clap::Args)]
+pub struct RegistersArgs {
+    /// The site file (its blocks give the target areas).
+    #[arg(long)]
+    pub site: PathBuf,
 }
 
 /// Arguments of `nephocast calibrate`.
@@ -397,6 +420,7 @@ pub fn check_args(cli: &Cli) -> Result<()> {
             check_arg("--keep-days", a.keep_days, 0.001, 3650.0)?;
             check_arg("--poll-ms", a.poll_ms as f64, 20.0, 60_000.0)?;
         }
+        Command::Registers(_) => {}
         Command::Evaluate(_) | Command::Demo(_) | Command::Segment(_) | Command::Qc(_) | Command::Camera(_) => {}
     }
     Ok(())
@@ -460,6 +484,13 @@ pub fn run(cli: Cli) -> Result<()> {
                 allowed_hosts: a.allow_hosts,
                 allow_non_loopback: a.allow_non_loopback,
                 tls: a.tls_cert.zip(a.tls_key).map(|(cert_pem, key_pem)| crate::serve::TlsFiles { cert_pem, key_pem }),
+                modbus: a.modbus_bind.map(|bind| crate::serve::modbus::ModbusOptions {
+                    bind,
+                    allow_non_loopback: a.modbus_allow_non_loopback,
+                    max_connections: a.modbus_max_connections,
+                    max_frame_age_s: a.modbus_max_frame_age_s,
+                    ..Default::default()
+                }),
                 ..Default::default()
             };
             let h = crate::serve::start(crate::serve::LiveOptions {
@@ -479,7 +510,15 @@ pub fn run(cli: Cli) -> Result<()> {
             }
             let scheme = if h.tls { "https" } else { "http" };
             crate::say!("live on {} — dashboard at {scheme}://{}/ (advisory only, not a protection system)", a.incoming.display(), h.addr);
+            if let Some(m) = h.modbus_addr {
+                crate::say!("Modbus TCP registers (read-only) at {m}");
+            }
             h.wait();
+            Ok(())
+        }
+        Command::Registers(a) => {
+            let site = crate::config::Site::load_without_camera(&a.site)?;
+            print!("{}", crate::serve::modbus::markdown(&crate::serve::modbus::targets_of(&site)));
             Ok(())
         }
         Command::Camera(c) => cmd_camera(c),

@@ -67,6 +67,8 @@ pub struct ServerOptions {
     pub tls: Option<TlsFiles>,
     /// The acknowledgement rate limiter's limits.
     pub ack_limits: AckLimits,
+    /// The read-only Modbus TCP server for plant controllers (none: not served).
+    pub modbus: Option<super::modbus::ModbusOptions>,
 }
 
 impl Default for ServerOptions {
@@ -80,6 +82,7 @@ impl Default for ServerOptions {
             allow_non_loopback: false,
             tls: None,
             ack_limits: AckLimits::default(),
+            modbus: None,
         }
     }
 }
@@ -160,14 +163,14 @@ pub(crate) fn listen(addr: SocketAddr) -> io::Result<std::net::TcpListener> {
 pub struct ClientAddr(pub SocketAddr);
 
 /// A stream that fails with `TimedOut` once no byte has moved either way for its idle time.
-struct IdleIo<I> {
+pub(crate) struct IdleIo<I> {
     inner: I,
     idle: Duration,
     deadline: Pin<Box<tokio::time::Sleep>>,
 }
 
 impl<I> IdleIo<I> {
-    fn new(inner: I, idle: Duration) -> Self {
+    pub(crate) fn new(inner: I, idle: Duration) -> Self {
         Self { inner, idle, deadline: Box::pin(tokio::time::sleep(idle)) }
     }
 

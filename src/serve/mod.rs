@@ -27,6 +27,7 @@
 pub mod db;
 pub mod guard;
 pub mod http;
+pub mod modbus;
 
 pub use http::{ServerOptions, TlsFiles};
 
@@ -135,6 +136,10 @@ pub struct LiveHandle {
     engine: Option<std::thread::JoinHandle<()>>,
     server: Option<std::thread::JoinHandle<()>>,
     shutdown: Option<tokio::sync::oneshot::Sender<()>>,
+    /// Where the Modbus server listens, when it runs.
+    pub modbus_addr: Option<SocketAddr>,
+    modbus: Option<modbus::ModbusServer>,
+    feed: Arc<modbus::Feed>,
 }
 
 impl LiveHandle {
@@ -150,6 +155,14 @@ impl LiveHandle {
         if let Some(h) = self.server.take() {
             let _ = h.join();
         }
+        if let Some(m) = self.modbus.take() {
+            m.stop();
+        }
+    }
+
+    /// What the Modbus registers are made from (the latest published nowcast).
+    pub fn modbus_feed(&self) -> Arc<modbus::Feed> {
+        self.feed.clone()
     }
 
     /// Block until stopped from elsewhere (the command-line use).
@@ -310,6 +323,16 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
     if let Some(s) = db::last_state(&conn)? {
         nowcaster.restore_alarm(s);
     }
+    let feed = Arc::new(modbus::Feed::new(modbus::targets_of(&nowcaster.site().file)));
+    let mb = opts.server.modbus.as_ref().map(|m| modbus::start(m, feed.clone())).transpose()?;
+    let (modbus, modbus_addr) = match mb {
+        Some((m, w)) => {
+            warnings.extend(w);
+            let a = m.addr;
+            (Some(m), Some(a))
+        }
+        None => (None, None),
+    };
     let shared = Arc::new(Mutex::new(Shared::default()));
     shared.lock().map_err(|_| anyhow::anyhow!("state lock"))?.health.alarm = nowcaster.alarm_state().name().into();
     let (tx, _) = broadcast::channel::<String>(64);
@@ -340,8 +363,9 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
         rt.shutdown_timeout(std::time::Duration::from_secs(1));
     });
     let stop2 = stop.clone();
-    let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2));
-    Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx) })
+    let feed2 = feed.clone();
+    let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2, feed2));
+    Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx), modbus_addr, modbus, feed })
 }
 
 /// A frame file's signature: size and modification time.
@@ -437,6 +461,7 @@ fn engine_loop(
     shared: Arc<Mutex<Shared>>,
     tx: broadcast::Sender<String>,
     stop: Arc<AtomicBool>,
+    feed: Arc<modbus::Feed>,
 ) {
     let mut watch = Watcher::default();
     let intake = nc.intake_options();
@@ -491,6 +516,10 @@ fn engine_loop(
             Ok(fr) => nc.step(fr),
             Err(r) => Err(r.clone()),
         };
+        // The controller's registers first, before logging and pictures.
+        if let Ok(n) = &result {
+            feed.publish(n);
+        }
         watch.taken(&newest, result.is_ok());
         let latency = t0.elapsed().as_secs_f64() * 1000.0;
         let mut events = vec![];
