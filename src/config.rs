@@ -680,13 +680,7 @@ impl std::fmt::Display for MemoryEstimate {
 
 /// Grid cells of `spacing_m` in a footprint's bounding box (the work of laying out its points).
 pub fn layout_cells_of(poly: &[[f64; 2]], spacing_m: f64) -> f64 {
-    let (mut x0, mut y0, mut x1, mut y1) = (f64::MAX, f64::MAX, f64::MIN, f64::MIN);
-    for v in poly {
-        x0 = x0.min(v[0]);
-        y0 = y0.min(v[1]);
-        x1 = x1.max(v[0]);
-        y1 = y1.max(v[1]);
-    }
+    let [x0, y0, x1, y1] = crate::plant::bounding_box(poly);
     let c = ((x1 - x0) / spacing_m).ceil().max(1.0) * ((y1 - y0) / spacing_m).ceil().max(1.0);
     if c.is_finite() { c } else { f64::INFINITY }
 }

@@ -83,9 +83,8 @@ pub fn point_in_polygon(p: [f64; 2], poly: &[[f64; 2]]) -> bool {
     inside
 }
 
-/// Points on a square grid of `spacing_m` (cell centres) inside a polygon; at least the centroid
-/// of the vertices when the polygon is smaller than one cell.
-pub fn grid_points(poly: &[[f64; 2]], spacing_m: f64) -> Vec<[f64; 2]> {
+/// A polygon's bounding box `[x_min, y_min, x_max, y_max]` \[m\].
+pub fn bounding_box(poly: &[[f64; 2]]) -> [f64; 4] {
     let (mut x0, mut y0, mut x1, mut y1) = (f64::MAX, f64::MAX, f64::MIN, f64::MIN);
     for v in poly {
         x0 = x0.min(v[0]);
@@ -93,6 +92,13 @@ pub fn grid_points(poly: &[[f64; 2]], spacing_m: f64) -> Vec<[f64; 2]> {
         x1 = x1.max(v[0]);
         y1 = y1.max(v[1]);
     }
+    [x0, y0, x1, y1]
+}
+
+/// Points on a square grid of `spacing_m` (cell centres) inside a polygon; at least the centroid
+/// of the vertices when the polygon is smaller than one cell.
+pub fn grid_points(poly: &[[f64; 2]], spacing_m: f64) -> Vec<[f64; 2]> {
+    let [x0, y0, x1, y1] = bounding_box(poly);
     let mut pts = vec![];
     let nx = ((x1 - x0) / spacing_m).ceil() as usize;
     let ny = ((y1 - y0) / spacing_m).ceil() as usize;
