@@ -52,6 +52,7 @@ fn dashboard_renders_chart_shadow_map_and_alarms() {
         keep_s: 86_400,
         poll_ms: 40,
         overlay_every: 1,
+        health: Default::default(),
     })
     .unwrap();
     let mut frames: Vec<PathBuf> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();

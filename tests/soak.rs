@@ -31,6 +31,7 @@ fn three_hours_of_frames_stay_within_history() {
         keep_s,
         poll_ms: 5,
         overlay_every: 20,
+        health: Default::default(),
     })
     .unwrap();
     let mut frames: Vec<PathBuf> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();
