@@ -479,6 +479,11 @@ impl Nowcaster {
         added
     }
 
+    /// Pyranometer readings the transmittance tuning holds now.
+    pub fn tuning_rows(&self) -> usize {
+        self.tuner.rows.len()
+    }
+
     /// The measurements held: rows, and the end of the newest row's averaging period.
     pub fn measurements_newest(&self) -> (usize, Option<DateTime<Utc>>) {
         match &self.measurements {

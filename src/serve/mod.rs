@@ -121,6 +121,8 @@ pub struct Health {
     pub measurement_errors: usize,
     /// Times the tuning went back to the configured transmittances because the feed stopped.
     pub tuning_resets: usize,
+    /// Pyranometer readings the transmittance tuning holds now.
+    pub tuning_rows: usize,
     /// Frame-like files whose name holds no time (seen since start).
     pub frames_untimed: usize,
     /// The newest of their names (at most 20).
@@ -843,7 +845,10 @@ fn feed_step(feed: &mut ops::MeasurementFeed, nc: &mut Nowcaster, shared: &Arc<M
         nc.append_measurements(m, ops::FEED_KEEP_S);
     }
     let (rows, end) = nc.measurements_newest();
-    let old = end.is_none_or(|t| ops::age_s(&t, &Utc::now()) > o.measurement_max_age_s);
+    // The tuning works in the frames' time: the feed has stopped for it when its newest reading is
+    // older than the limit at the newest frame's time.
+    let newest_frame = shared.lock().ok().and_then(|s| s.ops.newest_read);
+    let old = newest_frame.is_some_and(|f| end.is_none_or(|t| ops::age_s(&t, &f) > o.measurement_max_age_s));
     let mut reset = false;
     if old && !*reset_done {
         reset = nc.reset_tuning();
@@ -859,6 +864,7 @@ fn feed_step(feed: &mut ops::MeasurementFeed, nc: &mut Nowcaster, shared: &Arc<M
         s.health.measurement_rows_read = feed.rows_read;
         s.health.measurement_errors = feed.errors;
         s.health.tuning_resets += usize::from(reset);
+        s.health.tuning_rows = nc.tuning_rows();
         s.ops.measurement_end = end;
     }
 }

@@ -23,10 +23,10 @@
 //! ([`crate::io::Measurements::screen`]: BSRN limits, ranges, kW/m²), then appended to the
 //! engine ([`crate::nowcast::Nowcaster::append_measurements`]); the tuning skips stuck values and
 //! gaps as in replay. When the feed stops, readings more than three averaging periods old are not
-//! used by the tuning; once the newest reading is older than `measurement_max_age_s`, the health
-//! state turns `no_measurements` and the tuning forgets what it learnt and goes back to the site's
-//! configured transmittances (band calibration keeps its last scale and learns again when
-//! readings return).
+//! used by the tuning; once the newest reading is older than `measurement_max_age_s` (against the
+//! clock) the health state turns `no_measurements`, and once it is that old at the newest frame's
+//! time the tuning forgets what it learnt and goes back to the site's configured transmittances
+//! (band calibration keeps its last scale and learns again when readings return).
 use std::collections::{BTreeMap, HashMap, HashSet};
 use std::path::{Path, PathBuf};
 
