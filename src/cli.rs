@@ -130,6 +130,9 @@ pub struct WatchArgs {
     /// Move judged frames to <DIR>/<YYYY-MM-DD>/ (bounded disk in the incoming folder).
     #[arg(long, value_name = "DIR", conflicts_with = "delete_processed")]
     pub archive: Option<PathBuf>,
+    /// With --archive: remove dated archive folders older than this many days.
+    #[arg(long, value_name = "DAYS", requires = "archive")]
+    pub archive_keep_days: Option<u32>,
     /// Delete judged frames.
     #[arg(long)]
     pub delete_processed: bool,
@@ -491,6 +494,7 @@ pub fn run(cli: Cli) -> Result<()> {
                     (None, true) => crate::serve::ops::Retention::Delete,
                     (None, false) => crate::serve::ops::Retention::Keep,
                 },
+                archive_keep_days: a.archive_keep_days,
                 log_json: a.log_json,
             };
             let opts = crate::serve::LiveOptions {

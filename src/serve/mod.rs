@@ -638,8 +638,17 @@ fn engine_loop(
     let mut untimed_seen: HashSet<String> = HashSet::new();
     let mut untimed_in_folder = 0;
     let log_json = opts.health.log_json;
+    let mut pruned_at: Option<std::time::Instant> = None;
     while !stop.load(Ordering::SeqCst) {
         std::thread::sleep(std::time::Duration::from_millis(opts.poll_ms));
+        if let (ops::Retention::Archive(dir), Some(days)) = (&opts.health.retention, opts.health.archive_keep_days)
+            && pruned_at.is_none_or(|t| t.elapsed().as_secs() >= 3600)
+        {
+            pruned_at = Some(std::time::Instant::now());
+            for p in ops::prune_archive(dir, days, Utc::now().date_naive()) {
+                eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("folder", p.display().to_string()), ("done", format!("removed (older than {days} days)"))], log_json));
+            }
+        }
         if let Some(f) = feed.as_mut() {
             feed_step(f, &mut nc, &shared, &mut tuning_reset_done, &opts.health);
         }

@@ -68,13 +68,16 @@ pub struct HealthOptions {
     pub measurement_max_age_s: f64,
     /// What becomes of judged frames.
     pub retention: Retention,
+    /// With [`Retention::Archive`]: dated folders older than this many days are removed (checked
+    /// hourly), so the archive's disk use is bounded too (none: kept).
+    pub archive_keep_days: Option<u32>,
     /// The per-frame log line as JSON instead of key=value.
     pub log_json: bool,
 }
 
 impl Default for HealthOptions {
     fn default() -> Self {
-        HealthOptions { frame_interval_s: 30.0, camera_down_after_s: 600.0, measurements: None, measurement_max_age_s: 900.0, retention: Retention::Keep, log_json: false }
+        HealthOptions { frame_interval_s: 30.0, camera_down_after_s: 600.0, measurements: None, measurement_max_age_s: 900.0, retention: Retention::Keep, archive_keep_days: None, log_json: false }
     }
 }
 
@@ -359,6 +362,22 @@ pub fn retire(path: &Path, time: &DateTime<Utc>, r: &Retention) -> std::io::Resu
     }
 }
 
+/// Remove the archive's dated folders (`YYYY-MM-DD`) older than `keep_days` before `today`.
+/// Returns the folders removed; other entries are left alone.
+pub fn prune_archive(dir: &Path, keep_days: u32, today: chrono::NaiveDate) -> Vec<PathBuf> {
+    let Ok(rd) = std::fs::read_dir(dir) else { return vec![] };
+    let mut gone = vec![];
+    for e in rd.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        let Ok(day) = chrono::NaiveDate::parse_from_str(&name, "%Y-%m-%d") else { continue };
+        if (today - day).num_days() > i64::from(keep_days) && e.path().is_dir() && std::fs::remove_dir_all(e.path()).is_ok() {
+            gone.push(e.path());
+        }
+    }
+    gone.sort();
+    gone
+}
+
 /// A latency histogram (cumulative buckets as Prometheus wants them).
 #[derive(Debug, Clone, Default)]
 pub struct Histogram {
@@ -526,6 +545,18 @@ mod tests {
         std::fs::OpenOptions::new().append(true).open(&p).unwrap().write_all(b"2026-06-14T10:04:00Z,abc\n").unwrap();
         let r = f.poll(&site);
         assert!(r.pieces.is_empty() && r.notes[0].contains("line 3"), "{:?}", r.notes);
+    }
+
+    #[test]
+    fn archive_pruning_removes_only_old_dated_folders() {
+        let d = tempfile::tempdir().unwrap();
+        for n in ["2026-06-01", "2026-06-10", "2026-06-14", "notes"] {
+            std::fs::create_dir_all(d.path().join(n)).unwrap();
+        }
+        let today = chrono::NaiveDate::from_ymd_opt(2026, 6, 14).unwrap();
+        let gone = prune_archive(d.path(), 7, today);
+        assert_eq!(gone, vec![d.path().join("2026-06-01")]);
+        assert!(d.path().join("2026-06-10").is_dir() && d.path().join("notes").is_dir());
     }
 
     #[test]
