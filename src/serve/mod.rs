@@ -21,6 +21,9 @@
 //!   tolerance bounds the skew accepted.
 //! * Bad frames are counted and skipped; with the sun below the limit the engine idles.
 //! * After a restart the alarm state and log come back from the database.
+//! * Health, measurement feed, per-frame log line, `/metrics` and retention: [`ops`]. The health
+//!   state (starting, ok, no_measurements, stale, camera_down) is judged on its own timer and is
+//!   separate from the ramp alarm; `data_valid` goes with every output.
 //!
 //! Forecasts and alarms are advisory, not a protection system.
 
@@ -213,10 +216,14 @@ impl Shared {
 /// The health timer: judge the health every [`ops::HEALTH_TICK_MS`] ms, log and send each change,
 /// and send the heartbeat every 10 s.
 fn health_loop(shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, stop: Arc<AtomicBool>, log_json: bool) {
+    // The state last logged and sent (the engine also judges the health when a frame arrives).
+    let mut announced = shared.lock().map(|s| s.ops.state).unwrap_or_default();
     while !stop.load(Ordering::SeqCst) {
         std::thread::sleep(std::time::Duration::from_millis(ops::HEALTH_TICK_MS));
         let Ok(mut s) = shared.lock() else { return };
-        let changed = s.refresh_health(true);
+        s.refresh_health(true);
+        let changed = (s.ops.state != announced).then_some(announced);
+        announced = s.ops.state;
         let h = &s.health;
         let event = serde_json::json!({"type": "health", "state": h.health_state, "data_valid": h.data_valid, "heartbeat": h.heartbeat,
             "frame_age_s": h.frame_age_s, "measurement_age_s": h.measurement_age_s});
@@ -697,6 +704,9 @@ fn engine_loop(
         }
         let Some(newest) = ready.iter().max_by_key(|f| f.time).cloned() else { continue };
         let skipped = ready.len() - 1;
+        for f in ready.iter().filter(|f| f.path != newest.path) {
+            eprintln!("{}", ops::log_line(&[("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())], log_json));
+        }
         let t0 = std::time::Instant::now();
         // The clock policy (from the name alone), intake, then the engine. Older than what was
         // already processed: out of order, counted by the engine.
