@@ -23,6 +23,9 @@ pub struct Cli {
 
 /// The subcommands.
 #[derive(Debug, Subcommand)]
+// Parsed once per run: the live command's many options make its variant large, and boxing it
+// buys nothing.
+#[allow(clippy::large_enum_variant)]
 pub enum Command {
     /// Print a CSV table of solar position and clear-sky irradiance.
     Sun(SunArgs),
@@ -116,6 +119,35 @@ pub struct LiveArgs {
     /// Poll interval [ms].
     #[arg(long, default_value_t = 500, allow_hyphen_values = true)]
     pub poll_ms: u64,
+    /// Measurement feed: a CSV file a logger appends to, or a folder of CSV files (rotation).
+    #[arg(long, value_name = "PATH")]
+    pub measurements: Option<PathBuf>,
+    /// The camera's frame interval [s]; a frame older than 2 intervals + 60 s is stale.
+    #[arg(long, default_value_t = 30.0, allow_hyphen_values = true)]
+    pub frame_interval_s: f64,
+    /// No frame read for this long is `camera_down` [s].
+    #[arg(long, default_value_t = 600.0, allow_hyphen_values = true)]
+    pub camera_down_after_s: f64,
+    /// Measurements older than this are not used; the tuning goes back to the configured
+    /// transmittances [s].
+    #[arg(long, default_value_t = 900.0, allow_hyphen_values = true)]
+    pub measurement_max_age_s: f64,
+    /// Move judged frames to <DIR>/<YYYY-MM-DD>/ (bounded disk in the incoming folder).
+    #[arg(long, value_name = "DIR", conflicts_with = "delete_processed")]
+    pub archive: Option<PathBuf>,
+    /// With --archive: remove dated archive folders older than this many days.
+    #[arg(long, value_name = "DAYS", requires = "archive")]
+    pub archive_keep_days: Option<u32>,
+    /// Delete judged frames.
+    #[arg(long)]
+    pub delete_processed: bool,
+    /// Log one JSON object per line instead of key=value pairs.
+    #[arg(long)]
+    pub log_json: bool,
+    /// Check the configuration (site, calibration, measurement feed, folders, options) and exit:
+    /// 0 when it is usable, 2 when not.
+    #[arg(long)]
+    pub check: bool,
     /// Serve read-only Modbus TCP registers for plant controllers on this address (off unless
     /// given; e.g. 127.0.0.1:5020). Map: `nephocast registers --site SITE`.
     #[arg(long, value_name = "ADDR")]
@@ -493,7 +525,20 @@ pub fn run(cli: Cli) -> Result<()> {
                 }),
                 ..Default::default()
             };
-            let h = crate::serve::start(crate::serve::LiveOptions {
+            let health = crate::serve::ops::HealthOptions {
+                frame_interval_s: a.frame_interval_s,
+                camera_down_after_s: a.camera_down_after_s,
+                measurements: a.measurements,
+                measurement_max_age_s: a.measurement_max_age_s,
+                retention: match (a.archive, a.delete_processed) {
+                    (Some(d), _) => crate::serve::ops::Retention::Archive(d),
+                    (None, true) => crate::serve::ops::Retention::Delete,
+                    (None, false) => crate::serve::ops::Retention::Keep,
+                },
+                archive_keep_days: a.archive_keep_days,
+                log_json: a.log_json,
+            };
+            let opts = crate::serve::LiveOptions {
                 site: a.site,
                 incoming: a.incoming.clone(),
                 db: a.db,
@@ -503,7 +548,16 @@ pub fn run(cli: Cli) -> Result<()> {
                 keep_s: (a.keep_days * 86400.0) as i64,
                 poll_ms: a.poll_ms.max(20),
                 overlay_every: 1,
-            })?;
+                health,
+            };
+            if a.check {
+                for line in crate::serve::check(&opts)? {
+                    crate::say!("{line}");
+                }
+                crate::say!("configuration OK");
+                return Ok(());
+            }
+            let h = crate::serve::start(opts)?;
             warnings.extend(h.warnings.iter().cloned());
             for w in &warnings {
                 eprintln!("warning: {w}");

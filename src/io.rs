@@ -542,10 +542,25 @@ impl Measurements {
     /// # Errors
     /// Malformed rows, unparsable numbers, duplicated or unordered times — with the line number.
     pub fn read_csv(path: &Path) -> Result<Measurements, InputError> {
-        let mut rdr = csv::ReaderBuilder::new()
+        let rdr = csv::ReaderBuilder::new()
             .comment(Some(b'#'))
             .from_path(path)
             .map_err(|e| InputError::Other { file: path.into(), message: e.to_string() })?;
+        Self::from_csv_reader(path, rdr, 0)
+    }
+
+    /// Read measurements from CSV text (a header line, then rows) that came from `path`, whose
+    /// first row follows `lines_before` data lines of that file (for the line numbers in errors
+    /// and [`Measurements::lines`]). Live mode reads a growing file this way, a piece at a time.
+    ///
+    /// # Errors
+    /// As [`Measurements::read_csv`].
+    pub fn read_csv_text(path: &Path, text: &[u8], lines_before: u64) -> Result<Measurements, InputError> {
+        let rdr = csv::ReaderBuilder::new().comment(Some(b'#')).from_reader(text);
+        Self::from_csv_reader(path, rdr, lines_before)
+    }
+
+    fn from_csv_reader<R: std::io::Read>(path: &Path, mut rdr: csv::Reader<R>, lines_before: u64) -> Result<Measurements, InputError> {
         let headers = rdr.headers().map_err(|e| InputError::Other { file: path.into(), message: e.to_string() })?.clone();
         let ti = headers.iter().position(|h| h == "time_utc").ok_or_else(|| InputError::Csv {
             file: path.into(),
@@ -560,10 +575,10 @@ impl Measurements {
         for rec in rdr.records() {
             let rec = rec.map_err(|e| InputError::Csv {
                 file: path.into(),
-                line: e.position().map(|p| p.line()).unwrap_or(0),
+                line: e.position().map(|p| p.line() + lines_before).unwrap_or(0),
                 message: e.to_string(),
             })?;
-            let line = rec.position().map(|p| p.line()).unwrap_or(0);
+            let line = rec.position().map(|p| p.line() + lines_before).unwrap_or(0);
             let bad = |msg: String| InputError::Csv { file: path.into(), line, message: msg };
             if m.times.len() >= MAX_CSV_ROWS {
                 return Err(bad(format!("expected at most {MAX_CSV_ROWS} rows")));

@@ -424,6 +424,84 @@ impl Nowcaster {
         *self.counters.rejected.entry(r.code().to_string()).or_default() += 1;
     }
 
+    /// Append measurement rows that arrived after start (live mode's feed), already screened
+    /// ([`Measurements::screen`]): columns are matched by name (a column the engine does not hold
+    /// is ignored, one the rows lack is missing), rows not after the newest held are dropped, and
+    /// rows more than `keep_s` older than the newest are forgotten, so memory stays bounded.
+    /// Returns the rows appended. Without measurements so far the rows become the engine's
+    /// measurements when they hold a configured pyranometer's column.
+    pub fn append_measurements(&mut self, rows: Measurements, keep_s: f64) -> usize {
+        let added = match &mut self.measurements {
+            None => {
+                let n = rows.times.len();
+                let cols: Vec<PyranometerColumn> =
+                    self.site.file.pyranometers.iter().filter_map(|p| rows.column(&format!("ghi_{}_wm2", p.name)).map(|c| (c, p.position_m))).collect();
+                if cols.is_empty() {
+                    return 0;
+                }
+                self.measurements = Some((rows, cols));
+                n
+            }
+            Some((m, _)) => {
+                let idx: Vec<Option<usize>> = m.names.iter().map(|n| rows.column(n)).collect();
+                let mut added = 0;
+                for (i, t) in rows.times.iter().enumerate() {
+                    if m.times.last().is_some_and(|l| t <= l) {
+                        continue;
+                    }
+                    m.times.push(*t);
+                    m.lines.push(rows.lines.get(i).copied().unwrap_or(0));
+                    for (c, k) in idx.iter().enumerate() {
+                        m.columns[c].push(k.map(|k| rows.columns[k][i]).unwrap_or(f64::NAN));
+                    }
+                    added += 1;
+                }
+                added
+            }
+        };
+        if let Some((m, _)) = &mut self.measurements {
+            if let Some(newest) = m.times.last().copied() {
+                let cut = m.times.partition_point(|t| (newest - *t).num_milliseconds() as f64 / 1000.0 > keep_s);
+                if cut > 0 {
+                    m.times.drain(..cut);
+                    m.lines.drain(..cut.min(m.lines.len()));
+                    for c in &mut m.columns {
+                        c.drain(..cut);
+                    }
+                }
+            }
+            if m.times.len() >= 2 {
+                let mut steps: Vec<i64> = m.times.windows(2).map(|w| (w[1] - w[0]).num_seconds()).collect();
+                steps.sort_unstable();
+                m.period_s = steps[steps.len() / 2] as f64;
+            }
+        }
+        added
+    }
+
+    /// Pyranometer readings the transmittance tuning holds now.
+    pub fn tuning_rows(&self) -> usize {
+        self.tuner.rows.len()
+    }
+
+    /// The measurements held: rows, and the end of the newest row's averaging period.
+    pub fn measurements_newest(&self) -> (usize, Option<DateTime<Utc>>) {
+        match &self.measurements {
+            Some((m, _)) => (m.times.len(), m.times.last().map(|t| *t + chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64))),
+            None => (0, None),
+        }
+    }
+
+    /// Forget what the transmittance tuning learnt and go back to the site's configured
+    /// transmittances (live mode calls this when the measurement feed has stopped). Returns whether
+    /// anything was forgotten.
+    pub fn reset_tuning(&mut self) -> bool {
+        let tuned = !self.tuner.rows.is_empty();
+        self.tuner = Tuner::default();
+        self.irradiance = self.site.file.irradiance;
+        tuned
+    }
+
     /// A weather value from the measurements CSV at a time (column `temp_air_c` or `wind_speed_mps`).
     fn weather(&self, t: &DateTime<Utc>, column: &str) -> Option<f64> {
         let (m, _) = self.measurements.as_ref()?;

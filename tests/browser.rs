@@ -74,6 +74,7 @@ fn live(site: &Path, incoming: &Path, db: &Path) -> LiveHandle {
         keep_s: 86_400,
         poll_ms: 40,
         overlay_every: 1,
+        health: Default::default(),
     })
     .unwrap()
 }

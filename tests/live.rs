@@ -59,6 +59,7 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
         keep_s: 86_400,
         poll_ms: 40,
         overlay_every: 1,
+        health: Default::default(),
     };
     let h = start(opts.clone()).unwrap();
     let addr = h.addr;

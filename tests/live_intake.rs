@@ -49,6 +49,7 @@ fn options(d: &Path) -> LiveOptions {
         keep_s: 86_400,
         poll_ms: 30,
         overlay_every: 0,
+        health: Default::default(),
         server: Default::default(),
     }
 }

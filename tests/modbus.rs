@@ -95,6 +95,7 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
         keep_s: 86_400,
         poll_ms: 40,
         overlay_every: 0,
+        health: Default::default(),
     };
     let h = start(opts).unwrap();
     let (http, maddr) = (h.addr, h.modbus_addr.unwrap());

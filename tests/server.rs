@@ -23,6 +23,7 @@ fn options(d: &Path, token: Option<&str>, server: ServerOptions) -> LiveOptions 
         keep_s: 86_400,
         poll_ms: 200,
         overlay_every: 0,
+        health: Default::default(),
     }
 }
 

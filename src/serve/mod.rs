@@ -21,6 +21,9 @@
 //!   tolerance bounds the skew accepted.
 //! * Bad frames are counted and skipped; with the sun below the limit the engine idles.
 //! * After a restart the alarm state and log come back from the database.
+//! * Health, measurement feed, per-frame log line, `/metrics` and retention: [`ops`]. The health
+//!   state (starting, ok, no_measurements, stale, camera_down) is judged on its own timer and is
+//!   separate from the ramp alarm; `data_valid` goes with every output.
 //!
 //! Forecasts and alarms are advisory, not a protection system.
 
@@ -28,6 +31,7 @@ pub mod db;
 pub mod guard;
 pub mod http;
 pub mod modbus;
+pub mod ops;
 
 pub use http::{ServerOptions, TlsFiles};
 
@@ -72,6 +76,8 @@ pub struct LiveOptions {
     pub poll_ms: u64,
     /// Latest frames' overlay picture every N processed frames (0: none).
     pub overlay_every: usize,
+    /// Health, measurement feed, log format and retention ([`ops`]).
+    pub health: ops::HealthOptions,
 }
 
 /// Health figures.
@@ -99,6 +105,34 @@ pub struct Health {
     pub alarm: String,
     /// Engine running.
     pub running: bool,
+    /// Health state ([`ops::HealthState`]): starting, ok, no_measurements, stale, camera_down.
+    pub health_state: String,
+    /// The forecasts come from a fresh frame (a controller falls back when false).
+    pub data_valid: bool,
+    /// Rises every health evaluation (every [`ops::HEALTH_TICK_MS`] ms) while the service lives.
+    pub heartbeat: u64,
+    /// Time of the newest frame read (used or not, e.g. at night).
+    pub newest_frame_utc: Option<String>,
+    /// Age of the newest frame read \[s\].
+    pub frame_age_s: Option<f64>,
+    /// Measurement rows the engine holds (the feed's, bounded to the last hours).
+    pub measurement_rows: usize,
+    /// Measurement rows taken from the feed since start.
+    pub measurement_rows_read: usize,
+    /// Age of the end of the newest measurement's averaging period \[s\].
+    pub measurement_age_s: Option<f64>,
+    /// Measurement pieces refused (unparsable lines, kW/m²).
+    pub measurement_errors: usize,
+    /// Times the tuning went back to the configured transmittances because the feed stopped.
+    pub tuning_resets: usize,
+    /// Pyranometer readings the transmittance tuning holds now.
+    pub tuning_rows: usize,
+    /// Frame-like files whose name holds no time (seen since start).
+    pub frames_untimed: usize,
+    /// The newest of their names (at most 20).
+    pub untimed_files: Vec<String>,
+    /// Frame files archived or deleted by the retention.
+    pub frames_retired: usize,
 }
 
 #[derive(Default)]
@@ -108,6 +142,107 @@ struct Shared {
     health: Health,
     latencies: VecDeque<f64>,
     last_time: Option<DateTime<Utc>>,
+    ops: OpsShared,
+}
+
+/// What the health timer judges from.
+struct OpsShared {
+    started: std::time::Instant,
+    newest_read: Option<DateTime<Utc>>,
+    last_read_wall: Option<std::time::Instant>,
+    measurement_end: Option<DateTime<Utc>>,
+    latency: ops::Histogram,
+    state: ops::HealthState,
+    options: ops::HealthOptions,
+}
+
+impl Default for OpsShared {
+    fn default() -> Self {
+        OpsShared {
+            started: std::time::Instant::now(),
+            newest_read: None,
+            last_read_wall: None,
+            measurement_end: None,
+            latency: Default::default(),
+            state: Default::default(),
+            options: Default::default(),
+        }
+    }
+}
+
+impl Shared {
+    /// Judge the health now; returns the previous state when it changed.
+    fn refresh_health(&mut self, heartbeat: bool) -> Option<ops::HealthState> {
+        let now = Utc::now();
+        let o = &self.ops;
+        let inputs = ops::HealthInputs {
+            uptime_s: o.started.elapsed().as_secs_f64(),
+            frame_age_s: o.newest_read.map(|t| ops::age_s(&t, &now)),
+            since_frame_read_s: o.last_read_wall.map(|w| w.elapsed().as_secs_f64()),
+            measurement_age_s: o.measurement_end.map(|t| ops::age_s(&t, &now)),
+            feed: o.options.measurements.is_some(),
+        };
+        let state = ops::evaluate(&inputs, &o.options);
+        let prev = o.state;
+        self.ops.state = state;
+        let h = &mut self.health;
+        h.health_state = state.name().into();
+        h.data_valid = state.data_valid();
+        h.frame_age_s = inputs.frame_age_s;
+        h.measurement_age_s = inputs.measurement_age_s;
+        if heartbeat {
+            h.heartbeat += 1;
+        }
+        (prev != state).then_some(prev)
+    }
+
+    fn metrics(&self) -> ops::MetricsInput {
+        let h = &self.health;
+        ops::MetricsInput {
+            processed: h.frames_processed,
+            skipped: h.frames_skipped,
+            rejected: h.frames_rejected.clone(),
+            untimed: h.frames_untimed,
+            measurement_rows: h.measurement_rows_read,
+            latency: self.ops.latency.clone(),
+            alarm: h.alarm.clone(),
+            health: self.ops.state,
+            heartbeat: h.heartbeat,
+            frame_age_s: h.frame_age_s,
+            measurement_age_s: h.measurement_age_s,
+        }
+    }
+}
+
+/// The health timer: judge the health every [`ops::HEALTH_TICK_MS`] ms, log and send each change,
+/// and send the heartbeat every 10 s.
+fn health_loop(shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, stop: Arc<AtomicBool>, log_json: bool) {
+    // The state last logged and sent (the engine also judges the health when a frame arrives).
+    let mut announced = shared.lock().map(|s| s.ops.state).unwrap_or_default();
+    while !stop.load(Ordering::SeqCst) {
+        std::thread::sleep(std::time::Duration::from_millis(ops::HEALTH_TICK_MS));
+        let Ok(mut s) = shared.lock() else { return };
+        s.refresh_health(true);
+        let changed = (s.ops.state != announced).then_some(announced);
+        announced = s.ops.state;
+        let h = &s.health;
+        let event = serde_json::json!({"type": "health", "state": h.health_state, "data_valid": h.data_valid, "heartbeat": h.heartbeat,
+            "frame_age_s": h.frame_age_s, "measurement_age_s": h.measurement_age_s});
+        if let Some(prev) = changed {
+            let f = |v: Option<f64>| v.map(|x| format!("{x:.1}")).unwrap_or_default();
+            eprintln!(
+                "{}",
+                ops::log_line(
+                    &[("event", "health".into()), ("state", h.health_state.clone()), ("previous", prev.name().into()), ("data_valid", h.data_valid.to_string()),
+                      ("frame_age_s", f(h.frame_age_s)), ("measurement_age_s", f(h.measurement_age_s)), ("heartbeat", h.heartbeat.to_string())],
+                    log_json
+                )
+            );
+        }
+        if changed.is_some() || h.heartbeat.is_multiple_of(10_000 / ops::HEALTH_TICK_MS) {
+            let _ = tx.send(event.to_string());
+        }
+    }
 }
 
 #[derive(Clone)]
@@ -134,6 +269,7 @@ pub struct LiveHandle {
     pub tls: bool,
     stop: Arc<AtomicBool>,
     engine: Option<std::thread::JoinHandle<()>>,
+    ticker: Option<std::thread::JoinHandle<()>>,
     server: Option<std::thread::JoinHandle<()>>,
     shutdown: Option<tokio::sync::oneshot::Sender<()>>,
     /// Where the Modbus server listens, when it runs.
@@ -150,6 +286,9 @@ impl LiveHandle {
             let _ = s.send(());
         }
         if let Some(h) = self.engine.take() {
+            let _ = h.join();
+        }
+        if let Some(h) = self.ticker.take() {
             let _ = h.join();
         }
         if let Some(h) = self.server.take() {
@@ -222,6 +361,7 @@ fn pct(v: &VecDeque<f64>, p: f64) -> Option<f64> {
 /// token or `allow_non_loopback`, and is served with a warning. Returns the warnings.
 fn exposure_warnings(opts: &LiveOptions) -> anyhow::Result<Vec<String>> {
     opts.server.validate().map_err(|e| anyhow::anyhow!("server options: {e}"))?;
+    opts.health.validate().map_err(|e| anyhow::anyhow!("{e}"))?;
     let mut w = vec![];
     if !opts.bind.ip().is_loopback() {
         if opts.ack_token.is_none() && !opts.server.allow_non_loopback {
@@ -267,6 +407,7 @@ fn router(app: App, allowed: Arc<Vec<String>>) -> Router {
         .route("/api/history", get(api_history))
         .route("/api/events", get(api_events))
         .route("/api/overlay.png", get(api_overlay))
+        .route("/metrics", get(metrics))
         .route("/openapi.yaml", get(|| async { ([(header::CONTENT_TYPE, "application/yaml")], include_str!("openapi.yaml")) }))
         .with_state(app)
         .layer(axum::extract::DefaultBodyLimit::max(ACK_BODY_MAX_BYTES))
@@ -334,7 +475,12 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
         None => (None, None),
     };
     let shared = Arc::new(Mutex::new(Shared::default()));
-    shared.lock().map_err(|_| anyhow::anyhow!("state lock"))?.health.alarm = nowcaster.alarm_state().name().into();
+    {
+        let mut s = shared.lock().map_err(|_| anyhow::anyhow!("state lock"))?;
+        s.health.alarm = nowcaster.alarm_state().name().into();
+        s.ops.options = opts.health.clone();
+        s.refresh_health(false);
+    }
     let (tx, _) = broadcast::channel::<String>(64);
     let stop = Arc::new(AtomicBool::new(false));
     // Bind first so the caller learns the port.
@@ -362,10 +508,63 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
         });
         rt.shutdown_timeout(std::time::Duration::from_secs(1));
     });
-    let stop2 = stop.clone();
+    let (stop2, stop3, shared3, tx3, log_json) = (stop.clone(), stop.clone(), shared.clone(), tx.clone(), opts.health.log_json);
     let feed2 = feed.clone();
     let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2, feed2));
-    Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx), modbus_addr, modbus, feed })
+    let ticker = std::thread::spawn(move || health_loop(shared3, tx3, stop3, log_json));
+    Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), ticker: Some(ticker), server: Some(server), shutdown: Some(sd_tx), modbus_addr, modbus, feed })
+}
+
+/// Check the configuration without starting: options and address, the site file with its
+/// calibration and base-height series, the measurement feed, and the folders. Returns what was
+/// checked, one line each.
+///
+/// # Errors
+/// The first problem found, naming the file or option (never an I/O error type, so the command
+/// exits with status 2).
+pub fn check(opts: &LiveOptions) -> anyhow::Result<Vec<String>> {
+    let mut out = vec![];
+    for w in exposure_warnings(opts)? {
+        out.push(format!("warning: {w}"));
+    }
+    let nowcaster_opts = crate::replay::ReplayOptions {
+        site: opts.site.clone(),
+        frames: opts.incoming.clone(),
+        out: PathBuf::new(),
+        measurements: None,
+        overlays_every: 0,
+        progress: false,
+    };
+    let nc = crate::replay::prepare(&nowcaster_opts, None).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let f = &nc.site().file;
+    out.push(format!(
+        "site {}: {} block(s), {} pyranometer(s), camera {}x{} px",
+        opts.site.display(),
+        f.plant.blocks.len(),
+        f.pyranometers.len(),
+        nc.site().camera.width_px,
+        nc.site().camera.height_px
+    ));
+    if let Some(m) = &opts.health.measurements {
+        out.push(ops::check_feed(m).map_err(|e| anyhow::anyhow!("{e}"))?);
+        if f.pyranometers.is_empty() {
+            out.push("warning: the site names no pyranometers: the measurement feed is read but not used for tuning".into());
+        }
+    }
+    let dir_ok = |what: &str, p: &std::path::Path| -> anyhow::Result<()> {
+        let parent = if p.is_dir() { p } else { p.parent().filter(|x| !x.as_os_str().is_empty()).unwrap_or(std::path::Path::new(".")) };
+        if !parent.is_dir() {
+            anyhow::bail!("{what} {}: the folder {} does not exist", p.display(), parent.display());
+        }
+        Ok(())
+    };
+    dir_ok("--incoming", &opts.incoming)?;
+    dir_ok("--db", &opts.db)?;
+    if let ops::Retention::Archive(d) = &opts.health.retention {
+        dir_ok("--archive", d)?;
+    }
+    out.push(format!("incoming {}, database {}, stale after {:.0} s", opts.incoming.display(), opts.db.display(), opts.health.stale_after_s()));
+    Ok(out)
 }
 
 /// A frame file's signature: size and modification time.
@@ -461,7 +660,7 @@ fn engine_loop(
     shared: Arc<Mutex<Shared>>,
     tx: broadcast::Sender<String>,
     stop: Arc<AtomicBool>,
-    feed: Arc<modbus::Feed>,
+    registers: Arc<modbus::Feed>,
 ) {
     let mut watch = Watcher::default();
     let intake = nc.intake_options();
@@ -471,9 +670,41 @@ fn engine_loop(
     if let Ok(mut s) = shared.lock() {
         s.health.running = true;
     }
+    let mut feed = opts.health.measurements.as_deref().map(ops::MeasurementFeed::new);
+    let mut tuning_reset_done = false;
+    let mut untimed_seen: HashSet<String> = HashSet::new();
+    let mut untimed_in_folder = 0;
+    let log_json = opts.health.log_json;
+    let mut pruned_at: Option<std::time::Instant> = None;
     while !stop.load(Ordering::SeqCst) {
         std::thread::sleep(std::time::Duration::from_millis(opts.poll_ms));
-        let Ok((frames, _)) = list_frames(&opts.incoming) else { continue };
+        if let (ops::Retention::Archive(dir), Some(days)) = (&opts.health.retention, opts.health.archive_keep_days)
+            && pruned_at.is_none_or(|t| t.elapsed().as_secs() >= 3600)
+        {
+            pruned_at = Some(std::time::Instant::now());
+            for p in ops::prune_archive(dir, days, Utc::now().date_naive()) {
+                eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("folder", p.display().to_string()), ("done", format!("removed (older than {days} days)"))], log_json));
+            }
+        }
+        if let Some(f) = feed.as_mut() {
+            feed_step(f, &mut nc, &shared, &mut tuning_reset_done, &opts.health);
+        }
+        let Ok((frames, untimed)) = list_frames(&opts.incoming) else { continue };
+        if untimed != untimed_in_folder {
+            untimed_in_folder = untimed;
+            let new: Vec<String> = ops::untimed_files(&opts.incoming).into_iter().filter(|n| untimed_seen.insert(n.clone())).collect();
+            for n in &new {
+                eprintln!("{}", ops::log_line(&[("event", "untimed".into()), ("file", n.clone()), ("reason", format!("no time in the name (expected {})", crate::io::FRAME_NAME_PATTERN))], log_json));
+            }
+            if !new.is_empty()
+                && let Ok(mut s) = shared.lock()
+            {
+                s.health.frames_untimed = untimed_seen.len();
+                s.health.untimed_files.extend(new);
+                let n = s.health.untimed_files.len();
+                s.health.untimed_files.drain(..n.saturating_sub(20));
+            }
+        }
         let poll = watch.poll(&frames);
         for note in &poll.notes {
             eprintln!("nephocast live: {note}");
@@ -488,11 +719,14 @@ fn engine_loop(
         let now = Utc::now();
         let tol = nc.site().file.qc.max_ahead_of_clock_s;
         let (future, ready): (Vec<_>, Vec<_>) = poll.ready.into_iter().partition(|f| (f.time - now).num_milliseconds() as f64 / 1000.0 > tol);
+        let valid_now = shared.lock().map(|s| s.health.data_valid).unwrap_or(false);
         for f in &future {
             if let Err(r) = nc.judge_clock(f.time, now) {
-                let _ = tx.send(serde_json::json!({"type": "rejected", "file": f.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string()}).to_string());
+                let _ = tx.send(serde_json::json!({"type": "rejected", "file": f.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string(), "data_valid": valid_now}).to_string());
+                eprintln!("{}", ops::log_line(&[("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "rejected".into()), ("reason", r.to_string())], log_json));
             }
         }
+        retire_all(&future, &opts.health.retention, &shared, log_json);
         if !future.is_empty()
             && let Ok(mut s) = shared.lock()
         {
@@ -500,6 +734,9 @@ fn engine_loop(
         }
         let Some(newest) = ready.iter().max_by_key(|f| f.time).cloned() else { continue };
         let skipped = ready.len() - 1;
+        for f in ready.iter().filter(|f| f.path != newest.path) {
+            eprintln!("{}", ops::log_line(&[("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())], log_json));
+        }
         let t0 = std::time::Instant::now();
         // The clock policy (from the name alone), intake, then the engine. Older than what was
         // already processed: out of order, counted by the engine.
@@ -518,10 +755,22 @@ fn engine_loop(
         };
         // The controller's registers first, before logging and pictures.
         if let Ok(n) = &result {
-            feed.publish(n);
+            registers.publish(n);
         }
         watch.taken(&newest, result.is_ok());
         let latency = t0.elapsed().as_secs_f64() * 1000.0;
+        let (valid, health_state, frame_age) = match shared.lock() {
+            Ok(mut s) => {
+                if frame.is_ok() {
+                    s.ops.newest_read = s.ops.newest_read.max(Some(newest.time));
+                    s.ops.last_read_wall = Some(std::time::Instant::now());
+                    s.health.newest_frame_utc = s.ops.newest_read.map(|t| fmt_time(&t));
+                }
+                s.refresh_health(false);
+                (s.health.data_valid, s.health.health_state.clone(), s.health.frame_age_s)
+            }
+            Err(_) => (false, String::new(), None),
+        };
         let mut events = vec![];
         let mut overlay = None;
         let mut latest = None;
@@ -544,16 +793,39 @@ fn engine_loop(
                 let _ = db::insert_history(&conn, n.time.timestamp(), &h, opts.keep_s);
                 if let Some(ch) = &n.alarm_change {
                     let _ = db::insert_alarm(&conn, ch);
-                    events.push(serde_json::json!({"type": "alarm", "change": ch}).to_string());
+                    events.push(serde_json::json!({"type": "alarm", "change": ch, "data_valid": valid}).to_string());
                 }
-                events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name()}).to_string());
+                events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name(), "data_valid": valid, "health": health_state}).to_string());
                 if opts.overlay_every > 0 && (processed - 1).is_multiple_of(opts.overlay_every)
                     && let Ok(fr) = &frame {
                         overlay = Some(crate::overlay::overlay_png(&fr.image, n, &nc));
                     }
             }
-            Err(r) => events.push(serde_json::json!({"type": "rejected", "file": newest.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string()}).to_string()),
+            Err(r) => events.push(serde_json::json!({"type": "rejected", "file": newest.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string(), "data_valid": valid}).to_string()),
         }
+        let f1 = |v: Option<f64>| v.map(|x| format!("{x:.1}")).unwrap_or_default();
+        let measurement_age = shared.lock().ok().and_then(|s| s.health.measurement_age_s);
+        eprintln!(
+            "{}",
+            ops::log_line(
+                &[
+                    ("event", "frame".into()),
+                    ("file", file_name(&newest.path)),
+                    ("time", fmt_time(&newest.time)),
+                    ("outcome", if result.is_ok() { "used" } else { "rejected" }.into()),
+                    ("reason", result.as_ref().err().map(|r| r.to_string()).unwrap_or_default()),
+                    ("skipped", skipped.to_string()),
+                    ("latency_ms", format!("{latency:.0}")),
+                    ("cloud_fraction", result.as_ref().ok().map(|n| format!("{:.3}", n.cloud_fraction)).unwrap_or_default()),
+                    ("alarm", nc.alarm_state().name().into()),
+                    ("health", health_state.clone()),
+                    ("data_valid", valid.to_string()),
+                    ("frame_age_s", f1(frame_age)),
+                    ("measurement_age_s", f1(measurement_age)),
+                ],
+                log_json
+            )
+        );
         if let Ok(mut s) = shared.lock() {
             s.health.frames_skipped += skipped;
             s.health.frames_processed = nc.counters.used;
@@ -562,6 +834,7 @@ fn engine_loop(
             s.health.frames_changed = watch.changed;
             s.health.alarm = nc.alarm_state().name().into();
             if result.is_ok() {
+                s.ops.latency.observe(latency / 1000.0);
                 s.latencies.push_back(latency);
                 if s.latencies.len() > 500 {
                     s.latencies.pop_front();
@@ -579,9 +852,75 @@ fn engine_loop(
         for e in events {
             let _ = tx.send(e);
         }
+        retire_all(&ready, &opts.health.retention, &shared, log_json);
     }
     if let Ok(mut s) = shared.lock() {
         s.health.running = false;
+    }
+}
+
+fn file_name(p: &std::path::Path) -> String {
+    p.file_name().map(|x| x.to_string_lossy().into_owned()).unwrap_or_default()
+}
+
+/// Apply the retention to judged frames, logging what was done.
+fn retire_all(frames: &[crate::io::FrameRef], r: &ops::Retention, shared: &Arc<Mutex<Shared>>, log_json: bool) {
+    if *r == ops::Retention::Keep {
+        return;
+    }
+    let mut n = 0;
+    for f in frames {
+        match ops::retire(&f.path, &f.time, r) {
+            Ok(Some(what)) => {
+                n += 1;
+                eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("file", file_name(&f.path)), ("done", what)], log_json));
+            }
+            Ok(None) => {}
+            Err(e) => eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("file", file_name(&f.path)), ("error", e.to_string())], log_json)),
+        }
+    }
+    if n > 0
+        && let Ok(mut s) = shared.lock()
+    {
+        s.health.frames_retired += n;
+    }
+}
+
+/// Read the measurement feed, append to the engine, and go back to the configured
+/// transmittances once the feed is older than its limit.
+fn feed_step(feed: &mut ops::MeasurementFeed, nc: &mut Nowcaster, shared: &Arc<Mutex<Shared>>, reset_done: &mut bool, o: &ops::HealthOptions) {
+    let poll = feed.poll(&nc.site().file);
+    for n in &poll.notes {
+        eprintln!("nephocast live: {n}");
+    }
+    for (m, counts) in poll.pieces {
+        for (k, v) in counts {
+            *nc.counters.measurements_flagged.entry(k).or_default() += v;
+        }
+        nc.append_measurements(m, ops::FEED_KEEP_S);
+    }
+    let (rows, end) = nc.measurements_newest();
+    // The tuning works in the frames' time: the feed has stopped for it when its newest reading is
+    // older than the limit at the newest frame's time.
+    let newest_frame = shared.lock().ok().and_then(|s| s.ops.newest_read);
+    let old = newest_frame.is_some_and(|f| end.is_none_or(|t| ops::age_s(&t, &f) > o.measurement_max_age_s));
+    let mut reset = false;
+    if old && !*reset_done {
+        reset = nc.reset_tuning();
+        *reset_done = true;
+        if reset {
+            eprintln!("nephocast live: the measurement feed is older than {:.0} s: the tuning goes back to the configured transmittances", o.measurement_max_age_s);
+        }
+    } else if !old {
+        *reset_done = false;
+    }
+    if let Ok(mut s) = shared.lock() {
+        s.health.measurement_rows = rows;
+        s.health.measurement_rows_read = feed.rows_read;
+        s.health.measurement_errors = feed.errors;
+        s.health.tuning_resets += usize::from(reset);
+        s.health.tuning_rows = nc.tuning_rows();
+        s.ops.measurement_end = end;
     }
 }
 
@@ -590,7 +929,16 @@ async fn dashboard() -> Html<&'static str> {
 }
 
 async fn api_nowcast(State(app): State<App>) -> Response {
-    match app.shared.lock().ok().and_then(|s| s.latest.clone()) {
+    let got = app.shared.lock().ok().and_then(|s| {
+        s.latest.clone().map(|mut v| {
+            v["data_valid"] = s.health.data_valid.into();
+            v["health"] = s.health.health_state.clone().into();
+            v["frame_age_s"] = s.health.frame_age_s.into();
+            v["heartbeat"] = s.health.heartbeat.into();
+            v
+        })
+    });
+    match got {
         Some(v) => Json(v).into_response(),
         None => (StatusCode::SERVICE_UNAVAILABLE, Json(serde_json::json!({"error": "no nowcast yet"}))).into_response(),
     }
@@ -603,6 +951,11 @@ async fn api_health(State(app): State<App>) -> Response {
     h.latency_ms_p95 = pct(&s.latencies, 0.95);
     h.last_frame_age_s = s.last_time.map(|t| (Utc::now() - t).num_milliseconds() as f64 / 1000.0);
     Json(h).into_response()
+}
+
+async fn metrics(State(app): State<App>) -> Response {
+    let Ok(s) = app.shared.lock() else { return StatusCode::INTERNAL_SERVER_ERROR.into_response() };
+    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], ops::metrics_text(&s.metrics())).into_response()
 }
 
 /// Run `f` on the alarm log; an error is the message for a 500 response ([`db_error`]).

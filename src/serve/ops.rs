@@ -1,0 +1,579 @@
+//! Live mode's operation: the measurement feed, the health state and its heartbeat, the
+//! per-frame log line, the Prometheus metrics and the retention of processed frames.
+//!
+//! **Health** ([`HealthState`]), evaluated on a timer every [`HEALTH_TICK_MS`] ms and not only
+//! when a frame arrives, from the clock:
+//!
+//! | state | when | data valid |
+//! |---|---|---|
+//! | `starting` | no frame read yet, and the service is younger than the stale age | no |
+//! | `camera_down` | no frame file read for `camera_down_after_s` of wall time (since start when none) | no |
+//! | `stale` | the newest frame read is older than 2 frame intervals + 60 s | no |
+//! | `no_measurements` | a measurement feed is configured and its newest reading ended more than `measurement_max_age_s` ago (or none came) | yes |
+//! | `ok` | none of the above | yes |
+//!
+//! The heartbeat counts the timer's evaluations: it rises while the service is alive, also when
+//! no frame arrives. Data valid means a forecast made from a fresh frame; a controller falls back
+//! when it is false. Forecasts and alarms are advisory, not a protection system.
+//!
+//! **Measurement feed**: a CSV file that a logger appends to, or a folder of CSV files with
+//! rotation. Each file is read from where the last poll stopped (per file, by device and inode, so
+//! a renamed file keeps its place); a file that shrank is read again from the start; a partial last
+//! line waits for the next poll. Every piece is screened as replay screens a whole file
+//! ([`crate::io::Measurements::screen`]: BSRN limits, ranges, kW/m²), then appended to the
+//! engine ([`crate::nowcast::Nowcaster::append_measurements`]); the tuning skips stuck values and
+//! gaps as in replay. When the feed stops, readings more than three averaging periods old are not
+//! used by the tuning; once the newest reading is older than `measurement_max_age_s` (against the
+//! clock) the health state turns `no_measurements`, and once it is that old at the newest frame's
+//! time the tuning forgets what it learnt and goes back to the site's configured transmittances
+//! (band calibration keeps its last scale and learns again when readings return).
+use std::collections::{BTreeMap, HashMap, HashSet};
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, Utc};
+
+use crate::io::{Measurements, fmt_time};
+
+/// The health timer's period \[ms\].
+pub const HEALTH_TICK_MS: u64 = 250;
+/// Most bytes read from one measurement file per poll.
+pub const FEED_MAX_BYTES_PER_POLL: u64 = 16 << 20;
+/// Measurement rows older than this before the newest are forgotten \[s\].
+pub const FEED_KEEP_S: f64 = 6.0 * 3600.0;
+/// Upper bounds of the latency histogram's buckets \[s\].
+pub const LATENCY_BUCKETS_S: [f64; 9] = [0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 5.0, 10.0, 30.0];
+
+/// What becomes of a frame file once it has been judged (used, rejected or skipped).
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub enum Retention {
+    /// Left in the incoming folder (the default).
+    #[default]
+    Keep,
+    /// Moved to `<folder>/<YYYY-MM-DD of the frame's UTC time>/`.
+    Archive(PathBuf),
+    /// Deleted.
+    Delete,
+}
+
+/// Live mode's health, feed, log and retention settings.
+#[derive(Debug, Clone)]
+pub struct HealthOptions {
+    /// The camera's frame interval \[s\]: a frame older than 2 intervals + 60 s is stale.
+    pub frame_interval_s: f64,
+    /// No frame file read for this long turns the state `camera_down` \[s\].
+    pub camera_down_after_s: f64,
+    /// The measurement feed: a CSV file or a folder of CSV files (none: no feed).
+    pub measurements: Option<PathBuf>,
+    /// A feed whose newest reading ended longer ago than this is not used \[s\].
+    pub measurement_max_age_s: f64,
+    /// What becomes of judged frames.
+    pub retention: Retention,
+    /// With [`Retention::Archive`]: dated folders older than this many days are removed (checked
+    /// hourly), so the archive's disk use is bounded too (none: kept).
+    pub archive_keep_days: Option<u32>,
+    /// The per-frame log line as JSON instead of key=value.
+    pub log_json: bool,
+}
+
+impl Default for HealthOptions {
+    fn default() -> Self {
+        HealthOptions { frame_interval_s: 30.0, camera_down_after_s: 600.0, measurements: None, measurement_max_age_s: 900.0, retention: Retention::Keep, archive_keep_days: None, log_json: false }
+    }
+}
+
+impl HealthOptions {
+    /// The frame age beyond which the state is stale \[s\].
+    pub fn stale_after_s(&self) -> f64 {
+        2.0 * self.frame_interval_s + 60.0
+    }
+
+    /// Check the bounds.
+    ///
+    /// # Errors
+    /// A value out of range, naming the option.
+    pub fn validate(&self) -> Result<(), String> {
+        let check = |name: &str, v: f64, lo: f64, hi: f64| {
+            if v.is_finite() && (lo..=hi).contains(&v) { Ok(()) } else { Err(format!("--{name}: expected {lo} to {hi} s, got {v}")) }
+        };
+        check("frame-interval-s", self.frame_interval_s, 0.1, 3600.0)?;
+        check("camera-down-after-s", self.camera_down_after_s, 1.0, 86_400.0)?;
+        check("measurement-max-age-s", self.measurement_max_age_s, 10.0, 86_400.0)?;
+        Ok(())
+    }
+}
+
+/// The service's health, separate from the ramp alarm.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum HealthState {
+    /// No frame yet, shortly after start.
+    #[default]
+    Starting,
+    /// Frames and (when configured) measurements are fresh.
+    Ok,
+    /// Frames are fresh; the measurement feed is configured but old or empty.
+    NoMeasurements,
+    /// The newest frame is too old.
+    Stale,
+    /// No frame arrives.
+    CameraDown,
+}
+
+impl HealthState {
+    /// Every state, in the order of their metric codes.
+    pub const ALL: [HealthState; 5] = [HealthState::Starting, HealthState::Ok, HealthState::NoMeasurements, HealthState::Stale, HealthState::CameraDown];
+
+    /// Its name in the API, the log and the metrics.
+    pub fn name(self) -> &'static str {
+        match self {
+            HealthState::Starting => "starting",
+            HealthState::Ok => "ok",
+            HealthState::NoMeasurements => "no_measurements",
+            HealthState::Stale => "stale",
+            HealthState::CameraDown => "camera_down",
+        }
+    }
+
+    /// Whether the forecasts behind it come from a fresh frame.
+    pub fn data_valid(self) -> bool {
+        matches!(self, HealthState::Ok | HealthState::NoMeasurements)
+    }
+}
+
+/// What the health is judged from.
+#[derive(Debug, Clone, Copy)]
+pub struct HealthInputs {
+    /// Seconds since the service started.
+    pub uptime_s: f64,
+    /// Age of the newest frame read (its time against the clock) \[s\].
+    pub frame_age_s: Option<f64>,
+    /// Wall time since a frame file was last read \[s\].
+    pub since_frame_read_s: Option<f64>,
+    /// Age of the end of the newest measurement's period \[s\].
+    pub measurement_age_s: Option<f64>,
+    /// A feed is configured.
+    pub feed: bool,
+}
+
+/// Judge the health.
+pub fn evaluate(i: &HealthInputs, o: &HealthOptions) -> HealthState {
+    let quiet_s = i.since_frame_read_s.unwrap_or(i.uptime_s);
+    match i.frame_age_s {
+        _ if quiet_s > o.camera_down_after_s => HealthState::CameraDown,
+        None if i.uptime_s <= o.stale_after_s() => HealthState::Starting,
+        None => HealthState::Stale,
+        Some(a) if a > o.stale_after_s() => HealthState::Stale,
+        Some(_) if i.feed && i.measurement_age_s.is_none_or(|m| m > o.measurement_max_age_s) => HealthState::NoMeasurements,
+        Some(_) => HealthState::Ok,
+    }
+}
+
+/// Seconds from `t` to `now`.
+pub fn age_s(t: &DateTime<Utc>, now: &DateTime<Utc>) -> f64 {
+    (*now - *t).num_milliseconds() as f64 / 1000.0
+}
+
+/// One measurement file's read position.
+#[derive(Debug, Clone, Default)]
+struct FileState {
+    path: PathBuf,
+    offset: u64,
+    header: Option<Vec<u8>>,
+    /// Data lines consumed so far.
+    lines: u64,
+}
+
+/// A measurement feed read a piece at a time.
+#[derive(Debug, Default)]
+pub struct MeasurementFeed {
+    path: PathBuf,
+    files: HashMap<(u64, u64), FileState>,
+    /// Rows read so far.
+    pub rows_read: usize,
+    /// Pieces refused (unparsable, kW/m²).
+    pub errors: usize,
+}
+
+/// One poll's outcome.
+#[derive(Debug, Default)]
+pub struct FeedPoll {
+    /// Screened rows per piece, with what screening flagged.
+    pub pieces: Vec<(Measurements, BTreeMap<String, usize>)>,
+    /// Lines to log.
+    pub notes: Vec<String>,
+}
+
+#[cfg(unix)]
+fn file_id(m: &std::fs::Metadata) -> (u64, u64) {
+    use std::os::unix::fs::MetadataExt;
+    (m.dev(), m.ino())
+}
+
+#[cfg(not(unix))]
+fn file_id(_: &std::fs::Metadata) -> (u64, u64) {
+    (0, 0)
+}
+
+impl MeasurementFeed {
+    /// A feed reading `path` (a CSV file, or a folder of `*.csv` files).
+    pub fn new(path: &Path) -> MeasurementFeed {
+        MeasurementFeed { path: path.to_path_buf(), ..Default::default() }
+    }
+
+    /// The feed's files, oldest modification first (a folder's rotated files before the live one).
+    fn list(&self) -> Vec<(PathBuf, std::fs::Metadata)> {
+        if self.path.is_dir() {
+            let mut v: Vec<(PathBuf, std::fs::Metadata)> = std::fs::read_dir(&self.path)
+                .map(|rd| {
+                    rd.flatten()
+                        .filter(|e| {
+                            let n = e.file_name().to_string_lossy().into_owned();
+                            !n.starts_with('.') && n.to_ascii_lowercase().ends_with(".csv")
+                        })
+                        .filter_map(|e| std::fs::metadata(e.path()).ok().filter(|m| m.is_file()).map(|m| (e.path(), m)))
+                        .collect()
+                })
+                .unwrap_or_default();
+            v.sort_by(|a, b| a.1.modified().ok().cmp(&b.1.modified().ok()).then(a.0.cmp(&b.0)));
+            v
+        } else {
+            std::fs::metadata(&self.path).ok().filter(|m| m.is_file()).map(|m| vec![(self.path.clone(), m)]).unwrap_or_default()
+        }
+    }
+
+    /// Read what was added since the last poll and screen it.
+    pub fn poll(&mut self, site: &crate::config::SiteFile) -> FeedPoll {
+        let mut out = FeedPoll::default();
+        let files = self.list();
+        let present: HashSet<(u64, u64)> = files.iter().map(|f| file_id(&f.1)).collect();
+        self.files.retain(|id, _| present.contains(id));
+        for (path, meta) in files {
+            let st = self.files.entry(file_id(&meta)).or_default();
+            st.path = path.clone();
+            if meta.len() < st.offset {
+                out.notes.push(format!("measurements {}: shrank from {} to {} bytes (truncated); read again from the start", path.display(), st.offset, meta.len()));
+                *st = FileState { path: path.clone(), ..Default::default() };
+            }
+            if meta.len() == st.offset {
+                continue;
+            }
+            let bytes = match read_range(&path, st.offset, FEED_MAX_BYTES_PER_POLL) {
+                Ok(b) => b,
+                Err(e) => {
+                    out.notes.push(format!("measurements {}: {e}", path.display()));
+                    continue;
+                }
+            };
+            // Only whole lines; a partial last line waits for the next poll.
+            let Some(end) = bytes.iter().rposition(|b| *b == b'\n') else { continue };
+            let mut body = &bytes[..=end];
+            st.offset += body.len() as u64;
+            if st.header.is_none() {
+                let h = body.iter().position(|b| *b == b'\n').unwrap_or(body.len() - 1);
+                st.header = Some(body[..=h].to_vec());
+                body = &body[h + 1..];
+            }
+            let n_lines = body.iter().filter(|b| **b == b'\n').count() as u64;
+            if n_lines == 0 {
+                continue;
+            }
+            let mut text = st.header.clone().unwrap_or_default();
+            text.extend_from_slice(body);
+            let lines_before = st.lines;
+            st.lines += n_lines;
+            let parsed = Measurements::read_csv_text(&path, &text, lines_before).and_then(|mut m| {
+                let f = &site.site;
+                let report = m.screen(&path, &f.observer(), f.clear_sky(), f.elevation_m)?;
+                if report.flagged() > 0 {
+                    out.notes.push(format!("measurements {}: {report}", path.display()));
+                }
+                Ok((m, report.counts()))
+            });
+            match parsed {
+                Ok((m, counts)) => {
+                    self.rows_read += m.times.len();
+                    out.pieces.push((m, counts));
+                }
+                Err(e) => {
+                    self.errors += 1;
+                    out.notes.push(format!("measurements: {e}; these {n_lines} lines are left out"));
+                }
+            }
+        }
+        out
+    }
+}
+
+fn read_range(path: &Path, offset: u64, max: u64) -> std::io::Result<Vec<u8>> {
+    use std::io::{Read, Seek, SeekFrom};
+    let mut f = std::fs::File::open(path)?;
+    f.seek(SeekFrom::Start(offset))?;
+    let mut v = vec![];
+    f.take(max).read_to_end(&mut v)?;
+    Ok(v)
+}
+
+/// Check that a measurement feed path can be read: a folder, or a CSV file whose header has a
+/// `time_utc` column and whose rows parse.
+///
+/// # Errors
+/// What is wrong, naming the path (and line).
+pub fn check_feed(path: &Path) -> Result<String, String> {
+    if path.is_dir() {
+        std::fs::read_dir(path).map_err(|e| format!("measurements feed {}: {e}", path.display()))?;
+        return Ok(format!("measurements feed: folder {}", path.display()));
+    }
+    let m = Measurements::read_csv(path).map_err(|e| format!("measurements feed: {e}"))?;
+    Ok(format!("measurements feed: {} ({} rows, columns {})", path.display(), m.times.len(), m.names.join(", ")))
+}
+
+/// Frame-like files (`.jpg`, `.jpeg`, `.png`, not hidden) in a folder whose name holds no time.
+pub fn untimed_files(dir: &Path) -> Vec<String> {
+    let Ok(rd) = std::fs::read_dir(dir) else { return vec![] };
+    let mut v: Vec<String> = rd
+        .flatten()
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .filter(|n| {
+            let l = n.to_ascii_lowercase();
+            !n.starts_with('.') && (l.ends_with(".jpg") || l.ends_with(".jpeg") || l.ends_with(".png")) && crate::io::time_from_frame_name(n).is_none()
+        })
+        .collect();
+    v.sort();
+    v
+}
+
+/// Apply the retention to a judged frame file. Returns what was done, for the log.
+///
+/// # Errors
+/// The move or delete failed.
+pub fn retire(path: &Path, time: &DateTime<Utc>, r: &Retention) -> std::io::Result<Option<String>> {
+    match r {
+        Retention::Keep => Ok(None),
+        Retention::Delete => {
+            std::fs::remove_file(path)?;
+            Ok(Some("deleted".into()))
+        }
+        Retention::Archive(dir) => {
+            let day = dir.join(time.format("%Y-%m-%d").to_string());
+            std::fs::create_dir_all(&day)?;
+            let to = day.join(path.file_name().unwrap_or_default());
+            std::fs::rename(path, &to)?;
+            Ok(Some(format!("archived to {}", to.display())))
+        }
+    }
+}
+
+/// Remove the archive's dated folders (`YYYY-MM-DD`) older than `keep_days` before `today`.
+/// Returns the folders removed; other entries are left alone.
+pub fn prune_archive(dir: &Path, keep_days: u32, today: chrono::NaiveDate) -> Vec<PathBuf> {
+    let Ok(rd) = std::fs::read_dir(dir) else { return vec![] };
+    let mut gone = vec![];
+    for e in rd.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        let Ok(day) = chrono::NaiveDate::parse_from_str(&name, "%Y-%m-%d") else { continue };
+        if (today - day).num_days() > i64::from(keep_days) && e.path().is_dir() && std::fs::remove_dir_all(e.path()).is_ok() {
+            gone.push(e.path());
+        }
+    }
+    gone.sort();
+    gone
+}
+
+/// A latency histogram (cumulative buckets as Prometheus wants them).
+#[derive(Debug, Clone, Default)]
+pub struct Histogram {
+    /// Counts per bucket of [`LATENCY_BUCKETS_S`] (not cumulative).
+    pub buckets: [u64; LATENCY_BUCKETS_S.len()],
+    /// Sum \[s\].
+    pub sum_s: f64,
+    /// Observations.
+    pub count: u64,
+}
+
+impl Histogram {
+    /// Add one observation \[s\].
+    pub fn observe(&mut self, v_s: f64) {
+        if let Some(i) = LATENCY_BUCKETS_S.iter().position(|b| v_s <= *b) {
+            self.buckets[i] += 1;
+        }
+        self.sum_s += v_s;
+        self.count += 1;
+    }
+}
+
+/// Figures for the metrics page.
+#[derive(Debug, Clone, Default)]
+pub struct MetricsInput {
+    /// Frames processed.
+    pub processed: usize,
+    /// Frames skipped for a newer one.
+    pub skipped: usize,
+    /// Frames rejected, by reason.
+    pub rejected: BTreeMap<String, usize>,
+    /// Untimed frame files seen.
+    pub untimed: usize,
+    /// Measurement rows appended.
+    pub measurement_rows: usize,
+    /// Latency.
+    pub latency: Histogram,
+    /// Alarm state name.
+    pub alarm: String,
+    /// Health.
+    pub health: HealthState,
+    /// Heartbeat.
+    pub heartbeat: u64,
+    /// Newest frame's age \[s\].
+    pub frame_age_s: Option<f64>,
+    /// Newest measurement's age \[s\].
+    pub measurement_age_s: Option<f64>,
+}
+
+fn label(v: &str) -> String {
+    v.replace('\\', "\\\\").replace('"', "\\\"").replace('\n', "\\n")
+}
+
+/// The metrics in the Prometheus text exposition format (version 0.0.4).
+pub fn metrics_text(m: &MetricsInput) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    let mut metric = |name: &str, kind: &str, help: &str, lines: Vec<(String, f64)>| {
+        let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} {kind}");
+        for (labels, v) in lines {
+            let _ = writeln!(s, "{name}{labels} {v}");
+        }
+    };
+    metric("nephocast_frames_processed_total", "counter", "Frames the engine used.", vec![(String::new(), m.processed as f64)]);
+    metric("nephocast_frames_skipped_total", "counter", "Frames skipped because a newer one was waiting.", vec![(String::new(), m.skipped as f64)]);
+    metric(
+        "nephocast_frames_rejected_total",
+        "counter",
+        "Frames rejected, by reason.",
+        m.rejected.iter().map(|(k, v)| (format!("{{reason=\"{}\"}}", label(k)), *v as f64)).collect(),
+    );
+    metric("nephocast_frames_untimed_total", "counter", "Frame files whose name holds no time.", vec![(String::new(), m.untimed as f64)]);
+    metric("nephocast_measurement_rows_total", "counter", "Measurement rows taken from the feed.", vec![(String::new(), m.measurement_rows as f64)]);
+    let mut lines = vec![];
+    let mut cum = 0;
+    for (b, n) in LATENCY_BUCKETS_S.iter().zip(m.latency.buckets.iter()) {
+        cum += n;
+        lines.push((format!("_bucket{{le=\"{b}\"}}"), cum as f64));
+    }
+    lines.push(("_bucket{le=\"+Inf\"}".into(), m.latency.count as f64));
+    lines.push(("_sum".into(), m.latency.sum_s));
+    lines.push(("_count".into(), m.latency.count as f64));
+    metric("nephocast_frame_latency_seconds", "histogram", "Frame processing time (decode and engine step).", lines);
+    let alarms = ["calm", "caution", "variable", "alert"];
+    let mut al: Vec<(String, f64)> = alarms.iter().map(|a| (format!("{{state=\"{a}\"}}"), f64::from(u8::from(m.alarm == *a)))).collect();
+    if !alarms.contains(&m.alarm.as_str()) {
+        al.push((format!("{{state=\"{}\"}}", label(&m.alarm)), 1.0));
+    }
+    metric("nephocast_alarm_state", "gauge", "The ramp alarm's state (1 for the current one; advisory).", al);
+    metric(
+        "nephocast_health_state",
+        "gauge",
+        "The health state (1 for the current one).",
+        HealthState::ALL.iter().map(|h| (format!("{{state=\"{}\"}}", h.name()), f64::from(u8::from(*h == m.health)))).collect(),
+    );
+    metric("nephocast_data_valid", "gauge", "1 when the forecasts come from a fresh frame.", vec![(String::new(), f64::from(u8::from(m.health.data_valid())))]);
+    metric("nephocast_heartbeat_total", "counter", "Health timer evaluations.", vec![(String::new(), m.heartbeat as f64)]);
+    let nan = f64::NAN;
+    metric("nephocast_frame_age_seconds", "gauge", "Age of the newest frame read (NaN: none).", vec![(String::new(), m.frame_age_s.unwrap_or(nan))]);
+    metric("nephocast_measurement_age_seconds", "gauge", "Age of the newest measurement (NaN: none).", vec![(String::new(), m.measurement_age_s.unwrap_or(nan))]);
+    s
+}
+
+/// One log line: key=value pairs (values with spaces or quotes quoted), or a JSON object.
+pub fn log_line(fields: &[(&str, String)], json: bool) -> String {
+    if json {
+        let o: serde_json::Map<String, serde_json::Value> = fields.iter().map(|(k, v)| ((*k).to_string(), serde_json::Value::String(v.clone()))).collect();
+        return serde_json::Value::Object(o).to_string();
+    }
+    fields
+        .iter()
+        .map(|(k, v)| if v.is_empty() || v.contains([' ', '"', '=']) { format!("{k}={v:?}") } else { format!("{k}={v}") })
+        .collect::<Vec<_>>()
+        .join(" ")
+}
+
+/// A time for the log.
+pub fn log_time(t: &DateTime<Utc>) -> String {
+    fmt_time(t)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn inputs() -> HealthInputs {
+        HealthInputs { uptime_s: 1000.0, frame_age_s: Some(10.0), since_frame_read_s: Some(5.0), measurement_age_s: Some(30.0), feed: true }
+    }
+
+    #[test]
+    fn health_states() {
+        let o = HealthOptions { frame_interval_s: 10.0, ..Default::default() };
+        assert_eq!(evaluate(&inputs(), &o), HealthState::Ok);
+        assert_eq!(evaluate(&HealthInputs { frame_age_s: Some(80.5), ..inputs() }, &o), HealthState::Stale);
+        assert_eq!(evaluate(&HealthInputs { frame_age_s: Some(79.5), ..inputs() }, &o), HealthState::Ok);
+        assert_eq!(evaluate(&HealthInputs { since_frame_read_s: Some(601.0), ..inputs() }, &o), HealthState::CameraDown);
+        assert_eq!(evaluate(&HealthInputs { measurement_age_s: None, ..inputs() }, &o), HealthState::NoMeasurements);
+        assert_eq!(evaluate(&HealthInputs { measurement_age_s: Some(901.0), feed: false, ..inputs() }, &o), HealthState::Ok);
+        assert_eq!(evaluate(&HealthInputs { uptime_s: 5.0, frame_age_s: None, since_frame_read_s: None, ..inputs() }, &o), HealthState::Starting);
+        assert!(HealthState::NoMeasurements.data_valid() && !HealthState::Stale.data_valid());
+    }
+
+    #[test]
+    fn feed_reads_appended_lines_keeps_partial_line_and_survives_truncation() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("m.csv");
+        let site = crate::config::Site::load(&Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/site.toml")).unwrap().file;
+        std::fs::write(&p, "time_utc,ghi_a_wm2\n2026-06-14T10:00:00Z,500\n2026-06-14T10:01:00Z,5").unwrap();
+        let mut f = MeasurementFeed::new(&p);
+        let r = f.poll(&site);
+        assert_eq!(r.pieces.len(), 1);
+        assert_eq!(r.pieces[0].0.times.len(), 1);
+        use std::io::Write;
+        let mut h = std::fs::OpenOptions::new().append(true).open(&p).unwrap();
+        h.write_all(b"10\n2026-06-14T10:02:00Z,520\n").unwrap();
+        let r = f.poll(&site);
+        assert_eq!(r.pieces[0].0.times.len(), 2);
+        assert_eq!(r.pieces[0].0.columns[0][0], 510.0);
+        assert_eq!(r.pieces[0].0.lines, vec![3, 4]);
+        std::fs::write(&p, "time_utc,ghi_a_wm2\n2026-06-14T10:03:00Z,530\n").unwrap();
+        let r = f.poll(&site);
+        assert!(r.notes.iter().any(|n| n.contains("truncated")), "{:?}", r.notes);
+        assert_eq!(r.pieces[0].0.times.len(), 1);
+        // A bad line is named and skipped.
+        std::fs::OpenOptions::new().append(true).open(&p).unwrap().write_all(b"2026-06-14T10:04:00Z,abc\n").unwrap();
+        let r = f.poll(&site);
+        assert!(r.pieces.is_empty() && r.notes[0].contains("line 3"), "{:?}", r.notes);
+    }
+
+    #[test]
+    fn archive_pruning_removes_only_old_dated_folders() {
+        let d = tempfile::tempdir().unwrap();
+        for n in ["2026-06-01", "2026-06-10", "2026-06-14", "notes"] {
+            std::fs::create_dir_all(d.path().join(n)).unwrap();
+        }
+        let today = chrono::NaiveDate::from_ymd_opt(2026, 6, 14).unwrap();
+        let gone = prune_archive(d.path(), 7, today);
+        assert_eq!(gone, vec![d.path().join("2026-06-01")]);
+        assert!(d.path().join("2026-06-10").is_dir() && d.path().join("notes").is_dir());
+    }
+
+    #[test]
+    fn metrics_lines_are_well_formed() {
+        let mut m = MetricsInput { alarm: "calm".into(), ..Default::default() };
+        m.latency.observe(0.2);
+        m.rejected.insert("sun too \"low\"".into(), 2);
+        for l in metrics_text(&m).lines().filter(|l| !l.starts_with('#')) {
+            let (name, v) = l.rsplit_once(' ').unwrap();
+            assert!(v.parse::<f64>().is_ok() || v == "NaN", "{l}");
+            assert!(name.starts_with("nephocast_"), "{l}");
+        }
+    }
+
+    #[test]
+    fn log_line_quotes() {
+        assert_eq!(log_line(&[("a", "1".into()), ("b", "x y".into())], false), "a=1 b=\"x y\"");
+        assert_eq!(log_line(&[("a", "1".into())], true), "{\"a\":\"1\"}");
+    }
+}
