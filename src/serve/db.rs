@@ -150,11 +150,7 @@ pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
 /// A database error.
 pub fn last_state(c: &Connection) -> rusqlite::Result<Option<AlarmState>> {
     let s: Option<String> = c.query_row("SELECT to_state FROM alarms ORDER BY id DESC LIMIT 1", [], |r| r.get(0)).ok();
-    Ok(s.map(|s| match s.as_str() {
-        "alert" => AlarmState::Alert,
-        "watch" => AlarmState::Watch,
-        _ => AlarmState::Calm,
-    }))
+    Ok(s.map(|s| AlarmState::from_name(&s).unwrap_or(AlarmState::Calm)))
 }
 
 /// What became of an acknowledgement.

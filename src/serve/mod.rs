@@ -96,6 +96,9 @@ pub struct Health {
     pub latency_ms_p95: Option<f64>,
     /// Current alarm state.
     pub alarm: String,
+    /// False while the alarm state has no nowcast behind it (before the first nowcast, or restored
+    /// after a restart until the next one).
+    pub alarm_current: bool,
     /// Engine running.
     pub running: bool,
 }
@@ -188,6 +191,8 @@ fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
             "speed_mps": l.motion.v_mps[0].hypot(l.motion.v_mps[1]), "toward_deg": l.motion.v_mps[0].atan2(l.motion.v_mps[1]).to_degrees().rem_euclid(360.0),
             "thick_share": l.thick_share})).collect::<Vec<_>>(),
         "alarm": nc.alarm.name(),
+        "alarm_reason": nc.alarm_reason,
+        "alarm_basis": nc.alarm_basis,
         "ramps": nc.ramps,
         "forecast": rows,
         "advisory": "Forecasts and alarms are advisory, not a protection system.",
@@ -525,6 +530,7 @@ fn engine_loop(
             s.health.clock_reanchors = nc.counters.clock_reanchors;
             s.health.frames_changed = watch.changed;
             s.health.alarm = nc.alarm_state().name().into();
+            s.health.alarm_current = nc.alarm_current();
             if result.is_ok() {
                 s.latencies.push_back(latency);
                 if s.latencies.len() > 500 {
@@ -581,9 +587,9 @@ fn db_error(message: String) -> Response {
 }
 
 async fn api_alarms(State(app): State<App>) -> Response {
-    let state = app.shared.lock().map(|s| s.health.alarm.clone()).unwrap_or_default();
+    let (state, current) = app.shared.lock().map(|s| (s.health.alarm.clone(), s.health.alarm_current)).unwrap_or_default();
     match with_db(&app, |c| db::alarms(c, 200)) {
-        Ok(log) => Json(serde_json::json!({"state": state, "log": log, "ack_enabled": app.token.is_some()})).into_response(),
+        Ok(log) => Json(serde_json::json!({"state": state, "current": current, "log": log, "ack_enabled": app.token.is_some()})).into_response(),
         Err(e) => db_error(e),
     }
 }
