@@ -451,7 +451,7 @@ impl Alarm {
             (AlarmState::Watch, Some(b)) => format!("{} within the forecast's reach", describe_ramp(&b.ramp, &b.start, t)),
             (AlarmState::Alert, Some(b)) => format!("{} within the {:.0}-min alert window", describe_ramp(&b.ramp, &b.start, t), p.alert_lead_min),
             (AlarmState::Variable, Some(b)) => format!(
-                "variable sky: {} distinct ramps of probability ≥ {:.2} within {:.0} min forecast in the last {:.0} min; latest {}",
+                "variable sky: {} distinct ramps of probability ≥ {:.2} within {:.0} min forecast in the last {:.0} min; now citing the {}",
                 self.seen.len(),
                 p.alert_probability,
                 p.alert_lead_min,
