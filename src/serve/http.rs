@@ -67,6 +67,8 @@ pub struct ServerOptions {
     pub tls: Option<TlsFiles>,
     /// The acknowledgement rate limiter's limits.
     pub ack_limits: AckLimits,
+    /// Where alarm-state changes are POSTed (none: no notifications).
+    pub webhook: Option<super::notify::WebhookOptions>,
 }
 
 impl Default for ServerOptions {
@@ -80,6 +82,7 @@ impl Default for ServerOptions {
             allow_non_loopback: false,
             tls: None,
             ack_limits: AckLimits::default(),
+            webhook: None,
         }
     }
 }

@@ -27,6 +27,7 @@
 pub mod db;
 pub mod guard;
 pub mod http;
+pub mod notify;
 
 pub use http::{ServerOptions, TlsFiles};
 
@@ -253,6 +254,7 @@ fn router(app: App, allowed: Arc<Vec<String>>) -> Router {
         .route("/api/nowcast", get(api_nowcast))
         .route("/api/alarms", get(api_alarms))
         .route("/api/alarms/ack", post(api_ack))
+        .route("/api/alarms/shelve", post(api_shelve))
         .route("/api/health", get(api_health))
         .route("/api/history", get(api_history))
         .route("/api/events", get(api_events))
@@ -341,8 +343,12 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
         });
         rt.shutdown_timeout(std::time::Duration::from_secs(1));
     });
+    let notifier = match opts.server.webhook.clone() {
+        Some(w) => Some(notify::Notifier::start(w).map_err(|e| anyhow::anyhow!("{e}"))?),
+        None => None,
+    };
     let stop2 = stop.clone();
-    let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2));
+    let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2, notifier));
     Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), server: Some(server), shutdown: Some(sd_tx) })
 }
 
@@ -439,6 +445,7 @@ fn engine_loop(
     shared: Arc<Mutex<Shared>>,
     tx: broadcast::Sender<String>,
     stop: Arc<AtomicBool>,
+    notifier: Option<notify::Notifier>,
 ) {
     let mut watch = Watcher::default();
     let intake = nc.intake_options();
@@ -512,7 +519,17 @@ fn engine_loop(
                 };
                 let _ = db::insert_history(&conn, n.time.timestamp(), &h, opts.keep_s);
                 if let Some(ch) = &n.alarm_change {
-                    let _ = db::insert_alarm(&conn, ch);
+                    let id = db::insert_alarm(&conn, ch).ok();
+                    if let Some(nf) = &notifier {
+                        // Held back while shelved (the change is still logged and shown).
+                        match db::active_shelf(&conn, Utc::now()) {
+                            Ok(Some(shelf)) => eprintln!("alarm {} -> {} not notified: shelved until {} by {}", ch.from.name(), ch.to.name(), shelf.until_utc, shelf.shelved_by),
+                            _ => {
+                                nf.send(serde_json::json!({"type": "alarm_change", "id": id, "change": ch, "basis": n.alarm_basis, "current": true,
+                                    "advisory": "Forecasts and alarms are advisory, not a protection system."}).to_string());
+                            }
+                        }
+                    }
                     events.push(serde_json::json!({"type": "alarm", "change": ch}).to_string());
                 }
                 events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name()}).to_string());
@@ -588,8 +605,10 @@ fn db_error(message: String) -> Response {
 
 async fn api_alarms(State(app): State<App>) -> Response {
     let (state, current) = app.shared.lock().map(|s| (s.health.alarm.clone(), s.health.alarm_current)).unwrap_or_default();
-    match with_db(&app, |c| db::alarms(c, 200)) {
-        Ok(log) => Json(serde_json::json!({"state": state, "current": current, "log": log, "ack_enabled": app.token.is_some()})).into_response(),
+    match with_db(&app, |c| Ok((db::alarms(c, 200)?, db::active_shelf(c, Utc::now())?, db::shelves(c, 20)?))) {
+        Ok((log, shelved, shelvings)) => {
+            Json(serde_json::json!({"state": state, "current": current, "shelved": shelved, "shelvings": shelvings, "log": log, "ack_enabled": app.token.is_some()})).into_response()
+        }
         Err(e) => db_error(e),
     }
 }
@@ -614,11 +633,16 @@ fn ack_error(code: StatusCode, message: impl Into<String>) -> Response {
     (code, Json(serde_json::json!({"error": message.into()}))).into_response()
 }
 
-/// Acknowledge an alarm: rate-limited per client and globally, the body bounded in size and
-/// time, the token compared in constant time, and only the first acknowledgement kept.
-async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::ClientAddr>>, headers: axum::http::HeaderMap, body: axum::body::Body) -> Response {
-    let Some(token) = app.token else {
-        return ack_error(StatusCode::FORBIDDEN, "acknowledging is off: start with an acknowledgement token");
+/// The guards every operator action passes: acknowledging on, rate limit per client and globally,
+/// JSON body bounded in size and time. Returns the body, the token digest and the client.
+async fn guarded_body(
+    app: &App,
+    client: Option<axum::Extension<http::ClientAddr>>,
+    headers: &axum::http::HeaderMap,
+    body: axum::body::Body,
+) -> Result<(axum::body::Bytes, guard::TokenDigest, std::net::IpAddr), Response> {
+    let Some(token) = app.token.clone() else {
+        return Err(ack_error(StatusCode::FORBIDDEN, "acknowledging is off: start with an acknowledgement token"));
     };
     let ip = client.map(|c| c.0.0.ip()).unwrap_or(std::net::IpAddr::V4(std::net::Ipv4Addr::UNSPECIFIED));
     if let Err(wait) = app.limiter.admit(ip, std::time::Instant::now()) {
@@ -627,20 +651,31 @@ async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::Cl
         if let Ok(v) = header::HeaderValue::from_str(&secs.to_string()) {
             r.headers_mut().insert(header::RETRY_AFTER, v);
         }
-        return r;
+        return Err(r);
     }
     let json_type = headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).is_some_and(|v| v.trim().to_ascii_lowercase().starts_with("application/json"));
     if !json_type {
-        return ack_error(StatusCode::UNSUPPORTED_MEDIA_TYPE, "Content-Type: expected application/json");
+        return Err(ack_error(StatusCode::UNSUPPORTED_MEDIA_TYPE, "Content-Type: expected application/json"));
     }
     let declared = headers.get(header::CONTENT_LENGTH).and_then(|v| v.to_str().ok()).and_then(|v| v.parse::<u64>().ok());
     if declared.is_some_and(|n| n > ACK_BODY_MAX_BYTES as u64) {
-        return ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes"));
+        return Err(ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes")));
     }
     let bytes = match tokio::time::timeout(app.body_timeout, axum::body::to_bytes(body, ACK_BODY_MAX_BYTES)).await {
-        Err(_) => return ack_error(StatusCode::REQUEST_TIMEOUT, format!("request body: not complete within {:.0} s", app.body_timeout.as_secs_f64())),
-        Ok(Err(_)) => return ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes")),
+        Err(_) => return Err(ack_error(StatusCode::REQUEST_TIMEOUT, format!("request body: not complete within {:.0} s", app.body_timeout.as_secs_f64()))),
+        Ok(Err(_)) => return Err(ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes"))),
         Ok(Ok(b)) => b,
+    };
+    Ok((bytes, token, ip))
+}
+
+/// Acknowledge an alarm: rate-limited per client and globally, the body bounded in size and
+/// time, the token compared in constant time, and only the first acknowledgement kept. Recorded
+/// in wall time and on the frame clock (the newest frame's time).
+async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::ClientAddr>>, headers: axum::http::HeaderMap, body: axum::body::Body) -> Response {
+    let (bytes, token, ip) = match guarded_body(&app, client, &headers, body).await {
+        Ok(x) => x,
+        Err(r) => return r,
     };
     let req: AckRequest = match serde_json::from_slice(&bytes) {
         Ok(r) => r,
@@ -655,7 +690,8 @@ async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::Cl
         return ack_error(StatusCode::FORBIDDEN, "wrong token");
     }
     app.limiter.succeeded(ip);
-    match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()))) {
+    let frame = app.shared.lock().ok().and_then(|s| s.last_time).map(|t| fmt_time(&t));
+    match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()), frame.as_deref())) {
         Ok(db::AckOutcome::Acked) => {
             let _ = app.tx.send(serde_json::json!({"type": "ack", "id": req.id}).to_string());
             Json(serde_json::json!({"acked": req.id, "by": by})).into_response()
@@ -669,6 +705,51 @@ async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::Cl
         )
             .into_response(),
         Ok(db::AckOutcome::NoSuchAlarm) => ack_error(StatusCode::NOT_FOUND, format!("id: no alarm {}", req.id)),
+        Err(e) => db_error(e),
+    }
+}
+
+#[derive(serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ShelveRequest {
+    minutes: f64,
+    token: String,
+    #[serde(default)]
+    by: String,
+}
+
+/// Longest shelving \[min\].
+pub const SHELVE_MAX_MIN: f64 = 480.0;
+
+/// Shelve the alarm's notifications for a while (the state still changes and is logged and shown):
+/// the same guards as acknowledging; recorded append-only in wall time and on the frame clock.
+async fn api_shelve(State(app): State<App>, client: Option<axum::Extension<http::ClientAddr>>, headers: axum::http::HeaderMap, body: axum::body::Body) -> Response {
+    let (bytes, token, ip) = match guarded_body(&app, client, &headers, body).await {
+        Ok(x) => x,
+        Err(r) => return r,
+    };
+    let req: ShelveRequest = match serde_json::from_slice(&bytes) {
+        Ok(r) => r,
+        Err(e) => return ack_error(StatusCode::BAD_REQUEST, format!("request body: expected {{\"minutes\": number, \"token\": string, \"by\": optional string}}: {e}")),
+    };
+    let by = match guard::check_by(&req.by) {
+        Ok(b) => b,
+        Err(e) => return ack_error(StatusCode::UNPROCESSABLE_ENTITY, e),
+    };
+    if !(req.minutes.is_finite() && req.minutes > 0.0 && req.minutes <= SHELVE_MAX_MIN) {
+        return ack_error(StatusCode::UNPROCESSABLE_ENTITY, format!("minutes: expected more than 0 and at most {SHELVE_MAX_MIN}, got {}", req.minutes));
+    }
+    if !guard::token_matches(&req.token, &token) {
+        app.limiter.failed(ip, std::time::Instant::now());
+        return ack_error(StatusCode::FORBIDDEN, "wrong token");
+    }
+    app.limiter.succeeded(ip);
+    let frame = app.shared.lock().ok().and_then(|s| s.last_time);
+    match with_db(&app, |c| db::shelve(c, &by, Utc::now(), frame, req.minutes)) {
+        Ok(row) => {
+            let _ = app.tx.send(serde_json::json!({"type": "shelve", "shelf": row}).to_string());
+            Json(serde_json::json!({"shelved": row})).into_response()
+        }
         Err(e) => db_error(e),
     }
 }
