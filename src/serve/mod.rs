@@ -641,7 +641,7 @@ async fn guarded_body(
     headers: &axum::http::HeaderMap,
     body: axum::body::Body,
 ) -> Result<(axum::body::Bytes, guard::TokenDigest, std::net::IpAddr), Response> {
-    let Some(token) = app.token.clone() else {
+    let Some(token) = app.token else {
         return Err(ack_error(StatusCode::FORBIDDEN, "acknowledging is off: start with an acknowledgement token"));
     };
     let ip = client.map(|c| c.0.0.ip()).unwrap_or(std::net::IpAddr::V4(std::net::Ipv4Addr::UNSPECIFIED));
