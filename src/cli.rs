@@ -88,6 +88,11 @@ pub struct LiveArgs {
     /// taken from the command line, where `ps` shows it. Without one, acknowledging is off.
     #[arg(long, value_name = "PATH")]
     pub ack_token_file: Option<PathBuf>,
+    /// File holding the webhook URL (one line, `http://host[:port]/path[?query]`) that alarm-state
+    /// changes are POSTed to as JSON, with retries; a file because the URL may carry a token. Logs
+    /// show it without its query. Without one, no notifications.
+    #[arg(long, value_name = "PATH")]
+    pub webhook_url_file: Option<PathBuf>,
     /// Also allow this name (or IP literal) in the Host header; repeat for several. Loopback
     /// names are always allowed.
     #[arg(long = "allow-host", value_name = "NAME")]
@@ -523,6 +528,13 @@ pub fn run(cli: Cli) -> Result<()> {
                     max_frame_age_s: a.modbus_max_frame_age_s,
                     ..Default::default()
                 }),
+                webhook: match &a.webhook_url_file {
+                    Some(p) => {
+                        let text = std::fs::read_to_string(p).map_err(|e| anyhow::anyhow!("--webhook-url-file {}: {e}", p.display()))?;
+                        Some(crate::serve::notify::WebhookOptions::new(text.trim()))
+                    }
+                    None => None,
+                },
                 ..Default::default()
             };
             let health = crate::serve::ops::HealthOptions {

@@ -142,6 +142,10 @@ pub struct Nowcast {
     pub alarm: crate::ramp::AlarmState,
     /// The alarm change this frame caused, if any.
     pub alarm_change: Option<crate::ramp::AlarmChange>,
+    /// Why the alarm is in its state (cites the ramp behind it).
+    pub alarm_reason: String,
+    /// The ramp behind the alarm state, if any.
+    pub alarm_basis: Option<crate::ramp::AlarmBasis>,
     /// Transmittance settings used (after tuning).
     pub irradiance: IrradianceParams,
     /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
@@ -332,12 +336,17 @@ impl Nowcaster {
 
     /// Restore the alarm state (live mode, after a restart).
     pub fn restore_alarm(&mut self, state: crate::ramp::AlarmState) {
-        self.alarm.state = state;
+        self.alarm = crate::ramp::Alarm::restored(state);
     }
 
     /// Current alarm state.
     pub fn alarm_state(&self) -> crate::ramp::AlarmState {
         self.alarm.state
+    }
+
+    /// False while the alarm state is restored and no nowcast has confirmed it yet.
+    pub fn alarm_current(&self) -> bool {
+        self.alarm.current
     }
 
     /// The plant.
@@ -695,7 +704,7 @@ impl Nowcaster {
             .map(|k| members.iter().filter_map(|m| m.rows.iter().filter(|r| r.target == "plant").nth(k).map(|r| r.irradiance.ghi_wm2)).collect())
             .collect();
         let t_ens = Clock::now();
-        let alarm_change = self.alarm.update(&frame.time, &ramps, &rp);
+        let alarm_change = self.alarm.update(&frame.time, &ramps, self.tracker.primary_accepted_run(), &rp);
         let t_fc = Clock::now();
         self.history.push_back((frame.time, map.clone(), features));
         self.last_time = Some(frame.time);
@@ -717,6 +726,8 @@ impl Nowcaster {
             ramps,
             alarm: self.alarm.state,
             alarm_change,
+            alarm_reason: self.alarm.reason().to_string(),
+            alarm_basis: self.alarm.basis().cloned(),
             irradiance: self.irradiance,
             band_scale: [300, 600, 900].map(|h| self.band_calibration.scale(h)),
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },

@@ -11,9 +11,11 @@
 //! direction within `match_window_min` of it.
 //!
 //! **Alarm states** (own names): `calm` → `caution` (a ramp is likely within the forecast's reach) →
-//! `alert` (a ramp is likely within `alert_lead_min`). States rise at once; they fall only when the
-//! probability has dropped `release_margin` below the threshold that raised them and the state has
-//! been held `min_hold_s`, so they do not chatter.
+//! `alert` (a ramp is likely within `alert_lead_min`) and `variable` (distinct likely ramps keep
+//! coming: a state of its own that holds through broken cloud instead of an alert that never
+//! clears). No state rises before the motion is confirmed; each state holds the ramp that
+//! justifies it and cites it; see [`Alarm`] for the dwell and hysteresis. Alarms are advisory, not
+//! a protection system.
 
 use std::path::Path;
 
@@ -42,6 +44,17 @@ pub struct RampParams {
     pub min_hold_s: f64,
     /// Ensemble members agree on a ramp when their starts are this close \[min\]; default 2.
     pub match_window_min: f64,
+    /// No state above `calm` until the forecast's motion stands on this many consistent
+    /// measurements in a row (accepted by the motion filter's gate); default 3.
+    pub motion_confirm_measurements: u32,
+    /// Window over which distinct alert-level ramps are counted for `variable` \[min\]; default 30.
+    pub variable_window_min: f64,
+    /// Distinct alert-level ramps within the window that make the sky `variable`; default 3.
+    pub variable_enter_ramps: u32,
+    /// `variable` falls once no alert-level ramp has been forecast for this long \[min\]; default 15.
+    pub variable_release_min: f64,
+    /// `variable` is held at least this long \[min\]; default 20.
+    pub variable_min_dwell_min: f64,
 }
 
 impl Default for RampParams {
@@ -55,6 +68,11 @@ impl Default for RampParams {
             release_margin: 0.1,
             min_hold_s: 120.0,
             match_window_min: 2.0,
+            motion_confirm_measurements: 3,
+            variable_window_min: 30.0,
+            variable_enter_ramps: 3,
+            variable_release_min: 15.0,
+            variable_min_dwell_min: 20.0,
         }
     }
 }
@@ -72,7 +90,12 @@ impl RampParams {
         check_range(file, "ramps.alert_lead_min", self.alert_lead_min, 0.0, 60.0)?;
         check_range(file, "ramps.release_margin", self.release_margin, 0.0, 0.5)?;
         check_range(file, "ramps.min_hold_s", self.min_hold_s, 0.0, 3600.0)?;
-        check_range(file, "ramps.match_window_min", self.match_window_min, 0.0, 10.0)
+        check_range(file, "ramps.match_window_min", self.match_window_min, 0.0, 10.0)?;
+        check_range(file, "ramps.motion_confirm_measurements", self.motion_confirm_measurements as f64, 0.0, 100.0)?;
+        check_range(file, "ramps.variable_window_min", self.variable_window_min, 1.0, 240.0)?;
+        check_range(file, "ramps.variable_enter_ramps", self.variable_enter_ramps as f64, 2.0, 100.0)?;
+        check_range(file, "ramps.variable_release_min", self.variable_release_min, 0.0, 240.0)?;
+        check_range(file, "ramps.variable_min_dwell_min", self.variable_min_dwell_min, 0.0, 240.0)
     }
 }
 
@@ -221,12 +244,16 @@ pub fn ramp_events(issue: &DateTime<Utc>, central: &[f64], members: &[Vec<f64>],
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum AlarmState {
-    /// No ramp expected.
+    /// No ramp expected (or motion not yet confirmed).
     Calm,
     /// A ramp is likely within the forecast's reach.
     Caution,
-    /// A ramp is likely soon.
+    /// A ramp is likely within the alert window.
     Alert,
+    /// Ramps keep coming: at least `variable_enter_ramps` distinct likely ramps within the alert
+    /// window over the last `variable_window_min`. Held until none has been forecast for
+    /// `variable_release_min`.
+    Variable,
 }
 
 impl AlarmState {
@@ -236,7 +263,19 @@ impl AlarmState {
             AlarmState::Calm => "calm",
             AlarmState::Caution => "caution",
             AlarmState::Alert => "alert",
+            AlarmState::Variable => "variable",
         }
+    }
+
+    /// The state of a name written by [`AlarmState::name`].
+    pub fn from_name(s: &str) -> Option<AlarmState> {
+        Some(match s {
+            "calm" => AlarmState::Calm,
+            "caution" => AlarmState::Caution,
+            "alert" => AlarmState::Alert,
+            "variable" => AlarmState::Variable,
+            _ => return None,
+        })
     }
 }
 
@@ -255,57 +294,182 @@ pub struct AlarmChange {
     pub reason: String,
 }
 
-/// The alarm state machine with hysteresis and minimum hold.
+/// The ramp that justifies the current state, as the alarm holds it.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct AlarmBasis {
+    /// The ramp (from the forecast that set or last confirmed it).
+    pub ramp: RampEvent,
+    /// Its expected start.
+    #[serde(skip)]
+    pub start: DateTime<Utc>,
+}
+
+/// Words for a ramp as seen at `now`: direction, MW and % of capacity, expected start, lead from
+/// `now`, probability.
+pub fn describe_ramp(e: &RampEvent, start: &DateTime<Utc>, now: &DateTime<Utc>) -> String {
+    let lead_s = (*start - *now).num_milliseconds() as f64 / 1000.0;
+    let when = if lead_s >= 0.0 { format!("lead {lead_s:.0} s") } else { format!("began {:.0} s ago", -lead_s) };
+    format!(
+        "{} ramp of {:.2} MW ({:.0} % of capacity) expected at {} ({when}, probability {:.2})",
+        match e.direction {
+            Direction::Up => "up",
+            Direction::Down => "down",
+        },
+        e.change_kw.abs() / 1000.0,
+        e.change_pct.abs(),
+        crate::io::fmt_time(start),
+        e.probability
+    )
+}
+
+/// The alarm state machine.
+///
+/// * No state above `calm` rises before the motion is confirmed (the caller says so: the tracker's
+///   first layer has `motion_confirm_measurements` consistent measurements in a row).
+/// * `alert` is held by a ramp of probability ≥ `alert_probability` within `alert_lead_min`
+///   (its *basis*); a later such ramp replaces it. It falls once its basis has begun more than
+///   `window_min` ago with no new one, or once `min_hold_s` has passed and no ramp within the
+///   window reaches `alert_probability − release_margin`.
+/// * `variable` rises when `variable_enter_ramps` distinct alert-level ramps (told apart by
+///   direction and expected start more than `match_window_min` apart) were forecast over the last
+///   `variable_window_min`, and falls once none has been forecast for `variable_release_min`
+///   (and it has been held `variable_min_dwell_min`).
+/// * `caution` (a ramp of probability ≥ `caution_probability` anywhere in the forecast) falls after
+///   `min_hold_s` when no ramp reaches `caution_probability − release_margin`.
+///
+/// The reason always cites the basis of the current state, inside that state's window.
 #[derive(Debug, Clone)]
 pub struct Alarm {
     /// Current state.
     pub state: AlarmState,
+    /// False until a forecast has been through [`Alarm::update`] (a new alarm, or a state restored
+    /// after a restart): the state then has no forecast behind it.
+    pub current: bool,
     since: Option<DateTime<Utc>>,
+    basis: Option<AlarmBasis>,
+    reason: String,
+    /// Distinct alert-level ramps seen: expected start, direction, when last forecast.
+    seen: Vec<(DateTime<Utc>, Direction, DateTime<Utc>)>,
+    last_alert_level: Option<DateTime<Utc>>,
 }
 
 impl Default for Alarm {
     fn default() -> Self {
-        Self { state: AlarmState::Calm, since: None }
+        Self { state: AlarmState::Calm, current: false, since: None, basis: None, reason: "no forecast yet".into(), seen: vec![], last_alert_level: None }
     }
 }
 
+fn secs(a: &DateTime<Utc>, b: &DateTime<Utc>) -> f64 {
+    (*a - *b).num_milliseconds() as f64 / 1000.0
+}
+
 impl Alarm {
-    /// Update from a forecast's ramp events; returns the change, if any.
-    pub fn update(&mut self, t: &DateTime<Utc>, events: &[RampEvent], p: &RampParams) -> Option<AlarmChange> {
-        let p_any = events.iter().map(|e| e.probability).fold(0.0, f64::max);
-        let soon: Vec<&RampEvent> = events.iter().filter(|e| e.lead_time_s <= p.alert_lead_min * 60.0).collect();
-        let p_soon = soon.iter().map(|e| e.probability).fold(0.0, f64::max);
-        let raise = if p_soon >= p.alert_probability {
-            AlarmState::Alert
-        } else if p_any >= p.caution_probability {
-            AlarmState::Caution
-        } else {
-            AlarmState::Calm
+    /// A state restored from a log: kept, but not current until a forecast confirms it.
+    pub fn restored(state: AlarmState) -> Alarm {
+        Alarm { state, current: false, reason: "restored after a restart; no nowcast yet".into(), ..Alarm::default() }
+    }
+
+    /// Why the alarm is in its state, citing its basis.
+    pub fn reason(&self) -> &str {
+        &self.reason
+    }
+
+    /// The ramp behind the current state, if any.
+    pub fn basis(&self) -> Option<&AlarmBasis> {
+        self.basis.as_ref()
+    }
+
+    /// Update from a forecast's ramp events; `confirmed_measurements` is the number of consistent
+    /// motion measurements behind the forecast. Returns the change, if any.
+    pub fn update(&mut self, t: &DateTime<Utc>, events: &[RampEvent], confirmed_measurements: usize, p: &RampParams) -> Option<AlarmChange> {
+        self.current = true;
+        let confirmed = confirmed_measurements >= p.motion_confirm_measurements as usize;
+        let none: [RampEvent; 0] = [];
+        let events = if confirmed { events } else { &none };
+        let start_of = |e: &RampEvent| *t + chrono::Duration::milliseconds((e.lead_time_s * 1000.0) as i64);
+        let lead_s = p.alert_lead_min * 60.0;
+        let best = |min_p: f64, max_lead_s: f64| {
+            events
+                .iter()
+                .filter(|e| e.probability >= min_p && e.lead_time_s <= max_lead_s)
+                .max_by(|a, b| a.probability.total_cmp(&b.probability).then(b.lead_time_s.total_cmp(&a.lead_time_s)))
         };
-        let held = self.since.map(|s| (*t - s).num_milliseconds() as f64 / 1000.0 >= p.min_hold_s).unwrap_or(true);
-        let next = if raise > self.state {
-            raise
-        } else if raise < self.state && held {
-            // Fall only below the release level of the current state.
-            match self.state {
-                AlarmState::Alert if p_soon < p.alert_probability - p.release_margin => {
-                    if p_any >= p.caution_probability { AlarmState::Caution } else { AlarmState::Calm }
-                }
-                AlarmState::Caution if p_any < p.caution_probability - p.release_margin => AlarmState::Calm,
-                s => s,
+        let soon = best(p.alert_probability, lead_s);
+        // Distinct alert-level ramps over the variable window.
+        for e in events.iter().filter(|e| e.probability >= p.alert_probability && e.lead_time_s <= lead_s) {
+            let s = start_of(e);
+            match self.seen.iter_mut().find(|(s0, d, _)| *d == e.direction && secs(&s, s0).abs() <= p.match_window_min * 60.0) {
+                Some(x) => *x = (s, e.direction, *t),
+                None => self.seen.push((s, e.direction, *t)),
             }
-        } else {
-            self.state
+        }
+        let window_s = p.variable_window_min * 60.0;
+        self.seen.retain(|(_, _, seen)| secs(t, seen) <= window_s);
+        if soon.is_some() {
+            self.last_alert_level = Some(*t);
+        }
+        let held_s = self.since.map(|s| secs(t, &s)).unwrap_or(f64::INFINITY);
+        let any_caution = best(p.caution_probability, f64::INFINITY);
+        let lower = || if any_caution.is_some() { AlarmState::Caution } else { AlarmState::Calm };
+        let variable_now = self.seen.len() >= p.variable_enter_ramps as usize && soon.is_some();
+        let next = match self.state {
+            _ if variable_now => AlarmState::Variable,
+            AlarmState::Variable => {
+                let quiet_s = self.last_alert_level.map(|l| secs(t, &l)).unwrap_or(f64::INFINITY);
+                if quiet_s > p.variable_release_min * 60.0 && held_s >= p.variable_min_dwell_min * 60.0 { lower() } else { AlarmState::Variable }
+            }
+            _ if soon.is_some() => AlarmState::Alert,
+            AlarmState::Alert => {
+                let over = self.basis.as_ref().is_none_or(|b| secs(t, &b.start) > p.window_min as f64 * 60.0);
+                let released = held_s >= p.min_hold_s && best(p.alert_probability - p.release_margin, lead_s).is_none();
+                if over || released || !confirmed { lower() } else { AlarmState::Alert }
+            }
+            AlarmState::Caution | AlarmState::Calm if any_caution.is_some() => AlarmState::Caution,
+            AlarmState::Caution => {
+                let released = held_s >= p.min_hold_s && best(p.caution_probability - p.release_margin, f64::INFINITY).is_none();
+                if released || !confirmed { AlarmState::Calm } else { AlarmState::Caution }
+            }
+            AlarmState::Calm => AlarmState::Calm,
+        };
+        // The basis: the ramp that justifies the new state, from this forecast when it has one.
+        let pick = match next {
+            AlarmState::Alert | AlarmState::Variable => soon,
+            AlarmState::Caution => any_caution.or_else(|| best(p.caution_probability - p.release_margin, f64::INFINITY)),
+            AlarmState::Calm => None,
+        };
+        if let Some(e) = pick {
+            self.basis = Some(AlarmBasis { ramp: e.clone(), start: start_of(e) });
+        } else if next == AlarmState::Calm || next != self.state {
+            self.basis = None;
+        }
+        self.reason = match (next, &self.basis) {
+            (AlarmState::Calm, _) if !confirmed => format!(
+                "motion not confirmed yet ({confirmed_measurements} of {} consistent measurements); no alarm until it is",
+                p.motion_confirm_measurements
+            ),
+            (AlarmState::Calm, _) => format!("no ramp of probability ≥ {:.2} forecast", p.caution_probability),
+            (AlarmState::Caution, Some(b)) => format!("{} within the forecast's reach", describe_ramp(&b.ramp, &b.start, t)),
+            (AlarmState::Alert, Some(b)) => format!("{} within the {:.0}-min alert window", describe_ramp(&b.ramp, &b.start, t), p.alert_lead_min),
+            (AlarmState::Variable, Some(b)) => format!(
+                "variable sky: {} distinct ramps of probability ≥ {:.2} within {:.0} min forecast in the last {:.0} min; now citing the {}",
+                self.seen.len(),
+                p.alert_probability,
+                p.alert_lead_min,
+                p.variable_window_min,
+                describe_ramp(&b.ramp, &b.start, t)
+            ),
+            (s, None) => format!("{} (no ramp on record)", s.name()),
         };
         if next == self.state {
             return None;
         }
-        let lead = events
-            .iter()
-            .max_by(|a, b| a.probability.total_cmp(&b.probability))
-            .map(|e| format!("{} ramp of {:.0} % of capacity expected at {} (lead {:.0} s, probability {:.2})", match e.direction { Direction::Up => "up", Direction::Down => "down" }, e.change_pct.abs(), e.expected_start_utc, e.lead_time_s, e.probability))
-            .unwrap_or_else(|| "no ramp expected".into());
-        let ch = AlarmChange { time_utc: crate::io::fmt_time(t), from: self.state, to: next, probability: p_any, reason: lead };
+        let ch = AlarmChange {
+            time_utc: crate::io::fmt_time(t),
+            from: self.state,
+            to: next,
+            probability: self.basis.as_ref().map(|b| b.ramp.probability).unwrap_or(0.0),
+            reason: self.reason.clone(),
+        };
         self.state = next;
         self.since = Some(*t);
         Some(ch)
@@ -366,11 +530,8 @@ mod tests {
         assert_eq!(ev[0].lead_time_s, 240.0);
     }
 
-    #[test]
-    fn alarm_rises_at_once_and_falls_after_hold_with_margin() {
-        let p = RampParams::default();
-        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
-        let ev = |prob: f64, lead: f64| vec![RampEvent {
+    fn ev(prob: f64, lead: f64) -> Vec<RampEvent> {
+        vec![RampEvent {
             issue_time_utc: String::new(),
             expected_start_utc: String::new(),
             lead_time_s: lead,
@@ -378,18 +539,106 @@ mod tests {
             change_kw: -300.0,
             change_pct: -30.0,
             probability: prob,
-        }];
+        }]
+    }
+
+    #[test]
+    fn alarm_rises_at_once_and_falls_after_hold_with_margin() {
+        let p = RampParams::default();
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
         let mut a = Alarm::default();
-        assert_eq!(a.update(&t0, &ev(0.7, 300.0), &p).unwrap().to, AlarmState::Alert);
-        // 30 s later the probability dips a little: held (minimum hold and margin).
+        assert!(!a.current);
+        let ch = a.update(&t0, &ev(0.7, 300.0), 3, &p).unwrap();
+        assert_eq!(ch.to, AlarmState::Alert);
+        assert!(a.current);
+        assert!(ch.reason.contains("0.30 MW (30 % of capacity)") && ch.reason.contains("lead 300 s"), "{}", ch.reason);
+        // 30 s later the probability dips a little: held (minimum hold and margin); the reason
+        // still cites the ramp, its lead counted from now.
         let t1 = t0 + chrono::Duration::seconds(30);
-        assert!(a.update(&t1, &ev(0.55, 300.0), &p).is_none());
+        assert!(a.update(&t1, &ev(0.55, 270.0), 3, &p).is_none());
+        assert!(a.reason().contains("lead 270 s"), "{}", a.reason());
         // After the hold, still above the release level (0.5): stays.
         let t2 = t0 + chrono::Duration::seconds(200);
-        assert!(a.update(&t2, &ev(0.55, 300.0), &p).is_none());
+        assert!(a.update(&t2, &ev(0.55, 100.0), 3, &p).is_none());
         // Below it: falls to caution (0.45 ≥ 0.3).
-        assert_eq!(a.update(&t2, &ev(0.45, 300.0), &p).unwrap().to, AlarmState::Caution);
+        assert_eq!(a.update(&t2, &ev(0.45, 100.0), 3, &p).unwrap().to, AlarmState::Caution);
         let t3 = t2 + chrono::Duration::seconds(300);
-        assert_eq!(a.update(&t3, &[], &p).unwrap().to, AlarmState::Calm);
+        assert_eq!(a.update(&t3, &[], 3, &p).unwrap().to, AlarmState::Calm);
+    }
+
+    #[test]
+    fn no_alarm_before_motion_is_confirmed() {
+        let p = RampParams::default();
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let mut a = Alarm::default();
+        for k in 0..3 {
+            let t = t0 + chrono::Duration::seconds(30 * k as i64);
+            assert!(a.update(&t, &ev(0.9, 120.0), k, &p).is_none());
+            assert!(a.reason().contains("motion not confirmed"), "{}", a.reason());
+        }
+        assert_eq!(a.update(&(t0 + chrono::Duration::seconds(90)), &ev(0.9, 120.0), 3, &p).unwrap().to, AlarmState::Alert);
+    }
+
+    #[test]
+    fn alert_holds_only_while_its_ramp_is_within_the_window() {
+        // A ramp of 0.9 at 5 min lead; then forecasts show nothing. The alert holds its ramp until
+        // it has begun more than the ramp window ago, never citing one outside the window.
+        let p = RampParams { min_hold_s: 3600.0, ..RampParams::default() };
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let mut a = Alarm::default();
+        a.update(&t0, &ev(0.9, 300.0), 3, &p).unwrap();
+        for k in 1..=20 {
+            let t = t0 + chrono::Duration::seconds(30 * k);
+            a.update(&t, &[], 3, &p);
+            if a.state == AlarmState::Alert {
+                let b = a.basis().unwrap();
+                let lead_s = (b.start - t).num_seconds() as f64;
+                assert!(b.ramp.probability >= p.alert_probability && lead_s <= p.alert_lead_min * 60.0 && lead_s >= -(p.window_min as f64) * 60.0, "{lead_s}");
+            } else {
+                assert!(k * 30 > 300 + 60, "fell at {k}");
+                assert_eq!(a.state, AlarmState::Calm);
+                return;
+            }
+        }
+        panic!("the alert never fell");
+    }
+
+    #[test]
+    fn ramps_every_few_minutes_make_the_sky_variable_and_it_clears() {
+        // A new likely ramp every 4 minutes (each forecast 5 min ahead, for one minute) for an hour:
+        // alert, then variable, held through the hour; then quiet: back to calm.
+        let p = RampParams::default();
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let mut a = Alarm::default();
+        let mut changes = vec![];
+        for k in 0..240 {
+            let t = t0 + chrono::Duration::seconds(30 * k);
+            let in_cycle = k % 8;
+            let events = if k < 120 && in_cycle < 2 { ev(0.8, 300.0 - 30.0 * in_cycle as f64) } else { vec![] };
+            if let Some(c) = a.update(&t, &events, 3, &p) {
+                changes.push((k, c.to));
+            }
+            if a.state == AlarmState::Variable {
+                assert!(a.reason().starts_with("variable sky: "), "{}", a.reason());
+            }
+        }
+        // Two short alerts, then variable by the third ramp (minute 8), held until 15 min after
+        // the last ramp (frame 113): six changes in two hours.
+        let states: Vec<AlarmState> = changes.iter().map(|c| c.1).collect();
+        use AlarmState::*;
+        assert_eq!(states, [Alert, Calm, Alert, Calm, Variable, Calm], "{changes:?}");
+        assert_eq!(changes[4].0, 16);
+        assert!(changes[5].0 >= 113 + 30, "{changes:?}");
+    }
+
+    #[test]
+    fn a_restored_state_is_not_current_and_falls_without_a_ramp_behind_it() {
+        let p = RampParams::default();
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let mut a = Alarm::restored(AlarmState::Alert);
+        assert!(!a.current);
+        assert!(a.reason().contains("no nowcast yet"));
+        assert_eq!(a.update(&t0, &[], 3, &p).unwrap().to, AlarmState::Calm);
+        assert!(a.current);
     }
 }

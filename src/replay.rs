@@ -10,7 +10,9 @@
 //!   filtered vector, its uncertainty, speed and direction;
 //! * `ramps.csv` / `ramps.jsonl` — ramp events of every forecast: issue time, expected start, lead
 //!   time, direction, change in kW and % of AC capacity, probability (ensemble agreement);
-//! * `alarms.csv` — every change of alarm state, with the probability and the reason;
+//! * `alarms.csv` — every change of alarm state, with the probability and the reason, and the
+//!   ramp behind the new state (expected start, lead from the change, change in MW and % of AC
+//!   capacity, probability; empty for `calm`);
 //! * `ensemble_plant.csv` — the plant-mean GHI of every ensemble member per horizon (for CRPS);
 //! * `frames.csv` — per frame: status (`ok` or the rejection code), reason, cloud fraction, cloud base
 //!   height, sun elevation, and the time of each stage. Frames are read through [`crate::intake`]
@@ -252,7 +254,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
     let mut mo = CsvTable::with_header_line(MOTION_HEADER);
     let mut ramps = CsvTable::with_header_line("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability");
     let mut ramps_jsonl = String::new();
-    let mut alarms = CsvTable::with_header_line("time_utc,from,to,probability,reason");
+    let mut alarms = CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability");
     let mut members = CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2");
     let mut fr = CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min");
     let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
@@ -314,7 +316,21 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                         }
                     }
                     if let Some(c) = &nc.alarm_change {
-                        alarms.row([c.time_utc.to_string(), c.from.name().to_string(), c.to.name().to_string(), format!("{:.3}", c.probability), c.reason.clone()]);
+                        // The ramp behind the new state: its lead counted from this frame.
+                        let b = nc.alarm_basis.as_ref();
+                        let opt = |v: Option<String>| v.unwrap_or_default();
+                        alarms.row([
+                            c.time_utc.to_string(),
+                            c.from.name().to_string(),
+                            c.to.name().to_string(),
+                            format!("{:.3}", c.probability),
+                            c.reason.clone(),
+                            opt(b.map(|b| fmt_time(&b.start))),
+                            opt(b.map(|b| format!("{:.0}", (b.start - nc.time).num_milliseconds() as f64 / 1000.0))),
+                            opt(b.map(|b| format!("{:.3}", b.ramp.change_kw / 1000.0))),
+                            opt(b.map(|b| format!("{:.1}", b.ramp.change_pct))),
+                            opt(b.map(|b| format!("{:.3}", b.ramp.probability))),
+                        ]);
                     }
                     motion_row(&nc, &mut mo);
                     fr.row([

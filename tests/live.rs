@@ -124,6 +124,9 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     let a2 = json(h2.addr, "/api/alarms");
     assert_eq!(a2["log"].as_array().unwrap().len(), log.len());
     assert_eq!(a2["state"], alarms["state"]);
+    // Restored, but no nowcast behind it yet.
+    assert_eq!(a2["current"], false, "{a2}");
+    assert_eq!(alarms["current"], true, "{alarms}");
     assert!(a2["log"][0]["acked_utc"].is_string());
     assert_eq!(json(h2.addr, "/api/history").as_array().unwrap().len(), 8);
     h2.stop();

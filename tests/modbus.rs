@@ -193,7 +193,7 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
         assert_eq!(w[header("data_valid")], 1);
         let age = f64::from(u32_at(&w, header("frame_age_s")));
         assert!((age - health["last_frame_age_s"].as_f64().unwrap()).abs() <= 2.0, "{age} vs {health}");
-        let code = ["calm", "caution", "alert"].iter().position(|n| api["alarm"] == *n).unwrap() as u16;
+        let code = ["calm", "caution", "alert", "variable"].iter().position(|n| api["alarm"] == *n).unwrap() as u16;
         assert_eq!(w[header("alarm_code")], code);
         codes_seen.insert(code);
         let ramps = api["ramps"].as_array().unwrap();

@@ -348,3 +348,30 @@ fn https_serves_with_the_given_certificate() {
     assert!(e.contains("cert.pem") && e.contains("private key"), "{e}");
     h.stop();
 }
+
+#[test]
+fn shelving_takes_the_token_is_bounded_and_is_recorded() {
+    let d = tempfile::tempdir().unwrap();
+    let (h, _) = service_with_alarm(d.path(), ServerOptions::default());
+    let shelve = |body: &str| request(h.addr, "POST", "/api/alarms/shelve", Some("localhost"), "Content-Type: application/json\r\n", body);
+    assert_eq!(shelve(r#"{"minutes":30,"token":"wrong","by":"Ann"}"#).code, 403);
+    // Out of range: refused with the field named.
+    let long = shelve(&format!(r#"{{"minutes":100000,"token":"{TOKEN}","by":"Ann"}}"#));
+    assert!(long.code == 422 || long.code == 429, "{}", long.body);
+    let mut ok = shelve(&format!(r#"{{"minutes":30,"token":"{TOKEN}","by":"Ann"}}"#));
+    // A wrong token above may have locked this client out for a moment.
+    let t0 = std::time::Instant::now();
+    while ok.code == 429 && t0.elapsed() < Duration::from_secs(30) {
+        std::thread::sleep(Duration::from_millis(200));
+        ok = shelve(&format!(r#"{{"minutes":30,"token":"{TOKEN}","by":"Ann"}}"#));
+    }
+    assert_eq!(ok.code, 200, "{}", ok.body);
+    let alarms = request(h.addr, "GET", "/api/alarms", Some("localhost"), "", "");
+    let v: serde_json::Value = serde_json::from_str(&alarms.body).unwrap();
+    assert_eq!(v["shelved"]["shelved_by"], "Ann", "{v}");
+    assert!(v["shelved"]["until_utc"].is_string());
+    assert_eq!(v["shelvings"].as_array().unwrap().len(), 1);
+    // No frame yet: the state has no nowcast behind it.
+    assert_eq!(v["current"], false);
+    h.stop();
+}

@@ -455,6 +455,9 @@ pub struct MotionFilter {
     pub gated: usize,
     /// Measurements rejected in a row.
     gated_run: usize,
+    /// Measurements accepted in a row since the filter started or restarted (a gated one resets
+    /// it to 0).
+    accepted_run: usize,
 }
 
 /// After this many measurements in a row rejected by the gate, the filter restarts from the
@@ -477,6 +480,12 @@ impl MotionFilter {
         self.state.map(|(v, p)| Motion { v_mps: v, sigma_mps: p.sqrt() })
     }
 
+    /// Measurements accepted in a row by the gate since the filter started or last restarted:
+    /// how many consistent measurements the current estimate stands on.
+    pub fn accepted_run(&self) -> usize {
+        self.accepted_run
+    }
+
     /// Advance by `dt_s` and fold in a measured layer (if any).
     pub fn update(&mut self, m: Option<&LayerMotion>, dt_s: f64, params: &MotionParams) -> Option<Motion> {
         let meas = m.map(|l| (l.v_mps, l.spread_mps, l.blocks));
@@ -484,6 +493,7 @@ impl MotionFilter {
             (None, Some((v, spread, nb))) => {
                 let r = spread.powi(2) / nb.max(1) as f64 + 0.05;
                 self.state = Some((v, r.max(0.25)));
+                self.accepted_run = 1;
             }
             (Some((x, p)), Some((v, spread, nb))) => {
                 *p += params.filter_process_noise * dt_s;
@@ -492,13 +502,16 @@ impl MotionFilter {
                 let r_eff = if innov > 3.0 * (*p + r).sqrt() && *p < 1.0 {
                     self.gated += 1;
                     self.gated_run += 1;
+                    self.accepted_run = 0;
                     r * 25.0
                 } else {
                     self.gated_run = 0;
+                    self.accepted_run += 1;
                     r
                 };
                 if self.gated_run >= RESTART_AFTER_GATED {
                     self.gated_run = 0;
+                    self.accepted_run = 1;
                     self.state = Some((v, r.max(0.25)));
                 } else {
                     let k = *p / (*p + r_eff);
@@ -549,6 +562,12 @@ const PRIMARY_MARGIN: f64 = 0.01;
 impl LayerTracker {
     fn active(&self, k: usize) -> Option<Motion> {
         self.slots[k].filter.current()
+    }
+
+    /// Consistent measurements behind the forecast's first layer: the accepted run of the track
+    /// put first last time (0 before any motion is known).
+    pub fn primary_accepted_run(&self) -> usize {
+        if self.active(self.primary).is_some() { self.slots[self.primary].filter.accepted_run() } else { 0 }
     }
 
     /// Filtered motions to search around, the track with the most blocks first.

@@ -22,6 +22,18 @@ pub fn open(path: &Path) -> rusqlite::Result<Connection> {
          CREATE TABLE IF NOT EXISTS history (time_utc TEXT PRIMARY KEY, unix_s INTEGER NOT NULL, cloud_fraction REAL, plant_ghi_wm2 REAL, plant_power_kw REAL, speed_mps REAL, toward_deg REAL, alarm TEXT);
          CREATE INDEX IF NOT EXISTS history_unix ON history(unix_s);
          CREATE TRIGGER IF NOT EXISTS alarms_ack_once BEFORE UPDATE OF acked_utc, acked_by ON alarms
+           WHEN OLD.acked_utc IS NOT NULL BEGIN SELECT RAISE(ABORT, 'alarm already acknowledged'); END;
+         CREATE TABLE IF NOT EXISTS shelves (id INTEGER PRIMARY KEY, shelved_utc TEXT NOT NULL, shelved_frame_utc TEXT, until_utc TEXT NOT NULL, until_frame_utc TEXT, minutes REAL NOT NULL, shelved_by TEXT NOT NULL);
+         CREATE TRIGGER IF NOT EXISTS shelves_no_update BEFORE UPDATE ON shelves BEGIN SELECT RAISE(ABORT, 'shelving is append-only'); END;
+         CREATE TRIGGER IF NOT EXISTS shelves_no_delete BEFORE DELETE ON shelves BEGIN SELECT RAISE(ABORT, 'shelving is append-only'); END;",
+    )?;
+    // Logs from before the frame clock was recorded with acknowledgements.
+    let has_frame_col: bool = c.prepare("SELECT 1 FROM pragma_table_info('alarms') WHERE name = 'acked_frame_utc'")?.exists([])?;
+    if !has_frame_col {
+        c.execute_batch("ALTER TABLE alarms ADD COLUMN acked_frame_utc TEXT;")?;
+    }
+    c.execute_batch(
+        "CREATE TRIGGER IF NOT EXISTS alarms_ack_frame_once BEFORE UPDATE OF acked_frame_utc ON alarms
            WHEN OLD.acked_utc IS NOT NULL BEGIN SELECT RAISE(ABORT, 'alarm already acknowledged'); END;",
     )?;
     Ok(c)
@@ -121,6 +133,8 @@ pub struct AlarmRow {
     pub acked_utc: Option<String>,
     /// Who acknowledged it, if anyone did.
     pub acked_by: Option<String>,
+    /// The frame clock when it was acknowledged (the newest frame's time then), if known.
+    pub acked_frame_utc: Option<String>,
 }
 
 /// The most recent alarm log rows, newest first.
@@ -128,7 +142,7 @@ pub struct AlarmRow {
 /// # Errors
 /// A database error.
 pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
-    let mut st = c.prepare("SELECT id, time_utc, from_state, to_state, probability, reason, acked_utc, acked_by FROM alarms ORDER BY id DESC LIMIT ?1")?;
+    let mut st = c.prepare("SELECT id, time_utc, from_state, to_state, probability, reason, acked_utc, acked_by, acked_frame_utc FROM alarms ORDER BY id DESC LIMIT ?1")?;
     st.query_map(params![limit as i64], |r| {
         Ok(AlarmRow {
             id: r.get(0)?,
@@ -139,6 +153,7 @@ pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
             reason: r.get::<_, Option<String>>(5)?.unwrap_or_default(),
             acked_utc: r.get(6)?,
             acked_by: r.get(7)?,
+            acked_frame_utc: r.get(8)?,
         })
     })?
     .collect()
@@ -151,11 +166,9 @@ pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
 pub fn last_state(c: &Connection) -> rusqlite::Result<Option<AlarmState>> {
     let s: Option<String> = c.query_row("SELECT to_state FROM alarms ORDER BY id DESC LIMIT 1", [], |r| r.get(0)).ok();
     Ok(s.map(|s| match s.as_str() {
-        "alert" => AlarmState::Alert,
-        "caution" => AlarmState::Caution,
         // The state's name in databases written before it was renamed.
         "watch" => AlarmState::Caution,
-        _ => AlarmState::Calm,
+        s => AlarmState::from_name(s).unwrap_or(AlarmState::Calm),
     }))
 }
 
@@ -180,8 +193,8 @@ pub enum AckOutcome {
 ///
 /// # Errors
 /// A database error.
-pub fn ack(c: &Connection, id: i64, by: &str, now_utc: &str) -> rusqlite::Result<AckOutcome> {
-    if c.execute("UPDATE alarms SET acked_utc = ?1, acked_by = ?2 WHERE id = ?3 AND acked_utc IS NULL", params![now_utc, by, id])? == 1 {
+pub fn ack(c: &Connection, id: i64, by: &str, now_utc: &str, frame_utc: Option<&str>) -> rusqlite::Result<AckOutcome> {
+    if c.execute("UPDATE alarms SET acked_utc = ?1, acked_by = ?2, acked_frame_utc = ?4 WHERE id = ?3 AND acked_utc IS NULL", params![now_utc, by, id, frame_utc])? == 1 {
         return Ok(AckOutcome::Acked);
     }
     let first: Option<(Option<String>, Option<String>)> = c
@@ -194,9 +207,92 @@ pub fn ack(c: &Connection, id: i64, by: &str, now_utc: &str) -> rusqlite::Result
     })
 }
 
+/// A shelving: notifications of state changes are held back until `until_utc` (wall time).
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct ShelfRow {
+    /// Row id.
+    pub id: i64,
+    /// When it was shelved (wall time).
+    pub shelved_utc: String,
+    /// The frame clock then (the newest frame's time), if known.
+    pub shelved_frame_utc: Option<String>,
+    /// Shelved until (wall time).
+    pub until_utc: String,
+    /// Shelved until on the frame clock (the frame clock then plus the duration), if known.
+    pub until_frame_utc: Option<String>,
+    /// Duration \[min\].
+    pub minutes: f64,
+    /// Who shelved.
+    pub shelved_by: String,
+}
+
+/// Record a shelving of `minutes` from `now` (wall time), with the frame clock when known.
+/// Shelvings are append-only (triggers refuse changes and deletions); a later shelving replaces
+/// the earlier one's end.
+///
+/// # Errors
+/// A database error.
+pub fn shelve(c: &Connection, by: &str, now: chrono::DateTime<chrono::Utc>, frame: Option<chrono::DateTime<chrono::Utc>>, minutes: f64) -> rusqlite::Result<ShelfRow> {
+    let d = chrono::Duration::milliseconds((minutes * 60_000.0) as i64);
+    let fmt = crate::io::fmt_time;
+    let row = ShelfRow {
+        id: 0,
+        shelved_utc: fmt(&now),
+        shelved_frame_utc: frame.as_ref().map(fmt),
+        until_utc: fmt(&(now + d)),
+        until_frame_utc: frame.map(|f| fmt(&(f + d))),
+        minutes,
+        shelved_by: by.to_string(),
+    };
+    c.execute(
+        "INSERT INTO shelves (shelved_utc, shelved_frame_utc, until_utc, until_frame_utc, minutes, shelved_by) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+        params![row.shelved_utc, row.shelved_frame_utc, row.until_utc, row.until_frame_utc, row.minutes, row.shelved_by],
+    )?;
+    Ok(ShelfRow { id: c.last_insert_rowid(), ..row })
+}
+
+/// The most recent shelvings, newest first.
+///
+/// # Errors
+/// A database error.
+pub fn shelves(c: &Connection, limit: usize) -> rusqlite::Result<Vec<ShelfRow>> {
+    let mut st = c.prepare("SELECT id, shelved_utc, shelved_frame_utc, until_utc, until_frame_utc, minutes, shelved_by FROM shelves ORDER BY id DESC LIMIT ?1")?;
+    st.query_map(params![limit as i64], |r| {
+        Ok(ShelfRow { id: r.get(0)?, shelved_utc: r.get(1)?, shelved_frame_utc: r.get(2)?, until_utc: r.get(3)?, until_frame_utc: r.get(4)?, minutes: r.get(5)?, shelved_by: r.get(6)? })
+    })?
+    .collect()
+}
+
+/// The shelving in force at `now` (wall time): the newest one, if it has not ended.
+///
+/// # Errors
+/// A database error.
+pub fn active_shelf(c: &Connection, now: chrono::DateTime<chrono::Utc>) -> rusqlite::Result<Option<ShelfRow>> {
+    Ok(shelves(c, 1)?.into_iter().next().filter(|s| s.until_utc.parse::<chrono::DateTime<chrono::Utc>>().is_ok_and(|u| u > now)))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn shelving_is_recorded_in_both_clocks_and_append_only() {
+        let d = tempfile::tempdir().unwrap();
+        let c = open(&d.path().join("a.sqlite")).unwrap();
+        let now: chrono::DateTime<chrono::Utc> = "2026-12-03T04:00:00Z".parse().unwrap();
+        let frame: chrono::DateTime<chrono::Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
+        let s = shelve(&c, "Ann", now, Some(frame), 30.0).unwrap();
+        assert_eq!(s.until_utc, "2026-12-03T04:30:00Z");
+        assert_eq!(s.until_frame_utc.as_deref(), Some("2026-06-14T09:30:00Z"));
+        assert_eq!(active_shelf(&c, now + chrono::Duration::minutes(29)).unwrap(), Some(s.clone()));
+        assert_eq!(active_shelf(&c, now + chrono::Duration::minutes(31)).unwrap(), None);
+        assert!(c.execute("UPDATE shelves SET until_utc = '2030-01-01T00:00:00Z'", []).is_err());
+        assert!(c.execute("DELETE FROM shelves", []).is_err());
+        // Reopening keeps it (and the migration is idempotent).
+        drop(c);
+        let c = open(&d.path().join("a.sqlite")).unwrap();
+        assert_eq!(shelves(&c, 10).unwrap(), vec![s]);
+    }
 
     #[test]
     fn the_first_acknowledgement_is_kept() {
@@ -204,16 +300,18 @@ mod tests {
         let c = open(&d.path().join("a.sqlite")).unwrap();
         let ch = AlarmChange { time_utc: "2026-06-14T09:00:00Z".into(), from: AlarmState::Calm, to: AlarmState::Caution, probability: 0.6, reason: "test".into() };
         let id = insert_alarm(&c, &ch).unwrap();
-        assert_eq!(ack(&c, id, "Ana", "2026-06-14T09:01:00Z").unwrap(), AckOutcome::Acked);
+        assert_eq!(ack(&c, id, "Ana", "2026-06-14T09:01:00Z", Some("2026-06-14T08:59:40Z")).unwrap(), AckOutcome::Acked);
         assert_eq!(
-            ack(&c, id, "Bo", "2026-06-14T09:02:00Z").unwrap(),
+            ack(&c, id, "Bo", "2026-06-14T09:02:00Z", None).unwrap(),
             AckOutcome::AlreadyAcked { acked_utc: "2026-06-14T09:01:00Z".into(), acked_by: "Ana".into() }
         );
-        assert_eq!(ack(&c, id + 1, "Bo", "2026-06-14T09:02:00Z").unwrap(), AckOutcome::NoSuchAlarm);
+        assert_eq!(ack(&c, id + 1, "Bo", "2026-06-14T09:02:00Z", None).unwrap(), AckOutcome::NoSuchAlarm);
         // Even a direct write cannot change it.
         assert!(c.execute("UPDATE alarms SET acked_by = 'Eve' WHERE id = ?1", params![id]).is_err());
+        assert!(c.execute("UPDATE alarms SET acked_frame_utc = NULL WHERE id = ?1", params![id]).is_err());
         let rows = alarms(&c, 10).unwrap();
         assert_eq!(rows[0].acked_by.as_deref(), Some("Ana"));
         assert_eq!(rows[0].acked_utc.as_deref(), Some("2026-06-14T09:01:00Z"));
+        assert_eq!(rows[0].acked_frame_utc.as_deref(), Some("2026-06-14T08:59:40Z"));
     }
 }

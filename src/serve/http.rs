@@ -69,6 +69,8 @@ pub struct ServerOptions {
     pub ack_limits: AckLimits,
     /// The read-only Modbus TCP server for plant controllers (none: not served).
     pub modbus: Option<super::modbus::ModbusOptions>,
+    /// Where alarm-state changes are POSTed (none: no notifications).
+    pub webhook: Option<super::notify::WebhookOptions>,
 }
 
 impl Default for ServerOptions {
@@ -83,6 +85,7 @@ impl Default for ServerOptions {
             tls: None,
             ack_limits: AckLimits::default(),
             modbus: None,
+            webhook: None,
         }
     }
 }

@@ -31,6 +31,7 @@ pub mod db;
 pub mod guard;
 pub mod http;
 pub mod modbus;
+pub mod notify;
 pub mod ops;
 
 pub use http::{ServerOptions, TlsFiles};
@@ -103,6 +104,9 @@ pub struct Health {
     pub latency_ms_p95: Option<f64>,
     /// Current alarm state.
     pub alarm: String,
+    /// False while the alarm state has no nowcast behind it (before the first nowcast, or restored
+    /// after a restart until the next one).
+    pub alarm_current: bool,
     /// Engine running.
     pub running: bool,
     /// Health state ([`ops::HealthState`]): starting, ok, no_measurements, stale, camera_down.
@@ -342,6 +346,8 @@ fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
             "speed_mps": l.motion.v_mps[0].hypot(l.motion.v_mps[1]), "toward_deg": l.motion.v_mps[0].atan2(l.motion.v_mps[1]).to_degrees().rem_euclid(360.0),
             "thick_share": l.thick_share})).collect::<Vec<_>>(),
         "alarm": nc.alarm.name(),
+        "alarm_reason": nc.alarm_reason,
+        "alarm_basis": nc.alarm_basis,
         "ramps": nc.ramps,
         "forecast": rows,
         "advisory": "Forecasts and alarms are advisory, not a protection system.",
@@ -403,6 +409,7 @@ fn router(app: App, allowed: Arc<Vec<String>>) -> Router {
         .route("/api/nowcast", get(api_nowcast))
         .route("/api/alarms", get(api_alarms))
         .route("/api/alarms/ack", post(api_ack))
+        .route("/api/alarms/shelve", post(api_shelve))
         .route("/api/health", get(api_health))
         .route("/api/history", get(api_history))
         .route("/api/events", get(api_events))
@@ -508,9 +515,13 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
         });
         rt.shutdown_timeout(std::time::Duration::from_secs(1));
     });
+    let notifier = match opts.server.webhook.clone() {
+        Some(w) => Some(notify::Notifier::start(w).map_err(|e| anyhow::anyhow!("{e}"))?),
+        None => None,
+    };
     let (stop2, stop3, shared3, tx3, log_json) = (stop.clone(), stop.clone(), shared.clone(), tx.clone(), opts.health.log_json);
     let feed2 = feed.clone();
-    let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2, feed2));
+    let engine = std::thread::spawn(move || engine_loop(opts, nowcaster, conn, shared, tx, stop2, feed2, notifier));
     let ticker = std::thread::spawn(move || health_loop(shared3, tx3, stop3, log_json));
     Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), ticker: Some(ticker), server: Some(server), shutdown: Some(sd_tx), modbus_addr, modbus, feed })
 }
@@ -653,6 +664,8 @@ impl Watcher {
     }
 }
 
+// The engine thread's state, handed over whole (to be gathered into one engine object).
+#[allow(clippy::too_many_arguments)]
 fn engine_loop(
     opts: LiveOptions,
     mut nc: Nowcaster,
@@ -661,6 +674,7 @@ fn engine_loop(
     tx: broadcast::Sender<String>,
     stop: Arc<AtomicBool>,
     registers: Arc<modbus::Feed>,
+    notifier: Option<notify::Notifier>,
 ) {
     let mut watch = Watcher::default();
     let intake = nc.intake_options();
@@ -792,7 +806,17 @@ fn engine_loop(
                 };
                 let _ = db::insert_history(&conn, n.time.timestamp(), &h, opts.keep_s);
                 if let Some(ch) = &n.alarm_change {
-                    let _ = db::insert_alarm(&conn, ch);
+                    let id = db::insert_alarm(&conn, ch).ok();
+                    if let Some(nf) = &notifier {
+                        // Held back while shelved (the change is still logged and shown).
+                        match db::active_shelf(&conn, Utc::now()) {
+                            Ok(Some(shelf)) => eprintln!("alarm {} -> {} not notified: shelved until {} by {}", ch.from.name(), ch.to.name(), shelf.until_utc, shelf.shelved_by),
+                            _ => {
+                                nf.send(serde_json::json!({"type": "alarm_change", "id": id, "change": ch, "basis": n.alarm_basis, "current": true,
+                                    "advisory": "Forecasts and alarms are advisory, not a protection system."}).to_string());
+                            }
+                        }
+                    }
                     events.push(serde_json::json!({"type": "alarm", "change": ch, "data_valid": valid}).to_string());
                 }
                 events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name(), "data_valid": valid, "health": health_state}).to_string());
@@ -833,6 +857,7 @@ fn engine_loop(
             s.health.clock_reanchors = nc.counters.clock_reanchors;
             s.health.frames_changed = watch.changed;
             s.health.alarm = nc.alarm_state().name().into();
+            s.health.alarm_current = nc.alarm_current();
             if result.is_ok() {
                 s.ops.latency.observe(latency / 1000.0);
                 s.latencies.push_back(latency);
@@ -970,9 +995,13 @@ fn db_error(message: String) -> Response {
 }
 
 async fn api_alarms(State(app): State<App>) -> Response {
-    let state = app.shared.lock().map(|s| s.health.alarm.clone()).unwrap_or_default();
-    match with_db(&app, |c| db::alarms(c, 200)) {
-        Ok(log) => Json(serde_json::json!({"state": state, "log": log, "ack_enabled": app.token.is_some(), "site_time_zone": app.time_zone})).into_response(),
+    let (state, current) = app.shared.lock().map(|s| (s.health.alarm.clone(), s.health.alarm_current)).unwrap_or_default();
+    match with_db(&app, |c| Ok((db::alarms(c, 200)?, db::active_shelf(c, Utc::now())?, db::shelves(c, 20)?))) {
+        Ok((log, shelved, shelvings)) => Json(serde_json::json!({
+            "state": state, "current": current, "shelved": shelved, "shelvings": shelvings, "log": log,
+            "ack_enabled": app.token.is_some(), "site_time_zone": app.time_zone
+        }))
+        .into_response(),
         Err(e) => db_error(e),
     }
 }
@@ -997,11 +1026,16 @@ fn ack_error(code: StatusCode, message: impl Into<String>) -> Response {
     (code, Json(serde_json::json!({"error": message.into()}))).into_response()
 }
 
-/// Acknowledge an alarm: rate-limited per client and globally, the body bounded in size and
-/// time, the token compared in constant time, and only the first acknowledgement kept.
-async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::ClientAddr>>, headers: axum::http::HeaderMap, body: axum::body::Body) -> Response {
+/// The guards every operator action passes: acknowledging on, rate limit per client and globally,
+/// JSON body bounded in size and time. Returns the body, the token digest and the client.
+async fn guarded_body(
+    app: &App,
+    client: Option<axum::Extension<http::ClientAddr>>,
+    headers: &axum::http::HeaderMap,
+    body: axum::body::Body,
+) -> Result<(axum::body::Bytes, guard::TokenDigest, std::net::IpAddr), Response> {
     let Some(token) = app.token else {
-        return ack_error(StatusCode::FORBIDDEN, "acknowledging is off: start with an acknowledgement token");
+        return Err(ack_error(StatusCode::FORBIDDEN, "acknowledging is off: start with an acknowledgement token"));
     };
     let ip = client.map(|c| c.0.0.ip()).unwrap_or(std::net::IpAddr::V4(std::net::Ipv4Addr::UNSPECIFIED));
     if let Err(wait) = app.limiter.admit(ip, std::time::Instant::now()) {
@@ -1010,20 +1044,31 @@ async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::Cl
         if let Ok(v) = header::HeaderValue::from_str(&secs.to_string()) {
             r.headers_mut().insert(header::RETRY_AFTER, v);
         }
-        return r;
+        return Err(r);
     }
     let json_type = headers.get(header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).is_some_and(|v| v.trim().to_ascii_lowercase().starts_with("application/json"));
     if !json_type {
-        return ack_error(StatusCode::UNSUPPORTED_MEDIA_TYPE, "Content-Type: expected application/json");
+        return Err(ack_error(StatusCode::UNSUPPORTED_MEDIA_TYPE, "Content-Type: expected application/json"));
     }
     let declared = headers.get(header::CONTENT_LENGTH).and_then(|v| v.to_str().ok()).and_then(|v| v.parse::<u64>().ok());
     if declared.is_some_and(|n| n > ACK_BODY_MAX_BYTES as u64) {
-        return ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes"));
+        return Err(ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes")));
     }
     let bytes = match tokio::time::timeout(app.body_timeout, axum::body::to_bytes(body, ACK_BODY_MAX_BYTES)).await {
-        Err(_) => return ack_error(StatusCode::REQUEST_TIMEOUT, format!("request body: not complete within {:.0} s", app.body_timeout.as_secs_f64())),
-        Ok(Err(_)) => return ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes")),
+        Err(_) => return Err(ack_error(StatusCode::REQUEST_TIMEOUT, format!("request body: not complete within {:.0} s", app.body_timeout.as_secs_f64()))),
+        Ok(Err(_)) => return Err(ack_error(StatusCode::PAYLOAD_TOO_LARGE, format!("request body: expected at most {ACK_BODY_MAX_BYTES} bytes"))),
         Ok(Ok(b)) => b,
+    };
+    Ok((bytes, token, ip))
+}
+
+/// Acknowledge an alarm: rate-limited per client and globally, the body bounded in size and
+/// time, the token compared in constant time, and only the first acknowledgement kept. Recorded
+/// in wall time and on the frame clock (the newest frame's time).
+async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::ClientAddr>>, headers: axum::http::HeaderMap, body: axum::body::Body) -> Response {
+    let (bytes, token, ip) = match guarded_body(&app, client, &headers, body).await {
+        Ok(x) => x,
+        Err(r) => return r,
     };
     let req: AckRequest = match serde_json::from_slice(&bytes) {
         Ok(r) => r,
@@ -1038,7 +1083,8 @@ async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::Cl
         return ack_error(StatusCode::FORBIDDEN, "wrong token");
     }
     app.limiter.succeeded(ip);
-    match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()))) {
+    let frame = app.shared.lock().ok().and_then(|s| s.last_time).map(|t| fmt_time(&t));
+    match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()), frame.as_deref())) {
         Ok(db::AckOutcome::Acked) => {
             let _ = app.tx.send(serde_json::json!({"type": "ack", "id": req.id}).to_string());
             Json(serde_json::json!({"acked": req.id, "by": by})).into_response()
@@ -1052,6 +1098,51 @@ async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::Cl
         )
             .into_response(),
         Ok(db::AckOutcome::NoSuchAlarm) => ack_error(StatusCode::NOT_FOUND, format!("id: no alarm {}", req.id)),
+        Err(e) => db_error(e),
+    }
+}
+
+#[derive(serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ShelveRequest {
+    minutes: f64,
+    token: String,
+    #[serde(default)]
+    by: String,
+}
+
+/// Longest shelving \[min\].
+pub const SHELVE_MAX_MIN: f64 = 480.0;
+
+/// Shelve the alarm's notifications for a while (the state still changes and is logged and shown):
+/// the same guards as acknowledging; recorded append-only in wall time and on the frame clock.
+async fn api_shelve(State(app): State<App>, client: Option<axum::Extension<http::ClientAddr>>, headers: axum::http::HeaderMap, body: axum::body::Body) -> Response {
+    let (bytes, token, ip) = match guarded_body(&app, client, &headers, body).await {
+        Ok(x) => x,
+        Err(r) => return r,
+    };
+    let req: ShelveRequest = match serde_json::from_slice(&bytes) {
+        Ok(r) => r,
+        Err(e) => return ack_error(StatusCode::BAD_REQUEST, format!("request body: expected {{\"minutes\": number, \"token\": string, \"by\": optional string}}: {e}")),
+    };
+    let by = match guard::check_by(&req.by) {
+        Ok(b) => b,
+        Err(e) => return ack_error(StatusCode::UNPROCESSABLE_ENTITY, e),
+    };
+    if !(req.minutes.is_finite() && req.minutes > 0.0 && req.minutes <= SHELVE_MAX_MIN) {
+        return ack_error(StatusCode::UNPROCESSABLE_ENTITY, format!("minutes: expected more than 0 and at most {SHELVE_MAX_MIN}, got {}", req.minutes));
+    }
+    if !guard::token_matches(&req.token, &token) {
+        app.limiter.failed(ip, std::time::Instant::now());
+        return ack_error(StatusCode::FORBIDDEN, "wrong token");
+    }
+    app.limiter.succeeded(ip);
+    let frame = app.shared.lock().ok().and_then(|s| s.last_time);
+    match with_db(&app, |c| db::shelve(c, &by, Utc::now(), frame, req.minutes)) {
+        Ok(row) => {
+            let _ = app.tx.send(serde_json::json!({"type": "shelve", "shelf": row}).to_string());
+            Json(serde_json::json!({"shelved": row})).into_response()
+        }
         Err(e) => db_error(e),
     }
 }

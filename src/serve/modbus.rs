@@ -176,7 +176,7 @@ pub fn header_fields() -> Vec<Field> {
         (s("heartbeat"), Kind::U16, 1.0, "", s("nowcasts published since start; wraps from 65535 to 0"), Source::Heartbeat),
         (s("frame_age_s"), Kind::U32, 1.0, "s", s("age of the latest nowcast's frame, from the clock at read time; 4294967295 before the first nowcast"), Source::FrameAgeS),
         (s("frame_time_unix_s"), Kind::U32, 1.0, "s", s("the latest nowcast's frame time (Unix time, UTC); 0 before the first nowcast"), Source::FrameTimeUnixS),
-        (s("alarm_code"), Kind::U16, 1.0, "", s("plant ramp alarm: 0 calm, 1 caution, 2 alert (advisory)"), Source::AlarmCode),
+        (s("alarm_code"), Kind::U16, 1.0, "", s("plant ramp alarm: 0 calm, 1 caution, 2 alert, 3 variable (advisory)"), Source::AlarmCode),
         (s("ramp_probability"), Kind::U16, 0.001, "1", s("probability of the ramp behind the alarm (the most probable ramp of the latest nowcast); 0 when none"), Source::RampProbability),
         (s("ramp_direction"), Kind::I16, 1.0, "", s("that ramp: -1 down, 1 up, 0 none"), Source::RampDirection),
         (s("ramp_start_in_s"), Kind::I16, 1.0, "s", s("its expected start, from the clock at read time (negative once past); 0 when none"), Source::RampStartInS),
@@ -354,6 +354,7 @@ pub fn alarm_code(a: AlarmState) -> u16 {
         AlarmState::Calm => 0,
         AlarmState::Caution => 1,
         AlarmState::Alert => 2,
+        AlarmState::Variable => 3,
     }
 }
 
