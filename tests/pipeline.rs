@@ -8,6 +8,7 @@
 //! 5 minutes' lead are found with POD ≥ 0.8 and FAR ≤ 0.3.
 //! Shortfalls that are known are listed in `KNOWN_SHORTFALLS`: the test checks they still fall short
 //! (so the list is kept honest) and prints every figure.
+use std::collections::BTreeMap;
 use std::path::Path;
 
 use nephocast::replay::{ReplayOptions, replay};
@@ -39,7 +40,54 @@ fn run(name: &str, minutes: f64, spec_edit: impl Fn(&mut nephocast::synth::Scene
     assert_eq!(sum.counters.rejected.values().sum::<usize>(), 0, "{name}: frames rejected {:?}", sum.counters.rejected);
     let e = evaluate(d.path(), &out).unwrap();
     print(name, &e);
+    same_figures(name, &e);
     e
+}
+
+/// Every figure of a scene, to compare a change that should not alter results (a refactor) with the
+/// record in `tests/fixtures/figures/<scene>.json`. `NEPHOCAST_RECORD_FIGURES=1` writes the record
+/// instead; a change that alters results on purpose re-records it and says why in its commit.
+fn figures(e: &Evaluation) -> BTreeMap<String, f64> {
+    let mut f = BTreeMap::new();
+    f.insert("segmentation_accuracy".to_string(), e.segmentation.accuracy);
+    f.insert("segmentation_circumsolar_accuracy".to_string(), e.segmentation.circumsolar_accuracy);
+    f.insert("motion_speed_error_mps".to_string(), e.motion.speed_error_mps);
+    f.insert("motion_direction_error_deg".to_string(), e.motion.direction_error_deg);
+    for h in &e.plant {
+        f.insert(format!("rmse_wm2_{}s", h.horizon_s), h.rmse_wm2);
+        f.insert(format!("mbe_wm2_{}s", h.horizon_s), h.mbe_wm2);
+        f.insert(format!("skill_{}s", h.horizon_s), h.skill);
+    }
+    for b in &e.bands {
+        f.insert(format!("band_coverage_{}s", b.horizon_s), b.coverage);
+    }
+    if let Some(r) = &e.ramps {
+        f.insert("ramp_pod".to_string(), r.pod);
+        f.insert("ramp_far".to_string(), r.far);
+    }
+    f
+}
+
+fn same_figures(name: &str, e: &Evaluation) {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/figures").join(format!("{name}.json"));
+    let now = figures(e);
+    if std::env::var_os("NEPHOCAST_RECORD_FIGURES").is_some() {
+        std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+        std::fs::write(&path, serde_json::to_string_pretty(&now).unwrap()).unwrap();
+        return;
+    }
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{}: {e} (record it with NEPHOCAST_RECORD_FIGURES=1)", path.display()));
+    let before: BTreeMap<String, Option<f64>> = serde_json::from_str(&text).unwrap();
+    let mut changed = vec![];
+    for (k, v) in &now {
+        let b = before.get(k).copied().flatten().unwrap_or(f64::NAN);
+        // NaN (nothing to score) is recorded as null and must stay so.
+        let same = (v.is_nan() && b.is_nan()) || (v - b).abs() <= 1e-6 * (1.0 + b.abs());
+        if !same {
+            changed.push(format!("{k}: {b} -> {v}"));
+        }
+    }
+    assert!(before.len() == now.len() && changed.is_empty(), "{name}: figures differ from {}:\n{}", path.display(), changed.join("\n"));
 }
 
 fn print(name: &str, e: &Evaluation) {
@@ -151,6 +199,7 @@ fn demo_data_replays_with_skill() {
     replay(&opts).unwrap();
     let e = evaluate(&root, d.path()).unwrap();
     print("larkspur-demo", &e);
+    same_figures("larkspur-demo", &e);
     check_scene("larkspur-demo", &e, true);
     assert!(d.path().join("overlays").read_dir().unwrap().count() >= 3);
 }
