@@ -18,7 +18,7 @@ use std::sync::Arc;
 use serde::{Deserialize, Serialize};
 
 use crate::camera::Camera;
-use crate::config::{ConfigError, check_range};
+use crate::settings::{ConfigError, check_range};
 use crate::segment::{Class, PixelGeom, Reference, SegmentParams, gamma_deg};
 
 /// `[cloudmap]` settings (held in `[motion]` of `site.toml`, see [`crate::motion::MotionParams`]).

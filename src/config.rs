@@ -11,86 +11,9 @@ use serde::{Deserialize, Serialize};
 use crate::camera::{Camera, Orientation, Projection};
 use crate::clearsky::ClearSkyModel;
 use crate::sun::Observer;
-
-/// An error in a site or calibration file.
-#[derive(Debug, thiserror::Error)]
-pub enum ConfigError {
-    /// The file could not be read.
-    #[error("{file}: cannot read: {source}")]
-    Read {
-        /// The file.
-        file: PathBuf,
-        /// Why.
-        source: std::io::Error,
-    },
-    /// The file is not valid TOML or a field has the wrong type.
-    #[error("{file}: field {path}: {message}")]
-    Parse {
-        /// The file.
-        file: PathBuf,
-        /// Dotted field path.
-        path: String,
-        /// What the parser said.
-        message: String,
-    },
-    /// A field has a value outside its allowed range.
-    #[error("{file}: field {field}: expected {expected}, got {got}")]
-    Invalid {
-        /// The file.
-        file: PathBuf,
-        /// Dotted field path.
-        field: String,
-        /// What was expected.
-        expected: String,
-        /// What was found.
-        got: String,
-    },
-}
-
-/// Read and deserialize a TOML file, reporting the field path of any error.
-pub fn read_toml<T: for<'de> Deserialize<'de>>(path: &Path) -> Result<T, ConfigError> {
-    let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read { file: path.into(), source })?;
-    parse_toml(&text, path)
-}
-
-/// Deserialize TOML text that came from `path` (used in messages only).
-pub fn parse_toml<T: for<'de> Deserialize<'de>>(text: &str, path: &Path) -> Result<T, ConfigError> {
-    let de = toml::Deserializer::new(text);
-    serde_path_to_error::deserialize(de).map_err(|e| {
-        let field = e.path().to_string();
-        let message = e.inner().message().to_string();
-        let loc = e
-            .inner()
-            .span()
-            .map(|s| {
-                let line = text[..s.start.min(text.len())].matches('\n').count() + 1;
-                format!(" (line {line})")
-            })
-            .unwrap_or_default();
-        ConfigError::Parse {
-            file: path.into(),
-            path: if field == "." { "(top level)".into() } else { field },
-            message: format!("{}{loc}", message.trim_end()),
-        }
-    })
-}
-
-struct Check<'a> {
-    file: &'a Path,
-}
-
-impl Check<'_> {
-    fn range(&self, field: &str, v: f64, lo: f64, hi: f64) -> Result<(), ConfigError> {
-        if v.is_finite() && v >= lo && v <= hi {
-            Ok(())
-        } else {
-            Err(self.invalid(field, format!("a number from {lo} to {hi}"), v.to_string()))
-        }
-    }
-    fn invalid(&self, field: &str, expected: impl Into<String>, got: impl Into<String>) -> ConfigError {
-        ConfigError::Invalid { file: self.file.into(), field: field.into(), expected: expected.into(), got: got.into() }
-    }
-}
+pub use crate::plant::{BlockSpec, MountKind, PlantSection};
+pub use crate::settings::{ConfigError, parse_toml, read_toml};
+use crate::settings::Check;
 
 fn resolve(base: &Path, p: &Path) -> PathBuf {
     if p.is_absolute() { p.to_path_buf() } else { base.parent().unwrap_or(Path::new(".")).join(p) }
@@ -269,67 +192,6 @@ pub struct CloudSection {
     pub base_height_csv: Option<PathBuf>,
 }
 
-/// `[plant]`.
-#[derive(Debug, Clone, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct PlantSection {
-    /// Spacing of the forecast points inside each block's footprint \[m\].
-    #[serde(default = "default_spacing")]
-    pub point_spacing_m: f64,
-    /// The plant's blocks.
-    #[serde(default)]
-    pub blocks: Vec<BlockSpec>,
-}
-
-impl Default for PlantSection {
-    fn default() -> Self {
-        Self { point_spacing_m: default_spacing(), blocks: vec![] }
-    }
-}
-
-fn default_spacing() -> f64 {
-    25.0
-}
-
-/// Mounting of a block's modules.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum MountKind {
-    /// Fixed tilt and azimuth.
-    Fixed,
-    /// Horizontal single-axis tracker.
-    SingleAxis,
-}
-
-/// `[[plant.blocks]]`.
-#[derive(Debug, Clone, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct BlockSpec {
-    /// Block name.
-    pub name: String,
-    /// Footprint polygon vertices (east, north) \[m\] from the site origin.
-    pub polygon_m: Vec<[f64; 2]>,
-    /// DC capacity \[kW\].
-    pub capacity_kw: f64,
-    /// AC (inverter) rating \[kW\]; default the DC capacity over `power.dc_ac_ratio`.
-    #[serde(default)]
-    pub ac_capacity_kw: Option<f64>,
-    /// `"fixed"` or `"single-axis"`.
-    pub mount: MountKind,
-    /// Fixed: module tilt from horizontal \[°\].
-    #[serde(default)]
-    pub tilt_deg: Option<f64>,
-    /// Fixed: module azimuth, clockwise from north \[°\].
-    #[serde(default)]
-    pub azimuth_deg: Option<f64>,
-    /// Tracker: axis azimuth \[°\] (e.g. 0 for a north–south axis).
-    #[serde(default)]
-    pub axis_azimuth_deg: Option<f64>,
-    /// Tracker: largest rotation \[°\]; default 60.
-    #[serde(default)]
-    pub max_angle_deg: Option<f64>,
-}
-
 /// `[forecast]`.
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -505,7 +367,7 @@ impl SiteFile {
             c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
         }
         match (&self.clouds.base_height_m, &self.clouds.base_height_csv) {
-            (Some(h), None) => c.range("clouds.base_height_m", *h, crate::io::CBH_MIN_M, crate::io::CBH_MAX_M)?,
+            (Some(h), None) => c.range("clouds.base_height_m", *h, crate::settings::CBH_MIN_M, crate::settings::CBH_MAX_M)?,
             (None, Some(_)) => {}
             (Some(_), Some(_)) => {
                 return Err(c.invalid("clouds", "one of base_height_m or base_height_csv", "both"));
@@ -694,11 +556,6 @@ pub fn polygon_area_m2(poly: &[[f64; 2]]) -> f64 {
         s += a[0] * b[1] - b[0] * a[1];
     }
     (s / 2.0).abs()
-}
-
-/// Range check shared by stage parameter sections.
-pub(crate) fn check_range(file: &Path, field: &str, v: f64, lo: f64, hi: f64) -> Result<(), ConfigError> {
-    Check { file }.range(field, v, lo, hi)
 }
 
 // ---------------------------------------------------------------------------------------------

@@ -442,12 +442,7 @@ pub struct Measurements {
 pub const MAX_CSV_ROWS: usize = 5_000_000;
 /// Most value columns of a measurements CSV.
 pub const MAX_CSV_COLUMNS: usize = 1_000;
-/// Lowest cloud base height \[m\] accepted anywhere (site default, series): fog and stratus
-/// below it do not form a cloud map (common practice, no source).
-pub const CBH_MIN_M: f64 = 50.0;
-/// Highest cloud base height \[m\]: above the tropopause of mid-latitudes nothing a sky camera
-/// maps forms (common practice, no source).
-pub const CBH_MAX_M: f64 = 15_000.0;
+pub use crate::settings::{CBH_MAX_M, CBH_MIN_M};
 /// Air temperature range \[°C\] of a `temp_air_c` column: a little beyond the recorded extremes
 /// (−89.2 °C Vostok 1983, 56.7 °C Death Valley 1913; WMO archive, from memory).
 pub const TEMP_AIR_RANGE_C: (f64, f64) = (-90.0, 70.0);

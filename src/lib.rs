@@ -10,6 +10,7 @@
 //! | solar position, air mass, extraterrestrial irradiance | [`sun`] |
 //! | clear-sky irradiance | [`clearsky`] |
 //! | fisheye camera model, pixel ↔ sky direction | [`camera`] |
+//! | settings errors, TOML reading and range checks (the bottom layer) | [`settings`] |
 //! | site and calibration files | [`config`] |
 //! | synthetic scenes with ground truth | [`synth`] |
 //! | frame intake: complete, bounded frame files only | [`intake`] |
@@ -67,6 +68,7 @@ pub mod replay;
 pub mod report;
 pub mod segment;
 pub mod serve;
+pub mod settings;
 pub mod sun;
 pub mod synth;
 pub mod verify;

@@ -1,6 +1,67 @@
 //! The plant: blocks, their footprints and the forecast points inside them.
 
-use crate::config::{BlockSpec, MountKind, PlantSection};
+use serde::{Deserialize, Serialize};
+
+/// `[plant]`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PlantSection {
+    /// Spacing of the forecast points inside each block's footprint \[m\].
+    #[serde(default = "default_spacing")]
+    pub point_spacing_m: f64,
+    /// The plant's blocks.
+    #[serde(default)]
+    pub blocks: Vec<BlockSpec>,
+}
+
+impl Default for PlantSection {
+    fn default() -> Self {
+        Self { point_spacing_m: default_spacing(), blocks: vec![] }
+    }
+}
+
+fn default_spacing() -> f64 {
+    25.0
+}
+
+/// Mounting of a block's modules.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum MountKind {
+    /// Fixed tilt and azimuth.
+    Fixed,
+    /// Horizontal single-axis tracker.
+    SingleAxis,
+}
+
+/// `[[plant.blocks]]`.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BlockSpec {
+    /// Block name.
+    pub name: String,
+    /// Footprint polygon vertices (east, north) \[m\] from the site origin.
+    pub polygon_m: Vec<[f64; 2]>,
+    /// DC capacity \[kW\].
+    pub capacity_kw: f64,
+    /// AC (inverter) rating \[kW\]; default the DC capacity over `power.dc_ac_ratio`.
+    #[serde(default)]
+    pub ac_capacity_kw: Option<f64>,
+    /// `"fixed"` or `"single-axis"`.
+    pub mount: MountKind,
+    /// Fixed: module tilt from horizontal \[°\].
+    #[serde(default)]
+    pub tilt_deg: Option<f64>,
+    /// Fixed: module azimuth, clockwise from north \[°\].
+    #[serde(default)]
+    pub azimuth_deg: Option<f64>,
+    /// Tracker: axis azimuth \[°\] (e.g. 0 for a north–south axis).
+    #[serde(default)]
+    pub axis_azimuth_deg: Option<f64>,
+    /// Tracker: largest rotation \[°\]; default 60.
+    #[serde(default)]
+    pub max_angle_deg: Option<f64>,
+}
 
 /// The name of the whole plant in forecast outputs (the `block` column of `forecasts.csv`); no
 /// block may take it.

@@ -19,7 +19,7 @@ use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::{ConfigError, check_range};
+use crate::settings::{ConfigError, check_range};
 
 /// `[power]` in `site.toml`.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]

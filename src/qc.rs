@@ -4,7 +4,7 @@ use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
-use crate::config::{ConfigError, check_range};
+use crate::settings::{ConfigError, check_range};
 
 /// `[qc]` in `site.toml`.
 #[derive(Debug, Clone, Serialize, Deserialize)]

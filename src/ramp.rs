@@ -22,7 +22,7 @@ use std::path::Path;
 use chrono::{DateTime, Utc};
 use serde::{Deserialize, Serialize};
 
-use crate::config::{ConfigError, check_range};
+use crate::settings::{ConfigError, check_range};
 
 /// `[ramps]` in `site.toml`.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]

@@ -40,7 +40,7 @@ use std::path::Path;
 use serde::{Deserialize, Serialize};
 
 use crate::camera::{Camera, Orientation, Projection};
-use crate::config::{ConfigError, check_range};
+use crate::settings::{ConfigError, check_range};
 
 /// Pixel class as written in class masks.
 #[repr(u8)]

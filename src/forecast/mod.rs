@@ -33,7 +33,7 @@ use chrono::{DateTime, Duration, Utc};
 use serde::{Deserialize, Serialize};
 
 use crate::clearsky::{ClearSkyModel, Irradiance, clear_sky};
-use crate::config::{ConfigError, check_range};
+use crate::settings::{ConfigError, check_range};
 use crate::plant::{Mount, Plant};
 use crate::segment::Class;
 use crate::sun::{Observer, direction_enu, position};

@@ -33,7 +33,7 @@ use std::path::Path;
 use serde::{Deserialize, Serialize};
 
 use crate::cloudmap::CloudMap;
-use crate::config::{ConfigError, check_range};
+use crate::settings::{ConfigError, check_range};
 
 mod features;
 mod matching;

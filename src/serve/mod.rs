@@ -31,6 +31,7 @@ pub mod db;
 pub mod guard;
 pub mod http;
 pub mod modbus;
+mod net;
 pub mod notify;
 pub mod ops;
 

@@ -519,7 +519,7 @@ impl Drop for ModbusServer {
 /// Refused options ([`ModbusOptions::check`]) or an address that cannot be bound.
 pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> anyhow::Result<(ModbusServer, Vec<String>)> {
     let warnings = opts.check().map_err(|e| anyhow::anyhow!(e))?;
-    let std_listener = super::http::listen(opts.bind).map_err(|e| anyhow::anyhow!("--modbus-bind {}: {e}", opts.bind))?;
+    let std_listener = super::net::listen(opts.bind).map_err(|e| anyhow::anyhow!("--modbus-bind {}: {e}", opts.bind))?;
     std_listener.set_nonblocking(true)?;
     let addr = std_listener.local_addr()?;
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();
@@ -534,7 +534,7 @@ pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> anyhow::Result<(ModbusSer
                 // At the cap the connection is closed at once (dropped).
                 let conn = slots.clone().try_acquire_owned().ok().map(|permit| {
                     let _ = stream.set_nodelay(true);
-                    (Registers { feed: feed.clone(), max_frame_age_s: max_age, _permit: permit }, super::http::IdleIo::new(stream, idle))
+                    (Registers { feed: feed.clone(), max_frame_age_s: max_age, _permit: permit }, super::net::IdleIo::new(stream, idle))
                 });
                 std::future::ready(Ok(conn))
             };
