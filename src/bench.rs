@@ -9,7 +9,8 @@ use std::time::Instant;
 use crate::config::{CalibrationFile, Site};
 use crate::nowcast::{Frame, Nowcaster};
 use crate::synth::render::PixelRays;
-use crate::synth::{Scene, encode_jpeg, scene};
+use crate::io::encode_jpeg;
+use crate::synth::{Scene, scene};
 
 /// Benchmark figures.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -40,6 +41,22 @@ pub struct BenchReport {
     pub throughput_fps: f64,
 }
 
+/// Why the benchmark could not run (each would be a bug: the scene is built in).
+#[derive(Debug, thiserror::Error)]
+pub enum BenchError {
+    /// The scene, its thread pool or its site could not be set up.
+    #[error("benchmark set-up: {0}")]
+    Setup(String),
+    /// A frame failed in intake or in the engine.
+    #[error("benchmark frame {index}: {message}")]
+    Frame {
+        /// Frame index.
+        index: usize,
+        /// What failed.
+        message: String,
+    },
+}
+
 fn pct(mut v: Vec<f64>, p: f64) -> f64 {
     if v.is_empty() {
         return f64::NAN;
@@ -52,11 +69,11 @@ fn pct(mut v: Vec<f64>, p: f64) -> f64 {
 ///
 /// # Errors
 /// When the scene cannot be built or a frame fails (which would be a bug).
-pub fn run(size_px: u32, frames: usize, threads: usize) -> anyhow::Result<BenchReport> {
-    let mut spec = scene("broken-cumulus-fast").ok_or_else(|| anyhow::anyhow!("scene missing"))?;
+pub fn run(size_px: u32, frames: usize, threads: usize) -> Result<BenchReport, BenchError> {
+    let mut spec = scene("broken-cumulus-fast").ok_or_else(|| BenchError::Setup("scene broken-cumulus-fast missing".into()))?;
     spec.size_px = size_px;
     spec.duration_min = frames as f64 * spec.frame_step_s / 60.0;
-    let mut s = Scene::new(spec, 11)?;
+    let mut s = Scene::new(spec, 11).map_err(|e| BenchError::Setup(e.to_string()))?;
     // About 1000 forecast points: shrink the spacing.
     s.site.plant.point_spacing_m = 15.5;
     let rays = PixelRays::new(&s.camera);
@@ -78,16 +95,16 @@ pub fn run(size_px: u32, frames: usize, threads: usize) -> anyhow::Result<BenchR
     let mut nc = Nowcaster::new(site, None, None);
     let plant_points = nc.plant().point_count();
     let horizons = nc.horizons_s().len();
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads.max(1)).build()?;
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads.max(1)).build().map_err(|e| BenchError::Setup(e.to_string()))?;
     let (mut dec, mut step, mut full, mut st) = (vec![], vec![], vec![], [vec![], vec![], vec![], vec![], vec![]]);
     let wall = Instant::now();
-    pool.install(|| -> anyhow::Result<()> {
-        for (t, j) in times.iter().zip(&jpegs) {
+    pool.install(|| -> Result<(), BenchError> {
+        for (index, (t, j)) in times.iter().zip(&jpegs).enumerate() {
             let td = Instant::now();
             // The engine's own intake (structure check and decode), as in replay and live mode.
-            let img = crate::intake::from_bytes(j, &nc.intake_options())?;
+            let img = crate::intake::from_bytes(j, &nc.intake_options()).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
             dec.push(td.elapsed().as_secs_f64() * 1000.0);
-            let n = nc.step(&Frame { time: *t, image: img }).map_err(|e| anyhow::anyhow!("{e}"))?;
+            let n = nc.step(&Frame { time: *t, image: img }).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
             let ts = n.times;
             step.push(ts.qc_ms + ts.map_ms + ts.motion_ms + ts.forecast_ms);
             full.push(ts.qc_ms + ts.map_ms + ts.motion_ms + ts.forecast_ms + ts.ensemble_ms);

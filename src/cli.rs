@@ -806,7 +806,7 @@ fn cmd_segment(a: SegmentArgs) -> Result<()> {
         let seg = segment_image(&img, &geom, sun, &params, &Reference::default());
         let stem = path.file_stem().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
         let out = a.out.join(format!("{stem}_classes.png"));
-        crate::io::write_atomic(&out, &crate::synth::encode_png_gray(&seg.classes))?;
+        crate::io::write_atomic(&out, &crate::io::encode_png_gray(&seg.classes))?;
         crate::say!("{},{:.4},{}", path.display(), seg.cloud_fraction, out.display());
     }
     Ok(())
@@ -932,7 +932,7 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
         if !day.is_empty() {
             let mask = crate::calibrate::obstruction_mask(&day, circle);
             let mp = dir.join(format!("{name}-mask.png"));
-            crate::io::write_atomic(&mp, &crate::synth::encode_png_gray(&mask))?;
+            crate::io::write_atomic(&mp, &crate::io::encode_png_gray(&mask))?;
             cal.camera.obstruction_mask = Some(PathBuf::from(format!("{name}-mask.png")));
             crate::say!("wrote {}", mp.display());
         }
@@ -945,7 +945,7 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     crate::say!("wrote {} (clear-sky library: {} bins of zenith × sun angle from {} frames)", rp.display(), reference.library_bins(), reference.library_frames);
     let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
     let pp = dir.join(format!("{name}-residuals.png"));
-    crate::io::write_atomic(&pp, &crate::synth::encode_png_rgb(&plot))?;
+    crate::io::write_atomic(&pp, &crate::io::encode_png_rgb(&plot))?;
     let dp = dir.join(format!("{name}-detections.csv"));
     crate::io::write_atomic(&dp, crate::calibrate::detections_csv(&fit, &dets).as_bytes())?;
     // The calibration file last: a run stopped before this point leaves the old one, which still

@@ -47,6 +47,7 @@ macro_rules! say {
 pub mod bench;
 pub mod calibrate;
 pub mod camera;
+#[cfg(feature = "cli")]
 pub mod cli;
 pub mod clearsky;
 pub mod cloudmap;
@@ -64,9 +65,11 @@ mod pool;
 pub mod power;
 pub mod qc;
 pub mod ramp;
+pub mod rng;
 pub mod replay;
 pub mod report;
 pub mod segment;
+#[cfg(feature = "server")]
 pub mod serve;
 pub mod settings;
 pub mod sun;

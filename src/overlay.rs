@@ -123,5 +123,5 @@ pub fn overlay_png(frame: &RgbImage, nc: &Nowcast, nowcaster: &Nowcaster) -> Vec
     let mut out = RgbImage::new(left.width() + right.width(), h);
     image::imageops::replace(&mut out, &left, 0, 0);
     image::imageops::replace(&mut out, &right, left.width() as i64, 0);
-    crate::synth::encode_png_rgb(&out)
+    crate::io::encode_png_rgb(&out)
 }

@@ -257,7 +257,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
     let mut alarms = CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability");
     let mut members = CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2");
     let mut fr = CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min");
-    let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
+    let bar = crate::io::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
     let mut outputs = vec![];

@@ -3,6 +3,7 @@
 //! (accepted, or refused with exit status 2 and a message naming the field, column or line).
 //! All cases run through the library entry points; a representative subset also through the
 //! binary. Nothing may panic, abort or hang.
+#![cfg(feature = "server")]
 mod inputs;
 
 use std::path::Path;

@@ -3,6 +3,7 @@
 //! map, per-block table, alarm rows), restarted on the same database (no forecast yet, so no alarm
 //! shown) and stale (the last frame is old). Screenshots are kept as
 //! `target/dashboard-<state>.png` (`target/dashboard-screenshot.png` is the normal state).
+#![cfg(feature = "server")]
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};

@@ -1,5 +1,6 @@
 //! Live mode end to end: the service on an ephemeral loopback port, frames dropped into a temporary
 //! incoming folder, the API asked what happened, and a restart.
+#![cfg(feature = "server")]
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpStream};
 use std::path::{Path, PathBuf};

@@ -1,6 +1,7 @@
 //! Live mode's operation: a measurement feed appended to and rotated while the service runs,
 //! the health state turning stale on the timer, the metrics page, retention of judged frames,
 //! untimed files named, and `--check`'s exit statuses.
+#![cfg(feature = "server")]
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpStream};
 use std::path::{Path, PathBuf};

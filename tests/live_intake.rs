@@ -1,5 +1,6 @@
 //! Live mode's frame intake: a slow writer that writes in place (no rename) and a future-dated
 //! frame, with the service on an ephemeral loopback port.
+#![cfg(feature = "server")]
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpStream};
 use std::path::{Path, PathBuf};

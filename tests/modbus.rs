@@ -1,6 +1,7 @@
 //! The plant controller's Modbus TCP interface: the committed register table is the generated one,
 //! and a real Modbus client reads a live service while frames arrive, checks the registers against
 //! the JSON API, is refused when it writes, and measures how soon the registers follow a nowcast.
+#![cfg(feature = "server")]
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpStream};
 use std::path::{Path, PathBuf};

@@ -2,6 +2,7 @@
 //! rate limit, append-only acknowledgements, bounded fields and bodies, where it may listen, where
 //! the token comes from, and idle or slow connections. Each test starts the service on an
 //! ephemeral loopback port with the demo site and no frames (the alarm log is seeded directly).
+#![cfg(feature = "server")]
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpStream};
 use std::path::Path;

@@ -4,6 +4,7 @@
 //! the incoming folder) are recorded every 10 % (figures in the test output, not a timed
 //! assertion); memory and open files must stay flat, the history within the configured retention,
 //! and the watcher forgets removed files.
+#![cfg(feature = "server")]
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 

@@ -1,5 +1,6 @@
 //! Webhook notifications against a local test server: JSON body, a retry after a failure with
 //! back-off, a refusal not retried, a bounded queue, and no query in the logs' URL.
+#![cfg(feature = "server")]
 
 use std::io::{Read, Write};
 use std::net::TcpListener;

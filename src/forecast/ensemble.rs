@@ -37,7 +37,7 @@ pub fn ensemble_with(
     skies: &[HorizonSky],
     central: &Forecast,
 ) -> (Vec<Forecast>, Vec<Band>) {
-    use crate::synth::noise::{gaussian, hash64};
+    use crate::rng::{gaussian, hash64};
     let p = &input.params;
     let seed = input.issue.timestamp_millis() as u64;
     use rayon::prelude::*;

@@ -439,7 +439,7 @@ mod tests {
     fn box_mismatch_matches_a_direct_sum() {
         let n = 24;
         let val = |k: usize| -> f32 {
-            let h = crate::synth::noise::hash64(k as u64);
+            let h = crate::rng::hash64(k as u64);
             if h.is_multiple_of(11) { f32::NAN } else { (h % 1000) as f32 / 500.0 - 0.5 }
         };
         let fa: Vec<f32> = (0..n * n).map(val).collect();

@@ -689,7 +689,7 @@ mod tests {
     fn blobs_of(x: f64, y: f64, count: usize, radius_m: f64, seed: usize) -> f64 {
         let mut s = 0.0;
         for k in 0..count {
-            let h = crate::synth::noise::hash64((k + seed) as u64);
+            let h = crate::rng::hash64((k + seed) as u64);
             let cx = (h % 9000) as f64 - 4500.0;
             let cy = ((h >> 32) % 9000) as f64 - 4500.0;
             let r2 = (x - cx).powi(2) + (y - cy).powi(2);

@@ -448,33 +448,7 @@ impl Scene {
     }
 }
 
-/// Encode a frame as JPEG.
-pub fn encode_jpeg(rgb: &image::RgbImage, quality: u8) -> Vec<u8> {
-    let mut buf = Vec::new();
-    let enc = image::codecs::jpeg::JpegEncoder::new_with_quality(&mut buf, quality);
-    enc.write_image(rgb.as_raw(), rgb.width(), rgb.height(), image::ExtendedColorType::Rgb8).expect("in-memory JPEG encoding of a valid RGB buffer");
-    buf
-}
-
-use image::ImageEncoder;
-
-/// Encode a grey image as PNG.
-pub fn encode_png_gray(g: &image::GrayImage) -> Vec<u8> {
-    let mut buf = Vec::new();
-    image::codecs::png::PngEncoder::new(&mut buf)
-        .write_image(g.as_raw(), g.width(), g.height(), image::ExtendedColorType::L8)
-        .expect("in-memory PNG encoding of a valid grey buffer");
-    buf
-}
-
-/// Encode an RGB image as PNG.
-pub fn encode_png_rgb(g: &image::RgbImage) -> Vec<u8> {
-    let mut buf = Vec::new();
-    image::codecs::png::PngEncoder::new(&mut buf)
-        .write_image(g.as_raw(), g.width(), g.height(), image::ExtendedColorType::Rgb8)
-        .expect("in-memory PNG encoding of a valid RGB buffer");
-    buf
-}
+pub use crate::io::{encode_jpeg, encode_png_gray, encode_png_rgb, progress_bar};
 
 /// What writing a sequence produced.
 #[derive(Debug, Clone)]
@@ -641,17 +615,3 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
     Ok(WriteSummary { frames: times.len(), bytes, render_s_per_frame: render_s })
 }
 
-/// A progress bar on standard error (hidden when `show` is false).
-pub fn progress_bar(len: u64, show: bool, what: &str) -> indicatif::ProgressBar {
-    if !show {
-        return indicatif::ProgressBar::hidden();
-    }
-    let b = indicatif::ProgressBar::new(len);
-    b.set_style(
-        indicatif::ProgressStyle::with_template("{msg:>10} [{bar:40}] {pos}/{len} frames, {per_sec}, eta {eta}")
-            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
-            .progress_chars("=> "),
-    );
-    b.set_message(what.to_string());
-    b
-}
