@@ -278,12 +278,9 @@ const SUN_ANGLE_REUSE_DEG: f32 = 0.25;
 pub struct Nowcaster {
     site: Site,
     plant: Plant,
-    luts: LutCache,
-    reference: Reference,
-    /// Earlier maps with their motion features (computed once per map).
-    history: std::collections::VecDeque<(DateTime<Utc>, Arc<CloudMap>, Arc<MapFeatures>)>,
+    map_stage: MapStage,
+    motion_stage: MotionStage,
     last_time: Option<DateTime<Utc>>,
-    tracker: LayerTracker,
     cbh_series: Option<Series>,
     measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
     tuner: Tuner,
@@ -291,7 +288,6 @@ pub struct Nowcaster {
     blend: crate::forecast::PersistenceBlend,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
-    cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
     /// Counters.
     pub counters: Counters,
@@ -316,11 +312,9 @@ impl Nowcaster {
         Nowcaster {
             site,
             plant,
-            luts: LutCache::default(),
-            reference,
-            history: Default::default(),
+            map_stage: MapStage { reference, ..Default::default() },
+            motion_stage: MotionStage::default(),
             last_time: None,
-            tracker: LayerTracker::default(),
             cbh_series,
             measurements,
             tuner: Tuner::default(),
@@ -328,7 +322,6 @@ impl Nowcaster {
             blend: Default::default(),
             irradiance,
             alarm: Default::default(),
-            cell_sky: None,
             image_geometry: std::sync::OnceLock::new(),
             counters: Counters::default(),
         }
@@ -366,7 +359,7 @@ impl Nowcaster {
 
     /// The learned clear-sky reference.
     pub fn reference(&self) -> &Reference {
-        &self.reference
+        &self.map_stage.reference
     }
 
     /// Count a frame that could not even be decoded.
@@ -419,7 +412,7 @@ impl Nowcaster {
                 crate::io::fmt_time(&now)
             ));
             self.last_time = None;
-            self.history.clear();
+            self.motion_stage.history.clear();
             self.counters.clock_reanchors += 1;
         }
         let a = ahead(time);
@@ -546,8 +539,70 @@ impl Nowcaster {
         r
     }
 
+    /// The step as a sequence of stages, each a method below with typed output: admission (size,
+    /// time order, sun), the map (with its exposure check and clear-sky reference learning), motion,
+    /// the forecast (tuning, central, ensemble and bands), then ramps and the alarm.
     fn step_inner(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
         let t0 = Clock::now();
+        let sun = self.admit(frame)?;
+        let cbh = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
+        let cam_z = self.site.file.camera.position_m[2];
+        let lut = self.map_stage.lut(&self.site, (cbh - cam_z).max(10.0));
+        check_exposure(&frame.image, &lut, &self.site.file.qc)?;
+        let t_qc = Clock::now();
+        let (map, [cf, thin_cf]) = self.map_stage.build(&frame.image, &lut, &sun, &self.site.file.segment);
+        let t_map = Clock::now();
+        let dt_s = self.last_time.map(|l| (frame.time - l).num_milliseconds() as f64 / 1000.0);
+        let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
+        let motion = moved.layers.first().map(|l| l.motion);
+        let t_motion = Clock::now();
+        if self.irradiance.tune_from_measurements {
+            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh, motion.map(|m| m.v_mps), moved.layers.len() > 1);
+        }
+        let input = self.forecast_input(&frame.time, cbh, &moved.layers, [cf, thin_cf]);
+        let tms = layer_tables(&map, &moved, &input.params);
+        let skies = horizon_skies(&input);
+        let mut fc = forecast_with(&tms, map.grid, &input, &skies);
+        let t_central = Clock::now();
+        let (members, mut bands) =
+            if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
+        self.calibrate_bands(&frame.time, &fc, &members, &mut bands);
+        self.blend_with_persistence(&frame.time, &mut fc, &mut bands);
+        let (ramps, plant_members_ghi_wm2) = self.ramps_of(&frame.time, &fc, &members);
+        let t_ens = Clock::now();
+        let alarm_change = self.alarm.update(&frame.time, &ramps, self.motion_stage.tracker.primary_accepted_run(), &self.site.file.ramps);
+        let t_fc = Clock::now();
+        self.motion_stage.remember(frame.time, map.clone(), moved.features);
+        self.last_time = Some(frame.time);
+        let ms = |a: Clock, b: Clock| (b - a).as_secs_f64() * 1000.0;
+        Ok(Nowcast {
+            time: frame.time,
+            dt_s,
+            baseline_s: moved.measurement.as_ref().map(|m| m.dt_s),
+            sun,
+            cbh_m: cbh,
+            cloud_fraction: cf,
+            map,
+            measurement: moved.measurement,
+            motion,
+            layers: moved.layers,
+            forecast: fc,
+            bands,
+            plant_members_ghi_wm2,
+            ramps,
+            alarm: self.alarm.state,
+            alarm_change,
+            alarm_reason: self.alarm.reason().to_string(),
+            alarm_basis: self.alarm.basis().cloned(),
+            irradiance: self.irradiance,
+            band_scale: [300, 600, 900].map(|h| self.band_calibration.scale(h)),
+            times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
+        })
+    }
+
+    /// Admission: the calibration's image size, a time after the newest accepted frame, and the sun
+    /// high enough. Returns the sun's position at the frame time.
+    fn admit(&self, frame: &Frame) -> Result<SunPosition, Rejection> {
         let cam = &self.site.camera;
         let (w, h) = frame.image.dimensions();
         if (w, h) != (cam.width_px, cam.height_px) {
@@ -563,83 +618,17 @@ impl Nowcaster {
         }
         let sun = position(&frame.time, &self.site.observer()).map_err(|e| Rejection::Unreadable(e.to_string()))?;
         let elev = sun.elevation_rad().to_degrees();
-        let qc = &self.site.file.qc;
-        if elev < qc.min_sun_elevation_deg {
+        if elev < self.site.file.qc.min_sun_elevation_deg {
             return Err(Rejection::SunTooLow(elev));
         }
-        let cbh = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
-        let cam_z = self.site.file.camera.position_m[2];
-        let lut = self.luts.get(cam, self.site.obstruction.as_ref(), &self.site.file.map, (cbh - cam_z).max(10.0));
-        // Exposure over the map's pixels.
-        let raw = frame.image.as_raw();
-        let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
-        for &p in lut.pixel.iter().step_by(5) {
-            if p == crate::cloudmap::NO_PIXEL {
-                continue;
-            }
-            let i = p as usize * 3;
-            let (r, g, b) = (raw[i], raw[i + 1], raw[i + 2]);
-            sum += (r as f64 + g as f64 + b as f64) / 3.0;
-            sat += (r >= 250 && g >= 250 && b >= 250) as usize;
-            n += 1;
-        }
-        let mean = if n > 0 { sum / n as f64 } else { 0.0 };
-        let sat_share = if n > 0 { sat as f64 / n as f64 } else { 0.0 };
-        if mean < qc.min_mean_level {
-            return Err(Rejection::UnderExposed(mean));
-        }
-        if mean > qc.max_mean_level || sat_share > qc.max_saturated_fraction {
-            return Err(Rejection::OverExposed(mean, sat_share));
-        }
-        let t_qc = Clock::now();
-        // Cloud map.
-        let sd = sun.direction_enu();
-        let sd3 = [sd[0] as f32, sd[1] as f32, sd[2] as f32];
-        let sun_dir = Some(sd3);
-        let sp = &self.site.file.segment;
-        // The cells' sun angles and default references are reused until the sun has moved
-        // `SUN_ANGLE_REUSE_DEG` (about a minute): that shifts a default reference by at most
-        // c1/γs · 0.25° ≈ 0.0024 in R/B (defaults; the score thresholds sit ~0.1 apart) and the
-        // glare-zone edges by 0.25°.
-        let key = Arc::as_ptr(&lut) as usize;
-        let stale = match &self.cell_sky {
-            Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > SUN_ANGLE_REUSE_DEG,
-            None => true,
-        };
-        if stale {
-            self.cell_sky = None;
-        }
-        let sky = &self.cell_sky.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(&lut, sun_dir, sp))).2;
-        let map = Arc::new(build_map_with(&frame.image, &lut, sky, sp, &self.reference));
-        let [cf, thin_cf] = map.cover(&lut, sp.cloud_fraction_zenith_deg as f32);
-        if cf <= sp.library_max_cloud_fraction {
-            let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
-                let i = lut.pixel[k] as usize * 3;
-                ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] })
-            });
-            self.reference.learn(sp, sample);
-        }
-        let t_map = Clock::now();
-        // Motion.
-        let mp = &self.site.file.motion;
-        let dt_s = self.last_time.map(|l| (frame.time - l).num_milliseconds() as f64 / 1000.0);
-        // Earlier map: the newest at least `baseline_s` old, else the oldest kept; within the gap limit.
-        let age = |t: &DateTime<Utc>| (frame.time - *t).num_milliseconds() as f64 / 1000.0;
-        self.history.retain(|(t, m, _)| age(t) <= mp.max_gap_s && m.grid == map.grid);
-        let earlier = self.history.iter().rev().find(|(t, _, _)| age(t) >= mp.baseline_s).or(self.history.front()).cloned();
-        let priors = self.tracker.priors();
-        let features = Arc::new(MapFeatures::new(&map));
-        let measurement = earlier.as_ref().map(|(t, pm, pf)| measure_prepared((pm, pf), (&map, &features), age(t), mp, &priors));
-        // A measurement locked at zero while the map changes stays out of the filter.
-        let layers = self.tracker.update(measurement.as_ref().filter(|m| !m.locked_at_zero), dt_s.unwrap_or(0.0), mp);
-        let motion = layers.first().map(|l| l.motion);
-        let t_motion = Clock::now();
-        // Tuning from measurements at the frame time.
-        if self.irradiance.tune_from_measurements {
-            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh, motion.map(|m| m.v_mps), layers.len() > 1);
-        }
-        let input = ForecastInput {
-            issue: frame.time,
+        Ok(sun)
+    }
+
+    /// The forecast's inputs at a frame: the tracked layers' advection (or a still sky with a wide
+    /// speed spread when nothing is tracked yet), the cover, the weather and the probe points.
+    fn forecast_input(&self, t: &DateTime<Utc>, cbh: f64, layers: &[TrackedLayer], [cf, thin_cf]: [f64; 2]) -> ForecastInput<'_> {
+        ForecastInput {
+            issue: *t,
             observer: self.site.observer(),
             clear_model: self.site.clear_sky_model(),
             altitude_m: self.site.file.site.elevation_m,
@@ -656,8 +645,8 @@ impl Nowcaster {
             plant: &self.plant,
             params: self.irradiance,
             power: self.site.file.power,
-            temp_air_c: self.weather(&frame.time, "temp_air_c").unwrap_or(self.site.file.power.default_temp_air_c),
-            wind_mps: self.weather(&frame.time, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
+            temp_air_c: self.weather(t, "temp_air_c").unwrap_or(self.site.file.power.default_temp_air_c),
+            wind_mps: self.weather(t, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
             beam_scale: 1.0,
             diffuse_scale: 1.0,
             point_stride: 1,
@@ -668,70 +657,19 @@ impl Nowcaster {
                 }
                 _ => vec![],
             },
-        };
-        // Two layers: each cloudy cell goes with the layer whose motion explains it, and each layer's
-        // cloud is advected by its own motion.
-        let tms = match (&earlier, layers.as_slice()) {
-            (Some((t, _, pf)), [l0, l1, ..]) => {
-                // The measurement's own labels when it saw both layers (in the tracked order),
-                // else labels from the tracked motions.
-                let (v0, v1) = (l0.motion.v_mps, l1.motion.v_mps);
-                let labels = measurement
-                    .as_ref()
-                    .and_then(|m| m.labels_for(v0, v1))
-                    .unwrap_or_else(|| label_layers_on(pf.feature(), features.feature(), &map, age(t), &[v0, v1]));
-                vec![TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 0))), TransmittanceMap::for_layer(&map, &input.params, Some((&labels, 1)))]
-            }
-            _ => vec![TransmittanceMap::new(&map, &input.params)],
-        };
-        let skies = horizon_skies(&input);
-        let fc = forecast_with(&tms, map.grid, &input, &skies);
-        let t_central = Clock::now();
-        let (members, mut bands) =
-            if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
-        self.calibrate_bands(&frame.time, &fc, &members, &mut bands);
-        let mut fc = fc;
-        self.blend_with_persistence(&frame.time, &mut fc, &mut bands);
-        // Ramp events from the plant's power series, and the alarm.
-        let plant_series = |f: &Forecast| f.rows.iter().filter(|r| r.target == "plant").map(|r| r.power_kw).collect::<Vec<f64>>();
+        }
+    }
+
+    /// Ramp events from the plant's power series (central and members), and the members' plant
+    /// GHI per horizon.
+    fn ramps_of(&self, t: &DateTime<Utc>, fc: &Forecast, members: &[Forecast]) -> (Vec<crate::ramp::RampEvent>, Vec<Vec<f64>>) {
         let step_min = self.site.file.forecast.step_s as f64 / 60.0;
         let cap_ac: f64 = self.plant.blocks.iter().map(|b| b.ac_capacity_kw.unwrap_or(b.capacity_kw / self.site.file.power.dc_ac_ratio)).sum();
-        let rp = self.site.file.ramps;
-        let member_series: Vec<Vec<f64>> = members.iter().map(plant_series).collect();
-        let ramps = crate::ramp::ramp_events(&frame.time, &plant_series(&fc), &member_series, step_min, cap_ac, &rp);
-        let n_h = fc.rows.iter().filter(|r| r.target == "plant").count();
-        let plant_members_ghi_wm2: Vec<Vec<f64>> = (0..n_h)
-            .map(|k| members.iter().filter_map(|m| m.rows.iter().filter(|r| r.target == "plant").nth(k).map(|r| r.irradiance.ghi_wm2)).collect())
-            .collect();
-        let t_ens = Clock::now();
-        let alarm_change = self.alarm.update(&frame.time, &ramps, self.tracker.primary_accepted_run(), &rp);
-        let t_fc = Clock::now();
-        self.history.push_back((frame.time, map.clone(), features));
-        self.last_time = Some(frame.time);
-        let ms = |a: Clock, b: Clock| (b - a).as_secs_f64() * 1000.0;
-        Ok(Nowcast {
-            time: frame.time,
-            dt_s,
-            baseline_s: measurement.as_ref().map(|m| m.dt_s),
-            sun,
-            cbh_m: cbh,
-            cloud_fraction: cf,
-            map,
-            measurement,
-            motion,
-            layers,
-            forecast: fc,
-            bands,
-            plant_members_ghi_wm2,
-            ramps,
-            alarm: self.alarm.state,
-            alarm_change,
-            alarm_reason: self.alarm.reason().to_string(),
-            alarm_basis: self.alarm.basis().cloned(),
-            irradiance: self.irradiance,
-            band_scale: [300, 600, 900].map(|h| self.band_calibration.scale(h)),
-            times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
-        })
+        let member_series: Vec<Vec<f64>> = members.iter().map(|m| m.plant_power_kw()).collect();
+        let ramps = crate::ramp::ramp_events(t, &fc.plant_power_kw(), &member_series, step_min, cap_ac, &self.site.file.ramps);
+        let plant_members_ghi_wm2: Vec<Vec<f64>> =
+            (0..fc.plant().count()).map(|k| members.iter().filter_map(|m| m.plant().nth(k).map(|r| r.irradiance.ghi_wm2)).collect()).collect();
+        (ramps, plant_members_ghi_wm2)
     }
 
     /// Online band calibration against the pyranometers' mean (when there are pyranometers and
@@ -789,7 +727,7 @@ impl Nowcaster {
             return;
         }
         let kstar = (y / clear_then).clamp(0.0, 1.5);
-        let plant_rows: Vec<(DateTime<Utc>, u32, f64)> = fc.rows.iter().filter(|r| r.target == "plant").map(|r| (r.time, r.horizon_s, r.ghi_clear_wm2)).collect();
+        let plant_rows: Vec<(DateTime<Utc>, u32, f64)> = fc.plant().map(|r| (r.time, r.horizon_s, r.ghi_clear_wm2)).collect();
         for ((t, h, clear), cam) in plant_rows.into_iter().zip(fc.probes_ghi_wm2.iter()) {
             self.blend.push(t, h, *cam, kstar * clear);
         }
@@ -867,6 +805,146 @@ impl Nowcaster {
         }
     }
 
+}
+
+/// Frame QC over the map's pixels: the mean level and the share of saturated pixels (every fifth
+/// map pixel) against [`crate::qc::QcParams`].
+fn check_exposure(image: &image::RgbImage, lut: &crate::cloudmap::Lut, qc: &crate::qc::QcParams) -> Result<(), Rejection> {
+    let raw = image.as_raw();
+    let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
+    for &p in lut.pixel.iter().step_by(5) {
+        if p == crate::cloudmap::NO_PIXEL {
+            continue;
+        }
+        let i = p as usize * 3;
+        let (r, g, b) = (raw[i], raw[i + 1], raw[i + 2]);
+        sum += (r as f64 + g as f64 + b as f64) / 3.0;
+        sat += (r >= 250 && g >= 250 && b >= 250) as usize;
+        n += 1;
+    }
+    let mean = if n > 0 { sum / n as f64 } else { 0.0 };
+    let sat_share = if n > 0 { sat as f64 / n as f64 } else { 0.0 };
+    if mean < qc.min_mean_level {
+        return Err(Rejection::UnderExposed(mean));
+    }
+    if mean > qc.max_mean_level || sat_share > qc.max_saturated_fraction {
+        return Err(Rejection::OverExposed(mean, sat_share));
+    }
+    Ok(())
+}
+
+/// The map stage's state: the look-up tables per plane height, the learned clear-sky reference,
+/// and the cells' sun angles (reused while the sun moves little).
+#[derive(Default)]
+struct MapStage {
+    luts: LutCache,
+    reference: Reference,
+    cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
+}
+
+impl MapStage {
+    /// The look-up table for a cloud plane `height_m` above the camera.
+    fn lut(&mut self, site: &Site, height_m: f64) -> Arc<crate::cloudmap::Lut> {
+        self.luts.get(&site.camera, site.obstruction.as_ref(), &site.file.map, height_m)
+    }
+
+    /// The cloud map of a frame and its cover `[cloud, thin]`; a nearly clear frame also teaches
+    /// the clear-sky reference.
+    fn build(&mut self, image: &image::RgbImage, lut: &Arc<crate::cloudmap::Lut>, sun: &SunPosition, sp: &crate::segment::SegmentParams) -> (Arc<CloudMap>, [f64; 2]) {
+        let sd = sun.direction_enu();
+        let sd3 = [sd[0] as f32, sd[1] as f32, sd[2] as f32];
+        let sun_dir = Some(sd3);
+        // The cells' sun angles and default references are reused until the sun has moved
+        // `SUN_ANGLE_REUSE_DEG` (about a minute): that shifts a default reference by at most
+        // c1/γs · 0.25° ≈ 0.0024 in R/B (defaults; the score thresholds sit ~0.1 apart) and the
+        // glare-zone edges by 0.25°.
+        let key = Arc::as_ptr(lut) as usize;
+        let stale = match &self.cell_sky {
+            Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > SUN_ANGLE_REUSE_DEG,
+            None => true,
+        };
+        if stale {
+            self.cell_sky = None;
+        }
+        let sky = &self.cell_sky.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(lut, sun_dir, sp))).2;
+        let map = Arc::new(build_map_with(image, lut, sky, sp, &self.reference));
+        let [cf, thin_cf] = map.cover(lut, sp.cloud_fraction_zenith_deg as f32);
+        if cf <= sp.library_max_cloud_fraction {
+            let raw = image.as_raw();
+            let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
+                let i = lut.pixel[k] as usize * 3;
+                ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] })
+            });
+            self.reference.learn(sp, sample);
+        }
+        (map, [cf, thin_cf])
+    }
+}
+
+/// An earlier map with its motion features (computed once per map).
+type KeptMap = (DateTime<Utc>, Arc<CloudMap>, Arc<MapFeatures>);
+
+/// The motion stage's state: earlier maps and the layer tracker.
+#[derive(Default)]
+struct MotionStage {
+    history: std::collections::VecDeque<KeptMap>,
+    tracker: LayerTracker,
+}
+
+/// What the motion stage found at a frame.
+struct Moved {
+    /// The measurement between the earlier map and this one (none without an earlier map).
+    measurement: Option<Measurement>,
+    /// The tracked layers after the update.
+    layers: Vec<TrackedLayer>,
+    /// The earlier map measured against, and its age \[s\].
+    earlier: Option<(KeptMap, f64)>,
+    /// This map's motion features.
+    features: Arc<MapFeatures>,
+}
+
+impl MotionStage {
+    /// Measure this map against the newest earlier map at least `baseline_s` old (else the oldest
+    /// kept, within the gap limit) and update the tracker.
+    fn update(&mut self, t: &DateTime<Utc>, map: &Arc<CloudMap>, dt_s: Option<f64>, mp: &crate::motion::MotionParams) -> Moved {
+        let age = |e: &DateTime<Utc>| (*t - *e).num_milliseconds() as f64 / 1000.0;
+        self.history.retain(|(e, m, _)| age(e) <= mp.max_gap_s && m.grid == map.grid);
+        let earlier = self.history.iter().rev().find(|(e, _, _)| age(e) >= mp.baseline_s).or(self.history.front()).cloned();
+        let priors = self.tracker.priors();
+        let features = Arc::new(MapFeatures::new(map));
+        let measurement = earlier.as_ref().map(|(e, pm, pf)| measure_prepared((pm, pf), (map, &features), age(e), mp, &priors));
+        // A measurement locked at zero while the map changes stays out of the filter.
+        let layers = self.tracker.update(measurement.as_ref().filter(|m| !m.locked_at_zero), dt_s.unwrap_or(0.0), mp);
+        let earlier = earlier.map(|k| {
+            let a = age(&k.0);
+            (k, a)
+        });
+        Moved { measurement, layers, earlier, features }
+    }
+
+    /// Keep an accepted frame's map for the next frames.
+    fn remember(&mut self, t: DateTime<Utc>, map: Arc<CloudMap>, features: Arc<MapFeatures>) {
+        self.history.push_back((t, map, features));
+    }
+}
+
+/// The transmittance tables: one for a single layer; with two layers each cloudy cell goes with
+/// the layer whose motion explains it, and each layer's cloud is advected by its own motion.
+fn layer_tables(map: &CloudMap, moved: &Moved, params: &IrradianceParams) -> Vec<TransmittanceMap> {
+    match (&moved.earlier, moved.layers.as_slice()) {
+        (Some(((_, _, pf), age_s)), [l0, l1, ..]) => {
+            // The measurement's own labels when it saw both layers (in the tracked order),
+            // else labels from the tracked motions.
+            let (v0, v1) = (l0.motion.v_mps, l1.motion.v_mps);
+            let labels = moved
+                .measurement
+                .as_ref()
+                .and_then(|m| m.labels_for(v0, v1))
+                .unwrap_or_else(|| label_layers_on(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1]));
+            vec![TransmittanceMap::for_layer(map, params, Some((&labels, 0))), TransmittanceMap::for_layer(map, params, Some((&labels, 1)))]
+        }
+        _ => vec![TransmittanceMap::new(map, params)],
+    }
 }
 
 #[cfg(test)]

@@ -294,7 +294,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                     decode_ms.push(dms);
                     step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.ensemble_ms + nc.times.qc_ms);
                     forecast_rows(&nc, &mut fc);
-                    let plant_h: Vec<u32> = nc.forecast.rows.iter().filter(|r| r.target == "plant").map(|r| r.horizon_s).collect();
+                    let plant_h: Vec<u32> = nc.forecast.plant().map(|r| r.horizon_s).collect();
                     for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
                         for (m, v) in ms.iter().enumerate() {
                             members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);

@@ -179,12 +179,12 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
         let mut f = vec![];
         let mut band = vec![];
         let mut obs = vec![];
-        for r in rows.iter().filter(|r| r.get("block").map(String::as_str) == Some("plant") && num(r, "horizon_s") as u32 == lead) {
+        for r in rows.iter().filter(|r| r.get("block").map(String::as_str) == Some(crate::plant::PLANT_TARGET) && num(r, "horizon_s") as u32 == lead) {
             let Ok(t) = parse_time("t", &r["target_time_utc"]) else { continue };
             let x = minute_of_day(&t);
             f.push((x, num(r, "ghi_wm2")));
             band.push((x, num(r, "ghi_p10_wm2"), num(r, "ghi_p90_wm2")));
-            if let Some((g, _)) = truth.and_then(|tr| tr.at(&t, "plant")) {
+            if let Some((g, _)) = truth.and_then(|tr| tr.at(&t, crate::plant::PLANT_TARGET)) {
                 obs.push((x, g));
             }
         }
@@ -241,7 +241,7 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
     // Ramp timeline.
     let p5: Vec<(f64, f64)> = rows
         .iter()
-        .filter(|r| r.get("block").map(String::as_str) == Some("plant") && num(r, "horizon_s") as u32 == 300)
+        .filter(|r| r.get("block").map(String::as_str) == Some(crate::plant::PLANT_TARGET) && num(r, "horizon_s") as u32 == 300)
         .filter_map(|r| Some((minute_of_day(&parse_time("t", &r["target_time_utc"]).ok()?), num(r, "power_kw") / 1000.0)))
         .collect();
     html += "<h2>Ramps and alarms</h2>";

@@ -369,7 +369,7 @@ pub fn score_bands(forecasts: &Path, truth: &Truth, target: &str) -> Result<Vec<
     // CRPS from the members, when the replay wrote them.
     let mut crps: BTreeMap<u32, (f64, usize)> = BTreeMap::new();
     let members_csv = forecasts.with_file_name("ensemble_plant.csv");
-    if target == "plant" && members_csv.is_file() {
+    if target == crate::plant::PLANT_TARGET && members_csv.is_file() {
         let mut groups: BTreeMap<(DateTime<Utc>, u32), Vec<f64>> = BTreeMap::new();
         for r in read_rows(&members_csv)? {
             let t = time(&members_csv, &r, "issue_time_utc")?;
@@ -549,10 +549,10 @@ pub struct Evaluation {
 pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, Box<dyn std::error::Error + Send + Sync>> {
     crate::output_set::check_manifest(replay_out)?;
     let truth = Truth::read(&sequence.join("truth").join("irradiance.csv"))?;
-    let plant = score_forecasts(&replay_out.join("forecasts.csv"), &truth, "plant")?;
+    let plant = score_forecasts(&replay_out.join("forecasts.csv"), &truth, crate::plant::PLANT_TARGET)?;
     let motion = score_motion(&replay_out.join("motion.csv"), &sequence.join("truth").join("layers.csv"))?;
     let segmentation = score_segmentation(sequence)?;
-    let bands = score_bands(&replay_out.join("forecasts.csv"), &truth, "plant")?;
+    let bands = score_bands(&replay_out.join("forecasts.csv"), &truth, crate::plant::PLANT_TARGET)?;
     let ramps = if replay_out.join("ramps.csv").is_file() { Some(score_ramps(sequence, replay_out, &truth, 300.0, 120.0, 0.5)?) } else { None };
     Ok(Evaluation { plant, bands, ramps, motion, segmentation })
 }

@@ -83,7 +83,7 @@ impl PersistenceBlend {
         // The factor per horizon, from the plant row.
         let mut factor: BTreeMap<u32, f64> = BTreeMap::new();
         for (r, w) in forecast.rows.iter().zip(&weights) {
-            if r.target == "plant" && *w < 1.0 && r.irradiance.ghi_wm2 > 1.0 {
+            if r.target == crate::plant::PLANT_TARGET && *w < 1.0 && r.irradiance.ghi_wm2 > 1.0 {
                 let combined = w * r.irradiance.ghi_wm2 + (1.0 - w) * kstar * r.ghi_clear_wm2;
                 factor.insert(r.horizon_s, (combined / r.irradiance.ghi_wm2).clamp(0.0, 5.0));
             }

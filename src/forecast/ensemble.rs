@@ -152,7 +152,7 @@ impl BandCalibration {
             scaled(k, &mut b.ghi_wm2);
             scaled(k, &mut b.power_kw);
         }
-        let horizons = forecast.rows.iter().filter(|r| r.target == "plant");
+        let horizons = forecast.plant();
         for (r, pb) in horizons.zip(probe_bands) {
             if self.pending.len() < Self::MAX_PENDING {
                 let mut q = *pb;

@@ -392,6 +392,18 @@ pub struct Forecast {
     pub probes_ghi_wm2: Vec<f64>,
 }
 
+impl Forecast {
+    /// The whole plant's rows, one per horizon in order.
+    pub fn plant(&self) -> impl Iterator<Item = &TargetForecast> {
+        self.rows.iter().filter(|r| r.target == crate::plant::PLANT_TARGET)
+    }
+
+    /// The whole plant's AC power per horizon \[kW\].
+    pub fn plant_power_kw(&self) -> Vec<f64> {
+        self.plant().map(|r| r.power_kw).collect()
+    }
+}
+
 /// Cloud-plane point (east, north, relative to the camera) where the ray from ground point `p`
 /// toward the sun crosses the cloud base.
 #[inline]
@@ -522,7 +534,7 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             plant_power += r.power_kw;
             out.rows.push(r);
         }
-        let mut pr = row("plant", h, t, &plant_acc, clear.ghi_wm2);
+        let mut pr = row(crate::plant::PLANT_TARGET, h, t, &plant_acc, clear.ghi_wm2);
         pr.power_kw = plant_power;
         out.rows.push(pr);
     }

@@ -795,7 +795,7 @@ fn engine_loop(
                 let mut j = nowcast_json(n);
                 j["site_time_zone"] = time_zone.clone();
                 latest = Some(j);
-                let plant: Vec<&crate::forecast::TargetForecast> = n.forecast.rows.iter().filter(|r| r.target == "plant").collect();
+                let plant: Vec<&crate::forecast::TargetForecast> = n.forecast.plant().collect();
                 let h = db::HistoryRow {
                     time_utc: fmt_time(&n.time),
                     cloud_fraction: n.cloud_fraction,

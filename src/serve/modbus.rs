@@ -391,7 +391,7 @@ pub fn markdown(targets: &[String]) -> String {
 
 /// The targets served for a site file: the plant, then its blocks in order.
 pub fn targets_of(site: &crate::config::SiteFile) -> Vec<String> {
-    std::iter::once("plant".to_string()).chain(site.plant.blocks.iter().map(|b| b.name.clone())).collect()
+    std::iter::once(crate::plant::PLANT_TARGET.to_string()).chain(site.plant.blocks.iter().map(|b| b.name.clone())).collect()
 }
 
 /// How the Modbus server is run.
