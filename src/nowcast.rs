@@ -10,7 +10,7 @@ use chrono::{DateTime, Utc};
 use crate::cloudmap::{CloudMap, LutCache, build_map_with};
 use crate::config::Site;
 use crate::forecast::{Advection, Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, horizon_skies, quantile_sorted, sun_ray_plane_point};
-use crate::io::{Measurements, Series};
+use crate::io::{InputError, Measurements, Series, fmt_time};
 use crate::motion::{LayerTracker, MapFeatures, Measurement, Motion, TrackedLayer, label_layers_on, measure_prepared};
 use crate::plant::Plant;
 use crate::segment::{Class, Reference};
@@ -23,6 +23,17 @@ pub struct Frame {
     pub time: DateTime<Utc>,
     /// Pixels.
     pub image: image::RgbImage,
+}
+
+/// Why the engine could not be set up.
+#[derive(Debug, thiserror::Error)]
+pub enum SetupError {
+    /// The site or calibration file is bad.
+    #[error(transparent)]
+    Config(#[from] crate::config::ConfigError),
+    /// A series or measurements file is bad.
+    #[error(transparent)]
+    Input(#[from] crate::io::InputError),
 }
 
 /// Why a frame was not used.
@@ -325,6 +336,62 @@ impl Nowcaster {
             image_geometry: std::sync::OnceLock::new(),
             counters: Counters::default(),
         }
+    }
+
+    /// Set the engine up from a site file: load the site and its camera, the base-height series
+    /// (which must cover `frame_span` when given) and the measurements (screened; flagged values are
+    /// counted). Replay and live mode both start here.
+    ///
+    /// # Errors
+    /// Bad files, an empty plant, a base-height series that misses the frames.
+    pub fn open(site_path: &std::path::Path, measurements: Option<&std::path::Path>, frame_span: Option<(DateTime<Utc>, DateTime<Utc>)>) -> Result<Nowcaster, SetupError> {
+        let site = Site::load(site_path)?;
+        if site.file.plant.blocks.is_empty() {
+            return Err(crate::config::ConfigError::Invalid {
+                file: site_path.to_path_buf(),
+                field: "plant.blocks".into(),
+                expected: "at least one block with a footprint".into(),
+                got: "none".into(),
+            }
+            .into());
+        }
+        let series = match &site.cbh_csv {
+            Some(p) => {
+                let s = Series::read_cbh_csv(p)?;
+                if let Some((a, b)) = frame_span {
+                    let (s0, s1) = (s.times[0], *s.times.last().unwrap_or(&s.times[0]));
+                    if s1 < a || s0 > b {
+                        return Err(InputError::Other {
+                            file: p.clone(),
+                            message: format!(
+                                "cloud base height series ({} to {}) does not cover the frames ({} to {})",
+                                fmt_time(&s0),
+                                fmt_time(&s1),
+                                fmt_time(&a),
+                                fmt_time(&b)
+                            ),
+                        }
+                        .into());
+                    }
+                }
+                Some(s)
+            }
+            None => None,
+        };
+        let mut flagged = std::collections::BTreeMap::new();
+        let meas = match measurements {
+            Some(p) => {
+                let mut m = Measurements::read_csv(p)?;
+                let f = &site.file.site;
+                let report = m.screen(p, &f.observer(), f.clear_sky(), f.elevation_m)?;
+                flagged = report.counts();
+                Some(m)
+            }
+            None => None,
+        };
+        let mut nc = Nowcaster::new(site, series, meas);
+        nc.counters.measurements_flagged = flagged;
+        Ok(nc)
     }
 
     /// Restore the alarm state (live mode, after a restart).

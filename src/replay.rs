@@ -31,8 +31,7 @@ use std::path::{Path, PathBuf};
 
 use chrono::{DateTime, Utc};
 
-use crate::config::Site;
-use crate::io::{CsvTable, InputError, Measurements, Series, fmt_time, list_frames};
+use crate::io::{CsvTable, InputError, fmt_time, list_frames};
 use crate::nowcast::{Counters, Frame, Nowcast, Nowcaster, Rejection};
 use crate::output_set::{OutputSet, OutputSetError};
 
@@ -77,6 +76,9 @@ pub struct ReplaySummary {
 /// An error that stops a replay.
 #[derive(Debug, thiserror::Error)]
 pub enum ReplayError {
+    /// The engine could not be set up (site, calibration, series or measurements).
+    #[error(transparent)]
+    Setup(#[from] crate::nowcast::SetupError),
     /// The site or calibration file is bad.
     #[error(transparent)]
     Config(#[from] crate::config::ConfigError),
@@ -88,58 +90,12 @@ pub enum ReplayError {
     Output(#[from] OutputSetError),
 }
 
-/// Load the site, its base-height series and measurements, and check they fit the frames.
+/// Set up the engine for a replay ([`Nowcaster::open`]).
 ///
 /// # Errors
 /// Bad files, an empty plant, a base-height series that misses the frames.
 pub fn prepare(opts: &ReplayOptions, frame_span: Option<(DateTime<Utc>, DateTime<Utc>)>) -> Result<Nowcaster, ReplayError> {
-    let site = Site::load(&opts.site)?;
-    if site.file.plant.blocks.is_empty() {
-        return Err(crate::config::ConfigError::Invalid {
-            file: opts.site.clone(),
-            field: "plant.blocks".into(),
-            expected: "at least one block with a footprint".into(),
-            got: "none".into(),
-        }
-        .into());
-    }
-    let series = match &site.cbh_csv {
-        Some(p) => {
-            let s = Series::read_cbh_csv(p)?;
-            if let Some((a, b)) = frame_span {
-                let (s0, s1) = (s.times[0], *s.times.last().unwrap_or(&s.times[0]));
-                if s1 < a || s0 > b {
-                    return Err(InputError::Other {
-                        file: p.clone(),
-                        message: format!(
-                            "cloud base height series ({} to {}) does not cover the frames ({} to {})",
-                            fmt_time(&s0),
-                            fmt_time(&s1),
-                            fmt_time(&a),
-                            fmt_time(&b)
-                        ),
-                    }
-                    .into());
-                }
-            }
-            Some(s)
-        }
-        None => None,
-    };
-    let mut flagged = std::collections::BTreeMap::new();
-    let meas = match &opts.measurements {
-        Some(p) => {
-            let mut m = Measurements::read_csv(p)?;
-            let f = &site.file.site;
-            let report = m.screen(p, &f.observer(), f.clear_sky(), f.elevation_m)?;
-            flagged = report.counts();
-            Some(m)
-        }
-        None => None,
-    };
-    let mut nc = Nowcaster::new(site, series, meas);
-    nc.counters.measurements_flagged = flagged;
-    Ok(nc)
+    Ok(Nowcaster::open(&opts.site, opts.measurements.as_deref(), frame_span)?)
 }
 
 fn median(mut v: Vec<f64>) -> f64 {

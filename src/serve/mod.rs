@@ -458,15 +458,7 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
     let is_tls = tls.is_some();
     let (max_connections, lowered) = http::effective_max_connections(opts.server.max_connections);
     warnings.extend(lowered);
-    let nowcaster_opts = crate::replay::ReplayOptions {
-        site: opts.site.clone(),
-        frames: opts.incoming.clone(),
-        out: PathBuf::new(),
-        measurements: None,
-        overlays_every: 0,
-        progress: false,
-    };
-    let mut nowcaster = crate::replay::prepare(&nowcaster_opts, None)?;
+    let mut nowcaster = Nowcaster::open(&opts.site, None, None)?;
     std::fs::create_dir_all(&opts.incoming)?;
     let conn = db::open(&opts.db).map_err(|e| anyhow::anyhow!("{}: {e}", opts.db.display()))?;
     if let Some(s) = db::last_state(&conn)? {
@@ -539,15 +531,7 @@ pub fn check(opts: &LiveOptions) -> anyhow::Result<Vec<String>> {
     for w in exposure_warnings(opts)? {
         out.push(format!("warning: {w}"));
     }
-    let nowcaster_opts = crate::replay::ReplayOptions {
-        site: opts.site.clone(),
-        frames: opts.incoming.clone(),
-        out: PathBuf::new(),
-        measurements: None,
-        overlays_every: 0,
-        progress: false,
-    };
-    let nc = crate::replay::prepare(&nowcaster_opts, None).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let nc = Nowcaster::open(&opts.site, None, None).map_err(|e| anyhow::anyhow!("{e}"))?;
     let f = &nc.site().file;
     out.push(format!(
         "site {}: {} block(s), {} pyranometer(s), camera {}x{} px",
