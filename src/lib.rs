@@ -18,7 +18,9 @@
 //! | cloud segmentation | [`segment`] |
 //! | cloud-plane map | [`cloudmap`] |
 //! | cloud motion | [`motion`] |
-//! | shadow casting and irradiance forecast | [`forecast`] |
+//! | shadow projection onto the ground | [`shadow`] |
+//! | plane-of-array transposition, tracker orientation | [`transposition`] |
+//! | irradiance and power forecast, ensemble, bands | [`forecast`] |
 //! | the per-frame engine | [`nowcast`] |
 //! | replay of recorded sequences, scoring | [`replay`], [`verify`] |
 //!
@@ -72,6 +74,8 @@ pub mod segment;
 #[cfg(feature = "server")]
 pub mod serve;
 pub mod settings;
+pub mod shadow;
 pub mod sun;
 pub mod synth;
+pub mod transposition;
 pub mod verify;

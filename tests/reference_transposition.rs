@@ -5,7 +5,7 @@ mod common;
 
 use common::{num, read_table};
 use nephocast::clearsky::Irradiance;
-use nephocast::forecast::{aoi_rad, poa_hay_davies, tracker_orientation};
+use nephocast::transposition::{aoi_rad, poa_hay_davies, tracker_orientation};
 
 #[test]
 fn hay_davies_and_tracker_match_pvlib() {
