@@ -762,7 +762,8 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
 }
 
 fn cmd_segment(a: SegmentArgs) -> Result<()> {
-    use crate::segment::{ImageGeometry, Reference, geometry_free, segment_image};
+    use crate::calibrate::geometry_free;
+    use crate::segment::{ImageGeometry, Reference, segment_image};
     let site = a.site.as_ref().map(|p| crate::config::Site::load(p)).transpose()?;
     let cal_cam = match &a.calibration {
         Some(p) => {
@@ -785,7 +786,7 @@ fn cmd_segment(a: SegmentArgs) -> Result<()> {
             let d = sp.direction_enu();
             (s.camera.clone(), Some([d[0] as f32, d[1] as f32, d[2] as f32]))
         } else if let Some(c) = &cal_cam {
-            let sun = crate::segment::find_sun_blob(&img, 245, 5, 0.06 * c.image_circle_radius_px())
+            let sun = crate::calibrate::find_sun_blob(&img, 245, 5, 0.06 * c.image_circle_radius_px())
                 .and_then(|(x, y, _)| c.unproject_enu(x, y))
                 .map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]);
             (c.clone(), sun)
@@ -923,7 +924,7 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
     crate::io::clean_stale_temps(dir);
     if a.obstruction_mask {
-        let circle = crate::segment::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
+        let circle = crate::calibrate::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
         let day: Vec<&image::RgbImage> = frames
             .iter()
             .filter(|(t, _)| position(t, &site.site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))

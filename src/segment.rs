@@ -39,7 +39,7 @@ use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
-use crate::camera::{Camera, Orientation, Projection};
+use crate::camera::Camera;
 use crate::settings::{ConfigError, check_range};
 
 /// Pixel class as written in class masks.
@@ -623,105 +623,6 @@ pub fn segment_image(
     }
 }
 
-/// The image circle found in an image: centre and radius \[px\].
-#[derive(Debug, Clone, Copy, PartialEq)]
-pub struct ImageCircle {
-    /// Centre column.
-    pub cx_px: f64,
-    /// Centre row.
-    pub cy_px: f64,
-    /// Radius.
-    pub radius_px: f64,
-}
-
-/// Find the image circle of a fisheye frame: the pixels brighter than a dark level (max channel
-/// above 40) give the centre (their centroid) and the radius (from their area).
-pub fn fit_image_circle(img: &image::RgbImage) -> Option<ImageCircle> {
-    let (mut sx, mut sy, mut n) = (0.0, 0.0, 0.0);
-    for (x, y, p) in img.enumerate_pixels() {
-        if p.0.iter().copied().max().unwrap_or(0) > 40 {
-            sx += x as f64;
-            sy += y as f64;
-            n += 1.0;
-        }
-    }
-    (n > 100.0).then(|| ImageCircle { cx_px: sx / n, cy_px: sy / n, radius_px: (n / std::f64::consts::PI).sqrt() })
-}
-
-/// Find the sun in an image: among the blobs of saturated pixels (all channels ≥ `level`, at least
-/// `min_px` pixels), the one whose neighbourhood (`radius_px`) holds the most saturated pixels — the
-/// sun with its glare, rather than one bright cloud — and the centroid of the saturated pixels in
-/// that neighbourhood. Returns (column, row, saturated pixels counted).
-pub fn find_sun_blob(img: &image::RgbImage, level: u8, min_px: usize, radius_px: f64) -> Option<(f64, f64, usize)> {
-    let (w, h) = img.dimensions();
-    let sat: Vec<bool> = img.pixels().map(|p| p.0.iter().all(|c| *c >= level)).collect();
-    let mut seen = vec![false; sat.len()];
-    let mut seeds: Vec<(f64, f64)> = vec![];
-    let mut stack = vec![];
-    for start in 0..sat.len() {
-        if !sat[start] || seen[start] {
-            continue;
-        }
-        let (mut sx, mut sy, mut n) = (0.0, 0.0, 0usize);
-        stack.push(start);
-        seen[start] = true;
-        while let Some(i) = stack.pop() {
-            let (x, y) = ((i as u32 % w) as i64, (i as u32 / w) as i64);
-            sx += x as f64;
-            sy += y as f64;
-            n += 1;
-            for (dx, dy) in [(1, 0), (-1, 0), (0, 1), (0, -1)] {
-                let (nx, ny) = (x + dx, y + dy);
-                if nx >= 0 && ny >= 0 && nx < w as i64 && ny < h as i64 {
-                    let j = (ny as u32 * w + nx as u32) as usize;
-                    if sat[j] && !seen[j] {
-                        seen[j] = true;
-                        stack.push(j);
-                    }
-                }
-            }
-        }
-        if n >= min_px {
-            seeds.push((sx / n as f64, sy / n as f64));
-        }
-    }
-    if seeds.is_empty() {
-        return None;
-    }
-    let sat_pts: Vec<(f64, f64)> =
-        sat.iter().enumerate().filter(|(_, s)| **s).map(|(i, _)| ((i as u32 % w) as f64, (i as u32 / w) as f64)).collect();
-    let r2 = radius_px * radius_px;
-    let near = |c: (f64, f64)| sat_pts.iter().filter(move |p| (p.0 - c.0).powi(2) + (p.1 - c.1).powi(2) <= r2);
-    let best = seeds.iter().max_by_key(|c| near(**c).count())?;
-    let (mut sx, mut sy, mut n) = (0.0, 0.0, 0usize);
-    for p in near(*best) {
-        sx += p.0;
-        sy += p.1;
-        n += 1;
-    }
-    Some((sx / n as f64, sy / n as f64, n))
-}
-
-/// Geometry for an image without calibration or time: the fitted image circle taken as the 90°
-/// field of a level equidistant lens, and the sun found in the image.
-pub fn geometry_free(img: &image::RgbImage) -> Option<(Camera, Option<[f32; 3]>)> {
-    let c = fit_image_circle(img)?;
-    let cam = Camera::new(
-        img.width(),
-        img.height(),
-        c.cx_px,
-        c.cy_px,
-        c.radius_px / std::f64::consts::FRAC_PI_2,
-        Projection::Equidistant,
-        std::f64::consts::FRAC_PI_2,
-        Orientation::default(),
-    );
-    let sun = find_sun_blob(img, 245, 5, 0.12 * c.radius_px)
-        .and_then(|(x, y, _)| cam.unproject_enu(x, y))
-        .map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]);
-    Some((cam, sun))
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -816,23 +717,5 @@ mod tests {
         let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32 };
         assert!((fr.at(geom(31.0, 91.0)) - 0.75).abs() < 1e-6);
         assert_eq!(fr.classify([150, 170, 200], geom(31.0, 91.0)).1, Class::Clear);
-    }
-
-    #[test]
-    fn sun_blob_and_circle_found() {
-        let mut img = image::RgbImage::new(100, 100);
-        for (x, y, p) in img.enumerate_pixels_mut() {
-            let r = ((x as f64 - 50.0).powi(2) + (y as f64 - 48.0).powi(2)).sqrt();
-            if r < 40.0 {
-                *p = image::Rgb([80, 120, 200]);
-            }
-            if ((x as f64 - 60.0).powi(2) + (y as f64 - 40.0).powi(2)).sqrt() < 3.0 {
-                *p = image::Rgb([255, 255, 255]);
-            }
-        }
-        let c = fit_image_circle(&img).unwrap();
-        assert!((c.cx_px - 50.0).abs() < 0.5 && (c.cy_px - 48.0).abs() < 0.5 && (c.radius_px - 40.0).abs() < 1.0);
-        let (sx, sy, n) = find_sun_blob(&img, 250, 5, 10.0).unwrap();
-        assert!((sx - 60.0).abs() < 0.01 && (sy - 40.0).abs() < 0.01 && n > 20);
     }
 }

@@ -143,7 +143,7 @@ fn sun_detections_sit_on_the_true_sun() {
     for (start, hours) in [("2026-06-14T05:00:00Z", 14.0), ("2026-12-14T07:40:00Z", 9.0)] {
         let (s, frames) = clear_day(&spec, start, hours);
         let c = &s.camera;
-        let radius_px = nephocast::segment::fit_image_circle(&frames[frames.len() / 2].1).unwrap().radius_px;
+        let radius_px = nephocast::calibrate::fit_image_circle(&frames[frames.len() / 2].1).unwrap().radius_px;
         for (t, img) in &frames {
             let sp = nephocast::sun::position(t, &s.world.observer).unwrap();
             if sp.elevation_rad().to_degrees() < DEFAULT_MIN_SUN_ELEVATION_DEG {

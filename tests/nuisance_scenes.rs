@@ -187,7 +187,7 @@ fn broken_end_to_end_with_calibrated_camera() {
     let t0 = std::time::Instant::now();
     write_sequence(&s, d.path(), false).unwrap();
     // The calibrated camera and the obstruction mask of its clear day replace the true camera.
-    let circle = nephocast::segment::fit_image_circle(&c.frames[c.frames.len() / 2].1).unwrap();
+    let circle = nephocast::calibrate::fit_image_circle(&c.frames[c.frames.len() / 2].1).unwrap();
     let day: Vec<&image::RgbImage> = c
         .frames
         .iter()

@@ -8,7 +8,8 @@
 //! parameters serve every image.
 mod common;
 
-use nephocast::segment::{Class, ImageGeometry, Reference, SegmentParams, geometry_free, segment_image};
+use nephocast::calibrate::geometry_free;
+use nephocast::segment::{Class, ImageGeometry, Reference, SegmentParams, segment_image};
 
 #[test]
 fn wsiseg_pixel_accuracy() {

@@ -56,14 +56,13 @@ use levenberg_marquardt::{LeastSquaresProblem, LevenbergMarquardt};
 use nalgebra::{DMatrix, DVector, Dyn, Owned};
 
 use crate::camera::{Camera, Orientation, Projection};
-use crate::segment::{ImageCircle, fit_image_circle};
 use crate::sun::{Observer, direction_enu, position};
 
 mod bound;
 mod detect;
 mod outputs;
 use bound::{bound_table, coverage_of};
-pub use detect::{detect_sun, refine_image_circle, saturated_blob_area, screen_bloom};
+pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom};
 pub use outputs::{clear_sky_reference, detections_csv, obstruction_mask, residual_plot};
 
 /// One sun detection paired with the sun's direction.

@@ -4,7 +4,7 @@
 use chrono::{DateTime, Utc};
 
 use super::{Detection, Fit, UNCONSTRAINED_BOUND_DEG};
-use crate::segment::ImageCircle;
+use super::ImageCircle;
 use crate::sun::{direction_enu, zenith_azimuth_of};
 
 /// The clear-sky reference of this camera from its calibration frames: the R/B library
