@@ -134,12 +134,23 @@ fn minute_of_day(t: &DateTime<Utc>) -> f64 {
     t.hour() as f64 * 60.0 + t.minute() as f64 + t.second() as f64 / 60.0
 }
 
+/// Why a report could not be written.
+#[derive(Debug, thiserror::Error)]
+pub enum ReportError {
+    /// A replay table is missing or malformed.
+    #[error(transparent)]
+    Input(#[from] crate::io::InputError),
+    /// A picture or the page could not be read or written.
+    #[error(transparent)]
+    Io(#[from] std::io::Error),
+}
+
 /// Write `report.html` for a replay in `out`; `truth` (a synthetic sequence's) gives what was
 /// "measured". Returns the path.
 ///
 /// # Errors
 /// Unreadable replay outputs or a failed write.
-pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, title: &str) -> Result<std::path::PathBuf, Box<dyn std::error::Error + Send + Sync>> {
+pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, title: &str) -> Result<std::path::PathBuf, ReportError> {
     crate::output_set::check_manifest(out)?;
     let fc = read_rows(&out.join("forecasts.csv"))?;
     let num = |r: &BTreeMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);

@@ -250,7 +250,7 @@ pub struct SegmentationScore {
 ///
 /// # Errors
 /// Unreadable site, frames or masks.
-pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, Box<dyn std::error::Error + Send + Sync>> {
+pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, EvalError> {
     let site = Site::load(&sequence.join("site.toml"))?;
     let geom = ImageGeometry::from_camera(&site.camera, site.obstruction.as_ref());
     let frames_csv = sequence.join("truth").join("frames.csv");
@@ -265,7 +265,8 @@ pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, Box<dyn 
         }
         let t = time(&frames_csv, &r, "time_utc")?;
         let img = crate::intake::read_frame(&sequence.join("frames").join(&r["frame"]), &crate::intake::IntakeOptions::expecting(site.camera.width_px, site.camera.height_px))?;
-        let mask = image::open(sequence.join("truth").join("masks").join(&mask_name))?.to_luma8();
+        let mask_path = sequence.join("truth").join("masks").join(&mask_name);
+        let mask = image::open(&mask_path).map_err(|source| EvalError::Image { file: mask_path.clone(), source })?.to_luma8();
         let sun = crate::sun::position(&t, &site.observer())?;
         let sd = sun.direction_enu();
         let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
@@ -460,7 +461,7 @@ pub fn truth_power_kw(truth: &Truth, site: &Site, start: DateTime<Utc>, minutes:
 ///
 /// # Errors
 /// Unreadable files.
-pub fn score_ramps(sequence: &Path, replay_out: &Path, truth: &Truth, lead_s: f64, window_s: f64, min_probability: f64) -> Result<RampScore, Box<dyn std::error::Error + Send + Sync>> {
+pub fn score_ramps(sequence: &Path, replay_out: &Path, truth: &Truth, lead_s: f64, window_s: f64, min_probability: f64) -> Result<RampScore, EvalError> {
     let site = Site::load(&sequence.join("site.toml"))?;
     let plant = crate::plant::Plant::from_section(&site.file.plant);
     let cap: f64 = plant.blocks.iter().map(|b| b.ac_capacity_kw.unwrap_or(b.capacity_kw / site.file.power.dc_ac_ratio)).sum();
@@ -473,7 +474,9 @@ pub fn score_ramps(sequence: &Path, replay_out: &Path, truth: &Truth, lead_s: f6
         v.sort();
         v
     };
-    let Some(&start) = issues.first() else { return Err("no frames".into()) };
+    let Some(&start) = issues.first() else {
+        return Err(InputError::Other { file: replay_out.join("frames.csv"), message: "no frame was used (status ok), so there is nothing to score".into() }.into());
+    };
     let minutes = (truth.map.keys().map(|k| k.0).max().map(|m| (m - start).num_minutes()).unwrap_or(0) + 1).max(0) as usize;
     let series = truth_power_kw(truth, &site, start, minutes);
     let values: Vec<f64> = series.iter().map(|x| x.1).collect();
@@ -542,11 +545,37 @@ pub struct Evaluation {
     pub segmentation: SegmentationScore,
 }
 
+/// Why an evaluation could not be made: a missing or malformed file of the sequence or the
+/// replay, each naming the file.
+#[derive(Debug, thiserror::Error)]
+pub enum EvalError {
+    /// The sequence's site or calibration file.
+    #[error(transparent)]
+    Config(#[from] crate::config::ConfigError),
+    /// A table of the sequence or the replay.
+    #[error(transparent)]
+    Input(#[from] InputError),
+    /// A frame of the sequence.
+    #[error(transparent)]
+    Frame(#[from] crate::intake::IntakeError),
+    /// A truth mask.
+    #[error("{file}: {source}")]
+    Image {
+        /// The mask file.
+        file: std::path::PathBuf,
+        /// What the decoder said.
+        source: image::ImageError,
+    },
+    /// A frame time outside the solar position algorithm's range.
+    #[error(transparent)]
+    Sun(#[from] crate::sun::SunError),
+}
+
 /// Evaluate a replay (`replay_out`) of a synthetic sequence (`sequence`).
 ///
 /// # Errors
 /// Missing or malformed files.
-pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, Box<dyn std::error::Error + Send + Sync>> {
+pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, EvalError> {
     crate::output_set::check_manifest(replay_out)?;
     let truth = Truth::read(&sequence.join("truth").join("irradiance.csv"))?;
     let plant = score_forecasts(&replay_out.join("forecasts.csv"), &truth, crate::plant::PLANT_TARGET)?;
