@@ -576,32 +576,9 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     if night == frames.len() {
         return Err(low(0, frames.len(), night, 0));
     }
-    // The image circle: the median of the daytime frames' fits (robust to a frame with a bright
-    // rim or a dark one).
-    let circles: Vec<ImageCircle> =
-        frames.iter().zip(&day).filter(|(_, d)| **d).filter_map(|((_, img), _)| fit_image_circle(img).map(|c| refine_image_circle(img, c).unwrap_or(c))).collect();
-    if circles.is_empty() {
-        return Err(CalibrationError::NoCircle);
-    }
-    let median = |f: &dyn Fn(&ImageCircle) -> f64| {
-        let mut v: Vec<f64> = circles.iter().map(f).collect();
-        v.sort_by(f64::total_cmp);
-        v[v.len() / 2]
-    };
-    let circle = ImageCircle { cx_px: median(&|c| c.cx_px), cy_px: median(&|c| c.cy_px), radius_px: median(&|c| c.radius_px) };
+    let circle = median_circle(frames, &day)?;
     let size = first.1.dimensions();
-    let mut dets = vec![];
-    for ((t, img), is_day) in frames.iter().zip(&day) {
-        let Ok(sp) = position(t, observer) else { continue };
-        if !is_day {
-            continue;
-        }
-        if let Some((x, y, _)) = detect_sun(img, circle.radius_px) {
-            let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px);
-            dets.push(Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 });
-        }
-    }
-    dets.sort_by_key(|d| d.time);
+    let mut dets = sun_detections(frames, &day, observer, circle);
     let found = dets.len();
     screen_bloom(&mut dets);
     let bloom = found - dets.len();
@@ -612,52 +589,14 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     if coverage.azimuth_span_deg < 20.0 {
         return Err(CalibrationError::Unusable(format!("the detections span only {:.1}° of azimuth, 20° needed", coverage.azimuth_span_deg)));
     }
-    let start = initial_camera(circle, size, &dets);
-    let prior = options.centre_prior_px.map(|s| (circle.cx_px, circle.cy_px, 1.0 / s.max(1e-3)));
-    let families: Vec<LensFamily> = match options.lens {
-        Some(f) => vec![f],
-        None => LensFamily::ALL.to_vec(),
-    };
-    let folds = 5.min(dets.len() / 4).max(2);
-    let mut solved = vec![];
-    for fam in &families {
-        // Polynomial from the equidistant solution, the others from the start camera.
-        let p0 = start_params(&start, *fam);
-        let prob = solve(problem(p0, *fam, size, &dets, prior));
-        let cv = held_out(&prob.p, *fam, size, &dets, prior, folds);
-        let wq: Vec<f64> = dets.iter().map(|d| d.weight).collect();
-        let fit_res: Vec<(f64, f64)> = {
-            let r = prob.residuals_of(&prob.p, false);
-            (0..dets.len()).map(|i| (r[2 * i], r[2 * i + 1])).collect()
-        };
-        let score = FamilyScore { family: *fam, cv_rms_px: weighted_rms(&cv, &wq), fit_rms_px: weighted_rms(&fit_res, &wq) };
-        solved.push((prob, score));
-    }
+    let solved = fit_families(circle, size, &dets, options);
     // Where each fitted lens puts the image circle's rim: a sky imager is built to see the whole
     // sky, so a lens that puts the rim far inside the horizon is fitting something other than the
     // lens (a bias of the detections that grows with zenith angle).
     let rims: Vec<f64> = solved.iter().map(|(p, _)| finish(p, None, Some(circle)).camera.max_field_angle_rad.to_degrees()).collect();
     let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
     let any_plausible = (0..solved.len()).any(plausible);
-    // The ideal family with the lowest held-out error; the polynomial only when it beats that by
-    // more than 10 %; a family with an implausible rim only when no family has a plausible one.
-    let mut best: Option<usize> = None;
-    for (i, (_, s)) in solved.iter().enumerate() {
-        if !s.cv_rms_px.is_finite() || (any_plausible && !plausible(i)) {
-            continue;
-        }
-        let better = match best {
-            None => true,
-            Some(b) => {
-                let b = &solved[b].1;
-                if s.family == LensFamily::Polynomial && b.family != LensFamily::Polynomial { s.cv_rms_px < 0.9 * b.cv_rms_px } else { s.cv_rms_px < b.cv_rms_px }
-            }
-        };
-        if better {
-            best = Some(i);
-        }
-    }
-    let best = best.ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?;
+    let best = choose_family(&solved, |i| !any_plausible || plausible(i)).ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?;
     let rim_warning = (!any_plausible).then(|| {
         format!(
             "no lens family puts the image circle's rim within {:.0}–{:.0}° of the axis (the chosen one puts it at {:.1}°): check the frames show the whole lens field",
@@ -679,20 +618,109 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     fit.scores = scores;
     fit.warnings.extend(rim_warning);
     fit.coverage = coverage;
-    // A radial lean of the clipped disc common to all detections reads as focal length: the
-    // held-out error cannot see it. Allow a lean as large as the held-out error or 5 % of the bare
-    // disc's radius, whichever is larger, over the median image radius of the detections.
-    let scale_sys = {
-        let mut areas: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| d.blob_px as f64).collect();
-        areas.sort_by(f64::total_cmp);
-        let disc_r = areas.get(areas.len() / 5).map(|a| (a / std::f64::consts::PI).sqrt()).unwrap_or(0.0);
-        let mut radii: Vec<f64> = dets.iter().map(|d| (d.px.0 - fit.camera.cx_px).hypot(d.px.1 - fit.camera.cy_px)).collect();
-        radii.sort_by(f64::total_cmp);
-        let r_med = radii[radii.len() / 2].max(1.0);
-        best_cv.max(0.05 * disc_r) / r_med
-    };
+    let scale_sys = systematic_scale(&dets, &fit.camera, best_cv);
     fit.bounds = bound_table(&fit, prob, &competitors, scale_sys);
     check_usable(&fit)?;
+    reach_warnings(&mut fit, options);
+    Ok((fit, dets))
+}
+
+/// The image circle: the median of the daytime frames' fits (robust to a frame with a bright rim
+/// or a dark one).
+fn median_circle(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool]) -> Result<ImageCircle, CalibrationError> {
+    let circles: Vec<ImageCircle> =
+        frames.iter().zip(day).filter(|(_, d)| **d).filter_map(|((_, img), _)| fit_image_circle(img).map(|c| refine_image_circle(img, c).unwrap_or(c))).collect();
+    if circles.is_empty() {
+        return Err(CalibrationError::NoCircle);
+    }
+    let median = |f: &dyn Fn(&ImageCircle) -> f64| {
+        let mut v: Vec<f64> = circles.iter().map(f).collect();
+        v.sort_by(f64::total_cmp);
+        v[v.len() / 2]
+    };
+    Ok(ImageCircle { cx_px: median(&|c| c.cx_px), cy_px: median(&|c| c.cy_px), radius_px: median(&|c| c.radius_px) })
+}
+
+/// The sun found in each daytime frame, with its direction and blob area, in time order.
+fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle) -> Vec<Detection> {
+    let mut dets = vec![];
+    for ((t, img), is_day) in frames.iter().zip(day) {
+        let Ok(sp) = position(t, observer) else { continue };
+        if !is_day {
+            continue;
+        }
+        if let Some((x, y, _)) = detect_sun(img, circle.radius_px) {
+            let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px);
+            dets.push(Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 });
+        }
+    }
+    dets.sort_by_key(|d| d.time);
+    dets
+}
+
+/// Fit every lens family asked for (all by default) and score each by its held-out error.
+fn fit_families(circle: ImageCircle, size: (u32, u32), dets: &[Detection], options: &CalibrateOptions) -> Vec<(Problem, FamilyScore)> {
+    let start = initial_camera(circle, size, dets);
+    let prior = options.centre_prior_px.map(|s| (circle.cx_px, circle.cy_px, 1.0 / s.max(1e-3)));
+    let families: Vec<LensFamily> = match options.lens {
+        Some(f) => vec![f],
+        None => LensFamily::ALL.to_vec(),
+    };
+    let folds = 5.min(dets.len() / 4).max(2);
+    let mut solved = vec![];
+    for fam in &families {
+        // Polynomial from the equidistant solution, the others from the start camera.
+        let p0 = start_params(&start, *fam);
+        let prob = solve(problem(p0, *fam, size, dets, prior));
+        let cv = held_out(&prob.p, *fam, size, dets, prior, folds);
+        let wq: Vec<f64> = dets.iter().map(|d| d.weight).collect();
+        let fit_res: Vec<(f64, f64)> = {
+            let r = prob.residuals_of(&prob.p, false);
+            (0..dets.len()).map(|i| (r[2 * i], r[2 * i + 1])).collect()
+        };
+        let score = FamilyScore { family: *fam, cv_rms_px: weighted_rms(&cv, &wq), fit_rms_px: weighted_rms(&fit_res, &wq) };
+        solved.push((prob, score));
+    }
+    solved
+}
+
+/// The ideal family with the lowest held-out error among the `eligible`; the polynomial only when
+/// it beats that by more than 10 %.
+fn choose_family(solved: &[(Problem, FamilyScore)], eligible: impl Fn(usize) -> bool) -> Option<usize> {
+    let mut best: Option<usize> = None;
+    for (i, (_, s)) in solved.iter().enumerate() {
+        if !s.cv_rms_px.is_finite() || !eligible(i) {
+            continue;
+        }
+        let better = match best {
+            None => true,
+            Some(b) => {
+                let b = &solved[b].1;
+                if s.family == LensFamily::Polynomial && b.family != LensFamily::Polynomial { s.cv_rms_px < 0.9 * b.cv_rms_px } else { s.cv_rms_px < b.cv_rms_px }
+            }
+        };
+        if better {
+            best = Some(i);
+        }
+    }
+    best
+}
+
+/// A radial lean of the clipped disc common to all detections reads as focal length: the held-out
+/// error cannot see it. Allow a lean as large as the held-out error or 5 % of the bare disc's
+/// radius, whichever is larger, over the median image radius of the detections.
+fn systematic_scale(dets: &[Detection], camera: &Camera, best_cv: f64) -> f64 {
+    let mut areas: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| d.blob_px as f64).collect();
+    areas.sort_by(f64::total_cmp);
+    let disc_r = areas.get(areas.len() / 5).map(|a| (a / std::f64::consts::PI).sqrt()).unwrap_or(0.0);
+    let mut radii: Vec<f64> = dets.iter().map(|d| (d.px.0 - camera.cx_px).hypot(d.px.1 - camera.cy_px)).collect();
+    radii.sort_by(f64::total_cmp);
+    let r_med = radii[radii.len() / 2].max(1.0);
+    best_cv.max(0.05 * disc_r) / r_med
+}
+
+/// Warn where the map reaches beyond what the detections constrain, or beyond the lens field.
+fn reach_warnings(fit: &mut Fit, options: &CalibrateOptions) {
     let reach = options.map_max_zenith_deg;
     if let Some(b) = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach && b.bound_deg > UNCONSTRAINED_BOUND_DEG).map(|b| b.zenith_from_deg).reduce(f64::min) {
         let worst = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach).map(|b| b.bound_deg).fold(0.0, f64::max);
@@ -708,7 +736,6 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
             options.map_max_zenith_deg
         ));
     }
-    Ok((fit, dets))
 }
 
 /// Refuse a camera the pipeline could not use or that is not physical.
