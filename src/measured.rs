@@ -130,45 +130,9 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
     let f = &site.file.site;
     let mut m = Measurements::read_csv(measurements)?;
     let screen = m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
-    // Each pyranometer's column and the block it lies in.
-    let cols: Vec<(usize, Option<String>)> = site
-        .file
-        .pyranometers
-        .iter()
-        .filter_map(|p| {
-            let c = m.column(&format!("ghi_{}_wm2", p.name))?;
-            let block = site.file.plant.blocks.iter().find(|b| crate::plant::point_in_polygon(p.position_m, &b.polygon_m)).map(|b| b.name.clone());
-            Some((c, block))
-        })
-        .collect();
-    if cols.is_empty() {
-        return Err(InputError::Other {
-            file: measurements.into(),
-            message: format!(
-                "none of the site's pyranometers has a column here (expected ghi_<name>_wm2 for {})",
-                site.file.pyranometers.iter().map(|p| p.name.as_str()).collect::<Vec<_>>().join(", ")
-            ),
-        });
-    }
+    let cols = pyranometer_columns(site, &m, measurements)?;
     let mut excluded: BTreeMap<String, usize> = BTreeMap::new();
-    // Mean of the valid readings at t over some columns.
-    let reading = |cs: &[usize], t: &DateTime<Utc>, why: &mut BTreeMap<String, usize>| -> Option<f64> {
-        let (mut s, mut k) = (0.0, 0usize);
-        for &c in cs {
-            let v = m.at(c, t);
-            if !v.is_finite() {
-                *why.entry("reading missing or flagged".into()).or_default() += 1;
-                continue;
-            }
-            if m.stuck_at(c, t, crate::qc::STUCK_RUN) {
-                *why.entry("reading stuck".into()).or_default() += 1;
-                continue;
-            }
-            s += v;
-            k += 1;
-        }
-        (k > 0).then(|| s / k as f64)
-    };
+    let reading = |cs: &[usize], t: &DateTime<Utc>, why: &mut BTreeMap<String, usize>| mean_reading(&m, cs, t, why);
     let newest = |cs: &[usize], t: &DateTime<Utc>| -> Option<f64> {
         let v: Vec<f64> = cs.iter().filter_map(|&c| m.completed_at(c, t).map(|x| x.0)).collect();
         (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64)
@@ -178,25 +142,7 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
     let rows = read_rows(&fpath)?;
     let num = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
     let time = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
-    // Clear-sky GHI at each issue time (the horizon-0 plant row).
-    let mut clear_at_issue: HashMap<(String, DateTime<Utc>), f64> = HashMap::new();
-    for r in &rows {
-        if num(r, "horizon_s") == 0.0
-            && let (Some(t), Some(b)) = (time(r, "issue_time_utc"), r.get("block"))
-        {
-            clear_at_issue.insert((b.clone(), t), num(r, "ghi_clear_wm2"));
-        }
-    }
-    // Members of the plant ensemble per (issue, horizon).
-    let mut members: HashMap<(DateTime<Utc>, u32), Vec<f64>> = HashMap::new();
-    let mp = replay_out.join("ensemble_plant.csv");
-    if mp.is_file() {
-        for r in read_rows(&mp)? {
-            if let Some(t) = time(&r, "issue_time_utc") {
-                members.entry((t, num(&r, "horizon_s") as u32)).or_default().push(num(&r, "plant_ghi_wm2"));
-            }
-        }
-    }
+    let (clear_at_issue, members) = issue_tables(&rows, replay_out)?;
     // Sky type per issue time.
     let mut sky_of: HashMap<DateTime<Utc>, &'static str> = HashMap::new();
     let observer = f.observer();
@@ -255,7 +201,96 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
             by_block.entry(block.clone()).or_default().push((fc, obs, sp));
         }
     }
-    let plant = per_h
+    let plant = horizon_scores(per_h);
+    let mut issues_by_sky_type: BTreeMap<String, usize> = BTreeMap::new();
+    for s in sky_of.values() {
+        *issues_by_sky_type.entry(s.to_string()).or_default() += 1;
+    }
+    Ok(MeasuredEvaluation {
+        plant,
+        by_sky_type: by_sky.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
+        issues_by_sky_type,
+        by_block: by_block.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
+        excluded,
+        screened: screen.counts(),
+    })
+}
+
+/// Each configured pyranometer's column in the measurements and the block it lies in.
+fn pyranometer_columns(site: &Site, m: &Measurements, measurements: &Path) -> Result<Vec<(usize, Option<String>)>, InputError> {
+    let cols: Vec<(usize, Option<String>)> = site
+        .file
+        .pyranometers
+        .iter()
+        .filter_map(|p| {
+            let c = m.column(&format!("ghi_{}_wm2", p.name))?;
+            let block = site.file.plant.blocks.iter().find(|b| crate::plant::point_in_polygon(p.position_m, &b.polygon_m)).map(|b| b.name.clone());
+            Some((c, block))
+        })
+        .collect();
+    if cols.is_empty() {
+        return Err(InputError::Other {
+            file: measurements.into(),
+            message: format!(
+                "none of the site's pyranometers has a column here (expected ghi_<name>_wm2 for {})",
+                site.file.pyranometers.iter().map(|p| p.name.as_str()).collect::<Vec<_>>().join(", ")
+            ),
+        });
+    }
+    Ok(cols)
+}
+
+/// Mean of the valid readings at `t` over some columns; a missing, flagged or stuck reading is
+/// left out and counted in `why`.
+fn mean_reading(m: &Measurements, cs: &[usize], t: &DateTime<Utc>, why: &mut BTreeMap<String, usize>) -> Option<f64> {
+    let (mut s, mut k) = (0.0, 0usize);
+    for &c in cs {
+        let v = m.at(c, t);
+        if !v.is_finite() {
+            *why.entry("reading missing or flagged".into()).or_default() += 1;
+            continue;
+        }
+        if m.stuck_at(c, t, crate::qc::STUCK_RUN) {
+            *why.entry("reading stuck".into()).or_default() += 1;
+            continue;
+        }
+        s += v;
+        k += 1;
+    }
+    (k > 0).then(|| s / k as f64)
+}
+
+/// Clear-sky GHI at issue time per (block, issue) from the horizon-0 rows, and the plant ensemble's
+/// members per (issue, horizon) from `ensemble_plant.csv` when the replay wrote it.
+#[allow(clippy::type_complexity)]
+fn issue_tables(rows: &[HashMap<String, String>], replay_out: &Path) -> Result<(HashMap<(String, DateTime<Utc>), f64>, HashMap<(DateTime<Utc>, u32), Vec<f64>>), InputError> {
+    let num = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
+    let time = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
+    // Clear-sky GHI at each issue time (the horizon-0 plant row).
+    let mut clear_at_issue: HashMap<(String, DateTime<Utc>), f64> = HashMap::new();
+    for r in rows {
+        if num(r, "horizon_s") == 0.0
+            && let (Some(t), Some(b)) = (time(r, "issue_time_utc"), r.get("block"))
+        {
+            clear_at_issue.insert((b.clone(), t), num(r, "ghi_clear_wm2"));
+        }
+    }
+    // Members of the plant ensemble per (issue, horizon).
+    let mut members: HashMap<(DateTime<Utc>, u32), Vec<f64>> = HashMap::new();
+    let mp = replay_out.join("ensemble_plant.csv");
+    if mp.is_file() {
+        for r in read_rows(&mp)? {
+            if let Some(t) = time(&r, "issue_time_utc") {
+                members.entry((t, num(&r, "horizon_s") as u32)).or_default().push(num(&r, "plant_ghi_wm2"));
+            }
+        }
+    }
+    Ok((clear_at_issue, members))
+}
+
+/// The plant's scores per horizon from its (forecast, measured, persistence, CRPS, inside) pairs.
+fn horizon_scores(per_h: BTreeMap<u32, Vec<Pair>>) -> Vec<MeasuredHorizon> {
+    per_h
         .into_iter()
         .map(|(h, v)| {
             let n = v.len() as f64;
@@ -274,19 +309,7 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
                 coverage_p10_p90: v.iter().map(|x| x.4).sum::<f64>() / n,
             }
         })
-        .collect();
-    let mut issues_by_sky_type: BTreeMap<String, usize> = BTreeMap::new();
-    for s in sky_of.values() {
-        *issues_by_sky_type.entry(s.to_string()).or_default() += 1;
-    }
-    Ok(MeasuredEvaluation {
-        plant,
-        by_sky_type: by_sky.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
-        issues_by_sky_type,
-        by_block: by_block.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
-        excluded,
-        screened: screen.counts(),
-    })
+        .collect()
 }
 
 /// Print the scores as tables.
