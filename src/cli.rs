@@ -493,6 +493,8 @@ pub fn parse_duration_s(s: &str) -> Result<f64> {
 
 /// Run a parsed command line.
 ///
+/// One piece on purpose: one match arm per command, each handing its arguments to the library.
+///
 /// # Errors
 /// Any failure, with context naming the file or argument.
 pub fn run(cli: Cli) -> Result<()> {

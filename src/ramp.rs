@@ -442,8 +442,26 @@ impl Alarm {
         } else if next == AlarmState::Calm || next != self.state {
             self.basis = None;
         }
-        self.reason = match (next, &self.basis) {
-            (AlarmState::Calm, _) if !confirmed => format!(
+        self.reason = self.reason_for(next, t, confirmed_measurements, p);
+        if next == self.state {
+            return None;
+        }
+        let ch = AlarmChange {
+            time_utc: crate::io::fmt_time(t),
+            from: self.state,
+            to: next,
+            probability: self.basis.as_ref().map(|b| b.ramp.probability).unwrap_or(0.0),
+            reason: self.reason.clone(),
+        };
+        self.state = next;
+        self.since = Some(*t);
+        Some(ch)
+    }
+
+    /// The words behind a state: the ramp it cites, or why there is none.
+    fn reason_for(&self, next: AlarmState, t: &DateTime<Utc>, confirmed_measurements: usize, p: &RampParams) -> String {
+        match (next, &self.basis) {
+            (AlarmState::Calm, _) if confirmed_measurements < p.motion_confirm_measurements as usize => format!(
                 "motion not confirmed yet ({confirmed_measurements} of {} consistent measurements); no alarm until it is",
                 p.motion_confirm_measurements
             ),
@@ -459,20 +477,7 @@ impl Alarm {
                 describe_ramp(&b.ramp, &b.start, t)
             ),
             (s, None) => format!("{} (no ramp on record)", s.name()),
-        };
-        if next == self.state {
-            return None;
         }
-        let ch = AlarmChange {
-            time_utc: crate::io::fmt_time(t),
-            from: self.state,
-            to: next,
-            probability: self.basis.as_ref().map(|b| b.ramp.probability).unwrap_or(0.0),
-            reason: self.reason.clone(),
-        };
-        self.state = next;
-        self.since = Some(*t);
-        Some(ch)
     }
 }
 

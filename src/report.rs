@@ -37,6 +37,9 @@ fn esc(s: &str) -> String {
 }
 
 /// A line chart as an SVG string: axes with ticks, labels, legend.
+///
+/// One piece on purpose: the SVG is written top to bottom (frame, ticks, bands, lines, legend)
+/// from one set of scales.
 pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], bands: &[BandArea], x_is_time_min: bool) -> String {
     let (w, h, ml, mr, mt, mb) = (760.0, 300.0, 60.0, 20.0, 30.0, 45.0);
     let mut xs = vec![];

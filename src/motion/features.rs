@@ -273,6 +273,9 @@ pub(super) fn score_feature(m: &CloudMap) -> Vec<f32> {
 /// under a displacement `d` (cells, from `fa` to `fb`): `|fb(y) − fa(y − d)|`, `fa` sampled
 /// bilinearly, averaged over the (2r + 1)² box around y, over the pairs both known. NaN where the
 /// box holds no such pair.
+///
+/// One piece on purpose: the bilinear resampling and the two summed-area tables are built and read
+/// in one pass over shared buffers (a hot loop of the residual-cloud search).
 pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usize) -> Vec<f32> {
     // Per-cell differences and counts (row slices, so the inner loops vectorize), then the box
     // sums: a sliding window along each row, then running sums down the columns.

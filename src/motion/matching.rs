@@ -146,6 +146,11 @@ pub(super) fn block_vectors_between(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt
 }
 
 /// Block vectors between two prepared feature maps on `a`'s grid.
+///
+/// One piece on purpose: it is the motion stage's hot loop (per block: search window, NCC peak,
+/// sub-cell refinement, acceptance tests), and its locals (pooled buffers, the prior's window, the
+/// counters) are shared across those steps for every block; split, they would be passed by the
+/// dozen or reallocated per block.
 fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>, max_radius_m: f64) -> (Vec<BlockVector>, usize, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
@@ -335,6 +340,9 @@ const LK_TOLERANCE_CELLS: f64 = 0.02;
 /// & Matthews 2004), starting from the NCC peak and kept within one cell of it. The displacement is
 /// the same for every cell, so each iteration samples the current map bilinearly with one set of
 /// weights, row by row.
+///
+/// One piece on purpose: one Gauss–Newton iteration loop whose sums are accumulated in a single
+/// pass over the block's rows.
 #[allow(clippy::too_many_arguments)]
 fn refine_lk(fa: &[f32], fb: &[f32], n: usize, ax: usize, ay: usize, bs: usize, d0: (f64, f64)) -> (f64, f64) {
     // Template (value, gradient) per interior cell, zero where unknown; Hessian once.

@@ -215,6 +215,8 @@ fn layer(h: f64, speed: f64, toward: f64, c0: f64, c1: f64, tau: f64, wl: f64) -
 }
 
 /// The scene catalogue.
+///
+/// One piece on purpose: a table of scene specifications, one entry per scene.
 pub fn scenes() -> Vec<SceneSpec> {
     let base = |name: &str, desc: &str, layers: Vec<LayerSpec>| SceneSpec {
         name: name.into(),

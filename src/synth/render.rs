@@ -122,6 +122,9 @@ pub fn render(
 
 /// [`render`] with a camera's imperfections (`None`: exactly [`render`]). The map must come from
 /// [`Nuisances::prepare`] for the same camera.
+///
+/// One piece on purpose: the per-pixel radiative transfer (sky, sun, cloud, shadowed ground, then
+/// each nuisance) runs in one parallel pass over rows with shared per-row state.
 #[allow(clippy::too_many_arguments)]
 pub fn render_with(
     world: &World,
