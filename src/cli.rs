@@ -869,31 +869,7 @@ fn cmd_qc(a: QcArgs) -> Result<()> {
 fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     // The site file only: the calibration it names may not exist yet.
     let site = crate::config::Site::load_without_camera(&a.site)?;
-    let mut frames = vec![];
-    let mut untimed = 0;
-    let mut held_bytes = 0u64;
-    for dir in &a.frames {
-        let (list, u) = crate::io::list_frames(dir)?;
-        untimed += u;
-        for f in list {
-            if frames.len() >= MAX_CALIBRATE_FRAMES {
-                bail!("--frames: more than {MAX_CALIBRATE_FRAMES} frames; give fewer folders or thin them (a frame every few minutes is enough)");
-            }
-            match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
-                Ok(img) => {
-                    held_bytes += img.as_raw().len() as u64;
-                    if held_bytes > MAX_CALIBRATE_BYTES {
-                        bail!("--frames: the frames need more than {} MB decoded (at {} frames); give fewer frames", MAX_CALIBRATE_BYTES / 1_000_000, frames.len() + 1);
-                    }
-                    frames.push((f.time, img))
-                }
-                Err(e) => eprintln!("skipped {}: {e}", f.path.display()),
-            }
-        }
-    }
-    if frames.is_empty() {
-        bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", a.frames, crate::io::FRAME_NAME_PATTERN);
-    }
+    let frames = load_calibration_frames(&a.frames)?;
     let options = crate::calibrate::CalibrateOptions {
         min_detections: a.min_detections,
         min_sun_elevation_deg: a.min_sun_elevation_deg,
@@ -903,24 +879,7 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     };
     let (fit, dets) = crate::calibrate::calibrate(&frames, &site.site.observer(), &options)?;
     let name = a.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "camera".into());
-    let mut cal = crate::config::CalibrationFile::from_camera(&name, &fit.camera);
-    let (t0, t1) = (dets.first().map(|d| d.time), dets.last().map(|d| d.time));
-    cal.fit = Some(crate::config::FitRecord {
-        fitted_utc: crate::io::fmt_time(&chrono::Utc::now()),
-        span_start_utc: t0.map(|t| crate::io::fmt_time(&t)).unwrap_or_default(),
-        span_end_utc: t1.map(|t| crate::io::fmt_time(&t)).unwrap_or_default(),
-        detections: dets.len(),
-        rms_deg: fit.rms_deg,
-        max_deg: fit.max_deg,
-        rms_px: fit.rms_px,
-        max_px: fit.max_px,
-        std_errors: fit.params.iter().map(|(n, _, se)| (n.clone(), *se)).collect(),
-        lens_cv_rms_px: fit.scores.iter().map(|s| (s.family.name().to_string(), s.cv_rms_px)).collect(),
-        detections_zenith_deg: Some([fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg]),
-        detections_azimuth_span_deg: Some(fit.coverage.azimuth_span_deg),
-        direction_bound_deg: fit.bounds.iter().map(|b| [b.zenith_from_deg, b.zenith_to_deg, b.bound_deg]).collect(),
-        warnings: fit.warnings.clone(),
-    });
+    let mut cal = crate::calibrate::calibration_record(&name, &fit, &dets);
     // The loader's own rules, before anything is written: never write a file `replay` refuses.
     cal.validate(&a.out).map_err(|e| crate::calibrate::CalibrationError::Unusable(e.to_string()))?;
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
@@ -955,7 +914,45 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     // names its own (unchanged-name) mask and library files.
     let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
     crate::io::write_atomic(&a.out, text.as_bytes())?;
-    crate::say!("{} sun detections; model {}; residual RMS {:.2} px ({:.3}°), largest {:.2} px ({:.3}°)", dets.len(), fit.camera.projection.name(), fit.rms_px, fit.rms_deg, fit.max_px, fit.max_deg);
+    print_fit(&fit, dets.len());
+    crate::say!("wrote {}, {} and {}", a.out.display(), pp.display(), dp.display());
+    Ok(())
+}
+
+/// The frames of `calibrate`, decoded, within the count and memory caps; unreadable ones are
+/// skipped with a message.
+fn load_calibration_frames(dirs: &[PathBuf]) -> Result<Vec<(chrono::DateTime<chrono::Utc>, image::RgbImage)>> {
+    let mut frames = vec![];
+    let mut untimed = 0;
+    let mut held_bytes = 0u64;
+    for dir in dirs {
+        let (list, u) = crate::io::list_frames(dir)?;
+        untimed += u;
+        for f in list {
+            if frames.len() >= MAX_CALIBRATE_FRAMES {
+                bail!("--frames: more than {MAX_CALIBRATE_FRAMES} frames; give fewer folders or thin them (a frame every few minutes is enough)");
+            }
+            match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
+                Ok(img) => {
+                    held_bytes += img.as_raw().len() as u64;
+                    if held_bytes > MAX_CALIBRATE_BYTES {
+                        bail!("--frames: the frames need more than {} MB decoded (at {} frames); give fewer frames", MAX_CALIBRATE_BYTES / 1_000_000, frames.len() + 1);
+                    }
+                    frames.push((f.time, img))
+                }
+                Err(e) => eprintln!("skipped {}: {e}", f.path.display()),
+            }
+        }
+    }
+    if frames.is_empty() {
+        bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", dirs, crate::io::FRAME_NAME_PATTERN);
+    }
+    Ok(frames)
+}
+
+/// Print a fit: residuals, lens families, parameters, field, coverage, bounds and warnings.
+fn print_fit(fit: &crate::calibrate::Fit, detections: usize) {
+    crate::say!("{} sun detections; model {}; residual RMS {:.2} px ({:.3}°), largest {:.2} px ({:.3}°)", detections, fit.camera.projection.name(), fit.rms_px, fit.rms_deg, fit.max_px, fit.max_deg);
     for s in &fit.scores {
         crate::say!("  lens {:<14} held-out RMS {:.3} px (in-sample {:.3} px){}", s.family.name(), s.cv_rms_px, s.fit_rms_px, if s.family == fit.family { "  <- chosen" } else { "" });
     }
@@ -975,8 +972,6 @@ fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     for w in &fit.warnings {
         crate::say!("warning: {w}");
     }
-    crate::say!("wrote {}, {} and {}", a.out.display(), pp.display(), dp.display());
-    Ok(())
 }
 
 fn cmd_camera(c: CameraCommand) -> Result<()> {

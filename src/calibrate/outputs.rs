@@ -3,8 +3,7 @@
 
 use chrono::{DateTime, Utc};
 
-use super::{Detection, Fit, UNCONSTRAINED_BOUND_DEG};
-use super::ImageCircle;
+use super::{Detection, Fit, ImageCircle, UNCONSTRAINED_BOUND_DEG};
 use crate::sun::{direction_enu, zenith_azimuth_of};
 
 /// The clear-sky reference of this camera from its calibration frames: the R/B library
@@ -142,4 +141,29 @@ pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> ima
         }
     }
     out
+}
+
+/// The calibration file of a fit: the camera, and the record of how it was fitted (span,
+/// detections, residuals, standard errors, held-out errors per lens family, coverage, the
+/// direction-error bound by zenith band, warnings).
+pub fn calibration_record(name: &str, fit: &Fit, dets: &[Detection]) -> crate::config::CalibrationFile {
+    let mut cal = crate::config::CalibrationFile::from_camera(name, &fit.camera);
+    let (t0, t1) = (dets.first().map(|d| d.time), dets.last().map(|d| d.time));
+    cal.fit = Some(crate::config::FitRecord {
+        fitted_utc: crate::io::fmt_time(&chrono::Utc::now()),
+        span_start_utc: t0.map(|t| crate::io::fmt_time(&t)).unwrap_or_default(),
+        span_end_utc: t1.map(|t| crate::io::fmt_time(&t)).unwrap_or_default(),
+        detections: dets.len(),
+        rms_deg: fit.rms_deg,
+        max_deg: fit.max_deg,
+        rms_px: fit.rms_px,
+        max_px: fit.max_px,
+        std_errors: fit.params.iter().map(|(n, _, se)| (n.clone(), *se)).collect(),
+        lens_cv_rms_px: fit.scores.iter().map(|s| (s.family.name().to_string(), s.cv_rms_px)).collect(),
+        detections_zenith_deg: Some([fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg]),
+        detections_azimuth_span_deg: Some(fit.coverage.azimuth_span_deg),
+        direction_bound_deg: fit.bounds.iter().map(|b| [b.zenith_from_deg, b.zenith_to_deg, b.bound_deg]).collect(),
+        warnings: fit.warnings.clone(),
+    });
+    cal
 }
