@@ -156,7 +156,6 @@ pub enum ReportError {
 pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, title: &str) -> Result<std::path::PathBuf, ReportError> {
     crate::output_set::check_manifest(out)?;
     let fc = read_rows(&out.join("forecasts.csv"))?;
-    let num = |r: &BTreeMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
     let rows: Vec<BTreeMap<String, String>> = fc.into_iter().map(|r| r.into_iter().collect()).collect();
     let mut html = String::new();
     let _ = write!(
@@ -168,26 +167,50 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
         t = esc(title)
     );
     if let Some(e) = eval {
-        html += "<h2>Scores (plant-mean GHI against the truth)</h2><table><tr><th>horizon</th><th>RMSE W/m²</th><th>MAE</th><th>MBE</th><th>persistence RMSE</th><th>skill</th><th>P10–P90 coverage</th></tr>";
-        for h in &e.plant {
-            if h.horizon_s % 300 == 0 {
-                let cov = e.bands.iter().find(|b| b.horizon_s == h.horizon_s).map(|b| format!("{:.0} %", 100.0 * b.coverage)).unwrap_or_default();
-                let _ = write!(html, "<tr><td>{} min</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.3}</td><td>{cov}</td></tr>", h.horizon_s / 60, h.rmse_wm2, h.mae_wm2, h.mbe_wm2, h.rmse_persistence_wm2, h.skill);
-            }
-        }
-        html += "</table>";
-        let _ = write!(html, "<p>Motion: median speed error {:.2} m/s, direction error {:.1}°. Segmentation: {:.1} % correct (zenith &lt; 70°, &gt; 10° from the sun).</p>", e.motion.speed_error_mps, e.motion.direction_error_deg, 100.0 * e.segmentation.accuracy);
-        if let Some(r) = &e.ramps {
-            let _ = write!(html, "<p>Ramps at {:.0} min lead (±{:.0} min, probability ≥ {:.1}): POD {:.2}, FAR {:.2}, CSI {:.2}.</p>", r.lead_s / 60.0, r.window_s / 60.0, r.min_probability, r.pod, r.far, r.csi);
-        }
-        // Skill versus horizon.
-        let f: Vec<(f64, f64)> = e.plant.iter().map(|h| (h.horizon_s as f64 / 60.0, h.rmse_wm2)).collect();
-        let p: Vec<(f64, f64)> = e.plant.iter().map(|h| (h.horizon_s as f64 / 60.0, h.rmse_persistence_wm2)).collect();
-        html += &line_chart("RMSE by horizon", "horizon [min]", "RMSE [W/m²]", &[
-            Series { label: "forecast".into(), colour: "#1f6fd1".into(), points: f, dashed: false },
-            Series { label: "smart persistence".into(), colour: "#999".into(), points: p, dashed: true },
-        ], &[], false);
+        html += &scores_section(e);
     }
+    html += &forecast_section(&rows, truth);
+    html += &motion_section(out)?;
+    html += &frames_section(out)?;
+    html += &ramps_section(&rows, out);
+    html += &pictures_section(out)?;
+    html += "</body></html>";
+    let path = out.join("report.html");
+    crate::io::write_atomic(&path, html.as_bytes())?;
+    Ok(path)
+}
+
+/// The scores against the truth: a table every 5 minutes of horizon, motion, segmentation, ramps,
+/// and RMSE by horizon.
+fn scores_section(e: &Evaluation) -> String {
+    let mut html = String::new();
+    html += "<h2>Scores (plant-mean GHI against the truth)</h2><table><tr><th>horizon</th><th>RMSE W/m²</th><th>MAE</th><th>MBE</th><th>persistence RMSE</th><th>skill</th><th>P10–P90 coverage</th></tr>";
+    for h in &e.plant {
+        if h.horizon_s % 300 == 0 {
+            let cov = e.bands.iter().find(|b| b.horizon_s == h.horizon_s).map(|b| format!("{:.0} %", 100.0 * b.coverage)).unwrap_or_default();
+            let _ = write!(html, "<tr><td>{} min</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.3}</td><td>{cov}</td></tr>", h.horizon_s / 60, h.rmse_wm2, h.mae_wm2, h.mbe_wm2, h.rmse_persistence_wm2, h.skill);
+        }
+    }
+    html += "</table>";
+    let _ = write!(html, "<p>Motion: median speed error {:.2} m/s, direction error {:.1}°. Segmentation: {:.1} % correct (zenith &lt; 70°, &gt; 10° from the sun).</p>", e.motion.speed_error_mps, e.motion.direction_error_deg, 100.0 * e.segmentation.accuracy);
+    if let Some(r) = &e.ramps {
+        let _ = write!(html, "<p>Ramps at {:.0} min lead (±{:.0} min, probability ≥ {:.1}): POD {:.2}, FAR {:.2}, CSI {:.2}.</p>", r.lead_s / 60.0, r.window_s / 60.0, r.min_probability, r.pod, r.far, r.csi);
+    }
+    // Skill versus horizon.
+    let f: Vec<(f64, f64)> = e.plant.iter().map(|h| (h.horizon_s as f64 / 60.0, h.rmse_wm2)).collect();
+    let p: Vec<(f64, f64)> = e.plant.iter().map(|h| (h.horizon_s as f64 / 60.0, h.rmse_persistence_wm2)).collect();
+    html += &line_chart("RMSE by horizon", "horizon [min]", "RMSE [W/m²]", &[
+        Series { label: "forecast".into(), colour: "#1f6fd1".into(), points: f, dashed: false },
+        Series { label: "smart persistence".into(), colour: "#999".into(), points: p, dashed: true },
+    ], &[], false);
+    html
+}
+
+/// The plant-mean GHI forecast 5, 10 and 15 minutes ahead with its band, against the truth when
+/// there is one.
+fn forecast_section(rows: &[BTreeMap<String, String>], truth: Option<&Truth>) -> String {
+    let mut html = String::new();
+    let num = |r: &BTreeMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
     html += "<h2>Forecast against what happened (plant-mean GHI)</h2>";
     for lead in [300u32, 600, 900] {
         let mut f = vec![];
@@ -208,6 +231,12 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
         }
         html += &line_chart(&format!("{} minutes ahead", lead / 60), "target time [UTC]", "GHI [W/m²]", &s, &[BandArea { label: "P10–P90".into(), colour: "#1f6fd1".into(), points: band }], true);
     }
+    html
+}
+
+/// Filtered cloud speed and direction of each tracked layer.
+fn motion_section(out: &Path) -> Result<String, ReportError> {
+    let mut html = String::new();
     // Motion and cloud fraction.
     let mo = read_rows(&out.join("motion.csv"))?;
     let (mut speed, mut dir, mut speed2, mut dir2) = (vec![], vec![], vec![], vec![]);
@@ -233,6 +262,12 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
     }
     html += &line_chart("Speed", "time [UTC]", "speed [m/s]", &sp, &[], true);
     html += &line_chart("Direction (toward, clockwise from north)", "time [UTC]", "direction [°]", &dr, &[], true);
+    Ok(html)
+}
+
+/// Cloud fraction per frame, and the band-width scales of the online calibration when they moved.
+fn frames_section(out: &Path) -> Result<String, ReportError> {
+    let mut html = String::new();
     let fr = read_rows(&out.join("frames.csv"))?;
     let cf: Vec<(f64, f64)> = fr
         .iter()
@@ -252,6 +287,13 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
         html += "<p>The P10–P90 bands are widened or narrowed per horizon until they hold 80 % of what the pyranometers measure (1 = the ensemble's own spread).</p>";
         html += &line_chart("Band width scale from the online calibration", "time [UTC]", "scale", &scales, &[], true);
     }
+    Ok(html)
+}
+
+/// The plant power forecast 5 minutes ahead and the alarm changes.
+fn ramps_section(rows: &[BTreeMap<String, String>], out: &Path) -> String {
+    let mut html = String::new();
+    let num = |r: &BTreeMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
     // Ramp timeline.
     let p5: Vec<(f64, f64)> = rows
         .iter()
@@ -267,6 +309,12 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
         }
         html += "</table>";
     }
+    html
+}
+
+/// Three overlay pictures, inline.
+fn pictures_section(out: &Path) -> Result<String, ReportError> {
+    let mut html = String::new();
     // Example pictures.
     let mut pics: Vec<_> = std::fs::read_dir(out.join("overlays")).map(|d| d.flatten().map(|e| e.path()).collect()).unwrap_or_default();
     pics.sort();
@@ -277,8 +325,5 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
             let _ = write!(html, "<p>{}<br><img style='max-width:100%' src='data:image/png;base64,{}'></p>", esc(&p.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default()), base64::engine::general_purpose::STANDARD.encode(b));
         }
     }
-    html += "</body></html>";
-    let path = out.join("report.html");
-    crate::io::write_atomic(&path, html.as_bytes())?;
-    Ok(path)
+    Ok(html)
 }
