@@ -46,6 +46,7 @@ macro_rules! say {
 pub mod bench;
 pub mod calibrate;
 pub mod camera;
+pub mod cbh;
 pub mod cli;
 pub mod clearsky;
 pub mod cloudmap;

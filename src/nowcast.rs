@@ -118,8 +118,10 @@ pub struct Nowcast {
     pub baseline_s: Option<f64>,
     /// Sun at the frame time.
     pub sun: SunPosition,
-    /// Cloud base height used \[m\].
+    /// Height of the cloud map's plane \[m\] (configured value or ceilometer series).
     pub cbh_m: f64,
+    /// The cloud base height the forecast used (all estimates combined), its uncertainty and source.
+    pub cbh: crate::cbh::CbhEstimate,
     /// Cloud fraction of the map within the configured zenith.
     pub cloud_fraction: f64,
     /// The cloud map.
@@ -287,6 +289,7 @@ pub struct Nowcaster {
     cbh_series: Option<Series>,
     measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
     tuner: Tuner,
+    cbh_state: crate::cbh::CbhState,
     band_calibration: crate::forecast::BandCalibration,
     blend: crate::forecast::PersistenceBlend,
     irradiance: IrradianceParams,
@@ -313,6 +316,7 @@ impl Nowcaster {
             (!cols.is_empty()).then_some((m, cols))
         });
         let reference = site.clear_reference.clone().unwrap_or_default();
+        let cbh_state = crate::cbh::CbhState::new(&site.file.clouds, measurements.as_ref().map_or(0, |m| m.1.len()));
         Nowcaster {
             site,
             plant,
@@ -324,6 +328,7 @@ impl Nowcaster {
             cbh_series,
             measurements,
             tuner: Tuner::default(),
+            cbh_state,
             band_calibration: Default::default(),
             blend: Default::default(),
             irradiance,
@@ -488,6 +493,11 @@ impl Nowcaster {
         added
     }
 
+    /// The cloud base height state (the shadow-timing fit and why there is none).
+    pub fn cbh_state(&self) -> &crate::cbh::CbhState {
+        &self.cbh_state
+    }
+
     /// Pyranometer readings the transmittance tuning holds now.
     pub fn tuning_rows(&self) -> usize {
         self.tuner.rows.len()
@@ -634,10 +644,30 @@ impl Nowcaster {
         let layers = self.tracker.update(measurement.as_ref().filter(|m| !m.locked_at_zero), dt_s.unwrap_or(0.0), mp);
         let motion = layers.first().map(|l| l.motion);
         let t_motion = Clock::now();
+        // Cloud base height: every estimate combined; the map stays on its plane and the forecast
+        // scales its look-ups by the ratio (`cbh_factor`).
+        let cbh_est = self.cbh_state.update(&crate::cbh::CbhFrame {
+            time: frame.time,
+            map: &map,
+            params: &self.irradiance,
+            map_cbh_m: cbh,
+            from_series: self.cbh_series.is_some(),
+            v_map_mps: motion.map(|m| m.v_mps),
+            camera_m: self.site.file.camera.position_m,
+            measurements: self.measurements.as_ref().map(|(m, c)| (m, c.as_slice())),
+            observer: self.site.observer(),
+            altitude_m: self.site.file.site.elevation_m,
+            model: self.site.clear_sky_model(),
+        });
+        let cbh_factor = cbh_est.cbh_m / cbh;
         // Tuning from measurements at the frame time.
         if self.irradiance.tune_from_measurements {
-            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh, motion.map(|m| m.v_mps), layers.len() > 1);
+            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), (cbh, cbh_factor), motion.map(|m| m.v_mps), layers.len() > 1);
         }
+        // The ensemble's spread of the first layer's base: the configured one, or wider when the
+        // combined estimate is less certain.
+        let mut params = self.irradiance;
+        params.ensemble_cbh_rel_sigma = params.ensemble_cbh_rel_sigma.max(cbh_est.rel_sigma());
         let input = ForecastInput {
             issue: frame.time,
             observer: self.site.observer(),
@@ -646,15 +676,15 @@ impl Nowcaster {
             camera_m: self.site.file.camera.position_m,
             cbh_m: cbh,
             layers: if layers.is_empty() {
-                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor: 1.0 }]
+                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor }]
             } else {
-                layers.iter().map(|l| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: 1.0 }).collect()
+                layers.iter().enumerate().map(|(i, l)| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: if i == 0 { cbh_factor } else { 1.0 } }).collect()
             },
             cloud_fraction: if cf.is_nan() { 0.0 } else { cf },
             thin_fraction: if thin_cf.is_nan() { 0.0 } else { thin_cf },
             horizons_s: self.horizons_s(),
             plant: &self.plant,
-            params: self.irradiance,
+            params,
             power: self.site.file.power,
             temp_air_c: self.weather(&frame.time, "temp_air_c").unwrap_or(self.site.file.power.default_temp_air_c),
             wind_mps: self.weather(&frame.time, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
@@ -715,6 +745,7 @@ impl Nowcaster {
             baseline_s: measurement.as_ref().map(|m| m.dt_s),
             sun,
             cbh_m: cbh,
+            cbh: cbh_est,
             cloud_fraction: cf,
             map,
             measurement,
@@ -805,7 +836,7 @@ impl Nowcaster {
     /// With two layers tracked the brightness feature is left out (its regressor is 0), as in the
     /// forecast ([`crate::forecast::forecast_with`]).
     #[allow(clippy::too_many_arguments)]
-    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, cbh: f64, v_mps: Option<[f64; 2]>, two_layers: bool) {
+    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, (cbh, cbh_factor): (f64, f64), v_mps: Option<[f64; 2]>, two_layers: bool) {
         let Some((m, cols)) = &self.measurements else { return };
         let clear = crate::clearsky::clear_sky(sun, self.site.file.site.elevation_m, self.site.clear_sky_model());
         let cz = sun.apparent_zenith_rad.cos();
@@ -827,7 +858,9 @@ impl Nowcaster {
             if m.stuck_at(*col, &mid, crate::qc::STUCK_RUN) {
                 continue;
             }
-            let q = sun_ray_plane_point(*pos, cbh, self.site.file.camera.position_m, sun.apparent_zenith_rad, sun.azimuth_rad);
+            // At a base `cbh_factor` times the map's, the pyranometer looks up the map nearer the camera.
+            let (inv_f, cam) = (1.0 / cbh_factor.max(0.1), self.site.file.camera.position_m);
+            let q = sun_ray_plane_point([pos[0] * inv_f, pos[1] * inv_f], cbh, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], sun.apparent_zenith_rad, sun.azimuth_rad);
             let v = v_mps.unwrap_or([0.0, 0.0]);
             let (cx, cy) = map.grid.to_cell([q[0] + v[0] * lag_s, q[1] + v[1] * lag_s]);
             // Class shares and the brightness feature in the look-up box.

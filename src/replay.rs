@@ -7,7 +7,9 @@
 //!   poa_wm2, ghi_clear_wm2, fallback_share, fallback` (one row per frame, horizon and block, and the
 //!   plant as block `plant`);
 //! * `motion.csv` — per frame: time step, blocks tried and used, global and per-layer vectors, the
-//!   filtered vector, its uncertainty, speed and direction;
+//!   filtered vector, its uncertainty, speed and direction, and the cloud base height used with its
+//!   one-sigma uncertainty and source (`cbh_m, cbh_sigma_m, cbh_source`: `ceilometer`,
+//!   `shadow_timing`, `configured`; see [`crate::cbh`]);
 //! * `ramps.csv` / `ramps.jsonl` — ramp events of every forecast: issue time, expected start, lead
 //!   time, direction, change in kW and % of AC capacity, probability (ensemble agreement);
 //! * `alarms.csv` — every change of alarm state, with the probability and the reason, and the
@@ -183,7 +185,7 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
 }
 
 /// Header of `motion.csv`.
-pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero\n";
+pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero,cbh_m,cbh_sigma_m,cbh_source\n";
 
 /// Append a nowcast's motion row.
 pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
@@ -215,6 +217,10 @@ pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
         f(second.map(|m| m.sigma_mps)),
         m.map(|m| m.blocks_static).unwrap_or(0).to_string(),
         m.map(|m| m.locked_at_zero as u8).unwrap_or(0).to_string(),
+        // The cloud base height the forecast used, its one-sigma uncertainty and source (crate::cbh).
+        format!("{:.0}", nc.cbh.cbh_m),
+        format!("{:.0}", nc.cbh.sigma_m),
+        nc.cbh.source.name().to_string(),
     ]);
     out.row(row);
 }
