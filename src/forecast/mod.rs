@@ -86,7 +86,8 @@ pub struct IrradianceParams {
     /// Least motion uncertainty the ensemble assumes \[m/s\] (cloud evolution the motion filter does
     /// not see).
     pub ensemble_motion_sigma_mps: f64,
-    /// Relative spread of the cloud base height in the ensemble.
+    /// Least relative spread of the cloud base height in the ensemble; the engine widens it to the
+    /// combined estimate's relative uncertainty when that is larger ([`crate::cbh`]).
     pub ensemble_cbh_rel_sigma: f64,
     /// Relative spread of the beam transmittance in the ensemble.
     pub ensemble_beam_rel_sigma: f64,
