@@ -361,8 +361,8 @@ impl ShadowTiming {
                 .map(|c| {
                     let mut s = [0.0; 6];
                     for (f, w) in frames.iter().zip(weights) {
-                        for k in 0..6 {
-                            s[k] += w * f.stats[c][k];
+                        for (a, b) in s.iter_mut().zip(&f.stats[c]) {
+                            *a += w * b;
                         }
                     }
                     r2_cost(&s)
@@ -386,7 +386,7 @@ impl ShadowTiming {
         let mut sorted: Vec<f64> = costs.iter().copied().filter(|c| c.is_finite()).collect();
         sorted.sort_by(f64::total_cmp);
         let median = sorted[sorted.len() / 2];
-        if !(costs[i] < p.max_contrast * median) {
+        if costs[i].is_nan() || costs[i] >= p.max_contrast * median {
             return Err(NoFit::Flat);
         }
         if i == 0 || i + 1 == costs.len() {
@@ -464,6 +464,9 @@ pub struct CbhState {
     prior_rel_sigma: f64,
 }
 
+/// A pyranometer's column in the measurements and its position (east, north) \[m\].
+pub type SensorColumn = (usize, [f64; 2]);
+
 /// The frame's inputs to [`CbhState::update`].
 pub struct CbhFrame<'a> {
     /// Frame time.
@@ -481,7 +484,7 @@ pub struct CbhFrame<'a> {
     /// Camera position (east, north, up) \[m\].
     pub camera_m: [f64; 3],
     /// Measurements and the pyranometer columns with their positions.
-    pub measurements: Option<(&'a crate::io::Measurements, &'a [(usize, [f64; 2])])>,
+    pub measurements: Option<(&'a crate::io::Measurements, &'a [SensorColumn])>,
     /// The site (solar position, clear sky).
     pub observer: crate::sun::Observer,
     /// Site height \[m\].
