@@ -558,8 +558,8 @@ mod tests {
         assert!(old.cbh_m < 1300.0);
         // The prior alone: itself with its sigma.
         let only = combine(&[a]).unwrap();
-        assert_eq!((only.cbh_m, only.source), (1000.0, CbhSource::Configured));
-        assert!((only.sigma_m - 300.0).abs() < 1e-9);
+        assert_eq!(only.source, CbhSource::Configured);
+        assert!((only.cbh_m - 1000.0).abs() < 1e-6 && (only.sigma_m - 300.0).abs() < 1e-6, "{only:?}");
         assert!(combine(&[CbhInput { cbh_m: f64::NAN, ..a }]).is_none());
     }
 
@@ -573,5 +573,49 @@ mod tests {
         assert!(r2_cost(&s) < 1e-9);
         s[4] = -s[4];
         assert_eq!(r2_cost(&s), 1.0);
+    }
+
+    /// A textured map and readings made at a base 0.7 times the map's: the scan finds it, and
+    /// readings that never change (overcast) give no estimate.
+    #[test]
+    fn shadow_timing_recovers_the_factor_on_a_textured_map() {
+        use crate::cloudmap::{CloudMap, MapParams};
+        use crate::segment::Class;
+        let map_cbh_m = 2000.0;
+        let grid = Grid::new(&MapParams { cells: 256, ..Default::default() }, map_cbh_m);
+        let n = grid.n;
+        let hash = |i: usize, j: usize| crate::synth::noise::hash64((i as u64) * 7919 + (j as u64) * 104_729) % 100;
+        let class: Vec<u8> = (0..n * n).map(|k| if hash(k % n / 3, k / n / 3) < 40 { Class::Thick as u8 } else { Class::Clear as u8 }).collect();
+        let map = CloudMap { grid, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![] };
+        let p = crate::forecast::IrradianceParams::default();
+        let tm = TransmittanceMap::new(&map, &p);
+        let pos = [[-650.0, 420.0], [560.0, 380.0], [620.0, -480.0], [-700.0, -520.0], [-120.0, 60.0], [200.0, -260.0]];
+        let (cam, v, z, a) = ([0.0, 0.0, 3.0], [8.0, 3.0], 0.6f64, 2.0f64);
+        let truth_f = 0.7;
+        let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
+        let mut st = ShadowTiming::new(ShadowParams::default(), pos.len());
+        let mut flat = ShadowTiming::new(ShadowParams::default(), pos.len());
+        for frame in 0..30 {
+            let t = t0 + chrono::Duration::seconds(20 * frame);
+            let mut rs = vec![];
+            for lag in (5..120).step_by(10) {
+                let mid = t - chrono::Duration::seconds(lag);
+                for (s, g) in pos.iter().enumerate() {
+                    let inv_f = 1.0 / truth_f;
+                    let off = crate::forecast::sun_ray_plane_point([0.0, 0.0], map_cbh_m, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], z, a);
+                    let (cx, cy) = grid.to_cell([g[0] * inv_f + off[0] + v[0] * lag as f64, g[1] * inv_f + off[1] + v[1] * lag as f64]);
+                    let x = tm.box_mean_with(cx, cy, 0.5, p.beams()).unwrap();
+                    rs.push(Reading { sensor: s, mid, kstar: 0.2 + 0.8 * x, zenith_rad: z, azimuth_rad: a });
+                }
+            }
+            st.observe(t, &tm, p.beams(), grid, map_cbh_m, cam, v, 40.0, &pos, &rs);
+            let still: Vec<Reading> = rs.iter().map(|r| Reading { kstar: 0.3, ..*r }).collect();
+            flat.observe(t, &tm, p.beams(), grid, map_cbh_m, cam, v, 40.0, &pos, &still);
+        }
+        let fit = st.estimate().unwrap();
+        let want = truth_f * map_cbh_m;
+        assert!((fit.cbh_m / want - 1.0).abs() < 0.05, "{} vs {want}", fit.cbh_m);
+        assert!(fit.rel_sigma > 0.0 && fit.rel_sigma < 0.1, "{}", fit.rel_sigma);
+        assert_eq!(flat.estimate().unwrap_err(), NoFit::NoEvents);
     }
 }
