@@ -457,6 +457,10 @@ pub fn readings(
 /// ceilometer series ([`CbhState::update`]).
 #[derive(Debug, Clone)]
 pub struct CbhState {
+    /// Whether shadow timing is asked for (`[clouds] shadow_timing`).
+    shadow_wanted: bool,
+    /// The estimator, made on the first frame with enough pyranometer columns (in live mode the
+    /// measurements may arrive after start).
     shadow: Option<ShadowTiming>,
     last_fit: Option<(DateTime<Utc>, ShadowFit)>,
     /// Why the newest frame gave no shadow-timing fit, if it gave none.
@@ -494,10 +498,11 @@ pub struct CbhFrame<'a> {
 }
 
 impl CbhState {
-    /// The state for a site file.
-    pub fn new(clouds: &crate::config::CloudSection, sensors: usize) -> CbhState {
+    /// The state for a site file's `[clouds]`.
+    pub fn new(clouds: &crate::config::CloudSection) -> CbhState {
         CbhState {
-            shadow: (clouds.shadow_timing && sensors >= MIN_SHADOW_SENSORS).then(|| ShadowTiming::new(ShadowParams::default(), sensors)),
+            shadow_wanted: clouds.shadow_timing,
+            shadow: None,
             last_fit: None,
             last_no_fit: None,
             prior_rel_sigma: clouds.base_height_rel_sigma.unwrap_or(CONFIGURED_REL_SIGMA),
@@ -511,6 +516,13 @@ impl CbhState {
 
     /// Feed a frame to the shadow timing (if on) and combine the estimates at the frame's time.
     pub fn update(&mut self, f: &CbhFrame) -> CbhEstimate {
+        if let Some((_, cols)) = f.measurements
+            && self.shadow_wanted
+            && self.shadow.is_none()
+            && cols.len() >= MIN_SHADOW_SENSORS
+        {
+            self.shadow = Some(ShadowTiming::new(ShadowParams::default(), cols.len()));
+        }
         if let (Some(st), Some((m, cols)), Some(v)) = (&mut self.shadow, f.measurements, f.v_map_mps) {
             let idx: Vec<usize> = cols.iter().map(|c| c.0).collect();
             let pos: Vec<[f64; 2]> = cols.iter().map(|c| c.1).collect();

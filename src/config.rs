@@ -272,8 +272,8 @@ pub struct CloudSection {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub base_height_rel_sigma: Option<f64>,
     /// Estimate the cloud base height from shadow timing at the `[[pyranometers]]`
-    /// ([`crate::cbh::ShadowTiming`]; needs at least 3 pyranometers and readings every 30 s or
-    /// faster) and combine it with the configured value or series.
+    /// ([`crate::cbh::ShadowTiming`]; needs at least 3 pyranometers) and combine it with the
+    /// configured value or series.
     #[serde(default, skip_serializing_if = "std::ops::Not::not")]
     pub shadow_timing: bool,
 }

@@ -316,7 +316,7 @@ impl Nowcaster {
             (!cols.is_empty()).then_some((m, cols))
         });
         let reference = site.clear_reference.clone().unwrap_or_default();
-        let cbh_state = crate::cbh::CbhState::new(&site.file.clouds, measurements.as_ref().map_or(0, |m| m.1.len()));
+        let cbh_state = crate::cbh::CbhState::new(&site.file.clouds);
         Nowcaster {
             site,
             plant,
