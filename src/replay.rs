@@ -72,6 +72,8 @@ pub struct ReplaySummary {
     pub wall_s: f64,
     /// Last filtered motion (east, north) \[m/s\].
     pub last_motion_mps: Option<[f64; 2]>,
+    /// The cloud base height the last used frame assumed, with its uncertainty and source.
+    pub last_cbh: Option<crate::cbh::CbhEstimate>,
     /// Output tables written (final paths; overlays not listed).
     pub outputs: Vec<PathBuf>,
 }
@@ -266,6 +268,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
     let bar = crate::synth::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
+    let mut last_cbh = None;
     let mut outputs = vec![];
     // Frames are read and decoded one or two ahead on a thread of their own, so that decoding frame
     // n + 1 overlaps the engine's step on frame n.
@@ -345,7 +348,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                         "ok".into(),
                         String::new(),
                         format!("{:.4}", nc.cloud_fraction),
-                        format!("{:.0}", nc.cbh_m),
+                        format!("{:.0}", nc.cbh.cbh_m),
                         format!("{:.2}", nc.sun.elevation_rad().to_degrees()),
                         format!("{dms:.2}"),
                         format!("{:.2}", nc.times.qc_ms),
@@ -357,6 +360,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                         format!("{:.3}", nc.band_scale[1]),
                         format!("{:.3}", nc.band_scale[2]),
                     ]);
+                    last_cbh = Some(nc.cbh);
                     if nc.motion.is_some() {
                         last_motion = nc.motion.map(|m| m.v_mps);
                     }
@@ -397,6 +401,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
         median_decode_ms: median(decode_ms),
         wall_s: wall.elapsed().as_secs_f64(),
         last_motion_mps: last_motion,
+        last_cbh,
         outputs,
     };
     Ok((summary, set))
