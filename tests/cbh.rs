@@ -15,7 +15,11 @@ use nephocast::synth::{Scene, larkspur_network, scene, write_sequence};
 use nephocast::verify::{Evaluation, evaluate};
 
 /// Metrics that do not yet meet their target.
-const KNOWN_SHORTFALLS: &[&str] = &[];
+/// * `skill gap`: the skill with the estimated base is not within 0.03 of the skill with the true
+///   base configured, but above it (by 0.011 / 0.031 / 0.045 at 5 / 10 / 15 min when listed). Not
+///   understood yet; a suspect is the look-up blur, set in metres on the map's plane, which is 1/1.6
+///   as wide on the ground when the map lies on the prior's higher plane.
+const KNOWN_SHORTFALLS: &[&str] = &["skill gap"];
 
 /// The scene's true cloud base \[m\].
 const TRUTH_M: f64 = 1300.0;
@@ -116,7 +120,7 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     check("median error", median <= 0.10, format!("{median:.3} (target ≤ 0.10)"));
     check("2σ coverage", covered >= 0.80, format!("{covered:.2} (target ≥ 0.80)"));
     let gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&est.eval, *m)).collect();
-    check("skill gap", gaps.iter().all(|g| *g <= 0.03), format!("true minus estimated at 5/10/15 min {gaps:.3?} (target ≤ 0.03)"));
+    check("skill gap", gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus estimated at 5/10/15 min {gaps:.3?} (target within ±0.03)"));
 }
 
 /// The same network read as 1-minute means (the usual logger setting): recorded figures. The
