@@ -843,7 +843,7 @@ impl Nowcaster {
         if clear.ghi_wm2 < 50.0 || cz <= 0.05 {
             return;
         }
-        let r = (self.irradiance.blur_min_m / map.grid.cell_m).max(0.5);
+        let r = (self.irradiance.blur_min_m / cbh_factor.max(0.1) / map.grid.cell_m).max(0.5);
         let mut rows = vec![];
         for (col, pos) in cols {
             let Some((y, mid)) = m.completed_at(*col, t) else { continue };

@@ -14,12 +14,8 @@ use nephocast::replay::{ReplayOptions, replay};
 use nephocast::synth::{Scene, larkspur_network, scene, write_sequence};
 use nephocast::verify::{Evaluation, evaluate};
 
-/// Metrics that do not yet meet their target.
-/// * `skill gap`: the skill with the estimated base is not within 0.03 of the skill with the true
-///   base configured, but above it (by 0.011 / 0.031 / 0.045 at 5 / 10 / 15 min when listed). Not
-///   understood yet; a suspect is the look-up blur, set in metres on the map's plane, which is 1/1.6
-///   as wide on the ground when the map lies on the prior's higher plane.
-const KNOWN_SHORTFALLS: &[&str] = &["skill gap"];
+/// Metrics that do not yet meet their target (none at present).
+const KNOWN_SHORTFALLS: &[&str] = &[];
 
 /// The scene's true cloud base \[m\].
 const TRUTH_M: f64 = 1300.0;
