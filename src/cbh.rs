@@ -125,7 +125,8 @@ pub fn combine(inputs: &[CbhInput]) -> Option<CbhEstimate> {
     Some(CbhEstimate { cbh_m, sigma_m: cbh_m / sw.sqrt(), source })
 }
 
-/// Settings of [`ShadowTiming`] (own choices, tuned on the synthetic `cbh-network` scene).
+/// Settings of [`ShadowTiming`] (own first choices, no source; not tuned: they worked on the
+/// synthetic `cbh-network` scene and the demo as first set).
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct ShadowParams {
     /// Frames whose costs are summed: the last this many seconds \[s\].
