@@ -715,6 +715,9 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
     if let Some(v) = s.last_motion_mps {
         crate::say!("cloud motion at the end: {:.1} m/s toward {:.0}°", v[0].hypot(v[1]), v[0].atan2(v[1]).to_degrees().rem_euclid(360.0));
     }
+    if let Some(c) = s.last_cbh {
+        crate::say!("cloud base height at the end: {:.0} m ± {:.0} m (1σ), {} (per frame in motion.csv)", c.cbh_m, c.sigma_m, c.source.name());
+    }
     for p in &s.outputs {
         crate::say!("wrote {}", p.display());
     }

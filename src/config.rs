@@ -190,6 +190,15 @@ pub struct CloudSection {
     /// A CSV series `time_utc,cbh_m` (e.g. from a ceilometer), relative to the site file.
     #[serde(default)]
     pub base_height_csv: Option<PathBuf>,
+    /// Prior uncertainty of `base_height_m` as a share of it (the sigma of `ln h`); default
+    /// [`crate::cbh::CONFIGURED_REL_SIGMA`].
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub base_height_rel_sigma: Option<f64>,
+    /// Estimate the cloud base height from shadow timing at the `[[pyranometers]]`
+    /// ([`crate::cbh::ShadowTiming`]; needs at least 3 pyranometers) and combine it with the
+    /// configured value or series.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub shadow_timing: bool,
 }
 
 /// `[forecast]`.
@@ -373,6 +382,16 @@ impl SiteFile {
                 return Err(c.invalid("clouds", "one of base_height_m or base_height_csv", "both"));
             }
             (None, None) => return Err(c.invalid("clouds", "base_height_m or base_height_csv", "neither")),
+        }
+        if let Some(r) = self.clouds.base_height_rel_sigma {
+            c.range("clouds.base_height_rel_sigma", r, 0.01, 2.0)?;
+        }
+        if self.clouds.shadow_timing && self.pyranometers.len() < crate::cbh::MIN_SHADOW_SENSORS {
+            return Err(c.invalid(
+                "clouds.shadow_timing",
+                format!("at least {} [[pyranometers]] (shadow timing compares their readings)", crate::cbh::MIN_SHADOW_SENSORS),
+                self.pyranometers.len().to_string(),
+            ));
         }
         let p = &self.plant;
         c.range("plant.point_spacing_m", p.point_spacing_m, 1.0, 1000.0)?;

@@ -49,6 +49,7 @@ macro_rules! say {
 pub mod bench;
 pub mod calibrate;
 pub mod camera;
+pub mod cbh;
 #[cfg(feature = "cli")]
 pub mod cli;
 pub mod clearsky;

@@ -129,8 +129,10 @@ pub struct Nowcast {
     pub baseline_s: Option<f64>,
     /// Sun at the frame time.
     pub sun: SunPosition,
-    /// Cloud base height used \[m\].
+    /// Height of the cloud map's plane \[m\] (configured value or ceilometer series).
     pub cbh_m: f64,
+    /// The cloud base height the forecast used (all estimates combined), its uncertainty and source.
+    pub cbh: crate::cbh::CbhEstimate,
     /// Cloud fraction of the map within the configured zenith.
     pub cloud_fraction: f64,
     /// The cloud map.
@@ -295,6 +297,7 @@ pub struct Nowcaster {
     cbh_series: Option<Series>,
     measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
     tuner: Tuner,
+    cbh_state: crate::cbh::CbhState,
     band_calibration: crate::forecast::BandCalibration,
     blend: crate::forecast::PersistenceBlend,
     irradiance: IrradianceParams,
@@ -320,6 +323,7 @@ impl Nowcaster {
             (!cols.is_empty()).then_some((m, cols))
         });
         let reference = site.clear_reference.clone().unwrap_or_default();
+        let cbh_state = crate::cbh::CbhState::new(&site.file.clouds);
         Nowcaster {
             site,
             plant,
@@ -329,6 +333,7 @@ impl Nowcaster {
             cbh_series,
             measurements,
             tuner: Tuner::default(),
+            cbh_state,
             band_calibration: Default::default(),
             blend: Default::default(),
             irradiance,
@@ -548,6 +553,11 @@ impl Nowcaster {
         added
     }
 
+    /// The cloud base height state (the shadow-timing fit and why there is none).
+    pub fn cbh_state(&self) -> &crate::cbh::CbhState {
+        &self.cbh_state
+    }
+
     /// Pyranometer readings the transmittance tuning holds now.
     pub fn tuning_rows(&self) -> usize {
         self.tuner.rows.len()
@@ -623,10 +633,12 @@ impl Nowcaster {
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
         let motion = moved.layers.first().map(|l| l.motion);
         let t_motion = Clock::now();
+        let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
+        let cbh_factor = cbh_est.cbh_m / cbh;
         if self.irradiance.tune_from_measurements {
-            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), cbh, motion.map(|m| m.v_mps), moved.layers.len() > 1);
+            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
         }
-        let input = self.forecast_input(&frame.time, cbh, &moved.layers, [cf, thin_cf]);
+        let input = self.forecast_input(&frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
         let tms = layer_tables(&map, &moved, &input.params);
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
@@ -648,6 +660,7 @@ impl Nowcaster {
             baseline_s: moved.measurement.as_ref().map(|m| m.dt_s),
             sun,
             cbh_m: cbh,
+            cbh: cbh_est,
             cloud_fraction: cf,
             map,
             measurement: moved.measurement,
@@ -691,9 +704,33 @@ impl Nowcaster {
         Ok(sun)
     }
 
+    /// Cloud base height: every estimate combined (ceilometer or configured value, shadow timing at
+    /// the pyranometers); the map stays on its plane and the forecast scales its look-ups by the
+    /// ratio (`cbh_factor`).
+    fn cbh_stage(&mut self, t: &DateTime<Utc>, map: &CloudMap, map_cbh_m: f64, v_map_mps: Option<[f64; 2]>) -> crate::cbh::CbhEstimate {
+        self.cbh_state.update(&crate::cbh::CbhFrame {
+            time: *t,
+            map,
+            params: &self.irradiance,
+            map_cbh_m,
+            from_series: self.cbh_series.is_some(),
+            v_map_mps,
+            camera_m: self.site.file.camera.position_m,
+            measurements: self.measurements.as_ref().map(|(m, c)| (m, c.as_slice())),
+            observer: self.site.observer(),
+            altitude_m: self.site.file.site.elevation_m,
+            model: self.site.clear_sky_model(),
+        })
+    }
+
     /// The forecast's inputs at a frame: the tracked layers' advection (or a still sky with a wide
     /// speed spread when nothing is tracked yet), the cover, the weather and the probe points.
-    fn forecast_input(&self, t: &DateTime<Utc>, cbh: f64, layers: &[TrackedLayer], [cf, thin_cf]: [f64; 2]) -> ForecastInput<'_> {
+    /// `cbh_factor` scales the first layer's look-ups from the map's plane to the combined cloud
+    /// base height; `cbh_rel_sigma` is that height's relative uncertainty, which widens the
+    /// ensemble's spread of the base when it exceeds the configured one.
+    fn forecast_input(&self, t: &DateTime<Utc>, (cbh, cbh_factor, cbh_rel_sigma): (f64, f64, f64), layers: &[TrackedLayer], [cf, thin_cf]: [f64; 2]) -> ForecastInput<'_> {
+        let mut params = self.irradiance;
+        params.ensemble_cbh_rel_sigma = params.ensemble_cbh_rel_sigma.max(cbh_rel_sigma);
         ForecastInput {
             issue: *t,
             observer: self.site.observer(),
@@ -702,15 +739,15 @@ impl Nowcaster {
             camera_m: self.site.file.camera.position_m,
             cbh_m: cbh,
             layers: if layers.is_empty() {
-                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor: 1.0 }]
+                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor }]
             } else {
-                layers.iter().map(|l| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: 1.0 }).collect()
+                layers.iter().enumerate().map(|(i, l)| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: if i == 0 { cbh_factor } else { 1.0 } }).collect()
             },
             cloud_fraction: if cf.is_nan() { 0.0 } else { cf },
             thin_fraction: if thin_cf.is_nan() { 0.0 } else { thin_cf },
             horizons_s: self.horizons_s(),
             plant: &self.plant,
-            params: self.irradiance,
+            params,
             power: self.site.file.power,
             temp_air_c: self.weather(t, "temp_air_c").unwrap_or(self.site.file.power.default_temp_air_c),
             wind_mps: self.weather(t, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
@@ -810,14 +847,14 @@ impl Nowcaster {
     /// With two layers tracked the brightness feature is left out (its regressor is 0), as in the
     /// forecast ([`crate::forecast::forecast_with`]).
     #[allow(clippy::too_many_arguments)]
-    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, cbh: f64, v_mps: Option<[f64; 2]>, two_layers: bool) {
+    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, (cbh, cbh_factor): (f64, f64), v_mps: Option<[f64; 2]>, two_layers: bool) {
         let Some((m, cols)) = &self.measurements else { return };
         let clear = crate::clearsky::clear_sky(sun, self.site.file.site.elevation_m, self.site.clear_sky_model());
         let cz = sun.apparent_zenith_rad.cos();
         if clear.ghi_wm2 < 50.0 || cz <= 0.05 {
             return;
         }
-        let r = (self.irradiance.blur_min_m / map.grid.cell_m).max(0.5);
+        let r = (self.irradiance.blur_min_m / cbh_factor.max(0.1) / map.grid.cell_m).max(0.5);
         let mut rows = vec![];
         for (col, pos) in cols {
             let Some((y, mid)) = m.completed_at(*col, t) else { continue };
@@ -832,7 +869,9 @@ impl Nowcaster {
             if m.stuck_at(*col, &mid, crate::qc::STUCK_RUN) {
                 continue;
             }
-            let q = sun_ray_plane_point(*pos, cbh, self.site.file.camera.position_m, sun.apparent_zenith_rad, sun.azimuth_rad);
+            // At a base `cbh_factor` times the map's, the pyranometer looks up the map nearer the camera.
+            let (inv_f, cam) = (1.0 / cbh_factor.max(0.1), self.site.file.camera.position_m);
+            let q = sun_ray_plane_point([pos[0] * inv_f, pos[1] * inv_f], cbh, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], sun.apparent_zenith_rad, sun.azimuth_rad);
             let v = v_mps.unwrap_or([0.0, 0.0]);
             let (cx, cy) = map.grid.to_cell([q[0] + v[0] * lag_s, q[1] + v[1] * lag_s]);
             // Class shares and the brightness feature in the look-up box.

@@ -7,7 +7,9 @@
 //!   poa_wm2, ghi_clear_wm2, fallback_share, fallback` (one row per frame, horizon and block, and the
 //!   plant as block `plant`);
 //! * `motion.csv` — per frame: time step, blocks tried and used, global and per-layer vectors, the
-//!   filtered vector, its uncertainty, speed and direction;
+//!   filtered vector, its uncertainty, speed and direction, and the cloud base height used with its
+//!   one-sigma uncertainty and source (`cbh_m, cbh_sigma_m, cbh_source`: `ceilometer`,
+//!   `shadow_timing`, `configured`; see [`crate::cbh`]);
 //! * `ramps.csv` / `ramps.jsonl` — ramp events of every forecast: issue time, expected start, lead
 //!   time, direction, change in kW and % of AC capacity, probability (ensemble agreement);
 //! * `alarms.csv` — every change of alarm state, with the probability and the reason, and the
@@ -69,6 +71,8 @@ pub struct ReplaySummary {
     pub wall_s: f64,
     /// Last filtered motion (east, north) \[m/s\].
     pub last_motion_mps: Option<[f64; 2]>,
+    /// The cloud base height the last used frame assumed, with its uncertainty and source.
+    pub last_cbh: Option<crate::cbh::CbhEstimate>,
     /// Output tables written (final paths; overlays not listed).
     pub outputs: Vec<PathBuf>,
 }
@@ -139,7 +143,7 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
 }
 
 /// Header of `motion.csv`.
-pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero\n";
+pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero,cbh_m,cbh_sigma_m,cbh_source\n";
 
 /// Append a nowcast's motion row.
 pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
@@ -171,6 +175,10 @@ pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
         f(second.map(|m| m.sigma_mps)),
         m.map(|m| m.blocks_static).unwrap_or(0).to_string(),
         m.map(|m| m.locked_at_zero as u8).unwrap_or(0).to_string(),
+        // The cloud base height the forecast used, its one-sigma uncertainty and source (crate::cbh).
+        format!("{:.0}", nc.cbh.cbh_m),
+        format!("{:.0}", nc.cbh.sigma_m),
+        nc.cbh.source.name().to_string(),
     ]);
     out.row(row);
 }
@@ -216,6 +224,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
     let bar = crate::io::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
+    let mut last_cbh = None;
     let mut outputs = vec![];
     // Frames are read and decoded one or two ahead on a thread of their own, so that decoding frame
     // n + 1 overlaps the engine's step on frame n.
@@ -295,7 +304,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                         "ok".into(),
                         String::new(),
                         format!("{:.4}", nc.cloud_fraction),
-                        format!("{:.0}", nc.cbh_m),
+                        format!("{:.0}", nc.cbh.cbh_m),
                         format!("{:.2}", nc.sun.elevation_rad().to_degrees()),
                         format!("{dms:.2}"),
                         format!("{:.2}", nc.times.qc_ms),
@@ -307,6 +316,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                         format!("{:.3}", nc.band_scale[1]),
                         format!("{:.3}", nc.band_scale[2]),
                     ]);
+                    last_cbh = Some(nc.cbh);
                     if nc.motion.is_some() {
                         last_motion = nc.motion.map(|m| m.v_mps);
                     }
@@ -347,6 +357,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
         median_decode_ms: median(decode_ms),
         wall_s: wall.elapsed().as_secs_f64(),
         last_motion_mps: last_motion,
+        last_cbh,
         outputs,
     };
     Ok((summary, set))

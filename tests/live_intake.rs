@@ -94,6 +94,9 @@ fn slow_writer_partial_frame_is_never_processed() {
     let name = src.file_name().unwrap().to_string_lossy().into_owned();
     let t = nephocast::io::time_from_frame_name(&name).unwrap();
     assert_eq!(nc["issue_time_utc"].as_str(), Some(nephocast::io::fmt_time(&t).as_str()));
+    // The cloud base height assumed: the demo's configured value with its 30 % prior uncertainty.
+    assert_eq!((nc["cbh_source"].as_str(), nc["cbh_m"].as_f64().map(f64::round)), (Some("configured"), Some(1400.0)), "{nc}");
+    assert!((nc["cbh_sigma_m"].as_f64().unwrap() - 420.0).abs() < 1e-6, "{nc}");
     h.stop();
 }
 

@@ -55,9 +55,10 @@ pub fn ensemble_with(
                 let sigma = ad.sigma_mps.max(p.ensemble_motion_sigma_mps);
                 let o = 10 * l as u64;
                 ad.v_mps = [ad.v_mps[0] + sigma * g(1 + o), ad.v_mps[1] + sigma * g(2 + o)];
-                // The first layer's base is the configured one; a second layer's is not known at
+                // The first layer's base spreads around the central one (its estimate, see
+                // `crate::cbh`); a second layer's is not known at
                 // all (one camera cannot tell its height), so its factor spreads wider.
-                ad.cbh_factor = if l == 0 { (1.0 + p.ensemble_cbh_rel_sigma * cbh_g).max(0.3) } else { (SECOND_LAYER_LOG_CBH_SIGMA * g(9 + o)).exp() };
+                ad.cbh_factor = if l == 0 { ad.cbh_factor * (1.0 + p.ensemble_cbh_rel_sigma * cbh_g).max(0.3) } else { (SECOND_LAYER_LOG_CBH_SIGMA * g(9 + o)).exp() };
                 // Members are sharp: their spread, not a blur, carries the uncertainty.
                 ad.sigma_mps = 0.0;
             }

@@ -70,10 +70,10 @@ pub struct IrradianceParams {
     pub diffuse_thin_weight: f64,
     /// Ground albedo for the plane-of-array ground term.
     pub albedo: f64,
-    /// Smallest half-width of the look-up box \[m\].
+    /// Smallest half-width of the look-up box \[m\] (at the cloud base the forecast uses).
     pub blur_min_m: f64,
     /// Growth of the look-up box with horizon for cloud evolution, on top of the motion uncertainty
-    /// \[m/s\].
+    /// \[m/s\] (at the cloud base the forecast uses).
     pub blur_growth_mps: f64,
     /// Weight of the current state at the sun-ray point in the fallback (the rest is the map's
     /// mean transmittance).
@@ -88,7 +88,8 @@ pub struct IrradianceParams {
     /// Least motion uncertainty the ensemble assumes \[m/s\] (cloud evolution the motion filter does
     /// not see).
     pub ensemble_motion_sigma_mps: f64,
-    /// Relative spread of the cloud base height in the ensemble.
+    /// Least relative spread of the cloud base height in the ensemble; the engine widens it to the
+    /// combined estimate's relative uncertainty when that is larger ([`crate::cbh`]).
     pub ensemble_cbh_rel_sigma: f64,
     /// Relative spread of the beam transmittance in the ensemble.
     pub ensemble_beam_rel_sigma: f64,
@@ -404,7 +405,9 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             inv_f[l] = 1.0 / ad.cbh_factor.max(0.1);
             off[l] = sun_ray_plane_point([0.0, 0.0], input.cbh_m, [cam[0] * inv_f[l], cam[1] * inv_f[l], cam[2]], z, a);
             adv[l] = [off[l][0] - ad.v_mps[0] * k, off[l][1] - ad.v_mps[1] * k];
-            let blur_m = (p.blur_min_m.powi(2) + (ad.sigma_mps * k).powi(2) + (p.blur_growth_mps * k).powi(2)).sqrt();
+            // The box's settings are on the ground (at the layer's base): on the map they scale by
+            // 1 / cbh_factor, like the points; the motion uncertainty is the map's own.
+            let blur_m = ((p.blur_min_m * inv_f[l]).powi(2) + (ad.sigma_mps * k).powi(2) + (p.blur_growth_mps * inv_f[l] * k).powi(2)).sqrt();
             r_cells[l] = blur_m / grid.cell_m;
         }
         // A point's beam transmittance (as used: scaled and capped) and whether it fell back.

@@ -338,7 +338,10 @@ fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
     serde_json::json!({
         "issue_time_utc": fmt_time(&nc.time),
         "cloud_fraction": nc.cloud_fraction,
-        "cbh_m": nc.cbh_m,
+        // The cloud base height used, its one-sigma uncertainty and source (crate::cbh).
+        "cbh_m": nc.cbh.cbh_m,
+        "cbh_sigma_m": nc.cbh.sigma_m,
+        "cbh_source": nc.cbh.source.name(),
         "sun_elevation_deg": nc.sun.elevation_rad().to_degrees(),
         "motion": nc.motion.map(|m| serde_json::json!({"east_mps": m.v_mps[0], "north_mps": m.v_mps[1], "sigma_mps": m.sigma_mps,
             "speed_mps": m.v_mps[0].hypot(m.v_mps[1]), "toward_deg": m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)})),

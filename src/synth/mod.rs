@@ -138,6 +138,32 @@ pub struct SceneSpec {
     /// Imperfections of a real camera (all off by default; not written when off).
     #[serde(default, skip_serializing_if = "Nuisances::is_off")]
     pub nuisances: Nuisances,
+    /// A network of fast pyranometers in place of the three block-centre ones (off by default and
+    /// not written when off, so older scenes render byte for byte as before).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub pyranometer_network: Option<PyranometerNetwork>,
+}
+
+/// Pyranometers spread over and around the plant, read faster than once a minute (for the cloud
+/// base height from shadow timing, [`crate::cbh`]). `measurements.csv` then holds their means over
+/// `sample_s` (of 1-s samples), one row per period, columns `ghi_<name>_wm2`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PyranometerNetwork {
+    /// Averaging period of each reading \[s\] (whole seconds, 1–60).
+    pub sample_s: u32,
+    /// Names and positions (east, north) \[m\].
+    pub sensors: Vec<(String, [f64; 2])>,
+}
+
+/// The network of the `cbh-network` scene: six pyranometers 10-s means, spread over about 1.3 km
+/// around the plant (corners a few hundred metres outside it, two inside).
+pub fn larkspur_network() -> PyranometerNetwork {
+    let s = |n: &str, x: f64, y: f64| (n.to_string(), [x, y]);
+    PyranometerNetwork {
+        sample_s: 10,
+        sensors: vec![s("n1", -650.0, 420.0), s("n2", 560.0, 380.0), s("n3", 620.0, -480.0), s("n4", -700.0, -520.0), s("n5", -120.0, 60.0), s("n6", 200.0, -260.0)],
+    }
 }
 
 /// The fictional site of all scenes: Larkspur Flats.
@@ -166,7 +192,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
             timezone: Some("Europe/Madrid".into()),
         },
         camera: CameraSection { calibration: PathBuf::from(format!("calibration/{camera_file}.toml")), position_m: [0.0, 0.0, 3.0] },
-        clouds: CloudSection { base_height_m: Some(cbh_m), base_height_csv: None },
+        clouds: CloudSection { base_height_m: Some(cbh_m), ..Default::default() },
         plant: PlantSection {
             point_spacing_m: 25.0,
             blocks: vec![
@@ -231,6 +257,7 @@ pub fn scenes() -> Vec<SceneSpec> {
         jpeg_quality: 85,
         truth_mask_every: 3,
         nuisances: Nuisances::default(),
+        pyranometer_network: None,
     };
     let mut v = vec![
         base("broken-cumulus-fast", "broken cumulus at 1200 m moving at 12 m/s toward the east-north-east",
@@ -256,6 +283,11 @@ pub fn scenes() -> Vec<SceneSpec> {
         truth_mask_every: 3,
         ..base("larkspur-demo", "the shipped demo: broken cumulus at 1400 m moving at 9 m/s toward the east over the plant",
                vec![layer(1400.0, 9.0, 85.0, 0.40, 0.40, 35.0, 1500.0)])
+    });
+    v.push(SceneSpec {
+        pyranometer_network: Some(larkspur_network()),
+        ..base("cbh-network", "broken cumulus at 1300 m moving at 10 m/s toward the east-north-east over a network of six fast pyranometers (cloud base height from shadow timing)",
+               vec![layer(1300.0, 10.0, 60.0, 0.40, 0.40, 35.0, 1400.0)])
     });
     // One imperfect camera (and its wide-lens variant) for the nuisance scenes.
     let nuisance = |name: &str, desc: &str, layers: Vec<LayerSpec>, wide: bool| {
@@ -397,6 +429,11 @@ impl Scene {
             return Err(bad("frame_step_s must be ≥ 1 and duration_min > 0"));
         }
         spec.nuisances.check().map_err(|m| bad(&m))?;
+        if let Some(n) = &spec.pyranometer_network
+            && (!(1..=60).contains(&n.sample_s) || n.sensors.is_empty() || n.sensors.len() > crate::config::MAX_PYRANOMETERS)
+        {
+            return Err(bad("pyranometer_network: sample_s must be 1–60 s and there must be 1 to MAX_PYRANOMETERS sensors"));
+        }
         for l in &spec.layers {
             if !(50.0..=15000.0).contains(&l.base_height_m) || !(0.0..=60.0).contains(&l.wind_speed_mps) {
                 return Err(bad("layer base height must be 50–15000 m and wind 0–60 m/s"));
@@ -405,7 +442,11 @@ impl Scene {
         let cbh = spec.layers.iter().map(|l| l.base_height_m).fold(f64::INFINITY, f64::min);
         let mut site = larkspur_site(if cbh.is_finite() { cbh } else { 1500.0 }, &spec.camera.name);
         let plant = Plant::from_section(&site.plant);
-        site.pyranometers = pyranometers(&plant)
+        let sensors = match &spec.pyranometer_network {
+            Some(n) => n.sensors.iter().map(|(name, p)| (format!("pyr_{name}"), *p)).collect(),
+            None => pyranometers(&plant),
+        };
+        site.pyranometers = sensors
             .into_iter()
             .map(|(name, position_m)| crate::config::PyranometerSpec { name: name.trim_start_matches("pyr_").to_string(), position_m })
             .collect();
@@ -589,21 +630,25 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         }
     }
     w(out.join("truth").join("irradiance.csv"), &irr.into_bytes())?;
-    // Pyranometers: 1-minute means of 1-second samples with 2 % gain error and 3 W/m² noise.
-    let pyr = pyranometers(&scene.plant);
+    // Pyranometers: 1-minute means (or the network's period) of 1-second samples with 2 % gain
+    // error and 3 W/m² noise.
+    let (pyr, period) = match &spec.pyranometer_network {
+        Some(n) => (n.sensors.iter().map(|(name, p)| (format!("pyr_{name}"), *p)).collect(), n.sample_s as usize),
+        None => (pyranometers(&scene.plant), 60),
+    };
     let pts: Vec<[f64; 2]> = pyr.iter().map(|p| p.1).collect();
     let total_s = (times.len() + extra) as f64 * spec.frame_step_s;
-    let minutes = (total_s / 60.0).floor() as usize;
-    let secs = World::times(scene.start, 1.0, minutes * 60);
+    let minutes = (total_s / period as f64).floor() as usize;
+    let secs = World::times(scene.start, 1.0, minutes * period);
     let samples = scene.world.irradiance_series(&secs, &pts);
     let mut header = vec!["time_utc".to_string()];
     header.extend(pyr.iter().map(|(n, _)| format!("ghi_{}_wm2", n.trim_start_matches("pyr_"))));
     header.extend(["temp_air_c".to_string(), "wind_speed_mps".to_string()]);
     let mut meas = CsvTable::new(header);
     for m in 0..minutes {
-        let mut row = vec![fmt_time(&secs[m * 60])];
+        let mut row = vec![fmt_time(&secs[m * period])];
         for (k, _) in pyr.iter().enumerate() {
-            let mean = (0..60).map(|s| samples[m * 60 + s][k].ghi_wm2).sum::<f64>() / 60.0;
+            let mean = (0..period).map(|s| samples[m * period + s][k].ghi_wm2).sum::<f64>() / period as f64;
             let gain = 1.0 + 0.02 * noise::gaussian(noise::hash64(scene.seed ^ (k as u64 + 77)), noise::hash64(scene.seed ^ (k as u64 + 78))).clamp(-1.5, 1.5);
             let n = 3.0 * noise::gaussian(noise::hash64(scene.seed ^ ((m * 16 + k) as u64 + 1000)), noise::hash64(scene.seed ^ ((m * 16 + k) as u64 + 99_999)));
             row.push(format!("{:.1}", (mean * gain + n).max(0.0)));
@@ -611,7 +656,11 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         row.extend([format!("{:.1}", 22.0 + 4.0 * m as f64 / minutes.max(1) as f64), format!("{:.1}", 3.0)]);
         meas.row(row);
     }
-    let mut meas_bytes = b"# Simulated pyranometers (1-minute means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the minute\n".to_vec();
+    let mut meas_bytes = if period == 60 {
+        b"# Simulated pyranometers (1-minute means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the minute\n".to_vec()
+    } else {
+        format!("# Simulated pyranometers ({period}-s means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the period\n").into_bytes()
+    };
     meas_bytes.extend(meas.into_bytes());
     w(out.join("measurements.csv"), &meas_bytes)?;
     Ok(WriteSummary { frames: times.len(), bytes, render_s_per_frame: render_s })

@@ -1,0 +1,230 @@
+//! Cloud base height without a ceilometer, end to end on synthetic scenes with known truth.
+//!
+//! The `cbh-network` scene (broken cumulus at 1300 m, six pyranometers read as 10-s means) is
+//! replayed three times from one rendering: with the true base configured, with a prior 1.6 times
+//! too high and shadow timing on, and with that wrong prior alone. Targets: over the frames with a
+//! shadow-timing estimate, the median CBH error ≤ 10 % and the ±2σ interval covering the truth in
+//! ≥ 80 % of them; plant-mean GHI skill against smart persistence with the estimated base within
+//! 0.03 of the skill with the true base at 5, 10 and 15 minutes. Shortfalls that are known are
+//! listed in `KNOWN_SHORTFALLS`: the test checks they still fall short (so the list stays true)
+//! and prints every figure.
+use std::path::Path;
+
+use nephocast::replay::{ReplayOptions, replay};
+use nephocast::synth::{Scene, larkspur_network, scene, write_sequence};
+use nephocast::verify::{Evaluation, evaluate};
+
+/// Metrics that do not yet meet their target (none at present).
+const KNOWN_SHORTFALLS: &[&str] = &[];
+
+/// The scene's true cloud base \[m\].
+const TRUTH_M: f64 = 1300.0;
+
+struct Run {
+    eval: Evaluation,
+    /// Per frame: cbh_m, cbh_sigma_m, cbh_source from motion.csv.
+    cbh: Vec<(f64, f64, String)>,
+}
+
+fn render(name: &str, minutes: f64, edit: impl Fn(&mut nephocast::synth::SceneSpec)) -> tempfile::TempDir {
+    let d = tempfile::tempdir().unwrap();
+    let mut spec = scene(name).unwrap();
+    spec.duration_min = minutes;
+    edit(&mut spec);
+    write_sequence(&Scene::new(spec, 3).unwrap(), d.path(), false).unwrap();
+    d
+}
+
+/// Replay with the written site file edited by `edit_site` (a text replacement).
+fn run(dir: &Path, tag: &str, edit_site: impl Fn(&str) -> String) -> Run {
+    let site = std::fs::read_to_string(dir.join("site.toml")).unwrap();
+    let edited = edit_site(&site);
+    let site_path = dir.join(format!("site-{tag}.toml"));
+    std::fs::write(&site_path, edited).unwrap();
+    let out = dir.join(format!("out-{tag}"));
+    let opts = ReplayOptions {
+        site: site_path,
+        frames: dir.join("frames"),
+        out: out.clone(),
+        measurements: Some(dir.join("measurements.csv")),
+        overlays_every: 0,
+        progress: false,
+    };
+    let sum = replay(&opts).unwrap();
+    assert_eq!(sum.counters.rejected.values().sum::<usize>(), 0, "{tag}: frames rejected {:?}", sum.counters.rejected);
+    let eval = evaluate(dir, &out).unwrap();
+    let mut rdr = csv::Reader::from_path(out.join("motion.csv")).unwrap();
+    let h = rdr.headers().unwrap().clone();
+    let col = |n: &str| h.iter().position(|x| x == n).unwrap_or_else(|| panic!("motion.csv has no {n}"));
+    let (a, b, c) = (col("cbh_m"), col("cbh_sigma_m"), col("cbh_source"));
+    let cbh = rdr.records().map(|r| r.unwrap()).map(|r| (r[a].parse().unwrap(), r[b].parse().unwrap(), r[c].to_string())).collect();
+    Run { eval, cbh }
+}
+
+fn skill(e: &Evaluation, min: u32) -> f64 {
+    e.plant.iter().find(|h| h.horizon_s == min * 60).map(|h| h.skill).unwrap_or(f64::NAN)
+}
+
+fn check(metric: &str, ok: bool, figure: String) {
+    if KNOWN_SHORTFALLS.contains(&metric) {
+        assert!(!ok, "{metric} now meets its target ({figure}): remove it from KNOWN_SHORTFALLS");
+        eprintln!("  known shortfall: {metric}: {figure}");
+    } else {
+        assert!(ok, "{metric} misses its target: {figure}");
+        eprintln!("  {metric}: {figure}");
+    }
+}
+
+fn wrong_prior(site: &str, shadow: bool) -> String {
+    let from = format!("base_height_m = {TRUTH_M:.1}");
+    assert!(site.contains(&from), "the written site holds {from}");
+    let to = format!("base_height_m = {:.1}{}", 1.6 * TRUTH_M, if shadow { "\nshadow_timing = true" } else { "" });
+    site.replace(&from, &to)
+}
+
+#[test]
+fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
+    let d = render("cbh-network", 30.0, |_| {});
+    let truth = run(d.path(), "truth", |s| s.to_string());
+    let est = run(d.path(), "shadow", |s| wrong_prior(s, true));
+    let wrong = run(d.path(), "wrong", |s| wrong_prior(s, false));
+    // Without shadow timing every frame reports the configured value and its 30 % prior.
+    for (h, sd, src) in &wrong.cbh {
+        assert_eq!((src.as_str(), *h), ("configured", 1.6 * TRUTH_M));
+        assert!((sd - 0.3 * 1.6 * TRUTH_M).abs() <= 1.0, "{sd}");
+    }
+    let fits: Vec<&(f64, f64, String)> = est.cbh.iter().filter(|c| c.2 == "shadow_timing").collect();
+    let share = fits.len() as f64 / est.cbh.len() as f64;
+    let mut errs: Vec<f64> = fits.iter().map(|c| (c.0 - TRUTH_M).abs() / TRUTH_M).collect();
+    errs.sort_by(f64::total_cmp);
+    let median = errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN);
+    let covered = fits.iter().filter(|c| (c.0 - TRUTH_M).abs() <= 2.0 * c.1).count() as f64 / fits.len().max(1) as f64;
+    let mean_sigma = fits.iter().map(|c| c.1 / c.0).sum::<f64>() / fits.len().max(1) as f64;
+    eprintln!(
+        "cbh-network: shadow-timing estimate in {:.2} of {} frames; median CBH error {:.3}, 90th percentile {:.3}; mean stated sigma {:.3}; 2σ covers the truth in {:.2}",
+        share,
+        est.cbh.len(),
+        median,
+        errs.get(errs.len() * 9 / 10).copied().unwrap_or(f64::NAN),
+        mean_sigma,
+        covered
+    );
+    for (tag, r) in [("true base", &truth), ("estimated base", &est), ("wrong prior only", &wrong)] {
+        eprintln!("cbh-network: skill 5/10/15 min with the {tag:<16} {:.3} {:.3} {:.3}", skill(&r.eval, 5), skill(&r.eval, 10), skill(&r.eval, 15));
+    }
+    check("estimate share", share >= 0.5, format!("{share:.2} of frames (target ≥ 0.5)"));
+    check("median error", median <= 0.10, format!("{median:.3} (target ≤ 0.10)"));
+    check("2σ coverage", covered >= 0.80, format!("{covered:.2} (target ≥ 0.80)"));
+    let gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&est.eval, *m)).collect();
+    check("skill gap", gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus estimated at 5/10/15 min {gaps:.3?} (target within ±0.03)"));
+}
+
+/// The same network read as 1-minute means (the usual logger setting): recorded figures. The
+/// stated uncertainty must stay honest (±2σ covering the truth in ≥ 80 % of the frames with an
+/// estimate); how often there is an estimate and how close it is are printed.
+#[test]
+fn one_minute_readings_figures() {
+    let d = render("cbh-network", 30.0, |s| {
+        if let Some(n) = &mut s.pyranometer_network {
+            n.sample_s = 60;
+        }
+    });
+    let est = run(d.path(), "shadow60", |s| wrong_prior(s, true));
+    let fits: Vec<&(f64, f64, String)> = est.cbh.iter().filter(|c| c.2 == "shadow_timing").collect();
+    let mut errs: Vec<f64> = fits.iter().map(|c| (c.0 - TRUTH_M).abs() / TRUTH_M).collect();
+    errs.sort_by(f64::total_cmp);
+    let covered = fits.iter().filter(|c| (c.0 - TRUTH_M).abs() <= 2.0 * c.1).count() as f64 / fits.len().max(1) as f64;
+    eprintln!(
+        "cbh-network, 1-minute readings: estimate in {:.2} of {} frames; median CBH error {:.3}; mean stated sigma {:.3}; 2σ covers the truth in {:.2}; skill 5/10/15 min {:.3} {:.3} {:.3}",
+        fits.len() as f64 / est.cbh.len() as f64,
+        est.cbh.len(),
+        errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN),
+        fits.iter().map(|c| c.1 / c.0).sum::<f64>() / fits.len().max(1) as f64,
+        covered,
+        skill(&est.eval, 5),
+        skill(&est.eval, 10),
+        skill(&est.eval, 15)
+    );
+    check("1-minute 2σ coverage", fits.is_empty() || covered >= 0.80, format!("{covered:.2} of {} frames (target ≥ 0.80)", fits.len()));
+}
+
+/// The shipped demo's three block-centre pyranometers (1-minute means, at most 500 m apart) with a
+/// prior 1.6 times the true 1400 m base: recorded figures, with the same honesty check of the
+/// stated uncertainty.
+#[test]
+fn demo_three_pyranometers_figures() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
+    let d = tempfile::tempdir().unwrap();
+    let site = std::fs::read_to_string(root.join("site.toml")).unwrap();
+    assert!(site.contains("base_height_m = 1400.0"));
+    std::fs::write(d.path().join("site.toml"), site.replace("base_height_m = 1400.0", "base_height_m = 2240.0\nshadow_timing = true")).unwrap();
+    std::fs::create_dir(d.path().join("calibration")).unwrap();
+    std::fs::copy(root.join("calibration/larkspur-sky1.toml"), d.path().join("calibration/larkspur-sky1.toml")).unwrap();
+    let out = d.path().join("out");
+    let opts = ReplayOptions {
+        site: d.path().join("site.toml"),
+        frames: root.join("frames"),
+        out: out.clone(),
+        measurements: Some(root.join("measurements.csv")),
+        overlays_every: 0,
+        progress: false,
+    };
+    replay(&opts).unwrap();
+    let e = evaluate(&root, &out).unwrap();
+    let mut rdr = csv::Reader::from_path(out.join("motion.csv")).unwrap();
+    let h = rdr.headers().unwrap().clone();
+    let col = |n: &str| h.iter().position(|x| x == n).unwrap();
+    let (a, b, c) = (col("cbh_m"), col("cbh_sigma_m"), col("cbh_source"));
+    let rows: Vec<(f64, f64, String)> = rdr.records().map(|r| r.unwrap()).map(|r| (r[a].parse().unwrap(), r[b].parse().unwrap(), r[c].to_string())).collect();
+    let fits: Vec<&(f64, f64, String)> = rows.iter().filter(|c| c.2 == "shadow_timing").collect();
+    let truth = 1400.0;
+    let mut errs: Vec<f64> = fits.iter().map(|c| (c.0 - truth).abs() / truth).collect();
+    errs.sort_by(f64::total_cmp);
+    let covered = fits.iter().filter(|c| (c.0 - truth).abs() <= 2.0 * c.1).count() as f64 / fits.len().max(1) as f64;
+    eprintln!(
+        "larkspur-demo, 3 pyranometers, 1-minute readings: estimate in {:.2} of {} frames; median CBH error {:.3}; mean stated sigma {:.3}; 2σ covers the truth in {:.2}; skill 5/10/15 min {:.3} {:.3} {:.3}",
+        fits.len() as f64 / rows.len() as f64,
+        rows.len(),
+        errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN),
+        fits.iter().map(|c| c.1 / c.0).sum::<f64>() / fits.len().max(1) as f64,
+        covered,
+        skill(&e, 5),
+        skill(&e, 10),
+        skill(&e, 15)
+    );
+    check("demo 2σ coverage", fits.is_empty() || covered >= 0.80, format!("{covered:.2} of {} frames (target ≥ 0.80)", fits.len()));
+}
+
+/// Under a clear sky the pyranometers see no shadow: no estimate is given, and the configured
+/// value is used with its prior uncertainty.
+#[test]
+fn no_estimate_without_shadows() {
+    let d = render("clear-day", 8.0, |s| {
+        s.start_utc = "2026-06-14T08:30:00Z".into();
+        s.frame_step_s = 20.0;
+        s.truth_mask_every = 10;
+        s.pyranometer_network = Some(larkspur_network());
+    });
+    let site = std::fs::read_to_string(d.path().join("site.toml")).unwrap();
+    let r = run(d.path(), "clear", |s| s.replace("base_height_m = 1500.0", "base_height_m = 1500.0\nshadow_timing = true"));
+    assert!(site.contains("base_height_m = 1500.0"));
+    assert!(!r.cbh.is_empty());
+    for (h, sd, src) in &r.cbh {
+        assert_eq!((src.as_str(), *h), ("configured", 1500.0));
+        assert!((sd - 450.0).abs() <= 1.0, "{sd}");
+    }
+}
+
+/// Shadow timing needs pyranometers: a site that asks for it without enough is refused, naming
+/// the field.
+#[test]
+fn shadow_timing_without_pyranometers_is_refused() {
+    let mut f = nephocast::synth::larkspur_site(1200.0, "cam");
+    f.clouds.shadow_timing = true;
+    let e = f.validate(Path::new("site.toml")).unwrap_err().to_string();
+    assert!(e.contains("clouds.shadow_timing") && e.contains("site.toml"), "{e}");
+    f.clouds.shadow_timing = false;
+    f.clouds.base_height_rel_sigma = Some(5.0);
+    let e = f.validate(Path::new("site.toml")).unwrap_err().to_string();
+    assert!(e.contains("clouds.base_height_rel_sigma"), "{e}");
+}
