@@ -26,6 +26,7 @@
 //! without shadow events (clear sky or overcast: the measured index does not move), with fewer
 //! than [`ShadowParams::min_blocks`] blocks, a flat cost curve or a minimum at the end of the scan.
 
+use serde::{Deserialize, Serialize};
 use std::collections::VecDeque;
 
 use chrono::{DateTime, Utc};
@@ -86,6 +87,27 @@ pub const CEILOMETER_REL_SIGMA: f64 = 0.05;
 /// Growth of an estimate's uncertainty with its age, as the sigma of `ln h` per second (0.1 per
 /// 10 minutes: cumulus bases drift by some tens of metres in minutes; own choice, no source).
 pub const AGE_REL_SIGMA_PER_S: f64 = 0.1 / 600.0;
+
+/// `[clouds]`: a fixed cloud base height or a series.
+#[derive(Debug, Clone, Default, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CloudSection {
+    /// Fixed cloud base height above the camera \[m\].
+    #[serde(default)]
+    pub base_height_m: Option<f64>,
+    /// A CSV series `time_utc,cbh_m` (e.g. from a ceilometer), relative to the site file.
+    #[serde(default)]
+    pub base_height_csv: Option<std::path::PathBuf>,
+    /// Prior uncertainty of `base_height_m` as a share of it (the sigma of `ln h`); default
+    /// [`CONFIGURED_REL_SIGMA`].
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub base_height_rel_sigma: Option<f64>,
+    /// Estimate the cloud base height from shadow timing at the `[[pyranometers]]`
+    /// ([`ShadowTiming`]; needs at least 3 pyranometers) and combine it with the
+    /// configured value or series.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub shadow_timing: bool,
+}
 
 /// Fewest pyranometers for shadow timing (`[clouds] shadow_timing`).
 pub const MIN_SHADOW_SENSORS: usize = 3;
@@ -500,7 +522,7 @@ pub struct CbhFrame<'a> {
 
 impl CbhState {
     /// The state for a site file's `[clouds]`.
-    pub fn new(clouds: &crate::config::CloudSection) -> CbhState {
+    pub fn new(clouds: &CloudSection) -> CbhState {
         CbhState {
             shadow_wanted: clouds.shadow_timing,
             shadow: None,

@@ -11,6 +11,7 @@ use serde::{Deserialize, Serialize};
 use crate::camera::{Camera, Orientation, Projection};
 use crate::clearsky::ClearSkyModel;
 use crate::sun::Observer;
+pub use crate::cbh::CloudSection;
 pub use crate::plant::{BlockSpec, MountKind, PlantSection};
 pub use crate::settings::{ConfigError, parse_toml, read_toml};
 use crate::settings::Check;
@@ -178,27 +179,6 @@ pub struct CameraSection {
     /// Camera position relative to the site origin, (east, north, up) \[m\].
     #[serde(default)]
     pub position_m: [f64; 3],
-}
-
-/// `[clouds]`: a fixed cloud base height or a series.
-#[derive(Debug, Clone, Default, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct CloudSection {
-    /// Fixed cloud base height above the camera \[m\].
-    #[serde(default)]
-    pub base_height_m: Option<f64>,
-    /// A CSV series `time_utc,cbh_m` (e.g. from a ceilometer), relative to the site file.
-    #[serde(default)]
-    pub base_height_csv: Option<PathBuf>,
-    /// Prior uncertainty of `base_height_m` as a share of it (the sigma of `ln h`); default
-    /// [`crate::cbh::CONFIGURED_REL_SIGMA`].
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub base_height_rel_sigma: Option<f64>,
-    /// Estimate the cloud base height from shadow timing at the `[[pyranometers]]`
-    /// ([`crate::cbh::ShadowTiming`]; needs at least 3 pyranometers) and combine it with the
-    /// configured value or series.
-    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
-    pub shadow_timing: bool,
 }
 
 /// `[forecast]`.
