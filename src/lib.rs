@@ -68,6 +68,7 @@ mod pool;
 pub mod power;
 pub mod qc;
 pub mod ramp;
+pub mod records;
 pub mod rng;
 pub mod replay;
 pub mod report;

@@ -34,8 +34,9 @@ use std::path::{Path, PathBuf};
 use chrono::{DateTime, Utc};
 
 use crate::io::{CsvTable, InputError, fmt_time, list_frames};
-use crate::nowcast::{Counters, Frame, Nowcast, Nowcaster, Rejection};
+use crate::nowcast::{Counters, Frame, Nowcaster, Rejection};
 use crate::output_set::{OutputSet, OutputSetError};
+pub use crate::records::{FORECAST_HEADER, MOTION_HEADER, forecast_rows, motion_row};
 
 /// What a replay needs.
 #[derive(Debug, Clone)]
@@ -110,78 +111,6 @@ fn median(mut v: Vec<f64>) -> f64 {
     v[v.len() / 2]
 }
 
-/// Header of `forecasts.csv`.
-pub const FORECAST_HEADER: &str = "issue_time_utc,target_time_utc,horizon_s,block,ghi_wm2,dni_wm2,dhi_wm2,poa_wm2,ghi_clear_wm2,fallback_share,fallback,power_kw,ghi_p10_wm2,ghi_p50_wm2,ghi_p90_wm2,power_p10_kw,power_p50_kw,power_p90_kw\n";
-
-/// Append a nowcast's forecast rows.
-pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
-    let issue = fmt_time(&nc.time);
-    for (k, r) in nc.forecast.rows.iter().enumerate() {
-        let b = nc.bands.get(k);
-        let q = |v: Option<f64>| v.map(|x| format!("{x:.2}")).unwrap_or_default();
-        out.row([
-            issue.clone(),
-            fmt_time(&r.time),
-            r.horizon_s.to_string(),
-            r.target.clone(),
-            format!("{:.2}", r.irradiance.ghi_wm2),
-            format!("{:.2}", r.irradiance.dni_wm2),
-            format!("{:.2}", r.irradiance.dhi_wm2),
-            format!("{:.2}", r.poa_wm2),
-            format!("{:.2}", r.ghi_clear_wm2),
-            format!("{:.3}", r.fallback_share),
-            ((r.fallback_share > 0.0) as u8).to_string(),
-            format!("{:.2}", r.power_kw),
-            q(b.map(|b| b.ghi_wm2[0])),
-            q(b.map(|b| b.ghi_wm2[1])),
-            q(b.map(|b| b.ghi_wm2[2])),
-            q(b.map(|b| b.power_kw[0])),
-            q(b.map(|b| b.power_kw[1])),
-            q(b.map(|b| b.power_kw[2])),
-        ]);
-    }
-}
-
-/// Header of `motion.csv`.
-pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero,cbh_m,cbh_sigma_m,cbh_source\n";
-
-/// Append a nowcast's motion row.
-pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
-    let f = |v: Option<f64>| v.map(|x| format!("{x:.3}")).unwrap_or_default();
-    let m = nc.measurement.as_ref();
-    let l = |i: usize| m.and_then(|m| m.layers.get(i));
-    let mut row = vec![
-        fmt_time(&nc.time),
-        f(nc.dt_s),
-        m.map(|m| m.blocks_tried).unwrap_or(0).to_string(),
-        m.map(|m| m.vectors.len()).unwrap_or(0).to_string(),
-        f(m.and_then(|m| m.global_mps).map(|g| g[0])),
-        f(m.and_then(|m| m.global_mps).map(|g| g[1])),
-        m.map(|m| m.layers.len()).unwrap_or(0).to_string(),
-    ];
-    for i in 0..2 {
-        row.extend([f(l(i).map(|x| x.v_mps[0])), f(l(i).map(|x| x.v_mps[1])), l(i).map(|x| x.blocks.to_string()).unwrap_or_default()]);
-    }
-    let mo = nc.motion;
-    let second = nc.layers.get(1).map(|l| l.motion);
-    row.extend([
-        f(mo.map(|m| m.v_mps[0])),
-        f(mo.map(|m| m.v_mps[1])),
-        f(mo.map(|m| m.sigma_mps)),
-        f(mo.map(|m| m.v_mps[0].hypot(m.v_mps[1]))),
-        f(mo.map(|m| m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0))),
-        f(second.map(|m| m.v_mps[0])),
-        f(second.map(|m| m.v_mps[1])),
-        f(second.map(|m| m.sigma_mps)),
-        m.map(|m| m.blocks_static).unwrap_or(0).to_string(),
-        m.map(|m| m.locked_at_zero as u8).unwrap_or(0).to_string(),
-        // The cloud base height the forecast used, its one-sigma uncertainty and source (crate::cbh).
-        format!("{:.0}", nc.cbh.cbh_m),
-        format!("{:.0}", nc.cbh.sigma_m),
-        nc.cbh.source.name().to_string(),
-    ]);
-    out.row(row);
-}
 
 /// Run a replay and commit its outputs as one set into `opts.out`.
 ///

@@ -55,7 +55,8 @@ use serde::Serialize;
 use tokio::sync::broadcast;
 
 use crate::io::{fmt_time, list_frames};
-use crate::nowcast::{Frame, Nowcast, Nowcaster, Rejection};
+use crate::nowcast::{Frame, Nowcaster, Rejection};
+use crate::records::nowcast_json;
 
 /// What the live mode needs.
 #[derive(Debug, Clone)]
@@ -317,46 +318,6 @@ impl LiveHandle {
     }
 }
 
-/// Summary of a nowcast for the API.
-fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
-    let rows: Vec<serde_json::Value> = nc
-        .forecast
-        .rows
-        .iter()
-        .enumerate()
-        .map(|(k, r)| {
-            let b = nc.bands.get(k);
-            serde_json::json!({
-                "block": r.target, "horizon_s": r.horizon_s, "target_time_utc": fmt_time(&r.time),
-                "ghi_wm2": r.irradiance.ghi_wm2, "dni_wm2": r.irradiance.dni_wm2, "dhi_wm2": r.irradiance.dhi_wm2,
-                "poa_wm2": r.poa_wm2, "power_kw": r.power_kw, "fallback_share": r.fallback_share,
-                "ghi_p10_wm2": b.map(|b| b.ghi_wm2[0]), "ghi_p50_wm2": b.map(|b| b.ghi_wm2[1]), "ghi_p90_wm2": b.map(|b| b.ghi_wm2[2]),
-                "power_p10_kw": b.map(|b| b.power_kw[0]), "power_p50_kw": b.map(|b| b.power_kw[1]), "power_p90_kw": b.map(|b| b.power_kw[2]),
-            })
-        })
-        .collect();
-    serde_json::json!({
-        "issue_time_utc": fmt_time(&nc.time),
-        "cloud_fraction": nc.cloud_fraction,
-        // The cloud base height used, its one-sigma uncertainty and source (crate::cbh).
-        "cbh_m": nc.cbh.cbh_m,
-        "cbh_sigma_m": nc.cbh.sigma_m,
-        "cbh_source": nc.cbh.source.name(),
-        "sun_elevation_deg": nc.sun.elevation_rad().to_degrees(),
-        "motion": nc.motion.map(|m| serde_json::json!({"east_mps": m.v_mps[0], "north_mps": m.v_mps[1], "sigma_mps": m.sigma_mps,
-            "speed_mps": m.v_mps[0].hypot(m.v_mps[1]), "toward_deg": m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)})),
-        // Every tracked layer the forecast advected, the most opaque first.
-        "layers": nc.layers.iter().map(|l| serde_json::json!({"east_mps": l.motion.v_mps[0], "north_mps": l.motion.v_mps[1], "sigma_mps": l.motion.sigma_mps,
-            "speed_mps": l.motion.v_mps[0].hypot(l.motion.v_mps[1]), "toward_deg": l.motion.v_mps[0].atan2(l.motion.v_mps[1]).to_degrees().rem_euclid(360.0),
-            "thick_share": l.thick_share})).collect::<Vec<_>>(),
-        "alarm": nc.alarm.name(),
-        "alarm_reason": nc.alarm_reason,
-        "alarm_basis": nc.alarm_basis,
-        "ramps": nc.ramps,
-        "forecast": rows,
-        "advisory": "Forecasts and alarms are advisory, not a protection system.",
-    })
-}
 
 fn pct(v: &VecDeque<f64>, p: f64) -> Option<f64> {
     if v.is_empty() {
