@@ -335,6 +335,40 @@ impl SiteFile {
     /// The first field out of range.
     pub fn validate(&self, path: &Path) -> Result<(), ConfigError> {
         let c = Check { file: path };
+        self.validate_site(&c)?;
+        for (i, v) in self.camera.position_m.iter().enumerate() {
+            c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
+        }
+        self.validate_clouds(&c)?;
+        self.validate_plant(&c)?;
+        let fc = &self.forecast;
+        if !(1..=60).contains(&fc.horizon_min) {
+            return Err(c.invalid("forecast.horizon_min", "a whole number from 1 to 60", fc.horizon_min.to_string()));
+        }
+        if ![15, 30, 60, 120].contains(&fc.step_s) {
+            return Err(c.invalid("forecast.step_s", "15, 30, 60 or 120", fc.step_s.to_string()));
+        }
+        self.segment.validate(path)?;
+        self.qc.validate(path)?;
+        self.motion.validate(path)?;
+        self.map.validate(path)?;
+        self.irradiance.validate(path)?;
+        self.power.validate(path)?;
+        self.ramps.validate(path)?;
+        if self.pyranometers.len() > MAX_PYRANOMETERS {
+            return Err(c.invalid("pyranometers", format!("at most {MAX_PYRANOMETERS} pyranometers"), self.pyranometers.len().to_string()));
+        }
+        for (i, p) in self.pyranometers.iter().enumerate() {
+            for (k, v) in p.position_m.iter().enumerate() {
+                c.range(&format!("pyranometers[{i}].position_m[{k}]"), *v, -50_000.0, 50_000.0)?;
+            }
+        }
+        self.check_budget(path)?;
+        Ok(())
+    }
+
+    /// `[site]`: position, atmosphere, clear-sky model, time zone.
+    fn validate_site(&self, c: &Check<'_>) -> Result<(), ConfigError> {
         let s = &self.site;
         c.range("site.latitude_deg", s.latitude_deg, -90.0, 90.0)?;
         c.range("site.longitude_deg", s.longitude_deg, -180.0, 180.0)?;
@@ -352,9 +386,11 @@ impl SiteFile {
         if let Some(z) = &s.timezone {
             parse_time_zone(z).map_err(|expected| c.invalid("site.timezone", expected, format!("{z:?}")))?;
         }
-        for (i, v) in self.camera.position_m.iter().enumerate() {
-            c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
-        }
+        Ok(())
+    }
+
+    /// `[clouds]`: one source of the base height, its prior spread, shadow timing's pyranometers.
+    fn validate_clouds(&self, c: &Check<'_>) -> Result<(), ConfigError> {
         match (&self.clouds.base_height_m, &self.clouds.base_height_csv) {
             (Some(h), None) => c.range("clouds.base_height_m", *h, crate::settings::CBH_MIN_M, crate::settings::CBH_MAX_M)?,
             (None, Some(_)) => {}
@@ -373,6 +409,11 @@ impl SiteFile {
                 self.pyranometers.len().to_string(),
             ));
         }
+        Ok(())
+    }
+
+    /// `[plant]`: spacing, and each block's name, footprint, capacity and mount.
+    fn validate_plant(&self, c: &Check<'_>) -> Result<(), ConfigError> {
         let p = &self.plant;
         c.range("plant.point_spacing_m", p.point_spacing_m, 1.0, 1000.0)?;
         for (i, b) in p.blocks.iter().enumerate() {
@@ -409,29 +450,6 @@ impl SiteFile {
                 }
             }
         }
-        let fc = &self.forecast;
-        if !(1..=60).contains(&fc.horizon_min) {
-            return Err(c.invalid("forecast.horizon_min", "a whole number from 1 to 60", fc.horizon_min.to_string()));
-        }
-        if ![15, 30, 60, 120].contains(&fc.step_s) {
-            return Err(c.invalid("forecast.step_s", "15, 30, 60 or 120", fc.step_s.to_string()));
-        }
-        self.segment.validate(path)?;
-        self.qc.validate(path)?;
-        self.motion.validate(path)?;
-        self.map.validate(path)?;
-        self.irradiance.validate(path)?;
-        self.power.validate(path)?;
-        self.ramps.validate(path)?;
-        if self.pyranometers.len() > MAX_PYRANOMETERS {
-            return Err(c.invalid("pyranometers", format!("at most {MAX_PYRANOMETERS} pyranometers"), self.pyranometers.len().to_string()));
-        }
-        for (i, p) in self.pyranometers.iter().enumerate() {
-            for (k, v) in p.position_m.iter().enumerate() {
-                c.range(&format!("pyranometers[{i}].position_m[{k}]"), *v, -50_000.0, 50_000.0)?;
-            }
-        }
-        self.check_budget(path)?;
         Ok(())
     }
 
