@@ -523,13 +523,29 @@ pub fn pyranometers(plant: &Plant) -> Vec<(String, [f64; 2])> {
 /// # Errors
 /// Any write failure, with its path.
 pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<WriteSummary, SynthError> {
-    let w = |path: PathBuf, bytes: &[u8]| write_atomic(&path, bytes).map_err(|source| SynthError::Write { path, source });
     // Temporary files of killed earlier runs.
     for sub in ["", "frames", "truth", "truth/masks", "calibration"] {
         crate::io::clean_stale_temps(&out.join(sub));
     }
+    write_site_and_scene(scene, out)?;
+    let (frames, bytes, render_s) = write_frames(scene, out, progress)?;
+    // Truth and readings reach 20 minutes past the last frame.
+    let extra = (20.0 * 60.0 / scene.spec.frame_step_s).ceil() as usize;
+    put(out.join("truth").join("irradiance.csv"), &irradiance_truth(scene, frames + extra))?;
+    put(out.join("measurements.csv"), &pyranometer_readings(scene, frames + extra))?;
+    Ok(WriteSummary { frames, bytes, render_s_per_frame: render_s })
+}
+
+/// Write a file of the sequence atomically.
+fn put(path: PathBuf, bytes: &[u8]) -> Result<(), SynthError> {
+    write_atomic(&path, bytes).map_err(|source| SynthError::Write { path, source })
+}
+
+/// The site file, the true camera's calibration, the scene spec with its seed and the layers'
+/// truth.
+fn write_site_and_scene(scene: &Scene, out: &Path) -> Result<(), SynthError> {
+    let w = put;
     let spec = &scene.spec;
-    let mut bytes = 0u64;
     // Site and calibration.
     let site_text = format!(
         "# Site of the synthetic scene {:?} (fictional plant). Written by `nephocast synth`.\n{}",
@@ -565,7 +581,15 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         ]);
     }
     w(out.join("truth").join("layers.csv"), &layers.into_bytes())?;
-    // Frames.
+    Ok(())
+}
+
+/// Render, encode and write every frame and the truth masks; returns the frames, the bytes
+/// written and the render time per frame \[s\].
+fn write_frames(scene: &Scene, out: &Path, progress: bool) -> Result<(usize, u64, f64), SynthError> {
+    let w = put;
+    let spec = &scene.spec;
+    let mut bytes = 0u64;
     let times = scene.frame_times();
     let rays = PixelRays::new(&scene.camera);
     let bar = progress_bar(times.len() as u64, progress, "rendering");
@@ -592,9 +616,13 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
     bar.finish_and_clear();
     let render_s = t0.elapsed().as_secs_f64() / times.len().max(1) as f64;
     w(out.join("truth").join("frames.csv"), &frames_csv.into_bytes())?;
-    // Irradiance truth to 20 minutes past the last frame, per block and plant.
-    let extra = (20.0 * 60.0 / spec.frame_step_s).ceil() as usize;
-    let all_times = World::times(scene.start, spec.frame_step_s, times.len() + extra);
+    Ok((times.len(), bytes, render_s))
+}
+
+/// GHI/DNI/DHI truth per block and plant at every frame step, for `steps` steps (`irradiance.csv`).
+fn irradiance_truth(scene: &Scene, steps: usize) -> Vec<u8> {
+    let spec = &scene.spec;
+    let all_times = World::times(scene.start, spec.frame_step_s, steps);
     let mut pts = vec![];
     let mut owner = vec![];
     for (bi, b) in scene.plant.blocks.iter().enumerate() {
@@ -629,7 +657,12 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
             ]);
         }
     }
-    w(out.join("truth").join("irradiance.csv"), &irr.into_bytes())?;
+    irr.into_bytes()
+}
+
+/// Simulated pyranometer readings over `steps` frame steps (`measurements.csv`).
+fn pyranometer_readings(scene: &Scene, steps: usize) -> Vec<u8> {
+    let spec = &scene.spec;
     // Pyranometers: 1-minute means (or the network's period) of 1-second samples with 2 % gain
     // error and 3 W/m² noise.
     let (pyr, period) = match &spec.pyranometer_network {
@@ -637,7 +670,7 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         None => (pyranometers(&scene.plant), 60),
     };
     let pts: Vec<[f64; 2]> = pyr.iter().map(|p| p.1).collect();
-    let total_s = (times.len() + extra) as f64 * spec.frame_step_s;
+    let total_s = steps as f64 * spec.frame_step_s;
     let minutes = (total_s / period as f64).floor() as usize;
     let secs = World::times(scene.start, 1.0, minutes * period);
     let samples = scene.world.irradiance_series(&secs, &pts);
@@ -662,7 +695,6 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
         format!("# Simulated pyranometers ({period}-s means of 1-s samples, 2 % gain error, 3 W/m2 noise); time = start of the period\n").into_bytes()
     };
     meas_bytes.extend(meas.into_bytes());
-    w(out.join("measurements.csv"), &meas_bytes)?;
-    Ok(WriteSummary { frames: times.len(), bytes, render_s_per_frame: render_s })
+    meas_bytes
 }
 
