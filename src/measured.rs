@@ -145,16 +145,6 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
     let (clear_at_issue, members) = issue_tables(&rows, replay_out)?;
     // Sky type per issue time.
     let mut sky_of: HashMap<DateTime<Utc>, &'static str> = HashMap::new();
-    let observer = f.observer();
-    let kc_at = |t: DateTime<Utc>| -> f64 {
-        let Ok(sp) = crate::sun::position(&t, &observer) else { return f64::NAN };
-        let clear = crate::clearsky::clear_sky(&sp, f.elevation_m, f.clear_sky()).ghi_wm2;
-        if clear < MIN_CLEAR_WM2 {
-            return f64::NAN;
-        }
-        let mut none = BTreeMap::new();
-        reading(&all, &t, &mut none).map(|v| v / clear).unwrap_or(f64::NAN)
-    };
     // Per horizon: (forecast, measured, persistence, CRPS, inside P10–P90).
     let mut per_h: BTreeMap<u32, Vec<Pair>> = BTreeMap::new();
     let mut by_sky: BTreeMap<String, Vec<(f64, f64, f64)>> = BTreeMap::new();
@@ -191,10 +181,7 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
             let inside = (obs >= num(r, "ghi_p10_wm2") && obs <= num(r, "ghi_p90_wm2")) as u8 as f64;
             per_h.entry(h).or_default().push((fc, obs, sp, crps, inside));
             if (300..=900).contains(&h) {
-                let sky = *sky_of.entry(issue).or_insert_with(|| {
-                    let kc: Vec<f64> = (0..30).rev().map(|k| kc_at(issue - chrono::Duration::minutes(k))).collect();
-                    sky_type(&kc)
-                });
+                let sky = *sky_of.entry(issue).or_insert_with(|| sky_type_before(site, &m, &all, issue));
                 by_sky.entry(sky.to_string()).or_default().push((fc, obs, sp));
             }
         } else if (300..=900).contains(&h) {
@@ -214,6 +201,24 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
         excluded,
         screened: screen.counts(),
     })
+}
+
+/// The sky type of the 30 minutes before `issue`, from the clear-sky index of the mean of the
+/// pyranometers `all`.
+fn sky_type_before(site: &Site, m: &Measurements, all: &[usize], issue: DateTime<Utc>) -> &'static str {
+    let f = &site.file.site;
+    let observer = f.observer();
+    let kc_at = |t: DateTime<Utc>| -> f64 {
+        let Ok(sp) = crate::sun::position(&t, &observer) else { return f64::NAN };
+        let clear = crate::clearsky::clear_sky(&sp, f.elevation_m, f.clear_sky()).ghi_wm2;
+        if clear < MIN_CLEAR_WM2 {
+            return f64::NAN;
+        }
+        let mut none = BTreeMap::new();
+        mean_reading(m, all, &t, &mut none).map(|v| v / clear).unwrap_or(f64::NAN)
+    };
+    let kc: Vec<f64> = (0..30).rev().map(|k| kc_at(issue - chrono::Duration::minutes(k))).collect();
+    sky_type(&kc)
 }
 
 /// Each configured pyranometer's column in the measurements and the block it lies in.
