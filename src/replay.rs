@@ -143,13 +143,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
     let mut nowcaster = prepare(opts, span)?;
     let intake = nowcaster.intake_options();
     let mut set = OutputSet::begin(&opts.out, "nephocast replay")?;
-    let mut fc = CsvTable::with_header_line(FORECAST_HEADER);
-    let mut mo = CsvTable::with_header_line(MOTION_HEADER);
-    let mut ramps = CsvTable::with_header_line("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability");
-    let mut ramps_jsonl = String::new();
-    let mut alarms = CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability");
-    let mut members = CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2");
-    let mut fr = CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min");
+    let mut tables = ReplayTables::new();
     let bar = crate::io::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
@@ -187,64 +181,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                 Ok(nc) => {
                     decode_ms.push(dms);
                     step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.ensemble_ms + nc.times.qc_ms);
-                    forecast_rows(&nc, &mut fc);
-                    let plant_h: Vec<u32> = nc.forecast.plant().map(|r| r.horizon_s).collect();
-                    for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
-                        for (m, v) in ms.iter().enumerate() {
-                            members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);
-                        }
-                    }
-                    for e in &nc.ramps {
-                        ramps.row([
-                            e.issue_time_utc.to_string(),
-                            e.expected_start_utc.to_string(),
-                            format!("{:.0}", e.lead_time_s),
-                            match e.direction { crate::ramp::Direction::Up => "up", crate::ramp::Direction::Down => "down" }.to_string(),
-                            format!("{:.1}", e.change_kw),
-                            format!("{:.2}", e.change_pct),
-                            format!("{:.3}", e.probability),
-                        ]);
-                        if let Ok(j) = serde_json::to_string(e) {
-                            ramps_jsonl += &j;
-                            ramps_jsonl.push('\n');
-                        }
-                    }
-                    if let Some(c) = &nc.alarm_change {
-                        // The ramp behind the new state: its lead counted from this frame.
-                        let b = nc.alarm_basis.as_ref();
-                        let opt = |v: Option<String>| v.unwrap_or_default();
-                        alarms.row([
-                            c.time_utc.to_string(),
-                            c.from.name().to_string(),
-                            c.to.name().to_string(),
-                            format!("{:.3}", c.probability),
-                            c.reason.clone(),
-                            opt(b.map(|b| fmt_time(&b.start))),
-                            opt(b.map(|b| format!("{:.0}", (b.start - nc.time).num_milliseconds() as f64 / 1000.0))),
-                            opt(b.map(|b| format!("{:.3}", b.ramp.change_kw / 1000.0))),
-                            opt(b.map(|b| format!("{:.1}", b.ramp.change_pct))),
-                            opt(b.map(|b| format!("{:.3}", b.ramp.probability))),
-                        ]);
-                    }
-                    motion_row(&nc, &mut mo);
-                    fr.row([
-                        fmt_time(&f.time),
-                        name.clone(),
-                        "ok".into(),
-                        String::new(),
-                        format!("{:.4}", nc.cloud_fraction),
-                        format!("{:.0}", nc.cbh.cbh_m),
-                        format!("{:.2}", nc.sun.elevation_rad().to_degrees()),
-                        format!("{dms:.2}"),
-                        format!("{:.2}", nc.times.qc_ms),
-                        format!("{:.2}", nc.times.map_ms),
-                        format!("{:.2}", nc.times.motion_ms),
-                        format!("{:.2}", nc.times.forecast_ms),
-                        format!("{:.2}", nc.times.ensemble_ms),
-                        format!("{:.3}", nc.band_scale[0]),
-                        format!("{:.3}", nc.band_scale[1]),
-                        format!("{:.3}", nc.band_scale[2]),
-                    ]);
+                    tables.add(&nc, &f.time, &name, dms);
                     last_cbh = Some(nc.cbh);
                     if nc.motion.is_some() {
                         last_motion = nc.motion.map(|m| m.v_mps);
@@ -257,9 +194,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
                         }
                 }
                 Err(rej) => {
-                    let mut row = vec![fmt_time(&f.time), name.clone(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
-                    row.resize(16, String::new());
-                    fr.row(row);
+                    tables.add_rejected(&f.time, &name, &rej, dms);
                 }
             }
             bar.inc(1);
@@ -267,17 +202,7 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
         Ok(())
     })?;
     bar.finish_and_clear();
-    for (file, bytes) in [
-        ("forecasts.csv", fc.into_bytes()),
-        ("motion.csv", mo.into_bytes()),
-        ("frames.csv", fr.into_bytes()),
-        ("ramps.csv", ramps.into_bytes()),
-        ("ramps.jsonl", ramps_jsonl.into_bytes()),
-        ("alarms.csv", alarms.into_bytes()),
-        ("ensemble_plant.csv", members.into_bytes()),
-    ] {
-        outputs.push(set.write(file, &bytes)?);
-    }
+    outputs.extend(tables.write(&mut set)?);
     let summary = ReplaySummary {
         frames_found: frames.len(),
         untimed_files: untimed,
@@ -290,6 +215,118 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
         outputs,
     };
     Ok((summary, set))
+}
+
+/// The tables a replay writes, filled frame by frame: forecasts, motion, frames, ramps (CSV and
+/// JSON lines), alarm changes and the plant ensemble's members.
+struct ReplayTables {
+    fc: CsvTable,
+    mo: CsvTable,
+    ramps: CsvTable,
+    ramps_jsonl: String,
+    alarms: CsvTable,
+    members: CsvTable,
+    fr: CsvTable,
+}
+
+impl ReplayTables {
+    fn new() -> ReplayTables {
+        ReplayTables {
+            fc: CsvTable::with_header_line(FORECAST_HEADER),
+            mo: CsvTable::with_header_line(MOTION_HEADER),
+            ramps: CsvTable::with_header_line("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability"),
+            ramps_jsonl: String::new(),
+            alarms: CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability"),
+            members: CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2"),
+            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min"),
+        }
+    }
+
+    /// A used frame's rows.
+    fn add(&mut self, nc: &crate::nowcast::Nowcast, time: &DateTime<Utc>, name: &str, dms: f64) {
+        forecast_rows(nc, &mut self.fc);
+        let plant_h: Vec<u32> = nc.forecast.plant().map(|r| r.horizon_s).collect();
+        for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
+            for (m, v) in ms.iter().enumerate() {
+                self.members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);
+            }
+        }
+        for e in &nc.ramps {
+            self.ramps.row([
+                e.issue_time_utc.to_string(),
+                e.expected_start_utc.to_string(),
+                format!("{:.0}", e.lead_time_s),
+                match e.direction { crate::ramp::Direction::Up => "up", crate::ramp::Direction::Down => "down" }.to_string(),
+                format!("{:.1}", e.change_kw),
+                format!("{:.2}", e.change_pct),
+                format!("{:.3}", e.probability),
+            ]);
+            if let Ok(j) = serde_json::to_string(e) {
+                self.ramps_jsonl += &j;
+                self.ramps_jsonl.push('\n');
+            }
+        }
+        if let Some(c) = &nc.alarm_change {
+            // The ramp behind the new state: its lead counted from this frame.
+            let b = nc.alarm_basis.as_ref();
+            let opt = |v: Option<String>| v.unwrap_or_default();
+            self.alarms.row([
+                c.time_utc.to_string(),
+                c.from.name().to_string(),
+                c.to.name().to_string(),
+                format!("{:.3}", c.probability),
+                c.reason.clone(),
+                opt(b.map(|b| fmt_time(&b.start))),
+                opt(b.map(|b| format!("{:.0}", (b.start - nc.time).num_milliseconds() as f64 / 1000.0))),
+                opt(b.map(|b| format!("{:.3}", b.ramp.change_kw / 1000.0))),
+                opt(b.map(|b| format!("{:.1}", b.ramp.change_pct))),
+                opt(b.map(|b| format!("{:.3}", b.ramp.probability))),
+            ]);
+        }
+        motion_row(nc, &mut self.mo);
+        self.fr.row([
+            fmt_time(time),
+            name.to_string(),
+            "ok".into(),
+            String::new(),
+            format!("{:.4}", nc.cloud_fraction),
+            format!("{:.0}", nc.cbh.cbh_m),
+            format!("{:.2}", nc.sun.elevation_rad().to_degrees()),
+            format!("{dms:.2}"),
+            format!("{:.2}", nc.times.qc_ms),
+            format!("{:.2}", nc.times.map_ms),
+            format!("{:.2}", nc.times.motion_ms),
+            format!("{:.2}", nc.times.forecast_ms),
+            format!("{:.2}", nc.times.ensemble_ms),
+            format!("{:.3}", nc.band_scale[0]),
+            format!("{:.3}", nc.band_scale[1]),
+            format!("{:.3}", nc.band_scale[2]),
+        ]);
+    }
+
+    /// A rejected frame's row in `frames.csv`.
+    fn add_rejected(&mut self, time: &DateTime<Utc>, name: &str, rej: &Rejection, dms: f64) {
+        let mut row = vec![fmt_time(time), name.to_string(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
+        row.resize(16, String::new());
+        self.fr.row(row);
+    }
+
+    /// Write every table into the output set; returns their final paths.
+    fn write(self, set: &mut OutputSet) -> Result<Vec<PathBuf>, ReplayError> {
+        let mut outputs = vec![];
+        for (file, bytes) in [
+            ("forecasts.csv", self.fc.into_bytes()),
+            ("motion.csv", self.mo.into_bytes()),
+            ("frames.csv", self.fr.into_bytes()),
+            ("ramps.csv", self.ramps.into_bytes()),
+            ("ramps.jsonl", self.ramps_jsonl.into_bytes()),
+            ("alarms.csv", self.alarms.into_bytes()),
+            ("ensemble_plant.csv", self.members.into_bytes()),
+        ] {
+            outputs.push(set.write(file, &bytes)?);
+        }
+        Ok(outputs)
+    }
 }
 
 /// The default output folder for a replay of `frames`.
