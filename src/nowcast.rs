@@ -293,6 +293,8 @@ pub struct Nowcaster {
     alarm: crate::ramp::Alarm,
     cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
+    /// The camera for frames decoded at reduced scale ([`crate::intake`]).
+    reduced: crate::intake::ReducedFrames,
     /// Counters.
     pub counters: Counters,
 }
@@ -313,6 +315,8 @@ impl Nowcaster {
             (!cols.is_empty()).then_some((m, cols))
         });
         let reference = site.clear_reference.clone().unwrap_or_default();
+        let reduce = crate::intake::frame_reduction(site.camera.width_px, site.file.map.cells);
+        let reduced = crate::intake::ReducedFrames::new(&site.camera, site.obstruction.as_ref(), reduce);
         Nowcaster {
             site,
             plant,
@@ -330,6 +334,7 @@ impl Nowcaster {
             alarm: Default::default(),
             cell_sky: None,
             image_geometry: std::sync::OnceLock::new(),
+            reduced,
             counters: Counters::default(),
         }
     }
@@ -359,6 +364,11 @@ impl Nowcaster {
         self.image_geometry.get_or_init(|| crate::segment::ImageGeometry::from_camera(&self.site.camera, self.site.obstruction.as_ref()))
     }
 
+    /// Per-pixel geometry for a frame of `width_px` (whole or decoded at reduced scale).
+    pub fn image_geometry_for(&self, width_px: u32) -> &crate::segment::ImageGeometry {
+        if width_px == self.reduced.camera.width_px && self.reduced.reduce > 1 { self.reduced.geometry() } else { self.image_geometry() }
+    }
+
     /// The site.
     pub fn site(&self) -> &Site {
         &self.site
@@ -384,7 +394,7 @@ impl Nowcaster {
 
     /// Intake limits for this site's frames: the defaults with the camera's size expected.
     pub fn intake_options(&self) -> crate::intake::IntakeOptions {
-        crate::intake::IntakeOptions::expecting(self.site.camera.width_px, self.site.camera.height_px)
+        crate::intake::IntakeOptions::expecting(self.site.camera.width_px, self.site.camera.height_px).reduced(self.reduced.reduce)
     }
 
     /// The newest accepted frame time.
@@ -548,11 +558,12 @@ impl Nowcaster {
 
     fn step_inner(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
         let t0 = Clock::now();
-        let cam = &self.site.camera;
-        let (w, h) = frame.image.dimensions();
-        if (w, h) != (cam.width_px, cam.height_px) {
-            return Err(Rejection::WrongSize { got_w: w, got_h: h, want_w: cam.width_px, want_h: cam.height_px });
-        }
+        // Whole frames, or frames decoded at the reduced scale ([`Nowcaster::intake_options`]).
+        let (cam, obstruction) = match frame.image.dimensions() {
+            (w, h) if (w, h) == (self.site.camera.width_px, self.site.camera.height_px) => (&self.site.camera, self.site.obstruction.as_ref()),
+            (w, h) if (w, h) == (self.reduced.camera.width_px, self.reduced.camera.height_px) => (&self.reduced.camera, self.reduced.obstruction.as_ref()),
+            (w, h) => return Err(Rejection::WrongSize { got_w: w, got_h: h, want_w: self.site.camera.width_px, want_h: self.site.camera.height_px }),
+        };
         if let Some(last) = self.last_time {
             if frame.time == last {
                 return Err(Rejection::Duplicate);
@@ -569,7 +580,7 @@ impl Nowcaster {
         }
         let cbh = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
         let cam_z = self.site.file.camera.position_m[2];
-        let lut = self.luts.get(cam, self.site.obstruction.as_ref(), &self.site.file.map, (cbh - cam_z).max(10.0));
+        let lut = self.luts.get(cam, obstruction, &self.site.file.map, (cbh - cam_z).max(10.0));
         // Exposure over the map's pixels.
         let raw = frame.image.as_raw();
         let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
