@@ -739,4 +739,89 @@ mod tests {
         assert_eq!(from_bytes(b"GIF89a....", &o).unwrap_err().code(), "unknown_format");
         assert_eq!(from_bytes(b"", &o).unwrap_err().code(), "truncated");
     }
+
+    /// A smooth frame (sky-like gradients) with a few sharp edges.
+    fn sky_jpeg(w: u32, h: u32) -> (Vec<u8>, image::RgbImage) {
+        let img = image::RgbImage::from_fn(w, h, |x, y| {
+            let edge = if (x / 37 + y / 29) % 3 == 0 { 60 } else { 0 };
+            image::Rgb([(60 + x * 120 / w + edge) as u8, (90 + y * 100 / h) as u8, (200 - x * 40 / w) as u8])
+        });
+        let mut out = vec![];
+        image::codecs::jpeg::JpegEncoder::new_with_quality(&mut out, 90).encode_image(&img).unwrap();
+        (out, img)
+    }
+
+    fn mean_abs_diff(a: &image::RgbImage, b: &image::RgbImage) -> f64 {
+        assert_eq!(a.dimensions(), b.dimensions());
+        a.as_raw().iter().zip(b.as_raw()).map(|(&p, &q)| (p as f64 - q as f64).abs()).sum::<f64>() / a.as_raw().len() as f64
+    }
+
+    #[test]
+    fn reduction_factors() {
+        assert_eq!(map_reduction(512, 256), 1);
+        assert_eq!(map_reduction(1024, 256), 2);
+        assert_eq!(map_reduction(2048, 256), 4);
+        assert_eq!(map_reduction(8192, 256), 8);
+        assert_eq!(map_reduction(1023, 256), 1);
+        assert_eq!([0, 1, 2, 3, 4, 7, 8, 100].map(valid_reduction), [1, 1, 2, 2, 4, 4, 8, 8]);
+        assert_eq!(reduced_size(1001, 750, 4), (251, 188));
+    }
+
+    #[test]
+    fn reduced_decode_is_the_block_average_of_the_whole_frame() {
+        let (j, _) = sky_jpeg(203, 150);
+        let whole = from_bytes(&j, &IntakeOptions::default()).unwrap();
+        for r in [2, 4, 8] {
+            let o = IntakeOptions::expecting(203, 150).reduced(r);
+            let img = from_bytes(&j, &o).unwrap();
+            assert_eq!(img.dimensions(), reduced_size(203, 150, r), "1/{r}");
+            // The DCT-domain reduction is a low-pass of each block: close to the block mean.
+            let d = mean_abs_diff(&img, &box_reduce(&whole, r));
+            assert!(d < 3.0, "1/{r}: mean difference {d:.2} levels from the block average");
+            let rust = decode_jpeg_reduced_rust(&j, r, &o).unwrap();
+            let d = mean_abs_diff(&img, &rust);
+            assert!(d < 2.0, "1/{r}: the two decoders differ by {d:.2} levels");
+        }
+        // PNG frames are box-averaged to the same size.
+        let p = png(64, 48);
+        assert_eq!(from_bytes(&p, &IntakeOptions::default().reduced(4)).unwrap().dimensions(), (16, 12));
+    }
+
+    #[test]
+    fn reduced_decode_refuses_as_the_whole_one_does() {
+        let o = IntakeOptions::default().reduced(2);
+        let b = jpeg(40, 30);
+        for cut in 0..b.len() {
+            assert_eq!(from_bytes(&b[..cut], &o).map(|_| ()).unwrap_err().code(), "truncated", "cut at {cut}");
+        }
+        // Entropy-coded data damaged (the structure walk still passes): an error or an image of
+        // the right size, never a crash.
+        let mut bad = b.clone();
+        let n = bad.len();
+        for k in (n / 2..n - 4).step_by(7) {
+            bad[k] = 0x00;
+        }
+        if let Ok(img) = from_bytes(&bad, &o) {
+            assert_eq!(img.dimensions(), (20, 15));
+        }
+        let o = IntakeOptions { max_alloc_bytes: 100, ..IntakeOptions::default().reduced(2) };
+        assert_eq!(from_bytes(&b, &o).unwrap_err().code(), "too_many_pixels");
+    }
+
+    #[test]
+    fn reduced_camera_sees_the_same_directions() {
+        let cam = crate::camera::Camera::ideal(1024);
+        for r in [2u32, 4] {
+            let red = cam.reduced(r);
+            assert_eq!((red.width_px, red.height_px), reduced_size(1024, 1024, r));
+            for d in [[0.0, 0.0, 1.0], [0.3, -0.2, 0.93], [-0.7, 0.5, 0.5]] {
+                let n = (d[0] * d[0] + d[1] * d[1] + d[2] * d[2]) as f64;
+                let d = [d[0] / n.sqrt(), d[1] / n.sqrt(), d[2] / n.sqrt()];
+                let (x, y) = cam.project_enu(d).unwrap();
+                let (u, v) = red.project_enu(d).unwrap();
+                let rf = r as f64;
+                assert!((u - (x - (rf - 1.0) / 2.0) / rf).abs() < 1e-9 && (v - (y - (rf - 1.0) / 2.0) / rf).abs() < 1e-9);
+            }
+        }
+    }
 }
