@@ -244,6 +244,9 @@ pub struct BenchArgs {
     /// Ensemble members (0 = none).
     #[arg(long, default_value_t = 20, allow_hyphen_values = true)]
     pub members: usize,
+    /// Also print the figures as one line of JSON, last.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// Arguments of `nephocast demo`.
@@ -616,6 +619,9 @@ pub fn run(cli: Cli) -> Result<()> {
             crate::say!("  stages (median): QC {:.2} ms, map+segmentation {:.2} ms, motion {:.2} ms, forecast {:.2} ms", r.stage_ms[0], r.stage_ms[1], r.stage_ms[2], r.stage_ms[3]);
             crate::say!("with the ensemble ({:.2} ms median): {:.2} ms median per frame", r.stage_ms[4], r.step_with_ensemble_ms_median);
             crate::say!("replay throughput including decode: {:.1} frames/s", r.throughput_fps);
+            if a.json {
+                println!("{}", serde_json::to_string(&r)?);
+            }
             Ok(())
         }
         Command::Evaluate(a) => {

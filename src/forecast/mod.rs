@@ -456,28 +456,14 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             let blur_m = (p.blur_min_m.powi(2) + (ad.sigma_mps * k).powi(2) + (p.blur_growth_mps * k).powi(2)).sqrt();
             r_cells[l] = blur_m / grid.cell_m;
         }
-        // The last box looked up per layer and its mean: neighbouring points (a plant's points are
-        // a few metres apart, a map cell about a hundred) mostly read the same box.
-        let mut last_box: [Option<([usize; 4], Option<f64>)>; MAX_LAYERS] = [None; MAX_LAYERS];
         // A point's beam transmittance (as used: scaled and capped) and whether it fell back.
-        let mut point_tr = |pt0: &[f64; 2]| {
+        let point_tr = |pt0: &[f64; 2]| {
             let mut tr = rel;
             let mut fell_back = false;
             for l in 0..n_layers {
                 let pt = [pt0[0] * inv_f[l], pt0[1] * inv_f[l]];
                 let (sx, sy) = grid.to_cell([pt[0] + adv[l][0], pt[1] + adv[l][1]]);
-                let advected = match tms[l].box_bounds(sx, sy, r_cells[l]) {
-                    None => None,
-                    Some(b) => match last_box[l] {
-                        Some((lb, v)) if lb == b => v,
-                        _ => {
-                            let v = tms[l].shares_in(b).map(|s| (s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2] + s[3] * beams[3]).max(0.0));
-                            last_box[l] = Some((b, v));
-                            v
-                        }
-                    },
-                };
-                tr *= match advected {
+                tr *= match tms[l].box_mean_with(sx, sy, r_cells[l], beams) {
                     Some(v) => v,
                     None => {
                         let (qx, qy) = grid.to_cell([pt[0] + off[l][0], pt[1] + off[l][1]]);

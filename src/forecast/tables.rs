@@ -165,14 +165,6 @@ impl TransmittanceMap {
     /// centre is off the map.
     #[inline]
     pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; FEATURES]> {
-        self.box_bounds(cx, cy, r).and_then(|b| self.shares_in(b))
-    }
-
-    /// The cell bounds `[x0, x1, y0, y1]` (half-open) of the box [`TransmittanceMap::box_shares`]
-    /// averages; `None` when its centre is off the map or the box is empty. Equal bounds give equal
-    /// shares, so a caller whose consecutive look-ups fall in the same box can reuse the last.
-    #[inline]
-    pub fn box_bounds(&self, cx: f64, cy: f64, r: f64) -> Option<[usize; 4]> {
         let n = self.n as f64;
         if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
             return None;
@@ -186,13 +178,6 @@ impl TransmittanceMap {
         if x1 <= x0 || y1 <= y0 {
             return None;
         }
-        Some([x0, x1, y0, y1])
-    }
-
-    /// Mean features over the cells `[x0, x1) × [y0, y1)` ([`TransmittanceMap::box_bounds`]);
-    /// `None` when they hold no known cell.
-    #[inline]
-    pub fn shares_in(&self, [x0, x1, y0, y1]: [usize; 4]) -> Option<[f64; FEATURES]> {
         let w = self.n + 1;
         let (a, b, c, d) = (self.sat[y1 * w + x1], self.sat[y0 * w + x1], self.sat[y1 * w + x0], self.sat[y0 * w + x0]);
         let cnt = a[FEATURES] - b[FEATURES] - c[FEATURES] + d[FEATURES];
