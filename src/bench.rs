@@ -30,7 +30,7 @@ pub struct BenchReport {
     pub decode_reduction: u32,
     /// Median JPEG decode time of the engine's intake, at its reduction \[ms\].
     pub decode_ms: f64,
-    /// Median JPEG decode time of whole frames by the general decoder \[ms\].
+    /// Median JPEG decode time of whole frames by the general decoder (`image` crate) \[ms\].
     pub decode_whole_ms: f64,
     /// Median time of QC + map + motion + central forecast per frame \[ms\].
     pub step_ms_median: f64,
@@ -124,7 +124,7 @@ pub fn run_with(o: &BenchOptions) -> anyhow::Result<BenchReport> {
     // Whole-frame decoding by the general decoder, for comparison (outside the timed loop).
     for j in jpegs.iter().take(20) {
         let td = Instant::now();
-        let img = crate::intake::from_bytes(j, &crate::intake::IntakeOptions::default())?;
+        let img = crate::intake::decode(j, crate::intake::Format::Jpeg, &crate::intake::IntakeOptions::default())?;
         dec_whole.push(td.elapsed().as_secs_f64() * 1000.0);
         std::hint::black_box(img);
     }

@@ -614,7 +614,7 @@ pub fn run(cli: Cli) -> Result<()> {
             let r = crate::bench::run_with(&o)?;
             crate::say!("{}x{} px, {} frames, {} thread(s), {} plant points x {} horizons", r.size_px, r.size_px, r.frames, r.threads, r.plant_points, r.horizons);
             crate::say!("render (synthetic, all cores): {:.1} ms per frame ({:.1} frames/s)", r.render_ms, 1000.0 / r.render_ms);
-            crate::say!("JPEG decode: median {:.2} ms at 1/{} scale for the map ({:.2} ms whole by the general decoder)", r.decode_ms, r.decode_reduction, r.decode_whole_ms);
+            crate::say!("JPEG decode: median {:.2} ms by the intake at 1/{} scale ({:.2} ms whole by the general decoder)", r.decode_ms, r.decode_reduction, r.decode_whole_ms);
             crate::say!("engine step (QC, map, motion, forecast): median {:.2} ms, 95th percentile {:.2} ms", r.step_ms_median, r.step_ms_p95);
             crate::say!("  stages (median): QC {:.2} ms, map+segmentation {:.2} ms, motion {:.2} ms, forecast {:.2} ms", r.stage_ms[0], r.stage_ms[1], r.stage_ms[2], r.stage_ms[3]);
             crate::say!("with the ensemble ({:.2} ms median): {:.2} ms median per frame", r.stage_ms[4], r.step_with_ensemble_ms_median);
