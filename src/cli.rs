@@ -463,6 +463,12 @@ pub fn check_args(cli: &Cli) -> Result<()> {
             check_arg("--size", f64::from(a.size), 64.0, 4096.0)?;
             check_arg("--frames", a.frames as f64, 2.0, 10_000.0)?;
             check_arg("--threads", a.threads as f64, 1.0, 256.0)?;
+            check_arg("--plant-points", a.plant_points as f64, 10.0, 20_000.0)?;
+            if ![15, 30, 60, 120].contains(&a.step_s) {
+                bail!("--step-s must be 15, 30, 60 or 120, not {}", a.step_s);
+            }
+            check_arg("--horizon-min", f64::from(a.horizon_min), 1.0, 60.0)?;
+            check_arg("--members", a.members as f64, 0.0, 200.0)?;
         }
         Command::Calibrate(a) => {
             check_arg("--min-detections", a.min_detections as f64, crate::config::MIN_FIT_DETECTIONS as f64, 1e6)?;
@@ -607,12 +613,6 @@ pub fn run(cli: Cli) -> Result<()> {
             if !(64..=4096).contains(&a.size) || a.frames < 2 {
                 bail!("--size must be 64 to 4096 and --frames at least 2");
             }
-            check_arg("--plant-points", a.plant_points as f64, 10.0, 20_000.0)?;
-            if ![15, 30, 60, 120].contains(&a.step_s) {
-                bail!("--step-s must be 15, 30, 60 or 120, not {}", a.step_s);
-            }
-            check_arg("--horizon-min", f64::from(a.horizon_min), 1.0, 60.0)?;
-            check_arg("--members", a.members as f64, 0.0, 200.0)?;
             let o = crate::bench::BenchOptions { size_px: a.size, frames: a.frames, threads: a.threads, plant_points: a.plant_points, step_s: a.step_s, horizon_min: a.horizon_min, members: a.members };
             let r = crate::bench::run_with(&o)?;
             crate::say!("{}x{} px, {} frames, {} thread(s), {} plant points x {} horizons", r.size_px, r.size_px, r.frames, r.threads, r.plant_points, r.horizons);
