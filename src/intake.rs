@@ -78,7 +78,8 @@ impl ReducedFrames {
     /// For a camera and mask (white = sky).
     pub fn new(camera: &crate::camera::Camera, obstruction: Option<&image::GrayImage>, reduce: u32) -> Self {
         let r = valid_reduction(reduce);
-        let obstruction = obstruction.map(|m| {
+        // Whole frames (r = 1) are stepped with the camera's own mask; no copy.
+        let obstruction = obstruction.filter(|_| r > 1).map(|m| {
             let (w, h) = m.dimensions();
             let (ow, oh) = reduced_size(w, h, r);
             image::GrayImage::from_fn(ow, oh, |u, v| {

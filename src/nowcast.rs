@@ -392,7 +392,8 @@ impl Nowcaster {
         r
     }
 
-    /// Intake limits for this site's frames: the defaults with the camera's size expected.
+    /// Intake limits for this site's frames: the defaults with the camera's size expected, JPEG
+    /// decoded at the reduction the map needs ([`crate::intake::frame_reduction`]).
     pub fn intake_options(&self) -> crate::intake::IntakeOptions {
         crate::intake::IntakeOptions::expecting(self.site.camera.width_px, self.site.camera.height_px).reduced(self.reduced.reduce)
     }
