@@ -27,8 +27,12 @@ pub struct BenchReport {
     pub horizons: usize,
     /// Rendering time per frame \[ms\] (all cores).
     pub render_ms: f64,
-    /// Median JPEG decode time \[ms\].
+    /// Reduction of the engine's decode (1 = whole frames; see [`crate::intake::map_reduction`]).
+    pub decode_reduction: u32,
+    /// Median JPEG decode time of the engine's intake, at its reduction \[ms\].
     pub decode_ms: f64,
+    /// Median JPEG decode time of whole frames by the general decoder (`image` crate) \[ms\].
+    pub decode_whole_ms: f64,
     /// Median time of QC + map + motion + central forecast per frame \[ms\].
     pub step_ms_median: f64,
     /// 95th percentile of that time \[ms\].
@@ -65,17 +69,54 @@ fn pct(mut v: Vec<f64>, p: f64) -> f64 {
     v[((v.len() - 1) as f64 * p).round() as usize]
 }
 
-/// Run the benchmark.
+/// What to benchmark.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BenchOptions {
+    /// Square image size \[px\].
+    pub size_px: u32,
+    /// Frames stepped.
+    pub frames: usize,
+    /// Threads for the engine.
+    pub threads: usize,
+    /// About this many plant points (the layout spacing is set to give it).
+    pub plant_points: usize,
+    /// Forecast step \[s\] (15, 30, 60 or 120).
+    pub step_s: u32,
+    /// Forecast horizon \[min\].
+    pub horizon_min: u32,
+    /// Ensemble members (0 = none).
+    pub members: usize,
+}
+
+impl Default for BenchOptions {
+    fn default() -> Self {
+        Self { size_px: 1024, frames: 60, threads: 1, plant_points: 1000, step_s: 60, horizon_min: 20, members: 20 }
+    }
+}
+
+/// Run the benchmark with the default options but these.
 ///
 /// # Errors
 /// When the scene cannot be built or a frame fails (which would be a bug).
 pub fn run(size_px: u32, frames: usize, threads: usize) -> Result<BenchReport, BenchError> {
+    run_with(&BenchOptions { size_px, frames, threads, ..BenchOptions::default() })
+}
+
+/// Run the benchmark.
+///
+/// # Errors
+/// When the scene cannot be built or a frame fails (which would be a bug).
+pub fn run_with(o: &BenchOptions) -> Result<BenchReport, BenchError> {
+    let (size_px, frames, threads) = (o.size_px, o.frames, o.threads);
     let mut spec = scene("broken-cumulus-fast").ok_or_else(|| BenchError::Setup("scene broken-cumulus-fast missing".into()))?;
     spec.size_px = size_px;
     spec.duration_min = frames as f64 * spec.frame_step_s / 60.0;
     let mut s = Scene::new(spec, 11).map_err(|e| BenchError::Setup(e.to_string()))?;
-    // About 1000 forecast points: shrink the spacing.
-    s.site.plant.point_spacing_m = 15.5;
+    // The plant's layout spacing for about `plant_points` points (15.5 m gives 949 on this plant).
+    s.site.plant.point_spacing_m = 15.5 * (949.0 / o.plant_points.max(1) as f64).sqrt();
+    s.site.forecast.step_s = o.step_s;
+    s.site.forecast.horizon_min = o.horizon_min;
+    s.site.irradiance.ensemble_members = o.members;
     let rays = PixelRays::new(&s.camera);
     let times = s.frame_times();
     let t0 = Instant::now();
@@ -96,7 +137,14 @@ pub fn run(size_px: u32, frames: usize, threads: usize) -> Result<BenchReport, B
     let plant_points = nc.plant().point_count();
     let horizons = nc.horizons_s().len();
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads.max(1)).build().map_err(|e| BenchError::Setup(e.to_string()))?;
-    let (mut dec, mut step, mut full, mut st) = (vec![], vec![], vec![], [vec![], vec![], vec![], vec![], vec![]]);
+    let (mut dec, mut dec_whole, mut step, mut full, mut st) = (vec![], vec![], vec![], vec![], [vec![], vec![], vec![], vec![], vec![]]);
+    // Whole-frame decoding by the general decoder, for comparison (outside the timed loop).
+    for j in jpegs.iter().take(20) {
+        let td = Instant::now();
+        let img = crate::intake::decode(j, crate::intake::Format::Jpeg, &crate::intake::IntakeOptions::default()).map_err(|e| BenchError::Setup(e.to_string()))?;
+        dec_whole.push(td.elapsed().as_secs_f64() * 1000.0);
+        std::hint::black_box(img);
+    }
     let wall = Instant::now();
     pool.install(|| -> Result<(), BenchError> {
         for (index, (t, j)) in times.iter().zip(&jpegs).enumerate() {
@@ -122,7 +170,9 @@ pub fn run(size_px: u32, frames: usize, threads: usize) -> Result<BenchReport, B
         plant_points,
         horizons,
         render_ms,
+        decode_reduction: nc.intake_options().reduce,
         decode_ms: pct(dec, 0.5),
+        decode_whole_ms: pct(dec_whole, 0.5),
         step_ms_median: pct(step.clone(), 0.5),
         step_ms_p95: pct(step, 0.95),
         step_with_ensemble_ms_median: pct(full, 0.5),

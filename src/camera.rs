@@ -176,6 +176,24 @@ impl Camera {
         )
     }
 
+    /// The same camera seen through its frames reduced by `reduce` (each side divided, rounded up;
+    /// pixel `u` of the reduced frame stands for full-size pixels `reduce·u … reduce·u + reduce − 1`,
+    /// centred at `reduce·u + (reduce − 1)/2`), as a JPEG decoded at reduced scale gives them.
+    pub fn reduced(&self, reduce: u32) -> Self {
+        let r = reduce.max(1) as f64;
+        let to_reduced = |c: f64| (c - (r - 1.0) / 2.0) / r;
+        Self::new(
+            self.width_px.div_ceil(reduce.max(1)),
+            self.height_px.div_ceil(reduce.max(1)),
+            to_reduced(self.cx_px),
+            to_reduced(self.cy_px),
+            self.f_px / r,
+            self.projection,
+            self.max_field_angle_rad,
+            self.orientation,
+        )
+    }
+
     /// Rotation camera → (east, north, up).
     pub fn cam_to_enu(&self) -> &Rotation3<f64> {
         &self.cam_to_enu

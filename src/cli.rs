@@ -232,6 +232,21 @@ pub struct BenchArgs {
     /// Threads for the engine.
     #[arg(long, default_value_t = 1, allow_hyphen_values = true)]
     pub threads: usize,
+    /// About this many plant points.
+    #[arg(long, default_value_t = 1000, allow_hyphen_values = true)]
+    pub plant_points: usize,
+    /// Forecast step [s]: 15, 30, 60 or 120.
+    #[arg(long, default_value_t = 60, allow_hyphen_values = true)]
+    pub step_s: u32,
+    /// Forecast horizon [min].
+    #[arg(long, default_value_t = 20, allow_hyphen_values = true)]
+    pub horizon_min: u32,
+    /// Ensemble members (0 = none).
+    #[arg(long, default_value_t = 20, allow_hyphen_values = true)]
+    pub members: usize,
+    /// Also print the figures as one line of JSON, last.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// Arguments of `nephocast demo`.
@@ -448,6 +463,12 @@ pub fn check_args(cli: &Cli) -> Result<()> {
             check_arg("--size", f64::from(a.size), 64.0, 4096.0)?;
             check_arg("--frames", a.frames as f64, 2.0, 10_000.0)?;
             check_arg("--threads", a.threads as f64, 1.0, 256.0)?;
+            check_arg("--plant-points", a.plant_points as f64, 10.0, 20_000.0)?;
+            if ![15, 30, 60, 120].contains(&a.step_s) {
+                bail!("--step-s must be 15, 30, 60 or 120, not {}", a.step_s);
+            }
+            check_arg("--horizon-min", f64::from(a.horizon_min), 1.0, 60.0)?;
+            check_arg("--members", a.members as f64, 0.0, 200.0)?;
         }
         Command::Calibrate(a) => {
             check_arg("--min-detections", a.min_detections as f64, crate::config::MIN_FIT_DETECTIONS as f64, 1e6)?;
@@ -594,14 +615,18 @@ pub fn run(cli: Cli) -> Result<()> {
             if !(64..=4096).contains(&a.size) || a.frames < 2 {
                 bail!("--size must be 64 to 4096 and --frames at least 2");
             }
-            let r = crate::bench::run(a.size, a.frames, a.threads)?;
+            let o = crate::bench::BenchOptions { size_px: a.size, frames: a.frames, threads: a.threads, plant_points: a.plant_points, step_s: a.step_s, horizon_min: a.horizon_min, members: a.members };
+            let r = crate::bench::run_with(&o)?;
             crate::say!("{}x{} px, {} frames, {} thread(s), {} plant points x {} horizons", r.size_px, r.size_px, r.frames, r.threads, r.plant_points, r.horizons);
             crate::say!("render (synthetic, all cores): {:.1} ms per frame ({:.1} frames/s)", r.render_ms, 1000.0 / r.render_ms);
-            crate::say!("JPEG decode: median {:.2} ms", r.decode_ms);
+            crate::say!("JPEG decode: median {:.2} ms by the intake at 1/{} scale ({:.2} ms whole by the general decoder)", r.decode_ms, r.decode_reduction, r.decode_whole_ms);
             crate::say!("engine step (QC, map, motion, forecast): median {:.2} ms, 95th percentile {:.2} ms", r.step_ms_median, r.step_ms_p95);
             crate::say!("  stages (median): QC {:.2} ms, map+segmentation {:.2} ms, motion {:.2} ms, forecast {:.2} ms", r.stage_ms[0], r.stage_ms[1], r.stage_ms[2], r.stage_ms[3]);
             crate::say!("with the ensemble ({:.2} ms median): {:.2} ms median per frame", r.stage_ms[4], r.step_with_ensemble_ms_median);
             crate::say!("replay throughput including decode: {:.1} frames/s", r.throughput_fps);
+            if a.json {
+                println!("{}", serde_json::to_string(&r)?);
+            }
             Ok(())
         }
         Command::Evaluate(a) => {

@@ -175,21 +175,24 @@ impl Lut {
 /// Look-up tables cached by base-height bucket.
 #[derive(Debug, Default)]
 pub struct LutCache {
-    tables: HashMap<i64, Arc<Lut>>,
+    /// By (image width \[px\], height bucket): frames decoded at reduced scale have tables of their own.
+    tables: HashMap<(u32, i64), Arc<Lut>>,
 }
 
 impl LutCache {
     /// The table for a plane height above the camera (built on first use).
     pub fn get(&mut self, cam: &Camera, obstruction: Option<&image::GrayImage>, params: &MapParams, height_m: f64) -> Arc<Lut> {
         let bucket = (height_m / params.height_bucket_m).round() as i64;
+        let key = (cam.width_px, bucket);
         // Bounded: a varying cloud base height would otherwise keep a table per bucket it visits.
-        if !self.tables.contains_key(&bucket) && self.tables.len() >= MAX_LUT_TABLES
-            && let Some(far) = self.tables.keys().copied().max_by_key(|b| (b - bucket).abs())
+        // Tables of another image size go first, then the farthest in height.
+        if !self.tables.contains_key(&key) && self.tables.len() >= MAX_LUT_TABLES
+            && let Some(far) = self.tables.keys().copied().max_by_key(|&(w, b)| (w != key.0, (b - bucket).abs()))
         {
             self.tables.remove(&far);
         }
         self.tables
-            .entry(bucket)
+            .entry(key)
             .or_insert_with(|| Arc::new(Lut::build(cam, obstruction, Grid::new(params, bucket as f64 * params.height_bucket_m))))
             .clone()
     }

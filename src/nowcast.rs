@@ -303,6 +303,8 @@ pub struct Nowcaster {
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
+    /// The camera for frames decoded at reduced scale ([`crate::intake`]).
+    reduced: crate::intake::ReducedFrames,
     /// Counters.
     pub counters: Counters,
 }
@@ -324,6 +326,8 @@ impl Nowcaster {
         });
         let reference = site.clear_reference.clone().unwrap_or_default();
         let cbh_state = crate::cbh::CbhState::new(&site.file.clouds);
+        let reduce = crate::intake::frame_reduction(site.camera.width_px, site.file.map.cells);
+        let reduced = crate::intake::ReducedFrames::new(&site.camera, site.obstruction.as_ref(), reduce);
         Nowcaster {
             site,
             plant,
@@ -339,6 +343,7 @@ impl Nowcaster {
             irradiance,
             alarm: Default::default(),
             image_geometry: std::sync::OnceLock::new(),
+            reduced,
             counters: Counters::default(),
         }
     }
@@ -424,6 +429,11 @@ impl Nowcaster {
         self.image_geometry.get_or_init(|| crate::segment::ImageGeometry::from_camera(&self.site.camera, self.site.obstruction.as_ref()))
     }
 
+    /// Per-pixel geometry for a frame of `width_px` (whole or decoded at reduced scale).
+    pub fn image_geometry_for(&self, width_px: u32) -> &crate::segment::ImageGeometry {
+        if width_px == self.reduced.camera.width_px && self.reduced.reduce > 1 { self.reduced.geometry() } else { self.image_geometry() }
+    }
+
     /// The site.
     pub fn site(&self) -> &Site {
         &self.site
@@ -447,9 +457,10 @@ impl Nowcaster {
         r
     }
 
-    /// Intake limits for this site's frames: the defaults with the camera's size expected.
+    /// Intake limits for this site's frames: the defaults with the camera's size expected, JPEG
+    /// decoded at the reduction the map needs ([`crate::intake::frame_reduction`]).
     pub fn intake_options(&self) -> crate::intake::IntakeOptions {
-        crate::intake::IntakeOptions::expecting(self.site.camera.width_px, self.site.camera.height_px)
+        crate::intake::IntakeOptions::expecting(self.site.camera.width_px, self.site.camera.height_px).reduced(self.reduced.reduce)
     }
 
     /// The newest accepted frame time.
@@ -621,10 +632,11 @@ impl Nowcaster {
     /// the forecast (tuning, central, ensemble and bands), then ramps and the alarm.
     fn step_inner(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
         let t0 = Clock::now();
-        let sun = self.admit(frame)?;
+        let (sun, reduced) = self.admit(frame)?;
         let cbh = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
         let cam_z = self.site.file.camera.position_m[2];
-        let lut = self.map_stage.lut(&self.site, (cbh - cam_z).max(10.0));
+        let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
+        let lut = self.map_stage.lut(cam, obstruction, &self.site.file.map, (cbh - cam_z).max(10.0));
         check_exposure(&frame.image, &lut, &self.site.file.qc)?;
         let t_qc = Clock::now();
         let (map, [cf, thin_cf]) = self.map_stage.build(&frame.image, &lut, &sun, &self.site.file.segment);
@@ -680,14 +692,15 @@ impl Nowcaster {
         })
     }
 
-    /// Admission: the calibration's image size, a time after the newest accepted frame, and the sun
-    /// high enough. Returns the sun's position at the frame time.
-    fn admit(&self, frame: &Frame) -> Result<SunPosition, Rejection> {
-        let cam = &self.site.camera;
-        let (w, h) = frame.image.dimensions();
-        if (w, h) != (cam.width_px, cam.height_px) {
-            return Err(Rejection::WrongSize { got_w: w, got_h: h, want_w: cam.width_px, want_h: cam.height_px });
-        }
+    /// Admission: the calibration's image size (whole, or decoded at the reduced scale of
+    /// [`Nowcaster::intake_options`]), a time after the newest accepted frame, and the sun high
+    /// enough. Returns the sun's position at the frame time and whether the frame is reduced.
+    fn admit(&self, frame: &Frame) -> Result<(SunPosition, bool), Rejection> {
+        let reduced = match frame.image.dimensions() {
+            (w, h) if (w, h) == (self.site.camera.width_px, self.site.camera.height_px) => false,
+            (w, h) if (w, h) == (self.reduced.camera.width_px, self.reduced.camera.height_px) => true,
+            (w, h) => return Err(Rejection::WrongSize { got_w: w, got_h: h, want_w: self.site.camera.width_px, want_h: self.site.camera.height_px }),
+        };
         if let Some(last) = self.last_time {
             if frame.time == last {
                 return Err(Rejection::Duplicate);
@@ -701,7 +714,7 @@ impl Nowcaster {
         if elev < self.site.file.qc.min_sun_elevation_deg {
             return Err(Rejection::SunTooLow(elev));
         }
-        Ok(sun)
+        Ok((sun, reduced))
     }
 
     /// Cloud base height: every estimate combined (ceilometer or configured value, shadow timing at
@@ -949,9 +962,9 @@ struct MapStage {
 }
 
 impl MapStage {
-    /// The look-up table for a cloud plane `height_m` above the camera.
-    fn lut(&mut self, site: &Site, height_m: f64) -> Arc<crate::cloudmap::Lut> {
-        self.luts.get(&site.camera, site.obstruction.as_ref(), &site.file.map, height_m)
+    /// The look-up table of a camera (whole or reduced frames) for a cloud plane `height_m` above it.
+    fn lut(&mut self, cam: &crate::camera::Camera, obstruction: Option<&image::GrayImage>, params: &crate::cloudmap::MapParams, height_m: f64) -> Arc<crate::cloudmap::Lut> {
+        self.luts.get(cam, obstruction, params, height_m)
     }
 
     /// The cloud map of a frame and its cover `[cloud, thin]`; a nearly clear frame also teaches

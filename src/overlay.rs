@@ -114,7 +114,7 @@ pub fn shadow_map(nc: &Nowcast, nowcaster: &Nowcaster, size_px: u32) -> RgbImage
 /// Frame with classes beside the shadow map, as PNG bytes.
 pub fn overlay_png(frame: &RgbImage, nc: &Nowcast, nowcaster: &Nowcaster) -> Vec<u8> {
     let site = nowcaster.site();
-    let geom = nowcaster.image_geometry();
+    let geom = nowcaster.image_geometry_for(frame.width());
     let sd = nc.sun.direction_enu();
     let seg = segment_image(frame, geom, Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]), &site.file.segment, nowcaster.reference());
     let left = class_overlay(frame, &seg.classes);

@@ -1,4 +1,4 @@
-//! A stable, seeded fuzz loop over frame intake (`intake::from_bytes`, and `intake::read_frame`
+//! A stable, seeded fuzz loop over frame intake (`intake::from_bytes`, whole and at reduced scale, and `intake::read_frame`
 //! for a share of the cases): real JPEG and PNG bytes mutated (cut, bits flipped, bytes overwritten
 //! with marker values, ranges inserted, deleted or duplicated, two frames spliced; PNG chunk CRCs
 //! often recomputed so that the decoder is reached). Properties: no panic; a pure cut of a whole
@@ -162,7 +162,7 @@ fn fuzz_frame_intake() {
     let cases: usize = std::env::var("NEPHOCAST_FUZZ_CASES").ok().and_then(|v| v.parse().ok()).unwrap_or(400);
     let seed: u64 = std::env::var("NEPHOCAST_FUZZ_SEED").ok().and_then(|v| v.parse().ok()).unwrap_or(1);
     let seeds = seeds();
-    let opts = IntakeOptions::default();
+    let whole = IntakeOptions::default();
     let mut rng = Rng(seed);
     let dir = tempfile::tempdir().unwrap();
     let mut outcomes: BTreeMap<String, usize> = BTreeMap::new();
@@ -170,6 +170,8 @@ fn fuzz_frame_intake() {
     for case in 0..cases {
         let (what, bytes, pure_cut) = mutate(&mut rng, &seeds);
         let via_file = case % 16 == 0;
+        // Every other case through the reduced-scale decode the engine's frames take.
+        let opts = if case % 2 == 1 { whole.reduced(2) } else { whole };
         let run = std::panic::catch_unwind(|| {
             if via_file {
                 let p = dir.path().join("frame.bin");
@@ -191,7 +193,7 @@ fn fuzz_frame_intake() {
                     fail("a cut frame was accepted".into());
                 }
                 let (_, w, h) = check_complete(&bytes).unwrap_or_else(|e| fail(format!("accepted but its structure is refused: {e}")));
-                if img.dimensions() != (w, h) || w as u64 * h as u64 > opts.max_pixels {
+                if img.dimensions() != nephocast::intake::reduced_size(w, h, opts.reduce) || w as u64 * h as u64 > opts.max_pixels {
                     fail(format!("accepted {}x{} against a header of {w}x{h}", img.width(), img.height()));
                 }
                 "ok".to_string()

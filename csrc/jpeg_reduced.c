@@ -1,0 +1,65 @@
+/* Decode a JPEG held in memory at 1/denom of its size (denom 1, 2, 4 or 8) to packed RGB, with the
+ * system's libjpeg, whose inverse DCT scales while decoding. Errors return non-zero with a message
+ * instead of the library's default of ending the process. */
+#include <setjmp.h>
+#include <stdio.h>
+#include <string.h>
+#include <jpeglib.h>
+
+struct nc_err {
+    struct jpeg_error_mgr mgr;
+    jmp_buf jump;
+};
+
+static void nc_error_exit(j_common_ptr cinfo) {
+    struct nc_err *e = (struct nc_err *)cinfo->err;
+    longjmp(e->jump, 1);
+}
+
+static void nc_output_message(j_common_ptr cinfo) {
+    (void)cinfo; /* warnings are not printed */
+}
+
+/* out must hold width * height * 3 bytes; width and height are the expected reduced size. */
+int nc_jpeg_decode_reduced(const unsigned char *data, unsigned long len, int denom, unsigned char *out,
+                           unsigned width, unsigned height, char *msg, unsigned long msg_len) {
+    struct jpeg_decompress_struct cinfo;
+    struct nc_err err;
+    volatile int created = 0;
+    cinfo.err = jpeg_std_error(&err.mgr);
+    err.mgr.error_exit = nc_error_exit;
+    err.mgr.output_message = nc_output_message;
+    if (setjmp(err.jump)) {
+        char buf[JMSG_LENGTH_MAX];
+        (*cinfo.err->format_message)((j_common_ptr)&cinfo, buf);
+        snprintf(msg, msg_len, "%s", buf);
+        if (created) jpeg_destroy_decompress(&cinfo);
+        return 1;
+    }
+    jpeg_create_decompress(&cinfo);
+    created = 1;
+    jpeg_mem_src(&cinfo, data, len);
+    jpeg_read_header(&cinfo, TRUE);
+    if (cinfo.jpeg_color_space == JCS_CMYK || cinfo.jpeg_color_space == JCS_YCCK) {
+        snprintf(msg, msg_len, "CMYK");
+        jpeg_destroy_decompress(&cinfo);
+        return 2;
+    }
+    cinfo.scale_num = 1;
+    cinfo.scale_denom = (unsigned)denom;
+    cinfo.out_color_space = JCS_RGB;
+    jpeg_start_decompress(&cinfo);
+    if (cinfo.output_width != width || cinfo.output_height != height || cinfo.output_components != 3) {
+        snprintf(msg, msg_len, "decoded to %ux%u px with %d components, expected %ux%u RGB", cinfo.output_width,
+                 cinfo.output_height, cinfo.output_components, width, height);
+        jpeg_destroy_decompress(&cinfo);
+        return 1;
+    }
+    while (cinfo.output_scanline < cinfo.output_height) {
+        JSAMPROW row = out + (size_t)cinfo.output_scanline * width * 3;
+        jpeg_read_scanlines(&cinfo, &row, 1);
+    }
+    jpeg_finish_decompress(&cinfo);
+    jpeg_destroy_decompress(&cinfo);
+    return 0;
+}

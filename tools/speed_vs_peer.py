@@ -1,0 +1,66 @@
+#!/usr/bin/env python3
+"""Speed of nephocast against the Python/OpenCV peer, as ratios from runs made back to back.
+
+Runs the peer's `bench.py --quick` and `nephocast bench --size 1024 --threads 1 --json` in turn,
+ROUNDS times (A B A B ...), and prints each round's ratios and their medians. Absolute times on a
+shared machine drift by up to 2x; a ratio from one round compares the two under the same load.
+
+    python3 tools/speed_vs_peer.py --peer ../shared/peer-bench/bench.py --python ../.peer-venv/bin/python \
+        --bin target/release/nephocast --rounds 3
+
+Peer compute = segment + rectify + block matching + forecast (its stage medians at one OpenCV
+thread); peer end to end = its `fps_e2e_step` (decode plus a full step). Ours: the engine step
+without and with the ensemble, and frames per second of decode plus the whole step.
+"""
+import argparse
+import json
+import statistics
+import subprocess
+
+
+def last_json(out: str) -> dict:
+    for line in reversed(out.strip().splitlines()):
+        line = line.strip()
+        if line.startswith("{"):
+            return json.loads(line)
+    raise SystemExit("no JSON line in the output")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--peer", required=True, help="the peer's bench.py")
+    ap.add_argument("--python", default="python3", help="the Python with the peer's packages")
+    ap.add_argument("--bin", default="target/release/nephocast")
+    ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--frames", type=int, default=40, help="frames of nephocast bench")
+    a = ap.parse_args()
+    rows = []
+    for k in range(a.rounds):
+        peer = last_json(subprocess.run([a.python, a.peer, "--quick"], capture_output=True, text=True, check=True).stdout)
+        p = peer["sizes"]["1024"]["threads"]["1"]
+        ours = last_json(subprocess.run([a.bin, "bench", "--size", "1024", "--threads", "1", "--frames", str(a.frames), "--json"],
+                                        capture_output=True, text=True, check=True).stdout)
+        peer_compute = p["segment"] + p["rectify"] + p["motion_block"] + p["forecast"]
+        r = {
+            "peer_compute_ms": peer_compute,
+            "peer_decode_ms": p["decode"],
+            "peer_fps_e2e": p["fps_e2e_step"],
+            "step_ms": ours["step_ms_median"],
+            "step_with_ensemble_ms": ours["step_with_ensemble_ms_median"],
+            "decode_ms": ours["decode_ms"],
+            "decode_whole_ms": ours["decode_whole_ms"],
+            "fps_e2e": ours["throughput_fps"],
+        }
+        r["ratio_step"] = peer_compute / r["step_ms"]
+        r["ratio_step_with_ensemble"] = peer_compute / r["step_with_ensemble_ms"]
+        r["ratio_decode"] = p["decode"] / r["decode_ms"]
+        r["ratio_fps_e2e"] = r["fps_e2e"] / r["peer_fps_e2e"]
+        rows.append(r)
+        print(f"round {k + 1}: " + ", ".join(f"{key} {v:.2f}" for key, v in r.items()), flush=True)
+    med = {key: statistics.median(r[key] for r in rows) for key in rows[0]}
+    print("median: " + ", ".join(f"{key} {v:.2f}" for key, v in med.items()))
+    print(json.dumps({"rounds": rows, "median": med}))
+
+
+if __name__ == "__main__":
+    main()
