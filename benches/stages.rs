@@ -6,7 +6,7 @@
 use criterion::{Criterion, criterion_group, criterion_main};
 use nephocast::cloudmap::{CellSky, LutCache, build_map_with};
 use nephocast::config::{CalibrationFile, Site};
-use nephocast::motion::{MapFeatures, MotionParams, measure_prepared};
+use nephocast::motion::{MapFeatures, MotionParams, measure_with};
 use nephocast::nowcast::{Frame, Nowcaster};
 use nephocast::segment::Reference;
 use nephocast::synth::render::PixelRays;
@@ -67,7 +67,7 @@ fn run(c: &mut Criterion, pool: &rayon::ThreadPool, s: &Scene, site: &Site, fram
     // are part of the stage.
     let earlier_features = MapFeatures::new(&earlier.map);
     g.bench_function("motion", |b| {
-        b.iter(|| pool.install(|| measure_prepared((&earlier.map, &earlier_features), (&last.map, &MapFeatures::new(&last.map)), dt_s, &s.site.motion, &priors)))
+        b.iter(|| pool.install(|| measure_with((&earlier.map, &earlier_features), (&last.map, &MapFeatures::new(&last.map)), dt_s, &s.site.motion, &priors)))
     });
     // JPEG decoding of a frame as the cameras write them: by the general decoder, by the intake
     // (the system libjpeg when built with it), at 1/2 scale, and at 1/2 by the pure-Rust fallback.

@@ -877,7 +877,7 @@ fn cmd_qc(a: QcArgs) -> Result<()> {
     let mut header = vec!["time_utc".to_string()];
     let mut all = vec![];
     for (label, g, dn, dh) in &sets {
-        let f = qc_series_opt(&m.times, g, *dn, *dh, &site.observer());
+        let f = qc_series_partial(&m.times, g, *dn, *dh, &site.observer());
         let counts: Vec<String> = names.iter().map(|(b, n)| (n, f.iter().filter(|x| **x & b != 0).count())).filter(|(_, c)| *c > 0).map(|(n, c)| format!("{n} {c}")).collect();
         crate::say!("{label}: {} rows, {} flagged{}{}", f.len(), f.iter().filter(|x| **x != 0).count(), if counts.is_empty() { "" } else { ": " }, counts.join(", "));
         header.push(format!("{label}_flags"));

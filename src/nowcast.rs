@@ -11,7 +11,7 @@ use crate::cloudmap::{CloudMap, LutCache, build_map_with};
 use crate::config::Site;
 use crate::forecast::{Advection, Band, Forecast, ForecastInput, IrradianceParams, TransmittanceMap, ensemble_with, forecast_with, horizon_skies, quantile_sorted, sun_ray_plane_point};
 use crate::io::{InputError, Measurements, Series, fmt_time};
-use crate::motion::{LayerTracker, MapFeatures, Measurement, Motion, TrackedLayer, label_layers_on, measure_prepared};
+use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, Motion, TrackedLayer, label_layers_with, measure_with};
 use crate::plant::Plant;
 use crate::segment::{Class, Reference};
 use crate::sun::{SunPosition, position};
@@ -138,7 +138,7 @@ pub struct Nowcast {
     /// The cloud map.
     pub map: Arc<CloudMap>,
     /// Motion measured against the previous map.
-    pub measurement: Option<Measurement>,
+    pub measurement: Option<MotionMeasurement>,
     /// Filtered motion of the forecast's first (most opaque) layer.
     pub motion: Option<Motion>,
     /// Every layer the forecast advected, the most opaque first.
@@ -162,7 +162,7 @@ pub struct Nowcast {
     /// Transmittance settings used (after tuning).
     pub irradiance: IrradianceParams,
     /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
-    /// until calibrated; see [`crate::forecast::BandCalibration`]).
+    /// until calibrated; see [`crate::forecast::BandWidening`]).
     pub band_scale: [f64; 3],
     /// Stage timings.
     pub times: StageTimes,
@@ -298,7 +298,7 @@ pub struct Nowcaster {
     measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
     tuner: Tuner,
     cbh_state: crate::cbh::CbhState,
-    band_calibration: crate::forecast::BandCalibration,
+    band_widening: crate::forecast::BandWidening,
     blend: crate::forecast::PersistenceBlend,
     irradiance: IrradianceParams,
     alarm: crate::ramp::Alarm,
@@ -338,7 +338,7 @@ impl Nowcaster {
             measurements,
             tuner: Tuner::default(),
             cbh_state,
-            band_calibration: Default::default(),
+            band_widening: Default::default(),
             blend: Default::default(),
             irradiance,
             alarm: Default::default(),
@@ -657,7 +657,7 @@ impl Nowcaster {
         let t_central = Clock::now();
         let (members, mut bands) =
             if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
-        self.calibrate_bands(&frame.time, &fc, &members, &mut bands);
+        self.widen_bands(&frame.time, &fc, &members, &mut bands);
         self.blend_with_persistence(&frame.time, &mut fc, &mut bands);
         let (ramps, plant_members_ghi_wm2) = self.ramps_of(&frame.time, &fc, &members);
         let t_ens = Clock::now();
@@ -687,7 +687,7 @@ impl Nowcaster {
             alarm_reason: self.alarm.reason().to_string(),
             alarm_basis: self.alarm.basis().cloned(),
             irradiance: self.irradiance,
-            band_scale: [300, 600, 900].map(|h| self.band_calibration.scale(h)),
+            band_scale: [300, 600, 900].map(|h| self.band_widening.scale(h)),
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
     }
@@ -792,14 +792,14 @@ impl Nowcaster {
     /// Online band calibration against the pyranometers' mean (when there are pyranometers and
     /// bands): verify the plant bands whose target minute has been measured, then scale this
     /// forecast's bands.
-    fn calibrate_bands(&mut self, now: &DateTime<Utc>, fc: &Forecast, members: &[Forecast], bands: &mut [Band]) {
+    fn widen_bands(&mut self, now: &DateTime<Utc>, fc: &Forecast, members: &[Forecast], bands: &mut [Band]) {
         let rate = self.irradiance.band_calibration_rate;
         let Some((m, cols)) = &self.measurements else { return };
         if rate <= 0.0 || bands.is_empty() {
             return;
         }
         let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
-        self.band_calibration.verify(rate, |t| {
+        self.band_widening.verify(rate, |t| {
             // The averaging period holding the target must have ended.
             if *t + period > *now {
                 return None;
@@ -814,7 +814,7 @@ impl Nowcaster {
                 [quantile_sorted(&v, 0.1), quantile_sorted(&v, 0.5), quantile_sorted(&v, 0.9)]
             })
             .collect();
-        self.band_calibration.apply(fc, bands, &probe_bands);
+        self.band_widening.apply(fc, bands, &probe_bands);
     }
 
     /// Combine the forecast with smart persistence of the pyranometers ([`crate::forecast::PersistenceBlend`]):
@@ -875,7 +875,7 @@ impl Nowcaster {
             // Readings outside the BSRN physically-possible or extremely-rare GHI limits are not
             // learnt from.
             let bad = crate::qc::FLAG_GHI_PHYSICAL | crate::qc::FLAG_GHI_RARE;
-            if !y.is_finite() || crate::qc::bsrn_flags_opt(y, None, None, sun.zenith_rad, sun.earth_sun_distance_au) & bad != 0 {
+            if !y.is_finite() || crate::qc::bsrn_flags_partial(y, None, None, sun.zenith_rad, sun.earth_sun_distance_au) & bad != 0 {
                 continue;
             }
             // Nor stuck readings (gaps give NaN above).
@@ -1013,7 +1013,7 @@ struct MotionStage {
 /// What the motion stage found at a frame.
 struct Moved {
     /// The measurement between the earlier map and this one (none without an earlier map).
-    measurement: Option<Measurement>,
+    measurement: Option<MotionMeasurement>,
     /// The tracked layers after the update.
     layers: Vec<TrackedLayer>,
     /// The earlier map measured against, and its age \[s\].
@@ -1031,7 +1031,7 @@ impl MotionStage {
         let earlier = self.history.iter().rev().find(|(e, _, _)| age(e) >= mp.baseline_s).or(self.history.front()).cloned();
         let priors = self.tracker.priors();
         let features = Arc::new(MapFeatures::new(map));
-        let measurement = earlier.as_ref().map(|(e, pm, pf)| measure_prepared((pm, pf), (map, &features), age(e), mp, &priors));
+        let measurement = earlier.as_ref().map(|(e, pm, pf)| measure_with((pm, pf), (map, &features), age(e), mp, &priors));
         // A measurement locked at zero while the map changes stays out of the filter.
         let layers = self.tracker.update(measurement.as_ref().filter(|m| !m.locked_at_zero), dt_s.unwrap_or(0.0), mp);
         let earlier = earlier.map(|k| {
@@ -1059,7 +1059,7 @@ fn layer_tables(map: &CloudMap, moved: &Moved, params: &IrradianceParams) -> Vec
                 .measurement
                 .as_ref()
                 .and_then(|m| m.labels_for(v0, v1))
-                .unwrap_or_else(|| label_layers_on(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1]));
+                .unwrap_or_else(|| label_layers_with(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1]));
             vec![TransmittanceMap::for_layer(map, params, Some((&labels, 0))), TransmittanceMap::for_layer(map, params, Some((&labels, 1)))]
         }
         _ => vec![TransmittanceMap::new(map, params)],

@@ -120,11 +120,11 @@ pub fn bsrn_limits(zenith_rad: f64, earth_sun_au: f64) -> BsrnLimits {
 
 /// Flags of one row of GHI, DNI, DHI (NaN = missing) at a zenith and Earth–Sun distance.
 pub fn bsrn_flags(ghi: f64, dni: f64, dhi: f64, zenith_rad: f64, earth_sun_au: f64) -> u16 {
-    bsrn_flags_opt(ghi, Some(dni), Some(dhi), zenith_rad, earth_sun_au)
+    bsrn_flags_partial(ghi, Some(dni), Some(dhi), zenith_rad, earth_sun_au)
 }
 
 /// [`bsrn_flags`] when DNI and DHI may not be measured at all (`None`: not judged).
-pub fn bsrn_flags_opt(ghi: f64, dni: Option<f64>, dhi: Option<f64>, zenith_rad: f64, earth_sun_au: f64) -> u16 {
+pub fn bsrn_flags_partial(ghi: f64, dni: Option<f64>, dhi: Option<f64>, zenith_rad: f64, earth_sun_au: f64) -> u16 {
     if zenith_rad >= std::f64::consts::FRAC_PI_2 {
         return 0;
     }
@@ -169,11 +169,11 @@ pub fn qc_series(
     dhi: &[f64],
     observer: &crate::sun::Observer,
 ) -> Vec<u16> {
-    qc_series_opt(times, ghi, Some(dni), Some(dhi), observer)
+    qc_series_partial(times, ghi, Some(dni), Some(dhi), observer)
 }
 
 /// [`qc_series`] when DNI and DHI may not be measured (a plant's pyranometers give GHI only).
-pub fn qc_series_opt(
+pub fn qc_series_partial(
     times: &[chrono::DateTime<chrono::Utc>],
     ghi: &[f64],
     dni: Option<&[f64]>,
@@ -186,7 +186,7 @@ pub fn qc_series_opt(
     for i in 0..n {
         if let Ok(sp) = crate::sun::position(&times[i], observer) {
             day[i] = sp.zenith_rad < std::f64::consts::FRAC_PI_2;
-            flags[i] = bsrn_flags_opt(ghi[i], dni.map(|d| d[i]), dhi.map(|d| d[i]), sp.zenith_rad, sp.earth_sun_distance_au);
+            flags[i] = bsrn_flags_partial(ghi[i], dni.map(|d| d[i]), dhi.map(|d| d[i]), sp.zenith_rad, sp.earth_sun_distance_au);
         }
     }
     // Gaps.

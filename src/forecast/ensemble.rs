@@ -99,7 +99,7 @@ pub fn ensemble_with(
 /// transmittance, are shared; verifying the plant band against a few points would judge a mean by
 /// points and widen it).
 #[derive(Debug, Clone, Default)]
-pub struct BandCalibration {
+pub struct BandWidening {
     /// Width scale per horizon \[s\].
     scale: std::collections::BTreeMap<u32, f64>,
     /// Issued probe GHI bands awaiting their measurement: (target time, horizon, P10, P90).
@@ -108,7 +108,7 @@ pub struct BandCalibration {
     pub verified: usize,
 }
 
-impl BandCalibration {
+impl BandWidening {
     /// Nominal share of measurements outside P10–P90.
     const NOMINAL_MISS: f64 = 0.2;
     /// Limits of the width scale.
@@ -174,7 +174,7 @@ mod tests {
         // Measurements spread evenly over ±100 around P50 = 500: a band of ±50 must widen until
         // it holds 80 % of them, i.e. to ±80 (scale 1.6), and one of ±100 narrow to ±80 (0.8).
         for half in [50.0, 100.0] {
-            let mut c = BandCalibration::default();
+            let mut c = BandWidening::default();
             let t0 = Utc.with_ymd_and_hms(2026, 6, 14, 9, 0, 0).unwrap();
             for i in 0..4000 {
                 let t = t0 + Duration::seconds(i);

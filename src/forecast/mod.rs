@@ -44,7 +44,7 @@ mod blend;
 mod ensemble;
 mod tables;
 pub use blend::PersistenceBlend;
-pub use ensemble::{Band, BandCalibration, ensemble_with, quantile_sorted};
+pub use ensemble::{Band, BandWidening, ensemble_with, quantile_sorted};
 pub use tables::TransmittanceMap;
 
 /// Transmittance and diffuse settings (`[irradiance]` in `site.toml`).

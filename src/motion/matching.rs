@@ -135,14 +135,14 @@ fn parabola_offset(l: f64, c: f64, r: f64) -> f64 {
 /// Block vectors between maps `a` and `b` on their score feature.
 pub(super) fn block_vectors(a: &CloudMap, xa: &MapFeatures, xb: &MapFeatures, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
     let r = a.grid.height_m * params.first_pass_max_zenith_deg.to_radians().tan();
-    block_vectors_on(&xa.prepared, &xb.prepared, a, dt_s, params, prior, r)
+    block_vectors_with(&xa.prepared, &xb.prepared, a, dt_s, params, prior, r)
 }
 
 /// Block vectors between two feature maps (`fa` earlier, `fb` later) on `a`'s grid (the features
 /// are given back to the pool).
 pub(super) fn block_vectors_between(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>) -> (Vec<BlockVector>, usize, usize) {
     let n = a.grid.n;
-    block_vectors_on(&Prepared::new(fa, n, false), &Prepared::new(fb, n, true), a, dt_s, params, prior, f64::INFINITY)
+    block_vectors_with(&Prepared::new(fa, n, false), &Prepared::new(fb, n, true), a, dt_s, params, prior, f64::INFINITY)
 }
 
 /// Block vectors between two prepared feature maps on `a`'s grid.
@@ -151,7 +151,7 @@ pub(super) fn block_vectors_between(fa: Vec<f32>, fb: Vec<f32>, a: &CloudMap, dt
 /// sub-cell refinement, acceptance tests), and its locals (pooled buffers, the prior's window, the
 /// counters) are shared across those steps for every block; split, they would be passed by the
 /// dozen or reallocated per block.
-fn block_vectors_on(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>, max_radius_m: f64) -> (Vec<BlockVector>, usize, usize) {
+fn block_vectors_with(xa: &Prepared, xb: &Prepared, a: &CloudMap, dt_s: f64, params: &MotionParams, prior: Option<Motion>, max_radius_m: f64) -> (Vec<BlockVector>, usize, usize) {
     let n = a.grid.n;
     let cell = a.grid.cell_m;
     let nc = xa.nc;

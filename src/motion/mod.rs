@@ -202,7 +202,7 @@ pub struct LayerMotion {
 
 /// Motion measured between two maps.
 #[derive(Debug, Clone, PartialEq)]
-pub struct Measurement {
+pub struct MotionMeasurement {
     /// Time step \[s\].
     pub dt_s: f64,
     /// Accepted block vectors.
@@ -226,7 +226,7 @@ pub struct Measurement {
     pub locked_at_zero: bool,
 }
 
-impl Measurement {
+impl MotionMeasurement {
     /// Flag a measurement locked at zero: its dominant motion moves less than half a cell over the
     /// baseline while the two maps differ at zero shift by more than twice the static tolerance.
     pub fn check_locked(&mut self, a: &CloudMap, b: &CloudMap, params: &MotionParams) {
@@ -255,12 +255,12 @@ impl Measurement {
 /// pass matches that residual cloud alone on a clear background ([`features::residual_features`]),
 /// so that a layer too sparse or too faint to win blocks in the first pass yields vectors of its
 /// own. All vectors are then clustered; without a second pass there is one layer.
-pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
-    measure_prepared((a, &MapFeatures::new(a)), (b, &MapFeatures::new(b)), dt_s, params, priors)
+pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
+    measure_with((a, &MapFeatures::new(a)), (b, &MapFeatures::new(b)), dt_s, params, priors)
 }
 
 /// [`measure`] with each map's [`MapFeatures`] given (the engine keeps them with its maps).
-pub fn measure_prepared((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> Measurement {
+pub fn measure_with((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
     let (mut vectors, mut tried, mut static_blocks) = block_vectors(a, xa, xb, dt_s, params, priors.first().copied());
     // One motion unless the residual pass finds cloud it does not explain: a split of the first
     // pass's vectors alone is more often cloud evolving than a second layer.
@@ -282,7 +282,7 @@ pub fn measure_prepared((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap,
     m.check_locked(a, b, params);
     // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
     if let [l0, l1] = m.layers.as_slice() {
-        let mut labels = label_layers_on(xa.feature(), xb.feature(), b, dt_s, &[l0.v_mps, l1.v_mps]);
+        let mut labels = label_layers_with(xa.feature(), xb.feature(), b, dt_s, &[l0.v_mps, l1.v_mps]);
         let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
         // Per layer: cloudy cells, thick cells.
         let mut counts = [[0usize; 2]; 2];
@@ -308,8 +308,8 @@ pub fn measure_prepared((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap,
     m
 }
 
-impl Measurement {
-    /// The cell labels ([`Measurement::labels`]) for two tracked layers moving at `v0` and `v1`:
+impl MotionMeasurement {
+    /// The cell labels ([`MotionMeasurement::labels`]) for two tracked layers moving at `v0` and `v1`:
     /// label 0 for the measured layer nearer `v0`. `None` unless this measurement saw two layers.
     pub fn labels_for(&self, v0: [f64; 2], v1: [f64; 2]) -> Option<Vec<u8>> {
         let (lb, [m0, m1]) = (self.labels.as_ref()?, self.layers.as_slice()) else { return None };
@@ -337,9 +337,9 @@ fn dist(a: [f64; 2], b: [f64; 2]) -> f64 {
     ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2)).sqrt()
 }
 
-fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &MotionParams, allow_two: bool) -> Measurement {
+fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &MotionParams, allow_two: bool) -> MotionMeasurement {
     if vectors.is_empty() {
-        return Measurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN, labels: None, blocks_static: 0, locked_at_zero: false };
+        return MotionMeasurement { dt_s, vectors, blocks_tried: tried, global_mps: None, layers: vec![], spread_mps: f64::NAN, labels: None, blocks_static: 0, locked_at_zero: false };
     }
     let g = [
         median(&mut vectors.iter().map(|v| v.v_mps[0]).collect::<Vec<_>>()),
@@ -413,7 +413,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         let ts = inl.iter().map(|v| v.thick_share).sum::<f64>() / m;
         (vec![LayerMotion { v_mps: v, blocks: inl.len(), mean_score: ms, thick_share: ts, spread_mps: spread }], spread)
     };
-    Measurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread, labels: None, blocks_static: 0, locked_at_zero: false }
+    MotionMeasurement { dt_s, vectors, blocks_tried: tried, global_mps: Some(g), layers, spread_mps: spread, labels: None, blocks_static: 0, locked_at_zero: false }
 }
 
 /// Which layer each cloudy cell of map `b` belongs to, given the layers' velocities `vs` (m/s,
@@ -423,14 +423,14 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
 /// and cells no displacement can judge, get layer 0.
 pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
     let (fa, fb) = (features::score_feature(a), features::score_feature(b));
-    let labels = label_layers_on(&fa, &fb, b, dt_s, vs);
+    let labels = label_layers_with(&fa, &fb, b, dt_s, vs);
     features::recycle(fa);
     features::recycle(fb);
     labels
 }
 
 /// [`label_layers`] on the maps' score features (`fa` of the earlier map, `fb` of `b`).
-pub fn label_layers_on(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
+pub fn label_layers_with(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
     let n = b.grid.n;
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
     let mut best = vec![(f32::INFINITY, 0u8); n * n];
@@ -579,7 +579,7 @@ impl LayerTracker {
 
     /// Advance by `dt_s` and fold in a measurement. Returns the layers for the forecast, the most
     /// opaque first (empty before any motion is known).
-    pub fn update(&mut self, m: Option<&Measurement>, dt_s: f64, params: &MotionParams) -> Vec<TrackedLayer> {
+    pub fn update(&mut self, m: Option<&MotionMeasurement>, dt_s: f64, params: &MotionParams) -> Vec<TrackedLayer> {
         let measured: &[LayerMotion] = m.map(|m| m.layers.as_slice()).unwrap_or(&[]);
         // Cost of pairing a measured layer with a track: their distance; a new track costs the
         // two-layer separation.
@@ -723,7 +723,7 @@ mod tests {
         let (v_many, v_few, dt) = ([2.0, -3.5], [6.5, 6.5], 100.0);
         let (a, b) = two_layer_maps(v_many, v_few, dt);
         // Synthetic maps have no pixels to quantize them: match out to their edge.
-        let m = measure_prepared((&a, &MapFeatures::within_zenith(&a, 90.0)), (&b, &MapFeatures::within_zenith(&b, 90.0)), dt, &MotionParams::default(), &[]);
+        let m = measure_with((&a, &MapFeatures::within_zenith(&a, 90.0)), (&b, &MapFeatures::within_zenith(&b, 90.0)), dt, &MotionParams::default(), &[]);
         assert_eq!(m.layers.len(), 2, "{:?} {:?}", m.layers, m.vectors.iter().map(|v| v.v_mps).collect::<Vec<_>>());
         let near = |t: [f64; 2]| m.layers.iter().any(|l| dist(l.v_mps, t) < 0.5);
         assert!(near(v_many) && near(v_few), "{:?}", m.layers);
@@ -754,7 +754,7 @@ mod tests {
     fn tracker_follows_two_layers_and_confirms_the_second() {
         let p = MotionParams::default();
         let layer = |v: [f64; 2], thick: f64| LayerMotion { v_mps: v, blocks: 10, mean_score: 1.0, thick_share: thick, spread_mps: 0.3 };
-        let meas = |ls: Vec<LayerMotion>| Measurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3, labels: None, blocks_static: 0, locked_at_zero: false };
+        let meas = |ls: Vec<LayerMotion>| MotionMeasurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3, labels: None, blocks_static: 0, locked_at_zero: false };
         let mut t = LayerTracker::default();
         // The first measurement is a blend; then both layers, in either order.
         let out = t.update(Some(&meas(vec![layer([3.0, 1.0], 0.6)])), 20.0, &p);
