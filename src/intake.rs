@@ -388,6 +388,9 @@ fn trailing_ok(rest: &[u8], what: &str, at: usize) -> Result<(), Refusal> {
 }
 
 /// Walk a JPEG's markers from SOI to EOI; the frame's (width, height).
+///
+/// One piece on purpose: a state machine over the byte stream whose position, frame header and
+/// scan state every marker case reads and moves.
 fn jpeg_structure(b: &[u8]) -> Result<(u32, u32), Refusal> {
     let n = b.len();
     let trunc = |at: usize, what: &str| Refusal::Truncated(format!("JPEG of {n} bytes ends inside {what} (from byte {at}) before its end marker"));

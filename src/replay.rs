@@ -131,14 +131,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
 /// As [`replay`].
 pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet), ReplayError> {
     let wall = std::time::Instant::now();
-    let (frames, untimed) = list_frames(&opts.frames)?;
-    if frames.is_empty() {
-        return Err(InputError::Other {
-            file: opts.frames.clone(),
-            message: format!("no frames: expected image files named {}", crate::io::FRAME_NAME_PATTERN),
-        }
-        .into());
-    }
+    let (frames, untimed) = frames_of(&opts.frames)?;
     let span = Some((frames[0].time, frames[frames.len() - 1].time));
     let mut nowcaster = prepare(opts, span)?;
     let intake = nowcaster.intake_options();
@@ -215,6 +208,15 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
         outputs,
     };
     Ok((summary, set))
+}
+
+/// The timed frames of a folder (at least one) and the count of files without a time.
+fn frames_of(dir: &Path) -> Result<(Vec<crate::io::FrameRef>, usize), ReplayError> {
+    let (frames, untimed) = list_frames(dir)?;
+    if frames.is_empty() {
+        return Err(InputError::Other { file: dir.to_path_buf(), message: format!("no frames: expected image files named {}", crate::io::FRAME_NAME_PATTERN) }.into());
+    }
+    Ok((frames, untimed))
 }
 
 /// The tables a replay writes, filled frame by frame: forecasts, motion, frames, ramps (CSV and

@@ -361,6 +361,10 @@ impl Forecast {
 /// means follow from its mean transmittance exactly. With two layers (`tms[k]` moving by
 /// `input.layers[k]`), a sun ray crosses both: its transmittance is the product of the layers'
 /// transmittances relative to clear sky, times the clear-sky one.
+///
+/// One piece on purpose: the forecast's hot loop, in parallel over points with per-horizon
+/// accumulators shared by the look-up, the block sums and the plant sum; split, the accumulators
+/// would be passed around per point.
 pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
     let mut out = Forecast::default();
     out.rows.reserve(skies.len() * (input.plant.blocks.len() + 1));

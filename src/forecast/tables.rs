@@ -52,6 +52,9 @@ impl TransmittanceMap {
 
     /// [`TransmittanceMap::new`] for one layer of a map whose cloudy cells carry layer labels
     /// (`labels[k]` = layer index): the other layers' cloud counts as clear sky here.
+    ///
+    /// One piece on purpose: the class shares, the brightness feature and the inward fill of
+    /// glare cells are built in passes over the same per-cell buffers, once per frame and layer.
     pub fn for_layer(map: &CloudMap, p: &IrradianceParams, layer: Option<(&[u8], u8)>) -> TransmittanceMap {
         let n = map.grid.n;
         let relabelled: Option<Vec<u8>> = layer.map(|(labels, l)| {
