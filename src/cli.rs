@@ -862,23 +862,11 @@ fn cmd_qc(a: QcArgs) -> Result<()> {
     if sets.is_empty() {
         bail!("{}: no irradiance columns (expected ghi[, dni, dhi] or ghi_<name>_wm2)", a.measurements.display());
     }
-    let names = [
-        (FLAG_GHI_PHYSICAL, "ghi_physically_impossible"),
-        (FLAG_GHI_RARE, "ghi_extremely_rare"),
-        (FLAG_DNI_PHYSICAL, "dni_physically_impossible"),
-        (FLAG_DNI_RARE, "dni_extremely_rare"),
-        (FLAG_DHI_PHYSICAL, "dhi_physically_impossible"),
-        (FLAG_DHI_RARE, "dhi_extremely_rare"),
-        (FLAG_CLOSURE, "closure"),
-        (FLAG_MISSING, "missing"),
-        (FLAG_STUCK, "stuck"),
-        (FLAG_GAP, "gap"),
-    ];
     let mut header = vec!["time_utc".to_string()];
     let mut all = vec![];
     for (label, g, dn, dh) in &sets {
         let f = qc_series_partial(&m.times, g, *dn, *dh, &site.observer());
-        let counts: Vec<String> = names.iter().map(|(b, n)| (n, f.iter().filter(|x| **x & b != 0).count())).filter(|(_, c)| *c > 0).map(|(n, c)| format!("{n} {c}")).collect();
+        let counts: Vec<String> = flag_counts(&f).into_iter().map(|(n, c)| format!("{n} {c}")).collect();
         crate::say!("{label}: {} rows, {} flagged{}{}", f.len(), f.iter().filter(|x| **x != 0).count(), if counts.is_empty() { "" } else { ": " }, counts.join(", "));
         header.push(format!("{label}_flags"));
         all.push(f);

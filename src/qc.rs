@@ -218,6 +218,25 @@ pub fn qc_series_partial(
     flags
 }
 
+/// Every flag bit of [`qc_series`] with its name, in bit order.
+pub const FLAG_NAMES: [(u16, &str); 10] = [
+    (FLAG_GHI_PHYSICAL, "ghi_physically_impossible"),
+    (FLAG_GHI_RARE, "ghi_extremely_rare"),
+    (FLAG_DNI_PHYSICAL, "dni_physically_impossible"),
+    (FLAG_DNI_RARE, "dni_extremely_rare"),
+    (FLAG_DHI_PHYSICAL, "dhi_physically_impossible"),
+    (FLAG_DHI_RARE, "dhi_extremely_rare"),
+    (FLAG_CLOSURE, "closure"),
+    (FLAG_MISSING, "missing"),
+    (FLAG_STUCK, "stuck"),
+    (FLAG_GAP, "gap"),
+];
+
+/// How many rows carry each flag (flags that no row carries are left out), by name.
+pub fn flag_counts(flags: &[u16]) -> Vec<(&'static str, usize)> {
+    FLAG_NAMES.iter().map(|(b, n)| (*n, flags.iter().filter(|x| **x & b != 0).count())).filter(|(_, c)| *c > 0).collect()
+}
+
 #[cfg(test)]
 mod measurement_tests {
     use super::*;
