@@ -242,6 +242,12 @@ mod measurement_tests {
     use super::*;
 
     #[test]
+    fn flag_counts_name_each_bit_that_occurs() {
+        let f = [FLAG_GHI_PHYSICAL, FLAG_GHI_PHYSICAL | FLAG_GHI_RARE, 0, FLAG_GAP];
+        assert_eq!(flag_counts(&f), vec![("ghi_physically_impossible", 2), ("ghi_extremely_rare", 1), ("gap", 1)]);
+    }
+
+    #[test]
     fn limits_by_hand_at_a_few_zeniths() {
         // Long & Shi 2008 formulas with Sa = 1366.1 W/m² (R = 1 AU).
         let l = bsrn_limits(0.0, 1.0);
