@@ -642,7 +642,7 @@ pub fn run(cli: Cli) -> Result<()> {
                 return Ok(());
             }
             let Some(sequence) = &a.sequence else { bail!("--sequence or --measurements is needed") };
-            let e = crate::verify::evaluate(sequence, &a.replay).map_err(|e| anyhow::anyhow!("{e}"))?;
+            let e = crate::verify::evaluate(sequence, &a.replay)?;
             crate::verify::print_evaluation(&e);
             let p = crate::output_set::update_file(&a.replay, "evaluation.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
             crate::say!("wrote {}", p.display());
@@ -712,8 +712,7 @@ fn cmd_replay(a: ReplayArgs) -> Result<()> {
         let seq = opts.frames.parent().map(|p| p.to_path_buf()).unwrap_or_default();
         let truth = crate::verify::Truth::read(&seq.join("truth").join("irradiance.csv")).ok();
         let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, set.dir()).ok());
-        crate::report::write_report(set.dir(), truth.as_ref(), eval.as_ref(), "nephocast replay").map_err(|e| anyhow::anyhow!("{e}"))?;
-        Some(set.adopt("report.html")?)
+        Some(report_into(&mut set, truth.as_ref(), eval.as_ref(), "nephocast replay")?)
     } else {
         None
     };
@@ -724,6 +723,12 @@ fn cmd_replay(a: ReplayArgs) -> Result<()> {
         crate::say!("report: {}", r.display());
     }
     Ok(())
+}
+
+/// Write `report.html` into a replay's output set before it is committed; returns its final path.
+fn report_into(set: &mut crate::output_set::OutputSet, truth: Option<&crate::verify::Truth>, eval: Option<&crate::verify::Evaluation>, title: &str) -> Result<PathBuf> {
+    crate::report::write_report(set.dir(), truth, eval, title)?;
+    Ok(set.adopt("report.html")?)
 }
 
 /// Print what a replay did.
@@ -771,7 +776,7 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
     print_replay_summary(&s);
     let mut eval = None;
     if data.join("truth").join("irradiance.csv").is_file() {
-        let e = crate::verify::evaluate(&data, set.dir()).map_err(|e| anyhow::anyhow!("{e}"))?;
+        let e = crate::verify::evaluate(&data, set.dir())?;
         let layers = crate::verify::read_rows(&data.join("truth").join("layers.csv"))?;
         if let Some(l) = layers.first() {
             crate::say!("true cloud motion: {} m/s toward {}° at {} m", l["wind_speed_mps"], l["wind_toward_deg"], l["base_height_m"]);
@@ -783,8 +788,7 @@ fn cmd_demo(a: DemoArgs) -> Result<()> {
         eval = Some(e);
     }
     let truth = crate::verify::Truth::read(&data.join("truth").join("irradiance.csv")).ok();
-    crate::report::write_report(set.dir(), truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)").map_err(|e| anyhow::anyhow!("{e}"))?;
-    let r = set.adopt("report.html")?;
+    let r = report_into(&mut set, truth.as_ref(), eval.as_ref(), "nephocast demo — Larkspur Flats (fictional)")?;
     set.commit()?;
     crate::say!("overlays (frame with cloud classes | shadow map over the plant): {}", a.out.join("overlays").display());
     crate::say!("report: {}", r.display());
