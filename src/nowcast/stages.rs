@@ -1,0 +1,159 @@
+//! The engine's stage objects and steps that own no engine state: frame exposure check, the map
+//! stage (tables, cell sky, clear-sky reference learning), the motion stage (earlier maps and the
+//! layer tracker) and the per-layer transmittance tables.
+
+use std::sync::Arc;
+
+use chrono::{DateTime, Utc};
+
+use super::{Rejection, SUN_ANGLE_REUSE_DEG};
+use crate::cloudmap::{CloudMap, LutCache, build_map_with};
+use crate::forecast::{IrradianceParams, TransmittanceMap};
+use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, TrackedLayer, label_layers_with, measure_with};
+use crate::segment::Reference;
+use crate::sun::SunPosition;
+
+/// Frame QC over the map's pixels: the mean level and the share of saturated pixels (every fifth
+/// map pixel) against [`crate::qc::QcParams`].
+pub(super) fn check_exposure(image: &image::RgbImage, lut: &crate::cloudmap::Lut, qc: &crate::qc::QcParams) -> Result<(), Rejection> {
+    let raw = image.as_raw();
+    let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
+    for &p in lut.pixel.iter().step_by(5) {
+        if p == crate::cloudmap::NO_PIXEL {
+            continue;
+        }
+        let i = p as usize * 3;
+        let (r, g, b) = (raw[i], raw[i + 1], raw[i + 2]);
+        sum += (r as f64 + g as f64 + b as f64) / 3.0;
+        sat += (r >= 250 && g >= 250 && b >= 250) as usize;
+        n += 1;
+    }
+    let mean = if n > 0 { sum / n as f64 } else { 0.0 };
+    let sat_share = if n > 0 { sat as f64 / n as f64 } else { 0.0 };
+    if mean < qc.min_mean_level {
+        return Err(Rejection::UnderExposed(mean));
+    }
+    if mean > qc.max_mean_level || sat_share > qc.max_saturated_fraction {
+        return Err(Rejection::OverExposed(mean, sat_share));
+    }
+    Ok(())
+}
+
+/// The map stage's state: the look-up tables per plane height, the learned clear-sky reference,
+/// and the cells' sun angles (reused while the sun moves little).
+#[derive(Default)]
+pub(super) struct MapStage {
+    luts: LutCache,
+    pub(super) reference: Reference,
+    cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
+}
+
+impl MapStage {
+    /// A map stage starting from a clear-sky reference.
+    pub(super) fn new(reference: Reference) -> MapStage {
+        MapStage { reference, ..Default::default() }
+    }
+
+    /// The look-up table of a camera (whole or reduced frames) for a cloud plane `height_m` above it.
+    pub(super) fn lut(&mut self, cam: &crate::camera::Camera, obstruction: Option<&image::GrayImage>, params: &crate::cloudmap::MapParams, height_m: f64) -> Arc<crate::cloudmap::Lut> {
+        self.luts.get(cam, obstruction, params, height_m)
+    }
+
+    /// The cloud map of a frame and its cover `[cloud, thin]`; a nearly clear frame also teaches
+    /// the clear-sky reference.
+    pub(super) fn build(&mut self, image: &image::RgbImage, lut: &Arc<crate::cloudmap::Lut>, sun: &SunPosition, sp: &crate::segment::SegmentParams) -> (Arc<CloudMap>, [f64; 2]) {
+        let sd = sun.direction_enu();
+        let sd3 = [sd[0] as f32, sd[1] as f32, sd[2] as f32];
+        let sun_dir = Some(sd3);
+        // The cells' sun angles and default references are reused until the sun has moved
+        // `SUN_ANGLE_REUSE_DEG` (about a minute): that shifts a default reference by at most
+        // c1/γs · 0.25° ≈ 0.0024 in R/B (defaults; the score thresholds sit ~0.1 apart) and the
+        // glare-zone edges by 0.25°.
+        let key = Arc::as_ptr(lut) as usize;
+        let stale = match &self.cell_sky {
+            Some((k, d, _)) => *k != key || crate::segment::gamma_deg(*d, sun_dir) > SUN_ANGLE_REUSE_DEG,
+            None => true,
+        };
+        if stale {
+            self.cell_sky = None;
+        }
+        let sky = &self.cell_sky.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(lut, sun_dir, sp))).2;
+        let map = Arc::new(build_map_with(image, lut, sky, sp, &self.reference));
+        let [cf, thin_cf] = map.cover(lut, sp.cloud_fraction_zenith_deg as f32);
+        if cf <= sp.library_max_cloud_fraction {
+            let raw = image.as_raw();
+            let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
+                let i = lut.pixel[k] as usize * 3;
+                ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] })
+            });
+            self.reference.learn(sp, sample);
+        }
+        (map, [cf, thin_cf])
+    }
+}
+
+/// An earlier map with its motion features (computed once per map).
+type KeptMap = (DateTime<Utc>, Arc<CloudMap>, Arc<MapFeatures>);
+
+/// The motion stage's state: earlier maps and the layer tracker.
+#[derive(Default)]
+pub(super) struct MotionStage {
+    pub(super) history: std::collections::VecDeque<KeptMap>,
+    pub(super) tracker: LayerTracker,
+}
+
+/// What the motion stage found at a frame.
+pub(super) struct Moved {
+    /// The measurement between the earlier map and this one (none without an earlier map).
+    pub(super) measurement: Option<MotionMeasurement>,
+    /// The tracked layers after the update.
+    pub(super) layers: Vec<TrackedLayer>,
+    /// The earlier map measured against, and its age \[s\].
+    pub(super) earlier: Option<(KeptMap, f64)>,
+    /// This map's motion features.
+    pub(super) features: Arc<MapFeatures>,
+}
+
+impl MotionStage {
+    /// Measure this map against the newest earlier map at least `baseline_s` old (else the oldest
+    /// kept, within the gap limit) and update the tracker.
+    pub(super) fn update(&mut self, t: &DateTime<Utc>, map: &Arc<CloudMap>, dt_s: Option<f64>, mp: &crate::motion::MotionParams) -> Moved {
+        let age = |e: &DateTime<Utc>| (*t - *e).num_milliseconds() as f64 / 1000.0;
+        self.history.retain(|(e, m, _)| age(e) <= mp.max_gap_s && m.grid == map.grid);
+        let earlier = self.history.iter().rev().find(|(e, _, _)| age(e) >= mp.baseline_s).or(self.history.front()).cloned();
+        let priors = self.tracker.priors();
+        let features = Arc::new(MapFeatures::new(map));
+        let measurement = earlier.as_ref().map(|(e, pm, pf)| measure_with((pm, pf), (map, &features), age(e), mp, &priors));
+        // A measurement locked at zero while the map changes stays out of the filter.
+        let layers = self.tracker.update(measurement.as_ref().filter(|m| !m.locked_at_zero), dt_s.unwrap_or(0.0), mp);
+        let earlier = earlier.map(|k| {
+            let a = age(&k.0);
+            (k, a)
+        });
+        Moved { measurement, layers, earlier, features }
+    }
+
+    /// Keep an accepted frame's map for the next frames.
+    pub(super) fn remember(&mut self, t: DateTime<Utc>, map: Arc<CloudMap>, features: Arc<MapFeatures>) {
+        self.history.push_back((t, map, features));
+    }
+}
+
+/// The transmittance tables: one for a single layer; with two layers each cloudy cell goes with
+/// the layer whose motion explains it, and each layer's cloud is advected by its own motion.
+pub(super) fn layer_tables(map: &CloudMap, moved: &Moved, params: &IrradianceParams) -> Vec<TransmittanceMap> {
+    match (&moved.earlier, moved.layers.as_slice()) {
+        (Some(((_, _, pf), age_s)), [l0, l1, ..]) => {
+            // The measurement's own labels when it saw both layers (in the tracked order),
+            // else labels from the tracked motions.
+            let (v0, v1) = (l0.motion.v_mps, l1.motion.v_mps);
+            let labels = moved
+                .measurement
+                .as_ref()
+                .and_then(|m| m.labels_for(v0, v1))
+                .unwrap_or_else(|| label_layers_with(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1]));
+            vec![TransmittanceMap::for_layer(map, params, Some((&labels, 0))), TransmittanceMap::for_layer(map, params, Some((&labels, 1)))]
+        }
+        _ => vec![TransmittanceMap::new(map, params)],
+    }
+}
