@@ -183,6 +183,8 @@ pub struct FamilyScore {
     pub cv_rms_px: f64,
     /// Weighted RMS of the in-sample residuals \[px\].
     pub fit_rms_px: f64,
+    /// Whether the fit carries a bloom lean (the held-out error said it helps).
+    pub bloom_lean: bool,
 }
 
 
@@ -263,6 +265,9 @@ struct Problem {
     /// Huber weights × quality weights.
     weights: Vec<f64>,
     prior: Option<(f64, f64, f64)>,
+    /// The bare disc's radius \[px\] when the fit carries a bloom lean (its coefficient is the
+    /// last parameter); `None` without one.
+    lean_ref_px: Option<f64>,
     p: DVector<f64>,
 }
 
@@ -281,6 +286,20 @@ impl Problem {
         )
     }
 
+    /// The radial lean \[px\] the bloom model puts on detection `d`: the lean coefficient times
+    /// how far the blob's equivalent radius has grown past the bare disc's, times the sine of the
+    /// sun's zenith angle (a glare lobe has no direction to lean toward with the sun overhead).
+    fn lean_px(&self, p: &DVector<f64>, d: &Detection) -> f64 {
+        match self.lean_ref_px {
+            Some(r0) if d.blob_px > 0 => {
+                let grown = ((d.blob_px as f64 / std::f64::consts::PI).sqrt() - r0).max(0.0);
+                let sin_z = (1.0 - d.dir[2] * d.dir[2]).max(0.0).sqrt();
+                p[p.len() - 1] * grown * sin_z
+            }
+            _ => 0.0,
+        }
+    }
+
     fn rows(&self) -> usize {
         2 * self.dets.len() + if self.prior.is_some() { 2 } else { 0 }
     }
@@ -290,7 +309,14 @@ impl Problem {
         let mut r = DVector::zeros(self.rows());
         for (i, d) in self.dets.iter().enumerate() {
             let w = if weighted { self.weights[i].sqrt() } else { 1.0 };
-            let (x, y) = project_unchecked(&cam, d.dir);
+            let (mut x, mut y) = project_unchecked(&cam, d.dir);
+            let lean = self.lean_px(p, d);
+            if lean != 0.0 {
+                let (ux, uy) = (x - p[0], y - p[1]);
+                let n = ux.hypot(uy).max(1e-9);
+                x += lean * ux / n;
+                y += lean * uy / n;
+            }
             r[2 * i] = w * (x - d.px.0);
             r[2 * i + 1] = w * (y - d.px.1);
         }
@@ -389,8 +415,17 @@ fn solve(mut prob: Problem) -> Problem {
     prob
 }
 
-fn problem(start_p: DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>) -> Problem {
-    Problem { family, size, max_field_rad: 95f64.to_radians(), dets: dets.to_vec(), weights: vec![1.0; dets.len()], prior, p: start_p }
+/// A problem to solve. With `lean_ref_px`, `start_p` carries the lean coefficient as its last
+/// entry (see [`with_lean`]).
+fn problem(start_p: DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>, lean_ref_px: Option<f64>) -> Problem {
+    Problem { family, size, max_field_rad: 95f64.to_radians(), dets: dets.to_vec(), weights: vec![1.0; dets.len()], prior, lean_ref_px, p: start_p }
+}
+
+/// Starting parameters with a lean coefficient of 0 appended.
+fn with_lean(p: &DVector<f64>) -> DVector<f64> {
+    let mut v: Vec<f64> = p.iter().copied().collect();
+    v.push(0.0);
+    DVector::from_vec(v)
 }
 
 /// Weighted RMS of residual vectors.
@@ -408,7 +443,7 @@ fn weighted_rms(res: &[(f64, f64)], w: &[f64]) -> f64 {
 /// predicted by extrapolation, which is what a lens model must do beyond the sun's track; blocks
 /// of time would hold out morning detections whose twins at the same zenith angle remain in the
 /// afternoon, and so cannot tell a lens distortion from a bias that grows with zenith angle.
-fn held_out(p_full: &DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>, folds: usize) -> Vec<(f64, f64)> {
+fn held_out(p_full: &DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>, lean_ref_px: Option<f64>, folds: usize) -> Vec<(f64, f64)> {
     let n = dets.len();
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&i, &j| dets[i].dir[2].total_cmp(&dets[j].dir[2]));
@@ -419,11 +454,12 @@ fn held_out(p_full: &DVector<f64>, family: LensFamily, size: (u32, u32), dets: &
             continue;
         }
         let train: Vec<Detection> = order[..a].iter().chain(&order[b..]).map(|&i| dets[i]).collect();
-        let prob = solve(problem(p_full.clone(), family, size, &train, prior));
-        let cam = prob.camera(&prob.p);
-        for &i in &order[a..b] {
-            let (x, y) = project_unchecked(&cam, dets[i].dir);
-            out[i] = (x - dets[i].px.0, y - dets[i].px.1);
+        let prob = solve(problem(p_full.clone(), family, size, &train, prior, lean_ref_px));
+        let held: Vec<Detection> = order[a..b].iter().map(|&i| dets[i]).collect();
+        let test = Problem { dets: held, weights: vec![1.0; b - a], prior: None, ..prob.clone() };
+        let r = test.residuals_of(&prob.p, false);
+        for (j, &i) in order[a..b].iter().enumerate() {
+            out[i] = (r[2 * j], r[2 * j + 1]);
         }
     }
     out
@@ -439,7 +475,7 @@ pub fn fit_detections(start: &Camera, model: Projection, dets: &[Detection]) -> 
         Projection::Polynomial { .. } => LensFamily::Polynomial,
     };
     let size = (start.width_px, start.height_px);
-    let prob = solve(problem(start_params(start, family), family, size, dets, None));
+    let prob = solve(problem(start_params(start, family), family, size, dets, None, None));
     finish(&prob, None, None)
 }
 
@@ -470,6 +506,7 @@ fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<ImageCircle>) ->
     let jtj = j.transpose() * &j;
     let cov = jtj.try_inverse().map(|m| m * s2);
     let names = ["cx_px", "cy_px", "f_px_per_rad", "yaw_deg", "pitch_deg", "roll_deg", "k1", "k2"];
+    let lean_at = prob.lean_ref_px.map(|_| p.len() - 1);
     let mut params = vec![];
     let mut warnings = vec![];
     for k in 0..p.len() {
@@ -482,9 +519,11 @@ fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<ImageCircle>) ->
         };
         let v = if k == 3 { (v + 180.0).rem_euclid(360.0) - 180.0 } else { v };
         if ang && se > 0.3 || !se.is_finite() {
-            warnings.push(format!("{} is poorly constrained by these detections (standard error {se:.2}°): add frames from another season or time of day", names[k]));
+            let name = if Some(k) == lean_at { "bloom_lean" } else { names[k] };
+            warnings.push(format!("{name} is poorly constrained by these detections (standard error {se:.2}°): add frames from another season or time of day"));
         }
-        params.push((names[k].to_string(), v, se));
+        let name = if Some(k) == lean_at { "bloom_lean" } else { names[k] };
+        params.push((name.to_string(), v, se));
     }
     let degs: Vec<f64> = prob
         .dets
@@ -658,7 +697,9 @@ fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], obs
     dets
 }
 
-/// Fit every lens family asked for (all by default) and score each by its held-out error.
+/// Fit every lens family asked for (all by default) and score each by its held-out error. Each
+/// family is fitted with and without a bloom lean (see [`Problem::lean_px`]); the lean is kept
+/// only when it lowers the held-out error by more than [`LEAN_GAIN`].
 fn fit_families(circle: ImageCircle, size: (u32, u32), dets: &[Detection], options: &CalibrateOptions) -> Vec<(Problem, FamilyScore)> {
     let start = initial_camera(circle, size, dets);
     let prior = options.centre_prior_px.map(|s| (circle.cx_px, circle.cy_px, 1.0 / s.max(1e-3)));
@@ -667,21 +708,43 @@ fn fit_families(circle: ImageCircle, size: (u32, u32), dets: &[Detection], optio
         None => LensFamily::ALL.to_vec(),
     };
     let folds = 5.min(dets.len() / 4).max(2);
+    let lean_ref = bare_disc_radius_px(dets);
+    let wq: Vec<f64> = dets.iter().map(|d| d.weight).collect();
+    let fit_and_score = |p0: DVector<f64>, fam: LensFamily, lean: Option<f64>| {
+        let prob = solve(problem(p0, fam, size, dets, prior, lean));
+        let cv = held_out(&prob.p, fam, size, dets, prior, lean, folds);
+        let r = prob.residuals_of(&prob.p, false);
+        let fit_res: Vec<(f64, f64)> = (0..dets.len()).map(|i| (r[2 * i], r[2 * i + 1])).collect();
+        let score = FamilyScore { family: fam, cv_rms_px: weighted_rms(&cv, &wq), fit_rms_px: weighted_rms(&fit_res, &wq), bloom_lean: lean.is_some() };
+        (prob, score)
+    };
     let mut solved = vec![];
     for fam in &families {
-        // Polynomial from the equidistant solution, the others from the start camera.
         let p0 = start_params(&start, *fam);
-        let prob = solve(problem(p0, *fam, size, dets, prior));
-        let cv = held_out(&prob.p, *fam, size, dets, prior, folds);
-        let wq: Vec<f64> = dets.iter().map(|d| d.weight).collect();
-        let fit_res: Vec<(f64, f64)> = {
-            let r = prob.residuals_of(&prob.p, false);
-            (0..dets.len()).map(|i| (r[2 * i], r[2 * i + 1])).collect()
-        };
-        let score = FamilyScore { family: *fam, cv_rms_px: weighted_rms(&cv, &wq), fit_rms_px: weighted_rms(&fit_res, &wq) };
-        solved.push((prob, score));
+        let plain = fit_and_score(p0.clone(), *fam, None);
+        let leaning = lean_ref.map(|r0| fit_and_score(with_lean(&plain.0.p), *fam, Some(r0)));
+        match leaning {
+            Some(l) if l.1.cv_rms_px < (1.0 - LEAN_GAIN) * plain.1.cv_rms_px => solved.push(l),
+            _ => solved.push(plain),
+        }
     }
     solved
+}
+
+/// How much a bloom lean must lower the held-out error to be kept (a fraction).
+const LEAN_GAIN: f64 = 0.05;
+
+/// The bare disc's equivalent radius \[px\]: that of the blob area at the 20th percentile of the
+/// detections (as in the bloom screening). `None` when fewer than 8 detections know their blob, or
+/// when no blob has grown 1 px past it (nothing for a lean to explain).
+fn bare_disc_radius_px(dets: &[Detection]) -> Option<f64> {
+    let mut radii: Vec<f64> = dets.iter().filter(|d| d.blob_px > 0).map(|d| (d.blob_px as f64 / std::f64::consts::PI).sqrt()).collect();
+    if radii.len() < 8 {
+        return None;
+    }
+    radii.sort_by(f64::total_cmp);
+    let r0 = radii[(0.2 * (radii.len() - 1) as f64).round() as usize];
+    (radii[radii.len() - 1] > r0 + 1.0).then_some(r0)
 }
 
 /// The ideal family with the lowest held-out error among the `eligible`; the polynomial only when
@@ -760,6 +823,68 @@ fn check_usable(fit: &Fit) -> Result<(), CalibrationError> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A day of detections from a known equidistant camera, each blob growing past a 10 px disc as
+    /// the sun sinks below 35° elevation, its centroid pushed outward by `lean` times that growth
+    /// (times sin z), with 0.15 px of noise.
+    fn leaning_day(truth: &Camera, lean: f64) -> Vec<Detection> {
+        use crate::synth::noise::{gaussian, hash64};
+        let obs = Observer::new(32.2, -6.5, 780.0);
+        let mut dets = vec![];
+        for k in 0..150u64 {
+            let t: DateTime<Utc> = "2026-05-10T05:00:00Z".parse::<DateTime<Utc>>().unwrap() + chrono::Duration::minutes(5 * k as i64);
+            let sp = position(&t, &obs).unwrap();
+            let z = sp.apparent_zenith_rad;
+            if z.to_degrees() > 65.0 {
+                continue;
+            }
+            let dir = direction_enu(z, sp.azimuth_rad);
+            let (x, y) = truth.project_enu(dir).unwrap();
+            let grown = 12.0 * ((z.to_degrees() - 35.0) / 25.0).max(0.0).powi(2);
+            let blob_px = (std::f64::consts::PI * (10.0 + grown).powi(2)).round() as usize;
+            let (ux, uy) = (x - truth.cx_px, y - truth.cy_px);
+            let n = ux.hypot(uy).max(1e-9);
+            let push = lean * grown * z.sin();
+            let nx = 0.15 * gaussian(hash64(4 * k + 1), hash64(4 * k + 2));
+            let ny = 0.15 * gaussian(hash64(4 * k + 3), hash64(4 * k + 4));
+            dets.push(Detection { time: t, px: (x + push * ux / n + nx, y + push * uy / n + ny), dir, blob_px, weight: 1.0 });
+        }
+        screen_bloom(&mut dets);
+        dets
+    }
+
+    /// Relative focal-length error of the chosen fit, its score, and that of a fit without lean.
+    fn lean_fit(lean: f64) -> (f64, FamilyScore, f64) {
+        let truth = Camera::new(512, 512, 255.0, 257.0, 160.0, Projection::Equidistant, 88f64.to_radians(), Orientation { yaw_rad: 0.4, pitch_rad: 0.008, roll_rad: -0.005 });
+        let dets = leaning_day(&truth, lean);
+        let circle = ImageCircle { cx_px: 255.0, cy_px: 257.0, radius_px: 160.0 * 88f64.to_radians() };
+        let options = CalibrateOptions { lens: Some(LensFamily::Equidistant), ..CalibrateOptions::default() };
+        let solved = fit_families(circle, (512, 512), &dets, &options);
+        let (prob, score) = &solved[0];
+        let f = prob.camera(&prob.p).f_px;
+        let start = initial_camera(circle, (512, 512), &dets);
+        let plain = solve(problem(start_params(&start, LensFamily::Equidistant), LensFamily::Equidistant, (512, 512), &dets, None, None));
+        let f_plain = plain.camera(&plain.p).f_px;
+        ((f / 160.0 - 1.0).abs(), *score, (f_plain / 160.0 - 1.0).abs())
+    }
+
+    #[test]
+    fn bloom_lean_is_kept_when_the_detections_lean() {
+        // Without the lean term, an outward lean of half the blob's growth reads as a focal length
+        // about 0.5 % long (the bias measured on a renderer's bloom was of this size).
+        let (f_err, score, f_err_plain) = lean_fit(0.5);
+        eprintln!("focal length error: {:.3} % with the lean, {:.3} % without", 100.0 * f_err, 100.0 * f_err_plain);
+        assert!(f_err_plain > 0.002, "the lean should bias a plain fit: {:.3} %", 100.0 * f_err_plain);
+        assert!(score.bloom_lean, "the held-out error should keep the lean: {score:?}");
+        assert!(f_err < 0.001, "focal length off by {:.3} %", 100.0 * f_err);
+    }
+
+    #[test]
+    fn bloom_lean_is_left_out_when_nothing_leans() {
+        let (f_err, score, _) = lean_fit(0.0);
+        assert!(!score.bloom_lean, "no lean in the data, none in the fit: {score:?}");
+        assert!(f_err < 0.001, "focal length off by {:.3} %", 100.0 * f_err);
+    }
 
     #[test]
     fn lens_family_names_round_trip() {
