@@ -23,6 +23,7 @@
 //! | irradiance and power forecast, ensemble, bands | [`forecast`] |
 //! | the per-frame engine | [`nowcast`] |
 //! | replay of recorded sequences, scoring | [`replay`], [`verify`] |
+//! | mergeable forecast statistics | [`stats`] |
 //!
 //! ## Conventions (used everywhere)
 //!
@@ -77,6 +78,7 @@ pub mod segment;
 pub mod serve;
 pub mod settings;
 pub mod shadow;
+pub mod stats;
 pub mod sun;
 pub mod synth;
 pub mod transposition;
