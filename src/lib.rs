@@ -23,7 +23,7 @@
 //! | irradiance and power forecast, ensemble, bands | [`forecast`] |
 //! | the per-frame engine | [`nowcast`] |
 //! | replay of recorded sequences, scoring | [`replay`], [`verify`] |
-//! | mergeable forecast statistics | [`stats`] |
+//! | batches of days, mergeable statistics, shard merge | [`batch`], [`stats`], [`merge`] |
 //!
 //! ## Conventions (used everywhere)
 //!
@@ -47,6 +47,7 @@ macro_rules! say {
     }};
 }
 
+pub mod batch;
 pub mod bench;
 pub mod calibrate;
 pub mod camera;
@@ -60,6 +61,7 @@ pub mod forecast;
 pub mod intake;
 pub mod io;
 pub mod measured;
+pub mod merge;
 pub mod motion;
 pub mod nowcast;
 pub mod output_set;
