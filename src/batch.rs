@@ -43,8 +43,8 @@ pub enum BatchError {
     Replay {
         /// The day.
         day: String,
-        /// Why.
-        source: ReplayError,
+        /// Why (boxed: a replay error is large).
+        source: Box<ReplayError>,
     },
     /// An input file or folder is bad.
     #[error(transparent)]
@@ -208,7 +208,7 @@ pub fn run_batch(opts: &BatchOptions) -> Result<BatchSummary, BatchError> {
     }
     let mut counts = Vec::with_capacity(todo.len());
     for d in &todo {
-        let (frames, _) = crate::replay::frames_of(&d.frames).map_err(|source| BatchError::Replay { day: d.name.clone(), source })?;
+        let (frames, _) = crate::replay::frames_of(&d.frames).map_err(|source| BatchError::Replay { day: d.name.clone(), source: Box::new(source) })?;
         counts.push(frames.len());
     }
     let bar = crate::io::progress_bar(counts.iter().sum::<usize>() as u64, opts.progress, "batch");
@@ -256,7 +256,7 @@ fn check_out_outside(days: &Path, out: &Path) -> Result<(), InputError> {
 /// Replay one day into its folder with its statistics, metadata and marker; returns its frames.
 fn run_day(opts: &BatchOptions, d: &Day, digest: &str, bar: &indicatif::ProgressBar) -> Result<usize, BatchError> {
     let start = Utc::now();
-    let wrap = |source: ReplayError| BatchError::Replay { day: d.name.clone(), source };
+    let wrap = |source: ReplayError| BatchError::Replay { day: d.name.clone(), source: Box::new(source) };
     let measurements = opts.measurements.clone().or_else(|| d.measurements.clone());
     let ro = ReplayOptions {
         site: opts.site.clone(),

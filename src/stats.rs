@@ -382,11 +382,14 @@ pub fn from_measured(site: &crate::config::Site, replay_out: &Path, measurements
     Ok(t)
 }
 
+/// Ensemble members per (issue time, horizon \[s\]).
+type Members = BTreeMap<(DateTime<Utc>, u32), Vec<f64>>;
+
 /// The plant ensemble's members per (issue, horizon), in the order of `ensemble_plant.csv`
 /// (sorted by key); empty when the replay wrote none.
-fn members_of(replay_out: &Path) -> Result<BTreeMap<(DateTime<Utc>, u32), Vec<f64>>, InputError> {
+fn members_of(replay_out: &Path) -> Result<Members, InputError> {
     let mp = replay_out.join("ensemble_plant.csv");
-    let mut groups: BTreeMap<(DateTime<Utc>, u32), Vec<f64>> = BTreeMap::new();
+    let mut groups = Members::new();
     if !mp.is_file() {
         return Ok(groups);
     }
