@@ -52,6 +52,20 @@ pub enum Command {
     /// Where directions land in the image and back (a researcher's check of a calibration).
     #[command(subcommand)]
     Camera(CameraCommand),
+    /// Merge the output folders of sharded batch replays (`replay --batch --shard K/N`) into one
+    /// aggregate, from the days' summed statistics.
+    Merge(MergeArgs),
+}
+
+/// Arguments of `nephocast merge`.
+#[derive(Debug, clap::Args)]
+pub struct MergeArgs {
+    /// The shards' output folders (each the --out of a `replay --batch` run).
+    #[arg(required = true)]
+    pub shards: Vec<PathBuf>,
+    /// The aggregate folder to write.
+    #[arg(long)]
+    pub out: PathBuf,
 }
 
 /// Arguments of `nephocast qc`.
@@ -325,6 +339,14 @@ pub struct ReplayArgs {
     /// Hide the progress bar.
     #[arg(long)]
     pub quiet: bool,
+    /// Batch: --frames is a folder whose subfolders are days (or a text file listing day folders);
+    /// writes OUT/days/<day>/ per day and OUT/aggregate/, and skips days already complete.
+    #[arg(long, conflicts_with = "report")]
+    pub batch: bool,
+    /// With --batch: only the days whose index i (0-based, days sorted by name) has i mod N = K;
+    /// K is 0-based (0 … N−1).
+    #[arg(long, value_name = "K/N", requires = "batch")]
+    pub shard: Option<String>,
 }
 
 /// Arguments of `nephocast synth`.
@@ -479,7 +501,7 @@ pub fn check_args(cli: &Cli) -> Result<()> {
             check_arg("--poll-ms", a.poll_ms as f64, 20.0, 60_000.0)?;
         }
         Command::Registers(_) => {}
-        Command::Evaluate(_) | Command::Demo(_) | Command::Segment(_) | Command::Qc(_) | Command::Camera(_) => {}
+        Command::Evaluate(_) | Command::Demo(_) | Command::Segment(_) | Command::Qc(_) | Command::Camera(_) | Command::Merge(_) => {}
     }
     Ok(())
 }
@@ -611,6 +633,11 @@ pub fn run(cli: Cli) -> Result<()> {
             Ok(())
         }
         Command::Camera(c) => cmd_camera(c),
+        Command::Merge(a) => {
+            let s = crate::merge::merge(&a.shards, &a.out)?;
+            crate::merge::print_merge(&s, &a.out);
+            Ok(())
+        }
         Command::Bench(a) => {
             if !(64..=4096).contains(&a.size) || a.frames < 2 {
                 bail!("--size must be 64 to 4096 and --frames at least 2");
@@ -698,6 +725,12 @@ fn cmd_synth(a: SynthArgs) -> Result<()> {
 }
 
 fn cmd_replay(a: ReplayArgs) -> Result<()> {
+    if a.batch {
+        let shard = a.shard.as_deref().map(crate::merge::parse_shard).transpose()?;
+        let opts = crate::batch::BatchOptions { site: a.site, days: a.frames, out: a.out, measurements: a.measurements, overlays_every: a.overlays, progress: !a.quiet, shard };
+        crate::batch::print_summary(&crate::batch::run_batch(&opts)?);
+        return Ok(());
+    }
     let opts = crate::replay::ReplayOptions {
         site: a.site,
         frames: a.frames,

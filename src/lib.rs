@@ -23,6 +23,7 @@
 //! | irradiance and power forecast, ensemble, bands | [`forecast`] |
 //! | the per-frame engine | [`nowcast`] |
 //! | replay of recorded sequences, scoring | [`replay`], [`verify`] |
+//! | batches of days, mergeable statistics, shard merge | [`batch`], [`stats`], [`merge`] |
 //!
 //! ## Conventions (used everywhere)
 //!
@@ -46,6 +47,7 @@ macro_rules! say {
     }};
 }
 
+pub mod batch;
 pub mod bench;
 pub mod calibrate;
 pub mod camera;
@@ -59,6 +61,7 @@ pub mod forecast;
 pub mod intake;
 pub mod io;
 pub mod measured;
+pub mod merge;
 pub mod motion;
 pub mod nowcast;
 pub mod output_set;
@@ -77,6 +80,7 @@ pub mod segment;
 pub mod serve;
 pub mod settings;
 pub mod shadow;
+pub mod stats;
 pub mod sun;
 pub mod synth;
 pub mod transposition;

@@ -122,70 +122,73 @@ fn pooled(pairs: &[(f64, f64, f64)]) -> Pooled {
     Pooled { n, rmse_wm2: r, rmse_persistence_wm2: rp, skill: 1.0 - r / rp, mbe_wm2: pairs.iter().map(|p| p.0 - p.1).sum::<f64>() / n.max(1) as f64 }
 }
 
+/// One scored pair of [`scored_pairs`]: a forecast row with its reading and smart persistence.
+#[derive(Debug, Clone)]
+pub struct MeasuredPair {
+    /// Issue time.
+    pub issue: DateTime<Utc>,
+    /// Target: a block or `plant`.
+    pub target: String,
+    /// Horizon \[s\] (never 0).
+    pub horizon_s: u32,
+    /// Forecast GHI \[W/m²\].
+    pub forecast: f64,
+    /// Measured GHI (mean of the target's valid pyranometers) \[W/m²\].
+    pub observed: f64,
+    /// Smart persistence \[W/m²\].
+    pub persistence: f64,
+    /// CRPS of the plant ensemble (plant rows with members only) \[W/m²\].
+    pub crps: Option<f64>,
+    /// The forecast's P10 \[W/m²\], when given.
+    pub p10: Option<f64>,
+    /// The forecast's P90 \[W/m²\], when given.
+    pub p90: Option<f64>,
+}
+
+impl MeasuredPair {
+    /// Whether the reading lies inside P10–P90 (false without a band).
+    pub fn inside(&self) -> bool {
+        matches!((self.p10, self.p90), (Some(lo), Some(hi)) if self.observed >= lo && self.observed <= hi)
+    }
+}
+
+/// The pairs of a replay against measurements, in the order of `forecasts.csv`, with what was left
+/// out.
+#[derive(Debug)]
+pub struct ScoredPairs {
+    /// Every scored pair (plant and blocks with pyranometers, horizons after 0).
+    pub pairs: Vec<MeasuredPair>,
+    /// Forecast rows left out, by reason.
+    pub excluded: BTreeMap<String, usize>,
+    /// Values the screening flagged, by column and reason.
+    pub screened: BTreeMap<String, usize>,
+    measurements: Measurements,
+    plant_columns: Vec<usize>,
+}
+
 /// Score a replay's forecasts against a measurements CSV for a site.
 ///
 /// # Errors
 /// Unreadable or malformed files, a measurements file without any of the site's pyranometers.
 pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) -> Result<MeasuredEvaluation, InputError> {
-    let f = &site.file.site;
-    let mut m = Measurements::read_csv(measurements)?;
-    let screen = m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
-    let cols = pyranometer_columns(site, &m, measurements)?;
-    let mut excluded: BTreeMap<String, usize> = BTreeMap::new();
-    let reading = |cs: &[usize], t: &DateTime<Utc>, why: &mut BTreeMap<String, usize>| mean_reading(&m, cs, t, why);
-    let newest = |cs: &[usize], t: &DateTime<Utc>| -> Option<f64> {
-        let v: Vec<f64> = cs.iter().filter_map(|&c| m.completed_at(c, t).map(|x| x.0)).collect();
-        (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64)
-    };
-    let all: Vec<usize> = cols.iter().map(|c| c.0).collect();
-    let fpath = replay_out.join("forecasts.csv");
-    let rows = read_rows(&fpath)?;
-    let num = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
-    let time = |r: &HashMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
-    let (clear_at_issue, members) = issue_tables(&rows, replay_out)?;
+    let sp = scored_pairs(site, replay_out, measurements)?;
     // Sky type per issue time.
     let mut sky_of: HashMap<DateTime<Utc>, &'static str> = HashMap::new();
     // Per horizon: (forecast, measured, persistence, CRPS, inside P10–P90).
     let mut per_h: BTreeMap<u32, Vec<Pair>> = BTreeMap::new();
     let mut by_sky: BTreeMap<String, Vec<(f64, f64, f64)>> = BTreeMap::new();
     let mut by_block: BTreeMap<String, Vec<(f64, f64, f64)>> = BTreeMap::new();
-    for r in &rows {
-        let (Some(issue), Some(target), Some(block)) = (time(r, "issue_time_utc"), time(r, "target_time_utc"), r.get("block")) else { continue };
-        let h = num(r, "horizon_s");
-        if h.is_nan() || h <= 0.0 {
-            continue;
-        }
-        let h = h as u32;
-        let is_plant = block == crate::plant::PLANT_TARGET;
-        let cs: Vec<usize> = if is_plant { all.clone() } else { cols.iter().filter(|c| c.1.as_deref() == Some(block.as_str())).map(|c| c.0).collect() };
-        if cs.is_empty() {
-            continue;
-        }
-        let clear = num(r, "ghi_clear_wm2");
-        if clear.is_nan() || clear < MIN_CLEAR_WM2 {
-            *excluded.entry("sun low (clear-sky GHI < 50 W/m²)".into()).or_default() += 1;
-            continue;
-        }
-        let Some(obs) = reading(&cs, &target, &mut excluded) else {
-            *excluded.entry("no valid reading at the target time".into()).or_default() += 1;
-            continue;
-        };
-        let clear0 = clear_at_issue.get(&(block.clone(), issue)).copied().unwrap_or(f64::NAN);
-        let Some(sp) = newest(&cs, &issue).filter(|_| clear0 >= MIN_CLEAR_WM2).map(|v| v / clear0 * clear) else {
-            *excluded.entry("no reading for smart persistence at the issue time".into()).or_default() += 1;
-            continue;
-        };
-        let fc = num(r, "ghi_wm2");
-        if is_plant {
-            let crps = members.get(&(issue, h)).map(|v| crps_ensemble(v, obs)).unwrap_or(f64::NAN);
-            let inside = (obs >= num(r, "ghi_p10_wm2") && obs <= num(r, "ghi_p90_wm2")) as u8 as f64;
-            per_h.entry(h).or_default().push((fc, obs, sp, crps, inside));
+    for p in &sp.pairs {
+        let h = p.horizon_s;
+        if p.target == crate::plant::PLANT_TARGET {
+            let inside = p.inside() as u8 as f64;
+            per_h.entry(h).or_default().push((p.forecast, p.observed, p.persistence, p.crps.unwrap_or(f64::NAN), inside));
             if (300..=900).contains(&h) {
-                let sky = *sky_of.entry(issue).or_insert_with(|| sky_type_before(site, &m, &all, issue));
-                by_sky.entry(sky.to_string()).or_default().push((fc, obs, sp));
+                let sky = *sky_of.entry(p.issue).or_insert_with(|| sky_type_before(site, &sp.measurements, &sp.plant_columns, p.issue));
+                by_sky.entry(sky.to_string()).or_default().push((p.forecast, p.observed, p.persistence));
             }
         } else if (300..=900).contains(&h) {
-            by_block.entry(block.clone()).or_default().push((fc, obs, sp));
+            by_block.entry(p.target.clone()).or_default().push((p.forecast, p.observed, p.persistence));
         }
     }
     let plant = horizon_scores(per_h);
@@ -198,9 +201,79 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
         by_sky_type: by_sky.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
         issues_by_sky_type,
         by_block: by_block.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
-        excluded,
-        screened: screen.counts(),
+        excluded: sp.excluded,
+        screened: sp.screened,
     })
+}
+
+/// The pairs a replay's forecasts make with a measurements CSV (see the module documentation for
+/// which readings count), in the order of `forecasts.csv`.
+///
+/// # Errors
+/// As [`evaluate_measured`].
+pub fn scored_pairs(site: &Site, replay_out: &Path, measurements: &Path) -> Result<ScoredPairs, InputError> {
+    let f = &site.file.site;
+    let mut m = Measurements::read_csv(measurements)?;
+    let screen = m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
+    let cols = pyranometer_columns(site, &m, measurements)?;
+    let mut excluded: BTreeMap<String, usize> = BTreeMap::new();
+    let all: Vec<usize> = cols.iter().map(|c| c.0).collect();
+    let rows = read_rows(&replay_out.join("forecasts.csv"))?;
+    let (clear_at_issue, members) = issue_tables(&rows, replay_out)?;
+    let mut pairs = vec![];
+    for r in &rows {
+        if let Some(p) = pair_of(r, &m, &cols, &all, &clear_at_issue, &members, &mut excluded) {
+            pairs.push(p);
+        }
+    }
+    Ok(ScoredPairs { pairs, excluded, screened: screen.counts(), measurements: m, plant_columns: all })
+}
+
+/// The pair of one forecast row, or `None` (counted in `excluded` by reason) when it cannot be
+/// scored.
+#[allow(clippy::type_complexity)]
+fn pair_of(
+    r: &HashMap<String, String>,
+    m: &Measurements,
+    cols: &[(usize, Option<String>)],
+    all: &[usize],
+    clear_at_issue: &HashMap<(String, DateTime<Utc>), f64>,
+    members: &HashMap<(DateTime<Utc>, u32), Vec<f64>>,
+    excluded: &mut BTreeMap<String, usize>,
+) -> Option<MeasuredPair> {
+    let num = |k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
+    let time = |k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
+    let (Some(issue), Some(target), Some(block)) = (time("issue_time_utc"), time("target_time_utc"), r.get("block")) else { return None };
+    let h = num("horizon_s");
+    if h.is_nan() || h <= 0.0 {
+        return None;
+    }
+    let h = h as u32;
+    let is_plant = block == crate::plant::PLANT_TARGET;
+    let cs: Vec<usize> = if is_plant { all.to_vec() } else { cols.iter().filter(|c| c.1.as_deref() == Some(block.as_str())).map(|c| c.0).collect() };
+    if cs.is_empty() {
+        return None;
+    }
+    let mut why = |reason: &str| *excluded.entry(reason.into()).or_default() += 1;
+    let clear = num("ghi_clear_wm2");
+    if clear.is_nan() || clear < MIN_CLEAR_WM2 {
+        why("sun low (clear-sky GHI < 50 W/m²)");
+        return None;
+    }
+    let Some(obs) = mean_reading(m, &cs, &target, excluded) else {
+        *excluded.entry("no valid reading at the target time".into()).or_default() += 1;
+        return None;
+    };
+    let newest: Vec<f64> = cs.iter().filter_map(|&c| m.completed_at(c, &issue).map(|x| x.0)).collect();
+    let newest = (!newest.is_empty()).then(|| newest.iter().sum::<f64>() / newest.len() as f64);
+    let clear0 = clear_at_issue.get(&(block.clone(), issue)).copied().unwrap_or(f64::NAN);
+    let Some(sp) = newest.filter(|_| clear0 >= MIN_CLEAR_WM2).map(|v| v / clear0 * clear) else {
+        *excluded.entry("no reading for smart persistence at the issue time".into()).or_default() += 1;
+        return None;
+    };
+    let crps = if is_plant { members.get(&(issue, h)).map(|v| crps_ensemble(v, obs)) } else { None };
+    let band = |k: &str| Some(num(k)).filter(|v| !v.is_nan());
+    Some(MeasuredPair { issue, target: block.clone(), horizon_s: h, forecast: num("ghi_wm2"), observed: obs, persistence: sp, crps, p10: band("ghi_p10_wm2"), p90: band("ghi_p90_wm2") })
 }
 
 /// The sky type of the 30 minutes before `issue`, from the clear-sky index of the mean of the

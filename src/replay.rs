@@ -130,6 +130,19 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
 /// # Errors
 /// As [`replay`].
 pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet), ReplayError> {
+    let (frames, _) = frames_of(&opts.frames)?;
+    let bar = crate::io::progress_bar(frames.len() as u64, opts.progress, "replaying");
+    let r = replay_staged_with(opts, &bar);
+    bar.finish_and_clear();
+    r
+}
+
+/// As [`replay_staged`], advancing a progress bar the caller owns by one per frame (a batch
+/// shows one bar over all its days); `opts.progress` is not used.
+///
+/// # Errors
+/// As [`replay`].
+pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) -> Result<(ReplaySummary, OutputSet), ReplayError> {
     let wall = std::time::Instant::now();
     let (frames, untimed) = frames_of(&opts.frames)?;
     let span = Some((frames[0].time, frames[frames.len() - 1].time));
@@ -137,7 +150,6 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
     let intake = nowcaster.intake_options();
     let mut set = OutputSet::begin(&opts.out, "nephocast replay")?;
     let mut tables = ReplayTables::new();
-    let bar = crate::io::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
     let mut last_cbh = None;
@@ -194,7 +206,6 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
         }
         Ok(())
     })?;
-    bar.finish_and_clear();
     outputs.extend(tables.write(&mut set)?);
     let summary = ReplaySummary {
         frames_found: frames.len(),
@@ -211,7 +222,10 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
 }
 
 /// The timed frames of a folder (at least one) and the count of files without a time.
-fn frames_of(dir: &Path) -> Result<(Vec<crate::io::FrameRef>, usize), ReplayError> {
+///
+/// # Errors
+/// An unreadable folder, or one without timed frames.
+pub fn frames_of(dir: &Path) -> Result<(Vec<crate::io::FrameRef>, usize), ReplayError> {
     let (frames, untimed) = list_frames(dir)?;
     if frames.is_empty() {
         return Err(InputError::Other { file: dir.to_path_buf(), message: format!("no frames: expected image files named {}", crate::io::FRAME_NAME_PATTERN) }.into());

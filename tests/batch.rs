@@ -1,0 +1,335 @@
+//! Batches of days, run as a user (or a cluster) would run the binary: sharded runs plus `merge`
+//! against one run, resume after a kill, the Slurm array script with its variables set by hand,
+//! and the Kubernetes Indexed Job manifest.
+//!
+//! The days are tiny synthetic sequences (128 px, a few minutes of frames, one seed each), made
+//! once per test binary.
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+use std::sync::OnceLock;
+
+use nephocast::synth::{Scene, scene, write_sequence};
+
+const DAYS: usize = 10;
+
+fn bin() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_nephocast"))
+}
+
+struct Fixture {
+    _dir: tempfile::TempDir,
+    root: PathBuf,
+}
+
+impl Fixture {
+    fn days(&self) -> PathBuf {
+        self.root.join("days")
+    }
+    fn site(&self) -> PathBuf {
+        self.days().join("day00").join("site.toml")
+    }
+}
+
+/// Ten days: fast broken cumulus, 4 minutes at a frame every 20 s, 128 px, seeds 1 … 10.
+fn fixture() -> &'static Fixture {
+    static F: OnceLock<Fixture> = OnceLock::new();
+    F.get_or_init(|| {
+        let dir = tempfile::tempdir().unwrap();
+        let root = dir.path().to_path_buf();
+        for i in 0..DAYS {
+            let mut spec = scene("broken-cumulus-fast").unwrap();
+            spec.size_px = 128;
+            spec.duration_min = 4.0;
+            let mut s = Scene::new(spec, i as u64 + 1).unwrap();
+            s.site.map.cells = 64;
+            write_sequence(&s, &root.join("days").join(format!("day{i:02}")), false).unwrap();
+        }
+        Fixture { _dir: dir, root }
+    })
+}
+
+fn ok(o: &Output, what: &str) -> String {
+    assert!(o.status.success(), "{what}: {}\n{}", String::from_utf8_lossy(&o.stderr), String::from_utf8_lossy(&o.stdout));
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+fn batch(f: &Fixture, out: &Path, extra: &[&str]) -> Output {
+    let mut c = bin();
+    c.args(["replay", "--batch", "--quiet", "--site"]).arg(f.site()).arg("--frames").arg(f.days()).arg("--out").arg(out).args(extra);
+    c.output().unwrap()
+}
+
+/// One batch run over all days (made once, shared by the tests).
+fn single_run() -> &'static Path {
+    static OUT: OnceLock<PathBuf> = OnceLock::new();
+    OUT.get_or_init(|| {
+        let f = fixture();
+        let out = f.root.join("single");
+        let text = ok(&batch(f, &out, &[]), "single batch");
+        assert!(text.contains(&format!("{DAYS} replayed")), "{text}");
+        out
+    })
+}
+
+fn read(p: &Path) -> String {
+    std::fs::read_to_string(p).unwrap_or_else(|e| panic!("{}: {e}", p.display()))
+}
+
+fn json(p: &Path) -> serde_json::Value {
+    serde_json::from_str(&read(p)).unwrap()
+}
+
+/// The plant's RMSE at 5 minutes in a `scores.csv`, as its exact bits.
+fn plant_rmse_5min(scores: &Path) -> (u64, u64) {
+    let mut rdr = csv::Reader::from_path(scores).unwrap();
+    for r in rdr.records() {
+        let r = r.unwrap();
+        if &r[0] == "plant" && &r[1] == "300" {
+            return (r[2].parse().unwrap(), r[3].parse::<f64>().unwrap().to_bits());
+        }
+    }
+    panic!("{}: no plant row at 300 s", scores.display());
+}
+
+/// Three shard processes plus `merge` give the single run's sums and scores byte for byte.
+#[test]
+fn shards_and_merge_equal_one_run() {
+    let f = fixture();
+    let single = single_run();
+    let shards: Vec<PathBuf> = (0..3).map(|k| f.root.join(format!("shard-{k}"))).collect();
+    for (k, s) in shards.iter().enumerate() {
+        ok(&batch(f, s, &["--shard", &format!("{k}/3")]), "shard");
+        let meta = json(&s.join("aggregate").join("run.json"));
+        assert_eq!(meta["shard"], format!("{k}/3"));
+        let days: Vec<String> = meta["days"].as_array().unwrap().iter().map(|d| d.as_str().unwrap().to_string()).collect();
+        let expected: Vec<String> = (0..DAYS).filter(|i| i % 3 == k).map(|i| format!("day{i:02}")).collect();
+        assert_eq!(days, expected, "shard {k}/3 takes the days with index mod 3 = {k}");
+    }
+    let merged = f.root.join("merged");
+    let mut c = bin();
+    let text = ok(&c.arg("merge").arg("--out").arg(&merged).args(&shards).output().unwrap(), "merge");
+    assert!(text.contains(&format!("merged {DAYS} days from 3 shard folders")), "{text}");
+    for file in ["stats.csv", "scores.csv", "days.csv"] {
+        assert_eq!(read(&single.join("aggregate").join(file)), read(&merged.join(file)), "{file} differs between one run and the merged shards");
+    }
+    let (n, bits) = plant_rmse_5min(&merged.join("scores.csv"));
+    assert_eq!((n, bits), plant_rmse_5min(&single.join("aggregate").join("scores.csv")));
+    println!("{DAYS} days, 3 shards: merged plant RMSE at 5 min {} W/m² over {n} pairs, bits {bits:016x} as in one run", f64::from_bits(bits));
+    let (a, b) = (json(&single.join("aggregate").join("run.json")), json(&merged.join("run.json")));
+    assert_eq!(a["config_sha256"], b["config_sha256"]);
+    assert_eq!((a["first_frame_utc"].clone(), a["last_frame_utc"].clone()), (b["first_frame_utc"].clone(), b["last_frame_utc"].clone()));
+    assert_eq!(b["kind"], "merge");
+    assert_eq!(b["days"].as_array().unwrap().len(), DAYS);
+    refusals(&shards, &f.root);
+}
+
+/// `merge` refuses shards of other configurations or sharing a day, naming both folders.
+fn refusals(shards: &[PathBuf], root: &Path) {
+    let merge = |dirs: &[&Path]| {
+        let mut c = bin();
+        c.arg("merge").arg("--out").arg(root.join("refused")).args(dirs).output().unwrap()
+    };
+    let o = merge(&[&shards[0], &shards[0]]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{e}");
+    assert!(e.contains("day00 is in both") && e.contains("shard-0"), "{e}");
+    // A copy of shard 1 whose configuration digest differs.
+    let other = root.join("shard-1-other");
+    copy_dir(&shards[1], &other);
+    let meta = other.join("aggregate").join("run.json");
+    let text = read(&meta);
+    let digest = json(&meta)["config_sha256"].as_str().unwrap().to_string();
+    std::fs::write(&meta, text.replace(&digest, &"0".repeat(64))).unwrap();
+    let o = merge(&[&shards[0], &other]);
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{e}");
+    assert!(e.contains("site configurations differ") && e.contains("shard-0") && e.contains("shard-1-other"), "{e}");
+    let o = merge(&[&root.join("days")]);
+    assert!(String::from_utf8_lossy(&o.stderr).contains("not a batch output folder"));
+    assert!(!root.join("refused").exists(), "nothing is written when a merge is refused");
+}
+
+fn copy_dir(from: &Path, to: &Path) {
+    std::fs::create_dir_all(to).unwrap();
+    for e in std::fs::read_dir(from).unwrap() {
+        let p = e.unwrap().path();
+        let t = to.join(p.file_name().unwrap());
+        if p.is_dir() { copy_dir(&p, &t) } else { std::fs::copy(&p, &t).map(|_| ()).unwrap() }
+    }
+}
+
+/// Bad `--shard` values are refused with exit status 2 and a message saying what K/N must be.
+#[test]
+fn bad_shards_are_refused() {
+    let f = fixture();
+    for (spec, says) in [("3/3", "K must be below N"), ("0/0", "N: expected 1"), ("a/2", "K: expected a whole number"), ("2", "expected K/N")] {
+        let o = batch(f, &f.root.join("never"), &["--shard", spec]);
+        let e = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{spec}: {e}");
+        assert!(e.contains(says), "{spec}: {e}");
+    }
+    let o = bin().args(["replay", "--shard", "0/2", "--site", "s", "--frames", "f", "--out", "o"]).output().unwrap();
+    assert!(!o.status.success() && String::from_utf8_lossy(&o.stderr).contains("--batch"));
+}
+
+/// A batch killed inside a day leaves the finished days complete; the next run skips them, redoes
+/// the interrupted day, and every day's sums equal those of an uninterrupted run.
+#[test]
+fn resume_skips_complete_days_and_redoes_the_interrupted_one() {
+    let f = fixture();
+    let list = f.root.join("three-days.txt");
+    std::fs::write(&list, "# three days\ndays/day02\ndays/day00\n\ndays/day01  # a comment\n").unwrap();
+    let out = f.root.join("resumed");
+    let mut child = bin()
+        .args(["replay", "--batch", "--quiet", "--site"])
+        .arg(f.site())
+        .arg("--frames")
+        .arg(&list)
+        .arg("--out")
+        .arg(&out)
+        .env(nephocast::output_set::PAUSE_ENV, "150")
+        .spawn()
+        .unwrap();
+    let days = out.join("days");
+    let t0 = std::time::Instant::now();
+    // Kill once day00 is complete and day01's staging folder exists.
+    loop {
+        let staging = std::fs::read_dir(&days).ok().is_some_and(|d| d.flatten().any(|e| e.file_name().to_string_lossy().starts_with(".day01.staging")));
+        if days.join("day00").join("complete.json").is_file() && staging {
+            break;
+        }
+        assert!(child.try_wait().unwrap().is_none(), "the batch ended before it could be killed");
+        assert!(t0.elapsed().as_secs() < 120, "day01 never started");
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    child.kill().unwrap();
+    child.wait().unwrap();
+    assert!(!days.join("day01").join("complete.json").exists() && !days.join("day02").exists());
+    let day00_meta = read(&days.join("day00").join("run.json"));
+    let mut c = bin();
+    c.args(["replay", "--batch", "--quiet", "--site"]).arg(f.site()).arg("--frames").arg(&list).arg("--out").arg(&out);
+    let text = ok(&c.output().unwrap(), "resumed batch");
+    assert!(text.contains("2 replayed") && text.contains("1 already complete and skipped"), "{text}");
+    assert_eq!(read(&days.join("day00").join("run.json")), day00_meta, "the complete day was not redone");
+    let leftovers: Vec<String> = std::fs::read_dir(&days).unwrap().flatten().map(|e| e.file_name().to_string_lossy().into_owned()).filter(|n| n.starts_with('.')).collect();
+    assert!(leftovers.is_empty(), "left behind: {leftovers:?}");
+    let single = single_run();
+    for d in ["day00", "day01", "day02"] {
+        let a = read(&single.join("days").join(d).join("stats.csv"));
+        assert_eq!(a, read(&days.join(d).join("stats.csv")), "{d}: sums differ from the uninterrupted run");
+        let meta = json(&days.join(d).join("run.json"));
+        assert_eq!(meta["kind"], "day");
+        assert_eq!(meta["nephocast_version"], env!("CARGO_PKG_VERSION"));
+        assert!(meta["first_frame_utc"].as_str().unwrap() < meta["last_frame_utc"].as_str().unwrap());
+        assert!(meta["run_start_utc"].as_str().unwrap() <= meta["run_end_utc"].as_str().unwrap());
+    }
+    // A third run has nothing to do.
+    let text = ok(&c.output().unwrap(), "third batch");
+    assert!(text.contains("0 replayed") && text.contains("3 already complete"), "{text}");
+}
+
+/// A day's scores from its sums agree with `verify::evaluate` on the same replay.
+#[test]
+fn day_scores_agree_with_verify() {
+    let f = fixture();
+    let single = single_run();
+    let day = single.join("days").join("day03");
+    let e = nephocast::verify::evaluate(&f.days().join("day03"), &day).unwrap();
+    let mut rdr = csv::Reader::from_path(day.join("scores.csv")).unwrap();
+    let mut checked = 0;
+    for r in rdr.records() {
+        let r = r.unwrap();
+        if &r[0] != "plant" {
+            continue;
+        }
+        let h: u32 = r[1].parse().unwrap();
+        let Some(v) = e.plant.iter().find(|x| x.horizon_s == h) else { continue };
+        let rmse: f64 = r[3].parse().unwrap();
+        assert_eq!(r[2].parse::<usize>().unwrap(), v.n, "{h} s");
+        assert!((rmse - v.rmse_wm2).abs() <= 1e-9 * v.rmse_wm2.max(1.0), "{h} s: {rmse} against {}", v.rmse_wm2);
+        checked += 1;
+    }
+    assert!(checked >= 5, "{checked} horizons compared");
+    let digest = json(&day.join("run.json"))["config_sha256"].as_str().unwrap().to_string();
+    assert_eq!(digest, nephocast::batch::config_digest(&f.site()).unwrap());
+    assert_eq!(digest.len(), 64);
+}
+
+/// The Slurm array script, run as its tasks with the array variables set by hand (no Slurm
+/// needed), then in its merge mode: the same aggregate as one run. Its submit mode, with a stand-in
+/// `sbatch`, submits the array and a merge job that depends on it.
+#[test]
+fn slurm_array_script_runs_by_hand() {
+    let f = fixture();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("deploy/slurm/replay-array.sh");
+    let out = f.root.join("slurm");
+    let run = |mode: &str, vars: &[(&str, String)]| {
+        let mut c = Command::new("bash");
+        c.arg(&script).arg(mode);
+        c.env("NEPHOCAST_BIN", env!("CARGO_BIN_EXE_nephocast")).env("NEPHOCAST_SITE", f.site()).env("NEPHOCAST_DAYS", f.days()).env("NEPHOCAST_OUT", &out).env("NEPHOCAST_SHARDS", "4");
+        for (k, v) in vars {
+            c.env(k, v);
+        }
+        c.output().unwrap()
+    };
+    for k in 0..4 {
+        // Tasks numbered 1 … 4, as `--array=1-4` would: the shard is the ID less the minimum.
+        let vars = [("SLURM_ARRAY_TASK_ID", (k + 1).to_string()), ("SLURM_ARRAY_TASK_MIN", "1".to_string()), ("SLURM_ARRAY_TASK_COUNT", "4".to_string())];
+        ok(&run("task", &vars), "slurm task");
+        assert_eq!(json(&out.join(format!("shard-{k}")).join("aggregate").join("run.json"))["shard"], format!("{k}/4"));
+    }
+    ok(&run("merge", &[]), "slurm merge");
+    let single = single_run();
+    assert_eq!(read(&single.join("aggregate").join("scores.csv")), read(&out.join("merged").join("scores.csv")));
+    // Submit with a stand-in sbatch that logs its arguments.
+    let fake = f.root.join("fake-slurm");
+    std::fs::create_dir_all(&fake).unwrap();
+    let log = fake.join("sbatch.log");
+    std::fs::write(fake.join("sbatch"), format!("#!/bin/sh\necho \"$@\" >> {}\necho 4242\n", log.display())).unwrap();
+    std::process::Command::new("chmod").arg("+x").arg(fake.join("sbatch")).status().unwrap();
+    let path = format!("{}:{}", fake.display(), std::env::var("PATH").unwrap_or_default());
+    ok(&run("submit", &[("PATH", path)]), "slurm submit");
+    let calls = read(&log);
+    let lines: Vec<&str> = calls.lines().collect();
+    assert_eq!(lines.len(), 2, "{calls}");
+    assert!(lines[0].contains("--array=0-3") && lines[0].ends_with("task"), "{calls}");
+    assert!(lines[1].contains("--dependency=afterok:4242") && lines[1].ends_with("merge"), "{calls}");
+}
+
+/// The Kubernetes manifests: an Indexed Job whose pods run shard `JOB_COMPLETION_INDEX` of as many
+/// shards as completions, and a merge job over exactly those shard folders.
+#[test]
+fn k8s_indexed_job_manifest() {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("deploy/k8s");
+    let job: serde_yaml::Value = serde_yaml::from_str(&read(&dir.join("replay-indexed-job.yaml"))).unwrap();
+    assert_eq!(job["apiVersion"].as_str(), Some("batch/v1"));
+    assert_eq!(job["kind"].as_str(), Some("Job"));
+    let spec = &job["spec"];
+    assert_eq!(spec["completionMode"].as_str(), Some("Indexed"));
+    let completions = spec["completions"].as_u64().unwrap();
+    let parallelism = spec["parallelism"].as_u64().unwrap();
+    assert!(completions >= 1 && (1..=completions).contains(&parallelism), "{completions} completions, {parallelism} parallel");
+    let pod = &spec["template"]["spec"];
+    assert_eq!(pod["restartPolicy"].as_str(), Some("Never"));
+    let c = &pod["containers"][0];
+    let env = c["env"].as_sequence().unwrap();
+    let shards = env.iter().find(|e| e["name"].as_str() == Some("NEPHOCAST_SHARDS")).unwrap()["value"].as_str().unwrap();
+    assert_eq!(shards.parse::<u64>().unwrap(), completions, "NEPHOCAST_SHARDS must equal completions");
+    let cmd: Vec<&str> = c["command"].as_sequence().unwrap().iter().chain(c["args"].as_sequence().unwrap()).map(|v| v.as_str().unwrap()).collect();
+    let line = cmd.join(" ");
+    for part in ["replay --batch", "--shard \"${JOB_COMPLETION_INDEX}/${NEPHOCAST_SHARDS}\"", "--out \"/data/replay/shard-${JOB_COMPLETION_INDEX}\""] {
+        assert!(line.contains(part), "command lacks {part}: {line}");
+    }
+    // The command line parses as the binary's own arguments once the shell has filled in the index.
+    let filled = line.replace("${JOB_COMPLETION_INDEX}", "2").replace("${NEPHOCAST_SHARDS}", shards).replace('"', "");
+    let args: Vec<&str> = filled.split_whitespace().skip_while(|w| *w != "nephocast").collect();
+    let parsed = <nephocast::cli::Cli as clap::Parser>::try_parse_from(&args);
+    assert!(parsed.is_ok(), "{args:?}: {:?}", parsed.err());
+    let merge: serde_yaml::Value = serde_yaml::from_str(&read(&dir.join("merge-job.yaml"))).unwrap();
+    let m = merge["spec"]["template"]["spec"]["containers"][0]["args"][0].as_str().unwrap();
+    for k in 0..completions {
+        assert!(m.contains(&format!("/data/replay/shard-{k} ")) || m.ends_with(&format!("/data/replay/shard-{k}")), "merge lacks shard {k}: {m}");
+    }
+    assert!(!m.contains(&format!("shard-{completions}")));
+}
