@@ -1105,5 +1105,6 @@ fn cmd_sun(a: SunArgs) -> Result<()> {
 
 /// Exit status for an error: 2 for bad input (files, arguments, data), 1 for anything else.
 pub fn exit_status(e: &anyhow::Error) -> u8 {
-    if e.downcast_ref::<std::io::Error>().is_some() { 1 } else { 2 }
+    let system = e.downcast_ref::<std::io::Error>().is_some() || e.downcast_ref::<crate::serve::ServeError>().is_some_and(crate::serve::ServeError::is_system);
+    if system { 1 } else { 2 }
 }

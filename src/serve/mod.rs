@@ -28,6 +28,7 @@
 //! Forecasts and alarms are advisory, not a protection system.
 
 pub mod db;
+mod error;
 pub mod guard;
 pub mod http;
 pub mod modbus;
@@ -35,6 +36,7 @@ mod net;
 pub mod notify;
 pub mod ops;
 
+pub use error::ServeError;
 pub use http::{ServerOptions, TlsFiles};
 
 use std::collections::{BTreeMap, HashMap, HashSet, VecDeque};
@@ -330,16 +332,13 @@ fn pct(v: &VecDeque<f64>, p: f64) -> Option<f64> {
 
 /// Check the server options and the address: a non-loopback address needs an acknowledgement
 /// token or `allow_non_loopback`, and is served with a warning. Returns the warnings.
-fn exposure_warnings(opts: &LiveOptions) -> anyhow::Result<Vec<String>> {
-    opts.server.validate().map_err(|e| anyhow::anyhow!("server options: {e}"))?;
-    opts.health.validate().map_err(|e| anyhow::anyhow!("{e}"))?;
+fn exposure_warnings(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
+    opts.server.validate().map_err(ServeError::ServerOptions)?;
+    opts.health.validate().map_err(ServeError::HealthOptions)?;
     let mut w = vec![];
     if !opts.bind.ip().is_loopback() {
         if opts.ack_token.is_none() && !opts.server.allow_non_loopback {
-            anyhow::bail!(
-                "--bind {}: a non-loopback address is refused without an acknowledgement token (--ack-token-file or NEPHOCAST_ACK_TOKEN); add --allow-non-loopback to serve it anyway",
-                opts.bind
-            );
+            return Err(ServeError::NonLoopback(opts.bind));
         }
         w.push(format!(
             "serving on the non-loopback address {}{}: anyone who reaches it sees the forecasts and alarms{}",
@@ -416,7 +415,7 @@ pub const ACK_BODY_MAX_BYTES: usize = 4096;
 /// # Errors
 /// Bad site files, an unusable database, an address that cannot be bound, a non-loopback address
 /// without a token (unless allowed), bad server options or TLS files.
-pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
+pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
     let mut warnings = exposure_warnings(&opts)?;
     let tls = http::tls_acceptor(opts.server.tls.as_ref())?;
     let is_tls = tls.is_some();
@@ -424,8 +423,9 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
     warnings.extend(lowered);
     let mut nowcaster = Nowcaster::open(&opts.site, None, None)?;
     std::fs::create_dir_all(&opts.incoming)?;
-    let conn = db::open(&opts.db).map_err(|e| anyhow::anyhow!("{}: {e}", opts.db.display()))?;
-    if let Some(s) = db::last_state(&conn)? {
+    let database = |error| ServeError::Database { path: opts.db.clone(), error };
+    let conn = db::open(&opts.db).map_err(database)?;
+    if let Some(s) = db::last_state(&conn).map_err(database)? {
         nowcaster.restore_alarm(s);
     }
     let feed = Arc::new(modbus::Feed::new(modbus::targets_of(&nowcaster.site().file)));
@@ -440,7 +440,7 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
     };
     let shared = Arc::new(Mutex::new(Shared::default()));
     {
-        let mut s = shared.lock().map_err(|_| anyhow::anyhow!("state lock"))?;
+        let mut s = shared.lock().map_err(|_| ServeError::StateLock)?;
         s.health.alarm = nowcaster.alarm_state().name().into();
         s.ops.options = opts.health.clone();
         s.refresh_health(false);
@@ -473,7 +473,7 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
         rt.shutdown_timeout(std::time::Duration::from_secs(1));
     });
     let notifier = match opts.server.webhook.clone() {
-        Some(w) => Some(notify::Notifier::start(w).map_err(|e| anyhow::anyhow!("{e}"))?),
+        Some(w) => Some(notify::Notifier::start(w).map_err(ServeError::Webhook)?),
         None => None,
     };
     let (stop2, stop3, shared3, tx3, log_json) = (stop.clone(), stop.clone(), shared.clone(), tx.clone(), opts.health.log_json);
@@ -490,12 +490,12 @@ pub fn start(opts: LiveOptions) -> anyhow::Result<LiveHandle> {
 /// # Errors
 /// The first problem found, naming the file or option (never an I/O error type, so the command
 /// exits with status 2).
-pub fn check(opts: &LiveOptions) -> anyhow::Result<Vec<String>> {
+pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
     let mut out = vec![];
     for w in exposure_warnings(opts)? {
         out.push(format!("warning: {w}"));
     }
-    let nc = Nowcaster::open(&opts.site, None, None).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let nc = Nowcaster::open(&opts.site, None, None)?;
     let f = &nc.site().file;
     out.push(format!(
         "site {}: {} block(s), {} pyranometer(s), camera {}x{} px",
@@ -506,15 +506,15 @@ pub fn check(opts: &LiveOptions) -> anyhow::Result<Vec<String>> {
         nc.site().camera.height_px
     ));
     if let Some(m) = &opts.health.measurements {
-        out.push(ops::check_feed(m).map_err(|e| anyhow::anyhow!("{e}"))?);
+        out.push(ops::check_feed(m).map_err(ServeError::Feed)?);
         if f.pyranometers.is_empty() {
             out.push("warning: the site names no pyranometers: the measurement feed is read but not used for tuning".into());
         }
     }
-    let dir_ok = |what: &str, p: &std::path::Path| -> anyhow::Result<()> {
+    let dir_ok = |option: &'static str, p: &std::path::Path| -> Result<(), ServeError> {
         let parent = if p.is_dir() { p } else { p.parent().filter(|x| !x.as_os_str().is_empty()).unwrap_or(std::path::Path::new(".")) };
         if !parent.is_dir() {
-            anyhow::bail!("{what} {}: the folder {} does not exist", p.display(), parent.display());
+            return Err(ServeError::MissingFolder { option, path: p.to_path_buf(), folder: parent.to_path_buf() });
         }
         Ok(())
     };

@@ -517,9 +517,9 @@ impl Drop for ModbusServer {
 ///
 /// # Errors
 /// Refused options ([`ModbusOptions::check`]) or an address that cannot be bound.
-pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> anyhow::Result<(ModbusServer, Vec<String>)> {
-    let warnings = opts.check().map_err(|e| anyhow::anyhow!(e))?;
-    let std_listener = super::net::listen(opts.bind).map_err(|e| anyhow::anyhow!("--modbus-bind {}: {e}", opts.bind))?;
+pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> Result<(ModbusServer, Vec<String>), super::ServeError> {
+    let warnings = opts.check().map_err(super::ServeError::ModbusOptions)?;
+    let std_listener = super::net::listen(opts.bind).map_err(|error| super::ServeError::ModbusBind { addr: opts.bind, error })?;
     std_listener.set_nonblocking(true)?;
     let addr = std_listener.local_addr()?;
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();
