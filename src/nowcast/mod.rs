@@ -2,7 +2,6 @@
 //! and live mode all call it; its state (the previous map, the motion filter, the learned clear-sky
 //! reference, the look-up tables, the transmittance tuning) lives in it.
 
-use std::sync::Arc;
 use std::time::Instant as Clock;
 
 use chrono::{DateTime, Utc};
@@ -11,278 +10,18 @@ use crate::cloudmap::CloudMap;
 use crate::config::Site;
 use crate::forecast::{Advection, Band, Forecast, ForecastInput, IrradianceParams, ensemble_with, forecast_with, horizon_skies, quantile_sorted, sun_ray_plane_point};
 use crate::io::{InputError, Measurements, Series, fmt_time};
-use crate::motion::{MotionMeasurement, Motion, TrackedLayer};
+use crate::motion::TrackedLayer;
 use crate::plant::Plant;
 use crate::segment::{Class, Reference};
 use crate::sun::{SunPosition, position};
 use stages::{MapStage, MotionStage, check_exposure, layer_tables};
+use tuner::Tuner;
 
 mod stages;
+mod tuner;
+mod types;
 
-/// A decoded frame.
-#[derive(Debug, Clone)]
-pub struct Frame {
-    /// Capture time (UTC).
-    pub time: DateTime<Utc>,
-    /// Pixels.
-    pub image: image::RgbImage,
-}
-
-/// Why the engine could not be set up.
-#[derive(Debug, thiserror::Error)]
-pub enum SetupError {
-    /// The site or calibration file is bad.
-    #[error(transparent)]
-    Config(#[from] crate::config::ConfigError),
-    /// A series or measurements file is bad.
-    #[error(transparent)]
-    Input(#[from] crate::io::InputError),
-}
-
-/// Why a frame was not used.
-#[derive(Debug, Clone, PartialEq, thiserror::Error)]
-pub enum Rejection {
-    /// The file could not be decoded.
-    #[error("unreadable: {0}")]
-    Unreadable(String),
-    /// The image size differs from the calibration's.
-    #[error("wrong size: {got_w}x{got_h} px, calibration says {want_w}x{want_h}")]
-    WrongSize {
-        /// Width found.
-        got_w: u32,
-        /// Height found.
-        got_h: u32,
-        /// Width expected.
-        want_w: u32,
-        /// Height expected.
-        want_h: u32,
-    },
-    /// Same time as the previous frame.
-    #[error("duplicated time")]
-    Duplicate,
-    /// Earlier than the previous frame.
-    #[error("out of order in time")]
-    OutOfOrder,
-    /// The sun is too low.
-    #[error("sun elevation {0:.1}° below the limit")]
-    SunTooLow(f64),
-    /// Too dark.
-    #[error("under-exposed (mean level {0:.0})")]
-    UnderExposed(f64),
-    /// Too bright.
-    #[error("over-exposed (mean level {0:.0}, saturated share {1:.2})")]
-    OverExposed(f64, f64),
-    /// No cloud base height for the frame's time.
-    #[error("no cloud base height for this time (the series does not cover it)")]
-    NoCloudBase,
-    /// Refused at intake ([`crate::intake`]): special file, too large, incomplete, corrupt.
-    #[error("{0}")]
-    Intake(crate::intake::IntakeError),
-    /// The frame's time is ahead of the system clock by more than the tolerance.
-    #[error("time {ahead_s:.0} s ahead of the system clock (tolerance {tolerance_s:.0} s)")]
-    AheadOfClock {
-        /// How far ahead \[s\].
-        ahead_s: f64,
-        /// The tolerance `qc.max_ahead_of_clock_s` \[s\].
-        tolerance_s: f64,
-    },
-}
-
-impl Rejection {
-    /// A short code for CSV files.
-    pub fn code(&self) -> &'static str {
-        match self {
-            Rejection::Unreadable(_) => "unreadable",
-            Rejection::WrongSize { .. } => "wrong_size",
-            Rejection::Duplicate => "duplicate",
-            Rejection::OutOfOrder => "out_of_order",
-            Rejection::SunTooLow(_) => "sun_too_low",
-            Rejection::UnderExposed(_) => "under_exposed",
-            Rejection::OverExposed(..) => "over_exposed",
-            Rejection::NoCloudBase => "no_cloud_base",
-            Rejection::Intake(e) => e.code(),
-            Rejection::AheadOfClock { .. } => "ahead_of_clock",
-        }
-    }
-}
-
-/// Time spent in each stage of a step \[ms\].
-#[derive(Debug, Clone, Copy, Default, PartialEq)]
-pub struct StageTimes {
-    /// Quality control.
-    pub qc_ms: f64,
-    /// Cloud map (sampling + segmentation).
-    pub map_ms: f64,
-    /// Motion.
-    pub motion_ms: f64,
-    /// Central forecast, ramps and alarm.
-    pub forecast_ms: f64,
-    /// Ensemble members, bands and ramp events (their probabilities come from the members).
-    pub ensemble_ms: f64,
-}
-
-/// The result of one frame.
-#[derive(Debug, Clone)]
-pub struct Nowcast {
-    /// Frame time.
-    pub time: DateTime<Utc>,
-    /// Seconds since the previous used frame.
-    pub dt_s: Option<f64>,
-    /// Baseline of the motion measurement \[s\] (the earlier map's age).
-    pub baseline_s: Option<f64>,
-    /// Sun at the frame time.
-    pub sun: SunPosition,
-    /// Height of the cloud map's plane \[m\] (configured value or ceilometer series).
-    pub cbh_m: f64,
-    /// The cloud base height the forecast used (all estimates combined), its uncertainty and source.
-    pub cbh: crate::cbh::CbhEstimate,
-    /// Cloud fraction of the map within the configured zenith.
-    pub cloud_fraction: f64,
-    /// The cloud map.
-    pub map: Arc<CloudMap>,
-    /// Motion measured against the previous map.
-    pub measurement: Option<MotionMeasurement>,
-    /// Filtered motion of the forecast's first (most opaque) layer.
-    pub motion: Option<Motion>,
-    /// Every layer the forecast advected, the most opaque first.
-    pub layers: Vec<TrackedLayer>,
-    /// The forecast.
-    pub forecast: Forecast,
-    /// P10 / P50 / P90 per forecast row (empty without an ensemble).
-    pub bands: Vec<Band>,
-    /// Plant-mean GHI of every ensemble member, per horizon \[W m⁻²\] (for CRPS).
-    pub plant_members_ghi_wm2: Vec<Vec<f64>>,
-    /// Ramp events of this forecast.
-    pub ramps: Vec<crate::ramp::RampEvent>,
-    /// Alarm state after this frame.
-    pub alarm: crate::ramp::AlarmState,
-    /// The alarm change this frame caused, if any.
-    pub alarm_change: Option<crate::ramp::AlarmChange>,
-    /// Why the alarm is in its state (cites the ramp behind it).
-    pub alarm_reason: String,
-    /// The ramp behind the alarm state, if any.
-    pub alarm_basis: Option<crate::ramp::AlarmBasis>,
-    /// Transmittance settings used (after tuning).
-    pub irradiance: IrradianceParams,
-    /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
-    /// until calibrated; see [`crate::forecast::BandWidening`]).
-    pub band_scale: [f64; 3],
-    /// Stage timings.
-    pub times: StageTimes,
-}
-
-/// Counters over a run.
-#[derive(Debug, Clone, Default, PartialEq)]
-pub struct Counters {
-    /// Frames used.
-    pub used: usize,
-    /// Frames rejected, by reason code.
-    pub rejected: std::collections::BTreeMap<String, usize>,
-    /// Times the newest accepted time was dropped because the system clock fell behind it by more
-    /// than the tolerance ([`Nowcaster::judge_clock`]).
-    pub clock_reanchors: usize,
-    /// Measurement values flagged and left out when the measurements were read, by
-    /// `"<column> <reason>"` ([`crate::io::Measurements::screen`]).
-    pub measurements_flagged: std::collections::BTreeMap<String, usize>,
-}
-
-/// Tuning of beam transmittances and diffuse gain from pyranometer readings (ridge regression toward
-/// the configured values over a sliding window).
-#[derive(Debug, Clone, Default)]
-struct Tuner {
-    rows: std::collections::VecDeque<([f64; TUNED], f64)>,
-    /// Time of each row.
-    times: std::collections::VecDeque<DateTime<Utc>>,
-}
-
-impl Tuner {
-    const WINDOW: usize = 400;
-    const PRIOR_WEIGHT: f64 = 4.0;
-    /// Each unknown's prior weight relative to `PRIOR_WEIGHT`, in proportion to the usual size of
-    /// its regressor: the brightness feature is a few hundredths where class shares are near 1.
-    const PRIOR_SCALE: [f64; TUNED] = [1.0, 1.0, 1.0, 0.05, 1.0];
-    const IRLS_ITERATIONS: usize = 6;
-
-    fn push(&mut self, t: DateTime<Utc>, x: [f64; TUNED], y: f64, max_age_s: f64) {
-        self.rows.push_back((x, y));
-        self.times.push_back(t);
-        // At most WINDOW rows, none older than `max_age_s` (an overcast that thins must be
-        // followed), but never fewer than the 20 a solve needs.
-        while self.rows.len() > Self::WINDOW
-            || (self.rows.len() > 20 && self.times.front().map(|t0| (t - *t0).num_milliseconds() as f64 / 1000.0 > max_age_s).unwrap_or(false))
-        {
-            self.rows.pop_front();
-            self.times.pop_front();
-        }
-    }
-
-    fn solve(&self, prior: &IrradianceParams) -> Option<IrradianceParams> {
-        if self.rows.len() < 20 {
-            return None;
-        }
-        // Unknowns: beam_clear, beam_thin, beam_thick, beam_cloud_brightness, diffuse_per_cover.
-        // Rows are scaled to W/m² of clear-sky GHI so every frame weighs alike.
-        let p0 = [prior.beam_clear, prior.beam_thin, prior.beam_thick, prior.beam_cloud_brightness, prior.diffuse_per_cover];
-        let n = self.rows.len() + TUNED;
-        // Huber weights by iteratively reweighted least squares: rows whose reading the look-up
-        // misplaces (a cloud edge a few cells off: the map says thick while the pyranometer is in
-        // sun) are outliers that, unweighted, pulled the thick transmittance up and the clear one
-        // down (0.2–0.3 and ~0.87 on the synthetic scenes), flattening every forecast ramp.
-        let huber = prior.tune_robust_scale;
-        let mut w = vec![1.0f64; self.rows.len()];
-        let mut sol = nalgebra::DVector::<f64>::from_row_slice(&p0);
-        for _ in 0..if huber > 0.0 { Self::IRLS_ITERATIONS } else { 1 } {
-            let mut a = nalgebra::DMatrix::<f64>::zeros(n, TUNED);
-            let mut b = nalgebra::DVector::<f64>::zeros(n);
-            for (r, (x, y)) in self.rows.iter().enumerate() {
-                let sw = w[r].sqrt();
-                for c in 0..TUNED {
-                    a[(r, c)] = sw * x[c];
-                }
-                b[r] = sw * *y;
-            }
-            for c in 0..TUNED {
-                let r = self.rows.len() + c;
-                a[(r, c)] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c];
-                b[r] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c] * p0[c];
-            }
-            sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
-            for (r, (x, y)) in self.rows.iter().enumerate() {
-                let res = (y - (0..TUNED).map(|c| x[c] * sol[c]).sum::<f64>()).abs();
-                w[r] = if res > huber { huber / res } else { 1.0 };
-            }
-        }
-        // The robust fit follows the typical reading; under broken overcast the misplaced ones are
-        // skewed (a sensor in a gap reads far above the fit, one under cloud a little below), so
-        // the fit runs biased. The diffuse gain, which adds the same to every point, takes up the
-        // window's mean residual, so the current state is unbiased over the window.
-        if huber > 0.0 {
-            let (mut res, mut res2, mut cover) = (0.0, 0.0, 0.0);
-            for (x, y) in &self.rows {
-                let e = y - (0..TUNED).map(|c| x[c] * sol[c]).sum::<f64>();
-                res += e;
-                res2 += e * e;
-                cover += x[TUNED - 1];
-            }
-            // Only a bias the window clearly shows (beyond 2 standard errors of its mean).
-            let n = self.rows.len() as f64;
-            let se = ((res2 / n - (res / n).powi(2)).max(0.0) / n).sqrt();
-            if cover > 0.05 * n && (res / n).abs() > 2.0 * se {
-                sol[TUNED - 1] += res / cover;
-            }
-        }
-        let mut p = *prior;
-        p.beam_clear = sol[0].clamp(0.8, 1.25);
-        p.beam_thin = sol[1].clamp(0.05, 0.95);
-        p.beam_thick = sol[2].clamp(0.0, 0.5);
-        p.beam_cloud_brightness = sol[3].clamp(-3.0, 3.0);
-        p.diffuse_per_cover = sol[4].clamp(0.0, 0.8);
-        Some(p)
-    }
-}
-
-/// Unknowns of the transmittance tuning: the four table coefficients and the diffuse gain.
-const TUNED: usize = 5;
+pub use types::{Counters, Frame, Nowcast, Rejection, SetupError, StageTimes};
 
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
 type PyranometerColumn = (usize, [f64; 2]);
@@ -574,7 +313,7 @@ impl Nowcaster {
 
     /// Pyranometer readings the transmittance tuning holds now.
     pub fn tuning_rows(&self) -> usize {
-        self.tuner.rows.len()
+        self.tuner.len()
     }
 
     /// The measurements held: rows, and the end of the newest row's averaging period.
@@ -589,7 +328,7 @@ impl Nowcaster {
     /// transmittances (live mode calls this when the measurement feed has stopped). Returns whether
     /// anything was forgotten.
     pub fn reset_tuning(&mut self) -> bool {
-        let tuned = !self.tuner.rows.is_empty();
+        let tuned = !self.tuner.is_empty();
         self.tuner = Tuner::default();
         self.irradiance = self.site.file.irradiance;
         tuned
@@ -926,7 +665,6 @@ impl Nowcaster {
             self.irradiance = p;
         }
     }
-
 }
 
 #[cfg(test)]
@@ -964,56 +702,5 @@ mod tests {
         nc.last_time = Some(t("2026-06-14T09:01:00Z"));
         assert_eq!(nc.judge_clock(t("2026-06-14T09:00:30Z"), back), Ok(None));
         assert_eq!(nc.counters.clock_reanchors, 1);
-    }
-
-    /// Readings misplaced by the look-up (the map says thick cloud on the sun ray while the
-    /// pyranometer is in sun) must not drag the tuned thick-cloud transmittance up: with Huber
-    /// weights it stays near the truth, with plain least squares it does not.
-    #[test]
-    fn robust_tuning_resists_misplaced_readings() {
-        let truth = [0.95, 0.45, 0.05, 0.0, 0.3];
-        let prior = IrradianceParams { beam_clear: 1.0, beam_thin: 0.45, beam_thick: 0.03, diffuse_per_cover: 0.25, ..Default::default() };
-        let mut t = Tuner::default();
-        for i in 0..300 {
-            let beam = 0.85;
-            let cover = 0.2 + 0.4 * ((i * 7 % 11) as f64 / 10.0);
-            // Class shares on the sun ray cycle through clear, thin and thick.
-            let share = match i % 3 {
-                0 => [1.0, 0.0, 0.0],
-                1 => [0.0, 1.0, 0.0],
-                _ => [0.0, 0.0, 1.0],
-            };
-            let x = [beam * share[0], beam * share[1], beam * share[2], 0.0, cover];
-            let mut y: f64 = (0..TUNED).map(|c| x[c] * truth[c]).sum();
-            // One thick reading in four is misplaced: the sensor is in sun.
-            if i % 3 == 2 && i % 4 == 0 {
-                y = beam * truth[0] + cover * truth[4];
-            }
-            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, y, 1e9);
-        }
-        let robust = t.solve(&IrradianceParams { tune_robust_scale: 0.05, ..prior }).unwrap();
-        let plain = t.solve(&IrradianceParams { tune_robust_scale: 0.0, ..prior }).unwrap();
-        assert!((robust.beam_thick - truth[2]).abs() < 0.03, "robust beam_thick {}", robust.beam_thick);
-        assert!(plain.beam_thick > truth[2] + 0.1, "plain least squares should be pulled up: {}", plain.beam_thick);
-        assert!((robust.beam_clear - truth[0]).abs() < 0.03, "robust beam_clear {}", robust.beam_clear);
-    }
-
-    /// Where darker cloud passes less light, the tuning learns the brightness coefficient from a
-    /// window of readings, despite a prior of 0 (ridge shrinkage keeps it somewhat short).
-    #[test]
-    fn tuning_learns_the_brightness_coefficient() {
-        let truth = [1.0, 0.4, 0.05, 1.5, 0.2];
-        let mut t = Tuner::default();
-        for i in 0..90 {
-            let beam = 0.8;
-            let thin = (i % 2) as f64;
-            let bright = 0.12 * (((i * 5) % 7) as f64 / 3.0 - 1.0);
-            let x = [beam * (1.0 - thin), beam * thin, 0.0, beam * thin * bright, 0.6];
-            let y: f64 = (0..TUNED).map(|c| x[c] * truth[c]).sum();
-            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i * 10), x, y, 1e9);
-        }
-        let p = t.solve(&IrradianceParams::default()).unwrap();
-        assert!((p.beam_cloud_brightness - truth[3]).abs() < 0.4, "beam_cloud_brightness {}", p.beam_cloud_brightness);
-        assert!((p.beam_thin - truth[1]).abs() < 0.03, "beam_thin {}", p.beam_thin);
     }
 }
