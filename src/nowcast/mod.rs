@@ -8,15 +8,15 @@ use chrono::{DateTime, Utc};
 
 use crate::cloudmap::CloudMap;
 use crate::config::Site;
-use crate::forecast::{Advection, Band, Forecast, ForecastInput, IrradianceParams, ensemble_with, forecast_with, horizon_skies, quantile_sorted, sun_ray_plane_point};
+use crate::forecast::{Forecast, forecast_with, horizon_skies};
 use crate::io::{InputError, Measurements, Series, fmt_time};
-use crate::motion::TrackedLayer;
 use crate::plant::Plant;
-use crate::segment::{Class, Reference};
+use crate::segment::Reference;
 use crate::sun::{SunPosition, position};
 use stages::{MapStage, MotionStage, check_exposure, layer_tables};
-use tuner::Tuner;
+use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
+mod forecast_stages;
 mod stages;
 mod tuner;
 mod types;
@@ -25,6 +25,9 @@ pub use types::{Counters, Frame, Nowcast, Rejection, SetupError, StageTimes};
 
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
 type PyranometerColumn = (usize, [f64; 2]);
+
+/// The measurements with the pyranometers' columns in them.
+type Pyranometers = (Measurements, Vec<PyranometerColumn>);
 
 /// The cells' sun angles are recomputed when the sun has moved more than this \[°\].
 const SUN_ANGLE_REUSE_DEG: f32 = 0.25;
@@ -37,12 +40,10 @@ pub struct Nowcaster {
     motion_stage: MotionStage,
     last_time: Option<DateTime<Utc>>,
     cbh_series: Option<Series>,
-    measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
-    tuner: Tuner,
+    measurements: Option<Pyranometers>,
     cbh_state: crate::cbh::CbhState,
-    band_widening: crate::forecast::BandWidening,
-    blend: crate::forecast::PersistenceBlend,
-    irradiance: IrradianceParams,
+    forecast_stage: ForecastStage,
+    ensemble_stage: EnsembleStage,
     alarm: crate::ramp::Alarm,
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
     /// The camera for frames decoded at reduced scale ([`crate::intake`]).
@@ -56,7 +57,7 @@ impl Nowcaster {
     /// optional measurements for transmittance tuning.
     pub fn new(site: Site, cbh_series: Option<Series>, measurements: Option<Measurements>) -> Nowcaster {
         let plant = Plant::from_section(&site.file.plant);
-        let irradiance = site.file.irradiance;
+        let forecast_stage = ForecastStage::new(site.file.irradiance);
         let measurements = measurements.and_then(|m| {
             let cols: Vec<(usize, [f64; 2])> = site
                 .file
@@ -78,11 +79,9 @@ impl Nowcaster {
             last_time: None,
             cbh_series,
             measurements,
-            tuner: Tuner::default(),
             cbh_state,
-            band_widening: Default::default(),
-            blend: Default::default(),
-            irradiance,
+            forecast_stage,
+            ensemble_stage: EnsembleStage::default(),
             alarm: Default::default(),
             image_geometry: std::sync::OnceLock::new(),
             reduced,
@@ -313,7 +312,7 @@ impl Nowcaster {
 
     /// Pyranometer readings the transmittance tuning holds now.
     pub fn tuning_rows(&self) -> usize {
-        self.tuner.len()
+        self.forecast_stage.tuning_rows()
     }
 
     /// The measurements held: rows, and the end of the newest row's averaging period.
@@ -328,17 +327,7 @@ impl Nowcaster {
     /// transmittances (live mode calls this when the measurement feed has stopped). Returns whether
     /// anything was forgotten.
     pub fn reset_tuning(&mut self) -> bool {
-        let tuned = !self.tuner.is_empty();
-        self.tuner = Tuner::default();
-        self.irradiance = self.site.file.irradiance;
-        tuned
-    }
-
-    /// A weather value from the measurements CSV at a time (column `temp_air_c` or `wind_speed_mps`).
-    fn weather(&self, t: &DateTime<Utc>, column: &str) -> Option<f64> {
-        let (m, _) = self.measurements.as_ref()?;
-        let v = m.at(m.column(column)?, t);
-        v.is_finite().then_some(v)
+        self.forecast_stage.reset(self.site.file.irradiance)
     }
 
     /// Cloud base height above ground at a time \[m\].
@@ -352,8 +341,12 @@ impl Nowcaster {
 
     /// Horizons \[s\] from the site's forecast settings.
     pub fn horizons_s(&self) -> Vec<u32> {
-        let f = &self.site.file.forecast;
-        (0..=f.horizon_min * 60).step_by(f.step_s as usize).collect()
+        self.inputs().horizons_s()
+    }
+
+    /// What the forecast and ensemble stages read of the engine.
+    fn inputs(&self) -> SiteInputs<'_> {
+        SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() }
     }
 
     /// Process one frame.
@@ -389,18 +382,14 @@ impl Nowcaster {
         let t_motion = Clock::now();
         let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
         let cbh_factor = cbh_est.cbh_m / cbh;
-        if self.irradiance.tune_from_measurements {
-            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
-        }
-        let input = self.forecast_input(&frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
+        let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() };
+        self.forecast_stage.tune(cx, &frame.time, &sun, &map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
+        let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
         let tms = layer_tables(&map, &moved, &input.params);
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
-        let (members, mut bands) =
-            if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
-        self.widen_bands(&frame.time, &fc, &members, &mut bands);
-        self.blend_with_persistence(&frame.time, &mut fc, &mut bands);
+        let (members, bands) = self.ensemble_stage.run(cx, self.forecast_stage.params(), &frame.time, &tms, map.grid, &input, &skies, &mut fc);
         let (ramps, plant_members_ghi_wm2) = self.ramps_of(&frame.time, &fc, &members);
         let t_ens = Clock::now();
         let alarm_change = self.alarm.update(&frame.time, &ramps, self.motion_stage.tracker.primary_accepted_run(), &self.site.file.ramps);
@@ -428,8 +417,8 @@ impl Nowcaster {
             alarm_change,
             alarm_reason: self.alarm.reason().to_string(),
             alarm_basis: self.alarm.basis().cloned(),
-            irradiance: self.irradiance,
-            band_scale: [300, 600, 900].map(|h| self.band_widening.scale(h)),
+            irradiance: *self.forecast_stage.params(),
+            band_scale: [300, 600, 900].map(|h| self.ensemble_stage.band_scale(h)),
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
     }
@@ -466,7 +455,7 @@ impl Nowcaster {
         self.cbh_state.update(&crate::cbh::CbhFrame {
             time: *t,
             map,
-            params: &self.irradiance,
+            params: self.forecast_stage.params(),
             map_cbh_m,
             from_series: self.cbh_series.is_some(),
             v_map_mps,
@@ -476,47 +465,6 @@ impl Nowcaster {
             altitude_m: self.site.file.site.elevation_m,
             model: self.site.clear_sky_model(),
         })
-    }
-
-    /// The forecast's inputs at a frame: the tracked layers' advection (or a still sky with a wide
-    /// speed spread when nothing is tracked yet), the cover, the weather and the probe points.
-    /// `cbh_factor` scales the first layer's look-ups from the map's plane to the combined cloud
-    /// base height; `cbh_rel_sigma` is that height's relative uncertainty, which widens the
-    /// ensemble's spread of the base when it exceeds the configured one.
-    fn forecast_input(&self, t: &DateTime<Utc>, (cbh, cbh_factor, cbh_rel_sigma): (f64, f64, f64), layers: &[TrackedLayer], [cf, thin_cf]: [f64; 2]) -> ForecastInput<'_> {
-        let mut params = self.irradiance;
-        params.ensemble_cbh_rel_sigma = params.ensemble_cbh_rel_sigma.max(cbh_rel_sigma);
-        ForecastInput {
-            issue: *t,
-            observer: self.site.observer(),
-            clear_model: self.site.clear_sky_model(),
-            altitude_m: self.site.file.site.elevation_m,
-            camera_m: self.site.file.camera.position_m,
-            cbh_m: cbh,
-            layers: if layers.is_empty() {
-                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor }]
-            } else {
-                layers.iter().enumerate().map(|(i, l)| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: if i == 0 { cbh_factor } else { 1.0 } }).collect()
-            },
-            cloud_fraction: if cf.is_nan() { 0.0 } else { cf },
-            thin_fraction: if thin_cf.is_nan() { 0.0 } else { thin_cf },
-            horizons_s: self.horizons_s(),
-            plant: &self.plant,
-            params,
-            power: self.site.file.power,
-            temp_air_c: self.weather(t, "temp_air_c").unwrap_or(self.site.file.power.default_temp_air_c),
-            wind_mps: self.weather(t, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
-            beam_scale: 1.0,
-            diffuse_scale: 1.0,
-            point_stride: 1,
-            // The pyranometers, when the bands are calibrated against them.
-            probes_m: match &self.measurements {
-                Some((_, cols)) if (self.irradiance.band_calibration_rate > 0.0 && self.irradiance.ensemble_members > 0) || self.irradiance.persistence_blend_rate > 0.0 => {
-                    cols.iter().map(|c| c.1).collect()
-                }
-                _ => vec![],
-            },
-        }
     }
 
     /// Ramp events from the plant's power series (central and members), and the members' plant
@@ -531,140 +479,6 @@ impl Nowcaster {
         (ramps, plant_members_ghi_wm2)
     }
 
-    /// Online band calibration against the pyranometers' mean (when there are pyranometers and
-    /// bands): verify the plant bands whose target minute has been measured, then scale this
-    /// forecast's bands.
-    fn widen_bands(&mut self, now: &DateTime<Utc>, fc: &Forecast, members: &[Forecast], bands: &mut [Band]) {
-        let rate = self.irradiance.band_calibration_rate;
-        let Some((m, cols)) = &self.measurements else { return };
-        if rate <= 0.0 || bands.is_empty() {
-            return;
-        }
-        let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
-        self.band_widening.verify(rate, |t| {
-            // The averaging period holding the target must have ended.
-            if *t + period > *now {
-                return None;
-            }
-            let v: Vec<f64> = cols.iter().map(|(c, _)| m.at(*c, t)).filter(|y| y.is_finite() && *y >= 0.0).collect();
-            Some((v.len() == cols.len()).then(|| v.iter().sum::<f64>() / v.len() as f64))
-        });
-        let probe_bands: Vec<[f64; 3]> = (0..fc.probes_ghi_wm2.len())
-            .map(|i| {
-                let mut v: Vec<f64> = members.iter().filter_map(|m| m.probes_ghi_wm2.get(i).copied()).collect();
-                v.sort_by(f64::total_cmp);
-                [quantile_sorted(&v, 0.1), quantile_sorted(&v, 0.5), quantile_sorted(&v, 0.9)]
-            })
-            .collect();
-        self.band_widening.apply(fc, bands, &probe_bands);
-    }
-
-    /// Combine the forecast with smart persistence of the pyranometers ([`crate::forecast::PersistenceBlend`]):
-    /// verify the pairs whose target has been measured, keep this forecast's pairs, and weigh.
-    fn blend_with_persistence(&mut self, now: &DateTime<Utc>, fc: &mut Forecast, bands: &mut [Band]) {
-        let rate = self.irradiance.persistence_blend_rate;
-        let Some((m, cols)) = &self.measurements else { return };
-        if rate <= 0.0 || fc.probes_ghi_wm2.is_empty() {
-            return;
-        }
-        let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
-        let mean_at = |t: &DateTime<Utc>| {
-            let v: Vec<f64> = cols.iter().map(|(c, _)| m.at(*c, t)).filter(|y| y.is_finite() && *y >= 0.0).collect();
-            (v.len() == cols.len()).then(|| v.iter().sum::<f64>() / v.len() as f64)
-        };
-        self.blend.verify(rate, |t| if *t + period > *now { None } else { Some(mean_at(t)) });
-        // The newest completed reading's clear-sky index at the pyranometers.
-        let newest: Vec<(f64, DateTime<Utc>)> = cols.iter().filter_map(|(c, _)| m.completed_at(*c, now)).collect();
-        if newest.len() != cols.len() {
-            return;
-        }
-        let mid = newest[0].1;
-        let y = newest.iter().map(|v| v.0).sum::<f64>() / newest.len() as f64;
-        let Ok(sun_then) = position(&mid, &self.site.observer()) else { return };
-        let clear_then = crate::clearsky::clear_sky(&sun_then, self.site.file.site.elevation_m, self.site.clear_sky_model()).ghi_wm2;
-        if clear_then < 50.0 {
-            return;
-        }
-        let kstar = (y / clear_then).clamp(0.0, 1.5);
-        let plant_rows: Vec<(DateTime<Utc>, u32, f64)> = fc.plant().map(|r| (r.time, r.horizon_s, r.ghi_clear_wm2)).collect();
-        for ((t, h, clear), cam) in plant_rows.into_iter().zip(fc.probes_ghi_wm2.iter()) {
-            self.blend.push(t, h, *cam, kstar * clear);
-        }
-        self.blend.apply(fc, bands, kstar);
-    }
-
-    /// `diffuse_cover`: [`IrradianceParams::diffuse_cover`] of the frame.
-    ///
-    /// Each pyranometer's newest completed reading is paired with the map where the cloud that
-    /// shaded it then has moved to now (its sun-ray point advected by `v_mps` over the time since
-    /// the middle of the reading's period): a reading is never used before its period has ended.
-    ///
-    /// With two layers tracked the brightness feature is left out (its regressor is 0), as in the
-    /// forecast ([`crate::forecast::forecast_with`]).
-    #[allow(clippy::too_many_arguments)]
-    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, (cbh, cbh_factor): (f64, f64), v_mps: Option<[f64; 2]>, two_layers: bool) {
-        let Some((m, cols)) = &self.measurements else { return };
-        let clear = crate::clearsky::clear_sky(sun, self.site.file.site.elevation_m, self.site.clear_sky_model());
-        let cz = sun.apparent_zenith_rad.cos();
-        if clear.ghi_wm2 < 50.0 || cz <= 0.05 {
-            return;
-        }
-        let r = (self.irradiance.blur_min_m / cbh_factor.max(0.1) / map.grid.cell_m).max(0.5);
-        let mut rows = vec![];
-        for (col, pos) in cols {
-            let Some((y, mid)) = m.completed_at(*col, t) else { continue };
-            let lag_s = (*t - mid).num_milliseconds() as f64 / 1000.0;
-            // Readings outside the BSRN physically-possible or extremely-rare GHI limits are not
-            // learnt from.
-            let bad = crate::qc::FLAG_GHI_PHYSICAL | crate::qc::FLAG_GHI_RARE;
-            if !y.is_finite() || crate::qc::bsrn_flags_partial(y, None, None, sun.zenith_rad, sun.earth_sun_distance_au) & bad != 0 {
-                continue;
-            }
-            // Nor stuck readings (gaps give NaN above).
-            if m.stuck_at(*col, &mid, crate::qc::STUCK_RUN) {
-                continue;
-            }
-            // At a base `cbh_factor` times the map's, the pyranometer looks up the map nearer the camera.
-            let (inv_f, cam) = (1.0 / cbh_factor.max(0.1), self.site.file.camera.position_m);
-            let q = sun_ray_plane_point([pos[0] * inv_f, pos[1] * inv_f], cbh, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], sun.apparent_zenith_rad, sun.azimuth_rad);
-            let v = v_mps.unwrap_or([0.0, 0.0]);
-            let (cx, cy) = map.grid.to_cell([q[0] + v[0] * lag_s, q[1] + v[1] * lag_s]);
-            // Class shares and the brightness feature in the look-up box.
-            let mut share = [0f64; 4];
-            let mut k = 0.0;
-            let n = map.grid.n as i64;
-            for j in (cy - r).round() as i64..=(cy + r).round() as i64 {
-                for i in (cx - r).round() as i64..=(cx + r).round() as i64 {
-                    if i < 0 || j < 0 || i >= n || j >= n {
-                        continue;
-                    }
-                    let c = (j * n + i) as usize;
-                    match Class::from_u8(map.class[c]) {
-                        Class::Clear => share[0] += 1.0,
-                        Class::Thin => share[1] += 1.0,
-                        Class::Thick => share[2] += 1.0,
-                        Class::Unknown => continue,
-                    }
-                    share[3] += map.brightness_feature(c) as f64;
-                    k += 1.0;
-                }
-            }
-            if k == 0.0 {
-                continue;
-            }
-            let beam = clear.dni_wm2 * cz / clear.ghi_wm2;
-            let bright = if two_layers { 0.0 } else { beam * share[3] / k };
-            let x = [beam * share[0] / k, beam * share[1] / k, beam * share[2] / k, bright, if diffuse_cover.is_nan() { 0.0 } else { diffuse_cover }];
-            rows.push((x, (y - clear.dhi_wm2) / clear.ghi_wm2));
-        }
-        let max_age_s = self.site.file.irradiance.tune_window_s;
-        for (x, y) in rows {
-            self.tuner.push(*t, x, y, max_age_s);
-        }
-        if let Some(p) = self.tuner.solve(&self.site.file.irradiance) {
-            self.irradiance = p;
-        }
-    }
 }
 
 #[cfg(test)]
