@@ -79,16 +79,16 @@ impl PersistenceBlend {
 
     /// Combine a forecast (rows and bands aligned) with persistence of clear-sky index `kstar`.
     pub fn apply(&self, forecast: &mut Forecast, bands: &mut [Band], kstar: f64) {
-        let weights: Vec<f64> = forecast.rows.iter().map(|r| self.camera_weight(r.horizon_s)).collect();
         // The factor per horizon, from the plant row.
         let mut factor: BTreeMap<u32, f64> = BTreeMap::new();
-        for (r, w) in forecast.rows.iter().zip(&weights) {
-            if r.target == crate::plant::PLANT_TARGET && *w < 1.0 && r.irradiance.ghi_wm2 > 1.0 {
+        for r in &forecast.plant {
+            let w = self.camera_weight(r.horizon_s);
+            if w < 1.0 && r.irradiance.ghi_wm2 > 1.0 {
                 let combined = w * r.irradiance.ghi_wm2 + (1.0 - w) * kstar * r.ghi_clear_wm2;
                 factor.insert(r.horizon_s, (combined / r.irradiance.ghi_wm2).clamp(0.0, 5.0));
             }
         }
-        for (i, r) in forecast.rows.iter_mut().enumerate() {
+        for (i, r) in forecast.rows_mut().into_iter().enumerate() {
             let Some(&f) = factor.get(&r.horizon_s) else { continue };
             r.irradiance.ghi_wm2 *= f;
             r.irradiance.dni_wm2 *= f;

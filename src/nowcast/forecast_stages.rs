@@ -280,7 +280,7 @@ impl EnsembleStage {
             return;
         }
         let kstar = (y / clear_then).clamp(0.0, 1.5);
-        let plant_rows: Vec<(DateTime<Utc>, u32, f64)> = fc.plant().map(|r| (r.time, r.horizon_s, r.ghi_clear_wm2)).collect();
+        let plant_rows: Vec<(DateTime<Utc>, u32, f64)> = fc.plant.iter().map(|r| (r.time, r.horizon_s, r.ghi_clear_wm2)).collect();
         for ((t, h, clear), cam) in plant_rows.into_iter().zip(fc.probes_ghi_wm2.iter()) {
             self.blend.push(t, h, *cam, kstar * clear);
         }

@@ -475,7 +475,7 @@ impl Nowcaster {
         let member_series: Vec<Vec<f64>> = members.iter().map(|m| m.plant_power_kw()).collect();
         let ramps = crate::ramp::ramp_events(t, &fc.plant_power_kw(), &member_series, step_min, cap_ac, &self.site.file.ramps);
         let plant_members_ghi_wm2: Vec<Vec<f64>> =
-            (0..fc.plant().count()).map(|k| members.iter().filter_map(|m| m.plant().nth(k).map(|r| r.irradiance.ghi_wm2)).collect()).collect();
+            (0..fc.plant.len()).map(|k| members.iter().filter_map(|m| m.plant.get(k).map(|r| r.irradiance.ghi_wm2)).collect()).collect();
         (ramps, plant_members_ghi_wm2)
     }
 

@@ -255,7 +255,7 @@ impl LiveEngine {
     /// The nowcast into the history, an alarm change into the alarm log, the webhook (held back
     /// while shelved) and the event stream.
     fn log_nowcast(&self, n: &Nowcast, valid: bool, events: &mut Vec<String>) {
-        let plant: Vec<&crate::forecast::TargetForecast> = n.forecast.plant().collect();
+        let plant = &n.forecast.plant;
         let h = db::HistoryRow {
             time_utc: fmt_time(&n.time),
             cloud_fraction: n.cloud_fraction,
