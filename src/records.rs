@@ -11,8 +11,8 @@ pub const FORECAST_HEADER: &str = "issue_time_utc,target_time_utc,horizon_s,bloc
 /// Append a nowcast's forecast rows.
 pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
     let issue = fmt_time(&nc.time);
-    for (k, (name, r)) in nc.forecast.rows().enumerate() {
-        let b = nc.bands.get(k);
+    for (name, r) in nc.forecast.rows() {
+        let b = r.band.as_ref();
         let q = |v: Option<f64>| v.map(|x| format!("{x:.2}")).unwrap_or_default();
         out.row([
             issue.clone(),
@@ -83,9 +83,8 @@ pub fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
     let rows: Vec<serde_json::Value> = nc
         .forecast
         .rows()
-        .enumerate()
-        .map(|(k, (name, r))| {
-            let b = nc.bands.get(k);
+        .map(|(name, r)| {
+            let b = r.band.as_ref();
             serde_json::json!({
                 "block": name, "horizon_s": r.horizon_s, "target_time_utc": fmt_time(&r.time),
                 "ghi_wm2": r.irradiance.ghi_wm2, "dni_wm2": r.irradiance.dni_wm2, "dhi_wm2": r.irradiance.dhi_wm2,

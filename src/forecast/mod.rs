@@ -326,6 +326,9 @@ pub struct TargetForecast {
     pub power_kw: f64,
     /// Share of points that fell back to persistence.
     pub fallback_share: f64,
+    /// P10, P50, P90 from the ensemble (widened, and combined with persistence when that is on);
+    /// none without an ensemble.
+    pub band: Option<Band>,
 }
 
 /// One block's forecast, one row per horizon in order.
@@ -352,8 +355,8 @@ pub struct Forecast {
 
 impl Forecast {
     /// Every row with its target's name (a block's, or [`crate::plant::PLANT_TARGET`]) in the
-    /// output order: horizon-major, each horizon's blocks in order, then the plant. The bands
-    /// ([`Band`]) and the `forecasts.csv` rows follow this order.
+    /// output order: horizon-major, each horizon's blocks in order, then the plant, the order of
+    /// `forecasts.csv` and of the bands [`ensemble_with`] gives.
     pub fn rows(&self) -> impl Iterator<Item = (&str, &TargetForecast)> {
         (0..self.plant.len()).flat_map(move |k| {
             let blocks = self.blocks.iter().filter_map(move |b| b.rows.get(k).map(|r| (b.name.as_str(), r)));
@@ -376,6 +379,18 @@ impl Forecast {
     /// Number of rows (blocks and plant, every horizon).
     pub fn row_count(&self) -> usize {
         self.plant.len() + self.blocks.iter().map(|b| b.rows.len()).sum::<usize>()
+    }
+
+    /// Put bands (in the order of [`Forecast::rows`]) into the rows.
+    pub fn set_bands(&mut self, bands: Vec<Band>) {
+        for (r, b) in self.rows_mut().into_iter().zip(bands) {
+            r.band = Some(b);
+        }
+    }
+
+    /// Whether the rows carry bands.
+    pub fn has_bands(&self) -> bool {
+        self.plant.iter().any(|r| r.band.is_some())
     }
 
     /// A block's forecast by name.
@@ -540,6 +555,7 @@ fn row(h: u32, t: DateTime<Utc>, acc: &[f64; 6], ghi_clear: f64) -> TargetForeca
         ghi_clear_wm2: ghi_clear,
         power_kw: 0.0,
         fallback_share: acc[4] / n,
+        band: None,
     }
 }
 

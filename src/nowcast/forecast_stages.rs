@@ -8,7 +8,7 @@ use super::Pyranometers;
 use super::tuner::Tuner;
 use crate::cloudmap::{CloudMap, Grid};
 use crate::config::Site;
-use crate::forecast::{Advection, Band, BandWidening, Forecast, ForecastInput, HorizonSky, IrradianceParams, PersistenceBlend, TransmittanceMap, ensemble_with, quantile_sorted, sun_ray_plane_point};
+use crate::forecast::{Advection, BandWidening, Forecast, ForecastInput, HorizonSky, IrradianceParams, PersistenceBlend, TransmittanceMap, ensemble_with, quantile_sorted, sun_ray_plane_point};
 use crate::motion::TrackedLayer;
 use crate::plant::Plant;
 use crate::segment::Class;
@@ -200,8 +200,9 @@ pub(super) struct EnsembleStage {
 }
 
 impl EnsembleStage {
-    /// Members and bands for the central forecast `fc` (none without members), the bands widened,
-    /// then `fc` and the bands combined with persistence. `params` are the transmittances in use.
+    /// Members for the central forecast `fc` and its rows' bands (none without members), the bands
+    /// widened, then `fc` with its bands combined with persistence. `params` are the
+    /// transmittances in use.
     #[allow(clippy::too_many_arguments)]
     pub(super) fn run(
         &mut self,
@@ -213,11 +214,17 @@ impl EnsembleStage {
         input: &ForecastInput,
         skies: &[HorizonSky],
         fc: &mut Forecast,
-    ) -> (Vec<Forecast>, Vec<Band>) {
-        let (members, mut bands) = if params.ensemble_members > 0 { ensemble_with(tms, grid, input, skies, fc) } else { (vec![], vec![]) };
-        self.widen_bands(cx, params, now, fc, &members, &mut bands);
-        self.blend_with_persistence(cx, params, now, fc, &mut bands);
-        (members, bands)
+    ) -> Vec<Forecast> {
+        let members = if params.ensemble_members > 0 {
+            let (members, bands) = ensemble_with(tms, grid, input, skies, fc);
+            fc.set_bands(bands);
+            members
+        } else {
+            vec![]
+        };
+        self.widen_bands(cx, params, now, fc, &members);
+        self.blend_with_persistence(cx, params, now, fc);
+        members
     }
 
     /// The band width scale at a horizon \[s\].
@@ -228,10 +235,10 @@ impl EnsembleStage {
     /// Online band calibration against the pyranometers' mean (when there are pyranometers and
     /// bands): verify the plant bands whose target minute has been measured, then scale this
     /// forecast's bands.
-    fn widen_bands(&mut self, cx: SiteInputs, params: &IrradianceParams, now: &DateTime<Utc>, fc: &Forecast, members: &[Forecast], bands: &mut [Band]) {
+    fn widen_bands(&mut self, cx: SiteInputs, params: &IrradianceParams, now: &DateTime<Utc>, fc: &mut Forecast, members: &[Forecast]) {
         let rate = params.band_calibration_rate;
         let Some((m, cols)) = cx.pyranometers else { return };
-        if rate <= 0.0 || bands.is_empty() {
+        if rate <= 0.0 || !fc.has_bands() {
             return;
         }
         let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
@@ -250,12 +257,12 @@ impl EnsembleStage {
                 [quantile_sorted(&v, 0.1), quantile_sorted(&v, 0.5), quantile_sorted(&v, 0.9)]
             })
             .collect();
-        self.band_widening.apply(fc, bands, &probe_bands);
+        self.band_widening.apply(fc, &probe_bands);
     }
 
     /// Combine the forecast with smart persistence of the pyranometers ([`crate::forecast::PersistenceBlend`]):
     /// verify the pairs whose target has been measured, keep this forecast's pairs, and weigh.
-    fn blend_with_persistence(&mut self, cx: SiteInputs, params: &IrradianceParams, now: &DateTime<Utc>, fc: &mut Forecast, bands: &mut [Band]) {
+    fn blend_with_persistence(&mut self, cx: SiteInputs, params: &IrradianceParams, now: &DateTime<Utc>, fc: &mut Forecast) {
         let rate = params.persistence_blend_rate;
         let Some((m, cols)) = cx.pyranometers else { return };
         if rate <= 0.0 || fc.probes_ghi_wm2.is_empty() {
@@ -284,6 +291,6 @@ impl EnsembleStage {
         for ((t, h, clear), cam) in plant_rows.into_iter().zip(fc.probes_ghi_wm2.iter()) {
             self.blend.push(t, h, *cam, kstar * clear);
         }
-        self.blend.apply(fc, bands, kstar);
+        self.blend.apply(fc, kstar);
     }
 }

@@ -389,7 +389,7 @@ impl Nowcaster {
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
-        let (members, bands) = self.ensemble_stage.run(cx, self.forecast_stage.params(), &frame.time, &tms, map.grid, &input, &skies, &mut fc);
+        let members = self.ensemble_stage.run(cx, self.forecast_stage.params(), &frame.time, &tms, map.grid, &input, &skies, &mut fc);
         let (ramps, plant_members_ghi_wm2) = self.ramps_of(&frame.time, &fc, &members);
         let t_ens = Clock::now();
         let alarm_change = self.alarm.update(&frame.time, &ramps, self.motion_stage.tracker.primary_accepted_run(), &self.site.file.ramps);
@@ -410,7 +410,6 @@ impl Nowcaster {
             motion,
             layers: moved.layers,
             forecast: fc,
-            bands,
             plant_members_ghi_wm2,
             ramps,
             alarm: self.alarm.state,

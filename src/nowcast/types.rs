@@ -6,7 +6,7 @@ use std::sync::Arc;
 use chrono::{DateTime, Utc};
 
 use crate::cloudmap::CloudMap;
-use crate::forecast::{Band, Forecast, IrradianceParams};
+use crate::forecast::{Forecast, IrradianceParams};
 use crate::motion::{Motion, MotionMeasurement, TrackedLayer};
 use crate::sun::SunPosition;
 
@@ -137,10 +137,8 @@ pub struct Nowcast {
     pub motion: Option<Motion>,
     /// Every layer the forecast advected, the most opaque first.
     pub layers: Vec<TrackedLayer>,
-    /// The forecast.
+    /// The forecast, each row with its P10 / P50 / P90 band (none without an ensemble).
     pub forecast: Forecast,
-    /// P10 / P50 / P90 per forecast row (empty without an ensemble).
-    pub bands: Vec<Band>,
     /// Plant-mean GHI of every ensemble member, per horizon \[W m⁻²\] (for CRPS).
     pub plant_members_ghi_wm2: Vec<Vec<f64>>,
     /// Ramp events of this forecast.

@@ -261,8 +261,8 @@ impl Feed {
             .map(|t| {
                 let mut v = [[f64::NAN; 3]; 4];
                 for (h, m) in HORIZONS_MIN.iter().enumerate() {
-                    if let Some((k, (_, r))) = nc.forecast.rows().enumerate().find(|(_, (name, r))| name == t && r.horizon_s == m * 60) {
-                        v[h] = nc.bands.get(k).map_or([f64::NAN, r.power_kw, f64::NAN], |b| b.power_kw);
+                    if let Some((_, r)) = nc.forecast.rows().find(|(name, r)| name == t && r.horizon_s == m * 60) {
+                        v[h] = r.band.map_or([f64::NAN, r.power_kw, f64::NAN], |b| b.power_kw);
                     }
                 }
                 v
