@@ -11,14 +11,14 @@ pub const FORECAST_HEADER: &str = "issue_time_utc,target_time_utc,horizon_s,bloc
 /// Append a nowcast's forecast rows.
 pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
     let issue = fmt_time(&nc.time);
-    for (k, r) in nc.forecast.rows.iter().enumerate() {
-        let b = nc.bands.get(k);
+    for (name, r) in nc.forecast.rows() {
+        let b = r.band.as_ref();
         let q = |v: Option<f64>| v.map(|x| format!("{x:.2}")).unwrap_or_default();
         out.row([
             issue.clone(),
             fmt_time(&r.time),
             r.horizon_s.to_string(),
-            r.target.clone(),
+            name.to_string(),
             format!("{:.2}", r.irradiance.ghi_wm2),
             format!("{:.2}", r.irradiance.dni_wm2),
             format!("{:.2}", r.irradiance.dhi_wm2),
@@ -82,13 +82,11 @@ pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
 pub fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
     let rows: Vec<serde_json::Value> = nc
         .forecast
-        .rows
-        .iter()
-        .enumerate()
-        .map(|(k, r)| {
-            let b = nc.bands.get(k);
+        .rows()
+        .map(|(name, r)| {
+            let b = r.band.as_ref();
             serde_json::json!({
-                "block": r.target, "horizon_s": r.horizon_s, "target_time_utc": fmt_time(&r.time),
+                "block": name, "horizon_s": r.horizon_s, "target_time_utc": fmt_time(&r.time),
                 "ghi_wm2": r.irradiance.ghi_wm2, "dni_wm2": r.irradiance.dni_wm2, "dhi_wm2": r.irradiance.dhi_wm2,
                 "poa_wm2": r.poa_wm2, "power_kw": r.power_kw, "fallback_share": r.fallback_share,
                 "ghi_p10_wm2": b.map(|b| b.ghi_wm2[0]), "ghi_p50_wm2": b.map(|b| b.ghi_wm2[1]), "ghi_p90_wm2": b.map(|b| b.ghi_wm2[2]),

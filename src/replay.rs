@@ -261,7 +261,7 @@ impl ReplayTables {
     /// A used frame's rows.
     fn add(&mut self, nc: &crate::nowcast::Nowcast, time: &DateTime<Utc>, name: &str, dms: f64) {
         forecast_rows(nc, &mut self.fc);
-        let plant_h: Vec<u32> = nc.forecast.plant().map(|r| r.horizon_s).collect();
+        let plant_h: Vec<u32> = nc.forecast.plant.iter().map(|r| r.horizon_s).collect();
         for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
             for (m, v) in ms.iter().enumerate() {
                 self.members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);

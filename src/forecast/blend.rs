@@ -21,7 +21,7 @@ use std::collections::{BTreeMap, VecDeque};
 
 use chrono::{DateTime, Utc};
 
-use super::{Band, Forecast};
+use super::Forecast;
 
 /// Verifications of a horizon needed before its weights leave all to the camera.
 pub const MIN_VERIFIED: usize = 10;
@@ -77,25 +77,25 @@ impl PersistenceBlend {
         }
     }
 
-    /// Combine a forecast (rows and bands aligned) with persistence of clear-sky index `kstar`.
-    pub fn apply(&self, forecast: &mut Forecast, bands: &mut [Band], kstar: f64) {
-        let weights: Vec<f64> = forecast.rows.iter().map(|r| self.camera_weight(r.horizon_s)).collect();
+    /// Combine a forecast (its rows and their bands) with persistence of clear-sky index `kstar`.
+    pub fn apply(&self, forecast: &mut Forecast, kstar: f64) {
         // The factor per horizon, from the plant row.
         let mut factor: BTreeMap<u32, f64> = BTreeMap::new();
-        for (r, w) in forecast.rows.iter().zip(&weights) {
-            if r.target == crate::plant::PLANT_TARGET && *w < 1.0 && r.irradiance.ghi_wm2 > 1.0 {
+        for r in &forecast.plant {
+            let w = self.camera_weight(r.horizon_s);
+            if w < 1.0 && r.irradiance.ghi_wm2 > 1.0 {
                 let combined = w * r.irradiance.ghi_wm2 + (1.0 - w) * kstar * r.ghi_clear_wm2;
                 factor.insert(r.horizon_s, (combined / r.irradiance.ghi_wm2).clamp(0.0, 5.0));
             }
         }
-        for (i, r) in forecast.rows.iter_mut().enumerate() {
+        for r in forecast.rows_mut() {
             let Some(&f) = factor.get(&r.horizon_s) else { continue };
             r.irradiance.ghi_wm2 *= f;
             r.irradiance.dni_wm2 *= f;
             r.irradiance.dhi_wm2 *= f;
             r.poa_wm2 *= f;
             r.power_kw *= f;
-            if let Some(b) = bands.get_mut(i) {
+            if let Some(b) = &mut r.band {
                 for q in b.ghi_wm2.iter_mut().chain(b.power_kw.iter_mut()) {
                     *q *= f;
                 }

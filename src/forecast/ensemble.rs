@@ -1,6 +1,6 @@
 //! The ensemble: members drawn around the central forecast, and their P10 / P50 / P90 bands.
 
-use super::{Forecast, ForecastInput, HorizonSky, TransmittanceMap, forecast_with};
+use super::{Forecast, ForecastInput, HorizonSky, TargetForecast, TransmittanceMap, forecast_with};
 
 /// Uncertainty bands of one target and horizon.
 #[derive(Debug, Clone, Copy, PartialEq, Default)]
@@ -76,10 +76,11 @@ pub fn ensemble_with(
             forecast_with(tms, grid, &inp, skies)
         })
         .collect();
-    let bands = (0..central.rows.len())
+    let member_rows: Vec<Vec<&TargetForecast>> = members.iter().map(|m| m.rows().map(|(_, x)| x).collect()).collect();
+    let bands = (0..central.row_count())
         .map(|r| {
-            let mut ghi: Vec<f64> = members.iter().filter_map(|m| m.rows.get(r)).map(|x| x.irradiance.ghi_wm2).collect();
-            let mut pw: Vec<f64> = members.iter().filter_map(|m| m.rows.get(r)).map(|x| x.power_kw).collect();
+            let mut ghi: Vec<f64> = member_rows.iter().filter_map(|m| m.get(r)).map(|x| x.irradiance.ghi_wm2).collect();
+            let mut pw: Vec<f64> = member_rows.iter().filter_map(|m| m.get(r)).map(|x| x.power_kw).collect();
             ghi.sort_by(f64::total_cmp);
             pw.sort_by(f64::total_cmp);
             let q = |v: &[f64]| [quantile_sorted(v, 0.1), quantile_sorted(v, 0.5), quantile_sorted(v, 0.9)];
@@ -139,21 +140,21 @@ impl BandWidening {
         });
     }
 
-    /// Scale the bands of a forecast (rows aligned with `bands`) and keep the probe bands
-    /// (`probe_bands`: P10, P50, P90 per horizon, in the forecast's horizon order) for
-    /// verification.
-    pub fn apply(&mut self, forecast: &Forecast, bands: &mut [Band], probe_bands: &[[f64; 3]]) {
+    /// Scale the bands of a forecast's rows and keep the probe bands (`probe_bands`: P10, P50, P90
+    /// per horizon, in the forecast's horizon order) for verification.
+    pub fn apply(&mut self, forecast: &mut Forecast, probe_bands: &[[f64; 3]]) {
         let scaled = |k: f64, q: &mut [f64; 3]| {
             let mid = q[1];
             q[0] = (mid - k * (mid - q[0])).max(0.0);
             q[2] = mid + k * (q[2] - mid);
         };
-        for (r, b) in forecast.rows.iter().zip(bands.iter_mut()) {
+        for r in forecast.rows_mut() {
             let k = self.scale(r.horizon_s);
+            let Some(b) = &mut r.band else { continue };
             scaled(k, &mut b.ghi_wm2);
             scaled(k, &mut b.power_kw);
         }
-        let horizons = forecast.plant();
+        let horizons = forecast.plant.iter();
         for (r, pb) in horizons.zip(probe_bands) {
             if self.pending.len() < Self::MAX_PENDING {
                 let mut q = *pb;
@@ -178,10 +179,10 @@ mod tests {
             let t0 = Utc.with_ymd_and_hms(2026, 6, 14, 9, 0, 0).unwrap();
             for i in 0..4000 {
                 let t = t0 + Duration::seconds(i);
-                let fc = Forecast { rows: vec![super::super::row("plant", 300, t, &[0.0; 6], 1000.0)], probes_ghi_wm2: vec![500.0] };
+                let mut fc = Forecast { plant: vec![super::super::row(300, t, &[0.0; 6], 1000.0)], blocks: vec![], probes_ghi_wm2: vec![500.0] };
                 let band = [500.0 - half, 500.0, 500.0 + half];
-                let mut bands = [Band { ghi_wm2: band, power_kw: [0.0; 3] }];
-                c.apply(&fc, &mut bands, &[band]);
+                fc.set_bands(vec![Band { ghi_wm2: band, power_kw: [0.0; 3] }]);
+                c.apply(&mut fc, &[band]);
                 // A deterministic, evenly spread sequence in [−100, 100).
                 let y = 500.0 + ((i as f64 * 0.618_034) % 1.0) * 200.0 - 100.0;
                 c.verify(0.05, |tt| (*tt == t).then_some(Some(y)));

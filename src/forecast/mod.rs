@@ -312,8 +312,6 @@ pub struct Advection {
 /// Forecast for one target (block or plant) and horizon.
 #[derive(Debug, Clone, PartialEq)]
 pub struct TargetForecast {
-    /// Block name, or `plant`.
-    pub target: String,
     /// Horizon \[s\].
     pub horizon_s: u32,
     /// Target time.
@@ -328,27 +326,81 @@ pub struct TargetForecast {
     pub power_kw: f64,
     /// Share of points that fell back to persistence.
     pub fallback_share: f64,
+    /// P10, P50, P90 from the ensemble (widened, and combined with persistence when that is on);
+    /// none without an ensemble.
+    pub band: Option<Band>,
 }
 
-/// A whole forecast: per block and plant, every horizon.
+/// One block's forecast, one row per horizon in order.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BlockForecast {
+    /// The block's name.
+    pub name: String,
+    /// One row per horizon.
+    pub rows: Vec<TargetForecast>,
+}
+
+/// A whole forecast: the plant and each block, every horizon.
 #[derive(Debug, Clone, Default)]
 pub struct Forecast {
-    /// Rows, horizon-major then block order, the plant last in each horizon.
-    pub rows: Vec<TargetForecast>,
+    /// The whole plant, one row per horizon in order (irradiance the mean over the blocks' points,
+    /// power the blocks' sum).
+    pub plant: Vec<TargetForecast>,
+    /// Each block, in the plant's block order.
+    pub blocks: Vec<BlockForecast>,
     /// Per horizon (in order), the mean GHI at the probe points ([`ForecastInput::probes_m`])
     /// \[W m⁻²\]; empty without probes.
     pub probes_ghi_wm2: Vec<f64>,
 }
 
 impl Forecast {
-    /// The whole plant's rows, one per horizon in order.
-    pub fn plant(&self) -> impl Iterator<Item = &TargetForecast> {
-        self.rows.iter().filter(|r| r.target == crate::plant::PLANT_TARGET)
+    /// Every row with its target's name (a block's, or [`crate::plant::PLANT_TARGET`]) in the
+    /// output order: horizon-major, each horizon's blocks in order, then the plant, the order of
+    /// `forecasts.csv` and of the bands [`ensemble_with`] gives.
+    pub fn rows(&self) -> impl Iterator<Item = (&str, &TargetForecast)> {
+        (0..self.plant.len()).flat_map(move |k| {
+            let blocks = self.blocks.iter().filter_map(move |b| b.rows.get(k).map(|r| (b.name.as_str(), r)));
+            blocks.chain(std::iter::once((crate::plant::PLANT_TARGET, &self.plant[k])))
+        })
+    }
+
+    /// Every row, mutable, in the order of [`Forecast::rows`].
+    pub fn rows_mut(&mut self) -> Vec<&mut TargetForecast> {
+        let horizons = self.plant.len();
+        let mut series: Vec<std::slice::IterMut<'_, TargetForecast>> =
+            self.blocks.iter_mut().map(|b| b.rows.iter_mut()).chain(std::iter::once(self.plant.iter_mut())).collect();
+        let mut out = Vec::with_capacity(horizons * series.len());
+        for _ in 0..horizons {
+            out.extend(series.iter_mut().filter_map(Iterator::next));
+        }
+        out
+    }
+
+    /// Number of rows (blocks and plant, every horizon).
+    pub fn row_count(&self) -> usize {
+        self.plant.len() + self.blocks.iter().map(|b| b.rows.len()).sum::<usize>()
+    }
+
+    /// Put bands (in the order of [`Forecast::rows`]) into the rows.
+    pub fn set_bands(&mut self, bands: Vec<Band>) {
+        for (r, b) in self.rows_mut().into_iter().zip(bands) {
+            r.band = Some(b);
+        }
+    }
+
+    /// Whether the rows carry bands.
+    pub fn has_bands(&self) -> bool {
+        self.plant.iter().any(|r| r.band.is_some())
+    }
+
+    /// A block's forecast by name.
+    pub fn block(&self, name: &str) -> Option<&BlockForecast> {
+        self.blocks.iter().find(|b| b.name == name)
     }
 
     /// The whole plant's AC power per horizon \[kW\].
     pub fn plant_power_kw(&self) -> Vec<f64> {
-        self.plant().map(|r| r.power_kw).collect()
+        self.plant.iter().map(|r| r.power_kw).collect()
     }
 }
 
@@ -366,8 +418,11 @@ impl Forecast {
 /// accumulators shared by the look-up, the block sums and the plant sum; split, the accumulators
 /// would be passed around per point.
 pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
-    let mut out = Forecast::default();
-    out.rows.reserve(skies.len() * (input.plant.blocks.len() + 1));
+    let mut out = Forecast {
+        plant: Vec::with_capacity(skies.len()),
+        blocks: input.plant.blocks.iter().map(|b| BlockForecast { name: b.name.clone(), rows: Vec::with_capacity(skies.len()) }).collect(),
+        probes_ghi_wm2: vec![],
+    };
     let p = &input.params;
     let n_layers = tms.len().min(input.layers.len()).min(MAX_LAYERS);
     let mut beams = p.beams();
@@ -443,7 +498,7 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             out.probes_ghi_wm2.push(ghi);
         }
         let dni_extra = sun.dni_extra_wm2();
-        for b in &input.plant.blocks {
+        for (b, series) in input.plant.blocks.iter().zip(out.blocks.iter_mut()) {
             let (tilt, saz) = block_plane(&b.mount, z, a);
             // Hay & Davies terms that depend only on the plane and the sun (see `poa_hay_davies`).
             let cos_aoi = aoi_rad(tilt, saz, z, a).cos();
@@ -475,14 +530,14 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             for (s, v) in plant_acc.iter_mut().zip(acc) {
                 *s += v;
             }
-            let mut r = row(&b.name, h, t, &acc, clear.ghi_wm2);
+            let mut r = row(h, t, &acc, clear.ghi_wm2);
             r.power_kw = crate::power::block_ac_kw(r.poa_wm2, b.capacity_kw, b.ac_capacity_kw, input.temp_air_c, input.wind_mps, &input.power);
             plant_power += r.power_kw;
-            out.rows.push(r);
+            series.rows.push(r);
         }
-        let mut pr = row(crate::plant::PLANT_TARGET, h, t, &plant_acc, clear.ghi_wm2);
+        let mut pr = row(h, t, &plant_acc, clear.ghi_wm2);
         pr.power_kw = plant_power;
-        out.rows.push(pr);
+        out.plant.push(pr);
     }
     out
 }
@@ -490,10 +545,9 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
 /// Most cloud layers a forecast advects separately.
 pub const MAX_LAYERS: usize = 2;
 
-fn row(name: &str, h: u32, t: DateTime<Utc>, acc: &[f64; 6], ghi_clear: f64) -> TargetForecast {
+fn row(h: u32, t: DateTime<Utc>, acc: &[f64; 6], ghi_clear: f64) -> TargetForecast {
     let n = acc[5].max(1.0);
     TargetForecast {
-        target: name.to_string(),
         horizon_s: h,
         time: t,
         irradiance: Irradiance { ghi_wm2: acc[0] / n, dni_wm2: acc[1] / n, dhi_wm2: acc[2] / n },
@@ -501,6 +555,7 @@ fn row(name: &str, h: u32, t: DateTime<Utc>, acc: &[f64; 6], ghi_clear: f64) -> 
         ghi_clear_wm2: ghi_clear,
         power_kw: 0.0,
         fallback_share: acc[4] / n,
+        band: None,
     }
 }
 
@@ -557,7 +612,7 @@ mod tests {
         let away = [0.0, -30.0];
         let dni_ratio = |input: &ForecastInput| {
             let f = forecast_with(&tms, g, input, &skies);
-            let r = f.rows.iter().find(|r| r.target == "b" && r.horizon_s == 100).unwrap();
+            let r = f.block("b").unwrap().rows.iter().find(|r| r.horizon_s == 100).unwrap();
             r.irradiance.dni_wm2 / skies[1].clear.dni_wm2
         };
         let adv = |v: [f64; 2]| Advection { v_mps: v, sigma_mps: 0.0, cbh_factor: 1.0 };
@@ -636,7 +691,7 @@ mod tests {
         input.probes_m = vec![[1200.0, 0.0], [0.0, 0.0]];
         let ratio = |input: &ForecastInput, name: &str| {
             let f = forecast_with(&tms, g, input, &skies);
-            let r = f.rows.iter().find(|r| r.target == name && r.horizon_s == 0).unwrap();
+            let r = f.block(name).unwrap().rows.iter().find(|r| r.horizon_s == 0).unwrap();
             (r.irradiance.dni_wm2 / skies[0].clear.dni_wm2, r.irradiance.ghi_wm2, f.probes_ghi_wm2[0])
         };
         for (f, far_shaded) in [(1.0, false), (2.0, true)] {

@@ -2,290 +2,32 @@
 //! and live mode all call it; its state (the previous map, the motion filter, the learned clear-sky
 //! reference, the look-up tables, the transmittance tuning) lives in it.
 
-use std::sync::Arc;
 use std::time::Instant as Clock;
 
 use chrono::{DateTime, Utc};
 
 use crate::cloudmap::CloudMap;
 use crate::config::Site;
-use crate::forecast::{Advection, Band, Forecast, ForecastInput, IrradianceParams, ensemble_with, forecast_with, horizon_skies, quantile_sorted, sun_ray_plane_point};
+use crate::forecast::{Forecast, forecast_with, horizon_skies};
 use crate::io::{InputError, Measurements, Series, fmt_time};
-use crate::motion::{MotionMeasurement, Motion, TrackedLayer};
 use crate::plant::Plant;
-use crate::segment::{Class, Reference};
+use crate::segment::Reference;
 use crate::sun::{SunPosition, position};
 use stages::{MapStage, MotionStage, check_exposure, layer_tables};
+use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
+mod forecast_stages;
 mod stages;
+mod tuner;
+mod types;
 
-/// A decoded frame.
-#[derive(Debug, Clone)]
-pub struct Frame {
-    /// Capture time (UTC).
-    pub time: DateTime<Utc>,
-    /// Pixels.
-    pub image: image::RgbImage,
-}
-
-/// Why the engine could not be set up.
-#[derive(Debug, thiserror::Error)]
-pub enum SetupError {
-    /// The site or calibration file is bad.
-    #[error(transparent)]
-    Config(#[from] crate::config::ConfigError),
-    /// A series or measurements file is bad.
-    #[error(transparent)]
-    Input(#[from] crate::io::InputError),
-}
-
-/// Why a frame was not used.
-#[derive(Debug, Clone, PartialEq, thiserror::Error)]
-pub enum Rejection {
-    /// The file could not be decoded.
-    #[error("unreadable: {0}")]
-    Unreadable(String),
-    /// The image size differs from the calibration's.
-    #[error("wrong size: {got_w}x{got_h} px, calibration says {want_w}x{want_h}")]
-    WrongSize {
-        /// Width found.
-        got_w: u32,
-        /// Height found.
-        got_h: u32,
-        /// Width expected.
-        want_w: u32,
-        /// Height expected.
-        want_h: u32,
-    },
-    /// Same time as the previous frame.
-    #[error("duplicated time")]
-    Duplicate,
-    /// Earlier than the previous frame.
-    #[error("out of order in time")]
-    OutOfOrder,
-    /// The sun is too low.
-    #[error("sun elevation {0:.1}° below the limit")]
-    SunTooLow(f64),
-    /// Too dark.
-    #[error("under-exposed (mean level {0:.0})")]
-    UnderExposed(f64),
-    /// Too bright.
-    #[error("over-exposed (mean level {0:.0}, saturated share {1:.2})")]
-    OverExposed(f64, f64),
-    /// No cloud base height for the frame's time.
-    #[error("no cloud base height for this time (the series does not cover it)")]
-    NoCloudBase,
-    /// Refused at intake ([`crate::intake`]): special file, too large, incomplete, corrupt.
-    #[error("{0}")]
-    Intake(crate::intake::IntakeError),
-    /// The frame's time is ahead of the system clock by more than the tolerance.
-    #[error("time {ahead_s:.0} s ahead of the system clock (tolerance {tolerance_s:.0} s)")]
-    AheadOfClock {
-        /// How far ahead \[s\].
-        ahead_s: f64,
-        /// The tolerance `qc.max_ahead_of_clock_s` \[s\].
-        tolerance_s: f64,
-    },
-}
-
-impl Rejection {
-    /// A short code for CSV files.
-    pub fn code(&self) -> &'static str {
-        match self {
-            Rejection::Unreadable(_) => "unreadable",
-            Rejection::WrongSize { .. } => "wrong_size",
-            Rejection::Duplicate => "duplicate",
-            Rejection::OutOfOrder => "out_of_order",
-            Rejection::SunTooLow(_) => "sun_too_low",
-            Rejection::UnderExposed(_) => "under_exposed",
-            Rejection::OverExposed(..) => "over_exposed",
-            Rejection::NoCloudBase => "no_cloud_base",
-            Rejection::Intake(e) => e.code(),
-            Rejection::AheadOfClock { .. } => "ahead_of_clock",
-        }
-    }
-}
-
-/// Time spent in each stage of a step \[ms\].
-#[derive(Debug, Clone, Copy, Default, PartialEq)]
-pub struct StageTimes {
-    /// Quality control.
-    pub qc_ms: f64,
-    /// Cloud map (sampling + segmentation).
-    pub map_ms: f64,
-    /// Motion.
-    pub motion_ms: f64,
-    /// Central forecast, ramps and alarm.
-    pub forecast_ms: f64,
-    /// Ensemble members, bands and ramp events (their probabilities come from the members).
-    pub ensemble_ms: f64,
-}
-
-/// The result of one frame.
-#[derive(Debug, Clone)]
-pub struct Nowcast {
-    /// Frame time.
-    pub time: DateTime<Utc>,
-    /// Seconds since the previous used frame.
-    pub dt_s: Option<f64>,
-    /// Baseline of the motion measurement \[s\] (the earlier map's age).
-    pub baseline_s: Option<f64>,
-    /// Sun at the frame time.
-    pub sun: SunPosition,
-    /// Height of the cloud map's plane \[m\] (configured value or ceilometer series).
-    pub cbh_m: f64,
-    /// The cloud base height the forecast used (all estimates combined), its uncertainty and source.
-    pub cbh: crate::cbh::CbhEstimate,
-    /// Cloud fraction of the map within the configured zenith.
-    pub cloud_fraction: f64,
-    /// The cloud map.
-    pub map: Arc<CloudMap>,
-    /// Motion measured against the previous map.
-    pub measurement: Option<MotionMeasurement>,
-    /// Filtered motion of the forecast's first (most opaque) layer.
-    pub motion: Option<Motion>,
-    /// Every layer the forecast advected, the most opaque first.
-    pub layers: Vec<TrackedLayer>,
-    /// The forecast.
-    pub forecast: Forecast,
-    /// P10 / P50 / P90 per forecast row (empty without an ensemble).
-    pub bands: Vec<Band>,
-    /// Plant-mean GHI of every ensemble member, per horizon \[W m⁻²\] (for CRPS).
-    pub plant_members_ghi_wm2: Vec<Vec<f64>>,
-    /// Ramp events of this forecast.
-    pub ramps: Vec<crate::ramp::RampEvent>,
-    /// Alarm state after this frame.
-    pub alarm: crate::ramp::AlarmState,
-    /// The alarm change this frame caused, if any.
-    pub alarm_change: Option<crate::ramp::AlarmChange>,
-    /// Why the alarm is in its state (cites the ramp behind it).
-    pub alarm_reason: String,
-    /// The ramp behind the alarm state, if any.
-    pub alarm_basis: Option<crate::ramp::AlarmBasis>,
-    /// Transmittance settings used (after tuning).
-    pub irradiance: IrradianceParams,
-    /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
-    /// until calibrated; see [`crate::forecast::BandWidening`]).
-    pub band_scale: [f64; 3],
-    /// Stage timings.
-    pub times: StageTimes,
-}
-
-/// Counters over a run.
-#[derive(Debug, Clone, Default, PartialEq)]
-pub struct Counters {
-    /// Frames used.
-    pub used: usize,
-    /// Frames rejected, by reason code.
-    pub rejected: std::collections::BTreeMap<String, usize>,
-    /// Times the newest accepted time was dropped because the system clock fell behind it by more
-    /// than the tolerance ([`Nowcaster::judge_clock`]).
-    pub clock_reanchors: usize,
-    /// Measurement values flagged and left out when the measurements were read, by
-    /// `"<column> <reason>"` ([`crate::io::Measurements::screen`]).
-    pub measurements_flagged: std::collections::BTreeMap<String, usize>,
-}
-
-/// Tuning of beam transmittances and diffuse gain from pyranometer readings (ridge regression toward
-/// the configured values over a sliding window).
-#[derive(Debug, Clone, Default)]
-struct Tuner {
-    rows: std::collections::VecDeque<([f64; TUNED], f64)>,
-    /// Time of each row.
-    times: std::collections::VecDeque<DateTime<Utc>>,
-}
-
-impl Tuner {
-    const WINDOW: usize = 400;
-    const PRIOR_WEIGHT: f64 = 4.0;
-    /// Each unknown's prior weight relative to `PRIOR_WEIGHT`, in proportion to the usual size of
-    /// its regressor: the brightness feature is a few hundredths where class shares are near 1.
-    const PRIOR_SCALE: [f64; TUNED] = [1.0, 1.0, 1.0, 0.05, 1.0];
-    const IRLS_ITERATIONS: usize = 6;
-
-    fn push(&mut self, t: DateTime<Utc>, x: [f64; TUNED], y: f64, max_age_s: f64) {
-        self.rows.push_back((x, y));
-        self.times.push_back(t);
-        // At most WINDOW rows, none older than `max_age_s` (an overcast that thins must be
-        // followed), but never fewer than the 20 a solve needs.
-        while self.rows.len() > Self::WINDOW
-            || (self.rows.len() > 20 && self.times.front().map(|t0| (t - *t0).num_milliseconds() as f64 / 1000.0 > max_age_s).unwrap_or(false))
-        {
-            self.rows.pop_front();
-            self.times.pop_front();
-        }
-    }
-
-    fn solve(&self, prior: &IrradianceParams) -> Option<IrradianceParams> {
-        if self.rows.len() < 20 {
-            return None;
-        }
-        // Unknowns: beam_clear, beam_thin, beam_thick, beam_cloud_brightness, diffuse_per_cover.
-        // Rows are scaled to W/m² of clear-sky GHI so every frame weighs alike.
-        let p0 = [prior.beam_clear, prior.beam_thin, prior.beam_thick, prior.beam_cloud_brightness, prior.diffuse_per_cover];
-        let n = self.rows.len() + TUNED;
-        // Huber weights by iteratively reweighted least squares: rows whose reading the look-up
-        // misplaces (a cloud edge a few cells off: the map says thick while the pyranometer is in
-        // sun) are outliers that, unweighted, pulled the thick transmittance up and the clear one
-        // down (0.2–0.3 and ~0.87 on the synthetic scenes), flattening every forecast ramp.
-        let huber = prior.tune_robust_scale;
-        let mut w = vec![1.0f64; self.rows.len()];
-        let mut sol = nalgebra::DVector::<f64>::from_row_slice(&p0);
-        for _ in 0..if huber > 0.0 { Self::IRLS_ITERATIONS } else { 1 } {
-            let mut a = nalgebra::DMatrix::<f64>::zeros(n, TUNED);
-            let mut b = nalgebra::DVector::<f64>::zeros(n);
-            for (r, (x, y)) in self.rows.iter().enumerate() {
-                let sw = w[r].sqrt();
-                for c in 0..TUNED {
-                    a[(r, c)] = sw * x[c];
-                }
-                b[r] = sw * *y;
-            }
-            for c in 0..TUNED {
-                let r = self.rows.len() + c;
-                a[(r, c)] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c];
-                b[r] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c] * p0[c];
-            }
-            sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
-            for (r, (x, y)) in self.rows.iter().enumerate() {
-                let res = (y - (0..TUNED).map(|c| x[c] * sol[c]).sum::<f64>()).abs();
-                w[r] = if res > huber { huber / res } else { 1.0 };
-            }
-        }
-        // The robust fit follows the typical reading; under broken overcast the misplaced ones are
-        // skewed (a sensor in a gap reads far above the fit, one under cloud a little below), so
-        // the fit runs biased. The diffuse gain, which adds the same to every point, takes up the
-        // window's mean residual, so the current state is unbiased over the window.
-        if huber > 0.0 {
-            let (mut res, mut res2, mut cover) = (0.0, 0.0, 0.0);
-            for (x, y) in &self.rows {
-                let e = y - (0..TUNED).map(|c| x[c] * sol[c]).sum::<f64>();
-                res += e;
-                res2 += e * e;
-                cover += x[TUNED - 1];
-            }
-            // Only a bias the window clearly shows (beyond 2 standard errors of its mean).
-            let n = self.rows.len() as f64;
-            let se = ((res2 / n - (res / n).powi(2)).max(0.0) / n).sqrt();
-            if cover > 0.05 * n && (res / n).abs() > 2.0 * se {
-                sol[TUNED - 1] += res / cover;
-            }
-        }
-        let mut p = *prior;
-        p.beam_clear = sol[0].clamp(0.8, 1.25);
-        p.beam_thin = sol[1].clamp(0.05, 0.95);
-        p.beam_thick = sol[2].clamp(0.0, 0.5);
-        p.beam_cloud_brightness = sol[3].clamp(-3.0, 3.0);
-        p.diffuse_per_cover = sol[4].clamp(0.0, 0.8);
-        Some(p)
-    }
-}
-
-/// Unknowns of the transmittance tuning: the four table coefficients and the diffuse gain.
-const TUNED: usize = 5;
+pub use types::{Counters, Frame, Nowcast, Rejection, SetupError, StageTimes};
 
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
 type PyranometerColumn = (usize, [f64; 2]);
+
+/// The measurements with the pyranometers' columns in them.
+type Pyranometers = (Measurements, Vec<PyranometerColumn>);
 
 /// The cells' sun angles are recomputed when the sun has moved more than this \[°\].
 const SUN_ANGLE_REUSE_DEG: f32 = 0.25;
@@ -298,12 +40,10 @@ pub struct Nowcaster {
     motion_stage: MotionStage,
     last_time: Option<DateTime<Utc>>,
     cbh_series: Option<Series>,
-    measurements: Option<(Measurements, Vec<PyranometerColumn>)>,
-    tuner: Tuner,
+    measurements: Option<Pyranometers>,
     cbh_state: crate::cbh::CbhState,
-    band_widening: crate::forecast::BandWidening,
-    blend: crate::forecast::PersistenceBlend,
-    irradiance: IrradianceParams,
+    forecast_stage: ForecastStage,
+    ensemble_stage: EnsembleStage,
     alarm: crate::ramp::Alarm,
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
     /// The camera for frames decoded at reduced scale ([`crate::intake`]).
@@ -317,7 +57,7 @@ impl Nowcaster {
     /// optional measurements for transmittance tuning.
     pub fn new(site: Site, cbh_series: Option<Series>, measurements: Option<Measurements>) -> Nowcaster {
         let plant = Plant::from_section(&site.file.plant);
-        let irradiance = site.file.irradiance;
+        let forecast_stage = ForecastStage::new(site.file.irradiance);
         let measurements = measurements.and_then(|m| {
             let cols: Vec<(usize, [f64; 2])> = site
                 .file
@@ -339,11 +79,9 @@ impl Nowcaster {
             last_time: None,
             cbh_series,
             measurements,
-            tuner: Tuner::default(),
             cbh_state,
-            band_widening: Default::default(),
-            blend: Default::default(),
-            irradiance,
+            forecast_stage,
+            ensemble_stage: EnsembleStage::default(),
             alarm: Default::default(),
             image_geometry: std::sync::OnceLock::new(),
             reduced,
@@ -574,7 +312,7 @@ impl Nowcaster {
 
     /// Pyranometer readings the transmittance tuning holds now.
     pub fn tuning_rows(&self) -> usize {
-        self.tuner.rows.len()
+        self.forecast_stage.tuning_rows()
     }
 
     /// The measurements held: rows, and the end of the newest row's averaging period.
@@ -589,17 +327,7 @@ impl Nowcaster {
     /// transmittances (live mode calls this when the measurement feed has stopped). Returns whether
     /// anything was forgotten.
     pub fn reset_tuning(&mut self) -> bool {
-        let tuned = !self.tuner.rows.is_empty();
-        self.tuner = Tuner::default();
-        self.irradiance = self.site.file.irradiance;
-        tuned
-    }
-
-    /// A weather value from the measurements CSV at a time (column `temp_air_c` or `wind_speed_mps`).
-    fn weather(&self, t: &DateTime<Utc>, column: &str) -> Option<f64> {
-        let (m, _) = self.measurements.as_ref()?;
-        let v = m.at(m.column(column)?, t);
-        v.is_finite().then_some(v)
+        self.forecast_stage.reset(self.site.file.irradiance)
     }
 
     /// Cloud base height above ground at a time \[m\].
@@ -613,8 +341,12 @@ impl Nowcaster {
 
     /// Horizons \[s\] from the site's forecast settings.
     pub fn horizons_s(&self) -> Vec<u32> {
-        let f = &self.site.file.forecast;
-        (0..=f.horizon_min * 60).step_by(f.step_s as usize).collect()
+        self.inputs().horizons_s()
+    }
+
+    /// What the forecast and ensemble stages read of the engine.
+    fn inputs(&self) -> SiteInputs<'_> {
+        SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() }
     }
 
     /// Process one frame.
@@ -650,18 +382,14 @@ impl Nowcaster {
         let t_motion = Clock::now();
         let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
         let cbh_factor = cbh_est.cbh_m / cbh;
-        if self.irradiance.tune_from_measurements {
-            self.tune(&frame.time, &sun, &map, self.irradiance.diffuse_cover(cf, thin_cf), (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
-        }
-        let input = self.forecast_input(&frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
+        let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() };
+        self.forecast_stage.tune(cx, &frame.time, &sun, &map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
+        let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
         let tms = layer_tables(&map, &moved, &input.params);
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
-        let (members, mut bands) =
-            if self.irradiance.ensemble_members > 0 { ensemble_with(&tms, map.grid, &input, &skies, &fc) } else { (vec![], vec![]) };
-        self.widen_bands(&frame.time, &fc, &members, &mut bands);
-        self.blend_with_persistence(&frame.time, &mut fc, &mut bands);
+        let members = self.ensemble_stage.run(cx, self.forecast_stage.params(), &frame.time, &tms, map.grid, &input, &skies, &mut fc);
         let (ramps, plant_members_ghi_wm2) = self.ramps_of(&frame.time, &fc, &members);
         let t_ens = Clock::now();
         let alarm_change = self.alarm.update(&frame.time, &ramps, self.motion_stage.tracker.primary_accepted_run(), &self.site.file.ramps);
@@ -682,15 +410,14 @@ impl Nowcaster {
             motion,
             layers: moved.layers,
             forecast: fc,
-            bands,
             plant_members_ghi_wm2,
             ramps,
             alarm: self.alarm.state,
             alarm_change,
             alarm_reason: self.alarm.reason().to_string(),
             alarm_basis: self.alarm.basis().cloned(),
-            irradiance: self.irradiance,
-            band_scale: [300, 600, 900].map(|h| self.band_widening.scale(h)),
+            irradiance: *self.forecast_stage.params(),
+            band_scale: [300, 600, 900].map(|h| self.ensemble_stage.band_scale(h)),
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
     }
@@ -727,7 +454,7 @@ impl Nowcaster {
         self.cbh_state.update(&crate::cbh::CbhFrame {
             time: *t,
             map,
-            params: &self.irradiance,
+            params: self.forecast_stage.params(),
             map_cbh_m,
             from_series: self.cbh_series.is_some(),
             v_map_mps,
@@ -739,47 +466,6 @@ impl Nowcaster {
         })
     }
 
-    /// The forecast's inputs at a frame: the tracked layers' advection (or a still sky with a wide
-    /// speed spread when nothing is tracked yet), the cover, the weather and the probe points.
-    /// `cbh_factor` scales the first layer's look-ups from the map's plane to the combined cloud
-    /// base height; `cbh_rel_sigma` is that height's relative uncertainty, which widens the
-    /// ensemble's spread of the base when it exceeds the configured one.
-    fn forecast_input(&self, t: &DateTime<Utc>, (cbh, cbh_factor, cbh_rel_sigma): (f64, f64, f64), layers: &[TrackedLayer], [cf, thin_cf]: [f64; 2]) -> ForecastInput<'_> {
-        let mut params = self.irradiance;
-        params.ensemble_cbh_rel_sigma = params.ensemble_cbh_rel_sigma.max(cbh_rel_sigma);
-        ForecastInput {
-            issue: *t,
-            observer: self.site.observer(),
-            clear_model: self.site.clear_sky_model(),
-            altitude_m: self.site.file.site.elevation_m,
-            camera_m: self.site.file.camera.position_m,
-            cbh_m: cbh,
-            layers: if layers.is_empty() {
-                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor }]
-            } else {
-                layers.iter().enumerate().map(|(i, l)| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: if i == 0 { cbh_factor } else { 1.0 } }).collect()
-            },
-            cloud_fraction: if cf.is_nan() { 0.0 } else { cf },
-            thin_fraction: if thin_cf.is_nan() { 0.0 } else { thin_cf },
-            horizons_s: self.horizons_s(),
-            plant: &self.plant,
-            params,
-            power: self.site.file.power,
-            temp_air_c: self.weather(t, "temp_air_c").unwrap_or(self.site.file.power.default_temp_air_c),
-            wind_mps: self.weather(t, "wind_speed_mps").unwrap_or(self.site.file.power.default_wind_speed_mps),
-            beam_scale: 1.0,
-            diffuse_scale: 1.0,
-            point_stride: 1,
-            // The pyranometers, when the bands are calibrated against them.
-            probes_m: match &self.measurements {
-                Some((_, cols)) if (self.irradiance.band_calibration_rate > 0.0 && self.irradiance.ensemble_members > 0) || self.irradiance.persistence_blend_rate > 0.0 => {
-                    cols.iter().map(|c| c.1).collect()
-                }
-                _ => vec![],
-            },
-        }
-    }
-
     /// Ramp events from the plant's power series (central and members), and the members' plant
     /// GHI per horizon.
     fn ramps_of(&self, t: &DateTime<Utc>, fc: &Forecast, members: &[Forecast]) -> (Vec<crate::ramp::RampEvent>, Vec<Vec<f64>>) {
@@ -788,143 +474,8 @@ impl Nowcaster {
         let member_series: Vec<Vec<f64>> = members.iter().map(|m| m.plant_power_kw()).collect();
         let ramps = crate::ramp::ramp_events(t, &fc.plant_power_kw(), &member_series, step_min, cap_ac, &self.site.file.ramps);
         let plant_members_ghi_wm2: Vec<Vec<f64>> =
-            (0..fc.plant().count()).map(|k| members.iter().filter_map(|m| m.plant().nth(k).map(|r| r.irradiance.ghi_wm2)).collect()).collect();
+            (0..fc.plant.len()).map(|k| members.iter().filter_map(|m| m.plant.get(k).map(|r| r.irradiance.ghi_wm2)).collect()).collect();
         (ramps, plant_members_ghi_wm2)
-    }
-
-    /// Online band calibration against the pyranometers' mean (when there are pyranometers and
-    /// bands): verify the plant bands whose target minute has been measured, then scale this
-    /// forecast's bands.
-    fn widen_bands(&mut self, now: &DateTime<Utc>, fc: &Forecast, members: &[Forecast], bands: &mut [Band]) {
-        let rate = self.irradiance.band_calibration_rate;
-        let Some((m, cols)) = &self.measurements else { return };
-        if rate <= 0.0 || bands.is_empty() {
-            return;
-        }
-        let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
-        self.band_widening.verify(rate, |t| {
-            // The averaging period holding the target must have ended.
-            if *t + period > *now {
-                return None;
-            }
-            let v: Vec<f64> = cols.iter().map(|(c, _)| m.at(*c, t)).filter(|y| y.is_finite() && *y >= 0.0).collect();
-            Some((v.len() == cols.len()).then(|| v.iter().sum::<f64>() / v.len() as f64))
-        });
-        let probe_bands: Vec<[f64; 3]> = (0..fc.probes_ghi_wm2.len())
-            .map(|i| {
-                let mut v: Vec<f64> = members.iter().filter_map(|m| m.probes_ghi_wm2.get(i).copied()).collect();
-                v.sort_by(f64::total_cmp);
-                [quantile_sorted(&v, 0.1), quantile_sorted(&v, 0.5), quantile_sorted(&v, 0.9)]
-            })
-            .collect();
-        self.band_widening.apply(fc, bands, &probe_bands);
-    }
-
-    /// Combine the forecast with smart persistence of the pyranometers ([`crate::forecast::PersistenceBlend`]):
-    /// verify the pairs whose target has been measured, keep this forecast's pairs, and weigh.
-    fn blend_with_persistence(&mut self, now: &DateTime<Utc>, fc: &mut Forecast, bands: &mut [Band]) {
-        let rate = self.irradiance.persistence_blend_rate;
-        let Some((m, cols)) = &self.measurements else { return };
-        if rate <= 0.0 || fc.probes_ghi_wm2.is_empty() {
-            return;
-        }
-        let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
-        let mean_at = |t: &DateTime<Utc>| {
-            let v: Vec<f64> = cols.iter().map(|(c, _)| m.at(*c, t)).filter(|y| y.is_finite() && *y >= 0.0).collect();
-            (v.len() == cols.len()).then(|| v.iter().sum::<f64>() / v.len() as f64)
-        };
-        self.blend.verify(rate, |t| if *t + period > *now { None } else { Some(mean_at(t)) });
-        // The newest completed reading's clear-sky index at the pyranometers.
-        let newest: Vec<(f64, DateTime<Utc>)> = cols.iter().filter_map(|(c, _)| m.completed_at(*c, now)).collect();
-        if newest.len() != cols.len() {
-            return;
-        }
-        let mid = newest[0].1;
-        let y = newest.iter().map(|v| v.0).sum::<f64>() / newest.len() as f64;
-        let Ok(sun_then) = position(&mid, &self.site.observer()) else { return };
-        let clear_then = crate::clearsky::clear_sky(&sun_then, self.site.file.site.elevation_m, self.site.clear_sky_model()).ghi_wm2;
-        if clear_then < 50.0 {
-            return;
-        }
-        let kstar = (y / clear_then).clamp(0.0, 1.5);
-        let plant_rows: Vec<(DateTime<Utc>, u32, f64)> = fc.plant().map(|r| (r.time, r.horizon_s, r.ghi_clear_wm2)).collect();
-        for ((t, h, clear), cam) in plant_rows.into_iter().zip(fc.probes_ghi_wm2.iter()) {
-            self.blend.push(t, h, *cam, kstar * clear);
-        }
-        self.blend.apply(fc, bands, kstar);
-    }
-
-    /// `diffuse_cover`: [`IrradianceParams::diffuse_cover`] of the frame.
-    ///
-    /// Each pyranometer's newest completed reading is paired with the map where the cloud that
-    /// shaded it then has moved to now (its sun-ray point advected by `v_mps` over the time since
-    /// the middle of the reading's period): a reading is never used before its period has ended.
-    ///
-    /// With two layers tracked the brightness feature is left out (its regressor is 0), as in the
-    /// forecast ([`crate::forecast::forecast_with`]).
-    #[allow(clippy::too_many_arguments)]
-    fn tune(&mut self, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, diffuse_cover: f64, (cbh, cbh_factor): (f64, f64), v_mps: Option<[f64; 2]>, two_layers: bool) {
-        let Some((m, cols)) = &self.measurements else { return };
-        let clear = crate::clearsky::clear_sky(sun, self.site.file.site.elevation_m, self.site.clear_sky_model());
-        let cz = sun.apparent_zenith_rad.cos();
-        if clear.ghi_wm2 < 50.0 || cz <= 0.05 {
-            return;
-        }
-        let r = (self.irradiance.blur_min_m / cbh_factor.max(0.1) / map.grid.cell_m).max(0.5);
-        let mut rows = vec![];
-        for (col, pos) in cols {
-            let Some((y, mid)) = m.completed_at(*col, t) else { continue };
-            let lag_s = (*t - mid).num_milliseconds() as f64 / 1000.0;
-            // Readings outside the BSRN physically-possible or extremely-rare GHI limits are not
-            // learnt from.
-            let bad = crate::qc::FLAG_GHI_PHYSICAL | crate::qc::FLAG_GHI_RARE;
-            if !y.is_finite() || crate::qc::bsrn_flags_partial(y, None, None, sun.zenith_rad, sun.earth_sun_distance_au) & bad != 0 {
-                continue;
-            }
-            // Nor stuck readings (gaps give NaN above).
-            if m.stuck_at(*col, &mid, crate::qc::STUCK_RUN) {
-                continue;
-            }
-            // At a base `cbh_factor` times the map's, the pyranometer looks up the map nearer the camera.
-            let (inv_f, cam) = (1.0 / cbh_factor.max(0.1), self.site.file.camera.position_m);
-            let q = sun_ray_plane_point([pos[0] * inv_f, pos[1] * inv_f], cbh, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], sun.apparent_zenith_rad, sun.azimuth_rad);
-            let v = v_mps.unwrap_or([0.0, 0.0]);
-            let (cx, cy) = map.grid.to_cell([q[0] + v[0] * lag_s, q[1] + v[1] * lag_s]);
-            // Class shares and the brightness feature in the look-up box.
-            let mut share = [0f64; 4];
-            let mut k = 0.0;
-            let n = map.grid.n as i64;
-            for j in (cy - r).round() as i64..=(cy + r).round() as i64 {
-                for i in (cx - r).round() as i64..=(cx + r).round() as i64 {
-                    if i < 0 || j < 0 || i >= n || j >= n {
-                        continue;
-                    }
-                    let c = (j * n + i) as usize;
-                    match Class::from_u8(map.class[c]) {
-                        Class::Clear => share[0] += 1.0,
-                        Class::Thin => share[1] += 1.0,
-                        Class::Thick => share[2] += 1.0,
-                        Class::Unknown => continue,
-                    }
-                    share[3] += map.brightness_feature(c) as f64;
-                    k += 1.0;
-                }
-            }
-            if k == 0.0 {
-                continue;
-            }
-            let beam = clear.dni_wm2 * cz / clear.ghi_wm2;
-            let bright = if two_layers { 0.0 } else { beam * share[3] / k };
-            let x = [beam * share[0] / k, beam * share[1] / k, beam * share[2] / k, bright, if diffuse_cover.is_nan() { 0.0 } else { diffuse_cover }];
-            rows.push((x, (y - clear.dhi_wm2) / clear.ghi_wm2));
-        }
-        let max_age_s = self.site.file.irradiance.tune_window_s;
-        for (x, y) in rows {
-            self.tuner.push(*t, x, y, max_age_s);
-        }
-        if let Some(p) = self.tuner.solve(&self.site.file.irradiance) {
-            self.irradiance = p;
-        }
     }
 
 }
@@ -964,56 +515,5 @@ mod tests {
         nc.last_time = Some(t("2026-06-14T09:01:00Z"));
         assert_eq!(nc.judge_clock(t("2026-06-14T09:00:30Z"), back), Ok(None));
         assert_eq!(nc.counters.clock_reanchors, 1);
-    }
-
-    /// Readings misplaced by the look-up (the map says thick cloud on the sun ray while the
-    /// pyranometer is in sun) must not drag the tuned thick-cloud transmittance up: with Huber
-    /// weights it stays near the truth, with plain least squares it does not.
-    #[test]
-    fn robust_tuning_resists_misplaced_readings() {
-        let truth = [0.95, 0.45, 0.05, 0.0, 0.3];
-        let prior = IrradianceParams { beam_clear: 1.0, beam_thin: 0.45, beam_thick: 0.03, diffuse_per_cover: 0.25, ..Default::default() };
-        let mut t = Tuner::default();
-        for i in 0..300 {
-            let beam = 0.85;
-            let cover = 0.2 + 0.4 * ((i * 7 % 11) as f64 / 10.0);
-            // Class shares on the sun ray cycle through clear, thin and thick.
-            let share = match i % 3 {
-                0 => [1.0, 0.0, 0.0],
-                1 => [0.0, 1.0, 0.0],
-                _ => [0.0, 0.0, 1.0],
-            };
-            let x = [beam * share[0], beam * share[1], beam * share[2], 0.0, cover];
-            let mut y: f64 = (0..TUNED).map(|c| x[c] * truth[c]).sum();
-            // One thick reading in four is misplaced: the sensor is in sun.
-            if i % 3 == 2 && i % 4 == 0 {
-                y = beam * truth[0] + cover * truth[4];
-            }
-            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, y, 1e9);
-        }
-        let robust = t.solve(&IrradianceParams { tune_robust_scale: 0.05, ..prior }).unwrap();
-        let plain = t.solve(&IrradianceParams { tune_robust_scale: 0.0, ..prior }).unwrap();
-        assert!((robust.beam_thick - truth[2]).abs() < 0.03, "robust beam_thick {}", robust.beam_thick);
-        assert!(plain.beam_thick > truth[2] + 0.1, "plain least squares should be pulled up: {}", plain.beam_thick);
-        assert!((robust.beam_clear - truth[0]).abs() < 0.03, "robust beam_clear {}", robust.beam_clear);
-    }
-
-    /// Where darker cloud passes less light, the tuning learns the brightness coefficient from a
-    /// window of readings, despite a prior of 0 (ridge shrinkage keeps it somewhat short).
-    #[test]
-    fn tuning_learns_the_brightness_coefficient() {
-        let truth = [1.0, 0.4, 0.05, 1.5, 0.2];
-        let mut t = Tuner::default();
-        for i in 0..90 {
-            let beam = 0.8;
-            let thin = (i % 2) as f64;
-            let bright = 0.12 * (((i * 5) % 7) as f64 / 3.0 - 1.0);
-            let x = [beam * (1.0 - thin), beam * thin, 0.0, beam * thin * bright, 0.6];
-            let y: f64 = (0..TUNED).map(|c| x[c] * truth[c]).sum();
-            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i * 10), x, y, 1e9);
-        }
-        let p = t.solve(&IrradianceParams::default()).unwrap();
-        assert!((p.beam_cloud_brightness - truth[3]).abs() < 0.4, "beam_cloud_brightness {}", p.beam_cloud_brightness);
-        assert!((p.beam_thin - truth[1]).abs() < 0.03, "beam_thin {}", p.beam_thin);
     }
 }

@@ -25,6 +25,8 @@ use base64::Engine as _;
 use sha2::{Digest, Sha256};
 use subtle::ConstantTimeEq;
 
+use super::ServeError;
+
 /// SHA-256 of a token (what the server keeps instead of the token).
 pub type TokenDigest = [u8; 32];
 
@@ -267,19 +269,21 @@ const TOKEN_SHORT_CHARS: usize = 16;
 /// # Errors
 /// Both sources given, an unreadable file, an empty, overlong or multi-line token; the message
 /// names the file or the variable.
-pub fn read_ack_token(file: Option<&std::path::Path>, env_value: Option<String>) -> anyhow::Result<(Option<String>, Vec<String>)> {
+pub fn read_ack_token(file: Option<&std::path::Path>, env_value: Option<String>) -> Result<(Option<String>, Vec<String>), ServeError> {
     let mut warnings = vec![];
     let (token, source) = match (file, env_value) {
-        (Some(f), Some(_)) => anyhow::bail!("--ack-token-file {} and {ACK_TOKEN_ENV} are both given: expected one source for the token", f.display()),
+        (Some(f), Some(_)) => return Err(ServeError::TokenSources(f.to_path_buf())),
         (None, None) => return Ok((None, warnings)),
         (None, Some(v)) => (v.trim().to_string(), ACK_TOKEN_ENV.to_string()),
         (Some(f), None) => {
-            let meta = std::fs::metadata(f).map_err(|e| anyhow::anyhow!("--ack-token-file {}: {e}", f.display()))?;
+            let origin = format!("--ack-token-file {}", f.display());
+            let refused = |expected: String| ServeError::Token { origin: origin.clone(), expected };
+            let meta = std::fs::metadata(f).map_err(|error| ServeError::TokenFile { path: f.to_path_buf(), error })?;
             if !meta.is_file() {
-                anyhow::bail!("--ack-token-file {}: expected a regular file", f.display());
+                return Err(refused("a regular file".into()));
             }
             if meta.len() > TOKEN_MAX_BYTES as u64 + 2 {
-                anyhow::bail!("--ack-token-file {}: expected a token of at most {TOKEN_MAX_BYTES} bytes, the file has {}", f.display(), meta.len());
+                return Err(refused(format!("a token of at most {TOKEN_MAX_BYTES} bytes, the file has {}", meta.len())));
             }
             #[cfg(unix)]
             {
@@ -289,22 +293,23 @@ pub fn read_ack_token(file: Option<&std::path::Path>, env_value: Option<String>)
                     warnings.push(format!("--ack-token-file {}: readable by others (mode {:o}); chmod 600 it", f.display(), mode & 0o777));
                 }
             }
-            let text = std::fs::read_to_string(f).map_err(|e| anyhow::anyhow!("--ack-token-file {}: {e}", f.display()))?;
+            let text = std::fs::read_to_string(f).map_err(|error| ServeError::TokenFile { path: f.to_path_buf(), error })?;
             let t = text.trim();
             if t.lines().count() > 1 {
-                anyhow::bail!("--ack-token-file {}: expected the token on one line, found {} lines", f.display(), t.lines().count());
+                return Err(refused(format!("the token on one line, found {} lines", t.lines().count())));
             }
-            (t.to_string(), format!("--ack-token-file {}", f.display()))
+            (t.to_string(), origin)
         }
     };
+    let refused = |expected: String| Err(ServeError::Token { origin: source.clone(), expected });
     if token.is_empty() {
-        anyhow::bail!("{source}: expected a token, found none (empty)");
+        return refused("a token, found none (empty)".into());
     }
     if token.len() > TOKEN_MAX_BYTES {
-        anyhow::bail!("{source}: expected a token of at most {TOKEN_MAX_BYTES} bytes, got {}", token.len());
+        return refused(format!("a token of at most {TOKEN_MAX_BYTES} bytes, got {}", token.len()));
     }
     if token.chars().any(char::is_control) {
-        anyhow::bail!("{source}: expected printable characters in the token");
+        return refused("printable characters in the token".into());
     }
     if token.chars().count() < TOKEN_SHORT_CHARS {
         warnings.push(format!("{source}: the token has {} characters; use at least {TOKEN_SHORT_CHARS} random ones", token.chars().count()));

@@ -25,6 +25,7 @@ use tokio::io::{AsyncRead, AsyncWrite};
 use tokio::sync::Semaphore;
 use tower::ServiceExt as _;
 
+use super::ServeError;
 use super::guard::AckLimits;
 pub(crate) use super::net::{IdleIo, effective_max_connections, listen};
 
@@ -131,7 +132,7 @@ pub(crate) enum Acceptor {}
 ///
 /// # Errors
 /// Unreadable or invalid PEM files, named; asking for TLS in a build without the `tls` feature.
-pub(crate) fn tls_acceptor(tls: Option<&TlsFiles>) -> anyhow::Result<Option<Acceptor>> {
+pub(crate) fn tls_acceptor(tls: Option<&TlsFiles>) -> Result<Option<Acceptor>, ServeError> {
     let Some(files) = tls else { return Ok(None) };
     #[cfg(feature = "tls")]
     {
@@ -140,27 +141,25 @@ pub(crate) fn tls_acceptor(tls: Option<&TlsFiles>) -> anyhow::Result<Option<Acce
         use tokio_rustls::rustls::pki_types::{CertificateDer, PrivateKeyDer};
         let certs: Vec<CertificateDer<'static>> = CertificateDer::pem_file_iter(&files.cert_pem)
             .and_then(|it| it.collect::<Result<Vec<_>, _>>())
-            .map_err(|e| anyhow::anyhow!("{}: expected a PEM certificate chain: {e}", files.cert_pem.display()))?;
+            .map_err(|e| ServeError::Pem { path: files.cert_pem.clone(), expected: "a PEM certificate chain", error: e.to_string() })?;
         if certs.is_empty() {
-            anyhow::bail!("{}: expected a PEM certificate chain, found no certificate", files.cert_pem.display());
+            return Err(ServeError::NoCertificate(files.cert_pem.clone()));
         }
-        let key = PrivateKeyDer::from_pem_file(&files.key_pem).map_err(|e| anyhow::anyhow!("{}: expected a PEM private key: {e}", files.key_pem.display()))?;
+        let key = PrivateKeyDer::from_pem_file(&files.key_pem)
+            .map_err(|e| ServeError::Pem { path: files.key_pem.clone(), expected: "a PEM private key", error: e.to_string() })?;
         let provider = Arc::new(rustls::crypto::ring::default_provider());
         let mut config = rustls::ServerConfig::builder_with_provider(provider)
             .with_safe_default_protocol_versions()
-            .map_err(|e| anyhow::anyhow!("TLS: {e}"))?
+            .map_err(|e| ServeError::Tls(e.to_string()))?
             .with_no_client_auth()
             .with_single_cert(certs, key)
-            .map_err(|e| anyhow::anyhow!("{} / {}: the certificate and key do not make a usable pair: {e}", files.cert_pem.display(), files.key_pem.display()))?;
+            .map_err(|e| ServeError::KeyPair { cert: files.cert_pem.clone(), key: files.key_pem.clone(), error: e.to_string() })?;
         config.alpn_protocols = vec![b"http/1.1".to_vec()];
         Ok(Some(tokio_rustls::TlsAcceptor::from(Arc::new(config))))
     }
     #[cfg(not(feature = "tls"))]
     {
-        anyhow::bail!(
-            "TLS certificate {} given, but this build has no TLS support: build with `cargo build --release --features tls`",
-            files.cert_pem.display()
-        )
+        Err(ServeError::NoTlsSupport(files.cert_pem.clone()))
     }
 }
 

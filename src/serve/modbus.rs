@@ -261,8 +261,8 @@ impl Feed {
             .map(|t| {
                 let mut v = [[f64::NAN; 3]; 4];
                 for (h, m) in HORIZONS_MIN.iter().enumerate() {
-                    if let Some((k, r)) = nc.forecast.rows.iter().enumerate().find(|(_, r)| &r.target == t && r.horizon_s == m * 60) {
-                        v[h] = nc.bands.get(k).map_or([f64::NAN, r.power_kw, f64::NAN], |b| b.power_kw);
+                    if let Some((_, r)) = nc.forecast.rows().find(|(name, r)| name == t && r.horizon_s == m * 60) {
+                        v[h] = r.band.map_or([f64::NAN, r.power_kw, f64::NAN], |b| b.power_kw);
                     }
                 }
                 v
@@ -517,9 +517,9 @@ impl Drop for ModbusServer {
 ///
 /// # Errors
 /// Refused options ([`ModbusOptions::check`]) or an address that cannot be bound.
-pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> anyhow::Result<(ModbusServer, Vec<String>)> {
-    let warnings = opts.check().map_err(|e| anyhow::anyhow!(e))?;
-    let std_listener = super::net::listen(opts.bind).map_err(|e| anyhow::anyhow!("--modbus-bind {}: {e}", opts.bind))?;
+pub fn start(opts: &ModbusOptions, feed: Arc<Feed>) -> Result<(ModbusServer, Vec<String>), super::ServeError> {
+    let warnings = opts.check().map_err(super::ServeError::ModbusOptions)?;
+    let std_listener = super::net::listen(opts.bind).map_err(|error| super::ServeError::ModbusBind { addr: opts.bind, error })?;
     std_listener.set_nonblocking(true)?;
     let addr = std_listener.local_addr()?;
     let (tx, rx) = tokio::sync::oneshot::channel::<()>();

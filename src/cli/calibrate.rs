@@ -1,0 +1,156 @@
+//! `calibrate` (the camera from the sun's track) and `camera` (directions to pixels and back).
+
+use std::path::PathBuf;
+
+use anyhow::{Result, bail};
+
+use super::args::{CalibrateArgs, CameraCommand, MAX_CALIBRATE_BYTES, MAX_CALIBRATE_FRAMES};
+use crate::sun::position;
+
+/// `calibrate`: fit the camera from the sun's track and write the calibration file with its outputs.
+pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
+    // The site file only: the calibration it names may not exist yet.
+    let site = crate::config::Site::load_without_camera(&a.site)?;
+    let frames = load_calibration_frames(&a.frames)?;
+    let options = crate::calibrate::CalibrateOptions {
+        min_detections: a.min_detections,
+        min_sun_elevation_deg: a.min_sun_elevation_deg,
+        lens: a.lens.as_deref().and_then(crate::calibrate::LensFamily::from_name),
+        map_max_zenith_deg: site.map.max_zenith_deg,
+        ..Default::default()
+    };
+    let (fit, dets) = crate::calibrate::calibrate(&frames, &site.site.observer(), &options)?;
+    let name = a.out.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_else(|| "camera".into());
+    let mut cal = crate::calibrate::calibration_record(&name, &fit, &dets);
+    // The loader's own rules, before anything is written: never write a file `replay` refuses.
+    cal.validate(&a.out).map_err(|e| crate::calibrate::CalibrationError::Unusable(e.to_string()))?;
+    let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
+    crate::io::clean_stale_temps(dir);
+    if a.obstruction_mask {
+        let circle = crate::calibrate::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
+        let day: Vec<&image::RgbImage> = frames
+            .iter()
+            .filter(|(t, _)| position(t, &site.site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
+            .map(|(_, i)| i)
+            .collect();
+        if !day.is_empty() {
+            let mask = crate::calibrate::obstruction_mask(&day, circle);
+            let mp = dir.join(format!("{name}-mask.png"));
+            crate::io::write_atomic(&mp, &crate::io::encode_png_gray(&mask))?;
+            cal.camera.obstruction_mask = Some(PathBuf::from(format!("{name}-mask.png")));
+            crate::say!("wrote {}", mp.display());
+        }
+    }
+    // The clear-sky library of this camera from the same frames.
+    let reference = crate::calibrate::clear_sky_reference(&frames, &fit, &dets, &site.segment);
+    let rp = dir.join(format!("{name}-clear-sky.csv"));
+    crate::io::write_atomic(&rp, reference.to_csv().as_bytes())?;
+    cal.camera.clear_reference = Some(PathBuf::from(format!("{name}-clear-sky.csv")));
+    crate::say!("wrote {} (clear-sky library: {} bins of zenith × sun angle from {} frames)", rp.display(), reference.library_bins(), reference.library_frames);
+    let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
+    let pp = dir.join(format!("{name}-residuals.png"));
+    crate::io::write_atomic(&pp, &crate::io::encode_png_rgb(&plot))?;
+    let dp = dir.join(format!("{name}-detections.csv"));
+    crate::io::write_atomic(&dp, crate::calibrate::detections_csv(&fit, &dets).as_bytes())?;
+    // The calibration file last: a run stopped before this point leaves the old one, which still
+    // names its own (unchanged-name) mask and library files.
+    let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
+    crate::io::write_atomic(&a.out, text.as_bytes())?;
+    print_fit(&fit, dets.len());
+    crate::say!("wrote {}, {} and {}", a.out.display(), pp.display(), dp.display());
+    Ok(())
+}
+
+/// The frames of `calibrate`, decoded, within the count and memory caps; unreadable ones are
+/// skipped with a message.
+fn load_calibration_frames(dirs: &[PathBuf]) -> Result<Vec<(chrono::DateTime<chrono::Utc>, image::RgbImage)>> {
+    let mut frames = vec![];
+    let mut untimed = 0;
+    let mut held_bytes = 0u64;
+    for dir in dirs {
+        let (list, u) = crate::io::list_frames(dir)?;
+        untimed += u;
+        for f in list {
+            if frames.len() >= MAX_CALIBRATE_FRAMES {
+                bail!("--frames: more than {MAX_CALIBRATE_FRAMES} frames; give fewer folders or thin them (a frame every few minutes is enough)");
+            }
+            match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
+                Ok(img) => {
+                    held_bytes += img.as_raw().len() as u64;
+                    if held_bytes > MAX_CALIBRATE_BYTES {
+                        bail!("--frames: the frames need more than {} MB decoded (at {} frames); give fewer frames", MAX_CALIBRATE_BYTES / 1_000_000, frames.len() + 1);
+                    }
+                    frames.push((f.time, img))
+                }
+                Err(e) => eprintln!("skipped {}: {e}", f.path.display()),
+            }
+        }
+    }
+    if frames.is_empty() {
+        bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", dirs, crate::io::FRAME_NAME_PATTERN);
+    }
+    Ok(frames)
+}
+
+/// Print a fit: residuals, lens families, parameters, field, coverage, bounds and warnings.
+fn print_fit(fit: &crate::calibrate::Fit, detections: usize) {
+    crate::say!("{} sun detections; model {}; residual RMS {:.2} px ({:.3}°), largest {:.2} px ({:.3}°)", detections, fit.camera.projection.name(), fit.rms_px, fit.rms_deg, fit.max_px, fit.max_deg);
+    for s in &fit.scores {
+        crate::say!("  lens {:<14} held-out RMS {:.3} px (in-sample {:.3} px){}", s.family.name(), s.cv_rms_px, s.fit_rms_px, if s.family == fit.family { "  <- chosen" } else { "" });
+    }
+    for (n, v, se) in &fit.params {
+        crate::say!("  {n:<14} {v:>12.4} ± {se:.4}");
+    }
+    crate::say!("  field          {:>12.2}° from the axis (where the lens puts the image circle's rim)", fit.camera.max_field_angle_rad.to_degrees());
+    crate::say!(
+        "detections cover zenith {:.0}–{:.0}° over {:.0}° of azimuth; stated direction-error bound by zenith band:",
+        fit.coverage.zenith_min_deg,
+        fit.coverage.zenith_max_deg,
+        fit.coverage.azimuth_span_deg
+    );
+    for b in &fit.bounds {
+        crate::say!("  {:>4.0}–{:<4.0}° {:>8.3}°", b.zenith_from_deg, b.zenith_to_deg, b.bound_deg);
+    }
+    for w in &fit.warnings {
+        crate::say!("warning: {w}");
+    }
+}
+
+/// `camera project` / `camera unproject`: directions to pixels and back, from standard input.
+pub(super) fn cmd_camera(c: CameraCommand) -> Result<()> {
+    use std::io::BufRead;
+    let (path, forward) = match &c {
+        CameraCommand::Project { calibration } => (calibration, true),
+        CameraCommand::Unproject { calibration } => (calibration, false),
+    };
+    let cal: crate::config::CalibrationFile = crate::config::read_toml(path)?;
+    let cam = cal.validate(path)?;
+    crate::say!("{}", if forward { "x_px,y_px" } else { "zenith_deg,azimuth_deg" });
+    for (i, line) in std::io::stdin().lock().lines().enumerate() {
+        let line = line?;
+        let t = line.trim();
+        if t.is_empty() || (i == 0 && t.chars().next().is_some_and(|c| c.is_alphabetic())) {
+            continue;
+        }
+        let v: Vec<f64> = t
+            .split(',')
+            .map(|x| x.trim().parse::<f64>())
+            .collect::<Result<_, _>>()
+            .map_err(|_| anyhow::anyhow!("standard input line {}: expected two numbers separated by a comma, got {t:?}", i + 1))?;
+        if v.len() != 2 {
+            bail!("standard input line {}: expected two numbers, got {}", i + 1, v.len());
+        }
+        if forward {
+            match cam.project(v[0].to_radians(), v[1].to_radians()) {
+                Some((x, y)) => crate::say!("{x:.4},{y:.4}"),
+                None => crate::say!(","),
+            }
+        } else {
+            match cam.unproject(v[0], v[1]) {
+                Some((z, a)) => crate::say!("{:.6},{:.6}", z.to_degrees(), a.to_degrees()),
+                None => crate::say!(","),
+            }
+        }
+    }
+    Ok(())
+}

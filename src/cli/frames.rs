@@ -1,0 +1,101 @@
+//! `segment` (classes and cloud fraction of frames) and `qc` (quality control of a measurements
+//! table).
+
+use anyhow::{Result, bail};
+
+use super::args::{QcArgs, SegmentArgs};
+use crate::io::parse_time;
+use crate::sun::position;
+
+/// `segment`: classify frames and print their cloud fraction (and class pictures when asked).
+pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
+    use crate::calibrate::geometry_free;
+    use crate::segment::{ImageGeometry, Reference, segment_image};
+    let site = a.site.as_ref().map(|p| crate::config::Site::load(p)).transpose()?;
+    let cal_cam = match &a.calibration {
+        Some(p) => {
+            let c: crate::config::CalibrationFile = crate::config::read_toml(p)?;
+            Some(c.validate(p)?)
+        }
+        None => None,
+    };
+    let fixed_time = a.time.as_deref().map(|t| parse_time("--time", t)).transpose().map_err(anyhow::Error::msg)?;
+    let params = site.as_ref().map(|s| s.file.segment.clone()).unwrap_or_default();
+    let mut geoms: Vec<(crate::camera::Camera, ImageGeometry)> = vec![];
+    for path in &a.images {
+        let img = crate::intake::read_frame(path, &crate::intake::IntakeOptions::default())?;
+        let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+        let (cam, sun) = if let Some(s) = &site {
+            let t = fixed_time.or_else(|| crate::io::time_from_frame_name(&name)).ok_or_else(|| {
+                anyhow::anyhow!("{}: no time: give --time or name the file with its UTC time ({})", path.display(), crate::io::FRAME_NAME_PATTERN)
+            })?;
+            let sp = position(&t, &s.observer())?;
+            let d = sp.direction_enu();
+            (s.camera.clone(), Some([d[0] as f32, d[1] as f32, d[2] as f32]))
+        } else if let Some(c) = &cal_cam {
+            let sun = crate::calibrate::find_sun_blob(&img, 245, 5, 0.06 * c.image_circle_radius_px())
+                .and_then(|(x, y, _)| c.unproject_enu(x, y))
+                .map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]);
+            (c.clone(), sun)
+        } else {
+            geometry_free(&img).ok_or_else(|| anyhow::anyhow!("{}: no image circle found (is the frame black?)", path.display()))?
+        };
+        if (cam.width_px, cam.height_px) != img.dimensions() {
+            bail!("{}: image is {}x{} px, the calibration says {}x{}", path.display(), img.width(), img.height(), cam.width_px, cam.height_px);
+        }
+        let geom = match geoms.iter().find(|(c, _)| *c == cam) {
+            Some((_, g)) => g.clone(),
+            None => {
+                let g = ImageGeometry::from_camera(&cam, site.as_ref().and_then(|s| s.obstruction.as_ref()));
+                geoms.push((cam.clone(), g.clone()));
+                g
+            }
+        };
+        let seg = segment_image(&img, &geom, sun, &params, &Reference::default());
+        let stem = path.file_stem().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+        let out = a.out.join(format!("{stem}_classes.png"));
+        crate::io::write_atomic(&out, &crate::io::encode_png_gray(&seg.classes))?;
+        crate::say!("{},{:.4},{}", path.display(), seg.cloud_fraction, out.display());
+    }
+    Ok(())
+}
+
+/// `qc`: quality control of a measurements table, flag counts per column.
+pub(super) fn cmd_qc(a: QcArgs) -> Result<()> {
+    use crate::qc::*;
+    let site = crate::config::Site::load(&a.site)?;
+    let m = crate::io::Measurements::read_csv(&a.measurements)?;
+    let col = |n: &str| m.column(n).map(|c| m.columns[c].as_slice());
+    // (label, GHI, DNI, DHI)
+    type Set<'a> = (String, &'a [f64], Option<&'a [f64]>, Option<&'a [f64]>);
+    let mut sets: Vec<Set> = vec![];
+    if let Some(g) = col("ghi") {
+        sets.push(("ghi".into(), g, col("dni"), col("dhi")));
+    }
+    for (i, n) in m.names.iter().enumerate() {
+        if n.starts_with("ghi_") && n.ends_with("_wm2") {
+            sets.push((n.clone(), m.columns[i].as_slice(), None, None));
+        }
+    }
+    if sets.is_empty() {
+        bail!("{}: no irradiance columns (expected ghi[, dni, dhi] or ghi_<name>_wm2)", a.measurements.display());
+    }
+    let mut header = vec!["time_utc".to_string()];
+    let mut all = vec![];
+    for (label, g, dn, dh) in &sets {
+        let f = qc_series_partial(&m.times, g, *dn, *dh, &site.observer());
+        let counts: Vec<String> = flag_counts(&f).into_iter().map(|(n, c)| format!("{n} {c}")).collect();
+        crate::say!("{label}: {} rows, {} flagged{}{}", f.len(), f.iter().filter(|x| **x != 0).count(), if counts.is_empty() { "" } else { ": " }, counts.join(", "));
+        header.push(format!("{label}_flags"));
+        all.push(f);
+    }
+    if let Some(out) = &a.out {
+        let mut csv = crate::io::CsvTable::new(header);
+        for (i, t) in m.times.iter().enumerate() {
+            csv.row(std::iter::once(crate::io::fmt_time(t)).chain(all.iter().map(|f| f[i].to_string())));
+        }
+        crate::io::write_atomic(out, &csv.into_bytes())?;
+        crate::say!("wrote {} (flags are bit sets: 1 GHI impossible, 2 GHI rare, 4/8 DNI, 16/32 DHI, 64 closure, 128 missing, 256 stuck, 512 gap)", out.display());
+    }
+    Ok(())
+}

@@ -1,0 +1,368 @@
+//! The engine thread of live mode ([`LiveEngine`]): frames from the watcher through the nowcaster,
+//! and the reports of each step.
+
+use std::collections::HashSet;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+
+use chrono::{DateTime, Utc};
+use tokio::sync::broadcast;
+
+use super::shared::Shared;
+use super::watch::Watcher;
+use super::{LiveOptions, db, modbus, notify, ops};
+use crate::io::{fmt_time, list_frames};
+use crate::nowcast::{Frame, Nowcast, Nowcaster, Rejection};
+use crate::records::nowcast_json;
+
+/// The engine thread of live mode: the nowcaster with its state and everything it reports to
+/// (SQLite log, shared health and latest nowcast, event stream, Modbus registers, webhook). Each
+/// poll: prune the archive, take measurement rows, note untimed files, reject frames dated ahead of
+/// the clock, then step the newest ready frame and report it.
+pub(super) struct LiveEngine {
+    opts: LiveOptions,
+    nc: Nowcaster,
+    conn: rusqlite::Connection,
+    shared: Arc<Mutex<Shared>>,
+    tx: broadcast::Sender<String>,
+    registers: Arc<modbus::Feed>,
+    notifier: Option<notify::Notifier>,
+    watch: Watcher,
+    intake: crate::intake::IntakeOptions,
+    /// The site's display time zone, given with every nowcast (times stay UTC).
+    time_zone: serde_json::Value,
+    processed: usize,
+    feed: Option<ops::MeasurementFeed>,
+    tuning_reset_done: bool,
+    untimed_seen: HashSet<String>,
+    untimed_in_folder: usize,
+    pruned_at: Option<std::time::Instant>,
+}
+
+/// What a frame's step gave, for the reports after it.
+struct Stepped {
+    frame: Result<Frame, Rejection>,
+    result: Result<Nowcast, Rejection>,
+    latency_ms: f64,
+}
+
+impl LiveEngine {
+    pub(super) fn new(opts: LiveOptions, nc: Nowcaster, conn: rusqlite::Connection, shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, registers: Arc<modbus::Feed>, notifier: Option<notify::Notifier>) -> LiveEngine {
+        let intake = nc.intake_options();
+        let time_zone = serde_json::to_value(nc.site().file.site.time_zone()).unwrap_or_default();
+        let feed = opts.health.measurements.as_deref().map(ops::MeasurementFeed::new);
+        LiveEngine {
+            opts,
+            nc,
+            conn,
+            shared,
+            tx,
+            registers,
+            notifier,
+            watch: Watcher::default(),
+            intake,
+            time_zone,
+            processed: 0,
+            feed,
+            tuning_reset_done: false,
+            untimed_seen: HashSet::new(),
+            untimed_in_folder: 0,
+            pruned_at: None,
+        }
+    }
+
+    fn log(&self, fields: &[(&str, String)]) {
+        eprintln!("{}", ops::log_line(fields, self.opts.health.log_json));
+    }
+
+    /// Poll until `stop` is set.
+    pub(super) fn run(mut self, stop: Arc<AtomicBool>) {
+        if let Ok(mut s) = self.shared.lock() {
+            s.health.running = true;
+        }
+        while !stop.load(Ordering::SeqCst) {
+            std::thread::sleep(std::time::Duration::from_millis(self.opts.poll_ms));
+            self.prune_archive();
+            if let Some(f) = self.feed.as_mut() {
+                feed_step(f, &mut self.nc, &self.shared, &mut self.tuning_reset_done, &self.opts.health);
+            }
+            let Ok((frames, untimed)) = list_frames(&self.opts.incoming) else { continue };
+            self.note_untimed(untimed);
+            let poll = self.watch.poll(&frames);
+            for note in &poll.notes {
+                eprintln!("nephocast live: {note}");
+            }
+            if !poll.notes.is_empty()
+                && let Ok(mut s) = self.shared.lock()
+            {
+                s.health.frames_changed = self.watch.changed;
+            }
+            // Frames dated ahead of the clock are rejected one by one (they must not hide the
+            // newest good frame, e.g. after a restart with a future-dated file still in the folder).
+            let now = Utc::now();
+            let tol = self.nc.site().file.qc.max_ahead_of_clock_s;
+            let (future, ready): (Vec<_>, Vec<_>) = poll.ready.into_iter().partition(|f| (f.time - now).num_milliseconds() as f64 / 1000.0 > tol);
+            self.reject_future(&future, now);
+            let Some(newest) = ready.iter().max_by_key(|f| f.time).cloned() else { continue };
+            for f in ready.iter().filter(|f| f.path != newest.path) {
+                self.log(&[("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())]);
+            }
+            let stepped = self.step(&newest);
+            self.report(&newest, stepped, ready.len() - 1);
+            retire_all(&ready, &self.opts.health.retention, &self.shared, self.opts.health.log_json);
+        }
+        if let Ok(mut s) = self.shared.lock() {
+            s.health.running = false;
+        }
+    }
+
+    /// Remove archived frames beyond their keep time, at most once an hour.
+    fn prune_archive(&mut self) {
+        if let (ops::Retention::Archive(dir), Some(days)) = (&self.opts.health.retention, self.opts.health.archive_keep_days)
+            && self.pruned_at.is_none_or(|t| t.elapsed().as_secs() >= 3600)
+        {
+            self.pruned_at = Some(std::time::Instant::now());
+            for p in ops::prune_archive(dir, days, Utc::now().date_naive()) {
+                self.log(&[("event", "retention".into()), ("folder", p.display().to_string()), ("done", format!("removed (older than {days} days)"))]);
+            }
+        }
+    }
+
+    /// Log each file without a time in its name once, and show the last 20 in the health.
+    fn note_untimed(&mut self, untimed: usize) {
+        if untimed == self.untimed_in_folder {
+            return;
+        }
+        self.untimed_in_folder = untimed;
+        let new: Vec<String> = ops::untimed_files(&self.opts.incoming).into_iter().filter(|n| self.untimed_seen.insert(n.clone())).collect();
+        for n in &new {
+            self.log(&[("event", "untimed".into()), ("file", n.clone()), ("reason", format!("no time in the name (expected {})", crate::io::FRAME_NAME_PATTERN))]);
+        }
+        if !new.is_empty()
+            && let Ok(mut s) = self.shared.lock()
+        {
+            s.health.frames_untimed = self.untimed_seen.len();
+            s.health.untimed_files.extend(new);
+            let n = s.health.untimed_files.len();
+            s.health.untimed_files.drain(..n.saturating_sub(20));
+        }
+    }
+
+    /// Reject (count, announce, log, retire) the frames dated beyond the clock's tolerance.
+    fn reject_future(&mut self, future: &[crate::io::FrameRef], now: DateTime<Utc>) {
+        let valid_now = self.shared.lock().map(|s| s.health.data_valid).unwrap_or(false);
+        for f in future {
+            if let Err(r) = self.nc.judge_clock(f.time, now) {
+                let _ = self.tx.send(serde_json::json!({"type": "rejected", "file": f.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string(), "data_valid": valid_now}).to_string());
+                self.log(&[("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "rejected".into()), ("reason", r.to_string())]);
+            }
+        }
+        retire_all(future, &self.opts.health.retention, &self.shared, self.opts.health.log_json);
+        if !future.is_empty()
+            && let Ok(mut s) = self.shared.lock()
+        {
+            s.health.frames_rejected = self.nc.counters.rejected.clone();
+        }
+    }
+
+    /// The clock policy (from the name alone), intake, then the engine; the controller's
+    /// registers are published first, before logging and pictures. Older than what was already
+    /// processed: out of order, counted by the engine.
+    fn step(&mut self, newest: &crate::io::FrameRef) -> Stepped {
+        let t0 = std::time::Instant::now();
+        let frame = match self.nc.judge_clock(newest.time, Utc::now()) {
+            Err(r) => Err(r),
+            Ok(note) => {
+                if let Some(n) = note {
+                    eprintln!("nephocast live: {n}");
+                }
+                crate::intake::read_frame(&newest.path, &self.intake).map(|image| Frame { time: newest.time, image }).map_err(|e| self.nc.reject(Rejection::Intake(e)))
+            }
+        };
+        let result = match &frame {
+            Ok(fr) => self.nc.step(fr),
+            Err(r) => Err(r.clone()),
+        };
+        if let Ok(n) = &result {
+            self.registers.publish(n);
+        }
+        self.watch.taken(newest, result.is_ok());
+        Stepped { frame, result, latency_ms: t0.elapsed().as_secs_f64() * 1000.0 }
+    }
+
+    /// Report a stepped frame: health, history and alarm log, notification, events, overlay, the
+    /// per-frame log line and the shared state.
+    fn report(&mut self, newest: &crate::io::FrameRef, st: Stepped, skipped: usize) {
+        let (valid, health_state, frame_age) = match self.shared.lock() {
+            Ok(mut s) => {
+                if st.frame.is_ok() {
+                    s.ops.newest_read = s.ops.newest_read.max(Some(newest.time));
+                    s.ops.last_read_wall = Some(std::time::Instant::now());
+                    s.health.newest_frame_utc = s.ops.newest_read.map(|t| fmt_time(&t));
+                }
+                s.refresh_health(false);
+                (s.health.data_valid, s.health.health_state.clone(), s.health.frame_age_s)
+            }
+            Err(_) => (false, String::new(), None),
+        };
+        let mut events = vec![];
+        let (mut overlay, mut latest) = (None, None);
+        match &st.result {
+            Ok(n) => {
+                self.processed += 1;
+                let mut j = nowcast_json(n);
+                j["site_time_zone"] = self.time_zone.clone();
+                latest = Some(j);
+                self.log_nowcast(n, valid, &mut events);
+                events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name(), "data_valid": valid, "health": health_state}).to_string());
+                if self.opts.overlay_every > 0 && (self.processed - 1).is_multiple_of(self.opts.overlay_every)
+                    && let Ok(fr) = &st.frame {
+                        overlay = Some(crate::overlay::overlay_png(&fr.image, n, &self.nc));
+                    }
+            }
+            Err(r) => events.push(serde_json::json!({"type": "rejected", "file": newest.path.file_name().map(|x| x.to_string_lossy().into_owned()), "reason": r.to_string(), "data_valid": valid}).to_string()),
+        }
+        self.log_frame(newest, &st, skipped, (valid, &health_state, frame_age));
+        if let Ok(mut s) = self.shared.lock() {
+            s.health.frames_skipped += skipped;
+            s.health.frames_processed = self.nc.counters.used;
+            s.health.frames_rejected = self.nc.counters.rejected.clone();
+            s.health.clock_reanchors = self.nc.counters.clock_reanchors;
+            s.health.frames_changed = self.watch.changed;
+            s.health.alarm = self.nc.alarm_state().name().into();
+            s.health.alarm_current = self.nc.alarm_current();
+            if st.result.is_ok() {
+                s.ops.latency.observe(st.latency_ms / 1000.0);
+                s.latencies.push_back(st.latency_ms);
+                if s.latencies.len() > 500 {
+                    s.latencies.pop_front();
+                }
+                s.last_time = Some(newest.time);
+                s.health.last_frame_utc = Some(fmt_time(&newest.time));
+            }
+            if latest.is_some() {
+                s.latest = latest;
+            }
+            if overlay.is_some() {
+                s.overlay_png = overlay;
+            }
+        }
+        for e in events {
+            let _ = self.tx.send(e);
+        }
+    }
+
+    /// The nowcast into the history, an alarm change into the alarm log, the webhook (held back
+    /// while shelved) and the event stream.
+    fn log_nowcast(&self, n: &Nowcast, valid: bool, events: &mut Vec<String>) {
+        let plant = &n.forecast.plant;
+        let h = db::HistoryRow {
+            time_utc: fmt_time(&n.time),
+            cloud_fraction: n.cloud_fraction,
+            plant_ghi_wm2: plant.first().map(|r| r.irradiance.ghi_wm2).unwrap_or(f64::NAN),
+            plant_power_kw: plant.first().map(|r| r.power_kw).unwrap_or(f64::NAN),
+            speed_mps: n.motion.map(|m| m.v_mps[0].hypot(m.v_mps[1])).unwrap_or(f64::NAN),
+            toward_deg: n.motion.map(|m| m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)).unwrap_or(f64::NAN),
+            alarm: n.alarm.name().into(),
+        };
+        let _ = db::insert_history(&self.conn, n.time.timestamp(), &h, self.opts.keep_s);
+        let Some(ch) = &n.alarm_change else { return };
+        let id = db::insert_alarm(&self.conn, ch).ok();
+        if let Some(nf) = &self.notifier {
+            match db::active_shelf(&self.conn, Utc::now()) {
+                Ok(Some(shelf)) => eprintln!("alarm {} -> {} not notified: shelved until {} by {}", ch.from.name(), ch.to.name(), shelf.until_utc, shelf.shelved_by),
+                _ => {
+                    nf.send(serde_json::json!({"type": "alarm_change", "id": id, "change": ch, "basis": n.alarm_basis, "current": true,
+                        "advisory": "Forecasts and alarms are advisory, not a protection system."}).to_string());
+                }
+            }
+        }
+        events.push(serde_json::json!({"type": "alarm", "change": ch, "data_valid": valid}).to_string());
+    }
+
+    /// The per-frame log line.
+    fn log_frame(&self, newest: &crate::io::FrameRef, st: &Stepped, skipped: usize, (valid, health_state, frame_age): (bool, &str, Option<f64>)) {
+        let f1 = |v: Option<f64>| v.map(|x| format!("{x:.1}")).unwrap_or_default();
+        let measurement_age = self.shared.lock().ok().and_then(|s| s.health.measurement_age_s);
+        self.log(&[
+            ("event", "frame".into()),
+            ("file", file_name(&newest.path)),
+            ("time", fmt_time(&newest.time)),
+            ("outcome", if st.result.is_ok() { "used" } else { "rejected" }.into()),
+            ("reason", st.result.as_ref().err().map(|r| r.to_string()).unwrap_or_default()),
+            ("skipped", skipped.to_string()),
+            ("latency_ms", format!("{:.0}", st.latency_ms)),
+            ("cloud_fraction", st.result.as_ref().ok().map(|n| format!("{:.3}", n.cloud_fraction)).unwrap_or_default()),
+            ("alarm", self.nc.alarm_state().name().into()),
+            ("health", health_state.to_string()),
+            ("data_valid", valid.to_string()),
+            ("frame_age_s", f1(frame_age)),
+            ("measurement_age_s", f1(measurement_age)),
+        ]);
+    }
+}
+
+fn file_name(p: &std::path::Path) -> String {
+    p.file_name().map(|x| x.to_string_lossy().into_owned()).unwrap_or_default()
+}
+
+/// Apply the retention to judged frames, logging what was done.
+fn retire_all(frames: &[crate::io::FrameRef], r: &ops::Retention, shared: &Arc<Mutex<Shared>>, log_json: bool) {
+    if *r == ops::Retention::Keep {
+        return;
+    }
+    let mut n = 0;
+    for f in frames {
+        match ops::retire(&f.path, &f.time, r) {
+            Ok(Some(what)) => {
+                n += 1;
+                eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("file", file_name(&f.path)), ("done", what)], log_json));
+            }
+            Ok(None) => {}
+            Err(e) => eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("file", file_name(&f.path)), ("error", e.to_string())], log_json)),
+        }
+    }
+    if n > 0
+        && let Ok(mut s) = shared.lock()
+    {
+        s.health.frames_retired += n;
+    }
+}
+
+/// Read the measurement feed, append to the engine, and go back to the configured
+/// transmittances once the feed is older than its limit.
+fn feed_step(feed: &mut ops::MeasurementFeed, nc: &mut Nowcaster, shared: &Arc<Mutex<Shared>>, reset_done: &mut bool, o: &ops::HealthOptions) {
+    let poll = feed.poll(&nc.site().file);
+    for n in &poll.notes {
+        eprintln!("nephocast live: {n}");
+    }
+    for (m, counts) in poll.pieces {
+        for (k, v) in counts {
+            *nc.counters.measurements_flagged.entry(k).or_default() += v;
+        }
+        nc.append_measurements(m, ops::FEED_KEEP_S);
+    }
+    let (rows, end) = nc.measurements_newest();
+    // The tuning works in the frames' time: the feed has stopped for it when its newest reading is
+    // older than the limit at the newest frame's time.
+    let newest_frame = shared.lock().ok().and_then(|s| s.ops.newest_read);
+    let old = newest_frame.is_some_and(|f| end.is_none_or(|t| ops::age_s(&t, &f) > o.measurement_max_age_s));
+    let mut reset = false;
+    if old && !*reset_done {
+        reset = nc.reset_tuning();
+        *reset_done = true;
+        if reset {
+            eprintln!("nephocast live: the measurement feed is older than {:.0} s: the tuning goes back to the configured transmittances", o.measurement_max_age_s);
+        }
+    } else if !old {
+        *reset_done = false;
+    }
+    if let Ok(mut s) = shared.lock() {
+        s.health.measurement_rows = rows;
+        s.health.measurement_rows_read = feed.rows_read;
+        s.health.measurement_errors = feed.errors;
+        s.health.tuning_resets += usize::from(reset);
+        s.health.tuning_rows = nc.tuning_rows();
+        s.ops.measurement_end = end;
+    }
+}

@@ -1,0 +1,121 @@
+//! The state the engine thread, the health timer and the HTTP handlers share: the latest nowcast
+//! and overlay, health figures and what the health is judged from; the health timer.
+
+use std::collections::VecDeque;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+
+use chrono::{DateTime, Utc};
+use tokio::sync::broadcast;
+
+use super::{Health, ops};
+
+#[derive(Default)]
+pub(super) struct Shared {
+    pub(super) latest: Option<serde_json::Value>,
+    pub(super) overlay_png: Option<Vec<u8>>,
+    pub(super) health: Health,
+    pub(super) latencies: VecDeque<f64>,
+    pub(super) last_time: Option<DateTime<Utc>>,
+    pub(super) ops: OpsShared,
+}
+
+/// What the health timer judges from.
+pub(super) struct OpsShared {
+    pub(super) started: std::time::Instant,
+    pub(super) newest_read: Option<DateTime<Utc>>,
+    pub(super) last_read_wall: Option<std::time::Instant>,
+    pub(super) measurement_end: Option<DateTime<Utc>>,
+    pub(super) latency: ops::Histogram,
+    pub(super) state: ops::HealthState,
+    pub(super) options: ops::HealthOptions,
+}
+
+impl Default for OpsShared {
+    fn default() -> Self {
+        OpsShared {
+            started: std::time::Instant::now(),
+            newest_read: None,
+            last_read_wall: None,
+            measurement_end: None,
+            latency: Default::default(),
+            state: Default::default(),
+            options: Default::default(),
+        }
+    }
+}
+
+impl Shared {
+    /// Judge the health now; returns the previous state when it changed.
+    pub(super) fn refresh_health(&mut self, heartbeat: bool) -> Option<ops::HealthState> {
+        let now = Utc::now();
+        let o = &self.ops;
+        let inputs = ops::HealthInputs {
+            uptime_s: o.started.elapsed().as_secs_f64(),
+            frame_age_s: o.newest_read.map(|t| ops::age_s(&t, &now)),
+            since_frame_read_s: o.last_read_wall.map(|w| w.elapsed().as_secs_f64()),
+            measurement_age_s: o.measurement_end.map(|t| ops::age_s(&t, &now)),
+            feed: o.options.measurements.is_some(),
+        };
+        let state = ops::evaluate(&inputs, &o.options);
+        let prev = o.state;
+        self.ops.state = state;
+        let h = &mut self.health;
+        h.health_state = state.name().into();
+        h.data_valid = state.data_valid();
+        h.frame_age_s = inputs.frame_age_s;
+        h.measurement_age_s = inputs.measurement_age_s;
+        if heartbeat {
+            h.heartbeat += 1;
+        }
+        (prev != state).then_some(prev)
+    }
+
+    pub(super) fn metrics(&self) -> ops::MetricsInput {
+        let h = &self.health;
+        ops::MetricsInput {
+            processed: h.frames_processed,
+            skipped: h.frames_skipped,
+            rejected: h.frames_rejected.clone(),
+            untimed: h.frames_untimed,
+            measurement_rows: h.measurement_rows_read,
+            latency: self.ops.latency.clone(),
+            alarm: h.alarm.clone(),
+            health: self.ops.state,
+            heartbeat: h.heartbeat,
+            frame_age_s: h.frame_age_s,
+            measurement_age_s: h.measurement_age_s,
+        }
+    }
+}
+
+/// The health timer: judge the health every [`ops::HEALTH_TICK_MS`] ms, log and send each change,
+/// and send the heartbeat every 10 s.
+pub(super) fn health_loop(shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, stop: Arc<AtomicBool>, log_json: bool) {
+    // The state last logged and sent (the engine also judges the health when a frame arrives).
+    let mut announced = shared.lock().map(|s| s.ops.state).unwrap_or_default();
+    while !stop.load(Ordering::SeqCst) {
+        std::thread::sleep(std::time::Duration::from_millis(ops::HEALTH_TICK_MS));
+        let Ok(mut s) = shared.lock() else { return };
+        s.refresh_health(true);
+        let changed = (s.ops.state != announced).then_some(announced);
+        announced = s.ops.state;
+        let h = &s.health;
+        let event = serde_json::json!({"type": "health", "state": h.health_state, "data_valid": h.data_valid, "heartbeat": h.heartbeat,
+            "frame_age_s": h.frame_age_s, "measurement_age_s": h.measurement_age_s});
+        if let Some(prev) = changed {
+            let f = |v: Option<f64>| v.map(|x| format!("{x:.1}")).unwrap_or_default();
+            eprintln!(
+                "{}",
+                ops::log_line(
+                    &[("event", "health".into()), ("state", h.health_state.clone()), ("previous", prev.name().into()), ("data_valid", h.data_valid.to_string()),
+                      ("frame_age_s", f(h.frame_age_s)), ("measurement_age_s", f(h.measurement_age_s)), ("heartbeat", h.heartbeat.to_string())],
+                    log_json
+                )
+            );
+        }
+        if changed.is_some() || h.heartbeat.is_multiple_of(10_000 / ops::HEALTH_TICK_MS) {
+            let _ = tx.send(event.to_string());
+        }
+    }
+}
