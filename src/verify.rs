@@ -21,7 +21,7 @@ use serde::Serialize;
 
 use crate::config::Site;
 use crate::io::{InputError, parse_time};
-use crate::segment::{Class, ImageGeometry, Reference, gamma_deg, segment_image};
+use crate::segment::{Class, ImageGeometry, gamma_deg, segment_image};
 
 /// Root-mean-square error of pairs (forecast, observed).
 pub fn rmse(pairs: &[(f64, f64)]) -> f64 {
@@ -254,7 +254,8 @@ pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, EvalErro
     let site = Site::load(&sequence.join("site.toml"))?;
     let geom = ImageGeometry::from_camera(&site.camera, site.obstruction.as_ref());
     let frames_csv = sequence.join("truth").join("frames.csv");
-    let mut reference = Reference::default();
+    // The engine's starting reference: the camera's clear-sky library when the calibration has one.
+    let mut reference = site.clear_reference.clone().unwrap_or_default();
     let (mut ok, mut n, mut cok, mut cn, mut bok) = (0usize, 0usize, 0usize, 0usize, 0usize);
     let mut worst = 1.0f64;
     let mut frames = 0;
