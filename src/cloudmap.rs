@@ -19,7 +19,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::camera::Camera;
 use crate::settings::{ConfigError, check_range};
-use crate::segment::{Class, PixelGeom, Reference, SegmentParams, gamma_deg};
+use crate::segment::{Class, PixelGeom, Reference, SegmentParams};
 
 /// `[cloudmap]` settings (held in `[motion]` of `site.toml`, see [`crate::motion::MotionParams`]).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -279,41 +279,16 @@ impl CloudMap {
     }
 }
 
-/// Per-cell segmentation inputs that change only with the sun: each cell's angle to the sun \[°\]
-/// (180 without a sun) and its parametric default reference R/B. They change slowly and are
+/// Per-cell segmentation inputs that change only with the sun (the segmentation's
+/// [`SkyGeometry`](crate::segment::SkyGeometry) for a map's cells). They change slowly and are
 /// reused for a few frames.
-#[derive(Debug, Clone)]
-pub struct CellSky {
-    /// Angle to the sun per cell \[°\].
-    pub gamma_deg: Vec<f32>,
-    /// Parametric default reference R/B per cell ([`SegmentParams::default_reference`]).
-    pub default_rb: Vec<f32>,
-    /// Library bin per cell ([`crate::segment::lib_index`]).
-    pub bin: Vec<u16>,
-    /// Whether the cell is judged by its ratio alone ([`SegmentParams::plain_sky`]).
-    pub plain: Vec<bool>,
-    /// Score from which the cell is thick cloud ([`SegmentParams::thick_at`]).
-    pub thick_score: Vec<f32>,
-}
+pub type CellSky = crate::segment::SkyGeometry;
 
 impl CellSky {
-    /// For a table, a sun direction and the segmentation settings.
+    /// For a table, a sun direction and the segmentation settings. Cells the camera does not see
+    /// are never classified: they keep placeholders.
     pub fn new(lut: &Lut, sun_dir: Option<[f32; 3]>, params: &SegmentParams) -> CellSky {
-        // Cells the camera does not see are never classified: they keep placeholders.
-        let n = lut.pixel.len();
-        let mut sky = CellSky { gamma_deg: vec![180.0; n], default_rb: vec![0.0; n], bin: vec![0; n], plain: vec![false; n], thick_score: vec![0.0; n] };
-        for k in 0..n {
-            if lut.pixel[k] == NO_PIXEL {
-                continue;
-            }
-            let (z, g) = (lut.z_deg[k], gamma_deg(lut.dir[k], sun_dir));
-            sky.gamma_deg[k] = g;
-            sky.default_rb[k] = params.default_reference(z, g);
-            sky.bin[k] = crate::segment::lib_index(z, g) as u16;
-            sky.plain[k] = params.plain_sky(z, g);
-            sky.thick_score[k] = params.thick_at(z);
-        }
-        sky
+        crate::segment::SkyGeometry::from_directions(&lut.z_deg, &lut.dir, |k| lut.pixel[k] != NO_PIXEL, sun_dir, params)
     }
 }
 
@@ -362,14 +337,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
             continue;
         }
         in_view[k] = true;
-        let (rgb, (s, c)) = if sky.plain[k] && fr.outside_glare(sky.gamma_deg[k]) {
-            let rgb = if lut.interpolate[k] { px(k) } else { nearest(p) };
-            (rgb, fr.classify_plain(rgb, fr.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), sky.thick_score[k]))
-        } else {
-            let rgb = nearest(p);
-            let (s, c) = fr.classify_with(rgb, geom(k), sky.default_rb[k]);
-            (rgb, (s, c as u8))
-        };
+        let (rgb, s, c) = fr.classify_sample(sky, k, lut.z_deg[k], || if lut.interpolate[k] { px(k) } else { nearest(p) }, || nearest(p));
         score[k] = s;
         class[k] = c;
         blue[k] = rgb[2];
@@ -378,101 +346,55 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
             cloudy_cells += 1;
         }
     }
-    let floor = 0.5 * (params.thin_score + params.thick_score) as f32;
-    far_thickness(&mut class, &score, &lut.z_deg, params.far_thickness_from_zenith_deg as f32, floor);
+    crate::segment::far_thickness(&mut class, &score, &lut.z_deg, params);
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
     let brightness = (0..n).map(|k| if cloudy(class[k]) { (blue[k] as f32 - mean) / 255.0 } else { 0.0 }).collect();
     CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness }
 }
 
-/// Zenith below which the cloudy cells set the thick share the far field is held to \[°\].
-const NEAR_ZENITH_DEG: f32 = 60.0;
-
-/// Cloudy cells the near field needs before it sets the far field's thick share.
-const NEAR_MIN_CLOUDY: usize = 200;
-
-/// Far from the zenith a pixel spans a wide stretch of the cloud plane and a long path of haze, so a
-/// thick cloud there mixes with gaps and sky light and scores as thin: on an independent renderer's
-/// broken cumulus the map called 25 % of cloudy cells thick at zenith 75–80° and 7 % at 80–84°,
-/// against about 80 % within 60°. From `from_deg` on, in bands of 5°, the cloudy cells with the highest
-/// scores are promoted from thin to thick until the band's thick share reaches that of the cloudy
-/// cells within [`NEAR_ZENITH_DEG`] (the cloud field's thickness taken as alike across the sky;
-/// own choice). Only cells scoring at least `floor` are promoted (a veil stays thin); cloud and
-/// clear are left as they were, and no cell is demoted. Off by default (see
-/// `SegmentParams::far_thickness_from_zenith_deg`).
-fn far_thickness(class: &mut [u8], score: &[f32], z_deg: &[f32], from_deg: f32, floor: f32) {
-    let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
-    let (mut near_thick, mut near_cloudy) = (0usize, 0usize);
-    for k in 0..class.len() {
-        if z_deg[k] < NEAR_ZENITH_DEG && (class[k] == thin || class[k] == thick) {
-            near_cloudy += 1;
-            near_thick += (class[k] == thick) as usize;
-        }
-    }
-    if near_cloudy < NEAR_MIN_CLOUDY || from_deg >= 90.0 {
-        return;
-    }
-    let share = near_thick as f64 / near_cloudy as f64;
-    let mut lo = from_deg;
-    while lo < 90.0 {
-        let hi = lo + 5.0;
-        let in_band = |k: usize| z_deg[k] >= lo && z_deg[k] < hi;
-        let mut thin_cells: Vec<usize> = (0..class.len()).filter(|&k| in_band(k) && class[k] == thin).collect();
-        let thick_n = (0..class.len()).filter(|&k| in_band(k) && class[k] == thick).count();
-        let want = (share * (thin_cells.len() + thick_n) as f64).round() as usize;
-        if want > thick_n {
-            thin_cells.sort_by(|&a, &b| score[b].total_cmp(&score[a]));
-            for &k in thin_cells.iter().take(want - thick_n).filter(|&&k| score[k] >= floor) {
-                class[k] = thick;
-            }
-        }
-        lo = hi;
-    }
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
 
-    /// Far cloudy cells are promoted, highest score first, until their band's thick share matches
-    /// the near field's; cells under the floor, clear cells and near cells stay as they were.
+    /// One segmentation path: the map's class of a cell read from one pixel is the image
+    /// segmentation's class of that pixel (patches of clear, thin and thick sky, with a clipped sun
+    /// disc). Only the frame's reference comes from different samples (cells against pixels).
     #[test]
-    fn far_thickness_matches_the_near_share() {
-        let (clear, thin, thick) = (Class::Clear as u8, Class::Thin as u8, Class::Thick as u8);
-        // 400 near cloudy cells, 3 in 4 thick; 100 far cloudy cells (zenith 77°), all thin, scores
-        // 0.50–0.99; 50 far clear cells.
-        let mut class = vec![];
-        let mut score = vec![];
-        let mut z = vec![];
-        for k in 0..400 {
-            class.push(if k % 4 == 0 { thin } else { thick });
-            score.push(0.9);
-            z.push(30.0);
+    fn map_cells_and_image_pixels_are_classified_alike() {
+        let cam = Camera::ideal(256);
+        let g = Grid::new(&MapParams { cells: 96, ..Default::default() }, 1000.0);
+        let lut = Lut::build(&cam, None, g);
+        let colours = [[70u8, 110, 200], [160, 175, 210], [230, 232, 240]];
+        let sun = {
+            let (z, a) = (35f32.to_radians(), 120f32.to_radians());
+            [z.sin() * a.sin(), z.sin() * a.cos(), z.cos()]
+        };
+        let img = image::RgbImage::from_fn(256, 256, |x, y| {
+            let near_sun = cam.unproject_enu(x as f64, y as f64).is_some_and(|d| crate::segment::gamma_deg([d[0] as f32, d[1] as f32, d[2] as f32], Some(sun)) < 4.0);
+            image::Rgb(if near_sun { [255, 255, 255] } else { colours[((x / 12 + 2 * (y / 12)) % 3) as usize] })
+        });
+        let sun = Some(sun);
+        let params = SegmentParams::default();
+        let reference = Reference::default();
+        let map = build_map(&img, &lut, sun, &params, &reference);
+        let seg = crate::segment::segment_image(&img, &crate::segment::ImageGeometry::from_camera(&cam, None), sun, &params, &reference);
+        let sky = CellSky::new(&lut, sun, &params);
+        let (mut same, mut n, mut near_sun_differ) = (0usize, 0usize, 0usize);
+        for k in (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != NO_PIXEL && !lut.interpolate[k]) {
+            let alike = map.class[k] == seg.classes.as_raw()[lut.pixel[k] as usize];
+            if !alike && sky.gamma_deg[k] < params.glare_zone_deg as f32 {
+                // The glare rings are judged from each path's own sample: the edge may differ.
+                near_sun_differ += 1;
+                continue;
+            }
+            n += 1;
+            same += usize::from(alike);
         }
-        for k in 0..100 {
-            class.push(thin);
-            score.push(0.5 + 0.0049 * k as f32);
-            z.push(77.0);
-        }
-        for _ in 0..50 {
-            class.push(clear);
-            score.push(0.1);
-            z.push(77.0);
-        }
-        let before = class.clone();
-        far_thickness(&mut class, &score, &z, 90.0, 0.0);
-        assert_eq!(class, before, "90° is off");
-        far_thickness(&mut class, &score, &z, 70.0, 0.0);
-        let far: Vec<u8> = class[400..500].to_vec();
-        assert_eq!(far.iter().filter(|c| **c == thick).count(), 75);
-        assert!(far[..25].iter().all(|c| *c == thin) && far[25..].iter().all(|c| *c == thick), "highest scores first");
-        assert_eq!(&class[..400], &before[..400]);
-        assert!(class[500..].iter().all(|c| *c == clear));
-        // A floor above most far scores leaves those thin.
-        let mut floored = before.clone();
-        far_thickness(&mut floored, &score, &z, 70.0, 0.9);
-        assert_eq!(floored[400..500].iter().filter(|c| **c == thick).count(), 100 - 82);
+        assert!(near_sun_differ <= 3, "{near_sun_differ} cells near the sun differ");
+        let classes: std::collections::BTreeSet<u8> = map.class.iter().copied().collect();
+        assert!(n > 1000 && classes.len() >= 3, "{n} cells, classes {classes:?}");
+        assert_eq!(same, n, "{} of {n} cells differ from their pixel", n - same);
     }
 
     #[test]

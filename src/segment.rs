@@ -320,6 +320,24 @@ impl FrameReference<'_> {
         (s, judged * (1 + (s >= p.thin_score as f32) as u8 + (s >= thick_score) as u8))
     }
 
+    /// The segmentation's one classification of a sample `k` of `sky` (a map cell or an image pixel):
+    /// its reading, score and class (as u8). Plain sky ([`SegmentParams::plain_sky`] and outside this
+    /// frame's glare) is judged from `plain_rgb` by [`FrameReference::classify_plain`]; near the sun,
+    /// where clipping is judged, from `exact_rgb` (the nearest pixel: interpolation would blur a
+    /// clipped disc's edge into near-white unclipped values) by [`FrameReference::classify_with`].
+    #[inline]
+    pub fn classify_sample(&self, sky: &SkyGeometry, k: usize, z_deg: f32, plain_rgb: impl FnOnce() -> [u8; 3], exact_rgb: impl FnOnce() -> [u8; 3]) -> ([u8; 3], f32, u8) {
+        if sky.plain[k] && self.outside_glare(sky.gamma_deg[k]) {
+            let rgb = plain_rgb();
+            let (s, c) = self.classify_plain(rgb, self.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), sky.thick_score[k]);
+            (rgb, s, c)
+        } else {
+            let rgb = exact_rgb();
+            let (s, c) = self.classify_with(rgb, PixelGeom { z_deg, gamma_deg: sky.gamma_deg[k] }, sky.default_rb[k]);
+            (rgb, s, c as u8)
+        }
+    }
+
     /// Cloudiness score and class of one pixel.
     #[inline]
     pub fn classify(&self, rgb: [u8; 3], g: PixelGeom) -> (f32, Class) {
@@ -598,7 +616,9 @@ pub fn acos_approx(x: f32) -> f32 {
     if x < 0.0 { std::f32::consts::PI - r } else { r }
 }
 
-/// Segment a whole image.
+/// Segment a whole image, pixel by pixel, through the same path as the engine's map
+/// ([`SkyGeometry`], [`FrameReference::classify_sample`], [`far_thickness`]); only the samples differ
+/// (every pixel here, one reading per cell there).
 pub fn segment_image(
     img: &image::RgbImage,
     geom: &ImageGeometry,
@@ -609,23 +629,23 @@ pub fn segment_image(
     let (w, h) = (geom.width as usize, geom.height as usize);
     let raw = img.as_raw();
     let px = |i: usize| [raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]];
-    let g = |i: usize| PixelGeom { z_deg: geom.z_deg[i], gamma_deg: gamma_deg(geom.dir[i], sun_dir) };
-    let sample = (0..w * h).step_by(2).filter(|&i| !geom.z_deg[i].is_nan()).map(|i| (px(i), g(i)));
-    let fr = reference.for_frame(params, sample);
+    let seen = |i: usize| !geom.z_deg[i].is_nan();
+    let sky = SkyGeometry::from_directions(&geom.z_deg, &geom.dir, seen, sun_dir, params);
+    let g = |i: usize| PixelGeom { z_deg: geom.z_deg[i], gamma_deg: sky.gamma_deg[i] };
+    let sample = (0..w * h).step_by(2).filter(|&i| seen(i)).map(|i| (px(i), g(i), sky.default_rb[i]));
+    let fr = reference.for_frame_with(params, sample);
     let mut classes = vec![0u8; w * h];
+    let mut score = vec![f32::NAN; w * h];
+    for i in (0..w * h).filter(|&i| seen(i)) {
+        let (_, s, c) = fr.classify_sample(&sky, i, geom.z_deg[i], || px(i), || px(i));
+        (score[i], classes[i]) = (s, c);
+    }
+    far_thickness(&mut classes, &score, &geom.z_deg, params);
     let (mut cloudy, mut counted) = (0usize, 0usize);
-    for (i, class) in classes.iter_mut().enumerate() {
-        if geom.z_deg[i].is_nan() {
-            continue;
-        }
-        let gi = g(i);
-        let (_, c) = fr.classify(px(i), gi);
-        *class = c as u8;
-        if c != Class::Unknown && gi.z_deg < params.cloud_fraction_zenith_deg as f32 {
+    for i in (0..w * h).filter(|&i| seen(i) && geom.z_deg[i] < params.cloud_fraction_zenith_deg as f32) {
+        if classes[i] != Class::Unknown as u8 {
             counted += 1;
-            if c != Class::Clear {
-                cloudy += 1;
-            }
+            cloudy += usize::from(classes[i] != Class::Clear as u8);
         }
     }
     Segmentation {
@@ -635,12 +655,145 @@ pub fn segment_image(
     }
 }
 
+/// What the segmentation needs of each sample (a map cell or an image pixel) that changes only with
+/// the sun: its angle to the sun \[°\] (180 without a sun), parametric default reference R/B,
+/// library bin, whether it is judged by its ratio alone, and its thick-cloud score. The engine's map
+/// (`cloudmap::CellSky`) and [`segment_image`] build it the same way and classify through
+/// [`FrameReference::classify_sample`]: one segmentation path.
+#[derive(Debug, Clone)]
+pub struct SkyGeometry {
+    /// Angle to the sun per sample \[°\].
+    pub gamma_deg: Vec<f32>,
+    /// Parametric default reference R/B per sample ([`SegmentParams::default_reference`]).
+    pub default_rb: Vec<f32>,
+    /// Library bin per sample ([`lib_index`]).
+    pub bin: Vec<u16>,
+    /// Whether the sample is judged by its ratio alone ([`SegmentParams::plain_sky`]).
+    pub plain: Vec<bool>,
+    /// Score from which the sample is thick cloud ([`SegmentParams::thick_at`]).
+    pub thick_score: Vec<f32>,
+}
+
+impl SkyGeometry {
+    /// From each sample's zenith \[°\] and unit ENU direction; samples for which `seen` is false keep
+    /// placeholders and are never classified.
+    pub fn from_directions(z_deg: &[f32], dir: &[[f32; 3]], seen: impl Fn(usize) -> bool, sun_dir: Option<[f32; 3]>, params: &SegmentParams) -> SkyGeometry {
+        let n = z_deg.len();
+        let mut sky = SkyGeometry { gamma_deg: vec![180.0; n], default_rb: vec![0.0; n], bin: vec![0; n], plain: vec![false; n], thick_score: vec![0.0; n] };
+        for k in 0..n {
+            if !seen(k) {
+                continue;
+            }
+            let (z, g) = (z_deg[k], gamma_deg(dir[k], sun_dir));
+            sky.gamma_deg[k] = g;
+            sky.default_rb[k] = params.default_reference(z, g);
+            sky.bin[k] = lib_index(z, g) as u16;
+            sky.plain[k] = params.plain_sky(z, g);
+            sky.thick_score[k] = params.thick_at(z);
+        }
+        sky
+    }
+}
+
+/// Promote far thin cells to thick where [`SegmentParams::far_thickness_from_zenith_deg`] asks for
+/// it (see [`promote_far_cells`]); the floor is halfway between the thin and thick scores. Applied
+/// to a map's cells and to an image's pixels alike.
+pub fn far_thickness(class: &mut [u8], score: &[f32], z_deg: &[f32], params: &SegmentParams) {
+    let floor = 0.5 * (params.thin_score + params.thick_score) as f32;
+    promote_far_cells(class, score, z_deg, params.far_thickness_from_zenith_deg as f32, floor);
+}
+
+/// Zenith below which the cloudy cells set the thick share the far field is held to \[°\].
+const NEAR_ZENITH_DEG: f32 = 60.0;
+
+/// Cloudy cells the near field needs before it sets the far field's thick share.
+const NEAR_MIN_CLOUDY: usize = 200;
+
+/// Far from the zenith a pixel spans a wide stretch of the cloud plane and a long path of haze, so a
+/// thick cloud there mixes with gaps and sky light and scores as thin: on an independent renderer's
+/// broken cumulus the map called 25 % of cloudy cells thick at zenith 75–80° and 7 % at 80–84°,
+/// against about 80 % within 60°. From `from_deg` on, in bands of 5°, the cloudy cells with the highest
+/// scores are promoted from thin to thick until the band's thick share reaches that of the cloudy
+/// cells within [`NEAR_ZENITH_DEG`] (the cloud field's thickness taken as alike across the sky;
+/// own choice). Only cells scoring at least `floor` are promoted (a veil stays thin); cloud and
+/// clear are left as they were, and no cell is demoted. Off by default (see
+/// [`SegmentParams::far_thickness_from_zenith_deg`]).
+fn promote_far_cells(class: &mut [u8], score: &[f32], z_deg: &[f32], from_deg: f32, floor: f32) {
+    let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
+    let (mut near_thick, mut near_cloudy) = (0usize, 0usize);
+    for k in 0..class.len() {
+        if z_deg[k] < NEAR_ZENITH_DEG && (class[k] == thin || class[k] == thick) {
+            near_cloudy += 1;
+            near_thick += (class[k] == thick) as usize;
+        }
+    }
+    if near_cloudy < NEAR_MIN_CLOUDY || from_deg >= 90.0 {
+        return;
+    }
+    let share = near_thick as f64 / near_cloudy as f64;
+    let mut lo = from_deg;
+    while lo < 90.0 {
+        let hi = lo + 5.0;
+        let in_band = |k: usize| z_deg[k] >= lo && z_deg[k] < hi;
+        let mut thin_cells: Vec<usize> = (0..class.len()).filter(|&k| in_band(k) && class[k] == thin).collect();
+        let thick_n = (0..class.len()).filter(|&k| in_band(k) && class[k] == thick).count();
+        let want = (share * (thin_cells.len() + thick_n) as f64).round() as usize;
+        if want > thick_n {
+            thin_cells.sort_by(|&a, &b| score[b].total_cmp(&score[a]));
+            for &k in thin_cells.iter().take(want - thick_n).filter(|&&k| score[k] >= floor) {
+                class[k] = thick;
+            }
+        }
+        lo = hi;
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
 
     fn geom(z: f32, g: f32) -> PixelGeom {
         PixelGeom { z_deg: z, gamma_deg: g }
+    }
+
+    /// Far cloudy cells are promoted, highest score first, until their band's thick share matches
+    /// the near field's; cells under the floor, clear cells and near cells stay as they were.
+    #[test]
+    fn far_thickness_matches_the_near_share() {
+        let (clear, thin, thick) = (Class::Clear as u8, Class::Thin as u8, Class::Thick as u8);
+        // 400 near cloudy cells, 3 in 4 thick; 100 far cloudy cells (zenith 77°), all thin, scores
+        // 0.50–0.99; 50 far clear cells.
+        let mut class = vec![];
+        let mut score = vec![];
+        let mut z = vec![];
+        for k in 0..400 {
+            class.push(if k % 4 == 0 { thin } else { thick });
+            score.push(0.9);
+            z.push(30.0);
+        }
+        for k in 0..100 {
+            class.push(thin);
+            score.push(0.5 + 0.0049 * k as f32);
+            z.push(77.0);
+        }
+        for _ in 0..50 {
+            class.push(clear);
+            score.push(0.1);
+            z.push(77.0);
+        }
+        let before = class.clone();
+        promote_far_cells(&mut class, &score, &z, 90.0, 0.0);
+        assert_eq!(class, before, "90° is off");
+        promote_far_cells(&mut class, &score, &z, 70.0, 0.0);
+        let far: Vec<u8> = class[400..500].to_vec();
+        assert_eq!(far.iter().filter(|c| **c == thick).count(), 75);
+        assert!(far[..25].iter().all(|c| *c == thin) && far[25..].iter().all(|c| *c == thick), "highest scores first");
+        assert_eq!(&class[..400], &before[..400]);
+        assert!(class[500..].iter().all(|c| *c == clear));
+        // A floor above most far scores leaves those thin.
+        let mut floored = before.clone();
+        promote_far_cells(&mut floored, &score, &z, 70.0, 0.9);
+        assert_eq!(floored[400..500].iter().filter(|c| **c == thick).count(), 100 - 82);
     }
 
     #[test]
