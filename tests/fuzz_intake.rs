@@ -159,7 +159,13 @@ fn mutate(rng: &mut Rng, seeds: &[(&str, Vec<u8>)]) -> (String, Vec<u8>, bool) {
 
 #[test]
 fn fuzz_frame_intake() {
-    let cases: usize = std::env::var("NEPHOCAST_FUZZ_CASES").ok().and_then(|v| v.parse().ok()).unwrap_or(400);
+    // `NEPHOCAST_FUZZ_MINUTES`, when set, runs for that many minutes instead of a number of cases.
+    let until = std::env::var("NEPHOCAST_FUZZ_MINUTES")
+        .ok()
+        .and_then(|v| v.parse::<f64>().ok())
+        .filter(|m| m.is_finite() && *m > 0.0)
+        .map(|m| std::time::Instant::now() + std::time::Duration::from_secs_f64(m * 60.0));
+    let cases: usize = if until.is_some() { usize::MAX } else { std::env::var("NEPHOCAST_FUZZ_CASES").ok().and_then(|v| v.parse().ok()).unwrap_or(400) };
     let seed: u64 = std::env::var("NEPHOCAST_FUZZ_SEED").ok().and_then(|v| v.parse().ok()).unwrap_or(1);
     let seeds = seeds();
     let whole = IntakeOptions::default();
@@ -167,7 +173,12 @@ fn fuzz_frame_intake() {
     let dir = tempfile::tempdir().unwrap();
     let mut outcomes: BTreeMap<String, usize> = BTreeMap::new();
     let t0 = std::time::Instant::now();
+    let mut done = 0usize;
     for case in 0..cases {
+        if case % 256 == 0 && until.is_some_and(|u| std::time::Instant::now() >= u) {
+            break;
+        }
+        done += 1;
         let (what, bytes, pure_cut) = mutate(&mut rng, &seeds);
         let via_file = case % 16 == 0;
         // Every other case through the reduced-scale decode the engine's frames take.
@@ -207,5 +218,5 @@ fn fuzz_frame_intake() {
         };
         *outcomes.entry(outcome).or_default() += 1;
     }
-    println!("fuzz_frame_intake: {cases} cases (seed {seed}) in {:.1} s, outcomes {outcomes:?}", t0.elapsed().as_secs_f64());
+    println!("fuzz_frame_intake: {done} cases (seed {seed}) in {:.1} s, outcomes {outcomes:?}", t0.elapsed().as_secs_f64());
 }

@@ -4,6 +4,7 @@
 //! parser and validation, and when accepted through what uses the result. Nothing may panic.
 //!
 //! `NEPHOCAST_FUZZ_CASES` sets the cases per target (default 300, for CI);
+//! `NEPHOCAST_FUZZ_MINUTES`, when set, runs each target for that many minutes instead (long runs);
 //! `NEPHOCAST_FUZZ_SEED` the seed (default 1). A failing input is kept under
 //! `target/fuzz-failures/`.
 mod inputs;
@@ -83,16 +84,29 @@ fn cases() -> usize {
     std::env::var("NEPHOCAST_FUZZ_CASES").ok().and_then(|v| v.parse().ok()).unwrap_or(300)
 }
 
+/// A run length in minutes, when one is asked for (`NEPHOCAST_FUZZ_MINUTES`): the loop runs until it
+/// has passed rather than for a number of cases. A run length, not a time limit on what is tested.
+fn minutes() -> Option<f64> {
+    std::env::var("NEPHOCAST_FUZZ_MINUTES").ok().and_then(|v| v.parse().ok()).filter(|m: &f64| m.is_finite() && *m > 0.0)
+}
+
 fn seed() -> u64 {
     std::env::var("NEPHOCAST_FUZZ_SEED").ok().and_then(|v| v.parse().ok()).unwrap_or(1)
 }
 
 /// Run `n` mutated cases of `base` through `run`; on a panic keep the input and fail.
 fn fuzz(target: &str, salt: u64, base: &str, run: impl Fn(&str) -> bool) {
-    let n = cases();
+    let until = minutes().map(|m| std::time::Instant::now() + std::time::Duration::from_secs_f64(m * 60.0));
+    let n = if until.is_some() { usize::MAX } else { cases() };
     let mut rng = Rng(seed().wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ salt | 1);
     let mut accepted = 0;
+    let t0 = std::time::Instant::now();
+    let mut done = 0;
     for k in 0..n {
+        if k % 256 == 0 && until.is_some_and(|u| std::time::Instant::now() >= u) {
+            break;
+        }
+        done += 1;
         let text = mutate(&mut rng, base);
         match catch_unwind(AssertUnwindSafe(|| run(&text))) {
             Ok(ok) => accepted += usize::from(ok),
@@ -105,7 +119,12 @@ fn fuzz(target: &str, salt: u64, base: &str, run: impl Fn(&str) -> bool) {
             }
         }
     }
-    println!("fuzz {target}: {n} cases (seed {}), {accepted} accepted, {} refused, no panic", seed(), n - accepted);
+    println!(
+        "fuzz {target}: {done} cases (seed {}) in {:.1} min, {accepted} accepted, {} refused, no panic",
+        seed(),
+        t0.elapsed().as_secs_f64() / 60.0,
+        done - accepted
+    );
 }
 
 #[test]
