@@ -197,13 +197,27 @@ fn segment_writes_masks() {
     f.sort();
     let o = bin().args(["segment", f[0].to_str().unwrap(), "--out", d.path().to_str().unwrap()]).output().unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    let line = String::from_utf8_lossy(&o.stdout).to_string();
+    let text = String::from_utf8_lossy(&o.stdout).to_string();
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some("image,cloud_fraction,classes_png,preview_png"), "{text}");
+    let line = lines.next().unwrap();
     let cf: f64 = line.split(',').nth(1).unwrap().parse().unwrap();
     assert!((0.0..=1.0).contains(&cf));
     let mask_path = line.trim().split(',').nth(2).unwrap().to_string();
-    let m = image::open(mask_path).unwrap().to_luma8();
+    let m = image::open(&mask_path).unwrap().to_luma8();
     assert_eq!(m.dimensions(), (512, 512));
     assert!(m.pixels().all(|p| p.0[0] <= 3));
+    // The colour preview beside the mask: each class in its own colour, pixel for pixel.
+    let preview_path = line.trim().split(',').nth(3).unwrap().to_string();
+    assert!(preview_path.ends_with("_preview.png") && mask_path.ends_with("_classes.png"), "{line}");
+    let pv = image::open(&preview_path).unwrap().to_rgb8();
+    assert_eq!(pv.dimensions(), m.dimensions());
+    let palette = [[0u8, 0, 0], [70, 130, 220], [205, 205, 205], [90, 90, 90]];
+    for (c, p) in m.pixels().zip(pv.pixels()) {
+        assert_eq!(p.0, palette[usize::from(c.0[0])]);
+    }
+    let classes_seen: std::collections::BTreeSet<u8> = m.pixels().map(|p| p.0[0]).collect();
+    assert!(classes_seen.len() >= 3, "a demo frame shows unknown, clear and cloud: {classes_seen:?}");
     let o = bin().args(["segment", "/nonexistent.jpg", "--out", d.path().to_str().unwrap()]).output().unwrap();
     assert_eq!(o.status.code(), Some(2));
 }
@@ -270,8 +284,71 @@ fn qc_flags_bad_measurements() {
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     assert!(s.contains("ghi_physically_impossible 1"), "{s}");
     assert!(s.contains("stuck 12"), "{s}");
-    let flags = std::fs::read_to_string(out).unwrap();
+    let flags = std::fs::read_to_string(&out).unwrap();
     assert_eq!(flags.lines().count(), 1 + lines.len() - 2);
+
+    // --fail-on-impossible: exit status 3 naming the file and the row count, the report and the
+    // flags file still written; the clean demo file passes with it.
+    std::fs::remove_file(&out).unwrap();
+    let o = bin()
+        .args(["qc", "--site", demo().join("site.toml").to_str().unwrap(), "--measurements", p.to_str().unwrap(), "--out", out.to_str().unwrap(), "--fail-on-impossible"])
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(3), "{err}");
+    assert!(err.contains(p.to_str().unwrap()) && err.contains("1 row(s)") && err.contains("physically possible"), "{err}");
+    assert!(String::from_utf8_lossy(&o.stdout).contains("ghi_physically_impossible 1"));
+    assert!(out.exists());
+    let o = bin()
+        .args(["qc", "--site", demo().join("site.toml").to_str().unwrap(), "--measurements", demo().join("measurements.csv").to_str().unwrap(), "--fail-on-impossible"])
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let help = bin().args(["qc", "--help"]).output().unwrap();
+    assert!(String::from_utf8_lossy(&help.stdout).contains("status 3"));
+}
+
+/// `sun --start`/`--end` take a date alone: 00:00 UTC for the start, 24:00 (the next day's 00:00)
+/// for the end; the help says so.
+#[test]
+fn sun_takes_a_date_alone() {
+    let o = bin().args(["sun", "--lat", "37.4", "--lon", "-122.1", "--start", "2026-06-14", "--end", "2026-06-14", "--step", "1h"]).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8(o.stdout).unwrap();
+    let times: Vec<&str> = text.lines().skip(1).map(|l| l.split(',').next().unwrap()).collect();
+    assert_eq!(times.len(), 25, "00:00 to 24:00 inclusive");
+    assert_eq!(times[0], "2026-06-14T00:00:00Z");
+    assert_eq!(times[24], "2026-06-15T00:00:00Z");
+    // Mixed with a full time.
+    let o = bin().args(["sun", "--lat", "37.4", "--lon", "-122.1", "--start", "2026-06-14T22:00:00Z", "--end", "2026-06-14", "--step", "1h"]).output().unwrap();
+    assert_eq!(String::from_utf8_lossy(&o.stdout).lines().count(), 1 + 3);
+    let o = bin().args(["sun", "--lat", "37.4", "--lon", "-122.1", "--start", "14/06/2026", "--end", "2026-06-14"]).output().unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("--start"));
+    let help = String::from_utf8(bin().args(["sun", "--help"]).output().unwrap().stdout).unwrap();
+    assert!(help.contains("date alone") && help.contains("24:00"), "{help}");
+}
+
+/// A missing input is reported once, with its path: each cause of the error chain once.
+#[test]
+fn missing_inputs_are_reported_once_with_their_path() {
+    let d = tempfile::tempdir().unwrap();
+    let missing = d.path().join("nonexist");
+    let site = demo().join("site.toml");
+    let (out_o, out_s) = (d.path().join("o"), d.path().join("s"));
+    let cases: [Vec<&str>; 3] = [
+        vec!["replay", "--site", site.to_str().unwrap(), "--frames", missing.to_str().unwrap(), "--out", out_o.to_str().unwrap()],
+        vec!["segment", missing.to_str().unwrap(), "--out", out_s.to_str().unwrap()],
+        vec!["qc", "--site", site.to_str().unwrap(), "--measurements", missing.to_str().unwrap()],
+    ];
+    for args in cases {
+        let o = bin().args(&args).output().unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
+        assert_eq!(err.matches(missing.to_str().unwrap()).count(), 1, "{args:?}: {err}");
+        assert_eq!(err.matches("No such file or directory").count(), 1, "{args:?}: {err}");
+        assert_eq!(err.trim_end().lines().count(), 1, "{args:?}: {err}");
+    }
 }
 
 /// The calibration workflow end to end: `synth` a clear day, `calibrate` from its frames, point the

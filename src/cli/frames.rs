@@ -22,6 +22,7 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
     let fixed_time = a.time.as_deref().map(|t| parse_time("--time", t)).transpose().map_err(anyhow::Error::msg)?;
     let params = site.as_ref().map(|s| s.file.segment.clone()).unwrap_or_default();
     let mut geoms: Vec<(crate::camera::Camera, ImageGeometry)> = vec![];
+    crate::say!("image,cloud_fraction,classes_png,preview_png");
     for path in &a.images {
         let img = crate::intake::read_frame(path, &crate::intake::IntakeOptions::default())?;
         let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
@@ -55,9 +56,32 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
         let stem = path.file_stem().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
         let out = a.out.join(format!("{stem}_classes.png"));
         crate::io::write_atomic(&out, &crate::io::encode_png_gray(&seg.classes))?;
-        crate::say!("{},{:.4},{}", path.display(), seg.cloud_fraction, out.display());
+        let preview = a.out.join(format!("{stem}_preview.png"));
+        crate::io::write_atomic(&preview, &crate::io::encode_png_rgb(&crate::overlay::class_preview(&seg.classes)))?;
+        crate::say!("{},{:.4},{},{}", csv_cell(&path.display().to_string()), seg.cloud_fraction, csv_cell(&out.display().to_string()), csv_cell(&preview.display().to_string()));
     }
     Ok(())
+}
+
+/// `qc --fail-on-impossible` found values outside the physically possible limits (exit status
+/// [`ImpossibleValues::EXIT_STATUS`]).
+#[derive(Debug, thiserror::Error)]
+#[error("{}: {rows} row(s) with values outside the physically possible limits (--fail-on-impossible)", file.display())]
+pub struct ImpossibleValues {
+    /// The measurements file.
+    pub file: std::path::PathBuf,
+    /// Rows with at least one impossible value.
+    pub rows: usize,
+}
+
+impl ImpossibleValues {
+    /// The exit status `qc --fail-on-impossible` ends with when it finds one.
+    pub const EXIT_STATUS: u8 = 3;
+}
+
+/// A CSV cell: quoted (inner quotes doubled) when it holds a comma, quote or line break.
+fn csv_cell(s: &str) -> String {
+    if s.contains([',', '"', '\n', '\r']) { format!("\"{}\"", s.replace('"', "\"\"")) } else { s.to_string() }
 }
 
 /// `qc`: quality control of a measurements table, flag counts per column.
@@ -96,6 +120,10 @@ pub(super) fn cmd_qc(a: QcArgs) -> Result<()> {
         }
         crate::io::write_atomic(out, &csv.into_bytes())?;
         crate::say!("wrote {} (flags are bit sets: 1 GHI impossible, 2 GHI rare, 4/8 DNI, 16/32 DHI, 64 closure, 128 missing, 256 stuck, 512 gap)", out.display());
+    }
+    let impossible = (0..m.times.len()).filter(|&i| all.iter().any(|f| f[i] & FLAGS_PHYSICAL != 0)).count();
+    if a.fail_on_impossible && impossible > 0 {
+        return Err(ImpossibleValues { file: a.measurements.clone(), rows: impossible }.into());
     }
     Ok(())
 }
