@@ -385,3 +385,30 @@ fn calibrate_then_replay_with_the_written_file() {
     let fc = std::fs::read_to_string(d.path().join("out/forecasts.csv")).unwrap();
     assert!(fc.lines().count() > 100, "{} forecast rows", fc.lines().count());
 }
+
+/// The horizon-0 skill (persistence is exact there) is shown as "n/a", never NaN: on the console
+/// of `demo` and `evaluate` and in the HTML report (outside its inline pictures).
+#[test]
+fn horizon_zero_skill_is_not_nan() {
+    let d = tempfile::tempdir().unwrap();
+    let out = d.path().join("demo");
+    let o = bin().args(["demo", "--quiet", "--out", out.to_str().unwrap()]).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(!text.to_lowercase().contains("nan"), "{text}");
+    let zero = text.lines().find(|l| l.trim_start().starts_with("0 min")).unwrap_or_else(|| panic!("no horizon-0 row: {text}"));
+    assert!(zero.trim_end().ends_with("n/a"), "{zero}");
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    let without_pictures: String = html.split("data:image/png;base64,").enumerate().map(|(i, part)| if i == 0 { part } else { part.split_once('\'').map_or("", |p| p.1) }).collect();
+    assert!(!without_pictures.contains("NaN"), "NaN in the report");
+    assert!(without_pictures.contains("<td>0 min</td>") && without_pictures.contains("<td>n/a</td>"));
+    for args in [
+        vec!["evaluate", "--replay", out.to_str().unwrap(), "--sequence", demo().to_str().unwrap()],
+        vec!["evaluate", "--replay", out.to_str().unwrap(), "--measurements", demo().join("measurements.csv").to_str().unwrap(), "--site", demo().join("site.toml").to_str().unwrap()],
+    ] {
+        let o = bin().args(&args).output().unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let text = String::from_utf8_lossy(&o.stdout);
+        assert!(!text.to_lowercase().contains("nan") && !text.contains("inf"), "{args:?}: {text}");
+    }
+}
