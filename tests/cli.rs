@@ -222,6 +222,47 @@ fn segment_writes_masks() {
     assert_eq!(o.status.code(), Some(2));
 }
 
+/// `segment --site` starts from the site camera's clear-sky library when its calibration names one
+/// (`camera.clear_reference`), as the engine and `verify` do: a library far bluer than the parametric
+/// default makes the same frame cloudier.
+#[test]
+fn segment_uses_the_sites_clear_sky_library() {
+    let d = tempfile::tempdir().unwrap();
+    let mut f: Vec<_> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    f.sort();
+    let site_dir = d.path().join("site");
+    std::fs::create_dir_all(site_dir.join("calibration")).unwrap();
+    std::fs::copy(demo().join("site.toml"), site_dir.join("site.toml")).unwrap();
+    let cal = site_dir.join("calibration").join("larkspur-sky1.toml");
+    std::fs::copy(demo().join("calibration").join("larkspur-sky1.toml"), &cal).unwrap();
+    let cloud_fraction = |out: &std::path::Path| -> (f64, Vec<u8>) {
+        let o = bin()
+            .args(["segment", f[0].to_str().unwrap(), "--site", site_dir.join("site.toml").to_str().unwrap(), "--out", out.to_str().unwrap()])
+            .output()
+            .unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let text = String::from_utf8_lossy(&o.stdout).to_string();
+        let line = text.lines().nth(1).unwrap_or_else(|| panic!("{text}")).to_string();
+        let cf: f64 = line.split(',').nth(1).unwrap().parse().unwrap();
+        let mask = image::open(line.trim().split(',').nth(2).unwrap()).unwrap().to_luma8().into_raw();
+        (cf, mask)
+    };
+    let (cf_default, mask_default) = cloud_fraction(&d.path().join("default"));
+    // Every bin of the library (2° of zenith by 2° from the sun) at R/B 0.10.
+    let mut lib = String::from("zenith_from_deg,gamma_from_deg,rb,weight\n");
+    for z in (0..100).step_by(2) {
+        for g in (0..180).step_by(2) {
+            lib.push_str(&format!("{z},{g},0.10,50\n"));
+        }
+    }
+    std::fs::write(site_dir.join("calibration").join("clear.csv"), lib).unwrap();
+    let text = std::fs::read_to_string(&cal).unwrap();
+    std::fs::write(&cal, text.replace("[camera]\n", "[camera]\nclear_reference = \"clear.csv\"\n")).unwrap();
+    let (cf_lib, mask_lib) = cloud_fraction(&d.path().join("lib"));
+    assert_ne!(mask_lib, mask_default, "the library changed no pixel's class");
+    assert!(cf_lib > cf_default + 0.05, "cloud fraction {cf_lib} with the library, {cf_default} without");
+}
+
 /// `calibrate` on frames without a visible sun (overcast demo frames are cloudy; use night-time
 /// names) says what it found, with exit status 2; `camera project` / `unproject` round-trip.
 #[test]

@@ -10,7 +10,7 @@ use crate::sun::position;
 /// `segment`: classify frames and print their cloud fraction (and class pictures when asked).
 pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
     use crate::calibrate::geometry_free;
-    use crate::segment::{ImageGeometry, Reference, segment_image};
+    use crate::segment::{ImageGeometry, segment_image};
     let site = a.site.as_ref().map(|p| crate::config::Site::load(p)).transpose()?;
     let cal_cam = match &a.calibration {
         Some(p) => {
@@ -21,6 +21,9 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
     };
     let fixed_time = a.time.as_deref().map(|t| parse_time("--time", t)).transpose().map_err(anyhow::Error::msg)?;
     let params = site.as_ref().map(|s| s.file.segment.clone()).unwrap_or_default();
+    // The engine's starting reference: the site camera's clear-sky library when its calibration has
+    // one, else the parametric default.
+    let reference = site.as_ref().and_then(|s| s.clear_reference.clone()).unwrap_or_default();
     let mut geoms: Vec<(crate::camera::Camera, ImageGeometry)> = vec![];
     crate::say!("image,cloud_fraction,classes_png,preview_png");
     for path in &a.images {
@@ -52,7 +55,7 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
                 g
             }
         };
-        let seg = segment_image(&img, &geom, sun, &params, &Reference::default());
+        let seg = segment_image(&img, &geom, sun, &params, &reference);
         let stem = path.file_stem().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
         let out = a.out.join(format!("{stem}_classes.png"));
         crate::io::write_atomic(&out, &crate::io::encode_png_gray(&seg.classes))?;
