@@ -66,6 +66,8 @@ pub mod motion;
 pub mod nowcast;
 pub mod output_set;
 pub mod overlay;
+#[cfg(feature = "parquet")]
+pub mod parquet_out;
 pub mod plant;
 mod pool;
 pub mod power;

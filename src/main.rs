@@ -13,7 +13,7 @@ fn main() -> ExitCode {
                 && io.kind() == std::io::ErrorKind::BrokenPipe {
                     return ExitCode::SUCCESS;
                 }
-            eprintln!("error: {e:#}");
+            eprintln!("error: {}", nephocast::cli::error_message(&e));
             ExitCode::from(nephocast::cli::exit_status(&e))
         }
     }

@@ -392,30 +392,31 @@ fn horizon_scores(per_h: BTreeMap<u32, Vec<Pair>>) -> Vec<MeasuredHorizon> {
 
 /// Print the scores as tables.
 pub fn print_measured(e: &MeasuredEvaluation) {
+    use crate::verify::fmt_score;
     crate::say!("plant-mean GHI against the mean of the pyranometers");
     crate::say!("horizon      n   RMSE    MAE    MBE  RMSE(pers)  skill   CRPS  P10–P90");
     for h in &e.plant {
         crate::say!(
-            "{:>5} min {:>5} {:>6.1} {:>6.1} {:>6.1} {:>11.1} {:>6.2} {:>6.1} {:>7.2}",
+            "{:>5} min {:>5} {:>6.1} {:>6.1} {:>6.1} {:>11.1} {:>6} {:>6} {:>7}",
             h.horizon_s / 60,
             h.n,
             h.rmse_wm2,
             h.mae_wm2,
             h.mbe_wm2,
             h.rmse_persistence_wm2,
-            h.skill,
-            h.crps_wm2,
-            h.coverage_p10_p90
+            fmt_score(h.skill, 2),
+            fmt_score(h.crps_wm2, 1),
+            fmt_score(h.coverage_p10_p90, 2)
         );
     }
     crate::say!("by sky type (issue times; pooled 5–15 min):");
     for (k, p) in &e.by_sky_type {
-        crate::say!("  {k:<9} {:>4} issues, n {:>5}, RMSE {:.1} vs persistence {:.1}, skill {:.2}, MBE {:.1}", e.issues_by_sky_type.get(k).copied().unwrap_or(0), p.n, p.rmse_wm2, p.rmse_persistence_wm2, p.skill, p.mbe_wm2);
+        crate::say!("  {k:<9} {:>4} issues, n {:>5}, RMSE {:.1} vs persistence {:.1}, skill {}, MBE {:.1}", e.issues_by_sky_type.get(k).copied().unwrap_or(0), p.n, p.rmse_wm2, p.rmse_persistence_wm2, fmt_score(p.skill, 2), p.mbe_wm2);
     }
     if !e.by_block.is_empty() {
         crate::say!("by block (its own pyranometers; pooled 5–15 min):");
         for (k, p) in &e.by_block {
-            crate::say!("  {k:<12} n {:>5}, RMSE {:.1} vs persistence {:.1}, skill {:.2}, MBE {:.1}", p.n, p.rmse_wm2, p.rmse_persistence_wm2, p.skill, p.mbe_wm2);
+            crate::say!("  {k:<12} n {:>5}, RMSE {:.1} vs persistence {:.1}, skill {}, MBE {:.1}", p.n, p.rmse_wm2, p.rmse_persistence_wm2, fmt_score(p.skill, 2), p.mbe_wm2);
         }
     }
     let excl: Vec<String> = e.excluded.iter().map(|(k, n)| format!("{k}: {n}")).collect();

@@ -55,6 +55,18 @@ pub fn class_overlay(frame: &RgbImage, classes: &image::GrayImage) -> RgbImage {
     out
 }
 
+/// Preview colours of the classes (own palette), by class value 0–3: unknown black, clear sky
+/// blue, thin cloud light grey, thick cloud dark grey.
+pub const PREVIEW_COLOURS: [[u8; 3]; 4] = [[0, 0, 0], [70, 130, 220], [205, 205, 205], [90, 90, 90]];
+
+/// A class mask (0 unknown, 1 clear, 2 thin, 3 thick) in [`PREVIEW_COLOURS`] for a person to look at;
+/// any other value is shown magenta.
+pub fn class_preview(classes: &image::GrayImage) -> RgbImage {
+    RgbImage::from_fn(classes.width(), classes.height(), |x, y| {
+        Rgb(PREVIEW_COLOURS.get(usize::from(classes.get_pixel(x, y).0[0])).copied().unwrap_or([255, 0, 255]))
+    })
+}
+
 /// The shadow map: ground around the plant seen from above (north up), sunlit ground pale, thin-cloud
 /// shade amber, thick-cloud shadow dark, unknown grey; block outlines white; the motion arrow shows
 /// where the clouds go in 10 minutes.

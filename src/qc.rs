@@ -64,6 +64,8 @@ impl QcParams {
 
 /// GHI outside the physically possible range.
 pub const FLAG_GHI_PHYSICAL: u16 = 1;
+/// Any component outside its physically possible range.
+pub const FLAGS_PHYSICAL: u16 = FLAG_GHI_PHYSICAL | FLAG_DNI_PHYSICAL | FLAG_DHI_PHYSICAL;
 /// GHI outside the extremely rare range.
 pub const FLAG_GHI_RARE: u16 = 2;
 /// DNI outside the physically possible range.

@@ -6,6 +6,9 @@
 //! * `forecasts.csv` — `issue_time_utc, target_time_utc, horizon_s, block, ghi_wm2, dni_wm2, dhi_wm2,
 //!   poa_wm2, ghi_clear_wm2, fallback_share, fallback` (one row per frame, horizon and block, and the
 //!   plant as block `plant`);
+//! * `forecasts.parquet` — with the Cargo feature `parquet`: the same table in Apache Parquet
+//!   ([`crate::parquet_out`]: times as UTC timestamps in microseconds, `horizon_s` and `fallback` as
+//!   u32, `block` as UTF-8, the rest f64, empty cells null);
 //! * `motion.csv` — per frame: time step, blocks tried and used, global and per-layer vectors, the
 //!   filtered vector, its uncertainty, speed and direction, and the cloud base height used with its
 //!   one-sigma uncertainty and source (`cbh_m, cbh_sigma_m, cbh_source`: `ceilometer`,
@@ -93,6 +96,10 @@ pub enum ReplayError {
     /// The output folder is in use or could not be written.
     #[error(transparent)]
     Output(#[from] OutputSetError),
+    /// A table could not be written as Parquet (feature `parquet`).
+    #[cfg(feature = "parquet")]
+    #[error(transparent)]
+    Parquet(#[from] crate::parquet_out::ParquetOutError),
 }
 
 /// Set up the engine for a replay ([`Nowcaster::open`]).
@@ -330,8 +337,12 @@ impl ReplayTables {
     /// Write every table into the output set; returns their final paths.
     fn write(self, set: &mut OutputSet) -> Result<Vec<PathBuf>, ReplayError> {
         let mut outputs = vec![];
+        let fc = self.fc.into_bytes();
+        // The same table for pandas and polars, converted from the CSV bytes just made.
+        #[cfg(feature = "parquet")]
+        let parquet = crate::parquet_out::csv_to_parquet("forecasts.csv", &fc)?;
         for (file, bytes) in [
-            ("forecasts.csv", self.fc.into_bytes()),
+            ("forecasts.csv", fc),
             ("motion.csv", self.mo.into_bytes()),
             ("frames.csv", self.fr.into_bytes()),
             ("ramps.csv", self.ramps.into_bytes()),
@@ -341,6 +352,8 @@ impl ReplayTables {
         ] {
             outputs.push(set.write(file, &bytes)?);
         }
+        #[cfg(feature = "parquet")]
+        outputs.push(set.write("forecasts.parquet", &parquet)?);
         Ok(outputs)
     }
 }

@@ -36,100 +36,193 @@ fn esc(s: &str) -> String {
     s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;")
 }
 
-/// A line chart as an SVG string: axes with ticks, labels, legend.
-///
-/// One piece on purpose: the SVG is written top to bottom (frame, ticks, bands, lines, legend)
-/// from one set of scales.
+/// A step of 1, 2 or 5 × 10^k that cuts `span` into about `target` intervals (at most about
+/// 1.4 × `target`), as (1, 2 or 5; k).
+fn step_parts(span: f64, target: usize) -> (f64, i32) {
+    let raw = span.abs() / target.max(1) as f64;
+    if !(raw.is_finite() && raw > 0.0) {
+        return (1.0, 0);
+    }
+    let k = raw.log10().floor() as i32;
+    let f = raw / 10f64.powi(k);
+    if f <= 1.0 + 1e-9 { (1.0, k) } else if f <= 2.0 + 1e-9 { (2.0, k) } else if f <= 5.0 + 1e-9 { (5.0, k) } else { (1.0, k + 1) }
+}
+
+/// `n` × m × 10^k, divided by an exact power of ten when k < 0 so that 3 × 0.1 gives 0.3.
+fn scaled(n: f64, k: i32) -> f64 {
+    if k >= 0 { n * 10f64.powi(k) } else { n / 10f64.powi(-k) }
+}
+
+/// A step of 1, 2 or 5 × 10^k that cuts `span` into about `target` intervals.
+pub fn nice_step(span: f64, target: usize) -> f64 {
+    let (m, k) = step_parts(span, target);
+    scaled(m, k)
+}
+
+/// Round ticks for the values `lo..=hi`: multiples of a [`nice_step`] (about `target` intervals),
+/// from the largest multiple at or below `lo` to the smallest at or above `hi`.
+pub fn nice_ticks(lo: f64, hi: f64, target: usize) -> Vec<f64> {
+    let (lo, hi) = if hi > lo { (lo, hi) } else { (lo, lo + 1.0) };
+    let (m, k) = step_parts(hi - lo, target);
+    let step = scaled(m, k);
+    let (a, b) = ((lo / step + 1e-9).floor() as i64, (hi / step - 1e-9).ceil() as i64);
+    (a..=b).map(|i| scaled(i as f64 * m, k) + 0.0).collect()
+}
+
+/// Decimals that show every multiple of a 1-2-5 `step` exactly (0 for steps of 1 and more).
+fn tick_decimals(step: f64) -> usize {
+    if step >= 1.0 { 0 } else { (-step.log10() - 1e-9).ceil().max(0.0) as usize }
+}
+
+/// Clock-time ticks [minute of day] inside `lo..=hi`: steps of 1, 2, 5, 10, 15, 30 minutes or 1, 2,
+/// 3, 6 hours, about `target` intervals.
+fn time_ticks(lo: f64, hi: f64, target: usize) -> Vec<f64> {
+    const STEPS: [f64; 10] = [1.0, 2.0, 5.0, 10.0, 15.0, 30.0, 60.0, 120.0, 180.0, 360.0];
+    let raw = (hi - lo).max(1.0) / target.max(1) as f64;
+    let step = STEPS.iter().copied().find(|s| *s >= raw).unwrap_or(360.0);
+    let first = (lo / step - 1e-9).ceil() as i64;
+    (first..).map(|k| k as f64 * step).take_while(|v| *v <= hi + 1e-9).collect()
+}
+
+/// Ticks of a numeric x axis inside `lo..=hi` (the lines keep their full width).
+fn inner_ticks(lo: f64, hi: f64, target: usize) -> Vec<f64> {
+    nice_ticks(lo, hi, target).into_iter().filter(|v| *v >= lo - 1e-9 && *v <= hi + 1e-9).collect()
+}
+
+/// The smallest and largest x and y of the finite points of the series and bands.
+fn extent(series: &[Series], bands: &[BandArea]) -> Option<(f64, f64, f64, f64)> {
+    let mut e: Option<(f64, f64, f64, f64)> = None;
+    let mut add = |x: f64, y: f64| {
+        let v = e.get_or_insert((x, x, y, y));
+        *v = (v.0.min(x), v.1.max(x), v.2.min(y), v.3.max(y));
+    };
+    for p in series.iter().flat_map(|s| &s.points).filter(|p| p.1.is_finite()) {
+        add(p.0, p.1);
+    }
+    for p in bands.iter().flat_map(|b| &b.points).filter(|p| p.1.is_finite() && p.2.is_finite()) {
+        add(p.0, p.1);
+        add(p.0, p.2);
+    }
+    e
+}
+
+/// The y axis's round ticks: from 0 when asked (or when the data start near it), else from a round
+/// value below the data, to a round value above; a flat line gets a unit of room.
+fn y_ticks(y0: f64, y1: f64, from_zero: bool) -> Vec<f64> {
+    let y0 = if (from_zero && y0 >= 0.0) || (y0 > 0.0 && y0 < 0.3 * y1) { 0.0 } else { y0 };
+    let (y0, y1) = if (y1 - y0).abs() < 1e-9 {
+        let pad = 0.5 * y0.abs().max(1.0);
+        (if y0 >= 0.0 && y0 - pad < 0.0 { 0.0 } else { y0 - pad }, y0 + pad)
+    } else {
+        (y0, y1)
+    };
+    nice_ticks(y0, y1, 5)
+}
+
+/// The plot area of a chart and its scales.
+struct Plot {
+    w: f64,
+    h: f64,
+    ml: f64,
+    mr: f64,
+    mt: f64,
+    mb: f64,
+    x: (f64, f64),
+    y: (f64, f64),
+}
+
+impl Plot {
+    fn sx(&self, x: f64) -> f64 {
+        self.ml + (x - self.x.0) / (self.x.1 - self.x.0) * (self.w - self.ml - self.mr)
+    }
+    fn sy(&self, y: f64) -> f64 {
+        self.mt + (1.0 - (y - self.y.0) / (self.y.1 - self.y.0)) * (self.h - self.mt - self.mb)
+    }
+}
+
+/// A line chart as an SVG string: axes with round ticks, labels, legend.
 pub fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[Series], bands: &[BandArea], x_is_time_min: bool) -> String {
-    let (w, h, ml, mr, mt, mb) = (760.0, 300.0, 60.0, 20.0, 30.0, 45.0);
-    let mut xs = vec![];
-    let mut ys = vec![];
-    for s in series {
-        for p in &s.points {
-            if p.1.is_finite() {
-                xs.push(p.0);
-                ys.push(p.1);
-            }
-        }
-    }
-    for b in bands {
-        for p in &b.points {
-            if p.1.is_finite() && p.2.is_finite() {
-                xs.push(p.0);
-                ys.push(p.1);
-                ys.push(p.2);
-            }
-        }
-    }
-    let mut svg = format!("<svg xmlns='http://www.w3.org/2000/svg' width='{w}' height='{h}' font-family='sans-serif' font-size='11'>");
-    let _ = write!(svg, "<text x='{}' y='18' font-size='13' font-weight='bold'>{}</text>", ml, esc(title));
-    if xs.is_empty() {
-        svg += "<text x='60' y='150'>no data</text></svg>";
-        return svg;
-    }
-    let (x0, x1) = (xs.iter().cloned().fold(f64::MAX, f64::min), xs.iter().cloned().fold(f64::MIN, f64::max));
-    let (mut y0, mut y1) = (ys.iter().cloned().fold(f64::MAX, f64::min), ys.iter().cloned().fold(f64::MIN, f64::max));
-    if y0 > 0.0 && y0 < 0.3 * y1 {
-        y0 = 0.0;
-    }
-    if (y1 - y0).abs() < 1e-9 {
-        y1 = y0 + 1.0;
-    }
-    let pad = 0.05 * (y1 - y0);
-    let nonneg = y0 >= 0.0;
-    let (y0, y1) = (if nonneg { (y0 - pad).max(0.0) } else { y0 - pad }, y1 + pad);
-    let decimals = if y1 - y0 < 2.0 { 2 } else if y1 - y0 < 20.0 { 1 } else { 0 };
+    line_chart_with(title, x_label, y_label, series, bands, x_is_time_min, false)
+}
+
+/// [`line_chart`] with the choice of a y axis that starts at 0 (for quantities such as speeds
+/// whose zero matters) whenever the data are not negative.
+pub fn line_chart_with(title: &str, x_label: &str, y_label: &str, series: &[Series], bands: &[BandArea], x_is_time_min: bool, y_from_zero: bool) -> String {
+    let mut svg = format!("<svg xmlns='http://www.w3.org/2000/svg' width='760' height='300' font-family='sans-serif' font-size='11'><text x='60' y='18' font-size='13' font-weight='bold'>{}</text>", esc(title));
+    let Some((x0, x1, y0, y1)) = extent(series, bands) else {
+        return svg + "<text x='60' y='150'>no data</text></svg>";
+    };
+    let yt = y_ticks(y0, y1, y_from_zero);
     let x1 = if x1 > x0 { x1 } else { x0 + 1.0 };
-    let sx = |x: f64| ml + (x - x0) / (x1 - x0) * (w - ml - mr);
-    let sy = |y: f64| mt + (1.0 - (y - y0) / (y1 - y0)) * (h - mt - mb);
-    // Axes and ticks.
+    let plot = Plot { w: 760.0, h: 300.0, ml: 60.0, mr: 20.0, mt: 30.0, mb: 45.0, x: (x0, x1), y: (yt[0], yt[yt.len() - 1]) };
+    let xt = if x_is_time_min { time_ticks(x0, x1, 6) } else { inner_ticks(x0, x1, 6) };
+    axes(&mut svg, &plot, &yt, &xt, x_is_time_min, x_label, y_label);
+    draw_bands(&mut svg, &plot, bands);
+    draw_lines(&mut svg, &plot, series);
+    legend(&mut svg, &plot, series, bands);
+    svg + "</svg>"
+}
+
+/// Frame, grid lines, tick labels and axis labels.
+fn axes(svg: &mut String, p: &Plot, yt: &[f64], xt: &[f64], x_is_time_min: bool, x_label: &str, y_label: &str) {
+    let (w, h, ml, mr, mt, mb) = (p.w, p.h, p.ml, p.mr, p.mt, p.mb);
     let _ = write!(svg, "<rect x='{ml}' y='{mt}' width='{}' height='{}' fill='none' stroke='#888'/>", w - ml - mr, h - mt - mb);
-    for k in 0..=5 {
-        let yv = y0 + (y1 - y0) * k as f64 / 5.0;
-        let _ = write!(svg, "<line x1='{ml}' x2='{}' y1='{:.1}' y2='{:.1}' stroke='#eee'/><text x='{}' y='{:.1}' text-anchor='end'>{:.*}</text>", w - mr, sy(yv), sy(yv), ml - 4.0, sy(yv) + 4.0, decimals, yv);
-        let xv = x0 + (x1 - x0) * k as f64 / 5.0;
-        let lab = if x_is_time_min { format!("{:02}:{:02}", (xv / 60.0).floor() as i64 % 24, (xv % 60.0).floor() as i64) } else { format!("{xv:.0}") };
-        let _ = write!(svg, "<text x='{:.1}' y='{}' text-anchor='middle'>{}</text>", sx(xv), h - mb + 14.0, lab);
+    let yd = tick_decimals(if yt.len() > 1 { yt[1] - yt[0] } else { 1.0 });
+    for &yv in yt {
+        let _ = write!(svg, "<line x1='{ml}' x2='{}' y1='{:.1}' y2='{:.1}' stroke='#eee'/><text x='{}' y='{:.1}' text-anchor='end'>{:.*}</text>", w - mr, p.sy(yv), p.sy(yv), ml - 4.0, p.sy(yv) + 4.0, yd, yv);
+    }
+    let xd = tick_decimals(if xt.len() > 1 { xt[1] - xt[0] } else { 1.0 });
+    for &xv in xt {
+        let lab = if x_is_time_min { format!("{:02}:{:02}", (xv / 60.0).floor() as i64 % 24, (xv.round() as i64).rem_euclid(60)) } else { format!("{xv:.xd$}") };
+        let _ = write!(svg, "<text x='{:.1}' y='{}' text-anchor='middle'>{}</text>", p.sx(xv), h - mb + 14.0, lab);
     }
     let _ = write!(svg, "<text x='{}' y='{}' text-anchor='middle'>{}</text>", ml + (w - ml - mr) / 2.0, h - 8.0, esc(x_label));
     let _ = write!(svg, "<text x='14' y='{}' transform='rotate(-90 14 {})' text-anchor='middle'>{}</text>", mt + (h - mt - mb) / 2.0, mt + (h - mt - mb) / 2.0, esc(y_label));
-    // Bands.
+}
+
+/// Shaded bands (drawn under the lines).
+fn draw_bands(svg: &mut String, p: &Plot, bands: &[BandArea]) {
     for b in bands {
         let pts: Vec<&(f64, f64, f64)> = b.points.iter().filter(|p| p.1.is_finite() && p.2.is_finite()).collect();
         if pts.len() < 2 {
             continue;
         }
         let mut d = String::new();
-        for (i, p) in pts.iter().enumerate() {
-            let _ = write!(d, "{}{:.1},{:.1} ", if i == 0 { "M" } else { "L" }, sx(p.0), sy(p.2));
+        for (i, q) in pts.iter().enumerate() {
+            let _ = write!(d, "{}{:.1},{:.1} ", if i == 0 { "M" } else { "L" }, p.sx(q.0), p.sy(q.2));
         }
-        for p in pts.iter().rev() {
-            let _ = write!(d, "L{:.1},{:.1} ", sx(p.0), sy(p.1));
+        for q in pts.iter().rev() {
+            let _ = write!(d, "L{:.1},{:.1} ", p.sx(q.0), p.sy(q.1));
         }
         let _ = write!(svg, "<path d='{d}Z' fill='{}' fill-opacity='0.25' stroke='none'/>", b.colour);
     }
-    // Lines.
+}
+
+/// The series' lines; a non-finite y lifts the pen.
+fn draw_lines(svg: &mut String, p: &Plot, series: &[Series]) {
     for s in series {
         let mut d = String::new();
         let mut pen = false;
-        for p in &s.points {
-            if !p.1.is_finite() {
+        for q in &s.points {
+            if !q.1.is_finite() {
                 pen = false;
                 continue;
             }
-            let _ = write!(d, "{}{:.1},{:.1} ", if pen { "L" } else { "M" }, sx(p.0), sy(p.1));
+            let _ = write!(d, "{}{:.1},{:.1} ", if pen { "L" } else { "M" }, p.sx(q.0), p.sy(q.1));
             pen = true;
         }
         let dash = if s.dashed { " stroke-dasharray='5,3'" } else { "" };
         let _ = write!(svg, "<path d='{d}' fill='none' stroke='{}' stroke-width='1.6'{dash}/>", s.colour);
     }
-    // Legend.
-    let mut lx = ml + 8.0;
+}
+
+/// One legend row along the top of the plot.
+fn legend(svg: &mut String, p: &Plot, series: &[Series], bands: &[BandArea]) {
+    let mut lx = p.ml + 8.0;
     for (label, colour) in series.iter().map(|s| (&s.label, &s.colour)).chain(bands.iter().map(|b| (&b.label, &b.colour))) {
-        let _ = write!(svg, "<rect x='{lx}' y='{}' width='12' height='4' fill='{colour}'/><text x='{}' y='{}'>{}</text>", mt + 8.0, lx + 16.0, mt + 13.0, esc(label));
+        let _ = write!(svg, "<rect x='{lx}' y='{}' width='12' height='4' fill='{colour}'/><text x='{}' y='{}'>{}</text>", p.mt + 8.0, lx + 16.0, p.mt + 13.0, esc(label));
         lx += 24.0 + 6.5 * label.chars().count() as f64;
     }
-    svg + "</svg>"
 }
 
 fn minute_of_day(t: &DateTime<Utc>) -> f64 {
@@ -188,7 +281,7 @@ fn scores_section(e: &Evaluation) -> String {
     for h in &e.plant {
         if h.horizon_s % 300 == 0 {
             let cov = e.bands.iter().find(|b| b.horizon_s == h.horizon_s).map(|b| format!("{:.0} %", 100.0 * b.coverage)).unwrap_or_default();
-            let _ = write!(html, "<tr><td>{} min</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.3}</td><td>{cov}</td></tr>", h.horizon_s / 60, h.rmse_wm2, h.mae_wm2, h.mbe_wm2, h.rmse_persistence_wm2, h.skill);
+            let _ = write!(html, "<tr><td>{} min</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{cov}</td></tr>", h.horizon_s / 60, h.rmse_wm2, h.mae_wm2, h.mbe_wm2, h.rmse_persistence_wm2, crate::verify::fmt_score(h.skill, 3));
         }
     }
     html += "</table>";
@@ -196,7 +289,7 @@ fn scores_section(e: &Evaluation) -> String {
     if let Some(r) = &e.ramps {
         let _ = write!(html, "<p>Ramps at {:.0} min lead (±{:.0} min, probability ≥ {:.1}): POD {:.2}, FAR {:.2}, CSI {:.2}.</p>", r.lead_s / 60.0, r.window_s / 60.0, r.min_probability, r.pod, r.far, r.csi);
     }
-    // Skill versus horizon.
+    // RMSE versus horizon.
     let f: Vec<(f64, f64)> = e.plant.iter().map(|h| (h.horizon_s as f64 / 60.0, h.rmse_wm2)).collect();
     let p: Vec<(f64, f64)> = e.plant.iter().map(|h| (h.horizon_s as f64 / 60.0, h.rmse_persistence_wm2)).collect();
     html += &line_chart("RMSE by horizon", "horizon [min]", "RMSE [W/m²]", &[
@@ -260,7 +353,7 @@ fn motion_section(out: &Path) -> Result<String, ReportError> {
         sp.push(Series { label: "second layer".into(), colour: "#e67e22".into(), points: speed2, dashed: true });
         dr.push(Series { label: "second layer".into(), colour: "#e67e22".into(), points: dir2, dashed: true });
     }
-    html += &line_chart("Speed", "time [UTC]", "speed [m/s]", &sp, &[], true);
+    html += &line_chart_with("Speed", "time [UTC]", "speed [m/s]", &sp, &[], true, true);
     html += &line_chart("Direction (toward, clockwise from north)", "time [UTC]", "direction [°]", &dr, &[], true);
     Ok(html)
 }
@@ -326,4 +419,46 @@ fn pictures_section(out: &Path) -> Result<String, ReportError> {
         }
     }
     Ok(html)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn ticks_are_round() {
+        assert_eq!(nice_step(17.3, 5), 5.0);
+        assert_eq!(nice_step(730.0, 5), 200.0);
+        assert_eq!(nice_step(0.9, 5), 0.2);
+        assert_eq!(nice_ticks(3.2, 17.3, 5), vec![0.0, 5.0, 10.0, 15.0, 20.0]);
+        assert_eq!(nice_ticks(212.0, 941.0, 5), vec![200.0, 400.0, 600.0, 800.0, 1000.0]);
+        assert_eq!(nice_ticks(-31.0, 12.0, 5), vec![-40.0, -30.0, -20.0, -10.0, 0.0, 10.0, 20.0]);
+        assert_eq!(nice_ticks(0.0, 0.7, 5), vec![0.0, 0.2, 0.4, 0.6, 0.8]);
+        assert_eq!(tick_decimals(0.2), 1);
+        assert_eq!(tick_decimals(0.1), 1);
+        assert_eq!(tick_decimals(0.05), 2);
+        assert_eq!(tick_decimals(5.0), 0);
+        assert_eq!(time_ticks(8.0 * 60.0 + 3.0, 9.0 * 60.0 + 58.0, 6), vec![510.0, 540.0, 570.0]);
+        assert_eq!(inner_ticks(0.0, 20.0, 6), vec![0.0, 5.0, 10.0, 15.0, 20.0]);
+    }
+
+    #[test]
+    fn speed_axis_starts_at_zero_and_ends_round_above_the_data() {
+        // Speeds of 7.3–9.6 m/s: the axis runs 0–10 in steps of 2.
+        assert_eq!(y_ticks(7.3, 9.6, true), vec![0.0, 2.0, 4.0, 6.0, 8.0, 10.0]);
+        // Without the choice a narrow band far from 0 keeps its own range.
+        assert_eq!(y_ticks(7.3, 9.6, false), vec![7.0, 7.5, 8.0, 8.5, 9.0, 9.5, 10.0]);
+        // A constant speed of 0 still gets an axis.
+        assert_eq!(y_ticks(0.0, 0.0, true), vec![0.0, 0.1, 0.2, 0.3, 0.4, 0.5]);
+    }
+
+    #[test]
+    fn chart_labels_are_the_round_ticks() {
+        let s = Series { label: "speed".into(), colour: "#000".into(), points: vec![(480.0, 7.3), (500.0, 9.6), (530.0, 8.1)], dashed: false };
+        let svg = line_chart_with("Speed", "time", "m/s", &[s], &[], true, true);
+        for lab in [">0<", ">2<", ">4<", ">6<", ">8<", ">10<", ">08:00<", ">08:10<", ">08:50<"] {
+            assert!(svg.contains(lab), "{lab} missing: {svg}");
+        }
+        assert!(!svg.contains("NaN"));
+    }
 }

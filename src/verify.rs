@@ -587,13 +587,19 @@ pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, EvalEr
     Ok(Evaluation { plant, bands, ramps, motion, segmentation })
 }
 
+/// A score with `decimals` decimals, or "n/a" when it has no value (NaN or infinite: the skill at
+/// horizon 0, where persistence is exact; CRPS without members).
+pub fn fmt_score(v: f64, decimals: usize) -> String {
+    if v.is_finite() { format!("{v:.decimals$}") } else { "n/a".to_string() }
+}
+
 /// Print an evaluation as a table.
 pub fn print_evaluation(e: &Evaluation) {
     crate::say!("horizon  n     RMSE   MAE    MBE   nRMSE  RMSE(pers)  skill");
     for h in &e.plant {
         if h.horizon_s % 300 == 0 {
             crate::say!(
-                "{:>4} min {:<5} {:>6.1} {:>6.1} {:>6.1} {:>6.3} {:>10.1} {:>6.3}",
+                "{:>4} min {:<5} {:>6.1} {:>6.1} {:>6.1} {:>6.3} {:>10.1} {:>6}",
                 h.horizon_s / 60,
                 h.n,
                 h.rmse_wm2,
@@ -601,7 +607,7 @@ pub fn print_evaluation(e: &Evaluation) {
                 h.mbe_wm2,
                 h.nrmse,
                 h.rmse_persistence_wm2,
-                h.skill
+                fmt_score(h.skill, 3)
             );
         }
     }

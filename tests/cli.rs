@@ -197,15 +197,70 @@ fn segment_writes_masks() {
     f.sort();
     let o = bin().args(["segment", f[0].to_str().unwrap(), "--out", d.path().to_str().unwrap()]).output().unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    let line = String::from_utf8_lossy(&o.stdout).to_string();
+    let text = String::from_utf8_lossy(&o.stdout).to_string();
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some("image,cloud_fraction,classes_png,preview_png"), "{text}");
+    let line = lines.next().unwrap();
     let cf: f64 = line.split(',').nth(1).unwrap().parse().unwrap();
     assert!((0.0..=1.0).contains(&cf));
     let mask_path = line.trim().split(',').nth(2).unwrap().to_string();
-    let m = image::open(mask_path).unwrap().to_luma8();
+    let m = image::open(&mask_path).unwrap().to_luma8();
     assert_eq!(m.dimensions(), (512, 512));
     assert!(m.pixels().all(|p| p.0[0] <= 3));
+    // The colour preview beside the mask: each class in its own colour, pixel for pixel.
+    let preview_path = line.trim().split(',').nth(3).unwrap().to_string();
+    assert!(preview_path.ends_with("_preview.png") && mask_path.ends_with("_classes.png"), "{line}");
+    let pv = image::open(&preview_path).unwrap().to_rgb8();
+    assert_eq!(pv.dimensions(), m.dimensions());
+    let palette = [[0u8, 0, 0], [70, 130, 220], [205, 205, 205], [90, 90, 90]];
+    for (c, p) in m.pixels().zip(pv.pixels()) {
+        assert_eq!(p.0, palette[usize::from(c.0[0])]);
+    }
+    let classes_seen: std::collections::BTreeSet<u8> = m.pixels().map(|p| p.0[0]).collect();
+    assert!(classes_seen.len() >= 3, "a demo frame shows unknown, clear and cloud: {classes_seen:?}");
     let o = bin().args(["segment", "/nonexistent.jpg", "--out", d.path().to_str().unwrap()]).output().unwrap();
     assert_eq!(o.status.code(), Some(2));
+}
+
+/// `segment --site` starts from the site camera's clear-sky library when its calibration names one
+/// (`camera.clear_reference`), as the engine and `verify` do: a library far bluer than the parametric
+/// default makes the same frame cloudier.
+#[test]
+fn segment_uses_the_sites_clear_sky_library() {
+    let d = tempfile::tempdir().unwrap();
+    let mut f: Vec<_> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    f.sort();
+    let site_dir = d.path().join("site");
+    std::fs::create_dir_all(site_dir.join("calibration")).unwrap();
+    std::fs::copy(demo().join("site.toml"), site_dir.join("site.toml")).unwrap();
+    let cal = site_dir.join("calibration").join("larkspur-sky1.toml");
+    std::fs::copy(demo().join("calibration").join("larkspur-sky1.toml"), &cal).unwrap();
+    let cloud_fraction = |out: &std::path::Path| -> (f64, Vec<u8>) {
+        let o = bin()
+            .args(["segment", f[0].to_str().unwrap(), "--site", site_dir.join("site.toml").to_str().unwrap(), "--out", out.to_str().unwrap()])
+            .output()
+            .unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let text = String::from_utf8_lossy(&o.stdout).to_string();
+        let line = text.lines().nth(1).unwrap_or_else(|| panic!("{text}")).to_string();
+        let cf: f64 = line.split(',').nth(1).unwrap().parse().unwrap();
+        let mask = image::open(line.trim().split(',').nth(2).unwrap()).unwrap().to_luma8().into_raw();
+        (cf, mask)
+    };
+    let (cf_default, mask_default) = cloud_fraction(&d.path().join("default"));
+    // Every bin of the library (2° of zenith by 2° from the sun) at R/B 0.10.
+    let mut lib = String::from("zenith_from_deg,gamma_from_deg,rb,weight\n");
+    for z in (0..100).step_by(2) {
+        for g in (0..180).step_by(2) {
+            lib.push_str(&format!("{z},{g},0.10,50\n"));
+        }
+    }
+    std::fs::write(site_dir.join("calibration").join("clear.csv"), lib).unwrap();
+    let text = std::fs::read_to_string(&cal).unwrap();
+    std::fs::write(&cal, text.replace("[camera]\n", "[camera]\nclear_reference = \"clear.csv\"\n")).unwrap();
+    let (cf_lib, mask_lib) = cloud_fraction(&d.path().join("lib"));
+    assert_ne!(mask_lib, mask_default, "the library changed no pixel's class");
+    assert!(cf_lib > cf_default + 0.05, "cloud fraction {cf_lib} with the library, {cf_default} without");
 }
 
 /// `calibrate` on frames without a visible sun (overcast demo frames are cloudy; use night-time
@@ -270,8 +325,71 @@ fn qc_flags_bad_measurements() {
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     assert!(s.contains("ghi_physically_impossible 1"), "{s}");
     assert!(s.contains("stuck 12"), "{s}");
-    let flags = std::fs::read_to_string(out).unwrap();
+    let flags = std::fs::read_to_string(&out).unwrap();
     assert_eq!(flags.lines().count(), 1 + lines.len() - 2);
+
+    // --fail-on-impossible: exit status 3 naming the file and the row count, the report and the
+    // flags file still written; the clean demo file passes with it.
+    std::fs::remove_file(&out).unwrap();
+    let o = bin()
+        .args(["qc", "--site", demo().join("site.toml").to_str().unwrap(), "--measurements", p.to_str().unwrap(), "--out", out.to_str().unwrap(), "--fail-on-impossible"])
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(3), "{err}");
+    assert!(err.contains(p.to_str().unwrap()) && err.contains("1 row(s)") && err.contains("physically possible"), "{err}");
+    assert!(String::from_utf8_lossy(&o.stdout).contains("ghi_physically_impossible 1"));
+    assert!(out.exists());
+    let o = bin()
+        .args(["qc", "--site", demo().join("site.toml").to_str().unwrap(), "--measurements", demo().join("measurements.csv").to_str().unwrap(), "--fail-on-impossible"])
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let help = bin().args(["qc", "--help"]).output().unwrap();
+    assert!(String::from_utf8_lossy(&help.stdout).contains("status 3"));
+}
+
+/// `sun --start`/`--end` take a date alone: 00:00 UTC for the start, 24:00 (the next day's 00:00)
+/// for the end; the help says so.
+#[test]
+fn sun_takes_a_date_alone() {
+    let o = bin().args(["sun", "--lat", "37.4", "--lon", "-122.1", "--start", "2026-06-14", "--end", "2026-06-14", "--step", "1h"]).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8(o.stdout).unwrap();
+    let times: Vec<&str> = text.lines().skip(1).map(|l| l.split(',').next().unwrap()).collect();
+    assert_eq!(times.len(), 25, "00:00 to 24:00 inclusive");
+    assert_eq!(times[0], "2026-06-14T00:00:00Z");
+    assert_eq!(times[24], "2026-06-15T00:00:00Z");
+    // Mixed with a full time.
+    let o = bin().args(["sun", "--lat", "37.4", "--lon", "-122.1", "--start", "2026-06-14T22:00:00Z", "--end", "2026-06-14", "--step", "1h"]).output().unwrap();
+    assert_eq!(String::from_utf8_lossy(&o.stdout).lines().count(), 1 + 3);
+    let o = bin().args(["sun", "--lat", "37.4", "--lon", "-122.1", "--start", "14/06/2026", "--end", "2026-06-14"]).output().unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("--start"));
+    let help = String::from_utf8(bin().args(["sun", "--help"]).output().unwrap().stdout).unwrap();
+    assert!(help.contains("date alone") && help.contains("24:00"), "{help}");
+}
+
+/// A missing input is reported once, with its path: each cause of the error chain once.
+#[test]
+fn missing_inputs_are_reported_once_with_their_path() {
+    let d = tempfile::tempdir().unwrap();
+    let missing = d.path().join("nonexist");
+    let site = demo().join("site.toml");
+    let (out_o, out_s) = (d.path().join("o"), d.path().join("s"));
+    let cases: [Vec<&str>; 3] = [
+        vec!["replay", "--site", site.to_str().unwrap(), "--frames", missing.to_str().unwrap(), "--out", out_o.to_str().unwrap()],
+        vec!["segment", missing.to_str().unwrap(), "--out", out_s.to_str().unwrap()],
+        vec!["qc", "--site", site.to_str().unwrap(), "--measurements", missing.to_str().unwrap()],
+    ];
+    for args in cases {
+        let o = bin().args(&args).output().unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{args:?}: {err}");
+        assert_eq!(err.matches(missing.to_str().unwrap()).count(), 1, "{args:?}: {err}");
+        assert_eq!(err.matches("No such file or directory").count(), 1, "{args:?}: {err}");
+        assert_eq!(err.trim_end().lines().count(), 1, "{args:?}: {err}");
+    }
 }
 
 /// The calibration workflow end to end: `synth` a clear day, `calibrate` from its frames, point the
@@ -307,4 +425,31 @@ fn calibrate_then_replay_with_the_written_file() {
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let fc = std::fs::read_to_string(d.path().join("out/forecasts.csv")).unwrap();
     assert!(fc.lines().count() > 100, "{} forecast rows", fc.lines().count());
+}
+
+/// The horizon-0 skill (persistence is exact there) is shown as "n/a", never NaN: on the console
+/// of `demo` and `evaluate` and in the HTML report (outside its inline pictures).
+#[test]
+fn horizon_zero_skill_is_not_nan() {
+    let d = tempfile::tempdir().unwrap();
+    let out = d.path().join("demo");
+    let o = bin().args(["demo", "--quiet", "--out", out.to_str().unwrap()]).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(!text.to_lowercase().contains("nan"), "{text}");
+    let zero = text.lines().find(|l| l.trim_start().starts_with("0 min")).unwrap_or_else(|| panic!("no horizon-0 row: {text}"));
+    assert!(zero.trim_end().ends_with("n/a"), "{zero}");
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    let without_pictures: String = html.split("data:image/png;base64,").enumerate().map(|(i, part)| if i == 0 { part } else { part.split_once('\'').map_or("", |p| p.1) }).collect();
+    assert!(!without_pictures.contains("NaN"), "NaN in the report");
+    assert!(without_pictures.contains("<td>0 min</td>") && without_pictures.contains("<td>n/a</td>"));
+    for args in [
+        vec!["evaluate", "--replay", out.to_str().unwrap(), "--sequence", demo().to_str().unwrap()],
+        vec!["evaluate", "--replay", out.to_str().unwrap(), "--measurements", demo().join("measurements.csv").to_str().unwrap(), "--site", demo().join("site.toml").to_str().unwrap()],
+    ] {
+        let o = bin().args(&args).output().unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let text = String::from_utf8_lossy(&o.stdout);
+        assert!(!text.to_lowercase().contains("nan") && !text.contains("inf"), "{args:?}: {text}");
+    }
 }

@@ -29,7 +29,8 @@ pub enum Command {
     Evaluate(EvaluateArgs),
     /// Replay the shipped demo data end to end and score it.
     Demo(DemoArgs),
-    /// Segment sky images into clear / thin / thick cloud and print their cloud fraction.
+    /// Segment sky images into clear / thin / thick cloud; print a CSV (header
+    /// `image,cloud_fraction,classes_png,preview_png`) and write each class mask with a colour preview.
     Segment(SegmentArgs),
     /// Time the engine on synthetic frames (per stage, one core by default).
     Bench(BenchArgs),
@@ -72,6 +73,10 @@ pub struct QcArgs {
     /// Write per-row flags to this CSV.
     #[arg(long)]
     pub out: Option<PathBuf>,
+    /// Exit with status 3 (after the report and the --out file) when any value is outside the
+    /// physically possible limits (flags 1, 4 or 16); without it `qc` exits 0 whatever it flags.
+    #[arg(long)]
+    pub fail_on_impossible: bool,
 }
 
 /// Arguments of `nephocast live`.
@@ -275,7 +280,9 @@ pub struct SegmentArgs {
     /// Images (JPEG or PNG).
     #[arg(required = true)]
     pub images: Vec<PathBuf>,
-    /// Output folder for the class masks (0 unknown, 1 clear, 2 thin, 3 thick).
+    /// Output folder for the class masks `<stem>_classes.png` (grey values 0 unknown, 1 clear, 2
+    /// thin, 3 thick) and their colour previews `<stem>_preview.png` (black unknown, blue clear,
+    /// light grey thin, dark grey thick).
     #[arg(long)]
     pub out: PathBuf,
     /// A site file: camera from its calibration, sun from the time.
@@ -391,10 +398,12 @@ pub struct SunArgs {
     /// Temperature [°C] for refraction.
     #[arg(long, default_value_t = 12.0, allow_hyphen_values = true)]
     pub temperature_c: f64,
-    /// First time (UTC, RFC 3339), e.g. 2026-06-14T04:00:00Z.
+    /// First time (UTC, RFC 3339), e.g. 2026-06-14T04:00:00Z; a date alone (2026-06-14) means
+    /// 00:00 UTC that day.
     #[arg(long)]
     pub start: String,
-    /// Last time (UTC, RFC 3339).
+    /// Last time (UTC, RFC 3339), included; a date alone (2026-06-14) means the end of that day
+    /// (24:00 UTC, i.e. 00:00 of the next day).
     #[arg(long)]
     pub end: String,
     /// Step, e.g. 60s, 10m, 1h.

@@ -10,7 +10,7 @@ use crate::sun::position;
 /// `segment`: classify frames and print their cloud fraction (and class pictures when asked).
 pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
     use crate::calibrate::geometry_free;
-    use crate::segment::{ImageGeometry, Reference, segment_image};
+    use crate::segment::{ImageGeometry, segment_image};
     let site = a.site.as_ref().map(|p| crate::config::Site::load(p)).transpose()?;
     let cal_cam = match &a.calibration {
         Some(p) => {
@@ -21,7 +21,11 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
     };
     let fixed_time = a.time.as_deref().map(|t| parse_time("--time", t)).transpose().map_err(anyhow::Error::msg)?;
     let params = site.as_ref().map(|s| s.file.segment.clone()).unwrap_or_default();
+    // The engine's starting reference: the site camera's clear-sky library when its calibration has
+    // one, else the parametric default.
+    let reference = site.as_ref().and_then(|s| s.clear_reference.clone()).unwrap_or_default();
     let mut geoms: Vec<(crate::camera::Camera, ImageGeometry)> = vec![];
+    crate::say!("image,cloud_fraction,classes_png,preview_png");
     for path in &a.images {
         let img = crate::intake::read_frame(path, &crate::intake::IntakeOptions::default())?;
         let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
@@ -51,13 +55,36 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
                 g
             }
         };
-        let seg = segment_image(&img, &geom, sun, &params, &Reference::default());
+        let seg = segment_image(&img, &geom, sun, &params, &reference);
         let stem = path.file_stem().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
         let out = a.out.join(format!("{stem}_classes.png"));
         crate::io::write_atomic(&out, &crate::io::encode_png_gray(&seg.classes))?;
-        crate::say!("{},{:.4},{}", path.display(), seg.cloud_fraction, out.display());
+        let preview = a.out.join(format!("{stem}_preview.png"));
+        crate::io::write_atomic(&preview, &crate::io::encode_png_rgb(&crate::overlay::class_preview(&seg.classes)))?;
+        crate::say!("{},{:.4},{},{}", csv_cell(&path.display().to_string()), seg.cloud_fraction, csv_cell(&out.display().to_string()), csv_cell(&preview.display().to_string()));
     }
     Ok(())
+}
+
+/// `qc --fail-on-impossible` found values outside the physically possible limits (exit status
+/// [`ImpossibleValues::EXIT_STATUS`]).
+#[derive(Debug, thiserror::Error)]
+#[error("{}: {rows} row(s) with values outside the physically possible limits (--fail-on-impossible)", file.display())]
+pub struct ImpossibleValues {
+    /// The measurements file.
+    pub file: std::path::PathBuf,
+    /// Rows with at least one impossible value.
+    pub rows: usize,
+}
+
+impl ImpossibleValues {
+    /// The exit status `qc --fail-on-impossible` ends with when it finds one.
+    pub const EXIT_STATUS: u8 = 3;
+}
+
+/// A CSV cell: quoted (inner quotes doubled) when it holds a comma, quote or line break.
+fn csv_cell(s: &str) -> String {
+    if s.contains([',', '"', '\n', '\r']) { format!("\"{}\"", s.replace('"', "\"\"")) } else { s.to_string() }
 }
 
 /// `qc`: quality control of a measurements table, flag counts per column.
@@ -96,6 +123,10 @@ pub(super) fn cmd_qc(a: QcArgs) -> Result<()> {
         }
         crate::io::write_atomic(out, &csv.into_bytes())?;
         crate::say!("wrote {} (flags are bit sets: 1 GHI impossible, 2 GHI rare, 4/8 DNI, 16/32 DHI, 64 closure, 128 missing, 256 stuck, 512 gap)", out.display());
+    }
+    let impossible = (0..m.times.len()).filter(|&i| all.iter().any(|f| f[i] & FLAGS_PHYSICAL != 0)).count();
+    if a.fail_on_impossible && impossible > 0 {
+        return Err(ImpossibleValues { file: a.measurements.clone(), rows: impossible }.into());
     }
     Ok(())
 }

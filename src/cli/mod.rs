@@ -12,6 +12,7 @@ mod replay;
 mod synth;
 
 pub use args::*;
+pub use frames::ImpossibleValues;
 pub use replay::print_replay_summary;
 
 use anyhow::Result;
@@ -39,8 +40,51 @@ pub fn run(cli: Cli) -> Result<()> {
     }
 }
 
-/// Exit status for an error: 2 for bad input (files, arguments, data), 1 for anything else.
+/// Exit status for an error: 2 for bad input (files, arguments, data), 3 for `qc
+/// --fail-on-impossible` finding impossible values, 1 for anything else.
 pub fn exit_status(e: &anyhow::Error) -> u8 {
+    if e.downcast_ref::<ImpossibleValues>().is_some() {
+        return ImpossibleValues::EXIT_STATUS;
+    }
     let system = e.downcast_ref::<std::io::Error>().is_some() || e.downcast_ref::<crate::serve::ServeError>().is_some_and(crate::serve::ServeError::is_system);
     if system { 1 } else { 2 }
+}
+
+/// The one-line message for an error and its causes, each cause once: a cause whose text is
+/// already in the message (an error whose own text includes its source's) is not repeated.
+pub fn error_message(e: &anyhow::Error) -> String {
+    let mut msg = String::new();
+    for cause in e.chain() {
+        let text = cause.to_string();
+        if msg.is_empty() {
+            msg = text;
+        } else if !text.is_empty() && !msg.contains(&text) {
+            msg.push_str(": ");
+            msg.push_str(&text);
+        }
+    }
+    msg
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[derive(Debug, thiserror::Error)]
+    #[error("{file}: cannot read: {source}")]
+    struct Outer {
+        file: String,
+        source: std::io::Error,
+    }
+
+    #[test]
+    fn each_cause_is_printed_once() {
+        let io = std::io::Error::new(std::io::ErrorKind::NotFound, "gone");
+        let e = anyhow::Error::from(Outer { file: "/x".into(), source: io });
+        assert_eq!(error_message(&e), "/x: cannot read: gone");
+        let e = e.context("replay");
+        assert_eq!(error_message(&e), "replay: /x: cannot read: gone");
+        let plain = anyhow::anyhow!(std::io::Error::other("inner")).context("outer");
+        assert_eq!(error_message(&plain), "outer: inner");
+    }
 }

@@ -59,6 +59,16 @@ pub(super) fn cmd_synth(a: SynthArgs) -> Result<()> {
     Ok(())
 }
 
+/// A `sun --start`/`--end` time: RFC 3339, or a date alone (`YYYY-MM-DD`) meaning 00:00 UTC that
+/// day, or with `end_of_day` 24:00 UTC (00:00 of the next day).
+fn parse_sun_time(field: &str, s: &str, end_of_day: bool) -> Result<DateTime<Utc>> {
+    if let Ok(d) = chrono::NaiveDate::parse_from_str(s.trim(), "%Y-%m-%d") {
+        let d = if end_of_day { d.succ_opt().ok_or_else(|| anyhow::anyhow!("{field}: {s:?} is the last representable day"))? } else { d };
+        return Ok(d.and_time(chrono::NaiveTime::MIN).and_utc());
+    }
+    parse_time(field, s).map_err(|e| anyhow::anyhow!("{e}; or a date alone such as 2026-06-14"))
+}
+
 /// `sun`: a CSV table of solar position and clear-sky irradiance.
 pub(super) fn cmd_sun(a: SunArgs) -> Result<()> {
     let (observer, model, altitude_m) = if let Some(p) = &a.site {
@@ -89,8 +99,8 @@ pub(super) fn cmd_sun(a: SunArgs) -> Result<()> {
         }
         (o, ClearSkyModel::IneichenPerez { linke_turbidity: tl }, a.elevation_m)
     };
-    let start = parse_time("--start", &a.start).map_err(anyhow::Error::msg)?;
-    let end = parse_time("--end", &a.end).map_err(anyhow::Error::msg)?;
+    let start = parse_sun_time("--start", &a.start, false)?;
+    let end = parse_sun_time("--end", &a.end, true)?;
     let step_s = parse_duration_s(&a.step).context("--step")?;
     if end < start {
         bail!("--end is before --start");
