@@ -4,7 +4,7 @@
 //! refused and counted, and when the server stops the feed is reported in outage, the health turns
 //! `no_measurements` and the tuning goes back to the configured transmittances; when the server
 //! comes back the poller reconnects by itself. `live --check` reads the device once and refuses a
-//! second feed.
+//! second feed; the README's example section is valid.
 #![cfg(feature = "server")]
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpStream};
@@ -301,4 +301,18 @@ fn check_reads_the_device_once_warns_when_it_is_away_and_refuses_two_feeds() {
     assert!(e.contains("--measurements") && e.contains("[measurements_modbus]"), "{e}");
     let e = start(o).err().expect("refused").to_string();
     assert!(e.contains("expected one measurement feed"), "{e}");
+}
+
+#[test]
+fn readme_example_section_is_valid() {
+    let readme = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md")).unwrap();
+    let block = readme.split("```toml\n").skip(1).filter_map(|b| b.split("```").next()).find(|b| b.starts_with("[measurements_modbus]")).expect("the README's [measurements_modbus] example");
+    let d = tempfile::tempdir().unwrap();
+    let site = std::fs::read_to_string(demo().join("site.toml")).unwrap().replace("calibration = \"calibration/", &format!("calibration = \"{}/calibration/", demo().display()));
+    let p = d.path().join("site.toml");
+    std::fs::write(&p, format!("{site}\n{block}")).unwrap();
+    let s = nephocast::config::Site::load(&p).unwrap_or_else(|e| panic!("{e}"));
+    let m = s.file.measurements_modbus.expect("the section");
+    assert_eq!((m.address.as_str(), m.unit_id, m.registers.len()), ("192.168.1.20:502", 1, 2));
+    assert_eq!(m.registers[1].word_order, nephocast::config::WordOrder::Little);
 }
