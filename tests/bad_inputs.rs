@@ -169,6 +169,34 @@ fn site_cases() -> Vec<Case> {
         s
     };
     push(&mut cases, "site: 10003 blocks".into(), many_blocks, refused(&["plant.blocks", "10000 blocks"]));
+    // The Modbus measurement feed's section.
+    let modbus = |fields: &str, register: &str| {
+        format!("{}\n[measurements_modbus]\naddress = \"127.0.0.1:5502\"\n{fields}\n[[measurements_modbus.registers]]\ncolumn = \"ghi_a_wm2\"\naddress = 0\n{register}\n", inputs::SITE)
+    };
+    push(&mut cases, "site: modbus feed valid".into(), modbus("unit_id = 3\npoll_s = 1.0", "format = \"f32\"\nword_order = \"little\"\nkind = \"holding\"\nscale = 0.1"), Expect::Ok);
+    for (fields, register, field) in [
+        ("", "", "measurements_modbus.address"),
+        ("poll_s = 0.0", "", "measurements_modbus.poll_s"),
+        ("poll_s = 120.0", "", "measurements_modbus.poll_s"),
+        ("averaging_s = 30.5", "", "measurements_modbus.averaging_s"),
+        ("averaging_s = nan", "", "measurements_modbus.averaging_s"),
+        ("timeout_s = 0.0", "", "measurements_modbus.timeout_s"),
+        ("", "scale = 0.0", "measurements_modbus.registers[0].scale"),
+        ("", "offset = inf", "measurements_modbus.registers[0].offset"),
+    ] {
+        let mut text = modbus(fields, register);
+        if field.ends_with(".address") {
+            text = text.replace("address = \"127.0.0.1:5502\"", "address = \"127.0.0.1\"");
+        }
+        push(&mut cases, format!("site: {field} ({fields}{register})"), text, refused(&["site.toml", field]));
+    }
+    push(&mut cases, "site: modbus column of no pyranometer".into(), modbus("", "").replace("ghi_a_wm2", "ghi_b_wm2"), refused(&["measurements_modbus.registers[0].column", "ghi_a_wm2"]));
+    push(&mut cases, "site: modbus u32 past the last register".into(), modbus("", "format = \"u32\"").replace("address = 0\n", "address = 65535\n"), refused(&["measurements_modbus.registers[0].address"]));
+    push(&mut cases, "site: modbus unknown format".into(), modbus("", "format = \"f64\""), refused(&["site.toml", "format"]));
+    push(&mut cases, "site: modbus unit id 300".into(), modbus("unit_id = 300", ""), refused(&["site.toml", "unit_id"]));
+    let twice = format!("{}[[measurements_modbus.registers]]\ncolumn = \"ghi_a_wm2\"\naddress = 4\n", modbus("", ""));
+    push(&mut cases, "site: modbus column twice".into(), twice, refused(&["measurements_modbus.registers[1].column"]));
+    push(&mut cases, "site: modbus without registers".into(), format!("{}\n[measurements_modbus]\naddress = \"h:502\"\nregisters = []\n", inputs::SITE), refused(&["measurements_modbus.registers"]));
     // Syntax.
     for (bad, why) in [("[site\n", "unclosed table"), ("latitude_deg = = 4\n", "double equals"), ("\u{0}\n", "NUL byte"), ("[site]\n", "duplicate table")] {
         push(&mut cases, format!("site: {why}"), format!("{bad}{}", inputs::SITE), refused(&["site.toml"]));

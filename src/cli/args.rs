@@ -136,6 +136,7 @@ pub struct LiveArgs {
     #[arg(long, default_value_t = 500, allow_hyphen_values = true)]
     pub poll_ms: u64,
     /// Measurement feed: a CSV file a logger appends to, or a folder of CSV files (rotation).
+    /// Refused when the site file polls a Modbus feed (`[measurements_modbus]`).
     #[arg(long, value_name = "PATH")]
     pub measurements: Option<PathBuf>,
     /// The camera's frame interval [s]; a frame older than 2 intervals + 60 s is stale.

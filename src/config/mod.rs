@@ -5,7 +5,9 @@
 //! Relative paths inside a file are resolved against the file's own folder.
 
 mod calibration;
+mod modbus_feed;
 
+pub use modbus_feed::{MAX_MODBUS_REGISTERS, ModbusFeedSection, RegisterFormat, RegisterKind, RegisterSpec, WordOrder};
 pub use calibration::{CalibrationFile, CameraCalibration, FitRecord, MIN_DETECTIONS_PER_PARAMETER, MIN_FIT_AZIMUTH_SPAN_DEG, MIN_FIT_DETECTIONS};
 
 use std::path::{Path, PathBuf};
@@ -68,6 +70,9 @@ pub struct SiteFile {
     /// Pyranometers whose readings a measurements CSV may hold (`ghi_<name>_wm2` columns).
     #[serde(default)]
     pub pyranometers: Vec<PyranometerSpec>,
+    /// Pyranometers or a plant meter polled over Modbus TCP as live mode's measurement feed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub measurements_modbus: Option<ModbusFeedSection>,
 }
 
 /// `[[pyranometers]]`: a GHI sensor on the plant.
@@ -366,6 +371,10 @@ impl SiteFile {
             for (k, v) in p.position_m.iter().enumerate() {
                 c.range(&format!("pyranometers[{i}].position_m[{k}]"), *v, -50_000.0, 50_000.0)?;
             }
+        }
+        if let Some(m) = &self.measurements_modbus {
+            let names: Vec<String> = self.pyranometers.iter().map(|p| p.name.clone()).collect();
+            m.validate(&c, &names)?;
         }
         self.check_budget(path)?;
         Ok(())

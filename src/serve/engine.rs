@@ -10,7 +10,7 @@ use tokio::sync::broadcast;
 
 use super::shared::Shared;
 use super::watch::Watcher;
-use super::{LiveOptions, db, modbus, notify, ops};
+use super::{LiveOptions, db, modbus, modbus_feed, notify, ops};
 use crate::io::{fmt_time, list_frames};
 use crate::nowcast::{Frame, Nowcast, Nowcaster, Rejection};
 use crate::records::nowcast_json;
@@ -32,7 +32,7 @@ pub(super) struct LiveEngine {
     /// The site's display time zone, given with every nowcast (times stay UTC).
     time_zone: serde_json::Value,
     processed: usize,
-    feed: Option<ops::MeasurementFeed>,
+    feed: Option<FeedSource>,
     tuning_reset_done: bool,
     untimed_seen: HashSet<String>,
     untimed_in_folder: usize,
@@ -47,10 +47,19 @@ struct Stepped {
 }
 
 impl LiveEngine {
-    pub(super) fn new(opts: LiveOptions, nc: Nowcaster, conn: rusqlite::Connection, shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, registers: Arc<modbus::Feed>, notifier: Option<notify::Notifier>) -> LiveEngine {
+    #[allow(clippy::too_many_arguments)]
+    pub(super) fn new(
+        opts: LiveOptions,
+        nc: Nowcaster,
+        conn: rusqlite::Connection,
+        shared: Arc<Mutex<Shared>>,
+        tx: broadcast::Sender<String>,
+        registers: Arc<modbus::Feed>,
+        notifier: Option<notify::Notifier>,
+        feed: Option<FeedSource>,
+    ) -> LiveEngine {
         let intake = nc.intake_options();
         let time_zone = serde_json::to_value(nc.site().file.site.time_zone()).unwrap_or_default();
-        let feed = opts.health.measurements.as_deref().map(ops::MeasurementFeed::new);
         LiveEngine {
             opts,
             nc,
@@ -329,9 +338,54 @@ fn retire_all(frames: &[crate::io::FrameRef], r: &ops::Retention, shared: &Arc<M
     }
 }
 
+/// Where measurement rows come from: a CSV file or folder, or a Modbus TCP device (one of them).
+pub(super) enum FeedSource {
+    /// `--measurements`.
+    Csv(ops::MeasurementFeed),
+    /// `[measurements_modbus]` in the site file.
+    Modbus(Box<modbus_feed::ModbusPoller>),
+}
+
+impl FeedSource {
+    /// The feed the options and the site file ask for (`one_feed` has refused both at once).
+    ///
+    /// # Errors
+    /// The Modbus poller's thread could not be started.
+    pub(super) fn open(opts: &LiveOptions, site: &crate::config::SiteFile) -> std::io::Result<Option<FeedSource>> {
+        Ok(match (&site.measurements_modbus, opts.health.measurements.as_deref()) {
+            (Some(s), _) => Some(FeedSource::Modbus(Box::new(modbus_feed::ModbusPoller::start(s, site.site.observer())?))),
+            (None, Some(p)) => Some(FeedSource::Csv(ops::MeasurementFeed::new(p))),
+            (None, None) => None,
+        })
+    }
+
+    fn poll(&mut self, site: &crate::config::SiteFile) -> ops::FeedPoll {
+        match self {
+            FeedSource::Csv(f) => f.poll(site),
+            FeedSource::Modbus(p) => p.poll(site),
+        }
+    }
+
+    /// Rows read and pieces refused by screening so far.
+    fn counts(&self) -> (usize, usize) {
+        match self {
+            FeedSource::Csv(f) => (f.rows_read, f.errors),
+            FeedSource::Modbus(p) => (p.rows_read, p.errors),
+        }
+    }
+
+    /// The Modbus poller's state and counters.
+    fn modbus_status(&self) -> Option<modbus_feed::ModbusFeedStatus> {
+        match self {
+            FeedSource::Csv(_) => None,
+            FeedSource::Modbus(p) => Some(p.status()),
+        }
+    }
+}
+
 /// Read the measurement feed, append to the engine, and go back to the configured
 /// transmittances once the feed is older than its limit.
-fn feed_step(feed: &mut ops::MeasurementFeed, nc: &mut Nowcaster, shared: &Arc<Mutex<Shared>>, reset_done: &mut bool, o: &ops::HealthOptions) {
+fn feed_step(feed: &mut FeedSource, nc: &mut Nowcaster, shared: &Arc<Mutex<Shared>>, reset_done: &mut bool, o: &ops::HealthOptions) {
     let poll = feed.poll(&nc.site().file);
     for n in &poll.notes {
         eprintln!("nephocast live: {n}");
@@ -359,8 +413,8 @@ fn feed_step(feed: &mut ops::MeasurementFeed, nc: &mut Nowcaster, shared: &Arc<M
     }
     if let Ok(mut s) = shared.lock() {
         s.health.measurement_rows = rows;
-        s.health.measurement_rows_read = feed.rows_read;
-        s.health.measurement_errors = feed.errors;
+        (s.health.measurement_rows_read, s.health.measurement_errors) = feed.counts();
+        s.health.measurement_feed_modbus = feed.modbus_status();
         s.health.tuning_resets += usize::from(reset);
         s.health.tuning_rows = nc.tuning_rows();
         s.ops.measurement_end = end;

@@ -34,6 +34,7 @@ mod error;
 pub mod guard;
 pub mod http;
 pub mod modbus;
+pub mod modbus_feed;
 mod net;
 pub mod notify;
 pub mod ops;
@@ -129,6 +130,9 @@ pub struct Health {
     pub measurement_age_s: Option<f64>,
     /// Measurement pieces refused (unparsable lines, kW/m²).
     pub measurement_errors: usize,
+    /// The Modbus measurement feed's state and counters (connection, failed requests, outages,
+    /// refused samples), when the site polls one (`[measurements_modbus]`).
+    pub measurement_feed_modbus: Option<modbus_feed::ModbusFeedStatus>,
     /// Times the tuning went back to the configured transmittances because the feed stopped.
     pub tuning_resets: usize,
     /// Pyranometer readings the transmittance tuning holds now.
@@ -243,6 +247,10 @@ pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
     let (max_connections, lowered) = http::effective_max_connections(opts.server.max_connections);
     warnings.extend(lowered);
     let mut nowcaster = Nowcaster::open(&opts.site, None, None)?;
+    let modbus_feed = one_feed(&opts, &nowcaster.site().file)?;
+    // The feed's reader; a Modbus poller starts polling now (it stops when dropped).
+    let measurements = engine::FeedSource::open(&opts, &nowcaster.site().file)
+        .map_err(|e| ServeError::Feed(format!("{} [measurements_modbus]: cannot start the poller: {e}", opts.site.display())))?;
     std::fs::create_dir_all(&opts.incoming)?;
     let database = |error| ServeError::Database { path: opts.db.clone(), error };
     let conn = db::open(&opts.db).map_err(database)?;
@@ -264,6 +272,7 @@ pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
         let mut s = shared.lock().map_err(|_| ServeError::StateLock)?;
         s.health.alarm = nowcaster.alarm_state().name().into();
         s.ops.options = opts.health.clone();
+        s.ops.modbus_feed = modbus_feed;
         s.refresh_health(false);
     }
     let (tx, _) = broadcast::channel::<String>(64);
@@ -299,7 +308,7 @@ pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
     };
     let (stop2, stop3, shared3, tx3, log_json) = (stop.clone(), stop.clone(), shared.clone(), tx.clone(), opts.health.log_json);
     let feed2 = feed.clone();
-    let engine = std::thread::spawn(move || LiveEngine::new(opts, nowcaster, conn, shared, tx, feed2, notifier).run(stop2));
+    let engine = std::thread::spawn(move || LiveEngine::new(opts, nowcaster, conn, shared, tx, feed2, notifier, measurements).run(stop2));
     let ticker = std::thread::spawn(move || health_loop(shared3, tx3, stop3, log_json));
     Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), ticker: Some(ticker), server: Some(server), shutdown: Some(sd_tx), modbus_addr, modbus, feed })
 }
@@ -326,6 +335,19 @@ pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
         nc.site().camera.width_px,
         nc.site().camera.height_px
     ));
+    if one_feed(opts, f)?
+        && let Some(m) = &f.measurements_modbus
+    {
+        out.push(format!("measurements feed: Modbus TCP {} unit {}, {} register(s), poll {} s, averaging {} s", m.address, m.unit_id, m.registers.len(), m.poll_s, m.averaging_s));
+        // One read now; a device out of reach is a warning (live mode starts and keeps trying).
+        match modbus_feed::probe(m) {
+            Ok(values) => {
+                let v: Vec<String> = values.iter().map(|(c, v)| format!("{c} {v:.1}")).collect();
+                out.push(format!("measurements feed: read now (W/m²): {}", v.join(", ")));
+            }
+            Err(e) => out.push(format!("warning: measurements feed: Modbus TCP {e}; live mode starts anyway and keeps connecting")),
+        }
+    }
     if let Some(m) = &opts.health.measurements {
         out.push(ops::check_feed(m).map_err(ServeError::Feed)?);
         if f.pyranometers.is_empty() {
@@ -346,6 +368,18 @@ pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
     }
     out.push(format!("incoming {}, database {}, stale after {:.0} s", opts.incoming.display(), opts.db.display(), opts.health.stale_after_s()));
     Ok(out)
+}
+
+/// Whether the site polls a Modbus measurement feed; refused together with `--measurements`
+/// (one feed at a time, so rows from two sources never interleave).
+fn one_feed(opts: &LiveOptions, f: &crate::config::SiteFile) -> Result<bool, ServeError> {
+    match (&f.measurements_modbus, &opts.health.measurements) {
+        (Some(_), Some(p)) => Err(ServeError::Feed(format!(
+            "--measurements {} and the site's [measurements_modbus] are both given: expected one measurement feed",
+            p.display()
+        ))),
+        (m, _) => Ok(m.is_some()),
+    }
 }
 
 /// The default listening address.

@@ -27,6 +27,8 @@
 //! clock) the health state turns `no_measurements`, and once it is that old at the newest frame's
 //! time the tuning forgets what it learnt and goes back to the site's configured transmittances
 //! (band calibration keeps its last scale and learns again when readings return).
+//! The Modbus TCP feed (`[measurements_modbus]`, [`super::modbus_feed`]) hands over averaged rows
+//! that are screened and appended the same way, and ages the same way when the device stops.
 use std::collections::{BTreeMap, HashMap, HashSet};
 use std::path::{Path, PathBuf};
 
@@ -425,6 +427,8 @@ pub struct MetricsInput {
     pub frame_age_s: Option<f64>,
     /// Newest measurement's age \[s\].
     pub measurement_age_s: Option<f64>,
+    /// The Modbus measurement feed's state, when the site polls one.
+    pub modbus_feed: Option<super::modbus_feed::ModbusFeedStatus>,
 }
 
 fn label(v: &str) -> String {
@@ -478,6 +482,17 @@ pub fn metrics_text(m: &MetricsInput) -> String {
     let nan = f64::NAN;
     metric("nephocast_frame_age_seconds", "gauge", "Age of the newest frame read (NaN: none).", vec![(String::new(), m.frame_age_s.unwrap_or(nan))]);
     metric("nephocast_measurement_age_seconds", "gauge", "Age of the newest measurement (NaN: none).", vec![(String::new(), m.measurement_age_s.unwrap_or(nan))]);
+    if let Some(f) = &m.modbus_feed {
+        metric("nephocast_modbus_feed_connected", "gauge", "1 while the Modbus measurement feed has a connection open.", vec![(String::new(), f64::from(u8::from(f.connected)))]);
+        metric("nephocast_modbus_feed_errors_total", "counter", "Failed connection attempts and requests of the Modbus measurement feed.", vec![(String::new(), f.errors as f64)]);
+        metric("nephocast_modbus_feed_outages_total", "counter", "Outages of the Modbus measurement feed begun.", vec![(String::new(), f.outages as f64)]);
+        metric(
+            "nephocast_modbus_feed_values_refused_total",
+            "counter",
+            "Modbus samples left out of the means (not finite, or outside the physically possible limits).",
+            vec![(String::new(), f.values_refused as f64)],
+        );
+    }
     s
 }
 
@@ -561,7 +576,7 @@ mod tests {
 
     #[test]
     fn metrics_lines_are_well_formed() {
-        let mut m = MetricsInput { alarm: "calm".into(), ..Default::default() };
+        let mut m = MetricsInput { alarm: "calm".into(), modbus_feed: Some(Default::default()), ..Default::default() };
         m.latency.observe(0.2);
         m.rejected.insert("sun too \"low\"".into(), 2);
         for l in metrics_text(&m).lines().filter(|l| !l.starts_with('#')) {

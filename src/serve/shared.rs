@@ -26,6 +26,8 @@ pub(super) struct OpsShared {
     pub(super) newest_read: Option<DateTime<Utc>>,
     pub(super) last_read_wall: Option<std::time::Instant>,
     pub(super) measurement_end: Option<DateTime<Utc>>,
+    /// The site polls a Modbus measurement feed (`[measurements_modbus]`).
+    pub(super) modbus_feed: bool,
     pub(super) latency: ops::Histogram,
     pub(super) state: ops::HealthState,
     pub(super) options: ops::HealthOptions,
@@ -38,6 +40,7 @@ impl Default for OpsShared {
             newest_read: None,
             last_read_wall: None,
             measurement_end: None,
+            modbus_feed: false,
             latency: Default::default(),
             state: Default::default(),
             options: Default::default(),
@@ -55,7 +58,7 @@ impl Shared {
             frame_age_s: o.newest_read.map(|t| ops::age_s(&t, &now)),
             since_frame_read_s: o.last_read_wall.map(|w| w.elapsed().as_secs_f64()),
             measurement_age_s: o.measurement_end.map(|t| ops::age_s(&t, &now)),
-            feed: o.options.measurements.is_some(),
+            feed: o.options.measurements.is_some() || o.modbus_feed,
         };
         let state = ops::evaluate(&inputs, &o.options);
         let prev = o.state;
@@ -85,6 +88,7 @@ impl Shared {
             heartbeat: h.heartbeat,
             frame_age_s: h.frame_age_s,
             measurement_age_s: h.measurement_age_s,
+            modbus_feed: h.measurement_feed_modbus.clone(),
         }
     }
 }

@@ -211,6 +211,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         power: Default::default(),
         ramps: Default::default(),
         pyranometers: vec![],
+        measurements_modbus: None,
     }
 }
 
