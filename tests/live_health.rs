@@ -143,6 +143,13 @@ fn health_turns_stale_on_the_timer_within_a_second_of_the_threshold() {
     let hl = health(addr);
     assert_eq!(hl["health_state"], "ok", "{hl}");
     assert_eq!(hl["data_valid"], true);
+    // The controller interface's data-valid register follows the health state (judged here with a
+    // register frame-age limit of a day, so that only the health state decides).
+    let data_valid_register = || {
+        let at = nephocast::serve::modbus::header_fields().iter().find(|f| f.name == "data_valid").unwrap().offset as usize;
+        h.modbus_feed().image(chrono::Utc::now(), 86_400.0)[at]
+    };
+    assert_eq!(data_valid_register(), 1);
     let beat = u(&hl["heartbeat"]);
     // Guard: the state must turn stale by the time the age passes the threshold plus 1 s (and some
     // slack for a loaded machine); the measured delay is printed.
@@ -153,6 +160,7 @@ fn health_turns_stale_on_the_timer_within_a_second_of_the_threshold() {
     println!("stale seen {late_s:.2} s after the threshold");
     let hl = health(addr);
     assert_eq!(hl["data_valid"], false);
+    assert_eq!(data_valid_register(), 0, "the registers still read valid while the health is stale");
     assert!(hl["frame_age_s"].as_f64().unwrap() > threshold_s);
     assert!(u(&hl["heartbeat"]) > beat, "the heartbeat rises without frames");
     let m = get(addr, "/metrics");

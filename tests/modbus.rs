@@ -191,7 +191,9 @@ fn modbus_client_reads_registers_that_match_the_api_while_frames_arrive() {
         let issue = chrono::DateTime::parse_from_rfc3339(api["issue_time_utc"].as_str().unwrap()).unwrap();
         assert_eq!(i64::from(u32_at(&w, header("frame_time_unix_s"))), issue.timestamp());
         heartbeats.push(w[header("heartbeat")]);
-        assert_eq!(w[header("data_valid")], 1);
+        // The demo frames are months old, so the health state calls them stale: the registers'
+        // data-valid flag agrees with the API's (tests/live_health.rs sees it read 1 on fresh frames).
+        assert_eq!(w[header("data_valid")], u16::from(health["data_valid"].as_bool().unwrap()), "{health}");
         let age = f64::from(u32_at(&w, header("frame_age_s")));
         assert!((age - health["last_frame_age_s"].as_f64().unwrap()).abs() <= 2.0, "{age} vs {health}");
         let code = ["calm", "caution", "alert", "variable"].iter().position(|n| api["alarm"] == *n).unwrap() as u16;

@@ -214,6 +214,7 @@ impl LiveEngine {
             }
             Err(_) => (false, String::new(), None),
         };
+        self.registers.set_health_valid(valid);
         let mut events = vec![];
         let (mut overlay, mut latest) = (None, None);
         match &st.result {

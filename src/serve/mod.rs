@@ -307,9 +307,9 @@ pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
         None => None,
     };
     let (stop2, stop3, shared3, tx3, log_json) = (stop.clone(), stop.clone(), shared.clone(), tx.clone(), opts.health.log_json);
-    let feed2 = feed.clone();
+    let (feed2, feed3) = (feed.clone(), feed.clone());
     let engine = std::thread::spawn(move || LiveEngine::new(opts, nowcaster, conn, shared, tx, feed2, notifier, measurements).run(stop2));
-    let ticker = std::thread::spawn(move || health_loop(shared3, tx3, stop3, log_json));
+    let ticker = std::thread::spawn(move || health_loop(shared3, tx3, stop3, log_json, feed3));
     Ok(LiveHandle { addr, warnings, tls: is_tls, stop, engine: Some(engine), ticker: Some(ticker), server: Some(server), shutdown: Some(sd_tx), modbus_addr, modbus, feed })
 }
 

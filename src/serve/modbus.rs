@@ -172,7 +172,7 @@ pub fn header_fields() -> Vec<Field> {
     let s = |x: &str| x.to_string();
     lay_out(vec![
         (s("map_version"), Kind::U16, 1.0, "", format!("register map version ({MAP_VERSION})"), Source::MapVersion),
-        (s("data_valid"), Kind::U16, 1.0, "", s("1: a nowcast is present and its frame is recent enough (see the server's maximum frame age); 0 otherwise (before the first nowcast, or stale)"), Source::DataValid),
+        (s("data_valid"), Kind::U16, 1.0, "", s("1: the service's health has the data valid (ok, or no measurements), a nowcast is present and its frame is recent enough (see the server's maximum frame age); 0 otherwise (before the first nowcast, stale, camera down)"), Source::DataValid),
         (s("heartbeat"), Kind::U16, 1.0, "", s("nowcasts published since start; wraps from 65535 to 0"), Source::Heartbeat),
         (s("frame_age_s"), Kind::U32, 1.0, "s", s("age of the latest nowcast's frame, from the clock at read time; 4294967295 before the first nowcast"), Source::FrameAgeS),
         (s("frame_time_unix_s"), Kind::U32, 1.0, "s", s("the latest nowcast's frame time (Unix time, UTC); 0 before the first nowcast"), Source::FrameTimeUnixS),
@@ -233,12 +233,22 @@ pub struct Snapshot {
 pub struct Feed {
     targets: Vec<String>,
     latest: RwLock<Option<Arc<Snapshot>>>,
+    /// The service's health judges the data valid ([`Feed::set_health_valid`]; false until first
+    /// judged valid).
+    health_valid: std::sync::atomic::AtomicBool,
 }
 
 impl Feed {
     /// A feed for these targets (the plant first, then the blocks in site order).
     pub fn new(targets: Vec<String>) -> Self {
-        Self { targets, latest: RwLock::new(None) }
+        Self { targets, latest: RwLock::new(None), health_valid: std::sync::atomic::AtomicBool::new(false) }
+    }
+
+    /// Set by the service's health timer (and on each frame): whether its health state has the data
+    /// valid (`ok` or `no_measurements`). The registers' data-valid flag needs it as well as a
+    /// recent enough frame, so the controller interface agrees with the API, event stream and log.
+    pub fn set_health_valid(&self, valid: bool) {
+        self.health_valid.store(valid, std::sync::atomic::Ordering::SeqCst);
     }
 
     /// The targets served, in area order.
@@ -290,7 +300,7 @@ impl Feed {
             let ramp = s.and_then(|s| s.ramp);
             match src {
                 Source::MapVersion => MAP_VERSION as f64,
-                Source::DataValid => f64::from(u8::from(data_valid(age_s, max_frame_age_s))),
+                Source::DataValid => f64::from(u8::from(data_valid(age_s, max_frame_age_s) && self.health_valid.load(std::sync::atomic::Ordering::SeqCst))),
                 Source::Heartbeat => s.map_or(0, |s| s.heartbeat % 65536) as f64,
                 Source::FrameAgeS => age_s.map_or(u32::MAX as f64, |a| a.max(0.0).floor()),
                 Source::FrameTimeUnixS => s.map_or(0.0, |s| s.frame_time.timestamp() as f64),

@@ -94,14 +94,15 @@ impl Shared {
 }
 
 /// The health timer: judge the health every [`ops::HEALTH_TICK_MS`] ms, log and send each change,
-/// and send the heartbeat every 10 s.
-pub(super) fn health_loop(shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, stop: Arc<AtomicBool>, log_json: bool) {
+/// and send the heartbeat every 10 s. The Modbus registers' data-valid flag follows the judged state.
+pub(super) fn health_loop(shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, stop: Arc<AtomicBool>, log_json: bool, registers: Arc<super::modbus::Feed>) {
     // The state last logged and sent (the engine also judges the health when a frame arrives).
     let mut announced = shared.lock().map(|s| s.ops.state).unwrap_or_default();
     while !stop.load(Ordering::SeqCst) {
         std::thread::sleep(std::time::Duration::from_millis(ops::HEALTH_TICK_MS));
         let Ok(mut s) = shared.lock() else { return };
         s.refresh_health(true);
+        registers.set_health_valid(s.health.data_valid);
         let changed = (s.ops.state != announced).then_some(announced);
         announced = s.ops.state;
         let h = &s.health;
