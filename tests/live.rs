@@ -128,6 +128,9 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     // Restored, but no nowcast behind it yet.
     assert_eq!(a2["current"], false, "{a2}");
     assert_eq!(alarms["current"], true, "{alarms}");
+    // The metrics do not report the restored state as the current one either.
+    let (_, m) = http(h2.addr, "GET", "/metrics", None);
+    assert!(m.contains("nephocast_alarm_state{state=\"none\"} 1"), "{m}");
     assert!(a2["log"][0]["acked_utc"].is_string());
     assert_eq!(json(h2.addr, "/api/history").as_array().unwrap().len(), 8);
     h2.stop();

@@ -272,3 +272,34 @@ fn check_exits_0_on_a_usable_configuration_and_2_on_a_bad_one() {
     let o = c.args(["live", "--check", "--site"]).arg(d.path().join("nosite.toml")).arg("--incoming").arg(d.path()).output().unwrap();
     assert_eq!(o.status.code(), Some(2), "{}", String::from_utf8_lossy(&o.stderr));
 }
+
+/// A frame that is read but refused by the engine (here an all-white, overexposed frame) is counted
+/// as read (the camera is not down) but does not make the older forecast current: the health's frame
+/// age stays that of the forecast's frame.
+#[test]
+fn a_refused_frame_does_not_make_an_old_forecast_current() {
+    let d = tempfile::tempdir().unwrap();
+    let o = options(d.path(), HealthOptions::default());
+    let incoming = o.incoming.clone();
+    let h = start(o).unwrap();
+    let addr = h.addr;
+    let good = &demo_frames()[0];
+    let t_good = chrono::Utc::now() - chrono::Duration::seconds(40);
+    drop_by_rename(good, &incoming, &nephocast::io::frame_name(&t_good, "jpg"));
+    wait_for("the good frame's forecast", GUARD, || u(&health(addr)["frames_processed"]) == 1);
+    // The same size, every pixel white.
+    let (w, hgt) = image::image_dimensions(good).unwrap();
+    let white = d.path().join("white.png");
+    image::RgbImage::from_pixel(w, hgt, image::Rgb([255, 255, 255])).save(&white).unwrap();
+    let t_white = chrono::Utc::now() - chrono::Duration::seconds(2);
+    drop_by_rename(&white, &incoming, &nephocast::io::frame_name(&t_white, "png"));
+    let white_utc = nephocast::io::fmt_time(&t_white);
+    wait_for("the white frame to be read", GUARD, || health(addr)["newest_frame_utc"].as_str().is_some_and(|s| s[..19] == white_utc[..19]));
+    let hl = health(addr);
+    assert_eq!(u(&hl["frames_processed"]), 1, "the white frame was used: {hl}");
+    let refused: u64 = hl["frames_rejected"].as_object().map(|m| m.values().filter_map(|v| v.as_u64()).sum()).unwrap_or(0);
+    assert!(refused >= 1, "the white frame was not refused: {hl}");
+    let age = hl["frame_age_s"].as_f64().unwrap();
+    assert!(age >= 39.0, "frame age {age} s is the refused frame's, not the forecast's: {hl}");
+    h.stop();
+}

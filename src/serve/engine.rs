@@ -209,6 +209,9 @@ impl LiveEngine {
                     s.ops.last_read_wall = Some(std::time::Instant::now());
                     s.health.newest_frame_utc = s.ops.newest_read.map(|t| fmt_time(&t));
                 }
+                if st.result.is_ok() {
+                    s.last_time = Some(newest.time);
+                }
                 s.refresh_health(false);
                 (s.health.data_valid, s.health.health_state.clone(), s.health.frame_age_s)
             }
@@ -247,7 +250,6 @@ impl LiveEngine {
                 if s.latencies.len() > 500 {
                     s.latencies.pop_front();
                 }
-                s.last_time = Some(newest.time);
                 s.health.last_frame_utc = Some(fmt_time(&newest.time));
             }
             if latest.is_some() {

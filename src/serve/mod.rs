@@ -120,7 +120,8 @@ pub struct Health {
     pub heartbeat: u64,
     /// Time of the newest frame read (used or not, e.g. at night).
     pub newest_frame_utc: Option<String>,
-    /// Age of the newest frame read \[s\].
+    /// Age of the frame behind the newest forecast \[s\] (what staleness and data-valid are judged
+    /// on; frames read but refused do not count).
     pub frame_age_s: Option<f64>,
     /// Measurement rows the engine holds (the feed's, bounded to the last hours).
     pub measurement_rows: usize,

@@ -8,7 +8,7 @@
 //! |---|---|---|
 //! | `starting` | no frame read yet, and the service is younger than the stale age | no |
 //! | `camera_down` | no frame file read for `camera_down_after_s` of wall time (since start when none) | no |
-//! | `stale` | the newest frame read is older than 2 frame intervals + 60 s | no |
+//! | `stale` | the frame behind the newest forecast is older than 2 frame intervals + 60 s (frames read but refused do not count) | no |
 //! | `no_measurements` | a measurement feed is configured and its newest reading ended more than `measurement_max_age_s` ago (or none came) | yes |
 //! | `ok` | none of the above | yes |
 //!
@@ -465,12 +465,12 @@ pub fn metrics_text(m: &MetricsInput) -> String {
     lines.push(("_sum".into(), m.latency.sum_s));
     lines.push(("_count".into(), m.latency.count as f64));
     metric("nephocast_frame_latency_seconds", "histogram", "Frame processing time (decode and engine step).", lines);
-    let alarms = ["calm", "caution", "variable", "alert"];
+    let alarms = ["none", "calm", "caution", "variable", "alert"];
     let mut al: Vec<(String, f64)> = alarms.iter().map(|a| (format!("{{state=\"{a}\"}}"), f64::from(u8::from(m.alarm == *a)))).collect();
     if !alarms.contains(&m.alarm.as_str()) {
         al.push((format!("{{state=\"{}\"}}", label(&m.alarm)), 1.0));
     }
-    metric("nephocast_alarm_state", "gauge", "The ramp alarm's state (1 for the current one; advisory).", al);
+    metric("nephocast_alarm_state", "gauge", "The ramp alarm's state (1 for the current one; none while no nowcast is behind it, e.g. after a restart; advisory).", al);
     metric(
         "nephocast_health_state",
         "gauge",

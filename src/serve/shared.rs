@@ -55,7 +55,10 @@ impl Shared {
         let o = &self.ops;
         let inputs = ops::HealthInputs {
             uptime_s: o.started.elapsed().as_secs_f64(),
-            frame_age_s: o.newest_read.map(|t| ops::age_s(&t, &now)),
+            // The age of the frame the outputs rest on (the newest forecast's): frames read but
+            // refused by the engine (a low sun, exposure) keep the camera from counting as down but
+            // do not make an old forecast current.
+            frame_age_s: self.last_time.map(|t| ops::age_s(&t, &now)),
             since_frame_read_s: o.last_read_wall.map(|w| w.elapsed().as_secs_f64()),
             measurement_age_s: o.measurement_end.map(|t| ops::age_s(&t, &now)),
             feed: o.options.measurements.is_some() || o.modbus_feed,
@@ -83,7 +86,8 @@ impl Shared {
             untimed: h.frames_untimed,
             measurement_rows: h.measurement_rows_read,
             latency: self.ops.latency.clone(),
-            alarm: h.alarm.clone(),
+            // A state restored after a restart, with no nowcast behind it yet, is not reported as one.
+            alarm: if h.alarm_current { h.alarm.clone() } else { "none".into() },
             health: self.ops.state,
             heartbeat: h.heartbeat,
             frame_age_s: h.frame_age_s,
