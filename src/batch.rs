@@ -12,8 +12,8 @@
 //!   sums, [`crate::stats`]), `scores.csv` (scores from those sums), `run.json` ([`RunMeta`]) and,
 //!   last, `complete.json` ([`DayRecord`]); the folder is committed as one set
 //!   ([`crate::output_set`]), so a day with `complete.json` is whole;
-//! * `OUT/aggregate/` — the days' sums added in day order, their scores, `days.csv` and `run.json`
-//!   ([`crate::merge::write_aggregate`]).
+//! * `OUT/aggregate/` — the days' sums added in day order, their scores, `days.csv`, `report.html`
+//!   and `run.json` ([`crate::merge::write_aggregate`]).
 //!
 //! A second run into the same `OUT` skips every day that is complete with the same site
 //! configuration (resume after a kill: a killed day left only a staging folder, which is removed

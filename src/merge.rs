@@ -6,7 +6,9 @@
 //! in the same order, and their `stats.csv` and `scores.csv` are identical byte for byte.
 //!
 //! Folder (`OUT/aggregate/` of a batch, or `merge --out`): `stats.csv`, `scores.csv`,
-//! `scores.json`, `days.csv` (every day with its frames, data range and reference) and `run.json`
+//! `scores.json`, `days.csv` (every day with its frames, data range and reference), `report.html`
+//! (plots and tables from the summed and the days' statistics only,
+//! [`crate::report::aggregate_report`], so it too is the same byte for byte) and `run.json`
 //! ([`RunMeta`]), committed as one set.
 //!
 //! `merge` refuses shard folders made with different site configurations (SHA-256 of the site
@@ -20,6 +22,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::io::{CsvTable, InputError, fmt_time};
 use crate::output_set::{OutputSet, OutputSetError};
+use crate::report::ReportDay;
 use crate::stats::{Score, StatsTable};
 
 /// The marker a completed day's folder holds, written last.
@@ -225,6 +228,13 @@ pub fn write_aggregate(agg: &Path, day_folders: &[PathBuf], mut meta: RunMeta) -
     set.write("scores.csv", &total.scores_csv())?;
     set.write("scores.json", &json(&scores))?;
     set.write("days.csv", &days.into_bytes())?;
+    let report_days: Vec<ReportDay<'_>> = records
+        .iter()
+        .zip(&tables)
+        .map(|(r, t)| ReportDay { name: &r.day, frames: r.frames, frames_used: r.frames_used, reference: &r.reference, stats: t })
+        .collect();
+    let title = format!("nephocast: aggregate of {} day{}", records.len(), if records.len() == 1 { "" } else { "s" });
+    set.write("report.html", crate::report::aggregate_report(&title, &total, &report_days).as_bytes())?;
     meta.run_end_utc = fmt_time(&Utc::now());
     set.write(RUN_META, &json(&meta))?;
     set.commit()?;

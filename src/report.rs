@@ -8,6 +8,8 @@ use base64::Engine as _;
 use chrono::{DateTime, Utc};
 
 use crate::io::parse_time;
+use crate::plant::PLANT_TARGET;
+use crate::stats::{Score, StatsTable};
 use crate::verify::{Evaluation, Truth, read_rows};
 
 /// One line of a chart.
@@ -84,8 +86,12 @@ fn time_ticks(lo: f64, hi: f64, target: usize) -> Vec<f64> {
     (first..).map(|k| k as f64 * step).take_while(|v| *v <= hi + 1e-9).collect()
 }
 
-/// Ticks of a numeric x axis inside `lo..=hi` (the lines keep their full width).
-fn inner_ticks(lo: f64, hi: f64, target: usize) -> Vec<f64> {
+/// Ticks of a numeric x axis inside `lo..=hi` (the lines keep their full width); when `whole`
+/// (every x is a whole number: day numbers, horizons in minutes) no finer than 1.
+fn inner_ticks(lo: f64, hi: f64, target: usize, whole: bool) -> Vec<f64> {
+    if whole && nice_step(hi - lo, target) < 1.0 {
+        return (lo.ceil() as i64..=hi.floor() as i64).map(|v| v as f64).collect();
+    }
     nice_ticks(lo, hi, target).into_iter().filter(|v| *v >= lo - 1e-9 && *v <= hi + 1e-9).collect()
 }
 
@@ -155,7 +161,8 @@ pub fn line_chart_with(title: &str, x_label: &str, y_label: &str, series: &[Seri
     let yt = y_ticks(y0, y1, y_from_zero);
     let x1 = if x1 > x0 { x1 } else { x0 + 1.0 };
     let plot = Plot { w: 760.0, h: 300.0, ml: 60.0, mr: 20.0, mt: 30.0, mb: 45.0, x: (x0, x1), y: (yt[0], yt[yt.len() - 1]) };
-    let xt = if x_is_time_min { time_ticks(x0, x1, 6) } else { inner_ticks(x0, x1, 6) };
+    let whole = series.iter().flat_map(|s| &s.points).map(|p| p.0).chain(bands.iter().flat_map(|b| &b.points).map(|p| p.0)).all(|x| x.fract() == 0.0);
+    let xt = if x_is_time_min { time_ticks(x0, x1, 6) } else { inner_ticks(x0, x1, 6, whole) };
     axes(&mut svg, &plot, &yt, &xt, x_is_time_min, x_label, y_label);
     draw_bands(&mut svg, &plot, bands);
     draw_lines(&mut svg, &plot, series);
@@ -198,21 +205,27 @@ fn draw_bands(svg: &mut String, p: &Plot, bands: &[BandArea]) {
     }
 }
 
-/// The series' lines; a non-finite y lifts the pen.
+/// The series' lines; a non-finite y lifts the pen. A point with no finite neighbour (which a line
+/// would not show) is drawn as a dot.
 fn draw_lines(svg: &mut String, p: &Plot, series: &[Series]) {
     for s in series {
         let mut d = String::new();
+        let mut dots = String::new();
         let mut pen = false;
-        for q in &s.points {
+        let finite = |i: usize| s.points.get(i).is_some_and(|q| q.1.is_finite());
+        for (i, q) in s.points.iter().enumerate() {
             if !q.1.is_finite() {
                 pen = false;
                 continue;
             }
             let _ = write!(d, "{}{:.1},{:.1} ", if pen { "L" } else { "M" }, p.sx(q.0), p.sy(q.1));
+            if !pen && !finite(i + 1) {
+                let _ = write!(dots, "<circle cx='{:.1}' cy='{:.1}' r='2.5' fill='{}'/>", p.sx(q.0), p.sy(q.1), s.colour);
+            }
             pen = true;
         }
         let dash = if s.dashed { " stroke-dasharray='5,3'" } else { "" };
-        let _ = write!(svg, "<path d='{d}' fill='none' stroke='{}' stroke-width='1.6'{dash}/>", s.colour);
+        let _ = write!(svg, "<path d='{d}' fill='none' stroke='{}' stroke-width='1.6'{dash}/>{dots}", s.colour);
     }
 }
 
@@ -241,6 +254,17 @@ pub enum ReportError {
     Io(#[from] std::io::Error),
 }
 
+/// The page's head, title and advisory notice (the body is left open).
+fn page_start(title: &str) -> String {
+    format!(
+        "<!doctype html><html><head><meta charset='utf-8'><title>{t}</title><style>body{{font-family:sans-serif;max-width:800px;margin:20px auto;color:#222}}\
+         .caution{{border:2px solid #c60;padding:8px;background:#fff4e5}}table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:3px 8px;text-align:right}}</style></head><body>\
+         <h1>{t}</h1><p class='caution'><b>Advisory only.</b> These forecasts and ramp warnings are advisory; they are not a protection system. \
+         Grid codes, local codes and licensed practice govern plant operation and the safety of people near electrical plant.</p>",
+        t = esc(title)
+    )
+}
+
 /// Write `report.html` for a replay in `out`; `truth` (a synthetic sequence's) gives what was
 /// "measured". Returns the path.
 ///
@@ -250,15 +274,7 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
     crate::output_set::check_manifest(out)?;
     let fc = read_rows(&out.join("forecasts.csv"))?;
     let rows: Vec<BTreeMap<String, String>> = fc.into_iter().map(|r| r.into_iter().collect()).collect();
-    let mut html = String::new();
-    let _ = write!(
-        html,
-        "<!doctype html><html><head><meta charset='utf-8'><title>{t}</title><style>body{{font-family:sans-serif;max-width:800px;margin:20px auto;color:#222}}\
-         .caution{{border:2px solid #c60;padding:8px;background:#fff4e5}}table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:3px 8px;text-align:right}}</style></head><body>\
-         <h1>{t}</h1><p class='caution'><b>Advisory only.</b> These forecasts and ramp warnings are advisory; they are not a protection system. \
-         Grid codes, local codes and licensed practice govern plant operation and the safety of people near electrical plant.</p>",
-        t = esc(title)
-    );
+    let mut html = page_start(title);
     if let Some(e) = eval {
         html += &scores_section(e);
     }
@@ -421,6 +437,168 @@ fn pictures_section(out: &Path) -> Result<String, ReportError> {
     Ok(html)
 }
 
+/// One day of a batch aggregate, as the aggregate's report shows it.
+pub struct ReportDay<'a> {
+    /// The day's name.
+    pub name: &'a str,
+    /// Frames found.
+    pub frames: usize,
+    /// Frames the engine used.
+    pub frames_used: usize,
+    /// What it was scored against: `truth`, `measurements` or `none`.
+    pub reference: &'a str,
+    /// The day's sums (its `stats.csv`).
+    pub stats: &'a StatsTable,
+}
+
+/// The share of observations a P10–P90 band should hold.
+const NOMINAL_COVERAGE: f64 = 0.8;
+
+/// The horizons of the per-day panel and of the block table [s], with their colours.
+const DAY_HORIZONS: [(u32, &str); 3] = [(300, "#1f6fd1"), (600, "#16a085"), (900, "#c0392b")];
+
+/// A score with `decimals`, or `n/a` when it does not apply.
+fn fmt_opt(v: Option<f64>, decimals: usize) -> String {
+    crate::verify::fmt_score(v.unwrap_or(f64::NAN), decimals)
+}
+
+/// The plant's scores of a table, by horizon \[s\].
+fn plant_scores(t: &StatsTable) -> BTreeMap<u32, Score> {
+    t.scores().into_iter().filter(|s| s.target == PLANT_TARGET).map(|s| (s.horizon_s, s)).collect()
+}
+
+/// The self-contained HTML report of a batch aggregate or a merge, made only from the summed
+/// statistics `total` and each day's own sums (`days`, in day order): the plant's scores per
+/// horizon (RMSE of the forecast and of smart persistence, skill, CRPS, P10–P90 coverage), the
+/// plant's skill and RMSE per day, and the blocks' scores. Nothing in it depends on how the days
+/// were run, so a single run's aggregate and a merge of its shards give the same bytes.
+pub fn aggregate_report(title: &str, total: &StatsTable, days: &[ReportDay<'_>]) -> String {
+    let plant = plant_scores(total);
+    let mut html = page_start(title);
+    let mut refs: Vec<&str> = days.iter().map(|d| d.reference).collect();
+    refs.sort_unstable();
+    refs.dedup();
+    let (found, used) = days.iter().fold((0, 0), |a, d| (a.0 + d.frames, a.1 + d.frames_used));
+    let span = match (days.first(), days.last()) {
+        (Some(a), Some(b)) if days.len() > 1 => format!("{} days ({} … {})", days.len(), esc(a.name), esc(b.name)),
+        (Some(a), _) => format!("1 day ({})", esc(a.name)),
+        _ => "No days".to_string(),
+    };
+    let _ = write!(
+        html,
+        "<p>{span}, {found} frames ({used} used by the engine), scored against: {}. Every figure below comes from the days' summed statistics \
+         (<code>stats.csv</code>: sums per target and horizon, days added in day order), so one run and its shards merged give the same report.</p>",
+        if refs.is_empty() { "nothing".to_string() } else { esc(&refs.join(", ")) }
+    );
+    html += &aggregate_horizon_section(&plant);
+    html += &aggregate_day_section(days);
+    html += &aggregate_block_section(total);
+    html += "</body></html>";
+    html
+}
+
+/// The plant's scores per horizon: a table every 5 minutes and the charts.
+fn aggregate_horizon_section(plant: &BTreeMap<u32, Score>) -> String {
+    let mut html = String::from("<h2>Plant-mean GHI by horizon, all days</h2>");
+    if plant.is_empty() {
+        html += "<p>No scored pairs for the plant: the days had no truth and no measurements with the plant's pyranometers.</p>";
+        return html;
+    }
+    html += "<table><tr><th>horizon</th><th>pairs</th><th>RMSE W/m²</th><th>MAE</th><th>MBE</th><th>persistence RMSE</th><th>skill</th><th>CRPS W/m²</th><th>P10–P90 coverage</th><th>mean band width W/m²</th></tr>";
+    for s in plant.values().filter(|s| s.horizon_s % 300 == 0) {
+        let cov = s.coverage_p10_p90.map_or_else(|| "n/a".to_string(), |c| format!("{:.0} %", 100.0 * c));
+        let _ = write!(
+            html,
+            "<tr><td>{} min</td><td>{}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{}</td><td>{cov}</td><td>{}</td></tr>",
+            s.horizon_s / 60, s.n, s.rmse_wm2, s.mae_wm2, s.mbe_wm2, s.rmse_persistence_wm2, fmt_opt(s.skill, 3), fmt_opt(s.crps_wm2, 1), fmt_opt(s.mean_band_width_wm2, 0)
+        );
+    }
+    html += "</table><p>Skill is 1 − RMSE / RMSE of smart persistence; it is n/a at horizon 0, where persistence is the observation itself.</p>";
+    let x = |s: &Score| s.horizon_s as f64 / 60.0;
+    let line = |label: &str, colour: &str, points: Vec<(f64, f64)>, dashed: bool| Series { label: label.into(), colour: colour.into(), points, dashed };
+    let rmse = plant.values().map(|s| (x(s), s.rmse_wm2)).collect();
+    let pers = plant.values().map(|s| (x(s), s.rmse_persistence_wm2)).collect();
+    html += &line_chart_with("RMSE by horizon", "horizon [min]", "RMSE [W/m²]", &[line("forecast", "#1f6fd1", rmse, false), line("smart persistence", "#999", pers, true)], &[], false, true);
+    let skilled: Vec<&Score> = plant.values().filter(|s| s.horizon_s > 0).collect();
+    let skill = skilled.iter().map(|s| (x(s), s.skill.unwrap_or(f64::NAN))).collect();
+    let zero = skilled.iter().map(|s| (x(s), 0.0)).collect();
+    html += &line_chart("Skill against smart persistence by horizon", "horizon [min]", "skill", &[line("forecast", "#1f6fd1", skill, false), line("persistence (0)", "#999", zero, true)], &[], false);
+    if plant.values().any(|s| s.crps_wm2.is_some()) {
+        let crps = plant.values().map(|s| (x(s), s.crps_wm2.unwrap_or(f64::NAN))).collect();
+        html += &line_chart_with("CRPS of the ensemble by horizon", "horizon [min]", "CRPS [W/m²]", &[line("CRPS", "#8e44ad", crps, false)], &[], false, true);
+    } else {
+        html += "<p>CRPS: n/a (no ensemble members were scored).</p>";
+    }
+    if plant.values().any(|s| s.coverage_p10_p90.is_some()) {
+        let cov = plant.values().map(|s| (x(s), s.coverage_p10_p90.map_or(f64::NAN, |c| 100.0 * c))).collect();
+        let nominal = plant.values().map(|s| (x(s), 100.0 * NOMINAL_COVERAGE)).collect();
+        html += &line_chart_with("P10–P90 coverage by horizon", "horizon [min]", "observations inside the band [%]", &[line("coverage", "#16a085", cov, false), line("nominal 80 %", "#999", nominal, true)], &[], false, true);
+    } else {
+        html += "<p>P10–P90 coverage: n/a (no bands were scored).</p>";
+    }
+    html
+}
+
+/// The plant's skill and RMSE at 5, 10 and 15 minutes per day (x: the day's number in the table),
+/// and the table of days.
+fn aggregate_day_section(days: &[ReportDay<'_>]) -> String {
+    let mut html = String::from("<h2>Per day</h2>");
+    let scores: Vec<BTreeMap<u32, Score>> = days.iter().map(|d| plant_scores(d.stats)).collect();
+    let per_day = |f: &dyn Fn(&Score) -> Option<f64>| -> Vec<Series> {
+        DAY_HORIZONS
+            .iter()
+            .map(|&(h, colour)| Series {
+                label: format!("{} min", h / 60),
+                colour: colour.into(),
+                points: scores.iter().enumerate().map(|(i, s)| ((i + 1) as f64, s.get(&h).and_then(f).unwrap_or(f64::NAN))).collect(),
+                dashed: false,
+            })
+            .collect()
+    };
+    if days.len() >= 2 {
+        html += &line_chart("Skill per day (plant)", "day (number in the table below)", "skill", &per_day(&|s| s.skill), &[], false);
+        html += &line_chart_with("RMSE per day (plant)", "day (number in the table below)", "RMSE [W/m²]", &per_day(&|s| Some(s.rmse_wm2)), &[], false, true);
+    } else {
+        html += "<p>One day: its scores are those above.</p>";
+    }
+    html += "<table><tr><th>#</th><th>day</th><th>frames (used)</th><th>scored against</th><th>pairs at 5 min</th><th>RMSE 5 min</th><th>skill 5 min</th><th>10 min</th><th>15 min</th></tr>";
+    for (i, (d, s)) in days.iter().zip(&scores).enumerate() {
+        let at = |h: u32| s.get(&h);
+        let skill = |h: u32| fmt_opt(at(h).and_then(|x| x.skill), 3);
+        let _ = write!(
+            html,
+            "<tr><td>{}</td><td style='text-align:left'>{}</td><td>{} ({})</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            i + 1, esc(d.name), d.frames, d.frames_used, esc(d.reference), at(300).map_or(0, |x| x.n), fmt_opt(at(300).map(|x| x.rmse_wm2), 1), skill(300), skill(600), skill(900)
+        );
+    }
+    html += "</table>";
+    html
+}
+
+/// Each block's RMSE and skill at 5, 10 and 15 minutes, all days.
+fn aggregate_block_section(total: &StatsTable) -> String {
+    let mut blocks: BTreeMap<String, BTreeMap<u32, Score>> = BTreeMap::new();
+    for s in total.scores().into_iter().filter(|s| s.target != PLANT_TARGET) {
+        blocks.entry(s.target.clone()).or_default().insert(s.horizon_s, s);
+    }
+    if blocks.is_empty() {
+        return String::new();
+    }
+    let mut html = String::from("<h2>Blocks, all days</h2><table><tr><th>block</th><th>pairs at 5 min</th><th>RMSE 5 min</th><th>10 min</th><th>15 min</th><th>skill 5 min</th><th>10 min</th><th>15 min</th></tr>");
+    for (name, s) in &blocks {
+        let _ = write!(html, "<tr><td style='text-align:left'>{}</td><td>{}</td>", esc(name), s.get(&300).map_or(0, |x| x.n));
+        for (h, _) in DAY_HORIZONS {
+            let _ = write!(html, "<td>{}</td>", fmt_opt(s.get(&h).map(|x| x.rmse_wm2), 1));
+        }
+        for (h, _) in DAY_HORIZONS {
+            let _ = write!(html, "<td>{}</td>", fmt_opt(s.get(&h).and_then(|x| x.skill), 3));
+        }
+        html += "</tr>";
+    }
+    html += "</table>";
+    html
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -439,7 +617,10 @@ mod tests {
         assert_eq!(tick_decimals(0.05), 2);
         assert_eq!(tick_decimals(5.0), 0);
         assert_eq!(time_ticks(8.0 * 60.0 + 3.0, 9.0 * 60.0 + 58.0, 6), vec![510.0, 540.0, 570.0]);
-        assert_eq!(inner_ticks(0.0, 20.0, 6), vec![0.0, 5.0, 10.0, 15.0, 20.0]);
+        assert_eq!(inner_ticks(0.0, 20.0, 6, true), vec![0.0, 5.0, 10.0, 15.0, 20.0]);
+        // Three days are numbered 1, 2, 3, not 1.0, 1.5 …; other values keep the finer steps.
+        assert_eq!(inner_ticks(1.0, 3.0, 6, true), vec![1.0, 2.0, 3.0]);
+        assert_eq!(inner_ticks(1.0, 3.0, 6, false), vec![1.0, 1.5, 2.0, 2.5, 3.0]);
     }
 
     #[test]
@@ -450,6 +631,87 @@ mod tests {
         assert_eq!(y_ticks(7.3, 9.6, false), vec![7.0, 7.5, 8.0, 8.5, 9.0, 9.5, 10.0]);
         // A constant speed of 0 still gets an axis.
         assert_eq!(y_ticks(0.0, 0.0, true), vec![0.0, 0.1, 0.2, 0.3, 0.4, 0.5]);
+    }
+
+    /// Sums of `n` pairs at each horizon of `0..=max_min` minutes, errors growing with the horizon
+    /// (persistence's faster), with ensemble and band counts when `ensemble`.
+    fn sums_table(target: &str, max_min: u32, scale: f64, ensemble: bool) -> StatsTable {
+        let mut t = StatsTable::default();
+        for m in 0..=max_min {
+            let (n, e, p) = (10u64, scale * (5.0 + m as f64), if m == 0 { 0.0 } else { scale * (8.0 + 3.0 * m as f64) });
+            let band = if ensemble { (10, 8, 2000.0, 10, 30.0 * scale) } else { (0, 0, 0.0, 0, 0.0) };
+            let s = crate::stats::Sums {
+                n,
+                sum_err: e,
+                sum_sq_err: n as f64 * e * e,
+                sum_abs_err: n as f64 * e,
+                sum_obs: 5000.0,
+                pers_sum_err: p,
+                pers_sum_sq_err: n as f64 * p * p,
+                pers_sum_abs_err: n as f64 * p,
+                crps_n: band.3,
+                crps_sum: band.4,
+                band_n: band.0,
+                band_inside: band.1,
+                band_width_sum: band.2,
+            };
+            t.rows.insert((target.to_string(), m * 60), s);
+        }
+        t
+    }
+
+    fn svgs(html: &str) -> Vec<&str> {
+        html.split("<svg ").skip(1).map(|s| &s[..s.find("</svg>").expect("an svg element is closed")]).collect()
+    }
+
+    #[test]
+    fn aggregate_report_has_its_charts_and_no_nan() {
+        let days: Vec<StatsTable> = (0..3).map(|i| {
+            let mut t = sums_table(PLANT_TARGET, 20, 1.0 + i as f64, true);
+            t.add(&sums_table("north & <east>", 20, 2.0, true));
+            t
+        }).collect();
+        let total = StatsTable::sum(&days);
+        let names = ["2026-06-01", "2026-06-02", "2026-06-03"];
+        let rd: Vec<ReportDay<'_>> = days.iter().zip(names).map(|(t, n)| ReportDay { name: n, frames: 90, frames_used: 88, reference: "truth", stats: t }).collect();
+        let html = aggregate_report("agg", &total, &rd);
+        assert!(!html.contains("NaN") && !html.contains("inf"), "{html}");
+        let charts = svgs(&html);
+        let titles = ["RMSE by horizon", "Skill against smart persistence by horizon", "CRPS of the ensemble by horizon", "P10–P90 coverage by horizon", "Skill per day (plant)", "RMSE per day (plant)"];
+        assert_eq!(charts.len(), titles.len());
+        for (svg, title) in charts.iter().zip(titles) {
+            assert!(svg.contains(&format!(">{title}</text>")), "{title}: {svg}");
+            assert!(svg.contains("<path d='M"), "{title} has no line");
+        }
+        // Horizon-0 skill is n/a in the table; the skill chart starts at 1 minute.
+        let row0 = &html[html.find("<tr><td>0 min</td>").unwrap()..];
+        let cells: Vec<&str> = row0[..row0.find("</tr>").unwrap()].split("<td>").skip(1).map(|c| c.trim_end_matches("</td>")).collect();
+        assert_eq!((cells[1], cells[6]), ("30", "n/a"), "{cells:?}");
+        // The per-day panel's x axis counts days.
+        for lab in [">1<", ">2<", ">3<", "day (number in the table below)", ">5 min<", ">15 min<"] {
+            assert!(charts[4].contains(lab), "{lab}: {}", charts[4]);
+        }
+        assert!(html.contains("north &amp; &lt;east&gt;") && !html.contains("<east>"));
+        assert!(html.contains("3 days (2026-06-01 … 2026-06-03), 270 frames (264 used by the engine)"), "{html}");
+    }
+
+    #[test]
+    fn aggregate_report_of_one_day_without_ensemble_or_scores() {
+        let t = sums_table(PLANT_TARGET, 15, 1.0, false);
+        let html = aggregate_report("one", &t, &[ReportDay { name: "d", frames: 5, frames_used: 5, reference: "measurements", stats: &t }]);
+        assert_eq!(svgs(&html).len(), 2, "RMSE and skill by horizon only");
+        assert!(html.contains("CRPS: n/a") && html.contains("coverage: n/a") && html.contains("One day"));
+        assert!(!html.contains("NaN"));
+        let empty = StatsTable::default();
+        let html = aggregate_report("none", &empty, &[ReportDay { name: "d", frames: 5, frames_used: 0, reference: "none", stats: &empty }]);
+        assert!(html.contains("No scored pairs") && svgs(&html).is_empty());
+    }
+
+    #[test]
+    fn a_point_between_gaps_is_a_dot() {
+        let s = Series { label: "x".into(), colour: "#123".into(), points: vec![(0.0, 1.0), (1.0, f64::NAN), (2.0, 2.0), (3.0, 3.0), (4.0, f64::NAN), (5.0, 1.5)], dashed: false };
+        let svg = line_chart("t", "x", "y", &[s], &[], false);
+        assert_eq!(svg.matches("<circle").count(), 2, "{svg}");
     }
 
     #[test]

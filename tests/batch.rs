@@ -110,7 +110,7 @@ fn shards_and_merge_equal_one_run() {
     let mut c = bin();
     let text = ok(&c.arg("merge").arg("--out").arg(&merged).args(&shards).output().unwrap(), "merge");
     assert!(text.contains(&format!("merged {DAYS} days from 3 shard folders")), "{text}");
-    for file in ["stats.csv", "scores.csv", "days.csv"] {
+    for file in ["stats.csv", "scores.csv", "days.csv", "report.html"] {
         assert_eq!(read(&single.join("aggregate").join(file)), read(&merged.join(file)), "{file} differs between one run and the merged shards");
     }
     let (n, bits) = plant_rmse_5min(&merged.join("scores.csv"));
@@ -122,6 +122,88 @@ fn shards_and_merge_equal_one_run() {
     assert_eq!(b["kind"], "merge");
     assert_eq!(b["days"].as_array().unwrap().len(), DAYS);
     refusals(&shards, &f.root);
+}
+
+/// The `<svg>…</svg>` elements of a page, each checked to be well-formed XML as far as its tags go
+/// (every element closed in order, attribute values quoted).
+fn svg_elements(html: &str) -> Vec<&str> {
+    let mut out = vec![];
+    let mut rest = html;
+    while let Some(a) = rest.find("<svg ") {
+        let b = a + rest[a..].find("</svg>").expect("an svg element is closed") + "</svg>".len();
+        let svg = &rest[a..b];
+        let mut stack: Vec<&str> = vec![];
+        let mut t = svg;
+        while let Some(i) = t.find('<') {
+            let j = i + t[i..].find('>').expect("a tag is closed");
+            let tag = &t[i + 1..j];
+            if let Some(name) = tag.strip_prefix('/') {
+                assert_eq!(stack.pop(), Some(name), "</{name}> closes another element in {svg}");
+            } else {
+                let name = tag.split_whitespace().next().unwrap();
+                assert_eq!(tag.matches('\'').count() % 2, 0, "unbalanced quotes in <{tag}>");
+                if !tag.ends_with('/') {
+                    stack.push(name);
+                }
+            }
+            t = &t[j + 1..];
+        }
+        assert!(stack.is_empty(), "unclosed {stack:?} in {svg}");
+        out.push(svg);
+        rest = &rest[b..];
+    }
+    out
+}
+
+/// The aggregate's `report.html`: self-contained, its charts (well-formed inline SVG with the
+/// titles, axis labels and legends expected), horizon-0 skill as n/a, one row per day, and the
+/// figures of `scores.csv`.
+#[test]
+fn aggregate_report_has_its_charts() {
+    let single = single_run();
+    let html = read(&single.join("aggregate").join("report.html"));
+    for outside in ["<script", "<link", "src='http", "src=\"http", "href="] {
+        assert!(!html.contains(outside), "the report is not self-contained: {outside}");
+    }
+    assert!(!html.contains("NaN") && !html.contains("inf<"), "a figure is not a number");
+    let svgs = svg_elements(&html);
+    let expected = [
+        ("RMSE by horizon", "horizon [min]", &["forecast", "smart persistence"][..]),
+        ("Skill against smart persistence by horizon", "horizon [min]", &["forecast", "persistence (0)"][..]),
+        ("CRPS of the ensemble by horizon", "horizon [min]", &["CRPS"][..]),
+        ("P10–P90 coverage by horizon", "horizon [min]", &["coverage", "nominal 80 %"][..]),
+        ("Skill per day (plant)", "day (number in the table below)", &["5 min", "10 min", "15 min"][..]),
+        ("RMSE per day (plant)", "day (number in the table below)", &["5 min", "10 min", "15 min"][..]),
+    ];
+    assert_eq!(svgs.len(), expected.len(), "charts: {}", svgs.iter().map(|s| &s[..s.len().min(200)]).collect::<Vec<_>>().join("\n"));
+    for (svg, (title, x_label, legend)) in svgs.iter().zip(expected) {
+        for lab in [title, x_label].iter().chain(legend) {
+            assert!(svg.contains(&format!(">{lab}</text>")), "{title}: no label {lab:?}");
+        }
+        assert!(svg.contains("<path d='M"), "{title}: no line");
+        assert!(!svg.contains(">no data<"), "{title}: no data");
+    }
+    // Horizon axes run 0 … 20 min; the per-day axis counts the days.
+    assert!(svgs[0].contains(">0</text>") && svgs[0].contains(">20</text>"));
+    assert!(svgs[4].contains(&format!(">{DAYS}</text>")));
+    // The table: horizon 0 has no skill, and the figures are those of scores.csv.
+    let rows: Vec<csv::StringRecord> = csv::Reader::from_path(single.join("aggregate").join("scores.csv")).unwrap().records().map(Result::unwrap).collect();
+    for r in rows.iter().filter(|r| &r[0] == "plant" && ["0", "300", "600", "900"].contains(&&r[1])) {
+        let h: u32 = r[1].parse().unwrap();
+        let row = &html[html.find(&format!("<tr><td>{} min</td>", h / 60)).unwrap()..];
+        let cells: Vec<&str> = row[..row.find("</tr>").unwrap()].split("<td>").skip(1).map(|c| c.trim_end_matches("</td>")).collect();
+        assert_eq!(cells[1], &r[2], "{h} s: pairs");
+        assert_eq!(cells[2], format!("{:.1}", r[3].parse::<f64>().unwrap()), "{h} s: RMSE");
+        let skill = if r[10].is_empty() { "n/a".to_string() } else { format!("{:.3}", r[10].parse::<f64>().unwrap()) };
+        assert_eq!(cells[6], skill, "{h} s: skill");
+        if h == 0 {
+            assert_eq!(cells[6], "n/a", "horizon-0 skill");
+        }
+    }
+    for i in 0..DAYS {
+        assert!(html.contains(&format!("<tr><td>{}</td><td style='text-align:left'>day{i:02}</td>", i + 1)), "day{i:02} has no row");
+    }
+    println!("aggregate report: {} bytes, {} charts", html.len(), svgs.len());
 }
 
 /// `merge` refuses shards of other configurations or sharing a day, naming both folders.
