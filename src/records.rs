@@ -113,6 +113,11 @@ pub fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
         "alarm_basis": nc.alarm_basis,
         "ramps": nc.ramps,
         "forecast": rows,
+        // The forecast mean GHI at the pyranometers, per horizon (empty without pyranometers): what
+        // the measured pyranometers are compared with.
+        "pyranometers_forecast": nc.forecast.plant.iter().zip(&nc.forecast.probes_ghi_wm2)
+            .map(|(r, g)| serde_json::json!({"horizon_s": r.horizon_s, "target_time_utc": fmt_time(&r.time), "ghi_wm2": g}))
+            .collect::<Vec<_>>(),
         "advisory": "Forecasts and alarms are advisory, not a protection system.",
     })
 }

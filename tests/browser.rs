@@ -63,7 +63,7 @@ fn site_for_now(dir: &Path) -> PathBuf {
     p
 }
 
-fn live(site: &Path, incoming: &Path, db: &Path) -> LiveHandle {
+fn live(site: &Path, incoming: &Path, db: &Path, measurements: Option<&Path>) -> LiveHandle {
     std::fs::create_dir_all(incoming).unwrap();
     start(LiveOptions {
         site: site.to_path_buf(),
@@ -75,7 +75,7 @@ fn live(site: &Path, incoming: &Path, db: &Path) -> LiveHandle {
         keep_s: 86_400,
         poll_ms: 40,
         overlay_every: 1,
-        health: Default::default(),
+        health: nephocast::serve::ops::HealthOptions { measurements: measurements.map(Path::to_path_buf), ..Default::default() },
     })
     .unwrap()
 }
@@ -169,7 +169,20 @@ fn dashboard_empty_normal_shelved_restarted_and_stale() {
 
     // Empty: no frame yet. It says so, shows no alarm state and no broken picture.
     let incoming = d.path().join("incoming");
-    let h = live(&site, &incoming, &db);
+    // A logger's file of the demo pyranometers' minute means over the last 20 minutes (the site is
+    // moved to local noon at 5° N, so 600–900 W/m² are plausible).
+    let meas = d.path().join("measurements.csv");
+    let header = std::fs::read_to_string(demo.join("measurements.csv")).unwrap().lines().find(|l| l.starts_with("time_utc")).unwrap().to_string();
+    let start_min = Utc::now() - chrono::Duration::minutes(20);
+    let rows: Vec<String> = (0..19)
+        .map(|k| {
+            let t = start_min + chrono::Duration::minutes(k);
+            let g = 750.0 + 150.0 * (k as f64 * 0.7).sin();
+            format!("{},{g:.1},{:.1},{:.1},25.0,2.0", nephocast::io::fmt_time(&t), g + 20.0, g - 30.0)
+        })
+        .collect();
+    std::fs::write(&meas, format!("{header}\n{}\n", rows.join("\n"))).unwrap();
+    let h = live(&site, &incoming, &db, Some(&meas));
     let dom = snapshot(&bin, &h, &profile, "empty");
     assert!(dom.contains("class=\"banner wait\">Waiting for the first frame:"), "empty state: {}", head(&dom));
     assert!(dom.contains(">NO FORECAST</span>") && !dom.contains("CALM"), "empty state shows an alarm state: {}", head(&dom));
@@ -192,6 +205,10 @@ fn dashboard_empty_normal_shelved_restarted_and_stale() {
     assert!(!dom.contains("+20 min</text>"), "relative axis labels");
     assert!(dom.contains(">OK<") && dom.contains("class=\"banner hidden\""), "normal state reads as not OK: {}", head(&dom));
     assert!(dom.contains("change MW") && dom.contains("change %"));
+    // Measured against forecast: the pyranometers' mean, one dot per minute held, and the forecast.
+    assert!(dom.contains("id=\"ghichart-svg\"") && dom.contains("class=\"probes\""), "GHI chart missing: {}", head(&dom));
+    let dots = dom.matches("class=\"measured\"").count();
+    assert!(dots >= 10, "{dots} measured points");
     let page = dom.clone();
     assert!(page.contains("notifications go out as usual") && page.contains("never shelved"), "shelving controls: {}", head(&page));
 
@@ -207,7 +224,7 @@ fn dashboard_empty_normal_shelved_restarted_and_stale() {
 
     // Restarted on the same database: no forecast yet, so no alarm shown; the log is still there.
     let incoming2 = d.path().join("incoming2");
-    let h = live(&site, &incoming2, &db);
+    let h = live(&site, &incoming2, &db, None);
     let dom = snapshot(&bin, &h, &profile, "restarted");
     assert!(dom.contains("class=\"banner wait\">Waiting for the first frame since the service started"), "restarted state: {}", head(&dom));
     assert!(dom.contains(">NO FORECAST</span>"), "restarted state shows an alarm: {}", head(&dom));

@@ -315,6 +315,21 @@ impl Nowcaster {
         self.forecast_stage.tuning_rows()
     }
 
+    /// The configured pyranometers' mean measured GHI \[W m⁻²\] for each row held whose averaging
+    /// period began at or after `since`, stamped at the middle of its period (rows where no
+    /// pyranometer reads are left out): what live mode shows against the forecast.
+    pub fn measured_pyranometer_mean(&self, since: DateTime<Utc>) -> Vec<(DateTime<Utc>, f64)> {
+        let Some((m, cols)) = &self.measurements else { return vec![] };
+        let half = chrono::Duration::milliseconds((m.period_s.max(1.0) * 500.0) as i64);
+        let from = m.times.partition_point(|t| *t < since);
+        (from..m.times.len())
+            .filter_map(|i| {
+                let v: Vec<f64> = cols.iter().map(|(c, _)| m.columns[*c][i]).filter(|v| v.is_finite()).collect();
+                (!v.is_empty()).then(|| (m.times[i] + half, v.iter().sum::<f64>() / v.len() as f64))
+            })
+            .collect()
+    }
+
     /// The measurements held: rows, and the end of the newest row's averaging period.
     pub fn measurements_newest(&self) -> (usize, Option<DateTime<Utc>>) {
         match &self.measurements {

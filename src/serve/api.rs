@@ -297,3 +297,20 @@ async fn api_overlay(State(app): State<App>) -> Response {
         None => StatusCode::NOT_FOUND.into_response(),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    /// The published API description parses as YAML and lists every route this file registers
+    /// (except the dashboard page and the description itself).
+    #[test]
+    fn openapi_lists_every_route() {
+        let doc: serde_yaml::Value = serde_yaml::from_str(include_str!("openapi.yaml")).expect("openapi.yaml parses");
+        let paths = doc["paths"].as_mapping().expect("paths");
+        let source = include_str!("api.rs");
+        let routes: Vec<&str> = source.split(".route(\"").skip(1).filter_map(|r| r.split('"').next()).filter(|r| r.starts_with('/')).collect();
+        assert!(routes.len() >= 9, "{routes:?}");
+        for r in routes.into_iter().filter(|r| *r != "/" && *r != "/openapi.yaml") {
+            assert!(paths.contains_key(serde_yaml::Value::from(r)), "{r} is not in openapi.yaml");
+        }
+    }
+}

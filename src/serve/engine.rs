@@ -225,6 +225,14 @@ impl LiveEngine {
                 self.processed += 1;
                 let mut j = nowcast_json(n);
                 j["site_time_zone"] = self.time_zone.clone();
+                // The pyranometers' measured mean over the last 30 minutes, to show against the forecast.
+                j["pyranometers_measured"] = self
+                    .nc
+                    .measured_pyranometer_mean(n.time - chrono::Duration::minutes(30))
+                    .into_iter()
+                    .map(|(t, g)| serde_json::json!({"time_utc": fmt_time(&t), "ghi_wm2": g}))
+                    .collect::<Vec<_>>()
+                    .into();
                 latest = Some(j);
                 self.log_nowcast(n, valid, &mut events);
                 events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name(), "data_valid": valid, "health": health_state}).to_string());
