@@ -177,7 +177,7 @@ pub fn header_fields() -> Vec<Field> {
         (s("frame_age_s"), Kind::U32, 1.0, "s", s("age of the latest nowcast's frame, from the clock at read time; 4294967295 before the first nowcast"), Source::FrameAgeS),
         (s("frame_time_unix_s"), Kind::U32, 1.0, "s", s("the latest nowcast's frame time (Unix time, UTC); 0 before the first nowcast"), Source::FrameTimeUnixS),
         (s("alarm_code"), Kind::U16, 1.0, "", s("plant ramp alarm: 0 calm, 1 caution, 2 alert, 3 variable (advisory)"), Source::AlarmCode),
-        (s("ramp_probability"), Kind::U16, 0.001, "1", s("probability of the ramp behind the alarm (the most probable ramp of the latest nowcast); 0 when none"), Source::RampProbability),
+        (s("ramp_probability"), Kind::U16, 0.001, "1", s("probability of the ramp behind the alarm state (the alarm's basis); 0 when none (calm)"), Source::RampProbability),
         (s("ramp_direction"), Kind::I16, 1.0, "", s("that ramp: -1 down, 1 up, 0 none"), Source::RampDirection),
         (s("ramp_start_in_s"), Kind::I16, 1.0, "s", s("its expected start, from the clock at read time (negative once past); 0 when none"), Source::RampStartInS),
         (s("ramp_start_unix_s"), Kind::U32, 1.0, "s", s("its expected start (Unix time, UTC); 0 when none"), Source::RampStartUnixS),
@@ -220,7 +220,7 @@ pub struct Snapshot {
     pub heartbeat: u64,
     /// Alarm state.
     pub alarm: AlarmState,
-    /// The most probable ramp: (probability, direction, expected start, change in % of capacity).
+    /// The ramp behind the alarm state: (probability, direction, expected start, change in % of capacity).
     pub ramp: Option<(f64, Direction, DateTime<Utc>, f64)>,
     /// Per target (plant first), per horizon, P10/P50/P90 power \[kW\] (NaN: not forecast).
     pub power_kw: Vec<[[f64; 3]; 4]>,
@@ -278,11 +278,9 @@ impl Feed {
                 v
             })
             .collect();
-        let ramp = nc
-            .ramps
-            .iter()
-            .max_by(|a, b| a.probability.total_cmp(&b.probability))
-            .map(|e| (e.probability, e.direction, nc.time + chrono::Duration::milliseconds((e.lead_time_s * 1000.0) as i64), e.change_pct));
+        // The ramp behind the alarm state (its basis), so the ramp registers never contradict the
+        // alarm code; none while the alarm is calm (or before motion is confirmed).
+        let ramp = nc.alarm_basis.as_ref().map(|b| (b.ramp.probability, b.ramp.direction, b.start, b.ramp.change_pct));
         let s = Snapshot { frame_time: nc.time, heartbeat, alarm: nc.alarm, ramp, power_kw, published };
         if let Ok(mut g) = self.latest.write() {
             *g = Some(Arc::new(s));
