@@ -681,30 +681,7 @@ impl Measurements {
             vec![]
         };
         // Units first, on the raw values.
-        for (c, name) in self.names.iter().enumerate() {
-            if irradiance_kind(name) != Some("ghi") {
-                continue;
-            }
-            let (mut day_rows, mut max_v, mut max_clear) = (0usize, f64::NEG_INFINITY, 0.0f64);
-            for (i, v) in self.columns[c].iter().enumerate() {
-                if let Some((_, _, clear)) = suns[i]
-                    && clear >= KW_CHECK_CLEAR_WM2
-                    && v.is_finite()
-                {
-                    day_rows += 1;
-                    max_v = max_v.max(*v);
-                    max_clear = max_clear.max(clear);
-                }
-            }
-            if day_rows >= 5 && max_v < KW_SUSPECT_MAX && max_v > 0.0 {
-                return Err(InputError::Other {
-                    file: file.into(),
-                    message: format!(
-                        "column {name}: the largest of {day_rows} daytime readings is {max_v} while the clear-sky model gives up to {max_clear:.0} W/m² at those times: the column looks like kW/m²; expected W/m² (multiply by 1000)"
-                    ),
-                });
-            }
-        }
+        self.check_ghi_units(file, &suns)?;
         let mut report = ScreenReport { rows: self.times.len(), ..Default::default() };
         let mut flagged_rows = vec![false; self.times.len()];
         for (c, name) in self.names.iter().enumerate() {
@@ -757,6 +734,37 @@ impl Measurements {
         }
         report.first_flagged_lines = flagged_rows.iter().enumerate().filter(|(_, f)| **f).map(|(i, _)| self.lines.get(i).copied().unwrap_or(0)).take(20).collect();
         Ok(report)
+    }
+
+    /// Refuse a GHI column that looks like kW/m²: at least five daytime readings (clear-sky GHI at
+    /// least [`KW_CHECK_CLEAR_WM2`]) all below [`KW_SUSPECT_MAX`]. `suns` holds each row's sun
+    /// zenith, Earth–Sun distance and clear-sky GHI ([`Measurements::screen`]).
+    fn check_ghi_units(&self, file: &Path, suns: &[Option<(f64, f64, f64)>]) -> Result<(), InputError> {
+        for (c, name) in self.names.iter().enumerate() {
+            if irradiance_kind(name) != Some("ghi") {
+                continue;
+            }
+            let (mut day_rows, mut max_v, mut max_clear) = (0usize, f64::NEG_INFINITY, 0.0f64);
+            for (i, v) in self.columns[c].iter().enumerate() {
+                if let Some((_, _, clear)) = suns[i]
+                    && clear >= KW_CHECK_CLEAR_WM2
+                    && v.is_finite()
+                {
+                    day_rows += 1;
+                    max_v = max_v.max(*v);
+                    max_clear = max_clear.max(clear);
+                }
+            }
+            if day_rows >= 5 && max_v < KW_SUSPECT_MAX && max_v > 0.0 {
+                return Err(InputError::Other {
+                    file: file.into(),
+                    message: format!(
+                        "column {name}: the largest of {day_rows} daytime readings is {max_v} while the clear-sky model gives up to {max_clear:.0} W/m² at those times: the column looks like kW/m²; expected W/m² (multiply by 1000)"
+                    ),
+                });
+            }
+        }
+        Ok(())
     }
 
     /// Column index by name.

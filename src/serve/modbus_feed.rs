@@ -33,7 +33,6 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use chrono::{DateTime, TimeZone, Utc};
-use serde::Serialize;
 use tokio_modbus::client::{Client, Context, Reader};
 
 use crate::config::{ModbusFeedSection, RegisterKind, RegisterSpec};
@@ -56,33 +55,8 @@ enum Msg {
     Note(String),
 }
 
-/// The poller's state and counters, readable while it runs (health `measurement_feed_modbus`).
-#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize)]
-pub struct ModbusFeedStatus {
-    /// The device as configured (`host:port`).
-    pub address: String,
-    /// The unit id sent.
-    pub unit_id: u8,
-    /// A connection is open.
-    pub connected: bool,
-    /// An outage is going on (the last read did not give every value).
-    pub in_outage: bool,
-    /// Reads of the whole register list that gave every value.
-    pub reads_ok: u64,
-    /// Failures: connection attempts, requests that failed, timed out or drew an exception.
-    pub errors: u64,
-    /// Outages begun.
-    pub outages: u64,
-    /// Samples left out of the means: not a finite number, or outside the physically possible
-    /// limits.
-    pub values_refused: u64,
-    /// Rows dropped because the engine had not taken [`QUEUE_LEN`] earlier ones.
-    pub rows_dropped: u64,
-    /// Averaged rows handed to the engine.
-    pub rows_made: u64,
-    /// The last failure, with its UTC time.
-    pub last_error: Option<String>,
-}
+/// The poller's state and counters (kept with the other health figures in `ops`).
+pub use super::ops::ModbusFeedStatus;
 
 /// The running poller; dropping it stops the thread (at once, also in the middle of a request).
 pub struct ModbusPoller {

@@ -428,7 +428,7 @@ pub struct MetricsInput {
     /// Newest measurement's age \[s\].
     pub measurement_age_s: Option<f64>,
     /// The Modbus measurement feed's state, when the site polls one.
-    pub modbus_feed: Option<super::modbus_feed::ModbusFeedStatus>,
+    pub modbus_feed: Option<ModbusFeedStatus>,
 }
 
 fn label(v: &str) -> String {
@@ -512,6 +512,36 @@ pub fn log_line(fields: &[(&str, String)], json: bool) -> String {
 /// A time for the log.
 pub fn log_time(t: &DateTime<Utc>) -> String {
     fmt_time(t)
+}
+
+/// The Modbus measurement feed's poller state and counters, readable while it runs (health
+/// `measurement_feed_modbus`; the poller is `serve::modbus_feed`).
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+pub struct ModbusFeedStatus {
+    /// The device as configured (`host:port`).
+    pub address: String,
+    /// The unit id sent.
+    pub unit_id: u8,
+    /// A connection is open.
+    pub connected: bool,
+    /// An outage is going on (the last read did not give every value).
+    pub in_outage: bool,
+    /// Reads of the whole register list that gave every value.
+    pub reads_ok: u64,
+    /// Failures: connection attempts, requests that failed, timed out or drew an exception.
+    pub errors: u64,
+    /// Outages begun.
+    pub outages: u64,
+    /// Samples left out of the means: not a finite number, or outside the physically possible
+    /// limits.
+    pub values_refused: u64,
+    /// Rows dropped because the engine had not taken the queue's worth of earlier ones
+    /// (`modbus_feed::QUEUE_LEN`).
+    pub rows_dropped: u64,
+    /// Averaged rows handed to the engine.
+    pub rows_made: u64,
+    /// The last failure, with its UTC time.
+    pub last_error: Option<String>,
 }
 
 #[cfg(test)]
