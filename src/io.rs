@@ -178,6 +178,18 @@ impl CsvTable {
     }
 }
 
+/// One CSV line (no header, no line end) quoted by the same writer as [`CsvTable`], for rows
+/// printed one at a time (e.g. `segment`'s standard output).
+pub fn csv_line<I, T>(fields: I) -> String
+where
+    I: IntoIterator<Item = T>,
+    T: AsRef<[u8]>,
+{
+    let mut t = CsvTable { w: csv::WriterBuilder::new().quote_style(csv::QuoteStyle::Necessary).flexible(true).from_writer(Vec::new()) };
+    t.row(fields);
+    t.into_string().trim_end_matches(['\r', '\n']).to_string()
+}
+
 /// Frame file names carry their UTC time as `…YYYYMMDDTHHMMSS[.fff]Z…`, e.g.
 /// `frame_20260614T101530Z.jpg` or `cam-20260614T101530.250Z.jpg`.
 pub const FRAME_NAME_PATTERN: &str = "<anything>YYYYMMDDTHHMMSS[.fff]Z<anything>.jpg|.jpeg|.png";
@@ -388,6 +400,18 @@ pub fn progress_bar(len: u64, show: bool, what: &str) -> indicatif::ProgressBar 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// `csv_line` quotes like the table writer (RFC 4180: fields with a comma, quote or line break
+    /// quoted, inner quotes doubled) and reads back through a CSV reader.
+    #[test]
+    fn csv_line_quotes_and_round_trips() {
+        let fields = ["plain", "a,b", "say \"hi\"", "two\nlines"];
+        let line = csv_line(fields);
+        assert_eq!(line, "plain,\"a,b\",\"say \"\"hi\"\"\",\"two\nlines\"");
+        let mut r = csv::ReaderBuilder::new().has_headers(false).from_reader(line.as_bytes());
+        let back: Vec<String> = r.records().next().unwrap().unwrap().iter().map(String::from).collect();
+        assert_eq!(back, fields);
+    }
 
     #[test]
     fn frame_names_round_trip() {

@@ -61,7 +61,7 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
         crate::io::write_atomic(&out, &crate::io::encode_png_gray(&seg.classes))?;
         let preview = a.out.join(format!("{stem}_preview.png"));
         crate::io::write_atomic(&preview, &crate::io::encode_png_rgb(&crate::overlay::class_preview(&seg.classes)))?;
-        crate::say!("{},{:.4},{},{}", csv_cell(&path.display().to_string()), seg.cloud_fraction, csv_cell(&out.display().to_string()), csv_cell(&preview.display().to_string()));
+        crate::say!("{}", crate::io::csv_line([path.display().to_string(), format!("{:.4}", seg.cloud_fraction), out.display().to_string(), preview.display().to_string()]));
     }
     Ok(())
 }
@@ -80,11 +80,6 @@ pub struct ImpossibleValues {
 impl ImpossibleValues {
     /// The exit status `qc --fail-on-impossible` ends with when it finds one.
     pub const EXIT_STATUS: u8 = 3;
-}
-
-/// A CSV cell: quoted (inner quotes doubled) when it holds a comma, quote or line break.
-fn csv_cell(s: &str) -> String {
-    if s.contains([',', '"', '\n', '\r']) { format!("\"{}\"", s.replace('"', "\"\"")) } else { s.to_string() }
 }
 
 /// `qc`: quality control of a measurements table, flag counts per column.
