@@ -257,7 +257,7 @@ fn check_exits_0_on_a_usable_configuration_and_2_on_a_bad_one() {
     let meas = demo().join("measurements.csv");
     let (code, out, err) = run(&["--measurements", meas.to_str().unwrap()]);
     assert_eq!(code, Some(0), "{out}{err}");
-    assert!(out.contains("configuration OK") && out.contains("measurements feed"), "{out}");
+    assert!(out.contains("configuration OK") && out.contains("measurements feed") && out.contains("estimated forecast working memory"), "{out}");
     let (code, _, err) = run(&["--measurements", d.path().join("missing.csv").to_str().unwrap()]);
     assert_eq!(code, Some(2), "{err}");
     assert!(err.contains("missing.csv"), "{err}");

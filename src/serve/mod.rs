@@ -336,6 +336,8 @@ pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
         nc.site().camera.width_px,
         nc.site().camera.height_px
     ));
+    let m = f.memory_estimate();
+    out.push(format!("estimated forecast working memory: {:.0} MB ({m}; the site check refuses over {} MB)", m.bytes as f64 / 1e6, crate::config::MEMORY_CAP_BYTES / 1_000_000));
     if one_feed(opts, f)?
         && let Some(m) = &f.measurements_modbus
     {
