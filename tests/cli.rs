@@ -409,6 +409,26 @@ fn calibrate_then_replay_with_the_written_file() {
     let text = String::from_utf8_lossy(&o.stdout).into_owned() + &String::from_utf8_lossy(&o.stderr);
     assert!(o.status.success(), "{text}");
     assert!(seq.join("calibration/fitted-residuals.png").exists(), "{text}");
+    // The clear-sky library is named by its content and named in the file; a second run over the
+    // same frames writes the same names and removes this calibration's superseded side files only.
+    let library = |p: &std::path::Path| -> String {
+        let v: toml::Value = toml::from_str(&std::fs::read_to_string(p).unwrap()).unwrap();
+        v["camera"]["clear_reference"].as_str().unwrap().to_string()
+    };
+    let first = library(&out);
+    assert!(first.starts_with("fitted-clear-sky-") && seq.join("calibration").join(&first).is_file(), "{first}");
+    std::fs::write(seq.join("calibration/fitted-clear-sky-deadbeef.csv"), "old").unwrap();
+    std::fs::write(seq.join("calibration/fitted-clear-sky.csv"), "older").unwrap();
+    std::fs::write(seq.join("calibration/other-clear-sky-deadbeef.csv"), "another camera's").unwrap();
+    let o = bin()
+        .args(["calibrate", "--site", seq.join("site.toml").to_str().unwrap(), "--frames", seq.join("frames").to_str().unwrap(), "--out", out.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert_eq!(library(&out), first, "the same frames give the same library");
+    let libraries: Vec<String> = std::fs::read_dir(seq.join("calibration")).unwrap().flatten().map(|e| e.file_name().to_string_lossy().into_owned()).filter(|f| f.contains("-clear-sky")).collect();
+    assert_eq!(libraries.len(), 2, "{libraries:?}");
+    assert!(libraries.contains(&first) && libraries.contains(&"other-clear-sky-deadbeef.csv".to_string()), "{libraries:?}");
     let yaw = |p: &std::path::Path| -> f64 {
         let v: toml::Value = toml::from_str(&std::fs::read_to_string(p).unwrap()).unwrap();
         v.get("camera").and_then(|o| o.get("yaw_deg")).and_then(|y| y.as_float()).unwrap_or_else(|| panic!("no camera.yaw_deg in {}", p.display()))

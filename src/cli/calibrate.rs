@@ -34,31 +34,64 @@ pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
             .map(|(_, i)| i)
             .collect();
         if !day.is_empty() {
-            let mask = crate::calibrate::obstruction_mask(&day, circle);
-            let mp = dir.join(format!("{name}-mask.png"));
-            crate::io::write_atomic(&mp, &crate::io::encode_png_gray(&mask))?;
-            cal.camera.obstruction_mask = Some(PathBuf::from(format!("{name}-mask.png")));
+            let mask = crate::io::encode_png_gray(&crate::calibrate::obstruction_mask(&day, circle));
+            let file = content_named(&name, "mask", "png", &mask);
+            let mp = dir.join(&file);
+            crate::io::write_atomic(&mp, &mask)?;
+            cal.camera.obstruction_mask = Some(PathBuf::from(file));
             crate::say!("wrote {}", mp.display());
         }
     }
     // The clear-sky library of this camera from the same frames.
     let reference = crate::calibrate::clear_sky_reference(&frames, &fit, &dets, &site.segment);
-    let rp = dir.join(format!("{name}-clear-sky.csv"));
-    crate::io::write_atomic(&rp, reference.to_csv().as_bytes())?;
-    cal.camera.clear_reference = Some(PathBuf::from(format!("{name}-clear-sky.csv")));
+    let library = reference.to_csv();
+    let file = content_named(&name, "clear-sky", "csv", library.as_bytes());
+    let rp = dir.join(&file);
+    crate::io::write_atomic(&rp, library.as_bytes())?;
+    cal.camera.clear_reference = Some(PathBuf::from(file));
     crate::say!("wrote {} (clear-sky library: {} bins of zenith × sun angle from {} frames)", rp.display(), reference.library_bins(), reference.library_frames);
     let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
     let pp = dir.join(format!("{name}-residuals.png"));
     crate::io::write_atomic(&pp, &crate::io::encode_png_rgb(&plot))?;
     let dp = dir.join(format!("{name}-detections.csv"));
     crate::io::write_atomic(&dp, crate::calibrate::detections_csv(&fit, &dets).as_bytes())?;
-    // The calibration file last: a run stopped before this point leaves the old one, which still
-    // names its own (unchanged-name) mask and library files.
+    // The calibration file last, as the commit point: the mask and library it names carry their
+    // content's digest in their names, so a run stopped before this point leaves the old file
+    // naming its own, untouched side files. Once it is in place, the side files it no longer names
+    // go.
     let text = format!("# Fitted by `nephocast calibrate` from the sun's track.\n{}", toml::to_string(&cal)?);
     crate::io::write_atomic(&a.out, text.as_bytes())?;
+    let keep: Vec<String> = [&cal.camera.obstruction_mask, &cal.camera.clear_reference].iter().filter_map(|p| p.as_ref().map(|p| p.display().to_string())).collect();
+    remove_superseded(dir, &name, &keep);
     print_fit(&fit, dets.len());
     crate::say!("wrote {}, {} and {}", a.out.display(), pp.display(), dp.display());
     Ok(())
+}
+
+/// `<name>-<kind>-<first 8 hex digits of the content's SHA-256>.<ext>`: a side file named by what it
+/// holds, so a new calibration never overwrites the one the current calibration file names.
+fn content_named(name: &str, kind: &str, ext: &str, bytes: &[u8]) -> String {
+    use sha2::Digest;
+    let d = sha2::Sha256::digest(bytes);
+    let hex: String = d.iter().take(4).map(|b| format!("{b:02x}")).collect();
+    format!("{name}-{kind}-{hex}.{ext}")
+}
+
+/// Remove the mask and clear-sky library files of calibration `name` in `dir` that `keep` does not
+/// name: content-named ones ([`content_named`]) and the unversioned ones of earlier versions.
+fn remove_superseded(dir: &std::path::Path, name: &str, keep: &[String]) {
+    let Ok(entries) = std::fs::read_dir(dir) else { return };
+    for e in entries.flatten() {
+        let f = e.file_name().to_string_lossy().into_owned();
+        let ours = [("mask", "png"), ("clear-sky", "csv")].iter().any(|(kind, ext)| {
+            f.strip_prefix(&format!("{name}-{kind}")).and_then(|r| r.strip_suffix(&format!(".{ext}"))).is_some_and(|mid| {
+                mid.is_empty() || (mid.len() == 9 && mid.starts_with('-') && mid[1..].bytes().all(|b| b.is_ascii_hexdigit()))
+            })
+        });
+        if ours && !keep.contains(&f) {
+            let _ = std::fs::remove_file(e.path());
+        }
+    }
 }
 
 /// The frames of `calibrate`, decoded, within the count and memory caps; unreadable ones are
