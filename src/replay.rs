@@ -37,7 +37,7 @@ use std::path::{Path, PathBuf};
 use chrono::{DateTime, Utc};
 
 use crate::io::{CsvTable, InputError, fmt_time, list_frames};
-use crate::nowcast::{Counters, Frame, Nowcaster, Rejection};
+use crate::nowcast::{Counters, Nowcaster, Rejection};
 use crate::output_set::{OutputSet, OutputSetError};
 pub use crate::records::{FORECAST_HEADER, MOTION_HEADER, forecast_rows, motion_row};
 
@@ -181,14 +181,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                 return Err(InputError::Other { file: f.path.clone(), message: "the frame reader stopped before this frame".into() }.into());
             };
             // The clock policy first (from the name alone), then intake, then the engine.
-            let frame = match nowcaster.judge_clock(f.time, Utc::now()) {
-                Err(r) => Err(r),
-                Ok(_) => decoded.map(|image| Frame { time: f.time, image }).map_err(|e| nowcaster.reject(Rejection::Intake(e))),
-            };
-            let result = match &frame {
-                Ok(fr) => nowcaster.step(fr),
-                Err(r) => Err(r.clone()),
-            };
+            let crate::nowcast::Stepped { frame, result, .. } = nowcaster.step_with(f.time, Utc::now(), || decoded);
             match result {
                 Ok(nc) => {
                     decode_ms.push(dms);

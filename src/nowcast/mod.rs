@@ -12,8 +12,7 @@ use crate::forecast::{Forecast, forecast_with, horizon_skies};
 use crate::io::{InputError, Measurements, Series, fmt_time};
 use crate::plant::Plant;
 use crate::segment::Reference;
-use crate::sun::{SunPosition, position};
-use stages::{MapStage, MotionStage, check_exposure, layer_tables};
+use stages::{FrameQcStage, MapStage, MotionStage, layer_tables};
 use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
 mod forecast_stages;
@@ -21,7 +20,7 @@ mod stages;
 mod tuner;
 mod types;
 
-pub use types::{Counters, Frame, Nowcast, Rejection, SetupError, StageTimes};
+pub use types::{Counters, Frame, Nowcast, Rejection, SetupError, StageTimes, Stepped};
 
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
 type PyranometerColumn = (usize, [f64; 2]);
@@ -38,7 +37,7 @@ pub struct Nowcaster {
     plant: Plant,
     map_stage: MapStage,
     motion_stage: MotionStage,
-    last_time: Option<DateTime<Utc>>,
+    frame_qc: FrameQcStage,
     cbh_series: Option<Series>,
     measurements: Option<Pyranometers>,
     cbh_state: crate::cbh::CbhState,
@@ -76,7 +75,7 @@ impl Nowcaster {
             plant,
             map_stage: MapStage::new(reference),
             motion_stage: MotionStage::default(),
-            last_time: None,
+            frame_qc: FrameQcStage::default(),
             cbh_series,
             measurements,
             cbh_state,
@@ -206,7 +205,7 @@ impl Nowcaster {
 
     /// The newest accepted frame time.
     pub fn newest_time(&self) -> Option<DateTime<Utc>> {
-        self.last_time
+        self.frame_qc.last_time
     }
 
     /// The clock policy, judged before a frame is read. With `tol` = `qc.max_ahead_of_clock_s`:
@@ -223,27 +222,28 @@ impl Nowcaster {
     /// # Errors
     /// [`Rejection::AheadOfClock`] (counted).
     pub fn judge_clock(&mut self, time: DateTime<Utc>, now: DateTime<Utc>) -> Result<Option<String>, Rejection> {
-        let tol = self.site.file.qc.max_ahead_of_clock_s;
-        let ahead = |t: DateTime<Utc>| (t - now).num_milliseconds() as f64 / 1000.0;
-        let mut note = None;
-        if let Some(last) = self.last_time
-            && ahead(last) > tol
-        {
-            note = Some(format!(
-                "clock re-anchored: the newest accepted frame ({}) is {:.0} s ahead of the system clock ({}), beyond the tolerance of {tol:.0} s; its time and the map history are dropped",
-                crate::io::fmt_time(&last),
-                ahead(last),
-                crate::io::fmt_time(&now)
-            ));
-            self.last_time = None;
+        let (note, verdict) = self.frame_qc.judge_clock(time, now, self.site.file.qc.max_ahead_of_clock_s);
+        if note.is_some() {
             self.motion_stage.history.clear();
             self.counters.clock_reanchors += 1;
         }
-        let a = ahead(time);
-        if a > tol {
-            return Err(self.reject(Rejection::AheadOfClock { ahead_s: a, tolerance_s: tol }));
-        }
+        verdict.map_err(|r| self.reject(r))?;
         Ok(note)
+    }
+
+    /// One frame from its time and a way to read it: the clock policy (from the time alone, so a
+    /// frame beyond it is never read), then `read`, then [`Nowcaster::step`]; every rejection counted.
+    /// Replay (which reads ahead on another thread) and live mode both go through here.
+    pub fn step_with(&mut self, time: DateTime<Utc>, now: DateTime<Utc>, read: impl FnOnce() -> Result<image::RgbImage, crate::intake::IntakeError>) -> Stepped {
+        let (note, frame) = match self.judge_clock(time, now) {
+            Err(r) => (None, Err(r)),
+            Ok(note) => (note, read().map(|image| Frame { time, image }).map_err(|e| self.reject(Rejection::Intake(e)))),
+        };
+        let result = match &frame {
+            Ok(f) => self.step(f),
+            Err(r) => Err(r.clone()),
+        };
+        Stepped { frame, result, clock_note: note }
     }
 
     fn count(&mut self, r: &Rejection) {
@@ -382,16 +382,19 @@ impl Nowcaster {
     /// the forecast (tuning, central, ensemble and bands), then ramps and the alarm.
     fn step_inner(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
         let t0 = Clock::now();
-        let (sun, reduced) = self.admit(frame)?;
+        let cam = &self.site.camera;
+        let whole = (cam.width_px, cam.height_px);
+        let reduced_px = (self.reduced.camera.width_px, self.reduced.camera.height_px);
+        let (sun, reduced) = self.frame_qc.admit(frame, whole, reduced_px, &self.site.observer(), self.site.file.qc.min_sun_elevation_deg)?;
         let cbh = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
         let cam_z = self.site.file.camera.position_m[2];
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let lut = self.map_stage.lut(cam, obstruction, &self.site.file.map, (cbh - cam_z).max(10.0));
-        check_exposure(&frame.image, &lut, &self.site.file.qc)?;
+        self.frame_qc.check_exposure(&frame.image, &lut, &self.site.file.qc)?;
         let t_qc = Clock::now();
         let (map, [cf, thin_cf]) = self.map_stage.build(&frame.image, &lut, &sun, &self.site.file.segment);
         let t_map = Clock::now();
-        let dt_s = self.last_time.map(|l| (frame.time - l).num_milliseconds() as f64 / 1000.0);
+        let dt_s = self.frame_qc.since_last_s(&frame.time);
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
         let motion = moved.layers.first().map(|l| l.motion);
         let t_motion = Clock::now();
@@ -410,7 +413,7 @@ impl Nowcaster {
         let alarm_change = self.alarm.update(&frame.time, &ramps, self.motion_stage.tracker.primary_accepted_run(), &self.site.file.ramps);
         let t_fc = Clock::now();
         self.motion_stage.remember(frame.time, map.clone(), moved.features);
-        self.last_time = Some(frame.time);
+        self.frame_qc.last_time = Some(frame.time);
         let ms = |a: Clock, b: Clock| (b - a).as_secs_f64() * 1000.0;
         Ok(Nowcast {
             time: frame.time,
@@ -435,31 +438,6 @@ impl Nowcaster {
             band_scale: [300, 600, 900].map(|h| self.ensemble_stage.band_scale(h)),
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
-    }
-
-    /// Admission: the calibration's image size (whole, or decoded at the reduced scale of
-    /// [`Nowcaster::intake_options`]), a time after the newest accepted frame, and the sun high
-    /// enough. Returns the sun's position at the frame time and whether the frame is reduced.
-    fn admit(&self, frame: &Frame) -> Result<(SunPosition, bool), Rejection> {
-        let reduced = match frame.image.dimensions() {
-            (w, h) if (w, h) == (self.site.camera.width_px, self.site.camera.height_px) => false,
-            (w, h) if (w, h) == (self.reduced.camera.width_px, self.reduced.camera.height_px) => true,
-            (w, h) => return Err(Rejection::WrongSize { got_w: w, got_h: h, want_w: self.site.camera.width_px, want_h: self.site.camera.height_px }),
-        };
-        if let Some(last) = self.last_time {
-            if frame.time == last {
-                return Err(Rejection::Duplicate);
-            }
-            if frame.time < last {
-                return Err(Rejection::OutOfOrder);
-            }
-        }
-        let sun = position(&frame.time, &self.site.observer()).map_err(|e| Rejection::Unreadable(e.to_string()))?;
-        let elev = sun.elevation_rad().to_degrees();
-        if elev < self.site.file.qc.min_sun_elevation_deg {
-            return Err(Rejection::SunTooLow(elev));
-        }
-        Ok((sun, reduced))
     }
 
     /// Cloud base height: every estimate combined (ceilometer or configured value, shadow timing at
@@ -519,7 +497,7 @@ mod tests {
         assert_eq!(nc.counters.rejected["ahead_of_clock"], 1);
         assert_eq!(nc.newest_time(), None);
         // An accepted frame at 10:00, then the host clock steps back an hour.
-        nc.last_time = Some(now);
+        nc.frame_qc.last_time = Some(now);
         assert_eq!(nc.judge_clock(t("2026-06-14T09:59:00Z"), now), Ok(None));
         let back = t("2026-06-14T09:00:00Z");
         let note = nc.judge_clock(t("2026-06-14T09:00:00Z"), back).unwrap().unwrap();
@@ -527,7 +505,7 @@ mod tests {
         assert_eq!(nc.newest_time(), None);
         assert_eq!(nc.counters.clock_reanchors, 1);
         // Within the tolerance nothing happens.
-        nc.last_time = Some(t("2026-06-14T09:01:00Z"));
+        nc.frame_qc.last_time = Some(t("2026-06-14T09:01:00Z"));
         assert_eq!(nc.judge_clock(t("2026-06-14T09:00:30Z"), back), Ok(None));
         assert_eq!(nc.counters.clock_reanchors, 1);
     }

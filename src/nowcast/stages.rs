@@ -13,30 +13,92 @@ use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, TrackedLayer, 
 use crate::segment::Reference;
 use crate::sun::SunPosition;
 
-/// Frame QC over the map's pixels: the mean level and the share of saturated pixels (every fifth
-/// map pixel) against [`crate::qc::QcParams`].
-pub(super) fn check_exposure(image: &image::RgbImage, lut: &crate::cloudmap::Lut, qc: &crate::qc::QcParams) -> Result<(), Rejection> {
-    let raw = image.as_raw();
-    let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
-    for &p in lut.pixel.iter().step_by(5) {
-        if p == crate::cloudmap::NO_PIXEL {
-            continue;
+/// The frame QC stage: the clock policy, admission (image size, time order, sun elevation) and the
+/// exposure check, with the newest accepted frame time they judge against.
+#[derive(Default)]
+pub(super) struct FrameQcStage {
+    /// The newest accepted frame time.
+    pub(super) last_time: Option<DateTime<Utc>>,
+}
+
+impl FrameQcStage {
+    /// The clock policy (see `Nowcaster::judge_clock`): a note when the newest accepted time is more
+    /// than `tol_s` ahead of `now` (it is forgotten: the caller drops the map history), and a
+    /// rejection when `time` itself is.
+    pub(super) fn judge_clock(&mut self, time: DateTime<Utc>, now: DateTime<Utc>, tol_s: f64) -> (Option<String>, Result<(), Rejection>) {
+        let ahead = |t: DateTime<Utc>| (t - now).num_milliseconds() as f64 / 1000.0;
+        let mut note = None;
+        if let Some(last) = self.last_time
+            && ahead(last) > tol_s
+        {
+            note = Some(format!(
+                "clock re-anchored: the newest accepted frame ({}) is {:.0} s ahead of the system clock ({}), beyond the tolerance of {tol_s:.0} s; its time and the map history are dropped",
+                crate::io::fmt_time(&last),
+                ahead(last),
+                crate::io::fmt_time(&now)
+            ));
+            self.last_time = None;
         }
-        let i = p as usize * 3;
-        let (r, g, b) = (raw[i], raw[i + 1], raw[i + 2]);
-        sum += (r as f64 + g as f64 + b as f64) / 3.0;
-        sat += (r >= 250 && g >= 250 && b >= 250) as usize;
-        n += 1;
+        let a = ahead(time);
+        (note, if a > tol_s { Err(Rejection::AheadOfClock { ahead_s: a, tolerance_s: tol_s }) } else { Ok(()) })
     }
-    let mean = if n > 0 { sum / n as f64 } else { 0.0 };
-    let sat_share = if n > 0 { sat as f64 / n as f64 } else { 0.0 };
-    if mean < qc.min_mean_level {
-        return Err(Rejection::UnderExposed(mean));
+
+    /// Admission: the calibration's image size (`whole_px`, or `reduced_px` for a frame decoded at
+    /// reduced scale), a time after the newest accepted frame, and the sun at least
+    /// `min_sun_elevation_deg` high. Returns the sun's position at the frame time and whether the
+    /// frame is reduced.
+    pub(super) fn admit(&self, frame: &super::Frame, whole_px: (u32, u32), reduced_px: (u32, u32), observer: &crate::sun::Observer, min_sun_elevation_deg: f64) -> Result<(SunPosition, bool), Rejection> {
+        let reduced = match frame.image.dimensions() {
+            d if d == whole_px => false,
+            d if d == reduced_px => true,
+            (w, h) => return Err(Rejection::WrongSize { got_w: w, got_h: h, want_w: whole_px.0, want_h: whole_px.1 }),
+        };
+        if let Some(last) = self.last_time {
+            if frame.time == last {
+                return Err(Rejection::Duplicate);
+            }
+            if frame.time < last {
+                return Err(Rejection::OutOfOrder);
+            }
+        }
+        let sun = crate::sun::position(&frame.time, observer).map_err(|e| Rejection::Unreadable(e.to_string()))?;
+        let elev = sun.elevation_rad().to_degrees();
+        if elev < min_sun_elevation_deg {
+            return Err(Rejection::SunTooLow(elev));
+        }
+        Ok((sun, reduced))
     }
-    if mean > qc.max_mean_level || sat_share > qc.max_saturated_fraction {
-        return Err(Rejection::OverExposed(mean, sat_share));
+
+    /// Exposure over the map's pixels: the mean level and the share of saturated pixels (every
+    /// fifth map pixel) against [`crate::qc::QcParams`].
+    pub(super) fn check_exposure(&self, image: &image::RgbImage, lut: &crate::cloudmap::Lut, qc: &crate::qc::QcParams) -> Result<(), Rejection> {
+        let raw = image.as_raw();
+        let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
+        for &p in lut.pixel.iter().step_by(5) {
+            if p == crate::cloudmap::NO_PIXEL {
+                continue;
+            }
+            let i = p as usize * 3;
+            let (r, g, b) = (raw[i], raw[i + 1], raw[i + 2]);
+            sum += (r as f64 + g as f64 + b as f64) / 3.0;
+            sat += (r >= 250 && g >= 250 && b >= 250) as usize;
+            n += 1;
+        }
+        let mean = if n > 0 { sum / n as f64 } else { 0.0 };
+        let sat_share = if n > 0 { sat as f64 / n as f64 } else { 0.0 };
+        if mean < qc.min_mean_level {
+            return Err(Rejection::UnderExposed(mean));
+        }
+        if mean > qc.max_mean_level || sat_share > qc.max_saturated_fraction {
+            return Err(Rejection::OverExposed(mean, sat_share));
+        }
+        Ok(())
     }
-    Ok(())
+
+    /// Seconds since the newest accepted frame.
+    pub(super) fn since_last_s(&self, t: &DateTime<Utc>) -> Option<f64> {
+        self.last_time.map(|l| (*t - l).num_milliseconds() as f64 / 1000.0)
+    }
 }
 
 /// The map stage's state: the look-up tables per plane height, the learned clear-sky reference,

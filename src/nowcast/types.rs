@@ -174,3 +174,15 @@ pub struct Counters {
     /// `"<column> <reason>"` ([`crate::io::Measurements::screen`]).
     pub measurements_flagged: std::collections::BTreeMap<String, usize>,
 }
+
+/// One frame through [`super::Nowcaster::step_with`]: the frame as read (or why it was not), the
+/// nowcast (or why there is none), and the clock policy's note when it re-anchored.
+#[derive(Debug)]
+pub struct Stepped {
+    /// The frame, or the rejection before the engine (clock policy, intake).
+    pub frame: Result<Frame, Rejection>,
+    /// The nowcast, or the rejection (the frame's, or the engine's).
+    pub result: Result<Nowcast, Rejection>,
+    /// The clock policy re-anchored before this frame (a message to log).
+    pub clock_note: Option<String>,
+}

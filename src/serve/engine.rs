@@ -179,19 +179,11 @@ impl LiveEngine {
     /// processed: out of order, counted by the engine.
     fn step(&mut self, newest: &crate::io::FrameRef) -> Stepped {
         let t0 = std::time::Instant::now();
-        let frame = match self.nc.judge_clock(newest.time, Utc::now()) {
-            Err(r) => Err(r),
-            Ok(note) => {
-                if let Some(n) = note {
-                    eprintln!("nephocast live: {n}");
-                }
-                crate::intake::read_frame(&newest.path, &self.intake).map(|image| Frame { time: newest.time, image }).map_err(|e| self.nc.reject(Rejection::Intake(e)))
-            }
-        };
-        let result = match &frame {
-            Ok(fr) => self.nc.step(fr),
-            Err(r) => Err(r.clone()),
-        };
+        let intake = &self.intake;
+        let crate::nowcast::Stepped { frame, result, clock_note } = self.nc.step_with(newest.time, Utc::now(), || crate::intake::read_frame(&newest.path, intake));
+        if let Some(n) = clock_note {
+            eprintln!("nephocast live: {n}");
+        }
         if let Ok(n) = &result {
             self.registers.publish(n);
         }
