@@ -221,6 +221,20 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
     })
 }
 
+/// The pyranometers' mean GHI at each row of a measurements CSV (the valid readings only: as for
+/// the scores, flagged, missing and stuck readings are left out; NaN where none is left).
+///
+/// # Errors
+/// As [`evaluate_measured`].
+pub fn measured_mean_ghi(site: &Site, measurements: &Path) -> Result<Vec<(DateTime<Utc>, f64)>, InputError> {
+    let f = &site.file.site;
+    let mut m = Measurements::read_csv(measurements)?;
+    m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
+    let cols: Vec<usize> = pyranometer_columns(site, &m, measurements)?.iter().map(|c| c.0).collect();
+    let mut none = BTreeMap::new();
+    Ok(m.times.iter().map(|t| (*t, mean_reading(&m, &cols, t, &mut none).unwrap_or(f64::NAN))).collect())
+}
+
 /// The pairs a replay's forecasts make with a measurements CSV (see the module documentation for
 /// which readings count), in the order of `forecasts.csv`.
 ///

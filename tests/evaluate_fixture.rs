@@ -105,7 +105,7 @@ fn hand_computed_scores_against_measurements() {
     close(h5.mbe_wm2, 28.0 / 3.0, "5-min MBE");
     // Persistence errors: 737.1 − 702 = 35.1, 736.05 − 701 = 35.05, 735 − 400 = 335;
     // RMSE_p = √((35.1² + 35.05² + 335²)/3) = √((1232.01 + 1228.5025 + 112225)/3) = √(114685.5125/3).
-    let rp5 = (114_685.5125f64 / 3.0).sqrt();
+    let rp5 = (114_685.512_5_f64 / 3.0).sqrt();
     close(h5.rmse_persistence_wm2, rp5, "5-min persistence RMSE");
     // Skill = 1 − RMSE / RMSE_p = 1 − √1144 / √114685.5125 ≈ 0.9000.
     close(h5.skill, 1.0 - (1144.0f64 / 3.0).sqrt() / rp5, "5-min skill");
@@ -122,7 +122,7 @@ fn hand_computed_scores_against_measurements() {
     close(h10.mbe_wm2, 14.0 / 3.0, "10-min MBE");
     // Persistence errors: 772.2 − 701 = 71.2, 771.1 − 400 = 371.1, 770 − 402 = 368;
     // RMSE_p = √((5069.44 + 137715.21 + 135424)/3) = √(278208.65/3).
-    let rp10 = (278_208.65f64 / 3.0).sqrt();
+    let rp10 = (278_208.65_f64 / 3.0).sqrt();
     close(h10.rmse_persistence_wm2, rp10, "10-min persistence RMSE");
     close(h10.skill, 1.0 - 172.0f64.sqrt() / rp10, "10-min skill");
     // CRPS: 10:00 (695, 715 | 701): 10 − 5 = 5; 10:05 (410, 430 | 400): 20 − 5 = 15;

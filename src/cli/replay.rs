@@ -36,7 +36,19 @@ pub(super) fn cmd_replay(a: ReplayArgs) -> Result<()> {
         let seq = opts.frames.parent().map(|p| p.to_path_buf()).unwrap_or_default();
         let truth = crate::verify::Truth::read(&seq.join("truth").join("irradiance.csv")).ok();
         let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, set.dir()).ok());
-        Some(report_into(&mut set, truth.as_ref(), eval.as_ref(), "nephocast replay")?)
+        // With measurements: their scores (also written as evaluation-measured.json) and line.
+        let measured = match &opts.measurements {
+            Some(mp) => {
+                let site = crate::config::Site::load(&opts.site)?;
+                let e = crate::measured::evaluate_measured(&site, set.dir(), mp)?;
+                set.write("evaluation-measured.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
+                Some((e, crate::measured::measured_mean_ghi(&site, mp)?))
+            }
+            None => None,
+        };
+        let mr = measured.as_ref().map(|(e, line)| crate::report::MeasuredReport { evaluation: e, mean_ghi: line });
+        crate::report::write_report_with(set.dir(), truth.as_ref(), eval.as_ref(), mr.as_ref(), "nephocast replay")?;
+        Some(set.adopt("report.html")?)
     } else {
         None
     };
