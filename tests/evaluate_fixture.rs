@@ -221,3 +221,40 @@ fn ramp_definition_errors_name_the_field() {
         assert!(e.contains(field), "{extra}: {e}");
     }
 }
+
+/// With `basis = "clear_sky"` the threshold is `threshold_pct` of the clear-sky GHI (the mean of
+/// the model's values at the window's two ends): the fixture's drop of 299 W/m² over 10:10–10:11
+/// and rise of 298 W/m² over 10:20–10:21 are ramps just below the threshold that equals them and
+/// not just above it; under the capacity basis a threshold of 29.7 % (297 W/m²) finds both and
+/// 29.95 % (299.5 W/m²) neither.
+#[test]
+fn clear_sky_basis_threshold() {
+    use nephocast::measured::{EvalRampParams, RampBasis, measured_ramps};
+    use nephocast::ramp::Direction;
+    let d = tempfile::tempdir().unwrap();
+    let site = Site::load(&site_file(d.path(), "")).unwrap();
+    let meas_path = measurements(d.path());
+    let m = nephocast::io::Measurements::read_csv(&meas_path).unwrap();
+    let col = m.column("ghi_north-fixed_wm2").unwrap();
+    let f = &site.file.site;
+    let clear = |i: i64| {
+        let t: chrono::DateTime<chrono::Utc> = at(i).parse().unwrap();
+        let sp = nephocast::sun::position(&t, &f.observer()).unwrap();
+        nephocast::clearsky::clear_sky(&sp, f.elevation_m, f.clear_sky()).ghi_wm2
+    };
+    // The share of the clear-sky GHI each ramp is.
+    let down = 299.0 / (0.5 * (clear(10) + clear(11))) * 100.0;
+    let up = 298.0 / (0.5 * (clear(20) + clear(21))) * 100.0;
+    assert!(up < down, "the rise is the smaller share ({up} %, {down} %)");
+    let (from, to) = (at(-10).parse().unwrap(), at(40).parse().unwrap());
+    let found = |basis: RampBasis, pct: f64| -> Vec<(String, Direction)> {
+        let p = EvalRampParams { basis, threshold_pct: pct, ..Default::default() };
+        measured_ramps(&site, &m, &[col], &p, from, to).0.into_iter().map(|(t, d)| (t.format("%H:%M").to_string(), d)).collect()
+    };
+    let both = vec![("10:10".to_string(), Direction::Down), ("10:20".to_string(), Direction::Up)];
+    assert_eq!(found(RampBasis::ClearSky, up * 0.999), both);
+    assert_eq!(found(RampBasis::ClearSky, (up + down) / 2.0), vec![("10:10".to_string(), Direction::Down)]);
+    assert_eq!(found(RampBasis::ClearSky, down * 1.001), vec![]);
+    assert_eq!(found(RampBasis::Capacity, 29.7), both);
+    assert_eq!(found(RampBasis::Capacity, 29.95), vec![]);
+}
