@@ -291,6 +291,18 @@ pub struct MeasuredReport<'a> {
 /// # Errors
 /// As [`write_report`].
 pub fn write_report_with(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, measured: Option<&MeasuredReport<'_>>, title: &str) -> Result<std::path::PathBuf, ReportError> {
+    let html = report_html(out, truth, eval, measured, title)?;
+    let path = out.join("report.html");
+    crate::io::write_atomic(&path, html.as_bytes())?;
+    Ok(path)
+}
+
+/// The page [`write_report_with`] writes, as text (for a committed set, which takes it through
+/// [`crate::output_set::update_file`]).
+///
+/// # Errors
+/// As [`write_report`].
+pub fn report_html(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, measured: Option<&MeasuredReport<'_>>, title: &str) -> Result<String, ReportError> {
     crate::output_set::check_manifest(out)?;
     let fc = read_rows(&out.join("forecasts.csv"))?;
     let rows: Vec<BTreeMap<String, String>> = fc.into_iter().map(|r| r.into_iter().collect()).collect();
@@ -308,9 +320,7 @@ pub fn write_report_with(out: &Path, truth: Option<&Truth>, eval: Option<&Evalua
     html += &ramps_section(&rows, out);
     html += &pictures_section(out)?;
     html += "</body></html>";
-    let path = out.join("report.html");
-    crate::io::write_atomic(&path, html.as_bytes())?;
-    Ok(path)
+    Ok(html)
 }
 
 /// The scores against the truth: a table every 5 minutes of horizon, motion, segmentation, ramps,

@@ -93,4 +93,22 @@ fn demo_replay_scored_against_its_pyranometers() {
         assert!(html.contains(&format!("<td style='text-align:left'>{k}</td><td>{n}</td>")), "no exclusion row {k}: {n}");
     }
     assert!(!html.contains("NaN"), "a NaN in the report");
+
+    // `evaluate --measurements --report` rewrites the committed set's report the same way, and
+    // the set's manifest still matches.
+    let e = Command::new(BIN)
+        .args(["evaluate", "--report", "--replay"])
+        .arg(&out)
+        .arg("--measurements")
+        .arg(demo.join("measurements.csv"))
+        .arg("--site")
+        .arg(demo.join("site.toml"))
+        .output()
+        .unwrap();
+    assert!(e.status.success(), "{}", String::from_utf8_lossy(&e.stderr));
+    let again = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert!(again.contains("<title>nephocast evaluate</title>"), "report.html was not rewritten");
+    assert_eq!(again.matches("pyranometers, measured mean").count(), 3);
+    assert!(again.contains(&row5) && again.contains("id='measured-excluded'"));
+    nephocast::output_set::check_manifest(&out).unwrap();
 }

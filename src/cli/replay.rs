@@ -143,6 +143,13 @@ pub(super) fn cmd_evaluate(a: EvaluateArgs) -> Result<()> {
         crate::measured::print_measured(&e);
         let p = crate::output_set::update_file(&a.replay, "evaluation-measured.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
         crate::say!("wrote {}", p.display());
+        if a.report {
+            let line = crate::measured::measured_mean_ghi(&site, mp)?;
+            let mr = crate::report::MeasuredReport { evaluation: &e, mean_ghi: &line };
+            let html = crate::report::report_html(&a.replay, None, None, Some(&mr), "nephocast evaluate")?;
+            let p = crate::output_set::update_file(&a.replay, "report.html", html.as_bytes())?;
+            crate::say!("report: {}", p.display());
+        }
         return Ok(());
     }
     let Some(sequence) = &a.sequence else { bail!("--sequence or --measurements is needed") };
