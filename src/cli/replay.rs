@@ -37,12 +37,21 @@ pub(super) fn cmd_replay(a: ReplayArgs) -> Result<()> {
         let truth = crate::verify::Truth::read(&seq.join("truth").join("irradiance.csv")).ok();
         let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, set.dir()).ok());
         // With measurements: their scores (also written as evaluation-measured.json) and line.
+        // A measurements file without pyranometer columns (weather only) leaves the report as it
+        // was, with a note.
         let measured = match &opts.measurements {
             Some(mp) => {
                 let site = crate::config::Site::load(&opts.site)?;
-                let e = crate::measured::evaluate_measured(&site, set.dir(), mp)?;
-                set.write("evaluation-measured.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
-                Some((e, crate::measured::measured_mean_ghi(&site, mp)?))
+                match crate::measured::evaluate_measured(&site, set.dir(), mp) {
+                    Ok(e) => {
+                        set.write("evaluation-measured.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
+                        Some((e, crate::measured::measured_mean_ghi(&site, mp)?))
+                    }
+                    Err(e) => {
+                        crate::say!("report: not scored against the measurements ({e})");
+                        None
+                    }
+                }
             }
             None => None,
         };
