@@ -141,13 +141,52 @@ pub fn select_shard(days: Vec<Day>, shard: Option<Shard>) -> Vec<Day> {
     }
 }
 
-/// SHA-256 of the site file's text, as 64 hex digits.
+/// SHA-256 of the configuration, as 64 hex digits: the site file's bytes, then the bytes of each
+/// file it refers to, in this fixed order: the calibration (`camera.calibration`), its obstruction
+/// mask and clear-sky library (`camera.obstruction_mask`, `camera.clear_reference` of the
+/// calibration file), the cloud base height series (`clouds.base_height_csv`). Each part enters as
+/// its name, its length (8 bytes, little-endian) and its bytes; a reference the files do not make
+/// enters as its name and `absent`. Paths resolve as [`crate::config::Site::load`] resolves them.
 ///
 /// # Errors
-/// The file cannot be read.
+/// A file that cannot be read (a referenced file that is named but missing included).
 pub fn config_digest(site: &Path) -> Result<String, InputError> {
-    let bytes = std::fs::read(site).map_err(|source| InputError::Read { file: site.to_path_buf(), source })?;
-    Ok(sha2::Sha256::digest(&bytes).iter().map(|b| format!("{b:02x}")).collect())
+    let read = |p: &Path| std::fs::read(p).map_err(|source| InputError::Read { file: p.to_path_buf(), source });
+    let resolve = |base: &Path, p: &str| {
+        let p = Path::new(p);
+        if p.is_absolute() { p.to_path_buf() } else { base.parent().unwrap_or(Path::new(".")).join(p) }
+    };
+    // A file's string field at a dotted path, when the file is TOML and holds it.
+    let field = |bytes: &[u8], section: &str, key: &str| -> Option<String> {
+        let v: toml::Value = toml::from_str(std::str::from_utf8(bytes).ok()?).ok()?;
+        v.get(section)?.get(key)?.as_str().map(str::to_string)
+    };
+    let mut h = sha2::Sha256::new();
+    let mut part = |name: &str, bytes: Option<&[u8]>| {
+        h.update(name.as_bytes());
+        h.update([0u8]);
+        match bytes {
+            Some(b) => {
+                h.update((b.len() as u64).to_le_bytes());
+                h.update(b);
+            }
+            None => h.update(b"absent"),
+        }
+    };
+    let site_bytes = read(site)?;
+    part("site", Some(&site_bytes));
+    let cal_path = field(&site_bytes, "camera", "calibration").map(|p| resolve(site, &p));
+    let cal = cal_path.as_deref().map(read).transpose()?;
+    part("camera.calibration", cal.as_deref());
+    for key in ["obstruction_mask", "clear_reference"] {
+        let p = cal.as_deref().zip(cal_path.as_deref()).and_then(|(b, cp)| field(b, "camera", key).map(|p| resolve(cp, &p)));
+        let bytes = p.as_deref().map(read).transpose()?;
+        part(&format!("camera.{key}"), bytes.as_deref());
+    }
+    let cbh = field(&site_bytes, "clouds", "base_height_csv").map(|p| resolve(site, &p));
+    let bytes = cbh.as_deref().map(read).transpose()?;
+    part("clouds.base_height_csv", bytes.as_deref());
+    Ok(h.finalize().iter().map(|b| format!("{b:02x}")).collect())
 }
 
 /// What a batch needs.
@@ -328,6 +367,38 @@ pub fn print_summary(s: &BatchSummary) {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The digest covers the site file and the files it refers to: changing the calibration, its
+    /// mask, its clear-sky library or the base-height series changes it; reading twice does not.
+    #[test]
+    fn config_digest_covers_referenced_files() {
+        let d = tempfile::tempdir().unwrap();
+        let w = |name: &str, text: &str| std::fs::write(d.path().join(name), text).unwrap();
+        w("site.toml", "[camera]\ncalibration = \"cal/cam.toml\"\n[clouds]\nbase_height_csv = \"cbh.csv\"\n");
+        std::fs::create_dir_all(d.path().join("cal")).unwrap();
+        w("cal/cam.toml", "[camera]\nobstruction_mask = \"mask.png\"\nclear_reference = \"clear.csv\"\nf = 1\n");
+        w("cal/mask.png", "mask");
+        w("cal/clear.csv", "library");
+        w("cbh.csv", "time_utc,cbh_m\n");
+        let site = d.path().join("site.toml");
+        let first = config_digest(&site).unwrap();
+        assert_eq!(first.len(), 64);
+        assert_eq!(config_digest(&site).unwrap(), first, "stable");
+        let mut seen = vec![first.clone()];
+        for (file, text) in [("cal/cam.toml", "[camera]\nobstruction_mask = \"mask.png\"\nclear_reference = \"clear.csv\"\nf = 2\n"), ("cal/mask.png", "mask2"), ("cal/clear.csv", "library2"), ("cbh.csv", "time_utc,cbh_m\n2026-06-14T10:00:00Z,1500\n")] {
+            w(file, text);
+            let now = config_digest(&site).unwrap();
+            assert!(!seen.contains(&now), "changing {file} left the digest as it was");
+            seen.push(now);
+        }
+        // A referenced file that is missing is an error naming it.
+        std::fs::remove_file(d.path().join("cal/mask.png")).unwrap();
+        let e = config_digest(&site).unwrap_err().to_string();
+        assert!(e.contains("mask.png"), "{e}");
+        // Without references, the site file alone (and the parts marked absent).
+        w("site.toml", "[camera]\n");
+        assert_ne!(config_digest(&site).unwrap(), first);
+    }
 
     #[test]
     fn shard_specs() {

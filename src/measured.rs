@@ -17,6 +17,12 @@
 //! Coimbra, Kleissl & Marquez 2013); CRPS of the plant ensemble (Gneiting & Raftery 2007); the share
 //! of readings inside P10–P90.
 //!
+//! # Ramps
+//! Under `[evaluation.ramps]` ([`EvalRampParams`]): ramps in the pyranometers' mean GHI (a change
+//! over `window_min` of at least `threshold_pct` of 1000 W/m² or of the clear-sky GHI; a run of
+//! such windows is one ramp, as in [`crate::ramp::find_ramps`]) against the forecast's events in
+//! `ramps.csv`, per lead: POD, FAR and CSI over issue times ([`MeasuredRampScore`]).
+//!
 //! # Sky types
 //! Each issue time is classed from the measured plant-mean clear-sky index `kc = GHI / GHI_clear`
 //! over the 30 minutes before it: its mean and the standard deviation of its 1-minute changes
@@ -29,10 +35,11 @@ use std::collections::{BTreeMap, HashMap};
 use std::path::Path;
 
 use chrono::{DateTime, Utc};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::config::Site;
 use crate::io::{InputError, Measurements};
+use crate::settings::{ConfigError, check_range};
 use crate::verify::{crps_ensemble, read_rows};
 
 /// Scores of one target at one horizon.
@@ -88,6 +95,10 @@ pub struct MeasuredEvaluation {
     pub excluded: BTreeMap<String, usize>,
     /// Values the screening flagged, by column and reason.
     pub screened: BTreeMap<String, usize>,
+    /// The ramp definition of `[evaluation.ramps]` the ramp scores use.
+    pub ramp_definition: EvalRampParams,
+    /// Ramp POD, FAR and CSI per lead time (empty without `ramps.csv`).
+    pub ramps: Vec<MeasuredRampScore>,
 }
 
 /// A scored plant pair: forecast, measured, smart persistence, CRPS, inside P10–P90 (1 or 0).
@@ -164,6 +175,7 @@ pub struct ScoredPairs {
     pub screened: BTreeMap<String, usize>,
     measurements: Measurements,
     plant_columns: Vec<usize>,
+    issues: Vec<DateTime<Utc>>,
 }
 
 /// Score a replay's forecasts against a measurements CSV for a site.
@@ -192,6 +204,7 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
         }
     }
     let plant = horizon_scores(per_h);
+    let ramps = ramp_scores(site, &sp.measurements, &sp.plant_columns, &sp.issues, replay_out)?;
     let mut issues_by_sky_type: BTreeMap<String, usize> = BTreeMap::new();
     for s in sky_of.values() {
         *issues_by_sky_type.entry(s.to_string()).or_default() += 1;
@@ -203,7 +216,23 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
         by_block: by_block.iter().map(|(k, v)| (k.clone(), pooled(v))).collect(),
         excluded: sp.excluded,
         screened: sp.screened,
+        ramp_definition: site.file.evaluation.ramps.clone(),
+        ramps,
     })
+}
+
+/// The pyranometers' mean GHI at each row of a measurements CSV (the valid readings only: as for
+/// the scores, flagged, missing and stuck readings are left out; NaN where none is left).
+///
+/// # Errors
+/// As [`evaluate_measured`].
+pub fn measured_mean_ghi(site: &Site, measurements: &Path) -> Result<Vec<(DateTime<Utc>, f64)>, InputError> {
+    let f = &site.file.site;
+    let mut m = Measurements::read_csv(measurements)?;
+    m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
+    let cols: Vec<usize> = pyranometer_columns(site, &m, measurements)?.iter().map(|c| c.0).collect();
+    let mut none = BTreeMap::new();
+    Ok(m.times.iter().map(|t| (*t, mean_reading(&m, &cols, t, &mut none).unwrap_or(f64::NAN))).collect())
 }
 
 /// The pairs a replay's forecasts make with a measurements CSV (see the module documentation for
@@ -220,13 +249,16 @@ pub fn scored_pairs(site: &Site, replay_out: &Path, measurements: &Path) -> Resu
     let all: Vec<usize> = cols.iter().map(|c| c.0).collect();
     let rows = read_rows(&replay_out.join("forecasts.csv"))?;
     let (clear_at_issue, members) = issue_tables(&rows, replay_out)?;
+    let mut issues: Vec<DateTime<Utc>> = rows.iter().filter_map(|r| r.get("issue_time_utc").and_then(|v| v.parse::<DateTime<Utc>>().ok())).collect();
+    issues.sort();
+    issues.dedup();
     let mut pairs = vec![];
     for r in &rows {
         if let Some(p) = pair_of(r, &m, &cols, &all, &clear_at_issue, &members, &mut excluded) {
             pairs.push(p);
         }
     }
-    Ok(ScoredPairs { pairs, excluded, screened: screen.counts(), measurements: m, plant_columns: all })
+    Ok(ScoredPairs { pairs, excluded, screened: screen.counts(), measurements: m, plant_columns: all, issues })
 }
 
 /// The pair of one forecast row, or `None` (counted in `excluded` by reason) when it cannot be
@@ -419,10 +451,276 @@ pub fn print_measured(e: &MeasuredEvaluation) {
             crate::say!("  {k:<12} n {:>5}, RMSE {:.1} vs persistence {:.1}, skill {}, MBE {:.1}", p.n, p.rmse_wm2, p.rmse_persistence_wm2, fmt_score(p.skill, 2), p.mbe_wm2);
         }
     }
+    if !e.ramps.is_empty() {
+        let d = &e.ramp_definition;
+        crate::say!(
+            "ramps of the pyranometers' mean GHI (change ≥ {} % of {} over {} min; forecast events with probability ≥ {}, matched within {} min):",
+            d.threshold_pct,
+            match d.basis {
+                RampBasis::Capacity => "capacity (1000 W/m²)",
+                RampBasis::ClearSky => "clear-sky GHI",
+            },
+            d.window_min,
+            d.min_probability,
+            d.match_window_min
+        );
+        crate::say!("   lead  issues  hits  misses  false    POD    FAR    CSI");
+        for r in &e.ramps {
+            crate::say!(
+                "{:>4} min {:>7} {:>5} {:>7} {:>6} {:>6} {:>6} {:>6}  ({} issue times not scored)",
+                r.lead_min,
+                r.issues_scored,
+                r.hits,
+                r.misses,
+                r.false_alarms,
+                fmt_score(r.pod, 2),
+                fmt_score(r.far, 2),
+                fmt_score(r.csi, 2),
+                r.issues_not_scored
+            );
+        }
+    }
     let excl: Vec<String> = e.excluded.iter().map(|(k, n)| format!("{k}: {n}")).collect();
     crate::say!("left out: {}", if excl.is_empty() { "none".to_string() } else { excl.join("; ") });
     let scr: Vec<String> = e.screened.iter().map(|(k, n)| format!("{k}: {n}")).collect();
     crate::say!("screened measurements: {}", if scr.is_empty() { "nothing flagged".to_string() } else { scr.join("; ") });
+}
+
+// ---------------------------------------------------------------------------------------------
+// Ramps against measurements
+
+/// What a measured ramp's threshold is a percentage of.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum RampBasis {
+    /// The plant's capacity, taken in GHI as the 1000 W/m² at which its DC rating is given.
+    Capacity,
+    /// The clear-sky GHI (mean of the model's values at the window's two ends).
+    ClearSky,
+}
+
+/// `[evaluation.ramps]` in `site.toml`: the ramp definition `evaluate --measurements` uses on the
+/// pyranometers' mean GHI, and how forecast ramp events are matched to it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct EvalRampParams {
+    /// What `threshold_pct` is a percentage of: `capacity` (1000 W/m²) or `clear_sky`; default
+    /// `capacity`.
+    pub basis: RampBasis,
+    /// Least change over `window_min` that makes a ramp \[% of the basis\]; default 10.
+    pub threshold_pct: f64,
+    /// Window over which the change is measured \[min\]; default 1.
+    pub window_min: u32,
+    /// Lead times scored \[min\]; default 5, 10, 15.
+    pub lead_min: Vec<f64>,
+    /// A forecast ramp matches a lead when its lead time is this close to it, and a measured ramp
+    /// when its start is this close to issue + lead \[min\]; default 2.
+    pub match_window_min: f64,
+    /// Least probability (ensemble agreement in `ramps.csv`) for a forecast ramp to count;
+    /// default 0.5.
+    pub min_probability: f64,
+}
+
+impl Default for EvalRampParams {
+    fn default() -> Self {
+        Self { basis: RampBasis::Capacity, threshold_pct: 10.0, window_min: 1, lead_min: vec![5.0, 10.0, 15.0], match_window_min: 2.0, min_probability: 0.5 }
+    }
+}
+
+/// Most lead times in `[evaluation.ramps]`.
+pub const MAX_RAMP_LEADS: usize = 60;
+
+impl EvalRampParams {
+    /// Check ranges.
+    ///
+    /// # Errors
+    /// The first field out of range, named `evaluation.ramps.<field>`.
+    pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
+        check_range(file, "evaluation.ramps.threshold_pct", self.threshold_pct, 0.1, 100.0)?;
+        check_range(file, "evaluation.ramps.window_min", self.window_min as f64, 1.0, 15.0)?;
+        if self.lead_min.is_empty() || self.lead_min.len() > MAX_RAMP_LEADS {
+            return Err(ConfigError::Invalid {
+                file: file.into(),
+                field: "evaluation.ramps.lead_min".into(),
+                expected: format!("from 1 to {MAX_RAMP_LEADS} lead times"),
+                got: format!("{} lead times", self.lead_min.len()),
+            });
+        }
+        for (i, l) in self.lead_min.iter().enumerate() {
+            check_range(file, &format!("evaluation.ramps.lead_min[{i}]"), *l, 0.0, 60.0)?;
+        }
+        check_range(file, "evaluation.ramps.match_window_min", self.match_window_min, 0.0, 10.0)?;
+        check_range(file, "evaluation.ramps.min_probability", self.min_probability, 0.0, 1.0)
+    }
+}
+
+/// `[evaluation]` in `site.toml`.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct EvaluationSection {
+    /// The ramp definition for scoring against measurements.
+    pub ramps: EvalRampParams,
+}
+
+impl EvaluationSection {
+    /// Whether every setting is its default (the section is then left out when written).
+    pub fn is_default(&self) -> bool {
+        *self == Self::default()
+    }
+}
+
+/// Ramp detection against measurements at one lead time, as a contingency over issue times.
+#[derive(Debug, Clone, Serialize)]
+pub struct MeasuredRampScore {
+    /// Lead time \[min\].
+    pub lead_min: f64,
+    /// Issue times scored.
+    pub issues_scored: usize,
+    /// Issue times not scored: a window within the match window of issue + lead lacks a valid
+    /// reading (missing, flagged, stuck, sun low, or beyond the measurements).
+    pub issues_not_scored: usize,
+    /// Hits: a forecast ramp and a measured ramp in the same direction.
+    pub hits: usize,
+    /// Misses: a measured ramp and no forecast ramp in its direction.
+    pub misses: usize,
+    /// False alarms: a forecast ramp and no measured ramp in its direction.
+    pub false_alarms: usize,
+    /// Probability of detection, hits / (hits + misses); NaN without either.
+    pub pod: f64,
+    /// False-alarm ratio, false alarms / (hits + false alarms); NaN without either.
+    pub far: f64,
+    /// Critical success index, hits / (hits + misses + false alarms); NaN without any.
+    pub csi: f64,
+}
+
+/// A ramp found in the measured mean GHI: start (the first window of its run) and direction.
+pub type MeasuredRamp = (DateTime<Utc>, crate::ramp::Direction);
+
+/// Ramps in the measured mean GHI of the columns `all` under a definition, and the start times of
+/// the windows that could be judged (valid readings at both ends, clear-sky GHI ≥ 50 W/m²). Each
+/// run of consecutive windows (over the rows) whose change passes the threshold in one direction
+/// is one ramp, starting at the run's first window, as [`crate::ramp::find_ramps`] does.
+pub fn measured_ramps(site: &Site, m: &Measurements, all: &[usize], p: &EvalRampParams, from: DateTime<Utc>, to: DateTime<Utc>) -> (Vec<MeasuredRamp>, Vec<DateTime<Utc>>) {
+    use crate::ramp::Direction;
+    let f = &site.file.site;
+    let observer = f.observer();
+    let clear_at = |t: DateTime<Utc>| -> f64 {
+        crate::sun::position(&t, &observer).map(|sp| crate::clearsky::clear_sky(&sp, f.elevation_m, f.clear_sky()).ghi_wm2).unwrap_or(f64::NAN)
+    };
+    let ghi_at = |t: DateTime<Utc>| -> f64 {
+        let mut none = BTreeMap::new();
+        mean_reading(m, all, &t, &mut none).unwrap_or(f64::NAN)
+    };
+    let w = chrono::Duration::minutes(i64::from(p.window_min));
+    let (mut ramps, mut judged) = (vec![], vec![]);
+    let mut run: Option<(DateTime<Utc>, Direction)> = None;
+    for &s in m.times.iter().filter(|t| **t >= from && **t <= to) {
+        let (c0, c1) = (clear_at(s), clear_at(s + w));
+        let d = ghi_at(s + w) - ghi_at(s);
+        let dir = if d.is_finite() && c0 >= MIN_CLEAR_WM2 && c1 >= MIN_CLEAR_WM2 {
+            judged.push(s);
+            let limit = p.threshold_pct / 100.0 * match p.basis {
+                RampBasis::Capacity => 1000.0,
+                RampBasis::ClearSky => 0.5 * (c0 + c1),
+            };
+            if d >= limit {
+                Some(Direction::Up)
+            } else if d <= -limit {
+                Some(Direction::Down)
+            } else {
+                None
+            }
+        } else {
+            None
+        };
+        match (run, dir) {
+            (Some((_, rd)), Some(nd)) if rd == nd => {}
+            (r, nd) => {
+                ramps.extend(r);
+                run = nd.map(|d| (s, d));
+            }
+        }
+    }
+    ramps.extend(run);
+    (ramps, judged)
+}
+
+/// Hits, misses and false alarms of one issue time: forecast and measured ramp directions.
+/// Both present and sharing a direction: a hit; both present in opposite directions: a miss and a
+/// false alarm; only forecast: a false alarm; only measured: a miss.
+pub fn ramp_contingency(fc: &[crate::ramp::Direction], obs: &[crate::ramp::Direction]) -> (usize, usize, usize) {
+    match (fc.is_empty(), obs.is_empty()) {
+        (false, false) if fc.iter().any(|d| obs.contains(d)) => (1, 0, 0),
+        (false, false) => (0, 1, 1),
+        (false, true) => (0, 0, 1),
+        (true, false) => (0, 1, 0),
+        (true, true) => (0, 0, 0),
+    }
+}
+
+/// Ramp POD, FAR and CSI per lead of `[evaluation.ramps]`: the forecast's ramp events
+/// (`ramps.csv`) against the ramps of the pyranometers' mean GHI.
+fn ramp_scores(site: &Site, m: &Measurements, all: &[usize], issues: &[DateTime<Utc>], replay_out: &Path) -> Result<Vec<MeasuredRampScore>, InputError> {
+    let p = &site.file.evaluation.ramps;
+    let path = replay_out.join("ramps.csv");
+    if !path.is_file() || issues.is_empty() {
+        return Ok(vec![]);
+    }
+    let events = read_rows(&path)?;
+    let mw = chrono::Duration::milliseconds((p.match_window_min * 60_000.0).round() as i64);
+    let max_lead = chrono::Duration::milliseconds((p.lead_min.iter().copied().fold(0.0, f64::max) * 60_000.0).round() as i64);
+    let from = issues[0] - mw;
+    let to = issues[issues.len() - 1] + max_lead + mw;
+    let (ramps, judged) = measured_ramps(site, m, all, p, from, to);
+    let judged: std::collections::BTreeSet<DateTime<Utc>> = judged.into_iter().collect();
+    let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
+    let mut by_issue: HashMap<DateTime<Utc>, Vec<(f64, f64, crate::ramp::Direction)>> = HashMap::new();
+    for e in &events {
+        let Some(t) = e.get("issue_time_utc").and_then(|x| x.parse::<DateTime<Utc>>().ok()) else { continue };
+        let num = |k: &str| e.get(k).and_then(|x| x.parse::<f64>().ok()).unwrap_or(f64::NAN);
+        let dir = if e.get("direction").map(String::as_str) == Some("up") { crate::ramp::Direction::Up } else { crate::ramp::Direction::Down };
+        by_issue.entry(t).or_default().push((num("lead_time_s"), num("probability"), dir));
+    }
+    let mut out = vec![];
+    for &lead in &p.lead_min {
+        let (mut scored, mut skipped, mut h, mut mi, mut fa) = (0, 0, 0, 0, 0);
+        for &t in issues {
+            let centre = t + chrono::Duration::milliseconds((lead * 60_000.0).round() as i64);
+            // Every row start within the match window must have been judged.
+            let starts: Vec<DateTime<Utc>> = m.times.iter().copied().filter(|s| (*s - centre).abs() <= mw).collect();
+            let covered = !starts.is_empty() && starts.iter().all(|s| judged.contains(s)) && {
+                // No gap in the rows across the match window.
+                starts.windows(2).all(|w| w[1] - w[0] <= period) && starts[0] - (centre - mw) < period && (centre + mw) - starts[starts.len() - 1] < period
+            };
+            if !covered {
+                skipped += 1;
+                continue;
+            }
+            scored += 1;
+            let fc: Vec<crate::ramp::Direction> = by_issue
+                .get(&t)
+                .map(|v| v.iter().filter(|(l, pr, _)| (l - lead * 60.0).abs() <= p.match_window_min * 60.0 && *pr >= p.min_probability).map(|x| x.2).collect())
+                .unwrap_or_default();
+            let obs: Vec<crate::ramp::Direction> = ramps.iter().filter(|(s, _)| (*s - centre).abs() <= mw).map(|x| x.1).collect();
+            let (a, b, c) = ramp_contingency(&fc, &obs);
+            h += a;
+            mi += b;
+            fa += c;
+        }
+        let r = |a: usize, b: usize| if a + b > 0 { a as f64 / (a + b) as f64 } else { f64::NAN };
+        out.push(MeasuredRampScore {
+            lead_min: lead,
+            issues_scored: scored,
+            issues_not_scored: skipped,
+            hits: h,
+            misses: mi,
+            false_alarms: fa,
+            pod: r(h, mi),
+            far: r(fa, h),
+            csi: if h + mi + fa > 0 { h as f64 / (h + mi + fa) as f64 } else { f64::NAN },
+        });
+    }
+    Ok(out)
 }
 
 #[cfg(test)]

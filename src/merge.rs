@@ -12,7 +12,7 @@
 //! ([`RunMeta`]), committed as one set.
 //!
 //! `merge` refuses shard folders made with different site configurations (SHA-256 of the site
-//! file) or holding the same day, naming both folders, and any day that is not complete.
+//! file and the files it refers to) or holding the same day, naming both folders, and any day that is not complete.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -124,7 +124,7 @@ pub struct RunMeta {
     pub kind: String,
     /// The nephocast version that wrote it.
     pub nephocast_version: String,
-    /// SHA-256 of the site file's text.
+    /// SHA-256 of the configuration: the site file and the files it refers to ([`crate::batch::config_digest`]).
     pub config_sha256: String,
     /// The site file.
     pub site_file: String,
@@ -153,7 +153,7 @@ pub struct RunMeta {
 pub struct DayRecord {
     /// The day's name.
     pub day: String,
-    /// SHA-256 of the site file's text.
+    /// SHA-256 of the configuration: the site file and the files it refers to ([`crate::batch::config_digest`]).
     pub config_sha256: String,
     /// Frames found.
     pub frames: usize,

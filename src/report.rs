@@ -8,6 +8,7 @@ use base64::Engine as _;
 use chrono::{DateTime, Utc};
 
 use crate::io::parse_time;
+use crate::measured::MeasuredEvaluation;
 use crate::plant::PLANT_TARGET;
 use crate::stats::{Score, StatsTable};
 use crate::verify::{Evaluation, Truth, read_rows};
@@ -271,6 +272,37 @@ fn page_start(title: &str) -> String {
 /// # Errors
 /// Unreadable replay outputs or a failed write.
 pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, title: &str) -> Result<std::path::PathBuf, ReportError> {
+    write_report_with(out, truth, eval, None, title)
+}
+
+/// What a report shows of measurements: the scores of [`crate::measured::evaluate_measured`] and
+/// the pyranometers' mean GHI ([`crate::measured::measured_mean_ghi`]).
+pub struct MeasuredReport<'a> {
+    /// The scores.
+    pub evaluation: &'a MeasuredEvaluation,
+    /// The pyranometers' mean GHI (time, W/m²).
+    pub mean_ghi: &'a [(DateTime<Utc>, f64)],
+}
+
+/// [`write_report`], and with measurements: the pyranometers' mean GHI against the forecast at
+/// 5, 10 and 15 minutes, the per-horizon, per-sky-type, per-block and ramp score tables, and the
+/// rows left out and why.
+///
+/// # Errors
+/// As [`write_report`].
+pub fn write_report_with(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, measured: Option<&MeasuredReport<'_>>, title: &str) -> Result<std::path::PathBuf, ReportError> {
+    let html = report_html(out, truth, eval, measured, title)?;
+    let path = out.join("report.html");
+    crate::io::write_atomic(&path, html.as_bytes())?;
+    Ok(path)
+}
+
+/// The page [`write_report_with`] writes, as text (for a committed set, which takes it through
+/// [`crate::output_set::update_file`]).
+///
+/// # Errors
+/// As [`write_report`].
+pub fn report_html(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>, measured: Option<&MeasuredReport<'_>>, title: &str) -> Result<String, ReportError> {
     crate::output_set::check_manifest(out)?;
     let fc = read_rows(&out.join("forecasts.csv"))?;
     let rows: Vec<BTreeMap<String, String>> = fc.into_iter().map(|r| r.into_iter().collect()).collect();
@@ -278,15 +310,17 @@ pub fn write_report(out: &Path, truth: Option<&Truth>, eval: Option<&Evaluation>
     if let Some(e) = eval {
         html += &scores_section(e);
     }
-    html += &forecast_section(&rows, truth);
+    if let Some(m) = measured {
+        html += &measured_section(m.evaluation);
+    }
+    let line: Vec<(f64, f64)> = measured.map(|m| m.mean_ghi.iter().map(|(t, v)| (minute_of_day(t), *v)).collect()).unwrap_or_default();
+    html += &forecast_section(&rows, truth, &line);
     html += &motion_section(out)?;
     html += &frames_section(out)?;
     html += &ramps_section(&rows, out);
     html += &pictures_section(out)?;
     html += "</body></html>";
-    let path = out.join("report.html");
-    crate::io::write_atomic(&path, html.as_bytes())?;
-    Ok(path)
+    Ok(html)
 }
 
 /// The scores against the truth: a table every 5 minutes of horizon, motion, segmentation, ramps,
@@ -315,9 +349,92 @@ fn scores_section(e: &Evaluation) -> String {
     html
 }
 
+/// The scores against measurements: per horizon, per sky type, per block, ramps, and what was
+/// left out and why.
+fn measured_section(e: &MeasuredEvaluation) -> String {
+    use crate::verify::fmt_score;
+    let mut html = String::new();
+    html += "<h2 id='measured-scores'>Scores against the pyranometers (plant-mean GHI against their mean)</h2>";
+    html += "<table id='measured-horizons'><tr><th>horizon</th><th>n</th><th>RMSE W/m²</th><th>MAE</th><th>MBE</th><th>persistence RMSE</th><th>skill</th><th>CRPS</th><th>P10–P90 coverage</th></tr>";
+    for h in &e.plant {
+        let _ = write!(
+            html,
+            "<tr><td>{} min</td><td>{}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            h.horizon_s / 60,
+            h.n,
+            h.rmse_wm2,
+            h.mae_wm2,
+            h.mbe_wm2,
+            h.rmse_persistence_wm2,
+            fmt_score(h.skill, 3),
+            fmt_score(h.crps_wm2, 1),
+            fmt_score(h.coverage_p10_p90, 2)
+        );
+    }
+    html += "</table>";
+    html += "<h3>By sky type (pooled 5–15 min)</h3><p>Each issue time is classed from the measured clear-sky index over the 30 minutes before it: clear (mean ≥ 0.8, σΔkc ≤ 0.03), overcast (mean ≤ 0.5, σΔkc ≤ 0.03), variable otherwise; unknown with fewer than 10 readings.</p>";
+    html += "<table id='measured-sky-types'><tr><th>sky type</th><th>issue times</th><th>n</th><th>RMSE W/m²</th><th>persistence RMSE</th><th>skill</th><th>MBE</th></tr>";
+    for (k, p) in &e.by_sky_type {
+        let _ = write!(html, "<tr><td>{}</td><td>{}</td><td>{}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{:.1}</td></tr>", esc(k), e.issues_by_sky_type.get(k).copied().unwrap_or(0), p.n, p.rmse_wm2, p.rmse_persistence_wm2, fmt_score(p.skill, 3), p.mbe_wm2);
+    }
+    html += "</table>";
+    if !e.by_block.is_empty() {
+        html += "<h3>By block (its own pyranometers, pooled 5–15 min)</h3><table id='measured-blocks'><tr><th>block</th><th>n</th><th>RMSE W/m²</th><th>persistence RMSE</th><th>skill</th><th>MBE</th></tr>";
+        for (k, p) in &e.by_block {
+            let _ = write!(html, "<tr><td>{}</td><td>{}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{:.1}</td></tr>", esc(k), p.n, p.rmse_wm2, p.rmse_persistence_wm2, fmt_score(p.skill, 3), p.mbe_wm2);
+        }
+        html += "</table>";
+    }
+    if !e.ramps.is_empty() {
+        let d = &e.ramp_definition;
+        let basis = match d.basis {
+            crate::measured::RampBasis::Capacity => "capacity (1000 W/m²)",
+            crate::measured::RampBasis::ClearSky => "clear-sky GHI",
+        };
+        let _ = write!(
+            html,
+            "<h3>Ramps</h3><p>A measured ramp: the pyranometers' mean GHI changes by at least {} % of {basis} over {} min. Forecast ramp events with probability ≥ {} are matched within ±{} min.</p>",
+            d.threshold_pct, d.window_min, d.min_probability, d.match_window_min
+        );
+        html += "<table id='measured-ramps'><tr><th>lead</th><th>issue times</th><th>not scored</th><th>hits</th><th>misses</th><th>false alarms</th><th>POD</th><th>FAR</th><th>CSI</th></tr>";
+        for r in &e.ramps {
+            let _ = write!(
+                html,
+                "<tr><td>{} min</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                r.lead_min,
+                r.issues_scored,
+                r.issues_not_scored,
+                r.hits,
+                r.misses,
+                r.false_alarms,
+                fmt_score(r.pod, 2),
+                fmt_score(r.far, 2),
+                fmt_score(r.csi, 2)
+            );
+        }
+        html += "</table>";
+    }
+    html += "<h3>Left out</h3><table id='measured-excluded'><tr><th style='text-align:left'>forecast rows left out, why</th><th>rows</th></tr>";
+    if e.excluded.is_empty() {
+        html += "<tr><td style='text-align:left'>none</td><td>0</td></tr>";
+    }
+    for (k, n) in &e.excluded {
+        let _ = write!(html, "<tr><td style='text-align:left'>{}</td><td>{n}</td></tr>", esc(k));
+    }
+    html += "</table><table id='measured-screened'><tr><th style='text-align:left'>measurements flagged by the screening, column and why</th><th>values</th></tr>";
+    if e.screened.is_empty() {
+        html += "<tr><td style='text-align:left'>none</td><td>0</td></tr>";
+    }
+    for (k, n) in &e.screened {
+        let _ = write!(html, "<tr><td style='text-align:left'>{}</td><td>{n}</td></tr>", esc(k));
+    }
+    html += "</table>";
+    html
+}
+
 /// The plant-mean GHI forecast 5, 10 and 15 minutes ahead with its band, against the truth when
 /// there is one.
-fn forecast_section(rows: &[BTreeMap<String, String>], truth: Option<&Truth>) -> String {
+fn forecast_section(rows: &[BTreeMap<String, String>], truth: Option<&Truth>, measured: &[(f64, f64)]) -> String {
     let mut html = String::new();
     let num = |r: &BTreeMap<String, String>, k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
     html += "<h2>Forecast against what happened (plant-mean GHI)</h2>";
@@ -337,6 +454,12 @@ fn forecast_section(rows: &[BTreeMap<String, String>], truth: Option<&Truth>) ->
         let mut s = vec![Series { label: format!("forecast {} min ahead", lead / 60), colour: "#1f6fd1".into(), points: f, dashed: false }];
         if !obs.is_empty() {
             s.push(Series { label: "truth".into(), colour: "#222".into(), points: obs, dashed: false });
+        }
+        // The measured line over the forecast's span of target times.
+        let (lo, hi) = s[0].points.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |a, p| (a.0.min(p.0), a.1.max(p.0)));
+        let m: Vec<(f64, f64)> = measured.iter().copied().filter(|p| p.0 >= lo && p.0 <= hi).collect();
+        if !m.is_empty() {
+            s.push(Series { label: "pyranometers, measured mean".into(), colour: "#b03a2e".into(), points: m, dashed: false });
         }
         html += &line_chart(&format!("{} minutes ahead", lead / 60), "target time [UTC]", "GHI [W/m²]", &s, &[BandArea { label: "P10–P90".into(), colour: "#1f6fd1".into(), points: band }], true);
     }

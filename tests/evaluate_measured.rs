@@ -21,6 +21,7 @@ fn demo_replay_scored_against_its_pyranometers() {
         .arg(demo.join("measurements.csv"))
         .arg("--out")
         .arg(&out)
+        .arg("--report")
         .output()
         .unwrap();
     assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
@@ -70,4 +71,44 @@ fn demo_replay_scored_against_its_pyranometers() {
     // The main job: better than smart persistence of the pyranometers at 5 minutes.
     assert!(h5["skill"].as_f64().unwrap() > 0.2, "5-min skill {}", h5["skill"]);
     assert!(j["by_sky_type"].as_object().unwrap().values().map(|p| p["n"].as_u64().unwrap()).sum::<u64>() > 0);
+    // Ramps at the default leads (5, 10, 15 min).
+    let ramps = j["ramps"].as_array().unwrap();
+    assert_eq!(ramps.len(), 3, "{ramps:?}");
+    assert!(ramps[0]["issues_scored"].as_u64().unwrap() > 0);
+
+    // `replay --report` with measurements: the report draws the pyranometers' mean against the
+    // forecast at 5, 10 and 15 minutes and holds the score tables and the exclusions.
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert_eq!(html.matches("pyranometers, measured mean").count(), 3, "a measured line in each of the 5/10/15-min charts");
+    for id in ["measured-horizons", "measured-sky-types", "measured-blocks", "measured-ramps", "measured-excluded", "measured-screened"] {
+        assert!(html.contains(&format!("id='{id}'")), "report lacks table {id}");
+    }
+    // The 5-minute row shows the same RMSE as the JSON.
+    let row5 = format!("<tr><td>5 min</td><td>{}</td><td>{:.1}</td>", h5["n"], h5["rmse_wm2"].as_f64().unwrap());
+    assert!(html.contains(&row5), "no {row5}");
+    // Each exclusion reason of the evaluation is listed with its count.
+    let replay_eval: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("evaluation-measured.json")).unwrap()).unwrap();
+    for (k, n) in replay_eval["excluded"].as_object().unwrap() {
+        let k = k.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;");
+        assert!(html.contains(&format!("<td style='text-align:left'>{k}</td><td>{n}</td>")), "no exclusion row {k}: {n}");
+    }
+    assert!(!html.contains("NaN"), "a NaN in the report");
+
+    // `evaluate --measurements --report` rewrites the committed set's report the same way, and
+    // the set's manifest still matches.
+    let e = Command::new(BIN)
+        .args(["evaluate", "--report", "--replay"])
+        .arg(&out)
+        .arg("--measurements")
+        .arg(demo.join("measurements.csv"))
+        .arg("--site")
+        .arg(demo.join("site.toml"))
+        .output()
+        .unwrap();
+    assert!(e.status.success(), "{}", String::from_utf8_lossy(&e.stderr));
+    let again = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert!(again.contains("<title>nephocast evaluate</title>"), "report.html was not rewritten");
+    assert_eq!(again.matches("pyranometers, measured mean").count(), 3);
+    assert!(again.contains(&row5) && again.contains("id='measured-excluded'"));
+    nephocast::output_set::check_manifest(&out).unwrap();
 }

@@ -313,6 +313,10 @@ pub struct EvaluateArgs {
     /// The site file the replay ran with (pyranometer positions, blocks).
     #[arg(long)]
     pub site: Option<PathBuf>,
+    /// With --measurements: also (re)write the replay's report.html with the measured line and
+    /// the score tables.
+    #[arg(long, requires = "measurements")]
+    pub report: bool,
 }
 
 /// Arguments of `nephocast replay`.

@@ -36,7 +36,28 @@ pub(super) fn cmd_replay(a: ReplayArgs) -> Result<()> {
         let seq = opts.frames.parent().map(|p| p.to_path_buf()).unwrap_or_default();
         let truth = crate::verify::Truth::read(&seq.join("truth").join("irradiance.csv")).ok();
         let eval = truth.as_ref().and_then(|_| crate::verify::evaluate(&seq, set.dir()).ok());
-        Some(report_into(&mut set, truth.as_ref(), eval.as_ref(), "nephocast replay")?)
+        // With measurements: their scores (also written as evaluation-measured.json) and line.
+        // A measurements file without pyranometer columns (weather only) leaves the report as it
+        // was, with a note.
+        let measured = match &opts.measurements {
+            Some(mp) => {
+                let site = crate::config::Site::load(&opts.site)?;
+                match crate::measured::evaluate_measured(&site, set.dir(), mp) {
+                    Ok(e) => {
+                        set.write("evaluation-measured.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
+                        Some((e, crate::measured::measured_mean_ghi(&site, mp)?))
+                    }
+                    Err(e) => {
+                        crate::say!("report: not scored against the measurements ({e})");
+                        None
+                    }
+                }
+            }
+            None => None,
+        };
+        let mr = measured.as_ref().map(|(e, line)| crate::report::MeasuredReport { evaluation: e, mean_ghi: line });
+        crate::report::write_report_with(set.dir(), truth.as_ref(), eval.as_ref(), mr.as_ref(), "nephocast replay")?;
+        Some(set.adopt("report.html")?)
     } else {
         None
     };
@@ -131,6 +152,13 @@ pub(super) fn cmd_evaluate(a: EvaluateArgs) -> Result<()> {
         crate::measured::print_measured(&e);
         let p = crate::output_set::update_file(&a.replay, "evaluation-measured.json", serde_json::to_string_pretty(&e)?.as_bytes())?;
         crate::say!("wrote {}", p.display());
+        if a.report {
+            let line = crate::measured::measured_mean_ghi(&site, mp)?;
+            let mr = crate::report::MeasuredReport { evaluation: &e, mean_ghi: &line };
+            let html = crate::report::report_html(&a.replay, None, None, Some(&mr), "nephocast evaluate")?;
+            let p = crate::output_set::update_file(&a.replay, "report.html", html.as_bytes())?;
+            crate::say!("report: {}", p.display());
+        }
         return Ok(());
     }
     let Some(sequence) = &a.sequence else { bail!("--sequence or --measurements is needed") };

@@ -67,6 +67,9 @@ pub struct SiteFile {
     /// Ramp definition and alarm states.
     #[serde(default)]
     pub ramps: crate::ramp::RampParams,
+    /// How `evaluate --measurements` scores (the ramp definition of `[evaluation.ramps]`).
+    #[serde(default, skip_serializing_if = "crate::measured::EvaluationSection::is_default")]
+    pub evaluation: crate::measured::EvaluationSection,
     /// Pyranometers whose readings a measurements CSV may hold (`ghi_<name>_wm2` columns).
     #[serde(default)]
     pub pyranometers: Vec<PyranometerSpec>,
@@ -364,6 +367,7 @@ impl SiteFile {
         self.irradiance.validate(path)?;
         self.power.validate(path)?;
         self.ramps.validate(path)?;
+        self.evaluation.ramps.validate(path)?;
         if self.pyranometers.len() > MAX_PYRANOMETERS {
             return Err(c.invalid("pyranometers", format!("at most {MAX_PYRANOMETERS} pyranometers"), self.pyranometers.len().to_string()));
         }

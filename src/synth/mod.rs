@@ -210,6 +210,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         irradiance: Default::default(),
         power: Default::default(),
         ramps: Default::default(),
+        evaluation: Default::default(),
         pyranometers: vec![],
         measurements_modbus: None,
     }
