@@ -3,7 +3,8 @@
 //!
 //! The default run takes one short scene and asserts the targets. `NEPHOCAST_ALARM_SCENES=all`
 //! replays every broken-cloud scene at full length and prints their figures (nothing more is
-//! asserted for them).
+//! asserted for them); `NEPHOCAST_ALARM_SCENES=clearing` only the scene whose cloud clears over an
+//! hour, to measure how the variable state rises and clears.
 
 use chrono::{DateTime, Utc};
 use nephocast::config::Site;
@@ -40,11 +41,28 @@ struct Figures {
 }
 
 fn measure(name: &str, minutes: Option<f64>) -> Figures {
-    let d = tempfile::tempdir().unwrap();
     let mut spec = scene(name).unwrap();
     if let Some(m) = minutes {
         spec.duration_min = m;
     }
+    measure_spec(spec)
+}
+
+/// Broken cumulus that clears: the fast scene's cover falls from 45 % to none at 55 minutes (then
+/// 25 minutes of clear sky), so the
+/// variable state's rise and its clearing (dwell and hysteresis) can be measured.
+fn clearing_scene() -> nephocast::synth::SceneSpec {
+    let mut spec = scene("broken-cumulus-fast").unwrap();
+    spec.name = "broken-clearing".into();
+    spec.duration_min = 80.0;
+    // Linear in time: none from minute 55 on.
+    spec.layers[0].cover_end = -0.2;
+    spec
+}
+
+fn measure_spec(spec: nephocast::synth::SceneSpec) -> Figures {
+    let d = tempfile::tempdir().unwrap();
+    let name = spec.name.clone();
     let step_s = spec.frame_step_s;
     let s = Scene::new(spec.clone(), 3).unwrap();
     write_sequence(&s, d.path(), false).unwrap();
@@ -140,11 +158,19 @@ fn check(f: &Figures, confirm: u32) {
 #[test]
 fn alarms_on_a_short_broken_cloud_scene_meet_their_targets() {
     let confirm = nephocast::ramp::RampParams::default().motion_confirm_measurements;
-    if std::env::var("NEPHOCAST_ALARM_SCENES").as_deref() == Ok("all") {
-        for name in ["broken-cumulus-fast", "scattered-slow", "overcast-breaking", "larkspur-demo", "two-layers", "nuisance-broken"] {
-            measure(name, None);
+    match std::env::var("NEPHOCAST_ALARM_SCENES").as_deref() {
+        Ok("all") => {
+            for name in ["broken-cumulus-fast", "scattered-slow", "overcast-breaking", "larkspur-demo", "two-layers", "nuisance-broken"] {
+                measure(name, None);
+            }
+            measure_spec(clearing_scene());
+            return;
         }
-        return;
+        Ok("clearing") => {
+            measure_spec(clearing_scene());
+            return;
+        }
+        _ => {}
     }
     let f = measure("broken-cumulus-fast", Some(15.0));
     check(&f, confirm);
