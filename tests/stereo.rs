@@ -27,6 +27,8 @@ struct Frame {
     scene: String,
     truth_m: f64,
     result: Result<(f64, f64, f64), String>,
+    /// Time the estimator took \[ms\].
+    ms: f64,
 }
 
 fn run_scene(name: &str, seed: u64, frames: usize) -> Vec<Frame> {
@@ -58,8 +60,9 @@ fn run_scene(name: &str, seed: u64, frames: usize) -> Vec<Frame> {
             let sun = Some([sun[0] as f32, sun[1] as f32, sun[2] as f32]);
             let a = StereoView { camera: cam_a, obstruction: None, position_m: sc.cam_pos_m, reference: &reference, image: &img_a };
             let b = StereoView { camera: &cam_b, obstruction: None, position_m: pos_b, reference: &reference, image: &img_b };
+            let t0 = std::time::Instant::now();
             let result = estimate(&a, &b, sun, &seg, &params).map(|fit| (fit.cbh_m, fit.rel_sigma, fit.peak_ncc)).map_err(|e| e.to_string());
-            Frame { scene: name.to_string(), truth_m, result }
+            Frame { scene: name.to_string(), truth_m, result, ms: t0.elapsed().as_secs_f64() * 1e3 }
         })
         .collect()
 }
@@ -89,6 +92,9 @@ fn stereo_cbh_on_synthetic_scenes() {
             }
         }
     }
+    let mut ms: Vec<f64> = frames.iter().map(|f| f.ms).collect();
+    ms.sort_by(f64::total_cmp);
+    eprintln!("  estimator time per frame pair: median {:.0} ms", ms[ms.len() / 2]);
     let given = errors.len();
     assert!(given * 4 >= frames.len() * 3, "estimates for only {given} of {} frames", frames.len());
     errors.sort_by(f64::total_cmp);
