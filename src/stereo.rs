@@ -33,8 +33,8 @@
 //! the scan's median), when the best height is at an end of the scan, or when the bootstrap's sigma
 //! exceeds [`StereoParams::max_rel_sigma`] (the peak is not pinned down).
 //!
-//! Heights are above camera `A` (the site's camera, as `[clouds] base_height_m`); camera
-//! positions are (east, north, up) in metres in one site frame.
+//! Heights are above camera `A` (the engine adds its height to put them above the site origin);
+//! camera positions are (east, north, up) in metres in one site frame.
 //!
 //! Published basis: stereographic CBH from two sky imagers, Nguyen & Kleissl 2014, *Solar Energy*
 //! (from memory, not checked). The settings below are own first choices, not tuned.

@@ -110,3 +110,54 @@ fn stereo_cbh_on_synthetic_scenes() {
     assert!(median <= 0.10, "median CBH error {:.1} % > 10 %", 100.0 * median);
     assert!(coverage >= 0.8, "one-sigma coverage {:.0} % < 80 %", 100.0 * coverage);
 }
+
+/// The engine end to end: `broken-cumulus-fast` (base 1200 m) written by `synth` at 384², a second
+/// camera's frames (800 m east, 300 m north, as rendered) in `frames2` with its true calibration,
+/// `[second_camera]` added to the site file and the configured base set 1.6 times too high. After
+/// the first stereo run, `motion.csv` must report `cbh_source = stereo` and a base within 10 % of
+/// the truth.
+#[test]
+fn replay_with_a_second_camera() {
+    use nephocast::config::CalibrationFile;
+    use nephocast::replay::{ReplayOptions, replay};
+    let d = tempfile::tempdir().unwrap();
+    let mut spec = scene("broken-cumulus-fast").unwrap();
+    spec.size_px = SIZE_PX;
+    spec.duration_min = 4.0;
+    let cam_spec_b = nephocast::synth::CameraSpec { name: "second".into(), yaw_deg: spec.camera.yaw_deg + 70.0, ..spec.camera.clone() };
+    let sc = Scene::new(spec, 3).unwrap();
+    nephocast::synth::write_sequence(&sc, d.path(), false).unwrap();
+    let cam_b = cam_spec_b.camera(SIZE_PX);
+    let pos_b = [sc.cam_pos_m[0] + OFFSET_M[0], sc.cam_pos_m[1] + OFFSET_M[1], sc.cam_pos_m[2] + OFFSET_M[2]];
+    let rays_b = PixelRays::new(&cam_b);
+    std::fs::create_dir_all(d.path().join("frames2")).unwrap();
+    for (i, t) in sc.frame_times().iter().enumerate() {
+        let rgb = sc.render_frame_from(&cam_b, pos_b, &rays_b, i, t).rgb;
+        std::fs::write(d.path().join("frames2").join(nephocast::io::frame_name(t, "jpg")), nephocast::synth::encode_jpeg(&rgb, sc.spec.jpeg_quality)).unwrap();
+    }
+    let cal = CalibrationFile::from_camera("second", &cam_b);
+    std::fs::write(d.path().join("calibration/second.toml"), toml::to_string(&cal).unwrap()).unwrap();
+    let site = std::fs::read_to_string(d.path().join("site.toml")).unwrap();
+    assert!(site.contains("base_height_m = 1200.0"));
+    let site = site.replace("base_height_m = 1200.0", "base_height_m = 1920.0")
+        + &format!("\n[second_camera]\ncalibration = \"calibration/second.toml\"\nposition_m = [{:.1}, {:.1}, {:.1}]\nframes = \"frames2\"\nevery_s = 60.0\n", pos_b[0], pos_b[1], pos_b[2]);
+    std::fs::write(d.path().join("site.toml"), site).unwrap();
+    let out = d.path().join("out");
+    let opts = ReplayOptions { site: d.path().join("site.toml"), frames: d.path().join("frames"), out: out.clone(), measurements: None, overlays_every: 0, progress: false };
+    let sum = replay(&opts).unwrap();
+    assert_eq!(sum.counters.rejected.values().sum::<usize>(), 0, "{:?}", sum.counters.rejected);
+    let mut rdr = csv::Reader::from_path(out.join("motion.csv")).unwrap();
+    let h = rdr.headers().unwrap().clone();
+    let col = |n: &str| h.iter().position(|x| x == n).unwrap();
+    let (a, b, c) = (col("cbh_m"), col("cbh_sigma_m"), col("cbh_source"));
+    let rows: Vec<(f64, f64, String)> = rdr.records().map(|r| r.unwrap()).map(|r| (r[a].parse().unwrap(), r[b].parse().unwrap(), r[c].to_string())).collect();
+    let stereo: Vec<&(f64, f64, String)> = rows.iter().filter(|r| r.2 == "stereo").collect();
+    for r in &rows {
+        eprintln!("  replay: cbh {:.0} m ± {:.0} m ({})", r.0, r.1, r.2);
+    }
+    assert!(!stereo.is_empty(), "no frame reported a stereo base: {rows:?}");
+    assert_eq!(rows[0].2, "stereo", "the first frame runs the stereo estimate");
+    for r in &stereo {
+        assert!((r.0 / 1200.0 - 1.0).abs() <= 0.10, "stereo base {:.0} m vs 1200 m", r.0);
+    }
+}

@@ -212,6 +212,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         ramps: Default::default(),
         pyranometers: vec![],
         measurements_modbus: None,
+        second_camera: None,
     }
 }
 
