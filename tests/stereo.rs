@@ -36,8 +36,8 @@ fn run_scene(name: &str, seed: u64, frames: usize) -> Vec<Frame> {
     spec.size_px = SIZE_PX;
     let cam_spec_b = nephocast::synth::CameraSpec { yaw_deg: spec.camera.yaw_deg + 70.0, ..spec.camera.clone() };
     let sc = Scene::new(spec, seed).unwrap();
-    assert!(sc.world.layers.len() <= 1, "single-layer scenes only");
-    let base_m = sc.world.layers.first().map_or(f64::NAN, |l| l.spec.base_height_m);
+    // The lowest layer's base (the one the estimate should find, if any).
+    let base_m = sc.world.layers.iter().map(|l| l.spec.base_height_m).fold(f64::NAN, f64::min);
     // Heights are above camera A.
     let truth_m = base_m - sc.cam_pos_m[2];
     let cam_a: &Camera = &sc.camera;
@@ -72,6 +72,17 @@ fn stereo_cbh_on_synthetic_scenes() {
     for f in run_scene("clear-day", 3, 2) {
         eprintln!("  clear-day: {:?}", f.result);
         assert!(f.result.is_err(), "a clear sky gave a stereo estimate: {:?}", f.result);
+    }
+    // Two layers (cumulus at 1000 m under thin altocumulus at 3800 m): one layer's base or no
+    // estimate; reported, not in the figures. Known shortfall: the estimate may be the upper
+    // layer's base (it was for one of four frames at its introduction, three were refused as
+    // ambiguous), which the engine would take for the lower layer's.
+    for f in run_scene("two-layers", 3, 4) {
+        eprintln!("  two-layers (bases {:.0} and 3797 m): {:?}", f.truth_m, f.result);
+        if let Ok((h, _, _)) = f.result {
+            let near = |b: f64| (h / b - 1.0).abs() <= 0.10;
+            assert!(near(f.truth_m) || near(3797.0), "two-layers: {h:.0} m is neither layer's base");
+        }
     }
     let mut frames = run_scene("broken-cumulus-fast", 3, FRAMES);
     frames.extend(run_scene("scattered-slow", 3, FRAMES));
