@@ -31,6 +31,7 @@ fn setup() -> (Scene, Site, Vec<Frame>) {
         obstruction: None,
         clear_reference: None,
         cbh_csv: None,
+        second_camera: None,
     };
     (s, site, frames)
 }

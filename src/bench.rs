@@ -132,6 +132,7 @@ pub fn run_with(o: &BenchOptions) -> Result<BenchReport, BenchError> {
         obstruction: None,
         clear_reference: None,
         cbh_csv: None,
+        second_camera: None,
     };
     let mut nc = Nowcaster::new(site, None, None);
     let plant_points = nc.plant().point_count();

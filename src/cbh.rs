@@ -44,7 +44,7 @@ pub enum CbhSource {
     ShadowTiming,
     /// The configured value (`[clouds] base_height_m`) with its prior uncertainty.
     Configured,
-    /// Two cameras (not implemented; reserved name).
+    /// Two cameras ([`crate::stereo`], fed through [`CbhState::observe_stereo`]).
     Stereo,
 }
 
@@ -488,6 +488,8 @@ pub struct CbhState {
     last_fit: Option<(DateTime<Utc>, ShadowFit)>,
     /// Why the newest frame gave no shadow-timing fit, if it gave none.
     pub last_no_fit: Option<NoFit>,
+    /// The newest stereo estimate (height above the camera \[m\], sigma of `ln h`) and its time.
+    last_stereo: Option<(DateTime<Utc>, f64, f64)>,
     prior_rel_sigma: f64,
 }
 
@@ -528,6 +530,7 @@ impl CbhState {
             shadow: None,
             last_fit: None,
             last_no_fit: None,
+            last_stereo: None,
             prior_rel_sigma: clouds.base_height_rel_sigma.unwrap_or(CONFIGURED_REL_SIGMA),
         }
     }
@@ -535,6 +538,13 @@ impl CbhState {
     /// The newest shadow-timing fit and its time.
     pub fn last_fit(&self) -> Option<&(DateTime<Utc>, ShadowFit)> {
         self.last_fit.as_ref()
+    }
+
+    /// Take a stereo estimate made from frames taken at `time` ([`crate::stereo::estimate`]); from
+    /// then on [`CbhState::update`] combines it (aged) with the other sources as `stereo`. A
+    /// refusal leaves the previous estimate in place (it keeps ageing).
+    pub fn observe_stereo(&mut self, time: DateTime<Utc>, fit: &crate::stereo::StereoFit) {
+        self.last_stereo = Some((time, fit.cbh_m, fit.rel_sigma));
     }
 
     /// Feed a frame to the shadow timing (if on) and combine the estimates at the frame's time.
@@ -569,6 +579,9 @@ impl CbhState {
         if let Some((t, fit)) = &self.last_fit {
             inputs.push(CbhInput { cbh_m: fit.cbh_m, rel_sigma: fit.rel_sigma, age_s: (f.time - *t).num_milliseconds() as f64 / 1000.0, source: CbhSource::ShadowTiming });
         }
+        if let Some((t, cbh_m, rel_sigma)) = self.last_stereo {
+            inputs.push(CbhInput { cbh_m, rel_sigma, age_s: (f.time - t).num_milliseconds() as f64 / 1000.0, source: CbhSource::Stereo });
+        }
         combine(&inputs).unwrap_or(CbhEstimate { cbh_m: f.map_cbh_m, sigma_m: f.map_cbh_m * self.prior_rel_sigma, source: CbhSource::Configured })
     }
 }
@@ -596,6 +609,43 @@ mod tests {
         assert_eq!(only.source, CbhSource::Configured);
         assert!((only.cbh_m - 1000.0).abs() < 1e-6 && (only.sigma_m - 300.0).abs() < 1e-6, "{only:?}");
         assert!(combine(&[CbhInput { cbh_m: f64::NAN, ..a }]).is_none());
+    }
+
+    /// A stereo estimate joins the combination as `stereo`, outweighs the configured prior while
+    /// fresh, and fades with age.
+    #[test]
+    fn stereo_estimates_are_combined() {
+        use crate::cloudmap::{CloudMap, MapParams};
+        let grid = Grid::new(&MapParams { cells: 32, ..Default::default() }, 2000.0);
+        let map = CloudMap { grid, score: vec![0.0; 32 * 32], class: vec![1; 32 * 32], in_view: vec![true; 32 * 32], offset: 0.0, brightness: vec![] };
+        let params = crate::forecast::IrradianceParams::default();
+        let site = crate::synth::larkspur_site(2000.0, "cam");
+        let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
+        let frame = |time| CbhFrame {
+            time,
+            map: &map,
+            params: &params,
+            map_cbh_m: 2000.0,
+            from_series: false,
+            v_map_mps: None,
+            camera_m: [0.0, 0.0, 3.0],
+            measurements: None,
+            observer: site.site.observer(),
+            altitude_m: 640.0,
+            model: site.site.clear_sky(),
+        };
+        let mut st = CbhState::new(&CloudSection { base_height_m: Some(2000.0), ..Default::default() });
+        assert_eq!(st.update(&frame(t0)).source, CbhSource::Configured);
+        let fit = crate::stereo::StereoFit { cbh_m: 1250.0, rel_sigma: 0.04, peak_ncc: 0.9, median_ncc: 0.1, overlap_cells: 5000, curve: vec![] };
+        st.observe_stereo(t0, &fit);
+        let fresh = st.update(&frame(t0));
+        assert_eq!(fresh.source, CbhSource::Stereo);
+        assert_eq!(fresh.source.name(), "stereo");
+        assert!((fresh.cbh_m / 1250.0 - 1.0).abs() < 0.03, "{fresh:?}");
+        assert!(fresh.rel_sigma() < 0.04, "{fresh:?}");
+        // An hour later the prior dominates again.
+        let old = st.update(&frame(t0 + chrono::Duration::seconds(3600)));
+        assert_eq!(old.source, CbhSource::Configured);
     }
 
     #[test]

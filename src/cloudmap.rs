@@ -117,6 +117,15 @@ pub const NO_PIXEL: u32 = u32::MAX;
 impl Lut {
     /// Build for a camera (with optional obstruction mask, white = sky) and plane height above it.
     pub fn build(cam: &Camera, obstruction: Option<&image::GrayImage>, grid: Grid) -> Lut {
+        Lut::build_from(cam, obstruction, grid, [0.0; 3])
+    }
+
+    /// [`Lut::build`] for a camera standing at `camera_m` (east, north, up) \[m\] from the grid's
+    /// origin: the grid is centred on the origin, its plane lies `grid.height_m` above the origin,
+    /// and the camera sees a plane point `x` in the direction `x − camera_m` (used by
+    /// [`crate::stereo`] to put two cameras' maps on one grid). `z_deg` and `dir` are as that camera
+    /// sees the cells.
+    pub fn build_from(cam: &Camera, obstruction: Option<&image::GrayImage>, grid: Grid, camera_m: [f64; 3]) -> Lut {
         let n = grid.n;
         let mut pixel = vec![NO_PIXEL; n * n];
         let mut z_deg = vec![f32::NAN; n * n];
@@ -125,7 +134,7 @@ impl Lut {
         for j in 0..n {
             for i in 0..n {
                 let c = grid.cell_centre_m(i, j);
-                let v = [c[0], c[1], grid.height_m];
+                let v = [c[0] - camera_m[0], c[1] - camera_m[1], grid.height_m - camera_m[2]];
                 let norm = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
                 let d = [v[0] / norm, v[1] / norm, v[2] / norm];
                 let k = j * n + i;
@@ -419,6 +428,25 @@ mod tests {
         let (x, y) = ((p % 256) as f64, (p / 256) as f64);
         let (ex, ey) = cam.project_enu([g.cell_centre_m(32, 32)[0], g.cell_centre_m(32, 32)[1], 1000.0]).unwrap();
         assert!((x - ex).abs() <= 0.5 && (y - ey).abs() <= 0.5);
+    }
+
+    /// A camera standing away from the grid's origin sees the cell above it where a camera at the
+    /// origin sees the cell above the origin.
+    #[test]
+    fn lut_from_an_offset_camera() {
+        let cam = Camera::ideal(256);
+        let g = Grid::new(&MapParams { cells: 64, ..Default::default() }, 1000.0);
+        // The camera stands where cell (40, 25) lies as (32, 32) lies from the origin.
+        let (a, b) = (g.cell_centre_m(40, 25), g.cell_centre_m(32, 32));
+        let shifted = Lut::build_from(&cam, None, g, [a[0] - b[0], a[1] - b[1], 0.0]);
+        let centred = Lut::build(&cam, None, g);
+        assert_eq!(shifted.pixel[25 * 64 + 40], centred.pixel[32 * 64 + 32]);
+        assert!((shifted.z_deg[25 * 64 + 40] - centred.z_deg[32 * 64 + 32]).abs() < 1e-3 && shifted.z_deg[32 * 64 + 32] > 60.0);
+        // Standing 200 m up, the plane is 800 m above the camera.
+        let raised = Lut::build_from(&cam, None, g, [0.0, 0.0, 200.0]);
+        let d = raised.dir[32 * 64 + 40];
+        let c = g.cell_centre_m(40, 32);
+        assert!((d[0] as f64 / d[2] as f64 - c[0] / 800.0).abs() < 1e-5);
     }
 
     #[test]

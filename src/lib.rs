@@ -83,6 +83,7 @@ pub mod serve;
 pub mod settings;
 pub mod shadow;
 pub mod stats;
+pub mod stereo;
 pub mod sun;
 pub mod synth;
 pub mod transposition;

@@ -155,6 +155,11 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
     let span = Some((frames[0].time, frames[frames.len() - 1].time));
     let mut nowcaster = prepare(opts, span)?;
     let intake = nowcaster.intake_options();
+    // The second camera's frames (`[second_camera] frames`), decoded whole when paired.
+    let second: Vec<crate::io::FrameRef> = match nowcaster.site().second_camera.as_ref().and_then(|s| s.frames.clone()) {
+        Some(dir) => frames_of(&dir)?.0,
+        None => vec![],
+    };
     let mut set = OutputSet::begin(&opts.out, "nephocast replay")?;
     let mut tables = ReplayTables::new();
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
@@ -181,6 +186,13 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                 return Err(InputError::Other { file: f.path.clone(), message: "the frame reader stopped before this frame".into() }.into());
             };
             // The clock policy first (from the name alone), then intake, then the engine.
+            // The second camera's frame nearest in time, when within the slack, for the stereo base height.
+            if let Some(s) = second.iter().min_by_key(|s| (s.time - f.time).num_milliseconds().abs())
+                && ((s.time - f.time).num_milliseconds().abs() as f64) <= crate::config::SECOND_FRAME_SLACK_S * 1000.0
+                && let Ok(img) = crate::intake::read_frame(&s.path, &crate::intake::IntakeOptions::default())
+            {
+                nowcaster.offer_second_frame(s.time, img);
+            }
             let crate::nowcast::Stepped { frame, result, .. } = nowcaster.step_with(f.time, Utc::now(), || decoded);
             match result {
                 Ok(nc) => {

@@ -23,6 +23,7 @@ fn reduced_frames_step_like_whole_ones() {
         obstruction: None,
         clear_reference: None,
         cbh_csv: None,
+        second_camera: None,
     };
     let mut reduced = Nowcaster::new(site.clone(), None, None);
     let mut whole = Nowcaster::new(site, None, None);

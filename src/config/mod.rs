@@ -76,7 +76,37 @@ pub struct SiteFile {
     /// Pyranometers or a plant meter polled over Modbus TCP as live mode's measurement feed.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub measurements_modbus: Option<ModbusFeedSection>,
+    /// A second camera for the cloud base height from stereo ([`crate::stereo`]).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub second_camera: Option<SecondCameraSection>,
 }
+
+/// `[second_camera]`: a second sky camera some hundreds of metres or more from the first, used only
+/// for the cloud base height from stereo ([`crate::stereo`]).
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SecondCameraSection {
+    /// The camera's calibration file (relative to the site file). Its obstruction mask is used;
+    /// its clear-sky library is not (the default reference is).
+    pub calibration: PathBuf,
+    /// Position relative to the site origin, (east, north, up) \[m\]; at least
+    /// [`crate::stereo::MIN_BASELINE_M`] horizontally from `[camera]`.
+    pub position_m: [f64; 3],
+    /// Folder of its frames for `replay` (relative to the site file), named like the first camera's;
+    /// a frame within [`SECOND_FRAME_SLACK_S`] of a first-camera frame is paired with it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub frames: Option<PathBuf>,
+    /// Run the stereo estimate at most this often \[s\] (default 60).
+    #[serde(default = "default_stereo_every_s")]
+    pub every_s: f64,
+}
+
+fn default_stereo_every_s() -> f64 {
+    60.0
+}
+
+/// Largest time between a first- and a second-camera frame paired for stereo \[s\].
+pub const SECOND_FRAME_SLACK_S: f64 = 5.0;
 
 /// `[[pyranometers]]`: a GHI sensor on the plant.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -236,6 +266,23 @@ pub struct Site {
     pub clear_reference: Option<crate::segment::Reference>,
     /// The cloud base height series path, resolved.
     pub cbh_csv: Option<PathBuf>,
+    /// The second camera (`[second_camera]`), if any.
+    pub second_camera: Option<SecondCamera>,
+}
+
+/// A loaded second camera.
+#[derive(Debug, Clone)]
+pub struct SecondCamera {
+    /// The camera from its calibration file.
+    pub camera: Camera,
+    /// Its obstruction mask, if the calibration names one.
+    pub obstruction: Option<image::GrayImage>,
+    /// Position (east, north, up) \[m\].
+    pub position_m: [f64; 3],
+    /// Its frames folder for replay, resolved.
+    pub frames: Option<PathBuf>,
+    /// Least time between stereo estimates \[s\].
+    pub every_s: f64,
 }
 
 impl Site {
@@ -260,28 +307,7 @@ impl Site {
         let calibration_path = resolve(path, &file.camera.calibration);
         let calibration: CalibrationFile = read_toml(&calibration_path)?;
         let camera = calibration.validate(&calibration_path)?;
-        let obstruction = match &calibration.camera.obstruction_mask {
-            Some(p) => {
-                let mp = resolve(&calibration_path, p);
-                let img = image::open(&mp).map_err(|e| ConfigError::Invalid {
-                    file: calibration_path.clone(),
-                    field: "camera.obstruction_mask".into(),
-                    expected: "a readable greyscale PNG".into(),
-                    got: format!("{}: {e}", mp.display()),
-                })?;
-                let g = img.to_luma8();
-                if g.dimensions() != (camera.width_px, camera.height_px) {
-                    return Err(ConfigError::Invalid {
-                        file: calibration_path.clone(),
-                        field: "camera.obstruction_mask".into(),
-                        expected: format!("an image of {}x{} px", camera.width_px, camera.height_px),
-                        got: format!("{}x{} px", g.width(), g.height()),
-                    });
-                }
-                Some(g)
-            }
-            None => None,
-        };
+        let obstruction = obstruction_mask(&calibration, &calibration_path, &camera)?;
         let clear_reference = match &calibration.camera.clear_reference {
             Some(p) => {
                 let rp = resolve(&calibration_path, p);
@@ -297,7 +323,17 @@ impl Site {
             None => None,
         };
         let cbh_csv = file.clouds.base_height_csv.as_ref().map(|p| resolve(path, p));
-        Ok(Site { file, path: path.into(), camera, calibration, calibration_path, obstruction, clear_reference, cbh_csv })
+        let second_camera = match &file.second_camera {
+            Some(s) => {
+                let cp = resolve(path, &s.calibration);
+                let cal: CalibrationFile = read_toml(&cp)?;
+                let camera = cal.validate(&cp)?;
+                let obstruction = obstruction_mask(&cal, &cp, &camera)?;
+                Some(SecondCamera { camera, obstruction, position_m: s.position_m, frames: s.frames.as_ref().map(|f| resolve(path, f)), every_s: s.every_s })
+            }
+            None => None,
+        };
+        Ok(Site { file, path: path.into(), camera, calibration, calibration_path, obstruction, clear_reference, cbh_csv, second_camera })
     }
 
     /// The observer for solar position.
@@ -309,6 +345,28 @@ impl Site {
     pub fn clear_sky_model(&self) -> ClearSkyModel {
         self.file.site.clear_sky()
     }
+}
+
+/// A calibration's obstruction mask (white = sky), checked against the camera's size.
+fn obstruction_mask(calibration: &CalibrationFile, calibration_path: &Path, camera: &Camera) -> Result<Option<image::GrayImage>, ConfigError> {
+    let Some(p) = &calibration.camera.obstruction_mask else { return Ok(None) };
+    let mp = resolve(calibration_path, p);
+    let img = image::open(&mp).map_err(|e| ConfigError::Invalid {
+        file: calibration_path.to_path_buf(),
+        field: "camera.obstruction_mask".into(),
+        expected: "a readable greyscale PNG".into(),
+        got: format!("{}: {e}", mp.display()),
+    })?;
+    let g = img.to_luma8();
+    if g.dimensions() != (camera.width_px, camera.height_px) {
+        return Err(ConfigError::Invalid {
+            file: calibration_path.to_path_buf(),
+            field: "camera.obstruction_mask".into(),
+            expected: format!("an image of {}x{} px", camera.width_px, camera.height_px),
+            got: format!("{}x{} px", g.width(), g.height()),
+        });
+    }
+    Ok(Some(g))
 }
 
 impl SiteSection {
@@ -379,6 +437,16 @@ impl SiteFile {
         if let Some(m) = &self.measurements_modbus {
             let names: Vec<String> = self.pyranometers.iter().map(|p| p.name.clone()).collect();
             m.validate(&c, &names)?;
+        }
+        if let Some(s) = &self.second_camera {
+            for (i, v) in s.position_m.iter().enumerate() {
+                c.range(&format!("second_camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
+            }
+            let b = (s.position_m[0] - self.camera.position_m[0]).hypot(s.position_m[1] - self.camera.position_m[1]);
+            if b < crate::stereo::MIN_BASELINE_M {
+                return Err(c.invalid("second_camera.position_m", format!("at least {} m from camera.position_m horizontally", crate::stereo::MIN_BASELINE_M), format!("{b:.1} m")));
+            }
+            c.range("second_camera.every_s", s.every_s, 1.0, 86_400.0)?;
         }
         self.check_budget(path)?;
         Ok(())
@@ -629,6 +697,27 @@ base_height_m = 1500.0
         let e = parse_toml::<SiteFile>(&t, Path::new("site.toml")).unwrap_err().to_string();
         assert!(e.starts_with("site.toml: field site.elevation_m:"), "{e}");
         assert!(e.contains("line 6"), "{e}");
+    }
+
+    /// `[second_camera]`: optional; refused too close to the first camera, out of range or with
+    /// an unknown key.
+    #[test]
+    fn second_camera_section() {
+        let parse = |extra: &str| parse_toml::<SiteFile>(&format!("{SITE}[second_camera]\n{extra}"), Path::new("site.toml"));
+        let ok = parse("calibration = \"cam2.toml\"\nposition_m = [800.0, 300.0, 3.0]\nframes = \"frames2\"").unwrap();
+        ok.validate(Path::new("site.toml")).unwrap();
+        let sc = ok.second_camera.as_ref().unwrap();
+        assert_eq!((sc.every_s, sc.frames.as_deref()), (60.0, Some(Path::new("frames2"))));
+        let close = parse("calibration = \"cam2.toml\"\nposition_m = [20.0, 10.0, 3.0]").unwrap();
+        let e = close.validate(Path::new("site.toml")).unwrap_err().to_string();
+        assert!(e.contains("second_camera.position_m") && e.contains("22.4 m"), "{e}");
+        let far = parse("calibration = \"cam2.toml\"\nposition_m = [80000.0, 0.0, 3.0]").unwrap();
+        assert!(far.validate(Path::new("site.toml")).unwrap_err().to_string().contains("second_camera.position_m[0]"));
+        let e = parse("calibration = \"cam2.toml\"\nposition_m = [800.0, 0.0, 3.0]\nbaseline = 3").unwrap_err().to_string();
+        assert!(e.contains("baseline"), "{e}");
+        let none: SiteFile = parse_toml(SITE, Path::new("site.toml")).unwrap();
+        assert!(none.second_camera.is_none());
+        assert!(!toml::to_string(&none).unwrap().contains("second_camera"));
     }
 
     #[test]

@@ -12,6 +12,7 @@ use crate::forecast::{Forecast, forecast_with, horizon_skies};
 use crate::io::{InputError, Measurements, Series, fmt_time};
 use crate::plant::Plant;
 use crate::segment::Reference;
+use crate::sun::SunPosition;
 use stages::{FrameQcStage, MapStage, MotionStage, layer_tables};
 use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
@@ -47,8 +48,21 @@ pub struct Nowcaster {
     image_geometry: std::sync::OnceLock<crate::segment::ImageGeometry>,
     /// The camera for frames decoded at reduced scale ([`crate::intake`]).
     reduced: crate::intake::ReducedFrames,
+    /// The second camera's newest frame and the stereo estimator's state.
+    stereo: StereoInput,
     /// Counters.
     pub counters: Counters,
+}
+
+/// The second camera's side of the stereo cloud base height ([`Nowcaster::offer_second_frame`]).
+#[derive(Debug, Default)]
+struct StereoInput {
+    /// The newest offered frame and its time.
+    pending: Option<(DateTime<Utc>, image::RgbImage)>,
+    /// When the estimator last ran.
+    last_run: Option<DateTime<Utc>>,
+    /// Why its newest run gave no estimate, if it gave none.
+    last_refusal: Option<String>,
 }
 
 impl Nowcaster {
@@ -84,7 +98,59 @@ impl Nowcaster {
             alarm: Default::default(),
             image_geometry: std::sync::OnceLock::new(),
             reduced,
+            stereo: StereoInput::default(),
             counters: Counters::default(),
+        }
+    }
+
+    /// Give the engine the second camera's frame taken at `time` (`[second_camera]`): the next
+    /// [`Nowcaster::step`] whose frame lies within [`crate::config::SECOND_FRAME_SLACK_S`] of it
+    /// runs the stereo estimate ([`crate::stereo`], at most every `every_s`) and combines it into
+    /// the cloud base height as source `stereo`. Ignored without a second camera.
+    pub fn offer_second_frame(&mut self, time: DateTime<Utc>, image: image::RgbImage) {
+        if self.site.second_camera.is_some() {
+            self.stereo.pending = Some((time, image));
+        }
+    }
+
+    /// Why the newest stereo run gave no estimate (`None` after an estimate, or before any run).
+    pub fn stereo_refusal(&self) -> Option<&str> {
+        self.stereo.last_refusal.as_deref()
+    }
+
+    /// Run the stereo estimate on this frame and the pending second-camera frame, when they pair
+    /// and the last run is at least `every_s` old; an estimate goes to the base-height state.
+    fn stereo_stage(&mut self, frame: &Frame, reduced: bool, sun: &SunPosition) {
+        let Some(sc) = &self.site.second_camera else { return };
+        let Some((t2, _)) = &self.stereo.pending else { return };
+        let gap_s = (*t2 - frame.time).num_milliseconds() as f64 / 1000.0;
+        if gap_s.abs() > crate::config::SECOND_FRAME_SLACK_S {
+            return;
+        }
+        if self.stereo.last_run.is_some_and(|l| ((frame.time - l).num_milliseconds() as f64) / 1000.0 < sc.every_s) {
+            return;
+        }
+        let Some((_, img2)) = self.stereo.pending.take() else { return };
+        self.stereo.last_run = Some(frame.time);
+        if img2.dimensions() != (sc.camera.width_px, sc.camera.height_px) {
+            self.stereo.last_refusal = Some(format!("second camera frame is {}x{} px, its calibration {}x{}", img2.width(), img2.height(), sc.camera.width_px, sc.camera.height_px));
+            return;
+        }
+        let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
+        let cam_a_m = self.site.file.camera.position_m;
+        let reference_b = crate::segment::Reference::default();
+        let a = crate::stereo::StereoView { camera: cam, obstruction, position_m: cam_a_m, reference: &self.map_stage.reference, image: &frame.image };
+        let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: &reference_b, image: &img2 };
+        let d = sun.direction_enu();
+        let sun_dir = Some([d[0] as f32, d[1] as f32, d[2] as f32]);
+        match crate::stereo::estimate(&a, &b, sun_dir, &self.site.file.segment, &crate::stereo::StereoParams::default()) {
+            Ok(mut fit) => {
+                // The estimator's height is above camera A; the engine's is above the site origin.
+                fit.cbh_m += cam_a_m[2];
+                self.cbh_state.observe_stereo(frame.time, &fit);
+                self.stereo.last_refusal = None;
+            }
+            Err(e) => self.stereo.last_refusal = Some(e.to_string()),
         }
     }
 
@@ -398,6 +464,7 @@ impl Nowcaster {
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
         let motion = moved.layers.first().map(|l| l.motion);
         let t_motion = Clock::now();
+        self.stereo_stage(frame, reduced, &sun);
         let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
         let cbh_factor = cbh_est.cbh_m / cbh;
         let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() };

@@ -213,6 +213,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         evaluation: Default::default(),
         pyranometers: vec![],
         measurements_modbus: None,
+        second_camera: None,
     }
 }
 
@@ -490,6 +491,16 @@ impl Scene {
         let inst = self.world.instant(t);
         let nuisances = self.nuisance_map.as_ref().map(|m| (&self.spec.nuisances, m));
         render_with(&self.world, &inst, &self.camera, rays, self.cam_pos_m, self.mast(), noise::hash64(self.seed ^ (i as u64 + 1).wrapping_mul(0x9E37)), nuisances)
+    }
+
+    /// Render frame `i` at time `t` from another camera standing at `position_m` (east, north,
+    /// up) \[m\] (e.g. the second camera of a stereo pair, [`crate::stereo`]): the same world at
+    /// the same time, without the mast and the nuisances (they belong to the scene's own camera),
+    /// with sensor noise of its own. `rays` must come from `camera`.
+    pub fn render_frame_from(&self, camera: &Camera, position_m: [f64; 3], rays: &PixelRays, i: usize, t: &DateTime<Utc>) -> render::Rendered {
+        let inst = self.world.instant(t);
+        let seed = noise::hash64(self.seed ^ 0x5EC0_4D00 ^ (i as u64 + 1).wrapping_mul(0x9E37));
+        render_with(&self.world, &inst, camera, rays, position_m, None, seed, None)
     }
 }
 
