@@ -251,6 +251,15 @@ fn calibration_cases() -> Vec<Case> {
     push(&mut cases, "calibration: 18 detections".into(), set(inputs::CALIBRATION, "[fit]", "detections", "18"), Expect::Ok);
     push(&mut cases, "calibration: no fit record".into(), inputs::CALIBRATION[..inputs::CALIBRATION.find("[fit]").unwrap()].to_string(), Expect::Ok);
     push(&mut cases, "calibration: zenith range reversed".into(), set(inputs::CALIBRATION, "[fit]", "detections_zenith_deg", "[80.0, 22.0]"), refused(&["fit.detections_zenith_deg[1]"]));
+    // One free radial parameter (the focal length) needs 5° of zenith; with k1 and k2 free, 15°.
+    push(&mut cases, "calibration: zenith span 3°".into(), set(inputs::CALIBRATION, "[fit]", "detections_zenith_deg", "[40.0, 43.0]"), refused(&["fit.detections_zenith_deg", "5°"]));
+    push(&mut cases, "calibration: zenith span 6°".into(), set(inputs::CALIBRATION, "[fit]", "detections_zenith_deg", "[40.0, 46.0]"), Expect::Ok);
+    push(
+        &mut cases,
+        "calibration: zenith span 12° with k1 and k2 free".into(),
+        set(set(inputs::CALIBRATION, "[fit]", "detections_zenith_deg", "[40.0, 52.0]").as_str(), "[fit.std_errors]", "roll_deg", "0.01\nk1 = 0.001\nk2 = 0.001"),
+        refused(&["fit.detections_zenith_deg", "15°"]),
+    );
     push(&mut cases, "calibration: bound with nan".into(), set(inputs::CALIBRATION, "[fit]", "detections", "60\ndirection_bound_deg = [[0.0, 40.0, nan]]"), refused(&["fit.direction_bound_deg[0]"]));
     push(&mut cases, "calibration: missing f".into(), remove_line(inputs::CALIBRATION, "[camera]", "f_px_per_rad"), refused(&["f_px_per_rad"]));
     push(&mut cases, "calibration: empty".into(), String::new(), refused(&["cam.toml", "camera"]));

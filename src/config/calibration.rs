@@ -114,6 +114,10 @@ pub const MIN_FIT_DETECTIONS: usize = 10;
 /// Smallest azimuth span \[°\] of a fit's detections (the sun's arc over about 40 minutes; common
 /// practice, no source): a shorter arc cannot separate yaw from the principal point.
 pub const MIN_FIT_AZIMUTH_SPAN_DEG: f64 = 10.0;
+/// Smallest zenith span \[°\] of a fit's detections per free radial parameter (the focal length and
+/// each distortion term; common practice, no source): a radial profile is only pinned where the
+/// detections spread along it.
+pub const MIN_ZENITH_SPAN_PER_RADIAL_TERM_DEG: f64 = 5.0;
 
 impl FitRecord {
     /// Check the record: enough detections for the free parameters, spread over the sky, and a
@@ -153,6 +157,17 @@ impl FitRecord {
         if let Some([z0, z1]) = self.detections_zenith_deg {
             c.range("fit.detections_zenith_deg[0]", z0, 0.0, 90.0)?;
             c.range("fit.detections_zenith_deg[1]", z1, z0, 90.0)?;
+            // Spread per free parameter along the radius: the focal length and each free
+            // distortion term.
+            let radial = self.std_errors.keys().filter(|k| k.as_str() == "f_px_per_rad" || (k.starts_with('k') && k[1..].parse::<u8>().is_ok())).count();
+            let needed = MIN_ZENITH_SPAN_PER_RADIAL_TERM_DEG * radial as f64;
+            if z1 - z0 < needed {
+                return Err(c.invalid(
+                    "fit.detections_zenith_deg",
+                    format!("detections over at least {needed}° of zenith ({MIN_ZENITH_SPAN_PER_RADIAL_TERM_DEG}° per free radial parameter, {radial} free)"),
+                    format!("[{z0}, {z1}]"),
+                ));
+            }
         }
         for (i, b) in self.direction_bound_deg.iter().enumerate() {
             if !b.iter().all(|x| x.is_finite()) || b[2] < 0.0 {
