@@ -524,7 +524,19 @@ impl Reference {
         FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg }
     }
 
-    /// Update the library with a frame's clear pixels (call only for frames judged clear).
+    /// Learn from a frame only when it is judged clear: its cloud fraction at most
+    /// [`SegmentParams::library_max_cloud_fraction`] (the one rule for the engine's map and for
+    /// `verify`). Returns whether it learnt.
+    pub fn learn_if_clear(&mut self, params: &SegmentParams, cloud_fraction: f64, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) -> bool {
+        let clear = cloud_fraction <= params.library_max_cloud_fraction;
+        if clear {
+            self.learn(params, sample);
+        }
+        clear
+    }
+
+    /// Update the library with a frame's clear pixels (call only for frames judged clear; see
+    /// [`Reference::learn_if_clear`]).
     pub fn learn(&mut self, params: &SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) {
         let mut sum = vec![0f64; LIB_Z_BINS * LIB_G_BINS];
         let mut cnt = vec![0u32; LIB_Z_BINS * LIB_G_BINS];

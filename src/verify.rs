@@ -272,13 +272,11 @@ pub fn score_segmentation(sequence: &Path) -> Result<SegmentationScore, EvalErro
         let sd = sun.direction_enu();
         let sun_dir = Some([sd[0] as f32, sd[1] as f32, sd[2] as f32]);
         let seg = segment_image(&img, &geom, sun_dir, &site.file.segment, &reference);
-        if seg.cloud_fraction <= site.file.segment.library_max_cloud_fraction {
-            let raw = img.as_raw();
-            let sample = (0..geom.z_deg.len()).step_by(3).filter(|&i| !geom.z_deg[i].is_nan()).map(|i| {
-                ([raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]], crate::segment::PixelGeom { z_deg: geom.z_deg[i], gamma_deg: gamma_deg(geom.dir[i], sun_dir) })
-            });
-            reference.learn(&site.file.segment, sample);
-        }
+        let raw = img.as_raw();
+        let sample = (0..geom.z_deg.len()).step_by(3).filter(|&i| !geom.z_deg[i].is_nan()).map(|i| {
+            ([raw[3 * i], raw[3 * i + 1], raw[3 * i + 2]], crate::segment::PixelGeom { z_deg: geom.z_deg[i], gamma_deg: gamma_deg(geom.dir[i], sun_dir) })
+        });
+        reference.learn_if_clear(&site.file.segment, seg.cloud_fraction, sample);
         let (mut fok, mut fn_) = (0usize, 0usize);
         for i in 0..geom.z_deg.len() {
             let tr = mask.as_raw()[i];

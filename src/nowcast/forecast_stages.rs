@@ -152,7 +152,10 @@ impl ForecastStage {
             let q = sun_ray_plane_point([pos[0] * inv_f, pos[1] * inv_f], cbh, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], sun.apparent_zenith_rad, sun.azimuth_rad);
             let v = v_mps.unwrap_or([0.0, 0.0]);
             let (cx, cy) = map.grid.to_cell([q[0] + v[0] * lag_s, q[1] + v[1] * lag_s]);
-            // Class shares and the brightness feature in the look-up box.
+            // Class shares and the brightness feature in the look-up box, counted on the map as seen
+            // (unknown cells left out), not read from the forecast's tables (`box_shares`), which
+            // hold the map with its unknown cells filled from their neighbours: the tuning learns
+            // only from what the camera saw.
             let mut share = [0f64; 4];
             let mut k = 0.0;
             let n = map.grid.n as i64;

@@ -142,14 +142,12 @@ impl MapStage {
         let sky = &self.cell_sky.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(lut, sun_dir, sp))).2;
         let map = Arc::new(build_map_with(image, lut, sky, sp, &self.reference));
         let [cf, thin_cf] = map.cover(lut, sp.cloud_fraction_zenith_deg as f32);
-        if cf <= sp.library_max_cloud_fraction {
-            let raw = image.as_raw();
-            let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
-                let i = lut.pixel[k] as usize * 3;
-                ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] })
-            });
-            self.reference.learn(sp, sample);
-        }
+        let raw = image.as_raw();
+        let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
+            let i = lut.pixel[k] as usize * 3;
+            ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] })
+        });
+        self.reference.learn_if_clear(sp, cf, sample);
         (map, [cf, thin_cf])
     }
 }
