@@ -292,6 +292,10 @@ fn the_event_stream_outlives_the_header_timeout() {
         assert!(n > 0, "the event stream was closed");
         got.extend_from_slice(&chunk[..n]);
     }
+    // Every event carries the data-valid flag, the acknowledgement's too.
+    let text = String::from_utf8_lossy(&got);
+    let line = text.lines().find(|l| l.contains("\"type\":\"ack\"")).unwrap();
+    assert!(line.contains("\"data_valid\":"), "{line}");
     h.stop();
 }
 

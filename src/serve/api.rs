@@ -224,7 +224,8 @@ async fn api_ack(State(app): State<App>, client: Option<axum::Extension<http::Cl
     let frame = app.shared.lock().ok().and_then(|s| s.last_time).map(|t| fmt_time(&t));
     match with_db(&app, |c| db::ack(c, req.id, &by, &fmt_time(&Utc::now()), frame.as_deref())) {
         Ok(db::AckOutcome::Acked) => {
-            let _ = app.tx.send(serde_json::json!({"type": "ack", "id": req.id}).to_string());
+            let valid = app.shared.lock().map(|s| s.health.data_valid).unwrap_or(false);
+            let _ = app.tx.send(serde_json::json!({"type": "ack", "id": req.id, "data_valid": valid}).to_string());
             Json(serde_json::json!({"acked": req.id, "by": by})).into_response()
         }
         Ok(db::AckOutcome::AlreadyAcked { acked_utc, acked_by }) => (
@@ -278,7 +279,8 @@ async fn api_shelve(State(app): State<App>, client: Option<axum::Extension<http:
     let frame = app.shared.lock().ok().and_then(|s| s.last_time);
     match with_db(&app, |c| db::shelve(c, &by, Utc::now(), frame, req.minutes)) {
         Ok(row) => {
-            let _ = app.tx.send(serde_json::json!({"type": "shelve", "shelf": row}).to_string());
+            let valid = app.shared.lock().map(|s| s.health.data_valid).unwrap_or(false);
+            let _ = app.tx.send(serde_json::json!({"type": "shelve", "shelf": row, "data_valid": valid}).to_string());
             Json(serde_json::json!({"shelved": row})).into_response()
         }
         Err(e) => db_error(e),

@@ -284,7 +284,7 @@ impl LiveEngine {
             match db::active_shelf(&self.conn, Utc::now()) {
                 Ok(Some(shelf)) => eprintln!("alarm {} -> {} not notified: shelved until {} by {}", ch.from.name(), ch.to.name(), shelf.until_utc, shelf.shelved_by),
                 _ => {
-                    nf.send(serde_json::json!({"type": "alarm_change", "id": id, "change": ch, "basis": n.alarm_basis, "current": true,
+                    nf.send(serde_json::json!({"type": "alarm_change", "id": id, "change": ch, "basis": n.alarm_basis, "current": true, "data_valid": valid,
                         "advisory": "Forecasts and alarms are advisory, not a protection system."}).to_string());
                 }
             }
