@@ -186,13 +186,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                 return Err(InputError::Other { file: f.path.clone(), message: "the frame reader stopped before this frame".into() }.into());
             };
             // The clock policy first (from the name alone), then intake, then the engine.
-            // The second camera's frame nearest in time, when within the slack, for the stereo base height.
-            if let Some(s) = second.iter().min_by_key(|s| (s.time - f.time).num_milliseconds().abs())
-                && ((s.time - f.time).num_milliseconds().abs() as f64) <= crate::config::SECOND_FRAME_SLACK_S * 1000.0
-                && let Ok(img) = crate::intake::read_frame(&s.path, &crate::intake::IntakeOptions::default())
-            {
-                nowcaster.offer_second_frame(s.time, img);
-            }
+            offer_second_frame(&mut nowcaster, &second, &f.time);
             let crate::nowcast::Stepped { frame, result, .. } = nowcaster.step_with(f.time, Utc::now(), || decoded);
             match result {
                 Ok(nc) => {
@@ -366,4 +360,15 @@ impl ReplayTables {
 /// The default output folder for a replay of `frames`.
 pub fn default_out(frames: &Path) -> PathBuf {
     frames.parent().unwrap_or(Path::new(".")).join("replay-out")
+}
+
+/// Offer the engine the second camera's frame nearest in time to `t`, when it is within
+/// [`crate::config::SECOND_FRAME_SLACK_S`] and reads (for the stereo base height).
+fn offer_second_frame(nowcaster: &mut Nowcaster, second: &[crate::io::FrameRef], t: &DateTime<Utc>) {
+    if let Some(s) = second.iter().min_by_key(|s| (s.time - *t).num_milliseconds().abs())
+        && ((s.time - *t).num_milliseconds().abs() as f64) <= crate::config::SECOND_FRAME_SLACK_S * 1000.0
+        && let Ok(img) = crate::intake::read_frame(&s.path, &crate::intake::IntakeOptions::default())
+    {
+        nowcaster.offer_second_frame(s.time, img);
+    }
 }

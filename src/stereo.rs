@@ -291,6 +291,32 @@ fn refined_peak(v: &[f64]) -> Option<(usize, f64)> {
     Some((i, x))
 }
 
+/// Spread (standard deviation) of the peak's ln height over a spatial block bootstrap: each of
+/// `resamples` draws weights the `n_tiles` tiles by how often they were drawn with replacement
+/// (xorshift, seeded by `seed` so the result is reproducible), `curve` gives the NCC curve for
+/// those weights, and `ln_at` turns a refined peak index into ln height.
+fn bootstrap_ln_sd(curve: &dyn Fn(&[f64]) -> Vec<f64>, n_tiles: usize, resamples: usize, seed: u64, ln_at: &dyn Fn(f64) -> f64) -> f64 {
+    let mut state = 0x9E37_79B9_7F4A_7C15u64 ^ seed.wrapping_mul(0x2545_F491_4F6C_DD1D);
+    let mut next = || {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        state
+    };
+    let mut draws = Vec::with_capacity(resamples);
+    for _ in 0..resamples {
+        let mut w = vec![0.0; n_tiles];
+        for _ in 0..n_tiles {
+            w[(next() % n_tiles as u64) as usize] += 1.0;
+        }
+        if let Some((_, xb)) = refined_peak(&curve(&w)) {
+            draws.push(ln_at(xb));
+        }
+    }
+    let m = draws.iter().sum::<f64>() / draws.len().max(1) as f64;
+    (draws.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (draws.len().max(2) - 1) as f64).sqrt()
+}
+
 /// The estimator on score maps given per candidate height: `maps(h)` returns camera A's and
 /// camera B's cloudiness-score maps (`cells × cells`, row-major, NaN where not seen) on the
 /// common grid at height `h` above camera A. [`estimate`] gives it the engine's maps; unit tests
@@ -359,26 +385,7 @@ pub fn estimate_with(p: &StereoParams, mut maps: impl FnMut(f64) -> [Vec<f32>; 2
     }
     let step = (p.max_height_m / p.min_height_m).ln() / (heights.len() - 1) as f64;
     let ln_at = |x: f64| p.min_height_m.ln() + x * step;
-    // Spatial block bootstrap over tiles (xorshift, seeded by the data so it is reproducible).
-    let mut state = 0x9E37_79B9_7F4A_7C15u64 ^ (max_overlap as u64).wrapping_mul(0x2545_F491_4F6C_DD1D);
-    let mut next = || {
-        state ^= state << 13;
-        state ^= state >> 7;
-        state ^= state << 17;
-        state
-    };
-    let mut draws = Vec::with_capacity(p.resamples);
-    for _ in 0..p.resamples {
-        let mut w = vec![0.0; n_tiles];
-        for _ in 0..n_tiles {
-            w[(next() % n_tiles as u64) as usize] += 1.0;
-        }
-        if let Some((_, xb)) = refined_peak(&curve_with(&w)) {
-            draws.push(ln_at(xb));
-        }
-    }
-    let m = draws.iter().sum::<f64>() / draws.len().max(1) as f64;
-    let sd = (draws.iter().map(|v| (v - m).powi(2)).sum::<f64>() / (draws.len().max(2) - 1) as f64).sqrt();
+    let sd = bootstrap_ln_sd(&curve_with, n_tiles, p.resamples, max_overlap as u64, &ln_at);
     let rel_sigma = sd.max(0.5 * step);
     if rel_sigma > p.max_rel_sigma {
         return Err(NoStereo::Ambiguous { rel_sigma, max: p.max_rel_sigma });
