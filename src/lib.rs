@@ -85,6 +85,7 @@ pub mod shadow;
 pub mod stats;
 pub mod stereo;
 pub mod sun;
+pub mod sundisk;
 pub mod synth;
 pub mod transposition;
 pub mod verify;

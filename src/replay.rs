@@ -260,7 +260,7 @@ impl ReplayTables {
             ramps_jsonl: String::new(),
             alarms: CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability"),
             members: CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2"),
-            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min"),
+            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin"),
         }
     }
 
@@ -323,13 +323,15 @@ impl ReplayTables {
             format!("{:.3}", nc.band_scale[0]),
             format!("{:.3}", nc.band_scale[1]),
             format!("{:.3}", nc.band_scale[2]),
+            nc.sun_disk.map(|d| format!("{:.3}", d.clipped_share)).unwrap_or_default(),
+            format!("{:.3}", nc.irradiance.beam_thin),
         ]);
     }
 
     /// A rejected frame's row in `frames.csv`.
     fn add_rejected(&mut self, time: &DateTime<Utc>, name: &str, rej: &Rejection, dms: f64) {
         let mut row = vec![fmt_time(time), name.to_string(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
-        row.resize(16, String::new());
+        row.resize(18, String::new());
         self.fr.row(row);
     }
 

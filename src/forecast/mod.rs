@@ -111,6 +111,14 @@ pub struct IrradianceParams {
     /// against the 400 rows alone (about an hour there): pooled skill 0.11 → 0.14, largest |MBE|
     /// 114 → 60 W/m²; the broken cumulus unchanged.
     pub tune_window_s: f64,
+    /// Scale the thin-cloud beam transmittance (the configured value, and the tuning's prior) by how
+    /// often thin cloud around the sun let its disk show ([`crate::sundisk::ThinCloudVisibility`]):
+    /// a "thin" class that never shows the disk is the optically thick edge of a cloud deck, not a
+    /// veil. Needs a camera whose disk clips in clear sky, as `calibrate` requires.
+    pub beam_thin_from_sun_disk: bool,
+    /// Radius around the sun's computed direction read for its disk \[°\] (wider than the disk's
+    /// 0.27° so a calibration error of a few tenths of a degree still finds it).
+    pub sun_disk_radius_deg: f64,
 }
 
 impl Default for IrradianceParams {
@@ -159,6 +167,8 @@ impl Default for IrradianceParams {
             band_calibration_rate: 0.15,
             persistence_blend_rate: 0.0,
             tune_window_s: 900.0,
+            beam_thin_from_sun_disk: true,
+            sun_disk_radius_deg: 1.0,
         }
     }
 }
@@ -188,7 +198,8 @@ impl IrradianceParams {
         check_range(file, "irradiance.ensemble_diffuse_rel_sigma", self.ensemble_diffuse_rel_sigma, 0.0, 2.0)?;
         check_range(file, "irradiance.band_calibration_rate", self.band_calibration_rate, 0.0, 1.0)?;
         check_range(file, "irradiance.persistence_blend_rate", self.persistence_blend_rate, 0.0, 1.0)?;
-        check_range(file, "irradiance.tune_window_s", self.tune_window_s, 60.0, 86_400.0)
+        check_range(file, "irradiance.tune_window_s", self.tune_window_s, 60.0, 86_400.0)?;
+        check_range(file, "irradiance.sun_disk_radius_deg", self.sun_disk_radius_deg, 0.3, 5.0)
     }
 
     /// The cover that sets the cloud-scattered diffuse: thick cover plus `diffuse_thin_weight` times

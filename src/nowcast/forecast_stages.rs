@@ -43,12 +43,18 @@ impl SiteInputs<'_> {
 pub(super) struct ForecastStage {
     irradiance: IrradianceParams,
     tuner: Tuner,
+    /// The tuning's prior: the configured transmittances, the thin-cloud beam scaled by how often
+    /// thin cloud around the sun let its disk show ([`crate::sundisk::ThinCloudVisibility`]).
+    prior: IrradianceParams,
+    thin_visibility: crate::sundisk::ThinCloudVisibility,
+    /// Whether the tuning has given a solution since the start (or the last reset).
+    tuned: bool,
 }
 
 impl ForecastStage {
     /// Start from the site's configured transmittances.
     pub(super) fn new(configured: IrradianceParams) -> ForecastStage {
-        ForecastStage { irradiance: configured, tuner: Tuner::default() }
+        ForecastStage { irradiance: configured, tuner: Tuner::default(), prior: configured, thin_visibility: Default::default(), tuned: false }
     }
 
     /// The transmittances in use.
@@ -61,12 +67,31 @@ impl ForecastStage {
         self.tuner.len()
     }
 
+    /// Record what the sun's disk showed through the cloud around it ([`crate::sundisk`]) and set
+    /// the thin-cloud beam transmittance of the prior (and, until the tuning has a solution, of the
+    /// transmittances in use) from `configured` and the record.
+    pub(super) fn observe_sun(&mut self, configured: &IrradianceParams, seen: Option<crate::sundisk::SunThroughCloud>) {
+        if !configured.beam_thin_from_sun_disk {
+            return;
+        }
+        if let Some(o) = seen {
+            self.thin_visibility.observe(o);
+        }
+        self.prior.beam_thin = configured.beam_thin * self.thin_visibility.beam_factor();
+        if !self.tuned {
+            self.irradiance.beam_thin = self.prior.beam_thin;
+        }
+    }
+
     /// Forget what the tuning learnt and go back to `configured`; returns whether anything was
     /// forgotten.
     pub(super) fn reset(&mut self, configured: IrradianceParams) -> bool {
         let tuned = !self.tuner.is_empty();
         self.tuner = Tuner::default();
         self.irradiance = configured;
+        self.prior = configured;
+        self.thin_visibility = Default::default();
+        self.tuned = false;
         tuned
     }
 
@@ -187,8 +212,9 @@ impl ForecastStage {
         for (x, y) in rows {
             self.tuner.push(*t, x, y, max_age_s);
         }
-        if let Some(p) = self.tuner.solve(&cx.site.file.irradiance) {
+        if let Some(p) = self.tuner.solve(&self.prior) {
             self.irradiance = p;
+            self.tuned = true;
         }
     }
 }

@@ -458,7 +458,10 @@ impl Nowcaster {
         let lut = self.map_stage.lut(cam, obstruction, &self.site.file.map, (cbh - cam_z).max(10.0));
         self.frame_qc.check_exposure(&frame.image, &lut, &self.site.file.qc)?;
         let t_qc = Clock::now();
+        let disk = crate::sundisk::observe(&frame.image, cam, obstruction, &sun, self.site.file.irradiance.sun_disk_radius_deg, self.site.file.segment.saturation_level);
         let (map, [cf, thin_cf]) = self.map_stage.build(&frame.image, &lut, &sun, &self.site.file.segment);
+        let seen = disk.and_then(|d| crate::sundisk::SunThroughCloud::read(d, &map, &lut, &sun));
+        self.forecast_stage.observe_sun(&self.site.file.irradiance, seen);
         let t_map = Clock::now();
         let dt_s = self.frame_qc.since_last_s(&frame.time);
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
@@ -503,6 +506,7 @@ impl Nowcaster {
             alarm_basis: self.alarm.basis().cloned(),
             irradiance: *self.forecast_stage.params(),
             band_scale: [300, 600, 900].map(|h| self.ensemble_stage.band_scale(h)),
+            sun_disk: disk,
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
     }

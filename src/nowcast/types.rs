@@ -156,6 +156,9 @@ pub struct Nowcast {
     /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
     /// until calibrated; see [`crate::forecast::BandWidening`]).
     pub band_scale: [f64; 3],
+    /// The sun's disk in this frame ([`crate::sundisk`]): `None` when it could not be read (sun
+    /// outside the image or behind the obstruction mask).
+    pub sun_disk: Option<crate::sundisk::SunDisk>,
     /// Stage timings.
     pub times: StageTimes,
 }

@@ -1,0 +1,290 @@
+//! The sun disk's visibility in a frame: a measurement of the direct beam along the camera's own
+//! line of sight to the sun.
+//!
+//! # Method
+//! A sky camera exposed for the sky clips the sun's disk whenever the direct beam reaches it: the
+//! disk's radiance is several orders of magnitude above the sky's, so even a small fraction of it
+//! saturates every channel (`calibrate` finds the sun by exactly that clipping on a clear day). The
+//! disk is therefore *hidden* when most pixels within `sun_disk_radius_deg` of the sun's computed
+//! direction are not clipped: the cloud in front of the sun then passes next to none of the beam
+//! (an optical depth of a few or more; common practice, no source). A visible disk says only that
+//! some beam passes, not how much, so it is not used as a measurement of the transmittance.
+//!
+//! The engine uses the disk to tell what the segmentation's *thin* class is in this sky. Thin cloud
+//! (low red/blue contrast) is either a veil that passes much of the beam or the optically thick,
+//! greyish edge of a cloud deck that passes none; the colour cannot tell them apart, the disk can.
+//! Whenever the known cells within [`SUN_RING_DEG`] of the sun are mostly cloud, and mostly thin,
+//! the frame records whether the disk showed ([`SunThroughCloud`]). The thin-cloud beam
+//! transmittance is then the configured one (which assumes a veil) times the share of those frames
+//! in which the disk showed, over the last [`ThinCloudVisibility::WINDOW`] of them, with
+//! [`ThinCloudVisibility::PRIOR_FRAMES`] pseudo-frames in which it did (so that a few frames cannot
+//! take it to zero): the probability that the beam gets through, times what it keeps when it does.
+//! Pyranometers measure GHI only, which leaves the split between beam through cloud and
+//! cloud-scattered diffuse free (both explain GHI); the disk decides the beam side of it.
+
+use crate::camera::Camera;
+use crate::sun::SunPosition;
+
+/// What the frame shows at the sun's disk.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SunDisk {
+    /// Share of the disk's open-sky pixels with every channel clipped.
+    pub clipped_share: f64,
+    /// Open-sky pixels within the disk radius that were read.
+    pub pixels: usize,
+}
+
+impl SunDisk {
+    /// Whether the disk is hidden: fewer than half its pixels clipped.
+    pub fn hidden(&self) -> bool {
+        self.clipped_share < 0.5
+    }
+}
+
+/// Fewest open-sky pixels within the disk radius for an observation.
+pub const MIN_DISK_PIXELS: usize = 5;
+
+/// Read the sun's disk: the pixels within `radius_deg` of the sun's direction that see open sky
+/// (inside the lens field, not obstructed: `obstruction` > 127 is open, as for
+/// [`Camera::sky_mask`]), and the share of them whose three channels are all at least
+/// `saturation_level`. `None` when the sun is below the horizon, outside the image, or fewer than
+/// [`MIN_DISK_PIXELS`] open pixels lie within the radius (a mast in front of the sun, or a frame
+/// too coarse for the radius).
+pub fn observe(image: &image::RgbImage, cam: &Camera, obstruction: Option<&image::GrayImage>, sun: &SunPosition, radius_deg: f64, saturation_level: u8) -> Option<SunDisk> {
+    if sun.apparent_zenith_rad >= std::f64::consts::FRAC_PI_2 || image.width() != cam.width_px || image.height() != cam.height_px {
+        return None;
+    }
+    let d_sun = crate::sun::direction_enu(sun.apparent_zenith_rad, sun.azimuth_rad);
+    let (sx, sy) = cam.project_enu(d_sun)?;
+    // Pixels per radian near the sun, taken generously so the search box holds the whole disk: the
+    // tangential scale `f g(θ) / sin θ` of the fisheye lenses stays within 1.5 f below 90°, the
+    // radial one is `f g'(θ)`.
+    let theta = cam.projection.inverse_radial((sx - cam.cx_px).hypot(sy - cam.cy_px) / cam.f_px).unwrap_or(0.0);
+    let scale = 1.5 * cam.f_px * cam.projection.radial_derivative(theta.min(cam.max_field_angle_rad)).max(1.0);
+    let radius_rad = radius_deg.to_radians();
+    let reach = (scale * radius_rad).ceil() as i64 + 1;
+    let cos_max = radius_rad.cos();
+    let (mut n, mut clipped) = (0usize, 0usize);
+    let (cx, cy) = (sx.round() as i64, sy.round() as i64);
+    for y in (cy - reach).max(0)..=(cy + reach).min(cam.height_px as i64 - 1) {
+        for x in (cx - reach).max(0)..=(cx + reach).min(cam.width_px as i64 - 1) {
+            let Some(d) = cam.unproject_enu(x as f64, y as f64) else { continue };
+            if d[0] * d_sun[0] + d[1] * d_sun[1] + d[2] * d_sun[2] < cos_max {
+                continue;
+            }
+            if obstruction.is_some_and(|m| m.get_pixel_checked(x as u32, y as u32).map(|p| p.0[0] <= 127).unwrap_or(true)) {
+                continue;
+            }
+            n += 1;
+            let p = image.get_pixel(x as u32, y as u32).0;
+            clipped += (p[0] >= saturation_level && p[1] >= saturation_level && p[2] >= saturation_level) as usize;
+        }
+    }
+    (n >= MIN_DISK_PIXELS).then(|| SunDisk { clipped_share: clipped as f64 / n as f64, pixels: n })
+}
+
+/// Angle from the sun \[°\] within which the map's known cells say what cloud the sun is in.
+pub const SUN_RING_DEG: f32 = 10.0;
+
+/// Fewest known map cells within [`SUN_RING_DEG`] of the sun for a record.
+pub const MIN_RING_CELLS: usize = 8;
+
+/// A frame in which the sun sat in mostly thin cloud, and whether its disk showed.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SunThroughCloud {
+    /// Whether the disk was hidden.
+    pub hidden: bool,
+    /// Share of the known cells within [`SUN_RING_DEG`] of the sun that are cloud (thin or thick).
+    pub cloud_share: f64,
+    /// Share of those cloudy cells that are thin.
+    pub thin_share: f64,
+}
+
+impl SunThroughCloud {
+    /// The record of one frame: `None` unless at least [`MIN_RING_CELLS`] of the map's known cells
+    /// lie within [`SUN_RING_DEG`] of the sun (the glare's unknown cells do not count), at least
+    /// half of them cloudy and at least half of the cloudy ones thin.
+    pub fn read(disk: SunDisk, map: &crate::cloudmap::CloudMap, lut: &crate::cloudmap::Lut, sun: &SunPosition) -> Option<SunThroughCloud> {
+        use crate::segment::Class;
+        let d = sun.direction_enu().map(|v| v as f32);
+        let cos_ring = SUN_RING_DEG.to_radians().cos();
+        let (mut known, mut thin, mut thick) = (0usize, 0usize, 0usize);
+        for (k, c) in map.class.iter().enumerate() {
+            let Some(u) = lut.dir.get(k) else { break };
+            if u[0] * d[0] + u[1] * d[1] + u[2] * d[2] < cos_ring {
+                continue;
+            }
+            match Class::from_u8(*c) {
+                Class::Unknown => continue,
+                Class::Clear => {}
+                Class::Thin => thin += 1,
+                Class::Thick => thick += 1,
+            }
+            known += 1;
+        }
+        let cloudy = thin + thick;
+        (known >= MIN_RING_CELLS && 2 * cloudy >= known && 2 * thin >= cloudy).then(|| SunThroughCloud {
+            hidden: disk.hidden(),
+            cloud_share: cloudy as f64 / known as f64,
+            thin_share: thin as f64 / cloudy as f64,
+        })
+    }
+}
+
+/// The recent frames in which the sun sat in mostly thin cloud ([`SunThroughCloud`]): how often its
+/// disk showed.
+#[derive(Debug, Clone, Default)]
+pub struct ThinCloudVisibility {
+    hidden: std::collections::VecDeque<bool>,
+}
+
+impl ThinCloudVisibility {
+    /// Records kept (at one frame every 30 s, an hour of thin cloud at the sun).
+    pub const WINDOW: usize = 120;
+    /// Pseudo-records in which the disk showed (the configured transmittance's own weight).
+    pub const PRIOR_FRAMES: f64 = 4.0;
+
+    /// Add a frame's record.
+    pub fn observe(&mut self, o: SunThroughCloud) {
+        self.hidden.push_back(o.hidden);
+        while self.hidden.len() > Self::WINDOW {
+            self.hidden.pop_front();
+        }
+    }
+
+    /// Records held.
+    pub fn len(&self) -> usize {
+        self.hidden.len()
+    }
+
+    /// No records held.
+    pub fn is_empty(&self) -> bool {
+        self.hidden.is_empty()
+    }
+
+    /// Factor on the configured thin-cloud beam transmittance: the share of records in which the
+    /// disk showed, with [`Self::PRIOR_FRAMES`] pseudo-records in which it did (1 with none).
+    pub fn beam_factor(&self) -> f64 {
+        let shown = self.hidden.iter().filter(|h| !**h).count() as f64;
+        (shown + Self::PRIOR_FRAMES) / (self.hidden.len() as f64 + Self::PRIOR_FRAMES)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn sun_at(zenith_deg: f64, azimuth_deg: f64) -> SunPosition {
+        SunPosition { zenith_rad: zenith_deg.to_radians(), apparent_zenith_rad: zenith_deg.to_radians(), azimuth_rad: azimuth_deg.to_radians(), earth_sun_distance_au: 1.0 }
+    }
+
+    /// A frame with a clipped disc drawn at the sun's pixel (radius in degrees through the camera).
+    fn frame_with_disc(cam: &Camera, sun: &SunPosition, disc_deg: f64, level: u8) -> image::RgbImage {
+        let d_sun = crate::sun::direction_enu(sun.apparent_zenith_rad, sun.azimuth_rad);
+        image::RgbImage::from_fn(cam.width_px, cam.height_px, |x, y| match cam.unproject_enu(x as f64, y as f64) {
+            Some(d) if (d[0] * d_sun[0] + d[1] * d_sun[1] + d[2] * d_sun[2]).clamp(-1.0, 1.0).acos().to_degrees() <= disc_deg => image::Rgb([level; 3]),
+            _ => image::Rgb([90, 120, 180]),
+        })
+    }
+
+    #[test]
+    fn a_clipped_disc_is_visible_and_a_grey_one_hidden() {
+        let cam = Camera::ideal(512);
+        let sun = sun_at(40.0, 135.0);
+        let seen = observe(&frame_with_disc(&cam, &sun, 2.0, 255), &cam, None, &sun, 1.0, 250).unwrap();
+        assert!(seen.clipped_share > 0.95 && !seen.hidden(), "{seen:?}");
+        assert!(seen.pixels >= MIN_DISK_PIXELS);
+        // The same disc under cloud: bright grey, not clipped.
+        let behind = observe(&frame_with_disc(&cam, &sun, 2.0, 235), &cam, None, &sun, 1.0, 250).unwrap();
+        assert!(behind.clipped_share < 0.05 && behind.hidden(), "{behind:?}");
+    }
+
+    #[test]
+    fn a_disc_away_from_the_computed_sun_does_not_count() {
+        let cam = Camera::ideal(512);
+        let sun = sun_at(40.0, 135.0);
+        // The clipped disc is drawn 5° away from where the sun is computed to be.
+        let elsewhere = frame_with_disc(&cam, &sun_at(45.0, 135.0), 1.5, 255);
+        assert!(observe(&elsewhere, &cam, None, &sun, 1.0, 250).unwrap().hidden());
+    }
+
+    #[test]
+    fn an_obstructed_or_set_sun_gives_no_observation() {
+        let cam = Camera::ideal(512);
+        let sun = sun_at(40.0, 135.0);
+        let img = frame_with_disc(&cam, &sun, 2.0, 255);
+        let mast = image::GrayImage::from_pixel(512, 512, image::Luma([0]));
+        assert_eq!(observe(&img, &cam, Some(&mast), &sun, 1.0, 250), None);
+        assert_eq!(observe(&img, &cam, None, &sun_at(95.0, 135.0), 1.0, 250), None);
+        // A frame of the wrong size is not read.
+        assert_eq!(observe(&image::RgbImage::new(100, 100), &cam, None, &sun, 1.0, 250), None);
+    }
+
+    #[test]
+    fn thin_cloud_that_never_shows_the_disk_passes_little_beam() {
+        let rec = |hidden| SunThroughCloud { hidden, cloud_share: 0.9, thin_share: 0.8 };
+        let mut v = ThinCloudVisibility::default();
+        assert_eq!(v.beam_factor(), 1.0, "no records: the configured transmittance");
+        for _ in 0..36 {
+            v.observe(rec(true));
+        }
+        // 4 pseudo-records shown out of 40.
+        assert!((v.beam_factor() - 0.1).abs() < 1e-12, "{}", v.beam_factor());
+        // A veil: the disk shows every time.
+        let mut veil = ThinCloudVisibility::default();
+        for _ in 0..36 {
+            veil.observe(rec(false));
+        }
+        assert_eq!(veil.beam_factor(), 1.0);
+        // The window forgets: after WINDOW records of a veil the deck's records are gone.
+        for _ in 0..ThinCloudVisibility::WINDOW {
+            v.observe(rec(false));
+        }
+        assert_eq!(v.len(), ThinCloudVisibility::WINDOW);
+        assert_eq!(v.beam_factor(), 1.0);
+    }
+
+    /// The record reads the map's cells around the sun: a frame painted with thin cloud within 12°
+    /// of the sun gives a record whose disk is hidden; painted clear blue, none (the sun is not
+    /// in cloud); with a clipped disc inside the grey, a record whose disk showed.
+    #[test]
+    fn the_record_reads_the_cloud_around_the_sun() {
+        use crate::cloudmap::{Grid, Lut, MapParams, build_map};
+        use crate::segment::{Reference, SegmentParams};
+        let cam = Camera::ideal(512);
+        let lut = Lut::build(&cam, None, Grid::new(&MapParams { cells: 256, ..Default::default() }, 1000.0));
+        let sun = sun_at(35.0, 120.0);
+        let d_sun = sun.direction_enu();
+        let paint = |around: [u8; 3], disc: Option<f64>| {
+            image::RgbImage::from_fn(512, 512, |x, y| {
+                let Some(d) = cam.unproject_enu(x as f64, y as f64) else { return image::Rgb([0, 0, 0]) };
+                let g = (d[0] * d_sun[0] + d[1] * d_sun[1] + d[2] * d_sun[2]).clamp(-1.0, 1.0).acos().to_degrees();
+                if disc.is_some_and(|r| g <= r) {
+                    image::Rgb([255; 3])
+                } else if g <= 12.0 {
+                    image::Rgb(around)
+                } else {
+                    image::Rgb([70, 110, 200])
+                }
+            })
+        };
+        let (sp, reference) = (SegmentParams::default(), Reference::default());
+        // A colour the segmentation calls thin cloud 6° from this sun.
+        let fr = reference.for_frame(&sp, std::iter::empty());
+        let geom = crate::segment::PixelGeom { z_deg: 35.0, gamma_deg: 6.0 };
+        let thin = (60u8..200).map(|r| [r, r, 200]).find(|c| fr.classify(*c, geom).1 == crate::segment::Class::Thin).expect("a thin colour");
+        let record = |img: &image::RgbImage| {
+            let map = build_map(img, &lut, Some(d_sun.map(|v| v as f32)), &sp, &reference);
+            let disk = observe(img, &cam, None, &sun, 1.0, sp.saturation_level).unwrap();
+            SunThroughCloud::read(disk, &map, &lut, &sun)
+        };
+        let clear = paint([70, 110, 200], None);
+        assert_eq!(record(&clear), None, "clear sky at the sun: no record");
+        let deck = paint(thin, None);
+        let hidden = record(&deck).expect("cloud at the sun: a record");
+        assert!(hidden.hidden && hidden.cloud_share > 0.9, "{hidden:?}");
+        let veil = paint(thin, Some(2.0));
+        let shown = record(&veil).expect("cloud at the sun: a record");
+        assert!(!shown.hidden, "{shown:?}");
+    }
+}
