@@ -60,20 +60,25 @@ impl Plane {
         }
         let w = n + 1;
         let (mut s1, mut s2, mut cnt) = (pool::take_f64(), pool::take_f64(), pool::take_u32());
-        s1.resize(w * w, 0.0);
-        s2.resize(w * w, 0.0);
-        cnt.resize(w * w, 0);
-        // Row prefix sums first (six independent running sums: two rows at a time, so the adds'
-        // latency overlaps), then each table row adds the one above (vectorizes). Rows are taken
-        // as slices of length n, so the inner loops carry no bounds checks.
+        for t in [&mut s1, &mut s2] {
+            t.reserve(w * w);
+            t.extend(std::iter::repeat_n(0.0, w));
+        }
+        cnt.reserve(w * w);
+        cnt.extend(std::iter::repeat_n(0, w));
+        // Each table row is its row's prefix sums plus the table row above, built in one pass and
+        // appended (no zero-fill first, no second pass): the same additions of the same operands
+        // as prefix sums first and a pass adding each row's above after. Two rows at a time (six
+        // independent running sums, so the adds' latency overlaps), into scratch rows, on row
+        // slices of length n (no bounds checks).
+        let mut rows = [(); 2].map(|_| (vec![0f64; w], vec![0f64; w], vec![0u32; w]));
         let mut j = 0;
         while j + 1 < n {
             let (va, vb) = (&v[j * n..j * n + n], &v[(j + 1) * n..(j + 1) * n + n]);
             let (ma, mb) = (&m[j * n..j * n + n], &m[(j + 1) * n..(j + 1) * n + n]);
-            let (s1a, s1b) = s1[(j + 1) * w..(j + 3) * w].split_at_mut(w);
-            let (s2a, s2b) = s2[(j + 1) * w..(j + 3) * w].split_at_mut(w);
-            let (ca, cb) = cnt[(j + 1) * w..(j + 3) * w].split_at_mut(w);
-            let (s1a, s1b, s2a, s2b, ca, cb) = (&mut s1a[1..w], &mut s1b[1..w], &mut s2a[1..w], &mut s2b[1..w], &mut ca[1..w], &mut cb[1..w]);
+            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
+            let [(ra1, ra2, rac), (rb1, rb2, rbc)] = &mut rows;
+            let (ra1, ra2, rac, rb1, rb2, rbc) = (&mut ra1[1..w], &mut ra2[1..w], &mut rac[1..w], &mut rb1[1..w], &mut rb2[1..w], &mut rbc[1..w]);
             let (mut a1, mut a2, mut ac) = (0f64, 0f64, 0u32);
             let (mut b1, mut b2, mut bc) = (0f64, 0f64, 0u32);
             for i in 0..n {
@@ -84,42 +89,40 @@ impl Plane {
                 b1 += y;
                 b2 += y * y;
                 bc += mb[i] as u32;
-                s1a[i] = a1;
-                s2a[i] = a2;
-                ca[i] = ac;
-                s1b[i] = b1;
-                s2b[i] = b2;
-                cb[i] = bc;
+                let (t1, t2, tc) = (a1 + u1[i], a2 + u2[i], ac + uc[i]);
+                ra1[i] = t1;
+                ra2[i] = t2;
+                rac[i] = tc;
+                rb1[i] = b1 + t1;
+                rb2[i] = b2 + t2;
+                rbc[i] = bc + tc;
+            }
+            for (a, b, c) in &rows {
+                s1.extend_from_slice(a);
+                s2.extend_from_slice(b);
+                cnt.extend_from_slice(c);
             }
             j += 2;
         }
         if j < n {
             let (vr, mr) = (&v[j * n..j * n + n], &m[j * n..j * n + n]);
-            let (t1, t2, tc) = (&mut s1[(j + 1) * w + 1..(j + 2) * w], &mut s2[(j + 1) * w + 1..(j + 2) * w], &mut cnt[(j + 1) * w + 1..(j + 2) * w]);
+            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
+            let (t1, t2, tc) = &mut rows[0];
+            let (t1, t2, tc) = (&mut t1[1..w], &mut t2[1..w], &mut tc[1..w]);
             let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
             for i in 0..n {
                 let x = vr[i] as f64;
                 r1 += x;
                 r2 += x * x;
                 rc += mr[i] as u32;
-                t1[i] = r1;
-                t2[i] = r2;
-                tc[i] = rc;
+                t1[i] = r1 + u1[i];
+                t2[i] = r2 + u2[i];
+                tc[i] = rc + uc[i];
             }
-        }
-        for j in 1..=n {
-            let (above, row) = s1.split_at_mut(j * w);
-            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
-                *r += a;
-            }
-            let (above, row) = s2.split_at_mut(j * w);
-            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
-                *r += a;
-            }
-            let (above, row) = cnt.split_at_mut(j * w);
-            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
-                *r += a;
-            }
+            let (a, b, c) = &rows[0];
+            s1.extend_from_slice(a);
+            s2.extend_from_slice(b);
+            cnt.extend_from_slice(c);
         }
         Plane { n, v, m, s1, s2, cnt }
     }
