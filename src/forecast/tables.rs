@@ -128,30 +128,34 @@ impl TransmittanceMap {
         let unit = SHARE_UNIT as i32;
         let step: [[i32; FEATURES + 1]; 4] = [[0, 0, 0, 0, 0], [unit, 0, 0, 0, 1], [0, unit, 0, 0, 1], [0, 0, unit, 0, 1]];
         let quantise = |v: f32| round_i32(v as f64 * SHARE_UNIT);
+        // Each row is built in a scratch row from row slices (no bounds checks, no capacity check
+        // per cell) and appended.
         let mut sat = pool::take_sat();
         sat.reserve(w * w);
         sat.extend(std::iter::repeat_n([0i32; FEATURES + 1], w));
+        let mut row = vec![[0i32; FEATURES + 1]; w];
         for j in 0..n {
             let mut rs = [0i32; FEATURES + 1];
-            sat.push([0; FEATURES + 1]);
+            let (up, out) = (&sat[j * w + 1..(j + 1) * w], &mut row[1..w]);
+            let (cls, st) = (&class[j * n..j * n + n], &state[j * n..j * n + n]);
             for i in 0..n {
-                let k = j * n + i;
-                let add = if state[k] >= FILLED {
-                    let f = filled[(state[k] - FILLED) as usize];
+                let add = if st[i] >= FILLED {
+                    let f = filled[(st[i] - FILLED) as usize];
                     [quantise(f[0]), quantise(f[1]), quantise(f[2]), quantise(f[3]), 1]
                 } else {
-                    let mut a = step[(class[k] & 3) as usize];
+                    let mut a = step[(cls[i] & 3) as usize];
                     if a[1] + a[2] > 0 {
-                        a[3] = quantise(bright(k));
+                        a[3] = quantise(bright(j * n + i));
                     }
                     a
                 };
                 for q in 0..=FEATURES {
                     rs[q] += add[q];
                 }
-                let up = sat[j * w + i + 1];
-                sat.push(std::array::from_fn(|q| up[q] + rs[q]));
+                let u = up[i];
+                out[i] = std::array::from_fn(|q| u[q] + rs[q]);
             }
+            sat.extend_from_slice(&row);
         }
         pool::give_u32(state);
         pool::give_shares(filled);
