@@ -181,9 +181,11 @@ impl TransmittanceMap {
         }
         // Rounding half up by truncation through i64: every negative bound clamps to 0 either way,
         // and on baseline x86-64 `f64::round` is a library call and a float-to-usize cast a slow
-        // instruction sequence.
-        let lo = |c: f64| ((c - r + 0.5).max(0.0) as i64 as usize).min(self.n);
-        let hi = |c: f64| ((c + r + 1.5).max(0.0) as i64 as usize).min(self.n);
+        // instruction sequence. The clamp is on the integer (a negative or NaN value truncates to
+        // at most 0 and clamps to 0, as `max(0.0)` first did, without its NaN handling).
+        let top = self.n as i64;
+        let lo = |c: f64| ((c - r + 0.5) as i64).clamp(0, top) as usize;
+        let hi = |c: f64| ((c + r + 1.5) as i64).clamp(0, top) as usize;
         let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
         if x1 <= x0 || y1 <= y0 {
             return None;
