@@ -70,12 +70,14 @@ fn run(c: &mut Criterion, pool: &rayon::ThreadPool, s: &Scene, site: &Site, fram
     g.bench_function("motion", |b| {
         b.iter(|| pool.install(|| measure_with((&earlier.map, &earlier_features), (&last.map, &MapFeatures::new(&last.map)), dt_s, &s.site.motion, &priors)))
     });
-    // JPEG decoding of a frame as the cameras write them: by the general decoder, by the intake
-    // (the system libjpeg when built with it), at 1/2 scale, and at 1/2 by the pure-Rust fallback.
+    // JPEG decoding of a frame as the cameras write them: by the general decoder (`image` crate),
+    // by the intake (whole: the same decoder called directly, its buffer given back as replay
+    // does), at 1/2 scale (the system libjpeg when built with it), and at 1/2 by the pure-Rust
+    // fallback.
     let jpeg = nephocast::synth::encode_jpeg(&frames[FRAMES - 1].image, 85);
     let whole = nephocast::intake::IntakeOptions::default();
-    g.bench_function("decode (general decoder)", |b| b.iter(|| nephocast::intake::decode(&jpeg, nephocast::intake::Format::Jpeg, &whole).expect("decodes")));
-    g.bench_function("decode (intake)", |b| b.iter(|| nephocast::intake::from_bytes(&jpeg, &whole).expect("decodes")));
+    g.bench_function("decode (general decoder)", |b| b.iter(|| nephocast::intake::decode_general(&jpeg, nephocast::intake::Format::Jpeg, &whole).expect("decodes")));
+    g.bench_function("decode (intake)", |b| b.iter(|| nephocast::intake::recycle(nephocast::intake::from_bytes(&jpeg, &whole).expect("decodes"))));
     g.bench_function("decode 1/2 (intake)", |b| b.iter(|| nephocast::intake::from_bytes(&jpeg, &whole.reduced(2)).expect("decodes")));
     g.bench_function("decode 1/2 (pure Rust)", |b| b.iter(|| nephocast::intake::decode_jpeg_reduced_rust(&jpeg, 2, &whole).expect("decodes")));
     // A whole step (QC, map, motion, forecast, ensemble), on a fresh engine fed the earlier frames.

@@ -31,7 +31,8 @@ pub struct BenchReport {
     pub decode_reduction: u32,
     /// Median JPEG decode time of the engine's intake, at its reduction \[ms\].
     pub decode_ms: f64,
-    /// Median JPEG decode time of whole frames by the general decoder (`image` crate) \[ms\].
+    /// Median JPEG decode time of whole frames by the general decoder (`image` crate, fresh
+    /// buffers) \[ms\].
     pub decode_whole_ms: f64,
     /// Median time of QC + map + motion + central forecast per frame \[ms\].
     pub step_ms_median: f64,
@@ -142,7 +143,7 @@ pub fn run_with(o: &BenchOptions) -> Result<BenchReport, BenchError> {
     // Whole-frame decoding by the general decoder, for comparison (outside the timed loop).
     for j in jpegs.iter().take(20) {
         let td = Instant::now();
-        let img = crate::intake::decode(j, crate::intake::Format::Jpeg, &crate::intake::IntakeOptions::default()).map_err(|e| BenchError::Setup(e.to_string()))?;
+        let img = crate::intake::decode_general(j, crate::intake::Format::Jpeg, &crate::intake::IntakeOptions::default()).map_err(|e| BenchError::Setup(e.to_string()))?;
         dec_whole.push(td.elapsed().as_secs_f64() * 1000.0);
         std::hint::black_box(img);
     }
@@ -153,7 +154,9 @@ pub fn run_with(o: &BenchOptions) -> Result<BenchReport, BenchError> {
             // The engine's own intake (structure check and decode), as in replay and live mode.
             let img = crate::intake::from_bytes(j, &nc.intake_options()).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
             dec.push(td.elapsed().as_secs_f64() * 1000.0);
-            let n = nc.step(&Frame { time: *t, image: img }).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
+            let frame = Frame { time: *t, image: img };
+            let n = nc.step(&frame).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
+            crate::intake::recycle(frame.image);
             let ts = n.times;
             step.push(ts.qc_ms + ts.map_ms + ts.motion_ms + ts.forecast_ms);
             full.push(ts.qc_ms + ts.map_ms + ts.motion_ms + ts.forecast_ms + ts.ensemble_ms);

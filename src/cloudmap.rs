@@ -318,10 +318,12 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         let i = p as usize * 3;
         let j = i + 3 * w;
         let (fx, fy) = (fx as u32, fy as u32);
+        // The two pixels of each row as one slice (two bounds checks, not twelve).
+        let (t, b) = (&raw[i..i + 6], &raw[j..j + 6]);
         let mut out = [0u8; 3];
         for (c, o) in out.iter_mut().enumerate() {
-            let top = raw[i + c] as u32 * (256 - fx) + raw[i + 3 + c] as u32 * fx;
-            let bottom = raw[j + c] as u32 * (256 - fx) + raw[j + 3 + c] as u32 * fx;
+            let top = t[c] as u32 * (256 - fx) + t[3 + c] as u32 * fx;
+            let bottom = b[c] as u32 * (256 - fx) + b[3 + c] as u32 * fx;
             *o = ((top * (256 - fy) + bottom * fy + 32768) >> 16) as u8;
         }
         out

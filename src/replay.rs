@@ -208,6 +208,10 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                     tables.add_rejected(&f.time, &name, &rej, dms);
                 }
             }
+            // The frame's buffer goes back for the reader's next decode.
+            if let Ok(fr) = frame {
+                crate::intake::recycle(fr.image);
+            }
             bar.inc(1);
         }
         Ok(())

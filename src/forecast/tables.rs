@@ -127,31 +127,35 @@ impl TransmittanceMap {
         // Row by row, appended (no zero-fill first): the table is 1 MB, the pass memory-bound.
         let unit = SHARE_UNIT as i32;
         let step: [[i32; FEATURES + 1]; 4] = [[0, 0, 0, 0, 0], [unit, 0, 0, 0, 1], [0, unit, 0, 0, 1], [0, 0, unit, 0, 1]];
-        let quantise = |v: f32| (v as f64 * SHARE_UNIT).round() as i32;
+        let quantise = |v: f32| round_i32(v as f64 * SHARE_UNIT);
+        // Each row is built in a scratch row from row slices (no bounds checks, no capacity check
+        // per cell) and appended.
         let mut sat = pool::take_sat();
         sat.reserve(w * w);
         sat.extend(std::iter::repeat_n([0i32; FEATURES + 1], w));
+        let mut row = vec![[0i32; FEATURES + 1]; w];
         for j in 0..n {
             let mut rs = [0i32; FEATURES + 1];
-            sat.push([0; FEATURES + 1]);
+            let (up, out) = (&sat[j * w + 1..(j + 1) * w], &mut row[1..w]);
+            let (cls, st) = (&class[j * n..j * n + n], &state[j * n..j * n + n]);
             for i in 0..n {
-                let k = j * n + i;
-                let add = if state[k] >= FILLED {
-                    let f = filled[(state[k] - FILLED) as usize];
+                let add = if st[i] >= FILLED {
+                    let f = filled[(st[i] - FILLED) as usize];
                     [quantise(f[0]), quantise(f[1]), quantise(f[2]), quantise(f[3]), 1]
                 } else {
-                    let mut a = step[(class[k] & 3) as usize];
+                    let mut a = step[(cls[i] & 3) as usize];
                     if a[1] + a[2] > 0 {
-                        a[3] = quantise(bright(k));
+                        a[3] = quantise(bright(j * n + i));
                     }
                     a
                 };
                 for q in 0..=FEATURES {
                     rs[q] += add[q];
                 }
-                let up = sat[j * w + i + 1];
-                sat.push(std::array::from_fn(|q| up[q] + rs[q]));
+                let u = up[i];
+                out[i] = std::array::from_fn(|q| u[q] + rs[q]);
             }
+            sat.extend_from_slice(&row);
         }
         pool::give_u32(state);
         pool::give_shares(filled);
@@ -166,7 +170,10 @@ impl TransmittanceMap {
     /// Mean features (clear, thin and thick shares, brightness feature) over the box of half-width
     /// `r` cells around continuous cell coordinates; `None` when the box holds no known cell or its
     /// centre is off the map.
-    #[inline]
+    ///
+    /// Always inlined (as is [`TransmittanceMap::box_mean_with`]): the forecast and every ensemble
+    /// member call it for each point and horizon, and as a call it cost a third more instructions.
+    #[inline(always)]
     pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; FEATURES]> {
         let n = self.n as f64;
         if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
@@ -174,9 +181,11 @@ impl TransmittanceMap {
         }
         // Rounding half up by truncation through i64: every negative bound clamps to 0 either way,
         // and on baseline x86-64 `f64::round` is a library call and a float-to-usize cast a slow
-        // instruction sequence.
-        let lo = |c: f64| ((c - r + 0.5).max(0.0) as i64 as usize).min(self.n);
-        let hi = |c: f64| ((c + r + 1.5).max(0.0) as i64 as usize).min(self.n);
+        // instruction sequence. The clamp is on the integer (a negative or NaN value truncates to
+        // at most 0 and clamps to 0, as `max(0.0)` first did, without its NaN handling).
+        let top = self.n as i64;
+        let lo = |c: f64| ((c - r + 0.5) as i64).clamp(0, top) as usize;
+        let hi = |c: f64| ((c + r + 1.5) as i64).clamp(0, top) as usize;
         let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
         if x1 <= x0 || y1 <= y0 {
             return None;
@@ -198,7 +207,7 @@ impl TransmittanceMap {
 
     /// Mean transmittance over a box for given coefficients ([`IrradianceParams::beams`]: clear,
     /// thin, thick, brightness), never below 0.
-    #[inline]
+    #[inline(always)]
     pub fn box_mean_with(&self, cx: f64, cy: f64, r: f64, beams: [f64; FEATURES]) -> Option<f64> {
         self.box_shares(cx, cy, r).map(|s| (s[0] * beams[0] + s[1] * beams[1] + s[2] * beams[2] + s[3] * beams[3]).max(0.0))
     }
@@ -209,10 +218,37 @@ impl TransmittanceMap {
     }
 }
 
+/// `x.round() as i32` (half away from zero; NaN gives 0, values beyond `i32` saturate), without
+/// the library call `f64::round` is on baseline x86-64: the truncation toward zero is exact, and so
+/// is the remaining fraction for every `|x| < 2⁵²`; beyond that `x` is whole already.
+#[inline]
+fn round_i32(x: f64) -> i32 {
+    let t = x as i32;
+    let f = x - t as f64;
+    if t == i32::MAX || t == i32::MIN {
+        return t;
+    }
+    t + (f >= 0.5) as i32 - (f <= -0.5) as i32
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
     use crate::cloudmap::{Grid, MapParams};
+
+    /// The fast rounding against `f64::round` (common practice, no source: half away from zero).
+    #[test]
+    fn round_i32_matches_the_library_rounding() {
+        let mut xs = vec![0.0, -0.0, 0.5, -0.5, 1.5, -1.5, 2.5, -2.5, 0.49999999999999994, -0.49999999999999994, 1023.5, -1023.5, 1e9 + 0.5, f64::NAN, 3e9, -3e9, 2147483647.4, -2147483648.6];
+        for k in 0..20000u64 {
+            let h = crate::rng::hash64(k);
+            xs.push((h % 4_000_000) as f64 / 1024.0 - 1950.0);
+            xs.push(f32::from_bits((h >> 32) as u32 & 0x4fff_ffff) as f64 * if h & 1 == 0 { 1.0 } else { -1.0 });
+        }
+        for x in xs {
+            assert_eq!(round_i32(x), x.round() as i32, "{x}");
+        }
+    }
 
     #[test]
     fn box_mean_counts_only_known_cells() {

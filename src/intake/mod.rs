@@ -174,9 +174,10 @@ pub fn from_bytes(bytes: &[u8], opts: &IntakeOptions) -> Result<image::RgbImage,
     let (format, w, h) = check_complete(bytes)?;
     check_dimensions(w, h, opts)?;
     match (format, valid_reduction(opts.reduce)) {
-        // Whole frames by the general decoder. (Whole frames by the system's libjpeg, faster, moved
-        // the pixel values by its different inverse DCT and upsampling enough to turn one ramp of
-        // the slow synthetic scene: POD 0.80 → 0.78, its target 0.8.)
+        // Whole frames by the general decoder's JPEG decoder called directly (same pixels). (Whole
+        // frames by the system's libjpeg, faster, moved the pixel values by its different inverse
+        // DCT and upsampling enough to turn one ramp of the slow synthetic scene: POD 0.80 → 0.78,
+        // its target 0.8.)
         (_, 1) => decode(bytes, format, opts),
         (Format::Jpeg, r) => decode_jpeg_reduced_checked(bytes, (w, h), r, opts),
         (Format::Png, r) => decode(bytes, format, opts).map(|img| box_reduce(&img, r)),
@@ -462,6 +463,72 @@ fn png_structure(b: &[u8]) -> Result<(u32, u32), Refusal> {
 /// # Errors
 /// Any decoder error, and the allocation limit ([`Refusal::TooManyPixels`]).
 pub fn decode(bytes: &[u8], format: Format, opts: &IntakeOptions) -> Result<image::RgbImage, Refusal> {
+    if format == Format::Jpeg
+        && let Some(img) = decode_jpeg_direct(bytes, opts)?
+    {
+        return Ok(img);
+    }
+    decode_general(bytes, format, opts)
+}
+
+/// Buffers of decoded frames given back ([`recycle`]) for the next whole-frame decode: a 1024²
+/// frame is 3 MB, and a fresh zeroed one each frame cost its zeroing and page faults. Shared by
+/// threads (replay decodes on a reader thread and steps on another).
+static FRAME_BUFFERS: std::sync::Mutex<Vec<Vec<u8>>> = std::sync::Mutex::new(Vec::new());
+
+/// Give a frame's pixels back once the engine is done with them, for a later decode to reuse.
+pub fn recycle(img: image::RgbImage) {
+    recycle_raw(img.into_raw());
+}
+
+/// A whole-frame JPEG decode by the decoder the `image` crate uses (`zune-jpeg`), called directly
+/// with the same options (lenient, RGB out), so the pixels are the general decoder's byte for byte
+/// (unit test `direct_jpeg_decode_gives_the_general_decoders_pixels`), into a recycled buffer and
+/// without the general path's copy of the input and second header parse. `None` for a colour space
+/// it does not take (grey, CMYK, …): the general decoder converts those.
+///
+/// # Errors
+/// Any decoder error, and the allocation limit ([`Refusal::TooManyPixels`]).
+fn decode_jpeg_direct(bytes: &[u8], opts: &IntakeOptions) -> Result<Option<image::RgbImage>, Refusal> {
+    use zune_jpeg::zune_core::colorspace::ColorSpace;
+    let options = zune_jpeg::zune_core::options::DecoderOptions::default().set_strict_mode(false).set_max_width(usize::MAX).set_max_height(usize::MAX);
+    let mut d = zune_jpeg::JpegDecoder::new_with_options(zune_jpeg::zune_core::bytestream::ZCursor::new(bytes), options);
+    let corrupt = |e: zune_jpeg::errors::DecodeErrors| Refusal::Corrupt(format!("decoder: {e}"));
+    d.decode_headers().map_err(corrupt)?;
+    if !matches!(d.input_colorspace(), Some(ColorSpace::YCbCr | ColorSpace::RGB)) {
+        return Ok(None);
+    }
+    d.set_options(d.options().jpeg_set_out_colorspace(ColorSpace::RGB));
+    let Some((w, h)) = d.dimensions() else { return Ok(None) };
+    let need = w as u64 * h as u64 * 3;
+    if need > opts.max_alloc_bytes {
+        return Err(Refusal::TooManyPixels(format!("decoder limit ({} bytes): {need} bytes needed", opts.max_alloc_bytes)));
+    }
+    check_dimensions(w as u32, h as u32, opts)?;
+    let mut buf = FRAME_BUFFERS.lock().ok().and_then(|mut p| p.pop()).unwrap_or_default();
+    // Every byte is written by the decoder; a recycled buffer of the same size is not cleared.
+    buf.resize(need as usize, 0);
+    if let Err(e) = d.decode_into(&mut buf) {
+        recycle_raw(buf);
+        return Err(corrupt(e));
+    }
+    Ok(image::RgbImage::from_raw(w as u32, h as u32, buf))
+}
+
+fn recycle_raw(v: Vec<u8>) {
+    if let Ok(mut pool) = FRAME_BUFFERS.lock()
+        && pool.len() < 4
+    {
+        pool.push(v);
+    }
+}
+
+/// Decode by the `image` crate's general decoders (PNG; JPEG in colour spaces other than YCbCr and
+/// RGB; and for comparison in the benchmark).
+///
+/// # Errors
+/// Any decoder error, and the allocation limit ([`Refusal::TooManyPixels`]).
+pub fn decode_general(bytes: &[u8], format: Format, opts: &IntakeOptions) -> Result<image::RgbImage, Refusal> {
     let fmt = match format {
         Format::Jpeg => image::ImageFormat::Jpeg,
         Format::Png => image::ImageFormat::Png,
@@ -499,6 +566,31 @@ mod tests {
         let mut out = vec![];
         img.write_to(&mut std::io::Cursor::new(&mut out), image::ImageFormat::Png).unwrap();
         out
+    }
+
+    /// The direct JPEG decode against the `image` crate's general decoder (the reference: the
+    /// engine's figures were recorded with it): the same pixels, byte for byte, also into a
+    /// recycled buffer of another frame's size and content.
+    #[test]
+    fn direct_jpeg_decode_gives_the_general_decoders_pixels() {
+        let o = IntakeOptions::default();
+        for (w, h, q) in [(64u32, 48u32, 90u8), (333, 257, 85), (256, 256, 75)] {
+            let img = image::RgbImage::from_fn(w, h, |x, y| image::Rgb([(x * 7 % 256) as u8, ((x * y) % 251) as u8, (((x ^ y) * 3) % 256) as u8]));
+            let mut j = vec![];
+            image::codecs::jpeg::JpegEncoder::new_with_quality(&mut j, q).encode_image(&img).unwrap();
+            let direct = decode_jpeg_direct(&j, &o).unwrap().expect("YCbCr is decoded directly");
+            let general = decode_general(&j, Format::Jpeg, &o).unwrap();
+            assert_eq!(direct.dimensions(), general.dimensions());
+            assert!(direct.as_raw() == general.as_raw(), "{w}x{h} q{q}: pixels differ");
+            recycle(direct);
+            assert!(decode(&j, Format::Jpeg, &o).unwrap().as_raw() == general.as_raw());
+        }
+        // Grey JPEGs go through the general decoder's conversion.
+        let grey = image::GrayImage::from_fn(40, 30, |x, y| image::Luma([(x * 5 + y) as u8]));
+        let mut j = vec![];
+        image::codecs::jpeg::JpegEncoder::new_with_quality(&mut j, 90).encode_image(&grey).unwrap();
+        assert!(decode_jpeg_direct(&j, &o).unwrap().is_none());
+        assert_eq!(decode(&j, Format::Jpeg, &o).unwrap().dimensions(), (40, 30));
     }
 
     #[test]

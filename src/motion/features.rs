@@ -60,60 +60,69 @@ impl Plane {
         }
         let w = n + 1;
         let (mut s1, mut s2, mut cnt) = (pool::take_f64(), pool::take_f64(), pool::take_u32());
-        s1.resize(w * w, 0.0);
-        s2.resize(w * w, 0.0);
-        cnt.resize(w * w, 0);
-        // Row prefix sums first (six independent running sums: two rows at a time, so the adds'
-        // latency overlaps), then each table row adds the one above (vectorizes).
-        let prefix = |j: usize, s1: &mut [f64], s2: &mut [f64], cnt: &mut [u32]| {
-            let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
-            for i in 0..n {
-                let x = v[j * n + i] as f64;
-                r1 += x;
-                r2 += x * x;
-                rc += m[j * n + i] as u32;
-                s1[(j + 1) * w + i + 1] = r1;
-                s2[(j + 1) * w + i + 1] = r2;
-                cnt[(j + 1) * w + i + 1] = rc;
-            }
-        };
+        for t in [&mut s1, &mut s2] {
+            t.reserve(w * w);
+            t.extend(std::iter::repeat_n(0.0, w));
+        }
+        cnt.reserve(w * w);
+        cnt.extend(std::iter::repeat_n(0, w));
+        // Each table row is its row's prefix sums plus the table row above, built in one pass and
+        // appended (no zero-fill first, no second pass): the same additions of the same operands
+        // as prefix sums first and a pass adding each row's above after. Two rows at a time (six
+        // independent running sums, so the adds' latency overlaps), into scratch rows, on row
+        // slices of length n (no bounds checks).
+        let mut rows = [(); 2].map(|_| (vec![0f64; w], vec![0f64; w], vec![0u32; w]));
         let mut j = 0;
         while j + 1 < n {
+            let (va, vb) = (&v[j * n..j * n + n], &v[(j + 1) * n..(j + 1) * n + n]);
+            let (ma, mb) = (&m[j * n..j * n + n], &m[(j + 1) * n..(j + 1) * n + n]);
+            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
+            let [(ra1, ra2, rac), (rb1, rb2, rbc)] = &mut rows;
+            let (ra1, ra2, rac, rb1, rb2, rbc) = (&mut ra1[1..w], &mut ra2[1..w], &mut rac[1..w], &mut rb1[1..w], &mut rb2[1..w], &mut rbc[1..w]);
             let (mut a1, mut a2, mut ac) = (0f64, 0f64, 0u32);
             let (mut b1, mut b2, mut bc) = (0f64, 0f64, 0u32);
             for i in 0..n {
-                let (x, y) = (v[j * n + i] as f64, v[(j + 1) * n + i] as f64);
+                let (x, y) = (va[i] as f64, vb[i] as f64);
                 a1 += x;
                 a2 += x * x;
-                ac += m[j * n + i] as u32;
+                ac += ma[i] as u32;
                 b1 += y;
                 b2 += y * y;
-                bc += m[(j + 1) * n + i] as u32;
-                s1[(j + 1) * w + i + 1] = a1;
-                s2[(j + 1) * w + i + 1] = a2;
-                cnt[(j + 1) * w + i + 1] = ac;
-                s1[(j + 2) * w + i + 1] = b1;
-                s2[(j + 2) * w + i + 1] = b2;
-                cnt[(j + 2) * w + i + 1] = bc;
+                bc += mb[i] as u32;
+                let (t1, t2, tc) = (a1 + u1[i], a2 + u2[i], ac + uc[i]);
+                ra1[i] = t1;
+                ra2[i] = t2;
+                rac[i] = tc;
+                rb1[i] = b1 + t1;
+                rb2[i] = b2 + t2;
+                rbc[i] = bc + tc;
+            }
+            for (a, b, c) in &rows {
+                s1.extend_from_slice(a);
+                s2.extend_from_slice(b);
+                cnt.extend_from_slice(c);
             }
             j += 2;
         }
         if j < n {
-            prefix(j, &mut s1, &mut s2, &mut cnt);
-        }
-        for j in 1..=n {
-            let (above, row) = s1.split_at_mut(j * w);
-            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
-                *r += a;
+            let (vr, mr) = (&v[j * n..j * n + n], &m[j * n..j * n + n]);
+            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
+            let (t1, t2, tc) = &mut rows[0];
+            let (t1, t2, tc) = (&mut t1[1..w], &mut t2[1..w], &mut tc[1..w]);
+            let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
+            for i in 0..n {
+                let x = vr[i] as f64;
+                r1 += x;
+                r2 += x * x;
+                rc += mr[i] as u32;
+                t1[i] = r1 + u1[i];
+                t2[i] = r2 + u2[i];
+                tc[i] = rc + uc[i];
             }
-            let (above, row) = s2.split_at_mut(j * w);
-            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
-                *r += a;
-            }
-            let (above, row) = cnt.split_at_mut(j * w);
-            for (r, a) in row[..w].iter_mut().zip(&above[(j - 1) * w..]) {
-                *r += a;
-            }
+            let (a, b, c) = &rows[0];
+            s1.extend_from_slice(a);
+            s2.extend_from_slice(b);
+            cnt.extend_from_slice(c);
         }
         Plane { n, v, m, s1, s2, cnt }
     }
@@ -222,16 +231,8 @@ impl MapFeatures {
     pub fn within_zenith(m: &CloudMap, max_zenith_deg: f64) -> MapFeatures {
         let n = m.grid.n;
         let mut feature = score_feature(m);
-        let r_max = m.grid.height_m * max_zenith_deg.to_radians().tan();
-        // Nothing to blank when the limit lies beyond the grid's corners.
-        let corner_m = std::f64::consts::SQRT_2 * m.grid.cell_m * n as f64 / 2.0;
-        for j in 0..if r_max >= corner_m { 0 } else { n } {
-            for i in 0..n {
-                let c = m.grid.cell_centre_m(i, j);
-                if c[0].hypot(c[1]) > r_max {
-                    feature[j * n + i] = f32::NAN;
-                }
-            }
+        for &k in beyond_zenith(&m.grid, max_zenith_deg).iter() {
+            feature[k as usize] = f32::NAN;
         }
         let (half, nh) = downsample(&feature, n, 2);
         MapFeatures { prepared: Prepared::new(feature, n, true), half, nh }
@@ -261,6 +262,37 @@ impl Drop for MapFeatures {
 /// all cells, 0.03 m/s within 72°; on the project's two-layer scene a 72° limit lost the upper
 /// layer (10-minute skill 0.32 → −0.05), so the whole map is matched.
 pub const MATCH_MAX_ZENITH_DEG: f64 = 85.0;
+
+/// The cells of a grid whose centre lies beyond `max_zenith_deg` from the camera (on the grid's
+/// plane), computed once per grid and limit and kept per thread: the grid changes only with the
+/// cloud base height, and computing them for every map (a `hypot` per cell) was a tenth of the
+/// engine's instructions per 1024² frame.
+fn beyond_zenith(grid: &crate::cloudmap::Grid, max_zenith_deg: f64) -> std::rc::Rc<Vec<u32>> {
+    type Key = (usize, u64, u64, u64);
+    thread_local! {
+        static KEPT: std::cell::RefCell<Option<(Key, std::rc::Rc<Vec<u32>>)>> = const { std::cell::RefCell::new(None) };
+    }
+    let key = (grid.n, grid.cell_m.to_bits(), grid.height_m.to_bits(), max_zenith_deg.to_bits());
+    if let Some(v) = KEPT.with(|k| k.borrow().as_ref().filter(|(kk, _)| *kk == key).map(|(_, v)| v.clone())) {
+        return v;
+    }
+    let n = grid.n;
+    let r_max = grid.height_m * max_zenith_deg.to_radians().tan();
+    // Nothing to blank when the limit lies beyond the grid's corners.
+    let corner_m = std::f64::consts::SQRT_2 * grid.cell_m * n as f64 / 2.0;
+    let mut out = vec![];
+    for j in 0..if r_max >= corner_m { 0 } else { n } {
+        for i in 0..n {
+            let c = grid.cell_centre_m(i, j);
+            if c[0].hypot(c[1]) > r_max {
+                out.push((j * n + i) as u32);
+            }
+        }
+    }
+    let v = std::rc::Rc::new(out);
+    KEPT.with(|k| *k.borrow_mut() = Some((key, v.clone())));
+    v
+}
 
 /// The matched feature of a map: the cloudiness score clipped to [−0.5, 1.5], NaN where unknown.
 pub(super) fn score_feature(m: &CloudMap) -> Vec<f32> {
