@@ -3,7 +3,8 @@
 //!
 //! # What is compared
 //! * **Plant:** the forecast plant-mean GHI against the mean of the site's pyranometers
-//!   (`ghi_<name>_wm2` columns) valid at the target time.
+//!   (`ghi_<name>_wm2` columns) valid at the target time; without any of them, a plain `ghi`
+//!   column (one station, as BSRN and other networks write it) stands for them.
 //! * **Blocks:** each block's forecast against the pyranometers inside its footprint (blocks
 //!   without one are not scored).
 //! * A reading is the row whose averaging period contains the target time (1-minute means stamped
@@ -250,7 +251,7 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
         return Err(InputError::Other {
             file: measurements.into(),
             message: format!(
-                "nothing to score against: expected a pyranometer column ghi_<name>_wm2 (for {}) or plant power ({})",
+                "nothing to score against: expected a pyranometer column ghi_<name>_wm2 (for {}), a station's ghi column, or plant power ({})",
                 site.file.pyranometers.iter().map(|p| p.name.as_str()).collect::<Vec<_>>().join(", "),
                 power::expected_columns(&sp.plant)
             ),
@@ -486,10 +487,12 @@ fn pair_of(
     Some(MeasuredPair { issue, target: block.clone(), horizon_s: h, forecast: num("ghi_wm2"), observed: obs, persistence: sp, crps, p10: band("ghi_p10_wm2"), p90: band("ghi_p90_wm2") })
 }
 
-/// Each configured pyranometer's column in the measurements and the block it lies in (none when
-/// the file has no `ghi_<name>_wm2` column of the site's pyranometers).
+/// Each configured pyranometer's column in the measurements and the block it lies in. A file with
+/// none of the site's `ghi_<name>_wm2` columns but a plain `ghi` column (as station networks such as
+/// BSRN write it) has that one station, for the plant only. Empty when neither is there.
 fn pyranometer_columns(site: &Site, m: &Measurements) -> Vec<(usize, Option<String>)> {
-    site.file
+    let named: Vec<(usize, Option<String>)> = site
+        .file
         .pyranometers
         .iter()
         .filter_map(|p| {
@@ -497,7 +500,8 @@ fn pyranometer_columns(site: &Site, m: &Measurements) -> Vec<(usize, Option<Stri
             let block = site.file.plant.blocks.iter().find(|b| crate::plant::point_in_polygon(p.position_m, &b.polygon_m)).map(|b| b.name.clone());
             Some((c, block))
         })
-        .collect()
+        .collect();
+    if named.is_empty() { m.column("ghi").map(|c| vec![(c, None)]).unwrap_or_default() } else { named }
 }
 
 /// Mean of the valid readings at `t` over some columns; a missing, flagged or stuck reading is
