@@ -138,7 +138,7 @@ fn hand_computed_scores_against_measurements() {
 /// The forecast plant-mean GHI of one issue time at horizons 0 … 15 min: 700 W/m² from horizon 0,
 /// then each `(h, v)` sets the value from horizon `h` on.
 fn series(steps: &[(i64, f64)]) -> Vec<(i64, f64)> {
-    (0..=15).map(|h| (h, steps.iter().filter(|s| s.0 <= h).map(|s| s.1).last().unwrap_or(700.0))).collect()
+    (0..=15).map(|h| (h, steps.iter().filter(|s| s.0 <= h).map(|s| s.1).next_back().unwrap_or(700.0))).collect()
 }
 
 /// Ramp POD, FAR and CSI under `[evaluation.ramps]` (10 % of capacity = 100 W/m² over 1 minute,

@@ -539,13 +539,16 @@ fn clear_at_issue(rows: &[HashMap<String, String>]) -> HashMap<(String, DateTime
     out
 }
 
+/// Ensemble members' values per (issue time, horizon \[s\]).
+pub(crate) type Members = HashMap<(DateTime<Utc>, u32), Vec<f64>>;
+
 /// The plant ensemble's members per (issue, horizon) in a quantity, from `ensemble_plant.csv`
 /// when the replay wrote it with that quantity's column (empty otherwise).
 ///
 /// # Errors
 /// An unreadable or malformed file.
-pub(crate) fn members_of(replay_out: &Path, q: Quantity) -> Result<HashMap<(DateTime<Utc>, u32), Vec<f64>>, InputError> {
-    let mut members: HashMap<(DateTime<Utc>, u32), Vec<f64>> = HashMap::new();
+pub(crate) fn members_of(replay_out: &Path, q: Quantity) -> Result<Members, InputError> {
+    let mut members = Members::new();
     let mp = replay_out.join("ensemble_plant.csv");
     if mp.is_file() {
         for r in read_rows(&mp)? {

@@ -290,7 +290,7 @@ pub(crate) struct PowerInputs<'a> {
     /// Clear-sky GHI at each (target, issue) from the horizon-0 rows.
     pub clear_ghi_at_issue: &'a HashMap<(String, DateTime<Utc>), f64>,
     /// The plant ensemble's power per (issue, horizon).
-    pub members: &'a HashMap<(DateTime<Utc>, u32), Vec<f64>>,
+    pub members: &'a super::Members,
     /// The sky type of each issue time.
     pub sky_of: &'a dyn Fn(DateTime<Utc>) -> &'static str,
 }
@@ -325,11 +325,12 @@ fn power_pair(inp: &PowerInputs<'_>, r: &HashMap<String, String>, excluded: &mut
     let time = |k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
     let (Some(issue), Some(target), Some(block)) = (time("issue_time_utc"), time("target_time_utc"), r.get("block")) else { return None };
     let h = num("horizon_s");
-    if !(h > 0.0) || inp.meters.columns(block).is_empty() {
+    if h.is_nan() || h <= 0.0 || inp.meters.columns(block).is_empty() {
         return None;
     }
     let mut why = |reason: &str| *excluded.entry(reason.into()).or_default() += 1;
-    if !(num("ghi_clear_wm2") >= MIN_CLEAR_WM2) {
+    let clear_ghi = num("ghi_clear_wm2");
+    if clear_ghi.is_nan() || clear_ghi < MIN_CLEAR_WM2 {
         why("sun low (clear-sky GHI < 50 W/m²)");
         return None;
     }

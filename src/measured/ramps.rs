@@ -274,6 +274,35 @@ fn forecast_series(q: Quantity, rows: &[HashMap<String, String>], replay_out: &P
     Ok(out)
 }
 
+/// An issue time's forecast ramps: the central forecast's and each member's.
+type ForecastRamps = (Vec<MeasuredRamp>, Vec<Vec<MeasuredRamp>>);
+
+/// Whether every row start within `mw` of `centre` was judged, with no gap in the rows across the
+/// window.
+fn covered(m: &Measurements, judged: &BTreeSet<DateTime<Utc>>, centre: DateTime<Utc>, mw: chrono::Duration, period: chrono::Duration) -> bool {
+    let starts: Vec<DateTime<Utc>> = m.times.iter().copied().filter(|s| (*s - centre).abs() <= mw).collect();
+    !starts.is_empty()
+        && starts.iter().all(|s| judged.contains(s))
+        && starts.windows(2).all(|w| w[1] - w[0] <= period)
+        && starts[0] - (centre - mw) < period
+        && (centre + mw) - starts[starts.len() - 1] < period
+}
+
+/// The directions the forecast announces near `centre`: those whose probability (the share of
+/// members with such a ramp within `mw`; the central forecast alone without members) is at least
+/// `min_probability`.
+fn announced(f: &ForecastRamps, centre: DateTime<Utc>, mw: chrono::Duration, min_probability: f64) -> Vec<Direction> {
+    let (central, members) = f;
+    let near = |rs: &[MeasuredRamp], d: Direction| rs.iter().any(|(s, rd)| *rd == d && (*s - centre).abs() <= mw);
+    [Direction::Up, Direction::Down]
+        .into_iter()
+        .filter(|&d| {
+            let prob = if members.is_empty() { f64::from(u8::from(near(central, d))) } else { members.iter().filter(|r| near(r, d)).count() as f64 / members.len() as f64 };
+            prob >= min_probability
+        })
+        .collect()
+}
+
 /// Ramp POD, FAR and CSI per lead of `[evaluation.ramps]`: the forecast's ramps against the
 /// measured ones, both in `inp.quantity` (module documentation).
 pub(crate) fn ramp_scores(p: &EvalRampParams, inp: &RampInputs<'_>, rows: &[HashMap<String, String>], replay_out: &Path, issues: &[DateTime<Utc>]) -> Result<Vec<MeasuredRampScore>, InputError> {
@@ -290,7 +319,7 @@ pub(crate) fn ramp_scores(p: &EvalRampParams, inp: &RampInputs<'_>, rows: &[Hash
     let (ramps, judged) = find_series_ramps(starts, inp.measured_at, inp.basis_at, inp.capacity, p);
     let judged: BTreeSet<DateTime<Utc>> = judged.into_iter().collect();
     // Each issue's forecast ramps: the central forecast's and each member's.
-    let mut fc_ramps: HashMap<DateTime<Utc>, (Vec<MeasuredRamp>, Vec<Vec<MeasuredRamp>>)> = HashMap::new();
+    let mut fc_ramps: HashMap<DateTime<Utc>, ForecastRamps> = HashMap::new();
     for (i, s) in &series {
         let of = |v: &dyn Fn(DateTime<Utc>) -> f64, times: Vec<DateTime<Utc>>| find_series_ramps(times, v, inp.basis_at, inp.capacity, p).0;
         let central = of(&|t| s.central.get(&t).copied().unwrap_or(f64::NAN), s.central.keys().copied().collect());
@@ -303,29 +332,12 @@ pub(crate) fn ramp_scores(p: &EvalRampParams, inp: &RampInputs<'_>, rows: &[Hash
         let (mut scored, mut skipped, mut h, mut mi, mut fa) = (0, 0, 0, 0, 0);
         for &t in issues {
             let centre = t + ms(lead);
-            // Every row start within the match window must have been judged, with no gap in the rows.
-            let starts: Vec<DateTime<Utc>> = m.times.iter().copied().filter(|s| (*s - centre).abs() <= mw).collect();
-            let covered = !starts.is_empty()
-                && starts.iter().all(|s| judged.contains(s))
-                && starts.windows(2).all(|w| w[1] - w[0] <= period)
-                && starts[0] - (centre - mw) < period
-                && (centre + mw) - starts[starts.len() - 1] < period;
-            if !covered {
+            if !covered(m, &judged, centre, mw, period) {
                 skipped += 1;
                 continue;
             }
             scored += 1;
-            let near = |rs: &[MeasuredRamp], d: Direction| rs.iter().any(|(s, rd)| *rd == d && (*s - centre).abs() <= mw);
-            let fc: Vec<Direction> = match fc_ramps.get(&t) {
-                Some((central, members)) => [Direction::Up, Direction::Down]
-                    .into_iter()
-                    .filter(|&d| {
-                        let prob = if members.is_empty() { f64::from(u8::from(near(central, d))) } else { members.iter().filter(|r| near(r, d)).count() as f64 / members.len() as f64 };
-                        prob >= p.min_probability
-                    })
-                    .collect(),
-                None => vec![],
-            };
+            let fc = fc_ramps.get(&t).map(|f| announced(f, centre, mw, p.min_probability)).unwrap_or_default();
             let obs: Vec<Direction> = ramps.iter().filter(|(s, _)| (*s - centre).abs() <= mw).map(|x| x.1).collect();
             let (a, b, c) = ramp_contingency(&fc, &obs);
             h += a;
