@@ -9,8 +9,9 @@
 //!
 //! Outputs (`--out OUT`):
 //! * `OUT/days/<day>/` — the replay's tables ([`crate::replay`]) plus `stats.csv` (the mergeable
-//!   sums, [`crate::stats`]), `scores.csv` (scores from those sums), `run.json` ([`RunMeta`]) and,
-//!   last, `complete.json` ([`DayRecord`]); the folder is committed as one set
+//!   sums, [`crate::stats`]), `scores.csv` (scores from those sums), `sky_stats.csv` (the plant's
+//!   sums per sky type of the issue time, [`crate::stats::SkyStats`]), `run.json` ([`RunMeta`])
+//!   and, last, `complete.json` ([`DayRecord`], with the issue times per sky type); the folder is committed as one set
 //!   ([`crate::output_set`]), so a day with `complete.json` is whole;
 //! * `OUT/aggregate/` — the days' sums added in day order, their scores, `days.csv`, `report.html`
 //!   and `run.json` ([`crate::merge::write_aggregate`]).
@@ -18,7 +19,8 @@
 //! A second run into the same `OUT` skips every day that is complete with the same site
 //! configuration (resume after a kill: a killed day left only a staging folder, which is removed
 //! and the day redone); a day completed with another configuration is an error. One progress bar
-//! counts the frames of all days still to do.
+//! counts the frames of all days still to do; when standard error is not a terminal (a cluster
+//! job's log, a pipe) a line per completed day takes its place.
 //!
 //! Sharding: `K/N` (K 0-based, `0 ≤ K < N`) takes the days whose index `i` in the sorted day list
 //! has `i mod N = K`. Each shard's `OUT` holds its days and its own aggregate; `merge`
@@ -250,8 +252,14 @@ pub fn run_batch(opts: &BatchOptions) -> Result<BatchSummary, BatchError> {
         let (frames, _) = crate::replay::frames_of(&d.frames).map_err(|source| BatchError::Replay { day: d.name.clone(), source: Box::new(source) })?;
         counts.push(frames.len());
     }
-    let bar = crate::io::progress_bar(counts.iter().sum::<usize>() as u64, opts.progress, "batch");
-    for d in &todo {
+    let total: usize = counts.iter().sum();
+    let bar = crate::io::progress_bar(total as u64, opts.progress, "batch");
+    // Without a terminal (a job's log, a pipe) the bar does not draw: one line per day instead.
+    let lines = opts.progress && !std::io::IsTerminal::is_terminal(&std::io::stderr());
+    if lines {
+        eprintln!("batch: {} days to replay ({total} frames), {} already complete", todo.len(), summary.skipped.len());
+    }
+    for (k, d) in todo.iter().enumerate() {
         bar.set_message(d.name.clone());
         let r = run_day(opts, d, &digest, &bar);
         if r.is_err() {
@@ -259,6 +267,9 @@ pub fn run_batch(opts: &BatchOptions) -> Result<BatchSummary, BatchError> {
         }
         summary.frames += r?;
         summary.replayed.push(d.name.clone());
+        if lines {
+            eprintln!("batch: day {}/{} {} done ({} of {total} frames)", k + 1, todo.len(), d.name, summary.frames);
+        }
     }
     bar.finish_and_clear();
     let names: Vec<String> = days.iter().map(|d| d.name.clone()).collect();
@@ -306,11 +317,12 @@ fn run_day(opts: &BatchOptions, d: &Day, digest: &str, bar: &indicatif::Progress
         progress: false,
     };
     let (summary, mut set) = crate::replay::replay_staged_with(&ro, bar).map_err(wrap)?;
-    let (stats, reference) = day_stats(opts, d, measurements.as_deref(), set.dir())?;
+    let ((stats, sky), reference) = day_stats(opts, d, measurements.as_deref(), set.dir())?;
     let (frames, _) = crate::replay::frames_of(&d.frames).map_err(wrap)?;
     let (first, last) = (frames[0].time, frames[frames.len() - 1].time);
     set.write("stats.csv", &stats.to_csv())?;
     set.write("scores.csv", &stats.scores_csv())?;
+    set.write(crate::merge::SKY_STATS, &sky.table.to_csv_keyed("sky_type"))?;
     let meta = day_meta(opts, d, digest, (first, last), start, &reference);
     set.write(RUN_META, &json(&meta))?;
     let record = DayRecord {
@@ -321,6 +333,7 @@ fn run_day(opts: &BatchOptions, d: &Day, digest: &str, bar: &indicatif::Progress
         first_frame_utc: fmt_time(&first),
         last_frame_utc: fmt_time(&last),
         reference,
+        sky_issues: sky.issues,
     };
     set.write(COMPLETE, &json(&record))?;
     set.commit()?;
@@ -344,8 +357,9 @@ fn day_meta(opts: &BatchOptions, d: &Day, digest: &str, span: (DateTime<Utc>, Da
     }
 }
 
-/// A day's statistics against its truth, else against measurements, else none.
-fn day_stats(opts: &BatchOptions, d: &Day, measurements: Option<&Path>, staged: &Path) -> Result<(StatsTable, String), BatchError> {
+/// A day's statistics (and the plant's per sky type) against its truth, else against
+/// measurements, else none.
+fn day_stats(opts: &BatchOptions, d: &Day, measurements: Option<&Path>, staged: &Path) -> Result<(crate::stats::DayStats, String), BatchError> {
     if let Some(t) = &d.truth {
         let truth = crate::verify::Truth::read(t)?;
         return Ok((crate::stats::from_truth(staged, &truth)?, "truth".into()));
@@ -354,7 +368,7 @@ fn day_stats(opts: &BatchOptions, d: &Day, measurements: Option<&Path>, staged: 
         let site = crate::config::Site::load(&opts.site)?;
         return Ok((crate::stats::from_measured(&site, staged, m)?, "measurements".into()));
     }
-    Ok((StatsTable::default(), "none".into()))
+    Ok(((StatsTable::default(), crate::stats::SkyStats::default()), "none".into()))
 }
 
 /// Print a batch's summary.

@@ -6,7 +6,9 @@
 //! in the same order, and their `stats.csv` and `scores.csv` are identical byte for byte.
 //!
 //! Folder (`OUT/aggregate/` of a batch, or `merge --out`): `stats.csv`, `scores.csv`,
-//! `scores.json`, `days.csv` (every day with its frames, data range and reference), `report.html`
+//! `scores.json`, `days.csv` (every day with its frames, data range, reference, issue times per
+//! sky type and the sky type most of them had), `sky_stats.csv` and `sky_scores.csv` (the plant's
+//! sums and scores per sky type, the days' sums added in order), `report.html`
 //! (plots and tables from the summed and the days' statistics only,
 //! [`crate::report::aggregate_report`], so it too is the same byte for byte) and `run.json`
 //! ([`RunMeta`]), committed as one set.
@@ -23,12 +25,14 @@ use serde::{Deserialize, Serialize};
 use crate::io::{CsvTable, InputError, fmt_time};
 use crate::output_set::{OutputSet, OutputSetError};
 use crate::report::ReportDay;
-use crate::stats::{Score, StatsTable};
+use crate::stats::{Score, SkyStats, StatsTable};
 
 /// The marker a completed day's folder holds, written last.
 pub const COMPLETE: &str = "complete.json";
 /// The run metadata every output folder holds.
 pub const RUN_META: &str = "run.json";
+/// The plant's sums per sky type, in a day and in an aggregate.
+pub const SKY_STATS: &str = "sky_stats.csv";
 
 /// An error of a merge, a shard specification, a completed day or an aggregate.
 #[derive(Debug, thiserror::Error)]
@@ -165,6 +169,10 @@ pub struct DayRecord {
     pub last_frame_utc: String,
     /// `truth`, `measurements` or `none`.
     pub reference: String,
+    /// Issue times per sky type (clear, variable, overcast, unknown; those with a plant pair at
+    /// 5–15 min). Absent in days written before sky types were kept: none.
+    #[serde(default)]
+    pub sky_issues: BTreeMap<String, u64>,
 }
 
 /// Read a day's `complete.json`, if the folder has one that parses.
@@ -204,15 +212,37 @@ pub fn print_plant_scores(scores: &[crate::stats::Score]) {
 pub fn write_aggregate(agg: &Path, day_folders: &[PathBuf], mut meta: RunMeta) -> Result<Vec<Score>, MergeError> {
     let mut tables = Vec::with_capacity(day_folders.len());
     let mut records = Vec::with_capacity(day_folders.len());
+    let mut sky = SkyStats::default();
     for dir in day_folders {
         let record = complete_day(dir, &meta.config_sha256)?;
         tables.push(StatsTable::read_csv(&dir.join("stats.csv"))?);
+        // A day written before sky types were kept has none.
+        let sp = dir.join(SKY_STATS);
+        if sp.is_file() {
+            sky.table.add(&StatsTable::read_csv_keyed(&sp, "sky_type")?);
+        }
+        for (k, n) in &record.sky_issues {
+            *sky.issues.entry(k.clone()).or_default() += n;
+        }
         records.push(record);
     }
     let total = StatsTable::sum(&tables);
-    let mut days = CsvTable::with_header_line("day,frames,frames_used,first_frame_utc,last_frame_utc,reference");
+    let mut days = CsvTable::with_header_line("day,frames,frames_used,first_frame_utc,last_frame_utc,reference,issues_clear,issues_variable,issues_overcast,issues_unknown,sky_type");
     for r in &records {
-        days.row([r.day.clone(), r.frames.to_string(), r.frames_used.to_string(), r.first_frame_utc.clone(), r.last_frame_utc.clone(), r.reference.clone()]);
+        let n = |k: &str| r.sky_issues.get(k).copied().unwrap_or(0).to_string();
+        days.row([
+            r.day.clone(),
+            r.frames.to_string(),
+            r.frames_used.to_string(),
+            r.first_frame_utc.clone(),
+            r.last_frame_utc.clone(),
+            r.reference.clone(),
+            n("clear"),
+            n("variable"),
+            n("overcast"),
+            n("unknown"),
+            SkyStats::dominant(&r.sky_issues).to_string(),
+        ]);
     }
     // Times are written in one fixed format, so their text sorts as the times do.
     meta.first_frame_utc = records.iter().map(|r| r.first_frame_utc.clone()).min();
@@ -228,13 +258,15 @@ pub fn write_aggregate(agg: &Path, day_folders: &[PathBuf], mut meta: RunMeta) -
     set.write("scores.csv", &total.scores_csv())?;
     set.write("scores.json", &json(&scores))?;
     set.write("days.csv", &days.into_bytes())?;
+    set.write(SKY_STATS, &sky.table.to_csv_keyed("sky_type"))?;
+    set.write("sky_scores.csv", &sky.table.scores_csv_keyed("sky_type"))?;
     let report_days: Vec<ReportDay<'_>> = records
         .iter()
         .zip(&tables)
-        .map(|(r, t)| ReportDay { name: &r.day, frames: r.frames, frames_used: r.frames_used, reference: &r.reference, stats: t })
+        .map(|(r, t)| ReportDay { name: &r.day, frames: r.frames, frames_used: r.frames_used, reference: &r.reference, stats: t, sky_type: SkyStats::dominant(&r.sky_issues) })
         .collect();
     let title = format!("nephocast: aggregate of {} day{}", records.len(), if records.len() == 1 { "" } else { "s" });
-    set.write("report.html", crate::report::aggregate_report(&title, &total, &report_days).as_bytes())?;
+    set.write("report.html", crate::report::aggregate_report(&title, &total, &sky, &report_days).as_bytes())?;
     meta.run_end_utc = fmt_time(&Utc::now());
     set.write(RUN_META, &json(&meta))?;
     set.commit()?;

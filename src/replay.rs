@@ -18,7 +18,8 @@
 //! * `alarms.csv` — every change of alarm state, with the probability and the reason, and the
 //!   ramp behind the new state (expected start, lead from the change, change in MW and % of AC
 //!   capacity, probability; empty for `calm`);
-//! * `ensemble_plant.csv` — the plant-mean GHI of every ensemble member per horizon (for CRPS);
+//! * `ensemble_plant.csv` — the plant-mean GHI and plant AC power of every ensemble member per
+//!   horizon (for CRPS);
 //! * `frames.csv` — per frame: status (`ok` or the rejection code), reason, cloud fraction, cloud base
 //!   height, sun elevation, and the time of each stage. Frames are read through [`crate::intake`]
 //!   (codes `special_file`, `file_too_large`, `unknown_format`, `truncated`, `corrupt`,
@@ -263,7 +264,7 @@ impl ReplayTables {
             ramps: CsvTable::with_header_line("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability"),
             ramps_jsonl: String::new(),
             alarms: CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability"),
-            members: CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2"),
+            members: CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2,plant_power_kw"),
             fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin"),
         }
     }
@@ -274,7 +275,8 @@ impl ReplayTables {
         let plant_h: Vec<u32> = nc.forecast.plant.iter().map(|r| r.horizon_s).collect();
         for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
             for (m, v) in ms.iter().enumerate() {
-                self.members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}")]);
+                let power = nc.plant_members_power_kw.get(k).and_then(|p| p.get(m)).map(|p| format!("{p:.1}")).unwrap_or_default();
+                self.members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}"), power]);
             }
         }
         for e in &nc.ramps {

@@ -61,7 +61,8 @@ pub struct Sums {
 }
 
 impl Sums {
-    fn add(&mut self, o: &Sums) {
+    /// Add another's sums field by field.
+    pub fn add(&mut self, o: &Sums) {
         self.n += o.n;
         self.sum_err += o.sum_err;
         self.sum_sq_err += o.sum_sq_err;
@@ -186,7 +187,12 @@ impl StatsTable {
 
     /// The table as `stats.csv` (every sum exact).
     pub fn to_csv(&self) -> Vec<u8> {
-        let mut t = CsvTable::with_header_line(STATS_HEADER);
+        self.to_csv_keyed("target")
+    }
+
+    /// The table as CSV with the first column named `key` (`sky_type` for [`SkyStats`]).
+    pub fn to_csv_keyed(&self, key: &str) -> Vec<u8> {
+        let mut t = CsvTable::with_header_line(&STATS_HEADER.replacen("target", key, 1));
         for ((target, h), s) in &self.rows {
             t.row([
                 target.clone(),
@@ -215,10 +221,19 @@ impl StatsTable {
     /// An unreadable file, a missing column or a value that is not a number, naming the line and
     /// column.
     pub fn read_csv(path: &Path) -> Result<StatsTable, InputError> {
+        Self::read_csv_keyed(path, "target")
+    }
+
+    /// Read a table written by [`StatsTable::to_csv_keyed`] with the same `key`.
+    ///
+    /// # Errors
+    /// As [`StatsTable::read_csv`].
+    pub fn read_csv_keyed(path: &Path, key: &str) -> Result<StatsTable, InputError> {
+        let expected = STATS_HEADER.replacen("target", key, 1);
         let mut rdr = csv::ReaderBuilder::new().from_path(path).map_err(|e| csv_err(path, &e))?;
         let header = rdr.headers().map_err(|e| csv_err(path, &e))?.clone();
-        if header.iter().collect::<Vec<_>>().join(",") != STATS_HEADER {
-            return Err(InputError::Csv { file: path.into(), line: 1, message: format!("expected the header {STATS_HEADER}") });
+        if header.iter().collect::<Vec<_>>().join(",") != expected {
+            return Err(InputError::Csv { file: path.into(), line: 1, message: format!("expected the header {expected}") });
         }
         let mut t = StatsTable::default();
         for (i, r) in rdr.records().enumerate() {
@@ -253,7 +268,12 @@ impl StatsTable {
 
     /// The scores as `scores.csv` (every figure exact; empty where not applicable).
     pub fn scores_csv(&self) -> Vec<u8> {
-        let mut t = CsvTable::with_header_line(SCORES_HEADER);
+        self.scores_csv_keyed("target")
+    }
+
+    /// The scores as CSV with the first column named `key`.
+    pub fn scores_csv_keyed(&self, key: &str) -> Vec<u8> {
+        let mut t = CsvTable::with_header_line(&SCORES_HEADER.replacen("target", key, 1));
         for s in self.scores() {
             t.row([
                 s.target.clone(),
@@ -278,7 +298,8 @@ impl StatsTable {
     }
 }
 
-fn score_of(target: &str, h: u32, s: &Sums) -> Score {
+/// The scores of one set of sums (`target` and `h` only label them).
+pub fn score_of(target: &str, h: u32, s: &Sums) -> Score {
     let n = s.n as f64;
     let rmse = (s.sum_sq_err / n).sqrt();
     let rmse_p = (s.pers_sum_sq_err / n).sqrt();
@@ -320,17 +341,57 @@ fn count(path: &Path, line: u64, header: &csv::StringRecord, r: &csv::StringReco
 /// Smallest clear-sky GHI scored \[W/m²\] (as `verify` and `measured`).
 const MIN_CLEAR_WM2: f64 = 50.0;
 
+/// The plant's sums per sky type of the issue time (keyed by (sky type, horizon) in a
+/// [`StatsTable`], written as `sky_stats.csv` with the first column `sky_type`), and the issue
+/// times per sky type: the per-day classification of [`crate::measured`] (clear / variable /
+/// overcast / unknown from the clear-sky index and its variability around each issue time), kept
+/// as counts and sums so that days and shards add up exactly.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct SkyStats {
+    /// Sums of the plant's pairs, keyed by (sky type, horizon).
+    pub table: StatsTable,
+    /// Issue times per sky type (those with a plant pair at 5–15 min).
+    pub issues: BTreeMap<String, u64>,
+}
+
+impl SkyStats {
+    /// The sky type most issue times had (ties to the first name in order); `none` without any.
+    pub fn dominant(issues: &BTreeMap<String, u64>) -> &str {
+        issues.iter().filter(|(_, n)| **n > 0).fold(None, |best: Option<(&String, u64)>, (k, n)| if best.is_none_or(|b| *n > b.1) { Some((k, *n)) } else { best }).map_or("none", |b| b.0.as_str())
+    }
+
+    /// Pooled 5–15 min scores per sky type (horizons added in order), with its issue times.
+    pub fn pooled(&self) -> Vec<(String, u64, Score)> {
+        let mut by: BTreeMap<&str, Sums> = BTreeMap::new();
+        for ((k, h), s) in &self.table.rows {
+            if (300..=900).contains(h) {
+                by.entry(k.as_str()).or_default().add(s);
+            }
+        }
+        by.into_iter().map(|(k, s)| (k.to_string(), self.issues.get(k).copied().unwrap_or(0), score_of(k, 300, &s))).collect()
+    }
+}
+
+/// The day's statistics and its sky-type statistics.
+pub type DayStats = (StatsTable, SkyStats);
+
 /// The statistics of a replay's outputs (`forecasts.csv`, `ensemble_plant.csv` in `replay_out`)
-/// against a synthetic day's truth, for every target of the forecasts. Pairs as in
+/// against a synthetic day's truth, for every target of the forecasts, with the plant's per sky
+/// type (classed from the truth's plant clear-sky index). Pairs as in
 /// [`crate::verify::score_forecasts`] (clear-sky GHI ≥ 50 W/m² at issue and target time, smart
 /// persistence from the truth at the issue time); bands and CRPS as in
 /// [`crate::verify::score_bands`] (clear-sky GHI ≥ 50 W/m² at the target time).
 ///
 /// # Errors
 /// Unreadable or malformed tables, naming the file and line.
-pub fn from_truth(replay_out: &Path, truth: &Truth) -> Result<StatsTable, InputError> {
+pub fn from_truth(replay_out: &Path, truth: &Truth) -> Result<DayStats, InputError> {
     let fpath = replay_out.join("forecasts.csv");
     let mut t = StatsTable::default();
+    let mut sky = SkyStats::default();
+    let mut sky_of: BTreeMap<DateTime<Utc>, &'static str> = BTreeMap::new();
+    let mut seen = std::collections::BTreeSet::new();
+    let mut sky_at = |issue: DateTime<Utc>| *sky_of.entry(issue).or_insert_with(|| crate::measured::sky_type_around(issue, |x| truth.plant_kc_at(&x)));
+    let plant = crate::plant::PLANT_TARGET;
     for (i, r) in read_rows(&fpath)?.iter().enumerate() {
         let line = i as u64 + 2;
         let Some(target) = r.get("block") else { continue };
@@ -342,6 +403,9 @@ pub fn from_truth(replay_out: &Path, truth: &Truth) -> Result<StatsTable, InputE
             && clear_t >= MIN_CLEAR_WM2
         {
             t.at(target, h).add_band(obs, lo, hi);
+            if target == plant {
+                sky.table.at(sky_at(issue), h).add_band(obs, lo, hi);
+            }
         }
         let Some((obs_i, clear_i)) = truth.at(&issue, target) else { continue };
         if clear_t < MIN_CLEAR_WM2 || clear_i < MIN_CLEAR_WM2 {
@@ -349,37 +413,71 @@ pub fn from_truth(replay_out: &Path, truth: &Truth) -> Result<StatsTable, InputE
         }
         let f = num_of(&fpath, line, r, "ghi_wm2")?;
         t.at(target, h).add_pair(f, obs, obs_i / clear_i * clear_t);
+        if target == plant {
+            let k = sky_at(issue);
+            sky.table.at(k, h).add_pair(f, obs, obs_i / clear_i * clear_t);
+            if (300..=900).contains(&h) {
+                seen.insert((k, issue));
+            }
+        }
     }
     for ((issue, h), ms) in members_of(replay_out)? {
         let tt = issue + chrono::Duration::seconds(i64::from(h));
-        if let Some((obs, clear)) = truth.at(&tt, crate::plant::PLANT_TARGET)
+        if let Some((obs, clear)) = truth.at(&tt, plant)
             && clear >= MIN_CLEAR_WM2
         {
-            t.at(crate::plant::PLANT_TARGET, h).add_crps(crps_ensemble(&ms, obs));
+            let c = crps_ensemble(&ms, obs);
+            t.at(plant, h).add_crps(c);
+            sky.table.at(sky_at(issue), h).add_crps(c);
         }
     }
-    Ok(t)
+    sky.issues = issue_counts(&seen);
+    Ok((t, sky))
+}
+
+/// Issue times per sky type from the (sky type, issue) pairs seen.
+fn issue_counts(seen: &std::collections::BTreeSet<(&str, DateTime<Utc>)>) -> BTreeMap<String, u64> {
+    let mut out = BTreeMap::new();
+    for (k, _) in seen {
+        *out.entry(k.to_string()).or_default() += 1;
+    }
+    out
 }
 
 /// The statistics of a replay's outputs against a measurements CSV: the pairs
 /// [`crate::measured::evaluate_measured`] scores (every target with pyranometers, every horizon
-/// after 0), in the order of `forecasts.csv`.
+/// after 0), in the order of `forecasts.csv`, with the plant's per sky type as `evaluate` classes
+/// them.
 ///
 /// # Errors
-/// Unreadable or malformed files, a measurements file without any of the site's pyranometers.
-pub fn from_measured(site: &crate::config::Site, replay_out: &Path, measurements: &Path) -> Result<StatsTable, InputError> {
+/// Unreadable or malformed files.
+pub fn from_measured(site: &crate::config::Site, replay_out: &Path, measurements: &Path) -> Result<DayStats, InputError> {
     let mut t = StatsTable::default();
-    for p in crate::measured::scored_pairs(site, replay_out, measurements)?.pairs {
-        let s = t.at(&p.target, p.horizon_s);
-        s.add_pair(p.forecast, p.observed, p.persistence);
-        if let (Some(lo), Some(hi)) = (p.p10, p.p90) {
-            s.add_band(p.observed, lo, hi);
-        }
-        if let Some(c) = p.crps {
-            s.add_crps(c);
+    let mut sky = SkyStats::default();
+    let sp = crate::measured::scored_pairs(site, replay_out, measurements)?;
+    let classes = crate::measured::SkyClassifier::new(site, &sp);
+    let mut seen = std::collections::BTreeSet::new();
+    for p in &sp.pairs {
+        let add = |s: &mut Sums| {
+            s.add_pair(p.forecast, p.observed, p.persistence);
+            if let (Some(lo), Some(hi)) = (p.p10, p.p90) {
+                s.add_band(p.observed, lo, hi);
+            }
+            if let Some(c) = p.crps {
+                s.add_crps(c);
+            }
+        };
+        add(t.at(&p.target, p.horizon_s));
+        if p.target == crate::plant::PLANT_TARGET {
+            let k = classes.of(p.issue);
+            add(sky.table.at(k, p.horizon_s));
+            if (300..=900).contains(&p.horizon_s) {
+                seen.insert((k, p.issue));
+            }
         }
     }
-    Ok(t)
+    sky.issues = issue_counts(&seen);
+    Ok((t, sky))
 }
 
 /// Ensemble members per (issue time, horizon \[s\]).

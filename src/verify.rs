@@ -71,6 +71,8 @@ pub struct HorizonScore {
 pub struct Truth {
     map: HashMap<(DateTime<Utc>, String), (f64, f64)>,
     beam: HashMap<(DateTime<Utc>, String), (f64, f64)>,
+    /// The plant's (time, GHI, clear-sky GHI), sorted by time.
+    plant: Vec<(DateTime<Utc>, f64, f64)>,
 }
 
 fn csv_err(path: &Path, e: csv::Error) -> InputError {
@@ -110,7 +112,20 @@ impl Truth {
             t.map.insert(key.clone(), (num(path, &r, "ghi_wm2")?, num(path, &r, "ghi_clear_wm2")?));
             t.beam.insert(key, (num(path, &r, "dni_wm2")?, num(path, &r, "dhi_wm2")?));
         }
+        t.plant = t.map.iter().filter(|(k, _)| k.1 == crate::plant::PLANT_TARGET).map(|(k, v)| (k.0, v.0, v.1)).collect();
+        t.plant.sort_by_key(|x| x.0);
         Ok(t)
+    }
+
+    /// The plant's clear-sky index `GHI / GHI_clear` at the truth sample nearest `t` (within 30 s);
+    /// NaN without one or with a clear-sky GHI under 50 W/m².
+    pub fn plant_kc_at(&self, t: &DateTime<Utc>) -> f64 {
+        let i = self.plant.partition_point(|x| x.0 < *t);
+        let near = [i.checked_sub(1), Some(i)].into_iter().flatten().filter_map(|k| self.plant.get(k)).min_by_key(|x| (x.0 - *t).num_milliseconds().abs());
+        match near {
+            Some(&(s, ghi, clear)) if (s - *t).num_milliseconds().abs() <= 30_000 && clear >= 50.0 => ghi / clear,
+            _ => f64::NAN,
+        }
     }
 
     /// GHI and clear-sky GHI of a target at a time.

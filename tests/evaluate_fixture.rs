@@ -92,7 +92,10 @@ fn hand_computed_scores_against_measurements() {
     let e = evaluate_measured(&site, &out, &meas).unwrap();
     assert!(e.excluded.is_empty(), "{:?}", e.excluded);
     assert!(e.screened.is_empty(), "{:?}", e.screened);
-    assert!(e.ramps.is_empty(), "no ramps.csv, no ramp scores");
+    // Ramps are found in GHI on both sides (no plant power measured); the forecast rows hold 0, 5
+    // and 10 minutes only, so no 1-minute window of the forecast has both ends: no forecast ramp.
+    assert_eq!(e.ramp_quantity, nephocast::measured::Quantity::Ghi);
+    assert!(e.ramps.iter().all(|r| r.hits == 0 && r.false_alarms == 0), "{:?}", e.ramps);
     assert_eq!(e.plant.len(), 2);
     let close = |a: f64, b: f64, what: &str| assert!((a - b).abs() < 1e-9, "{what}: {a} against {b} by hand");
     let (h5, h10) = (&e.plant[0], &e.plant[1]);
@@ -132,21 +135,34 @@ fn hand_computed_scores_against_measurements() {
     close(h10.coverage_p10_p90, 2.0 / 3.0, "10-min P10–P90 coverage");
 }
 
+/// The forecast plant-mean GHI of one issue time at horizons 0 … 15 min: 700 W/m² from horizon 0,
+/// then each `(h, v)` sets the value from horizon `h` on.
+fn series(steps: &[(i64, f64)]) -> Vec<(i64, f64)> {
+    (0..=15).map(|h| (h, steps.iter().filter(|s| s.0 <= h).map(|s| s.1).next_back().unwrap_or(700.0))).collect()
+}
+
 /// Ramp POD, FAR and CSI under `[evaluation.ramps]` (10 % of capacity = 100 W/m² over 1 minute,
-/// leads 5 and 10 min matched within 1 minute, probability ≥ 0.5).
+/// leads 5 and 10 min matched within 1 minute, probability ≥ 0.5), in GHI on both sides (the
+/// measurements hold pyranometers only).
 ///
 /// Measured ramps: down starting 10:10 (−299 W/m²), up starting 10:20 (+298 W/m²); no other.
 ///
-/// Issue times 10:00, 10:05, 10:10, 10:15, 10:30. Forecast events (`ramps.csv`):
-/// * 10:00: down at lead 300 s p 0.8; down at 600 s p 0.6; up at 720 s p 0.9 (matches no lead);
-/// * 10:05: down at 290 s p 0.9; up at 660 s p 0.7;
-/// * 10:10: up at 300 s p 0.3 (below 0.5, ignored); down at 600 s p 0.9;
-/// * 10:15, 10:30: none.
+/// Issue times 10:00, 10:05, 10:10, 10:15, 10:30. The forecast plant-mean GHI (`forecasts.csv`,
+/// horizons 0 … 15 min, 700 W/m² unless set; every change is 200 W/m², a ramp starting at the
+/// window before it, i.e. one minute earlier):
+/// * 10:00: 500 from 6, 300 from 11, 500 from 13 → down at lead 5, down at 10, up at 12 (12 is
+///   more than 1 min from either lead);
+/// * 10:05: 500 from 6, 700 from 12 → down at 5, up at 11;
+/// * 10:10: 900 from 6, 700 from 11 → up at 5, down at 10; this issue has 10 ensemble members
+///   (`ensemble_plant.csv`): 3 follow the central forecast, 7 only its drop at 10 (900 … 700 from
+///   11 on as 700 … 500), so an up ramp near 5 min has probability 3/10 < 0.5 (not announced) and
+///   a down ramp near 10 min 10/10;
+/// * 10:15, 10:30: flat.
 ///
 /// Lead 5 min (centres 10:05, 10:10, 10:15, 10:20, 10:35 ± 1 min):
 /// * 10:00: forecast down, nothing measured at 10:05 → false alarm;
 /// * 10:05: forecast down, measured down at 10:10 → hit;
-/// * 10:10: no counted forecast, nothing at 10:15 → correct negative;
+/// * 10:10: the up ramp is not announced, nothing at 10:15 → correct negative;
 /// * 10:15: nothing forecast, measured up at 10:20 → miss;
 /// * 10:30: nothing, nothing → correct negative.
 ///
@@ -156,7 +172,7 @@ fn hand_computed_scores_against_measurements() {
 /// Lead 10 min (centres 10:10, 10:15, 10:20, 10:25, and 10:40 — whose window 10:41 lies beyond
 /// the readings, so 10:30 is not scored):
 /// * 10:00: down, measured down → hit;
-/// * 10:05: up, nothing at 10:15 → false alarm;
+/// * 10:05: up (at 11), nothing at 10:15 → false alarm;
 /// * 10:10: down, measured up → miss and false alarm;
 /// * 10:15: nothing, nothing → correct negative.
 ///
@@ -173,18 +189,33 @@ fn hand_computed_ramp_scores_against_measurements() {
     let out = d.path().join("out");
     std::fs::create_dir_all(&out).unwrap();
     let mut f = String::from(FC_HEADER);
-    for i in [0, 5, 10, 15, 30] {
-        f += &format!("{},{},0,plant,700,,,800\n", at(i), at(i));
+    let flat = series(&[]);
+    let issues: [(i64, Vec<(i64, f64)>); 5] = [
+        (0, series(&[(6, 500.0), (11, 300.0), (13, 500.0)])),
+        (5, series(&[(6, 500.0), (12, 700.0)])),
+        (10, series(&[(6, 900.0), (11, 700.0)])),
+        (15, flat.clone()),
+        (30, flat),
+    ];
+    for (i, s) in &issues {
+        for (h, v) in s {
+            f += &format!("{},{},{},plant,{v},,,800\n", at(*i), at(i + h), h * 60);
+        }
     }
     std::fs::write(out.join("forecasts.csv"), f).unwrap();
-    let mut r = String::from("issue_time_utc,expected_start_utc,lead_time_s,direction,change_kw,change_pct,probability\n");
-    for (i, lead, dir, p) in [(0, 300, "down", 0.8), (0, 600, "down", 0.6), (0, 720, "up", 0.9), (5, 290, "down", 0.9), (5, 660, "up", 0.7), (10, 300, "up", 0.3), (10, 600, "down", 0.9)] {
-        r += &format!("{},{},{lead},{dir},-500,-20,{p}\n", at(i), at(i + lead / 60));
+    // Members of 10:10 only: 3 as the central forecast, 7 with its drop at 10 alone.
+    let mut ens = String::from("issue_time_utc,horizon_s,member,plant_ghi_wm2\n");
+    let follower = series(&[(11, 500.0)]);
+    for k in 0..10 {
+        for (h, v) in if k < 3 { &issues[2].1 } else { &follower } {
+            ens += &format!("{},{},{k},{v}\n", at(10), h * 60);
+        }
     }
-    std::fs::write(out.join("ramps.csv"), r).unwrap();
+    std::fs::write(out.join("ensemble_plant.csv"), ens).unwrap();
 
     let site = Site::load(&sp).unwrap();
     let e = evaluate_measured(&site, &out, &meas).unwrap();
+    assert_eq!(e.ramp_quantity, nephocast::measured::Quantity::Ghi);
     assert_eq!(e.ramps.len(), 2);
     let (l5, l10) = (&e.ramps[0], &e.ramps[1]);
     assert_eq!((l5.lead_min, l5.issues_scored, l5.issues_not_scored, l5.hits, l5.misses, l5.false_alarms), (5.0, 5, 0, 1, 1, 1));
@@ -196,11 +227,12 @@ fn hand_computed_ramp_scores_against_measurements() {
     let o = std::process::Command::new(BIN).args(["evaluate", "--replay"]).arg(&out).arg("--measurements").arg(&meas).arg("--site").arg(&sp).output().unwrap();
     let text = String::from_utf8_lossy(&o.stdout).to_string() + &String::from_utf8_lossy(&o.stderr);
     assert!(o.status.success(), "{text}");
-    assert!(text.contains("POD") && text.contains("1 issue times not scored"), "{text}");
+    assert!(text.contains("POD") && text.contains("1 issue times not scored") && text.contains("ramps of the plant-mean GHI"), "{text}");
     let j: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("evaluation-measured.json")).unwrap()).unwrap();
     assert_eq!(j["ramps"][1]["false_alarms"], 2);
     assert_eq!(j["ramps"][0]["csi"], 1.0 / 3.0);
     assert_eq!(j["ramp_definition"]["basis"], "capacity");
+    assert_eq!(j["ramp_quantity"], "ghi");
 }
 
 /// A bad `[evaluation.ramps]` value is refused with the field named.

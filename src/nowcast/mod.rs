@@ -478,7 +478,7 @@ impl Nowcaster {
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
         let members = self.ensemble_stage.run(cx, self.forecast_stage.params(), &frame.time, &tms, map.grid, &input, &skies, &mut fc);
-        let (ramps, plant_members_ghi_wm2) = self.ramps_of(&frame.time, &fc, &members);
+        let (ramps, plant_members_ghi_wm2, plant_members_power_kw) = self.ramps_of(&frame.time, &fc, &members);
         let t_ens = Clock::now();
         let alarm_change = self.alarm.update(&frame.time, &ramps, self.motion_stage.tracker.primary_accepted_run(), &self.site.file.ramps);
         let t_fc = Clock::now();
@@ -499,6 +499,7 @@ impl Nowcaster {
             layers: moved.layers,
             forecast: fc,
             plant_members_ghi_wm2,
+            plant_members_power_kw,
             ramps,
             alarm: self.alarm.state,
             alarm_change,
@@ -531,15 +532,17 @@ impl Nowcaster {
     }
 
     /// Ramp events from the plant's power series (central and members), and the members' plant
-    /// GHI per horizon.
-    fn ramps_of(&self, t: &DateTime<Utc>, fc: &Forecast, members: &[Forecast]) -> (Vec<crate::ramp::RampEvent>, Vec<Vec<f64>>) {
+    /// GHI and plant power per horizon.
+    #[allow(clippy::type_complexity)]
+    fn ramps_of(&self, t: &DateTime<Utc>, fc: &Forecast, members: &[Forecast]) -> (Vec<crate::ramp::RampEvent>, Vec<Vec<f64>>, Vec<Vec<f64>>) {
         let step_min = self.site.file.forecast.step_s as f64 / 60.0;
         let cap_ac: f64 = self.plant.blocks.iter().map(|b| b.ac_capacity_kw.unwrap_or(b.capacity_kw / self.site.file.power.dc_ac_ratio)).sum();
         let member_series: Vec<Vec<f64>> = members.iter().map(|m| m.plant_power_kw()).collect();
         let ramps = crate::ramp::ramp_events(t, &fc.plant_power_kw(), &member_series, step_min, cap_ac, &self.site.file.ramps);
         let plant_members_ghi_wm2: Vec<Vec<f64>> =
             (0..fc.plant.len()).map(|k| members.iter().filter_map(|m| m.plant.get(k).map(|r| r.irradiance.ghi_wm2)).collect()).collect();
-        (ramps, plant_members_ghi_wm2)
+        let plant_members_power_kw: Vec<Vec<f64>> = (0..fc.plant.len()).map(|k| members.iter().filter_map(|m| m.plant.get(k).map(|r| r.power_kw)).collect()).collect();
+        (ramps, plant_members_ghi_wm2, plant_members_power_kw)
     }
 
 }

@@ -141,6 +141,8 @@ pub struct Nowcast {
     pub forecast: Forecast,
     /// Plant-mean GHI of every ensemble member, per horizon \[W m⁻²\] (for CRPS).
     pub plant_members_ghi_wm2: Vec<Vec<f64>>,
+    /// Plant AC power of every ensemble member, per horizon \[kW\] (for CRPS of power).
+    pub plant_members_power_kw: Vec<Vec<f64>>,
     /// Ramp events of this forecast.
     pub ramps: Vec<crate::ramp::RampEvent>,
     /// Alarm state after this frame.

@@ -9,6 +9,10 @@ use chrono::{DateTime, Utc};
 
 use crate::io::parse_time;
 use crate::measured::MeasuredEvaluation;
+
+mod measured;
+mod sky;
+use measured::measured_section;
 use crate::plant::PLANT_TARGET;
 use crate::stats::{Score, StatsTable};
 use crate::verify::{Evaluation, Truth, read_rows};
@@ -35,7 +39,7 @@ pub struct BandArea {
     pub points: Vec<(f64, f64, f64)>,
 }
 
-fn esc(s: &str) -> String {
+pub(crate) fn esc(s: &str) -> String {
     s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;")
 }
 
@@ -349,89 +353,6 @@ fn scores_section(e: &Evaluation) -> String {
     html
 }
 
-/// The scores against measurements: per horizon, per sky type, per block, ramps, and what was
-/// left out and why.
-fn measured_section(e: &MeasuredEvaluation) -> String {
-    use crate::verify::fmt_score;
-    let mut html = String::new();
-    html += "<h2 id='measured-scores'>Scores against the pyranometers (plant-mean GHI against their mean)</h2>";
-    html += "<table id='measured-horizons'><tr><th>horizon</th><th>n</th><th>RMSE W/m²</th><th>MAE</th><th>MBE</th><th>persistence RMSE</th><th>skill</th><th>CRPS</th><th>P10–P90 coverage</th></tr>";
-    for h in &e.plant {
-        let _ = write!(
-            html,
-            "<tr><td>{} min</td><td>{}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
-            h.horizon_s / 60,
-            h.n,
-            h.rmse_wm2,
-            h.mae_wm2,
-            h.mbe_wm2,
-            h.rmse_persistence_wm2,
-            fmt_score(h.skill, 3),
-            fmt_score(h.crps_wm2, 1),
-            fmt_score(h.coverage_p10_p90, 2)
-        );
-    }
-    html += "</table>";
-    html += "<h3>By sky type (pooled 5–15 min)</h3><p>Each issue time is classed from the measured clear-sky index over the 30 minutes before it: clear (mean ≥ 0.8, σΔkc ≤ 0.03), overcast (mean ≤ 0.5, σΔkc ≤ 0.03), variable otherwise; unknown with fewer than 10 readings.</p>";
-    html += "<table id='measured-sky-types'><tr><th>sky type</th><th>issue times</th><th>n</th><th>RMSE W/m²</th><th>persistence RMSE</th><th>skill</th><th>MBE</th></tr>";
-    for (k, p) in &e.by_sky_type {
-        let _ = write!(html, "<tr><td>{}</td><td>{}</td><td>{}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{:.1}</td></tr>", esc(k), e.issues_by_sky_type.get(k).copied().unwrap_or(0), p.n, p.rmse_wm2, p.rmse_persistence_wm2, fmt_score(p.skill, 3), p.mbe_wm2);
-    }
-    html += "</table>";
-    if !e.by_block.is_empty() {
-        html += "<h3>By block (its own pyranometers, pooled 5–15 min)</h3><table id='measured-blocks'><tr><th>block</th><th>n</th><th>RMSE W/m²</th><th>persistence RMSE</th><th>skill</th><th>MBE</th></tr>";
-        for (k, p) in &e.by_block {
-            let _ = write!(html, "<tr><td>{}</td><td>{}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td><td>{:.1}</td></tr>", esc(k), p.n, p.rmse_wm2, p.rmse_persistence_wm2, fmt_score(p.skill, 3), p.mbe_wm2);
-        }
-        html += "</table>";
-    }
-    if !e.ramps.is_empty() {
-        let d = &e.ramp_definition;
-        let basis = match d.basis {
-            crate::measured::RampBasis::Capacity => "capacity (1000 W/m²)",
-            crate::measured::RampBasis::ClearSky => "clear-sky GHI",
-        };
-        let _ = write!(
-            html,
-            "<h3>Ramps</h3><p>A measured ramp: the pyranometers' mean GHI changes by at least {} % of {basis} over {} min. Forecast ramp events with probability ≥ {} are matched within ±{} min.</p>",
-            d.threshold_pct, d.window_min, d.min_probability, d.match_window_min
-        );
-        html += "<table id='measured-ramps'><tr><th>lead</th><th>issue times</th><th>not scored</th><th>hits</th><th>misses</th><th>false alarms</th><th>POD</th><th>FAR</th><th>CSI</th></tr>";
-        for r in &e.ramps {
-            let _ = write!(
-                html,
-                "<tr><td>{} min</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
-                r.lead_min,
-                r.issues_scored,
-                r.issues_not_scored,
-                r.hits,
-                r.misses,
-                r.false_alarms,
-                fmt_score(r.pod, 2),
-                fmt_score(r.far, 2),
-                fmt_score(r.csi, 2)
-            );
-        }
-        html += "</table>";
-    }
-    html += "<h3>Left out</h3><table id='measured-excluded'><tr><th style='text-align:left'>forecast rows left out, why</th><th>rows</th></tr>";
-    if e.excluded.is_empty() {
-        html += "<tr><td style='text-align:left'>none</td><td>0</td></tr>";
-    }
-    for (k, n) in &e.excluded {
-        let _ = write!(html, "<tr><td style='text-align:left'>{}</td><td>{n}</td></tr>", esc(k));
-    }
-    html += "</table><table id='measured-screened'><tr><th style='text-align:left'>measurements flagged by the screening, column and why</th><th>values</th></tr>";
-    if e.screened.is_empty() {
-        html += "<tr><td style='text-align:left'>none</td><td>0</td></tr>";
-    }
-    for (k, n) in &e.screened {
-        let _ = write!(html, "<tr><td style='text-align:left'>{}</td><td>{n}</td></tr>", esc(k));
-    }
-    html += "</table>";
-    html
-}
-
 /// The plant-mean GHI forecast 5, 10 and 15 minutes ahead with its band, against the truth when
 /// there is one.
 fn forecast_section(rows: &[BTreeMap<String, String>], truth: Option<&Truth>, measured: &[(f64, f64)]) -> String {
@@ -572,6 +493,8 @@ pub struct ReportDay<'a> {
     pub reference: &'a str,
     /// The day's sums (its `stats.csv`).
     pub stats: &'a StatsTable,
+    /// The sky type most of its issue times had (`none` without any).
+    pub sky_type: &'a str,
 }
 
 /// The share of observations a P10–P90 band should hold.
@@ -581,7 +504,7 @@ const NOMINAL_COVERAGE: f64 = 0.8;
 const DAY_HORIZONS: [(u32, &str); 3] = [(300, "#1f6fd1"), (600, "#16a085"), (900, "#c0392b")];
 
 /// A score with `decimals`, or `n/a` when it does not apply.
-fn fmt_opt(v: Option<f64>, decimals: usize) -> String {
+pub(crate) fn fmt_opt(v: Option<f64>, decimals: usize) -> String {
     crate::verify::fmt_score(v.unwrap_or(f64::NAN), decimals)
 }
 
@@ -595,7 +518,7 @@ fn plant_scores(t: &StatsTable) -> BTreeMap<u32, Score> {
 /// horizon (RMSE of the forecast and of smart persistence, skill, CRPS, P10–P90 coverage), the
 /// plant's skill and RMSE per day, and the blocks' scores. Nothing in it depends on how the days
 /// were run, so a single run's aggregate and a merge of its shards give the same bytes.
-pub fn aggregate_report(title: &str, total: &StatsTable, days: &[ReportDay<'_>]) -> String {
+pub fn aggregate_report(title: &str, total: &StatsTable, sky: &crate::stats::SkyStats, days: &[ReportDay<'_>]) -> String {
     let plant = plant_scores(total);
     let mut html = page_start(title);
     let mut refs: Vec<&str> = days.iter().map(|d| d.reference).collect();
@@ -615,6 +538,7 @@ pub fn aggregate_report(title: &str, total: &StatsTable, days: &[ReportDay<'_>])
     );
     html += &aggregate_horizon_section(&plant);
     html += &aggregate_day_section(days);
+    html += &sky::aggregate_sky_section(sky, days);
     html += &aggregate_block_section(total);
     html += "</body></html>";
     html
@@ -684,14 +608,14 @@ fn aggregate_day_section(days: &[ReportDay<'_>]) -> String {
     } else {
         html += "<p>One day: its scores are those above.</p>";
     }
-    html += "<table><tr><th>#</th><th>day</th><th>frames (used)</th><th>scored against</th><th>pairs at 5 min</th><th>RMSE 5 min</th><th>skill 5 min</th><th>10 min</th><th>15 min</th></tr>";
+    html += "<table><tr><th>#</th><th>day</th><th>frames (used)</th><th>scored against</th><th>pairs at 5 min</th><th>RMSE 5 min</th><th>skill 5 min</th><th>10 min</th><th>15 min</th><th>sky type</th></tr>";
     for (i, (d, s)) in days.iter().zip(&scores).enumerate() {
         let at = |h: u32| s.get(&h);
         let skill = |h: u32| fmt_opt(at(h).and_then(|x| x.skill), 3);
         let _ = write!(
             html,
-            "<tr><td>{}</td><td style='text-align:left'>{}</td><td>{} ({})</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
-            i + 1, esc(d.name), d.frames, d.frames_used, esc(d.reference), at(300).map_or(0, |x| x.n), fmt_opt(at(300).map(|x| x.rmse_wm2), 1), skill(300), skill(600), skill(900)
+            "<tr><td>{}</td><td style='text-align:left'>{}</td><td>{} ({})</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            i + 1, esc(d.name), d.frames, d.frames_used, esc(d.reference), at(300).map_or(0, |x| x.n), fmt_opt(at(300).map(|x| x.rmse_wm2), 1), skill(300), skill(600), skill(900), esc(d.sky_type)
         );
     }
     html += "</table>";
@@ -796,8 +720,8 @@ mod tests {
         }).collect();
         let total = StatsTable::sum(&days);
         let names = ["2026-06-01", "2026-06-02", "2026-06-03"];
-        let rd: Vec<ReportDay<'_>> = days.iter().zip(names).map(|(t, n)| ReportDay { name: n, frames: 90, frames_used: 88, reference: "truth", stats: t }).collect();
-        let html = aggregate_report("agg", &total, &rd);
+        let rd: Vec<ReportDay<'_>> = days.iter().zip(names).map(|(t, n)| ReportDay { name: n, frames: 90, frames_used: 88, reference: "truth", stats: t, sky_type: "clear" }).collect();
+        let html = aggregate_report("agg", &total, &Default::default(), &rd);
         assert!(!html.contains("NaN") && !html.contains("inf"), "{html}");
         let charts = svgs(&html);
         let titles = ["RMSE by horizon", "Skill against smart persistence by horizon", "CRPS of the ensemble by horizon", "P10–P90 coverage by horizon", "Skill per day (plant)", "RMSE per day (plant)"];
@@ -821,12 +745,12 @@ mod tests {
     #[test]
     fn aggregate_report_of_one_day_without_ensemble_or_scores() {
         let t = sums_table(PLANT_TARGET, 15, 1.0, false);
-        let html = aggregate_report("one", &t, &[ReportDay { name: "d", frames: 5, frames_used: 5, reference: "measurements", stats: &t }]);
+        let html = aggregate_report("one", &t, &Default::default(), &[ReportDay { name: "d", frames: 5, frames_used: 5, reference: "measurements", stats: &t, sky_type: "variable" }]);
         assert_eq!(svgs(&html).len(), 2, "RMSE and skill by horizon only");
         assert!(html.contains("CRPS: n/a") && html.contains("coverage: n/a") && html.contains("One day"));
         assert!(!html.contains("NaN"));
         let empty = StatsTable::default();
-        let html = aggregate_report("none", &empty, &[ReportDay { name: "d", frames: 5, frames_used: 0, reference: "none", stats: &empty }]);
+        let html = aggregate_report("none", &empty, &Default::default(), &[ReportDay { name: "d", frames: 5, frames_used: 0, reference: "none", stats: &empty, sky_type: "none" }]);
         assert!(html.contains("No scored pairs") && svgs(&html).is_empty());
     }
 
