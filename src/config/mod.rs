@@ -86,8 +86,8 @@ pub struct SiteFile {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct SecondCameraSection {
-    /// The camera's calibration file (relative to the site file). Its obstruction mask is used;
-    /// its clear-sky library is not (the default reference is).
+    /// The camera's calibration file (relative to the site file). Its obstruction mask and its
+    /// clear-sky library (from its own `calibrate` run) are used for its segmentation.
     pub calibration: PathBuf,
     /// Position relative to the site origin, (east, north, up) \[m\]; at least
     /// [`crate::stereo::MIN_BASELINE_M`] horizontally from `[camera]`.
@@ -277,6 +277,8 @@ pub struct SecondCamera {
     pub camera: Camera,
     /// Its obstruction mask, if the calibration names one.
     pub obstruction: Option<image::GrayImage>,
+    /// Its own clear-sky library, if its calibration names one (its segmentation's reference).
+    pub clear_reference: Option<crate::segment::Reference>,
     /// Position (east, north, up) \[m\].
     pub position_m: [f64; 3],
     /// Its frames folder for replay, resolved.
@@ -308,20 +310,7 @@ impl Site {
         let calibration: CalibrationFile = read_toml(&calibration_path)?;
         let camera = calibration.validate(&calibration_path)?;
         let obstruction = obstruction_mask(&calibration, &calibration_path, &camera)?;
-        let clear_reference = match &calibration.camera.clear_reference {
-            Some(p) => {
-                let rp = resolve(&calibration_path, p);
-                let invalid = |got: String| ConfigError::Invalid {
-                    file: calibration_path.clone(),
-                    field: "camera.clear_reference".into(),
-                    expected: "a clear-sky library CSV written by `nephocast calibrate`".into(),
-                    got,
-                };
-                let text = std::fs::read_to_string(&rp).map_err(|e| invalid(format!("{}: {e}", rp.display())))?;
-                Some(crate::segment::Reference::from_csv(&text).map_err(|e| invalid(format!("{}: {e}", rp.display())))?)
-            }
-            None => None,
-        };
+        let clear_reference = read_clear_reference(&calibration, &calibration_path)?;
         let cbh_csv = file.clouds.base_height_csv.as_ref().map(|p| resolve(path, p));
         let second_camera = match &file.second_camera {
             Some(s) => {
@@ -329,7 +318,8 @@ impl Site {
                 let cal: CalibrationFile = read_toml(&cp)?;
                 let camera = cal.validate(&cp)?;
                 let obstruction = obstruction_mask(&cal, &cp, &camera)?;
-                Some(SecondCamera { camera, obstruction, position_m: s.position_m, frames: s.frames.as_ref().map(|f| resolve(path, f)), every_s: s.every_s })
+                let clear_reference = read_clear_reference(&cal, &cp)?;
+                Some(SecondCamera { camera, obstruction, clear_reference, position_m: s.position_m, frames: s.frames.as_ref().map(|f| resolve(path, f)), every_s: s.every_s })
             }
             None => None,
         };
@@ -345,6 +335,20 @@ impl Site {
     pub fn clear_sky_model(&self) -> ClearSkyModel {
         self.file.site.clear_sky()
     }
+}
+
+/// A calibration's clear-sky library (`camera.clear_reference`), if it names one.
+fn read_clear_reference(calibration: &CalibrationFile, calibration_path: &Path) -> Result<Option<crate::segment::Reference>, ConfigError> {
+    let Some(p) = &calibration.camera.clear_reference else { return Ok(None) };
+    let rp = resolve(calibration_path, p);
+    let invalid = |got: String| ConfigError::Invalid {
+        file: calibration_path.to_path_buf(),
+        field: "camera.clear_reference".into(),
+        expected: "a clear-sky library CSV written by `nephocast calibrate`".into(),
+        got,
+    };
+    let text = std::fs::read_to_string(&rp).map_err(|e| invalid(format!("{}: {e}", rp.display())))?;
+    Ok(Some(crate::segment::Reference::from_csv(&text).map_err(|e| invalid(format!("{}: {e}", rp.display())))?))
 }
 
 /// A calibration's obstruction mask (white = sky), checked against the camera's size.

@@ -138,9 +138,11 @@ impl Nowcaster {
         }
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let cam_a_m = self.site.file.camera.position_m;
-        let reference_b = crate::segment::Reference::default();
+        // The second camera's own clear-sky library (from its `calibrate` run), else the default.
+        let default_b = crate::segment::Reference::default();
+        let reference_b = sc.clear_reference.as_ref().unwrap_or(&default_b);
         let a = crate::stereo::StereoView { camera: cam, obstruction, position_m: cam_a_m, reference: &self.map_stage.reference, image: &frame.image };
-        let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: &reference_b, image: &img2 };
+        let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: reference_b, image: &img2 };
         let d = sun.direction_enu();
         let sun_dir = Some([d[0] as f32, d[1] as f32, d[2] as f32]);
         match crate::stereo::estimate(&a, &b, sun_dir, &self.site.file.segment, &crate::stereo::StereoParams::default()) {
