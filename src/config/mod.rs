@@ -96,9 +96,23 @@ pub struct SecondCameraSection {
     /// a frame within [`SECOND_FRAME_SLACK_S`] of a first-camera frame is paired with it.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub frames: Option<PathBuf>,
+    /// Folder its frames arrive in for `live` (relative to the site file; written by rename, named
+    /// like the first camera's); each stepped frame is paired with the frame nearest in time within
+    /// [`SECOND_FRAME_SLACK_S`].
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub incoming: Option<PathBuf>,
     /// Run the stereo estimate at most this often \[s\] (default 60).
     #[serde(default = "default_stereo_every_s")]
     pub every_s: f64,
+    /// Take the cloud map's cells this camera sees better (nearer its zenith, away from its sun
+    /// glare, where the first camera is masked) from its paired frame ([`crate::multicam`];
+    /// default true).
+    #[serde(default = "default_true")]
+    pub map_cells: bool,
+}
+
+fn default_true() -> bool {
+    true
 }
 
 fn default_stereo_every_s() -> f64 {
@@ -283,8 +297,12 @@ pub struct SecondCamera {
     pub position_m: [f64; 3],
     /// Its frames folder for replay, resolved.
     pub frames: Option<PathBuf>,
+    /// Its incoming folder for live mode, resolved.
+    pub incoming: Option<PathBuf>,
     /// Least time between stereo estimates \[s\].
     pub every_s: f64,
+    /// Whether the map takes cells from this camera ([`crate::multicam`]).
+    pub map_cells: bool,
 }
 
 impl Site {
@@ -319,7 +337,7 @@ impl Site {
                 let camera = cal.validate(&cp)?;
                 let obstruction = obstruction_mask(&cal, &cp, &camera)?;
                 let clear_reference = read_clear_reference(&cal, &cp)?;
-                Some(SecondCamera { camera, obstruction, clear_reference, position_m: s.position_m, frames: s.frames.as_ref().map(|f| resolve(path, f)), every_s: s.every_s })
+                Some(SecondCamera { camera, obstruction, clear_reference, position_m: s.position_m, frames: s.frames.as_ref().map(|f| resolve(path, f)), incoming: s.incoming.as_ref().map(|f| resolve(path, f)), every_s: s.every_s, map_cells: s.map_cells })
             }
             None => None,
         };
@@ -711,7 +729,9 @@ base_height_m = 1500.0
         let ok = parse("calibration = \"cam2.toml\"\nposition_m = [800.0, 300.0, 3.0]\nframes = \"frames2\"").unwrap();
         ok.validate(Path::new("site.toml")).unwrap();
         let sc = ok.second_camera.as_ref().unwrap();
-        assert_eq!((sc.every_s, sc.frames.as_deref()), (60.0, Some(Path::new("frames2"))));
+        assert_eq!((sc.every_s, sc.frames.as_deref(), sc.map_cells), (60.0, Some(Path::new("frames2")), true));
+        let off = parse("calibration = \"cam2.toml\"\nposition_m = [800.0, 300.0, 3.0]\nmap_cells = false").unwrap();
+        assert!(!off.second_camera.unwrap().map_cells);
         let close = parse("calibration = \"cam2.toml\"\nposition_m = [20.0, 10.0, 3.0]").unwrap();
         let e = close.validate(Path::new("site.toml")).unwrap_err().to_string();
         assert!(e.contains("second_camera.position_m") && e.contains("22.4 m"), "{e}");
