@@ -209,7 +209,23 @@ impl LiveEngine {
             }
         }
         let done: Vec<crate::io::FrameRef> = ready.into_iter().filter(|f| near.as_ref().is_some_and(|n| n.path == f.path) || (*t - f.time).num_milliseconds() > slack_ms).collect();
-        retire_all(&done, &self.opts.health.retention, &self.shared, self.opts.health.log_json);
+        let r = &self.opts.health.retention;
+        let mut n = 0;
+        for f in &done {
+            match ops::retire_as(&f.path, &f.time, r, "second-") {
+                Ok(Some(what)) => {
+                    n += 1;
+                    self.log(&[("event", "retention".into()), ("file", file_name(&f.path)), ("done", what)]);
+                }
+                Ok(None) => {}
+                Err(e) => self.log(&[("event", "retention".into()), ("file", file_name(&f.path)), ("error", e.to_string())]),
+            }
+        }
+        if n > 0
+            && let Ok(mut s) = self.shared.lock()
+        {
+            s.health.frames_retired += n;
+        }
     }
 
     /// Report a stepped frame: health, history and alarm log, notification, events, overlay, the
