@@ -162,8 +162,9 @@ mod tests {
         let (m, count) = sv.merge(&a, &lut_a, &b, 1.0, sun, &seg, &MultiParams::default());
         assert!(count.filled >= 64, "{count:?}");
         assert!((40..48).all(|j| (20..28).all(|i| m.in_view[j * n + i])), "masked cells filled");
-        // A cell in A's glare zone (toward the sun from A) comes from B.
-        let glare_cell = (0..n * n).find(|&k| a.in_view[k] && crate::segment::gamma_deg(lut_a.dir[k], sun) < 5.0).unwrap();
+        // The cell nearest the sun from A (in its glare zone) comes from B.
+        let glare_cell = (0..n * n).filter(|&k| a.in_view[k]).min_by(|&x, &y| crate::segment::gamma_deg(lut_a.dir[x], sun).total_cmp(&crate::segment::gamma_deg(lut_a.dir[y], sun))).unwrap();
+        assert!(crate::segment::gamma_deg(lut_a.dir[glare_cell], sun) < 10.0);
         let lut_b = sv.table.as_ref().unwrap().2.clone();
         assert!(crate::segment::gamma_deg(lut_b.dir[glare_cell], sun) > seg.glare_zone_deg as f32, "B sees the cell outside its glare");
         let from_b = |k: usize| m.class[k] != a.class[k] || !a.in_view[k] || m.score[k].to_bits() != a.score[k].to_bits();

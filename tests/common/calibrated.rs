@@ -25,12 +25,19 @@ pub struct Calibrated {
 /// standing at the scene's camera position with its mast when `at` is `None`, else at `at` (east,
 /// north, up, no mast), through JPEG at the scene's quality, and calibrate it as `calibrate` does.
 pub fn clear_day(spec: &CameraSpec, size_px: u32, at: Option<[f64; 3]>, step_s: f64) -> Calibrated {
-    let mut day = scene("clear-day").unwrap();
+    clear_day_of("clear-day", spec, size_px, at, step_s)
+}
+
+/// [`clear_day`] on the clear-day scene `day` (e.g. `nuisance-clear-day`, whose camera's
+/// imperfections come with it).
+pub fn clear_day_of(day: &str, spec: &CameraSpec, size_px: u32, at: Option<[f64; 3]>, step_s: f64) -> Calibrated {
+    let mut day = scene(day).unwrap();
     day.camera = spec.clone();
     day.size_px = size_px;
     day.frame_step_s = step_s;
     let s = Scene::new(day, 1).unwrap();
-    let truth = spec.camera(size_px);
+    // The scene's own camera (with the clear-day scene's lens field, when it limits it).
+    let truth = s.camera.clone();
     let rays = PixelRays::new(&truth);
     let q = s.spec.jpeg_quality;
     let frames: Vec<_> = s
