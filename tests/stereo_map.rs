@@ -76,7 +76,7 @@ fn second_camera_covers_the_first_cameras_sun_region() {
     write_sequence(&sc, d.path(), false).unwrap();
     let pos_b = [sc.cam_pos_m[0] + OFFSET_M[0], sc.cam_pos_m[1] + OFFSET_M[1], sc.cam_pos_m[2] + OFFSET_M[2]];
     let cal = d.path().join("calibration");
-    calibrated::clear_day_of("nuisance-clear-day", &cam_a, SIZE_PX, None, 1800.0).write(&cal, &cam_a.name);
+    calibrated::clear_day_of("nuisance-clear-day", &cam_a, SIZE_PX, None, 900.0).write(&cal, &cam_a.name);
     calibrated::clear_day(&cam_b, SIZE_PX, Some(pos_b), 900.0).write(&cal, "second");
     let true_b = cam_b.camera(SIZE_PX);
     let rays_b = PixelRays::new(&true_b);
