@@ -97,9 +97,9 @@ impl SecondView {
         &self.table.as_ref().expect("built above").2
     }
 
-    /// Merge B's view into A's map `a` (built on `lut_a`), for a base `factor` times the map plane;
+    /// Merge B's view into A's map (`a`, built on `lut_a`), for a base `factor` times the map plane;
     /// the merged map and what it took from B.
-    pub fn merge(&mut self, a: &CloudMap, lut_a: &Lut, b: &View, factor: f64, sun_dir: Option<[f32; 3]>, seg: &SegmentParams, p: &MultiParams) -> (CloudMap, MergeCount) {
+    pub fn merge(&mut self, (a, lut_a): (&CloudMap, &Lut), b: &View, factor: f64, sun_dir: Option<[f32; 3]>, seg: &SegmentParams, p: &MultiParams) -> (CloudMap, MergeCount) {
         let lut_b = self.table(b, a.grid, factor, p);
         let mut map_b = build_map(b.image, lut_b, sun_dir, seg, b.reference);
         map_b.grid = a.grid;
@@ -159,7 +159,7 @@ mod tests {
         let darker = image::RgbImage::from_pixel(256, 256, image::Rgb([150, 150, 175]));
         let b = View { camera: &cam, obstruction: None, offset_m: [800.0, 0.0, 0.0], reference: &r, image: &darker };
         let mut sv = SecondView::default();
-        let (m, count) = sv.merge(&a, &lut_a, &b, 1.0, sun, &seg, &MultiParams::default());
+        let (m, count) = sv.merge((&a, &lut_a), &b, 1.0, sun, &seg, &MultiParams::default());
         assert!(count.filled >= 64, "{count:?}");
         assert!((40..48).all(|j| (20..28).all(|i| m.in_view[j * n + i])), "masked cells filled");
         // The cell nearest the sun from A (in its glare zone) comes from B.

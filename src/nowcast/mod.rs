@@ -159,7 +159,7 @@ impl Nowcaster {
         let d = sun.direction_enu();
         let sun_dir = Some([d[0] as f32, d[1] as f32, d[2] as f32]);
         let factor = self.stereo.cbh_factor.unwrap_or(1.0);
-        let (merged, count) = self.stereo.view.merge(&map, lut, &b, factor, sun_dir, &self.site.file.segment, &crate::multicam::MultiParams::default());
+        let (merged, count) = self.stereo.view.merge((&map, lut), &b, factor, sun_dir, &self.site.file.segment, &crate::multicam::MultiParams::default());
         self.stereo.last_merge = Some(count);
         std::sync::Arc::new(merged)
     }
