@@ -67,9 +67,9 @@ struct StereoInput {
     last_pair: Option<DateTime<Utc>>,
     /// The second camera's table on the map grid ([`crate::multicam`]).
     view: crate::multicam::SecondView,
-    /// The newest frame's combined base height over the map plane (heights above camera A), for
-    /// placing the second camera's view on the map; 1 before the first frame.
-    cbh_factor: Option<f64>,
+    /// The newest frame's combined base height above camera A \[m\], for placing the second
+    /// camera's view on the map (the map's own plane before the first frame).
+    cbh_above_a_m: Option<f64>,
     /// What the newest frame's map took from the second camera.
     last_merge: Option<crate::multicam::MergeCount>,
 }
@@ -142,7 +142,8 @@ impl Nowcaster {
     }
 
     /// The multi-camera map: the cells of `map` (on `lut`) the second camera sees better, from its
-    /// paired frame ([`crate::multicam`]), placed with the previous frame's combined base height.
+    /// paired frame ([`crate::multicam`]), placed at the previous frame's combined base height
+    /// over this frame's map plane.
     fn second_map_stage(&mut self, t: &DateTime<Utc>, map: std::sync::Arc<CloudMap>, lut: &crate::cloudmap::Lut, sun: &SunPosition) -> std::sync::Arc<CloudMap> {
         self.stereo.last_merge = None;
         let Some(sc) = self.site.second_camera.as_ref().filter(|s| s.map_cells) else { return map };
@@ -158,7 +159,7 @@ impl Nowcaster {
         };
         let d = sun.direction_enu();
         let sun_dir = Some([d[0] as f32, d[1] as f32, d[2] as f32]);
-        let factor = self.stereo.cbh_factor.unwrap_or(1.0);
+        let factor = self.stereo.cbh_above_a_m.map_or(1.0, |h| h / lut.grid.height_m);
         let (merged, count) = self.stereo.view.merge((&map, lut), &b, factor, sun_dir, &self.site.file.segment, &crate::multicam::MultiParams::default());
         self.stereo.last_merge = Some(count);
         std::sync::Arc::new(merged)
@@ -516,7 +517,7 @@ impl Nowcaster {
         self.stereo_stage(frame, reduced, &sun);
         let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
         let cbh_factor = cbh_est.cbh_m / cbh;
-        self.stereo.cbh_factor = Some((cbh_est.cbh_m - cam_z).max(10.0) / (cbh - cam_z).max(10.0));
+        self.stereo.cbh_above_a_m = Some((cbh_est.cbh_m - cam_z).max(10.0));
         let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() };
         self.forecast_stage.tune(cx, &frame.time, &sun, &map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
         let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
