@@ -146,7 +146,8 @@ pub fn select_shard(days: Vec<Day>, shard: Option<Shard>) -> Vec<Day> {
 /// SHA-256 of the configuration, as 64 hex digits: the site file's bytes, then the bytes of each
 /// file it refers to, in this fixed order: the calibration (`camera.calibration`), its obstruction
 /// mask and clear-sky library (`camera.obstruction_mask`, `camera.clear_reference` of the
-/// calibration file), the cloud base height series (`clouds.base_height_csv`). Each part enters as
+/// calibration file), the cloud base height series (`clouds.base_height_csv`), then, with a
+/// `[second_camera]`, its calibration, mask and library likewise. Each part enters as
 /// its name, its length (8 bytes, little-endian) and its bytes; a reference the files do not make
 /// enters as its name and `absent`. Paths resolve as [`crate::config::Site::load`] resolves them.
 ///
@@ -177,17 +178,26 @@ pub fn config_digest(site: &Path) -> Result<String, InputError> {
     };
     let site_bytes = read(site)?;
     part("site", Some(&site_bytes));
-    let cal_path = field(&site_bytes, "camera", "calibration").map(|p| resolve(site, &p));
-    let cal = cal_path.as_deref().map(read).transpose()?;
-    part("camera.calibration", cal.as_deref());
-    for key in ["obstruction_mask", "clear_reference"] {
-        let p = cal.as_deref().zip(cal_path.as_deref()).and_then(|(b, cp)| field(b, "camera", key).map(|p| resolve(cp, &p)));
-        let bytes = p.as_deref().map(read).transpose()?;
-        part(&format!("camera.{key}"), bytes.as_deref());
-    }
+    // A camera's calibration (site section `section`) and the side files it names.
+    let camera_parts = |section: &str, part: &mut dyn FnMut(&str, Option<&[u8]>)| -> Result<(), InputError> {
+        let cal_path = field(&site_bytes, section, "calibration").map(|p| resolve(site, &p));
+        let cal = cal_path.as_deref().map(read).transpose()?;
+        part(&format!("{section}.calibration"), cal.as_deref());
+        for key in ["obstruction_mask", "clear_reference"] {
+            let p = cal.as_deref().zip(cal_path.as_deref()).and_then(|(b, cp)| field(b, "camera", key).map(|p| resolve(cp, &p)));
+            let bytes = p.as_deref().map(read).transpose()?;
+            part(&format!("{section}.{key}"), bytes.as_deref());
+        }
+        Ok(())
+    };
+    camera_parts("camera", &mut part)?;
     let cbh = field(&site_bytes, "clouds", "base_height_csv").map(|p| resolve(site, &p));
     let bytes = cbh.as_deref().map(read).transpose()?;
     part("clouds.base_height_csv", bytes.as_deref());
+    let second = std::str::from_utf8(&site_bytes).ok().and_then(|t| toml::from_str::<toml::Value>(t).ok()).is_some_and(|v| v.get("second_camera").is_some());
+    if second {
+        camera_parts("second_camera", &mut part)?;
+    }
     Ok(h.finalize().iter().map(|b| format!("{b:02x}")).collect())
 }
 
@@ -405,6 +415,14 @@ mod tests {
             assert!(!seen.contains(&now), "changing {file} left the digest as it was");
             seen.push(now);
         }
+        // A second camera's calibration and its side files count too.
+        w("site.toml", "[camera]\ncalibration = \"cal/cam.toml\"\n[clouds]\nbase_height_csv = \"cbh.csv\"\n[second_camera]\ncalibration = \"cal/two.toml\"\n");
+        w("cal/two.toml", "[camera]\nclear_reference = \"two.csv\"\n");
+        w("cal/two.csv", "library of two");
+        let two = config_digest(&site).unwrap();
+        assert!(!seen.contains(&two), "adding a second camera left the digest as it was");
+        w("cal/two.csv", "another library of two");
+        assert_ne!(config_digest(&site).unwrap(), two, "the second camera's library is covered");
         // A referenced file that is missing is an error naming it.
         std::fs::remove_file(d.path().join("cal/mask.png")).unwrap();
         let e = config_digest(&site).unwrap_err().to_string();

@@ -63,6 +63,7 @@ pub mod io;
 pub mod measured;
 pub mod merge;
 pub mod motion;
+pub mod multicam;
 pub mod nowcast;
 pub mod output_set;
 pub mod overlay;

@@ -86,8 +86,8 @@ pub struct SiteFile {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct SecondCameraSection {
-    /// The camera's calibration file (relative to the site file). Its obstruction mask is used;
-    /// its clear-sky library is not (the default reference is).
+    /// The camera's calibration file (relative to the site file). Its obstruction mask and its
+    /// clear-sky library (from its own `calibrate` run) are used for its segmentation.
     pub calibration: PathBuf,
     /// Position relative to the site origin, (east, north, up) \[m\]; at least
     /// [`crate::stereo::MIN_BASELINE_M`] horizontally from `[camera]`.
@@ -96,9 +96,23 @@ pub struct SecondCameraSection {
     /// a frame within [`SECOND_FRAME_SLACK_S`] of a first-camera frame is paired with it.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub frames: Option<PathBuf>,
+    /// Folder its frames arrive in for `live` (relative to the site file; written by rename, named
+    /// like the first camera's); each stepped frame is paired with the frame nearest in time within
+    /// [`SECOND_FRAME_SLACK_S`].
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub incoming: Option<PathBuf>,
     /// Run the stereo estimate at most this often \[s\] (default 60).
     #[serde(default = "default_stereo_every_s")]
     pub every_s: f64,
+    /// Take the cloud map's cells this camera sees better (nearer its zenith, away from its sun
+    /// glare, where the first camera is masked) from its paired frame ([`crate::multicam`];
+    /// default true).
+    #[serde(default = "default_true")]
+    pub map_cells: bool,
+}
+
+fn default_true() -> bool {
+    true
 }
 
 fn default_stereo_every_s() -> f64 {
@@ -277,12 +291,18 @@ pub struct SecondCamera {
     pub camera: Camera,
     /// Its obstruction mask, if the calibration names one.
     pub obstruction: Option<image::GrayImage>,
+    /// Its own clear-sky library, if its calibration names one (its segmentation's reference).
+    pub clear_reference: Option<crate::segment::Reference>,
     /// Position (east, north, up) \[m\].
     pub position_m: [f64; 3],
     /// Its frames folder for replay, resolved.
     pub frames: Option<PathBuf>,
+    /// Its incoming folder for live mode, resolved.
+    pub incoming: Option<PathBuf>,
     /// Least time between stereo estimates \[s\].
     pub every_s: f64,
+    /// Whether the map takes cells from this camera ([`crate::multicam`]).
+    pub map_cells: bool,
 }
 
 impl Site {
@@ -308,20 +328,7 @@ impl Site {
         let calibration: CalibrationFile = read_toml(&calibration_path)?;
         let camera = calibration.validate(&calibration_path)?;
         let obstruction = obstruction_mask(&calibration, &calibration_path, &camera)?;
-        let clear_reference = match &calibration.camera.clear_reference {
-            Some(p) => {
-                let rp = resolve(&calibration_path, p);
-                let invalid = |got: String| ConfigError::Invalid {
-                    file: calibration_path.clone(),
-                    field: "camera.clear_reference".into(),
-                    expected: "a clear-sky library CSV written by `nephocast calibrate`".into(),
-                    got,
-                };
-                let text = std::fs::read_to_string(&rp).map_err(|e| invalid(format!("{}: {e}", rp.display())))?;
-                Some(crate::segment::Reference::from_csv(&text).map_err(|e| invalid(format!("{}: {e}", rp.display())))?)
-            }
-            None => None,
-        };
+        let clear_reference = read_clear_reference(&calibration, &calibration_path)?;
         let cbh_csv = file.clouds.base_height_csv.as_ref().map(|p| resolve(path, p));
         let second_camera = match &file.second_camera {
             Some(s) => {
@@ -329,7 +336,8 @@ impl Site {
                 let cal: CalibrationFile = read_toml(&cp)?;
                 let camera = cal.validate(&cp)?;
                 let obstruction = obstruction_mask(&cal, &cp, &camera)?;
-                Some(SecondCamera { camera, obstruction, position_m: s.position_m, frames: s.frames.as_ref().map(|f| resolve(path, f)), every_s: s.every_s })
+                let clear_reference = read_clear_reference(&cal, &cp)?;
+                Some(SecondCamera { camera, obstruction, clear_reference, position_m: s.position_m, frames: s.frames.as_ref().map(|f| resolve(path, f)), incoming: s.incoming.as_ref().map(|f| resolve(path, f)), every_s: s.every_s, map_cells: s.map_cells })
             }
             None => None,
         };
@@ -345,6 +353,20 @@ impl Site {
     pub fn clear_sky_model(&self) -> ClearSkyModel {
         self.file.site.clear_sky()
     }
+}
+
+/// A calibration's clear-sky library (`camera.clear_reference`), if it names one.
+fn read_clear_reference(calibration: &CalibrationFile, calibration_path: &Path) -> Result<Option<crate::segment::Reference>, ConfigError> {
+    let Some(p) = &calibration.camera.clear_reference else { return Ok(None) };
+    let rp = resolve(calibration_path, p);
+    let invalid = |got: String| ConfigError::Invalid {
+        file: calibration_path.to_path_buf(),
+        field: "camera.clear_reference".into(),
+        expected: "a clear-sky library CSV written by `nephocast calibrate`".into(),
+        got,
+    };
+    let text = std::fs::read_to_string(&rp).map_err(|e| invalid(format!("{}: {e}", rp.display())))?;
+    Ok(Some(crate::segment::Reference::from_csv(&text).map_err(|e| invalid(format!("{}: {e}", rp.display())))?))
 }
 
 /// A calibration's obstruction mask (white = sky), checked against the camera's size.
@@ -707,7 +729,9 @@ base_height_m = 1500.0
         let ok = parse("calibration = \"cam2.toml\"\nposition_m = [800.0, 300.0, 3.0]\nframes = \"frames2\"").unwrap();
         ok.validate(Path::new("site.toml")).unwrap();
         let sc = ok.second_camera.as_ref().unwrap();
-        assert_eq!((sc.every_s, sc.frames.as_deref()), (60.0, Some(Path::new("frames2"))));
+        assert_eq!((sc.every_s, sc.frames.as_deref(), sc.map_cells), (60.0, Some(Path::new("frames2")), true));
+        let off = parse("calibration = \"cam2.toml\"\nposition_m = [800.0, 300.0, 3.0]\nmap_cells = false").unwrap();
+        assert!(!off.second_camera.unwrap().map_cells);
         let close = parse("calibration = \"cam2.toml\"\nposition_m = [20.0, 10.0, 3.0]").unwrap();
         let e = close.validate(Path::new("site.toml")).unwrap_err().to_string();
         assert!(e.contains("second_camera.position_m") && e.contains("22.4 m"), "{e}");

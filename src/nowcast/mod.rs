@@ -63,6 +63,15 @@ struct StereoInput {
     last_run: Option<DateTime<Utc>>,
     /// Why its newest run gave no estimate, if it gave none.
     last_refusal: Option<String>,
+    /// The second frame the estimator last used (a frame is used once).
+    last_pair: Option<DateTime<Utc>>,
+    /// The second camera's table on the map grid ([`crate::multicam`]).
+    view: crate::multicam::SecondView,
+    /// The newest frame's combined base height above camera A \[m\], for placing the second
+    /// camera's view on the map (the map's own plane before the first frame).
+    cbh_above_a_m: Option<f64>,
+    /// What the newest frame's map took from the second camera.
+    last_merge: Option<crate::multicam::MergeCount>,
 }
 
 impl Nowcaster {
@@ -118,29 +127,69 @@ impl Nowcaster {
         self.stereo.last_refusal.as_deref()
     }
 
+    /// What the newest frame's cloud map took from the second camera (`None` when it took nothing:
+    /// no second camera, `map_cells = false`, or no paired frame).
+    pub fn second_map_cells(&self) -> Option<crate::multicam::MergeCount> {
+        self.stereo.last_merge
+    }
+
+    /// The pending second-camera frame when it pairs with a frame at `t` and has its calibration's
+    /// size.
+    fn paired_second_frame<'a>(pending: Option<&'a (DateTime<Utc>, image::RgbImage)>, sc: &crate::config::SecondCamera, t: &DateTime<Utc>) -> Option<&'a image::RgbImage> {
+        let p = pending?;
+        let gap_s = (p.0 - *t).num_milliseconds() as f64 / 1000.0;
+        (gap_s.abs() <= crate::config::SECOND_FRAME_SLACK_S && p.1.dimensions() == (sc.camera.width_px, sc.camera.height_px)).then_some(&p.1)
+    }
+
+    /// The multi-camera map: the cells of `map` (on `lut`) the second camera sees better, from its
+    /// paired frame ([`crate::multicam`]), placed at the previous frame's combined base height
+    /// over this frame's map plane.
+    fn second_map_stage(&mut self, t: &DateTime<Utc>, map: std::sync::Arc<CloudMap>, lut: &crate::cloudmap::Lut, sun: &SunPosition) -> std::sync::Arc<CloudMap> {
+        self.stereo.last_merge = None;
+        let Some(sc) = self.site.second_camera.as_ref().filter(|s| s.map_cells) else { return map };
+        let Some(img2) = Self::paired_second_frame(self.stereo.pending.as_ref(), sc, t) else { return map };
+        let a_m = self.site.file.camera.position_m;
+        let default_b = crate::segment::Reference::default();
+        let b = crate::multicam::View {
+            camera: &sc.camera,
+            obstruction: sc.obstruction.as_ref(),
+            offset_m: [sc.position_m[0] - a_m[0], sc.position_m[1] - a_m[1], sc.position_m[2] - a_m[2]],
+            reference: sc.clear_reference.as_ref().unwrap_or(&default_b),
+            image: img2,
+        };
+        let d = sun.direction_enu();
+        let sun_dir = Some([d[0] as f32, d[1] as f32, d[2] as f32]);
+        let factor = self.stereo.cbh_above_a_m.map_or(1.0, |h| h / lut.grid.height_m);
+        let (merged, count) = self.stereo.view.merge((&map, lut), &b, factor, sun_dir, &self.site.file.segment, &crate::multicam::MultiParams::default());
+        self.stereo.last_merge = Some(count);
+        std::sync::Arc::new(merged)
+    }
+
     /// Run the stereo estimate on this frame and the pending second-camera frame, when they pair
     /// and the last run is at least `every_s` old; an estimate goes to the base-height state.
     fn stereo_stage(&mut self, frame: &Frame, reduced: bool, sun: &SunPosition) {
         let Some(sc) = &self.site.second_camera else { return };
-        let Some((t2, _)) = &self.stereo.pending else { return };
+        let Some((t2, img2)) = &self.stereo.pending else { return };
         let gap_s = (*t2 - frame.time).num_milliseconds() as f64 / 1000.0;
-        if gap_s.abs() > crate::config::SECOND_FRAME_SLACK_S {
+        if gap_s.abs() > crate::config::SECOND_FRAME_SLACK_S || self.stereo.last_pair == Some(*t2) {
             return;
         }
         if self.stereo.last_run.is_some_and(|l| ((frame.time - l).num_milliseconds() as f64) / 1000.0 < sc.every_s) {
             return;
         }
-        let Some((_, img2)) = self.stereo.pending.take() else { return };
         self.stereo.last_run = Some(frame.time);
+        self.stereo.last_pair = Some(*t2);
         if img2.dimensions() != (sc.camera.width_px, sc.camera.height_px) {
             self.stereo.last_refusal = Some(format!("second camera frame is {}x{} px, its calibration {}x{}", img2.width(), img2.height(), sc.camera.width_px, sc.camera.height_px));
             return;
         }
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let cam_a_m = self.site.file.camera.position_m;
-        let reference_b = crate::segment::Reference::default();
+        // The second camera's own clear-sky library (from its `calibrate` run), else the default.
+        let default_b = crate::segment::Reference::default();
+        let reference_b = sc.clear_reference.as_ref().unwrap_or(&default_b);
         let a = crate::stereo::StereoView { camera: cam, obstruction, position_m: cam_a_m, reference: &self.map_stage.reference, image: &frame.image };
-        let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: &reference_b, image: &img2 };
+        let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: reference_b, image: img2 };
         let d = sun.direction_enu();
         let sun_dir = Some([d[0] as f32, d[1] as f32, d[2] as f32]);
         match crate::stereo::estimate(&a, &b, sun_dir, &self.site.file.segment, &crate::stereo::StereoParams::default()) {
@@ -460,8 +509,10 @@ impl Nowcaster {
         let t_qc = Clock::now();
         let disk = crate::sundisk::observe(&frame.image, cam, obstruction, &sun, self.site.file.irradiance.sun_disk_radius_deg, self.site.file.segment.saturation_level);
         let (map, [cf, thin_cf]) = self.map_stage.build(&frame.image, &lut, &sun, &self.site.file.segment);
+        // The sun's record reads this camera's own map, before the second camera fills it.
         let seen = disk.and_then(|d| crate::sundisk::SunThroughCloud::read(d, &map, &lut, &sun));
         self.forecast_stage.observe_sun(&self.site.file.irradiance, seen);
+        let map = self.second_map_stage(&frame.time, map, &lut, &sun);
         let t_map = Clock::now();
         let dt_s = self.frame_qc.since_last_s(&frame.time);
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
@@ -470,6 +521,7 @@ impl Nowcaster {
         self.stereo_stage(frame, reduced, &sun);
         let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
         let cbh_factor = cbh_est.cbh_m / cbh;
+        self.stereo.cbh_above_a_m = Some((cbh_est.cbh_m - cam_z).max(10.0));
         let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() };
         self.forecast_stage.tune(cx, &frame.time, &sun, &map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
         let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);

@@ -179,6 +179,7 @@ impl LiveEngine {
     /// processed: out of order, counted by the engine.
     fn step(&mut self, newest: &crate::io::FrameRef) -> Stepped {
         let t0 = std::time::Instant::now();
+        self.offer_second_frame(&newest.time);
         let intake = &self.intake;
         let crate::nowcast::Stepped { frame, result, clock_note } = self.nc.step_with(newest.time, Utc::now(), || crate::intake::read_frame(&newest.path, intake));
         if let Some(n) = clock_note {
@@ -189,6 +190,42 @@ impl LiveEngine {
         }
         self.watch.taken(newest, result.is_ok());
         Stepped { frame, result, latency_ms: t0.elapsed().as_secs_f64() * 1000.0 }
+    }
+
+    /// With `[second_camera] incoming`: offer the engine the second camera's ready frame nearest in
+    /// time to `t` within [`crate::config::SECOND_FRAME_SLACK_S`] (decoded whole, as replay does),
+    /// then retire (by the retention policy) that frame and those too old to pair with a later
+    /// frame (a frame newer than `t` stays for the next step). A second frame that does not read is logged and left out; the step goes on.
+    fn offer_second_frame(&mut self, t: &DateTime<Utc>) {
+        let Some(dir) = self.nc.site().second_camera.as_ref().and_then(|s| s.incoming.clone()) else { return };
+        // Written by rename, as the first camera's: a listed frame is whole.
+        let Ok((ready, _)) = list_frames(&dir) else { return };
+        let slack_ms = (crate::config::SECOND_FRAME_SLACK_S * 1000.0) as i64;
+        let near = ready.iter().filter(|f| (f.time - *t).num_milliseconds().abs() <= slack_ms).min_by_key(|f| (f.time - *t).num_milliseconds().abs()).cloned();
+        if let Some(f) = &near {
+            match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
+                Ok(img) => self.nc.offer_second_frame(f.time, img),
+                Err(e) => self.log(&[("event", "second_frame".into()), ("file", file_name(&f.path)), ("outcome", "unreadable".into()), ("reason", e.to_string())]),
+            }
+        }
+        let done: Vec<crate::io::FrameRef> = ready.into_iter().filter(|f| near.as_ref().is_some_and(|n| n.path == f.path) || (*t - f.time).num_milliseconds() > slack_ms).collect();
+        let r = &self.opts.health.retention;
+        let mut n = 0;
+        for f in &done {
+            match ops::retire_as(&f.path, &f.time, r, "second-") {
+                Ok(Some(what)) => {
+                    n += 1;
+                    self.log(&[("event", "retention".into()), ("file", file_name(&f.path)), ("done", what)]);
+                }
+                Ok(None) => {}
+                Err(e) => self.log(&[("event", "retention".into()), ("file", file_name(&f.path)), ("error", e.to_string())]),
+            }
+        }
+        if n > 0
+            && let Ok(mut s) = self.shared.lock()
+        {
+            s.health.frames_retired += n;
+        }
     }
 
     /// Report a stepped frame: health, history and alarm log, notification, events, overlay, the

@@ -348,6 +348,15 @@ pub fn untimed_files(dir: &Path) -> Vec<String> {
 /// # Errors
 /// The move or delete failed.
 pub fn retire(path: &Path, time: &DateTime<Utc>, r: &Retention) -> std::io::Result<Option<String>> {
+    retire_as(path, time, r, "")
+}
+
+/// [`retire`], an archived file's name prefixed by `prefix` (the second camera's frames carry
+/// `second-`, so that they never replace the first camera's of the same time in the archive).
+///
+/// # Errors
+/// The file system's.
+pub fn retire_as(path: &Path, time: &DateTime<Utc>, r: &Retention, prefix: &str) -> std::io::Result<Option<String>> {
     match r {
         Retention::Keep => Ok(None),
         Retention::Delete => {
@@ -357,7 +366,7 @@ pub fn retire(path: &Path, time: &DateTime<Utc>, r: &Retention) -> std::io::Resu
         Retention::Archive(dir) => {
             let day = dir.join(time.format("%Y-%m-%d").to_string());
             std::fs::create_dir_all(&day)?;
-            let to = day.join(path.file_name().unwrap_or_default());
+            let to = day.join(format!("{prefix}{}", path.file_name().unwrap_or_default().to_string_lossy()));
             std::fs::rename(path, &to)?;
             Ok(Some(format!("archived to {}", to.display())))
         }
