@@ -61,6 +61,7 @@ pub mod forecast;
 pub mod intake;
 pub mod io;
 pub mod measured;
+pub mod meter;
 pub mod merge;
 pub mod motion;
 pub mod nowcast;

@@ -227,9 +227,8 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
 /// # Errors
 /// As [`evaluate_measured`].
 pub fn measured_mean_ghi(site: &Site, measurements: &Path) -> Result<Vec<(DateTime<Utc>, f64)>, InputError> {
-    let f = &site.file.site;
     let mut m = Measurements::read_csv(measurements)?;
-    m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
+    m.screen_site(measurements, &site.file)?;
     let cols: Vec<usize> = pyranometer_columns(site, &m, measurements)?.iter().map(|c| c.0).collect();
     let mut none = BTreeMap::new();
     Ok(m.times.iter().map(|t| (*t, mean_reading(&m, &cols, t, &mut none).unwrap_or(f64::NAN))).collect())
@@ -241,9 +240,8 @@ pub fn measured_mean_ghi(site: &Site, measurements: &Path) -> Result<Vec<(DateTi
 /// # Errors
 /// As [`evaluate_measured`].
 pub fn scored_pairs(site: &Site, replay_out: &Path, measurements: &Path) -> Result<ScoredPairs, InputError> {
-    let f = &site.file.site;
     let mut m = Measurements::read_csv(measurements)?;
-    let screen = m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
+    let screen = m.screen_site(measurements, &site.file)?;
     let cols = pyranometer_columns(site, &m, measurements)?;
     let mut excluded: BTreeMap<String, usize> = BTreeMap::new();
     let all: Vec<usize> = cols.iter().map(|c| c.0).collect();

@@ -7,7 +7,7 @@
 mod calibration;
 mod modbus_feed;
 
-pub use modbus_feed::{MAX_MODBUS_REGISTERS, ModbusFeedSection, RegisterFormat, RegisterKind, RegisterSpec, WordOrder};
+pub use modbus_feed::{MAX_MODBUS_REGISTERS, ModbusFeedSection, Quantity, RegisterFormat, RegisterKind, RegisterSpec, WordOrder};
 pub use calibration::{CalibrationFile, CameraCalibration, FitRecord, MIN_DETECTIONS_PER_PARAMETER, MIN_FIT_AZIMUTH_SPAN_DEG, MIN_FIT_DETECTIONS};
 
 use std::path::{Path, PathBuf};
@@ -436,7 +436,8 @@ impl SiteFile {
         }
         if let Some(m) = &self.measurements_modbus {
             let names: Vec<String> = self.pyranometers.iter().map(|p| p.name.clone()).collect();
-            m.validate(&c, &names)?;
+            let meters: Vec<String> = crate::meter::capacities_kw(self).into_iter().map(|x| x.0).collect();
+            m.validate(&c, &names, &meters)?;
         }
         if let Some(s) = &self.second_camera {
             for (i, v) in s.position_m.iter().enumerate() {

@@ -225,6 +225,14 @@ impl LiveEngine {
                     .map(|(t, g)| serde_json::json!({"time_utc": fmt_time(&t), "ghi_wm2": g}))
                     .collect::<Vec<_>>()
                     .into();
+                // The plant meter's (or the block meters' summed) measured power, likewise.
+                j["plant_power_measured"] = self
+                    .nc
+                    .measured_plant_power(n.time - chrono::Duration::minutes(30))
+                    .into_iter()
+                    .map(|(t, p)| serde_json::json!({"time_utc": fmt_time(&t), "power_kw": p}))
+                    .collect::<Vec<_>>()
+                    .into();
                 latest = Some(j);
                 self.log_nowcast(n, valid, &mut events);
                 events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name(), "data_valid": valid, "health": health_state}).to_string());
@@ -356,7 +364,7 @@ impl FeedSource {
     /// The Modbus poller's thread could not be started.
     pub(super) fn open(opts: &LiveOptions, site: &crate::config::SiteFile) -> std::io::Result<Option<FeedSource>> {
         Ok(match (&site.measurements_modbus, opts.health.measurements.as_deref()) {
-            (Some(s), _) => Some(FeedSource::Modbus(Box::new(modbus_feed::ModbusPoller::start(s, site.site.observer())?))),
+            (Some(s), _) => Some(FeedSource::Modbus(Box::new(modbus_feed::ModbusPoller::start(s, site)?))),
             (None, Some(p)) => Some(FeedSource::Csv(ops::MeasurementFeed::new(p))),
             (None, None) => None,
         })

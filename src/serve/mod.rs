@@ -345,8 +345,9 @@ pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
         // One read now; a device out of reach is a warning (live mode starts and keeps trying).
         match modbus_feed::probe(m) {
             Ok(values) => {
-                let v: Vec<String> = values.iter().map(|(c, v)| format!("{c} {v:.1}")).collect();
-                out.push(format!("measurements feed: read now (W/m²): {}", v.join(", ")));
+                let unit = |c: &str| if crate::config::Quantity::of(c) == Some(crate::config::Quantity::Power) { "kW" } else { "W/m²" };
+                let v: Vec<String> = values.iter().map(|(c, v)| format!("{c} {v:.1} {}", unit(c))).collect();
+                out.push(format!("measurements feed: read now: {}", v.join(", ")));
             }
             Err(e) => out.push(format!("warning: measurements feed: Modbus TCP {e}; live mode starts anyway and keeps connecting")),
         }
