@@ -17,6 +17,16 @@
 //! Coimbra, Kleissl & Marquez 2013); CRPS of the plant ensemble (Gneiting & Raftery 2007); the share
 //! of readings inside P10–P90.
 //!
+//! # Plant power
+//! When the measurements hold the plant's meters ([`crate::meter`]: `power_plant_kw`, or
+//! `power_<block>_kw` for every block), the plant's forecast AC power (`power_kw`, with
+//! `power_p10_kw`/`power_p90_kw`) is scored against the metered power at the target time per
+//! horizon ([`PowerHorizon`]): RMSE, MAE, MBE, skill against plain persistence of the metered power
+//! completed by the issue time (power is not scaled by the clear-sky index: clipping breaks the
+//! proportion), and the share of readings inside P10–P90. Rows with the clear-sky GHI under 50
+//! W/m² are left out, as for irradiance. Live mode reads the same meter columns with the same
+//! screening.
+//!
 //! # Ramps
 //! Under `[evaluation.ramps]` ([`EvalRampParams`]): ramps in the pyranometers' mean GHI (a change
 //! over `window_min` of at least `threshold_pct` of 1000 W/m² or of the clear-sky GHI; a run of
@@ -65,6 +75,27 @@ pub struct MeasuredHorizon {
     pub coverage_p10_p90: f64,
 }
 
+/// Plant AC power scores at one horizon against the plant's meters.
+#[derive(Debug, Clone, Serialize)]
+pub struct PowerHorizon {
+    /// Horizon \[s\].
+    pub horizon_s: u32,
+    /// Pairs scored.
+    pub n: usize,
+    /// RMSE \[kW\].
+    pub rmse_kw: f64,
+    /// MAE \[kW\].
+    pub mae_kw: f64,
+    /// MBE (forecast − metered) \[kW\].
+    pub mbe_kw: f64,
+    /// RMSE of plain persistence of the metered power on the same pairs \[kW\].
+    pub rmse_persistence_kw: f64,
+    /// `1 − RMSE / RMSE_persistence`.
+    pub skill: f64,
+    /// Share of readings inside P10–P90.
+    pub coverage_p10_p90: f64,
+}
+
 /// Pooled 5–15 min scores of a subset (a sky type or a block).
 #[derive(Debug, Clone, Serialize)]
 pub struct Pooled {
@@ -99,6 +130,9 @@ pub struct MeasuredEvaluation {
     pub ramp_definition: EvalRampParams,
     /// Ramp POD, FAR and CSI per lead time (empty without `ramps.csv`).
     pub ramps: Vec<MeasuredRampScore>,
+    /// Plant AC power against the plant's meters per horizon (empty without meter columns).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub plant_power: Vec<PowerHorizon>,
 }
 
 /// A scored plant pair: forecast, measured, smart persistence, CRPS, inside P10–P90 (1 or 0).
@@ -176,6 +210,8 @@ pub struct ScoredPairs {
     measurements: Measurements,
     plant_columns: Vec<usize>,
     issues: Vec<DateTime<Utc>>,
+    /// Plant power pairs per horizon (forecast, metered, persistence, unused, inside P10–P90).
+    power_pairs: BTreeMap<u32, Vec<Pair>>,
 }
 
 /// Score a replay's forecasts against a measurements CSV for a site.
@@ -218,6 +254,7 @@ pub fn evaluate_measured(site: &Site, replay_out: &Path, measurements: &Path) ->
         screened: sp.screened,
         ramp_definition: site.file.evaluation.ramps.clone(),
         ramps,
+        plant_power: power_scores(&sp.power_pairs),
     })
 }
 
@@ -256,7 +293,16 @@ pub fn scored_pairs(site: &Site, replay_out: &Path, measurements: &Path) -> Resu
             pairs.push(p);
         }
     }
-    Ok(ScoredPairs { pairs, excluded, screened: screen.counts(), measurements: m, plant_columns: all, issues })
+    let meters = crate::meter::MeterColumns::find(&site.file, &m);
+    let mut power_pairs: BTreeMap<u32, Vec<Pair>> = BTreeMap::new();
+    if meters.has_plant_power() {
+        for r in rows.iter().filter(|r| r.get("block").is_some_and(|b| b == crate::plant::PLANT_TARGET)) {
+            if let Some((h, p)) = power_pair_of(r, &m, &meters) {
+                power_pairs.entry(h).or_default().push(p);
+            }
+        }
+    }
+    Ok(ScoredPairs { pairs, excluded, screened: screen.counts(), measurements: m, plant_columns: all, issues, power_pairs })
 }
 
 /// The pair of one forecast row, or `None` (counted in `excluded` by reason) when it cannot be
@@ -304,6 +350,45 @@ fn pair_of(
     let crps = if is_plant { members.get(&(issue, h)).map(|v| crps_ensemble(v, obs)) } else { None };
     let band = |k: &str| Some(num(k)).filter(|v| !v.is_nan());
     Some(MeasuredPair { issue, target: block.clone(), horizon_s: h, forecast: num("ghi_wm2"), observed: obs, persistence: sp, crps, p10: band("ghi_p10_wm2"), p90: band("ghi_p90_wm2") })
+}
+
+/// The plant power pair of one plant forecast row: its horizon and (forecast, metered,
+/// persistence, NaN, inside P10–P90); `None` at horizon 0, with the sun low, or without a metered
+/// value at the target or the issue time.
+fn power_pair_of(r: &HashMap<String, String>, m: &Measurements, meters: &crate::meter::MeterColumns) -> Option<(u32, Pair)> {
+    let num = |k: &str| r.get(k).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
+    let time = |k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
+    let (issue, target, h) = (time("issue_time_utc")?, time("target_time_utc")?, num("horizon_s"));
+    let forecast = num("power_kw");
+    if !(h > 0.0) || !forecast.is_finite() || !(num("ghi_clear_wm2") >= MIN_CLEAR_WM2) {
+        return None;
+    }
+    let observed = crate::meter::plant_power_at(m, meters, &target)?;
+    let persistence = crate::meter::plant_power_completed_at(m, meters, &issue)?;
+    let inside = (num("power_p10_kw")..=num("power_p90_kw")).contains(&observed);
+    Some((h as u32, (forecast, observed, persistence, f64::NAN, f64::from(u8::from(inside)))))
+}
+
+/// The plant power scores per horizon from its pairs.
+fn power_scores(per_h: &BTreeMap<u32, Vec<Pair>>) -> Vec<PowerHorizon> {
+    per_h
+        .iter()
+        .map(|(h, v)| {
+            let pairs: Vec<(f64, f64, f64)> = v.iter().map(|x| (x.0, x.1, x.2)).collect();
+            let p = pooled(&pairs);
+            let n = v.len() as f64;
+            PowerHorizon {
+                horizon_s: *h,
+                n: v.len(),
+                rmse_kw: p.rmse_wm2,
+                mae_kw: v.iter().map(|x| (x.0 - x.1).abs()).sum::<f64>() / n,
+                mbe_kw: p.mbe_wm2,
+                rmse_persistence_kw: p.rmse_persistence_wm2,
+                skill: p.skill,
+                coverage_p10_p90: v.iter().map(|x| x.4).sum::<f64>() / n,
+            }
+        })
+        .collect()
 }
 
 /// The sky type of the 30 minutes before `issue`, from the clear-sky index of the mean of the
@@ -475,6 +560,23 @@ pub fn print_measured(e: &MeasuredEvaluation) {
                 fmt_score(r.far, 2),
                 fmt_score(r.csi, 2),
                 r.issues_not_scored
+            );
+        }
+    }
+    if !e.plant_power.is_empty() {
+        crate::say!("plant AC power against the plant's meters [kW] (persistence: the metered power at issue)");
+        crate::say!("horizon      n     RMSE      MAE      MBE  RMSE(pers)  skill  P10–P90");
+        for h in &e.plant_power {
+            crate::say!(
+                "{:>5} min {:>5} {:>8.1} {:>8.1} {:>8.1} {:>11.1} {:>6} {:>8}",
+                h.horizon_s / 60,
+                h.n,
+                h.rmse_kw,
+                h.mae_kw,
+                h.mbe_kw,
+                h.rmse_persistence_kw,
+                fmt_score(h.skill, 2),
+                fmt_score(h.coverage_p10_p90, 2)
             );
         }
     }

@@ -144,6 +144,15 @@ pub fn plant_power_at(m: &Measurements, cols: &MeterColumns, t: &DateTime<Utc>) 
     within.then(|| plant_power_at_row(m, cols, i)).flatten()
 }
 
+/// The measured plant power of the newest row whose averaging period had ended by `t` (a live
+/// system has nothing newer), when that row began at most three periods before `t`: plain
+/// persistence's value at an issue time.
+pub fn plant_power_completed_at(m: &Measurements, cols: &MeterColumns, t: &DateTime<Utc>) -> Option<f64> {
+    let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
+    let i = m.times.partition_point(|x| *x + period <= *t).checked_sub(1)?;
+    (*t - m.times[i] <= period * 3).then(|| plant_power_at_row(m, cols, i)).flatten()
+}
+
 /// The measured plant power of every row whose averaging period began at or after `since`,
 /// stamped at the middle of its period; rows without a usable value are left out (what live mode
 /// shows against the forecast).
@@ -217,6 +226,10 @@ mod tests {
         assert_eq!(plant_power_at_row(&m, &cols, 2 * run), None, "a gap");
         let t = m.times[3] + chrono::Duration::seconds(30);
         assert_eq!(plant_power_at(&m, &cols, &t), Some(8000.0));
+        // At 10:03:30 the newest completed row is 10:02's; four periods on, none is recent enough.
+        assert_eq!(plant_power_completed_at(&m, &cols, &t), Some(8000.0));
+        let late = *m.times.last().unwrap() + chrono::Duration::minutes(5);
+        assert_eq!(plant_power_completed_at(&m, &cols, &late), None);
         assert_eq!(plant_power_since(&m, &cols, m.times[run]).len(), run, "the clipping rows; the gap left out");
     }
 
