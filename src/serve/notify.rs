@@ -248,36 +248,36 @@ impl Delivery {
     /// Deliver one body: retried with back-off until a 2xx answer, a refusal, or the last attempt.
     async fn deliver(&self, body: String, st: &NotifyStats) {
         let (opts, shown, log) = (&self.opts, &self.shown, &self.log);
-    let mut wait = opts.backoff_first;
-    for attempt in 1..=opts.max_attempts.max(1) {
-        let outcome = tokio::time::timeout(opts.attempt_timeout, self.post(&body)).await.unwrap_or_else(|_| Err("timed out".into()));
-        match outcome {
-            Ok(s) if (200..300).contains(&s) => {
-                st.delivered.fetch_add(1, Ordering::Relaxed);
-                return;
-            }
-            Ok(s) if (400..500).contains(&s) && s != 408 && s != 429 => {
-                log(&format!("webhook {shown}: refused with status {s}; not retried"));
-                st.failed.fetch_add(1, Ordering::Relaxed);
-                return;
-            }
-            other => {
-                let why = match other {
-                    Ok(s) => format!("status {s}"),
-                    Err(e) => e,
-                };
-                if attempt == opts.max_attempts.max(1) {
-                    log(&format!("webhook {shown}: attempt {attempt} failed ({why}); giving up"));
+        let mut wait = opts.backoff_first;
+        for attempt in 1..=opts.max_attempts.max(1) {
+            let outcome = tokio::time::timeout(opts.attempt_timeout, self.post(&body)).await.unwrap_or_else(|_| Err("timed out".into()));
+            match outcome {
+                Ok(s) if (200..300).contains(&s) => {
+                    st.delivered.fetch_add(1, Ordering::Relaxed);
+                    return;
+                }
+                Ok(s) if (400..500).contains(&s) && s != 408 && s != 429 => {
+                    log(&format!("webhook {shown}: refused with status {s}; not retried"));
                     st.failed.fetch_add(1, Ordering::Relaxed);
                     return;
                 }
-                log(&format!("webhook {shown}: attempt {attempt} failed ({why}); retrying in {:.1} s", wait.as_secs_f64()));
-                st.retries.fetch_add(1, Ordering::Relaxed);
-                tokio::time::sleep(wait).await;
-                wait = (wait * 2).min(opts.backoff_max);
+                other => {
+                    let why = match other {
+                        Ok(s) => format!("status {s}"),
+                        Err(e) => e,
+                    };
+                    if attempt == opts.max_attempts.max(1) {
+                        log(&format!("webhook {shown}: attempt {attempt} failed ({why}); giving up"));
+                        st.failed.fetch_add(1, Ordering::Relaxed);
+                        return;
+                    }
+                    log(&format!("webhook {shown}: attempt {attempt} failed ({why}); retrying in {:.1} s", wait.as_secs_f64()));
+                    st.retries.fetch_add(1, Ordering::Relaxed);
+                    tokio::time::sleep(wait).await;
+                    wait = (wait * 2).min(opts.backoff_max);
+                }
             }
         }
-    }
     }
 }
 
