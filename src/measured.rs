@@ -360,7 +360,8 @@ fn power_pair_of(r: &HashMap<String, String>, m: &Measurements, meters: &crate::
     let time = |k: &str| r.get(k).and_then(|v| v.parse::<DateTime<Utc>>().ok());
     let (issue, target, h) = (time("issue_time_utc")?, time("target_time_utc")?, num("horizon_s"));
     let forecast = num("power_kw");
-    if !(h > 0.0) || !forecast.is_finite() || !(num("ghi_clear_wm2") >= MIN_CLEAR_WM2) {
+    let clear = num("ghi_clear_wm2");
+    if h.is_nan() || h <= 0.0 || !forecast.is_finite() || clear.is_nan() || clear < MIN_CLEAR_WM2 {
         return None;
     }
     let observed = crate::meter::plant_power_at(m, meters, &target)?;

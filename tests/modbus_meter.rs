@@ -241,7 +241,7 @@ fn check_names_the_field_of_a_bad_meter_register() {
     ];
     for (section, field, expected) in cases {
         let o = options(d.path(), site_file(d.path(), &section));
-        let e = check(&o).err().expect("refused").to_string();
+        let e = check(&o).expect_err("refused").to_string();
         assert!(e.contains(field) && e.contains(expected), "{field}: {e}");
     }
 }

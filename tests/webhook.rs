@@ -176,7 +176,7 @@ fn webhook_settings_out_of_range_are_named() {
         ("[webhook]\nqueue_max = 0\n", "webhook.queue_max"),
         ("[webhook]\nretries = 3\n", "retries"),
     ] {
-        let e = nephocast::config::Site::load(&site_with(d.path(), section)).err().expect("refused").to_string();
+        let e = nephocast::config::Site::load(&site_with(d.path(), section)).expect_err("refused").to_string();
         assert!(e.contains(field), "{field}: {e}");
     }
 }
@@ -211,7 +211,7 @@ fn live_check_validates_the_webhook_and_modbus_server_options() {
     assert!(out.contains("webhook: http://127.0.0.1:9/hook (credentials and query hidden), 4 attempt(s)"), "the site's [webhook] applies: {out}");
     assert!(out.contains("Modbus TCP server: --modbus-bind 127.0.0.1:5020"), "{out}");
     assert!(!out.contains(SECRET), "{out}");
-    let refused = |server: ServerOptions| check(&live_options(d.path(), site.clone(), server)).err().expect("refused").to_string();
+    let refused = |server: ServerOptions| check(&live_options(d.path(), site.clone(), server)).expect_err("refused").to_string();
     let e = refused(ServerOptions { webhook: Some(WebhookOptions::new(format!("ftp://127.0.0.1/x?token={SECRET}"))), ..good.clone() });
     assert!(e.starts_with("--webhook-url-file: webhook URL ftp://127.0.0.1/x") && !e.contains(SECRET), "{e}");
     let e = refused(ServerOptions { modbus: Some(ModbusOptions { bind: "0.0.0.0:5020".parse().unwrap(), ..Default::default() }), ..good.clone() });

@@ -346,8 +346,8 @@ mod tls {
 
     use super::{Target, WebhookOptions};
 
-    /// Nothing: only `http://` is sent.
-    pub(super) type Connector = ();
+    /// Nothing to hold: only `http://` is sent.
+    pub(super) struct Connector;
 
     fn refused() -> String {
         "webhook URL https://…: this build sends http:// only; build with `--features tls` (rustls) for https://".into()
@@ -358,7 +358,7 @@ mod tls {
     }
 
     pub(super) fn connector(_: &WebhookOptions, t: &Target) -> Result<Connector, String> {
-        if t.tls { Err(refused()) } else { Ok(()) }
+        if t.tls { Err(refused()) } else { Ok(Connector) }
     }
 
     pub(super) async fn connect(_: &Connector, _: &Target, _: tokio::net::TcpStream) -> Result<tokio::net::TcpStream, String> {
