@@ -162,6 +162,21 @@ pub fn plant_power_since(m: &Measurements, cols: &MeterColumns, since: DateTime<
     (from..m.times.len()).filter_map(|i| plant_power_at_row(m, cols, i).map(|p| (m.times[i] + half, p))).collect()
 }
 
+/// Each block meter's newest usable reading: the block's name, the middle of that row's averaging
+/// period and the reading \[kW\] (blocks without a meter, or without a usable reading, left out).
+pub fn block_power_latest(m: &Measurements, cols: &MeterColumns, site: &SiteFile) -> Vec<(String, DateTime<Utc>, f64)> {
+    let half = chrono::Duration::milliseconds((m.period_s.max(1.0) * 500.0) as i64);
+    site.plant
+        .blocks
+        .iter()
+        .zip(&cols.blocks)
+        .filter_map(|(b, c)| {
+            let c = (*c)?;
+            (0..m.times.len()).rev().find_map(|i| reading(m, c, i).map(|v| (b.name.clone(), m.times[i] + half, v)))
+        })
+        .collect()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -241,9 +256,13 @@ mod tests {
         let cols = MeterColumns::find(&s, &m);
         assert_eq!(plant_power_at_row(&m, &cols, 0), Some(10_000.0));
         assert_eq!(plant_power_at_row(&m, &cols, 1), None, "a partial sum would read as a ramp");
+        let latest = block_power_latest(&m, &cols, &s);
+        assert_eq!(latest.iter().map(|x| (x.0.as_str(), x.2)).collect::<Vec<_>>(), vec![("north-fixed", 1000.0), ("east-tracker", 2000.0), ("south-tracker", 3000.0), ("west-fixed", 4000.0)]);
+        assert_eq!(latest[1].1, m.times[0] + chrono::Duration::seconds(30), "east-tracker's newest usable reading is the first row's");
         let three = table(&names[..3], &[&[1000.0, 2000.0, 3000.0]]);
         let cols = MeterColumns::find(&s, &three);
         assert!(cols.any() && !cols.has_plant_power());
         assert_eq!(plant_power_at_row(&three, &cols, 0), None);
+        assert_eq!(block_power_latest(&three, &cols, &s).len(), 3);
     }
 }

@@ -214,6 +214,7 @@ fn dashboard_empty_normal_shelved_restarted_and_stale() {
     let metered = dom.matches("class=\"metered\"").count();
     assert!(metered >= 10, "{metered} metered points");
     assert!(dom.contains("<title>metered 1"), "values in MW (10–15 MW here): {}", head(&dom));
+    assert_eq!(dom.matches("class=\"n metered-cell\"").count(), 1, "the plant row's metered power in the block table (no block meters here)");
     let page = dom.clone();
     assert!(page.contains("notifications go out as usual") && page.contains("never shelved"), "shelving controls: {}", head(&page));
 

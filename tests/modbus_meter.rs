@@ -3,7 +3,8 @@
 //! 0–1, high word first) and the north-fixed block's meter as a u16 in kW (holding register 200).
 //! The meter sends an error value now and then (a NaN float; 65535 kW from a 5 MW block); those
 //! samples are refused and counted, and the nowcast JSON carries the metered plant power of the
-//! last 30 minutes (`plant_power_measured`), every value within what the meter served. `live
+//! last 30 minutes (`plant_power_measured`) and the block meter's newest reading
+//! (`blocks_power_measured`), every value within what the meter served. `live
 //! --check` reads the registers once in their units and names the field of a bad register.
 #![cfg(feature = "server")]
 use std::io::{Read, Write};
@@ -210,7 +211,13 @@ fn metered_plant_power_reaches_the_nowcast_with_error_values_refused() {
     }
     // The forecast it is shown against is in the same nowcast (plant P50 in kW).
     assert!(n["forecast"].as_array().unwrap().iter().any(|r| r["block"] == "plant" && r["power_kw"].as_f64().is_some()));
-    // The block meter's rows are held too (every value within what it served, error codes gone).
+    // The block meter's newest reading is carried for the per-block table (within what it served;
+    // its error code 65535 refused).
+    let blocks = n["blocks_power_measured"].as_array().unwrap_or_else(|| panic!("no blocks_power_measured: {n}"));
+    assert_eq!(blocks.len(), 1, "only north-fixed has a meter: {blocks:?}");
+    assert_eq!(blocks[0]["block"], "north-fixed");
+    let kw = blocks[0]["power_kw"].as_f64().unwrap();
+    assert!((BLOCK_KW.0..=BLOCK_KW.1).contains(&kw), "{blocks:?}");
     let metrics = get(addr, "/metrics");
     assert!(metrics.lines().any(|l| l.starts_with("nephocast_modbus_feed_values_refused_total ") && !l.ends_with(" 0")), "{metrics}");
     h.stop();

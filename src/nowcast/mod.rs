@@ -406,6 +406,13 @@ impl Nowcaster {
         crate::meter::plant_power_since(m, &crate::meter::MeterColumns::find(&self.site.file, m), since)
     }
 
+    /// Each block meter's newest usable reading held (block, middle of its period, kW;
+    /// [`crate::meter::block_power_latest`]).
+    pub fn measured_block_power(&self) -> Vec<(String, DateTime<Utc>, f64)> {
+        let Some((m, _)) = &self.measurements else { return vec![] };
+        crate::meter::block_power_latest(m, &crate::meter::MeterColumns::find(&self.site.file, m), &self.site.file)
+    }
+
     /// The measurements held: rows, and the end of the newest row's averaging period.
     pub fn measurements_newest(&self) -> (usize, Option<DateTime<Utc>>) {
         match &self.measurements {
