@@ -760,6 +760,19 @@ impl Measurements {
         Ok(report)
     }
 
+    /// [`Measurements::screen`] with the site's position and clear-sky model, then the plant
+    /// meters' range ([`crate::meter::screen`]): the one screening replay, evaluation and live
+    /// mode's feeds all apply.
+    ///
+    /// # Errors
+    /// As [`Measurements::screen`].
+    pub fn screen_site(&mut self, file: &Path, site: &crate::config::SiteFile) -> Result<ScreenReport, InputError> {
+        let f = &site.site;
+        let mut report = self.screen(file, &f.observer(), f.clear_sky(), f.elevation_m)?;
+        crate::meter::screen(self, site, &mut report);
+        Ok(report)
+    }
+
     /// Refuse a GHI column that looks like kW/m²: at least five daytime readings (clear-sky GHI at
     /// least [`KW_CHECK_CLEAR_WM2`]) all below [`KW_SUSPECT_MAX`]. `suns` holds each row's sun
     /// zenith, Earth–Sun distance and clear-sky GHI ([`Measurements::screen`]).

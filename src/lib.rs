@@ -23,6 +23,7 @@
 //! | irradiance and power forecast, ensemble, bands | [`forecast`] |
 //! | the per-frame engine | [`nowcast`] |
 //! | replay of recorded sequences, scoring | [`replay`], [`verify`] |
+//! | measurements: screening, the plant's power meters, scores against them | [`io`], [`meter`], [`measured`] |
 //! | batches of days, mergeable statistics, shard merge | [`batch`], [`stats`], [`merge`] |
 //!
 //! ## Conventions (used everywhere)
@@ -61,6 +62,7 @@ pub mod forecast;
 pub mod intake;
 pub mod io;
 pub mod measured;
+pub mod meter;
 pub mod merge;
 pub mod motion;
 pub mod multicam;

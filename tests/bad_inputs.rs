@@ -196,6 +196,25 @@ fn site_cases() -> Vec<Case> {
     push(&mut cases, "site: modbus unit id 300".into(), modbus("unit_id = 300", ""), refused(&["site.toml", "unit_id"]));
     let twice = format!("{}[[measurements_modbus.registers]]\ncolumn = \"ghi_a_wm2\"\naddress = 4\n", modbus("", ""));
     push(&mut cases, "site: modbus column twice".into(), twice, refused(&["measurements_modbus.registers[1].column"]));
+    // Plant meter registers: power_plant_kw / power_<block>_kw with a power unit.
+    let meter = |column: &str, unit: &str| modbus("", "").replace("column = \"ghi_a_wm2\"", &format!("column = \"{column}\"\nunit = \"{unit}\""));
+    push(&mut cases, "site: modbus plant meter in MW".into(), meter("power_plant_kw", "MW"), Expect::Ok);
+    push(&mut cases, "site: modbus plant meter in W/m2".into(), meter("power_plant_kw", "W/m2"), refused(&["measurements_modbus.registers[0].unit", "\"kW\", \"W\", \"MW\""]));
+    push(&mut cases, "site: modbus pyranometer in kW".into(), meter("ghi_a_wm2", "kW"), refused(&["measurements_modbus.registers[0].unit", "W/m2"]));
+    push(&mut cases, "site: modbus meter of no block".into(), meter("power_nowhere_kw", "kW"), refused(&["measurements_modbus.registers[0].column", "power_plant_kw"]));
+    // The webhook's delivery settings.
+    let webhook = |fields: &str| format!("{}\n[webhook]\n{fields}\n", inputs::SITE);
+    push(&mut cases, "site: webhook settings valid".into(), webhook("max_attempts = 3\nbackoff_first_s = 0.5\nbackoff_max_s = 30\nqueue_max = 10"), Expect::Ok);
+    for (fields, field) in [
+        ("max_attempts = 0", "webhook.max_attempts"),
+        ("max_attempts = 21", "webhook.max_attempts"),
+        ("backoff_first_s = nan", "webhook.backoff_first_s"),
+        ("backoff_first_s = 10\nbackoff_max_s = 5", "webhook.backoff_max_s"),
+        ("attempt_timeout_s = 1000", "webhook.attempt_timeout_s"),
+        ("queue_max = 0", "webhook.queue_max"),
+    ] {
+        push(&mut cases, format!("site: {field} ({fields})"), webhook(fields), refused(&["site.toml", field]));
+    }
     push(&mut cases, "site: modbus without registers".into(), format!("{}\n[measurements_modbus]\naddress = \"h:502\"\nregisters = []\n", inputs::SITE), refused(&["measurements_modbus.registers"]));
     // Syntax.
     for (bad, why) in [("[site\n", "unclosed table"), ("latitude_deg = = 4\n", "double equals"), ("\u{0}\n", "NUL byte"), ("[site]\n", "duplicate table")] {

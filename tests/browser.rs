@@ -170,15 +170,15 @@ fn dashboard_empty_normal_shelved_restarted_and_stale() {
     // Empty: no frame yet. It says so, shows no alarm state and no broken picture.
     let incoming = d.path().join("incoming");
     // A logger's file of the demo pyranometers' minute means over the last 20 minutes (the site is
-    // moved to local noon at 5° N, so 600–900 W/m² are plausible).
+    // moved to local noon at 5° N, so 600–900 W/m² are plausible), with the plant meter's power.
     let meas = d.path().join("measurements.csv");
-    let header = std::fs::read_to_string(demo.join("measurements.csv")).unwrap().lines().find(|l| l.starts_with("time_utc")).unwrap().to_string();
+    let header = std::fs::read_to_string(demo.join("measurements.csv")).unwrap().lines().find(|l| l.starts_with("time_utc")).unwrap().to_string() + ",power_plant_kw";
     let start_min = Utc::now() - chrono::Duration::minutes(20);
     let rows: Vec<String> = (0..19)
         .map(|k| {
             let t = start_min + chrono::Duration::minutes(k);
             let g = 750.0 + 150.0 * (k as f64 * 0.7).sin();
-            format!("{},{g:.1},{:.1},{:.1},25.0,2.0", nephocast::io::fmt_time(&t), g + 20.0, g - 30.0)
+            format!("{},{g:.1},{:.1},{:.1},25.0,2.0,{:.1}", nephocast::io::fmt_time(&t), g + 20.0, g - 30.0, g * 17.0)
         })
         .collect();
     std::fs::write(&meas, format!("{header}\n{}\n", rows.join("\n"))).unwrap();
@@ -209,6 +209,12 @@ fn dashboard_empty_normal_shelved_restarted_and_stale() {
     assert!(dom.contains("id=\"ghichart-svg\"") && dom.contains("class=\"probes\""), "GHI chart missing: {}", head(&dom));
     let dots = dom.matches("class=\"measured\"").count();
     assert!(dots >= 10, "{dots} measured points");
+    // The plant meter against the forecast plant power, in MW.
+    assert!(dom.contains("id=\"mwchart-svg\"") && dom.contains("the meter against the forecast"), "MW chart missing: {}", head(&dom));
+    let metered = dom.matches("class=\"metered\"").count();
+    assert!(metered >= 10, "{metered} metered points");
+    assert!(dom.contains("<title>metered 1"), "values in MW (10–15 MW here): {}", head(&dom));
+    assert_eq!(dom.matches("class=\"n metered-cell\"").count(), 1, "the plant row's metered power in the block table (no block meters here)");
     let page = dom.clone();
     assert!(page.contains("notifications go out as usual") && page.contains("never shelved"), "shelving controls: {}", head(&page));
 

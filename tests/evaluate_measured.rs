@@ -111,4 +111,51 @@ fn demo_replay_scored_against_its_pyranometers() {
     assert_eq!(again.matches("pyranometers, measured mean").count(), 3);
     assert!(again.contains(&row5) && again.contains("id='measured-excluded'"));
     nephocast::output_set::check_manifest(&out).unwrap();
+
+    // A plant meter: the measurements with a power_plant_kw column reading the scene's true plant
+    // AC power (`verify::truth_power_kw`, the truth's block irradiance through the power model),
+    // one value per minute row. The plant power scores are recomputed here by hand from the CSVs.
+    let site = nephocast::config::Site::load(&demo.join("site.toml")).unwrap();
+    let truth = nephocast::verify::Truth::read(&demo.join("truth/irradiance.csv")).unwrap();
+    let text = std::fs::read_to_string(demo.join("measurements.csv")).unwrap();
+    let first: chrono::DateTime<chrono::Utc> = text.lines().find(|l| l.starts_with("20")).unwrap().split(',').next().unwrap().parse().unwrap();
+    let power: HashMap<String, f64> = nephocast::verify::truth_power_kw(&truth, &site, first, 200).into_iter().map(|(t, p)| (nephocast::io::fmt_time(&t)[..16].to_string(), p)).collect();
+    assert!(power.len() > 60, "{} minutes of truth power", power.len());
+    let metered: Vec<String> = text
+        .lines()
+        .map(|l| match l {
+            l if l.starts_with('#') => l.to_string(),
+            l if l.starts_with("time_utc") => format!("{l},power_plant_kw"),
+            l => format!("{l},{}", power.get(&l[..16]).map(|p| format!("{p:.1}")).unwrap_or_default()),
+        })
+        .collect();
+    let meas2 = d.path().join("measurements-metered.csv");
+    std::fs::write(&meas2, metered.join("\n") + "\n").unwrap();
+    let e = Command::new(BIN).args(["evaluate", "--replay"]).arg(&out).arg("--measurements").arg(&meas2).arg("--site").arg(demo.join("site.toml")).output().unwrap();
+    let text = String::from_utf8_lossy(&e.stdout);
+    assert!(e.status.success(), "{}{}", text, String::from_utf8_lossy(&e.stderr));
+    assert!(text.contains("plant AC power [kW] against the"), "{text}");
+    let j: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("evaluation-measured.json")).unwrap()).unwrap();
+    let p5 = j["power"]["plant"].as_array().unwrap().iter().find(|h| h["horizon_s"] == 300).unwrap().clone();
+    let (cp, cp10, cp90) = (col("power_kw"), col("power_p10_kw"), col("power_p90_kw"));
+    let (mut se, mut inside) = (vec![], vec![]);
+    let mut rf = csv::Reader::from_path(out.join("forecasts.csv")).unwrap();
+    for rec in rf.records() {
+        let rec = rec.unwrap();
+        if &rec[ch] == "300" && &rec[cb] == "plant"
+            && let Some(m) = power.get(&rec[ct][..16])
+        {
+            let f = |c: usize| rec[c].parse::<f64>().unwrap();
+            se.push((f(cp) - (m * 10.0).round() / 10.0).powi(2));
+            inside.push(f(cp10) <= *m && *m <= f(cp90));
+        }
+    }
+    let n = p5["n"].as_u64().unwrap() as usize;
+    assert!(n >= 10 && n <= se.len(), "n {n} of {}", se.len());
+    let by_hand = (se[se.len() - n..].iter().sum::<f64>() / n as f64).sqrt();
+    let rmse = p5["rmse_kw"].as_f64().unwrap();
+    eprintln!("plant power at 5 min against the true power as a meter: n {n}, RMSE {rmse:.0} kW (by hand {by_hand:.0}), skill {}, P10–P90 {}", p5["skill"], p5["coverage_p10_p90"]);
+    assert!((rmse - by_hand).abs() < 1.0, "5-min power RMSE {rmse} kW against {by_hand} by hand");
+    let cover = inside[inside.len() - n..].iter().filter(|x| **x).count() as f64 / n as f64;
+    assert!((p5["coverage_p10_p90"].as_f64().unwrap() - cover).abs() < 1e-9, "coverage {} against {cover}", p5["coverage_p10_p90"]);
 }

@@ -1,5 +1,5 @@
 //! `evaluate --measurements` against plant power: hand-made replay outputs and a measurements CSV
-//! with the plant meter (`power_ac_kw`) and one block meter, every score worked out by hand in the
+//! with the plant meter (`power_plant_kw`) and one block meter, every score worked out by hand in the
 //! comments and asserted exactly (to 1e-9).
 //!
 //! The fixture: the demo site (Larkspur Flats, 37.4° N, 3.2° W, 14 June 2026, about 10:00 UTC,
@@ -60,7 +60,7 @@ fn site_file(dir: &Path, extra: &str) -> PathBuf {
 }
 
 fn measurements(dir: &Path) -> PathBuf {
-    let mut s = String::from("time_utc,power_ac_kw,power_ac_north-fixed_kw\n");
+    let mut s = String::from("time_utc,power_plant_kw,power_north-fixed_kw\n");
     for i in -10..=40 {
         s += &format!("{},{},{}\n", at(i), plant_kw(i), block_kw(i));
     }
@@ -128,7 +128,7 @@ fn hand_computed_power_scores() {
     let e = evaluate_measured(&site, &out, &meas).unwrap();
     assert!(e.plant.is_empty(), "no pyranometers, no GHI scores");
     let p = e.power.as_ref().expect("power scores");
-    assert_eq!(p.plant_source, "plant meter (power_ac_kw)");
+    assert_eq!(p.plant_source, "plant meter (power_plant_kw)");
     assert_eq!(p.plant_ac_rating_kw, 8000.0);
     let close = |a: f64, b: f64, what: &str| assert!((a - b).abs() < 1e-9, "{what}: {a} against {b} by hand");
     let (h5, h10) = (&p.plant[0], &p.plant[1]);
@@ -179,7 +179,7 @@ fn hand_computed_power_scores() {
     assert_eq!(p.excluded.get("no valid power reading at the target time (missing or flagged)"), Some(&1), "{:?}", p.excluded);
     assert_eq!(p.excluded.values().sum::<usize>(), 1, "{:?}", p.excluded);
     // The 9999 kW reading is screened out as impossible for an 8000 kW plant.
-    assert_eq!(e.screened.get("power_ac_kw outside -2 … 110 % of the AC rating"), Some(&1), "{:?}", e.screened);
+    assert_eq!(e.screened.get("power_plant_kw outside -2 … 110 % of the AC rating"), Some(&1), "{:?}", e.screened);
     // Sky types from the power's clear-sky index P / 8000: each window of 10:00 … 10:10 (from 10
     // minutes before to 20 after) holds the drop 0.75 → 0.375 (Δkc = −0.375) among changes of
     // 1/8000 and 2/8000, so σΔkc > 0.03: variable.

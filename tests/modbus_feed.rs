@@ -289,8 +289,8 @@ fn check_reads_the_device_once_warns_when_it_is_away_and_refuses_two_feeds() {
     let mut o = options(d.path(), site_file(d.path(), device_addr));
     let out = check(&o).unwrap().join("\n");
     assert!(out.contains(&format!("measurements feed: Modbus TCP {device_addr} unit {UNIT}, 3 register(s)")), "{out}");
-    assert!(out.contains("read now (W/m²): ghi_north-fixed_wm2 80"), "{out}");
-    assert!(out.contains("ghi_east-tracker_wm2 65") && out.contains("ghi_south-tracker_wm2 70"), "{out}");
+    assert!(out.contains("read now: ghi_north-fixed_wm2 80"), "{out}");
+    assert!(out.contains("ghi_east-tracker_wm2 65") && out.contains("ghi_south-tracker_wm2 70") && out.contains(" W/m²"), "{out}");
     device.stop();
     // Away: a warning naming the address, not a refusal (live mode keeps trying).
     let out = check(&o).unwrap().join("\n");
@@ -313,6 +313,9 @@ fn readme_example_section_is_valid() {
     std::fs::write(&p, format!("{site}\n{block}")).unwrap();
     let s = nephocast::config::Site::load(&p).unwrap_or_else(|e| panic!("{e}"));
     let m = s.file.measurements_modbus.expect("the section");
-    assert_eq!((m.address.as_str(), m.unit_id, m.registers.len()), ("192.168.1.20:502", 1, 2));
+    assert_eq!((m.address.as_str(), m.unit_id, m.registers.len()), ("192.168.1.20:502", 1, 4));
     assert_eq!(m.registers[1].word_order, nephocast::config::WordOrder::Little);
+    // The meters: 1234.5 kW in tenths of kW; 2.5 MW as an f32 (0x4020_0000) read as kW.
+    assert_eq!(m.registers[2].decode(&[0, 12_345]), 1234.5);
+    assert_eq!(m.registers[3].decode(&[0x4020, 0]), 2500.0);
 }

@@ -6,8 +6,10 @@
 
 mod calibration;
 mod modbus_feed;
+mod webhook;
 
-pub use modbus_feed::{MAX_MODBUS_REGISTERS, ModbusFeedSection, RegisterFormat, RegisterKind, RegisterSpec, WordOrder};
+pub use webhook::WebhookSection;
+pub use modbus_feed::{MAX_MODBUS_REGISTERS, ModbusFeedSection, Quantity, RegisterFormat, RegisterKind, RegisterSpec, WordOrder};
 pub use calibration::{CalibrationFile, CameraCalibration, FitRecord, MIN_DETECTIONS_PER_PARAMETER, MIN_FIT_AZIMUTH_SPAN_DEG, MIN_FIT_DETECTIONS};
 
 use std::path::{Path, PathBuf};
@@ -22,7 +24,8 @@ pub use crate::plant::{BlockSpec, MountKind, PlantSection};
 pub use crate::settings::{ConfigError, parse_toml, read_toml};
 use crate::settings::Check;
 
-fn resolve(base: &Path, p: &Path) -> PathBuf {
+/// A path written in the file `base`, resolved against that file's folder (absolute paths stay).
+pub fn resolve(base: &Path, p: &Path) -> PathBuf {
     if p.is_absolute() { p.to_path_buf() } else { base.parent().unwrap_or(Path::new(".")).join(p) }
 }
 
@@ -79,6 +82,9 @@ pub struct SiteFile {
     /// A second camera for the cloud base height from stereo ([`crate::stereo`]).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub second_camera: Option<SecondCameraSection>,
+    /// How live mode delivers webhook notifications (the URL comes from `--webhook-url-file`).
+    #[serde(default, skip_serializing_if = "WebhookSection::is_default")]
+    pub webhook: WebhookSection,
 }
 
 /// `[second_camera]`: a second sky camera some hundreds of metres or more from the first, used only
@@ -458,8 +464,10 @@ impl SiteFile {
         }
         if let Some(m) = &self.measurements_modbus {
             let names: Vec<String> = self.pyranometers.iter().map(|p| p.name.clone()).collect();
-            m.validate(&c, &names)?;
+            let meters: Vec<String> = crate::meter::capacities_kw(self).into_iter().map(|x| x.0).collect();
+            m.validate(&c, &names, &meters)?;
         }
+        self.webhook.validate(&c)?;
         if let Some(s) = &self.second_camera {
             for (i, v) in s.position_m.iter().enumerate() {
                 c.range(&format!("second_camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;

@@ -53,7 +53,8 @@ fn default_scale() -> f64 {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RegisterSpec {
-    /// The measurement column it fills: `ghi_<name>_wm2` of a `[[pyranometers]]` entry.
+    /// The measurement column it fills: `ghi_<name>_wm2` of a `[[pyranometers]]` entry, or a
+    /// plant meter's AC power, `power_plant_kw` or `power_<block>_kw` ([`crate::meter`]).
     pub column: String,
     /// Register address as sent on the wire, 0-based (register 30001 of a device manual's
     /// 1-based input-register numbering is address 0).
@@ -70,12 +71,47 @@ pub struct RegisterSpec {
     /// big-endian, as Modbus sends them.
     #[serde(default)]
     pub word_order: WordOrder,
-    /// The value is `raw × scale + offset` in W/m².
+    /// The value is `raw × scale + offset` in `unit`.
     #[serde(default = "default_scale")]
     pub scale: f64,
-    /// See `scale` \[W/m²\].
+    /// See `scale` (in `unit`).
     #[serde(default)]
     pub offset: f64,
+    /// The unit of `raw × scale + offset`: `"W/m2"` for irradiance (the default and only choice);
+    /// `"W"`, `"kW"` (the default) or `"MW"` for power. The value is converted to the column's unit.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub unit: Option<String>,
+}
+
+/// What a register's column measures.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Quantity {
+    /// Global horizontal irradiance \[W/m²\].
+    Ghi,
+    /// AC power \[kW\].
+    Power,
+}
+
+impl Quantity {
+    /// The quantity of a column name (`ghi_…_wm2` or `power_…_kw`).
+    pub fn of(column: &str) -> Option<Quantity> {
+        if column.starts_with("ghi_") && column.ends_with("_wm2") {
+            Some(Quantity::Ghi)
+        } else if column.starts_with("power_") && column.ends_with("_kw") {
+            Some(Quantity::Power)
+        } else {
+            None
+        }
+    }
+
+    /// The units a register may give for this quantity, each with its factor to the column's
+    /// unit; the first is the default.
+    pub fn units(self) -> &'static [(&'static str, f64)] {
+        match self {
+            Quantity::Ghi => &[("W/m2", 1.0)],
+            Quantity::Power => &[("kW", 1.0), ("W", 0.001), ("MW", 1000.0)],
+        }
+    }
 }
 
 /// Which register table.
@@ -128,8 +164,19 @@ impl RegisterFormat {
 }
 
 impl RegisterSpec {
-    /// The value in W/m² from the register words read at [`RegisterSpec::address`] (as many as
-    /// the format spans); NaN when too few words are given or a float is not finite.
+    /// The factor from the register's unit to its column's (1 when either is unknown: the section
+    /// is validated before use).
+    pub fn unit_factor(&self) -> f64 {
+        let Some(q) = Quantity::of(&self.column) else { return 1.0 };
+        match &self.unit {
+            None => 1.0,
+            Some(u) => q.units().iter().find(|(name, _)| unit_matches(name, u)).map_or(1.0, |x| x.1),
+        }
+    }
+
+    /// The value in the column's unit (W/m² or kW) from the register words read at
+    /// [`RegisterSpec::address`] (as many as the format spans); NaN when too few words are given
+    /// or a float is not finite.
     pub fn decode(&self, words: &[u16]) -> f64 {
         let n = usize::from(self.format.words());
         if words.len() < n {
@@ -149,9 +196,16 @@ impl RegisterSpec {
             RegisterFormat::I32 => f64::from(pair() as i32),
             RegisterFormat::F32 => f64::from(f32::from_bits(pair())),
         };
-        let v = raw * self.scale + self.offset;
+        let v = (raw * self.scale + self.offset) * self.unit_factor();
         if v.is_finite() { v } else { f64::NAN }
     }
+}
+
+/// Whether a unit as written in the site file names `name` (`W/m²` for `W/m2`; case matters
+/// only between `MW` and `mW`, which is not offered).
+fn unit_matches(name: &str, written: &str) -> bool {
+    let w = written.trim().replace('²', "2");
+    w == name || (name != "MW" && w.eq_ignore_ascii_case(name)) || (name == "MW" && w == "MW")
 }
 
 /// Whether `address` has the form `host:port` with a port from 1 to 65535 (not resolved here).
@@ -162,8 +216,9 @@ fn host_port_ok(address: &str) -> bool {
 }
 
 impl ModbusFeedSection {
-    /// Check every field; `pyranometers` are the names of the site's `[[pyranometers]]`.
-    pub(crate) fn validate(&self, c: &Check<'_>, pyranometers: &[String]) -> Result<(), ConfigError> {
+    /// Check every field; `pyranometers` are the names of the site's `[[pyranometers]]`, `meters`
+    /// the plant meter columns the site can have ([`crate::meter::capacities_kw`]).
+    pub(crate) fn validate(&self, c: &Check<'_>, pyranometers: &[String], meters: &[String]) -> Result<(), ConfigError> {
         const S: &str = "measurements_modbus";
         if !host_port_ok(&self.address) {
             return Err(c.invalid(&format!("{S}.address"), "host:port, e.g. \"192.168.1.20:502\"", format!("{:?}", self.address)));
@@ -177,15 +232,21 @@ impl ModbusFeedSection {
         if self.registers.is_empty() || self.registers.len() > MAX_MODBUS_REGISTERS {
             return Err(c.invalid(&format!("{S}.registers"), format!("1 to {MAX_MODBUS_REGISTERS} registers"), self.registers.len().to_string()));
         }
-        let columns: Vec<String> = pyranometers.iter().map(|p| format!("ghi_{p}_wm2")).collect();
+        let columns: Vec<String> = pyranometers.iter().map(|p| format!("ghi_{p}_wm2")).chain(meters.iter().cloned()).collect();
         for (i, r) in self.registers.iter().enumerate() {
             let f = |name: &str| format!("{S}.registers[{i}].{name}");
             if !columns.contains(&r.column) {
-                let expected = if columns.is_empty() { "ghi_<name>_wm2 of a [[pyranometers]] entry (the site names none)".to_string() } else { format!("one of {}", columns.join(", ")) };
-                return Err(c.invalid(&f("column"), expected, format!("{:?}", r.column)));
+                let pyr = if pyranometers.is_empty() { "ghi_<name>_wm2 of a [[pyranometers]] entry (the site names none)".to_string() } else { format!("one of {}", columns[..pyranometers.len()].join(", ")) };
+                return Err(c.invalid(&f("column"), format!("{pyr}; or a plant meter: {}", meters.join(", ")), format!("{:?}", r.column)));
             }
             if self.registers[..i].iter().any(|o| o.column == r.column) {
                 return Err(c.invalid(&f("column"), "a column not filled by an earlier register", format!("{:?}", r.column)));
+            }
+            if let (Some(u), Some(q)) = (&r.unit, Quantity::of(&r.column))
+                && !q.units().iter().any(|(name, _)| unit_matches(name, u))
+            {
+                let names: Vec<String> = q.units().iter().map(|x| format!("{:?}", x.0)).collect();
+                return Err(c.invalid(&f("unit"), format!("for {} one of {}", r.column, names.join(", ")), format!("{u:?}")));
             }
             if u32::from(r.address) + u32::from(r.format.words()) > 65_536 {
                 return Err(c.invalid(&f("address"), "a 0-based address whose value ends by register 65535", r.address.to_string()));
@@ -205,7 +266,7 @@ mod tests {
     use super::*;
 
     fn spec(format: RegisterFormat, word_order: WordOrder, scale: f64, offset: f64) -> RegisterSpec {
-        RegisterSpec { column: "ghi_a_wm2".into(), address: 0, kind: RegisterKind::Input, format, word_order, scale, offset }
+        RegisterSpec { column: "ghi_a_wm2".into(), address: 0, kind: RegisterKind::Input, format, word_order, scale, offset, unit: None }
     }
 
     #[test]
@@ -229,6 +290,23 @@ mod tests {
         // A NaN float, too few words.
         assert!(spec(F32, Big, 1.0, 0.0).decode(&[0x7FC0, 0x0000]).is_nan());
         assert!(spec(U32, Big, 1.0, 0.0).decode(&[0x0001]).is_nan());
+    }
+
+    #[test]
+    fn power_registers_convert_their_unit_to_kw() {
+        let mut r = spec(RegisterFormat::U16, WordOrder::Big, 1.0, 0.0);
+        r.column = "power_plant_kw".into();
+        assert_eq!(r.decode(&[1234]), 1234.0, "kW by default");
+        r.unit = Some("W".into());
+        r.scale = 100.0;
+        assert_eq!(r.decode(&[1234]), 123.4, "hundreds of W");
+        r.unit = Some("MW".into());
+        r.scale = 0.01;
+        assert!((r.decode(&[1234]) - 12_340.0).abs() < 1e-9, "hundredths of MW");
+        assert_eq!(Quantity::of("ghi_a_wm2"), Some(Quantity::Ghi));
+        assert_eq!(Quantity::of("power_east_kw"), Some(Quantity::Power));
+        assert_eq!(Quantity::of("temp_air_c"), None);
+        assert!(unit_matches("W/m2", "W/m²") && unit_matches("kW", "kw") && !unit_matches("MW", "mw"));
     }
 
     #[test]

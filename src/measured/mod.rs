@@ -19,7 +19,7 @@
 //! of readings inside P10–P90.
 //!
 //! # Plant power
-//! With plant power in the measurements (`power_ac_kw` from the plant meter, `power_ac_<block>_kw`
+//! With plant power in the measurements (`power_plant_kw` from the plant meter, `power_<block>_kw`
 //! from block meters), the forecast's AC power is scored the same way against it, with smart
 //! persistence of power through the clear-sky power ([`power`]).
 //!

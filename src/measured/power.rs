@@ -3,16 +3,17 @@
 //! `ensemble_plant.csv`) against the measured AC power.
 //!
 //! # Columns of the measurements CSV
-//! * `power_ac_kw` — the plant's AC power from its meter \[kW\]. Without it, the sum of the block
+//! * `power_plant_kw` — the plant's AC power from its meter \[kW\]. Without it, the sum of the block
 //!   meters stands for it when every block has one (all valid at the time).
-//! * `power_ac_<block>_kw` — a block's AC power from its own meter \[kW\].
+//! * `power_<block>_kw` — a block's AC power from its own meter \[kW\].
 //!
 //! # Which readings count
-//! A reading outside −2 % … 110 % of its AC rating (the block's `ac_capacity_kw`, or the plant's
-//! sum) is impossible for the meter: it is left out and counted under `screened` (own limits, no
-//! source: a meter does not read far beyond its inverters' rating, and an inverter draws at night
-//! only a little). A reading is stuck when it ends a run of [`crate::qc::STUCK_RUN`] equal values,
-//! unless it is within 1 % of the AC rating (a clipping plant holds its rating for a long time).
+//! The limits are the meters' own ([`crate::meter`], shared with live mode): a reading outside
+//! [`crate::meter::LOW_SHARE`] … [`crate::meter::HIGH_SHARE`] of its AC rating (the block's
+//! `ac_capacity_kw`, or the plant's sum) is impossible for the meter: it is left out and counted
+//! under `screened`. A reading is stuck when it ends a run of [`crate::qc::STUCK_RUN`] equal values,
+//! unless it is at or above [`crate::meter::CLIP_SHARE`] of the AC rating (a clipping plant holds
+//! its rating for a long time).
 //! Forecast rows whose clear-sky GHI is under 50 W/m² are left out, as for GHI.
 //!
 //! # Smart persistence of power
@@ -36,18 +37,18 @@ use crate::plant::{PLANT_TARGET, Plant};
 use super::{MIN_CLEAR_WM2, MeasuredHorizon, Pair, Pooled, horizon_scores, pooled};
 
 /// The plant meter's column.
-pub const PLANT_POWER_COLUMN: &str = "power_ac_kw";
+pub const PLANT_POWER_COLUMN: &str = crate::meter::PLANT_COLUMN;
 
 /// A block meter's column.
 pub fn block_power_column(block: &str) -> String {
-    format!("power_ac_{block}_kw")
+    crate::meter::column_of(block)
 }
 
 /// Lowest and highest plausible meter reading, as shares of the AC rating.
-pub const METER_RANGE_OF_RATING: (f64, f64) = (-0.02, 1.10);
+pub const METER_RANGE_OF_RATING: (f64, f64) = (crate::meter::LOW_SHARE, crate::meter::HIGH_SHARE);
 
 /// A reading within this share of the AC rating is not taken for stuck (clipping).
-pub const CLIPPING_TOLERANCE: f64 = 0.01;
+pub const CLIPPING_TOLERANCE: f64 = 1.0 - crate::meter::CLIP_SHARE;
 
 /// Scores of plant or block power at one horizon.
 #[derive(Debug, Clone, Serialize)]
@@ -113,7 +114,7 @@ impl From<Pooled> for PooledPower {
 /// Scores of the forecast's AC power against the plant's meters.
 #[derive(Debug, Clone, Serialize)]
 pub struct PowerEvaluation {
-    /// What the plant's measured power is: `power_ac_kw` or the sum of the block meters; empty
+    /// What the plant's measured power is: `power_plant_kw` or the sum of the block meters; empty
     /// when neither is there (blocks only).
     pub plant_source: String,
     /// The plant's AC rating \[kW\] (the sum of the blocks').

@@ -26,8 +26,22 @@ pub use types::{Counters, Frame, Nowcast, Rejection, SetupError, StageTimes, Ste
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
 type PyranometerColumn = (usize, [f64; 2]);
 
-/// The measurements with the pyranometers' columns in them.
+/// The measurements with the pyranometers' columns in them (none when only plant meters are
+/// measured).
 type Pyranometers = (Measurements, Vec<PyranometerColumn>);
+
+/// The measurements with the site's pyranometer columns found, when they hold a pyranometer or a
+/// plant meter column ([`crate::meter`]); `None` otherwise (nothing in them is used).
+fn used_columns(site: &crate::config::SiteFile, m: Measurements) -> Option<Pyranometers> {
+    let cols: Vec<PyranometerColumn> = site.pyranometers.iter().filter_map(|p| m.column(&format!("ghi_{}_wm2", p.name)).map(|c| (c, p.position_m))).collect();
+    (!cols.is_empty() || crate::meter::MeterColumns::find(site, &m).any()).then_some((m, cols))
+}
+
+/// The measurements held with their pyranometer columns, when they have any (what the tuning,
+/// the band calibration and shadow timing read).
+fn pyranometers_of(m: &Option<Pyranometers>) -> Option<&Pyranometers> {
+    m.as_ref().filter(|(_, cols)| !cols.is_empty())
+}
 
 /// The cells' sun angles are recomputed when the sun has moved more than this \[°\].
 const SUN_ANGLE_REUSE_DEG: f32 = 0.25;
@@ -80,15 +94,7 @@ impl Nowcaster {
     pub fn new(site: Site, cbh_series: Option<Series>, measurements: Option<Measurements>) -> Nowcaster {
         let plant = Plant::from_section(&site.file.plant);
         let forecast_stage = ForecastStage::new(site.file.irradiance);
-        let measurements = measurements.and_then(|m| {
-            let cols: Vec<(usize, [f64; 2])> = site
-                .file
-                .pyranometers
-                .iter()
-                .filter_map(|p| m.column(&format!("ghi_{}_wm2", p.name)).map(|c| (c, p.position_m)))
-                .collect();
-            (!cols.is_empty()).then_some((m, cols))
-        });
+        let measurements = measurements.and_then(|m| used_columns(&site.file, m));
         let reference = site.clear_reference.clone().unwrap_or_default();
         let cbh_state = crate::cbh::CbhState::new(&site.file.clouds);
         let reduce = crate::intake::frame_reduction(site.camera.width_px, site.file.map.cells);
@@ -247,8 +253,7 @@ impl Nowcaster {
         let meas = match measurements {
             Some(p) => {
                 let mut m = Measurements::read_csv(p)?;
-                let f = &site.file.site;
-                let report = m.screen(p, &f.observer(), f.clear_sky(), f.elevation_m)?;
+                let report = m.screen_site(p, &site.file)?;
                 flagged = report.counts();
                 Some(m)
             }
@@ -375,12 +380,8 @@ impl Nowcaster {
         let added = match &mut self.measurements {
             None => {
                 let n = rows.times.len();
-                let cols: Vec<PyranometerColumn> =
-                    self.site.file.pyranometers.iter().filter_map(|p| rows.column(&format!("ghi_{}_wm2", p.name)).map(|c| (c, p.position_m))).collect();
-                if cols.is_empty() {
-                    return 0;
-                }
-                self.measurements = Some((rows, cols));
+                let Some(used) = used_columns(&self.site.file, rows) else { return 0 };
+                self.measurements = Some(used);
                 n
             }
             Some((m, _)) => {
@@ -445,6 +446,22 @@ impl Nowcaster {
             .collect()
     }
 
+    /// The measured plant power \[kW\] of each row held whose averaging period began at or after
+    /// `since`, stamped at the middle of its period ([`crate::meter::plant_power_since`]: the plant
+    /// meter, or every block's meter summed; out-of-range, stuck and missing readings left out):
+    /// what live mode shows against the forecast.
+    pub fn measured_plant_power(&self, since: DateTime<Utc>) -> Vec<(DateTime<Utc>, f64)> {
+        let Some((m, _)) = &self.measurements else { return vec![] };
+        crate::meter::plant_power_since(m, &crate::meter::MeterColumns::find(&self.site.file, m), since)
+    }
+
+    /// Each block meter's newest usable reading held (block, middle of its period, kW;
+    /// [`crate::meter::block_power_latest`]).
+    pub fn measured_block_power(&self) -> Vec<(String, DateTime<Utc>, f64)> {
+        let Some((m, _)) = &self.measurements else { return vec![] };
+        crate::meter::block_power_latest(m, &crate::meter::MeterColumns::find(&self.site.file, m), &self.site.file)
+    }
+
     /// The measurements held: rows, and the end of the newest row's averaging period.
     pub fn measurements_newest(&self) -> (usize, Option<DateTime<Utc>>) {
         match &self.measurements {
@@ -476,7 +493,7 @@ impl Nowcaster {
 
     /// What the forecast and ensemble stages read of the engine.
     fn inputs(&self) -> SiteInputs<'_> {
-        SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() }
+        SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements) }
     }
 
     /// Process one frame.
@@ -522,7 +539,7 @@ impl Nowcaster {
         let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
         let cbh_factor = cbh_est.cbh_m / cbh;
         self.stereo.cbh_above_a_m = Some((cbh_est.cbh_m - cam_z).max(10.0));
-        let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: self.measurements.as_ref() };
+        let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements) };
         self.forecast_stage.tune(cx, &frame.time, &sun, &map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
         let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
         let tms = layer_tables(&map, &moved, &input.params);
@@ -576,7 +593,7 @@ impl Nowcaster {
             from_series: self.cbh_series.is_some(),
             v_map_mps,
             camera_m: self.site.file.camera.position_m,
-            measurements: self.measurements.as_ref().map(|(m, c)| (m, c.as_slice())),
+            measurements: pyranometers_of(&self.measurements).map(|(m, c)| (m, c.as_slice())),
             observer: self.site.observer(),
             altitude_m: self.site.file.site.elevation_m,
             model: self.site.clear_sky_model(),

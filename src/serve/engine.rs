@@ -252,17 +252,7 @@ impl LiveEngine {
         match &st.result {
             Ok(n) => {
                 self.processed += 1;
-                let mut j = nowcast_json(n);
-                j["site_time_zone"] = self.time_zone.clone();
-                // The pyranometers' measured mean over the last 30 minutes, to show against the forecast.
-                j["pyranometers_measured"] = self
-                    .nc
-                    .measured_pyranometer_mean(n.time - chrono::Duration::minutes(30))
-                    .into_iter()
-                    .map(|(t, g)| serde_json::json!({"time_utc": fmt_time(&t), "ghi_wm2": g}))
-                    .collect::<Vec<_>>()
-                    .into();
-                latest = Some(j);
+                latest = Some(self.latest_json(n));
                 self.log_nowcast(n, valid, &mut events);
                 events.push(serde_json::json!({"type": "nowcast", "issue_time_utc": fmt_time(&n.time), "alarm": n.alarm.name(), "data_valid": valid, "health": health_state}).to_string());
                 if self.opts.overlay_every > 0 && (self.processed - 1).is_multiple_of(self.opts.overlay_every)
@@ -299,6 +289,39 @@ impl LiveEngine {
         for e in events {
             let _ = self.tx.send(e);
         }
+    }
+
+    /// The nowcast as `/api/nowcast` serves it: with the site's time zone and, against the
+    /// forecast, what the feed measured (the pyranometers' mean and the plant's metered power over
+    /// the last 30 minutes, each block meter's newest reading).
+    fn latest_json(&self, n: &Nowcast) -> serde_json::Value {
+        let mut j = nowcast_json(n);
+        j["site_time_zone"] = self.time_zone.clone();
+        // The pyranometers' measured mean over the last 30 minutes, to show against the forecast.
+        j["pyranometers_measured"] = self
+            .nc
+            .measured_pyranometer_mean(n.time - chrono::Duration::minutes(30))
+            .into_iter()
+            .map(|(t, g)| serde_json::json!({"time_utc": fmt_time(&t), "ghi_wm2": g}))
+            .collect::<Vec<_>>()
+            .into();
+        // The plant meter's (or the block meters' summed) measured power, likewise.
+        j["plant_power_measured"] = self
+            .nc
+            .measured_plant_power(n.time - chrono::Duration::minutes(30))
+            .into_iter()
+            .map(|(t, p)| serde_json::json!({"time_utc": fmt_time(&t), "power_kw": p}))
+            .collect::<Vec<_>>()
+            .into();
+        // Each block meter's newest reading, for the per-block table.
+        j["blocks_power_measured"] = self
+            .nc
+            .measured_block_power()
+            .into_iter()
+            .map(|(b, t, p)| serde_json::json!({"block": b, "time_utc": fmt_time(&t), "power_kw": p}))
+            .collect::<Vec<_>>()
+            .into();
+        j
     }
 
     /// The nowcast into the history, an alarm change into the alarm log, the webhook (held back
@@ -393,7 +416,7 @@ impl FeedSource {
     /// The Modbus poller's thread could not be started.
     pub(super) fn open(opts: &LiveOptions, site: &crate::config::SiteFile) -> std::io::Result<Option<FeedSource>> {
         Ok(match (&site.measurements_modbus, opts.health.measurements.as_deref()) {
-            (Some(s), _) => Some(FeedSource::Modbus(Box::new(modbus_feed::ModbusPoller::start(s, site.site.observer())?))),
+            (Some(s), _) => Some(FeedSource::Modbus(Box::new(modbus_feed::ModbusPoller::start(s, site)?))),
             (None, Some(p)) => Some(FeedSource::Csv(ops::MeasurementFeed::new(p))),
             (None, None) => None,
         })

@@ -303,8 +303,8 @@ pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
         });
         rt.shutdown_timeout(std::time::Duration::from_secs(1));
     });
-    let notifier = match opts.server.webhook.clone() {
-        Some(w) => Some(notify::Notifier::start(w).map_err(ServeError::Webhook)?),
+    let notifier = match webhook_options(&opts, &nowcaster.site().file) {
+        Some(w) => Some(notify::Notifier::start(w).map_err(webhook_error)?),
         None => None,
     };
     let (stop2, stop3, shared3, tx3, log_json) = (stop.clone(), stop.clone(), shared.clone(), tx.clone(), opts.health.log_json);
@@ -315,7 +315,8 @@ pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
 }
 
 /// Check the configuration without starting: options and address, the site file with its
-/// calibration and base-height series, the measurement feed, and the folders. Returns what was
+/// calibration and base-height series, the Modbus server's and the webhook's options, the
+/// measurement feed, and the folders. Returns what was
 /// checked, one line each.
 ///
 /// # Errors
@@ -336,6 +337,7 @@ pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
         nc.site().camera.width_px,
         nc.site().camera.height_px
     ));
+    check_interfaces(opts, f, &mut out)?;
     let m = f.memory_estimate();
     out.push(format!("estimated forecast working memory: {:.0} MB ({m}; the site check refuses over {} MB)", m.bytes as f64 / 1e6, crate::config::MEMORY_CAP_BYTES / 1_000_000));
     if one_feed(opts, f)?
@@ -345,8 +347,9 @@ pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
         // One read now; a device out of reach is a warning (live mode starts and keeps trying).
         match modbus_feed::probe(m) {
             Ok(values) => {
-                let v: Vec<String> = values.iter().map(|(c, v)| format!("{c} {v:.1}")).collect();
-                out.push(format!("measurements feed: read now (W/m²): {}", v.join(", ")));
+                let unit = |c: &str| if crate::config::Quantity::of(c) == Some(crate::config::Quantity::Power) { "kW" } else { "W/m²" };
+                let v: Vec<String> = values.iter().map(|(c, v)| format!("{c} {v:.1} {}", unit(c))).collect();
+                out.push(format!("measurements feed: read now: {}", v.join(", ")));
             }
             Err(e) => out.push(format!("warning: measurements feed: Modbus TCP {e}; live mode starts anyway and keeps connecting")),
         }
@@ -371,6 +374,34 @@ pub fn check(opts: &LiveOptions) -> Result<Vec<String>, ServeError> {
     }
     out.push(format!("incoming {}, database {}, stale after {:.0} s", opts.incoming.display(), opts.db.display(), opts.health.stale_after_s()));
     Ok(out)
+}
+
+/// The webhook's options: the URL of `--webhook-url-file` with the site's `[webhook]` settings.
+fn webhook_options(opts: &LiveOptions, site: &crate::config::SiteFile) -> Option<notify::WebhookOptions> {
+    opts.server.webhook.as_ref().map(|w| notify::WebhookOptions::configured(w.url.clone(), &site.webhook, &opts.site))
+}
+
+/// A refused webhook, naming the option or field at fault.
+fn webhook_error(e: String) -> ServeError {
+    ServeError::Webhook(if e.starts_with("webhook URL") { format!("--webhook-url-file: {e}") } else { e })
+}
+
+/// Check the Modbus server's options and the webhook's (URL, `[webhook]`, certificates for
+/// `https://`); one line each, warnings first.
+fn check_interfaces(opts: &LiveOptions, site: &crate::config::SiteFile, out: &mut Vec<String>) -> Result<(), ServeError> {
+    if let Some(m) = &opts.server.modbus {
+        for w in m.check().map_err(ServeError::ModbusOptions)? {
+            out.push(format!("warning: {w}"));
+        }
+        out.push(format!(
+            "Modbus TCP server: --modbus-bind {} (read-only; not bound by the check), at most {} connection(s), data valid while the frame is at most {} s old",
+            m.bind, m.max_connections, m.max_frame_age_s
+        ));
+    }
+    if let Some(w) = webhook_options(opts, site) {
+        out.push(w.check().map_err(webhook_error)?);
+    }
+    Ok(())
 }
 
 /// Whether the site polls a Modbus measurement feed; refused together with `--measurements`

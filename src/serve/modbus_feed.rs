@@ -1,20 +1,21 @@
-//! Live mode's Modbus TCP measurement feed: pyranometers or a plant meter polled as
+//! Live mode's Modbus TCP measurement feed: pyranometers and the plant's power meters polled as
 //! `[measurements_modbus]` in the site file describes ([`crate::config::ModbusFeedSection`]).
 //!
 //! * **Polling.** A thread of its own (a current-thread tokio runtime with the tokio-modbus TCP
 //!   client) reads the register list every `poll_s`, one request per register, and decodes each
-//!   value to W/m² (`raw × scale + offset`). The engine never waits for the device: it takes what
+//!   value to its column's unit, W/m² or kW (`(raw × scale + offset)` in the register's `unit`). The engine never waits for the device: it takes what
 //!   the thread has handed over ([`ModbusPoller::poll`] does not block).
 //! * **Samples.** A sample that is not a finite number or lies outside the BSRN "physically
-//!   possible" GHI limits at that moment (e.g. a sensor's error code such as 65535) is left out of
-//!   its period's mean and counted (`values_refused`), so one bad sample does not spoil a minute.
+//!   possible" GHI limits at that moment, or for a meter outside its plausible range
+//!   ([`crate::meter::plausible`]) — e.g. a sensor's error code such as 65535 — is left out of its
+//!   period's mean and counted (`values_refused`), so one bad sample does not spoil a minute.
 //! * **Averaging.** The samples of each `averaging_s` period (periods start at multiples of it
 //!   since midnight UTC) are averaged into one row stamped at the period's start, as a logger's
 //!   CSV row is. A column with fewer than half the period's expected samples is missing (NaN) in
 //!   that row; a period without any value gives no row (a gap). The period that was running when
 //!   the poller started is usually short of samples.
 //! * **Screening.** The rows are screened as the CSV feed's pieces are
-//!   ([`crate::io::Measurements::screen`]: BSRN limits, kW/m²; the kW/m² check looks at the last
+//!   ([`crate::io::Measurements::screen_site`]: BSRN limits, kW/m², the meters' range; the kW/m² check looks at the last
 //!   [`UNIT_WINDOW_ROWS`] rows together, since rows come one at a time, and so refuses from the
 //!   fifth daytime row in kW/m² on) and appended to the engine the same
 //!   way, so the tuning (which skips stuck values and gaps) and the band calibration take them as
@@ -35,7 +36,7 @@ use std::time::{Duration, Instant};
 use chrono::{DateTime, TimeZone, Utc};
 use tokio_modbus::client::{Client, Context, Reader};
 
-use crate::config::{ModbusFeedSection, RegisterKind, RegisterSpec};
+use crate::config::{ModbusFeedSection, RegisterKind, RegisterSpec, SiteFile};
 use crate::io::{Measurements, fmt_time};
 use crate::sun::Observer;
 
@@ -74,17 +75,17 @@ pub struct ModbusPoller {
 }
 
 impl ModbusPoller {
-    /// Start polling the device of `section` (validated with its site file); `observer` is the
-    /// site's, for the per-sample limits.
+    /// Start polling the device of `section` (validated with `site`, whose position and plant
+    /// give the per-sample limits).
     ///
     /// # Errors
     /// The poller's runtime or thread could not be made.
-    pub fn start(section: &ModbusFeedSection, observer: Observer) -> std::io::Result<ModbusPoller> {
+    pub fn start(section: &ModbusFeedSection, site: &SiteFile) -> std::io::Result<ModbusPoller> {
         let (tx, rx) = sync_channel(QUEUE_LEN);
         let (stop_tx, stop_rx) = tokio::sync::oneshot::channel();
         let status = Arc::new(Mutex::new(ModbusFeedStatus { address: section.address.clone(), unit_id: section.unit_id, ..Default::default() }));
         let rt = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
-        let device = Device::new(section.clone(), observer, tx, status.clone());
+        let device = Device::new(section.clone(), Limits::of(section, site), tx, status.clone());
         let thread = std::thread::Builder::new().name("modbus-feed".into()).spawn(move || rt.block_on(device.run(stop_rx)))?;
         Ok(ModbusPoller { section: section.clone(), rx, stop: Some(stop_tx), status, thread: Some(thread), recent: VecDeque::new(), rows_read: 0, errors: 0 })
     }
@@ -109,15 +110,13 @@ impl ModbusPoller {
             return out;
         }
         let origin = std::path::PathBuf::from(format!("modbus {}", self.section.address));
-        let f = &site.site;
-        let (observer, model) = (f.observer(), f.clear_sky());
         // The kW/m² check over the last rows together (one row alone never shows it).
         let mut probe = self.measurements(self.recent.iter().chain(rows.iter()));
         self.recent.extend(rows.iter().cloned());
         while self.recent.len() > UNIT_WINDOW_ROWS {
             self.recent.pop_front();
         }
-        if let Err(e) = probe.screen(&origin, &observer, model, f.elevation_m) {
+        if let Err(e) = probe.screen_site(&origin, site) {
             self.errors += 1;
             let span = format!("{} to {}", fmt_time(&rows[0].0), fmt_time(&rows[rows.len() - 1].0));
             out.notes.push(format!("measurements: {e}; the {} row(s) from {span} are left out", rows.len()));
@@ -125,7 +124,7 @@ impl ModbusPoller {
         }
         let mut m = self.measurements(rows.iter());
         let missing_before: Vec<Vec<bool>> = m.columns.iter().map(|c| c.iter().map(|v| v.is_nan()).collect()).collect();
-        match m.screen(&origin, &observer, model, f.elevation_m) {
+        match m.screen_site(&origin, site) {
             Ok(report) => {
                 if report.flagged() > 0 {
                     // Rows are named by their time (they have no file line).
@@ -181,8 +180,8 @@ impl Drop for ModbusPoller {
     }
 }
 
-/// Read the register list once (for `live --check`): each column with its value in W/m² (NaN
-/// where the value is not a finite number).
+/// Read the register list once (for `live --check`): each column with its value in the column's
+/// unit, W/m² or kW (NaN where the value is not a finite number).
 ///
 /// # Errors
 /// The device could not be reached or a request failed, naming the address and register.
@@ -261,6 +260,29 @@ impl Averager {
     }
 }
 
+/// How each register's samples are judged: the site's position (GHI against the sun) and each
+/// meter column's AC capacity.
+#[derive(Debug, Clone)]
+struct Limits {
+    observer: Observer,
+    /// Per register: the meter's AC capacity \[kW\] for a power column, `None` for irradiance.
+    capacity_kw: Vec<Option<f64>>,
+}
+
+impl Limits {
+    fn of(section: &ModbusFeedSection, site: &SiteFile) -> Limits {
+        Limits { observer: site.site.observer(), capacity_kw: section.registers.iter().map(|r| crate::meter::capacity_of(site, &r.column)).collect() }
+    }
+
+    /// Whether register `i`'s sample `v` is plausible with the sun at `zenith_rad`, `au` away.
+    fn plausible(&self, i: usize, v: f64, zenith_rad: f64, au: f64) -> bool {
+        match self.capacity_kw.get(i).copied().flatten() {
+            Some(cap) => crate::meter::plausible(v, cap),
+            None => sample_plausible(v, zenith_rad, au),
+        }
+    }
+}
+
 /// Whether one GHI sample is inside the BSRN "physically possible" limits with the sun at
 /// `zenith_rad` (at night, the horizon's limits) and the Earth `au` from it.
 pub fn sample_plausible(v: f64, zenith_rad: f64, au: f64) -> bool {
@@ -317,7 +339,7 @@ async fn read(ctx: &mut Context, r: &RegisterSpec, timeout: Duration) -> Result<
 /// The poller thread's state.
 struct Device {
     s: ModbusFeedSection,
-    observer: Observer,
+    limits: Limits,
     tx: SyncSender<Msg>,
     status: Arc<Mutex<ModbusFeedStatus>>,
     ctx: Option<Context>,
@@ -327,9 +349,9 @@ struct Device {
 }
 
 impl Device {
-    fn new(s: ModbusFeedSection, observer: Observer, tx: SyncSender<Msg>, status: Arc<Mutex<ModbusFeedStatus>>) -> Device {
+    fn new(s: ModbusFeedSection, limits: Limits, tx: SyncSender<Msg>, status: Arc<Mutex<ModbusFeedStatus>>) -> Device {
         let backoff_s = s.poll_s;
-        Device { s, observer, tx, status, ctx: None, retry_at: Instant::now(), backoff_s, outage: false }
+        Device { s, limits, tx, status, ctx: None, retry_at: Instant::now(), backoff_s, outage: false }
     }
 
     fn timeout(&self) -> Duration {
@@ -385,7 +407,7 @@ impl Device {
         if self.ctx.is_none() && !self.connect().await {
             return values;
         }
-        let (zenith, au) = crate::sun::position(&now, &self.observer).map(|p| (p.zenith_rad, p.earth_sun_distance_au)).unwrap_or((std::f64::consts::FRAC_PI_2, 1.0));
+        let (zenith, au) = crate::sun::position(&now, &self.limits.observer).map(|p| (p.zenith_rad, p.earth_sun_distance_au)).unwrap_or((std::f64::consts::FRAC_PI_2, 1.0));
         let timeout = self.timeout();
         let registers = self.s.registers.clone();
         let (mut fault, mut refused, mut any_ok) = (None, 0, false);
@@ -395,7 +417,7 @@ impl Device {
                 Ok(words) => {
                     any_ok = true;
                     let v = r.decode(&words);
-                    if sample_plausible(v, zenith, au) {
+                    if self.limits.plausible(i, v, zenith, au) {
                         values[i] = v;
                     } else {
                         refused += 1;
@@ -550,7 +572,7 @@ mod tests {
         let registers = columns
             .iter()
             .enumerate()
-            .map(|(i, c)| RegisterSpec { column: (*c).into(), address: i as u16, kind: RegisterKind::Input, format: Default::default(), word_order: Default::default(), scale: 1.0, offset: 0.0 })
+            .map(|(i, c)| RegisterSpec { column: (*c).into(), address: i as u16, kind: RegisterKind::Input, format: Default::default(), word_order: Default::default(), scale: 1.0, offset: 0.0, unit: None })
             .collect();
         let section = ModbusFeedSection { address: "127.0.0.1:5502".into(), unit_id: 1, poll_s: 5.0, averaging_s: 60.0, timeout_s: 2.0, registers };
         let p = ModbusPoller { section, rx, stop: None, status: Default::default(), thread: None, recent: VecDeque::new(), rows_read: 0, errors: 0 };
@@ -604,7 +626,7 @@ mod tests {
         // At night the horizon's limit (100 W/m²) applies.
         assert!(!sample_plausible(150.0, night, 1.0));
         // Decoded values flow through: a NaN float decodes to NaN and is refused, never panics.
-        let r = RegisterSpec { column: "ghi_a_wm2".into(), address: 0, kind: RegisterKind::Input, format: crate::config::RegisterFormat::F32, word_order: crate::config::WordOrder::Big, scale: 1.0, offset: 0.0 };
+        let r = RegisterSpec { column: "ghi_a_wm2".into(), address: 0, kind: RegisterKind::Input, format: crate::config::RegisterFormat::F32, word_order: crate::config::WordOrder::Big, scale: 1.0, offset: 0.0, unit: None };
         for words in [[0x7FC0, 0], [0x7F80, 0], [0xFF80, 0], [0xFFFF, 0xFFFF]] {
             assert!(!sample_plausible(r.decode(&words), noon, 1.0), "{words:?}");
         }

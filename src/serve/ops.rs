@@ -283,8 +283,7 @@ impl MeasurementFeed {
             let lines_before = st.lines;
             st.lines += n_lines;
             let parsed = Measurements::read_csv_text(&path, &text, lines_before).and_then(|mut m| {
-                let f = &site.site;
-                let report = m.screen(&path, &f.observer(), f.clear_sky(), f.elevation_m)?;
+                let report = m.screen_site(&path, site)?;
                 if report.flagged() > 0 {
                     out.notes.push(format!("measurements {}: {report}", path.display()));
                 }

@@ -214,6 +214,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         pyranometers: vec![],
         measurements_modbus: None,
         second_camera: None,
+        webhook: Default::default(),
     }
 }
 
