@@ -4,11 +4,12 @@
 //! shown) and stale (the last frame is old). Screenshots are kept as
 //! `target/dashboard-<state>.png` (`target/dashboard-screenshot.png` is the normal state).
 #![cfg(feature = "server")]
+mod common;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};
 
-use chrono::{DateTime, Timelike, Utc};
+use chrono::{DateTime, Utc};
 use nephocast::serve::{LiveHandle, LiveOptions, start};
 fn chromium() -> Option<PathBuf> {
     ["/usr/bin/chromium", "/usr/bin/chromium-browser"].iter().map(PathBuf::from).find(|p| p.is_file())
@@ -38,29 +39,7 @@ fn browse(bin: &Path, url: &str, extra: &[&str], profile: &Path) -> std::process
 /// The demo site moved in longitude so that the sun is high now (the demo frames are replayed
 /// with times near the present, so that their age is that of a live feed).
 fn site_for_now(dir: &Path) -> PathBuf {
-    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
-    let now = Utc::now();
-    let hours = f64::from(now.hour()) + f64::from(now.minute()) / 60.0;
-    let lon = ((12.0 - hours) * 15.0 + 540.0).rem_euclid(360.0) - 180.0;
-    let text = std::fs::read_to_string(demo.join("site.toml")).unwrap();
-    let text = text
-        .lines()
-        .map(|l| {
-            if l.starts_with("longitude_deg") {
-                format!("longitude_deg = {lon:.3}")
-            } else if l.starts_with("latitude_deg") {
-                "latitude_deg = 5.0".to_string()
-            } else if l.starts_with("calibration = ") {
-                format!("calibration = {:?}", demo.join("calibration/larkspur-sky1.toml").display().to_string())
-            } else {
-                l.to_string()
-            }
-        })
-        .collect::<Vec<_>>()
-        .join("\n");
-    let p = dir.join("site.toml");
-    std::fs::write(&p, text).unwrap();
-    p
+    common::demo_site_for_now(dir, 5.0)
 }
 
 fn live(site: &Path, incoming: &Path, db: &Path, measurements: Option<&Path>) -> LiveHandle {

@@ -2,6 +2,7 @@
 //! the health state turning stale on the timer, the metrics page, retention of judged frames,
 //! untimed files named, and `--check`'s exit statuses.
 #![cfg(feature = "server")]
+mod common;
 use std::io::{Read, Write};
 use std::net::{SocketAddr, TcpStream};
 use std::path::{Path, PathBuf};
@@ -44,10 +45,20 @@ fn demo_frames() -> Vec<PathBuf> {
 }
 
 fn options(d: &Path, health: HealthOptions) -> LiveOptions {
+    options_for(d, health, demo().join("site.toml"))
+}
+
+/// [`options`] for frames stamped with the wall clock: the demo site moved so that its sun is up
+/// now ([`common::demo_site_for_now`]).
+fn options_now(d: &Path, health: HealthOptions) -> LiveOptions {
+    options_for(d, health, common::demo_site_for_now(d, 5.0))
+}
+
+fn options_for(d: &Path, health: HealthOptions, site: PathBuf) -> LiveOptions {
     let incoming = d.join("incoming");
     std::fs::create_dir_all(&incoming).unwrap();
     LiveOptions {
-        site: demo().join("site.toml"),
+        site,
         incoming,
         db: d.join("live.sqlite"),
         bind: "127.0.0.1:0".parse().unwrap(),
@@ -128,7 +139,7 @@ fn measurement_feed_appended_and_rotated_while_live_reaches_the_tuner() {
 fn health_turns_stale_on_the_timer_within_a_second_of_the_threshold() {
     let d = tempfile::tempdir().unwrap();
     // Stale after 2 × 0.5 + 60 = 61 s.
-    let o = options(d.path(), HealthOptions { frame_interval_s: 0.5, ..Default::default() });
+    let o = options_now(d.path(), HealthOptions { frame_interval_s: 0.5, ..Default::default() });
     let threshold_s = 61.0;
     let incoming = o.incoming.clone();
     let h = start(o).unwrap();
@@ -279,7 +290,7 @@ fn check_exits_0_on_a_usable_configuration_and_2_on_a_bad_one() {
 #[test]
 fn a_refused_frame_does_not_make_an_old_forecast_current() {
     let d = tempfile::tempdir().unwrap();
-    let o = options(d.path(), HealthOptions::default());
+    let o = options_now(d.path(), HealthOptions::default());
     let incoming = o.incoming.clone();
     let h = start(o).unwrap();
     let addr = h.addr;

@@ -4,6 +4,7 @@
 //! frame age; an `event=health` line when the health changes; an `event=untimed` line naming a file
 //! without a time. The same keys come as JSON objects with `--log-json`.
 #![cfg(feature = "cli")]
+mod common;
 use std::collections::BTreeMap;
 use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
@@ -11,7 +12,7 @@ use std::process::{Child, Command, Stdio};
 use std::sync::mpsc::{Receiver, RecvTimeoutError};
 use std::time::Duration;
 
-use chrono::{DateTime, Timelike, Utc};
+use chrono::{DateTime, Utc};
 
 const BIN: &str = env!("CARGO_BIN_EXE_nephocast");
 const ALARM_STATES: [&str; 4] = ["calm", "caution", "alert", "variable"];
@@ -22,18 +23,7 @@ fn demo() -> PathBuf {
 
 /// The demo site moved in longitude so that the sun is high now.
 fn site_for_now(dir: &Path) -> PathBuf {
-    let now = Utc::now();
-    let hours = f64::from(now.hour()) + f64::from(now.minute()) / 60.0;
-    let lon = ((12.0 - hours) * 15.0 + 540.0).rem_euclid(360.0) - 180.0;
-    let text = std::fs::read_to_string(demo().join("site.toml")).unwrap();
-    let text = text
-        .replace("latitude_deg = 37.412", "latitude_deg = 5.0")
-        .replace("longitude_deg = -3.21", &format!("longitude_deg = {lon:.3}"))
-        .replace("calibration = \"calibration/", &format!("calibration = \"{}/calibration/", demo().display()));
-    assert!(!text.contains("37.412"), "the demo site's position moved: update this test");
-    let p = dir.join("site.toml");
-    std::fs::write(&p, text).unwrap();
-    p
+    common::demo_site_for_now(dir, 5.0)
 }
 
 /// Split a `key=value key="quoted value"` line (values quoted as Rust strings are).

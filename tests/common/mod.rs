@@ -41,3 +41,34 @@ pub fn datasets() -> Option<PathBuf> {
         }
     }
 }
+
+/// The demo site moved so that the sun is high now: its longitude put where local solar noon is
+/// the present UTC hour, its latitude `latitude_deg`, the calibration path made absolute. Tests
+/// that stamp frames with the wall clock (live mode judges a frame's age against it) use it, so
+/// that they do not fail when the demo site's own sun is down.
+pub fn demo_site_for_now(dir: &Path, latitude_deg: f64) -> PathBuf {
+    use chrono::Timelike;
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
+    let now = chrono::Utc::now();
+    let hours = f64::from(now.hour()) + f64::from(now.minute()) / 60.0;
+    let lon = ((12.0 - hours) * 15.0 + 540.0).rem_euclid(360.0) - 180.0;
+    let text = std::fs::read_to_string(demo.join("site.toml")).unwrap();
+    let text = text
+        .lines()
+        .map(|l| {
+            if l.starts_with("longitude_deg") {
+                format!("longitude_deg = {lon:.3}")
+            } else if l.starts_with("latitude_deg") {
+                format!("latitude_deg = {latitude_deg:.3}")
+            } else if l.starts_with("calibration = ") {
+                format!("calibration = {:?}", demo.join("calibration/larkspur-sky1.toml").display().to_string())
+            } else {
+                l.to_string()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join("\n");
+    let p = dir.join("site.toml");
+    std::fs::write(&p, text + "\n").unwrap();
+    p
+}
