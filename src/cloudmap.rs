@@ -357,6 +357,10 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
             cloudy_cells += 1;
         }
     }
+    if params.distant_contrast {
+        let plain = |k: usize| sky.plain[k] && fr.outside_glare(sky.gamma_deg[k]);
+        crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
+    }
     crate::segment::far_thickness(&mut class, &score, &lut.z_deg, params);
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;

@@ -58,6 +58,7 @@ pub mod cli;
 pub mod clearsky;
 pub mod cloudmap;
 pub mod config;
+pub mod distance;
 pub mod forecast;
 pub mod intake;
 pub mod io;

@@ -123,6 +123,10 @@ pub struct SegmentParams {
     /// made thick) and on its breaking overcast the 15-minute skill 0.50 → 0.44. It stays off until
     /// it can tell a veil from distant cumulus.
     pub far_thickness_from_zenith_deg: f64,
+    /// Lift far cloud's scores by the frame's measured loss of contrast with distance before the
+    /// thresholds apply (`distance`: haze between a distant cloud and the camera pulls its colour
+    /// toward the clear sky's, so distant cumulus reads thin or clear).
+    pub distant_contrast: bool,
     /// Cloud fraction is counted within this zenith angle \[°\].
     pub cloud_fraction_zenith_deg: f64,
     /// Frames with a cloud fraction at most this update the learned clear-sky library.
@@ -157,6 +161,7 @@ impl Default for SegmentParams {
             glare_ring_share: 0.75,
             max_zenith_deg: 90.0,
             far_thickness_from_zenith_deg: 90.0,
+            distant_contrast: true,
             cloud_fraction_zenith_deg: 70.0,
             library_max_cloud_fraction: 0.02,
             library_rate: 0.2,
@@ -651,6 +656,10 @@ pub fn segment_image(
     for i in (0..w * h).filter(|&i| seen(i)) {
         let (_, s, c) = fr.classify_sample(&sky, i, geom.z_deg[i], || px(i), || px(i));
         (score[i], classes[i]) = (s, c);
+    }
+    if params.distant_contrast {
+        let plain = |i: usize| sky.plain[i] && fr.outside_glare(sky.gamma_deg[i]);
+        crate::distance::correct(&score, &geom.z_deg, &plain, &mut classes, |z| params.thick_at(z));
     }
     far_thickness(&mut classes, &score, &geom.z_deg, params);
     let (mut cloudy, mut counted) = (0usize, 0usize);

@@ -32,7 +32,6 @@ const TARGET_MAX_MBE: f64 = 50.0;
 const KNOWN_SHORTFALLS: &[&str] = &[
     "camera1 calibration p95",
     "camera1 largest |MBE|",
-    "camera2 largest |MBE|",
     "camera2 pooled skill",
 ];
 

@@ -534,6 +534,7 @@ impl Nowcaster {
         let dt_s = self.frame_qc.since_last_s(&frame.time);
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
         let motion = moved.layers.first().map(|l| l.motion);
+        self.map_stage.layered = moved.layers.len() > 1;
         let t_motion = Clock::now();
         self.stereo_stage(frame, reduced, &sun);
         let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));

@@ -108,6 +108,10 @@ pub(super) struct MapStage {
     luts: LutCache,
     pub(super) reference: Reference,
     cell_sky: Option<(usize, [f32; 3], crate::cloudmap::CellSky)>,
+    /// Whether the last frame's motion tracked two layers: the distant-contrast correction
+    /// (`segment.distant_contrast`) takes the cloud field as alike across the sky, which a veil over
+    /// cumulus is not, so it rests while two layers are tracked.
+    pub(super) layered: bool,
 }
 
 impl MapStage {
@@ -140,7 +144,14 @@ impl MapStage {
             self.cell_sky = None;
         }
         let sky = &self.cell_sky.get_or_insert_with(|| (key, sd3, crate::cloudmap::CellSky::new(lut, sun_dir, sp))).2;
-        let map = Arc::new(build_map_with(image, lut, sky, sp, &self.reference));
+        let single_layer;
+        let map_sp = if self.layered && sp.distant_contrast {
+            single_layer = crate::segment::SegmentParams { distant_contrast: false, ..sp.clone() };
+            &single_layer
+        } else {
+            sp
+        };
+        let map = Arc::new(build_map_with(image, lut, sky, map_sp, &self.reference));
         let [cf, thin_cf] = map.cover(lut, sp.cloud_fraction_zenith_deg as f32);
         let raw = image.as_raw();
         let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
