@@ -19,7 +19,10 @@ For each camera (camera1, camera2) the script:
    user's way) or, as a diagnostic only, ``truth/camera.json`` converted to nephocast's convention
    (``--camera-from truth``; the conversion is verified with ``nephocast camera project``);
 4. measures the calibration against the true camera on a grid of sky directions (pixel and
-   angular error per zenith band), with ``nephocast camera project`` / ``unproject``;
+   angular error per zenith band), with ``nephocast camera project`` / ``unproject``, sets the
+   stated bound beside the true error, and (camera from ``calibrate``) sets the sun detections
+   ``calibrate`` used against the true sun pixel of ``truth/truth.csv``: their image-radial and
+   tangential lean, for bare discs and bloomed ones (``--calibration-only`` stops here);
 5. replays the cloudy scene with the measurements and scores forecasts, motion and ramp warnings
    with the scene's ``score.py``;
 6. replays the clear day with the same camera and scores its forecasts too;
@@ -267,6 +270,30 @@ def verify_truth_conversion(binary, cal, true_cam, sc, log):
     ox, oy = bin_project(binary, cal, zen[ok], az[ok], log)
     e = np.hypot(ox - tx[ok], oy - ty[ok])
     return dict(max_px=float(np.nanmax(e)), n=int(ok.sum()), n_missing=int(np.sum(~np.isfinite(e))))
+
+
+def detection_lean(detections_csv, truth_csv, true_cam):
+    """How the sun detections `calibrate` used sit against the true sun (a diagnostic: truth.csv's
+    sun pixel, read by this script only). Offsets are split into image-radial (positive: away from
+    the true principal point) and tangential parts, and summarised for the bare discs (bloom weight
+    >= 0.95), the partly bloomed (0.3-0.95) and the bloomed (< 0.3), with the radial lean as a share
+    of the image radius (a lean common to all detections is a focal-length error to the fit)."""
+    d = pd.read_csv(detections_csv)
+    t = pd.read_csv(truth_csv)[["time", "sun_px_x", "sun_px_y"]]
+    m = d.merge(t, left_on="time_utc", right_on="time")
+    ux, uy = m.sun_px_x - true_cam["cx"], m.sun_px_y - true_cam["cy"]
+    r = np.hypot(ux, uy)
+    ex, ey = m.x_px - m.sun_px_x, m.y_px - m.sun_px_y
+    rad, tan = (ex * ux + ey * uy) / r, (-ex * uy + ey * ux) / r
+    out = {}
+    for name, sel in (("bare", m.weight >= 0.95), ("partly_bloomed", (m.weight >= 0.3) & (m.weight < 0.95)), ("bloomed", m.weight < 0.3)):
+        if not sel.any():
+            continue
+        out[name] = dict(n=int(sel.sum()), zenith_deg=[float(m.sun_zenith_deg[sel].min()), float(m.sun_zenith_deg[sel].max())],
+                         radial_mean_px=float(rad[sel].mean()), radial_median_px=float(rad[sel].median()),
+                         tangential_mean_px=float(tan[sel].mean()), tangential_sd_px=float(tan[sel].std()),
+                         radial_share_of_radius_pct=float(100 * (rad[sel] / r[sel]).mean()))
+    return out
 
 
 # ------------------------------------------------------------------ site and measurements
@@ -537,6 +564,12 @@ def run_camera(a, camera, sc, yard, log, res):
                                                      max_diff_vs_written_px=float(np.nanmax(np.hypot(
                                                          *(np.subtract(PyCamera(f).project(*grid_directions()),
                                                                        PyCamera(cal_info["fields"]).project(*grid_directions())))))))
+    if a.camera_from == "calibrate":
+        dets = os.path.join(work, "cal-detections.csv")
+        if os.path.exists(dets):
+            cal_info["detection_lean"] = detection_lean(dets, os.path.join(clear, "truth", "truth.csv"), true_cam)
+    if a.calibration_only:
+        return
     # 1./2. site files and measurements
     res["cbh_m"] = write_site(site_cloudy, site_json, ceil(cloudy), cal, pyr)
     write_site(site_clear, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), cal, pyr)
@@ -611,8 +644,24 @@ def markdown(res):
                      f"{fnum(b['deg_p95'], '{:.3f}')} | {b['outside_ours_project']}/{b['outside_ours_unproject']} |")
         L.append(f"\np95 angular error over zenith < 80°: **{fnum(err['deg_p95_z_lt_80'], '{:.3f}')}°** "
                  f"(p95 pixel {fnum(err['px_p95_z_lt_80'])} px)")
+        bounds = (ci.get("fit") or {}).get("direction_bound_deg") or []
+        cover = []
+        for b in err["bands"]:
+            lo, hi = BANDS[BAND_NAMES.index(b["band"])]
+            stated = max((x[2] for x in bounds if x[0] < hi and x[1] > lo), default=float("nan"))
+            cover.append(f"{b['band']}: {fnum(b['deg_p95'], '{:.3f}')} ≤ {fnum(stated, '{:.3f}')} {'yes' if b['deg_p95'] <= stated else 'NO'}")
+        if bounds:
+            L.append("stated bound vs true p95 by band: " + "; ".join(cover))
     elif err:
         L.append(f"- calibration error not measured: {err.get('failed')}")
+    lean = ci.get("detection_lean")
+    if lean:
+        L.append("\ndetections against the true sun (diagnostic; radial: away from the principal point):")
+        L.append("\n| detections | n | zenith | radial mean px | radial median px | radial, % of radius | tangential mean px | tangential sd px |")
+        L.append("|---|---:|---|---:|---:|---:|---:|---:|")
+        for k, v in lean.items():
+            L.append(f"| {k} | {v['n']} | {v['zenith_deg'][0]:.0f}–{v['zenith_deg'][1]:.0f}° | {v['radial_mean_px']:+.2f} | {v['radial_median_px']:+.2f} | "
+                     f"{v['radial_share_of_radius_pct']:+.2f} | {v['tangential_mean_px']:+.2f} | {v['tangential_sd_px']:.2f} |")
     if res.get("error"):
         L.append(f"\n**{res['error']}**")
     for key in ("cloudy", "clear"):
@@ -683,6 +732,8 @@ def main():
     ap.add_argument("--causal-measurements", action="store_true",
                     help="stamp each 1-minute mean at the END of its minute (the engine reads the row whose minute "
                          "holds the frame time, i.e. up to 60 s of readings after the frame; this removes that look-ahead)")
+    ap.add_argument("--calibration-only", action="store_true",
+                    help="stop after measuring the calibration (steps 3-4 and the detections' lean); no replays")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
     if not a.scenes or not os.path.isdir(a.scenes):

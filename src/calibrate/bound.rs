@@ -4,7 +4,8 @@
 
 use nalgebra::DMatrix;
 
-use super::{BOUND_BANDS_DEG, BandBound, Coverage, Detection, Fit, Problem, angle_deg, perturbed, project_unchecked};
+use super::fit::{Problem, angle_deg, perturbed, project_unchecked};
+use super::{BOUND_BANDS_DEG, BandBound, Coverage, Detection, Fit};
 use crate::camera::Camera;
 use crate::sun::{direction_enu, zenith_azimuth_of};
 
