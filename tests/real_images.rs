@@ -26,7 +26,7 @@ impl Regions {
 
     fn add(&mut self, lab: &image::GrayImage, ours: &image::GrayImage, geom: &ImageGeometry, sun: Option<[f32; 3]>) {
         let (w, h) = (lab.width() as i64, lab.height() as i64);
-        let label = |x: i64, y: i64| (x >= 0 && y >= 0 && x < w && y < h).then(|| lab.get_pixel(x as u32, y as u32).0[0]).unwrap_or(0);
+        let label = |x: i64, y: i64| if x >= 0 && y >= 0 && x < w && y < h { lab.get_pixel(x as u32, y as u32).0[0] } else { 0 };
         let near_edge = |x: i64, y: i64, cloud: bool| {
             (-3..=3i64).any(|dy| (-3..=3i64).any(|dx| dx * dx + dy * dy <= 9 && matches!(label(x + dx, y + dy), 100 | 255) && (label(x + dx, y + dy) == 255) != cloud))
         };
