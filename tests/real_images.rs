@@ -5,11 +5,59 @@
 //! undefined), read from `$NEPHOCAST_DATASETS/wsiseg` (set by `.ci/run`; no licence is stated for
 //! the database, so it is not copied into this repository). The frames come without calibration or
 //! time, so the segmenter fits the image circle and finds the sun itself; the same default
-//! parameters serve every image.
+//! parameters serve every image. Beside the accuracy the test prints where the wrong pixels lie
+//! (see [`Regions`]), so that a change can be judged by region.
 mod common;
 
 use nephocast::calibrate::geometry_free;
-use nephocast::segment::{Class, ImageGeometry, Reference, SegmentParams, segment_image};
+use nephocast::segment::{Class, ImageGeometry, Reference, SegmentParams, gamma_deg, segment_image};
+
+/// Wrong labelled pixels by region, each counted in the first region that holds it: unknown to the
+/// segmenter (beyond the fitted image circle, or the sun's disc and glare), within 20° of the sun,
+/// beyond 80° zenith, within 3 px of a labelled cloud/clear boundary, elsewhere.
+#[derive(Default)]
+struct Regions {
+    wrong: [usize; 5],
+    labelled: usize,
+}
+
+impl Regions {
+    const NAMES: [&'static str; 5] = ["unknown to us", "sun < 20°", "zenith > 80°", "cloud edge ± 3 px", "elsewhere"];
+
+    fn add(&mut self, lab: &image::GrayImage, ours: &image::GrayImage, geom: &ImageGeometry, sun: Option<[f32; 3]>) {
+        let (w, h) = (lab.width() as i64, lab.height() as i64);
+        let label = |x: i64, y: i64| if x >= 0 && y >= 0 && x < w && y < h { lab.get_pixel(x as u32, y as u32).0[0] } else { 0 };
+        let near_edge = |x: i64, y: i64, cloud: bool| {
+            (-3..=3i64).any(|dy| (-3..=3i64).any(|dx| dx * dx + dy * dy <= 9 && matches!(label(x + dx, y + dy), 100 | 255) && (label(x + dx, y + dy) == 255) != cloud))
+        };
+        for y in 0..h {
+            for x in 0..w {
+                let l = label(x, y);
+                if l == 0 {
+                    continue;
+                }
+                self.labelled += 1;
+                let i = (y * w + x) as usize;
+                let class = Class::from_u8(ours.get_pixel(x as u32, y as u32).0[0]);
+                if matches!(class, Class::Thin | Class::Thick) == (l == 255) {
+                    continue;
+                }
+                let region = if class == Class::Unknown {
+                    0
+                } else if gamma_deg(geom.dir[i], sun) < 20.0 {
+                    1
+                } else if geom.z_deg[i] > 80.0 {
+                    2
+                } else if near_edge(x, y, l == 255) {
+                    3
+                } else {
+                    4
+                };
+                self.wrong[region] += 1;
+            }
+        }
+    }
+}
 
 #[test]
 fn wsiseg_pixel_accuracy() {
@@ -20,6 +68,7 @@ fn wsiseg_pixel_accuracy() {
     assert_eq!(names.len(), 40, "expected the 40 WSISEG frames");
     let params = SegmentParams::default();
     let mut accs = vec![];
+    let mut regions = Regions::default();
     eprintln!("image                 accuracy  cloud fraction (ours / labels)");
     for n in &names {
         let img = image::open(dir.join("images").join(n)).unwrap().to_rgb8();
@@ -27,6 +76,7 @@ fn wsiseg_pixel_accuracy() {
         let (cam, sun) = geometry_free(&img).expect("image circle");
         let geom = ImageGeometry::from_camera(&cam, None);
         let seg = segment_image(&img, &geom, sun, &params, &Reference::default());
+        regions.add(&lab, &seg.classes, &geom, sun);
         let (mut ok, mut total, mut lab_cloud, mut our_cloud) = (0usize, 0usize, 0usize, 0usize);
         for (p, l) in seg.classes.pixels().zip(lab.pixels()) {
             let l = l.0[0];
@@ -46,6 +96,10 @@ fn wsiseg_pixel_accuracy() {
     let mean = accs.iter().sum::<f64>() / accs.len() as f64;
     let min = accs.iter().cloned().fold(1.0, f64::min);
     eprintln!("WSISEG: mean pixel accuracy {mean:.4}, lowest {min:.4} over {} images", accs.len());
+    eprintln!("wrong pixels by region (share of all labelled pixels):");
+    for (name, n) in Regions::NAMES.iter().zip(regions.wrong) {
+        eprintln!("  {name:<18} {:.4}", n as f64 / regions.labelled as f64);
+    }
     assert!(mean >= 0.94, "mean accuracy {mean}");
     assert!(min >= 0.85, "lowest accuracy {min}");
 }

@@ -136,27 +136,105 @@ pub fn refine_image_circle(img: &image::RgbImage, rough: ImageCircle) -> Option<
             pts.push(p);
         }
     }
-    let fit = |pts: &[(f64, f64)]| -> Option<ImageCircle> {
-        if pts.len() < 60 {
-            return None;
-        }
-        // Kåsa: x² + y² + D x + E y + F = 0, linear least squares.
-        let mut a = DMatrix::zeros(pts.len(), 3);
-        let mut b = DVector::zeros(pts.len());
-        for (i, (x, y)) in pts.iter().enumerate() {
-            a[(i, 0)] = *x;
-            a[(i, 1)] = *y;
-            a[(i, 2)] = 1.0;
-            b[i] = -(x * x + y * y);
-        }
-        let sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
-        let (cx, cy) = (-sol[0] / 2.0, -sol[1] / 2.0);
-        let r2 = cx * cx + cy * cy - sol[2];
-        (r2 > 0.0).then(|| ImageCircle { cx_px: cx, cy_px: cy, radius_px: r2.sqrt() })
-    };
+    let fit = |pts: &[(f64, f64)]| if pts.len() < 60 { None } else { kasa_circle(pts) };
     let first = fit(&pts)?;
     let kept: Vec<(f64, f64)> = pts.into_iter().filter(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() <= 2.0).collect();
     fit(&kept)
+}
+
+/// The least-squares circle through points by the linear method of Kåsa (1976):
+/// `x² + y² + D x + E y + F = 0`. `None` when the system is degenerate.
+fn kasa_circle(pts: &[(f64, f64)]) -> Option<ImageCircle> {
+    let mut a = DMatrix::zeros(pts.len(), 3);
+    let mut b = DVector::zeros(pts.len());
+    for (i, (x, y)) in pts.iter().enumerate() {
+        a[(i, 0)] = *x;
+        a[(i, 1)] = *y;
+        a[(i, 2)] = 1.0;
+        b[i] = -(x * x + y * y);
+    }
+    let sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
+    let (cx, cy) = (-sol[0] / 2.0, -sol[1] / 2.0);
+    let r2 = cx * cx + cy * cy - sol[2];
+    (r2 > 0.0).then(|| ImageCircle { cx_px: cx, cy_px: cy, radius_px: r2.sqrt() })
+}
+
+/// Kåsa circle refitted without outliers: five passes, each dropping the points whose distance
+/// from the circle exceeds 2.5 robust standard deviations (1.4826 × the median absolute residual,
+/// plus 0.5 px for the pixel grid). `None` with fewer than `min_pts` points left.
+fn robust_circle(pts: &[(f64, f64)], min_pts: usize) -> Option<ImageCircle> {
+    let mut kept: Vec<(f64, f64)> = pts.to_vec();
+    let mut c = kasa_circle(&kept)?;
+    for _ in 0..5 {
+        let res = |p: &(f64, f64)| ((p.0 - c.cx_px).hypot(p.1 - c.cy_px) - c.radius_px).abs();
+        let mut r: Vec<f64> = kept.iter().map(res).collect();
+        r.sort_by(f64::total_cmp);
+        let sigma = 1.4826 * r[r.len() / 2] + 0.5;
+        kept = pts.iter().copied().filter(|p| res(p) < 2.5 * sigma).collect();
+        if kept.len() < min_pts {
+            return None;
+        }
+        c = kasa_circle(&kept)?;
+    }
+    Some(c)
+}
+
+/// Fewest edge points (of 360 rays) for a sky-edge circle.
+const SKY_EDGE_MIN_POINTS: usize = 60;
+
+/// The image circle as the edge of the imaged sky: along 360 rays from the rough centre, walking
+/// outward in 1 px steps from 0.8 to 1.2 rough radii, the first pixel where the brightest channel
+/// falls below 0.4 × the median of the 8 pixels before it (and the next pixel does too; that
+/// median at least 20), i.e. the drop from sky to the dark lens rim. The circle is
+/// [`robust_circle`] through those points, and the rays are cast once more from its centre. A
+/// cloud edge, a mast or a horizon building gives a drop inside the circle on a few rays only,
+/// and the outlier passes remove them. Unlike the area of the lit pixels
+/// ([`fit_image_circle`]), the edge is not moved by a dark overcast inside the circle or a lit
+/// lens rim and flare outside it; unlike the outermost lit pixel ([`refine_image_circle`]), it
+/// holds when the frame cuts the circle or glow lies beyond it. The levels are own choices, set
+/// by how little the circle moves between the frames of one fixed camera. `None` with fewer than
+/// 60 edge points.
+pub fn sky_edge_circle(img: &image::RgbImage, rough: ImageCircle) -> Option<ImageCircle> {
+    let (w, h) = img.dimensions();
+    let level = |x: f64, y: f64| -> Option<f64> {
+        let (xi, yi) = (x.round() as i64, y.round() as i64);
+        (xi >= 0 && yi >= 0 && xi < w as i64 && yi < h as i64).then(|| *img.get_pixel(xi as u32, yi as u32).0.iter().max().unwrap_or(&0) as f64)
+    };
+    const RUN: usize = 8;
+    let mut c = rough;
+    for _ in 0..2 {
+        let mut pts = vec![];
+        for k in 0..360 {
+            let a = (k as f64).to_radians();
+            let (dx, dy) = (a.cos(), a.sin());
+            let steps = (0.4 * c.radius_px).floor() as usize;
+            let at = |j: usize| {
+                let r = 0.8 * c.radius_px + j as f64;
+                level(c.cx_px + r * dx, c.cy_px + r * dy)
+            };
+            let mut run: Vec<f64> = Vec::with_capacity(RUN);
+            for j in 0..steps.saturating_sub(1) {
+                let Some(v) = at(j) else { break };
+                if run.len() == RUN {
+                    let mut sorted = run.clone();
+                    sorted.sort_by(f64::total_cmp);
+                    let median = 0.5 * (sorted[RUN / 2 - 1] + sorted[RUN / 2]);
+                    if median >= 20.0 && v < 0.4 * median && at(j + 1).is_some_and(|n| n < 0.4 * median) {
+                        let r = 0.8 * c.radius_px + j as f64 - 0.5;
+                        pts.push((c.cx_px + r * dx, c.cy_px + r * dy));
+                        break;
+                    }
+                    run.remove(0);
+                }
+                run.push(v);
+            }
+        }
+        if pts.len() < SKY_EDGE_MIN_POINTS {
+            return None;
+        }
+        c = robust_circle(&pts, SKY_EDGE_MIN_POINTS)?;
+    }
+    Some(c)
 }
 
 /// The image circle found in an image: centre and radius \[px\].
@@ -238,10 +316,12 @@ pub fn find_sun_blob(img: &image::RgbImage, level: u8, min_px: usize, radius_px:
     Some((sx / n as f64, sy / n as f64, n))
 }
 
-/// Geometry for an image without calibration or time: the fitted image circle taken as the 90°
-/// field of a level equidistant lens, and the sun found in the image.
+/// Geometry for an image without calibration or time: the image circle (the sky's edge,
+/// [`sky_edge_circle`], else the area of the lit pixels) taken as the 90° field of a level
+/// equidistant lens, and the sun found in the image.
 pub fn geometry_free(img: &image::RgbImage) -> Option<(Camera, Option<[f32; 3]>)> {
-    let c = fit_image_circle(img)?;
+    let rough = fit_image_circle(img)?;
+    let c = sky_edge_circle(img, rough).unwrap_or(rough);
     let cam = Camera::new(
         img.width(),
         img.height(),
@@ -298,6 +378,34 @@ mod tests {
         let w600 = d.iter().find(|x| x.blob_px == 600).unwrap().weight;
         let excess: f64 = 600.0 / 410.0 - 1.0;
         assert!((w600 - 1.0 / (1.0 + (excess / 0.5).powi(2))).abs() < 1e-12);
+    }
+
+    /// A sky disc (radius 100 px) with a dark overcast patch inside its edge, a lit lens rim
+    /// beyond a dark gap, glow outside and the frame cutting the top: the sky's edge gives the
+    /// disc, where the area of the lit pixels does not.
+    #[test]
+    fn sky_edge_circle_ignores_rim_patch_and_frame() {
+        let (cx, cy, radius) = (160.0, 96.0, 100.0);
+        let mut img = image::RgbImage::new(320, 200);
+        for (x, y, p) in img.enumerate_pixels_mut() {
+            let (dx, dy) = (x as f64 - cx, y as f64 - cy);
+            let r = dx.hypot(dy);
+            let v = if r < radius {
+                // Darker toward the horizon, and a dark patch on the left within 15 px of the edge.
+                if dx < -90.0 && r > radius - 15.0 { 30 } else { (140.0 - 50.0 * r / radius) as u8 }
+            } else if r < radius + 3.0 {
+                8
+            } else if r < radius + 7.0 && dx > 0.0 {
+                120 // the lens rim, lit on the right
+            } else {
+                15 // glow
+            };
+            *p = image::Rgb([v / 2, v / 2 + v / 4, v]);
+        }
+        let rough = fit_image_circle(&img).unwrap();
+        assert!((rough.cx_px - cx).abs() > 2.0 || (rough.radius_px - radius).abs() > 2.0, "the area fit is biased here: {rough:?}");
+        let c = sky_edge_circle(&img, rough).unwrap();
+        assert!((c.cx_px - cx).abs() < 0.6 && (c.cy_px - cy).abs() < 0.6 && (c.radius_px - radius).abs() < 0.6, "{c:?}");
     }
 
     #[test]

@@ -64,7 +64,7 @@ mod outputs;
 use bound::{bound_table, coverage_of};
 use fit::{Problem, finish, held_out, problem, solve, start_params, weighted_rms, with_lean};
 pub use fit::fit_detections;
-pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom};
+pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom, sky_edge_circle};
 pub use outputs::{calibration_record, clear_sky_reference, detections_csv, obstruction_mask, residual_plot};
 
 /// One sun detection paired with the sun's direction.
