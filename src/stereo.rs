@@ -537,7 +537,7 @@ impl LayerCells {
     /// The layer bits of the map cell camera A sees in direction `dir` (unit, east-north-up); 0
     /// off the map or below the horizon.
     pub fn at(&self, dir: [f32; 3]) -> u8 {
-        if !(dir[2] > 1e-3) {
+        if dir[2].is_nan() || dir[2] <= 1e-3 {
             return 0;
         }
         let s = self.grid.height_m / dir[2] as f64;
