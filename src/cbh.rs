@@ -107,7 +107,54 @@ pub struct CloudSection {
     /// configured value or series.
     #[serde(default, skip_serializing_if = "std::ops::Not::not")]
     pub shadow_timing: bool,
+    /// Known cloud layers (e.g. from a sounding or a weather model), each a base height and the
+    /// direction it moves toward: a tracked layer moving within [`LAYER_PRIOR_MAX_ANGLE_DEG`] of a
+    /// known layer's direction takes that base as its prior (with `base_height_rel_sigma`), in
+    /// place of `base_height_m`. The direction tells layers apart because the camera measures it
+    /// right at any assumed height (only the speed scales with the height).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub layers: Vec<LayerPrior>,
 }
+
+/// A known cloud layer (`[[clouds.layers]]`).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LayerPrior {
+    /// Base height above the site \[m\].
+    pub base_height_m: f64,
+    /// Direction the layer moves toward \[° from north, clockwise\].
+    pub toward_deg: f64,
+}
+
+/// A tracked layer takes a known layer's base when their directions differ by at most this \[°\]
+/// (own choice).
+pub const LAYER_PRIOR_MAX_ANGLE_DEG: f64 = 45.0;
+
+/// A stereo estimate belongs to a tracked layer when their motions on the map differ by at most
+/// this share of the layer's speed, and at least [`STEREO_MATCH_MIN_MPS`] (own choice: the
+/// filtered motion of one layer moves much less between stereo runs).
+pub const STEREO_MATCH_SHARE: f64 = 0.35;
+/// See [`STEREO_MATCH_SHARE`] \[m/s\].
+pub const STEREO_MATCH_MIN_MPS: f64 = 2.0;
+
+/// One stereo estimate kept by [`CbhState`]: its time, height above the site origin \[m\], sigma
+/// of `ln h` and the motion on the map of the layer it was made for (none when no motion was known).
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct StereoEntry {
+    time: DateTime<Utc>,
+    cbh_m: f64,
+    rel_sigma: f64,
+    v_map_mps: Option<[f64; 2]>,
+}
+
+fn dist(a: [f64; 2], b: [f64; 2]) -> f64 {
+    (a[0] - b[0]).hypot(a[1] - b[1])
+}
+
+/// Prior uncertainty of a second cloud layer's base, as the sigma of `ln h`, when only the first
+/// layer's base is configured (own choice: a factor of 0.6–1.65 at one sigma; the camera alone
+/// cannot tell its height). The ensemble spreads that layer's base by it.
+pub const UPPER_LAYER_PRIOR_REL_SIGMA: f64 = 0.5;
 
 /// Fewest pyranometers for shadow timing (`[clouds] shadow_timing`).
 pub const MIN_SHADOW_SENSORS: usize = 3;
@@ -488,9 +535,12 @@ pub struct CbhState {
     last_fit: Option<(DateTime<Utc>, ShadowFit)>,
     /// Why the newest frame gave no shadow-timing fit, if it gave none.
     pub last_no_fit: Option<NoFit>,
-    /// The newest stereo estimate (height above the camera \[m\], sigma of `ln h`) and its time.
-    last_stereo: Option<(DateTime<Utc>, f64, f64)>,
+    /// The newest stereo estimates, one per layer (told apart by their motion on the map), the
+    /// newest last.
+    stereo: Vec<StereoEntry>,
     prior_rel_sigma: f64,
+    /// `[[clouds.layers]]`.
+    layer_priors: Vec<LayerPrior>,
 }
 
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
@@ -510,6 +560,8 @@ pub struct CbhFrame<'a> {
     pub from_series: bool,
     /// Motion of the first layer on the map \[m/s\], if known.
     pub v_map_mps: Option<[f64; 2]>,
+    /// Motion of a second layer on the map \[m/s\], when one is tracked.
+    pub v_other_mps: Option<[f64; 2]>,
     /// Camera position (east, north, up) \[m\].
     pub camera_m: [f64; 3],
     /// Measurements and the pyranometer columns with their positions.
@@ -530,8 +582,9 @@ impl CbhState {
             shadow: None,
             last_fit: None,
             last_no_fit: None,
-            last_stereo: None,
+            stereo: vec![],
             prior_rel_sigma: clouds.base_height_rel_sigma.unwrap_or(CONFIGURED_REL_SIGMA),
+            layer_priors: clouds.layers.clone(),
         }
     }
 
@@ -544,7 +597,72 @@ impl CbhState {
     /// then on [`CbhState::update`] combines it (aged) with the other sources as `stereo`. A
     /// refusal leaves the previous estimate in place (it keeps ageing).
     pub fn observe_stereo(&mut self, time: DateTime<Utc>, fit: &crate::stereo::StereoFit) {
-        self.last_stereo = Some((time, fit.cbh_m, fit.rel_sigma));
+        self.observe_stereo_layer(None, time, fit);
+    }
+
+    /// Take a stereo estimate made at `time` for the layer moving at `v_map_mps` on the map
+    /// ([`crate::stereo::estimate_layers`], or the whole sky's with the first layer's motion; `None`
+    /// when no motion is known). It replaces the estimate kept for that layer unless that one,
+    /// aged to `time` ([`AGE_REL_SIGMA_PER_S`]), is still the more certain (a poorly matched run
+    /// does not undo a good one a minute old); each tracked layer later takes the newest estimate
+    /// whose motion matches its own ([`STEREO_MATCH_SHARE`]), so the forecast's layers may change
+    /// order between runs.
+    pub fn observe_stereo_layer(&mut self, v_map_mps: Option<[f64; 2]>, time: DateTime<Utc>, fit: &crate::stereo::StereoFit) {
+        let same = |e: &StereoEntry| match (e.v_map_mps, v_map_mps) {
+            (Some(a), Some(b)) => dist(a, b) <= Self::gate(b),
+            (a, b) => a.is_some() == b.is_some(),
+        };
+        let aged_var = |e: &StereoEntry| e.rel_sigma.powi(2) + ((time - e.time).num_milliseconds() as f64 / 1000.0 * AGE_REL_SIGMA_PER_S).powi(2);
+        if self.stereo.iter().any(|e| same(e) && aged_var(e) < fit.rel_sigma.powi(2)) {
+            return;
+        }
+        self.stereo.retain(|e| !same(e));
+        self.stereo.push(StereoEntry { time, cbh_m: fit.cbh_m, rel_sigma: fit.rel_sigma, v_map_mps });
+        if self.stereo.len() > 4 {
+            self.stereo.remove(0);
+        }
+    }
+
+    fn gate(v: [f64; 2]) -> f64 {
+        (STEREO_MATCH_SHARE * v[0].hypot(v[1])).max(STEREO_MATCH_MIN_MPS)
+    }
+
+    /// The newest stereo estimate of the layer moving at `v` on the map, when another layer moves
+    /// at `other`: one whose motion is within the gate of `v` and nearer `v` than `other`; else,
+    /// with one layer, one made before any motion was known. Without `v`, the newest.
+    fn stereo_for(&self, v: Option<[f64; 2]>, other: Option<[f64; 2]>) -> Option<StereoEntry> {
+        let Some(v) = v else { return self.stereo.last().copied() };
+        let matching = self.stereo.iter().rev().find(|e| e.v_map_mps.is_some_and(|w| dist(w, v) <= Self::gate(v) && other.is_none_or(|o| dist(w, v) < dist(w, o))));
+        matching.or_else(|| if other.is_none() { self.stereo.iter().rev().find(|e| e.v_map_mps.is_none()) } else { None }).copied()
+    }
+
+    /// The prior of the layer moving at `v` on the map: the known layer (`[[clouds.layers]]`)
+    /// nearest its direction within [`LAYER_PRIOR_MAX_ANGLE_DEG`] with the configured prior
+    /// uncertainty, else `fallback`.
+    fn prior_for(&self, v: Option<[f64; 2]>, fallback: (f64, f64)) -> (f64, f64) {
+        let Some(v) = v.filter(|v| v[0].hypot(v[1]) > 0.0) else { return fallback };
+        let toward = v[0].atan2(v[1]).to_degrees();
+        let off = |l: &LayerPrior| (l.toward_deg - toward).rem_euclid(360.0).min((toward - l.toward_deg).rem_euclid(360.0));
+        self.layer_priors
+            .iter()
+            .filter(|l| off(l) <= LAYER_PRIOR_MAX_ANGLE_DEG)
+            .min_by(|a, b| off(a).total_cmp(&off(b)))
+            .map_or(fallback, |l| (l.base_height_m, self.prior_rel_sigma))
+    }
+
+    /// The second cloud layer's base at `time`, that layer moving at `v_map_mps` on the map and the
+    /// first at `first_v_map_mps`: its prior (a known layer in its direction, else the first
+    /// layer's configured base `map_cbh_m` with [`UPPER_LAYER_PRIOR_REL_SIGMA`]) combined with its
+    /// stereo estimate, aged. Without either, exactly the prior.
+    pub fn upper(&self, time: DateTime<Utc>, map_cbh_m: f64, v_map_mps: [f64; 2], first_v_map_mps: [f64; 2]) -> CbhEstimate {
+        let (h, rel) = self.prior_for(Some(v_map_mps), (map_cbh_m, UPPER_LAYER_PRIOR_REL_SIGMA));
+        let prior = CbhEstimate { cbh_m: h, sigma_m: h * rel, source: CbhSource::Configured };
+        let Some(e) = self.stereo_for(Some(v_map_mps), Some(first_v_map_mps)) else { return prior };
+        let inputs = [
+            CbhInput { cbh_m: h, rel_sigma: rel, age_s: 0.0, source: CbhSource::Configured },
+            CbhInput { cbh_m: e.cbh_m, rel_sigma: e.rel_sigma, age_s: (time - e.time).num_milliseconds() as f64 / 1000.0, source: CbhSource::Stereo },
+        ];
+        combine(&inputs).unwrap_or(prior)
     }
 
     /// Feed a frame to the shadow timing (if on) and combine the estimates at the frame's time.
@@ -570,19 +688,20 @@ impl CbhState {
                 Err(e) => self.last_no_fit = Some(e),
             }
         }
+        let (prior_m, prior_rel) = if f.from_series { (f.map_cbh_m, CEILOMETER_REL_SIGMA) } else { self.prior_for(f.v_map_mps, (f.map_cbh_m, self.prior_rel_sigma)) };
         let mut inputs = vec![CbhInput {
-            cbh_m: f.map_cbh_m,
-            rel_sigma: if f.from_series { CEILOMETER_REL_SIGMA } else { self.prior_rel_sigma },
+            cbh_m: prior_m,
+            rel_sigma: prior_rel,
             age_s: 0.0,
             source: if f.from_series { CbhSource::Ceilometer } else { CbhSource::Configured },
         }];
         if let Some((t, fit)) = &self.last_fit {
             inputs.push(CbhInput { cbh_m: fit.cbh_m, rel_sigma: fit.rel_sigma, age_s: (f.time - *t).num_milliseconds() as f64 / 1000.0, source: CbhSource::ShadowTiming });
         }
-        if let Some((t, cbh_m, rel_sigma)) = self.last_stereo {
-            inputs.push(CbhInput { cbh_m, rel_sigma, age_s: (f.time - t).num_milliseconds() as f64 / 1000.0, source: CbhSource::Stereo });
+        if let Some(e) = self.stereo_for(f.v_map_mps, f.v_other_mps) {
+            inputs.push(CbhInput { cbh_m: e.cbh_m, rel_sigma: e.rel_sigma, age_s: (f.time - e.time).num_milliseconds() as f64 / 1000.0, source: CbhSource::Stereo });
         }
-        combine(&inputs).unwrap_or(CbhEstimate { cbh_m: f.map_cbh_m, sigma_m: f.map_cbh_m * self.prior_rel_sigma, source: CbhSource::Configured })
+        combine(&inputs).unwrap_or(CbhEstimate { cbh_m: prior_m, sigma_m: prior_m * prior_rel, source: CbhSource::Configured })
     }
 }
 
@@ -628,6 +747,7 @@ mod tests {
             map_cbh_m: 2000.0,
             from_series: false,
             v_map_mps: None,
+            v_other_mps: None,
             camera_m: [0.0, 0.0, 3.0],
             measurements: None,
             observer: site.site.observer(),

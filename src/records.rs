@@ -38,7 +38,7 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
 }
 
 /// Header of `motion.csv`.
-pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero,cbh_m,cbh_sigma_m,cbh_source\n";
+pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero,cbh_m,cbh_sigma_m,cbh_source,layer2_cbh_m,layer2_cbh_sigma_m,layer2_cbh_source\n";
 
 /// Append a nowcast's motion row.
 pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
@@ -74,6 +74,10 @@ pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
         format!("{:.0}", nc.cbh.cbh_m),
         format!("{:.0}", nc.cbh.sigma_m),
         nc.cbh.source.name().to_string(),
+        // With two layers advected, the second layer's base, uncertainty and source.
+        nc.cbh_upper.map(|c| format!("{:.0}", c.cbh_m)).unwrap_or_default(),
+        nc.cbh_upper.map(|c| format!("{:.0}", c.sigma_m)).unwrap_or_default(),
+        nc.cbh_upper.map(|c| c.source.name().to_string()).unwrap_or_default(),
     ]);
     out.row(row);
 }
@@ -104,10 +108,14 @@ pub fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
         "sun_elevation_deg": nc.sun.elevation_rad().to_degrees(),
         "motion": nc.motion.map(|m| serde_json::json!({"east_mps": m.v_mps[0], "north_mps": m.v_mps[1], "sigma_mps": m.sigma_mps,
             "speed_mps": m.v_mps[0].hypot(m.v_mps[1]), "toward_deg": m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)})),
-        // Every tracked layer the forecast advected, the most opaque first.
-        "layers": nc.layers.iter().map(|l| serde_json::json!({"east_mps": l.motion.v_mps[0], "north_mps": l.motion.v_mps[1], "sigma_mps": l.motion.sigma_mps,
+        // Every tracked layer the forecast advected, the most opaque first, with the base height
+        // the forecast used for it, its uncertainty and source.
+        "layers": nc.layers.iter().enumerate().map(|(i, l)| {
+            let c = if i == 0 { Some(nc.cbh) } else { nc.cbh_upper.filter(|_| i == 1) };
+            serde_json::json!({"east_mps": l.motion.v_mps[0], "north_mps": l.motion.v_mps[1], "sigma_mps": l.motion.sigma_mps,
             "speed_mps": l.motion.v_mps[0].hypot(l.motion.v_mps[1]), "toward_deg": l.motion.v_mps[0].atan2(l.motion.v_mps[1]).to_degrees().rem_euclid(360.0),
-            "thick_share": l.thick_share})).collect::<Vec<_>>(),
+            "thick_share": l.thick_share, "cbh_m": c.map(|c| c.cbh_m), "cbh_sigma_m": c.map(|c| c.sigma_m), "cbh_source": c.map(|c| c.source.name())})
+        }).collect::<Vec<_>>(),
         "alarm": nc.alarm.name(),
         "alarm_reason": nc.alarm_reason,
         "alarm_basis": nc.alarm_basis,

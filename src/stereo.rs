@@ -250,28 +250,34 @@ fn highpass(map: &[f32], valid: &[bool], n: usize, r: usize) -> Vec<f32> {
     out
 }
 
-/// Per-tile sums of one height's pair of score maps (NaN = not seen), after the high-pass.
-fn tile_sums(a: &[f32], b: &[f32], n: usize, p: &StereoParams) -> (Vec<Sums>, usize) {
+/// Per-tile sums of one height's pair of score maps (NaN = not seen), after the high-pass, for
+/// each of `groups` groups of cells: without `member` every cell seen by both cameras is in group
+/// 0; with it, cell `k` is in group `g` when bit `g` of `member[k]` is set. Also the cells of
+/// each group.
+fn tile_sums(a: &[f32], b: &[f32], n: usize, p: &StereoParams, member: Option<&[u8]>, groups: usize) -> (Vec<Vec<Sums>>, Vec<usize>) {
     let valid: Vec<bool> = a.iter().zip(b).map(|(x, y)| x.is_finite() && y.is_finite()).collect();
     let (ha, hb) = (highpass(a, &valid, n, p.highpass_cells), highpass(b, &valid, n, p.highpass_cells));
     let t = p.tiles.max(1);
-    let mut sums = vec![[0.0; 6]; t * t];
-    let mut cells = 0;
+    let mut sums = vec![vec![[0.0; 6]; t * t]; groups];
+    let mut cells = vec![0; groups];
     for j in 0..n {
         for i in 0..n {
             let k = j * n + i;
             if !valid[k] {
                 continue;
             }
-            cells += 1;
+            let bits = member.map_or(1, |m| m[k]);
             let (x, y) = (ha[k] as f64, hb[k] as f64);
-            let s = &mut sums[(j * t / n) * t + i * t / n];
-            s[0] += 1.0;
-            s[1] += x;
-            s[2] += y;
-            s[3] += x * x;
-            s[4] += y * y;
-            s[5] += x * y;
+            for g in (0..groups).filter(|g| bits & (1 << g) != 0) {
+                cells[g] += 1;
+                let s = &mut sums[g][(j * t / n) * t + i * t / n];
+                s[0] += 1.0;
+                s[1] += x;
+                s[2] += y;
+                s[3] += x * x;
+                s[4] += y * y;
+                s[5] += x * y;
+            }
         }
     }
     (sums, cells)
@@ -325,16 +331,33 @@ fn bootstrap_ln_sd(curve: &dyn Fn(&[f64]) -> Vec<f64>, n_tiles: usize, resamples
 /// # Errors
 /// [`NoStereo`] (see the module docs).
 pub fn estimate_with(p: &StereoParams, mut maps: impl FnMut(f64) -> [Vec<f32>; 2]) -> Result<StereoFit, NoStereo> {
+    let mut fits = estimate_groups_with(p, 1, |h| (maps(h), None));
+    fits.remove(0)
+}
+
+/// [`estimate_with`] for each of `groups` groups of cells (at most 8): `maps(h)` also returns, per
+/// cell, the groups it belongs to as bits (bit `g` for group `g`; `None`: every cell in group 0).
+/// Each group gets its own agreement curve, peak, bootstrap and refusals, as if its cells were the
+/// whole sky; [`estimate_layers`] makes one group per cloud layer.
+pub fn estimate_groups_with(p: &StereoParams, groups: usize, mut maps: impl FnMut(f64) -> ([Vec<f32>; 2], Option<Vec<u8>>)) -> Vec<Result<StereoFit, NoStereo>> {
+    let groups = groups.clamp(1, 8);
     let heights = p.scan_heights_m();
-    let n = p.cells;
-    let mut per_height: Vec<Vec<Sums>> = Vec::with_capacity(heights.len());
-    let mut overlap = Vec::with_capacity(heights.len());
+    let mut per_height: Vec<Vec<Vec<Sums>>> = vec![Vec::with_capacity(heights.len()); groups];
+    let mut overlap: Vec<Vec<usize>> = vec![Vec::with_capacity(heights.len()); groups];
     for &h in &heights {
-        let [a, b] = maps(h);
-        let (sums, cells) = tile_sums(&a, &b, n, p);
-        per_height.push(sums);
-        overlap.push(cells);
+        let ([a, b], member) = maps(h);
+        let (sums, cells) = tile_sums(&a, &b, p.cells, p, member.as_deref(), groups);
+        for (g, (s, c)) in sums.into_iter().zip(cells).enumerate() {
+            per_height[g].push(s);
+            overlap[g].push(c);
+        }
     }
+    per_height.iter().zip(&overlap).map(|(ph, ov)| fit_curve(p, &heights, ph, ov)).collect()
+}
+
+/// The peak of one group's agreement over the scan (`per_height[i]` its tiles' sums at
+/// `heights[i]`, `overlap[i]` its cells), its bootstrap uncertainty and the refusals.
+fn fit_curve(p: &StereoParams, heights: &[f64], per_height: &[Vec<Sums>], overlap: &[usize]) -> Result<StereoFit, NoStereo> {
     let max_overlap = overlap.iter().copied().max().unwrap_or(0);
     if max_overlap < p.min_overlap_cells {
         return Err(NoStereo::TooLittleOverlap { cells: max_overlap, needed: p.min_overlap_cells });
@@ -342,7 +365,7 @@ pub fn estimate_with(p: &StereoParams, mut maps: impl FnMut(f64) -> [Vec<f32>; 2
     let curve_with = |weights: &[f64]| -> Vec<f64> {
         per_height
             .iter()
-            .zip(&overlap)
+            .zip(overlap)
             .map(|(tiles, &cells)| {
                 if cells < p.min_overlap_cells {
                     return f64::NAN;
@@ -406,10 +429,28 @@ pub fn estimate_with(p: &StereoParams, mut maps: impl FnMut(f64) -> [Vec<f32>; 2
 /// # Errors
 /// [`NoStereo`] (see the module docs).
 pub fn estimate(a: &StereoView, b: &StereoView, sun_dir: Option<[f32; 3]>, seg: &SegmentParams, p: &StereoParams) -> Result<StereoFit, NoStereo> {
+    estimate_pair(a, b, sun_dir, seg, p, None).remove(0)
+}
+
+/// The stereo estimate per cloud layer: each layer's cells ([`LayerCells`], from the engine's
+/// layer labels on camera A's map) matched on their own, so each layer gets its own height,
+/// uncertainty and refusals (the first result is the first layer's). A layer's cells are camera
+/// A's cells of its cloud and the clear cells next to that cloud only; cells next to both layers'
+/// clouds are left out of both.
+///
+/// # Errors
+/// Each layer's [`NoStereo`] (see the module docs); a too short baseline refuses every layer.
+pub fn estimate_layers(a: &StereoView, b: &StereoView, sun_dir: Option<[f32; 3]>, seg: &SegmentParams, p: &StereoParams, layers: &LayerCells) -> Vec<Result<StereoFit, NoStereo>> {
+    estimate_pair(a, b, sun_dir, seg, p, Some(layers))
+}
+
+/// [`estimate`] (`layers` `None`: one result for the whole sky) and [`estimate_layers`].
+fn estimate_pair(a: &StereoView, b: &StereoView, sun_dir: Option<[f32; 3]>, seg: &SegmentParams, p: &StereoParams, layers: Option<&LayerCells>) -> Vec<Result<StereoFit, NoStereo>> {
+    let groups = layers.map_or(1, |l| l.layers);
     let d = [b.position_m[0] - a.position_m[0], b.position_m[1] - a.position_m[1], b.position_m[2] - a.position_m[2]];
     let baseline_m = d[0].hypot(d[1]);
     if baseline_m < MIN_BASELINE_M {
-        return Err(NoStereo::NoBaseline { baseline_m, min_m: MIN_BASELINE_M });
+        return vec![Err(NoStereo::NoBaseline { baseline_m, min_m: MIN_BASELINE_M }); groups];
     }
     // Grid origin midway between the cameras, at camera A's height.
     let at_a = [-d[0] / 2.0, -d[1] / 2.0, 0.0];
@@ -418,12 +459,95 @@ pub fn estimate(a: &StereoView, b: &StereoView, sun_dir: Option<[f32; 3]>, seg: 
     let map_of = |v: &StereoView, at: [f64; 3], grid: Grid| {
         let lut = Lut::build_from(v.camera, v.obstruction, grid, at);
         let map = build_map(v.image, &lut, sun_dir, seg, v.reference);
-        map.score.iter().zip(&lut.z_deg).map(|(s, z)| if *z <= max_z { *s } else { f32::NAN }).collect::<Vec<f32>>()
+        let score = map.score.iter().zip(&lut.z_deg).map(|(s, z)| if *z <= max_z { *s } else { f32::NAN }).collect::<Vec<f32>>();
+        (score, lut)
     };
-    estimate_with(p, |h| {
+    estimate_groups_with(p, groups, |h| {
         let grid = p.grid(h, baseline_m);
-        [map_of(a, at_a, grid), map_of(b, at_b, grid)]
+        let ((sa, lut_a), (sb, _)) = (map_of(a, at_a, grid), map_of(b, at_b, grid));
+        // Camera A's direction through each cell finds its layer on the engine's map.
+        let member = layers.map(|l| lut_a.dir.iter().map(|d| l.at(*d)).collect());
+        ([sa, sb], member)
     })
+}
+
+/// Which cloud layer each cell of camera A's map belongs to, for [`estimate_layers`]: bit `l` of a
+/// cell is set when the cell is cloud of layer `l`, or clear within [`LayerCells::REACH_CELLS`] of
+/// layer `l`'s cloud and of no other layer's. Looked up by direction from camera A, so it holds at
+/// every candidate height.
+#[derive(Debug, Clone)]
+pub struct LayerCells {
+    grid: Grid,
+    member: Vec<u8>,
+    layers: usize,
+}
+
+impl LayerCells {
+    /// How far a layer's clear surroundings reach from its cloud \[cells of the engine's map\]
+    /// (own choice: the edges of a cloud carry most of the match).
+    pub const REACH_CELLS: usize = 3;
+
+    /// From the engine's map (on camera A, its grid centred on the camera) and its per-cell layer
+    /// labels (the layer of each cloudy cell; other cells' labels are ignored), for `layers` layers
+    /// (at most 8).
+    pub fn from_labels(map: &crate::cloudmap::CloudMap, labels: &[u8], layers: usize) -> LayerCells {
+        use crate::segment::Class;
+        let layers = layers.clamp(1, 8);
+        let n = map.grid.n;
+        let cloudy = |k: usize| map.class[k] == Class::Thin as u8 || map.class[k] == Class::Thick as u8;
+        let mut member = vec![0u8; n * n];
+        for (k, m) in member.iter_mut().enumerate() {
+            if cloudy(k) && (labels.get(k).copied().unwrap_or(u8::MAX) as usize) < layers {
+                *m = 1 << labels[k];
+            }
+        }
+        // Clear cells: the layers with cloud within the reach (a summed-area table per layer).
+        let (r, w) = (Self::REACH_CELLS, n + 1);
+        let mut near = vec![0u8; n * n];
+        for l in 0..layers {
+            let mut s = vec![0u32; w * w];
+            for j in 0..n {
+                for i in 0..n {
+                    let v = u32::from(member[j * n + i] & (1 << l) != 0);
+                    s[(j + 1) * w + i + 1] = v + s[j * w + i + 1] + s[(j + 1) * w + i] - s[j * w + i];
+                }
+            }
+            for j in 0..n {
+                for i in 0..n {
+                    let (i0, i1, j0, j1) = (i.saturating_sub(r), (i + r + 1).min(n), j.saturating_sub(r), (j + r + 1).min(n));
+                    if s[j1 * w + i1] + s[j0 * w + i0] > s[j0 * w + i1] + s[j1 * w + i0] {
+                        near[j * n + i] |= 1 << l;
+                    }
+                }
+            }
+        }
+        for (k, m) in member.iter_mut().enumerate() {
+            if map.class[k] == Class::Clear as u8 && near[k].count_ones() == 1 {
+                *m = near[k];
+            }
+        }
+        LayerCells { grid: map.grid, member, layers }
+    }
+
+    /// Number of layers.
+    pub fn layers(&self) -> usize {
+        self.layers
+    }
+
+    /// The layer bits of the map cell camera A sees in direction `dir` (unit, east-north-up); 0
+    /// off the map or below the horizon.
+    pub fn at(&self, dir: [f32; 3]) -> u8 {
+        if dir[2].is_nan() || dir[2] <= 1e-3 {
+            return 0;
+        }
+        let s = self.grid.height_m / dir[2] as f64;
+        let (x, y) = self.grid.to_cell([dir[0] as f64 * s, dir[1] as f64 * s]);
+        let (i, j) = (x.round(), y.round());
+        if i < 0.0 || j < 0.0 || i >= self.grid.n as f64 || j >= self.grid.n as f64 {
+            return 0;
+        }
+        self.member[j as usize * self.grid.n + i as usize]
+    }
 }
 
 #[cfg(test)]

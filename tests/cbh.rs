@@ -61,8 +61,32 @@ fn render(name: &str, minutes: f64, edit: impl Fn(&mut nephocast::synth::SceneSp
     d
 }
 
+/// The `cbh-network` scene (30 minutes, seed 3, 10-s readings) rendered once per test run into
+/// the target's scratch folder (cleared first), with the calibrated camera: the 10-s and 1-minute
+/// tests replay the same frames, each with its own readings.
+fn network_scene() -> &'static Path {
+    static CELL: OnceLock<std::path::PathBuf> = OnceLock::new();
+    CELL.get_or_init(|| {
+        let dir = Path::new(env!("CARGO_TARGET_TMPDIR")).join("cbh-network");
+        if dir.exists() {
+            std::fs::remove_dir_all(&dir).unwrap();
+        }
+        std::fs::create_dir_all(&dir).unwrap();
+        let mut spec = scene("cbh-network").unwrap();
+        spec.duration_min = 30.0;
+        write_sequence(&Scene::new(spec.clone(), 3).unwrap(), &dir, false).unwrap();
+        use_calibrated_camera(&dir, &spec.camera.name);
+        dir
+    })
+}
+
 /// Replay with the written site file edited by `edit_site` (a text replacement).
 fn run(dir: &Path, tag: &str, edit_site: impl Fn(&str) -> String) -> Run {
+    run_with(dir, tag, &dir.join("measurements.csv"), edit_site)
+}
+
+/// [`run`] with the measurements read from `measurements`.
+fn run_with(dir: &Path, tag: &str, measurements: &Path, edit_site: impl Fn(&str) -> String) -> Run {
     let site = std::fs::read_to_string(dir.join("site.toml")).unwrap();
     let edited = edit_site(&site);
     let site_path = dir.join(format!("site-{tag}.toml"));
@@ -72,7 +96,7 @@ fn run(dir: &Path, tag: &str, edit_site: impl Fn(&str) -> String) -> Run {
         site: site_path,
         frames: dir.join("frames"),
         out: out.clone(),
-        measurements: Some(dir.join("measurements.csv")),
+        measurements: Some(measurements.to_path_buf()),
         overlays_every: 0,
         progress: false,
     };
@@ -110,10 +134,10 @@ fn wrong_prior(site: &str, shadow: bool) -> String {
 
 #[test]
 fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
-    let d = render("cbh-network", 30.0, |_| {});
-    let truth = run(d.path(), "truth", |s| s.to_string());
-    let est = run(d.path(), "shadow", |s| wrong_prior(s, true));
-    let wrong = run(d.path(), "wrong", |s| wrong_prior(s, false));
+    let d = network_scene();
+    let truth = run(d, "truth", |s| s.to_string());
+    let est = run(d, "shadow", |s| wrong_prior(s, true));
+    let wrong = run(d, "wrong", |s| wrong_prior(s, false));
     // Without shadow timing every frame reports the configured value and its 30 % prior.
     for (h, sd, src) in &wrong.cbh {
         assert_eq!((src.as_str(), *h), ("configured", 1.6 * TRUTH_M));
@@ -145,17 +169,20 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     check("skill gap", gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus estimated at 5/10/15 min {gaps:.3?} (target within ±0.03)"));
 }
 
-/// The same network read as 1-minute means (the usual logger setting): recorded figures. The
-/// stated uncertainty must stay honest (±2σ covering the truth in ≥ 80 % of the frames with an
-/// estimate); how often there is an estimate and how close it is are printed.
+/// The same network read as 1-minute means (the usual logger setting; the same frames, the
+/// readings written for a 60-s period): recorded figures. The stated uncertainty must stay honest
+/// (±2σ covering the truth in ≥ 80 % of the frames with an estimate); how often there is an
+/// estimate and how close it is are printed.
 #[test]
 fn one_minute_readings_figures() {
-    let d = render("cbh-network", 30.0, |s| {
-        if let Some(n) = &mut s.pyranometer_network {
-            n.sample_s = 60;
-        }
-    });
-    let est = run(d.path(), "shadow60", |s| wrong_prior(s, true));
+    let d = network_scene();
+    let mut spec = scene("cbh-network").unwrap();
+    spec.duration_min = 30.0;
+    spec.pyranometer_network.as_mut().expect("cbh-network has a pyranometer network").sample_s = 60;
+    let m60 = tempfile::tempdir().unwrap();
+    let path = m60.path().join("measurements.csv");
+    std::fs::write(&path, nephocast::synth::measurements_csv(&Scene::new(spec, 3).unwrap())).unwrap();
+    let est = run_with(d, "shadow60", &path, |s| wrong_prior(s, true));
     let fits: Vec<&(f64, f64, String)> = est.cbh.iter().filter(|c| c.2 == "shadow_timing").collect();
     let mut errs: Vec<f64> = fits.iter().map(|c| (c.0 - TRUTH_M).abs() / TRUTH_M).collect();
     errs.sort_by(f64::total_cmp);

@@ -181,14 +181,30 @@ type CbhRows = Vec<(f64, f64, String)>;
 /// `pos_b` is given (its map cells taken when `map_cells`), and the pyranometers' measurements;
 /// the evaluation against the truth and the base-height rows.
 fn replay_pair(dir: &std::path::Path, tag: &str, truth_m: f64, base_m: f64, pos_b: Option<[f64; 3]>, map_cells: bool) -> (nephocast::verify::Evaluation, CbhRows) {
-    use nephocast::replay::{ReplayOptions, replay};
+    let (eval, motion) = replay_edited(dir, tag, &site_with(dir, truth_m, base_m, pos_b, map_cells, None));
+    let rows = motion.iter().map(|r| (r["cbh_m"].parse().unwrap(), r["cbh_sigma_m"].parse().unwrap(), r["cbh_source"].clone())).collect();
+    (eval, rows)
+}
+
+/// The site file written for the pair in `dir` with the configured base `truth_m` replaced by
+/// `base_m`, `[clouds] layers` added when given (lower base and direction, upper base and direction), and the second camera when `pos_b`
+/// is given (its map cells taken when `map_cells`).
+fn site_with(dir: &std::path::Path, truth_m: f64, base_m: f64, pos_b: Option<[f64; 3]>, map_cells: bool, upper_m: Option<[f64; 4]>) -> String {
     let site = std::fs::read_to_string(dir.join("site.toml")).unwrap();
     let from = format!("base_height_m = {truth_m:.1}");
     assert!(site.contains(&from), "the written site holds {from}");
-    let mut site = site.replace(&from, &format!("base_height_m = {base_m:.1}"));
+    let upper = upper_m.map(|[lo, lo_deg, up, up_deg]| format!("\nlayers = [{{ base_height_m = {lo:.1}, toward_deg = {lo_deg:.1} }}, {{ base_height_m = {up:.1}, toward_deg = {up_deg:.1} }}]")).unwrap_or_default();
+    let mut site = site.replace(&from, &format!("base_height_m = {base_m:.1}{upper}"));
     if let Some(p) = pos_b {
         site += &format!("\n[second_camera]\ncalibration = \"calibration/second.toml\"\nposition_m = [{:.1}, {:.1}, {:.1}]\nframes = \"frames2\"\nevery_s = 60.0\nmap_cells = {map_cells}\n", p[0], p[1], p[2]);
     }
+    site
+}
+
+/// Replay the pair in `dir` with the site file `site` and the pyranometers' measurements: the
+/// evaluation against the truth and `motion.csv`'s rows by column name.
+fn replay_edited(dir: &std::path::Path, tag: &str, site: &str) -> (nephocast::verify::Evaluation, Vec<std::collections::BTreeMap<String, String>>) {
+    use nephocast::replay::{ReplayOptions, replay};
     let site_path = dir.join(format!("site-{tag}.toml"));
     std::fs::write(&site_path, site).unwrap();
     let out = dir.join(format!("out-{tag}"));
@@ -198,9 +214,7 @@ fn replay_pair(dir: &std::path::Path, tag: &str, truth_m: f64, base_m: f64, pos_
     let eval = nephocast::verify::evaluate(dir, &out).unwrap();
     let mut rdr = csv::Reader::from_path(out.join("motion.csv")).unwrap();
     let h = rdr.headers().unwrap().clone();
-    let col = |n: &str| h.iter().position(|x| x == n).unwrap();
-    let (a, b, c) = (col("cbh_m"), col("cbh_sigma_m"), col("cbh_source"));
-    let rows = rdr.records().map(|r| r.unwrap()).map(|r| (r[a].parse().unwrap(), r[b].parse().unwrap(), r[c].to_string())).collect();
+    let rows = rdr.records().map(|r| h.iter().map(str::to_string).zip(r.unwrap().iter().map(str::to_string)).collect()).collect();
     (eval, rows)
 }
 
@@ -262,4 +276,150 @@ fn stereo_skill_and_the_multi_camera_map() {
     let gain: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&multi, *m) - skill(&est, *m)).collect();
     eprintln!("broken-cumulus-fast: the two cameras' map minus one camera's at 5/10/15 min: {gain:+.3?}");
     assert!(gain.iter().all(|g| *g >= -0.03), "the multi-camera map lost skill: {gain:.3?}");
+}
+
+/// Per-layer stereo on `two-layers` (cumulus at 1000 m, thin altocumulus at 3800 m, 30 minutes),
+/// both cameras from `calibrate`, no ceilometer: the configured base set 1.6 times too high and no
+/// second layer's base configured. The engine tracks the two layers; the stereo match takes each
+/// layer's cells on its own and gives each its height. Targets (issue: CBH without a ceilometer,
+/// per layer): over the frames whose base for a layer came from stereo (at least half of them),
+/// that layer's median error ≤ 10 % and its stated ±2σ interval covering the truth in ≥ 80 %;
+/// plant-mean GHI skill with the estimated heights within 0.03 of the skill with both true heights
+/// configured (`[[clouds.layers]]`: each layer's base and the direction it moves toward, from
+/// `truth/layers.csv`) at 5, 10 and 15 minutes, the map on the same (configured) plane. The skill
+/// with the true heights and the map on the lower layer's true base is printed too; at 15 minutes
+/// it differs by about 0.1 from both (a known shortfall of the map's plane, checked to hold).
+#[test]
+fn per_layer_stereo_on_two_layers() {
+    let (truth_lower, truth_upper) = (1000.0, 3800.0);
+    let (d, pos_b) = write_pair("two-layers", 30.0);
+    // The true layers: base and direction from the truth file.
+    let layers = std::fs::read_to_string(d.path().join("truth/layers.csv")).unwrap();
+    let truth_layers: Vec<(f64, f64)> = layers.lines().skip(1).map(|l| l.split(',').collect::<Vec<_>>()).map(|c| (c[1].parse().unwrap(), c[3].parse().unwrap())).collect();
+    assert_eq!(truth_layers.iter().map(|l| l.0).collect::<Vec<f64>>(), vec![truth_lower, truth_upper], "{layers}");
+    let known = [truth_layers[0].0, truth_layers[0].1, truth_layers[1].0, truth_layers[1].1];
+    let (truth, _) = replay_edited(d.path(), "truth", &site_with(d.path(), truth_lower, truth_lower, None, false, Some(known)));
+    let (est, rows) = replay_edited(d.path(), "layers", &site_with(d.path(), truth_lower, 1.6 * truth_lower, Some(pos_b), false, None));
+    // The true heights with the map on the estimated run's plane (the configured 1600 m).
+    let (truth_plane, _) = replay_edited(d.path(), "truth-plane", &site_with(d.path(), truth_lower, 1.6 * truth_lower, None, false, Some(known)));
+    for (tag, e) in [("true heights", &truth), ("true heights, 1600 m plane", &truth_plane), ("stereo heights", &est)] {
+        let all: Vec<String> = (1..=20).map(|m| format!("{:.2}", skill(e, m))).collect();
+        eprintln!("two-layers: skill 1..20 min with the {tag:<28} {}", all.join(" "));
+    }
+    let two = rows.iter().filter(|r| !r["layer2_cbh_m"].is_empty()).count();
+    eprintln!("two-layers: two layers advected in {two} of {} frames", rows.len());
+    // Each forecast layer of a frame is the true layer nearest its direction of motion (the
+    // forecast puts the more opaque layer first, and the order may change from frame to frame).
+    let dir_of = |e: &str, n: &str| -> Option<f64> { Some(e.parse::<f64>().ok()?.atan2(n.parse::<f64>().ok()?).to_degrees()) };
+    let off = |a: f64, b: f64| (a - b).rem_euclid(360.0).min((b - a).rem_euclid(360.0));
+    let mut per_truth: Vec<Vec<(f64, f64, String)>> = vec![vec![], vec![]];
+    for r in &rows {
+        for (prefix, e, n) in [("", "east_mps", "north_mps"), ("layer2_", "second_east_mps", "second_north_mps")] {
+            let (Some(d), Ok(h), Ok(s)) = (dir_of(&r[e], &r[n]), r[&format!("{prefix}cbh_m")].parse::<f64>(), r[&format!("{prefix}cbh_sigma_m")].parse::<f64>()) else { continue };
+            let k = if off(d, truth_layers[0].1) <= off(d, truth_layers[1].1) { 0 } else { 1 };
+            per_truth[k].push((h, s, r[&format!("{prefix}cbh_source")].clone()));
+        }
+    }
+    let mut failures = vec![];
+    for (k, truth_m) in [truth_lower, truth_upper].into_iter().enumerate() {
+        let fits: Vec<(f64, f64)> = per_truth[k].iter().filter(|f| f.2 == "stereo").map(|f| (f.0, f.1)).collect();
+        let mut errs: Vec<f64> = fits.iter().map(|(h, _)| (h / truth_m - 1.0).abs()).collect();
+        errs.sort_by(f64::total_cmp);
+        let median = errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN);
+        let within = |k: f64| fits.iter().filter(|(h, s)| (h - truth_m).abs() <= k * s).count() as f64 / fits.len().max(1) as f64;
+        let share = fits.len() as f64 / rows.len() as f64;
+        let mean_sigma = fits.iter().map(|(h, s)| s / h).sum::<f64>() / fits.len().max(1) as f64;
+        eprintln!(
+            "two-layers, layer at {truth_m:.0} m: tracked in {} of {} frames, stereo base in {}; median error {median:.3}, max {:.3}; mean stated sigma {mean_sigma:.3}; 1σ covers the truth in {:.2}, 2σ in {:.2}",
+            per_truth[k].len(),
+            rows.len(),
+            fits.len(),
+            errs.last().copied().unwrap_or(f64::NAN),
+            within(1.0),
+            within(2.0)
+        );
+        if share < 0.5 {
+            failures.push(format!("layer at {truth_m:.0} m: stereo base in only {share:.2} of the frames (target ≥ 0.5)"));
+        }
+        if median.is_nan() || median > 0.10 {
+            failures.push(format!("layer at {truth_m:.0} m: median error {median:.3} (target ≤ 0.10)"));
+        }
+        if within(2.0) < 0.80 {
+            failures.push(format!("layer at {truth_m:.0} m: ±2σ covers the truth in {:.2} (target ≥ 0.80)", within(2.0)));
+        }
+    }
+    let gap = |a: &nephocast::verify::Evaluation, b: &nephocast::verify::Evaluation| -> Vec<f64> { [5, 10, 15].iter().map(|m| skill(a, *m) - skill(b, *m)).collect() };
+    let same_plane = gap(&truth_plane, &est);
+    eprintln!("two-layers: true heights minus stereo heights, both on the configured 1600 m plane, at 5/10/15 min: {same_plane:+.3?}");
+    if !same_plane.iter().all(|g| g.abs() <= 0.03) {
+        failures.push(format!("skill with the true heights minus with the stereo heights, one map plane, at 5/10/15 min: {same_plane:.3?} (target within ±0.03)"));
+    }
+    // Known shortfall: against the true heights with the map on the lower layer's true base the
+    // 15-minute skill differs by about 0.1, and so does the true heights' own skill on the
+    // configured plane: the map's plane, not the estimate (see the README).
+    let true_plane = gap(&truth, &est);
+    eprintln!("two-layers: true heights on the 1000 m plane minus stereo heights at 5/10/15 min: {true_plane:+.3?} (known shortfall at 15 min)");
+    if true_plane.iter().all(|g| g.abs() <= 0.03) {
+        failures.push(format!("the gap to the true heights on the true plane is now within 0.03 ({true_plane:.3?}): remove the known shortfall"));
+    }
+    assert!(failures.is_empty(), "{}", failures.join("\n"));
+}
+
+/// Two layers in synthetic score maps (no rendering): a lower field at 900 m seen where it is
+/// cloud (score above 0.6), and elsewhere a fainter upper field with structures 1.2 times larger
+/// at 3500 m (each camera's view of it hidden where its own ray meets the lower cloud). The cells
+/// camera A sees of each layer form a group of [`nephocast::stereo::estimate_groups_with`]; each
+/// group's height must be its layer's (within 5 %), while the whole sky's single estimate, if
+/// any, can be only one of them.
+#[test]
+fn groups_find_each_layers_height() {
+    use nephocast::stereo::{estimate_groups_with, estimate_with};
+    let p = StereoParams { cells: 96, heights: 40, ..Default::default() };
+    let (lower_m, upper_m, baseline): (f64, f64, [f64; 2]) = (900.0, 3500.0, [800.0, 300.0]);
+    let field = |x: f64, y: f64| {
+        let waves = [(0.0123, 0.0041, 0.3), (-0.0052, 0.0117, 1.1), (0.0071, -0.0089, 2.3), (0.0167, 0.0113, 0.7), (-0.0031, -0.0061, 1.9)];
+        let v: f64 = waves.iter().map(|(kx, ky, ph)| (kx * x + ky * y + ph).sin()).sum::<f64>() / 2.2;
+        1.0 / (1.0 + (-4.0 * v).exp())
+    };
+    // Each camera's score per cell at candidate height h, and whether camera A sees the lower layer.
+    let maps = |h: f64| {
+        let grid = p.grid(h, baseline[0].hypot(baseline[1]));
+        let half = [baseline[0] / 2.0, baseline[1] / 2.0];
+        let tan_max = p.max_zenith_deg.to_radians().tan();
+        let n = p.cells;
+        let mut out = [vec![f32::NAN; n * n], vec![f32::NAN; n * n]];
+        let mut member = vec![0u8; n * n];
+        for (ci, c) in [[-half[0], -half[1]], half].iter().enumerate() {
+            for j in 0..n {
+                for i in 0..n {
+                    let x = grid.cell_centre_m(i, j);
+                    let r = [x[0] - c[0], x[1] - c[1]];
+                    if r[0].hypot(r[1]) > h * tan_max {
+                        continue;
+                    }
+                    let at = |hh: f64| [c[0] + r[0] * hh / h, c[1] + r[1] * hh / h];
+                    let lo = at(lower_m);
+                    let low = field(lo[0], lo[1]);
+                    let up = at(upper_m);
+                    let (score, bit) = if low > 0.6 { (low, 1) } else { (0.6 * field(up[0] / 1.2 + 5000.0, up[1] / 1.2 - 7000.0), 2) };
+                    out[ci][j * n + i] = score as f32;
+                    if ci == 0 {
+                        member[j * n + i] = bit;
+                    }
+                }
+            }
+        }
+        (out, Some(member))
+    };
+    let fits = estimate_groups_with(&p, 2, maps);
+    for (fit, truth) in fits.iter().zip([lower_m, upper_m]) {
+        let fit = fit.as_ref().unwrap_or_else(|e| panic!("layer at {truth} m: {e}"));
+        eprintln!("  group at {truth} m: {:.0} m ± {:.1} % (NCC {:.2})", fit.cbh_m, 100.0 * fit.rel_sigma, fit.peak_ncc);
+        assert!((fit.cbh_m / truth - 1.0).abs() <= 0.05, "layer at {truth} m: {:.0} m", fit.cbh_m);
+    }
+    let whole = estimate_with(&p, |h| maps(h).0);
+    eprintln!("  whole sky: {:?}", whole.as_ref().map(|w| (w.cbh_m.round(), w.rel_sigma)));
+    if let Ok(w) = whole {
+        assert!([lower_m, upper_m].iter().any(|t| (w.cbh_m / t - 1.0).abs() <= 0.1), "whole sky {:.0} m", w.cbh_m);
+    }
 }

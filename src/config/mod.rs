@@ -514,6 +514,10 @@ impl SiteFile {
             }
             (None, None) => return Err(c.invalid("clouds", "base_height_m or base_height_csv", "neither")),
         }
+        for (i, l) in self.clouds.layers.iter().enumerate() {
+            c.range(&format!("clouds.layers[{i}].base_height_m"), l.base_height_m, crate::settings::CBH_MIN_M, crate::settings::CBH_MAX_M)?;
+            c.range(&format!("clouds.layers[{i}].toward_deg"), l.toward_deg, 0.0, 360.0)?;
+        }
         if let Some(r) = self.clouds.base_height_rel_sigma {
             c.range("clouds.base_height_rel_sigma", r, 0.01, 2.0)?;
         }

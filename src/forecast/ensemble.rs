@@ -21,11 +21,6 @@ pub fn quantile_sorted(v: &[f64], q: f64) -> f64 {
     if i + 1 < v.len() { v[i] * (1.0 - f) + v[i + 1] * f } else { v[i] }
 }
 
-/// Spread of the natural logarithm of a second cloud layer's base height over the configured one
-/// in the ensemble (own choice: a factor of 0.6–1.65 at one sigma; the camera alone cannot tell
-/// its height).
-const SECOND_LAYER_LOG_CBH_SIGMA: f64 = 0.5;
-
 /// An ensemble: sharp members (no horizon blur) drawn around the central forecast by perturbing the
 /// motion (by its uncertainty, at least `ensemble_motion_sigma_mps`), the cloud base height, the
 /// beam transmittance and the cloud-scattered diffuse; deterministic for a given issue time. The
@@ -56,9 +51,9 @@ pub fn ensemble_with(
                 let o = 10 * l as u64;
                 ad.v_mps = [ad.v_mps[0] + sigma * g(1 + o), ad.v_mps[1] + sigma * g(2 + o)];
                 // The first layer's base spreads around the central one (its estimate, see
-                // `crate::cbh`); a second layer's is not known at
-                // all (one camera cannot tell its height), so its factor spreads wider.
-                ad.cbh_factor = if l == 0 { ad.cbh_factor * (1.0 + p.ensemble_cbh_rel_sigma * cbh_g).max(0.3) } else { (SECOND_LAYER_LOG_CBH_SIGMA * g(9 + o)).exp() };
+                // `crate::cbh`); a second layer's log-normally by its own uncertainty (wide when
+                // one camera cannot tell its height: `crate::cbh::UPPER_LAYER_PRIOR_REL_SIGMA`).
+                ad.cbh_factor = if l == 0 { ad.cbh_factor * (1.0 + p.ensemble_cbh_rel_sigma * cbh_g).max(0.3) } else { ad.cbh_factor * (ad.cbh_log_sigma * g(9 + o)).exp() };
                 // Members are sharp: their spread, not a blur, carries the uncertainty.
                 ad.sigma_mps = 0.0;
             }

@@ -318,6 +318,10 @@ pub struct Advection {
     /// plant point looks up the map at its offset from the camera divided by `f`, plus its sun-ray
     /// offset at the map's height (motion is measured on the map, so it needs no change).
     pub cbh_factor: f64,
+    /// Uncertainty of the layer's base as the sigma of `ln h`: the ensemble spreads a second
+    /// layer's `cbh_factor` by it (the first layer's spread is
+    /// [`IrradianceParams::ensemble_cbh_rel_sigma`], widened by the engine to its estimate's).
+    pub cbh_log_sigma: f64,
 }
 
 /// Forecast for one target (block or plant) and horizon.
@@ -626,7 +630,7 @@ mod tests {
             let r = f.block("b").unwrap().rows.iter().find(|r| r.horizon_s == 100).unwrap();
             r.irradiance.dni_wm2 / skies[1].clear.dni_wm2
         };
-        let adv = |v: [f64; 2]| Advection { v_mps: v, sigma_mps: 0.0, cbh_factor: 1.0 };
+        let adv = |v: [f64; 2]| Advection { v_mps: v, sigma_mps: 0.0, cbh_factor: 1.0, cbh_log_sigma: 0.5 };
         input.layers = vec![adv(to_point(40.0, 32.0)), adv(away)];
         assert!((dni_ratio(&input) - p.beam_thick).abs() < 1e-9, "thick layer over the point: {}", dni_ratio(&input));
         input.layers = vec![adv(away), adv(to_point(32.0, 40.0))];
@@ -706,7 +710,7 @@ mod tests {
             (r.irradiance.dni_wm2 / skies[0].clear.dni_wm2, r.irradiance.ghi_wm2, f.probes_ghi_wm2[0])
         };
         for (f, far_shaded) in [(1.0, false), (2.0, true)] {
-            input.layers = vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 0.0, cbh_factor: f }];
+            input.layers = vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 0.0, cbh_factor: f, cbh_log_sigma: 0.3 }];
             let (far, far_ghi, probes) = ratio(&input, "far");
             let (cam, cam_ghi, _) = ratio(&input, "camera");
             let want = if far_shaded { p.beam_thick } else { p.beam_clear };

@@ -99,8 +99,9 @@ impl ForecastStage {
     /// speed spread when nothing is tracked yet), the cover, the weather and the probe points.
     /// `cbh_factor` scales the first layer's look-ups from the map's plane to the combined cloud
     /// base height; `cbh_rel_sigma` is that height's relative uncertainty, which widens the
-    /// ensemble's spread of the base when it exceeds the configured one.
-    pub(super) fn input<'a>(&self, cx: SiteInputs<'a>, t: &DateTime<Utc>, (cbh, cbh_factor, cbh_rel_sigma): (f64, f64, f64), layers: &[TrackedLayer], [cf, thin_cf]: [f64; 2]) -> ForecastInput<'a> {
+    /// ensemble's spread of the base when it exceeds the configured one. `upper` is the second
+    /// layer's (factor, sigma of `ln h`) ([`crate::cbh::CbhState::upper`]).
+    pub(super) fn input<'a>(&self, cx: SiteInputs<'a>, t: &DateTime<Utc>, (cbh, cbh_factor, cbh_rel_sigma): (f64, f64, f64), upper: (f64, f64), layers: &[TrackedLayer], [cf, thin_cf]: [f64; 2]) -> ForecastInput<'a> {
         let mut params = self.irradiance;
         params.ensemble_cbh_rel_sigma = params.ensemble_cbh_rel_sigma.max(cbh_rel_sigma);
         ForecastInput {
@@ -111,9 +112,10 @@ impl ForecastStage {
             camera_m: cx.site.file.camera.position_m,
             cbh_m: cbh,
             layers: if layers.is_empty() {
-                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor }]
+                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor, cbh_log_sigma: cbh_rel_sigma }]
             } else {
-                layers.iter().enumerate().map(|(i, l)| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: if i == 0 { cbh_factor } else { 1.0 } }).collect()
+                let base = |i: usize| if i == 0 { (cbh_factor, cbh_rel_sigma) } else { upper };
+                layers.iter().enumerate().map(|(i, l)| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: base(i).0, cbh_log_sigma: base(i).1 }).collect()
             },
             cloud_fraction: if cf.is_nan() { 0.0 } else { cf },
             thin_fraction: if thin_cf.is_nan() { 0.0 } else { thin_cf },

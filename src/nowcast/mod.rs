@@ -13,7 +13,7 @@ use crate::io::{InputError, Measurements, Series, fmt_time};
 use crate::plant::Plant;
 use crate::segment::Reference;
 use crate::sun::SunPosition;
-use stages::{FrameQcStage, MapStage, MotionStage, layer_tables};
+use stages::{FrameQcStage, MapStage, MotionStage, layer_labels, layer_tables};
 use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
 mod forecast_stages;
@@ -172,8 +172,11 @@ impl Nowcaster {
     }
 
     /// Run the stereo estimate on this frame and the pending second-camera frame, when they pair
-    /// and the last run is at least `every_s` old; an estimate goes to the base-height state.
-    fn stereo_stage(&mut self, frame: &Frame, reduced: bool, sun: &SunPosition) {
+    /// and the last run is at least `every_s` old; an estimate goes to the base-height state. With
+    /// two layers tracked (`layers`: their cells on this frame's map) each layer is matched on its
+    /// own cells and its estimate goes to that layer ([`crate::stereo::estimate_layers`]), known by
+    /// its motion on the map (`layer_v`, the tracked layers' in order).
+    fn stereo_stage(&mut self, frame: &Frame, reduced: bool, sun: &SunPosition, layers: Option<crate::stereo::LayerCells>, layer_v: &[[f64; 2]]) {
         let Some(sc) = &self.site.second_camera else { return };
         let Some((t2, img2)) = &self.stereo.pending else { return };
         let gap_s = (*t2 - frame.time).num_milliseconds() as f64 / 1000.0;
@@ -198,15 +201,24 @@ impl Nowcaster {
         let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: reference_b, image: img2 };
         let d = sun.direction_enu();
         let sun_dir = Some([d[0] as f32, d[1] as f32, d[2] as f32]);
-        match crate::stereo::estimate(&a, &b, sun_dir, &self.site.file.segment, &crate::stereo::StereoParams::default()) {
-            Ok(mut fit) => {
-                // The estimator's height is above camera A; the engine's is above the site origin.
-                fit.cbh_m += cam_a_m[2];
-                self.cbh_state.observe_stereo(frame.time, &fit);
-                self.stereo.last_refusal = None;
+        let (seg, params) = (&self.site.file.segment, crate::stereo::StereoParams::default());
+        let fits = match &layers {
+            Some(cells) => crate::stereo::estimate_layers(&a, &b, sun_dir, seg, &params, cells),
+            None => vec![crate::stereo::estimate(&a, &b, sun_dir, seg, &params)],
+        };
+        let mut refused = vec![];
+        for (l, r) in fits.into_iter().enumerate() {
+            match r {
+                Ok(mut fit) => {
+                    // The estimator's height is above camera A; the engine's is above the site origin.
+                    fit.cbh_m += cam_a_m[2];
+                    self.cbh_state.observe_stereo_layer(layer_v.get(l).copied(), frame.time, &fit);
+                }
+                Err(e) if layers.is_some() => refused.push(format!("layer {}: {e}", l + 1)),
+                Err(e) => refused.push(e.to_string()),
             }
-            Err(e) => self.stereo.last_refusal = Some(e.to_string()),
         }
+        self.stereo.last_refusal = (!refused.is_empty()).then(|| refused.join("; "));
     }
 
     /// Set the engine up from a site file: load the site and its camera, the base-height series
@@ -535,15 +547,24 @@ impl Nowcaster {
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
         let motion = moved.layers.first().map(|l| l.motion);
         self.map_stage.layered = moved.layers.len() > 1;
+        let labels = layer_labels(&map, &moved);
         let t_motion = Clock::now();
-        self.stereo_stage(frame, reduced, &sun);
-        let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps));
+        let layer_v: Vec<[f64; 2]> = moved.layers.iter().map(|l| l.motion.v_mps).collect();
+        self.stereo_stage(frame, reduced, &sun, labels.as_deref().map(|l| crate::stereo::LayerCells::from_labels(&map, l, 2)), &layer_v);
+        let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps), layer_v.get(1).copied());
         let cbh_factor = cbh_est.cbh_m / cbh;
+        // The second layer's base: its prior and its own stereo estimate (exactly the prior, at
+        // factor 1 and the prior's spread, with one camera and no known layers).
+        let cbh_upper = match layer_v.as_slice() {
+            [v0, v1, ..] => Some(self.cbh_state.upper(frame.time, cbh, *v1, *v0)),
+            _ => None,
+        };
+        let upper = cbh_upper.map_or((1.0, crate::cbh::UPPER_LAYER_PRIOR_REL_SIGMA), |u| (u.cbh_m / cbh, u.rel_sigma()));
         self.stereo.cbh_above_a_m = Some((cbh_est.cbh_m - cam_z).max(10.0));
         let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements) };
         self.forecast_stage.tune(cx, &frame.time, &sun, &map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
-        let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), &moved.layers, [cf, thin_cf]);
-        let tms = layer_tables(&map, &moved, &input.params);
+        let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), upper, &moved.layers, [cf, thin_cf]);
+        let tms = layer_tables(&map, labels.as_deref(), &input.params);
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
@@ -562,6 +583,7 @@ impl Nowcaster {
             sun,
             cbh_m: cbh,
             cbh: cbh_est,
+            cbh_upper,
             cloud_fraction: cf,
             map,
             measurement: moved.measurement,
@@ -585,7 +607,7 @@ impl Nowcaster {
     /// Cloud base height: every estimate combined (ceilometer or configured value, shadow timing at
     /// the pyranometers); the map stays on its plane and the forecast scales its look-ups by the
     /// ratio (`cbh_factor`).
-    fn cbh_stage(&mut self, t: &DateTime<Utc>, map: &CloudMap, map_cbh_m: f64, v_map_mps: Option<[f64; 2]>) -> crate::cbh::CbhEstimate {
+    fn cbh_stage(&mut self, t: &DateTime<Utc>, map: &CloudMap, map_cbh_m: f64, v_map_mps: Option<[f64; 2]>, v_other_mps: Option<[f64; 2]>) -> crate::cbh::CbhEstimate {
         self.cbh_state.update(&crate::cbh::CbhFrame {
             time: *t,
             map,
@@ -593,6 +615,7 @@ impl Nowcaster {
             map_cbh_m,
             from_series: self.cbh_series.is_some(),
             v_map_mps,
+            v_other_mps,
             camera_m: self.site.file.camera.position_m,
             measurements: pyranometers_of(&self.measurements).map(|(m, c)| (m, c.as_slice())),
             observer: self.site.observer(),

@@ -210,21 +210,24 @@ impl MotionStage {
     }
 }
 
-/// The transmittance tables: one for a single layer; with two layers each cloudy cell goes with
-/// the layer whose motion explains it, and each layer's cloud is advected by its own motion.
-pub(super) fn layer_tables(map: &CloudMap, moved: &Moved, params: &IrradianceParams) -> Vec<TransmittanceMap> {
+/// With two layers tracked, each cloudy cell's layer (the one whose motion explains it): the
+/// measurement's own labels when it saw both layers (in the tracked order), else labels from the
+/// tracked motions. `None` with one layer or none.
+pub(super) fn layer_labels(map: &CloudMap, moved: &Moved) -> Option<Vec<u8>> {
     match (&moved.earlier, moved.layers.as_slice()) {
         (Some(((_, _, pf), age_s)), [l0, l1, ..]) => {
-            // The measurement's own labels when it saw both layers (in the tracked order),
-            // else labels from the tracked motions.
             let (v0, v1) = (l0.motion.v_mps, l1.motion.v_mps);
-            let labels = moved
-                .measurement
-                .as_ref()
-                .and_then(|m| m.labels_for(v0, v1))
-                .unwrap_or_else(|| label_layers_with(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1]));
-            vec![TransmittanceMap::for_layer(map, params, Some((&labels, 0))), TransmittanceMap::for_layer(map, params, Some((&labels, 1)))]
+            Some(moved.measurement.as_ref().and_then(|m| m.labels_for(v0, v1)).unwrap_or_else(|| label_layers_with(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1])))
         }
-        _ => vec![TransmittanceMap::new(map, params)],
+        _ => None,
+    }
+}
+
+/// The transmittance tables: one for a single layer; with two layers ([`layer_labels`]) each
+/// cloudy cell goes with its layer, and each layer's cloud is advected by its own motion.
+pub(super) fn layer_tables(map: &CloudMap, labels: Option<&[u8]>, params: &IrradianceParams) -> Vec<TransmittanceMap> {
+    match labels {
+        Some(labels) => vec![TransmittanceMap::for_layer(map, params, Some((labels, 0))), TransmittanceMap::for_layer(map, params, Some((labels, 1)))],
+        None => vec![TransmittanceMap::new(map, params)],
     }
 }

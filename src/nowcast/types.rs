@@ -127,6 +127,9 @@ pub struct Nowcast {
     pub cbh_m: f64,
     /// The cloud base height the forecast used (all estimates combined), its uncertainty and source.
     pub cbh: crate::cbh::CbhEstimate,
+    /// With two layers advected, the second layer's base: its prior combined with its own stereo
+    /// estimate ([`crate::cbh::CbhState::upper`]); `None` with one layer.
+    pub cbh_upper: Option<crate::cbh::CbhEstimate>,
     /// Cloud fraction of the map within the configured zenith.
     pub cloud_fraction: f64,
     /// The cloud map.

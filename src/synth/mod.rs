@@ -550,6 +550,13 @@ pub fn write_sequence(scene: &Scene, out: &Path, progress: bool) -> Result<Write
     Ok(WriteSummary { frames, bytes, render_s_per_frame: render_s })
 }
 
+/// The pyranometer readings `write_sequence` writes as `measurements.csv` (to 20 minutes past the
+/// last frame), without rendering: e.g. the same sequence read with another averaging period.
+pub fn measurements_csv(scene: &Scene) -> Vec<u8> {
+    let frames = scene.frame_times().len();
+    pyranometer_readings(scene, frames + (20.0 * 60.0 / scene.spec.frame_step_s).ceil() as usize)
+}
+
 /// Write a file of the sequence atomically.
 fn put(path: PathBuf, bytes: &[u8]) -> Result<(), SynthError> {
     write_atomic(&path, bytes).map_err(|source| SynthError::Write { path, source })
