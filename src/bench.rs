@@ -42,6 +42,12 @@ pub struct BenchReport {
     pub step_with_ensemble_ms_median: f64,
     /// Median per stage \[ms\]: QC, map, motion, central forecast, ensemble.
     pub stage_ms: [f64; 5],
+    /// Median CPU time of the intake's decode on its thread \[ms\]: time on a core only, so a
+    /// loaded machine's wait for a core does not count (cache effects still do).
+    pub decode_cpu_ms: f64,
+    /// Median CPU time of the whole step (ensemble included) on the engine's thread \[ms\]; with
+    /// `threads` = 1 every stage runs on it. NaN with more threads (members run elsewhere).
+    pub step_with_ensemble_cpu_ms: f64,
     /// Frames per second including decoding, decode and step one after the other on one thread
     /// (the engine's pool has `threads` threads).
     pub throughput_fps: f64,
@@ -175,6 +181,19 @@ fn scene_frames(o: &BenchOptions) -> Result<SceneFrames, BenchError> {
     Ok((site, times, jpegs, render_ms))
 }
 
+/// CPU time of the calling thread \[ms\] (NaN where the platform does not tell it).
+fn thread_cpu_ms() -> f64 {
+    #[cfg(unix)]
+    {
+        let mut ts = libc::timespec { tv_sec: 0, tv_nsec: 0 };
+        // SAFETY: clock_gettime writes into the struct we pass and reads nothing else.
+        if unsafe { libc::clock_gettime(libc::CLOCK_THREAD_CPUTIME_ID, &mut ts) } == 0 {
+            return ts.tv_sec as f64 * 1000.0 + ts.tv_nsec as f64 / 1e6;
+        }
+    }
+    f64::NAN
+}
+
 /// Decode and step every frame one after the other on one thread (the engine's pool has `threads`
 /// threads), timing each stage.
 fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Vec<u8>], threads: usize) -> Result<BenchReport, BenchError> {
@@ -183,15 +202,19 @@ fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Ve
     let horizons = nc.horizons_s().len();
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().map_err(|e| BenchError::Setup(e.to_string()))?;
     let (mut dec, mut step, mut full, mut st) = (vec![], vec![], vec![], [vec![], vec![], vec![], vec![], vec![]]);
+    let (mut dec_cpu, mut full_cpu) = (vec![], vec![]);
     let wall = Instant::now();
     pool.install(|| -> Result<(), BenchError> {
         for (index, (t, j)) in times.iter().zip(jpegs).enumerate() {
-            let td = Instant::now();
+            let (td, cd) = (Instant::now(), thread_cpu_ms());
             // The engine's own intake (structure check and decode), as in replay and live mode.
             let img = crate::intake::from_bytes(j, &nc.intake_options()).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
             dec.push(td.elapsed().as_secs_f64() * 1000.0);
+            let cs = thread_cpu_ms();
+            dec_cpu.push(cs - cd);
             let frame = Frame { time: *t, image: img };
             let n = nc.step(&frame).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
+            full_cpu.push(thread_cpu_ms() - cs);
             crate::intake::recycle(frame.image);
             let ts = n.times;
             step.push(ts.qc_ms + ts.map_ms + ts.motion_ms + ts.forecast_ms);
@@ -217,6 +240,8 @@ fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Ve
         step_ms_p95: pct(step, 0.95),
         step_with_ensemble_ms_median: pct(full, 0.5),
         stage_ms: st.map(|v| pct(v, 0.5)),
+        decode_cpu_ms: pct(dec_cpu, 0.5),
+        step_with_ensemble_cpu_ms: if threads == 1 { pct(full_cpu, 0.5) } else { f64::NAN },
         throughput_fps: times.len() as f64 / wall_s,
         overlap_threads: 0,
         throughput_fps_overlapped: f64::NAN,

@@ -504,6 +504,10 @@ pub fn check_args(cli: &Cli) -> Result<()> {
             }
             check_arg("--horizon-min", f64::from(a.horizon_min), 1.0, 60.0)?;
             check_arg("--members", a.members as f64, 0.0, 200.0)?;
+            if ![0, 1, 2, 4, 8].contains(&a.decode_reduction) {
+                bail!("--decode-reduction must be 0 (automatic), 1, 2, 4 or 8, not {}", a.decode_reduction);
+            }
+            check_arg("--overlap-threads", a.overlap_threads as f64, 0.0, 256.0)?;
         }
         Command::Calibrate(a) => {
             check_arg("--min-detections", a.min_detections as f64, crate::config::MIN_FIT_DETECTIONS as f64, 1e6)?;
