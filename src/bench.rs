@@ -42,8 +42,22 @@ pub struct BenchReport {
     pub step_with_ensemble_ms_median: f64,
     /// Median per stage \[ms\]: QC, map, motion, central forecast, ensemble.
     pub stage_ms: [f64; 5],
-    /// Frames per second including decoding.
+    /// Median CPU time of the intake's decode on its thread \[ms\]: time on a core only, so a
+    /// loaded machine's wait for a core does not count (cache effects still do).
+    pub decode_cpu_ms: f64,
+    /// Median CPU time of the whole step (ensemble included) on the engine's thread \[ms\]; with
+    /// `threads` = 1 every stage runs on it. NaN with more threads (members run elsewhere).
+    pub step_with_ensemble_cpu_ms: f64,
+    /// Frames per second including decoding, decode and step one after the other on one thread
+    /// (the engine's pool has `threads` threads).
     pub throughput_fps: f64,
+    /// Threads of the engine's pool in the overlapped pass (0: not run).
+    pub overlap_threads: usize,
+    /// Frames per second including decoding, with each frame decoded on a thread of its own while
+    /// the engine steps the frame before (as `replay` does), the engine's pool (ensemble members,
+    /// block matching) having `overlap_threads` threads; a second pass over the same frames with a
+    /// fresh engine. NaN when not run.
+    pub throughput_fps_overlapped: f64,
 }
 
 /// Why the benchmark could not run (each would be a bug: the scene is built in).
@@ -87,11 +101,15 @@ pub struct BenchOptions {
     pub horizon_min: u32,
     /// Ensemble members (0 = none).
     pub members: usize,
+    /// `map.decode_reduction` (0: automatic).
+    pub decode_reduction: u32,
+    /// Threads of the engine's pool in the overlapped pass (0: no such pass).
+    pub overlap_threads: usize,
 }
 
 impl Default for BenchOptions {
     fn default() -> Self {
-        Self { size_px: 1024, frames: 60, threads: 1, plant_points: 1000, step_s: 60, horizon_min: 20, members: 20 }
+        Self { size_px: 1024, frames: 60, threads: 1, plant_points: 1000, step_s: 60, horizon_min: 20, members: 20, decode_reduction: 0, overlap_threads: 2 }
     }
 }
 
@@ -108,16 +126,41 @@ pub fn run(size_px: u32, frames: usize, threads: usize) -> Result<BenchReport, B
 /// # Errors
 /// When the scene cannot be built or a frame fails (which would be a bug).
 pub fn run_with(o: &BenchOptions) -> Result<BenchReport, BenchError> {
-    let (size_px, frames, threads) = (o.size_px, o.frames, o.threads);
+    let (site, times, jpegs, render_ms) = scene_frames(o)?;
+    let mut dec_whole = vec![];
+    // Whole-frame decoding by the general decoder, for comparison (outside the timed loops).
+    for j in jpegs.iter().take(20) {
+        let td = Instant::now();
+        let img = crate::intake::decode_general(j, crate::intake::Format::Jpeg, &crate::intake::IntakeOptions::default()).map_err(|e| BenchError::Setup(e.to_string()))?;
+        dec_whole.push(td.elapsed().as_secs_f64() * 1000.0);
+        std::hint::black_box(img);
+    }
+    let mut r = serial_pass(&site, &times, &jpegs, o.threads.max(1))?;
+    r.size_px = o.size_px;
+    r.render_ms = render_ms;
+    r.decode_whole_ms = pct(dec_whole, 0.5);
+    if o.overlap_threads > 0 {
+        r.overlap_threads = o.overlap_threads;
+        r.throughput_fps_overlapped = overlapped_pass(&site, &times, &jpegs, o.overlap_threads)?;
+    }
+    Ok(r)
+}
+
+/// The synthetic scene's site and its frames, rendered and JPEG-encoded in memory, with the render
+/// time per frame \[ms\].
+type SceneFrames = (Site, Vec<chrono::DateTime<chrono::Utc>>, Vec<Vec<u8>>, f64);
+
+fn scene_frames(o: &BenchOptions) -> Result<SceneFrames, BenchError> {
     let mut spec = scene("broken-cumulus-fast").ok_or_else(|| BenchError::Setup("scene broken-cumulus-fast missing".into()))?;
-    spec.size_px = size_px;
-    spec.duration_min = frames as f64 * spec.frame_step_s / 60.0;
+    spec.size_px = o.size_px;
+    spec.duration_min = o.frames as f64 * spec.frame_step_s / 60.0;
     let mut s = Scene::new(spec, 11).map_err(|e| BenchError::Setup(e.to_string()))?;
     // The plant's layout spacing for about `plant_points` points (15.5 m gives 949 on this plant).
     s.site.plant.point_spacing_m = 15.5 * (949.0 / o.plant_points.max(1) as f64).sqrt();
     s.site.forecast.step_s = o.step_s;
     s.site.forecast.horizon_min = o.horizon_min;
     s.site.irradiance.ensemble_members = o.members;
+    s.site.map.decode_reduction = o.decode_reduction;
     let rays = PixelRays::new(&s.camera);
     let times = s.frame_times();
     let t0 = Instant::now();
@@ -135,27 +178,43 @@ pub fn run_with(o: &BenchOptions) -> Result<BenchReport, BenchError> {
         cbh_csv: None,
         second_camera: None,
     };
-    let mut nc = Nowcaster::new(site, None, None);
+    Ok((site, times, jpegs, render_ms))
+}
+
+/// CPU time of the calling thread \[ms\] (NaN where the platform does not tell it).
+fn thread_cpu_ms() -> f64 {
+    #[cfg(unix)]
+    {
+        let mut ts = libc::timespec { tv_sec: 0, tv_nsec: 0 };
+        // SAFETY: clock_gettime writes into the struct we pass and reads nothing else.
+        if unsafe { libc::clock_gettime(libc::CLOCK_THREAD_CPUTIME_ID, &mut ts) } == 0 {
+            return ts.tv_sec as f64 * 1000.0 + ts.tv_nsec as f64 / 1e6;
+        }
+    }
+    f64::NAN
+}
+
+/// Decode and step every frame one after the other on one thread (the engine's pool has `threads`
+/// threads), timing each stage.
+fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Vec<u8>], threads: usize) -> Result<BenchReport, BenchError> {
+    let mut nc = Nowcaster::new(site.clone(), None, None);
     let plant_points = nc.plant().point_count();
     let horizons = nc.horizons_s().len();
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads.max(1)).build().map_err(|e| BenchError::Setup(e.to_string()))?;
-    let (mut dec, mut dec_whole, mut step, mut full, mut st) = (vec![], vec![], vec![], vec![], [vec![], vec![], vec![], vec![], vec![]]);
-    // Whole-frame decoding by the general decoder, for comparison (outside the timed loop).
-    for j in jpegs.iter().take(20) {
-        let td = Instant::now();
-        let img = crate::intake::decode_general(j, crate::intake::Format::Jpeg, &crate::intake::IntakeOptions::default()).map_err(|e| BenchError::Setup(e.to_string()))?;
-        dec_whole.push(td.elapsed().as_secs_f64() * 1000.0);
-        std::hint::black_box(img);
-    }
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().map_err(|e| BenchError::Setup(e.to_string()))?;
+    let (mut dec, mut step, mut full, mut st) = (vec![], vec![], vec![], [vec![], vec![], vec![], vec![], vec![]]);
+    let (mut dec_cpu, mut full_cpu) = (vec![], vec![]);
     let wall = Instant::now();
     pool.install(|| -> Result<(), BenchError> {
-        for (index, (t, j)) in times.iter().zip(&jpegs).enumerate() {
-            let td = Instant::now();
+        for (index, (t, j)) in times.iter().zip(jpegs).enumerate() {
+            let (td, cd) = (Instant::now(), thread_cpu_ms());
             // The engine's own intake (structure check and decode), as in replay and live mode.
             let img = crate::intake::from_bytes(j, &nc.intake_options()).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
             dec.push(td.elapsed().as_secs_f64() * 1000.0);
+            let cs = thread_cpu_ms();
+            dec_cpu.push(cs - cd);
             let frame = Frame { time: *t, image: img };
             let n = nc.step(&frame).map_err(|e| BenchError::Frame { index, message: e.to_string() })?;
+            full_cpu.push(thread_cpu_ms() - cs);
             crate::intake::recycle(frame.image);
             let ts = n.times;
             step.push(ts.qc_ms + ts.map_ms + ts.motion_ms + ts.forecast_ms);
@@ -168,19 +227,56 @@ pub fn run_with(o: &BenchOptions) -> Result<BenchReport, BenchError> {
     })?;
     let wall_s = wall.elapsed().as_secs_f64();
     Ok(BenchReport {
-        size_px,
+        size_px: 0,
         frames: times.len(),
-        threads: threads.max(1),
+        threads,
         plant_points,
         horizons,
-        render_ms,
+        render_ms: f64::NAN,
         decode_reduction: nc.intake_options().reduce,
         decode_ms: pct(dec, 0.5),
-        decode_whole_ms: pct(dec_whole, 0.5),
+        decode_whole_ms: f64::NAN,
         step_ms_median: pct(step.clone(), 0.5),
         step_ms_p95: pct(step, 0.95),
         step_with_ensemble_ms_median: pct(full, 0.5),
         stage_ms: st.map(|v| pct(v, 0.5)),
+        decode_cpu_ms: pct(dec_cpu, 0.5),
+        step_with_ensemble_cpu_ms: if threads == 1 { pct(full_cpu, 0.5) } else { f64::NAN },
         throughput_fps: times.len() as f64 / wall_s,
+        overlap_threads: 0,
+        throughput_fps_overlapped: f64::NAN,
     })
+}
+
+/// Frames per second of the whole engine with each frame decoded on a thread of its own (one or
+/// two frames ahead) while the engine steps the frame before, as `replay` does; the engine's pool
+/// has `threads` threads. A fresh engine over the same frames.
+fn overlapped_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Vec<u8>], threads: usize) -> Result<f64, BenchError> {
+    let mut nc = Nowcaster::new(site.clone(), None, None);
+    let opts = nc.intake_options();
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().map_err(|e| BenchError::Setup(e.to_string()))?;
+    let (tx, rx) = std::sync::mpsc::sync_channel::<Result<image::RgbImage, crate::intake::Refusal>>(2);
+    let wall = Instant::now();
+    std::thread::scope(|scope| -> Result<(), BenchError> {
+        scope.spawn(move || {
+            for j in jpegs {
+                if tx.send(crate::intake::from_bytes(j, &opts)).is_err() {
+                    break;
+                }
+            }
+        });
+        // The receiver moves into the pool (it is `Send`, not `Sync`); the engine goes in by reference.
+        let nc = &mut nc;
+        pool.install(move || -> Result<(), BenchError> {
+            for (index, t) in times.iter().enumerate() {
+                let failed = |message: String| BenchError::Frame { index, message };
+                let img = rx.recv().map_err(|_| failed("the decoding thread stopped".into()))?.map_err(|e| failed(e.to_string()))?;
+                let frame = Frame { time: *t, image: img };
+                nc.step(&frame).map_err(|e| failed(e.to_string()))?;
+                crate::intake::recycle(frame.image);
+            }
+            Ok(())
+        })
+    })?;
+    Ok(times.len() as f64 / wall.elapsed().as_secs_f64())
 }

@@ -31,11 +31,22 @@ pub struct MapParams {
     pub max_zenith_deg: f64,
     /// Base heights are bucketed to this step for the look-up table cache \[m\].
     pub height_bucket_m: f64,
+    /// The scale the engine decodes JPEG frames at: 0 (the default) picks it from the frame and
+    /// map sizes ([`crate::intake::map_reduction`]: at least four pixels per cell across the frame,
+    /// so 1024² and smaller frames whole, 2048² at 1/2); 1 decodes whole frames; 2, 4 or 8 decode at
+    /// 1/2, 1/4 or 1/8 in the DCT domain (faster; at 1024², 1/2 costs the two-layer scene skill,
+    /// README: Speed). Not written when 0.
+    #[serde(skip_serializing_if = "is_auto")]
+    pub decode_reduction: u32,
+}
+
+fn is_auto(v: &u32) -> bool {
+    *v == 0
 }
 
 impl Default for MapParams {
     fn default() -> Self {
-        Self { cells: 256, max_zenith_deg: 84.0, height_bucket_m: 50.0 }
+        Self { cells: 256, max_zenith_deg: 84.0, height_bucket_m: 50.0, decode_reduction: 0 }
     }
 }
 
@@ -47,7 +58,16 @@ impl MapParams {
     pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
         check_range(file, "map.cells", self.cells as f64, 32.0, 2048.0)?;
         check_range(file, "map.max_zenith_deg", self.max_zenith_deg, 30.0, 85.0)?;
-        check_range(file, "map.height_bucket_m", self.height_bucket_m, 1.0, 1000.0)
+        check_range(file, "map.height_bucket_m", self.height_bucket_m, 1.0, 1000.0)?;
+        if !matches!(self.decode_reduction, 0 | 1 | 2 | 4 | 8) {
+            return Err(ConfigError::Invalid {
+                file: file.into(),
+                field: "map.decode_reduction".into(),
+                expected: "0 (automatic), 1 (whole frames), 2, 4 or 8".into(),
+                got: self.decode_reduction.to_string(),
+            });
+        }
+        Ok(())
     }
 }
 

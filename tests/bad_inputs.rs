@@ -94,6 +94,7 @@ fn site_cases() -> Vec<Case> {
         ("[map]", "cells", "map.cells", &["0", "8", "100000"]),
         ("[map]", "max_zenith_deg", "map.max_zenith_deg", &["89.9", "10.0"]),
         ("[map]", "height_bucket_m", "map.height_bucket_m", &["0.0", "1e6"]),
+        ("[map]", "decode_reduction", "map.decode_reduction", &["3", "16"]),
         ("[irradiance]", "ensemble_members", "irradiance.ensemble_members", &["201", "100000"]),
         ("[[pyranometers]]", "position_m", "pyranometers[0].position_m[0]", &["[1e7, 0.0]"]),
     ];
@@ -103,7 +104,7 @@ fn site_cases() -> Vec<Case> {
     };
     push(&mut cases, "site: valid".into(), inputs::SITE.into(), Expect::Ok);
     for (after, key, field, bad) in fields {
-        let floats = !matches!(*key, "cells" | "ensemble_members" | "position_m");
+        let floats = !matches!(*key, "cells" | "ensemble_members" | "position_m" | "decode_reduction");
         let mut values: Vec<&str> = bad.to_vec();
         if floats {
             values.extend(NON_FINITE);
@@ -434,7 +435,7 @@ fn argument_cases() -> Vec<Case> {
         list.push((other(&v), refused(&[arg])));
     }
     list.push((other(&["synth", "--scene", "clear-day", "--out", "/nonexistent/x", "--minutes", "1440"]), Expect::Ok));
-    for (extra, arg) in [(&["--frames", "1"][..], "--frames"), (&["--frames", "1000000"], "--frames"), (&["--threads", "0"], "--threads"), (&["--threads", "100000"], "--threads"), (&["--size", "63"], "--size"), (&["--plant-points", "5"], "--plant-points"), (&["--step-s", "45"], "--step-s"), (&["--horizon-min", "0"], "--horizon-min"), (&["--members", "1000"], "--members")] {
+    for (extra, arg) in [(&["--frames", "1"][..], "--frames"), (&["--frames", "1000000"], "--frames"), (&["--threads", "0"], "--threads"), (&["--threads", "100000"], "--threads"), (&["--size", "63"], "--size"), (&["--plant-points", "5"], "--plant-points"), (&["--step-s", "45"], "--step-s"), (&["--horizon-min", "0"], "--horizon-min"), (&["--members", "1000"], "--members"), (&["--decode-reduction", "3"], "--decode-reduction"), (&["--overlap-threads", "1000"], "--overlap-threads")] {
         let mut v = vec!["bench"];
         v.extend_from_slice(extra);
         list.push((other(&v), refused(&[arg])));

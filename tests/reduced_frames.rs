@@ -6,15 +6,8 @@ use nephocast::nowcast::{Frame, Nowcaster};
 use nephocast::synth::render::PixelRays;
 use nephocast::synth::{Scene, encode_jpeg, scene};
 
-#[test]
-fn reduced_frames_step_like_whole_ones() {
-    let mut spec = scene("broken-cumulus-fast").unwrap();
-    spec.size_px = 256;
-    spec.duration_min = 4.0;
-    let mut s = Scene::new(spec, 5).unwrap();
-    // 32 cells on a 256 px frame: eight pixels per cell, so the intake halves the frame.
-    s.site.map.cells = 32;
-    let site = Site {
+fn site_of(s: &Scene) -> Site {
+    Site {
         file: s.site.clone(),
         path: "t/site.toml".into(),
         camera: s.camera.clone(),
@@ -24,7 +17,39 @@ fn reduced_frames_step_like_whole_ones() {
         clear_reference: None,
         cbh_csv: None,
         second_camera: None,
-    };
+    }
+}
+
+/// `map.decode_reduction` sets the intake's scale when it is 1, 2, 4 or 8 and leaves the automatic
+/// choice (four or more pixels per cell across the frame) when 0; it is written to a site file only
+/// when set (common practice, no source: a setting the operator gives wins over the default).
+#[test]
+fn configured_reduction_overrides_the_automatic_one() {
+    if std::env::var_os("NEPHOCAST_FRAME_REDUCTION").is_some() {
+        println!("skipped: NEPHOCAST_FRAME_REDUCTION overrides map.decode_reduction");
+        return;
+    }
+    let mut spec = scene("broken-cumulus-fast").unwrap();
+    spec.size_px = 1024;
+    let mut s = Scene::new(spec, 5).unwrap();
+    assert_eq!(s.site.map.cells, 256);
+    for (configured, used) in [(0, 1), (1, 1), (2, 2), (4, 4), (8, 8)] {
+        s.site.map.decode_reduction = configured;
+        assert_eq!(Nowcaster::new(site_of(&s), None, None).intake_options().reduce, used, "map.decode_reduction = {configured}");
+        let text = toml::to_string(&s.site).unwrap();
+        assert_eq!(text.contains("decode_reduction"), configured != 0, "{configured}");
+    }
+}
+
+#[test]
+fn reduced_frames_step_like_whole_ones() {
+    let mut spec = scene("broken-cumulus-fast").unwrap();
+    spec.size_px = 256;
+    spec.duration_min = 4.0;
+    let mut s = Scene::new(spec, 5).unwrap();
+    // 32 cells on a 256 px frame: eight pixels per cell, so the intake halves the frame.
+    s.site.map.cells = 32;
+    let site = site_of(&s);
     let mut reduced = Nowcaster::new(site.clone(), None, None);
     let mut whole = Nowcaster::new(site, None, None);
     assert_eq!(reduced.intake_options().reduce, 2);

@@ -10,7 +10,10 @@ shared machine drift by up to 2x; a ratio from one round compares the two under 
 
 Peer compute = segment + rectify + block matching + forecast (its stage medians at one OpenCV
 thread); peer end to end = its `fps_e2e_step` (decode plus a full step). Ours: the engine step
-without and with the ensemble, and frames per second of decode plus the whole step.
+without and with the ensemble, and frames per second of decode plus the whole step one after the
+other on one thread. On two threads: ours with decoding on a thread of its own overlapping the step
+and the engine's pool at two threads (as replay runs), against the peer's `fps_e2e_step` with
+OpenCV at two threads.
 """
 import argparse
 import json
@@ -33,12 +36,15 @@ def main() -> None:
     ap.add_argument("--bin", default="target/release/nephocast")
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--frames", type=int, default=40, help="frames of nephocast bench")
+    ap.add_argument("--decode-reduction", type=int, default=0, help="nephocast bench --decode-reduction (0: automatic)")
     a = ap.parse_args()
     rows = []
     for k in range(a.rounds):
         peer = last_json(subprocess.run([a.python, a.peer, "--quick"], capture_output=True, text=True, check=True).stdout)
         p = peer["sizes"]["1024"]["threads"]["1"]
-        ours = last_json(subprocess.run([a.bin, "bench", "--size", "1024", "--threads", "1", "--frames", str(a.frames), "--json"],
+        p2 = peer["sizes"]["1024"]["threads"].get("2", p)
+        ours = last_json(subprocess.run([a.bin, "bench", "--size", "1024", "--threads", "1", "--frames", str(a.frames),
+                                         "--decode-reduction", str(a.decode_reduction), "--json"],
                                         capture_output=True, text=True, check=True).stdout)
         peer_compute = p["segment"] + p["rectify"] + p["motion_block"] + p["forecast"]
         r = {
@@ -50,11 +56,14 @@ def main() -> None:
             "decode_ms": ours["decode_ms"],
             "decode_whole_ms": ours["decode_whole_ms"],
             "fps_e2e": ours["throughput_fps"],
+            "peer_fps_e2e_2threads": p2["fps_e2e_step"],
+            "fps_e2e_overlapped_2threads": ours["throughput_fps_overlapped"],
         }
         r["ratio_step"] = peer_compute / r["step_ms"]
         r["ratio_step_with_ensemble"] = peer_compute / r["step_with_ensemble_ms"]
         r["ratio_decode"] = p["decode"] / r["decode_ms"]
         r["ratio_fps_e2e"] = r["fps_e2e"] / r["peer_fps_e2e"]
+        r["ratio_fps_e2e_2threads"] = r["fps_e2e_overlapped_2threads"] / r["peer_fps_e2e_2threads"]
         rows.append(r)
         print(f"round {k + 1}: " + ", ".join(f"{key} {v:.2f}" for key, v in r.items()), flush=True)
     med = {key: statistics.median(r[key] for r in rows) for key in rows[0]}

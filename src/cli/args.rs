@@ -256,6 +256,13 @@ pub struct BenchArgs {
     /// Ensemble members (0 = none).
     #[arg(long, default_value_t = 20, allow_hyphen_values = true)]
     pub members: usize,
+    /// `map.decode_reduction`: 0 automatic, 1 whole frames, 2, 4 or 8.
+    #[arg(long, default_value_t = 0, allow_hyphen_values = true)]
+    pub decode_reduction: u32,
+    /// Threads of the engine's pool in a second pass with decoding on a thread of its own,
+    /// overlapping the step (0: no such pass).
+    #[arg(long, default_value_t = 2, allow_hyphen_values = true)]
+    pub overlap_threads: usize,
     /// Also print the figures as one line of JSON, last.
     #[arg(long)]
     pub json: bool,
@@ -497,6 +504,10 @@ pub fn check_args(cli: &Cli) -> Result<()> {
             }
             check_arg("--horizon-min", f64::from(a.horizon_min), 1.0, 60.0)?;
             check_arg("--members", a.members as f64, 0.0, 200.0)?;
+            if ![0, 1, 2, 4, 8].contains(&a.decode_reduction) {
+                bail!("--decode-reduction must be 0 (automatic), 1, 2, 4 or 8, not {}", a.decode_reduction);
+            }
+            check_arg("--overlap-threads", a.overlap_threads as f64, 0.0, 256.0)?;
         }
         Command::Calibrate(a) => {
             check_arg("--min-detections", a.min_detections as f64, crate::config::MIN_FIT_DETECTIONS as f64, 1e6)?;

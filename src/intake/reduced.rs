@@ -40,12 +40,16 @@ impl ReducedFrames {
     }
 }
 
-/// The reduction the engine's frames are decoded at: [`map_reduction`], unless the environment
-/// variable `NEPHOCAST_FRAME_REDUCTION` says 1, 2, 4 or 8 (1 decodes whole frames; for comparing).
-pub fn frame_reduction(width_px: u32, cells: usize) -> u32 {
+/// The reduction the engine's frames are decoded at: the environment variable
+/// `NEPHOCAST_FRAME_REDUCTION` when it says 1, 2, 4 or 8 (1 decodes whole frames; for comparing),
+/// else `configured` (`map.decode_reduction`) when it is 1, 2, 4 or 8, else [`map_reduction`].
+pub fn frame_reduction(width_px: u32, cells: usize, configured: u32) -> u32 {
     match std::env::var("NEPHOCAST_FRAME_REDUCTION").ok().and_then(|v| v.trim().parse::<u32>().ok()) {
         Some(r @ (1 | 2 | 4 | 8)) => r,
-        _ => map_reduction(width_px, cells),
+        _ => match configured {
+            r @ (1 | 2 | 4 | 8) => r,
+            _ => map_reduction(width_px, cells),
+        },
     }
 }
 

@@ -97,7 +97,7 @@ impl Nowcaster {
         let measurements = measurements.and_then(|m| used_columns(&site.file, m));
         let reference = site.clear_reference.clone().unwrap_or_default();
         let cbh_state = crate::cbh::CbhState::new(&site.file.clouds);
-        let reduce = crate::intake::frame_reduction(site.camera.width_px, site.file.map.cells);
+        let reduce = crate::intake::frame_reduction(site.camera.width_px, site.file.map.cells, site.file.map.decode_reduction);
         let reduced = crate::intake::ReducedFrames::new(&site.camera, site.obstruction.as_ref(), reduce);
         Nowcaster {
             site,

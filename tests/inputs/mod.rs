@@ -51,6 +51,7 @@ step_s = 60
 cells = 256
 max_zenith_deg = 84.0
 height_bucket_m = 50.0
+decode_reduction = 0
 
 [irradiance]
 ensemble_members = 20
