@@ -381,7 +381,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         let plain = |k: usize| sky.plain[k] && fr.outside_glare(sky.gamma_deg[k]);
         crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
     }
-    crate::segment::far_thickness(&mut class, &score, &lut.z_deg, params);
+    crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
     let brightness = (0..n).map(|k| if cloudy(class[k]) { (blue[k] as f32 - mean) / 255.0 } else { 0.0 }).collect();

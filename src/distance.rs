@@ -22,6 +22,9 @@
 //! `MapStage`).
 use crate::segment::Class;
 
+// The far field's thickness, first by a frame's measured loss of contrast (below), and, off by
+// default, by holding the far bands' thick share to the near field's (`far_thickness`).
+
 /// Samples within this zenith angle set the near field's reference quantile \[°\].
 pub const NEAR_ZENITH_DEG: f32 = 50.0;
 /// Width of the far bands \[°\].
@@ -197,6 +200,59 @@ pub fn reclassify(score: &[f32], z_deg: &[f32], plain: &dyn Fn(usize) -> bool, l
     changed
 }
 
+/// Promote far thin cells to thick where [`crate::segment::SegmentParams::far_thickness_from_zenith_deg`] asks for
+/// it (see [`promote_far_cells`]); the floor is halfway between the thin and thick scores. Applied
+/// to a map's cells and to an image's pixels alike.
+pub fn far_thickness(class: &mut [u8], score: &[f32], z_deg: &[f32], params: &crate::segment::SegmentParams) {
+    let floor = 0.5 * (params.thin_score + params.thick_score) as f32;
+    promote_far_cells(class, score, z_deg, params.far_thickness_from_zenith_deg as f32, floor);
+}
+
+/// Zenith below which the cloudy cells set the thick share the far field is held to \[°\].
+const SHARE_NEAR_ZENITH_DEG: f32 = 60.0;
+
+/// Cloudy cells the near field needs before it sets the far field's thick share.
+const SHARE_NEAR_MIN_CLOUDY: usize = 200;
+
+/// Far from the zenith a pixel spans a wide stretch of the cloud plane and a long path of haze, so a
+/// thick cloud there mixes with gaps and sky light and scores as thin: on an independent renderer's
+/// broken cumulus the map called 25 % of cloudy cells thick at zenith 75–80° and 7 % at 80–84°,
+/// against about 80 % within 60°. From `from_deg` on, in bands of 5°, the cloudy cells with the highest
+/// scores are promoted from thin to thick until the band's thick share reaches that of the cloudy
+/// cells within [`SHARE_NEAR_ZENITH_DEG`] (the cloud field's thickness taken as alike across the sky;
+/// own choice). Only cells scoring at least `floor` are promoted (a veil stays thin); cloud and
+/// clear are left as they were, and no cell is demoted. Off by default (see
+/// [`crate::segment::SegmentParams::far_thickness_from_zenith_deg`]).
+fn promote_far_cells(class: &mut [u8], score: &[f32], z_deg: &[f32], from_deg: f32, floor: f32) {
+    let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
+    let (mut near_thick, mut near_cloudy) = (0usize, 0usize);
+    for k in 0..class.len() {
+        if z_deg[k] < SHARE_NEAR_ZENITH_DEG && (class[k] == thin || class[k] == thick) {
+            near_cloudy += 1;
+            near_thick += (class[k] == thick) as usize;
+        }
+    }
+    if near_cloudy < SHARE_NEAR_MIN_CLOUDY || from_deg >= 90.0 {
+        return;
+    }
+    let share = near_thick as f64 / near_cloudy as f64;
+    let mut lo = from_deg;
+    while lo < 90.0 {
+        let hi = lo + 5.0;
+        let in_band = |k: usize| z_deg[k] >= lo && z_deg[k] < hi;
+        let mut thin_cells: Vec<usize> = (0..class.len()).filter(|&k| in_band(k) && class[k] == thin).collect();
+        let thick_n = (0..class.len()).filter(|&k| in_band(k) && class[k] == thick).count();
+        let want = (share * (thin_cells.len() + thick_n) as f64).round() as usize;
+        if want > thick_n {
+            thin_cells.sort_by(|&a, &b| score[b].total_cmp(&score[a]));
+            for &k in thin_cells.iter().take(want - thick_n).filter(|&&k| score[k] >= floor) {
+                class[k] = thick;
+            }
+        }
+        lo = hi;
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -264,5 +320,45 @@ mod tests {
         assert_eq!(l.kept(30.0), 1.0);
         assert!(l.kept(70.0) < 1.0 && l.kept(80.0) < l.kept(70.0));
         assert!((l.kept(89.0) - 1.0 / MAX_LIFT).abs() < 1e-6);
+    }
+
+    /// Far cloudy cells are promoted, highest score first, until their band's thick share matches
+    /// the near field's; cells under the floor, clear cells and near cells stay as they were.
+    #[test]
+    fn far_thickness_matches_the_near_share() {
+        let (clear, thin, thick) = (Class::Clear as u8, Class::Thin as u8, Class::Thick as u8);
+        // 400 near cloudy cells, 3 in 4 thick; 100 far cloudy cells (zenith 77°), all thin, scores
+        // 0.50–0.99; 50 far clear cells.
+        let mut class = vec![];
+        let mut score = vec![];
+        let mut z = vec![];
+        for k in 0..400 {
+            class.push(if k % 4 == 0 { thin } else { thick });
+            score.push(0.9);
+            z.push(30.0);
+        }
+        for k in 0..100 {
+            class.push(thin);
+            score.push(0.5 + 0.0049 * k as f32);
+            z.push(77.0);
+        }
+        for _ in 0..50 {
+            class.push(clear);
+            score.push(0.1);
+            z.push(77.0);
+        }
+        let before = class.clone();
+        promote_far_cells(&mut class, &score, &z, 90.0, 0.0);
+        assert_eq!(class, before, "90° is off");
+        promote_far_cells(&mut class, &score, &z, 70.0, 0.0);
+        let far: Vec<u8> = class[400..500].to_vec();
+        assert_eq!(far.iter().filter(|c| **c == thick).count(), 75);
+        assert!(far[..25].iter().all(|c| *c == thin) && far[25..].iter().all(|c| *c == thick), "highest scores first");
+        assert_eq!(&class[..400], &before[..400]);
+        assert!(class[500..].iter().all(|c| *c == clear));
+        // A floor above most far scores leaves those thin.
+        let mut floored = before.clone();
+        promote_far_cells(&mut floored, &score, &z, 70.0, 0.9);
+        assert_eq!(floored[400..500].iter().filter(|c| **c == thick).count(), 100 - 82);
     }
 }

@@ -115,7 +115,7 @@ pub struct SegmentParams {
     pub max_zenith_deg: f64,
     /// From this zenith angle on, the map holds its cloudy cells' thick share to that of the
     /// cloudy cells near the zenith (distant cloud mixes with gaps and haze and reads thin;
-    /// `cloudmap::far_thickness`) \[°\]. 90 (the default) turns it off. Measured at 70° (with
+    /// `distance::far_thickness`) \[°\]. 90 (the default) turns it off. Measured at 70° (with
     /// the score floor halfway between the thin and thick thresholds): on the independent broken
     /// cumulus the largest |MBE| fell 100 → 48 W/m² (15 min), pooled skill 0.59 → 0.58; on the
     /// independent breaking overcast pooled skill 0.30 → 0.29 and the largest |MBE| rose 71 → 88;
@@ -634,7 +634,7 @@ pub fn acos_approx(x: f32) -> f32 {
 }
 
 /// Segment a whole image, pixel by pixel, through the same path as the engine's map
-/// ([`SkyGeometry`], [`FrameReference::classify_sample`], [`far_thickness`]); only the samples differ
+/// ([`SkyGeometry`], [`FrameReference::classify_sample`], [`crate::distance::far_thickness`]); only the samples differ
 /// (every pixel here, one reading per cell there).
 pub fn segment_image(
     img: &image::RgbImage,
@@ -661,7 +661,7 @@ pub fn segment_image(
         let plain = |i: usize| sky.plain[i] && fr.outside_glare(sky.gamma_deg[i]);
         crate::distance::correct(&score, &geom.z_deg, &plain, &mut classes, |z| params.thick_at(z));
     }
-    far_thickness(&mut classes, &score, &geom.z_deg, params);
+    crate::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
     let (mut cloudy, mut counted) = (0usize, 0usize);
     for i in (0..w * h).filter(|&i| seen(i) && geom.z_deg[i] < params.cloud_fraction_zenith_deg as f32) {
         if classes[i] != Class::Unknown as u8 {
@@ -716,58 +716,6 @@ impl SkyGeometry {
     }
 }
 
-/// Promote far thin cells to thick where [`SegmentParams::far_thickness_from_zenith_deg`] asks for
-/// it (see [`promote_far_cells`]); the floor is halfway between the thin and thick scores. Applied
-/// to a map's cells and to an image's pixels alike.
-pub fn far_thickness(class: &mut [u8], score: &[f32], z_deg: &[f32], params: &SegmentParams) {
-    let floor = 0.5 * (params.thin_score + params.thick_score) as f32;
-    promote_far_cells(class, score, z_deg, params.far_thickness_from_zenith_deg as f32, floor);
-}
-
-/// Zenith below which the cloudy cells set the thick share the far field is held to \[°\].
-const NEAR_ZENITH_DEG: f32 = 60.0;
-
-/// Cloudy cells the near field needs before it sets the far field's thick share.
-const NEAR_MIN_CLOUDY: usize = 200;
-
-/// Far from the zenith a pixel spans a wide stretch of the cloud plane and a long path of haze, so a
-/// thick cloud there mixes with gaps and sky light and scores as thin: on an independent renderer's
-/// broken cumulus the map called 25 % of cloudy cells thick at zenith 75–80° and 7 % at 80–84°,
-/// against about 80 % within 60°. From `from_deg` on, in bands of 5°, the cloudy cells with the highest
-/// scores are promoted from thin to thick until the band's thick share reaches that of the cloudy
-/// cells within [`NEAR_ZENITH_DEG`] (the cloud field's thickness taken as alike across the sky;
-/// own choice). Only cells scoring at least `floor` are promoted (a veil stays thin); cloud and
-/// clear are left as they were, and no cell is demoted. Off by default (see
-/// [`SegmentParams::far_thickness_from_zenith_deg`]).
-fn promote_far_cells(class: &mut [u8], score: &[f32], z_deg: &[f32], from_deg: f32, floor: f32) {
-    let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
-    let (mut near_thick, mut near_cloudy) = (0usize, 0usize);
-    for k in 0..class.len() {
-        if z_deg[k] < NEAR_ZENITH_DEG && (class[k] == thin || class[k] == thick) {
-            near_cloudy += 1;
-            near_thick += (class[k] == thick) as usize;
-        }
-    }
-    if near_cloudy < NEAR_MIN_CLOUDY || from_deg >= 90.0 {
-        return;
-    }
-    let share = near_thick as f64 / near_cloudy as f64;
-    let mut lo = from_deg;
-    while lo < 90.0 {
-        let hi = lo + 5.0;
-        let in_band = |k: usize| z_deg[k] >= lo && z_deg[k] < hi;
-        let mut thin_cells: Vec<usize> = (0..class.len()).filter(|&k| in_band(k) && class[k] == thin).collect();
-        let thick_n = (0..class.len()).filter(|&k| in_band(k) && class[k] == thick).count();
-        let want = (share * (thin_cells.len() + thick_n) as f64).round() as usize;
-        if want > thick_n {
-            thin_cells.sort_by(|&a, &b| score[b].total_cmp(&score[a]));
-            for &k in thin_cells.iter().take(want - thick_n).filter(|&&k| score[k] >= floor) {
-                class[k] = thick;
-            }
-        }
-        lo = hi;
-    }
-}
 
 #[cfg(test)]
 mod tests {
@@ -775,46 +723,6 @@ mod tests {
 
     fn geom(z: f32, g: f32) -> PixelGeom {
         PixelGeom { z_deg: z, gamma_deg: g }
-    }
-
-    /// Far cloudy cells are promoted, highest score first, until their band's thick share matches
-    /// the near field's; cells under the floor, clear cells and near cells stay as they were.
-    #[test]
-    fn far_thickness_matches_the_near_share() {
-        let (clear, thin, thick) = (Class::Clear as u8, Class::Thin as u8, Class::Thick as u8);
-        // 400 near cloudy cells, 3 in 4 thick; 100 far cloudy cells (zenith 77°), all thin, scores
-        // 0.50–0.99; 50 far clear cells.
-        let mut class = vec![];
-        let mut score = vec![];
-        let mut z = vec![];
-        for k in 0..400 {
-            class.push(if k % 4 == 0 { thin } else { thick });
-            score.push(0.9);
-            z.push(30.0);
-        }
-        for k in 0..100 {
-            class.push(thin);
-            score.push(0.5 + 0.0049 * k as f32);
-            z.push(77.0);
-        }
-        for _ in 0..50 {
-            class.push(clear);
-            score.push(0.1);
-            z.push(77.0);
-        }
-        let before = class.clone();
-        promote_far_cells(&mut class, &score, &z, 90.0, 0.0);
-        assert_eq!(class, before, "90° is off");
-        promote_far_cells(&mut class, &score, &z, 70.0, 0.0);
-        let far: Vec<u8> = class[400..500].to_vec();
-        assert_eq!(far.iter().filter(|c| **c == thick).count(), 75);
-        assert!(far[..25].iter().all(|c| *c == thin) && far[25..].iter().all(|c| *c == thick), "highest scores first");
-        assert_eq!(&class[..400], &before[..400]);
-        assert!(class[500..].iter().all(|c| *c == clear));
-        // A floor above most far scores leaves those thin.
-        let mut floored = before.clone();
-        promote_far_cells(&mut floored, &score, &z, 70.0, 0.9);
-        assert_eq!(floored[400..500].iter().filter(|c| **c == thick).count(), 100 - 82);
     }
 
     #[test]
