@@ -19,7 +19,9 @@
 //! against a true 39 %). Frames with little cloud near the zenith, with much thin cloud there (a
 //! veil over cumulus mixes two layers in the far scores), or whose far bands show no loss, are left
 //! as they were; so are frames after one in which motion tracked two layers (the engine's
-//! `MapStage`).
+//! `MapStage`). Within a frame, a band is neither measured nor lifted when its cloud cover is unlike
+//! the near field's (`MAX_SHARE_GAP`) or beyond 85°, and only samples judged against a learned
+//! clear-sky library take part (the callers' `plain`).
 use crate::segment::Class;
 
 // The far field's thickness, first by a frame's measured loss of contrast (below), and, off by
@@ -38,6 +40,11 @@ const MIN_NEAR_CLOUDY_SHARE: f32 = 0.10;
 /// Largest share of thin cloud among the near field's cloud for a measurement: a field with much
 /// thin cloud overhead may be a veil over cumulus, whose far scores mix two layers (own choice).
 const MAX_NEAR_THIN_SHARE: f32 = 0.25;
+/// Largest gap between a far band's cloudy share and the near field's for the band to be measured
+/// and lifted: the measurement takes the cloud field as alike across the sky, and a band whose
+/// cover departs that far from it is cloud of another kind, or sky the reference does not know
+/// (own choice).
+const MAX_SHARE_GAP: f32 = 0.25;
 /// Largest lift of a far score (the loss is never taken as below 1 / this).
 const MAX_LIFT: f32 = 4.0;
 
@@ -50,7 +57,8 @@ pub struct ContrastLoss {
     pub m0: f32,
     /// The near field's clear-sky level (score at the middle of its clear samples).
     pub clear_near: f32,
-    /// Each far band's clear-sky level, from [`NEAR_ZENITH_DEG`] in steps of 5° (NaN: not measured).
+    /// Each far band's clear-sky level, from [`NEAR_ZENITH_DEG`] in steps of 5° to 85° (NaN: not
+    /// measured, and not lifted).
     pub clear_band: Vec<f32>,
 }
 
@@ -83,9 +91,15 @@ impl ContrastLoss {
     }
 
     /// A far sample's score as it would read overhead: its departure above its band's clear sky,
-    /// lifted by the lost contrast (a score at or below the band's clear sky is left as it is).
+    /// lifted by the lost contrast. A score at or below the band's clear sky, and one in a band that
+    /// was not measured (too few samples, cover unlike the near field's, or beyond 85°), is left as
+    /// it is.
     pub fn lift(&self, score: f32, z_deg: f32) -> f32 {
         if z_deg <= NEAR_ZENITH_DEG {
+            return score;
+        }
+        let band = ((z_deg - NEAR_ZENITH_DEG) / BAND_DEG) as usize;
+        if !self.clear_band.get(band).is_some_and(|c| c.is_finite()) {
             return score;
         }
         let clear = self.clear_at(z_deg);
@@ -104,8 +118,9 @@ pub struct Samples<'a> {
     pub class: &'a [u8],
     /// Zenith per sample \[°\].
     pub z_deg: &'a [f32],
-    /// Whether the sample was judged by its ratio alone (plain sky outside the glare): only those
-    /// are measured and corrected.
+    /// Whether the sample was judged by its ratio alone (plain sky outside the glare) against a
+    /// learned clear-sky reference: only those are measured and corrected (against the parametric
+    /// default the far field's clear sky is not known well enough to measure a loss from).
     pub plain: &'a dyn Fn(usize) -> bool,
 }
 
@@ -125,14 +140,15 @@ pub fn correct(score: &[f32], z_deg: &[f32], plain: &dyn Fn(usize) -> bool, clas
 }
 
 /// Measure the frame's contrast loss (the near field's clear and cloud levels against each far
-/// band's); `None` when the frame cannot say (too little cloud near
-/// the zenith, too few far samples) or shows none.
+/// band's); `None` when the frame cannot say (too little cloud near the zenith, much thin cloud
+/// there, no far band with enough samples and a cover like the near field's) or shows none.
 pub fn measure(s: &Samples) -> Option<ContrastLoss> {
     let judged = |k: usize| s.class[k] != Class::Unknown as u8 && (s.plain)(k) && s.score[k].is_finite();
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
     let (mut near, mut near_cloudy, mut near_thin, mut m_sum) = (Vec::new(), 0usize, 0usize, 0.0f64);
     let n_bands = ((LAST_BAND_END_DEG - NEAR_ZENITH_DEG) / BAND_DEG) as usize;
     let mut bands: Vec<Vec<f32>> = vec![Vec::new(); n_bands];
+    let mut band_cloudy = vec![0usize; n_bands];
     for k in (0..s.class.len()).filter(|&k| judged(k)) {
         let z = s.z_deg[k];
         if z < NEAR_ZENITH_DEG {
@@ -141,7 +157,9 @@ pub fn measure(s: &Samples) -> Option<ContrastLoss> {
             near_thin += (s.class[k] == Class::Thin as u8) as usize;
             m_sum += 1.0 / f64::from(z.to_radians().cos());
         } else if z < LAST_BAND_END_DEG {
-            bands[((z - NEAR_ZENITH_DEG) / BAND_DEG) as usize].push(s.score[k]);
+            let b = ((z - NEAR_ZENITH_DEG) / BAND_DEG) as usize;
+            bands[b].push(s.score[k]);
+            band_cloudy[b] += cloudy(s.class[k]) as usize;
         }
     }
     if near.len() < MIN_SAMPLES {
@@ -163,7 +181,7 @@ pub fn measure(s: &Samples) -> Option<ContrastLoss> {
     let (mut sxy, mut sxx) = (0.0f64, 0.0f64);
     let mut clear_band = vec![f32::NAN; bands.len()];
     for (b, v) in bands.iter_mut().enumerate() {
-        if v.len() < MIN_SAMPLES {
+        if v.len() < MIN_SAMPLES || (band_cloudy[b] as f32 / v.len() as f32 - cloudy_share).abs() > MAX_SHARE_GAP {
             continue;
         }
         let z_mid = NEAR_ZENITH_DEG + BAND_DEG * (b as f32 + 0.5);
@@ -311,6 +329,30 @@ mod tests {
         let lossy_class = |thin_every: usize| -> Vec<u8> { (0..z.len()).map(|i| if i % 2 == 1 { 1 } else if i % thin_every == 0 { 2 } else { 3 }).collect() };
         assert!(measure(&Samples { score: &lossy, class: &lossy_class(1_000_000), z_deg: &z, plain: &plain }).is_some(), "all thick: measured");
         assert!(measure(&Samples { score: &lossy, class: &lossy_class(6), z_deg: &z, plain: &plain }).is_none(), "a third thin: left alone");
+    }
+
+    /// A far band whose cover is unlike the near field's (here: all cloud, against 40 % overhead)
+    /// is neither measured nor lifted; the other bands still are.
+    #[test]
+    fn a_band_unlike_the_near_field_is_left_alone() {
+        let (mut score, mut class, mut z) = (vec![], vec![], vec![]);
+        for i in 0..20_000 {
+            let zd = 85.0 * (i as f32 + 0.5) / 20_000.0;
+            let in_odd_band = (70.0..75.0).contains(&zd);
+            let cloud = in_odd_band || i % 5 < 2;
+            let kept = if zd < NEAR_ZENITH_DEG { 1.0 } else { (-0.12 * (1.0 / zd.to_radians().cos() - 1.15)).exp() };
+            let s = if cloud { kept } else { 0.05 };
+            score.push(s);
+            class.push(if cloud { 2 + u8::from(s >= 0.875) } else { 1 });
+            z.push(zd);
+        }
+        let plain = |_: usize| true;
+        let loss = measure(&Samples { score: &score, class: &class, z_deg: &z, plain: &plain }).expect("a loss");
+        assert!(loss.clear_band[4].is_nan(), "70–75° is unlike the near field");
+        assert!(loss.clear_band[5].is_finite(), "75–80° is measured");
+        assert_eq!(loss.lift(0.6, 72.0), 0.6);
+        assert!(loss.lift(0.6, 77.0) > 0.6);
+        assert_eq!(loss.lift(0.6, 87.0), 0.6, "beyond 85°: not lifted");
     }
 
     /// The kept share is 1 near the zenith and falls, bounded, toward the horizon.

@@ -304,6 +304,13 @@ impl FrameReference<'_> {
         if self.reference.weight[bin] > 0.5 { self.reference.lib[bin] } else { default_rb + self.offset }
     }
 
+    /// Whether a library bin holds a learned clear-sky reference (else the parametric default is
+    /// used there).
+    #[inline]
+    pub fn learned(&self, bin: usize) -> bool {
+        self.reference.weight[bin] > 0.5
+    }
+
     /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
     #[inline]
     pub fn outside_glare(&self, gamma_deg: f32) -> bool {
@@ -658,7 +665,7 @@ pub fn segment_image(
         (score[i], classes[i]) = (s, c);
     }
     if params.distant_contrast {
-        let plain = |i: usize| sky.plain[i] && fr.outside_glare(sky.gamma_deg[i]);
+        let plain = |i: usize| sky.plain[i] && fr.outside_glare(sky.gamma_deg[i]) && fr.learned(sky.bin[i] as usize);
         crate::distance::correct(&score, &geom.z_deg, &plain, &mut classes, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
