@@ -378,7 +378,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         }
     }
     if params.distant_contrast {
-        let plain = |k: usize| sky.plain[k] && fr.outside_glare(sky.gamma_deg[k]) && fr.learned(sky.bin[k] as usize);
+        let plain = |k: usize| fr.plain_and_learned(sky, k);
         crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);

@@ -98,8 +98,7 @@ impl ContrastLoss {
         if z_deg <= NEAR_ZENITH_DEG {
             return score;
         }
-        let band = ((z_deg - NEAR_ZENITH_DEG) / BAND_DEG) as usize;
-        if !self.clear_band.get(band).is_some_and(|c| c.is_finite()) {
+        if !self.clear_band.get(band_of(z_deg)).is_some_and(|c| c.is_finite()) {
             return score;
         }
         let clear = self.clear_at(z_deg);
@@ -124,11 +123,16 @@ pub struct Samples<'a> {
     pub plain: &'a dyn Fn(usize) -> bool,
 }
 
-/// Quantile `q` (0–1) of `v` (sorted in place).
-fn quantile(v: &mut [f32], q: f32) -> f32 {
+/// The scores of `v` at the cloud and clear levels (quantiles, nearest rank), sorting `v` once.
+fn levels(v: &mut [f32], cloud_level: f32, clear_level: f32) -> (f32, f32) {
     v.sort_unstable_by(f32::total_cmp);
-    let i = ((v.len() - 1) as f32 * q).round() as usize;
-    v[i]
+    let at = |q: f32| v[((v.len() - 1) as f32 * q).round() as usize];
+    (at(cloud_level), at(clear_level))
+}
+
+/// The far band (0 from [`NEAR_ZENITH_DEG`], in steps of 5°) holding zenith `z_deg` > the near field.
+fn band_of(z_deg: f32) -> usize {
+    ((z_deg - NEAR_ZENITH_DEG) / BAND_DEG) as usize
 }
 
 /// Measure the frame's contrast loss and lift the far samples' classes by it (see the module's
@@ -157,7 +161,7 @@ pub fn measure(s: &Samples) -> Option<ContrastLoss> {
             near_thin += (s.class[k] == Class::Thin as u8) as usize;
             m_sum += 1.0 / f64::from(z.to_radians().cos());
         } else if z < LAST_BAND_END_DEG {
-            let b = ((z - NEAR_ZENITH_DEG) / BAND_DEG) as usize;
+            let b = band_of(z);
             bands[b].push(s.score[k]);
             band_cloudy[b] += cloudy(s.class[k]) as usize;
         }
@@ -173,8 +177,7 @@ pub fn measure(s: &Samples) -> Option<ContrastLoss> {
     // the bottom).
     let (cloud_level, clear_level) = (1.0 - 0.5 * cloudy_share, 0.5 * (1.0 - cloudy_share));
     let m0 = (m_sum / near.len() as f64) as f32;
-    let q_near = quantile(&mut near, cloud_level);
-    let clear_near = quantile(&mut near, clear_level);
+    let (q_near, clear_near) = levels(&mut near, cloud_level, clear_level);
     if q_near - clear_near <= 0.0 {
         return None;
     }
@@ -186,7 +189,7 @@ pub fn measure(s: &Samples) -> Option<ContrastLoss> {
         }
         let z_mid = NEAR_ZENITH_DEG + BAND_DEG * (b as f32 + 0.5);
         let x = f64::from(1.0 / z_mid.to_radians().cos() - m0);
-        let (q, c) = (quantile(v, cloud_level), quantile(v, clear_level));
+        let (q, c) = levels(v, cloud_level, clear_level);
         clear_band[b] = c;
         let ratio = ((q - c) / (q_near - clear_near)).clamp(1.0 / MAX_LIFT, 1.0);
         let w = v.len() as f64;

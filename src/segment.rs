@@ -304,11 +304,12 @@ impl FrameReference<'_> {
         if self.reference.weight[bin] > 0.5 { self.reference.lib[bin] } else { default_rb + self.offset }
     }
 
-    /// Whether a library bin holds a learned clear-sky reference (else the parametric default is
-    /// used there).
+    /// Whether sample `k` of `sky` is judged by its ratio alone in this frame (plain sky outside the
+    /// glare) against a learned clear-sky reference (not the parametric default): the samples the
+    /// far field's contrast correction measures and lifts (`distance`).
     #[inline]
-    pub fn learned(&self, bin: usize) -> bool {
-        self.reference.weight[bin] > 0.5
+    pub fn plain_and_learned(&self, sky: &SkyGeometry, k: usize) -> bool {
+        sky.plain[k] && self.outside_glare(sky.gamma_deg[k]) && self.reference.weight[sky.bin[k] as usize] > 0.5
     }
 
     /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
@@ -665,7 +666,7 @@ pub fn segment_image(
         (score[i], classes[i]) = (s, c);
     }
     if params.distant_contrast {
-        let plain = |i: usize| sky.plain[i] && fr.outside_glare(sky.gamma_deg[i]) && fr.learned(sky.bin[i] as usize);
+        let plain = |i: usize| fr.plain_and_learned(&sky, i);
         crate::distance::correct(&score, &geom.z_deg, &plain, &mut classes, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
