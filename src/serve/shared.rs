@@ -30,6 +30,10 @@ pub(super) struct OpsShared {
     pub(super) modbus_feed: bool,
     pub(super) latency: ops::Histogram,
     pub(super) state: ops::HealthState,
+    /// Changes of state judged since the health timer last logged them, oldest first (previous,
+    /// new): a frame may change the state and the next frame change it back within one tick, and
+    /// each change is still logged.
+    pub(super) changes: Vec<(ops::HealthState, ops::HealthState)>,
     pub(super) options: ops::HealthOptions,
 }
 
@@ -43,6 +47,7 @@ impl Default for OpsShared {
             modbus_feed: false,
             latency: Default::default(),
             state: Default::default(),
+            changes: Vec::new(),
             options: Default::default(),
         }
     }
@@ -74,6 +79,13 @@ impl Shared {
         if heartbeat {
             h.heartbeat += 1;
         }
+        if prev != state {
+            // Bounded, should the timer not run: the oldest changes go first.
+            if self.ops.changes.len() >= 64 {
+                self.ops.changes.remove(0);
+            }
+            self.ops.changes.push((prev, state));
+        }
         (prev != state).then_some(prev)
     }
 
@@ -100,30 +112,29 @@ impl Shared {
 /// The health timer: judge the health every [`ops::HEALTH_TICK_MS`] ms, log and send each change,
 /// and send the heartbeat every 10 s. The Modbus registers' data-valid flag follows the judged state.
 pub(super) fn health_loop(shared: Arc<Mutex<Shared>>, tx: broadcast::Sender<String>, stop: Arc<AtomicBool>, log_json: bool, registers: Arc<super::modbus::Feed>) {
-    // The state last logged and sent (the engine also judges the health when a frame arrives).
-    let mut announced = shared.lock().map(|s| s.ops.state).unwrap_or_default();
     while !stop.load(Ordering::SeqCst) {
         std::thread::sleep(std::time::Duration::from_millis(ops::HEALTH_TICK_MS));
         let Ok(mut s) = shared.lock() else { return };
         s.refresh_health(true);
         registers.set_health_valid(s.health.data_valid);
-        let changed = (s.ops.state != announced).then_some(announced);
-        announced = s.ops.state;
+        // Every change judged since the last tick (here or by the engine when a frame arrived).
+        let changes = std::mem::take(&mut s.ops.changes);
         let h = &s.health;
         let event = serde_json::json!({"type": "health", "state": h.health_state, "data_valid": h.data_valid, "heartbeat": h.heartbeat,
             "frame_age_s": h.frame_age_s, "measurement_age_s": h.measurement_age_s});
-        if let Some(prev) = changed {
+        for (prev, state) in &changes {
             let f = |v: Option<f64>| v.map(|x| format!("{x:.1}")).unwrap_or_default();
             eprintln!(
                 "{}",
                 ops::log_line(
-                    &[("event", "health".into()), ("state", h.health_state.clone()), ("previous", prev.name().into()), ("data_valid", h.data_valid.to_string()),
+                    &[("event", "health".into()), ("state", state.name().into()), ("previous", prev.name().into()), ("data_valid", state.data_valid().to_string()),
                       ("frame_age_s", f(h.frame_age_s)), ("measurement_age_s", f(h.measurement_age_s)), ("heartbeat", h.heartbeat.to_string())],
                     log_json
                 )
             );
         }
-        if changed.is_some() || h.heartbeat.is_multiple_of(10_000 / ops::HEALTH_TICK_MS) {
+        let changed = !changes.is_empty();
+        if changed || h.heartbeat.is_multiple_of(10_000 / ops::HEALTH_TICK_MS) {
             let _ = tx.send(event.to_string());
         }
     }
