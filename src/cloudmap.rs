@@ -361,7 +361,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
     let mut class = vec![0u8; n];
     let mut in_view = vec![false; n];
     let mut blue = vec![0u8; n];
-    let (mut cloudy_blue, mut cloudy_cells) = (0u64, 0u64);
+    let mut dark = vec![false; if fr.exposure.is_some() { n } else { 0 }];
     for k in 0..n {
         let p = lut.pixel[k];
         if p == NO_PIXEL {
@@ -372,9 +372,8 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         score[k] = s;
         class[k] = c;
         blue[k] = rgb[2];
-        if c == Class::Thin as u8 || c == Class::Thick as u8 {
-            cloudy_blue += rgb[2] as u64;
-            cloudy_cells += 1;
+        if let Some(d) = dark.get_mut(k) {
+            *d = fr.darker_than_clear(sky, k, rgb);
         }
     }
     if params.distant_contrast {
@@ -382,8 +381,14 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
         crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);
-    let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
+    crate::brightness::promote_dark(&mut class, &lut.z_deg, &dark);
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
+    let (mut cloudy_blue, mut cloudy_cells) = (0u64, 0u64);
+    for k in (0..n).filter(|&k| cloudy(class[k])) {
+        cloudy_blue += blue[k] as u64;
+        cloudy_cells += 1;
+    }
+    let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     let brightness = (0..n).map(|k| if cloudy(class[k]) { (blue[k] as f32 - mean) / 255.0 } else { 0.0 }).collect();
     CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness }
 }

@@ -50,6 +50,7 @@ macro_rules! say {
 
 pub mod batch;
 pub mod bench;
+pub mod brightness;
 pub mod calibrate;
 pub mod camera;
 pub mod cbh;

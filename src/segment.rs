@@ -127,6 +127,14 @@ pub struct SegmentParams {
     /// thresholds apply (`distance`: haze between a distant cloud and the camera pulls its colour
     /// toward the clear sky's, so distant cumulus reads thin or clear).
     pub distant_contrast: bool,
+    /// A sample darker than the clear sky would be at its place (the learned library's brightness at
+    /// the frame's exposure) by more than this share is thick cloud (`brightness`); 0 turns the test
+    /// off. Only with a learned clear-sky library, outside the sun's glare.
+    pub dark_cloud_margin: f64,
+    /// The dark-cloud test applies only where the clear sky reads at least this bright (8-bit
+    /// largest channel, at the frame's exposure): near the sun and the horizon, where the red/blue
+    /// ratio of clear sky nears a cloud's.
+    pub dark_cloud_min_level: f64,
     /// Cloud fraction is counted within this zenith angle \[°\].
     pub cloud_fraction_zenith_deg: f64,
     /// Frames with a cloud fraction at most this update the learned clear-sky library.
@@ -162,6 +170,9 @@ impl Default for SegmentParams {
             max_zenith_deg: 90.0,
             far_thickness_from_zenith_deg: 90.0,
             distant_contrast: true,
+            // First guesses (a cloud a good eighth darker than bright clear sky), not tuned.
+            dark_cloud_margin: 0.12,
+            dark_cloud_min_level: 200.0,
             cloud_fraction_zenith_deg: 70.0,
             library_max_cloud_fraction: 0.02,
             library_rate: 0.2,
@@ -194,6 +205,8 @@ impl SegmentParams {
         check_range(file, &f("glare_ring_share"), self.glare_ring_share, 0.0, 1.0)?;
         check_range(file, &f("max_zenith_deg"), self.max_zenith_deg, 10.0, 100.0)?;
         check_range(file, &f("far_thickness_from_zenith_deg"), self.far_thickness_from_zenith_deg, 30.0, 90.0)?;
+        check_range(file, &f("dark_cloud_margin"), self.dark_cloud_margin, 0.0, 0.9)?;
+        check_range(file, &f("dark_cloud_min_level"), self.dark_cloud_min_level, 0.0, 255.0)?;
         check_range(file, &f("cloud_fraction_zenith_deg"), self.cloud_fraction_zenith_deg, 5.0, 90.0)?;
         check_range(file, &f("library_max_cloud_fraction"), self.library_max_cloud_fraction, 0.0, 1.0)?;
         check_range(file, &f("library_rate"), self.library_rate, 0.0, 1.0)
@@ -241,13 +254,16 @@ pub struct Reference {
     lib: Vec<f32>,
     /// Library weight per bin (0 = no data).
     weight: Vec<f32>,
+    /// Library mean clear-sky brightness per bin (largest channel; 0 = not learned): `brightness`.
+    bright: Vec<f32>,
     /// Frames that updated the library.
     pub library_frames: usize,
 }
 
 impl Default for Reference {
     fn default() -> Self {
-        Self { lib: vec![0.0; LIB_Z_BINS * LIB_G_BINS], weight: vec![0.0; LIB_Z_BINS * LIB_G_BINS], library_frames: 0 }
+        let n = LIB_Z_BINS * LIB_G_BINS;
+        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], library_frames: 0 }
     }
 }
 
@@ -283,6 +299,9 @@ pub struct FrameReference<'a> {
     pub glare_extent_deg: f32,
     /// This frame's glare zone \[°\]: the configured one, or the bloom's extent when wider.
     pub glare_zone_deg: f32,
+    /// The frame's exposure against the library's clear-sky brightness (`brightness::ExposureMeter`);
+    /// `None` when it could not be measured or the dark-cloud test is off.
+    pub exposure: Option<f32>,
 }
 
 impl FrameReference<'_> {
@@ -310,6 +329,18 @@ impl FrameReference<'_> {
     #[inline]
     pub fn plain_and_learned(&self, sky: &SkyGeometry, k: usize) -> bool {
         sky.plain[k] && self.outside_glare(sky.gamma_deg[k]) && self.reference.weight[sky.bin[k] as usize] > 0.5
+    }
+
+    /// Whether sample `k` of `sky`, reading `rgb`, is darker than the clear sky would be there
+    /// (`brightness::darker_than_clear`): only plain samples outside the glare, with a learned
+    /// brightness, in a frame whose exposure was measured.
+    #[inline]
+    pub fn darker_than_clear(&self, sky: &SkyGeometry, k: usize, rgb: [u8; 3]) -> bool {
+        let Some(e) = self.exposure else { return false };
+        let p = self.params;
+        sky.plain[k]
+            && self.outside_glare(sky.gamma_deg[k])
+            && crate::brightness::darker_than_clear(rgb, self.reference.bright[sky.bin[k] as usize], e, p.dark_cloud_margin as f32, p.dark_cloud_min_level as f32)
     }
 
     /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
@@ -399,19 +430,21 @@ impl FrameReference<'_> {
 }
 
 impl Reference {
-    /// The library as CSV: one row per bin with data (`zenith_from_deg,gamma_from_deg,rb,weight`).
+    /// The library as CSV: one row per bin with data (`zenith_from_deg,gamma_from_deg,rb,weight,brightness`;
+    /// brightness 0 where it was not learned).
     pub fn to_csv(&self) -> String {
-        let mut out = crate::io::CsvTable::with_header_line("zenith_from_deg,gamma_from_deg,rb,weight");
+        let mut out = crate::io::CsvTable::with_header_line("zenith_from_deg,gamma_from_deg,rb,weight,brightness");
         for i in 0..self.lib.len() {
             if self.weight[i] > 0.5 {
                 let (zi, gi) = (i / LIB_G_BINS, i % LIB_G_BINS);
-                out.row([(zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string(), format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i])]);
+                out.row([(zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string(), format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i]), format!("{:.2}", self.bright[i])]);
             }
         }
         out.into_string()
     }
 
-    /// Read a library written by [`Reference::to_csv`].
+    /// Read a library written by [`Reference::to_csv`] (a file without the brightness column, from
+    /// an earlier version, reads with no brightness learned).
     ///
     /// # Errors
     /// A message naming the line and what was expected.
@@ -435,6 +468,12 @@ impl Reference {
             let k = lib_index(z + 0.5 * LIB_BIN_DEG, g + 0.5 * LIB_BIN_DEG);
             r.lib[k] = rb;
             r.weight[k] = w.min(100.0);
+            if let Some(field) = rec.get(4).filter(|f| !f.trim().is_empty()) {
+                match field.trim().parse::<f32>() {
+                    Ok(v) if (0.0..=255.0).contains(&v) => r.bright[k] = v,
+                    _ => return Err(format!("line {line_no}: brightness must be a number from 0 to 255, got {field:?}")),
+                }
+            }
         }
         r.library_frames = 1;
         Ok(r)
@@ -446,25 +485,28 @@ impl Reference {
     where
         I: Iterator<Item = ([u8; 3], PixelGeom)>,
     {
-        let mut sum = vec![0f64; LIB_Z_BINS * LIB_G_BINS];
-        let mut cnt = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
-        let mut frames_in = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
+        let nb = LIB_Z_BINS * LIB_G_BINS;
+        let (mut sum, mut sum_v) = (vec![0f64; nb], vec![0f64; nb]);
+        let mut cnt = vec![0u32; nb];
+        let mut frames_in = vec![0u32; nb];
         let mut n_frames = 0;
         for sample in frames {
             n_frames += 1;
-            let mut fsum = vec![0f64; LIB_Z_BINS * LIB_G_BINS];
-            let mut fcnt = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
+            let (mut fsum, mut fsum_v) = (vec![0f64; nb], vec![0f64; nb]);
+            let mut fcnt = vec![0u32; nb];
             for (rgb, g) in sample {
                 if g.gamma_deg < params.sun_exclusion_deg as f32 || rgb.iter().any(|c| *c >= params.saturation_level) || rgb[2] < 10 {
                     continue;
                 }
                 let i = lib_index(g.z_deg, g.gamma_deg);
                 fsum[i] += rgb[0] as f64 / rgb[2] as f64;
+                fsum_v[i] += f64::from(crate::brightness::reading(rgb));
                 fcnt[i] += 1;
             }
             for i in 0..fsum.len() {
                 if fcnt[i] >= 3 {
                     sum[i] += fsum[i] / fcnt[i] as f64;
+                    sum_v[i] += fsum_v[i] / fcnt[i] as f64;
                     cnt[i] += 1;
                     frames_in[i] += 1;
                 }
@@ -474,6 +516,7 @@ impl Reference {
         for i in 0..sum.len() {
             if frames_in[i] >= min_frames.max(1) {
                 r.lib[i] = (sum[i] / cnt[i] as f64) as f32;
+                r.bright[i] = (sum_v[i] / cnt[i] as f64) as f32;
                 r.weight[i] = (cnt[i] as f32).min(100.0);
             }
         }
@@ -497,6 +540,8 @@ impl Reference {
         let mut n = 0usize;
         let (mut ring_n, mut ring_clipped) = ([0u32; GLARE_RINGS], [0u32; GLARE_RINGS]);
         let glare_zone = GLARE_RINGS as f32;
+        let mut meter = crate::brightness::ExposureMeter::default();
+        let metering = params.dark_cloud_margin > 0.0;
         for (rgb, g, default_rb) in sample {
             if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
                 continue;
@@ -513,6 +558,16 @@ impl Reference {
             let dd = rb - default_rb;
             if dd < params.offset_band as f32 {
                 d.push(dd);
+            }
+            if metering && g.gamma_deg >= params.glare_zone_deg as f32 {
+                // Clear by a margin against the learned ratio: the frame's clear sky, for its exposure.
+                let bin = lib_index(g.z_deg, g.gamma_deg);
+                if self.weight[bin] > 0.5 && self.bright[bin] > 0.0 {
+                    let r = self.lib[bin];
+                    if rb < r + 0.5 * params.thin_score as f32 * (params.cloud_rb as f32 - r).max(0.03) {
+                        meter.add(rgb, self.bright[bin], params.saturation_level);
+                    }
+                }
             }
         }
         let offset = if n > 0 && d.len() as f64 >= params.offset_min_share * n as f64 && !d.is_empty() {
@@ -534,7 +589,8 @@ impl Reference {
         let first = (params.sun_exclusion_deg.ceil() as usize).min(GLARE_RINGS - 1);
         let glare_extent_deg = (first..GLARE_RINGS).find(|&r| ring_n[r] >= GLARE_RING_MIN_SAMPLES && !glare_ring[r]).unwrap_or(first) as f32;
         let glare_zone_deg = (params.glare_zone_deg as f32).max(glare_extent_deg);
-        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg }
+        let exposure = if metering { meter.exposure() } else { None };
+        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg, exposure }
     }
 
     /// Learn from a frame only when it is judged clear: its cloud fraction at most
@@ -551,8 +607,9 @@ impl Reference {
     /// Update the library with a frame's clear pixels (call only for frames judged clear; see
     /// [`Reference::learn_if_clear`]).
     pub fn learn(&mut self, params: &SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) {
-        let mut sum = vec![0f64; LIB_Z_BINS * LIB_G_BINS];
-        let mut cnt = vec![0u32; LIB_Z_BINS * LIB_G_BINS];
+        let nb = LIB_Z_BINS * LIB_G_BINS;
+        let (mut sum, mut sum_v) = (vec![0f64; nb], vec![0f64; nb]);
+        let (mut cnt, mut cnt_v) = (vec![0u32; nb], vec![0u32; nb]);
         for (rgb, g) in sample {
             if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
                 continue;
@@ -560,6 +617,11 @@ impl Reference {
             let i = lib_index(g.z_deg, g.gamma_deg);
             sum[i] += rgb[0] as f64 / (rgb[2] as f64).max(1.0);
             cnt[i] += 1;
+            // Brightness from unclipped pixels only, as from a clear day (`from_clear_samples`).
+            if rgb.iter().all(|c| *c < params.saturation_level) {
+                sum_v[i] += f64::from(crate::brightness::reading(rgb));
+                cnt_v[i] += 1;
+            }
         }
         let rate = params.library_rate as f32;
         for i in 0..sum.len() {
@@ -571,6 +633,14 @@ impl Reference {
                     self.lib[i] += rate * (m - self.lib[i]);
                 }
                 self.weight[i] = (self.weight[i] + 1.0).min(100.0);
+            }
+            if cnt_v[i] >= 3 {
+                let v = (sum_v[i] / cnt_v[i] as f64) as f32;
+                if self.bright[i] == 0.0 {
+                    self.bright[i] = v;
+                } else {
+                    self.bright[i] += rate * (v - self.bright[i]);
+                }
             }
         }
         self.library_frames += 1;
@@ -661,15 +731,20 @@ pub fn segment_image(
     let fr = reference.for_frame_with(params, sample);
     let mut classes = vec![0u8; w * h];
     let mut score = vec![f32::NAN; w * h];
+    let mut dark = vec![false; if fr.exposure.is_some() { w * h } else { 0 }];
     for i in (0..w * h).filter(|&i| seen(i)) {
-        let (_, s, c) = fr.classify_sample(&sky, i, geom.z_deg[i], || px(i), || px(i));
+        let (rgb, s, c) = fr.classify_sample(&sky, i, geom.z_deg[i], || px(i), || px(i));
         (score[i], classes[i]) = (s, c);
+        if let Some(d) = dark.get_mut(i) {
+            *d = fr.darker_than_clear(&sky, i, rgb);
+        }
     }
     if params.distant_contrast {
         let plain = |i: usize| fr.plain_and_learned(&sky, i);
         crate::distance::correct(&score, &geom.z_deg, &plain, &mut classes, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
+    crate::brightness::promote_dark(&mut classes, &geom.z_deg, &dark);
     let (mut cloudy, mut counted) = (0usize, 0usize);
     for i in (0..w * h).filter(|&i| seen(i) && geom.z_deg[i] < params.cloud_fraction_zenith_deg as f32) {
         if classes[i] != Class::Unknown as u8 {
@@ -744,7 +819,7 @@ mod tests {
     fn blue_is_clear_white_is_thick_grey_blue_is_thin() {
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
         assert_eq!(fr.classify([70, 110, 200], geom(30.0, 90.0)).1, Class::Clear);
         assert_eq!(fr.classify([230, 232, 240], geom(30.0, 90.0)).1, Class::Thick);
         assert_eq!(fr.classify([160, 175, 210], geom(30.0, 90.0)).1, Class::Thin);
@@ -755,7 +830,7 @@ mod tests {
         // R/B 0.80 is cloud far from the sun but clear sky 5° from it (default reference there: 0.81).
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
         assert_eq!(fr.classify([199, 219, 248], geom(40.0, 5.0)).1, Class::Clear);
         assert_ne!(fr.classify([199, 219, 248], geom(40.0, 100.0)).1, Class::Clear);
     }
@@ -764,7 +839,7 @@ mod tests {
     fn saturated_sun_is_unknown_and_beyond_zenith_limit_too() {
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
         assert_eq!(fr.classify([255, 255, 255], geom(30.0, 1.0)).1, Class::Unknown);
         assert_eq!(fr.classify([70, 110, 200], geom(91.0, 90.0)).1, Class::Unknown);
     }
@@ -800,7 +875,7 @@ mod tests {
         assert!((p.thick_at(90.0) - (p.thick_score - 0.2) as f32).abs() < 1e-6);
         // (60/90)⁴ = 0.1975: a score of 0.84 is thick at 60° (threshold 0.835), thin at the zenith.
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
         let reference_rb = p.default_reference(60.0, 90.0);
         let rb = reference_rb + 0.84 * (p.cloud_rb as f32 - reference_rb);
         let rgb = [(rb * 200.0).round() as u8, 200, 200];
@@ -816,7 +891,7 @@ mod tests {
         let mut r = Reference::default();
         let sample = (0..50).map(|_| ([150u8, 170, 200], geom(31.0, 91.0)));
         r.learn(&p, sample);
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32 };
+        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
         assert!((fr.at(geom(31.0, 91.0)) - 0.75).abs() < 1e-6);
         assert_eq!(fr.classify([150, 170, 200], geom(31.0, 91.0)).1, Class::Clear);
     }
