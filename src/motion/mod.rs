@@ -486,6 +486,15 @@ impl MotionFilter {
         self.accepted_run
     }
 
+    /// The map's plane moved by `ratio` (new height over old): every speed on the map scales by it,
+    /// the estimate and its variance with it.
+    pub fn rescale(&mut self, ratio: f64) {
+        if let Some((v, p)) = &mut self.state {
+            *v = [v[0] * ratio, v[1] * ratio];
+            *p *= ratio * ratio;
+        }
+    }
+
     /// Advance by `dt_s` and fold in a measured layer (if any).
     pub fn update(&mut self, m: Option<&LayerMotion>, dt_s: f64, params: &MotionParams) -> Option<Motion> {
         let meas = m.map(|l| (l.v_mps, l.spread_mps, l.blocks));
@@ -568,6 +577,14 @@ impl LayerTracker {
     /// put first last time (0 before any motion is known).
     pub fn primary_accepted_run(&self) -> usize {
         if self.active(self.primary).is_some() { self.slots[self.primary].filter.accepted_run() } else { 0 }
+    }
+
+    /// The map's plane moved by `ratio` (new height over old): each track's motion scales by it
+    /// ([`MotionFilter::rescale`]); their order, opacity and counts stay.
+    pub fn rescale(&mut self, ratio: f64) {
+        for s in &mut self.slots {
+            s.filter.rescale(ratio);
+        }
     }
 
     /// Filtered motions to search around, the track with the most blocks first.
