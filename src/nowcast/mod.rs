@@ -527,18 +527,16 @@ impl Nowcaster {
 
     /// The step as a sequence of stages, each a method below with typed output: admission (size,
     /// time order, sun), the map (with its exposure check and clear-sky reference learning), motion,
-    /// the forecast (tuning, central, ensemble and bands), then ramps and the alarm.
+    /// the forecast (tuning, central, ensemble and bands), then ramps and the alarm. `configured` is
+    /// the configured base or the series (the prior), `cbh` the map's plane ([`plane`]).
     fn step_inner(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
         let t0 = Clock::now();
         let cam = &self.site.camera;
         let whole = (cam.width_px, cam.height_px);
         let reduced_px = (self.reduced.camera.width_px, self.reduced.camera.height_px);
         let (sun, reduced) = self.frame_qc.admit(frame, whole, reduced_px, &self.site.observer(), self.site.file.qc.min_sun_elevation_deg)?;
-        // The configured base or the series (the prior), and the map's plane: the same until the
-        // plane follows a trustworthy estimate ([`plane`]).
-        let configured = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
+        let (configured, cam_z) = (self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?, self.site.file.camera.position_m[2]);
         let cbh = self.plane.height_m(configured);
-        let cam_z = self.site.file.camera.position_m[2];
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let lut = self.map_stage.lut(cam, obstruction, &self.site.file.map, (cbh - cam_z).max(10.0));
         self.frame_qc.check_exposure(&frame.image, &lut, &self.site.file.qc)?;
