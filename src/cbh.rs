@@ -89,7 +89,7 @@ pub const CEILOMETER_REL_SIGMA: f64 = 0.05;
 pub const AGE_REL_SIGMA_PER_S: f64 = 0.1 / 600.0;
 
 /// `[clouds]`: a fixed cloud base height or a series.
-#[derive(Debug, Clone, Default, Serialize, Deserialize)]
+#[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct CloudSection {
     /// Fixed cloud base height above the camera \[m\].
@@ -114,6 +114,25 @@ pub struct CloudSection {
     /// right at any assumed height (only the speed scales with the height).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub layers: Vec<LayerPrior>,
+    /// Move the cloud map's plane to the estimated base once the estimate (stereo or shadow
+    /// timing) is trustworthy (default true; see `nowcast::plane`). Without a ceilometer series
+    /// only: with one the plane stays on the series. Written only when false.
+    #[serde(default = "yes", skip_serializing_if = "is_yes")]
+    pub map_follows_estimate: bool,
+}
+
+fn yes() -> bool {
+    true
+}
+
+fn is_yes(v: &bool) -> bool {
+    *v
+}
+
+impl Default for CloudSection {
+    fn default() -> Self {
+        CloudSection { base_height_m: None, base_height_csv: None, base_height_rel_sigma: None, shadow_timing: false, layers: vec![], map_follows_estimate: true }
+    }
 }
 
 /// A known cloud layer (`[[clouds.layers]]`).
@@ -541,6 +560,8 @@ pub struct CbhState {
     prior_rel_sigma: f64,
     /// `[[clouds.layers]]`.
     layer_priors: Vec<LayerPrior>,
+    /// Estimates made since the start: stereo fits taken and shadow-timing fits.
+    estimates_made: usize,
 }
 
 /// A pyranometer's column in the measurements and its position (east, north) \[m\].
@@ -554,8 +575,11 @@ pub struct CbhFrame<'a> {
     pub map: &'a crate::cloudmap::CloudMap,
     /// Transmittance settings.
     pub params: &'a crate::forecast::IrradianceParams,
-    /// Height of the map's plane \[m\] (configured value or ceilometer series).
+    /// Height of the map's plane \[m\] (the configured value or ceilometer series, or where the
+    /// plane followed the estimate to).
     pub map_cbh_m: f64,
+    /// The configured value or the ceilometer series \[m\]: the prior.
+    pub prior_cbh_m: f64,
     /// Whether `map_cbh_m` comes from a ceilometer series.
     pub from_series: bool,
     /// Motion of the first layer on the map \[m/s\], if known.
@@ -585,6 +609,23 @@ impl CbhState {
             stereo: vec![],
             prior_rel_sigma: clouds.base_height_rel_sigma.unwrap_or(CONFIGURED_REL_SIGMA),
             layer_priors: clouds.layers.clone(),
+            estimates_made: 0,
+        }
+    }
+
+    /// Estimates made since the start (stereo fits taken, shadow-timing fits): the cloud map's
+    /// plane follows the estimate only after a few.
+    pub fn estimates_made(&self) -> usize {
+        self.estimates_made
+    }
+
+    /// The cloud map's plane moved by `ratio` (new height over old): the motions on the map kept
+    /// with the stereo estimates scale by it, so that they still match their layers.
+    pub fn rescale_map_motion(&mut self, ratio: f64) {
+        for e in &mut self.stereo {
+            if let Some(v) = &mut e.v_map_mps {
+                *v = [v[0] * ratio, v[1] * ratio];
+            }
         }
     }
 
@@ -608,6 +649,7 @@ impl CbhState {
     /// whose motion matches its own ([`STEREO_MATCH_SHARE`]), so the forecast's layers may change
     /// order between runs.
     pub fn observe_stereo_layer(&mut self, v_map_mps: Option<[f64; 2]>, time: DateTime<Utc>, fit: &crate::stereo::StereoFit) {
+        self.estimates_made += 1;
         let same = |e: &StereoEntry| match (e.v_map_mps, v_map_mps) {
             (Some(a), Some(b)) => dist(a, b) <= Self::gate(b),
             (a, b) => a.is_some() == b.is_some(),
@@ -652,10 +694,10 @@ impl CbhState {
 
     /// The second cloud layer's base at `time`, that layer moving at `v_map_mps` on the map and the
     /// first at `first_v_map_mps`: its prior (a known layer in its direction, else the first
-    /// layer's configured base `map_cbh_m` with [`UPPER_LAYER_PRIOR_REL_SIGMA`]) combined with its
+    /// layer's configured base `prior_cbh_m` with [`UPPER_LAYER_PRIOR_REL_SIGMA`]) combined with its
     /// stereo estimate, aged. Without either, exactly the prior.
-    pub fn upper(&self, time: DateTime<Utc>, map_cbh_m: f64, v_map_mps: [f64; 2], first_v_map_mps: [f64; 2]) -> CbhEstimate {
-        let (h, rel) = self.prior_for(Some(v_map_mps), (map_cbh_m, UPPER_LAYER_PRIOR_REL_SIGMA));
+    pub fn upper(&self, time: DateTime<Utc>, prior_cbh_m: f64, v_map_mps: [f64; 2], first_v_map_mps: [f64; 2]) -> CbhEstimate {
+        let (h, rel) = self.prior_for(Some(v_map_mps), (prior_cbh_m, UPPER_LAYER_PRIOR_REL_SIGMA));
         let prior = CbhEstimate { cbh_m: h, sigma_m: h * rel, source: CbhSource::Configured };
         let Some(e) = self.stereo_for(Some(v_map_mps), Some(first_v_map_mps)) else { return prior };
         let inputs = [
@@ -682,13 +724,14 @@ impl CbhState {
             st.observe(f.time, &tm, f.params.beams(), f.map.grid, f.map_cbh_m, f.camera_m, v, f.params.blur_min_m, &pos, &rs);
             match st.estimate() {
                 Ok(fit) => {
+                    self.estimates_made += 1;
                     self.last_fit = Some((f.time, fit));
                     self.last_no_fit = None;
                 }
                 Err(e) => self.last_no_fit = Some(e),
             }
         }
-        let (prior_m, prior_rel) = if f.from_series { (f.map_cbh_m, CEILOMETER_REL_SIGMA) } else { self.prior_for(f.v_map_mps, (f.map_cbh_m, self.prior_rel_sigma)) };
+        let (prior_m, prior_rel) = if f.from_series { (f.prior_cbh_m, CEILOMETER_REL_SIGMA) } else { self.prior_for(f.v_map_mps, (f.prior_cbh_m, self.prior_rel_sigma)) };
         let mut inputs = vec![CbhInput {
             cbh_m: prior_m,
             rel_sigma: prior_rel,
@@ -745,6 +788,7 @@ mod tests {
             map: &map,
             params: &params,
             map_cbh_m: 2000.0,
+            prior_cbh_m: 2000.0,
             from_series: false,
             v_map_mps: None,
             v_other_mps: None,

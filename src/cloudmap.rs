@@ -209,6 +209,12 @@ pub struct LutCache {
 }
 
 impl LutCache {
+    /// The grid [`LutCache::get`] gives a table for at a plane height above the camera: the height
+    /// rounded to the bucket.
+    pub fn grid_for(params: &MapParams, height_m: f64) -> Grid {
+        Grid::new(params, (height_m / params.height_bucket_m).round() * params.height_bucket_m)
+    }
+
     /// The table for a plane height above the camera (built on first use).
     pub fn get(&mut self, cam: &Camera, obstruction: Option<&image::GrayImage>, params: &MapParams, height_m: f64) -> Arc<Lut> {
         let bucket = (height_m / params.height_bucket_m).round() as i64;
@@ -396,6 +402,28 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The grid reaches the same zenith angle at every plane height (its extent is
+    /// `2 h tan(max_zenith)`), so cell `(i, j)` looks the same way at any height: a plane `r` times
+    /// higher maps the same sky with cells `r` times larger, scaled about the camera's nadir. The
+    /// tables at two heights are then the same cell by cell, which is what lets the engine move
+    /// its plane by relabelling the kept maps (`nowcast::plane`). Common practice, no source
+    /// (a flat plane's central projection).
+    #[test]
+    fn a_plane_at_another_height_sees_the_same_directions() {
+        let cam = Camera::ideal(256);
+        let p = MapParams { cells: 128, ..Default::default() };
+        let (lo, hi) = (Lut::build(&cam, None, LutCache::grid_for(&p, 1000.0)), Lut::build(&cam, None, LutCache::grid_for(&p, 1610.0)));
+        assert_eq!(hi.grid.height_m, 1600.0);
+        assert!((hi.grid.cell_m / lo.grid.cell_m - 1.6).abs() < 1e-12);
+        assert_eq!(lo.pixel, hi.pixel);
+        assert_eq!(lo.interpolate, hi.interpolate);
+        for k in 0..lo.pixel.len() {
+            assert!((lo.z_deg[k] - hi.z_deg[k]).abs() < 1e-4 || lo.z_deg[k].is_nan(), "cell {k}");
+            assert_eq!(lo.bilinear[k].0, hi.bilinear[k].0, "cell {k}");
+            assert!(lo.bilinear[k].1.iter().zip(hi.bilinear[k].1).all(|(a, b)| a.abs_diff(b) <= 1), "cell {k}");
+        }
+    }
 
     /// One segmentation path: the map's class of a cell read from one pixel is the image
     /// segmentation's class of that pixel (patches of clear, thin and thick sky, with a clipped sun

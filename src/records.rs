@@ -38,7 +38,7 @@ pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
 }
 
 /// Header of `motion.csv`.
-pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero,cbh_m,cbh_sigma_m,cbh_source,layer2_cbh_m,layer2_cbh_sigma_m,layer2_cbh_source\n";
+pub const MOTION_HEADER: &str = "time_utc,dt_s,blocks_tried,blocks_used,global_east_mps,global_north_mps,layers,layer1_east_mps,layer1_north_mps,layer1_blocks,layer2_east_mps,layer2_north_mps,layer2_blocks,east_mps,north_mps,sigma_mps,speed_mps,toward_deg,second_east_mps,second_north_mps,second_sigma_mps,blocks_static,locked_at_zero,cbh_m,cbh_sigma_m,cbh_source,layer2_cbh_m,layer2_cbh_sigma_m,layer2_cbh_source,map_plane_m\n";
 
 /// Append a nowcast's motion row.
 pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
@@ -78,6 +78,8 @@ pub fn motion_row(nc: &Nowcast, out: &mut CsvTable) {
         nc.cbh_upper.map(|c| format!("{:.0}", c.cbh_m)).unwrap_or_default(),
         nc.cbh_upper.map(|c| format!("{:.0}", c.sigma_m)).unwrap_or_default(),
         nc.cbh_upper.map(|c| c.source.name().to_string()).unwrap_or_default(),
+        // The height of the map's plane (the configured base, the series, or the estimate it followed).
+        format!("{:.0}", nc.cbh_m),
     ]);
     out.row(row);
 }
@@ -105,6 +107,8 @@ pub fn nowcast_json(nc: &Nowcast) -> serde_json::Value {
         "cbh_m": nc.cbh.cbh_m,
         "cbh_sigma_m": nc.cbh.sigma_m,
         "cbh_source": nc.cbh.source.name(),
+        // The height of the cloud map's plane.
+        "map_plane_m": nc.cbh_m,
         "sun_elevation_deg": nc.sun.elevation_rad().to_degrees(),
         "motion": nc.motion.map(|m| serde_json::json!({"east_mps": m.v_mps[0], "north_mps": m.v_mps[1], "sigma_mps": m.sigma_mps,
             "speed_mps": m.v_mps[0].hypot(m.v_mps[1]), "toward_deg": m.v_mps[0].atan2(m.v_mps[1]).to_degrees().rem_euclid(360.0)})),

@@ -486,6 +486,15 @@ impl MotionFilter {
         self.accepted_run
     }
 
+    /// The map's plane moved by `ratio` (new height over old): every speed on the map scales by it,
+    /// the estimate and its variance with it.
+    pub fn rescale(&mut self, ratio: f64) {
+        if let Some((v, p)) = &mut self.state {
+            *v = [v[0] * ratio, v[1] * ratio];
+            *p *= ratio * ratio;
+        }
+    }
+
     /// Advance by `dt_s` and fold in a measured layer (if any).
     pub fn update(&mut self, m: Option<&LayerMotion>, dt_s: f64, params: &MotionParams) -> Option<Motion> {
         let meas = m.map(|l| (l.v_mps, l.spread_mps, l.blocks));
@@ -568,6 +577,14 @@ impl LayerTracker {
     /// put first last time (0 before any motion is known).
     pub fn primary_accepted_run(&self) -> usize {
         if self.active(self.primary).is_some() { self.slots[self.primary].filter.accepted_run() } else { 0 }
+    }
+
+    /// The map's plane moved by `ratio` (new height over old): each track's motion scales by it
+    /// ([`MotionFilter::rescale`]); their order, opacity and counts stay.
+    pub fn rescale(&mut self, ratio: f64) {
+        for s in &mut self.slots {
+            s.filter.rescale(ratio);
+        }
     }
 
     /// Filtered motions to search around, the track with the most blocks first.
@@ -683,6 +700,37 @@ mod tests {
         assert!(m.vectors.len() > 10, "{} vectors", m.vectors.len());
         assert!((l.v_mps[0] - v[0]).abs() < 0.1 && (l.v_mps[1] - v[1]).abs() < 0.1, "{:?}", l.v_mps);
         assert_eq!(m.layers.len(), 1);
+    }
+
+    /// The same two maps on a plane 1.6 times higher (relabelled: the same cells, each 1.6 times
+    /// larger, as the engine does when its plane moves) measure the motion 1.6 times faster, block
+    /// for block, when the speed limits in m/s are 1.6 times higher too (with the same limits the
+    /// search reaches fewer cells: that is how the plane's height changes the measurement); a
+    /// tracker rescaled by 1.6 holds the scaled motion and spread. Geometry of a flat plane's
+    /// central projection: common practice, no source.
+    #[test]
+    fn a_relabelled_plane_scales_the_measured_and_tracked_motion() {
+        let p = MapParams { max_zenith_deg: 77.0, ..Default::default() };
+        let (g, g_hi) = (Grid::new(&p, 1500.0), Grid::new(&p, 2400.0));
+        let (v, dt) = ([7.3, -4.1], 20.0);
+        let a = map_from(blobs, g);
+        let b = map_from(|x, y| blobs(x - v[0] * dt, y - v[1] * dt), g);
+        let on = |m: &CloudMap| CloudMap { grid: g_hi, ..m.clone() };
+        let params = MotionParams::default();
+        let scaled = MotionParams { max_speed_mps: 1.6 * params.max_speed_mps, two_layer_separation_mps: 1.6 * params.two_layer_separation_mps, ..params };
+        let (lo, hi) = (measure(&a, &b, dt, &params, &[]), measure(&on(&a), &on(&b), dt, &scaled, &[]));
+        assert_eq!(lo.vectors.len(), hi.vectors.len());
+        assert!(lo.vectors.len() > 10);
+        for (x, y) in lo.vectors.iter().zip(&hi.vectors) {
+            for c in 0..2 {
+                assert!((y.v_mps[c] - 1.6 * x.v_mps[c]).abs() < 1e-6, "{:?} {:?}", x.v_mps, y.v_mps);
+            }
+        }
+        let mut t = LayerTracker::default();
+        let l = t.update(Some(&lo), dt, &params)[0].motion;
+        t.rescale(1.6);
+        let r = t.priors()[0];
+        assert!((r.v_mps[0] - 1.6 * l.v_mps[0]).abs() < 1e-9 && (r.v_mps[1] - 1.6 * l.v_mps[1]).abs() < 1e-9 && (r.sigma_mps - 1.6 * l.sigma_mps).abs() < 1e-9, "{l:?} {r:?}");
     }
 
     /// Blobs of a given count and radius, seeded differently.

@@ -17,6 +17,7 @@ use stages::{FrameQcStage, MapStage, MotionStage, layer_labels, layer_tables};
 use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
 mod forecast_stages;
+mod plane;
 mod stages;
 mod tuner;
 mod types;
@@ -56,6 +57,8 @@ pub struct Nowcaster {
     cbh_series: Option<Series>,
     measurements: Option<Pyranometers>,
     cbh_state: crate::cbh::CbhState,
+    /// Where the cloud map's plane lies ([`plane`]).
+    plane: plane::MapPlane,
     forecast_stage: ForecastStage,
     ensemble_stage: EnsembleStage,
     alarm: crate::ramp::Alarm,
@@ -108,6 +111,7 @@ impl Nowcaster {
             cbh_series,
             measurements,
             cbh_state,
+            plane: plane::MapPlane::default(),
             forecast_stage,
             ensemble_stage: EnsembleStage::default(),
             alarm: Default::default(),
@@ -523,15 +527,16 @@ impl Nowcaster {
 
     /// The step as a sequence of stages, each a method below with typed output: admission (size,
     /// time order, sun), the map (with its exposure check and clear-sky reference learning), motion,
-    /// the forecast (tuning, central, ensemble and bands), then ramps and the alarm.
+    /// the forecast (tuning, central, ensemble and bands), then ramps and the alarm. `configured` is
+    /// the configured base or the series (the prior), `cbh` the map's plane ([`plane`]).
     fn step_inner(&mut self, frame: &Frame) -> Result<Nowcast, Rejection> {
         let t0 = Clock::now();
         let cam = &self.site.camera;
         let whole = (cam.width_px, cam.height_px);
         let reduced_px = (self.reduced.camera.width_px, self.reduced.camera.height_px);
         let (sun, reduced) = self.frame_qc.admit(frame, whole, reduced_px, &self.site.observer(), self.site.file.qc.min_sun_elevation_deg)?;
-        let cbh = self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?;
-        let cam_z = self.site.file.camera.position_m[2];
+        let (configured, cam_z) = (self.cbh_at(&frame.time).ok_or(Rejection::NoCloudBase)?, self.site.file.camera.position_m[2]);
+        let cbh = self.plane.height_m(configured);
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let lut = self.map_stage.lut(cam, obstruction, &self.site.file.map, (cbh - cam_z).max(10.0));
         self.frame_qc.check_exposure(&frame.image, &lut, &self.site.file.qc)?;
@@ -551,12 +556,12 @@ impl Nowcaster {
         let t_motion = Clock::now();
         let layer_v: Vec<[f64; 2]> = moved.layers.iter().map(|l| l.motion.v_mps).collect();
         self.stereo_stage(frame, reduced, &sun, labels.as_deref().map(|l| crate::stereo::LayerCells::from_labels(&map, l, 2)), &layer_v);
-        let cbh_est = self.cbh_stage(&frame.time, &map, cbh, motion.map(|m| m.v_mps), layer_v.get(1).copied());
+        let cbh_est = self.cbh_stage(&frame.time, &map, (cbh, configured), motion.map(|m| m.v_mps), layer_v.get(1).copied());
         let cbh_factor = cbh_est.cbh_m / cbh;
         // The second layer's base: its prior and its own stereo estimate (exactly the prior, at
         // factor 1 and the prior's spread, with one camera and no known layers).
         let cbh_upper = match layer_v.as_slice() {
-            [v0, v1, ..] => Some(self.cbh_state.upper(frame.time, cbh, *v1, *v0)),
+            [v0, v1, ..] => Some(self.cbh_state.upper(frame.time, configured, *v1, *v0)),
             _ => None,
         };
         let upper = cbh_upper.map_or((1.0, crate::cbh::UPPER_LAYER_PRIOR_REL_SIGMA), |u| (u.cbh_m / cbh, u.rel_sigma()));
@@ -574,6 +579,7 @@ impl Nowcaster {
         let alarm_change = self.alarm.update(&frame.time, &ramps, self.motion_stage.tracker.primary_accepted_run(), &self.site.file.ramps);
         let t_fc = Clock::now();
         self.motion_stage.remember(frame.time, map.clone(), moved.features);
+        self.follow_estimate([Some(&cbh_est), cbh_upper.as_ref()], map.grid, cbh);
         self.frame_qc.last_time = Some(frame.time);
         let ms = |a: Clock, b: Clock| (b - a).as_secs_f64() * 1000.0;
         Ok(Nowcast {
@@ -604,15 +610,16 @@ impl Nowcaster {
         })
     }
 
-    /// Cloud base height: every estimate combined (ceilometer or configured value, shadow timing at
-    /// the pyranometers); the map stays on its plane and the forecast scales its look-ups by the
-    /// ratio (`cbh_factor`).
-    fn cbh_stage(&mut self, t: &DateTime<Utc>, map: &CloudMap, map_cbh_m: f64, v_map_mps: Option<[f64; 2]>, v_other_mps: Option<[f64; 2]>) -> crate::cbh::CbhEstimate {
+    /// Cloud base height: every estimate combined (ceilometer or configured value `prior_cbh_m`,
+    /// stereo, shadow timing at the pyranometers); the map lies on its plane `map_cbh_m` and the
+    /// forecast scales its look-ups by the ratio (`cbh_factor`).
+    fn cbh_stage(&mut self, t: &DateTime<Utc>, map: &CloudMap, (map_cbh_m, prior_cbh_m): (f64, f64), v_map_mps: Option<[f64; 2]>, v_other_mps: Option<[f64; 2]>) -> crate::cbh::CbhEstimate {
         self.cbh_state.update(&crate::cbh::CbhFrame {
             time: *t,
             map,
             params: self.forecast_stage.params(),
             map_cbh_m,
+            prior_cbh_m,
             from_series: self.cbh_series.is_some(),
             v_map_mps,
             v_other_mps,
@@ -622,6 +629,32 @@ impl Nowcaster {
             altitude_m: self.site.file.site.elevation_m,
             model: self.site.clear_sky_model(),
         })
+    }
+
+    /// Move the map's plane for the next frame when the layers' estimated bases (`layers`: the
+    /// first's, the second's) say so ([`plane::target`]; with `[clouds] map_follows_estimate` and
+    /// no ceilometer series): the kept maps go onto the new grid and the speeds measured on the
+    /// plane scale by the ratio ([`plane`]). `grid` is this frame's map's, on the plane `plane_m`
+    /// (above the site origin). The new table is built by the next frame.
+    fn follow_estimate(&mut self, layers: [Option<&crate::cbh::CbhEstimate>; 2], grid: crate::cloudmap::Grid, plane_m: f64) {
+        if !self.site.file.clouds.map_follows_estimate || self.cbh_series.is_some() {
+            return;
+        }
+        let Some(h) = plane::target(layers, self.cbh_state.estimates_made(), plane_m) else { return };
+        let cam_z = self.site.file.camera.position_m[2];
+        let new = crate::cloudmap::LutCache::grid_for(&self.site.file.map, (h - cam_z).max(10.0));
+        if new == grid {
+            return;
+        }
+        let ratio = new.cell_m / grid.cell_m;
+        self.motion_stage.rescale(new, ratio);
+        self.cbh_state.rescale_map_motion(ratio);
+        self.plane.moved(cam_z + new.height_m);
+    }
+
+    /// How often the cloud map's plane moved to follow the estimated base ([`plane`]).
+    pub fn map_plane_moves(&self) -> usize {
+        self.plane.moves
     }
 
     /// Ramp events from the plant's power series (central and members), and the members' plant

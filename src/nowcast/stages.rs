@@ -204,6 +204,20 @@ impl MotionStage {
         Moved { measurement, layers, earlier, features }
     }
 
+    /// The map's plane moved to `grid` (same cells, `grid.cell_m` over the kept maps' cell size
+    /// times larger): the kept maps are relabelled onto it (a cell looks the same way at every
+    /// height, [`crate::cloudmap::LutCache::grid_for`], so they are what the new table would have
+    /// made of their frames) and the tracked motions scale by the ratio. Their features are kept
+    /// (they are in cells).
+    pub(super) fn rescale(&mut self, grid: crate::cloudmap::Grid, ratio: f64) {
+        for (_, m, _) in &mut self.history {
+            if m.grid.n == grid.n {
+                *m = Arc::new(CloudMap { grid, ..CloudMap::clone(m) });
+            }
+        }
+        self.tracker.rescale(ratio);
+    }
+
     /// Keep an accepted frame's map for the next frames.
     pub(super) fn remember(&mut self, t: DateTime<Utc>, map: Arc<CloudMap>, features: Arc<MapFeatures>) {
         self.history.push_back((t, map, features));

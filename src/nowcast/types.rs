@@ -123,7 +123,8 @@ pub struct Nowcast {
     pub baseline_s: Option<f64>,
     /// Sun at the frame time.
     pub sun: SunPosition,
-    /// Height of the cloud map's plane \[m\] (configured value or ceilometer series).
+    /// Height of the cloud map's plane \[m\]: the configured value or ceilometer series, or the
+    /// estimated base the plane followed (`[clouds] map_follows_estimate`).
     pub cbh_m: f64,
     /// The cloud base height the forecast used (all estimates combined), its uncertainty and source.
     pub cbh: crate::cbh::CbhEstimate,
