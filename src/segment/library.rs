@@ -1,0 +1,256 @@
+//! The clear-sky library: the clear sky's R/B and brightness per bin of zenith and angle to the
+//! sun (2° × 2°), learnt from a clear day (`calibrate`) or from clear frames online, written to and
+//! read from CSV; and a frame's reference from it (`Reference::for_frame`).
+use super::{FrameReference, PixelGeom, SegmentParams, GLARE_RINGS, GLARE_RING_MIN_SAMPLES};
+
+const LIB_BIN_DEG: f32 = 2.0;
+
+const LIB_Z_BINS: usize = 50;
+const LIB_G_BINS: usize = 90;
+
+/// The clear-sky reference: learned library plus the parametric default with a per-frame offset.
+#[derive(Debug, Clone)]
+pub struct Reference {
+    /// Library mean R/B per (zenith, sun angle) bin.
+    pub(super) lib: Vec<f32>,
+    /// Library weight per bin (0 = no data).
+    pub(super) weight: Vec<f32>,
+    /// Library mean clear-sky brightness per bin (largest channel; 0 = not learned): `brightness`.
+    pub(super) bright: Vec<f32>,
+    /// Frames that updated the library.
+    pub library_frames: usize,
+}
+
+impl Default for Reference {
+    fn default() -> Self {
+        let n = LIB_Z_BINS * LIB_G_BINS;
+        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], library_frames: 0 }
+    }
+}
+
+/// The library bin of a pixel geometry.
+#[inline]
+pub fn lib_index(z_deg: f32, gamma_deg: f32) -> usize {
+    // Through i32: a float-to-usize conversion is a slow instruction sequence on x86-64.
+    let zi = (((z_deg / LIB_BIN_DEG) as i32).max(0) as usize).min(LIB_Z_BINS - 1);
+    let gi = (((gamma_deg / LIB_BIN_DEG) as i32).max(0) as usize).min(LIB_G_BINS - 1);
+    zi * LIB_G_BINS + gi
+}
+
+impl Reference {
+    /// The library as CSV: one row per bin with data (`zenith_from_deg,gamma_from_deg,rb,weight,brightness`;
+    /// brightness 0 where it was not learned).
+    pub fn to_csv(&self) -> String {
+        let mut out = crate::io::CsvTable::with_header_line("zenith_from_deg,gamma_from_deg,rb,weight,brightness");
+        for i in 0..self.lib.len() {
+            if self.weight[i] > 0.5 {
+                let (zi, gi) = (i / LIB_G_BINS, i % LIB_G_BINS);
+                out.row([(zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string(), format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i]), format!("{:.2}", self.bright[i])]);
+            }
+        }
+        out.into_string()
+    }
+
+    /// Read a library written by [`Reference::to_csv`] (a file without the brightness column, from
+    /// an earlier version, reads with no brightness learned).
+    ///
+    /// # Errors
+    /// A message naming the line and what was expected.
+    pub fn from_csv(text: &str) -> Result<Reference, String> {
+        let mut r = Reference::default();
+        let mut rdr = csv::ReaderBuilder::new().flexible(true).from_reader(text.as_bytes());
+        for rec in rdr.records() {
+            let rec = rec.map_err(|e| format!("line {}: {e}", e.position().map(|p| p.line()).unwrap_or(0)))?;
+            let line_no = rec.position().map(|p| p.line()).unwrap_or(0);
+            if rec.iter().all(|f| f.trim().is_empty()) {
+                continue;
+            }
+            let line = rec.iter().collect::<Vec<_>>().join(",");
+            let num = |k: usize| rec.get(k).and_then(|x| x.trim().parse::<f32>().ok()).filter(|x| x.is_finite());
+            let (Some(z), Some(g), Some(rb), Some(w)) = (num(0), num(1), num(2), num(3)) else {
+                return Err(format!("line {line_no}: expected zenith_from_deg,gamma_from_deg,rb,weight as numbers, got {line:?}"));
+            };
+            if !(0.0..=(LIB_Z_BINS as f32 * LIB_BIN_DEG)).contains(&z) || !(0.0..=(LIB_G_BINS as f32 * LIB_BIN_DEG)).contains(&g) || !(0.05..=3.0).contains(&rb) || w < 0.0 {
+                return Err(format!("line {line_no}: a bin out of range (zenith 0–100°, sun angle 0–180°, R/B 0.05–3, weight ≥ 0), got {line:?}"));
+            }
+            let k = lib_index(z + 0.5 * LIB_BIN_DEG, g + 0.5 * LIB_BIN_DEG);
+            r.lib[k] = rb;
+            r.weight[k] = w.min(100.0);
+            if let Some(field) = rec.get(4).filter(|f| !f.trim().is_empty()) {
+                match field.trim().parse::<f32>() {
+                    Ok(v) if (0.0..=255.0).contains(&v) => r.bright[k] = v,
+                    _ => return Err(format!("line {line_no}: brightness must be a number from 0 to 255, got {field:?}")),
+                }
+            }
+        }
+        r.library_frames = 1;
+        Ok(r)
+    }
+
+    /// A library from clear frames, each bin the plain mean R/B of the unclipped pixels that fell in
+    /// it (at least `min_frames` frames with 3 pixels each), as a clear day for calibration gives.
+    pub fn from_clear_samples<I>(params: &SegmentParams, frames: impl Iterator<Item = I>, min_frames: u32) -> Reference
+    where
+        I: Iterator<Item = ([u8; 3], PixelGeom)>,
+    {
+        let nb = LIB_Z_BINS * LIB_G_BINS;
+        let (mut sum, mut sum_v) = (vec![0f64; nb], vec![0f64; nb]);
+        let mut cnt = vec![0u32; nb];
+        let mut frames_in = vec![0u32; nb];
+        let mut n_frames = 0;
+        for sample in frames {
+            n_frames += 1;
+            let (mut fsum, mut fsum_v) = (vec![0f64; nb], vec![0f64; nb]);
+            let mut fcnt = vec![0u32; nb];
+            for (rgb, g) in sample {
+                if g.gamma_deg < params.sun_exclusion_deg as f32 || rgb.iter().any(|c| *c >= params.saturation_level) || rgb[2] < 10 {
+                    continue;
+                }
+                let i = lib_index(g.z_deg, g.gamma_deg);
+                fsum[i] += rgb[0] as f64 / rgb[2] as f64;
+                fsum_v[i] += f64::from(crate::brightness::reading(rgb));
+                fcnt[i] += 1;
+            }
+            for i in 0..fsum.len() {
+                if fcnt[i] >= 3 {
+                    sum[i] += fsum[i] / fcnt[i] as f64;
+                    sum_v[i] += fsum_v[i] / fcnt[i] as f64;
+                    cnt[i] += 1;
+                    frames_in[i] += 1;
+                }
+            }
+        }
+        let mut r = Reference::default();
+        for i in 0..sum.len() {
+            if frames_in[i] >= min_frames.max(1) {
+                r.lib[i] = (sum[i] / cnt[i] as f64) as f32;
+                r.bright[i] = (sum_v[i] / cnt[i] as f64) as f32;
+                r.weight[i] = (cnt[i] as f32).min(100.0);
+            }
+        }
+        r.library_frames = n_frames;
+        r
+    }
+
+    /// How many library bins hold data.
+    pub fn library_bins(&self) -> usize {
+        self.weight.iter().filter(|w| **w > 0.5).count()
+    }
+
+    /// The reference for one frame from a sample of its sky pixels.
+    pub fn for_frame<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) -> FrameReference<'a> {
+        self.for_frame_with(params, sample.map(|(rgb, g)| (rgb, g, params.default_reference(g.z_deg, g.gamma_deg))))
+    }
+
+    /// [`Reference::for_frame`] from samples that carry their parametric default reference.
+    pub fn for_frame_with<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom, f32)>) -> FrameReference<'a> {
+        let mut d = vec![];
+        let mut n = 0usize;
+        let (mut ring_n, mut ring_clipped) = ([0u32; GLARE_RINGS], [0u32; GLARE_RINGS]);
+        let glare_zone = GLARE_RINGS as f32;
+        let mut meter = crate::brightness::ExposureMeter::default();
+        let metering = params.dark_cloud_margin > 0.0;
+        for (rgb, g, default_rb) in sample {
+            if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
+                continue;
+            }
+            n += 1;
+            let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+            if g.gamma_deg < glare_zone {
+                // Clipped and not provably clear (the library is not consulted: a bound suffices).
+                let r = (g.gamma_deg as usize).min(GLARE_RINGS - 1);
+                ring_n[r] += 1;
+                let clear_bound = default_rb + params.thin_score as f32 * (params.cloud_rb as f32 - default_rb).max(0.03);
+                ring_clipped[r] += (rgb[2] >= params.saturation_level && rb >= clear_bound) as u32;
+            }
+            let dd = rb - default_rb;
+            if dd < params.offset_band as f32 {
+                d.push(dd);
+            }
+            if metering && g.gamma_deg >= params.glare_zone_deg as f32 {
+                // Clear by a margin against the learned ratio: the frame's clear sky, for its exposure.
+                let bin = lib_index(g.z_deg, g.gamma_deg);
+                if self.weight[bin] > 0.5 && self.bright[bin] > 0.0 {
+                    let r = self.lib[bin];
+                    if rb < r + 0.5 * params.thin_score as f32 * (params.cloud_rb as f32 - r).max(0.03) {
+                        meter.add(rgb, self.bright[bin], params.saturation_level);
+                    }
+                }
+            }
+        }
+        let offset = if n > 0 && d.len() as f64 >= params.offset_min_share * n as f64 && !d.is_empty() {
+            let k = ((d.len() - 1) as f64 * params.offset_quantile).round() as usize;
+            let (_, q, _) = d.select_nth_unstable_by(k, f32::total_cmp);
+            let q = *q;
+            q.clamp(params.offset_min as f32, params.offset_max as f32)
+        } else {
+            0.0
+        };
+        let mut glare_ring = [true; GLARE_RINGS];
+        for r in 0..GLARE_RINGS {
+            if ring_n[r] >= GLARE_RING_MIN_SAMPLES {
+                glare_ring[r] = ring_clipped[r] as f64 >= params.glare_ring_share * ring_n[r] as f64;
+            }
+        }
+        // The bloom's extent: the first sampled ring outside the sun's exclusion that is not mostly
+        // clipped. Clipped pixels inside it are glare wherever it reaches.
+        let first = (params.sun_exclusion_deg.ceil() as usize).min(GLARE_RINGS - 1);
+        let glare_extent_deg = (first..GLARE_RINGS).find(|&r| ring_n[r] >= GLARE_RING_MIN_SAMPLES && !glare_ring[r]).unwrap_or(first) as f32;
+        let glare_zone_deg = (params.glare_zone_deg as f32).max(glare_extent_deg);
+        let exposure = if metering { meter.exposure() } else { None };
+        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg, exposure }
+    }
+
+    /// Learn from a frame only when it is judged clear: its cloud fraction at most
+    /// [`SegmentParams::library_max_cloud_fraction`] (the one rule for the engine's map and for
+    /// `verify`). Returns whether it learnt.
+    pub fn learn_if_clear(&mut self, params: &SegmentParams, cloud_fraction: f64, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) -> bool {
+        let clear = cloud_fraction <= params.library_max_cloud_fraction;
+        if clear {
+            self.learn(params, sample);
+        }
+        clear
+    }
+
+    /// Update the library with a frame's clear pixels (call only for frames judged clear; see
+    /// [`Reference::learn_if_clear`]).
+    pub fn learn(&mut self, params: &SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) {
+        let nb = LIB_Z_BINS * LIB_G_BINS;
+        let (mut sum, mut sum_v) = (vec![0f64; nb], vec![0f64; nb]);
+        let (mut cnt, mut cnt_v) = (vec![0u32; nb], vec![0u32; nb]);
+        for (rgb, g) in sample {
+            if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
+                continue;
+            }
+            let i = lib_index(g.z_deg, g.gamma_deg);
+            sum[i] += rgb[0] as f64 / (rgb[2] as f64).max(1.0);
+            cnt[i] += 1;
+            // Brightness from unclipped pixels only, as from a clear day (`from_clear_samples`).
+            if rgb.iter().all(|c| *c < params.saturation_level) {
+                sum_v[i] += f64::from(crate::brightness::reading(rgb));
+                cnt_v[i] += 1;
+            }
+        }
+        let rate = params.library_rate as f32;
+        for i in 0..sum.len() {
+            if cnt[i] >= 3 {
+                let m = (sum[i] / cnt[i] as f64) as f32;
+                if self.weight[i] == 0.0 {
+                    self.lib[i] = m;
+                } else {
+                    self.lib[i] += rate * (m - self.lib[i]);
+                }
+                self.weight[i] = (self.weight[i] + 1.0).min(100.0);
+            }
+            if cnt_v[i] >= 3 {
+                let v = (sum_v[i] / cnt_v[i] as f64) as f32;
+                if self.bright[i] == 0.0 {
+                    self.bright[i] = v;
+                } else {
+                    self.bright[i] += rate * (v - self.bright[i]);
+                }
+            }
+        }
+        self.library_frames += 1;
+    }
+}
