@@ -557,6 +557,22 @@ pub struct Evaluation {
     pub motion: MotionScore,
     /// Segmentation scores.
     pub segmentation: SegmentationScore,
+    /// The perfect-perception yardstick's scores per horizon (`truth/yardstick.csv`, when the
+    /// sequence has one: `synth::yardstick`).
+    pub yardstick: Option<Vec<HorizonScore>>,
+}
+
+/// Pooled skill over the horizons `from_s..=to_s`: one minus the ratio of the forecast's and smart
+/// persistence's RMSE over all their pairs together (each horizon's mean squared error weighted by
+/// its pairs), as the independent scenes' scorer pools 5–15 minutes. NaN without pairs.
+pub fn pooled_skill(scores: &[HorizonScore], from_s: u32, to_s: u32) -> f64 {
+    let (mut f, mut p, mut n) = (0.0, 0.0, 0usize);
+    for h in scores.iter().filter(|h| (from_s..=to_s).contains(&h.horizon_s) && h.n > 0) {
+        f += h.rmse_wm2 * h.rmse_wm2 * h.n as f64;
+        p += h.rmse_persistence_wm2 * h.rmse_persistence_wm2 * h.n as f64;
+        n += h.n;
+    }
+    if n == 0 || p <= 0.0 { f64::NAN } else { 1.0 - (f / p).sqrt() }
 }
 
 /// Why an evaluation could not be made: a missing or malformed file of the sequence or the
@@ -597,7 +613,9 @@ pub fn evaluate(sequence: &Path, replay_out: &Path) -> Result<Evaluation, EvalEr
     let segmentation = score_segmentation(sequence)?;
     let bands = score_bands(&replay_out.join("forecasts.csv"), &truth, crate::plant::PLANT_TARGET)?;
     let ramps = if replay_out.join("ramps.csv").is_file() { Some(score_ramps(sequence, replay_out, &truth, 300.0, 120.0, 0.5)?) } else { None };
-    Ok(Evaluation { plant, bands, ramps, motion, segmentation })
+    let yardstick_csv = sequence.join("truth").join("yardstick.csv");
+    let yardstick = if yardstick_csv.is_file() { Some(score_forecasts(&yardstick_csv, &truth, crate::plant::PLANT_TARGET)?) } else { None };
+    Ok(Evaluation { plant, bands, ramps, motion, segmentation, yardstick })
 }
 
 /// A score with `decimals` decimals, or "n/a" when it has no value (NaN or infinite: the skill at
@@ -623,6 +641,23 @@ pub fn print_evaluation(e: &Evaluation) {
                 fmt_score(h.skill, 3)
             );
         }
+    }
+    let pooled = pooled_skill(&e.plant, 300, 900);
+    match &e.yardstick {
+        Some(y) => {
+            let yp = pooled_skill(y, 300, 900);
+            let at = |m: u32| y.iter().find(|h| h.horizon_s == m * 60).map_or(f64::NAN, |h| h.skill);
+            crate::say!(
+                "pooled 5–15 min skill {} against the perfect-perception yardstick's {} (5 / 10 / 15 min {} / {} / {}): {} of it",
+                fmt_score(pooled, 3),
+                fmt_score(yp, 3),
+                fmt_score(at(5), 2),
+                fmt_score(at(10), 2),
+                fmt_score(at(15), 2),
+                fmt_score(pooled / yp, 2)
+            );
+        }
+        None => crate::say!("pooled 5–15 min skill {} (no yardstick in this sequence)", fmt_score(pooled, 3)),
     }
     for b in &e.bands {
         if [300, 600, 900].contains(&b.horizon_s) {
@@ -657,6 +692,15 @@ pub fn print_evaluation(e: &Evaluation) {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn pooled_skill_weights_each_horizon_by_its_pairs() {
+        let h = |s: u32, n: usize, f: f64, p: f64| HorizonScore { horizon_s: s, n, rmse_wm2: f, mae_wm2: 0.0, mbe_wm2: 0.0, mean_observed_wm2: 1.0, nrmse: 0.0, rmse_persistence_wm2: p, skill: skill(f, p) };
+        // By hand: sqrt((3·100² + 1·200²) / (3·200² + 1·200²)) = sqrt(70000 / 160000) = 0.6614.
+        let v = [h(60, 9, 1.0, 9.0), h(300, 3, 100.0, 200.0), h(900, 1, 200.0, 200.0)];
+        assert!((pooled_skill(&v, 300, 900) - (1.0 - (70000f64 / 160000.0).sqrt())).abs() < 1e-12);
+        assert!(pooled_skill(&v, 1000, 2000).is_nan());
+    }
 
     #[test]
     fn metrics_by_hand() {

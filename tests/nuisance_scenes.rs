@@ -33,6 +33,9 @@ const LOOSE_P95_DEG: f64 = 1.0;
 
 /// Targets of the end-to-end run (as in `tests/pipeline.rs` for broken cloud).
 const TARGET_SKILL: f64 = 0.30;
+/// Pooled 5–15 min skill as a share of the perfect-perception yardstick's (frozen advection of the
+/// true cloud field and wind, `synth::yardstick`): the robustness issue's forecast target.
+const TARGET_YARDSTICK_SHARE: f64 = 0.8;
 const TARGET_SPEED_ERR_MPS: f64 = 0.5;
 const TARGET_DIR_ERR_DEG: f64 = 5.0;
 
@@ -41,7 +44,12 @@ const TARGET_DIR_ERR_DEG: f64 = 5.0;
 /// never goes below zenith 70° in the fitted detections, so the 60–80° band is extrapolated (p95
 /// 0.48°, all bands together 0.40°); with the calibrated camera the cloud speed is 0.96 m/s off
 /// (0.02 m/s with the true camera).
-const KNOWN_SHORTFALLS: &[&str] = &["calibration p95 zenith 60–80°", "calibration p95 zenith 0–80°"];
+///
+/// The two-layer scene (a thin veil at 6 km over cumulus) reaches 0.22 of pooled 5–15 min skill
+/// against 0.8 × its yardstick's 0.70 (2026-12-03; the same with the dark-cloud test off): the
+/// forecast follows one layer's motion and the veil's transmittance poorly (README, "On a world we
+/// did not make").
+const KNOWN_SHORTFALLS: &[&str] = &["calibration p95 zenith 60–80°", "calibration p95 zenith 0–80°", "nuisance-two-layer pooled skill against the yardstick"];
 
 fn check(metric: &str, ok: bool, figure: String) {
     if KNOWN_SHORTFALLS.contains(&metric) {
@@ -49,6 +57,7 @@ fn check(metric: &str, ok: bool, figure: String) {
         eprintln!("  known shortfall: {metric}: {figure}");
     } else {
         assert!(ok, "{metric} misses its target: {figure}");
+        eprintln!("  meets: {metric}: {figure}");
     }
 }
 
@@ -176,16 +185,18 @@ fn nuisance_truth_marks_hidden_sky_unknown() {
     }
 }
 
-#[test]
-fn broken_end_to_end_with_calibrated_camera() {
+/// Replay a 30-minute `nuisance-*` scene (seed 3) with the calibrated camera and the clear day's
+/// obstruction mask, and evaluate it (with its perfect-perception yardstick).
+fn end_to_end_with_calibrated_camera(name: &str) -> (nephocast::verify::Evaluation, nephocast::replay::ReplaySummary, f64) {
     let c = calibrated();
     let d = tempfile::tempdir().unwrap();
-    let mut spec = scene("nuisance-broken").unwrap();
+    let mut spec = scene(name).unwrap();
     spec.duration_min = 30.0;
     let cam_name = spec.camera.name.clone();
     let s = Scene::new(spec, 3).unwrap();
     let t0 = std::time::Instant::now();
     write_sequence(&s, d.path(), false).unwrap();
+    nephocast::synth::yardstick::write_yardstick(&s, d.path()).unwrap();
     // The calibrated camera and the obstruction mask of its clear day replace the true camera.
     let circle = nephocast::calibrate::fit_image_circle(&c.frames[c.frames.len() / 2].1).unwrap();
     let day: Vec<&image::RgbImage> = c
@@ -211,11 +222,29 @@ fn broken_end_to_end_with_calibrated_camera() {
     };
     let sum = replay(&opts).unwrap();
     let e = evaluate(d.path(), &out).unwrap();
+    (e, sum, t0.elapsed().as_secs_f64())
+}
+
+/// Pooled 5–15 min skill and the yardstick's, checked against [`TARGET_YARDSTICK_SHARE`] under `metric`.
+fn check_against_yardstick(metric: &str, e: &nephocast::verify::Evaluation) {
+    let pooled = nephocast::verify::pooled_skill(&e.plant, 300, 900);
+    let yardstick = nephocast::verify::pooled_skill(e.yardstick.as_deref().expect("the sequence's yardstick"), 300, 900);
+    assert!(yardstick.is_finite() && pooled.is_finite(), "pooled {pooled}, yardstick {yardstick}");
+    check(
+        metric,
+        pooled >= TARGET_YARDSTICK_SHARE * yardstick,
+        format!("5–15 min {pooled:.3} against {TARGET_YARDSTICK_SHARE} × the perfect-perception yardstick {yardstick:.3} = {:.3}", TARGET_YARDSTICK_SHARE * yardstick),
+    );
+}
+
+#[test]
+fn broken_end_to_end_with_calibrated_camera() {
+    let (e, sum, elapsed) = end_to_end_with_calibrated_camera("nuisance-broken");
     let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
     let skills = [sk(5), sk(10), sk(15)];
     eprintln!(
         "nuisance-broken with the calibrated camera ({:.1} s): frames rejected {:?} | seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill vs smart persistence 5/10/15 min {:.3} {:.3} {:.3}",
-        t0.elapsed().as_secs_f64(),
+        elapsed,
         sum.counters.rejected,
         e.segmentation.accuracy,
         e.segmentation.circumsolar_accuracy,
@@ -228,9 +257,20 @@ fn broken_end_to_end_with_calibrated_camera() {
     // Loose guards that hold today.
     assert!(skills.iter().all(|s| s.is_finite() && *s > -0.5), "skill {skills:?}");
     check("skill", skills.iter().all(|s| *s >= TARGET_SKILL), format!("5/10/15 min {skills:.3?} (target {TARGET_SKILL})"));
+    check_against_yardstick("nuisance-broken pooled skill against the yardstick", &e);
     check(
         "motion",
         e.motion.speed_error_mps <= TARGET_SPEED_ERR_MPS && e.motion.direction_error_deg <= TARGET_DIR_ERR_DEG,
         format!("{:.2} m/s, {:.1}° (target {TARGET_SPEED_ERR_MPS} m/s, {TARGET_DIR_ERR_DEG}°)", e.motion.speed_error_mps, e.motion.direction_error_deg),
     );
+}
+
+/// The two-layer scene through the same camera: its pooled skill against the yardstick (a veil over
+/// cumulus; known to fall short, see [`KNOWN_SHORTFALLS`], when it does).
+#[test]
+fn two_layers_end_to_end_with_calibrated_camera() {
+    let (e, _, elapsed) = end_to_end_with_calibrated_camera("nuisance-two-layer");
+    let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
+    eprintln!("nuisance-two-layer with the calibrated camera ({elapsed:.1} s): skill 5/10/15 min {:.3} {:.3} {:.3}", sk(5), sk(10), sk(15));
+    check_against_yardstick("nuisance-two-layer pooled skill against the yardstick", &e);
 }

@@ -49,6 +49,8 @@ pub(super) fn cmd_synth(a: SynthArgs) -> Result<()> {
     }
     let scene = synth::Scene::new(spec, a.seed)?;
     let sum = synth::write_sequence(&scene, &out, !a.quiet)?;
+    // The perfect-perception yardstick, scored by `evaluate` beside the replay.
+    synth::yardstick::write_yardstick(&scene, &out)?;
     crate::say!(
         "wrote {} frames ({:.1} MB) to {} in {:.3} s per frame",
         sum.frames,

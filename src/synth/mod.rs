@@ -26,6 +26,7 @@ pub mod noise;
 pub mod nuisance;
 pub mod render;
 pub mod world;
+pub mod yardstick;
 
 use std::path::{Path, PathBuf};
 
@@ -558,7 +559,7 @@ pub fn measurements_csv(scene: &Scene) -> Vec<u8> {
 }
 
 /// Write a file of the sequence atomically.
-fn put(path: PathBuf, bytes: &[u8]) -> Result<(), SynthError> {
+pub(crate) fn put(path: PathBuf, bytes: &[u8]) -> Result<(), SynthError> {
     write_atomic(&path, bytes).map_err(|source| SynthError::Write { path, source })
 }
 

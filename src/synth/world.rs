@@ -190,6 +190,9 @@ pub struct Instant {
     pub sky_cover: f64,
     /// Mean optical depth of the cloudy part of the sky view.
     pub sky_tau: f64,
+    /// Frozen advection: each layer's field is read as it was at `t_s`, carried this many seconds
+    /// further by its wind (0 for the true sky; [`World::frozen_instant`]).
+    pub advect_s: f64,
 }
 
 /// Two-stream asymmetry parameter of cloud droplets (Bohren 1987).
@@ -227,7 +230,22 @@ impl World {
         });
         let clear = clear_sky(&sun, self.altitude_m, self.clear_model);
         let thresholds = self.layers.iter().map(|l| l.threshold_for_cover(l.cover_at(t_s))).collect();
-        let mut inst = Instant { t_s, sun, clear, thresholds, sky_cover: 0.0, sky_tau: 0.0 };
+        let mut inst = Instant { t_s, sun, clear, thresholds, sky_cover: 0.0, sky_tau: 0.0, advect_s: 0.0 };
+        let (c, tau) = self.sky_view(&inst, self.diffuse_centre_m);
+        inst.sky_cover = c;
+        inst.sky_tau = tau;
+        inst
+    }
+
+    /// The sky of perfect perception and frozen advection: the cloud field exactly as it was at
+    /// `issue` (cover and evolution included), each layer carried by its true wind to `valid`, under
+    /// the sun and clear sky of `valid`. What a forecaster that saw the sky and its wind perfectly at
+    /// the issue time, and assumed it does not change, would expect at `valid`: the yardstick a
+    /// nowcast is measured against (`synth::yardstick`).
+    pub fn frozen_instant(&self, issue: &DateTime<Utc>, valid: &DateTime<Utc>) -> Instant {
+        let at_issue = self.instant(issue);
+        let at_valid = self.instant(valid);
+        let mut inst = Instant { advect_s: at_valid.t_s - at_issue.t_s, sun: at_valid.sun, clear: at_valid.clear, sky_cover: 0.0, sky_tau: 0.0, ..at_issue };
         let (c, tau) = self.sky_view(&inst, self.diffuse_centre_m);
         inst.sky_cover = c;
         inst.sky_tau = tau;
@@ -247,7 +265,7 @@ impl World {
             if s <= 0.0 {
                 continue;
             }
-            tau += l.tau_with(p[0] + s * d[0], p[1] + s * d[1], inst.t_s, *thr);
+            tau += l.tau_with(p[0] + s * d[0] - l.wind[0] * inst.advect_s, p[1] + s * d[1] - l.wind[1] * inst.advect_s, inst.t_s, *thr);
         }
         tau
     }
@@ -262,7 +280,7 @@ impl World {
             out.push(if d[2] <= 1e-3 || s <= 0.0 {
                 0.0
             } else {
-                l.tau_lod(p[0] + s * d[0], p[1] + s * d[1], inst.t_s, *thr, footprint)
+                l.tau_lod(p[0] + s * d[0] - l.wind[0] * inst.advect_s, p[1] + s * d[1] - l.wind[1] * inst.advect_s, inst.t_s, *thr, footprint)
             });
         }
     }
