@@ -4,7 +4,7 @@
 //! inside the engine, with JPEG decoding; these isolate each stage for profiling.
 
 use criterion::{Criterion, criterion_group, criterion_main};
-use nephocast::cloudmap::{CellSky, LutCache, build_map_with};
+use nephocast::cloudmap::{CellPixels, CellSky, LutCache, build_map_from, build_map_with};
 use nephocast::config::{CalibrationFile, Site};
 use nephocast::motion::{MapFeatures, MotionParams, measure_with};
 use nephocast::nowcast::{Frame, Nowcaster};
@@ -63,6 +63,10 @@ fn run(c: &mut Criterion, pool: &rayon::ThreadPool, s: &Scene, site: &Site, fram
     let sky = CellSky::new(&lut, sun_dir, &s.site.segment);
     g.bench_function("cell sun angles", |b| b.iter(|| pool.install(|| CellSky::new(&lut, sun_dir, &s.site.segment))));
     g.bench_function("segment+map", |b| b.iter(|| pool.install(|| build_map_with(&frames[FRAMES - 1].image, &lut, &sky, &s.site.segment, &reference))));
+    // Its two parts: reading the cells' pixels (in the image's memory order), then classifying.
+    g.bench_function("map pixels", |b| b.iter(|| CellPixels::gather(&frames[FRAMES - 1].image, &lut)));
+    let pixels = CellPixels::gather(&frames[FRAMES - 1].image, &lut);
+    g.bench_function("map classification", |b| b.iter(|| pool.install(|| build_map_from(&pixels, &lut, &sky, &s.site.segment, &reference))));
     let priors: Vec<_> = last.layers.iter().map(|l| l.motion).collect();
     // As in the engine: the earlier map's features were computed when it arrived; the new map's
     // are part of the stage.

@@ -125,6 +125,12 @@ pub struct Lut {
     /// keeps small cloud edges sharp (measured: bilinear everywhere cost the two-layer scene 0.07
     /// of 10-minute skill).
     pub interpolate: Vec<bool>,
+    /// The cells with a pixel and their pixel index, in the order of their pixels in memory (ties
+    /// by cell): a frame's pixels are read in this order ([`CellPixels::gather`]), a stream through
+    /// the image instead of a jump per cell.
+    pub memory_order: Vec<(u32, u32)>,
+    /// The cells read bilinearly ([`Lut::interpolate`]), in the memory order of their 2 × 2.
+    pub bilinear_order: Vec<u32>,
 }
 
 /// Cells within this angle of the lens field's rim \[°\] are unknown: the rim blends the sky with
@@ -192,7 +198,11 @@ impl Lut {
                 interpolate[k] = (i + 1 < n && shares(k + 1)) || (i > 0 && shares(k - 1)) || (j + 1 < n && shares(k + n)) || (j > 0 && shares(k - n));
             }
         }
-        Lut { grid, pixel, z_deg, dir, bilinear, interpolate }
+        let mut memory_order: Vec<(u32, u32)> = (0..n * n).filter(|&k| pixel[k] != NO_PIXEL).map(|k| (k as u32, pixel[k])).collect();
+        memory_order.sort_unstable_by_key(|&(k, p)| (p, k));
+        let mut bilinear_order: Vec<u32> = (0..n * n).filter(|&k| interpolate[k]).map(|k| k as u32).collect();
+        bilinear_order.sort_unstable_by_key(|&k| (bilinear[k as usize].0, k));
+        Lut { grid, pixel, z_deg, dir, bilinear, interpolate, memory_order, bilinear_order }
     }
 
     /// Cells with a pixel.
@@ -327,6 +337,71 @@ impl CellSky {
     }
 }
 
+/// A frame's pixels as a map's cells read them, gathered once per frame in the image's memory order
+/// ([`Lut::memory_order`]): the exposure check, the frame's reference and the classification then
+/// read these per-cell buffers (a quarter of a megabyte at 256² cells) instead of jumping through
+/// the image (3 MB at 1024²) three times.
+#[derive(Debug)]
+pub struct CellPixels {
+    /// Per cell: its nearest pixel (`[0; 3]` where it has none).
+    pub nearest: Vec<[u8; 3]>,
+    /// Per cell: the reading of plain sky, bilinear where [`Lut::interpolate`] says so, else the
+    /// nearest pixel.
+    pub plain: Vec<[u8; 3]>,
+}
+
+mod pool {
+    crate::pool::typed_pool!(take_rgb, give_rgb, [u8; 3], RGB);
+    crate::pool::typed_pool!(take_u8, give_u8, u8, U8);
+}
+
+impl Drop for CellPixels {
+    fn drop(&mut self) {
+        pool::give_rgb(std::mem::take(&mut self.nearest));
+        pool::give_rgb(std::mem::take(&mut self.plain));
+    }
+}
+
+impl CellPixels {
+    /// Read each cell's pixels of an image (the one the table was built for), in memory order.
+    pub fn gather(img: &image::RgbImage, lut: &Lut) -> CellPixels {
+        let raw = img.as_raw();
+        let n = lut.pixel.len();
+        let w = img.width() as usize;
+        // Bilinear reading of the 2 × 2 around the cell's exact image point (weights in 1/256).
+        let px = |k: usize| {
+            let (p, [fx, fy]) = lut.bilinear[k];
+            let i = p as usize * 3;
+            let j = i + 3 * w;
+            let (fx, fy) = (fx as u32, fy as u32);
+            // The two pixels of each row as one slice (two bounds checks, not twelve).
+            let (t, b) = (&raw[i..i + 6], &raw[j..j + 6]);
+            let mut out = [0u8; 3];
+            for (c, o) in out.iter_mut().enumerate() {
+                let top = t[c] as u32 * (256 - fx) + t[3 + c] as u32 * fx;
+                let bottom = b[c] as u32 * (256 - fx) + b[3 + c] as u32 * fx;
+                *o = ((top * (256 - fy) + bottom * fy + 32768) >> 16) as u8;
+            }
+            out
+        };
+        let (mut nearest, mut plain) = (pool::take_rgb(), pool::take_rgb());
+        nearest.resize(n, [0; 3]);
+        plain.resize(n, [0; 3]);
+        // Two passes without a branch per cell (a mispredicted branch would stall the reads
+        // waiting on memory): every cell's nearest pixel, then the bilinear readings.
+        for &(k, p) in &lut.memory_order {
+            let i = p as usize * 3;
+            let rgb: [u8; 3] = raw[i..i + 3].try_into().expect("three bytes");
+            nearest[k as usize] = rgb;
+            plain[k as usize] = rgb;
+        }
+        for &k in &lut.bilinear_order {
+            plain[k as usize] = px(k as usize);
+        }
+        CellPixels { nearest, plain }
+    }
+}
+
 /// Build a frame's cloud map: read each cell's pixel, estimate the frame's reference offset from
 /// them, and classify.
 pub fn build_map(img: &image::RgbImage, lut: &Lut, sun_dir: Option<[f32; 3]>, params: &SegmentParams, reference: &Reference) -> CloudMap {
@@ -335,46 +410,30 @@ pub fn build_map(img: &image::RgbImage, lut: &Lut, sun_dir: Option<[f32; 3]>, pa
 
 /// [`build_map`] with the cells' sun angles and default references given.
 pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> CloudMap {
-    let raw = img.as_raw();
+    build_map_from(&CellPixels::gather(img, lut), lut, sky, params, reference)
+}
+
+/// [`build_map_with`] from the frame's pixels already gathered.
+pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> CloudMap {
     let n = lut.pixel.len();
-    let w = img.width() as usize;
-    // Bilinear reading of the 2 × 2 around the cell's exact image point (weights in 1/256).
-    let px = |k: usize| {
-        let (p, [fx, fy]) = lut.bilinear[k];
-        let i = p as usize * 3;
-        let j = i + 3 * w;
-        let (fx, fy) = (fx as u32, fy as u32);
-        // The two pixels of each row as one slice (two bounds checks, not twelve).
-        let (t, b) = (&raw[i..i + 6], &raw[j..j + 6]);
-        let mut out = [0u8; 3];
-        for (c, o) in out.iter_mut().enumerate() {
-            let top = t[c] as u32 * (256 - fx) + t[3 + c] as u32 * fx;
-            let bottom = b[c] as u32 * (256 - fx) + b[3 + c] as u32 * fx;
-            *o = ((top * (256 - fy) + bottom * fy + 32768) >> 16) as u8;
-        }
-        out
-    };
     let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] };
     // Nearest-pixel reading where clipping is judged (the sample's glare rings, and cells near the
     // sun): interpolation would blur the clipped disc's edge into near-white unclipped values.
-    let nearest = |p: u32| {
-        let i = p as usize * 3;
-        [raw[i], raw[i + 1], raw[i + 2]]
-    };
-    let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (nearest(lut.pixel[k]), geom(k), sky.default_rb[k]));
+    let (nearest, plain) = (&pixels.nearest[..n], &pixels.plain[..n]);
+    let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (nearest[k], geom(k), sky.default_rb[k]));
     let fr = reference.for_frame_with(params, sample);
     let mut score = vec![f32::NAN; n];
     let mut class = vec![0u8; n];
     let mut in_view = vec![false; n];
-    let mut blue = vec![0u8; n];
+    let mut blue = pool::take_u8();
+    blue.resize(n, 0);
     let mut dark = vec![false; if fr.exposure.is_some() { n } else { 0 }];
     for k in 0..n {
-        let p = lut.pixel[k];
-        if p == NO_PIXEL {
+        if lut.pixel[k] == NO_PIXEL {
             continue;
         }
         in_view[k] = true;
-        let (rgb, s, c) = fr.classify_sample(sky, k, lut.z_deg[k], || if lut.interpolate[k] { px(k) } else { nearest(p) }, || nearest(p));
+        let (rgb, s, c) = fr.classify_sample(sky, k, lut.z_deg[k], || plain[k], || nearest[k]);
         score[k] = s;
         class[k] = c;
         blue[k] = rgb[2];
@@ -396,6 +455,7 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
     }
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     let brightness = (0..n).map(|k| if cloudy(class[k]) { (blue[k] as f32 - mean) / 255.0 } else { 0.0 }).collect();
+    pool::give_u8(blue);
     CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness }
 }
 

@@ -14,6 +14,10 @@ without and with the ensemble, and frames per second of decode plus the whole st
 other on one thread. On two threads: ours with decoding on a thread of its own overlapping the step
 and the engine's pool at two threads (as replay runs), against the peer's `fps_e2e_step` with
 OpenCV at two threads.
+
+With `--baseline BIN` each round also runs a second nephocast binary (e.g. the build before a
+change) right after the first, and prints its ratios too: a before/after comparison made under the
+same load, against the same peer run.
 """
 import argparse
 import json
@@ -37,38 +41,55 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--frames", type=int, default=40, help="frames of nephocast bench")
     ap.add_argument("--decode-reduction", type=int, default=0, help="nephocast bench --decode-reduction (0: automatic)")
+    ap.add_argument("--baseline", help="a second nephocast binary, run after --bin in every round against the same peer run")
     a = ap.parse_args()
     rows = []
+    base_rows = []
     for k in range(a.rounds):
         peer = last_json(subprocess.run([a.python, a.peer, "--quick"], capture_output=True, text=True, check=True).stdout)
         p = peer["sizes"]["1024"]["threads"]["1"]
         p2 = peer["sizes"]["1024"]["threads"].get("2", p)
-        ours = last_json(subprocess.run([a.bin, "bench", "--size", "1024", "--threads", "1", "--frames", str(a.frames),
-                                         "--decode-reduction", str(a.decode_reduction), "--json"],
-                                        capture_output=True, text=True, check=True).stdout)
-        peer_compute = p["segment"] + p["rectify"] + p["motion_block"] + p["forecast"]
-        r = {
-            "peer_compute_ms": peer_compute,
-            "peer_decode_ms": p["decode"],
-            "peer_fps_e2e": p["fps_e2e_step"],
-            "step_ms": ours["step_ms_median"],
-            "step_with_ensemble_ms": ours["step_with_ensemble_ms_median"],
-            "decode_ms": ours["decode_ms"],
-            "decode_whole_ms": ours["decode_whole_ms"],
-            "fps_e2e": ours["throughput_fps"],
-            "peer_fps_e2e_2threads": p2["fps_e2e_step"],
-            "fps_e2e_overlapped_2threads": ours["throughput_fps_overlapped"],
-        }
-        r["ratio_step"] = peer_compute / r["step_ms"]
-        r["ratio_step_with_ensemble"] = peer_compute / r["step_with_ensemble_ms"]
-        r["ratio_decode"] = p["decode"] / r["decode_ms"]
-        r["ratio_fps_e2e"] = r["fps_e2e"] / r["peer_fps_e2e"]
-        r["ratio_fps_e2e_2threads"] = r["fps_e2e_overlapped_2threads"] / r["peer_fps_e2e_2threads"]
-        rows.append(r)
-        print(f"round {k + 1}: " + ", ".join(f"{key} {v:.2f}" for key, v in r.items()), flush=True)
+        rows.append(ratios(a, a.bin, p, p2))
+        print(f"round {k + 1}: " + ", ".join(f"{key} {v:.2f}" for key, v in rows[-1].items()), flush=True)
+        if a.baseline:
+            base_rows.append(ratios(a, a.baseline, p, p2))
+            print(f"round {k + 1} baseline: " + ", ".join(f"{key} {v:.2f}" for key, v in base_rows[-1].items()), flush=True)
     med = {key: statistics.median(r[key] for r in rows) for key in rows[0]}
     print("median: " + ", ".join(f"{key} {v:.2f}" for key, v in med.items()))
-    print(json.dumps({"rounds": rows, "median": med}))
+    out = {"rounds": rows, "median": med}
+    if base_rows:
+        base_med = {key: statistics.median(r[key] for r in base_rows) for key in base_rows[0]}
+        print("baseline median: " + ", ".join(f"{key} {v:.2f}" for key, v in base_med.items()))
+        out["baseline_rounds"] = base_rows
+        out["baseline_median"] = base_med
+    print(json.dumps(out))
+
+
+def ratios(a, binary: str, p: dict, p2: dict) -> dict:
+    """One nephocast bench run of `binary` and its ratios against the peer's figures `p` (one
+    OpenCV thread) and `p2` (two)."""
+    ours = last_json(subprocess.run([binary, "bench", "--size", "1024", "--threads", "1", "--frames", str(a.frames),
+                                     "--decode-reduction", str(a.decode_reduction), "--json"],
+                                    capture_output=True, text=True, check=True).stdout)
+    peer_compute = p["segment"] + p["rectify"] + p["motion_block"] + p["forecast"]
+    r = {
+        "peer_compute_ms": peer_compute,
+        "peer_decode_ms": p["decode"],
+        "peer_fps_e2e": p["fps_e2e_step"],
+        "step_ms": ours["step_ms_median"],
+        "step_with_ensemble_ms": ours["step_with_ensemble_ms_median"],
+        "decode_ms": ours["decode_ms"],
+        "decode_whole_ms": ours["decode_whole_ms"],
+        "fps_e2e": ours["throughput_fps"],
+        "peer_fps_e2e_2threads": p2["fps_e2e_step"],
+        "fps_e2e_overlapped_2threads": ours["throughput_fps_overlapped"],
+    }
+    r["ratio_step"] = peer_compute / r["step_ms"]
+    r["ratio_step_with_ensemble"] = peer_compute / r["step_with_ensemble_ms"]
+    r["ratio_decode"] = p["decode"] / r["decode_ms"]
+    r["ratio_fps_e2e"] = r["fps_e2e"] / r["peer_fps_e2e"]
+    r["ratio_fps_e2e_2threads"] = r["fps_e2e_overlapped_2threads"] / r["peer_fps_e2e_2threads"]
+    return r
 
 
 if __name__ == "__main__":

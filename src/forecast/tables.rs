@@ -126,34 +126,38 @@ impl TransmittanceMap {
         }
         // Row by row, appended (no zero-fill first): the table is 1 MB, the pass memory-bound.
         let unit = SHARE_UNIT as i32;
-        let step: [[i32; FEATURES + 1]; 4] = [[0, 0, 0, 0, 0], [unit, 0, 0, 0, 1], [0, unit, 0, 0, 1], [0, 0, unit, 0, 1]];
+        let step: [[i32; FEATURES]; 4] = [[0, 0, 0, 0], [unit, 0, 0, 0], [0, unit, 0, 0], [0, 0, unit, 0]];
         let quantise = |v: f32| round_i32(v as f64 * SHARE_UNIT);
         // Each row is built in a scratch row from row slices (no bounds checks, no capacity check
-        // per cell) and appended.
+        // per cell) and appended. The four features' running sums are kept apart from the count's,
+        // so that they stay in one vector register (as one array of five they were taken apart and
+        // put together again for every cell).
         let mut sat = pool::take_sat();
         sat.reserve(w * w);
         sat.extend(std::iter::repeat_n([0i32; FEATURES + 1], w));
         let mut row = vec![[0i32; FEATURES + 1]; w];
         for j in 0..n {
-            let mut rs = [0i32; FEATURES + 1];
+            let (mut rs, mut rc) = ([0i32; FEATURES], 0i32);
             let (up, out) = (&sat[j * w + 1..(j + 1) * w], &mut row[1..w]);
             let (cls, st) = (&class[j * n..j * n + n], &state[j * n..j * n + n]);
             for i in 0..n {
-                let add = if st[i] >= FILLED {
+                let (add, count) = if st[i] >= FILLED {
                     let f = filled[(st[i] - FILLED) as usize];
-                    [quantise(f[0]), quantise(f[1]), quantise(f[2]), quantise(f[3]), 1]
+                    ([quantise(f[0]), quantise(f[1]), quantise(f[2]), quantise(f[3])], 1)
                 } else {
-                    let mut a = step[(cls[i] & 3) as usize];
+                    let c = (cls[i] & 3) as usize;
+                    let mut a = step[c];
                     if a[1] + a[2] > 0 {
                         a[3] = quantise(bright(j * n + i));
                     }
-                    a
+                    (a, (c != 0) as i32)
                 };
-                for q in 0..=FEATURES {
+                for q in 0..FEATURES {
                     rs[q] += add[q];
                 }
+                rc += count;
                 let u = up[i];
-                out[i] = std::array::from_fn(|q| u[q] + rs[q]);
+                out[i] = [u[0] + rs[0], u[1] + rs[1], u[2] + rs[2], u[3] + rs[3], u[4] + rc];
             }
             sat.extend_from_slice(&row);
         }

@@ -539,10 +539,12 @@ impl Nowcaster {
         let cbh = self.plane.height_m(configured);
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let lut = self.map_stage.lut(cam, obstruction, &self.site.file.map, (cbh - cam_z).max(10.0));
-        self.frame_qc.check_exposure(&frame.image, &lut, &self.site.file.qc)?;
+        let pixels = crate::cloudmap::CellPixels::gather(&frame.image, &lut);
+        self.frame_qc.check_exposure(&pixels, &lut, &self.site.file.qc)?;
         let t_qc = Clock::now();
         let disk = crate::sundisk::observe(&frame.image, cam, obstruction, &sun, self.site.file.irradiance.sun_disk_radius_deg, self.site.file.segment.saturation_level);
-        let (map, [cf, thin_cf]) = self.map_stage.build(&frame.image, &lut, &sun, &self.site.file.segment);
+        let (map, [cf, thin_cf]) = self.map_stage.build(&pixels, &lut, &sun, &self.site.file.segment);
+        drop(pixels);
         // The sun's record reads this camera's own map, before the second camera fills it.
         let seen = disk.and_then(|d| crate::sundisk::SunThroughCloud::read(d, &map, &lut, &sun));
         self.forecast_stage.observe_sun(&self.site.file.irradiance, seen);

@@ -7,7 +7,7 @@ use std::sync::Arc;
 use chrono::{DateTime, Utc};
 
 use super::{Rejection, SUN_ANGLE_REUSE_DEG};
-use crate::cloudmap::{CloudMap, LutCache, build_map_with};
+use crate::cloudmap::{CellPixels, CloudMap, LutCache, build_map_from};
 use crate::forecast::{IrradianceParams, TransmittanceMap};
 use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, TrackedLayer, label_layers_with, measure_with};
 use crate::segment::Reference;
@@ -71,15 +71,12 @@ impl FrameQcStage {
 
     /// Exposure over the map's pixels: the mean level and the share of saturated pixels (every
     /// fifth map pixel) against [`crate::qc::QcParams`].
-    pub(super) fn check_exposure(&self, image: &image::RgbImage, lut: &crate::cloudmap::Lut, qc: &crate::qc::QcParams) -> Result<(), Rejection> {
-        let raw = image.as_raw();
+    pub(super) fn check_exposure(&self, pixels: &CellPixels, lut: &crate::cloudmap::Lut, qc: &crate::qc::QcParams) -> Result<(), Rejection> {
         let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
-        for &p in lut.pixel.iter().step_by(5) {
+        for (&p, &[r, g, b]) in lut.pixel.iter().zip(&pixels.nearest).step_by(5) {
             if p == crate::cloudmap::NO_PIXEL {
                 continue;
             }
-            let i = p as usize * 3;
-            let (r, g, b) = (raw[i], raw[i + 1], raw[i + 2]);
             sum += (r as f64 + g as f64 + b as f64) / 3.0;
             sat += (r >= 250 && g >= 250 && b >= 250) as usize;
             n += 1;
@@ -127,7 +124,7 @@ impl MapStage {
 
     /// The cloud map of a frame and its cover `[cloud, thin]`; a nearly clear frame also teaches
     /// the clear-sky reference.
-    pub(super) fn build(&mut self, image: &image::RgbImage, lut: &Arc<crate::cloudmap::Lut>, sun: &SunPosition, sp: &crate::segment::SegmentParams) -> (Arc<CloudMap>, [f64; 2]) {
+    pub(super) fn build(&mut self, pixels: &CellPixels, lut: &Arc<crate::cloudmap::Lut>, sun: &SunPosition, sp: &crate::segment::SegmentParams) -> (Arc<CloudMap>, [f64; 2]) {
         let sd = sun.direction_enu();
         let sd3 = [sd[0] as f32, sd[1] as f32, sd[2] as f32];
         let sun_dir = Some(sd3);
@@ -151,13 +148,11 @@ impl MapStage {
         } else {
             sp
         };
-        let map = Arc::new(build_map_with(image, lut, sky, map_sp, &self.reference));
+        let map = Arc::new(build_map_from(pixels, lut, sky, map_sp, &self.reference));
         let [cf, thin_cf] = map.cover(lut, sp.cloud_fraction_zenith_deg as f32);
-        let raw = image.as_raw();
-        let sample = (0..lut.pixel.len()).filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL).map(|k| {
-            let i = lut.pixel[k] as usize * 3;
-            ([raw[i], raw[i + 1], raw[i + 2]], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] })
-        });
+        let sample = (0..lut.pixel.len())
+            .filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL)
+            .map(|k| (pixels.nearest[k], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] }));
         self.reference.learn_if_clear(sp, cf, sample);
         (map, [cf, thin_cf])
     }
