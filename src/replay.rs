@@ -78,6 +78,9 @@ pub struct ReplaySummary {
     pub last_motion_mps: Option<[f64; 2]>,
     /// The cloud base height the last used frame assumed, with its uncertainty and source.
     pub last_cbh: Option<crate::cbh::CbhEstimate>,
+    /// Height of the cloud map's plane at the last used frame \[m\], and how often it moved to
+    /// follow the estimated base (`clouds.map_follows_estimate`).
+    pub map_plane: Option<(f64, usize)>,
     /// Output tables written (final paths; overlays not listed).
     pub outputs: Vec<PathBuf>,
 }
@@ -166,6 +169,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
     let (mut step_ms, mut decode_ms) = (vec![], vec![]);
     let mut last_motion = None;
     let mut last_cbh = None;
+    let mut last_plane_m = None;
     let mut outputs = vec![];
     // Frames are read and decoded one or two ahead on a thread of their own, so that decoding frame
     // n + 1 overlaps the engine's step on frame n.
@@ -195,6 +199,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                     step_ms.push(nc.times.map_ms + nc.times.motion_ms + nc.times.forecast_ms + nc.times.ensemble_ms + nc.times.qc_ms);
                     tables.add(&nc, &f.time, &name, dms);
                     last_cbh = Some(nc.cbh);
+                    last_plane_m = Some(nc.cbh_m);
                     if nc.motion.is_some() {
                         last_motion = nc.motion.map(|m| m.v_mps);
                     }
@@ -227,6 +232,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
         wall_s: wall.elapsed().as_secs_f64(),
         last_motion_mps: last_motion,
         last_cbh,
+        map_plane: last_plane_m.map(|h| (h, nowcaster.map_plane_moves())),
         outputs,
     };
     Ok((summary, set))

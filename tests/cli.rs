@@ -445,6 +445,15 @@ fn calibrate_then_replay_with_the_written_file() {
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let fc = std::fs::read_to_string(d.path().join("out/forecasts.csv")).unwrap();
     assert!(fc.lines().count() > 100, "{} forecast rows", fc.lines().count());
+    // One camera, no estimate of the base: the map's plane stays where the site puts it, and the
+    // summary says so.
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(text.lines().any(|l| l.starts_with("cloud map plane: ") && l.contains("where it started")), "{text}");
+    // The library carries the clear sky's brightness (the dark-cloud test's reference).
+    let lib = std::fs::read_to_string(seq.join("calibration").join(&first)).unwrap();
+    assert_eq!(lib.lines().next(), Some("zenith_from_deg,gamma_from_deg,rb,weight,brightness"));
+    let bright: Vec<f64> = lib.lines().skip(1).filter_map(|l| l.rsplit(',').next()?.parse().ok()).collect();
+    assert!(!bright.is_empty() && bright.iter().all(|v| (1.0..=255.0).contains(v)), "brightness column {:?}", &bright[..bright.len().min(5)]);
 }
 
 /// The horizon-0 skill (persistence is exact there) is shown as "n/a", never NaN: on the console

@@ -93,6 +93,12 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
     if let Some(c) = s.last_cbh {
         crate::say!("cloud base height at the end: {:.0} m ± {:.0} m (1σ), {} (per frame in motion.csv)", c.cbh_m, c.sigma_m, c.source.name());
     }
+    if let Some((h, moves)) = s.map_plane {
+        match moves {
+            0 => crate::say!("cloud map plane: {h:.0} m, where it started (map_plane_m in motion.csv)"),
+            n => crate::say!("cloud map plane at the end: {h:.0} m, moved {n} time{} to follow the estimated base (map_plane_m in motion.csv)", if n == 1 { "" } else { "s" }),
+        }
+    }
     for p in &s.outputs {
         crate::say!("wrote {}", p.display());
     }
