@@ -177,12 +177,11 @@ mod tests {
         assert!(!darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0));
     }
 
-    /// An ideal camera with the sun at zenith 60°, azimuth 90°.
-    fn whitish_scene(size: u32) -> (crate::camera::Camera, crate::segment::ImageGeometry, [f32; 3]) {
-        let cam = crate::camera::Camera::ideal(size);
-        let geom = crate::segment::ImageGeometry::from_camera(&cam, None);
+    /// An ideal camera's pixel geometry, and the sun at zenith 60°, azimuth 90°.
+    fn ideal_scene(size: u32) -> (crate::segment::ImageGeometry, [f32; 3]) {
+        let geom = crate::segment::ImageGeometry::from_camera(&crate::camera::Camera::ideal(size), None);
         let (z, a) = (60f32.to_radians(), 90f32.to_radians());
-        (cam, geom, [z.sin() * a.sin(), z.sin() * a.cos(), z.cos()])
+        (geom, [z.sin() * a.sin(), z.sin() * a.cos(), z.cos()])
     }
 
     fn library_from(img: &image::RgbImage, geom: &crate::segment::ImageGeometry, sun: [f32; 3], params: &crate::segment::SegmentParams) -> crate::segment::Reference {
@@ -203,7 +202,7 @@ mod tests {
     #[test]
     fn a_patch_darker_than_the_learnt_clear_sky_is_thick_cloud() {
         use crate::segment::{segment_image, Class, Reference, SegmentParams};
-        let (_, geom, sun) = whitish_scene(160);
+        let (geom, sun) = ideal_scene(160);
         let params = SegmentParams::default();
         let clear_rgb = [196u8, 214, 230];
         let blue = [90u8, 130, 220];
@@ -246,7 +245,7 @@ mod tests {
     #[test]
     fn library_brightness_round_trips_through_csv() {
         use crate::segment::{Reference, SegmentParams};
-        let (_, geom, sun) = whitish_scene(96);
+        let (geom, sun) = ideal_scene(96);
         let params = SegmentParams::default();
         let img = image::RgbImage::from_pixel(96, 96, image::Rgb([150, 170, 220]));
         let lib = library_from(&img, &geom, sun, &params);

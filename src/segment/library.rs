@@ -234,23 +234,24 @@ impl Reference {
         let rate = params.library_rate as f32;
         for i in 0..sum.len() {
             if cnt[i] >= 3 {
-                let m = (sum[i] / cnt[i] as f64) as f32;
-                if self.weight[i] == 0.0 {
-                    self.lib[i] = m;
-                } else {
-                    self.lib[i] += rate * (m - self.lib[i]);
-                }
+                blend(&mut self.lib[i], (sum[i] / cnt[i] as f64) as f32, rate, self.weight[i] == 0.0);
                 self.weight[i] = (self.weight[i] + 1.0).min(100.0);
             }
             if cnt_v[i] >= 3 {
-                let v = (sum_v[i] / cnt_v[i] as f64) as f32;
-                if self.bright[i] == 0.0 {
-                    self.bright[i] = v;
-                } else {
-                    self.bright[i] += rate * (v - self.bright[i]);
-                }
+                let fresh = self.bright[i] == 0.0;
+                blend(&mut self.bright[i], (sum_v[i] / cnt_v[i] as f64) as f32, rate, fresh);
             }
         }
         self.library_frames += 1;
+    }
+}
+
+/// A library bin's exponential mean: the new frame's value `v` when the bin is `fresh`, else moved
+/// toward it by `rate`.
+fn blend(slot: &mut f32, v: f32, rate: f32, fresh: bool) {
+    if fresh {
+        *slot = v;
+    } else {
+        *slot += rate * (v - *slot);
     }
 }

@@ -558,6 +558,11 @@ impl SkyGeometry {
 mod tests {
     use super::*;
 
+    /// A frame's reference without offset, glare measured or exposure.
+    fn plain_reference<'a>(r: &'a Reference, p: &'a SegmentParams) -> FrameReference<'a> {
+        FrameReference { reference: r, params: p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None }
+    }
+
     fn geom(z: f32, g: f32) -> PixelGeom {
         PixelGeom { z_deg: z, gamma_deg: g }
     }
@@ -573,7 +578,7 @@ mod tests {
     fn blue_is_clear_white_is_thick_grey_blue_is_thin() {
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
+        let fr = plain_reference(&r, &p);
         assert_eq!(fr.classify([70, 110, 200], geom(30.0, 90.0)).1, Class::Clear);
         assert_eq!(fr.classify([230, 232, 240], geom(30.0, 90.0)).1, Class::Thick);
         assert_eq!(fr.classify([160, 175, 210], geom(30.0, 90.0)).1, Class::Thin);
@@ -584,7 +589,7 @@ mod tests {
         // R/B 0.80 is cloud far from the sun but clear sky 5° from it (default reference there: 0.81).
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
+        let fr = plain_reference(&r, &p);
         assert_eq!(fr.classify([199, 219, 248], geom(40.0, 5.0)).1, Class::Clear);
         assert_ne!(fr.classify([199, 219, 248], geom(40.0, 100.0)).1, Class::Clear);
     }
@@ -593,7 +598,7 @@ mod tests {
     fn saturated_sun_is_unknown_and_beyond_zenith_limit_too() {
         let p = SegmentParams::default();
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
+        let fr = plain_reference(&r, &p);
         assert_eq!(fr.classify([255, 255, 255], geom(30.0, 1.0)).1, Class::Unknown);
         assert_eq!(fr.classify([70, 110, 200], geom(91.0, 90.0)).1, Class::Unknown);
     }
@@ -629,7 +634,7 @@ mod tests {
         assert!((p.thick_at(90.0) - (p.thick_score - 0.2) as f32).abs() < 1e-6);
         // (60/90)⁴ = 0.1975: a score of 0.84 is thick at 60° (threshold 0.835), thin at the zenith.
         let r = Reference::default();
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
+        let fr = plain_reference(&r, &p);
         let reference_rb = p.default_reference(60.0, 90.0);
         let rb = reference_rb + 0.84 * (p.cloud_rb as f32 - reference_rb);
         let rgb = [(rb * 200.0).round() as u8, 200, 200];
@@ -645,7 +650,7 @@ mod tests {
         let mut r = Reference::default();
         let sample = (0..50).map(|_| ([150u8, 170, 200], geom(31.0, 91.0)));
         r.learn(&p, sample);
-        let fr = FrameReference { reference: &r, params: &p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None };
+        let fr = plain_reference(&r, &p);
         assert!((fr.at(geom(31.0, 91.0)) - 0.75).abs() < 1e-6);
         assert_eq!(fr.classify([150, 170, 200], geom(31.0, 91.0)).1, Class::Clear);
     }

@@ -78,40 +78,41 @@ pub fn write_yardstick(scene: &Scene, out: &Path) -> Result<(), SynthError> {
 mod tests {
     use super::*;
 
+    /// The truth's plant-mean GHI of `scene` at `t` (the mean over the same points).
+    fn plant_truth(scene: &Scene, t: &chrono::DateTime<chrono::Utc>) -> f64 {
+        let points: Vec<[f64; 2]> = scene.plant.blocks.iter().flat_map(|b| b.points_m.iter().copied()).collect();
+        let inst = scene.world.instant(t);
+        points.iter().map(|p| scene.world.irradiance_at(&inst, *p).ghi_wm2).sum::<f64>() / points.len() as f64
+    }
+
+    /// A 2-minute `broken-cumulus-fast` (seed 5), its sky frozen (no evolution, constant cover)
+    /// or as the scene has it.
+    fn short_scene(frozen: bool) -> Scene {
+        let mut spec = crate::synth::scene("broken-cumulus-fast").expect("scene");
+        spec.duration_min = 2.0;
+        if frozen {
+            for l in &mut spec.layers {
+                l.evolution_min = 1e9;
+                l.cover_end = l.cover_start;
+            }
+        }
+        Scene::new(spec, 5).expect("scene")
+    }
+
     /// Frozen advection is exact for a field that does not evolve: with the evolution switched off
     /// and constant cover, the yardstick at every horizon equals the truth at its target time.
     /// With the scene's own evolution it differs (the yardstick is not the truth).
     #[test]
     fn frozen_advection_of_a_frozen_sky_is_the_truth() {
-        let mut spec = crate::synth::scene("broken-cumulus-fast").expect("scene");
-        spec.duration_min = 2.0;
-        for l in &mut spec.layers {
-            l.evolution_min = 1e9;
-            l.cover_end = l.cover_start;
-        }
-        let scene = Scene::new(spec.clone(), 5).expect("scene");
+        let valid = |x: &FrozenForecast| x.issue + Duration::seconds(i64::from(x.horizon_s));
+        let scene = short_scene(true);
         let f = frozen_advection(&scene);
         assert_eq!(f.len(), scene.frame_times().len() * HORIZONS_S.len());
-        let points: Vec<[f64; 2]> = scene.plant.blocks.iter().flat_map(|b| b.points_m.iter().copied()).collect();
-        let truth = |t: &chrono::DateTime<chrono::Utc>| {
-            let inst = scene.world.instant(t);
-            points.iter().map(|p| scene.world.irradiance_at(&inst, *p).ghi_wm2).sum::<f64>() / points.len() as f64
-        };
-        let mut worst: f64 = 0.0;
-        for x in f.iter().step_by(7) {
-            worst = worst.max((x.ghi_wm2 - truth(&(x.issue + Duration::seconds(i64::from(x.horizon_s))))).abs());
-        }
+        let worst = f.iter().step_by(7).map(|x| (x.ghi_wm2 - plant_truth(&scene, &valid(x))).abs()).fold(0.0, f64::max);
         assert!(worst < 1e-3, "frozen sky: yardstick differs from the truth by {worst} W/m²");
         // The scene's own evolving sky: the 15-minute yardstick is not the truth.
-        let evolving = Scene::new(crate::synth::scene("broken-cumulus-fast").map(|mut s| {
-            s.duration_min = 2.0;
-            s
-        }).expect("scene"), 5).expect("scene");
-        let g = frozen_advection(&evolving);
-        let differ = g.iter().filter(|x| x.horizon_s == 900).any(|x| (x.ghi_wm2 - {
-            let inst = evolving.world.instant(&(x.issue + Duration::seconds(900)));
-            points.iter().map(|p| evolving.world.irradiance_at(&inst, *p).ghi_wm2).sum::<f64>() / points.len() as f64
-        }).abs() > 1.0);
+        let evolving = short_scene(false);
+        let differ = frozen_advection(&evolving).iter().filter(|x| x.horizon_s == 900).any(|x| (x.ghi_wm2 - plant_truth(&evolving, &valid(x))).abs() > 1.0);
         assert!(differ, "an evolving sky's yardstick equals its truth");
     }
 

@@ -1,0 +1,357 @@
+//! Cloud base height from shadow timing at the plant's pyranometers ([`ShadowTiming`]).
+//!
+//! The cloud map is built on a plane at an assumed height `h_map`. The camera only measures
+//! directions, so a cloud truly at `h` lies on the map `h_map / h` times as far from the camera as
+//! it really is, and the motion measured on the map is `h_map / h` times its true speed. A ground
+//! point `g` (relative to the camera) is shaded by the map point `g · h_map / h` plus its sun-ray
+//! offset at the map's height; a reading taken `lag` seconds before the frame is shaded by the map
+//! point that has since moved by `v_map · lag` (both exactly as the forecast looks up the map with
+//! [`crate::forecast::Advection::cbh_factor`]). Only the pyranometers' positions on the map depend
+//! on the candidate height: where they are, and so when a mapped cloud edge reached each of them.
+//!
+//! For each frame and each candidate height (a log-spaced scan around the map height) the
+//! predicted beam transmittance at every pyranometer reading of the last
+//! [`ShadowParams::sample_window_s`] is paired with the measured clear-sky index; the cost of a
+//! candidate is `1 − r²` of the straight-line fit of measured on predicted (so the diffuse level
+//! and the transmittances' scale do not matter, only where and when the shadows fall). Costs are
+//! summed over the frames of the last [`ShadowParams::window_s`] (their sufficient statistics are
+//! kept, so the sum is exact); the estimate is the minimum, refined by a parabola in `ln h`. Its
+//! uncertainty is the spread of the minimum over a block bootstrap (blocks of
+//! [`ShadowParams::block_s`] of frames), never below half a scan step. No estimate is given
+//! without shadow events (clear sky or overcast: the measured index does not move), with fewer
+//! than [`ShadowParams::min_blocks`] blocks, a flat cost curve or a minimum at the end of the scan.
+
+use std::collections::VecDeque;
+
+use chrono::{DateTime, Utc};
+
+use crate::cloudmap::Grid;
+use crate::forecast::TransmittanceMap;
+
+/// Settings of [`ShadowTiming`] (own first choices, no source; not tuned: they worked on the
+/// synthetic `cbh-network` scene and the demo as first set).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ShadowParams {
+    /// Frames whose costs are summed: the last this many seconds \[s\].
+    pub window_s: f64,
+    /// Readings paired with each frame: those whose period ended in the last this many seconds \[s\].
+    pub sample_window_s: f64,
+    /// Bootstrap block length \[s\].
+    pub block_s: f64,
+    /// Fewest blocks in the window for an estimate.
+    pub min_blocks: usize,
+    /// Fewest shadow events (a reading whose clear-sky index differs from the previous one by at
+    /// least [`ShadowParams::event_dk`]) in the window.
+    pub min_events: usize,
+    /// Change in clear-sky index between consecutive readings that counts as a shadow edge.
+    pub event_dk: f64,
+    /// Scan: candidate heights from `h_map / span` to `h_map · span`.
+    pub span: f64,
+    /// Scan: number of candidates (log-spaced).
+    pub candidates: usize,
+    /// Bootstrap resamples.
+    pub resamples: usize,
+    /// The cost minimum must be below this share of the median cost (else the curve is flat).
+    pub max_contrast: f64,
+}
+
+impl Default for ShadowParams {
+    fn default() -> Self {
+        ShadowParams {
+            window_s: 600.0,
+            sample_window_s: 120.0,
+            block_s: 60.0,
+            min_blocks: 3,
+            min_events: 4,
+            event_dk: 0.15,
+            span: 3.0,
+            candidates: 49,
+            resamples: 64,
+            max_contrast: 0.9,
+        }
+    }
+}
+
+/// One pyranometer reading for [`ShadowTiming::observe`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Reading {
+    /// Which pyranometer (index into the positions given to `observe`).
+    pub sensor: usize,
+    /// Middle of the averaging period.
+    pub mid: DateTime<Utc>,
+    /// Measured clear-sky index (GHI over clear-sky GHI).
+    pub kstar: f64,
+    /// Sun zenith at `mid` \[rad\].
+    pub zenith_rad: f64,
+    /// Sun azimuth at `mid` \[rad\].
+    pub azimuth_rad: f64,
+}
+
+/// Sufficient statistics of a straight-line fit: n, Σx, Σy, Σxx, Σxy, Σyy.
+pub(super) type Stats = [f64; 6];
+
+pub(super) fn r2_cost(s: &Stats) -> f64 {
+    let n = s[0];
+    if n < 3.0 {
+        return f64::NAN;
+    }
+    let sxx = s[3] - s[1] * s[1] / n;
+    let sxy = s[4] - s[1] * s[2] / n;
+    let syy = s[5] - s[2] * s[2] / n;
+    if sxx <= 1e-12 || syy <= 1e-12 {
+        return 1.0;
+    }
+    // Shade must lower the index: a negative slope explains nothing.
+    if sxy <= 0.0 {
+        return 1.0;
+    }
+    (1.0 - sxy * sxy / (sxx * syy)).clamp(0.0, 1.0)
+}
+
+/// What [`ShadowTiming::estimate`] found.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ShadowFit {
+    /// Estimated cloud base height \[m\].
+    pub cbh_m: f64,
+    /// Sigma of `ln h`.
+    pub rel_sigma: f64,
+    /// Shadow events in the window.
+    pub events: usize,
+    /// Frames in the window.
+    pub frames: usize,
+    /// Cost (`1 − r²`) at the minimum and its median over the scan.
+    pub cost_min: f64,
+    /// Median cost over the scan.
+    pub cost_median: f64,
+}
+
+/// Why [`ShadowTiming::estimate`] gave no height.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum NoFit {
+    /// Too few frames with readings in the window.
+    TooFewFrames,
+    /// Too few shadow events (clear sky or overcast).
+    NoEvents,
+    /// The cost curve is flat.
+    Flat,
+    /// The minimum lies at the end of the scan.
+    AtScanEnd,
+}
+
+#[derive(Debug, Clone)]
+struct FrameCost {
+    time: DateTime<Utc>,
+    stats: Vec<Stats>,
+    events: usize,
+}
+
+/// The shadow-timing estimator (see the module documentation).
+#[derive(Debug, Clone)]
+pub struct ShadowTiming {
+    /// Settings.
+    pub params: ShadowParams,
+    frames: VecDeque<FrameCost>,
+    /// `ln` of the height the scan is centred on (the first map height seen).
+    centre_ln: Option<f64>,
+    /// Newest reading time seen per sensor and its index (for events, counted once).
+    last: Vec<Option<(DateTime<Utc>, f64)>>,
+}
+
+impl ShadowTiming {
+    /// An estimator for `sensors` pyranometers.
+    pub fn new(params: ShadowParams, sensors: usize) -> ShadowTiming {
+        ShadowTiming { params, frames: VecDeque::new(), centre_ln: None, last: vec![None; sensors] }
+    }
+
+    /// Candidate factors of the scan, relative to its centre (the first map height seen).
+    pub fn factors(&self) -> Vec<f64> {
+        let n = self.params.candidates.max(3);
+        let l = self.params.span.max(1.01).ln();
+        (0..n).map(|i| (-l + 2.0 * l * i as f64 / (n - 1) as f64).exp()).collect()
+    }
+
+    /// Add a frame: its transmittance tables `tm` on the map `grid` (built at `map_cbh_m`), the
+    /// motion on the map `v_map_mps`, the camera position `camera_m`, the pyranometers' positions
+    /// (east, north) \[m\] and their readings completed by `t` (older ones are ignored).
+    #[allow(clippy::too_many_arguments)]
+    pub fn observe(
+        &mut self,
+        t: DateTime<Utc>,
+        tm: &TransmittanceMap,
+        beams: [f64; 4],
+        grid: Grid,
+        map_cbh_m: f64,
+        camera_m: [f64; 3],
+        v_map_mps: [f64; 2],
+        radius_m: f64,
+        positions_m: &[[f64; 2]],
+        readings: &[Reading],
+    ) {
+        let p = self.params;
+        let age = |x: &DateTime<Utc>| (t - *x).num_milliseconds() as f64 / 1000.0;
+        self.frames.retain(|f| age(&f.time) <= p.window_s);
+        // Events among readings not seen before.
+        let mut events = 0;
+        let mut sorted: Vec<&Reading> = readings.iter().filter(|r| r.sensor < self.last.len()).collect();
+        sorted.sort_by_key(|r| (r.sensor, r.mid));
+        for r in &sorted {
+            match self.last[r.sensor] {
+                Some((tm0, _)) if r.mid <= tm0 => continue,
+                Some((_, k0)) if (r.kstar - k0).abs() >= p.event_dk => events += 1,
+                _ => {}
+            }
+            self.last[r.sensor] = Some((r.mid, r.kstar));
+        }
+        let use_r: Vec<&Reading> = readings
+            .iter()
+            .filter(|r| r.sensor < positions_m.len() && r.kstar.is_finite() && age(&r.mid) >= 0.0 && age(&r.mid) <= p.sample_window_s)
+            .collect();
+        if use_r.is_empty() {
+            return;
+        }
+        let r_cells = (radius_m / grid.cell_m).max(0.5);
+        let centre_ln = *self.centre_ln.get_or_insert(map_cbh_m.ln());
+        let stats = self
+            .factors()
+            .iter()
+            .map(|f| {
+                // The candidate height over the map's.
+                let inv_f = 1.0 / (f * (centre_ln - map_cbh_m.ln()).exp());
+                let mut s = [0.0; 6];
+                for r in &use_r {
+                    let lag = age(&r.mid);
+                    let g = positions_m[r.sensor];
+                    let off = crate::forecast::sun_ray_plane_point([0.0, 0.0], map_cbh_m, [camera_m[0] * inv_f, camera_m[1] * inv_f, camera_m[2]], r.zenith_rad, r.azimuth_rad);
+                    let q = [g[0] * inv_f + off[0] + v_map_mps[0] * lag, g[1] * inv_f + off[1] + v_map_mps[1] * lag];
+                    let (cx, cy) = grid.to_cell(q);
+                    let Some(x) = tm.box_mean_with(cx, cy, r_cells, beams) else { continue };
+                    let y = r.kstar;
+                    s[0] += 1.0;
+                    s[1] += x;
+                    s[2] += y;
+                    s[3] += x * x;
+                    s[4] += x * y;
+                    s[5] += y * y;
+                }
+                s
+            })
+            .collect();
+        self.frames.push_back(FrameCost { time: t, stats, events });
+    }
+
+    /// The estimate from the frames of the window ending at the newest frame.
+    ///
+    /// # Errors
+    /// Why there is none ([`NoFit`]).
+    pub fn estimate(&self) -> Result<ShadowFit, NoFit> {
+        let p = self.params;
+        let (Some(newest), Some(centre_ln)) = (self.frames.back(), self.centre_ln) else { return Err(NoFit::TooFewFrames) };
+        let frames: Vec<&FrameCost> = self.frames.iter().collect();
+        let t0 = frames[0].time;
+        let block = |f: &FrameCost| ((f.time - t0).num_milliseconds() as f64 / 1000.0 / p.block_s.max(1.0)).floor() as usize;
+        let n_blocks = frames.iter().map(|f| block(f)).max().unwrap_or(0) + 1;
+        if n_blocks < p.min_blocks {
+            return Err(NoFit::TooFewFrames);
+        }
+        let events: usize = frames.iter().map(|f| f.events).sum();
+        if events < p.min_events {
+            return Err(NoFit::NoEvents);
+        }
+        let factors = self.factors();
+        let ln_f: Vec<f64> = factors.iter().map(|f| f.ln()).collect();
+        let step = ln_f[1] - ln_f[0];
+        let sum_costs = |weights: &[f64]| -> Vec<f64> {
+            (0..factors.len())
+                .map(|c| {
+                    let mut s = [0.0; 6];
+                    for (f, w) in frames.iter().zip(weights) {
+                        for (a, b) in s.iter_mut().zip(&f.stats[c]) {
+                            *a += w * b;
+                        }
+                    }
+                    r2_cost(&s)
+                })
+                .collect()
+        };
+        let argmin = |costs: &[f64]| -> Option<(usize, f64)> {
+            let (i, _) = costs.iter().enumerate().filter(|(_, c)| c.is_finite()).min_by(|a, b| a.1.total_cmp(b.1))?;
+            // Parabola through the minimum and its neighbours, in ln h.
+            let x = if i > 0 && i + 1 < costs.len() && costs[i - 1].is_finite() && costs[i + 1].is_finite() {
+                let (a, b, c) = (costs[i - 1], costs[i], costs[i + 1]);
+                let d = a - 2.0 * b + c;
+                if d > 0.0 { (0.5 * (a - c) / d).clamp(-0.5, 0.5) } else { 0.0 }
+            } else {
+                0.0
+            };
+            Some((i, ln_f[i] + x * step))
+        };
+        let costs = sum_costs(&vec![1.0; frames.len()]);
+        let (i, ln_best) = argmin(&costs).ok_or(NoFit::Flat)?;
+        let mut sorted: Vec<f64> = costs.iter().copied().filter(|c| c.is_finite()).collect();
+        sorted.sort_by(f64::total_cmp);
+        let median = sorted[sorted.len() / 2];
+        if costs[i].is_nan() || costs[i] >= p.max_contrast * median {
+            return Err(NoFit::Flat);
+        }
+        if i == 0 || i + 1 == costs.len() {
+            return Err(NoFit::AtScanEnd);
+        }
+        // Block bootstrap: resample blocks with replacement (deterministic generator).
+        let mut state = 0x9E37_79B9_7F4A_7C15u64 ^ (frames.len() as u64) ^ ((newest.time.timestamp_millis() as u64) << 1);
+        let mut next = || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            state
+        };
+        let mut draws = vec![];
+        for _ in 0..p.resamples {
+            let mut count = vec![0.0; n_blocks];
+            for _ in 0..n_blocks {
+                count[(next() % n_blocks as u64) as usize] += 1.0;
+            }
+            let w: Vec<f64> = frames.iter().map(|f| count[block(f)]).collect();
+            if let Some((_, x)) = argmin(&sum_costs(&w)) {
+                draws.push(x);
+            }
+        }
+        let m = draws.iter().sum::<f64>() / draws.len().max(1) as f64;
+        let sd = (draws.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (draws.len().max(2) - 1) as f64).sqrt();
+        let rel_sigma = sd.max(0.5 * step);
+        Ok(ShadowFit { cbh_m: (centre_ln + ln_best).exp(), rel_sigma, events, frames: frames.len(), cost_min: costs[i], cost_median: median })
+    }
+}
+
+/// Gather the readings of the pyranometer columns `cols` of `m` whose averaging period ended by
+/// `t` and whose middle lies within `window_s` before it, as clear-sky indices (readings under
+/// 50 W/m² of clear-sky GHI, not finite, or negative are left out).
+pub fn readings(
+    m: &crate::io::Measurements,
+    cols: &[usize],
+    t: &DateTime<Utc>,
+    window_s: f64,
+    observer: &crate::sun::Observer,
+    altitude_m: f64,
+    model: crate::clearsky::ClearSkyModel,
+) -> Vec<Reading> {
+    let period = chrono::Duration::milliseconds((m.period_s.max(1.0) * 1000.0) as i64);
+    let end = m.times.partition_point(|x| *x + period <= *t);
+    let from = *t - chrono::Duration::milliseconds((window_s * 1000.0) as i64) - period;
+    let start = m.times.partition_point(|x| *x < from);
+    let mut out = vec![];
+    for i in start..end {
+        let mid = m.times[i] + period / 2;
+        let Ok(sun) = crate::sun::position(&mid, observer) else { continue };
+        let clear = crate::clearsky::clear_sky(&sun, altitude_m, model).ghi_wm2;
+        if clear < 50.0 {
+            continue;
+        }
+        for (s, c) in cols.iter().enumerate() {
+            let v = m.columns[*c][i];
+            if v.is_finite() && v >= 0.0 {
+                out.push(Reading { sensor: s, mid, kstar: v / clear, zenith_rad: sun.apparent_zenith_rad, azimuth_rad: sun.azimuth_rad });
+            }
+        }
+    }
+    out
+}
