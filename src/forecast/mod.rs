@@ -42,10 +42,12 @@ pub use crate::transposition::{aoi_rad, block_plane, poa_hay_davies, tracker_ori
 
 mod blend;
 mod ensemble;
+mod lookup;
 mod tables;
 pub use blend::PersistenceBlend;
 pub use ensemble::{Band, BandWidening, ensemble_with, quantile_sorted};
 pub use tables::TransmittanceMap;
+use lookup::{HorizonLookUp, ScaledPoint, scaled_points};
 
 /// Transmittance and diffuse settings (`[irradiance]` in `site.toml`).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -459,6 +461,14 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
     let rel = if n_layers > 1 && p.beam_clear > 0.0 { p.beam_clear.powi(1 - n_layers as i32) } else { 1.0 };
     let wp = p.fallback_persistence_weight;
     let stride = input.point_stride.max(1);
+    // Each layer's points on the map's plane: at a base `f` times the map's, a point looks up the
+    // map at its offset divided by `f` (the same for every horizon).
+    let mut inv_f = [1.0; MAX_LAYERS];
+    for (l, ad) in input.layers.iter().take(n_layers).enumerate() {
+        inv_f[l] = 1.0 / ad.cbh_factor.max(0.1);
+    }
+    let block_points: Vec<Vec<ScaledPoint>> = input.plant.blocks.iter().map(|b| scaled_points(&b.points_m, stride, &inv_f)).collect();
+    let probe_points = scaled_points(&input.probes_m, 1, &inv_f);
     for hs in skies {
         let (h, t, sun, clear) = (hs.horizon_s, hs.time, &hs.sun, hs.clear);
         let (z, a) = (sun.apparent_zenith_rad, sun.azimuth_rad);
@@ -472,40 +482,19 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
         // camera, advected back by each layer's motion), and each layer's look-up radius: the same
         // for every point at this horizon.
         let cam = input.camera_m;
-        let (mut inv_f, mut off) = ([1.0; MAX_LAYERS], [[0.0; 2]; MAX_LAYERS]);
-        let mut adv = [[0.0; 2]; MAX_LAYERS];
-        let mut r_cells = [0.0; MAX_LAYERS];
+        let mut look = HorizonLookUp { tms, grid, n_layers, beams, off: [[0.0; 2]; MAX_LAYERS], adv: [[0.0; 2]; MAX_LAYERS], r_cells: [0.0; MAX_LAYERS], means, rel, wp, beam_scale: input.beam_scale };
         for (l, ad) in input.layers.iter().take(n_layers).enumerate() {
-            inv_f[l] = 1.0 / ad.cbh_factor.max(0.1);
-            off[l] = sun_ray_plane_point([0.0, 0.0], input.cbh_m, [cam[0] * inv_f[l], cam[1] * inv_f[l], cam[2]], z, a);
-            adv[l] = [off[l][0] - ad.v_mps[0] * k, off[l][1] - ad.v_mps[1] * k];
+            let off = sun_ray_plane_point([0.0, 0.0], input.cbh_m, [cam[0] * inv_f[l], cam[1] * inv_f[l], cam[2]], z, a);
+            look.off[l] = off;
+            look.adv[l] = [off[0] - ad.v_mps[0] * k, off[1] - ad.v_mps[1] * k];
             // The box's settings are on the ground (at the layer's base): on the map they scale by
             // 1 / cbh_factor, like the points; the motion uncertainty is the map's own.
             let blur_m = ((p.blur_min_m * inv_f[l]).powi(2) + (ad.sigma_mps * k).powi(2) + (p.blur_growth_mps * inv_f[l] * k).powi(2)).sqrt();
-            r_cells[l] = blur_m / grid.cell_m;
+            look.r_cells[l] = blur_m / grid.cell_m;
         }
-        // A point's beam transmittance (as used: scaled and capped) and whether it fell back.
-        let point_tr = |pt0: &[f64; 2]| {
-            let mut tr = rel;
-            let mut fell_back = false;
-            for l in 0..n_layers {
-                let pt = [pt0[0] * inv_f[l], pt0[1] * inv_f[l]];
-                let (sx, sy) = grid.to_cell([pt[0] + adv[l][0], pt[1] + adv[l][1]]);
-                tr *= match tms[l].box_mean_with(sx, sy, r_cells[l], beams) {
-                    Some(v) => v,
-                    None => {
-                        let (qx, qy) = grid.to_cell([pt[0] + off[l][0], pt[1] + off[l][1]]);
-                        let now = tms[l].box_mean_with(qx, qy, r_cells[l], beams).unwrap_or(means[l]);
-                        fell_back = true;
-                        wp * now + (1.0 - wp) * means[l]
-                    }
-                };
-            }
-            ((tr * input.beam_scale).min(1.3), fell_back)
-        };
         if !input.probes_m.is_empty() {
             let ghi = if up {
-                let tr = input.probes_m.iter().map(|q| point_tr(q).0).sum::<f64>() / input.probes_m.len() as f64;
+                let tr = probe_points.iter().map(|q| look.point_tr(q).0).sum::<f64>() / input.probes_m.len() as f64;
                 clear.dni_wm2 * tr * cz + dhi
             } else {
                 0.0
@@ -513,7 +502,7 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             out.probes_ghi_wm2.push(ghi);
         }
         let dni_extra = sun.dni_extra_wm2();
-        for (b, series) in input.plant.blocks.iter().zip(out.blocks.iter_mut()) {
+        for ((b, series), points) in input.plant.blocks.iter().zip(out.blocks.iter_mut()).zip(&block_points) {
             let (tilt, saz) = block_plane(&b.mount, z, a);
             // Hay & Davies terms that depend only on the plane and the sun (see `poa_hay_davies`).
             let cos_aoi = aoi_rad(tilt, saz, z, a).cos();
@@ -521,16 +510,8 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             let iso = 0.5 * (1.0 + tilt.cos());
             let ground = p.albedo * 0.5 * (1.0 - tilt.cos());
             // Sum of the points' beam transmittance (as used: scaled and capped), fallbacks, points.
-            let (mut tr_sum, mut fb_sum, mut count) = (0f64, 0usize, 0usize);
-            for pt in b.points_m.iter().step_by(stride) {
-                count += 1;
-                if !up {
-                    continue;
-                }
-                let (tr, fell_back) = point_tr(pt);
-                fb_sum += fell_back as usize;
-                tr_sum += tr;
-            }
+            let count = points.len();
+            let (tr_sum, fb_sum) = if up { look.sum(points) } else { (0.0, 0) };
             let nf = count.max(1) as f64;
             let acc = if up {
                 let dni = clear.dni_wm2 * tr_sum / nf;
