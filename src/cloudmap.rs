@@ -428,17 +428,21 @@ pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &Se
     let mut blue = pool::take_u8();
     blue.resize(n, 0);
     let mut dark = vec![false; if fr.exposure.is_some() { n } else { 0 }];
+    // Every per-cell buffer as a slice of length n: no bounds check per cell and buffer.
+    let (pixel, z_deg, cells) = (&lut.pixel[..n], &lut.z_deg[..n], sky.slices(n));
+    let (score_s, class_s, in_view_s, blue_s) = (&mut score[..n], &mut class[..n], &mut in_view[..n], &mut blue[..n]);
     for k in 0..n {
-        if lut.pixel[k] == NO_PIXEL {
+        if pixel[k] == NO_PIXEL {
             continue;
         }
-        in_view[k] = true;
-        let (rgb, s, c) = fr.classify_sample(sky, k, lut.z_deg[k], || plain[k], || nearest[k]);
-        score[k] = s;
-        class[k] = c;
-        blue[k] = rgb[2];
+        in_view_s[k] = true;
+        let g = cells.get(k);
+        let (rgb, s, c) = fr.classify_at(g, z_deg[k], || plain[k], || nearest[k]);
+        score_s[k] = s;
+        class_s[k] = c;
+        blue_s[k] = rgb[2];
         if let Some(d) = dark.get_mut(k) {
-            *d = fr.darker_than_clear(sky, k, rgb);
+            *d = fr.darker_than_clear_at(g, rgb);
         }
     }
     if params.distant_contrast {

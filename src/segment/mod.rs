@@ -307,11 +307,17 @@ impl FrameReference<'_> {
     /// brightness, in a frame whose exposure was measured.
     #[inline]
     pub fn darker_than_clear(&self, sky: &SkyGeometry, k: usize, rgb: [u8; 3]) -> bool {
+        self.darker_than_clear_at(sky.sample(k), rgb)
+    }
+
+    /// [`FrameReference::darker_than_clear`] for one sample's geometry.
+    #[inline]
+    pub fn darker_than_clear_at(&self, g: SampleSky, rgb: [u8; 3]) -> bool {
         let Some(e) = self.exposure else { return false };
         let p = self.params;
-        sky.plain[k]
-            && self.outside_glare(sky.gamma_deg[k])
-            && crate::brightness::darker_than_clear(rgb, self.reference.bright[sky.bin[k] as usize], e, p.dark_cloud_margin as f32, p.dark_cloud_min_level as f32)
+        g.plain
+            && self.outside_glare(g.gamma_deg)
+            && crate::brightness::darker_than_clear(rgb, self.reference.bright[g.bin as usize], e, p.dark_cloud_margin as f32, p.dark_cloud_min_level as f32)
     }
 
     /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
@@ -342,13 +348,20 @@ impl FrameReference<'_> {
     /// clipped disc's edge into near-white unclipped values) by [`FrameReference::classify_with`].
     #[inline]
     pub fn classify_sample(&self, sky: &SkyGeometry, k: usize, z_deg: f32, plain_rgb: impl FnOnce() -> [u8; 3], exact_rgb: impl FnOnce() -> [u8; 3]) -> ([u8; 3], f32, u8) {
-        if sky.plain[k] && self.outside_glare(sky.gamma_deg[k]) {
+        self.classify_at(sky.sample(k), z_deg, plain_rgb, exact_rgb)
+    }
+
+    /// [`FrameReference::classify_sample`] for one sample's geometry (read once from the
+    /// [`SkyGeometry`], e.g. from slices of known length in a map's loop over its cells).
+    #[inline]
+    pub fn classify_at(&self, g: SampleSky, z_deg: f32, plain_rgb: impl FnOnce() -> [u8; 3], exact_rgb: impl FnOnce() -> [u8; 3]) -> ([u8; 3], f32, u8) {
+        if g.plain && self.outside_glare(g.gamma_deg) {
             let rgb = plain_rgb();
-            let (s, c) = self.classify_plain(rgb, self.reference_in_bin(sky.bin[k] as usize, sky.default_rb[k]), sky.thick_score[k]);
+            let (s, c) = self.classify_plain(rgb, self.reference_in_bin(g.bin as usize, g.default_rb), g.thick_score);
             (rgb, s, c)
         } else {
             let rgb = exact_rgb();
-            let (s, c) = self.classify_with(rgb, PixelGeom { z_deg, gamma_deg: sky.gamma_deg[k] }, sky.default_rb[k]);
+            let (s, c) = self.classify_with(rgb, PixelGeom { z_deg, gamma_deg: g.gamma_deg }, g.default_rb);
             (rgb, s, c as u8)
         }
     }
@@ -513,6 +526,24 @@ pub fn segment_image(
     }
 }
 
+/// A [`SkyGeometry`]'s entries of samples `0..n` as slices of length `n` ([`SkyGeometry::slices`]).
+#[derive(Debug, Clone, Copy)]
+pub struct SkySlices<'a> {
+    plain: &'a [bool],
+    gamma_deg: &'a [f32],
+    bin: &'a [u16],
+    default_rb: &'a [f32],
+    thick_score: &'a [f32],
+}
+
+impl SkySlices<'_> {
+    /// Sample `k`'s entries.
+    #[inline]
+    pub fn get(&self, k: usize) -> SampleSky {
+        SampleSky { plain: self.plain[k], gamma_deg: self.gamma_deg[k], bin: self.bin[k], default_rb: self.default_rb[k], thick_score: self.thick_score[k] }
+    }
+}
+
 /// What the segmentation needs of each sample (a map cell or an image pixel) that changes only with
 /// the sun: its angle to the sun \[°\] (180 without a sun), parametric default reference R/B,
 /// library bin, whether it is judged by its ratio alone, and its thick-cloud score. The engine's map
@@ -532,7 +563,36 @@ pub struct SkyGeometry {
     pub thick_score: Vec<f32>,
 }
 
+/// One sample's entries of a [`SkyGeometry`].
+#[derive(Debug, Clone, Copy)]
+pub struct SampleSky {
+    /// Whether the sample is judged by its ratio alone.
+    pub plain: bool,
+    /// Angle to the sun \[°\].
+    pub gamma_deg: f32,
+    /// Library bin.
+    pub bin: u16,
+    /// Parametric default reference R/B.
+    pub default_rb: f32,
+    /// Score from which the sample is thick cloud.
+    pub thick_score: f32,
+}
+
 impl SkyGeometry {
+    /// Sample `k`'s entries.
+    #[inline]
+    pub fn sample(&self, k: usize) -> SampleSky {
+        SampleSky { plain: self.plain[k], gamma_deg: self.gamma_deg[k], bin: self.bin[k], default_rb: self.default_rb[k], thick_score: self.thick_score[k] }
+    }
+
+    /// The entries of samples `0..n`, as slices of length `n` (for loops without bounds checks).
+    ///
+    /// # Panics
+    /// When the geometry has fewer than `n` samples.
+    pub fn slices(&self, n: usize) -> SkySlices<'_> {
+        SkySlices { plain: &self.plain[..n], gamma_deg: &self.gamma_deg[..n], bin: &self.bin[..n], default_rb: &self.default_rb[..n], thick_score: &self.thick_score[..n] }
+    }
+
     /// From each sample's zenith \[°\] and unit ENU direction; samples for which `seen` is false keep
     /// placeholders and are never classified.
     pub fn from_directions(z_deg: &[f32], dir: &[[f32; 3]], seen: impl Fn(usize) -> bool, sun_dir: Option<[f32; 3]>, params: &SegmentParams) -> SkyGeometry {
