@@ -36,6 +36,10 @@ impl Drop for TransmittanceMap {
     }
 }
 
+/// Largest look-up half-width \[cells\] handled by exact truncations without saturation (any
+/// sensible box is far smaller: a 256² map is 256 cells across).
+const MAX_EXACT_HALF_WIDTH: f64 = 1e9;
+
 /// Class shares are summed as integers in units of 1/1024 (a 256² map sums to under 2³¹).
 const SHARE_UNIT: f64 = 1024.0;
 
@@ -180,22 +184,39 @@ impl TransmittanceMap {
     #[inline(always)]
     pub fn box_shares(&self, cx: f64, cy: f64, r: f64) -> Option<[f64; FEATURES]> {
         let n = self.n as f64;
-        if cx < -0.5 || cy < -0.5 || cx > n - 0.5 || cy > n - 0.5 {
+        // Written so that NaN fails it: a NaN centre gave an empty box below, i.e. `None`, too.
+        if !(cx >= -0.5 && cy >= -0.5 && cx <= n - 0.5 && cy <= n - 0.5) {
             return None;
         }
-        // Rounding half up by truncation through i64: every negative bound clamps to 0 either way,
-        // and on baseline x86-64 `f64::round` is a library call and a float-to-usize cast a slow
-        // instruction sequence. The clamp is on the integer (a negative or NaN value truncates to
-        // at most 0 and clamps to 0, as `max(0.0)` first did, without its NaN handling).
         let top = self.n as i64;
-        let lo = |c: f64| ((c - r + 0.5) as i64).clamp(0, top) as usize;
-        let hi = |c: f64| ((c + r + 1.5) as i64).clamp(0, top) as usize;
-        let (x0, x1, y0, y1) = (lo(cx), hi(cx), lo(cy), hi(cy));
+        let (x0, x1, y0, y1) = if r.abs() <= MAX_EXACT_HALF_WIDTH {
+            // The centre is within the map and the half-width finite and bounded, so every bound
+            // below is a finite number of magnitude under 2^31: its truncation is exact and needs
+            // none of the saturation and NaN handling of `as i64` (four per look-up).
+            // SAFETY: finite and within i64's range, as just said.
+            let t = |v: f64| unsafe { v.to_int_unchecked::<i64>() };
+            let lo = |c: f64| t(c - r + 0.5).clamp(0, top) as usize;
+            let hi = |c: f64| t(c + r + 1.5).clamp(0, top) as usize;
+            (lo(cx), hi(cx), lo(cy), hi(cy))
+        } else {
+            // Rounding half up by truncation through i64: every negative bound clamps to 0 either
+            // way, and on baseline x86-64 `f64::round` is a library call and a float-to-usize cast
+            // a slow instruction sequence. The clamp is on the integer (a negative or NaN value
+            // truncates to at most 0 and clamps to 0, as `max(0.0)` first did, without its NaN
+            // handling).
+            let lo = |c: f64| ((c - r + 0.5) as i64).clamp(0, top) as usize;
+            let hi = |c: f64| ((c + r + 1.5) as i64).clamp(0, top) as usize;
+            (lo(cx), hi(cx), lo(cy), hi(cy))
+        };
         if x1 <= x0 || y1 <= y0 {
             return None;
         }
         let w = self.n + 1;
-        let (a, b, c, d) = (self.sat[y1 * w + x1], self.sat[y0 * w + x1], self.sat[y1 * w + x0], self.sat[y0 * w + x0]);
+        debug_assert!(self.sat.len() == w * w && x1 <= self.n && y1 <= self.n);
+        // SAFETY: the table holds (n + 1)² entries (built so in `for_layer`, never resized) and the
+        // bounds are clamped to 0..=n, so every index is at most (n + 1)² − 1.
+        let at = |y: usize, x: usize| unsafe { *self.sat.get_unchecked(y * w + x) };
+        let (a, b, c, d) = (at(y1, x1), at(y0, x1), at(y1, x0), at(y0, x0));
         let cnt = a[FEATURES] - b[FEATURES] - c[FEATURES] + d[FEATURES];
         if cnt <= 0 {
             return None;
