@@ -42,6 +42,8 @@ pub use crate::transposition::{aoi_rad, block_plane, poa_hay_davies, tracker_ori
 
 mod blend;
 mod ensemble;
+#[cfg(target_arch = "x86_64")]
+mod lanes;
 mod lookup;
 mod tables;
 pub use blend::PersistenceBlend;

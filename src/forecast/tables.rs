@@ -12,10 +12,10 @@ use crate::segment::Class;
 /// `beam_cloud_brightness` times its brightness feature.
 #[derive(Debug, Clone)]
 pub struct TransmittanceMap {
-    n: usize,
+    pub(super) n: usize,
     /// Summed-area table, `(n + 1)²` entries of (clear, thin, thick) shares and the brightness
     /// feature in units of 1/[`SHARE_UNIT`], and the known-cell count: exact integer sums.
-    sat: Vec<[i32; FEATURES + 1]>,
+    pub(super) sat: Vec<[i32; FEATURES + 1]>,
     beams: [f64; FEATURES],
     /// Mean transmittance of the known cells.
     pub mean: f64,
@@ -38,10 +38,10 @@ impl Drop for TransmittanceMap {
 
 /// Largest look-up half-width \[cells\] handled by exact truncations without saturation (any
 /// sensible box is far smaller: a 256² map is 256 cells across).
-const MAX_EXACT_HALF_WIDTH: f64 = 1e9;
+pub(super) const MAX_EXACT_HALF_WIDTH: f64 = 1e8;
 
 /// Class shares are summed as integers in units of 1/1024 (a 256² map sums to under 2³¹).
-const SHARE_UNIT: f64 = 1024.0;
+pub(super) const SHARE_UNIT: f64 = 1024.0;
 
 /// Per-cell features whose box means the tables give: clear, thin and thick shares, and the
 /// brightness feature.
@@ -191,7 +191,7 @@ impl TransmittanceMap {
         let top = self.n as i64;
         let (x0, x1, y0, y1) = if r.abs() <= MAX_EXACT_HALF_WIDTH {
             // The centre is within the map and the half-width finite and bounded, so every bound
-            // below is a finite number of magnitude under 2^31: its truncation is exact and needs
+            // below is a finite number of magnitude under 2^30: its truncation is exact and needs
             // none of the saturation and NaN handling of `as i64` (four per look-up).
             // SAFETY: finite and within i64's range, as just said.
             let t = |v: f64| unsafe { v.to_int_unchecked::<i64>() };
