@@ -1,6 +1,6 @@
 //! The ensemble: members drawn around the central forecast, and their P10 / P50 / P90 bands.
 
-use super::{Forecast, ForecastInput, HorizonSky, TargetForecast, TransmittanceMap, forecast_with};
+use super::{Forecast, ForecastInput, HorizonSky, TargetForecast, TransmittanceMap, block_planes, forecast_with_planes};
 
 /// Uncertainty bands of one target and horizon.
 #[derive(Debug, Clone, Copy, PartialEq, Default)]
@@ -39,6 +39,8 @@ pub fn ensemble_with(
     // Under little cloud the beam is better known: the clear-sky and whole-beam spreads are full at
     // cloud cover `ensemble_full_spread_cover` and shrink in proportion below it, never below a
     // quarter (the clear-sky model itself is uncertain by a few per cent).
+    // The blocks' planes against the sun at each horizon: the same for every member.
+    let planes = block_planes(input.plant, skies);
     let cover_share = if p.ensemble_full_spread_cover > 0.0 { (input.cloud_fraction / p.ensemble_full_spread_cover).clamp(0.25, 1.0) } else { 1.0 };
     let members: Vec<Forecast> = (0..p.ensemble_members)
         .into_par_iter()
@@ -68,7 +70,7 @@ pub fn ensemble_with(
             inp.diffuse_scale = (1.0 + p.ensemble_diffuse_rel_sigma * g(5)).max(0.0);
             inp.point_stride = 3;
             inp.params.blur_growth_mps = 0.0;
-            forecast_with(tms, grid, &inp, skies)
+            forecast_with_planes(tms, grid, &inp, skies, &planes)
         })
         .collect();
     let member_rows: Vec<Vec<&TargetForecast>> = members.iter().map(|m| m.rows().map(|(_, x)| x).collect()).collect();

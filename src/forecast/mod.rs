@@ -437,6 +437,34 @@ impl Forecast {
 /// accumulators shared by the look-up, the block sums and the plant sum; split, the accumulators
 /// would be passed around per point.
 pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky]) -> Forecast {
+    forecast_with_planes(tms, grid, input, skies, &block_planes(input.plant, skies))
+}
+
+/// Each block's plane against the sun at each horizon ([`block_planes`]): the cosine of the
+/// angle of incidence and of the plane's tilt.
+pub type PlaneSun = [f64; 2];
+
+/// [`PlaneSun`] of every horizon (outer) and block (inner), the same for the central forecast and
+/// every ensemble member (computed once for them all).
+pub fn block_planes(plant: &Plant, skies: &[HorizonSky]) -> Vec<PlaneSun> {
+    let mut out = Vec::with_capacity(skies.len() * plant.blocks.len());
+    for hs in skies {
+        let (z, a) = (hs.sun.apparent_zenith_rad, hs.sun.azimuth_rad);
+        for b in &plant.blocks {
+            let (tilt, saz) = block_plane(&b.mount, z, a);
+            out.push([aoi_rad(tilt, saz, z, a).cos(), tilt.cos()]);
+        }
+    }
+    out
+}
+
+/// [`forecast_with`] with the blocks' planes against the sun given ([`block_planes`] of the same
+/// plant and skies).
+///
+/// One piece on purpose, as [`forecast_with`] says.
+pub fn forecast_with_planes(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, input: &ForecastInput, skies: &[HorizonSky], planes: &[PlaneSun]) -> Forecast {
+    let n_blocks = input.plant.blocks.len();
+    debug_assert_eq!(planes.len(), skies.len() * n_blocks);
     let mut out = Forecast {
         plant: Vec::with_capacity(skies.len()),
         blocks: input.plant.blocks.iter().map(|b| BlockForecast { name: b.name.clone(), rows: Vec::with_capacity(skies.len()) }).collect(),
@@ -471,7 +499,8 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
     }
     let block_points: Vec<Vec<ScaledPoint>> = input.plant.blocks.iter().map(|b| scaled_points(&b.points_m, stride, &inv_f)).collect();
     let probe_points = scaled_points(&input.probes_m, 1, &inv_f);
-    for hs in skies {
+    for (i, hs) in skies.iter().enumerate() {
+        let planes = &planes[i * n_blocks..(i + 1) * n_blocks];
         let (h, t, sun, clear) = (hs.horizon_s, hs.time, &hs.sun, hs.clear);
         let (z, a) = (sun.apparent_zenith_rad, sun.azimuth_rad);
         let cz = z.cos();
@@ -504,13 +533,11 @@ pub fn forecast_with(tms: &[TransmittanceMap], grid: crate::cloudmap::Grid, inpu
             out.probes_ghi_wm2.push(ghi);
         }
         let dni_extra = sun.dni_extra_wm2();
-        for ((b, series), points) in input.plant.blocks.iter().zip(out.blocks.iter_mut()).zip(&block_points) {
-            let (tilt, saz) = block_plane(&b.mount, z, a);
+        for (((b, series), points), &[cos_aoi, cos_tilt]) in input.plant.blocks.iter().zip(out.blocks.iter_mut()).zip(&block_points).zip(planes) {
             // Hay & Davies terms that depend only on the plane and the sun (see `poa_hay_davies`).
-            let cos_aoi = aoi_rad(tilt, saz, z, a).cos();
             let rb = cos_aoi.max(0.0) / cz.max(0.01745);
-            let iso = 0.5 * (1.0 + tilt.cos());
-            let ground = p.albedo * 0.5 * (1.0 - tilt.cos());
+            let iso = 0.5 * (1.0 + cos_tilt);
+            let ground = p.albedo * 0.5 * (1.0 - cos_tilt);
             // Sum of the points' beam transmittance (as used: scaled and capped), fallbacks, points.
             let count = points.len();
             let (tr_sum, fb_sum) = if up { look.sum(points) } else { (0.0, 0) };
