@@ -18,7 +18,7 @@ pub(super) fn cmd_bench(a: BenchArgs) -> Result<()> {
     crate::say!("  stages (median): QC {:.2} ms, map+segmentation {:.2} ms, motion {:.2} ms, forecast {:.2} ms", r.stage_ms[0], r.stage_ms[1], r.stage_ms[2], r.stage_ms[3]);
     crate::say!("with the ensemble ({:.2} ms median): {:.2} ms median per frame", r.stage_ms[4], r.step_with_ensemble_ms_median);
     crate::say!("CPU time on the engine's thread (median): decode {:.2} ms, whole step {:.2} ms", r.decode_cpu_ms, r.step_with_ensemble_cpu_ms);
-    crate::say!("throughput including decode, one after the other: {:.1} frames/s", r.throughput_fps);
+    crate::say!("throughput including decode, one after the other: {:.1} frames/s (median frame: {:.1} frames/s)", r.throughput_fps, r.throughput_fps_median);
     if r.overlap_threads > 0 {
         crate::say!("throughput with decoding overlapping the step (as replay), engine pool of {}: {:.1} frames/s", r.overlap_threads, r.throughput_fps_overlapped);
     }
