@@ -389,7 +389,14 @@ impl CellPixels {
         plain.resize(n, [0; 3]);
         // Two passes without a branch per cell (a mispredicted branch would stall the reads
         // waiting on memory): every cell's nearest pixel, then the bilinear readings.
-        for &(k, p) in &lut.memory_order {
+        let order = &lut.memory_order;
+        for (m, &(k, p)) in order.iter().enumerate() {
+            // The reads wait on memory (the image is 3 MB at 1024², the cells' pixels are spread
+            // over it): ask for the pixel of the cell `PREFETCH_AHEAD` further on meanwhile.
+            #[cfg(target_arch = "x86_64")]
+            if let Some(&(_, q)) = order.get(m + PREFETCH_AHEAD) {
+                prefetch(raw, q as usize * 3);
+            }
             let i = p as usize * 3;
             let rgb: [u8; 3] = raw[i..i + 3].try_into().expect("three bytes");
             nearest[k as usize] = rgb;
@@ -399,6 +406,24 @@ impl CellPixels {
             plain[k as usize] = px(k as usize);
         }
         CellPixels { nearest, plain }
+    }
+}
+
+/// How many cells ahead [`CellPixels::gather`] asks for a pixel (about a kilobyte of the image
+/// ahead at 1024²).
+#[cfg(target_arch = "x86_64")]
+const PREFETCH_AHEAD: usize = 24;
+
+/// Ask the CPU to bring the cache line of `buf[i]` in (a hint: no effect on any value; nothing when
+/// `i` is out of range).
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+fn prefetch(buf: &[u8], i: usize) {
+    use std::arch::x86_64::{_MM_HINT_T0, _mm_prefetch};
+    if let Some(b) = buf.get(i) {
+        // SAFETY: a prefetch reads nothing and writes nothing (and SSE is part of x86-64); the
+        // address is of a live byte.
+        unsafe { _mm_prefetch::<_MM_HINT_T0>((b as *const u8).cast()) };
     }
 }
 
