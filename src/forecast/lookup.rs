@@ -38,8 +38,7 @@ impl HorizonLookUp<'_> {
     pub fn point_tr(&self, ps: &ScaledPoint) -> (f64, bool) {
         let mut tr = self.rel;
         let mut fell_back = false;
-        for l in 0..self.n_layers {
-            let pt = ps[l];
+        for (l, &pt) in ps.iter().enumerate().take(self.n_layers) {
             let (sx, sy) = self.grid.to_cell([pt[0] + self.adv[l][0], pt[1] + self.adv[l][1]]);
             tr *= match self.tms[l].box_mean_with(sx, sy, self.r_cells[l], self.beams) {
                 Some(v) => v,
