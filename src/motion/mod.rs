@@ -38,7 +38,7 @@ use crate::settings::{ConfigError, check_range};
 mod features;
 mod matching;
 pub use features::MapFeatures;
-use features::{box_mismatch, residual_features};
+use features::{box_mismatch, cancelled_difference, residual_features};
 use matching::{block_vectors, block_vectors_between};
 
 /// `[motion]` in `site.toml`.
@@ -91,6 +91,12 @@ pub struct MotionParams {
     /// scene, 10-minute skill 0.22 / 0.31 / 0.30 / 0.38 (at 72° its layers swap). With the weights,
     /// 80°: 0.14 m/s there, 0.19 m/s on the breaking overcast, two-layer 10-minute skill 0.33.
     pub first_pass_max_zenith_deg: f64,
+    /// Run the cancelled-layer pass ([`measure_layers`]) when the residual pass finds no second
+    /// layer. Off by default: see README, "Two layers", for what it changes.
+    pub cancelled_layer_pass: bool,
+    /// Half-side of the box over which a cloudy cell's mismatch under each layer's motion is
+    /// averaged to label it with a layer ([`label_layers`]) \[cells\].
+    pub label_radius_cells: usize,
 }
 
 impl Default for MotionParams {
@@ -112,6 +118,8 @@ impl Default for MotionParams {
             layer_confirm: 2,
             static_tolerance: 0.02,
             first_pass_max_zenith_deg: 80.0,
+            cancelled_layer_pass: false,
+            label_radius_cells: 4,
         }
     }
 }
@@ -137,7 +145,8 @@ impl MotionParams {
         check_range(file, "motion.layer_expiry_s", self.layer_expiry_s, 1.0, 3600.0)?;
         check_range(file, "motion.layer_confirm", self.layer_confirm as f64, 1.0, 100.0)?;
         check_range(file, "motion.static_tolerance", self.static_tolerance, 0.0, 1.0)?;
-        check_range(file, "motion.first_pass_max_zenith_deg", self.first_pass_max_zenith_deg, 30.0, 90.0)
+        check_range(file, "motion.first_pass_max_zenith_deg", self.first_pass_max_zenith_deg, 30.0, 90.0)?;
+        check_range(file, "motion.label_radius_cells", self.label_radius_cells as f64, 0.0, 16.0)
     }
 }
 
@@ -260,52 +269,107 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
 }
 
 /// [`measure`] with each map's [`MapFeatures`] given (the engine keeps them with its maps).
-pub fn measure_with((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
+pub fn measure_with(a: (&CloudMap, &MapFeatures), b: (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
+    measure_layers(a, b, None, dt_s, params, priors)
+}
+
+/// A map earlier than a measured pair's earlier map, for the cancelled-layer pass: the map, its
+/// features, and how long before the pair's earlier map it was taken \[s\].
+pub type OlderMap<'a> = (&'a CloudMap, &'a MapFeatures, f64);
+
+/// The cancelled-layer pass runs only when the older map's step to the pair's earlier map is within
+/// this share of the pair's own step: the dominant layer cancels whatever the steps, but the other
+/// layer's two differences are the same pattern moved by its displacement only over equal steps
+/// (with unequal ones, the difference's earlier half moves by the first layer's motion over the
+/// mismatch).
+const EQUAL_STEP_TOLERANCE: f64 = 0.1;
+
+/// [`measure_with`], and with an `older` map (about `dt_s` before `a`) a third pass: the
+/// cancelled-layer pass.
+///
+/// Two layers seen through each other add (to a first approximation) in the score: a thin veil
+/// over cumulus, each moving its own way, and one layer's texture can win every block of the first
+/// pass (on the project's two-layer scene the veil's, whose apparent texture on the cumulus plane
+/// is finer and covers more of the sky). With three maps at equal steps and the dominant layer's
+/// displacement `d` per step, the differences `a − older(· − d)` and `b − a(· − d)`
+/// ([`features::cancelled_difference`]) no longer hold the dominant layer; what is left of the
+/// other layer is the same pattern in both, moved by that layer's own displacement, and block
+/// matching of the first difference against the second measures it (the three-frame method for
+/// two motions of J. R. Bergen, P. J. Burt, R. Hingorani and S. Peleg, *IEEE PAMI* 14:886–896,
+/// 1992). Its vectors within the two-layer separation of the dominant layer are what the
+/// dominant layer's own small misregistration left and are dropped; the rest join the first pass's
+/// for the clustering into layers, as the residual pass's do.
+pub fn measure_layers((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), older: Option<OlderMap>, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
     let (mut vectors, mut tried, mut static_blocks) = block_vectors(a, xa, xb, dt_s, params, priors.first().copied());
-    // One motion unless the residual pass finds cloud it does not explain: a split of the first
+    // One motion unless a later pass finds cloud the first does not explain: a split of the first
     // pass's vectors alone is more often cloud evolving than a second layer.
     let mut first = summarize(vectors.clone(), tried, dt_s, params, false);
     first.blocks_static = static_blocks;
     first.check_locked(a, b, params);
-    let Some(dominant) = first.layers.first() else { return first };
+    let Some(dominant) = first.layers.first().copied() else { return first };
     let cell = a.grid.cell_m;
-    let d = [dominant.v_mps[0] * dt_s / cell, dominant.v_mps[1] * dt_s / cell];
-    let (Some((ra, rb)), _share) = residual_features(a, b, xa, xb, d, params.residual_tolerance as f32, params.residual_min_share) else { return first };
-    let (v2, t2, s2) = block_vectors_between(ra, rb, a, dt_s, params, priors.get(1).copied());
-    static_blocks += s2;
-    // Residual vectors near the dominant layer re-measure it from the rims its displacement left
-    // (biased by the blanking): only the other motions are kept.
-    vectors.extend(v2.into_iter().filter(|v| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps));
-    tried += t2;
+    let shift = |v: [f64; 2], t_s: f64| [v[0] * t_s / cell, v[1] * t_s / cell];
+    let mut others = vec![];
+    let mut second_pass = false;
+    if let (Some((ra, rb)), _share) = residual_features(a, b, xa, xb, shift(dominant.v_mps, dt_s), params.residual_tolerance as f32, params.residual_min_share) {
+        let (v2, t2, s2) = block_vectors_between(ra, rb, a, dt_s, params, priors.get(1).copied());
+        (tried, static_blocks) = (tried + t2, static_blocks + s2);
+        others.extend(v2);
+        second_pass = true;
+    }
+    // The residual pass's second layer, when it found one, stands; else the cancelled-layer pass.
+    let kept = |v: &&BlockVector| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps;
+    let found = second_pass && summarize(vectors.iter().chain(others.iter().filter(kept)).copied().collect(), tried, dt_s, params, true).layers.len() == 2;
+    let older = older.filter(|o| params.cancelled_layer_pass && !found && o.0.grid == a.grid && (o.2 - dt_s).abs() <= EQUAL_STEP_TOLERANCE * dt_s);
+    if let Some((_, xo, gap_s)) = older {
+        let n = a.grid.n;
+        let da = cancelled_difference(xo.feature(), xa.feature(), n, shift(dominant.v_mps, gap_s));
+        let db = cancelled_difference(xa.feature(), xb.feature(), n, shift(dominant.v_mps, dt_s));
+        let (v3, t3, s3) = block_vectors_between(da, db, a, dt_s, params, priors.get(1).copied());
+        (tried, static_blocks) = (tried + t3, static_blocks + s3);
+        others.extend(v3);
+        second_pass = true;
+    }
+    if !second_pass {
+        return first;
+    }
+    // Vectors of the later passes near the dominant layer re-measure it from what its displacement
+    // left (rims, misregistration): only the other motions are kept.
+    vectors.extend(others.iter().filter(kept));
     let mut m = summarize(vectors, tried, dt_s, params, true);
     m.blocks_static = static_blocks;
     m.check_locked(a, b, params);
-    // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
-    if let [l0, l1] = m.layers.as_slice() {
-        let mut labels = label_layers_with(xa.feature(), xb.feature(), b, dt_s, &[l0.v_mps, l1.v_mps]);
-        let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
-        // Per layer: cloudy cells, thick cells.
-        let mut counts = [[0usize; 2]; 2];
-        for (c, lb) in b.class.iter().zip(&labels) {
-            if *c == thin || *c == thick {
-                counts[(*lb as usize).min(1)][0] += 1;
-                counts[(*lb as usize).min(1)][1] += (*c == thick) as usize;
-            }
-        }
-        for (l, [n, nt]) in m.layers.iter_mut().zip(counts) {
-            if n > 0 {
-                l.thick_share = nt as f64 / n as f64;
-            }
-        }
-        if m.layers[1].thick_share > m.layers[0].thick_share {
-            m.layers.swap(0, 1);
-            for l in labels.iter_mut() {
-                *l = 1 - *l;
-            }
-        }
-        m.labels = Some(labels);
+    if m.layers.len() == 2 {
+        order_two_layers(&mut m, xa.feature(), xb.feature(), b, params.label_radius_cells);
     }
     m
+}
+
+/// Two layers: each one's opacity from the cells it explains (the blocks mix both layers), the
+/// more opaque first, and the cells' labels.
+fn order_two_layers(m: &mut MotionMeasurement, fa: &[f32], fb: &[f32], b: &CloudMap, radius_cells: usize) {
+    let mut labels = label_layers_with(fa, fb, b, m.dt_s, &[m.layers[0].v_mps, m.layers[1].v_mps], radius_cells);
+    let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
+    // Per layer: cloudy cells, thick cells.
+    let mut counts = [[0usize; 2]; 2];
+    for (c, lb) in b.class.iter().zip(&labels) {
+        if *c == thin || *c == thick {
+            counts[(*lb as usize).min(1)][0] += 1;
+            counts[(*lb as usize).min(1)][1] += (*c == thick) as usize;
+        }
+    }
+    for (l, [n, nt]) in m.layers.iter_mut().zip(counts) {
+        if n > 0 {
+            l.thick_share = nt as f64 / n as f64;
+        }
+    }
+    if m.layers[1].thick_share > m.layers[0].thick_share {
+        m.layers.swap(0, 1);
+        for l in labels.iter_mut() {
+            *l = 1 - *l;
+        }
+    }
+    m.labels = Some(labels);
 }
 
 impl MotionMeasurement {
@@ -423,20 +487,21 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
 /// and cells no displacement can judge, get layer 0.
 pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
     let (fa, fb) = (features::score_feature(a), features::score_feature(b));
-    let labels = label_layers_with(&fa, &fb, b, dt_s, vs);
+    let labels = label_layers_with(&fa, &fb, b, dt_s, vs, MotionParams::default().label_radius_cells);
     features::recycle(fa);
     features::recycle(fb);
     labels
 }
 
-/// [`label_layers`] on the maps' score features (`fa` of the earlier map, `fb` of `b`).
-pub fn label_layers_with(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
+/// [`label_layers`] on the maps' score features (`fa` of the earlier map, `fb` of `b`), the
+/// mismatch averaged over the (2 `radius_cells` + 1)² box around each cell.
+pub fn label_layers_with(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f64; 2]], radius_cells: usize) -> Vec<u8> {
     let n = b.grid.n;
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
     let mut best = vec![(f32::INFINITY, 0u8); n * n];
     for (l, v) in vs.iter().enumerate().take(u8::MAX as usize) {
         let d = [v[0] * dt_s / b.grid.cell_m, v[1] * dt_s / b.grid.cell_m];
-        let mis = box_mismatch(fa, fb, n, d, 4);
+        let mis = box_mismatch(fa, fb, n, d, radius_cells);
         for (k, (m, bst)) in mis.iter().zip(best.iter_mut()).enumerate() {
             if cloudy(b.class[k]) && *m < bst.0 {
                 *bst = (*m, l as u8);
