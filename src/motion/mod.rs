@@ -863,6 +863,36 @@ mod tests {
         assert!(ok as f64 >= 0.85 * n as f64, "{ok} of {n} cells labelled with their layer");
     }
 
+    /// Two layers seen through each other (their scores add): a fine, faint texture covering
+    /// much of the sky moving one way over a coarse, opaque one moving faster another way, as a
+    /// high veil looks over cumulus on the cumulus's plane. With the residual pass unable to help
+    /// (its share set out of reach) only one layer is found from two maps; the cancelled-layer
+    /// pass over three maps at equal steps finds both, each within 0.5 m/s. Additive two-motion
+    /// model and its three-frame cancellation: J. R. Bergen et al., IEEE PAMI 14:886–896, 1992.
+    #[test]
+    fn cancelled_layer_pass_finds_two_layers_of_different_speed_and_texture_scale() {
+        let g = Grid::new(&MapParams { max_zenith_deg: 77.0, ..Default::default() }, 1500.0);
+        let (v_fine, v_coarse, dt) = ([2.9, -1.0], [5.1, 6.1], 100.0);
+        let field = |x: f64, y: f64, t: f64| {
+            let fine = 0.6 * blobs_of(x - v_fine[0] * t, y - v_fine[1] * t, 400, 140.0, 0);
+            let coarse = blobs_of(x - v_coarse[0] * t, y - v_coarse[1] * t, 16, 420.0, 900);
+            fine + coarse
+        };
+        let maps: Vec<CloudMap> = (0..3).map(|k| classed(|x, y| field(x, y, k as f64 * dt), g)).collect();
+        let xs: Vec<MapFeatures> = maps.iter().map(|m| MapFeatures::within_zenith(m, 90.0)).collect();
+        let p = MotionParams { residual_min_share: 1.0, ..Default::default() };
+        let near = |m: &MotionMeasurement, t: [f64; 2]| m.layers.iter().any(|l| dist(l.v_mps, t) < 0.5);
+        let two = measure_layers((&maps[1], &xs[1]), (&maps[2], &xs[2]), Some((&maps[0], &xs[0], dt)), dt, &p, &[]);
+        assert_eq!(two.layers.len(), 1, "the pass is off by default: {:?}", two.layers);
+        let on = MotionParams { cancelled_layer_pass: true, ..p };
+        let m = measure_layers((&maps[1], &xs[1]), (&maps[2], &xs[2]), Some((&maps[0], &xs[0], dt)), dt, &on, &[]);
+        assert_eq!(m.layers.len(), 2, "{:?}", m.layers);
+        assert!(near(&m, v_fine) && near(&m, v_coarse), "{:?}", m.layers);
+        // Unequal steps: the other layer's two differences are not the same pattern; no pass.
+        let uneven = measure_layers((&maps[1], &xs[1]), (&maps[2], &xs[2]), Some((&maps[0], &xs[0], 1.5 * dt)), dt, &on, &[]);
+        assert_eq!(uneven.layers.len(), 1, "{:?}", uneven.layers);
+    }
+
     #[test]
     fn tracker_follows_two_layers_and_confirms_the_second() {
         let p = MotionParams::default();
