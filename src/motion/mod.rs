@@ -19,6 +19,17 @@
 //! densest vectors, up to two layers, accepted only when well separated and only after a second
 //! pass. Each cloudy cell is labelled with the layer whose motion explains its neighbourhood
 //! ([`label_layers`]); the layer with the larger thick-cloud share of its cells is reported first.
+//!
+//! When the residual pass finds no second layer — a layer whose texture wins every block of the
+//! first pass and hides the other, as a thin veil 6 km up does over cumulus at 1 km — and
+//! `motion.cancelled_layer_pass` is on, a third map about one step older gives the
+//! cancelled-layer pass ([`measure_layers`]): the dominant layer's displacement cancels it from
+//! two successive differences, and block matching of one difference against the other measures
+//! what is left, the other layer (the three-frame method for two additive motions). Off by
+//! default: with it, the layers' motions are right on the project's two-layer scenes, but how the
+//! forecast labels and advects two layers' cells limits what that gains (README, "Two layers
+//! through each other").
+//!
 //! A [`LayerTracker`] smooths each layer over time with its own Kalman filter (gating of
 //! outliers, restart when it has locked onto something else, expiry); the filter's standard
 //! deviation is the reported uncertainty.
@@ -27,6 +38,8 @@
 //! * C. W. Chow et al., *Solar Energy* 85:2881–2893, 2011 (cross-correlation cloud motion from sky
 //!   images).
 //! * J. P. Lewis, "Fast normalized cross-correlation", *Vision Interface* 1995.
+//! * J. R. Bergen, P. J. Burt, R. Hingorani and S. Peleg, "A three-frame algorithm for estimating
+//!   two-component image motion", *IEEE PAMI* 14:886–896, 1992.
 
 use std::path::Path;
 
