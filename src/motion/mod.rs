@@ -339,8 +339,11 @@ pub fn measure_layers((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &
         let da = cancelled_difference(xo.feature(), xa.feature(), n, shift(dominant.v_mps, gap_s));
         let db = cancelled_difference(xa.feature(), xb.feature(), n, shift(dominant.v_mps, dt_s));
         let (v3, t3, s3) = block_vectors_between(da, db, a, dt_s, params, priors.get(1).copied());
-        (tried, static_blocks) = (tried + t3, static_blocks + s3);
-        others.extend(v3);
+        // Static structure (glare, a mast) survives the cancellation as the same pattern in both
+        // differences: a vector within a cell of zero shift cannot be told from it.
+        let moving = v3.len() - v3.iter().filter(|v| v.v_mps[0].hypot(v.v_mps[1]) * dt_s < cell).count();
+        (tried, static_blocks) = (tried + t3, static_blocks + s3 + v3.len() - moving);
+        others.extend(v3.into_iter().filter(|v| v.v_mps[0].hypot(v.v_mps[1]) * dt_s >= cell));
         second_pass = true;
     }
     if !second_pass {
