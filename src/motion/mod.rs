@@ -27,7 +27,8 @@
 //! two successive differences, and block matching of one difference against the other measures
 //! what is left, the other layer (the three-frame method for two additive motions). Off by
 //! default: with it, the layers' motions are right on the project's two-layer scenes, but how the
-//! forecast labels and advects two layers' cells limits what that gains (README, "Two layers
+//! forecast labels and advects two layers' cells limits what that gains, and on an independent
+//! breaking overcast it read the layer's evolution as a slow second layer (README, "Two layers
 //! through each other").
 //!
 //! A [`LayerTracker`] smooths each layer over time with its own Kalman filter (gating of
