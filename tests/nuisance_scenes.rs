@@ -271,6 +271,14 @@ fn broken_end_to_end_with_calibrated_camera() {
 fn two_layers_end_to_end_with_calibrated_camera() {
     let (e, _, elapsed) = end_to_end_with_calibrated_camera("nuisance-two-layer");
     let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
-    eprintln!("nuisance-two-layer with the calibrated camera ({elapsed:.1} s): skill 5/10/15 min {:.3} {:.3} {:.3}", sk(5), sk(10), sk(15));
+    eprintln!(
+        "nuisance-two-layer with the calibrated camera ({elapsed:.1} s): skill 5/10/15 min {:.3} {:.3} {:.3} | motion (the forecast's first layer against the lower true layer) speed err {:.2} m/s dir err {:.1}°, second layer found in {:.0} % of frames",
+        sk(5),
+        sk(10),
+        sk(15),
+        e.motion.speed_error_mps,
+        e.motion.direction_error_deg,
+        100.0 * e.motion.second_layer_found_share.unwrap_or(0.0)
+    );
     check_against_yardstick("nuisance-two-layer pooled skill against the yardstick", &e);
 }

@@ -398,6 +398,38 @@ pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usi
     out
 }
 
+/// The change of a feature map that a layer moving by `d` (cells, from `fa` to `fb`) does not
+/// explain: `fb(y) − fa(y − d)`, `fa` sampled bilinearly; NaN where either is unknown or `y − d`
+/// leaves the map. A layer that moves by `d` unchanged cancels; what is left of a second layer
+/// moving otherwise is its own pattern at the later time minus its pattern at the earlier time
+/// moved by `d` (see [`super::measure_with`], the cancelled-layer pass).
+pub(super) fn cancelled_difference(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2]) -> Vec<f32> {
+    let mut out = pool::take_f32();
+    out.resize(n * n, f32::NAN);
+    let (ox, oy) = ((-d[0]).floor() as i64, (-d[1]).floor() as i64);
+    let (fx, fy) = ((-d[0] - ox as f64) as f32, (-d[1] - oy as f64) as f32);
+    let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
+    // Columns i whose samples i + ox and i + ox + 1 are on the map.
+    let (i0, i1) = ((-ox).max(0) as usize, (n as i64 - 1 - ox).clamp(0, n as i64) as usize);
+    if i1 <= i0 {
+        return out;
+    }
+    let (len, c0) = (i1 - i0, (i0 as i64 + ox) as usize);
+    for j in 0..n {
+        let ja = j as i64 + oy;
+        if ja < 0 || ja + 1 >= n as i64 {
+            continue;
+        }
+        let ja = ja as usize;
+        let (r0, r1) = (&fa[ja * n + c0..ja * n + c0 + len + 1], &fa[(ja + 1) * n + c0..(ja + 1) * n + c0 + len + 1]);
+        let (rb, o) = (&fb[j * n + i0..j * n + i1], &mut out[j * n + i0..j * n + i1]);
+        for i in 0..len {
+            o[i] = rb[i] - (w00 * r0[i] + w10 * r0[i + 1] + w01 * r1[i] + w11 * r1[i + 1]);
+        }
+    }
+    out
+}
+
 /// Feature maps of the earlier and the later map.
 pub(super) type FeaturePair = (Vec<f32>, Vec<f32>);
 

@@ -19,6 +19,18 @@
 //! densest vectors, up to two layers, accepted only when well separated and only after a second
 //! pass. Each cloudy cell is labelled with the layer whose motion explains its neighbourhood
 //! ([`label_layers`]); the layer with the larger thick-cloud share of its cells is reported first.
+//!
+//! When the residual pass finds no second layer — a layer whose texture wins every block of the
+//! first pass and hides the other, as a thin veil 6 km up does over cumulus at 1 km — and
+//! `motion.cancelled_layer_pass` is on, a third map about one step older gives the
+//! cancelled-layer pass ([`measure_layers`]): the dominant layer's displacement cancels it from
+//! two successive differences, and block matching of one difference against the other measures
+//! what is left, the other layer (the three-frame method for two additive motions). Off by
+//! default: with it, the layers' motions are right on the project's two-layer scenes, but how the
+//! forecast labels and advects two layers' cells limits what that gains, and on an independent
+//! breaking overcast it read the layer's evolution as a slow second layer (README, "Two layers
+//! through each other").
+//!
 //! A [`LayerTracker`] smooths each layer over time with its own Kalman filter (gating of
 //! outliers, restart when it has locked onto something else, expiry); the filter's standard
 //! deviation is the reported uncertainty.
@@ -27,6 +39,8 @@
 //! * C. W. Chow et al., *Solar Energy* 85:2881–2893, 2011 (cross-correlation cloud motion from sky
 //!   images).
 //! * J. P. Lewis, "Fast normalized cross-correlation", *Vision Interface* 1995.
+//! * J. R. Bergen, P. J. Burt, R. Hingorani and S. Peleg, "A three-frame algorithm for estimating
+//!   two-component image motion", *IEEE PAMI* 14:886–896, 1992.
 
 use std::path::Path;
 
@@ -38,7 +52,7 @@ use crate::settings::{ConfigError, check_range};
 mod features;
 mod matching;
 pub use features::MapFeatures;
-use features::{box_mismatch, residual_features};
+use features::{box_mismatch, cancelled_difference, residual_features};
 use matching::{block_vectors, block_vectors_between};
 
 /// `[motion]` in `site.toml`.
@@ -91,6 +105,12 @@ pub struct MotionParams {
     /// scene, 10-minute skill 0.22 / 0.31 / 0.30 / 0.38 (at 72° its layers swap). With the weights,
     /// 80°: 0.14 m/s there, 0.19 m/s on the breaking overcast, two-layer 10-minute skill 0.33.
     pub first_pass_max_zenith_deg: f64,
+    /// Run the cancelled-layer pass ([`measure_layers`]) when the residual pass finds no second
+    /// layer. Off by default: see README, "Two layers", for what it changes.
+    pub cancelled_layer_pass: bool,
+    /// Half-side of the box over which a cloudy cell's mismatch under each layer's motion is
+    /// averaged to label it with a layer ([`label_layers`]) \[cells\].
+    pub label_radius_cells: usize,
 }
 
 impl Default for MotionParams {
@@ -112,6 +132,8 @@ impl Default for MotionParams {
             layer_confirm: 2,
             static_tolerance: 0.02,
             first_pass_max_zenith_deg: 80.0,
+            cancelled_layer_pass: false,
+            label_radius_cells: 4,
         }
     }
 }
@@ -137,7 +159,8 @@ impl MotionParams {
         check_range(file, "motion.layer_expiry_s", self.layer_expiry_s, 1.0, 3600.0)?;
         check_range(file, "motion.layer_confirm", self.layer_confirm as f64, 1.0, 100.0)?;
         check_range(file, "motion.static_tolerance", self.static_tolerance, 0.0, 1.0)?;
-        check_range(file, "motion.first_pass_max_zenith_deg", self.first_pass_max_zenith_deg, 30.0, 90.0)
+        check_range(file, "motion.first_pass_max_zenith_deg", self.first_pass_max_zenith_deg, 30.0, 90.0)?;
+        check_range(file, "motion.label_radius_cells", self.label_radius_cells as f64, 0.0, 16.0)
     }
 }
 
@@ -260,52 +283,110 @@ pub fn measure(a: &CloudMap, b: &CloudMap, dt_s: f64, params: &MotionParams, pri
 }
 
 /// [`measure`] with each map's [`MapFeatures`] given (the engine keeps them with its maps).
-pub fn measure_with((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
+pub fn measure_with(a: (&CloudMap, &MapFeatures), b: (&CloudMap, &MapFeatures), dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
+    measure_layers(a, b, None, dt_s, params, priors)
+}
+
+/// A map earlier than a measured pair's earlier map, for the cancelled-layer pass: the map, its
+/// features, and how long before the pair's earlier map it was taken \[s\].
+pub type OlderMap<'a> = (&'a CloudMap, &'a MapFeatures, f64);
+
+/// The cancelled-layer pass runs only when the older map's step to the pair's earlier map is within
+/// this share of the pair's own step: the dominant layer cancels whatever the steps, but the other
+/// layer's two differences are the same pattern moved by its displacement only over equal steps
+/// (with unequal ones, the difference's earlier half moves by the first layer's motion over the
+/// mismatch).
+const EQUAL_STEP_TOLERANCE: f64 = 0.1;
+
+/// [`measure_with`], and with an `older` map (about `dt_s` before `a`) a third pass: the
+/// cancelled-layer pass.
+///
+/// Two layers seen through each other add (to a first approximation) in the score: a thin veil
+/// over cumulus, each moving its own way, and one layer's texture can win every block of the first
+/// pass (on the project's two-layer scene the veil's, whose apparent texture on the cumulus plane
+/// is finer and covers more of the sky). With three maps at equal steps and the dominant layer's
+/// displacement `d` per step, the differences `a − older(· − d)` and `b − a(· − d)`
+/// ([`features::cancelled_difference`]) no longer hold the dominant layer; what is left of the
+/// other layer is the same pattern in both, moved by that layer's own displacement, and block
+/// matching of the first difference against the second measures it (the three-frame method for
+/// two motions of J. R. Bergen, P. J. Burt, R. Hingorani and S. Peleg, *IEEE PAMI* 14:886–896,
+/// 1992). Its vectors within the two-layer separation of the dominant layer are what the
+/// dominant layer's own small misregistration left and are dropped; the rest join the first pass's
+/// for the clustering into layers, as the residual pass's do.
+pub fn measure_layers((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), older: Option<OlderMap>, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
     let (mut vectors, mut tried, mut static_blocks) = block_vectors(a, xa, xb, dt_s, params, priors.first().copied());
-    // One motion unless the residual pass finds cloud it does not explain: a split of the first
+    // One motion unless a later pass finds cloud the first does not explain: a split of the first
     // pass's vectors alone is more often cloud evolving than a second layer.
     let mut first = summarize(vectors.clone(), tried, dt_s, params, false);
     first.blocks_static = static_blocks;
     first.check_locked(a, b, params);
-    let Some(dominant) = first.layers.first() else { return first };
+    let Some(dominant) = first.layers.first().copied() else { return first };
     let cell = a.grid.cell_m;
-    let d = [dominant.v_mps[0] * dt_s / cell, dominant.v_mps[1] * dt_s / cell];
-    let (Some((ra, rb)), _share) = residual_features(a, b, xa, xb, d, params.residual_tolerance as f32, params.residual_min_share) else { return first };
-    let (v2, t2, s2) = block_vectors_between(ra, rb, a, dt_s, params, priors.get(1).copied());
-    static_blocks += s2;
-    // Residual vectors near the dominant layer re-measure it from the rims its displacement left
-    // (biased by the blanking): only the other motions are kept.
-    vectors.extend(v2.into_iter().filter(|v| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps));
-    tried += t2;
+    let shift = |v: [f64; 2], t_s: f64| [v[0] * t_s / cell, v[1] * t_s / cell];
+    let mut others = vec![];
+    let mut second_pass = false;
+    if let (Some((ra, rb)), _share) = residual_features(a, b, xa, xb, shift(dominant.v_mps, dt_s), params.residual_tolerance as f32, params.residual_min_share) {
+        let (v2, t2, s2) = block_vectors_between(ra, rb, a, dt_s, params, priors.get(1).copied());
+        (tried, static_blocks) = (tried + t2, static_blocks + s2);
+        others.extend(v2);
+        second_pass = true;
+    }
+    // The residual pass's second layer, when it found one, stands; else the cancelled-layer pass.
+    let kept = |v: &&BlockVector| dist(v.v_mps, dominant.v_mps) >= params.two_layer_separation_mps;
+    let found = second_pass && summarize(vectors.iter().chain(others.iter().filter(kept)).copied().collect(), tried, dt_s, params, true).layers.len() == 2;
+    let older = older.filter(|o| params.cancelled_layer_pass && !found && o.0.grid == a.grid && (o.2 - dt_s).abs() <= EQUAL_STEP_TOLERANCE * dt_s);
+    if let Some((_, xo, gap_s)) = older {
+        let n = a.grid.n;
+        let da = cancelled_difference(xo.feature(), xa.feature(), n, shift(dominant.v_mps, gap_s));
+        let db = cancelled_difference(xa.feature(), xb.feature(), n, shift(dominant.v_mps, dt_s));
+        let (v3, t3, s3) = block_vectors_between(da, db, a, dt_s, params, priors.get(1).copied());
+        // Static structure (glare, a mast) survives the cancellation as the same pattern in both
+        // differences: a vector within a cell of zero shift cannot be told from it.
+        let moving = v3.len() - v3.iter().filter(|v| v.v_mps[0].hypot(v.v_mps[1]) * dt_s < cell).count();
+        (tried, static_blocks) = (tried + t3, static_blocks + s3 + v3.len() - moving);
+        others.extend(v3.into_iter().filter(|v| v.v_mps[0].hypot(v.v_mps[1]) * dt_s >= cell));
+        second_pass = true;
+    }
+    if !second_pass {
+        return first;
+    }
+    // Vectors of the later passes near the dominant layer re-measure it from what its displacement
+    // left (rims, misregistration): only the other motions are kept.
+    vectors.extend(others.iter().filter(kept));
     let mut m = summarize(vectors, tried, dt_s, params, true);
     m.blocks_static = static_blocks;
     m.check_locked(a, b, params);
-    // Two layers: each one's opacity from the cells it explains (the blocks mix both layers).
-    if let [l0, l1] = m.layers.as_slice() {
-        let mut labels = label_layers_with(xa.feature(), xb.feature(), b, dt_s, &[l0.v_mps, l1.v_mps]);
-        let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
-        // Per layer: cloudy cells, thick cells.
-        let mut counts = [[0usize; 2]; 2];
-        for (c, lb) in b.class.iter().zip(&labels) {
-            if *c == thin || *c == thick {
-                counts[(*lb as usize).min(1)][0] += 1;
-                counts[(*lb as usize).min(1)][1] += (*c == thick) as usize;
-            }
-        }
-        for (l, [n, nt]) in m.layers.iter_mut().zip(counts) {
-            if n > 0 {
-                l.thick_share = nt as f64 / n as f64;
-            }
-        }
-        if m.layers[1].thick_share > m.layers[0].thick_share {
-            m.layers.swap(0, 1);
-            for l in labels.iter_mut() {
-                *l = 1 - *l;
-            }
-        }
-        m.labels = Some(labels);
+    if m.layers.len() == 2 {
+        order_two_layers(&mut m, xa.feature(), xb.feature(), b, params.label_radius_cells);
     }
     m
+}
+
+/// Two layers: each one's opacity from the cells it explains (the blocks mix both layers), the
+/// more opaque first, and the cells' labels.
+fn order_two_layers(m: &mut MotionMeasurement, fa: &[f32], fb: &[f32], b: &CloudMap, radius_cells: usize) {
+    let mut labels = label_layers_with(fa, fb, b, m.dt_s, &[m.layers[0].v_mps, m.layers[1].v_mps], radius_cells);
+    let (thin, thick) = (crate::segment::Class::Thin as u8, crate::segment::Class::Thick as u8);
+    // Per layer: cloudy cells, thick cells.
+    let mut counts = [[0usize; 2]; 2];
+    for (c, lb) in b.class.iter().zip(&labels) {
+        if *c == thin || *c == thick {
+            counts[(*lb as usize).min(1)][0] += 1;
+            counts[(*lb as usize).min(1)][1] += (*c == thick) as usize;
+        }
+    }
+    for (l, [n, nt]) in m.layers.iter_mut().zip(counts) {
+        if n > 0 {
+            l.thick_share = nt as f64 / n as f64;
+        }
+    }
+    if m.layers[1].thick_share > m.layers[0].thick_share {
+        m.layers.swap(0, 1);
+        for l in labels.iter_mut() {
+            *l = 1 - *l;
+        }
+    }
+    m.labels = Some(labels);
 }
 
 impl MotionMeasurement {
@@ -423,20 +504,21 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
 /// and cells no displacement can judge, get layer 0.
 pub fn label_layers(a: &CloudMap, b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
     let (fa, fb) = (features::score_feature(a), features::score_feature(b));
-    let labels = label_layers_with(&fa, &fb, b, dt_s, vs);
+    let labels = label_layers_with(&fa, &fb, b, dt_s, vs, MotionParams::default().label_radius_cells);
     features::recycle(fa);
     features::recycle(fb);
     labels
 }
 
-/// [`label_layers`] on the maps' score features (`fa` of the earlier map, `fb` of `b`).
-pub fn label_layers_with(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f64; 2]]) -> Vec<u8> {
+/// [`label_layers`] on the maps' score features (`fa` of the earlier map, `fb` of `b`), the
+/// mismatch averaged over the (2 `radius_cells` + 1)² box around each cell.
+pub fn label_layers_with(fa: &[f32], fb: &[f32], b: &CloudMap, dt_s: f64, vs: &[[f64; 2]], radius_cells: usize) -> Vec<u8> {
     let n = b.grid.n;
     let cloudy = |c: u8| c == crate::segment::Class::Thin as u8 || c == crate::segment::Class::Thick as u8;
     let mut best = vec![(f32::INFINITY, 0u8); n * n];
     for (l, v) in vs.iter().enumerate().take(u8::MAX as usize) {
         let d = [v[0] * dt_s / b.grid.cell_m, v[1] * dt_s / b.grid.cell_m];
-        let mis = box_mismatch(fa, fb, n, d, 4);
+        let mis = box_mismatch(fa, fb, n, d, radius_cells);
         for (k, (m, bst)) in mis.iter().zip(best.iter_mut()).enumerate() {
             if cloudy(b.class[k]) && *m < bst.0 {
                 *bst = (*m, l as u8);
@@ -796,6 +878,36 @@ mod tests {
             }
         }
         assert!(ok as f64 >= 0.85 * n as f64, "{ok} of {n} cells labelled with their layer");
+    }
+
+    /// Two layers seen through each other (their scores add): a fine, faint texture covering
+    /// much of the sky moving one way over a coarse, opaque one moving faster another way, as a
+    /// high veil looks over cumulus on the cumulus's plane. With the residual pass unable to help
+    /// (its share set out of reach) only one layer is found from two maps; the cancelled-layer
+    /// pass over three maps at equal steps finds both, each within 0.5 m/s. Additive two-motion
+    /// model and its three-frame cancellation: J. R. Bergen et al., IEEE PAMI 14:886–896, 1992.
+    #[test]
+    fn cancelled_layer_pass_finds_two_layers_of_different_speed_and_texture_scale() {
+        let g = Grid::new(&MapParams { max_zenith_deg: 77.0, ..Default::default() }, 1500.0);
+        let (v_fine, v_coarse, dt) = ([2.9, -1.0], [5.1, 6.1], 100.0);
+        let field = |x: f64, y: f64, t: f64| {
+            let fine = 0.6 * blobs_of(x - v_fine[0] * t, y - v_fine[1] * t, 400, 140.0, 0);
+            let coarse = blobs_of(x - v_coarse[0] * t, y - v_coarse[1] * t, 16, 420.0, 900);
+            fine + coarse
+        };
+        let maps: Vec<CloudMap> = (0..3).map(|k| classed(|x, y| field(x, y, k as f64 * dt), g)).collect();
+        let xs: Vec<MapFeatures> = maps.iter().map(|m| MapFeatures::within_zenith(m, 90.0)).collect();
+        let p = MotionParams { residual_min_share: 1.0, ..Default::default() };
+        let near = |m: &MotionMeasurement, t: [f64; 2]| m.layers.iter().any(|l| dist(l.v_mps, t) < 0.5);
+        let two = measure_layers((&maps[1], &xs[1]), (&maps[2], &xs[2]), Some((&maps[0], &xs[0], dt)), dt, &p, &[]);
+        assert_eq!(two.layers.len(), 1, "the pass is off by default: {:?}", two.layers);
+        let on = MotionParams { cancelled_layer_pass: true, ..p };
+        let m = measure_layers((&maps[1], &xs[1]), (&maps[2], &xs[2]), Some((&maps[0], &xs[0], dt)), dt, &on, &[]);
+        assert_eq!(m.layers.len(), 2, "{:?}", m.layers);
+        assert!(near(&m, v_fine) && near(&m, v_coarse), "{:?}", m.layers);
+        // Unequal steps: the other layer's two differences are not the same pattern; no pass.
+        let uneven = measure_layers((&maps[1], &xs[1]), (&maps[2], &xs[2]), Some((&maps[0], &xs[0], 1.5 * dt)), dt, &on, &[]);
+        assert_eq!(uneven.layers.len(), 1, "{:?}", uneven.layers);
     }
 
     #[test]

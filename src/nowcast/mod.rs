@@ -554,7 +554,7 @@ impl Nowcaster {
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
         let motion = moved.layers.first().map(|l| l.motion);
         self.map_stage.layered = moved.layers.len() > 1;
-        let labels = layer_labels(&map, &moved);
+        let labels = layer_labels(&map, &moved, self.site.file.motion.label_radius_cells);
         let t_motion = Clock::now();
         let layer_v: Vec<[f64; 2]> = moved.layers.iter().map(|l| l.motion.v_mps).collect();
         self.stereo_stage(frame, reduced, &sun, labels.as_deref().map(|l| crate::stereo::LayerCells::from_labels(&map, l, 2)), &layer_v);

@@ -9,7 +9,7 @@ use chrono::{DateTime, Utc};
 use super::{Rejection, SUN_ANGLE_REUSE_DEG};
 use crate::cloudmap::{CellPixels, CloudMap, LutCache, build_map_from};
 use crate::forecast::{IrradianceParams, TransmittanceMap};
-use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, TrackedLayer, label_layers_with, measure_with};
+use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, TrackedLayer, label_layers_with, measure_layers};
 use crate::segment::Reference;
 use crate::sun::SunPosition;
 
@@ -158,6 +158,10 @@ impl MapStage {
     }
 }
 
+/// Maps are kept for the cancelled-layer pass this share longer than twice the earlier map's age,
+/// so that one about twice as old is at hand when the frame steps jitter.
+const OLDER_MARGIN: f64 = 0.1;
+
 /// An earlier map with its motion features (computed once per map).
 type KeptMap = (DateTime<Utc>, Arc<CloudMap>, Arc<MapFeatures>);
 
@@ -185,11 +189,23 @@ impl MotionStage {
     /// kept, within the gap limit) and update the tracker.
     pub(super) fn update(&mut self, t: &DateTime<Utc>, map: &Arc<CloudMap>, dt_s: Option<f64>, mp: &crate::motion::MotionParams) -> Moved {
         let age = |e: &DateTime<Utc>| (*t - *e).num_milliseconds() as f64 / 1000.0;
-        self.history.retain(|(e, m, _)| age(e) <= mp.max_gap_s && m.grid == map.grid);
-        let earlier = self.history.iter().rev().find(|(e, _, _)| age(e) >= mp.baseline_s).or(self.history.front()).cloned();
+        self.history.retain(|(_, m, _)| m.grid == map.grid);
+        let in_gap: Vec<&KeptMap> = self.history.iter().filter(|(e, _, _)| age(e) <= mp.max_gap_s).collect();
+        let earlier = in_gap.iter().rev().find(|(e, _, _)| age(e) >= mp.baseline_s).or(in_gap.first()).map(|k| (*k).clone());
+        // The cancelled-layer pass (when on) needs a map about twice the earlier one's age: maps are
+        // then kept that long (at most twice the gap limit).
+        let keep_s = earlier.as_ref().filter(|_| mp.cancelled_layer_pass).map_or(mp.max_gap_s, |(e, _, _)| (2.0 * age(e) * (1.0 + OLDER_MARGIN)).max(mp.max_gap_s));
+        self.history.retain(|(e, _, _)| age(e) <= keep_s);
+        let older = earlier.as_ref().filter(|_| mp.cancelled_layer_pass).and_then(|(e, _, _)| {
+            let want_s = 2.0 * age(e);
+            self.history.iter().filter(|(o, _, _)| o < e).min_by(|x, y| (age(&x.0) - want_s).abs().total_cmp(&(age(&y.0) - want_s).abs())).cloned()
+        });
         let priors = self.tracker.priors();
         let features = Arc::new(MapFeatures::new(map));
-        let measurement = earlier.as_ref().map(|(e, pm, pf)| measure_with((pm, pf), (map, &features), age(e), mp, &priors));
+        let measurement = earlier.as_ref().map(|(e, pm, pf)| {
+            let older = older.as_ref().map(|(o, om, of)| (&**om, &**of, age(o) - age(e)));
+            measure_layers((pm, pf), (map, &features), older, age(e), mp, &priors)
+        });
         // A measurement locked at zero while the map changes stays out of the filter.
         let layers = self.tracker.update(measurement.as_ref().filter(|m| !m.locked_at_zero), dt_s.unwrap_or(0.0), mp);
         let earlier = earlier.map(|k| {
@@ -222,11 +238,11 @@ impl MotionStage {
 /// With two layers tracked, each cloudy cell's layer (the one whose motion explains it): the
 /// measurement's own labels when it saw both layers (in the tracked order), else labels from the
 /// tracked motions. `None` with one layer or none.
-pub(super) fn layer_labels(map: &CloudMap, moved: &Moved) -> Option<Vec<u8>> {
+pub(super) fn layer_labels(map: &CloudMap, moved: &Moved, radius_cells: usize) -> Option<Vec<u8>> {
     match (&moved.earlier, moved.layers.as_slice()) {
         (Some(((_, _, pf), age_s)), [l0, l1, ..]) => {
             let (v0, v1) = (l0.motion.v_mps, l1.motion.v_mps);
-            Some(moved.measurement.as_ref().and_then(|m| m.labels_for(v0, v1)).unwrap_or_else(|| label_layers_with(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1])))
+            Some(moved.measurement.as_ref().and_then(|m| m.labels_for(v0, v1)).unwrap_or_else(|| label_layers_with(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1], radius_cells)))
         }
         _ => None,
     }
