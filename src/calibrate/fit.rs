@@ -302,6 +302,7 @@ pub(super) fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<Image
         scores: vec![],
         bounds: vec![],
         coverage: Coverage::default(),
+        glare_lean: Default::default(),
         cov: cov.map(|c| (p, c)),
     }
 }

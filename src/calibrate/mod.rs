@@ -5,6 +5,10 @@
 //!    pull it), rejected when the blob is too small (sun clouded), too large, or when much saturated
 //!    area lies elsewhere (bright cloud: ambiguous). Each detection is paired with the SPA sun
 //!    direction at the frame's time and keeps the area of its saturated blob.
+//!    **Glare lean** ([`lean`]): the clipped image is a level set of the sun's glare, and an
+//!    asymmetric glare moves its centroid outward by an amount that grows with its size and that a
+//!    fit would take for focal length. The nested level sets of each detection (236 … 252) measure
+//!    that growth; the detection is moved back to where a level set of no size would sit.
 //! 2. **Bloom screening.** Glare that spreads around a low or hazy sun is rarely symmetric, so its
 //!    centroid leans away from the sun; the blob then grows beyond the sun's own clipped disc. The
 //!    smallest blobs of the set (the 20th percentile of areas) stand for the bare disc; a detection
@@ -60,11 +64,13 @@ use crate::sun::{Observer, direction_enu, position};
 mod bound;
 mod detect;
 mod fit;
+mod lean;
 mod outputs;
 use bound::{bound_table, coverage_of};
 use fit::{Problem, finish, held_out, problem, solve, start_params, weighted_rms, with_lean};
 pub use fit::fit_detections;
 pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom, sky_edge_circle};
+pub use lean::{GlareLevel, LeanCorrection, LeanModel, correct_glare_lean, glare_levels};
 pub use outputs::{calibration_record, clear_sky_reference, detections_csv, obstruction_mask, residual_plot};
 
 /// One sun detection paired with the sun's direction.
@@ -219,6 +225,8 @@ pub struct Fit {
     pub bounds: Vec<BandBound>,
     /// The part of the sky the detections cover.
     pub coverage: Coverage,
+    /// How far the glare's lean was taken out of the detections (see [`correct_glare_lean`]).
+    pub glare_lean: LeanCorrection,
     /// Parameter vector and covariance (internal parametrization), for the bound.
     cov: Option<(DVector<f64>, DMatrix<f64>)>,
 }
@@ -320,25 +328,29 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     }
     let circle = median_circle(frames, &day)?;
     let size = first.1.dimensions();
-    let mut dets = sun_detections(frames, &day, observer, circle);
-    let found = dets.len();
-    screen_bloom(&mut dets);
-    let bloom = found - dets.len();
-    if dets.len() < options.min_detections {
-        return Err(low(dets.len(), frames.len(), night, bloom));
+    let (raw, levels) = sun_detections(frames, &day, observer, circle);
+    let found = raw.len();
+    let mut screened = raw.clone();
+    screen_bloom(&mut screened);
+    let bloom = found - screened.len();
+    if screened.len() < options.min_detections {
+        return Err(low(screened.len(), frames.len(), night, bloom));
     }
-    let coverage = coverage_of(&dets);
+    let coverage = coverage_of(&screened);
     if coverage.azimuth_span_deg < 20.0 {
         return Err(CalibrationError::Unusable(format!("the detections span only {:.1}° of azimuth, 20° needed", coverage.azimuth_span_deg)));
     }
-    let solved = fit_families(circle, size, &dets, options);
-    // Where each fitted lens puts the image circle's rim: a sky imager is built to see the whole
-    // sky, so a lens that puts the rim far inside the horizon is fitting something other than the
-    // lens (a bias of the detections that grows with zenith angle).
-    let rims: Vec<f64> = solved.iter().map(|(p, _)| finish(p, None, Some(circle)).camera.max_field_angle_rad.to_degrees()).collect();
+    // The glare's lean: as measured (either form of its factor) or left in, whichever the
+    // held-out blocks of the fit prefer (see `lean`).
+    let candidates = [None, Some(LeanModel::Area), Some(LeanModel::Profile)].map(|model| {
+        let mut dets = raw.clone();
+        let glare_lean = model.map(|m| correct_glare_lean(&mut dets, &levels, (circle.cx_px, circle.cy_px), m)).unwrap_or_default();
+        screen_bloom(&mut dets);
+        LeanCandidate::fit(dets, glare_lean, circle, size, options)
+    });
+    let chosen = candidates.into_iter().flatten().min_by(|a, b| a.cv_rms_px().total_cmp(&b.cv_rms_px())).ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?;
+    let LeanCandidate { dets, glare_lean, solved, rims, any_plausible, best } = chosen;
     let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
-    let any_plausible = (0..solved.len()).any(plausible);
-    let best = choose_family(&solved, |i| !any_plausible || plausible(i)).ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?;
     let rim_warning = (!any_plausible).then(|| {
         format!(
             "no lens family puts the image circle's rim within {:.0}–{:.0}° of the axis (the chosen one puts it at {:.1}°): check the frames show the whole lens field",
@@ -360,11 +372,43 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     fit.scores = scores;
     fit.warnings.extend(rim_warning);
     fit.coverage = coverage;
+    fit.glare_lean = glare_lean;
     let scale_sys = systematic_scale(&dets, &fit.camera, best_cv);
     fit.bounds = bound_table(&fit, prob, &competitors, scale_sys);
     check_usable(&fit)?;
     reach_warnings(&mut fit, options);
     Ok((fit, dets))
+}
+
+/// The detections after one treatment of the glare's lean, and the lens families fitted to them.
+struct LeanCandidate {
+    dets: Vec<Detection>,
+    glare_lean: LeanCorrection,
+    solved: Vec<(Problem, FamilyScore)>,
+    /// Where each fitted lens puts the image circle's rim \[°\].
+    rims: Vec<f64>,
+    any_plausible: bool,
+    best: usize,
+}
+
+impl LeanCandidate {
+    /// Fit every lens family (or the forced one) and choose among them. Where each fitted lens puts
+    /// the image circle's rim matters: a sky imager is built to see the whole sky, so a lens that
+    /// puts the rim far inside the horizon is fitting something other than the lens (a bias of the
+    /// detections that grows with zenith angle). `None` when no family could be fitted.
+    fn fit(dets: Vec<Detection>, glare_lean: LeanCorrection, circle: ImageCircle, size: (u32, u32), options: &CalibrateOptions) -> Option<Self> {
+        let solved = fit_families(circle, size, &dets, options);
+        let rims: Vec<f64> = solved.iter().map(|(p, _)| finish(p, None, Some(circle)).camera.max_field_angle_rad.to_degrees()).collect();
+        let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
+        let any_plausible = (0..solved.len()).any(plausible);
+        let best = choose_family(&solved, |i| !any_plausible || plausible(i))?;
+        Some(LeanCandidate { dets, glare_lean, solved, rims, any_plausible, best })
+    }
+
+    /// The chosen family's held-out RMS \[px\].
+    fn cv_rms_px(&self) -> f64 {
+        self.solved[self.best].1.cv_rms_px
+    }
 }
 
 /// The image circle: the median of the daytime frames' fits (robust to a frame with a bright rim
@@ -383,8 +427,9 @@ fn median_circle(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool]) -> R
     Ok(ImageCircle { cx_px: median(&|c| c.cx_px), cy_px: median(&|c| c.cy_px), radius_px: median(&|c| c.radius_px) })
 }
 
-/// The sun found in each daytime frame, with its direction and blob area, in time order.
-fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle) -> Vec<Detection> {
+/// The sun found in each daytime frame, with its direction and blob area, in time order, and the
+/// nested level sets of its glare (within three times the detection's neighbourhood).
+fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle) -> (Vec<Detection>, Vec<Vec<GlareLevel>>) {
     let mut dets = vec![];
     for ((t, img), is_day) in frames.iter().zip(day) {
         let Ok(sp) = position(t, observer) else { continue };
@@ -393,11 +438,12 @@ fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], obs
         }
         if let Some((x, y, _)) = detect_sun(img, circle.radius_px) {
             let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px);
-            dets.push(Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 });
+            let levels = glare_levels(img, x, y, 0.15 * circle.radius_px);
+            dets.push((Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 }, levels));
         }
     }
-    dets.sort_by_key(|d| d.time);
-    dets
+    dets.sort_by_key(|d| d.0.time);
+    dets.into_iter().unzip()
 }
 
 /// Fit every lens family asked for (all by default) and score each by its held-out error. Each

@@ -134,6 +134,15 @@ fn print_fit(fit: &crate::calibrate::Fit, detections: usize) {
     for (n, v, se) in &fit.params {
         crate::say!("  {n:<14} {v:>12.4} ± {se:.4}");
     }
+    if fit.glare_lean.measured > 0 {
+        crate::say!(
+            "  glare lean     detections moved back toward the centre by {:.2} px (median; largest {:.2} px), from the level sets of {} detections ({} model)",
+            fit.glare_lean.median_move_px,
+            fit.glare_lean.largest_move_px,
+            fit.glare_lean.measured,
+            fit.glare_lean.model.name()
+        );
+    }
     crate::say!("  field          {:>12.2}° from the axis (where the lens puts the image circle's rim)", fit.camera.max_field_angle_rad.to_degrees());
     crate::say!(
         "detections cover zenith {:.0}–{:.0}° over {:.0}° of azimuth; stated direction-error bound by zenith band:",
