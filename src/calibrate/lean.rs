@@ -321,6 +321,19 @@ mod tests {
     }
 
     #[test]
+    fn the_profile_factor_is_rho_times_drho_di() {
+        // I = 300 − 30 ln ρ: dρ/dI = −ρ/30, so ρ·|dρ/dI| = ρ²/30 (the area form up to a constant).
+        let img = glare(48.3, 47.6, (1.0, 0.0), 0.0);
+        let levels = glare_levels(&img, 48.0, 48.0, 30.0);
+        let k = LeanModel::Profile.factors(&levels);
+        for (l, k) in levels.iter().zip(&k).skip(1).take(levels.len() - 2) {
+            let expected = l.r2_px2 / 30.0;
+            assert!((k - expected).abs() < 0.25 * expected, "level {}: {k:.3} against {expected:.3}", l.level_dn);
+        }
+        assert!(LeanModel::Area.factors(&levels[..1]).is_empty() && LeanModel::Profile.factors(&levels[..1]).is_empty());
+    }
+
+    #[test]
     fn a_symmetric_glare_has_no_slope_and_does_not_move() {
         let img = glare(48.3, 47.6, (1.0, 0.0), 0.0);
         let levels = glare_levels(&img, 48.0, 48.0, 30.0);
