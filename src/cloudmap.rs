@@ -491,7 +491,9 @@ pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &Se
         }
     }
     if params.distant_contrast {
-        let plain = |k: usize| fr.plain_and_learned(sky, k);
+        // Each cell's judgement once (the correction asks for most cells, through a `dyn Fn`).
+        let learned = fr.plain_and_learned_all(sky, n);
+        let plain = |k: usize| learned[k];
         crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);

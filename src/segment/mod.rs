@@ -302,6 +302,15 @@ impl FrameReference<'_> {
         sky.plain[k] && self.outside_glare(sky.gamma_deg[k]) && self.reference.weight[sky.bin[k] as usize] > 0.5
     }
 
+    /// [`FrameReference::plain_and_learned`] of samples `0..n` (over slices, in one pass).
+    ///
+    /// # Panics
+    /// When the geometry has fewer than `n` samples.
+    pub fn plain_and_learned_all(&self, sky: &SkyGeometry, n: usize) -> Vec<bool> {
+        let weight = &self.reference.weight;
+        sky.plain[..n].iter().zip(&sky.gamma_deg[..n]).zip(&sky.bin[..n]).map(|((p, g), b)| *p && self.outside_glare(*g) && weight[*b as usize] > 0.5).collect()
+    }
+
     /// Whether sample `k` of `sky`, reading `rgb`, is darker than the clear sky would be there
     /// (`brightness::darker_than_clear`): only plain samples outside the glare, with a learned
     /// brightness, in a frame whose exposure was measured.
@@ -507,7 +516,8 @@ pub fn segment_image(
         }
     }
     if params.distant_contrast {
-        let plain = |i: usize| fr.plain_and_learned(&sky, i);
+        let learned = fr.plain_and_learned_all(&sky, w * h);
+        let plain = |i: usize| learned[i];
         crate::distance::correct(&score, &geom.z_deg, &plain, &mut classes, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
