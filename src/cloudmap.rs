@@ -153,6 +153,21 @@ impl Lut {
     /// sees the cells.
     pub fn build_from(cam: &Camera, obstruction: Option<&image::GrayImage>, grid: Grid, camera_m: [f64; 3]) -> Lut {
         let n = grid.n;
+        // Whether a direction whose camera-frame z is `c` lies beyond the rim: its field angle
+        // `acos(c)` above `rim_rad`. The arc cosine is decreasing, so a `c` clearly above or below
+        // `cos(rim_rad)` (by 1e-9, where the arc cosine's slope is at least 1 and its error a few
+        // 1e-16) decides without it; near the rim it is taken as before (the same cells).
+        let rim_rad = cam.max_field_angle_rad - RIM_MARGIN_DEG.to_radians();
+        let cos_rim = rim_rad.cos();
+        let beyond_rim = |c: f64| {
+            if c > cos_rim + 1e-9 {
+                false
+            } else if c < cos_rim - 1e-9 {
+                true
+            } else {
+                c.acos() > rim_rad
+            }
+        };
         let mut pixel = vec![NO_PIXEL; n * n];
         let mut z_deg = vec![f32::NAN; n * n];
         let mut dir = vec![[0f32; 3]; n * n];
@@ -169,8 +184,7 @@ impl Lut {
                 // Cells whose pixel lies on the rim of the imaged field (vignetting, the lens edge's
                 // blur) or beyond it are unknown by construction.
                 let v = cam.cam_to_enu().inverse_transform_vector(&nalgebra::Vector3::new(d[0], d[1], d[2]));
-                let field_rad = v[2].clamp(-1.0, 1.0).acos();
-                if field_rad > cam.max_field_angle_rad - RIM_MARGIN_DEG.to_radians() {
+                if beyond_rim(v[2].clamp(-1.0, 1.0)) {
                     continue;
                 }
                 if let Some((x, y)) = cam.project_enu(d) {
@@ -198,10 +212,16 @@ impl Lut {
                 interpolate[k] = (i + 1 < n && shares(k + 1)) || (i > 0 && shares(k - 1)) || (j + 1 < n && shares(k + n)) || (j > 0 && shares(k - n));
             }
         }
-        let mut memory_order: Vec<(u32, u32)> = (0..n * n).filter(|&k| pixel[k] != NO_PIXEL).map(|k| (k as u32, pixel[k])).collect();
-        memory_order.sort_unstable_by_key(|&(k, p)| (p, k));
-        let mut bilinear_order: Vec<u32> = (0..n * n).filter(|&k| interpolate[k]).map(|k| k as u32).collect();
-        bilinear_order.sort_unstable_by_key(|&k| (bilinear[k as usize].0, k));
+        // Sorted by (pixel, cell) as one integer each (the pairs are unique: the same order as
+        // sorting the pairs, in about half the time).
+        let pack = |p: u32, k: usize| (p as u64) << 32 | k as u64;
+        let mut keys: Vec<u64> = (0..n * n).filter(|&k| pixel[k] != NO_PIXEL).map(|k| pack(pixel[k], k)).collect();
+        keys.sort_unstable();
+        let memory_order: Vec<(u32, u32)> = keys.iter().map(|&x| (x as u32, (x >> 32) as u32)).collect();
+        keys.clear();
+        keys.extend((0..n * n).filter(|&k| interpolate[k]).map(|k| pack(bilinear[k].0, k)));
+        keys.sort_unstable();
+        let bilinear_order: Vec<u32> = keys.iter().map(|&x| x as u32).collect();
         Lut { grid, pixel, z_deg, dir, bilinear, interpolate, memory_order, bilinear_order }
     }
 
@@ -471,19 +491,23 @@ pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &Se
         }
     }
     if params.distant_contrast {
-        let plain = |k: usize| fr.plain_and_learned(sky, k);
+        // Each cell's judgement once (the correction asks for most cells, through a `dyn Fn`).
+        let learned = fr.plain_and_learned_all(sky, n);
+        let plain = |k: usize| learned[k];
         crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);
     crate::brightness::promote_dark(&mut class, &lut.z_deg, &dark);
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
+    // Over zipped slices (no bounds checks, so the second pass vectorizes).
     let (mut cloudy_blue, mut cloudy_cells) = (0u64, 0u64);
-    for k in (0..n).filter(|&k| cloudy(class[k])) {
-        cloudy_blue += blue[k] as u64;
-        cloudy_cells += 1;
+    for (c, b) in class.iter().zip(&blue[..n]) {
+        let is = cloudy(*c);
+        cloudy_blue += if is { *b as u64 } else { 0 };
+        cloudy_cells += is as u64;
     }
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
-    let brightness = (0..n).map(|k| if cloudy(class[k]) { (blue[k] as f32 - mean) / 255.0 } else { 0.0 }).collect();
+    let brightness = class.iter().zip(&blue[..n]).map(|(c, b)| if cloudy(*c) { (*b as f32 - mean) / 255.0 } else { 0.0 }).collect();
     pool::give_u8(blue);
     CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness }
 }

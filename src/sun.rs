@@ -109,10 +109,45 @@ pub fn delta_t_s(time: &DateTime<Utc>) -> f64 {
 
 /// Solar position by the NREL SPA with an estimated ΔT.
 ///
+/// The same time and observer give the same position, so each thread keeps the positions it
+/// computed last ([`POSITION_MEMO_SLOTS`] of them, by time): an engine step asks for the frame's
+/// time and each horizon's target time, and with frames every 20 or 30 s and a 60-s forecast step
+/// most of those were asked by a frame a minute earlier (SPA's series are about 1 % of a 1024²
+/// replay's CPU). A position from the memo is the computed one bit for bit.
+///
 /// # Errors
 /// When the latitude, longitude or date is outside what SPA supports.
 pub fn position(time: &DateTime<Utc>, observer: &Observer) -> Result<SunPosition, SunError> {
-    position_with_delta_t(time, observer, delta_t_s(time))
+    let key = memo_key(time, observer);
+    let slot = ((key.0 as u64) ^ ((key.1 as u64) << 32)).wrapping_mul(0x9E37_79B9_7F4A_7C15) >> (64 - POSITION_MEMO_BITS);
+    let slot = slot as usize;
+    if let Some(p) = POSITION_MEMO.with(|m| m.borrow().get(slot).copied().flatten().filter(|(k, _)| *k == key).map(|(_, p)| p)) {
+        return Ok(p);
+    }
+    let p = position_with_delta_t(time, observer, delta_t_s(time))?;
+    POSITION_MEMO.with(|m| {
+        let mut m = m.borrow_mut();
+        if m.is_empty() {
+            m.resize(POSITION_MEMO_SLOTS, None);
+        }
+        m[slot] = Some((key, p));
+    });
+    Ok(p)
+}
+
+/// Positions kept per thread by [`position`] (a power of two: slots by a hash of the time).
+pub const POSITION_MEMO_SLOTS: usize = 1 << POSITION_MEMO_BITS;
+const POSITION_MEMO_BITS: u32 = 8;
+
+/// The time (whole seconds and nanoseconds) and the observer's fields bit for bit.
+type MemoKey = (i64, u32, [u64; 5]);
+
+fn memo_key(time: &DateTime<Utc>, o: &Observer) -> MemoKey {
+    (time.timestamp(), time.timestamp_subsec_nanos(), [o.latitude_deg, o.longitude_deg, o.elevation_m, o.pressure_hpa, o.temperature_c].map(f64::to_bits))
+}
+
+thread_local! {
+    static POSITION_MEMO: std::cell::RefCell<Vec<Option<(MemoKey, SunPosition)>>> = const { std::cell::RefCell::new(Vec::new()) };
 }
 
 /// Solar position by the NREL SPA with a given ΔT \[s\].
@@ -202,6 +237,27 @@ pub fn altitude_to_pressure_pa(altitude_m: f64) -> f64 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The memo of [`position`] gives the computed position bit for bit, for the observer asked
+    /// (two observers at one time, and more times than it has slots, asked twice over).
+    #[test]
+    fn remembered_positions_are_the_computed_ones() {
+        let a = Observer::new(46.8, 6.9, 490.0);
+        let b = Observer { temperature_c: 30.0, ..a };
+        let t0 = DateTime::parse_from_rfc3339("2026-06-14T08:30:00Z").unwrap().with_timezone(&Utc);
+        for round in 0..2 {
+            for i in 0..(POSITION_MEMO_SLOTS as i64 + 40) {
+                let t = t0 + Duration::milliseconds(i * 20_000 + (i % 3) * 7);
+                for o in [a, b] {
+                    let direct = position_with_delta_t(&t, &o, delta_t_s(&t)).unwrap();
+                    let p = position(&t, &o).unwrap();
+                    assert_eq!(p, direct, "round {round}, time {t}");
+                    assert_eq!(p.apparent_zenith_rad.to_bits(), direct.apparent_zenith_rad.to_bits());
+                }
+            }
+        }
+        assert_ne!(position(&t0, &a).unwrap().apparent_zenith_rad, position(&t0, &b).unwrap().apparent_zenith_rad);
+    }
 
     #[test]
     fn direction_round_trip() {

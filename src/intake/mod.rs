@@ -385,7 +385,7 @@ fn jpeg_structure(b: &[u8]) -> Result<(u32, u32), Refusal> {
                 scans += 1;
                 // Entropy-coded data up to the next marker that is not a restart.
                 loop {
-                    let Some(k) = b[pos..].iter().position(|&x| x == 0xFF) else {
+                    let Some(k) = memchr::memchr(0xFF, &b[pos..]) else {
                         return Err(trunc(at, "the image data"));
                     };
                     let f = pos + k;
