@@ -271,7 +271,7 @@ impl ReplayTables {
             ramps_jsonl: String::new(),
             alarms: CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability"),
             members: CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2,plant_power_kw"),
-            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin"),
+            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin,beam_clear,beam_thick,beam_cloud_brightness,diffuse_per_cover,tuning_rows"),
         }
     }
 
@@ -337,13 +337,18 @@ impl ReplayTables {
             format!("{:.3}", nc.band_scale[2]),
             nc.sun_disk.map(|d| format!("{:.3}", d.clipped_share)).unwrap_or_default(),
             format!("{:.3}", nc.irradiance.beam_thin),
+            format!("{:.3}", nc.irradiance.beam_clear),
+            format!("{:.3}", nc.irradiance.beam_thick),
+            format!("{:.3}", nc.irradiance.beam_cloud_brightness),
+            format!("{:.3}", nc.irradiance.diffuse_per_cover),
+            nc.tuning_rows.to_string(),
         ]);
     }
 
     /// A rejected frame's row in `frames.csv`.
     fn add_rejected(&mut self, time: &DateTime<Utc>, name: &str, rej: &Rejection, dms: f64) {
         let mut row = vec![fmt_time(time), name.to_string(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
-        row.resize(18, String::new());
+        row.resize(23, String::new());
         self.fr.row(row);
     }
 

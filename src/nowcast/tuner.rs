@@ -21,6 +21,8 @@ impl Tuner {
     /// its regressor: the brightness feature is a few hundredths where class shares are near 1.
     const PRIOR_SCALE: [f64; TUNED] = [1.0, 1.0, 1.0, 0.05, 1.0];
     const IRLS_ITERATIONS: usize = 6;
+    /// Rows the age limit always keeps.
+    const MIN_KEPT: usize = 20;
 
     /// Rows held.
     pub(super) fn len(&self) -> usize {
@@ -36,17 +38,19 @@ impl Tuner {
         self.rows.push_back((x, y));
         self.times.push_back(t);
         // At most WINDOW rows, none older than `max_age_s` (an overcast that thins must be
-        // followed), but never fewer than the 20 a solve needs.
+        // followed), but never fewer than `MIN_KEPT`.
         while self.rows.len() > Self::WINDOW
-            || (self.rows.len() > 20 && self.times.front().map(|t0| (t - *t0).num_milliseconds() as f64 / 1000.0 > max_age_s).unwrap_or(false))
+            || (self.rows.len() > Self::MIN_KEPT && self.times.front().map(|t0| (t - *t0).num_milliseconds() as f64 / 1000.0 > max_age_s).unwrap_or(false))
         {
             self.rows.pop_front();
             self.times.pop_front();
         }
     }
 
+    /// The transmittances that fit the rows held; `None` with fewer than `prior.tune_min_rows`
+    /// (at least 1). The ridge prior keeps the system well posed with any number of rows.
     pub(super) fn solve(&self, prior: &IrradianceParams) -> Option<IrradianceParams> {
-        if self.rows.len() < 20 {
+        if self.rows.len() < prior.tune_min_rows.max(1) {
             return None;
         }
         // Unknowns: beam_clear, beam_thin, beam_thick, beam_cloud_brightness, diffuse_per_cover.
@@ -166,5 +170,21 @@ mod tests {
         let p = t.solve(&IrradianceParams::default()).unwrap();
         assert!((p.beam_cloud_brightness - truth[3]).abs() < 0.4, "beam_cloud_brightness {}", p.beam_cloud_brightness);
         assert!((p.beam_thin - truth[1]).abs() < 0.03, "beam_thin {}", p.beam_thin);
+    }
+
+    /// A solution waits for `tune_min_rows` rows; with 1 the first frame's readings (three rows)
+    /// give one, and the mean-residual step sets its level (the readings agree, so their mean is
+    /// beyond two standard errors of zero): arithmetic of the model, no source.
+    #[test]
+    fn the_first_readings_set_the_level_when_allowed() {
+        let x = [0.0, 0.85, 0.0, 0.0, 1.0];
+        let mut t = Tuner::default();
+        for i in 0..3 {
+            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, 0.8, 900.0);
+        }
+        assert!(t.solve(&IrradianceParams::default()).is_none(), "the default waits for 20 rows");
+        let p = t.solve(&IrradianceParams { tune_min_rows: 1, ..Default::default() }).expect("a solution from three rows");
+        let fit: f64 = x[1] * p.beam_thin + x[4] * p.diffuse_per_cover;
+        assert!((fit - 0.8).abs() < 0.01, "{p:?}");
     }
 }

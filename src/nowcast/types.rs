@@ -159,6 +159,8 @@ pub struct Nowcast {
     pub alarm_basis: Option<crate::ramp::AlarmBasis>,
     /// Transmittance settings used (after tuning).
     pub irradiance: IrradianceParams,
+    /// Pyranometer readings the transmittance tuning held at this frame.
+    pub tuning_rows: usize,
     /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
     /// until calibrated; see [`crate::forecast::BandWidening`]).
     pub band_scale: [f64; 3],
