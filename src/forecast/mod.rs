@@ -123,6 +123,11 @@ pub struct IrradianceParams {
     /// Radius around the sun's computed direction read for its disk \[°\] (wider than the disk's
     /// 0.27° so a calibration error of a few tenths of a degree still finds it).
     pub sun_disk_radius_deg: f64,
+    /// With two layers, the layer behind (the second, less opaque one) is unseen, not clear,
+    /// where the first layer's cloud hides it: those cells take the shares of its own cells and
+    /// clear sky around them, spreading inward ([`TransmittanceMap::for_layer`]), so that a
+    /// veil does not get holes where the cumulus under it moves away. Off: they count as clear.
+    pub fill_layer_behind: bool,
 }
 
 impl Default for IrradianceParams {
@@ -147,6 +152,7 @@ impl Default for IrradianceParams {
             blur_growth_mps: 0.5,
             fallback_persistence_weight: 0.5,
             tune_from_measurements: true,
+            fill_layer_behind: false,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five
             // synthetic scenes, e.g. broken cumulus 0.71 → 0.79 at 5 min).
