@@ -595,6 +595,32 @@ mod tests {
     use super::*;
     use crate::cloudmap::{CloudMap, Grid, MapParams};
 
+    /// A veil (layer 1, thin everywhere) behind a thick patch of layer 0: the veil's table counts
+    /// the hidden cells as clear by default, and with `fill_layer_behind` fills them from the
+    /// veil around them (so the veil has no hole when the patch moves away). Layer 0's table is
+    /// the same either way.
+    #[test]
+    fn layer_behind_is_filled_where_the_first_layer_hides_it() {
+        let g = Grid::new(&MapParams { cells: 32, ..Default::default() }, 1000.0);
+        let n = g.n;
+        let mut class = vec![Class::Thin as u8; n * n];
+        let mut labels = vec![1u8; n * n];
+        for j in 14..=18 {
+            for i in 14..=18 {
+                class[j * n + i] = Class::Thick as u8;
+                labels[j * n + i] = 0;
+            }
+        }
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![] };
+        let (off, on) = (IrradianceParams::default(), IrradianceParams { fill_layer_behind: true, ..Default::default() });
+        let veil = |p: &IrradianceParams| TransmittanceMap::for_layer(&map, p, Some((&labels, 1))).box_shares(16.0, 16.0, 0.0).unwrap();
+        let (a, b) = (veil(&off), veil(&on));
+        assert!((a[0] - 1.0).abs() < 1e-3 && a[1].abs() < 1e-3, "hidden cell clear without the fill: {a:?}");
+        assert!(b[0].abs() < 1e-3 && (b[1] - 1.0).abs() < 1e-3, "hidden cell thin veil with the fill: {b:?}");
+        let front = |p: &IrradianceParams| TransmittanceMap::for_layer(&map, p, Some((&labels, 0))).box_shares(16.0, 16.0, 2.0).unwrap();
+        assert_eq!(front(&off), front(&on));
+    }
+
     /// Two layers: a thick patch in layer 0 and a thin one in layer 1, each moving its own way.
     /// A point under neither now is shaded at the horizon when the layer whose motion carries a
     /// patch over it says so, and under both when both do (product of transmittances).

@@ -903,7 +903,7 @@ mod tests {
         let (v_fine, v_coarse, dt) = ([2.9, -1.0], [5.1, 6.1], 100.0);
         let field = |x: f64, y: f64, t: f64| {
             let fine = 0.6 * blobs_of(x - v_fine[0] * t, y - v_fine[1] * t, 400, 140.0, 0);
-            let coarse = blobs_of(x - v_coarse[0] * t, y - v_coarse[1] * t, 16, 420.0, 900);
+            let coarse = blobs_of(x - v_coarse[0] * t, y - v_coarse[1] * t, 40, 420.0, 900);
             fine + coarse
         };
         let maps: Vec<CloudMap> = (0..3).map(|k| classed(|x, y| field(x, y, k as f64 * dt), g)).collect();
