@@ -128,6 +128,12 @@ pub struct IrradianceParams {
     /// clear sky around them, spreading inward ([`TransmittanceMap::for_layer`]), so that a
     /// veil does not get holes where the cumulus under it moves away. Off: they count as clear.
     pub fill_layer_behind: bool,
+    /// With two layers tracked, the tuning's diffuse gain takes up the window's mean residual as
+    /// with one ([`IrradianceParams::tune_robust_scale`]). Off: it is left alone with two layers,
+    /// where the current state's bias at the pyranometers (their look-ups at lead 0 near the
+    /// camera's sun direction) is not the forecast's at 5–15 min (figures in README, "Two layers
+    /// through each other").
+    pub tune_bias_with_two_layers: bool,
 }
 
 impl Default for IrradianceParams {
@@ -153,6 +159,7 @@ impl Default for IrradianceParams {
             fallback_persistence_weight: 0.5,
             tune_from_measurements: true,
             fill_layer_behind: false,
+            tune_bias_with_two_layers: true,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five
             // synthetic scenes, e.g. broken cumulus 0.71 → 0.79 at 5 min).
