@@ -308,7 +308,7 @@ def pick_pyranometers(points, fp):
     return out
 
 
-def write_site(path, site_json, ceil_json, calibration, pyranometers):
+def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=()):
     s = site_json["site"]
     fp = site_json["plant_footprint"]
     ce, cn, se, sn = fp["center_e_m"], fp["center_n_m"], fp["size_e_m"], fp["size_n_m"]
@@ -325,6 +325,14 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers):
     text += toml_table("plant.blocks", {"name": "footprint", "polygon_m": poly, "capacity_kw": round(se * sn * 0.2),
                                         "mount": "fixed", "tilt_deg": 0.0, "azimuth_deg": 180.0}, array=True)
     text += toml_table("forecast", {"horizon_min": 15, "step_s": 60})
+    # Settings given with --set SECTION.KEY=VALUE (TOML values), one table per section.
+    extra = {}
+    for kv in settings:
+        k, v = kv.split("=", 1)
+        sec, key = k.strip().rsplit(".", 1)
+        extra.setdefault(sec, []).append(f"{key} = {v.strip()}\n")
+    for sec, lines in extra.items():
+        text += f"[{sec}]\n" + "".join(lines) + "\n"
     for p in pyranometers:
         text += toml_table("pyranometers", {"name": p["name"], "position_m": p["position_m"]}, array=True)
     with open(path, "w") as f:
@@ -571,7 +579,7 @@ def run_camera(a, camera, sc, yard, log, res):
     if a.calibration_only:
         return
     # 1./2. site files and measurements
-    res["cbh_m"] = write_site(site_cloudy, site_json, ceil(cloudy), cal, pyr)
+    res["cbh_m"] = write_site(site_cloudy, site_json, ceil(cloudy), cal, pyr, a.set)
     write_site(site_clear, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), cal, pyr)
     meas = os.path.join(work, "measurements.csv")
     tpc = os.path.join(cloudy, "truth", "truth_points.csv")
@@ -727,6 +735,8 @@ def main():
     ap.add_argument("--camera-from", choices=["calibrate", "truth"], default="calibrate",
                     help="calibrate on the clear day (the user's way) or convert truth/camera.json (diagnostic only)")
     ap.add_argument("--cameras", default="camera1,camera2")
+    ap.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                    help="a site setting for the cloudy replay (TOML value), e.g. motion.cancelled_layer_pass=true; repeatable")
     ap.add_argument("--ramp-min-probability", type=float, default=0.3,
                     help="engine ramp events at least this probable count as warnings (default: the engine's caution level)")
     ap.add_argument("--causal-measurements", action="store_true",

@@ -131,6 +131,17 @@ pub struct IrradianceParams {
     /// Radius around the sun's computed direction read for its disk \[°\] (wider than the disk's
     /// 0.27° so a calibration error of a few tenths of a degree still finds it).
     pub sun_disk_radius_deg: f64,
+    /// With two layers, the layer behind (the second, less opaque one) is unseen, not clear,
+    /// where the first layer's cloud hides it: those cells take the shares of its own cells and
+    /// clear sky around them, spreading inward ([`TransmittanceMap::for_layer`]), so that a
+    /// veil does not get holes where the cumulus under it moves away. Off: they count as clear.
+    pub fill_layer_behind: bool,
+    /// With two layers tracked, the tuning's diffuse gain takes up the window's mean residual as
+    /// with one ([`IrradianceParams::tune_robust_scale`]). Off: it is left alone with two layers,
+    /// where the current state's bias at the pyranometers (their look-ups at lead 0 near the
+    /// camera's sun direction) is not the forecast's at 5–15 min (figures in README, "Two layers
+    /// through each other").
+    pub tune_bias_with_two_layers: bool,
 }
 
 impl Default for IrradianceParams {
@@ -155,6 +166,8 @@ impl Default for IrradianceParams {
             blur_growth_mps: 0.5,
             fallback_persistence_weight: 0.5,
             tune_from_measurements: true,
+            fill_layer_behind: false,
+            tune_bias_with_two_layers: true,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five
             // synthetic scenes, e.g. broken cumulus 0.71 → 0.79 at 5 min).
@@ -598,6 +611,32 @@ fn row(h: u32, t: DateTime<Utc>, acc: &[f64; 6], ghi_clear: f64) -> TargetForeca
 mod tests {
     use super::*;
     use crate::cloudmap::{CloudMap, Grid, MapParams};
+
+    /// A veil (layer 1, thin everywhere) behind a thick patch of layer 0: the veil's table counts
+    /// the hidden cells as clear by default, and with `fill_layer_behind` fills them from the
+    /// veil around them (so the veil has no hole when the patch moves away). Layer 0's table is
+    /// the same either way.
+    #[test]
+    fn layer_behind_is_filled_where_the_first_layer_hides_it() {
+        let g = Grid::new(&MapParams { cells: 32, ..Default::default() }, 1000.0);
+        let n = g.n;
+        let mut class = vec![Class::Thin as u8; n * n];
+        let mut labels = vec![1u8; n * n];
+        for j in 14..=18 {
+            for i in 14..=18 {
+                class[j * n + i] = Class::Thick as u8;
+                labels[j * n + i] = 0;
+            }
+        }
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![] };
+        let (off, on) = (IrradianceParams::default(), IrradianceParams { fill_layer_behind: true, ..Default::default() });
+        let veil = |p: &IrradianceParams| TransmittanceMap::for_layer(&map, p, Some((&labels, 1))).box_shares(16.0, 16.0, 0.0).unwrap();
+        let (a, b) = (veil(&off), veil(&on));
+        assert!((a[0] - 1.0).abs() < 1e-3 && a[1].abs() < 1e-3, "hidden cell clear without the fill: {a:?}");
+        assert!(b[0].abs() < 1e-3 && (b[1] - 1.0).abs() < 1e-3, "hidden cell thin veil with the fill: {b:?}");
+        let front = |p: &IrradianceParams| TransmittanceMap::for_layer(&map, p, Some((&labels, 0))).box_shares(16.0, 16.0, 2.0).unwrap();
+        assert_eq!(front(&off), front(&on));
+    }
 
     /// Two layers: a thick patch in layer 0 and a thin one in layer 1, each moving its own way.
     /// A point under neither now is shaded at the horizon when the layer whose motion carries a

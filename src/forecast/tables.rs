@@ -55,7 +55,10 @@ impl TransmittanceMap {
     }
 
     /// [`TransmittanceMap::new`] for one layer of a map whose cloudy cells carry layer labels
-    /// (`labels[k]` = layer index): the other layers' cloud counts as clear sky here.
+    /// (`labels[k]` = layer index): the other layers' cloud counts as clear sky here, except for a
+    /// layer behind the first with [`IrradianceParams::fill_layer_behind`]: there the first
+    /// layer's cloud hides it, and those cells are unseen and filled from their neighbours like
+    /// the sun's glare.
     ///
     /// One piece on purpose: the class shares, the brightness feature and the inward fill of
     /// glare cells are built in passes over the same per-cell buffers, once per frame and layer.
@@ -63,7 +66,8 @@ impl TransmittanceMap {
         let n = map.grid.n;
         let relabelled: Option<Vec<u8>> = layer.map(|(labels, l)| {
             let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
-            map.class.iter().zip(labels).map(|(c, lb)| if (*c == thin || *c == thick) && *lb != l { Class::Clear as u8 } else { *c }).collect()
+            let other = if l > 0 && p.fill_layer_behind { Class::Unknown as u8 } else { Class::Clear as u8 };
+            map.class.iter().zip(labels).map(|(c, lb)| if (*c == thin || *c == thick) && *lb != l { other } else { *c }).collect()
         });
         let class: &[u8] = relabelled.as_deref().unwrap_or(&map.class);
         let w = n + 1;

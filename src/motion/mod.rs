@@ -350,12 +350,23 @@ pub fn measure_layers((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &
     if !second_pass {
         return first;
     }
+    let cancelled = older.is_some();
     // Vectors of the later passes near the dominant layer re-measure it from what its displacement
     // left (rims, misregistration): only the other motions are kept.
     vectors.extend(others.iter().filter(kept));
     let mut m = summarize(vectors, tried, dt_s, params, true);
     m.blocks_static = static_blocks;
     m.check_locked(a, b, params);
+    // A layer only the cancelled-layer pass sees must hold at least as many blocks as the
+    // dominant layer after the split: a true layer seen through another is exposed wherever it
+    // is, while a thinning or growing deck leaves a few scattered vectors in the differences.
+    if cancelled && m.layers.len() == 2 {
+        let near = |l: &LayerMotion| dist(l.v_mps, dominant.v_mps);
+        let (dom, new) = if near(&m.layers[0]) <= near(&m.layers[1]) { (&m.layers[0], &m.layers[1]) } else { (&m.layers[1], &m.layers[0]) };
+        if new.blocks < dom.blocks {
+            return first;
+        }
+    }
     if m.layers.len() == 2 {
         order_two_layers(&mut m, xa.feature(), xb.feature(), b, params.label_radius_cells);
     }
@@ -892,7 +903,7 @@ mod tests {
         let (v_fine, v_coarse, dt) = ([2.9, -1.0], [5.1, 6.1], 100.0);
         let field = |x: f64, y: f64, t: f64| {
             let fine = 0.6 * blobs_of(x - v_fine[0] * t, y - v_fine[1] * t, 400, 140.0, 0);
-            let coarse = blobs_of(x - v_coarse[0] * t, y - v_coarse[1] * t, 16, 420.0, 900);
+            let coarse = blobs_of(x - v_coarse[0] * t, y - v_coarse[1] * t, 40, 420.0, 900);
             fine + coarse
         };
         let maps: Vec<CloudMap> = (0..3).map(|k| classed(|x, y| field(x, y, k as f64 * dt), g)).collect();

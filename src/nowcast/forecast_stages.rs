@@ -214,7 +214,12 @@ impl ForecastStage {
         for (x, y) in rows {
             self.tuner.push(*t, x, y, max_age_s);
         }
-        if let Some(p) = self.tuner.solve(&self.prior) {
+        // With two layers and `tune_bias_with_two_layers` off the window's mean residual is left
+        // alone: the current state's bias at the pyranometers (their look-ups at lead 0 lie near
+        // the camera's sun direction) is not the forecast's at 5–15 min, where the look-ups have
+        // left that region (README, "Two layers through each other").
+        let take_bias = !two_layers || self.prior.tune_bias_with_two_layers;
+        if let Some(p) = self.tuner.solve_with(&self.prior, take_bias) {
             self.irradiance = p;
             self.tuned = true;
         }

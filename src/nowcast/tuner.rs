@@ -47,9 +47,19 @@ impl Tuner {
         }
     }
 
-    /// The transmittances that fit the rows held; `None` with fewer than `prior.tune_min_rows`
-    /// (at least 1). The ridge prior keeps the system well posed with any number of rows.
+    /// The transmittances fitted to the window's rows, with the diffuse gain taking up a clear
+    /// mean residual ([`Tuner::solve_with`]).
+    #[cfg(test)]
     pub(super) fn solve(&self, prior: &IrradianceParams) -> Option<IrradianceParams> {
+        self.solve_with(prior, true)
+    }
+
+    /// The transmittances fitted to the window's rows (Huber-weighted least squares with a prior);
+    /// `None` with fewer than `prior.tune_min_rows` (at least 1; the ridge prior keeps the system
+    /// well posed with any number of rows). `take_bias` false leaves out the diffuse gain's taking
+    /// up of the window's mean residual (with two layers tracked, see
+    /// [`super::forecast_stages::ForecastStage::tune`]).
+    pub(super) fn solve_with(&self, prior: &IrradianceParams, take_bias: bool) -> Option<IrradianceParams> {
         if self.rows.len() < prior.tune_min_rows.max(1) {
             return None;
         }
@@ -89,7 +99,7 @@ impl Tuner {
         // skewed (a sensor in a gap reads far above the fit, one under cloud a little below), so
         // the fit runs biased. The diffuse gain, which adds the same to every point, takes up the
         // window's mean residual, so the current state is unbiased over the window.
-        if huber > 0.0 {
+        if huber > 0.0 && take_bias {
             let (mut res, mut res2, mut cover) = (0.0, 0.0, 0.0);
             for (x, y) in &self.rows {
                 let e = y - (0..TUNED).map(|c| x[c] * sol[c]).sum::<f64>();
