@@ -45,11 +45,21 @@ const TARGET_DIR_ERR_DEG: f64 = 5.0;
 /// 0.48°, all bands together 0.40°); with the calibrated camera the cloud speed is 0.96 m/s off
 /// (0.02 m/s with the true camera).
 ///
+/// The stated direction-error bound covers the true p95 in every band up to 85° (60–70°: 0.375°
+/// against 0.325°; 70–80°: 0.653° against 0.617°), but at the lens's rim, 85–88°, it falls just
+/// short (0.917° against 0.922°, 2026-12-04): beyond the detections (which stop at 70°) the bound
+/// has only the fit's covariance, the competing families and the systematic scale to go on.
+///
 /// The two-layer scene (a thin veil at 6 km over cumulus) reaches 0.22 of pooled 5–15 min skill
 /// against 0.8 × its yardstick's 0.70 (2026-12-03; the same with the dark-cloud test off): the
 /// forecast follows one layer's motion and the veil's transmittance poorly (README, "On a world we
 /// did not make").
-const KNOWN_SHORTFALLS: &[&str] = &["calibration p95 zenith 60–80°", "calibration p95 zenith 0–80°", "nuisance-two-layer pooled skill against the yardstick"];
+const KNOWN_SHORTFALLS: &[&str] = &[
+    "calibration p95 zenith 60–80°",
+    "calibration p95 zenith 0–80°",
+    "stated bound covers the true error, zenith 85–90°",
+    "nuisance-two-layer pooled skill against the yardstick",
+];
 
 fn check(metric: &str, ok: bool, figure: String) {
     if KNOWN_SHORTFALLS.contains(&metric) {
@@ -144,6 +154,20 @@ fn calibration_direction_error_by_zenith_band() {
     assert!(all <= LOOSE_P95_DEG, "p95 {all:.3}° at zenith < 80° is beyond even the loose bound {LOOSE_P95_DEG}°");
     for (z0, z1, p95) in figures {
         check(&format!("calibration p95 zenith {z0}–{z1}°"), p95 <= TARGET_P95_DEG, format!("p95 {p95:.3}° (target {TARGET_P95_DEG}°)"));
+    }
+    // Where the detections do not reach, the issue asks that the stated bound cover the true error:
+    // every band the fit states a bound for, against the true p95 over its directions.
+    for b in &c.fit.bounds {
+        let mut e = direction_errors(&c.truth, &c.fit.camera, b.zenith_from_deg, b.zenith_to_deg);
+        if e.is_empty() {
+            continue;
+        }
+        let (_, p95, _) = stats(&mut e);
+        check(
+            &format!("stated bound covers the true error, zenith {}–{}°", b.zenith_from_deg, b.zenith_to_deg),
+            p95 <= b.bound_deg,
+            format!("true p95 {p95:.3}°, stated bound {:.3}°", b.bound_deg),
+        );
     }
 }
 
