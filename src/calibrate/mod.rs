@@ -298,6 +298,9 @@ pub const BOUND_BANDS_DEG: [(f64, f64); 7] = [(0.0, 40.0), (40.0, 50.0), (50.0, 
 /// no source). A fitted lens whose rim falls outside loses to one whose rim falls inside.
 pub const PLAUSIBLE_RIM_DEG: (f64, f64) = (85.0, 100.0);
 
+/// Smallest share by which a glare-lean correction must lower the held-out error to be kept.
+pub const LEAN_MIN_GAIN: f64 = 0.05;
+
 /// A bound above this \[°\] is reported as the detections not constraining that part of the sky.
 pub const UNCONSTRAINED_BOUND_DEG: f64 = 1.0;
 
@@ -348,7 +351,21 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
         screen_bloom(&mut dets);
         LeanCandidate::fit(dets, glare_lean, circle, size, options)
     });
-    let chosen = candidates.into_iter().flatten().min_by(|a, b| a.cv_rms_px().total_cmp(&b.cv_rms_px())).ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?;
+    // A correction must earn its place: it is kept only when it lowers the held-out error by more
+    // than LEAN_MIN_GAIN (with few detections the held-out error is noisy, and a correction of the
+    // wrong form moves every detection).
+    let [plain, area, profile] = candidates;
+    let corrected = [area, profile].into_iter().flatten().min_by(|a, b| a.cv_rms_px().total_cmp(&b.cv_rms_px()));
+    let chosen = match (plain, corrected) {
+        (Some(p), Some(c)) => {
+            if c.cv_rms_px() < (1.0 - LEAN_MIN_GAIN) * p.cv_rms_px() {
+                c
+            } else {
+                p
+            }
+        }
+        (p, c) => p.or(c).ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?,
+    };
     let LeanCandidate { dets, glare_lean, solved, rims, any_plausible, best } = chosen;
     let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
     let rim_warning = (!any_plausible).then(|| {

@@ -62,15 +62,33 @@ pub fn clear_day_of(day: &str, spec: &CameraSpec, size_px: u32, at: Option<[f64;
     let mask = obstruction_mask(&daylight, circle);
     let reference = clear_sky_reference(&frames, &fit, &detections, &SegmentParams::default());
     eprintln!(
-        "calibrated {} ({} frames, {size_px}² px{}): {} detections, model {}, residual RMS {:.3}°",
+        "calibrated {} ({} frames, {size_px}² px{}): {} detections, model {}, residual RMS {:.3}°, direction error against the scene's camera {:.3}° RMS (zenith < 80°), glare lean {:?}",
         spec.name,
         frames.len(),
         if at.is_some() { ", second position" } else { "" },
         detections.len(),
         fit.camera.projection.name(),
-        fit.rms_deg
+        fit.rms_deg,
+        direction_error_rms_deg(&truth, &fit.camera),
+        fit.glare_lean
     );
     Calibrated { fit, detections, mask, reference }
+}
+
+/// RMS direction error \[°\] of `fit` against `truth` over sky directions at zenith < 80° (every 5°
+/// of zenith, 10° of azimuth) that the true camera images.
+pub fn direction_error_rms_deg(truth: &nephocast::camera::Camera, fit: &nephocast::camera::Camera) -> f64 {
+    let (mut s, mut n) = (0.0, 0.0);
+    for zi in 0..16 {
+        for ai in 0..36 {
+            let d = nephocast::sun::direction_enu((zi as f64 * 5.0 + 2.5).to_radians(), (ai as f64 * 10.0).to_radians());
+            let Some((x, y)) = truth.project_enu(d) else { continue };
+            let Some(e) = fit.unproject_enu(x, y) else { continue };
+            s += (d[0] * e[0] + d[1] * e[1] + d[2] * e[2]).clamp(-1.0, 1.0).acos().to_degrees().powi(2);
+            n += 1.0;
+        }
+    }
+    (s / n).sqrt()
 }
 
 impl Calibrated {
