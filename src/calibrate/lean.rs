@@ -239,6 +239,8 @@ pub struct LeanCorrection {
     pub median_move_px: f64,
     /// Largest inward move \[px\] (outward moves are negative).
     pub largest_move_px: f64,
+    /// Held-out RMS of the fit without the correction, when it was kept \[px\] (0 when not known).
+    pub held_out_without_px: f64,
 }
 
 /// Take each detection's glare lean out (see the module docs). `levels[i]` are detection `i`'s
@@ -275,6 +277,7 @@ pub fn correct_glare_lean(dets: &mut [Detection], levels: &[Vec<GlareLevel>], ce
         measured: measured.len(),
         median_move_px: sorted.get(sorted.len() / 2).copied().unwrap_or(0.0),
         largest_move_px: sorted.last().copied().unwrap_or(0.0),
+        held_out_without_px: 0.0,
     }
 }
 

@@ -357,8 +357,9 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     let [plain, area, profile] = candidates;
     let corrected = [area, profile].into_iter().flatten().min_by(|a, b| a.cv_rms_px().total_cmp(&b.cv_rms_px()));
     let chosen = match (plain, corrected) {
-        (Some(p), Some(c)) => {
+        (Some(p), Some(mut c)) => {
             if c.cv_rms_px() < (1.0 - LEAN_MIN_GAIN) * p.cv_rms_px() {
+                c.glare_lean.held_out_without_px = p.cv_rms_px();
                 c
             } else {
                 p

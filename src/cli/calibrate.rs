@@ -136,11 +136,12 @@ fn print_fit(fit: &crate::calibrate::Fit, detections: usize) {
     }
     if fit.glare_lean.measured > 0 {
         crate::say!(
-            "  glare lean     detections moved back toward the centre by {:.2} px (median; largest {:.2} px), from the level sets of {} detections ({} model)",
+            "  glare lean     detections moved back toward the centre by {:.2} px (median; largest {:.2} px), from the level sets of {} detections ({} model; held-out RMS {:.3} px without it)",
             fit.glare_lean.median_move_px,
             fit.glare_lean.largest_move_px,
             fit.glare_lean.measured,
-            fit.glare_lean.model.name()
+            fit.glare_lean.model.name(),
+            fit.glare_lean.held_out_without_px
         );
     }
     crate::say!("  field          {:>12.2}° from the axis (where the lens puts the image circle's rim)", fit.camera.max_field_angle_rad.to_degrees());
