@@ -34,6 +34,9 @@
 //!    background gradient. A detection with fewer than three level sets stays as it is.
 //!
 //! A symmetric glare gives slopes of zero, and nothing moves.
+//!
+//! Sources: the slope estimator is H. Theil (1950) and P. K. Sen (1968), from memory; the
+//! first-order shift of a level set's centroid is derived here (no source).
 
 use super::Detection;
 

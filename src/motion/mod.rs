@@ -40,7 +40,7 @@
 //!   images).
 //! * J. P. Lewis, "Fast normalized cross-correlation", *Vision Interface* 1995.
 //! * J. R. Bergen, P. J. Burt, R. Hingorani and S. Peleg, "A three-frame algorithm for estimating
-//!   two-component image motion", *IEEE PAMI* 14:886–896, 1992.
+//!   two-component image motion", *IEEE PAMI* 14:886–896, 1992 (citation from memory).
 
 use std::path::Path;
 
@@ -310,7 +310,7 @@ const EQUAL_STEP_TOLERANCE: f64 = 0.1;
 /// other layer is the same pattern in both, moved by that layer's own displacement, and block
 /// matching of the first difference against the second measures it (the three-frame method for
 /// two motions of J. R. Bergen, P. J. Burt, R. Hingorani and S. Peleg, *IEEE PAMI* 14:886–896,
-/// 1992). Its vectors within the two-layer separation of the dominant layer are what the
+/// 1992; citation from memory). Its vectors within the two-layer separation of the dominant layer are what the
 /// dominant layer's own small misregistration left and are dropped; the rest join the first pass's
 /// for the clustering into layers, as the residual pass's do.
 pub fn measure_layers((a, xa): (&CloudMap, &MapFeatures), (b, xb): (&CloudMap, &MapFeatures), older: Option<OlderMap>, dt_s: f64, params: &MotionParams, priors: &[Motion]) -> MotionMeasurement {
@@ -896,7 +896,7 @@ mod tests {
     /// high veil looks over cumulus on the cumulus's plane. With the residual pass unable to help
     /// (its share set out of reach) only one layer is found from two maps; the cancelled-layer
     /// pass over three maps at equal steps finds both, each within 0.5 m/s. Additive two-motion
-    /// model and its three-frame cancellation: J. R. Bergen et al., IEEE PAMI 14:886–896, 1992.
+    /// model and its three-frame cancellation: J. R. Bergen et al., IEEE PAMI 14:886–896, 1992 (from memory).
     #[test]
     fn cancelled_layer_pass_finds_two_layers_of_different_speed_and_texture_scale() {
         let g = Grid::new(&MapParams { max_zenith_deg: 77.0, ..Default::default() }, 1500.0);
