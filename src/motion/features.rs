@@ -314,33 +314,16 @@ pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usi
     let (mut dv, mut dc) = (pool::take_f32(), pool::take_f32());
     dv.resize(n * n, 0.0);
     dc.resize(n * n, 0.0);
-    // a at y − d: integer part o, fractions (fx, fy) toward the next cell.
-    let (ox, oy) = ((-d[0]).floor() as i64, (-d[1]).floor() as i64);
-    let (fx, fy) = ((-d[0] - ox as f64) as f32, (-d[1] - oy as f64) as f32);
-    let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
-    // Columns i whose samples i + ox and i + ox + 1 are on the map.
-    let (i0, i1) = ((-ox).max(0) as usize, (n as i64 - 1 - ox).clamp(0, n as i64) as usize);
-    if i1 > i0 {
-        let len = i1 - i0;
-        let c0 = (i0 as i64 + ox) as usize;
-        for j in 0..n {
-            let ja = j as i64 + oy;
-            if ja < 0 || ja + 1 >= n as i64 {
-                continue;
-            }
-            let ja = ja as usize;
-            let (r0, r1) = (&fa[ja * n + c0..ja * n + c0 + len + 1], &fa[(ja + 1) * n + c0..(ja + 1) * n + c0 + len + 1]);
-            let rb = &fb[j * n + i0..j * n + i1];
-            let (ov, oc) = (&mut dv[j * n + i0..j * n + i1], &mut dc[j * n + i0..j * n + i1]);
-            for i in 0..len {
-                let y = w00 * r0[i] + w10 * r0[i + 1] + w01 * r1[i] + w11 * r1[i + 1];
-                let e = (rb[i] - y).abs();
-                let ok = !e.is_nan();
-                ov[i] = if ok { e } else { 0.0 };
-                oc[i] = if ok { 1.0 } else { 0.0 };
-            }
+    shifted_rows(fa, fb, n, d, |j, i0, r0, r1, rb, [w00, w10, w01, w11]| {
+        let (ov, oc) = (&mut dv[j * n + i0..j * n + i0 + rb.len()], &mut dc[j * n + i0..j * n + i0 + rb.len()]);
+        for i in 0..rb.len() {
+            let y = w00 * r0[i] + w10 * r0[i + 1] + w01 * r1[i] + w11 * r1[i + 1];
+            let e = (rb[i] - y).abs();
+            let ok = !e.is_nan();
+            ov[i] = if ok { e } else { 0.0 };
+            oc[i] = if ok { 1.0 } else { 0.0 };
         }
-    }
+    });
     // Along rows: the window [i − r, i + r] clipped to the map.
     let (mut hv, mut hc) = (pool::take_f32(), pool::take_f32());
     hv.resize(n * n, 0.0);
@@ -406,13 +389,30 @@ pub(super) fn box_mismatch(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], r: usi
 pub(super) fn cancelled_difference(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2]) -> Vec<f32> {
     let mut out = pool::take_f32();
     out.resize(n * n, f32::NAN);
+    shifted_rows(fa, fb, n, d, |j, i0, r0, r1, rb, [w00, w10, w01, w11]| {
+        let o = &mut out[j * n + i0..j * n + i0 + rb.len()];
+        for i in 0..rb.len() {
+            o[i] = rb[i] - (w00 * r0[i] + w10 * r0[i + 1] + w01 * r1[i] + w11 * r1[i + 1]);
+        }
+    });
+    out
+}
+
+/// `fa` sampled bilinearly at y − d beside `fb` at y (maps `n × n`, `d` in cells), row by row: for
+/// each row `j` of `fb` whose samples of `fa` are on the map, `row(j, i0, r0, r1, rb, w)` with `rb`
+/// the row's columns `i0..i0 + rb.len()` of `fb`, `r0` and `r1` the two rows of `fa` around y − d
+/// (one sample longer), and the bilinear weights `w`: `fa(y − d)` at column `i0 + i` is
+/// `w[0]·r0[i] + w[1]·r0[i + 1] + w[2]·r1[i] + w[3]·r1[i + 1]`. Row slices, so the callers' inner
+/// loops vectorize.
+fn shifted_rows(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2], mut row: impl FnMut(usize, usize, &[f32], &[f32], &[f32], [f32; 4])) {
+    // a at y − d: integer part o, fractions (fx, fy) toward the next cell.
     let (ox, oy) = ((-d[0]).floor() as i64, (-d[1]).floor() as i64);
     let (fx, fy) = ((-d[0] - ox as f64) as f32, (-d[1] - oy as f64) as f32);
-    let (w00, w10, w01, w11) = ((1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy);
+    let w = [(1.0 - fx) * (1.0 - fy), fx * (1.0 - fy), (1.0 - fx) * fy, fx * fy];
     // Columns i whose samples i + ox and i + ox + 1 are on the map.
     let (i0, i1) = ((-ox).max(0) as usize, (n as i64 - 1 - ox).clamp(0, n as i64) as usize);
     if i1 <= i0 {
-        return out;
+        return;
     }
     let (len, c0) = (i1 - i0, (i0 as i64 + ox) as usize);
     for j in 0..n {
@@ -422,12 +422,8 @@ pub(super) fn cancelled_difference(fa: &[f32], fb: &[f32], n: usize, d: [f64; 2]
         }
         let ja = ja as usize;
         let (r0, r1) = (&fa[ja * n + c0..ja * n + c0 + len + 1], &fa[(ja + 1) * n + c0..(ja + 1) * n + c0 + len + 1]);
-        let (rb, o) = (&fb[j * n + i0..j * n + i1], &mut out[j * n + i0..j * n + i1]);
-        for i in 0..len {
-            o[i] = rb[i] - (w00 * r0[i] + w10 * r0[i + 1] + w01 * r1[i] + w11 * r1[i + 1]);
-        }
+        row(j, i0, r0, r1, &fb[j * n + i0..j * n + i1], w);
     }
-    out
 }
 
 /// Feature maps of the earlier and the later map.
