@@ -5,7 +5,7 @@
 //!    pull it), rejected when the blob is too small (sun clouded), too large, or when much saturated
 //!    area lies elsewhere (bright cloud: ambiguous). Each detection is paired with the SPA sun
 //!    direction at the frame's time and keeps the area of its saturated blob.
-//!    **Glare lean** ([`lean`]): the clipped image is a level set of the sun's glare, and an
+//!    **Glare lean** ([`correct_glare_lean`], `calibrate/lean.rs`): the clipped image is a level set of the sun's glare, and an
 //!    asymmetric glare moves its centroid outward by an amount that grows with its size and that a
 //!    fit would take for focal length. The nested level sets of each detection (236 … 252) measure
 //!    that growth; the detection is moved back to where a level set of no size would sit.

@@ -1,0 +1,218 @@
+//! The forecast's motion over time: the temporal filter of the motion vector and the tracker that
+//! keeps each cloud layer's motion from frame to frame (the measurement itself is in the parent
+//! module).
+
+use super::{LayerMotion, MotionMeasurement, MotionParams, dist};
+
+/// Temporal filter of the forecast's motion vector (a Kalman filter per component with gating).
+#[derive(Debug, Clone, Default)]
+pub struct MotionFilter {
+    state: Option<([f64; 2], f64)>,
+    /// Measurements rejected by the gate.
+    pub gated: usize,
+    /// Measurements rejected in a row.
+    gated_run: usize,
+    /// Measurements accepted in a row since the filter started or restarted (a gated one resets
+    /// it to 0).
+    accepted_run: usize,
+}
+
+/// After this many measurements in a row rejected by the gate, the filter restarts from the
+/// newest: it had locked onto something else (a blend of layers while the motion was first
+/// being found, or a wind shift).
+const RESTART_AFTER_GATED: usize = 3;
+
+/// The filtered motion at one frame.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Motion {
+    /// Velocity (east, north) \[m/s\].
+    pub v_mps: [f64; 2],
+    /// One-sigma uncertainty of each component \[m/s\].
+    pub sigma_mps: f64,
+}
+
+impl MotionFilter {
+    /// Current estimate.
+    pub fn current(&self) -> Option<Motion> {
+        self.state.map(|(v, p)| Motion { v_mps: v, sigma_mps: p.sqrt() })
+    }
+
+    /// Measurements accepted in a row by the gate since the filter started or last restarted:
+    /// how many consistent measurements the current estimate stands on.
+    pub fn accepted_run(&self) -> usize {
+        self.accepted_run
+    }
+
+    /// The map's plane moved by `ratio` (new height over old): every speed on the map scales by it,
+    /// the estimate and its variance with it.
+    pub fn rescale(&mut self, ratio: f64) {
+        if let Some((v, p)) = &mut self.state {
+            *v = [v[0] * ratio, v[1] * ratio];
+            *p *= ratio * ratio;
+        }
+    }
+
+    /// Advance by `dt_s` and fold in a measured layer (if any).
+    pub fn update(&mut self, m: Option<&LayerMotion>, dt_s: f64, params: &MotionParams) -> Option<Motion> {
+        let meas = m.map(|l| (l.v_mps, l.spread_mps, l.blocks));
+        match (&mut self.state, meas) {
+            (None, Some((v, spread, nb))) => {
+                let r = spread.powi(2) / nb.max(1) as f64 + 0.05;
+                self.state = Some((v, r.max(0.25)));
+                self.accepted_run = 1;
+            }
+            (Some((x, p)), Some((v, spread, nb))) => {
+                *p += params.filter_process_noise * dt_s;
+                let r = spread.powi(2) / nb.max(1) as f64 + 0.05;
+                let innov = dist(v, *x);
+                let r_eff = if innov > 3.0 * (*p + r).sqrt() && *p < 1.0 {
+                    self.gated += 1;
+                    self.gated_run += 1;
+                    self.accepted_run = 0;
+                    r * 25.0
+                } else {
+                    self.gated_run = 0;
+                    self.accepted_run += 1;
+                    r
+                };
+                if self.gated_run >= RESTART_AFTER_GATED {
+                    self.gated_run = 0;
+                    self.accepted_run = 1;
+                    self.state = Some((v, r.max(0.25)));
+                } else {
+                    let k = *p / (*p + r_eff);
+                    x[0] += k * (v[0] - x[0]);
+                    x[1] += k * (v[1] - x[1]);
+                    *p *= 1.0 - k;
+                }
+            }
+            (Some((_, p)), None) => *p += params.filter_process_noise * dt_s,
+            (None, None) => {}
+        }
+        self.current()
+    }
+}
+
+/// A tracked layer's filtered motion at one frame.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct TrackedLayer {
+    /// Filtered motion.
+    pub motion: Motion,
+    /// Opacity: smoothed thick-cloud share of its blocks' matched cloud.
+    pub thick_share: f64,
+}
+
+#[derive(Debug, Clone, Default)]
+struct Slot {
+    filter: MotionFilter,
+    since_s: f64,
+    hits: usize,
+    blocks: f64,
+    thick_share: f64,
+}
+
+/// Up to two layers tracked over time, each by its own [`MotionFilter`]. Each frame's measured
+/// layers go to the filters nearest them (a layer far from every tracked one starts a new track);
+/// a track without measurements for `layer_expiry_s` is dropped; a second track enters the forecast
+/// once it has `layer_confirm` measurements.
+#[derive(Debug, Clone, Default)]
+pub struct LayerTracker {
+    slots: [Slot; 2],
+    /// The track put first (the forecast's primary layer) last time.
+    primary: usize,
+}
+
+/// The other track becomes the primary layer only when its opacity exceeds the primary's by this.
+const PRIMARY_MARGIN: f64 = 0.01;
+
+impl LayerTracker {
+    fn active(&self, k: usize) -> Option<Motion> {
+        self.slots[k].filter.current()
+    }
+
+    /// Consistent measurements behind the forecast's first layer: the accepted run of the track
+    /// put first last time (0 before any motion is known).
+    pub fn primary_accepted_run(&self) -> usize {
+        if self.active(self.primary).is_some() { self.slots[self.primary].filter.accepted_run() } else { 0 }
+    }
+
+    /// The map's plane moved by `ratio` (new height over old): each track's motion scales by it
+    /// ([`MotionFilter::rescale`]); their order, opacity and counts stay.
+    pub fn rescale(&mut self, ratio: f64) {
+        for s in &mut self.slots {
+            s.filter.rescale(ratio);
+        }
+    }
+
+    /// Filtered motions to search around, the track with the most blocks first.
+    pub fn priors(&self) -> Vec<Motion> {
+        let mut v: Vec<(f64, Motion)> = (0..2).filter_map(|k| self.active(k).map(|m| (self.slots[k].blocks, m))).collect();
+        v.sort_by(|a, b| b.0.total_cmp(&a.0));
+        v.into_iter().map(|x| x.1).collect()
+    }
+
+    /// Advance by `dt_s` and fold in a measurement. Returns the layers for the forecast, the most
+    /// opaque first (empty before any motion is known).
+    pub fn update(&mut self, m: Option<&MotionMeasurement>, dt_s: f64, params: &MotionParams) -> Vec<TrackedLayer> {
+        let measured: &[LayerMotion] = m.map(|m| m.layers.as_slice()).unwrap_or(&[]);
+        // Cost of pairing a measured layer with a track: their distance; a new track costs the
+        // two-layer separation.
+        let cost = |l: &LayerMotion, k: usize| self.active(k).map(|c| dist(l.v_mps, c.v_mps)).unwrap_or(params.two_layer_separation_mps);
+        let mut assign: [Option<usize>; 2] = [None, None]; // track -> measured layer
+        match measured {
+            [] => {}
+            [l] => {
+                let k = if cost(l, 0) <= cost(l, 1) { 0 } else { 1 };
+                assign[k] = Some(0);
+            }
+            [l0, l1, ..] => {
+                if cost(l0, 0) + cost(l1, 1) <= cost(l0, 1) + cost(l1, 0) {
+                    assign = [Some(0), Some(1)];
+                } else {
+                    assign = [Some(1), Some(0)];
+                }
+            }
+        }
+        for (k, slot) in self.slots.iter_mut().enumerate() {
+            let l = assign[k].map(|i| &measured[i]);
+            slot.filter.update(l, dt_s, params);
+            match l {
+                Some(l) => {
+                    let first = slot.hits == 0;
+                    slot.hits += 1;
+                    slot.since_s = 0.0;
+                    let w = if first { 1.0 } else { 0.3 };
+                    slot.blocks += w * (l.blocks as f64 - slot.blocks);
+                    slot.thick_share += w * (l.thick_share - slot.thick_share);
+                }
+                None => slot.since_s += dt_s,
+            }
+            if slot.since_s > params.layer_expiry_s {
+                *slot = Slot::default();
+            }
+        }
+        // Two tracks that have converged are one layer: keep the longer.
+        if let (Some(a), Some(b)) = (self.active(0), self.active(1))
+            && dist(a.v_mps, b.v_mps) < 0.5 * params.two_layer_separation_mps
+        {
+            let drop = if self.slots[0].hits >= self.slots[1].hits { 1 } else { 0 };
+            self.slots[drop] = Slot::default();
+        }
+        let n_active = (0..2).filter(|&k| self.active(k).is_some()).count();
+        let used: Vec<usize> = (0..2).filter(|&k| self.active(k).is_some() && (n_active == 1 || self.slots[k].hits >= params.layer_confirm)).collect();
+        if let [one] = used.as_slice() {
+            self.primary = *one;
+        } else if used.len() == 2 {
+            let other = 1 - self.primary;
+            if self.slots[other].thick_share > self.slots[self.primary].thick_share + PRIMARY_MARGIN {
+                self.primary = other;
+            }
+        }
+        let mut out: Vec<TrackedLayer> =
+            used.iter().filter_map(|&k| self.active(k).map(|m| TrackedLayer { motion: m, thick_share: self.slots[k].thick_share })).collect();
+        if used.len() == 2 && used[0] != self.primary {
+            out.swap(0, 1);
+        }
+        out
+    }
+}
