@@ -109,11 +109,11 @@ pub struct GlareLevel {
     pub y_px: f64,
 }
 
-/// The nested level sets ([`LEVELS`]) of the glare around `(x, y)`: for each level, the 4-connected
+/// The nested level sets (`LEVELS`, 236–252) of the glare around `(x, y)`: for each level, the 4-connected
 /// component of pixels at least that in every channel that holds the pixel nearest `(x, y)` (or the
 /// nearest such pixel within 2 px), over its rows at least three pixels wide. A level whose
 /// component reaches `reach_px` from `(x, y)` (the glare runs into bright cloud or the frame) or has
-/// fewer than [`MIN_AREA_PX`] pixels is left out.
+/// fewer than `MIN_AREA_PX` (9) pixels is left out.
 pub fn glare_levels(img: &image::RgbImage, x: f64, y: f64, reach_px: f64) -> Vec<GlareLevel> {
     let (w, h) = img.dimensions();
     let reach = reach_px.ceil().max(3.0) as i64;
