@@ -521,8 +521,10 @@ def run_camera(a, camera, sc, yard, log, res):
             f.write(toml_table("camera", placeholder_calibration(site_json["image_width"], site_json["image_height"])))
         cal_site = os.path.join(work, "site-calibrate.toml")
         write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr)
-        rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", os.path.join(clear, "input", "frames"),
-                            "--out", cal], log=log)
+        frames = clear_frames_subset(os.path.join(clear, "input", "frames"), a.clear_subset, os.path.join(work, "clear-frames"))
+        cal_info["clear_subset"] = a.clear_subset
+        cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.endswith(".jpg")])
+        rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", frames, "--out", cal], log=log)
         cal_info.update(exit_code=rc, stdout=out, stderr=err,
                         warnings=[ln.strip() for ln in (out + "\n" + err).splitlines() if "warning" in ln.lower()])
     else:
@@ -614,6 +616,8 @@ def markdown(res):
     ci = res.get("calibration", {})
     f = ci.get("fields") or {}
     t = ci.get("true", {})
+    if ci.get("clear_subset", "all") != "all":
+        L.append(f"Calibrated from part of the clear day only: `{ci['clear_subset']}`, {ci.get('clear_frames')} frames.\n")
     L.append(f"**Calibration**: exit {ci.get('exit_code')}; model {f.get('model')} (true {t.get('model')}), "
              f"f {fnum(f.get('f_px_per_rad'))} px/rad (true {fnum(t.get('f_px'))}), "
              f"max field angle {fnum(f.get('max_field_angle_deg'), '{:.1f}')}° (true {fnum(t.get('theta_max_deg'), '{:.1f}')}), "
@@ -724,6 +728,28 @@ def markdown(res):
     return "\n".join(L) + "\n"
 
 
+CLEAR_SUBSETS = ("all", "morning", "afternoon", "midday", "every3")
+
+
+def clear_frames_subset(frames, subset, out):
+    """The clear day's frames that ``calibrate`` sees: all of them, or a part of the day, linked into
+    ``out``. A user may have only a morning, or frames every 15 min: the calibration must hold up on
+    those too (frame names carry the UTC time, ``YYYYMMDDTHHMMSSZ.jpg``; morning/afternoon split at
+    12:00 UTC, midday is 09:00-15:00 UTC, every3 keeps every third frame)."""
+    if subset == "all":
+        return frames
+    names = sorted(n for n in os.listdir(frames) if n.endswith(".jpg"))
+    hour = lambda n: n[9:11]  # noqa: E731
+    keep = {"morning": [n for n in names if hour(n) < "12"],
+            "afternoon": [n for n in names if hour(n) >= "12"],
+            "midday": [n for n in names if "09" <= hour(n) < "15"],
+            "every3": names[::3]}[subset]
+    os.makedirs(out, exist_ok=True)
+    for n in keep:
+        os.symlink(os.path.join(frames, n), os.path.join(out, n))
+    return out
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     here = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -744,6 +770,8 @@ def main():
                          "holds the frame time, i.e. up to 60 s of readings after the frame; this removes that look-ahead)")
     ap.add_argument("--calibration-only", action="store_true",
                     help="stop after measuring the calibration (steps 3-4 and the detections' lean); no replays")
+    ap.add_argument("--clear-subset", choices=CLEAR_SUBSETS, default="all",
+                    help="calibrate from part of the clear day only (robustness check; the clear-day replay keeps every frame)")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
     if not a.scenes or not os.path.isdir(a.scenes):
