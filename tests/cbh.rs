@@ -143,10 +143,12 @@ fn check(metric: &str, ok: bool, figure: String) {
     }
 }
 
-fn wrong_prior(site: &str, shadow: bool) -> String {
+/// The site with the base configured 1.6 × too high and `shadow_timing` set to `shadow` (unset
+/// with `None`: the default, where the fits check the configured base).
+fn wrong_prior(site: &str, shadow: Option<bool>) -> String {
     let from = format!("base_height_m = {TRUTH_M:.1}");
     assert!(site.contains(&from), "the written site holds {from}");
-    let to = format!("base_height_m = {:.1}{}", 1.6 * TRUTH_M, if shadow { "\nshadow_timing = true" } else { "" });
+    let to = format!("base_height_m = {:.1}{}", 1.6 * TRUTH_M, shadow.map(|on| format!("\nshadow_timing = {on}")).unwrap_or_default());
     site.replace(&from, &to)
 }
 
@@ -154,8 +156,9 @@ fn wrong_prior(site: &str, shadow: bool) -> String {
 fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     let d = network_scene();
     let truth = run(d, "truth", |s| s.to_string());
-    let est = run(d, "shadow", |s| wrong_prior(s, true));
-    let wrong = run(d, "wrong", |s| wrong_prior(s, false));
+    let est = run(d, "shadow", |s| wrong_prior(s, Some(true)));
+    let wrong = run(d, "wrong", |s| wrong_prior(s, Some(false)));
+    let auto = run(d, "auto", |s| wrong_prior(s, None));
     // Without shadow timing every frame reports the configured value and its 30 % prior, and the
     // map stays on it.
     for (h, sd, src) in &wrong.cbh {
@@ -188,7 +191,7 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
         mean_sigma,
         covered
     );
-    for (tag, r) in [("true base", &truth), ("estimated base", &est), ("wrong prior only", &wrong)] {
+    for (tag, r) in [("true base", &truth), ("estimated base", &est), ("wrong prior only", &wrong), ("default (checked)", &auto)] {
         eprintln!("cbh-network: skill 5/10/15 min with the {tag:<16} {:.3} {:.3} {:.3}", skill(&r.eval, 5), skill(&r.eval, 10), skill(&r.eval, 15));
     }
     check("estimate share", share >= 0.5, format!("{share:.2} of frames (target ≥ 0.5)"));
@@ -198,6 +201,16 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     check("plane followed", !moves.is_empty() && (last / TRUTH_M - 1.0).abs() <= 0.10, format!("{} moves, ending at {last:.0} m (target within 10 % of {TRUTH_M:.0} m)", moves.len()));
     let gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&est.eval, *m)).collect();
     check("skill gap", gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus estimated at 5/10/15 min {gaps:.3?} (target within ±0.03)"));
+    // The default (shadow_timing unset): the fits disagree with the wrong configured base, take
+    // over from it, and the plane follows them as with shadow timing asked for.
+    let auto_last = auto.plane.last().unwrap().0;
+    check(
+        "default: plane followed",
+        !auto.moves().is_empty() && (auto_last / TRUTH_M - 1.0).abs() <= 0.10,
+        format!("{} moves, ending at {auto_last:.0} m (target within 10 % of {TRUTH_M:.0} m)", auto.moves().len()),
+    );
+    let auto_gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&auto.eval, *m)).collect();
+    check("default: skill gap", auto_gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus default at 5/10/15 min {auto_gaps:.3?} (target within ±0.03)"));
 }
 
 /// The same network read as 1-minute means (the usual logger setting; the same frames, the
@@ -213,7 +226,7 @@ fn one_minute_readings_figures() {
     let m60 = tempfile::tempdir().unwrap();
     let path = m60.path().join("measurements.csv");
     std::fs::write(&path, nephocast::synth::measurements_csv(&Scene::new(spec, 3).unwrap())).unwrap();
-    let est = run_with(d, "shadow60", &path, |s| wrong_prior(s, true));
+    let est = run_with(d, "shadow60", &path, |s| wrong_prior(s, Some(true)));
     let fits: Vec<&(f64, f64, String)> = est.cbh.iter().filter(|c| c.2 == "shadow_timing").collect();
     let mut errs: Vec<f64> = fits.iter().map(|c| (c.0 - TRUTH_M).abs() / TRUTH_M).collect();
     errs.sort_by(f64::total_cmp);
@@ -305,10 +318,12 @@ fn no_estimate_without_shadows() {
 #[test]
 fn shadow_timing_without_pyranometers_is_refused() {
     let mut f = nephocast::synth::larkspur_site(1200.0, "cam");
-    f.clouds.shadow_timing = true;
+    f.clouds.shadow_timing = Some(true);
     let e = f.validate(Path::new("site.toml")).unwrap_err().to_string();
     assert!(e.contains("clouds.shadow_timing") && e.contains("site.toml"), "{e}");
-    f.clouds.shadow_timing = false;
+    f.clouds.shadow_timing = None;
+    assert!(f.validate(Path::new("site.toml")).is_ok(), "unset shadow timing needs no pyranometers");
+    f.clouds.shadow_timing = Some(false);
     f.clouds.base_height_rel_sigma = Some(5.0);
     let e = f.validate(Path::new("site.toml")).unwrap_err().to_string();
     assert!(e.contains("clouds.base_height_rel_sigma"), "{e}");

@@ -315,24 +315,33 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
     poly = [[ce - se / 2, cn - sn / 2], [ce + se / 2, cn - sn / 2], [ce + se / 2, cn + sn / 2], [ce - se / 2, cn + sn / 2]]
     cbh = (ceil_json or {}).get("cloud_base_heights_m") or []
     base = float(cbh[0]) if cbh else 1500.0
-    text = "# Written by tools/independent_scenes.py from input/site.json (a check, not a tuned site).\n"
-    text += toml_table("site", {"name": s["name"], "latitude_deg": s["latitude"], "longitude_deg": s["longitude"],
-                                "elevation_m": s["altitude_m"]})
-    text += toml_table("camera", {"calibration": os.path.abspath(calibration), "position_m": [0.0, 0.0, 0.0]})
-    text += toml_table("clouds", {"base_height_m": base})
-    text += toml_table("plant", {"point_spacing_m": 25.0})
-    # A horizontal fixed block: its POA is GHI. Capacity ~200 W/m2 of footprint.
-    text += toml_table("plant.blocks", {"name": "footprint", "polygon_m": poly, "capacity_kw": round(se * sn * 0.2),
-                                        "mount": "fixed", "tilt_deg": 0.0, "azimuth_deg": 180.0}, array=True)
-    text += toml_table("forecast", {"horizon_min": 15, "step_s": 60})
-    # Settings given with --set SECTION.KEY=VALUE (TOML values), one table per section.
+    # Settings given with --set SECTION.KEY=VALUE (TOML values); a key the harness writes itself
+    # (e.g. clouds.base_height_m) is replaced, not written twice.
     extra = {}
     for kv in settings:
         k, v = kv.split("=", 1)
         sec, key = k.strip().rsplit(".", 1)
-        extra.setdefault(sec, []).append(f"{key} = {v.strip()}\n")
+        extra.setdefault(sec, {})[key.strip()] = v.strip()
+
+    def table(name, d):
+        lines = {k: toml_value(v) for k, v in d.items()}
+        lines.update(extra.pop(name, {}))
+        return f"[{name}]\n" + "".join(f"{k} = {v}\n" for k, v in lines.items()) + "\n"
+
+    text = "# Written by tools/independent_scenes.py from input/site.json (a check, not a tuned site).\n"
+    text += table("site", {"name": s["name"], "latitude_deg": s["latitude"], "longitude_deg": s["longitude"],
+                           "elevation_m": s["altitude_m"]})
+    text += table("camera", {"calibration": os.path.abspath(calibration), "position_m": [0.0, 0.0, 0.0]})
+    text += table("clouds", {"base_height_m": base})
+    if "clouds.base_height_m" in [kv.split("=", 1)[0].strip() for kv in settings]:
+        base = float(next(kv.split("=", 1)[1] for kv in settings if kv.split("=", 1)[0].strip() == "clouds.base_height_m"))
+    text += table("plant", {"point_spacing_m": 25.0})
+    # A horizontal fixed block: its POA is GHI. Capacity ~200 W/m2 of footprint.
+    text += toml_table("plant.blocks", {"name": "footprint", "polygon_m": poly, "capacity_kw": round(se * sn * 0.2),
+                                        "mount": "fixed", "tilt_deg": 0.0, "azimuth_deg": 180.0}, array=True)
+    text += table("forecast", {"horizon_min": 15, "step_s": 60})
     for sec, lines in extra.items():
-        text += f"[{sec}]\n" + "".join(lines) + "\n"
+        text += f"[{sec}]\n" + "".join(f"{k} = {v}\n" for k, v in lines.items()) + "\n"
     for p in pyranometers:
         text += toml_table("pyranometers", {"name": p["name"], "position_m": p["position_m"]}, array=True)
     with open(path, "w") as f:

@@ -65,6 +65,19 @@ pub const CEILOMETER_REL_SIGMA: f64 = 0.05;
 /// Growth of an estimate's uncertainty with its age, as the sigma of `ln h` per second (0.1 per
 /// 10 minutes: cumulus bases drift by some tens of metres in minutes; own choice, no source).
 pub const AGE_REL_SIGMA_PER_S: f64 = 0.1 / 600.0;
+/// With `[clouds] shadow_timing` unset, shadow timing checks the configured base instead of
+/// always pulling on it: a fit disagrees with the configured base when `|ln(fit / configured)|`
+/// exceeds [`CHECK_SIGMAS`] × √(σ_fit² + [`CHECK_FLOOR_REL`]²). The floor stands for the fits'
+/// error beyond their stated spread: with the true base configured, the project's scenes gave
+/// fits up to ~10 % off (the demo's three close pyranometers: median error 9.4 %, README), and a
+/// floor of 5 % let them reject the true base on four of six scenes (own choice from those runs).
+pub const CHECK_FLOOR_REL: f64 = 0.10;
+/// How many of those sigmas a fit must lie off the configured base to disagree with it (own
+/// choice: two, a 5 % false alarm for a Gaussian).
+pub const CHECK_SIGMAS: f64 = 2.0;
+/// Consecutive disagreeing fits, on the same side, after which the configured base is taken as
+/// wrong and the fits are combined with it (own choice: stray fits must not move the base).
+pub const CHECK_MIN_DISAGREEING: usize = 3;
 
 /// `[clouds]`: a fixed cloud base height or a series.
 #[derive(Debug, Clone, Serialize, Deserialize)]
@@ -81,10 +94,13 @@ pub struct CloudSection {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub base_height_rel_sigma: Option<f64>,
     /// Estimate the cloud base height from shadow timing at the `[[pyranometers]]`
-    /// ([`ShadowTiming`]; needs at least 3 pyranometers) and combine it with the
-    /// configured value or series.
-    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
-    pub shadow_timing: bool,
+    /// ([`ShadowTiming`]) and combine it with the configured value or series. Unset (the
+    /// default): on whenever the measurements hold at least [`MIN_SHADOW_SENSORS`] pyranometer
+    /// columns, since a typed-in base is a guess (without it a base 1.6 × or 0.5 × the truth
+    /// costs most of the forecast's skill: DEVELOPERS.md, "Shadow timing is on by default");
+    /// `true` asks for it (a site with fewer pyranometers is refused); `false` turns it off.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shadow_timing: Option<bool>,
     /// Known cloud layers (e.g. from a sounding or a weather model), each a base height and the
     /// direction it moves toward: a tracked layer moving within [`LAYER_PRIOR_MAX_ANGLE_DEG`] of a
     /// known layer's direction takes that base as its prior (with `base_height_rel_sigma`), in
@@ -109,7 +125,7 @@ fn is_yes(v: &bool) -> bool {
 
 impl Default for CloudSection {
     fn default() -> Self {
-        CloudSection { base_height_m: None, base_height_csv: None, base_height_rel_sigma: None, shadow_timing: false, layers: vec![], map_follows_estimate: true }
+        CloudSection { base_height_m: None, base_height_csv: None, base_height_rel_sigma: None, shadow_timing: None, layers: vec![], map_follows_estimate: true }
     }
 }
 
@@ -191,13 +207,31 @@ pub fn combine(inputs: &[CbhInput]) -> Option<CbhEstimate> {
     Some(CbhEstimate { cbh_m, sigma_m: cbh_m / sw.sqrt(), source })
 }
 
+/// Whether a shadow-timing fit of `fit_m` with stated relative sigma `fit_rel` disagrees with the
+/// configured base `prior_m` ([`CHECK_SIGMAS`], [`CHECK_FLOOR_REL`]): +1 above it, −1 below, 0
+/// when it agrees.
+pub fn disagreement(fit_m: f64, fit_rel: f64, prior_m: f64) -> i64 {
+    let d = (fit_m / prior_m).ln();
+    let limit = CHECK_SIGMAS * (fit_rel * fit_rel + CHECK_FLOOR_REL * CHECK_FLOOR_REL).sqrt();
+    if !d.is_finite() || d.abs() <= limit { 0 } else { d.signum() as i64 }
+}
+
 /// The engine's cloud base height state: the shadow-timing estimator (when `[clouds]
 /// shadow_timing` is on) and its newest fit, combined each frame with the configured value or the
 /// ceilometer series ([`CbhState::update`]).
 #[derive(Debug, Clone)]
 pub struct CbhState {
-    /// Whether shadow timing is asked for (`[clouds] shadow_timing`).
-    shadow_wanted: bool,
+    /// `[clouds] shadow_timing`: `None` checks the configured base (the fits join the combination
+    /// only once [`CHECK_MIN_DISAGREEING`] in a row disagree with it), `Some(true)` always combines
+    /// the fits, `Some(false)` runs no shadow timing. It runs once the measurements hold enough
+    /// pyranometer columns.
+    shadow_mode: Option<bool>,
+    /// Consecutive shadow-timing fits that disagreed with the configured base, signed by the side
+    /// (positive: above it).
+    disagreeing: i64,
+    /// Whether the fits have shown the configured base wrong (then they are combined from there
+    /// on: dropping them again at one agreeing fit would throw the base back to the wrong value).
+    prior_rejected: bool,
     /// The estimator, made on the first frame with enough pyranometer columns (in live mode the
     /// measurements may arrive after start).
     shadow: Option<ShadowTiming>,
@@ -252,7 +286,9 @@ impl CbhState {
     /// The state for a site file's `[clouds]`.
     pub fn new(clouds: &CloudSection) -> CbhState {
         CbhState {
-            shadow_wanted: clouds.shadow_timing,
+            shadow_mode: clouds.shadow_timing,
+            disagreeing: 0,
+            prior_rejected: false,
             shadow: None,
             last_fit: None,
             last_no_fit: None,
@@ -357,15 +393,30 @@ impl CbhState {
         combine(&inputs).unwrap_or(prior)
     }
 
+    /// A shadow-timing fit made at `time`, the configured base (or the known layer's) being
+    /// `prior_m`: kept as the newest, and judged against that base (with `shadow_timing` unset the
+    /// fits join the combination once [`CHECK_MIN_DISAGREEING`] in a row disagree with it on the
+    /// same side, and from then on). `None`: the fit cannot judge the base (it breaks a run of
+    /// disagreeing fits).
+    fn take_fit(&mut self, time: DateTime<Utc>, fit: ShadowFit, prior_m: Option<f64>) {
+        self.estimates_made += 1;
+        let side = prior_m.map_or(0, |p| disagreement(fit.cbh_m, fit.rel_sigma, p));
+        self.disagreeing = if side != 0 && side == self.disagreeing.signum() { self.disagreeing + side } else { side };
+        self.prior_rejected |= self.disagreeing.unsigned_abs() as usize >= CHECK_MIN_DISAGREEING;
+        self.last_fit = Some((time, fit));
+        self.last_no_fit = None;
+    }
+
     /// Feed a frame to the shadow timing (if on) and combine the estimates at the frame's time.
     pub fn update(&mut self, f: &CbhFrame) -> CbhEstimate {
         if let Some((_, cols)) = f.measurements
-            && self.shadow_wanted
+            && self.shadow_mode != Some(false)
             && self.shadow.is_none()
             && cols.len() >= MIN_SHADOW_SENSORS
         {
             self.shadow = Some(ShadowTiming::new(ShadowParams::default(), cols.len()));
         }
+        let (prior_m, prior_rel) = if f.from_series { (f.prior_cbh_m, CEILOMETER_REL_SIGMA) } else { self.prior_for(f.v_map_mps, (f.prior_cbh_m, self.prior_rel_sigma)) };
         if let (Some(st), Some((m, cols)), Some(v)) = (&mut self.shadow, f.measurements, f.v_map_mps) {
             let idx: Vec<usize> = cols.iter().map(|c| c.0).collect();
             let pos: Vec<[f64; 2]> = cols.iter().map(|c| c.1).collect();
@@ -374,21 +425,25 @@ impl CbhState {
             st.observe(f.time, &tm, f.params.beams(), f.map.grid, f.map_cbh_m, f.camera_m, v, f.params.blur_min_m, &pos, &rs);
             match st.estimate() {
                 Ok(fit) => {
-                    self.estimates_made += 1;
-                    self.last_fit = Some((f.time, fit));
-                    self.last_no_fit = None;
+                    // One height cannot judge a configured base while two layers are tracked (the
+                    // fit mixes their shadows), nor while stereo measures each layer's own.
+                    let judge = f.v_other_mps.is_none() && self.stereo.is_empty();
+                    self.take_fit(f.time, fit, judge.then_some(prior_m));
                 }
                 Err(e) => self.last_no_fit = Some(e),
             }
         }
-        let (prior_m, prior_rel) = if f.from_series { (f.prior_cbh_m, CEILOMETER_REL_SIGMA) } else { self.prior_for(f.v_map_mps, (f.prior_cbh_m, self.prior_rel_sigma)) };
         let mut inputs = vec![CbhInput {
             cbh_m: prior_m,
             rel_sigma: prior_rel,
             age_s: 0.0,
             source: if f.from_series { CbhSource::Ceilometer } else { CbhSource::Configured },
         }];
-        if let Some((t, fit)) = &self.last_fit {
+        let fits_count = match self.shadow_mode {
+            None => self.prior_rejected,
+            Some(on) => on,
+        };
+        if let Some((t, fit)) = self.last_fit.as_ref().filter(|_| fits_count) {
             inputs.push(CbhInput { cbh_m: fit.cbh_m, rel_sigma: fit.rel_sigma, age_s: (f.time - *t).num_milliseconds() as f64 / 1000.0, source: CbhSource::ShadowTiming });
         }
         if let Some(e) = self.stereo_for(f.v_map_mps, f.v_other_mps) {
@@ -462,6 +517,77 @@ mod tests {
         // An hour later the prior dominates again.
         let old = st.update(&frame(t0 + chrono::Duration::seconds(3600)));
         assert_eq!(old.source, CbhSource::Configured);
+    }
+
+    /// With `shadow_timing` unset the fits check the configured base: fits that agree with it
+    /// (within two sigmas with the 10 % floor) leave it alone, stray fits do not move it, three
+    /// disagreeing on the same side replace it from then on; `Some(true)` combines every fit and
+    /// `Some(false)` none.
+    #[test]
+    fn shadow_fits_check_the_configured_base_unless_asked_for() {
+        use crate::cloudmap::CloudMap;
+        assert_eq!(disagreement(1580.0, 0.05, 1500.0), 0, "5 % off with 5 % stated agrees");
+        assert_eq!(disagreement(1580.0, 0.02, 800.0), 1);
+        assert_eq!(disagreement(1580.0, 0.02, 2600.0), -1);
+        assert_eq!(disagreement(1800.0, 0.01, 1500.0), 0, "within twice the floor");
+        assert_eq!(disagreement(1900.0, 0.01, 1500.0), 1, "beyond twice the floor");
+        assert_eq!(disagreement(f64::NAN, 0.02, 1500.0), 0);
+        let site = crate::synth::larkspur_site(800.0, "cam");
+        let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
+        let map = CloudMap {
+            grid: Grid::new(&crate::cloudmap::MapParams { cells: 32, ..Default::default() }, 800.0),
+            score: vec![0.0; 32 * 32],
+            class: vec![1; 32 * 32],
+            in_view: vec![true; 32 * 32],
+            offset: 0.0,
+            brightness: vec![],
+        };
+        let params = crate::forecast::IrradianceParams::default();
+        let frame = |time| CbhFrame {
+            time,
+            map: &map,
+            params: &params,
+            map_cbh_m: 800.0,
+            prior_cbh_m: 800.0,
+            from_series: false,
+            v_map_mps: None,
+            v_other_mps: None,
+            camera_m: [0.0, 0.0, 3.0],
+            measurements: None,
+            observer: site.site.observer(),
+            altitude_m: 640.0,
+            model: site.site.clear_sky(),
+        };
+        let fit = |cbh_m: f64| ShadowFit { cbh_m, rel_sigma: 0.03, events: 10, frames: 30, cost_min: 0.2, cost_median: 0.8 };
+        let run = |mode: Option<bool>, fits: &[f64]| {
+            let mut st = CbhState::new(&CloudSection { base_height_m: Some(800.0), shadow_timing: mode, ..Default::default() });
+            let mut t = t0;
+            let mut out = vec![];
+            for &h in fits {
+                st.take_fit(t, fit(h), Some(800.0));
+                out.push(st.update(&frame(t)));
+                t += chrono::Duration::seconds(20);
+            }
+            out
+        };
+        // Agreeing fits: the configured base stands, with its own sigma.
+        for e in run(None, &[820.0, 790.0, 830.0]) {
+            assert_eq!(e.source, CbhSource::Configured);
+            assert!((e.cbh_m - 800.0).abs() < 1e-6 && (e.rel_sigma() - CONFIGURED_REL_SIGMA).abs() < 1e-9, "{e:?}");
+        }
+        // Stray fits, two on one side, one on the other, agreement between: still the configured base.
+        for e in run(None, &[1600.0, 1600.0, 810.0, 1600.0, 400.0, 1600.0]) {
+            assert_eq!(e.source, CbhSource::Configured);
+        }
+        // Three in a row above it: the fits take over, and stay combined when one later agrees.
+        let e = run(None, &[1600.0, 1620.0, 1580.0, 840.0]);
+        assert_eq!(e[1].source, CbhSource::Configured);
+        assert_eq!(e[2].source, CbhSource::ShadowTiming);
+        assert!((e[2].cbh_m / 1580.0 - 1.0).abs() < 0.02, "{:?}", e[2]);
+        assert_eq!(e[3].source, CbhSource::ShadowTiming);
+        // Asked for: every fit combined; turned off: none.
+        assert_eq!(run(Some(true), &[820.0])[0].source, CbhSource::ShadowTiming);
+        assert_eq!(run(Some(false), &[1600.0, 1600.0])[1].source, CbhSource::Configured);
     }
 
     #[test]

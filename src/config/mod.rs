@@ -521,7 +521,7 @@ impl SiteFile {
         if let Some(r) = self.clouds.base_height_rel_sigma {
             c.range("clouds.base_height_rel_sigma", r, 0.01, 2.0)?;
         }
-        if self.clouds.shadow_timing && self.pyranometers.len() < crate::cbh::MIN_SHADOW_SENSORS {
+        if self.clouds.shadow_timing == Some(true) && self.pyranometers.len() < crate::cbh::MIN_SHADOW_SENSORS {
             return Err(c.invalid(
                 "clouds.shadow_timing",
                 format!("at least {} [[pyranometers]] (shadow timing compares their readings)", crate::cbh::MIN_SHADOW_SENSORS),
