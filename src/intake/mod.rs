@@ -564,11 +564,31 @@ fn take_buffer() -> Vec<u8> {
     FRAME_BUFFERS.lock().ok().and_then(|mut p| p.pop()).unwrap_or_default()
 }
 
+/// Bytes of decoded frames that readers may hold ahead of the engine, and that the recycled
+/// buffers may keep: 64 MiB.
+pub const READ_AHEAD_BYTES: u64 = 64 << 20;
+
+/// How many decoded frames a reader thread may hold ahead of the engine (the bound of its
+/// channel): as many as fit in [`READ_AHEAD_BYTES`], from 2 to 8. Deeper than the two frames of
+/// old so that the reader keeps decoding while the engine's first step builds its tables (tens of
+/// milliseconds) and during the steps that recompute the cells' sun geometry, instead of waiting.
+pub fn read_ahead_frames(opts: &IntakeOptions) -> usize {
+    let frame_bytes = match opts.expected_size {
+        Some((w, h)) => {
+            let (w, h) = reduced_size(w, h, opts.reduce);
+            (w as u64 * h as u64 * 3).max(1)
+        }
+        None => return 2,
+    };
+    (READ_AHEAD_BYTES / frame_bytes).clamp(2, 8) as usize
+}
+
 fn recycle_raw(v: Vec<u8>) {
-    if let Ok(mut pool) = FRAME_BUFFERS.lock()
-        && pool.len() < 4
-    {
-        pool.push(v);
+    if let Ok(mut pool) = FRAME_BUFFERS.lock() {
+        let held: usize = pool.iter().map(Vec::capacity).sum();
+        if pool.len() < 10 && (held + v.capacity()) as u64 <= READ_AHEAD_BYTES {
+            pool.push(v);
+        }
     }
 }
 

@@ -207,11 +207,14 @@ pub mod system_jpeg {
     /// Decode at 1/`reduce` into `out` (resized to `width` × `height` × 3 bytes, every byte written)
     /// with the inverse DCT `idct`; `Err(None)` for a CMYK frame.
     pub fn decode_into(bytes: &[u8], reduce: u32, idct: Idct, width: u32, height: u32, out: &mut Vec<u8>) -> Result<(), Option<String>> {
-        out.resize(width as usize * height as usize * 3, 0);
+        let n = width as usize * height as usize * 3;
+        // Not zero-filled: the decoder writes every byte before the length is set.
+        out.clear();
+        out.reserve(n);
         let mut msg = [0 as c_char; 256];
-        // SAFETY: `bytes` and `out` are live for the call with the lengths passed; the C side
-        // writes at most `width * height * 3` bytes to `out` (it checks the decoded size first) and
-        // at most `msg.len()` bytes, NUL-terminated, to `msg`.
+        // SAFETY: `bytes` is live for the call with the length passed, and `out` has capacity for
+        // `width * height * 3` bytes, at most which the C side writes (it checks the decoded size
+        // first); at most `msg.len()` bytes, NUL-terminated, go to `msg`.
         let rc = unsafe {
             nc_jpeg_decode_reduced(
                 bytes.as_ptr(),
@@ -226,7 +229,12 @@ pub mod system_jpeg {
             )
         };
         match rc {
-            0 => Ok(()),
+            0 => {
+                // SAFETY: return code 0 means every output row was decoded, i.e. all `n` bytes
+                // written (rows of `width * 3` bytes, `height` of them).
+                unsafe { out.set_len(n) };
+                Ok(())
+            }
             2 => Err(None),
             _ => {
                 // SAFETY: the C side wrote a NUL-terminated string within `msg` (snprintf).
