@@ -1,6 +1,7 @@
-/* Decode a JPEG held in memory at 1/denom of its size (denom 1, 2, 4 or 8) to packed RGB, with the
- * system's libjpeg, whose inverse DCT scales while decoding. Errors return non-zero with a message
- * instead of the library's default of ending the process. */
+/* Decode a JPEG held in memory to packed RGB with the system's libjpeg (libjpeg-turbo): whole
+ * (denom 1; the intake's whole frames) or at 1/denom of its size (denom 2, 4 or 8), the inverse DCT
+ * scaling while decoding. Errors return non-zero with a message instead of the library's default
+ * of ending the process; warnings (damaged entropy-coded data) are not errors. */
 #include <setjmp.h>
 #include <stdio.h>
 #include <string.h>

@@ -485,11 +485,11 @@ mod tests {
             crate::rng::unit(crate::rng::hash64(i))
         };
         let mut values = vec![0.0, -0.0, 0.5, 1.5, 2.5, -2.5, 0.125, 0.375, 0.005, 0.015, 1.005, 2.675, -0.001, -0.004999, 1e12, 999_999_999_999.9, 1e-300, f64::NAN, f64::INFINITY, f64::NEG_INFINITY, f64::MIN_POSITIVE];
-        for k in 0..20_000 {
-            let mag = 10f64.powi((k % 17) as i32 - 6);
+        for k in 0..20_000i32 {
+            let mag = 10f64.powi(k % 17 - 6);
             values.push((uniform() * 2.0 - 1.0) * mag);
             // Near the decimal halfway points of 1 to 4 decimals.
-            let d = 10f64.powi((k % 4) as i32 + 1);
+            let d = 10f64.powi(k % 4 + 1);
             values.push(((uniform() * 2e5).floor() + 0.5) / d);
         }
         for &x in &values {
