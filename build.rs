@@ -1,6 +1,6 @@
-//! Builds the reduced-scale JPEG decoder over the system's libjpeg when its header is there
-//! (`libjpeg-dev` / `libjpeg62-turbo-dev`); without it the crate falls back to the pure-Rust
-//! decoder and says so in a build warning.
+//! Builds the JPEG decoder over the system's libjpeg (whole frames, and reduced-scale ones) when its
+//! header is there (`libjpeg-dev` / `libjpeg62-turbo-dev`); without it the crate falls back to the
+//! pure-Rust decoders and says so in a build warning.
 
 fn main() {
     println!("cargo::rerun-if-changed=csrc/jpeg_reduced.c");
@@ -14,6 +14,6 @@ fn main() {
             println!("cargo::rustc-link-lib=jpeg");
             println!("cargo::rustc-cfg=system_libjpeg");
         }
-        Err(e) => println!("cargo::warning=no system libjpeg ({e}); frames are decoded at reduced scale by the slower pure-Rust decoder"),
+        Err(e) => println!("cargo::warning=no system libjpeg ({e}); frames are decoded whole and at reduced scale by the slower pure-Rust decoders"),
     }
 }

@@ -1,6 +1,7 @@
-/* Decode a JPEG held in memory at 1/denom of its size (denom 1, 2, 4 or 8) to packed RGB, with the
- * system's libjpeg, whose inverse DCT scales while decoding. Errors return non-zero with a message
- * instead of the library's default of ending the process. */
+/* Decode a JPEG held in memory to packed RGB with the system's libjpeg (libjpeg-turbo): whole
+ * (denom 1; the intake's whole frames) or at 1/denom of its size (denom 2, 4 or 8), the inverse DCT
+ * scaling while decoding. Errors return non-zero with a message instead of the library's default
+ * of ending the process; warnings (damaged entropy-coded data) are not errors. */
 #include <setjmp.h>
 #include <stdio.h>
 #include <string.h>
@@ -20,9 +21,11 @@ static void nc_output_message(j_common_ptr cinfo) {
     (void)cinfo; /* warnings are not printed */
 }
 
-/* out must hold width * height * 3 bytes; width and height are the expected reduced size. */
-int nc_jpeg_decode_reduced(const unsigned char *data, unsigned long len, int denom, unsigned char *out,
-                           unsigned width, unsigned height, char *msg, unsigned long msg_len) {
+/* out must hold width * height * 3 bytes; width and height are the expected reduced size.
+ * dct_method: 0 the library's accurate integer inverse DCT (JDCT_ISLOW, its default), 1 the fast
+ * integer one (JDCT_IFAST), 2 floating point (JDCT_FLOAT). */
+int nc_jpeg_decode_reduced(const unsigned char *data, unsigned long len, int denom, int dct_method,
+                           unsigned char *out, unsigned width, unsigned height, char *msg, unsigned long msg_len) {
     struct jpeg_decompress_struct cinfo;
     struct nc_err err;
     volatile int created = 0;
@@ -48,6 +51,7 @@ int nc_jpeg_decode_reduced(const unsigned char *data, unsigned long len, int den
     cinfo.scale_num = 1;
     cinfo.scale_denom = (unsigned)denom;
     cinfo.out_color_space = JCS_RGB;
+    cinfo.dct_method = dct_method == 1 ? JDCT_IFAST : dct_method == 2 ? JDCT_FLOAT : JDCT_ISLOW;
     jpeg_start_decompress(&cinfo);
     if (cinfo.output_width != width || cinfo.output_height != height || cinfo.output_components != 3) {
         snprintf(msg, msg_len, "decoded to %ux%u px with %d components, expected %ux%u RGB", cinfo.output_width,
@@ -55,9 +59,18 @@ int nc_jpeg_decode_reduced(const unsigned char *data, unsigned long len, int den
         jpeg_destroy_decompress(&cinfo);
         return 1;
     }
+    /* Several rows per call (the library's output group, up to 16): fewer calls, and whole
+     * groups go straight to the output instead of through the library's row buffer. */
     while (cinfo.output_scanline < cinfo.output_height) {
-        JSAMPROW row = out + (size_t)cinfo.output_scanline * width * 3;
-        jpeg_read_scanlines(&cinfo, &row, 1);
+        JSAMPROW rows[16];
+        unsigned first = cinfo.output_scanline, n = cinfo.output_height - first, k;
+        if (n > 16) n = 16;
+        for (k = 0; k < n; k++) rows[k] = out + (size_t)(first + k) * width * 3;
+        if (jpeg_read_scanlines(&cinfo, rows, n) == 0) {
+            snprintf(msg, msg_len, "no rows decoded at row %u", first);
+            jpeg_destroy_decompress(&cinfo);
+            return 1;
+        }
     }
     jpeg_finish_decompress(&cinfo);
     jpeg_destroy_decompress(&cinfo);

@@ -256,14 +256,14 @@ fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Ve
     })
 }
 
-/// Frames per second of the whole engine with each frame decoded on a thread of its own (one or
-/// two frames ahead) while the engine steps the frame before, as `replay` does; the engine's pool
+/// Frames per second of the whole engine with each frame decoded on a thread of its own (up to
+/// [`crate::intake::read_ahead_frames`] ahead) while the engine steps the frame before, as `replay` does; the engine's pool
 /// has `threads` threads. A fresh engine over the same frames.
 fn overlapped_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Vec<u8>], threads: usize) -> Result<f64, BenchError> {
     let mut nc = Nowcaster::new(site.clone(), None, None);
     let opts = nc.intake_options();
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().map_err(|e| BenchError::Setup(e.to_string()))?;
-    let (tx, rx) = std::sync::mpsc::sync_channel::<Result<image::RgbImage, crate::intake::Refusal>>(2);
+    let (tx, rx) = std::sync::mpsc::sync_channel::<Result<image::RgbImage, crate::intake::Refusal>>(crate::intake::read_ahead_frames(&opts));
     let wall = Instant::now();
     std::thread::scope(|scope| -> Result<(), BenchError> {
         scope.spawn(move || {

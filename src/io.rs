@@ -131,6 +131,8 @@ pub fn clean_stale_temps(dir: &Path) -> usize {
 /// plain fields are written as they are. Numbers are formatted by the caller.
 pub struct CsvTable {
     w: csv::Writer<Vec<u8>>,
+    /// A number being formatted ([`CsvTable::field_fixed`]).
+    scratch: Vec<u8>,
 }
 
 impl std::fmt::Debug for CsvTable {
@@ -146,7 +148,7 @@ impl CsvTable {
         I: IntoIterator<Item = T>,
         T: AsRef<[u8]>,
     {
-        let mut t = CsvTable { w: csv::WriterBuilder::new().quote_style(csv::QuoteStyle::Necessary).flexible(false).from_writer(Vec::new()) };
+        let mut t = CsvTable { w: csv::WriterBuilder::new().quote_style(csv::QuoteStyle::Necessary).flexible(false).from_writer(Vec::new()), scratch: Vec::new() };
         t.row(header);
         t
     }
@@ -167,6 +169,29 @@ impl CsvTable {
         debug_assert!(r.is_ok(), "CSV row: {r:?}");
     }
 
+    /// Append one field to the row being written; [`CsvTable::end_row`] ends it. For rows of many
+    /// numbers, with [`CsvTable::field_fixed`]: no `String` per field.
+    pub fn field(&mut self, field: impl AsRef<[u8]>) {
+        let r = self.w.write_field(field);
+        debug_assert!(r.is_ok(), "CSV field: {r:?}");
+    }
+
+    /// Append a number with `decimals` digits after the point, the same text as
+    /// `format!("{x:.decimals$}")`, to the row being written.
+    pub fn field_fixed(&mut self, x: f64, decimals: usize) {
+        let mut s = std::mem::take(&mut self.scratch);
+        s.clear();
+        push_fixed(&mut s, x, decimals);
+        self.field(&s);
+        self.scratch = s;
+    }
+
+    /// End the row that [`CsvTable::field`] and [`CsvTable::field_fixed`] wrote.
+    pub fn end_row(&mut self) {
+        let r = self.w.write_record(None::<&[u8]>);
+        debug_assert!(r.is_ok(), "CSV row: {r:?}");
+    }
+
     /// The table's bytes.
     pub fn into_bytes(self) -> Vec<u8> {
         self.w.into_inner().unwrap_or_default()
@@ -178,6 +203,8 @@ impl CsvTable {
     }
 }
 
+pub use crate::fixed_text::push_fixed;
+
 /// One CSV line (no header, no line end) quoted by the same writer as [`CsvTable`], for rows
 /// printed one at a time (e.g. `segment`'s standard output).
 pub fn csv_line<I, T>(fields: I) -> String
@@ -185,7 +212,7 @@ where
     I: IntoIterator<Item = T>,
     T: AsRef<[u8]>,
 {
-    let mut t = CsvTable { w: csv::WriterBuilder::new().quote_style(csv::QuoteStyle::Necessary).flexible(true).from_writer(Vec::new()) };
+    let mut t = CsvTable { w: csv::WriterBuilder::new().quote_style(csv::QuoteStyle::Necessary).flexible(true).from_writer(Vec::new()), scratch: Vec::new() };
     t.row(fields);
     t.into_string().trim_end_matches(['\r', '\n']).to_string()
 }
@@ -400,6 +427,17 @@ pub fn progress_bar(len: u64, show: bool, what: &str) -> indicatif::ProgressBar 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Rows written field by field: numbers as `format!` writes them, text quoted when needed.
+    #[test]
+    fn field_by_field_rows() {
+        let mut t = CsvTable::with_header_line("a,b,c");
+        t.field("x,y");
+        t.field_fixed(-12.3456, 2);
+        t.field_fixed(7.0, 0);
+        t.end_row();
+        assert_eq!(t.into_string(), "a,b,c\n\"x,y\",-12.35,7\n");
+    }
 
     /// `csv_line` quotes like the table writer (RFC 4180: fields with a comma, quote or line break
     /// quoted, inner quotes doubled) and reads back through a CSV reader.

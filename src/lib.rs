@@ -62,6 +62,7 @@ pub mod config;
 pub mod distance;
 pub mod forecast;
 pub mod intake;
+pub mod fixed_text;
 pub mod io;
 pub mod measured;
 pub mod meter;

@@ -8,32 +8,40 @@ use crate::nowcast::Nowcast;
 /// Header of `forecasts.csv`.
 pub const FORECAST_HEADER: &str = "issue_time_utc,target_time_utc,horizon_s,block,ghi_wm2,dni_wm2,dhi_wm2,poa_wm2,ghi_clear_wm2,fallback_share,fallback,power_kw,ghi_p10_wm2,ghi_p50_wm2,ghi_p90_wm2,power_p10_kw,power_p50_kw,power_p90_kw\n";
 
-/// Append a nowcast's forecast rows.
+/// Append a nowcast's forecast rows (numbers written by [`CsvTable::field_fixed`]: the text of
+/// `format!("{x:.2}")` without a `String` per field).
 pub fn forecast_rows(nc: &Nowcast, out: &mut CsvTable) {
     let issue = fmt_time(&nc.time);
+    // Rows of one horizon share their target time: formatted once per horizon.
+    let mut target: Option<(chrono::DateTime<chrono::Utc>, String)> = None;
     for (name, r) in nc.forecast.rows() {
+        if target.as_ref().is_none_or(|(t, _)| *t != r.time) {
+            target = Some((r.time, fmt_time(&r.time)));
+        }
         let b = r.band.as_ref();
-        let q = |v: Option<f64>| v.map(|x| format!("{x:.2}")).unwrap_or_default();
-        out.row([
-            issue.clone(),
-            fmt_time(&r.time),
-            r.horizon_s.to_string(),
-            name.to_string(),
-            format!("{:.2}", r.irradiance.ghi_wm2),
-            format!("{:.2}", r.irradiance.dni_wm2),
-            format!("{:.2}", r.irradiance.dhi_wm2),
-            format!("{:.2}", r.poa_wm2),
-            format!("{:.2}", r.ghi_clear_wm2),
-            format!("{:.3}", r.fallback_share),
-            ((r.fallback_share > 0.0) as u8).to_string(),
-            format!("{:.2}", r.power_kw),
-            q(b.map(|b| b.ghi_wm2[0])),
-            q(b.map(|b| b.ghi_wm2[1])),
-            q(b.map(|b| b.ghi_wm2[2])),
-            q(b.map(|b| b.power_kw[0])),
-            q(b.map(|b| b.power_kw[1])),
-            q(b.map(|b| b.power_kw[2])),
-        ]);
+        out.field(&issue);
+        out.field(target.as_ref().map(|t| t.1.as_str()).unwrap_or_default());
+        out.field(r.horizon_s.to_string());
+        out.field(name);
+        for v in [r.irradiance.ghi_wm2, r.irradiance.dni_wm2, r.irradiance.dhi_wm2, r.poa_wm2, r.ghi_clear_wm2] {
+            out.field_fixed(v, 2);
+        }
+        out.field_fixed(r.fallback_share, 3);
+        out.field(if r.fallback_share > 0.0 { "1" } else { "0" });
+        out.field_fixed(r.power_kw, 2);
+        match b {
+            Some(b) => {
+                for v in [b.ghi_wm2[0], b.ghi_wm2[1], b.ghi_wm2[2], b.power_kw[0], b.power_kw[1], b.power_kw[2]] {
+                    out.field_fixed(v, 2);
+                }
+            }
+            None => {
+                for _ in 0..6 {
+                    out.field("");
+                }
+            }
+        }
+        out.end_row();
     }
 }
 

@@ -171,9 +171,9 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
     let mut last_cbh = None;
     let mut last_plane_m = None;
     let mut outputs = vec![];
-    // Frames are read and decoded one or two ahead on a thread of their own, so that decoding frame
-    // n + 1 overlaps the engine's step on frame n.
-    let (tx, rx) = std::sync::mpsc::sync_channel::<(Result<image::RgbImage, crate::intake::IntakeError>, f64)>(2);
+    // Frames are read and decoded ahead ([`crate::intake::read_ahead_frames`]: 8 at 1024²) on a
+    // thread of their own, so that decoding frame n + 1 overlaps the engine's step on frame n.
+    let (tx, rx) = std::sync::mpsc::sync_channel::<(Result<image::RgbImage, crate::intake::IntakeError>, f64)>(crate::intake::read_ahead_frames(&intake));
     let paths: Vec<PathBuf> = frames.iter().map(|f| f.path.clone()).collect();
     std::thread::scope(|scope| -> Result<(), ReplayError> {
         scope.spawn(move || {
@@ -278,11 +278,20 @@ impl ReplayTables {
     /// A used frame's rows.
     fn add(&mut self, nc: &crate::nowcast::Nowcast, time: &DateTime<Utc>, name: &str, dms: f64) {
         forecast_rows(nc, &mut self.fc);
-        let plant_h: Vec<u32> = nc.forecast.plant.iter().map(|r| r.horizon_s).collect();
+        let issue = fmt_time(&nc.time);
         for (k, ms) in nc.plant_members_ghi_wm2.iter().enumerate() {
-            for (m, v) in ms.iter().enumerate() {
-                let power = nc.plant_members_power_kw.get(k).and_then(|p| p.get(m)).map(|p| format!("{p:.1}")).unwrap_or_default();
-                self.members.row([fmt_time(&nc.time), plant_h.get(k).copied().unwrap_or(0).to_string(), m.to_string(), format!("{v:.1}"), power]);
+            let horizon = nc.forecast.plant.get(k).map(|r| r.horizon_s).unwrap_or(0).to_string();
+            for (m, &v) in ms.iter().enumerate() {
+                let t = &mut self.members;
+                t.field(&issue);
+                t.field(&horizon);
+                t.field(m.to_string());
+                t.field_fixed(v, 1);
+                match nc.plant_members_power_kw.get(k).and_then(|p| p.get(m)) {
+                    Some(&p) => t.field_fixed(p, 1),
+                    None => t.field(""),
+                }
+                t.end_row();
             }
         }
         for e in &nc.ramps {

@@ -13,9 +13,11 @@
 //!    CRC-32, IHDR first and IEND last;
 //! 4. refuses header dimensions above [`IntakeOptions::max_pixels`] or different from the expected
 //!    size, before any pixel is decoded;
-//! 5. decodes ([`decode`]) with the decoder's allocation limit set, so that whatever slips past the
-//!    header check cannot allocate more than [`IntakeOptions::max_alloc_bytes`]; any decoder error is a
-//!    refusal. With [`IntakeOptions::reduce`] above 1 a JPEG is decoded at that reduced scale
+//! 5. decodes with the decoder's allocation limit set, so that whatever slips past the header check
+//!    cannot allocate more than [`IntakeOptions::max_alloc_bytes`]; any decoder error is a refusal.
+//!    Whole JPEG frames go to the system's libjpeg-turbo when the crate was built with it
+//!    ([`SYSTEM_LIBJPEG`]; 10–17 % less CPU than the pure-Rust decoder on 1024² frames), else (and
+//!    for CMYK, and always for PNG) to the pure-Rust decoders ([`decode`]). With [`IntakeOptions::reduce`] above 1 a JPEG is decoded at that reduced scale
 //!    ([`decode_jpeg_reduced`]), the size checked against the reduced buffer before decoding.
 //!
 //! Inside JPEG entropy-coded data every 0xFF byte is followed by 0x00 or a restart marker, so a file
@@ -26,6 +28,12 @@ mod reduced;
 
 use reduced::decode_jpeg_reduced_checked;
 pub use reduced::{PIXELS_PER_CELL, ReducedFrames, box_reduce, decode_jpeg_reduced, decode_jpeg_reduced_rust, frame_reduction, map_reduction, reduced_size, valid_reduction};
+#[cfg(system_libjpeg)]
+use reduced::system_jpeg;
+
+/// Whether the crate was built with the system's libjpeg (libjpeg-turbo), which then decodes whole
+/// JPEG frames and reduced ones; without it both go to pure-Rust decoders (`build.rs`).
+pub const SYSTEM_LIBJPEG: bool = cfg!(system_libjpeg);
 
 use std::io::Read as _;
 use std::path::{Path, PathBuf};
@@ -174,11 +182,8 @@ pub fn from_bytes(bytes: &[u8], opts: &IntakeOptions) -> Result<image::RgbImage,
     let (format, w, h) = check_complete(bytes)?;
     check_dimensions(w, h, opts)?;
     match (format, valid_reduction(opts.reduce)) {
-        // Whole frames by the general decoder's JPEG decoder called directly (same pixels). (Whole
-        // frames by the system's libjpeg, faster, moved the pixel values by its different inverse
-        // DCT and upsampling enough to turn one ramp of the slow synthetic scene: POD 0.80 → 0.78,
-        // its target 0.8.)
-        (_, 1) => decode(bytes, format, opts),
+        (Format::Jpeg, 1) => decode_jpeg_whole(bytes, (w, h), opts),
+        (Format::Png, 1) => decode(bytes, format, opts),
         (Format::Jpeg, r) => decode_jpeg_reduced_checked(bytes, (w, h), r, opts),
         (Format::Png, r) => decode(bytes, format, opts).map(|img| box_reduce(&img, r)),
     }
@@ -457,8 +462,52 @@ fn png_structure(b: &[u8]) -> Result<(u32, u32), Refusal> {
     }
 }
 
-/// Decode checked bytes to RGB with the decoder's limits set. The one place frames are decoded, so
-/// that a cheaper decode (e.g. at reduced scale) has one place to go.
+/// A whole-frame decode of checked JPEG bytes with the header's (width, height): by the system's
+/// libjpeg (libjpeg-turbo) when the crate was built with it, into a recycled buffer, else (and for
+/// CMYK frames) by [`decode`].
+///
+/// libjpeg-turbo's accurate integer inverse DCT with its SIMD paths takes 10–17 % less CPU than
+/// `zune-jpeg` on 1024² frames; the pixels differ from `zune-jpeg`'s by its different rounding (on
+/// the 90 frames of a 1024² broken-cumulus replay 0.5 % of the samples, by at most 3 levels, mean
+/// −0.003 level; DEVELOPERS.md, "Where the design changed").
+///
+/// # Errors
+/// Any decoder error, and the allocation limit ([`Refusal::TooManyPixels`]).
+#[cfg_attr(not(system_libjpeg), allow(unused_variables))]
+fn decode_jpeg_whole(bytes: &[u8], (w, h): (u32, u32), opts: &IntakeOptions) -> Result<image::RgbImage, Refusal> {
+    #[cfg(system_libjpeg)]
+    if !pure_rust_jpeg() {
+        let need = w as u64 * h as u64 * 3;
+        if need > opts.max_alloc_bytes {
+            return Err(Refusal::TooManyPixels(format!("decoder limit ({} bytes): {need} bytes needed", opts.max_alloc_bytes)));
+        }
+        let mut buf = take_buffer();
+        match system_jpeg::decode_into(bytes, 1, w, h, &mut buf) {
+            Ok(()) => return image::RgbImage::from_raw(w, h, buf).ok_or_else(|| Refusal::Corrupt(format!("decoder: wrong pixel count for {w}x{h} px"))),
+            // CMYK: the general decoder's conversion.
+            Err(None) => recycle_raw(buf),
+            Err(Some(m)) => {
+                recycle_raw(buf);
+                return Err(Refusal::Corrupt(format!("decoder: {m}")));
+            }
+        }
+    }
+    decode(bytes, Format::Jpeg, opts)
+}
+
+/// With this environment variable set (to anything), whole JPEG frames are decoded by the
+/// pure-Rust decoder ([`decode`]) even where the system's libjpeg is built in: for comparing the two.
+pub const PURE_RUST_JPEG_ENV: &str = "NEPHOCAST_PURE_RUST_JPEG";
+
+/// [`PURE_RUST_JPEG_ENV`] is set (read once).
+#[cfg(system_libjpeg)]
+fn pure_rust_jpeg() -> bool {
+    static SET: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    *SET.get_or_init(|| std::env::var_os(PURE_RUST_JPEG_ENV).is_some())
+}
+
+/// Decode checked bytes to RGB with the decoder's limits set, by the pure-Rust decoders (whole
+/// JPEG frames of the engine go through libjpeg first when it is built in: [`from_bytes`]).
 ///
 /// # Errors
 /// Any decoder error, and the allocation limit ([`Refusal::TooManyPixels`]).
@@ -505,7 +554,7 @@ fn decode_jpeg_direct(bytes: &[u8], opts: &IntakeOptions) -> Result<Option<image
         return Err(Refusal::TooManyPixels(format!("decoder limit ({} bytes): {need} bytes needed", opts.max_alloc_bytes)));
     }
     check_dimensions(w as u32, h as u32, opts)?;
-    let mut buf = FRAME_BUFFERS.lock().ok().and_then(|mut p| p.pop()).unwrap_or_default();
+    let mut buf = take_buffer();
     // Every byte is written by the decoder; a recycled buffer of the same size is not cleared.
     buf.resize(need as usize, 0);
     if let Err(e) = d.decode_into(&mut buf) {
@@ -515,11 +564,36 @@ fn decode_jpeg_direct(bytes: &[u8], opts: &IntakeOptions) -> Result<Option<image
     Ok(image::RgbImage::from_raw(w as u32, h as u32, buf))
 }
 
+/// A recycled frame buffer (any size; the caller resizes it), or a new empty one.
+fn take_buffer() -> Vec<u8> {
+    FRAME_BUFFERS.lock().ok().and_then(|mut p| p.pop()).unwrap_or_default()
+}
+
+/// Bytes of decoded frames that readers may hold ahead of the engine, and that the recycled
+/// buffers may keep: 64 MiB.
+pub const READ_AHEAD_BYTES: u64 = 64 << 20;
+
+/// How many decoded frames a reader thread may hold ahead of the engine (the bound of its
+/// channel): as many as fit in [`READ_AHEAD_BYTES`], from 2 to 8. Deeper than the two frames of
+/// old so that the reader keeps decoding while the engine's first step builds its tables (tens of
+/// milliseconds) and during the steps that recompute the cells' sun geometry, instead of waiting.
+pub fn read_ahead_frames(opts: &IntakeOptions) -> usize {
+    let frame_bytes = match opts.expected_size {
+        Some((w, h)) => {
+            let (w, h) = reduced_size(w, h, opts.reduce);
+            (w as u64 * h as u64 * 3).max(1)
+        }
+        None => return 2,
+    };
+    (READ_AHEAD_BYTES / frame_bytes).clamp(2, 8) as usize
+}
+
 fn recycle_raw(v: Vec<u8>) {
-    if let Ok(mut pool) = FRAME_BUFFERS.lock()
-        && pool.len() < 4
-    {
-        pool.push(v);
+    if let Ok(mut pool) = FRAME_BUFFERS.lock() {
+        let held: usize = pool.iter().map(Vec::capacity).sum();
+        if pool.len() < 10 && (held + v.capacity()) as u64 <= READ_AHEAD_BYTES {
+            pool.push(v);
+        }
     }
 }
 
