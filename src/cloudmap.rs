@@ -324,21 +324,34 @@ impl CloudMap {
     }
 
     /// Class shares `[clear, thin, thick]` of a cell of class `c` when thin cells are made
-    /// continuous ([`crate::forecast::IrradianceParams::thin_beam_from_score`]): a thin cell at
-    /// depth `u` ([`CloudMap::thin_depth`]) is read as a mix of the classes either side of it,
-    /// linearly in `u`: clear at 0, thin at 0.5, thick at 1. So its transmittance (beam and
-    /// the tuning's regressors) runs linearly from the clear class's to the thin class's and on to
-    /// the thick class's: the class values stand for the middle of their band. Other classes are
-    /// their own class.
+    /// continuous ([`crate::forecast::IrradianceParams::thin_beam_from_score`]), for the class
+    /// beam transmittances in use `[clear, thin, thick]`. A thin cell at depth `u`
+    /// ([`CloudMap::thin_depth`]) is taken to hold an optical depth `2u` times the band middle's,
+    /// so by Beer–Lambert its beam is `thin^(2u)` (clear sky's 1 where thin cloud begins, the
+    /// thin class's at the middle, its square where thick cloud begins), never below the thick
+    /// class's; written as the mix of the two classes either side that gives that beam at the
+    /// values in use, so the tables stay linear in the class values (the tuning and the ensemble
+    /// vary them about these shares). The score is taken as linear in optical depth across the
+    /// band (a first-order assumption, own choice). Other classes are their own class.
     #[inline]
-    pub fn continuous_shares(c: Class, u: f32) -> [f32; 3] {
+    pub fn continuous_shares(c: Class, u: f32, beams: [f64; 3]) -> [f32; 3] {
         match c {
             Class::Clear => [1.0, 0.0, 0.0],
             Class::Thick => [0.0, 0.0, 1.0],
             Class::Thin => {
-                let u = if u.is_finite() { u.clamp(0.0, 1.0) } else { 0.5 };
-                let (a, b) = ((1.0 - 2.0 * u).max(0.0), (2.0 * u - 1.0).max(0.0));
-                [a, 1.0 - a - b, b]
+                let [clear, thin, thick] = beams;
+                let u = if u.is_finite() { u.clamp(0.0, 1.0) as f64 } else { 0.5 };
+                if !(thin > 0.0 && thin < clear && thick < thin) {
+                    return [0.0, 1.0, 0.0];
+                }
+                let t = thin.powf(2.0 * u).min(clear);
+                if u < 0.5 {
+                    let a = ((t - thin) / (clear - thin)).clamp(0.0, 1.0) as f32;
+                    [a, 1.0 - a, 0.0]
+                } else {
+                    let b = ((thin - t) / (thin - thick)).clamp(0.0, 1.0) as f32;
+                    [0.0, 1.0 - b, b]
+                }
             }
             Class::Unknown => [0.0, 0.0, 0.0],
         }

@@ -142,9 +142,10 @@ pub struct IrradianceParams {
     /// camera's sun direction) is not the forecast's at 5–15 min (figures in README, "Two layers
     /// through each other").
     pub tune_bias_with_two_layers: bool,
-    /// A thin cell's transmittance follows its cloudiness score: read as a mix of the classes
-    /// either side of it, from the clear class's value where thin cloud begins through the thin
-    /// class's at the band's middle to the thick class's where thick cloud begins
+    /// A thin cell's transmittance follows its cloudiness score: its optical depth taken as
+    /// proportional to its place in the thin band, Beer–Lambert gives `beam_thin^(2u)` (clear
+    /// sky's where thin cloud begins, the thin class's at the band's middle), read as a mix of
+    /// the classes either side at the values in use
     /// ([`crate::cloudmap::CloudMap::continuous_shares`]), in the forecast's tables and in the
     /// tuning's regressors alike. A veil's optical depth varies continuously inside the one
     /// class; off (the default), every thin cell passes `beam_thin`. Figures in README ("Two

@@ -91,7 +91,8 @@ impl TransmittanceMap {
         // A thin cell's class shares: the thin class, or with `thin_beam_from_score` its mix of the
         // neighbouring classes by its score (`CloudMap::continuous_shares`).
         let continuous = p.thin_beam_from_score;
-        let thin_shares = |k: usize| if continuous { CloudMap::continuous_shares(Class::Thin, map.thin_depth(k)) } else { [0.0, 1.0, 0.0] };
+        let class_beams = [p.beam_clear, p.beam_thin, p.beam_thick];
+        let thin_shares = |k: usize| if continuous { CloudMap::continuous_shares(Class::Thin, map.thin_depth(k), class_beams) } else { [0.0, 1.0, 0.0] };
         let shares = |k: usize, state: &[u32], filled: &[[f32; FEATURES]]| -> Option<[f32; FEATURES]> {
             match (state[k], Class::from_u8(class[k])) {
                 (1, Class::Clear) => Some([1.0, 0.0, 0.0, 0.0]),
@@ -331,10 +332,11 @@ mod tests {
         assert!((t.mean - classes_only.mean).abs() < 1e-4);
     }
 
-    /// With `thin_beam_from_score` a thin cell's beam runs with its place in the thin band: the
-    /// clear class's at 0, the thin class's at 0.5, the thick class's at 1, linearly between;
-    /// off, every thin cell passes `beam_thin`. Clear and thick cells are their class either way,
-    /// and a glare cell filled from thin neighbours takes their mix.
+    /// With `thin_beam_from_score` a thin cell's beam runs with its place `u` in the thin band as
+    /// Beer–Lambert gives it, `beam_thin^(2u)` (the clear class's at 0, the thin class's at 0.5,
+    /// its square at 1, never below the thick class's); off, every thin cell passes `beam_thin`.
+    /// Clear and thick cells are their class either way, and a glare cell filled from thin
+    /// neighbours takes their mix.
     #[test]
     fn thin_cells_follow_their_score_when_asked() {
         let g = Grid::new(&MapParams { cells: 8, ..Default::default() }, 1000.0);
@@ -352,7 +354,7 @@ mod tests {
         let (b0, b1, b2) = (on.beam_clear, on.beam_thin, on.beam_thick);
         let one = |m: &TransmittanceMap, cx: f64, cy: f64| m.box_mean(cx, cy, 0.0).unwrap();
         let tol = 2e-3;
-        for (cx, want) in [(0.0, b0), (1.0, 0.5 * (b0 + b1)), (2.0, 0.5 * (b1 + b2)), (3.0, b2), (4.0, b0), (5.0, b2), (6.0, b1)] {
+        for (cx, want) in [(0.0, b0), (1.0, b1.sqrt()), (2.0, b1.powf(1.5)), (3.0, (b1 * b1).max(b2)), (4.0, b0), (5.0, b2), (6.0, b1)] {
             assert!((one(&t, cx, 0.0) - want).abs() < tol, "cell {cx}: {} against {want}", one(&t, cx, 0.0));
         }
         for cx in 0..4 {
@@ -360,10 +362,17 @@ mod tests {
         }
         // The unknown corner cell (63) is filled from its neighbours 62 and 55, both at depth 0.
         assert!((one(&t, 7.0, 7.0) - b0).abs() < tol, "filled cell {}", one(&t, 7.0, 7.0));
-        // Shares of one cell always sum to one.
-        for u in [-1.0f32, 0.0, 0.3, 0.5, 0.9, 1.0, 2.0, f32::NAN] {
-            let s = CloudMap::continuous_shares(Class::Thin, u);
-            assert!((s.iter().sum::<f32>() - 1.0).abs() < 1e-6 && s.iter().all(|v| *v >= 0.0), "{u}: {s:?}");
+        // Shares of one cell always sum to one, also where the class values leave no room (a
+        // thin class at or above clear sky's, or below the thick class's: the thin class alone).
+        for beams in [[1.0, 0.45, 0.03], [1.0, 0.05, 0.03], [1.0, 0.02, 0.03], [1.0, 1.0, 0.03], [1.0, 0.0, 0.0]] {
+            for u in [-1.0f32, 0.0, 0.3, 0.5, 0.9, 1.0, 2.0, f32::NAN] {
+                let s = CloudMap::continuous_shares(Class::Thin, u, beams);
+                assert!((s.iter().sum::<f32>() - 1.0).abs() < 1e-6 && s.iter().all(|v| *v >= 0.0), "{beams:?} {u}: {s:?}");
+            }
         }
+        // A dim thin class (the sun disk hidden behind it) keeps the band's lower half dim.
+        let s = CloudMap::continuous_shares(Class::Thin, 0.25, [1.0, 0.05, 0.03]);
+        let t = s[0] as f64 + 0.05 * s[1] as f64;
+        assert!((t - 0.05f64.sqrt()).abs() < 1e-3, "{t}");
     }
 }

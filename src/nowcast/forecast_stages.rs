@@ -161,6 +161,7 @@ impl ForecastStage {
         }
         let r = (self.irradiance.blur_min_m / cbh_factor.max(0.1) / map.grid.cell_m).max(0.5);
         let continuous = self.irradiance.thin_beam_from_score;
+        let class_beams = [self.irradiance.beam_clear, self.irradiance.beam_thin, self.irradiance.beam_thick];
         let mut rows = vec![];
         for (col, pos) in cols {
             let Some((y, mid)) = m.completed_at(*col, t) else { continue };
@@ -197,7 +198,7 @@ impl ForecastStage {
                     if class == Class::Unknown {
                         continue;
                     }
-                    let cs = if continuous { CloudMap::continuous_shares(class, map.thin_depth(c)) } else { CloudMap::continuous_shares(class, 0.5) };
+                    let cs = CloudMap::continuous_shares(class, if continuous { map.thin_depth(c) } else { 0.5 }, class_beams);
                     for (s, v) in share.iter_mut().zip(cs) {
                         *s += v as f64;
                     }
