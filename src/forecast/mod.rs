@@ -148,8 +148,8 @@ pub struct IrradianceParams {
     /// the classes either side at the values in use
     /// ([`crate::cloudmap::CloudMap::continuous_shares`]), in the forecast's tables and in the
     /// tuning's regressors alike. A veil's optical depth varies continuously inside the one
-    /// class; off (the default), every thin cell passes `beam_thin`. Figures in README ("Two
-    /// layers through each other").
+    /// class; off (the default), every thin cell passes `beam_thin`. Figures in README ("A thin
+    /// cell's transmittance from its score").
     pub thin_beam_from_score: bool,
 }
 
