@@ -292,6 +292,9 @@ pub struct CloudMap {
     /// Each cloudy cell's brightness feature (see [`CloudMap::brightness_feature`]); 0 elsewhere,
     /// and may be empty in hand-made maps.
     pub brightness: Vec<f32>,
+    /// Each thin cell's place in the thin class's score band (see [`CloudMap::thin_depth`]); may
+    /// be empty in hand-made maps.
+    pub thin_depth: Vec<f32>,
 }
 
 
@@ -308,6 +311,50 @@ impl CloudMap {
     #[inline]
     pub fn brightness_feature(&self, k: usize) -> f32 {
         self.brightness.get(k).copied().unwrap_or(0.0)
+    }
+
+    /// A thin cell's place in the thin class's band of cloudiness score, from 0 where thin cloud
+    /// begins (`thin_score`) to 1 where thick begins (`thick_at(z)`); 0.5, the band's middle,
+    /// where the map carries none. Thin cloud lets the sky's blue through, so its red/blue ratio
+    /// (the score) moves from the clear sky's toward white cloud's as its optical depth grows
+    /// (Long et al. 2006, in [`crate::segment`]): within the class, a higher score is more cloud.
+    #[inline]
+    pub fn thin_depth(&self, k: usize) -> f32 {
+        self.thin_depth.get(k).copied().unwrap_or(0.5)
+    }
+
+    /// Class shares `[clear, thin, thick]` of a cell of class `c` when thin cells are made
+    /// continuous ([`crate::forecast::IrradianceParams::thin_beam_from_score`]), for the class
+    /// beam transmittances in use `[clear, thin, thick]`. A thin cell at depth `u`
+    /// ([`CloudMap::thin_depth`]) is taken to hold an optical depth `2u` times the band middle's,
+    /// so by Beer–Lambert its beam is `thin^(2u)` (clear sky's 1 where thin cloud begins, the
+    /// thin class's at the middle, its square where thick cloud begins), never below the thick
+    /// class's; written as the mix of the two classes either side that gives that beam at the
+    /// values in use, so the tables stay linear in the class values (the tuning and the ensemble
+    /// vary them about these shares). The score is taken as linear in optical depth across the
+    /// band (a first-order assumption, own choice). Other classes are their own class.
+    #[inline]
+    pub fn continuous_shares(c: Class, u: f32, beams: [f64; 3]) -> [f32; 3] {
+        match c {
+            Class::Clear => [1.0, 0.0, 0.0],
+            Class::Thick => [0.0, 0.0, 1.0],
+            Class::Thin => {
+                let [clear, thin, thick] = beams;
+                let u = if u.is_finite() { u.clamp(0.0, 1.0) as f64 } else { 0.5 };
+                if !(thin > 0.0 && thin < clear && thick < thin) {
+                    return [0.0, 1.0, 0.0];
+                }
+                let t = thin.powf(2.0 * u).min(clear);
+                if u < 0.5 {
+                    let a = ((t - thin) / (clear - thin)).clamp(0.0, 1.0) as f32;
+                    [a, 1.0 - a, 0.0]
+                } else {
+                    let b = ((thin - t) / (thin - thick)).clamp(0.0, 1.0) as f32;
+                    [0.0, 1.0 - b, b]
+                }
+            }
+            Class::Unknown => [0.0, 0.0, 0.0],
+        }
     }
 
     /// Class at continuous cell coordinates (nearest cell); `None` outside or unknown.
@@ -509,7 +556,18 @@ pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &Se
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     let brightness = class.iter().zip(&blue[..n]).map(|(c, b)| if cloudy(*c) { (*b as f32 - mean) / 255.0 } else { 0.0 }).collect();
     pool::give_u8(blue);
-    CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness }
+    let thin = Class::Thin as u8;
+    let thin_depth = class
+        .iter()
+        .zip(&score)
+        .zip(&lut.z_deg[..n])
+        .map(|((c, s), z)| {
+            let (lo, hi) = (params.thin_score as f32, params.thick_at(*z));
+            // A cell made thin by the distance or darkness rules keeps the class's middle.
+            if *c == thin && *s >= lo && *s < hi { (s - lo) / (hi - lo) } else { 0.5 }
+        })
+        .collect();
+    CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }
 }
 
 #[cfg(test)]

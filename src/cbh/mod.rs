@@ -486,7 +486,7 @@ mod tests {
     fn stereo_estimates_are_combined() {
         use crate::cloudmap::{CloudMap, MapParams};
         let grid = Grid::new(&MapParams { cells: 32, ..Default::default() }, 2000.0);
-        let map = CloudMap { grid, score: vec![0.0; 32 * 32], class: vec![1; 32 * 32], in_view: vec![true; 32 * 32], offset: 0.0, brightness: vec![] };
+        let map = CloudMap { grid, score: vec![0.0; 32 * 32], class: vec![1; 32 * 32], in_view: vec![true; 32 * 32], offset: 0.0, brightness: vec![], thin_depth: vec![] };
         let params = crate::forecast::IrradianceParams::default();
         let site = crate::synth::larkspur_site(2000.0, "cam");
         let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
@@ -613,7 +613,7 @@ mod tests {
         let n = grid.n;
         let hash = |i: usize, j: usize| crate::synth::noise::hash64((i as u64) * 7919 + (j as u64) * 104_729) % 100;
         let class: Vec<u8> = (0..n * n).map(|k| if hash(k % n / 3, k / n / 3) < 40 { Class::Thick as u8 } else { Class::Clear as u8 }).collect();
-        let map = CloudMap { grid, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![] };
+        let map = CloudMap { grid, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![], thin_depth: vec![] };
         let p = crate::forecast::IrradianceParams::default();
         let tm = TransmittanceMap::new(&map, &p);
         let pos = [[-650.0, 420.0], [560.0, 380.0], [620.0, -480.0], [-700.0, -520.0], [-120.0, 60.0], [200.0, -260.0]];

@@ -147,7 +147,7 @@ mod tests {
         let class: Vec<u8> = (0..n * n).map(|k| [Class::Clear, Class::Thin, Class::Thick, Class::Unknown][(h(k as u64) % 4) as usize] as u8).collect();
         let in_view = (0..n * n).map(|k| h(k as u64 + 7) % 3 != 0).collect();
         let brightness = (0..n * n).map(|k| (h(k as u64 + 11) % 200) as f32 / 1000.0 - 0.1).collect();
-        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view, offset: 0.0, brightness };
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view, offset: 0.0, brightness, thin_depth: vec![] };
         let p = IrradianceParams { beam_cloud_brightness: 0.7, ..Default::default() };
         let tms = [TransmittanceMap::new(&map, &p)];
         let extent = g.cell_m * n as f64;

@@ -142,6 +142,15 @@ pub struct IrradianceParams {
     /// camera's sun direction) is not the forecast's at 5–15 min (figures in README, "Two layers
     /// through each other").
     pub tune_bias_with_two_layers: bool,
+    /// A thin cell's transmittance follows its cloudiness score: its optical depth taken as
+    /// proportional to its place in the thin band, Beer–Lambert gives `beam_thin^(2u)` (clear
+    /// sky's where thin cloud begins, the thin class's at the band's middle), read as a mix of
+    /// the classes either side at the values in use
+    /// ([`crate::cloudmap::CloudMap::continuous_shares`]), in the forecast's tables and in the
+    /// tuning's regressors alike. A veil's optical depth varies continuously inside the one
+    /// class; off (the default), every thin cell passes `beam_thin`. Figures in README ("A thin
+    /// cell's transmittance from its score").
+    pub thin_beam_from_score: bool,
 }
 
 impl Default for IrradianceParams {
@@ -168,6 +177,7 @@ impl Default for IrradianceParams {
             tune_from_measurements: true,
             fill_layer_behind: false,
             tune_bias_with_two_layers: true,
+            thin_beam_from_score: false,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five
             // synthetic scenes, e.g. broken cumulus 0.71 → 0.79 at 5 min).
@@ -628,7 +638,7 @@ mod tests {
                 labels[j * n + i] = 0;
             }
         }
-        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![] };
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![], thin_depth: vec![] };
         let (off, on) = (IrradianceParams::default(), IrradianceParams { fill_layer_behind: true, ..Default::default() });
         let veil = |p: &IrradianceParams| TransmittanceMap::for_layer(&map, p, Some((&labels, 1))).box_shares(16.0, 16.0, 0.0).unwrap();
         let (a, b) = (veil(&off), veil(&on));
@@ -659,7 +669,7 @@ mod tests {
         };
         patch(&mut class, &mut labels, 40, 32, Class::Thick, 0);
         patch(&mut class, &mut labels, 32, 40, Class::Thin, 1);
-        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![] };
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![], thin_depth: vec![] };
         let p = IrradianceParams { blur_min_m: 1.0, blur_growth_mps: 0.0, ..Default::default() };
         let tms = [TransmittanceMap::for_layer(&map, &p, Some((&labels, 0))), TransmittanceMap::for_layer(&map, &p, Some((&labels, 1)))];
         // The point sits under the sun ray through cell (32, 32) at every horizon: camera and point
@@ -760,7 +770,7 @@ mod tests {
                 }
             }
         }
-        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![] };
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![], thin_depth: vec![] };
         let tms = [TransmittanceMap::new(&map, &p)];
         input.probes_m = vec![[1200.0, 0.0], [0.0, 0.0]];
         let ratio = |input: &ForecastInput, name: &str| {

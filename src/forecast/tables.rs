@@ -88,10 +88,18 @@ impl TransmittanceMap {
             })
         };
         let bright = |k: usize| map.brightness_feature(k);
+        // A thin cell's class shares: the thin class, or with `thin_beam_from_score` its mix of the
+        // neighbouring classes by its score (`CloudMap::continuous_shares`).
+        let continuous = p.thin_beam_from_score;
+        let class_beams = [p.beam_clear, p.beam_thin, p.beam_thick];
+        let thin_shares = |k: usize| if continuous { CloudMap::continuous_shares(Class::Thin, map.thin_depth(k), class_beams) } else { [0.0, 1.0, 0.0] };
         let shares = |k: usize, state: &[u32], filled: &[[f32; FEATURES]]| -> Option<[f32; FEATURES]> {
             match (state[k], Class::from_u8(class[k])) {
                 (1, Class::Clear) => Some([1.0, 0.0, 0.0, 0.0]),
-                (1, Class::Thin) => Some([0.0, 1.0, 0.0, bright(k)]),
+                (1, Class::Thin) => {
+                    let t = thin_shares(k);
+                    Some([t[0], t[1], t[2], bright(k)])
+                }
                 (1, Class::Thick) => Some([0.0, 0.0, 1.0, bright(k)]),
                 (f, _) if f >= FILLED => Some(filled[(f - FILLED) as usize]),
                 _ => None,
@@ -155,7 +163,13 @@ impl TransmittanceMap {
                 } else {
                     let c = (cls[i] & 3) as usize;
                     let mut a = step[c];
-                    if a[1] + a[2] > 0 {
+                    if continuous && c == Class::Thin as usize {
+                        let t = thin_shares(j * n + i);
+                        // The three shares sum to one unit exactly.
+                        let (x, z) = (quantise(t[0]), quantise(t[2]));
+                        a = [x, unit - x - z, z, 0];
+                    }
+                    if a[1] + a[2] > 0 || c == Class::Thin as usize {
                         a[3] = quantise(bright(j * n + i));
                     }
                     (a, (c != 0) as i32)
@@ -285,7 +299,7 @@ mod tests {
         let mut class = vec![Class::Clear as u8; 64];
         class[0] = Class::Thick as u8;
         class[1] = Class::Unknown as u8;
-        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![false; 64], offset: 0.0, brightness: vec![] };
+        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![false; 64], offset: 0.0, brightness: vec![], thin_depth: vec![] };
         let p = IrradianceParams::default();
         let t = TransmittanceMap::new(&map, &p);
         // Box over cells (0..=1, 0..=1): thick, unknown, clear, clear -> (0.03 + 1 + 1) / 3.
@@ -305,7 +319,7 @@ mod tests {
         let mut brightness = vec![0f32; 64];
         brightness[0] = -0.1;
         brightness[1] = 0.1;
-        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![true; 64], offset: 0.0, brightness };
+        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![true; 64], offset: 0.0, brightness, thin_depth: vec![] };
         let p = IrradianceParams { beam_cloud_brightness: 0.5, ..Default::default() };
         let t = TransmittanceMap::new(&map, &p);
         let one = |cx: f64| t.box_mean(cx, 0.0, 0.0).unwrap();
@@ -316,5 +330,49 @@ mod tests {
         // The features have zero mean over the cloud, so the whole-map mean keeps the classes' own.
         let classes_only = TransmittanceMap::new(&map, &IrradianceParams::default());
         assert!((t.mean - classes_only.mean).abs() < 1e-4);
+    }
+
+    /// With `thin_beam_from_score` a thin cell's beam runs with its place `u` in the thin band as
+    /// Beer–Lambert gives it, `beam_thin^(2u)` (the clear class's at 0, the thin class's at 0.5,
+    /// its square at 1, never below the thick class's); off, every thin cell passes `beam_thin`.
+    /// Clear and thick cells are their class either way, and a glare cell filled from thin
+    /// neighbours takes their mix.
+    #[test]
+    fn thin_cells_follow_their_score_when_asked() {
+        let g = Grid::new(&MapParams { cells: 8, ..Default::default() }, 1000.0);
+        let mut class = vec![Class::Thin as u8; 64];
+        class[4] = Class::Clear as u8;
+        class[5] = Class::Thick as u8;
+        class[63] = Class::Unknown as u8;
+        let mut thin_depth = vec![0.5f32; 64];
+        for (k, u) in [(0, 0.0), (1, 0.25), (2, 0.75), (3, 1.0), (62, 0.0), (55, 0.0), (54, 0.0)] {
+            thin_depth[k] = u;
+        }
+        let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![true; 64], offset: 0.0, brightness: vec![], thin_depth };
+        let on = IrradianceParams { thin_beam_from_score: true, ..Default::default() };
+        let (t, off) = (TransmittanceMap::new(&map, &on), TransmittanceMap::new(&map, &IrradianceParams::default()));
+        let (b0, b1, b2) = (on.beam_clear, on.beam_thin, on.beam_thick);
+        let one = |m: &TransmittanceMap, cx: f64, cy: f64| m.box_mean(cx, cy, 0.0).unwrap();
+        let tol = 2e-3;
+        for (cx, want) in [(0.0, b0), (1.0, b1.sqrt()), (2.0, b1.powf(1.5)), (3.0, (b1 * b1).max(b2)), (4.0, b0), (5.0, b2), (6.0, b1)] {
+            assert!((one(&t, cx, 0.0) - want).abs() < tol, "cell {cx}: {} against {want}", one(&t, cx, 0.0));
+        }
+        for cx in 0..4 {
+            assert!((one(&off, cx as f64, 0.0) - b1).abs() < 1e-12, "off: cell {cx}");
+        }
+        // The unknown corner cell (63) is filled from its neighbours 62 and 55, both at depth 0.
+        assert!((one(&t, 7.0, 7.0) - b0).abs() < tol, "filled cell {}", one(&t, 7.0, 7.0));
+        // Shares of one cell always sum to one, also where the class values leave no room (a
+        // thin class at or above clear sky's, or below the thick class's: the thin class alone).
+        for beams in [[1.0, 0.45, 0.03], [1.0, 0.05, 0.03], [1.0, 0.02, 0.03], [1.0, 1.0, 0.03], [1.0, 0.0, 0.0]] {
+            for u in [-1.0f32, 0.0, 0.3, 0.5, 0.9, 1.0, 2.0, f32::NAN] {
+                let s = CloudMap::continuous_shares(Class::Thin, u, beams);
+                assert!((s.iter().sum::<f32>() - 1.0).abs() < 1e-6 && s.iter().all(|v| *v >= 0.0), "{beams:?} {u}: {s:?}");
+            }
+        }
+        // A dim thin class (the sun disk hidden behind it) keeps the band's lower half dim.
+        let s = CloudMap::continuous_shares(Class::Thin, 0.25, [1.0, 0.05, 0.03]);
+        let t = s[0] as f64 + 0.05 * s[1] as f64;
+        assert!((t - 0.05f64.sqrt()).abs() < 1e-3, "{t}");
     }
 }

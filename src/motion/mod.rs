@@ -556,7 +556,7 @@ mod tests {
                 score[j * n + i] = f(c[0], c[1]) as f32;
             }
         }
-        CloudMap { grid, class: vec![1; n * n], in_view: vec![true; n * n], score, offset: 0.0, brightness: vec![] }
+        CloudMap { grid, class: vec![1; n * n], in_view: vec![true; n * n], score, offset: 0.0, brightness: vec![], thin_depth: vec![] }
     }
 
     fn blobs(x: f64, y: f64) -> f64 {

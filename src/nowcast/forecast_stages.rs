@@ -160,6 +160,8 @@ impl ForecastStage {
             return;
         }
         let r = (self.irradiance.blur_min_m / cbh_factor.max(0.1) / map.grid.cell_m).max(0.5);
+        let continuous = self.irradiance.thin_beam_from_score;
+        let class_beams = [self.irradiance.beam_clear, self.irradiance.beam_thin, self.irradiance.beam_thick];
         let mut rows = vec![];
         for (col, pos) in cols {
             let Some((y, mid)) = m.completed_at(*col, t) else { continue };
@@ -192,11 +194,13 @@ impl ForecastStage {
                         continue;
                     }
                     let c = (j * n + i) as usize;
-                    match Class::from_u8(map.class[c]) {
-                        Class::Clear => share[0] += 1.0,
-                        Class::Thin => share[1] += 1.0,
-                        Class::Thick => share[2] += 1.0,
-                        Class::Unknown => continue,
+                    let class = Class::from_u8(map.class[c]);
+                    if class == Class::Unknown {
+                        continue;
+                    }
+                    let cs = CloudMap::continuous_shares(class, if continuous { map.thin_depth(c) } else { 0.5 }, class_beams);
+                    for (s, v) in share.iter_mut().zip(cs) {
+                        *s += v as f64;
                     }
                     share[3] += map.brightness_feature(c) as f64;
                     k += 1.0;
