@@ -541,6 +541,7 @@ mod tests {
             in_view: vec![true; 32 * 32],
             offset: 0.0,
             brightness: vec![],
+            thin_depth: vec![],
         };
         let params = crate::forecast::IrradianceParams::default();
         let frame = |time| CbhFrame {
