@@ -123,6 +123,11 @@ pub struct IrradianceParams {
     /// (`tests/stereo.rs`) the run with the true heights lost 0.032 of 5-minute skill, so 20 stays
     /// the default.
     pub tune_min_rows: usize,
+    /// Tune from the first reading, before `tune_min_rows` are held, with the prior weighted up
+    /// by the rows still missing (each adds its unknown's usual regressor size squared) and the
+    /// diffuse gain's mean-residual step scaled by the share of rows held; from `tune_min_rows`
+    /// on the tuning is as without it. Off: the configured transmittances serve until then.
+    pub tune_before_min_rows: bool,
     /// Scale the thin-cloud beam transmittance (the configured value, and the tuning's prior) by how
     /// often thin cloud around the sun let its disk show ([`crate::sundisk::ThinCloudVisibility`]):
     /// a "thin" class that never shows the disk is the optically thick edge of a cloud deck, not a
@@ -193,6 +198,7 @@ impl Default for IrradianceParams {
             persistence_blend_rate: 0.0,
             tune_window_s: 900.0,
             tune_min_rows: 20,
+            tune_before_min_rows: false,
             beam_thin_from_sun_disk: true,
             sun_disk_radius_deg: 1.0,
         }
