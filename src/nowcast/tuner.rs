@@ -61,7 +61,8 @@ impl Tuner {
     /// [`super::forecast_stages::ForecastStage::tune`]).
     pub(super) fn solve_with(&self, prior: &IrradianceParams, take_bias: bool) -> Option<IrradianceParams> {
         let min_rows = prior.tune_min_rows.max(1);
-        if self.rows.len() < min_rows && !(prior.tune_before_min_rows && !self.rows.is_empty()) {
+        let early = prior.tune_before_min_rows && !self.rows.is_empty();
+        if self.rows.len() < min_rows && !early {
             return None;
         }
         // Before `tune_min_rows` (with `tune_before_min_rows`) the prior weighs as much more as the
