@@ -191,7 +191,7 @@ mod tests {
         assert!((p.beam_thin - truth[1]).abs() < 0.03, "beam_thin {}", p.beam_thin);
     }
 
-    /// A solution waits for `tune_min_rows` rows; with 1 the first frame's readings (three rows)
+    /// Without early tuning a solution waits for `tune_min_rows` rows; with 1 the first frame's readings (three rows)
     /// give one, and the mean-residual step sets its level (the readings agree, so their mean is
     /// beyond two standard errors of zero): arithmetic of the model, no source.
     #[test]
@@ -201,8 +201,8 @@ mod tests {
         for i in 0..3 {
             t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, 0.8, 900.0);
         }
-        assert!(t.solve(&IrradianceParams::default()).is_none(), "the default waits for 20 rows");
-        let p = t.solve(&IrradianceParams { tune_min_rows: 1, ..Default::default() }).expect("a solution from three rows");
+        assert!(t.solve(&IrradianceParams { tune_before_min_rows: false, ..Default::default() }).is_none(), "without early tuning it waits for 20 rows");
+        let p = t.solve(&IrradianceParams { tune_min_rows: 1, tune_before_min_rows: false, ..Default::default() }).expect("a solution from three rows");
         let fit: f64 = x[1] * p.beam_thin + x[4] * p.diffuse_per_cover;
         assert!((fit - 0.8).abs() < 0.01, "{p:?}");
     }
@@ -215,7 +215,7 @@ mod tests {
     fn early_tuning_moves_with_the_rows_held_and_joins_the_plain_one() {
         let x = [0.0, 0.85, 0.0, 0.0, 1.0];
         let prior = IrradianceParams { tune_before_min_rows: true, ..Default::default() };
-        let plain = IrradianceParams::default();
+        let plain = IrradianceParams { tune_before_min_rows: false, ..Default::default() };
         let level = |p: &IrradianceParams| x[1] * p.beam_thin + x[4] * p.diffuse_per_cover;
         let prior_level = level(&prior);
         let mut t = Tuner::default();
