@@ -60,9 +60,17 @@ impl Tuner {
     /// up of the window's mean residual (with two layers tracked, see
     /// [`super::forecast_stages::ForecastStage::tune`]).
     pub(super) fn solve_with(&self, prior: &IrradianceParams, take_bias: bool) -> Option<IrradianceParams> {
-        if self.rows.len() < prior.tune_min_rows.max(1) {
+        let min_rows = prior.tune_min_rows.max(1);
+        let early = prior.tune_before_min_rows && !self.rows.is_empty();
+        if self.rows.len() < min_rows && !early {
             return None;
         }
+        // Before `tune_min_rows` (with `tune_before_min_rows`) the prior weighs as much more as the
+        // rows still missing would: each missing row adds its unknown's usual regressor size
+        // squared to the prior's weight, and the mean-residual step below acts in the share of
+        // rows held. From `tune_min_rows` on both are as without it.
+        let missing = min_rows.saturating_sub(self.rows.len()) as f64;
+        let held_share = (self.rows.len() as f64 / min_rows as f64).min(1.0);
         // Unknowns: beam_clear, beam_thin, beam_thick, beam_cloud_brightness, diffuse_per_cover.
         // Rows are scaled to W/m² of clear-sky GHI so every frame weighs alike.
         let p0 = [prior.beam_clear, prior.beam_thin, prior.beam_thick, prior.beam_cloud_brightness, prior.diffuse_per_cover];
@@ -86,8 +94,9 @@ impl Tuner {
             }
             for c in 0..TUNED {
                 let r = self.rows.len() + c;
-                a[(r, c)] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c];
-                b[r] = Self::PRIOR_WEIGHT * Self::PRIOR_SCALE[c] * p0[c];
+                let wc = Self::PRIOR_SCALE[c] * (Self::PRIOR_WEIGHT * Self::PRIOR_WEIGHT + missing).sqrt();
+                a[(r, c)] = wc;
+                b[r] = wc * p0[c];
             }
             sol = a.svd(true, true).solve(&b, 1e-12).ok()?;
             for (r, (x, y)) in self.rows.iter().enumerate() {
@@ -111,7 +120,7 @@ impl Tuner {
             let n = self.rows.len() as f64;
             let se = ((res2 / n - (res / n).powi(2)).max(0.0) / n).sqrt();
             if cover > 0.05 * n && (res / n).abs() > 2.0 * se {
-                sol[TUNED - 1] += res / cover;
+                sol[TUNED - 1] += held_share * res / cover;
             }
         }
         let mut p = *prior;
@@ -182,7 +191,7 @@ mod tests {
         assert!((p.beam_thin - truth[1]).abs() < 0.03, "beam_thin {}", p.beam_thin);
     }
 
-    /// A solution waits for `tune_min_rows` rows; with 1 the first frame's readings (three rows)
+    /// Without early tuning a solution waits for `tune_min_rows` rows; with 1 the first frame's readings (three rows)
     /// give one, and the mean-residual step sets its level (the readings agree, so their mean is
     /// beyond two standard errors of zero): arithmetic of the model, no source.
     #[test]
@@ -192,9 +201,37 @@ mod tests {
         for i in 0..3 {
             t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, 0.8, 900.0);
         }
-        assert!(t.solve(&IrradianceParams::default()).is_none(), "the default waits for 20 rows");
-        let p = t.solve(&IrradianceParams { tune_min_rows: 1, ..Default::default() }).expect("a solution from three rows");
+        assert!(t.solve(&IrradianceParams { tune_before_min_rows: false, ..Default::default() }).is_none(), "without early tuning it waits for 20 rows");
+        let p = t.solve(&IrradianceParams { tune_min_rows: 1, tune_before_min_rows: false, ..Default::default() }).expect("a solution from three rows");
         let fit: f64 = x[1] * p.beam_thin + x[4] * p.diffuse_per_cover;
         assert!((fit - 0.8).abs() < 0.01, "{p:?}");
+    }
+
+    /// With `tune_before_min_rows` the first rows give a solution that moves toward them in
+    /// proportion to the rows held (prior weighted up by the missing rows, mean-residual step
+    /// scaled by the share held), and from `tune_min_rows` on the solution is the one without it:
+    /// arithmetic of the model, no source.
+    #[test]
+    fn early_tuning_moves_with_the_rows_held_and_joins_the_plain_one() {
+        let x = [0.0, 0.85, 0.0, 0.0, 1.0];
+        let prior = IrradianceParams { tune_before_min_rows: true, ..Default::default() };
+        let plain = IrradianceParams { tune_before_min_rows: false, ..Default::default() };
+        let level = |p: &IrradianceParams| x[1] * p.beam_thin + x[4] * p.diffuse_per_cover;
+        let prior_level = level(&prior);
+        let mut t = Tuner::default();
+        let mut gaps = vec![];
+        for i in 0..20 {
+            t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, 1.0, 900.0);
+            let p = t.solve(&prior).expect("a solution from the first row");
+            gaps.push((level(&p) - 1.0).abs());
+            if t.len() < 20 {
+                assert!(t.solve(&plain).is_none());
+            }
+        }
+        assert!((prior_level - 1.0).abs() > 0.2, "the test needs a prior far from the readings: {prior_level}");
+        assert!(gaps[0] > 0.5 * (prior_level - 1.0).abs(), "one row moves the level only part of the way: {gaps:?}");
+        assert!(gaps.windows(2).all(|w| w[1] <= w[0] + 1e-9), "each row brings the level nearer: {gaps:?}");
+        let (a, b) = (t.solve(&prior).unwrap(), t.solve(&plain).unwrap());
+        assert!((a.beam_thin - b.beam_thin).abs() < 1e-9 && (a.diffuse_per_cover - b.diffuse_per_cover).abs() < 1e-9, "{a:?} {b:?}");
     }
 }
