@@ -1,9 +1,10 @@
 //! Whole-frame JPEG decoders compared on frames: CPU time per frame on this thread (median) and
 //! pixel differences against the pure-Rust decoder (`zune-jpeg`, the `image` crate's own, which
-//! the engine's figures were recorded with until whole frames went to libjpeg-turbo).
+//! the engine's figures are recorded with). The intake uses libjpeg-turbo for whole frames only
+//! with `NEPHOCAST_SYSTEM_JPEG_WHOLE` set, so set it to compare:
 //!
 //! ```sh
-//! cargo run --release --example decode_compare -- FRAME.jpg … | FOLDER_OF_JPEGS
+//! NEPHOCAST_SYSTEM_JPEG_WHOLE=1 cargo run --release --example decode_compare -- FRAME.jpg … | FOLDER_OF_JPEGS
 //! ```
 
 use nephocast::intake::{Format, IntakeOptions, SYSTEM_LIBJPEG, decode, decode_general, from_bytes, recycle};
@@ -69,7 +70,11 @@ fn main() {
     println!("{} frames, {rounds} rounds, median CPU ms per frame on this thread:", jpegs.len());
     println!("  image crate (general decoder):           {:.3} ms", median(t_gen));
     println!("  zune-jpeg called directly (pure Rust):   {:.3} ms", median(t_rust));
-    let by = if SYSTEM_LIBJPEG { "libjpeg-turbo" } else { "zune-jpeg: no system libjpeg built in" };
+    let by = match (SYSTEM_LIBJPEG, std::env::var_os(nephocast::intake::SYSTEM_JPEG_WHOLE_ENV).is_some()) {
+        (true, true) => "libjpeg-turbo",
+        (true, false) => "zune-jpeg: NEPHOCAST_SYSTEM_JPEG_WHOLE not set",
+        (false, _) => "zune-jpeg: no system libjpeg built in",
+    };
     println!("  intake, whole frames ({by}): {:.3} ms", median(t_intake));
     println!("  samples differing from zune-jpeg: {differ} of {total} ({:.3} %), largest difference {max_diff}, mean {:+.4} level", 100.0 * differ as f64 / total as f64, signed as f64 / total as f64);
 }

@@ -15,9 +15,10 @@
 //!    size, before any pixel is decoded;
 //! 5. decodes with the decoder's allocation limit set, so that whatever slips past the header check
 //!    cannot allocate more than [`IntakeOptions::max_alloc_bytes`]; any decoder error is a refusal.
-//!    Whole JPEG frames go to the system's libjpeg-turbo when the crate was built with it
-//!    ([`SYSTEM_LIBJPEG`]; 10–17 % less CPU than the pure-Rust decoder on 1024² frames), else (and
-//!    for CMYK, and always for PNG) to the pure-Rust decoders ([`decode`]). With [`IntakeOptions::reduce`] above 1 a JPEG is decoded at that reduced scale
+//!    Whole JPEG frames go to the pure-Rust decoders ([`decode`]); with [`SYSTEM_JPEG_WHOLE_ENV`]
+//!    set and the crate built with the system's libjpeg-turbo ([`SYSTEM_LIBJPEG`]) to that library
+//!    (10–17 % less CPU on 1024² frames; not the default because its different rounding moved the
+//!    two-layer stereo scene's 10-minute skill by 0.09: DEVELOPERS.md). With [`IntakeOptions::reduce`] above 1 a JPEG is decoded at that reduced scale
 //!    ([`decode_jpeg_reduced`]), the size checked against the reduced buffer before decoding.
 //!
 //! Inside JPEG entropy-coded data every 0xFF byte is followed by 0x00 or a restart marker, so a file
@@ -31,8 +32,9 @@ pub use reduced::{PIXELS_PER_CELL, ReducedFrames, box_reduce, decode_jpeg_reduce
 #[cfg(system_libjpeg)]
 use reduced::system_jpeg;
 
-/// Whether the crate was built with the system's libjpeg (libjpeg-turbo), which then decodes whole
-/// JPEG frames and reduced ones; without it both go to pure-Rust decoders (`build.rs`).
+/// Whether the crate was built with the system's libjpeg (libjpeg-turbo), which then decodes
+/// reduced JPEG frames (and whole ones with [`SYSTEM_JPEG_WHOLE_ENV`] set); without it both go to
+/// pure-Rust decoders (`build.rs`).
 pub const SYSTEM_LIBJPEG: bool = cfg!(system_libjpeg);
 
 use std::io::Read as _;
@@ -476,7 +478,7 @@ fn png_structure(b: &[u8]) -> Result<(u32, u32), Refusal> {
 #[cfg_attr(not(system_libjpeg), allow(unused_variables))]
 fn decode_jpeg_whole(bytes: &[u8], (w, h): (u32, u32), opts: &IntakeOptions) -> Result<image::RgbImage, Refusal> {
     #[cfg(system_libjpeg)]
-    if !pure_rust_jpeg() {
+    if system_jpeg_whole() {
         let need = w as u64 * h as u64 * 3;
         if need > opts.max_alloc_bytes {
             return Err(Refusal::TooManyPixels(format!("decoder limit ({} bytes): {need} bytes needed", opts.max_alloc_bytes)));
@@ -496,14 +498,15 @@ fn decode_jpeg_whole(bytes: &[u8], (w, h): (u32, u32), opts: &IntakeOptions) -> 
 }
 
 /// With this environment variable set (to anything), whole JPEG frames are decoded by the
-/// pure-Rust decoder ([`decode`]) even where the system's libjpeg is built in: for comparing the two.
-pub const PURE_RUST_JPEG_ENV: &str = "NEPHOCAST_PURE_RUST_JPEG";
+/// system's libjpeg-turbo where it is built in ([`SYSTEM_LIBJPEG`]) instead of the pure-Rust
+/// decoder ([`decode`]): faster, but not yet the default (the module docs say why).
+pub const SYSTEM_JPEG_WHOLE_ENV: &str = "NEPHOCAST_SYSTEM_JPEG_WHOLE";
 
-/// [`PURE_RUST_JPEG_ENV`] is set (read once).
+/// [`SYSTEM_JPEG_WHOLE_ENV`] is set (read once).
 #[cfg(system_libjpeg)]
-fn pure_rust_jpeg() -> bool {
+fn system_jpeg_whole() -> bool {
     static SET: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
-    *SET.get_or_init(|| std::env::var_os(PURE_RUST_JPEG_ENV).is_some())
+    *SET.get_or_init(|| std::env::var_os(SYSTEM_JPEG_WHOLE_ENV).is_some())
 }
 
 /// Decode checked bytes to RGB with the decoder's limits set, by the pure-Rust decoders (whole
