@@ -86,9 +86,9 @@ mod tests {
         assert!(fill_glare_from_history(&now, [(300.0, &earlier)], [10.0, 0.0], 180.0).is_none());
         assert!(fill_glare_from_history(&now, std::iter::empty(), [10.0, 0.0], 180.0).is_none());
         // An earlier map whose own glare covers the source cells leaves them to an older map.
-        let older = map(n, |i, _| edge(i + 6));
-        let blind = map(n, |i, j| if (2..=5).contains(&i) && (5..=8).contains(&j) { Class::Unknown } else { edge(i + 3) });
-        let (filled, _) = fill_glare_from_history(&now, [(30.0, &blind), (60.0, &older)], [10.0, 0.0], 180.0).expect("filled");
+        let older = map(n, |i, _| edge(i + 4));
+        let blind = map(n, |i, j| if (3..=6).contains(&i) && (5..=8).contains(&j) { Class::Unknown } else { edge(i + 2) });
+        let (filled, _) = fill_glare_from_history(&now, [(20.0, &blind), (40.0, &older)], [10.0, 0.0], 180.0).expect("filled");
         assert!((0..n * n).all(|k| filled.class[k] == edge(k % n) as u8));
     }
 }
