@@ -159,6 +159,15 @@ pub struct IrradianceParams {
     /// class; off (the default), every thin cell passes `beam_thin`. Figures in README ("A thin
     /// cell's transmittance from its score").
     pub thin_beam_from_score: bool,
+    /// The sun's glare (unknown cells in view) is filled from the recent maps moved by the tracked
+    /// motion before the neighbour fill ([`TransmittanceMap::for_layer`]): the glare stays near the
+    /// sun while the clouds move through it, so a cell it hides now was seen upstream earlier.
+    /// Only the forecast's tables and the tuning's look-ups read the fill; the motion measures the
+    /// map as seen. Off (the default): glare cells take their neighbours' shares only.
+    pub glare_fill_from_history: bool,
+    /// The oldest earlier map [s] the glare fill takes a cell from (the engine keeps maps up to
+    /// `motion.max_gap_s`, longer ones are not at hand).
+    pub glare_fill_max_age_s: f64,
 }
 
 impl Default for IrradianceParams {
@@ -186,6 +195,10 @@ impl Default for IrradianceParams {
             fill_layer_behind: false,
             tune_bias_with_two_layers: true,
             thin_beam_from_score: false,
+            glare_fill_from_history: false,
+            // The motion's gap limit: a cloud is taken as frozen over the same span the motion
+            // is measured over (own choice).
+            glare_fill_max_age_s: 180.0,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five
             // synthetic scenes, e.g. broken cumulus 0.71 → 0.79 at 5 min).
@@ -245,7 +258,8 @@ impl IrradianceParams {
         check_range(file, "irradiance.persistence_blend_rate", self.persistence_blend_rate, 0.0, 1.0)?;
         check_range(file, "irradiance.tune_window_s", self.tune_window_s, 60.0, 86_400.0)?;
         check_range(file, "irradiance.tune_min_rows", self.tune_min_rows as f64, 1.0, 400.0)?;
-        check_range(file, "irradiance.sun_disk_radius_deg", self.sun_disk_radius_deg, 0.3, 5.0)
+        check_range(file, "irradiance.sun_disk_radius_deg", self.sun_disk_radius_deg, 0.3, 5.0)?;
+        check_range(file, "irradiance.glare_fill_max_age_s", self.glare_fill_max_age_s, 1.0, 3600.0)
     }
 
     /// The cover that sets the cloud-scattered diffuse: thick cover plus `diffuse_thin_weight` times

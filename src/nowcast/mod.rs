@@ -17,6 +17,7 @@ use stages::{FrameQcStage, MapStage, MotionStage, layer_labels, layer_tables};
 use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
 mod forecast_stages;
+pub mod glare_fill;
 mod plane;
 mod stages;
 mod tuner;
@@ -569,9 +570,17 @@ impl Nowcaster {
         let upper = cbh_upper.map_or((1.0, crate::cbh::UPPER_LAYER_PRIOR_REL_SIGMA), |u| (u.cbh_m / cbh, u.rel_sigma()));
         self.stereo.cbh_above_a_m = Some((cbh_est.cbh_m - cam_z).max(10.0));
         let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements) };
-        self.forecast_stage.tune(cx, &frame.time, &sun, &map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
+        // With `glare_fill_from_history`, each layer's view of the map with the glare filled from
+        // the kept maps moved by that layer's motion (the motion above measured the map as seen).
+        let glare_filled = self.glare_filled(&frame.time, &map, &layer_v, labels.as_deref());
+        let tune_map = glare_filled.first().map_or(&*map, |(m, _)| m);
+        self.forecast_stage.tune(cx, &frame.time, &sun, tune_map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
         let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), upper, &moved.layers, [cf, thin_cf]);
-        let tms = layer_tables(&map, labels.as_deref(), &input.params);
+        let tms = match (glare_filled.as_slice(), labels.as_deref()) {
+            ([], _) => layer_tables(&map, labels.as_deref(), &input.params),
+            ([(m, _)], None) => vec![crate::forecast::TransmittanceMap::new(m, &input.params)],
+            (views, _) => views.iter().enumerate().map(|(l, (m, lb))| crate::forecast::TransmittanceMap::for_layer(m, &input.params, lb.as_deref().map(|lb| (lb, l as u8)))).collect(),
+        };
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
@@ -611,6 +620,41 @@ impl Nowcaster {
             sun_disk: disk,
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },
         })
+    }
+
+    /// The map as each layer's table reads it with `irradiance.glare_fill_from_history`
+    /// ([`glare_fill::fill_glare_from_history`], moved by the layer's motion), with the layer
+    /// labels where there are two (a filled cell goes with the layer whose motion filled it: the
+    /// kept maps carry no labels, so cloud of the other layer seen there counts in both). Empty
+    /// when the setting is off, no motion is tracked, or no glare cell was filled.
+    fn glare_filled(&self, t: &DateTime<Utc>, map: &CloudMap, layer_v: &[[f64; 2]], labels: Option<&[u8]>) -> Vec<(CloudMap, Option<Vec<u8>>)> {
+        let p = &self.site.file.irradiance;
+        if !p.glare_fill_from_history || layer_v.is_empty() {
+            return vec![];
+        }
+        let earlier = || self.motion_stage.history.iter().rev().map(|(e, m, _)| ((*t - *e).num_milliseconds() as f64 / 1000.0, &**m));
+        let n_views = if labels.is_some() { layer_v.len().min(2) } else { 1 };
+        let views: Vec<_> = layer_v[..n_views]
+            .iter()
+            .enumerate()
+            .map(|(l, v)| match glare_fill::fill_glare_from_history(map, earlier(), *v, p.glare_fill_max_age_s) {
+                Some((m, cells)) => {
+                    let lb = labels.map(|lb| {
+                        let mut lb = lb.to_vec();
+                        for k in cells {
+                            lb[k] = l as u8;
+                        }
+                        lb
+                    });
+                    (Some(m), lb)
+                }
+                None => (None, labels.map(<[u8]>::to_vec)),
+            })
+            .collect();
+        if views.iter().all(|(m, _)| m.is_none()) {
+            return vec![];
+        }
+        views.into_iter().map(|(m, lb)| (m.unwrap_or_else(|| map.clone()), lb)).collect()
     }
 
     /// Cloud base height: every estimate combined (ceilometer or configured value `prior_cbh_m`,

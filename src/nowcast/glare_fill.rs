@@ -1,0 +1,94 @@
+//! The sun's glare filled from the recent maps: the glare stays near the sun while the clouds move
+//! through it, so a cell hidden by glare now was seen upstream in an earlier map. Used by the
+//! forecast's tables and the tuning only ([`crate::forecast::IrradianceParams::glare_fill_from_history`]);
+//! motion keeps measuring on the map as seen, so the sun's own region is never advected as cloud.
+
+use crate::cloudmap::CloudMap;
+use crate::segment::Class;
+
+/// `map` with each glare cell (unknown, in view) taken from the most recent earlier map that saw
+/// it: content at cell `x` now is the content at `x − v·Δt` in the map `Δt` ago (frozen cloud
+/// moving at `v_mps` on the map's plane, the motion's own model), nearest cell, where that cell
+/// was in view and known. `earlier` holds `(age_s, map)`, newest first; maps older than
+/// `max_age_s` or on another grid are passed over. Cells no earlier map covers stay unknown (the
+/// tables fill them from their neighbours). `None` when no cell was filled. Each filled cell's
+/// index is returned with the map.
+pub fn fill_glare_from_history<'a>(map: &CloudMap, earlier: impl IntoIterator<Item = (f64, &'a CloudMap)>, v_mps: [f64; 2], max_age_s: f64) -> Option<(CloudMap, Vec<usize>)> {
+    let n = map.grid.n;
+    let glare: Vec<usize> = (0..n * n).filter(|&k| map.in_view.get(k).copied().unwrap_or(false) && Class::from_u8(map.class[k]) == Class::Unknown).collect();
+    if glare.is_empty() || !v_mps.iter().all(|v| v.is_finite()) {
+        return None;
+    }
+    let mut out = map.clone();
+    let mut open = glare.clone();
+    let mut filled = vec![];
+    for (age_s, e) in earlier {
+        if open.is_empty() {
+            break;
+        }
+        if !(age_s > 0.0 && age_s <= max_age_s) || e.grid != map.grid || e.class.len() != n * n {
+            continue;
+        }
+        let (di, dj) = (v_mps[0] * age_s / map.grid.cell_m, v_mps[1] * age_s / map.grid.cell_m);
+        open.retain(|&k| {
+            let (i, j) = ((k % n) as f64 - di, (k / n) as f64 - dj);
+            let (i, j) = (i.round(), j.round());
+            if i < 0.0 || j < 0.0 || i >= n as f64 || j >= n as f64 {
+                return true;
+            }
+            let s = j as usize * n + i as usize;
+            if !e.in_view.get(s).copied().unwrap_or(false) || Class::from_u8(e.class[s]) == Class::Unknown {
+                return true;
+            }
+            out.class[k] = e.class[s];
+            out.score[k] = e.score.get(s).copied().unwrap_or(f32::NAN);
+            if let (Some(b), Some(&v)) = (out.brightness.get_mut(k), e.brightness.get(s)) {
+                *b = v;
+            }
+            if let (Some(d), Some(&v)) = (out.thin_depth.get_mut(k), e.thin_depth.get(s)) {
+                *d = v;
+            }
+            filled.push(k);
+            false
+        });
+    }
+    (!filled.is_empty()).then_some((out, filled))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::cloudmap::Grid;
+
+    fn map(n: usize, class: impl Fn(usize, usize) -> Class) -> CloudMap {
+        let class: Vec<u8> = (0..n * n).map(|k| class(k % n, k / n) as u8).collect();
+        CloudMap { grid: Grid { n, cell_m: 100.0, height_m: 1000.0 }, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![0.0; n * n], thin_depth: vec![0.5; n * n] }
+    }
+
+    /// A cloud edge at column 6 moving +x at 10 m/s (one 100-m cell per 10 s): 30 s ago the
+    /// column-3 edge was seen; now a glare patch over columns 5..=8 hides it. The patch is filled
+    /// from that map shifted three cells (thick left of column 6, clear from it on); with no
+    /// history, or history too old, nothing is filled.
+    #[test]
+    fn glare_patch_is_filled_from_the_earlier_map_moved_by_the_motion() {
+        let n = 16;
+        let edge = |x: usize| if x < 6 { Class::Thick } else { Class::Clear };
+        let earlier = map(n, |i, _| edge(i + 3));
+        let glare = |i: usize, j: usize| (5..=8).contains(&i) && (5..=8).contains(&j);
+        let now = map(n, |i, j| if glare(i, j) { Class::Unknown } else { edge(i) });
+        let (filled, cells) = fill_glare_from_history(&now, [(30.0, &earlier)], [10.0, 0.0], 180.0).expect("filled");
+        assert_eq!(cells.len(), 16);
+        for j in 0..n {
+            for i in 0..n {
+                assert_eq!(filled.class[j * n + i], edge(i) as u8, "cell ({i}, {j})");
+            }
+        }
+        assert!(fill_glare_from_history(&now, [(300.0, &earlier)], [10.0, 0.0], 180.0).is_none());
+        assert!(fill_glare_from_history(&now, std::iter::empty(), [10.0, 0.0], 180.0).is_none());
+        // An earlier map whose own glare covers the source cells leaves them to an older map.
+        let older = map(n, |i, _| edge(i + 4));
+        let blind = map(n, |i, j| if (3..=6).contains(&i) && (5..=8).contains(&j) { Class::Unknown } else { edge(i + 2) });
+        let (filled, _) = fill_glare_from_history(&now, [(20.0, &blind), (40.0, &older)], [10.0, 0.0], 180.0).expect("filled");
+        assert!((0..n * n).all(|k| filled.class[k] == edge(k % n) as u8));
+    }
+}
