@@ -459,6 +459,31 @@ mod tests {
     use super::*;
     use crate::cloudmap::Grid;
 
+    /// A frame without measurements or motion, on a map at `cbh_m` that is also the prior.
+    fn plain_frame<'a>(
+        time: DateTime<Utc>,
+        map: &'a crate::cloudmap::CloudMap,
+        params: &'a crate::forecast::IrradianceParams,
+        site: &crate::config::SiteFile,
+        cbh_m: f64,
+    ) -> CbhFrame<'a> {
+        CbhFrame {
+            time,
+            map,
+            params,
+            map_cbh_m: cbh_m,
+            prior_cbh_m: cbh_m,
+            from_series: false,
+            v_map_mps: None,
+            v_other_mps: None,
+            camera_m: [0.0, 0.0, 3.0],
+            measurements: None,
+            observer: site.site.observer(),
+            altitude_m: 640.0,
+            model: site.site.clear_sky(),
+        }
+    }
+
     #[test]
     fn combine_weighs_by_inverse_variance_in_log_height() {
         let a = CbhInput { cbh_m: 1000.0, rel_sigma: 0.3, age_s: 0.0, source: CbhSource::Configured };
@@ -490,21 +515,7 @@ mod tests {
         let params = crate::forecast::IrradianceParams::default();
         let site = crate::synth::larkspur_site(2000.0, "cam");
         let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
-        let frame = |time| CbhFrame {
-            time,
-            map: &map,
-            params: &params,
-            map_cbh_m: 2000.0,
-            prior_cbh_m: 2000.0,
-            from_series: false,
-            v_map_mps: None,
-            v_other_mps: None,
-            camera_m: [0.0, 0.0, 3.0],
-            measurements: None,
-            observer: site.site.observer(),
-            altitude_m: 640.0,
-            model: site.site.clear_sky(),
-        };
+        let frame = |time| plain_frame(time, &map, &params, &site, 2000.0);
         let mut st = CbhState::new(&CloudSection { base_height_m: Some(2000.0), ..Default::default() });
         assert_eq!(st.update(&frame(t0)).source, CbhSource::Configured);
         let fit = crate::stereo::StereoFit { cbh_m: 1250.0, rel_sigma: 0.04, peak_ncc: 0.9, median_ncc: 0.1, overlap_cells: 5000, curve: vec![] };
@@ -544,21 +555,7 @@ mod tests {
             thin_depth: vec![],
         };
         let params = crate::forecast::IrradianceParams::default();
-        let frame = |time| CbhFrame {
-            time,
-            map: &map,
-            params: &params,
-            map_cbh_m: 800.0,
-            prior_cbh_m: 800.0,
-            from_series: false,
-            v_map_mps: None,
-            v_other_mps: None,
-            camera_m: [0.0, 0.0, 3.0],
-            measurements: None,
-            observer: site.site.observer(),
-            altitude_m: 640.0,
-            model: site.site.clear_sky(),
-        };
+        let frame = |time| plain_frame(time, &map, &params, &site, 800.0);
         let fit = |cbh_m: f64| ShadowFit { cbh_m, rel_sigma: 0.03, events: 10, frames: 30, cost_min: 0.2, cost_median: 0.8 };
         let run = |mode: Option<bool>, fits: &[f64]| {
             let mut st = CbhState::new(&CloudSection { base_height_m: Some(800.0), shadow_timing: mode, ..Default::default() });
