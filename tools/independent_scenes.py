@@ -332,9 +332,8 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
     text += table("site", {"name": s["name"], "latitude_deg": s["latitude"], "longitude_deg": s["longitude"],
                            "elevation_m": s["altitude_m"]})
     text += table("camera", {"calibration": os.path.abspath(calibration), "position_m": [0.0, 0.0, 0.0]})
+    used_base = float(extra.get("clouds", {}).get("base_height_m", base))
     text += table("clouds", {"base_height_m": base})
-    if "clouds.base_height_m" in [kv.split("=", 1)[0].strip() for kv in settings]:
-        base = float(next(kv.split("=", 1)[1] for kv in settings if kv.split("=", 1)[0].strip() == "clouds.base_height_m"))
     text += table("plant", {"point_spacing_m": 25.0})
     # A horizontal fixed block: its POA is GHI. Capacity ~200 W/m2 of footprint.
     text += toml_table("plant.blocks", {"name": "footprint", "polygon_m": poly, "capacity_kw": round(se * sn * 0.2),
@@ -346,7 +345,7 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
         text += toml_table("pyranometers", {"name": p["name"], "position_m": p["position_m"]}, array=True)
     with open(path, "w") as f:
         f.write(text)
-    return base
+    return used_base
 
 
 def write_measurements(path, truth_points_csv, pyranometers, shift_min=0):
