@@ -593,7 +593,8 @@ def run_camera(a, camera, sc, yard, log, res):
     write_site(site_clear, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), cal, pyr)
     meas = os.path.join(work, "measurements.csv")
     tpc = os.path.join(cloudy, "truth", "truth_points.csv")
-    res["measurement_rows"] = write_measurements(meas, tpc, pyr, 1 if a.causal_measurements else 0) if os.path.exists(tpc) else 0
+    res["measurement_rows"] = 0 if a.no_measurements else (
+        write_measurements(meas, tpc, pyr, 1 if a.causal_measurements else 0) if os.path.exists(tpc) else 0)
     # 5./6. replays
     for key, scene_dir, site, m in (("cloudy", cloudy, site_cloudy, meas if res["measurement_rows"] else None),
                                     ("clear", clear, site_clear, None)):
@@ -776,6 +777,9 @@ def main():
     ap.add_argument("--causal-measurements", action="store_true",
                     help="stamp each 1-minute mean at the END of its minute (the engine reads the row whose minute "
                          "holds the frame time, i.e. up to 60 s of readings after the frame; this removes that look-ahead)")
+    ap.add_argument("--no-measurements", action="store_true",
+                    help="replay the cloudy scene without pyranometer readings (a plant without them: the "
+                         "engine's documented default transmittances)")
     ap.add_argument("--calibration-only", action="store_true",
                     help="stop after measuring the calibration (steps 3-4 and the detections' lean); no replays")
     ap.add_argument("--clear-subset", choices=CLEAR_SUBSETS, default="all",
@@ -797,7 +801,8 @@ def main():
     log = []
     results = []
     text = (f"# nephocast on the independent scenes (camera from `{a.camera_from}`, binary {a.bin}; measurements "
-            f"stamped at the {'end' if a.causal_measurements else 'start'} of each minute)\n\n")
+            f"stamped at the {'end' if a.causal_measurements else 'start'} of each minute"
+            f"{'; NO measurements given to the cloudy replay' if a.no_measurements else ''})\n\n")
     for camera in [c.strip() for c in a.cameras.split(",") if c.strip()]:
         print(f"[{camera}] running ...", file=sys.stderr, flush=True)
         r = dict(camera=camera, camera_from=a.camera_from)
