@@ -15,7 +15,7 @@
 use std::sync::OnceLock;
 
 use chrono::{DateTime, Utc};
-use nephocast::calibrate::{Fit, calibrate, obstruction_mask};
+use nephocast::calibrate::{Detection, Fit, calibrate, fit_detections, fit_image_circle, initial_camera, obstruction_mask, refine_image_circle};
 use nephocast::camera::Camera;
 use nephocast::config::CalibrationFile;
 use nephocast::replay::{ReplayOptions, replay};
@@ -40,10 +40,13 @@ const TARGET_SPEED_ERR_MPS: f64 = 0.5;
 const TARGET_DIR_ERR_DEG: f64 = 5.0;
 
 /// Metrics that do not yet meet their target with this camera (figures with the calibration as of
-/// this test's introduction): the lens's θ⁷ term is beyond the polynomial fit's k1, k2 and the sun
-/// never goes below zenith 70° in the fitted detections, so the 60–80° band is extrapolated (p95
-/// 0.48°, all bands together 0.40°); with the calibrated camera the cloud speed is 0.96 m/s off
-/// (0.02 m/s with the true camera).
+/// this test's introduction): the sun never goes below zenith 70° in the fitted detections, so the
+/// 60–80° band is extrapolated (p95 0.48°, all bands together 0.40°; 0.505° / 0.414° on
+/// 2026-12-04); with the calibrated camera the cloud speed is 0.96 m/s off (0.02 m/s with the true
+/// camera). The lens's θ⁷ term is not what is missing: fitted to the true sun pixels, k1 and k2
+/// reach 0.063° at 60–80° (`the_shortfall_is_the_detections_lean_not_the_lens_model`). The
+/// detections at zenith 50–70° sit 0.2–0.6 px outward of the sun, in every level set of the glare
+/// alike, and the fit follows that lean as distortion (DEVELOPERS.md, "Where the design changed").
 ///
 /// The stated direction-error bound covers the true p95 in every band (2026-12-04: 60–70° 0.381°
 /// against 0.270°, 70–80° 0.669° against 0.534°, 85–90° 0.945° against 0.823°). With a glare-lean
@@ -75,7 +78,7 @@ fn check(metric: &str, ok: bool, figure: String) {
 struct Calibrated {
     truth: Camera,
     fit: Fit,
-    detections: usize,
+    detections: Vec<Detection>,
     frames: Vec<(DateTime<Utc>, image::RgbImage)>,
     observer: nephocast::sun::Observer,
 }
@@ -108,7 +111,7 @@ fn calibrated() -> &'static Calibrated {
             fit.rms_deg,
             fit.warnings
         );
-        Calibrated { truth: s.camera.clone(), fit, detections: dets.len(), frames, observer: s.world.observer }
+        Calibrated { truth: s.camera.clone(), fit, detections: dets, frames, observer: s.world.observer }
     })
 }
 
@@ -142,7 +145,7 @@ fn stats(v: &mut [f64]) -> (f64, f64, f64) {
 #[test]
 fn calibration_direction_error_by_zenith_band() {
     let c = calibrated();
-    assert!(c.detections >= 20, "{} detections", c.detections);
+    assert!(c.detections.len() >= 20, "{} detections", c.detections.len());
     eprintln!("calibration of the nuisance camera (target p95 ≤ {TARGET_P95_DEG}° at zenith < 80°):");
     let mut figures = vec![];
     for (z0, z1) in [(0.0, 40.0), (40.0, 60.0), (60.0, 80.0), (0.0, 80.0)] {
@@ -169,6 +172,53 @@ fn calibration_direction_error_by_zenith_band() {
             p95 <= b.bound_deg,
             format!("true p95 {p95:.3}°, stated bound {:.3}°", b.bound_deg),
         );
+    }
+}
+
+/// What the 60–80° shortfall is made of: the detections' lean, not the lens model. The same
+/// polynomial fit (`fit_detections`: k1, k2, robust loss, the bloom screening's weights), given the
+/// true sun pixel at the times and directions of the detections `calibrate` kept, reaches the
+/// target in every band; given the detections, it misses it at 60–80° as `calibrate` does. The
+/// detections there sit outward of the true sun by about half a pixel (printed), in every level set
+/// of the glare alike, so `calibrate/lean.rs` cannot see it, and a lean that grows smoothly with
+/// zenith angle is, to the held-out error, lens distortion.
+#[test]
+fn the_shortfall_is_the_detections_lean_not_the_lens_model() {
+    let c = calibrated();
+    let dets = &c.detections;
+    let radial_lean = |d: &Detection| {
+        let (tx, ty) = c.truth.project_enu(d.dir).expect("the true camera images the sun");
+        let (ux, uy) = (tx - c.truth.cx_px, ty - c.truth.cy_px);
+        let n = ux.hypot(uy).max(1e-9);
+        ((d.px.0 - tx) * ux + (d.px.1 - ty) * uy) / n
+    };
+    eprintln!("detections kept by calibrate against the true sun (radial: outward):");
+    for (z0, z1) in [(0.0, 40.0), (40.0, 50.0), (50.0, 60.0), (60.0, 70.0)] {
+        let band: Vec<&Detection> = dets.iter().filter(|d| (z0..z1).contains(&d.dir[2].clamp(-1.0, 1.0).acos().to_degrees())).collect();
+        if band.is_empty() {
+            continue;
+        }
+        let mut lean: Vec<f64> = band.iter().map(|d| radial_lean(d)).collect();
+        lean.sort_by(f64::total_cmp);
+        let w = band.iter().map(|d| d.weight).sum::<f64>() / band.len() as f64;
+        eprintln!("  zenith {z0:>2}–{z1:<2}°: {} detections, median radial lean {:+.2} px, mean weight {w:.2}", band.len(), lean[lean.len() / 2]);
+    }
+    let img = &c.frames[c.frames.len() / 2].1;
+    let circle = fit_image_circle(img).map(|k| refine_image_circle(img, k).unwrap_or(k)).expect("image circle");
+    let start = initial_camera(circle, img.dimensions(), dets);
+    let poly = nephocast::camera::Projection::Polynomial { k: [0.0; 4] };
+    let at_true_sun: Vec<Detection> = dets.iter().map(|d| Detection { px: c.truth.project_enu(d.dir).unwrap(), ..*d }).collect();
+    for (what, set) in [("detections", dets.as_slice()), ("true sun pixels", at_true_sun.as_slice())] {
+        let fit = fit_detections(&start, poly, set);
+        let mut p95s = vec![];
+        for (z0, z1) in [(0.0, 40.0), (40.0, 60.0), (60.0, 80.0), (0.0, 80.0)] {
+            let mut e = direction_errors(&c.truth, &fit.camera, z0, z1);
+            p95s.push(stats(&mut e).1);
+        }
+        eprintln!("  polynomial fit to the {what}: p95 {:.3}° / {:.3}° / {:.3}° at zenith 0–40° / 40–60° / 60–80°, {:.3}° over 0–80°", p95s[0], p95s[1], p95s[2], p95s[3]);
+        if what == "true sun pixels" {
+            assert!(p95s.iter().all(|p| *p <= TARGET_P95_DEG), "the lens model itself falls short: {p95s:?}");
+        }
     }
 }
 
