@@ -9,8 +9,8 @@ use crate::cloudmap::CloudMap;
 /// 512² frames: the first pass's preparation 1.1 ms with fresh buffers).
 pub(super) mod pool {
     crate::pool::typed_pool!(take_f32, give_f32, f32, F32);
-    crate::pool::typed_pool!(take_f64, give_f64, f64, F64);
-    crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
+    crate::pool::typed_pool!(give_f64, f64, F64, sized = take_f64_sized);
+    crate::pool::typed_pool!(give_u32, u32, U32, sized = take_u32_sized);
 }
 
 /// Mean over `f × f` cells, where at least half of them are known (NaN elsewhere).
@@ -50,6 +50,25 @@ pub(super) struct Plane {
     cnt: Vec<u32>,
 }
 
+/// Of a summed-area table with rows of `w` entries: table row `j` (entries 1..w, read) and rows
+/// `j + 1` and `j + 2` (entries 1..w, to write; their entry 0 set to zero here).
+fn two_rows<T: Copy + Default>(t: &mut [T], j: usize, w: usize) -> (&[T], &mut [T], &mut [T]) {
+    let (above, below) = t.split_at_mut((j + 1) * w);
+    let (a, b) = below[..2 * w].split_at_mut(w);
+    a[0] = T::default();
+    b[0] = T::default();
+    (&above[j * w + 1..], &mut a[1..], &mut b[1..])
+}
+
+/// Of a summed-area table with rows of `w` entries: table row `j` (entries 1..w, read) and row
+/// `j + 1` (entries 1..w, to write; its entry 0 set to zero here).
+fn one_row<T: Copy + Default>(t: &mut [T], j: usize, w: usize) -> (&[T], &mut [T]) {
+    let (above, below) = t.split_at_mut((j + 1) * w);
+    let a = &mut below[..w];
+    a[0] = T::default();
+    (&above[j * w + 1..], &mut a[1..])
+}
+
 impl Plane {
     fn new(f: &[f32], n: usize, tables: bool) -> Plane {
         let (mut v, mut m) = (pool::take_f32(), pool::take_f32());
@@ -59,26 +78,22 @@ impl Plane {
             return Plane { n, v, m, s1: vec![], s2: vec![], cnt: vec![] };
         }
         let w = n + 1;
-        let (mut s1, mut s2, mut cnt) = (pool::take_f64(), pool::take_f64(), pool::take_u32());
-        for t in [&mut s1, &mut s2] {
-            t.reserve(w * w);
-            t.extend(std::iter::repeat_n(0.0, w));
-        }
-        cnt.reserve(w * w);
-        cnt.extend(std::iter::repeat_n(0, w));
-        // Each table row is its row's prefix sums plus the table row above, built in one pass and
-        // appended (no zero-fill first, no second pass): the same additions of the same operands
-        // as prefix sums first and a pass adding each row's above after. Two rows at a time (six
-        // independent running sums, so the adds' latency overlaps), into scratch rows, on row
-        // slices of length n (no bounds checks).
-        let mut rows = [(); 2].map(|_| (vec![0f64; w], vec![0f64; w], vec![0u32; w]));
+        // Pooled tables of the same size when there are (their old entries, each overwritten
+        // below: row 0 and column 0 zero, every other entry its sum), so no zero-fill and no copy.
+        let (mut s1, mut s2, mut cnt) = (pool::take_f64_sized(w * w, 0.0), pool::take_f64_sized(w * w, 0.0), pool::take_u32_sized(w * w, 0));
+        s1[..w].fill(0.0);
+        s2[..w].fill(0.0);
+        cnt[..w].fill(0);
+        // Each table row is its row's prefix sums plus the table row above, built in one pass in
+        // place (no zero-fill first, no second pass): the same additions of the same operands as
+        // prefix sums first and a pass adding each row's above after. Two rows at a time (six
+        // independent running sums, so the adds' latency overlaps), on row slices of length n (no
+        // bounds checks).
         let mut j = 0;
         while j + 1 < n {
             let (va, vb) = (&v[j * n..j * n + n], &v[(j + 1) * n..(j + 1) * n + n]);
             let (ma, mb) = (&m[j * n..j * n + n], &m[(j + 1) * n..(j + 1) * n + n]);
-            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
-            let [(ra1, ra2, rac), (rb1, rb2, rbc)] = &mut rows;
-            let (ra1, ra2, rac, rb1, rb2, rbc) = (&mut ra1[1..w], &mut ra2[1..w], &mut rac[1..w], &mut rb1[1..w], &mut rb2[1..w], &mut rbc[1..w]);
+            let ((u1, ra1, rb1), (u2, ra2, rb2), (uc, rac, rbc)) = (two_rows(&mut s1, j, w), two_rows(&mut s2, j, w), two_rows(&mut cnt, j, w));
             let (mut a1, mut a2, mut ac) = (0f64, 0f64, 0u32);
             let (mut b1, mut b2, mut bc) = (0f64, 0f64, 0u32);
             for i in 0..n {
@@ -97,18 +112,11 @@ impl Plane {
                 rb2[i] = b2 + t2;
                 rbc[i] = bc + tc;
             }
-            for (a, b, c) in &rows {
-                s1.extend_from_slice(a);
-                s2.extend_from_slice(b);
-                cnt.extend_from_slice(c);
-            }
             j += 2;
         }
         if j < n {
             let (vr, mr) = (&v[j * n..j * n + n], &m[j * n..j * n + n]);
-            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
-            let (t1, t2, tc) = &mut rows[0];
-            let (t1, t2, tc) = (&mut t1[1..w], &mut t2[1..w], &mut tc[1..w]);
+            let ((u1, t1), (u2, t2), (uc, tc)) = (one_row(&mut s1, j, w), one_row(&mut s2, j, w), one_row(&mut cnt, j, w));
             let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
             for i in 0..n {
                 let x = vr[i] as f64;
@@ -119,10 +127,6 @@ impl Plane {
                 t2[i] = r2 + u2[i];
                 tc[i] = rc + uc[i];
             }
-            let (a, b, c) = &rows[0];
-            s1.extend_from_slice(a);
-            s2.extend_from_slice(b);
-            cnt.extend_from_slice(c);
         }
         Plane { n, v, m, s1, s2, cnt }
     }
