@@ -376,4 +376,22 @@ mod tests {
         let t = s[0] as f64 + 0.05 * s[1] as f64;
         assert!((t - 0.05f64.sqrt()).abs() < 1e-3, "{t}");
     }
+
+    /// The summed-area table is built in place in a pooled buffer of the same size, whose old
+    /// entries are those of the table before: every entry must be overwritten. A table built right
+    /// after one of another map equals the one built first on a thread of its own (a fresh buffer).
+    #[test]
+    fn table_over_a_pooled_buffer_is_the_fresh_one() {
+        let g = Grid::new(&MapParams { cells: 16, ..Default::default() }, 1000.0);
+        let map_of = |salt: u64| {
+            let class: Vec<u8> = (0..256u64).map(|k| (crate::rng::hash64(k ^ salt) % 4) as u8).collect();
+            let brightness: Vec<f32> = (0..256u64).map(|k| (crate::rng::hash64(k ^ salt ^ 99) % 200) as f32 / 1000.0 - 0.1).collect();
+            CloudMap { grid: g, score: vec![0.0; 256], class, in_view: vec![true; 256], offset: 0.0, brightness, thin_depth: vec![] }
+        };
+        let p = IrradianceParams { beam_cloud_brightness: 0.5, ..Default::default() };
+        let (a, b) = (map_of(1), map_of(2));
+        let fresh = std::thread::scope(|s| s.spawn(|| TransmittanceMap::new(&b, &p).sat.clone()).join().expect("thread"));
+        drop(TransmittanceMap::new(&a, &p));
+        assert_eq!(TransmittanceMap::new(&b, &p).sat, fresh);
+    }
 }

@@ -544,4 +544,45 @@ mod tests {
             }
         }
     }
+
+    /// Tables are built in place in pooled buffers of the same size, whose old entries are those
+    /// of the table before: every entry must be overwritten. A plane built right after another
+    /// one (odd and even sizes: the two-row and the last-row passes) has the window sums of a
+    /// direct sum over its values, bit for bit.
+    #[test]
+    fn plane_tables_over_a_pooled_buffer_are_the_direct_sums() {
+        for n in [9usize, 10] {
+            let val = |k: usize, salt: u64| -> f32 {
+                let h = crate::rng::hash64(k as u64 ^ salt);
+                if h.is_multiple_of(7) { f32::NAN } else { (h % 1000) as f32 / 100.0 - 5.0 }
+            };
+            let first: Vec<f32> = (0..n * n).map(|k| val(k, 1)).collect();
+            drop(Plane::new(&first, n, true));
+            let f: Vec<f32> = (0..n * n).map(|k| val(k, 2)).collect();
+            let p = Plane::new(&f, n, true);
+            for (y, x, b) in [(0, 0, n), (0, 0, 1), (1, 2, 3), (n - 2, n - 2, 2), (3, 0, 5)] {
+                // The table's sums against sums of the same operands in the same order: row prefix
+                // sums plus the table row above.
+                let w = n + 1;
+                let (mut t1, mut t2, mut tc) = (vec![0f64; w * w], vec![0f64; w * w], vec![0u32; w * w]);
+                for j in 0..n {
+                    let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
+                    for i in 0..n {
+                        let v = if f[j * n + i].is_nan() { 0.0 } else { f[j * n + i] as f64 };
+                        r1 += v;
+                        r2 += v * v;
+                        rc += (!f[j * n + i].is_nan()) as u32;
+                        t1[(j + 1) * w + i + 1] = r1 + t1[j * w + i + 1];
+                        t2[(j + 1) * w + i + 1] = r2 + t2[j * w + i + 1];
+                        tc[(j + 1) * w + i + 1] = rc + tc[j * w + i + 1];
+                    }
+                }
+                assert_eq!((p.s1.as_slice(), p.s2.as_slice(), p.cnt.as_slice()), (t1.as_slice(), t2.as_slice(), tc.as_slice()), "n {n}");
+                let (s1, s2, k) = p.window(x, y, b);
+                let (d1, d2, dk) = p.block_sums(x, y, b);
+                assert_eq!(k, dk);
+                assert!((s1 - d1).abs() < 1e-9 && (s2 - d2).abs() < 1e-9, "n {n} window ({x}, {y}, {b})");
+            }
+        }
+    }
 }
