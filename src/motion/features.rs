@@ -52,21 +52,26 @@ pub(super) struct Plane {
 
 /// Of a summed-area table with rows of `w` entries: table row `j` (entries 1..w, read) and rows
 /// `j + 1` and `j + 2` (entries 1..w, to write; their entry 0 set to zero here).
+#[inline(always)]
 fn two_rows<T: Copy + Default>(t: &mut [T], j: usize, w: usize) -> (&[T], &mut [T], &mut [T]) {
+    let n = w - 1;
     let (above, below) = t.split_at_mut((j + 1) * w);
     let (a, b) = below[..2 * w].split_at_mut(w);
     a[0] = T::default();
     b[0] = T::default();
-    (&above[j * w + 1..], &mut a[1..], &mut b[1..])
+    // Each of length n exactly (so the caller's loop over 0..n needs no bounds checks).
+    (&above[j * w + 1..j * w + 1 + n], &mut a[1..1 + n], &mut b[1..1 + n])
 }
 
 /// Of a summed-area table with rows of `w` entries: table row `j` (entries 1..w, read) and row
 /// `j + 1` (entries 1..w, to write; its entry 0 set to zero here).
+#[inline(always)]
 fn one_row<T: Copy + Default>(t: &mut [T], j: usize, w: usize) -> (&[T], &mut [T]) {
+    let n = w - 1;
     let (above, below) = t.split_at_mut((j + 1) * w);
     let a = &mut below[..w];
     a[0] = T::default();
-    (&above[j * w + 1..], &mut a[1..])
+    (&above[j * w + 1..j * w + 1 + n], &mut a[1..1 + n])
 }
 
 impl Plane {
@@ -94,6 +99,8 @@ impl Plane {
             let (va, vb) = (&v[j * n..j * n + n], &v[(j + 1) * n..(j + 1) * n + n]);
             let (ma, mb) = (&m[j * n..j * n + n], &m[(j + 1) * n..(j + 1) * n + n]);
             let ((u1, ra1, rb1), (u2, ra2, rb2), (uc, rac, rbc)) = (two_rows(&mut s1, j, w), two_rows(&mut s2, j, w), two_rows(&mut cnt, j, w));
+            let (u1, ra1, rb1, u2, ra2, rb2) = (&u1[..n], &mut ra1[..n], &mut rb1[..n], &u2[..n], &mut ra2[..n], &mut rb2[..n]);
+            let (uc, rac, rbc) = (&uc[..n], &mut rac[..n], &mut rbc[..n]);
             let (mut a1, mut a2, mut ac) = (0f64, 0f64, 0u32);
             let (mut b1, mut b2, mut bc) = (0f64, 0f64, 0u32);
             for i in 0..n {
@@ -117,6 +124,7 @@ impl Plane {
         if j < n {
             let (vr, mr) = (&v[j * n..j * n + n], &m[j * n..j * n + n]);
             let ((u1, t1), (u2, t2), (uc, tc)) = (one_row(&mut s1, j, w), one_row(&mut s2, j, w), one_row(&mut cnt, j, w));
+            let (u1, t1, u2, t2, uc, tc) = (&u1[..n], &mut t1[..n], &u2[..n], &mut t2[..n], &uc[..n], &mut tc[..n]);
             let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
             for i in 0..n {
                 let x = vr[i] as f64;
