@@ -123,11 +123,18 @@ pub struct Samples<'a> {
     pub plain: &'a dyn Fn(usize) -> bool,
 }
 
-/// The scores of `v` at the cloud and clear levels (quantiles, nearest rank), sorting `v` once.
+/// The scores of `v` at the cloud and clear levels (quantiles, nearest rank), reordering `v`.
+///
+/// By selection, not a sort: the value of rank `k` in `f32::total_cmp`'s total order is the
+/// sorted slice's `v[k]` bit for bit (values equal in that order have the same bits), found in
+/// linear time. The higher rank first; the lower one is then among the values before it.
 fn levels(v: &mut [f32], cloud_level: f32, clear_level: f32) -> (f32, f32) {
-    v.sort_unstable_by(f32::total_cmp);
-    let at = |q: f32| v[((v.len() - 1) as f32 * q).round() as usize];
-    (at(cloud_level), at(clear_level))
+    let rank = |q: f32| ((v.len() - 1) as f32 * q).round() as usize;
+    let (ic, il) = (rank(cloud_level), rank(clear_level));
+    let (lo, hi) = (ic.min(il), ic.max(il));
+    let (below, &mut at_hi, _) = v.select_nth_unstable_by(hi, f32::total_cmp);
+    let at_lo = if lo == hi { at_hi } else { *below.select_nth_unstable_by(lo, f32::total_cmp).1 };
+    if ic >= il { (at_hi, at_lo) } else { (at_lo, at_hi) }
 }
 
 /// The far band (0 from [`NEAR_ZENITH_DEG`], in steps of 5°) holding zenith `z_deg` > the near field.
@@ -405,5 +412,29 @@ mod tests {
         let mut floored = before.clone();
         promote_far_cells(&mut floored, &score, &z, 70.0, 0.9);
         assert_eq!(floored[400..500].iter().filter(|c| **c == thick).count(), 100 - 82);
+    }
+
+    /// The levels by selection are the sorted slice's values at the nearest ranks, bit for bit
+    /// (ties, signed zeros, one and two samples, either level the higher).
+    #[test]
+    fn levels_by_selection_are_the_sorted_ranks() {
+        for n in [1usize, 2, 3, 10, 57, 400] {
+            for (cloud, clear) in [(0.75, 0.25), (0.25, 0.75), (0.5, 0.5), (1.0, 0.0), (0.9, 0.1)] {
+                let v: Vec<f32> = (0..n as u64)
+                    .map(|k| match crate::rng::hash64(k ^ (n as u64) << 20) % 9 {
+                        0 => 0.0,
+                        1 => -0.0,
+                        2 => 0.5,
+                        h => h as f32 / 7.0 - 0.4 + (k % 5) as f32 * 1e-3,
+                    })
+                    .collect();
+                let mut sorted = v.clone();
+                sorted.sort_unstable_by(f32::total_cmp);
+                let at = |q: f32| sorted[((n - 1) as f32 * q).round() as usize];
+                let mut w = v.clone();
+                let (c, l) = levels(&mut w, cloud, clear);
+                assert_eq!((c.to_bits(), l.to_bits()), (at(cloud).to_bits(), at(clear).to_bits()), "n {n}, levels {cloud} {clear}");
+            }
+        }
     }
 }

@@ -25,7 +25,7 @@ pub struct TransmittanceMap {
 /// Buffers reused from frame to frame: a 256² map's summed-area table is 1 MB; a fresh one each
 /// frame cost page faults.
 mod pool {
-    crate::pool::typed_pool!(take_sat, give_sat, [i32; super::FEATURES + 1], SAT);
+    crate::pool::typed_pool!(give_sat, [i32; super::FEATURES + 1], SAT, sized = take_sat_sized);
     crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
     crate::pool::typed_pool!(take_shares, give_shares, [f32; super::FEATURES], SHARES);
 }
@@ -140,21 +140,23 @@ impl TransmittanceMap {
                 front.push_back(m);
             }
         }
-        // Row by row, appended (no zero-fill first): the table is 1 MB, the pass memory-bound.
+        // Row by row, in place: the table is 1 MB, the pass memory-bound. The table is a pooled
+        // one of the same size when there is one (its old entries, each overwritten below: row 0
+        // and column 0 zero, every other entry its sum), so there is no zero-fill and no copy.
         let unit = SHARE_UNIT as i32;
         let step: [[i32; FEATURES]; 4] = [[0, 0, 0, 0], [unit, 0, 0, 0], [0, unit, 0, 0], [0, 0, unit, 0]];
         let quantise = |v: f32| round_i32(v as f64 * SHARE_UNIT);
-        // Each row is built in a scratch row from row slices (no bounds checks, no capacity check
-        // per cell) and appended. The four features' running sums are kept apart from the count's,
-        // so that they stay in one vector register (as one array of five they were taken apart and
-        // put together again for every cell).
-        let mut sat = pool::take_sat();
-        sat.reserve(w * w);
-        sat.extend(std::iter::repeat_n([0i32; FEATURES + 1], w));
-        let mut row = vec![[0i32; FEATURES + 1]; w];
+        // Each row is built from row slices (no bounds checks in the loop). The four features'
+        // running sums are kept apart from the count's, so that they stay in one vector register
+        // (as one array of five they were taken apart and put together again for every cell).
+        let mut sat = pool::take_sat_sized(w * w, [0i32; FEATURES + 1]);
+        sat[..w].fill([0i32; FEATURES + 1]);
         for j in 0..n {
             let (mut rs, mut rc) = ([0i32; FEATURES], 0i32);
-            let (up, out) = (&sat[j * w + 1..(j + 1) * w], &mut row[1..w]);
+            let (above, below) = sat.split_at_mut((j + 1) * w);
+            let (up, row) = (&above[j * w + 1..(j + 1) * w], &mut below[..w]);
+            row[0] = [0i32; FEATURES + 1];
+            let out = &mut row[1..w];
             let (cls, st) = (&class[j * n..j * n + n], &state[j * n..j * n + n]);
             for i in 0..n {
                 let (add, count) = if st[i] >= FILLED {
@@ -181,7 +183,6 @@ impl TransmittanceMap {
                 let u = up[i];
                 out[i] = [u[0] + rs[0], u[1] + rs[1], u[2] + rs[2], u[3] + rs[3], u[4] + rc];
             }
-            sat.extend_from_slice(&row);
         }
         pool::give_u32(state);
         pool::give_shares(filled);
@@ -374,5 +375,23 @@ mod tests {
         let s = CloudMap::continuous_shares(Class::Thin, 0.25, [1.0, 0.05, 0.03]);
         let t = s[0] as f64 + 0.05 * s[1] as f64;
         assert!((t - 0.05f64.sqrt()).abs() < 1e-3, "{t}");
+    }
+
+    /// The summed-area table is built in place in a pooled buffer of the same size, whose old
+    /// entries are those of the table before: every entry must be overwritten. A table built right
+    /// after one of another map equals the one built first on a thread of its own (a fresh buffer).
+    #[test]
+    fn table_over_a_pooled_buffer_is_the_fresh_one() {
+        let g = Grid::new(&MapParams { cells: 16, ..Default::default() }, 1000.0);
+        let map_of = |salt: u64| {
+            let class: Vec<u8> = (0..256u64).map(|k| (crate::rng::hash64(k ^ salt) % 4) as u8).collect();
+            let brightness: Vec<f32> = (0..256u64).map(|k| (crate::rng::hash64(k ^ salt ^ 99) % 200) as f32 / 1000.0 - 0.1).collect();
+            CloudMap { grid: g, score: vec![0.0; 256], class, in_view: vec![true; 256], offset: 0.0, brightness, thin_depth: vec![] }
+        };
+        let p = IrradianceParams { beam_cloud_brightness: 0.5, ..Default::default() };
+        let (a, b) = (map_of(1), map_of(2));
+        let fresh = std::thread::scope(|s| s.spawn(|| TransmittanceMap::new(&b, &p).sat.clone()).join().expect("thread"));
+        drop(TransmittanceMap::new(&a, &p));
+        assert_eq!(TransmittanceMap::new(&b, &p).sat, fresh);
     }
 }

@@ -9,8 +9,8 @@ use crate::cloudmap::CloudMap;
 /// 512² frames: the first pass's preparation 1.1 ms with fresh buffers).
 pub(super) mod pool {
     crate::pool::typed_pool!(take_f32, give_f32, f32, F32);
-    crate::pool::typed_pool!(take_f64, give_f64, f64, F64);
-    crate::pool::typed_pool!(take_u32, give_u32, u32, U32);
+    crate::pool::typed_pool!(give_f64, f64, F64, sized = take_f64_sized);
+    crate::pool::typed_pool!(give_u32, u32, U32, sized = take_u32_sized);
 }
 
 /// Mean over `f × f` cells, where at least half of them are known (NaN elsewhere).
@@ -50,6 +50,30 @@ pub(super) struct Plane {
     cnt: Vec<u32>,
 }
 
+/// Of a summed-area table with rows of `w` entries: table row `j` (entries 1..w, read) and rows
+/// `j + 1` and `j + 2` (entries 1..w, to write; their entry 0 set to zero here).
+#[inline(always)]
+fn two_rows<T: Copy + Default>(t: &mut [T], j: usize, w: usize) -> (&[T], &mut [T], &mut [T]) {
+    let n = w - 1;
+    let (above, below) = t.split_at_mut((j + 1) * w);
+    let (a, b) = below[..2 * w].split_at_mut(w);
+    a[0] = T::default();
+    b[0] = T::default();
+    // Each of length n exactly (so the caller's loop over 0..n needs no bounds checks).
+    (&above[j * w + 1..j * w + 1 + n], &mut a[1..1 + n], &mut b[1..1 + n])
+}
+
+/// Of a summed-area table with rows of `w` entries: table row `j` (entries 1..w, read) and row
+/// `j + 1` (entries 1..w, to write; its entry 0 set to zero here).
+#[inline(always)]
+fn one_row<T: Copy + Default>(t: &mut [T], j: usize, w: usize) -> (&[T], &mut [T]) {
+    let n = w - 1;
+    let (above, below) = t.split_at_mut((j + 1) * w);
+    let a = &mut below[..w];
+    a[0] = T::default();
+    (&above[j * w + 1..j * w + 1 + n], &mut a[1..1 + n])
+}
+
 impl Plane {
     fn new(f: &[f32], n: usize, tables: bool) -> Plane {
         let (mut v, mut m) = (pool::take_f32(), pool::take_f32());
@@ -59,26 +83,24 @@ impl Plane {
             return Plane { n, v, m, s1: vec![], s2: vec![], cnt: vec![] };
         }
         let w = n + 1;
-        let (mut s1, mut s2, mut cnt) = (pool::take_f64(), pool::take_f64(), pool::take_u32());
-        for t in [&mut s1, &mut s2] {
-            t.reserve(w * w);
-            t.extend(std::iter::repeat_n(0.0, w));
-        }
-        cnt.reserve(w * w);
-        cnt.extend(std::iter::repeat_n(0, w));
-        // Each table row is its row's prefix sums plus the table row above, built in one pass and
-        // appended (no zero-fill first, no second pass): the same additions of the same operands
-        // as prefix sums first and a pass adding each row's above after. Two rows at a time (six
-        // independent running sums, so the adds' latency overlaps), into scratch rows, on row
-        // slices of length n (no bounds checks).
-        let mut rows = [(); 2].map(|_| (vec![0f64; w], vec![0f64; w], vec![0u32; w]));
+        // Pooled tables of the same size when there are (their old entries, each overwritten
+        // below: row 0 and column 0 zero, every other entry its sum), so no zero-fill and no copy.
+        let (mut s1, mut s2, mut cnt) = (pool::take_f64_sized(w * w, 0.0), pool::take_f64_sized(w * w, 0.0), pool::take_u32_sized(w * w, 0));
+        s1[..w].fill(0.0);
+        s2[..w].fill(0.0);
+        cnt[..w].fill(0);
+        // Each table row is its row's prefix sums plus the table row above, built in one pass in
+        // place (no zero-fill first, no second pass): the same additions of the same operands as
+        // prefix sums first and a pass adding each row's above after. Two rows at a time (six
+        // independent running sums, so the adds' latency overlaps), on row slices of length n (no
+        // bounds checks).
         let mut j = 0;
         while j + 1 < n {
             let (va, vb) = (&v[j * n..j * n + n], &v[(j + 1) * n..(j + 1) * n + n]);
             let (ma, mb) = (&m[j * n..j * n + n], &m[(j + 1) * n..(j + 1) * n + n]);
-            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
-            let [(ra1, ra2, rac), (rb1, rb2, rbc)] = &mut rows;
-            let (ra1, ra2, rac, rb1, rb2, rbc) = (&mut ra1[1..w], &mut ra2[1..w], &mut rac[1..w], &mut rb1[1..w], &mut rb2[1..w], &mut rbc[1..w]);
+            let ((u1, ra1, rb1), (u2, ra2, rb2), (uc, rac, rbc)) = (two_rows(&mut s1, j, w), two_rows(&mut s2, j, w), two_rows(&mut cnt, j, w));
+            let (u1, ra1, rb1, u2, ra2, rb2) = (&u1[..n], &mut ra1[..n], &mut rb1[..n], &u2[..n], &mut ra2[..n], &mut rb2[..n]);
+            let (uc, rac, rbc) = (&uc[..n], &mut rac[..n], &mut rbc[..n]);
             let (mut a1, mut a2, mut ac) = (0f64, 0f64, 0u32);
             let (mut b1, mut b2, mut bc) = (0f64, 0f64, 0u32);
             for i in 0..n {
@@ -97,18 +119,12 @@ impl Plane {
                 rb2[i] = b2 + t2;
                 rbc[i] = bc + tc;
             }
-            for (a, b, c) in &rows {
-                s1.extend_from_slice(a);
-                s2.extend_from_slice(b);
-                cnt.extend_from_slice(c);
-            }
             j += 2;
         }
         if j < n {
             let (vr, mr) = (&v[j * n..j * n + n], &m[j * n..j * n + n]);
-            let (u1, u2, uc) = (&s1[j * w + 1..(j + 1) * w], &s2[j * w + 1..(j + 1) * w], &cnt[j * w + 1..(j + 1) * w]);
-            let (t1, t2, tc) = &mut rows[0];
-            let (t1, t2, tc) = (&mut t1[1..w], &mut t2[1..w], &mut tc[1..w]);
+            let ((u1, t1), (u2, t2), (uc, tc)) = (one_row(&mut s1, j, w), one_row(&mut s2, j, w), one_row(&mut cnt, j, w));
+            let (u1, t1, u2, t2, uc, tc) = (&u1[..n], &mut t1[..n], &u2[..n], &mut t2[..n], &uc[..n], &mut tc[..n]);
             let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
             for i in 0..n {
                 let x = vr[i] as f64;
@@ -119,10 +135,6 @@ impl Plane {
                 t2[i] = r2 + u2[i];
                 tc[i] = rc + uc[i];
             }
-            let (a, b, c) = &rows[0];
-            s1.extend_from_slice(a);
-            s2.extend_from_slice(b);
-            cnt.extend_from_slice(c);
         }
         Plane { n, v, m, s1, s2, cnt }
     }
@@ -537,6 +549,47 @@ mod tests {
                         assert!((g as f64 - s / c as f64).abs() < 1e-4, "({i}, {j}) d {d:?} r {r}: {g} vs {}", s / c as f64);
                     }
                 }
+            }
+        }
+    }
+
+    /// Tables are built in place in pooled buffers of the same size, whose old entries are those
+    /// of the table before: every entry must be overwritten. A plane built right after another
+    /// one (odd and even sizes: the two-row and the last-row passes) has the window sums of a
+    /// direct sum over its values, bit for bit.
+    #[test]
+    fn plane_tables_over_a_pooled_buffer_are_the_direct_sums() {
+        for n in [9usize, 10] {
+            let val = |k: usize, salt: u64| -> f32 {
+                let h = crate::rng::hash64(k as u64 ^ salt);
+                if h.is_multiple_of(7) { f32::NAN } else { (h % 1000) as f32 / 100.0 - 5.0 }
+            };
+            let first: Vec<f32> = (0..n * n).map(|k| val(k, 1)).collect();
+            drop(Plane::new(&first, n, true));
+            let f: Vec<f32> = (0..n * n).map(|k| val(k, 2)).collect();
+            let p = Plane::new(&f, n, true);
+            for (y, x, b) in [(0, 0, n), (0, 0, 1), (1, 2, 3), (n - 2, n - 2, 2), (3, 0, 5)] {
+                // The table's sums against sums of the same operands in the same order: row prefix
+                // sums plus the table row above.
+                let w = n + 1;
+                let (mut t1, mut t2, mut tc) = (vec![0f64; w * w], vec![0f64; w * w], vec![0u32; w * w]);
+                for j in 0..n {
+                    let (mut r1, mut r2, mut rc) = (0f64, 0f64, 0u32);
+                    for i in 0..n {
+                        let v = if f[j * n + i].is_nan() { 0.0 } else { f[j * n + i] as f64 };
+                        r1 += v;
+                        r2 += v * v;
+                        rc += (!f[j * n + i].is_nan()) as u32;
+                        t1[(j + 1) * w + i + 1] = r1 + t1[j * w + i + 1];
+                        t2[(j + 1) * w + i + 1] = r2 + t2[j * w + i + 1];
+                        tc[(j + 1) * w + i + 1] = rc + tc[j * w + i + 1];
+                    }
+                }
+                assert_eq!((p.s1.as_slice(), p.s2.as_slice(), p.cnt.as_slice()), (t1.as_slice(), t2.as_slice(), tc.as_slice()), "n {n}");
+                let (s1, s2, k) = p.window(x, y, b);
+                let (d1, d2, dk) = p.block_sums(x, y, b);
+                assert_eq!(k, dk);
+                assert!((s1 - d1).abs() < 1e-9 && (s2 - d2).abs() < 1e-9, "n {n} window ({x}, {y}, {b})");
             }
         }
     }
