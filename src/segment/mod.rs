@@ -138,6 +138,11 @@ pub struct SegmentParams {
     /// largest channel, at the frame's exposure): near the sun and the horizon, where the red/blue
     /// ratio of clear sky nears a cloud's.
     pub dark_cloud_min_level: f64,
+    /// Read the far field (zenith 60–85°) by what the same clouds turned out to be nearer: pairs
+    /// of far cells' features with the class read where the tracked motion later brings them
+    /// within 50°, learnt online per 5° band (`farfield`), applied in the bands where the pairs
+    /// show it reads them better than the rules.
+    pub far_field_learning: bool,
     /// Cloud fraction is counted within this zenith angle \[°\].
     pub cloud_fraction_zenith_deg: f64,
     /// Frames with a cloud fraction at most this update the learned clear-sky library.
@@ -176,6 +181,7 @@ impl Default for SegmentParams {
             // First guesses (a cloud a good eighth darker than bright clear sky), not tuned.
             dark_cloud_margin: 0.12,
             dark_cloud_min_level: 200.0,
+            far_field_learning: true,
             cloud_fraction_zenith_deg: 70.0,
             library_max_cloud_fraction: 0.02,
             library_rate: 0.2,
