@@ -142,7 +142,7 @@ impl FarCell {
 
 /// The far band holding zenith `z_deg`.
 pub fn band_of(z_deg: f32) -> Option<usize> {
-    (z_deg >= FIRST_BAND_DEG && z_deg < LAST_BAND_DEG).then(|| (((z_deg - FIRST_BAND_DEG) / BAND_DEG) as usize).min(BANDS - 1))
+    (FIRST_BAND_DEG..LAST_BAND_DEG).contains(&z_deg).then(|| (((z_deg - FIRST_BAND_DEG) / BAND_DEG) as usize).min(BANDS - 1))
 }
 
 /// What [`far_cells`] reads of one frame's map.
@@ -300,19 +300,13 @@ fn newton(w: &mut Weights, prior: &Weights, pairs: &VecDeque<Pair>, y: impl Fn(&
 }
 
 /// One far band's pairs and fit.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, Default)]
 struct Band {
     pairs: VecDeque<Pair>,
     /// `[cloudy, thick]` weights once fitted.
     fit: Option<[Weights; 2]>,
     /// Frames that contributed prequentially evaluated pairs.
     evaluated_frames: usize,
-}
-
-impl Default for Band {
-    fn default() -> Self {
-        Band { pairs: VecDeque::new(), fit: None, evaluated_frames: 0 }
-    }
 }
 
 impl Band {
@@ -550,6 +544,21 @@ mod tests {
         }
     }
 
+    /// Only whether there is cloud is the fit's: cloud the rule found keeps the rule's thickness,
+    /// cloud only the fit finds takes the fit's, and cloud the fit rejects is clear.
+    #[test]
+    fn the_fit_decides_cloud_or_clear_and_the_rule_keeps_its_thickness() {
+        let x = [0.0; D];
+        let mut thick = rule_weights();
+        thick[0][0] = 5.0;
+        thick[1][0] = 5.0;
+        assert_eq!(decide(&thick, &x, Class::Thin as u8), Class::Thin as u8);
+        assert_eq!(decide(&thick, &x, Class::Clear as u8), Class::Thick as u8);
+        let mut clear = rule_weights();
+        clear[0][0] = -5.0;
+        assert_eq!(decide(&clear, &x, Class::Thick as u8), Class::Clear as u8);
+    }
+
     /// Pairs in which the rule calls every bright far cell thick while the near field later finds
     /// it clear (the glowing sky toward a low sun): the fit learns that brightness near the clear
     /// sky's means clear, and a few pairs leave the rule in place (shrinkage).
@@ -588,8 +597,8 @@ mod tests {
         for f in 0..60 {
             let t = 30.0 * f as f64;
             let (mut m, z) = map(n, |_, _| 0);
-            for k in 0..n * n {
-                m.class[k] = if z[k] >= FIRST_BAND_DEG { Class::Thick as u8 } else { Class::Clear as u8 };
+            for (c, zk) in m.class.iter_mut().zip(&z) {
+                *c = if *zk >= FIRST_BAND_DEG { Class::Thick as u8 } else { Class::Clear as u8 };
             }
             let far: Vec<FarCell> = (0..n * n)
                 .filter(|&k| band_of(z[k]).is_some())

@@ -553,7 +553,7 @@ impl Nowcaster {
         // The far field read by what the same clouds turned out to be nearer (`farfield`), on this
         // camera's own map.
         let map = match far {
-            Some(far) => self.map_stage.far_field(&frame.time, map, &lut, far, self.plant_ray_zenith_deg(&sun, lut.grid.height_m) + crate::farfield::PLANT_RAY_MARGIN_DEG, &self.motion_stage.tracker, &self.site.file.motion),
+            Some(far) => self.map_stage.far_field(&frame.time, map, &lut, (far, self.plant_ray_zenith_deg(&sun, lut.grid.height_m) + crate::farfield::PLANT_RAY_MARGIN_DEG), &self.motion_stage.tracker, &self.site.file.motion),
             None => map,
         };
         let map = self.second_map_stage(&frame.time, map, &lut, &sun);

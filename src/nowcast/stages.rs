@@ -169,11 +169,12 @@ impl MapStage {
     }
 
     /// The far-field learner's step ([`crate::farfield::FarFieldLearner::step`]) on a frame's map
-    /// and its far cells: pairs are made and the far bands in use applied only with one tracked
-    /// layer whose motion has been accepted [`crate::farfield::MIN_CONFIRMED_RUN`] times in a row
-    /// (`tracker`'s motion as of the previous frame). Returns the map with its far cells
-    /// reclassified (the same map when none changed).
-    pub(super) fn far_field(&mut self, t: &DateTime<Utc>, map: Arc<CloudMap>, lut: &crate::cloudmap::Lut, far: Vec<crate::farfield::FarCell>, apply_from_zenith_deg: f32, tracker: &LayerTracker, mp: &crate::motion::MotionParams) -> Arc<CloudMap> {
+    /// and its far cells, with the zenith from which they may be reclassified: pairs are made and
+    /// the far bands in use applied only with one tracked layer whose motion has been accepted
+    /// [`crate::farfield::MIN_CONFIRMED_RUN`] times in a row (`tracker`'s motion as of the
+    /// previous frame). Returns the map with its far cells reclassified (the same map when none
+    /// changed).
+    pub(super) fn far_field(&mut self, t: &DateTime<Utc>, map: Arc<CloudMap>, lut: &crate::cloudmap::Lut, (far, apply_from_zenith_deg): (Vec<crate::farfield::FarCell>, f32), tracker: &LayerTracker, mp: &crate::motion::MotionParams) -> Arc<CloudMap> {
         let priors = tracker.priors();
         let motion = match priors.as_slice() {
             [one] if !self.layered && tracker.primary_accepted_run() >= crate::farfield::MIN_CONFIRMED_RUN => Some(one.v_mps),
