@@ -507,6 +507,13 @@ pub fn build_map_with(img: &image::RgbImage, lut: &Lut, sky: &CellSky, params: &
 
 /// [`build_map_with`] from the frame's pixels already gathered.
 pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> CloudMap {
+    build_map_exposed(pixels, lut, sky, params, reference).0
+}
+
+/// [`build_map_from`] with the frame's exposure against the clear-sky library's brightness
+/// (`brightness::ExposureMeter`; `None` when it was not measured), which the far-field learner
+/// (`farfield`) reads its brightness feature against.
+pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> (CloudMap, Option<f32>) {
     let n = lut.pixel.len();
     let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] };
     // Nearest-pixel reading where clipping is judged (the sample's glare rings, and cells near the
@@ -567,7 +574,7 @@ pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &Se
             if *c == thin && *s >= lo && *s < hi { (s - lo) / (hi - lo) } else { 0.5 }
         })
         .collect();
-    CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }
+    (CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }, fr.exposure)
 }
 
 #[cfg(test)]

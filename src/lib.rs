@@ -60,6 +60,7 @@ pub mod clearsky;
 pub mod cloudmap;
 pub mod config;
 pub mod distance;
+pub mod farfield;
 pub mod forecast;
 pub mod intake;
 pub mod fixed_text;

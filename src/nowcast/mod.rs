@@ -362,6 +362,7 @@ impl Nowcaster {
         let (note, verdict) = self.frame_qc.judge_clock(time, now, self.site.file.qc.max_ahead_of_clock_s);
         if note.is_some() {
             self.motion_stage.history.clear();
+            self.map_stage.reset_far_field();
             self.counters.clock_reanchors += 1;
         }
         verdict.map_err(|r| self.reject(r))?;
@@ -544,11 +545,17 @@ impl Nowcaster {
         self.frame_qc.check_exposure(&pixels, &lut, &self.site.file.qc)?;
         let t_qc = Clock::now();
         let disk = crate::sundisk::observe(&frame.image, cam, obstruction, &sun, self.site.file.irradiance.sun_disk_radius_deg, self.site.file.segment.saturation_level);
-        let (map, [cf, thin_cf]) = self.map_stage.build(&pixels, &lut, &sun, &self.site.file.segment);
+        let (map, [cf, thin_cf], far) = self.map_stage.build(&pixels, &lut, &sun, &self.site.file.segment);
         drop(pixels);
         // The sun's record reads this camera's own map, before the second camera fills it.
         let seen = disk.and_then(|d| crate::sundisk::SunThroughCloud::read(d, &map, &lut, &sun));
         self.forecast_stage.observe_sun(&self.site.file.irradiance, seen);
+        // The far field read by what the same clouds turned out to be nearer (`farfield`), on this
+        // camera's own map.
+        let map = match far {
+            Some(far) => self.map_stage.far_field(&frame.time, map, &lut, (far, self.plant_ray_zenith_deg(&sun, lut.grid.height_m) + crate::farfield::PLANT_RAY_MARGIN_DEG), &self.motion_stage.tracker, &self.site.file.motion),
+            None => map,
+        };
         let map = self.second_map_stage(&frame.time, map, &lut, &sun);
         let t_map = Clock::now();
         let dt_s = self.frame_qc.since_last_s(&frame.time);
@@ -676,6 +683,21 @@ impl Nowcaster {
             altitude_m: self.site.file.site.elevation_m,
             model: self.site.clear_sky_model(),
         })
+    }
+
+    /// The largest zenith angle \[°\] at which the camera sees a point where the sun's ray to one
+    /// of the plant's points crosses the map's plane (`plane_above_camera_m` above the camera): the
+    /// cells the current state reads, which the far-field learner leaves to the rules
+    /// ([`crate::farfield::PLANT_RAY_MARGIN_DEG`]). 0 with the sun below the horizon.
+    fn plant_ray_zenith_deg(&self, sun: &SunPosition, plane_above_camera_m: f64) -> f32 {
+        let d = sun.direction_enu();
+        if d[2] <= 0.0 {
+            return 0.0;
+        }
+        let cam = self.site.file.camera.position_m;
+        let reach = [plane_above_camera_m * d[0] / d[2], plane_above_camera_m * d[1] / d[2]];
+        let far_m = self.plant.blocks.iter().flat_map(|b| &b.points_m).map(|p| (p[0] + reach[0] - cam[0]).hypot(p[1] + reach[1] - cam[1])).fold(0.0, f64::max);
+        far_m.atan2(plane_above_camera_m).to_degrees() as f32
     }
 
     /// Move the map's plane for the next frame when the layers' estimated bases (`layers`: the

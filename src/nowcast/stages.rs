@@ -7,7 +7,7 @@ use std::sync::Arc;
 use chrono::{DateTime, Utc};
 
 use super::{Rejection, SUN_ANGLE_REUSE_DEG};
-use crate::cloudmap::{CellPixels, CloudMap, LutCache, build_map_from};
+use crate::cloudmap::{CellPixels, CloudMap, LutCache, build_map_exposed};
 use crate::forecast::{IrradianceParams, TransmittanceMap};
 use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, TrackedLayer, label_layers_with, measure_layers};
 use crate::segment::Reference;
@@ -109,6 +109,10 @@ pub(super) struct MapStage {
     /// (`segment.distant_contrast`) takes the cloud field as alike across the sky, which a veil over
     /// cumulus is not, so it rests while two layers are tracked.
     pub(super) layered: bool,
+    /// The far-field learner (`segment.far_field_learning`, [`crate::farfield`]).
+    far_field: crate::farfield::FarFieldLearner,
+    /// What it did at the newest frame.
+    pub(super) far_outcome: crate::farfield::FarOutcome,
 }
 
 impl MapStage {
@@ -124,7 +128,10 @@ impl MapStage {
 
     /// The cloud map of a frame and its cover `[cloud, thin]`; a nearly clear frame also teaches
     /// the clear-sky reference.
-    pub(super) fn build(&mut self, pixels: &CellPixels, lut: &Arc<crate::cloudmap::Lut>, sun: &SunPosition, sp: &crate::segment::SegmentParams) -> (Arc<CloudMap>, [f64; 2]) {
+    ///
+    /// With `segment.far_field_learning` it also returns the map's far cells' features
+    /// ([`crate::farfield::far_cells`]) for [`MapStage::far_field`].
+    pub(super) fn build(&mut self, pixels: &CellPixels, lut: &Arc<crate::cloudmap::Lut>, sun: &SunPosition, sp: &crate::segment::SegmentParams) -> (Arc<CloudMap>, [f64; 2], Option<Vec<crate::farfield::FarCell>>) {
         let sd = sun.direction_enu();
         let sd3 = [sd[0] as f32, sd[1] as f32, sd[2] as f32];
         let sun_dir = Some(sd3);
@@ -148,13 +155,40 @@ impl MapStage {
         } else {
             sp
         };
-        let map = Arc::new(build_map_from(pixels, lut, sky, map_sp, &self.reference));
+        let (map, exposure) = build_map_exposed(pixels, lut, sky, map_sp, &self.reference);
+        let far = sp.far_field_learning.then(|| {
+            crate::farfield::far_cells(&crate::farfield::FrameCells { map: &map, z_deg: &lut.z_deg, gamma_deg: &sky.gamma_deg, bin: &sky.bin, rgb: &pixels.plain, reference: &self.reference, exposure })
+        });
+        let map = Arc::new(map);
         let [cf, thin_cf] = map.cover(lut, sp.cloud_fraction_zenith_deg as f32);
         let sample = (0..lut.pixel.len())
             .filter(|&k| lut.pixel[k] != crate::cloudmap::NO_PIXEL)
             .map(|k| (pixels.nearest[k], crate::segment::PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] }));
         self.reference.learn_if_clear(sp, cf, sample);
-        (map, [cf, thin_cf])
+        (map, [cf, thin_cf], far)
+    }
+
+    /// The far-field learner's step ([`crate::farfield::FarFieldLearner::step`]) on a frame's map
+    /// and its far cells, with the zenith from which they may be reclassified: pairs are made and
+    /// the far bands in use applied only with one tracked layer whose motion has been accepted
+    /// [`crate::farfield::MIN_CONFIRMED_RUN`] times in a row (`tracker`'s motion as of the
+    /// previous frame). Returns the map with its far cells reclassified (the same map when none
+    /// changed).
+    pub(super) fn far_field(&mut self, t: &DateTime<Utc>, map: Arc<CloudMap>, lut: &crate::cloudmap::Lut, (far, apply_from_zenith_deg): (Vec<crate::farfield::FarCell>, f32), tracker: &LayerTracker, mp: &crate::motion::MotionParams) -> Arc<CloudMap> {
+        let priors = tracker.priors();
+        let motion = match priors.as_slice() {
+            [one] if !self.layered && tracker.primary_accepted_run() >= crate::farfield::MIN_CONFIRMED_RUN => Some(one.v_mps),
+            _ => None,
+        };
+        let mut out = CloudMap::clone(&map);
+        let step = crate::farfield::FarStep { time_s: t.timestamp_millis() as f64 / 1000.0, map: &map, z_deg: &lut.z_deg, far, motion_mps: motion, max_gap_s: mp.max_gap_s, apply_from_zenith_deg };
+        self.far_outcome = self.far_field.step(step, &mut out);
+        if self.far_outcome.changed > 0 { Arc::new(out) } else { map }
+    }
+
+    /// Forget the far-field learner's history (the map history was dropped).
+    pub(super) fn reset_far_field(&mut self) {
+        self.far_field.reset();
     }
 }
 

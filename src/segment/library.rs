@@ -137,6 +137,12 @@ impl Reference {
         self.weight.iter().filter(|w| **w > 0.5).count()
     }
 
+    /// The learned clear sky's brightness in library bin `bin` (largest channel, 8 bit), when that
+    /// bin has been learned.
+    pub fn clear_brightness(&self, bin: usize) -> Option<f32> {
+        (self.weight.get(bin).is_some_and(|w| *w > 0.5) && self.bright[bin] > 0.0).then(|| self.bright[bin])
+    }
+
     /// The reference for one frame from a sample of its sky pixels.
     pub fn for_frame<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom)>) -> FrameReference<'a> {
         self.for_frame_with(params, sample.map(|(rgb, g)| (rgb, g, params.default_reference(g.z_deg, g.gamma_deg))))
