@@ -296,6 +296,8 @@ fn broken_end_to_end_with_calibrated_camera() {
 fn two_layers_end_to_end_with_calibrated_camera() {
     let (e, _, elapsed) = end_to_end_with_calibrated_camera("nuisance-two-layer");
     let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
+    let one = e.plant.iter().find(|h| h.horizon_s == 60).map_or((f64::NAN, f64::NAN), |h| (h.rmse_wm2, h.rmse_persistence_wm2));
+    eprintln!("nuisance-two-layer with the calibrated camera: 1-minute RMSE {:.1} W/m² against smart persistence's {:.1}", one.0, one.1);
     eprintln!(
         "nuisance-two-layer with the calibrated camera ({elapsed:.1} s): skill 5/10/15 min {:.3} {:.3} {:.3} | motion (the forecast's first layer against the lower true layer) speed err {:.2} m/s dir err {:.1}°, second layer found in {:.0} % of frames",
         sk(5),
