@@ -115,13 +115,16 @@ pub fn observe_glare(image: &image::RgbImage, cam: &Camera, obstruction: Option<
     if rings.iter().map(|r| r.0).sum::<usize>() < MIN_DISK_PIXELS {
         return None;
     }
-    let mut radius = 0.0;
     // A ring with no pixel (finer than the pixels near the sun) goes with the ring outside it.
-    for (n, c) in rings {
+    let mut radius = 0.0;
+    for (i, (n, c)) in rings.into_iter().enumerate() {
+        if n == 0 {
+            continue;
+        }
         if 2 * c < n {
             break;
         }
-        radius += RING_STEP_DEG;
+        radius = (i + 1) as f64 * RING_STEP_DEG;
     }
     Some(radius)
 }
