@@ -51,6 +51,19 @@ pub const MIN_DISK_PIXELS: usize = 5;
 /// [`MIN_DISK_PIXELS`] open pixels lie within the radius (a mast in front of the sun, or a frame
 /// too coarse for the radius).
 pub fn observe(image: &image::RgbImage, cam: &Camera, obstruction: Option<&image::GrayImage>, sun: &SunPosition, radius_deg: f64, saturation_level: u8) -> Option<SunDisk> {
+    let rings = clipped_rings(image, cam, obstruction, sun, radius_deg, saturation_level)?;
+    let (n, clipped) = rings.iter().fold((0, 0), |(n, c), r| (n + r.0, c + r.1));
+    (n >= MIN_DISK_PIXELS).then(|| SunDisk { clipped_share: clipped as f64 / n as f64, pixels: n })
+}
+
+/// Width of the rings [`clipped_rings`] counts in \[°\].
+pub const RING_STEP_DEG: f64 = 0.1;
+
+/// Open-sky pixels within `radius_deg` of the sun's direction and how many of them have all
+/// three channels at least `saturation_level` (as [`observe`] reads them), by rings of
+/// [`RING_STEP_DEG`] out from the sun, innermost first; `None` when the sun is below the horizon
+/// or outside the image, or the frame is not the camera's size.
+fn clipped_rings(image: &image::RgbImage, cam: &Camera, obstruction: Option<&image::GrayImage>, sun: &SunPosition, radius_deg: f64, saturation_level: u8) -> Option<Vec<(usize, usize)>> {
     if sun.apparent_zenith_rad >= std::f64::consts::FRAC_PI_2 || image.width() != cam.width_px || image.height() != cam.height_px {
         return None;
     }
@@ -64,23 +77,139 @@ pub fn observe(image: &image::RgbImage, cam: &Camera, obstruction: Option<&image
     let radius_rad = radius_deg.to_radians();
     let reach = (scale * radius_rad).ceil() as i64 + 1;
     let cos_max = radius_rad.cos();
-    let (mut n, mut clipped) = (0usize, 0usize);
+    let mut rings = vec![(0usize, 0usize); (radius_deg / RING_STEP_DEG).ceil().max(1.0) as usize];
+    let last = rings.len() - 1;
     let (cx, cy) = (sx.round() as i64, sy.round() as i64);
     for y in (cy - reach).max(0)..=(cy + reach).min(cam.height_px as i64 - 1) {
         for x in (cx - reach).max(0)..=(cx + reach).min(cam.width_px as i64 - 1) {
             let Some(d) = cam.unproject_enu(x as f64, y as f64) else { continue };
-            if d[0] * d_sun[0] + d[1] * d_sun[1] + d[2] * d_sun[2] < cos_max {
+            let cos_g = d[0] * d_sun[0] + d[1] * d_sun[1] + d[2] * d_sun[2];
+            if cos_g < cos_max {
                 continue;
             }
             if obstruction.is_some_and(|m| m.get_pixel_checked(x as u32, y as u32).map(|p| p.0[0] <= 127).unwrap_or(true)) {
                 continue;
             }
-            n += 1;
+            let r = &mut rings[((cos_g.clamp(-1.0, 1.0).acos().to_degrees() / RING_STEP_DEG) as usize).min(last)];
+            r.0 += 1;
             let p = image.get_pixel(x as u32, y as u32).0;
-            clipped += (p[0] >= saturation_level && p[1] >= saturation_level && p[2] >= saturation_level) as usize;
+            r.1 += (p[0] >= saturation_level && p[1] >= saturation_level && p[2] >= saturation_level) as usize;
         }
     }
-    (n >= MIN_DISK_PIXELS).then(|| SunDisk { clipped_share: clipped as f64 / n as f64, pixels: n })
+    Some(rings)
+}
+
+/// Angle from the sun \[°\] out to which [`observe_glare`] reads the clipped glare: wide enough to
+/// hold the clipped glare of a clear sun on the project's cameras (1.5–3° across), so that its
+/// growth with the beam is seen.
+pub const GLARE_READ_DEG: f64 = 4.0;
+
+/// The clipped glare's radius around the sun \[°\]: rings of [`RING_STEP_DEG`] out from the sun's
+/// direction count as clipped while at least half of each ring's open-sky pixels are, out to
+/// [`GLARE_READ_DEG`] (`None` as for [`observe`]: fewer than [`MIN_DISK_PIXELS`] open pixels).
+/// Read by rings, a bright cloud edge clipped on one side of the sun does not widen the glare:
+/// only what surrounds the sun does. A measure of the direct beam along the camera's line of
+/// sight ([`SunLineBeam`]).
+pub fn observe_glare(image: &image::RgbImage, cam: &Camera, obstruction: Option<&image::GrayImage>, sun: &SunPosition, saturation_level: u8) -> Option<f64> {
+    let rings = clipped_rings(image, cam, obstruction, sun, GLARE_READ_DEG, saturation_level)?;
+    if rings.iter().map(|r| r.0).sum::<usize>() < MIN_DISK_PIXELS {
+        return None;
+    }
+    // A ring with no pixel (finer than the pixels near the sun) goes with the ring outside it.
+    let mut radius = 0.0;
+    for (i, (n, c)) in rings.into_iter().enumerate() {
+        if n == 0 {
+            continue;
+        }
+        if 2 * c < n {
+            break;
+        }
+        radius = (i + 1) as f64 * RING_STEP_DEG;
+    }
+    Some(radius)
+}
+
+/// The direct beam's transmittance along the camera's line of sight to the sun, from the size of
+/// the clipped glare around it.
+///
+/// # Method
+/// The circumsolar radiance a few degrees from the sun is light scattered forward out of the
+/// direct beam (by aerosol, and by a veil of thin cloud), so at a given angle it scales with the
+/// beam that reaches the scatterers: `L(θ) = T · L₁(θ)` with `T` the beam transmittance of what
+/// lies in front of the sun. Over the few degrees that clip, that profile falls roughly as `θ⁻²`
+/// (the aureole's usual slope; from memory, no source). The pixels clip where `L(θ)` exceeds
+/// the sensor's saturation, out to `θ_c ∝ T^½`, so the clipped solid angle `∝ θ_c² ∝ T`: the
+/// beam's transmittance is the clipped area over the clear sun's. The clear sun's radius is the
+/// median over the last [`SunLineBeam::WINDOW`] frames with clear sky around the sun (the sun's
+/// height changes slowly within them); the estimate is capped at 1. Behind thick cloud nothing
+/// clips and `T` is 0; under a veil the clipped region shrinks with the veil's optical depth
+/// (Beer–Lambert: the beam `T = exp(−τ / cos z)`), so the measurement follows a veil's
+/// transmittance continuously where the disk's own visibility ([`SunDisk::hidden`]) only says
+/// whether any beam passes. Without frames of clear sky around the sun there is no estimate.
+#[derive(Debug, Clone, Default)]
+pub struct SunLineBeam {
+    /// Clipped radii \[°\] of the recent frames with clear sky around the sun.
+    clear_radius_deg: std::collections::VecDeque<f64>,
+}
+
+impl SunLineBeam {
+    /// Frames with clear sky around the sun kept for the reference.
+    pub const WINDOW: usize = 120;
+    /// Frames with clear sky around the sun needed for a reference.
+    pub const MIN_CLEAR_FRAMES: usize = 3;
+    /// Most cloudy share of the known cells within [`SUN_RING_DEG`] of the sun for a frame to
+    /// count as clear there.
+    pub const CLEAR_RING_MAX_CLOUD: f64 = 0.1;
+
+    /// Add a frame's clipped radius ([`observe_glare`]) with the cloudy share of the known cells
+    /// around the sun ([`ring_cloud_share`]), and give this frame's beam transmittance (`None`
+    /// before [`Self::MIN_CLEAR_FRAMES`] frames with clear sky at the sun are held).
+    pub fn observe(&mut self, radius_deg: f64, ring_cloud: Option<f64>) -> Option<f64> {
+        if ring_cloud.is_some_and(|c| c <= Self::CLEAR_RING_MAX_CLOUD) {
+            self.clear_radius_deg.push_back(radius_deg);
+            while self.clear_radius_deg.len() > Self::WINDOW {
+                self.clear_radius_deg.pop_front();
+            }
+        }
+        self.transmittance(radius_deg)
+    }
+
+    /// Beam transmittance of a frame whose glare clipped out to `radius_deg`: the clipped solid
+    /// angle over the clear sun's, `(r / r_clear)²`, at most 1, with `r_clear` the median radius
+    /// of the kept frames with clear sky around the sun (bright cloud around the sun widens the
+    /// clipped region too, by raising what the glare adds to, so the reference is taken where
+    /// there is none).
+    pub fn transmittance(&self, radius_deg: f64) -> Option<f64> {
+        if self.clear_radius_deg.len() < Self::MIN_CLEAR_FRAMES {
+            return None;
+        }
+        let mut v: Vec<f64> = self.clear_radius_deg.iter().copied().collect();
+        v.sort_by(f64::total_cmp);
+        let reference = v[v.len() / 2];
+        (reference > 0.0).then(|| (radius_deg / reference).powi(2).min(1.0))
+    }
+}
+
+/// Cloudy share (thin or thick) of the map's known cells within [`SUN_RING_DEG`] of the sun;
+/// `None` with fewer than [`MIN_RING_CELLS`] known cells there.
+pub fn ring_cloud_share(map: &crate::cloudmap::CloudMap, lut: &crate::cloudmap::Lut, sun: &SunPosition) -> Option<f64> {
+    use crate::segment::Class;
+    let d = sun.direction_enu().map(|v| v as f32);
+    let cos_ring = SUN_RING_DEG.to_radians().cos();
+    let (mut known, mut cloudy) = (0usize, 0usize);
+    for (k, c) in map.class.iter().enumerate() {
+        let Some(u) = lut.dir.get(k) else { break };
+        if u[0] * d[0] + u[1] * d[1] + u[2] * d[2] < cos_ring {
+            continue;
+        }
+        match Class::from_u8(*c) {
+            Class::Unknown => continue,
+            Class::Clear => {}
+            Class::Thin | Class::Thick => cloudy += 1,
+        }
+        known += 1;
+    }
+    (known >= MIN_RING_CELLS).then(|| cloudy as f64 / known as f64)
 }
 
 /// Angle from the sun \[°\] within which the map's known cells say what cloud the sun is in.
@@ -218,6 +347,26 @@ mod tests {
         assert_eq!(observe(&img, &cam, None, &sun_at(95.0, 135.0), 1.0, 250), None);
         // A frame of the wrong size is not read.
         assert_eq!(observe(&image::RgbImage::new(100, 100), &cam, None, &sun, 1.0, 250), None);
+    }
+
+    /// The clipped radius grows with the clipped disc, and the beam is the clipped area over the
+    /// clear sun's (the median of the frames with clear sky around the sun).
+    #[test]
+    fn the_clipped_glare_measures_the_beam() {
+        let cam = Camera::ideal(512);
+        let sun = sun_at(40.0, 135.0);
+        let r = |deg: f64| observe_glare(&frame_with_disc(&cam, &sun, deg, 255), &cam, None, &sun, 250).unwrap();
+        let (small, large) = (r(1.0), r(2.5));
+        assert!((small - 1.0).abs() <= 0.2 && (large - 2.5).abs() <= 0.2, "{small} {large}");
+        assert_eq!(r(-1.0), 0.0, "nothing clipped: the sun hidden");
+        let mut b = SunLineBeam::default();
+        assert_eq!(b.observe(2.0, Some(0.5)), None, "no clear frame yet");
+        for _ in 0..3 {
+            b.observe(2.0, Some(0.0));
+        }
+        assert_eq!(b.transmittance(2.0), Some(1.0));
+        assert!((b.transmittance(1.0).unwrap() - 0.25).abs() < 1e-12);
+        assert_eq!(b.transmittance(3.0), Some(1.0), "capped at 1");
     }
 
     #[test]

@@ -165,6 +165,16 @@ pub struct IrradianceParams {
     /// Only the forecast's tables and the tuning's look-ups read the fill; the motion measures the
     /// map as seen. Off (the default): glare cells take their neighbours' shares only.
     pub glare_fill_from_history: bool,
+    /// The beam measured along the camera's own line of sight to the sun, from the size of its
+    /// clipped glare ([`crate::sundisk::SunLineBeam`]), is the beam transmittance of the cells
+    /// within [`crate::sundisk::SUN_RING_DEG`] of the sun that are not thick cloud (the glare,
+    /// clear and thin: a veil there) in the forecast's tables (as the mix of the clear and thick
+    /// classes that passes it), before the fill; thick cells keep their class. With two layers it
+    /// is put on the layer whose cloud is more often thin (a veil), the other layer's table
+    /// taking those cells as clear. The tables move with each layer's motion, so the measured
+    /// beam is carried downstream with the layer. Off (the default): the glare takes its
+    /// neighbours' shares. Figures in README ("The beam along the camera's sun line").
+    pub sun_line_beam: bool,
     /// The oldest earlier map [s] the glare fill takes a cell from (the engine keeps maps up to
     /// `motion.max_gap_s`, longer ones are not at hand).
     pub glare_fill_max_age_s: f64,
@@ -196,6 +206,7 @@ impl Default for IrradianceParams {
             tune_bias_with_two_layers: true,
             thin_beam_from_score: false,
             glare_fill_from_history: false,
+            sun_line_beam: false,
             // The motion's gap limit: a cloud is taken as frozen over the same span the motion
             // is measured over (own choice).
             glare_fill_max_age_s: 180.0,

@@ -63,6 +63,14 @@ impl TransmittanceMap {
     /// One piece on purpose: the class shares, the brightness feature and the inward fill of
     /// glare cells are built in passes over the same per-cell buffers, once per frame and layer.
     pub fn for_layer(map: &CloudMap, p: &IrradianceParams, layer: Option<(&[u8], u8)>) -> TransmittanceMap {
+        Self::for_layer_with(map, p, layer, None)
+    }
+
+    /// [`TransmittanceMap::for_layer`] with the cells of `patch` given fixed features (whatever
+    /// the map says of them), before the fill: the fill then spreads them into the rest of the
+    /// glare. Used for the beam measured along the camera's line of sight to the sun
+    /// ([`IrradianceParams::sun_line_beam`]).
+    pub fn for_layer_with(map: &CloudMap, p: &IrradianceParams, layer: Option<(&[u8], u8)>, patch: Option<(&[usize], [f32; FEATURES])>) -> TransmittanceMap {
         let n = map.grid.n;
         let relabelled: Option<Vec<u8>> = layer.map(|(labels, l)| {
             let (thin, thick) = (Class::Thin as u8, Class::Thick as u8);
@@ -122,6 +130,15 @@ impl TransmittanceMap {
         }
         for &k in &front {
             state[k] = 1;
+        }
+        if let Some((cells, features)) = patch {
+            for &k in cells.iter().filter(|&&k| k < n * n && in_view(k)) {
+                if state[k] < FILLED {
+                    state[k] = FILLED + filled.len() as u32;
+                    filled.push(features);
+                    front.push_back(k);
+                }
+            }
         }
         while let Some(k) = front.pop_front() {
             for m in neighbours(k) {

@@ -47,6 +47,9 @@ pub(super) struct ForecastStage {
     /// thin cloud around the sun let its disk show ([`crate::sundisk::ThinCloudVisibility`]).
     prior: IrradianceParams,
     thin_visibility: crate::sundisk::ThinCloudVisibility,
+    /// The clear sun's glare, for the beam along the camera's sun line
+    /// ([`IrradianceParams::sun_line_beam`]).
+    pub(super) sun_line: crate::sundisk::SunLineBeam,
     /// Whether the tuning has given a solution since the start (or the last reset).
     tuned: bool,
 }
@@ -54,7 +57,7 @@ pub(super) struct ForecastStage {
 impl ForecastStage {
     /// Start from the site's configured transmittances.
     pub(super) fn new(configured: IrradianceParams) -> ForecastStage {
-        ForecastStage { irradiance: configured, tuner: Tuner::default(), prior: configured, thin_visibility: Default::default(), tuned: false }
+        ForecastStage { irradiance: configured, tuner: Tuner::default(), prior: configured, thin_visibility: Default::default(), sun_line: Default::default(), tuned: false }
     }
 
     /// The transmittances in use.
@@ -91,6 +94,7 @@ impl ForecastStage {
         self.irradiance = configured;
         self.prior = configured;
         self.thin_visibility = Default::default();
+        self.sun_line = Default::default();
         self.tuned = false;
         tuned
     }

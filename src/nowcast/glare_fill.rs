@@ -55,9 +55,66 @@ pub fn fill_glare_from_history<'a>(map: &CloudMap, earlier: impl IntoIterator<It
     (!filled.is_empty()).then_some((out, filled))
 }
 
+/// The cells the beam measured along the camera's sun line is put on
+/// ([`crate::forecast::IrradianceParams::sun_line_beam`]): the cells in view within
+/// [`crate::sundisk::SUN_RING_DEG`] of the sun's direction `sun_d` that are not thick cloud (the
+/// glare, and the clear and thin classes, which near the sun the forward-scattered light whitens
+/// alike; `dirs`: each cell's direction from the camera, the map's look-up table). Thick cells
+/// keep their class: a cumulus there shades with its own transmittance.
+pub fn sun_line_cells(map: &CloudMap, dirs: &[[f32; 3]], sun_d: [f64; 3]) -> Vec<usize> {
+    let cos_ring = crate::sundisk::SUN_RING_DEG.to_radians().cos();
+    let d = sun_d.map(|v| v as f32);
+    (0..map.class.len().min(dirs.len()))
+        .filter(|&k| {
+            let u = dirs[k];
+            map.in_view.get(k).copied().unwrap_or(false) && Class::from_u8(map.class[k]) != Class::Thick && u[0] * d[0] + u[1] * d[1] + u[2] * d[2] >= cos_ring
+        })
+        .collect()
+}
+
+/// The table features of a cell passing beam transmittance `t`: the mix of the clear and thick
+/// classes whose beam at `beams` (clear, thin, thick, brightness) is `t` (clamped to the two).
+pub fn sun_line_features(t: f64, beams: [f64; 4]) -> [f32; 4] {
+    let span = beams[0] - beams[2];
+    let w = if span > 1e-9 { ((t - beams[2]) / span).clamp(0.0, 1.0) } else { 1.0 };
+    [w as f32, 0.0, (1.0 - w) as f32, 0.0]
+}
+
+/// With two layers (`labels`), the layer whose cloudy cells are more often thin: the veil, which
+/// carries the sun line's beam (a cumulus layer under it is thick where it is cloud).
+pub fn veil_layer(map: &CloudMap, labels: &[u8]) -> u8 {
+    let mut thin = [0usize; 2];
+    let mut cloudy = [0usize; 2];
+    for (c, l) in map.class.iter().zip(labels) {
+        let l = (*l as usize).min(1);
+        match Class::from_u8(*c) {
+            Class::Thin => {
+                thin[l] += 1;
+                cloudy[l] += 1;
+            }
+            Class::Thick => cloudy[l] += 1,
+            _ => {}
+        }
+    }
+    let share = |l: usize| if cloudy[l] > 0 { thin[l] as f64 / cloudy[l] as f64 } else { 0.0 };
+    u8::from(share(1) > share(0))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn the_sun_line_beam_is_a_mix_of_clear_and_thick() {
+        let beams = [1.0, 0.45, 0.05, 0.0];
+        for t in [0.05, 0.3, 0.7, 1.0] {
+            let f = sun_line_features(t, beams);
+            let b: f64 = f.iter().zip(beams).map(|(s, b)| *s as f64 * b).sum();
+            assert!((b - t).abs() < 1e-6 && (f[0] + f[2] - 1.0).abs() < 1e-6, "{t}: {f:?}");
+        }
+        assert_eq!(sun_line_features(1.5, beams), [1.0, 0.0, 0.0, 0.0]);
+        assert_eq!(sun_line_features(0.0, beams), [0.0, 0.0, 1.0, 0.0]);
+    }
     use crate::cloudmap::Grid;
 
     fn map(n: usize, class: impl Fn(usize, usize) -> Class) -> CloudMap {

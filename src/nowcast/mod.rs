@@ -13,7 +13,7 @@ use crate::io::{InputError, Measurements, Series, fmt_time};
 use crate::plant::Plant;
 use crate::segment::Reference;
 use crate::sun::SunPosition;
-use stages::{FrameQcStage, MapStage, MotionStage, layer_labels, layer_tables};
+use stages::{FrameQcStage, MapStage, MotionStage, layer_labels};
 use forecast_stages::{EnsembleStage, ForecastStage, SiteInputs};
 
 mod forecast_stages;
@@ -556,6 +556,15 @@ impl Nowcaster {
             Some(far) => self.map_stage.far_field(&frame.time, map, &lut, (far, self.plant_ray_zenith_deg(&sun, lut.grid.height_m) + crate::farfield::PLANT_RAY_MARGIN_DEG), &self.motion_stage.tracker, &self.site.file.motion),
             None => map,
         };
+        // With `sun_line_beam`, the beam measured along the camera's sun line and the cells around the
+        // sun that carry it.
+        let sun_line = if self.site.file.irradiance.sun_line_beam {
+            crate::sundisk::observe_glare(&frame.image, cam, obstruction, &sun, self.site.file.segment.saturation_level)
+                .and_then(|r| self.forecast_stage.sun_line.observe(r, crate::sundisk::ring_cloud_share(&map, &lut, &sun)))
+                .map(|t| (glare_fill::sun_line_cells(&map, &lut.dir, sun.direction_enu()), t))
+        } else {
+            None
+        };
         let map = self.second_map_stage(&frame.time, map, &lut, &sun);
         let t_map = Clock::now();
         let dt_s = self.frame_qc.since_last_s(&frame.time);
@@ -583,11 +592,28 @@ impl Nowcaster {
         let tune_map = glare_filled.first().map_or(&*map, |(m, _)| m);
         self.forecast_stage.tune(cx, &frame.time, &sun, tune_map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
         let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), upper, &moved.layers, [cf, thin_cf]);
-        let tms = match (glare_filled.as_slice(), labels.as_deref()) {
-            ([], _) => layer_tables(&map, labels.as_deref(), &input.params),
-            ([(m, _)], None) => vec![crate::forecast::TransmittanceMap::new(m, &input.params)],
-            (views, _) => views.iter().enumerate().map(|(l, (m, lb))| crate::forecast::TransmittanceMap::for_layer(m, &input.params, lb.as_deref().map(|lb| (lb, l as u8)))).collect(),
+        // Each layer's view of the map: the map itself, or its glare filled from the kept maps.
+        let views: Vec<(&CloudMap, Option<&[u8]>)> = match (glare_filled.as_slice(), labels.as_deref()) {
+            ([], Some(lb)) => vec![(&*map, Some(lb)), (&*map, Some(lb))],
+            ([], None) => vec![(&*map, None)],
+            ([(m, _)], None) => vec![(m, None)],
+            (views, _) => views.iter().map(|(m, lb)| (m, lb.as_deref())).collect(),
         };
+        let veil = match (views.len(), labels.as_deref()) {
+            (2.., Some(lb)) => Some(glare_fill::veil_layer(&map, lb)),
+            _ => None,
+        };
+        let tms: Vec<_> = views
+            .iter()
+            .enumerate()
+            .map(|(l, (m, lb))| {
+                let patch = sun_line.as_ref().map(|(cells, t)| {
+                    let t = if veil.is_none_or(|v| v as usize == l) { *t } else { f64::INFINITY };
+                    (cells.as_slice(), glare_fill::sun_line_features(t, input.params.beams()))
+                });
+                crate::forecast::TransmittanceMap::for_layer_with(m, &input.params, lb.map(|lb| (lb, l as u8)), patch)
+            })
+            .collect();
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();

@@ -8,7 +8,6 @@ use chrono::{DateTime, Utc};
 
 use super::{Rejection, SUN_ANGLE_REUSE_DEG};
 use crate::cloudmap::{CellPixels, CloudMap, LutCache, build_map_exposed};
-use crate::forecast::{IrradianceParams, TransmittanceMap};
 use crate::motion::{LayerTracker, MapFeatures, MotionMeasurement, TrackedLayer, label_layers_with, measure_layers};
 use crate::segment::Reference;
 use crate::sun::SunPosition;
@@ -279,14 +278,5 @@ pub(super) fn layer_labels(map: &CloudMap, moved: &Moved, radius_cells: usize) -
             Some(moved.measurement.as_ref().and_then(|m| m.labels_for(v0, v1)).unwrap_or_else(|| label_layers_with(pf.feature(), moved.features.feature(), map, *age_s, &[v0, v1], radius_cells)))
         }
         _ => None,
-    }
-}
-
-/// The transmittance tables: one for a single layer; with two layers ([`layer_labels`]) each
-/// cloudy cell goes with its layer, and each layer's cloud is advected by its own motion.
-pub(super) fn layer_tables(map: &CloudMap, labels: Option<&[u8]>, params: &IrradianceParams) -> Vec<TransmittanceMap> {
-    match labels {
-        Some(labels) => vec![TransmittanceMap::for_layer(map, params, Some((labels, 0))), TransmittanceMap::for_layer(map, params, Some((labels, 1)))],
-        None => vec![TransmittanceMap::new(map, params)],
     }
 }
