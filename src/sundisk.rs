@@ -193,10 +193,23 @@ impl SunLineBeam {
 /// Cloudy share (thin or thick) of the map's known cells within [`SUN_RING_DEG`] of the sun;
 /// `None` with fewer than [`MIN_RING_CELLS`] known cells there.
 pub fn ring_cloud_share(map: &crate::cloudmap::CloudMap, lut: &crate::cloudmap::Lut, sun: &SunPosition) -> Option<f64> {
+    let RingCounts { known, thin, thick } = ring_counts(map, lut, sun);
+    let cloudy = thin + thick;
+    (known >= MIN_RING_CELLS).then(|| cloudy as f64 / known as f64)
+}
+
+/// The map's known cells within [`SUN_RING_DEG`] of the sun, and the thin and thick ones among them.
+struct RingCounts {
+    known: usize,
+    thin: usize,
+    thick: usize,
+}
+
+fn ring_counts(map: &crate::cloudmap::CloudMap, lut: &crate::cloudmap::Lut, sun: &SunPosition) -> RingCounts {
     use crate::segment::Class;
     let d = sun.direction_enu().map(|v| v as f32);
     let cos_ring = SUN_RING_DEG.to_radians().cos();
-    let (mut known, mut cloudy) = (0usize, 0usize);
+    let mut n = RingCounts { known: 0, thin: 0, thick: 0 };
     for (k, c) in map.class.iter().enumerate() {
         let Some(u) = lut.dir.get(k) else { break };
         if u[0] * d[0] + u[1] * d[1] + u[2] * d[2] < cos_ring {
@@ -205,11 +218,12 @@ pub fn ring_cloud_share(map: &crate::cloudmap::CloudMap, lut: &crate::cloudmap::
         match Class::from_u8(*c) {
             Class::Unknown => continue,
             Class::Clear => {}
-            Class::Thin | Class::Thick => cloudy += 1,
+            Class::Thin => n.thin += 1,
+            Class::Thick => n.thick += 1,
         }
-        known += 1;
+        n.known += 1;
     }
-    (known >= MIN_RING_CELLS).then(|| cloudy as f64 / known as f64)
+    n
 }
 
 /// Angle from the sun \[°\] within which the map's known cells say what cloud the sun is in.
@@ -234,23 +248,7 @@ impl SunThroughCloud {
     /// lie within [`SUN_RING_DEG`] of the sun (the glare's unknown cells do not count), at least
     /// half of them cloudy and at least half of the cloudy ones thin.
     pub fn read(disk: SunDisk, map: &crate::cloudmap::CloudMap, lut: &crate::cloudmap::Lut, sun: &SunPosition) -> Option<SunThroughCloud> {
-        use crate::segment::Class;
-        let d = sun.direction_enu().map(|v| v as f32);
-        let cos_ring = SUN_RING_DEG.to_radians().cos();
-        let (mut known, mut thin, mut thick) = (0usize, 0usize, 0usize);
-        for (k, c) in map.class.iter().enumerate() {
-            let Some(u) = lut.dir.get(k) else { break };
-            if u[0] * d[0] + u[1] * d[1] + u[2] * d[2] < cos_ring {
-                continue;
-            }
-            match Class::from_u8(*c) {
-                Class::Unknown => continue,
-                Class::Clear => {}
-                Class::Thin => thin += 1,
-                Class::Thick => thick += 1,
-            }
-            known += 1;
-        }
+        let RingCounts { known, thin, thick } = ring_counts(map, lut, sun);
         let cloudy = thin + thick;
         (known >= MIN_RING_CELLS && 2 * cloudy >= known && 2 * thin >= cloudy).then(|| SunThroughCloud {
             hidden: disk.hidden(),

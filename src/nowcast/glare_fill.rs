@@ -55,6 +55,42 @@ pub fn fill_glare_from_history<'a>(map: &CloudMap, earlier: impl IntoIterator<It
     (!filled.is_empty()).then_some((out, filled))
 }
 
+/// The map as each layer's table reads it: its glare filled ([`fill_glare_from_history`]) from the
+/// kept maps `earlier()` gives (`(age_s, map)`, newest first), moved by each layer's motion
+/// `layer_v`, with the layer labels where there are two (a filled cell goes with the layer whose
+/// motion filled it: the kept maps carry no labels, so cloud of the other layer seen there counts
+/// in both). Empty when no motion is tracked or no glare cell was filled.
+pub fn layer_views<'a, I>(map: &CloudMap, earlier: impl Fn() -> I, layer_v: &[[f64; 2]], labels: Option<&[u8]>, max_age_s: f64) -> Vec<(CloudMap, Option<Vec<u8>>)>
+where
+    I: IntoIterator<Item = (f64, &'a CloudMap)>,
+{
+    if layer_v.is_empty() {
+        return vec![];
+    }
+    let n_views = if labels.is_some() { layer_v.len().min(2) } else { 1 };
+    let views: Vec<_> = layer_v[..n_views]
+        .iter()
+        .enumerate()
+        .map(|(l, v)| match fill_glare_from_history(map, earlier(), *v, max_age_s) {
+            Some((m, cells)) => {
+                let lb = labels.map(|lb| {
+                    let mut lb = lb.to_vec();
+                    for k in cells {
+                        lb[k] = l as u8;
+                    }
+                    lb
+                });
+                (Some(m), lb)
+            }
+            None => (None, labels.map(<[u8]>::to_vec)),
+        })
+        .collect();
+    if views.iter().all(|(m, _)| m.is_none()) {
+        return vec![];
+    }
+    views.into_iter().map(|(m, lb)| (m.unwrap_or_else(|| map.clone()), lb)).collect()
+}
+
 /// The cells the beam measured along the camera's sun line is put on
 /// ([`crate::forecast::IrradianceParams::sun_line_beam`]): the cells in view within
 /// [`crate::sundisk::SUN_RING_DEG`] of the sun's direction `sun_d` that are not thick cloud (the

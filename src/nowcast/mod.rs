@@ -656,38 +656,14 @@ impl Nowcaster {
     }
 
     /// The map as each layer's table reads it with `irradiance.glare_fill_from_history`
-    /// ([`glare_fill::fill_glare_from_history`], moved by the layer's motion), with the layer
-    /// labels where there are two (a filled cell goes with the layer whose motion filled it: the
-    /// kept maps carry no labels, so cloud of the other layer seen there counts in both). Empty
-    /// when the setting is off, no motion is tracked, or no glare cell was filled.
+    /// ([`glare_fill::layer_views`]); empty when the setting is off.
     fn glare_filled(&self, t: &DateTime<Utc>, map: &CloudMap, layer_v: &[[f64; 2]], labels: Option<&[u8]>) -> Vec<(CloudMap, Option<Vec<u8>>)> {
         let p = &self.site.file.irradiance;
-        if !p.glare_fill_from_history || layer_v.is_empty() {
+        if !p.glare_fill_from_history {
             return vec![];
         }
         let earlier = || self.motion_stage.history.iter().rev().map(|(e, m, _)| ((*t - *e).num_milliseconds() as f64 / 1000.0, &**m));
-        let n_views = if labels.is_some() { layer_v.len().min(2) } else { 1 };
-        let views: Vec<_> = layer_v[..n_views]
-            .iter()
-            .enumerate()
-            .map(|(l, v)| match glare_fill::fill_glare_from_history(map, earlier(), *v, p.glare_fill_max_age_s) {
-                Some((m, cells)) => {
-                    let lb = labels.map(|lb| {
-                        let mut lb = lb.to_vec();
-                        for k in cells {
-                            lb[k] = l as u8;
-                        }
-                        lb
-                    });
-                    (Some(m), lb)
-                }
-                None => (None, labels.map(<[u8]>::to_vec)),
-            })
-            .collect();
-        if views.iter().all(|(m, _)| m.is_none()) {
-            return vec![];
-        }
-        views.into_iter().map(|(m, lb)| (m.unwrap_or_else(|| map.clone()), lb)).collect()
+        glare_fill::layer_views(map, earlier, layer_v, labels, p.glare_fill_max_age_s)
     }
 
     /// Cloud base height: every estimate combined (ceilometer or configured value `prior_cbh_m`,
