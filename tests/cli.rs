@@ -451,7 +451,7 @@ fn calibrate_then_replay_with_the_written_file() {
     assert!(text.lines().any(|l| l.starts_with("cloud map plane: ") && l.contains("where it started")), "{text}");
     // The library carries the clear sky's brightness (the dark-cloud test's reference).
     let lib = std::fs::read_to_string(seq.join("calibration").join(&first)).unwrap();
-    assert_eq!(lib.lines().next(), Some("zenith_from_deg,gamma_from_deg,rb,weight,brightness"));
+    assert_eq!(lib.lines().next(), Some("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips"));
     let bright: Vec<f64> = lib.lines().skip(1).filter_map(|l| l.rsplit(',').next()?.parse().ok()).collect();
     assert!(!bright.is_empty() && bright.iter().all(|v| (1.0..=255.0).contains(v)), "brightness column {:?}", &bright[..bright.len().min(5)]);
 }

@@ -528,7 +528,7 @@ def run_camera(a, camera, sc, yard, log, res):
             f.write("# Placeholder: `calibrate` loads the site file, which must name a calibration.\n")
             f.write(toml_table("camera", placeholder_calibration(site_json["image_width"], site_json["image_height"])))
         cal_site = os.path.join(work, "site-calibrate.toml")
-        write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr)
+        write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr, a.calibrate_set)
         frames = clear_frames_subset(os.path.join(clear, "input", "frames"), a.clear_subset, os.path.join(work, "clear-frames"))
         cal_info["clear_subset"] = a.clear_subset
         cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.endswith(".jpg")])
@@ -772,6 +772,8 @@ def main():
     ap.add_argument("--cameras", default="camera1,camera2")
     ap.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
                     help="a site setting for the cloudy replay (TOML value), e.g. motion.cancelled_layer_pass=true; repeatable")
+    ap.add_argument("--calibrate-set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                    help="a site setting for `calibrate` on the clear day (TOML value), e.g. segment.library_keeps_clipped=true; repeatable")
     ap.add_argument("--ramp-min-probability", type=float, default=0.3,
                     help="engine ramp events at least this probable count as warnings (default: the engine's caution level)")
     ap.add_argument("--causal-measurements", action="store_true",

@@ -17,6 +17,10 @@ pub struct Reference {
     pub(super) weight: Vec<f32>,
     /// Library mean clear-sky brightness per bin (largest channel; 0 = not learned): `brightness`.
     pub(super) bright: Vec<f32>,
+    /// Bins learnt from clipped clear sky ([`Reference::from_clear_samples`]): there a pixel whose
+    /// blue clips is not judged, and the ratio of one that does not is judged against the
+    /// parametric default.
+    pub(super) clipped: Vec<bool>,
     /// Frames that updated the library.
     pub library_frames: usize,
 }
@@ -24,7 +28,7 @@ pub struct Reference {
 impl Default for Reference {
     fn default() -> Self {
         let n = LIB_Z_BINS * LIB_G_BINS;
-        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], library_frames: 0 }
+        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], library_frames: 0 }
     }
 }
 
@@ -38,21 +42,23 @@ pub fn lib_index(z_deg: f32, gamma_deg: f32) -> usize {
 }
 
 impl Reference {
-    /// The library as CSV: one row per bin with data (`zenith_from_deg,gamma_from_deg,rb,weight,brightness`;
-    /// brightness 0 where it was not learned).
+    /// The library as CSV: one row per bin with data
+    /// (`zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips`; brightness 0 where it
+    /// was not learned; `clear_sky_clips` 1 for a bin learnt from clipped clear sky).
     pub fn to_csv(&self) -> String {
-        let mut out = crate::io::CsvTable::with_header_line("zenith_from_deg,gamma_from_deg,rb,weight,brightness");
+        let mut out = crate::io::CsvTable::with_header_line("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips");
         for i in 0..self.lib.len() {
             if self.weight[i] > 0.5 {
                 let (zi, gi) = (i / LIB_G_BINS, i % LIB_G_BINS);
-                out.row([(zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string(), format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i]), format!("{:.2}", self.bright[i])]);
+                out.row([(zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string(), format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i]), format!("{:.2}", self.bright[i]), u8::from(self.clipped[i]).to_string()]);
             }
         }
         out.into_string()
     }
 
-    /// Read a library written by [`Reference::to_csv`] (a file without the brightness column, from
-    /// an earlier version, reads with no brightness learned).
+    /// Read a library written by [`Reference::to_csv`] (a file without the brightness or
+    /// `clear_sky_clips` column, from an earlier version, reads with no brightness learned and no
+    /// clipped bin).
     ///
     /// # Errors
     /// A message naming the line and what was expected.
@@ -82,50 +88,84 @@ impl Reference {
                     _ => return Err(format!("line {line_no}: brightness must be a number from 0 to 255, got {field:?}")),
                 }
             }
+            if let Some(field) = rec.get(5).filter(|f| !f.trim().is_empty()) {
+                match field.trim() {
+                    "0" => r.clipped[k] = false,
+                    "1" => r.clipped[k] = true,
+                    _ => return Err(format!("line {line_no}: clear_sky_clips must be 0 or 1, got {field:?}")),
+                }
+            }
         }
         r.library_frames = 1;
         Ok(r)
     }
 
-    /// A library from clear frames, each bin the plain mean R/B of the unclipped pixels that fell in
-    /// it (at least `min_frames` frames with 3 pixels each), as a clear day for calibration gives.
+    /// A library from clear frames, as a clear day for calibration gives: each bin the plain mean
+    /// R/B of the unclipped pixels that fell in it (at least `min_frames` frames with 3 such pixels
+    /// each). Where the clear sky itself clips (the circumsolar sky low toward the horizon, on a
+    /// camera exposed for the zenith), a bin holds too few unclipped pixels. With
+    /// [`SegmentParams::library_keeps_clipped`] such a bin, when it held at least 3 pixels outside
+    /// the sun's exclusion in `min_frames` frames, takes their mean ratio *as read* (clipped
+    /// channels included, as the online [`Reference::learn`] reads it: a record of what the clear
+    /// sky reads there) and is marked clipped, so segmentation leaves its pixels unknown; without
+    /// it, such a bin has no value. The brightness is learnt from unclipped pixels only (0, not
+    /// learned, in a clipped bin).
     pub fn from_clear_samples<I>(params: &SegmentParams, frames: impl Iterator<Item = I>, min_frames: u32) -> Reference
     where
         I: Iterator<Item = ([u8; 3], PixelGeom)>,
     {
         let nb = LIB_Z_BINS * LIB_G_BINS;
-        let (mut sum, mut sum_v) = (vec![0f64; nb], vec![0f64; nb]);
-        let mut cnt = vec![0u32; nb];
-        let mut frames_in = vec![0u32; nb];
+        // Unclipped pixels' ratio and brightness; all pixels' ratio as read.
+        let (mut sum, mut sum_v, mut sum_read) = (vec![0f64; nb], vec![0f64; nb], vec![0f64; nb]);
+        let (mut frames_in, mut frames_read) = (vec![0u32; nb], vec![0u32; nb]);
         let mut n_frames = 0;
+        let (mut fsum, mut fsum_v, mut fsum_read) = (vec![0f64; nb], vec![0f64; nb], vec![0f64; nb]);
+        let (mut fcnt, mut fcnt_read) = (vec![0u32; nb], vec![0u32; nb]);
         for sample in frames {
             n_frames += 1;
-            let (mut fsum, mut fsum_v) = (vec![0f64; nb], vec![0f64; nb]);
-            let mut fcnt = vec![0u32; nb];
+            for v in [&mut fsum, &mut fsum_v, &mut fsum_read] {
+                v.fill(0.0);
+            }
+            fcnt.fill(0);
+            fcnt_read.fill(0);
             for (rgb, g) in sample {
-                if g.gamma_deg < params.sun_exclusion_deg as f32 || rgb.iter().any(|c| *c >= params.saturation_level) || rgb[2] < 10 {
+                if g.gamma_deg < params.sun_exclusion_deg as f32 || rgb[2] < 10 {
                     continue;
                 }
                 let i = lib_index(g.z_deg, g.gamma_deg);
-                fsum[i] += rgb[0] as f64 / rgb[2] as f64;
+                let rb = rgb[0] as f64 / rgb[2] as f64;
+                fsum_read[i] += rb;
+                fcnt_read[i] += 1;
+                if rgb.iter().any(|c| *c >= params.saturation_level) {
+                    continue;
+                }
+                fsum[i] += rb;
                 fsum_v[i] += f64::from(crate::brightness::reading(rgb));
                 fcnt[i] += 1;
             }
-            for i in 0..fsum.len() {
+            for i in 0..nb {
                 if fcnt[i] >= 3 {
                     sum[i] += fsum[i] / fcnt[i] as f64;
                     sum_v[i] += fsum_v[i] / fcnt[i] as f64;
-                    cnt[i] += 1;
                     frames_in[i] += 1;
+                }
+                if fcnt_read[i] >= 3 {
+                    sum_read[i] += fsum_read[i] / fcnt_read[i] as f64;
+                    frames_read[i] += 1;
                 }
             }
         }
         let mut r = Reference::default();
-        for i in 0..sum.len() {
-            if frames_in[i] >= min_frames.max(1) {
-                r.lib[i] = (sum[i] / cnt[i] as f64) as f32;
-                r.bright[i] = (sum_v[i] / cnt[i] as f64) as f32;
-                r.weight[i] = (cnt[i] as f32).min(100.0);
+        let min_frames = min_frames.max(1);
+        for i in 0..nb {
+            if frames_in[i] >= min_frames {
+                r.lib[i] = (sum[i] / frames_in[i] as f64) as f32;
+                r.bright[i] = (sum_v[i] / frames_in[i] as f64) as f32;
+                r.weight[i] = (frames_in[i] as f32).min(100.0);
+            } else if params.library_keeps_clipped && frames_read[i] >= min_frames {
+                r.lib[i] = (sum_read[i] / frames_read[i] as f64) as f32;
+                r.weight[i] = (frames_read[i] as f32).min(100.0);
+                r.clipped[i] = true;
             }
         }
         r.library_frames = n_frames;

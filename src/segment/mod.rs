@@ -153,6 +153,17 @@ pub struct SegmentParams {
     pub library_max_cloud_fraction: f64,
     /// Weight of a new frame in the library's exponential mean.
     pub library_rate: f64,
+    /// A clear day's library ([`Reference::from_clear_samples`]) also marks the bins where the
+    /// clear sky itself clips (`clear_sky_clips`), and every pixel there is unknown: the ratio
+    /// cannot tell clear from cloud where the clear sky is clipped near-white. Off, those bins have
+    /// no library value and the parametric default judges them, which on a camera exposed for the
+    /// zenith calls the low circumsolar sky cloud. Measured on the independent scenes (camera from
+    /// `calibrate`): the breaking overcast's current state without pyranometers improves (1-min
+    /// RMSE 165.2 → 116.8 W/m², largest |MBE| 108.9 → 31.2) but its forecast, whose upwind
+    /// look-ups then land in the unknown region and fall back, loses (pooled 5–15 min skill 0.29 →
+    /// 0.24; 0.52 → 0.26 with pyranometers); the broken cumulus is unchanged (0.57). So off.
+    /// Acts at `calibrate` (the library's marks then hold wherever the library is read).
+    pub library_keeps_clipped: bool,
 }
 
 impl Default for SegmentParams {
@@ -189,6 +200,8 @@ impl Default for SegmentParams {
             cloud_fraction_zenith_deg: 70.0,
             library_max_cloud_fraction: 0.02,
             library_rate: 0.2,
+            // Off by default: see the field's documentation for what it gained and lost.
+            library_keeps_clipped: false,
         }
     }
 }
@@ -304,6 +317,14 @@ impl FrameReference<'_> {
         if self.reference.weight[bin] > 0.5 { self.reference.lib[bin] } else { default_rb + self.offset }
     }
 
+    /// Whether a sample in library bin `bin` cannot be judged because the clear sky there clips
+    /// ([`SegmentParams::library_keeps_clipped`]): a bright cloud and the clear sky both read as
+    /// near-white there.
+    #[inline]
+    fn clear_sky_clips(&self, bin: usize) -> bool {
+        self.reference.clipped[bin]
+    }
+
     /// Whether sample `k` of `sky` is judged by its ratio alone in this frame (plain sky outside the
     /// glare) against a learned clear-sky reference (not the parametric default): the samples the
     /// far field's contrast correction measures and lifts (`distance`).
@@ -376,6 +397,9 @@ impl FrameReference<'_> {
     pub fn classify_at(&self, g: SampleSky, z_deg: f32, plain_rgb: impl FnOnce() -> [u8; 3], exact_rgb: impl FnOnce() -> [u8; 3]) -> ([u8; 3], f32, u8) {
         if g.plain && self.outside_glare(g.gamma_deg) {
             let rgb = plain_rgb();
+            if self.clear_sky_clips(g.bin as usize) {
+                return (rgb, f32::NAN, Class::Unknown as u8);
+            }
             let (s, c) = self.classify_plain(rgb, self.reference_in_bin(g.bin as usize, g.default_rb), g.thick_score);
             (rgb, s, c)
         } else {
@@ -403,8 +427,12 @@ impl FrameReference<'_> {
         if g.gamma_deg < p.sun_exclusion_deg as f32 && rgb[0] >= sat && rgb[1] >= sat && rgb[2] >= sat {
             return (f32::NAN, Class::Unknown);
         }
+        let bin = lib_index(g.z_deg, g.gamma_deg);
+        if self.clear_sky_clips(bin) {
+            return (f32::NAN, Class::Unknown);
+        }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
-        let r = self.at_with(g, default_rb);
+        let r = self.reference_in_bin(bin, default_rb);
         let denom = (p.cloud_rb as f32 - r).max(0.03);
         let s = (rb - r) / denom;
         if p.cloud_rb as f32 - r < MIN_CONTRAST {
@@ -660,6 +688,37 @@ mod tests {
 
     fn geom(z: f32, g: f32) -> PixelGeom {
         PixelGeom { z_deg: z, gamma_deg: g }
+    }
+
+    /// A clear day whose sky clips in one bin: with `library_keeps_clipped` the bin is learnt from
+    /// the ratio as read, marked, written and read back with its mark, and its pixels are unknown;
+    /// without it the bin has no value and the parametric default judges it (common practice, no
+    /// source: a clipped channel bounds the ratio, it does not measure it).
+    #[test]
+    fn bins_where_the_clear_sky_clips_are_marked_and_not_judged() {
+        let frame = || {
+            // Bin (z 70°, γ 16°) clips in blue; bin (z 70°, γ 40°) does not.
+            let clipped = (0..6).map(|_| ([230u8, 248, 255], geom(70.5, 16.5)));
+            let open = (0..6).map(|_| ([150u8, 190, 220], geom(70.5, 40.5)));
+            clipped.chain(open).collect::<Vec<_>>().into_iter()
+        };
+        let off = SegmentParams::default();
+        let on = SegmentParams { library_keeps_clipped: true, ..SegmentParams::default() };
+        let (lib_off, lib_on) = (Reference::from_clear_samples(&off, (0..4).map(|_| frame()), 3), Reference::from_clear_samples(&on, (0..4).map(|_| frame()), 3));
+        let (clip_bin, open_bin) = (lib_index(70.5, 16.5), lib_index(70.5, 40.5));
+        assert_eq!(lib_off.weight[clip_bin], 0.0);
+        assert!(lib_on.weight[clip_bin] > 0.5 && lib_on.clipped[clip_bin] && (lib_on.lib[clip_bin] - 230.0 / 255.0).abs() < 1e-4);
+        assert!(!lib_on.clipped[open_bin] && (lib_on.lib[open_bin] - lib_off.lib[open_bin]).abs() < 1e-6);
+        assert_eq!(lib_on.bright[clip_bin], 0.0, "no brightness from clipped pixels");
+        let back = Reference::from_csv(&lib_on.to_csv()).unwrap();
+        assert!(back.clipped[clip_bin] && !back.clipped[open_bin]);
+        // Classified: unknown in the clipped bin whatever the pixel, judged elsewhere.
+        let fr = plain_reference(&back, &on);
+        assert_eq!(fr.classify([120, 150, 200], geom(70.5, 16.5)).1, Class::Unknown);
+        assert_eq!(fr.classify([150, 190, 220], geom(70.5, 40.5)).1, Class::Clear);
+        let fr_off = plain_reference(&lib_off, &off);
+        assert_ne!(fr_off.classify([230, 248, 255], geom(70.5, 16.5)).1, Class::Unknown);
+        assert!(Reference::from_csv("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips\n70,16,0.9,4,0,2\n").unwrap_err().contains("clear_sky_clips"));
     }
 
     #[test]
