@@ -136,6 +136,19 @@ pub struct IrradianceParams {
     /// The oldest earlier map [s] the glare fill takes a cell from (the engine keeps maps up to
     /// `motion.max_gap_s`, longer ones are not at hand).
     pub glare_fill_max_age_s: f64,
+    /// Correlation length \[m\] of the neighbour fill of unseen cells ([`TransmittanceMap::for_layer`]):
+    /// a cell filled `d` metres (counted in cells along the fill's path) from the nearest seen cell
+    /// keeps the weight `exp(−d / L)` of what its neighbours say and takes the rest from the mean
+    /// of the seen sky's cells, as an exponential covariance model relaxes an estimate toward the
+    /// mean far from the data (simple kriging; common practice, no source). A small glare is
+    /// unchanged; deep inside a large unseen region (a sun low in the camera's clipped sky) the
+    /// fill no longer carries its edge's state kilometres inward. 0 (the default): no relaxation.
+    pub fill_correlation_m: f64,
+    /// A pyranometer whose look-up box holds no cell the camera saw (all unknown: glare, or sky
+    /// too white to judge) still gives the tuning a row, with the box's features read from the
+    /// forecast's tables (unseen cells filled from their neighbours, [`TransmittanceMap::for_layer`]).
+    /// Off (the default): such readings are not learnt from.
+    pub tune_unseen_from_fill: bool,
 }
 
 impl Default for IrradianceParams {
@@ -168,6 +181,8 @@ impl Default for IrradianceParams {
             // The motion's gap limit: a cloud is taken as frozen over the same span the motion
             // is measured over (own choice).
             glare_fill_max_age_s: 180.0,
+            fill_correlation_m: 0.0,
+            tune_unseen_from_fill: false,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five
             // synthetic scenes, e.g. broken cumulus 0.71 → 0.79 at 5 min).
@@ -228,6 +243,7 @@ impl IrradianceParams {
         check_range(file, "irradiance.tune_window_s", self.tune_window_s, 60.0, 86_400.0)?;
         check_range(file, "irradiance.tune_min_rows", self.tune_min_rows as f64, 1.0, 400.0)?;
         check_range(file, "irradiance.sun_disk_radius_deg", self.sun_disk_radius_deg, 0.3, 5.0)?;
+        check_range(file, "irradiance.fill_correlation_m", self.fill_correlation_m, 0.0, 100_000.0)?;
         check_range(file, "irradiance.glare_fill_max_age_s", self.glare_fill_max_age_s, 1.0, 3600.0)
     }
 

@@ -36,6 +36,29 @@ impl Drop for TransmittanceMap {
     }
 }
 
+/// Each filled cell's features moved toward the mean of the seen cells' (`seen`): the weight of its
+/// own is `exp(−depth · cells_per_length)` ([`IrradianceParams::fill_correlation_m`]). Unchanged
+/// when no cell is seen.
+fn relax_toward_mean(filled: &mut [[f32; FEATURES]], depth: &[u16], cells_per_length: f64, seen: impl Iterator<Item = [f32; FEATURES]>) {
+    let (mut sum, mut count) = ([0f64; FEATURES], 0usize);
+    for v in seen {
+        for q in 0..FEATURES {
+            sum[q] += f64::from(v[q]);
+        }
+        count += 1;
+    }
+    if count == 0 {
+        return;
+    }
+    let mean = sum.map(|v| (v / count as f64) as f32);
+    for (f, d) in filled.iter_mut().zip(depth) {
+        let w = (-f64::from(*d) * cells_per_length).exp() as f32;
+        for q in 0..FEATURES {
+            f[q] = w * f[q] + (1.0 - w) * mean[q];
+        }
+    }
+}
+
 /// Largest look-up half-width \[cells\] handled by exact truncations without saturation (any
 /// sensible box is far smaller: a 256² map is 256 cells across).
 pub(super) const MAX_EXACT_HALF_WIDTH: f64 = 1e8;
@@ -131,16 +154,19 @@ impl TransmittanceMap {
         for &k in &front {
             state[k] = 1;
         }
+        let mut depth: Vec<u16> = Vec::new();
         if let Some((cells, features)) = patch {
             for &k in cells.iter().filter(|&&k| k < n * n && in_view(k)) {
                 if state[k] < FILLED {
                     state[k] = FILLED + filled.len() as u32;
                     filled.push(features);
+                    depth.push(0);
                     front.push_back(k);
                 }
             }
         }
         while let Some(k) = front.pop_front() {
+            let d = if state[k] >= FILLED { depth[(state[k] - FILLED) as usize] } else { 0 };
             for m in neighbours(k) {
                 if state[m] != 0 || !in_view(m) {
                     continue;
@@ -154,8 +180,12 @@ impl TransmittanceMap {
                 }
                 state[m] = FILLED + filled.len() as u32;
                 filled.push(s.map(|v| v / c));
+                depth.push(d.saturating_add(1));
                 front.push_back(m);
             }
+        }
+        if p.fill_correlation_m > 0.0 && !filled.is_empty() {
+            relax_toward_mean(&mut filled, &depth, map.grid.cell_m / p.fill_correlation_m, (0..n * n).filter(|&k| state[k] == 1).filter_map(|k| shares(k, &state, &[])));
         }
         // Row by row, in place: the table is 1 MB, the pass memory-bound. The table is a pooled
         // one of the same size when there is one (its old entries, each overwritten below: row 0
