@@ -236,7 +236,7 @@ mod tests {
         // Off, and an older library without brightness: the patch as the ratio reads it.
         let off = SegmentParams { dark_cloud_margin: 0.0, ..SegmentParams::default() };
         assert_eq!(patch_class(&segment_image(&frame, &geom, Some(sun), &off, &library))[Class::Thick as usize], 0);
-        let old_csv: String = library.to_csv().lines().map(|l| l.rsplit_once(',').expect("five columns").0.to_string() + "\n").collect();
+        let old_csv: String = library.to_csv().lines().map(|l| l.rsplitn(3, ',').nth(2).expect("six columns").to_string() + "\n").collect();
         let old = Reference::from_csv(&old_csv).expect("a four-column library reads");
         assert_eq!(patch_class(&segment_image(&frame, &geom, Some(sun), &params, &old))[Class::Thick as usize], 0);
     }
@@ -250,9 +250,9 @@ mod tests {
         let img = image::RgbImage::from_pixel(96, 96, image::Rgb([150, 170, 220]));
         let lib = library_from(&img, &geom, sun, &params);
         let csv = lib.to_csv();
-        assert!(csv.lines().nth(1).expect("a bin").ends_with(",220.00"), "{}", csv.lines().nth(1).unwrap_or(""));
+        assert!(csv.lines().nth(1).expect("a bin").ends_with(",220.00,0"), "{}", csv.lines().nth(1).unwrap_or(""));
         assert_eq!(Reference::from_csv(&csv).expect("reads").to_csv(), csv);
-        let bad = csv.replacen(",220.00", ",300", 1);
+        let bad = csv.replacen(",220.00,", ",300,", 1);
         let err = Reference::from_csv(&bad).expect_err("brightness 300");
         assert!(err.contains("line 2") && err.contains("brightness"), "{err}");
     }

@@ -452,8 +452,12 @@ fn calibrate_then_replay_with_the_written_file() {
     // The library carries the clear sky's brightness (the dark-cloud test's reference).
     let lib = std::fs::read_to_string(seq.join("calibration").join(&first)).unwrap();
     assert_eq!(lib.lines().next(), Some("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips"));
-    let bright: Vec<f64> = lib.lines().skip(1).filter_map(|l| l.rsplit(',').next()?.parse().ok()).collect();
+    // Bins learnt from unclipped clear sky carry a brightness; bins where the clear sky clipped
+    // (`clear_sky_clips` 1) carry none.
+    let rows: Vec<(f64, &str)> = lib.lines().skip(1).filter_map(|l| { let f: Vec<&str> = l.split(',').collect(); Some((f.get(4)?.parse().ok()?, *f.get(5)?)) }).collect();
+    let bright: Vec<f64> = rows.iter().filter(|(_, c)| *c == "0").map(|(b, _)| *b).collect();
     assert!(!bright.is_empty() && bright.iter().all(|v| (1.0..=255.0).contains(v)), "brightness column {:?}", &bright[..bright.len().min(5)]);
+    assert!(rows.iter().all(|(b, c)| *c == "0" || (*c == "1" && *b == 0.0)), "a clipped bin with a brightness");
 }
 
 /// The horizon-0 skill (persistence is exact there) is shown as "n/a", never NaN: on the console

@@ -140,9 +140,11 @@ pub struct IrradianceParams {
     /// a cell filled `d` metres (counted in cells along the fill's path) from the nearest seen cell
     /// keeps the weight `exp(−d / L)` of what its neighbours say and takes the rest from the mean
     /// of the seen sky's cells, as an exponential covariance model relaxes an estimate toward the
-    /// mean far from the data (simple kriging; common practice, no source). A small glare is
-    /// unchanged; deep inside a large unseen region (a sun low in the camera's clipped sky) the
-    /// fill no longer carries its edge's state kilometres inward. 0 (the default): no relaxation.
+    /// mean far from the data (simple kriging; common practice, no source). A small glare changes
+    /// little; deep inside a large unseen region (a sun low in the camera's clipped sky,
+    /// `segment.library_keeps_clipped`) the fill no longer carries its edge's state kilometres
+    /// inward. 0: no relaxation. The default, 500 m, is about a cumulus cloud's size (from memory,
+    /// no source); 250, 500, 1500 and 4000 m were measured (README, "Where the clear sky clips").
     pub fill_correlation_m: f64,
     /// A pyranometer whose look-up box holds no cell the camera saw (all unknown: glare, or sky
     /// too white to judge) still gives the tuning a row, with the box's features read from the
@@ -181,7 +183,8 @@ impl Default for IrradianceParams {
             // The motion's gap limit: a cloud is taken as frozen over the same span the motion
             // is measured over (own choice).
             glare_fill_max_age_s: 180.0,
-            fill_correlation_m: 0.0,
+            // A cumulus cloud's size (from memory, no source).
+            fill_correlation_m: 500.0,
             tune_unseen_from_fill: false,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five

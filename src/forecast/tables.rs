@@ -327,6 +327,34 @@ mod tests {
     use super::*;
     use crate::cloudmap::{Grid, MapParams};
 
+    /// The fill's relaxation (`fill_correlation_m`): a filled cell next to the seen sky keeps most
+    /// of its neighbours' state, one far inside a large unseen region tends to the seen cells'
+    /// mean, by `exp(−d / L)` (simple kriging with an exponential covariance; common practice, no
+    /// source).
+    #[test]
+    fn relaxed_fill_tends_to_the_seen_mean() {
+        // 16 × 16 cells of 100 m: columns 0–3 clear, 4–13 unknown (in view), 14–15 thick.
+        let n = 16;
+        let class: Vec<u8> = (0..n * n).map(|k| match k % n { 0..=3 => Class::Clear as u8, 14 | 15 => Class::Thick as u8, _ => Class::Unknown as u8 }).collect();
+        let g = Grid { n, cell_m: 100.0, height_m: 1000.0 };
+        let map = CloudMap { grid: g, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![], thin_depth: vec![0.5; n * n] };
+        let plain = IrradianceParams { fill_correlation_m: 0.0, ..Default::default() };
+        let relaxed = IrradianceParams { fill_correlation_m: 200.0, ..Default::default() };
+        let (a, b) = (TransmittanceMap::new(&map, &plain), TransmittanceMap::new(&map, &relaxed));
+        let clear_share = |m: &TransmittanceMap, i: usize| m.box_shares(i as f64, 8.0, 0.0).unwrap()[0];
+        // Seen mean: 4 clear of 6 columns.
+        let mean = 4.0 / 6.0;
+        // Column 4 is one step from the clear cells: without relaxation clear, with it e^(−0.5) of the way.
+        assert!((clear_share(&a, 4) - 1.0).abs() < 1e-3, "{}", clear_share(&a, 4));
+        let w = (-0.5f64).exp();
+        assert!((clear_share(&b, 4) - (w + (1.0 - w) * mean)).abs() < 2e-3, "{}", clear_share(&b, 4));
+        // Column 8 is five steps from the clear cells: close to the mean with relaxation.
+        assert!((clear_share(&b, 8) - mean).abs() < 0.1, "{}", clear_share(&b, 8));
+        // Seen cells are never changed.
+        assert_eq!(clear_share(&b, 0), 1.0);
+        assert_eq!(clear_share(&b, 15), 0.0);
+    }
+
     /// The fast rounding against `f64::round` (common practice, no source: half away from zero).
     #[test]
     fn round_i32_matches_the_library_rounding() {
@@ -397,8 +425,9 @@ mod tests {
             thin_depth[k] = u;
         }
         let map = CloudMap { grid: g, score: vec![0.0; 64], class, in_view: vec![true; 64], offset: 0.0, brightness: vec![], thin_depth };
-        let on = IrradianceParams { thin_beam_from_score: true, ..Default::default() };
-        let (t, off) = (TransmittanceMap::new(&map, &on), TransmittanceMap::new(&map, &IrradianceParams::default()));
+        // Without the fill's relaxation toward the mean (`relaxed_fill_tends_to_the_seen_mean`).
+        let on = IrradianceParams { thin_beam_from_score: true, fill_correlation_m: 0.0, ..Default::default() };
+        let (t, off) = (TransmittanceMap::new(&map, &on), TransmittanceMap::new(&map, &IrradianceParams { fill_correlation_m: 0.0, ..Default::default() }));
         let (b0, b1, b2) = (on.beam_clear, on.beam_thin, on.beam_thick);
         let one = |m: &TransmittanceMap, cx: f64, cy: f64| m.box_mean(cx, cy, 0.0).unwrap();
         let tol = 2e-3;

@@ -17,10 +17,18 @@ pub struct Reference {
     pub(super) weight: Vec<f32>,
     /// Library mean clear-sky brightness per bin (largest channel; 0 = not learned): `brightness`.
     pub(super) bright: Vec<f32>,
-    /// Bins learnt from clipped clear sky ([`Reference::from_clear_samples`]): there a pixel whose
-    /// blue clips is not judged, and the ratio of one that does not is judged against the
-    /// parametric default.
+    /// Bins where the clear day's sky clipped ([`Reference::from_clear_samples`] with
+    /// [`SegmentParams::library_keeps_clipped`]): their pixels are unknown while
+    /// `clipped_bins_unknown` holds. Such a bin keeps no library value (`weight` 0), as without
+    /// the setting.
     pub(super) clipped: Vec<bool>,
+    /// The clear sky's R/B as read (clipped channels included) in each clipped bin, and the frames
+    /// it was read in: a record, written to the CSV.
+    pub(super) clipped_read: Vec<(f32, f32)>,
+    /// Whether the clipped bins' pixels are left unknown (true, the default) or judged as if the
+    /// bins held no value: the engine sets it false while pyranometers are held, which let the
+    /// transmittance tuning learn what the sky there means.
+    pub clipped_bins_unknown: bool,
     /// Frames that updated the library.
     pub library_frames: usize,
 }
@@ -28,7 +36,7 @@ pub struct Reference {
 impl Default for Reference {
     fn default() -> Self {
         let n = LIB_Z_BINS * LIB_G_BINS;
-        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], library_frames: 0 }
+        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], clipped_read: vec![(0.0, 0.0); n], clipped_bins_unknown: true, library_frames: 0 }
     }
 }
 
@@ -48,9 +56,13 @@ impl Reference {
     pub fn to_csv(&self) -> String {
         let mut out = crate::io::CsvTable::with_header_line("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips");
         for i in 0..self.lib.len() {
+            let (zi, gi) = (i / LIB_G_BINS, i % LIB_G_BINS);
+            let (z, g) = ((zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string());
             if self.weight[i] > 0.5 {
-                let (zi, gi) = (i / LIB_G_BINS, i % LIB_G_BINS);
-                out.row([(zi as f32 * LIB_BIN_DEG).to_string(), (gi as f32 * LIB_BIN_DEG).to_string(), format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i]), format!("{:.2}", self.bright[i]), u8::from(self.clipped[i]).to_string()]);
+                out.row([z, g, format!("{:.5}", self.lib[i]), format!("{:.1}", self.weight[i]), format!("{:.2}", self.bright[i]), "0".to_string()]);
+            } else if self.clipped[i] {
+                let (rb, w) = self.clipped_read[i];
+                out.row([z, g, format!("{rb:.5}"), format!("{w:.1}"), "0.00".to_string(), "1".to_string()]);
             }
         }
         out.into_string()
@@ -80,19 +92,22 @@ impl Reference {
                 return Err(format!("line {line_no}: a bin out of range (zenith 0–100°, sun angle 0–180°, R/B 0.05–3, weight ≥ 0), got {line:?}"));
             }
             let k = lib_index(z + 0.5 * LIB_BIN_DEG, g + 0.5 * LIB_BIN_DEG);
+            let clips = match rec.get(5).map(str::trim).filter(|f| !f.is_empty()) {
+                None | Some("0") => false,
+                Some("1") => true,
+                Some(other) => return Err(format!("line {line_no}: clear_sky_clips must be 0 or 1, got {other:?}")),
+            };
+            if clips {
+                r.clipped[k] = true;
+                r.clipped_read[k] = (rb, w.min(100.0));
+                continue;
+            }
             r.lib[k] = rb;
             r.weight[k] = w.min(100.0);
             if let Some(field) = rec.get(4).filter(|f| !f.trim().is_empty()) {
                 match field.trim().parse::<f32>() {
                     Ok(v) if (0.0..=255.0).contains(&v) => r.bright[k] = v,
                     _ => return Err(format!("line {line_no}: brightness must be a number from 0 to 255, got {field:?}")),
-                }
-            }
-            if let Some(field) = rec.get(5).filter(|f| !f.trim().is_empty()) {
-                match field.trim() {
-                    "0" => r.clipped[k] = false,
-                    "1" => r.clipped[k] = true,
-                    _ => return Err(format!("line {line_no}: clear_sky_clips must be 0 or 1, got {field:?}")),
                 }
             }
         }
@@ -105,10 +120,9 @@ impl Reference {
     /// each). Where the clear sky itself clips (the circumsolar sky low toward the horizon, on a
     /// camera exposed for the zenith), a bin holds too few unclipped pixels. With
     /// [`SegmentParams::library_keeps_clipped`] such a bin, when it held at least 3 pixels outside
-    /// the sun's exclusion in `min_frames` frames, takes their mean ratio *as read* (clipped
-    /// channels included, as the online [`Reference::learn`] reads it: a record of what the clear
-    /// sky reads there) and is marked clipped, so segmentation leaves its pixels unknown; without
-    /// it, such a bin has no value. The brightness is learnt from unclipped pixels only (0, not
+    /// the sun's exclusion in `min_frames` frames, is marked clipped (with their mean ratio *as
+    /// read*, clipped channels included, kept as a record), so segmentation leaves its pixels
+    /// unknown; either way such a bin has no library value. The brightness is learnt from unclipped pixels only (0, not
     /// learned, in a clipped bin).
     pub fn from_clear_samples<I>(params: &SegmentParams, frames: impl Iterator<Item = I>, min_frames: u32) -> Reference
     where
@@ -163,9 +177,8 @@ impl Reference {
                 r.bright[i] = (sum_v[i] / frames_in[i] as f64) as f32;
                 r.weight[i] = (frames_in[i] as f32).min(100.0);
             } else if params.library_keeps_clipped && frames_read[i] >= min_frames {
-                r.lib[i] = (sum_read[i] / frames_read[i] as f64) as f32;
-                r.weight[i] = (frames_read[i] as f32).min(100.0);
                 r.clipped[i] = true;
+                r.clipped_read[i] = ((sum_read[i] / frames_read[i] as f64) as f32, (frames_read[i] as f32).min(100.0));
             }
         }
         r.library_frames = n_frames;

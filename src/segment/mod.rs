@@ -154,15 +154,17 @@ pub struct SegmentParams {
     /// Weight of a new frame in the library's exponential mean.
     pub library_rate: f64,
     /// A clear day's library ([`Reference::from_clear_samples`]) also marks the bins where the
-    /// clear sky itself clips (`clear_sky_clips`), and every pixel there is unknown: the ratio
-    /// cannot tell clear from cloud where the clear sky is clipped near-white. Off, those bins have
-    /// no library value and the parametric default judges them, which on a camera exposed for the
-    /// zenith calls the low circumsolar sky cloud. Measured on the independent scenes (camera from
-    /// `calibrate`): the breaking overcast's current state without pyranometers improves (1-min
-    /// RMSE 165.2 → 116.8 W/m², largest |MBE| 108.9 → 31.2) but its forecast, whose upwind
-    /// look-ups then land in the unknown region and fall back, loses (pooled 5–15 min skill 0.29 →
-    /// 0.24; 0.52 → 0.26 with pyranometers); the broken cumulus is unchanged (0.57). So off.
-    /// Acts at `calibrate` (the library's marks then hold wherever the library is read).
+    /// clear sky itself clips (`clear_sky_clips`), and while no pyranometer is held every pixel
+    /// there is unknown: the ratio cannot tell clear from cloud where the clear sky is clipped
+    /// near-white. Unmarked, such bins have no library value and the parametric default judges
+    /// them, which on a camera exposed for the zenith calls the low circumsolar sky cloud; with
+    /// pyranometers the transmittance tuning learns what that "cloud" passes (its brightness
+    /// feature), so then the bins are judged as unmarked ([`Reference::clipped_bins_unknown`]).
+    /// Acts at `calibrate` (the marks are in the library file). Measured on the independent
+    /// scenes (camera from `calibrate`), with `irradiance.fill_correlation_m` at 500 m: the
+    /// breaking overcast without pyranometers went from pooled 5–15 min skill 0.29 to 0.40, 1-min
+    /// RMSE 165.2 → 138.6 W/m² (persistence 165.6), largest |MBE| 108.9 → 17.7 W/m²; the broken
+    /// cumulus is unchanged (0.56); the clear days' RMSE fell 11.6 / 11.9 → 7.4 / 6.9 W/m².
     pub library_keeps_clipped: bool,
 }
 
@@ -200,8 +202,7 @@ impl Default for SegmentParams {
             cloud_fraction_zenith_deg: 70.0,
             library_max_cloud_fraction: 0.02,
             library_rate: 0.2,
-            // Off by default: see the field's documentation for what it gained and lost.
-            library_keeps_clipped: false,
+            library_keeps_clipped: true,
         }
     }
 }
@@ -322,7 +323,7 @@ impl FrameReference<'_> {
     /// near-white there.
     #[inline]
     fn clear_sky_clips(&self, bin: usize) -> bool {
-        self.reference.clipped[bin]
+        self.reference.clipped_bins_unknown && self.reference.clipped[bin]
     }
 
     /// Whether sample `k` of `sky` is judged by its ratio alone in this frame (plain sky outside the
@@ -702,22 +703,28 @@ mod tests {
             let open = (0..6).map(|_| ([150u8, 190, 220], geom(70.5, 40.5)));
             clipped.chain(open).collect::<Vec<_>>().into_iter()
         };
-        let off = SegmentParams::default();
+        let off = SegmentParams { library_keeps_clipped: false, ..SegmentParams::default() };
         let on = SegmentParams { library_keeps_clipped: true, ..SegmentParams::default() };
         let (lib_off, lib_on) = (Reference::from_clear_samples(&off, (0..4).map(|_| frame()), 3), Reference::from_clear_samples(&on, (0..4).map(|_| frame()), 3));
         let (clip_bin, open_bin) = (lib_index(70.5, 16.5), lib_index(70.5, 40.5));
         assert_eq!(lib_off.weight[clip_bin], 0.0);
-        assert!(lib_on.weight[clip_bin] > 0.5 && lib_on.clipped[clip_bin] && (lib_on.lib[clip_bin] - 230.0 / 255.0).abs() < 1e-4);
+        assert!(lib_on.weight[clip_bin] == 0.0 && lib_on.clipped[clip_bin] && (lib_on.clipped_read[clip_bin].0 - 230.0 / 255.0).abs() < 1e-4);
         assert!(!lib_on.clipped[open_bin] && (lib_on.lib[open_bin] - lib_off.lib[open_bin]).abs() < 1e-6);
         assert_eq!(lib_on.bright[clip_bin], 0.0, "no brightness from clipped pixels");
         let back = Reference::from_csv(&lib_on.to_csv()).unwrap();
         assert!(back.clipped[clip_bin] && !back.clipped[open_bin]);
-        // Classified: unknown in the clipped bin whatever the pixel, judged elsewhere.
+        // Classified: unknown in the clipped bin whatever the pixel, judged elsewhere; with the
+        // bins judged (pyranometers held) the same as a library without the setting.
+        let mut back = back;
         let fr = plain_reference(&back, &on);
         assert_eq!(fr.classify([120, 150, 200], geom(70.5, 16.5)).1, Class::Unknown);
         assert_eq!(fr.classify([150, 190, 220], geom(70.5, 40.5)).1, Class::Clear);
         let fr_off = plain_reference(&lib_off, &off);
-        assert_ne!(fr_off.classify([230, 248, 255], geom(70.5, 16.5)).1, Class::Unknown);
+        let px = [230, 248, 255];
+        assert_ne!(fr_off.classify(px, geom(70.5, 16.5)).1, Class::Unknown);
+        back.clipped_bins_unknown = false;
+        let fr_judged = plain_reference(&back, &on);
+        assert_eq!(fr_judged.classify(px, geom(70.5, 16.5)).1, fr_off.classify(px, geom(70.5, 16.5)).1);
         assert!(Reference::from_csv("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips\n70,16,0.9,4,0,2\n").unwrap_err().contains("clear_sky_clips"));
     }
 
