@@ -31,6 +31,9 @@ const TARGET_MAX_MBE: f64 = 50.0;
 /// Targets not met yet (metric names as printed).
 const KNOWN_SHORTFALLS: &[&str] = &[
     "camera2 pooled skill",
+    // Without pyranometers (`without_pyranometers`): the documented default transmittances.
+    "camera1 without pyranometers largest |MBE|",
+    "camera2 without pyranometers pooled skill",
 ];
 
 fn check(metric: &str, ok: bool, figure: String, failures: &mut Vec<String>) {
@@ -169,6 +172,36 @@ fn calibrate_then_replay_on_independent_scenes() {
         let cs = &c["replay_clear"]["forecast_summary"];
         let clear = ["rmse_1", "rmse_5", "rmse_10", "rmse_15"].iter().map(|k| num(cs, &[k])).fold(0.0, f64::max);
         check(&format!("{cam} clear-day RMSE"), clear <= TARGET_CLEAR_RMSE, format!("largest over 1/5/10/15 min {clear:.1} W/m² (target {TARGET_CLEAR_RMSE})"), &mut failures);
+    }
+    assert!(failures.is_empty(), "{failures:#?}");
+}
+
+/// The same path for a plant without pyranometers (`--no-measurements`: nothing to tune the
+/// transmittances from, as the scenes' `input/` holds none): the forecast targets with the
+/// documented defaults. Calibration and motion do not depend on the readings and are checked above.
+#[test]
+fn without_pyranometers() {
+    let Some(scenes) = scenes_or_skip() else { return };
+    let r = run_harness(&scenes, &["--no-measurements"]);
+    let mut failures = vec![];
+    for c in r["cameras"].as_array().unwrap() {
+        let cam = c["camera"].as_str().unwrap();
+        let rc = &c["replay_cloudy"];
+        assert_eq!(rc["exit_code"].as_i64(), Some(0), "{cam}: replay failed");
+        let fs = &rc["forecast_summary"];
+        let pooled = num(fs, &["skill_pooled_5_15"]);
+        let yard = num(&r, &["yardsticks", c["cloudy_scene"].as_str().unwrap(), "pooled"]);
+        let name = |m: &str| format!("{cam} without pyranometers {m}");
+        check(
+            &name("pooled skill"),
+            pooled >= TARGET_YARDSTICK_SHARE * yard,
+            format!("5–15 min {pooled:.3} against {TARGET_YARDSTICK_SHARE} × yardstick {yard:.2} = {:.3}", TARGET_YARDSTICK_SHARE * yard),
+            &mut failures,
+        );
+        let (r1, sp1) = (num(fs, &["rmse_1"]), num(fs, &["rmse_sp_1"]));
+        check(&name("1-min RMSE below smart persistence"), r1 < sp1, format!("{r1:.1} against {sp1:.1} W/m²"), &mut failures);
+        let mbe = num(fs, &["max_abs_mbe"]);
+        check(&name("largest |MBE|"), mbe <= TARGET_MAX_MBE, format!("{mbe:.1} W/m² (target {TARGET_MAX_MBE})"), &mut failures);
     }
     assert!(failures.is_empty(), "{failures:#?}");
 }
