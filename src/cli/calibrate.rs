@@ -50,6 +50,12 @@ pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     crate::io::write_atomic(&rp, library.as_bytes())?;
     cal.camera.clear_reference = Some(PathBuf::from(file));
     crate::say!("wrote {} (clear-sky library: {} bins of zenith × sun angle from {} frames)", rp.display(), reference.library_bins(), reference.library_frames);
+    let clipped = reference.clipped_bins();
+    if clipped > 0 {
+        crate::say!(
+            "  the clear sky clipped in {clipped} more bins (near the sun, low in the sky: the camera is exposed for the zenith); without pyranometers their pixels are unknown, not cloud"
+        );
+    }
     let plot = crate::calibrate::residual_plot(&frames[frames.len() / 2].1, &fit, &dets);
     let pp = dir.join(format!("{name}-residuals.png"));
     crate::io::write_atomic(&pp, &crate::io::encode_png_rgb(&plot))?;

@@ -185,6 +185,11 @@ impl Reference {
         r
     }
 
+    /// How many bins are marked as clipped clear sky ([`SegmentParams::library_keeps_clipped`]).
+    pub fn clipped_bins(&self) -> usize {
+        self.clipped.iter().filter(|c| **c).count()
+    }
+
     /// How many library bins hold data.
     pub fn library_bins(&self) -> usize {
         self.weight.iter().filter(|w| **w > 0.5).count()
