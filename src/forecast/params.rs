@@ -146,11 +146,6 @@ pub struct IrradianceParams {
     /// inward. 0: no relaxation. The default, 500 m, is about a cumulus cloud's size (from memory,
     /// no source); 250, 500, 1500 and 4000 m were measured (README, "Where the clear sky clips").
     pub fill_correlation_m: f64,
-    /// A pyranometer whose look-up box holds no cell the camera saw (all unknown: glare, or sky
-    /// too white to judge) still gives the tuning a row, with the box's features read from the
-    /// forecast's tables (unseen cells filled from their neighbours, [`TransmittanceMap::for_layer`]).
-    /// Off (the default): such readings are not learnt from.
-    pub tune_unseen_from_fill: bool,
 }
 
 impl Default for IrradianceParams {
@@ -185,7 +180,6 @@ impl Default for IrradianceParams {
             glare_fill_max_age_s: 180.0,
             // A cumulus cloud's size (from memory, no source).
             fill_correlation_m: 500.0,
-            tune_unseen_from_fill: false,
             // Huber (1964); 0.05 of clear-sky GHI, about the scatter of a well-placed reading
             // (own choice: 0.05, 0.1 and 0.2 were tried; 0.05 gave the best skill on four of five
             // synthetic scenes, e.g. broken cumulus 0.71 → 0.79 at 5 min).

@@ -167,9 +167,6 @@ impl ForecastStage {
         let continuous = self.irradiance.thin_beam_from_score;
         let class_beams = [self.irradiance.beam_clear, self.irradiance.beam_thin, self.irradiance.beam_thick];
         let mut rows = vec![];
-        // The forecast's tables (unseen cells filled), built when a look-up box holds no seen cell
-        // and `tune_unseen_from_fill` is on.
-        let mut filled_tables: Option<crate::forecast::TransmittanceMap> = None;
         for (col, pos) in cols {
             let Some((y, mid)) = m.completed_at(*col, t) else { continue };
             let lag_s = (*t - mid).num_milliseconds() as f64 / 1000.0;
@@ -214,13 +211,7 @@ impl ForecastStage {
                 }
             }
             if k == 0.0 {
-                if !self.irradiance.tune_unseen_from_fill {
-                    continue;
-                }
-                let tables = filled_tables.get_or_insert_with(|| crate::forecast::TransmittanceMap::new(map, &self.irradiance));
-                let Some(f) = tables.box_shares(cx, cy, r) else { continue };
-                share = f;
-                k = 1.0;
+                continue;
             }
             let beam = clear.dni_wm2 * cz / clear.ghi_wm2;
             let bright = if two_layers { 0.0 } else { beam * share[3] / k };
