@@ -8,7 +8,7 @@ use super::Pyranometers;
 use super::tuner::Tuner;
 use crate::cloudmap::{CloudMap, Grid};
 use crate::config::Site;
-use crate::forecast::{Advection, BandWidening, Forecast, ForecastInput, HorizonSky, IrradianceParams, PersistenceBlend, TransmittanceMap, ensemble_with, quantile_sorted, sun_ray_plane_point};
+use crate::forecast::{Advection, BandWidening, Forecast, ForecastInput, HorizonSky, IrradianceParams, PersistenceBlend, SharedTables, TransmittanceMap, ensemble_with, quantile_sorted, sun_ray_plane_point};
 use crate::motion::TrackedLayer;
 use crate::plant::Plant;
 use crate::segment::Class;
@@ -151,8 +151,11 @@ impl ForecastStage {
     ///
     /// With two layers tracked the brightness feature is left out (its regressor is 0), as in the
     /// forecast ([`crate::forecast::forecast_with`]).
+    ///
+    /// `whole`: the frame's shared whole-map tables, used for the filled look-ups when they fit
+    /// `map` and the transmittances in use.
     #[allow(clippy::too_many_arguments)]
-    pub(super) fn tune(&mut self, cx: SiteInputs, t: &DateTime<Utc>, sun: &SunPosition, map: &CloudMap, [cf, thin_cf]: [f64; 2], (cbh, cbh_factor): (f64, f64), v_mps: Option<[f64; 2]>, two_layers: bool) {
+    pub(super) fn tune(&mut self, cx: SiteInputs, t: &DateTime<Utc>, sun: &SunPosition, (map, whole): (&CloudMap, &SharedTables), [cf, thin_cf]: [f64; 2], (cbh, cbh_factor): (f64, f64), v_mps: Option<[f64; 2]>, two_layers: bool) {
         if !self.irradiance.tune_from_measurements {
             return;
         }
@@ -217,7 +220,10 @@ impl ForecastStage {
                 if !self.irradiance.tune_unseen_from_fill {
                     continue;
                 }
-                let tables = filled_tables.get_or_insert_with(|| crate::forecast::TransmittanceMap::new(map, &self.irradiance));
+                let tables = match whole.get(map, &self.irradiance) {
+                    Some(t) => t,
+                    None => filled_tables.get_or_insert_with(|| crate::forecast::TransmittanceMap::new(map, &self.irradiance)),
+                };
                 let Some(f) = tables.box_shares(cx, cy, r) else { continue };
                 share = f;
                 k = 1.0;
