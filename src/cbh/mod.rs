@@ -280,6 +280,9 @@ pub struct CbhFrame<'a> {
     pub altitude_m: f64,
     /// Clear-sky model.
     pub model: crate::clearsky::ClearSkyModel,
+    /// The frame's whole-map tables shared with the other stages ([`crate::forecast::SharedTables`]);
+    /// `None`, or tables that do not fit `map` and `params`: the shadow timing builds its own.
+    pub tables: Option<&'a crate::forecast::SharedTables<'a>>,
 }
 
 impl CbhState {
@@ -421,8 +424,15 @@ impl CbhState {
             let idx: Vec<usize> = cols.iter().map(|c| c.0).collect();
             let pos: Vec<[f64; 2]> = cols.iter().map(|c| c.1).collect();
             let rs = readings(m, &idx, &f.time, st.params.sample_window_s, &f.observer, f.altitude_m, f.model);
-            let tm = TransmittanceMap::new(f.map, f.params);
-            st.observe(f.time, &tm, f.params.beams(), f.map.grid, f.map_cbh_m, f.camera_m, v, f.params.blur_min_m, &pos, &rs);
+            let own;
+            let tm = match f.tables.and_then(|s| s.get(f.map, f.params)) {
+                Some(t) => t,
+                None => {
+                    own = TransmittanceMap::new(f.map, f.params);
+                    &own
+                }
+            };
+            st.observe(f.time, tm, f.params.beams(), f.map.grid, f.map_cbh_m, f.camera_m, v, f.params.blur_min_m, &pos, &rs);
             match st.estimate() {
                 Ok(fit) => {
                     // One height cannot judge a configured base while two layers are tracked (the
@@ -481,6 +491,7 @@ mod tests {
             observer: site.site.observer(),
             altitude_m: 640.0,
             model: site.site.clear_sky(),
+            tables: None,
         }
     }
 

@@ -46,7 +46,7 @@ mod tables;
 pub use blend::PersistenceBlend;
 pub use ensemble::{Band, BandWidening, ensemble_with, quantile_sorted};
 pub use params::IrradianceParams;
-pub use tables::TransmittanceMap;
+pub use tables::{SharedTables, TransmittanceMap};
 use lookup::{HorizonLookUp, ScaledPoint, scaled_points};
 
 /// The sun and the clear sky at one forecast horizon (shared by the central forecast and every

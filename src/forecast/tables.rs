@@ -20,6 +20,81 @@ pub struct TransmittanceMap {
     /// Mean transmittance of the known cells.
     pub mean: f64,
     total_shares: [f64; FEATURES],
+    /// What of the settings the summed-area table was built from ([`TableKey`]).
+    key: TableKey,
+}
+
+/// What a summed-area table depends on besides its map: whether it is the whole map's (no layer,
+/// no patch), and the settings read while building it (the class transmittances only through
+/// `thin_beam_from_score`). The coefficients of the features (`beams`) and the mean are not in it:
+/// they can be set afresh on a built table ([`SharedTables::take_for`]). Compared bit for bit.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+struct TableKey {
+    whole: bool,
+    thin_beam_from_score: bool,
+    class_beams: [u64; 3],
+    fill_correlation_m: u64,
+    fill_layer_behind: bool,
+}
+
+impl TableKey {
+    fn of(p: &IrradianceParams, whole: bool) -> TableKey {
+        let continuous = p.thin_beam_from_score;
+        TableKey {
+            whole,
+            thin_beam_from_score: continuous,
+            class_beams: if continuous { [p.beam_clear, p.beam_thin, p.beam_thick].map(f64::to_bits) } else { [0; 3] },
+            fill_correlation_m: p.fill_correlation_m.to_bits(),
+            fill_layer_behind: p.fill_layer_behind,
+        }
+    }
+}
+
+/// A frame's whole-map tables ([`TransmittanceMap::new`]), built at most once and shared by the
+/// stages that read them: the shadow timing of the cloud base ([`crate::cbh`]), the tuning's
+/// filled look-ups and the forecast's single layer. Each stage asks for the map and settings it
+/// would have built from and gets the kept tables only when those would be the same table
+/// ([`TableKey`]); otherwise it builds its own, so sharing never changes a result.
+pub struct SharedTables<'a> {
+    map: &'a CloudMap,
+    tables: std::cell::OnceCell<TransmittanceMap>,
+}
+
+impl<'a> SharedTables<'a> {
+    /// Nothing built yet, for `map`.
+    pub fn new(map: &'a CloudMap) -> SharedTables<'a> {
+        SharedTables { map, tables: Default::default() }
+    }
+
+    /// The whole-map tables of `map` under `p`, built on the first call; `None` when `map` is not
+    /// the shared one or the kept tables were built under settings that give another table.
+    /// Their `beams` and `mean` are the first caller's: read them with explicit coefficients
+    /// ([`TransmittanceMap::box_mean_with`], [`TransmittanceMap::box_shares`]).
+    pub fn get(&self, map: &CloudMap, p: &IrradianceParams) -> Option<&TransmittanceMap> {
+        if !std::ptr::eq(map, self.map) {
+            return None;
+        }
+        let t = self.tables.get_or_init(|| TransmittanceMap::new(map, p));
+        (t.key == TableKey::of(p, true)).then_some(t)
+    }
+
+    /// The kept tables for [`TransmittanceMap::for_layer_with`]`(map, p, layer, patch)`, with the
+    /// coefficients and mean of `p`, when they are that table: the shared map's whole tables
+    /// (no layer, no patch) built under the same [`TableKey`]. Else `None` (nothing built here).
+    pub fn take_for(&mut self, map: &CloudMap, p: &IrradianceParams, layer: Option<(&[u8], u8)>, patch: Option<(&[usize], [f32; FEATURES])>) -> Option<TransmittanceMap> {
+        if !std::ptr::eq(map, self.map) || layer.is_some() || patch.is_some() {
+            return None;
+        }
+        let mut t = self.tables.take().filter(|t| t.key == TableKey::of(p, true))?;
+        t.beams = p.beams();
+        t.mean = mean_of(&t.total_shares, &t.beams);
+        Some(t)
+    }
+}
+
+/// The mean transmittance of the known cells from their mean features and the coefficients.
+fn mean_of(total_shares: &[f64; FEATURES], beams: &[f64; FEATURES]) -> f64 {
+    total_shares.iter().zip(beams).map(|(s, b)| s * b).sum()
 }
 
 /// Buffers reused from frame to frame: a 256² map's summed-area table is 1 MB; a fresh one each
@@ -243,8 +318,8 @@ impl TransmittanceMap {
         let total_shares =
             if total[FEATURES] > 0 { std::array::from_fn(|q| total[q] as f64 / SHARE_UNIT / total[FEATURES] as f64) } else { [f64::NAN; FEATURES] };
         let beams = p.beams();
-        let mean = total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum();
-        TransmittanceMap { n, sat, beams, mean, total_shares }
+        let mean = mean_of(&total_shares, &beams);
+        TransmittanceMap { n, sat, beams, mean, total_shares, key: TableKey::of(p, layer.is_none() && patch.is_none()) }
     }
 
     /// Mean features (clear, thin and thick shares, brightness feature) over the box of half-width
@@ -477,5 +552,63 @@ mod tests {
         let fresh = std::thread::scope(|s| s.spawn(|| TransmittanceMap::new(&b, &p).sat.clone()).join().expect("thread"));
         drop(TransmittanceMap::new(&a, &p));
         assert_eq!(TransmittanceMap::new(&b, &p).sat, fresh);
+    }
+
+    /// The shared whole-map tables ([`SharedTables`]): built under one stage's settings and taken
+    /// for the forecast's (other coefficients, same table settings) they equal the forecast's own
+    /// fresh build in every field; never given for another map, a layer, a patch, or settings that
+    /// build another table.
+    #[test]
+    fn shared_tables_equal_a_fresh_build_or_are_not_given() {
+        let g = Grid::new(&MapParams { cells: 16, ..Default::default() }, 1000.0);
+        let class: Vec<u8> = (0..256u64).map(|k| (crate::rng::hash64(k ^ 7) % 4) as u8).collect();
+        let brightness: Vec<f32> = (0..256u64).map(|k| (crate::rng::hash64(k ^ 99) % 200) as f32 / 1000.0 - 0.1).collect();
+        let thin_depth: Vec<f32> = (0..256u64).map(|k| (crate::rng::hash64(k ^ 5) % 1000) as f32 / 1000.0).collect();
+        let map = CloudMap { grid: g, score: vec![0.0; 256], class, in_view: vec![true; 256], offset: 0.0, brightness, thin_depth };
+        let same = |a: &TransmittanceMap, b: &TransmittanceMap| {
+            assert_eq!(a.sat, b.sat);
+            assert_eq!(a.beams.map(f64::to_bits), b.beams.map(f64::to_bits));
+            assert_eq!(a.mean.to_bits(), b.mean.to_bits());
+            assert_eq!(a.total_shares.map(f64::to_bits), b.total_shares.map(f64::to_bits));
+            assert_eq!((a.n, a.key), (b.n, b.key));
+        };
+        for continuous in [false, true] {
+            let first = IrradianceParams { thin_beam_from_score: continuous, ..Default::default() };
+            // As tuned: other coefficients; with the thin share from the score the class values
+            // enter the table, so they stay.
+            let tuned = IrradianceParams { beam_cloud_brightness: 0.3, beam_thin: if continuous { first.beam_thin } else { 0.6 }, diffuse_per_cover: 0.1, ..first };
+            let mut shared = SharedTables::new(&map);
+            let t = shared.get(&map, &first).expect("built for its own map");
+            same(t, &TransmittanceMap::new(&map, &first));
+            assert!(shared.get(&map, &tuned).is_some());
+            let taken = shared.take_for(&map, &tuned, None, None).expect("same table");
+            same(&taken, &TransmittanceMap::for_layer_with(&map, &tuned, None, None));
+            // Taken once: nothing left to give.
+            assert!(shared.take_for(&map, &tuned, None, None).is_none());
+        }
+        let p = IrradianceParams::default();
+        let copy = map.clone();
+        let labels = vec![0u8; 256];
+        let cells = [3usize, 4];
+        let others = [
+            IrradianceParams { fill_correlation_m: 200.0, ..p },
+            IrradianceParams { thin_beam_from_score: true, ..p },
+        ];
+        let mut shared = SharedTables::new(&map);
+        assert!(shared.get(&copy, &p).is_none(), "another map");
+        assert!(shared.get(&map, &p).is_some());
+        assert!(shared.take_for(&copy, &p, None, None).is_none());
+        assert!(shared.take_for(&map, &p, Some((&labels, 0)), None).is_none());
+        assert!(shared.take_for(&map, &p, None, Some((&cells, [1.0, 0.0, 0.0, 0.0]))).is_none());
+        for q in others {
+            assert!(shared.get(&map, &q).is_none(), "{q:?}");
+        }
+        // With the thin share from the score, other class values build another table.
+        let c = IrradianceParams { thin_beam_from_score: true, ..p };
+        let shared = SharedTables::new(&map);
+        assert!(shared.get(&map, &c).is_some());
+        assert!(shared.get(&map, &IrradianceParams { beam_thin: 0.6, ..c }).is_none());
+        let mut shared = shared;
+        assert!(shared.take_for(&map, &IrradianceParams { beam_thick: 0.1, ..c }, None, None).is_none());
     }
 }

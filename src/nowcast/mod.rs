@@ -578,7 +578,9 @@ impl Nowcaster {
         let t_motion = Clock::now();
         let layer_v: Vec<[f64; 2]> = moved.layers.iter().map(|l| l.motion.v_mps).collect();
         self.stereo_stage(frame, reduced, &sun, labels.as_deref().map(|l| crate::stereo::LayerCells::from_labels(&map, l, 2)), &layer_v);
-        let cbh_est = self.cbh_stage(&frame.time, &map, (cbh, configured), motion.map(|m| m.v_mps), layer_v.get(1).copied());
+        // The map's whole tables, built at most once for the stages that read them unchanged.
+        let mut whole = crate::forecast::SharedTables::new(&map);
+        let cbh_est = self.cbh_stage(&frame.time, &map, (cbh, configured), motion.map(|m| m.v_mps), layer_v.get(1).copied(), &whole);
         let cbh_factor = cbh_est.cbh_m / cbh;
         // The second layer's base: its prior and its own stereo estimate (exactly the prior, at
         // factor 1 and the prior's spread, with one camera and no known layers).
@@ -614,9 +616,11 @@ impl Nowcaster {
                     let t = if veil.is_none_or(|v| v as usize == l) { *t } else { f64::INFINITY };
                     (cells.as_slice(), glare_fill::sun_line_features(t, input.params.beams()))
                 });
-                crate::forecast::TransmittanceMap::for_layer_with(m, &input.params, lb.map(|lb| (lb, l as u8)), patch)
+                let layer = lb.map(|lb| (lb, l as u8));
+                whole.take_for(m, &input.params, layer, patch).unwrap_or_else(|| crate::forecast::TransmittanceMap::for_layer_with(m, &input.params, layer, patch))
             })
             .collect();
+        drop(whole);
         let skies = horizon_skies(&input);
         let mut fc = forecast_with(&tms, map.grid, &input, &skies);
         let t_central = Clock::now();
@@ -672,7 +676,15 @@ impl Nowcaster {
     /// Cloud base height: every estimate combined (ceilometer or configured value `prior_cbh_m`,
     /// stereo, shadow timing at the pyranometers); the map lies on its plane `map_cbh_m` and the
     /// forecast scales its look-ups by the ratio (`cbh_factor`).
-    fn cbh_stage(&mut self, t: &DateTime<Utc>, map: &CloudMap, (map_cbh_m, prior_cbh_m): (f64, f64), v_map_mps: Option<[f64; 2]>, v_other_mps: Option<[f64; 2]>) -> crate::cbh::CbhEstimate {
+    fn cbh_stage(
+        &mut self,
+        t: &DateTime<Utc>,
+        map: &CloudMap,
+        (map_cbh_m, prior_cbh_m): (f64, f64),
+        v_map_mps: Option<[f64; 2]>,
+        v_other_mps: Option<[f64; 2]>,
+        tables: &crate::forecast::SharedTables,
+    ) -> crate::cbh::CbhEstimate {
         self.cbh_state.update(&crate::cbh::CbhFrame {
             time: *t,
             map,
@@ -687,6 +699,7 @@ impl Nowcaster {
             observer: self.site.observer(),
             altitude_m: self.site.file.site.elevation_m,
             model: self.site.clear_sky_model(),
+            tables: Some(tables),
         })
     }
 
