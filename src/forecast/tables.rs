@@ -51,8 +51,8 @@ impl TableKey {
 }
 
 /// A frame's whole-map tables ([`TransmittanceMap::new`]), built at most once and shared by the
-/// stages that read them: the shadow timing of the cloud base ([`crate::cbh`]), the tuning's
-/// filled look-ups and the forecast's single layer. Each stage asks for the map and settings it
+/// stages that read them: the shadow timing of the cloud base ([`crate::cbh`]) and the forecast's
+/// single layer. Each stage asks for the map and settings it
 /// would have built from and gets the kept tables only when those would be the same table
 /// ([`TableKey`]); otherwise it builds its own, so sharing never changes a result.
 pub struct SharedTables<'a> {
