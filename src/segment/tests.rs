@@ -1,0 +1,136 @@
+//! Unit tests of the segmentation and its clear-sky library.
+use super::*;
+
+/// A frame's reference without offset, glare measured or exposure.
+fn plain_reference<'a>(r: &'a Reference, p: &'a SegmentParams) -> FrameReference<'a> {
+    FrameReference { reference: r, params: p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None }
+}
+
+fn geom(z: f32, g: f32) -> PixelGeom {
+    PixelGeom { z_deg: z, gamma_deg: g }
+}
+
+/// A clear day whose sky clips in one bin: with `library_keeps_clipped` the bin is learnt from
+/// the ratio as read, marked, written and read back with its mark, and its pixels are unknown;
+/// without it the bin has no value and the parametric default judges it (common practice, no
+/// source: a clipped channel bounds the ratio, it does not measure it).
+#[test]
+fn bins_where_the_clear_sky_clips_are_marked_and_not_judged() {
+    let frame = || {
+        // Bin (z 70°, γ 16°) clips in blue; bin (z 70°, γ 40°) does not.
+        let clipped = (0..6).map(|_| ([230u8, 248, 255], geom(70.5, 16.5)));
+        let open = (0..6).map(|_| ([150u8, 190, 220], geom(70.5, 40.5)));
+        clipped.chain(open).collect::<Vec<_>>().into_iter()
+    };
+    let off = SegmentParams { library_keeps_clipped: false, ..SegmentParams::default() };
+    let on = SegmentParams { library_keeps_clipped: true, ..SegmentParams::default() };
+    let (lib_off, lib_on) = (Reference::from_clear_samples(&off, (0..4).map(|_| frame()), 3), Reference::from_clear_samples(&on, (0..4).map(|_| frame()), 3));
+    let (clip_bin, open_bin) = (lib_index(70.5, 16.5), lib_index(70.5, 40.5));
+    assert_eq!(lib_off.weight[clip_bin], 0.0);
+    assert!(lib_on.weight[clip_bin] == 0.0 && lib_on.clipped[clip_bin] && (lib_on.clipped_read[clip_bin].0 - 230.0 / 255.0).abs() < 1e-4);
+    assert!(!lib_on.clipped[open_bin] && (lib_on.lib[open_bin] - lib_off.lib[open_bin]).abs() < 1e-6);
+    assert_eq!(lib_on.bright[clip_bin], 0.0, "no brightness from clipped pixels");
+    let back = Reference::from_csv(&lib_on.to_csv()).unwrap();
+    assert!(back.clipped[clip_bin] && !back.clipped[open_bin]);
+    // Classified: unknown in the clipped bin whatever the pixel, judged elsewhere; with the
+    // bins judged (pyranometers held) the same as a library without the setting.
+    let mut back = back;
+    let fr = plain_reference(&back, &on);
+    assert_eq!(fr.classify([120, 150, 200], geom(70.5, 16.5)).1, Class::Unknown);
+    assert_eq!(fr.classify([150, 190, 220], geom(70.5, 40.5)).1, Class::Clear);
+    let fr_off = plain_reference(&lib_off, &off);
+    let px = [230, 248, 255];
+    assert_ne!(fr_off.classify(px, geom(70.5, 16.5)).1, Class::Unknown);
+    back.clipped_bins_unknown = false;
+    let fr_judged = plain_reference(&back, &on);
+    assert_eq!(fr_judged.classify(px, geom(70.5, 16.5)).1, fr_off.classify(px, geom(70.5, 16.5)).1);
+    assert!(Reference::from_csv("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips\n70,16,0.9,4,0,2\n").unwrap_err().contains("clear_sky_clips"));
+}
+
+#[test]
+fn polynomial_arc_cosine_matches_the_library_one() {
+    // Abramowitz & Stegun 4.4.46 promise 2e-8 rad; f32 rounding allows a few 1e-7.
+    let worst = (-1000..=1000).map(|i| i as f32 / 1000.0).map(|x| (acos_approx(x) - x.acos()).abs()).fold(0f32, f32::max);
+    assert!(worst < 1e-6, "worst error {worst} rad");
+}
+
+#[test]
+fn blue_is_clear_white_is_thick_grey_blue_is_thin() {
+    let p = SegmentParams::default();
+    let r = Reference::default();
+    let fr = plain_reference(&r, &p);
+    assert_eq!(fr.classify([70, 110, 200], geom(30.0, 90.0)).1, Class::Clear);
+    assert_eq!(fr.classify([230, 232, 240], geom(30.0, 90.0)).1, Class::Thick);
+    assert_eq!(fr.classify([160, 175, 210], geom(30.0, 90.0)).1, Class::Thin);
+}
+
+#[test]
+fn whitish_circumsolar_sky_is_not_cloud() {
+    // R/B 0.80 is cloud far from the sun but clear sky 5° from it (default reference there: 0.81).
+    let p = SegmentParams::default();
+    let r = Reference::default();
+    let fr = plain_reference(&r, &p);
+    assert_eq!(fr.classify([199, 219, 248], geom(40.0, 5.0)).1, Class::Clear);
+    assert_ne!(fr.classify([199, 219, 248], geom(40.0, 100.0)).1, Class::Clear);
+}
+
+#[test]
+fn saturated_sun_is_unknown_and_beyond_zenith_limit_too() {
+    let p = SegmentParams::default();
+    let r = Reference::default();
+    let fr = plain_reference(&r, &p);
+    assert_eq!(fr.classify([255, 255, 255], geom(30.0, 1.0)).1, Class::Unknown);
+    assert_eq!(fr.classify([70, 110, 200], geom(91.0, 90.0)).1, Class::Unknown);
+}
+
+#[test]
+fn clipped_patch_near_the_sun_is_cloud_but_a_clipped_ring_is_glare() {
+    // 8° from the sun, a white clipped pixel: thick cloud when most of its 1° ring is unclipped
+    // clear sky (a bright cloud lit from behind), unknown when the whole ring is clipped (glare).
+    let p = SegmentParams::default();
+    let r = Reference::default();
+    let white = [255u8, 255, 255];
+    let ring = |clipped_share: f64| {
+        (0..100).map(move |i| {
+            let rgb = if (i as f64) < clipped_share * 100.0 { white } else { [150u8, 190, 240] };
+            (rgb, geom(40.0, 8.5))
+        })
+    };
+    let patchy = r.for_frame(&p, ring(0.3));
+    assert_eq!(patchy.classify(white, geom(40.0, 8.5)).1, Class::Thick);
+    let glare = r.for_frame(&p, ring(1.0));
+    assert_eq!(glare.classify(white, geom(40.0, 8.5)).1, Class::Unknown);
+    // A ring with too few samples to judge: glare, as before.
+    let sparse = r.for_frame(&p, ring(0.3).take(5));
+    assert_eq!(sparse.classify(white, geom(40.0, 8.5)).1, Class::Unknown);
+    // Beyond the glare zone the ring test does not apply.
+    assert_eq!(glare.classify(white, geom(40.0, 30.0)).1, Class::Thick);
+}
+
+#[test]
+fn thick_threshold_falls_toward_the_horizon() {
+    let p = SegmentParams { thick_horizon_drop: 0.2, ..Default::default() };
+    assert!((p.thick_at(0.0) - p.thick_score as f32).abs() < 1e-6);
+    assert!((p.thick_at(90.0) - (p.thick_score - 0.2) as f32).abs() < 1e-6);
+    // (60/90)⁴ = 0.1975: a score of 0.84 is thick at 60° (threshold 0.835), thin at the zenith.
+    let r = Reference::default();
+    let fr = plain_reference(&r, &p);
+    let reference_rb = p.default_reference(60.0, 90.0);
+    let rb = reference_rb + 0.84 * (p.cloud_rb as f32 - reference_rb);
+    let rgb = [(rb * 200.0).round() as u8, 200, 200];
+    assert_eq!(fr.classify(rgb, geom(60.0, 90.0)).1, Class::Thick);
+    let reference_rb0 = p.default_reference(0.0, 90.0);
+    let rb0 = reference_rb0 + 0.84 * (p.cloud_rb as f32 - reference_rb0);
+    assert_eq!(fr.classify([(rb0 * 200.0).round() as u8, 200, 200], geom(0.0, 90.0)).1, Class::Thin);
+}
+
+#[test]
+fn library_overrides_default_once_learned() {
+    let p = SegmentParams::default();
+    let mut r = Reference::default();
+    let sample = (0..50).map(|_| ([150u8, 170, 200], geom(31.0, 91.0)));
+    r.learn(&p, sample);
+    let fr = plain_reference(&r, &p);
+    assert!((fr.at(geom(31.0, 91.0)) - 0.75).abs() < 1e-6);
+    assert_eq!(fr.classify([150, 170, 200], geom(31.0, 91.0)).1, Class::Clear);
+}
