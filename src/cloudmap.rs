@@ -115,6 +115,8 @@ pub struct Lut {
     pub z_deg: Vec<f32>,
     /// Unit ENU direction of the cell's centre.
     pub dir: Vec<[f32; 3]>,
+    /// The camera's position (east, north, up) \[m\] in the grid's frame, from which `dir` is taken.
+    pub camera_m: [f64; 3],
     /// Per cell with a pixel: the top-left pixel index of the 2 × 2 around the exact image point
     /// and the point's offset from it (x, y in 1/256 px), for bilinear reading. Near the horizon a
     /// pixel spans several cells; read to the nearest pixel, the map there would move in whole-pixel
@@ -222,7 +224,7 @@ impl Lut {
         keys.extend((0..n * n).filter(|&k| interpolate[k]).map(|k| pack(bilinear[k].0, k)));
         keys.sort_unstable();
         let bilinear_order: Vec<u32> = keys.iter().map(|&x| x as u32).collect();
-        Lut { grid, pixel, z_deg, dir, bilinear, interpolate, memory_order, bilinear_order }
+        Lut { grid, pixel, z_deg, dir, bilinear, interpolate, memory_order, bilinear_order, camera_m }
     }
 
     /// Cells with a pixel.

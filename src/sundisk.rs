@@ -210,20 +210,69 @@ fn ring_counts(map: &crate::cloudmap::CloudMap, lut: &crate::cloudmap::Lut, sun:
     let d = sun.direction_enu().map(|v| v as f32);
     let cos_ring = SUN_RING_DEG.to_radians().cos();
     let mut n = RingCounts { known: 0, thin: 0, thick: 0 };
-    for (k, c) in map.class.iter().enumerate() {
-        let Some(u) = lut.dir.get(k) else { break };
-        if u[0] * d[0] + u[1] * d[1] + u[2] * d[2] < cos_ring {
-            continue;
+    let side = lut.grid.n;
+    let cells = map.class.len().min(lut.dir.len());
+    // Only the cells in the ring's bounding box are tested (the whole map was 1 % of a replay's
+    // instructions); the same test, so the same counts.
+    let ([i0, i1], [j0, j1]) = ring_box(lut, sun.direction_enu()).unwrap_or(([0, side.saturating_sub(1)], [0, side.saturating_sub(1)]));
+    for j in j0..=j1 {
+        for k in (j * side + i0..=j * side + i1).filter(|k| *k < cells) {
+            let u = lut.dir[k];
+            if u[0] * d[0] + u[1] * d[1] + u[2] * d[2] < cos_ring {
+                continue;
+            }
+            match Class::from_u8(map.class[k]) {
+                Class::Unknown => continue,
+                Class::Clear => {}
+                Class::Thin => n.thin += 1,
+                Class::Thick => n.thick += 1,
+            }
+            n.known += 1;
         }
-        match Class::from_u8(*c) {
-            Class::Unknown => continue,
-            Class::Clear => {}
-            Class::Thin => n.thin += 1,
-            Class::Thick => n.thick += 1,
-        }
-        n.known += 1;
     }
     n
+}
+
+/// The cells (columns `[i0, i1]`, rows `[j0, j1]`, inclusive) that hold every cell whose direction
+/// lies within [`SUN_RING_DEG`] of the sun's: the ring's edge, 90 directions around the sun,
+/// carried to the plane (a cone about the camera meets a plane in a convex conic, so the edge's box
+/// holds it), padded by 2 cells. Empty ranges when the ring misses the grid; `None` (test every
+/// cell) when the ring reaches within 3° of the horizon or the grid is empty.
+fn ring_box(lut: &crate::cloudmap::Lut, s: [f64; 3]) -> Option<([usize; 2], [usize; 2])> {
+    let g = &lut.grid;
+    let height_m = g.height_m - lut.camera_m[2];
+    if g.n == 0 || height_m <= 0.0 {
+        return None;
+    }
+    // Two unit vectors across the sun's direction.
+    let a = if s[2].abs() < 0.9 { [0.0, 0.0, 1.0] } else { [1.0, 0.0, 0.0] };
+    let cross = |p: [f64; 3], q: [f64; 3]| [p[1] * q[2] - p[2] * q[1], p[2] * q[0] - p[0] * q[2], p[0] * q[1] - p[1] * q[0]];
+    let unit = |p: [f64; 3]| {
+        let l = (p[0] * p[0] + p[1] * p[1] + p[2] * p[2]).sqrt();
+        p.map(|v| v / l)
+    };
+    let e1 = unit(cross(s, a));
+    let e2 = cross(s, e1);
+    let (sin_r, cos_r) = f64::from(SUN_RING_DEG).to_radians().sin_cos();
+    let min_up = 3f64.to_radians().sin();
+    let (mut lo, mut hi) = ([f64::INFINITY; 2], [f64::NEG_INFINITY; 2]);
+    for step in 0..90 {
+        let (sp, cp) = (step as f64 * 4.0).to_radians().sin_cos();
+        let b: [f64; 3] = std::array::from_fn(|q| cos_r * s[q] + sin_r * (cp * e1[q] + sp * e2[q]));
+        if b[2] < min_up {
+            return None;
+        }
+        let (ci, cj) = g.to_cell([lut.camera_m[0] + height_m * b[0] / b[2], lut.camera_m[1] + height_m * b[1] / b[2]]);
+        lo = [lo[0].min(ci), lo[1].min(cj)];
+        hi = [hi[0].max(ci), hi[1].max(cj)];
+    }
+    let last = (g.n - 1) as f64;
+    let range = |l: f64, h: f64| -> [usize; 2] {
+        let (l, h) = ((l - 2.0).floor().max(0.0), (h + 2.0).ceil().min(last));
+        // An empty range (l > h) when the ring misses the grid.
+        if l > h { [1, 0] } else { [l as usize, h as usize] }
+    };
+    Some((range(lo[0], hi[0]), range(lo[1], hi[1])))
 }
 
 /// Angle from the sun \[°\] within which the map's known cells say what cloud the sun is in.
@@ -303,6 +352,41 @@ mod tests {
 
     fn sun_at(zenith_deg: f64, azimuth_deg: f64) -> SunPosition {
         SunPosition { zenith_rad: zenith_deg.to_radians(), apparent_zenith_rad: zenith_deg.to_radians(), azimuth_rad: azimuth_deg.to_radians(), earth_sun_distance_au: 1.0 }
+    }
+
+    /// The ring's counts from the bounding box equal the whole map's test, cell for cell, for
+    /// suns from overhead to near the horizon, on the main camera's grid and on one offset from it
+    /// (a second camera's), including a ring that misses the grid.
+    #[test]
+    fn ring_counts_in_the_box_are_the_whole_maps() {
+        use crate::cloudmap::{Grid, Lut, MapParams};
+        use crate::segment::Class;
+        let cam = Camera::ideal(512);
+        for (height_m, camera_m) in [(1500.0, [0.0, 0.0, 0.0]), (1200.0, [900.0, -400.0, 30.0]), (800.0, [-20_000.0, 0.0, 0.0])] {
+            let grid = Grid::new(&MapParams { cells: 96, ..Default::default() }, height_m);
+            let lut = Lut::build_from(&cam, None, grid, camera_m);
+            let n = grid.n * grid.n;
+            let class: Vec<u8> = (0..n as u64).map(|k| (crate::rng::hash64(k ^ 3) % 4) as u8).collect();
+            let map = crate::cloudmap::CloudMap { grid, score: vec![0.0; n], class, in_view: vec![true; n], offset: 0.0, brightness: vec![], thin_depth: vec![0.5; n] };
+            for zenith in [0.0, 5.0, 20.0, 45.0, 60.0, 75.0, 80.0, 86.0] {
+                for azimuth in [0.0, 37.0, 135.0, 250.0] {
+                    let sun = sun_at(zenith, azimuth);
+                    let d = sun.direction_enu().map(|v| v as f32);
+                    let cos_ring = SUN_RING_DEG.to_radians().cos();
+                    let mut want = [0usize; 3];
+                    for (k, c) in map.class.iter().enumerate() {
+                        let u = lut.dir[k];
+                        if u[0] * d[0] + u[1] * d[1] + u[2] * d[2] >= cos_ring && Class::from_u8(*c) != Class::Unknown {
+                            want[0] += 1;
+                            want[1] += (Class::from_u8(*c) == Class::Thin) as usize;
+                            want[2] += (Class::from_u8(*c) == Class::Thick) as usize;
+                        }
+                    }
+                    let got = ring_counts(&map, &lut, &sun);
+                    assert_eq!([got.known, got.thin, got.thick], want, "zenith {zenith}, azimuth {azimuth}, camera {camera_m:?}");
+                }
+            }
+        }
     }
 
     /// A frame with a clipped disc drawn at the sun's pixel (radius in degrees through the camera).
