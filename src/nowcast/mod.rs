@@ -545,9 +545,10 @@ impl Nowcaster {
         self.frame_qc.check_exposure(&pixels, &lut, &self.site.file.qc)?;
         let t_qc = Clock::now();
         let disk = crate::sundisk::observe(&frame.image, cam, obstruction, &sun, self.site.file.irradiance.sun_disk_radius_deg, self.site.file.segment.saturation_level);
-        // Where the clear sky clips, the pyranometers let the tuning learn what the sky there means;
-        // without them it is unknown (`segment.library_keeps_clipped`).
-        self.map_stage.reference.clipped_bins_unknown = pyranometers_of(&self.measurements).is_none();
+        // Where the clear sky clips, the samples are judged by their brightness
+        // (`segment.judge_clipped_bins`); with that off, the pyranometers let the tuning learn what
+        // the sky there means, and without them it is unknown (`segment.library_keeps_clipped`).
+        self.map_stage.reference.clipped_marks_in_use = self.site.file.segment.judge_clipped_bins || pyranometers_of(&self.measurements).is_none();
         let (map, [cf, thin_cf], far) = self.map_stage.build(&pixels, &lut, &sun, &self.site.file.segment);
         drop(pixels);
         // The sun's record reads this camera's own map, before the second camera fills it.

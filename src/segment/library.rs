@@ -18,17 +18,18 @@ pub struct Reference {
     /// Library mean clear-sky brightness per bin (largest channel; 0 = not learned): `brightness`.
     pub(super) bright: Vec<f32>,
     /// Bins where the clear day's sky clipped ([`Reference::from_clear_samples`] with
-    /// [`SegmentParams::library_keeps_clipped`]): their pixels are unknown while
-    /// `clipped_bins_unknown` holds. Such a bin keeps no library value (`weight` 0), as without
+    /// [`SegmentParams::library_keeps_clipped`]): while `clipped_marks_in_use` holds their pixels
+    /// are unknown, or judged by brightness ([`SegmentParams::judge_clipped_bins`]). Such a bin keeps no library value (`weight` 0), as without
     /// the setting.
     pub(super) clipped: Vec<bool>,
     /// The clear sky's R/B as read (clipped channels included) in each clipped bin, and the frames
     /// it was read in: a record, written to the CSV.
     pub(super) clipped_read: Vec<(f32, f32)>,
-    /// Whether the clipped bins' pixels are left unknown (true, the default) or judged as if the
-    /// bins held no value: the engine sets it false while pyranometers are held, which let the
+    /// Whether the clipped bins' marks are used (true, the default: their pixels unknown or judged
+    /// by brightness) or the bins are judged as if they held no value: the engine sets it false
+    /// while pyranometers are held and `segment.judge_clipped_bins` is off, which lets the
     /// transmittance tuning learn what the sky there means.
-    pub clipped_bins_unknown: bool,
+    pub clipped_marks_in_use: bool,
     /// Frames that updated the library.
     pub library_frames: usize,
 }
@@ -36,7 +37,7 @@ pub struct Reference {
 impl Default for Reference {
     fn default() -> Self {
         let n = LIB_Z_BINS * LIB_G_BINS;
-        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], clipped_read: vec![(0.0, 0.0); n], clipped_bins_unknown: true, library_frames: 0 }
+        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], clipped_read: vec![(0.0, 0.0); n], clipped_marks_in_use: true, library_frames: 0 }
     }
 }
 

@@ -154,18 +154,42 @@ pub struct SegmentParams {
     /// Weight of a new frame in the library's exponential mean.
     pub library_rate: f64,
     /// A clear day's library ([`Reference::from_clear_samples`]) also marks the bins where the
-    /// clear sky itself clips (`clear_sky_clips`), and while no pyranometer is held every pixel
-    /// there is unknown: the ratio cannot tell clear from cloud where the clear sky is clipped
-    /// near-white. Unmarked, such bins have no library value and the parametric default judges
+    /// clear sky itself clips (`clear_sky_clips`): the ratio cannot tell clear from cloud where the
+    /// clear sky is clipped near-white, so the samples there are judged by their brightness
+    /// ([`SegmentParams::judge_clipped_bins`], the default) or, with that off, are unknown while
+    /// no pyranometer is held. Unmarked, such bins have no library value and the parametric default judges
     /// them, which on a camera exposed for the zenith calls the low circumsolar sky cloud; with
     /// pyranometers the transmittance tuning learns what that "cloud" passes (its brightness
-    /// feature), so then the bins are judged as unmarked ([`Reference::clipped_bins_unknown`]).
+    /// feature), so with `judge_clipped_bins` off the bins are then judged as unmarked
+    /// ([`Reference::clipped_marks_in_use`]).
     /// Acts at `calibrate` (the marks are in the library file). Measured on the independent
     /// scenes (camera from `calibrate`), with `irradiance.fill_correlation_m` at 500 m: the
     /// breaking overcast without pyranometers went from pooled 5–15 min skill 0.29 to 0.40, 1-min
     /// RMSE 165.2 → 138.6 W/m² (persistence 165.6), largest |MBE| 108.9 → 17.7 W/m²; the broken
     /// cumulus is unchanged (0.56); the clear days' RMSE fell 11.6 / 11.9 → 7.4 / 6.9 W/m².
     pub library_keeps_clipped: bool,
+    /// Judge the samples in a bin marked as clipped clear sky ([`SegmentParams::library_keeps_clipped`])
+    /// by their brightness instead of leaving them unknown, and use the marks whether or not
+    /// pyranometers are held. The clear sky there read at or above `saturation_level` on the clear
+    /// day, so:
+    /// - a sample that clips (any channel at `saturation_level`) reads as that clear sky does:
+    ///   clear;
+    /// - a sample darker than the clipped clear sky by more than [`SegmentParams::dark_cloud_margin`]
+    ///   at the frame's exposure cannot be clear sky, and near the sun a cloud that sends less
+    ///   light than the clear sky scatters is an optically thick one (a thin cloud scatters
+    ///   forward and reads bright; `brightness`): thick. A frame whose exposure cannot be
+    ///   measured (overcast: too few clear samples) takes 1, exact for a fixed exposure and erring
+    ///   toward unknown for a camera that brightens its frames under cloud;
+    /// - a sample in between stays unknown: a bright cloud and a clear sky just short of clipping
+    ///   both read there.
+    ///
+    /// Measured against the independent renderer's true masks (breaking overcast, camera and
+    /// library from `calibrate`, every 6th frame, zenith 0–85°): of the samples made clear,
+    /// 99–100 % were clear in every 5–10° zenith band; of those made thick, 100 % were cloud; of
+    /// the unclipped bright ones left unknown, 43–59 % were cloud (README, "Where the clear sky
+    /// clips"). Off: every sample in a marked bin is unknown while no pyranometer is held, and the
+    /// marks are not used while one is.
+    pub judge_clipped_bins: bool,
 }
 
 impl Default for SegmentParams {
@@ -203,6 +227,7 @@ impl Default for SegmentParams {
             library_max_cloud_fraction: 0.02,
             library_rate: 0.2,
             library_keeps_clipped: true,
+            judge_clipped_bins: true,
         }
     }
 }
@@ -318,12 +343,12 @@ impl FrameReference<'_> {
         if self.reference.weight[bin] > 0.5 { self.reference.lib[bin] } else { default_rb + self.offset }
     }
 
-    /// Whether a sample in library bin `bin` cannot be judged because the clear sky there clips
-    /// ([`SegmentParams::library_keeps_clipped`]): a bright cloud and the clear sky both read as
-    /// near-white there.
+    /// Whether a sample in library bin `bin` cannot be judged by its ratio because the clear sky
+    /// there clips ([`SegmentParams::library_keeps_clipped`]): a bright cloud and the clear sky both
+    /// read as near-white there ([`FrameReference::judge_in_clipped_bin`] judges it instead).
     #[inline]
     fn clear_sky_clips(&self, bin: usize) -> bool {
-        self.reference.clipped_bins_unknown && self.reference.clipped[bin]
+        self.reference.clipped_marks_in_use && self.reference.clipped[bin]
     }
 
     /// Whether sample `k` of `sky` is judged by its ratio alone in this frame (plain sky outside the
@@ -341,6 +366,23 @@ impl FrameReference<'_> {
     pub fn plain_and_learned_all(&self, sky: &SkyGeometry, n: usize) -> Vec<bool> {
         let weight = &self.reference.weight;
         sky.plain[..n].iter().zip(&sky.gamma_deg[..n]).zip(&sky.bin[..n]).map(|((p, g), b)| *p && self.outside_glare(*g) && weight[*b as usize] > 0.5).collect()
+    }
+
+    /// The class of a sample reading `rgb` in a bin of clipped clear sky
+    /// ([`SegmentParams::judge_clipped_bins`]): clear where it clips as that clear sky does, thick
+    /// where it reads below `1 − dark_cloud_margin` of the saturation level at the frame's exposure
+    /// (1 when it was not measured), unknown in between (and always, with the setting off).
+    #[inline]
+    fn judge_in_clipped_bin(&self, rgb: [u8; 3]) -> Class {
+        let p = self.params;
+        if !p.judge_clipped_bins {
+            return Class::Unknown;
+        }
+        if rgb.iter().any(|c| *c >= p.saturation_level) {
+            return Class::Clear;
+        }
+        let expected = (self.exposure.unwrap_or(1.0) * f32::from(p.saturation_level)).min(255.0);
+        if p.dark_cloud_margin > 0.0 && crate::brightness::reading(rgb) < (1.0 - p.dark_cloud_margin as f32) * expected { Class::Thick } else { Class::Unknown }
     }
 
     /// Whether sample `k` of `sky`, reading `rgb`, is darker than the clear sky would be there
@@ -399,7 +441,8 @@ impl FrameReference<'_> {
         if g.plain && self.outside_glare(g.gamma_deg) {
             let rgb = plain_rgb();
             if self.clear_sky_clips(g.bin as usize) {
-                return (rgb, f32::NAN, Class::Unknown as u8);
+                let c = self.judge_in_clipped_bin(rgb);
+                return (rgb, f32::NAN, c as u8);
             }
             let (s, c) = self.classify_plain(rgb, self.reference_in_bin(g.bin as usize, g.default_rb), g.thick_score);
             (rgb, s, c)
@@ -430,7 +473,9 @@ impl FrameReference<'_> {
         }
         let bin = lib_index(g.z_deg, g.gamma_deg);
         if self.clear_sky_clips(bin) {
-            return (f32::NAN, Class::Unknown);
+            // Judged by brightness outside the glare only: within it a clipped sample may be the
+            // bloom over cloud.
+            return (f32::NAN, if self.outside_glare(g.gamma_deg) { self.judge_in_clipped_bin(rgb) } else { Class::Unknown });
         }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
         let r = self.reference_in_bin(bin, default_rb);

@@ -23,7 +23,7 @@ fn bins_where_the_clear_sky_clips_are_marked_and_not_judged() {
         clipped.chain(open).collect::<Vec<_>>().into_iter()
     };
     let off = SegmentParams { library_keeps_clipped: false, ..SegmentParams::default() };
-    let on = SegmentParams { library_keeps_clipped: true, ..SegmentParams::default() };
+    let on = SegmentParams { library_keeps_clipped: true, judge_clipped_bins: false, ..SegmentParams::default() };
     let (lib_off, lib_on) = (Reference::from_clear_samples(&off, (0..4).map(|_| frame()), 3), Reference::from_clear_samples(&on, (0..4).map(|_| frame()), 3));
     let (clip_bin, open_bin) = (lib_index(70.5, 16.5), lib_index(70.5, 40.5));
     assert_eq!(lib_off.weight[clip_bin], 0.0);
@@ -41,10 +41,43 @@ fn bins_where_the_clear_sky_clips_are_marked_and_not_judged() {
     let fr_off = plain_reference(&lib_off, &off);
     let px = [230, 248, 255];
     assert_ne!(fr_off.classify(px, geom(70.5, 16.5)).1, Class::Unknown);
-    back.clipped_bins_unknown = false;
+    back.clipped_marks_in_use = false;
     let fr_judged = plain_reference(&back, &on);
     assert_eq!(fr_judged.classify(px, geom(70.5, 16.5)).1, fr_off.classify(px, geom(70.5, 16.5)).1);
     assert!(Reference::from_csv("zenith_from_deg,gamma_from_deg,rb,weight,brightness,clear_sky_clips\n70,16,0.9,4,0,2\n").unwrap_err().contains("clear_sky_clips"));
+}
+
+/// With `judge_clipped_bins` a marked bin's samples are judged by brightness against the clipped
+/// clear sky (common practice, no source: a sample well below the level the clear sky clipped at
+/// cannot be that clear sky): one that clips is clear, one darker than `1 − dark_cloud_margin` of
+/// the saturation level at the frame's exposure is thick, one in between is unknown; within the
+/// glare every sample stays unknown.
+#[test]
+fn samples_in_clipped_bins_are_judged_by_brightness() {
+    let p = SegmentParams::default();
+    assert!(p.judge_clipped_bins && p.library_keeps_clipped);
+    let mut r = Reference::default();
+    let bin = lib_index(70.5, 30.5);
+    r.clipped[bin] = true;
+    r.clipped[lib_index(70.5, 10.5)] = true;
+    let g = geom(70.5, 30.5);
+    let fr = plain_reference(&r, &p);
+    let bound = (1.0 - p.dark_cloud_margin as f32) * f32::from(p.saturation_level);
+    assert_eq!(fr.classify([240, 250, 255], g).1, Class::Clear, "clips as the clear sky does");
+    assert_eq!(fr.classify([160, 167, 190], g).1, Class::Thick, "grey overcast well below the clipped level");
+    let just_below = bound.floor() as u8 - 1;
+    assert_eq!(fr.classify([just_below - 20, just_below - 10, just_below], g).1, Class::Thick);
+    assert_eq!(fr.classify([bound.ceil() as u8 - 20, bound.ceil() as u8 - 10, bound.ceil() as u8 + 1], g).1, Class::Unknown, "bright, unclipped: either");
+    // A frame measured darker than the clear day: the bound falls with it.
+    let dim = FrameReference { exposure: Some(0.7), ..plain_reference(&r, &p) };
+    assert_eq!(dim.classify([160, 167, 190], g).1, Class::Unknown);
+    assert_eq!(dim.classify([100, 110, 130], g).1, Class::Thick);
+    // Within the glare: unknown whatever the sample.
+    assert_eq!(fr.classify([160, 167, 190], geom(70.5, 10.5)).1, Class::Unknown);
+    // Off: unknown.
+    let off = SegmentParams { judge_clipped_bins: false, ..p };
+    assert_eq!(plain_reference(&r, &off).classify([160, 167, 190], g).1, Class::Unknown);
+    assert_eq!(plain_reference(&r, &off).classify([240, 250, 255], g).1, Class::Unknown);
 }
 
 #[test]
