@@ -200,8 +200,20 @@ impl Nowcaster {
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let cam_a_m = self.site.file.camera.position_m;
         // The second camera's own clear-sky library (from its `calibrate` run), else the default.
+        // Its clipped bins' marks are used exactly when this camera's are (`clipped_marks_in_use`).
+        let marks = self.map_stage.reference.clipped_marks_in_use;
         let default_b = crate::segment::Reference::default();
-        let reference_b = sc.clear_reference.as_ref().unwrap_or(&default_b);
+        let owned_b;
+        let reference_b = match sc.clear_reference.as_ref() {
+            Some(r) if r.clipped_marks_in_use != marks => {
+                let mut o = r.clone();
+                o.clipped_marks_in_use = marks;
+                owned_b = o;
+                &owned_b
+            }
+            Some(r) => r,
+            None => &default_b,
+        };
         let a = crate::stereo::StereoView { camera: cam, obstruction, position_m: cam_a_m, reference: &self.map_stage.reference, image: &frame.image };
         let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: reference_b, image: img2 };
         let d = sun.direction_enu();
@@ -545,10 +557,10 @@ impl Nowcaster {
         self.frame_qc.check_exposure(&pixels, &lut, &self.site.file.qc)?;
         let t_qc = Clock::now();
         let disk = crate::sundisk::observe(&frame.image, cam, obstruction, &sun, self.site.file.irradiance.sun_disk_radius_deg, self.site.file.segment.saturation_level);
-        // Where the clear sky clips, the samples are judged by their brightness
-        // (`segment.judge_clipped_bins`); with that off, the pyranometers let the tuning learn what
-        // the sky there means, and without them it is unknown (`segment.library_keeps_clipped`).
-        self.map_stage.reference.clipped_marks_in_use = self.site.file.segment.judge_clipped_bins || pyranometers_of(&self.measurements).is_none();
+        // Where the clear sky clips, the pyranometers let the tuning learn what the sky there means
+        // (unless `segment.clipped_marks_with_pyranometers`); without them its samples are judged
+        // by brightness or unknown (`segment.judge_clipped_bins`, `segment.library_keeps_clipped`).
+        self.map_stage.reference.clipped_marks_in_use = self.site.file.segment.clipped_marks_with_pyranometers || pyranometers_of(&self.measurements).is_none();
         let (map, [cf, thin_cf], far) = self.map_stage.build(&pixels, &lut, &sun, &self.site.file.segment);
         drop(pixels);
         // The sun's record reads this camera's own map, before the second camera fills it.

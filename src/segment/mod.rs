@@ -169,9 +169,9 @@ pub struct SegmentParams {
     /// cumulus is unchanged (0.56); the clear days' RMSE fell 11.6 / 11.9 → 7.4 / 6.9 W/m².
     pub library_keeps_clipped: bool,
     /// Judge the samples in a bin marked as clipped clear sky ([`SegmentParams::library_keeps_clipped`])
-    /// by their brightness instead of leaving them unknown, and use the marks whether or not
-    /// pyranometers are held. The clear sky there read at or above `saturation_level` on the clear
-    /// day, so:
+    /// by their brightness instead of leaving them unknown, wherever the marks are used (without
+    /// pyranometers, or with [`SegmentParams::clipped_marks_with_pyranometers`]). The clear sky
+    /// there read at or above `saturation_level` on the clear day, so:
     /// - a sample that clips (any channel at `saturation_level`) reads as that clear sky does:
     ///   clear;
     /// - a sample darker than the clipped clear sky by more than [`SegmentParams::dark_cloud_margin`]
@@ -187,9 +187,16 @@ pub struct SegmentParams {
     /// library from `calibrate`, every 6th frame, zenith 0–85°): of the samples made clear,
     /// 99–100 % were clear in every 5–10° zenith band; of those made thick, 100 % were cloud; of
     /// the unclipped bright ones left unknown, 43–59 % were cloud (README, "Where the clear sky
-    /// clips"). Off: every sample in a marked bin is unknown while no pyranometer is held, and the
-    /// marks are not used while one is.
+    /// clips"). Off: every sample in a marked bin is unknown where the marks are used.
     pub judge_clipped_bins: bool,
+    /// Use the clipped bins' marks while pyranometers are held too (off: with pyranometers the
+    /// bins are judged as unmarked and the tuning learns what that sky passes). Measured on, with
+    /// `judge_clipped_bins`: the independent breaking overcast's pooled 5–15 min skill 0.51 →
+    /// 0.58 and 1-min RMSE 88 → 57 W/m²; but it changes the project's two-layer stereo scene
+    /// (`tests/stereo.rs`, whose synthetic library carries marks): the gap between its runs on
+    /// the true and on the stereo heights went to −0.054 / −0.098 / +0.011 at 5 / 10 / 15 min,
+    /// beyond the ±0.03 that test allows. Off until the two-layer handling holds.
+    pub clipped_marks_with_pyranometers: bool,
 }
 
 impl Default for SegmentParams {
@@ -228,6 +235,7 @@ impl Default for SegmentParams {
             library_rate: 0.2,
             library_keeps_clipped: true,
             judge_clipped_bins: true,
+            clipped_marks_with_pyranometers: false,
         }
     }
 }
