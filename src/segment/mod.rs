@@ -173,7 +173,8 @@ pub struct SegmentParams {
     /// pyranometers, or with [`SegmentParams::clipped_marks_with_pyranometers`]). The clear sky
     /// there read at or above `saturation_level` on the clear day, so:
     /// - a sample that clips (any channel at `saturation_level`) reads as that clear sky does:
-    ///   clear;
+    ///   clear, in a frame whose exposure was measured from its own clear samples (otherwise, in
+    ///   overcast, unknown: a camera that brightens an overcast frame clips its bright cloud);
     /// - a sample darker than the clipped clear sky by more than [`SegmentParams::dark_cloud_margin`]
     ///   at the frame's exposure cannot be clear sky, and near the sun a cloud that sends less
     ///   light than the clear sky scatters is an optically thick one (a thin cloud scatters
@@ -387,7 +388,9 @@ impl FrameReference<'_> {
             return Class::Unknown;
         }
         if rgb.iter().any(|c| *c >= p.saturation_level) {
-            return Class::Clear;
+            // Clear only in a frame whose exposure was measured from its own clear samples: an
+            // overcast frame has too few, and a camera that brightens it clips its bright cloud.
+            return if self.exposure.is_some() { Class::Clear } else { Class::Unknown };
         }
         let expected = (self.exposure.unwrap_or(1.0) * f32::from(p.saturation_level)).min(255.0);
         if p.dark_cloud_margin > 0.0 && crate::brightness::reading(rgb) < (1.0 - p.dark_cloud_margin as f32) * expected { Class::Thick } else { Class::Unknown }

@@ -49,7 +49,7 @@ fn bins_where_the_clear_sky_clips_are_marked_and_not_judged() {
 
 /// With `judge_clipped_bins` a marked bin's samples are judged by brightness against the clipped
 /// clear sky (common practice, no source: a sample well below the level the clear sky clipped at
-/// cannot be that clear sky): one that clips is clear, one darker than `1 − dark_cloud_margin` of
+/// cannot be that clear sky): one that clips is clear in a frame exposed like the clear day, one darker than `1 − dark_cloud_margin` of
 /// the saturation level at the frame's exposure is thick, one in between is unknown; within the
 /// glare every sample stays unknown.
 #[test]
@@ -63,7 +63,12 @@ fn samples_in_clipped_bins_are_judged_by_brightness() {
     let g = geom(70.5, 30.5);
     let fr = plain_reference(&r, &p);
     let bound = (1.0 - p.dark_cloud_margin as f32) * f32::from(p.saturation_level);
-    assert_eq!(fr.classify([240, 250, 255], g).1, Class::Clear, "clips as the clear sky does");
+    let measured = FrameReference { exposure: Some(1.0), ..plain_reference(&r, &p) };
+    assert_eq!(measured.classify([240, 250, 255], g).1, Class::Clear, "clips as the clear sky does");
+    // Clipped in a frame whose exposure is unmeasured (overcast): it may be bright cloud.
+    assert_eq!(fr.classify([240, 250, 255], g).1, Class::Unknown);
+    let bright = FrameReference { exposure: Some(1.3), ..plain_reference(&r, &p) };
+    assert_eq!(bright.classify([240, 250, 255], g).1, Class::Clear);
     assert_eq!(fr.classify([160, 167, 190], g).1, Class::Thick, "grey overcast well below the clipped level");
     let just_below = bound.floor() as u8 - 1;
     assert_eq!(fr.classify([just_below - 20, just_below - 10, just_below], g).1, Class::Thick);
