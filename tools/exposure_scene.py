@@ -1,0 +1,61 @@
+#!/usr/bin/env python3
+"""Write a copy of an independent-renderer scene as an auto-exposing camera would have taken it (a
+robustness probe, not a tuning target).
+
+Each cloudy frame is scaled by a gain that brings its mean level toward ``--target-mean`` (at least
+1, at most ``--max-gain``): a camera that holds its exposure for the clear sky brightens darker,
+cloudier frames. The scaled frames are written as JPEG (quality 92); every other file of the scene
+folder (truth, inputs, the other scenes, the scorer) is linked, so the harness runs on the copy
+unchanged:
+
+    python3 tools/exposure_scene.py --scene camera2-breaking-overcast --out /tmp/bright
+    NEPHOCAST_DATASETS=/tmp/bright python3 tools/independent_scenes.py --bin target/release/nephocast \\
+        --camera-from calibrate --work /tmp/W-bright --json /tmp/J-bright.json --no-measurements
+
+Reads ``$NEPHOCAST_DATASETS/independent-scenes``. Needs numpy and opencv-python-headless.
+"""
+import argparse
+import glob
+import os
+import sys
+
+import cv2
+import numpy as np
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--scene", required=True, help="the cloudy scene to re-expose, e.g. camera2-breaking-overcast")
+    ap.add_argument("--out", required=True, help="folder to write (it gets an independent-scenes/ inside)")
+    ap.add_argument("--target-mean", type=float, default=135.0, help="mean 8-bit level the gain aims at")
+    ap.add_argument("--max-gain", type=float, default=1.6)
+    a = ap.parse_args()
+    root = os.path.join(os.environ.get("NEPHOCAST_DATASETS") or sys.exit("NEPHOCAST_DATASETS is not set"), "independent-scenes")
+    dst = os.path.join(a.out, "independent-scenes")
+    os.makedirs(dst, exist_ok=True)
+    for name in os.listdir(root):
+        if name != a.scene and not os.path.exists(os.path.join(dst, name)):
+            os.symlink(os.path.join(root, name), os.path.join(dst, name))
+    src_scene, dst_scene = os.path.join(root, a.scene), os.path.join(dst, a.scene)
+    os.makedirs(os.path.join(dst_scene, "input", "frames"), exist_ok=True)
+    for name in os.listdir(src_scene):
+        if name != "input" and not os.path.exists(os.path.join(dst_scene, name)):
+            os.symlink(os.path.join(src_scene, name), os.path.join(dst_scene, name))
+    for name in os.listdir(os.path.join(src_scene, "input")):
+        if name != "frames" and not os.path.exists(os.path.join(dst_scene, "input", name)):
+            os.symlink(os.path.join(src_scene, "input", name), os.path.join(dst_scene, "input", name))
+    gains = []
+    for f in sorted(glob.glob(os.path.join(src_scene, "input", "frames", "*.jpg"))):
+        img = cv2.imread(f, cv2.IMREAD_COLOR)
+        if img is None:
+            sys.exit(f"{f}: not a readable JPEG")
+        g = float(np.clip(a.target_mean / max(img.mean(), 1.0), 1.0, a.max_gain))
+        gains.append(g)
+        out = np.clip(img.astype(np.float32) * g, 0, 255).astype(np.uint8)
+        cv2.imwrite(os.path.join(dst_scene, "input", "frames", os.path.basename(f)), out, [cv2.IMWRITE_JPEG_QUALITY, 92])
+    q = np.percentile(gains, [0, 50, 100]) if gains else [float("nan")] * 3
+    print(f"{len(gains)} frames re-exposed into {dst_scene}: gain min {q[0]:.2f}, median {q[1]:.2f}, max {q[2]:.2f}")
+
+
+if __name__ == "__main__":
+    main()
