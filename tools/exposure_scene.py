@@ -30,30 +30,46 @@ def main():
     ap.add_argument("--target-mean", type=float, default=135.0, help="mean 8-bit level the gain aims at")
     ap.add_argument("--max-gain", type=float, default=1.6)
     a = ap.parse_args()
+    if not a.target_mean > 0 or not a.max_gain >= 1:
+        sys.exit(f"--target-mean must be above 0 (got {a.target_mean}) and --max-gain at least 1 (got {a.max_gain})")
     root = os.path.join(os.environ.get("NEPHOCAST_DATASETS") or sys.exit("NEPHOCAST_DATASETS is not set"), "independent-scenes")
+    src_scene = os.path.join(root, a.scene)
+    frames = sorted(glob.glob(os.path.join(src_scene, "input", "frames", "*.jpg")))
+    if not os.path.isdir(src_scene) or not frames:
+        sys.exit(f"{src_scene}: no scene with JPEG frames in input/frames/")
     dst = os.path.join(a.out, "independent-scenes")
+    dst_scene = os.path.join(dst, a.scene)
+    real_root = os.path.realpath(root)
+    if os.path.realpath(dst) == real_root or os.path.realpath(a.out).startswith(real_root + os.sep):
+        sys.exit(f"--out {a.out} lies in the datasets folder {root}: the frames there would be overwritten")
     os.makedirs(dst, exist_ok=True)
+
+    def link(src, dst_path):
+        if not os.path.lexists(dst_path):
+            os.symlink(src, dst_path)
+
     for name in os.listdir(root):
-        if name != a.scene and not os.path.exists(os.path.join(dst, name)):
-            os.symlink(os.path.join(root, name), os.path.join(dst, name))
-    src_scene, dst_scene = os.path.join(root, a.scene), os.path.join(dst, a.scene)
+        if name != a.scene:
+            link(os.path.join(root, name), os.path.join(dst, name))
     os.makedirs(os.path.join(dst_scene, "input", "frames"), exist_ok=True)
     for name in os.listdir(src_scene):
-        if name != "input" and not os.path.exists(os.path.join(dst_scene, name)):
-            os.symlink(os.path.join(src_scene, name), os.path.join(dst_scene, name))
+        if name != "input":
+            link(os.path.join(src_scene, name), os.path.join(dst_scene, name))
     for name in os.listdir(os.path.join(src_scene, "input")):
-        if name != "frames" and not os.path.exists(os.path.join(dst_scene, "input", name)):
-            os.symlink(os.path.join(src_scene, "input", name), os.path.join(dst_scene, "input", name))
+        if name != "frames":
+            link(os.path.join(src_scene, "input", name), os.path.join(dst_scene, "input", name))
     gains = []
-    for f in sorted(glob.glob(os.path.join(src_scene, "input", "frames", "*.jpg"))):
+    for f in frames:
         img = cv2.imread(f, cv2.IMREAD_COLOR)
         if img is None:
             sys.exit(f"{f}: not a readable JPEG")
         g = float(np.clip(a.target_mean / max(img.mean(), 1.0), 1.0, a.max_gain))
         gains.append(g)
         out = np.clip(img.astype(np.float32) * g, 0, 255).astype(np.uint8)
-        cv2.imwrite(os.path.join(dst_scene, "input", "frames", os.path.basename(f)), out, [cv2.IMWRITE_JPEG_QUALITY, 92])
-    q = np.percentile(gains, [0, 50, 100]) if gains else [float("nan")] * 3
+        target = os.path.join(dst_scene, "input", "frames", os.path.basename(f))
+        if not cv2.imwrite(target, out, [cv2.IMWRITE_JPEG_QUALITY, 92]):
+            sys.exit(f"{target}: could not be written")
+    q = np.percentile(gains, [0, 50, 100])
     print(f"{len(gains)} frames re-exposed into {dst_scene}: gain min {q[0]:.2f}, median {q[1]:.2f}, max {q[2]:.2f}")
 
 

@@ -200,20 +200,8 @@ impl Nowcaster {
         let (cam, obstruction) = if reduced { (&self.reduced.camera, self.reduced.obstruction.as_ref()) } else { (&self.site.camera, self.site.obstruction.as_ref()) };
         let cam_a_m = self.site.file.camera.position_m;
         // The second camera's own clear-sky library (from its `calibrate` run), else the default.
-        // Its clipped bins' marks are used exactly when this camera's are (`clipped_marks_in_use`).
-        let marks = self.map_stage.reference.clipped_marks_in_use;
         let default_b = crate::segment::Reference::default();
-        let owned_b;
-        let reference_b = match sc.clear_reference.as_ref() {
-            Some(r) if r.clipped_marks_in_use != marks => {
-                let mut o = r.clone();
-                o.clipped_marks_in_use = marks;
-                owned_b = o;
-                &owned_b
-            }
-            Some(r) => r,
-            None => &default_b,
-        };
+        let reference_b = sc.clear_reference.as_ref().unwrap_or(&default_b);
         let a = crate::stereo::StereoView { camera: cam, obstruction, position_m: cam_a_m, reference: &self.map_stage.reference, image: &frame.image };
         let b = crate::stereo::StereoView { camera: &sc.camera, obstruction: sc.obstruction.as_ref(), position_m: sc.position_m, reference: reference_b, image: img2 };
         let d = sun.direction_enu();
@@ -560,7 +548,12 @@ impl Nowcaster {
         // Where the clear sky clips, the pyranometers let the tuning learn what the sky there means
         // (unless `segment.clipped_marks_with_pyranometers`); without them its samples are judged
         // by brightness or unknown (`segment.judge_clipped_bins`, `segment.library_keeps_clipped`).
-        self.map_stage.reference.clipped_marks_in_use = self.site.file.segment.clipped_marks_with_pyranometers || pyranometers_of(&self.measurements).is_none();
+        let marks = self.site.file.segment.clipped_marks_with_pyranometers || pyranometers_of(&self.measurements).is_none();
+        self.map_stage.reference.clipped_marks_in_use = marks;
+        // The second camera's library (its map cells and the stereo pair) follows the same rule.
+        if let Some(r) = self.site.second_camera.as_mut().and_then(|sc| sc.clear_reference.as_mut()) {
+            r.clipped_marks_in_use = marks;
+        }
         let (map, [cf, thin_cf], far) = self.map_stage.build(&pixels, &lut, &sun, &self.site.file.segment);
         drop(pixels);
         // The sun's record reads this camera's own map, before the second camera fills it.

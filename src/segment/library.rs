@@ -25,10 +25,11 @@ pub struct Reference {
     /// The clear sky's R/B as read (clipped channels included) in each clipped bin, and the frames
     /// it was read in: a record, written to the CSV.
     pub(super) clipped_read: Vec<(f32, f32)>,
-    /// Whether the clipped bins' marks are used (true, the default: their pixels unknown or judged
-    /// by brightness) or the bins are judged as if they held no value: the engine sets it false
-    /// while pyranometers are held and `segment.judge_clipped_bins` is off, which lets the
-    /// transmittance tuning learn what the sky there means.
+    /// Whether the clipped bins' marks are used (true, the default: their pixels judged by
+    /// brightness, or unknown with `segment.judge_clipped_bins` off) or the bins are judged as if
+    /// they held no value: the engine sets it false while pyranometers are held (unless
+    /// `segment.clipped_marks_with_pyranometers`), which lets the transmittance tuning learn what
+    /// the sky there means; the second camera's library follows the first's.
     pub clipped_marks_in_use: bool,
     /// Frames that updated the library.
     pub library_frames: usize,

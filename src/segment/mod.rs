@@ -155,13 +155,13 @@ pub struct SegmentParams {
     pub library_rate: f64,
     /// A clear day's library ([`Reference::from_clear_samples`]) also marks the bins where the
     /// clear sky itself clips (`clear_sky_clips`): the ratio cannot tell clear from cloud where the
-    /// clear sky is clipped near-white, so the samples there are judged by their brightness
-    /// ([`SegmentParams::judge_clipped_bins`], the default) or, with that off, are unknown while
-    /// no pyranometer is held. Unmarked, such bins have no library value and the parametric default judges
-    /// them, which on a camera exposed for the zenith calls the low circumsolar sky cloud; with
+    /// clear sky is clipped near-white, so while no pyranometer is held (or with
+    /// [`SegmentParams::clipped_marks_with_pyranometers`]) the samples there are judged by their
+    /// brightness ([`SegmentParams::judge_clipped_bins`], the default) or, with that off, are
+    /// unknown. Unmarked, such bins have no library value and the parametric default judges them,
+    /// which on a camera exposed for the zenith calls the low circumsolar sky cloud; with
     /// pyranometers the transmittance tuning learns what that "cloud" passes (its brightness
-    /// feature), so with `judge_clipped_bins` off the bins are then judged as unmarked
-    /// ([`Reference::clipped_marks_in_use`]).
+    /// feature), so then the bins are judged as unmarked ([`Reference::clipped_marks_in_use`]).
     /// Acts at `calibrate` (the marks are in the library file). Measured on the independent
     /// scenes (camera from `calibrate`), with `irradiance.fill_correlation_m` at 500 m: the
     /// breaking overcast without pyranometers went from pooled 5–15 min skill 0.29 to 0.40, 1-min
@@ -183,6 +183,13 @@ pub struct SegmentParams {
     ///   toward unknown for a camera that brightens its frames under cloud;
     /// - a sample in between stays unknown: a bright cloud and a clear sky just short of clipping
     ///   both read there.
+    ///
+    /// Within the frame's glare zone (beyond `sun_exclusion_deg`) only the thick side applies: the
+    /// glare brightens what it covers, so a dark sample there is cloud, but a clipped one may be
+    /// the bloom. The dark-cloud test's least level and veil gate (`brightness`) are not applied:
+    /// a marked bin's clear sky is bright by construction, and a veil near the sun reads brighter,
+    /// not darker. With `dark_cloud_margin` 0 (the dark-cloud test off) the exposure is not
+    /// measured and nothing is judged thick, so every marked sample stays unknown.
     ///
     /// Measured against the independent renderer's true masks (breaking overcast, camera and
     /// library from `calibrate`, every 6th frame, zenith 0–85°): of the samples made clear,
@@ -484,9 +491,10 @@ impl FrameReference<'_> {
         }
         let bin = lib_index(g.z_deg, g.gamma_deg);
         if self.clear_sky_clips(bin) {
-            // Judged by brightness outside the glare only: within it a clipped sample may be the
-            // bloom over cloud.
-            return (f32::NAN, if self.outside_glare(g.gamma_deg) { self.judge_in_clipped_bin(rgb) } else { Class::Unknown });
+            // Judged by brightness outside the glare; within it (beyond the sun's own disc) only a
+            // dark sample is: a clipped one may be the bloom over cloud, and glare only brightens.
+            let j = self.judge_in_clipped_bin(rgb);
+            return (f32::NAN, if self.outside_glare(g.gamma_deg) || (j == Class::Thick && g.gamma_deg >= p.sun_exclusion_deg as f32) { j } else { Class::Unknown });
         }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
         let r = self.reference_in_bin(bin, default_rb);

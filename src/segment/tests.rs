@@ -49,9 +49,9 @@ fn bins_where_the_clear_sky_clips_are_marked_and_not_judged() {
 
 /// With `judge_clipped_bins` a marked bin's samples are judged by brightness against the clipped
 /// clear sky (common practice, no source: a sample well below the level the clear sky clipped at
-/// cannot be that clear sky): one that clips is clear in a frame exposed like the clear day, one darker than `1 − dark_cloud_margin` of
-/// the saturation level at the frame's exposure is thick, one in between is unknown; within the
-/// glare every sample stays unknown.
+/// cannot be that clear sky): one that clips is clear in a frame whose exposure was measured, one
+/// darker than `1 − dark_cloud_margin` of the saturation level at the frame's exposure is thick,
+/// one in between is unknown; within the glare only the thick side applies.
 #[test]
 fn samples_in_clipped_bins_are_judged_by_brightness() {
     let p = SegmentParams::default();
@@ -77,8 +77,19 @@ fn samples_in_clipped_bins_are_judged_by_brightness() {
     let dim = FrameReference { exposure: Some(0.7), ..plain_reference(&r, &p) };
     assert_eq!(dim.classify([160, 167, 190], g).1, Class::Unknown);
     assert_eq!(dim.classify([100, 110, 130], g).1, Class::Thick);
-    // Within the glare: unknown whatever the sample.
-    assert_eq!(fr.classify([160, 167, 190], geom(70.5, 10.5)).1, Class::Unknown);
+    // Within the glare: a clipped sample is unknown.
+    assert_eq!(measured.classify([240, 250, 255], geom(70.5, 10.5)).1, Class::Unknown);
+    // Within the glare beyond the sun's disc a dark sample is thick, a clipped one unknown.
+    assert_eq!(measured.classify([160, 167, 190], geom(70.5, 10.5)).1, Class::Thick);
+    // The map's and the images' path (`classify_at`, plain sky) judges alike.
+    let plain = |gamma: f32| SampleSky { plain: true, gamma_deg: gamma, bin: lib_index(70.5, gamma) as u16, default_rb: p.default_reference(70.5, gamma), thick_score: p.thick_at(70.5) as f32 };
+    let at = |fr: &FrameReference, rgb: [u8; 3]| fr.classify_at(plain(30.5), 70.5, || rgb, || rgb).2;
+    assert_eq!(at(&measured, [240, 250, 255]), Class::Clear as u8);
+    assert_eq!(at(&fr, [240, 250, 255]), Class::Unknown as u8);
+    assert_eq!(at(&fr, [160, 167, 190]), Class::Thick as u8);
+    assert_eq!(at(&fr, [225, 232, 240]), Class::Unknown as u8);
+    let unmarked = FrameReference { reference: &Reference::default(), ..measured };
+    assert_ne!(at(&unmarked, [160, 167, 190]), Class::Thick as u8, "an unmarked bin is judged by its ratio");
     // Off: unknown.
     let off = SegmentParams { judge_clipped_bins: false, ..p };
     assert_eq!(plain_reference(&r, &off).classify([160, 167, 190], g).1, Class::Unknown);
