@@ -82,7 +82,7 @@ fn samples_in_clipped_bins_are_judged_by_brightness() {
     // Within the glare beyond the sun's disc a dark sample is thick, a clipped one unknown.
     assert_eq!(measured.classify([160, 167, 190], geom(70.5, 10.5)).1, Class::Thick);
     // The map's and the images' path (`classify_at`, plain sky) judges alike.
-    let plain = |gamma: f32| SampleSky { plain: true, gamma_deg: gamma, bin: lib_index(70.5, gamma) as u16, default_rb: p.default_reference(70.5, gamma), thick_score: p.thick_at(70.5) as f32 };
+    let plain = |gamma: f32| SampleSky { plain: true, gamma_deg: gamma, bin: lib_index(70.5, gamma) as u16, default_rb: p.default_reference(70.5, gamma), thick_score: p.thick_at(70.5) };
     let at = |fr: &FrameReference, rgb: [u8; 3]| fr.classify_at(plain(30.5), 70.5, || rgb, || rgb).2;
     assert_eq!(at(&measured, [240, 250, 255]), Class::Clear as u8);
     assert_eq!(at(&fr, [240, 250, 255]), Class::Unknown as u8);
