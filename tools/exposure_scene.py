@@ -51,7 +51,14 @@ def main():
     for name in os.listdir(root):
         if name != a.scene:
             link(os.path.join(root, name), os.path.join(dst, name))
-    os.makedirs(os.path.join(dst_scene, "input", "frames"), exist_ok=True)
+    # The scene folder this run writes into is never a link into the datasets (an earlier run
+    # for another scene links this one there), so writes cannot reach the originals.
+    for sub in (dst_scene, os.path.join(dst_scene, "input"), os.path.join(dst_scene, "input", "frames")):
+        if os.path.islink(sub):
+            os.unlink(sub)
+        os.makedirs(sub, exist_ok=True)
+        if os.path.realpath(sub).startswith(real_root + os.sep):
+            sys.exit(f"{sub} resolves into the datasets folder {root}: refusing to write there")
     for name in os.listdir(src_scene):
         if name != "input":
             link(os.path.join(src_scene, name), os.path.join(dst_scene, name))
