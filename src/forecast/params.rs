@@ -108,6 +108,13 @@ pub struct IrradianceParams {
     /// camera's sun direction) is not the forecast's at 5–15 min (figures in README, "Two layers
     /// through each other").
     pub tune_bias_with_two_layers: bool,
+    /// The diffuse gain takes up only the part of the window's mean residual beyond two standard
+    /// errors (soft thresholding, Donoho & Johnstone 1994, from memory), so the step grows from
+    /// nothing as the evidence does; on by default. Off: all of the mean residual once it passes
+    /// two standard errors, a jump at the threshold that a change of the decoder's rounding moved
+    /// (the gain 0.27 → 0.60 in one frame of a two-layer scene). Figures in README ("The tuning's
+    /// bias step, soft").
+    pub tune_bias_soft: bool,
     /// A thin cell's transmittance follows its cloudiness score: its optical depth taken as
     /// proportional to its place in the thin band, Beer–Lambert gives `beam_thin^(2u)` (clear
     /// sky's where thin cloud begins, the thin class's at the band's middle), read as a mix of
@@ -172,6 +179,7 @@ impl Default for IrradianceParams {
             tune_from_measurements: true,
             fill_layer_behind: false,
             tune_bias_with_two_layers: true,
+            tune_bias_soft: true,
             thin_beam_from_score: false,
             glare_fill_from_history: false,
             sun_line_beam: false,

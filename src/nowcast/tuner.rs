@@ -116,11 +116,14 @@ impl Tuner {
                 res2 += e * e;
                 cover += x[TUNED - 1];
             }
-            // Only a bias the window clearly shows (beyond 2 standard errors of its mean).
+            // Only a bias the window clearly shows (beyond 2 standard errors of its mean): all of
+            // it, or with `tune_bias_soft` only the part beyond (soft thresholding).
             let n = self.rows.len() as f64;
             let se = ((res2 / n - (res / n).powi(2)).max(0.0) / n).sqrt();
-            if cover > 0.05 * n && (res / n).abs() > 2.0 * se {
-                sol[TUNED - 1] += held_share * res / cover;
+            let beyond = (res / n).abs() - 2.0 * se;
+            if cover > 0.05 * n && beyond > 0.0 {
+                let step = if prior.tune_bias_soft { (res / n).signum() * beyond * n } else { res };
+                sol[TUNED - 1] += held_share * step / cover;
             }
         }
         let mut p = *prior;
@@ -189,6 +192,34 @@ mod tests {
         let p = t.solve(&IrradianceParams::default()).unwrap();
         assert!((p.beam_cloud_brightness - truth[3]).abs() < 0.4, "beam_cloud_brightness {}", p.beam_cloud_brightness);
         assert!((p.beam_thin - truth[1]).abs() < 0.03, "beam_thin {}", p.beam_thin);
+    }
+
+    /// With `tune_bias_soft` the diffuse gain's bias step is continuous in the window's mean
+    /// residual: readings just past two standard errors move the gain by little, where the hard
+    /// step takes the whole mean residual. Arithmetic of the model, no source.
+    #[test]
+    fn the_soft_bias_step_grows_from_nothing() {
+        // Most readings where the prior puts them, one in six above by `jump`: the robust fit
+        // follows the typical reading and leaves the window a mean residual of `jump / 6`.
+        let gain = |jump: f64, soft: bool| {
+            let mut t = Tuner::default();
+            for i in 0..60 {
+                let x = [0.5, 0.0, 0.0, 0.0, 0.4];
+                let y = 0.5 * 1.0 + 0.4 * 0.25 + if i % 6 == 0 { jump } else { 0.0 };
+                t.push(DateTime::<Utc>::UNIX_EPOCH + chrono::Duration::seconds(i), x, y, 1e9);
+            }
+            t.solve(&IrradianceParams { tune_bias_soft: soft, ..Default::default() }).unwrap().diffuse_per_cover
+        };
+        let base = gain(0.0, false);
+        let steps: Vec<(f64, f64)> = [0.05, 0.1, 0.2, 0.4, 0.8].iter().map(|j| (gain(*j, false) - base, gain(*j, true) - base)).collect();
+        // Below the threshold neither takes a step (both move by the fit alone); just past it the
+        // hard step takes all of the mean residual, the soft a
+        // small part; beyond, the soft step grows with the evidence and never passes the hard.
+        let fit = steps[0].0;
+        assert!((steps[0].1 - fit).abs() < 1e-12, "{steps:?}");
+        assert!(steps[1].0 - fit > 0.02 && steps[1].1 - fit < 0.25 * (steps[1].0 - fit), "{steps:?}");
+        assert!(steps.windows(2).all(|w| w[1].1 > w[0].1 - 1e-12) && steps.iter().all(|(h, s)| *s <= *h + 1e-12), "{steps:?}");
+        assert!(steps[4].1 > 0.1, "{steps:?}");
     }
 
     /// Without early tuning a solution waits for `tune_min_rows` rows; with 1 the first frame's readings (three rows)
