@@ -556,11 +556,17 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
     crate::brightness::promote_dark(&mut class, &lut.z_deg, &dark);
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
     // Over zipped slices (no bounds checks, so the second pass vectorizes).
+    // In blocks of 2¹⁶ cells counted in u32 (255 · 2¹⁶ fits), so that the sums vectorise.
     let (mut cloudy_blue, mut cloudy_cells) = (0u64, 0u64);
-    for (c, b) in class.iter().zip(&blue[..n]) {
-        let is = cloudy(*c);
-        cloudy_blue += if is { *b as u64 } else { 0 };
-        cloudy_cells += is as u64;
+    for (cs, bs) in class.chunks(1 << 16).zip(blue[..n].chunks(1 << 16)) {
+        let (mut sb, mut sc) = (0u32, 0u32);
+        for (c, b) in cs.iter().zip(bs) {
+            let is = cloudy(*c) as u32;
+            sb += is * *b as u32;
+            sc += is;
+        }
+        cloudy_blue += sb as u64;
+        cloudy_cells += sc as u64;
     }
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     let brightness = class.iter().zip(&blue[..n]).map(|(c, b)| if cloudy(*c) { (*b as f32 - mean) / 255.0 } else { 0.0 }).collect();
