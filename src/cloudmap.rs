@@ -547,10 +547,9 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
         }
     }
     if params.distant_contrast {
-        // Each cell's judgement once (the correction asks for most cells, through a `dyn Fn`).
+        // Each cell's judgement once (the correction asks for most cells).
         let learned = fr.plain_and_learned_all(sky, n);
-        let plain = |k: usize| learned[k];
-        crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
+        crate::distance::correct(&score, &lut.z_deg, &learned, &mut class, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);
     crate::brightness::promote_dark(&mut class, &lut.z_deg, &dark);
