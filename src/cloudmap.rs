@@ -568,19 +568,23 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
         cloudy_cells += sc as u64;
     }
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
-    let brightness = class.iter().zip(&blue[..n]).map(|(c, b)| if cloudy(*c) { (*b as f32 - mean) / 255.0 } else { 0.0 }).collect();
+    // Each value computed for every cell and then chosen (the same values; without a branch per
+    // cell the divisions vectorise).
+    let mut brightness = vec![0f32; n];
+    for ((o, c), b) in brightness.iter_mut().zip(&class[..n]).zip(&blue[..n]) {
+        let v = (*b as f32 - mean) / 255.0;
+        *o = if cloudy(*c) { v } else { 0.0 };
+    }
     pool::give_u8(blue);
     let thin = Class::Thin as u8;
-    let thin_depth = class
-        .iter()
-        .zip(&score)
-        .zip(&lut.z_deg[..n])
-        .map(|((c, s), z)| {
-            let (lo, hi) = (params.thin_score as f32, params.thick_at(*z));
-            // A cell made thin by the distance or darkness rules keeps the class's middle.
-            if *c == thin && *s >= lo && *s < hi { (s - lo) / (hi - lo) } else { 0.5 }
-        })
-        .collect();
+    let lo = params.thin_score as f32;
+    let mut thin_depth = vec![0f32; n];
+    for (((o, c), s), z) in thin_depth.iter_mut().zip(&class[..n]).zip(&score[..n]).zip(&lut.z_deg[..n]) {
+        let hi = params.thick_at(*z);
+        let v = (s - lo) / (hi - lo);
+        // A cell made thin by the distance or darkness rules keeps the class's middle.
+        *o = if (*c == thin) & (*s >= lo) & (*s < hi) { v } else { 0.5 };
+    }
     (CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }, fr.exposure)
 }
 
