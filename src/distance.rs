@@ -139,8 +139,12 @@ fn levels(v: &mut [f32], cloud_level: f32, clear_level: f32) -> (f32, f32) {
 }
 
 /// The far band (0 from [`NEAR_ZENITH_DEG`], in steps of 5°) holding zenith `z_deg` > the near field.
+///
+/// Through i32 (a float-to-usize conversion is a slow instruction sequence on x86-64; this runs for
+/// every far cell of every frame): the same band as the direct conversion for every zenith, with
+/// NaN and anything below the near field band 0 either way.
 fn band_of(z_deg: f32) -> usize {
-    ((z_deg - NEAR_ZENITH_DEG) / BAND_DEG) as usize
+    (((z_deg - NEAR_ZENITH_DEG) / BAND_DEG) as i32).max(0) as usize
 }
 
 /// Measure the frame's contrast loss and lift the far samples' classes by it (see the module's
@@ -285,6 +289,18 @@ fn promote_far_cells(class: &mut [u8], score: &[f32], z_deg: &[f32], from_deg: f
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The band through i32 is the direct conversion's for every zenith a cell can have, below the
+    /// near field, at band edges and NaN (common practice, no source: a rewritten conversion must
+    /// give the original's results).
+    #[test]
+    fn band_through_i32_is_the_direct_conversion() {
+        let mut zs: Vec<f32> = (0..=18_000).map(|i| i as f32 * 0.01).collect();
+        zs.extend([f32::NAN, -1.0, -0.0, NEAR_ZENITH_DEG, NEAR_ZENITH_DEG + BAND_DEG, f32::from_bits(NEAR_ZENITH_DEG.to_bits() + 1), f32::from_bits(NEAR_ZENITH_DEG.to_bits() - 1)]);
+        for z in zs {
+            assert_eq!(band_of(z), ((z - NEAR_ZENITH_DEG) / BAND_DEG) as usize, "zenith {z}");
+        }
+    }
 
     /// A frame of cloud and sky whose cloud scores fall with distance as the law says: the measured
     /// rate comes back, and reclassifying lifts far cumulus from thin to thick while clear sky stays
