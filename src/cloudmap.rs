@@ -547,35 +547,44 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
         }
     }
     if params.distant_contrast {
-        // Each cell's judgement once (the correction asks for most cells, through a `dyn Fn`).
+        // Each cell's judgement once (the correction asks for most cells).
         let learned = fr.plain_and_learned_all(sky, n);
-        let plain = |k: usize| learned[k];
-        crate::distance::correct(&score, &lut.z_deg, &plain, &mut class, |z| params.thick_at(z));
+        crate::distance::correct(&score, &lut.z_deg, &learned, &mut class, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);
     crate::brightness::promote_dark(&mut class, &lut.z_deg, &dark);
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
     // Over zipped slices (no bounds checks, so the second pass vectorizes).
+    // In blocks of 2¹⁶ cells counted in u32 (255 · 2¹⁶ fits), so that the sums vectorise.
     let (mut cloudy_blue, mut cloudy_cells) = (0u64, 0u64);
-    for (c, b) in class.iter().zip(&blue[..n]) {
-        let is = cloudy(*c);
-        cloudy_blue += if is { *b as u64 } else { 0 };
-        cloudy_cells += is as u64;
+    for (cs, bs) in class.chunks(1 << 16).zip(blue[..n].chunks(1 << 16)) {
+        let (mut sb, mut sc) = (0u32, 0u32);
+        for (c, b) in cs.iter().zip(bs) {
+            let is = cloudy(*c) as u32;
+            sb += is * *b as u32;
+            sc += is;
+        }
+        cloudy_blue += sb as u64;
+        cloudy_cells += sc as u64;
     }
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
-    let brightness = class.iter().zip(&blue[..n]).map(|(c, b)| if cloudy(*c) { (*b as f32 - mean) / 255.0 } else { 0.0 }).collect();
+    // Each value computed for every cell and then chosen (the same values; without a branch per
+    // cell the divisions vectorise).
+    let mut brightness = vec![0f32; n];
+    for ((o, c), b) in brightness.iter_mut().zip(&class[..n]).zip(&blue[..n]) {
+        let v = (*b as f32 - mean) / 255.0;
+        *o = if cloudy(*c) { v } else { 0.0 };
+    }
     pool::give_u8(blue);
     let thin = Class::Thin as u8;
-    let thin_depth = class
-        .iter()
-        .zip(&score)
-        .zip(&lut.z_deg[..n])
-        .map(|((c, s), z)| {
-            let (lo, hi) = (params.thin_score as f32, params.thick_at(*z));
-            // A cell made thin by the distance or darkness rules keeps the class's middle.
-            if *c == thin && *s >= lo && *s < hi { (s - lo) / (hi - lo) } else { 0.5 }
-        })
-        .collect();
+    let lo = params.thin_score as f32;
+    let mut thin_depth = vec![0f32; n];
+    for (((o, c), s), z) in thin_depth.iter_mut().zip(&class[..n]).zip(&score[..n]).zip(&lut.z_deg[..n]) {
+        let hi = params.thick_at(*z);
+        let v = (s - lo) / (hi - lo);
+        // A cell made thin by the distance or darkness rules keeps the class's middle.
+        *o = if (*c == thin) & (*s >= lo) & (*s < hi) { v } else { 0.5 };
+    }
     (CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }, fr.exposure)
 }
 

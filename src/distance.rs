@@ -119,8 +119,9 @@ pub struct Samples<'a> {
     pub z_deg: &'a [f32],
     /// Whether the sample was judged by its ratio alone (plain sky outside the glare) against a
     /// learned clear-sky reference: only those are measured and corrected (against the parametric
-    /// default the far field's clear sky is not known well enough to measure a loss from).
-    pub plain: &'a dyn Fn(usize) -> bool,
+    /// default the far field's clear sky is not known well enough to measure a loss from). One
+    /// entry per sample (a slice, not a closure: read for most samples of every frame).
+    pub plain: &'a [bool],
 }
 
 /// The scores of `v` at the cloud and clear levels (quantiles, nearest rank), reordering `v`.
@@ -138,13 +139,17 @@ fn levels(v: &mut [f32], cloud_level: f32, clear_level: f32) -> (f32, f32) {
 }
 
 /// The far band (0 from [`NEAR_ZENITH_DEG`], in steps of 5°) holding zenith `z_deg` > the near field.
+///
+/// Through i32 (a float-to-usize conversion is a slow instruction sequence on x86-64; this runs for
+/// every far cell of every frame): the same band as the direct conversion for every zenith, with
+/// NaN and anything below the near field band 0 either way.
 fn band_of(z_deg: f32) -> usize {
-    ((z_deg - NEAR_ZENITH_DEG) / BAND_DEG) as usize
+    (((z_deg - NEAR_ZENITH_DEG) / BAND_DEG) as i32).max(0) as usize
 }
 
 /// Measure the frame's contrast loss and lift the far samples' classes by it (see the module's
 /// documentation); returns the loss when one was measured.
-pub fn correct(score: &[f32], z_deg: &[f32], plain: &dyn Fn(usize) -> bool, class: &mut [u8], thick_at: impl Fn(f32) -> f32) -> Option<ContrastLoss> {
+pub fn correct(score: &[f32], z_deg: &[f32], plain: &[bool], class: &mut [u8], thick_at: impl Fn(f32) -> f32) -> Option<ContrastLoss> {
     let loss = measure(&Samples { score, class, z_deg, plain })?;
     reclassify(score, z_deg, plain, &loss, class, thick_at);
     Some(loss)
@@ -154,7 +159,7 @@ pub fn correct(score: &[f32], z_deg: &[f32], plain: &dyn Fn(usize) -> bool, clas
 /// band's); `None` when the frame cannot say (too little cloud near the zenith, much thin cloud
 /// there, no far band with enough samples and a cover like the near field's) or shows none.
 pub fn measure(s: &Samples) -> Option<ContrastLoss> {
-    let judged = |k: usize| s.class[k] != Class::Unknown as u8 && (s.plain)(k) && s.score[k].is_finite();
+    let judged = |k: usize| s.class[k] != Class::Unknown as u8 && s.plain[k] && s.score[k].is_finite();
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
     let (mut near, mut near_cloudy, mut near_thin, mut m_sum) = (Vec::new(), 0usize, 0usize, 0.0f64);
     let n_bands = ((LAST_BAND_END_DEG - NEAR_ZENITH_DEG) / BAND_DEG) as usize;
@@ -213,11 +218,11 @@ pub fn measure(s: &Samples) -> Option<ContrastLoss> {
 /// Thin or thick again for the plain far cloudy samples (`plain`, as in [`Samples`]), from their
 /// scores lifted by the frame's loss (`thick_at(z)`: the segmentation's thick threshold). Clear,
 /// unknown and near samples and the scores are left as read; returns how many samples changed class.
-pub fn reclassify(score: &[f32], z_deg: &[f32], plain: &dyn Fn(usize) -> bool, loss: &ContrastLoss, class: &mut [u8], thick_at: impl Fn(f32) -> f32) -> usize {
+pub fn reclassify(score: &[f32], z_deg: &[f32], plain: &[bool], loss: &ContrastLoss, class: &mut [u8], thick_at: impl Fn(f32) -> f32) -> usize {
     let mut changed = 0;
     for k in 0..class.len() {
         let z = z_deg[k];
-        if z <= NEAR_ZENITH_DEG || class[k] <= Class::Clear as u8 || !plain(k) || !score[k].is_finite() {
+        if z <= NEAR_ZENITH_DEG || class[k] <= Class::Clear as u8 || !plain[k] || !score[k].is_finite() {
             continue;
         }
         let lifted = loss.lift(score[k], z);
@@ -285,6 +290,18 @@ fn promote_far_cells(class: &mut [u8], score: &[f32], z_deg: &[f32], from_deg: f
 mod tests {
     use super::*;
 
+    /// The band through i32 is the direct conversion's for every zenith a cell can have, below the
+    /// near field, at band edges and NaN (common practice, no source: a rewritten conversion must
+    /// give the original's results).
+    #[test]
+    fn band_through_i32_is_the_direct_conversion() {
+        let mut zs: Vec<f32> = (0..=18_000).map(|i| i as f32 * 0.01).collect();
+        zs.extend([f32::NAN, -1.0, -0.0, NEAR_ZENITH_DEG, NEAR_ZENITH_DEG + BAND_DEG, f32::from_bits(NEAR_ZENITH_DEG.to_bits() + 1), f32::from_bits(NEAR_ZENITH_DEG.to_bits() - 1)]);
+        for z in zs {
+            assert_eq!(band_of(z), ((z - NEAR_ZENITH_DEG) / BAND_DEG) as usize, "zenith {z}");
+        }
+    }
+
     /// A frame of cloud and sky whose cloud scores fall with distance as the law says: the measured
     /// rate comes back, and reclassifying lifts far cumulus from thin to thick while clear sky stays
     /// clear.
@@ -304,7 +321,7 @@ mod tests {
             class.push(if cloud { 2 + u8::from(s >= 0.875) } else { 1 });
             z.push(zd);
         }
-        let plain = |_: usize| true;
+        let plain = vec![true; z.len()];
         let samples = Samples { score: &score, class: &class, z_deg: &z, plain: &plain };
         let loss = measure(&samples).expect("a loss");
         // The near field's mean path differs from the guess used to draw the scores, so the rate
@@ -326,7 +343,7 @@ mod tests {
     #[test]
     fn no_measurement_without_near_cloud_or_loss() {
         let z: Vec<f32> = (0..10_000).map(|i| 85.0 * (i as f32 + 0.5) / 10_000.0).collect();
-        let plain = |_: usize| true;
+        let plain = vec![true; z.len()];
         let clear_score = vec![0.05f32; z.len()];
         let clear_class = vec![1u8; z.len()];
         assert!(measure(&Samples { score: &clear_score, class: &clear_class, z_deg: &z, plain: &plain }).is_none());
@@ -356,7 +373,7 @@ mod tests {
             class.push(if cloud { 2 + u8::from(s >= 0.875) } else { 1 });
             z.push(zd);
         }
-        let plain = |_: usize| true;
+        let plain = vec![true; z.len()];
         let loss = measure(&Samples { score: &score, class: &class, z_deg: &z, plain: &plain }).expect("a loss");
         assert!(loss.clear_band[4].is_nan(), "70–75° is unlike the near field");
         assert!(loss.clear_band[5].is_finite(), "75–80° is measured");

@@ -280,36 +280,36 @@ impl TransmittanceMap {
         let mut sat = pool::take_sat_sized(w * w, [0i32; FEATURES + 1]);
         sat[..w].fill([0i32; FEATURES + 1]);
         for j in 0..n {
-            let (mut rs, mut rc) = ([0i32; FEATURES], 0i32);
+            let (mut rs, mut rc) = (RowSums::default(), 0i32);
             let (above, below) = sat.split_at_mut((j + 1) * w);
             let (up, row) = (&above[j * w + 1..(j + 1) * w], &mut below[..w]);
             row[0] = [0i32; FEATURES + 1];
             let out = &mut row[1..w];
             let (cls, st) = (&class[j * n..j * n + n], &state[j * n..j * n + n]);
             for i in 0..n {
-                let (add, count) = if st[i] >= FILLED {
+                // The cell's first three features, its brightness feature (added apart, into the
+                // fourth lane) and its count.
+                let (add, b, count) = if st[i] >= FILLED {
                     let f = filled[(st[i] - FILLED) as usize];
-                    ([quantise(f[0]), quantise(f[1]), quantise(f[2]), quantise(f[3])], 1)
+                    ([quantise(f[0]), quantise(f[1]), quantise(f[2]), 0], quantise(f[3]), 1)
                 } else {
                     let c = (cls[i] & 3) as usize;
-                    let mut a = step[c];
-                    if continuous && c == Class::Thin as usize {
+                    let a = if continuous && c == Class::Thin as usize {
                         let t = thin_shares(j * n + i);
                         // The three shares sum to one unit exactly.
                         let (x, z) = (quantise(t[0]), quantise(t[2]));
-                        a = [x, unit - x - z, z, 0];
-                    }
-                    if a[1] + a[2] > 0 || c == Class::Thin as usize {
-                        a[3] = quantise(bright(j * n + i));
-                    }
-                    (a, (c != 0) as i32)
+                        [x, unit - x - z, z, 0]
+                    } else {
+                        step[c]
+                    };
+                    // Cloud (thin or thick) carries its brightness; a thin cell's shares always
+                    // hold some cloud, a thick one's all.
+                    let b = if c >= Class::Thin as usize { quantise(bright(j * n + i)) } else { 0 };
+                    (a, b, (c != 0) as i32)
                 };
-                for q in 0..FEATURES {
-                    rs[q] += add[q];
-                }
+                rs = add_features(rs, add, b);
                 rc += count;
-                let u = up[i];
-                out[i] = [u[0] + rs[0], u[1] + rs[1], u[2] + rs[2], u[3] + rs[3], u[4] + rc];
+                out[i] = with_above(&up[i], rs, rc);
             }
         }
         pool::give_u32(state);
@@ -387,6 +387,60 @@ impl TransmittanceMap {
     /// Mean transmittance of the whole map for given coefficients.
     pub fn mean_with(&self, beams: [f64; FEATURES]) -> f64 {
         self.total_shares.iter().zip(&beams).map(|(s, b)| s * b).sum()
+    }
+}
+
+/// A row's running sums of the four features in a table build: one SSE2 register on x86-64 (part
+/// of its baseline), so that the four integer additions per cell are one instruction; elsewhere
+/// the plain array. Integer additions either way: the same sums.
+#[cfg(target_arch = "x86_64")]
+#[derive(Clone, Copy)]
+struct RowSums(std::arch::x86_64::__m128i);
+
+#[cfg(target_arch = "x86_64")]
+impl Default for RowSums {
+    fn default() -> Self {
+        // SAFETY: SSE2 is part of x86-64.
+        RowSums(unsafe { std::arch::x86_64::_mm_setzero_si128() })
+    }
+}
+
+#[cfg(not(target_arch = "x86_64"))]
+#[derive(Clone, Copy, Default)]
+struct RowSums([i32; FEATURES]);
+
+/// The row's running sums plus one cell's features: `add` and, in the fourth feature, `b`.
+#[inline(always)]
+fn add_features(rs: RowSums, add: [i32; FEATURES], b: i32) -> RowSums {
+    #[cfg(target_arch = "x86_64")]
+    {
+        use std::arch::x86_64::{_mm_add_epi32, _mm_cvtsi32_si128, _mm_loadu_si128, _mm_slli_si128};
+        // SAFETY: SSE2 is part of x86-64; an unaligned load of the four i32 of `add`, and `b`
+        // moved into the fourth lane of an otherwise zero register.
+        RowSums(unsafe { _mm_add_epi32(_mm_add_epi32(rs.0, _mm_loadu_si128(add.as_ptr().cast())), _mm_slli_si128::<12>(_mm_cvtsi32_si128(b))) })
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        RowSums([rs.0[0] + add[0], rs.0[1] + add[1], rs.0[2] + add[2], rs.0[3] + add[3] + b])
+    }
+}
+
+/// A table entry: the entry above plus the row's running sums (features and count).
+#[inline(always)]
+fn with_above(up: &[i32; FEATURES + 1], rs: RowSums, rc: i32) -> [i32; FEATURES + 1] {
+    #[cfg(target_arch = "x86_64")]
+    {
+        use std::arch::x86_64::{_mm_add_epi32, _mm_loadu_si128, _mm_storeu_si128};
+        let mut out = [0i32; FEATURES + 1];
+        // SAFETY: SSE2 is part of x86-64; unaligned loads and stores of the first four of five
+        // i32.
+        unsafe { _mm_storeu_si128(out.as_mut_ptr().cast(), _mm_add_epi32(_mm_loadu_si128(up.as_ptr().cast()), rs.0)) };
+        out[FEATURES] = up[FEATURES] + rc;
+        out
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        [up[0] + rs.0[0], up[1] + rs.0[1], up[2] + rs.0[2], up[3] + rs.0[3], up[FEATURES] + rc]
     }
 }
 

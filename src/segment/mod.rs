@@ -620,8 +620,7 @@ pub fn segment_image(
     }
     if params.distant_contrast {
         let learned = fr.plain_and_learned_all(&sky, w * h);
-        let plain = |i: usize| learned[i];
-        crate::distance::correct(&score, &geom.z_deg, &plain, &mut classes, |z| params.thick_at(z));
+        crate::distance::correct(&score, &geom.z_deg, &learned, &mut classes, |z| params.thick_at(z));
     }
     crate::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
     crate::brightness::promote_dark(&mut classes, &geom.z_deg, &dark);
