@@ -22,6 +22,9 @@ import sys
 import cv2
 import numpy as np
 
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from scene_copy import SceneCopy  # noqa: E402
+
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -37,28 +40,12 @@ def main():
     frames = sorted(glob.glob(os.path.join(src_scene, "input", "frames", "*.jpg")))
     if not os.path.isdir(src_scene) or not frames:
         sys.exit(f"{src_scene}: no scene with JPEG frames in input/frames/")
-    dst = os.path.join(a.out, "independent-scenes")
-    dst_scene = os.path.join(dst, a.scene)
-    real_root = os.path.realpath(root)
-    if os.path.realpath(dst) == real_root or os.path.realpath(a.out).startswith(real_root + os.sep):
-        sys.exit(f"--out {a.out} lies in the datasets folder {root}: the frames there would be overwritten")
-    os.makedirs(dst, exist_ok=True)
-
-    def link(src, dst_path):
-        if not os.path.lexists(dst_path):
-            os.symlink(src, dst_path)
-
-    for name in os.listdir(root):
-        if name != a.scene:
-            link(os.path.join(root, name), os.path.join(dst, name))
-    # The scene folder this run writes into is never a link into the datasets (an earlier run
-    # for another scene links this one there), so writes cannot reach the originals.
+    copy = SceneCopy(root, a.out)
+    link = copy.link
+    dst_scene = os.path.join(copy.dst, a.scene)
+    copy.link_all_but({a.scene})
     for sub in (dst_scene, os.path.join(dst_scene, "input"), os.path.join(dst_scene, "input", "frames")):
-        if os.path.islink(sub):
-            os.unlink(sub)
-        os.makedirs(sub, exist_ok=True)
-        if os.path.realpath(sub).startswith(real_root + os.sep):
-            sys.exit(f"{sub} resolves into the datasets folder {root}: refusing to write there")
+        copy.own_folder(sub)
     for name in os.listdir(src_scene):
         if name != "input":
             link(os.path.join(src_scene, name), os.path.join(dst_scene, name))

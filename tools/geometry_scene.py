@@ -31,6 +31,9 @@ import cv2
 import numpy as np
 import pandas as pd
 
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from scene_copy import SceneCopy  # noqa: E402
+
 CAMERA_SCENES = {
     "camera1": ("camera1-clear-day", "camera1-broken-cloud"),
     "camera2": ("camera2-clear-day", "camera2-breaking-overcast"),
@@ -76,29 +79,10 @@ def main():
     if not 0.25 <= a.scale <= 4.0:
         sys.exit(f"--scale must lie in 0.25–4 (got {a.scale})")
     root = os.path.join(os.environ.get("NEPHOCAST_DATASETS") or sys.exit("NEPHOCAST_DATASETS is not set"), "independent-scenes")
-    dst = os.path.join(a.out, "independent-scenes")
-    real_root = os.path.realpath(root)
-    if os.path.realpath(dst) == real_root or os.path.realpath(a.out).startswith(real_root + os.sep):
-        sys.exit(f"--out {a.out} lies in the datasets folder {root}: the frames there would be overwritten")
-    os.makedirs(dst, exist_ok=True)
-
-    def link(src, dst_path):
-        if not os.path.lexists(dst_path):
-            os.symlink(src, dst_path)
-
-    def own_folder(path):
-        # A folder this run writes into: never a link into the datasets (an earlier run for the
-        # other camera links this camera's scenes there), so writes cannot reach the originals.
-        if os.path.islink(path):
-            os.unlink(path)
-        os.makedirs(path, exist_ok=True)
-        if os.path.realpath(path).startswith(real_root + os.sep):
-            sys.exit(f"{path} resolves into the datasets folder {root}: refusing to write there")
-
+    copy = SceneCopy(root, a.out)
+    link, own_folder, dst = copy.link, copy.own_folder, copy.dst
     mine = CAMERA_SCENES[a.camera]
-    for name in os.listdir(root):
-        if name not in mine:
-            link(os.path.join(root, name), os.path.join(dst, name))
+    copy.link_all_but(set(mine))
     for scene in mine:
         src = os.path.join(root, scene)
         out = os.path.join(dst, scene)
