@@ -213,8 +213,8 @@ mod tests {
         let base = gain(0.0, false);
         let steps: Vec<(f64, f64)> = [0.05, 0.1, 0.2, 0.4, 0.8].iter().map(|j| (gain(*j, false) - base, gain(*j, true) - base)).collect();
         // Below the threshold neither takes a step (both move by the fit alone); just past it the
-        // hard step takes all of the mean residual, the soft a
-        // small part; beyond, the soft step grows with the evidence and never passes the hard.
+        // hard step takes all of the mean residual, the soft a small part; beyond, the soft step
+        // grows with the evidence and never passes the hard.
         let fit = steps[0].0;
         assert!((steps[0].1 - fit).abs() < 1e-12, "{steps:?}");
         assert!(steps[1].0 - fit > 0.02 && steps[1].1 - fit < 0.25 * (steps[1].0 - fit), "{steps:?}");
