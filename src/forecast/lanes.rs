@@ -18,160 +18,99 @@ pub(super) fn usable(look: &HorizonLookUp) -> bool {
         && std::arch::is_x86_feature_detected!("avx2")
 }
 
-/// What every four-lane look-up of one horizon shares, in vector registers.
-#[derive(Clone, Copy)]
-struct Lanes<'a> {
-    sat: &'a [[i32; FEATURES + 1]],
-    cell: __m256d,
-    h: __m256d,
-    half: __m256d,
-    one_half: __m256d,
-    m_half: __m256d,
-    n_m_half: __m256d,
-    rv: __m256d,
-    zero_i: __m128i,
-    top_i: __m128i,
-    w_i: __m128i,
-    unit: __m256d,
-    one: __m256d,
-    bv: [__m256d; FEATURES],
-}
-
-/// Four points' box means ([`super::TransmittanceMap::box_mean_with`] after `Grid::to_cell` of
-/// the point plus `(sx, sy)`), lane by lane, and the lanes (bits 0–3) where it is defined (the
-/// centre on the map and the box holding a known cell).
-///
-/// One piece on purpose: the four lanes' look-up from point to mean, in vector registers
-/// throughout; split, the lanes would be stored and reloaded between the parts.
-///
-/// # Safety
-/// The CPU must have AVX2; `l.sat` is the table of `(n + 1)²` entries for the `n` whose
-/// `n_m_half` and `top_i` `l` holds.
-#[target_feature(enable = "avx2")]
-#[inline]
-unsafe fn box_means(l: &Lanes, x: __m256d, y: __m256d, sx: __m256d, sy: __m256d) -> (__m256d, i32) {
-    // Grid::to_cell: (p / cell_m + n / 2) − 0.5.
-    let cx = _mm256_sub_pd(_mm256_add_pd(_mm256_div_pd(_mm256_add_pd(x, sx), l.cell), l.h), l.half);
-    let cy = _mm256_sub_pd(_mm256_add_pd(_mm256_div_pd(_mm256_add_pd(y, sy), l.cell), l.h), l.half);
-    // Inside the map (ordered comparisons: NaN is outside); lanes outside take centre 0 so
-    // that every truncation below is of a finite number under 2^30 in magnitude.
-    let inside = _mm256_and_pd(
-        _mm256_and_pd(_mm256_cmp_pd::<_CMP_GE_OQ>(cx, l.m_half), _mm256_cmp_pd::<_CMP_GE_OQ>(cy, l.m_half)),
-        _mm256_and_pd(_mm256_cmp_pd::<_CMP_LE_OQ>(cx, l.n_m_half), _mm256_cmp_pd::<_CMP_LE_OQ>(cy, l.n_m_half)),
-    );
-    let (cx, cy) = (_mm256_and_pd(cx, inside), _mm256_and_pd(cy, inside));
-    // (Macros, not closures: a closure would not share the function's target features.)
-    macro_rules! clamp {
-        ($v:expr) => {
-            _mm_min_epi32(_mm_max_epi32($v, l.zero_i), l.top_i)
-        };
-    }
-    let x0 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_sub_pd(cx, l.rv), l.half)));
-    let x1 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_add_pd(cx, l.rv), l.one_half)));
-    let y0 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_sub_pd(cy, l.rv), l.half)));
-    let y1 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_add_pd(cy, l.rv), l.one_half)));
-    let nonempty = _mm_and_si128(_mm_cmpgt_epi32(x1, x0), _mm_cmpgt_epi32(y1, y0));
-    let mut valid = _mm256_movemask_pd(inside) & _mm_movemask_ps(_mm_castsi128_ps(nonempty));
-    // Corners' indices; every bound is clamped to 0..=n, so every index is below (n + 1)²
-    // whether the lane is valid or not.
-    let mut idx = [[0i32; 4]; 4];
-    for (out, (yy, xx)) in idx.iter_mut().zip([(y1, x1), (y0, x1), (y1, x0), (y0, x0)]) {
-        // SAFETY: four i32 into a [i32; 4].
-        unsafe { _mm_storeu_si128(out.as_mut_ptr().cast(), _mm_add_epi32(_mm_mullo_epi32(yy, l.w_i), xx)) };
-    }
-    let [ia, ib, ic, id] = idx;
-    let sat = l.sat;
-    let mut shares = [_mm_setzero_si128(); 4];
-    let mut cnt = [0i32; 4];
-    for i in 0..4 {
-        // SAFETY: indices below (n + 1)² = the table's length (above); each entry is five
-        // i32, of which the first four (16 bytes) are the features.
-        let (a, b, c, d) = unsafe { (sat.get_unchecked(ia[i] as usize), sat.get_unchecked(ib[i] as usize), sat.get_unchecked(ic[i] as usize), sat.get_unchecked(id[i] as usize)) };
-        let (va, vb, vc, vd) = unsafe { (_mm_loadu_si128(a.as_ptr().cast()), _mm_loadu_si128(b.as_ptr().cast()), _mm_loadu_si128(c.as_ptr().cast()), _mm_loadu_si128(d.as_ptr().cast())) };
-        shares[i] = _mm_add_epi32(_mm_sub_epi32(_mm_sub_epi32(va, vb), vc), vd);
-        cnt[i] = a[FEATURES] - b[FEATURES] - c[FEATURES] + d[FEATURES];
-    }
-    // SAFETY: four i32 from a [i32; 4].
-    let cnt_i = unsafe { _mm_loadu_si128(cnt.as_ptr().cast()) };
-    valid &= _mm_movemask_ps(_mm_castsi128_ps(_mm_cmpgt_epi32(cnt_i, l.zero_i)));
-    // Features across the lanes (a 4 × 4 transpose of the lanes' feature sums).
-    let (t0, t1) = (_mm_unpacklo_epi32(shares[0], shares[1]), _mm_unpacklo_epi32(shares[2], shares[3]));
-    let (t2, t3) = (_mm_unpackhi_epi32(shares[0], shares[1]), _mm_unpackhi_epi32(shares[2], shares[3]));
-    let feat = [_mm_unpacklo_epi64(t0, t1), _mm_unpackhi_epi64(t0, t1), _mm_unpacklo_epi64(t2, t3), _mm_unpackhi_epi64(t2, t3)];
-    // f = 1 / (SHARE_UNIT · cnt); share_q = sum_q · f; mean = Σ share_q · beam_q in order, ≥ 0.
-    let cnt_f = _mm256_cvtepi32_pd(_mm_max_epi32(cnt_i, _mm_set1_epi32(1)));
-    let f = _mm256_div_pd(l.one, _mm256_mul_pd(l.unit, cnt_f));
-    let mut term = [_mm256_setzero_pd(); FEATURES];
-    for q in 0..FEATURES {
-        term[q] = _mm256_mul_pd(_mm256_mul_pd(_mm256_cvtepi32_pd(feat[q]), f), l.bv[q]);
-    }
-    let sum = _mm256_add_pd(_mm256_add_pd(_mm256_add_pd(term[0], term[1]), term[2]), term[3]);
-    (_mm256_max_pd(sum, _mm256_setzero_pd()), valid)
-}
-
 /// Sum of the points' beam transmittances (as used) and how many fell back, four points at a
-/// time. Only when [`usable`]. Where a lane's look-up is not defined, its fallback
-/// ([`HorizonLookUp::fallback`]: the box at the point's sun-ray point now, blended with the map's
-/// mean) is looked up the same way, four lanes at once.
+/// time. Only when [`usable`].
+///
+/// One piece on purpose: the four lanes' look-up from point to capped transmittance, in vector
+/// registers throughout; split, the lanes would be stored and reloaded between the parts.
 ///
 /// # Safety
 /// The CPU must have AVX2 ([`usable`] checks it).
 #[target_feature(enable = "avx2")]
 pub(super) unsafe fn sum_one_layer(look: &HorizonLookUp, points: &[ScaledPoint]) -> (f64, usize) {
     let tm = &look.tms[0];
-    let (adv, off, r, beams, bs) = (look.adv[0], look.off[0], look.r_cells[0], look.beams, look.beam_scale);
+    let (adv, r, beams, bs) = (look.adv[0], look.r_cells[0], look.beams, look.beam_scale);
     let n = tm.n;
     let (w, top) = (n + 1, n as i32);
-    debug_assert_eq!(tm.sat.len(), w * w);
+    let sat = &tm.sat;
+    debug_assert_eq!(sat.len(), w * w);
     let splat = _mm256_set1_pd;
-    let l = Lanes {
-        sat: &tm.sat,
-        cell: splat(look.grid.cell_m),
-        h: splat(look.grid.n as f64 / 2.0),
-        half: splat(0.5),
-        one_half: splat(1.5),
-        m_half: splat(-0.5),
-        n_m_half: splat(n as f64 - 0.5),
-        rv: splat(r),
-        zero_i: _mm_setzero_si128(),
-        top_i: _mm_set1_epi32(top),
-        w_i: _mm_set1_epi32(w as i32),
-        unit: splat(SHARE_UNIT),
-        one: splat(1.0),
-        bv: std::array::from_fn(|q| splat(beams[q])),
-    };
-    let (advx, advy, offx, offy) = (splat(adv[0]), splat(adv[1]), splat(off[0]), splat(off[1]));
-    let (cap, bsv) = (splat(1.3), splat(bs));
-    // The fallback's blend: `wp · now + (1 − wp) · mean`, `now` the map's mean where the box now
-    // is not defined.
-    let (wpv, rest, meanv) = (splat(look.wp), splat(1.0 - look.wp), splat(look.means[0]));
+    let (advx, advy, cell, h) = (splat(adv[0]), splat(adv[1]), splat(look.grid.cell_m), splat(look.grid.n as f64 / 2.0));
+    let (half, one_half, m_half, n_m_half, rv) = (splat(0.5), splat(1.5), splat(-0.5), splat(n as f64 - 0.5), splat(r));
+    let (zero_i, top_i, w_i) = (_mm_setzero_si128(), _mm_set1_epi32(top), _mm_set1_epi32(w as i32));
+    let (unit, one, cap, bsv) = (splat(SHARE_UNIT), splat(1.0), splat(1.3), splat(bs));
+    let bv: [__m256d; FEATURES] = std::array::from_fn(|q| splat(beams[q]));
     let (mut tr_sum, mut fb_sum) = (0f64, 0usize);
     let mut chunks = points.chunks_exact(4);
     for ch in &mut chunks {
         let x = _mm256_set_pd(ch[3][0][0], ch[2][0][0], ch[1][0][0], ch[0][0][0]);
         let y = _mm256_set_pd(ch[3][0][1], ch[2][0][1], ch[1][0][1], ch[0][0][1]);
-        // SAFETY: AVX2 (this function's); the table is `tm`'s, of `(n + 1)²` entries.
-        let (mean, valid) = unsafe { box_means(&l, x, y, advx, advy) };
+        // Grid::to_cell: (p / cell_m + n / 2) − 0.5.
+        let cx = _mm256_sub_pd(_mm256_add_pd(_mm256_div_pd(_mm256_add_pd(x, advx), cell), h), half);
+        let cy = _mm256_sub_pd(_mm256_add_pd(_mm256_div_pd(_mm256_add_pd(y, advy), cell), h), half);
+        // Inside the map (ordered comparisons: NaN is outside); lanes outside take centre 0 so
+        // that every truncation below is of a finite number under 2^30 in magnitude.
+        let inside = _mm256_and_pd(
+            _mm256_and_pd(_mm256_cmp_pd::<_CMP_GE_OQ>(cx, m_half), _mm256_cmp_pd::<_CMP_GE_OQ>(cy, m_half)),
+            _mm256_and_pd(_mm256_cmp_pd::<_CMP_LE_OQ>(cx, n_m_half), _mm256_cmp_pd::<_CMP_LE_OQ>(cy, n_m_half)),
+        );
+        let (cx, cy) = (_mm256_and_pd(cx, inside), _mm256_and_pd(cy, inside));
+        // (Macros, not closures: a closure would not share the function's target features.)
+        macro_rules! clamp {
+            ($v:expr) => {
+                _mm_min_epi32(_mm_max_epi32($v, zero_i), top_i)
+            };
+        }
+        let x0 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_sub_pd(cx, rv), half)));
+        let x1 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_add_pd(cx, rv), one_half)));
+        let y0 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_sub_pd(cy, rv), half)));
+        let y1 = clamp!(_mm256_cvttpd_epi32(_mm256_add_pd(_mm256_add_pd(cy, rv), one_half)));
+        let nonempty = _mm_and_si128(_mm_cmpgt_epi32(x1, x0), _mm_cmpgt_epi32(y1, y0));
+        let mut valid = _mm256_movemask_pd(inside) & _mm_movemask_ps(_mm_castsi128_ps(nonempty));
+        // Corners' indices; every bound is clamped to 0..=n, so every index is below (n + 1)²
+        // whether the lane is valid or not.
+        let mut idx = [[0i32; 4]; 4];
+        for (out, (yy, xx)) in idx.iter_mut().zip([(y1, x1), (y0, x1), (y1, x0), (y0, x0)]) {
+            // SAFETY: four i32 into a [i32; 4].
+            unsafe { _mm_storeu_si128(out.as_mut_ptr().cast(), _mm_add_epi32(_mm_mullo_epi32(yy, w_i), xx)) };
+        }
+        let [ia, ib, ic, id] = idx;
+        let mut shares = [_mm_setzero_si128(); 4];
+        let mut cnt = [0i32; 4];
+        for i in 0..4 {
+            // SAFETY: indices below (n + 1)² = the table's length (above); each entry is five
+            // i32, of which the first four (16 bytes) are the features.
+            let (a, b, c, d) = unsafe { (sat.get_unchecked(ia[i] as usize), sat.get_unchecked(ib[i] as usize), sat.get_unchecked(ic[i] as usize), sat.get_unchecked(id[i] as usize)) };
+            let (va, vb, vc, vd) = unsafe { (_mm_loadu_si128(a.as_ptr().cast()), _mm_loadu_si128(b.as_ptr().cast()), _mm_loadu_si128(c.as_ptr().cast()), _mm_loadu_si128(d.as_ptr().cast())) };
+            shares[i] = _mm_add_epi32(_mm_sub_epi32(_mm_sub_epi32(va, vb), vc), vd);
+            cnt[i] = a[FEATURES] - b[FEATURES] - c[FEATURES] + d[FEATURES];
+        }
+        // SAFETY: four i32 from a [i32; 4].
+        let cnt_i = unsafe { _mm_loadu_si128(cnt.as_ptr().cast()) };
+        valid &= _mm_movemask_ps(_mm_castsi128_ps(_mm_cmpgt_epi32(cnt_i, zero_i)));
+        // Features across the lanes (a 4 × 4 transpose of the lanes' feature sums).
+        let (t0, t1) = (_mm_unpacklo_epi32(shares[0], shares[1]), _mm_unpacklo_epi32(shares[2], shares[3]));
+        let (t2, t3) = (_mm_unpackhi_epi32(shares[0], shares[1]), _mm_unpackhi_epi32(shares[2], shares[3]));
+        let feat = [_mm_unpacklo_epi64(t0, t1), _mm_unpackhi_epi64(t0, t1), _mm_unpacklo_epi64(t2, t3), _mm_unpackhi_epi64(t2, t3)];
+        // f = 1 / (SHARE_UNIT · cnt); share_q = sum_q · f; mean = Σ share_q · beam_q in order, ≥ 0.
+        let cnt_f = _mm256_cvtepi32_pd(_mm_max_epi32(cnt_i, _mm_set1_epi32(1)));
+        let f = _mm256_div_pd(one, _mm256_mul_pd(unit, cnt_f));
+        let mut term = [_mm256_setzero_pd(); FEATURES];
+        for q in 0..FEATURES {
+            term[q] = _mm256_mul_pd(_mm256_mul_pd(_mm256_cvtepi32_pd(feat[q]), f), bv[q]);
+        }
+        let sum = _mm256_add_pd(_mm256_add_pd(_mm256_add_pd(term[0], term[1]), term[2]), term[3]);
+        let mean = _mm256_max_pd(sum, _mm256_setzero_pd());
         let used = _mm256_min_pd(_mm256_mul_pd(mean, bsv), cap);
         let mut u = [0f64; 4];
         // SAFETY: four f64 into a [f64; 4].
         unsafe { _mm256_storeu_pd(u.as_mut_ptr(), used) };
-        let mut fb = [0f64; 4];
-        if valid != 0b1111 {
-            // SAFETY: as above.
-            let (now, now_valid) = unsafe { box_means(&l, x, y, offx, offy) };
-            let known = _mm256_castsi256_pd(_mm256_cmpgt_epi64(_mm256_and_si256(_mm256_set1_epi64x(now_valid as i64), _mm256_set_epi64x(8, 4, 2, 1)), _mm256_setzero_si256()));
-            let now = _mm256_blendv_pd(meanv, now, known);
-            let blended = _mm256_add_pd(_mm256_mul_pd(wpv, now), _mm256_mul_pd(rest, meanv));
-            // SAFETY: four f64 into a [f64; 4].
-            unsafe { _mm256_storeu_pd(fb.as_mut_ptr(), _mm256_min_pd(_mm256_mul_pd(blended, bsv), cap)) };
-        }
-        for i in 0..4 {
+        for (i, ui) in u.iter().enumerate() {
             if valid & (1 << i) != 0 {
-                tr_sum += u[i];
+                tr_sum += ui;
             } else {
                 fb_sum += 1;
-                tr_sum += fb[i];
+                tr_sum += (look.fallback(0, ch[i][0]) * bs).min(1.3);
             }
         }
     }
