@@ -109,6 +109,8 @@ struct Slot {
     hits: usize,
     blocks: f64,
     thick_share: f64,
+    /// The last measurement's spread of block vectors \[m/s\].
+    spread_mps: f64,
 }
 
 /// Up to two layers tracked over time, each by its own [`MotionFilter`]. Each frame's measured
@@ -120,6 +122,8 @@ pub struct LayerTracker {
     slots: [Slot; 2],
     /// The track put first (the forecast's primary layer) last time.
     primary: usize,
+    /// `layer_confirm` at the last update.
+    confirm_at: usize,
 }
 
 /// The other track becomes the primary layer only when its opacity exceeds the primary's by this.
@@ -134,6 +138,31 @@ impl LayerTracker {
     /// put first last time (0 before any motion is known).
     pub fn primary_accepted_run(&self) -> usize {
         if self.active(self.primary).is_some() { self.slots[self.primary].filter.accepted_run() } else { 0 }
+    }
+
+    /// The least one-sigma spread of speed \[m/s\] the forecast should give its layers while the
+    /// tracked motion is not yet confirmed; 0 once it is. Two cases:
+    /// * a track in the forecast stands on fewer than `confirm` consistent measurements in a row:
+    ///   its last measurement's spread of block vectors (the spread itself, not its standard
+    ///   error: until measurements agree, the blocks may be following more than one layer);
+    /// * a second layer was measured at this frame but is not yet confirmed, so the forecast
+    ///   advects its cloud with the first layer's motion: the distance between the two tracks.
+    pub fn unconfirmed_spread_mps(&self, confirm: usize) -> f64 {
+        let active: Vec<usize> = (0..2).filter(|&k| self.active(k).is_some()).collect();
+        let mut spread = 0f64;
+        for &k in &active {
+            let s = &self.slots[k];
+            if active.len() == 1 || s.hits >= self.confirm_at {
+                if s.filter.accepted_run() < confirm {
+                    spread = spread.max(s.spread_mps);
+                }
+            } else if s.since_s == 0.0
+                && let (Some(a), Some(b)) = (self.active(0), self.active(1))
+            {
+                spread = spread.max(dist(a.v_mps, b.v_mps));
+            }
+        }
+        spread
     }
 
     /// The map's plane moved by `ratio` (new height over old): each track's motion scales by it
@@ -154,6 +183,7 @@ impl LayerTracker {
     /// Advance by `dt_s` and fold in a measurement. Returns the layers for the forecast, the most
     /// opaque first (empty before any motion is known).
     pub fn update(&mut self, m: Option<&MotionMeasurement>, dt_s: f64, params: &MotionParams) -> Vec<TrackedLayer> {
+        self.confirm_at = params.layer_confirm;
         let measured: &[LayerMotion] = m.map(|m| m.layers.as_slice()).unwrap_or(&[]);
         // Cost of pairing a measured layer with a track: their distance; a new track costs the
         // two-layer separation.
@@ -184,6 +214,7 @@ impl LayerTracker {
                     let w = if first { 1.0 } else { 0.3 };
                     slot.blocks += w * (l.blocks as f64 - slot.blocks);
                     slot.thick_share += w * (l.thick_share - slot.thick_share);
+                    slot.spread_mps = l.spread_mps;
                 }
                 None => slot.since_s += dt_s,
             }

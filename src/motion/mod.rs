@@ -113,7 +113,16 @@ pub struct MotionParams {
     /// Half-side of the box over which a cloudy cell's mismatch under each layer's motion is
     /// averaged to label it with a layer ([`label_layers`]) \[cells\].
     pub label_radius_cells: usize,
+    /// Until the tracked motion is confirmed (the alarms' `ramps.motion_confirm_measurements`
+    /// consistent measurements, and no second layer seen but not yet confirmed), the forecast
+    /// advects each layer with at least the spread [`LayerTracker::unconfirmed_spread_mps`] gives.
+    pub widen_unconfirmed: bool,
 }
+
+/// The spread of speed the forecast gives a sky whose motion is not known yet \[m/s\] (one sigma
+/// per component; common practice, no source: the order of typical cloud speeds' day-to-day
+/// spread).
+pub const UNKNOWN_MOTION_SIGMA_MPS: f64 = 3.0;
 
 impl Default for MotionParams {
     fn default() -> Self {
@@ -136,6 +145,7 @@ impl Default for MotionParams {
             first_pass_max_zenith_deg: 80.0,
             cancelled_layer_pass: false,
             label_radius_cells: 4,
+            widen_unconfirmed: true,
         }
     }
 }
@@ -733,6 +743,39 @@ mod tests {
             out = t.update(Some(&meas(vec![layer([2.0, -3.5], 0.5)])), 20.0, &p);
         }
         assert_eq!(out.len(), 1, "{out:?}");
+    }
+
+    #[test]
+    fn unconfirmed_motion_carries_its_blocks_spread_and_an_unconfirmed_layer_the_gap() {
+        let p = MotionParams::default();
+        let layer = |v: [f64; 2], spread: f64| LayerMotion { v_mps: v, blocks: 12, mean_score: 1.0, thick_share: 0.6, spread_mps: spread };
+        let meas = |ls: Vec<LayerMotion>| MotionMeasurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3, labels: None, blocks_static: 0, locked_at_zero: false };
+        let mut t = LayerTracker::default();
+        assert_eq!(t.unconfirmed_spread_mps(3), 0.0, "nothing tracked: the forecast's own still-sky spread applies");
+        // A blend of two layers: its blocks spread widely. Until three measurements agree, that
+        // spread is the forecast's least.
+        t.update(Some(&meas(vec![layer([2.7, -1.4], 1.7)])), 20.0, &p);
+        assert_eq!(t.unconfirmed_spread_mps(3), 1.7);
+        t.update(Some(&meas(vec![layer([2.5, -2.0], 1.2)])), 20.0, &p);
+        assert_eq!(t.unconfirmed_spread_mps(3), 1.2);
+        // A second layer seen for the first time (one measurement, not yet in the forecast): the
+        // distance between the tracks.
+        t.update(Some(&meas(vec![layer([2.4, -2.9], 0.4), layer([6.4, 6.1], 0.3)])), 20.0, &p);
+        let tracks = t.priors();
+        assert_eq!(tracks.len(), 2);
+        let gap = dist(tracks[0].v_mps, tracks[1].v_mps);
+        assert!(gap > 8.0 && (t.unconfirmed_spread_mps(3) - gap).abs() < 1e-12, "{} against {gap}", t.unconfirmed_spread_mps(3));
+        // Both layers confirmed and each on three consistent measurements: nothing added.
+        for _ in 0..3 {
+            t.update(Some(&meas(vec![layer([2.3, -3.5], 0.3), layer([6.4, 6.3], 0.3)])), 20.0, &p);
+        }
+        assert_eq!(t.unconfirmed_spread_mps(3), 0.0, "{t:?}");
+        // A single layer confirmed from the start: only its first measurements carry their spread.
+        let mut one = LayerTracker::default();
+        for k in 0..4 {
+            one.update(Some(&meas(vec![layer([11.2, 4.0], 0.5)])), 20.0, &p);
+            assert_eq!(one.unconfirmed_spread_mps(3), if k < 2 { 0.5 } else { 0.0 });
+        }
     }
 
     #[test]

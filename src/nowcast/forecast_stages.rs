@@ -116,7 +116,7 @@ impl ForecastStage {
             camera_m: cx.site.file.camera.position_m,
             cbh_m: cbh,
             layers: if layers.is_empty() {
-                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: 3.0, cbh_factor, cbh_log_sigma: cbh_rel_sigma }]
+                vec![Advection { v_mps: [0.0, 0.0], sigma_mps: crate::motion::UNKNOWN_MOTION_SIGMA_MPS, cbh_factor, cbh_log_sigma: cbh_rel_sigma }]
             } else {
                 let base = |i: usize| if i == 0 { (cbh_factor, cbh_rel_sigma) } else { upper };
                 layers.iter().enumerate().map(|(i, l)| Advection { v_mps: l.motion.v_mps, sigma_mps: l.motion.sigma_mps, cbh_factor: base(i).0, cbh_log_sigma: base(i).1 }).collect()

@@ -476,7 +476,14 @@ impl Nowcaster {
         let glare_filled = self.glare_filled(&frame.time, &map, &layer_v, labels.as_deref());
         let tune_map = glare_filled.first().map_or(&*map, |(m, _)| m);
         self.forecast_stage.tune(cx, &frame.time, &sun, tune_map, [cf, thin_cf], (cbh, cbh_factor), motion.map(|m| m.v_mps), moved.layers.len() > 1);
-        let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), upper, &moved.layers, [cf, thin_cf]);
+        // Until the tracked motion is confirmed, the forecast's advection carries a wider spread.
+        let spread_mps = if self.site.file.motion.widen_unconfirmed { self.motion_stage.tracker.unconfirmed_spread_mps(self.site.file.ramps.motion_confirm_measurements as usize) } else { 0.0 };
+        let advected: std::borrow::Cow<[crate::motion::TrackedLayer]> = if spread_mps > 0.0 {
+            moved.layers.iter().map(|l| crate::motion::TrackedLayer { motion: crate::motion::Motion { sigma_mps: l.motion.sigma_mps.max(spread_mps), ..l.motion }, ..*l }).collect()
+        } else {
+            std::borrow::Cow::Borrowed(&moved.layers)
+        };
+        let input = self.forecast_stage.input(cx, &frame.time, (cbh, cbh_factor, cbh_est.rel_sigma()), upper, &advected, [cf, thin_cf]);
         // Each layer's view of the map: the map itself, or its glare filled from the kept maps.
         let views: Vec<(&CloudMap, Option<&[u8]>)> = match (glare_filled.as_slice(), labels.as_deref()) {
             ([], Some(lb)) => vec![(&*map, Some(lb)), (&*map, Some(lb))],
