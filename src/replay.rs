@@ -185,6 +185,10 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                 }
             }
         });
+        // The receiver belongs to this closure, so that leaving it early (an error, or a panic in
+        // the engine) drops it before the scope joins the reader: a reader blocked on a full
+        // channel then sees the receiver gone and stops, instead of the run hanging.
+        let rx = rx;
         for (i, f) in frames.iter().enumerate() {
             let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
             let Ok((decoded, dms)) = rx.recv() else {
