@@ -25,6 +25,7 @@
 //! cut inside the image data can never end with a false EOI there; a cut just after an EOI inside a
 //! metadata segment (an embedded thumbnail) is caught because the segment walk skips whole segments.
 
+pub mod ahead;
 mod reduced;
 mod structure;
 use structure::check_dimensions;
