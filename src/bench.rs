@@ -59,10 +59,10 @@ pub struct BenchReport {
     pub throughput_fps_median: f64,
     /// Threads of the engine's pool in the overlapped pass (0: not run).
     pub overlap_threads: usize,
-    /// Frames per second including decoding, with each frame decoded on a thread of its own while
-    /// the engine steps the frame before (as `replay` does), the engine's pool (ensemble members,
-    /// block matching) having `overlap_threads` threads; a second pass over the same frames with a
-    /// fresh engine. NaN when not run.
+    /// Frames per second including decoding, with the frames decoded ahead as jobs on the engine's
+    /// pool of `overlap_threads` threads while the engine steps the frame before (as `replay` does,
+    /// [`crate::intake::ahead`]; the same pool runs the ensemble members and block matching); a
+    /// second pass over the same frames with a fresh engine. NaN when not run.
     pub throughput_fps_overlapped: f64,
 }
 
