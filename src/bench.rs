@@ -59,10 +59,10 @@ pub struct BenchReport {
     pub throughput_fps_median: f64,
     /// Threads of the engine's pool in the overlapped pass (0: not run).
     pub overlap_threads: usize,
-    /// Frames per second including decoding, with each frame decoded on a thread of its own while
-    /// the engine steps the frame before (as `replay` does), the engine's pool (ensemble members,
-    /// block matching) having `overlap_threads` threads; a second pass over the same frames with a
-    /// fresh engine. NaN when not run.
+    /// Frames per second including decoding, with the frames decoded ahead as jobs on the engine's
+    /// pool of `overlap_threads` threads while the engine steps the frame before (as `replay` does,
+    /// [`crate::intake::ahead`]; the same pool runs the ensemble members and block matching); a
+    /// second pass over the same frames with a fresh engine. NaN when not run.
     pub throughput_fps_overlapped: f64,
 }
 
@@ -256,31 +256,35 @@ fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Ve
     })
 }
 
-/// Frames per second of the whole engine with each frame decoded on a thread of its own (up to
-/// [`crate::intake::read_ahead_frames`] ahead) while the engine steps the frame before, as `replay` does; the engine's pool
-/// has `threads` threads. A fresh engine over the same frames.
+/// Frames per second of the whole engine with the frames decoded ahead (up to
+/// [`crate::intake::read_ahead_frames`]) as jobs on the engine's pool of `threads` threads while the
+/// engine steps the frame before, as `replay` does ([`crate::intake::ahead`]). A fresh engine over
+/// the same frames.
 fn overlapped_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Vec<u8>], threads: usize) -> Result<f64, BenchError> {
     let mut nc = Nowcaster::new(site.clone(), None, None);
     let opts = nc.intake_options();
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().map_err(|e| BenchError::Setup(e.to_string()))?;
-    let (tx, rx) = std::sync::mpsc::sync_channel::<Result<image::RgbImage, crate::intake::Refusal>>(crate::intake::read_ahead_frames(&opts));
+    let decode = |k: usize| crate::intake::from_bytes(&jpegs[k], &opts);
+    let ahead = crate::intake::ahead::Ahead::new(jpegs.len(), crate::intake::read_ahead_frames(&opts), &decode);
     let wall = Instant::now();
-    std::thread::scope(|scope| -> Result<(), BenchError> {
-        scope.spawn(move || {
-            for j in jpegs {
-                if tx.send(crate::intake::from_bytes(j, &opts)).is_err() {
-                    break;
-                }
-            }
-        });
-        // The receiver moves into the pool (it is `Send`, not `Sync`); the engine goes in by reference.
-        let nc = &mut nc;
-        pool.install(move || -> Result<(), BenchError> {
+    let nc = &mut nc;
+    pool.install(|| {
+        rayon::scope_fifo(|scope| -> Result<(), BenchError> {
             for (index, t) in times.iter().enumerate() {
                 let failed = |message: String| BenchError::Frame { index, message };
-                let img = rx.recv().map_err(|_| failed("the decoding thread stopped".into()))?.map_err(|e| failed(e.to_string()))?;
+                let img = ahead.take(scope, index).map_err(|e| failed(e.to_string()));
+                let img = match img {
+                    Ok(img) => img,
+                    Err(e) => {
+                        ahead.stop();
+                        return Err(e);
+                    }
+                };
                 let frame = Frame { time: *t, image: img };
-                nc.step(&frame).map_err(|e| failed(e.to_string()))?;
+                if let Err(e) = nc.step(&frame) {
+                    ahead.stop();
+                    return Err(failed(e.to_string()));
+                }
                 crate::intake::recycle(frame.image);
             }
             Ok(())

@@ -171,29 +171,19 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
     let mut last_cbh = None;
     let mut last_plane_m = None;
     let mut outputs = vec![];
-    // Frames are read and decoded ahead ([`crate::intake::read_ahead_frames`]: 8 at 1024²) on a
-    // thread of their own, so that decoding frame n + 1 overlaps the engine's step on frame n.
-    let (tx, rx) = std::sync::mpsc::sync_channel::<(Result<image::RgbImage, crate::intake::IntakeError>, f64)>(crate::intake::read_ahead_frames(&intake));
-    let paths: Vec<PathBuf> = frames.iter().map(|f| f.path.clone()).collect();
-    std::thread::scope(|scope| -> Result<(), ReplayError> {
-        scope.spawn(move || {
-            for p in paths {
-                let td = std::time::Instant::now();
-                let r = crate::intake::read_frame(&p, &intake);
-                if tx.send((r, td.elapsed().as_secs_f64() * 1000.0)).is_err() {
-                    break;
-                }
-            }
-        });
-        // The receiver belongs to this closure, so that leaving it early (an error, or a panic in
-        // the engine) drops it before the scope joins the reader: a reader blocked on a full
-        // channel then sees the receiver gone and stops, instead of the run hanging.
-        let rx = rx;
+    // Frames are read and decoded ahead ([`crate::intake::read_ahead_frames`]: 8 at 1024²) as jobs
+    // on the engine's pool ([`crate::intake::ahead`]), so that decoding frame n + 1 overlaps the
+    // engine's step on frame n and every core is busy with one or the other.
+    let decode = |k: usize| {
+        let td = std::time::Instant::now();
+        let r = crate::intake::read_frame(&frames[k].path, &intake);
+        (r, td.elapsed().as_secs_f64() * 1000.0)
+    };
+    let ahead = crate::intake::ahead::Ahead::new(frames.len(), crate::intake::read_ahead_frames(&intake), &decode);
+    rayon::scope_fifo(|scope| -> Result<(), ReplayError> {
         for (i, f) in frames.iter().enumerate() {
             let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
-            let Ok((decoded, dms)) = rx.recv() else {
-                return Err(InputError::Other { file: f.path.clone(), message: "the frame reader stopped before this frame".into() }.into());
-            };
+            let (decoded, dms) = ahead.take(scope, i);
             // The clock policy first (from the name alone), then intake, then the engine.
             offer_second_frame(&mut nowcaster, &second, &f.time);
             let crate::nowcast::Stepped { frame, result, .. } = nowcaster.step_with(f.time, Utc::now(), || decoded);
@@ -211,14 +201,17 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                         && let Ok(fr) = &frame {
                             let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
                             let stem = name.rsplit_once('.').map(|x| x.0).unwrap_or(&name);
-                            set.write(&format!("overlays/{stem}.png"), &png)?;
+                            if let Err(e) = set.write(&format!("overlays/{stem}.png"), &png) {
+                                ahead.stop();
+                                return Err(e.into());
+                            }
                         }
                 }
                 Err(rej) => {
                     tables.add_rejected(&f.time, &name, &rej, dms);
                 }
             }
-            // The frame's buffer goes back for the reader's next decode.
+            // The frame's buffer goes back for a later decode.
             if let Ok(fr) = frame {
                 crate::intake::recycle(fr.image);
             }

@@ -13,8 +13,8 @@ thread); peer end to end = its `fps_e2e_step` (decode plus a full step). Ours: t
 without and with the ensemble, and frames per second of decode plus the whole step one after the
 other on one thread: `ratio_fps_e2e` from the mean over the whole run (set-up at the first frame
 included), `ratio_fps_e2e_median` from the median frame, as the peer's `fps_e2e_step` is 1000 over
-the median of repeated steps (like for like). On two threads: ours with decoding on a thread of its own overlapping the step
-and the engine's pool at two threads (as replay runs), against the peer's `fps_e2e_step` with
+the median of repeated steps (like for like). On two threads: ours with the frames decoded ahead as jobs on the engine's pool of two threads,
+overlapping the step (as replay runs), against the peer's `fps_e2e_step` with
 OpenCV at two threads.
 
 With `--baseline BIN` each round also runs a second nephocast binary (e.g. the build before a

@@ -259,8 +259,8 @@ pub struct BenchArgs {
     /// `map.decode_reduction`: 0 automatic, 1 whole frames, 2, 4 or 8.
     #[arg(long, default_value_t = 0, allow_hyphen_values = true)]
     pub decode_reduction: u32,
-    /// Threads of the engine's pool in a second pass with decoding on a thread of its own,
-    /// overlapping the step (0: no such pass).
+    /// Threads of the engine's pool in a second pass with the frames decoded ahead as jobs on
+    /// that pool, overlapping the step (0: no such pass).
     #[arg(long, default_value_t = 2, allow_hyphen_values = true)]
     pub overlap_threads: usize,
     /// Also print the figures as one line of JSON, last.

@@ -25,6 +25,7 @@
 //! cut inside the image data can never end with a false EOI there; a cut just after an EOI inside a
 //! metadata segment (an embedded thumbnail) is caught because the segment walk skips whole segments.
 
+pub mod ahead;
 mod reduced;
 mod structure;
 use structure::check_dimensions;
@@ -323,7 +324,7 @@ pub fn decode(bytes: &[u8], format: Format, opts: &IntakeOptions) -> Result<imag
 
 /// Buffers of decoded frames given back ([`recycle`]) for the next whole-frame decode: a 1024²
 /// frame is 3 MB, and a fresh zeroed one each frame cost its zeroing and page faults. Shared by
-/// threads (replay decodes on a reader thread and steps on another).
+/// threads (replay decodes on any worker of the engine's pool, [`ahead`]).
 static FRAME_BUFFERS: std::sync::Mutex<Vec<Vec<u8>>> = std::sync::Mutex::new(Vec::new());
 
 /// Give a frame's pixels back once the engine is done with them, for a later decode to reuse.
@@ -374,10 +375,10 @@ fn take_buffer() -> Vec<u8> {
 /// buffers may keep: 64 MiB.
 pub const READ_AHEAD_BYTES: u64 = 64 << 20;
 
-/// How many decoded frames a reader thread may hold ahead of the engine (the bound of its
-/// channel): as many as fit in [`READ_AHEAD_BYTES`], from 2 to 8. Deeper than the two frames of
-/// old so that the reader keeps decoding while the engine's first step builds its tables (tens of
-/// milliseconds) and during the steps that recompute the cells' sun geometry, instead of waiting.
+/// How many decoded frames replay may hold ahead of the engine ([`ahead::Ahead`]'s depth): as
+/// many as fit in [`READ_AHEAD_BYTES`], from 2 to 8. Deeper than the two frames of old so that
+/// decoding goes on while the engine's first step builds its tables (tens of milliseconds) and
+/// during the steps that recompute the cells' sun geometry, instead of waiting.
 pub fn read_ahead_frames(opts: &IntakeOptions) -> usize {
     let frame_bytes = match opts.expected_size {
         Some((w, h)) => {
