@@ -124,6 +124,9 @@ pub struct LayerTracker {
     primary: usize,
     /// `layer_confirm` at the last update.
     confirm_at: usize,
+    /// Directions the known layers move toward (`[[clouds.layers]]`) \[° from north\], and the
+    /// largest angle at which a track is taken for one \[°\].
+    known: (Vec<f64>, f64),
 }
 
 /// The other track becomes the primary layer only when its opacity exceeds the primary's by this.
@@ -140,6 +143,33 @@ impl LayerTracker {
         if self.active(self.primary).is_some() { self.slots[self.primary].filter.accepted_run() } else { 0 }
     }
 
+    /// Known layers' directions (`[[clouds.layers]]` toward, degrees from north) and the largest
+    /// angle at which a track moving that way is taken for that layer: a second track is then
+    /// confirmed from its first measurement when it moves the way a known layer does that the
+    /// other track does not (prior knowledge that the layer is there). Empty: every second track
+    /// waits for `layer_confirm` measurements.
+    pub fn set_known_directions(&mut self, toward_deg: &[f64], max_angle_deg: f64) {
+        self.known = (toward_deg.to_vec(), max_angle_deg);
+    }
+
+    /// The known layer track `k` moves toward (its index), if any.
+    fn known_layer(&self, k: usize) -> Option<usize> {
+        let v = self.active(k)?.v_mps;
+        if v[0].hypot(v[1]) <= 0.0 {
+            return None;
+        }
+        let toward = v[0].atan2(v[1]).to_degrees();
+        let off = |d: f64| (d - toward).rem_euclid(360.0).min((toward - d).rem_euclid(360.0));
+        let (dirs, max_deg) = &self.known;
+        dirs.iter().enumerate().filter(|(_, d)| off(**d) <= *max_deg).min_by(|a, b| off(*a.1).total_cmp(&off(*b.1))).map(|(i, _)| i)
+    }
+
+    /// Whether active track `k` enters the forecast: the only track, one with `layer_confirm`
+    /// measurements, or one moving the way a known layer does that the other track does not.
+    fn in_forecast(&self, k: usize, n_active: usize) -> bool {
+        n_active == 1 || self.slots[k].hits >= self.confirm_at || self.known_layer(k).is_some_and(|l| self.known_layer(1 - k) != Some(l))
+    }
+
     /// The least one-sigma spread of speed \[m/s\] the forecast should give its layers while the
     /// tracked motion is not yet confirmed; 0 once it is. Two cases:
     /// * a track in the forecast stands on fewer than `confirm` consistent measurements in a row:
@@ -152,7 +182,7 @@ impl LayerTracker {
         let mut spread = 0f64;
         for &k in &active {
             let s = &self.slots[k];
-            if active.len() == 1 || s.hits >= self.confirm_at {
+            if self.in_forecast(k, active.len()) {
                 if s.filter.accepted_run() < confirm {
                     spread = spread.max(s.spread_mps);
                 }
@@ -230,7 +260,7 @@ impl LayerTracker {
             self.slots[drop] = Slot::default();
         }
         let n_active = (0..2).filter(|&k| self.active(k).is_some()).count();
-        let used: Vec<usize> = (0..2).filter(|&k| self.active(k).is_some() && (n_active == 1 || self.slots[k].hits >= params.layer_confirm)).collect();
+        let used: Vec<usize> = (0..2).filter(|&k| self.active(k).is_some() && self.in_forecast(k, n_active)).collect();
         if let [one] = used.as_slice() {
             self.primary = *one;
         } else if used.len() == 2 {

@@ -779,6 +779,24 @@ mod tests {
     }
 
     #[test]
+    fn a_known_layers_direction_confirms_a_second_track_at_once() {
+        let p = MotionParams::default();
+        let layer = |v: [f64; 2]| LayerMotion { v_mps: v, blocks: 12, mean_score: 1.0, thick_share: 0.6, spread_mps: 0.3 };
+        let meas = |ls: Vec<LayerMotion>| MotionMeasurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(ls[0].v_mps), layers: ls, spread_mps: 0.3, labels: None, blocks_static: 0, locked_at_zero: false };
+        let (thin, cumulus) = ([2.3, -3.6], [6.4, 6.2]); // toward 148° and 46°
+        let run = |known: &[f64], max_deg: f64| {
+            let mut t = LayerTracker::default();
+            t.set_known_directions(known, max_deg);
+            t.update(Some(&meas(vec![layer(thin)])), 20.0, &p);
+            t.update(Some(&meas(vec![layer(thin), layer(cumulus)])), 20.0, &p).len()
+        };
+        assert_eq!(run(&[], 45.0), 1, "no known layers: the second track waits for confirmation");
+        assert_eq!(run(&[45.0, 150.0], 45.0), 2, "the cumulus moves the way the second known layer does");
+        assert_eq!(run(&[150.0], 45.0), 1, "no known layer moves the cumulus's way");
+        assert_eq!(run(&[96.0], 60.0), 1, "both tracks within reach of the same known layer: not told apart");
+    }
+
+    #[test]
     fn featureless_maps_give_no_vectors() {
         let g = Grid::new(&MapParams { cells: 128, ..Default::default() }, 1500.0);
         let a = map_from(|_, _| 0.0, g);
