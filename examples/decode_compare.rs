@@ -1,10 +1,10 @@
 //! Whole-frame JPEG decoders compared on frames: CPU time per frame on this thread (median) and
-//! pixel differences against the pure-Rust decoder (`zune-jpeg`, the `image` crate's own, which a
-//! build without libjpeg uses). The intake decodes whole frames with libjpeg-turbo when it is
-//! built in, unless `NEPHOCAST_RUST_JPEG` is set:
+//! pixel differences against the pure-Rust decoder (`zune-jpeg`, the `image` crate's own, which
+//! the engine's figures are recorded with). The intake uses libjpeg-turbo for whole frames only
+//! with `NEPHOCAST_SYSTEM_JPEG_WHOLE` set, so set it to compare:
 //!
 //! ```sh
-//! cargo run --release --example decode_compare -- FRAME.jpg … | FOLDER_OF_JPEGS
+//! NEPHOCAST_SYSTEM_JPEG_WHOLE=1 cargo run --release --example decode_compare -- FRAME.jpg … | FOLDER_OF_JPEGS
 //! ```
 
 use nephocast::intake::{Format, IntakeOptions, SYSTEM_LIBJPEG, decode, decode_general, from_bytes, recycle};
@@ -70,9 +70,9 @@ fn main() {
     println!("{} frames, {rounds} rounds, median CPU ms per frame on this thread:", jpegs.len());
     println!("  image crate (general decoder):           {:.3} ms", median(t_gen));
     println!("  zune-jpeg called directly (pure Rust):   {:.3} ms", median(t_rust));
-    let by = match (SYSTEM_LIBJPEG, nephocast::intake::system_jpeg_whole()) {
+    let by = match (SYSTEM_LIBJPEG, std::env::var_os(nephocast::intake::SYSTEM_JPEG_WHOLE_ENV).is_some()) {
         (true, true) => "libjpeg-turbo",
-        (true, false) => "zune-jpeg: NEPHOCAST_RUST_JPEG set",
+        (true, false) => "zune-jpeg: NEPHOCAST_SYSTEM_JPEG_WHOLE not set",
         (false, _) => "zune-jpeg: no system libjpeg built in",
     };
     println!("  intake, whole frames ({by}): {:.3} ms", median(t_intake));

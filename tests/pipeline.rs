@@ -45,8 +45,7 @@ fn run(name: &str, minutes: f64, spec_edit: impl Fn(&mut nephocast::synth::Scene
 }
 
 /// Every figure of a scene, to compare a change that should not alter results (a refactor) with the
-/// record in `tests/fixtures/figures/<scene>.json` (`rust-jpeg/<scene>.json` for the pure-Rust
-/// decoder: [`figures_dir`]). `NEPHOCAST_RECORD_FIGURES=1` writes the record
+/// record in `tests/fixtures/figures/<scene>.json`. `NEPHOCAST_RECORD_FIGURES=1` writes the record
 /// instead; a change that alters results on purpose re-records it and says why in its commit.
 fn figures(e: &Evaluation) -> BTreeMap<String, f64> {
     let mut f = BTreeMap::new();
@@ -69,16 +68,8 @@ fn figures(e: &Evaluation) -> BTreeMap<String, f64> {
     f
 }
 
-/// The record's folder: whole frames decoded by the system's libjpeg-turbo (the default where it
-/// is built in, as `.ci/run` builds) round a few samples by a level differently from the pure-Rust
-/// decoder (a build without it, or `NEPHOCAST_RUST_JPEG` set), so each has its own record.
-fn figures_dir() -> std::path::PathBuf {
-    let base = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/figures");
-    if nephocast::intake::system_jpeg_whole() { base } else { base.join("rust-jpeg") }
-}
-
 fn same_figures(name: &str, e: &Evaluation) {
-    let path = figures_dir().join(format!("{name}.json"));
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/figures").join(format!("{name}.json"));
     let now = figures(e);
     if std::env::var_os("NEPHOCAST_RECORD_FIGURES").is_some() {
         std::fs::create_dir_all(path.parent().unwrap()).unwrap();

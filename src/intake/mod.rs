@@ -15,9 +15,10 @@
 //!    size, before any pixel is decoded;
 //! 5. decodes with the decoder's allocation limit set, so that whatever slips past the header check
 //!    cannot allocate more than [`IntakeOptions::max_alloc_bytes`]; any decoder error is a refusal.
-//!    Whole JPEG frames go to the system's libjpeg-turbo when the crate is built with it
-//!    ([`SYSTEM_LIBJPEG`]; 10–17 % less CPU than `zune-jpeg` on 1024² frames), else, or with
-//!    [`RUST_JPEG_ENV`] set, to the pure-Rust decoders ([`decode`]). With [`IntakeOptions::reduce`] above 1 a JPEG is decoded at that reduced scale
+//!    Whole JPEG frames go to the pure-Rust decoders ([`decode`]); with [`SYSTEM_JPEG_WHOLE_ENV`]
+//!    set and the crate built with the system's libjpeg-turbo ([`SYSTEM_LIBJPEG`]) to that library
+//!    (10–17 % less CPU on 1024² frames; not the default because its different rounding moved the
+//!    two-layer stereo scene's 10-minute skill by 0.09: DEVELOPERS.md). With [`IntakeOptions::reduce`] above 1 a JPEG is decoded at that reduced scale
 //!    ([`decode_jpeg_reduced`]), the size checked against the reduced buffer before decoding.
 //!
 //! Inside JPEG entropy-coded data every 0xFF byte is followed by 0x00 or a restart marker, so a file
@@ -36,7 +37,7 @@ pub use reduced::{PIXELS_PER_CELL, ReducedFrames, box_reduce, decode_jpeg_reduce
 use reduced::system_jpeg;
 
 /// Whether the crate was built with the system's libjpeg (libjpeg-turbo), which then decodes
-/// reduced and whole JPEG frames (whole ones unless [`RUST_JPEG_ENV`] is set); without it both go to
+/// reduced JPEG frames (and whole ones with [`SYSTEM_JPEG_WHOLE_ENV`] set); without it both go to
 /// pure-Rust decoders (`build.rs`).
 pub const SYSTEM_LIBJPEG: bool = cfg!(system_libjpeg);
 
@@ -296,15 +297,15 @@ fn decode_jpeg_whole(bytes: &[u8], (w, h): (u32, u32), opts: &IntakeOptions) -> 
 }
 
 /// With this environment variable set (to anything), whole JPEG frames are decoded by the
-/// pure-Rust decoder ([`decode`]) even where the system's libjpeg-turbo is built in
-/// ([`SYSTEM_LIBJPEG`]): what a build without it does, for comparisons.
-pub const RUST_JPEG_ENV: &str = "NEPHOCAST_RUST_JPEG";
+/// system's libjpeg-turbo where it is built in ([`SYSTEM_LIBJPEG`]) instead of the pure-Rust
+/// decoder ([`decode`]): faster, but not yet the default (the module docs say why).
+pub const SYSTEM_JPEG_WHOLE_ENV: &str = "NEPHOCAST_SYSTEM_JPEG_WHOLE";
 
-/// Whether whole JPEG frames of the engine go to the system's libjpeg-turbo: built in
-/// ([`SYSTEM_LIBJPEG`]) and [`RUST_JPEG_ENV`] not set (read once).
-pub fn system_jpeg_whole() -> bool {
+/// [`SYSTEM_JPEG_WHOLE_ENV`] is set (read once).
+#[cfg(system_libjpeg)]
+fn system_jpeg_whole() -> bool {
     static SET: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
-    *SET.get_or_init(|| SYSTEM_LIBJPEG && std::env::var_os(RUST_JPEG_ENV).is_none())
+    *SET.get_or_init(|| std::env::var_os(SYSTEM_JPEG_WHOLE_ENV).is_some())
 }
 
 /// Decode checked bytes to RGB with the decoder's limits set, by the pure-Rust decoders (whole
