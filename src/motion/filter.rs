@@ -143,7 +143,8 @@ impl LayerTracker {
         if self.active(self.primary).is_some() { self.slots[self.primary].filter.accepted_run() } else { 0 }
     }
 
-    /// Known layers' directions (`[[clouds.layers]]` toward, degrees from north) and the largest
+    /// Known layers' directions (`[[clouds.layers]]` toward, degrees from north; set once, when the
+    /// engine is made) and the largest
     /// angle at which a track moving that way is taken for that layer: a second track is then
     /// confirmed from its first measurement when it moves the way a known layer does that the
     /// other track does not (prior knowledge that the layer is there). Empty: every second track
@@ -275,5 +276,101 @@ impl LayerTracker {
             out.swap(0, 1);
         }
         out
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A measurement 20 s after the last, of these layers.
+    fn meas(layers: Vec<LayerMotion>) -> MotionMeasurement {
+        MotionMeasurement { dt_s: 20.0, vectors: vec![], blocks_tried: 64, global_mps: Some(layers[0].v_mps), layers, spread_mps: 0.3, labels: None, blocks_static: 0, locked_at_zero: false }
+    }
+
+    #[test]
+    fn tracker_follows_two_layers_and_confirms_the_second() {
+        let p = MotionParams::default();
+        let layer = |v: [f64; 2], thick: f64| LayerMotion { v_mps: v, blocks: 10, mean_score: 1.0, thick_share: thick, spread_mps: 0.3 };
+        let mut t = LayerTracker::default();
+        // The first measurement is a blend; then both layers, in either order.
+        let out = t.update(Some(&meas(vec![layer([3.0, 1.0], 0.6)])), 20.0, &p);
+        assert_eq!(out.len(), 1);
+        let mut out = vec![];
+        for k in 0..6 {
+            let (a, b) = (layer([6.5, 6.5], 0.95), layer([2.0, -3.5], 0.5));
+            out = t.update(Some(&meas(if k % 2 == 0 { vec![a, b] } else { vec![b, a] })), 20.0, &p);
+        }
+        assert_eq!(out.len(), 2, "{out:?}");
+        // The more opaque layer first; the blend was dropped after three gated measurements.
+        assert!(dist(out[0].motion.v_mps, [6.5, 6.5]) < 0.3, "{out:?}");
+        assert!(dist(out[1].motion.v_mps, [2.0, -3.5]) < 0.3, "{out:?}");
+        // A layer unseen for longer than the expiry is dropped.
+        for _ in 0..20 {
+            out = t.update(Some(&meas(vec![layer([2.0, -3.5], 0.5)])), 20.0, &p);
+        }
+        assert_eq!(out.len(), 1, "{out:?}");
+    }
+
+    #[test]
+    fn unconfirmed_motion_carries_its_blocks_spread_and_an_unconfirmed_layer_the_gap() {
+        let p = MotionParams::default();
+        let layer = |v: [f64; 2], spread: f64| LayerMotion { v_mps: v, blocks: 12, mean_score: 1.0, thick_share: 0.6, spread_mps: spread };
+        let mut t = LayerTracker::default();
+        assert_eq!(t.unconfirmed_spread_mps(3), 0.0, "nothing tracked: the forecast's own still-sky spread applies");
+        // A blend of two layers: its blocks spread widely. Until three measurements agree, that
+        // spread is the forecast's least.
+        t.update(Some(&meas(vec![layer([2.7, -1.4], 1.7)])), 20.0, &p);
+        assert_eq!(t.unconfirmed_spread_mps(3), 1.7);
+        t.update(Some(&meas(vec![layer([2.5, -2.0], 1.2)])), 20.0, &p);
+        assert_eq!(t.unconfirmed_spread_mps(3), 1.2);
+        // A second layer seen for the first time (one measurement, not yet in the forecast): the
+        // distance between the tracks.
+        t.update(Some(&meas(vec![layer([2.4, -2.9], 0.4), layer([6.4, 6.1], 0.3)])), 20.0, &p);
+        let tracks = t.priors();
+        assert_eq!(tracks.len(), 2);
+        let gap = dist(tracks[0].v_mps, tracks[1].v_mps);
+        assert!(gap > 8.0 && (t.unconfirmed_spread_mps(3) - gap).abs() < 1e-12, "{} against {gap}", t.unconfirmed_spread_mps(3));
+        // Both layers confirmed and each on three consistent measurements: nothing added.
+        for _ in 0..3 {
+            t.update(Some(&meas(vec![layer([2.3, -3.5], 0.3), layer([6.4, 6.3], 0.3)])), 20.0, &p);
+        }
+        assert_eq!(t.unconfirmed_spread_mps(3), 0.0, "{t:?}");
+        // A single layer confirmed from the start: only its first measurements carry their spread.
+        let mut one = LayerTracker::default();
+        for k in 0..4 {
+            one.update(Some(&meas(vec![layer([11.2, 4.0], 0.5)])), 20.0, &p);
+            assert_eq!(one.unconfirmed_spread_mps(3), if k < 2 { 0.5 } else { 0.0 });
+        }
+    }
+
+    #[test]
+    fn a_known_layers_direction_confirms_a_second_track_at_once() {
+        let p = MotionParams::default();
+        let layer = |v: [f64; 2]| LayerMotion { v_mps: v, blocks: 12, mean_score: 1.0, thick_share: 0.6, spread_mps: 0.3 };
+        let (thin, cumulus) = ([2.3, -3.6], [6.4, 6.2]); // toward 148° and 46°
+        let run = |known: &[f64], max_deg: f64| {
+            let mut t = LayerTracker::default();
+            t.set_known_directions(known, max_deg);
+            t.update(Some(&meas(vec![layer(thin)])), 20.0, &p);
+            t.update(Some(&meas(vec![layer(thin), layer(cumulus)])), 20.0, &p).len()
+        };
+        assert_eq!(run(&[], 45.0), 1, "no known layers: the second track waits for confirmation");
+        assert_eq!(run(&[45.0, 150.0], 45.0), 2, "the cumulus moves the way the second known layer does");
+        assert_eq!(run(&[150.0], 45.0), 1, "no known layer moves the cumulus's way");
+        assert_eq!(run(&[96.0], 60.0), 1, "both tracks within reach of the same known layer: not told apart");
+    }
+
+    #[test]
+    fn filter_gates_an_outlier() {
+        let p = MotionParams::default();
+        let mk = |v: [f64; 2]| LayerMotion { v_mps: v, blocks: 30, mean_score: 1.0, thick_share: 0.5, spread_mps: 0.3 };
+        let mut f = MotionFilter::default();
+        for _ in 0..10 {
+            f.update(Some(&mk([5.0, 0.0])), 20.0, &p);
+        }
+        let m = f.update(Some(&mk([15.0, 0.0])), 20.0, &p).unwrap();
+        assert!(m.v_mps[0] < 6.0, "{:?}", m);
+        assert_eq!(f.gated, 1);
     }
 }

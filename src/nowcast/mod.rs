@@ -85,11 +85,15 @@ impl Nowcaster {
         let cbh_state = crate::cbh::CbhState::new(&site.file.clouds);
         let reduce = crate::intake::frame_reduction(site.camera.width_px, site.file.map.cells, site.file.map.decode_reduction);
         let reduced = crate::intake::ReducedFrames::new(&site.camera, site.obstruction.as_ref(), reduce);
+        // Known layers (`[[clouds.layers]]`) confirm a second track that moves their way at once.
+        let mut motion_stage = MotionStage::default();
+        let known: Vec<f64> = site.file.clouds.layers.iter().map(|l| l.toward_deg).collect();
+        motion_stage.tracker.set_known_directions(&known, crate::cbh::LAYER_PRIOR_MAX_ANGLE_DEG);
         Nowcaster {
             site,
             plant,
             map_stage: MapStage::new(reference),
-            motion_stage: MotionStage::default(),
+            motion_stage,
             frame_qc: FrameQcStage::default(),
             cbh_series,
             measurements,
@@ -451,9 +455,6 @@ impl Nowcaster {
         let map = self.second_map_stage(&frame.time, map, &lut, &sun);
         let t_map = Clock::now();
         let dt_s = self.frame_qc.since_last_s(&frame.time);
-        // Known layers (`[[clouds.layers]]`) confirm a second track that moves their way at once.
-        let known: Vec<f64> = self.site.file.clouds.layers.iter().map(|l| l.toward_deg).collect();
-        self.motion_stage.tracker.set_known_directions(&known, crate::cbh::LAYER_PRIOR_MAX_ANGLE_DEG);
         let moved = self.motion_stage.update(&frame.time, &map, dt_s, &self.site.file.motion);
         let motion = moved.layers.first().map(|l| l.motion);
         self.map_stage.layered = moved.layers.len() > 1;
