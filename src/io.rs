@@ -533,4 +533,4 @@ mod tests {
 
 mod measurements;
 pub use crate::settings::{CBH_MAX_M, CBH_MIN_M};
-pub use measurements::{ColumnScreen, KW_CHECK_CLEAR_WM2, KW_SUSPECT_MAX, MAX_CSV_COLUMNS, MAX_CSV_ROWS, Measurements, ScreenReport, TEMP_AIR_RANGE_C, WIND_SPEED_RANGE_MPS};
+pub use measurements::{ColumnScreen, KW_CHECK_CLEAR_WM2, KW_SUSPECT_MAX, MAX_CSV_COLUMNS, MAX_CSV_ROWS, Measurements, MeasurementsSection, ScreenReport, TEMP_AIR_RANGE_C, TimeLabel, WIND_SPEED_RANGE_MPS};

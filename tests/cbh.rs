@@ -328,3 +328,43 @@ fn shadow_timing_without_pyranometers_is_refused() {
     let e = f.validate(Path::new("site.toml")).unwrap_err().to_string();
     assert!(e.contains("clouds.base_height_rel_sigma"), "{e}");
 }
+
+/// The measurements' time label (`[measurements] time_label`): 1-minute means stamped at the end
+/// of their minute, with the label saying so, give the start-stamped run exactly (shadow timing on,
+/// from a prior 1.6 × the truth, so the readings' timing decides the base); read as starts, the
+/// same readings are a minute late and the fitted base moves (printed, and checked to differ, so
+/// the label is shown to matter).
+#[test]
+fn end_stamped_readings_with_their_label_give_the_start_stamped_run() {
+    let d = network_scene();
+    let mut spec = scene("cbh-network").unwrap();
+    spec.duration_min = 30.0;
+    spec.pyranometer_network.as_mut().expect("cbh-network has a pyranometer network").sample_s = 60;
+    let m = tempfile::tempdir().unwrap();
+    let start = m.path().join("start.csv");
+    let text = String::from_utf8(nephocast::synth::measurements_csv(&Scene::new(spec, 3).unwrap())).unwrap();
+    std::fs::write(&start, &text).unwrap();
+    // The same rows, each stamped 60 s later (the end of its minute).
+    let end = m.path().join("end.csv");
+    let shifted: String = text
+        .lines()
+        .map(|l| match l.split_once(',') {
+            Some((t, rest)) if !l.starts_with('#') && t != "time_utc" => {
+                let t: chrono::DateTime<chrono::Utc> = t.parse().unwrap();
+                format!("{},{rest}\n", (t + chrono::Duration::seconds(60)).format("%Y-%m-%dT%H:%M:%SZ"))
+            }
+            _ => format!("{l}\n"),
+        })
+        .collect();
+    std::fs::write(&end, shifted).unwrap();
+    let labelled = |s: &str| format!("{}\n[measurements]\ntime_label = \"end\"\n", wrong_prior(s, Some(true)));
+    let a = run_with(d, "label-start", &start, |s| wrong_prior(s, Some(true)));
+    let b = run_with(d, "label-end", &end, labelled);
+    let c = run_with(d, "label-wrong", &end, |s| wrong_prior(s, Some(true)));
+    let last = |r: &Run| r.cbh.last().cloned().unwrap();
+    eprintln!("base at the end: start-stamped {:?}, end-stamped and labelled {:?}, end-stamped read as starts {:?}", last(&a), last(&b), last(&c));
+    assert_eq!(a.cbh, b.cbh, "the labelled end-stamped readings give another base");
+    let forecasts = |tag: &str| std::fs::read(d.join(format!("out-{tag}")).join("forecasts.csv")).unwrap();
+    assert!(forecasts("label-start") == forecasts("label-end"), "forecasts.csv differs");
+    assert_ne!(a.cbh, c.cbh, "read a minute late, the readings gave the same base: the label would not matter");
+}

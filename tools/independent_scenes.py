@@ -777,8 +777,10 @@ def main():
     ap.add_argument("--ramp-min-probability", type=float, default=0.3,
                     help="engine ramp events at least this probable count as warnings (default: the engine's caution level)")
     ap.add_argument("--causal-measurements", action="store_true",
-                    help="stamp each 1-minute mean at the END of its minute (the engine reads the row whose minute "
-                         "holds the frame time, i.e. up to 60 s of readings after the frame; this removes that look-ahead)")
+                    help="stamp each 1-minute mean at the END of its minute, as many loggers do, and say so in the site "
+                         "file (measurements.time_label=\"end\", unless --set gives another): the figures must then be "
+                         "the start-stamped run's (the engine reads only completed minutes either way). "
+                         "--set 'measurements.time_label=\"start\"' shows what a mislabelled logger costs")
     ap.add_argument("--no-measurements", action="store_true",
                     help="replay the cloudy scene without pyranometer readings (a plant without them: the "
                          "engine's documented default transmittances)")
@@ -788,6 +790,8 @@ def main():
                     help="calibrate from part of the clear day only (robustness check; the clear-day replay keeps every frame)")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
+    if a.causal_measurements and not any(kv.split("=", 1)[0].strip() == "measurements.time_label" for kv in a.set):
+        a.set.append('measurements.time_label="end"')
     if not a.scenes or not os.path.isdir(a.scenes):
         print(f"independent scenes not found ({a.scenes or '$NEPHOCAST_DATASETS is not set'}); nothing to check. "
               "Pass --scenes DIR or set NEPHOCAST_DATASETS.")

@@ -86,7 +86,8 @@ impl ImpossibleValues {
 pub(super) fn cmd_qc(a: QcArgs) -> Result<()> {
     use crate::qc::*;
     let site = crate::config::Site::load(&a.site)?;
-    let m = crate::io::Measurements::read_csv(&a.measurements)?;
+    let mut m = crate::io::Measurements::read_csv(&a.measurements)?;
+    m.label_at_start(site.file.measurements.time_label, None);
     let col = |n: &str| m.column(n).map(|c| m.columns[c].as_slice());
     // (label, GHI, DNI, DHI)
     type Set<'a> = (String, &'a [f64], Option<&'a [f64]>, Option<&'a [f64]>);

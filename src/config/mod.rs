@@ -76,6 +76,9 @@ pub struct SiteFile {
     /// Pyranometers whose readings a measurements CSV may hold (`ghi_<name>_wm2` columns).
     #[serde(default)]
     pub pyranometers: Vec<PyranometerSpec>,
+    /// How the measurements CSV's times label their averaging periods.
+    #[serde(default, skip_serializing_if = "crate::io::MeasurementsSection::is_default")]
+    pub measurements: crate::io::MeasurementsSection,
     /// Pyranometers or a plant meter polled over Modbus TCP as live mode's measurement feed.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub measurements_modbus: Option<ModbusFeedSection>,

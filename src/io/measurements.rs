@@ -6,6 +6,40 @@ use chrono::{DateTime, Utc};
 
 use super::{InputError, fmt_time, parse_time};
 
+/// Which instant of its averaging period a measurements row's `time_utc` names. Loggers differ:
+/// many stamp a mean at the end of its interval, others at the start; a reading taken a period
+/// late shifts every shadow the pyranometers see by a period (at 8 m/s and 1-minute means,
+/// 480 m of cloud plane), and the cloud base fitted from shadow timing with it (README,
+/// "Measurements").
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum TimeLabel {
+    /// The start of the period (the engine's own convention).
+    #[default]
+    Start,
+    /// The middle of the period.
+    Centre,
+    /// The end of the period.
+    End,
+}
+
+/// `[measurements]` of the site file: how the measurements CSV's times are meant. The engine
+/// works with times at the start of each averaging period; others are moved there on reading
+/// ([`Measurements::label_at_start`]). The Modbus feed makes its own rows, stamped at the start.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct MeasurementsSection {
+    /// `"start"` (default), `"centre"` or `"end"` of each row's averaging period.
+    pub time_label: TimeLabel,
+}
+
+impl MeasurementsSection {
+    /// Whether it is the default (not written).
+    pub fn is_default(&self) -> bool {
+        *self == Self::default()
+    }
+}
+
 /// A measurements CSV: a `time_utc` column and one column per sensor with its unit in the name
 /// (e.g. `ghi_pyr1_wm2`); empty cells are missing values (NaN).
 #[derive(Debug, Clone)]
@@ -317,6 +351,26 @@ impl Measurements {
         Ok(())
     }
 
+    /// Move the times to the start of their averaging periods (`period_s`, the median step), as
+    /// the engine reads them, from the convention `label` names. `period_hint_s` stands for the
+    /// period when the rows alone cannot tell it (fewer than two: a live feed's single new row).
+    pub fn label_at_start(&mut self, label: TimeLabel, period_hint_s: Option<f64>) {
+        if self.times.len() < 2
+            && let Some(p) = period_hint_s
+        {
+            self.period_s = p;
+        }
+        let back_s = match label {
+            TimeLabel::Start => return,
+            TimeLabel::Centre => self.period_s / 2.0,
+            TimeLabel::End => self.period_s,
+        };
+        let back = chrono::Duration::milliseconds((back_s * 1000.0).round() as i64);
+        for t in &mut self.times {
+            *t -= back;
+        }
+    }
+
     /// Column index by name.
     pub fn column(&self, name: &str) -> Option<usize> {
         self.names.iter().position(|n| n == name)
@@ -364,5 +418,39 @@ impl Measurements {
         } else {
             f64::NAN
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn rows(text: &str) -> Measurements {
+        Measurements::read_csv_text(Path::new("m.csv"), text.as_bytes(), 0).unwrap()
+    }
+
+    /// End and centre labels move the times back by a period and half a period (the median step),
+    /// so that a reading's period is the same whichever way it was stamped; a single row takes the
+    /// hint's period.
+    #[test]
+    fn labels_move_times_to_the_start_of_their_period() {
+        let text = "time_utc,ghi_a_wm2\n2026-06-14T08:31:00Z,500\n2026-06-14T08:32:00Z,510\n2026-06-14T08:33:00Z,520\n";
+        let start = rows(text);
+        let mut end = rows(text);
+        end.label_at_start(TimeLabel::End, None);
+        assert_eq!(end.times[0], start.times[0] - chrono::Duration::seconds(60));
+        let mut centre = rows(text);
+        centre.label_at_start(TimeLabel::Centre, None);
+        assert_eq!(centre.times[2], start.times[2] - chrono::Duration::seconds(30));
+        let mut same = rows(text);
+        same.label_at_start(TimeLabel::Start, None);
+        assert_eq!(same.times, start.times);
+        // A reading stamped at the end of 08:30–08:31 is the one completed by 08:31.
+        let t = start.times[0];
+        assert_eq!(end.completed_at(0, &t).map(|x| x.0), Some(500.0));
+        assert_eq!(start.completed_at(0, &t), None);
+        let mut one = rows("time_utc,ghi_a_wm2\n2026-06-14T08:31:10Z,500\n");
+        one.label_at_start(TimeLabel::End, Some(10.0));
+        assert_eq!((one.period_s, one.times[0]), (10.0, start.times[0]));
     }
 }

@@ -8,7 +8,7 @@
 //! * **Blocks:** each block's forecast against the pyranometers inside its footprint (blocks
 //!   without one are not scored).
 //! * A reading is the row whose averaging period contains the target time (1-minute means stamped
-//!   at the start of their minute). It is left out, and counted by reason, when it was flagged by the
+//!   at the start of their minute, or as `[measurements] time_label` says: [`crate::io::TimeLabel`]). It is left out, and counted by reason, when it was flagged by the
 //!   screening ([`crate::io::Measurements::screen`]: non-finite, outside the BSRN limits), is stuck
 //!   (the run test of [`crate::qc`]), is missing, or when the clear-sky GHI is under 50 W/m².
 //!
@@ -402,6 +402,7 @@ pub fn sky_type_around(issue: DateTime<Utc>, kc_at: impl Fn(DateTime<Utc>) -> f6
 pub fn measured_mean_ghi(site: &Site, measurements: &Path) -> Result<Vec<(DateTime<Utc>, f64)>, InputError> {
     let f = &site.file.site;
     let mut m = Measurements::read_csv(measurements)?;
+    m.label_at_start(site.file.measurements.time_label, None);
     m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
     let cols: Vec<usize> = pyranometer_columns(site, &m).iter().map(|c| c.0).collect();
     if cols.is_empty() {
@@ -419,6 +420,7 @@ pub fn measured_mean_ghi(site: &Site, measurements: &Path) -> Result<Vec<(DateTi
 pub fn scored_pairs(site: &Site, replay_out: &Path, measurements: &Path) -> Result<ScoredPairs, InputError> {
     let f = &site.file.site;
     let mut m = Measurements::read_csv(measurements)?;
+    m.label_at_start(site.file.measurements.time_label, None);
     let screen = m.screen(measurements, &f.observer(), f.clear_sky(), f.elevation_m)?;
     let plant = crate::plant::Plant::from_section(&site.file.plant);
     let meters = power::Meters::find(site, &plant, &mut m);

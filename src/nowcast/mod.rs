@@ -153,6 +153,7 @@ impl Nowcaster {
         let meas = match measurements {
             Some(p) => {
                 let mut m = Measurements::read_csv(p)?;
+                m.label_at_start(site.file.measurements.time_label, None);
                 let report = m.screen_site(p, &site.file)?;
                 flagged = report.counts();
                 Some(m)

@@ -182,6 +182,8 @@ struct FileState {
     header: Option<Vec<u8>>,
     /// Data lines consumed so far.
     lines: u64,
+    /// The newest row's time as written, for the averaging period of a piece of one row.
+    last_time: Option<chrono::DateTime<chrono::Utc>>,
 }
 
 /// A measurement feed read a piece at a time.
@@ -282,12 +284,23 @@ impl MeasurementFeed {
             text.extend_from_slice(body);
             let lines_before = st.lines;
             st.lines += n_lines;
+            let last_time = st.last_time;
             let parsed = Measurements::read_csv_text(&path, &text, lines_before).and_then(|mut m| {
+                // A piece of one row takes its period from the row before it in the file.
+                let hint = last_time.zip(m.times.first()).map(|(a, b)| (*b - a).num_milliseconds() as f64 / 1000.0).filter(|p| *p > 0.0);
+                let newest = m.times.last().copied();
+                m.label_at_start(site.measurements.time_label, hint);
                 let report = m.screen_site(&path, site)?;
+                Ok((m, report, newest))
+            });
+            let parsed = parsed.map(|(m, report, newest)| {
+                if newest.is_some() {
+                    st.last_time = newest;
+                }
                 if report.flagged() > 0 {
                     out.notes.push(format!("measurements {}: {report}", path.display()));
                 }
-                Ok((m, report.counts()))
+                (m, report.counts())
             });
             match parsed {
                 Ok((m, counts)) => {
@@ -598,6 +611,26 @@ mod tests {
         std::fs::OpenOptions::new().append(true).open(&p).unwrap().write_all(b"2026-06-14T10:04:00Z,abc\n").unwrap();
         let r = f.poll(&site);
         assert!(r.pieces.is_empty() && r.notes[0].contains("line 3"), "{:?}", r.notes);
+    }
+
+    /// With `[measurements] time_label = "end"` a live feed's rows are moved to the start of their
+    /// minute, also a piece of one row (its period from the row before it in the file).
+    #[test]
+    fn feed_moves_end_stamped_rows_to_their_start() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("m.csv");
+        let mut site = crate::config::Site::load(&Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/site.toml")).unwrap().file;
+        site.measurements.time_label = crate::io::TimeLabel::End;
+        std::fs::write(&p, "time_utc,ghi_a_wm2\n2026-06-14T10:00:30Z,500\n2026-06-14T10:01:00Z,510\n").unwrap();
+        let mut f = MeasurementFeed::new(&p);
+        let r = f.poll(&site);
+        let t = |s: &str| s.parse::<chrono::DateTime<chrono::Utc>>().unwrap();
+        assert_eq!(r.pieces[0].0.times, vec![t("2026-06-14T10:00:00Z"), t("2026-06-14T10:00:30Z")]);
+        use std::io::Write;
+        std::fs::OpenOptions::new().append(true).open(&p).unwrap().write_all(b"2026-06-14T10:01:30Z,520\n").unwrap();
+        let r = f.poll(&site);
+        assert_eq!(r.pieces[0].0.times, vec![t("2026-06-14T10:01:00Z")]);
+        assert_eq!(r.pieces[0].0.period_s, 30.0);
     }
 
     #[test]

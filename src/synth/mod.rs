@@ -213,6 +213,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
         ramps: Default::default(),
         evaluation: Default::default(),
         pyranometers: vec![],
+        measurements: Default::default(),
         measurements_modbus: None,
         second_camera: None,
         webhook: Default::default(),
