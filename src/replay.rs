@@ -81,6 +81,11 @@ pub struct ReplaySummary {
     /// Height of the cloud map's plane at the last used frame \[m\], and how often it moved to
     /// follow the estimated base (`clouds.map_follows_estimate`).
     pub map_plane: Option<(f64, usize)>,
+    /// Whether shadow timing rejected the configured base (or the ceilometer's series) during the
+    /// run ([`crate::cbh::CbhState::prior_rejected`]).
+    pub prior_base_rejected: bool,
+    /// How the measurements' times were read (`[measurements] time_label`).
+    pub time_label: crate::io::TimeLabel,
     /// Output tables written (final paths; overlays not listed).
     pub outputs: Vec<PathBuf>,
 }
@@ -230,6 +235,8 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
         last_motion_mps: last_motion,
         last_cbh,
         map_plane: last_plane_m.map(|h| (h, nowcaster.map_plane_moves())),
+        prior_base_rejected: nowcaster.cbh_state().prior_rejected(),
+        time_label: nowcaster.site().file.measurements.time_label,
         outputs,
     };
     Ok((summary, set))

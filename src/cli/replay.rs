@@ -93,6 +93,12 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
     if let Some(c) = s.last_cbh {
         crate::say!("cloud base height at the end: {:.0} m ± {:.0} m (1σ), {} (per frame in motion.csv)", c.cbh_m, c.sigma_m, c.source.name());
     }
+    if s.prior_base_rejected {
+        crate::say!(
+            "note: shadow timing at the pyranometers rejected the configured cloud base. If that base is right, check what the readings' times mean ([measurements] time_label, read as \"{}\": a logger that stamps the end of each interval read as its start moves every shadow by a period) and the pyranometers' positions",
+            s.time_label.name()
+        );
+    }
     if let Some((h, moves)) = s.map_plane {
         match moves {
             0 => crate::say!("cloud map plane: {h:.0} m, where it started (map_plane_m in motion.csv)"),

@@ -23,6 +23,17 @@ pub enum TimeLabel {
     End,
 }
 
+impl TimeLabel {
+    /// The name as the site file writes it.
+    pub fn name(self) -> &'static str {
+        match self {
+            TimeLabel::Start => "start",
+            TimeLabel::Centre => "centre",
+            TimeLabel::End => "end",
+        }
+    }
+}
+
 /// `[measurements]` of the site file: how the measurements CSV's times are meant. The engine
 /// works with times at the start of each averaging period; others are moved there on reading
 /// ([`Measurements::label_at_start`]). The Modbus feed makes its own rows, stamped at the start.
