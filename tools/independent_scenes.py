@@ -13,7 +13,8 @@ For each camera (camera1, camera2) the script:
    60 s steps, and three pyranometers taken from ``input/points.csv`` (nearest to the centres of
    the footprint's western third, middle and eastern third);
 2. writes a measurements CSV for the cloudy scene from ``truth/truth_points.csv`` at those three
-   points (1-minute means, ``time_utc`` = start of the minute): synthetic pyranometer readings, the
+   points (1-minute means by default, ``--measurement-minutes``; ``time_utc`` = start of the period,
+   or its end with ``--causal-measurements``): synthetic pyranometer readings, the
    only thing taken from ``truth/`` that the engine sees;
 3. obtains the camera: ``nephocast calibrate`` on the clear day (``--camera-from calibrate``, the
    user's way) or, as a diagnostic only, ``truth/camera.json`` converted to nephocast's convention
@@ -348,25 +349,25 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
     return used_base
 
 
-def write_measurements(path, truth_points_csv, pyranometers, shift_min=0):
-    """1-minute means (time_utc = start of the minute) at the pyranometer points, frame period only.
-    `shift_min` = 1 stamps each mean at the end of its minute instead, so that the engine, which
-    reads the row whose minute contains the frame time, only ever sees completed minutes."""
+def write_measurements(path, truth_points_csv, pyranometers, end_stamped=False, period_min=1):
+    """`period_min`-minute means (time_utc = start of the period) at the pyranometer points, frame
+    period only. `end_stamped` stamps each mean at the end of its period instead (the site file then
+    says so: `[measurements] time_label = "end"`)."""
     tp = pd.read_csv(truth_points_csv)
     if "in_tail" in tp:
         tp = tp[tp["in_tail"] == 0]
     t = pd.to_datetime(tp["time"], utc=True)
-    tp = tp.assign(minute=t.dt.floor("min"))
+    tp = tp.assign(minute=t.dt.floor(f"{period_min}min"))
     cols = {}
     for p in pyranometers:
         s = tp[tp["point_id"] == p["point_id"]].groupby("minute")["ghi_wm2"].mean()
         cols[f"ghi_{p['name']}_wm2"] = s
     df = pd.DataFrame(cols).sort_index()
-    df.index = (df.index + pd.Timedelta(minutes=shift_min)).strftime("%Y-%m-%dT%H:%M:%SZ")
+    df.index = (df.index + pd.Timedelta(minutes=period_min if end_stamped else 0)).strftime("%Y-%m-%dT%H:%M:%SZ")
     df.index.name = "time_utc"
     with open(path, "w") as f:
-        f.write("# Synthetic pyranometers: 1-minute means of truth_points.csv at frame times; time = "
-                + ("end" if shift_min else "start") + " of the minute\n")
+        f.write(f"# Synthetic pyranometers: {period_min}-minute means of truth_points.csv at frame times; time = "
+                + ("end" if end_stamped else "start") + " of the period\n")
         df.to_csv(f, float_format="%.1f")
     return len(df)
 
@@ -594,7 +595,7 @@ def run_camera(a, camera, sc, yard, log, res):
     meas = os.path.join(work, "measurements.csv")
     tpc = os.path.join(cloudy, "truth", "truth_points.csv")
     res["measurement_rows"] = 0 if a.no_measurements else (
-        write_measurements(meas, tpc, pyr, 1 if a.causal_measurements else 0) if os.path.exists(tpc) else 0)
+        write_measurements(meas, tpc, pyr, a.causal_measurements, a.measurement_minutes) if os.path.exists(tpc) else 0)
     # 5./6. replays
     for key, scene_dir, site, m in (("cloudy", cloudy, site_cloudy, meas if res["measurement_rows"] else None),
                                     ("clear", clear, site_clear, None)):
@@ -781,6 +782,8 @@ def main():
                          "file (measurements.time_label=\"end\", unless --set gives another): the figures must then be "
                          "the start-stamped run's (the engine reads only completed minutes either way). "
                          "--set 'measurements.time_label=\"start\"' shows what a mislabelled logger costs")
+    ap.add_argument("--measurement-minutes", type=int, default=1,
+                    help="the synthetic pyranometers' averaging period [min] (default 1; plants often log 5- or 15-minute means)")
     ap.add_argument("--no-measurements", action="store_true",
                     help="replay the cloudy scene without pyranometer readings (a plant without them: the "
                          "engine's documented default transmittances)")
@@ -807,7 +810,7 @@ def main():
     log = []
     results = []
     text = (f"# nephocast on the independent scenes (camera from `{a.camera_from}`, binary {a.bin}; measurements "
-            f"stamped at the {'end' if a.causal_measurements else 'start'} of each minute"
+            f"{a.measurement_minutes}-minute means stamped at the {'end' if a.causal_measurements else 'start'} of each period"
             f"{'; NO measurements given to the cloudy replay' if a.no_measurements else ''})\n\n")
     for camera in [c.strip() for c in a.cameras.split(",") if c.strip()]:
         print(f"[{camera}] running ...", file=sys.stderr, flush=True)
