@@ -150,7 +150,7 @@ fn sun_detections_sit_on_the_true_sun() {
                 continue;
             }
             let Some((tx, ty)) = c.project_enu(nephocast::sun::direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad)) else { continue };
-            let Some((x, y, _)) = detect_sun(img, radius_px) else { continue };
+            let Some((x, y, _)) = detect_sun(img, radius_px, nephocast::calibrate::ClipTest::Channels) else { continue };
             // Radial unit vector from the principal point through the true sun.
             let (ux, uy) = (tx - c.cx_px, ty - c.cy_px);
             let l = (ux * ux + uy * uy).sqrt().max(1e-9);

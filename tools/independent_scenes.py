@@ -518,6 +518,12 @@ def run_camera(a, camera, sc, yard, log, res):
         p = os.path.join(d, "input", "ceilometer.json")
         return read_json(p) if os.path.exists(p) else None
 
+    # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
+    frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
+    if a.jpeg_quality:
+        for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
+            frames_of[d] = reencoded(frames_of[d], a.jpeg_quality, os.path.join(work, f"{tag}-q{a.jpeg_quality}"))
+
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
     site_cloudy = os.path.join(work, "site.toml")
@@ -530,7 +536,7 @@ def run_camera(a, camera, sc, yard, log, res):
             f.write(toml_table("camera", placeholder_calibration(site_json["image_width"], site_json["image_height"])))
         cal_site = os.path.join(work, "site-calibrate.toml")
         write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr, a.calibrate_set)
-        frames = clear_frames_subset(os.path.join(clear, "input", "frames"), a.clear_subset, os.path.join(work, "clear-frames"))
+        frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"))
         cal_info["clear_subset"] = a.clear_subset
         cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.endswith(".jpg")])
         rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", frames, "--out", cal], log=log)
@@ -600,7 +606,10 @@ def run_camera(a, camera, sc, yard, log, res):
     for key, scene_dir, site, m in (("cloudy", cloudy, site_cloudy, meas if res["measurement_rows"] else None),
                                     ("clear", clear, site_clear, None)):
         out = os.path.join(work, f"out-{key}")
-        cmd = [a.bin, "replay", "--site", site, "--frames", os.path.join(scene_dir, "input", "frames"), "--out", out, "--quiet"]
+        frames = frames_of[scene_dir]
+        if key == "cloudy" and a.frame_every > 1:
+            frames = every_nth_frame(frames, a.frame_every, os.path.join(work, "cloudy-frames"))
+        cmd = [a.bin, "replay", "--site", site, "--frames", frames, "--out", out, "--quiet"]
         if m:
             cmd += ["--measurements", m]
         rc, so, se = run(cmd, log=log)
@@ -760,6 +769,28 @@ def clear_frames_subset(frames, subset, out):
     return out
 
 
+def reencoded(frames, quality, out):
+    """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
+    to compress harder (or softer) than the scenes' own."""
+    import cv2
+    os.makedirs(out, exist_ok=True)
+    for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
+        img = cv2.imread(os.path.join(frames, name), cv2.IMREAD_COLOR)
+        cv2.imwrite(os.path.join(out, name), img, [cv2.IMWRITE_JPEG_QUALITY, int(quality)])
+    return out
+
+
+def every_nth_frame(frames, n, out):
+    """Every `n`-th frame of the cloudy scene linked into `out` (a camera that takes frames less
+    often; the forecasts are then issued, and scored, at those frames only)."""
+    if os.path.isdir(out):
+        shutil.rmtree(out)
+    os.makedirs(out)
+    for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg"))[::n]:
+        os.symlink(os.path.join(frames, name), os.path.join(out, name))
+    return out
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     here = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -782,6 +813,10 @@ def main():
                          "file (measurements.time_label=\"end\", unless --set gives another): the figures must then be "
                          "the start-stamped run's (the engine reads only completed minutes either way). "
                          "--set 'measurements.time_label=\"start\"' shows what a mislabelled logger costs")
+    ap.add_argument("--jpeg-quality", type=int, default=0,
+                    help="re-encode every frame (clear day and cloudy scene) as JPEG at this quality first (OpenCV; 0: as shipped)")
+    ap.add_argument("--frame-every", type=int, default=1,
+                    help="replay only every N-th frame of the cloudy scene (a camera taking frames N times less often)")
     ap.add_argument("--measurement-minutes", type=int, default=1,
                     help="the synthetic pyranometers' averaging period [min] (default 1; plants often log 5- or 15-minute means)")
     ap.add_argument("--no-measurements", action="store_true",

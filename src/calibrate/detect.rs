@@ -5,19 +5,20 @@
 use nalgebra::{DMatrix, DVector};
 
 use super::Detection;
+use super::clip::ClipTest;
 use crate::camera::{Camera, Orientation, Projection};
 
-/// Find the sun disk in a frame. `radius_px` is the image circle's radius.
-/// Returns (column, row, pixels used for the centroid).
-pub fn detect_sun(img: &image::RgbImage, radius_px: f64) -> Option<(f64, f64, usize)> {
-    let (cx, cy, n) = find_sun_blob(img, 250, 3, 0.05 * radius_px)?;
+/// Find the sun disk in a frame, its clipped core judged by `clip`. `radius_px` is the image
+/// circle's radius. Returns (column, row, pixels used for the centroid).
+pub fn detect_sun(img: &image::RgbImage, radius_px: f64, clip: ClipTest) -> Option<(f64, f64, usize)> {
+    let (cx, cy, n) = find_sun_blob(img, clip, clip.core_level(), 3, 0.05 * radius_px)?;
     let r = 0.05 * radius_px;
     // Saturated pixels far from the sun (other than its blooming column) make the detection
     // ambiguous.
     let elsewhere = img
         .enumerate_pixels()
         .filter(|(x, y, p)| {
-            p.0.iter().all(|c| *c >= 250) && (*x as f64 - cx).abs() > 2.0 && ((*x as f64 - cx).powi(2) + (*y as f64 - cy).powi(2)) > 4.0 * r * r
+            clip.clipped(p.0) && (*x as f64 - cx).abs() > 2.0 && ((*x as f64 - cx).powi(2) + (*y as f64 - cy).powi(2)) > 4.0 * r * r
         })
         .count();
     if n < 3 || (n as f64) > 0.02 * radius_px * radius_px || elsewhere as f64 > 0.25 * n as f64 {
@@ -31,7 +32,7 @@ pub fn detect_sun(img: &image::RgbImage, radius_px: f64) -> Option<(f64, f64, us
     let (x0, x1) = (((cx - rr).floor().max(0.0)) as u32, ((cx + rr).ceil() as u32).min(w - 1));
     let (mut sx, mut sy, mut k) = (0.0, 0.0, 0usize);
     for y in y0..=y1 {
-        let row: Vec<u32> = (x0..=x1).filter(|&x| img.get_pixel(x, y).0.iter().all(|c| *c >= 250)).collect();
+        let row: Vec<u32> = (x0..=x1).filter(|&x| clip.clipped(img.get_pixel(x, y).0)).collect();
         if row.len() >= 3 {
             for x in &row {
                 sx += *x as f64;
@@ -43,11 +44,11 @@ pub fn detect_sun(img: &image::RgbImage, radius_px: f64) -> Option<(f64, f64, us
     (k >= 3).then(|| (sx / k as f64, sy / k as f64, k))
 }
 
-/// Area \[px\] of the 4-connected saturated blob (all channels ≥ 250) nearest to (x, y), searched
-/// within `reach_px`; 0 when there is none.
-pub fn saturated_blob_area(img: &image::RgbImage, x: f64, y: f64, reach_px: f64) -> usize {
+/// Area \[px\] of the 4-connected clipped blob (the sun's core by `clip`) nearest to (x, y),
+/// searched within `reach_px`; 0 when there is none.
+pub fn saturated_blob_area(img: &image::RgbImage, x: f64, y: f64, reach_px: f64, clip: ClipTest) -> usize {
     let (w, h) = img.dimensions();
-    let sat = |x: i64, y: i64| x >= 0 && y >= 0 && x < w as i64 && y < h as i64 && img.get_pixel(x as u32, y as u32).0.iter().all(|c| *c >= 250);
+    let sat = |x: i64, y: i64| x >= 0 && y >= 0 && x < w as i64 && y < h as i64 && clip.clipped(img.get_pixel(x as u32, y as u32).0);
     let (xi, yi) = (x.round() as i64, y.round() as i64);
     let reach = reach_px.ceil() as i64;
     let mut seed = None;
@@ -262,13 +263,13 @@ pub fn fit_image_circle(img: &image::RgbImage) -> Option<ImageCircle> {
     (n > 100.0).then(|| ImageCircle { cx_px: sx / n, cy_px: sy / n, radius_px: (n / std::f64::consts::PI).sqrt() })
 }
 
-/// Find the sun in an image: among the blobs of saturated pixels (all channels ≥ `level`, at least
+/// Find the sun in an image: among the blobs of saturated pixels (`clip`'s value ≥ `level`, at least
 /// `min_px` pixels), the one whose neighbourhood (`radius_px`) holds the most saturated pixels — the
 /// sun with its glare, rather than one bright cloud — and the centroid of the saturated pixels in
 /// that neighbourhood. Returns (column, row, saturated pixels counted).
-pub fn find_sun_blob(img: &image::RgbImage, level: u8, min_px: usize, radius_px: f64) -> Option<(f64, f64, usize)> {
+pub fn find_sun_blob(img: &image::RgbImage, clip: ClipTest, level: u8, min_px: usize, radius_px: f64) -> Option<(f64, f64, usize)> {
     let (w, h) = img.dimensions();
-    let sat: Vec<bool> = img.pixels().map(|p| p.0.iter().all(|c| *c >= level)).collect();
+    let sat: Vec<bool> = img.pixels().map(|p| clip.value(p.0) >= level).collect();
     let mut seen = vec![false; sat.len()];
     let mut seeds: Vec<(f64, f64)> = vec![];
     let mut stack = vec![];
@@ -332,7 +333,7 @@ pub fn geometry_free(img: &image::RgbImage) -> Option<(Camera, Option<[f32; 3]>)
         std::f64::consts::FRAC_PI_2,
         Orientation::default(),
     );
-    let sun = find_sun_blob(img, 245, 5, 0.12 * c.radius_px)
+    let sun = find_sun_blob(img, ClipTest::Channels, 245, 5, 0.12 * c.radius_px)
         .and_then(|(x, y, _)| cam.unproject_enu(x, y))
         .map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]);
     Some((cam, sun))
@@ -358,10 +359,10 @@ mod tests {
         for y in 80..110u32 {
             img.put_pixel(120, y, image::Rgb([255, 255, 255]));
         }
-        let (x, y, _) = detect_sun(&img, 100.0).unwrap();
+        let (x, y, _) = detect_sun(&img, 100.0, ClipTest::Channels).unwrap();
         assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
         // The blob: the disc (45 lattice points with x² + y² < 16) and the 26 streak pixels below it.
-        assert_eq!(saturated_blob_area(&img, x, y, 5.0), 45 + 26);
+        assert_eq!(saturated_blob_area(&img, x, y, 5.0, ClipTest::Channels), 45 + 26);
     }
 
     fn det(blob: usize) -> Detection {
@@ -422,7 +423,7 @@ mod tests {
         }
         let c = fit_image_circle(&img).unwrap();
         assert!((c.cx_px - 50.0).abs() < 0.5 && (c.cy_px - 48.0).abs() < 0.5 && (c.radius_px - 40.0).abs() < 1.0);
-        let (sx, sy, n) = find_sun_blob(&img, 250, 5, 10.0).unwrap();
+        let (sx, sy, n) = find_sun_blob(&img, ClipTest::Channels, 250, 5, 10.0).unwrap();
         assert!((sx - 60.0).abs() < 0.01 && (sy - 40.0).abs() < 0.01 && n > 20);
     }
 }

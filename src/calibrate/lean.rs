@@ -110,11 +110,11 @@ pub struct GlareLevel {
 }
 
 /// The nested level sets (`LEVELS`, 236–252) of the glare around `(x, y)`: for each level, the 4-connected
-/// component of pixels at least that in every channel that holds the pixel nearest `(x, y)` (or the
+/// component of pixels at least that (by `clip`: in every channel, or the luma) that holds the pixel nearest `(x, y)` (or the
 /// nearest such pixel within 2 px), over its rows at least three pixels wide. A level whose
 /// component reaches `reach_px` from `(x, y)` (the glare runs into bright cloud or the frame) or has
 /// fewer than `MIN_AREA_PX` (9) pixels is left out.
-pub fn glare_levels(img: &image::RgbImage, x: f64, y: f64, reach_px: f64) -> Vec<GlareLevel> {
+pub fn glare_levels(img: &image::RgbImage, x: f64, y: f64, reach_px: f64, clip: super::clip::ClipTest) -> Vec<GlareLevel> {
     let (w, h) = img.dimensions();
     let reach = reach_px.ceil().max(3.0) as i64;
     let (xi, yi) = (x.round() as i64, y.round() as i64);
@@ -125,7 +125,7 @@ pub fn glare_levels(img: &image::RgbImage, x: f64, y: f64, reach_px: f64) -> Vec
         for dx in -reach..=reach {
             let (px, py) = (xi + dx, yi + dy);
             if px >= 0 && py >= 0 && px < w as i64 && py < h as i64 {
-                low[((dy + reach) as usize) * side + (dx + reach) as usize] = *img.get_pixel(px as u32, py as u32).0.iter().min().unwrap_or(&0);
+                low[((dy + reach) as usize) * side + (dx + reach) as usize] = clip.value(img.get_pixel(px as u32, py as u32).0);
             }
         }
     }
@@ -320,7 +320,7 @@ mod tests {
     fn nested_level_sets_grow_and_lean_with_the_background() {
         let u = (0.6, 0.8);
         let img = glare(48.3, 47.6, u, 0.4);
-        let levels = glare_levels(&img, 48.0, 48.0, 30.0);
+        let levels = glare_levels(&img, 48.0, 48.0, 30.0, super::super::clip::ClipTest::Channels);
         assert!(levels.len() >= 4, "{levels:?}");
         assert!(levels.windows(2).all(|w| w[0].r2_px2 > w[1].r2_px2), "higher levels are smaller");
         let lean = |l: &GlareLevel| (l.x_px - 48.3) * u.0 + (l.y_px - 47.6) * u.1;
@@ -332,7 +332,7 @@ mod tests {
     fn the_profile_factor_is_rho_times_drho_di() {
         // I = 300 − 30 ln ρ: dρ/dI = −ρ/30, so ρ·|dρ/dI| = ρ²/30 (the area form up to a constant).
         let img = glare(48.3, 47.6, (1.0, 0.0), 0.0);
-        let levels = glare_levels(&img, 48.0, 48.0, 30.0);
+        let levels = glare_levels(&img, 48.0, 48.0, 30.0, super::super::clip::ClipTest::Channels);
         let k = LeanModel::Profile.factors(&levels);
         for (l, k) in levels.iter().zip(&k).skip(1).take(levels.len() - 2) {
             let expected = l.r2_px2 / 30.0;
@@ -344,7 +344,7 @@ mod tests {
     #[test]
     fn a_symmetric_glare_has_no_slope_and_does_not_move() {
         let img = glare(48.3, 47.6, (1.0, 0.0), 0.0);
-        let levels = glare_levels(&img, 48.0, 48.0, 30.0);
+        let levels = glare_levels(&img, 48.0, 48.0, 30.0, super::super::clip::ClipTest::Channels);
         let g = own_slope(&levels, (0.6, 0.8), LeanModel::Area).unwrap();
         assert!(g.abs() < 2e-3, "{g} px per px²");
         // A pixelated disc's centroid is off its centre by up to a few tenths of a pixel; the
@@ -367,7 +367,7 @@ mod tests {
             let n = sx.hypot(sy);
             let u = (sx / n, sy / n);
             let img = glare(sx, sy, u, 0.5);
-            let l = glare_levels(&img, sx, sy, 30.0);
+            let l = glare_levels(&img, sx, sy, 30.0, super::super::clip::ClipTest::Channels);
             let raw = l.last().map(|g| (g.x_px, g.y_px)).unwrap();
             let zenith = (30.0 + 0.25 * k as f64).to_radians();
             dets.push(Detection::new(Utc::now(), raw, [zenith.sin(), 0.0, zenith.cos()]));

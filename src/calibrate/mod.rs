@@ -69,6 +69,8 @@ mod outputs;
 use bound::{bound_table, coverage_of};
 use fit::{Problem, finish, held_out, problem, solve, start_params, weighted_rms, with_lean};
 pub use fit::fit_detections;
+pub mod clip;
+pub use clip::{ClipTest, chroma_dc_quantizer};
 pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom, sky_edge_circle};
 pub use lean::{GlareLevel, LeanCorrection, LeanModel, correct_glare_lean, glare_levels};
 pub use outputs::{calibration_record, clear_sky_reference, detections_csv, obstruction_mask, residual_plot};
@@ -146,6 +148,8 @@ pub struct CalibrateOptions {
     pub centre_prior_px: Option<f64>,
     /// The largest zenith angle the map uses \[°\], to warn when it reaches beyond the detections.
     pub map_max_zenith_deg: f64,
+    /// How the sun's clipped core is judged ([`ClipTest::for_chroma_quantizer`] of the frames).
+    pub clip: ClipTest,
 }
 
 impl Default for CalibrateOptions {
@@ -156,6 +160,7 @@ impl Default for CalibrateOptions {
             lens: None,
             centre_prior_px: Some(1.0),
             map_max_zenith_deg: 84.0,
+            clip: ClipTest::Channels,
         }
     }
 }
@@ -331,7 +336,7 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     }
     let circle = median_circle(frames, &day)?;
     let size = first.1.dimensions();
-    let (raw, levels) = sun_detections(frames, &day, observer, circle);
+    let (raw, levels) = sun_detections(frames, &day, observer, circle, options.clip);
     let found = raw.len();
     let mut screened = raw.clone();
     screen_bloom(&mut screened);
@@ -447,16 +452,16 @@ fn median_circle(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool]) -> R
 
 /// The sun found in each daytime frame, with its direction and blob area, in time order, and the
 /// nested level sets of its glare (within three times the detection's neighbourhood).
-fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle) -> (Vec<Detection>, Vec<Vec<GlareLevel>>) {
+fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle, clip: ClipTest) -> (Vec<Detection>, Vec<Vec<GlareLevel>>) {
     let mut dets = vec![];
     for ((t, img), is_day) in frames.iter().zip(day) {
         let Ok(sp) = position(t, observer) else { continue };
         if !is_day {
             continue;
         }
-        if let Some((x, y, _)) = detect_sun(img, circle.radius_px) {
-            let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px);
-            let levels = glare_levels(img, x, y, 0.15 * circle.radius_px);
+        if let Some((x, y, _)) = detect_sun(img, circle.radius_px, clip) {
+            let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px, clip);
+            let levels = glare_levels(img, x, y, 0.15 * circle.radius_px, clip);
             dets.push((Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 }, levels));
         }
     }

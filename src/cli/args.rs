@@ -213,6 +213,11 @@ pub struct CalibrateArgs {
     /// Force a lens family instead of choosing by held-out error.
     #[arg(long, value_parser = ["equidistant", "equisolid", "stereographic", "polynomial"])]
     pub lens: Option<String>,
+    /// How the sun's clipped core is judged: `auto` by the frames' JPEG chroma table (every
+    /// channel at least 250 while its DC step is within that 5-level margin, else the luma at
+    /// least 253), or forced.
+    #[arg(long, default_value = "auto", value_parser = ["auto", "channels", "luma"])]
+    pub clip_test: String,
 }
 
 /// `nephocast camera …`.

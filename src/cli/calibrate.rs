@@ -11,12 +11,24 @@ use crate::sun::position;
 pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     // The site file only: the calibration it names may not exist yet.
     let site = crate::config::Site::load_without_camera(&a.site)?;
-    let frames = load_calibration_frames(&a.frames)?;
+    let (frames, chroma_dc) = load_calibration_frames(&a.frames)?;
+    let clip = match a.clip_test.as_str() {
+        "channels" => crate::calibrate::ClipTest::Channels,
+        "luma" => crate::calibrate::ClipTest::Luma,
+        _ => crate::calibrate::ClipTest::for_chroma_quantizer(chroma_dc),
+    };
+    let why = match (a.clip_test.as_str(), chroma_dc) {
+        ("auto", Some(q)) => format!("the frames' JPEG chroma quantizer is {q} levels, the channels test's margin {}", crate::calibrate::clip::CHANNELS_MARGIN),
+        ("auto", None) => "no JPEG chroma table in the frames".to_string(),
+        _ => "--clip-test".to_string(),
+    };
+    crate::say!("sun's clipped core judged by {} ({why})", clip.name());
     let options = crate::calibrate::CalibrateOptions {
         min_detections: a.min_detections,
         min_sun_elevation_deg: a.min_sun_elevation_deg,
         lens: a.lens.as_deref().and_then(crate::calibrate::LensFamily::from_name),
         map_max_zenith_deg: site.map.max_zenith_deg,
+        clip,
         ..Default::default()
     };
     let (fit, dets) = crate::calibrate::calibrate(&frames, &site.site.observer(), &options)?;
@@ -101,9 +113,13 @@ fn remove_superseded(dir: &std::path::Path, name: &str, keep: &[String]) {
 }
 
 /// The frames of `calibrate`, decoded, within the count and memory caps; unreadable ones are
-/// skipped with a message.
-fn load_calibration_frames(dirs: &[PathBuf]) -> Result<Vec<(chrono::DateTime<chrono::Utc>, image::RgbImage)>> {
+/// skipped with a message. With them, the largest JPEG chroma DC quantizer among the frames
+/// ([`crate::calibrate::chroma_dc_quantizer`]; `None` without any JPEG chroma table).
+type CalibrationFrames = (Vec<(chrono::DateTime<chrono::Utc>, image::RgbImage)>, Option<u16>);
+
+fn load_calibration_frames(dirs: &[PathBuf]) -> Result<CalibrationFrames> {
     let mut frames = vec![];
+    let mut chroma_dc: Option<u16> = None;
     let mut untimed = 0;
     let mut held_bytes = 0u64;
     for dir in dirs {
@@ -115,6 +131,9 @@ fn load_calibration_frames(dirs: &[PathBuf]) -> Result<Vec<(chrono::DateTime<chr
             }
             match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
                 Ok(img) => {
+                    if let Some(q) = read_head(&f.path).as_deref().and_then(crate::calibrate::chroma_dc_quantizer) {
+                        chroma_dc = Some(chroma_dc.map_or(q, |m| m.max(q)));
+                    }
                     held_bytes += img.as_raw().len() as u64;
                     if held_bytes > MAX_CALIBRATE_BYTES {
                         bail!("--frames: the frames need more than {} MB decoded (at {} frames); give fewer frames", MAX_CALIBRATE_BYTES / 1_000_000, frames.len() + 1);
@@ -128,7 +147,15 @@ fn load_calibration_frames(dirs: &[PathBuf]) -> Result<Vec<(chrono::DateTime<chr
     if frames.is_empty() {
         bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", dirs, crate::io::FRAME_NAME_PATTERN);
     }
-    Ok(frames)
+    Ok((frames, chroma_dc))
+}
+
+/// The first 64 KiB of a file (a JPEG's tables come before its scan), `None` when unreadable.
+fn read_head(path: &std::path::Path) -> Option<Vec<u8>> {
+    use std::io::Read;
+    let mut v = vec![];
+    std::fs::File::open(path).ok()?.take(64 * 1024).read_to_end(&mut v).ok()?;
+    Some(v)
 }
 
 /// Print a fit: residuals, lens families, parameters, field, coverage, bounds and warnings.

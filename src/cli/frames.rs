@@ -37,7 +37,7 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
             let d = sp.direction_enu();
             (s.camera.clone(), Some([d[0] as f32, d[1] as f32, d[2] as f32]))
         } else if let Some(c) = &cal_cam {
-            let sun = crate::calibrate::find_sun_blob(&img, 245, 5, 0.06 * c.image_circle_radius_px())
+            let sun = crate::calibrate::find_sun_blob(&img, crate::calibrate::ClipTest::Channels, 245, 5, 0.06 * c.image_circle_radius_px())
                 .and_then(|(x, y, _)| c.unproject_enu(x, y))
                 .map(|d| [d[0] as f32, d[1] as f32, d[2] as f32]);
             (c.clone(), sun)
