@@ -37,6 +37,8 @@ pub(super) struct LiveEngine {
     untimed_seen: HashSet<String>,
     untimed_in_folder: usize,
     pruned_at: Option<std::time::Instant>,
+    /// Whether the configured base's rejection by shadow timing has been logged.
+    base_rejection_logged: bool,
 }
 
 /// What a frame's step gave, for the reports after it.
@@ -77,6 +79,7 @@ impl LiveEngine {
             untimed_seen: HashSet::new(),
             untimed_in_folder: 0,
             pruned_at: None,
+            base_rejection_logged: false,
         }
     }
 
@@ -117,12 +120,28 @@ impl LiveEngine {
                 self.log(&[("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())]);
             }
             let stepped = self.step(&newest);
+            self.note_base_rejected();
             self.report(&newest, stepped, ready.len() - 1);
             retire_all(&ready, &self.opts.health.retention, &self.shared, self.opts.health.log_json);
         }
         if let Ok(mut s) = self.shared.lock() {
             s.health.running = false;
         }
+    }
+
+    /// Log once when shadow timing at the pyranometers has rejected the configured cloud base,
+    /// naming how the measurements' times are read (a mislabelled logger is the first thing to
+    /// check when the base is known good: DEVELOPERS.md, "Where the design changed").
+    fn note_base_rejected(&mut self) {
+        if self.base_rejection_logged || !self.nc.cbh_state().prior_rejected() {
+            return;
+        }
+        self.base_rejection_logged = true;
+        let label = self.nc.site().file.measurements.time_label.name();
+        self.log(&[
+            ("event", "cloud_base".into()),
+            ("note", format!("shadow timing at the pyranometers rejected the configured cloud base; if that base is right, check [measurements] time_label (read as \"{label}\") and the pyranometers' positions")),
+        ]);
     }
 
     /// Remove archived frames beyond their keep time, at most once an hour.
