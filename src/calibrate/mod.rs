@@ -590,7 +590,7 @@ fn tilt_warning(camera: &Camera) -> Option<String> {
     let tilt_deg = up[2].clamp(-1.0, 1.0).acos().to_degrees();
     (tilt_deg > LEVEL_WARN_TILT_DEG).then(|| {
         format!(
-            "the fitted camera is tilted {tilt_deg:.1}° from level (pitch {:.1}°, roll {:.1}°): if it was levelled, the frames' clock is likely off (a time zone or a camera clock: on a clear day with its times moved 30 or 60 minutes the fit tilted 5.9° or 12.2° and its residuals hardly grew); check the times in the frame names are UTC",
+            "the fitted camera is tilted {tilt_deg:.1}° from level (pitch {:.1}°, roll {:.1}°): if it was levelled, the frames' clock is likely off (a time zone or a camera clock: on a clear day with its times moved 30 or 60 minutes the fit tilted 5.9° or 12.2° and its residuals hardly grew); check the times in the frame names are UTC, and the site's longitude (east positive: a sign slip moves the sun by 4 minutes per degree)",
             o.pitch_rad.to_degrees(),
             o.roll_rad.to_degrees()
         )
