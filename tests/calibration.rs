@@ -179,14 +179,7 @@ fn winter_day_alone_says_what_it_cannot_constrain() {
     let mut spec = scene("nuisance-clear-day").unwrap();
     spec.start_utc = "2026-12-14T05:00:00Z".into();
     let s = Scene::new(spec, 1).unwrap();
-    let rays = PixelRays::new(&s.camera);
-    let q = s.spec.jpeg_quality;
-    let frames: Vec<_> = s
-        .frame_times()
-        .iter()
-        .enumerate()
-        .map(|(i, t)| (*t, image::load_from_memory(&nephocast::synth::encode_jpeg(&s.render_frame(&rays, i, t).rgb, q)).unwrap().to_rgb8()))
-        .collect();
+    let frames = s.jpeg_frames();
     let (fit, dets) = calibrate(&frames, &s.world.observer, &CalibrateOptions::default()).unwrap();
     eprintln!("winter nuisance day: {} detections, zenith {:.0}–{:.0}°; {:?}", dets.len(), fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg, fit.warnings);
     assert!(fit.coverage.zenith_min_deg > 55.0, "the test needs a winter arc: detections from zenith {:.1}°", fit.coverage.zenith_min_deg);

@@ -20,7 +20,7 @@ use nephocast::camera::Camera;
 use nephocast::config::CalibrationFile;
 use nephocast::replay::{ReplayOptions, replay};
 use nephocast::synth::render::{PixelRays, TruthClass};
-use nephocast::synth::{Scene, encode_jpeg, scene, write_sequence};
+use nephocast::synth::{Scene, scene, write_sequence};
 use nephocast::verify::evaluate;
 
 /// Target of the calibration: 95th percentile of the direction error in every zenith band below 80°
@@ -93,15 +93,8 @@ fn calibrated() -> &'static Calibrated {
     CELL.get_or_init(|| {
         let t0 = std::time::Instant::now();
         let s = Scene::new(scene("nuisance-clear-day").unwrap(), 1).unwrap();
-        let rays = PixelRays::new(&s.camera);
         // Through JPEG at the scene's quality, as a user's frames arrive.
-        let q = s.spec.jpeg_quality;
-        let frames: Vec<_> = s
-            .frame_times()
-            .iter()
-            .enumerate()
-            .map(|(i, t)| (*t, image::load_from_memory(&encode_jpeg(&s.render_frame(&rays, i, t).rgb, q)).unwrap().to_rgb8()))
-            .collect();
+        let frames = s.jpeg_frames();
         let t1 = std::time::Instant::now();
         let (fit, dets) = calibrate(&frames, &s.world.observer, &nephocast::calibrate::CalibrateOptions::default()).expect("calibration of the nuisance clear day");
         eprintln!(

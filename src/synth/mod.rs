@@ -496,6 +496,21 @@ impl Scene {
         render_with(&self.world, &inst, &self.camera, rays, self.cam_pos_m, self.mast(), noise::hash64(self.seed ^ (i as u64 + 1).wrapping_mul(0x9E37)), nuisances)
     }
 
+    /// Every frame rendered and passed through JPEG at the scene's quality and decoded again, as a
+    /// user's frames arrive (for calibrating in-process from what a camera would have written).
+    pub fn jpeg_frames(&self) -> Vec<(DateTime<Utc>, image::RgbImage)> {
+        let rays = PixelRays::new(&self.camera);
+        let q = self.spec.jpeg_quality;
+        self.frame_times()
+            .iter()
+            .enumerate()
+            .map(|(i, t)| {
+                let jpeg = encode_jpeg(&self.render_frame(&rays, i, t).rgb, q);
+                (*t, image::load_from_memory(&jpeg).expect("a JPEG the encoder just wrote decodes").to_rgb8())
+            })
+            .collect()
+    }
+
     /// Render frame `i` at time `t` from another camera standing at `position_m` (east, north,
     /// up) \[m\] (e.g. the second camera of a stereo pair, [`crate::stereo`]): the same world at
     /// the same time, without the mast and the nuisances (they belong to the scene's own camera),
