@@ -95,7 +95,7 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
     }
     if s.prior_base_rejected {
         crate::say!(
-            "note: shadow timing at the pyranometers rejected the configured cloud base. If that base is right, check what the readings' times mean ([measurements] time_label, read as \"{}\": a logger that stamps the end of each interval read as its start moves every shadow by a period) and the pyranometers' positions",
+            "note: shadow timing at the pyranometers rejected the configured cloud base. If that base is right, check the readings' times: their clock and time zone (UTC expected), and what they label ([measurements] time_label, read as \"{}\": a logger that stamps the end of each interval read as its start moves every shadow by a period); and the pyranometers' positions",
             s.time_label.name()
         );
     }

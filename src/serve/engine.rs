@@ -140,7 +140,7 @@ impl LiveEngine {
         let label = self.nc.site().file.measurements.time_label.name();
         self.log(&[
             ("event", "cloud_base".into()),
-            ("note", format!("shadow timing at the pyranometers rejected the configured cloud base; if that base is right, check [measurements] time_label (read as \"{label}\") and the pyranometers' positions")),
+            ("note", format!("shadow timing at the pyranometers rejected the configured cloud base; if that base is right, check the readings' clock and time zone (UTC expected), [measurements] time_label (read as \"{label}\") and the pyranometers' positions")),
         ]);
     }
 
