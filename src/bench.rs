@@ -270,21 +270,12 @@ fn overlapped_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: 
     let nc = &mut nc;
     pool.install(|| {
         rayon::scope_fifo(|scope| -> Result<(), BenchError> {
+            let _stop = ahead.stop_on_exit();
             for (index, t) in times.iter().enumerate() {
                 let failed = |message: String| BenchError::Frame { index, message };
-                let img = ahead.take(scope, index).map_err(|e| failed(e.to_string()));
-                let img = match img {
-                    Ok(img) => img,
-                    Err(e) => {
-                        ahead.stop();
-                        return Err(e);
-                    }
-                };
+                let img = ahead.take(scope, index).map_err(|e| failed(e.to_string()))?;
                 let frame = Frame { time: *t, image: img };
-                if let Err(e) = nc.step(&frame) {
-                    ahead.stop();
-                    return Err(failed(e.to_string()));
-                }
+                nc.step(&frame).map_err(|e| failed(e.to_string()))?;
                 crate::intake::recycle(frame.image);
             }
             Ok(())

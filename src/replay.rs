@@ -186,6 +186,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
     };
     let ahead = crate::intake::ahead::Ahead::new(frames.len(), crate::intake::read_ahead_frames(&intake), &decode);
     rayon::scope_fifo(|scope| -> Result<(), ReplayError> {
+        let _stop = ahead.stop_on_exit();
         for (i, f) in frames.iter().enumerate() {
             let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
             let (decoded, dms) = ahead.take(scope, i);
@@ -206,10 +207,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
                         && let Ok(fr) = &frame {
                             let png = crate::overlay::overlay_png(&fr.image, &nc, &nowcaster);
                             let stem = name.rsplit_once('.').map(|x| x.0).unwrap_or(&name);
-                            if let Err(e) = set.write(&format!("overlays/{stem}.png"), &png) {
-                                ahead.stop();
-                                return Err(e.into());
-                            }
+                            set.write(&format!("overlays/{stem}.png"), &png)?;
                         }
                 }
                 Err(rej) => {

@@ -213,6 +213,15 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     check("default: skill gap", auto_gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus default at 5/10/15 min {auto_gaps:.3?} (target within ±0.03)"));
 }
 
+/// The `cbh-network` scene's readings (30 minutes, seed 3, as [`network_scene`] renders) written
+/// as 1-minute means stamped at the start of their minute.
+fn one_minute_readings() -> Vec<u8> {
+    let mut spec = scene("cbh-network").unwrap();
+    spec.duration_min = 30.0;
+    spec.pyranometer_network.as_mut().expect("cbh-network has a pyranometer network").sample_s = 60;
+    nephocast::synth::measurements_csv(&Scene::new(spec, 3).unwrap())
+}
+
 /// The same network read as 1-minute means (the usual logger setting; the same frames, the
 /// readings written for a 60-s period): recorded figures. The stated uncertainty must stay honest
 /// (±2σ covering the truth in ≥ 80 % of the frames with an estimate); how often there is an
@@ -220,12 +229,9 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
 #[test]
 fn one_minute_readings_figures() {
     let d = network_scene();
-    let mut spec = scene("cbh-network").unwrap();
-    spec.duration_min = 30.0;
-    spec.pyranometer_network.as_mut().expect("cbh-network has a pyranometer network").sample_s = 60;
     let m60 = tempfile::tempdir().unwrap();
     let path = m60.path().join("measurements.csv");
-    std::fs::write(&path, nephocast::synth::measurements_csv(&Scene::new(spec, 3).unwrap())).unwrap();
+    std::fs::write(&path, one_minute_readings()).unwrap();
     let est = run_with(d, "shadow60", &path, |s| wrong_prior(s, Some(true)));
     let fits: Vec<&(f64, f64, String)> = est.cbh.iter().filter(|c| c.2 == "shadow_timing").collect();
     let mut errs: Vec<f64> = fits.iter().map(|c| (c.0 - TRUTH_M).abs() / TRUTH_M).collect();
@@ -337,12 +343,9 @@ fn shadow_timing_without_pyranometers_is_refused() {
 #[test]
 fn end_stamped_readings_with_their_label_give_the_start_stamped_run() {
     let d = network_scene();
-    let mut spec = scene("cbh-network").unwrap();
-    spec.duration_min = 30.0;
-    spec.pyranometer_network.as_mut().expect("cbh-network has a pyranometer network").sample_s = 60;
     let m = tempfile::tempdir().unwrap();
     let start = m.path().join("start.csv");
-    let text = String::from_utf8(nephocast::synth::measurements_csv(&Scene::new(spec, 3).unwrap())).unwrap();
+    let text = String::from_utf8(one_minute_readings()).unwrap();
     std::fs::write(&start, &text).unwrap();
     // The same rows, each stamped 60 s later (the end of its minute).
     let end = m.path().join("end.csv");

@@ -396,17 +396,17 @@ impl CbhState {
         combine(&inputs).unwrap_or(prior)
     }
 
-    /// A shadow-timing fit made at `time`, the configured base (or the known layer's) being
-    /// `prior_m`: kept as the newest, and judged against that base (with `shadow_timing` unset the
-    /// fits join the combination once [`CHECK_MIN_DISAGREEING`] in a row disagree with it on the
-    /// same side, and from then on). `None`: the fit cannot judge the base (it breaks a run of
-    /// disagreeing fits).
     /// Whether shadow-timing fits have rejected the configured base or the ceilometer's series
     /// ([`CHECK_MIN_DISAGREEING`] disagreeing fits in a row on the same side).
     pub fn prior_rejected(&self) -> bool {
         self.prior_rejected
     }
 
+    /// A shadow-timing fit made at `time`, the configured base (or the known layer's) being
+    /// `prior_m`: kept as the newest, and judged against that base (with `shadow_timing` unset the
+    /// fits join the combination once [`CHECK_MIN_DISAGREEING`] in a row disagree with it on the
+    /// same side, and from then on). `None`: the fit cannot judge the base (it breaks a run of
+    /// disagreeing fits).
     fn take_fit(&mut self, time: DateTime<Utc>, fit: ShadowFit, prior_m: Option<f64>) {
         self.estimates_made += 1;
         let side = prior_m.map_or(0, |p| disagreement(fit.cbh_m, fit.rel_sigma, p));

@@ -104,6 +104,22 @@ impl<'a, T: Send> Ahead<'a, T> {
     pub fn stop(&self) {
         self.stop.store(true, Ordering::Relaxed);
     }
+
+    /// A guard that calls [`Ahead::stop`] when dropped: made at the top of the scope's closure, it
+    /// stops the decodes still queued however the engine's loop ends (an error, a `?`, a panic),
+    /// before the scope waits for them. After the last frame is taken there are none left.
+    pub fn stop_on_exit(&self) -> StopOnExit<'_> {
+        StopOnExit(&self.stop)
+    }
+}
+
+/// See [`Ahead::stop_on_exit`].
+pub struct StopOnExit<'a>(&'a AtomicBool);
+
+impl Drop for StopOnExit<'_> {
+    fn drop(&mut self) {
+        self.0.store(true, Ordering::Relaxed);
+    }
 }
 
 #[cfg(test)]
@@ -160,6 +176,29 @@ mod tests {
                 assert_eq!(ahead.take(s, 0), 0);
             })
         });
+        assert_eq!(calls.load(Ordering::Relaxed), 1);
+    }
+
+    /// The guard stops the queued decodes when the engine's loop leaves early: the first take
+    /// queues frames 1–3, and the loop ends before any worker has run them.
+    #[test]
+    fn leaving_the_loop_stops_the_queued_decodes() {
+        let calls = std::sync::atomic::AtomicUsize::new(0);
+        let decode = |i: usize| {
+            calls.fetch_add(1, Ordering::Relaxed);
+            i
+        };
+        let ahead = Ahead::new(100, 3, &decode);
+        // One thread: the queued decodes can only run once the loop's closure has returned.
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
+        let r: Result<(), usize> = pool.install(|| {
+            rayon::scope_fifo(|s| {
+                let _stop = ahead.stop_on_exit();
+                let first = ahead.take(s, 0);
+                Err(first)
+            })
+        });
+        assert_eq!(r, Err(0));
         assert_eq!(calls.load(Ordering::Relaxed), 1);
     }
 }
