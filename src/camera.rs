@@ -19,6 +19,13 @@
 //! With all three zero the camera looks straight up, image columns grow toward east and image rows
 //! toward north. Positive yaw turns the camera counter-clockwise seen from above.
 //!
+//! Handedness: a camera looking up sees the sky as from below, so with north at the top of the
+//! image east is on the left (rotate the convention above by 180°). Frames that show it the other
+//! way round, east on the right with north up as on a map (a camera that images the sky through a
+//! mirror, or software that flips its frames), are [`Camera::mirrored`]: the camera frame's `x` is
+//! negated between the rotation and the lens, which is the same as flipping the unmirrored
+//! camera's image left–right about the principal point.
+//!
 //! # References
 //! * J. Kannala, S. S. Brandt, "A generic camera model and calibration method for conventional,
 //!   wide-angle, and fish-eye lenses", *IEEE TPAMI* 28(8):1335–1340, 2006.
@@ -134,6 +141,8 @@ pub struct Camera {
     pub max_field_angle_rad: f64,
     /// Orientation.
     pub orientation: Orientation,
+    /// The frames are mirrored left–right (see the module docs on handedness).
+    pub mirrored: bool,
     cam_to_enu: Rotation3<f64>,
 }
 
@@ -152,7 +161,37 @@ impl Camera {
     ) -> Self {
         let cam_to_enu =
             Rotation3::from_euler_angles(orientation.roll_rad, orientation.pitch_rad, orientation.yaw_rad);
-        Self { width_px, height_px, cx_px, cy_px, f_px, projection, max_field_angle_rad, orientation, cam_to_enu }
+        Self { width_px, height_px, cx_px, cy_px, f_px, projection, max_field_angle_rad, orientation, mirrored: false, cam_to_enu }
+    }
+
+    /// The same camera with its frames mirrored left–right (`true`) or not.
+    pub fn with_mirrored(mut self, mirrored: bool) -> Self {
+        self.mirrored = mirrored;
+        self
+    }
+
+    /// The camera an image flipped left–right (column `x` to `width − 1 − x`) was taken with: the
+    /// principal point moves to `width − 1 − cx` and the handedness turns over; directions and the
+    /// lens stay.
+    pub fn flipped_left_right(&self) -> Self {
+        let mut c = self.clone();
+        c.cx_px = self.width_px as f64 - 1.0 - self.cx_px;
+        c.mirrored = !self.mirrored;
+        c
+    }
+
+    /// A camera-frame direction from an (east, north, up) one (rotation, then the handedness).
+    pub fn enu_to_camera_frame(&self, d_enu: [f64; 3]) -> [f64; 3] {
+        let v = self.cam_to_enu.inverse_transform_vector(&Vector3::new(d_enu[0], d_enu[1], d_enu[2]));
+        [if self.mirrored { -v[0] } else { v[0] }, v[1], v[2]]
+    }
+
+    /// An (east, north, up) direction from a camera-frame one (the inverse of
+    /// [`Camera::enu_to_camera_frame`]).
+    pub fn camera_frame_to_enu(&self, v: [f64; 3]) -> [f64; 3] {
+        let x = if self.mirrored { -v[0] } else { v[0] };
+        let w = self.cam_to_enu * Vector3::new(x, v[1], v[2]);
+        [w[0], w[1], w[2]]
     }
 
     /// A level, centred equidistant camera whose 90° field angle meets the image edge.
@@ -164,6 +203,7 @@ impl Camera {
 
     /// Same camera with another orientation.
     pub fn with_orientation(&self, orientation: Orientation) -> Self {
+        let mirrored = self.mirrored;
         Self::new(
             self.width_px,
             self.height_px,
@@ -174,6 +214,7 @@ impl Camera {
             self.max_field_angle_rad,
             orientation,
         )
+        .with_mirrored(mirrored)
     }
 
     /// The same camera seen through its frames reduced by `reduce` (each side divided, rounded up;
@@ -192,9 +233,11 @@ impl Camera {
             self.max_field_angle_rad,
             self.orientation,
         )
+        .with_mirrored(self.mirrored)
     }
 
-    /// Rotation camera → (east, north, up).
+    /// Rotation camera → (east, north, up) (before the handedness: see
+    /// [`Camera::enu_to_camera_frame`]).
     pub fn cam_to_enu(&self) -> &Rotation3<f64> {
         &self.cam_to_enu
     }
@@ -212,13 +255,13 @@ impl Camera {
 
     /// Pixel of an (east, north, up) direction; `None` outside the lens field or the image.
     pub fn project_enu(&self, d_enu: [f64; 3]) -> Option<(f64, f64)> {
-        let v = self.cam_to_enu.inverse_transform_vector(&Vector3::new(d_enu[0], d_enu[1], d_enu[2]));
-        let n = v.norm();
+        let v = self.enu_to_camera_frame(d_enu);
+        let n = (v[0] * v[0] + v[1] * v[1] + v[2] * v[2]).sqrt();
         let theta = (v[2] / n).clamp(-1.0, 1.0).acos();
         if theta > self.max_field_angle_rad {
             return None;
         }
-        let (x, y) = self.project_camera_frame([v[0], v[1], v[2]]);
+        let (x, y) = self.project_camera_frame(v);
         self.in_image(x, y).then_some((x, y))
     }
 
@@ -250,8 +293,7 @@ impl Camera {
     /// Unit (east, north, up) direction of a pixel; `None` outside the lens field.
     pub fn unproject_enu(&self, x: f64, y: f64) -> Option<[f64; 3]> {
         let (v, _) = self.unproject_camera_frame(x, y)?;
-        let w = self.cam_to_enu * Vector3::new(v[0], v[1], v[2]);
-        Some([w[0], w[1], w[2]])
+        Some(self.camera_frame_to_enu(v))
     }
 
     /// Zenith and azimuth \[rad\] of a pixel; `None` outside the lens field.
@@ -360,6 +402,40 @@ mod tests {
             }
             assert!(n > 3000);
         }
+    }
+
+    #[test]
+    fn a_mirrored_camera_sees_the_flipped_image() {
+        for c in cams() {
+            let m = c.flipped_left_right();
+            assert!(m.mirrored && !m.flipped_left_right().mirrored);
+            let mut n = 0;
+            for i in 0..40 {
+                let (z, a) = (0.03 * i as f64, 0.37 * i as f64);
+                let (Some((x, y)), Some((xm, ym))) = (c.project(z, a), m.project(z, a)) else { continue };
+                assert!((xm - (c.width_px as f64 - 1.0 - x)).abs() < 1e-9 && (ym - y).abs() < 1e-9, "{:?} z {z} a {a}", c.projection);
+                let (z2, a2) = m.unproject(xm, ym).unwrap();
+                assert!((z2 - z).abs() < 1e-9, "{z2} {z}");
+                assert!(((a2 - a).rem_euclid(std::f64::consts::TAU) + 1e-9) % std::f64::consts::TAU < 1e-8 || z < 1e-6);
+                n += 1;
+            }
+            assert!(n > 30);
+            // Handedness survives a new orientation and a reduced frame.
+            assert!(m.with_orientation(Orientation::default()).mirrored && m.reduced(2).mirrored);
+        }
+    }
+
+    #[test]
+    fn level_mirrored_camera_puts_east_on_the_right_with_north_up() {
+        // Unmirrored, level, yaw 180°: north at the top (small rows), east on the left.
+        let up = Camera::ideal(512).with_orientation(Orientation { yaw_rad: std::f64::consts::PI, ..Default::default() });
+        let (xe, _) = up.project(0.8, FRAC_PI_2).unwrap();
+        let (_, yn) = up.project(0.8, 0.0).unwrap();
+        assert!(yn < 255.5 && xe < 255.5);
+        let mapped = up.with_mirrored(true);
+        let (xe, _) = mapped.project(0.8, FRAC_PI_2).unwrap();
+        let (_, yn) = mapped.project(0.8, 0.0).unwrap();
+        assert!(yn < 255.5 && xe > 255.5);
     }
 
     #[test]

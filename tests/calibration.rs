@@ -40,7 +40,7 @@ fn direction_error_deg(truth: &Camera, fit: &Camera) -> f64 {
 }
 
 fn cam(model: &str, k: Vec<f64>, off: [f64; 2], yaw: f64, pitch: f64, roll: f64) -> CameraSpec {
-    CameraSpec { name: "cal-test".into(), model: model.into(), k, rim_fraction: 0.95, offset_px: off, yaw_deg: yaw, pitch_deg: pitch, roll_deg: roll }
+    CameraSpec { name: "cal-test".into(), model: model.into(), k, rim_fraction: 0.95, offset_px: off, yaw_deg: yaw, pitch_deg: pitch, roll_deg: roll, mirrored: false }
 }
 
 fn run(spec: &CameraSpec, days: &[(&str, f64)]) -> (f64, nephocast::calibrate::Fit) {
@@ -80,6 +80,35 @@ fn two_seasons_recover_each_model() {
 fn single_day_within_a_third_of_a_degree() {
     let (err, _) = run(&cam("equidistant", vec![], [-8.0, 14.0], 250.0, -2.6, 1.9), &[("2026-06-14T05:00:00Z", 14.0)]);
     assert!(err <= 0.3, "{err}°");
+}
+
+/// Frames mirrored left–right (the renderer's camera `mirrored`: east on the right with north up):
+/// `calibrate` finds the handedness by held-out error (the upright fit of these detections is not
+/// a usable camera, or predicts the held-out blocks far worse) and recovers the camera as well as
+/// an upright one (≤ 0.3° RMS from one day, as `single_day_within_a_third_of_a_degree`). The same
+/// camera upright is found upright.
+#[test]
+fn mirrored_frames_are_found_and_fitted() {
+    for mirrored in [true, false] {
+        let spec = CameraSpec { mirrored, ..cam("equisolid", vec![], [6.0, -9.0], 40.0, 1.1, -0.7) };
+        let (err, fit) = run(&spec, &[("2026-06-14T05:00:00Z", 14.0)]);
+        let [up, mi] = fit.handedness_held_out_px;
+        eprintln!("mirrored {mirrored}: held-out error upright {up:.3} px, mirrored {mi:.3} px; {:?}", fit.mirrored_because);
+        assert_eq!(fit.camera.mirrored, mirrored, "{:?}", fit.handedness_held_out_px);
+        assert_eq!(fit.mirrored_because.is_some(), mirrored);
+        assert!(err <= 0.3, "mirrored {mirrored}: {err}°");
+        // The written file reads back as the same camera.
+        let file = nephocast::config::CalibrationFile::from_camera("c", &fit.camera);
+        let text = toml::to_string(&file).unwrap();
+        assert_eq!(text.contains("mirrored = true"), mirrored, "{text}");
+        let back: nephocast::config::CalibrationFile = toml::from_str(&text).unwrap();
+        let back = back.camera(std::path::Path::new("c.toml")).unwrap();
+        assert_eq!(back.mirrored, mirrored);
+        for (z, a) in [(0.3, 0.5), (0.9, 2.0), (1.3, 4.4)] {
+            let (p, q) = (back.project(z, a).unwrap(), fit.camera.project(z, a).unwrap());
+            assert!((p.0 - q.0).abs() < 1e-6 && (p.1 - q.1).abs() < 1e-6, "{p:?} {q:?}");
+        }
+    }
 }
 
 /// Night-only frames give a clear error saying what was found.

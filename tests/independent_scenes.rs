@@ -144,6 +144,28 @@ fn calibration_from_part_of_the_clear_day() {
     assert!(failures.is_empty(), "{failures:#?}");
 }
 
+/// A camera whose frames are mirrored left–right (east on the right with north up, as through a
+/// mirror or a camera's flip setting): both clear days flipped (the harness's `--mirror`, OpenCV at
+/// JPEG quality 95). `calibrate` finds the handedness and writes `mirrored = true`; before it did,
+/// it stopped with "a tilt of 28.0°" on camera1 and wrote nothing. The calibration target holds, and
+/// the upright frames at the same quality are found upright.
+#[test]
+fn calibration_from_mirrored_frames() {
+    let Some(scenes) = scenes_or_skip() else { return };
+    let mut failures = vec![];
+    for (extra, mirrored) in [(&["--calibration-only", "--mirror"][..], true), (&["--calibration-only", "--jpeg-quality", "95"][..], false)] {
+        let r = run_harness(&scenes, extra);
+        for c in r["cameras"].as_array().unwrap() {
+            let label = format!("{} ({})", c["camera"].as_str().unwrap(), if mirrored { "mirrored" } else { "upright, quality 95" });
+            let out = c["calibration"]["stdout"].as_str().unwrap_or("");
+            assert_eq!(c["calibration"]["fields"]["mirrored"].as_bool().unwrap_or(false), mirrored, "{label}: {out}");
+            assert!(out.contains(if mirrored { "handedness     mirrored" } else { "handedness     upright" }), "{label}: {out}");
+            check_calibration(&label, &c["calibration"], &mut failures);
+        }
+    }
+    assert!(failures.is_empty(), "{failures:#?}");
+}
+
 /// A camera set to compress harder than the scenes' own (quality ~90): both clear days re-encoded
 /// at JPEG quality 75 (OpenCV, the harness's `--jpeg-quality`). `calibrate` reads the frames'
 /// chroma table and judges the sun's clipped core by its luma (`calibrate::clip`); judged by every

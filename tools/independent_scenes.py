@@ -102,9 +102,28 @@ def matrix_from_euler(roll, pitch, yaw):
     return Rz @ Ry @ Rx
 
 
+# Set by --mirror: the frames the engine reads are flipped left-right, so every true pixel column x
+# becomes width - 1 - x (the truth files themselves are never changed).
+MIRROR = False
+
+
+def true_pixels(sc, true_cam, d):
+    """The true camera's pixels of directions `d` (flipped left-right under --mirror)."""
+    tx, ty = sc.project_enu(true_cam, d)
+    if MIRROR:
+        tx = (true_cam["width"] - 1) - tx
+    return tx, ty
+
+
 def calibration_from_truth(cam):
     """truth/camera.json -> the [camera] table of a nephocast calibration file."""
     roll, pitch, yaw = euler_from_matrix(cam["R_cam_to_enu"])
+    if MIRROR:
+        return {**calibration_from_truth_upright(cam, roll, pitch, yaw), "cx_px": float(cam["width"] - 1 - cam["cx"]), "mirrored": True}
+    return calibration_from_truth_upright(cam, roll, pitch, yaw)
+
+
+def calibration_from_truth_upright(cam, roll, pitch, yaw):
     return {
         "name": f"{cam.get('camera_id', 'camera')}-from-truth",
         "width_px": int(cam["width"]),
@@ -167,6 +186,8 @@ class PyCamera:
 
     def project(self, zen, az):
         v = enu(zen, az) @ self.R  # R^T d
+        if self.c.get("mirrored"):
+            v[:, 0] = -v[:, 0]
         th = np.arccos(np.clip(v[:, 2], -1, 1))
         rxy = np.hypot(v[:, 0], v[:, 1])
         r = self.c["f_px_per_rad"] * self.g(th)
@@ -183,6 +204,8 @@ class PyCamera:
         th = self.g_inv(rho)
         with np.errstate(invalid="ignore", divide="ignore"):
             v = np.stack([np.sin(th) * np.where(rho > 0, dx / rho, 0), np.sin(th) * np.where(rho > 0, dy / rho, 0), np.cos(th)], -1)
+        if self.c.get("mirrored"):
+            v[:, 0] = -v[:, 0]
         w = v @ self.R.T
         w[~(th <= self.fmax)] = np.nan
         zen = np.degrees(np.arccos(np.clip(w[:, 2], -1, 1)))
@@ -233,7 +256,7 @@ def calibration_error(binary, cal, true_cam, sc, log, pycam=None):
     (with `nephocast camera project/unproject`, or with `pycam` when the binary refuses the file)."""
     zen, az = grid_directions()
     d = enu(zen, az)
-    tx, ty = sc.project_enu(true_cam, d)
+    tx, ty = true_pixels(sc, true_cam, d)
     seen = np.isfinite(tx) & (zen <= 88.0)
     zen, az, d, tx, ty = zen[seen], az[seen], d[seen], tx[seen], ty[seen]
     if pycam is None:
@@ -266,7 +289,7 @@ def _q(v, p):
 def verify_truth_conversion(binary, cal, true_cam, sc, log):
     """Largest |bin camera project - skycommon.project_enu| [px] over the grid the true camera sees."""
     zen, az = grid_directions()
-    tx, ty = sc.project_enu(true_cam, enu(zen, az))
+    tx, ty = true_pixels(sc, true_cam, enu(zen, az))
     ok = np.isfinite(tx)
     ox, oy = bin_project(binary, cal, zen[ok], az[ok], log)
     e = np.hypot(ox - tx[ok], oy - ty[ok])
@@ -281,8 +304,12 @@ def detection_lean(detections_csv, truth_csv, true_cam):
     of the image radius (a lean common to all detections is a focal-length error to the fit)."""
     d = pd.read_csv(detections_csv)
     t = pd.read_csv(truth_csv)[["time", "sun_px_x", "sun_px_y"]]
+    cx = true_cam["cx"]
+    if MIRROR:
+        t["sun_px_x"] = (true_cam["width"] - 1) - t["sun_px_x"]
+        cx = (true_cam["width"] - 1) - cx
     m = d.merge(t, left_on="time_utc", right_on="time")
-    ux, uy = m.sun_px_x - true_cam["cx"], m.sun_px_y - true_cam["cy"]
+    ux, uy = m.sun_px_x - cx, m.sun_px_y - true_cam["cy"]
     r = np.hypot(ux, uy)
     ex, ey = m.x_px - m.sun_px_x, m.y_px - m.sun_px_y
     rad, tan = (ex * ux + ey * uy) / r, (-ex * uy + ey * ux) / r
@@ -520,9 +547,10 @@ def run_camera(a, camera, sc, yard, log, res):
 
     # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
     frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
-    if a.jpeg_quality:
+    if a.jpeg_quality or a.mirror:
+        q = a.jpeg_quality or 95
         for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
-            frames_of[d] = reencoded(frames_of[d], a.jpeg_quality, os.path.join(work, f"{tag}-q{a.jpeg_quality}"))
+            frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + ("-mirrored" if a.mirror else "")), a.mirror)
 
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
@@ -551,7 +579,7 @@ def run_camera(a, camera, sc, yard, log, res):
         with open(cal, "rb") as f:
             c = tomllib.load(f)
         cal_info["fields"] = {k: c["camera"].get(k) for k in ("model", "width_px", "height_px", "f_px_per_rad", "cx_px", "cy_px", "max_field_angle_deg",
-                                                                "yaw_deg", "pitch_deg", "roll_deg", "k")}
+                                                                "yaw_deg", "pitch_deg", "roll_deg", "k", "mirrored")}
         cal_info["fit"] = c.get("fit")
     cal_info["true"] = {k: true_cam[k] for k in ("model", "f_px", "cx", "cy", "theta_max_deg", "yaw_deg", "tilt_deg")}
     cal_info["true_euler_ours"] = dict(zip(("roll_deg", "pitch_deg", "yaw_deg"), euler_from_matrix(true_cam["R_cam_to_enu"])))
@@ -769,13 +797,15 @@ def clear_frames_subset(frames, subset, out):
     return out
 
 
-def reencoded(frames, quality, out):
+def reencoded(frames, quality, out, mirror=False):
     """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
-    to compress harder (or softer) than the scenes' own."""
+    to compress harder (or softer) than the scenes' own; with `mirror`, also flipped left-right."""
     import cv2
     os.makedirs(out, exist_ok=True)
     for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
         img = cv2.imread(os.path.join(frames, name), cv2.IMREAD_COLOR)
+        if mirror:
+            img = cv2.flip(img, 1)
         cv2.imwrite(os.path.join(out, name), img, [cv2.IMWRITE_JPEG_QUALITY, int(quality)])
     return out
 
@@ -815,6 +845,10 @@ def main():
                          "--set 'measurements.time_label=\"start\"' shows what a mislabelled logger costs")
     ap.add_argument("--jpeg-quality", type=int, default=0,
                     help="re-encode every frame (clear day and cloudy scene) as JPEG at this quality first (OpenCV; 0: as shipped)")
+    ap.add_argument("--mirror", action="store_true",
+                    help="flip every frame left-right (east on the right with north up, as a camera imaging the sky through a "
+                         "mirror gives them), re-encoded at --jpeg-quality or 95; the true pixels are flipped to match. "
+                         "Compare with an upright run at the same --jpeg-quality")
     ap.add_argument("--frame-every", type=int, default=1,
                     help="replay only every N-th frame of the cloudy scene (a camera taking frames N times less often)")
     ap.add_argument("--measurement-minutes", type=int, default=1,
@@ -828,6 +862,8 @@ def main():
                     help="calibrate from part of the clear day only (robustness check; the clear-day replay keeps every frame)")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
+    global MIRROR
+    MIRROR = a.mirror
     if a.causal_measurements and not any(kv.split("=", 1)[0].strip() == "measurements.time_label" for kv in a.set):
         a.set.append('measurements.time_label="end"')
     if not a.scenes or not os.path.isdir(a.scenes):
@@ -859,7 +895,7 @@ def main():
     print(text)
     if a.json:
         with open(a.json, "w") as f:
-            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, bin=a.bin, scenes=a.scenes, yardsticks=yard,
+            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, bin=a.bin, scenes=a.scenes, yardsticks=yard,
                            commands=log, cameras=results, summary_markdown=text), f, indent=1, default=str)
     return 0
 

@@ -104,8 +104,7 @@ pub(super) fn perturbed(p: &DVector<f64>, k: usize) -> (DVector<f64>, DVector<f6
 
 /// Where a camera puts a direction, ignoring its field and the image bounds.
 pub(super) fn project_unchecked(cam: &Camera, dir: [f64; 3]) -> (f64, f64) {
-    let v = cam.cam_to_enu().inverse_transform_vector(&nalgebra::Vector3::new(dir[0], dir[1], dir[2]));
-    cam.project_camera_frame([v[0], v[1], v[2]])
+    cam.project_camera_frame(cam.enu_to_camera_frame(dir))
 }
 
 impl LeastSquaresProblem<f64, Dyn, Dyn> for Problem {
@@ -239,7 +238,8 @@ pub(super) fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<Image
     if let Some(c) = circle {
         let g = c.radius_px / cam.f_px;
         if let Some(t) = cam.projection.inverse_radial(g) {
-            cam = Camera::new(cam.width_px, cam.height_px, cam.cx_px, cam.cy_px, cam.f_px, cam.projection, t.clamp(30f64.to_radians(), 110f64.to_radians()), cam.orientation);
+            cam = Camera::new(cam.width_px, cam.height_px, cam.cx_px, cam.cy_px, cam.f_px, cam.projection, t.clamp(30f64.to_radians(), 110f64.to_radians()), cam.orientation)
+                .with_mirrored(cam.mirrored);
         }
     }
     let r = prob.residuals_of(&p, false);
@@ -303,6 +303,8 @@ pub(super) fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<Image
         bounds: vec![],
         coverage: Coverage::default(),
         glare_lean: Default::default(),
+        mirrored_because: None,
+        handedness_held_out_px: [f64::NAN; 2],
         cov: cov.map(|c| (p, c)),
     }
 }

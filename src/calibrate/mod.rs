@@ -232,6 +232,11 @@ pub struct Fit {
     pub coverage: Coverage,
     /// How far the glare's lean was taken out of the detections (see [`correct_glare_lean`]).
     pub glare_lean: LeanCorrection,
+    /// Why the frames were taken as mirrored (see [`Camera::mirrored`]); `None` for upright frames.
+    pub mirrored_because: Option<String>,
+    /// Held-out error \[px\] of the chosen family fitted to the detections as found and mirrored
+    /// (infinite where that handedness gave no usable camera).
+    pub handedness_held_out_px: [f64; 2],
     /// Parameter vector and covariance (internal parametrization), for the bound.
     cov: Option<(DVector<f64>, DMatrix<f64>)>,
 }
@@ -348,11 +353,75 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     if coverage.azimuth_span_deg < 20.0 {
         return Err(CalibrationError::Unusable(format!("the detections span only {:.1}° of azimuth, 20° needed", coverage.azimuth_span_deg)));
     }
+    // Handedness: the frames may show the sky as a camera looking up sees it, or mirrored (east
+    // on the right with north up). The same fit runs on the detections as found and on them
+    // mirrored about the image circle's centre; the mirrored one is kept only when the upright one
+    // cannot be used or the mirrored one predicts the held-out blocks at least twice as well (an
+    // upright camera fitted mirrored needs a tilt of tens of degrees).
+    let upright = fit_one_handedness(&raw, &levels, circle, size, coverage, options);
+    let mirror_x = |x: f64| 2.0 * circle.cx_px - x;
+    let raw_m: Vec<Detection> = raw.iter().map(|d| Detection { px: (mirror_x(d.px.0), d.px.1), ..*d }).collect();
+    let levels_m: Vec<Vec<GlareLevel>> = levels.iter().map(|ls| ls.iter().map(|l| GlareLevel { x_px: mirror_x(l.x_px), ..*l }).collect()).collect();
+    let mirrored = fit_one_handedness(&raw_m, &levels_m, circle, size, coverage, options).map(|(mut fit, mut dets)| {
+        fit.camera.cx_px = mirror_x(fit.camera.cx_px);
+        fit.camera.mirrored = true;
+        for p in fit.params.iter_mut().filter(|p| p.0 == "cx_px") {
+            p.1 = mirror_x(p.1);
+        }
+        for r in &mut fit.residuals {
+            r.0 = -r.0;
+        }
+        for d in &mut dets {
+            d.px.0 = mirror_x(d.px.0);
+        }
+        (fit, dets)
+    });
+    let cv = |r: &Result<(Fit, Vec<Detection>), CalibrationError>| r.as_ref().map(|(f, _)| held_out_of_chosen(f)).unwrap_or(f64::INFINITY);
+    let both = [cv(&upright), cv(&mirrored)];
+    let chosen = match (upright, mirrored) {
+        (Ok(u), Ok(m)) if both[1] < MIRRORED_MIN_GAIN * both[0] => Ok(with_mirror_note(m, Some(&u.0))),
+        (Ok(u), _) => Ok(u),
+        (Err(_), Ok(m)) => Ok(with_mirror_note(m, None)),
+        (Err(e), Err(_)) => Err(e),
+    };
+    chosen.map(|(mut fit, dets)| {
+        fit.handedness_held_out_px = both;
+        (fit, dets)
+    })
+}
+
+/// The mirrored fit is kept only when its held-out error is below this share of the upright fit's.
+pub const MIRRORED_MIN_GAIN: f64 = 0.5;
+
+/// The held-out error \[px\] of the family a fit chose.
+fn held_out_of_chosen(fit: &Fit) -> f64 {
+    fit.scores.iter().find(|s| s.family == fit.family).map(|s| s.cv_rms_px).unwrap_or(f64::INFINITY)
+}
+
+/// Say why the frames were taken as mirrored.
+fn with_mirror_note((mut fit, dets): (Fit, Vec<Detection>), upright: Option<&Fit>) -> (Fit, Vec<Detection>) {
+    fit.mirrored_because = Some(match upright {
+        Some(u) => format!("held-out error {:.3} px mirrored against {:.3} px upright", held_out_of_chosen(&fit), held_out_of_chosen(u)),
+        None => "the upright fit was not usable".to_string(),
+    });
+    (fit, dets)
+}
+
+/// Steps 4–8 for one handedness of the detections: the glare's lean, the lens families, the
+/// bound and the checks.
+fn fit_one_handedness(
+    raw: &[Detection],
+    levels: &[Vec<GlareLevel>],
+    circle: ImageCircle,
+    size: (u32, u32),
+    coverage: Coverage,
+    options: &CalibrateOptions,
+) -> Result<(Fit, Vec<Detection>), CalibrationError> {
     // The glare's lean: as measured (either form of its factor) or left in, whichever the
     // held-out blocks of the fit prefer (see `lean`).
     let candidates = [None, Some(LeanModel::Area), Some(LeanModel::Profile)].map(|model| {
-        let mut dets = raw.clone();
-        let glare_lean = model.map(|m| correct_glare_lean(&mut dets, &levels, (circle.cx_px, circle.cy_px), m)).unwrap_or_default();
+        let mut dets = raw.to_vec();
+        let glare_lean = model.map(|m| correct_glare_lean(&mut dets, levels, (circle.cx_px, circle.cy_px), m)).unwrap_or_default();
         screen_bloom(&mut dets);
         LeanCandidate::fit(dets, glare_lean, circle, size, options)
     });

@@ -178,6 +178,17 @@ fn print_fit(fit: &crate::calibrate::Fit, detections: usize) {
         );
     }
     crate::say!("  field          {:>12.2}° from the axis (where the lens puts the image circle's rim)", fit.camera.max_field_angle_rad.to_degrees());
+    if let Some(why) = &fit.mirrored_because {
+        crate::say!(
+            "  handedness     mirrored: the frames show east on the right with north up, as on a map (through a mirror, or flipped by the camera's software); {why}; written as `mirrored = true`"
+        );
+    } else if fit.handedness_held_out_px.iter().all(|v| !v.is_nan()) {
+        let [u, m] = fit.handedness_held_out_px;
+        crate::say!(
+            "  handedness     upright (held-out error {u:.3} px; fitted mirrored {})",
+            if m.is_finite() { format!("{m:.3} px") } else { "no usable camera".into() }
+        );
+    }
     crate::say!(
         "detections cover zenith {:.0}–{:.0}° over {:.0}° of azimuth; stated direction-error bound by zenith band:",
         fit.coverage.zenith_min_deg,

@@ -52,6 +52,10 @@ pub struct CameraCalibration {
     /// Roll \[°\].
     #[serde(default)]
     pub roll_deg: f64,
+    /// The frames are mirrored left–right: east on the right with north up, as on a map (a camera
+    /// that sees the sky through a mirror, or software that flips its frames). Default `false`.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub mirrored: bool,
     /// An obstruction mask image (white = sky, black = blocked), relative to this file.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub obstruction_mask: Option<PathBuf>,
@@ -204,6 +208,7 @@ impl CalibrationFile {
                 yaw_deg: cam.orientation.yaw_rad.to_degrees(),
                 pitch_deg: cam.orientation.pitch_rad.to_degrees(),
                 roll_deg: cam.orientation.roll_rad.to_degrees(),
+                mirrored: cam.mirrored,
                 obstruction_mask: None,
                 clear_reference: None,
             },
@@ -279,7 +284,8 @@ impl CalibrationFile {
                 pitch_rad: k.pitch_deg.to_radians(),
                 roll_rad: k.roll_deg.to_radians(),
             },
-        );
+        )
+        .with_mirrored(k.mirrored);
         // The model must be invertible over its whole field.
         let g_max = projection.radial(cam.max_field_angle_rad);
         if projection.inverse_radial(g_max).is_none() || projection.radial_derivative(cam.max_field_angle_rad) <= 0.0 {

@@ -65,6 +65,9 @@ pub struct CameraSpec {
     pub pitch_deg: f64,
     /// Roll \[°\].
     pub roll_deg: f64,
+    /// Frames mirrored left–right (east on the right with north up; see [`Camera::mirrored`]).
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub mirrored: bool,
 }
 
 impl CameraSpec {
@@ -107,6 +110,7 @@ impl CameraSpec {
                 roll_rad: self.roll_deg.to_radians(),
             },
         )
+        .with_mirrored(self.mirrored)
     }
 }
 
@@ -230,6 +234,7 @@ fn cam(yaw: f64) -> CameraSpec {
         yaw_deg: yaw,
         pitch_deg: 1.2,
         roll_deg: -0.8,
+        mirrored: false,
     }
 }
 
@@ -354,6 +359,7 @@ pub fn nuisance_camera(wide: bool) -> (CameraSpec, Nuisances) {
         yaw_deg: 131.0,
         pitch_deg: -1.4,
         roll_deg: 0.9,
+        mirrored: false,
     };
     let nuisances = Nuisances {
         field_deg: Some(if wide { 97.0 } else { 88.0 }),
@@ -458,7 +464,8 @@ impl Scene {
             .collect();
         let mut camera = spec.camera.camera(spec.size_px);
         if let Some(f) = spec.nuisances.field_deg {
-            camera = Camera::new(camera.width_px, camera.height_px, camera.cx_px, camera.cy_px, camera.f_px, camera.projection, f.to_radians(), camera.orientation);
+            camera = Camera::new(camera.width_px, camera.height_px, camera.cx_px, camera.cy_px, camera.f_px, camera.projection, f.to_radians(), camera.orientation)
+                .with_mirrored(camera.mirrored);
         }
         let nuisance_map = (!spec.nuisances.is_off()).then(|| spec.nuisances.prepare(&camera, seed));
         let mut world = World::new(
