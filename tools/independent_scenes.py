@@ -105,6 +105,9 @@ def matrix_from_euler(roll, pitch, yaw):
 # Set by --mirror: the frames the engine reads are flipped left-right, so every true pixel column x
 # becomes width - 1 - x (the truth files themselves are never changed).
 MIRROR = False
+# Set by --pad: (left, top, right, bottom) pixels added to every frame (negative: cropped), so a
+# true pixel (x, y) becomes (x + left, y + top).
+PAD = (0, 0, 0, 0)
 
 
 def true_pixels(sc, true_cam, d):
@@ -112,15 +115,18 @@ def true_pixels(sc, true_cam, d):
     tx, ty = sc.project_enu(true_cam, d)
     if MIRROR:
         tx = (true_cam["width"] - 1) - tx
-    return tx, ty
+    return tx + PAD[0], ty + PAD[1]
 
 
 def calibration_from_truth(cam):
     """truth/camera.json -> the [camera] table of a nephocast calibration file."""
     roll, pitch, yaw = euler_from_matrix(cam["R_cam_to_enu"])
+    c = calibration_from_truth_upright(cam, roll, pitch, yaw)
     if MIRROR:
-        return {**calibration_from_truth_upright(cam, roll, pitch, yaw), "cx_px": float(cam["width"] - 1 - cam["cx"]), "mirrored": True}
-    return calibration_from_truth_upright(cam, roll, pitch, yaw)
+        c.update(cx_px=float(cam["width"] - 1 - cam["cx"]), mirrored=True)
+    c.update(cx_px=c["cx_px"] + PAD[0], cy_px=c["cy_px"] + PAD[1], width_px=c["width_px"] + PAD[0] + PAD[2],
+             height_px=c["height_px"] + PAD[1] + PAD[3])
+    return c
 
 
 def calibration_from_truth_upright(cam, roll, pitch, yaw):
@@ -305,11 +311,15 @@ def detection_lean(detections_csv, truth_csv, true_cam):
     d = pd.read_csv(detections_csv)
     t = pd.read_csv(truth_csv)[["time", "sun_px_x", "sun_px_y"]]
     cx = true_cam["cx"]
+    cy = true_cam["cy"]
     if MIRROR:
         t["sun_px_x"] = (true_cam["width"] - 1) - t["sun_px_x"]
         cx = (true_cam["width"] - 1) - cx
+    t["sun_px_x"] += PAD[0]
+    t["sun_px_y"] += PAD[1]
+    cx, cy = cx + PAD[0], cy + PAD[1]
     m = d.merge(t, left_on="time_utc", right_on="time")
-    ux, uy = m.sun_px_x - cx, m.sun_px_y - true_cam["cy"]
+    ux, uy = m.sun_px_x - cx, m.sun_px_y - cy
     r = np.hypot(ux, uy)
     ex, ey = m.x_px - m.sun_px_x, m.y_px - m.sun_px_y
     rad, tan = (ex * ux + ey * uy) / r, (-ex * uy + ey * ux) / r
@@ -547,10 +557,11 @@ def run_camera(a, camera, sc, yard, log, res):
 
     # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
     frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
-    if a.jpeg_quality or a.mirror:
+    if a.jpeg_quality or a.mirror or any(PAD):
         q = a.jpeg_quality or 95
         for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
-            frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + ("-mirrored" if a.mirror else "")), a.mirror)
+            frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + ("-mirrored" if a.mirror else "")
+                                                                  + ("-pad" if any(PAD) else "")), a.mirror, PAD)
 
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
@@ -561,7 +572,8 @@ def run_camera(a, camera, sc, yard, log, res):
         ph = os.path.join(work, "placeholder.toml")
         with open(ph, "w") as f:
             f.write("# Placeholder: `calibrate` loads the site file, which must name a calibration.\n")
-            f.write(toml_table("camera", placeholder_calibration(site_json["image_width"], site_json["image_height"])))
+            f.write(toml_table("camera", placeholder_calibration(site_json["image_width"] + PAD[0] + PAD[2],
+                                                                  site_json["image_height"] + PAD[1] + PAD[3])))
         cal_site = os.path.join(work, "site-calibrate.toml")
         write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr, a.calibrate_set)
         frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"))
@@ -797,15 +809,20 @@ def clear_frames_subset(frames, subset, out):
     return out
 
 
-def reencoded(frames, quality, out, mirror=False):
+def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0)):
     """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
-    to compress harder (or softer) than the scenes' own; with `mirror`, also flipped left-right."""
+    to compress harder (or softer) than the scenes' own; with `mirror`, also flipped left-right;
+    with `pad` (left, top, right, bottom), black borders added (negative: rows or columns cut)."""
     import cv2
     os.makedirs(out, exist_ok=True)
     for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
         img = cv2.imread(os.path.join(frames, name), cv2.IMREAD_COLOR)
         if mirror:
             img = cv2.flip(img, 1)
+        if any(pad):
+            l, t, r, b = pad
+            img = img[max(0, -t):img.shape[0] - max(0, -b), max(0, -l):img.shape[1] - max(0, -r)]
+            img = cv2.copyMakeBorder(img, max(0, t), max(0, b), max(0, l), max(0, r), cv2.BORDER_CONSTANT, value=(0, 0, 0))
         cv2.imwrite(os.path.join(out, name), img, [cv2.IMWRITE_JPEG_QUALITY, int(quality)])
     return out
 
@@ -849,6 +866,10 @@ def main():
                     help="flip every frame left-right (east on the right with north up, as a camera imaging the sky through a "
                          "mirror gives them), re-encoded at --jpeg-quality or 95; the true pixels are flipped to match. "
                          "Compare with an upright run at the same --jpeg-quality")
+    ap.add_argument("--pad", default="0,0,0,0",
+                    help="LEFT,TOP,RIGHT,BOTTOM pixels of black border added to every frame (negative: cut off), e.g. a "
+                         "wider sensor (64,0,64,0) or a full-frame fisheye whose image circle is clipped (0,-40,0,-40); "
+                         "re-encoded at --jpeg-quality or 95, the true pixels moved to match")
     ap.add_argument("--frame-every", type=int, default=1,
                     help="replay only every N-th frame of the cloudy scene (a camera taking frames N times less often)")
     ap.add_argument("--measurement-minutes", type=int, default=1,
@@ -862,8 +883,11 @@ def main():
                     help="calibrate from part of the clear day only (robustness check; the clear-day replay keeps every frame)")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
-    global MIRROR
+    global MIRROR, PAD
     MIRROR = a.mirror
+    PAD = tuple(int(v) for v in a.pad.split(","))
+    if len(PAD) != 4:
+        ap.error("--pad takes four integers: LEFT,TOP,RIGHT,BOTTOM")
     if a.causal_measurements and not any(kv.split("=", 1)[0].strip() == "measurements.time_label" for kv in a.set):
         a.set.append('measurements.time_label="end"')
     if not a.scenes or not os.path.isdir(a.scenes):
@@ -895,7 +919,7 @@ def main():
     print(text)
     if a.json:
         with open(a.json, "w") as f:
-            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, bin=a.bin, scenes=a.scenes, yardsticks=yard,
+            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, bin=a.bin, scenes=a.scenes, yardsticks=yard,
                            commands=log, cameras=results, summary_markdown=text), f, indent=1, default=str)
     return 0
 
