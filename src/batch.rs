@@ -259,7 +259,8 @@ pub fn run_batch(opts: &BatchOptions) -> Result<BatchSummary, BatchError> {
     }
     let mut counts = Vec::with_capacity(todo.len());
     for d in &todo {
-        let (frames, _) = crate::replay::frames_of(&d.frames).map_err(|source| BatchError::Replay { day: d.name.clone(), source: Box::new(source) })?;
+        let naming = crate::config::frame_naming_of(&opts.site).map_err(|e| BatchError::Replay { day: d.name.clone(), source: Box::new(e.into()) })?;
+        let (frames, _) = crate::replay::frames_of(&d.frames, &naming).map_err(|source| BatchError::Replay { day: d.name.clone(), source: Box::new(source) })?;
         counts.push(frames.len());
     }
     let total: usize = counts.iter().sum();
@@ -328,7 +329,8 @@ fn run_day(opts: &BatchOptions, d: &Day, digest: &str, bar: &indicatif::Progress
     };
     let (summary, mut set) = crate::replay::replay_staged_with(&ro, bar).map_err(wrap)?;
     let ((stats, sky), reference) = day_stats(opts, d, measurements.as_deref(), set.dir())?;
-    let (frames, _) = crate::replay::frames_of(&d.frames).map_err(wrap)?;
+    let naming = crate::config::frame_naming_of(&opts.site).map_err(|e| wrap(e.into()))?;
+    let (frames, _) = crate::replay::frames_of(&d.frames, &naming).map_err(wrap)?;
     let (first, last) = (frames[0].time, frames[frames.len() - 1].time);
     set.write("stats.csv", &stats.to_csv())?;
     set.write("scores.csv", &stats.scores_csv())?;

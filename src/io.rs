@@ -3,7 +3,7 @@
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
-use chrono::{DateTime, NaiveDateTime, Utc};
+use chrono::{DateTime, Datelike, NaiveDateTime, Utc};
 
 /// An error reading an input file.
 #[derive(Debug, thiserror::Error)]
@@ -256,6 +256,68 @@ pub fn time_from_frame_name(name: &str) -> Option<DateTime<Utc>> {
     None
 }
 
+/// How frame file names carry their time (`[camera] frame_time_format`, `frame_time_zone`).
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+pub struct FrameNaming {
+    /// A chrono `strftime` pattern found anywhere in the name (e.g. `%Y-%m-%d_%H-%M-%S`, `%s` for
+    /// Unix seconds, `%z` for an offset the name carries); `None`: [`FRAME_NAME_PATTERN`].
+    pub format: Option<String>,
+    /// The zone of times whose pattern carries no offset, minutes east of UTC.
+    pub offset_min: i32,
+}
+
+/// A time read from a frame name must fall within these years (a pattern can match a run of
+/// digits that is not the time, e.g. a camera's serial number).
+const FRAME_YEARS: std::ops::RangeInclusive<i32> = 1990..=2200;
+
+impl FrameNaming {
+    /// Check a pattern (and zone): it must parse back a time it wrote, to the minute at least.
+    ///
+    /// # Errors
+    /// What is wrong with the pattern, in words.
+    pub fn new(format: Option<String>, offset_min: i32) -> Result<Self, String> {
+        if let Some(f) = &format {
+            use chrono::format::{Item, StrftimeItems};
+            if f.trim().is_empty() || StrftimeItems::new(f).any(|i| matches!(i, Item::Error)) {
+                return Err(format!("a chrono strftime pattern such as \"%Y-%m-%d_%H-%M-%S\" (got {f:?}, which does not parse as one)"));
+            }
+            let t0 = NaiveDateTime::parse_from_str("2026-06-14T10:17:00", "%Y-%m-%dT%H:%M:%S").map_err(|e| e.to_string())?.and_utc();
+            let text = t0.format(f).to_string();
+            let naming = FrameNaming { format: format.clone(), offset_min: 0 };
+            if naming.time_of(&text) != Some(t0) {
+                return Err(format!("a pattern that carries the date and the time to the minute at least (a name written with {f:?} reads {text:?})"));
+            }
+        }
+        Ok(FrameNaming { format, offset_min })
+    }
+
+    /// The UTC time in a frame file name, if it carries one.
+    pub fn time_of(&self, name: &str) -> Option<DateTime<Utc>> {
+        let Some(f) = &self.format else { return time_from_frame_name(name) };
+        let with_offset = f.contains("%z") || f.contains("%:z") || f.contains("%#z") || f.contains("%s");
+        for (i, _) in name.char_indices() {
+            let rest = &name[i..];
+            let t = if with_offset {
+                DateTime::parse_and_remainder(rest, f).ok().map(|(t, _)| t.with_timezone(&Utc))
+            } else {
+                NaiveDateTime::parse_and_remainder(rest, f).ok().map(|(t, _)| t.and_utc() - chrono::Duration::minutes(self.offset_min as i64))
+            };
+            if let Some(t) = t.filter(|t| FRAME_YEARS.contains(&t.year())) {
+                return Some(t);
+            }
+        }
+        None
+    }
+
+    /// What a frame name is expected to look like, for messages.
+    pub fn expected(&self) -> String {
+        match &self.format {
+            None => FRAME_NAME_PATTERN.to_string(),
+            Some(f) => format!("a time as `{f}` ([camera] frame_time_format) at UTC{:+03}:{:02}", self.offset_min / 60, (self.offset_min % 60).abs()),
+        }
+    }
+}
+
 /// The file name for a frame at a time: `frame_YYYYMMDDTHHMMSS.fffZ.<ext>`.
 pub fn frame_name(time: &DateTime<Utc>, ext: &str) -> String {
     format!("frame_{}.{ext}", time.format("%Y%m%dT%H%M%S%.3fZ"))
@@ -291,6 +353,14 @@ pub struct FrameRef {
 /// # Errors
 /// When the folder cannot be read.
 pub fn list_frames(dir: &Path) -> Result<(Vec<FrameRef>, usize), InputError> {
+    list_frames_named(dir, &FrameNaming::default())
+}
+
+/// As [`list_frames`], with the times read from the names as `naming` says.
+///
+/// # Errors
+/// When the folder cannot be read.
+pub fn list_frames_named(dir: &Path, naming: &FrameNaming) -> Result<(Vec<FrameRef>, usize), InputError> {
     let rd = std::fs::read_dir(dir).map_err(|source| InputError::Read { file: dir.into(), source })?;
     let mut frames = vec![];
     let mut untimed = 0;
@@ -301,7 +371,7 @@ pub fn list_frames(dir: &Path) -> Result<(Vec<FrameRef>, usize), InputError> {
         if !["jpg", "jpeg", "png"].contains(&ext.as_str()) || name.starts_with('.') {
             continue;
         }
-        match time_from_frame_name(&name) {
+        match naming.time_of(&name) {
             Some(time) => frames.push(FrameRef { time, path: p }),
             None => untimed += 1,
         }
@@ -463,6 +533,30 @@ mod tests {
         );
         assert_eq!(time_from_frame_name("image_001.jpg"), None);
         assert_eq!(time_from_frame_name("20261314T101530Z.jpg"), None);
+    }
+
+    /// Names in a camera's own convention (`[camera] frame_time_format`, `frame_time_zone`).
+    #[test]
+    fn frame_names_in_a_camera_s_own_convention() {
+        let utc = |s: &str| s.parse::<DateTime<Utc>>().unwrap();
+        let n = |f: &str, off: i32| FrameNaming::new(Some(f.into()), off).unwrap();
+        // Local standard time an hour east of UTC, a prefix with digits and a suffix.
+        assert_eq!(n("%Y%m%d_%H%M%S", 60).time_of("cam2_20231108_113000_raw.jpg"), Some(utc("2023-11-08T10:30:00Z")));
+        assert_eq!(n("%Y-%m-%d %H-%M-%S%.f", 0).time_of("2023-11-08 10-30-00.250.png"), Some(utc("2023-11-08T10:30:00.250Z")));
+        // The offset the name carries wins over the configured zone; Unix seconds are UTC.
+        assert_eq!(n("%Y-%m-%dT%H:%M:%S%:z", 300).time_of("2023-11-08T11:30:00+01:00.jpg"), Some(utc("2023-11-08T10:30:00Z")));
+        assert_eq!(n("%s", 60).time_of("img_1699439400.jpg"), Some(utc("2023-11-08T10:30:00Z")));
+        // To the minute is enough; a serial number is not a time.
+        assert_eq!(n("%Y%m%d%H%M", 0).time_of("sky202311081030.jpg"), Some(utc("2023-11-08T10:30:00Z")));
+        assert_eq!(n("%Y%m%d_%H%M%S", 0).time_of("image_001.jpg"), None);
+        // The default is the built-in pattern.
+        assert_eq!(FrameNaming::default().time_of("frame_20231108T103000Z.jpg"), Some(utc("2023-11-08T10:30:00Z")));
+        assert!(FrameNaming::default().expected().contains("YYYYMMDDTHHMMSS"));
+        assert!(n("%Y%m%d_%H%M%S", -330).expected().contains("UTC-05:30"), "{}", n("%Y%m%d_%H%M%S", -330).expected());
+        // Patterns that cannot carry a frame's time are refused, saying why.
+        for bad in ["%H%M%S", "%Y%m%d", "", "%Q"] {
+            assert!(FrameNaming::new(Some(bad.into()), 0).is_err(), "{bad:?} accepted");
+        }
     }
 
     #[test]

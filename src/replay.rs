@@ -37,7 +37,7 @@ use std::path::{Path, PathBuf};
 
 use chrono::{DateTime, Utc};
 
-use crate::io::{CsvTable, InputError, fmt_time, list_frames};
+use crate::io::{CsvTable, InputError, fmt_time};
 use crate::nowcast::{Counters, Nowcaster, Rejection};
 use crate::output_set::{OutputSet, OutputSetError};
 pub use crate::records::{FORECAST_HEADER, MOTION_HEADER, forecast_rows, motion_row};
@@ -146,7 +146,7 @@ pub fn replay(opts: &ReplayOptions) -> Result<ReplaySummary, ReplayError> {
 /// # Errors
 /// As [`replay`].
 pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet), ReplayError> {
-    let (frames, _) = frames_of(&opts.frames)?;
+    let (frames, _) = frames_of(&opts.frames, &crate::config::frame_naming_of(&opts.site)?)?;
     let bar = crate::io::progress_bar(frames.len() as u64, opts.progress, "replaying");
     let r = replay_staged_with(opts, &bar);
     bar.finish_and_clear();
@@ -160,13 +160,14 @@ pub fn replay_staged(opts: &ReplayOptions) -> Result<(ReplaySummary, OutputSet),
 /// As [`replay`].
 pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) -> Result<(ReplaySummary, OutputSet), ReplayError> {
     let wall = std::time::Instant::now();
-    let (frames, untimed) = frames_of(&opts.frames)?;
+    let naming = crate::config::frame_naming_of(&opts.site)?;
+    let (frames, untimed) = frames_of(&opts.frames, &naming)?;
     let span = Some((frames[0].time, frames[frames.len() - 1].time));
     let mut nowcaster = prepare(opts, span)?;
     let intake = nowcaster.intake_options();
     // The second camera's frames (`[second_camera] frames`), decoded whole when paired.
     let second: Vec<crate::io::FrameRef> = match nowcaster.site().second_camera.as_ref().and_then(|s| s.frames.clone()) {
-        Some(dir) => frames_of(&dir)?.0,
+        Some(dir) => frames_of(&dir, &naming)?.0,
         None => vec![],
     };
     let mut set = OutputSet::begin(&opts.out, "nephocast replay")?;
@@ -244,10 +245,10 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
 ///
 /// # Errors
 /// An unreadable folder, or one without timed frames.
-pub fn frames_of(dir: &Path) -> Result<(Vec<crate::io::FrameRef>, usize), ReplayError> {
-    let (frames, untimed) = list_frames(dir)?;
+pub fn frames_of(dir: &Path, naming: &crate::io::FrameNaming) -> Result<(Vec<crate::io::FrameRef>, usize), ReplayError> {
+    let (frames, untimed) = crate::io::list_frames_named(dir, naming)?;
     if frames.is_empty() {
-        return Err(InputError::Other { file: dir.to_path_buf(), message: format!("no frames: expected image files named {}", crate::io::FRAME_NAME_PATTERN) }.into());
+        return Err(InputError::Other { file: dir.to_path_buf(), message: format!("no frames: expected image files named {}", naming.expected()) }.into());
     }
     Ok((frames, untimed))
 }

@@ -143,6 +143,58 @@ fn replay_counts_bad_frames_and_keeps_going() {
     assert_eq!(fc.lines().count(), 1 + 6 * 21 * 5);
 }
 
+/// Frames named in a camera's own convention (`[camera] frame_time_format`, `frame_time_zone`):
+/// local standard time two hours east of UTC, dashes, a prefix with digits. The replay reads the
+/// same times and writes the same forecasts as with the project's own names; a name the pattern does
+/// not match is counted as untimed, and a pattern that cannot carry a time is refused naming the field.
+#[test]
+fn frames_named_in_the_camera_s_own_convention() {
+    let d = tempfile::tempdir().unwrap();
+    let ours = d.path().join("ours");
+    demo_frames(&ours, 4);
+    let theirs = d.path().join("theirs");
+    std::fs::create_dir_all(&theirs).unwrap();
+    for e in std::fs::read_dir(&ours).unwrap().flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        let t = nephocast::io::time_from_frame_name(&name).unwrap() + chrono::Duration::hours(2);
+        std::fs::copy(e.path(), theirs.join(format!("cam07_{}.jpg", t.format("%Y-%m-%d_%H-%M-%S")))).unwrap();
+    }
+    std::fs::write(theirs.join("cam07_latest.jpg"), b"x").unwrap();
+    let site_text = std::fs::read_to_string(demo().join("site.toml")).unwrap().replace(
+        "calibration = \"calibration/larkspur-sky1.toml\"",
+        &format!("calibration = {:?}\nframe_time_format = \"%Y-%m-%d_%H-%M-%S\"\nframe_time_zone = \"+02:00\"", demo().join("calibration/larkspur-sky1.toml").to_str().unwrap()),
+    );
+    let site = d.path().join("site.toml");
+    std::fs::write(&site, &site_text).unwrap();
+    let run = |site: &std::path::Path, frames: &std::path::Path, out: &str| {
+        let o = bin()
+            .args(["replay", "--site", site.to_str().unwrap(), "--frames", frames.to_str().unwrap(), "--out", d.path().join(out).to_str().unwrap(), "--quiet"])
+            .output()
+            .unwrap();
+        (o.status.code(), String::from_utf8_lossy(&o.stdout).into_owned() + &String::from_utf8_lossy(&o.stderr))
+    };
+    let (code, text) = run(&demo().join("site.toml"), &ours, "a");
+    assert_eq!(code, Some(0), "{text}");
+    let (code, text) = run(&site, &theirs, "b");
+    assert_eq!(code, Some(0), "{text}");
+    assert!(text.contains("4 found, 4 used") && text.contains("1 files without a time"), "{text}");
+    let read = |o: &str| std::fs::read_to_string(d.path().join(o).join("forecasts.csv")).unwrap();
+    assert_eq!(read("a"), read("b"));
+    // Our own names do not match that pattern: no frames, and the message says what was expected.
+    let (code, text) = run(&site, &ours, "c");
+    assert_eq!(code, Some(2), "{text}");
+    assert!(text.contains("%Y-%m-%d_%H-%M-%S") && text.contains("UTC+02:00"), "{text}");
+    // A pattern without the time of day, or a zone with daylight saving time, is refused.
+    for (bad, field) in [("frame_time_format = \"%Y-%m-%d\"", "camera.frame_time_format"), ("frame_time_zone = \"Europe/Madrid\"", "camera.frame_time_zone")] {
+        let key = bad.split(' ').next().unwrap();
+        let text2: String = site_text.lines().map(|l| if l.starts_with(key) { bad.to_string() } else { l.to_string() }).collect::<Vec<_>>().join("\n");
+        std::fs::write(&site, text2).unwrap();
+        let (code, text) = run(&site, &theirs, "d");
+        assert_eq!(code, Some(2), "{text}");
+        assert!(text.contains(field), "{field}: {text}");
+    }
+}
+
 /// Bad inputs stop a replay with exit status 2, a message naming the file, and no output files.
 #[test]
 fn replay_refuses_bad_inputs_without_partial_outputs() {

@@ -11,7 +11,7 @@ use crate::sun::position;
 pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     // The site file only: the calibration it names may not exist yet.
     let site = crate::config::Site::load_without_camera(&a.site)?;
-    let (frames, chroma_dc) = load_calibration_frames(&a.frames)?;
+    let (frames, chroma_dc) = load_calibration_frames(&a.frames, &site.camera.frame_naming())?;
     let clip = match a.clip_test.as_str() {
         "channels" => crate::calibrate::ClipTest::Channels,
         "luma" => crate::calibrate::ClipTest::Luma,
@@ -117,13 +117,13 @@ fn remove_superseded(dir: &std::path::Path, name: &str, keep: &[String]) {
 /// ([`crate::calibrate::chroma_dc_quantizer`]; `None` without any JPEG chroma table).
 type CalibrationFrames = (Vec<(chrono::DateTime<chrono::Utc>, image::RgbImage)>, Option<u16>);
 
-fn load_calibration_frames(dirs: &[PathBuf]) -> Result<CalibrationFrames> {
+fn load_calibration_frames(dirs: &[PathBuf], naming: &crate::io::FrameNaming) -> Result<CalibrationFrames> {
     let mut frames = vec![];
     let mut chroma_dc: Option<u16> = None;
     let mut untimed = 0;
     let mut held_bytes = 0u64;
     for dir in dirs {
-        let (list, u) = crate::io::list_frames(dir)?;
+        let (list, u) = crate::io::list_frames_named(dir, naming)?;
         untimed += u;
         for f in list {
             if frames.len() >= MAX_CALIBRATE_FRAMES {
@@ -145,7 +145,7 @@ fn load_calibration_frames(dirs: &[PathBuf]) -> Result<CalibrationFrames> {
         }
     }
     if frames.is_empty() {
-        bail!("no frames with a UTC time in their name in {:?} ({untimed} files without one; expected {})", dirs, crate::io::FRAME_NAME_PATTERN);
+        bail!("no frames with a time in their name in {:?} ({untimed} files without one; expected {})", dirs, naming.expected());
     }
     Ok((frames, chroma_dc))
 }

@@ -30,8 +30,9 @@ pub(super) fn cmd_segment(a: SegmentArgs) -> Result<()> {
         let img = crate::intake::read_frame(path, &crate::intake::IntakeOptions::default())?;
         let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
         let (cam, sun) = if let Some(s) = &site {
-            let t = fixed_time.or_else(|| crate::io::time_from_frame_name(&name)).ok_or_else(|| {
-                anyhow::anyhow!("{}: no time: give --time or name the file with its UTC time ({})", path.display(), crate::io::FRAME_NAME_PATTERN)
+            let naming = s.file.camera.frame_naming();
+            let t = fixed_time.or_else(|| naming.time_of(&name)).ok_or_else(|| {
+                anyhow::anyhow!("{}: no time: give --time or name the file with its time ({})", path.display(), naming.expected())
             })?;
             let sp = position(&t, &s.observer())?;
             let d = sp.direction_enu();

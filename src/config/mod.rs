@@ -244,6 +244,41 @@ pub struct CameraSection {
     /// Camera position relative to the site origin, (east, north, up) \[m\].
     #[serde(default)]
     pub position_m: [f64; 3],
+    /// How the frames' names carry their time, when not as `…YYYYMMDDTHHMMSS[.fff]Z…`: a chrono
+    /// `strftime` pattern found anywhere in the name, e.g. `"%Y-%m-%d_%H-%M-%S"`, `"%Y%m%d%H%M"`,
+    /// `"%s"` (Unix seconds) or with `%z` when the names carry their offset.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub frame_time_format: Option<String>,
+    /// The zone of the names' times when the pattern carries no offset: `"UTC"` (the default) or a
+    /// fixed offset such as `"+01:00"` (a camera that keeps local standard time). A zone with
+    /// daylight saving time is refused: its names repeat an hour each autumn.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub frame_time_zone: Option<String>,
+}
+
+impl CameraSection {
+    /// How the frames' names carry their time, checked.
+    ///
+    /// # Errors
+    /// The field that is wrong and what was expected.
+    pub(crate) fn frame_naming_checked(&self, c: &Check<'_>) -> Result<crate::io::FrameNaming, ConfigError> {
+        let offset_min = match &self.frame_time_zone {
+            None => 0,
+            Some(z) => {
+                let expected = "\"UTC\" or a fixed offset such as \"+01:00\" (names in a zone with daylight saving time repeat an hour each autumn: have the camera name its frames in UTC or standard time)";
+                let tz = parse_time_zone(z).map_err(|_| c.invalid("camera.frame_time_zone", expected, format!("{z:?}")))?;
+                tz.fixed_offset_min.ok_or_else(|| c.invalid("camera.frame_time_zone", expected, format!("{z:?}")))?
+            }
+        };
+        crate::io::FrameNaming::new(self.frame_time_format.clone(), offset_min)
+            .map_err(|expected| c.invalid("camera.frame_time_format", expected, format!("{:?}", self.frame_time_format.as_deref().unwrap_or(""))))
+    }
+
+    /// How the frames' names carry their time (the default naming when the fields do not check:
+    /// a file that was not validated).
+    pub fn frame_naming(&self) -> crate::io::FrameNaming {
+        self.frame_naming_checked(&Check { file: Path::new("site.toml") }).unwrap_or_default()
+    }
 }
 
 /// `[forecast]`.
@@ -312,6 +347,16 @@ pub struct SecondCamera {
     pub every_s: f64,
     /// Whether the map takes cells from this camera ([`crate::multicam`]).
     pub map_cells: bool,
+}
+
+/// How the frames' names carry their time, from a site file's `[camera]` (without loading its
+/// calibration).
+///
+/// # Errors
+/// An unreadable or malformed site file, or a bad `frame_time_format` / `frame_time_zone`.
+pub fn frame_naming_of(site: &Path) -> Result<crate::io::FrameNaming, ConfigError> {
+    let file: SiteFile = read_toml(site)?;
+    file.camera.frame_naming_checked(&Check { file: site })
 }
 
 impl Site {
@@ -440,6 +485,7 @@ impl SiteFile {
         for (i, v) in self.camera.position_m.iter().enumerate() {
             c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
         }
+        self.camera.frame_naming_checked(&c)?;
         self.validate_clouds(&c)?;
         self.validate_plant(&c)?;
         let fc = &self.forecast;

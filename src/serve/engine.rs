@@ -11,7 +11,7 @@ use tokio::sync::broadcast;
 use super::shared::Shared;
 use super::watch::Watcher;
 use super::{LiveOptions, db, modbus, modbus_feed, notify, ops};
-use crate::io::{fmt_time, list_frames};
+use crate::io::fmt_time;
 use crate::nowcast::{Frame, Nowcast, Nowcaster, Rejection};
 use crate::records::nowcast_json;
 
@@ -39,6 +39,8 @@ pub(super) struct LiveEngine {
     pruned_at: Option<std::time::Instant>,
     /// Whether the configured base's rejection by shadow timing has been logged.
     base_rejection_logged: bool,
+    /// How the frames' names carry their time (`[camera] frame_time_format`).
+    naming: crate::io::FrameNaming,
 }
 
 /// What a frame's step gave, for the reports after it.
@@ -62,6 +64,7 @@ impl LiveEngine {
     ) -> LiveEngine {
         let intake = nc.intake_options();
         let time_zone = serde_json::to_value(nc.site().file.site.time_zone()).unwrap_or_default();
+        let naming = nc.site().file.camera.frame_naming();
         LiveEngine {
             opts,
             nc,
@@ -80,6 +83,7 @@ impl LiveEngine {
             untimed_in_folder: 0,
             pruned_at: None,
             base_rejection_logged: false,
+            naming,
         }
     }
 
@@ -98,7 +102,7 @@ impl LiveEngine {
             if let Some(f) = self.feed.as_mut() {
                 feed_step(f, &mut self.nc, &self.shared, &mut self.tuning_reset_done, &self.opts.health);
             }
-            let Ok((frames, untimed)) = list_frames(&self.opts.incoming) else { continue };
+            let Ok((frames, untimed)) = crate::io::list_frames_named(&self.opts.incoming, &self.naming) else { continue };
             self.note_untimed(untimed);
             let poll = self.watch.poll(&frames);
             for note in &poll.notes {
@@ -162,9 +166,9 @@ impl LiveEngine {
             return;
         }
         self.untimed_in_folder = untimed;
-        let new: Vec<String> = ops::untimed_files(&self.opts.incoming).into_iter().filter(|n| self.untimed_seen.insert(n.clone())).collect();
+        let new: Vec<String> = ops::untimed_files(&self.opts.incoming, &self.naming).into_iter().filter(|n| self.untimed_seen.insert(n.clone())).collect();
         for n in &new {
-            self.log(&[("event", "untimed".into()), ("file", n.clone()), ("reason", format!("no time in the name (expected {})", crate::io::FRAME_NAME_PATTERN))]);
+            self.log(&[("event", "untimed".into()), ("file", n.clone()), ("reason", format!("no time in the name (expected {})", self.naming.expected()))]);
         }
         if !new.is_empty()
             && let Ok(mut s) = self.shared.lock()
@@ -218,7 +222,7 @@ impl LiveEngine {
     fn offer_second_frame(&mut self, t: &DateTime<Utc>) {
         let Some(dir) = self.nc.site().second_camera.as_ref().and_then(|s| s.incoming.clone()) else { return };
         // Written by rename, as the first camera's: a listed frame is whole.
-        let Ok((ready, _)) = list_frames(&dir) else { return };
+        let Ok((ready, _)) = crate::io::list_frames_named(&dir, &self.naming) else { return };
         let slack_ms = (crate::config::SECOND_FRAME_SLACK_S * 1000.0) as i64;
         let near = ready.iter().filter(|f| (f.time - *t).num_milliseconds().abs() <= slack_ms).min_by_key(|f| (f.time - *t).num_milliseconds().abs()).cloned();
         if let Some(f) = &near {

@@ -341,14 +341,14 @@ pub fn check_feed(path: &Path) -> Result<String, String> {
 }
 
 /// Frame-like files (`.jpg`, `.jpeg`, `.png`, not hidden) in a folder whose name holds no time.
-pub fn untimed_files(dir: &Path) -> Vec<String> {
+pub fn untimed_files(dir: &Path, naming: &crate::io::FrameNaming) -> Vec<String> {
     let Ok(rd) = std::fs::read_dir(dir) else { return vec![] };
     let mut v: Vec<String> = rd
         .flatten()
         .map(|e| e.file_name().to_string_lossy().into_owned())
         .filter(|n| {
             let l = n.to_ascii_lowercase();
-            !n.starts_with('.') && (l.ends_with(".jpg") || l.ends_with(".jpeg") || l.ends_with(".png")) && crate::io::time_from_frame_name(n).is_none()
+            !n.starts_with('.') && (l.ends_with(".jpg") || l.ends_with(".jpeg") || l.ends_with(".png")) && naming.time_of(n).is_none()
         })
         .collect();
     v.sort();

@@ -196,7 +196,7 @@ pub fn larkspur_site(cbh_m: f64, camera_file: &str) -> SiteFile {
             linke_turbidity: 3.0,
             timezone: Some("Europe/Madrid".into()),
         },
-        camera: CameraSection { calibration: PathBuf::from(format!("calibration/{camera_file}.toml")), position_m: [0.0, 0.0, 3.0] },
+        camera: CameraSection { calibration: PathBuf::from(format!("calibration/{camera_file}.toml")), position_m: [0.0, 0.0, 3.0], frame_time_format: None, frame_time_zone: None },
         clouds: CloudSection { base_height_m: Some(cbh_m), ..Default::default() },
         plant: PlantSection {
             point_spacing_m: 25.0,
