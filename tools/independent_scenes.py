@@ -564,11 +564,12 @@ def run_camera(a, camera, sc, yard, log, res):
 
     # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
     frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
-    if a.jpeg_quality or a.mirror or any(PAD) or SCALE != 1.0:
+    if a.jpeg_quality or a.mirror or any(PAD) or SCALE != 1.0 or a.stamp:
         q = a.jpeg_quality or 95
         for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
             frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + ("-mirrored" if a.mirror else "")
-                                                                  + ("-pad" if any(PAD) else "") + (f"-x{SCALE:g}" if SCALE != 1.0 else "")), a.mirror, PAD, SCALE)
+                                                                  + ("-pad" if any(PAD) else "") + (f"-x{SCALE:g}" if SCALE != 1.0 else "") + (f"-stamp-{a.stamp}" if a.stamp else "")),
+                                    a.mirror, PAD, SCALE, a.stamp)
 
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
@@ -586,7 +587,8 @@ def run_camera(a, camera, sc, yard, log, res):
         frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"))
         cal_info["clear_subset"] = a.clear_subset
         cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.endswith(".jpg")])
-        rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", frames, "--out", cal], log=log)
+        rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", frames, "--out", cal]
+                           + (["--obstruction-mask"] if a.obstruction_mask else []), log=log)
         cal_info.update(exit_code=rc, stdout=out, stderr=err,
                         warnings=[ln.strip() for ln in (out + "\n" + err).splitlines() if "warning" in ln.lower()])
     else:
@@ -816,11 +818,13 @@ def clear_frames_subset(frames, subset, out):
     return out
 
 
-def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0):
+def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0, stamp=None):
     """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
     to compress harder (or softer) than the scenes' own; with `mirror`, also flipped left-right;
     with `pad` (left, top, right, bottom), black borders added (negative: rows or columns cut); with
-    `scale`, resized first (OpenCV, area averaging down, bicubic up)."""
+    `scale`, resized first (OpenCV, area averaging down, bicubic up); with `stamp` ("corner" or
+    "inside"), the frame's time burnt in as white text, in the top-left corner outside the image
+    circle or inside the circle near its bottom rim, as many cameras do."""
     import cv2
     os.makedirs(out, exist_ok=True)
     for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
@@ -830,6 +834,11 @@ def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0):
         if scale != 1.0:
             img = cv2.resize(img, (round(img.shape[1] * scale), round(img.shape[0] * scale)),
                              interpolation=cv2.INTER_AREA if scale < 1 else cv2.INTER_CUBIC)
+        if stamp:
+            text = f"{name[0:4]}-{name[4:6]}-{name[6:8]} {name[9:11]}:{name[11:13]}:{name[13:15]}"
+            hh, ww = img.shape[:2]
+            org = (5, 20) if stamp == "corner" else (int(0.29 * ww), int(0.92 * hh)) if stamp == "inside" else (int(0.29 * ww), int(0.10 * hh))
+            cv2.putText(img, text, org, cv2.FONT_HERSHEY_SIMPLEX, 0.5 * ww / 512, (255, 255, 255), 2)
         if any(pad):
             l, t, r, b = pad
             img = img[max(0, -t):img.shape[0] - max(0, -b), max(0, -l):img.shape[1] - max(0, -r)]
@@ -884,6 +893,11 @@ def main():
     ap.add_argument("--scale", type=float, default=1.0,
                     help="resize every frame by this factor (a camera of higher or lower resolution; 2: 1024²), "
                          "re-encoded at --jpeg-quality or 95, the true pixels moved to match")
+    ap.add_argument("--stamp", choices=["corner", "inside", "inside-top"],
+                    help="burn each frame's time into it as white text (top-left corner outside the image circle, or inside "
+                         "the circle near its bottom rim), re-encoded at --jpeg-quality or 95")
+    ap.add_argument("--obstruction-mask", action="store_true",
+                    help="run `calibrate` with --obstruction-mask (the README's workflow), so the replays use its mask")
     ap.add_argument("--frame-every", type=int, default=1,
                     help="replay only every N-th frame of the cloudy scene (a camera taking frames N times less often)")
     ap.add_argument("--measurement-minutes", type=int, default=1,
@@ -934,7 +948,7 @@ def main():
     print(text)
     if a.json:
         with open(a.json, "w") as f:
-            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, scale=a.scale, bin=a.bin, scenes=a.scenes, yardsticks=yard,
+            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, scale=a.scale, stamp=a.stamp, bin=a.bin, scenes=a.scenes, yardsticks=yard,
                            commands=log, cameras=results, summary_markdown=text), f, indent=1, default=str)
     return 0
 

@@ -138,10 +138,20 @@ pub fn refine_image_circle(img: &image::RgbImage, rough: ImageCircle) -> Option<
         }
     }
     let fit = |pts: &[(f64, f64)]| if pts.len() < 60 { None } else { kasa_circle(pts) };
-    let first = fit(&pts)?;
+    let mut first = fit(&pts)?;
+    // Lit structure beyond the rim (a time stamp or logo in the frame's corner) gives edge points
+    // far off the circle on a few rays, which would pull the first fit; then the first fit is the
+    // outlier-resistant one.
+    if pts.iter().any(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() > GROSS_EDGE_OUTLIER_PX) {
+        first = robust_circle(&pts, 60)?;
+    }
     let kept: Vec<(f64, f64)> = pts.into_iter().filter(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() <= 2.0).collect();
     fit(&kept)
 }
+
+/// An edge point this far off the first circle \[px\] is not the lens edge (see
+/// [`refine_image_circle`]).
+const GROSS_EDGE_OUTLIER_PX: f64 = 10.0;
 
 /// The least-squares circle through points by the linear method of Kåsa (1976):
 /// `x² + y² + D x + E y + F = 0`. `None` when the system is degenerate.

@@ -73,7 +73,7 @@ pub mod clip;
 pub use clip::{ClipTest, chroma_dc_quantizer};
 pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom, sky_edge_circle};
 pub use lean::{GlareLevel, LeanCorrection, LeanModel, correct_glare_lean, glare_levels};
-pub use outputs::{calibration_record, clear_sky_reference, detections_csv, obstruction_mask, residual_plot};
+pub use outputs::{calibration_record, clear_sky_reference, detections_csv, obstruction_mask, overlay_mask, residual_plot};
 
 /// One sun detection paired with the sun's direction.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -341,7 +341,8 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     }
     let circle = median_circle(frames, &day)?;
     let size = first.1.dimensions();
-    let (raw, levels) = sun_detections(frames, &day, observer, circle, options.clip);
+    let ignore = static_bright(frames, &day, circle, options.clip);
+    let (raw, levels) = sun_detections(frames, &day, observer, circle, options.clip, ignore.as_deref());
     let found = raw.len();
     let mut screened = raw.clone();
     screen_bloom(&mut screened);
@@ -522,13 +523,22 @@ fn median_circle(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool]) -> R
 
 /// The sun found in each daytime frame, with its direction and blob area, in time order, and the
 /// nested level sets of its glare (within three times the detection's neighbourhood).
-fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle, clip: ClipTest) -> (Vec<Detection>, Vec<Vec<GlareLevel>>) {
+fn sun_detections(
+    frames: &[(DateTime<Utc>, image::RgbImage)],
+    day: &[bool],
+    observer: &Observer,
+    circle: ImageCircle,
+    clip: ClipTest,
+    ignore: Option<&[bool]>,
+) -> (Vec<Detection>, Vec<Vec<GlareLevel>>) {
     let mut dets = vec![];
     for ((t, img), is_day) in frames.iter().zip(day) {
         let Ok(sp) = position(t, observer) else { continue };
         if !is_day {
             continue;
         }
+        let darkened = ignore.and_then(|m| without_static_bright(img, m, clip));
+        let img = darkened.as_ref().unwrap_or(img);
         if let Some((x, y, _)) = detect_sun(img, circle.radius_px, clip) {
             let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px, clip);
             let levels = glare_levels(img, x, y, 0.15 * circle.radius_px, clip);
@@ -537,6 +547,94 @@ fn sun_detections(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], obs
     }
     dets.sort_by_key(|d| d.0.time);
     dets.into_iter().unzip()
+}
+
+/// The share of a third of the day's frames in which a pixel must be bright for it to count as
+/// static (an overlay, not the sun): the sun's glare passes over a pixel within minutes.
+pub const STATIC_BRIGHT_SHARE: f64 = 0.2;
+
+/// How far outside the image circle's rim \[px\] the sun cannot be (the rim's blur).
+const RIM_MARGIN_PX: f64 = 3.0;
+
+/// Pixels the sun finder must not take for the sun's glare (at least the lowest glare level,
+/// [`lean::LEVELS`]\[0\], by `clip`): bright beyond the image circle (a time stamp or a logo
+/// burnt into the frame's corner), or bright in at least [`STATIC_BRIGHT_SHARE`] of the daytime
+/// frames of each third of their time span (an overlay inside the circle, a lamp: the sun's glare
+/// passes over a pixel within minutes), widened by 2 px (JPEG rings around sharp text). `None`
+/// when no pixel is, so frames without such structure are read as they are.
+fn static_bright(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], circle: ImageCircle, clip: ClipTest) -> Option<Vec<bool>> {
+    let lit: Vec<&image::RgbImage> = frames.iter().zip(day).filter(|(_, d)| **d).map(|((_, img), _)| img).collect();
+    let first = lit.first()?;
+    let (w, h) = first.dimensions();
+    if lit.iter().any(|img| img.dimensions() != (w, h)) {
+        return None;
+    }
+    let n = (w * h) as usize;
+    let low = lean::LEVELS[0];
+    let rim2 = (circle.radius_px + RIM_MARGIN_PX).powi(2);
+    let outside = |i: usize| ((i % w as usize) as f64 - circle.cx_px).powi(2) + ((i / w as usize) as f64 - circle.cy_px).powi(2) > rim2;
+    // Bright counts per third of the frames (in time order, as given).
+    let mut counts = vec![[0u16; 3]; n];
+    let mut sizes = [0usize; 3];
+    let mut seed = vec![false; n];
+    for (k, img) in lit.iter().enumerate() {
+        let third = (3 * k / lit.len()).min(2);
+        sizes[third] += 1;
+        for (i, p) in img.pixels().enumerate() {
+            if clip.value(p.0) >= low {
+                counts[i][third] = counts[i][third].saturating_add(1);
+                if outside(i) {
+                    seed[i] = true;
+                }
+            }
+        }
+    }
+    if sizes.contains(&0) {
+        return None;
+    }
+    for (i, c) in counts.iter().enumerate() {
+        if (0..3).all(|t| c[t] as f64 >= STATIC_BRIGHT_SHARE * sizes[t] as f64) {
+            seed[i] = true;
+        }
+    }
+    if !seed.iter().any(|&b| b) {
+        return None;
+    }
+    // Widen by 2 px.
+    let (wi, hi) = (w as i64, h as i64);
+    let mut mask = vec![false; n];
+    for (i, _) in seed.iter().enumerate().filter(|(_, b)| **b) {
+        let (x, y) = ((i % w as usize) as i64, (i / w as usize) as i64);
+        for dy in -2..=2 {
+            for dx in -2..=2 {
+                let (xx, yy) = (x + dx, y + dy);
+                if xx >= 0 && yy >= 0 && xx < wi && yy < hi {
+                    mask[(yy * wi + xx) as usize] = true;
+                }
+            }
+        }
+    }
+    Some(mask)
+}
+
+/// The frame with the bright pixels of `ignore` darkened (black), or `None` when it has none
+/// there.
+fn without_static_bright(img: &image::RgbImage, ignore: &[bool], clip: ClipTest) -> Option<image::RgbImage> {
+    if ignore.len() != (img.width() * img.height()) as usize {
+        return None;
+    }
+    let low = lean::LEVELS[0];
+    let hit = |(i, p): (usize, &image::Rgb<u8>)| ignore[i] && clip.value(p.0) >= low;
+    if !img.pixels().enumerate().any(hit) {
+        return None;
+    }
+    let mut out = img.clone();
+    for (i, p) in out.pixels_mut().enumerate() {
+        if ignore[i] && clip.value(p.0) >= low {
+            *p = image::Rgb([0, 0, 0]);
+        }
+    }
+    Some(out)
 }
 
 /// Fit every lens family asked for (all by default) and score each by its held-out error. Each

@@ -13,13 +13,16 @@ pub fn clear_sky_reference(frames: &[(DateTime<Utc>, image::RgbImage)], fit: &Fi
     let cam = &fit.camera;
     let mask = cam.sky_mask(std::f64::consts::FRAC_PI_2, None);
     let (w, h) = (cam.width_px as usize, cam.height_px as usize);
+    // Text or a logo burnt into the frames is not clear sky (see `obstruction_mask`).
+    let day: Vec<&image::RgbImage> = frames.iter().map(|(_, img)| img).filter(|img| img.dimensions() == (cam.width_px, cam.height_px)).collect();
+    let overlay = if day.is_empty() { vec![false; w * h] } else { burnt_in(&day) };
     // Every second pixel in each direction.
     let pixels: Vec<(usize, [f32; 3], f32)> = (0..h)
         .step_by(2)
         .flat_map(|y| (0..w).step_by(2).map(move |x| (x, y)))
         .filter_map(|(x, y)| {
             let i = y * w + x;
-            if !mask.sky[i] {
+            if !mask.sky[i] || overlay[i] {
                 return None;
             }
             let d = direction_enu(mask.zenith_rad[i] as f64, mask.azimuth_rad[i] as f64);
@@ -114,12 +117,16 @@ pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]
     img
 }
 
-/// Obstruction mask from daylight frames: white = open sky; black where a pixel inside the image
-/// circle stays dark (mean level below 50) or unchanged (standard deviation of its level below 1.5)
-/// across the frames — masts, the horizon line, the housing.
+/// Obstruction mask from daylight frames (in time order): white = open sky; black where a pixel
+/// inside the image circle stays dark (mean level below 50) or unchanged (standard deviation of its
+/// level below 1.5) across the frames — masts, the horizon line, the housing — or is white (every
+/// channel at least 236) in at least a fifth of the frames of each third of the day, widened by
+/// 2 px: text or a logo burnt into the frame, whose changing digits and JPEG rings are not
+/// unchanged, while the sun's glare passes over a pixel within minutes.
 pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> image::GrayImage {
     let (w, h) = frames[0].dimensions();
     let n = frames.len() as f64;
+    let overlay = burnt_in(frames);
     let mut out = image::GrayImage::new(w, h);
     for y in 0..h {
         for x in 0..w {
@@ -136,8 +143,65 @@ pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> ima
             }
             let mean = s / n;
             let sd = (ss / n - mean * mean).max(0.0).sqrt();
-            let open = mean >= 50.0 && sd >= 1.5;
+            let open = mean >= 50.0 && sd >= 1.5 && !overlay[(y * w + x) as usize];
             out.put_pixel(x, y, image::Luma([if open { 255 } else { 0 }]));
+        }
+    }
+    out
+}
+
+/// The burnt-in overlay alone (see [`obstruction_mask`]) as an obstruction mask, when any of it
+/// lies inside the image circle: white = open sky. With it, the count of its pixels there.
+pub fn overlay_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> Option<(image::GrayImage, usize)> {
+    let (w, h) = frames.first()?.dimensions();
+    let overlay = burnt_in(frames);
+    let mut out = image::GrayImage::from_pixel(w, h, image::Luma([255]));
+    let mut inside = 0;
+    for (i, _) in overlay.iter().enumerate().filter(|(_, o)| **o) {
+        let (x, y) = ((i % w as usize) as u32, (i / w as usize) as u32);
+        out.put_pixel(x, y, image::Luma([0]));
+        if ((x as f64 - circle.cx_px).powi(2) + (y as f64 - circle.cy_px).powi(2)).sqrt() <= circle.radius_px {
+            inside += 1;
+        }
+    }
+    (inside > 0).then_some((out, inside))
+}
+
+/// Pixels white (every channel at least 236) in at least a fifth of the frames of each third of
+/// the day, widened by 2 px (see [`obstruction_mask`]).
+fn burnt_in(frames: &[&image::RgbImage]) -> Vec<bool> {
+    let (w, h) = frames[0].dimensions();
+    let n = (w * h) as usize;
+    let mut counts = vec![[0u16; 3]; n];
+    let mut sizes = [0usize; 3];
+    for (k, img) in frames.iter().enumerate() {
+        if img.dimensions() != (w, h) {
+            return vec![false; n];
+        }
+        let third = (3 * k / frames.len()).min(2);
+        sizes[third] += 1;
+        for (i, p) in img.pixels().enumerate() {
+            if p.0.iter().all(|&c| c >= 236) {
+                counts[i][third] = counts[i][third].saturating_add(1);
+            }
+        }
+    }
+    let mut out = vec![false; n];
+    if sizes.contains(&0) {
+        return out;
+    }
+    let (wi, hi) = (w as i64, h as i64);
+    for (i, c) in counts.iter().enumerate() {
+        if (0..3).all(|t| c[t] as f64 >= 0.2 * sizes[t] as f64) {
+            let (x, y) = ((i % w as usize) as i64, (i / w as usize) as i64);
+            for dy in -2..=2 {
+                for dx in -2..=2 {
+                    let (xx, yy) = (x + dx, y + dy);
+                    if xx >= 0 && yy >= 0 && xx < wi && yy < hi {
+                        out[(yy * wi + xx) as usize] = true;
+                    }
+                }
+            }
         }
     }
     out

@@ -38,13 +38,28 @@ pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     cal.validate(&a.out).map_err(|e| crate::calibrate::CalibrationError::Unusable(e.to_string()))?;
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
     crate::io::clean_stale_temps(dir);
+    let day: Vec<&image::RgbImage> = frames
+        .iter()
+        .filter(|(t, _)| position(t, &site.site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
+        .map(|(_, i)| i)
+        .collect();
+    let circle = day.first().copied().and_then(crate::calibrate::fit_image_circle);
+    // Text or a logo burnt into the frames inside the image circle is masked even when no
+    // obstruction mask was asked for: the map would read it as cloud that never moves.
+    let overlay = match circle {
+        Some(c) if !a.obstruction_mask => crate::calibrate::overlay_mask(&day, c),
+        _ => None,
+    };
+    if let Some((m, inside)) = overlay {
+        let mask = crate::io::encode_png_gray(&m);
+        let file = content_named(&name, "mask", "png", &mask);
+        let mp = dir.join(&file);
+        crate::io::write_atomic(&mp, &mask)?;
+        cal.camera.obstruction_mask = Some(PathBuf::from(file));
+        crate::say!("wrote {} (text or a logo burnt into the frames covers {inside} px inside the image circle; masked as an obstruction)", mp.display());
+    }
     if a.obstruction_mask {
-        let circle = crate::calibrate::fit_image_circle(&frames[0].1).ok_or(crate::calibrate::CalibrationError::NoCircle)?;
-        let day: Vec<&image::RgbImage> = frames
-            .iter()
-            .filter(|(t, _)| position(t, &site.site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
-            .map(|(_, i)| i)
-            .collect();
+        let circle = circle.ok_or(crate::calibrate::CalibrationError::NoCircle)?;
         if !day.is_empty() {
             let mask = crate::io::encode_png_gray(&crate::calibrate::obstruction_mask(&day, circle));
             let file = content_named(&name, "mask", "png", &mask);
