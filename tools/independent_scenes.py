@@ -564,12 +564,14 @@ def run_camera(a, camera, sc, yard, log, res):
 
     # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
     frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
-    if a.jpeg_quality or a.mirror or any(PAD) or SCALE != 1.0 or a.stamp:
+    gains = tuple(float(v) for v in a.cloudy_gain.split(",")) if a.cloudy_gain else None
+    if a.jpeg_quality or a.mirror or any(PAD) or SCALE != 1.0 or a.stamp or gains:
         q = a.jpeg_quality or 95
         for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
+            g = gains if d == cloudy else None
             frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + ("-mirrored" if a.mirror else "")
-                                                                  + ("-pad" if any(PAD) else "") + (f"-x{SCALE:g}" if SCALE != 1.0 else "") + (f"-stamp-{a.stamp}" if a.stamp else "")),
-                                    a.mirror, PAD, SCALE, a.stamp)
+                                                                  + ("-pad" if any(PAD) else "") + (f"-x{SCALE:g}" if SCALE != 1.0 else "") + (f"-stamp-{a.stamp}" if a.stamp else "") + ("-gain" if g else "")),
+                                    a.mirror, PAD, SCALE, a.stamp, g)
 
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
@@ -818,19 +820,22 @@ def clear_frames_subset(frames, subset, out):
     return out
 
 
-def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0, stamp=None):
+def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0, stamp=None, gains=None):
     """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
     to compress harder (or softer) than the scenes' own; with `mirror`, also flipped left-right;
     with `pad` (left, top, right, bottom), black borders added (negative: rows or columns cut); with
     `scale`, resized first (OpenCV, area averaging down, bicubic up); with `stamp` ("corner" or
     "inside"), the frame's time burnt in as white text, in the top-left corner outside the image
-    circle or inside the circle near its bottom rim, as many cameras do."""
+    circle or inside the circle near its bottom rim, as many cameras do; with `gains` (R, G, B), each
+    channel multiplied (clipped at 255): another exposure or white balance."""
     import cv2
     os.makedirs(out, exist_ok=True)
     for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
         img = cv2.imread(os.path.join(frames, name), cv2.IMREAD_COLOR)
         if mirror:
             img = cv2.flip(img, 1)
+        if gains:
+            img = np.clip(img.astype(np.float32) * np.array(gains[::-1], np.float32), 0, 255).round().astype(np.uint8)
         if scale != 1.0:
             img = cv2.resize(img, (round(img.shape[1] * scale), round(img.shape[0] * scale)),
                              interpolation=cv2.INTER_AREA if scale < 1 else cv2.INTER_CUBIC)
@@ -898,6 +903,10 @@ def main():
                          "the circle near its bottom rim), re-encoded at --jpeg-quality or 95")
     ap.add_argument("--obstruction-mask", action="store_true",
                     help="run `calibrate` with --obstruction-mask (the README's workflow), so the replays use its mask")
+    ap.add_argument("--cloudy-gain", default="",
+                    help="R,G,B gains applied to the cloudy scene's frames only (the clear day as shipped): a camera whose "
+                         "exposure or white balance differs between the calibration day and the day forecast, e.g. 0.8,0.8,0.8 "
+                         "or 1.08,1,0.93 (warmer); re-encoded at --jpeg-quality or 95")
     ap.add_argument("--frame-every", type=int, default=1,
                     help="replay only every N-th frame of the cloudy scene (a camera taking frames N times less often)")
     ap.add_argument("--measurement-minutes", type=int, default=1,
