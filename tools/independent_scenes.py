@@ -108,6 +108,13 @@ MIRROR = False
 # Set by --pad: (left, top, right, bottom) pixels added to every frame (negative: cropped), so a
 # true pixel (x, y) becomes (x + left, y + top).
 PAD = (0, 0, 0, 0)
+# Set by --scale: every frame resized by this factor first (before PAD), so a true pixel x becomes
+# (x + 0.5) * SCALE - 0.5.
+SCALE = 1.0
+
+
+def scaled(v):
+    return (v + 0.5) * SCALE - 0.5
 
 
 def true_pixels(sc, true_cam, d):
@@ -115,7 +122,7 @@ def true_pixels(sc, true_cam, d):
     tx, ty = sc.project_enu(true_cam, d)
     if MIRROR:
         tx = (true_cam["width"] - 1) - tx
-    return tx + PAD[0], ty + PAD[1]
+    return scaled(tx) + PAD[0], scaled(ty) + PAD[1]
 
 
 def calibration_from_truth(cam):
@@ -124,8 +131,8 @@ def calibration_from_truth(cam):
     c = calibration_from_truth_upright(cam, roll, pitch, yaw)
     if MIRROR:
         c.update(cx_px=float(cam["width"] - 1 - cam["cx"]), mirrored=True)
-    c.update(cx_px=c["cx_px"] + PAD[0], cy_px=c["cy_px"] + PAD[1], width_px=c["width_px"] + PAD[0] + PAD[2],
-             height_px=c["height_px"] + PAD[1] + PAD[3])
+    c.update(cx_px=scaled(c["cx_px"]) + PAD[0], cy_px=scaled(c["cy_px"]) + PAD[1], f_px_per_rad=c["f_px_per_rad"] * SCALE,
+             width_px=round(c["width_px"] * SCALE) + PAD[0] + PAD[2], height_px=round(c["height_px"] * SCALE) + PAD[1] + PAD[3])
     return c
 
 
@@ -315,9 +322,9 @@ def detection_lean(detections_csv, truth_csv, true_cam):
     if MIRROR:
         t["sun_px_x"] = (true_cam["width"] - 1) - t["sun_px_x"]
         cx = (true_cam["width"] - 1) - cx
-    t["sun_px_x"] += PAD[0]
-    t["sun_px_y"] += PAD[1]
-    cx, cy = cx + PAD[0], cy + PAD[1]
+    t["sun_px_x"] = scaled(t["sun_px_x"]) + PAD[0]
+    t["sun_px_y"] = scaled(t["sun_px_y"]) + PAD[1]
+    cx, cy = scaled(cx) + PAD[0], scaled(cy) + PAD[1]
     m = d.merge(t, left_on="time_utc", right_on="time")
     ux, uy = m.sun_px_x - cx, m.sun_px_y - cy
     r = np.hypot(ux, uy)
@@ -557,11 +564,11 @@ def run_camera(a, camera, sc, yard, log, res):
 
     # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
     frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
-    if a.jpeg_quality or a.mirror or any(PAD):
+    if a.jpeg_quality or a.mirror or any(PAD) or SCALE != 1.0:
         q = a.jpeg_quality or 95
         for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
             frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + ("-mirrored" if a.mirror else "")
-                                                                  + ("-pad" if any(PAD) else "")), a.mirror, PAD)
+                                                                  + ("-pad" if any(PAD) else "") + (f"-x{SCALE:g}" if SCALE != 1.0 else "")), a.mirror, PAD, SCALE)
 
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
@@ -572,8 +579,8 @@ def run_camera(a, camera, sc, yard, log, res):
         ph = os.path.join(work, "placeholder.toml")
         with open(ph, "w") as f:
             f.write("# Placeholder: `calibrate` loads the site file, which must name a calibration.\n")
-            f.write(toml_table("camera", placeholder_calibration(site_json["image_width"] + PAD[0] + PAD[2],
-                                                                  site_json["image_height"] + PAD[1] + PAD[3])))
+            f.write(toml_table("camera", placeholder_calibration(round(site_json["image_width"] * SCALE) + PAD[0] + PAD[2],
+                                                                  round(site_json["image_height"] * SCALE) + PAD[1] + PAD[3])))
         cal_site = os.path.join(work, "site-calibrate.toml")
         write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr, a.calibrate_set)
         frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"))
@@ -809,16 +816,20 @@ def clear_frames_subset(frames, subset, out):
     return out
 
 
-def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0)):
+def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0):
     """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
     to compress harder (or softer) than the scenes' own; with `mirror`, also flipped left-right;
-    with `pad` (left, top, right, bottom), black borders added (negative: rows or columns cut)."""
+    with `pad` (left, top, right, bottom), black borders added (negative: rows or columns cut); with
+    `scale`, resized first (OpenCV, area averaging down, bicubic up)."""
     import cv2
     os.makedirs(out, exist_ok=True)
     for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
         img = cv2.imread(os.path.join(frames, name), cv2.IMREAD_COLOR)
         if mirror:
             img = cv2.flip(img, 1)
+        if scale != 1.0:
+            img = cv2.resize(img, (round(img.shape[1] * scale), round(img.shape[0] * scale)),
+                             interpolation=cv2.INTER_AREA if scale < 1 else cv2.INTER_CUBIC)
         if any(pad):
             l, t, r, b = pad
             img = img[max(0, -t):img.shape[0] - max(0, -b), max(0, -l):img.shape[1] - max(0, -r)]
@@ -870,6 +881,9 @@ def main():
                     help="LEFT,TOP,RIGHT,BOTTOM pixels of black border added to every frame (negative: cut off), e.g. a "
                          "wider sensor (64,0,64,0) or a full-frame fisheye whose image circle is clipped (0,-40,0,-40); "
                          "re-encoded at --jpeg-quality or 95, the true pixels moved to match")
+    ap.add_argument("--scale", type=float, default=1.0,
+                    help="resize every frame by this factor (a camera of higher or lower resolution; 2: 1024²), "
+                         "re-encoded at --jpeg-quality or 95, the true pixels moved to match")
     ap.add_argument("--frame-every", type=int, default=1,
                     help="replay only every N-th frame of the cloudy scene (a camera taking frames N times less often)")
     ap.add_argument("--measurement-minutes", type=int, default=1,
@@ -883,8 +897,9 @@ def main():
                     help="calibrate from part of the clear day only (robustness check; the clear-day replay keeps every frame)")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
-    global MIRROR, PAD
+    global MIRROR, PAD, SCALE
     MIRROR = a.mirror
+    SCALE = a.scale
     PAD = tuple(int(v) for v in a.pad.split(","))
     if len(PAD) != 4:
         ap.error("--pad takes four integers: LEFT,TOP,RIGHT,BOTTOM")
@@ -919,7 +934,7 @@ def main():
     print(text)
     if a.json:
         with open(a.json, "w") as f:
-            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, bin=a.bin, scenes=a.scenes, yardsticks=yard,
+            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, scale=a.scale, bin=a.bin, scenes=a.scenes, yardsticks=yard,
                            commands=log, cameras=results, summary_markdown=text), f, indent=1, default=str)
     return 0
 
