@@ -73,7 +73,7 @@ pub mod clip;
 pub use clip::{ClipTest, chroma_dc_quantizer};
 pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom, sky_edge_circle};
 pub use lean::{GlareLevel, LeanCorrection, LeanModel, correct_glare_lean, glare_levels};
-pub use outputs::{calibration_record, clear_sky_reference, detections_csv, obstruction_mask, overlay_mask, residual_plot};
+pub use outputs::{LIBRARY_SAMPLES_PER_RADIUS, calibration_record, clear_sky_reference, detections_csv, library_sample_step, obstruction_mask, overlay_mask, residual_plot};
 
 /// One sun detection paired with the sun's direction.
 #[derive(Debug, Clone, Copy, PartialEq)]

@@ -6,20 +6,42 @@ use chrono::{DateTime, Utc};
 use super::{Detection, Fit, ImageCircle, UNCONSTRAINED_BOUND_DEG};
 use crate::sun::{direction_enu, zenith_azimuth_of};
 
+/// The library's samples per image circle radius: the clear-sky library reads every
+/// [`library_sample_step`]-th pixel in each direction, a step of about this share of the radius, so
+/// that a bin holds about as many samples whatever the camera's resolution (a circle of radius
+/// 168–280 px, as 384² and 512² frames have: every second pixel, as before; 1024²: every fourth;
+/// 256²: every pixel).
+pub const LIBRARY_SAMPLES_PER_RADIUS: f64 = 112.0;
+
+/// The pixel step of the clear-sky library's samples for a camera (see
+/// [`LIBRARY_SAMPLES_PER_RADIUS`]). A bin needs 3 unclipped samples in a frame to count in it, so a
+/// step fixed in pixels made the library depend on the resolution: at 1024² a bin mostly clipped
+/// around the sun still held 3 unclipped samples and was learnt from its few darker pixels instead
+/// of being marked clipped.
+pub fn library_sample_step(cam: &crate::camera::Camera) -> usize {
+    let step = (cam.image_circle_radius_px() / LIBRARY_SAMPLES_PER_RADIUS).round();
+    if step.is_finite() { (step as usize).max(1) } else { 1 }
+}
+
 /// The clear-sky reference of this camera from its calibration frames: the R/B library
 /// ([`crate::segment::Reference`]) of the frames whose sun was detected (an unclouded sun), binned
 /// by zenith and sun angle through the fitted camera. A bin needs data from at least 3 frames.
 pub fn clear_sky_reference(frames: &[(DateTime<Utc>, image::RgbImage)], fit: &Fit, dets: &[Detection], params: &crate::segment::SegmentParams) -> crate::segment::Reference {
-    let cam = &fit.camera;
+    clear_sky_reference_of(frames, &fit.camera, dets, params)
+}
+
+/// [`clear_sky_reference`] through a given camera.
+pub fn clear_sky_reference_of(frames: &[(DateTime<Utc>, image::RgbImage)], cam: &crate::camera::Camera, dets: &[Detection], params: &crate::segment::SegmentParams) -> crate::segment::Reference {
     let mask = cam.sky_mask(std::f64::consts::FRAC_PI_2, None);
     let (w, h) = (cam.width_px as usize, cam.height_px as usize);
     // Text or a logo burnt into the frames is not clear sky (see `obstruction_mask`).
     let day: Vec<&image::RgbImage> = frames.iter().map(|(_, img)| img).filter(|img| img.dimensions() == (cam.width_px, cam.height_px)).collect();
     let overlay = if day.is_empty() { vec![false; w * h] } else { burnt_in(&day) };
-    // Every second pixel in each direction.
+    // Every `step`-th pixel in each direction: a step that is a share of the image circle.
+    let step = library_sample_step(cam);
     let pixels: Vec<(usize, [f32; 3], f32)> = (0..h)
-        .step_by(2)
-        .flat_map(|y| (0..w).step_by(2).map(move |x| (x, y)))
+        .step_by(step)
+        .flat_map(|y| (0..w).step_by(step).map(move |x| (x, y)))
         .filter_map(|(x, y)| {
             let i = y * w + x;
             if !mask.sky[i] || overlay[i] {
@@ -230,4 +252,98 @@ pub fn calibration_record(name: &str, fit: &Fit, dets: &[Detection]) -> crate::c
         warnings: fit.warnings.clone(),
     });
     cal
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::camera::{Camera, Orientation, Projection};
+    use crate::segment::{Reference, SegmentParams, lib_index};
+
+    /// The same equisolid camera (rim at 0.95 of the half side) at a square size.
+    fn camera(size_px: u32) -> Camera {
+        let half = size_px as f64 / 2.0;
+        let f = 0.95 * half / Projection::Equisolid.radial(std::f64::consts::FRAC_PI_2);
+        Camera::new(size_px, size_px, half - 0.5, half - 0.5, f, Projection::Equisolid, std::f64::consts::FRAC_PI_2, Orientation { yaw_rad: 0.3, pitch_rad: 0.0, roll_rad: 0.0 })
+    }
+
+    /// A clear sky as a function of direction only (so every resolution sees the same sky): blue
+    /// rising toward the sun into a glare that clips, with a noise (a hash of the direction, so
+    /// independent from pixel to pixel at any resolution) that leaves a few of the glare's pixels
+    /// just under the saturation level, as the JPEG noise of a clipped sky does.
+    fn frame(cam: &Camera, sun: [f64; 3], frame_no: u32) -> image::RgbImage {
+        let mask = cam.sky_mask(std::f64::consts::FRAC_PI_2, None);
+        let w = cam.width_px as usize;
+        image::RgbImage::from_fn(cam.width_px, cam.height_px, |x, y| {
+            let i = y as usize * w + x as usize;
+            if !mask.sky[i] {
+                return image::Rgb([0, 0, 0]);
+            }
+            let d = direction_enu(mask.zenith_rad[i] as f64, mask.azimuth_rad[i] as f64);
+            let gamma_deg = (d[0] * sun[0] + d[1] * sun[1] + d[2] * sun[2]).clamp(-1.0, 1.0).acos().to_degrees();
+            let key = ((d[0] * 1e6) as i64 as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ ((d[1] * 1e6) as i64 as u64).rotate_left(21) ^ u64::from(frame_no) << 40;
+            let u = crate::rng::unit(crate::rng::hash64(key));
+            let b = (190.0 + 140.0 * (-gamma_deg / 15.0).exp()).min(255.0) - 6.0 * u * u * u;
+            image::Rgb([(0.62 * b) as u8, (0.8 * b) as u8, b as u8])
+        })
+    }
+
+    /// The clear-sky library of the same sky seen at 512² and at 1024² (and 256²): as many bins
+    /// marked clipped around the sun, and the bins learnt there as bright. With every second pixel
+    /// read at any resolution, the 1024² library held 4 times the samples per bin, so bins whose
+    /// pixels mostly clip reached the 3 unclipped samples a bin needs and were learnt from their
+    /// darker few: fewer clipped bins and a brighter circumsolar library, which the forecast of a
+    /// camera of higher resolution then carried.
+    #[test]
+    fn the_library_does_not_depend_on_the_resolution() {
+        let params = SegmentParams::default();
+        assert!(params.library_keeps_clipped);
+        let sun_at = |az_deg: f64| direction_enu(50f64.to_radians(), az_deg.to_radians());
+        let library = |size_px: u32| -> Reference {
+            let cam = camera(size_px);
+            let t0 = "2026-06-14T10:00:00Z".parse::<DateTime<Utc>>().unwrap();
+            let (mut frames, mut dets) = (vec![], vec![]);
+            for k in 0..8 {
+                let t = t0 + chrono::Duration::minutes(5 * k);
+                let sun = sun_at(120.0 + 2.0 * k as f64);
+                frames.push((t, frame(&cam, sun, k as u32)));
+                dets.push(Detection::new(t, (0.0, 0.0), sun));
+            }
+            clear_sky_reference_of(&frames, &cam, &dets, &params)
+        };
+        let (lo, one, two) = (library(256), library(512), library(1024));
+        // The circumsolar bins (sun angle 4–30°): marked clipped, and the mean learnt brightness.
+        let glare = |r: &Reference| {
+            let marks: Vec<(usize, Option<f32>)> = (0..45)
+                .flat_map(|zi| (2..15).map(move |gi| lib_index(2.0 * zi as f32 + 1.0, 2.0 * gi as f32 + 1.0)))
+                .map(|b| (b, r.clear_brightness(b)))
+                .collect();
+            marks
+        };
+        let (g1, g2, g0) = (glare(&one), glare(&two), glare(&lo));
+        let (c1, c2, c0) = (one.clipped_bins(), two.clipped_bins(), lo.clipped_bins());
+        // Bins learnt at both resolutions, their brightness.
+        let shared: Vec<(f32, f32)> = g1.iter().zip(&g2).filter_map(|((_, a), (_, b))| Some(((*a)?, (*b)?))).collect();
+        let mean_diff = shared.iter().map(|(a, b)| b - a).sum::<f32>() / shared.len().max(1) as f32;
+        let learnt = |g: &[(usize, Option<f32>)]| g.iter().filter(|(_, v)| v.is_some()).count();
+        eprintln!(
+            "clipped bins 256²/512²/1024²: {c0}/{c1}/{c2}; circumsolar bins learnt {}/{}/{}; 1024² minus 512² brightness in {} shared bins {mean_diff:+.2}",
+            learnt(&g0),
+            learnt(&g1),
+            learnt(&g2),
+            shared.len()
+        );
+        assert!(c1 >= 20, "the sky must clip around the sun for this test to mean anything: {c1} clipped bins");
+        // A bin's 3 unclipped samples out of a few per cent of its pixels are a draw: ±20 % is the
+        // sampling's. With every second pixel read at every size: 36/25/0 clipped bins, 198/209/234
+        // learnt.
+        for (size, c) in [(256, c0), (1024, c2)] {
+            assert!((c as f64 - c1 as f64).abs() <= 0.2 * c1 as f64, "{size}²: {c} clipped bins against {c1} at 512²");
+        }
+        for (size, g) in [(256, &g0), (1024, &g2)] {
+            assert!((learnt(g) as f64 - learnt(&g1) as f64).abs() <= 0.05 * learnt(&g1) as f64, "{size}²: {} circumsolar bins learnt against {} at 512²", learnt(g), learnt(&g1));
+        }
+        assert!(mean_diff.abs() < 1.0, "1024² circumsolar library {mean_diff:+.2} brighter than 512²'s");
+        assert_eq!((library_sample_step(&camera(256)), library_sample_step(&camera(512)), library_sample_step(&camera(1024))), (1, 2, 4));
+    }
 }
