@@ -84,6 +84,10 @@ pub struct ReplaySummary {
     /// Whether shadow timing rejected the configured base (or the ceilometer's series) during the
     /// run ([`crate::cbh::CbhState::prior_rejected`]).
     pub prior_base_rejected: bool,
+    /// Shadow-timing fits that disagreed with the configured base but were held back from judging
+    /// it, their readings not following the map's shadows better than the same readings shifted
+    /// in time ([`crate::cbh::CbhState::fits_held_back`]).
+    pub shadow_fits_held_back: usize,
     /// How the measurements' times were read (`[measurements] time_label`).
     pub time_label: crate::io::TimeLabel,
     /// Output tables written (final paths; overlays not listed).
@@ -235,6 +239,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
         last_cbh,
         map_plane: last_plane_m.map(|h| (h, nowcaster.map_plane_moves())),
         prior_base_rejected: nowcaster.cbh_state().prior_rejected(),
+        shadow_fits_held_back: nowcaster.cbh_state().fits_held_back(),
         time_label: nowcaster.site().file.measurements.time_label,
         outputs,
     };

@@ -24,8 +24,16 @@ use nephocast::replay::{ReplayOptions, replay};
 use nephocast::synth::{Scene, larkspur_network, scene, write_sequence};
 use nephocast::verify::{Evaluation, evaluate};
 
-/// Metrics that do not yet meet their target (none at present).
-const KNOWN_SHORTFALLS: &[&str] = &[];
+/// Metrics that do not yet meet their target.
+///
+/// `default: skill gap`: a fit may override the configured base only once it has shown that the
+/// readings follow the map's shadows better than the same readings shifted in time (the null test
+/// of `cbh::shadow`), which needs a full window (10 minutes of frames). The default run therefore
+/// keeps the wrong prior for the first ~12 of the scene's 30 minutes (before the test: ~4), and
+/// its skill moves toward the wrong prior's: true minus default at 5/10/15 min
+/// [0.025, −0.031, −0.036] (before [0.009, −0.007, −0.021]); the negative gaps are the default
+/// beating the true base, as the wrong prior alone does at 10/15 minutes on this scene.
+const KNOWN_SHORTFALLS: &[&str] = &["default: skill gap"];
 
 /// The scene's true cloud base \[m\].
 const TRUTH_M: f64 = 1300.0;
@@ -37,6 +45,9 @@ struct Run {
     /// Per frame: the map's plane \[m\] (motion.csv) and the QC stage's time \[ms\] (frames.csv;
     /// it builds a new look-up table when the plane has moved).
     plane: Vec<(f64, f64)>,
+    /// Whether shadow timing rejected the configured base, and how many disagreeing fits it held
+    /// back (the replay's summary).
+    rejected: (bool, usize),
 }
 
 impl Run {
@@ -113,6 +124,7 @@ fn run_with(dir: &Path, tag: &str, measurements: &Path, edit_site: impl Fn(&str)
         progress: false,
     };
     let sum = replay(&opts).unwrap();
+    let rejected = (sum.prior_base_rejected, sum.shadow_fits_held_back);
     assert_eq!(sum.counters.rejected.values().sum::<usize>(), 0, "{tag}: frames rejected {:?}", sum.counters.rejected);
     let eval = evaluate(dir, &out).unwrap();
     let mut rdr = csv::Reader::from_path(out.join("motion.csv")).unwrap();
@@ -126,7 +138,7 @@ fn run_with(dir: &Path, tag: &str, measurements: &Path, edit_site: impl Fn(&str)
     let qc_ms: Vec<f64> = frames.records().map(|r| r.unwrap()[qc].parse().unwrap()).collect();
     assert_eq!(qc_ms.len(), rows.len(), "{tag}: every frame used");
     let plane = rows.iter().zip(qc_ms).map(|(r, q)| (r[p].parse().unwrap(), q)).collect();
-    Run { eval, cbh, plane }
+    Run { eval, cbh, plane, rejected }
 }
 
 fn skill(e: &Evaluation, min: u32) -> f64 {
@@ -370,4 +382,42 @@ fn end_stamped_readings_with_their_label_give_the_start_stamped_run() {
     let forecasts = |tag: &str| std::fs::read(d.join(format!("out-{tag}")).join("forecasts.csv")).unwrap();
     assert!(forecasts("label-start") == forecasts("label-end"), "forecasts.csv differs");
     assert_ne!(a.cbh, c.cbh, "read a minute late, the readings gave the same base: the label would not matter");
+}
+
+/// Readings an hour late (a logger on local time, an hour ahead of UTC) must not override a
+/// correctly configured base: the scene's readings taken an hour before the frames (the same
+/// scene started an hour earlier), stamped an hour later. Shadow timing still fits heights from
+/// them, but they do not follow the map's shadows better than the same readings shifted in time,
+/// so the fits are held back and every frame keeps the configured base. Without the test against
+/// shifted readings the fits rejected the true base (kept in 32 of 90 frames). Most of the fits
+/// that disagree come before the window is full (not judged yet, so they cannot override); at
+/// least one must have been judged and held back.
+#[test]
+fn readings_an_hour_late_do_not_override_the_configured_base() {
+    let d = network_scene();
+    let mut spec = scene("cbh-network").unwrap();
+    let start: chrono::DateTime<chrono::Utc> = spec.start_utc.parse().unwrap();
+    spec.start_utc = (start - chrono::Duration::minutes(60)).format("%Y-%m-%dT%H:%M:%SZ").to_string();
+    spec.duration_min = 90.0;
+    spec.pyranometer_network.as_mut().expect("cbh-network has a pyranometer network").sample_s = 60;
+    let text = String::from_utf8(nephocast::synth::measurements_csv(&Scene::new(spec, 3).unwrap())).unwrap();
+    let late: String = text
+        .lines()
+        .map(|l| match l.split_once(',') {
+            Some((t, rest)) if !l.starts_with('#') && t != "time_utc" => {
+                let t: chrono::DateTime<chrono::Utc> = t.parse().unwrap();
+                format!("{},{rest}\n", (t + chrono::Duration::minutes(60)).format("%Y-%m-%dT%H:%M:%SZ"))
+            }
+            _ => format!("{l}\n"),
+        })
+        .collect();
+    let m = tempfile::tempdir().unwrap();
+    let path = m.path().join("late.csv");
+    std::fs::write(&path, late).unwrap();
+    let r = run_with(d, "hour-late", &path, |s| s.to_string());
+    let kept = r.cbh.iter().filter(|c| c.2 == "configured" && c.0 == TRUTH_M).count();
+    eprintln!("cbh-network, readings an hour late: configured base kept in {kept} of {} frames; rejected {}, disagreeing fits held back {}", r.cbh.len(), r.rejected.0, r.rejected.1);
+    assert!(!r.rejected.0, "readings an hour late rejected the configured base");
+    assert!(r.rejected.1 >= 1, "no disagreeing fit was judged and held back: the test against shifted readings was not exercised");
+    assert_eq!(kept, r.cbh.len(), "a frame left the configured base: {:?}", r.cbh.iter().find(|c| c.2 != "configured"));
 }

@@ -393,10 +393,11 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
     return used_base
 
 
-def write_measurements(path, truth_points_csv, pyranometers, end_stamped=False, period_min=1):
+def write_measurements(path, truth_points_csv, pyranometers, end_stamped=False, period_min=1, shift_min=0):
     """`period_min`-minute means (time_utc = start of the period) at the pyranometer points, frame
     period only. `end_stamped` stamps each mean at the end of its period instead (the site file then
-    says so: `[measurements] time_label = "end"`)."""
+    says so: `[measurements] time_label = "end"`). `shift_min` adds that many minutes to every stamp
+    (a logger whose clock is off, e.g. 60: on local time an hour ahead of UTC)."""
     tp = pd.read_csv(truth_points_csv)
     if "in_tail" in tp:
         tp = tp[tp["in_tail"] == 0]
@@ -407,11 +408,12 @@ def write_measurements(path, truth_points_csv, pyranometers, end_stamped=False, 
         s = tp[tp["point_id"] == p["point_id"]].groupby("minute")["ghi_wm2"].mean()
         cols[f"ghi_{p['name']}_wm2"] = s
     df = pd.DataFrame(cols).sort_index()
-    df.index = (df.index + pd.Timedelta(minutes=period_min if end_stamped else 0)).strftime("%Y-%m-%dT%H:%M:%SZ")
+    df.index = (df.index + pd.Timedelta(minutes=(period_min if end_stamped else 0) + shift_min)).strftime("%Y-%m-%dT%H:%M:%SZ")
     df.index.name = "time_utc"
     with open(path, "w") as f:
         f.write(f"# Synthetic pyranometers: {period_min}-minute means of truth_points.csv at frame times; time = "
-                + ("end" if end_stamped else "start") + " of the period\n")
+                + ("end" if end_stamped else "start") + " of the period"
+                + (f", every stamp moved by {shift_min:+d} min (a clock that is off)" if shift_min else "") + "\n")
         df.to_csv(f, float_format="%.1f")
     return len(df)
 
@@ -652,7 +654,7 @@ def run_camera(a, camera, sc, yard, log, res):
     meas = os.path.join(work, "measurements.csv")
     tpc = os.path.join(cloudy, "truth", "truth_points.csv")
     res["measurement_rows"] = 0 if a.no_measurements else (
-        write_measurements(meas, tpc, pyr, a.causal_measurements, a.measurement_minutes) if os.path.exists(tpc) else 0)
+        write_measurements(meas, tpc, pyr, a.causal_measurements, a.measurement_minutes, a.measurement_shift_min) if os.path.exists(tpc) else 0)
     # 5./6. replays
     for key, scene_dir, site, m in (("cloudy", cloudy, site_cloudy, meas if res["measurement_rows"] else None),
                                     ("clear", clear, site_clear, None)):
@@ -911,6 +913,9 @@ def main():
                     help="replay only every N-th frame of the cloudy scene (a camera taking frames N times less often)")
     ap.add_argument("--measurement-minutes", type=int, default=1,
                     help="the synthetic pyranometers' averaging period [min] (default 1; plants often log 5- or 15-minute means)")
+    ap.add_argument("--measurement-shift-min", type=int, default=0,
+                    help="add this many minutes to every measurement time stamp (a logger clock that is off: 60 is "
+                         "a logger on local time an hour ahead of UTC, the readings an hour late)")
     ap.add_argument("--no-measurements", action="store_true",
                     help="replay the cloudy scene without pyranometer readings (a plant without them: the "
                          "engine's documented default transmittances)")
@@ -944,6 +949,7 @@ def main():
     results = []
     text = (f"# nephocast on the independent scenes (camera from `{a.camera_from}`, binary {a.bin}; measurements "
             f"{a.measurement_minutes}-minute means stamped at the {'end' if a.causal_measurements else 'start'} of each period"
+            f"{f', every stamp moved by {a.measurement_shift_min:+d} min' if a.measurement_shift_min else ''}"
             f"{'; NO measurements given to the cloudy replay' if a.no_measurements else ''})\n\n")
     for camera in [c.strip() for c in a.cameras.split(",") if c.strip()]:
         print(f"[{camera}] running ...", file=sys.stderr, flush=True)
@@ -957,7 +963,8 @@ def main():
     print(text)
     if a.json:
         with open(a.json, "w") as f:
-            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, scale=a.scale, stamp=a.stamp, bin=a.bin, scenes=a.scenes, yardsticks=yard,
+            json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, scale=a.scale,
+                           stamp=a.stamp, measurement_shift_min=a.measurement_shift_min, bin=a.bin, scenes=a.scenes, yardsticks=yard,
                            commands=log, cameras=results, summary_markdown=text), f, indent=1, default=str)
     return 0
 

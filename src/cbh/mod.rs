@@ -10,7 +10,7 @@ use chrono::{DateTime, Utc};
 use crate::forecast::TransmittanceMap;
 
 mod shadow;
-pub use shadow::{NoFit, Reading, ShadowFit, ShadowParams, ShadowTiming, readings};
+pub use shadow::{NoFit, NullTest, Reading, ShadowFit, ShadowParams, ShadowTiming, readings};
 
 /// Where a cloud base height came from.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
@@ -232,6 +232,9 @@ pub struct CbhState {
     /// Whether the fits have shown the configured base wrong (then they are combined from there
     /// on: dropping them again at one agreeing fit would throw the base back to the wrong value).
     prior_rejected: bool,
+    /// Fits that disagreed with the configured base but did not show that the readings follow the
+    /// map's shadows ([`ShadowFit::follows_map`]): held back from judging it.
+    held_back: usize,
     /// The estimator, made on the first frame with enough pyranometer columns (in live mode the
     /// measurements may arrive after start).
     shadow: Option<ShadowTiming>,
@@ -292,6 +295,7 @@ impl CbhState {
             shadow_mode: clouds.shadow_timing,
             disagreeing: 0,
             prior_rejected: false,
+            held_back: 0,
             shadow: None,
             last_fit: None,
             last_no_fit: None,
@@ -402,15 +406,33 @@ impl CbhState {
         self.prior_rejected
     }
 
+    /// Shadow-timing fits that disagreed with the configured base (or the ceilometer's series) but
+    /// were held back from judging it, their readings not following the map's shadows better
+    /// than the same readings shifted in time ([`ShadowFit::follows_map`]): the readings'
+    /// clock, time zone or label is the first suspect.
+    pub fn fits_held_back(&self) -> usize {
+        self.held_back
+    }
+
     /// A shadow-timing fit made at `time`, the configured base (or the known layer's) being
     /// `prior_m`: kept as the newest, and judged against that base (with `shadow_timing` unset the
     /// fits join the combination once [`CHECK_MIN_DISAGREEING`] in a row disagree with it on the
-    /// same side, and from then on). `None`: the fit cannot judge the base (it breaks a run of
-    /// disagreeing fits).
+    /// same side, and from then on). `None`, or a fit whose readings do not follow the map's
+    /// shadows ([`ShadowFit::follows_map`]): the fit cannot judge the base (it breaks a run of
+    /// disagreeing fits; one that disagrees is counted in [`CbhState::fits_held_back`]).
     fn take_fit(&mut self, time: DateTime<Utc>, fit: ShadowFit, prior_m: Option<f64>) {
         self.estimates_made += 1;
         let side = prior_m.map_or(0, |p| disagreement(fit.cbh_m, fit.rel_sigma, p));
-        self.disagreeing = if side != 0 && side == self.disagreeing.signum() { self.disagreeing + side } else { side };
+        if side != 0 && !fit.null.judged {
+            // Not judged yet (the window's readings span too few shifts): neither counted nor
+            // breaking the run, so that a window holding one reading fewer now and then (1-minute
+            // readings, 20-s frames: 11 or 12 in a window) does not stop every run.
+        } else if side != 0 && !fit.follows_map() {
+            self.held_back += 1;
+            self.disagreeing = 0;
+        } else {
+            self.disagreeing = if side != 0 && side == self.disagreeing.signum() { self.disagreeing + side } else { side };
+        }
         self.prior_rejected |= self.disagreeing.unsigned_abs() as usize >= CHECK_MIN_DISAGREEING;
         self.last_fit = Some((time, fit));
         self.last_no_fit = None;
@@ -474,6 +496,11 @@ mod tests {
     use super::shadow::r2_cost;
     use super::*;
     use crate::cloudmap::Grid;
+
+    /// A null test the fit passed (its readings follow the map's shadows).
+    fn passed_null() -> NullTest {
+        NullTest { shifts: 9, cost_min: 0.9, within: 0.3, within_min: 0.9, judged: true, passed: true }
+    }
 
     /// A frame without measurements or motion, on a map at `cbh_m` that is also the prior.
     fn plain_frame<'a>(
@@ -573,7 +600,7 @@ mod tests {
         };
         let params = crate::forecast::IrradianceParams::default();
         let frame = |time| plain_frame(time, &map, &params, &site, 800.0);
-        let fit = |cbh_m: f64| ShadowFit { cbh_m, rel_sigma: 0.03, events: 10, frames: 30, cost_min: 0.2, cost_median: 0.8 };
+        let fit = |cbh_m: f64| ShadowFit { cbh_m, rel_sigma: 0.03, events: 10, frames: 30, cost_min: 0.2, cost_median: 0.8, null: passed_null() };
         let run = |mode: Option<bool>, fits: &[f64]| {
             let mut st = CbhState::new(&CloudSection { base_height_m: Some(800.0), shadow_timing: mode, ..Default::default() });
             let mut t = t0;
@@ -600,6 +627,25 @@ mod tests {
         assert_eq!(e[2].source, CbhSource::ShadowTiming);
         assert!((e[2].cbh_m / 1580.0 - 1.0).abs() < 0.02, "{:?}", e[2]);
         assert_eq!(e[3].source, CbhSource::ShadowTiming);
+        // Fits whose readings do not follow the map's shadows better than shifted in time are held
+        // back: counted, never rejecting the base; a fit not yet judged (window too short) neither
+        // counts nor breaks a run.
+        let mut st = CbhState::new(&CloudSection { base_height_m: Some(800.0), ..Default::default() });
+        let failed = NullTest { passed: false, ..passed_null() };
+        let unjudged = NullTest { shifts: 8, judged: false, passed: false, ..passed_null() };
+        let mut t = t0;
+        for null in [failed.clone(), failed.clone(), failed.clone(), failed] {
+            st.take_fit(t, ShadowFit { null, ..fit(1600.0) }, Some(800.0));
+            assert_eq!(st.update(&frame(t)).source, CbhSource::Configured);
+            t += chrono::Duration::seconds(20);
+        }
+        assert_eq!((st.prior_rejected(), st.fits_held_back()), (false, 4));
+        for null in [passed_null(), unjudged.clone(), passed_null(), unjudged, passed_null()] {
+            st.take_fit(t, ShadowFit { null, ..fit(1600.0) }, Some(800.0));
+            t += chrono::Duration::seconds(20);
+        }
+        assert_eq!((st.prior_rejected(), st.fits_held_back()), (true, 4), "three passed fits, two unjudged between them");
+        assert_eq!(st.update(&frame(t)).source, CbhSource::ShadowTiming);
         // Asked for: every fit combined; turned off: none.
         assert_eq!(run(Some(true), &[820.0])[0].source, CbhSource::ShadowTiming);
         assert_eq!(run(Some(false), &[1600.0, 1600.0])[1].source, CbhSource::Configured);
@@ -617,8 +663,9 @@ mod tests {
         assert_eq!(r2_cost(&s), 1.0);
     }
 
-    /// A textured map and readings made at a base 0.7 times the map's: the scan finds it, and
-    /// readings that never change (overcast) give no estimate.
+    /// A textured map and readings made at a base 0.7 times the map's: the scan finds it, and the
+    /// readings follow the map's shadows better than shifted in time (the null test passes; 40
+    /// frames, so that the window is full); readings that never change (overcast) give no estimate.
     #[test]
     fn shadow_timing_recovers_the_factor_on_a_textured_map() {
         use crate::cloudmap::{CloudMap, MapParams};
@@ -626,9 +673,12 @@ mod tests {
         let map_cbh_m = 2000.0;
         let grid = Grid::new(&MapParams { cells: 256, ..Default::default() }, map_cbh_m);
         let n = grid.n;
-        let hash = |i: usize, j: usize| crate::synth::noise::hash64((i as u64) * 7919 + (j as u64) * 104_729) % 100;
-        let class: Vec<u8> = (0..n * n).map(|k| if hash(k % n / 3, k / n / 3) < 40 { Class::Thick as u8 } else { Class::Clear as u8 }).collect();
-        let map = CloudMap { grid, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![], thin_depth: vec![] };
+        let textured = |salt: u64| {
+            let hash = |i: usize, j: usize| crate::synth::noise::hash64((i as u64) * 7919 + (j as u64) * 104_729 + salt) % 100;
+            let class: Vec<u8> = (0..n * n).map(|k| if hash(k % n / 3, k / n / 3) < 40 { Class::Thick as u8 } else { Class::Clear as u8 }).collect();
+            CloudMap { grid, score: vec![0.0; n * n], class, in_view: vec![true; n * n], offset: 0.0, brightness: vec![], thin_depth: vec![] }
+        };
+        let map = textured(0);
         let p = crate::forecast::IrradianceParams::default();
         let tm = TransmittanceMap::new(&map, &p);
         let pos = [[-650.0, 420.0], [560.0, 380.0], [620.0, -480.0], [-700.0, -520.0], [-120.0, 60.0], [200.0, -260.0]];
@@ -637,19 +687,21 @@ mod tests {
         let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
         let mut st = ShadowTiming::new(ShadowParams::default(), pos.len());
         let mut flat = ShadowTiming::new(ShadowParams::default(), pos.len());
-        for frame in 0..30 {
+        // A 10-s reading per sensor, made from `tm` as the truth sees it (each frame sees those of
+        // the last two minutes): the map moves at `v`, the cloud is at 0.7 × the map's height.
+        let reading = |tm: &TransmittanceMap, s: usize, mid: DateTime<Utc>, t: DateTime<Utc>| {
+            let lag = (t - mid).num_seconds() as f64;
+            let inv_f = 1.0 / truth_f;
+            let g = pos[s];
+            let off = crate::forecast::sun_ray_plane_point([0.0, 0.0], map_cbh_m, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], z, a);
+            let (cx, cy) = grid.to_cell([g[0] * inv_f + off[0] + v[0] * lag, g[1] * inv_f + off[1] + v[1] * lag]);
+            let x = tm.box_mean_with(cx, cy, 0.5, p.beams()).unwrap();
+            Reading { sensor: s, mid, kstar: 0.2 + 0.8 * x, zenith_rad: z, azimuth_rad: a }
+        };
+        for frame in 0..40 {
             let t = t0 + chrono::Duration::seconds(20 * frame);
-            let mut rs = vec![];
-            for lag in (5..120).step_by(10) {
-                let mid = t - chrono::Duration::seconds(lag);
-                for (s, g) in pos.iter().enumerate() {
-                    let inv_f = 1.0 / truth_f;
-                    let off = crate::forecast::sun_ray_plane_point([0.0, 0.0], map_cbh_m, [cam[0] * inv_f, cam[1] * inv_f, cam[2]], z, a);
-                    let (cx, cy) = grid.to_cell([g[0] * inv_f + off[0] + v[0] * lag as f64, g[1] * inv_f + off[1] + v[1] * lag as f64]);
-                    let x = tm.box_mean_with(cx, cy, 0.5, p.beams()).unwrap();
-                    rs.push(Reading { sensor: s, mid, kstar: 0.2 + 0.8 * x, zenith_rad: z, azimuth_rad: a });
-                }
-            }
+            let mids: Vec<DateTime<Utc>> = (5..120).step_by(10).map(|lag| t - chrono::Duration::seconds(lag)).collect();
+            let rs: Vec<Reading> = mids.iter().flat_map(|m| (0..pos.len()).map(move |s| (s, *m))).map(|(s, m)| reading(&tm, s, m, t)).collect();
             st.observe(t, &tm, p.beams(), grid, map_cbh_m, cam, v, 40.0, &pos, &rs);
             let still: Vec<Reading> = rs.iter().map(|r| Reading { kstar: 0.3, ..*r }).collect();
             flat.observe(t, &tm, p.beams(), grid, map_cbh_m, cam, v, 40.0, &pos, &still);
@@ -658,6 +710,7 @@ mod tests {
         let want = truth_f * map_cbh_m;
         assert!((fit.cbh_m / want - 1.0).abs() < 0.05, "{} vs {want}", fit.cbh_m);
         assert!(fit.rel_sigma > 0.0 && fit.rel_sigma < 0.1, "{}", fit.rel_sigma);
+        assert!(fit.null.judged && fit.follows_map(), "{:?} (cost {})", fit.null, fit.cost_min);
         assert_eq!(flat.estimate().unwrap_err(), NoFit::NoEvents);
     }
 }

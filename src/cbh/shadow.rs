@@ -20,6 +20,11 @@
 //! [`ShadowParams::block_s`] of frames), never below half a scan step. No estimate is given
 //! without shadow events (clear sky or overcast: the measured index does not move), with fewer
 //! than [`ShadowParams::min_blocks`] blocks, a flat cost curve or a minimum at the end of the scan.
+//!
+//! A fit also carries a [`NullTest`]: the window's readings paired with the map at shifted times
+//! (circularly within the window, 120 … 600 s with a full window). Readings that really follow the
+//! map's shadows fit best at their own times; a fit may judge (and so override) a configured base
+//! only when it beats every shift, pooled and within frames ([`ShadowFit::follows_map`]).
 
 use std::collections::VecDeque;
 
@@ -53,6 +58,18 @@ pub struct ShadowParams {
     pub resamples: usize,
     /// The cost minimum must be below this share of the median cost (else the curve is flat).
     pub max_contrast: f64,
+    /// Null test (whether the readings follow the map's shadows at all, [`NullTest`]): the
+    /// window's readings are also paired with the map shifted in time, circularly within the
+    /// window, by `sample_window_s + k · null_step_s` \[s\] for every `k` that keeps the shift at
+    /// least `sample_window_s` from a whole turn (so that no frame is paired with any of its own
+    /// readings, either way round).
+    pub null_step_s: f64,
+    /// Null test: fewest distinct shifts for a verdict. The readings follow the map when their
+    /// fit beats every shifted one: a rank test, so readings unrelated to the map pass it with
+    /// probability `1 / (n + 1)` for `n` shifts (9: at most 0.1). With the defaults a full
+    /// window (600 s of frames, their readings spanning 720 s) gives exactly 9 shifts
+    /// (120 … 600 s), so a verdict needs a full window.
+    pub null_min_shifts: usize,
 }
 
 impl Default for ShadowParams {
@@ -68,6 +85,8 @@ impl Default for ShadowParams {
             candidates: 49,
             resamples: 64,
             max_contrast: 0.9,
+            null_step_s: 60.0,
+            null_min_shifts: 9,
         }
     }
 }
@@ -123,8 +142,43 @@ pub struct ShadowFit {
     pub cost_min: f64,
     /// Median cost over the scan.
     pub cost_median: f64,
+    /// Whether the readings follow the map's shadows at all ([`NullTest`]).
+    pub null: NullTest,
 }
 
+impl ShadowFit {
+    /// Whether the fit showed that the readings follow the map's shadows ([`NullTest::passed`]):
+    /// only then may it judge a configured base.
+    pub fn follows_map(&self) -> bool {
+        self.null.passed
+    }
+}
+
+/// The test of a fit against the same readings shifted in time, circularly within the window
+/// ([`ShadowParams::null_step_s`]): readings of this sky fit the map's shadows better at their own
+/// times than at any shifted time; readings of another sky (a clock an hour off, another site's
+/// logger) fit as well shifted as not. Each shift gets the whole scan, as the fit does.
+///
+/// Two statistics, each of which must beat every shift: the cost at the minimum over the scan
+/// ([`ShadowFit::cost_min`], all pairs pooled) and the within-frame cost (each frame's pairs taken
+/// about their own means, so a slow drift that readings and map share, such as overcast thinning
+/// over the window, explains nothing: only where and when the shadows fall within a frame counts).
+#[derive(Debug, Clone, PartialEq)]
+pub struct NullTest {
+    /// Distinct shifts compared (none until the window's readings span enough time, see
+    /// [`ShadowParams::null_step_s`]).
+    pub shifts: usize,
+    /// The lowest pooled cost over the scan and the shifts (`1.0` without any).
+    pub cost_min: f64,
+    /// The fit's within-frame cost at the estimate.
+    pub within: f64,
+    /// The lowest within-frame cost over the scan and the shifts (`1.0` without any).
+    pub within_min: f64,
+    /// At least [`ShadowParams::null_min_shifts`] shifts: the test gave a verdict.
+    pub judged: bool,
+    /// Judged, and both of the fit's costs below their lowest over the shifts.
+    pub passed: bool,
+}
 /// Why [`ShadowTiming::estimate`] gave no height.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum NoFit {
@@ -142,6 +196,11 @@ pub enum NoFit {
 struct FrameCost {
     time: DateTime<Utc>,
     stats: Vec<Stats>,
+    /// The readings paired (sensor, middle, clear-sky index), for the null test.
+    pairs: Vec<(usize, DateTime<Utc>, f64)>,
+    /// Their predicted transmittances, candidate by candidate (`xs[c * pairs.len() + j]`; NaN
+    /// off the map).
+    xs: Vec<f64>,
     events: usize,
 }
 
@@ -211,32 +270,31 @@ impl ShadowTiming {
         }
         let r_cells = (radius_m / grid.cell_m).max(0.5);
         let centre_ln = *self.centre_ln.get_or_insert(map_cbh_m.ln());
+        let n_pairs = use_r.len();
+        let mut xs = vec![f64::NAN; self.factors().len() * n_pairs];
         let stats = self
             .factors()
             .iter()
-            .map(|f| {
+            .enumerate()
+            .map(|(c, f)| {
                 // The candidate height over the map's.
                 let inv_f = 1.0 / (f * (centre_ln - map_cbh_m.ln()).exp());
                 let mut s = [0.0; 6];
-                for r in &use_r {
+                for (j, r) in use_r.iter().enumerate() {
                     let lag = age(&r.mid);
                     let g = positions_m[r.sensor];
                     let off = crate::forecast::sun_ray_plane_point([0.0, 0.0], map_cbh_m, [camera_m[0] * inv_f, camera_m[1] * inv_f, camera_m[2]], r.zenith_rad, r.azimuth_rad);
                     let q = [g[0] * inv_f + off[0] + v_map_mps[0] * lag, g[1] * inv_f + off[1] + v_map_mps[1] * lag];
                     let (cx, cy) = grid.to_cell(q);
                     let Some(x) = tm.box_mean_with(cx, cy, r_cells, beams) else { continue };
-                    let y = r.kstar;
-                    s[0] += 1.0;
-                    s[1] += x;
-                    s[2] += y;
-                    s[3] += x * x;
-                    s[4] += x * y;
-                    s[5] += y * y;
+                    add(&mut s, x, r.kstar);
+                    xs[c * n_pairs + j] = x;
                 }
                 s
             })
             .collect();
-        self.frames.push_back(FrameCost { time: t, stats, events });
+        let pairs = use_r.iter().map(|r| (r.sensor, r.mid, r.kstar)).collect();
+        self.frames.push_back(FrameCost { time: t, stats, pairs, xs, events });
     }
 
     /// The estimate from the frames of the window ending at the newest frame.
@@ -307,8 +365,124 @@ impl ShadowTiming {
         let m = draws.iter().sum::<f64>() / draws.len().max(1) as f64;
         let sd = (draws.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (draws.len().max(2) - 1) as f64).sqrt();
         let rel_sigma = sd.max(0.5 * step);
-        Ok(ShadowFit { cbh_m: (centre_ln + ln_best).exp(), rel_sigma, events, frames: frames.len(), cost_min: costs[i], cost_median: median })
+        let null = null_test(&p, &frames, factors.len(), i, costs[i]);
+        Ok(ShadowFit { cbh_m: (centre_ln + ln_best).exp(), rel_sigma, events, frames: frames.len(), cost_min: costs[i], cost_median: median, null })
     }
+}
+
+/// `1 − r²` of the pairs taken about their own frame's means, summed over `frames`, for candidate
+/// `c` of the statistics `get` gives (the same slope rule as [`r2_cost`]).
+fn within_cost(frames: &[&FrameCost], get: impl Fn(&FrameCost) -> &[Stats], c: usize) -> f64 {
+    let mut w = [0.0; 3];
+    for f in frames {
+        let s = get(f)[c];
+        if s[0] < 2.0 {
+            continue;
+        }
+        w[0] += s[3] - s[1] * s[1] / s[0];
+        w[1] += s[4] - s[1] * s[2] / s[0];
+        w[2] += s[5] - s[2] * s[2] / s[0];
+    }
+    if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) }
+}
+
+/// The [`NullTest`] of the window's `frames` for the estimate at candidate `best` of cost `cost`.
+///
+/// Each sensor's readings in the window (every reading some frame was paired with) are put in
+/// time order; a shift of `Δ` replaces each paired reading by the one `round(Δ / spacing)` places
+/// earlier, wrapping round (the sensor's spacing: its readings' span over their count less one).
+fn null_test(p: &ShadowParams, frames: &[&FrameCost], candidates: usize, best: usize, cost: f64) -> NullTest {
+    let mut out = NullTest { shifts: 0, cost_min: 1.0, within: within_cost(frames, |f| &f.stats, best), within_min: 1.0, judged: false, passed: false };
+    let sensors = frames.iter().flat_map(|f| f.pairs.iter().map(|q| q.0 + 1)).max().unwrap_or(0);
+    let mut seen: Vec<std::collections::BTreeMap<DateTime<Utc>, f64>> = vec![Default::default(); sensors];
+    for f in frames {
+        for &(s, mid, k) in &f.pairs {
+            seen[s].insert(mid, k);
+        }
+    }
+    let series: Vec<Vec<(DateTime<Utc>, f64)>> = seen.into_iter().map(|m| m.into_iter().collect()).collect();
+    // Per sensor: its spacing [s] and the span of a whole turn [s].
+    let turn: Vec<Option<(f64, f64)>> = series
+        .iter()
+        .map(|v| {
+            let n = v.len();
+            (n >= 2).then(|| {
+                let spacing = (v[n - 1].0 - v[0].0).num_milliseconds() as f64 / 1000.0 / (n - 1) as f64;
+                (spacing, spacing * n as f64)
+            })
+        })
+        .collect();
+    let used: Vec<&(f64, f64)> = turn.iter().flatten().collect();
+    let Some(span_s) = used.iter().map(|t| t.1).reduce(f64::min) else { return out };
+    let mut last: Option<Vec<usize>> = None;
+    let mut k = 0;
+    loop {
+        let shift_s = p.sample_window_s + k as f64 * p.null_step_s.max(1.0);
+        k += 1;
+        if shift_s > span_s - p.sample_window_s {
+            break;
+        }
+        // Places each sensor's readings move by; a shift that moves none differently from the
+        // previous one is the same shift.
+        let offsets: Vec<usize> = turn.iter().map(|t| t.map_or(0, |(sp, _)| if sp > 0.0 { (shift_s / sp).round() as usize } else { 0 })).collect();
+        if offsets.iter().zip(&series).any(|(o, v)| v.len() >= 2 && (*o == 0 || *o >= v.len())) || last.as_ref() == Some(&offsets) {
+            continue;
+        }
+        last = Some(offsets.clone());
+        out.shifts += 1;
+        let mut sums = vec![[0.0; 6]; candidates];
+        let mut within = vec![[0.0; 3]; candidates];
+        for f in frames {
+            let n = f.pairs.len();
+            let ys: Vec<Option<f64>> = f
+                .pairs
+                .iter()
+                .map(|&(s, mid, _)| {
+                    let v = &series[s];
+                    let i = v.binary_search_by(|x| x.0.cmp(&mid)).ok()?;
+                    Some(v[(i + v.len() - offsets[s] % v.len()) % v.len()].1)
+                })
+                .collect();
+            for c in 0..candidates {
+                let mut st = [0.0; 6];
+                for (j, y) in ys.iter().enumerate() {
+                    let x = f.xs[c * n + j];
+                    if let (Some(y), true) = (y, x.is_finite()) {
+                        add(&mut st, x, *y);
+                    }
+                }
+                for (a, b) in sums[c].iter_mut().zip(&st) {
+                    *a += b;
+                }
+                if st[0] >= 2.0 {
+                    within[c][0] += st[3] - st[1] * st[1] / st[0];
+                    within[c][1] += st[4] - st[1] * st[2] / st[0];
+                    within[c][2] += st[5] - st[2] * st[2] / st[0];
+                }
+            }
+        }
+        for c in 0..candidates {
+            let pooled = r2_cost(&sums[c]);
+            if pooled.is_finite() {
+                out.cost_min = out.cost_min.min(pooled);
+            }
+            let w = within[c];
+            let wc = if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) };
+            out.within_min = out.within_min.min(wc);
+        }
+    }
+    out.judged = out.shifts >= p.null_min_shifts;
+    out.passed = out.judged && cost < out.cost_min && out.within < out.within_min;
+    out
+}
+
+fn add(s: &mut Stats, x: f64, y: f64) {
+    s[0] += 1.0;
+    s[1] += x;
+    s[2] += y;
+    s[3] += x * x;
+    s[4] += x * y;
+    s[5] += y * y;
 }
 
 /// The statistics of each of the `candidates` heights over `frames`, each frame's times its
@@ -372,6 +546,70 @@ pub fn readings(
 mod tests {
     use super::*;
 
+    /// Window frames for [`null_test`]: 31 frames 20 s apart (a full 600-s window), each paired
+    /// with the 1-minute readings of three sensors whose middles lie in its last 120 s; reading
+    /// `y(sensor, minute)`, prediction `x(candidate, sensor, minute)`.
+    fn window(candidates: usize, x: impl Fn(usize, usize, i64) -> f64, y: impl Fn(usize, i64) -> f64) -> Vec<FrameCost> {
+        let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
+        (0..31)
+            .map(|i| {
+                let t = t0 + chrono::Duration::seconds(20 * i);
+                let mut pairs = vec![];
+                for minute in 0..40i64 {
+                    let mid = t0 - chrono::Duration::seconds(150) + chrono::Duration::seconds(60 * minute);
+                    let age = (t - mid).num_seconds();
+                    if (0..=120).contains(&age) {
+                        for s in 0..3 {
+                            pairs.push((s, mid, y(s, minute)));
+                        }
+                    }
+                }
+                let minute_of = |mid: DateTime<Utc>| ((mid - t0).num_seconds() + 150) / 60;
+                let xs: Vec<f64> = (0..candidates).flat_map(|c| pairs.iter().map(move |q| (c, q))).map(|(c, q)| x(c, q.0, minute_of(q.1))).collect();
+                let stats = (0..candidates)
+                    .map(|c| {
+                        let mut st = [0.0; 6];
+                        for (j, q) in pairs.iter().enumerate() {
+                            add(&mut st, xs[c * pairs.len() + j], q.2);
+                        }
+                        st
+                    })
+                    .collect();
+                FrameCost { time: t, stats, pairs, xs, events: 0 }
+            })
+            .collect()
+    }
+
+    /// The null test: readings that are the map's shadows pass it; the same readings five
+    /// minutes late (a logger clock five minutes behind) fail it, because a shift of five
+    /// minutes fits them better than their own times; a window too short for nine shifts gives
+    /// no verdict.
+    #[test]
+    fn null_test_passes_readings_of_this_sky_only() {
+        let p = ShadowParams::default();
+        let shade = |s: usize, minute: i64| if crate::rng::hash64(s as u64 * 1000 + minute as u64).is_multiple_of(3) { 0.25 } else { 0.95 };
+        // Candidate 2 predicts the shade exactly; the others see it blurred by noise.
+        let x = |c: usize, s: usize, minute: i64| {
+            let noise = (crate::rng::hash64((c * 7 + s) as u64 * 100_000 + minute as u64) % 1000) as f64 / 1000.0;
+            if c == 2 { shade(s, minute) } else { 0.5 * shade(s, minute) + 0.5 * noise }
+        };
+        let judge = |frames: &[FrameCost]| {
+            let refs: Vec<&FrameCost> = frames.iter().collect();
+            let ones = vec![1.0; refs.len()];
+            let finite = vec![true; refs.len()];
+            let costs: Vec<f64> = summed_stats(&refs, &finite, &ones, 5).iter().map(r2_cost).collect();
+            let best = (0..5).min_by(|a, b| costs[*a].total_cmp(&costs[*b])).unwrap();
+            (null_test(&p, &refs, 5, best, costs[best]), costs[best])
+        };
+        let (own, cost) = judge(&window(5, x, |s, m| 0.1 + 0.8 * shade(s, m)));
+        assert!(own.judged && own.passed && own.shifts == 9, "{own:?} (cost {cost})");
+        let (late, cost) = judge(&window(5, x, |s, m| 0.1 + 0.8 * shade(s, m - 5)));
+        assert!(late.judged && !late.passed && late.cost_min < cost, "{late:?} (cost {cost})");
+        let short: Vec<FrameCost> = window(5, x, |s, m| 0.1 + 0.8 * shade(s, m)).into_iter().take(18).collect();
+        let (early, _) = judge(&short);
+        assert!(!early.judged && !early.passed && early.shifts < 9, "{early:?}");
+    }
+
     /// [`summed_stats`] against the sums taken one candidate at a time over every frame (weight 0
     /// included), bit for bit: random statistics with signed zeros, weights 0 to 3, and a frame
     /// with an infinite statistic (not skipped at weight 0: its product is NaN).
@@ -385,7 +623,7 @@ mod tests {
             h => (crate::rng::hash64(k ^ 77) % 20_000) as f64 / 997.0 - 3.0 * (h % 2) as f64,
         };
         let mut frames: Vec<FrameCost> = (0..40u64)
-            .map(|i| FrameCost { time: t, events: 0, stats: (0..candidates as u64).map(|c| std::array::from_fn(|q| value(i * 1000 + c * 10 + q as u64))).collect() })
+            .map(|i| FrameCost { time: t, events: 0, pairs: vec![], xs: vec![], stats: (0..candidates as u64).map(|c| std::array::from_fn(|q| value(i * 1000 + c * 10 + q as u64))).collect() })
             .collect();
         frames[5].stats[2][4] = f64::INFINITY;
         let refs: Vec<&FrameCost> = frames.iter().collect();

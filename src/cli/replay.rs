@@ -98,6 +98,13 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
             "note: shadow timing at the pyranometers rejected the configured cloud base. If that base is right, check the readings' times: their clock and time zone (UTC expected), and what they label ([measurements] time_label, read as \"{}\": a logger that stamps the end of each interval read as its start moves every shadow by a period); and the pyranometers' positions",
             s.time_label.name()
         );
+    } else if s.shadow_fits_held_back > 0 {
+        crate::say!(
+            "note: {} shadow-timing fit{} disagreed with the configured cloud base, but the pyranometer readings did not follow the cloud map's shadows better than the same readings shifted in time, so the configured base was kept. Check the readings' clock and time zone (UTC expected), what they label ([measurements] time_label, read as \"{}\") and the pyranometers' positions",
+            s.shadow_fits_held_back,
+            if s.shadow_fits_held_back == 1 { "" } else { "s" },
+            s.time_label.name()
+        );
     }
     if let Some((h, moves)) = s.map_plane {
         match moves {

@@ -41,6 +41,8 @@ pub(super) struct LiveEngine {
     base_rejection_logged: bool,
     /// How the frames' names carry their time (`[camera] frame_time_format`).
     naming: crate::io::FrameNaming,
+    /// Whether the first shadow-timing fit held back from judging the configured base was logged.
+    held_back_logged: bool,
 }
 
 /// What a frame's step gave, for the reports after it.
@@ -84,6 +86,7 @@ impl LiveEngine {
             pruned_at: None,
             base_rejection_logged: false,
             naming,
+            held_back_logged: false,
         }
     }
 
@@ -136,7 +139,20 @@ impl LiveEngine {
     /// Log once when shadow timing at the pyranometers has rejected the configured cloud base,
     /// naming how the measurements' times are read (a mislabelled logger is the first thing to
     /// check when the base is known good: DEVELOPERS.md, "Where the design changed").
+    ///
+    /// Also once when a fit that disagreed with the configured base was first held back because the
+    /// readings did not follow the map's shadows better than shifted in time (the configured base
+    /// is kept; readings an hour late, a logger on local time, do this).
     fn note_base_rejected(&mut self) {
+        let held = self.nc.cbh_state().fits_held_back();
+        if !self.held_back_logged && held > 0 && !self.nc.cbh_state().prior_rejected() {
+            self.held_back_logged = true;
+            let label = self.nc.site().file.measurements.time_label.name();
+            self.log(&[
+                ("event", "cloud_base".into()),
+                ("note", format!("a shadow-timing fit disagreed with the configured cloud base, but the pyranometer readings did not follow the cloud map's shadows better than the same readings shifted in time: configured base kept; check the readings' clock and time zone (UTC expected), [measurements] time_label (read as \"{label}\") and the pyranometers' positions")),
+            ]);
+        }
         if self.base_rejection_logged || !self.nc.cbh_state().prior_rejected() {
             return;
         }
