@@ -294,7 +294,14 @@ impl FrameNaming {
     /// The UTC time in a frame file name, if it carries one.
     pub fn time_of(&self, name: &str) -> Option<DateTime<Utc>> {
         let Some(f) = &self.format else { return time_from_frame_name(name) };
-        let with_offset = f.contains("%z") || f.contains("%:z") || f.contains("%#z") || f.contains("%s");
+        use chrono::format::{Fixed, Item, Numeric, StrftimeItems};
+        let with_offset = StrftimeItems::new(f).any(|i| {
+            matches!(
+                i,
+                Item::Fixed(Fixed::TimezoneOffset | Fixed::TimezoneOffsetColon | Fixed::TimezoneOffsetDoubleColon | Fixed::TimezoneOffsetTripleColon | Fixed::TimezoneOffsetColonZ | Fixed::TimezoneOffsetZ)
+                    | Item::Numeric(Numeric::Timestamp, _)
+            )
+        });
         for (i, _) in name.char_indices() {
             let rest = &name[i..];
             let t = if with_offset {
@@ -313,7 +320,11 @@ impl FrameNaming {
     pub fn expected(&self) -> String {
         match &self.format {
             None => FRAME_NAME_PATTERN.to_string(),
-            Some(f) => format!("a time as `{f}` ([camera] frame_time_format) at UTC{:+03}:{:02}", self.offset_min / 60, (self.offset_min % 60).abs()),
+            Some(f) => {
+                let sign = if self.offset_min < 0 { '-' } else { '+' };
+                let m = self.offset_min.unsigned_abs();
+                format!("a time as `{f}` ([camera] frame_time_format) at UTC{sign}{:02}:{:02}", m / 60, m % 60)
+            }
         }
     }
 }
@@ -553,6 +564,8 @@ mod tests {
         assert_eq!(FrameNaming::default().time_of("frame_20231108T103000Z.jpg"), Some(utc("2023-11-08T10:30:00Z")));
         assert!(FrameNaming::default().expected().contains("YYYYMMDDTHHMMSS"));
         assert!(n("%Y%m%d_%H%M%S", -330).expected().contains("UTC-05:30"), "{}", n("%Y%m%d_%H%M%S", -330).expected());
+        assert!(n("%Y%m%d_%H%M%S", -30).expected().contains("UTC-00:30"), "{}", n("%Y%m%d_%H%M%S", -30).expected());
+        assert_eq!(n("%Y-%m-%dT%H:%M:%S%::z", 300).time_of("2023-11-08T11:30:00+01:00:00.jpg"), Some(utc("2023-11-08T10:30:00Z")));
         // Patterns that cannot carry a frame's time are refused, saying why.
         for bad in ["%H%M%S", "%Y%m%d", "", "%Q"] {
             assert!(FrameNaming::new(Some(bad.into()), 0).is_err(), "{bad:?} accepted");

@@ -144,15 +144,22 @@ fn time_stamps_burnt_into_the_frames() {
     eprintln!("stamped frames: {} detections, sky direction error {err:.3}° RMS", dets.len());
     assert!(dets.len() >= 40 && err <= 0.3, "{} detections, {err}°", dets.len());
     let day: Vec<&image::RgbImage> = frames.iter().map(|(_, i)| i).collect();
+    let suns: Vec<[f64; 3]> = frames.iter().map(|(t, _)| nephocast::sun::position(t, &s.world.observer).unwrap().direction_enu()).collect();
+    let sectors = nephocast::calibrate::sun_sectors(&suns);
     let circle = nephocast::calibrate::fit_image_circle(day[day.len() / 2]).unwrap();
-    let (mask, inside) = nephocast::calibrate::overlay_mask(&day, circle).expect("the stamp inside the circle is found");
+    let (mask, inside) = nephocast::calibrate::overlay_mask(&day, &sectors, circle).expect("the stamp inside the circle is found");
     assert!(inside > 100, "{inside}");
     assert_eq!(mask.get_pixel(205, 474).0[0], 0);
     assert_eq!(mask.get_pixel(256, 256).0[0], 255);
     // Clean frames have no overlay.
     let (_, clean) = clear_day(&spec, "2026-06-14T05:00:00Z", 14.0);
     let day: Vec<&image::RgbImage> = clean.iter().map(|(_, i)| i).collect();
-    assert!(nephocast::calibrate::overlay_mask(&day, circle).is_none());
+    assert!(nephocast::calibrate::overlay_mask(&day, &sectors, circle).is_none());
+    // Three copies of the clean day, one after another (three days as three folders): the sun's
+    // glare repeats each day but stays in one third of the sun's azimuths, so still no overlay.
+    let three: Vec<&image::RgbImage> = day.iter().chain(&day).chain(&day).copied().collect();
+    let sectors3: Vec<usize> = sectors.iter().chain(&sectors).chain(&sectors).copied().collect();
+    assert!(nephocast::calibrate::overlay_mask(&three, &sectors3, circle).is_none());
 }
 
 /// Night-only frames give a clear error saying what was found.

@@ -271,13 +271,12 @@ fn end_to_end_with_calibrated_camera(name: &str) -> (nephocast::verify::Evaluati
     nephocast::synth::yardstick::write_yardstick(&s, d.path()).unwrap();
     // The calibrated camera and the obstruction mask of its clear day replace the true camera.
     let circle = nephocast::calibrate::fit_image_circle(&c.frames[c.frames.len() / 2].1).unwrap();
-    let day: Vec<&image::RgbImage> = c
+    let (day, suns): (Vec<&image::RgbImage>, Vec<[f64; 3]>) = c
         .frames
         .iter()
-        .filter(|(t, _)| nephocast::sun::position(t, &c.observer).map(|p| p.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
-        .map(|(_, i)| i)
-        .collect();
-    let mask = obstruction_mask(&day, circle);
+        .filter_map(|(t, i)| nephocast::sun::position(t, &c.observer).ok().filter(|p| p.elevation_rad().to_degrees() > 10.0).map(|p| (i, p.direction_enu())))
+        .unzip();
+    let mask = obstruction_mask(&day, &nephocast::calibrate::sun_sectors(&suns), circle);
     let cal_dir = d.path().join("calibration");
     std::fs::write(cal_dir.join(format!("{cam_name}-mask.png")), nephocast::synth::encode_png_gray(&mask)).unwrap();
     let mut cal = CalibrationFile::from_camera(&cam_name, &c.fit.camera);

@@ -143,7 +143,7 @@ pub fn refine_image_circle(img: &image::RgbImage, rough: ImageCircle) -> Option<
     // far off the circle on a few rays, which would pull the first fit; then the first fit is the
     // outlier-resistant one.
     if pts.iter().any(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() > GROSS_EDGE_OUTLIER_PX) {
-        first = robust_circle(&pts, 60)?;
+        first = robust_circle(&pts, 60).unwrap_or(first);
     }
     let kept: Vec<(f64, f64)> = pts.into_iter().filter(|(x, y)| ((x - first.cx_px).hypot(y - first.cy_px) - first.radius_px).abs() <= 2.0).collect();
     fit(&kept)

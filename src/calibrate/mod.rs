@@ -341,7 +341,7 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     }
     let circle = median_circle(frames, &day)?;
     let size = first.1.dimensions();
-    let ignore = static_bright(frames, &day, circle, options.clip);
+    let ignore = static_bright(frames, &day, observer, circle, options.clip);
     let (raw, levels) = sun_detections(frames, &day, observer, circle, options.clip, ignore.as_deref());
     let found = raw.len();
     let mut screened = raw.clone();
@@ -375,6 +375,8 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
         for d in &mut dets {
             d.px.0 = mirror_x(d.px.0);
         }
+        // The covariance is in the mirrored parametrization (its bound is already tabulated).
+        fit.cov = None;
         (fit, dets)
     });
     let cv = |r: &Result<(Fit, Vec<Detection>), CalibrationError>| r.as_ref().map(|(f, _)| held_out_of_chosen(f)).unwrap_or(f64::INFINITY);
@@ -382,8 +384,10 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     let chosen = match (upright, mirrored) {
         (Ok(u), Ok(m)) if both[1] < MIRRORED_MIN_GAIN * both[0] => Ok(with_mirror_note(m, Some(&u.0))),
         (Ok(u), _) => Ok(u),
-        (Err(_), Ok(m)) => Ok(with_mirror_note(m, None)),
-        (Err(e), Err(_)) => Err(e),
+        // Frames no upright camera explains are taken as mirrored only when a level mirrored camera
+        // explains them (a clock far off also defeats the upright fit, with a large tilt).
+        (Err(_), Ok(m)) if tilt_deg(&m.0.camera) <= LEVEL_WARN_TILT_DEG => Ok(with_mirror_note(m, None)),
+        (Err(e), _) => Err(e),
     };
     chosen.map(|(mut fit, dets)| {
         fit.handedness_held_out_px = both;
@@ -559,11 +563,17 @@ const RIM_MARGIN_PX: f64 = 3.0;
 /// Pixels the sun finder must not take for the sun's glare (at least the lowest glare level,
 /// [`lean::LEVELS`]\[0\], by `clip`): bright beyond the image circle (a time stamp or a logo
 /// burnt into the frame's corner), or bright in at least [`STATIC_BRIGHT_SHARE`] of the daytime
-/// frames of each third of their time span (an overlay inside the circle, a lamp: the sun's glare
-/// passes over a pixel within minutes), widened by 2 px (JPEG rings around sharp text). `None`
+/// frames of each third of the sun's azimuth range ([`sun_sectors`]: an overlay inside the
+/// circle, a lamp; the sun's glare passes over a pixel within minutes), widened by 2 px (JPEG rings around sharp text). `None`
 /// when no pixel is, so frames without such structure are read as they are.
-fn static_bright(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], circle: ImageCircle, clip: ClipTest) -> Option<Vec<bool>> {
-    let lit: Vec<&image::RgbImage> = frames.iter().zip(day).filter(|(_, d)| **d).map(|((_, img), _)| img).collect();
+fn static_bright(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle, clip: ClipTest) -> Option<Vec<bool>> {
+    let (lit, dirs): (Vec<&image::RgbImage>, Vec<[f64; 3]>) = frames
+        .iter()
+        .zip(day)
+        .filter(|(_, d)| **d)
+        .filter_map(|((t, img), _)| position(t, observer).ok().map(|sp| (img, direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad))))
+        .unzip();
+    let sectors = sun_sectors(&dirs);
     let first = lit.first()?;
     let (w, h) = first.dimensions();
     if lit.iter().any(|img| img.dimensions() != (w, h)) {
@@ -573,12 +583,11 @@ fn static_bright(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], circ
     let low = lean::LEVELS[0];
     let rim2 = (circle.radius_px + RIM_MARGIN_PX).powi(2);
     let outside = |i: usize| ((i % w as usize) as f64 - circle.cx_px).powi(2) + ((i / w as usize) as f64 - circle.cy_px).powi(2) > rim2;
-    // Bright counts per third of the frames (in time order, as given).
+    // Bright counts per third of the sun's azimuth range.
     let mut counts = vec![[0u16; 3]; n];
     let mut sizes = [0usize; 3];
     let mut seed = vec![false; n];
-    for (k, img) in lit.iter().enumerate() {
-        let third = (3 * k / lit.len()).min(2);
+    for (img, &third) in lit.iter().zip(&sectors) {
         sizes[third] += 1;
         for (i, p) in img.pixels().enumerate() {
             if clip.value(p.0) >= low {
@@ -615,6 +624,32 @@ fn static_bright(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], circ
         }
     }
     Some(mask)
+}
+
+/// The third (0, 1 or 2) of the sun's azimuth range each frame's sun lies in, from the sun's
+/// (east, north, up) directions: the range is the smallest arc holding every azimuth (so a sun
+/// that crosses north, south of the equator, is one arc). Frames in different thirds see the sun in
+/// different parts of the sky, whether the frames are of one day or of several (a split of the
+/// frames by their order would put each of three days in its own third, and the sun's path
+/// repeats).
+pub fn sun_sectors(dirs: &[[f64; 3]]) -> Vec<usize> {
+    use std::f64::consts::TAU;
+    let az: Vec<f64> = dirs.iter().map(|d| d[0].atan2(d[1]).rem_euclid(TAU)).collect();
+    let mut sorted = az.clone();
+    sorted.sort_by(f64::total_cmp);
+    let Some(&last) = sorted.last() else { return vec![] };
+    // The arc starts after the largest gap between neighbouring azimuths (round the circle).
+    let mut start = sorted[0];
+    let mut gap = sorted[0] + TAU - last;
+    for w in sorted.windows(2) {
+        if w[1] - w[0] > gap {
+            gap = w[1] - w[0];
+            start = w[1];
+        }
+    }
+    let rel: Vec<f64> = az.iter().map(|a| (a - start).rem_euclid(TAU)).collect();
+    let range = rel.iter().copied().fold(0.0, f64::max);
+    rel.iter().map(|r| if range > 0.0 { ((3.0 * r / range) as usize).min(2) } else { 0 }).collect()
 }
 
 /// The frame with the bright pixels of `ignore` darkened (black), or `None` when it has none
@@ -750,11 +785,15 @@ pub const LEVEL_WARN_TILT_DEG: f64 = 3.0;
 /// camera): on an independent clear day with its frames' times moved by 10, 30 and 60 minutes,
 /// `calibrate` fitted tilts of 2.1°, 5.9° and 12.2° (true 0.5°) with residuals of 0.25, 0.26 and
 /// 0.31 px against 0.24 px, and no other sign.
+/// The optical axis (camera +z) against the zenith \[°\], through the same rotation the camera uses.
+fn tilt_deg(camera: &Camera) -> f64 {
+    let up = camera.cam_to_enu() * nalgebra::Vector3::new(0.0, 0.0, 1.0);
+    up[2].clamp(-1.0, 1.0).acos().to_degrees()
+}
+
 fn tilt_warning(camera: &Camera) -> Option<String> {
     let o = &camera.orientation;
-    // The optical axis (camera +z) against the zenith, through the same rotation the camera uses.
-    let up = camera.cam_to_enu() * nalgebra::Vector3::new(0.0, 0.0, 1.0);
-    let tilt_deg = up[2].clamp(-1.0, 1.0).acos().to_degrees();
+    let tilt_deg = tilt_deg(camera);
     (tilt_deg > LEVEL_WARN_TILT_DEG).then(|| {
         format!(
             "the fitted camera is tilted {tilt_deg:.1}° from level (pitch {:.1}°, roll {:.1}°): if it was levelled, the frames' clock is likely off (a time zone or a camera clock: on a clear day with its times moved 30 or 60 minutes the fit tilted 5.9° or 12.2° and its residuals hardly grew); check the times in the frame names are UTC, and the site's longitude (east positive: a sign slip moves the sun by 4 minutes per degree)",
@@ -786,6 +825,20 @@ fn check_usable(fit: &Fit) -> Result<(), CalibrationError> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The sun's azimuth range in thirds: a northern day (east → south → west), a southern one
+    /// crossing north (azimuth 60° → 0° → 300° is one arc), and three such days one after another.
+    #[test]
+    fn sun_sectors_split_the_sun_s_arc() {
+        let dir = |az_deg: f64| crate::sun::direction_enu(0.6, az_deg.to_radians());
+        let north: Vec<[f64; 3]> = [100.0, 140.0, 180.0, 220.0, 260.0].map(dir).to_vec();
+        assert_eq!(sun_sectors(&north), vec![0, 0, 1, 2, 2]);
+        let south: Vec<[f64; 3]> = [60.0, 30.0, 0.0, 330.0, 300.0].map(dir).to_vec();
+        assert_eq!(sun_sectors(&south), vec![2, 2, 1, 0, 0]);
+        let three: Vec<[f64; 3]> = north.iter().chain(&north).chain(&north).copied().collect();
+        assert_eq!(sun_sectors(&three), [0, 0, 1, 2, 2].repeat(3));
+        assert!(sun_sectors(&[]).is_empty());
+    }
 
     /// A camera tilted beyond 3° draws the clock warning; one levelled within a degree or two
     /// (the renderers' 0.5–1.8°) does not.

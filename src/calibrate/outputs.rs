@@ -34,9 +34,6 @@ pub fn clear_sky_reference(frames: &[(DateTime<Utc>, image::RgbImage)], fit: &Fi
 pub fn clear_sky_reference_of(frames: &[(DateTime<Utc>, image::RgbImage)], cam: &crate::camera::Camera, dets: &[Detection], params: &crate::segment::SegmentParams) -> crate::segment::Reference {
     let mask = cam.sky_mask(std::f64::consts::FRAC_PI_2, None);
     let (w, h) = (cam.width_px as usize, cam.height_px as usize);
-    // Text or a logo burnt into the frames is not clear sky (see `obstruction_mask`).
-    let day: Vec<&image::RgbImage> = frames.iter().map(|(_, img)| img).filter(|img| img.dimensions() == (cam.width_px, cam.height_px)).collect();
-    let overlay = if day.is_empty() { vec![false; w * h] } else { burnt_in(&day) };
     // Every `step`-th pixel in each direction: a step that is a share of the image circle.
     let step = library_sample_step(cam);
     let pixels: Vec<(usize, [f32; 3], f32)> = (0..h)
@@ -44,7 +41,7 @@ pub fn clear_sky_reference_of(frames: &[(DateTime<Utc>, image::RgbImage)], cam: 
         .flat_map(|y| (0..w).step_by(step).map(move |x| (x, y)))
         .filter_map(|(x, y)| {
             let i = y * w + x;
-            if !mask.sky[i] || overlay[i] {
+            if !mask.sky[i] {
                 return None;
             }
             let d = direction_enu(mask.zenith_rad[i] as f64, mask.azimuth_rad[i] as f64);
@@ -57,6 +54,11 @@ pub fn clear_sky_reference_of(frames: &[(DateTime<Utc>, image::RgbImage)], cam: 
         .filter(|(t, _)| times.contains(t))
         .filter_map(|(t, img)| dets.iter().find(|d| d.time == *t).map(|d| (img, [d.dir[0] as f32, d.dir[1] as f32, d.dir[2] as f32])))
         .collect();
+    // Text or a logo burnt into the frames is not clear sky (see `obstruction_mask`).
+    let imgs: Vec<&image::RgbImage> = used.iter().map(|(img, _)| *img).collect();
+    let sectors = super::sun_sectors(&used.iter().map(|(_, d)| [d[0] as f64, d[1] as f64, d[2] as f64]).collect::<Vec<_>>());
+    let overlay = if imgs.is_empty() { vec![false; w * h] } else { burnt_in(&imgs, &sectors) };
+    let pixels: Vec<(usize, [f32; 3], f32)> = pixels.into_iter().filter(|(i, _, _)| !overlay[*i]).collect();
     let samples = used.iter().map(|(img, sun)| {
         let raw = img.as_raw();
         pixels.iter().map(move |(i, d, z)| {
@@ -139,16 +141,17 @@ pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]
     img
 }
 
-/// Obstruction mask from daylight frames (in time order): white = open sky; black where a pixel
-/// inside the image circle stays dark (mean level below 50) or unchanged (standard deviation of its
-/// level below 1.5) across the frames — masts, the horizon line, the housing — or is white (every
-/// channel at least 236) in at least a fifth of the frames of each third of the day, widened by
-/// 2 px: text or a logo burnt into the frame, whose changing digits and JPEG rings are not
-/// unchanged, while the sun's glare passes over a pixel within minutes.
-pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> image::GrayImage {
+/// Obstruction mask from daylight frames: white = open sky; black where a pixel inside the image
+/// circle stays dark (mean level below 50) or unchanged (standard deviation of its level below 1.5)
+/// across the frames — masts, the horizon line, the housing — or is white (every channel at least
+/// 236) in at least a fifth of the frames of each third of the sun's azimuth range (`sectors`, per
+/// frame: [`super::sun_sectors`]), widened by 2 px: text or a logo burnt into the frame, whose
+/// changing digits and JPEG rings are not unchanged, while the sun's glare passes over a pixel
+/// within minutes.
+pub fn obstruction_mask(frames: &[&image::RgbImage], sectors: &[usize], circle: ImageCircle) -> image::GrayImage {
     let (w, h) = frames[0].dimensions();
     let n = frames.len() as f64;
-    let overlay = burnt_in(frames);
+    let overlay = burnt_in(frames, sectors);
     let mut out = image::GrayImage::new(w, h);
     for y in 0..h {
         for x in 0..w {
@@ -174,9 +177,9 @@ pub fn obstruction_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> ima
 
 /// The burnt-in overlay alone (see [`obstruction_mask`]) as an obstruction mask, when any of it
 /// lies inside the image circle: white = open sky. With it, the count of its pixels there.
-pub fn overlay_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> Option<(image::GrayImage, usize)> {
+pub fn overlay_mask(frames: &[&image::RgbImage], sectors: &[usize], circle: ImageCircle) -> Option<(image::GrayImage, usize)> {
     let (w, h) = frames.first()?.dimensions();
-    let overlay = burnt_in(frames);
+    let overlay = burnt_in(frames, sectors);
     let mut out = image::GrayImage::from_pixel(w, h, image::Luma([255]));
     let mut inside = 0;
     for (i, _) in overlay.iter().enumerate().filter(|(_, o)| **o) {
@@ -190,17 +193,20 @@ pub fn overlay_mask(frames: &[&image::RgbImage], circle: ImageCircle) -> Option<
 }
 
 /// Pixels white (every channel at least 236) in at least a fifth of the frames of each third of
-/// the day, widened by 2 px (see [`obstruction_mask`]).
-fn burnt_in(frames: &[&image::RgbImage]) -> Vec<bool> {
+/// the sun's azimuth range (`sectors`), widened by 2 px (see [`obstruction_mask`]).
+fn burnt_in(frames: &[&image::RgbImage], sectors: &[usize]) -> Vec<bool> {
     let (w, h) = frames[0].dimensions();
     let n = (w * h) as usize;
     let mut counts = vec![[0u16; 3]; n];
     let mut sizes = [0usize; 3];
-    for (k, img) in frames.iter().enumerate() {
+    if sectors.len() != frames.len() {
+        return vec![false; n];
+    }
+    for (img, &third) in frames.iter().zip(sectors) {
         if img.dimensions() != (w, h) {
             return vec![false; n];
         }
-        let third = (3 * k / frames.len()).min(2);
+        let third = third.min(2);
         sizes[third] += 1;
         for (i, p) in img.pixels().enumerate() {
             if p.0.iter().all(|&c| c >= 236) {

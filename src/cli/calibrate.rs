@@ -38,18 +38,17 @@ pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     cal.validate(&a.out).map_err(|e| crate::calibrate::CalibrationError::Unusable(e.to_string()))?;
     let dir = a.out.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(std::path::Path::new("."));
     crate::io::clean_stale_temps(dir);
-    let day: Vec<&image::RgbImage> = frames
+    let (day, suns): (Vec<&image::RgbImage>, Vec<[f64; 3]>) = frames
         .iter()
-        .filter(|(t, _)| position(t, &site.site.observer()).map(|s| s.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
-        .map(|(_, i)| i)
-        .collect();
+        .filter_map(|(t, i)| position(t, &site.site.observer()).ok().filter(|s| s.elevation_rad().to_degrees() > 10.0).map(|s| (i, s.direction_enu())))
+        .unzip();
+    let sectors = crate::calibrate::sun_sectors(&suns);
     let circle = day.first().copied().and_then(crate::calibrate::fit_image_circle);
     // Text or a logo burnt into the frames inside the image circle is masked even when no
-    // obstruction mask was asked for: the map would read it as cloud that never moves.
-    let overlay = match circle {
-        Some(c) if !a.obstruction_mask => crate::calibrate::overlay_mask(&day, c),
-        _ => None,
-    };
+    // obstruction mask was asked for: the map would read it as cloud that never moves. Inside the
+    // fitted camera's image circle.
+    let fitted = crate::calibrate::ImageCircle { cx_px: fit.camera.cx_px, cy_px: fit.camera.cy_px, radius_px: fit.camera.image_circle_radius_px() };
+    let overlay = if a.obstruction_mask || day.is_empty() { None } else { crate::calibrate::overlay_mask(&day, &sectors, fitted) };
     if let Some((m, inside)) = overlay {
         let mask = crate::io::encode_png_gray(&m);
         let file = content_named(&name, "mask", "png", &mask);
@@ -61,7 +60,7 @@ pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
     if a.obstruction_mask {
         let circle = circle.ok_or(crate::calibrate::CalibrationError::NoCircle)?;
         if !day.is_empty() {
-            let mask = crate::io::encode_png_gray(&crate::calibrate::obstruction_mask(&day, circle));
+            let mask = crate::io::encode_png_gray(&crate::calibrate::obstruction_mask(&day, &sectors, circle));
             let file = content_named(&name, "mask", "png", &mask);
             let mp = dir.join(&file);
             crate::io::write_atomic(&mp, &mask)?;

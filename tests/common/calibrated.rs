@@ -54,12 +54,11 @@ pub fn clear_day_of(day: &str, spec: &CameraSpec, size_px: u32, at: Option<[f64;
         .collect();
     let (fit, detections) = calibrate(&frames, &s.world.observer, &CalibrateOptions::default()).unwrap_or_else(|e| panic!("calibration of {}'s clear day: {e}", spec.name));
     let circle = fit_image_circle(&frames[frames.len() / 2].1).expect("image circle");
-    let daylight: Vec<&image::RgbImage> = frames
+    let (daylight, suns): (Vec<&image::RgbImage>, Vec<[f64; 3]>) = frames
         .iter()
-        .filter(|(t, _)| nephocast::sun::position(t, &s.world.observer).map(|p| p.elevation_rad().to_degrees() > 10.0).unwrap_or(false))
-        .map(|(_, i)| i)
-        .collect();
-    let mask = obstruction_mask(&daylight, circle);
+        .filter_map(|(t, i)| nephocast::sun::position(t, &s.world.observer).ok().filter(|p| p.elevation_rad().to_degrees() > 10.0).map(|p| (i, p.direction_enu())))
+        .unzip();
+    let mask = obstruction_mask(&daylight, &nephocast::calibrate::sun_sectors(&suns), circle);
     let reference = clear_sky_reference(&frames, &fit, &detections, &SegmentParams::default());
     eprintln!(
         "calibrated {} ({} frames, {size_px}² px{}): {} detections, model {}, residual RMS {:.3}°, direction error against the scene's camera {:.3}° RMS (zenith < 80°), glare lean {:?}",
