@@ -609,20 +609,7 @@ fn static_bright(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], obse
     if !seed.iter().any(|&b| b) {
         return None;
     }
-    // Widen by 2 px.
-    let (wi, hi) = (w as i64, h as i64);
-    let mut mask = vec![false; n];
-    for (i, _) in seed.iter().enumerate().filter(|(_, b)| **b) {
-        let (x, y) = ((i % w as usize) as i64, (i / w as usize) as i64);
-        for dy in -2..=2 {
-            for dx in -2..=2 {
-                let (xx, yy) = (x + dx, y + dy);
-                if xx >= 0 && yy >= 0 && xx < wi && yy < hi {
-                    mask[(yy * wi + xx) as usize] = true;
-                }
-            }
-        }
-    }
+    let mask = widened(&seed, w, h, 2);
     Some(mask)
 }
 
@@ -650,6 +637,21 @@ pub fn sun_sectors(dirs: &[[f64; 3]]) -> Vec<usize> {
     let rel: Vec<f64> = az.iter().map(|a| (a - start).rem_euclid(TAU)).collect();
     let range = rel.iter().copied().fold(0.0, f64::max);
     rel.iter().map(|r| if range > 0.0 { ((3.0 * r / range) as usize).min(2) } else { 0 }).collect()
+}
+
+/// A mask of `w × h` pixels widened by `r` pixels (a square neighbourhood).
+pub(crate) fn widened(mask: &[bool], w: u32, h: u32, r: i64) -> Vec<bool> {
+    let (wi, hi) = (w as i64, h as i64);
+    let mut out = vec![false; mask.len()];
+    for (i, _) in mask.iter().enumerate().filter(|(_, b)| **b) {
+        let (x, y) = (i as i64 % wi, i as i64 / wi);
+        for yy in (y - r).max(0)..=(y + r).min(hi - 1) {
+            for xx in (x - r).max(0)..=(x + r).min(wi - 1) {
+                out[(yy * wi + xx) as usize] = true;
+            }
+        }
+    }
+    out
 }
 
 /// The frame with the bright pixels of `ignore` darkened (black), or `None` when it has none

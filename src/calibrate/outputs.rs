@@ -214,25 +214,11 @@ fn burnt_in(frames: &[&image::RgbImage], sectors: &[usize]) -> Vec<bool> {
             }
         }
     }
-    let mut out = vec![false; n];
     if sizes.contains(&0) {
-        return out;
+        return vec![false; n];
     }
-    let (wi, hi) = (w as i64, h as i64);
-    for (i, c) in counts.iter().enumerate() {
-        if (0..3).all(|t| c[t] as f64 >= 0.2 * sizes[t] as f64) {
-            let (x, y) = ((i % w as usize) as i64, (i / w as usize) as i64);
-            for dy in -2..=2 {
-                for dx in -2..=2 {
-                    let (xx, yy) = (x + dx, y + dy);
-                    if xx >= 0 && yy >= 0 && xx < wi && yy < hi {
-                        out[(yy * wi + xx) as usize] = true;
-                    }
-                }
-            }
-        }
-    }
-    out
+    let seed: Vec<bool> = counts.iter().map(|c| (0..3).all(|t| c[t] as f64 >= 0.2 * sizes[t] as f64)).collect();
+    super::widened(&seed, w, h, 2)
 }
 
 /// The calibration file of a fit: the camera, and the record of how it was fitted (span,
