@@ -88,6 +88,9 @@ pub struct ReplaySummary {
     /// it, their readings not following the map's shadows better than the same readings shifted
     /// in time ([`crate::cbh::CbhState::fits_held_back`]).
     pub shadow_fits_held_back: usize,
+    /// Shadow-timing fits that disagreed with the configured base while none could be checked
+    /// against time-shifted readings ([`crate::cbh::CbhState::fits_unjudged_disagreeing`]).
+    pub shadow_fits_unjudged: usize,
     /// How the measurements' times were read (`[measurements] time_label`).
     pub time_label: crate::io::TimeLabel,
     /// Output tables written (final paths; overlays not listed).
@@ -240,6 +243,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
         map_plane: last_plane_m.map(|h| (h, nowcaster.map_plane_moves())),
         prior_base_rejected: nowcaster.cbh_state().prior_rejected(),
         shadow_fits_held_back: nowcaster.cbh_state().fits_held_back(),
+        shadow_fits_unjudged: nowcaster.cbh_state().fits_unjudged_disagreeing(),
         time_label: nowcaster.site().file.measurements.time_label,
         outputs,
     };

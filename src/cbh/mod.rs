@@ -235,6 +235,10 @@ pub struct CbhState {
     /// Fits that disagreed with the configured base but did not show that the readings follow the
     /// map's shadows ([`ShadowFit::follows_map`]): held back from judging it.
     held_back: usize,
+    /// Fits that disagreed with the configured base before any fit could be judged.
+    unjudged_disagreeing: usize,
+    /// Fits the time-shift check gave a verdict on.
+    judged: usize,
     /// The estimator, made on the first frame with enough pyranometer columns (in live mode the
     /// measurements may arrive after start).
     shadow: Option<ShadowTiming>,
@@ -296,6 +300,8 @@ impl CbhState {
             disagreeing: 0,
             prior_rejected: false,
             held_back: 0,
+            unjudged_disagreeing: 0,
+            judged: 0,
             shadow: None,
             last_fit: None,
             last_no_fit: None,
@@ -414,6 +420,14 @@ impl CbhState {
         self.held_back
     }
 
+    /// Shadow-timing fits that disagreed with the configured base while no fit of the run could be
+    /// judged at all (readings too coarse for the time-shift check: about a minute or finer is
+    /// needed, [`crate::cbh::shadow::ShadowParams::null_min_shifts`]): the configured base was
+    /// kept without a check. 0 once any fit has been judged.
+    pub fn fits_unjudged_disagreeing(&self) -> usize {
+        if self.judged == 0 { self.unjudged_disagreeing } else { 0 }
+    }
+
     /// A shadow-timing fit made at `time`, the configured base (or the known layer's) being
     /// `prior_m`: kept as the newest, and judged against that base (with `shadow_timing` unset the
     /// fits join the combination once [`CHECK_MIN_DISAGREEING`] in a row disagree with it on the
@@ -423,6 +437,8 @@ impl CbhState {
     fn take_fit(&mut self, time: DateTime<Utc>, fit: ShadowFit, prior_m: Option<f64>) {
         self.estimates_made += 1;
         let side = prior_m.map_or(0, |p| disagreement(fit.cbh_m, fit.rel_sigma, p));
+        self.judged += fit.null.judged as usize;
+        self.unjudged_disagreeing += (side != 0 && !fit.null.judged) as usize;
         if side != 0 && !fit.null.judged {
             // Not judged yet (the window's readings span too few shifts): neither counted nor
             // breaking the run, so that a window holding one reading fewer now and then (1-minute
@@ -646,6 +662,16 @@ mod tests {
         }
         assert_eq!((st.prior_rejected(), st.fits_held_back()), (true, 4), "three passed fits, two unjudged between them");
         assert_eq!(st.update(&frame(t)).source, CbhSource::ShadowTiming);
+        assert_eq!(st.fits_unjudged_disagreeing(), 0, "fits were judged in this run");
+        // Readings too coarse for the check: no fit is ever judged, the base stays, and the
+        // disagreeing fits are counted for the note.
+        let mut st = CbhState::new(&CloudSection { base_height_m: Some(800.0), ..Default::default() });
+        let coarse = NullTest { shifts: 2, judged: false, passed: false, ..passed_null() };
+        for _ in 0..5 {
+            st.take_fit(t, ShadowFit { null: coarse.clone(), ..fit(1600.0) }, Some(800.0));
+            t += chrono::Duration::seconds(20);
+        }
+        assert_eq!((st.prior_rejected(), st.fits_held_back(), st.fits_unjudged_disagreeing()), (false, 0, 5));
         // Asked for: every fit combined; turned off: none.
         assert_eq!(run(Some(true), &[820.0])[0].source, CbhSource::ShadowTiming);
         assert_eq!(run(Some(false), &[1600.0, 1600.0])[1].source, CbhSource::Configured);

@@ -105,6 +105,11 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
             if s.shadow_fits_held_back == 1 { "" } else { "s" },
             s.time_label.name()
         );
+    } else if s.shadow_fits_unjudged >= crate::cbh::CHECK_MIN_DISAGREEING {
+        crate::say!(
+            "note: {} shadow-timing fits disagreed with the configured cloud base, but the pyranometer readings are too coarse to check them against the same readings shifted in time (readings every minute or finer are), so the configured base was kept unchecked. Check the base, or set [clouds] shadow_timing = true to combine the fits with it",
+            s.shadow_fits_unjudged
+        );
     }
     if let Some((h, moves)) = s.map_plane {
         match moves {
