@@ -264,6 +264,8 @@ pub struct FrameNaming {
     pub format: Option<String>,
     /// The zone of times whose pattern carries no offset, minutes east of UTC.
     pub offset_min: i32,
+    /// Whether the pattern carries an offset or Unix seconds (then the zone does not apply).
+    with_offset: bool,
 }
 
 /// A time read from a frame name must fall within these years (a pattern can match a run of
@@ -283,28 +285,21 @@ impl FrameNaming {
             }
             let t0 = NaiveDateTime::parse_from_str("2026-06-14T10:17:00", "%Y-%m-%dT%H:%M:%S").map_err(|e| e.to_string())?.and_utc();
             let text = t0.format(f).to_string();
-            let naming = FrameNaming { format: format.clone(), offset_min: 0 };
+            let naming = FrameNaming { format: format.clone(), offset_min: 0, with_offset: carries_offset(f) };
             if naming.time_of(&text) != Some(t0) {
                 return Err(format!("a pattern that carries the date and the time to the minute at least (a name written with {f:?} reads {text:?})"));
             }
         }
-        Ok(FrameNaming { format, offset_min })
+        let with_offset = format.as_deref().is_some_and(carries_offset);
+        Ok(FrameNaming { format, offset_min, with_offset })
     }
 
     /// The UTC time in a frame file name, if it carries one.
     pub fn time_of(&self, name: &str) -> Option<DateTime<Utc>> {
         let Some(f) = &self.format else { return time_from_frame_name(name) };
-        use chrono::format::{Fixed, Item, Numeric, StrftimeItems};
-        let with_offset = StrftimeItems::new(f).any(|i| {
-            matches!(
-                i,
-                Item::Fixed(Fixed::TimezoneOffset | Fixed::TimezoneOffsetColon | Fixed::TimezoneOffsetDoubleColon | Fixed::TimezoneOffsetTripleColon | Fixed::TimezoneOffsetColonZ | Fixed::TimezoneOffsetZ)
-                    | Item::Numeric(Numeric::Timestamp, _)
-            )
-        });
         for (i, _) in name.char_indices() {
             let rest = &name[i..];
-            let t = if with_offset {
+            let t = if self.with_offset {
                 DateTime::parse_and_remainder(rest, f).ok().map(|(t, _)| t.with_timezone(&Utc))
             } else {
                 NaiveDateTime::parse_and_remainder(rest, f).ok().map(|(t, _)| t.and_utc() - chrono::Duration::minutes(self.offset_min as i64))
@@ -327,6 +322,18 @@ impl FrameNaming {
             }
         }
     }
+}
+
+/// Whether a chrono pattern carries an offset or Unix seconds (a time that needs no zone).
+fn carries_offset(f: &str) -> bool {
+    use chrono::format::{Fixed, Item, Numeric, StrftimeItems};
+    StrftimeItems::new(f).any(|i| {
+        matches!(
+            i,
+            Item::Fixed(Fixed::TimezoneOffset | Fixed::TimezoneOffsetColon | Fixed::TimezoneOffsetDoubleColon | Fixed::TimezoneOffsetTripleColon | Fixed::TimezoneOffsetColonZ | Fixed::TimezoneOffsetZ)
+                | Item::Numeric(Numeric::Timestamp, _)
+        )
+    })
 }
 
 /// The file name for a frame at a time: `frame_YYYYMMDDTHHMMSS.fffZ.<ext>`.

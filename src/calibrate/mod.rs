@@ -65,6 +65,7 @@ mod bound;
 mod detect;
 mod fit;
 mod lean;
+mod overlay;
 mod outputs;
 use bound::{bound_table, coverage_of};
 use fit::{Problem, finish, held_out, problem, solve, start_params, weighted_rms, with_lean};
@@ -73,7 +74,9 @@ pub mod clip;
 pub use clip::{ClipTest, chroma_dc_quantizer};
 pub use detect::{ImageCircle, detect_sun, find_sun_blob, fit_image_circle, geometry_free, refine_image_circle, saturated_blob_area, screen_bloom, sky_edge_circle};
 pub use lean::{GlareLevel, LeanCorrection, LeanModel, correct_glare_lean, glare_levels};
-pub use outputs::{LIBRARY_SAMPLES_PER_RADIUS, calibration_record, clear_sky_reference, detections_csv, library_sample_step, obstruction_mask, overlay_mask, residual_plot};
+pub use outputs::{LIBRARY_SAMPLES_PER_RADIUS, calibration_record, clear_sky_reference, detections_csv, library_sample_step, obstruction_mask, residual_plot};
+pub use overlay::{STATIC_BRIGHT_SHARE, overlay_mask, sun_sectors};
+use overlay::{static_bright, without_static_bright};
 
 /// One sun detection paired with the sun's direction.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -341,7 +344,13 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     }
     let circle = median_circle(frames, &day)?;
     let size = first.1.dimensions();
-    let ignore = static_bright(frames, &day, observer, circle, options.clip);
+    let (lit, suns): (Vec<&image::RgbImage>, Vec<[f64; 3]>) = frames
+        .iter()
+        .zip(&day)
+        .filter(|(_, d)| **d)
+        .filter_map(|((t, img), _)| position(t, observer).ok().map(|sp| (img, direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad))))
+        .unzip();
+    let ignore = static_bright(&lit, &sun_sectors(&suns), circle, options.clip);
     let (raw, levels) = sun_detections(frames, &day, observer, circle, options.clip, ignore.as_deref());
     let found = raw.len();
     let mut screened = raw.clone();
@@ -553,127 +562,6 @@ fn sun_detections(
     dets.into_iter().unzip()
 }
 
-/// The share of a third of the day's frames in which a pixel must be bright for it to count as
-/// static (an overlay, not the sun): the sun's glare passes over a pixel within minutes.
-pub const STATIC_BRIGHT_SHARE: f64 = 0.2;
-
-/// How far outside the image circle's rim \[px\] the sun cannot be (the rim's blur).
-const RIM_MARGIN_PX: f64 = 3.0;
-
-/// Pixels the sun finder must not take for the sun's glare (at least the lowest glare level,
-/// [`lean::LEVELS`]\[0\], by `clip`): bright beyond the image circle (a time stamp or a logo
-/// burnt into the frame's corner), or bright in at least [`STATIC_BRIGHT_SHARE`] of the daytime
-/// frames of each third of the sun's azimuth range ([`sun_sectors`]: an overlay inside the
-/// circle, a lamp; the sun's glare passes over a pixel within minutes), widened by 2 px (JPEG rings around sharp text). `None`
-/// when no pixel is, so frames without such structure are read as they are.
-fn static_bright(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool], observer: &Observer, circle: ImageCircle, clip: ClipTest) -> Option<Vec<bool>> {
-    let (lit, dirs): (Vec<&image::RgbImage>, Vec<[f64; 3]>) = frames
-        .iter()
-        .zip(day)
-        .filter(|(_, d)| **d)
-        .filter_map(|((t, img), _)| position(t, observer).ok().map(|sp| (img, direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad))))
-        .unzip();
-    let sectors = sun_sectors(&dirs);
-    let first = lit.first()?;
-    let (w, h) = first.dimensions();
-    if lit.iter().any(|img| img.dimensions() != (w, h)) {
-        return None;
-    }
-    let n = (w * h) as usize;
-    let low = lean::LEVELS[0];
-    let rim2 = (circle.radius_px + RIM_MARGIN_PX).powi(2);
-    let outside = |i: usize| ((i % w as usize) as f64 - circle.cx_px).powi(2) + ((i / w as usize) as f64 - circle.cy_px).powi(2) > rim2;
-    // Bright counts per third of the sun's azimuth range.
-    let mut counts = vec![[0u16; 3]; n];
-    let mut sizes = [0usize; 3];
-    let mut seed = vec![false; n];
-    for (img, &third) in lit.iter().zip(&sectors) {
-        sizes[third] += 1;
-        for (i, p) in img.pixels().enumerate() {
-            if clip.value(p.0) >= low {
-                counts[i][third] = counts[i][third].saturating_add(1);
-                if outside(i) {
-                    seed[i] = true;
-                }
-            }
-        }
-    }
-    if sizes.contains(&0) {
-        return None;
-    }
-    for (i, c) in counts.iter().enumerate() {
-        if (0..3).all(|t| c[t] as f64 >= STATIC_BRIGHT_SHARE * sizes[t] as f64) {
-            seed[i] = true;
-        }
-    }
-    if !seed.iter().any(|&b| b) {
-        return None;
-    }
-    let mask = widened(&seed, w, h, 2);
-    Some(mask)
-}
-
-/// The third (0, 1 or 2) of the sun's azimuth range each frame's sun lies in, from the sun's
-/// (east, north, up) directions: the range is the smallest arc holding every azimuth (so a sun
-/// that crosses north, south of the equator, is one arc). Frames in different thirds see the sun in
-/// different parts of the sky, whether the frames are of one day or of several (a split of the
-/// frames by their order would put each of three days in its own third, and the sun's path
-/// repeats).
-pub fn sun_sectors(dirs: &[[f64; 3]]) -> Vec<usize> {
-    use std::f64::consts::TAU;
-    let az: Vec<f64> = dirs.iter().map(|d| d[0].atan2(d[1]).rem_euclid(TAU)).collect();
-    let mut sorted = az.clone();
-    sorted.sort_by(f64::total_cmp);
-    let Some(&last) = sorted.last() else { return vec![] };
-    // The arc starts after the largest gap between neighbouring azimuths (round the circle).
-    let mut start = sorted[0];
-    let mut gap = sorted[0] + TAU - last;
-    for w in sorted.windows(2) {
-        if w[1] - w[0] > gap {
-            gap = w[1] - w[0];
-            start = w[1];
-        }
-    }
-    let rel: Vec<f64> = az.iter().map(|a| (a - start).rem_euclid(TAU)).collect();
-    let range = rel.iter().copied().fold(0.0, f64::max);
-    rel.iter().map(|r| if range > 0.0 { ((3.0 * r / range) as usize).min(2) } else { 0 }).collect()
-}
-
-/// A mask of `w × h` pixels widened by `r` pixels (a square neighbourhood).
-pub(crate) fn widened(mask: &[bool], w: u32, h: u32, r: i64) -> Vec<bool> {
-    let (wi, hi) = (w as i64, h as i64);
-    let mut out = vec![false; mask.len()];
-    for (i, _) in mask.iter().enumerate().filter(|(_, b)| **b) {
-        let (x, y) = (i as i64 % wi, i as i64 / wi);
-        for yy in (y - r).max(0)..=(y + r).min(hi - 1) {
-            for xx in (x - r).max(0)..=(x + r).min(wi - 1) {
-                out[(yy * wi + xx) as usize] = true;
-            }
-        }
-    }
-    out
-}
-
-/// The frame with the bright pixels of `ignore` darkened (black), or `None` when it has none
-/// there.
-fn without_static_bright(img: &image::RgbImage, ignore: &[bool], clip: ClipTest) -> Option<image::RgbImage> {
-    if ignore.len() != (img.width() * img.height()) as usize {
-        return None;
-    }
-    let low = lean::LEVELS[0];
-    let hit = |(i, p): (usize, &image::Rgb<u8>)| ignore[i] && clip.value(p.0) >= low;
-    if !img.pixels().enumerate().any(hit) {
-        return None;
-    }
-    let mut out = img.clone();
-    for (i, p) in out.pixels_mut().enumerate() {
-        if ignore[i] && clip.value(p.0) >= low {
-            *p = image::Rgb([0, 0, 0]);
-        }
-    }
-    Some(out)
-}
-
 /// Fit every lens family asked for (all by default) and score each by its held-out error. Each
 /// family is fitted with and without a bloom lean (see [`Problem::lean_px`]); the lean is kept
 /// only when it lowers the held-out error by more than [`LEAN_GAIN`].
@@ -828,19 +716,6 @@ fn check_usable(fit: &Fit) -> Result<(), CalibrationError> {
 mod tests {
     use super::*;
 
-    /// The sun's azimuth range in thirds: a northern day (east → south → west), a southern one
-    /// crossing north (azimuth 60° → 0° → 300° is one arc), and three such days one after another.
-    #[test]
-    fn sun_sectors_split_the_sun_s_arc() {
-        let dir = |az_deg: f64| crate::sun::direction_enu(0.6, az_deg.to_radians());
-        let north: Vec<[f64; 3]> = [100.0, 140.0, 180.0, 220.0, 260.0].map(dir).to_vec();
-        assert_eq!(sun_sectors(&north), vec![0, 0, 1, 2, 2]);
-        let south: Vec<[f64; 3]> = [60.0, 30.0, 0.0, 330.0, 300.0].map(dir).to_vec();
-        assert_eq!(sun_sectors(&south), vec![2, 2, 1, 0, 0]);
-        let three: Vec<[f64; 3]> = north.iter().chain(&north).chain(&north).copied().collect();
-        assert_eq!(sun_sectors(&three), [0, 0, 1, 2, 2].repeat(3));
-        assert!(sun_sectors(&[]).is_empty());
-    }
 
     /// A camera tilted beyond 3° draws the clock warning; one levelled within a degree or two
     /// (the renderers' 0.5–1.8°) does not.

@@ -56,8 +56,8 @@ pub fn clear_sky_reference_of(frames: &[(DateTime<Utc>, image::RgbImage)], cam: 
         .collect();
     // Text or a logo burnt into the frames is not clear sky (see `obstruction_mask`).
     let imgs: Vec<&image::RgbImage> = used.iter().map(|(img, _)| *img).collect();
-    let sectors = super::sun_sectors(&used.iter().map(|(_, d)| [d[0] as f64, d[1] as f64, d[2] as f64]).collect::<Vec<_>>());
-    let overlay = if imgs.is_empty() { vec![false; w * h] } else { burnt_in(&imgs, &sectors) };
+    let sectors = super::overlay::sun_sectors(&used.iter().map(|(_, d)| [d[0] as f64, d[1] as f64, d[2] as f64]).collect::<Vec<_>>());
+    let overlay = if imgs.is_empty() { vec![false; w * h] } else { super::overlay::burnt_in(&imgs, &sectors) };
     let pixels: Vec<(usize, [f32; 3], f32)> = pixels.into_iter().filter(|(i, _, _)| !overlay[*i]).collect();
     let samples = used.iter().map(|(img, sun)| {
         let raw = img.as_raw();
@@ -151,7 +151,7 @@ pub fn residual_plot(background: &image::RgbImage, fit: &Fit, dets: &[Detection]
 pub fn obstruction_mask(frames: &[&image::RgbImage], sectors: &[usize], circle: ImageCircle) -> image::GrayImage {
     let (w, h) = frames[0].dimensions();
     let n = frames.len() as f64;
-    let overlay = burnt_in(frames, sectors);
+    let overlay = super::overlay::burnt_in(frames, sectors);
     let mut out = image::GrayImage::new(w, h);
     for y in 0..h {
         for x in 0..w {
@@ -175,51 +175,6 @@ pub fn obstruction_mask(frames: &[&image::RgbImage], sectors: &[usize], circle: 
     out
 }
 
-/// The burnt-in overlay alone (see [`obstruction_mask`]) as an obstruction mask, when any of it
-/// lies inside the image circle: white = open sky. With it, the count of its pixels there.
-pub fn overlay_mask(frames: &[&image::RgbImage], sectors: &[usize], circle: ImageCircle) -> Option<(image::GrayImage, usize)> {
-    let (w, h) = frames.first()?.dimensions();
-    let overlay = burnt_in(frames, sectors);
-    let mut out = image::GrayImage::from_pixel(w, h, image::Luma([255]));
-    let mut inside = 0;
-    for (i, _) in overlay.iter().enumerate().filter(|(_, o)| **o) {
-        let (x, y) = ((i % w as usize) as u32, (i / w as usize) as u32);
-        out.put_pixel(x, y, image::Luma([0]));
-        if ((x as f64 - circle.cx_px).powi(2) + (y as f64 - circle.cy_px).powi(2)).sqrt() <= circle.radius_px {
-            inside += 1;
-        }
-    }
-    (inside > 0).then_some((out, inside))
-}
-
-/// Pixels white (every channel at least 236) in at least a fifth of the frames of each third of
-/// the sun's azimuth range (`sectors`), widened by 2 px (see [`obstruction_mask`]).
-fn burnt_in(frames: &[&image::RgbImage], sectors: &[usize]) -> Vec<bool> {
-    let (w, h) = frames[0].dimensions();
-    let n = (w * h) as usize;
-    let mut counts = vec![[0u16; 3]; n];
-    let mut sizes = [0usize; 3];
-    if sectors.len() != frames.len() {
-        return vec![false; n];
-    }
-    for (img, &third) in frames.iter().zip(sectors) {
-        if img.dimensions() != (w, h) {
-            return vec![false; n];
-        }
-        let third = third.min(2);
-        sizes[third] += 1;
-        for (i, p) in img.pixels().enumerate() {
-            if p.0.iter().all(|&c| c >= 236) {
-                counts[i][third] = counts[i][third].saturating_add(1);
-            }
-        }
-    }
-    if sizes.contains(&0) {
-        return vec![false; n];
-    }
-    let seed: Vec<bool> = counts.iter().map(|c| (0..3).all(|t| c[t] as f64 >= 0.2 * sizes[t] as f64)).collect();
-    super::widened(&seed, w, h, 2)
-}
 
 /// The calibration file of a fit: the camera, and the record of how it was fitted (span,
 /// detections, residuals, standard errors, held-out errors per lens family, coverage, the
