@@ -512,10 +512,26 @@ pub fn build_map_from(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &Se
     build_map_exposed(pixels, lut, sky, params, reference).0
 }
 
-/// [`build_map_from`] with the frame's exposure against the clear-sky library's brightness
-/// (`brightness::ExposureMeter`; `None` when it was not measured), which the far-field learner
-/// (`farfield`) reads its brightness feature against.
-pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> (CloudMap, Option<f32>) {
+/// What a frame's map read of the camera's settings against the clear-sky library
+/// ([`build_map_exposed`]).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FrameSettings {
+    /// The frame's exposure against the library's brightness (`brightness::ExposureMeter`; `None`
+    /// when it was not measured).
+    pub exposure: Option<f32>,
+    /// The running clear-sky shift of ln(R/B) after this frame ([`crate::segment::FrameReference::ratio_shift_ln`]).
+    pub ratio_shift_ln: f32,
+    /// This frame's own shift, when its clear sky gave one.
+    pub ratio_shift_measured: Option<f32>,
+    /// The factor the library's ratios were read with.
+    pub ratio_scale: f32,
+}
+
+/// [`build_map_from`] with what the frame read of the camera's settings ([`FrameSettings`]): its
+/// exposure against the clear-sky library's brightness, which the far-field learner (`farfield`)
+/// reads its brightness feature against, and the colour balance's shift, which the engine keeps
+/// for the next frame ([`Reference::keep_ratio_shift`]).
+pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: &SegmentParams, reference: &Reference) -> (CloudMap, FrameSettings) {
     let n = lut.pixel.len();
     let geom = |k: usize| PixelGeom { z_deg: lut.z_deg[k], gamma_deg: sky.gamma_deg[k] };
     // Nearest-pixel reading where clipping is judged (the sample's glare rings, and cells near the
@@ -585,7 +601,8 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
         // A cell made thin by the distance or darkness rules keeps the class's middle.
         *o = if (*c == thin) & (*s >= lo) & (*s < hi) { v } else { 0.5 };
     }
-    (CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }, fr.exposure)
+    let settings = FrameSettings { exposure: fr.exposure, ratio_shift_ln: fr.ratio_shift_ln, ratio_shift_measured: fr.ratio_shift_measured, ratio_scale: fr.ratio_scale };
+    (CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }, settings)
 }
 
 #[cfg(test)]

@@ -93,8 +93,43 @@ pub struct ReplaySummary {
     pub shadow_fits_unjudged: usize,
     /// How the measurements' times were read (`[measurements] time_label`).
     pub time_label: crate::io::TimeLabel,
+    /// The factor by which the frames' red/blue ratios read above the clear-sky library's colour
+    /// balance at the end ([`crate::segment::Reference::ratio_scale`]), and the frames whose clear sky
+    /// measured it.
+    pub clear_rb_scale: (f64, usize),
+    /// The frames' exposure against the library's clear-sky brightness and the frames that
+    /// measured it ([`crate::segment::Reference::mean_exposure`]).
+    pub exposure: Option<(f64, usize)>,
     /// Output tables written (final paths; overlays not listed).
     pub outputs: Vec<PathBuf>,
+}
+
+/// Frames whose exposure must have been measured before [`camera_setting_notes`] judges it.
+pub const EXPOSURE_NOTE_MIN_FRAMES: usize = 10;
+/// Exposure against the calibration day's beyond which [`camera_setting_notes`] speaks (a factor;
+/// its inverse below): a tenth, beyond the spread of a fixed camera's clear sky between days (the
+/// independent scenes' frames read 0.977 and 1.007 as medians over their cloudy days, 1.002 and
+/// 0.998 over their clear days, single frames 0.82–1.09; own choice otherwise).
+pub const EXPOSURE_NOTE_FACTOR: f64 = 1.1;
+
+/// What a run's frames said of the camera's settings against the calibration day's, for the
+/// operator: the colour balance followed (`clear_rb_scale`, with the frames that measured it) when
+/// it is not 1, and the exposure (with its frames) when it differs by more than
+/// [`EXPOSURE_NOTE_FACTOR`] over at least [`EXPOSURE_NOTE_MIN_FRAMES`] frames.
+pub fn camera_setting_notes(clear_rb_scale: (f64, usize), exposure: Option<(f64, usize)>) -> Vec<String> {
+    let mut notes = vec![];
+    let (scale, frames) = clear_rb_scale;
+    if scale != 1.0 {
+        notes.push(format!(
+            "the frames' clear sky read red/blue ×{scale:.2} against the clear-sky library from `calibrate` ({frames} frames measured it): the camera's white balance differs from the calibration day's. It was followed (clear_rb_scale in frames.csv), but frames without clear sky before it was measured were read as they are: set the white balance as it was on the calibration day, or calibrate from a clear day taken with today's settings"
+        ));
+    }
+    if let Some((e, n)) = exposure.filter(|(e, n)| *n >= EXPOSURE_NOTE_MIN_FRAMES && (*e > EXPOSURE_NOTE_FACTOR || *e < 1.0 / EXPOSURE_NOTE_FACTOR)) {
+        notes.push(format!(
+            "the frames' clear sky read ×{e:.2} as bright as on the calibration day ({n} frames measured it; exposure in frames.csv): the camera's exposure differs, which the map near the sun does not follow (clipping there is read as on the calibration day). Fix the camera's exposure, or calibrate from a clear day taken with the same settings"
+        ));
+    }
+    notes
 }
 
 /// An error that stops a replay.
@@ -245,6 +280,8 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
         shadow_fits_held_back: nowcaster.cbh_state().fits_held_back(),
         shadow_fits_unjudged: nowcaster.cbh_state().fits_unjudged_disagreeing(),
         time_label: nowcaster.site().file.measurements.time_label,
+        clear_rb_scale: (f64::from(nowcaster.reference().ratio_scale()), nowcaster.reference().ratio_shift_frames),
+        exposure: nowcaster.reference().mean_exposure(),
         outputs,
     };
     Ok((summary, set))
@@ -283,7 +320,7 @@ impl ReplayTables {
             ramps_jsonl: String::new(),
             alarms: CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability"),
             members: CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2,plant_power_kw"),
-            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin,beam_clear,beam_thick,beam_cloud_brightness,diffuse_per_cover,tuning_rows"),
+            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin,beam_clear,beam_thick,beam_cloud_brightness,diffuse_per_cover,tuning_rows,clear_rb_scale,exposure"),
         }
     }
 
@@ -363,13 +400,15 @@ impl ReplayTables {
             format!("{:.3}", nc.irradiance.beam_cloud_brightness),
             format!("{:.3}", nc.irradiance.diffuse_per_cover),
             nc.tuning_rows.to_string(),
+            format!("{:.3}", nc.clear_rb_scale),
+            nc.exposure.map(|e| format!("{e:.3}")).unwrap_or_default(),
         ]);
     }
 
     /// A rejected frame's row in `frames.csv`.
     fn add_rejected(&mut self, time: &DateTime<Utc>, name: &str, rej: &Rejection, dms: f64) {
         let mut row = vec![fmt_time(time), name.to_string(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
-        row.resize(23, String::new());
+        row.resize(25, String::new());
         self.fr.row(row);
     }
 
@@ -410,5 +449,25 @@ fn offer_second_frame(nowcaster: &mut Nowcaster, second: &[crate::io::FrameRef],
         && let Ok(img) = crate::intake::read_frame(&s.path, &crate::intake::IntakeOptions::default())
     {
         nowcaster.offer_second_frame(s.time, img);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The notes speak only past their thresholds (own choice: the thresholds are the constants'
+    /// documented ones).
+    #[test]
+    fn camera_setting_notes_speak_past_their_thresholds() {
+        assert!(camera_setting_notes((1.0, 50), Some((1.04, 200))).is_empty());
+        assert!(camera_setting_notes((1.0, 0), None).is_empty());
+        // Too few frames measured the exposure.
+        assert!(camera_setting_notes((1.0, 0), Some((1.3, EXPOSURE_NOTE_MIN_FRAMES - 1))).is_empty());
+        let n = camera_setting_notes((1.16, 88), Some((0.79, 181)));
+        assert_eq!(n.len(), 2, "{n:?}");
+        assert!(n[0].contains("×1.16") && n[0].contains("88 frames") && n[0].contains("white balance"), "{}", n[0]);
+        assert!(n[1].contains("×0.79") && n[1].contains("181 frames") && n[1].contains("exposure"), "{}", n[1]);
+        assert_eq!(camera_setting_notes((1.0, 0), Some((1.16, 181))).len(), 1);
     }
 }

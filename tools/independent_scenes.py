@@ -829,7 +829,10 @@ def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0, s
     `scale`, resized first (OpenCV, area averaging down, bicubic up); with `stamp` ("corner" or
     "inside"), the frame's time burnt in as white text, in the top-left corner outside the image
     circle or inside the circle near its bottom rim, as many cameras do; with `gains` (R, G, B), each
-    channel multiplied (clipped at 255): another exposure or white balance."""
+    channel multiplied (clipped at 255): another exposure or white balance. Pixels clipped in every
+    channel (all at least 250: the sun and its bloom, far brighter than the sensor's saturation)
+    stay white, as a camera's clipped highlights do whatever its gains (a gain below 1 on the
+    decoded values would otherwise leave the sun's disk short of clipping in that channel)."""
     import cv2
     os.makedirs(out, exist_ok=True)
     for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
@@ -837,7 +840,9 @@ def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0, s
         if mirror:
             img = cv2.flip(img, 1)
         if gains:
+            clipped = (img >= 250).all(axis=2)
             img = np.clip(img.astype(np.float32) * np.array(gains[::-1], np.float32), 0, 255).round().astype(np.uint8)
+            img[clipped] = 255
         if scale != 1.0:
             img = cv2.resize(img, (round(img.shape[1] * scale), round(img.shape[0] * scale)),
                              interpolation=cv2.INTER_AREA if scale < 1 else cv2.INTER_CUBIC)

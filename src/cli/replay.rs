@@ -111,6 +111,9 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
             s.shadow_fits_unjudged
         );
     }
+    for note in crate::replay::camera_setting_notes(s.clear_rb_scale, s.exposure) {
+        crate::say!("note: {note}");
+    }
     if let Some((h, moves)) = s.map_plane {
         match moves {
             0 => crate::say!("cloud map plane: {h:.0} m, where it started (map_plane_m in motion.csv)"),

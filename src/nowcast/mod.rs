@@ -548,6 +548,8 @@ impl Nowcaster {
             alarm_basis: self.alarm.basis().cloned(),
             irradiance: *self.forecast_stage.params(),
             tuning_rows: self.forecast_stage.tuning_rows(),
+            clear_rb_scale: f64::from(self.map_stage.reference.ratio_scale()),
+            exposure: self.map_stage.last_exposure.map(f64::from),
             band_scale: [300, 600, 900].map(|h| self.ensemble_stage.band_scale(h)),
             sun_disk: disk,
             times: StageTimes { qc_ms: ms(t0, t_qc), map_ms: ms(t_qc, t_map), motion_ms: ms(t_map, t_motion), forecast_ms: ms(t_motion, t_central) + ms(t_ens, t_fc), ensemble_ms: ms(t_central, t_ens) },

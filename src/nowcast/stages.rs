@@ -108,6 +108,8 @@ pub(super) struct MapStage {
     /// (`segment.distant_contrast`) takes the cloud field as alike across the sky, which a veil over
     /// cumulus is not, so it rests while two layers are tracked.
     pub(super) layered: bool,
+    /// The last map's exposure against the library's clear-sky brightness, when it was measured.
+    pub(super) last_exposure: Option<f32>,
     /// The far-field learner (`segment.far_field_learning`, [`crate::farfield`]).
     far_field: crate::farfield::FarFieldLearner,
     /// What it did at the newest frame.
@@ -154,7 +156,11 @@ impl MapStage {
         } else {
             sp
         };
-        let (map, exposure) = build_map_exposed(pixels, lut, sky, map_sp, &self.reference);
+        let (map, settings) = build_map_exposed(pixels, lut, sky, map_sp, &self.reference);
+        self.reference.keep_ratio_shift(settings.ratio_shift_ln, settings.ratio_shift_measured.is_some());
+        self.reference.keep_exposure(settings.exposure);
+        self.last_exposure = settings.exposure;
+        let exposure = settings.exposure;
         let far = sp.far_field_learning.then(|| {
             crate::farfield::far_cells(&crate::farfield::FrameCells { map: &map, z_deg: &lut.z_deg, gamma_deg: &sky.gamma_deg, bin: &sky.bin, rgb: &pixels.plain, reference: &self.reference, exposure })
         });

@@ -161,6 +161,12 @@ pub struct Nowcast {
     pub irradiance: IrradianceParams,
     /// Pyranometer readings the transmittance tuning held at this frame.
     pub tuning_rows: usize,
+    /// The factor by which the frames' red/blue ratios read above the clear-sky library's colour
+    /// balance, as followed after this frame (1: as learnt; `segment.follow_colour_balance`).
+    pub clear_rb_scale: f64,
+    /// The frame's exposure against the clear-sky library's brightness, from its own clear sky
+    /// (`brightness::ExposureMeter`); `None` when it could not be measured (overcast).
+    pub exposure: Option<f64>,
     /// Width scale of the P10–P90 bands at 5, 10 and 15 minutes from the online calibration (1
     /// until calibrated; see [`crate::forecast::BandWidening`]).
     pub band_scale: [f64; 3],

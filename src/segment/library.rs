@@ -33,12 +33,22 @@ pub struct Reference {
     pub clipped_marks_in_use: bool,
     /// Frames that updated the library.
     pub library_frames: usize,
+    /// Running mean of the frames' clear-sky shift of ln(R/B) against the library (0: none found
+    /// yet; [`SegmentParams::follow_colour_balance`]).
+    pub ratio_shift_ln: f32,
+    /// Frames whose clear sky gave a shift.
+    pub ratio_shift_frames: usize,
+    /// Sum of ln(exposure) over the frames whose exposure against the library's brightness was
+    /// measured (`brightness::ExposureMeter`), and their count ([`Reference::mean_exposure`]).
+    pub exposure_ln_sum: f64,
+    /// Frames whose exposure was measured.
+    pub exposure_frames: usize,
 }
 
 impl Default for Reference {
     fn default() -> Self {
         let n = LIB_Z_BINS * LIB_G_BINS;
-        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], clipped_read: vec![(0.0, 0.0); n], clipped_marks_in_use: true, library_frames: 0 }
+        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], clipped_read: vec![(0.0, 0.0); n], clipped_marks_in_use: true, library_frames: 0, ratio_shift_ln: 0.0, ratio_shift_frames: 0, exposure_ln_sum: 0.0, exposure_frames: 0 }
     }
 }
 
@@ -209,6 +219,13 @@ impl Reference {
     }
 
     /// [`Reference::for_frame`] from samples that carry their parametric default reference.
+    ///
+    /// With [`SegmentParams::follow_colour_balance`] the frame's own clear-sky shift
+    /// ([`clear_ratio_shift`]) is folded into
+    /// the running mean ([`FrameReference::ratio_shift_ln`], kept for the next frames by
+    /// [`Reference::keep_ratio_shift`]), and the frame is classified at that mean's scale. The
+    /// offset, the glare rings and the exposure meter, gathered in the same pass that measures the
+    /// shift, read the ratios at the earlier frames' scale ([`Reference::ratio_scale`]).
     pub fn for_frame_with<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom, f32)>) -> FrameReference<'a> {
         let mut d = vec![];
         let mut n = 0usize;
@@ -216,12 +233,19 @@ impl Reference {
         let glare_zone = GLARE_RINGS as f32;
         let mut meter = crate::brightness::ExposureMeter::default();
         let metering = params.dark_cloud_margin > 0.0;
+        let follow = params.follow_colour_balance;
+        // Ratios are read in the library's own colour balance: the frame's divided by its scale
+        // (here the earlier frames').
+        let inv_earlier_scale = 1.0 / if follow { self.ratio_scale() } else { 1.0 };
+        // The colour balance's candidates: (ln(R/B ÷ library), ln library).
+        let mut shifts: Vec<(f32, f32)> = vec![];
         for (rgb, g, default_rb) in sample {
             if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
                 continue;
             }
             n += 1;
-            let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+            let rb_read = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+            let rb = rb_read * inv_earlier_scale;
             if g.gamma_deg < glare_zone {
                 // Clipped and not provably clear (the library is not consulted: a bound suffices).
                 let r = (g.gamma_deg as usize).min(GLARE_RINGS - 1);
@@ -233,17 +257,28 @@ impl Reference {
             if dd < params.offset_band as f32 {
                 d.push(dd);
             }
-            if metering && g.gamma_deg >= params.glare_zone_deg as f32 {
-                // Clear by a margin against the learned ratio: the frame's clear sky, for its exposure.
+            if (metering || follow) && g.gamma_deg >= params.glare_zone_deg as f32 {
                 let bin = lib_index(g.z_deg, g.gamma_deg);
-                if self.weight[bin] > 0.5 && self.bright[bin] > 0.0 {
+                if self.weight[bin] > 0.5 {
                     let r = self.lib[bin];
-                    if rb < r + 0.5 * params.thin_score as f32 * (params.cloud_rb as f32 - r).max(0.03) {
+                    if metering && self.bright[bin] > 0.0 && rb < r + 0.5 * params.thin_score as f32 * (params.cloud_rb as f32 - r).max(0.03) {
+                        // Clear by a margin against the learned ratio: the frame's clear sky, for its exposure.
                         meter.add(rgb, self.bright[bin], params.saturation_level);
+                    }
+                    if follow && g.z_deg <= SHIFT_MAX_ZENITH_DEG && rgb[2] >= 10 && rgb.iter().all(|c| *c < params.saturation_level) {
+                        shifts.push(((rb_read / r).ln(), r.ln()));
                     }
                 }
             }
         }
+        // The colour balance: this frame's clear-sky shift, folded into the running mean.
+        let ratio_shift_measured = if follow { clear_ratio_shift(&mut shifts) } else { None };
+        let ratio_shift_ln = match ratio_shift_measured {
+            Some(e) => self.ratio_shift_ln + SHIFT_RATE * (e - self.ratio_shift_ln),
+            None => self.ratio_shift_ln,
+        };
+        let ratio_scale = ratio_scale_of(ratio_shift_ln);
+        let inv_ratio_scale = 1.0 / ratio_scale;
         let offset = if n > 0 && d.len() as f64 >= params.offset_min_share * n as f64 && !d.is_empty() {
             let k = ((d.len() - 1) as f64 * params.offset_quantile).round() as usize;
             let (_, q, _) = d.select_nth_unstable_by(k, f32::total_cmp);
@@ -264,7 +299,35 @@ impl Reference {
         let glare_extent_deg = (first..GLARE_RINGS).find(|&r| ring_n[r] >= GLARE_RING_MIN_SAMPLES && !glare_ring[r]).unwrap_or(first) as f32;
         let glare_zone_deg = (params.glare_zone_deg as f32).max(glare_extent_deg);
         let exposure = if metering { meter.exposure() } else { None };
-        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg, exposure }
+        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg, exposure, ratio_scale, inv_ratio_scale, ratio_shift_measured, ratio_shift_ln }
+    }
+
+    /// The factor the library's ratios are read with ([`SegmentParams::follow_colour_balance`]):
+    /// the running clear-sky shift's, 1 within its dead band.
+    pub fn ratio_scale(&self) -> f32 {
+        ratio_scale_of(self.ratio_shift_ln)
+    }
+
+    /// Keep a frame's running clear-sky shift ([`FrameReference::ratio_shift_ln`]) for the next
+    /// frames.
+    pub fn keep_ratio_shift(&mut self, fr_shift_ln: f32, measured: bool) {
+        self.ratio_shift_ln = fr_shift_ln;
+        self.ratio_shift_frames += usize::from(measured);
+    }
+
+    /// Count a frame's measured exposure ([`FrameReference::exposure`]) into
+    /// [`Reference::mean_exposure`].
+    pub fn keep_exposure(&mut self, exposure: Option<f32>) {
+        if let Some(e) = exposure.filter(|e| *e > 0.0) {
+            self.exposure_ln_sum += f64::from(e).ln();
+            self.exposure_frames += 1;
+        }
+    }
+
+    /// The frames' exposure against the library's clear-sky brightness (geometric mean over the
+    /// frames that measured it), with their count; `None` before any did.
+    pub fn mean_exposure(&self) -> Option<(f64, usize)> {
+        (self.exposure_frames > 0).then(|| ((self.exposure_ln_sum / self.exposure_frames as f64).exp(), self.exposure_frames))
     }
 
     /// Learn from a frame only when it is judged clear: its cloud fraction at most
@@ -284,12 +347,14 @@ impl Reference {
         let nb = LIB_Z_BINS * LIB_G_BINS;
         let (mut sum, mut sum_v) = (vec![0f64; nb], vec![0f64; nb]);
         let (mut cnt, mut cnt_v) = (vec![0u32; nb], vec![0u32; nb]);
+        // Ratios learnt in the library's own colour balance (the frames' read back by its scale).
+        let unscale = 1.0 / f64::from(self.ratio_scale());
         for (rgb, g) in sample {
             if g.z_deg > params.max_zenith_deg as f32 || g.gamma_deg < params.sun_exclusion_deg as f32 {
                 continue;
             }
             let i = lib_index(g.z_deg, g.gamma_deg);
-            sum[i] += rgb[0] as f64 / (rgb[2] as f64).max(1.0);
+            sum[i] += rgb[0] as f64 / (rgb[2] as f64).max(1.0) * unscale;
             cnt[i] += 1;
             // Brightness from unclipped pixels only, as from a clear day (`from_clear_samples`).
             if rgb.iter().all(|c| *c < params.saturation_level) {
@@ -320,4 +385,118 @@ fn blend(slot: &mut f32, v: f32, rate: f32, fresh: bool) {
     } else {
         *slot += rate * (v - *slot);
     }
+}
+
+/// Clear-sky samples for the colour balance lie within this zenith angle \[°\] (the far field's
+/// haze whitens the sky with distance; `distance`).
+const SHIFT_MAX_ZENITH_DEG: f32 = 75.0;
+/// Fewest samples for a frame's clear-sky shift.
+const SHIFT_MIN_SAMPLES: usize = 300;
+/// Histogram step of the shift \[ln(R/B)\].
+const SHIFT_STEP: f32 = 0.005;
+/// The histogram's reach either side of 0 \[ln(R/B)\].
+const SHIFT_REACH: f32 = 0.6;
+/// Width of the window that holds the clear sky's samples \[ln(R/B)\]: the spread of a clear
+/// sky's ratio about its bin's mean (JPEG noise, the bins' 2° width).
+const SHIFT_WINDOW: f32 = 0.04;
+/// The window is looked for from the lowest samples' shift (their [`SHIFT_LOW_QUANTILE`]) to this
+/// far above it \[ln(R/B)\]: clear sky is the bluest sky there is, cloud only adds red.
+const SHIFT_SEARCH: f32 = 0.12;
+/// The lowest samples: this quantile of the shifts.
+const SHIFT_LOW_QUANTILE: f32 = 0.02;
+/// Least share of the samples in the clear sky's window.
+const SHIFT_MIN_SHARE: f32 = 0.15;
+/// The window's samples must span at least this share of the library's ratios (interquartile
+/// range of ln(R/B), against all samples'): a change of colour balance moves every clear ratio
+/// alike, where a veil, which reddens the blue sky more than the white, gives one shift only over
+/// a narrow range of them.
+const SHIFT_MIN_SPAN: f32 = 0.5;
+/// Largest shift followed \[ln(R/B)\] (±35 %).
+const SHIFT_MAX: f32 = 0.3;
+/// Weight of a frame's shift in the running mean.
+const SHIFT_RATE: f32 = 0.3;
+/// A running shift within this of 0 \[ln(R/B)\] reads the library as learnt: the day-to-day
+/// spread of the clear sky's own colour (haze), not the camera's.
+const SHIFT_DEAD_BAND: f32 = 0.03;
+
+/// The ratio scale of a running shift: 1 within [`SHIFT_DEAD_BAND`].
+fn ratio_scale_of(shift_ln: f32) -> f32 {
+    if shift_ln.abs() < SHIFT_DEAD_BAND { 1.0 } else { shift_ln.clamp(-SHIFT_MAX, SHIFT_MAX).exp() }
+}
+
+/// A frame's clear-sky shift of ln(R/B) against the library, from its samples
+/// `(ln(rb / library rb), ln(library rb))`; `None` unless the frame shows clear sky.
+///
+/// # Method
+/// A change of the camera's white balance (or of its colour gains) multiplies every pixel's red and
+/// blue by fixed factors, so every clear-sky sample's ratio moves by the same factor against the
+/// library learnt before it: their shifts gather in one narrow peak, whatever the library's ratio.
+/// Cloud only adds red (its ratio nears white), so the clear sky's peak is the lowest one. The shift
+/// is the mean of the samples in the fullest [`SHIFT_WINDOW`] found from the lowest samples up
+/// ([`SHIFT_SEARCH`]), provided that window holds [`SHIFT_MIN_SHARE`] of the samples (a frame with
+/// little clear sky gives none) and spans the library's ratios ([`SHIFT_MIN_SPAN`]; a veil over
+/// the whole sky does not). Common practice, no source.
+pub fn clear_ratio_shift(xs: &mut [(f32, f32)]) -> Option<f32> {
+    let n = xs.len();
+    if n < SHIFT_MIN_SAMPLES {
+        return None;
+    }
+    let bins = (2.0 * SHIFT_REACH / SHIFT_STEP).round() as usize;
+    let mut hist = vec![0u32; bins];
+    let bin_of = |x: f32| ((x + SHIFT_REACH) / SHIFT_STEP).floor();
+    for (x, _) in xs.iter() {
+        let b = bin_of(*x);
+        if b >= 0.0 && (b as usize) < bins {
+            hist[b as usize] += 1;
+        }
+    }
+    // The lowest samples' shift (values below the histogram count toward it).
+    let below = xs.iter().filter(|(x, _)| bin_of(*x) < 0.0).count() as u32;
+    let need = (SHIFT_LOW_QUANTILE * n as f32).ceil() as u32;
+    let mut seen = below;
+    let mut low = 0usize;
+    while low < bins && seen + hist[low] < need {
+        seen += hist[low];
+        low += 1;
+    }
+    let w = (SHIFT_WINDOW / SHIFT_STEP).round() as usize;
+    let last = (low + (SHIFT_SEARCH / SHIFT_STEP).round() as usize).min(bins.saturating_sub(w));
+    let first = low.saturating_sub(w / 2).min(last);
+    let (mut best, mut best_n) = (first, 0u32);
+    for s in first..=last {
+        let c: u32 = hist[s..s + w].iter().sum();
+        if c > best_n {
+            (best, best_n) = (s, c);
+        }
+    }
+    if (best_n as f32) < SHIFT_MIN_SHARE * n as f32 {
+        return None;
+    }
+    let lo = best as f32 * SHIFT_STEP - SHIFT_REACH;
+    let hi = lo + w as f32 * SHIFT_STEP;
+    let mut inside: Vec<f32> = vec![];
+    let mut sum = 0f64;
+    for (x, l) in xs.iter() {
+        if *x >= lo && *x < hi {
+            sum += f64::from(*x);
+            inside.push(*l);
+        }
+    }
+    let mut all: Vec<f32> = xs.iter().map(|(_, l)| *l).collect();
+    if iqr(&mut inside) < SHIFT_MIN_SPAN * iqr(&mut all) {
+        return None;
+    }
+    Some(((sum / inside.len() as f64) as f32).clamp(-SHIFT_MAX, SHIFT_MAX))
+}
+
+/// Interquartile range (nearest rank) of `v`, 0 when empty.
+fn iqr(v: &mut [f32]) -> f32 {
+    if v.is_empty() {
+        return 0.0;
+    }
+    let k = |q: f32| ((v.len() - 1) as f32 * q).round() as usize;
+    let (k1, k3) = (k(0.25), k(0.75));
+    let q3 = *v.select_nth_unstable_by(k3, f32::total_cmp).1;
+    let q1 = *v.select_nth_unstable_by(k1, f32::total_cmp).1;
+    q3 - q1
 }

@@ -206,6 +206,13 @@ pub struct SegmentParams {
     /// gap (`tests/stereo.rs`: −0.019 / −0.092 / +0.030 at 5 / 10 / 15 min); with
     /// `motion.widen_unconfirmed` the gap is −0.003 / −0.027 / +0.015, within the ±0.03 it allows.
     pub clipped_marks_with_pyranometers: bool,
+    /// Follow a change of the camera's colour balance since the library was learnt: each frame's
+    /// clear sky, where it is found, gives the shift of its red/blue ratio against the learned
+    /// library's (`library::clear_ratio_shift`), and the library's ratios are read scaled by the
+    /// shift's running mean ([`Reference::ratio_scale`]): the frame's ratios are divided by it
+    /// before they are judged (against the library, the parametric default and `cloud_rb` alike).
+    /// Off: the frames' ratios are judged as read.
+    pub follow_colour_balance: bool,
 }
 
 impl Default for SegmentParams {
@@ -245,6 +252,7 @@ impl Default for SegmentParams {
             library_keeps_clipped: true,
             judge_clipped_bins: true,
             clipped_marks_with_pyranometers: true,
+            follow_colour_balance: true,
         }
     }
 }
@@ -339,6 +347,16 @@ pub struct FrameReference<'a> {
     /// The frame's exposure against the library's clear-sky brightness (`brightness::ExposureMeter`);
     /// `None` when it could not be measured or the dark-cloud test is off.
     pub exposure: Option<f32>,
+    /// The factor by which this frame's ratios read above the library's colour balance
+    /// ([`Reference::ratio_scale`]); its samples' ratios are divided by it before they are judged.
+    pub ratio_scale: f32,
+    /// `1 / ratio_scale`.
+    inv_ratio_scale: f32,
+    /// This frame's clear-sky shift of ln(R/B) against the library, when found
+    /// (`library::clear_ratio_shift`).
+    pub ratio_shift_measured: Option<f32>,
+    /// The running mean of the shift after this frame (for [`Reference::keep_ratio_shift`]).
+    pub ratio_shift_ln: f32,
 }
 
 impl FrameReference<'_> {
@@ -434,7 +452,7 @@ impl FrameReference<'_> {
     #[inline]
     pub fn classify_plain(&self, rgb: [u8; 3], reference_rb: f32, thick_score: f32) -> (f32, u8) {
         let p = self.params;
-        let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+        let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0) * self.inv_ratio_scale;
         let contrast = p.cloud_rb as f32 - reference_rb;
         let denom = contrast.max(0.03);
         let s = (rb - reference_rb) / denom;
@@ -497,7 +515,7 @@ impl FrameReference<'_> {
             let j = self.judge_in_clipped_bin(rgb);
             return (f32::NAN, if self.outside_glare(g.gamma_deg) || (j == Class::Thick && g.gamma_deg >= p.sun_exclusion_deg as f32) { j } else { Class::Unknown });
         }
-        let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0);
+        let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0) * self.inv_ratio_scale;
         let r = self.reference_in_bin(bin, default_rb);
         let denom = (p.cloud_rb as f32 - r).max(0.03);
         let s = (rb - r) / denom;

@@ -3,7 +3,7 @@ use super::*;
 
 /// A frame's reference without offset, glare measured or exposure.
 fn plain_reference<'a>(r: &'a Reference, p: &'a SegmentParams) -> FrameReference<'a> {
-    FrameReference { reference: r, params: p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None }
+    FrameReference { reference: r, params: p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None, ratio_scale: 1.0, inv_ratio_scale: 1.0, ratio_shift_measured: None, ratio_shift_ln: 0.0 }
 }
 
 fn geom(z: f32, g: f32) -> PixelGeom {
@@ -182,4 +182,75 @@ fn library_overrides_default_once_learned() {
     let fr = plain_reference(&r, &p);
     assert!((fr.at(geom(31.0, 91.0)) - 0.75).abs() < 1e-6);
     assert_eq!(fr.classify([150, 170, 200], geom(31.0, 91.0)).1, Class::Clear);
+}
+
+/// A sky of `n` samples over a library of ratios 0.45–0.85: a share `clear` of clear sky read with
+/// the colour balance scaled by `scale`, the rest cloud (ratio 0.95 × `scale`) or, with `veil`,
+/// clear sky reddened by a veil (more where the sky is bluer).
+fn shift_samples(n: usize, clear: f32, scale: f32, veil: bool) -> Vec<(f32, f32)> {
+    (0..n)
+        .map(|i| {
+            let lib = 0.45 + 0.4 * ((i * 7919) % n) as f32 / n as f32;
+            let noise = 0.01 * (((i * 104_729) % 11) as f32 - 5.0) / 5.0;
+            let rb = if veil {
+                (lib + 0.5 * (0.95 - lib)) * scale
+            } else if (i as f32) < clear * n as f32 {
+                lib * scale
+            } else {
+                0.95 * scale
+            };
+            ((rb / lib).ln() + noise, lib.ln())
+        })
+        .collect()
+}
+
+#[test]
+fn a_colour_balance_shift_is_found_in_the_clear_sky() {
+    // Common practice, no source: a white-balance change scales every clear ratio alike.
+    for scale in [0.86f32, 1.0, 1.16] {
+        for clear in [0.3f32, 0.6, 1.0] {
+            let e = library::clear_ratio_shift(&mut shift_samples(4000, clear, scale, false)).expect("clear sky shows");
+            assert!((e - scale.ln()).abs() < 0.01, "scale {scale} clear {clear}: {e} against {}", scale.ln());
+        }
+    }
+    // Overcast (5 % clear), a veil over the whole sky, or too few samples: none.
+    assert_eq!(library::clear_ratio_shift(&mut shift_samples(4000, 0.05, 1.16, false)), None);
+    assert_eq!(library::clear_ratio_shift(&mut shift_samples(4000, 0.0, 1.0, true)), None);
+    assert_eq!(library::clear_ratio_shift(&mut shift_samples(200, 1.0, 1.16, false)), None);
+}
+
+#[test]
+fn the_followed_shift_reads_ratios_in_the_library_s_colour_balance() {
+    let p = SegmentParams::default();
+    let mut r = Reference::default();
+    let bin = lib_index(31.0, 61.0);
+    r.lib[bin] = 0.75;
+    r.weight[bin] = 10.0;
+    // Samples of clear sky in that bin, 16 % redder than the library (warmer white balance), and a
+    // cloud's.
+    let clear = [174u8, 190, 200];
+    let sky = move || std::iter::repeat_n((clear, geom(31.0, 61.0)), 1200);
+    let cloud = [215u8, 212, 200];
+    // Without following, that clear sky reads as thin cloud.
+    let off = SegmentParams { follow_colour_balance: false, ..p.clone() };
+    let fr = r.for_frame(&off, sky());
+    assert_eq!(fr.ratio_scale, 1.0);
+    assert_eq!(fr.classify(clear, geom(31.0, 61.0)).1, Class::Thin);
+    // Followed over frames, it reads clear and cloud stays cloud.
+    for _ in 0..12 {
+        let fr = r.for_frame(&p, sky());
+        let (ln, measured) = (fr.ratio_shift_ln, fr.ratio_shift_measured.is_some());
+        r.keep_ratio_shift(ln, measured);
+    }
+    assert!((r.ratio_scale() - 1.16).abs() < 0.02, "{}", r.ratio_scale());
+    assert_eq!(r.ratio_shift_frames, 12);
+    let fr = r.for_frame(&p, sky());
+    assert_eq!(fr.classify(clear, geom(31.0, 61.0)).1, Class::Clear);
+    assert_eq!(fr.classify(cloud, geom(31.0, 61.0)).1, Class::Thick);
+    // The library learns in its own colour balance: a clear frame leaves it where it was.
+    r.learn(&p, sky());
+    assert!((r.lib[bin] - 0.75).abs() < 0.01, "{}", r.lib[bin]);
+    // Within the dead band the library is read as learnt.
+    r.ratio_shift_ln = 0.02;
+    assert_eq!(r.ratio_scale(), 1.0);
 }
