@@ -91,6 +91,9 @@ pub struct ReplaySummary {
     /// Shadow-timing fits that disagreed with the configured base while none could be checked
     /// against time-shifted readings ([`crate::cbh::CbhState::fits_unjudged_disagreeing`]).
     pub shadow_fits_unjudged: usize,
+    /// The stretch of frames with readings the time-shift check needs \[s\]
+    /// ([`crate::cbh::CbhState::shadow_check_window_s`]; `None` without shadow timing).
+    pub shadow_check_window_s: Option<f64>,
     /// How the measurements' times were read (`[measurements] time_label`).
     pub time_label: crate::io::TimeLabel,
     /// The factor by which the frames' red/blue ratios read above the clear-sky library's colour
@@ -279,6 +282,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
         prior_base_rejected: nowcaster.cbh_state().prior_rejected(),
         shadow_fits_held_back: nowcaster.cbh_state().fits_held_back(),
         shadow_fits_unjudged: nowcaster.cbh_state().fits_unjudged_disagreeing(),
+        shadow_check_window_s: nowcaster.cbh_state().shadow_check_window_s(),
         time_label: nowcaster.site().file.measurements.time_label,
         clear_rb_scale: (f64::from(nowcaster.reference().ratio_scale()), nowcaster.reference().ratio_shift_frames),
         exposure: nowcaster.reference().mean_exposure(),

@@ -384,6 +384,63 @@ fn end_stamped_readings_with_their_label_give_the_start_stamped_run() {
     assert_ne!(a.cbh, c.cbh, "read a minute late, the readings gave the same base: the label would not matter");
 }
 
+/// The network's 1-minute means averaged in pairs into 2-minute means stamped at the start of
+/// their two minutes (a coarser logger; rows of an incomplete pair dropped).
+fn two_minute_readings() -> String {
+    let text = String::from_utf8(one_minute_readings()).unwrap();
+    let mut out = String::new();
+    let mut pending: Option<(chrono::DateTime<chrono::Utc>, Vec<f64>)> = None;
+    for l in text.lines() {
+        let Some((t, rest)) = l.split_once(',').filter(|(t, _)| !l.starts_with('#') && *t != "time_utc") else {
+            out.push_str(l);
+            out.push('\n');
+            continue;
+        };
+        let t: chrono::DateTime<chrono::Utc> = t.parse().unwrap();
+        let v: Vec<f64> = rest.split(',').map(|x| x.parse().unwrap_or(f64::NAN)).collect();
+        match pending.take() {
+            Some((t0, v0)) if t - t0 == chrono::Duration::minutes(1) => {
+                let mean: Vec<String> = v0.iter().zip(&v).map(|(a, b)| if (a + b).is_finite() { format!("{:.3}", 0.5 * (a + b)) } else { String::new() }).collect();
+                out.push_str(&format!("{},{}\n", t0.format("%Y-%m-%dT%H:%M:%SZ"), mean.join(",")));
+            }
+            _ if t.timestamp() % 120 == 0 => pending = Some((t, v)),
+            _ => {}
+        }
+    }
+    out
+}
+
+/// Two-minute means (a logger coarser than a minute) with the prior 1.6 times the true base and
+/// shadow timing as a check (the default): the check against shifted readings needs ten readings
+/// per sensor (`ShadowParams::for_period`: 20 minutes of frames), and then the wrong prior is
+/// replaced. Before the check scaled to the readings' period no fit was ever judged and the wrong
+/// prior stayed to the end (`replay` noted the unchecked fits).
+#[test]
+fn two_minute_readings_replace_a_wrong_prior() {
+    let d = network_scene();
+    let m = tempfile::tempdir().unwrap();
+    let path = m.path().join("two-minute.csv");
+    std::fs::write(&path, two_minute_readings()).unwrap();
+    let r = run_with(d, "shadow120", &path, |s| wrong_prior(s, None));
+    let first = r.cbh.iter().position(|c| c.2 == "shadow_timing");
+    let last = r.cbh.last().unwrap();
+    eprintln!(
+        "cbh-network, 2-minute means, prior {:.0} m: rejected {}, first frame on shadow timing {first:?} of {}; at the end {:.0} ± {:.0} m ({}; truth {TRUTH_M:.0} m); skill 5/10/15 min {:.3} {:.3} {:.3}",
+        1.6 * TRUTH_M,
+        r.rejected.0,
+        r.cbh.len(),
+        last.0,
+        last.1,
+        last.2,
+        skill(&r.eval, 5),
+        skill(&r.eval, 10),
+        skill(&r.eval, 15)
+    );
+    assert!(r.rejected.0, "2-minute means never replaced a prior 1.6 times the true base");
+    assert_eq!(last.2, "shadow_timing");
+    assert!((last.0 / TRUTH_M - 1.0).abs() <= 0.1, "the base at the end {:.0} m, truth {TRUTH_M:.0} m", last.0);
+}
+
 /// Readings an hour late (a logger on local time, an hour ahead of UTC) must not override a
 /// correctly configured base: the scene's readings taken an hour before the frames (the same
 /// scene started an hour earlier), stamped an hour later. Shadow timing still fits heights from

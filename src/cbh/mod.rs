@@ -237,6 +237,8 @@ pub struct CbhState {
     held_back: usize,
     /// Fits that disagreed with the configured base before any fit could be judged.
     unjudged_disagreeing: usize,
+    /// Times of the first and the newest of them.
+    unjudged_span: Option<(DateTime<Utc>, DateTime<Utc>)>,
     /// Fits the time-shift check gave a verdict on.
     judged: usize,
     /// The estimator, made on the first frame with enough pyranometer columns (in live mode the
@@ -301,6 +303,7 @@ impl CbhState {
             prior_rejected: false,
             held_back: 0,
             unjudged_disagreeing: 0,
+            unjudged_span: None,
             judged: 0,
             shadow: None,
             last_fit: None,
@@ -421,11 +424,33 @@ impl CbhState {
     }
 
     /// Shadow-timing fits that disagreed with the configured base while no fit of the run could be
-    /// judged at all (readings too coarse for the time-shift check: about a minute or finer is
-    /// needed, [`crate::cbh::shadow::ShadowParams::null_min_shifts`]): the configured base was
-    /// kept without a check. 0 once any fit has been judged.
+    /// judged at all (the time-shift check needs [`CbhState::shadow_check_window_s`] of frames
+    /// with readings, enough for [`crate::cbh::shadow::ShadowParams::null_min_shifts`] shifts: a
+    /// run or a stretch of readings shorter than that, or readings with gaps): the configured
+    /// base was kept without a check. 0 once any fit has been judged.
     pub fn fits_unjudged_disagreeing(&self) -> usize {
         if self.judged == 0 { self.unjudged_disagreeing } else { 0 }
+    }
+
+    /// How long a stretch of frames with readings the time-shift check of the shadow-timing fits
+    /// needs \[s\] ([`crate::cbh::shadow::ShadowParams::null_window_s`], scaled to the readings'
+    /// period: 600 s for 1-minute readings, 1200 s for 2-minute, 3000 s for 5-minute); `None`
+    /// before shadow timing runs.
+    pub fn shadow_check_window_s(&self) -> Option<f64> {
+        self.shadow.as_ref().map(|s| s.params.null_window_s.max(s.params.window_s))
+    }
+
+    /// For a running engine (live mode): the number of fits that disagreed with the configured base
+    /// while none could be judged ([`CbhState::fits_unjudged_disagreeing`]), once they are at least
+    /// [`CHECK_MIN_DISAGREEING`] and span at least [`CbhState::shadow_check_window_s`] (the
+    /// default 600 s before shadow timing runs; so the
+    /// check has had the window it needs and still gave no verdict; before that, coarse readings
+    /// are simply not checked yet).
+    pub fn base_left_unchecked(&self) -> Option<usize> {
+        let n = self.fits_unjudged_disagreeing();
+        let (first, last) = self.unjudged_span?;
+        let window_s = self.shadow_check_window_s().unwrap_or_else(|| ShadowParams::default().null_window_s);
+        (n >= CHECK_MIN_DISAGREEING && (last - first).num_milliseconds() as f64 / 1000.0 >= window_s).then_some(n)
     }
 
     /// A shadow-timing fit made at `time`, the configured base (or the known layer's) being
@@ -438,7 +463,10 @@ impl CbhState {
         self.estimates_made += 1;
         let side = prior_m.map_or(0, |p| disagreement(fit.cbh_m, fit.rel_sigma, p));
         self.judged += fit.null.judged as usize;
-        self.unjudged_disagreeing += (side != 0 && !fit.null.judged) as usize;
+        if side != 0 && !fit.null.judged {
+            self.unjudged_disagreeing += 1;
+            self.unjudged_span = Some((self.unjudged_span.map_or(time, |s| s.0), time));
+        }
         if side != 0 && !fit.null.judged {
             // Not judged yet (the window's readings span too few shifts): neither counted nor
             // breaking the run, so that a window holding one reading fewer now and then (1-minute
@@ -462,6 +490,11 @@ impl CbhState {
             && cols.len() >= MIN_SHADOW_SENSORS
         {
             self.shadow = Some(ShadowTiming::new(ShadowParams::default(), cols.len()));
+        }
+        // The shadow timing's windows and the null test's shifts follow the readings' period
+        // (unchanged for 1-minute and finer readings; a live feed's period may settle as rows come).
+        if let (Some(st), Some((m, _))) = (&mut self.shadow, f.measurements) {
+            st.params = ShadowParams::default().for_period(m.period_s);
         }
         let (prior_m, prior_rel) = if f.from_series { (f.prior_cbh_m, CEILOMETER_REL_SIGMA) } else { self.prior_for(f.v_map_mps, (f.prior_cbh_m, self.prior_rel_sigma)) };
         if let (Some(st), Some((m, cols)), Some(v)) = (&mut self.shadow, f.measurements, f.v_map_mps) {
@@ -515,7 +548,7 @@ mod tests {
 
     /// A null test the fit passed (its readings follow the map's shadows).
     fn passed_null() -> NullTest {
-        NullTest { shifts: 9, cost_min: 0.9, within: 0.3, within_min: 0.9, judged: true, passed: true }
+        NullTest { shifts: 9, cost: 0.5, cost_min: 0.9, within: 0.3, within_min: 0.9, judged: true, passed: true }
     }
 
     /// A frame without measurements or motion, on a map at `cbh_m` that is also the prior.
@@ -672,6 +705,16 @@ mod tests {
             t += chrono::Duration::seconds(20);
         }
         assert_eq!((st.prior_rejected(), st.fits_held_back(), st.fits_unjudged_disagreeing()), (false, 0, 5));
+        // Live mode says so only once they span the stretch the check needs (600 s here): before
+        // that, readings may simply not have filled it yet.
+        assert_eq!(st.base_left_unchecked(), None, "5 fits over 80 s");
+        while st.base_left_unchecked().is_none() {
+            st.take_fit(t, ShadowFit { null: coarse.clone(), ..fit(1600.0) }, Some(800.0));
+            t += chrono::Duration::seconds(20);
+        }
+        assert_eq!(st.base_left_unchecked(), Some(600 / 20 + 1), "the fit 600 s after the first");
+        st.take_fit(t, ShadowFit { null: passed_null(), ..fit(1600.0) }, Some(800.0));
+        assert_eq!((st.fits_unjudged_disagreeing(), st.base_left_unchecked()), (0, None), "a judged fit: the check works");
         // Asked for: every fit combined; turned off: none.
         assert_eq!(run(Some(true), &[820.0])[0].source, CbhSource::ShadowTiming);
         assert_eq!(run(Some(false), &[1600.0, 1600.0])[1].source, CbhSource::Configured);

@@ -22,9 +22,17 @@
 //! than [`ShadowParams::min_blocks`] blocks, a flat cost curve or a minimum at the end of the scan.
 //!
 //! A fit also carries a [`NullTest`]: the window's readings paired with the map at shifted times
-//! (circularly within the window, 120 … 600 s with a full window). Readings that really follow the
-//! map's shadows fit best at their own times; a fit may judge (and so override) a configured base
-//! only when it beats every shift, pooled and within frames ([`ShadowFit::follows_map`]).
+//! (circularly within the window, 120 … 600 s with a full window of 1-minute readings). Readings
+//! that really follow the map's shadows fit best at their own times; a fit may judge (and so
+//! override) a configured base only when it beats every shift, pooled and within frames
+//! ([`ShadowFit::follows_map`]).
+//!
+//! Coarser readings ([`ShadowParams::for_period`]): a frame is paired with readings up to one
+//! period old past their middle (a 5-minute mean is 150 s old when complete), each predicted by
+//! the map's mean over its period; the fit's window spans at least five periods; the shifts step
+//! by whole periods, and the null test looks at a longer window of frames
+//! ([`ShadowParams::null_window_s`], ten periods), so that it can reach its nine shifts, with a
+//! detrended cost in place of the within-frame one ([`NullTest`]).
 
 use std::collections::VecDeque;
 
@@ -70,6 +78,61 @@ pub struct ShadowParams {
     /// window (600 s of frames, their readings spanning 720 s) gives exactly 9 shifts
     /// (120 … 600 s), so a verdict needs a full window.
     pub null_min_shifts: usize,
+    /// Null test: frames whose readings it shifts, the last this many seconds \[s\] (at least
+    /// [`ShadowParams::window_s`]; frames are kept that long). The fit itself uses the last
+    /// `window_s` of them; when this is longer, the unshifted statistics the shifts are compared
+    /// with are taken over these frames too (the lowest pooled cost over the scan and the
+    /// within-frame cost at its candidate), so the test asks whether the readings of this longer
+    /// window follow the map's shadows.
+    pub null_window_s: f64,
+    /// Readings' averaging period \[s\] over which each reading's prediction is averaged (the
+    /// mean of the look-ups along the map's motion over the period, at most [`MEAN_STEP_S`] apart);
+    /// 0: the look-up at the reading's middle alone (the default, and for readings of a minute or
+    /// finer, [`ShadowParams::for_period`]).
+    pub mean_over_s: f64,
+}
+
+/// Fewest readings per sensor the fit's window spans with coarse readings
+/// ([`ShadowParams::for_period`]: the window is at least this many periods).
+pub const FIT_MIN_READINGS: f64 = 5.0;
+
+/// Longest step between the look-ups averaged over a coarse reading's period
+/// ([`ShadowParams::mean_over_s`]) \[s\].
+pub const MEAN_STEP_S: f64 = 30.0;
+
+impl ShadowParams {
+    /// These settings scaled to readings every `period_s` seconds (the measurements' averaging
+    /// period): unchanged for periods up to the null test's step (60 s with the defaults: 1-minute
+    /// and finer readings are paired and tested as before). Coarser:
+    /// * [`ShadowParams::window_s`] at least [`FIT_MIN_READINGS`] periods: the fit sees at least
+    ///   five readings per sensor (5-minute means: 1500 s; over 600 s, two readings a sensor gave
+    ///   fits scattered over half to one and a quarter times the true base, below their stated σ);
+    /// * [`ShadowParams::sample_window_s`] at least one period: a frame is paired with its
+    ///   sensors' readings up to one period old past their middle, so a 5-minute mean (150 s old
+    ///   when complete) is paired at all, and a frame holds at most one reading per sensor;
+    /// * [`ShadowParams::null_step_s`] at least one period: the shifts move the readings by whole
+    ///   readings;
+    /// * [`ShadowParams::null_window_s`] at least `(null_min_shifts + 1)` steps: the window of
+    ///   frames the null test shifts the readings of holds ten readings per sensor or more, which
+    ///   give its nine shifts of 1 … 9 readings (2-minute means: 20 minutes; 5-minute: 50);
+    /// * [`ShadowParams::mean_over_s`] the period: a coarse reading is predicted by the mean of
+    ///   the map's look-ups over its period, not the one at its middle.
+    ///
+    /// A period that is not finite or not positive leaves the settings as they are.
+    pub fn for_period(self, period_s: f64) -> ShadowParams {
+        if !(period_s.is_finite() && period_s > 0.0) {
+            return self;
+        }
+        let null_step_s = self.null_step_s.max(period_s);
+        ShadowParams {
+            window_s: self.window_s.max(FIT_MIN_READINGS * period_s),
+            sample_window_s: self.sample_window_s.max(period_s),
+            null_step_s,
+            null_window_s: self.null_window_s.max(self.window_s).max((self.null_min_shifts + 1) as f64 * null_step_s),
+            mean_over_s: if period_s > self.null_step_s { period_s } else { self.mean_over_s },
+            ..self
+        }
+    }
 }
 
 impl Default for ShadowParams {
@@ -87,6 +150,8 @@ impl Default for ShadowParams {
             max_contrast: 0.9,
             null_step_s: 60.0,
             null_min_shifts: 9,
+            null_window_s: 600.0,
+            mean_over_s: 0.0,
         }
     }
 }
@@ -163,14 +228,22 @@ impl ShadowFit {
 /// ([`ShadowFit::cost_min`], all pairs pooled) and the within-frame cost (each frame's pairs taken
 /// about their own means, so a slow drift that readings and map share, such as overcast thinning
 /// over the window, explains nothing: only where and when the shadows fall within a frame counts).
+/// Over a null window longer than the fit's (coarse readings, [`ShadowParams::for_period`]) both
+/// unshifted statistics are the lowest over the scan, as the shifts' are, and the within-frame
+/// cost gives way to the detrended one (each sensor's straight line in time taken out of readings
+/// and predictions: a frame holds one reading per sensor there, too few to take about its mean).
 #[derive(Debug, Clone, PartialEq)]
 pub struct NullTest {
     /// Distinct shifts compared (none until the window's readings span enough time, see
     /// [`ShadowParams::null_step_s`]).
     pub shifts: usize,
+    /// The unshifted pooled cost compared with the shifts': the fit's [`ShadowFit::cost_min`], or
+    /// over a longer null window ([`ShadowParams::null_window_s`]) the lowest over the scan.
+    pub cost: f64,
     /// The lowest pooled cost over the scan and the shifts (`1.0` without any).
     pub cost_min: f64,
-    /// The fit's within-frame cost at the estimate.
+    /// The fit's within-frame cost at the estimate (over a longer null window
+    /// ([`ShadowParams::null_window_s`]), the lowest over the scan).
     pub within: f64,
     /// The lowest within-frame cost over the scan and the shifts (`1.0` without any).
     pub within_min: f64,
@@ -214,12 +287,15 @@ pub struct ShadowTiming {
     centre_ln: Option<f64>,
     /// Newest reading time seen per sensor and its index (for events, counted once).
     last: Vec<Option<(DateTime<Utc>, f64)>>,
+    /// Time of the newest frame given to [`ShadowTiming::observe`] (with readings or not): the
+    /// windows end there.
+    newest: Option<DateTime<Utc>>,
 }
 
 impl ShadowTiming {
     /// An estimator for `sensors` pyranometers.
     pub fn new(params: ShadowParams, sensors: usize) -> ShadowTiming {
-        ShadowTiming { params, frames: VecDeque::new(), centre_ln: None, last: vec![None; sensors] }
+        ShadowTiming { params, frames: VecDeque::new(), centre_ln: None, last: vec![None; sensors], newest: None }
     }
 
     /// Candidate factors of the scan, relative to its centre (the first map height seen).
@@ -248,7 +324,9 @@ impl ShadowTiming {
     ) {
         let p = self.params;
         let age = |x: &DateTime<Utc>| (t - *x).num_milliseconds() as f64 / 1000.0;
-        self.frames.retain(|f| age(&f.time) <= p.window_s);
+        let keep_s = p.window_s.max(p.null_window_s);
+        self.frames.retain(|f| age(&f.time) <= keep_s);
+        self.newest = Some(t);
         // Events among readings not seen before.
         let mut events = 0;
         let mut sorted: Vec<&Reading> = readings.iter().filter(|r| r.sensor < self.last.len()).collect();
@@ -284,9 +362,22 @@ impl ShadowTiming {
                     let lag = age(&r.mid);
                     let g = positions_m[r.sensor];
                     let off = crate::forecast::sun_ray_plane_point([0.0, 0.0], map_cbh_m, [camera_m[0] * inv_f, camera_m[1] * inv_f, camera_m[2]], r.zenith_rad, r.azimuth_rad);
-                    let q = [g[0] * inv_f + off[0] + v_map_mps[0] * lag, g[1] * inv_f + off[1] + v_map_mps[1] * lag];
-                    let (cx, cy) = grid.to_cell(q);
-                    let Some(x) = tm.box_mean_with(cx, cy, r_cells, beams) else { continue };
+                    let at = |lag: f64| {
+                        let q = [g[0] * inv_f + off[0] + v_map_mps[0] * lag, g[1] * inv_f + off[1] + v_map_mps[1] * lag];
+                        let (cx, cy) = grid.to_cell(q);
+                        tm.box_mean_with(cx, cy, r_cells, beams)
+                    };
+                    let x = if p.mean_over_s > 0.0 {
+                        // The mean over the reading's period: the look-ups at the middles of its
+                        // `steps` equal parts (all on the map, else none).
+                        let steps = (p.mean_over_s / MEAN_STEP_S).ceil().max(1.0) as usize;
+                        let part = p.mean_over_s / steps as f64;
+                        let sum = (0..steps).map(|k| at(lag - 0.5 * p.mean_over_s + (k as f64 + 0.5) * part)).try_fold(0.0, |a, x| x.map(|x| a + x));
+                        sum.map(|v| v / steps as f64)
+                    } else {
+                        at(lag)
+                    };
+                    let Some(x) = x else { continue };
                     add(&mut s, x, r.kstar);
                     xs[c * n_pairs + j] = x;
                 }
@@ -303,8 +394,13 @@ impl ShadowTiming {
     /// Why there is none ([`NoFit`]).
     pub fn estimate(&self) -> Result<ShadowFit, NoFit> {
         let p = self.params;
-        let (Some(newest), Some(centre_ln)) = (self.frames.back(), self.centre_ln) else { return Err(NoFit::TooFewFrames) };
-        let frames: Vec<&FrameCost> = self.frames.iter().collect();
+        let (Some(newest), Some(centre_ln), Some(t)) = (self.frames.back(), self.centre_ln, self.newest) else { return Err(NoFit::TooFewFrames) };
+        let age = |f: &FrameCost| (t - f.time).num_milliseconds() as f64 / 1000.0;
+        // The fit's window (the null test's may be longer: ShadowParams::null_window_s).
+        let frames: Vec<&FrameCost> = self.frames.iter().filter(|f| age(f) <= p.window_s).collect();
+        if frames.is_empty() {
+            return Err(NoFit::TooFewFrames);
+        }
         let t0 = frames[0].time;
         let block = |f: &FrameCost| ((f.time - t0).num_milliseconds() as f64 / 1000.0 / p.block_s.max(1.0)).floor() as usize;
         let n_blocks = frames.iter().map(|f| block(f)).max().unwrap_or(0) + 1;
@@ -365,7 +461,18 @@ impl ShadowTiming {
         let m = draws.iter().sum::<f64>() / draws.len().max(1) as f64;
         let sd = (draws.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (draws.len().max(2) - 1) as f64).sqrt();
         let rel_sigma = sd.max(0.5 * step);
-        let null = null_test(&p, &frames, factors.len(), i, costs[i]);
+        let null_frames: Vec<&FrameCost> = self.frames.iter().filter(|f| age(f) <= p.null_window_s.max(p.window_s)).collect();
+        let null = if null_frames.len() == frames.len() {
+            null_test(&p, &frames, factors.len(), costs[i], within_cost(&frames, |f| &f.stats, i), false)
+        } else {
+            // The unshifted statistics over the null test's longer window, each taken as the
+            // shifts' are: the lowest over the scan (the test asks whether these readings follow
+            // the map's shadows at all, not at this fit's height).
+            let finite: Vec<bool> = null_frames.iter().map(|f| f.stats.iter().flatten().all(|v| v.is_finite())).collect();
+            let pooled = summed_stats(&null_frames, &finite, &vec![1.0; null_frames.len()], factors.len()).iter().map(r2_cost).filter(|c| c.is_finite()).fold(1.0, f64::min);
+            let detrended = detrended_costs(&null_frames, factors.len(), |f, j| Some(f.pairs[j].2)).into_iter().fold(1.0, f64::min);
+            null_test(&p, &null_frames, factors.len(), pooled, detrended, true)
+        };
         Ok(ShadowFit { cbh_m: (centre_ln + ln_best).exp(), rel_sigma, events, frames: frames.len(), cost_min: costs[i], cost_median: median, null })
     }
 }
@@ -386,13 +493,17 @@ fn within_cost(frames: &[&FrameCost], get: impl Fn(&FrameCost) -> &[Stats], c: u
     if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) }
 }
 
-/// The [`NullTest`] of the window's `frames` for the estimate at candidate `best` of cost `cost`.
+/// The [`NullTest`] of the window's `frames`, their readings unshifted giving the pooled cost
+/// `cost` and the within-frame cost `within` (with `detrend`, the detrended cost of
+/// [`detrended_costs`] in place of the within-frame one, for the shifts too).
 ///
 /// Each sensor's readings in the window (every reading some frame was paired with) are put in
 /// time order; a shift of `Δ` replaces each paired reading by the one `round(Δ / spacing)` places
 /// earlier, wrapping round (the sensor's spacing: its readings' span over their count less one).
-fn null_test(p: &ShadowParams, frames: &[&FrameCost], candidates: usize, best: usize, cost: f64) -> NullTest {
-    let mut out = NullTest { shifts: 0, cost_min: 1.0, within: within_cost(frames, |f| &f.stats, best), within_min: 1.0, judged: false, passed: false };
+/// With readings coarser than the step ([`ShadowParams::for_period`]) the shifts are 1, 2, …
+/// readings, up to one fewer than the sensor's readings in the window.
+fn null_test(p: &ShadowParams, frames: &[&FrameCost], candidates: usize, cost: f64, within: f64, detrend: bool) -> NullTest {
+    let mut out = NullTest { shifts: 0, cost, cost_min: 1.0, within, within_min: 1.0, judged: false, passed: false };
     let sensors = frames.iter().flat_map(|f| f.pairs.iter().map(|q| q.0 + 1)).max().unwrap_or(0);
     let mut seen: Vec<std::collections::BTreeMap<DateTime<Utc>, f64>> = vec![Default::default(); sensors];
     for f in frames {
@@ -466,14 +577,74 @@ fn null_test(p: &ShadowParams, frames: &[&FrameCost], candidates: usize, best: u
             if pooled.is_finite() {
                 out.cost_min = out.cost_min.min(pooled);
             }
-            let w = within[c];
-            let wc = if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) };
-            out.within_min = out.within_min.min(wc);
+            if !detrend {
+                let w = within[c];
+                let wc = if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) };
+                out.within_min = out.within_min.min(wc);
+            }
+        }
+        if detrend {
+            let shifted = |f: &FrameCost, j: usize| {
+                let (s, mid, _) = f.pairs[j];
+                let v = &series[s];
+                let i = v.binary_search_by(|x| x.0.cmp(&mid)).ok()?;
+                Some(v[(i + v.len() - offsets[s] % v.len()) % v.len()].1)
+            };
+            out.within_min = detrended_costs(frames, candidates, shifted).into_iter().fold(out.within_min, f64::min);
         }
     }
     out.judged = out.shifts >= p.null_min_shifts;
-    out.passed = out.judged && cost < out.cost_min && out.within < out.within_min;
+    out.passed = out.judged && out.cost < out.cost_min && out.within < out.within_min;
     out
+}
+
+/// Per candidate, `1 − r²` of the pairs of `frames` (the reading of pair `j` of frame `f` being
+/// `y(f, j)`) after each sensor's straight line in time (of the reading's middle) is taken out of
+/// its readings and of their predictions alike: a drift that readings and map share over a long
+/// window (overcast thinning) explains nothing, only the shadows' coming and going about it. The
+/// null test's stand-in for the within-frame cost when a frame holds one reading per sensor
+/// (coarse readings), where the within-frame cost has one degree of freedom per sensor less one.
+/// A sensor with fewer than 3 pairs or a single time is left out; same slope rule as [`r2_cost`].
+fn detrended_costs(frames: &[&FrameCost], candidates: usize, y: impl Fn(&FrameCost, usize) -> Option<f64>) -> Vec<f64> {
+    let sensors = frames.iter().flat_map(|f| f.pairs.iter().map(|q| q.0 + 1)).max().unwrap_or(0);
+    let Some(t0) = frames.first().map(|f| f.time) else { return vec![1.0; candidates] };
+    // Per candidate and sensor: n, Σt, Σtt, Σx, Σy, Σxt, Σyt, Σxx, Σxy, Σyy (t in kiloseconds).
+    let mut acc = vec![[0.0; 10]; candidates * sensors];
+    for f in frames {
+        let n = f.pairs.len();
+        for j in 0..n {
+            let Some(yv) = y(f, j) else { continue };
+            let (s, mid, _) = f.pairs[j];
+            let t = (mid - t0).num_milliseconds() as f64 / 1e6;
+            for c in 0..candidates {
+                let x = f.xs[c * n + j];
+                if x.is_finite() {
+                    let a = &mut acc[c * sensors + s];
+                    for (k, v) in [1.0, t, t * t, x, yv, x * t, yv * t, x * x, x * yv, yv * yv].into_iter().enumerate() {
+                        a[k] += v;
+                    }
+                }
+            }
+        }
+    }
+    (0..candidates)
+        .map(|c| {
+            let mut w = [0.0; 3];
+            for a in &acc[c * sensors..(c + 1) * sensors] {
+                let det = a[0] * a[2] - a[1] * a[1];
+                if a[0] < 3.0 || det <= 1e-12 * a[0] * a[0] {
+                    continue;
+                }
+                // Residual cross-products after the straight line in t: S_uv − (u, ut)ᵀ G⁻¹ (v, vt).
+                let fit = |u: [f64; 2], v: [f64; 2]| (a[2] * u[0] * v[0] - a[1] * (u[0] * v[1] + u[1] * v[0]) + a[0] * u[1] * v[1]) / det;
+                let (xs, ys) = ([a[3], a[5]], [a[4], a[6]]);
+                w[0] += a[7] - fit(xs, xs);
+                w[1] += a[8] - fit(xs, ys);
+                w[2] += a[9] - fit(ys, ys);
+            }
+            if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) }
+        })
+        .collect()
 }
 
 fn add(s: &mut Stats, x: f64, y: f64) {
@@ -550,21 +721,28 @@ mod tests {
     /// with the 1-minute readings of three sensors whose middles lie in its last 120 s; reading
     /// `y(sensor, minute)`, prediction `x(candidate, sensor, minute)`.
     fn window(candidates: usize, x: impl Fn(usize, usize, i64) -> f64, y: impl Fn(usize, i64) -> f64) -> Vec<FrameCost> {
+        window_every(60, 31, 0..=120, candidates, x, y)
+    }
+
+    /// As [`window`], with readings every `period` seconds (reading `k`'s middle `150 − k · period`
+    /// seconds from the first frame), `frames` frames 20 s apart, each paired with the readings
+    /// whose age lies in `ages` \[s\].
+    fn window_every(period: i64, frames: i64, ages: std::ops::RangeInclusive<i64>, candidates: usize, x: impl Fn(usize, usize, i64) -> f64, y: impl Fn(usize, i64) -> f64) -> Vec<FrameCost> {
         let t0: DateTime<Utc> = "2026-06-14T09:00:00Z".parse().unwrap();
-        (0..31)
+        (0..frames)
             .map(|i| {
                 let t = t0 + chrono::Duration::seconds(20 * i);
                 let mut pairs = vec![];
-                for minute in 0..40i64 {
-                    let mid = t0 - chrono::Duration::seconds(150) + chrono::Duration::seconds(60 * minute);
+                for minute in 0..(40 + 20 * frames * 60 / period / 60) {
+                    let mid = t0 - chrono::Duration::seconds(150) + chrono::Duration::seconds(period * minute);
                     let age = (t - mid).num_seconds();
-                    if (0..=120).contains(&age) {
+                    if ages.contains(&age) {
                         for s in 0..3 {
                             pairs.push((s, mid, y(s, minute)));
                         }
                     }
                 }
-                let minute_of = |mid: DateTime<Utc>| ((mid - t0).num_seconds() + 150) / 60;
+                let minute_of = |mid: DateTime<Utc>| ((mid - t0).num_seconds() + 150) / period;
                 let xs: Vec<f64> = (0..candidates).flat_map(|c| pairs.iter().map(move |q| (c, q))).map(|(c, q)| x(c, q.0, minute_of(q.1))).collect();
                 let stats = (0..candidates)
                     .map(|c| {
@@ -599,7 +777,7 @@ mod tests {
             let finite = vec![true; refs.len()];
             let costs: Vec<f64> = summed_stats(&refs, &finite, &ones, 5).iter().map(r2_cost).collect();
             let best = (0..5).min_by(|a, b| costs[*a].total_cmp(&costs[*b])).unwrap();
-            (null_test(&p, &refs, 5, best, costs[best]), costs[best])
+            (null_test(&p, &refs, 5, costs[best], within_cost(&refs, |f| &f.stats, best), false), costs[best])
         };
         let (own, cost) = judge(&window(5, x, |s, m| 0.1 + 0.8 * shade(s, m)));
         assert!(own.judged && own.passed && own.shifts == 9, "{own:?} (cost {cost})");
@@ -608,6 +786,52 @@ mod tests {
         let short: Vec<FrameCost> = window(5, x, |s, m| 0.1 + 0.8 * shade(s, m)).into_iter().take(18).collect();
         let (early, _) = judge(&short);
         assert!(!early.judged && !early.passed && early.shifts < 9, "{early:?}");
+    }
+
+    /// The null test on 2-minute and 5-minute means ([`ShadowParams::for_period`]): one reading per
+    /// sensor and frame, shifted by whole readings over the longer window, with the detrended cost
+    /// in place of the within-frame one. Readings of this sky pass once the window holds ten
+    /// readings per sensor (not before: the 600-s window alone gives at most five shifts); the
+    /// same readings ten minutes late fail; readings unrelated to the map that drift with it (a
+    /// cover thinning over the window in both) fail the detrended comparison.
+    #[test]
+    fn null_test_judges_coarse_readings_over_a_longer_window() {
+        let shade = |s: usize, k: i64| if crate::rng::hash64(s as u64 * 1000 + k as u64 + 7).is_multiple_of(3) { 0.25 } else { 0.95 };
+        let x = |c: usize, s: usize, k: i64| {
+            let noise = (crate::rng::hash64((c * 7 + s) as u64 * 100_000 + k as u64) % 1000) as f64 / 1000.0;
+            if c == 2 { shade(s, k) } else { 0.5 * shade(s, k) + 0.5 * noise }
+        };
+        let judge = |p: &ShadowParams, frames: &[FrameCost]| {
+            let refs: Vec<&FrameCost> = frames.iter().collect();
+            let ones = vec![1.0; refs.len()];
+            let finite = vec![true; refs.len()];
+            let pooled = summed_stats(&refs, &finite, &ones, 5).iter().map(r2_cost).fold(1.0, f64::min);
+            let detrended = detrended_costs(&refs, 5, |f, j| Some(f.pairs[j].2)).into_iter().fold(1.0, f64::min);
+            null_test(p, &refs, 5, pooled, detrended, true)
+        };
+        for period in [120i64, 300] {
+            let p = ShadowParams::default().for_period(period as f64);
+            assert_eq!((p.sample_window_s, p.null_step_s, p.null_window_s, p.mean_over_s), (period.max(120) as f64, period as f64, 10.0 * period as f64, period as f64));
+            // Frames 20 s apart over the null window, each paired with the readings of age
+            // period/2 … sample window (at most one per sensor).
+            let frames = (p.null_window_s / 20.0) as i64 + 1;
+            let ages = period / 2..=p.sample_window_s as i64;
+            let own = judge(&p, &window_every(period, frames, ages.clone(), 5, x, |s, k| 0.1 + 0.8 * shade(s, k)));
+            assert!(own.judged && own.passed && own.shifts >= 9, "{period} s: {own:?}");
+            let late = judge(&p, &window_every(period, frames, ages.clone(), 5, x, |s, k| 0.1 + 0.8 * shade(s, k - 600 / period)));
+            assert!(late.judged && !late.passed, "{period} s, 10 min late: {late:?}");
+            // Unrelated readings, rising through the window as the map's mean does.
+            let drift = |k: i64| 0.05 * k as f64;
+            let xd = |c: usize, s: usize, k: i64| 0.2 * x(c, s, k) + drift(k);
+            let unrelated = judge(&p, &window_every(period, frames, ages.clone(), 5, xd, |s, k| 0.1 + 0.2 * shade(s + 5, k) + drift(k)));
+            assert!(unrelated.cost < unrelated.cost_min, "{period} s: the drift alone passes the pooled comparison: {unrelated:?}");
+            assert!(unrelated.judged && !unrelated.passed, "{period} s, unrelated with a shared drift: {unrelated:?}");
+            let short = judge(&p, &window_every(period, 31, ages, 5, x, |s, k| 0.1 + 0.8 * shade(s, k)));
+            assert!(!short.judged && !short.passed && short.shifts < 9, "{period} s, a 600-s window: {short:?}");
+        }
+        // A minute or finer: the settings as they were.
+        assert_eq!(ShadowParams::default().for_period(60.0), ShadowParams::default());
+        assert_eq!(ShadowParams::default().for_period(10.0), ShadowParams::default());
     }
 
     /// [`summed_stats`] against the sums taken one candidate at a time over every frame (weight 0

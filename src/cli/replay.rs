@@ -107,8 +107,9 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
         );
     } else if s.shadow_fits_unjudged >= crate::cbh::CHECK_MIN_DISAGREEING {
         crate::say!(
-            "note: {} shadow-timing fits disagreed with the configured cloud base, but the pyranometer readings are too coarse to check them against the same readings shifted in time (readings every minute or finer are), so the configured base was kept unchecked. Check the base, or set [clouds] shadow_timing = true to combine the fits with it",
-            s.shadow_fits_unjudged
+            "note: {} shadow-timing fits disagreed with the configured cloud base, but none could be checked against the same readings shifted in time: that check needs {:.0} minutes of frames with pyranometer readings, without gaps (ten readings per sensor for readings coarser than a minute), and this run did not hold them, so the configured base was kept unchecked. Check the base, or set [clouds] shadow_timing = true to combine the fits with it",
+            s.shadow_fits_unjudged,
+            s.shadow_check_window_s.unwrap_or(600.0) / 60.0
         );
     }
     for note in crate::replay::camera_setting_notes(s.clear_rb_scale, s.exposure) {

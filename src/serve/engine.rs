@@ -43,6 +43,8 @@ pub(super) struct LiveEngine {
     naming: crate::io::FrameNaming,
     /// Whether the first shadow-timing fit held back from judging the configured base was logged.
     held_back_logged: bool,
+    /// Whether fits that disagreed with the configured base but could not be checked were logged.
+    unchecked_logged: bool,
 }
 
 /// What a frame's step gave, for the reports after it.
@@ -87,6 +89,7 @@ impl LiveEngine {
             base_rejection_logged: false,
             naming,
             held_back_logged: false,
+            unchecked_logged: false,
         }
     }
 
@@ -142,7 +145,9 @@ impl LiveEngine {
     ///
     /// Also once when a fit that disagreed with the configured base was first held back because the
     /// readings did not follow the map's shadows better than shifted in time (the configured base
-    /// is kept; readings an hour late, a logger on local time, do this).
+    /// is kept; readings an hour late, a logger on local time, do this), and once when fits that
+    /// disagreed with it could not be checked at all over the stretch the check needs
+    /// ([`crate::cbh::CbhState::base_left_unchecked`]; `replay` ends with the same note).
     fn note_base_rejected(&mut self) {
         let held = self.nc.cbh_state().fits_held_back();
         if !self.held_back_logged && held > 0 && !self.nc.cbh_state().prior_rejected() {
@@ -151,6 +156,17 @@ impl LiveEngine {
             self.log(&[
                 ("event", "cloud_base".into()),
                 ("note", format!("a shadow-timing fit disagreed with the configured cloud base, but the pyranometer readings did not follow the cloud map's shadows better than the same readings shifted in time: configured base kept; check the readings' clock and time zone (UTC expected), [measurements] time_label (read as \"{label}\") and the pyranometers' positions")),
+            ]);
+        }
+        if !self.unchecked_logged
+            && !self.nc.cbh_state().prior_rejected()
+            && let Some(n) = self.nc.cbh_state().base_left_unchecked()
+        {
+            self.unchecked_logged = true;
+            let minutes = self.nc.cbh_state().shadow_check_window_s().unwrap_or(600.0) / 60.0;
+            self.log(&[
+                ("event", "cloud_base".into()),
+                ("note", format!("{n} shadow-timing fits disagreed with the configured cloud base, but none could be checked against the same readings shifted in time: that check needs {minutes:.0} minutes of frames with pyranometer readings, without gaps; the configured base is kept unchecked. Check the base, or set [clouds] shadow_timing = true to combine the fits with it")),
             ]);
         }
         if self.base_rejection_logged || !self.nc.cbh_state().prior_rejected() {
