@@ -270,3 +270,39 @@ fn without_pyranometers() {
     }
     assert!(failures.is_empty(), "{failures:#?}");
 }
+
+/// A camera whose white balance changed between the clear day it was calibrated from and the day
+/// it forecasts (the harness's `--cloudy-gain 1.08,1,0.93` on camera1's cloudy frames only: red
+/// ×1.08, blue ×0.93, so every clear ratio ×1.161), without pyranometers. The colour balance is
+/// followed (`segment.follow_colour_balance`): `replay` names the factor it read, and the
+/// forecast keeps the skill target. Measured 2026-12-05: factor 1.16, pooled 0.53 (0.8 ×
+/// yardstick 0.50), largest |MBE| 119 W/m²; with the setting off pooled 0.23, largest |MBE| 356.
+#[test]
+fn a_changed_white_balance_is_followed() {
+    let Some(scenes) = scenes_or_skip() else { return };
+    let r = run_harness(&scenes, &["--cameras", "camera1", "--no-measurements", "--cloudy-gain", "1.08,1,0.93"]);
+    let mut failures = vec![];
+    let c = &r["cameras"][0];
+    let rc = &c["replay_cloudy"];
+    assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
+    let stdout = rc["stdout"].as_str().unwrap_or_default();
+    let factor = stdout
+        .lines()
+        .find_map(|l| l.split("clear sky read red/blue ×").nth(1))
+        .and_then(|t| t.split_whitespace().next())
+        .and_then(|t| t.parse::<f64>().ok());
+    let truth = 1.08 / 0.93;
+    assert!(factor.is_some_and(|f| (f - truth).abs() <= 0.03), "the colour-balance note should read ×{truth:.2} (±0.03); replay said:\n{stdout}");
+    let fs = &rc["forecast_summary"];
+    let pooled = num(fs, &["skill_pooled_5_15"]);
+    let yard = num(&r, &["yardsticks", c["cloudy_scene"].as_str().unwrap(), "pooled"]);
+    check(
+        "camera1 with a warmer white balance pooled skill",
+        pooled >= TARGET_YARDSTICK_SHARE * yard,
+        format!("5–15 min {pooled:.3} against {TARGET_YARDSTICK_SHARE} × yardstick {yard:.2} = {:.3}", TARGET_YARDSTICK_SHARE * yard),
+        &mut failures,
+    );
+    let mbe = num(fs, &["max_abs_mbe"]);
+    assert!(mbe < 200.0, "largest |MBE| {mbe:.1} W/m²: the balance is not followed (356 with the setting off)");
+    assert!(failures.is_empty(), "{failures:#?}");
+}
