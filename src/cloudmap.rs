@@ -523,8 +523,6 @@ pub struct FrameSettings {
     pub ratio_shift_ln: f32,
     /// This frame's own shift, when its clear sky gave one.
     pub ratio_shift_measured: Option<f32>,
-    /// The factor the library's ratios were read with.
-    pub ratio_scale: f32,
 }
 
 /// [`build_map_from`] with what the frame read of the camera's settings ([`FrameSettings`]): its
@@ -601,7 +599,7 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
         // A cell made thin by the distance or darkness rules keeps the class's middle.
         *o = if (*c == thin) & (*s >= lo) & (*s < hi) { v } else { 0.5 };
     }
-    let settings = FrameSettings { exposure: fr.exposure, ratio_shift_ln: fr.ratio_shift_ln, ratio_shift_measured: fr.ratio_shift_measured, ratio_scale: fr.ratio_scale };
+    let settings = FrameSettings { exposure: fr.exposure, ratio_shift_ln: fr.ratio_shift_ln, ratio_shift_measured: fr.ratio_shift_measured };
     (CloudMap { grid: lut.grid, score, class, in_view, offset: fr.offset, brightness, thin_depth }, settings)
 }
 

@@ -109,30 +109,44 @@ pub struct ReplaySummary {
 
 /// Frames whose exposure must have been measured before [`camera_setting_notes`] judges it.
 pub const EXPOSURE_NOTE_MIN_FRAMES: usize = 10;
-/// Exposure against the calibration day's beyond which [`camera_setting_notes`] speaks (a factor;
-/// its inverse below): a tenth, beyond the spread of a fixed camera's clear sky between days (the
+/// Exposure against the calibration day's beyond which [`exposure_note`] speaks (a factor
+/// either way): a tenth, beyond the spread of a fixed camera's clear sky between days (the
 /// independent scenes' frames read 0.977 and 1.007 as medians over their cloudy days, 1.002 and
 /// 0.998 over their clear days, single frames 0.82–1.09; own choice otherwise).
 pub const EXPOSURE_NOTE_FACTOR: f64 = 1.1;
 
 /// What a run's frames said of the camera's settings against the calibration day's, for the
-/// operator: the colour balance followed (`clear_rb_scale`, with the frames that measured it) when
-/// it is not 1, and the exposure (with its frames) when it differs by more than
-/// [`EXPOSURE_NOTE_FACTOR`] over at least [`EXPOSURE_NOTE_MIN_FRAMES`] frames.
+/// operator: [`colour_balance_note`] and [`exposure_note`].
 pub fn camera_setting_notes(clear_rb_scale: (f64, usize), exposure: Option<(f64, usize)>) -> Vec<String> {
-    let mut notes = vec![];
+    colour_balance_note(clear_rb_scale, exposure).into_iter().chain(exposure_note(clear_rb_scale, exposure)).collect()
+}
+
+/// Whether the exposure differs from the calibration day's by more than [`EXPOSURE_NOTE_FACTOR`]
+/// either way over at least [`EXPOSURE_NOTE_MIN_FRAMES`] frames.
+fn exposure_differs(exposure: Option<(f64, usize)>) -> Option<(f64, usize)> {
+    exposure.filter(|(e, n)| *n >= EXPOSURE_NOTE_MIN_FRAMES && (*e > EXPOSURE_NOTE_FACTOR || *e < 1.0 / EXPOSURE_NOTE_FACTOR))
+}
+
+/// The note on a followed colour balance (`clear_rb_scale` not 1, with the frames that measured
+/// it). An exposure that differs too is named in it: the exposure is read from each pixel's
+/// largest channel, which a change of white balance moves as well.
+pub fn colour_balance_note(clear_rb_scale: (f64, usize), exposure: Option<(f64, usize)>) -> Option<String> {
     let (scale, frames) = clear_rb_scale;
-    if scale != 1.0 {
-        notes.push(format!(
-            "the frames' clear sky read red/blue ×{scale:.2} against the clear-sky library from `calibrate` ({frames} frames measured it): the camera's white balance differs from the calibration day's. It was followed (clear_rb_scale in frames.csv), but frames without clear sky before it was measured were read as they are: set the white balance as it was on the calibration day, or calibrate from a clear day taken with today's settings"
-        ));
-    }
-    if let Some((e, n)) = exposure.filter(|(e, n)| *n >= EXPOSURE_NOTE_MIN_FRAMES && (*e > EXPOSURE_NOTE_FACTOR || *e < 1.0 / EXPOSURE_NOTE_FACTOR)) {
-        notes.push(format!(
-            "the frames' clear sky read ×{e:.2} as bright as on the calibration day ({n} frames measured it; exposure in frames.csv): the camera's exposure differs, which the map near the sun does not follow (clipping there is read as on the calibration day). Fix the camera's exposure, or calibrate from a clear day taken with the same settings"
-        ));
-    }
-    notes
+    (scale != 1.0).then(|| {
+        let brightness = exposure_differs(exposure).map(|(e, _)| format!(" (and the clear sky's brightest channel ×{e:.2}: part of the same change)")).unwrap_or_default();
+        format!(
+            "the frames' clear sky read red/blue ×{scale:.2}{brightness} against the clear-sky library from `calibrate` ({frames} frames measured it): the camera's white balance differs from the calibration day's. It was followed (clear_rb_scale in frames.csv), but frames without clear sky before it was measured were read as they are: set the white balance as it was on the calibration day, or calibrate from a clear day taken with today's settings"
+        )
+    })
+}
+
+/// The note on an exposure that differs from the calibration day's ([`exposure_differs`]), when
+/// the colour balance was not followed (else [`colour_balance_note`] names it).
+pub fn exposure_note(clear_rb_scale: (f64, usize), exposure: Option<(f64, usize)>) -> Option<String> {
+    let (e, n) = exposure_differs(exposure).filter(|_| clear_rb_scale.0 == 1.0)?;
+    Some(format!(
+        "the frames' clear sky read ×{e:.2} as bright as on the calibration day ({n} frames measured it; exposure in frames.csv): the camera's exposure differs, which the map near the sun does not follow (clipping there is read as on the calibration day). Fix the camera's exposure, or calibrate from a clear day taken with the same settings"
+    ))
 }
 
 /// An error that stops a replay.
@@ -468,10 +482,16 @@ mod tests {
         assert!(camera_setting_notes((1.0, 0), None).is_empty());
         // Too few frames measured the exposure.
         assert!(camera_setting_notes((1.0, 0), Some((1.3, EXPOSURE_NOTE_MIN_FRAMES - 1))).is_empty());
-        let n = camera_setting_notes((1.16, 88), Some((0.79, 181)));
-        assert_eq!(n.len(), 2, "{n:?}");
-        assert!(n[0].contains("×1.16") && n[0].contains("88 frames") && n[0].contains("white balance"), "{}", n[0]);
-        assert!(n[1].contains("×0.79") && n[1].contains("181 frames") && n[1].contains("exposure"), "{}", n[1]);
-        assert_eq!(camera_setting_notes((1.0, 0), Some((1.16, 181))).len(), 1);
+        // A changed white balance moves the largest channel too: one note names both.
+        let n = camera_setting_notes((1.16, 88), Some((0.907, 271)));
+        assert_eq!(n.len(), 1, "{n:?}");
+        assert!(n[0].contains("×1.16") && n[0].contains("88 frames") && n[0].contains("white balance") && n[0].contains("×0.91"), "{}", n[0]);
+        let n = camera_setting_notes((1.0, 0), Some((0.79, 181)));
+        assert_eq!(n.len(), 1, "{n:?}");
+        assert!(n[0].contains("×0.79") && n[0].contains("181 frames") && n[0].contains("exposure"), "{}", n[0]);
+        // A factor 1.1 either way.
+        assert_eq!(camera_setting_notes((1.0, 0), Some((1.11, 181))).len(), 1);
+        assert_eq!(camera_setting_notes((1.0, 0), Some((0.90, 181))).len(), 1);
+        assert!(camera_setting_notes((1.0, 0), Some((0.92, 181))).is_empty());
     }
 }

@@ -119,6 +119,8 @@ pub(super) struct MapStage {
 impl MapStage {
     /// A map stage starting from a clear-sky reference.
     pub(super) fn new(reference: Reference) -> MapStage {
+        let mut reference = reference;
+        reference.follows_frames = true;
         MapStage { reference, ..Default::default() }
     }
 

@@ -38,6 +38,10 @@ pub struct Reference {
     pub ratio_shift_ln: f32,
     /// Frames whose clear sky gave a shift.
     pub ratio_shift_frames: usize,
+    /// Whether the shift is followed over frames (the engine's map, which keeps it with
+    /// [`Reference::keep_ratio_shift`]: a running mean) or read from each frame alone (false, the
+    /// default: a second camera's map, `segment`, `verify`).
+    pub follows_frames: bool,
     /// Sum of ln(exposure) over the frames whose exposure against the library's brightness was
     /// measured (`brightness::ExposureMeter`), and their count ([`Reference::mean_exposure`]).
     pub exposure_ln_sum: f64,
@@ -48,7 +52,7 @@ pub struct Reference {
 impl Default for Reference {
     fn default() -> Self {
         let n = LIB_Z_BINS * LIB_G_BINS;
-        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], clipped_read: vec![(0.0, 0.0); n], clipped_marks_in_use: true, library_frames: 0, ratio_shift_ln: 0.0, ratio_shift_frames: 0, exposure_ln_sum: 0.0, exposure_frames: 0 }
+        Self { lib: vec![0.0; n], weight: vec![0.0; n], bright: vec![0.0; n], clipped: vec![false; n], clipped_read: vec![(0.0, 0.0); n], clipped_marks_in_use: true, library_frames: 0, ratio_shift_ln: 0.0, ratio_shift_frames: 0, follows_frames: false, exposure_ln_sum: 0.0, exposure_frames: 0 }
     }
 }
 
@@ -265,16 +269,17 @@ impl Reference {
                         // Clear by a margin against the learned ratio: the frame's clear sky, for its exposure.
                         meter.add(rgb, self.bright[bin], params.saturation_level);
                     }
-                    if follow && g.z_deg <= SHIFT_MAX_ZENITH_DEG && rgb[2] >= 10 && rgb.iter().all(|c| *c < params.saturation_level) {
+                    if follow && r > 0.0 && rgb[0] > 0 && g.z_deg <= SHIFT_MAX_ZENITH_DEG && rgb[2] >= 10 && rgb.iter().all(|c| *c < params.saturation_level) {
                         shifts.push(((rb_read / r).ln(), r.ln()));
                     }
                 }
             }
         }
         // The colour balance: this frame's clear-sky shift, folded into the running mean.
-        let ratio_shift_measured = if follow { clear_ratio_shift(&mut shifts) } else { None };
+        let ratio_shift_measured = if follow { clear_ratio_shift(&shifts) } else { None };
         let ratio_shift_ln = match ratio_shift_measured {
-            Some(e) => self.ratio_shift_ln + SHIFT_RATE * (e - self.ratio_shift_ln),
+            Some(e) if self.follows_frames => self.ratio_shift_ln + SHIFT_RATE * (e - self.ratio_shift_ln),
+            Some(e) => e,
             None => self.ratio_shift_ln,
         };
         let ratio_scale = ratio_scale_of(ratio_shift_ln);
@@ -416,12 +421,16 @@ const SHIFT_MAX: f32 = 0.3;
 /// Weight of a frame's shift in the running mean.
 const SHIFT_RATE: f32 = 0.3;
 /// A running shift within this of 0 \[ln(R/B)\] reads the library as learnt: the day-to-day
-/// spread of the clear sky's own colour (haze), not the camera's.
+/// spread of the clear sky's own colour (haze), not the camera's (the shipped independent scenes'
+/// running shift stays within ±0.015).
 const SHIFT_DEAD_BAND: f32 = 0.03;
 
-/// The ratio scale of a running shift: 1 within [`SHIFT_DEAD_BAND`].
+/// The ratio scale of a running shift: 1 within [`SHIFT_DEAD_BAND`], the whole shift from twice
+/// that, and a linear ramp between (no step in the classification as the shift crosses the band).
 fn ratio_scale_of(shift_ln: f32) -> f32 {
-    if shift_ln.abs() < SHIFT_DEAD_BAND { 1.0 } else { shift_ln.clamp(-SHIFT_MAX, SHIFT_MAX).exp() }
+    let s = shift_ln.clamp(-SHIFT_MAX, SHIFT_MAX);
+    let ramp = ((s.abs() - SHIFT_DEAD_BAND) / SHIFT_DEAD_BAND).clamp(0.0, 1.0);
+    if ramp == 0.0 { 1.0 } else { (s * ramp).exp() }
 }
 
 /// A frame's clear-sky shift of ln(R/B) against the library, from its samples
@@ -436,7 +445,7 @@ fn ratio_scale_of(shift_ln: f32) -> f32 {
 /// ([`SHIFT_SEARCH`]), provided that window holds [`SHIFT_MIN_SHARE`] of the samples (a frame with
 /// little clear sky gives none) and spans the library's ratios ([`SHIFT_MIN_SPAN`]; a veil over
 /// the whole sky does not). Common practice, no source.
-pub fn clear_ratio_shift(xs: &mut [(f32, f32)]) -> Option<f32> {
+pub fn clear_ratio_shift(xs: &[(f32, f32)]) -> Option<f32> {
     let n = xs.len();
     if n < SHIFT_MIN_SAMPLES {
         return None;

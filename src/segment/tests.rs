@@ -209,14 +209,14 @@ fn a_colour_balance_shift_is_found_in_the_clear_sky() {
     // Common practice, no source: a white-balance change scales every clear ratio alike.
     for scale in [0.86f32, 1.0, 1.16] {
         for clear in [0.3f32, 0.6, 1.0] {
-            let e = library::clear_ratio_shift(&mut shift_samples(4000, clear, scale, false)).expect("clear sky shows");
+            let e = library::clear_ratio_shift(&shift_samples(4000, clear, scale, false)).expect("clear sky shows");
             assert!((e - scale.ln()).abs() < 0.01, "scale {scale} clear {clear}: {e} against {}", scale.ln());
         }
     }
     // Overcast (5 % clear), a veil over the whole sky, or too few samples: none.
-    assert_eq!(library::clear_ratio_shift(&mut shift_samples(4000, 0.05, 1.16, false)), None);
-    assert_eq!(library::clear_ratio_shift(&mut shift_samples(4000, 0.0, 1.0, true)), None);
-    assert_eq!(library::clear_ratio_shift(&mut shift_samples(200, 1.0, 1.16, false)), None);
+    assert_eq!(library::clear_ratio_shift(&shift_samples(4000, 0.05, 1.16, false)), None);
+    assert_eq!(library::clear_ratio_shift(&shift_samples(4000, 0.0, 1.0, true)), None);
+    assert_eq!(library::clear_ratio_shift(&shift_samples(200, 1.0, 1.16, false)), None);
 }
 
 #[test]
@@ -253,4 +253,42 @@ fn the_followed_shift_reads_ratios_in_the_library_s_colour_balance() {
     // Within the dead band the library is read as learnt.
     r.ratio_shift_ln = 0.02;
     assert_eq!(r.ratio_scale(), 1.0);
+}
+
+#[test]
+fn the_dead_band_ramps_in_and_one_shot_readings_take_the_frame_s_shift() {
+    let mut r = Reference::default();
+    // Within the band: as learnt; twice the band and beyond: the whole shift; a ramp between, with
+    // no step where it starts (own choice, documented at `ratio_scale_of`).
+    for (s, want) in [(0.0f32, 1.0f32), (0.029, 1.0), (0.03, 1.0), (0.045, (0.0225f32).exp()), (0.06, (0.06f32).exp()), (0.149, (0.149f32).exp()), (-0.149, (-0.149f32).exp()), (0.5, (0.3f32).exp())] {
+        r.ratio_shift_ln = s;
+        assert!((r.ratio_scale() - want).abs() < 1e-5, "shift {s}: {} against {want}", r.ratio_scale());
+    }
+    r.ratio_shift_ln = 0.0301;
+    assert!(r.ratio_scale() - 1.0 < 1e-3, "no step past the band: {}", r.ratio_scale());
+    // A reference not followed over frames (a second camera, `segment`, `verify`) reads each frame's
+    // own shift whole; the engine's blends it into its running mean.
+    let p = SegmentParams::default();
+    let bin = lib_index(31.0, 61.0);
+    for follows in [false, true] {
+        let mut r = Reference { follows_frames: follows, ..Reference::default() };
+        r.lib[bin] = 0.75;
+        r.weight[bin] = 10.0;
+        let fr = r.for_frame(&p, std::iter::repeat_n(([174u8, 190, 200], geom(31.0, 61.0)), 1200));
+        let e = fr.ratio_shift_measured.expect("a clear frame");
+        let want = if follows { 0.3 * e } else { e };
+        assert!((fr.ratio_shift_ln - want).abs() < 1e-6, "follows {follows}: {} against {want}", fr.ratio_shift_ln);
+    }
+}
+
+#[test]
+fn the_exposure_is_a_geometric_mean_over_the_frames_that_measured_it() {
+    let mut r = Reference::default();
+    assert_eq!(r.mean_exposure(), None);
+    for e in [Some(0.8), None, Some(1.25), Some(0.0), Some(-1.0)] {
+        r.keep_exposure(e);
+    }
+    let (m, n) = r.mean_exposure().unwrap();
+    assert_eq!(n, 2);
+    assert!((m - 1.0).abs() < 1e-6, "{m}");
 }

@@ -45,6 +45,9 @@ pub(super) struct LiveEngine {
     held_back_logged: bool,
     /// Whether fits that disagreed with the configured base but could not be checked were logged.
     unchecked_logged: bool,
+    /// Whether the followed colour balance and a differing exposure were logged
+    /// ([`crate::replay::colour_balance_note`], [`crate::replay::exposure_note`]).
+    camera_notes_logged: [bool; 2],
 }
 
 /// What a frame's step gave, for the reports after it.
@@ -90,6 +93,7 @@ impl LiveEngine {
             naming,
             held_back_logged: false,
             unchecked_logged: false,
+            camera_notes_logged: [false; 2],
         }
     }
 
@@ -131,11 +135,26 @@ impl LiveEngine {
             }
             let stepped = self.step(&newest);
             self.note_base_rejected();
+            self.note_camera_settings();
             self.report(&newest, stepped, ready.len() - 1);
             retire_all(&ready, &self.opts.health.retention, &self.shared, self.opts.health.log_json);
         }
         if let Ok(mut s) = self.shared.lock() {
             s.health.running = false;
+        }
+    }
+
+    /// Log once each of `replay`'s closing notes on the camera's settings against the calibration
+    /// day's: a followed colour balance, an exposure that differs (an `event` `camera_settings`).
+    fn note_camera_settings(&mut self) {
+        let r = self.nc.reference();
+        let (scale, exposure) = ((f64::from(r.ratio_scale()), r.ratio_shift_frames), r.mean_exposure());
+        let notes = [crate::replay::colour_balance_note(scale, exposure), crate::replay::exposure_note(scale, exposure)];
+        for (i, note) in notes.into_iter().enumerate() {
+            if let Some(note) = note.filter(|_| !self.camera_notes_logged[i]) {
+                self.camera_notes_logged[i] = true;
+                self.log(&[("event", "camera_settings".into()), ("note", note)]);
+            }
         }
     }
 
