@@ -21,7 +21,7 @@ pub(super) fn usable(look: &HorizonLookUp) -> bool {
 
 /// Chunks of four points whose corners are found before any of their corners is read
 /// ([`sum_one_layer`]).
-const BATCH: usize = 16;
+const BATCH: usize = 8;
 
 /// Sum of the points' beam transmittances (as used) and how many fell back, four points at a
 /// time. Only when [`usable`].
