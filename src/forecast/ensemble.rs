@@ -73,17 +73,26 @@ pub fn ensemble_with(
             forecast_with_planes(tms, grid, &inp, skies, &planes)
         })
         .collect();
-    let member_rows: Vec<Vec<&TargetForecast>> = members.iter().map(|m| m.rows().map(|(_, x)| x).collect()).collect();
+    // Row r's band from the r-th row of every member that has one: the members' rows are read in
+    // step, into two buffers kept for all rows. (The order in which values enter does not
+    // matter: sorted by `total_cmp`, equal values are the same bits.)
+    let mut member_rows: Vec<_> = members.iter().map(|m| m.rows().map(|(_, x): (&str, &TargetForecast)| x)).collect();
+    let (mut ghi, mut pw) = (Vec::with_capacity(members.len()), Vec::with_capacity(members.len()));
     let bands = (0..central.row_count())
-        .map(|r| {
-            let mut ghi: Vec<f64> = member_rows.iter().filter_map(|m| m.get(r)).map(|x| x.irradiance.ghi_wm2).collect();
-            let mut pw: Vec<f64> = member_rows.iter().filter_map(|m| m.get(r)).map(|x| x.power_kw).collect();
-            ghi.sort_by(f64::total_cmp);
-            pw.sort_by(f64::total_cmp);
+        .map(|_| {
+            ghi.clear();
+            pw.clear();
+            for x in member_rows.iter_mut().filter_map(Iterator::next) {
+                ghi.push(x.irradiance.ghi_wm2);
+                pw.push(x.power_kw);
+            }
+            ghi.sort_unstable_by(f64::total_cmp);
+            pw.sort_unstable_by(f64::total_cmp);
             let q = |v: &[f64]| [quantile_sorted(v, 0.1), quantile_sorted(v, 0.5), quantile_sorted(v, 0.9)];
             Band { ghi_wm2: q(&ghi), power_kw: q(&pw) }
         })
         .collect();
+    drop(member_rows);
     (members, bands)
 }
 

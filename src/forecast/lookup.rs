@@ -57,7 +57,15 @@ impl HorizonLookUp<'_> {
     #[inline(never)]
     pub(super) fn fallback(&self, l: usize, pt: [f64; 2]) -> f64 {
         let (qx, qy) = self.grid.to_cell([pt[0] + self.off[l][0], pt[1] + self.off[l][1]]);
-        let now = self.tms[l].box_mean_with(qx, qy, self.r_cells[l], self.beams).unwrap_or(self.means[l]);
+        self.fallback_blend(l, self.tms[l].box_mean_with(qx, qy, self.r_cells[l], self.beams))
+    }
+
+    /// The fallback's blend of the state now at the point's sun-ray point (`now`: its box mean,
+    /// none where that box is off the map or unseen) and layer `l`'s mean
+    /// ([`HorizonLookUp::fallback`]; the four-lane loop looks `now` up four points at a time).
+    #[inline]
+    pub(super) fn fallback_blend(&self, l: usize, now: Option<f64>) -> f64 {
+        let now = now.unwrap_or(self.means[l]);
         self.wp * now + (1.0 - self.wp) * self.means[l]
     }
 
