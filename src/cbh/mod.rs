@@ -466,8 +466,6 @@ impl CbhState {
         if side != 0 && !fit.null.judged {
             self.unjudged_disagreeing += 1;
             self.unjudged_span = Some((self.unjudged_span.map_or(time, |s| s.0), time));
-        }
-        if side != 0 && !fit.null.judged {
             // Not judged yet (the window's readings span too few shifts): neither counted nor
             // breaking the run, so that a window holding one reading fewer now and then (1-minute
             // readings, 20-s frames: 11 or 12 in a window) does not stop every run.

@@ -477,6 +477,12 @@ impl ShadowTiming {
     }
 }
 
+/// `1 − r²` from the centred sums `[Σxx, Σxy, Σyy]`: 1 (no fit) for a degenerate or falling line
+/// (the same slope rule as [`r2_cost`]).
+fn cost_of_sums(w: [f64; 3]) -> f64 {
+    if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) }
+}
+
 /// `1 − r²` of the pairs taken about their own frame's means, summed over `frames`, for candidate
 /// `c` of the statistics `get` gives (the same slope rule as [`r2_cost`]).
 fn within_cost(frames: &[&FrameCost], get: impl Fn(&FrameCost) -> &[Stats], c: usize) -> f64 {
@@ -490,7 +496,7 @@ fn within_cost(frames: &[&FrameCost], get: impl Fn(&FrameCost) -> &[Stats], c: u
         w[1] += s[4] - s[1] * s[2] / s[0];
         w[2] += s[5] - s[2] * s[2] / s[0];
     }
-    if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) }
+    cost_of_sums(w)
 }
 
 /// The [`NullTest`] of the window's `frames`, their readings unshifted giving the pooled cost
@@ -579,7 +585,7 @@ fn null_test(p: &ShadowParams, frames: &[&FrameCost], candidates: usize, cost: f
             }
             if !detrend {
                 let w = within[c];
-                let wc = if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) };
+                let wc = cost_of_sums(w);
                 out.within_min = out.within_min.min(wc);
             }
         }
@@ -642,7 +648,7 @@ fn detrended_costs(frames: &[&FrameCost], candidates: usize, y: impl Fn(&FrameCo
                 w[1] += a[8] - fit(xs, ys);
                 w[2] += a[9] - fit(ys, ys);
             }
-            if w[0] <= 1e-12 || w[2] <= 1e-12 || w[1] <= 0.0 { 1.0 } else { (1.0 - w[1] * w[1] / (w[0] * w[2])).clamp(0.0, 1.0) }
+            cost_of_sums(w)
         })
         .collect()
 }
