@@ -102,6 +102,9 @@ fn measurement_feed_appended_and_rotated_while_live_reaches_the_tuner() {
     }
     let hl = health(addr);
     assert_eq!(u(&hl["tuning_rows"]), 0);
+    // The demo camera's frames match its library's colour balance (own data: the demo is rendered
+    // with one camera throughout).
+    assert_eq!(hl["clear_rb_scale"].as_f64(), Some(1.0), "{hl}");
     assert_eq!(hl["health_state"], "stale", "demo frames are months old: {hl}");
     assert_eq!(hl["data_valid"], false);
     // The logger starts its file after the service started: 10 rows and half of the 11th.

@@ -146,6 +146,7 @@ impl LiveEngine {
 
     /// Log once each of `replay`'s closing notes on the camera's settings against the calibration
     /// day's: a followed colour balance, an exposure that differs (an `event` `camera_settings`).
+    /// (The health report carries the same figures: `clear_rb_scale`, `exposure`.)
     fn note_camera_settings(&mut self) {
         let r = self.nc.reference();
         let (scale, exposure) = ((f64::from(r.ratio_scale()), r.ratio_shift_frames), r.mean_exposure());
@@ -340,6 +341,11 @@ impl LiveEngine {
         if let Ok(mut s) = self.shared.lock() {
             s.health.frames_skipped += skipped;
             s.health.frames_processed = self.nc.counters.used;
+            if self.nc.counters.used > 0 {
+                let r = self.nc.reference();
+                s.health.clear_rb_scale = Some(f64::from(r.ratio_scale()));
+                s.health.exposure = r.mean_exposure().map(|e| e.0);
+            }
             s.health.frames_rejected = self.nc.counters.rejected.clone();
             s.health.clock_reanchors = self.nc.counters.clock_reanchors;
             s.health.frames_changed = self.watch.changed;

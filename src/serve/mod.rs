@@ -138,6 +138,13 @@ pub struct Health {
     pub tuning_resets: usize,
     /// Pyranometer readings the transmittance tuning holds now.
     pub tuning_rows: usize,
+    /// The factor by which the frames' red/blue ratios read above the clear-sky library's colour
+    /// balance, as followed now (1: as learnt; `segment.follow_colour_balance`); none before a
+    /// frame was used.
+    pub clear_rb_scale: Option<f64>,
+    /// The frames' exposure against the library's clear-sky brightness (geometric mean over the
+    /// frames that measured it since start), when any did.
+    pub exposure: Option<f64>,
     /// Frame-like files whose name holds no time (seen since start).
     pub frames_untimed: usize,
     /// The newest of their names (at most 20).
