@@ -149,6 +149,9 @@ pub fn exposure_note(clear_rb_scale: (f64, usize), exposure: Option<(f64, usize)
     ))
 }
 
+/// `frames.csv`'s columns.
+const FRAMES_HEADER: &str = "time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin,beam_clear,beam_thick,beam_cloud_brightness,diffuse_per_cover,tuning_rows,clear_rb_scale,exposure";
+
 /// An error that stops a replay.
 #[derive(Debug, thiserror::Error)]
 pub enum ReplayError {
@@ -338,7 +341,7 @@ impl ReplayTables {
             ramps_jsonl: String::new(),
             alarms: CsvTable::with_header_line("time_utc,from,to,probability,reason,basis_expected_start_utc,basis_lead_s,basis_change_mw,basis_change_pct,basis_probability"),
             members: CsvTable::with_header_line("issue_time_utc,horizon_s,member,plant_ghi_wm2,plant_power_kw"),
-            fr: CsvTable::with_header_line("time_utc,file,status,reason,cloud_fraction,cbh_m,sun_elevation_deg,decode_ms,qc_ms,map_ms,motion_ms,forecast_ms,ensemble_ms,band_scale_5min,band_scale_10min,band_scale_15min,sun_disk_clipped_share,beam_thin,beam_clear,beam_thick,beam_cloud_brightness,diffuse_per_cover,tuning_rows,clear_rb_scale,exposure"),
+            fr: CsvTable::with_header_line(FRAMES_HEADER),
         }
     }
 
@@ -426,7 +429,7 @@ impl ReplayTables {
     /// A rejected frame's row in `frames.csv`.
     fn add_rejected(&mut self, time: &DateTime<Utc>, name: &str, rej: &Rejection, dms: f64) {
         let mut row = vec![fmt_time(time), name.to_string(), rej.code().to_string(), rej.to_string(), String::new(), String::new(), String::new(), format!("{dms:.2}")];
-        row.resize(25, String::new());
+        row.resize(FRAMES_HEADER.split(',').count(), String::new());
         self.fr.row(row);
     }
 
