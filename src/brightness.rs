@@ -89,14 +89,23 @@ impl ExposureMeter {
 
 /// The dark-cloud test: whether a sample reading `rgb` is darker than the clear sky would be, at
 /// the frame's `exposure`, where the library's clear brightness is `library_v`, by more than
-/// `margin` (a share), where that clear sky reads at least `min_level`.
+/// `margin` (a share), where that clear sky reads at least `min_level`. With `past_clipping`
+/// (the saturation level) the expectation is the clear sky's brightness at that exposure even
+/// beyond 255: an unclipped sample is compared with what the clear sky would be, not with what
+/// the image could show of it, and a clipped one (reading at least that level) is never darker.
+/// Without, the expectation is held at 255.
 #[inline]
-pub fn darker_than_clear(rgb: [u8; 3], library_v: f32, exposure: f32, margin: f32, min_level: f32) -> bool {
+pub fn darker_than_clear(rgb: [u8; 3], library_v: f32, exposure: f32, margin: f32, min_level: f32, past_clipping: Option<f32>) -> bool {
     if library_v <= 0.0 {
         return false;
     }
-    let expected = (exposure * library_v).min(255.0);
-    expected >= min_level && reading(rgb) < (1.0 - margin) * expected
+    let v = reading(rgb);
+    let expected = match past_clipping {
+        Some(saturation) if v >= saturation => return false,
+        Some(_) => exposure * library_v,
+        None => (exposure * library_v).min(255.0),
+    };
+    expected >= min_level && v < (1.0 - margin) * expected
 }
 
 /// Largest share of thin cloud among the cloud within [`crate::distance::NEAR_ZENITH_DEG`] for the
@@ -165,16 +174,22 @@ mod tests {
     /// the exposure scales the expectation, and a clipped expectation is held at 255.
     #[test]
     fn a_sample_darker_than_bright_clear_sky_is_flagged() {
-        assert!(darker_than_clear([180, 185, 190], 240.0, 1.0, 0.12, 200.0));
-        assert!(!darker_than_clear([200, 210, 220], 240.0, 1.0, 0.12, 200.0));
-        // Dim clear sky (deep blue): not tested.
-        assert!(!darker_than_clear([60, 80, 100], 150.0, 1.0, 0.12, 200.0));
-        // A darker exposure lowers the expectation: 190 against 0.8 × 240 = 192 is not darker.
-        assert!(!darker_than_clear([180, 185, 190], 240.0, 0.8, 0.12, 200.0));
-        // No library brightness: never.
-        assert!(!darker_than_clear([0, 0, 0], 0.0, 1.0, 0.12, 200.0));
-        // Expectation clipped at 255: 230 is not 12 % below 255.
-        assert!(!darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0));
+        for past in [false, true] {
+            assert!(darker_than_clear([180, 185, 190], 240.0, 1.0, 0.12, 200.0, past.then_some(250.0)));
+            assert!(!darker_than_clear([200, 210, 220], 240.0, 1.0, 0.12, 200.0, past.then_some(250.0)));
+            // Dim clear sky (deep blue): not tested.
+            assert!(!darker_than_clear([60, 80, 100], 150.0, 1.0, 0.12, 200.0, past.then_some(250.0)));
+            // A darker exposure lowers the expectation: 190 against 0.8 × 240 = 192 is not darker.
+            assert!(!darker_than_clear([180, 185, 190], 240.0, 0.8, 0.12, 200.0, past.then_some(250.0)));
+            // No library brightness: never.
+            assert!(!darker_than_clear([0, 0, 0], 0.0, 1.0, 0.12, 200.0, past.then_some(250.0)));
+        }
+        // Expectation held at 255: 230 is not 12 % below 255; past the clipping it is 23 % below
+        // the 1.2 × 250 = 300 the clear sky would be.
+        assert!(!darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0, None));
+        assert!(darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0, Some(250.0)));
+        // A clipped sample is never darker, whatever the expectation.
+        assert!(!darker_than_clear([230, 240, 252], 250.0, 1.2, 0.12, 200.0, Some(250.0)));
     }
 
     /// An ideal camera's pixel geometry, and the sun at zenith 60°, azimuth 90°.

@@ -304,7 +304,8 @@ impl Reference {
         let glare_extent_deg = (first..GLARE_RINGS).find(|&r| ring_n[r] >= GLARE_RING_MIN_SAMPLES && !glare_ring[r]).unwrap_or(first) as f32;
         let glare_zone_deg = (params.glare_zone_deg as f32).max(glare_extent_deg);
         let exposure = if metering { meter.exposure() } else { None };
-        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg, exposure, ratio_scale, inv_ratio_scale, ratio_shift_measured, ratio_shift_ln }
+        let clip_exposure = if params.exposure_past_clipping { exposure.or_else(|| self.mean_exposure().map(|m| m.0 as f32)) } else { None };
+        FrameReference { reference: self, params, offset, glare_ring, glare_extent_deg, glare_zone_deg, exposure, ratio_scale, inv_ratio_scale, ratio_shift_measured, ratio_shift_ln, clip_exposure }
     }
 
     /// The factor the library's ratios are read with ([`SegmentParams::follow_colour_balance`]):

@@ -213,6 +213,20 @@ pub struct SegmentParams {
     /// before they are judged (against the library, the parametric default and `cloud_rb` alike).
     /// Off: the frames' ratios are judged as read.
     pub follow_colour_balance: bool,
+    /// Judge samples against the clear sky as it is at the frame's exposure, past the image's
+    /// clipping, where a brighter exposure than the library's lifts it there (measured from the
+    /// frame's own clear sky, else the frames' mean so far):
+    /// - a sample whose blue channel clips, away from the sun's glare, where the learned clear
+    ///   sky's blue (exposure × the library's brightness) clips too, is compared with the clear
+    ///   sky's ratio as it then reads, `min(R, 255) / 255`, above the library's: a clipped blue
+    ///   lifts the ratio of bright clear sky (near the horizon, around the glare) toward cloud's,
+    ///   and read against the unclipped library it became cloud. Where the clear sky would not
+    ///   clip, a clipped sample is brighter than clear sky and is judged as read;
+    /// - the dark-cloud test ([`crate::brightness::darker_than_clear`]) compares an unclipped
+    ///   sample with the clear sky's brightness at that exposure even beyond 255, not with 255.
+    ///
+    /// Off: the library's ratios as learnt, and the expectation held at 255.
+    pub exposure_past_clipping: bool,
 }
 
 impl Default for SegmentParams {
@@ -253,6 +267,7 @@ impl Default for SegmentParams {
             judge_clipped_bins: true,
             clipped_marks_with_pyranometers: true,
             follow_colour_balance: true,
+            exposure_past_clipping: true,
         }
     }
 }
@@ -357,6 +372,10 @@ pub struct FrameReference<'a> {
     pub ratio_shift_measured: Option<f32>,
     /// The running mean of the shift after this frame (for [`Reference::keep_ratio_shift`]).
     pub ratio_shift_ln: f32,
+    /// The exposure at which a clipped blue channel is judged
+    /// ([`SegmentParams::exposure_past_clipping`]): the frame's own, else the frames' mean so far;
+    /// `None` with the setting off or before any exposure was measured.
+    pub clip_exposure: Option<f32>,
 }
 
 impl FrameReference<'_> {
@@ -384,6 +403,27 @@ impl FrameReference<'_> {
     #[inline]
     fn clear_sky_clips(&self, bin: usize) -> bool {
         self.reference.clipped_marks_in_use && self.reference.clipped[bin]
+    }
+
+    /// The clear sky's R/B (in the library's colour balance) as this frame reads it in library bin
+    /// `bin` when its blue channel clips at the frame's exposure
+    /// ([`SegmentParams::exposure_past_clipping`]); `None` where the learned clear sky's blue
+    /// stays below the saturation level at that exposure, or the bin has no learned value.
+    #[inline]
+    fn clipped_blue_reference(&self, bin: usize) -> Option<f32> {
+        let e = self.clip_exposure?;
+        let r = self.reference;
+        let (v, lib) = (r.bright[bin], r.lib[bin]);
+        if r.weight[bin] <= 0.5 || v <= 0.0 {
+            return None;
+        }
+        // The clear sky's blue is its largest channel (the library's brightness).
+        let blue = e * v;
+        if blue < f32::from(self.params.saturation_level) {
+            return None;
+        }
+        let red = lib * self.ratio_scale * blue;
+        Some(red.min(255.0) / blue.min(255.0) * self.inv_ratio_scale)
     }
 
     /// Whether sample `k` of `sky` is judged by its ratio alone in this frame (plain sky outside the
@@ -418,7 +458,10 @@ impl FrameReference<'_> {
             // overcast frame has too few, and a camera that brightens it clips its bright cloud.
             return if self.exposure.is_some() { Class::Clear } else { Class::Unknown };
         }
-        let expected = (self.exposure.unwrap_or(1.0) * f32::from(p.saturation_level)).min(255.0);
+        // The clear sky here read at least the saturation level; past the clipping
+        // ([`SegmentParams::exposure_past_clipping`]) at least that times the exposure.
+        let at_exposure = self.exposure.unwrap_or(1.0) * f32::from(p.saturation_level);
+        let expected = if p.exposure_past_clipping { at_exposure } else { at_exposure.min(255.0) };
         if p.dark_cloud_margin > 0.0 && crate::brightness::reading(rgb) < (1.0 - p.dark_cloud_margin as f32) * expected { Class::Thick } else { Class::Unknown }
     }
 
@@ -437,7 +480,7 @@ impl FrameReference<'_> {
         let p = self.params;
         g.plain
             && self.outside_glare(g.gamma_deg)
-            && crate::brightness::darker_than_clear(rgb, self.reference.bright[g.bin as usize], e, p.dark_cloud_margin as f32, p.dark_cloud_min_level as f32)
+            && crate::brightness::darker_than_clear(rgb, self.reference.bright[g.bin as usize], e, p.dark_cloud_margin as f32, p.dark_cloud_min_level as f32, p.exposure_past_clipping.then_some(f32::from(p.saturation_level)))
     }
 
     /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
@@ -481,7 +524,9 @@ impl FrameReference<'_> {
                 let c = self.judge_in_clipped_bin(rgb);
                 return (rgb, f32::NAN, c as u8);
             }
-            let (s, c) = self.classify_plain(rgb, self.reference_in_bin(g.bin as usize, g.default_rb), g.thick_score);
+            let clipped_reference = if rgb[2] >= self.params.saturation_level { self.clipped_blue_reference(g.bin as usize) } else { None };
+            let reference_rb = clipped_reference.unwrap_or_else(|| self.reference_in_bin(g.bin as usize, g.default_rb));
+            let (s, c) = self.classify_plain(rgb, reference_rb, g.thick_score);
             (rgb, s, c)
         } else {
             let rgb = exact_rgb();

@@ -3,7 +3,7 @@ use super::*;
 
 /// A frame's reference without offset, glare measured or exposure.
 fn plain_reference<'a>(r: &'a Reference, p: &'a SegmentParams) -> FrameReference<'a> {
-    FrameReference { reference: r, params: p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None, ratio_scale: 1.0, inv_ratio_scale: 1.0, ratio_shift_measured: None, ratio_shift_ln: 0.0 }
+    FrameReference { reference: r, params: p, offset: 0.0, glare_ring: [true; GLARE_RINGS], glare_extent_deg: 0.0, glare_zone_deg: p.glare_zone_deg as f32, exposure: None, ratio_scale: 1.0, inv_ratio_scale: 1.0, ratio_shift_measured: None, ratio_shift_ln: 0.0, clip_exposure: None }
 }
 
 fn geom(z: f32, g: f32) -> PixelGeom {
@@ -291,4 +291,60 @@ fn the_exposure_is_a_geometric_mean_over_the_frames_that_measured_it() {
     let (m, n) = r.mean_exposure().unwrap();
     assert_eq!(n, 2);
     assert!((m - 1.0).abs() < 1e-6, "{m}");
+}
+
+/// A frame exposed brighter than the library's clear day (`exposure_past_clipping`): where the
+/// learned clear sky's blue clips at the frame's exposure, a sample whose blue clips is judged
+/// against the clear sky's ratio as it then reads (`min(R, 255) / 255`), not the unclipped
+/// library's; where the clear sky would not clip, a clipped sample is judged as read; the
+/// clear-day clipped bins' dark test compares with the clipped level times the exposure, past 255.
+/// (Common practice, no source: a clipped channel bounds the ratio, it does not measure it.)
+#[test]
+fn a_brighter_exposure_is_judged_past_the_clipping() {
+    let p = SegmentParams::default();
+    assert!(p.exposure_past_clipping);
+    // A whitish bin near the horizon (R/B 0.76, blue 240) and a deep blue one (R/B 0.60, blue 150).
+    let (white, deep) = (geom(78.5, 60.5), geom(30.5, 60.5));
+    let frame = || vec![([182u8, 210, 240], white); 6].into_iter().chain(vec![([90u8, 120, 150], deep); 6]);
+    let r = Reference::from_clear_samples(&p, (0..4).map(|_| frame()), 3);
+    let bin = lib_index(white.z_deg, white.gamma_deg);
+    assert!((r.lib[bin] - 182.0 / 240.0).abs() < 1e-3 && (r.bright[bin] - 240.0).abs() < 1e-3);
+    // The same clear sky at exposure 1.2: red 218, blue 288 clipped to 255, read R/B 0.855.
+    let clear_bright = [218u8, 252, 255];
+    let before = plain_reference(&r, &p);
+    let after = FrameReference { clip_exposure: Some(1.2), ..plain_reference(&r, &p) };
+    assert_ne!(before.classify_at(sample(&p, white), white.z_deg, || clear_bright, || clear_bright).2, Class::Clear as u8, "read against the unclipped library it is cloud");
+    assert_eq!(after.classify_at(sample(&p, white), white.z_deg, || clear_bright, || clear_bright).2, Class::Clear as u8);
+    // White cloud there clips in every channel: whiter than that clear sky reads.
+    assert_eq!(after.classify_at(sample(&p, white), white.z_deg, || [255, 255, 255], || [255, 255, 255]).2, Class::Thick as u8);
+    // Where the clear sky itself reads near-white at that exposure (R/B 0.80: red 230, read
+    // 0.90), too little contrast is left to judge: unknown.
+    let mut rw = r.clone();
+    rw.lib[bin] = 0.8;
+    let whiter = FrameReference { clip_exposure: Some(1.2), ..plain_reference(&rw, &p) };
+    assert_eq!(whiter.classify_at(sample(&p, white), white.z_deg, || [230, 252, 255], || [230, 252, 255]).2, Class::Unknown as u8);
+    // Where the clear sky would not clip (deep blue at 1.2: 180), a clipped blue is brighter than
+    // clear sky and its ratio is judged as read: a white cloud.
+    let cloud = [250u8, 252, 255];
+    assert_eq!(after.classify_at(sample(&p, deep), deep.z_deg, || cloud, || cloud).2, Class::Thick as u8);
+    // A clear-day clipped bin at exposure 1.2: the clear sky there is at least 1.2 × 250 = 300, so
+    // an unclipped sample reading 230 is well below it (thick); held at 255 it was undecided.
+    let mut rc = Reference::default();
+    rc.clipped[lib_index(70.5, 30.5)] = true;
+    let g = geom(70.5, 30.5);
+    let measured = FrameReference { exposure: Some(1.2), ..plain_reference(&rc, &p) };
+    assert_eq!(measured.classify([200, 215, 230], g).1, Class::Thick);
+    let off = SegmentParams { exposure_past_clipping: false, ..p.clone() };
+    assert_eq!(FrameReference { exposure: Some(1.2), ..plain_reference(&rc, &off) }.classify([200, 215, 230], g).1, Class::Unknown);
+    // The frame's reference takes the frame's own exposure, else the frames' mean, only with the setting.
+    let mut rm = r.clone();
+    rm.keep_exposure(Some(1.2));
+    let fr = rm.for_frame_with(&p, std::iter::empty());
+    assert_eq!(fr.clip_exposure, Some(1.2));
+    assert_eq!(rm.for_frame_with(&off, std::iter::empty()).clip_exposure, None);
+}
+
+/// A plain sample's sky entries at `g` (as the map's cells carry them).
+fn sample(p: &SegmentParams, g: PixelGeom) -> SampleSky {
+    SampleSky { plain: true, gamma_deg: g.gamma_deg, bin: lib_index(g.z_deg, g.gamma_deg) as u16, default_rb: p.default_reference(g.z_deg, g.gamma_deg), thick_score: p.thick_at(g.z_deg) }
 }
