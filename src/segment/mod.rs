@@ -443,12 +443,16 @@ impl FrameReference<'_> {
         sky.plain[..n].iter().zip(&sky.gamma_deg[..n]).zip(&sky.bin[..n]).map(|((p, g), b)| *p && self.outside_glare(*g) && weight[*b as usize] > 0.5).collect()
     }
 
-    /// The class of a sample reading `rgb` in a bin of clipped clear sky
+    /// The class of a sample reading `rgb` in library bin `bin` of clipped clear sky
     /// ([`SegmentParams::judge_clipped_bins`]): clear where it clips as that clear sky does, thick
     /// where it reads below `1 − dark_cloud_margin` of the saturation level at the frame's exposure
-    /// (1 when it was not measured), unknown in between (and always, with the setting off).
+    /// (1 when it was not measured), unknown in between (and always, with the setting off). With
+    /// [`SegmentParams::exposure_past_clipping`] a sample that clips but whose red still reads is
+    /// thick where that red is below `1 − dark_cloud_margin` of the clear sky's red there (read on
+    /// the clear day under its clipped blue) at the frame's exposure: a brighter exposure clips
+    /// the blue of grey cloud that is darker than the clear sky.
     #[inline]
-    fn judge_in_clipped_bin(&self, rgb: [u8; 3]) -> Class {
+    fn judge_in_clipped_bin(&self, rgb: [u8; 3], bin: usize) -> Class {
         let p = self.params;
         if !p.judge_clipped_bins {
             return Class::Unknown;
@@ -456,7 +460,16 @@ impl FrameReference<'_> {
         if rgb.iter().any(|c| *c >= p.saturation_level) {
             // Clear only in a frame whose exposure was measured from its own clear samples: an
             // overcast frame has too few, and a camera that brightens it clips its bright cloud.
-            return if self.exposure.is_some() { Class::Clear } else { Class::Unknown };
+            let Some(e) = self.exposure else { return Class::Unknown };
+            if p.exposure_past_clipping && p.dark_cloud_margin > 0.0 && rgb[0] < p.saturation_level {
+                // Its red still reads: the clear sky's red here (read on the clear day under its
+                // clipped blue) at this exposure.
+                let red = e * self.reference.clipped_read[bin].0 * 255.0;
+                if f32::from(rgb[0]) < (1.0 - p.dark_cloud_margin as f32) * red {
+                    return Class::Thick;
+                }
+            }
+            return Class::Clear;
         }
         // The clear sky here read at least the saturation level; past the clipping
         // ([`SegmentParams::exposure_past_clipping`]) at least that times the exposure.
@@ -521,7 +534,7 @@ impl FrameReference<'_> {
         if g.plain && self.outside_glare(g.gamma_deg) {
             let rgb = plain_rgb();
             if self.clear_sky_clips(g.bin as usize) {
-                let c = self.judge_in_clipped_bin(rgb);
+                let c = self.judge_in_clipped_bin(rgb, g.bin as usize);
                 return (rgb, f32::NAN, c as u8);
             }
             let clipped_reference = if rgb[2] >= self.params.saturation_level { self.clipped_blue_reference(g.bin as usize) } else { None };
@@ -557,7 +570,7 @@ impl FrameReference<'_> {
         if self.clear_sky_clips(bin) {
             // Judged by brightness outside the glare; within it (beyond the sun's own disc) only a
             // dark sample is: a clipped one may be the bloom over cloud, and glare only brightens.
-            let j = self.judge_in_clipped_bin(rgb);
+            let j = self.judge_in_clipped_bin(rgb, bin);
             return (f32::NAN, if self.outside_glare(g.gamma_deg) || (j == Class::Thick && g.gamma_deg >= p.sun_exclusion_deg as f32) { j } else { Class::Unknown });
         }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0) * self.inv_ratio_scale;

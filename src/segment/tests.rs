@@ -336,6 +336,17 @@ fn a_brighter_exposure_is_judged_past_the_clipping() {
     assert_eq!(measured.classify([200, 215, 230], g).1, Class::Thick);
     let off = SegmentParams { exposure_past_clipping: false, ..p.clone() };
     assert_eq!(FrameReference { exposure: Some(1.2), ..plain_reference(&rc, &off) }.classify([200, 215, 230], g).1, Class::Unknown);
+    // Grey cloud whose blue the brighter exposure clips, in a bin where the clear day read R/B 0.9
+    // under a clipped blue (red 230, at 1.2: 275): its red 234 is 15 % below that, thick; the
+    // clear sky itself clips red too (clear), as without the setting.
+    rc.clipped_read[lib_index(70.5, 30.5)] = (0.9, 4.0);
+    let measured = FrameReference { exposure: Some(1.2), ..plain_reference(&rc, &p) };
+    assert_eq!(measured.classify([234, 240, 253], g).1, Class::Thick);
+    assert_eq!(measured.classify([252, 254, 255], g).1, Class::Clear);
+    assert_eq!(FrameReference { exposure: Some(1.2), ..plain_reference(&rc, &off) }.classify([234, 240, 253], g).1, Class::Clear);
+    // At the clear day's exposure a red read at the clear sky's is clear.
+    let same = FrameReference { exposure: Some(1.0), ..plain_reference(&rc, &p) };
+    assert_eq!(same.classify([230, 242, 255], g).1, Class::Clear);
     // The frame's reference takes the frame's own exposure, else the frames' mean, only with the setting.
     let mut rm = r.clone();
     rm.keep_exposure(Some(1.2));
