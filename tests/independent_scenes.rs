@@ -306,3 +306,35 @@ fn a_changed_white_balance_is_followed() {
     assert!(mbe < 200.0, "largest |MBE| {mbe:.1} W/m²: the balance is not followed (356 with the setting off)");
     assert!(failures.is_empty(), "{failures:#?}");
 }
+
+/// A camera exposed brighter on the day it forecasts than on the clear day it was calibrated from
+/// (the harness's `--cloudy-gain 1.2,1.2,1.2` on camera2's cloudy frames only; the pixels it
+/// lifts past 255 clip), without pyranometers. The clear sky's blue then clips near the horizon
+/// and around the glare, and grey cloud's blue clips where the clear day's sky clipped; both are
+/// judged against the clear sky as it reads at the frame's exposure
+/// (`segment.exposure_past_clipping`). Not yet the skill target (known shortfall); the 1-minute
+/// forecast must beat smart persistence and the bias stay within the target. Measured
+/// 2026-12-05: pooled 0.31, 1-min RMSE 132.8 against persistence's 165.6 W/m², largest |MBE|
+/// 14.6 W/m²; before the setting pooled −0.08, 1-min RMSE 225.0, largest |MBE| 118.2 W/m².
+#[test]
+fn a_brighter_exposure_is_judged_past_the_clipping() {
+    let Some(scenes) = scenes_or_skip() else { return };
+    let r = run_harness(&scenes, &["--cameras", "camera2", "--no-measurements", "--cloudy-gain", "1.2,1.2,1.2"]);
+    let c = &r["cameras"][0];
+    let rc = &c["replay_cloudy"];
+    assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
+    let fs = &rc["forecast_summary"];
+    let (pooled, r1, sp1, mbe) = (num(fs, &["skill_pooled_5_15"]), num(fs, &["rmse_1"]), num(fs, &["rmse_sp_1"]), num(fs, &["max_abs_mbe"]));
+    let yard = num(&r, &["yardsticks", c["cloudy_scene"].as_str().unwrap(), "pooled"]);
+    let mut failures = vec![];
+    check("camera2 exposed x1.2: 1-min RMSE below smart persistence", r1 < sp1, format!("{r1:.1} against {sp1:.1} W/m²"), &mut failures);
+    check("camera2 exposed x1.2: largest |MBE|", mbe <= TARGET_MAX_MBE, format!("{mbe:.1} W/m² (target {TARGET_MAX_MBE})"), &mut failures);
+    // Reported, not asserted: the skill target is not met under this exposure change yet.
+    eprintln!(
+        "{} camera2 exposed x1.2 pooled skill: 5–15 min {pooled:.3} against {TARGET_YARDSTICK_SHARE} × yardstick {yard:.2} = {:.3}",
+        if pooled >= TARGET_YARDSTICK_SHARE * yard { "meets:" } else { "known shortfall:" },
+        TARGET_YARDSTICK_SHARE * yard
+    );
+    assert!(pooled > 0.15, "pooled skill {pooled:.3}: the exposure is not judged past the clipping (−0.08 with the setting off)");
+    assert!(failures.is_empty(), "{failures:#?}");
+}
