@@ -92,20 +92,26 @@ impl ExposureMeter {
 /// `margin` (a share), where that clear sky reads at least `min_level`. With `past_clipping`
 /// (the saturation level) the expectation is the clear sky's brightness at that exposure even
 /// beyond 255: an unclipped sample is compared with what the clear sky would be, not with what
-/// the image could show of it, and a clipped one (reading at least that level) is never darker.
-/// Without, the expectation is held at 255.
+/// the image could show of it, a clipped one (reading at least that level) is never darker, and
+/// `min_level` applies to the library's brightness (the clear sky's own, at the clear day's
+/// exposure), so a darker exposure does not switch the test off. Without, the expectation is held
+/// at 255 and `min_level` applies to it.
 #[inline]
 pub fn darker_than_clear(rgb: [u8; 3], library_v: f32, exposure: f32, margin: f32, min_level: f32, past_clipping: Option<f32>) -> bool {
     if library_v <= 0.0 {
         return false;
     }
     let v = reading(rgb);
-    let expected = match past_clipping {
+    let (expected, bright_enough) = match past_clipping {
         Some(saturation) if v >= saturation => return false,
-        Some(_) => exposure * library_v,
-        None => (exposure * library_v).min(255.0),
+        // The clear sky's own brightness decides where the test applies, whatever the exposure.
+        Some(_) => (exposure * library_v, library_v >= min_level),
+        None => {
+            let e = (exposure * library_v).min(255.0);
+            (e, e >= min_level)
+        }
     };
-    expected >= min_level && v < (1.0 - margin) * expected
+    bright_enough && v < (1.0 - margin) * expected
 }
 
 /// Largest share of thin cloud among the cloud within [`crate::distance::NEAR_ZENITH_DEG`] for the
@@ -188,6 +194,10 @@ mod tests {
         // the 1.2 × 250 = 300 the clear sky would be.
         assert!(!darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0, None));
         assert!(darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0, Some(250.0)));
+        // A darker exposure: held, the 0.8 × 240 = 192 expectation is below the 200 floor; past the
+        // clipping the floor applies to the sky's own 240, and 150 is 22 % below 192.
+        assert!(!darker_than_clear([140, 145, 150], 240.0, 0.8, 0.12, 200.0, None));
+        assert!(darker_than_clear([140, 145, 150], 240.0, 0.8, 0.12, 200.0, Some(250.0)));
         // A clipped sample is never darker, whatever the expectation.
         assert!(!darker_than_clear([230, 240, 252], 250.0, 1.2, 0.12, 200.0, Some(250.0)));
     }
