@@ -355,3 +355,43 @@ fn two_layers_end_to_end_with_calibrated_camera() {
     );
     check_against_yardstick("nuisance-two-layer pooled skill against the yardstick", &e);
 }
+
+/// The sun's zenith angle above which a frame belongs to a low arc \[°\]: a winter day at
+/// mid-latitudes, when the sun never climbs out of its bloom.
+const LOW_SUN_MIN_ZENITH_DEG: f64 = 50.0;
+
+/// Calibration from the clear day's low-sun frames only (sun zenith beyond
+/// [`LOW_SUN_MIN_ZENITH_DEG`]), as from a winter day: every detection is bloomed. Prints the
+/// direction error by band against the stated bound.
+#[test]
+fn low_sun_calibration() {
+    let c = calibrated();
+    let low: Vec<(DateTime<Utc>, image::RgbImage)> = c
+        .frames
+        .iter()
+        .filter(|(t, _)| nephocast::sun::position(t, &c.observer).is_ok_and(|p| p.zenith_rad.to_degrees() > LOW_SUN_MIN_ZENITH_DEG))
+        .cloned()
+        .collect();
+    let result = calibrate(&low, &c.observer, &nephocast::calibrate::CalibrateOptions::default());
+    let (fit, dets) = match result {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("low-sun calibration of the nuisance camera ({} frames): {e}", low.len());
+            return;
+        }
+    };
+    eprintln!("low-sun calibration of the nuisance camera: {} frames, {} detections, model {}, {:?}", low.len(), dets.len(), fit.camera.projection.name(), fit.warnings);
+    for (z0, z1) in [(0.0, 40.0), (40.0, 60.0), (60.0, 80.0), (0.0, 80.0)] {
+        let mut e = direction_errors(&c.truth, &fit.camera, z0, z1);
+        let (rms, p95, max) = stats(&mut e);
+        eprintln!("  zenith {z0:>2}–{z1:<2}°: RMS {rms:.3}°, p95 {p95:.3}°, max {max:.3}°");
+    }
+    for b in &fit.bounds {
+        let mut e = direction_errors(&c.truth, &fit.camera, b.zenith_from_deg, b.zenith_to_deg);
+        if e.is_empty() {
+            continue;
+        }
+        let (_, p95, _) = stats(&mut e);
+        eprintln!("  bound {}–{}°: true p95 {p95:.3}°, stated {:.3}° {}", b.zenith_from_deg, b.zenith_to_deg, b.bound_deg, if p95 <= b.bound_deg { "covers" } else { "DOES NOT cover" });
+    }
+}
