@@ -31,8 +31,8 @@ const TARGET_MAX_MBE: f64 = 50.0;
 /// Targets not met yet (metric names as printed).
 const KNOWN_SHORTFALLS: &[&str] = &[
     "camera2 pooled skill",
-    // A low arc of the sun (`calibration_from_a_low_sun`): 0.202° against 0.2°, the bound covering;
-    // and below zenith 50° too few detections for any calibration.
+    // A low arc of the sun (`calibration_from_a_low_sun`): 0.220° against 0.2°, the bound covering;
+    // and beyond zenith 50° too few detections for any calibration.
     "camera2 (low sun, zenith > 45°) calibration p95",
     "camera1 (low sun, zenith > 50°) calibrates",
     "camera2 (low sun, zenith > 50°) calibrates",
@@ -151,13 +151,13 @@ fn calibration_from_part_of_the_clear_day() {
 
 /// A low arc of the sun, as a winter day gives (the harness's `--clear-subset low-sun`: only the
 /// clear day's frames whose sun is lower than a zenith angle): every detection is bloomed, its
-/// clipped glare leaning 1–5 px outward. Below zenith 45° (28 detections at 45–59°) the calibration
-/// was confidently off by a focal length 0.7–0.8 % long (p95 0.578° / 0.597°) while the glare-lean
-/// correction waited for 30 detections; it is now made from 10, kept when it lowers the held-out
-/// error by more than an RMS's sampling error over that many (p95 0.041° / 0.202°). Below zenith
-/// 50° the arc gives 18 detections (16 / 14 before the sun's own compact glare stopped counting as
-/// clipped area elsewhere), under the 20 `calibrate` needs: it refuses and says so, writing no file.
-/// Either way the stated bound must cover the true error.
+/// clipped glare leaning 1–4 px outward. Beyond zenith 45° (26 / 24 detections at 45–58°) the
+/// calibration was off by a focal length 0.5–0.7 % long, p95 0.591° / 0.616°, beyond its stated
+/// bound from zenith 40° on, while the glare-lean correction waited for 30 detections; it is now
+/// made from 10 and kept when it lowers the held-out error by more than an RMS's sampling error
+/// over that many: 0.045° / 0.220°, within the bound. Beyond zenith 50° the arc gives 16 / 14
+/// detections, under the 20 `calibrate` needs: it refuses and says so, writing no file. Either
+/// way the stated bound must cover the true error.
 #[test]
 fn calibration_from_a_low_sun() {
     let Some(scenes) = scenes_or_skip() else { return };

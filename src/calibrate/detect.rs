@@ -13,20 +13,15 @@ use crate::camera::{Camera, Orientation, Projection};
 pub fn detect_sun(img: &image::RgbImage, radius_px: f64, clip: ClipTest) -> Option<(f64, f64, usize)> {
     let (cx, cy, n) = find_sun_blob(img, clip, clip.core_level(), 3, 0.05 * radius_px)?;
     let r = 0.05 * radius_px;
-    // Saturated pixels far from the sun (other than its blooming column, and other than its own
-    // glare while that stays a compact blob) make the detection ambiguous.
-    let own = compact_blob(img, cx, cy, BLOOM_REACH * radius_px, clip);
+    // Saturated pixels far from the sun (other than its blooming column) make the detection
+    // ambiguous.
     let elsewhere = img
         .enumerate_pixels()
         .filter(|(x, y, p)| {
-            clip.clipped(p.0)
-                && (*x as f64 - cx).abs() > 2.0
-                && ((*x as f64 - cx).powi(2) + (*y as f64 - cy).powi(2)) > 4.0 * r * r
-                && !own.as_ref().is_some_and(|o| o.contains(&(*x as i64, *y as i64)))
+            clip.clipped(p.0) && (*x as f64 - cx).abs() > 2.0 && ((*x as f64 - cx).powi(2) + (*y as f64 - cy).powi(2)) > 4.0 * r * r
         })
         .count();
-    let size = own.as_ref().map_or(n, |o| o.len().max(n));
-    if n < 3 || (n as f64) > 0.02 * radius_px * radius_px || elsewhere as f64 > 0.25 * size as f64 {
+    if n < 3 || (n as f64) > 0.02 * radius_px * radius_px || elsewhere as f64 > 0.25 * n as f64 {
         return None;
     }
     // Centroid over the rows at least 3 px wide within the neighbourhood (a blooming streak is
@@ -47,34 +42,6 @@ pub fn detect_sun(img: &image::RgbImage, radius_px: f64, clip: ClipTest) -> Opti
         }
     }
     (k >= 3).then(|| (sx / k as f64, sy / k as f64, k))
-}
-
-/// How far the sun's own clipped blob may reach from its centre, as a share of the image circle's
-/// radius, and still be the sun's glare rather than glare merged with a bright horizon or cloud.
-pub const BLOOM_REACH: f64 = 0.2;
-
-/// The 4-connected clipped blob holding the clipped pixel nearest `(x, y)` (within 2 px), when
-/// every pixel of it lies within `reach_px` of `(x, y)`; `None` otherwise.
-fn compact_blob(img: &image::RgbImage, x: f64, y: f64, reach_px: f64, clip: ClipTest) -> Option<std::collections::HashSet<(i64, i64)>> {
-    let (w, h) = img.dimensions();
-    let sat = |x: i64, y: i64| x >= 0 && y >= 0 && x < w as i64 && y < h as i64 && clip.clipped(img.get_pixel(x as u32, y as u32).0);
-    let (xi, yi) = (x.round() as i64, y.round() as i64);
-    let seed = (0..=2i64).flat_map(|d| (-d..=d).flat_map(move |dy| (-d..=d).map(move |dx| (xi + dx, yi + dy)))).find(|&(a, b)| sat(a, b))?;
-    let mut seen = std::collections::HashSet::from([seed]);
-    let mut stack = vec![seed];
-    let r2 = reach_px * reach_px;
-    while let Some((a, b)) = stack.pop() {
-        if (a as f64 - x).powi(2) + (b as f64 - y).powi(2) > r2 {
-            return None;
-        }
-        for (dx, dy) in [(1, 0), (-1, 0), (0, 1), (0, -1)] {
-            let q = (a + dx, b + dy);
-            if sat(q.0, q.1) && seen.insert(q) {
-                stack.push(q);
-            }
-        }
-    }
-    Some(seen)
 }
 
 /// Area \[px\] of the 4-connected clipped blob (the sun's core by `clip`) nearest to (x, y),
