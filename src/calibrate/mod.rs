@@ -812,6 +812,17 @@ mod tests {
         assert!(f_err < 0.001, "focal length off by {:.3} %", 100.0 * f_err);
     }
 
+    /// From 30 detections with a slope the usual 5 %; below, the sampling error of an RMS over
+    /// that many residuals, which shrinks as they grow.
+    #[test]
+    fn a_correction_from_few_detections_must_gain_more() {
+        assert_eq!(lean_gain_needed(lean::MIN_MEASURED), LEAN_MIN_GAIN);
+        assert_eq!(lean_gain_needed(200), LEAN_MIN_GAIN);
+        assert!((lean_gain_needed(10) - 0.2236).abs() < 1e-4);
+        assert!((lean_gain_needed(24) - 0.1443).abs() < 1e-4);
+        assert!((lean::MIN_MEASURED_FEW..lean::MIN_MEASURED).all(|n| lean_gain_needed(n) > lean_gain_needed(n + 1) || n + 1 == lean::MIN_MEASURED));
+    }
+
     #[test]
     fn lens_family_names_round_trip() {
         for f in LensFamily::ALL {
