@@ -31,6 +31,11 @@ const TARGET_MAX_MBE: f64 = 50.0;
 /// Targets not met yet (metric names as printed).
 const KNOWN_SHORTFALLS: &[&str] = &[
     "camera2 pooled skill",
+    // A low arc of the sun (`calibration_from_a_low_sun`): 0.220° against 0.2°, the bound covering;
+    // and beyond zenith 50° too few detections for any calibration.
+    "camera2 (low sun, zenith > 45°) calibration p95",
+    "camera1 (low sun, zenith > 50°) calibrates",
+    "camera2 (low sun, zenith > 50°) calibrates",
     // Without pyranometers (`without_pyranometers`): the documented default transmittances.
     "camera1 without pyranometers largest |MBE|",
     "camera2 without pyranometers pooled skill",
@@ -139,6 +144,40 @@ fn calibration_from_part_of_the_clear_day() {
         for c in r["cameras"].as_array().unwrap() {
             let label = format!("{} ({subset}, {} frames)", c["camera"].as_str().unwrap(), c["calibration"]["clear_frames"]);
             check_calibration(&label, &c["calibration"], &mut failures);
+        }
+    }
+    assert!(failures.is_empty(), "{failures:#?}");
+}
+
+/// A low arc of the sun, as a winter day gives (the harness's `--clear-subset low-sun`: only the
+/// clear day's frames whose sun is lower than a zenith angle): every detection is bloomed, its
+/// clipped glare leaning 1–4 px outward. Beyond zenith 45° (26 / 24 detections at 45–58°) the
+/// calibration was off by a focal length 0.5–0.7 % long, p95 0.591° / 0.616°, beyond its stated
+/// bound from zenith 40° on, while the glare-lean correction waited for 30 detections; it is now
+/// made from 10 and kept when it lowers the held-out error by more than an RMS's sampling error
+/// over that many: 0.045° / 0.220°, within the bound. Beyond zenith 50° the arc gives 16 / 14
+/// detections, under the 20 `calibrate` needs: it refuses and says so, writing no file. Either
+/// way the stated bound must cover the true error.
+#[test]
+fn calibration_from_a_low_sun() {
+    let Some(scenes) = scenes_or_skip() else { return };
+    let mut failures = vec![];
+    for zenith in ["45", "50"] {
+        let r = run_harness(&scenes, &["--calibration-only", "--clear-subset", "low-sun", "--low-sun-zenith-deg", zenith]);
+        for c in r["cameras"].as_array().unwrap() {
+            let label = format!("{} (low sun, zenith > {zenith}°)", c["camera"].as_str().unwrap());
+            let cal = &c["calibration"];
+            eprintln!("{label}: {} frames", cal["clear_frames"]);
+            if cal["exit_code"].as_i64() == Some(0) {
+                check_calibration(&label, cal, &mut failures);
+            } else {
+                // A refusal must say why and leave no file the replay could pick up.
+                let err = cal["stderr"].as_str().unwrap_or("");
+                eprintln!("{label}: refused: {}", err.trim());
+                assert!(err.contains("sun detections") && err.contains("needed"), "{label}: calibrate failed without the detection count: {cal}");
+                assert!(cal["fields"].is_null(), "{label}: a refused calibration left a file: {cal}");
+                check(&format!("{label} calibrates"), false, err.trim().to_string(), &mut failures);
+            }
         }
     }
     assert!(failures.is_empty(), "{failures:#?}");

@@ -66,6 +66,9 @@ const TARGET_DIR_ERR_DEG: f64 = 5.0;
 const KNOWN_SHORTFALLS: &[&str] = &[
     "calibration p95 zenith 60–80°",
     "calibration p95 zenith 0–80°",
+    // The same day's low-sun frames alone (`low_sun_calibration`): the same lean, the same shortfall.
+    "low-sun calibration p95 zenith 60–80°",
+    "low-sun calibration p95 zenith 0–80°",
     "nuisance-two-layer pooled skill against the yardstick",
 ];
 
@@ -354,4 +357,58 @@ fn two_layers_end_to_end_with_calibrated_camera() {
         100.0 * e.motion.second_layer_found_share.unwrap_or(0.0)
     );
     check_against_yardstick("nuisance-two-layer pooled skill against the yardstick", &e);
+}
+
+/// The sun's zenith angle above which a frame belongs to a low arc \[°\]: a winter day at
+/// mid-latitudes, when the sun never climbs out of its bloom.
+const LOW_SUN_MIN_ZENITH_DEG: f64 = 50.0;
+
+/// Calibration from the clear day's low-sun frames only (sun zenith beyond
+/// [`LOW_SUN_MIN_ZENITH_DEG`]), as from a winter day: every detection is bloomed. The stated bound
+/// must cover the true error in every band; the p95 targets are checked as for the whole day.
+/// Measured 2026-12-05: 21 detections at zenith 50–70°, p95 0.041° / 0.059° / 0.520° at 0–40 /
+/// 40–60 / 60–80°, 0.384° over 0–80°, every band within its stated bound. The glare-lean
+/// correction (area form, from the 21 detections, held-out error 0.250 px without it) is kept
+/// here since it may be made from fewer than 30 detections; without it 0.017° / 0.122° / 0.437°,
+/// 0.378° over 0–80°: our renderer's lean is a shift of the whole plateau, which the level sets
+/// do not see (see `the_shortfall_is_the_detections_lean_not_the_lens_model`).
+#[test]
+fn low_sun_calibration() {
+    let c = calibrated();
+    let low: Vec<(DateTime<Utc>, image::RgbImage)> = c
+        .frames
+        .iter()
+        .filter(|(t, _)| nephocast::sun::position(t, &c.observer).is_ok_and(|p| p.zenith_rad.to_degrees() > LOW_SUN_MIN_ZENITH_DEG))
+        .cloned()
+        .collect();
+    let (fit, dets) = calibrate(&low, &c.observer, &nephocast::calibrate::CalibrateOptions::default()).expect("calibration from the low-sun frames");
+    eprintln!(
+        "low-sun calibration of the nuisance camera: {} frames, {} detections, model {}, glare lean {:?}, {:?}",
+        low.len(),
+        dets.len(),
+        fit.camera.projection.name(),
+        fit.glare_lean,
+        fit.warnings
+    );
+    let mut all = f64::NAN;
+    for (z0, z1) in [(0.0, 40.0), (40.0, 60.0), (60.0, 80.0), (0.0, 80.0)] {
+        let mut e = direction_errors(&c.truth, &fit.camera, z0, z1);
+        let (rms, p95, max) = stats(&mut e);
+        eprintln!("  zenith {z0:>2}–{z1:<2}°: RMS {rms:.3}°, p95 {p95:.3}°, max {max:.3}°");
+        check(&format!("low-sun calibration p95 zenith {z0}–{z1}°"), p95 <= TARGET_P95_DEG, format!("p95 {p95:.3}° (target {TARGET_P95_DEG}°)"));
+        all = p95;
+    }
+    assert!(all <= LOOSE_P95_DEG, "low-sun p95 {all:.3}° at zenith < 80° is beyond even the loose bound {LOOSE_P95_DEG}°");
+    for b in &fit.bounds {
+        let mut e = direction_errors(&c.truth, &fit.camera, b.zenith_from_deg, b.zenith_to_deg);
+        if e.is_empty() {
+            continue;
+        }
+        let (_, p95, _) = stats(&mut e);
+        check(
+            &format!("low-sun stated bound covers the true error, zenith {}–{}°", b.zenith_from_deg, b.zenith_to_deg),
+            p95 <= b.bound_deg,
+            format!("true p95 {p95:.3}°, stated bound {:.3}°", b.bound_deg),
+        );
+    }
 }

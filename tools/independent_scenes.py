@@ -588,8 +588,9 @@ def run_camera(a, camera, sc, yard, log, res):
                                                                   round(site_json["image_height"] * SCALE) + PAD[1] + PAD[3])))
         cal_site = os.path.join(work, "site-calibrate.toml")
         write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr, a.calibrate_set)
-        frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"))
-        cal_info["clear_subset"] = a.clear_subset
+        frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"),
+                                     read_json(os.path.join(clear, "input", "site.json"))["site"], a.low_sun_zenith_deg)
+        cal_info["clear_subset"] = a.clear_subset + (f" (sun zenith > {a.low_sun_zenith_deg:g}°)" if a.clear_subset == "low-sun" else "")
         cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.endswith(".jpg")])
         rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", frames, "--out", cal]
                            + (["--obstruction-mask"] if a.obstruction_mask else []), log=log)
@@ -800,22 +801,41 @@ def markdown(res):
     return "\n".join(L) + "\n"
 
 
-CLEAR_SUBSETS = ("all", "morning", "afternoon", "midday", "every3")
+CLEAR_SUBSETS = ("all", "morning", "afternoon", "midday", "every3", "low-sun")
+LOW_SUN_MIN_ZENITH_DEG = 50.0
 
 
-def clear_frames_subset(frames, subset, out):
+def sun_zenith_deg(names, site):
+    """The sun's zenith angle [deg] at each frame's time (its name, UTC) at the site of
+    ``input/site.json`` (pvlib's SPA; refraction left out)."""
+    import pvlib
+    t = pd.to_datetime([n[:15] for n in names], format="%Y%m%dT%H%M%S", utc=True)
+    sp = pvlib.solarposition.get_solarposition(t, site["latitude"], site["longitude"], site.get("altitude_m", 0.0))
+    return sp["zenith"].to_numpy()
+
+
+def clear_frames_subset(frames, subset, out, site=None, low_sun_zenith_deg=LOW_SUN_MIN_ZENITH_DEG):
     """The clear day's frames that ``calibrate`` sees: all of them, or a part of the day, linked into
     ``out``. A user may have only a morning, or frames every 15 min: the calibration must hold up on
     those too (frame names carry the UTC time, ``YYYYMMDDTHHMMSSZ.jpg``; morning/afternoon split at
-    12:00 UTC, midday is 09:00-15:00 UTC, every3 keeps every third frame)."""
+    12:00 UTC, midday is 09:00-15:00 UTC, every3 keeps every third frame). ``low-sun`` keeps the
+    frames whose sun is lower than zenith ``low_sun_zenith_deg`` (50° by default; ``site``: the
+    ``site`` table of ``input/site.json``):
+    a low arc, as a winter day gives, where the sun never climbs out of its bloom."""
     if subset == "all":
         return frames
     names = sorted(n for n in os.listdir(frames) if n.endswith(".jpg"))
     hour = lambda n: n[9:11]  # noqa: E731
-    keep = {"morning": [n for n in names if hour(n) < "12"],
-            "afternoon": [n for n in names if hour(n) >= "12"],
-            "midday": [n for n in names if "09" <= hour(n) < "15"],
-            "every3": names[::3]}[subset]
+    if subset == "low-sun":
+        if site is None:
+            raise ValueError("the low-sun subset needs the site's latitude and longitude")
+        zen = sun_zenith_deg(names, site)
+        keep = [n for n, z in zip(names, zen) if z > low_sun_zenith_deg]
+    else:
+        keep = {"morning": [n for n in names if hour(n) < "12"],
+                "afternoon": [n for n in names if hour(n) >= "12"],
+                "midday": [n for n in names if "09" <= hour(n) < "15"],
+                "every3": names[::3]}[subset]
     os.makedirs(out, exist_ok=True)
     for n in keep:
         os.symlink(os.path.join(frames, n), os.path.join(out, n))
@@ -927,7 +947,10 @@ def main():
     ap.add_argument("--calibration-only", action="store_true",
                     help="stop after measuring the calibration (steps 3-4 and the detections' lean); no replays")
     ap.add_argument("--clear-subset", choices=CLEAR_SUBSETS, default="all",
-                    help="calibrate from part of the clear day only (robustness check; the clear-day replay keeps every frame)")
+                    help="calibrate from part of the clear day only (robustness check; the clear-day replay keeps every frame); "
+                         "low-sun keeps the frames whose sun is lower than --low-sun-zenith-deg (a winter day's low arc)")
+    ap.add_argument("--low-sun-zenith-deg", type=float, default=LOW_SUN_MIN_ZENITH_DEG,
+                    help="with --clear-subset low-sun, the sun's zenith angle [deg] beyond which a frame is kept (default 50)")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
     global MIRROR, PAD, SCALE

@@ -314,6 +314,16 @@ pub const PLAUSIBLE_RIM_DEG: (f64, f64) = (85.0, 100.0);
 /// Smallest share by which a glare-lean correction must lower the held-out error to be kept.
 pub const LEAN_MIN_GAIN: f64 = 0.05;
 
+/// The share by which a glare-lean correction measured on `measured` detections must lower the
+/// held-out error to be kept: [`LEAN_MIN_GAIN`] from [`lean::MIN_MEASURED`] detections on; below
+/// that, also at least the relative sampling error of an RMS over that many residuals, 1/√(2n)
+/// (22 % for 10, 14 % for 24): with few detections a correction of the wrong form can win the
+/// held-out comparison by chance, while the lean of a low sun, which every detection shares, lowers
+/// it by far more (the independent cameras' low arcs, 26 and 24 detections: 34 % and 24 %).
+pub fn lean_gain_needed(measured: usize) -> f64 {
+    if measured >= lean::MIN_MEASURED { LEAN_MIN_GAIN } else { LEAN_MIN_GAIN.max(1.0 / (2.0 * measured.max(1) as f64).sqrt()) }
+}
+
 /// A bound above this \[°\] is reported as the detections not constraining that part of the sky.
 pub const UNCONSTRAINED_BOUND_DEG: f64 = 1.0;
 
@@ -446,7 +456,7 @@ fn fit_one_handedness(
     let corrected = [area, profile].into_iter().flatten().min_by(|a, b| a.cv_rms_px().total_cmp(&b.cv_rms_px()));
     let chosen = match (plain, corrected) {
         (Some(p), Some(mut c)) => {
-            if c.cv_rms_px() < (1.0 - LEAN_MIN_GAIN) * p.cv_rms_px() {
+            if c.cv_rms_px() < (1.0 - lean_gain_needed(c.glare_lean.measured)) * p.cv_rms_px() {
                 c.glare_lean.held_out_without_px = p.cv_rms_px();
                 c
             } else {
@@ -455,7 +465,7 @@ fn fit_one_handedness(
         }
         (p, c) => p.or(c).ok_or_else(|| CalibrationError::Unusable("no lens family could be fitted".into()))?,
     };
-    let LeanCandidate { dets, glare_lean, solved, rims, any_plausible, best } = chosen;
+    let LeanCandidate { dets, glare_lean, solved, rims, any_plausible, loads, best } = chosen;
     let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
     let rim_warning = (!any_plausible).then(|| {
         format!(
@@ -472,7 +482,7 @@ fn fit_one_handedness(
     let competitors: Vec<Camera> = solved
         .iter()
         .enumerate()
-        .filter(|(i, s)| *i != best && s.1.cv_rms_px <= 1.25 * best_cv && (!any_plausible || plausible(*i)))
+        .filter(|(i, s)| *i != best && s.1.cv_rms_px <= 1.25 * best_cv && (!any_plausible || plausible(*i)) && loads[*i])
         .map(|(_, s)| finish(&s.0, None, Some(circle)).camera)
         .collect();
     fit.scores = scores;
@@ -495,6 +505,8 @@ struct LeanCandidate {
     /// Where each fitted lens puts the image circle's rim \[°\].
     rims: Vec<f64>,
     any_plausible: bool,
+    /// Whether each fitted camera is one the loader accepts.
+    loads: Vec<bool>,
     best: usize,
 }
 
@@ -508,8 +520,16 @@ impl LeanCandidate {
         let rims: Vec<f64> = solved.iter().map(|(p, _)| finish(p, None, Some(circle)).camera.max_field_angle_rad.to_degrees()).collect();
         let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
         let any_plausible = (0..solved.len()).any(plausible);
-        let best = choose_family(&solved, |i| !any_plausible || plausible(i))?;
-        Some(LeanCandidate { dets, glare_lean, solved, rims, any_plausible, best })
+        // A family whose camera the loader would refuse (a polynomial that folds over within the
+        // lens field) is never chosen while another family's camera loads: it would stop
+        // `calibrate` with no file although a usable camera was fitted.
+        let loads: Vec<bool> = solved
+            .iter()
+            .map(|(p, _)| crate::config::CalibrationFile::from_camera("check", &finish(p, None, Some(circle)).camera).camera(std::path::Path::new("<fitted camera>")).is_ok())
+            .collect();
+        let any_loads = loads.iter().any(|l| *l);
+        let best = choose_family(&solved, |i| (!any_loads || loads[i]) && (!any_plausible || plausible(i)))?;
+        Some(LeanCandidate { dets, glare_lean, solved, rims, any_plausible, loads, best })
     }
 
     /// The chosen family's held-out RMS \[px\].
@@ -790,6 +810,17 @@ mod tests {
         let (f_err, score, _) = lean_fit(0.0);
         assert!(!score.bloom_lean, "no lean in the data, none in the fit: {score:?}");
         assert!(f_err < 0.001, "focal length off by {:.3} %", 100.0 * f_err);
+    }
+
+    /// From 30 detections with a slope the usual 5 %; below, the sampling error of an RMS over
+    /// that many residuals, which shrinks as they grow.
+    #[test]
+    fn a_correction_from_few_detections_must_gain_more() {
+        assert_eq!(lean_gain_needed(lean::MIN_MEASURED), LEAN_MIN_GAIN);
+        assert_eq!(lean_gain_needed(200), LEAN_MIN_GAIN);
+        assert!((lean_gain_needed(10) - 0.2236).abs() < 1e-4);
+        assert!((lean_gain_needed(24) - 0.1443).abs() < 1e-4);
+        assert!((lean::MIN_MEASURED_FEW..lean::MIN_MEASURED).all(|n| lean_gain_needed(n) > lean_gain_needed(n + 1) || n + 1 == lean::MIN_MEASURED));
     }
 
     #[test]
