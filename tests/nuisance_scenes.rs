@@ -402,7 +402,7 @@ fn scattered_slow_end_to_end_with_calibrated_camera() {
     let one = at(1).map_or((f64::NAN, f64::NAN), |h| (h.rmse_wm2, h.rmse_persistence_wm2));
     let pooled = nephocast::verify::pooled_skill(&e.plant, 300, 900);
     let yardstick = e.yardstick.as_deref().map_or(f64::NAN, |y| nephocast::verify::pooled_skill(y, 300, 900));
-    eprintln!("  1-minute RMSE {:.1} W/m² against smart persistence's {:.1}; pooled 5–15 min skill {pooled:.3}, the yardstick's {yardstick:.3}", one.0, one.1);
+    eprintln!("  1-minute RMSE {:.1} W/m² against smart persistence's {:.1}; pooled 5–15 min skill {pooled:.4}, the yardstick's {yardstick:.4} (0.8 × it {:.4})", one.0, one.1, 0.8 * yardstick);
     // Loose guards that hold today.
     assert!(skills.iter().all(|s| s.is_finite() && *s > -0.5), "skill {skills:?}");
     assert!(mbe.iter().all(|(_, b)| b.is_finite()) && worst.abs() <= LOOSE_MAX_ABS_MBE_WM2, "{name}: MBE {worst:+.1} W/m² at {worst_m} min is beyond even the loose bound {LOOSE_MAX_ABS_MBE_WM2} W/m²");

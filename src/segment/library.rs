@@ -297,7 +297,7 @@ impl Reference {
         // over the near sky alone. The far field's haze lifts the clear sky's ratio above the
         // default there, and a map's cells, spaced evenly on the cloud plane, are mostly far field
         // (a cell's solid angle falls as cos³ z): a hazy camera's map then showed "no clear sky"
-        // (2 % of its cells within `offset_band`, a quarter of those within zenith 70°) and took
+        // (2 % of its cells within `offset_band`, 24–27 % of those within zenith 70°) and took
         // offset 0, which called its clear circumsolar sky thin cloud.
         let enough = |m: usize, of: usize| of > 0 && m > 0 && m as f64 >= params.offset_min_share * of as f64;
         let qualified = if enough(d.len(), n) {
