@@ -10,6 +10,12 @@
 //!   (and the obstruction mask from the clear day) in place of the true one; skill against smart
 //!   persistence and motion error.
 //!
+//! * `scattered_slow_end_to_end_with_calibrated_camera`: `nuisance-scattered-slow` (slow small
+//!   cumulus, the plant 1.3 km downwind so that its 4–8 min shadow look-ups cross the camera's
+//!   circumsolar sky) through the same calibrated camera: no phantom cloud at the sun (issue 13),
+//!   i.e. no horizon of 1–15 min with a plant |MBE| above [`TARGET_MAX_ABS_MBE_WM2`], the
+//!   1-minute RMSE below smart persistence's, and the pooled skill against the yardstick.
+//!
 //! Shortfalls that are known are listed in [`KNOWN_SHORTFALLS`]: the test checks they still fall
 //! short (so the list is kept honest) and prints every figure (`--nocapture`).
 use std::sync::OnceLock;
@@ -37,6 +43,14 @@ const TARGET_SKILL: f64 = 0.30;
 /// true cloud field and wind, `synth::yardstick`): the robustness issue's forecast target.
 const TARGET_YARDSTICK_SHARE: f64 = 0.8;
 const TARGET_SPEED_ERR_MPS: f64 = 0.5;
+/// Largest plant |MBE| at any horizon of 1–15 min on the slow scattered scene (issue 13: no phantom
+/// cloud at the sun) \[W m⁻²\].
+const TARGET_MAX_ABS_MBE_WM2: f64 = 50.0;
+/// Loose bound on that |MBE| that holds today \[W m⁻²\]: a regression guard, not a target. The
+/// phantom cloud at the sun this scene was made to catch put −166 W/m² at 5 min (the scene's own
+/// camera, before the map's clear-sky offset was measured over the near sky when its far field
+/// shows none; README, "No phantom cloud at the sun").
+const LOOSE_MAX_ABS_MBE_WM2: f64 = 100.0;
 const TARGET_DIR_ERR_DEG: f64 = 5.0;
 
 /// Metrics that do not yet meet their target with this camera (figures with the calibration as of
@@ -63,6 +77,10 @@ const TARGET_DIR_ERR_DEG: f64 = 5.0;
 /// is below it); with the tuning's soft bias step (`irradiance.tune_bias_soft`) 0.226 and 184.5; `irradiance.sun_line_beam` (the beam measured at the camera's sun line) finds no
 /// frame with clear sky around the sun here, so no reference, and changes nothing (scene camera;
 /// README, "The beam along the camera's sun line").
+///
+/// The slow scattered scene (`nuisance-scattered-slow`) reaches 0.630 of pooled 5–15 min skill
+/// against 0.8 × its yardstick's 0.788 = 0.630 (2026-12-05), short by under 0.0001: a
+/// dip of −11 to −18 W/m² at 4–8 min remains (README, "No phantom cloud at the sun").
 const KNOWN_SHORTFALLS: &[&str] = &[
     "calibration p95 zenith 60–80°",
     "calibration p95 zenith 0–80°",
@@ -70,6 +88,7 @@ const KNOWN_SHORTFALLS: &[&str] = &[
     "low-sun calibration p95 zenith 60–80°",
     "low-sun calibration p95 zenith 0–80°",
     "nuisance-two-layer pooled skill against the yardstick",
+    "nuisance-scattered-slow pooled skill against the yardstick",
 ];
 
 fn check(metric: &str, ok: bool, figure: String) {
@@ -411,4 +430,45 @@ fn low_sun_calibration() {
             format!("true p95 {p95:.3}°, stated bound {:.3}°", b.bound_deg),
         );
     }
+}
+
+/// The slow scattered scene whose plant lies downwind of the camera so that its 4–8 min look-ups
+/// cross the camera's circumsolar sky (issue 13, "no phantom cloud at the sun"): the bias at each
+/// horizon, the 1-minute RMSE against smart persistence's and the pooled skill against the
+/// yardstick.
+#[test]
+fn scattered_slow_end_to_end_with_calibrated_camera() {
+    let name = "nuisance-scattered-slow";
+    let (e, sum, elapsed) = end_to_end_with_calibrated_camera(name);
+    let at = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60);
+    let sk = |m: u32| at(m).map_or(f64::NAN, |h| h.skill);
+    let skills = [sk(5), sk(10), sk(15)];
+    eprintln!(
+        "{name} with the calibrated camera ({elapsed:.1} s): frames rejected {:?} | seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill vs smart persistence 5/10/15 min {:.3} {:.3} {:.3}",
+        sum.counters.rejected,
+        e.segmentation.accuracy,
+        e.segmentation.circumsolar_accuracy,
+        e.motion.speed_error_mps,
+        e.motion.direction_error_deg,
+        skills[0],
+        skills[1],
+        skills[2]
+    );
+    let mbe: Vec<(u32, f64)> = (1..=15).map(|m| (m, at(m).map_or(f64::NAN, |h| h.mbe_wm2))).collect();
+    eprintln!("  plant MBE by horizon [W/m²]: {}", mbe.iter().map(|(m, b)| format!("{m}:{b:+.1}")).collect::<Vec<_>>().join(" "));
+    let (worst_m, worst) = mbe.iter().copied().max_by(|a, b| a.1.abs().total_cmp(&b.1.abs())).expect("15 horizons");
+    let one = at(1).map_or((f64::NAN, f64::NAN), |h| (h.rmse_wm2, h.rmse_persistence_wm2));
+    let pooled = nephocast::verify::pooled_skill(&e.plant, 300, 900);
+    let yardstick = e.yardstick.as_deref().map_or(f64::NAN, |y| nephocast::verify::pooled_skill(y, 300, 900));
+    eprintln!("  1-minute RMSE {:.1} W/m² against smart persistence's {:.1}; pooled 5–15 min skill {pooled:.4}, the yardstick's {yardstick:.4} (0.8 × it {:.4})", one.0, one.1, 0.8 * yardstick);
+    // Loose guards that hold today.
+    assert!(skills.iter().all(|s| s.is_finite() && *s > -0.5), "skill {skills:?}");
+    assert!(mbe.iter().all(|(_, b)| b.is_finite()) && worst.abs() <= LOOSE_MAX_ABS_MBE_WM2, "{name}: MBE {worst:+.1} W/m² at {worst_m} min is beyond even the loose bound {LOOSE_MAX_ABS_MBE_WM2} W/m²");
+    check(
+        &format!("{name} largest |MBE| at 1–15 min"),
+        worst.abs() <= TARGET_MAX_ABS_MBE_WM2,
+        format!("{worst:+.1} W/m² at {worst_m} min (target |MBE| ≤ {TARGET_MAX_ABS_MBE_WM2})"),
+    );
+    check(&format!("{name} 1-minute RMSE below smart persistence's"), one.0 < one.1, format!("{:.1} W/m² against {:.1}", one.0, one.1));
+    check_against_yardstick(&format!("{name} pooled skill against the yardstick"), &e);
 }

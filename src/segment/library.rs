@@ -233,6 +233,10 @@ impl Reference {
     pub fn for_frame_with<'a>(&'a self, params: &'a SegmentParams, sample: impl Iterator<Item = ([u8; 3], PixelGeom, f32)>) -> FrameReference<'a> {
         let mut d = vec![];
         let mut n = 0usize;
+        // The near sky's samples (zenith within `cloud_fraction_zenith_deg`) and their departures
+        // that qualify, for when the whole sample shows too little clear sky.
+        let (mut d_near, mut n_near) = (vec![], 0usize);
+        let near_zenith = params.cloud_fraction_zenith_deg as f32;
         let (mut ring_n, mut ring_clipped) = ([0u32; GLARE_RINGS], [0u32; GLARE_RINGS]);
         let glare_zone = GLARE_RINGS as f32;
         let mut meter = crate::brightness::ExposureMeter::default();
@@ -258,8 +262,13 @@ impl Reference {
                 ring_clipped[r] += (rgb[2] >= params.saturation_level && rb >= clear_bound) as u32;
             }
             let dd = rb - default_rb;
+            let near = g.z_deg <= near_zenith;
+            n_near += near as usize;
             if dd < params.offset_band as f32 {
                 d.push(dd);
+                if near {
+                    d_near.push(dd);
+                }
             }
             if (metering || follow) && g.gamma_deg >= params.glare_zone_deg as f32 {
                 let bin = lib_index(g.z_deg, g.gamma_deg);
@@ -284,13 +293,27 @@ impl Reference {
         };
         let ratio_scale = ratio_scale_of(ratio_shift_ln);
         let inv_ratio_scale = 1.0 / ratio_scale;
-        let offset = if n > 0 && d.len() as f64 >= params.offset_min_share * n as f64 && !d.is_empty() {
-            let k = ((d.len() - 1) as f64 * params.offset_quantile).round() as usize;
-            let (_, q, _) = d.select_nth_unstable_by(k, f32::total_cmp);
-            let q = *q;
-            q.clamp(params.offset_min as f32, params.offset_max as f32)
+        // The frame's own clear sky: over the whole sample, or, when too little of it qualifies,
+        // over the near sky alone. The far field's haze lifts the clear sky's ratio above the
+        // default there, and a map's cells, spaced evenly on the cloud plane, are mostly far field
+        // (a cell's solid angle falls as cos³ z): a hazy camera's map then showed "no clear sky"
+        // (2 % of its cells within `offset_band`, 24–27 % of those within zenith 70°) and took
+        // offset 0, which called its clear circumsolar sky thin cloud.
+        let enough = |m: usize, of: usize| of > 0 && m > 0 && m as f64 >= params.offset_min_share * of as f64;
+        let qualified = if enough(d.len(), n) {
+            Some(&mut d)
+        } else if enough(d_near.len(), n_near) {
+            Some(&mut d_near)
         } else {
-            0.0
+            None
+        };
+        let offset = match qualified {
+            Some(d) => {
+                let k = ((d.len() - 1) as f64 * params.offset_quantile).round() as usize;
+                let (_, q, _) = d.select_nth_unstable_by(k, f32::total_cmp);
+                (*q).clamp(params.offset_min as f32, params.offset_max as f32)
+            }
+            None => 0.0,
         };
         let mut glare_ring = [true; GLARE_RINGS];
         for r in 0..GLARE_RINGS {

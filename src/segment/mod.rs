@@ -11,7 +11,9 @@
 //! 2. else a **parametric default** `c0 + c1 exp(−γ / γs) + c2 (z / 90°)⁴` shifted by a per-frame
 //!    offset: the `offset_quantile` of `R/B − default` over the pixels that sit at most
 //!    `offset_band` above the default (the frame's own clear sky), when at least `offset_min_share` of
-//!    the sky qualifies. The default constants were fitted to the clear pixels of the WSISEG
+//!    the sky qualifies, or else of the sky within `cloud_fraction_zenith_deg` (then over that sky
+//!    alone: a hazy far field leaves too little of a map's cells near the default, though the near
+//!    sky is clear). The default constants were fitted to the clear pixels of the WSISEG
 //!    sample (Xie et al. 2020) and are configurable.
 //!
 //! A pixel's cloudiness score is `s = (R/B − ref) / (cloud_rb − ref)`: 0 on the clear-sky reference,

@@ -359,3 +359,28 @@ fn a_brighter_exposure_is_judged_past_the_clipping() {
 fn sample(p: &SegmentParams, g: PixelGeom) -> SampleSky {
     SampleSky { plain: true, gamma_deg: g.gamma_deg, bin: lib_index(g.z_deg, g.gamma_deg) as u16, default_rb: p.default_reference(g.z_deg, g.gamma_deg), thick_score: p.thick_at(g.z_deg) }
 }
+
+/// A frame whose far field is hazy (its clear sky well above the default, as on a camera with haze
+/// toward the horizon) and outnumbers the near sky, as a map's cells do: too little of the whole
+/// sample sits near the default, so the offset is measured over the near sky
+/// (`cloud_fraction_zenith_deg`), where a fifth of the sky is clear sky 0.03 above the default;
+/// with no clear near sky either, the offset stays 0.
+#[test]
+fn the_offset_is_measured_over_the_near_sky_when_the_far_field_shows_none() {
+    let p = SegmentParams::default();
+    let r = Reference::default();
+    let g_near = geom(40.0, 60.0);
+    let g_far = geom(80.0, 60.0);
+    let rgb_at = |rb: f32| [(rb * 200.0).round() as u8, 190u8, 200u8];
+    let clear_near = rgb_at(p.default_reference(40.0, 60.0) + 0.03);
+    let cloud = [215u8, 212, 200];
+    let hazy_far = rgb_at(p.default_reference(80.0, 60.0) + 0.15);
+    let frame = |near_clear: usize| {
+        let near = (0..100).map(move |i| (if i < near_clear { clear_near } else { cloud }, g_near));
+        near.chain((0..1000).map(move |_| (hazy_far, g_far))).collect::<Vec<_>>().into_iter()
+    };
+    let fr = r.for_frame(&p, frame(20));
+    assert!((fr.offset - 0.03).abs() < 0.006, "offset {}", fr.offset);
+    assert_eq!(fr.classify(clear_near, g_near).1, Class::Clear);
+    assert_eq!(r.for_frame(&p, frame(5)).offset, 0.0);
+}

@@ -147,6 +147,15 @@ pub struct SceneSpec {
     /// not written when off, so older scenes render byte for byte as before).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub pyranometer_network: Option<PyranometerNetwork>,
+    /// The plant (every block, and the pyranometers on them) moved by this much (east, north) from
+    /// its place in [`larkspur_site`] \[m\]; the camera stays at the origin. Zero by default and
+    /// not written when zero, so older scenes render byte for byte as before.
+    #[serde(default, skip_serializing_if = "is_zero_offset")]
+    pub plant_offset_m: [f64; 2],
+}
+
+fn is_zero_offset(v: &[f64; 2]) -> bool {
+    *v == [0.0, 0.0]
 }
 
 /// Pyranometers spread over and around the plant, read faster than once a minute (for the cloud
@@ -269,6 +278,7 @@ pub fn scenes() -> Vec<SceneSpec> {
         truth_mask_every: 3,
         nuisances: Nuisances::default(),
         pyranometer_network: None,
+        plant_offset_m: [0.0, 0.0],
     };
     let mut v = vec![
         base("broken-cumulus-fast", "broken cumulus at 1200 m moving at 12 m/s toward the east-north-east",
@@ -329,6 +339,22 @@ pub fn scenes() -> Vec<SceneSpec> {
         vec![layer(1100.0, 8.0, 40.0, 0.30, 0.30, 30.0, 1300.0), layer(6500.0, 18.0, 110.0, 0.50, 0.50, 1.6, 4000.0)],
         false,
     ));
+    // The plant 1.3 km downwind of the camera under slow cloud: the shadow look-ups of the plant
+    // at 4–8 min ahead (plant point − wind × lead, then toward the sun by cbh·tan(zenith)) pass
+    // through the camera's own sun direction on the cloud plane (cbh·tan(zenith) toward the sun
+    // from the camera), where bloom and glare sit. With the sun at azimuth 90–95°, zenith 49–44°
+    // over the run (08:30–09:00 UTC), wind 3.3 m/s toward 135°: the plant's centre sits at
+    // (965, −853) m, 1.29 km toward 131°, so the look-up from it crosses the camera's sun point
+    // at 6.3 min (wind × lead, plus ≈ 60 m east for the sun's own drift over the lead).
+    v.push(SceneSpec {
+        plant_offset_m: [1065.0, -835.0],
+        ..nuisance(
+            "nuisance-scattered-slow",
+            "the imperfect camera under slow scattered small cumulus at 1800 m drifting at 3.3 m/s toward the south-east, the plant 1.3 km downwind of the camera so that its 4–8 min shadow look-ups cross the camera's circumsolar region (fictional site and geometry, made for this check)",
+            vec![layer(1800.0, 3.3, 135.0, 0.20, 0.20, 25.0, 1100.0)],
+            false,
+        )
+    });
     v.push(clear_day(
         "nuisance-wide-clear-day",
         "the imperfect camera with a 97° lens (ground and skyline inside the image circle) on a clear day, every 10 minutes for 14 hours",
@@ -452,7 +478,16 @@ impl Scene {
             }
         }
         let cbh = spec.layers.iter().map(|l| l.base_height_m).fold(f64::INFINITY, f64::min);
+        if !spec.plant_offset_m.iter().all(|v| v.is_finite() && v.abs() <= 20_000.0) {
+            return Err(bad("plant_offset_m must be finite and within 20 km"));
+        }
         let mut site = larkspur_site(if cbh.is_finite() { cbh } else { 1500.0 }, &spec.camera.name);
+        for b in site.plant.blocks.iter_mut().filter(|_| !is_zero_offset(&spec.plant_offset_m)) {
+            for p in &mut b.polygon_m {
+                p[0] += spec.plant_offset_m[0];
+                p[1] += spec.plant_offset_m[1];
+            }
+        }
         let plant = Plant::from_section(&site.plant);
         let sensors = match &spec.pyranometer_network {
             Some(n) => n.sensors.iter().map(|(name, p)| (format!("pyr_{name}"), *p)).collect(),
