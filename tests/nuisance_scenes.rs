@@ -88,7 +88,6 @@ const KNOWN_SHORTFALLS: &[&str] = &[
     "low-sun calibration p95 zenith 60–80°",
     "low-sun calibration p95 zenith 0–80°",
     "nuisance-two-layer pooled skill against the yardstick",
-    "nuisance-scattered-slow pooled skill against the yardstick",
 ];
 
 fn check(metric: &str, ok: bool, figure: String) {
@@ -470,5 +469,11 @@ fn scattered_slow_end_to_end_with_calibrated_camera() {
         format!("{worst:+.1} W/m² at {worst_m} min (target |MBE| ≤ {TARGET_MAX_ABS_MBE_WM2})"),
     );
     check(&format!("{name} 1-minute RMSE below smart persistence's"), one.0 < one.1, format!("{:.1} W/m² against {:.1}", one.0, one.1));
-    check_against_yardstick(&format!("{name} pooled skill against the yardstick"), &e);
+    // Reported, not passed or failed on the target itself: the scene sits on its edge (0.6301
+    // against 0.6301 when measured, 2026-12-05), where the last digit of a sum could tip it either
+    // way. Guarded instead against falling more than 0.03 below the target.
+    let pooled = nephocast::verify::pooled_skill(&e.plant, 300, 900);
+    let target = TARGET_YARDSTICK_SHARE * nephocast::verify::pooled_skill(e.yardstick.as_deref().expect("the sequence's yardstick"), 300, 900);
+    eprintln!("  {} {name} pooled skill against the yardstick: 5–15 min {pooled:.4} against {target:.4}", if pooled >= target { "meets:" } else { "known shortfall (at its edge):" });
+    assert!(pooled >= target - 0.03, "{name} pooled skill {pooled:.3} fell more than 0.03 below the yardstick target {target:.3}");
 }
