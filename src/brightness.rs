@@ -92,7 +92,9 @@ impl ExposureMeter {
 /// `margin` (a share), where that clear sky reads at least `min_level`. With `past_clipping`
 /// (the saturation level) the expectation is the clear sky's brightness at that exposure even
 /// beyond 255: an unclipped sample is compared with what the clear sky would be, not with what
-/// the image could show of it, a clipped one (reading at least that level) is never darker, and
+/// the image could show of it (a linear response up to the saturation level is assumed: a
+/// camera whose tone curve compresses its brightest levels reads bright clear sky darker than
+/// that), a clipped one (reading at least that level) is never darker, and
 /// `min_level` applies to the library's brightness (the clear sky's own, at the clear day's
 /// exposure), so a darker exposure does not switch the test off. Without, the expectation is held
 /// at 255 and `min_level` applies to it.
@@ -102,17 +104,18 @@ pub fn darker_than_clear(rgb: [u8; 3], library_v: f32, exposure: f32, margin: f3
         return false;
     }
     let v = reading(rgb);
-    let (expected, bright_enough) = match past_clipping {
+    let (threshold, bright_enough) = match past_clipping {
         Some(saturation) if v >= saturation => return false,
         // The clear sky's own brightness decides where the test applies, whatever the exposure.
-        Some(_) => (exposure * library_v, library_v >= min_level),
+        Some(_) => ((1.0 - margin) * exposure * library_v, library_v >= min_level),
         None => {
             let e = (exposure * library_v).min(255.0);
-            (e, e >= min_level)
+            ((1.0 - margin) * e, e >= min_level)
         }
     };
-    bright_enough && v < (1.0 - margin) * expected
+    bright_enough && v < threshold
 }
+
 
 /// Largest share of thin cloud among the cloud within [`crate::distance::NEAR_ZENITH_DEG`] for the
 /// test to apply: a veil over the sky dims what lies behind it, so where much of the overhead cloud
@@ -177,7 +180,8 @@ mod tests {
     }
 
     /// Darker than the clear sky by more than the margin is cloud, only where the clear sky is bright;
-    /// the exposure scales the expectation, and a clipped expectation is held at 255.
+    /// the exposure scales the expectation, held at 255 without `past_clipping` and beyond 255
+    /// with it.
     #[test]
     fn a_sample_darker_than_bright_clear_sky_is_flagged() {
         for past in [false, true] {
@@ -194,6 +198,8 @@ mod tests {
         // the 1.2 × 250 = 300 the clear sky would be.
         assert!(!darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0, None));
         assert!(darker_than_clear([230, 230, 230], 250.0, 1.2, 0.12, 200.0, Some(250.0)));
+        // Up to the saturation level: 249 is 17 % below the 300 the clear sky would be.
+        assert!(darker_than_clear([240, 245, 249], 250.0, 1.2, 0.12, 200.0, Some(250.0)));
         // A darker exposure: held, the 0.8 × 240 = 192 expectation is below the 200 floor; past the
         // clipping the floor applies to the sky's own 240, and 150 is 22 % below 192.
         assert!(!darker_than_clear([140, 145, 150], 240.0, 0.8, 0.12, 200.0, None));

@@ -168,7 +168,11 @@ fn calibration_from_a_low_sun() {
             let label = format!("{} (low sun, zenith > {zenith}°)", c["camera"].as_str().unwrap());
             let cal = &c["calibration"];
             eprintln!("{label}: {} frames", cal["clear_frames"]);
-            if cal["exit_code"].as_i64() == Some(0) {
+            let calibrated = cal["exit_code"].as_i64() == Some(0);
+            // Listed where it is known to refuse, so that a calibration that starts to succeed
+            // is reported and taken off the list.
+            check(&format!("{label} calibrates"), calibrated, if calibrated { "a camera written".to_string() } else { cal["stderr"].as_str().unwrap_or("").trim().to_string() }, &mut failures);
+            if calibrated {
                 check_calibration(&label, cal, &mut failures);
             } else {
                 // A refusal must say why and leave no file the replay could pick up.
@@ -176,7 +180,6 @@ fn calibration_from_a_low_sun() {
                 eprintln!("{label}: refused: {}", err.trim());
                 assert!(err.contains("sun detections") && err.contains("needed"), "{label}: calibrate failed without the detection count: {cal}");
                 assert!(cal["fields"].is_null(), "{label}: a refused calibration left a file: {cal}");
-                check(&format!("{label} calibrates"), false, err.trim().to_string(), &mut failures);
             }
         }
     }
@@ -375,5 +378,26 @@ fn a_brighter_exposure_is_judged_past_the_clipping() {
         TARGET_YARDSTICK_SHARE * yard
     );
     assert!(pooled > 0.15, "pooled skill {pooled:.3}: the exposure is not judged past the clipping (−0.08 with the setting off)");
+    assert!(failures.is_empty(), "{failures:#?}");
+}
+
+/// The same camera exposed darker on the day it forecasts (`--cloudy-gain 0.8,0.8,0.8`, camera2's
+/// cloudy frames only), with pyranometers. The dark-cloud test applies where the library's own
+/// brightness is bright enough, whatever the exposure (`segment.exposure_past_clipping`); before,
+/// the floor applied to it times the exposure and the test was off over most of the far field.
+/// Measured 2026-12-05: pooled 0.43 (0.39 before), 1-min RMSE 108.3 against persistence's 165.6
+/// W/m², largest |MBE| 55.2 W/m² at 10 min (26.2 before): reported as a known shortfall.
+#[test]
+fn a_darker_exposure_keeps_the_dark_cloud_test() {
+    let Some(scenes) = scenes_or_skip() else { return };
+    let r = run_harness(&scenes, &["--cameras", "camera2", "--cloudy-gain", "0.8,0.8,0.8"]);
+    let rc = &r["cameras"][0]["replay_cloudy"];
+    assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
+    let fs = &rc["forecast_summary"];
+    let (pooled, r1, sp1, mbe) = (num(fs, &["skill_pooled_5_15"]), num(fs, &["rmse_1"]), num(fs, &["rmse_sp_1"]), num(fs, &["max_abs_mbe"]));
+    let mut failures = vec![];
+    check("camera2 exposed x0.8: 1-min RMSE below smart persistence", r1 < sp1, format!("{r1:.1} against {sp1:.1} W/m²"), &mut failures);
+    eprintln!("{} camera2 exposed x0.8: largest |MBE| {mbe:.1} W/m² (target {TARGET_MAX_MBE}); pooled {pooled:.3}", if mbe <= TARGET_MAX_MBE { "meets:" } else { "known shortfall:" });
+    assert!(pooled >= 0.39, "pooled skill {pooled:.3} below the 0.39 of before the dark test followed the library's brightness");
     assert!(failures.is_empty(), "{failures:#?}");
 }

@@ -97,7 +97,7 @@ fn bare_disc_radius_px(dets: &[Detection]) -> Option<f64> {
 
 /// The ideal family with the lowest held-out error among the `eligible`; the polynomial only when
 /// it beats that by more than 10 %.
-pub(super) fn choose_family(solved: &[(Problem, FamilyScore)], eligible: impl Fn(usize) -> bool) -> Option<usize> {
+fn choose_family(solved: &[(Problem, FamilyScore)], eligible: impl Fn(usize) -> bool) -> Option<usize> {
     let mut best: Option<usize> = None;
     for (i, (_, s)) in solved.iter().enumerate() {
         if !s.cv_rms_px.is_finite() || !eligible(i) {

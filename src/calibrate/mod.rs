@@ -317,12 +317,15 @@ pub const PLAUSIBLE_RIM_DEG: (f64, f64) = (85.0, 100.0);
 pub const LEAN_MIN_GAIN: f64 = 0.05;
 
 /// The share by which a glare-lean correction measured on `measured` detections must lower the
-/// held-out error to be kept: [`LEAN_MIN_GAIN`] from [`lean::MIN_MEASURED`] detections on; below
-/// that, also at least the relative sampling error of an RMS over that many residuals, 1/√(2n)
-/// (22 % for 10, 14 % for 24): with few detections a correction of the wrong form can win the
-/// held-out comparison by chance, while the lean of a low sun, which every detection shares, lowers
-/// it by far more (the independent cameras' low arcs, 26 and 24 detections: 34 % and 24 %).
-pub fn lean_gain_needed(measured: usize) -> f64 {
+/// held-out error to be kept: [`LEAN_MIN_GAIN`] from `lean::MIN_MEASURED` (30) detections on;
+/// below that, also at least 1/√(2n) (22 % for 10, 14 % for 24, 13 % for 29, then 5 % from 30: a
+/// step). A heuristic scale, not a test: 1/√(2n) is the relative sampling error of one RMS over n
+/// independent residuals, while the held-out RMS is over all the detections' weighted residuals,
+/// both compared on the same detections. With few detections a correction of the wrong form can
+/// win the held-out comparison by chance, while the lean of a low sun, which every detection
+/// shares, lowers it by far more (the independent cameras' low arcs, 26 and 24 detections: 34 %
+/// and 24 %).
+fn lean_gain_needed(measured: usize) -> f64 {
     if measured >= lean::MIN_MEASURED { LEAN_MIN_GAIN } else { LEAN_MIN_GAIN.max(1.0 / (2.0 * measured.max(1) as f64).sqrt()) }
 }
 
@@ -452,8 +455,9 @@ fn fit_one_handedness(
         LeanCandidate::fit(dets, glare_lean, circle, size, options)
     });
     // A correction must earn its place: it is kept only when it lowers the held-out error by more
-    // than LEAN_MIN_GAIN (with few detections the held-out error is noisy, and a correction of the
-    // wrong form moves every detection).
+    // than `lean_gain_needed` of its measured detections (LEAN_MIN_GAIN from lean::MIN_MEASURED
+    // on; with few detections the held-out error is noisy, and a correction of the wrong form
+    // moves every detection).
     let [plain, area, profile] = candidates;
     let corrected = [area, profile].into_iter().flatten().min_by(|a, b| a.cv_rms_px().total_cmp(&b.cv_rms_px()));
     let chosen = match (plain, corrected) {

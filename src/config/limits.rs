@@ -16,11 +16,11 @@ pub const MAX_PYRANOMETERS: usize = 1_000;
 /// Largest memory a configuration may need, by [`SiteFile::memory_estimate`] \[bytes\].
 pub const MEMORY_CAP_BYTES: u64 = 2_000_000_000;
 /// Bytes per forecast point: its position and block index.
-pub(super) const BYTES_PER_POINT: u64 = 24;
+const BYTES_PER_POINT: u64 = 24;
 /// Bytes per cloud-map cell: the cell→pixel tables (29 B each, up to
 /// [`crate::cloudmap::MAX_LUT_TABLES`] plane heights), the map (6 B) and motion features (about
 /// 16 B) of each of up to 8 maps held for motion.
-pub(super) const BYTES_PER_MAP_CELL: u64 = 29 * crate::cloudmap::MAX_LUT_TABLES as u64 + 8 * 22;
+const BYTES_PER_MAP_CELL: u64 = 29 * crate::cloudmap::MAX_LUT_TABLES as u64 + 8 * 22;
 
 /// The memory a site configuration needs, estimated from above before anything is allocated:
 /// points × 24 B + points × horizons × (members + 1) × 8 B (one value per point, horizon and

@@ -216,18 +216,27 @@ pub struct SegmentParams {
     /// Off: the frames' ratios are judged as read.
     pub follow_colour_balance: bool,
     /// Judge samples against the clear sky as it is at the frame's exposure, past the image's
-    /// clipping, where a brighter exposure than the library's lifts it there (measured from the
-    /// frame's own clear sky, else the frames' mean so far):
-    /// - a sample whose blue channel clips, away from the sun's glare, where the learned clear
-    ///   sky's blue (exposure × the library's brightness) clips too, is compared with the clear
-    ///   sky's ratio as it then reads, `min(R, 255) / 255`, above the library's: a clipped blue
-    ///   lifts the ratio of bright clear sky (near the horizon, around the glare) toward cloud's,
-    ///   and read against the unclipped library it became cloud. Where the clear sky would not
-    ///   clip, a clipped sample is brighter than clear sky and is judged as read;
+    /// clipping, where the exposure differs from the library's (the clear day's):
+    /// - a sample whose blue clips, away from the sun's glare, where the learned clear sky's blue
+    ///   (exposure × the library's brightness) clips too, is compared with the clear sky's ratio
+    ///   as it then reads, `min(R, 255) / 255`, above the library's: a clipped blue lifts the
+    ///   ratio of bright clear sky (near the horizon, around the glare) toward cloud's, and read
+    ///   against the unclipped library it became cloud. Where the clear sky would not clip, a
+    ///   clipped sample is brighter than clear sky and is judged as read. The exposure here is
+    ///   the frame's own, else the frames' mean so far (an overcast frame measures none; the
+    ///   reference only decides samples whose blue clips, where the unclipped library is wrong
+    ///   whatever the exposure);
     /// - the dark-cloud test ([`crate::brightness::darker_than_clear`]) compares an unclipped
-    ///   sample with the clear sky's brightness at that exposure even beyond 255, not with 255.
+    ///   sample with the clear sky's brightness at the frame's own exposure even beyond 255, not
+    ///   with 255 (a linear response up to the saturation level is assumed), and applies where the
+    ///   library's own brightness reaches `dark_cloud_min_level` (not that times the exposure);
+    /// - in the clear day's clipped bins ([`FrameReference::judge_in_clipped_bin`]) the dark test
+    ///   likewise, and in a frame exposed brighter than the clear day a sample whose blue clips
+    ///   but whose red reads is thick where that red is darker than the clear sky's red there.
     ///
-    /// Off: the library's ratios as learnt, and the expectation held at 255.
+    /// The last two need the frame's own exposure, so they act only with the dark-cloud test on
+    /// (`dark_cloud_margin` > 0, which meters the exposure). Off: the library's ratios as learnt,
+    /// and the expectation held at 255.
     pub exposure_past_clipping: bool,
 }
 
@@ -419,12 +428,14 @@ impl FrameReference<'_> {
         if r.weight[bin] <= 0.5 || v <= 0.0 {
             return None;
         }
-        // The clear sky's blue is its largest channel (the library's brightness).
-        let blue = e * v;
+        // The library's brightness is the clear sky's largest channel: its blue, or its red where
+        // the learned ratio (in the frame's balance) is above 1.
+        let rb = lib * self.ratio_scale;
+        let blue = e * v / rb.max(1.0);
         if blue < f32::from(self.params.saturation_level) {
             return None;
         }
-        let red = lib * self.ratio_scale * blue;
+        let red = rb * blue;
         Some(red.min(255.0) / blue.min(255.0) * self.inv_ratio_scale)
     }
 
@@ -449,10 +460,13 @@ impl FrameReference<'_> {
     /// ([`SegmentParams::judge_clipped_bins`]): clear where it clips as that clear sky does, thick
     /// where it reads below `1 − dark_cloud_margin` of the saturation level at the frame's exposure
     /// (1 when it was not measured), unknown in between (and always, with the setting off). With
-    /// [`SegmentParams::exposure_past_clipping`] a sample that clips but whose red still reads is
-    /// thick where that red is below `1 − dark_cloud_margin` of the clear sky's red there (read on
-    /// the clear day under its clipped blue) at the frame's exposure: a brighter exposure clips
-    /// the blue of grey cloud that is darker than the clear sky.
+    /// [`SegmentParams::exposure_past_clipping`] the dark test's level is not held at 255 (from an
+    /// exposure of about 1.13 on, every unclipped sample here is then thick: the clear sky here
+    /// reads at least the saturation level times the exposure, under a linear response), and in a
+    /// frame exposed brighter than the clear day a sample whose blue clips but whose red
+    /// still reads is thick where that red is below `1 − dark_cloud_margin` of the clear sky's red
+    /// there (read on the clear day under its clipped blue) at the frame's exposure: a brighter
+    /// exposure clips the blue of grey cloud that is darker than the clear sky.
     #[inline]
     fn judge_in_clipped_bin(&self, rgb: [u8; 3], bin: usize) -> Class {
         let p = self.params;
@@ -463,10 +477,14 @@ impl FrameReference<'_> {
             // Clear only in a frame whose exposure was measured from its own clear samples: an
             // overcast frame has too few, and a camera that brightens it clips its bright cloud.
             let Some(e) = self.exposure else { return Class::Unknown };
-            if p.exposure_past_clipping && p.dark_cloud_margin > 0.0 && rgb[0] < p.saturation_level {
-                // Its red still reads: the clear sky's red here (read on the clear day under its
-                // clipped blue) at this exposure.
-                let red = e * self.reference.clipped_read[bin].0 * 255.0;
+            let sat = p.saturation_level;
+            if p.exposure_past_clipping && p.dark_cloud_margin > 0.0 && e > 1.0 && rgb[2] >= sat && rgb[0] < sat {
+                // A brighter exposure than the clear day's clipped this sample's blue but its red
+                // still reads: the clear sky's red here at this exposure is the clear day's
+                // (its ratio read under a clipped blue, taken as read at 255: an approximation,
+                // the bin is marked from the saturation level on) times the exposure, in the
+                // frame's colour balance.
+                let red = e * self.reference.clipped_read[bin].0 * 255.0 * self.ratio_scale;
                 if f32::from(rgb[0]) < (1.0 - p.dark_cloud_margin as f32) * red {
                     return Class::Thick;
                 }
@@ -571,12 +589,16 @@ impl FrameReference<'_> {
         let bin = lib_index(g.z_deg, g.gamma_deg);
         if self.clear_sky_clips(bin) {
             // Judged by brightness outside the glare; within it (beyond the sun's own disc) only a
-            // dark sample is: a clipped one may be the bloom over cloud, and glare only brightens.
+            // sample judged thick is (darker than the clear sky, or with a brighter exposure a red
+            // darker than its red): one that reads as the clipped clear sky may be the bloom over
+            // cloud, and glare only brightens.
             let j = self.judge_in_clipped_bin(rgb, bin);
             return (f32::NAN, if self.outside_glare(g.gamma_deg) || (j == Class::Thick && g.gamma_deg >= p.sun_exclusion_deg as f32) { j } else { Class::Unknown });
         }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0) * self.inv_ratio_scale;
-        let r = self.reference_in_bin(bin, default_rb);
+        // Outside the glare a clipped blue is judged as the map's cells are (`classify_at`).
+        let clipped_reference = if rgb[2] >= sat && self.outside_glare(g.gamma_deg) { self.clipped_blue_reference(bin) } else { None };
+        let r = clipped_reference.unwrap_or_else(|| self.reference_in_bin(bin, default_rb));
         let denom = (p.cloud_rb as f32 - r).max(0.03);
         let s = (rb - r) / denom;
         if p.cloud_rb as f32 - r < MIN_CONTRAST {

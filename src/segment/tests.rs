@@ -347,11 +347,46 @@ fn a_brighter_exposure_is_judged_past_the_clipping() {
     // At the clear day's exposure a red read at the clear sky's is clear.
     let same = FrameReference { exposure: Some(1.0), ..plain_reference(&rc, &p) };
     assert_eq!(same.classify([230, 242, 255], g).1, Class::Clear);
+    // Only a frame exposed brighter than the clear day, and only a clipped blue with a readable
+    // red: at the clear day's exposure a red below the clear sky's is clear as before; a sample
+    // whose red clips too, or whose green alone clips, reads as the clipped clear sky (clear).
+    let at_one = FrameReference { exposure: Some(1.0), ..plain_reference(&rc, &p) };
+    assert_eq!(at_one.classify([180, 240, 255], g).1, Class::Clear);
+    let brighter = FrameReference { exposure: Some(1.3), ..plain_reference(&rc, &p) };
+    assert_eq!(brighter.classify([255, 255, 255], g).1, Class::Clear);
+    assert_eq!(brighter.classify([252, 250, 255], g).1, Class::Clear);
+    assert_eq!(brighter.classify([200, 252, 240], g).1, Class::Clear, "green alone clipped: as the clipped clear sky");
+    assert_eq!(brighter.classify([190, 210, 228], g).1, Class::Thick, "unclipped: the dark test (228 < 0.88 × 325)");
+    assert_eq!(brighter.classify([238, 245, 249], g).1, Class::Thick, "249 is 23 % below the 325 the clear sky would be");
+    // The clear sky's ratio as read in the frame's colour balance: a frame whose ratios read 1.1 ×
+    // the library's, at exposure 1.4, clips the clear sky's red too (0.758 × 1.1 × 336 = 280), so
+    // it reads 255 / 255, which is 1 / 1.1 in the library's balance; without the scale 0.999.
+    let scaled = FrameReference { ratio_scale: 1.1, inv_ratio_scale: 1.0 / 1.1, clip_exposure: Some(1.4), ..plain_reference(&r, &p) };
+    assert!((scaled.clipped_blue_reference(bin).unwrap() - 1.0 / 1.1).abs() < 1e-4);
+    let unscaled = FrameReference { clip_exposure: Some(1.4), ..plain_reference(&r, &p) };
+    assert!((unscaled.clipped_blue_reference(bin).unwrap() - 0.9992).abs() < 1e-3);
+    // With the red unclipped the scale cancels: 182 × 1.2 / 255 whatever the balance.
+    let scaled12 = FrameReference { clip_exposure: Some(1.2), ..scaled };
+    assert!((scaled12.clipped_blue_reference(bin).unwrap() - 182.0 * 1.2 / 255.0).abs() < 1e-4);
+    // Where the clear sky's blue stays below the saturation level there is no clipped reference.
+    assert_eq!(FrameReference { clip_exposure: Some(1.02), ..plain_reference(&r, &p) }.clipped_blue_reference(bin), None);
+    // A reddish bin (R/B 1.25, brightness 240 its red): its blue 192 × 1.2 = 230 does not clip.
+    let mut rr = r.clone();
+    rr.lib[bin] = 1.25;
+    assert_eq!(FrameReference { clip_exposure: Some(1.2), ..plain_reference(&rr, &p) }.clipped_blue_reference(bin), None);
+    // The public per-pixel path agrees with the map's (`classify_at`) on a clipped blue.
+    let px = geom(white.z_deg, white.gamma_deg);
+    assert_eq!(after.classify(clear_bright, px).1 as u8, after.classify_at(sample(&p, white), white.z_deg, || clear_bright, || clear_bright).2);
     // The frame's reference takes the frame's own exposure, else the frames' mean, only with the setting.
     let mut rm = r.clone();
     rm.keep_exposure(Some(1.2));
     let fr = rm.for_frame_with(&p, std::iter::empty());
     assert_eq!(fr.clip_exposure, Some(1.2));
+    // A frame that measures its own exposure (its deep blue sky 1.1 × the library's) takes that.
+    let own: Vec<([u8; 3], PixelGeom, f32)> = (0..150).map(|_| ([99u8, 132, 165], deep, p.default_reference(deep.z_deg, deep.gamma_deg))).collect();
+    let fr = rm.for_frame_with(&p, own.into_iter());
+    assert!(fr.exposure.is_some_and(|e| (e - 1.1).abs() < 0.01), "{:?}", fr.exposure);
+    assert_eq!(fr.clip_exposure, fr.exposure);
     assert_eq!(rm.for_frame_with(&off, std::iter::empty()).clip_exposure, None);
 }
 
