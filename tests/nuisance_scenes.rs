@@ -177,16 +177,21 @@ fn calibration_direction_error_by_zenith_band() {
     for (z0, z1, p95) in figures {
         check(&format!("calibration p95 zenith {z0}–{z1}°"), p95 <= TARGET_P95_DEG, format!("p95 {p95:.3}° (target {TARGET_P95_DEG}°)"));
     }
-    // Where the detections do not reach, the issue asks that the stated bound cover the true error:
-    // every band the fit states a bound for, against the true p95 over its directions.
-    for b in &c.fit.bounds {
-        let mut e = direction_errors(&c.truth, &c.fit.camera, b.zenith_from_deg, b.zenith_to_deg);
+    // Where the detections do not reach, the issue asks that the stated bound cover the true error.
+    check_bounds_cover("", &c.truth, &c.fit);
+}
+
+/// Every band `fit` states a bound for, against the true p95 direction error over its directions
+/// (`label` prefixes the check's name).
+fn check_bounds_cover(label: &str, truth: &Camera, fit: &Fit) {
+    for b in &fit.bounds {
+        let mut e = direction_errors(truth, &fit.camera, b.zenith_from_deg, b.zenith_to_deg);
         if e.is_empty() {
             continue;
         }
         let (_, p95, _) = stats(&mut e);
         check(
-            &format!("stated bound covers the true error, zenith {}–{}°", b.zenith_from_deg, b.zenith_to_deg),
+            &format!("{label}stated bound covers the true error, zenith {}–{}°", b.zenith_from_deg, b.zenith_to_deg),
             p95 <= b.bound_deg,
             format!("true p95 {p95:.3}°, stated bound {:.3}°", b.bound_deg),
         );
@@ -329,14 +334,13 @@ fn check_against_yardstick(metric: &str, e: &nephocast::verify::Evaluation) {
     );
 }
 
-#[test]
-fn broken_end_to_end_with_calibrated_camera() {
-    let (e, sum, elapsed) = end_to_end_with_calibrated_camera("nuisance-broken");
-    let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map(|h| h.skill).unwrap_or(f64::NAN);
+/// Print a single-layer scene's replay with the calibrated camera in one line; its skill at 5 /
+/// 10 / 15 min.
+fn print_summary(name: &str, e: &nephocast::verify::Evaluation, sum: &nephocast::replay::ReplaySummary, elapsed: f64) -> [f64; 3] {
+    let sk = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60).map_or(f64::NAN, |h| h.skill);
     let skills = [sk(5), sk(10), sk(15)];
     eprintln!(
-        "nuisance-broken with the calibrated camera ({:.1} s): frames rejected {:?} | seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill vs smart persistence 5/10/15 min {:.3} {:.3} {:.3}",
-        elapsed,
+        "{name} with the calibrated camera ({elapsed:.1} s): frames rejected {:?} | seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill vs smart persistence 5/10/15 min {:.3} {:.3} {:.3}",
         sum.counters.rejected,
         e.segmentation.accuracy,
         e.segmentation.circumsolar_accuracy,
@@ -346,6 +350,13 @@ fn broken_end_to_end_with_calibrated_camera() {
         skills[1],
         skills[2]
     );
+    skills
+}
+
+#[test]
+fn broken_end_to_end_with_calibrated_camera() {
+    let (e, sum, elapsed) = end_to_end_with_calibrated_camera("nuisance-broken");
+    let skills = print_summary("nuisance-broken", &e, &sum, elapsed);
     // Loose guards that hold today.
     assert!(skills.iter().all(|s| s.is_finite() && *s > -0.5), "skill {skills:?}");
     check("skill", skills.iter().all(|s| *s >= TARGET_SKILL), format!("5/10/15 min {skills:.3?} (target {TARGET_SKILL})"));
@@ -417,18 +428,7 @@ fn low_sun_calibration() {
         all = p95;
     }
     assert!(all <= LOOSE_P95_DEG, "low-sun p95 {all:.3}° at zenith < 80° is beyond even the loose bound {LOOSE_P95_DEG}°");
-    for b in &fit.bounds {
-        let mut e = direction_errors(&c.truth, &fit.camera, b.zenith_from_deg, b.zenith_to_deg);
-        if e.is_empty() {
-            continue;
-        }
-        let (_, p95, _) = stats(&mut e);
-        check(
-            &format!("low-sun stated bound covers the true error, zenith {}–{}°", b.zenith_from_deg, b.zenith_to_deg),
-            p95 <= b.bound_deg,
-            format!("true p95 {p95:.3}°, stated bound {:.3}°", b.bound_deg),
-        );
-    }
+    check_bounds_cover("low-sun ", &c.truth, &fit);
 }
 
 /// The slow scattered scene whose plant lies downwind of the camera so that its 4–8 min look-ups
@@ -440,19 +440,7 @@ fn scattered_slow_end_to_end_with_calibrated_camera() {
     let name = "nuisance-scattered-slow";
     let (e, sum, elapsed) = end_to_end_with_calibrated_camera(name);
     let at = |m: u32| e.plant.iter().find(|h| h.horizon_s == m * 60);
-    let sk = |m: u32| at(m).map_or(f64::NAN, |h| h.skill);
-    let skills = [sk(5), sk(10), sk(15)];
-    eprintln!(
-        "{name} with the calibrated camera ({elapsed:.1} s): frames rejected {:?} | seg {:.3} ring {:.3} | motion speed err {:.2} m/s dir err {:.1}° | skill vs smart persistence 5/10/15 min {:.3} {:.3} {:.3}",
-        sum.counters.rejected,
-        e.segmentation.accuracy,
-        e.segmentation.circumsolar_accuracy,
-        e.motion.speed_error_mps,
-        e.motion.direction_error_deg,
-        skills[0],
-        skills[1],
-        skills[2]
-    );
+    let skills = print_summary(name, &e, &sum, elapsed);
     let mbe: Vec<(u32, f64)> = (1..=15).map(|m| (m, at(m).map_or(f64::NAN, |h| h.mbe_wm2))).collect();
     eprintln!("  plant MBE by horizon [W/m²]: {}", mbe.iter().map(|(m, b)| format!("{m}:{b:+.1}")).collect::<Vec<_>>().join(" "));
     let (worst_m, worst) = mbe.iter().copied().max_by(|a, b| a.1.abs().total_cmp(&b.1.abs())).expect("15 horizons");
