@@ -283,9 +283,17 @@ fn nuisance_truth_marks_hidden_sky_unknown() {
     }
 }
 
-/// Replay a 30-minute `nuisance-*` scene (seed 3) with the calibrated camera and the clear day's
-/// obstruction mask, and evaluate it (with its perfect-perception yardstick).
+/// Replay a 30-minute `nuisance-*` scene (seed 3) with what `calibrate` writes from the clear day
+/// (the camera, the obstruction mask and, with `library`, the clear-sky library), and evaluate
+/// it (with its perfect-perception yardstick).
 fn end_to_end_with_calibrated_camera(name: &str) -> (nephocast::verify::Evaluation, nephocast::replay::ReplaySummary, f64) {
+    end_to_end_calibrated(name, true)
+}
+
+/// [`end_to_end_with_calibrated_camera`], with or without the clear-sky library (a calibration
+/// file without one, as from an older version: the parametric default and the frame's offset judge
+/// the sky).
+fn end_to_end_calibrated(name: &str, library: bool) -> (nephocast::verify::Evaluation, nephocast::replay::ReplaySummary, f64) {
     let c = calibrated();
     let d = tempfile::tempdir().unwrap();
     let mut spec = scene(name).unwrap();
@@ -307,6 +315,11 @@ fn end_to_end_with_calibrated_camera(name: &str) -> (nephocast::verify::Evaluati
     std::fs::write(cal_dir.join(format!("{cam_name}-mask.png")), nephocast::synth::encode_png_gray(&mask)).unwrap();
     let mut cal = CalibrationFile::from_camera(&cam_name, &c.fit.camera);
     cal.camera.obstruction_mask = Some(format!("{cam_name}-mask.png").into());
+    if library {
+        let reference = nephocast::calibrate::clear_sky_reference(&c.frames, &c.fit, &c.detections, &nephocast::segment::SegmentParams::default());
+        std::fs::write(cal_dir.join(format!("{cam_name}-clear-sky.csv")), reference.to_csv()).unwrap();
+        cal.camera.clear_reference = Some(format!("{cam_name}-clear-sky.csv").into());
+    }
     std::fs::write(cal_dir.join(format!("{cam_name}.toml")), toml::to_string(&cal).unwrap()).unwrap();
     let out = d.path().join("out");
     let opts = ReplayOptions {
@@ -434,7 +447,7 @@ fn low_sun_calibration() {
 /// The slow scattered scene whose plant lies downwind of the camera so that its 4–8 min look-ups
 /// cross the camera's circumsolar sky (issue 13, "no phantom cloud at the sun"): the bias at each
 /// horizon, the 1-minute RMSE against smart persistence's and the pooled skill against the
-/// yardstick.
+/// yardstick; then the bias with a calibration file that names no clear-sky library.
 #[test]
 fn scattered_slow_end_to_end_with_calibrated_camera() {
     let name = "nuisance-scattered-slow";
@@ -457,11 +470,22 @@ fn scattered_slow_end_to_end_with_calibrated_camera() {
         format!("{worst:+.1} W/m² at {worst_m} min (target |MBE| ≤ {TARGET_MAX_ABS_MBE_WM2})"),
     );
     check(&format!("{name} 1-minute RMSE below smart persistence's"), one.0 < one.1, format!("{:.1} W/m² against {:.1}", one.0, one.1));
-    // Reported, not passed or failed on the target itself: the scene sits on its edge (0.6301
-    // against 0.6301 when measured, 2026-12-05), where the last digit of a sum could tip it either
-    // way. Guarded instead against falling more than 0.03 below the target.
+    // Reported, not passed or failed on the target itself: the scene sits near its edge (with the
+    // library 0.6366 against 0.6301, without it 0.6301 against 0.6301, when measured on
+    // 2026-12-05), where a small change could tip it either way. Guarded instead against falling
+    // more than 0.03 below the target.
     let pooled = nephocast::verify::pooled_skill(&e.plant, 300, 900);
     let target = TARGET_YARDSTICK_SHARE * nephocast::verify::pooled_skill(e.yardstick.as_deref().expect("the sequence's yardstick"), 300, 900);
-    eprintln!("  {} {name} pooled skill against the yardstick: 5–15 min {pooled:.4} against {target:.4}", if pooled >= target { "meets:" } else { "known shortfall (at its edge):" });
+    eprintln!("  {} {name} pooled skill against the yardstick: 5–15 min {pooled:.4} against {target:.4}", if pooled >= target { "meets:" } else { "known shortfall (near its edge):" });
     assert!(pooled >= target - 0.03, "{name} pooled skill {pooled:.3} fell more than 0.03 below the yardstick target {target:.3}");
+    // The same with a calibration file that names no clear-sky library (one from an older
+    // version): the parametric default and the frame's offset judge the sky, and the offset must
+    // come from the near sky where the hazy far field shows none (without that, largest |MBE|
+    // −155 W/m² at 5 min, pooled 0.322; measured 2026-12-05: −29.0 W/m², 0.630).
+    let (e, _, _) = end_to_end_calibrated(name, false);
+    let worst = (1..=15u32).filter_map(|m| e.plant.iter().find(|h| h.horizon_s == m * 60)).map(|h| h.mbe_wm2).fold(0.0f64, |w, b| if b.abs() > w.abs() { b } else { w });
+    let pooled = nephocast::verify::pooled_skill(&e.plant, 300, 900);
+    eprintln!("  without the clear-sky library: largest |MBE| {worst:+.1} W/m², pooled 5–15 min skill {pooled:.4}");
+    assert!(worst.abs() <= TARGET_MAX_ABS_MBE_WM2, "{name} without the library: largest |MBE| {worst:+.1} W/m² (target {TARGET_MAX_ABS_MBE_WM2})");
+    assert!(pooled >= target - 0.03, "{name} without the library: pooled skill {pooled:.3}");
 }
