@@ -145,7 +145,7 @@ pub fn colour_balance_note(clear_rb_scale: (f64, usize), exposure: Option<(f64, 
 pub fn exposure_note(clear_rb_scale: (f64, usize), exposure: Option<(f64, usize)>) -> Option<String> {
     let (e, n) = exposure_differs(exposure).filter(|_| clear_rb_scale.0 == 1.0)?;
     Some(format!(
-        "the frames' clear sky read ×{e:.2} as bright as on the calibration day ({n} frames measured it; exposure in frames.csv): the camera's exposure differs, which the map near the sun does not follow (clipping there is read as on the calibration day). Fix the camera's exposure, or calibrate from a clear day taken with the same settings"
+        "the frames' clear sky read ×{e:.2} as bright as on the calibration day ({n} frames measured it; exposure in frames.csv): the camera's exposure differs. The segmentation judges clipping at the frames' exposure (segment.exposure_past_clipping), but forecasts are less skilful under a changed exposure, most of all near the sun where bright cloud clips as the clear sky does. Fix the camera's exposure, or calibrate from a clear day taken with the same settings"
     ))
 }
 

@@ -441,6 +441,16 @@ impl FrameReference<'_> {
         Some(red.min(255.0) / blue.min(255.0) * self.inv_ratio_scale)
     }
 
+    /// Reference R/B of a sample reading `rgb` in library bin `bin`, outside the glare: the clear
+    /// sky's ratio as read at the frame's exposure where the sample's blue clips and so would the
+    /// clear sky's ([`FrameReference::clipped_blue_reference`]), else the bin's
+    /// ([`FrameReference::reference_in_bin`]). The map's cells and the per-pixel path share it.
+    #[inline]
+    fn reference_outside_glare(&self, rgb: [u8; 3], bin: usize, default_rb: f32) -> f32 {
+        let clipped = if rgb[2] >= self.params.saturation_level { self.clipped_blue_reference(bin) } else { None };
+        clipped.unwrap_or_else(|| self.reference_in_bin(bin, default_rb))
+    }
+
     /// Whether sample `k` of `sky` is judged by its ratio alone in this frame (plain sky outside the
     /// glare) against a learned clear-sky reference (not the parametric default): the samples the
     /// far field's contrast correction measures and lifts (`distance`).
@@ -559,9 +569,7 @@ impl FrameReference<'_> {
                 let c = self.judge_in_clipped_bin(rgb, g.bin as usize);
                 return (rgb, f32::NAN, c as u8);
             }
-            let clipped_reference = if rgb[2] >= self.params.saturation_level { self.clipped_blue_reference(g.bin as usize) } else { None };
-            let reference_rb = clipped_reference.unwrap_or_else(|| self.reference_in_bin(g.bin as usize, g.default_rb));
-            let (s, c) = self.classify_plain(rgb, reference_rb, g.thick_score);
+            let (s, c) = self.classify_plain(rgb, self.reference_outside_glare(rgb, g.bin as usize, g.default_rb), g.thick_score);
             (rgb, s, c)
         } else {
             let rgb = exact_rgb();
@@ -599,8 +607,7 @@ impl FrameReference<'_> {
         }
         let rb = rgb[0] as f32 / (rgb[2] as f32).max(1.0) * self.inv_ratio_scale;
         // Outside the glare a clipped blue is judged as the map's cells are (`classify_at`).
-        let clipped_reference = if rgb[2] >= sat && self.outside_glare(g.gamma_deg) { self.clipped_blue_reference(bin) } else { None };
-        let r = clipped_reference.unwrap_or_else(|| self.reference_in_bin(bin, default_rb));
+        let r = if self.outside_glare(g.gamma_deg) { self.reference_outside_glare(rgb, bin, default_rb) } else { self.reference_in_bin(bin, default_rb) };
         let denom = (p.cloud_rb as f32 - r).max(0.03);
         let s = (rb - r) / denom;
         if p.cloud_rb as f32 - r < MIN_CONTRAST {
