@@ -35,7 +35,7 @@ pub struct MapParams {
     /// map sizes ([`crate::intake::map_reduction`]: at least four pixels per cell across the frame,
     /// so 1024² and smaller frames whole, 2048² at 1/2); 1 decodes whole frames; 2, 4 or 8 decode at
     /// 1/2, 1/4 or 1/8 in the DCT domain (faster; at 1024², 1/2 costs the two-layer scene skill,
-    /// README: Speed). Not written when 0.
+    /// docs/speed.md). Not written when 0.
     #[serde(skip_serializing_if = "is_auto")]
     pub decode_reduction: u32,
 }

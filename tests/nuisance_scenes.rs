@@ -49,7 +49,7 @@ const TARGET_MAX_ABS_MBE_WM2: f64 = 50.0;
 /// Loose bound on that |MBE| that holds today \[W m⁻²\]: a regression guard, not a target. The
 /// phantom cloud at the sun this scene was made to catch put −166 W/m² at 5 min (the scene's own
 /// camera, before the map's clear-sky offset was measured over the near sky when its far field
-/// shows none; README, "No phantom cloud at the sun").
+/// shows none; docs/checks.md, "No phantom cloud at the sun").
 const LOOSE_MAX_ABS_MBE_WM2: f64 = 100.0;
 const TARGET_DIR_ERR_DEG: f64 = 5.0;
 
@@ -70,17 +70,17 @@ const TARGET_DIR_ERR_DEG: f64 = 5.0;
 /// The two-layer scene (a thin veil at 6 km over cumulus) reaches 0.22 of pooled 5–15 min skill
 /// against 0.8 × its yardstick's 0.70 (2026-12-03; the same with the dark-cloud test off): the
 /// forecast follows one layer's motion and the veil's transmittance poorly (README, "On a world we
-/// did not make"). Measured against each true layer alone (2026-12-04, README "Which layer carries
+/// did not make"). Measured against each true layer alone (2026-12-04, docs/checks.md "Which layer carries
 /// the two-layer error"): the veil carries most of the plant's beam, the current state most of
 /// the squared error; `irradiance.thin_beam_from_score` leaves this figure at 0.221. 2026-12-04:
 /// 0.217, and the 1-minute RMSE 178.8 W/m² against smart persistence's 177.6 (the issue's target
 /// is below it); with the tuning's soft bias step (`irradiance.tune_bias_soft`) 0.226 and 184.5; `irradiance.sun_line_beam` (the beam measured at the camera's sun line) finds no
 /// frame with clear sky around the sun here, so no reference, and changes nothing (scene camera;
-/// README, "The beam along the camera's sun line").
+/// docs/checks.md, "The beam along the camera's sun line").
 ///
 /// The slow scattered scene (`nuisance-scattered-slow`) reaches 0.630 of pooled 5–15 min skill
 /// against 0.8 × its yardstick's 0.788 = 0.630 (2026-12-05), short by under 0.0001: a
-/// dip of −11 to −18 W/m² at 4–8 min remains (README, "No phantom cloud at the sun").
+/// dip of −11 to −18 W/m² at 4–8 min remains (docs/checks.md, "No phantom cloud at the sun").
 const KNOWN_SHORTFALLS: &[&str] = &[
     "calibration p95 zenith 60–80°",
     "calibration p95 zenith 0–80°",

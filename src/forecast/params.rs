@@ -105,14 +105,14 @@ pub struct IrradianceParams {
     /// With two layers tracked, the tuning's diffuse gain takes up the window's mean residual as
     /// with one ([`IrradianceParams::tune_robust_scale`]). Off: it is left alone with two layers,
     /// where the current state's bias at the pyranometers (their look-ups at lead 0 near the
-    /// camera's sun direction) is not the forecast's at 5–15 min (figures in README, "Two layers
+    /// camera's sun direction) is not the forecast's at 5–15 min (figures in docs/checks.md, "Two layers
     /// through each other").
     pub tune_bias_with_two_layers: bool,
     /// The diffuse gain takes up only the part of the window's mean residual beyond two standard
     /// errors (soft thresholding, Donoho & Johnstone 1994, from memory), so the step grows from
     /// nothing as the evidence does; on by default. Off: all of the mean residual once it passes
     /// two standard errors, a jump at the threshold that a change of the decoder's rounding moved
-    /// (the gain 0.27 → 0.60 in one frame of a two-layer scene). Figures in README ("The tuning's
+    /// (the gain 0.27 → 0.60 in one frame of a two-layer scene). Figures in docs/checks.md ("The tuning's
     /// bias step, soft").
     pub tune_bias_soft: bool,
     /// A thin cell's transmittance follows its cloudiness score: its optical depth taken as
@@ -121,7 +121,7 @@ pub struct IrradianceParams {
     /// the classes either side at the values in use
     /// ([`crate::cloudmap::CloudMap::continuous_shares`]), in the forecast's tables and in the
     /// tuning's regressors alike. A veil's optical depth varies continuously inside the one
-    /// class; off (the default), every thin cell passes `beam_thin`. Figures in README ("A thin
+    /// class; off (the default), every thin cell passes `beam_thin`. Figures in docs/checks.md ("A thin
     /// cell's transmittance from its score").
     pub thin_beam_from_score: bool,
     /// The sun's glare (unknown cells in view) is filled from the recent maps moved by the tracked
@@ -138,7 +138,7 @@ pub struct IrradianceParams {
     /// is put on the layer whose cloud is more often thin (a veil), the other layer's table
     /// taking those cells as clear. The tables move with each layer's motion, so the measured
     /// beam is carried downstream with the layer. Off (the default): the glare takes its
-    /// neighbours' shares. Figures in README ("The beam along the camera's sun line").
+    /// neighbours' shares. Figures in docs/checks.md ("The beam along the camera's sun line").
     pub sun_line_beam: bool,
     /// The oldest earlier map [s] the glare fill takes a cell from (the engine keeps maps up to
     /// `motion.max_gap_s`, longer ones are not at hand).
@@ -151,7 +151,7 @@ pub struct IrradianceParams {
     /// little; deep inside a large unseen region (a sun low in the camera's clipped sky,
     /// `segment.library_keeps_clipped`) the fill no longer carries its edge's state kilometres
     /// inward. 0: no relaxation. The default, 500 m, is about a cumulus cloud's size (from memory,
-    /// no source); 250, 500, 1500 and 4000 m were measured (README, "Where the clear sky clips").
+    /// no source); 250, 500, 1500 and 4000 m were measured (docs/checks.md, "Where the clear sky clips").
     pub fill_correlation_m: f64,
 }
 

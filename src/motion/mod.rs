@@ -28,7 +28,7 @@
 //! what is left, the other layer (the three-frame method for two additive motions). Off by
 //! default: with it, the layers' motions are right on the project's two-layer scenes, but how the
 //! forecast labels and advects two layers' cells limits what that gains, and on an independent
-//! breaking overcast it read the layer's evolution as a slow second layer (README, "Two layers
+//! breaking overcast it read the layer's evolution as a slow second layer (docs/checks.md, "Two layers
 //! through each other").
 //!
 //! A [`LayerTracker`] smooths each layer over time with its own Kalman filter (gating of
@@ -108,7 +108,7 @@ pub struct MotionParams {
     /// 80°: 0.14 m/s there, 0.19 m/s on the breaking overcast, two-layer 10-minute skill 0.33.
     pub first_pass_max_zenith_deg: f64,
     /// Run the cancelled-layer pass ([`measure_layers`]) when the residual pass finds no second
-    /// layer. Off by default: see README, "Two layers", for what it changes.
+    /// layer. Off by default: see docs/checks.md, "Two layers", for what it changes.
     pub cancelled_layer_pass: bool,
     /// Half-side of the box over which a cloudy cell's mismatch under each layer's motion is
     /// averaged to label it with a layer ([`label_layers`]) \[cells\].

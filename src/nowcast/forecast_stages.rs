@@ -225,7 +225,7 @@ impl ForecastStage {
         // With two layers and `tune_bias_with_two_layers` off the window's mean residual is left
         // alone: the current state's bias at the pyranometers (their look-ups at lead 0 lie near
         // the camera's sun direction) is not the forecast's at 5–15 min, where the look-ups have
-        // left that region (README, "Two layers through each other").
+        // left that region (docs/checks.md, "Two layers through each other").
         let take_bias = !two_layers || self.prior.tune_bias_with_two_layers;
         if let Some(p) = self.tuner.solve_with(&self.prior, take_bias) {
             self.irradiance = p;

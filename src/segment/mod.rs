@@ -198,7 +198,7 @@ pub struct SegmentParams {
     /// Measured against the independent renderer's true masks (breaking overcast, camera and
     /// library from `calibrate`, every 6th frame, zenith 0–85°): of the samples made clear,
     /// 99–100 % were clear in every 5–10° zenith band; of those made thick, 100 % were cloud; of
-    /// the unclipped bright ones left unknown, 43–59 % were cloud (README, "Where the clear sky
+    /// the unclipped bright ones left unknown, 43–59 % were cloud (docs/checks.md, "Where the clear sky
     /// clips"). Off: every sample in a marked bin is unknown where the marks are used.
     pub judge_clipped_bins: bool,
     /// Use the clipped bins' marks while pyranometers are held too (off: with pyranometers the
