@@ -6,7 +6,8 @@ nephocast was not built around; other cameras and seeds of that renderer are hel
 what the work is judged on. Use the numbers this prints to find out whether the engine holds up,
 never to fit settings to these particular scenes.
 
-For each camera (camera1, camera2) the script:
+For each camera (every `CAMERA` with a `CAMERA-…clear-day` folder: camera1 and camera2 here) and each
+of its cloudy scenes (a camera with several is run once per scene, in `WORK/CAMERA/SCENE`), the script:
 
 1. writes site files into the work folder from ``input/site.json`` and ``input/ceilometer.json``:
    one fixed horizontal block (so POA = GHI) over the plant footprint, a 15-minute forecast at
@@ -538,19 +539,30 @@ def yardsticks(scenes):
 
 # ------------------------------------------------------------------ one camera
 def camera_folders(scenes, camera):
+    """The camera's clear day and its cloudy scenes (one or more): folders named `CAMERA-…`, the
+    clear day's name ending in `clear-day`."""
     ds = sorted(d for d in os.listdir(scenes) if d.startswith(camera + "-") and os.path.isdir(os.path.join(scenes, d)))
     clear = [d for d in ds if d.endswith("clear-day")]
     cloudy = [d for d in ds if not d.endswith("clear-day")]
-    if len(clear) != 1 or len(cloudy) != 1:
-        raise RuntimeError(f"{camera}: expected one clear-day and one cloudy folder, found {ds}")
-    return os.path.join(scenes, clear[0]), os.path.join(scenes, cloudy[0])
+    if len(clear) != 1 or not cloudy:
+        raise RuntimeError(f"{camera}: expected one clear-day folder and at least one cloudy folder, found {ds}")
+    return os.path.join(scenes, clear[0]), [os.path.join(scenes, d) for d in cloudy]
+
+
+def discover_cameras(scenes):
+    """Every camera of the scenes folder: the prefix `CAMERA` of each `CAMERA-…clear-day` folder."""
+    return sorted(d[: d.index("-")] for d in os.listdir(scenes)
+                  if d.endswith("clear-day") and "-" in d and os.path.isdir(os.path.join(scenes, d)))
 
 
 def run_camera(a, camera, sc, yard, log, res):
-    """Fill `res` step by step (so a failure part-way keeps what was done)."""
-    clear, cloudy = camera_folders(a.scenes, camera)
+    """Fill `res` step by step (so a failure part-way keeps what was done). A camera with several
+    cloudy scenes runs once per scene: `res["cloudy_scene"]` names the one, and its work folder is
+    `WORK/CAMERA/SCENE` (else `WORK/CAMERA`)."""
+    clear, cloudies = camera_folders(a.scenes, camera)
+    cloudy = os.path.join(a.scenes, res["cloudy_scene"]) if res.get("cloudy_scene") else cloudies[0]
     res["clear_scene"], res["cloudy_scene"] = os.path.basename(clear), os.path.basename(cloudy)
-    work = os.path.join(a.work, camera)
+    work = os.path.join(a.work, camera, res["cloudy_scene"]) if len(cloudies) > 1 else os.path.join(a.work, camera)
     if os.path.isdir(work):
         shutil.rmtree(work)
     os.makedirs(work)
@@ -682,6 +694,31 @@ def run_camera(a, camera, sc, yard, log, res):
 
 
 # ------------------------------------------------------------------ report
+def summary_table(results):
+    """One row per camera and cloudy scene, with the issue's targets in the header: calibration p95
+    at zenith < 80° (0.2°), motion (0.5 m/s), pooled 5–15 min skill (0.8 × the yardstick), 1-min
+    RMSE (below smart persistence's), largest |MBE| (50 W/m²), clear-day RMSE (20 W/m²)."""
+    L = ["## Summary\n",
+         "| camera | cloudy scene | calibration p95 (≤ 0.2°) | motion error (≤ 0.5 m/s) | pooled 5–15 skill (≥ 0.8 × yardstick) "
+         "| 1-min RMSE (< persistence) | largest \\|MBE\\| (≤ 50) | clear-day RMSE (≤ 20) |",
+         "|---|---|---|---|---|---|---|---|"]
+    for r in results:
+        ci = r.get("calibration", {})
+        err = ci.get("error") or {}
+        cal = fnum(err.get("deg_p95_z_lt_80"), "{:.3f}") + "°" if err else ("refused" if ci.get("exit_code") not in (None, 0) else "—")
+        rc = r.get("replay_cloudy", {})
+        ms, fs = rc.get("motion_summary") or {}, rc.get("forecast_summary") or {}
+        cs = (r.get("replay_clear", {}).get("forecast_summary") or {})
+        motion = f"{ms['mean_vector_error_ms']:.2f} m/s" if ms.get("mean_vector_error_ms") is not None else "—"
+        skill = (f"{fnum(fs.get('skill_pooled_5_15'))} (target {fnum(fs.get('yardstick_pooled_0_8'))})" if fs else "—")
+        rmse1 = f"{fnum(fs.get('rmse_1'), '{:.1f}')} ({fnum(fs.get('rmse_sp_1'), '{:.1f}')})" if fs else "—"
+        mbe = fnum(fs.get("max_abs_mbe"), "{:.1f}") if fs else "—"
+        clear = fnum(cs.get("rmse_pooled_5_15"), "{:.1f}") if cs else "—"
+        note = f" ({r['error']})" if r.get("error") else ""
+        L.append(f"| {r['camera']} | {r.get('cloudy_scene', '—')}{note} | {cal} | {motion} | {skill} | {rmse1} | {mbe} | {clear} |")
+    return "\n".join(L) + "\n"
+
+
 def markdown(res):
     L = []
     cam = res["camera"]
@@ -900,7 +937,9 @@ def main():
     ap.add_argument("--work", default="/tmp/indep-work", help="work folder (one subfolder per camera, overwritten)")
     ap.add_argument("--camera-from", choices=["calibrate", "truth"], default="calibrate",
                     help="calibrate on the clear day (the user's way) or convert truth/camera.json (diagnostic only)")
-    ap.add_argument("--cameras", default="camera1,camera2")
+    ap.add_argument("--cameras", default="",
+                    help="comma-separated cameras (default: every CAMERA with a CAMERA-…clear-day folder; "
+                         "a camera with several cloudy scenes is run once per scene)")
     ap.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
                     help="a site setting for the cloudy replay (TOML value), e.g. motion.cancelled_layer_pass=true; repeatable")
     ap.add_argument("--calibrate-set", action="append", default=[], metavar="SECTION.KEY=VALUE",
@@ -979,15 +1018,24 @@ def main():
             f"{a.measurement_minutes}-minute means stamped at the {'end' if a.causal_measurements else 'start'} of each period"
             f"{f', every stamp moved by {a.measurement_shift_min:+d} min' if a.measurement_shift_min else ''}"
             f"{'; NO measurements given to the cloudy replay' if a.no_measurements else ''})\n\n")
-    for camera in [c.strip() for c in a.cameras.split(",") if c.strip()]:
-        print(f"[{camera}] running ...", file=sys.stderr, flush=True)
-        r = dict(camera=camera, camera_from=a.camera_from)
+    cameras = [c.strip() for c in a.cameras.split(",") if c.strip()] if a.cameras else discover_cameras(a.scenes)
+    for camera in cameras:
         try:
-            run_camera(a, camera, sc, yard, log, r)
-        except Exception as e:  # keep going with the other camera, say what broke
-            r["error"] = f"{type(e).__name__}: {e}"
-        results.append(r)
-        text += markdown(r) + "\n"
+            cloudy = [os.path.basename(d) for d in camera_folders(a.scenes, camera)[1]]
+        except Exception as e:  # say what is missing and go on with the other cameras
+            cloudy = [None]
+        for scene in cloudy:
+            print(f"[{camera}{' ' + scene if scene and len(cloudy) > 1 else ''}] running ...", file=sys.stderr, flush=True)
+            r = dict(camera=camera, camera_from=a.camera_from)
+            if scene and len(cloudy) > 1:
+                r["cloudy_scene"] = scene
+            try:
+                run_camera(a, camera, sc, yard, log, r)
+            except Exception as e:  # keep going with the other cameras and scenes, say what broke
+                r["error"] = f"{type(e).__name__}: {e}"
+            results.append(r)
+            text += markdown(r) + "\n"
+    text += summary_table(results)
     print(text)
     if a.json:
         with open(a.json, "w") as f:
