@@ -377,7 +377,12 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
     text = "# Written by tools/independent_scenes.py from input/site.json (a check, not a tuned site).\n"
     text += table("site", {"name": s["name"], "latitude_deg": s["latitude"], "longitude_deg": s["longitude"],
                            "elevation_m": s["altitude_m"]})
-    text += table("camera", {"calibration": os.path.abspath(calibration), "position_m": [0.0, 0.0, 0.0]})
+    cam = {"calibration": os.path.abspath(calibration), "position_m": [0.0, 0.0, 0.0]}
+    # How the frames' names carry their time: the scene's own strftime pattern when it gives one
+    # (the engine's default, `…YYYYMMDDTHHMMSSZ…`, reads the shared scenes' names the same way).
+    if site_json.get("frame_name_format"):
+        cam["frame_time_format"] = site_json["frame_name_format"]
+    text += table("camera", cam)
     used_base = float(extra.get("clouds", {}).get("base_height_m", base))
     text += table("clouds", {"base_height_m": base})
     text += table("plant", {"point_spacing_m": 25.0})
@@ -603,7 +608,7 @@ def run_camera(a, camera, sc, yard, log, res):
         frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"),
                                      read_json(os.path.join(clear, "input", "site.json"))["site"], a.low_sun_zenith_deg)
         cal_info["clear_subset"] = a.clear_subset + (f" (sun zenith > {a.low_sun_zenith_deg:g}°)" if a.clear_subset == "low-sun" else "")
-        cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.endswith(".jpg")])
+        cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.lower().endswith((".jpg", ".jpeg", ".png"))])
         rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", frames, "--out", cal]
                            + (["--obstruction-mask"] if a.obstruction_mask else []), log=log)
         cal_info.update(exit_code=rc, stdout=out, stderr=err,
