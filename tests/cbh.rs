@@ -171,6 +171,8 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     let est = run(d, "shadow", |s| wrong_prior(s, Some(true)));
     let wrong = run(d, "wrong", |s| wrong_prior(s, Some(false)));
     let auto = run(d, "auto", |s| wrong_prior(s, None));
+    // No base configured at all: estimated from the unconfigured prior (1500 m, ±50 %).
+    let unset = run(d, "unset", |s| s.replace(&format!("base_height_m = {TRUTH_M:.1}\n"), ""));
     // Without shadow timing every frame reports the configured value and its 30 % prior, and the
     // map stays on it.
     for (h, sd, src) in &wrong.cbh {
@@ -203,7 +205,8 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
         mean_sigma,
         covered
     );
-    for (tag, r) in [("true base", &truth), ("estimated base", &est), ("wrong prior only", &wrong), ("default (checked)", &auto)] {
+    assert_eq!(unset.cbh[0].0, nephocast::cbh::UNCONFIGURED_PRIOR_M, "the unconfigured prior is where the run starts");
+    for (tag, r) in [("true base", &truth), ("estimated base", &est), ("wrong prior only", &wrong), ("default (checked)", &auto), ("no base configured", &unset)] {
         eprintln!("cbh-network: skill 5/10/15 min with the {tag:<16} {:.3} {:.3} {:.3}", skill(&r.eval, 5), skill(&r.eval, 10), skill(&r.eval, 15));
     }
     check("estimate share", share >= 0.5, format!("{share:.2} of frames (target ≥ 0.5)"));
@@ -223,6 +226,15 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     );
     let auto_gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&auto.eval, *m)).collect();
     check("default: skill gap", auto_gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus default at 5/10/15 min {auto_gaps:.3?} (target within ±0.03)"));
+    // No base configured: the fits are combined from the first, and the plane follows them.
+    let unset_last = unset.plane.last().unwrap().0;
+    check(
+        "no base: plane followed",
+        !unset.moves().is_empty() && (unset_last / TRUTH_M - 1.0).abs() <= 0.10,
+        format!("{} moves, ending at {unset_last:.0} m (target within 10 % of {TRUTH_M:.0} m)", unset.moves().len()),
+    );
+    let unset_gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&unset.eval, *m)).collect();
+    check("no base: skill gap", unset_gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus unconfigured at 5/10/15 min {unset_gaps:.3?} (target within ±0.03)"));
 }
 
 /// The `cbh-network` scene's readings (30 minutes, seed 3, as [`network_scene`] renders) written
@@ -329,6 +341,25 @@ fn no_estimate_without_shadows() {
         assert_eq!((src.as_str(), *h), ("configured", 1500.0));
         assert!((sd - 450.0).abs() <= 1.0, "{sd}");
     }
+}
+
+/// A site may leave the base out only where shadow timing can estimate it: with at least three
+/// pyranometers and shadow timing not turned off; otherwise it is refused, naming `clouds`.
+#[test]
+fn a_site_without_a_base_needs_pyranometers() {
+    let mut f = nephocast::synth::larkspur_site(1200.0, "cam");
+    f.clouds.base_height_m = None;
+    f.pyranometers.clear();
+    let e = f.validate(Path::new("site.toml")).unwrap_err().to_string();
+    assert!(e.contains("field clouds") && e.contains("[[pyranometers]]"), "{e}");
+    f.pyranometers = (0..nephocast::cbh::MIN_SHADOW_SENSORS)
+        .map(|i| nephocast::config::PyranometerSpec { name: format!("p{i}"), position_m: [100.0 * i as f64, 0.0] })
+        .collect();
+    assert!(f.clouds.base_unconfigured());
+    f.validate(Path::new("site.toml")).expect("a site without a base but with three pyranometers");
+    f.clouds.shadow_timing = Some(false);
+    let e = f.validate(Path::new("site.toml")).unwrap_err().to_string();
+    assert!(e.contains("field clouds"), "{e}");
 }
 
 /// Shadow timing needs pyranometers: a site that asks for it without enough is refused, naming

@@ -384,7 +384,9 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
         cam["frame_time_format"] = site_json["frame_name_format"]
     text += table("camera", cam)
     used_base = float(extra.get("clouds", {}).get("base_height_m", base))
-    text += table("clouds", {"base_height_m": base})
+    # No ceilometer: no base configured (a user who does not know it); the engine estimates it by
+    # shadow timing at the pyranometers, from its unconfigured prior of 1500 m.
+    text += table("clouds", {"base_height_m": base} if cbh else {})
     text += table("plant", {"point_spacing_m": 25.0})
     # A horizontal fixed block: its POA is GHI. Capacity ~200 W/m2 of footprint.
     text += toml_table("plant.blocks", {"name": "footprint", "polygon_m": poly, "capacity_kw": round(se * sn * 0.2),
@@ -579,7 +581,7 @@ def run_camera(a, camera, sc, yard, log, res):
 
     def ceil(d):
         p = os.path.join(d, "input", "ceilometer.json")
-        return read_json(p) if os.path.exists(p) else None
+        return read_json(p) if os.path.exists(p) and not a.no_ceilometer else None
 
     # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
     frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
@@ -985,6 +987,9 @@ def main():
     ap.add_argument("--measurement-shift-min", type=int, default=0,
                     help="add this many minutes to every measurement time stamp (a logger clock that is off: 60 is "
                          "a logger on local time an hour ahead of UTC, the readings an hour late)")
+    ap.add_argument("--no-ceilometer", action="store_true",
+                    help="ignore input/ceilometer.json, as a site without one: no base is configured, and the engine "
+                         "estimates it by shadow timing at the pyranometers (without measurements it keeps its 1500 m prior)")
     ap.add_argument("--no-measurements", action="store_true",
                     help="replay the cloudy scene without pyranometer readings (a plant without them: the "
                          "engine's documented default transmittances)")

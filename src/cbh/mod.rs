@@ -59,6 +59,13 @@ impl CbhEstimate {
 /// Default prior uncertainty of a configured cloud base height, as the sigma of `ln h` (about 30 %;
 /// common practice, no source): a value typed into a site file is a climatological guess.
 pub const CONFIGURED_REL_SIGMA: f64 = 0.3;
+/// The prior of a site that configures no base (neither `base_height_m` nor `base_height_csv`, with
+/// at least [`MIN_SHADOW_SENSORS`] pyranometers to estimate it) \[m\]: a low-to-mid cumulus base
+/// (common practice, no source), only where the estimation starts from.
+pub const UNCONFIGURED_PRIOR_M: f64 = 1500.0;
+/// Its uncertainty, as the sigma of `ln h` (about 50 %, own choice: bases from 500 to 4000 m are
+/// within two sigmas of it). Shadow timing's fits are combined with it from the first.
+pub const UNCONFIGURED_REL_SIGMA: f64 = 0.5;
 /// Uncertainty of a ceilometer's cloud base, as the sigma of `ln h` (5 %; common practice, no
 /// source: a ceilometer measures the base directly but the base varies over the plant).
 pub const CEILOMETER_REL_SIGMA: f64 = 0.05;
@@ -121,6 +128,15 @@ fn yes() -> bool {
 
 fn is_yes(v: &bool) -> bool {
     *v
+}
+
+impl CloudSection {
+    /// Whether the site configures no base at all (neither a value nor a series): the base is then
+    /// estimated by shadow timing from [`UNCONFIGURED_PRIOR_M`] (the site file's validation asks
+    /// for the pyranometers that needs).
+    pub fn base_unconfigured(&self) -> bool {
+        self.base_height_m.is_none() && self.base_height_csv.is_none()
+    }
 }
 
 impl Default for CloudSection {
@@ -298,7 +314,8 @@ impl CbhState {
     /// The state for a site file's `[clouds]`.
     pub fn new(clouds: &CloudSection) -> CbhState {
         CbhState {
-            shadow_mode: clouds.shadow_timing,
+            // Nothing configured to check: the fits are combined from the first.
+            shadow_mode: if clouds.base_unconfigured() { Some(true) } else { clouds.shadow_timing },
             disagreeing: 0,
             prior_rejected: false,
             held_back: 0,
@@ -309,7 +326,7 @@ impl CbhState {
             last_fit: None,
             last_no_fit: None,
             stereo: vec![],
-            prior_rel_sigma: clouds.base_height_rel_sigma.unwrap_or(CONFIGURED_REL_SIGMA),
+            prior_rel_sigma: clouds.base_height_rel_sigma.unwrap_or(if clouds.base_unconfigured() { UNCONFIGURED_REL_SIGMA } else { CONFIGURED_REL_SIGMA }),
             layer_priors: clouds.layers.clone(),
             estimates_made: 0,
         }

@@ -563,7 +563,18 @@ impl SiteFile {
             (Some(_), Some(_)) => {
                 return Err(c.invalid("clouds", "one of base_height_m or base_height_csv", "both"));
             }
-            (None, None) => return Err(c.invalid("clouds", "base_height_m or base_height_csv", "neither")),
+            // No base at all: estimated by shadow timing, which needs the pyranometers.
+            (None, None) if self.pyranometers.len() >= crate::cbh::MIN_SHADOW_SENSORS && self.clouds.shadow_timing != Some(false) => {}
+            (None, None) => {
+                return Err(c.invalid(
+                    "clouds",
+                    format!(
+                        "base_height_m or base_height_csv (or, to estimate the base by shadow timing, at least {} [[pyranometers]] and shadow_timing not false)",
+                        crate::cbh::MIN_SHADOW_SENSORS
+                    ),
+                    "neither",
+                ));
+            }
         }
         for (i, l) in self.clouds.layers.iter().enumerate() {
             c.range(&format!("clouds.layers[{i}].base_height_m"), l.base_height_m, crate::settings::CBH_MIN_M, crate::settings::CBH_MAX_M)?;

@@ -384,6 +384,7 @@ impl Nowcaster {
         match (&self.cbh_series, self.site.file.clouds.base_height_m) {
             (Some(s), _) => s.at(t, 600.0),
             (None, Some(h)) => Some(h),
+            (None, None) if self.site.file.clouds.base_unconfigured() => Some(crate::cbh::UNCONFIGURED_PRIOR_M),
             (None, None) => None,
         }
     }
