@@ -4,6 +4,7 @@ use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
+use crate::nowcast::Rejection;
 use crate::settings::{ConfigError, check_range};
 
 /// `[qc]` in `site.toml`.
@@ -23,11 +24,19 @@ pub struct QcParams {
     /// apart at most, plus the frame's exposure and transfer). 0 to 315 360 000 (ten years: a
     /// synthetic scene dated ahead of the host's clock can be replayed with a large value).
     pub max_ahead_of_clock_s: f64,
+    /// Frames whose sky reads redder than this on average (mean red over mean blue of the sky
+    /// pixels) are not daylight (`not_daylight`); default 1.05. A daytime sky, clear or overcast,
+    /// reads bluish or grey: the largest measured was 0.93 (every SWIMSEG patch, WSISEG frame,
+    /// independent and project synthetic scene). A night sky that a camera brightens by a long
+    /// exposure reads orange under city light: 1.10–1.46 over the SWINSEG night patches
+    /// (`tests/real_patches.rs`). A backstop for a frame stamped with a daytime time by mistake
+    /// (the sun's elevation judges the time itself); 0.5 to 100 (100: off in practice).
+    pub max_sky_red_blue: f64,
 }
 
 impl Default for QcParams {
     fn default() -> Self {
-        Self { min_sun_elevation_deg: 5.0, min_mean_level: 20.0, max_mean_level: 235.0, max_saturated_fraction: 0.25, max_ahead_of_clock_s: 120.0 }
+        Self { min_sun_elevation_deg: 5.0, min_mean_level: 20.0, max_mean_level: 235.0, max_saturated_fraction: 0.25, max_ahead_of_clock_s: 120.0, max_sky_red_blue: 1.05 }
     }
 }
 
@@ -41,8 +50,75 @@ impl QcParams {
         check_range(file, "qc.min_mean_level", self.min_mean_level, 0.0, 255.0)?;
         check_range(file, "qc.max_mean_level", self.max_mean_level, self.min_mean_level, 255.0)?;
         check_range(file, "qc.max_saturated_fraction", self.max_saturated_fraction, 0.0, 1.0)?;
-        check_range(file, "qc.max_ahead_of_clock_s", self.max_ahead_of_clock_s, 0.0, 315_360_000.0)
+        check_range(file, "qc.max_ahead_of_clock_s", self.max_ahead_of_clock_s, 0.0, 315_360_000.0)?;
+        check_range(file, "qc.max_sky_red_blue", self.max_sky_red_blue, 0.5, 100.0)
     }
+}
+
+/// The frame QC's verdict on a frame's time: the sun's position then, or
+/// [`Rejection::SunTooLow`] when its apparent elevation is below `min_sun_elevation_deg`.
+///
+/// # Errors
+/// [`Rejection::SunTooLow`], or [`Rejection::Unreadable`] when the sun's position cannot be
+/// computed for the time.
+pub fn judge_sun(time: &chrono::DateTime<chrono::Utc>, observer: &crate::sun::Observer, min_sun_elevation_deg: f64) -> Result<crate::sun::SunPosition, Rejection> {
+    let sun = crate::sun::position(time, observer).map_err(|e| Rejection::Unreadable(e.to_string()))?;
+    let elev = sun.elevation_rad().to_degrees();
+    if elev < min_sun_elevation_deg {
+        return Err(Rejection::SunTooLow(elev));
+    }
+    Ok(sun)
+}
+
+/// A frame's sky pixels as the frame QC reads them.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct SkyLevels {
+    /// Mean of the three channels over the pixels (0–255); 0 without pixels.
+    pub mean_level: f64,
+    /// Share of the pixels saturated in every channel (all ≥ 250).
+    pub saturated_share: f64,
+    /// Mean red over mean blue (blue's mean held at least 1/255 of a level); 1 without pixels.
+    pub red_blue: f64,
+    /// How many pixels were read.
+    pub samples: usize,
+}
+
+impl SkyLevels {
+    /// Read a frame's sky pixels.
+    pub fn measure(pixels: impl IntoIterator<Item = [u8; 3]>) -> SkyLevels {
+        let (mut sum, mut red, mut blue, mut sat, mut n) = (0u64, 0u64, 0u64, 0usize, 0usize);
+        for [r, g, b] in pixels {
+            sum += u64::from(r) + u64::from(g) + u64::from(b);
+            red += u64::from(r);
+            blue += u64::from(b);
+            sat += usize::from(r >= 250 && g >= 250 && b >= 250);
+            n += 1;
+        }
+        if n == 0 {
+            return SkyLevels { red_blue: 1.0, ..SkyLevels::default() };
+        }
+        let nf = n as f64;
+        SkyLevels { mean_level: sum as f64 / 3.0 / nf, saturated_share: sat as f64 / nf, red_blue: red as f64 / (blue as f64).max(nf / 255.0), samples: n }
+    }
+}
+
+/// The frame QC's verdict on a frame's sky pixels, in this order: under-exposed (mean level below
+/// `min_mean_level`), not daylight (mean red over mean blue above `max_sky_red_blue`), over-exposed
+/// (mean level above `max_mean_level` or saturated share above `max_saturated_fraction`).
+///
+/// # Errors
+/// [`Rejection::UnderExposed`], [`Rejection::NotDaylight`] or [`Rejection::OverExposed`].
+pub fn judge_sky(levels: &SkyLevels, qc: &QcParams) -> Result<(), Rejection> {
+    if levels.mean_level < qc.min_mean_level {
+        return Err(Rejection::UnderExposed(levels.mean_level));
+    }
+    if levels.red_blue > qc.max_sky_red_blue {
+        return Err(Rejection::NotDaylight { red_blue: levels.red_blue, limit: qc.max_sky_red_blue });
+    }
+    if levels.mean_level > qc.max_mean_level || levels.saturated_share > qc.max_saturated_fraction {
+        return Err(Rejection::OverExposed(levels.mean_level, levels.saturated_share));
+    }
+    Ok(())
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -237,6 +313,53 @@ pub const FLAG_NAMES: [(u16, &str); 10] = [
 /// How many rows carry each flag (flags that no row carries are left out), by name.
 pub fn flag_counts(flags: &[u16]) -> Vec<(&'static str, usize)> {
     FLAG_NAMES.iter().map(|(b, n)| (*n, flags.iter().filter(|x| **x & b != 0).count())).filter(|(_, c)| *c > 0).collect()
+}
+
+#[cfg(test)]
+mod frame_tests {
+    use super::*;
+
+    #[test]
+    fn sky_levels_by_hand() {
+        let l = SkyLevels::measure([[100, 110, 200], [50, 60, 100], [255, 255, 255]]);
+        assert_eq!(l.samples, 3);
+        assert!((l.mean_level - (410.0 + 210.0 + 765.0) / 9.0).abs() < 1e-9);
+        assert!((l.saturated_share - 1.0 / 3.0).abs() < 1e-12);
+        assert!((l.red_blue - 405.0 / 555.0).abs() < 1e-12);
+        let none = SkyLevels::measure(std::iter::empty());
+        assert_eq!((none.samples, none.mean_level, none.red_blue), (0, 0.0, 1.0));
+        // A black blue channel does not divide by zero.
+        assert!(SkyLevels::measure([[200, 80, 0]]).red_blue.is_finite());
+    }
+
+    #[test]
+    fn a_reddish_sky_is_not_daylight() {
+        let qc = QcParams::default();
+        // Grey overcast and blue sky pass; an orange night sky (city light, long exposure) does not.
+        assert_eq!(judge_sky(&SkyLevels::measure([[150, 155, 160]; 4]), &qc), Ok(()));
+        assert_eq!(judge_sky(&SkyLevels::measure([[60, 110, 190]; 4]), &qc), Ok(()));
+        let night = judge_sky(&SkyLevels::measure([[110, 92, 80]; 4]), &qc).unwrap_err();
+        assert_eq!(night.code(), "not_daylight");
+        assert!(night.to_string().contains("not daylight"), "{night}");
+        // Dark comes first: a black frame is under-exposed, whatever its colour.
+        assert_eq!(judge_sky(&SkyLevels::measure([[12, 5, 3]; 4]), &qc).unwrap_err().code(), "under_exposed");
+        // The limit is configurable and 100 turns the test off.
+        let off = QcParams { max_sky_red_blue: 100.0, ..qc.clone() };
+        assert_eq!(judge_sky(&SkyLevels::measure([[110, 92, 80]; 4]), &off), Ok(()));
+        assert_eq!(judge_sky(&SkyLevels::measure([[250, 250, 250]; 4]), &qc).unwrap_err().code(), "over_exposed");
+    }
+
+    #[test]
+    fn the_sun_below_the_limit_is_refused_by_time() {
+        let site = crate::sun::Observer::new(1.34, 103.68, 0.0);
+        let noon = chrono::DateTime::parse_from_rfc3339("2016-01-10T12:20:00+08:00").unwrap().to_utc();
+        let night = chrono::DateTime::parse_from_rfc3339("2016-01-10T01:20:00+08:00").unwrap().to_utc();
+        assert!(judge_sun(&noon, &site, 5.0).is_ok());
+        match judge_sun(&night, &site, 5.0) {
+            Err(Rejection::SunTooLow(e)) => assert!(e < -30.0, "{e}"),
+            other => panic!("{other:?}"),
+        }
+    }
 }
 
 #[cfg(test)]

@@ -60,35 +60,15 @@ impl FrameQcStage {
                 return Err(Rejection::OutOfOrder);
             }
         }
-        let sun = crate::sun::position(&frame.time, observer).map_err(|e| Rejection::Unreadable(e.to_string()))?;
-        let elev = sun.elevation_rad().to_degrees();
-        if elev < min_sun_elevation_deg {
-            return Err(Rejection::SunTooLow(elev));
-        }
+        let sun = crate::qc::judge_sun(&frame.time, observer, min_sun_elevation_deg)?;
         Ok((sun, reduced))
     }
 
-    /// Exposure over the map's pixels: the mean level and the share of saturated pixels (every
-    /// fifth map pixel) against [`crate::qc::QcParams`].
+    /// Exposure and colour over the map's pixels (every fifth map pixel): the mean level, the
+    /// share of saturated pixels and the mean red over blue, judged by [`crate::qc::judge_sky`].
     pub(super) fn check_exposure(&self, pixels: &CellPixels, lut: &crate::cloudmap::Lut, qc: &crate::qc::QcParams) -> Result<(), Rejection> {
-        let (mut sum, mut sat, mut n) = (0f64, 0usize, 0usize);
-        for (&p, &[r, g, b]) in lut.pixel.iter().zip(&pixels.nearest).step_by(5) {
-            if p == crate::cloudmap::NO_PIXEL {
-                continue;
-            }
-            sum += (r as f64 + g as f64 + b as f64) / 3.0;
-            sat += (r >= 250 && g >= 250 && b >= 250) as usize;
-            n += 1;
-        }
-        let mean = if n > 0 { sum / n as f64 } else { 0.0 };
-        let sat_share = if n > 0 { sat as f64 / n as f64 } else { 0.0 };
-        if mean < qc.min_mean_level {
-            return Err(Rejection::UnderExposed(mean));
-        }
-        if mean > qc.max_mean_level || sat_share > qc.max_saturated_fraction {
-            return Err(Rejection::OverExposed(mean, sat_share));
-        }
-        Ok(())
+        let seen = lut.pixel.iter().zip(&pixels.nearest).step_by(5).filter(|(p, _)| **p != crate::cloudmap::NO_PIXEL).map(|(_, rgb)| *rgb);
+        crate::qc::judge_sky(&crate::qc::SkyLevels::measure(seen), qc)
     }
 
     /// Seconds since the newest accepted frame.

@@ -60,6 +60,14 @@ pub enum Rejection {
     /// Too dark.
     #[error("under-exposed (mean level {0:.0})")]
     UnderExposed(f64),
+    /// The sky reads redder than any daylight sky ([`crate::qc::QcParams::max_sky_red_blue`]).
+    #[error("not daylight: the sky reads mean red/blue {red_blue:.2}, above the limit {limit:.2} (a night sky under artificial light, not a daytime one)")]
+    NotDaylight {
+        /// Mean red over mean blue of the sky pixels.
+        red_blue: f64,
+        /// The limit `qc.max_sky_red_blue`.
+        limit: f64,
+    },
     /// Too bright.
     #[error("over-exposed (mean level {0:.0}, saturated share {1:.2})")]
     OverExposed(f64, f64),
@@ -90,6 +98,7 @@ impl Rejection {
             Rejection::SunTooLow(_) => "sun_too_low",
             Rejection::UnderExposed(_) => "under_exposed",
             Rejection::OverExposed(..) => "over_exposed",
+            Rejection::NotDaylight { .. } => "not_daylight",
             Rejection::NoCloudBase => "no_cloud_base",
             Rejection::Intake(e) => e.code(),
             Rejection::AheadOfClock { .. } => "ahead_of_clock",
