@@ -45,6 +45,9 @@ import tomllib
 import numpy as np
 import pandas as pd
 
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from scene_probes import FrameGeometry, reencoded  # noqa: E402
+
 BANDS = [(0, 40), (40, 50), (50, 60), (60, 70), (70, 80), (80, 88.0001)]
 BAND_NAMES = ["<40", "40-50", "50-60", "60-70", "70-80", "80-88"]
 HORIZONS = list(range(1, 16))
@@ -103,37 +106,35 @@ def matrix_from_euler(roll, pitch, yaw):
     return Rz @ Ry @ Rx
 
 
-# Set by --mirror: the frames the engine reads are flipped left-right, so every true pixel column x
-# becomes width - 1 - x (the truth files themselves are never changed).
-MIRROR = False
-# Set by --pad: (left, top, right, bottom) pixels added to every frame (negative: cropped), so a
-# true pixel (x, y) becomes (x + left, y + top).
-PAD = (0, 0, 0, 0)
-# Set by --scale: every frame resized by this factor first (before PAD), so a true pixel x becomes
-# (x + 0.5) * SCALE - 0.5.
-SCALE = 1.0
-
-
-def scaled(v):
-    return (v + 0.5) * SCALE - 0.5
+# Set per camera from --mirror, --flip-vertical, --rotate, --scale, --pad and --crop: how the frames
+# the engine reads were changed (tools/scene_probes.py), so that every true pixel can be moved to
+# match (the truth files themselves are never changed). None: the frames as shipped.
+GEOM = None
 
 
 def true_pixels(sc, true_cam, d):
-    """The true camera's pixels of directions `d` (flipped left-right under --mirror)."""
+    """The true camera's pixels of directions `d`, moved as the probes moved the frames (NaN where
+    the changed frame no longer holds them)."""
     tx, ty = sc.project_enu(true_cam, d)
-    if MIRROR:
-        tx = (true_cam["width"] - 1) - tx
-    return scaled(tx) + PAD[0], scaled(ty) + PAD[1]
+    return GEOM.points(tx, ty) if GEOM is not None else (tx, ty)
 
 
 def calibration_from_truth(cam):
-    """truth/camera.json -> the [camera] table of a nephocast calibration file."""
+    """truth/camera.json -> the [camera] table of a nephocast calibration file (of the frames as the
+    probes changed them: a mirror or flip sets `mirrored`, a turn of the frame turns the camera
+    about its optical axis, a resize scales the focal length)."""
     roll, pitch, yaw = euler_from_matrix(cam["R_cam_to_enu"])
     c = calibration_from_truth_upright(cam, roll, pitch, yaw)
-    if MIRROR:
-        c.update(cx_px=float(cam["width"] - 1 - cam["cx"]), mirrored=True)
-    c.update(cx_px=scaled(c["cx_px"]) + PAD[0], cy_px=scaled(c["cy_px"]) + PAD[1], f_px_per_rad=c["f_px_per_rad"] * SCALE,
-             width_px=round(c["width_px"] * SCALE) + PAD[0] + PAD[2], height_px=round(c["height_px"] * SCALE) + PAD[1] + PAD[3])
+    if GEOM is None:
+        return c
+    k, mirrored, alpha = GEOM.camera_change()
+    R = np.asarray(cam["R_cam_to_enu"], float) @ matrix_from_euler(0.0, 0.0, -alpha)
+    roll, pitch, yaw = euler_from_matrix(R)
+    cx, cy = GEOM.points([cam["cx"]], [cam["cy"]], inside=False)
+    c.update(cx_px=float(cx[0]), cy_px=float(cy[0]), f_px_per_rad=c["f_px_per_rad"] * k, width_px=GEOM.size[0],
+             height_px=GEOM.size[1], yaw_deg=yaw, pitch_deg=pitch, roll_deg=roll)
+    if mirrored:
+        c["mirrored"] = True
     return c
 
 
@@ -318,14 +319,10 @@ def detection_lean(detections_csv, truth_csv, true_cam):
     of the image radius (a lean common to all detections is a focal-length error to the fit)."""
     d = pd.read_csv(detections_csv)
     t = pd.read_csv(truth_csv)[["time", "sun_px_x", "sun_px_y"]]
-    cx = true_cam["cx"]
-    cy = true_cam["cy"]
-    if MIRROR:
-        t["sun_px_x"] = (true_cam["width"] - 1) - t["sun_px_x"]
-        cx = (true_cam["width"] - 1) - cx
-    t["sun_px_x"] = scaled(t["sun_px_x"]) + PAD[0]
-    t["sun_px_y"] = scaled(t["sun_px_y"]) + PAD[1]
-    cx, cy = scaled(cx) + PAD[0], scaled(cy) + PAD[1]
+    cx, cy = true_cam["cx"], true_cam["cy"]
+    if GEOM is not None:
+        t["sun_px_x"], t["sun_px_y"] = GEOM.points(t["sun_px_x"].to_numpy(), t["sun_px_y"].to_numpy(), inside=False)
+        (cx,), (cy,) = GEOM.points([cx], [cy], inside=False)
     m = d.merge(t, left_on="time_utc", right_on="time")
     ux, uy = m.sun_px_x - cx, m.sun_px_y - cy
     r = np.hypot(ux, uy)
@@ -586,13 +583,21 @@ def run_camera(a, camera, sc, yard, log, res):
     # The frames the engine reads: as shipped, or re-encoded at another JPEG quality.
     frames_of = {d: os.path.join(d, "input", "frames") for d in (clear, cloudy)}
     gains = tuple(float(v) for v in a.cloudy_gain.split(",")) if a.cloudy_gain else None
-    if a.jpeg_quality or a.mirror or any(PAD) or SCALE != 1.0 or a.stamp or gains:
+    global GEOM
+    GEOM = FrameGeometry(site_json["image_width"], site_json["image_height"], a.mirror, a.flip_vertical, a.rotate, a.scale,
+                         a.pad_total, circle=(true_cam["cx"], true_cam["cy"], true_cam["r_max_px"]))
+    if not GEOM.changed:
+        GEOM = None
+    else:
+        res["frame_geometry"] = dict(size_px=list(GEOM.size), affine=GEOM.A[:2].tolist(), rotate_deg=a.rotate,
+                                     flip_vertical=a.flip_vertical, mirror=a.mirror, scale=a.scale, pad_total=list(a.pad_total))
+    if a.jpeg_quality or GEOM is not None or a.stamp or gains:
         q = a.jpeg_quality or 95
         for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
             g = gains if d == cloudy else None
-            frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + ("-mirrored" if a.mirror else "")
-                                                                  + ("-pad" if any(PAD) else "") + (f"-x{SCALE:g}" if SCALE != 1.0 else "") + (f"-stamp-{a.stamp}" if a.stamp else "") + ("-gain" if g else "")),
-                                    a.mirror, PAD, SCALE, a.stamp, g)
+            frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + (GEOM.tag() if GEOM else "")
+                                                                  + (f"-stamp-{a.stamp}" if a.stamp else "") + ("-gain" if g else "")),
+                                    GEOM, a.stamp, g)
 
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
@@ -603,8 +608,7 @@ def run_camera(a, camera, sc, yard, log, res):
         ph = os.path.join(work, "placeholder.toml")
         with open(ph, "w") as f:
             f.write("# Placeholder: `calibrate` loads the site file, which must name a calibration.\n")
-            f.write(toml_table("camera", placeholder_calibration(round(site_json["image_width"] * SCALE) + PAD[0] + PAD[2],
-                                                                  round(site_json["image_height"] * SCALE) + PAD[1] + PAD[3])))
+            f.write(toml_table("camera", placeholder_calibration(*(GEOM.size if GEOM else (site_json["image_width"], site_json["image_height"])))))
         cal_site = os.path.join(work, "site-calibrate.toml")
         write_site(cal_site, read_json(os.path.join(clear, "input", "site.json")), ceil(clear), ph, pyr, a.calibrate_set)
         frames = clear_frames_subset(frames_of[clear], a.clear_subset, os.path.join(work, "clear-frames"),
@@ -886,43 +890,6 @@ def clear_frames_subset(frames, subset, out, site=None, low_sun_zenith_deg=LOW_S
     return out
 
 
-def reencoded(frames, quality, out, mirror=False, pad=(0, 0, 0, 0), scale=1.0, stamp=None, gains=None):
-    """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
-    to compress harder (or softer) than the scenes' own; with `mirror`, also flipped left-right;
-    with `pad` (left, top, right, bottom), black borders added (negative: rows or columns cut); with
-    `scale`, resized first (OpenCV, area averaging down, bicubic up); with `stamp` ("corner" or
-    "inside"), the frame's time burnt in as white text, in the top-left corner outside the image
-    circle or inside the circle near its bottom rim, as many cameras do; with `gains` (R, G, B), each
-    channel multiplied (clipped at 255): another exposure or white balance. Pixels clipped in every
-    channel (all at least 250: the sun and its bloom, far brighter than the sensor's saturation)
-    stay white, as a camera's clipped highlights do whatever its gains (a gain below 1 on the
-    decoded values would otherwise leave the sun's disk short of clipping in that channel)."""
-    import cv2
-    os.makedirs(out, exist_ok=True)
-    for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
-        img = cv2.imread(os.path.join(frames, name), cv2.IMREAD_COLOR)
-        if mirror:
-            img = cv2.flip(img, 1)
-        if gains:
-            clipped = (img >= 250).all(axis=2)
-            img = np.clip(img.astype(np.float32) * np.array(gains[::-1], np.float32), 0, 255).round().astype(np.uint8)
-            img[clipped] = 255
-        if scale != 1.0:
-            img = cv2.resize(img, (round(img.shape[1] * scale), round(img.shape[0] * scale)),
-                             interpolation=cv2.INTER_AREA if scale < 1 else cv2.INTER_CUBIC)
-        if stamp:
-            text = f"{name[0:4]}-{name[4:6]}-{name[6:8]} {name[9:11]}:{name[11:13]}:{name[13:15]}"
-            hh, ww = img.shape[:2]
-            org = (5, 20) if stamp == "corner" else (int(0.29 * ww), int(0.92 * hh)) if stamp == "inside" else (int(0.29 * ww), int(0.10 * hh))
-            cv2.putText(img, text, org, cv2.FONT_HERSHEY_SIMPLEX, 0.5 * ww / 512, (255, 255, 255), 2)
-        if any(pad):
-            l, t, r, b = pad
-            img = img[max(0, -t):img.shape[0] - max(0, -b), max(0, -l):img.shape[1] - max(0, -r)]
-            img = cv2.copyMakeBorder(img, max(0, t), max(0, b), max(0, l), max(0, r), cv2.BORDER_CONSTANT, value=(0, 0, 0))
-        cv2.imwrite(os.path.join(out, name), img, [cv2.IMWRITE_JPEG_QUALITY, int(quality)])
-    return out
-
-
 def every_nth_frame(frames, n, out):
     """Every `n`-th frame of the cloudy scene linked into `out` (a camera that takes frames less
     often; the forecasts are then issued, and scored, at those frames only)."""
@@ -968,6 +935,18 @@ def main():
                     help="LEFT,TOP,RIGHT,BOTTOM pixels of black border added to every frame (negative: cut off), e.g. a "
                          "wider sensor (64,0,64,0) or a full-frame fisheye whose image circle is clipped (0,-40,0,-40); "
                          "re-encoded at --jpeg-quality or 95, the true pixels moved to match")
+    ap.add_argument("--flip-vertical", action="store_true",
+                    help="flip every frame upside down (--mirror is left-right only; both together are a half turn), "
+                         "re-encoded at --jpeg-quality or 95, the true pixels flipped to match")
+    ap.add_argument("--rotate", type=float, default=0.0, metavar="DEG",
+                    help="turn every frame counter-clockwise by DEG about its centre (a camera mounted with another "
+                         "azimuth about its optical axis): multiples of 90 exactly (pixels moved, not resampled), other "
+                         "angles bicubic on a canvas of the same size when the true image circle still fits in it, else "
+                         "on the turned frame's bounding box; re-encoded at --jpeg-quality or 95, the true pixels moved to match")
+    ap.add_argument("--crop", default="0,0,0,0",
+                    help="LEFT,TOP,RIGHT,BOTTOM pixels cut from every frame's edges after --pad's border (the same as a "
+                         "negative --pad): a sensor that clips the image circle, e.g. a 4:3 frame from the 512² scenes "
+                         "(0,48,0,48); re-encoded at --jpeg-quality or 95, the true pixels moved to match")
     ap.add_argument("--scale", type=float, default=1.0,
                     help="resize every frame by this factor (a camera of higher or lower resolution; 2: 1024²), "
                          "re-encoded at --jpeg-quality or 95, the true pixels moved to match")
@@ -1002,12 +981,13 @@ def main():
                     help="with --clear-subset low-sun, the sun's zenith angle [deg] beyond which a frame is kept (default 50)")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
-    global MIRROR, PAD, SCALE
-    MIRROR = a.mirror
-    SCALE = a.scale
-    PAD = tuple(int(v) for v in a.pad.split(","))
-    if len(PAD) != 4:
-        ap.error("--pad takes four integers: LEFT,TOP,RIGHT,BOTTOM")
+    pad = tuple(int(v) for v in a.pad.split(","))
+    crop = tuple(int(v) for v in a.crop.split(","))
+    if len(pad) != 4 or len(crop) != 4:
+        ap.error("--pad and --crop take four integers: LEFT,TOP,RIGHT,BOTTOM")
+    if min(crop) < 0:
+        ap.error("--crop takes pixels to cut (not negative; --pad adds a border)")
+    a.pad_total = tuple(p - c for p, c in zip(pad, crop))
     if a.causal_measurements and not any(kv.split("=", 1)[0].strip() == "measurements.time_label" for kv in a.set):
         a.set.append('measurements.time_label="end"')
     if not a.scenes or not os.path.isdir(a.scenes):
@@ -1050,6 +1030,7 @@ def main():
     if a.json:
         with open(a.json, "w") as f:
             json.dump(dict(camera_from=a.camera_from, causal_measurements=a.causal_measurements, mirror=a.mirror, pad=a.pad, scale=a.scale,
+                           flip_vertical=a.flip_vertical, rotate_deg=a.rotate, crop=a.crop,
                            stamp=a.stamp, measurement_shift_min=a.measurement_shift_min, bin=a.bin, scenes=a.scenes, yardsticks=yard,
                            commands=log, cameras=results, summary_markdown=text), f, indent=1, default=str)
     return 0

@@ -9,7 +9,8 @@ use super::clip::ClipTest;
 use crate::camera::{Camera, Orientation, Projection};
 
 /// Find the sun disk in a frame, its clipped core judged by `clip`. `radius_px` is the image
-/// circle's radius. Returns (column, row, pixels used for the centroid).
+/// circle's radius. Returns (column, row, pixels used for the centroid); `None` also when the
+/// clipped core touches the frame's edge (cut by the frame, its centroid is not the sun's).
 pub fn detect_sun(img: &image::RgbImage, radius_px: f64, clip: ClipTest) -> Option<(f64, f64, usize)> {
     let (cx, cy, n) = find_sun_blob(img, clip, clip.core_level(), 3, 0.05 * radius_px)?;
     let r = 0.05 * radius_px;
@@ -31,6 +32,7 @@ pub fn detect_sun(img: &image::RgbImage, radius_px: f64, clip: ClipTest) -> Opti
     let (y0, y1) = (((cy - rr).floor().max(0.0)) as u32, ((cy + rr).ceil() as u32).min(h - 1));
     let (x0, x1) = (((cx - rr).floor().max(0.0)) as u32, ((cx + rr).ceil() as u32).min(w - 1));
     let (mut sx, mut sy, mut k) = (0.0, 0.0, 0usize);
+    let mut on_border = false;
     for y in y0..=y1 {
         let row: Vec<u32> = (x0..=x1).filter(|&x| clip.clipped(img.get_pixel(x, y).0)).collect();
         if row.len() >= 3 {
@@ -38,10 +40,14 @@ pub fn detect_sun(img: &image::RgbImage, radius_px: f64, clip: ClipTest) -> Opti
                 sx += *x as f64;
                 sy += y as f64;
                 k += 1;
+                on_border |= *x == 0 || y == 0 || *x == w - 1 || y == h - 1;
             }
         }
     }
-    (k >= 3).then(|| (sx / k as f64, sy / k as f64, k))
+    // A clipped disc that reaches the frame's edge is cut by it (a sensor that clips the image
+    // circle): its centroid leans away from the edge, or it is the glare of a sun outside the
+    // frame altogether. Such a frame gives no detection.
+    (k >= 3 && !on_border).then(|| (sx / k as f64, sy / k as f64, k))
 }
 
 /// Area \[px\] of the 4-connected clipped blob (the sun's core by `clip`) nearest to (x, y),
@@ -373,6 +379,56 @@ mod tests {
         assert!((x - 120.0).abs() < 0.2 && (y - 80.0).abs() < 0.2, "{x},{y}");
         // The blob: the disc (45 lattice points with x² + y² < 16) and the 26 streak pixels below it.
         assert_eq!(saturated_blob_area(&img, x, y, 5.0, ClipTest::Channels), 45 + 26);
+    }
+
+    /// A sun disc (radius 4 px) with a wider glare, on a blue sky: found where the frame holds it,
+    /// refused where the frame's edge cuts its clipped core (its centroid would lean away from the
+    /// edge), or where only the glare of a sun beyond the edge reaches into the frame.
+    #[test]
+    fn a_sun_cut_by_the_frame_is_not_detected() {
+        let frame = |sx: f64, sy: f64| {
+            image::RgbImage::from_fn(200, 150, |x, y| {
+                let r = (x as f64 - sx).hypot(y as f64 - sy);
+                if r < 4.0 {
+                    image::Rgb([255, 255, 255])
+                } else {
+                    let g = (250.0 - 12.0 * (r - 4.0)).max(0.0);
+                    image::Rgb([(60.0 + g).min(249.0) as u8, (90.0 + g).min(249.0) as u8, (160.0 + g).min(249.0) as u8])
+                }
+            })
+        };
+        let (x, y, _) = detect_sun(&frame(100.0, 8.0), 100.0, ClipTest::Channels).expect("a whole disc near the edge");
+        assert!((x - 100.0).abs() < 0.2 && (y - 8.0).abs() < 0.2, "{x},{y}");
+        assert_eq!(detect_sun(&frame(100.0, 1.5), 100.0, ClipTest::Channels), None, "the top edge cuts the disc");
+        assert_eq!(detect_sun(&frame(198.0, 70.0), 100.0, ClipTest::Channels), None, "the right edge cuts the disc");
+        assert_eq!(detect_sun(&frame(100.0, 149.0), 100.0, ClipTest::Channels), None, "the bottom edge cuts the disc");
+    }
+
+    /// A sky disc of radius 240 px centred in a 512² frame, cut to 4:3 (512×416) and to 16:9
+    /// (512×288) as sensors that clip the image circle do: the lens edge is still found on the
+    /// rays the frame leaves, and the circle from it, where the area of the lit pixels is far off.
+    #[test]
+    fn image_circle_of_a_cut_circle() {
+        let (cx, cy, radius) = (255.3, 257.6, 240.0);
+        let full = image::RgbImage::from_fn(512, 512, |x, y| {
+            let r = (x as f64 - cx).hypot(y as f64 - cy);
+            if r < radius {
+                let v = (170.0 - 60.0 * r / radius) as u8;
+                image::Rgb([v / 2, v / 2 + v / 4, v])
+            } else {
+                image::Rgb([3, 3, 3])
+            }
+        });
+        for cut in [48u32, 112] {
+            let img = image::imageops::crop_imm(&full, 0, cut, 512, 512 - 2 * cut).to_image();
+            let rough = fit_image_circle(&img).unwrap();
+            assert!((rough.radius_px - radius).abs() > 5.0, "the lit area is biased on a cut circle: {rough:?}");
+            let c = refine_image_circle(&img, rough).expect("the edge on the rays the frame leaves");
+            let want_cy = cy - cut as f64;
+            assert!((c.cx_px - cx).abs() < 0.7 && (c.cy_px - want_cy).abs() < 0.7 && (c.radius_px - radius).abs() < 0.7, "cut {cut}: {c:?}");
+            let e = sky_edge_circle(&img, rough).expect("the sky's edge on the rays the frame leaves");
+            assert!((e.cx_px - cx).abs() < 0.7 && (e.cy_px - want_cy).abs() < 0.7 && (e.radius_px - radius).abs() < 0.7, "cut {cut}: {e:?}");
+        }
     }
 
     fn det(blob: usize) -> Detection {

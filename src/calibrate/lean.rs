@@ -122,8 +122,9 @@ pub struct GlareLevel {
 /// The nested level sets (`LEVELS`, 236–252) of the glare around `(x, y)`: for each level, the 4-connected
 /// component of pixels at least that (by `clip`: in every channel, or the luma) that holds the pixel nearest `(x, y)` (or the
 /// nearest such pixel within 2 px), over its rows at least three pixels wide. A level whose
-/// component reaches `reach_px` from `(x, y)` (the glare runs into bright cloud or the frame) or has
-/// fewer than `MIN_AREA_PX` (9) pixels is left out.
+/// component reaches `reach_px` from `(x, y)` (the glare runs into bright cloud or the frame),
+/// touches the frame's edge (a sensor that cuts the image circle cuts the glare, and its centroid
+/// leans away from the edge) or has fewer than `MIN_AREA_PX` (9) pixels is left out.
 pub fn glare_levels(img: &image::RgbImage, x: f64, y: f64, reach_px: f64, clip: super::clip::ClipTest) -> Vec<GlareLevel> {
     let (w, h) = img.dimensions();
     let reach = reach_px.ceil().max(3.0) as i64;
@@ -131,22 +132,26 @@ pub fn glare_levels(img: &image::RgbImage, x: f64, y: f64, reach_px: f64, clip: 
     let side = (2 * reach + 1) as usize;
     // The window's darkest channel, so that every level is one comparison.
     let mut low = vec![0u8; side * side];
+    let mut outside = vec![false; side * side];
     for dy in -reach..=reach {
         for dx in -reach..=reach {
             let (px, py) = (xi + dx, yi + dy);
+            let i = ((dy + reach) as usize) * side + (dx + reach) as usize;
             if px >= 0 && py >= 0 && px < w as i64 && py < h as i64 {
-                low[((dy + reach) as usize) * side + (dx + reach) as usize] = clip.value(img.get_pixel(px as u32, py as u32).0);
+                low[i] = clip.value(img.get_pixel(px as u32, py as u32).0);
+            } else {
+                outside[i] = true;
             }
         }
     }
-    LEVELS.iter().filter_map(|&level| level_set(&low, side, reach, level).map(|(n, sx, sy, r2)| GlareLevel { level_dn: level, r2_px2: r2, x_px: (xi - reach) as f64 + sx / n, y_px: (yi - reach) as f64 + sy / n })).collect()
+    LEVELS.iter().filter_map(|&level| level_set(&low, &outside, side, reach, level).map(|(n, sx, sy, r2)| GlareLevel { level_dn: level, r2_px2: r2, x_px: (xi - reach) as f64 + sx / n, y_px: (yi - reach) as f64 + sy / n })).collect()
 }
 
 /// One level set in the window `low` (side × side, centred): (pixels, Σx, Σy, radius²) in window
 /// coordinates, or `None` (see [`glare_levels`]). Runs of fewer than three pixels along a row are
 /// cleared before the component is traced, so that a blooming column neither pulls the centroid
 /// nor joins the glare to the window's edge.
-fn level_set(low: &[u8], side: usize, reach: i64, level: u8) -> Option<(f64, f64, f64, f64)> {
+fn level_set(low: &[u8], outside: &[bool], side: usize, reach: i64, level: u8) -> Option<(f64, f64, f64, f64)> {
     let c = reach as usize;
     let mut mask: Vec<bool> = low.iter().map(|v| *v >= level).collect();
     for row in mask.chunks_mut(side) {
@@ -178,6 +183,9 @@ fn level_set(low: &[u8], side: usize, reach: i64, level: u8) -> Option<(f64, f64
         sx += x as f64;
         sy += y as f64;
         for (nx, ny) in [(x + 1, y), (x - 1, y), (x, y + 1), (x, y - 1)] {
+            if outside[ny * side + nx] {
+                return None; // the frame's edge cuts this level set: its centroid leans
+            }
             if !seen[ny * side + nx] && mask[ny * side + nx] {
                 seen[ny * side + nx] = true;
                 stack.push((nx, ny));
@@ -336,6 +344,23 @@ mod tests {
         let lean = |l: &GlareLevel| (l.x_px - 48.3) * u.0 + (l.y_px - 47.6) * u.1;
         assert!(lean(&levels[0]) > lean(&levels[levels.len() - 1]) + 0.2, "the larger level set leans further");
         assert!(own_slope(&levels, u, LeanModel::Area).unwrap() > 0.0);
+    }
+
+    /// Level sets the frame's edge cuts are left out (their centroids lean away from the edge);
+    /// those the frame holds are kept, where they are when the frame is wider.
+    #[test]
+    fn level_sets_cut_by_the_frame_are_left_out() {
+        let img = glare(48.3, 47.6, (1.0, 0.0), 0.0);
+        let whole = glare_levels(&img, 48.0, 48.0, 30.0, super::super::clip::ClipTest::Channels);
+        // The same glare in a frame whose top edge is 8 rows above the sun.
+        let cut = image::imageops::crop_imm(&img, 0, 40, 96, 56).to_image();
+        let levels = glare_levels(&cut, 48.0, 8.0, 30.0, super::super::clip::ClipTest::Channels);
+        assert!(!levels.is_empty() && levels.len() < whole.len(), "{} of {}", levels.len(), whole.len());
+        for l in &levels {
+            let w = whole.iter().find(|w| w.level_dn == l.level_dn).unwrap();
+            assert!((l.x_px - w.x_px).abs() < 1e-9 && (l.y_px + 40.0 - w.y_px).abs() < 1e-9, "{l:?} vs {w:?}");
+            assert!(l.y_px - l.r2_px2.sqrt() > 0.0, "a kept level lies inside the frame: {l:?}");
+        }
     }
 
     #[test]
