@@ -79,6 +79,18 @@ fn scenes_or_skip() -> Option<PathBuf> {
     Some(scenes)
 }
 
+/// Whether the scenes folder holds `camera`'s clear day: tests that probe one named camera of the
+/// shared set say so and skip where another set of scenes (e.g. a held-out one) has no such camera.
+fn has_camera(scenes: &std::path::Path, camera: &str) -> bool {
+    let found = std::fs::read_dir(scenes)
+        .map(|d| d.flatten().any(|e| e.file_name().to_string_lossy().starts_with(&format!("{camera}-")) && e.file_name().to_string_lossy().ends_with("clear-day")))
+        .unwrap_or(false);
+    if !found {
+        eprintln!("skipped: {} holds no {camera}-…clear-day folder (this check probes that camera of the shared scenes)", scenes.display());
+    }
+    found
+}
+
 /// Runs the committed harness with the camera from `calibrate` and extra arguments; its JSON.
 fn run_harness(scenes: &std::path::Path, extra: &[&str]) -> Value {
     let work = tempfile::tempdir().unwrap();
@@ -250,6 +262,10 @@ fn time_stamps_burnt_into_the_frames() {
     for c in r["cameras"].as_array().unwrap() {
         check_calibration(&format!("{} (time stamp in the corner)", c["camera"].as_str().unwrap()), &c["calibration"], &mut failures);
     }
+    if !has_camera(&scenes, "camera2") {
+        assert!(failures.is_empty(), "{failures:#?}");
+        return;
+    }
     let pooled = |extra: &[&str]| {
         let r = run_harness(&scenes, &[&["--cameras", "camera2"], extra].concat());
         let c = &r["cameras"][0];
@@ -351,6 +367,9 @@ fn without_pyranometers() {
 #[test]
 fn a_changed_white_balance_is_followed() {
     let Some(scenes) = scenes_or_skip() else { return };
+    if !has_camera(&scenes, "camera1") {
+        return;
+    }
     let r = run_harness(&scenes, &["--cameras", "camera1", "--no-measurements", "--cloudy-gain", "1.08,1,0.93"]);
     let mut failures = vec![];
     let c = &r["cameras"][0];
@@ -390,6 +409,9 @@ fn a_changed_white_balance_is_followed() {
 #[test]
 fn a_brighter_exposure_is_judged_past_the_clipping() {
     let Some(scenes) = scenes_or_skip() else { return };
+    if !has_camera(&scenes, "camera2") {
+        return;
+    }
     let r = run_harness(&scenes, &["--cameras", "camera2", "--no-measurements", "--cloudy-gain", "1.2,1.2,1.2"]);
     let c = &r["cameras"][0];
     let rc = &c["replay_cloudy"];
@@ -419,6 +441,9 @@ fn a_brighter_exposure_is_judged_past_the_clipping() {
 #[test]
 fn a_darker_exposure_keeps_the_dark_cloud_test() {
     let Some(scenes) = scenes_or_skip() else { return };
+    if !has_camera(&scenes, "camera2") {
+        return;
+    }
     let r = run_harness(&scenes, &["--cameras", "camera2", "--cloudy-gain", "0.8,0.8,0.8"]);
     let rc = &r["cameras"][0]["replay_cloudy"];
     assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
