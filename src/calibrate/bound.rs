@@ -78,8 +78,12 @@ pub(super) fn coverage_of(dets: &[Detection]) -> Coverage {
     let mut az: Vec<f64> = used.iter().map(|u| u.1.rem_euclid(360.0)).collect();
     az.sort_by(f64::total_cmp);
     let mut gap: f64 = 360.0 - (az[az.len() - 1] - az[0]);
+    let mut from = az[0];
     for w in az.windows(2) {
-        gap = gap.max(w[1] - w[0]);
+        if w[1] - w[0] > gap {
+            gap = w[1] - w[0];
+            from = w[1];
+        }
     }
-    Coverage { zenith_min_deg: zmin, zenith_max_deg: zmax, azimuth_span_deg: 360.0 - gap }
+    Coverage { zenith_min_deg: zmin, zenith_max_deg: zmax, azimuth_span_deg: 360.0 - gap, azimuth_from_deg: from }
 }

@@ -108,6 +108,11 @@ pub struct FitRecord {
     /// What the fit could not vouch for (read back and repeated when the file is used).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub warnings: Vec<String>,
+    /// Parameters held by the image circle, not fitted to the detections (the principal point of a
+    /// fit from few detections); their standard errors are the circle's uncertainty, and they do
+    /// not count as free parameters.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub held: Vec<String>,
 }
 
 /// Fewest sun detections per free parameter of a fit (each gives two residuals; common practice,
@@ -132,7 +137,12 @@ impl FitRecord {
     /// The first field that fails, naming `file`.
     pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
         let c = Check { file };
-        let free = self.std_errors.len();
+        for name in &self.held {
+            if !self.std_errors.contains_key(name) {
+                return Err(c.invalid("fit.held", "names of parameters listed in fit.std_errors", name.clone()));
+            }
+        }
+        let free = self.std_errors.keys().filter(|k| !self.held.contains(k)).count();
         let needed = (MIN_DETECTIONS_PER_PARAMETER * free).max(MIN_FIT_DETECTIONS);
         if self.detections < needed {
             return Err(c.invalid(
