@@ -497,7 +497,7 @@ fn scattered_slow_end_to_end_with_calibrated_camera() {
 
 /// The nuisance camera's winter clear day (`nuisance-winter-clear-day`, 15 December at the site's
 /// 37.4° N: one low arc of the sun through the south, zenith 60.7° at noon), through JPEG, rendered
-/// only where `calibrate` looks (the sun at least 20° up: 31 of its 56 frames, zenith 60.7–70°).
+/// only where `calibrate` looks (the sun at least 20° up: 30 of its 56 frames, zenith 60.7–70°).
 fn winter_frames() -> (Scene, Vec<(DateTime<Utc>, image::RgbImage)>) {
     let s = Scene::new(scene("nuisance-winter-clear-day").unwrap(), 1).unwrap();
     let rays = PixelRays::new(&s.camera);

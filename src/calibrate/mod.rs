@@ -45,6 +45,17 @@
 //!    warns where the map reaches beyond what they constrain.
 //! 8. **Checks before writing**: a camera the site loader would refuse (or with tilt beyond 20°, or
 //!    detections spanning under 20° of azimuth) is an error, never a file.
+//! 9. **Few detections** (a winter day's low arc): from [`HELD_FIT_DETECTIONS`] (12) up to what a
+//!    free fit needs (`min_detections`, 20, and three per parameter), the fit is *held* to the
+//!    image circle: the principal point stays at its centre (its σ enters the covariance only), the
+//!    lens is one of the ideal families, a bloom lean only from 15 detections, and of the glare-lean
+//!    forms that earn their place the one that moves the detections least (with the centre held
+//!    and no bloom lean, a correction that goes too far reads as focal length). Each family's fit
+//!    with the centre free stands in the bound as a competitor, and the bound's radial allowance
+//!    grows by [`HELD_RADIAL_SCALE`]. The fit names the held parameters (`fit.held`, not counted as
+//!    free by the loader) and warns which part of the sky its detections constrain (as does any
+//!    fit whose detections span under [`NARROW_ZENITH_SPAN_DEG`] of zenith). Fewer than 12 are
+//!    refused with the reason.
 //!
 //! The projection is [`Camera`]'s, the same code the pipeline uses.
 //!
@@ -68,7 +79,8 @@ mod fit;
 mod lean;
 mod overlay;
 mod outputs;
-use bound::{bound_table, coverage_of};
+use bound::{bound_table, coverage_of, reach_warnings, sky_warning};
+pub use bound::NARROW_ZENITH_SPAN_DEG;
 use families::LeanCandidate;
 use fit::{CentrePrior, Problem, finish, held_out, problem, solve, start_params, weighted_rms, with_lean};
 pub use fit::fit_detections;
@@ -623,56 +635,6 @@ fn systematic_scale(dets: &[Detection], camera: &Camera, best_cv: f64) -> f64 {
     radii.sort_by(f64::total_cmp);
     let r_med = radii[radii.len() / 2].max(1.0);
     best_cv.max(0.05 * disc_r) / r_med
-}
-
-/// Detections over less than this span of zenith angle \[°\] see the lens's radial function over a
-/// narrow band only (a winter day's single low arc): the calibration says which part of the sky
-/// they constrain.
-pub const NARROW_ZENITH_SPAN_DEG: f64 = 20.0;
-
-/// Say which part of the sky the detections constrain when they are few (the fit held to the image
-/// circle) or cover a narrow band of zenith angle; `None` otherwise.
-fn sky_warning(fit: &Fit, n: usize, options: &CalibrateOptions) -> Option<String> {
-    let c = &fit.coverage;
-    let narrow = c.zenith_max_deg - c.zenith_min_deg < NARROW_ZENITH_SPAN_DEG;
-    if !(narrow || options.hold_centre) {
-        return None;
-    }
-    let held = if options.hold_centre {
-        format!(
-            "calibrated from {n} sun detections, fewer than a free fit needs ({}): the principal point is held at the image circle's centre (±{:.1} px in the bound) and the lens to an ideal family ({}); ",
-            options.min_detections.max(FREE_FIT_PARAMETERS * crate::config::MIN_DETECTIONS_PER_PARAMETER),
-            options.centre_prior_px.unwrap_or(HELD_CENTRE_SIGMA_PX),
-            fit.family.name()
-        )
-    } else {
-        String::new()
-    };
-    let az_to = (c.azimuth_from_deg + c.azimuth_span_deg).rem_euclid(360.0);
-    let worst = fit.bounds.iter().filter(|b| b.zenith_from_deg < options.map_max_zenith_deg).map(|b| b.bound_deg).fold(0.0, f64::max);
-    Some(format!(
-        "{held}the detections constrain the lens only at zenith {:.0}–{:.0}° and azimuth {:.0}–{az_to:.0}° (clockwise from north); elsewhere the camera is extrapolated from them (stated direction-error bound up to {worst:.2}° where the map reaches): calibrate again from a clear day of another season when one comes",
-        c.zenith_min_deg, c.zenith_max_deg, c.azimuth_from_deg
-    ))
-}
-
-/// Warn where the map reaches beyond what the detections constrain, or beyond the lens field.
-fn reach_warnings(fit: &mut Fit, options: &CalibrateOptions) {
-    let reach = options.map_max_zenith_deg;
-    if let Some(b) = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach && b.bound_deg > UNCONSTRAINED_BOUND_DEG).map(|b| b.zenith_from_deg).reduce(f64::min) {
-        let worst = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach).map(|b| b.bound_deg).fold(0.0, f64::max);
-        fit.warnings.push(format!(
-            "the detections cover zenith {:.0}–{:.0}° over {:.0}° of azimuth; from zenith {b:.0}° the stated direction-error bound exceeds {UNCONSTRAINED_BOUND_DEG}° (up to {worst:.2}° where the map reaches, zenith {reach:.0}°): add frames from another season, or lower map.max_zenith_deg",
-            fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg, fit.coverage.azimuth_span_deg
-        ));
-    }
-    if fit.camera.max_field_angle_rad.to_degrees() < options.map_max_zenith_deg {
-        fit.warnings.push(format!(
-            "the lens images only {:.1}° from its axis, less than the map's {:.0}°: cells beyond the image circle are unknown",
-            fit.camera.max_field_angle_rad.to_degrees(),
-            options.map_max_zenith_deg
-        ));
-    }
 }
 
 /// A tilt of the optical axis beyond this \[°\] draws a warning: sky imagers are levelled to

@@ -304,3 +304,43 @@ impl CalibrationFile {
         Ok(cam)
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn record(detections: usize, held: &[&str]) -> FitRecord {
+        let names = ["cx_px", "cy_px", "f_px_per_rad", "yaw_deg", "pitch_deg", "roll_deg"];
+        FitRecord {
+            fitted_utc: "2026-12-05T00:00:00Z".into(),
+            span_start_utc: String::new(),
+            span_end_utc: String::new(),
+            detections,
+            rms_deg: 0.1,
+            max_deg: 0.2,
+            rms_px: 0.3,
+            max_px: 0.6,
+            std_errors: names.iter().map(|n| (n.to_string(), 0.5)).collect(),
+            lens_cv_rms_px: Default::default(),
+            detections_zenith_deg: Some([51.0, 58.0]),
+            detections_azimuth_span_deg: Some(180.0),
+            direction_bound_deg: vec![],
+            warnings: vec![],
+            held: held.iter().map(|s| s.to_string()).collect(),
+        }
+    }
+
+    /// Parameters held by the image circle are not free: 14 detections carry a fit of six
+    /// parameters of which two are held (12 needed), not one of six free (18).
+    #[test]
+    fn held_parameters_are_not_counted_as_free() {
+        let file = Path::new("cal.toml");
+        assert!(record(14, &["cx_px", "cy_px"]).validate(file).is_ok());
+        let e = record(14, &[]).validate(file).unwrap_err().to_string();
+        assert!(e.contains("fit.detections") && e.contains("18"), "{e}");
+        let e = record(11, &["cx_px", "cy_px"]).validate(file).unwrap_err().to_string();
+        assert!(e.contains("12"), "{e}");
+        let e = record(14, &["k9"]).validate(file).unwrap_err().to_string();
+        assert!(e.contains("fit.held"), "{e}");
+    }
+}
