@@ -32,10 +32,10 @@ const TARGET_MAX_MBE: f64 = 50.0;
 const KNOWN_SHORTFALLS: &[&str] = &[
     "camera2 pooled skill",
     // A low arc of the sun (`calibration_from_a_low_sun`): 0.220° against 0.2°, the bound covering;
-    // and beyond zenith 50° too few detections for any calibration.
+    // and beyond zenith 55° too few detections (8 / 4) for any calibration, even a held one.
     "camera2 (low sun, zenith > 45°) calibration p95",
-    "camera1 (low sun, zenith > 50°) calibrates",
-    "camera2 (low sun, zenith > 50°) calibrates",
+    "camera1 (low sun, zenith > 55°) calibrates",
+    "camera2 (low sun, zenith > 55°) calibrates",
     // Without pyranometers (`without_pyranometers`): the documented default transmittances.
     "camera1 without pyranometers largest |MBE|",
     "camera2 without pyranometers pooled skill",
@@ -168,13 +168,15 @@ fn calibration_from_part_of_the_clear_day() {
 /// bound from zenith 40° on, while the glare-lean correction waited for 30 detections; it is now
 /// made from 10 and kept when it lowers the held-out error by more than an RMS's sampling error
 /// over that many: 0.045° / 0.220°, within the bound. Beyond zenith 50° the arc gives 16 / 14
-/// detections, under the 20 `calibrate` needs: it refuses and says so, writing no file. Either
-/// way the stated bound must cover the true error.
+/// detections, under the 20 a free fit needs: `calibrate` refused; it now fits them held to the
+/// image circle (principal point at its centre, an ideal lens): 0.114° / 0.108°, within the bound.
+/// Beyond zenith 55° (8 / 4) it refuses and says so, writing no file. Either way the stated bound
+/// must cover the true error.
 #[test]
 fn calibration_from_a_low_sun() {
     let Some(scenes) = scenes_or_skip() else { return };
     let mut failures = vec![];
-    for zenith in ["45", "50"] {
+    for zenith in ["45", "50", "55"] {
         let r = run_harness(&scenes, &["--calibration-only", "--clear-subset", "low-sun", "--low-sun-zenith-deg", zenith]);
         for c in r["cameras"].as_array().unwrap() {
             let label = format!("{} (low sun, zenith > {zenith}°)", c["camera"].as_str().unwrap());

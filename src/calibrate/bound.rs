@@ -1,11 +1,12 @@
 //! What the fit vouches for: the direction-error bound by zenith band (parameter covariance carried
 //! to each sky direction, the spread of lens families that predict as well, a radial-scale
-//! allowance) and the part of the sky the detections cover.
+//! allowance), the part of the sky the detections cover, and the warnings that say where the map
+//! reaches beyond them.
 
 use nalgebra::DMatrix;
 
 use super::fit::{Problem, angle_deg, perturbed, project_unchecked};
-use super::{BOUND_BANDS_DEG, BandBound, Coverage, Detection, Fit};
+use super::{BOUND_BANDS_DEG, BandBound, CalibrateOptions, Coverage, Detection, FREE_FIT_PARAMETERS, Fit, HELD_CENTRE_SIGMA_PX, UNCONSTRAINED_BOUND_DEG};
 use crate::camera::Camera;
 use crate::sun::{direction_enu, zenith_azimuth_of};
 
@@ -78,8 +79,62 @@ pub(super) fn coverage_of(dets: &[Detection]) -> Coverage {
     let mut az: Vec<f64> = used.iter().map(|u| u.1.rem_euclid(360.0)).collect();
     az.sort_by(f64::total_cmp);
     let mut gap: f64 = 360.0 - (az[az.len() - 1] - az[0]);
+    let mut from = az[0];
     for w in az.windows(2) {
-        gap = gap.max(w[1] - w[0]);
+        if w[1] - w[0] > gap {
+            gap = w[1] - w[0];
+            from = w[1];
+        }
     }
-    Coverage { zenith_min_deg: zmin, zenith_max_deg: zmax, azimuth_span_deg: 360.0 - gap }
+    Coverage { zenith_min_deg: zmin, zenith_max_deg: zmax, azimuth_span_deg: 360.0 - gap, azimuth_from_deg: from }
+}
+
+/// Detections over less than this span of zenith angle \[°\] see the lens's radial function over a
+/// narrow band only (a winter day's single low arc): the calibration says which part of the sky
+/// they constrain.
+pub const NARROW_ZENITH_SPAN_DEG: f64 = 20.0;
+
+/// Say which part of the sky the detections constrain when they are few (the fit held to the image
+/// circle) or cover a narrow band of zenith angle; `None` otherwise.
+pub(super) fn sky_warning(fit: &Fit, n: usize, options: &CalibrateOptions) -> Option<String> {
+    let c = &fit.coverage;
+    let narrow = c.zenith_max_deg - c.zenith_min_deg < NARROW_ZENITH_SPAN_DEG;
+    if !(narrow || options.hold_centre) {
+        return None;
+    }
+    let held = if options.hold_centre {
+        format!(
+            "calibrated from {n} sun detections, fewer than a free fit needs ({}): the principal point is held at the image circle's centre (±{:.1} px in the bound) and the lens to an ideal family ({}); ",
+            options.min_detections.max(FREE_FIT_PARAMETERS * crate::config::MIN_DETECTIONS_PER_PARAMETER),
+            options.centre_prior_px.unwrap_or(HELD_CENTRE_SIGMA_PX),
+            fit.family.name()
+        )
+    } else {
+        String::new()
+    };
+    let az_to = (c.azimuth_from_deg + c.azimuth_span_deg).rem_euclid(360.0);
+    let worst = fit.bounds.iter().filter(|b| b.zenith_from_deg < options.map_max_zenith_deg).map(|b| b.bound_deg).fold(0.0, f64::max);
+    Some(format!(
+        "{held}the detections constrain the lens only at zenith {:.0}–{:.0}° and azimuth {:.0}–{az_to:.0}° (clockwise from north); elsewhere the camera is extrapolated from them (stated direction-error bound up to {worst:.2}° where the map reaches): calibrate again from a clear day of another season when one comes",
+        c.zenith_min_deg, c.zenith_max_deg, c.azimuth_from_deg
+    ))
+}
+
+/// Warn where the map reaches beyond what the detections constrain, or beyond the lens field.
+pub(super) fn reach_warnings(fit: &mut Fit, options: &CalibrateOptions) {
+    let reach = options.map_max_zenith_deg;
+    if let Some(b) = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach && b.bound_deg > UNCONSTRAINED_BOUND_DEG).map(|b| b.zenith_from_deg).reduce(f64::min) {
+        let worst = fit.bounds.iter().filter(|b| b.zenith_from_deg < reach).map(|b| b.bound_deg).fold(0.0, f64::max);
+        fit.warnings.push(format!(
+            "the detections cover zenith {:.0}–{:.0}° over {:.0}° of azimuth; from zenith {b:.0}° the stated direction-error bound exceeds {UNCONSTRAINED_BOUND_DEG}° (up to {worst:.2}° where the map reaches, zenith {reach:.0}°): add frames from another season, or lower map.max_zenith_deg",
+            fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg, fit.coverage.azimuth_span_deg
+        ));
+    }
+    if fit.camera.max_field_angle_rad.to_degrees() < options.map_max_zenith_deg {
+        fit.warnings.push(format!(
+            "the lens images only {:.1}° from its axis, less than the map's {:.0}°: cells beyond the image circle are unknown",
+            fit.camera.max_field_angle_rad.to_degrees(),
+            options.map_max_zenith_deg
+        ));
+    }
 }

@@ -9,6 +9,9 @@ pub(super) struct LeanCandidate {
     pub(super) dets: Vec<Detection>,
     pub(super) glare_lean: LeanCorrection,
     pub(super) solved: Vec<(Problem, FamilyScore)>,
+    /// With the principal point held, each family fitted with it free (see
+    /// [`fit_families_and_free`]); empty otherwise.
+    pub(super) free: Vec<Problem>,
     /// Where each fitted lens puts the image circle's rim \[°\].
     pub(super) rims: Vec<f64>,
     pub(super) any_plausible: bool,
@@ -23,7 +26,7 @@ impl LeanCandidate {
     /// puts the rim far inside the horizon is fitting something other than the lens (a bias of the
     /// detections that grows with zenith angle). `None` when no family could be fitted.
     pub(super) fn fit(dets: Vec<Detection>, glare_lean: LeanCorrection, circle: ImageCircle, size: (u32, u32), options: &CalibrateOptions) -> Option<Self> {
-        let solved = fit_families(circle, size, &dets, options);
+        let (solved, free) = fit_families_and_free(circle, size, &dets, options);
         let rims: Vec<f64> = solved.iter().map(|(p, _)| finish(p, None, Some(circle)).camera.max_field_angle_rad.to_degrees()).collect();
         let plausible = |i: usize| (PLAUSIBLE_RIM_DEG.0..=PLAUSIBLE_RIM_DEG.1).contains(&rims[i]);
         let any_plausible = (0..solved.len()).any(plausible);
@@ -36,7 +39,7 @@ impl LeanCandidate {
             .collect();
         let any_loads = loads.iter().any(|l| *l);
         let best = choose_family(&solved, |i| (!any_loads || loads[i]) && (!any_plausible || plausible(i)))?;
-        Some(LeanCandidate { dets, glare_lean, solved, rims, any_plausible, loads, best })
+        Some(LeanCandidate { dets, glare_lean, solved, free, rims, any_plausible, loads, best })
     }
 
     /// The chosen family's held-out RMS \[px\].
@@ -47,16 +50,24 @@ impl LeanCandidate {
 
 /// Fit every lens family asked for (all by default) and score each by its held-out error. Each
 /// family is fitted with and without a bloom lean (see [`Problem::lean_px`]); the lean is kept
-/// only when it lowers the held-out error by more than [`LEAN_GAIN`].
-pub(super) fn fit_families(circle: ImageCircle, size: (u32, u32), dets: &[Detection], options: &CalibrateOptions) -> Vec<(Problem, FamilyScore)> {
+/// only when it lowers the held-out error by more than [`LEAN_GAIN`]. With the principal point
+/// held, also each family's fit with it free within the image circle's prior (the held fit starts from it; it stands in the bound for what holding the centre
+/// decided); that second list is empty for a free fit.
+pub(super) fn fit_families_and_free(circle: ImageCircle, size: (u32, u32), dets: &[Detection], options: &CalibrateOptions) -> (Vec<(Problem, FamilyScore)>, Vec<Problem>) {
     let start = initial_camera(circle, size, dets);
-    let prior = options.centre_prior_px.map(|s| (circle.cx_px, circle.cy_px, 1.0 / s.max(1e-3)));
+    let held = options.hold_centre;
+    let prior = options.centre_prior_px.map(|s| CentrePrior { cx: circle.cx_px, cy: circle.cy_px, weight: 1.0 / s.max(1e-3), held });
+    // With the principal point held, the ideal families only: the few detections that call for it
+    // cannot pin free distortion terms.
     let families: Vec<LensFamily> = match options.lens {
         Some(f) => vec![f],
+        None if held => LensFamily::ALL.into_iter().filter(|f| *f != LensFamily::Polynomial).collect(),
         None => LensFamily::ALL.to_vec(),
     };
     let folds = 5.min(dets.len() / 4).max(2);
-    let lean_ref = bare_disc_radius_px(dets);
+    // A bloom lean is one more free parameter: with the principal point held, only when the
+    // detections are three for each of the five.
+    let lean_ref = bare_disc_radius_px(dets).filter(|_| !held || dets.len() >= 5 * crate::config::MIN_DETECTIONS_PER_PARAMETER);
     let wq: Vec<f64> = dets.iter().map(|d| d.weight).collect();
     let fit_and_score = |p0: DVector<f64>, fam: LensFamily, lean: Option<f64>| {
         let prob = solve(problem(p0, fam, size, dets, prior, lean));
@@ -67,8 +78,28 @@ pub(super) fn fit_families(circle: ImageCircle, size: (u32, u32), dets: &[Detect
         (prob, score)
     };
     let mut solved = vec![];
+    let mut free = vec![];
     for fam in &families {
-        let p0 = start_params(&start, *fam);
+        let mut p0 = start_params(&start, *fam);
+        if let Some(c) = prior.filter(|c| c.held) {
+            // The held fit starts where the free one (the circle as a prior) ends, its centre put
+            // back on the circle's: from the image-only guess the held fit can stall far off. A
+            // single low arc also leaves the free fit a false minimum (a tilt of tens of degrees),
+            // so it is also started from the first family's solution, its focal length scaled to
+            // keep the detections' median image radius, and the lower cost kept.
+            let soft = Some(CentrePrior { held: false, ..c });
+            let mut f = solve(problem(p0, *fam, size, dets, soft, None));
+            if let Some(first) = free.first() {
+                let f2 = solve(problem(rescaled(first, *fam, dets), *fam, size, dets, soft, None));
+                if f2.residuals_of(&f2.p, true).norm_squared() < f.residuals_of(&f.p, true).norm_squared() {
+                    f = f2;
+                }
+            }
+            p0 = f.p.clone();
+            p0[0] = c.cx;
+            p0[1] = c.cy;
+            free.push(f);
+        }
         let plain = fit_and_score(p0.clone(), *fam, None);
         let leaning = lean_ref.map(|r0| fit_and_score(with_lean(&plain.0.p), *fam, Some(r0)));
         match leaning {
@@ -76,7 +107,20 @@ pub(super) fn fit_families(circle: ImageCircle, size: (u32, u32), dets: &[Detect
             _ => solved.push(plain),
         }
     }
-    solved
+    (solved, free)
+}
+
+/// The parameters of a solved problem for another family: the same principal point and
+/// orientation, the focal length that puts the sun at the detections' median zenith angle at the
+/// same image radius.
+fn rescaled(from: &Problem, family: LensFamily, dets: &[Detection]) -> DVector<f64> {
+    let mut z: Vec<f64> = dets.iter().map(|d| d.dir[2].clamp(-1.0, 1.0).acos()).collect();
+    z.sort_by(f64::total_cmp);
+    let theta = z[z.len() / 2].max(1e-3);
+    let r = from.camera(&from.p).f_px * from.camera(&from.p).projection.radial(theta);
+    let mut p = start_params(&from.camera(&from.p), family);
+    p[2] = (r / family.projection().radial(theta)).max(1.0).ln();
+    p
 }
 
 /// How much a bloom lean must lower the held-out error to be kept (a fraction).

@@ -8,6 +8,25 @@ use nalgebra::{DMatrix, DVector, Dyn, Owned};
 use super::{Coverage, Detection, Fit, ImageCircle, LensFamily};
 use crate::camera::{Camera, Orientation, Projection};
 
+/// The image circle's centre as a prior on the principal point: `weight` is 1/σ \[1/px\]. When
+/// `held`, the principal point is not fitted at all (it stays where the starting parameters put
+/// it, the circle's centre) and the prior only enters the covariance, as the centre's own
+/// uncertainty.
+#[derive(Clone, Copy, Debug)]
+pub(super) struct CentrePrior {
+    pub(super) cx: f64,
+    pub(super) cy: f64,
+    pub(super) weight: f64,
+    pub(super) held: bool,
+}
+
+impl CentrePrior {
+    /// Whether the principal point is held (not fitted).
+    pub(super) fn holds(prior: Option<CentrePrior>) -> bool {
+        prior.is_some_and(|c| c.held)
+    }
+}
+
 #[derive(Clone)]
 pub(super) struct Problem {
     pub(super) family: LensFamily,
@@ -16,7 +35,7 @@ pub(super) struct Problem {
     pub(super) dets: Vec<Detection>,
     /// Huber weights × quality weights.
     pub(super) weights: Vec<f64>,
-    pub(super) prior: Option<(f64, f64, f64)>,
+    pub(super) prior: Option<CentrePrior>,
     /// The bare disc's radius \[px\] when the fit carries a bloom lean (its coefficient is the
     /// last parameter); `None` without one.
     pub(super) lean_ref_px: Option<f64>,
@@ -72,11 +91,11 @@ impl Problem {
             r[2 * i] = w * (x - d.px.0);
             r[2 * i + 1] = w * (y - d.px.1);
         }
-        if let Some((cx, cy, w)) = self.prior {
+        if let Some(c) = self.prior {
             let n = 2 * self.dets.len();
-            let w = if weighted { w } else { 0.0 };
-            r[n] = w * (p[0] - cx);
-            r[n + 1] = w * (p[1] - cy);
+            let w = if weighted { c.weight } else { 0.0 };
+            r[n] = w * (p[0] - c.cx);
+            r[n + 1] = w * (p[1] - c.cy);
         }
         r
     }
@@ -112,17 +131,23 @@ impl LeastSquaresProblem<f64, Dyn, Dyn> for Problem {
     type JacobianStorage = Owned<f64, Dyn, Dyn>;
     type ParameterStorage = Owned<f64, Dyn>;
 
+    // A held principal point (see [`CentrePrior`]) is not among the parameters the solver moves.
     fn set_params(&mut self, x: &DVector<f64>) {
-        self.p.copy_from(x);
+        if CentrePrior::holds(self.prior) {
+            self.p.rows_mut(2, x.len()).copy_from(x);
+        } else {
+            self.p.copy_from(x);
+        }
     }
     fn params(&self) -> DVector<f64> {
-        self.p.clone()
+        if CentrePrior::holds(self.prior) { self.p.rows(2, self.p.len() - 2).into_owned() } else { self.p.clone() }
     }
     fn residuals(&self) -> Option<DVector<f64>> {
         Some(self.residuals_of(&self.p, true))
     }
     fn jacobian(&self) -> Option<DMatrix<f64>> {
-        Some(self.jacobian_of(&self.p, true))
+        let j = self.jacobian_of(&self.p, true);
+        Some(if CentrePrior::holds(self.prior) { j.remove_columns(0, 2) } else { j })
     }
 }
 
@@ -168,7 +193,7 @@ pub(super) fn solve(mut prob: Problem) -> Problem {
 
 /// A problem to solve. With `lean_ref_px`, `start_p` carries the lean coefficient as its last
 /// entry (see [`with_lean`]).
-pub(super) fn problem(start_p: DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>, lean_ref_px: Option<f64>) -> Problem {
+pub(super) fn problem(start_p: DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<CentrePrior>, lean_ref_px: Option<f64>) -> Problem {
     Problem { family, size, max_field_rad: 95f64.to_radians(), dets: dets.to_vec(), weights: vec![1.0; dets.len()], prior, lean_ref_px, p: start_p }
 }
 
@@ -194,7 +219,7 @@ pub(super) fn weighted_rms(res: &[(f64, f64)], w: &[f64]) -> f64 {
 /// predicted by extrapolation, which is what a lens model must do beyond the sun's track; blocks
 /// of time would hold out morning detections whose twins at the same zenith angle remain in the
 /// afternoon, and so cannot tell a lens distortion from a bias that grows with zenith angle.
-pub(super) fn held_out(p_full: &DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<(f64, f64, f64)>, lean_ref_px: Option<f64>, folds: usize) -> Vec<(f64, f64)> {
+pub(super) fn held_out(p_full: &DVector<f64>, family: LensFamily, size: (u32, u32), dets: &[Detection], prior: Option<CentrePrior>, lean_ref_px: Option<f64>, folds: usize) -> Vec<(f64, f64)> {
     let n = dets.len();
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&i, &j| dets[i].dir[2].total_cmp(&dets[j].dir[2]));
@@ -305,6 +330,7 @@ pub(super) fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<Image
         glare_lean: Default::default(),
         mirrored_because: None,
         handedness_held_out_px: [f64::NAN; 2],
+        held: if CentrePrior::holds(prob.prior) { vec!["cx_px".into(), "cy_px".into()] } else { vec![] },
         cov: cov.map(|c| (p, c)),
     }
 }

@@ -197,6 +197,7 @@ pub fn calibration_record(name: &str, fit: &Fit, dets: &[Detection]) -> crate::c
         detections_azimuth_span_deg: Some(fit.coverage.azimuth_span_deg),
         direction_bound_deg: fit.bounds.iter().map(|b| [b.zenith_from_deg, b.zenith_to_deg, b.bound_deg]).collect(),
         warnings: fit.warnings.clone(),
+        held: fit.held.clone(),
     });
     cal
 }

@@ -203,7 +203,8 @@ pub struct CalibrateArgs {
     /// Also write an obstruction mask (pixels that stay dark or unchanged) beside it.
     #[arg(long)]
     pub obstruction_mask: bool,
-    /// Fewest sun detections to accept.
+    /// Fewest sun detections for a fit with every parameter free; from 12 up to it the fit is held
+    /// to the image circle (principal point at its centre, an ideal lens), with a warning.
     #[arg(long, default_value_t = 20, allow_hyphen_values = true)]
     pub min_detections: usize,
     /// Lowest sun elevation for a detection [°] (nearer the horizon the glare leans toward the

@@ -179,7 +179,8 @@ fn print_fit(fit: &crate::calibrate::Fit, detections: usize) {
         crate::say!("  lens {:<14} held-out RMS {:.3} px (in-sample {:.3} px){}", s.family.name(), s.cv_rms_px, s.fit_rms_px, if s.family == fit.family { "  <- chosen" } else { "" });
     }
     for (n, v, se) in &fit.params {
-        crate::say!("  {n:<14} {v:>12.4} ± {se:.4}");
+        let held = if fit.held.contains(n) { "  (held at the image circle's centre, not fitted)" } else { "" };
+        crate::say!("  {n:<14} {v:>12.4} ± {se:.4}{held}");
     }
     if fit.glare_lean.measured > 0 {
         crate::say!(

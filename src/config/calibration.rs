@@ -108,6 +108,11 @@ pub struct FitRecord {
     /// What the fit could not vouch for (read back and repeated when the file is used).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub warnings: Vec<String>,
+    /// Parameters held by the image circle, not fitted to the detections (the principal point of a
+    /// fit from few detections); their standard errors are the circle's uncertainty, and they do
+    /// not count as free parameters.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub held: Vec<String>,
 }
 
 /// Fewest sun detections per free parameter of a fit (each gives two residuals; common practice,
@@ -132,7 +137,12 @@ impl FitRecord {
     /// The first field that fails, naming `file`.
     pub fn validate(&self, file: &Path) -> Result<(), ConfigError> {
         let c = Check { file };
-        let free = self.std_errors.len();
+        for name in &self.held {
+            if !self.std_errors.contains_key(name) {
+                return Err(c.invalid("fit.held", "names of parameters listed in fit.std_errors", name.clone()));
+            }
+        }
+        let free = self.std_errors.keys().filter(|k| !self.held.contains(k)).count();
         let needed = (MIN_DETECTIONS_PER_PARAMETER * free).max(MIN_FIT_DETECTIONS);
         if self.detections < needed {
             return Err(c.invalid(
@@ -292,5 +302,45 @@ impl CalibrationFile {
             return Err(c.invalid("camera.k", "a projection that grows monotonically over the lens field", "a folding polynomial"));
         }
         Ok(cam)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn record(detections: usize, held: &[&str]) -> FitRecord {
+        let names = ["cx_px", "cy_px", "f_px_per_rad", "yaw_deg", "pitch_deg", "roll_deg"];
+        FitRecord {
+            fitted_utc: "2026-12-05T00:00:00Z".into(),
+            span_start_utc: String::new(),
+            span_end_utc: String::new(),
+            detections,
+            rms_deg: 0.1,
+            max_deg: 0.2,
+            rms_px: 0.3,
+            max_px: 0.6,
+            std_errors: names.iter().map(|n| (n.to_string(), 0.5)).collect(),
+            lens_cv_rms_px: Default::default(),
+            detections_zenith_deg: Some([51.0, 58.0]),
+            detections_azimuth_span_deg: Some(180.0),
+            direction_bound_deg: vec![],
+            warnings: vec![],
+            held: held.iter().map(|s| s.to_string()).collect(),
+        }
+    }
+
+    /// Parameters held by the image circle are not free: 14 detections carry a fit of six
+    /// parameters of which two are held (12 needed), not one of six free (18).
+    #[test]
+    fn held_parameters_are_not_counted_as_free() {
+        let file = Path::new("cal.toml");
+        assert!(record(14, &["cx_px", "cy_px"]).validate(file).is_ok());
+        let e = record(14, &[]).validate(file).unwrap_err().to_string();
+        assert!(e.contains("fit.detections") && e.contains("18"), "{e}");
+        let e = record(11, &["cx_px", "cy_px"]).validate(file).unwrap_err().to_string();
+        assert!(e.contains("12"), "{e}");
+        let e = record(14, &["k9"]).validate(file).unwrap_err().to_string();
+        assert!(e.contains("fit.held"), "{e}");
     }
 }

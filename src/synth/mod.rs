@@ -327,6 +327,17 @@ pub fn scenes() -> Vec<SceneSpec> {
         "the imperfect camera (tilted, 88° lens, not quite equisolid, bloom, vignetting, dirt, haze, drifting exposure, skyline) on a clear day, every 10 minutes for 14 hours: the day a user calibrates from",
         false,
     ));
+    // The same camera on a winter clear day: at the site's 37.4° N in mid-December the sun stays
+    // beyond zenith 60.6° and crosses the south in one low arc (calibration from a winter day).
+    v.push(SceneSpec {
+        start_utc: "2026-12-15T07:30:00Z".into(),
+        duration_min: 560.0,
+        ..clear_day(
+            "nuisance-winter-clear-day",
+            "the imperfect camera of nuisance-clear-day on a clear mid-December day, every 10 minutes from sunrise to sunset: the sun never climbs above 29° (zenith 60.7° at noon), one low arc through the south",
+            false,
+        )
+    });
     v.push(nuisance(
         "nuisance-broken",
         "the imperfect camera under broken cumulus at 1200 m moving at 10 m/s toward the east-north-east",
