@@ -30,7 +30,8 @@ pub struct QcParams {
     /// independent and project synthetic scene). A night sky that a camera brightens by a long
     /// exposure reads orange under city light: 1.10–1.46 over the SWINSEG night patches
     /// (`tests/real_patches.rs`). A backstop for a frame stamped with a daytime time by mistake
-    /// (the sun's elevation judges the time itself); 0.5 to 100 (100: off in practice).
+    /// (the sun's elevation judges the time itself); only a sky dimmer than
+    /// [`NIGHT_MAX_MEAN_LEVEL`] is refused so. 0.5 to 100 (100: off in practice).
     pub max_sky_red_blue: f64,
 }
 
@@ -102,8 +103,16 @@ impl SkyLevels {
     }
 }
 
+/// A reddish sky is refused as not daylight only below this mean level (0–255): the SWINSEG night
+/// patches a long exposure brightens read 62–98, while a bright warm sky by day (a camera's warm
+/// white balance under overcast, dust or smoke) is far brighter and is kept (own choice from those
+/// figures; the independent breaking overcast with its warm white-balance probe, R ×1.08 and
+/// B ×0.93, reads mean red/blue up to 1.06).
+pub const NIGHT_MAX_MEAN_LEVEL: f64 = 120.0;
+
 /// The frame QC's verdict on a frame's sky pixels, in this order: under-exposed (mean level below
-/// `min_mean_level`), not daylight (mean red over mean blue above `max_sky_red_blue`), over-exposed
+/// `min_mean_level`), not daylight (mean red over mean blue above `max_sky_red_blue` at a mean level below
+/// [`NIGHT_MAX_MEAN_LEVEL`]), over-exposed
 /// (mean level above `max_mean_level` or saturated share above `max_saturated_fraction`).
 ///
 /// # Errors
@@ -112,7 +121,7 @@ pub fn judge_sky(levels: &SkyLevels, qc: &QcParams) -> Result<(), Rejection> {
     if levels.mean_level < qc.min_mean_level {
         return Err(Rejection::UnderExposed(levels.mean_level));
     }
-    if levels.red_blue > qc.max_sky_red_blue {
+    if levels.red_blue > qc.max_sky_red_blue && levels.mean_level < NIGHT_MAX_MEAN_LEVEL {
         return Err(Rejection::NotDaylight { red_blue: levels.red_blue, limit: qc.max_sky_red_blue });
     }
     if levels.mean_level > qc.max_mean_level || levels.saturated_share > qc.max_saturated_fraction {
@@ -341,6 +350,8 @@ mod frame_tests {
         let night = judge_sky(&SkyLevels::measure([[110, 92, 80]; 4]), &qc).unwrap_err();
         assert_eq!(night.code(), "not_daylight");
         assert!(night.to_string().contains("not daylight"), "{night}");
+        // A warm sky as bright as day (overcast through a warm white balance, dust) is daylight.
+        assert_eq!(judge_sky(&SkyLevels::measure([[190, 175, 165]; 4]), &qc), Ok(()));
         // Dark comes first: a black frame is under-exposed, whatever its colour.
         assert_eq!(judge_sky(&SkyLevels::measure([[12, 5, 3]; 4]), &qc).unwrap_err().code(), "under_exposed");
         // The limit is configurable and 100 turns the test off.

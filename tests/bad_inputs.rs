@@ -581,13 +581,7 @@ fn calibrate_writes_nothing_the_loader_would_refuse() {
     let (code, err) = run_bin(&[
         "calibrate", "--site", seq.join("site.toml").to_str().unwrap(), "--frames", seq.join("frames").to_str().unwrap(), "--out", out.to_str().unwrap(), "--min-detections", "10",
     ]);
-    if code == 2 {
-        // Refused: then with the reason, and nothing written.
-        assert!(err.contains("detections") && err.contains("no calibration written") || err.contains("held fit needs"), "{err}");
-        assert!(!out.parent().unwrap().exists() || std::fs::read_dir(out.parent().unwrap()).unwrap().count() == 0, "files written");
-        return;
-    }
-    assert_eq!(code, 0, "{err}");
+    assert_eq!(code, 0, "a held fit was expected from this day: {err}");
     let text = std::fs::read_to_string(&out).unwrap();
     assert!(text.contains("held") && text.contains("cx_px"), "a held fit names its held parameters:\n{text}");
     let file: nephocast::config::CalibrationFile = toml::from_str(&text).unwrap();

@@ -205,7 +205,8 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
         mean_sigma,
         covered
     );
-    assert_eq!(unset.cbh[0].0, nephocast::cbh::UNCONFIGURED_PRIOR_M, "the unconfigured prior is where the run starts");
+    assert_eq!((unset.cbh[0].0, unset.cbh[0].2.as_str()), (nephocast::cbh::UNCONFIGURED_PRIOR_M, "prior"), "the unconfigured prior is where the run starts");
+    assert!(!unset.rejected.0, "an unconfigured prior is not judged, so never rejected");
     for (tag, r) in [("true base", &truth), ("estimated base", &est), ("wrong prior only", &wrong), ("default (checked)", &auto), ("no base configured", &unset)] {
         eprintln!("cbh-network: skill 5/10/15 min with the {tag:<16} {:.3} {:.3} {:.3}", skill(&r.eval, 5), skill(&r.eval, 10), skill(&r.eval, 15));
     }

@@ -545,8 +545,12 @@ def yardsticks(scenes):
 def camera_folders(scenes, camera):
     """The camera's clear day and its cloudy scenes (one or more): folders named `CAMERA-…`, the
     clear day's name ending in `clear-day`."""
-    ds = sorted(d for d in os.listdir(scenes) if d.startswith(camera + "-") and os.path.isdir(os.path.join(scenes, d)))
-    clear = [d for d in ds if d.endswith("clear-day")]
+    # Another camera's folders share the prefix when its name extends this one's ("sky-a" and
+    # "sky-a-b"): they are left out.
+    others = [c for c in discover_cameras(scenes) if c != camera and c.startswith(camera + "-")]
+    ds = sorted(d for d in os.listdir(scenes) if d.startswith(camera + "-") and os.path.isdir(os.path.join(scenes, d))
+                and not any(d.startswith(o + "-") for o in others))
+    clear = [d for d in ds if d == camera + "-clear-day"]
     cloudy = [d for d in ds if not d.endswith("clear-day")]
     if len(clear) != 1 or not cloudy:
         raise RuntimeError(f"{camera}: expected one clear-day folder and at least one cloudy folder, found {ds}")
@@ -555,8 +559,8 @@ def camera_folders(scenes, camera):
 
 def discover_cameras(scenes):
     """Every camera of the scenes folder: the prefix `CAMERA` of each `CAMERA-…clear-day` folder."""
-    return sorted(d[: d.index("-")] for d in os.listdir(scenes)
-                  if d.endswith("clear-day") and "-" in d and os.path.isdir(os.path.join(scenes, d)))
+    return sorted({d[: -len("-clear-day")] for d in os.listdir(scenes)
+                   if d.endswith("-clear-day") and len(d) > len("-clear-day") and os.path.isdir(os.path.join(scenes, d))})
 
 
 def run_camera(a, camera, sc, yard, log, res):
