@@ -380,7 +380,9 @@ def write_site(path, site_json, ceil_json, calibration, pyranometers, settings=(
     if site_json.get("frame_name_format"):
         cam["frame_time_format"] = site_json["frame_name_format"]
     text += table("camera", cam)
-    used_base = float(extra.get("clouds", {}).get("base_height_m", base))
+    # The base the site file configures (None: none, the engine estimates it from its prior).
+    given = extra.get("clouds", {}).get("base_height_m")
+    used_base = float(given) if given is not None else (base if cbh else None)
     # No ceilometer: no base configured (a user who does not know it); the engine estimates it by
     # shadow timing at the pyranometers, from its unconfigured prior of 1500 m.
     text += table("clouds", {"base_height_m": base} if cbh else {})
