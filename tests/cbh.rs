@@ -218,24 +218,18 @@ fn shadow_timing_finds_the_cloud_base_from_a_wrong_prior() {
     let gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&est.eval, *m)).collect();
     check("skill gap", gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus estimated at 5/10/15 min {gaps:.3?} (target within ±0.03)"));
     // The default (shadow_timing unset): the fits disagree with the wrong configured base, take
-    // over from it, and the plane follows them as with shadow timing asked for.
-    let auto_last = auto.plane.last().unwrap().0;
-    check(
-        "default: plane followed",
-        !auto.moves().is_empty() && (auto_last / TRUTH_M - 1.0).abs() <= 0.10,
-        format!("{} moves, ending at {auto_last:.0} m (target within 10 % of {TRUTH_M:.0} m)", auto.moves().len()),
-    );
-    let auto_gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&auto.eval, *m)).collect();
-    check("default: skill gap", auto_gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus default at 5/10/15 min {auto_gaps:.3?} (target within ±0.03)"));
-    // No base configured: the fits are combined from the first, and the plane follows them.
-    let unset_last = unset.plane.last().unwrap().0;
-    check(
-        "no base: plane followed",
-        !unset.moves().is_empty() && (unset_last / TRUTH_M - 1.0).abs() <= 0.10,
-        format!("{} moves, ending at {unset_last:.0} m (target within 10 % of {TRUTH_M:.0} m)", unset.moves().len()),
-    );
-    let unset_gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&unset.eval, *m)).collect();
-    check("no base: skill gap", unset_gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus unconfigured at 5/10/15 min {unset_gaps:.3?} (target within ±0.03)"));
+    // over from it, and the plane follows them as with shadow timing asked for. No base configured:
+    // the fits are combined from the first, and the plane follows them too.
+    for (tag, r) in [("default", &auto), ("no base", &unset)] {
+        let last = r.plane.last().unwrap().0;
+        check(
+            &format!("{tag}: plane followed"),
+            !r.moves().is_empty() && (last / TRUTH_M - 1.0).abs() <= 0.10,
+            format!("{} moves, ending at {last:.0} m (target within 10 % of {TRUTH_M:.0} m)", r.moves().len()),
+        );
+        let gaps: Vec<f64> = [5, 10, 15].iter().map(|m| skill(&truth.eval, *m) - skill(&r.eval, *m)).collect();
+        check(&format!("{tag}: skill gap"), gaps.iter().all(|g| g.abs() <= 0.03), format!("true minus {tag} at 5/10/15 min {gaps:.3?} (target within ±0.03)"));
+    }
 }
 
 /// The `cbh-network` scene's readings (30 minutes, seed 3, as [`network_scene`] renders) written

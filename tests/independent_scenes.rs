@@ -91,6 +91,20 @@ fn has_camera(scenes: &std::path::Path, camera: &str) -> bool {
     found
 }
 
+/// One named camera of the shared scenes replayed under a probe (`extra`): the harness's JSON and
+/// that camera's entry, its cloudy replay checked to have run; `None` (saying so) where the scenes
+/// folder has no such camera.
+fn probe_camera(scenes: &std::path::Path, camera: &str, extra: &[&str]) -> Option<(Value, Value)> {
+    if !has_camera(scenes, camera) {
+        return None;
+    }
+    let r = run_harness(scenes, &[&["--cameras", camera], extra].concat());
+    let c = r["cameras"][0].clone();
+    let rc = &c["replay_cloudy"];
+    assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
+    Some((r, c))
+}
+
 /// Runs the committed harness with the camera from `calibrate` and extra arguments; its JSON.
 fn run_harness(scenes: &std::path::Path, extra: &[&str]) -> Value {
     let work = tempfile::tempdir().unwrap();
@@ -369,14 +383,9 @@ fn without_pyranometers() {
 #[test]
 fn a_changed_white_balance_is_followed() {
     let Some(scenes) = scenes_or_skip() else { return };
-    if !has_camera(&scenes, "camera1") {
-        return;
-    }
-    let r = run_harness(&scenes, &["--cameras", "camera1", "--no-measurements", "--cloudy-gain", "1.08,1,0.93"]);
+    let Some((r, c)) = probe_camera(&scenes, "camera1", &["--no-measurements", "--cloudy-gain", "1.08,1,0.93"]) else { return };
     let mut failures = vec![];
-    let c = &r["cameras"][0];
     let rc = &c["replay_cloudy"];
-    assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
     let stdout = rc["stdout"].as_str().unwrap_or_default();
     let factor = stdout
         .lines()
@@ -411,14 +420,8 @@ fn a_changed_white_balance_is_followed() {
 #[test]
 fn a_brighter_exposure_is_judged_past_the_clipping() {
     let Some(scenes) = scenes_or_skip() else { return };
-    if !has_camera(&scenes, "camera2") {
-        return;
-    }
-    let r = run_harness(&scenes, &["--cameras", "camera2", "--no-measurements", "--cloudy-gain", "1.2,1.2,1.2"]);
-    let c = &r["cameras"][0];
-    let rc = &c["replay_cloudy"];
-    assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
-    let fs = &rc["forecast_summary"];
+    let Some((r, c)) = probe_camera(&scenes, "camera2", &["--no-measurements", "--cloudy-gain", "1.2,1.2,1.2"]) else { return };
+    let fs = &c["replay_cloudy"]["forecast_summary"];
     let (pooled, r1, sp1, mbe) = (num(fs, &["skill_pooled_5_15"]), num(fs, &["rmse_1"]), num(fs, &["rmse_sp_1"]), num(fs, &["max_abs_mbe"]));
     let yard = num(&r, &["yardsticks", c["cloudy_scene"].as_str().unwrap(), "pooled"]);
     let mut failures = vec![];
@@ -443,13 +446,8 @@ fn a_brighter_exposure_is_judged_past_the_clipping() {
 #[test]
 fn a_darker_exposure_keeps_the_dark_cloud_test() {
     let Some(scenes) = scenes_or_skip() else { return };
-    if !has_camera(&scenes, "camera2") {
-        return;
-    }
-    let r = run_harness(&scenes, &["--cameras", "camera2", "--cloudy-gain", "0.8,0.8,0.8"]);
-    let rc = &r["cameras"][0]["replay_cloudy"];
-    assert_eq!(rc["exit_code"].as_i64(), Some(0), "replay failed: {rc}");
-    let fs = &rc["forecast_summary"];
+    let Some((_, c)) = probe_camera(&scenes, "camera2", &["--cloudy-gain", "0.8,0.8,0.8"]) else { return };
+    let fs = &c["replay_cloudy"]["forecast_summary"];
     let (pooled, r1, sp1, mbe) = (num(fs, &["skill_pooled_5_15"]), num(fs, &["rmse_1"]), num(fs, &["rmse_sp_1"]), num(fs, &["max_abs_mbe"]));
     let mut failures = vec![];
     check("camera2 exposed x0.8: 1-min RMSE below smart persistence", r1 < sp1, format!("{r1:.1} against {sp1:.1} W/m²"), &mut failures);

@@ -117,8 +117,9 @@ fn rescaled(from: &Problem, family: LensFamily, dets: &[Detection]) -> DVector<f
     let mut z: Vec<f64> = dets.iter().map(|d| d.dir[2].clamp(-1.0, 1.0).acos()).collect();
     z.sort_by(f64::total_cmp);
     let theta = z[z.len() / 2].max(1e-3);
-    let r = from.camera(&from.p).f_px * from.camera(&from.p).projection.radial(theta);
-    let mut p = start_params(&from.camera(&from.p), family);
+    let cam = from.camera(&from.p);
+    let r = cam.f_px * cam.projection.radial(theta);
+    let mut p = start_params(&cam, family);
     p[2] = (r / family.projection().radial(theta)).max(1.0).ln();
     p
 }
