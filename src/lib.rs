@@ -82,6 +82,7 @@ pub mod qc;
 pub mod ramp;
 pub mod records;
 pub mod rng;
+pub mod robust;
 pub mod replay;
 pub mod report;
 pub mod segment;

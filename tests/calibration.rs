@@ -288,43 +288,6 @@ fn sun_detections_sit_on_the_true_sun() {
     assert!(n >= 40.0 && rms < 0.3 && (sr / n).abs() < 0.15, "{n} detections, RMS {rms} px, mean radial {} px", sr / n);
 }
 
-/// A winter clear day alone (latitude 37.4°, December: the sun never higher than zenith 61°), with
-/// the imperfect camera (tilt, a lens that fits no ideal model exactly, bloom, vignetting, haze,
-/// drifting exposure) and through JPEG: the detections cover one arc at zenith 61–70°, so
-/// `calibrate` cannot pin the lens near the zenith. What the issue asks of it then: say so, and
-/// state a bound that covers the true error in every zenith band. Measured when added: true p95
-/// 0.52–0.71° against stated 0.84–1.43°, by band.
-#[test]
-fn winter_day_alone_says_what_it_cannot_constrain() {
-    let mut spec = scene("nuisance-clear-day").unwrap();
-    spec.start_utc = "2026-12-14T05:00:00Z".into();
-    let s = Scene::new(spec, 1).unwrap();
-    let frames = s.jpeg_frames();
-    let (fit, dets) = calibrate(&frames, &s.world.observer, &CalibrateOptions::default()).unwrap();
-    eprintln!("winter nuisance day: {} detections, zenith {:.0}–{:.0}°; {:?}", dets.len(), fit.coverage.zenith_min_deg, fit.coverage.zenith_max_deg, fit.warnings);
-    assert!(fit.coverage.zenith_min_deg > 55.0, "the test needs a winter arc: detections from zenith {:.1}°", fit.coverage.zenith_min_deg);
-    assert!(fit.warnings.iter().any(|w| w.contains("stated direction-error bound exceeds")), "no warning of the unconstrained sky: {:?}", fit.warnings);
-    for b in &fit.bounds {
-        let mut e = vec![];
-        for zi in 0..((b.zenith_to_deg - b.zenith_from_deg) as usize) {
-            let z = b.zenith_from_deg + zi as f64 + 0.5;
-            for ai in 0..90 {
-                let d = nephocast::sun::direction_enu(z.to_radians(), (ai as f64 * 4.0).to_radians());
-                let Some((x, y)) = s.camera.project_enu(d) else { continue };
-                let Some(u) = fit.camera.unproject_enu(x, y) else { continue };
-                e.push((d[0] * u[0] + d[1] * u[1] + d[2] * u[2]).clamp(-1.0, 1.0).acos().to_degrees());
-            }
-        }
-        if e.is_empty() {
-            continue;
-        }
-        e.sort_by(f64::total_cmp);
-        let p95 = e[((e.len() as f64 * 0.95).ceil() as usize).clamp(1, e.len()) - 1];
-        eprintln!("  zenith {:>2}–{:<2}°: true p95 {p95:.3}°, stated bound {:.3}°", b.zenith_from_deg, b.zenith_to_deg, b.bound_deg);
-        assert!(p95 <= b.bound_deg, "zenith {}–{}°: true p95 {p95:.3}° beyond the stated bound {:.3}°", b.zenith_from_deg, b.zenith_to_deg, b.bound_deg);
-    }
-}
-
 /// A sensor that cuts the image circle (here a 16:9 frame cut from the rendered square one, across
 /// the sun's track, so that the sun leaves the frame in the morning or evening): before, frames
 /// whose sun sat on or beyond the edge gave detections of its cut disc or of its glare (leaning

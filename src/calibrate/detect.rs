@@ -6,6 +6,7 @@ use nalgebra::{DMatrix, DVector};
 
 use super::Detection;
 use super::clip::ClipTest;
+use crate::robust::MAD_TO_SIGMA;
 use crate::camera::{Camera, Orientation, Projection};
 
 /// Find the sun disk in a frame, its clipped core judged by `clip`. `radius_px` is the image
@@ -186,7 +187,7 @@ fn robust_circle(pts: &[(f64, f64)], min_pts: usize) -> Option<ImageCircle> {
         let res = |p: &(f64, f64)| ((p.0 - c.cx_px).hypot(p.1 - c.cy_px) - c.radius_px).abs();
         let mut r: Vec<f64> = kept.iter().map(res).collect();
         r.sort_by(f64::total_cmp);
-        let sigma = 1.4826 * r[r.len() / 2] + 0.5;
+        let sigma = MAD_TO_SIGMA * r[r.len() / 2] + 0.5;
         kept = pts.iter().copied().filter(|p| res(p) < 2.5 * sigma).collect();
         if kept.len() < min_pts {
             return None;

@@ -39,6 +39,7 @@
 //! Sources: the slope estimator is H. Theil (1950) and P. K. Sen (1968), from memory; the
 //! first-order shift of a level set's centroid is derived here (no source).
 
+use crate::robust::median;
 use super::Detection;
 
 /// Levels (every channel at least this) of the nested level sets.
@@ -240,13 +241,6 @@ pub fn own_slope(levels: &[GlareLevel], u: (f64, f64), model: LeanModel) -> Opti
         }
     }
     (slopes.len() >= 3).then(|| median(&mut slopes))
-}
-
-/// The median (mean of the middle two for an even count) of a non-empty slice, sorted in place.
-fn median(v: &mut [f64]) -> f64 {
-    v.sort_by(f64::total_cmp);
-    let m = v.len();
-    if m % 2 == 1 { v[m / 2] } else { 0.5 * (v[m / 2 - 1] + v[m / 2]) }
 }
 
 /// What the correction did, for the report.

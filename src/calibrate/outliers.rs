@@ -4,6 +4,7 @@
 //! choices made on the residuals (a 512×392 frame cut from a 512² sky imager), so `calibrate` drops
 //! them and fits again ([`super::calibrate`]).
 
+use crate::robust::MAD_TO_SIGMA;
 use chrono::{DateTime, Utc};
 
 /// A detection whose residual exceeds this many robust standard deviations of the fit's residuals
@@ -23,7 +24,7 @@ pub fn gross_threshold_px(residuals: &[(f64, f64)], radius_px: f64) -> f64 {
     let mut r: Vec<f64> = residuals.iter().map(|e| e.0.hypot(e.1)).collect();
     r.sort_by(f64::total_cmp);
     let median = r.get(r.len() / 2).copied().unwrap_or(0.0);
-    (GROSS_OUTLIER_SIGMAS * 1.4826 * median).max(GROSS_OUTLIER_MIN_SHARE * radius_px)
+    (GROSS_OUTLIER_SIGMAS * MAD_TO_SIGMA * median).max(GROSS_OUTLIER_MIN_SHARE * radius_px)
 }
 
 /// The times of the detections (`times`, in the order of `residuals`) whose residual exceeds

@@ -46,6 +46,7 @@ use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
+use crate::robust::{MAD_TO_SIGMA, median};
 use crate::cloudmap::CloudMap;
 use crate::settings::{ConfigError, check_range};
 
@@ -424,18 +425,6 @@ impl MotionMeasurement {
     }
 }
 
-fn median(v: &mut [f64]) -> f64 {
-    v.sort_by(f64::total_cmp);
-    let n = v.len();
-    if n == 0 {
-        f64::NAN
-    } else if n % 2 == 1 {
-        v[n / 2]
-    } else {
-        0.5 * (v[n / 2 - 1] + v[n / 2])
-    }
-}
-
 fn dist(a: [f64; 2], b: [f64; 2]) -> f64 {
     ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2)).sqrt()
 }
@@ -475,7 +464,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
     let layer = |ci: usize| {
         let all: Vec<&BlockVector> = vectors.iter().zip(&assign).filter(|(_, a)| **a == ci).map(|(v, _)| v).collect();
         let mad = median(&mut all.iter().map(|v| dist(v.v_mps, c[ci])).collect::<Vec<_>>());
-        let lim = (3.0 * 1.4826 * mad).max(0.5);
+        let lim = (3.0 * MAD_TO_SIGMA * mad).max(0.5);
         let members: Vec<&BlockVector> = all.into_iter().filter(|v| dist(v.v_mps, c[ci]) <= lim).collect();
         let ms = members.iter().map(|v| v.mean_score).sum::<f64>() / members.len().max(1) as f64;
         let ts = members.iter().map(|v| v.thick_share).sum::<f64>() / members.len().max(1) as f64;
@@ -502,7 +491,7 @@ fn summarize(vectors: Vec<BlockVector>, tried: usize, dt_s: f64, params: &Motion
         let gw = if gw[0].is_finite() && gw[1].is_finite() { gw } else { g };
         let mut devs: Vec<f64> = vectors.iter().map(|v| dist(v.v_mps, gw)).collect();
         let mad = median(&mut devs);
-        let lim = (3.0 * 1.4826 * mad).max(0.5);
+        let lim = (3.0 * MAD_TO_SIGMA * mad).max(0.5);
         let inl: Vec<&BlockVector> = vectors.iter().filter(|v| dist(v.v_mps, gw) <= lim).collect();
         let m = inl.len().max(1) as f64;
         let wsum = inl.iter().map(|v| v.weight).sum::<f64>();
