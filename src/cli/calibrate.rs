@@ -159,7 +159,8 @@ fn load_calibration_frames(dirs: &[PathBuf], naming: &crate::io::FrameNaming) ->
         }
     }
     if frames.is_empty() {
-        bail!("no frames with a time in their name in {:?} ({untimed} files without one; expected {})", dirs, naming.expected());
+        let hints: Vec<String> = dirs.iter().map(|d| format!("{}{}", d.display(), crate::io::untimed_hint(d, naming))).collect();
+        bail!("no frames with a time in their name in --frames ({untimed} files without one; expected {}): {}", naming.expected(), hints.join(" | "));
     }
     Ok((frames, chroma_dc))
 }

@@ -381,7 +381,7 @@ impl Site {
         let file: SiteFile = read_toml(path)?;
         file.validate(path)?;
         let calibration_path = resolve(path, &file.camera.calibration);
-        let calibration: CalibrationFile = read_toml(&calibration_path)?;
+        let calibration: CalibrationFile = read_calibration(path, "camera.calibration", &calibration_path)?;
         let camera = calibration.validate(&calibration_path)?;
         let obstruction = obstruction_mask(&calibration, &calibration_path, &camera)?;
         let clear_reference = read_clear_reference(&calibration, &calibration_path)?;
@@ -389,7 +389,7 @@ impl Site {
         let second_camera = match &file.second_camera {
             Some(s) => {
                 let cp = resolve(path, &s.calibration);
-                let cal: CalibrationFile = read_toml(&cp)?;
+                let cal: CalibrationFile = read_calibration(path, "second_camera.calibration", &cp)?;
                 let camera = cal.validate(&cp)?;
                 let obstruction = obstruction_mask(&cal, &cp, &camera)?;
                 let clear_reference = read_clear_reference(&cal, &cp)?;
@@ -409,6 +409,25 @@ impl Site {
     pub fn clear_sky_model(&self) -> ClearSkyModel {
         self.file.site.clear_sky()
     }
+}
+
+/// The calibration file a site file names in `field`. One that is not there is the site file's
+/// error, naming the field and where it was looked for (relative paths are taken from the site
+/// file's folder), and how to write one.
+fn read_calibration(site_path: &Path, field: &str, calibration_path: &Path) -> Result<CalibrationFile, ConfigError> {
+    if !calibration_path.exists() {
+        return Err(ConfigError::Invalid {
+            file: site_path.to_path_buf(),
+            field: field.into(),
+            expected: format!(
+                "an existing calibration file, relative to the site file's folder (write it with `nephocast calibrate --site {} --frames <a clear day> --out {}`)",
+                site_path.display(),
+                calibration_path.display()
+            ),
+            got: format!("{}, which does not exist", calibration_path.display()),
+        });
+    }
+    read_toml(calibration_path)
 }
 
 /// A calibration's clear-sky library (`camera.clear_reference`), if it names one.
