@@ -149,6 +149,13 @@ fn site_cases() -> Vec<Case> {
     ] {
         push(&mut cases, format!("site: polygon {why}"), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", poly), refused(&["plant.blocks[0].polygon_m"]));
     }
+    // Arrays with a value too many (once read silently without it) or too few.
+    push(&mut cases, "site: polygon vertex of three numbers".into(), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", "[[0.0, 0.0, 1.5], [400.0, 0.0], [400.0, 300.0]]"), refused(&["plant.blocks[0].polygon_m", "vertex [0]", "invalid length 3", "2 numbers"]));
+    push(&mut cases, "site: polygon vertex of one number".into(), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", "[[0.0, 0.0], [400.0], [400.0, 300.0]]"), refused(&["plant.blocks[0].polygon_m", "vertex [1]", "invalid length 1"]));
+    push(&mut cases, "site: camera position of four numbers".into(), set(inputs::SITE, "[camera]", "position_m", "[0.0, 0.0, 3.0, 1.0]"), refused(&["camera.position_m", "invalid length 4", "3 numbers"]));
+    push(&mut cases, "site: camera position of two numbers".into(), set(inputs::SITE, "[camera]", "position_m", "[0.0, 0.0]"), refused(&["camera.position_m", "invalid length 2", "3 numbers"]));
+    push(&mut cases, "site: pyranometer position with a height".into(), set(inputs::SITE, "[[pyranometers]]", "position_m", "[200.0, 150.0, 1.5]"), refused(&["pyranometers[0].position_m", "invalid length 3", "2 numbers"]));
+    push(&mut cases, "site: camera position absent (default)".into(), remove_line(inputs::SITE, "[camera]", "position_m"), Expect::Ok);
     let huge_vertices: String = format!("[{}]", (0..10_001).map(|i| { let a = i as f64 / 10_001.0 * std::f64::consts::TAU; format!("[{:.3}, {:.3}]", 100.0 * a.cos(), 100.0 * a.sin()) }).collect::<Vec<_>>().join(", "));
     push(&mut cases, "site: 10001 vertices".into(), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", &huge_vertices), refused(&["plant.blocks[0].polygon_m", "10000 vertices"]));
     // Bounded work: the ±50 km block at 1 m spacing, and its smaller relatives.

@@ -102,6 +102,7 @@ pub struct SecondCameraSection {
     pub calibration: PathBuf,
     /// Position relative to the site origin, (east, north, up) \[m\]; at least
     /// [`crate::stereo::MIN_BASELINE_M`] horizontally from `[camera]`.
+    #[serde(deserialize_with = "crate::settings::exact::numbers")]
     pub position_m: [f64; 3],
     /// Folder of its frames for `replay` (relative to the site file), named like the first camera's;
     /// a frame within [`SECOND_FRAME_SLACK_S`] of a first-camera frame is paired with it.
@@ -140,6 +141,7 @@ pub struct PyranometerSpec {
     /// Name; its column in a measurements CSV is `ghi_<name>_wm2`.
     pub name: String,
     /// Position (east, north) \[m\] from the site origin.
+    #[serde(deserialize_with = "crate::settings::exact::numbers")]
     pub position_m: [f64; 2],
 }
 
@@ -244,7 +246,7 @@ pub struct CameraSection {
     /// The camera's calibration file (relative to the site file).
     pub calibration: PathBuf,
     /// Camera position relative to the site origin, (east, north, up) \[m\].
-    #[serde(default)]
+    #[serde(default, deserialize_with = "crate::settings::exact::numbers")]
     pub position_m: [f64; 3],
     /// How the frames' names carry their time, when not as `…YYYYMMDDTHHMMSS[.fff]Z…`: a chrono
     /// `strftime` pattern found anywhere in the name, e.g. `"%Y-%m-%d_%H-%M-%S"`, `"%Y%m%d%H%M"`,
