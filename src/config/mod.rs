@@ -375,6 +375,17 @@ impl Site {
         Ok(file)
     }
 
+    /// As [`Self::load_without_camera`], for `calibrate`: the site file may name no cloud base yet
+    /// (the sun's track needs none).
+    ///
+    /// # Errors
+    /// A [`ConfigError`] naming the file and field.
+    pub fn load_for_calibrate(path: &Path) -> Result<SiteFile, ConfigError> {
+        let file: SiteFile = read_toml(path)?;
+        file.validate_with(path, false)?;
+        Ok(file)
+    }
+
     /// Load and validate a site file, its calibration file and obstruction mask.
     ///
     /// # Errors
@@ -503,13 +514,23 @@ impl SiteFile {
     /// # Errors
     /// The first field out of range.
     pub fn validate(&self, path: &Path) -> Result<(), ConfigError> {
+        self.validate_with(path, true)
+    }
+
+    /// As [`Self::validate`]; without `require_base` a site with no cloud base at all (no
+    /// `base_height_m`, no `base_height_csv`, too few pyranometers for shadow timing) passes, as
+    /// `calibrate` needs no base: a clear day's ceilometer reads none.
+    ///
+    /// # Errors
+    /// The first field out of range.
+    pub fn validate_with(&self, path: &Path, require_base: bool) -> Result<(), ConfigError> {
         let c = Check { file: path };
         self.validate_site(&c)?;
         for (i, v) in self.camera.position_m.iter().enumerate() {
             c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
         }
         self.camera.frame_naming_checked(&c)?;
-        self.validate_clouds(&c)?;
+        self.validate_clouds(&c, require_base)?;
         self.validate_plant(&c)?;
         let fc = &self.forecast;
         if !(1..=60).contains(&fc.horizon_min) {
@@ -577,7 +598,7 @@ impl SiteFile {
     }
 
     /// `[clouds]`: one source of the base height, its prior spread, shadow timing's pyranometers.
-    fn validate_clouds(&self, c: &Check<'_>) -> Result<(), ConfigError> {
+    fn validate_clouds(&self, c: &Check<'_>, require_base: bool) -> Result<(), ConfigError> {
         match (&self.clouds.base_height_m, &self.clouds.base_height_csv) {
             (Some(h), None) => c.range("clouds.base_height_m", *h, crate::settings::CBH_MIN_M, crate::settings::CBH_MAX_M)?,
             (None, Some(_)) => {}
@@ -585,7 +606,7 @@ impl SiteFile {
                 return Err(c.invalid("clouds", "one of base_height_m or base_height_csv", "both"));
             }
             // No base at all: estimated by shadow timing, which needs the pyranometers.
-            (None, None) if self.pyranometers.len() >= crate::cbh::MIN_SHADOW_SENSORS && self.clouds.shadow_timing != Some(false) => {}
+            (None, None) if !require_base || (self.pyranometers.len() >= crate::cbh::MIN_SHADOW_SENSORS && self.clouds.shadow_timing != Some(false)) => {}
             (None, None) => {
                 return Err(c.invalid(
                     "clouds",
