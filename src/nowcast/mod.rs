@@ -50,7 +50,12 @@ fn measurement_column_notes(path: &std::path::Path, site: &crate::config::SiteFi
     let file = path.display();
     let wanted: Vec<String> = site.pyranometers.iter().map(|p| format!("ghi_{}_wm2", p.name)).collect();
     let missing: Vec<&str> = wanted.iter().filter(|c| m.column(c).is_none()).map(String::as_str).collect();
-    let has = if m.names.is_empty() { "only time_utc".to_string() } else { format!("the columns {}", m.names.join(", ")) };
+    const SHOWN: usize = 12;
+    let has = match m.names.len() {
+        0 => "only time_utc".to_string(),
+        n if n <= SHOWN => format!("the columns {}", m.names.join(", ")),
+        n => format!("the columns {}, … ({n} in all)", m.names[..SHOWN].join(", ")),
+    };
     if missing.len() == wanted.len() && !crate::meter::MeterColumns::find(site, m).any() {
         let expected = if wanted.is_empty() {
             "the site names no [[pyranometers]] (each is read from a column ghi_<name>_wm2)".to_string()
