@@ -398,6 +398,26 @@ pub fn list_frames_named(dir: &Path, naming: &FrameNaming) -> Result<(Vec<FrameR
     Ok((frames, untimed))
 }
 
+/// What a folder without timed frames holds instead, for the error that says so: the image files
+/// whose names carry no time as `naming` reads them (their count and the first by name), or that it
+/// holds no image files (and, when it has one, that its subfolder `frames/` may be the one meant).
+pub fn untimed_hint(dir: &Path, naming: &FrameNaming) -> String {
+    let Ok(rd) = std::fs::read_dir(dir) else { return String::new() };
+    let mut untimed: Vec<String> = rd
+        .flatten()
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .filter(|n| !n.starts_with('.'))
+        .filter(|n| Path::new(n).extension().is_some_and(|x| ["jpg", "jpeg", "png"].contains(&x.to_string_lossy().to_lowercase().as_str())))
+        .filter(|n| naming.time_of(n).is_none())
+        .collect();
+    untimed.sort();
+    match untimed.first() {
+        Some(first) => format!("; {} image file{} without a time so read, e.g. `{first}`", untimed.len(), if untimed.len() == 1 { "" } else { "s" }),
+        None if dir.join("frames").is_dir() => "; it holds no JPEG or PNG files, but has a subfolder `frames/`: give that folder".to_string(),
+        None => "; it holds no JPEG or PNG files".to_string(),
+    }
+}
+
 /// A time series of one value, e.g. cloud base height.
 #[derive(Debug, Clone)]
 pub struct Series {

@@ -41,6 +41,7 @@ pub struct BlockSpec {
     /// Block name.
     pub name: String,
     /// Footprint polygon vertices (east, north) \[m\] from the site origin.
+    #[serde(deserialize_with = "crate::settings::exact::points")]
     pub polygon_m: Vec<[f64; 2]>,
     /// DC capacity \[kW\].
     pub capacity_kw: f64,

@@ -315,7 +315,7 @@ pub fn replay_staged_with(opts: &ReplayOptions, bar: &indicatif::ProgressBar) ->
 pub fn frames_of(dir: &Path, naming: &crate::io::FrameNaming) -> Result<(Vec<crate::io::FrameRef>, usize), ReplayError> {
     let (frames, untimed) = crate::io::list_frames_named(dir, naming)?;
     if frames.is_empty() {
-        return Err(InputError::Other { file: dir.to_path_buf(), message: format!("no frames: expected image files named {}", naming.expected()) }.into());
+        return Err(InputError::Other { file: dir.to_path_buf(), message: format!("no frames: expected image files named {}{}", naming.expected(), crate::io::untimed_hint(dir, naming)) }.into());
     }
     Ok((frames, untimed))
 }

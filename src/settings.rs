@@ -77,6 +77,38 @@ pub fn parse_toml<T: for<'de> Deserialize<'de>>(text: &str, path: &Path) -> Resu
     })
 }
 
+/// Fixed-length arrays of numbers in site files, read so that extra values are refused: serde's
+/// arrays stop after their length and `toml` does not check what is left, so `[east, north, up]`
+/// where `[east, north]` was meant (or a fourth value in a camera position) once passed silently.
+pub mod exact {
+    use serde::{Deserialize, Deserializer, de::Error as _};
+
+    /// `[f64; N]`, exactly N numbers.
+    ///
+    /// # Errors
+    /// Not an array of numbers, or not N of them.
+    pub fn numbers<'de, D: Deserializer<'de>, const N: usize>(d: D) -> Result<[f64; N], D::Error> {
+        let v = Vec::<f64>::deserialize(d)?;
+        let n = v.len();
+        v.try_into().map_err(|_| D::Error::invalid_length(n, &format!("an array of {N} numbers").as_str()))
+    }
+
+    /// `Vec<[f64; N]>` (a polygon's vertices), each exactly N numbers.
+    ///
+    /// # Errors
+    /// Not an array of arrays of numbers, or one of them not N long.
+    pub fn points<'de, D: Deserializer<'de>, const N: usize>(d: D) -> Result<Vec<[f64; N]>, D::Error> {
+        let v = Vec::<Vec<f64>>::deserialize(d)?;
+        v.into_iter()
+            .enumerate()
+            .map(|(i, p)| {
+                let n = p.len();
+                p.try_into().map_err(|_| D::Error::custom(format!("vertex [{i}]: invalid length {n}, expected an array of {N} numbers")))
+            })
+            .collect()
+    }
+}
+
 pub(crate) struct Check<'a> {
     pub(crate) file: &'a Path,
 }

@@ -564,7 +564,8 @@ pub struct Evaluation {
 
 /// Pooled skill over the horizons `from_s..=to_s`: one minus the ratio of the forecast's and smart
 /// persistence's RMSE over all their pairs together (each horizon's mean squared error weighted by
-/// its pairs), as the independent scenes' scorer pools 5–15 minutes. NaN without pairs.
+/// its pairs): the pooled 5–15 min skill quoted for the independent scenes, from their scorer's
+/// per-horizon table (`score.py` itself prints no pooled figure). NaN without pairs.
 pub fn pooled_skill(scores: &[HorizonScore], from_s: u32, to_s: u32) -> f64 {
     let (mut f, mut p, mut n) = (0.0, 0.0, 0usize);
     for h in scores.iter().filter(|h| (from_s..=to_s).contains(&h.horizon_s) && h.n > 0) {

@@ -149,6 +149,13 @@ fn site_cases() -> Vec<Case> {
     ] {
         push(&mut cases, format!("site: polygon {why}"), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", poly), refused(&["plant.blocks[0].polygon_m"]));
     }
+    // Arrays with a value too many (once read silently without it) or too few.
+    push(&mut cases, "site: polygon vertex of three numbers".into(), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", "[[0.0, 0.0, 1.5], [400.0, 0.0], [400.0, 300.0]]"), refused(&["plant.blocks[0].polygon_m", "vertex [0]", "invalid length 3", "2 numbers"]));
+    push(&mut cases, "site: polygon vertex of one number".into(), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", "[[0.0, 0.0], [400.0], [400.0, 300.0]]"), refused(&["plant.blocks[0].polygon_m", "vertex [1]", "invalid length 1"]));
+    push(&mut cases, "site: camera position of four numbers".into(), set(inputs::SITE, "[camera]", "position_m", "[0.0, 0.0, 3.0, 1.0]"), refused(&["camera.position_m", "invalid length 4", "3 numbers"]));
+    push(&mut cases, "site: camera position of two numbers".into(), set(inputs::SITE, "[camera]", "position_m", "[0.0, 0.0]"), refused(&["camera.position_m", "invalid length 2", "3 numbers"]));
+    push(&mut cases, "site: pyranometer position with a height".into(), set(inputs::SITE, "[[pyranometers]]", "position_m", "[200.0, 150.0, 1.5]"), refused(&["pyranometers[0].position_m", "invalid length 3", "2 numbers"]));
+    push(&mut cases, "site: camera position absent (default)".into(), remove_line(inputs::SITE, "[camera]", "position_m"), Expect::Ok);
     let huge_vertices: String = format!("[{}]", (0..10_001).map(|i| { let a = i as f64 / 10_001.0 * std::f64::consts::TAU; format!("[{:.3}, {:.3}]", 100.0 * a.cos(), 100.0 * a.sin()) }).collect::<Vec<_>>().join(", "));
     push(&mut cases, "site: 10001 vertices".into(), set(inputs::SITE, "[[plant.blocks]]", "polygon_m", &huge_vertices), refused(&["plant.blocks[0].polygon_m", "10000 vertices"]));
     // Bounded work: the ±50 km block at 1 m spacing, and its smaller relatives.
@@ -552,6 +559,22 @@ fn bad_inputs_through_the_binary() {
     add(vec!["replay", "--site", &cbh_site, "--frames", &fr, "--out", &out, "--quiet"], vec!["cbh.csv", "line 5", "cbh_m"]);
     let kwp = kw_path.to_string_lossy().into_owned();
     add(vec!["replay", "--site", &good, "--frames", &fr, "--out", &out, "--quiet", "--measurements", &kwp], vec!["kw.csv", "column ghi_a_wm2", "kW/m²"]);
+    // A site naming a calibration not yet written: the site file's field, where it was looked
+    // for, and how to write it.
+    let nocal = site("nocal.toml", inputs::SITE.replace("calibration = \"cam.toml\"", "calibration = \"calibration/new.toml\""));
+    add(vec!["replay", "--site", &nocal, "--frames", &fr, "--out", &out, "--quiet"], vec!["nocal.toml", "field camera.calibration", "new.toml", "does not exist", "nephocast calibrate"]);
+    // Frames named otherwise than the pattern says: the pattern and a name it did not read.
+    let dashed = site("dashed.toml", inputs::SITE.replace("position_m = [0.0, 0.0, 3.0]\n", "position_m = [0.0, 0.0, 3.0]\nframe_time_format = \"%Y-%m-%d_%H-%M-%S\"\n"));
+    add(vec!["replay", "--site", &dashed, "--frames", &fr, "--out", &out, "--quiet"], vec!["frame_time_format", "1 image file without a time so read, e.g. `frame_20260614T083000.000Z.jpg`"]);
+    // A site without a cloud base (a clear day's ceilometer reads none): `calibrate` reads it and
+    // gets as far as the sun's detections (one frame here), `replay` refuses it naming `clouds`.
+    let nobase = site("nobase.toml", remove_line(inputs::SITE, "[clouds]", "base_height_m").replace("[[pyranometers]]\nname = \"a\"\nposition_m = [200.0, 150.0]\n", ""));
+    add(vec!["calibrate", "--site", &nobase, "--frames", &fr, "--out", &out], vec!["1 sun detections, 20 needed"]);
+    add(vec!["replay", "--site", &nobase, "--frames", &fr, "--out", &out, "--quiet"], vec!["nobase.toml", "field clouds", "base_height_m or base_height_csv"]);
+    // The folder above the frames: no images there, but a subfolder `frames/`.
+    let above = dir.to_string_lossy().into_owned();
+    add(vec!["replay", "--site", &good, "--frames", &above, "--out", &out, "--quiet"], vec!["no frames", "subfolder `frames/`"]);
+    add(vec!["calibrate", "--site", &good, "--frames", &above, "--out", &out], vec!["no frames", "subfolder `frames/`"]);
     let n = cases.len();
     for (args, names) in cases {
         let a: Vec<&str> = args.iter().map(String::as_str).collect();
@@ -564,6 +587,49 @@ fn bad_inputs_through_the_binary() {
     }
     assert!(!Path::new(&out).join("forecasts.csv").exists(), "no outputs from refused runs");
     println!("bad inputs through the binary: {n} cases");
+}
+
+/// A measurements file whose columns the site does not find is not an error (a logger may lack a
+/// sensor for a day), but `replay` says so: a pyranometer without its `ghi_<name>_wm2` column, and
+/// a file nothing of which is used (a misspelt column once made a run without measurements that
+/// looked like one with them).
+#[test]
+fn measurement_columns_the_site_does_not_find_are_noted() {
+    let d = tempfile::tempdir().unwrap();
+    let dir = d.path();
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
+    std::fs::copy(demo.join("calibration").join("larkspur-sky1.toml"), dir.join("cam.toml")).unwrap();
+    let frames = dir.join("frames");
+    std::fs::create_dir_all(&frames).unwrap();
+    let mut f: Vec<_> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    f.sort();
+    std::fs::copy(&f[0], frames.join(f[0].file_name().unwrap())).unwrap();
+    let two = format!("{}\n[[pyranometers]]\nname = \"b\"\nposition_m = [-200.0, -200.0]\n", inputs::SITE);
+    std::fs::write(dir.join("site.toml"), &two).unwrap();
+    let run = |csv: &str| {
+        let m = dir.join("m.csv");
+        std::fs::write(&m, csv).unwrap();
+        let o = bin()
+            .args(["replay", "--site", dir.join("site.toml").to_str().unwrap(), "--frames", frames.to_str().unwrap(), "--out", dir.join("out").to_str().unwrap(), "--quiet", "--measurements", m.to_str().unwrap()])
+            .output()
+            .unwrap();
+        assert_eq!(o.status.code(), Some(0), "{}", String::from_utf8_lossy(&o.stderr));
+        String::from_utf8_lossy(&o.stdout).into_owned()
+    };
+    let base = inputs::measurements();
+    // Both sensors there: no note.
+    let both = base.replace("ghi_a_wm2,", "ghi_a_wm2,ghi_b_wm2,").lines().enumerate().map(|(i, l)| if i == 0 { format!("{l}\n") } else { let (t, rest) = l.split_once(',').unwrap(); format!("{t},{},{rest}\n", rest.split(',').next().unwrap()) }).collect::<String>();
+    let out = run(&both);
+    assert!(!out.contains("note: "), "{out}");
+    // One of two missing.
+    let out = run(&base);
+    assert!(out.contains("m.csv has no column ghi_b_wm2") && out.contains("that sensor is left out"), "{out}");
+    assert!(!out.contains("nothing in"), "{out}");
+    // Misspelt (no unit): nothing used, with the columns expected and found.
+    let out = run(&base.replacen("ghi_a_wm2", "ghi_a", 1));
+    for want in ["note: nothing in", "m.csv is used", "ghi_a_wm2, ghi_b_wm2", "it has the columns ghi_a, temp_air_c, wind_speed_mps", "as without --measurements"] {
+        assert!(out.contains(want), "{want:?} not in {out}");
+    }
 }
 
 /// `calibrate` applies the loader's rules before it writes. A day of frames every 25 minutes gives

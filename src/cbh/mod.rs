@@ -93,7 +93,8 @@ pub const CHECK_MIN_DISAGREEING: usize = 3;
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct CloudSection {
-    /// Fixed cloud base height above the camera \[m\].
+    /// Fixed cloud base height above the site origin \[m\] (the camera's height, `camera.position_m[2]`,
+    /// is taken off for the map).
     #[serde(default)]
     pub base_height_m: Option<f64>,
     /// A CSV series `time_utc,cbh_m` (e.g. from a ceilometer), relative to the site file.

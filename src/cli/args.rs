@@ -25,7 +25,7 @@ pub enum Command {
     Synth(SynthArgs),
     /// Replay a recorded sequence: forecasts, motion and per-frame records.
     Replay(ReplayArgs),
-    /// Score a replay of a synthetic sequence against its truth.
+    /// Score a replay against a synthetic sequence's truth, or against measured pyranometers and power meters.
     Evaluate(EvaluateArgs),
     /// Replay the shipped demo data end to end and score it.
     Demo(DemoArgs),
@@ -191,10 +191,12 @@ pub struct RegistersArgs {
 /// Arguments of `nephocast calibrate`.
 #[derive(Debug, clap::Args)]
 pub struct CalibrateArgs {
-    /// The site file (location for the sun's position).
+    /// The site file (location for the sun's position; the calibration its [camera] names need
+    /// not exist yet: name the --out file there, which replay then reads).
     #[arg(long)]
     pub site: PathBuf,
-    /// Folders of frames named with their UTC time (repeat for several days).
+    /// Folders of clear-sky frames whose names carry their UTC time (…YYYYMMDDTHHMMSS[.fff]Z…, or
+    /// as the site's [camera] frame_time_format says); repeat for several days.
     #[arg(long, required = true)]
     pub frames: Vec<PathBuf>,
     /// The calibration file to write (a residual plot PNG is written beside it).
@@ -335,16 +337,20 @@ pub struct EvaluateArgs {
 /// Arguments of `nephocast replay`.
 #[derive(Debug, clap::Args)]
 pub struct ReplayArgs {
-    /// The site file.
+    /// The site file: site, camera calibration, cloud base height, plant blocks, pyranometers
+    /// (a commented example: examples/site.toml).
     #[arg(long)]
     pub site: PathBuf,
-    /// Folder of frames named with their UTC time.
+    /// Folder of frames whose names carry their UTC time (…YYYYMMDDTHHMMSS[.fff]Z…, or as the
+    /// site's [camera] frame_time_format says).
     #[arg(long)]
     pub frames: PathBuf,
-    /// Output folder.
+    /// Output folder (replaced as a whole).
     #[arg(long)]
     pub out: PathBuf,
-    /// Measurements CSV (pyranometers) to tune beam transmittances from.
+    /// Measurements CSV: time_utc and a ghi_<name>_wm2 column per [[pyranometers]] entry of the
+    /// site (means over each row's period, labelled as [measurements] time_label says, default
+    /// its start); they tune the transmittances, calibrate the bands and check the cloud base.
     #[arg(long)]
     pub measurements: Option<PathBuf>,
     /// Write an overlay picture every N frames (0: none).

@@ -9,8 +9,8 @@ use crate::sun::position;
 
 /// `calibrate`: fit the camera from the sun's track and write the calibration file with its outputs.
 pub(super) fn cmd_calibrate(a: CalibrateArgs) -> Result<()> {
-    // The site file only: the calibration it names may not exist yet.
-    let site = crate::config::Site::load_without_camera(&a.site)?;
+    // The site file only: the calibration it names may not exist yet, nor a cloud base.
+    let site = crate::config::Site::load_for_calibrate(&a.site)?;
     let (frames, chroma_dc) = load_calibration_frames(&a.frames, &site.camera.frame_naming())?;
     let clip = match a.clip_test.as_str() {
         "channels" => crate::calibrate::ClipTest::Channels,
@@ -159,7 +159,8 @@ fn load_calibration_frames(dirs: &[PathBuf], naming: &crate::io::FrameNaming) ->
         }
     }
     if frames.is_empty() {
-        bail!("no frames with a time in their name in {:?} ({untimed} files without one; expected {})", dirs, naming.expected());
+        let hints: Vec<String> = dirs.iter().map(|d| format!("{}{}", d.display(), crate::io::untimed_hint(d, naming))).collect();
+        bail!("no frames with a time in their name in --frames ({untimed} files without one; expected {}): {}", naming.expected(), hints.join(" | "));
     }
     Ok((frames, chroma_dc))
 }

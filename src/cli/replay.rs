@@ -87,6 +87,9 @@ pub fn print_replay_summary(s: &crate::replay::ReplaySummary) {
         let n: usize = s.counters.measurements_flagged.values().sum();
         crate::say!("measurements: {n} values flagged and left out {:?}", s.counters.measurements_flagged);
     }
+    for note in &s.counters.measurement_notes {
+        crate::say!("note: {note}");
+    }
     if let Some(v) = s.last_motion_mps {
         crate::say!("cloud motion at the end: {:.1} m/s toward {:.0}°", v[0].hypot(v[1]), v[0].atan2(v[1]).to_degrees().rem_euclid(360.0));
     }

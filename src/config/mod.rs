@@ -102,6 +102,7 @@ pub struct SecondCameraSection {
     pub calibration: PathBuf,
     /// Position relative to the site origin, (east, north, up) \[m\]; at least
     /// [`crate::stereo::MIN_BASELINE_M`] horizontally from `[camera]`.
+    #[serde(deserialize_with = "crate::settings::exact::numbers")]
     pub position_m: [f64; 3],
     /// Folder of its frames for `replay` (relative to the site file), named like the first camera's;
     /// a frame within [`SECOND_FRAME_SLACK_S`] of a first-camera frame is paired with it.
@@ -140,6 +141,7 @@ pub struct PyranometerSpec {
     /// Name; its column in a measurements CSV is `ghi_<name>_wm2`.
     pub name: String,
     /// Position (east, north) \[m\] from the site origin.
+    #[serde(deserialize_with = "crate::settings::exact::numbers")]
     pub position_m: [f64; 2],
 }
 
@@ -244,7 +246,7 @@ pub struct CameraSection {
     /// The camera's calibration file (relative to the site file).
     pub calibration: PathBuf,
     /// Camera position relative to the site origin, (east, north, up) \[m\].
-    #[serde(default)]
+    #[serde(default, deserialize_with = "crate::settings::exact::numbers")]
     pub position_m: [f64; 3],
     /// How the frames' names carry their time, when not as `…YYYYMMDDTHHMMSS[.fff]Z…`: a chrono
     /// `strftime` pattern found anywhere in the name, e.g. `"%Y-%m-%d_%H-%M-%S"`, `"%Y%m%d%H%M"`,
@@ -373,6 +375,17 @@ impl Site {
         Ok(file)
     }
 
+    /// As [`Self::load_without_camera`], for `calibrate`: the site file may name no cloud base yet
+    /// (the sun's track needs none).
+    ///
+    /// # Errors
+    /// A [`ConfigError`] naming the file and field.
+    pub fn load_for_calibrate(path: &Path) -> Result<SiteFile, ConfigError> {
+        let file: SiteFile = read_toml(path)?;
+        file.validate_with(path, false)?;
+        Ok(file)
+    }
+
     /// Load and validate a site file, its calibration file and obstruction mask.
     ///
     /// # Errors
@@ -381,7 +394,7 @@ impl Site {
         let file: SiteFile = read_toml(path)?;
         file.validate(path)?;
         let calibration_path = resolve(path, &file.camera.calibration);
-        let calibration: CalibrationFile = read_toml(&calibration_path)?;
+        let calibration: CalibrationFile = read_calibration(path, "camera.calibration", &calibration_path)?;
         let camera = calibration.validate(&calibration_path)?;
         let obstruction = obstruction_mask(&calibration, &calibration_path, &camera)?;
         let clear_reference = read_clear_reference(&calibration, &calibration_path)?;
@@ -389,7 +402,7 @@ impl Site {
         let second_camera = match &file.second_camera {
             Some(s) => {
                 let cp = resolve(path, &s.calibration);
-                let cal: CalibrationFile = read_toml(&cp)?;
+                let cal: CalibrationFile = read_calibration(path, "second_camera.calibration", &cp)?;
                 let camera = cal.validate(&cp)?;
                 let obstruction = obstruction_mask(&cal, &cp, &camera)?;
                 let clear_reference = read_clear_reference(&cal, &cp)?;
@@ -409,6 +422,25 @@ impl Site {
     pub fn clear_sky_model(&self) -> ClearSkyModel {
         self.file.site.clear_sky()
     }
+}
+
+/// The calibration file a site file names in `field`. One that is not there is the site file's
+/// error, naming the field and where it was looked for (relative paths are taken from the site
+/// file's folder), and how to write one.
+fn read_calibration(site_path: &Path, field: &str, calibration_path: &Path) -> Result<CalibrationFile, ConfigError> {
+    if !calibration_path.exists() {
+        return Err(ConfigError::Invalid {
+            file: site_path.to_path_buf(),
+            field: field.into(),
+            expected: format!(
+                "an existing calibration file, relative to the site file's folder (write it with `nephocast calibrate --site {} --frames <a clear day> --out {}`)",
+                site_path.display(),
+                calibration_path.display()
+            ),
+            got: format!("{}, which does not exist", calibration_path.display()),
+        });
+    }
+    read_toml(calibration_path)
 }
 
 /// A calibration's clear-sky library (`camera.clear_reference`), if it names one.
@@ -482,13 +514,23 @@ impl SiteFile {
     /// # Errors
     /// The first field out of range.
     pub fn validate(&self, path: &Path) -> Result<(), ConfigError> {
+        self.validate_with(path, true)
+    }
+
+    /// As [`Self::validate`]; without `require_base` a site with no cloud base at all (no
+    /// `base_height_m`, no `base_height_csv`, too few pyranometers for shadow timing) passes, as
+    /// `calibrate` needs no base: a clear day's ceilometer reads none.
+    ///
+    /// # Errors
+    /// The first field out of range.
+    pub fn validate_with(&self, path: &Path, require_base: bool) -> Result<(), ConfigError> {
         let c = Check { file: path };
         self.validate_site(&c)?;
         for (i, v) in self.camera.position_m.iter().enumerate() {
             c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
         }
         self.camera.frame_naming_checked(&c)?;
-        self.validate_clouds(&c)?;
+        self.validate_clouds(&c, require_base)?;
         self.validate_plant(&c)?;
         let fc = &self.forecast;
         if !(1..=60).contains(&fc.horizon_min) {
@@ -556,7 +598,7 @@ impl SiteFile {
     }
 
     /// `[clouds]`: one source of the base height, its prior spread, shadow timing's pyranometers.
-    fn validate_clouds(&self, c: &Check<'_>) -> Result<(), ConfigError> {
+    fn validate_clouds(&self, c: &Check<'_>, require_base: bool) -> Result<(), ConfigError> {
         match (&self.clouds.base_height_m, &self.clouds.base_height_csv) {
             (Some(h), None) => c.range("clouds.base_height_m", *h, crate::settings::CBH_MIN_M, crate::settings::CBH_MAX_M)?,
             (None, Some(_)) => {}
@@ -564,7 +606,7 @@ impl SiteFile {
                 return Err(c.invalid("clouds", "one of base_height_m or base_height_csv", "both"));
             }
             // No base at all: estimated by shadow timing, which needs the pyranometers.
-            (None, None) if self.pyranometers.len() >= crate::cbh::MIN_SHADOW_SENSORS && self.clouds.shadow_timing != Some(false) => {}
+            (None, None) if !require_base || (self.pyranometers.len() >= crate::cbh::MIN_SHADOW_SENSORS && self.clouds.shadow_timing != Some(false)) => {}
             (None, None) => {
                 return Err(c.invalid(
                     "clouds",

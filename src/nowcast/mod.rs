@@ -41,6 +41,41 @@ fn used_columns(site: &crate::config::SiteFile, m: Measurements) -> Option<Pyran
     (!cols.is_empty() || crate::meter::MeterColumns::find(site, &m).any()).then_some((m, cols))
 }
 
+/// Notes on a measurements file whose columns the site does not find: a `[[pyranometers]]` entry
+/// without its `ghi_<name>_wm2` column is left out of the tuning, the bands and shadow timing, and
+/// a file with no pyranometer or meter column of the site is not used at all ([`used_columns`]).
+/// Neither is an error (a logger may lack a sensor for a day), but a misspelt column would
+/// otherwise pass unseen.
+fn measurement_column_notes(path: &std::path::Path, site: &crate::config::SiteFile, m: &Measurements) -> Vec<String> {
+    let file = path.display();
+    let wanted: Vec<String> = site.pyranometers.iter().map(|p| format!("ghi_{}_wm2", p.name)).collect();
+    let missing: Vec<&str> = wanted.iter().filter(|c| m.column(c).is_none()).map(String::as_str).collect();
+    const SHOWN: usize = 12;
+    let has = match m.names.len() {
+        0 => "only time_utc".to_string(),
+        n if n <= SHOWN => format!("the columns {}", m.names.join(", ")),
+        n => format!("the columns {}, … ({n} in all)", m.names[..SHOWN].join(", ")),
+    };
+    if missing.len() == wanted.len() && !crate::meter::MeterColumns::find(site, m).any() {
+        let expected = if wanted.is_empty() {
+            "the site names no [[pyranometers]] (each is read from a column ghi_<name>_wm2)".to_string()
+        } else {
+            format!("no column of the site's [[pyranometers]] ({})", wanted.join(", "))
+        };
+        return vec![format!(
+            "nothing in {file} is used: {expected} and no power_plant_kw or power_<block>_kw column; it has {has}. The run is as without --measurements"
+        )];
+    }
+    if missing.is_empty() {
+        return vec![];
+    }
+    vec![format!(
+        "{file} has no column {} for the site's [[pyranometers]]: {} left out (it has {has})",
+        missing.join(", "),
+        if missing.len() == 1 { "that sensor is" } else { "those sensors are" }
+    )]
+}
+
 /// The measurements held with their pyranometer columns, when they have any (what the tuning,
 /// the band calibration and shadow timing read).
 fn pyranometers_of(m: &Option<Pyranometers>) -> Option<&Pyranometers> {
@@ -150,18 +185,21 @@ impl Nowcaster {
             None => None,
         };
         let mut flagged = std::collections::BTreeMap::new();
+        let mut notes = vec![];
         let meas = match measurements {
             Some(p) => {
                 let mut m = Measurements::read_csv(p)?;
                 m.label_at_start(site.file.measurements.time_label, None);
                 let report = m.screen_site(p, &site.file)?;
                 flagged = report.counts();
+                notes = measurement_column_notes(p, &site.file, &m);
                 Some(m)
             }
             None => None,
         };
         let mut nc = Nowcaster::new(site, series, meas);
         nc.counters.measurements_flagged = flagged;
+        nc.counters.measurement_notes = notes;
         Ok(nc)
     }
 

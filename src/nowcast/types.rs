@@ -199,6 +199,9 @@ pub struct Counters {
     /// Measurement values flagged and left out when the measurements were read, by
     /// `"<column> <reason>"` ([`crate::io::Measurements::screen`]).
     pub measurements_flagged: std::collections::BTreeMap<String, usize>,
+    /// Notes on the measurements' columns when the engine was set up: a site pyranometer without
+    /// its column, or a file the site finds nothing in.
+    pub measurement_notes: Vec<String>,
 }
 
 /// One frame through [`super::Nowcaster::step_with`]: the frame as read (or why it was not), the
