@@ -625,9 +625,15 @@ fn measurement_columns_the_site_does_not_find_are_noted() {
     let out = run(&base);
     assert!(out.contains("m.csv has no column ghi_b_wm2") && out.contains("that sensor is left out"), "{out}");
     assert!(!out.contains("nothing in"), "{out}");
-    // Misspelt (no unit): nothing used, with the columns expected and found.
-    let out = run(&base.replacen("ghi_a_wm2", "ghi_a", 1));
-    for want in ["note: nothing in", "m.csv is used", "ghi_a_wm2, ghi_b_wm2", "it has the columns ghi_a, temp_air_c, wind_speed_mps", "as without --measurements"] {
+    // Misspelt (no unit): both sensors left out, the weather columns still read by the power model.
+    let misspelt = base.replacen("ghi_a_wm2", "ghi_a", 1);
+    let out = run(&misspelt);
+    assert!(out.contains("m.csv has no column ghi_a_wm2, ghi_b_wm2") && out.contains("those sensors are left out"), "{out}");
+    assert!(!out.contains("nothing in"), "{out}");
+    // Misspelt and no weather columns: nothing used, with the columns expected and found.
+    let bare: String = misspelt.lines().map(|l| format!("{}\n", l.splitn(3, ',').take(2).collect::<Vec<_>>().join(","))).collect();
+    let out = run(&bare);
+    for want in ["note: nothing in", "m.csv is used", "ghi_a_wm2, ghi_b_wm2", "it has the columns ghi_a.", "as without --measurements"] {
         assert!(out.contains(want), "{want:?} not in {out}");
     }
 }

@@ -538,3 +538,39 @@ fn horizon_zero_skill_is_not_nan() {
         assert!(!text.to_lowercase().contains("nan") && !text.contains("inf"), "{args:?}: {text}");
     }
 }
+
+/// A measurements file with only the weather (`temp_air_c`, `wind_speed_mps`) is read by the power
+/// model without pyranometers (before, a file without a pyranometer or meter column was ignored
+/// whole): hot still air heats the modules, and the power forecast falls by the temperature
+/// coefficient (the Faiman model, `power`), while the irradiance is unchanged.
+#[test]
+fn weather_alone_reaches_the_power_model() {
+    let d = tempfile::tempdir().unwrap();
+    let frames = d.path().join("frames");
+    demo_frames(&frames, 3);
+    let run = |measurements: Option<&std::path::Path>, out: &str| {
+        let out = d.path().join(out);
+        let mut args: Vec<String> = ["replay", "--site", demo().join("site.toml").to_str().unwrap(), "--frames", frames.to_str().unwrap(), "--out", out.to_str().unwrap(), "--quiet"].map(String::from).to_vec();
+        if let Some(m) = measurements {
+            args.extend(["--measurements".to_string(), m.to_str().unwrap().to_string()]);
+        }
+        let o = bin().args(&args).output().unwrap();
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let stdout = String::from_utf8_lossy(&o.stdout).into_owned();
+        (std::fs::read_to_string(out.join("forecasts.csv")).unwrap(), stdout)
+    };
+    let mut csv = String::from("time_utc,temp_air_c,wind_speed_mps\n");
+    for k in 0..120 {
+        csv += &format!("2026-06-14T{:02}:{:02}:00Z,45.0,0.5\n", 7 + k / 60, k % 60);
+    }
+    let m = d.path().join("weather.csv");
+    std::fs::write(&m, csv).unwrap();
+    let (plain, _) = run(None, "plain");
+    let (hot, stdout) = run(Some(&m), "hot");
+    assert!(!stdout.contains("nothing in"), "{stdout}");
+    let col = |fc: &str, name: &str| fc.lines().next().unwrap().split(',').position(|c| c == name).unwrap();
+    let plant = |fc: &str, name: &str| -> f64 { let c = col(fc, name); fc.lines().skip(1).filter(|l| l.contains(",plant,")).map(|l| l.split(',').nth(c).unwrap().parse::<f64>().unwrap()).sum() };
+    assert_eq!(plant(&plain, "ghi_wm2"), plant(&hot, "ghi_wm2"), "the weather must not move the irradiance");
+    let (p0, p1) = (plant(&plain, "power_kw"), plant(&hot, "power_kw"));
+    assert!(p1 < 0.97 * p0, "45 °C still air should cut the power: {p1:.0} against {p0:.0} kW summed");
+}

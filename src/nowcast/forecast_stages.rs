@@ -21,12 +21,14 @@ pub(super) struct SiteInputs<'a> {
     pub(super) site: &'a Site,
     pub(super) plant: &'a Plant,
     pub(super) pyranometers: Option<&'a Pyranometers>,
+    /// The whole measurements file, for its weather columns (read with or without pyranometers).
+    pub(super) measurements: Option<&'a crate::io::Measurements>,
 }
 
 impl SiteInputs<'_> {
     /// A weather value from the measurements CSV at a time (column `temp_air_c` or `wind_speed_mps`).
     fn weather(&self, t: &DateTime<Utc>, column: &str) -> Option<f64> {
-        let (m, _) = self.pyranometers?;
+        let m = self.measurements?;
         let v = m.at(m.column(column)?, t);
         v.is_finite().then_some(v)
     }

@@ -34,11 +34,21 @@ type PyranometerColumn = (usize, [f64; 2]);
 /// measured).
 type Pyranometers = (Measurements, Vec<PyranometerColumn>);
 
-/// The measurements with the site's pyranometer columns found, when they hold a pyranometer or a
-/// plant meter column ([`crate::meter`]); `None` otherwise (nothing in them is used).
+/// The weather columns the power model reads when present (module temperature from the air's
+/// temperature and the wind, `power`).
+const WEATHER_COLUMNS: [&str; 2] = ["temp_air_c", "wind_speed_mps"];
+
+/// Whether the measurements hold anything the site uses besides its pyranometers: a plant meter
+/// column ([`crate::meter`]) or a weather column ([`WEATHER_COLUMNS`]).
+fn has_other_used_columns(site: &crate::config::SiteFile, m: &Measurements) -> bool {
+    crate::meter::MeterColumns::find(site, m).any() || WEATHER_COLUMNS.iter().any(|c| m.column(c).is_some())
+}
+
+/// The measurements with the site's pyranometer columns found, when they hold a pyranometer, a
+/// plant meter or a weather column; `None` otherwise (nothing in them is used).
 fn used_columns(site: &crate::config::SiteFile, m: Measurements) -> Option<Pyranometers> {
     let cols: Vec<PyranometerColumn> = site.pyranometers.iter().filter_map(|p| m.column(&format!("ghi_{}_wm2", p.name)).map(|c| (c, p.position_m))).collect();
-    (!cols.is_empty() || crate::meter::MeterColumns::find(site, &m).any()).then_some((m, cols))
+    (!cols.is_empty() || has_other_used_columns(site, &m)).then_some((m, cols))
 }
 
 /// Notes on a measurements file whose columns the site does not find: a `[[pyranometers]]` entry
@@ -56,14 +66,14 @@ fn measurement_column_notes(path: &std::path::Path, site: &crate::config::SiteFi
         n if n <= SHOWN => format!("the columns {}", m.names.join(", ")),
         n => format!("the columns {}, … ({n} in all)", m.names[..SHOWN].join(", ")),
     };
-    if missing.len() == wanted.len() && !crate::meter::MeterColumns::find(site, m).any() {
+    if missing.len() == wanted.len() && !has_other_used_columns(site, m) {
         let expected = if wanted.is_empty() {
             "the site names no [[pyranometers]] (each is read from a column ghi_<name>_wm2)".to_string()
         } else {
             format!("no column of the site's [[pyranometers]] ({})", wanted.join(", "))
         };
         return vec![format!(
-            "nothing in {file} is used: {expected} and no power_plant_kw or power_<block>_kw column; it has {has}. The run is as without --measurements"
+            "nothing in {file} is used: {expected} and no power_plant_kw, power_<block>_kw, temp_air_c or wind_speed_mps column; it has {has}. The run is as without --measurements"
         )];
     }
     if missing.is_empty() {
@@ -434,7 +444,7 @@ impl Nowcaster {
 
     /// What the forecast and ensemble stages read of the engine.
     fn inputs(&self) -> SiteInputs<'_> {
-        SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements) }
+        SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements), measurements: self.measurements.as_ref().map(|(m, _)| m) }
     }
 
     /// Process one frame.
@@ -514,7 +524,7 @@ impl Nowcaster {
         };
         let upper = cbh_upper.map_or((1.0, crate::cbh::UPPER_LAYER_PRIOR_REL_SIGMA), |u| (u.cbh_m / cbh, u.rel_sigma()));
         self.stereo.cbh_above_a_m = Some((cbh_est.cbh_m - cam_z).max(10.0));
-        let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements) };
+        let cx = SiteInputs { site: &self.site, plant: &self.plant, pyranometers: pyranometers_of(&self.measurements), measurements: self.measurements.as_ref().map(|(m, _)| m) };
         // With `glare_fill_from_history`, each layer's view of the map with the glare filled from
         // the kept maps moved by that layer's motion (the motion above measured the map as seen).
         let glare_filled = self.glare_filled(&frame.time, &map, &layer_v, labels.as_deref());
