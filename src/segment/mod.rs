@@ -463,9 +463,14 @@ impl FrameReference<'_> {
     ///
     /// # Panics
     /// When the geometry has fewer than `n` samples.
+    ///
+    /// Each bin's "learned" looked up once, and the three tests combined without branches (the same
+    /// values as `plain && outside_glare && weight > 0.5` for every sample: every sample's bin is a
+    /// library bin, placeholders included).
     pub fn plain_and_learned_all(&self, sky: &SkyGeometry, n: usize) -> Vec<bool> {
-        let weight = &self.reference.weight;
-        sky.plain[..n].iter().zip(&sky.gamma_deg[..n]).zip(&sky.bin[..n]).map(|((p, g), b)| *p && self.outside_glare(*g) && weight[*b as usize] > 0.5).collect()
+        let learned: Vec<bool> = self.reference.weight.iter().map(|w| *w > 0.5).collect();
+        let glare = self.glare_zone_deg;
+        sky.plain[..n].iter().zip(&sky.gamma_deg[..n]).zip(&sky.bin[..n]).map(|((p, g), b)| *p & (*g >= glare) & learned[*b as usize]).collect()
     }
 
     /// The class of a sample reading `rgb` in library bin `bin` of clipped clear sky
