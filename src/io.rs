@@ -385,8 +385,7 @@ pub fn list_frames_named(dir: &Path, naming: &FrameNaming) -> Result<(Vec<FrameR
     for e in rd.flatten() {
         let p = e.path();
         let name = e.file_name().to_string_lossy().into_owned();
-        let ext = p.extension().map(|x| x.to_string_lossy().to_lowercase()).unwrap_or_default();
-        if !["jpg", "jpeg", "png"].contains(&ext.as_str()) || name.starts_with('.') {
+        if !is_frame_file(&name) {
             continue;
         }
         match naming.time_of(&name) {
@@ -398,6 +397,12 @@ pub fn list_frames_named(dir: &Path, naming: &FrameNaming) -> Result<(Vec<FrameR
     Ok((frames, untimed))
 }
 
+/// Whether a file name is one a frames folder's listing considers: a JPEG or PNG extension (any
+/// case), not a hidden file.
+pub fn is_frame_file(name: &str) -> bool {
+    !name.starts_with('.') && Path::new(name).extension().is_some_and(|x| ["jpg", "jpeg", "png"].contains(&x.to_string_lossy().to_lowercase().as_str()))
+}
+
 /// What a folder without timed frames holds instead, for the error that says so: the image files
 /// whose names carry no time as `naming` reads them (their count and the first by name), or that it
 /// holds no image files (and, when it has one, that its subfolder `frames/` may be the one meant).
@@ -406,9 +411,7 @@ pub fn untimed_hint(dir: &Path, naming: &FrameNaming) -> String {
     let mut untimed: Vec<String> = rd
         .flatten()
         .map(|e| e.file_name().to_string_lossy().into_owned())
-        .filter(|n| !n.starts_with('.'))
-        .filter(|n| Path::new(n).extension().is_some_and(|x| ["jpg", "jpeg", "png"].contains(&x.to_string_lossy().to_lowercase().as_str())))
-        .filter(|n| naming.time_of(n).is_none())
+        .filter(|n| is_frame_file(n) && naming.time_of(n).is_none())
         .collect();
     untimed.sort();
     match untimed.first() {

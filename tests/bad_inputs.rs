@@ -575,6 +575,14 @@ fn bad_inputs_through_the_binary() {
     let above = dir.to_string_lossy().into_owned();
     add(vec!["replay", "--site", &good, "--frames", &above, "--out", &out, "--quiet"], vec!["no frames", "subfolder `frames/`"]);
     add(vec!["calibrate", "--site", &good, "--frames", &above, "--out", &out], vec!["no frames", "subfolder `frames/`"]);
+    // Frames whose names carry a time but whose contents are not images: said so, not "no frames".
+    let junk = dir.join("junk");
+    std::fs::create_dir_all(&junk).unwrap();
+    for n in ["frame_20260614T083000.000Z.jpg", "frame_20260614T083030.000Z.jpg"] {
+        std::fs::write(junk.join(n), b"not a jpeg").unwrap();
+    }
+    let junk = junk.to_string_lossy().into_owned();
+    add(vec!["calibrate", "--site", &good, "--frames", &junk, "--out", &out], vec!["2 frames had a time in their name but none could be read", "skipped"]);
     let n = cases.len();
     for (args, names) in cases {
         let a: Vec<&str> = args.iter().map(String::as_str).collect();

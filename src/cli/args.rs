@@ -345,12 +345,14 @@ pub struct ReplayArgs {
     /// site's [camera] frame_time_format says).
     #[arg(long)]
     pub frames: PathBuf,
-    /// Output folder (replaced as a whole).
+    /// Output folder (replaced as a whole; with --batch, each day's folder and the aggregate).
     #[arg(long)]
     pub out: PathBuf,
     /// Measurements CSV: time_utc and a ghi_<name>_wm2 column per [[pyranometers]] entry of the
     /// site (means over each row's period, labelled as [measurements] time_label says, default
-    /// its start); they tune the transmittances, calibrate the bands and check the cloud base.
+    /// its start); they tune the transmittances, calibrate the bands and, with at least three
+    /// sensors, check the cloud base. Optional columns: temp_air_c and wind_speed_mps (the
+    /// modules' temperature in the power model), power_plant_kw and power_<block>_kw (meters).
     #[arg(long)]
     pub measurements: Option<PathBuf>,
     /// Write an overlay picture every N frames (0: none).

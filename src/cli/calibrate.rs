@@ -135,6 +135,7 @@ fn load_calibration_frames(dirs: &[PathBuf], naming: &crate::io::FrameNaming) ->
     let mut frames = vec![];
     let mut chroma_dc: Option<u16> = None;
     let mut untimed = 0;
+    let mut unreadable = 0;
     let mut held_bytes = 0u64;
     for dir in dirs {
         let (list, u) = crate::io::list_frames_named(dir, naming)?;
@@ -154,9 +155,15 @@ fn load_calibration_frames(dirs: &[PathBuf], naming: &crate::io::FrameNaming) ->
                     }
                     frames.push((f.time, img))
                 }
-                Err(e) => eprintln!("skipped {}: {e}", f.path.display()),
+                Err(e) => {
+                    unreadable += 1;
+                    eprintln!("skipped {}: {e}", f.path.display())
+                }
             }
         }
+    }
+    if frames.is_empty() && unreadable > 0 {
+        bail!("--frames: {unreadable} frame{} had a time in {} name but none could be read (each is named above as skipped, with the reason)", if unreadable == 1 { "" } else { "s" }, if unreadable == 1 { "its" } else { "their" });
     }
     if frames.is_empty() {
         let hints: Vec<String> = dirs.iter().map(|d| format!("{}{}", d.display(), crate::io::untimed_hint(d, naming))).collect();

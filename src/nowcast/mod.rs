@@ -53,7 +53,8 @@ fn used_columns(site: &crate::config::SiteFile, m: Measurements) -> Option<Pyran
 
 /// Notes on a measurements file whose columns the site does not find: a `[[pyranometers]]` entry
 /// without its `ghi_<name>_wm2` column is left out of the tuning, the bands and shadow timing, and
-/// a file with no pyranometer or meter column of the site is not used at all ([`used_columns`]).
+/// a file with no pyranometer, meter or weather column of the site is not used at all
+/// ([`used_columns`]).
 /// Neither is an error (a logger may lack a sensor for a day), but a misspelt column would
 /// otherwise pass unseen.
 fn measurement_column_notes(path: &std::path::Path, site: &crate::config::SiteFile, m: &Measurements) -> Vec<String> {
@@ -325,7 +326,8 @@ impl Nowcaster {
     /// is ignored, one the rows lack is missing), rows not after the newest held are dropped, and
     /// rows more than `keep_s` older than the newest are forgotten, so memory stays bounded.
     /// Returns the rows appended. Without measurements so far the rows become the engine's
-    /// measurements when they hold a configured pyranometer's column.
+    /// measurements when they hold a configured pyranometer's, a meter's or a weather column
+    /// ([`used_columns`]).
     pub fn append_measurements(&mut self, rows: Measurements, keep_s: f64) -> usize {
         let added = match &mut self.measurements {
             None => {

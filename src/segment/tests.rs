@@ -419,3 +419,36 @@ fn the_offset_is_measured_over_the_near_sky_when_the_far_field_shows_none() {
     assert_eq!(fr.classify(clear_near, g_near).1, Class::Clear);
     assert_eq!(r.for_frame(&p, frame(5)).offset, 0.0);
 }
+
+/// The map's one-pass [`FrameReference::plain_and_learned_all`] equals the per-sample
+/// [`FrameReference::plain_and_learned`] on a whole sky: learned and unlearned bins, the glare zone
+/// around the sun, samples outside the plain sky and samples the camera does not see.
+#[test]
+fn plain_and_learned_over_a_sky_equals_the_per_sample_test() {
+    let p = SegmentParams::default();
+    let mut r = Reference::default();
+    // Learn the bins of zenith 20–39°, sun angle 0–117° (some inside the glare zone below, so that
+    // the glare test decides samples), leave the rest unlearned.
+    r.learn(&p, (0..24_000).map(|k| ([150u8, 170, 200], geom(20.0 + (k % 20) as f32, ((k / 20) % 40) as f32 * 3.0))));
+    let mut fr = plain_reference(&r, &p);
+    // A glare zone wider than the plain sky's own limit, as a bloomed frame's measured extent is.
+    fr.glare_zone_deg = 40.0;
+    let (mut z, mut dir) = (vec![], vec![]);
+    for zi in 0..46 {
+        for ai in 0..72 {
+            let (zr, ar) = ((zi as f32 * 2.0).to_radians(), (ai as f32 * 5.0).to_radians());
+            z.push(zi as f32 * 2.0);
+            dir.push([zr.sin() * ar.sin(), zr.sin() * ar.cos(), zr.cos()]);
+        }
+    }
+    let sun = Some([0.5f32.sin(), 0.0, 0.5f32.cos()]);
+    let seen = |i: usize| i % 17 != 0;
+    let sky = SkyGeometry::from_directions(&z, &dir, seen, sun, &p);
+    let all = fr.plain_and_learned_all(&sky, z.len());
+    let per: Vec<bool> = (0..z.len()).map(|k| fr.plain_and_learned(&sky, k)).collect();
+    assert_eq!(all, per);
+    let (n_true, n_false) = (all.iter().filter(|b| **b).count(), all.iter().filter(|b| !**b).count());
+    assert!(n_true >= 20 && n_false >= 20, "the sky must exercise both outcomes: {n_true} / {n_false}");
+    let in_glare = (0..z.len()).filter(|&k| sky.plain[k] && r.weight[sky.bin[k] as usize] > 0.5 && sky.gamma_deg[k] < 40.0).count();
+    assert!(in_glare > 0, "no plain learned sample inside the glare zone: the glare test is not exercised");
+}
