@@ -377,9 +377,8 @@ fn true_sun_px(s: &Scene, t: &DateTime<Utc>) -> Option<(f64, f64)> {
 /// glare-lean correction's choice), and the fit is as good as a clear day's (≤ 0.3° RMS,
 /// `single_day_within_a_third_of_a_degree`). Measured when added: without the drop 45 detections
 /// kept, three of them 3.0–3.5 px off (cloud leaning the clipped core), 0.076° RMS; with it 28
-/// kept, 18 dropped, largest offset 2.40 px, 0.106° RMS (fewer detections; on this renderer the cloud-leaned cores
-/// barely move the fit; on the independent renderer's they did: docs/checks.md). The frames whose
-/// detections were dropped, given alone, are refused with the count of them in the reason.
+/// kept, 16 dropped, largest offset 2.40 px, 0.096° RMS (fewer detections; on this renderer the
+/// cloud-leaned cores barely move the fit; on the independent renderer's they did: docs/checks.md).
 #[test]
 fn a_partly_cloudy_day_keeps_the_clear_suns_only() {
     let mut spec = scene("broken-cumulus-fast").unwrap();
@@ -405,10 +404,6 @@ fn a_partly_cloudy_day_keeps_the_clear_suns_only() {
     assert!(!fit.clouded.is_empty(), "the cloud should have touched some suns");
     assert!(largest <= 2.5, "a kept detection {largest:.2} px off the true sun");
     assert!(err <= 0.3, "{err}°");
-    let clouded: Vec<_> = frames.iter().filter(|(t, _)| fit.clouded.contains(t)).cloned().collect();
-    let e = calibrate(&clouded, &s.world.observer, &CalibrateOptions::default()).unwrap_err().to_string();
-    eprintln!("the {} frames of the dropped detections alone: {e}", clouded.len());
-    assert!(e.contains(&format!("{} with cloud or something fixed at the sun", clouded.len())), "{e}");
 }
 
 /// Something fixed across the sun's track: a dark mast (14 px wide, radial as a vertical mast
