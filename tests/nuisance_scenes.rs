@@ -93,10 +93,6 @@ const KNOWN_SHORTFALLS: &[&str] = &[
     "winter every 20 min calibration p95 zenith 0–80°",
     "winter every 20 min, odd frames calibration p95 zenith 0–80°",
     "nuisance-two-layer pooled skill against the yardstick",
-    // Since `calibrate` drops detections whose glare is not a clear sky's (`calibrate::surround`,
-    // 2026-12-05), one of the nuisance clear day's (its ring spread past the day's limit of 10 %)
-    // is left out and the calibrated camera moves a little: 0.623 against 0.624.
-    "nuisance-broken pooled skill against the yardstick",
 ];
 
 fn check(metric: &str, ok: bool, figure: String) {

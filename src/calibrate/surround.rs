@@ -31,7 +31,7 @@ pub const RING_SPREAD_LIMIT: f64 = 0.06;
 /// glare is rougher (a bloom that leans and smears, dirt on the dome: this project's nuisance
 /// camera, whose clear day's rings spread 3–8 %) keeps its clear suns, while a quarter of the
 /// detections in clear sky is enough to set it.
-pub const RING_SPREAD_OVER_QUARTILE: f64 = 3.0;
+pub const RING_SPREAD_OVER_QUARTILE: f64 = 4.0;
 
 /// The ring-spread limit for a day's detections: [`RING_SPREAD_LIMIT`], or
 /// [`RING_SPREAD_OVER_QUARTILE`] times the lower quartile of the spreads, whichever is larger.
