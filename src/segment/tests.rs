@@ -442,7 +442,7 @@ fn plain_and_learned_over_a_sky_equals_the_per_sample_test() {
         }
     }
     let sun = Some([0.5f32.sin(), 0.0, 0.5f32.cos()]);
-    let seen = |i: usize| i % 17 != 0;
+    let seen = |i: usize| !i.is_multiple_of(17);
     let sky = SkyGeometry::from_directions(&z, &dir, seen, sun, &p);
     let all = fr.plain_and_learned_all(&sky, z.len());
     let per: Vec<bool> = (0..z.len()).map(|k| fr.plain_and_learned(&sky, k)).collect();
