@@ -97,7 +97,11 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     for f in &frames[8..11] {
         drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());
     }
-    wait_for("the burst", || json(addr, "/api/health")["frames_processed"].as_u64() == Some(8));
+    // The skips are counted as the poll that takes the newest goes on, so wait for both.
+    wait_for("the burst", || {
+        let h = json(addr, "/api/health");
+        h["frames_processed"].as_u64() == Some(8) && h["frames_skipped"].as_u64() == Some(2)
+    });
     let health = json(addr, "/api/health");
     assert_eq!(health["frames_skipped"].as_u64(), Some(2), "{health}");
     assert!(health["latency_ms_median"].as_f64().unwrap() > 0.0);
