@@ -511,10 +511,9 @@ fn run_bin(args: &[&str]) -> (i32, String) {
 }
 
 /// A representative subset through the binary: exit status 2, the field named, no panic or abort.
-#[test]
-fn bad_inputs_through_the_binary() {
-    let d = tempfile::tempdir().unwrap();
-    let dir = d.path();
+/// The demo camera's calibration as `dir/cam.toml` (the corpus site names it) and the demo's first
+/// frame in `dir/frames`; returns that folder and the demo's frames, sorted.
+fn demo_camera_and_first_frame(dir: &Path) -> (std::path::PathBuf, Vec<std::path::PathBuf>) {
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
     std::fs::copy(demo.join("calibration").join("larkspur-sky1.toml"), dir.join("cam.toml")).unwrap();
     let frames = dir.join("frames");
@@ -522,6 +521,14 @@ fn bad_inputs_through_the_binary() {
     let mut f: Vec<_> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();
     f.sort();
     std::fs::copy(&f[0], frames.join(f[0].file_name().unwrap())).unwrap();
+    (frames, f)
+}
+
+#[test]
+fn bad_inputs_through_the_binary() {
+    let d = tempfile::tempdir().unwrap();
+    let dir = d.path();
+    let (frames, f) = demo_camera_and_first_frame(dir);
     let square = |h: f64| format!("[[{}, {}], [{h}, {}], [{h}, {h}], [{}, {h}]]", -h, -h, -h, -h);
     let site = |name: &str, text: String| {
         let p = dir.join(name);
@@ -605,13 +612,7 @@ fn bad_inputs_through_the_binary() {
 fn measurement_columns_the_site_does_not_find_are_noted() {
     let d = tempfile::tempdir().unwrap();
     let dir = d.path();
-    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
-    std::fs::copy(demo.join("calibration").join("larkspur-sky1.toml"), dir.join("cam.toml")).unwrap();
-    let frames = dir.join("frames");
-    std::fs::create_dir_all(&frames).unwrap();
-    let mut f: Vec<_> = std::fs::read_dir(demo.join("frames")).unwrap().flatten().map(|e| e.path()).collect();
-    f.sort();
-    std::fs::copy(&f[0], frames.join(f[0].file_name().unwrap())).unwrap();
+    let (frames, _) = demo_camera_and_first_frame(dir);
     let two = format!("{}\n[[pyranometers]]\nname = \"b\"\nposition_m = [-200.0, -200.0]\n", inputs::SITE);
     std::fs::write(dir.join("site.toml"), &two).unwrap();
     let run = |csv: &str| {
