@@ -370,9 +370,7 @@ impl Site {
     /// # Errors
     /// A [`ConfigError`] naming the file and field.
     pub fn load_without_camera(path: &Path) -> Result<SiteFile, ConfigError> {
-        let file: SiteFile = read_toml(path)?;
-        file.validate(path)?;
-        Ok(file)
+        Self::read_site_file(path, true)
     }
 
     /// As [`Self::load_without_camera`], for `calibrate`: the site file may name no cloud base yet
@@ -381,8 +379,12 @@ impl Site {
     /// # Errors
     /// A [`ConfigError`] naming the file and field.
     pub fn load_for_calibrate(path: &Path) -> Result<SiteFile, ConfigError> {
+        Self::read_site_file(path, false)
+    }
+
+    fn read_site_file(path: &Path, require_base: bool) -> Result<SiteFile, ConfigError> {
         let file: SiteFile = read_toml(path)?;
-        file.validate_with(path, false)?;
+        file.validate_with(path, require_base)?;
         Ok(file)
     }
 
