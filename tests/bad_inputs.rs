@@ -573,11 +573,20 @@ fn bad_inputs_through_the_binary() {
     // Frames named otherwise than the pattern says: the pattern and a name it did not read.
     let dashed = site("dashed.toml", inputs::SITE.replace("position_m = [0.0, 0.0, 3.0]\n", "position_m = [0.0, 0.0, 3.0]\nframe_time_format = \"%Y-%m-%d_%H-%M-%S\"\n"));
     add(vec!["replay", "--site", &dashed, "--frames", &fr, "--out", &out, "--quiet"], vec!["frame_time_format", "1 image file without a time so read, e.g. `frame_20260614T083000.000Z.jpg`"]);
-    // A site without a cloud base (a clear day's ceilometer reads none): `calibrate` reads it and
-    // gets as far as the sun's detections (one frame here), `replay` refuses it naming `clouds`.
-    let nobase = site("nobase.toml", remove_line(inputs::SITE, "[clouds]", "base_height_m").replace("[[pyranometers]]\nname = \"a\"\nposition_m = [200.0, 150.0]\n", ""));
+    // A site without a cloud base (a clear day's ceilometer reads none) and without the
+    // calibration line (the file `calibrate` is about to write): `calibrate` reads it and gets as
+    // far as the sun's detections (one frame here); `replay` refuses it naming `clouds`, and with
+    // a base but no calibration line, naming `camera.calibration`.
+    let bare = remove_line(inputs::SITE, "[camera]", "calibration");
+    assert!(!bare.contains("cam.toml"), "the calibration line was not removed");
+    let nobase = site("nobase.toml", remove_line(&bare, "[clouds]", "base_height_m").replace("[[pyranometers]]\nname = \"a\"\nposition_m = [200.0, 150.0]\n", ""));
     add(vec!["calibrate", "--site", &nobase, "--frames", &fr, "--out", &out], vec!["1 sun detections, 20 needed"]);
-    add(vec!["replay", "--site", &nobase, "--frames", &fr, "--out", &out, "--quiet"], vec!["nobase.toml", "field clouds", "base_height_m or base_height_csv"]);
+    add(vec!["replay", "--site", &nobase, "--frames", &fr, "--out", &out, "--quiet"], vec!["nobase.toml", "field camera.calibration", "nephocast calibrate --out"]);
+    let nocalline = site("nocalline.toml", bare);
+    add(vec!["replay", "--site", &nocalline, "--frames", &fr, "--out", &out, "--quiet"], vec!["nocalline.toml", "field camera.calibration", "nephocast calibrate --out"]);
+    add(vec!["live", "--site", &nocalline, "--incoming", &fr], vec!["nocalline.toml", "field camera.calibration"]);
+    let nobase_cal = site("nobase_cal.toml", remove_line(inputs::SITE, "[clouds]", "base_height_m").replace("[[pyranometers]]\nname = \"a\"\nposition_m = [200.0, 150.0]\n", ""));
+    add(vec!["replay", "--site", &nobase_cal, "--frames", &fr, "--out", &out, "--quiet"], vec!["nobase_cal.toml", "field clouds", "base_height_m or base_height_csv"]);
     // The folder above the frames: no images there, but a subfolder `frames/`.
     let above = dir.to_string_lossy().into_owned();
     add(vec!["replay", "--site", &good, "--frames", &above, "--out", &out, "--quiet"], vec!["no frames", "subfolder `frames/`"]);

@@ -235,6 +235,9 @@ fn default_clear_sky_model() -> String {
 }
 /// Default Linke turbidity: 3.0, a typical clean rural mid-latitude value (common practice, no source).
 pub const DEFAULT_LINKE_TURBIDITY: f64 = 3.0;
+fn is_empty_path(p: &std::path::Path) -> bool {
+    p.as_os_str().is_empty()
+}
 fn default_linke() -> f64 {
     DEFAULT_LINKE_TURBIDITY
 }
@@ -243,7 +246,10 @@ fn default_linke() -> f64 {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct CameraSection {
-    /// The camera's calibration file (relative to the site file).
+    /// The camera's calibration file (relative to the site file). `calibrate` does not read it
+    /// (it writes the file), so a site file for `calibrate` may leave it out; `replay` and `live`
+    /// need it.
+    #[serde(default, skip_serializing_if = "is_empty_path")]
     pub calibration: PathBuf,
     /// Camera position relative to the site origin, (east, north, up) \[m\].
     #[serde(default, deserialize_with = "crate::settings::exact::numbers")]
@@ -519,9 +525,10 @@ impl SiteFile {
         self.validate_with(path, true)
     }
 
-    /// As [`Self::validate`]; without `require_base` a site with no cloud base at all (no
-    /// `base_height_m`, no `base_height_csv`, too few pyranometers for shadow timing) passes, as
-    /// `calibrate` needs no base: a clear day's ceilometer reads none.
+    /// As [`Self::validate`]; without `require_base` (`calibrate`'s check) a site with no cloud base
+    /// at all (no `base_height_m`, no `base_height_csv`, too few pyranometers for shadow timing)
+    /// passes, as `calibrate` needs no base: a clear day's ceilometer reads none; nor does it need
+    /// `camera.calibration`, the file it writes.
     ///
     /// # Errors
     /// The first field out of range.
@@ -532,6 +539,9 @@ impl SiteFile {
             c.range(&format!("camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
         }
         self.camera.frame_naming_checked(&c)?;
+        if require_base && self.camera.calibration.as_os_str().is_empty() {
+            return Err(c.invalid("camera.calibration", "the camera's calibration file, relative to the site file (`nephocast calibrate --out FILE` writes it)", "nothing"));
+        }
         self.validate_clouds(&c, require_base)?;
         self.validate_plant(&c)?;
         let fc = &self.forecast;
