@@ -5,6 +5,10 @@ use nephocast::camera::Camera;
 use nephocast::synth::render::PixelRays;
 use nephocast::synth::{CameraSpec, Scene, scene};
 
+#[path = "common/calibrated.rs"]
+#[allow(dead_code)]
+mod calibrated;
+
 /// Frames of a clear day every 10 minutes from `start` for `hours`, through a given camera.
 fn clear_day(cam: &CameraSpec, start: &str, hours: f64) -> (Scene, Vec<(DateTime<Utc>, image::RgbImage)>) {
     let mut spec = scene("clear-day").unwrap();
@@ -424,4 +428,23 @@ fn a_mast_across_the_sun_track_and_a_reflection() {
     assert!(cut.is_empty(), "detections of a sun the mast cuts were kept: their suns {cut:?} px from its axis");
     assert_eq!(on_glint, 0, "the reflection was taken for the sun");
     assert!(err <= 0.3, "{err}°");
+}
+
+/// This project's clean clear day at 384² every 15 minutes through JPEG, for the first camera of
+/// the single-layer scenes and a second one turned 70° and 850 m away (the cameras of
+/// `tests/stereo.rs`): 22 suns found, a ring only 2.3–4.7 px wide at 1.25–2.5 % of the radius. No
+/// clear sun is taken for clouded and nothing falls back to the fit from every detection (a ring
+/// that narrow dropped 9–10 of them, and the second camera's held fit on the rest came out pitched
+/// −181°, so `calibrate` refused).
+#[test]
+fn a_small_clean_clear_day_drops_no_sun() {
+    let a = scene("broken-cumulus-fast").unwrap().camera;
+    let b = CameraSpec { name: "second".into(), yaw_deg: a.yaw_deg + 70.0, ..a.clone() };
+    let p = Scene::new(scene("clear-day").unwrap(), 1).unwrap().cam_pos_m;
+    for (spec, at) in [(a, None), (b, Some([p[0] + 800.0, p[1] + 300.0, p[2]]))] {
+        let c = calibrated::clear_day(&spec, 384, at, 900.0);
+        assert!(c.fit.clouded.is_empty(), "{}: clear suns dropped at {:?}", spec.name, c.fit.clouded);
+        assert!(!c.fit.warnings.iter().any(|w| w.contains("judged clouded")), "{}: {:?}", spec.name, c.fit.warnings);
+        assert!(c.detections.len() >= 20, "{}: {} detections", spec.name, c.detections.len());
+    }
 }

@@ -433,10 +433,31 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     let ignore = static_bright(&lit, &sun_sectors(&suns), circle, options.clip);
     let (raw, levels, spreads) = sun_detections(frames, &day, observer, circle, options.clip, ignore.as_deref());
     // Detections whose glare is not a clear sky's (cloud at the sun, or something fixed across
-    // its glare) are dropped before anything is measured from them (see `surround`).
+    // its glare) are dropped before anything is measured from them (see `surround`), unless what
+    // is left cannot be fitted or loses the orientation that every detection gives.
     let clouded = surround::Clouded::judge(&raw, &spreads);
-    let (raw, levels): (Vec<Detection>, Vec<Vec<GlareLevel>>) = raw.into_iter().zip(levels).filter(|(d, _)| !clouded.contains(&d.time)).unzip();
-    let counts = (frames.len(), night, clouded.len());
+    let counts = (frames.len(), night);
+    let kept = fit_kept(&raw, &levels, &clouded, circle, size, counts, options);
+    if clouded.is_empty() {
+        return kept;
+    }
+    let all = fit_kept(&raw, &levels, &surround::Clouded::default(), circle, size, counts, options);
+    surround::keep_orientation(kept, all, &clouded, &raw)
+}
+
+/// The fit on the detections `raw` less those `clouded` drops, made again without the gross
+/// outliers when there are any.
+fn fit_kept(
+    raw: &[Detection],
+    levels: &[Vec<GlareLevel>],
+    clouded: &surround::Clouded,
+    circle: ImageCircle,
+    size: (u32, u32),
+    (n_frames, night): (usize, usize),
+    options: &CalibrateOptions,
+) -> Result<(Fit, Vec<Detection>), CalibrationError> {
+    let (raw, levels): (Vec<Detection>, Vec<Vec<GlareLevel>>) = raw.iter().zip(levels).filter(|(d, _)| !clouded.contains(&d.time)).map(|(d, l)| (*d, l.clone())).unzip();
+    let counts = (n_frames, night, clouded.len());
     let first_pass = fit_screened(&raw, &levels, circle, size, counts, options).map(|(mut fit, dets)| {
         fit.warnings.extend(clouded.warning());
         fit.clouded = clouded.times();
