@@ -5,6 +5,10 @@ use nephocast::camera::Camera;
 use nephocast::synth::render::PixelRays;
 use nephocast::synth::{CameraSpec, Scene, scene};
 
+#[path = "common/calibrated.rs"]
+#[allow(dead_code)]
+mod calibrated;
+
 /// Frames of a clear day every 10 minutes from `start` for `hours`, through a given camera.
 fn clear_day(cam: &CameraSpec, start: &str, hours: f64) -> (Scene, Vec<(DateTime<Utc>, image::RgbImage)>) {
     let mut spec = scene("clear-day").unwrap();
@@ -323,4 +327,124 @@ fn frames_that_cut_the_image_circle() {
     eprintln!("cut frames {cw}x{ch} ({outside} of {} suns outside): {} detections, sky direction error {err:.3}° RMS; {:?}", track.len(), dets.len(), fit.warnings);
     assert!(dets.iter().all(|d| truth.project_enu(d.dir).is_some()), "a detection of a sun outside the frame");
     assert!(err <= 0.3, "{err}°");
+}
+
+/// True sun pixel of each detection's time through the scene's camera.
+fn true_sun_px(s: &Scene, t: &DateTime<Utc>) -> Option<(f64, f64)> {
+    let sp = nephocast::sun::position(t, &s.world.observer).ok()?;
+    s.camera.project_enu(nephocast::sun::direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad))
+}
+
+/// A day that is not wholly clear: broken cumulus (cover 0.45 at 1200 m, 12 m/s) over the whole
+/// day at the calibration cadence (every 10 minutes), so that in many frames cloud hides the sun,
+/// dims it, or lies beside it and leans its clipped core. Frames with the sun hidden give no
+/// detection; a detection whose glare is not a clear sky's is dropped (`calibrate::surround`): no
+/// kept one lies more than 2.5 px off the true sun (a clear day's sit within 0.12 px RMS,
+/// `sun_detections_sit_on_the_true_sun`; the most bloomed of them up to 2.3 px off before the
+/// glare-lean correction's choice), and the fit is as good as a clear day's (≤ 0.3° RMS,
+/// `single_day_within_a_third_of_a_degree`). Measured when added: without the drop 45 detections
+/// kept, three of them 3.0–3.5 px off (cloud leaning the clipped core), 0.076° RMS; with it 28
+/// kept, 16 dropped, largest offset 2.40 px, 0.096° RMS (fewer detections; on this renderer the
+/// cloud-leaned cores barely move the fit; on the independent renderer's they did: docs/checks.md).
+#[test]
+fn a_partly_cloudy_day_keeps_the_clear_suns_only() {
+    let mut spec = scene("broken-cumulus-fast").unwrap();
+    spec.camera = cam("equidistant", vec![], [-8.0, 14.0], 250.0, -2.6, 1.9);
+    spec.start_utc = "2026-06-14T05:00:00Z".into();
+    spec.duration_min = 14.0 * 60.0;
+    spec.frame_step_s = 600.0;
+    spec.mast = false;
+    let s = Scene::new(spec, 3).unwrap();
+    let rays = PixelRays::new(&s.camera);
+    let frames: Vec<_> = s.frame_times().iter().enumerate().map(|(i, t)| (*t, s.render_frame(&rays, i, t).rgb)).collect();
+    let (fit, dets) = calibrate(&frames, &s.world.observer, &CalibrateOptions::default()).unwrap();
+    let err = direction_error_deg(&s.camera, &fit.camera);
+    let offsets: Vec<f64> = dets.iter().filter_map(|d| true_sun_px(&s, &d.time).map(|p| (d.px.0 - p.0).hypot(d.px.1 - p.1))).collect();
+    let largest = offsets.iter().copied().fold(0.0, f64::max);
+    for (d, o) in dets.iter().zip(&offsets).filter(|(_, o)| **o > 1.0) {
+        eprintln!("  kept {} {o:.2} px off the true sun, zenith {:.1}°, blob {} px, weight {:.2}", d.time, d.dir[2].acos().to_degrees(), d.blob_px, d.weight);
+    }
+    eprintln!(
+        "partly cloudy day: {} frames, {} detections kept ({} dropped for cloud at the sun), largest offset from the true sun {largest:.2} px, sky direction error {err:.3}° RMS; {:?}",
+        frames.len(), dets.len(), fit.clouded.len(), fit.warnings
+    );
+    assert!(!fit.clouded.is_empty(), "the cloud should have touched some suns");
+    assert!(largest <= 2.5, "a kept detection {largest:.2} px off the true sun");
+    assert!(err <= 0.3, "{err}°");
+}
+
+/// Something fixed across the sun's track: a dark mast (14 px wide, radial as a vertical mast
+/// images in a level fisheye) painted over a clear day's frames through the middle of the track,
+/// so that the sun is hidden in some frames and half hidden in others, and a small saturated
+/// reflection (radius 3 px) elsewhere in every frame. No detection is kept whose sun lies within
+/// the mast's half width + 3 px of its axis (its clipped core cut), the reflection is never taken
+/// for the sun, and the fit is as good as a clear day's (≤ 0.3° RMS,
+/// `single_day_within_a_third_of_a_degree`). Measured when added: without the drop two detections
+/// of a cut core kept, 0.051° RMS; with it none (6 dropped), 0.017° RMS.
+#[test]
+fn a_mast_across_the_sun_track_and_a_reflection() {
+    let spec = cam("equidistant", vec![], [-8.0, 14.0], 250.0, -2.6, 1.9);
+    let (s, mut frames) = clear_day(&spec, "2026-06-14T05:00:00Z", 14.0);
+    let c = &s.camera;
+    let track: Vec<(f64, f64)> = frames
+        .iter()
+        .filter(|(t, _)| nephocast::sun::position(t, &s.world.observer).is_ok_and(|p| p.elevation_rad().to_degrees() >= DEFAULT_MIN_SUN_ELEVATION_DEG))
+        .filter_map(|(t, _)| true_sun_px(&s, t))
+        .collect();
+    let p = track[track.len() * 2 / 5];
+    let rim = c.f_px * c.max_field_angle_rad;
+    let (ux, uy) = {
+        let (dx, dy) = (p.0 - c.cx_px, p.1 - c.cy_px);
+        let n = dx.hypot(dy);
+        (dx / n, dy / n)
+    };
+    let half_width = 7.0;
+    // From 0.3 radii inward of the track out past the rim.
+    let (a, b) = ((p.0 - 0.3 * rim * ux, p.1 - 0.3 * rim * uy), (c.cx_px + 1.1 * rim * ux, c.cy_px + 1.1 * rim * uy));
+    let to_axis = |x: f64, y: f64| {
+        let (abx, aby) = (b.0 - a.0, b.1 - a.1);
+        let t = (((x - a.0) * abx + (y - a.1) * aby) / (abx * abx + aby * aby)).clamp(0.0, 1.0);
+        (x - a.0 - t * abx).hypot(y - a.1 - t * aby)
+    };
+    let glint = (c.cx_px - 0.55 * rim * ux, c.cy_px - 0.55 * rim * uy);
+    for (_, img) in frames.iter_mut() {
+        for (x, y, px) in img.enumerate_pixels_mut() {
+            let (xf, yf) = (x as f64, y as f64);
+            if to_axis(xf, yf) <= half_width {
+                *px = image::Rgb([28, 29, 31]);
+            } else if (xf - glint.0).hypot(yf - glint.1) <= 3.0 {
+                *px = image::Rgb([255, 255, 255]);
+            }
+        }
+    }
+    let (fit, dets) = calibrate(&frames, &s.world.observer, &CalibrateOptions::default()).unwrap();
+    let err = direction_error_deg(c, &fit.camera);
+    let cut: Vec<f64> = dets.iter().filter_map(|d| true_sun_px(&s, &d.time)).map(|p| to_axis(p.0, p.1)).filter(|d| *d <= half_width + 3.0).collect();
+    let on_glint = dets.iter().filter(|d| (d.px.0 - glint.0).hypot(d.px.1 - glint.1) < 5.0).count();
+    eprintln!(
+        "mast and reflection: {} detections kept ({} dropped for cloud or the mast at the sun), {} with the sun within {:.0} px of the mast's axis, {on_glint} on the reflection, sky direction error {err:.3}° RMS; {:?}",
+        dets.len(), fit.clouded.len(), cut.len(), half_width + 3.0, fit.warnings
+    );
+    assert!(cut.is_empty(), "detections of a sun the mast cuts were kept: their suns {cut:?} px from its axis");
+    assert_eq!(on_glint, 0, "the reflection was taken for the sun");
+    assert!(err <= 0.3, "{err}°");
+}
+
+/// This project's clean clear day at 384² every 15 minutes through JPEG, for the first camera of
+/// the single-layer scenes and a second one turned 70° and 850 m away (the cameras of
+/// `tests/stereo.rs`): 22 suns found, a ring only 2.3–4.7 px wide at 1.25–2.5 % of the radius. No
+/// clear sun is taken for clouded and nothing falls back to the fit from every detection (a ring
+/// that narrow dropped 9–10 of them, and the second camera's held fit on the rest came out pitched
+/// −181°, so `calibrate` refused).
+#[test]
+fn a_small_clean_clear_day_drops_no_sun() {
+    let a = scene("broken-cumulus-fast").unwrap().camera;
+    let b = CameraSpec { name: "second".into(), yaw_deg: a.yaw_deg + 70.0, ..a.clone() };
+    let p = Scene::new(scene("clear-day").unwrap(), 1).unwrap().cam_pos_m;
+    for (spec, at) in [(a, None), (b, Some([p[0] + 800.0, p[1] + 300.0, p[2]]))] {
+        let c = calibrated::clear_day(&spec, 384, at, 900.0);
+        assert!(c.fit.clouded.is_empty(), "{}: clear suns dropped at {:?}", spec.name, c.fit.clouded);
+        assert!(!c.fit.warnings.iter().any(|w| w.contains("judged clouded")), "{}: {:?}", spec.name, c.fit.warnings);
+        assert!(c.detections.len() >= 20, "{}: {} detections", spec.name, c.detections.len());
+    }
 }

@@ -46,7 +46,7 @@ import numpy as np
 import pandas as pd
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from scene_probes import FrameGeometry, reencoded  # noqa: E402
+from scene_probes import FrameGeometry, StaticPaint, reencoded  # noqa: E402
 
 BANDS = [(0, 40), (40, 50), (50, 60), (60, 70), (70, 80), (80, 88.0001)]
 BAND_NAMES = ["<40", "40-50", "50-60", "60-70", "70-80", "80-88"]
@@ -311,14 +311,14 @@ def verify_truth_conversion(binary, cal, true_cam, sc, log):
     return dict(max_px=float(np.nanmax(e)), n=int(ok.sum()), n_missing=int(np.sum(~np.isfinite(e))))
 
 
-def detection_lean(detections_csv, truth_csv, true_cam):
+def detection_lean(detections_csv, truth_csvs, true_cam):
     """How the sun detections `calibrate` used sit against the true sun (a diagnostic: truth.csv's
     sun pixel, read by this script only). Offsets are split into image-radial (positive: away from
     the true principal point) and tangential parts, and summarised for the bare discs (bloom weight
     >= 0.95), the partly bloomed (0.3-0.95) and the bloomed (< 0.3), with the radial lean as a share
     of the image radius (a lean common to all detections is a focal-length error to the fit)."""
     d = pd.read_csv(detections_csv)
-    t = pd.read_csv(truth_csv)[["time", "sun_px_x", "sun_px_y"]]
+    t = pd.concat([pd.read_csv(p)[["time", "sun_px_x", "sun_px_y", "tau_sun_camera"]] for p in truth_csvs])
     cx, cy = true_cam["cx"], true_cam["cy"]
     if GEOM is not None:
         t["sun_px_x"], t["sun_px_y"] = GEOM.points(t["sun_px_x"].to_numpy(), t["sun_px_y"].to_numpy(), inside=False)
@@ -336,6 +336,13 @@ def detection_lean(detections_csv, truth_csv, true_cam):
                          radial_mean_px=float(rad[sel].mean()), radial_median_px=float(rad[sel].median()),
                          tangential_mean_px=float(tan[sel].mean()), tangential_sd_px=float(tan[sel].std()),
                          radial_share_of_radius_pct=float(100 * (rad[sel] / r[sel]).mean()))
+    # Detections off the true sun by more than 2 px (a cloud edge, a pole's half-hidden glare, a
+    # reflection taken for the sun), and how many were made with cloud over the sun.
+    off = np.hypot(ex, ey)
+    far = off > 2.0
+    out["off_sun"] = dict(n=int(len(m)), n_over_2px=int(far.sum()), largest_px=float(off.max()) if len(m) else float("nan"),
+                          n_cloud_over_sun=int((m.tau_sun_camera > 0).sum()),
+                          over_2px_at=[f"{t} {o:.1f} px" for t, o in zip(m.time_utc[far], off[far])][:20])
     return out
 
 
@@ -597,13 +604,19 @@ def run_camera(a, camera, sc, yard, log, res):
     else:
         res["frame_geometry"] = dict(size_px=list(GEOM.size), affine=GEOM.A[:2].tolist(), rotate_deg=a.rotate,
                                      flip_vertical=a.flip_vertical, mirror=a.mirror, scale=a.scale, pad_total=list(a.pad_total))
-    if a.jpeg_quality or GEOM is not None or a.stamp or gains:
+    paint = static_paint(a, clear, true_cam, frames_of)
+    if paint is not None:
+        res["static_paint"] = dict(poles=[dict(a=s[0].tolist(), b=s[1].tolist(), width_px=s[2]) for s in paint.segments],
+                                   reflection_px=None if paint.reflection is None else paint.reflection.tolist(),
+                                   reflection_share=a.reflection)
+    if a.jpeg_quality or GEOM is not None or a.stamp or gains or paint is not None:
         q = a.jpeg_quality or 95
         for d, tag in ((clear, "clear"), (cloudy, "cloudy")):
             g = gains if d == cloudy else None
             frames_of[d] = reencoded(frames_of[d], q, os.path.join(work, f"{tag}-q{q}" + (GEOM.tag() if GEOM else "")
-                                                                  + (f"-stamp-{a.stamp}" if a.stamp else "") + ("-gain" if g else "")),
-                                    GEOM, a.stamp, g)
+                                                                  + (f"-stamp-{a.stamp}" if a.stamp else "") + ("-gain" if g else "")
+                                                                  + (paint.tag() if paint else "")),
+                                    GEOM, a.stamp, g, paint)
 
     cal = os.path.join(work, "cal.toml")
     site_clear = os.path.join(work, "site-clear.toml")
@@ -621,6 +634,9 @@ def run_camera(a, camera, sc, yard, log, res):
                                      read_json(os.path.join(clear, "input", "site.json"))["site"], a.low_sun_zenith_deg)
         cal_info["clear_subset"] = a.clear_subset + (f" (sun zenith > {a.low_sun_zenith_deg:g}°)" if a.clear_subset == "low-sun" else "")
         cal_info["clear_frames"] = len([n for n in os.listdir(frames) if n.lower().endswith((".jpg", ".jpeg", ".png"))])
+        if a.calibrate_with_cloudy:
+            frames, cal_info["cloudy_frames_added"] = with_cloudy_frames(frames, frames_of[cloudy], a.calibrate_with_cloudy,
+                                                                         os.path.join(work, "calibrate-frames"))
         rc, out, err = run([a.bin, "calibrate", "--site", cal_site, "--frames", frames, "--out", cal]
                            + (["--obstruction-mask"] if a.obstruction_mask else []), log=log)
         cal_info.update(exit_code=rc, stdout=out, stderr=err,
@@ -675,7 +691,7 @@ def run_camera(a, camera, sc, yard, log, res):
     if a.camera_from == "calibrate":
         dets = os.path.join(work, "cal-detections.csv")
         if os.path.exists(dets):
-            cal_info["detection_lean"] = detection_lean(dets, os.path.join(clear, "truth", "truth.csv"), true_cam)
+            cal_info["detection_lean"] = detection_lean(dets, [os.path.join(d, "truth", "truth.csv") for d in (clear, cloudy)], true_cam)
     if a.calibration_only:
         return
     # 1./2. site files and measurements
@@ -745,6 +761,14 @@ def markdown(res):
     t = ci.get("true", {})
     if ci.get("clear_subset", "all") != "all":
         L.append(f"Calibrated from part of the clear day only: `{ci['clear_subset']}`, {ci.get('clear_frames')} frames.\n")
+    if ci.get("cloudy_frames_added"):
+        L.append(f"Calibrated from the clear day's {ci.get('clear_frames')} frames and {ci['cloudy_frames_added']} of the cloudy scene's.\n")
+    if res.get("static_paint"):
+        sp = res["static_paint"]
+        L.append(f"Painted into every frame: {len(sp['poles'])} pole(s) "
+                 + ", ".join(f"{p['width_px']:g} px wide" for p in sp["poles"])
+                 + (f"; a reflection at ({sp['reflection_px'][0]:.0f}, {sp['reflection_px'][1]:.0f}) in {sp['reflection_share']:g} of the frames"
+                    if sp.get("reflection_px") else "") + ".\n")
     L.append(f"**Calibration**: exit {ci.get('exit_code')}; model {f.get('model')} (true {t.get('model')}), "
              f"f {fnum(f.get('f_px_per_rad'))} px/rad (true {fnum(t.get('f_px'))}), "
              f"max field angle {fnum(f.get('max_field_angle_deg'), '{:.1f}')}° (true {fnum(t.get('theta_max_deg'), '{:.1f}')}), "
@@ -799,8 +823,14 @@ def markdown(res):
         L.append("\n| detections | n | zenith | radial mean px | radial median px | radial, % of radius | tangential mean px | tangential sd px |")
         L.append("|---|---:|---|---:|---:|---:|---:|---:|")
         for k, v in lean.items():
+            if k == "off_sun":
+                continue
             L.append(f"| {k} | {v['n']} | {v['zenith_deg'][0]:.0f}–{v['zenith_deg'][1]:.0f}° | {v['radial_mean_px']:+.2f} | {v['radial_median_px']:+.2f} | "
                      f"{v['radial_share_of_radius_pct']:+.2f} | {v['tangential_mean_px']:+.2f} | {v['tangential_sd_px']:.2f} |")
+        o = lean.get("off_sun")
+        if o:
+            L.append(f"\n{o['n_over_2px']} of {o['n']} detections off the true sun by more than 2 px (largest {o['largest_px']:.1f} px); "
+                     f"{o['n_cloud_over_sun']} made with cloud over the sun" + (": " + "; ".join(o["over_2px_at"]) if o["over_2px_at"] else ""))
     if res.get("error"):
         L.append(f"\n**{res['error']}**")
     for key in ("cloudy", "clear"):
@@ -896,6 +926,42 @@ def clear_frames_subset(frames, subset, out, site=None, low_sun_zenith_deg=LOW_S
     return out
 
 
+def with_cloudy_frames(frames, cloudy_frames, every, out):
+    """The calibration day's frames plus every `every`-th frame of the cloudy scene, linked into
+    `out`: a "clear day" that is not wholly clear (the same camera; the cloudy scene's frames carry
+    their own times). Returns the folder and how many cloudy frames were added."""
+    if os.path.isdir(out):
+        shutil.rmtree(out)
+    os.makedirs(out)
+    for n in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
+        os.symlink(os.path.realpath(os.path.join(frames, n)), os.path.join(out, n))
+    added = sorted(x for x in os.listdir(cloudy_frames) if x.endswith(".jpg"))[::every]
+    for n in added:
+        if os.path.exists(os.path.join(out, n)):
+            raise RuntimeError(f"{n} is in both the clear day and the cloudy scene")
+        os.symlink(os.path.realpath(os.path.join(cloudy_frames, n)), os.path.join(out, n))
+    return out, len(added)
+
+
+def static_paint(a, clear, true_cam, frames_of):
+    """The `--pole` / `--reflection` probe (a StaticPaint) for this camera, or None."""
+    if not a.pole and not a.reflection:
+        return None
+    t = pd.read_csv(os.path.join(clear, "truth", "truth.csv"))
+    t = t[(t.sun_zenith_deg < 80) & t.sun_px_x.notna()].sort_values("time")
+    poles = []
+    for spec in a.pole:
+        v = [float(x) for x in spec.split(":")]
+        if len(v) not in (2, 3) or not 0 <= v[0] <= 1 or v[1] <= 0:
+            raise ValueError(f"--pole {spec}: FRAC:WIDTH_PX[:ANGLE_DEG], FRAC in 0..1")
+        poles.append((v[0], v[1], v[2] if len(v) == 3 else 0.0))
+    names = set()
+    for d in frames_of.values():
+        names |= {x for x in os.listdir(d) if x.endswith(".jpg")}
+    return StaticPaint((true_cam["cx"], true_cam["cy"]), true_cam["r_max_px"], t[["sun_px_x", "sun_px_y"]].to_numpy(),
+                       poles, a.reflection or None, names)
+
+
 def every_nth_frame(frames, n, out):
     """Every `n`-th frame of the cloudy scene linked into `out` (a camera that takes frames less
     often; the forecasts are then issued, and scored, at those frames only)."""
@@ -985,6 +1051,16 @@ def main():
                          "low-sun keeps the frames whose sun is lower than --low-sun-zenith-deg (a winter day's low arc)")
     ap.add_argument("--low-sun-zenith-deg", type=float, default=LOW_SUN_MIN_ZENITH_DEG,
                     help="with --clear-subset low-sun, the sun's zenith angle [deg] beyond which a frame is kept (default 50)")
+    ap.add_argument("--calibrate-with-cloudy", type=int, default=0, metavar="EVERY_N",
+                    help="give `calibrate` every N-th frame of the cloudy scene besides the clear day's (a calibration day "
+                         "that is not wholly clear: cloud over and near the sun in some frames); the truth camera is the same")
+    ap.add_argument("--pole", action="append", default=[], metavar="FRAC:WIDTH_PX[:ANGLE_DEG]",
+                    help="paint a dark opaque band (mast, pole, branch) into every frame, crossing the clear day's sun track "
+                         "at share FRAC of its length, WIDTH_PX wide, ANGLE_DEG from the image-radial direction (0: a mast); "
+                         "repeatable; re-encoded at --jpeg-quality or 95 (compare with a run at that quality)")
+    ap.add_argument("--reflection", type=float, default=0.0, metavar="SHARE",
+                    help="paint a small saturated blob that is not the sun (a reflection) into the first SHARE of the frames "
+                         "(1: every frame, a static one), opposite the noon sun at 0.55 radii; re-encoded as --pole")
     ap.add_argument("--json", help="write every number here")
     a = ap.parse_args()
     pad = tuple(int(v) for v in a.pad.split(","))

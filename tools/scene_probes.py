@@ -140,13 +140,13 @@ class FrameGeometry:
         return img
 
 
-def reencoded(frames, quality, out, geom=None, stamp=None, gains=None):
+def reencoded(frames, quality, out, geom=None, stamp=None, gains=None, paint=None):
     """The frames decoded and encoded again as JPEG at `quality` (OpenCV), into `out`: a camera set
     to compress harder (or softer) than the scenes' own; with `geom` (a FrameGeometry), mirrored,
     flipped, rotated, resized (OpenCV, area averaging down, bicubic up) and given black borders or
     cut; with `stamp` ("corner", "inside" or "inside-top"), the frame's time burnt in as white text,
     in the top-left corner outside the image circle or inside the circle near its bottom (top) rim,
-    as many cameras do; with `gains` (R, G, B), each channel multiplied (clipped at 255): another
+    as many cameras do; with `paint` (a StaticPaint), fixed structure painted in first; with `gains` (R, G, B), each channel multiplied (clipped at 255): another
     exposure or white balance. Pixels clipped in every channel (all at least 250: the sun and its
     bloom, far brighter than the sensor's saturation) stay white, as a camera's clipped highlights do
     whatever its gains (a gain below 1 on the decoded values would otherwise leave the sun's disk
@@ -155,6 +155,8 @@ def reencoded(frames, quality, out, geom=None, stamp=None, gains=None):
     os.makedirs(out, exist_ok=True)
     for name in sorted(x for x in os.listdir(frames) if x.endswith(".jpg")):
         img = cv2.imread(os.path.join(frames, name), cv2.IMREAD_COLOR)
+        if paint is not None:
+            img = paint(img, name)
         if geom is not None:
             img = geom.apply(img)
         if gains:
@@ -175,3 +177,72 @@ def reencoded(frames, quality, out, geom=None, stamp=None, gains=None):
             img = stamped(img)
         cv2.imwrite(os.path.join(out, name), img, [cv2.IMWRITE_JPEG_QUALITY, int(quality)])
     return out
+
+
+class StaticPaint:
+    """Fixed structure painted into every frame (clear day and cloudy scene), in the scene's own
+    pixel coordinates before any geometry probe: what stands in the sky imager's view and does not
+    move.
+
+    * poles: dark opaque bands (a mast, a pole or a branch) crossing the sun's track, each
+      ``(frac, width_px, angle_deg)``: through the point of the clear day's sun track (true sun
+      pixels with the sun at zenith < 80°, in time order) at share ``frac`` of its length, at
+      ``angle_deg`` from the image-radial direction there (0: radial, as a vertical mast images
+      in a level fisheye; a branch leans), from the image circle's rim inward to 0.35 radii past
+      the track; pixels within ``width_px / 2`` of that segment take the silhouette's colour, with
+      a 1-px soft edge. The sun is hidden in the frames where its disc lies under the band and
+      half hidden where the band cuts its glare.
+    * reflection: a small saturated blob (radius 3 px, a 3-px soft halo) that is not the sun, at
+      0.55 radii from the centre on the side of the image opposite the noon sun; in every frame
+      (``share`` 1: static, a chrome fitting) or in the first ``share`` of the frames in time order
+      (a glint while the sun lights a window).
+
+    The track is read from truth.csv (the probe's construction only; the engine never sees it)."""
+
+    SILHOUETTE = np.array([22, 24, 26], np.float32)  # BGR, a dark grey mast against the sky
+
+    def __init__(self, centre, radius, track, poles=(), reflection_share=None, names=()):
+        self.centre, self.radius = np.asarray(centre, float), float(radius)
+        track = np.asarray(track, float)
+        seg = np.hypot(*np.diff(track, axis=0).T)
+        s = np.concatenate([[0.0], np.cumsum(seg)])
+        self.segments = []
+        for frac, width, angle in poles:
+            p = np.array([np.interp(frac * s[-1], s, track[:, 0]), np.interp(frac * s[-1], s, track[:, 1])])
+            radial = (p - self.centre) / np.linalg.norm(p - self.centre)
+            a = math.radians(angle)
+            u = np.array([radial[0] * math.cos(a) - radial[1] * math.sin(a), radial[0] * math.sin(a) + radial[1] * math.cos(a)])
+            # from 0.35 radii inward of the track point out to where the line leaves the image circle
+            d = p - self.centre
+            b = float(d @ u)
+            out = -b + math.sqrt(max(b * b - (d @ d - self.radius ** 2), 0.0))
+            self.segments.append((p - 0.35 * self.radius * u, p + out * u, float(width)))
+        self.reflection = None
+        if reflection_share:
+            noon = track[np.argmin(np.hypot(*(track - self.centre).T))]
+            away = self.centre - noon
+            n = np.linalg.norm(away)
+            away = away / n if n > 1e-6 else np.array([0.0, 1.0])
+            self.reflection = self.centre + 0.55 * self.radius * away
+            names = sorted(names)
+            self.reflection_frames = set(names[: max(1, int(round(reflection_share * len(names))))])
+
+    def tag(self):
+        return ("-pole" if self.segments else "") + ("-glint" if self.reflection is not None else "")
+
+    def __call__(self, img, name):
+        h, w = img.shape[:2]
+        yy, xx = np.mgrid[0:h, 0:w].astype(np.float32)
+        out = img.astype(np.float32)
+        for a, b, width in self.segments:
+            ab = b - a
+            t = np.clip(((xx - a[0]) * ab[0] + (yy - a[1]) * ab[1]) / float(ab @ ab), 0.0, 1.0)
+            dist = np.hypot(xx - (a[0] + t * ab[0]), yy - (a[1] + t * ab[1]))
+            cover = np.clip(width / 2.0 + 0.5 - dist, 0.0, 1.0)[..., None]
+            out = out * (1 - cover) + self.SILHOUETTE * cover
+        if self.reflection is not None and name in self.reflection_frames:
+            dist = np.hypot(xx - self.reflection[0], yy - self.reflection[1])
+            glow = np.clip((6.0 - dist) / 3.0, 0.0, 1.0)[..., None]
+            out = np.maximum(out, out * (1 - glow) + 255.0 * glow)
+            out[dist <= 3.0] = 255.0
+        return np.clip(out, 0, 255).round().astype(np.uint8)

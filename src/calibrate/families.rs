@@ -37,8 +37,19 @@ impl LeanCandidate {
             .iter()
             .map(|(p, _)| crate::config::CalibrationFile::from_camera("check", &finish(p, None, Some(circle)).camera).camera(std::path::Path::new("<fitted camera>")).is_ok())
             .collect();
-        let any_loads = loads.iter().any(|l| *l);
-        let best = choose_family(&solved, |i| (!any_loads || loads[i]) && (!any_plausible || plausible(i)))?;
+        // The loader also wants the detections to span 5° of zenith per free radial parameter
+        // (focal length, and k1, k2 for the polynomial): a narrow arc (a winter day, or one whose
+        // detections at a dirt spot were dropped) must not leave a polynomial it would refuse to
+        // be chosen. Such a family still stands in the bound (`loads`): the data do not rule it out.
+        let cov = super::bound::coverage_of(&dets);
+        let span_deg = cov.zenith_max_deg - cov.zenith_min_deg;
+        let writable: Vec<bool> = solved
+            .iter()
+            .zip(&loads)
+            .map(|((p, _), l)| *l && span_deg >= crate::config::MIN_ZENITH_SPAN_PER_RADIAL_TERM_DEG * if p.family == LensFamily::Polynomial { 3.0 } else { 1.0 })
+            .collect();
+        let any_loads = writable.iter().any(|l| *l);
+        let best = choose_family(&solved, |i| (!any_loads || writable[i]) && (!any_plausible || plausible(i)))?;
         Some(LeanCandidate { dets, glare_lean, solved, free, rims, any_plausible, loads, best })
     }
 

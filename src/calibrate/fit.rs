@@ -331,6 +331,7 @@ pub(super) fn finish(prob: &Problem, sigma_px: Option<f64>, circle: Option<Image
         mirrored_because: None,
         handedness_held_out_px: [f64::NAN; 2],
         held: if CentrePrior::holds(prob.prior) { vec!["cx_px".into(), "cy_px".into()] } else { vec![] },
+        clouded: vec![],
         cov: cov.map(|c| (p, c)),
     }
 }

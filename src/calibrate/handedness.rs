@@ -11,7 +11,7 @@ pub(super) fn fit_screened(
     levels: &[Vec<GlareLevel>],
     circle: ImageCircle,
     size: (u32, u32),
-    (n_frames, night): (usize, usize),
+    (n_frames, night, clouded): (usize, usize, usize),
     options: &CalibrateOptions,
 ) -> Result<(Fit, Vec<Detection>), CalibrationError> {
     let low = |found: usize, bloom: usize| CalibrationError::TooFewDetections {
@@ -21,6 +21,7 @@ pub(super) fn fit_screened(
         frames: n_frames,
         night,
         bloom,
+        clouded,
         min_elevation_deg: options.min_sun_elevation_deg,
     };
     let found = raw.len();

@@ -9,6 +9,10 @@
 //!    asymmetric glare moves its centroid outward by an amount that grows with its size and that a
 //!    fit would take for focal length. The nested level sets of each detection (236 … 252) measure
 //!    that growth; the detection is moved back to where a level set of no size would sit.
+//!    **Cloud or something fixed at the sun** ([`surround`]): a detection whose core is not a level
+//!    set of a clear sky's glare (the unclipped ring just outside it spreads widely once the glare's
+//!    fall with distance is removed, the core runs far, or it is a cloud-dimmed fraction of the
+//!    bare disc) is dropped before anything else is measured from the detections.
 //! 2. **Bloom screening.** Glare that spreads around a low or hazy sun is rarely symmetric, so its
 //!    centroid leans away from the sun; the blob then grows beyond the sun's own clipped disc. The
 //!    smallest blobs of the set (the 20th percentile of areas) stand for the bare disc; a detection
@@ -81,6 +85,7 @@ mod lean;
 mod outliers;
 mod overlay;
 mod outputs;
+pub mod surround;
 use bound::{bound_table, coverage_of, reach_warnings, sky_warning};
 pub use bound::NARROW_ZENITH_SPAN_DEG;
 use families::LeanCandidate;
@@ -268,6 +273,9 @@ pub struct Fit {
     /// Parameters held by the image circle rather than fitted to the detections (their standard
     /// errors are the circle's own uncertainty); empty for a free fit.
     pub held: Vec<String>,
+    /// Times of the detections dropped for cloud at or near the sun, or something fixed across
+    /// its glare, before the fit (see [`surround`]).
+    pub clouded: Vec<DateTime<Utc>>,
     /// Parameter vector and covariance (internal parametrization), for the bound.
     cov: Option<(DVector<f64>, DMatrix<f64>)>,
 }
@@ -285,7 +293,7 @@ impl Fit {
 pub enum CalibrationError {
     /// Not enough usable detections.
     #[error(
-        "{found} sun detections, {needed} needed ({frames} frames read, {night} with the sun below {min_elevation_deg}°, {bloom} dropped as bloom); even a fit held to an ideal lens with the principal point at the image circle's centre needs {held} (three per free parameter: focal length, yaw, pitch, roll): add frames from more of the day or another day"
+        "{found} sun detections, {needed} needed ({frames} frames read, {night} with the sun below {min_elevation_deg}°, {clouded} with cloud or something fixed at the sun, {bloom} dropped as bloom); even a fit held to an ideal lens with the principal point at the image circle's centre needs {held} (three per free parameter: focal length, yaw, pitch, roll): add frames from more of the day or another day"
     )]
     TooFewDetections {
         /// Detections found.
@@ -300,6 +308,9 @@ pub enum CalibrationError {
         night: usize,
         /// Detections dropped by the bloom screening.
         bloom: usize,
+        /// Detections dropped because the glare around the sun was not a clear sky's (cloud, or
+        /// something fixed crossing it; see `surround`).
+        clouded: usize,
         /// The lowest sun elevation used \[°\].
         min_elevation_deg: f64,
     },
@@ -399,6 +410,7 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
         frames,
         night,
         bloom,
+        clouded: 0,
         min_elevation_deg: options.min_sun_elevation_deg,
     };
     let first = frames.first().ok_or(low(0, 0, 0, 0))?;
@@ -419,9 +431,38 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
         .filter_map(|((t, img), _)| position(t, observer).ok().map(|sp| (img, direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad))))
         .unzip();
     let ignore = static_bright(&lit, &sun_sectors(&suns), circle, options.clip);
-    let (raw, levels) = sun_detections(frames, &day, observer, circle, options.clip, ignore.as_deref());
+    let (raw, levels, spreads) = sun_detections(frames, &day, observer, circle, options.clip, ignore.as_deref());
+    // Detections whose glare is not a clear sky's (cloud at the sun, or something fixed across
+    // its glare) are dropped before anything is measured from them (see `surround`), unless what
+    // is left cannot be fitted or loses the orientation that every detection gives.
+    let clouded = surround::Clouded::judge(&raw, &spreads);
     let counts = (frames.len(), night);
-    let first_pass = fit_screened(&raw, &levels, circle, size, counts, options);
+    let kept = fit_kept(&raw, &levels, &clouded, circle, size, counts, options);
+    if clouded.is_empty() {
+        return kept;
+    }
+    let all = fit_kept(&raw, &levels, &surround::Clouded::default(), circle, size, counts, options);
+    surround::keep_orientation(kept, all, &clouded, &raw)
+}
+
+/// The fit on the detections `raw` less those `clouded` drops, made again without the gross
+/// outliers when there are any.
+fn fit_kept(
+    raw: &[Detection],
+    levels: &[Vec<GlareLevel>],
+    clouded: &surround::Clouded,
+    circle: ImageCircle,
+    size: (u32, u32),
+    (n_frames, night): (usize, usize),
+    options: &CalibrateOptions,
+) -> Result<(Fit, Vec<Detection>), CalibrationError> {
+    let (raw, levels): (Vec<Detection>, Vec<Vec<GlareLevel>>) = raw.iter().zip(levels).filter(|(d, _)| !clouded.contains(&d.time)).map(|(d, l)| (*d, l.clone())).unzip();
+    let counts = (n_frames, night, clouded.len());
+    let first_pass = fit_screened(&raw, &levels, circle, size, counts, options).map(|(mut fit, dets)| {
+        fit.warnings.extend(clouded.warning());
+        fit.clouded = clouded.times();
+        (fit, dets)
+    });
     // Gross outliers (a glint, or the glare of a sun just outside a frame that cuts the image
     // circle, taken for the sun) are dropped and the fit made again: one such detection among a
     // hundred moved the fit by 0.4° through its lens-lean and held-out choices.
@@ -437,6 +478,8 @@ pub fn calibrate(frames: &[(DateTime<Utc>, image::RgbImage)], observer: &Observe
     let levels2: Vec<Vec<GlareLevel>> = levels.into_iter().zip(&keep).filter(|(_, k)| **k).map(|(l, _)| l).collect();
     match fit_screened(&raw2, &levels2, circle, size, counts, options) {
         Ok((mut fit, dets)) => {
+            fit.warnings.extend(clouded.warning());
+            fit.clouded = clouded.times();
             fit.warnings.push(outliers::dropped_warning(&gross, limit_px));
             Ok((fit, dets))
         }
@@ -544,8 +587,11 @@ fn median_circle(frames: &[(DateTime<Utc>, image::RgbImage)], day: &[bool]) -> R
     Ok(ImageCircle { cx_px: median(&|c| c.cx_px), cy_px: median(&|c| c.cy_px), radius_px: median(&|c| c.radius_px) })
 }
 
-/// The sun found in each daytime frame, with its direction and blob area, in time order, and the
-/// nested level sets of its glare (within three times the detection's neighbourhood).
+/// The sun found in each daytime frame, with its direction and blob area, in time order, the
+/// nested level sets of its glare (within three times the detection's neighbourhood) and the
+/// spread of the brightness around its clipped core ([`surround::ring_spread`]).
+type SunDetections = (Vec<Detection>, Vec<Vec<GlareLevel>>, Vec<Option<f64>>);
+
 fn sun_detections(
     frames: &[(DateTime<Utc>, image::RgbImage)],
     day: &[bool],
@@ -553,7 +599,7 @@ fn sun_detections(
     circle: ImageCircle,
     clip: ClipTest,
     ignore: Option<&[bool]>,
-) -> (Vec<Detection>, Vec<Vec<GlareLevel>>) {
+) -> SunDetections {
     let mut dets = vec![];
     for ((t, img), is_day) in frames.iter().zip(day) {
         let Ok(sp) = position(t, observer) else { continue };
@@ -565,11 +611,18 @@ fn sun_detections(
         if let Some((x, y, _)) = detect_sun(img, circle.radius_px, clip) {
             let area = saturated_blob_area(img, x, y, 0.05 * circle.radius_px, clip);
             let levels = glare_levels(img, x, y, 0.15 * circle.radius_px, clip);
-            dets.push((Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 }, levels));
+            let spread = surround::ring_spread(img, x, y, circle, 0.15 * circle.radius_px, clip);
+            dets.push((Detection { time: *t, px: (x, y), dir: direction_enu(sp.apparent_zenith_rad, sp.azimuth_rad), blob_px: area, weight: 1.0 }, levels, spread));
         }
     }
     dets.sort_by_key(|d| d.0.time);
-    dets.into_iter().unzip()
+    let mut out: SunDetections = (vec![], vec![], vec![]);
+    for (d, l, s) in dets {
+        out.0.push(d);
+        out.1.push(l);
+        out.2.push(s);
+    }
+    out
 }
 
 /// A radial lean of the clipped disc common to all detections reads as focal length: the held-out

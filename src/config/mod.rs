@@ -11,7 +11,7 @@ mod webhook;
 
 pub use webhook::WebhookSection;
 pub use modbus_feed::{MAX_MODBUS_REGISTERS, ModbusFeedSection, Quantity, RegisterFormat, RegisterKind, RegisterSpec, WordOrder};
-pub use calibration::{CalibrationFile, CameraCalibration, FitRecord, MIN_DETECTIONS_PER_PARAMETER, MIN_FIT_AZIMUTH_SPAN_DEG, MIN_FIT_DETECTIONS};
+pub use calibration::{CalibrationFile, CameraCalibration, FitRecord, MIN_DETECTIONS_PER_PARAMETER, MIN_FIT_AZIMUTH_SPAN_DEG, MIN_FIT_DETECTIONS, MIN_ZENITH_SPAN_PER_RADIAL_TERM_DEG};
 pub use limits::{MAX_BLOCKS, MAX_LAYOUT_CELLS, MAX_PLANT_POINTS, MAX_POLYGON_VERTICES, MAX_PYRANOMETERS, MEMORY_CAP_BYTES, MemoryEstimate, layout_cells_of, polygon_area_m2};
 
 use std::path::{Path, PathBuf};
