@@ -137,5 +137,20 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     assert!(m.contains("nephocast_alarm_state{state=\"none\"} 1"), "{m}");
     assert!(a2["log"][0]["acked_utc"].is_string());
     assert_eq!(json(h2.addr, "/api/history").as_array().unwrap().len(), 8);
+    // The next frames after the restart have no confirmed motion yet: the restored state is held
+    // (not current), not dropped to calm and raised again (two changes logged and notified).
+    // (The frames left in the folder are judged first: the corrupt one, the newest, is rejected.)
+    wait_for("the folder judged", || json(h2.addr, "/api/health")["frames_rejected"]["corrupt"].as_u64() == Some(1));
+    for f in &frames[11..13] {
+        let name = f.file_name().unwrap().to_str().unwrap();
+        drop_by_rename(f, &incoming, name);
+        let (d, t) = (&name[6..14], &name[15..21]);
+        let time = format!("{}-{}-{}T{}:{}:{}Z", &d[..4], &d[4..6], &d[6..], &t[..2], &t[2..4], &t[4..]);
+        wait_for("a frame after the restart", || json(h2.addr, "/api/health")["last_frame_utc"] == time.as_str());
+    }
+    let a3 = json(h2.addr, "/api/alarms");
+    assert_eq!(a3["state"], alarms["state"], "{a3}");
+    assert_eq!(a3["log"].as_array().unwrap().len(), log.len(), "{a3}");
+    assert_eq!(a3["current"], false, "{a3}");
     h2.stop();
 }
