@@ -364,6 +364,11 @@ fn parse_piece(path: &Path, header: &[u8], body: &[u8], lines_before: u64, ahead
                 }
             }
             Ok(_) => {}
+            // The CSV reader's own text counts within the one line read here: say it for the file.
+            Err(crate::io::InputError::Csv { message, .. }) if message.contains("found record with") => {
+                let (want, got) = (header.split(|b| *b == b',').count(), line.split(|b| *b == b',').count());
+                refused.push(format!("{at}: expected {want} comma-separated fields as in the header, got {got}"));
+            }
             Err(e) => refused.push(e.to_string()),
         }
     }
@@ -709,7 +714,7 @@ mod tests {
         assert_eq!(m.lines, vec![2, 5, 7]);
         assert_eq!(m.columns[0], vec![500.0, 520.0, 530.0]);
         assert_eq!(f.errors, 3);
-        for (line, what) in [(3, "5x0"), (4, "line 4"), (6, "not after the previous row")] {
+        for (line, what) in [(3, "5x0"), (4, "expected 2 comma-separated fields as in the header, got 1"), (6, "not after the previous row")] {
             assert!(r.notes.iter().any(|n| n.contains(&format!("line {line}")) && n.contains(what) && n.contains("m.csv")), "line {line}: {:?}", r.notes);
         }
     }

@@ -1,10 +1,16 @@
-//! The incoming folder over polls: which files are ready (unchanged over two polls), which changed
-//! after they were taken.
+//! The incoming folder over polls: which files are ready (unchanged over two polls; an empty file
+//! once it has stayed empty for [`EMPTY_FILE_AFTER_S`]), which changed after they were taken.
 
 use std::collections::{HashMap, HashSet};
 use std::path::PathBuf;
+use std::time::{Duration, Instant};
 
 use chrono::{DateTime, Utc};
+
+/// An empty frame file is judged (and refused as truncated) once it has stayed empty this long
+/// \[s\]: a writer that creates the file first fills it within seconds; one that never does (a
+/// failed capture, a full disk) must show in the counts and the log, not wait unseen forever.
+pub(super) const EMPTY_FILE_AFTER_S: u64 = 60;
 
 /// A frame file's signature: size and modification time.
 type Signature = (u64, Option<std::time::SystemTime>);
@@ -16,8 +22,8 @@ fn signature(p: &std::path::Path) -> Signature {
 
 #[derive(Debug, Clone, Copy)]
 enum Track {
-    /// Not taken yet: its signature at the last poll.
-    Pending(Signature),
+    /// Not taken yet: its signature at the last poll, and since when it has had it.
+    Pending(Signature, Instant),
     /// Taken with this signature; whether the engine used it.
     Taken(Signature, bool),
 }
@@ -40,6 +46,11 @@ pub(super) struct Poll {
 
 impl Watcher {
     pub(super) fn poll(&mut self, frames: &[crate::io::FrameRef]) -> Poll {
+        self.poll_at(frames, Instant::now())
+    }
+
+    /// [`Watcher::poll`] at `now`.
+    fn poll_at(&mut self, frames: &[crate::io::FrameRef], now: Instant) -> Poll {
         // Forget files that are gone (the camera's own clean-up), so the memory stays bounded.
         let present: HashSet<&PathBuf> = frames.iter().map(|f| &f.path).collect();
         self.tracks.retain(|p, _| present.contains(p));
@@ -50,16 +61,18 @@ impl Watcher {
             let name = f.path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
             match self.tracks.get(&f.path).map(|x| x.1) {
                 None => {
-                    self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig)));
+                    self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig, now)));
                 }
-                Some(Track::Pending(prev)) => {
-                    // An empty regular file is still being written; anything else that is stable is
-                    // judged (a special file is refused by intake, without being opened).
+                Some(Track::Pending(prev, since)) => {
+                    // An empty regular file is still being written, until it has stayed empty too
+                    // long; anything else that is stable is judged (a special file is refused by
+                    // intake, without being opened).
                     let empty_file = sig.0 == 0 && std::fs::symlink_metadata(&f.path).is_ok_and(|m| m.is_file());
-                    if prev == sig && !empty_file {
+                    let waited = now.saturating_duration_since(since) >= Duration::from_secs(EMPTY_FILE_AFTER_S);
+                    if prev == sig && (!empty_file || waited) {
                         ready.push((f.clone(), sig));
-                    } else {
-                        self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig)));
+                    } else if prev != sig {
+                        self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig, now)));
                     }
                 }
                 Some(Track::Taken(prev, used)) if prev != sig => {
@@ -71,7 +84,7 @@ impl Watcher {
                         self.tracks.insert(f.path.clone(), (f.time, Track::Taken(sig, used)));
                     } else {
                         notes.push(format!("{name} changed after it was taken ({} → {} bytes); read again once it is stable", prev.0, sig.0));
-                        self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig)));
+                        self.tracks.insert(f.path.clone(), (f.time, Track::Pending(sig, now)));
                     }
                 }
                 Some(Track::Taken(..)) => {}
@@ -89,5 +102,32 @@ impl Watcher {
         if let Some((_, Track::Taken(_, u))) = self.tracks.get_mut(&f.path) {
             *u = used;
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A file that stays empty is judged after [`EMPTY_FILE_AFTER_S`] (and then refused by intake,
+    /// counted and logged); one filled in time is judged whole.
+    #[test]
+    fn an_empty_file_is_judged_once_it_has_stayed_empty() {
+        let d = tempfile::tempdir().unwrap();
+        let (empty, filled) = (d.path().join("frame_20260614T100000Z.jpg"), d.path().join("frame_20260614T100030Z.jpg"));
+        std::fs::write(&empty, b"").unwrap();
+        std::fs::write(&filled, b"").unwrap();
+        let t: chrono::DateTime<chrono::Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let frames = [crate::io::FrameRef { time: t, path: empty.clone() }, crate::io::FrameRef { time: t + chrono::Duration::seconds(30), path: filled.clone() }];
+        let mut w = Watcher::default();
+        let t0 = Instant::now();
+        let ready = |p: &Poll| p.ready.iter().map(|f| f.path.clone()).collect::<Vec<_>>();
+        assert!(ready(&w.poll_at(&frames, t0)).is_empty());
+        assert!(ready(&w.poll_at(&frames, t0 + Duration::from_secs(1))).is_empty());
+        std::fs::write(&filled, b"whole").unwrap();
+        assert!(ready(&w.poll_at(&frames, t0 + Duration::from_secs(2))).is_empty(), "changed: wait for a stable size");
+        assert_eq!(ready(&w.poll_at(&frames, t0 + Duration::from_secs(3))), vec![filled.clone()]);
+        assert!(ready(&w.poll_at(&frames, t0 + Duration::from_secs(EMPTY_FILE_AFTER_S - 1))).is_empty());
+        assert_eq!(ready(&w.poll_at(&frames, t0 + Duration::from_secs(EMPTY_FILE_AFTER_S))), vec![empty]);
     }
 }
