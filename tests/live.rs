@@ -154,3 +154,40 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     assert_eq!(a3["current"], false, "{a3}");
     h2.stop();
 }
+
+/// A burst whose newest frame does not read (an upload cut short): it is rejected and counted, and
+/// the next newest waiting is used instead of being skipped with it.
+#[test]
+fn a_broken_newest_frame_gives_way_to_the_next_newest() {
+    let d = tempfile::tempdir().unwrap();
+    let incoming = d.path().join("incoming");
+    std::fs::create_dir_all(&incoming).unwrap();
+    let opts = LiveOptions {
+        site: demo().join("site.toml"),
+        incoming: incoming.clone(),
+        db: d.path().join("live.sqlite"),
+        bind: "127.0.0.1:0".parse().unwrap(),
+        ack_token: None,
+        server: Default::default(),
+        keep_s: 86_400,
+        poll_ms: 40,
+        overlay_every: 0,
+        health: Default::default(),
+    };
+    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    frames.sort();
+    // Written before the start, so that one poll finds all three.
+    for f in &frames[..2] {
+        drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());
+    }
+    let bytes = std::fs::read(&frames[2]).unwrap();
+    std::fs::write(incoming.join(frames[2].file_name().unwrap()), &bytes[..bytes.len() / 2]).unwrap();
+    let h = start(opts).unwrap();
+    wait_for("the burst", || {
+        let j = json(h.addr, "/api/health");
+        j["frames_rejected"]["truncated"].as_u64() == Some(1) && j["frames_processed"].as_u64() == Some(1) && j["frames_skipped"].as_u64() == Some(1)
+    });
+    let health = json(h.addr, "/api/health");
+    assert_eq!(health["last_frame_utc"], "2026-06-14T08:30:30Z", "{health}");
+    h.stop();
+}
