@@ -393,7 +393,7 @@ pub fn list_frames_named(dir: &Path, naming: &FrameNaming) -> Result<(Vec<FrameR
             None => untimed += 1,
         }
     }
-    frames.sort_by(|a, b| a.time.cmp(&b.time).then(a.path.cmp(&b.path)));
+    frames.sort_by(|a, b| a.time.cmp(&b.time).then_with(|| a.path.cmp(&b.path)));
     Ok((frames, untimed))
 }
 

@@ -351,11 +351,15 @@ pub struct Alarm {
     /// Distinct alert-level ramps seen: expected start, direction, when last forecast.
     seen: Vec<(DateTime<Utc>, Direction, DateTime<Utc>)>,
     last_alert_level: Option<DateTime<Utc>>,
+    /// A state restored after a restart: the newest frame nowcast before it. The state is held
+    /// (not current) while the motion behind a new nowcast is not confirmed yet, for frames up to
+    /// `alert_lead_min` after that one.
+    restored_from: Option<DateTime<Utc>>,
 }
 
 impl Default for Alarm {
     fn default() -> Self {
-        Self { state: AlarmState::Calm, current: false, since: None, basis: None, reason: "no forecast yet".into(), seen: vec![], last_alert_level: None }
+        Self { state: AlarmState::Calm, current: false, since: None, basis: None, reason: "no forecast yet".into(), seen: vec![], last_alert_level: None, restored_from: None }
     }
 }
 
@@ -364,9 +368,23 @@ fn secs(a: &DateTime<Utc>, b: &DateTime<Utc>) -> f64 {
 }
 
 impl Alarm {
-    /// A state restored from a log: kept, but not current until a forecast confirms it.
-    pub fn restored(state: AlarmState) -> Alarm {
-        Alarm { state, current: false, reason: "restored after a restart; no nowcast yet".into(), ..Alarm::default() }
+    /// A state restored from a log: kept, but not current until a forecast confirms it. `since`:
+    /// the frame time of the change into it; `last_frame`: the newest frame nowcast before the
+    /// restart. With `last_frame`, the state is held while the motion is being confirmed again
+    /// (the first frames after a restart have none), for frames up to `alert_lead_min` after
+    /// `last_frame`: a restart does not log (and notify) a fall to calm and a rise back a minute
+    /// later. A state it was held in counts as having seen an alert-level ramp at `last_frame`.
+    pub fn restored(state: AlarmState, since: Option<DateTime<Utc>>, last_frame: Option<DateTime<Utc>>) -> Alarm {
+        let alert_level = matches!(state, AlarmState::Alert | AlarmState::Variable);
+        Alarm {
+            state,
+            current: false,
+            since,
+            reason: "restored after a restart; no nowcast yet".into(),
+            last_alert_level: last_frame.filter(|_| alert_level),
+            restored_from: last_frame,
+            ..Alarm::default()
+        }
     }
 
     /// Why the alarm is in its state, citing its basis.
@@ -382,8 +400,18 @@ impl Alarm {
     /// Update from a forecast's ramp events; `confirmed_measurements` is the number of consistent
     /// motion measurements behind the forecast. Returns the change, if any.
     pub fn update(&mut self, t: &DateTime<Utc>, events: &[RampEvent], confirmed_measurements: usize, p: &RampParams) -> Option<AlarmChange> {
-        self.current = true;
         let confirmed = confirmed_measurements >= p.motion_confirm_measurements as usize;
+        if let Some(last) = self.restored_from {
+            if !confirmed && secs(t, &last) <= p.alert_lead_min * 60.0 {
+                self.reason = format!(
+                    "restored after a restart; held while motion is confirmed again ({confirmed_measurements} of {} consistent measurements)",
+                    p.motion_confirm_measurements
+                );
+                return None;
+            }
+            self.restored_from = None;
+        }
+        self.current = true;
         let none: [RampEvent; 0] = [];
         let events = if confirmed { events } else { &none };
         let start_of = |e: &RampEvent| *t + chrono::Duration::milliseconds((e.lead_time_s * 1000.0) as i64);
@@ -640,10 +668,32 @@ mod tests {
     fn a_restored_state_is_not_current_and_falls_without_a_ramp_behind_it() {
         let p = RampParams::default();
         let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
-        let mut a = Alarm::restored(AlarmState::Alert);
+        let mut a = Alarm::restored(AlarmState::Alert, None, None);
         assert!(!a.current);
         assert!(a.reason().contains("no nowcast yet"));
         assert_eq!(a.update(&t0, &[], 3, &p).unwrap().to, AlarmState::Calm);
         assert!(a.current);
+    }
+
+    /// After a restart the first nowcasts have no confirmed motion: the restored state is held
+    /// (no change logged or notified) until motion is confirmed, then judged as usual; a restart
+    /// long after the last frame (beyond `alert_lead_min`) is not held.
+    #[test]
+    fn a_restored_state_is_held_while_motion_is_confirmed_again() {
+        let p = RampParams::default();
+        let t = |s: i64| "2026-06-14T10:00:00Z".parse::<DateTime<Utc>>().unwrap() + chrono::Duration::seconds(s);
+        let mut a = Alarm::restored(AlarmState::Variable, Some(t(-1800)), Some(t(0)));
+        for (i, s) in [0, 30, 60].into_iter().enumerate() {
+            assert_eq!(a.update(&t(s), &[], i, &p), None, "frame {i}");
+            assert!(!a.current && a.reason().contains("held while motion is confirmed"), "{}", a.reason());
+        }
+        // Confirmed, and no alert-level ramp since the last frame before the restart: variable is
+        // released 15 min after it, as without the restart.
+        assert_eq!(a.update(&t(90), &[], 3, &p), None);
+        assert!(a.current);
+        assert_eq!(a.update(&t(15 * 60 + 30), &[], 3, &p).unwrap().to, AlarmState::Calm);
+        // Restarted 20 min after the last frame: judged at once.
+        let mut late = Alarm::restored(AlarmState::Alert, Some(t(-60)), Some(t(0)));
+        assert_eq!(late.update(&t(20 * 60), &[], 0, &p).unwrap().to, AlarmState::Calm);
     }
 }

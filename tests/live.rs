@@ -137,5 +137,57 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     assert!(m.contains("nephocast_alarm_state{state=\"none\"} 1"), "{m}");
     assert!(a2["log"][0]["acked_utc"].is_string());
     assert_eq!(json(h2.addr, "/api/history").as_array().unwrap().len(), 8);
+    // The next frames after the restart have no confirmed motion yet: the restored state is held
+    // (not current), not dropped to calm and raised again (two changes logged and notified).
+    // (The frames left in the folder are judged first: the corrupt one, the newest, is rejected.)
+    wait_for("the folder judged", || json(h2.addr, "/api/health")["frames_rejected"]["corrupt"].as_u64() == Some(1));
+    for f in &frames[11..13] {
+        let name = f.file_name().unwrap().to_str().unwrap();
+        drop_by_rename(f, &incoming, name);
+        let (d, t) = (&name[6..14], &name[15..21]);
+        let time = format!("{}-{}-{}T{}:{}:{}Z", &d[..4], &d[4..6], &d[6..], &t[..2], &t[2..4], &t[4..]);
+        wait_for("a frame after the restart", || json(h2.addr, "/api/health")["last_frame_utc"] == time.as_str());
+    }
+    let a3 = json(h2.addr, "/api/alarms");
+    assert_eq!(a3["state"], alarms["state"], "{a3}");
+    assert_eq!(a3["log"].as_array().unwrap().len(), log.len(), "{a3}");
+    assert_eq!(a3["current"], false, "{a3}");
     h2.stop();
+}
+
+/// A burst whose newest frame does not read (an upload cut short): it is rejected and counted, and
+/// the next newest waiting is used instead of being skipped with it.
+#[test]
+fn a_broken_newest_frame_gives_way_to_the_next_newest() {
+    let d = tempfile::tempdir().unwrap();
+    let incoming = d.path().join("incoming");
+    std::fs::create_dir_all(&incoming).unwrap();
+    let opts = LiveOptions {
+        site: demo().join("site.toml"),
+        incoming: incoming.clone(),
+        db: d.path().join("live.sqlite"),
+        bind: "127.0.0.1:0".parse().unwrap(),
+        ack_token: None,
+        server: Default::default(),
+        keep_s: 86_400,
+        poll_ms: 40,
+        overlay_every: 0,
+        health: Default::default(),
+    };
+    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    frames.sort();
+    // Written before the start, so that one poll finds all three.
+    for f in &frames[..2] {
+        drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());
+    }
+    let bytes = std::fs::read(&frames[2]).unwrap();
+    std::fs::write(incoming.join(frames[2].file_name().unwrap()), &bytes[..bytes.len() / 2]).unwrap();
+    let h = start(opts).unwrap();
+    wait_for("the burst", || {
+        let j = json(h.addr, "/api/health");
+        j["frames_rejected"]["truncated"].as_u64() == Some(1) && j["frames_processed"].as_u64() == Some(1) && j["frames_skipped"].as_u64() == Some(1)
+    });
+    let health = json(h.addr, "/api/health");
+    assert_eq!(health["last_frame_utc"], "2026-06-14T08:30:30Z", "{health}");
+    h.stop();
 }

@@ -214,9 +214,10 @@ impl Nowcaster {
         Ok(nc)
     }
 
-    /// Restore the alarm state (live mode, after a restart).
-    pub fn restore_alarm(&mut self, state: crate::ramp::AlarmState) {
-        self.alarm = crate::ramp::Alarm::restored(state);
+    /// Restore the alarm state (live mode, after a restart): the state, the frame time of the
+    /// change into it, and the newest frame nowcast before the restart ([`crate::ramp::Alarm::restored`]).
+    pub fn restore_alarm(&mut self, state: crate::ramp::AlarmState, since: Option<DateTime<Utc>>, last_frame: Option<DateTime<Utc>>) {
+        self.alarm = crate::ramp::Alarm::restored(state, since, last_frame);
     }
 
     /// Current alarm state.

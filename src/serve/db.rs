@@ -164,12 +164,32 @@ pub fn alarms(c: &Connection, limit: usize) -> rusqlite::Result<Vec<AlarmRow>> {
 /// # Errors
 /// A database error.
 pub fn last_state(c: &Connection) -> rusqlite::Result<Option<AlarmState>> {
-    let s: Option<String> = c.query_row("SELECT to_state FROM alarms ORDER BY id DESC LIMIT 1", [], |r| r.get(0)).ok();
-    Ok(s.map(|s| match s.as_str() {
-        // The state's name in databases written before it was renamed.
-        "watch" => AlarmState::Caution,
-        s => AlarmState::from_name(s).unwrap_or(AlarmState::Calm),
+    Ok(last_change(c)?.map(|(s, _)| s))
+}
+
+/// The last alarm change: the state it went to and its frame time.
+///
+/// # Errors
+/// SQLite's.
+pub fn last_change(c: &Connection) -> rusqlite::Result<Option<(AlarmState, Option<chrono::DateTime<chrono::Utc>>)>> {
+    let s: Option<(String, String)> = c.query_row("SELECT to_state, time_utc FROM alarms ORDER BY id DESC LIMIT 1", [], |r| Ok((r.get(0)?, r.get(1)?))).ok();
+    Ok(s.map(|(s, t)| {
+        let state = match s.as_str() {
+            // The state's name in databases written before it was renamed.
+            "watch" => AlarmState::Caution,
+            s => AlarmState::from_name(s).unwrap_or(AlarmState::Calm),
+        };
+        (state, t.parse().ok())
     }))
+}
+
+/// The newest frame time in the history (the last nowcast before a restart).
+///
+/// # Errors
+/// SQLite's.
+pub fn last_frame_time(c: &Connection) -> rusqlite::Result<Option<chrono::DateTime<chrono::Utc>>> {
+    let t: Option<String> = c.query_row("SELECT time_utc FROM history ORDER BY unix_s DESC LIMIT 1", [], |r| r.get(0)).ok();
+    Ok(t.and_then(|t| t.parse().ok()))
 }
 
 /// What became of an acknowledgement.

@@ -129,14 +129,26 @@ impl LiveEngine {
             let tol = self.nc.site().file.qc.max_ahead_of_clock_s;
             let (future, ready): (Vec<_>, Vec<_>) = poll.ready.into_iter().partition(|f| (f.time - now).num_milliseconds() as f64 / 1000.0 > tol);
             self.reject_future(&future, now);
-            let Some(newest) = ready.iter().max_by_key(|f| f.time).cloned() else { continue };
-            for f in ready.iter().filter(|f| f.path != newest.path) {
-                self.log(&[("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())]);
+            // Newest first; a newest frame that does not read (cut, corrupt, wrong size) is
+            // reported and gives way to the next newest waiting, so a burst whose last upload broke
+            // still gives a nowcast.
+            let mut order = ready.clone();
+            order.sort_by(|a, b| b.time.cmp(&a.time).then_with(|| b.path.cmp(&a.path)));
+            let Some(mut newest) = order.first().cloned() else { continue };
+            let mut stepped = self.step(&newest);
+            let mut tried = 1;
+            while matches!(&stepped.result, Err(Rejection::Intake(_) | Rejection::Unreadable(_) | Rejection::WrongSize { .. })) && tried < order.len() {
+                self.report(&newest, stepped, 0);
+                newest = order[tried].clone();
+                tried += 1;
+                stepped = self.step(&newest);
             }
-            let stepped = self.step(&newest);
+            for line in skip_lines(&order[tried..]) {
+                self.log(&line);
+            }
             self.note_base_rejected();
             self.note_camera_settings();
-            self.report(&newest, stepped, ready.len() - 1);
+            self.report(&newest, stepped, order.len() - tried);
             retire_all(&ready, &self.opts.health.retention, &self.shared, self.opts.health.log_json);
         }
         if let Ok(mut s) = self.shared.lock() {
@@ -454,6 +466,33 @@ impl LiveEngine {
     }
 }
 
+/// Skipped frames logged one by one in a poll, the newest; older ones get one summary line.
+const SKIP_LINES_MAX: usize = 20;
+
+/// The log lines for the frames of one poll skipped for a newer one: one per frame for the newest
+/// [`SKIP_LINES_MAX`], then one line counting the older ones with their first and last file (a
+/// restart over a folder of 50,000 frames wrote 49,999 lines at once, past journald's rate limit).
+fn skip_lines(skipped: &[crate::io::FrameRef]) -> Vec<Vec<(&'static str, String)>> {
+    let mut skipped: Vec<&crate::io::FrameRef> = skipped.iter().collect();
+    skipped.sort_by(|a, b| a.time.cmp(&b.time).then_with(|| a.path.cmp(&b.path)));
+    let (older, each) = skipped.split_at(skipped.len().saturating_sub(SKIP_LINES_MAX));
+    let mut lines = vec![];
+    if let (Some(first), Some(last)) = (older.first(), older.last()) {
+        lines.push(vec![
+            ("event", "frame".into()),
+            ("outcome", "skipped".into()),
+            ("count", older.len().to_string()),
+            ("first", file_name(&first.path)),
+            ("last", file_name(&last.path)),
+            ("reason", format!("a newer frame was waiting; {} older skipped frames not listed one by one", older.len())),
+        ]);
+    }
+    for f in each {
+        lines.push(vec![("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())]);
+    }
+    lines
+}
+
 fn file_name(p: &std::path::Path) -> String {
     p.file_name().map(|x| x.to_string_lossy().into_owned()).unwrap_or_default()
 }
@@ -561,5 +600,25 @@ fn feed_step(feed: &mut FeedSource, nc: &mut Nowcaster, shared: &Arc<Mutex<Share
         s.health.tuning_resets += usize::from(reset);
         s.health.tuning_rows = nc.tuning_rows();
         s.ops.measurement_end = end;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn many_skipped_frames_are_summed_up_in_one_line() {
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let frames: Vec<crate::io::FrameRef> =
+            (0..50).map(|i| crate::io::FrameRef { time: t0 + chrono::Duration::seconds(i), path: format!("in/frame_{i:02}.jpg").into() }).collect();
+        let lines = skip_lines(&frames[..49]);
+        assert_eq!(lines.len(), 1 + SKIP_LINES_MAX);
+        let text = ops::log_line(&lines[0], false);
+        assert!(text.contains("count=29") && text.contains("first=frame_00.jpg") && text.contains("last=frame_28.jpg"), "{text}");
+        assert!(ops::log_line(&lines[1], false).contains("file=frame_29.jpg"));
+        assert!(ops::log_line(&lines[SKIP_LINES_MAX], false).contains("file=frame_48.jpg"));
+        // A few are listed one by one, with no summary.
+        assert_eq!(skip_lines(&frames[..2]).len(), 2);
     }
 }

@@ -262,8 +262,8 @@ pub fn start(opts: LiveOptions) -> Result<LiveHandle, ServeError> {
     std::fs::create_dir_all(&opts.incoming)?;
     let database = |error| ServeError::Database { path: opts.db.clone(), error };
     let conn = db::open(&opts.db).map_err(database)?;
-    if let Some(s) = db::last_state(&conn).map_err(database)? {
-        nowcaster.restore_alarm(s);
+    if let Some((s, since)) = db::last_change(&conn).map_err(database)? {
+        nowcaster.restore_alarm(s, since, db::last_frame_time(&conn).map_err(database)?);
     }
     let feed = Arc::new(modbus::Feed::new(modbus::targets_of(&nowcaster.site().file)));
     let mb = opts.server.modbus.as_ref().map(|m| modbus::start(m, feed.clone())).transpose()?;

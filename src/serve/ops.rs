@@ -193,7 +193,8 @@ pub struct MeasurementFeed {
     files: HashMap<(u64, u64), FileState>,
     /// Rows read so far.
     pub rows_read: usize,
-    /// Pieces refused (unparsable, kW/m²).
+    /// Refusals: lines that do not parse (or are not after the row before them), rows ahead of
+    /// the clock, pieces refused whole by screening (kW/m²).
     pub errors: usize,
 }
 
@@ -246,6 +247,13 @@ impl MeasurementFeed {
 
     /// Read what was added since the last poll and screen it.
     pub fn poll(&mut self, site: &crate::config::SiteFile) -> FeedPoll {
+        self.poll_at(site, Utc::now())
+    }
+
+    /// [`MeasurementFeed::poll`] with the clock reading `now`: rows dated more than the site's
+    /// `qc.max_ahead_of_clock_s` after it are left out (a logger whose clock ran ahead must not
+    /// make every later reading look old, nor push the held readings out).
+    pub fn poll_at(&mut self, site: &crate::config::SiteFile, now: DateTime<Utc>) -> FeedPoll {
         let mut out = FeedPoll::default();
         let files = self.list();
         let present: HashSet<(u64, u64)> = files.iter().map(|f| file_id(&f.1)).collect();
@@ -280,13 +288,22 @@ impl MeasurementFeed {
             if n_lines == 0 {
                 continue;
             }
-            let mut text = st.header.clone().unwrap_or_default();
-            text.extend_from_slice(body);
+            let header = st.header.clone().unwrap_or_default();
             let lines_before = st.lines;
             st.lines += n_lines;
             let last_time = st.last_time;
-            let parsed = Measurements::read_csv_text(&path, &text, lines_before).and_then(|mut m| {
+            let tolerance_s = site.qc.max_ahead_of_clock_s;
+            let ahead = |t: &DateTime<Utc>| (age_s(&now, t) > tolerance_s).then(|| ahead_note(t, now, tolerance_s));
+            let (piece, refused) = parse_piece(&path, &header, body, lines_before, ahead);
+            self.errors += refused.len();
+            out.notes.extend(refused.into_iter().map(|e| format!("measurements: {e}; left out")));
+            let parsed = piece.and_then(|mut m| {
                 // A piece of one row takes its period from the row before it in the file.
+                if let Some((n, line, t)) = drop_ahead_of_clock(&mut m, now, tolerance_s) {
+                    self.errors += n;
+                    let more = if n > 1 { format!(" (and {} later rows)", n - 1) } else { String::new() };
+                    out.notes.push(format!("measurements: {}: line {line}: {}; left out{more}", path.display(), ahead_note(&t, now, tolerance_s)));
+                }
                 let hint = last_time.zip(m.times.first()).map(|(a, b)| (*b - a).num_milliseconds() as f64 / 1000.0).filter(|p| *p > 0.0);
                 let newest = m.times.last().copied();
                 m.label_at_start(site.measurements.time_label, hint);
@@ -315,6 +332,73 @@ impl MeasurementFeed {
         }
         out
     }
+}
+
+/// A piece of a feed file (`body`: whole lines after `lines_before` data lines) parsed under its
+/// `header`. When it does not parse as a whole, it is read line by line: each line that does not
+/// parse, whose time is not after the row kept before it, or that is dated ahead of the clock
+/// (`ahead`), is refused (the reason, naming the file and line, is returned) and the others are
+/// kept with their line numbers — one line cut by a logger's power loss or holding a stray value
+/// must not cost the rows around it. `Err` is the piece's error when no line could be kept.
+fn parse_piece(path: &Path, header: &[u8], body: &[u8], lines_before: u64, ahead: impl Fn(&DateTime<Utc>) -> Option<String>) -> (Result<Measurements, crate::io::InputError>, Vec<String>) {
+    let whole = [header, body].concat();
+    let first_error = match Measurements::read_csv_text(path, &whole, lines_before) {
+        Ok(m) => return (Ok(m), vec![]),
+        Err(e) => e,
+    };
+    let (mut kept, mut lines, mut refused) = (header.to_vec(), vec![], vec![]);
+    let mut last: Option<DateTime<Utc>> = None;
+    for (i, line) in body.split_inclusive(|b| *b == b'\n').enumerate() {
+        let at = format!("{}: line {}", path.display(), lines_before + 2 + i as u64);
+        match Measurements::read_csv_text(path, &[header, line].concat(), lines_before + i as u64) {
+            Ok(one) if one.times.len() == 1 => {
+                let t = one.times[0];
+                if let Some(why) = ahead(&t) {
+                    refused.push(format!("{at}: {why}"));
+                } else if last.is_some_and(|l| t <= l) {
+                    refused.push(format!("{at}: time_utc {} is not after the previous row: duplicated or out of order", fmt_time(&t)));
+                } else {
+                    last = Some(t);
+                    kept.extend_from_slice(line);
+                    lines.push(one.lines[0]);
+                }
+            }
+            Ok(_) => {}
+            // The CSV reader's own text counts within the one line read here: say it for the file.
+            Err(crate::io::InputError::Csv { message, .. }) if message.contains("found record with") => {
+                let (want, got) = (header.split(|b| *b == b',').count(), line.split(|b| *b == b',').count());
+                refused.push(format!("{at}: expected {want} comma-separated fields as in the header, got {got}"));
+            }
+            Err(e) => refused.push(e.to_string()),
+        }
+    }
+    match Measurements::read_csv_text(path, &kept, 0) {
+        Ok(mut m) if !m.times.is_empty() && m.times.len() == lines.len() => {
+            m.lines = lines;
+            (Ok(m), refused)
+        }
+        _ => (Err(first_error), vec![]),
+    }
+}
+
+fn ahead_note(t: &DateTime<Utc>, now: DateTime<Utc>, tolerance_s: f64) -> String {
+    format!("time_utc {} is {:.0} s ahead of the clock (at most qc.max_ahead_of_clock_s = {tolerance_s} s expected; check the logger's clock)", fmt_time(t), age_s(&now, t))
+}
+
+/// Leave out the rows dated more than `tolerance_s` after `now`; returns how many, with the first
+/// one's line and time.
+fn drop_ahead_of_clock(m: &mut Measurements, now: DateTime<Utc>, tolerance_s: f64) -> Option<(usize, u64, DateTime<Utc>)> {
+    let ahead = |t: &DateTime<Utc>| age_s(&now, t) > tolerance_s;
+    let first = m.times.iter().position(ahead)?;
+    let found = (m.times.iter().filter(|t| ahead(t)).count(), m.lines.get(first).copied().unwrap_or(0), m.times[first]);
+    let keep: Vec<bool> = m.times.iter().map(|t| !ahead(t)).collect();
+    let pick = |v: &mut Vec<f64>| *v = v.iter().zip(&keep).filter(|(_, k)| **k).map(|(x, _)| *x).collect();
+    for c in &mut m.columns {
+        pick(c);
+    }
+    m.lines = m.lines.iter().zip(&keep).filter(|(_, k)| **k).map(|(x, _)| *x).collect();
+    m.times.retain(|t| !ahead(t));
+    Some(found)
 }
 
 fn read_range(path: &Path, offset: u64, max: u64) -> std::io::Result<Vec<u8>> {
@@ -611,6 +695,49 @@ mod tests {
         std::fs::OpenOptions::new().append(true).open(&p).unwrap().write_all(b"2026-06-14T10:04:00Z,abc\n").unwrap();
         let r = f.poll(&site);
         assert!(r.pieces.is_empty() && r.notes[0].contains("line 3"), "{:?}", r.notes);
+    }
+
+    /// One bad line (a stray value, a line cut by a power loss, a row out of order) costs only
+    /// itself: the rows around it are kept with their line numbers, and each refusal names its line.
+    #[test]
+    fn feed_keeps_the_good_lines_around_a_bad_one() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("m.csv");
+        let site = crate::config::Site::load(&Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/site.toml")).unwrap().file;
+        let text = "time_utc,ghi_a_wm2\n2026-06-14T10:00:00Z,500\n2026-06-14T10:01:00Z,5x0\n2026-06-14T10:0\n2026-06-14T10:02:00Z,520\n2026-06-14T10:01:30Z,515\n2026-06-14T10:03:00Z,530\n";
+        std::fs::write(&p, text).unwrap();
+        let mut f = MeasurementFeed::new(&p);
+        let now = "2026-06-14T10:05:00Z".parse().unwrap();
+        let r = f.poll_at(&site, now);
+        assert_eq!(r.pieces.len(), 1, "{:?}", r.notes);
+        let m = &r.pieces[0].0;
+        assert_eq!(m.lines, vec![2, 5, 7]);
+        assert_eq!(m.columns[0], vec![500.0, 520.0, 530.0]);
+        assert_eq!(f.errors, 3);
+        for (line, what) in [(3, "5x0"), (4, "expected 2 comma-separated fields as in the header, got 1"), (6, "not after the previous row")] {
+            assert!(r.notes.iter().any(|n| n.contains(&format!("line {line}")) && n.contains(what) && n.contains("m.csv")), "line {line}: {:?}", r.notes);
+        }
+    }
+
+    /// A row dated ahead of the clock (a logger whose clock ran a year ahead) is left out and named;
+    /// the readings held and those that follow with the right time are kept.
+    #[test]
+    fn feed_leaves_out_rows_ahead_of_the_clock() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("m.csv");
+        let site = crate::config::Site::load(&Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/site.toml")).unwrap().file;
+        std::fs::write(&p, "time_utc,ghi_a_wm2\n2026-06-14T10:00:00Z,500\n2027-06-14T10:01:00Z,510\n2026-06-14T10:01:00Z,505\n").unwrap();
+        let mut f = MeasurementFeed::new(&p);
+        let r = f.poll_at(&site, "2026-06-14T10:02:30Z".parse().unwrap());
+        let m = &r.pieces[0].0;
+        assert_eq!(m.columns[0], vec![500.0, 505.0], "{:?}", r.notes);
+        assert!(r.notes.iter().any(|n| n.contains("line 3") && n.contains("ahead of the clock")), "{:?}", r.notes);
+        assert_eq!(f.errors, 1);
+        // Within the tolerance (120 s) a row is taken.
+        use std::io::Write;
+        std::fs::OpenOptions::new().append(true).open(&p).unwrap().write_all(b"2026-06-14T10:04:00Z,520\n").unwrap();
+        let r = f.poll_at(&site, "2026-06-14T10:02:30Z".parse().unwrap());
+        assert_eq!(r.pieces[0].0.columns[0], vec![520.0], "{:?}", r.notes);
     }
 
     /// With `[measurements] time_label = "end"` a live feed's rows are moved to the start of their
