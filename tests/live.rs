@@ -35,6 +35,12 @@ fn wait_for(what: &str, mut f: impl FnMut() -> bool) {
     }
 }
 
+/// A demo frame's time as health reports it: `frame_20260614T083000.000Z.jpg` → `2026-06-14T08:30:00Z`.
+fn frame_utc(name: &str) -> String {
+    let (d, t) = (&name[6..14], &name[15..21]);
+    format!("{}-{}-{}T{}:{}:{}Z", &d[..4], &d[4..6], &d[6..], &t[..2], &t[2..4], &t[4..])
+}
+
 fn demo() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data")
 }
@@ -93,17 +99,22 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     // A corrupt JPEG is counted and skipped.
     std::fs::write(incoming.join("frame_20260614T084000.000Z.jpg"), b"\xff\xd8 this is not a real jpeg").unwrap();
     wait_for("the corrupt frame to be counted", || json(addr, "/api/health")["frames_rejected"]["corrupt"].as_u64() == Some(1));
-    // Several frames at once: the newest is processed, the others skipped.
+    // Several frames at once: the newest is processed, any older one found with it skipped. The
+    // three renames may straddle a poll (seen on a loaded machine), so the split between processed
+    // and skipped is not fixed here; `a_broken_newest_frame_gives_way_to_the_next_newest` checks a
+    // burst found whole by one poll. Every frame is accounted for and the newest is the last used.
     for f in &frames[8..11] {
         drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());
     }
-    // The skips are counted as the poll that takes the newest goes on, so wait for both.
+    let newest = frame_utc(frames[10].file_name().unwrap().to_str().unwrap());
     wait_for("the burst", || {
         let h = json(addr, "/api/health");
-        h["frames_processed"].as_u64() == Some(8) && h["frames_skipped"].as_u64() == Some(2)
+        let (p, s) = (h["frames_processed"].as_u64().unwrap_or(0), h["frames_skipped"].as_u64().unwrap_or(0));
+        p + s == 10 && h["last_frame_utc"].as_str() == Some(newest.as_str())
     });
     let health = json(addr, "/api/health");
-    assert_eq!(health["frames_skipped"].as_u64(), Some(2), "{health}");
+    let processed = health["frames_processed"].as_u64().unwrap();
+    assert!(processed >= 8, "{health}");
     assert!(health["latency_ms_median"].as_f64().unwrap() > 0.0);
     // Broken cumulus over the plant raises the alarm; the change is logged.
     let alarms = json(addr, "/api/alarms");
@@ -136,7 +147,7 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     let (_, m) = http(h2.addr, "GET", "/metrics", None);
     assert!(m.contains("nephocast_alarm_state{state=\"none\"} 1"), "{m}");
     assert!(a2["log"][0]["acked_utc"].is_string());
-    assert_eq!(json(h2.addr, "/api/history").as_array().unwrap().len(), 8);
+    assert_eq!(json(h2.addr, "/api/history").as_array().unwrap().len() as u64, processed);
     // The next frames after the restart have no confirmed motion yet: the restored state is held
     // (not current), not dropped to calm and raised again (two changes logged and notified).
     // (The frames left in the folder are judged first: the corrupt one, the newest, is rejected.)
@@ -144,8 +155,7 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     for f in &frames[11..13] {
         let name = f.file_name().unwrap().to_str().unwrap();
         drop_by_rename(f, &incoming, name);
-        let (d, t) = (&name[6..14], &name[15..21]);
-        let time = format!("{}-{}-{}T{}:{}:{}Z", &d[..4], &d[4..6], &d[6..], &t[..2], &t[2..4], &t[4..]);
+        let time = frame_utc(name);
         wait_for("a frame after the restart", || json(h2.addr, "/api/health")["last_frame_utc"] == time.as_str());
     }
     let a3 = json(h2.addr, "/api/alarms");
