@@ -162,7 +162,7 @@ pub fn config_digest(site: &Path) -> Result<String, InputError> {
     // A file's string field at a dotted path, when the file is TOML and holds it.
     let field = |bytes: &[u8], section: &str, key: &str| -> Option<String> {
         let v: toml::Value = toml::from_str(std::str::from_utf8(bytes).ok()?).ok()?;
-        v.get(section)?.get(key)?.as_str().map(str::to_string)
+        v.get(section)?.get(key)?.as_str().filter(|p| !p.is_empty()).map(str::to_string)
     };
     let mut h = sha2::Sha256::new();
     let mut part = |name: &str, bytes: Option<&[u8]>| {
@@ -244,6 +244,9 @@ pub struct BatchSummary {
 /// completed with another site configuration, write failures.
 pub fn run_batch(opts: &BatchOptions) -> Result<BatchSummary, BatchError> {
     let start = Utc::now();
+    // The site file checked first, so that a bad or missing field is named as such (the digest
+    // would read an empty `camera.calibration` as the site's folder).
+    crate::config::Site::load_without_camera(&opts.site)?;
     let digest = config_digest(&opts.site)?;
     check_out_outside(&opts.days, &opts.out)?;
     let days = select_shard(list_days(&opts.days)?, opts.shard);

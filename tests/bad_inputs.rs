@@ -139,6 +139,8 @@ fn site_cases() -> Vec<Case> {
     push(&mut cases, "site: unknown field".into(), set(inputs::SITE, "[clouds]", "base_height_m", "1500.0\nbase_hieght_m = 3.0"), refused(&["base_hieght_m"]));
     push(&mut cases, "site: both cloud bases".into(), set(inputs::SITE, "[clouds]", "base_height_m", "1500.0\nbase_height_csv = \"cbh.csv\""), refused(&["clouds"]));
     push(&mut cases, "site: no cloud base".into(), remove_line(inputs::SITE, "[clouds]", "base_height_m"), refused(&["clouds"]));
+    push(&mut cases, "site: empty camera calibration".into(), set(inputs::SITE, "[camera]", "calibration", "\"\""), refused(&["camera.calibration"]));
+    push(&mut cases, "site: empty second camera calibration".into(), format!("{}\n[second_camera]\ncalibration = \"\"\nposition_m = [1000.0, 0.0, 3.0]\n", inputs::SITE), refused(&["second_camera.calibration"]));
     // Polygons.
     for (poly, why) in [
         ("[[0.0, 0.0], [1.0, 0.0]]", "two vertices"),

@@ -201,3 +201,40 @@ fn a_broken_newest_frame_gives_way_to_the_next_newest() {
     assert_eq!(health["last_frame_utc"], "2026-06-14T08:30:30Z", "{health}");
     h.stop();
 }
+
+/// A poll tries at most three frames, newest first, when they do not read: a folder of frames that
+/// all fail (a camera that changed resolution, a restart over a kept folder) costs a few decodes,
+/// not one per file. Four cut frames over one good older one: three rejected, the rest skipped.
+#[test]
+fn a_poll_tries_a_few_broken_frames_then_skips_the_rest() {
+    let d = tempfile::tempdir().unwrap();
+    let incoming = d.path().join("incoming");
+    std::fs::create_dir_all(&incoming).unwrap();
+    let opts = LiveOptions {
+        site: demo().join("site.toml"),
+        incoming: incoming.clone(),
+        db: d.path().join("live.sqlite"),
+        bind: "127.0.0.1:0".parse().unwrap(),
+        ack_token: None,
+        server: Default::default(),
+        keep_s: 86_400,
+        poll_ms: 40,
+        overlay_every: 0,
+        health: Default::default(),
+    };
+    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
+    frames.sort();
+    drop_by_rename(&frames[0], &incoming, frames[0].file_name().unwrap().to_str().unwrap());
+    for f in &frames[1..5] {
+        let bytes = std::fs::read(f).unwrap();
+        std::fs::write(incoming.join(f.file_name().unwrap()), &bytes[..bytes.len() / 2]).unwrap();
+    }
+    let h = start(opts).unwrap();
+    wait_for("the poll", || {
+        let j = json(h.addr, "/api/health");
+        j["frames_rejected"]["truncated"].as_u64() == Some(3) && j["frames_skipped"].as_u64() == Some(2)
+    });
+    let health = json(h.addr, "/api/health");
+    assert_eq!(health["frames_processed"].as_u64(), Some(0), "{health}");
+    h.stop();
+}

@@ -574,6 +574,9 @@ impl SiteFile {
         }
         self.webhook.validate(&c)?;
         if let Some(s) = &self.second_camera {
+            if s.calibration.as_os_str().is_empty() {
+                return Err(c.invalid("second_camera.calibration", "the second camera's calibration file, relative to the site file (from its own `calibrate` run)", "an empty path"));
+            }
             for (i, v) in s.position_m.iter().enumerate() {
                 c.range(&format!("second_camera.position_m[{i}]"), *v, -50_000.0, 50_000.0)?;
             }

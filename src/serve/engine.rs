@@ -57,6 +57,12 @@ struct Stepped {
     latency_ms: f64,
 }
 
+
+/// How many of a poll's frames, newest first, are tried when the newest does not read (cut,
+/// corrupt, wrong size); the rest are skipped. Bounded so that a folder of frames that all fail
+/// (a camera that changed resolution, a restart over a kept folder) costs a poll a few decodes,
+/// not one per file.
+pub(crate) const NEWEST_TRIES: usize = 3;
 impl LiveEngine {
     #[allow(clippy::too_many_arguments)]
     pub(super) fn new(
@@ -137,12 +143,15 @@ impl LiveEngine {
             let Some(mut newest) = order.first().cloned() else { continue };
             let mut stepped = self.step(&newest);
             let mut tried = 1;
-            while matches!(&stepped.result, Err(Rejection::Intake(_) | Rejection::Unreadable(_) | Rejection::WrongSize { .. })) && tried < order.len() {
+            while matches!(&stepped.result, Err(Rejection::Intake(_) | Rejection::Unreadable(_) | Rejection::WrongSize { .. })) && tried < order.len().min(NEWEST_TRIES) {
                 self.report(&newest, stepped, 0);
                 newest = order[tried].clone();
                 tried += 1;
                 stepped = self.step(&newest);
             }
+            // The second camera's frames are retired once the poll's step is settled: a first
+            // frame that did not read must not retire the second frame its fallback pairs with.
+            self.retire_second_frames(&newest.time);
             for line in skip_lines(&order[tried..]) {
                 self.log(&line);
             }
@@ -279,22 +288,34 @@ impl LiveEngine {
         Stepped { frame, result, latency_ms: t0.elapsed().as_secs_f64() * 1000.0 }
     }
 
-    /// With `[second_camera] incoming`: offer the engine the second camera's ready frame nearest in
-    /// time to `t` within [`crate::config::SECOND_FRAME_SLACK_S`] (decoded whole, as replay does),
-    /// then retire (by the retention policy) that frame and those too old to pair with a later
-    /// frame (a frame newer than `t` stays for the next step). A second frame that does not read is logged and left out; the step goes on.
-    fn offer_second_frame(&mut self, t: &DateTime<Utc>) {
-        let Some(dir) = self.nc.site().second_camera.as_ref().and_then(|s| s.incoming.clone()) else { return };
+    /// The second camera's ready frames and the one nearest in time to `t` within
+    /// [`crate::config::SECOND_FRAME_SLACK_S`] (`None` without `[second_camera] incoming`).
+    fn second_frames_near(&self, t: &DateTime<Utc>) -> Option<(Vec<crate::io::FrameRef>, Option<crate::io::FrameRef>)> {
+        let dir = self.nc.site().second_camera.as_ref().and_then(|s| s.incoming.clone())?;
         // Written by rename, as the first camera's: a listed frame is whole.
-        let Ok((ready, _)) = crate::io::list_frames_named(&dir, &self.naming) else { return };
+        let (ready, _) = crate::io::list_frames_named(&dir, &self.naming).ok()?;
         let slack_ms = (crate::config::SECOND_FRAME_SLACK_S * 1000.0) as i64;
         let near = ready.iter().filter(|f| (f.time - *t).num_milliseconds().abs() <= slack_ms).min_by_key(|f| (f.time - *t).num_milliseconds().abs()).cloned();
-        if let Some(f) = &near {
-            match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
-                Ok(img) => self.nc.offer_second_frame(f.time, img),
-                Err(e) => self.log(&[("event", "second_frame".into()), ("file", file_name(&f.path)), ("outcome", "unreadable".into()), ("reason", e.to_string())]),
-            }
+        Some((ready, near))
+    }
+
+    /// With `[second_camera] incoming`: offer the engine the second camera's ready frame nearest in
+    /// time to `t` (decoded whole, as replay does). A second frame that does not read is logged and
+    /// left out; the step goes on.
+    fn offer_second_frame(&mut self, t: &DateTime<Utc>) {
+        let Some((_, Some(f))) = self.second_frames_near(t) else { return };
+        match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
+            Ok(img) => self.nc.offer_second_frame(f.time, img),
+            Err(e) => self.log(&[("event", "second_frame".into()), ("file", file_name(&f.path)), ("outcome", "unreadable".into()), ("reason", e.to_string())]),
         }
+    }
+
+    /// With `[second_camera] incoming`: retire (by the retention policy) the second camera's frame
+    /// nearest to `t`, the first camera's frame the poll settled on, and those too old to pair with
+    /// a later frame (a frame newer than `t` stays for the next step).
+    fn retire_second_frames(&mut self, t: &DateTime<Utc>) {
+        let Some((ready, near)) = self.second_frames_near(t) else { return };
+        let slack_ms = (crate::config::SECOND_FRAME_SLACK_S * 1000.0) as i64;
         let done: Vec<crate::io::FrameRef> = ready.into_iter().filter(|f| near.as_ref().is_some_and(|n| n.path == f.path) || (*t - f.time).num_milliseconds() > slack_ms).collect();
         let r = &self.opts.health.retention;
         let mut n = 0;
