@@ -343,8 +343,8 @@ fn true_sun_px(s: &Scene, t: &DateTime<Utc>) -> Option<(f64, f64)> {
 /// `sun_detections_sit_on_the_true_sun`; the most bloomed of them up to 2.3 px off before the
 /// glare-lean correction's choice), and the fit is as good as a clear day's (≤ 0.3° RMS,
 /// `single_day_within_a_third_of_a_degree`). Measured when added: without the drop 45 detections
-/// kept, three of them 3.0–3.5 px off (cloud leaning the clipped core), 0.076° RMS; with it 28
-/// kept, 16 dropped, largest offset 2.40 px, 0.096° RMS (fewer detections; on this renderer the
+/// kept, three of them 3.0–3.5 px off (cloud leaning the clipped core), 0.076° RMS; with it (ring
+/// at least 4 px out and 4 px wide) 27 kept, 18 dropped, 0.089° RMS (fewer detections; on this renderer the
 /// cloud-leaned cores barely move the fit; on the independent renderer's they did: docs/checks.md).
 #[test]
 fn a_partly_cloudy_day_keeps_the_clear_suns_only() {

@@ -29,7 +29,8 @@ pub const RING_SHARES: (f64, f64) = (0.0125, 0.025);
 /// glare is rougher (see [`ring_spread_limit`]). Measured with the ring 3–6 px out on a 244-px
 /// circle (before [`RING_MIN_PX`]): the independent renderer's clear days at most 0.03 (their
 /// cloudy frames' detections off the sun by 2–12 px: 0.06–0.3, a mast across the glare over 0.3);
-/// with the ring at [`ring_distances_px`], this project's renderer's clear days at most 0.057.
+/// with the ring at [`ring_distances_px`] (4–8 px there), this project's renderer's clear days at
+/// most 0.057, and the independent clear days' own limits rose to 7–8 % (docs/checks.md).
 pub const RING_SPREAD_LIMIT: f64 = 0.06;
 
 /// The limit is at least this many times the day's lower-quartile ring spread: a camera whose clear
@@ -269,8 +270,8 @@ pub const DIMMED_SHARE: f64 = 0.25;
 /// The detections dropped for what surrounds the sun, by time.
 #[derive(Debug, Clone, Default, PartialEq)]
 pub struct Clouded {
-    /// The brightness around the clipped core spread beyond [`RING_SPREAD_LIMIT`] (or the core ran
-    /// beyond the reach).
+    /// The brightness around the clipped core spread beyond the day's limit (`limit`, from
+    /// [`ring_spread_limit`]: [`RING_SPREAD_LIMIT`] or more), or the core ran beyond the reach.
     pub spread: Vec<chrono::DateTime<chrono::Utc>>,
     /// The clipped core under [`DIMMED_SHARE`] of the bare disc's.
     pub dimmed: Vec<chrono::DateTime<chrono::Utc>>,
@@ -330,11 +331,11 @@ impl Clouded {
         let all = self.times();
         let at: Vec<String> = all.iter().take(10).map(|t| t.format("%Y-%m-%dT%H:%M:%SZ").to_string()).collect();
         Some(format!(
-            "{} sun detection(s) dropped for cloud at or near the sun, or something fixed across its glare: {} with the brightness around the clipped core spread more than {:.0} % (the kept detections' median {:.1} %), {} with a clipped core under {:.0} % of the bare disc's (the sun dimmed); at {}{}",
+            "{} sun detection(s) dropped for cloud at or near the sun, or something fixed across its glare: {} with the brightness around the clipped core spread more than {:.0} % ({}), {} with a clipped core under {:.0} % of the bare disc's (the sun dimmed); at {}{}",
             self.len(),
             self.spread.len(),
             100.0 * self.limit,
-            100.0 * self.kept_median_spread,
+            if self.kept_median_spread.is_finite() { format!("the kept detections' median {:.1} %", 100.0 * self.kept_median_spread) } else { "no kept detection had a ring to measure".into() },
             self.dimmed.len(),
             100.0 * DIMMED_SHARE,
             at.join(", "),
