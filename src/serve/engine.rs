@@ -9,7 +9,7 @@ use chrono::{DateTime, Utc};
 use tokio::sync::broadcast;
 
 use super::shared::Shared;
-use super::watch::Watcher;
+use super::watch::{Folder, Watcher};
 use super::{LiveOptions, db, modbus, modbus_feed, notify, ops};
 use crate::io::fmt_time;
 use crate::nowcast::{Frame, Nowcast, Nowcaster, Rejection};
@@ -28,6 +28,7 @@ pub(super) struct LiveEngine {
     registers: Arc<modbus::Feed>,
     notifier: Option<notify::Notifier>,
     watch: Watcher,
+    folder: Folder,
     intake: crate::intake::IntakeOptions,
     /// The site's display time zone, given with every nowcast (times stay UTC).
     time_zone: serde_json::Value,
@@ -87,6 +88,7 @@ impl LiveEngine {
             registers,
             notifier,
             watch: Watcher::default(),
+            folder: Folder::default(),
             intake,
             time_zone,
             processed: 0,
@@ -118,9 +120,11 @@ impl LiveEngine {
             if let Some(f) = self.feed.as_mut() {
                 feed_step(f, &mut self.nc, &self.shared, &mut self.tuning_reset_done, &self.opts.health);
             }
-            let Ok((frames, untimed)) = crate::io::list_frames_named(&self.opts.incoming, &self.naming) else { continue };
-            self.note_untimed(untimed);
-            let poll = self.watch.poll(&frames);
+            // Listed again only when the folder changed (or every few seconds); files not yet taken,
+            // or taken lately, are examined every poll either way.
+            let Ok(listing) = self.folder.refresh(&self.opts.incoming, &self.naming) else { continue };
+            let poll = self.watch.poll(listing);
+            self.note_untimed(self.folder.untimed);
             for note in &poll.notes {
                 eprintln!("nephocast live: {note}");
             }
