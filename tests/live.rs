@@ -165,10 +165,9 @@ fn live_service_processes_frames_counts_bad_ones_and_survives_restart() {
     h2.stop();
 }
 
-/// A burst whose newest frame does not read (an upload cut short): it is rejected and counted, and
-/// the next newest waiting is used instead of being skipped with it.
-#[test]
-fn a_broken_newest_frame_gives_way_to_the_next_newest() {
+/// A fresh incoming folder (in the returned temporary folder) for the demo site, polled every
+/// 40 ms, and the demo's frames, sorted: frames written before `start` are found by its first poll.
+fn demo_in_a_fresh_folder() -> (tempfile::TempDir, LiveOptions, Vec<PathBuf>) {
     let d = tempfile::tempdir().unwrap();
     let incoming = d.path().join("incoming");
     std::fs::create_dir_all(&incoming).unwrap();
@@ -186,6 +185,15 @@ fn a_broken_newest_frame_gives_way_to_the_next_newest() {
     };
     let mut frames: Vec<PathBuf> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
     frames.sort();
+    (d, opts, frames)
+}
+
+/// A burst whose newest frame does not read (an upload cut short): it is rejected and counted, and
+/// the next newest waiting is used instead of being skipped with it.
+#[test]
+fn a_broken_newest_frame_gives_way_to_the_next_newest() {
+    let (_dir, opts, frames) = demo_in_a_fresh_folder();
+    let incoming = opts.incoming.clone();
     // Written before the start, so that one poll finds all three.
     for f in &frames[..2] {
         drop_by_rename(f, &incoming, f.file_name().unwrap().to_str().unwrap());
@@ -207,23 +215,8 @@ fn a_broken_newest_frame_gives_way_to_the_next_newest() {
 /// not one per file. Four cut frames over one good older one: three rejected, the rest skipped.
 #[test]
 fn a_poll_tries_a_few_broken_frames_then_skips_the_rest() {
-    let d = tempfile::tempdir().unwrap();
-    let incoming = d.path().join("incoming");
-    std::fs::create_dir_all(&incoming).unwrap();
-    let opts = LiveOptions {
-        site: demo().join("site.toml"),
-        incoming: incoming.clone(),
-        db: d.path().join("live.sqlite"),
-        bind: "127.0.0.1:0".parse().unwrap(),
-        ack_token: None,
-        server: Default::default(),
-        keep_s: 86_400,
-        poll_ms: 40,
-        overlay_every: 0,
-        health: Default::default(),
-    };
-    let mut frames: Vec<PathBuf> = std::fs::read_dir(demo().join("frames")).unwrap().flatten().map(|e| e.path()).collect();
-    frames.sort();
+    let (_dir, opts, frames) = demo_in_a_fresh_folder();
+    let incoming = opts.incoming.clone();
     drop_by_rename(&frames[0], &incoming, frames[0].file_name().unwrap().to_str().unwrap());
     for f in &frames[1..5] {
         let bytes = std::fs::read(f).unwrap();
