@@ -527,22 +527,37 @@ fn retire_all(frames: &[crate::io::FrameRef], r: &ops::Retention, shared: &Arc<M
     if *r == ops::Retention::Keep {
         return;
     }
-    let mut n = 0;
+    let mut done = vec![];
     for f in frames {
         match ops::retire(&f.path, &f.time, r) {
-            Ok(Some(what)) => {
-                n += 1;
-                eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("file", file_name(&f.path)), ("done", what)], log_json));
-            }
+            Ok(Some(what)) => done.push((f, what)),
             Ok(None) => {}
             Err(e) => eprintln!("{}", ops::log_line(&[("event", "retention".into()), ("file", file_name(&f.path)), ("error", e.to_string())], log_json)),
         }
     }
-    if n > 0
+    for line in retention_lines(&done) {
+        eprintln!("{}", ops::log_line(&line, log_json));
+    }
+    if !done.is_empty()
         && let Ok(mut s) = shared.lock()
     {
-        s.health.frames_retired += n;
+        s.health.frames_retired += done.len();
     }
+}
+
+/// The log lines of the frames a poll retired (`(frame, what was done)`, in the poll's order): the
+/// last [`SKIP_LINES_MAX`] one by one, any before them in one line with their count, first and
+/// last (a backlog archived at start-up is not a line per file).
+fn retention_lines(done: &[(&crate::io::FrameRef, String)]) -> Vec<Vec<(&'static str, String)>> {
+    let (older, each) = done.split_at(done.len().saturating_sub(SKIP_LINES_MAX));
+    let mut lines = vec![];
+    if let (Some(first), Some(last)) = (older.first(), older.last()) {
+        lines.push(vec![("event", "retention".into()), ("done", first.1.clone()), ("count", older.len().to_string()), ("first", file_name(&first.0.path)), ("last", file_name(&last.0.path))]);
+    }
+    for (f, what) in each {
+        lines.push(vec![("event", "retention".into()), ("file", file_name(&f.path)), ("done", what.clone())]);
+    }
+    lines
 }
 
 /// Where measurement rows come from: a CSV file or folder, or a Modbus TCP device (one of them).
@@ -645,5 +660,20 @@ mod tests {
         assert!(ops::log_line(&lines[SKIP_LINES_MAX], false).contains("file=frame_48.jpg"));
         // A few are listed one by one, with no summary.
         assert_eq!(skip_lines(&frames[..2]).len(), 2);
+    }
+
+    #[test]
+    fn a_retired_backlog_is_summed_up_in_one_line() {
+        let t0: DateTime<Utc> = "2026-06-14T10:00:00Z".parse().unwrap();
+        let frames: Vec<crate::io::FrameRef> =
+            (0..30).map(|i| crate::io::FrameRef { time: t0 + chrono::Duration::seconds(i), path: format!("in/frame_{i:02}.jpg").into() }).collect();
+        let done: Vec<_> = frames.iter().map(|f| (f, "archived".to_string())).collect();
+        let lines = retention_lines(&done);
+        assert_eq!(lines.len(), 1 + SKIP_LINES_MAX);
+        let text = ops::log_line(&lines[0], false);
+        assert!(text.contains("count=10") && text.contains("first=frame_00.jpg") && text.contains("last=frame_09.jpg") && text.contains("done=archived"), "{text}");
+        assert!(ops::log_line(&lines[1], false).contains("file=frame_10.jpg"));
+        assert_eq!(retention_lines(&done[..3]).len(), 3);
+        assert!(retention_lines(&[]).is_empty());
     }
 }
