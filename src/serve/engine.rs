@@ -49,6 +49,9 @@ pub(super) struct LiveEngine {
     /// Whether the followed colour balance and a differing exposure were logged
     /// ([`crate::replay::colour_balance_note`], [`crate::replay::exposure_note`]).
     camera_notes_logged: [bool; 2],
+    /// The second camera's frames as the poll's last offer listed them, for their retirement
+    /// once the poll's step is settled (the folder is not listed twice).
+    second_listing: Option<Vec<crate::io::FrameRef>>,
 }
 
 /// What a frame's step gave, for the reports after it.
@@ -102,6 +105,7 @@ impl LiveEngine {
             held_back_logged: false,
             unchecked_logged: false,
             camera_notes_logged: [false; 2],
+            second_listing: None,
         }
     }
 
@@ -292,22 +296,21 @@ impl LiveEngine {
         Stepped { frame, result, latency_ms: t0.elapsed().as_secs_f64() * 1000.0 }
     }
 
-    /// The second camera's ready frames and the one nearest in time to `t` within
-    /// [`crate::config::SECOND_FRAME_SLACK_S`] (`None` without `[second_camera] incoming`).
-    fn second_frames_near(&self, t: &DateTime<Utc>) -> Option<(Vec<crate::io::FrameRef>, Option<crate::io::FrameRef>)> {
+    /// The second camera's ready frames (`None` without `[second_camera] incoming`).
+    fn list_second_frames(&self) -> Option<Vec<crate::io::FrameRef>> {
         let dir = self.nc.site().second_camera.as_ref().and_then(|s| s.incoming.clone())?;
         // Written by rename, as the first camera's: a listed frame is whole.
-        let (ready, _) = crate::io::list_frames_named(&dir, &self.naming).ok()?;
-        let slack_ms = (crate::config::SECOND_FRAME_SLACK_S * 1000.0) as i64;
-        let near = ready.iter().filter(|f| (f.time - *t).num_milliseconds().abs() <= slack_ms).min_by_key(|f| (f.time - *t).num_milliseconds().abs()).cloned();
-        Some((ready, near))
+        crate::io::list_frames_named(&dir, &self.naming).ok().map(|(ready, _)| ready)
     }
 
     /// With `[second_camera] incoming`: offer the engine the second camera's ready frame nearest in
     /// time to `t` (decoded whole, as replay does). A second frame that does not read is logged and
     /// left out; the step goes on.
     fn offer_second_frame(&mut self, t: &DateTime<Utc>) {
-        let Some((_, Some(f))) = self.second_frames_near(t) else { return };
+        let Some(ready) = self.list_second_frames() else { return };
+        let near = nearest_second_frame(&ready, t);
+        self.second_listing = Some(ready);
+        let Some(f) = near else { return };
         match crate::intake::read_frame(&f.path, &crate::intake::IntakeOptions::default()) {
             Ok(img) => self.nc.offer_second_frame(f.time, img),
             Err(e) => self.log(&[("event", "second_frame".into()), ("file", file_name(&f.path)), ("outcome", "unreadable".into()), ("reason", e.to_string())]),
@@ -318,7 +321,8 @@ impl LiveEngine {
     /// nearest to `t`, the first camera's frame the poll settled on, and those too old to pair with
     /// a later frame (a frame newer than `t` stays for the next step).
     fn retire_second_frames(&mut self, t: &DateTime<Utc>) {
-        let Some((ready, near)) = self.second_frames_near(t) else { return };
+        let Some(ready) = self.second_listing.take().or_else(|| self.list_second_frames()) else { return };
+        let near = nearest_second_frame(&ready, t);
         let slack_ms = (crate::config::SECOND_FRAME_SLACK_S * 1000.0) as i64;
         let done: Vec<crate::io::FrameRef> = ready.into_iter().filter(|f| near.as_ref().is_some_and(|n| n.path == f.path) || (*t - f.time).num_milliseconds() > slack_ms).collect();
         let r = &self.opts.health.retention;
@@ -516,6 +520,12 @@ fn skip_lines(skipped: &[crate::io::FrameRef]) -> Vec<Vec<(&'static str, String)
         lines.push(vec![("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())]);
     }
     lines
+}
+
+/// The second camera's frame nearest in time to `t` within [`crate::config::SECOND_FRAME_SLACK_S`].
+fn nearest_second_frame(ready: &[crate::io::FrameRef], t: &DateTime<Utc>) -> Option<crate::io::FrameRef> {
+    let slack_ms = (crate::config::SECOND_FRAME_SLACK_S * 1000.0) as i64;
+    ready.iter().filter(|f| (f.time - *t).num_milliseconds().abs() <= slack_ms).min_by_key(|f| (f.time - *t).num_milliseconds().abs()).cloned()
 }
 
 fn file_name(p: &std::path::Path) -> String {
