@@ -43,10 +43,17 @@ impl LeanCandidate {
         // be chosen. Such a family still stands in the bound (`loads`): the data do not rule it out.
         let cov = super::bound::coverage_of(&dets);
         let span_deg = cov.zenith_max_deg - cov.zenith_min_deg;
+        // And its record wants 3 detections per free parameter (`FitRecord::validate`): after
+        // detections are dropped (cloud at the sun) a polynomial with its 8–9 free parameters may
+        // have too few, while an ideal family still has enough.
+        let enough = |p: &super::fit::Problem| {
+            let free = p.p.len() - if super::fit::CentrePrior::holds(p.prior) { 2 } else { 0 };
+            dets.len() >= (crate::config::MIN_DETECTIONS_PER_PARAMETER * free).max(crate::config::MIN_FIT_DETECTIONS)
+        };
         let writable: Vec<bool> = solved
             .iter()
             .zip(&loads)
-            .map(|((p, _), l)| *l && span_deg >= crate::config::MIN_ZENITH_SPAN_PER_RADIAL_TERM_DEG * if p.family == LensFamily::Polynomial { 3.0 } else { 1.0 })
+            .map(|((p, _), l)| *l && enough(p) && span_deg >= crate::config::MIN_ZENITH_SPAN_PER_RADIAL_TERM_DEG * if p.family == LensFamily::Polynomial { 3.0 } else { 1.0 })
             .collect();
         let any_loads = writable.iter().any(|l| *l);
         let best = choose_family(&solved, |i| (!any_loads || writable[i]) && (!any_plausible || plausible(i)))?;
