@@ -183,6 +183,30 @@ fn health_turns_stale_on_the_timer_within_a_second_of_the_threshold() {
     h.stop();
 }
 
+/// At night the frames keep coming and are refused for the sun's elevation: the state is `night`
+/// (not `stale`, which would page a monitor every evening), data are not valid, and the metrics
+/// say so.
+#[test]
+fn frames_refused_for_a_low_sun_read_as_night_not_stale() {
+    let d = tempfile::tempdir().unwrap();
+    let o = options_for(d.path(), HealthOptions { frame_interval_s: 0.5, ..Default::default() }, common::demo_site_at_solar_hour(d.path(), 5.0, 0.0));
+    let incoming = o.incoming.clone();
+    let h = start(o).unwrap();
+    let addr = h.addr;
+    let name = nephocast::io::frame_name(&chrono::Utc::now(), "jpg");
+    drop_by_rename(&demo_frames()[0], &incoming, &name);
+    wait_for("the frame to be judged", GUARD, || health(addr)["newest_frame_utc"].is_string() && health(addr)["health_state"] != "starting");
+    let hl = health(addr);
+    assert_eq!(hl["health_state"], "night", "{hl}");
+    assert_eq!(hl["data_valid"], false);
+    assert_eq!(u(&hl["frames_processed"]), 0, "{hl}");
+    assert_eq!(u(&hl["frames_rejected"]["sun_too_low"]), 1, "{hl}");
+    let m = get(addr, "/metrics");
+    assert!(m.contains("nephocast_health_state{state=\"night\"} 1"), "{m}");
+    assert!(m.contains("nephocast_health_state{state=\"stale\"} 0"), "{m}");
+    h.stop();
+}
+
 #[test]
 fn metrics_page_parses_and_retention_archives_or_deletes_judged_frames() {
     let d = tempfile::tempdir().unwrap();

@@ -352,6 +352,7 @@ impl LiveEngine {
                 if st.frame.is_ok() {
                     s.ops.newest_read = s.ops.newest_read.max(Some(newest.time));
                     s.ops.last_read_wall = Some(std::time::Instant::now());
+                    s.ops.sun_down_frame = matches!(st.result, Err(Rejection::SunTooLow(_))).then_some(newest.time);
                     s.health.newest_frame_utc = s.ops.newest_read.map(|t| fmt_time(&t));
                 }
                 if st.result.is_ok() {

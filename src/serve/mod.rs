@@ -32,6 +32,7 @@ pub mod db;
 mod engine;
 mod error;
 pub mod guard;
+pub mod health;
 pub mod http;
 pub mod modbus;
 pub mod modbus_feed;

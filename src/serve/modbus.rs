@@ -172,7 +172,7 @@ pub fn header_fields() -> Vec<Field> {
     let s = |x: &str| x.to_string();
     lay_out(vec![
         (s("map_version"), Kind::U16, 1.0, "", format!("register map version ({MAP_VERSION})"), Source::MapVersion),
-        (s("data_valid"), Kind::U16, 1.0, "", s("1: the service's health has the data valid (ok, or no measurements), a nowcast is present and its frame is recent enough (see the server's maximum frame age); 0 otherwise (before the first nowcast, stale, camera down)"), Source::DataValid),
+        (s("data_valid"), Kind::U16, 1.0, "", s("1: the service's health has the data valid (ok, or no measurements), a nowcast is present and its frame is recent enough (see the server's maximum frame age); 0 otherwise (before the first nowcast, stale, camera down, night)"), Source::DataValid),
         (s("heartbeat"), Kind::U16, 1.0, "", s("nowcasts published since start; wraps from 65535 to 0"), Source::Heartbeat),
         (s("frame_age_s"), Kind::U32, 1.0, "s", s("age of the latest nowcast's frame, from the clock at read time; 4294967295 before the first nowcast"), Source::FrameAgeS),
         (s("frame_time_unix_s"), Kind::U32, 1.0, "s", s("the latest nowcast's frame time (Unix time, UTC); 0 before the first nowcast"), Source::FrameTimeUnixS),

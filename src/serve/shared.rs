@@ -25,6 +25,8 @@ pub(super) struct OpsShared {
     pub(super) started: std::time::Instant,
     pub(super) newest_read: Option<DateTime<Utc>>,
     pub(super) last_read_wall: Option<std::time::Instant>,
+    /// The newest frame read, when the engine refused it only because the sun was too low.
+    pub(super) sun_down_frame: Option<DateTime<Utc>>,
     pub(super) measurement_end: Option<DateTime<Utc>>,
     /// The site polls a Modbus measurement feed (`[measurements_modbus]`).
     pub(super) modbus_feed: bool,
@@ -43,6 +45,7 @@ impl Default for OpsShared {
             started: std::time::Instant::now(),
             newest_read: None,
             last_read_wall: None,
+            sun_down_frame: None,
             measurement_end: None,
             modbus_feed: false,
             latency: Default::default(),
@@ -67,6 +70,7 @@ impl Shared {
             since_frame_read_s: o.last_read_wall.map(|w| w.elapsed().as_secs_f64()),
             measurement_age_s: o.measurement_end.map(|t| ops::age_s(&t, &now)),
             feed: o.options.measurements.is_some() || o.modbus_feed,
+            sun_down_frame_age_s: o.sun_down_frame.map(|t| ops::age_s(&t, &now)),
         };
         let state = ops::evaluate(&inputs, &o.options);
         let prev = o.state;

@@ -47,11 +47,17 @@ pub fn datasets() -> Option<PathBuf> {
 /// that stamp frames with the wall clock (live mode judges a frame's age against it) use it, so
 /// that they do not fail when the demo site's own sun is down.
 pub fn demo_site_for_now(dir: &Path, latitude_deg: f64) -> PathBuf {
+    demo_site_at_solar_hour(dir, latitude_deg, 12.0)
+}
+
+/// The demo site moved so that its local solar time now is about `solar_hour` (12: the sun high;
+/// 0: midnight, the sun far below the horizon), as [`demo_site_for_now`].
+pub fn demo_site_at_solar_hour(dir: &Path, latitude_deg: f64, solar_hour: f64) -> PathBuf {
     use chrono::Timelike;
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data");
     let now = chrono::Utc::now();
     let hours = f64::from(now.hour()) + f64::from(now.minute()) / 60.0;
-    let lon = ((12.0 - hours) * 15.0 + 540.0).rem_euclid(360.0) - 180.0;
+    let lon = ((solar_hour - hours) * 15.0 + 540.0).rem_euclid(360.0) - 180.0;
     let text = std::fs::read_to_string(demo.join("site.toml")).unwrap();
     let text = text
         .lines()
