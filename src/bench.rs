@@ -23,6 +23,8 @@ pub struct BenchReport {
     pub threads: usize,
     /// Forecast points.
     pub plant_points: usize,
+    /// Cloud-map cells along each side.
+    pub map_cells: usize,
     /// Horizons per forecast.
     pub horizons: usize,
     /// Rendering time per frame \[ms\] (all cores).
@@ -109,13 +111,15 @@ pub struct BenchOptions {
     pub members: usize,
     /// `map.decode_reduction` (0: automatic).
     pub decode_reduction: u32,
+    /// `map.cells` (0: the scene's).
+    pub map_cells: usize,
     /// Threads of the engine's pool in the overlapped pass (0: no such pass).
     pub overlap_threads: usize,
 }
 
 impl Default for BenchOptions {
     fn default() -> Self {
-        Self { size_px: 1024, frames: 60, threads: 1, plant_points: 1000, step_s: 60, horizon_min: 20, members: 20, decode_reduction: 0, overlap_threads: 2 }
+        Self { size_px: 1024, frames: 60, threads: 1, plant_points: 1000, step_s: 60, horizon_min: 20, members: 20, decode_reduction: 0, map_cells: 0, overlap_threads: 2 }
     }
 }
 
@@ -167,6 +171,9 @@ fn scene_frames(o: &BenchOptions) -> Result<SceneFrames, BenchError> {
     s.site.forecast.horizon_min = o.horizon_min;
     s.site.irradiance.ensemble_members = o.members;
     s.site.map.decode_reduction = o.decode_reduction;
+    if o.map_cells > 0 {
+        s.site.map.cells = o.map_cells;
+    }
     let rays = PixelRays::new(&s.camera);
     let times = s.frame_times();
     let t0 = Instant::now();
@@ -205,6 +212,7 @@ fn thread_cpu_ms() -> f64 {
 fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Vec<u8>], threads: usize) -> Result<BenchReport, BenchError> {
     let mut nc = Nowcaster::new(site.clone(), None, None);
     let plant_points = nc.plant().point_count();
+    let map_cells = site.file.map.cells;
     let horizons = nc.horizons_s().len();
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().map_err(|e| BenchError::Setup(e.to_string()))?;
     let (mut dec, mut step, mut full, mut st) = (vec![], vec![], vec![], [vec![], vec![], vec![], vec![], vec![]]);
@@ -238,6 +246,7 @@ fn serial_pass(site: &Site, times: &[chrono::DateTime<chrono::Utc>], jpegs: &[Ve
         frames: times.len(),
         threads,
         plant_points,
+        map_cells,
         horizons,
         render_ms: f64::NAN,
         decode_reduction: nc.intake_options().reduce,

@@ -444,7 +444,7 @@ fn argument_cases() -> Vec<Case> {
         list.push((other(&v), refused(&[arg])));
     }
     list.push((other(&["synth", "--scene", "clear-day", "--out", "/nonexistent/x", "--minutes", "1440"]), Expect::Ok));
-    for (extra, arg) in [(&["--frames", "1"][..], "--frames"), (&["--frames", "1000000"], "--frames"), (&["--threads", "0"], "--threads"), (&["--threads", "100000"], "--threads"), (&["--size", "63"], "--size"), (&["--plant-points", "5"], "--plant-points"), (&["--step-s", "45"], "--step-s"), (&["--horizon-min", "0"], "--horizon-min"), (&["--members", "1000"], "--members"), (&["--decode-reduction", "3"], "--decode-reduction"), (&["--overlap-threads", "1000"], "--overlap-threads")] {
+    for (extra, arg) in [(&["--frames", "1"][..], "--frames"), (&["--frames", "1000000"], "--frames"), (&["--threads", "0"], "--threads"), (&["--threads", "100000"], "--threads"), (&["--size", "63"], "--size"), (&["--plant-points", "5"], "--plant-points"), (&["--step-s", "45"], "--step-s"), (&["--horizon-min", "0"], "--horizon-min"), (&["--members", "1000"], "--members"), (&["--decode-reduction", "3"], "--decode-reduction"), (&["--overlap-threads", "1000"], "--overlap-threads"), (&["--map-cells", "16"], "--map-cells"), (&["--map-cells", "4096"], "--map-cells")] {
         let mut v = vec!["bench"];
         v.extend_from_slice(extra);
         list.push((other(&v), refused(&[arg])));

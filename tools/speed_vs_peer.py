@@ -43,6 +43,8 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--frames", type=int, default=40, help="frames of nephocast bench")
     ap.add_argument("--decode-reduction", type=int, default=0, help="nephocast bench --decode-reduction (0: automatic)")
+    ap.add_argument("--map-cells", type=int, default=0,
+                    help="nephocast bench --map-cells for --bin (0: the scene's 256; the baseline keeps 256): fewer cells change the forecasts")
     ap.add_argument("--baseline", help="a second nephocast binary, run after --bin in every round against the same peer run")
     a = ap.parse_args()
     rows = []
@@ -51,7 +53,7 @@ def main() -> None:
         peer = last_json(subprocess.run([a.python, a.peer, "--quick"], capture_output=True, text=True, check=True).stdout)
         p = peer["sizes"]["1024"]["threads"]["1"]
         p2 = peer["sizes"]["1024"]["threads"].get("2", p)
-        rows.append(ratios(a, a.bin, p, p2))
+        rows.append(ratios(a, a.bin, p, p2, a.map_cells))
         print(f"round {k + 1}: " + ", ".join(f"{key} {v:.2f}" for key, v in rows[-1].items()), flush=True)
         if a.baseline:
             base_rows.append(ratios(a, a.baseline, p, p2))
@@ -67,11 +69,12 @@ def main() -> None:
     print(json.dumps(out))
 
 
-def ratios(a, binary: str, p: dict, p2: dict) -> dict:
+def ratios(a, binary: str, p: dict, p2: dict, map_cells: int = 0) -> dict:
     """One nephocast bench run of `binary` and its ratios against the peer's figures `p` (one
-    OpenCV thread) and `p2` (two)."""
+    OpenCV thread) and `p2` (two); `map_cells` > 0 passes `--map-cells`."""
+    cells = ["--map-cells", str(map_cells)] if map_cells else []
     ours = last_json(subprocess.run([binary, "bench", "--size", "1024", "--threads", "1", "--frames", str(a.frames),
-                                     "--decode-reduction", str(a.decode_reduction), "--json"],
+                                     "--decode-reduction", str(a.decode_reduction), "--json"] + cells,
                                     capture_output=True, text=True, check=True).stdout)
     peer_compute = p["segment"] + p["rectify"] + p["motion_block"] + p["forecast"]
     r = {

@@ -267,6 +267,10 @@ pub struct BenchArgs {
     /// `map.decode_reduction`: 0 automatic, 1 whole frames, 2, 4 or 8.
     #[arg(long, default_value_t = 0, allow_hyphen_values = true)]
     pub decode_reduction: u32,
+    /// `map.cells`: cloud-map cells along each side (0: the scene's, 256). Fewer cells make the
+    /// map, motion and tables cheaper and change the forecasts (docs/speed.md).
+    #[arg(long, default_value_t = 0, allow_hyphen_values = true)]
+    pub map_cells: usize,
     /// Threads of the engine's pool in a second pass with the frames decoded ahead as jobs on
     /// that pool, overlapping the step (0: no such pass).
     #[arg(long, default_value_t = 2, allow_hyphen_values = true)]
@@ -522,6 +526,9 @@ pub fn check_args(cli: &Cli) -> Result<()> {
                 bail!("--decode-reduction must be 0 (automatic), 1, 2, 4 or 8, not {}", a.decode_reduction);
             }
             check_arg("--overlap-threads", a.overlap_threads as f64, 0.0, 256.0)?;
+            if a.map_cells != 0 {
+                check_arg("--map-cells", a.map_cells as f64, 32.0, 2048.0)?;
+            }
         }
         Command::Calibrate(a) => {
             check_arg("--min-detections", a.min_detections as f64, crate::config::MIN_FIT_DETECTIONS as f64, 1e6)?;

@@ -9,9 +9,9 @@ pub(super) fn cmd_bench(a: BenchArgs) -> Result<()> {
     if !(64..=4096).contains(&a.size) || a.frames < 2 {
         bail!("--size must be 64 to 4096 and --frames at least 2");
     }
-    let o = crate::bench::BenchOptions { size_px: a.size, frames: a.frames, threads: a.threads, plant_points: a.plant_points, step_s: a.step_s, horizon_min: a.horizon_min, members: a.members, decode_reduction: a.decode_reduction, overlap_threads: a.overlap_threads };
+    let o = crate::bench::BenchOptions { size_px: a.size, frames: a.frames, threads: a.threads, plant_points: a.plant_points, step_s: a.step_s, horizon_min: a.horizon_min, members: a.members, decode_reduction: a.decode_reduction, map_cells: a.map_cells, overlap_threads: a.overlap_threads };
     let r = crate::bench::run_with(&o)?;
-    crate::say!("{}x{} px, {} frames, {} thread(s), {} plant points x {} horizons", r.size_px, r.size_px, r.frames, r.threads, r.plant_points, r.horizons);
+    crate::say!("{}x{} px, {} frames, {} thread(s), {} plant points x {} horizons, {}² map cells", r.size_px, r.size_px, r.frames, r.threads, r.plant_points, r.horizons, r.map_cells);
     crate::say!("render (synthetic, all cores): {:.1} ms per frame ({:.1} frames/s)", r.render_ms, 1000.0 / r.render_ms);
     crate::say!("JPEG decode: median {:.2} ms by the intake at 1/{} scale ({:.2} ms whole by the general decoder)", r.decode_ms, r.decode_reduction, r.decode_whole_ms);
     crate::say!("engine step (QC, map, motion, forecast): median {:.2} ms, 95th percentile {:.2} ms", r.step_ms_median, r.step_ms_p95);
