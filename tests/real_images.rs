@@ -104,6 +104,6 @@ fn wsiseg_pixel_accuracy() {
     for (name, n) in Regions::NAMES.iter().zip(regions.wrong) {
         eprintln!("  {name:<18} {:.4}", n as f64 / regions.labelled as f64);
     }
-    assert!(mean >= 0.94, "mean accuracy {mean}");
-    assert!(min >= 0.85, "lowest accuracy {min}");
+    assert!(mean >= 0.945, "mean accuracy {mean}");
+    assert!(min >= 0.912, "lowest accuracy {min}");
 }
