@@ -201,6 +201,13 @@ fn frames_refused_for_a_low_sun_read_as_night_not_stale() {
     assert_eq!(hl["data_valid"], false);
     assert_eq!(u(&hl["frames_processed"]), 0, "{hl}");
     assert_eq!(u(&hl["frames_rejected"]["sun_too_low"]), 1, "{hl}");
+    // A late upload of an older frame (5 min, beyond the 61-s stale age) is refused too, and
+    // leaves the state as the newest frame read says: still night, not a stale flicker.
+    let late = nephocast::io::frame_name(&(chrono::Utc::now() - chrono::Duration::seconds(300)), "jpg");
+    drop_by_rename(&demo_frames()[1], &incoming, &late);
+    wait_for("the late frame to be judged", GUARD, || u(&health(addr)["frames_rejected"]["sun_too_low"]) == 2);
+    let hl = health(addr);
+    assert_eq!(hl["health_state"], "night", "{hl}");
     let m = get(addr, "/metrics");
     assert!(m.contains("nephocast_health_state{state=\"night\"} 1"), "{m}");
     assert!(m.contains("nephocast_health_state{state=\"stale\"} 0"), "{m}");

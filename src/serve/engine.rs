@@ -350,9 +350,13 @@ impl LiveEngine {
         let (valid, health_state, frame_age) = match self.shared.lock() {
             Ok(mut s) => {
                 if st.frame.is_ok() {
+                    // Night is judged from the newest frame read: a late upload of an older frame
+                    // (refused out of order, or for the sun if it is older still) leaves it.
+                    if s.ops.newest_read.is_none_or(|t| newest.time > t) {
+                        s.ops.sun_down_frame = matches!(st.result, Err(Rejection::SunTooLow(_))).then_some(newest.time);
+                    }
                     s.ops.newest_read = s.ops.newest_read.max(Some(newest.time));
                     s.ops.last_read_wall = Some(std::time::Instant::now());
-                    s.ops.sun_down_frame = matches!(st.result, Err(Rejection::SunTooLow(_))).then_some(newest.time);
                     s.health.newest_frame_utc = s.ops.newest_read.map(|t| fmt_time(&t));
                 }
                 if st.result.is_ok() {

@@ -21,8 +21,8 @@
 //!   tolerance bounds the skew accepted.
 //! * Bad frames are counted and skipped; with the sun below the limit the engine idles.
 //! * After a restart the alarm state and log come back from the database.
-//! * Health, measurement feed, per-frame log line, `/metrics` and retention: [`ops`]. The health
-//!   state (starting, ok, no_measurements, stale, camera_down) is judged on its own timer and is
+//! * Health: [`health`]; measurement feed, per-frame log line, `/metrics` and retention: [`ops`].
+//!   The health state (starting, ok, no_measurements, stale, camera_down, night) is judged on its own timer and is
 //!   separate from the ramp alarm; `data_valid` goes with every output.
 //!
 //! Forecasts and alarms are advisory, not a protection system.
@@ -113,7 +113,7 @@ pub struct Health {
     pub alarm_current: bool,
     /// Engine running.
     pub running: bool,
-    /// Health state ([`ops::HealthState`]): starting, ok, no_measurements, stale, camera_down.
+    /// Health state ([`health::HealthState`]): starting, ok, no_measurements, stale, camera_down, night.
     pub health_state: String,
     /// The forecasts come from a fresh frame (a controller falls back when false).
     pub data_valid: bool,

@@ -25,7 +25,7 @@
 //!   device's address (and again when a full read succeeds), every failure counted, and the
 //!   connection made again with a wait doubling from `poll_s` up to [`MAX_BACKOFF_S`] (reset by
 //!   the first successful read). Without rows the feed grows old exactly as a stopped CSV feed
-//!   does: see [`super::ops`] (health `no_measurements`, then the tuning goes back to the
+//!   does: see [`super::ops`] and [`super::health`] (health `no_measurements`, then the tuning goes back to the
 //!   configured transmittances).
 
 use std::collections::VecDeque;

@@ -1,5 +1,6 @@
-//! Live mode's operation: the measurement feed, the health state and its heartbeat, the
-//! per-frame log line, the Prometheus metrics and the retention of processed frames.
+//! Live mode's operation: the measurement feed, the per-frame log line, the Prometheus metrics
+//! and the retention of processed frames; the health state and its settings are in
+//! [`super::health`] (re-exported here).
 //!
 //! **Health**: [`super::health`] (re-exported here).
 //!
