@@ -322,8 +322,8 @@ impl Clone for CloudMap {
         CloudMap {
             grid: self.grid,
             score: copy(pool::take_f32_sized(0, 0.0), &self.score),
-            class: copy(pool::take_u8(), &self.class),
-            in_view: copy(pool::take_bool(), &self.in_view),
+            class: copy(pool::take_u8_sized(0, 0), &self.class),
+            in_view: copy(pool::take_bool_sized(0, false), &self.in_view),
             offset: self.offset,
             brightness: copy(pool::take_f32_sized(0, 0.0), &self.brightness),
             thin_depth: copy(pool::take_f32_sized(0, 0.0), &self.thin_depth),
@@ -458,8 +458,8 @@ pub struct CellPixels {
 
 mod pool {
     crate::pool::typed_pool!(take_rgb, give_rgb, [u8; 3], RGB);
-    crate::pool::typed_pool!(take_u8, give_u8, u8, U8);
-    crate::pool::typed_pool!(take_bool, give_bool, bool, BOOL);
+    crate::pool::typed_pool!(give_u8, u8, U8, sized = take_u8_sized);
+    crate::pool::typed_pool!(give_bool, bool, BOOL, sized = take_bool_sized);
     crate::pool::typed_pool!(give_f32, f32, F32, sized = take_f32_sized);
 }
 
@@ -576,21 +576,19 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
     let (nearest, plain) = (&pixels.nearest[..n], &pixels.plain[..n]);
     let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (nearest[k], geom(k), sky.default_rb[k]));
     let fr = reference.for_frame_with(params, sample);
-    // The map's buffers from the pools, filled as fresh ones would be.
+    // The map's buffers from the pools: every entry is written below (the cells out of view get
+    // what fresh buffers held: NaN, 0, false, 0).
     let mut score = pool::take_f32_sized(n, f32::NAN);
-    score.fill(f32::NAN);
-    let mut class = pool::take_u8();
-    class.resize(n, 0);
-    let mut in_view = pool::take_bool();
-    in_view.resize(n, false);
-    let mut blue = pool::take_u8();
-    blue.resize(n, 0);
+    let mut class = pool::take_u8_sized(n, 0);
+    let mut in_view = pool::take_bool_sized(n, false);
+    let mut blue = pool::take_u8_sized(n, 0);
     let mut dark = vec![false; if fr.exposure.is_some() { n } else { 0 }];
     // Every per-cell buffer as a slice of length n: no bounds check per cell and buffer.
     let (pixel, z_deg, cells) = (&lut.pixel[..n], &lut.z_deg[..n], sky.slices(n));
     let (score_s, class_s, in_view_s, blue_s) = (&mut score[..n], &mut class[..n], &mut in_view[..n], &mut blue[..n]);
     for k in 0..n {
         if pixel[k] == NO_PIXEL {
+            (score_s[k], class_s[k], in_view_s[k], blue_s[k]) = (f32::NAN, 0, false, 0);
             continue;
         }
         in_view_s[k] = true;
