@@ -278,8 +278,10 @@ impl LutCache {
 /// Most cell→pixel tables a [`LutCache`] keeps (the one farthest in height goes first).
 pub const MAX_LUT_TABLES: usize = 8;
 
-/// One frame's cloud map.
-#[derive(Debug, Clone)]
+/// One frame's cloud map. Its per-cell buffers come from and go back to per-thread pools (the
+/// map's `Drop` and `Clone`): a map is built every frame at the same size, and fresh buffers from
+/// the system allocator cost page faults and zeroing.
+#[derive(Debug)]
 pub struct CloudMap {
     /// The grid.
     pub grid: Grid,
@@ -299,9 +301,44 @@ pub struct CloudMap {
     pub thin_depth: Vec<f32>,
 }
 
+impl Drop for CloudMap {
+    fn drop(&mut self) {
+        pool::give_f32(std::mem::take(&mut self.score));
+        pool::give_f32(std::mem::take(&mut self.brightness));
+        pool::give_f32(std::mem::take(&mut self.thin_depth));
+        pool::give_u8(std::mem::take(&mut self.class));
+        pool::give_bool(std::mem::take(&mut self.in_view));
+    }
+}
 
+impl Clone for CloudMap {
+    /// The same map, its buffers taken from the pools (the same entries).
+    fn clone(&self) -> CloudMap {
+        fn copy<T: Copy>(mut v: Vec<T>, from: &[T]) -> Vec<T> {
+            v.clear();
+            v.extend_from_slice(from);
+            v
+        }
+        CloudMap {
+            grid: self.grid,
+            score: copy(pool::take_f32_sized(0, 0.0), &self.score),
+            class: copy(pool::take_u8_sized(0, 0), &self.class),
+            in_view: copy(pool::take_bool_sized(0, false), &self.in_view),
+            offset: self.offset,
+            brightness: copy(pool::take_f32_sized(0, 0.0), &self.brightness),
+            thin_depth: copy(pool::take_f32_sized(0, 0.0), &self.thin_depth),
+        }
+    }
+}
 
 impl CloudMap {
+    /// The same map on another grid (its buffers copied from the pools).
+    pub fn on_grid(&self, grid: Grid) -> CloudMap {
+        let mut m = self.clone();
+        m.grid = grid;
+        m
+    }
+
     /// A cloudy cell's brightness relative to the frame's cloudy cells: `(blue − mean) / 255`, the
     /// mean over all cloudy cells of the frame (0 for other cells, and where the map carries
     /// none). A thick cloud's base grows darker as its optical depth grows (Mejia et al. 2016, from
@@ -421,7 +458,9 @@ pub struct CellPixels {
 
 mod pool {
     crate::pool::typed_pool!(take_rgb, give_rgb, [u8; 3], RGB);
-    crate::pool::typed_pool!(take_u8, give_u8, u8, U8);
+    crate::pool::typed_pool!(give_u8, u8, U8, sized = take_u8_sized);
+    crate::pool::typed_pool!(give_bool, bool, BOOL, sized = take_bool_sized);
+    crate::pool::typed_pool!(give_f32, f32, F32, sized = take_f32_sized);
 }
 
 impl Drop for CellPixels {
@@ -537,17 +576,19 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
     let (nearest, plain) = (&pixels.nearest[..n], &pixels.plain[..n]);
     let sample = (0..n).step_by(3).filter(|&k| lut.pixel[k] != NO_PIXEL).map(|k| (nearest[k], geom(k), sky.default_rb[k]));
     let fr = reference.for_frame_with(params, sample);
-    let mut score = vec![f32::NAN; n];
-    let mut class = vec![0u8; n];
-    let mut in_view = vec![false; n];
-    let mut blue = pool::take_u8();
-    blue.resize(n, 0);
+    // The map's buffers from the pools: every entry is written below (the cells out of view get
+    // what fresh buffers held: NaN, 0, false, 0).
+    let mut score = pool::take_f32_sized(n, f32::NAN);
+    let mut class = pool::take_u8_sized(n, 0);
+    let mut in_view = pool::take_bool_sized(n, false);
+    let mut blue = pool::take_u8_sized(n, 0);
     let mut dark = vec![false; if fr.exposure.is_some() { n } else { 0 }];
     // Every per-cell buffer as a slice of length n: no bounds check per cell and buffer.
     let (pixel, z_deg, cells) = (&lut.pixel[..n], &lut.z_deg[..n], sky.slices(n));
     let (score_s, class_s, in_view_s, blue_s) = (&mut score[..n], &mut class[..n], &mut in_view[..n], &mut blue[..n]);
     for k in 0..n {
         if pixel[k] == NO_PIXEL {
+            (score_s[k], class_s[k], in_view_s[k], blue_s[k]) = (f32::NAN, 0, false, 0);
             continue;
         }
         in_view_s[k] = true;
@@ -584,7 +625,8 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
     let mean = if cloudy_cells > 0 { cloudy_blue as f32 / cloudy_cells as f32 } else { 0.0 };
     // Each value computed for every cell and then chosen (the same values; without a branch per
     // cell the divisions vectorise).
-    let mut brightness = vec![0f32; n];
+    // Every entry written below.
+    let mut brightness = pool::take_f32_sized(n, 0.0);
     for ((o, c), b) in brightness.iter_mut().zip(&class[..n]).zip(&blue[..n]) {
         let v = (*b as f32 - mean) / 255.0;
         *o = if cloudy(*c) { v } else { 0.0 };
@@ -592,7 +634,8 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
     pool::give_u8(blue);
     let thin = Class::Thin as u8;
     let lo = params.thin_score as f32;
-    let mut thin_depth = vec![0f32; n];
+    // Every entry written below.
+    let mut thin_depth = pool::take_f32_sized(n, 0.0);
     for (((o, c), s), z) in thin_depth.iter_mut().zip(&class[..n]).zip(&score[..n]).zip(&lut.z_deg[..n]) {
         let hi = params.thick_at(*z);
         let v = (s - lo) / (hi - lo);

@@ -595,7 +595,7 @@ mod tests {
         let (v, dt) = ([7.3, -4.1], 20.0);
         let a = map_from(blobs, g);
         let b = map_from(|x, y| blobs(x - v[0] * dt, y - v[1] * dt), g);
-        let on = |m: &CloudMap| CloudMap { grid: g_hi, ..m.clone() };
+        let on = |m: &CloudMap| m.on_grid(g_hi);
         let params = MotionParams::default();
         let scaled = MotionParams { max_speed_mps: 1.6 * params.max_speed_mps, two_layer_separation_mps: 1.6 * params.two_layer_separation_mps, ..params };
         let (lo, hi) = (measure(&a, &b, dt, &params, &[]), measure(&on(&a), &on(&b), dt, &scaled, &[]));

@@ -244,7 +244,7 @@ impl MotionStage {
     pub(super) fn rescale(&mut self, grid: crate::cloudmap::Grid, ratio: f64) {
         for (_, m, _) in &mut self.history {
             if m.grid.n == grid.n {
-                *m = Arc::new(CloudMap { grid, ..CloudMap::clone(m) });
+                *m = Arc::new(m.on_grid(grid));
             }
         }
         self.tracker.rescale(ratio);
