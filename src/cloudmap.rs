@@ -604,10 +604,10 @@ pub fn build_map_exposed(pixels: &CellPixels, lut: &Lut, sky: &CellSky, params: 
     if params.distant_contrast {
         // Each cell's judgement once (the correction asks for most cells).
         let learned = fr.plain_and_learned_all(sky, n);
-        crate::distance::correct(&score, &lut.z_deg, &learned, &mut class, |z| params.thick_at(z));
+        crate::segment::distance::correct(&score, &lut.z_deg, &learned, &mut class, |z| params.thick_at(z));
     }
-    crate::distance::far_thickness(&mut class, &score, &lut.z_deg, params);
-    crate::brightness::promote_dark(&mut class, &lut.z_deg, &dark);
+    crate::segment::distance::far_thickness(&mut class, &score, &lut.z_deg, params);
+    crate::segment::brightness::promote_dark(&mut class, &lut.z_deg, &dark);
     let cloudy = |c: u8| c == Class::Thin as u8 || c == Class::Thick as u8;
     // Over zipped slices (no bounds checks, so the second pass vectorizes).
     // In blocks of 2¹⁶ cells counted in u32 (255 · 2¹⁶ fits), so that the sums vectorise.

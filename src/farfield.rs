@@ -50,7 +50,7 @@ use crate::segment::{Class, Reference};
 
 /// Labels come from cells within this zenith angle \[°\] (the near field of `distance`, where the
 /// rules read cloud well).
-pub const NEAR_ZENITH_DEG: f32 = crate::distance::NEAR_ZENITH_DEG;
+pub const NEAR_ZENITH_DEG: f32 = crate::segment::distance::NEAR_ZENITH_DEG;
 /// The first far band starts here \[°\].
 pub const FIRST_BAND_DEG: f32 = 60.0;
 /// The last far band ends here \[°\] (the map reaches 84° by default).
@@ -176,7 +176,7 @@ pub fn far_cells(f: &FrameCells) -> Vec<FarCell> {
         let ratio = match (f.exposure, f.reference.clear_brightness(f.bin[k] as usize)) {
             (Some(e), Some(b)) if e > 0.0 => {
                 let expected = (e * b).min(255.0);
-                (crate::brightness::reading(f.rgb[k]).max(1.0) / expected).ln()
+                (crate::segment::brightness::reading(f.rgb[k]).max(1.0) / expected).ln()
             }
             _ => f32::NAN,
         };

@@ -50,7 +50,6 @@ macro_rules! say {
 
 pub mod batch;
 pub mod bench;
-pub mod brightness;
 pub mod calibrate;
 pub mod camera;
 pub mod cbh;
@@ -59,7 +58,6 @@ pub mod cli;
 pub mod clearsky;
 pub mod cloudmap;
 pub mod config;
-pub mod distance;
 pub mod farfield;
 pub mod forecast;
 pub mod intake;

@@ -170,7 +170,7 @@ impl Reference {
                     continue;
                 }
                 fsum[i] += rb;
-                fsum_v[i] += f64::from(crate::brightness::reading(rgb));
+                fsum_v[i] += f64::from(crate::segment::brightness::reading(rgb));
                 fcnt[i] += 1;
             }
             for i in 0..nb {
@@ -239,7 +239,7 @@ impl Reference {
         let near_zenith = params.cloud_fraction_zenith_deg as f32;
         let (mut ring_n, mut ring_clipped) = ([0u32; GLARE_RINGS], [0u32; GLARE_RINGS]);
         let glare_zone = GLARE_RINGS as f32;
-        let mut meter = crate::brightness::ExposureMeter::default();
+        let mut meter = crate::segment::brightness::ExposureMeter::default();
         let metering = params.dark_cloud_margin > 0.0;
         let follow = params.follow_colour_balance;
         // Ratios are read in the library's own colour balance: the frame's divided by its scale
@@ -387,7 +387,7 @@ impl Reference {
             cnt[i] += 1;
             // Brightness from unclipped pixels only, as from a clear day (`from_clear_samples`).
             if rgb.iter().all(|c| *c < params.saturation_level) {
-                sum_v[i] += f64::from(crate::brightness::reading(rgb));
+                sum_v[i] += f64::from(crate::segment::brightness::reading(rgb));
                 cnt_v[i] += 1;
             }
         }

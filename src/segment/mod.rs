@@ -39,6 +39,8 @@
 
 use crate::camera::Camera;
 
+pub mod brightness;
+pub mod distance;
 mod library;
 mod params;
 pub use params::SegmentParams;
@@ -243,7 +245,7 @@ impl FrameReference<'_> {
         // ([`SegmentParams::exposure_past_clipping`]) at least that times the exposure.
         let at_exposure = self.exposure.unwrap_or(1.0) * f32::from(p.saturation_level);
         let expected = if p.exposure_past_clipping { at_exposure } else { at_exposure.min(255.0) };
-        if p.dark_cloud_margin > 0.0 && crate::brightness::reading(rgb) < (1.0 - p.dark_cloud_margin as f32) * expected { Class::Thick } else { Class::Unknown }
+        if p.dark_cloud_margin > 0.0 && crate::segment::brightness::reading(rgb) < (1.0 - p.dark_cloud_margin as f32) * expected { Class::Thick } else { Class::Unknown }
     }
 
     /// Whether sample `k` of `sky`, reading `rgb`, is darker than the clear sky would be there
@@ -261,7 +263,7 @@ impl FrameReference<'_> {
         let p = self.params;
         g.plain
             && self.outside_glare(g.gamma_deg)
-            && crate::brightness::darker_than_clear(rgb, self.reference.bright[g.bin as usize], e, p.dark_cloud_margin as f32, p.dark_cloud_min_level as f32, p.exposure_past_clipping.then_some(f32::from(p.saturation_level)))
+            && crate::segment::brightness::darker_than_clear(rgb, self.reference.bright[g.bin as usize], e, p.dark_cloud_margin as f32, p.dark_cloud_min_level as f32, p.exposure_past_clipping.then_some(f32::from(p.saturation_level)))
     }
 
     /// Whether a pixel at this angle from the sun is judged by its ratio alone in this frame.
@@ -437,7 +439,7 @@ pub fn acos_approx(x: f32) -> f32 {
 }
 
 /// Segment a whole image, pixel by pixel, through the same path as the engine's map
-/// ([`SkyGeometry`], [`FrameReference::classify_sample`], [`crate::distance::far_thickness`]); only the samples differ
+/// ([`SkyGeometry`], [`FrameReference::classify_sample`], [`crate::segment::distance::far_thickness`]); only the samples differ
 /// (every pixel here, one reading per cell there).
 pub fn segment_image(
     img: &image::RgbImage,
@@ -466,10 +468,10 @@ pub fn segment_image(
     }
     if params.distant_contrast {
         let learned = fr.plain_and_learned_all(&sky, w * h);
-        crate::distance::correct(&score, &geom.z_deg, &learned, &mut classes, |z| params.thick_at(z));
+        crate::segment::distance::correct(&score, &geom.z_deg, &learned, &mut classes, |z| params.thick_at(z));
     }
-    crate::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
-    crate::brightness::promote_dark(&mut classes, &geom.z_deg, &dark);
+    crate::segment::distance::far_thickness(&mut classes, &score, &geom.z_deg, params);
+    crate::segment::brightness::promote_dark(&mut classes, &geom.z_deg, &dark);
     let (mut cloudy, mut counted) = (0usize, 0usize);
     for i in (0..w * h).filter(|&i| seen(i) && geom.z_deg[i] < params.cloud_fraction_zenith_deg as f32) {
         if classes[i] != Class::Unknown as u8 {

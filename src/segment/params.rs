@@ -160,7 +160,7 @@ pub struct SegmentParams {
     ///   the frame's own, else the frames' mean so far (an overcast frame measures none; the
     ///   reference only decides samples whose blue clips, where the unclipped library is wrong
     ///   whatever the exposure);
-    /// - the dark-cloud test ([`crate::brightness::darker_than_clear`]) compares an unclipped
+    /// - the dark-cloud test ([`crate::segment::brightness::darker_than_clear`]) compares an unclipped
     ///   sample with the clear sky's brightness at the frame's own exposure even beyond 255, not
     ///   with 255 (a linear response up to the saturation level is assumed), and applies where the
     ///   library's own brightness reaches `dark_cloud_min_level` (not that times the exposure);

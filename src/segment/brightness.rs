@@ -117,19 +117,19 @@ pub fn darker_than_clear(rgb: [u8; 3], library_v: f32, exposure: f32, margin: f3
 }
 
 
-/// Largest share of thin cloud among the cloud within [`crate::distance::NEAR_ZENITH_DEG`] for the
+/// Largest share of thin cloud among the cloud within [`crate::segment::distance::NEAR_ZENITH_DEG`] for the
 /// test to apply: a veil over the sky dims what lies behind it, so where much of the overhead cloud
 /// reads thin a darker sample may be clear sky under the veil, not thick cloud (the same bound as
 /// the distant-contrast correction's, `distance`).
 pub const MAX_NEAR_THIN_SHARE: f32 = 0.25;
 
 /// Whether the frame's overhead cloud is largely thin (a veil): more than [`MAX_NEAR_THIN_SHARE`]
-/// of the cloudy samples within [`crate::distance::NEAR_ZENITH_DEG`] (none: not veiled).
+/// of the cloudy samples within [`crate::segment::distance::NEAR_ZENITH_DEG`] (none: not veiled).
 pub fn veiled(class: &[u8], z_deg: &[f32]) -> bool {
     use crate::segment::Class;
     let (mut cloudy, mut thin) = (0usize, 0usize);
     for (c, z) in class.iter().zip(z_deg) {
-        if *z < crate::distance::NEAR_ZENITH_DEG && (*c == Class::Thin as u8 || *c == Class::Thick as u8) {
+        if *z < crate::segment::distance::NEAR_ZENITH_DEG && (*c == Class::Thin as u8 || *c == Class::Thick as u8) {
             cloudy += 1;
             thin += usize::from(*c == Class::Thin as u8);
         }
