@@ -509,21 +509,31 @@ const SKIP_LINES_MAX: usize = 20;
 fn skip_lines(skipped: &[crate::io::FrameRef]) -> Vec<Vec<(&'static str, String)>> {
     let mut skipped: Vec<&crate::io::FrameRef> = skipped.iter().collect();
     skipped.sort_by(|a, b| a.time.cmp(&b.time).then_with(|| a.path.cmp(&b.path)));
-    let (older, each) = skipped.split_at(skipped.len().saturating_sub(SKIP_LINES_MAX));
+    coalesced(
+        &skipped,
+        |older| {
+            vec![
+                ("event", "frame".into()),
+                ("outcome", "skipped".into()),
+                ("count", older.len().to_string()),
+                ("first", file_name(&older[0].path)),
+                ("last", file_name(&older[older.len() - 1].path)),
+                ("reason", format!("a newer frame was waiting; {} older skipped frames not listed one by one", older.len())),
+            ]
+        },
+        |f| vec![("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())],
+    )
+}
+
+/// Log lines for `items` in order: the last [`SKIP_LINES_MAX`] one by one (`each`), any before
+/// them in one line (`summary` of that non-empty run).
+fn coalesced<T>(items: &[T], summary: impl FnOnce(&[T]) -> Vec<(&'static str, String)>, each: impl Fn(&T) -> Vec<(&'static str, String)>) -> Vec<Vec<(&'static str, String)>> {
+    let (older, last) = items.split_at(items.len().saturating_sub(SKIP_LINES_MAX));
     let mut lines = vec![];
-    if let (Some(first), Some(last)) = (older.first(), older.last()) {
-        lines.push(vec![
-            ("event", "frame".into()),
-            ("outcome", "skipped".into()),
-            ("count", older.len().to_string()),
-            ("first", file_name(&first.path)),
-            ("last", file_name(&last.path)),
-            ("reason", format!("a newer frame was waiting; {} older skipped frames not listed one by one", older.len())),
-        ]);
+    if !older.is_empty() {
+        lines.push(summary(older));
     }
-    for f in each {
-        lines.push(vec![("event", "frame".into()), ("file", file_name(&f.path)), ("time", fmt_time(&f.time)), ("outcome", "skipped".into()), ("reason", "a newer frame was waiting".into())]);
-    }
+    lines.extend(last.iter().map(each));
     lines
 }
 
@@ -564,15 +574,11 @@ fn retire_all(frames: &[crate::io::FrameRef], r: &ops::Retention, shared: &Arc<M
 /// last [`SKIP_LINES_MAX`] one by one, any before them in one line with their count, first and
 /// last (a backlog archived at start-up is not a line per file).
 fn retention_lines(done: &[(&crate::io::FrameRef, String)]) -> Vec<Vec<(&'static str, String)>> {
-    let (older, each) = done.split_at(done.len().saturating_sub(SKIP_LINES_MAX));
-    let mut lines = vec![];
-    if let (Some(first), Some(last)) = (older.first(), older.last()) {
-        lines.push(vec![("event", "retention".into()), ("done", first.1.clone()), ("count", older.len().to_string()), ("first", file_name(&first.0.path)), ("last", file_name(&last.0.path))]);
-    }
-    for (f, what) in each {
-        lines.push(vec![("event", "retention".into()), ("file", file_name(&f.path)), ("done", what.clone())]);
-    }
-    lines
+    coalesced(
+        done,
+        |older| vec![("event", "retention".into()), ("done", older[0].1.clone()), ("count", older.len().to_string()), ("first", file_name(&older[0].0.path)), ("last", file_name(&older[older.len() - 1].0.path))],
+        |(f, what)| vec![("event", "retention".into()), ("file", file_name(&f.path)), ("done", what.clone())],
+    )
 }
 
 /// Where measurement rows come from: a CSV file or folder, or a Modbus TCP device (one of them).
